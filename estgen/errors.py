@@ -1,0 +1,50 @@
+"""Errors that carry a file name, a line and the offending source line.
+
+Every problem a user can fix in a model file is raised as :class:`ModelError`. The command line
+prints ``str(err)`` (one to a few lines, no traceback) and exits with status 2.
+"""
+
+from __future__ import annotations
+
+import linecache
+import os
+from dataclasses import dataclass
+from typing import Optional
+
+
+@dataclass(frozen=True)
+class Where:
+    """A place in a model file: the file and, where known, the 1-based line."""
+
+    file: str
+    line: Optional[int] = None
+
+    def __str__(self) -> str:
+        name = os.path.basename(self.file) if self.file else "<model>"
+        return f"{name}:{self.line}" if self.line else name
+
+
+class ModelError(Exception):
+    """A model file is wrong in a way its author can fix.
+
+    ``where`` names the file and line; ``message`` says what is wrong and what to do.
+    """
+
+    def __init__(self, message: str, where: Optional[Where] = None) -> None:
+        super().__init__(message)
+        self.message = message
+        self.where = where
+
+    def __str__(self) -> str:
+        if self.where is None:
+            return f"error: {self.message}"
+        head = f"{self.where}: error: {self.message}"
+        if self.where.line and self.where.file:
+            src = linecache.getline(self.where.file, self.where.line).rstrip()
+            if src:
+                return f"{head}\n    {src.strip()}"
+        return head
+
+
+class GenerationError(Exception):
+    """The generator cannot produce code for an otherwise valid model (a size limit, say)."""

@@ -1,0 +1,732 @@
+"""Stage 1: the model description a user writes, its loading and its validation.
+
+A model file is a Python file that builds an :class:`Model` named ``model``. The :class:`Model`
+records what the user declared (and where, for error messages); :func:`validate` checks it and
+returns a :class:`ModelSpec`, the plain dataclass every later stage works from.
+"""
+
+from __future__ import annotations
+
+import math
+import os
+import re
+import sys
+import traceback
+from dataclasses import dataclass, field
+from typing import Any, Callable, Dict, List, Optional, Sequence, Tuple, Union
+
+import numpy as np
+import sympy as sp
+
+from .errors import ModelError, Where
+
+__all__ = [
+    "Model",
+    "ModelSpec",
+    "SensorSpec",
+    "Variable",
+    "Param",
+    "load_model",
+    "validate",
+    "as_spec",
+    "check_filter_support",
+    "NON_DIFFERENTIABLE",
+]
+
+_PKG_DIR = os.path.dirname(os.path.abspath(__file__))
+
+# C99 keywords plus names the C headers we include define as macros or functions that a
+# struct field or function-name part must not shadow.
+_C_KEYWORDS = frozenset(
+    """auto break case char const continue default do double else enum extern float for goto if
+    inline int long register restrict return short signed sizeof static struct switch typedef
+    union unsigned void volatile while _Bool _Complex _Imaginary bool true false
+    asm class delete new this template typename namespace operator private public protected
+    virtual friend try catch throw explicit mutable using""".split()
+)
+_C_MACROS = frozenset(
+    """NULL NAN INFINITY HUGE_VAL HUGE_VALF HUGE_VALL isfinite isnan isinf isnormal signbit
+    fpclassify isgreater isless islessequal isgreaterequal islessgreater isunordered offsetof
+    errno assert math_errhandling MATH_ERRNO MATH_ERREXCEPT size_t ptrdiff_t wchar_t
+    int8_t int16_t int32_t int64_t uint8_t uint16_t uint32_t uint64_t intptr_t uintptr_t
+    intmax_t uintmax_t""".split()
+)
+_IDENT = re.compile(r"^[A-Za-z][A-Za-z0-9_]*$")
+_MACRO_LIKE = re.compile(r"^(FP_|INT|UINT|PTRDIFF|SIZE|WCHAR|SIG_ATOMIC|WINT)[A-Z0-9_]*$")
+
+#: Functions an EKF cannot differentiate; models using them must use the UKF.
+NON_DIFFERENTIABLE: Tuple[type, ...] = (
+    sp.sign,
+    sp.Abs,
+    sp.Heaviside,
+    sp.Piecewise,
+    sp.floor,
+    sp.ceiling,
+    sp.Min,
+    sp.Max,
+    sp.Mod,
+)
+
+
+def _caller_where() -> Where:
+    """The first stack frame outside the estgen package: the line of the model file."""
+    frame = sys._getframe(1)
+    while frame is not None:
+        fname = os.path.abspath(frame.f_code.co_filename)
+        if not fname.startswith(_PKG_DIR + os.sep):
+            return Where(frame.f_code.co_filename, frame.f_lineno)
+        frame = frame.f_back
+    return Where("<model>")
+
+
+def _split_names(names: Union[str, Sequence[str]]) -> List[str]:
+    if isinstance(names, str):
+        return names.replace(",", " ").split()
+    return [str(n) for n in names]
+
+
+def _split_units(units: Union[None, str, Sequence[Optional[str]]], count: int) -> List[Optional[str]]:
+    if units is None:
+        return [None] * count
+    items = units.split() if isinstance(units, str) else list(units)
+    if len(items) == 1 and count > 1:
+        items = items * count
+    if len(items) != count:
+        raise ModelError(f"{len(items)} units given for {count} names; give one unit per name")
+    return [None if u is None else str(u) for u in items]
+
+
+@dataclass(frozen=True)
+class Variable:
+    """A state, input or parameter as declared."""
+
+    name: str
+    symbol: sp.Symbol
+    unit: Optional[str] = None
+    angle: bool = False
+    where: Optional[Where] = None
+
+
+@dataclass(frozen=True)
+class Param:
+    """A runtime parameter: a struct field in the C, its default set by ``init``."""
+
+    name: str
+    symbol: sp.Symbol
+    default: float
+    unit: Optional[str] = None
+    where: Optional[Where] = None
+
+
+@dataclass
+class _SensorDecl:
+    name: str
+    h: Any
+    noise: Any
+    every: Any
+    angles: Any
+    gate: Any
+    units: Any
+    where: Where
+
+
+class Model:
+    """A nonlinear state-space model, declared step by step in a model file.
+
+    Noise is additive: ``x[k+1] = f(x[k], u[k], dt) + w``, ``w ~ N(0, Q)`` and, for each sensor,
+    ``z = h(x) + v``, ``v ~ N(0, R)``.
+    """
+
+    def __init__(self, name: str) -> None:
+        self.name = name
+        self._where = _caller_where()
+        self._states: List[Variable] = []
+        self._inputs: List[Variable] = []
+        self._params: List[Param] = []
+        self._dt = sp.Symbol("dt")
+        self._process: Optional[Tuple[str, Any, str, Where]] = None
+        self._Q: Optional[Tuple[Any, Where]] = None
+        self._sensors: List[_SensorDecl] = []
+        self._initial: Optional[Tuple[Any, Any, Where]] = None
+        self._scenario_dt: Optional[float] = None
+        self._input_profile: Optional[Callable[[float], Sequence[float]]] = None
+        self._scenario_where: Optional[Where] = None
+        self.source: Optional[str] = None  # path of the model file, set by load_model
+
+    # -- declarations -------------------------------------------------------------------------
+    def states(
+        self,
+        names: Union[str, Sequence[str]],
+        *,
+        angle: bool = False,
+        units: Union[None, str, Sequence[Optional[str]]] = None,
+    ) -> Tuple[sp.Symbol, ...]:
+        """Declare states (in state-vector order). ``angle=True`` marks them as angles in
+        radians: residuals and the state itself are wrapped to (-pi, pi]."""
+        where = _caller_where()
+        names_l = _split_names(names)
+        try:
+            units_l = _split_units(units, len(names_l))
+        except ModelError as err:
+            raise ModelError(err.message, where) from None
+        out = []
+        for nm, un in zip(names_l, units_l):
+            sym = sp.Symbol(nm)
+            self._states.append(Variable(nm, sym, un, bool(angle), where))
+            out.append(sym)
+        return tuple(out)
+
+    def inputs(
+        self, names: Union[str, Sequence[str]], *, units: Union[None, str, Sequence[Optional[str]]] = None
+    ) -> Tuple[sp.Symbol, ...]:
+        """Declare the control inputs ``u`` (in vector order)."""
+        where = _caller_where()
+        names_l = _split_names(names)
+        try:
+            units_l = _split_units(units, len(names_l))
+        except ModelError as err:
+            raise ModelError(err.message, where) from None
+        out = []
+        for nm, un in zip(names_l, units_l):
+            sym = sp.Symbol(nm)
+            self._inputs.append(Variable(nm, sym, un, False, where))
+            out.append(sym)
+        return tuple(out)
+
+    def param(self, name: str, default: Any, unit: Optional[str] = None) -> sp.Symbol:
+        """Declare a runtime parameter with its default value."""
+        where = _caller_where()
+        sym = sp.Symbol(str(name))
+        self._params.append(Param(str(name), sym, default, unit, where))  # checked in validate
+        return sym
+
+    @property
+    def dt(self) -> sp.Symbol:
+        """The sample-time symbol: a runtime argument of ``predict`` (seconds)."""
+        return self._dt
+
+    def process(self, f: Any) -> None:
+        """Discrete dynamics: ``x[k+1] = f(x[k], u[k], dt)``."""
+        self._process = ("discrete", f, "", _caller_where())
+
+    def dynamics(self, rates: Any, method: str = "rk4") -> None:
+        """Continuous dynamics ``dx/dt = rates(x, u)``, discretized over ``dt`` by ``method``
+        ("rk4" or "euler"); the Jacobian is taken of the discretized map."""
+        self._process = ("continuous", rates, method, _caller_where())
+
+    def process_noise(self, Q: Any) -> None:
+        """Process noise covariance Q (n x n matrix, or a list for a diagonal)."""
+        self._Q = (Q, _caller_where())
+
+    def sensor(
+        self,
+        name: str,
+        h: Any,
+        noise: Any,
+        *,
+        every: int = 1,
+        angles: Any = None,
+        gate: Optional[float] = None,
+        units: Union[None, str, Sequence[Optional[str]]] = None,
+    ) -> None:
+        """A sensor ``z = h(x) + v``. ``noise`` is a list (diagonal R) or a full matrix.
+
+        ``every``: in simulations the sensor reports every ``every``-th step.
+        ``angles``: indices (or a list of booleans) of components that are angles.
+        ``gate``: optional chi-square gate probability (e.g. 0.997).
+        """
+        self._sensors.append(_SensorDecl(str(name), h, noise, every, angles, gate, units, _caller_where()))
+
+    def initial(self, x0: Any, P0: Any) -> None:
+        """Initial state ``x0`` and covariance ``P0`` (matrix, or list for a diagonal)."""
+        self._initial = (x0, P0, _caller_where())
+
+    def scenario(self, dt: float, inputs: Optional[Callable[[float], Sequence[float]]] = None) -> None:
+        """Defaults for simulation: the step ``dt`` and an input profile ``inputs(t) -> u``."""
+        self._scenario_dt = dt
+        self._input_profile = inputs
+        self._scenario_where = _caller_where()
+
+    def __repr__(self) -> str:
+        return f"Model({self.name!r}, n={len(self._states)})"
+
+
+# ---------------------------------------------------------------------------------------------
+# The validated, plain description
+
+
+@dataclass(frozen=True)
+class SensorSpec:
+    """One validated sensor."""
+
+    name: str
+    h: sp.Matrix  # (m, 1)
+    R: sp.Matrix  # (m, m), symmetric
+    diagonal: bool  # R structurally diagonal: sequential scalar updates
+    every: int
+    angles: Tuple[bool, ...]
+    gate: Optional[float]
+    units: Tuple[Optional[str], ...]
+    where: Where
+
+    @property
+    def m(self) -> int:
+        return int(self.h.shape[0])
+
+
+@dataclass(frozen=True)
+class ModelSpec:
+    """A validated model: what every later stage consumes."""
+
+    name: str
+    source: str
+    states: Tuple[Variable, ...]
+    inputs: Tuple[Variable, ...]
+    params: Tuple[Param, ...]
+    dt: sp.Symbol
+    f: sp.Matrix  # (n, 1) discrete map x[k+1] = f(x, u, dt)
+    continuous: Optional[sp.Matrix]  # rates when declared with dynamics(), else None
+    method: str  # "discrete", "rk4" or "euler"
+    Q: sp.Matrix
+    sensors: Tuple[SensorSpec, ...]
+    x0: Tuple[float, ...]
+    P0: Tuple[Tuple[float, ...], ...]
+    scenario_dt: Optional[float]
+    input_profile: Optional[Callable[[float], Sequence[float]]]
+    where: Dict[str, Where] = field(default_factory=dict)
+
+    @property
+    def n(self) -> int:
+        return len(self.states)
+
+    @property
+    def nu(self) -> int:
+        return len(self.inputs)
+
+    @property
+    def x_syms(self) -> List[sp.Symbol]:
+        return [s.symbol for s in self.states]
+
+    @property
+    def u_syms(self) -> List[sp.Symbol]:
+        return [s.symbol for s in self.inputs]
+
+    @property
+    def p_syms(self) -> List[sp.Symbol]:
+        return [p.symbol for p in self.params]
+
+    @property
+    def angle_states(self) -> Tuple[bool, ...]:
+        return tuple(s.angle for s in self.states)
+
+    def param_defaults(self) -> Dict[str, float]:
+        return {p.name: p.default for p in self.params}
+
+    def sensor(self, name: str) -> SensorSpec:
+        for s in self.sensors:
+            if s.name == name:
+                return s
+        raise KeyError(f"model {self.name!r} has no sensor {name!r}; it has {[s.name for s in self.sensors]}")
+
+    def default_subs(self) -> Dict[sp.Symbol, float]:
+        return {p.symbol: p.default for p in self.params}
+
+
+# ---------------------------------------------------------------------------------------------
+# Loading
+
+
+def load_model(path: Union[str, os.PathLike]) -> ModelSpec:
+    """Run a model file and return its validated :class:`ModelSpec`.
+
+    Raises :class:`ModelError` (file, line, what to fix) for any problem in the file.
+    """
+    path = os.fspath(path)
+    if not os.path.isfile(path):
+        raise ModelError(f"model file not found: {path}")
+    with open(path, "r", encoding="utf-8") as fh:
+        text = fh.read()
+    try:
+        code = compile(text, path, "exec")
+    except SyntaxError as err:
+        raise ModelError(f"syntax error: {err.msg}", Where(path, err.lineno)) from None
+    namespace: Dict[str, Any] = {"__name__": "estgen_model", "__file__": os.path.abspath(path)}
+    model_dir = os.path.dirname(os.path.abspath(path))
+    sys.path.insert(0, model_dir)
+    try:
+        exec(code, namespace)
+    except ModelError as err:
+        raise err from None
+    except Exception as err:  # the user's own code failed: show where
+        raise ModelError(f"the model file raised {type(err).__name__}: {err}", _user_frame(err, path)) from None
+    finally:
+        if sys.path and sys.path[0] == model_dir:
+            sys.path.pop(0)
+    model = namespace.get("model")
+    if model is None:
+        raise ModelError("no variable named 'model'; end the file with model = Model(\"name\") and its declarations",
+                         Where(path))
+    if not isinstance(model, Model):
+        raise ModelError(f"'model' is a {type(model).__name__}, not an estgen.Model", Where(path))
+    model.source = path
+    return validate(model)
+
+
+def _user_frame(err: BaseException, path: str) -> Where:
+    """The deepest traceback entry in the model file itself."""
+    best = Where(path)
+    ap = os.path.abspath(path)
+    for fs in traceback.extract_tb(err.__traceback__):
+        if os.path.abspath(fs.filename) == ap:
+            best = Where(path, fs.lineno)
+    return best
+
+
+def as_spec(m: Union[ModelSpec, Model, str, os.PathLike]) -> ModelSpec:
+    """Accept a spec, a :class:`Model` built in Python, or a path to a model file."""
+    if isinstance(m, ModelSpec):
+        return m
+    if isinstance(m, Model):
+        return validate(m)
+    return load_model(m)
+
+
+# ---------------------------------------------------------------------------------------------
+# Validation
+
+
+def _check_ident(name: Any, what: str, where: Optional[Where]) -> str:
+    if not isinstance(name, str) or not _IDENT.match(name):
+        raise ModelError(
+            f"{what} name {name!r} is not a safe C identifier; use letters, digits and '_', starting with a letter",
+            where,
+        )
+    if name in _C_KEYWORDS or name in _C_MACROS or _MACRO_LIKE.match(name):
+        raise ModelError(f"{what} name {name!r} clashes with a C keyword or standard macro; rename it", where)
+    if len(name) > 40:
+        raise ModelError(f"{what} name {name!r} is longer than 40 characters; shorten it", where)
+    return name
+
+
+def _to_float(v: Any, what: str, where: Optional[Where]) -> float:
+    try:
+        if isinstance(v, sp.Basic):
+            if v.free_symbols:
+                raise TypeError
+            val = float(v)
+        elif isinstance(v, (bool, np.bool_)):
+            raise TypeError
+        else:
+            val = float(v)
+    except (TypeError, ValueError):
+        raise ModelError(f"{what} must be a number, got {v!r}", where) from None
+    if not math.isfinite(val):
+        raise ModelError(f"{what} is not finite ({val}); give a finite number", where)
+    return val
+
+
+def _as_column(obj: Any, what: str, where: Where) -> sp.Matrix:
+    try:
+        if isinstance(obj, sp.MatrixBase):
+            mat = sp.Matrix(obj)
+            if mat.shape[1] != 1 and mat.shape[0] == 1:
+                mat = mat.T
+        elif isinstance(obj, (list, tuple)):
+            mat = sp.Matrix([sp.sympify(e) for e in obj])
+        elif isinstance(obj, sp.Basic):
+            mat = sp.Matrix([obj])
+        else:
+            raise TypeError(type(obj).__name__)
+    except (TypeError, sp.SympifyError, ValueError) as err:
+        raise ModelError(f"{what} must be a list of sympy expressions ({err})", where) from None
+    if mat.shape[1] != 1:
+        raise ModelError(f"{what} must be a vector, got a {mat.shape[0]}x{mat.shape[1]} matrix", where)
+    return mat
+
+
+def _as_square(obj: Any, size: int, what: str, where: Where) -> Tuple[sp.Matrix, bool]:
+    """A list means a diagonal; a matrix must be size x size. Returns (matrix, given_as_list)."""
+    try:
+        if isinstance(obj, sp.MatrixBase) or isinstance(obj, np.ndarray):
+            mat = sp.Matrix(obj)
+            as_list = False
+            if mat.shape[1] == 1 and size != 1:
+                mat, as_list = sp.diag(*list(mat)), True
+        elif isinstance(obj, (list, tuple)):
+            if obj and isinstance(obj[0], (list, tuple)):
+                mat, as_list = sp.Matrix([[sp.sympify(e) for e in row] for row in obj]), False
+            else:
+                mat, as_list = sp.diag(*[sp.sympify(e) for e in obj]), True
+                if len(obj) == 0:
+                    mat = sp.zeros(0, 0)
+        elif isinstance(obj, (int, float, sp.Basic)) and size == 1:
+            mat, as_list = sp.Matrix([[sp.sympify(obj)]]), True
+        else:
+            raise TypeError(type(obj).__name__)
+    except (TypeError, sp.SympifyError, ValueError) as err:
+        raise ModelError(f"{what} must be a {size}x{size} matrix or a list of {size} variances ({err})", where) from None
+    if mat.shape != (size, size):
+        raise ModelError(f"{what} must be {size}x{size}, got {mat.shape[0]}x{mat.shape[1]}", where)
+    return mat, as_list
+
+
+def _check_symbols(expr_mat: sp.Matrix, allowed: set, what: str, where: Where, hint: str) -> None:
+    used = set()
+    for e in expr_mat:
+        if not isinstance(e, sp.Basic):
+            raise ModelError(f"{what} holds {e!r}, which is not a sympy expression", where)
+        used |= e.free_symbols
+    bad = sorted((s for s in used if s not in allowed), key=lambda s: str(s))
+    if bad:
+        names = ", ".join(repr(str(s)) for s in bad)
+        raise ModelError(f"{what} uses {names}, never declared; {hint}", where)
+    for e in expr_mat:
+        if e.has(sp.zoo, sp.oo, -sp.oo, sp.nan):
+            raise ModelError(f"{what} contains an infinite or undefined value ({e}); fix the expression", where)
+
+
+def _numeric(mat: sp.Matrix, subs: Dict[sp.Symbol, float], what: str, where: Where) -> np.ndarray:
+    try:
+        arr = np.array(mat.subs(subs).evalf(), dtype=float)
+    except (TypeError, ValueError):
+        raise ModelError(f"{what} does not evaluate to numbers at the parameter defaults", where) from None
+    if not np.all(np.isfinite(arr)):
+        raise ModelError(f"{what} is not finite at the parameter defaults", where)
+    return arr
+
+
+def _check_psd(arr: np.ndarray, what: str, where: Where, strict: bool) -> None:
+    if arr.size == 0:
+        return
+    scale = max(1.0, float(np.max(np.abs(arr))))
+    if not np.allclose(arr, arr.T, rtol=1e-12, atol=1e-14 * scale):
+        raise ModelError(f"{what} is not symmetric; make entry (i, j) equal entry (j, i)", where)
+    eig = np.linalg.eigvalsh(0.5 * (arr + arr.T))
+    if strict and not (np.min(eig) > 0.0):
+        raise ModelError(
+            f"{what} is not positive definite (smallest eigenvalue {np.min(eig):.3g}); every variance must be > 0", where
+        )
+    if not strict and np.min(eig) < -1e-12 * max(1.0, float(np.max(eig))):
+        raise ModelError(f"{what} is not positive semidefinite (smallest eigenvalue {np.min(eig):.3g})", where)
+
+
+def _discretize(rates: sp.Matrix, xs: List[sp.Symbol], dt: sp.Symbol, method: str) -> sp.Matrix:
+    """One step of an explicit Runge-Kutta method, symbolically (common practice)."""
+    if method == "euler":
+        return sp.Matrix(xs) + dt * rates
+
+    def at(xv: sp.Matrix) -> sp.Matrix:
+        return rates.xreplace(dict(zip(xs, list(xv))))
+
+    x = sp.Matrix(xs)
+    k1 = rates
+    k2 = at(x + dt / 2 * k1)
+    k3 = at(x + dt / 2 * k2)
+    k4 = at(x + dt * k3)
+    return x + dt / 6 * (k1 + 2 * k2 + 2 * k3 + k4)
+
+
+def _angle_mask(angles: Any, m: int, where: Where, sname: str) -> Tuple[bool, ...]:
+    if angles is None:
+        return (False,) * m
+    if isinstance(angles, bool):
+        return (angles,) * m
+    items = list(angles)
+    if len(items) == m and all(isinstance(a, (bool, np.bool_)) for a in items):
+        return tuple(bool(a) for a in items)
+    mask = [False] * m
+    for a in items:
+        if not isinstance(a, (int, np.integer)) or isinstance(a, bool) or not 0 <= int(a) < m:
+            raise ModelError(f"sensor {sname!r}: angles must be component indices in 0..{m - 1} or {m} booleans", where)
+        mask[int(a)] = True
+    return tuple(mask)
+
+
+def validate(model: Model) -> ModelSpec:
+    """Check a :class:`Model` and return the plain :class:`ModelSpec`.
+
+    Raises :class:`ModelError` naming the file and line of the offending declaration.
+    """
+    mw = model._where
+    src = model.source or mw.file
+    _check_ident(model.name, "model", mw)
+    if len(model.name) > 24:
+        raise ModelError(f"model name {model.name!r} is longer than 24 characters; shorten it (it prefixes every C name)", mw)
+
+    if not model._states:
+        raise ModelError("the model declares no states; add model.states(\"x1 x2 ...\")", mw)
+
+    seen: Dict[str, Tuple[str, Optional[Where]]] = {"dt": ("the sample time", None)}
+    params: List[Param] = []
+    for kind, items in (("state", model._states), ("input", model._inputs), ("parameter", model._params)):
+        for v in items:
+            _check_ident(v.name, kind, v.where)
+            if v.name in seen:
+                other = seen[v.name][0]
+                raise ModelError(f"{kind} name {v.name!r} is already used by {other}; names must be unique", v.where)
+            seen[v.name] = (f"a {kind}", v.where)
+            if kind == "parameter":
+                params.append(Param(v.name, v.symbol, _to_float(v.default, f"default of parameter {v.name!r}", v.where),
+                                    v.unit, v.where))
+
+    xs = [v.symbol for v in model._states]
+    us = [v.symbol for v in model._inputs]
+    ps = [p.symbol for p in params]
+    n = len(xs)
+    dt = model._dt
+    subs = {p.symbol: p.default for p in params}
+
+    # process
+    if model._process is None:
+        raise ModelError("no dynamics; add model.process([...]) (discrete) or model.dynamics([...]) (continuous)", mw)
+    kind, fexpr, method, pw = model._process
+    what = "process" if kind == "discrete" else "dynamics"
+    fcol = _as_column(fexpr, f"{what}()", pw)
+    if fcol.shape[0] != n:
+        raise ModelError(f"{what}() has {fcol.shape[0]} entries but the model has {n} states; give one per state", pw)
+    allowed_f = set(xs) | set(us) | set(ps) | {dt}
+    _check_symbols(fcol, allowed_f, f"{what}()", pw, "declare it with model.states(), model.inputs() or model.param()")
+    continuous = None
+    if kind == "continuous":
+        if method not in ("rk4", "euler"):
+            raise ModelError(f"dynamics(method={method!r}) is not known; use \"rk4\" or \"euler\"", pw)
+        if dt in set().union(*[e.free_symbols for e in fcol]):
+            raise ModelError("dynamics() gives rates dx/dt, which must not use dt; use model.process() for a discrete map", pw)
+        continuous = fcol
+        fcol = _discretize(fcol, xs, dt, method)
+    else:
+        method = "discrete"
+
+    # Q
+    if model._Q is None:
+        raise ModelError("no process noise; add model.process_noise(Q)", mw)
+    Qraw, qw = model._Q
+    Q, _ = _as_square(Qraw, n, "process_noise()", qw)
+    _check_symbols(Q, set(ps) | {dt}, "process_noise()", qw, "Q may use parameters and dt only")
+    if Q != Q.T:
+        raise ModelError("process_noise() is not symmetric; make entry (i, j) equal entry (j, i)", qw)
+    sim_dt = _to_float(model._scenario_dt, "scenario dt", model._scenario_where) if model._scenario_dt is not None else None
+    qnum = _numeric(Q, {**subs, dt: sim_dt or 0.01}, "process_noise()", qw)
+    _check_psd(qnum, "process_noise() Q", qw, strict=False)
+
+    # sensors
+    if not model._sensors:
+        raise ModelError("the model declares no sensor; add model.sensor(\"name\", [h...], noise=[...])", mw)
+    sensors: List[SensorSpec] = []
+    for sd in model._sensors:
+        _check_ident(sd.name, "sensor", sd.where)
+        if any(s.name == sd.name for s in sensors):
+            raise ModelError(f"sensor {sd.name!r} is declared twice; sensor names must be unique", sd.where)
+        h = _as_column(sd.h, f"sensor {sd.name!r} h", sd.where)
+        m = h.shape[0]
+        if m == 0:
+            raise ModelError(f"sensor {sd.name!r} measures nothing; give at least one expression", sd.where)
+        _check_symbols(h, set(xs) | set(ps), f"sensor {sd.name!r} h", sd.where,
+                       "a measurement may use states and parameters (inputs and dt are not allowed)")
+        R, as_list = _as_square(sd.noise, m, f"sensor {sd.name!r} noise", sd.where)
+        _check_symbols(R, set(ps), f"sensor {sd.name!r} noise", sd.where, "R may use parameters only")
+        if R != R.T:
+            raise ModelError(f"sensor {sd.name!r} noise is not symmetric; make entry (i, j) equal entry (j, i)", sd.where)
+        rnum = _numeric(R, subs, f"sensor {sd.name!r} noise", sd.where)
+        _check_psd(rnum, f"sensor {sd.name!r} noise R", sd.where, strict=True)
+        diagonal = all(R[i, j] == 0 for i in range(m) for j in range(m) if i != j)
+        every = sd.every
+        if isinstance(every, bool) or not isinstance(every, (int, np.integer)) or every < 1:
+            raise ModelError(f"sensor {sd.name!r}: every must be a whole number >= 1, got {every!r}", sd.where)
+        gate = sd.gate
+        if gate is not None:
+            gate = _to_float(gate, f"sensor {sd.name!r} gate", sd.where)
+            if not 0.0 < gate < 1.0:
+                raise ModelError(f"sensor {sd.name!r}: gate is a probability strictly between 0 and 1, got {gate}", sd.where)
+        try:
+            units = tuple(_split_units(sd.units, m))
+        except ModelError as err:
+            raise ModelError(f"sensor {sd.name!r}: {err.message}", sd.where) from None
+        sensors.append(SensorSpec(sd.name, h, R, diagonal, int(every), _angle_mask(sd.angles, m, sd.where, sd.name),
+                                  gate, units, sd.where))
+
+    # initial
+    if model._initial is None:
+        raise ModelError("no initial state; add model.initial(x0, P0)", mw)
+    x0raw, P0raw, iw = model._initial
+    try:
+        x0l = list(x0raw)
+    except TypeError:
+        raise ModelError("initial() x0 must be a list of numbers, one per state", iw) from None
+    if len(x0l) != n:
+        raise ModelError(f"initial() x0 has {len(x0l)} entries but the model has {n} states", iw)
+    x0 = tuple(_to_float(v, f"initial() x0[{i}]", iw) for i, v in enumerate(x0l))
+    P0m, _ = _as_square(P0raw, n, "initial() P0", iw)
+    P0n = _numeric(P0m, {}, "initial() P0 (numbers only)", iw) if all(not e.free_symbols for e in P0m) else None
+    if P0n is None:
+        raise ModelError("initial() P0 must hold numbers, not symbols", iw)
+    _check_psd(P0n, "initial() P0", iw, strict=True)
+
+    # f and h must evaluate to finite numbers at the defaults and x0 (catches 1/0 and log(0) early)
+    point = {**subs, **dict(zip(xs, x0)), **{u: 0.0 for u in us}, dt: sim_dt or 0.01}
+    for label, mat, w in [(what + "()", fcol, pw)] + [(f"sensor {s.name!r} h", s.h, s.where) for s in sensors]:
+        try:
+            val = np.array(mat.xreplace({k: sp.Float(v) for k, v in point.items()}).evalf(), dtype=complex)
+        except (TypeError, ValueError):
+            continue  # not numerically evaluable symbolically here; the filters check at run time
+        if not np.all(np.isfinite(val)) or np.any(np.abs(val.imag) > 1e-9 * (1 + np.abs(val.real))):
+            raise ModelError(f"{label} is not finite (or not real) at x0 with default parameters and zero input", w)
+
+    if model._input_profile is not None and not callable(model._input_profile):
+        raise ModelError("scenario(inputs=...) must be a function of time t returning the input vector",
+                         model._scenario_where)
+    if sim_dt is not None and sim_dt <= 0:
+        raise ModelError(f"scenario dt must be > 0, got {sim_dt}", model._scenario_where)
+
+    return ModelSpec(
+        name=model.name,
+        source=src,
+        states=tuple(model._states),
+        inputs=tuple(model._inputs),
+        params=tuple(params),
+        dt=dt,
+        f=fcol,
+        continuous=continuous,
+        method=method,
+        Q=Q,
+        sensors=tuple(sensors),
+        x0=x0,
+        P0=tuple(tuple(float(v) for v in row) for row in P0n),
+        scenario_dt=sim_dt,
+        input_profile=model._input_profile,
+        where={"model": mw, "process": pw, "Q": qw, "initial": iw},
+    )
+
+
+def _find_nondiff(expr: sp.Basic) -> Optional[str]:
+    for node in sp.preorder_traversal(expr):
+        if isinstance(node, NON_DIFFERENTIABLE):
+            return type(node).__name__
+    return None
+
+
+def check_filter_support(spec: ModelSpec, filt: str) -> None:
+    """Refuse what a given filter cannot do (for the EKF: non-differentiable functions)."""
+    if filt not in ("ekf", "ukf"):
+        raise ModelError(f"unknown filter {filt!r}; use 'ekf' or 'ukf'")
+    if filt == "ukf":
+        return
+    src = spec.continuous if spec.continuous is not None else spec.f
+    what = "dynamics()" if spec.continuous is not None else "process()"
+    for i, e in enumerate(src):
+        fn = _find_nondiff(e)
+        if fn:
+            raise ModelError(
+                f"{what} entry {i} ({spec.states[i].name}) uses {fn}, which the EKF cannot differentiate; "
+                f"use --filter ukf for this model",
+                spec.where.get("process"),
+            )
+    for s in spec.sensors:
+        for i, e in enumerate(s.h):
+            fn = _find_nondiff(e)
+            if fn:
+                raise ModelError(
+                    f"sensor {s.name!r} component {i} uses {fn}, which the EKF cannot differentiate; "
+                    f"use --filter ukf for this model",
+                    s.where,
+                )
