@@ -1,0 +1,533 @@
+"""The numpy reference filters: the textbook EKF and UKF in plain dense float64.
+
+These are what the generated C is proved against, so they favour the obvious formulation over
+speed: lambdified model functions, full covariance matrices, Cholesky solves and the Joseph form.
+
+Angles: a state or measurement component marked as an angle is wrapped to (-pi, pi] with
+``wrap(a) = pi - mod(pi - a, 2 pi)`` (``mod`` with a positive divisor lies in [0, 2 pi), so the
+result lies in (-pi, pi]; the one rounding case that lands on -pi is moved to +pi).
+
+Every call that returns a non-zero :class:`~estgen.status.Status` leaves the filter exactly as
+it was: the new state is computed aside and stored only once every check has passed.
+"""
+
+from __future__ import annotations
+
+import math
+import os
+import sys
+import types
+from typing import Any, Callable, Dict, List, Mapping, Optional, Sequence, Tuple, Union
+
+import numpy as np
+import sympy as sp
+
+from .errors import ModelError
+from .model import Model, ModelSpec, as_spec, check_filter_support
+from .status import Status
+
+__all__ = [
+    "reference",
+    "ReferenceEKF",
+    "ReferenceUKF",
+    "ModelFunctions",
+    "model_functions",
+    "wrap_angle",
+    "sigma_weights",
+    "sigma_points",
+    "unscented_transform",
+    "gate_threshold",
+    "check_ukf_parameters",
+]
+
+TWO_PI = 2.0 * math.pi
+ModelLike = Union[ModelSpec, Model, str, "os.PathLike[str]"]
+
+
+def wrap_angle(a: Any) -> Any:
+    """Wrap angles (radians, scalar or array) to (-pi, pi]."""
+    w = math.pi - np.mod(math.pi - np.asarray(a, dtype=float), TWO_PI)
+    # mod(tiny negative, 2 pi) rounds to 2 pi, giving -pi: move it to the closed end
+    w = np.where(w <= -math.pi, w + TWO_PI, w)
+    return float(w) if np.ndim(w) == 0 else w
+
+
+def _wrap_masked(v: np.ndarray, mask: np.ndarray) -> np.ndarray:
+    if mask.any():
+        v = v.copy()
+        v[mask] = wrap_angle(v[mask])
+    return v
+
+
+def gate_threshold(probability: float, m: int) -> float:
+    """The chi-square gate: an innovation is rejected when its NIS exceeds this value
+    (the ``probability`` quantile of chi-square with ``m`` degrees of freedom)."""
+    from scipy.stats import chi2
+
+    return float(chi2.ppf(probability, m))
+
+
+# ---------------------------------------------------------------------------------------------
+# Model functions
+
+
+def _lambdify(args: Sequence[sp.Symbol], mat: sp.Matrix) -> Callable[..., Any]:
+    # cse keeps the RK4-discretized expressions from being evaluated term by term
+    return sp.lambdify(args, mat, modules="numpy", cse=True)
+
+
+class ModelFunctions:
+    """The model's f, F = df/dx, Q, and per sensor h, H = dh/dx and R as numpy functions.
+
+    Parameters are an explicit argument (a tuple in ``spec.params`` order), so the truth of a
+    simulation and a filter under test can share these functions yet use different parameters.
+    """
+
+    def __init__(self, spec: ModelSpec) -> None:
+        self.spec = spec
+        xs, us, ps, dt = spec.x_syms, spec.u_syms, spec.p_syms, spec.dt
+        self.n = spec.n
+        self.nu = spec.nu
+        fargs = [*xs, *us, dt, *ps]
+        self._f = _lambdify(fargs, spec.f)
+        self._F = _lambdify(fargs, spec.f.jacobian(sp.Matrix(xs)))
+        self._Q = _lambdify([dt, *ps], spec.Q)
+        self._h: Dict[str, Callable[..., Any]] = {}
+        self._H: Dict[str, Callable[..., Any]] = {}
+        self._R: Dict[str, Callable[..., Any]] = {}
+        for s in spec.sensors:
+            self._h[s.name] = _lambdify([*xs, *ps], s.h)
+            self._H[s.name] = _lambdify([*xs, *ps], s.h.jacobian(sp.Matrix(xs)))
+            self._R[s.name] = _lambdify(list(ps), s.R)
+
+    def param_tuple(self, params: Mapping[str, float]) -> Tuple[float, ...]:
+        """Parameter values in model order."""
+        return tuple(float(params[p.name]) for p in self.spec.params)
+
+    @staticmethod
+    def _arr(value: Any, shape: Tuple[int, ...]) -> np.ndarray:
+        return np.array(value, dtype=float).reshape(shape)
+
+    def f(self, x: np.ndarray, u: np.ndarray, dt: float, p: Tuple[float, ...]) -> np.ndarray:
+        """The discrete map x[k+1] = f(x, u, dt), shape (n,)."""
+        return self._arr(self._f(*x, *u, dt, *p), (self.n,))
+
+    def F(self, x: np.ndarray, u: np.ndarray, dt: float, p: Tuple[float, ...]) -> np.ndarray:
+        """The Jacobian df/dx, shape (n, n)."""
+        return self._arr(self._F(*x, *u, dt, *p), (self.n, self.n))
+
+    def Q(self, dt: float, p: Tuple[float, ...]) -> np.ndarray:
+        """The process noise covariance, shape (n, n)."""
+        return self._arr(self._Q(dt, *p), (self.n, self.n))
+
+    def h(self, sensor: str, x: np.ndarray, p: Tuple[float, ...]) -> np.ndarray:
+        """The sensor's measurement function, shape (m,)."""
+        m = self.spec.sensor(sensor).m
+        return self._arr(self._h[sensor](*x, *p), (m,))
+
+    def H(self, sensor: str, x: np.ndarray, p: Tuple[float, ...]) -> np.ndarray:
+        """The sensor's Jacobian dh/dx, shape (m, n)."""
+        m = self.spec.sensor(sensor).m
+        return self._arr(self._H[sensor](*x, *p), (m, self.n))
+
+    def R(self, sensor: str, p: Tuple[float, ...]) -> np.ndarray:
+        """The sensor's noise covariance, shape (m, m)."""
+        m = self.spec.sensor(sensor).m
+        return self._arr(self._R[sensor](*p), (m, m))
+
+
+_FUNCTIONS_CACHE: Dict[int, Tuple[ModelSpec, ModelFunctions]] = {}
+
+
+def model_functions(spec: ModelSpec) -> ModelFunctions:
+    """:class:`ModelFunctions` for ``spec``, lambdified once per spec object (Monte Carlo
+    builds one filter per run; lambdifying each time would dominate the run time)."""
+    hit = _FUNCTIONS_CACHE.get(id(spec))
+    if hit is not None and hit[0] is spec:
+        return hit[1]
+    mf = ModelFunctions(spec)
+    if len(_FUNCTIONS_CACHE) > 16:
+        _FUNCTIONS_CACHE.clear()
+    _FUNCTIONS_CACHE[id(spec)] = (spec, mf)
+    return mf
+
+
+# ---------------------------------------------------------------------------------------------
+# The scaled unscented transform (Julier 2002; Wan & van der Merwe 2000)
+
+
+def sigma_weights(n: int, alpha: float, beta: float, kappa: float) -> Tuple[float, np.ndarray, np.ndarray]:
+    """``(lambda, Wm, Wc)`` of the scaled unscented transform for dimension ``n``."""
+    lam = alpha * alpha * (n + kappa) - n
+    c = n + lam
+    wm = np.full(2 * n + 1, 0.5 / c)
+    wc = wm.copy()
+    wm[0] = lam / c
+    wc[0] = lam / c + 1.0 - alpha * alpha + beta
+    return lam, wm, wc
+
+
+def sigma_points(x: np.ndarray, P: np.ndarray, lam: float) -> Optional[np.ndarray]:
+    """The 2n+1 sigma points as rows: x, x + L[:, i], x - L[:, i] with L L' = (n + lambda) P
+    (lower Cholesky). None when (n + lambda) P is not positive definite."""
+    n = x.shape[0]
+    try:
+        L = np.linalg.cholesky((n + lam) * P)
+    except np.linalg.LinAlgError:
+        return None
+    X = np.empty((2 * n + 1, n))
+    X[0] = x
+    X[1:n + 1] = x + L.T
+    X[n + 1:] = x - L.T
+    return X
+
+
+def _weighted_mean(Y: np.ndarray, wm: np.ndarray, angles: np.ndarray) -> np.ndarray:
+    mean = wm @ Y
+    if angles.any():
+        # circular mean: the arithmetic mean of angles near +-pi would point the wrong way
+        s = wm @ np.sin(Y[:, angles])
+        c = wm @ np.cos(Y[:, angles])
+        mean[angles] = np.arctan2(s, c)
+    return mean
+
+
+def _deviations(Y: np.ndarray, mean: np.ndarray, angles: np.ndarray) -> np.ndarray:
+    d = Y - mean
+    if angles.any():
+        d[:, angles] = wrap_angle(d[:, angles])
+    return d
+
+
+def unscented_transform(
+    func: Callable[[np.ndarray], np.ndarray],
+    x: np.ndarray,
+    P: np.ndarray,
+    *,
+    alpha: float = 1.0,
+    beta: float = 2.0,
+    kappa: float = 0.0,
+    angles: Optional[Sequence[bool]] = None,
+) -> Tuple[np.ndarray, np.ndarray]:
+    """Mean and covariance of ``func(X)`` for X ~ (x, P) by the scaled unscented transform.
+
+    ``angles`` marks output components that are angles (circular mean, wrapped deviations).
+    Raises ``numpy.linalg.LinAlgError`` when P is not positive definite.
+    """
+    x = np.asarray(x, dtype=float)
+    P = np.asarray(P, dtype=float)
+    lam, wm, wc = sigma_weights(x.shape[0], alpha, beta, kappa)
+    X = sigma_points(x, P, lam)
+    if X is None:
+        raise np.linalg.LinAlgError("P is not positive definite")
+    Y = np.array([np.asarray(func(xi), dtype=float).reshape(-1) for xi in X])
+    mask = np.zeros(Y.shape[1], bool) if angles is None else np.asarray(angles, bool)
+    mean = _weighted_mean(Y, wm, mask)
+    d = _deviations(Y, mean, mask)
+    return mean, (d.T * wc) @ d
+
+
+# ---------------------------------------------------------------------------------------------
+# Filters
+
+
+def _finite(*arrays: np.ndarray) -> bool:
+    return all(bool(np.all(np.isfinite(a))) for a in arrays)
+
+
+def _chol_solve(S: np.ndarray, B: np.ndarray) -> Optional[Tuple[np.ndarray, Any]]:
+    """``(S^-1 B, factor)`` by Cholesky, or None when S is not positive definite."""
+    from scipy.linalg import LinAlgError, cho_factor, cho_solve
+
+    try:
+        fac = cho_factor(S, lower=True, check_finite=False)
+    except LinAlgError:
+        return None
+    # LAPACK accepts a zero pivot on some inputs; a singular S is not positive definite either
+    if not np.all(np.diag(fac[0]) > 0.0):
+        return None
+    return cho_solve(fac, B, check_finite=False), fac
+
+
+class _ReferenceBase:
+    """What the EKF and UKF share: state, parameters, argument checks and gating."""
+
+    filter: str = ""
+
+    def __init__(self, spec: ModelSpec, params: Optional[Mapping[str, float]] = None,
+                 functions: Optional[ModelFunctions] = None) -> None:
+        self.spec = spec
+        self._fn = functions if functions is not None else model_functions(spec)
+        self._params: Dict[str, float] = spec.param_defaults()
+        for name, value in (params or {}).items():
+            self.set_param(name, value)
+        self._angles = np.array(spec.angle_states, dtype=bool)
+        self._x = _wrap_masked(np.array(spec.x0, dtype=float), self._angles)
+        self._P = np.array(spec.P0, dtype=float)
+        self._nis = math.nan
+        self._gates: Dict[str, Optional[float]] = {
+            s.name: (None if s.gate is None else gate_threshold(s.gate, s.m)) for s in spec.sensors
+        }
+        self._sensor_angles = {s.name: np.array(s.angles, dtype=bool) for s in spec.sensors}
+
+    # -- read-only views ----------------------------------------------------------------------
+    @property
+    def x(self) -> np.ndarray:
+        """The state estimate, a copy, shape (n,)."""
+        return self._x.copy()
+
+    @property
+    def P(self) -> np.ndarray:
+        """The state covariance, a copy, shape (n, n)."""
+        return self._P.copy()
+
+    @property
+    def n(self) -> int:
+        """The number of states."""
+        return self.spec.n
+
+    @property
+    def sensors(self) -> List[str]:
+        """Sensor names in model order."""
+        return [s.name for s in self.spec.sensors]
+
+    @property
+    def params(self) -> Dict[str, float]:
+        """The current parameter values (a copy)."""
+        return dict(self._params)
+
+    @property
+    def nis(self) -> float:
+        """y' S^-1 y of the last update that formed S (accepted or gated); nan before any."""
+        return self._nis
+
+    def set_param(self, name: str, value: float) -> None:
+        """Change a runtime parameter. Unknown names raise KeyError."""
+        if name not in self._params:
+            raise KeyError(f"model {self.spec.name!r} has no parameter {name!r}; it has {sorted(self._params)}")
+        self._params[name] = float(value)
+
+    def set_state(self, x: Sequence[float], P: Any) -> int:
+        """Replace the state and covariance. Returns BAD_INPUT for non-finite values and
+        NOT_POSITIVE_DEFINITE when P is not symmetric positive definite."""
+        n = self.n
+        xv = np.asarray(x, dtype=float).reshape(-1)
+        Pm = np.asarray(P, dtype=float)
+        if xv.shape != (n,) or Pm.shape != (n, n):
+            raise ValueError(f"set_state needs x of length {n} and P of shape ({n}, {n}), "
+                             f"got {xv.shape} and {Pm.shape}")
+        if not _finite(xv, Pm):
+            return int(Status.BAD_INPUT)
+        scale = float(np.max(np.abs(np.diag(Pm)))) if n else 0.0
+        if np.max(np.abs(Pm - Pm.T)) > 1e-9 * scale:
+            return int(Status.NOT_POSITIVE_DEFINITE)
+        Ps = 0.5 * (Pm + Pm.T)
+        try:
+            np.linalg.cholesky(Ps)
+        except np.linalg.LinAlgError:
+            return int(Status.NOT_POSITIVE_DEFINITE)
+        self._x = _wrap_masked(xv.copy(), self._angles)
+        self._P = Ps
+        return int(Status.OK)
+
+    # -- argument checks ----------------------------------------------------------------------
+    def _p(self) -> Tuple[float, ...]:
+        return self._fn.param_tuple(self._params)
+
+    def _check_predict(self, u: Sequence[float], dt: float) -> Tuple[Optional[int], np.ndarray, float]:
+        uv = np.asarray(u if u is not None else [], dtype=float).reshape(-1)
+        if uv.shape != (self.spec.nu,):
+            raise ValueError(f"predict needs u of length {self.spec.nu}, got {uv.shape[0]}")
+        dtf = float(dt)
+        if not (_finite(uv) and math.isfinite(dtf)):
+            return int(Status.BAD_INPUT), uv, dtf
+        if dtf <= 0.0:
+            return int(Status.BAD_DT), uv, dtf
+        return None, uv, dtf
+
+    def _check_update(self, sensor: str, z: Sequence[float]) -> Tuple[Optional[int], np.ndarray]:
+        s = self.spec.sensor(sensor)  # KeyError for an unknown name
+        zv = np.asarray(z, dtype=float).reshape(-1)
+        if zv.shape != (s.m,):
+            raise ValueError(f"sensor {sensor!r} gives {s.m} values, got {zv.shape[0]}")
+        if not _finite(zv):
+            return int(Status.BAD_INPUT), zv
+        return None, zv
+
+    def _finish_update(self, sensor: str, y: np.ndarray, S: np.ndarray, C: np.ndarray
+                       ) -> Tuple[Optional[int], Optional[np.ndarray]]:
+        """Shared tail of an update: K = C S^-1, NIS and the gate. Returns (refusal, K)."""
+        if not _finite(S, C, y):
+            return int(Status.NON_FINITE), None
+        S = 0.5 * (S + S.T)
+        solved = _chol_solve(S, np.column_stack([y, C.T]))
+        if solved is None:
+            return int(Status.NOT_POSITIVE_DEFINITE), None
+        sol = solved[0]
+        nis = float(y @ sol[:, 0])
+        if not math.isfinite(nis):
+            return int(Status.NON_FINITE), None
+        self._nis = nis
+        thr = self._gates[sensor]
+        if thr is not None and nis > thr:
+            return int(Status.GATED), None
+        return None, sol[:, 1:].T
+
+    def _commit(self, x: np.ndarray, P: np.ndarray) -> int:
+        x = _wrap_masked(x, self._angles)
+        P = 0.5 * (P + P.T)
+        if not _finite(x, P):
+            return int(Status.NON_FINITE)
+        self._x, self._P = x, P
+        return int(Status.OK)
+
+    def __repr__(self) -> str:
+        return f"{type(self).__name__}({self.spec.name!r}, n={self.n})"
+
+
+class ReferenceEKF(_ReferenceBase):
+    """Extended Kalman filter: linearize f and h at the current estimate (Jacobians by sympy)."""
+
+    filter = "ekf"
+
+    def predict(self, u: Sequence[float], dt: float) -> int:
+        """x = f(x, u, dt); P = F P F' + Q(dt). Returns a :class:`Status` code."""
+        bad, uv, dtf = self._check_predict(u, dt)
+        if bad is not None:
+            return bad
+        p = self._p()
+        with np.errstate(all="ignore"):
+            xn = self._fn.f(self._x, uv, dtf, p)
+            F = self._fn.F(self._x, uv, dtf, p)
+            Q = self._fn.Q(dtf, p)
+            if not _finite(xn, F, Q):
+                return int(Status.NON_FINITE)
+            Pn = F @ self._P @ F.T + Q
+        return self._commit(xn, Pn)
+
+    def update(self, sensor: str, z: Sequence[float]) -> int:
+        """Measurement update with Joseph-form covariance. Returns a :class:`Status` code."""
+        bad, zv = self._check_update(sensor, z)
+        if bad is not None:
+            return bad
+        p = self._p()
+        x, P = self._x, self._P
+        with np.errstate(all="ignore"):
+            hx = self._fn.h(sensor, x, p)
+            H = self._fn.H(sensor, x, p)
+            R = self._fn.R(sensor, p)
+            if not _finite(hx, H, R):
+                return int(Status.NON_FINITE)
+            y = _wrap_masked(zv - hx, self._sensor_angles[sensor])
+            PHt = P @ H.T
+            S = H @ PHt + R
+            bad, K = self._finish_update(sensor, y, S, PHt)
+            if bad is not None:
+                return bad
+            A = np.eye(self.n) - K @ H
+            Pn = A @ P @ A.T + K @ R @ K.T  # Joseph form: stays PSD under rounding
+            xn = x + K @ y
+        return self._commit(xn, Pn)
+
+
+class ReferenceUKF(_ReferenceBase):
+    """Unscented Kalman filter with the scaled unscented transform (additive noise)."""
+
+    filter = "ukf"
+
+    def __init__(self, spec: ModelSpec, *, alpha: float = 1.0, beta: float = 2.0, kappa: float = 0.0,
+                 params: Optional[Mapping[str, float]] = None, functions: Optional[ModelFunctions] = None) -> None:
+        check_ukf_parameters(spec.n, alpha, beta, kappa)
+        super().__init__(spec, params, functions)
+        self.alpha, self.beta, self.kappa = float(alpha), float(beta), float(kappa)
+        self._lam, self._wm, self._wc = sigma_weights(spec.n, self.alpha, self.beta, self.kappa)
+
+    @property
+    def weights(self) -> Tuple[np.ndarray, np.ndarray]:
+        """The mean and covariance weights (Wm, Wc), each of length 2n+1."""
+        return self._wm.copy(), self._wc.copy()
+
+    def predict(self, u: Sequence[float], dt: float) -> int:
+        """Propagate the sigma points through f; Q is added to their covariance."""
+        bad, uv, dtf = self._check_predict(u, dt)
+        if bad is not None:
+            return bad
+        p = self._p()
+        with np.errstate(all="ignore"):
+            X = sigma_points(self._x, self._P, self._lam)
+            if X is None:
+                return int(Status.NOT_POSITIVE_DEFINITE)
+            Y = np.array([self._fn.f(xi, uv, dtf, p) for xi in X])
+            Q = self._fn.Q(dtf, p)
+            if not _finite(Y, Q):
+                return int(Status.NON_FINITE)
+            xn = _weighted_mean(Y, self._wm, self._angles)
+            d = _deviations(Y, xn, self._angles)
+            Pn = (d.T * self._wc) @ d + Q
+        return self._commit(xn, Pn)
+
+    def update(self, sensor: str, z: Sequence[float]) -> int:
+        """Fresh sigma points from (x, P) through h; K = C S^-1, P = P - K S K'."""
+        bad, zv = self._check_update(sensor, z)
+        if bad is not None:
+            return bad
+        p = self._p()
+        x, P = self._x, self._P
+        zang = self._sensor_angles[sensor]
+        with np.errstate(all="ignore"):
+            X = sigma_points(x, P, self._lam)
+            if X is None:
+                return int(Status.NOT_POSITIVE_DEFINITE)
+            Z = np.array([self._fn.h(sensor, xi, p) for xi in X])
+            R = self._fn.R(sensor, p)
+            if not _finite(Z, R):
+                return int(Status.NON_FINITE)
+            zhat = _weighted_mean(Z, self._wm, zang)
+            dZ = _deviations(Z, zhat, zang)
+            # X - x is exactly the +-L column by construction: not wrapped, even for angles
+            dX = X - x
+            S = (dZ.T * self._wc) @ dZ + R
+            C = (dX.T * self._wc) @ dZ
+            y = _wrap_masked(zv - zhat, zang)
+            bad, K = self._finish_update(sensor, y, S, C)
+            if bad is not None:
+                return bad
+            xn = x + K @ y
+            Pn = P - K @ S @ K.T
+        return self._commit(xn, Pn)
+
+
+def check_ukf_parameters(n: int, alpha: float, beta: float, kappa: float) -> None:
+    """Refuse sigma-point parameters that give no usable spread (ModelError: exit 2 on the CLI)."""
+    vals = {"alpha": alpha, "beta": beta, "kappa": kappa}
+    for k, v in vals.items():
+        if not isinstance(v, (int, float, np.floating, np.integer)) or isinstance(v, bool) or not math.isfinite(v):
+            raise ModelError(f"UKF {k} must be a finite number, got {v!r}")
+    if alpha <= 0:
+        raise ModelError(f"UKF alpha must be > 0, got {alpha}")
+    if alpha * alpha * (n + kappa) <= 0:
+        raise ModelError(f"UKF alpha^2 (n + kappa) must be > 0 (n = {n}); raise kappa above {-n}")
+
+
+def reference(model: ModelLike, filter: str = "ekf", *, alpha: float = 1.0, beta: float = 2.0,
+              kappa: float = 0.0, params: Optional[Mapping[str, float]] = None
+              ) -> Union[ReferenceEKF, ReferenceUKF]:
+    """The numpy reference filter for ``model`` (a ModelSpec, a Model or a model file path),
+    started at the model's x0 and P0. ``params`` overrides parameter defaults."""
+    spec = as_spec(model)
+    check_filter_support(spec, filter)
+    if filter == "ekf":
+        return ReferenceEKF(spec, params=params)
+    return ReferenceUKF(spec, alpha=alpha, beta=beta, kappa=kappa, params=params)
+
+
+class _CallableModule(types.ModuleType):
+    """Importing this submodule rebinds the package attribute ``estgen.reference`` from the
+    function to the module; making the module callable keeps ``estgen.reference(m, ...)``
+    working whichever import happened first."""
+
+    def __call__(self, model: ModelLike, filter: str = "ekf", **options: Any) -> Union[ReferenceEKF, ReferenceUKF]:
+        return reference(model, filter=filter, **options)
+
+
+sys.modules[__name__].__class__ = _CallableModule

@@ -1,0 +1,670 @@
+"""Simulated truth and measurements, and the Monte Carlo consistency test of a filter.
+
+The truth is drawn from the model itself (``x[k+1] = f(x[k], u[k], dt) + w``, ``z = h(x) + v``)
+with the model's default parameters; the filter under test may be given other parameters, which
+is how a mistuned Q or R shows up. Consistency follows Bar-Shalom, Li and Kirubarajan,
+*Estimation with Applications to Tracking and Navigation* (2001), section 5.4: the run-averaged
+normalized estimation error squared (NEES) and normalized innovation squared (NIS) must stay
+inside their two-sided 95% chi-square bounds.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import math
+import multiprocessing
+import os
+import sys
+import time
+from dataclasses import dataclass, field
+from typing import Any, Callable, Dict, List, Mapping, Optional, Sequence, TextIO, Tuple, Union
+
+import numpy as np
+
+from .errors import ModelError
+from .model import ModelSpec, as_spec, check_filter_support
+from .reference import ReferenceEKF, ReferenceUKF, check_ukf_parameters, model_functions, wrap_angle
+from .status import Status
+
+__all__ = [
+    "Scenario",
+    "make_scenario",
+    "run_filter",
+    "MonteCarloResult",
+    "StatSummary",
+    "monte_carlo",
+    "format_summary",
+    "plot_result",
+    "add_arguments",
+    "run",
+    "INSIDE_REQUIRED",
+]
+
+#: a statistic passes when it lies inside its 95% bounds at this fraction of the steps or more
+#: (common practice: a consistent filter is inside about 95% of the time; 90% leaves room for
+#: the correlation between neighbouring steps)
+INSIDE_REQUIRED = 0.90
+#: the two-sided probability of the chi-square bounds
+BOUND_PROBABILITY = 0.95
+
+SeedLike = Union[int, Sequence[int]]
+
+
+# ---------------------------------------------------------------------------------------------
+# Scenario
+
+
+@dataclass
+class Scenario:
+    """One simulated run: inputs, truth and the measurements each step produced."""
+
+    dt: float
+    t: np.ndarray  # (steps,) time at the start of each step
+    u: np.ndarray  # (steps, nu)
+    x_true: np.ndarray  # (steps + 1, n); row 0 is the initial truth
+    #: per step, the (sensor, z) pairs reported after that step's motion, in model order
+    measurements: List[List[Tuple[str, np.ndarray]]]
+
+    @property
+    def steps(self) -> int:
+        return int(self.t.shape[0])
+
+
+def _noise_factor(C: np.ndarray) -> np.ndarray:
+    """A with A A' = C for a symmetric PSD C (eigen-decomposition: works when C is singular)."""
+    w, V = np.linalg.eigh(0.5 * (C + C.T))
+    return V * np.sqrt(np.clip(w, 0.0, None))
+
+
+def _resolve_every(spec: ModelSpec, every: Optional[Mapping[str, int]]) -> Dict[str, int]:
+    out = {s.name: s.every for s in spec.sensors}
+    for name, k in (every or {}).items():
+        if name not in out:
+            raise ModelError(f"--every names sensor {name!r}, which model {spec.name!r} does not have; "
+                             f"it has {sorted(out)}")
+        if isinstance(k, bool) or int(k) != k or int(k) < 1:
+            raise ModelError(f"--every {name}={k}: the interval must be a whole number of steps >= 1")
+        out[name] = int(k)
+    return out
+
+
+def _resolve_params(spec: ModelSpec, params: Optional[Mapping[str, float]], what: str) -> Dict[str, float]:
+    out = spec.param_defaults()
+    for name, value in (params or {}).items():
+        if name not in out:
+            raise ModelError(f"{what} names parameter {name!r}, which model {spec.name!r} does not have; "
+                             f"it has {sorted(out) or 'none'}")
+        v = float(value)
+        if not math.isfinite(v):
+            raise ModelError(f"{what} {name}={value}: the value must be a finite number")
+        out[name] = v
+    return out
+
+
+def _scenario_dt(spec: ModelSpec, dt: Optional[float]) -> float:
+    value = float(dt) if dt is not None else (spec.scenario_dt or 0.01)
+    if not (math.isfinite(value) and value > 0):
+        raise ModelError(f"the simulation step dt must be a number > 0, got {dt}")
+    return value
+
+
+def make_scenario(
+    spec: Any,
+    steps: int,
+    seed: SeedLike,
+    dt: Optional[float] = None,
+    every: Optional[Mapping[str, int]] = None,
+    params: Optional[Mapping[str, float]] = None,
+) -> Scenario:
+    """Simulate ``steps`` steps of the model's truth and its sensors.
+
+    ``x_true[0] ~ N(x0, P0)``; ``x_true[k+1] = f(x_true[k], u_k, dt) + w``, ``w ~ N(0, Q(dt))``;
+    sensor s reports after step k when ``(k + 1) % every_s == 0`` with ``z = h(x_true[k+1]) + v``,
+    ``v ~ N(0, R)``. ``u_k`` is the model's input profile at ``t_k = k dt`` (zeros without one).
+    ``params`` overrides the truth's parameters (the default is the model's defaults).
+    """
+    spec = as_spec(spec)
+    steps = int(steps)
+    if steps < 1:
+        raise ModelError(f"the number of steps must be >= 1, got {steps}")
+    dtv = _scenario_dt(spec, dt)
+    ev = _resolve_every(spec, every)
+    pvals = _resolve_params(spec, params, "the truth's parameters")
+    mf = model_functions(spec)
+    p = mf.param_tuple(pvals)
+    rng = np.random.default_rng(seed)
+    n, nu = spec.n, spec.nu
+    angles = np.array(spec.angle_states, dtype=bool)
+
+    t = np.arange(steps) * dtv
+    u = np.zeros((steps, nu))
+    if spec.input_profile is not None:
+        for k in range(steps):
+            uk = np.asarray(spec.input_profile(float(t[k])), dtype=float).reshape(-1)
+            if uk.shape != (nu,):
+                raise ModelError(f"scenario inputs({t[k]:g}) returned {uk.shape[0]} values; the model has {nu} inputs",
+                                 spec.where.get("model"))
+            u[k] = uk
+    if not np.all(np.isfinite(u)):
+        raise ModelError("the scenario's input profile returned a non-finite value", spec.where.get("model"))
+
+    Aq = _noise_factor(mf.Q(dtv, p))
+    Ar = {s.name: _noise_factor(mf.R(s.name, p)) for s in spec.sensors}
+    x = np.array(spec.x0) + _noise_factor(np.array(spec.P0)) @ rng.standard_normal(n)
+    x_true = np.empty((steps + 1, n))
+    x_true[0] = np.where(angles, wrap_angle(x), x)
+    meas: List[List[Tuple[str, np.ndarray]]] = []
+    with np.errstate(all="ignore"):
+        for k in range(steps):
+            x = mf.f(x_true[k], u[k], dtv, p) + Aq @ rng.standard_normal(n)
+            if angles.any():
+                x[angles] = wrap_angle(x[angles])
+            if not np.all(np.isfinite(x)):
+                raise ModelError(f"the simulated truth became non-finite at step {k + 1} (t = {t[k] + dtv:g}); "
+                                 "check the model's dynamics and the input profile")
+            x_true[k + 1] = x
+            row: List[Tuple[str, np.ndarray]] = []
+            for s in spec.sensors:
+                if (k + 1) % ev[s.name] == 0:
+                    z = mf.h(s.name, x, p) + Ar[s.name] @ rng.standard_normal(s.m)
+                    zang = np.array(s.angles, dtype=bool)
+                    if zang.any():
+                        z[zang] = wrap_angle(z[zang])
+                    row.append((s.name, z))
+            meas.append(row)
+    return Scenario(dt=dtv, t=t, u=u, x_true=x_true, measurements=meas)
+
+
+def run_filter(filt: Any, scenario: Scenario) -> Dict[str, Any]:
+    """Run a filter (reference or compiled) through a scenario from its current state.
+
+    Returns ``x`` (steps+1, n) and ``P`` (steps+1, n, n) after each step (row 0: before any),
+    ``predict_status`` (steps,), per sensor ``update_status`` (steps,; -1 where it did not
+    report) and ``nis`` (steps,; nan where no S was formed), and ``refusals``: {code: count}.
+    """
+    steps = scenario.steps
+    n = int(filt.n)
+    xs = np.empty((steps + 1, n))
+    Ps = np.empty((steps + 1, n, n))
+    xs[0], Ps[0] = filt.x, filt.P
+    pst = np.zeros(steps, dtype=int)
+    ust = {s: np.full(steps, -1, dtype=int) for s in filt.sensors}
+    nis = {s: np.full(steps, np.nan) for s in filt.sensors}
+    refusals: Dict[int, int] = {}
+    for k in range(steps):
+        st = int(filt.predict(scenario.u[k], scenario.dt))
+        pst[k] = st
+        if st:
+            refusals[st] = refusals.get(st, 0) + 1
+        for name, z in scenario.measurements[k]:
+            st = int(filt.update(name, z))
+            ust[name][k] = st
+            if st in (Status.OK, Status.GATED):
+                nis[name][k] = float(filt.nis)
+            if st:
+                refusals[st] = refusals.get(st, 0) + 1
+        xs[k + 1], Ps[k + 1] = filt.x, filt.P
+    return {"x": xs, "P": Ps, "predict_status": pst, "update_status": ust, "nis": nis, "refusals": refusals}
+
+
+# ---------------------------------------------------------------------------------------------
+# Monte Carlo
+
+
+@dataclass
+class StatSummary:
+    """A run-averaged statistic over the steps, against its chi-square bounds."""
+
+    per_step: np.ndarray  # run-averaged value at each step where it exists (nan elsewhere)
+    steps: np.ndarray  # the step numbers (1-based) the values belong to
+    dof: int  # degrees of freedom of one run's value (n for NEES, m for NIS)
+    lower: float
+    upper: float
+
+    @property
+    def valid(self) -> np.ndarray:
+        return np.isfinite(self.per_step)
+
+    @property
+    def mean(self) -> float:
+        v = self.per_step[self.valid]
+        return float(np.mean(v)) if v.size else math.nan
+
+    @property
+    def fraction_inside(self) -> float:
+        v = self.per_step[self.valid]
+        if not v.size:
+            return math.nan
+        return float(np.mean((v >= self.lower) & (v <= self.upper)))
+
+    @property
+    def fraction_above(self) -> float:
+        v = self.per_step[self.valid]
+        return float(np.mean(v > self.upper)) if v.size else math.nan
+
+    @property
+    def fraction_below(self) -> float:
+        v = self.per_step[self.valid]
+        return float(np.mean(v < self.lower)) if v.size else math.nan
+
+    @property
+    def verdict(self) -> str:
+        """"consistent", "overconfident" (above the upper bound: P or S too small, e.g. Q or R
+        too small), "too cautious" (below the lower bound: Q or R too large), or "no data"."""
+        if not np.any(self.valid):
+            return "no data"
+        if self.fraction_inside >= INSIDE_REQUIRED:
+            return "consistent"
+        return "overconfident" if self.fraction_above >= self.fraction_below else "too cautious"
+
+    def to_dict(self) -> Dict[str, Any]:
+        return {
+            "mean": _num(self.mean),
+            "lower": self.lower,
+            "upper": self.upper,
+            "fraction_inside": _num(self.fraction_inside),
+            "fraction_above": _num(self.fraction_above),
+            "fraction_below": _num(self.fraction_below),
+            "verdict": self.verdict,
+            "dof": self.dof,
+            "steps": [int(s) for s in self.steps],
+            "per_step": [_num(v) for v in self.per_step],
+        }
+
+
+def _num(v: float) -> Optional[float]:
+    """JSON has no nan: write null."""
+    return float(v) if math.isfinite(v) else None
+
+
+def chi2_bounds(runs: int, dof: int) -> Tuple[float, float]:
+    """Two-sided 95% bounds of a run-averaged chi-square statistic: the sum over ``runs`` runs
+    is chi-square with ``runs * dof`` degrees of freedom (Bar-Shalom et al. 2001, 5.4.2)."""
+    from scipy.stats import chi2
+
+    a = (1.0 - BOUND_PROBABILITY) / 2.0
+    lo, hi = chi2.ppf([a, 1.0 - a], runs * dof) / runs
+    return float(lo), float(hi)
+
+
+@dataclass
+class MonteCarloResult:
+    """What :func:`monte_carlo` measured."""
+
+    model: str
+    filter: str
+    implementation: str  # "reference" or "c-double" / "c-float"
+    runs: int
+    steps: int
+    seed: int
+    dt: float
+    states: List[str]
+    units: List[Optional[str]]
+    nees: StatSummary
+    nis: Dict[str, StatSummary]
+    rmse: Dict[str, float]
+    refusals: Dict[str, int]  # status name -> count over all runs
+    filter_params: Dict[str, float]  # all the filter's parameters
+    set_params: Dict[str, float]  # the ones changed from the model's defaults (the truth's)
+    seconds: float
+    #: run 0 in full for plotting: t, x_true, x, P
+    run0: Dict[str, np.ndarray] = field(default_factory=dict, repr=False)
+
+    @property
+    def consistent(self) -> bool:
+        """NEES and every NIS inside their bounds at INSIDE_REQUIRED of the steps or more."""
+        # a sensor that never reported (every > steps) has nothing to judge
+        return self.nees.verdict == "consistent" and all(
+            s.verdict in ("consistent", "no data") for s in self.nis.values())
+
+    def to_dict(self) -> Dict[str, Any]:
+        """The JSON document: the contract's fields plus per-step values and verdicts."""
+        return {
+            "model": self.model,
+            "filter": self.filter,
+            "implementation": self.implementation,
+            "runs": self.runs,
+            "steps": self.steps,
+            "seed": self.seed,
+            "dt": self.dt,
+            "filter_params": dict(self.filter_params),
+            "set_params": dict(self.set_params),
+            "nees": self.nees.to_dict(),
+            "nis": {k: v.to_dict() for k, v in self.nis.items()},
+            "rmse": {k: _num(v) for k, v in self.rmse.items()},
+            "refusals": dict(self.refusals),
+            "consistent": bool(self.consistent),
+            "seconds": self.seconds,
+        }
+
+    def to_json(self) -> str:
+        """:meth:`to_dict` as a JSON string."""
+        return json.dumps(self.to_dict(), indent=2)
+
+
+# The worker context: set in the parent before the pool forks, so nothing unpicklable (sympy
+# expressions, the model's input-profile lambda, a compiled cffi module) has to be sent.
+_CTX: Dict[str, Any] = {}
+
+
+def _make_filter(ctx: Dict[str, Any]) -> Any:
+    spec: ModelSpec = ctx["spec"]
+    ukf_opts = {"alpha": ctx["alpha"], "beta": ctx["beta"], "kappa": ctx["kappa"]} if ctx["filter"] == "ukf" else {}
+    if ctx["use_reference"]:
+        mf = model_functions(spec)
+        if ctx["filter"] == "ekf":
+            filt: Any = ReferenceEKF(spec, functions=mf)
+        else:
+            filt = ReferenceUKF(spec, functions=mf, **ukf_opts)
+    else:
+        from .build import build  # the build module caches the compiled product
+
+        filt = build(spec, filter=ctx["filter"], precision=ctx["precision"], **ukf_opts)
+    for name, value in ctx["set_params"].items():
+        filt.set_param(name, value)
+    return filt
+
+
+def _one_run(r: int) -> Dict[str, Any]:
+    ctx = _CTX
+    spec: ModelSpec = ctx["spec"]
+    sc = make_scenario(spec, ctx["steps"], seed=[ctx["seed"], r], dt=ctx["dt"], every=ctx["every"])
+    filt = _make_filter(ctx)
+    out = run_filter(filt, sc)
+    angles = np.array(spec.angle_states, dtype=bool)
+    err = out["x"][1:] - sc.x_true[1:]
+    if angles.any():
+        err[:, angles] = wrap_angle(err[:, angles])
+    nees = np.full(sc.steps, np.nan)
+    for k in range(sc.steps):
+        P = out["P"][k + 1]
+        try:
+            c = np.linalg.cholesky(0.5 * (P + P.T))
+            v = np.linalg.solve(c, err[k])
+            nees[k] = float(v @ v)
+        except np.linalg.LinAlgError:
+            pass  # a P that is not positive definite has no NEES; the step is left out
+    res: Dict[str, Any] = {"nees": nees, "sq_err": err ** 2, "nis": out["nis"], "refusals": out["refusals"]}
+    if r == 0:
+        res["run0"] = {"t": np.arange(sc.steps + 1) * sc.dt, "x_true": sc.x_true, "x": out["x"], "P": out["P"]}
+    return res
+
+
+def monte_carlo(
+    spec: Any,
+    filter: str = "ekf",
+    runs: int = 50,
+    steps: int = 200,
+    seed: int = 0,
+    *,
+    use_reference: bool = False,
+    set_params: Optional[Mapping[str, float]] = None,
+    precision: str = "double",
+    alpha: float = 1.0,
+    beta: float = 2.0,
+    kappa: float = 0.0,
+    every: Optional[Mapping[str, int]] = None,
+    dt: Optional[float] = None,
+    workers: Optional[int] = None,
+    progress: Optional[bool] = None,
+) -> MonteCarloResult:
+    """Run the filter on ``runs`` independent simulations and test its consistency.
+
+    The filter under test is the compiled C (``estgen.build``) unless ``use_reference``.
+    ``set_params`` changes the filter's parameters; the simulated truth keeps the defaults.
+    Runs are spread over ``workers`` processes (default: all cores; 1 runs in this process).
+    ``progress``: show progress on stderr (default: when stderr is a terminal).
+    """
+    started = time.perf_counter()
+    spec = as_spec(spec)
+    check_filter_support(spec, filter)
+    if filter == "ukf":
+        check_ukf_parameters(spec.n, alpha, beta, kappa)
+    if precision not in ("float", "double"):
+        raise ModelError(f"unknown precision {precision!r}; use 'float' or 'double'")
+    runs, steps = int(runs), int(steps)
+    if runs < 1 or steps < 1:
+        raise ModelError(f"--runs and --steps must be >= 1, got {runs} and {steps}")
+    if int(seed) < 0:
+        raise ModelError(f"--seed must be >= 0, got {seed}")
+    fparams = _resolve_params(spec, set_params, "--set")
+    changed = {k: v for k, v in fparams.items() if k in (set_params or {})}
+    ev = _resolve_every(spec, every)
+    dtv = _scenario_dt(spec, dt)
+    ctx = {"spec": spec, "filter": filter, "use_reference": bool(use_reference), "precision": precision,
+           "alpha": alpha, "beta": beta, "kappa": kappa, "set_params": changed, "steps": steps,
+           "seed": int(seed), "dt": dtv, "every": ev}
+    _make_filter(ctx)  # build (and cache) the C once, and fail here rather than in a worker
+    model_functions(spec)  # lambdify before forking so workers inherit it
+
+    nworkers = min(runs, int(workers) if workers else (os.cpu_count() or 1))
+    show = sys.stderr.isatty() if progress is None else bool(progress)
+    results: List[Optional[Dict[str, Any]]] = [None] * runs
+    _CTX.clear()
+    _CTX.update(ctx)
+    try:
+        if nworkers <= 1 or "fork" not in multiprocessing.get_all_start_methods():
+            for r in range(runs):
+                results[r] = _one_run(r)
+                _progress(show, r + 1, runs, started)
+        else:
+            with multiprocessing.get_context("fork").Pool(nworkers) as pool:
+                for done, (r, res) in enumerate(pool.imap_unordered(_indexed_run, range(runs)), start=1):
+                    results[r] = res
+                    _progress(show, done, runs, started)
+    finally:
+        _CTX.clear()
+        if show:
+            sys.stderr.write("\n")
+            sys.stderr.flush()
+    done_results = [res for res in results if res is not None]
+    return _summarize(spec, filter, use_reference, precision, runs, steps, int(seed), dtv, fparams, changed,
+                      done_results, time.perf_counter() - started)
+
+
+def _indexed_run(r: int) -> Tuple[int, Dict[str, Any]]:
+    return r, _one_run(r)
+
+
+def _progress(show: bool, done: int, total: int, started: float) -> None:
+    if not show:
+        return
+    el = time.perf_counter() - started
+    eta = el / done * (total - done)
+    sys.stderr.write(f"\rsimulate: run {done}/{total}  {el:.1f} s elapsed, about {eta:.1f} s left ")
+    sys.stderr.flush()
+
+
+def _summarize(spec: ModelSpec, filter: str, use_reference: bool, precision: str, runs: int, steps: int,
+               seed: int, dt: float, fparams: Dict[str, float], changed: Dict[str, float], results: List[Dict[str, Any]],
+               seconds: float) -> MonteCarloResult:
+    step_no = np.arange(1, steps + 1)
+    nees_runs = np.array([r["nees"] for r in results])
+    with np.errstate(all="ignore"):
+        # a step where some run has no NEES (refused P) is averaged over the runs that have one
+        nees_mean = _nanmean_rows(nees_runs)
+    lo, hi = chi2_bounds(runs, spec.n)
+    nees = StatSummary(nees_mean, step_no, spec.n, lo, hi)
+    nis: Dict[str, StatSummary] = {}
+    for s in spec.sensors:
+        vals = np.array([r["nis"][s.name] for r in results])
+        reported = np.any(np.isfinite(vals), axis=0)
+        lo, hi = chi2_bounds(runs, s.m)
+        nis[s.name] = StatSummary(_nanmean_rows(vals[:, reported]), step_no[reported], s.m, lo, hi)
+    sq = np.array([r["sq_err"] for r in results])  # (runs, steps, n)
+    rmse = {st.name: float(np.sqrt(np.mean(sq[:, :, i]))) for i, st in enumerate(spec.states)}
+    refusals: Dict[str, int] = {}
+    for r in results:
+        for code, count in r["refusals"].items():
+            key = Status(code).name
+            refusals[key] = refusals.get(key, 0) + count
+    impl = "reference" if use_reference else f"c-{precision}"
+    run0 = next((r["run0"] for r in results if "run0" in r), {})
+    return MonteCarloResult(
+        model=spec.name, filter=filter, implementation=impl, runs=runs, steps=steps, seed=seed, dt=dt,
+        states=[s.name for s in spec.states], units=[s.unit for s in spec.states], nees=nees, nis=nis,
+        rmse=rmse, refusals=refusals, filter_params=fparams, set_params=changed, seconds=seconds, run0=run0,
+    )
+
+
+def _nanmean_rows(vals: np.ndarray) -> np.ndarray:
+    """Mean over runs (axis 0) ignoring nan; nan where no run has a value."""
+    if vals.size == 0:
+        return np.zeros(vals.shape[1:])
+    cnt = np.sum(np.isfinite(vals), axis=0)
+    tot = np.nansum(vals, axis=0)
+    out = np.full(vals.shape[1:], np.nan)
+    np.divide(tot, cnt, out=out, where=cnt > 0)
+    return out
+
+
+# ---------------------------------------------------------------------------------------------
+# Reporting
+
+
+def format_summary(res: MonteCarloResult) -> str:
+    """A readable summary for the terminal."""
+    lines = [
+        f"{res.model}: {res.filter.upper()} ({res.implementation}), {res.runs} runs x {res.steps} steps, "
+        f"dt = {res.dt:g} s, seed {res.seed}, {res.seconds:.1f} s",
+    ]
+    if res.set_params:
+        lines.append("filter parameters changed (the truth keeps the defaults): "
+                     + ", ".join(f"{k} = {v:g}" for k, v in res.set_params.items()))
+    lines.append("")
+    lines.append("RMSE per state")
+    width = max(len(s) for s in res.states)
+    for name, unit in zip(res.states, res.units):
+        lines.append(f"  {name:<{width}}  {res.rmse[name]:.4g}" + (f" {unit}" if unit else ""))
+    lines.append("")
+    lines.append("run-averaged statistic      mean      95% bounds            inside  verdict")
+    rows = [("NEES", res.nees)] + [(f"NIS {k}", v) for k, v in res.nis.items()]
+    for label, st in rows:
+        lines.append(f"  {label:<24} {st.mean:8.3f}  [{st.lower:7.3f}, {st.upper:7.3f}]  "
+                     f"{100 * st.fraction_inside:5.1f}%  {st.verdict}")
+    lines.append(f"  (dof: NEES {res.nees.dof}" + "".join(f", {k} {v.dof}" for k, v in res.nis.items())
+                 + f"; a statistic passes when inside at {100 * INSIDE_REQUIRED:.0f}% of steps or more)")
+    if res.refusals:
+        lines.append("")
+        lines.append("refused calls: " + ", ".join(f"{k} x{v}" for k, v in sorted(res.refusals.items())))
+    lines.append("")
+    lines.append("overall: " + ("consistent" if res.consistent else "NOT consistent"))
+    return "\n".join(lines)
+
+
+def plot_result(res: MonteCarloResult, path: str) -> None:
+    """Write a PNG: run 0's estimate and truth with a +-3 sigma band per state, and the NEES and
+    each NIS against their bounds. Needs matplotlib (the ``plot`` extra)."""
+    try:
+        import matplotlib
+
+        matplotlib.use("Agg")
+        import matplotlib.pyplot as plt
+    except ImportError:
+        raise ModelError("--plot needs matplotlib; install it with: pip install 'estgen[plot]'") from None
+    r0 = res.run0
+    n = len(res.states)
+    nrows = n + 1 + len(res.nis)
+    fig, axes = plt.subplots(nrows, 1, figsize=(9, 2.2 * nrows), squeeze=False)
+    axes = axes[:, 0]
+    t = r0["t"]
+    for i, (name, unit) in enumerate(zip(res.states, res.units)):
+        ax = axes[i]
+        est = r0["x"][:, i]
+        sig = np.sqrt(np.clip(r0["P"][:, i, i], 0.0, None))
+        ax.fill_between(t, est - 3 * sig, est + 3 * sig, color="tab:blue", alpha=0.2, label="estimate ±3σ")
+        ax.plot(t, r0["x_true"][:, i], color="black", lw=1.0, label="truth")
+        ax.plot(t, est, color="tab:blue", lw=1.0, label="estimate")
+        ax.set_ylabel(f"{name} [{unit}]" if unit else name)
+        ax.set_xlabel("time [s]")
+        if i == 0:
+            ax.set_title(f"{res.model} {res.filter.upper()}: run 0 estimate and truth")
+            ax.legend(loc="upper right", fontsize="small")
+    stats = [("NEES", res.nees)] + [(f"NIS {k}", v) for k, v in res.nis.items()]
+    for ax, (label, st) in zip(axes[n:], stats):
+        ts = st.steps * res.dt
+        ax.plot(ts, st.per_step, lw=1.0, color="tab:green", label=f"run-averaged {label}")
+        ax.axhline(st.lower, color="tab:red", ls="--", lw=0.8, label="95% bounds")
+        ax.axhline(st.upper, color="tab:red", ls="--", lw=0.8)
+        ax.set_title(f"{label} over {res.runs} runs: {100 * st.fraction_inside:.0f}% inside, {st.verdict}")
+        ax.set_ylabel(label)
+        ax.set_xlabel("time [s]")
+        ax.legend(loc="upper right", fontsize="small")
+    fig.tight_layout()
+    fig.savefig(path, dpi=90)
+    plt.close(fig)
+
+
+# ---------------------------------------------------------------------------------------------
+# Command line
+
+
+def add_arguments(parser: argparse.ArgumentParser) -> None:
+    """Add the ``simulate`` options to a (sub)parser."""
+    parser.add_argument("model", metavar="MODEL", help="the model file")
+    parser.add_argument("--filter", choices=("ekf", "ukf"), default="ekf")
+    parser.add_argument("--precision", choices=("float", "double"), default="double",
+                        help="precision of the compiled C under test (default double)")
+    parser.add_argument("--runs", type=int, default=50, help="Monte Carlo runs (default 50)")
+    parser.add_argument("--steps", type=int, default=200, help="steps per run (default 200)")
+    parser.add_argument("--seed", type=int, default=0, help="random seed (default 0)")
+    parser.add_argument("--set", action="append", default=[], metavar="NAME=VALUE",
+                        help="change a parameter of the filter (the truth keeps the default); repeatable")
+    parser.add_argument("--every", action="append", default=[], metavar="SENSOR=N",
+                        help="the sensor reports every N-th step (overrides the model); repeatable")
+    parser.add_argument("--dt", type=float, default=None, help="simulation step in seconds")
+    parser.add_argument("--reference", action="store_true", help="test the numpy reference instead of the C")
+    parser.add_argument("--alpha", type=float, default=1.0, help="UKF sigma-point spread (default 1)")
+    parser.add_argument("--beta", type=float, default=2.0, help="UKF prior-distribution term (default 2)")
+    parser.add_argument("--kappa", type=float, default=0.0, help="UKF secondary scaling (default 0)")
+    parser.add_argument("--workers", type=int, default=None, help="processes (default: all cores)")
+    parser.add_argument("--json", metavar="FILE", default=None, help="write the results as JSON")
+    parser.add_argument("--plot", metavar="FILE.png", default=None, help="write a plot (needs matplotlib)")
+    parser.add_argument("--quiet", action="store_true", help="print nothing but errors")
+    parser.add_argument("--progress", action="store_true", help="show progress even when stderr is not a terminal")
+
+
+def _pairs(items: Sequence[str], option: str, convert: Callable[[str], Any]) -> Dict[str, Any]:
+    out: Dict[str, Any] = {}
+    for item in items:
+        name, sep, value = item.partition("=")
+        if not sep or not name.strip():
+            raise ModelError(f"{option} {item!r}: write it as NAME=VALUE")
+        try:
+            out[name.strip()] = convert(value.strip())
+        except ValueError:
+            raise ModelError(f"{option} {item!r}: {value!r} is not a valid value") from None
+    return out
+
+
+def run(args: argparse.Namespace) -> int:
+    """Run ``estgen simulate`` with parsed ``args``; returns 0 once it ran (consistent or not).
+    Bad input raises :class:`ModelError` for the CLI to print (exit 2)."""
+    spec = as_spec(args.model)
+    res = monte_carlo(
+        spec,
+        filter=args.filter,
+        runs=args.runs,
+        steps=args.steps,
+        seed=args.seed,
+        use_reference=args.reference,
+        set_params=_pairs(args.set, "--set", float),
+        precision=args.precision,
+        alpha=args.alpha,
+        beta=args.beta,
+        kappa=args.kappa,
+        every=_pairs(args.every, "--every", int),
+        dt=args.dt,
+        workers=args.workers,
+        progress=True if getattr(args, "progress", False) else (None if not args.quiet else False),
+    )
+    if args.json:
+        with open(args.json, "w", encoding="utf-8") as fh:
+            fh.write(res.to_json() + "\n")
+    if args.plot:
+        plot_result(res, args.plot)
+    if not args.quiet:
+        out: TextIO = sys.stdout
+        out.write(format_summary(res) + "\n")
+    return 0
