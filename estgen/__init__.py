@@ -16,7 +16,12 @@ from .errors import GenerationError, ModelError
 from .model import Model, ModelSpec, load_model, validate
 from .status import Status
 
-__version__ = "0.1.0"
+# The submodules estgen.build and estgen.reference share their names with the functions below.
+# Importing them first means the function definitions that follow win the package attribute.
+from . import build as _build_module  # noqa: E402
+from . import reference as _reference_module  # noqa: E402
+
+from ._version import __version__  # noqa: E402
 
 __all__ = [
     "Model",
@@ -35,13 +40,9 @@ __all__ = [
 def build(model: Any, filter: str = "ekf", precision: str = "double", **options: Any) -> Any:
     """Generate C for ``model``, compile it through cffi and return a filter object with the
     reference's interface (predict, update, x, P, set_state). See :mod:`estgen.build`."""
-    from .build import build as _build
-
-    return _build(model, filter=filter, precision=precision, **options)
+    return _build_module.build(model, filter=filter, precision=precision, **options)
 
 
 def reference(model: Any, filter: str = "ekf", **options: Any) -> Any:
     """The plain numpy reference filter for ``model``. See :mod:`estgen.reference`."""
-    from .reference import reference as _reference
-
-    return _reference(model, filter=filter, **options)
+    return _reference_module.reference(model, filter=filter, **options)

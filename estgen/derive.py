@@ -1,0 +1,366 @@
+"""Stage 2: symbolic derivation.
+
+From a :class:`~estgen.model.ModelSpec` this builds, for each generated C function, a straight-line
+list of :class:`Stmt` whose expressions are sympy expressions over symbols already named as the C
+will name them (``x[0]``, ``P[3]``, ``par->area``, ``t12``). Jacobians come from sympy; the
+covariance algebra is built entry by entry from symbolic matrices, so structural zeros drop out
+and only the non-trivial products are emitted. Stage 3 (:mod:`estgen.emit`) prints these through
+sympy's C99 printer into the templates.
+
+Packed storage: the covariance P is kept as its upper triangle, row by row. Entry (i, j) with
+i <= j sits at ``i*n - i*(i-1)/2 + (j - i)``.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Dict, Iterable, List, Optional, Sequence, Tuple
+
+import sympy as sp
+
+from .model import ModelSpec, SensorSpec
+
+__all__ = [
+    "Stmt",
+    "Names",
+    "EkfPredictCode",
+    "EkfUpdateCode",
+    "EkfCode",
+    "packed_index",
+    "packed_size",
+    "derive_ekf",
+    "model_block",
+    "c_names",
+]
+
+
+def packed_index(i: int, j: int, n: int) -> int:
+    """Index of entry (i, j) of a symmetric n x n matrix in packed upper-triangular storage."""
+    if i > j:
+        i, j = j, i
+    return i * n - i * (i - 1) // 2 + (j - i)
+
+
+def packed_size(n: int) -> int:
+    return n * (n + 1) // 2
+
+
+@dataclass(frozen=True)
+class Stmt:
+    """One line of straight-line C.
+
+    kind:
+      ``"decl"``   ``const real <target> = <expr>;``
+      ``"assign"`` ``<target> = <expr>;``
+      ``"check"``  refuse unless ``<expr>`` is finite and > 0 (a pivot or innovation variance)
+      ``"wrap"``   ``<target> = wrap(<target>)`` for an angle
+    """
+
+    kind: str
+    target: str
+    expr: sp.Expr
+
+
+@dataclass(frozen=True)
+class Names:
+    """Maps the model's symbols to C-named symbols for one function."""
+
+    subs: Dict[sp.Symbol, sp.Symbol]
+    uses_par: bool = False
+
+
+def c_names(spec: ModelSpec, x_array: str = "x") -> Dict[sp.Symbol, sp.Symbol]:
+    """User symbols -> symbols printed as C lvalues (states read from ``x_array``)."""
+    m: Dict[sp.Symbol, sp.Symbol] = {}
+    for i, s in enumerate(spec.states):
+        m[s.symbol] = sp.Symbol(f"{x_array}[{i}]")
+    for i, s in enumerate(spec.inputs):
+        m[s.symbol] = sp.Symbol(f"u[{i}]")
+    for p in spec.params:
+        m[p.symbol] = sp.Symbol(f"par->{p.name}")
+    m[spec.dt] = sp.Symbol("dt")
+    return m
+
+
+def _is_trivial(e: sp.Expr) -> bool:
+    """A number or a lone symbol: used in place, no temporary needed."""
+    return e.is_Number or e.is_Symbol or (e.is_Mul and len(e.args) == 2 and e.args[0] == -1 and e.args[1].is_Symbol)
+
+
+def model_block(
+    outputs: Sequence[Tuple[str, str, sp.Expr]], prefix: str = "t"
+) -> Tuple[List[Stmt], Dict[str, sp.Expr]]:
+    """Share common subexpressions among model expressions (``sympy.cse``).
+
+    ``outputs`` holds (kind, target, expr) with kind "assign" (written to an array element) or
+    "value" (a named value the covariance algebra uses: emitted as a const local when it is not
+    trivial, else substituted in place). Returns the statements and, for each "value" target, the
+    expression later code must use for it (a number, a symbol, or the new local's symbol).
+    """
+    exprs = [e for _, _, e in outputs]
+    if exprs:
+        repl, reduced = sp.cse(exprs, symbols=sp.numbered_symbols(prefix), order="canonical")
+    else:
+        repl, reduced = [], []
+    stmts: List[Stmt] = [Stmt("decl", str(sym), ex) for sym, ex in repl]
+    values: Dict[str, sp.Expr] = {}
+    for (kind, target, _), ex in zip(outputs, reduced):
+        if kind == "assign":
+            stmts.append(Stmt("assign", target, ex))
+        elif _is_trivial(ex):
+            values[target] = ex
+        else:
+            stmts.append(Stmt("decl", target, ex))
+            values[target] = sp.Symbol(target)
+    return stmts, values
+
+
+def _uses_params(stmts: Iterable[Stmt]) -> bool:
+    return any(str(s).startswith("par->") for st in stmts for s in st.expr.free_symbols)
+
+
+def _sym_P(n: int, name: str) -> sp.Matrix:
+    return sp.Matrix(n, n, lambda i, j: sp.Symbol(f"{name}[{packed_index(i, j, n)}]"))
+
+
+@dataclass
+class EkfPredictCode:
+    stmts: List[Stmt]
+    uses_par: bool
+    uses_u: bool
+
+
+@dataclass
+class EkfUpdateCode:
+    sensor: SensorSpec
+    sequential: bool
+    stmts: List[Stmt]
+    uses_par: bool
+    m: int
+    # sizes of scratch arrays the template declares
+    w_size: int
+    k_size: int
+
+
+@dataclass
+class EkfCode:
+    spec: ModelSpec
+    predict: EkfPredictCode
+    updates: List[EkfUpdateCode] = field(default_factory=list)
+
+
+def _jacobian(vec: sp.Matrix, xs: List[sp.Symbol]) -> sp.Matrix:
+    return vec.jacobian(xs)
+
+
+def derive_ekf_predict(spec: ModelSpec) -> EkfPredictCode:
+    """x' = f(x, u, dt); P' = F P F' + Q with F = df/dx, in packed storage.
+
+    The product is formed as A = F P, then the upper triangle of A F' + Q, so each product only
+    touches F's structurally non-zero entries.
+    """
+    n = spec.n
+    xs = spec.x_syms
+    names = c_names(spec, "x")
+    f = spec.f
+    F = _jacobian(f, xs)
+    outputs: List[Tuple[str, str, sp.Expr]] = []
+    for i in range(n):
+        outputs.append(("assign", f"xn[{i}]", f[i].xreplace(names)))
+    const_F: Dict[Tuple[int, int], sp.Expr] = {}
+    for i in range(n):
+        for j in range(n):
+            e = F[i, j]
+            if e.is_Number:
+                const_F[(i, j)] = e
+            else:
+                outputs.append(("value", f"F{i}_{j}", e.xreplace(names)))
+    const_Q: Dict[Tuple[int, int], sp.Expr] = {}
+    for i in range(n):
+        for j in range(i, n):
+            e = spec.Q[i, j]
+            if e.is_Number:
+                const_Q[(i, j)] = e
+            else:
+                outputs.append(("value", f"Q{i}_{j}", e.xreplace(names)))
+    stmts, values = model_block(outputs)
+    Fm = sp.Matrix(n, n, lambda i, j: const_F.get((i, j), values.get(f"F{i}_{j}", sp.S.Zero)))
+    Qm = {(i, j): const_Q.get((i, j), values.get(f"Q{i}_{j}", sp.S.Zero)) for i in range(n) for j in range(i, n)}
+    P = _sym_P(n, "P")
+    A = Fm * P
+    Aref = sp.zeros(n, n)
+    for i in range(n):
+        for j in range(n):
+            e = A[i, j]
+            if _is_trivial(e):
+                Aref[i, j] = e
+            else:
+                name = f"A{i}_{j}"
+                stmts.append(Stmt("decl", name, e))
+                Aref[i, j] = sp.Symbol(name)
+    for i in range(n):
+        for j in range(i, n):
+            e = sum((Aref[i, k] * Fm[j, k] for k in range(n) if Fm[j, k] != 0), sp.S.Zero) + Qm[(i, j)]
+            stmts.append(Stmt("assign", f"Pn[{packed_index(i, j, n)}]", e))
+    for i, st in enumerate(spec.states):
+        if st.angle:
+            stmts.append(Stmt("wrap", f"xn[{i}]", sp.Symbol(f"xn[{i}]")))
+    uses_u = any(str(s).startswith("u[") for st in stmts for s in st.expr.free_symbols)
+    return EkfPredictCode(stmts, _uses_params(stmts), uses_u)
+
+
+def _h_block(spec: SensorSpec, mspec: ModelSpec) -> Tuple[List[Stmt], List[sp.Expr], sp.Matrix, Dict[Tuple[int, int], sp.Expr]]:
+    """h(x), H = dh/dx and R with shared subexpressions; h goes to hz[i]."""
+    n, m = mspec.n, spec.m
+    names = c_names(mspec, "x")
+    H = _jacobian(spec.h, mspec.x_syms)
+    outputs: List[Tuple[str, str, sp.Expr]] = []
+    for i in range(m):
+        outputs.append(("value", f"hz{i}", spec.h[i].xreplace(names)))
+    for i in range(m):
+        for j in range(n):
+            if not H[i, j].is_Number:
+                outputs.append(("value", f"H{i}_{j}", H[i, j].xreplace(names)))
+    for i in range(m):
+        for j in range(i, m):
+            if not spec.R[i, j].is_Number:
+                outputs.append(("value", f"R{i}_{j}", spec.R[i, j].xreplace(names)))
+    stmts, values = model_block(outputs)
+    hv = [values.get(f"hz{i}", sp.S.Zero) for i in range(m)]
+    Hm = sp.Matrix(m, n, lambda i, j: H[i, j] if H[i, j].is_Number else values[f"H{i}_{j}"])
+    Rm = {(i, j): (spec.R[i, j] if spec.R[i, j].is_Number else values[f"R{i}_{j}"]) for i in range(m) for j in range(i, m)}
+    return stmts, hv, Hm, Rm
+
+
+def _residuals(spec: SensorSpec, hv: List[sp.Expr]) -> List[Stmt]:
+    out: List[Stmt] = []
+    for i in range(spec.m):
+        out.append(Stmt("assign", f"y[{i}]", sp.Symbol(f"z[{i}]") - hv[i]))
+        if spec.angles[i]:
+            out.append(Stmt("wrap", f"y[{i}]", sp.Symbol(f"y[{i}]")))
+    return out
+
+
+def derive_ekf_update(spec: SensorSpec, mspec: ModelSpec) -> EkfUpdateCode:
+    """Measurement update in scratch copies xs, Ps of x and P (committed by the template).
+
+    A diagonal R is processed one component at a time (sequential scalar updates): exactly the
+    block update in exact arithmetic, with no matrix inverse and no m x m factorization. The
+    residual of a later component is corrected for the state change of earlier ones,
+    r_i = y_i - H_i (xs - x), because h and H stay linearized at the prior. A full R uses the
+    block form with an unrolled Cholesky factorization of S.
+
+    Either way P is updated in the Joseph form, written for packed storage as
+    P + K V' - W K' with W = P H', V = K S - W, which equals (I-KH) P (I-KH)' + K R K' for any
+    gain K, so rounding in K does not cost symmetry or definiteness.
+    """
+    n, m = mspec.n, spec.m
+    stmts, hv, Hm, Rm = _h_block(spec, mspec)
+    stmts += _residuals(spec, hv)
+    Ps = _sym_P(n, "Ps")
+    X = [sp.Symbol(f"x[{i}]") for i in range(n)]
+    XS = [sp.Symbol(f"xs[{i}]") for i in range(n)]
+    if spec.diagonal:
+        for c in range(m):
+            Hrow = [Hm[c, j] for j in range(n)]
+            nz = [j for j in range(n) if Hrow[j] != 0]
+            for k in range(n):
+                stmts.append(Stmt("assign", f"W[{k}]", sum((Ps[k, j] * Hrow[j] for j in nz), sp.S.Zero)))
+            W = [sp.Symbol(f"W[{k}]") for k in range(n)]
+            s_expr = sum((Hrow[j] * W[j] for j in nz), sp.S.Zero) + Rm[(c, c)]
+            stmts.append(Stmt("decl", f"s{c}", s_expr))
+            stmts.append(Stmt("check", f"s{c}", sp.Symbol(f"s{c}")))
+            s = sp.Symbol(f"s{c}")
+            stmts.append(Stmt("decl", f"is{c}", 1 / s))
+            isv = sp.Symbol(f"is{c}")
+            r_expr = sp.Symbol(f"y[{c}]")
+            if c > 0:
+                r_expr = r_expr - sum((Hrow[j] * (XS[j] - X[j]) for j in nz), sp.S.Zero)
+            stmts.append(Stmt("decl", f"r{c}", r_expr))
+            r = sp.Symbol(f"r{c}")
+            stmts.append(Stmt("assign", "nis", sp.Symbol("nis") + r * r * isv))
+            for k in range(n):
+                stmts.append(Stmt("assign", f"K[{k}]", W[k] * isv))
+            K = [sp.Symbol(f"K[{k}]") for k in range(n)]
+            for k in range(n):
+                stmts.append(Stmt("assign", f"V[{k}]", s * K[k] - W[k]))
+            V = [sp.Symbol(f"V[{k}]") for k in range(n)]
+            for k in range(n):
+                stmts.append(Stmt("assign", f"xs[{k}]", XS[k] + K[k] * r))
+            for i in range(n):
+                for j in range(i, n):
+                    stmts.append(Stmt("assign", f"Ps[{packed_index(i, j, n)}]", Ps[i, j] + K[i] * V[j] - W[i] * K[j]))
+        return EkfUpdateCode(spec, True, stmts, _uses_params(stmts), m, n, n)
+
+    # block update with a full R
+    Wm = sp.Matrix(n, m, lambda k, c: sp.Symbol(f"W[{k * m + c}]"))
+    for k in range(n):
+        for c in range(m):
+            nz = [j for j in range(n) if Hm[c, j] != 0]
+            stmts.append(Stmt("assign", f"W[{k * m + c}]", sum((Ps[k, j] * Hm[c, j] for j in nz), sp.S.Zero)))
+    S = {}
+    for a in range(m):
+        for b in range(a, m):
+            nz = [j for j in range(n) if Hm[a, j] != 0]
+            e = sum((Hm[a, j] * Wm[j, b] for j in nz), sp.S.Zero) + Rm[(a, b)]
+            stmts.append(Stmt("decl", f"S{a}_{b}", e))
+            S[(a, b)] = S[(b, a)] = sp.Symbol(f"S{a}_{b}")
+    # Cholesky S = L L' (lower), unrolled
+    L: Dict[Tuple[int, int], sp.Expr] = {}
+    iL: Dict[int, sp.Symbol] = {}
+    for j in range(m):
+        d = S[(j, j)] - sum((L[(j, k)] ** 2 for k in range(j)), sp.S.Zero)
+        stmts.append(Stmt("decl", f"D{j}", d))
+        stmts.append(Stmt("check", f"D{j}", sp.Symbol(f"D{j}")))
+        stmts.append(Stmt("decl", f"L{j}_{j}", sp.sqrt(sp.Symbol(f"D{j}"))))
+        L[(j, j)] = sp.Symbol(f"L{j}_{j}")
+        stmts.append(Stmt("decl", f"iL{j}", 1 / L[(j, j)]))
+        iL[j] = sp.Symbol(f"iL{j}")
+        for i in range(j + 1, m):
+            e = (S[(i, j)] - sum((L[(i, k)] * L[(j, k)] for k in range(j)), sp.S.Zero)) * iL[j]
+            stmts.append(Stmt("decl", f"L{i}_{j}", e))
+            L[(i, j)] = sp.Symbol(f"L{i}_{j}")
+    # K = W S^-1: for each row k solve L a = W_k, then L' K_k = a
+    Km = sp.Matrix(n, m, lambda k, c: sp.Symbol(f"K[{k * m + c}]"))
+    for k in range(n):
+        a: List[sp.Symbol] = []
+        for i in range(m):
+            e = (Wm[k, i] - sum((L[(i, j)] * a[j] for j in range(i)), sp.S.Zero)) * iL[i]
+            stmts.append(Stmt("decl", f"a{k}_{i}", e))
+            a.append(sp.Symbol(f"a{k}_{i}"))
+        for i in reversed(range(m)):
+            e = (a[i] - sum((L[(j, i)] * Km[k, j] for j in range(i + 1, m)), sp.S.Zero)) * iL[i]
+            stmts.append(Stmt("assign", f"K[{k * m + i}]", e))
+    # nis = |L^-1 y|^2
+    b: List[sp.Symbol] = []
+    for i in range(m):
+        e = (sp.Symbol(f"y[{i}]") - sum((L[(i, j)] * b[j] for j in range(i)), sp.S.Zero)) * iL[i]
+        stmts.append(Stmt("decl", f"b{i}", e))
+        b.append(sp.Symbol(f"b{i}"))
+    stmts.append(Stmt("assign", "nis", sum((bi * bi for bi in b), sp.S.Zero)))
+    Vm = sp.Matrix(n, m, lambda k, c: sp.Symbol(f"V[{k * m + c}]"))
+    for k in range(n):
+        for c in range(m):
+            e = sum((Km[k, j] * S[(c, j)] for j in range(m)), sp.S.Zero) - Wm[k, c]
+            stmts.append(Stmt("assign", f"V[{k * m + c}]", e))
+    for k in range(n):
+        e = XS[k] + sum((Km[k, c] * sp.Symbol(f"y[{c}]") for c in range(m)), sp.S.Zero)
+        stmts.append(Stmt("assign", f"xs[{k}]", e))
+    for i in range(n):
+        for j in range(i, n):
+            e = Ps[i, j] + sum((Km[i, c] * Vm[j, c] - Wm[i, c] * Km[j, c] for c in range(m)), sp.S.Zero)
+            stmts.append(Stmt("assign", f"Ps[{packed_index(i, j, n)}]", e))
+    return EkfUpdateCode(spec, False, stmts, _uses_params(stmts), m, n * m, n * m)
+
+
+def derive_ekf(spec: ModelSpec) -> EkfCode:
+    """Everything the EKF templates need for ``spec``."""
+    code = EkfCode(spec, derive_ekf_predict(spec))
+    for s in spec.sensors:
+        code.updates.append(derive_ekf_update(s, spec))
+    return code
+
+
+def angle_wraps(spec: ModelSpec, target: str) -> List[Stmt]:
+    """Wrap the angle states of array ``target`` to (-pi, pi]."""
+    return [Stmt("wrap", f"{target}[{i}]", sp.Symbol(f"{target}[{i}]")) for i, s in enumerate(spec.states) if s.angle]

@@ -1,0 +1,366 @@
+"""Stage 3: C emission.
+
+Python computes the math (:mod:`estgen.derive`); the Jinja templates in ``templates/`` hold the
+shape of the C. Every expression reaches the C through :class:`CPrinter`, a subclass of sympy's
+C99 printer; nothing from a model file reaches the C except validated identifiers and numeric
+literals printed here.
+
+:func:`generate` returns a :class:`Generated` (file name -> text, plus figures such as operation
+counts and struct size). Output is deterministic: same model and estgen version, same bytes.
+"""
+
+from __future__ import annotations
+
+import os
+import re
+from dataclasses import dataclass, field
+from functools import lru_cache
+from typing import Any, Dict, List, Optional, Sequence, Tuple
+
+import jinja2
+import sympy as sp
+from sympy.codegen.ast import float32, float64, real
+from sympy.printing.c import C99CodePrinter
+
+from ._version import __version__
+from .chi2 import chi2_ppf
+from .derive import Stmt, derive_ekf, packed_index, packed_size
+from .errors import ModelError
+from .model import ModelSpec, check_filter_support
+from .status import ADVICE, Status
+
+__all__ = ["CPrinter", "OpCount", "count_ops", "Generated", "generate", "template_env", "c_literal"]
+
+PRECISIONS = ("float", "double")
+
+
+def c_literal(value: float, precision: str) -> str:
+    """A C floating literal that round-trips the Python float (shortest repr)."""
+    v = float(value)
+    if v != v or v in (float("inf"), float("-inf")):
+        raise ValueError("non-finite literal")
+    text = repr(v)
+    if "e" not in text and "." not in text:
+        text += ".0"
+    if "e" in text and "." not in text.split("e")[0]:
+        mant, ex = text.split("e")
+        text = f"{mant}.0e{ex}"
+    return text + ("F" if precision == "float" else "")
+
+
+class CPrinter(C99CodePrinter):
+    """sympy's C99 printer, typed for float or double, with cheap integer powers and exact
+    literals (no double constants in a float build, no pow() for squares)."""
+
+    def __init__(self, precision: str = "double") -> None:
+        self.precision = precision
+        ftype = float32 if precision == "float" else float64
+        super().__init__(settings={"type_aliases": {real: ftype}})
+
+    def _lit(self, v: float) -> str:
+        return c_literal(v, self.precision)
+
+    def _print_Float(self, expr: sp.Float) -> str:
+        return self._lit(float(expr))
+
+    def _print_Integer(self, expr: sp.Integer) -> str:
+        return self._lit(float(int(expr)))
+
+    def _print_Rational(self, expr: sp.Rational) -> str:
+        return self._lit(float(expr))
+
+    _print_Half = _print_Rational
+    _print_One = _print_Integer
+    _print_Zero = _print_Integer
+    _print_NegativeOne = _print_Integer
+
+    def _print_Pi(self, expr: Any) -> str:
+        return self._lit(3.141592653589793)
+
+    def _print_Exp1(self, expr: Any) -> str:
+        return self._lit(2.718281828459045)
+
+    def _print_Pow(self, expr: sp.Pow) -> str:
+        # Results are parenthesized: sympy's Mul printer puts a Pow after '/' unbracketed.
+        base, ex = expr.args
+        sqrt = "sqrtf" if self.precision == "float" else "sqrt"
+        if ex.is_Integer and 1 <= int(ex) <= 4:
+            b = self.parenthesize(base, 60)
+            return "(" + "*".join([b] * int(ex)) + ")"
+        if ex.is_Integer and -4 <= int(ex) <= -1:
+            inner = base if int(ex) == -1 else sp.Pow(base, -ex, evaluate=False)
+            return f"({self._lit(1.0)}/{self.parenthesize(inner, 60)})"
+        if ex == sp.S.Half:
+            return f"{sqrt}({self._print(base)})"
+        if ex == -sp.S.Half:
+            return f"({self._lit(1.0)}/{sqrt}({self._print(base)}))"
+        pw = "powf" if self.precision == "float" else "pow"
+        return f"{pw}({self._print(base)}, {self._print(ex)})"
+
+
+@dataclass
+class OpCount:
+    """Floating-point operations of straight-line code as printed (before C optimization)."""
+
+    add: int = 0
+    mul: int = 0
+    div: int = 0
+    sqrt: int = 0
+    transcendental: int = 0
+    compare: int = 0
+
+    def __iadd__(self, other: "OpCount") -> "OpCount":
+        for k in self.__dataclass_fields__:
+            setattr(self, k, getattr(self, k) + getattr(other, k))
+        return self
+
+    def as_dict(self) -> Dict[str, int]:
+        return {k: getattr(self, k) for k in self.__dataclass_fields__}
+
+    @property
+    def total(self) -> int:
+        return sum(self.as_dict().values())
+
+
+def count_ops(expr: sp.Expr) -> OpCount:
+    """Count operations of ``expr`` the way :class:`CPrinter` prints it."""
+    oc = OpCount()
+
+    def walk(e: sp.Basic) -> None:
+        if e.is_Atom:
+            return
+        if e.is_Add:
+            oc.add += len(e.args) - 1
+        elif e.is_Mul:
+            num, den = sp.fraction(e)
+            nf = [a for a in sp.Mul.make_args(num) if a not in (1, -1)]
+            df = [a for a in sp.Mul.make_args(den) if a != 1]
+            oc.mul += max(0, len(nf) - 1) + max(0, len(df) - 1)
+            if df:
+                oc.div += 1
+            for a in nf + df:
+                walk(a)
+            return
+        elif e.is_Pow:
+            b, x = e.args
+            if x.is_Integer and 1 <= abs(int(x)) <= 4:
+                oc.mul += abs(int(x)) - 1
+                if int(x) < 0:
+                    oc.div += 1
+            elif abs(x) == sp.S.Half:
+                oc.sqrt += 1
+                if x < 0:
+                    oc.div += 1
+            else:
+                oc.transcendental += 1
+            walk(b)
+            return
+        elif isinstance(e, sp.Function):
+            oc.transcendental += 1
+        for a in e.args:
+            walk(a)
+
+    walk(expr)
+    return oc
+
+
+_SAFE_UNIT = re.compile(r"^[A-Za-z0-9 ^._%()/*+-]{1,24}$")
+
+
+def safe_comment(text: Optional[str]) -> Optional[str]:
+    """Text a doc comment may carry: a short unit string that cannot open or close a comment."""
+    if text is None or not _SAFE_UNIT.match(text) or "*/" in text or "/*" in text or "//" in text:
+        return None
+    return text
+
+
+def safe_filename(path: str) -> str:
+    return re.sub(r"[^A-Za-z0-9._-]", "_", os.path.basename(path)) or "model"
+
+
+@lru_cache(maxsize=1)
+def template_env() -> jinja2.Environment:
+    """The Jinja environment over ``templates/`` (source checkout) or the installed copy."""
+    here = os.path.dirname(os.path.abspath(__file__))
+    src_dir = os.path.join(os.path.dirname(here), "templates")
+    if os.path.isfile(os.path.join(src_dir, "filter.h.j2")):
+        loader: jinja2.BaseLoader = jinja2.FileSystemLoader(src_dir)
+    else:
+        loader = jinja2.PackageLoader("estgen", "templates")
+    return jinja2.Environment(
+        loader=loader,
+        undefined=jinja2.StrictUndefined,
+        keep_trailing_newline=True,
+        trim_blocks=True,
+        lstrip_blocks=True,
+        autoescape=False,
+    )
+
+
+class Emitter:
+    """Renders statements of one filter/precision into C lines and tallies their cost."""
+
+    def __init__(self, prefix: str, precision: str) -> None:
+        self.prefix = prefix
+        self.precision = precision
+        self.real = "float" if precision == "float" else "double"
+        self.printer = CPrinter(precision)
+        self.upper = prefix.upper()
+
+    def lit(self, v: float) -> str:
+        return c_literal(v, self.precision)
+
+    def expr(self, e: sp.Expr) -> str:
+        return self.printer.doprint(e)
+
+    def lines(self, stmts: Sequence[Stmt], ops: Optional[OpCount] = None) -> List[str]:
+        out: List[str] = []
+        for st in stmts:
+            if ops is not None:
+                ops += count_ops(st.expr)
+            if st.kind == "decl":
+                out.append(f"const {self.real} {st.target} = {self.expr(st.expr)};")
+            elif st.kind == "assign":
+                out.append(f"{st.target} = {self.expr(st.expr)};")
+            elif st.kind == "check":
+                v = self.expr(st.expr)
+                out.append(f"if (!isfinite({v})) {{ return {self.upper}_NON_FINITE; }}")
+                out.append(f"if (!({v} > {self.lit(0.0)})) {{ return {self.upper}_NOT_POSITIVE_DEFINITE; }}")
+                if ops is not None:
+                    ops.compare += 2
+            elif st.kind == "wrap":
+                out.append(f"{st.target} = {self.prefix}_wrap({self.expr(st.expr)});")
+                if ops is not None:
+                    ops.transcendental += 1
+                    ops.add += 2
+                    ops.mul += 2
+            else:
+                raise ValueError(st.kind)
+        return out
+
+
+@dataclass
+class Generated:
+    """What the generator produced for one model, filter and precision."""
+
+    files: Dict[str, str]
+    prefix: str
+    filter: str
+    precision: str
+    struct_bytes: int
+    ops: Dict[str, Dict[str, int]] = field(default_factory=dict)
+    cdef: str = ""
+    lines_of_c: int = 0
+    header: str = ""
+    source: str = ""
+
+
+def _common_context(spec: ModelSpec, filt: str, precision: str) -> Dict[str, Any]:
+    if precision not in PRECISIONS:
+        raise ModelError(f"unknown precision {precision!r}; use 'float' or 'double'")
+    for s in spec.sensors:
+        if s.name.endswith("_nis"):
+            raise ModelError(f"sensor name {s.name!r} must not end in '_nis' (it would clash with a generated function)",
+                             s.where)
+    prefix = f"{spec.name}_{filt}"
+    em = Emitter(prefix, precision)
+    n = spec.n
+    np_ = packed_size(n)
+    size_real = 4 if precision == "float" else 8
+    struct_bytes = (n + np_ + len(spec.params)) * size_real
+    states = [
+        {"i": i, "name": s.name, "unit": safe_comment(s.unit), "angle": s.angle} for i, s in enumerate(spec.states)
+    ]
+    inputs = [{"i": i, "name": s.name, "unit": safe_comment(s.unit)} for i, s in enumerate(spec.inputs)]
+    params = [{"name": p.name, "default": em.lit(p.default), "unit": safe_comment(p.unit)} for p in spec.params]
+    x0 = [em.lit(v) for v in spec.x0]
+    P0 = [(packed_index(i, j, n), em.lit(spec.P0[i][j])) for i in range(n) for j in range(i, n)]
+    sensors = []
+    for s in spec.sensors:
+        gate = None
+        if s.gate is not None:
+            gate = em.lit(chi2_ppf(s.gate, s.m))
+        sensors.append({
+            "name": s.name, "m": s.m, "gate_prob": repr(s.gate) if s.gate is not None else None, "gate": gate,
+            "angles": [i for i, a in enumerate(s.angles) if a],
+        })
+    statuses = [{"name": st.name, "value": int(st), "advice": ADVICE[st]} for st in Status]
+    return {
+        "version": __version__,
+        "model_file": safe_filename(spec.source),
+        "name": spec.name,
+        "filt": filt,
+        "FILT": filt.upper(),
+        "prefix": prefix,
+        "PREFIX": prefix.upper(),
+        "real": em.real,
+        "precision": precision,
+        "n": n,
+        "np": np_,
+        "nu": spec.nu,
+        "states": states,
+        "inputs": inputs,
+        "params": params,
+        "x0": x0,
+        "P0": P0,
+        "sensors": sensors,
+        "statuses": statuses,
+        "struct_bytes": struct_bytes,
+        "zero": em.lit(0.0),
+        "one": em.lit(1.0),
+        "pi": em.lit(3.141592653589793),
+        "two_pi": em.lit(6.283185307179586),
+        "fsuf": "f" if precision == "float" else "",
+        "has_angles": any(s.angle for s in spec.states) or any(any(s.angles) for s in spec.sensors),
+        "angle_states": [i for i, s in enumerate(spec.states) if s.angle],
+        "emitter": em,
+    }
+
+
+def _render(ctx: Dict[str, Any], source_template: str) -> Generated:
+    env = template_env()
+    header = env.get_template("filter.h.j2").render(**ctx)
+    source = env.get_template(source_template).render(**ctx)
+    cdef = env.get_template("cdef.j2").render(**ctx)
+    prefix = ctx["prefix"]
+    files = {f"{prefix}.h": header, f"{prefix}.c": source}
+    lines = header.count("\n") + source.count("\n")
+    return Generated(files, prefix, ctx["filt"], ctx["precision"], ctx["struct_bytes"], ctx.get("ops", {}), cdef,
+                     lines, header, source)
+
+
+def generate_ekf(spec: ModelSpec, precision: str = "float") -> Generated:
+    """Generate the EKF's header and source for ``spec``."""
+    check_filter_support(spec, "ekf")
+    ctx = _common_context(spec, "ekf", precision)
+    em: Emitter = ctx["emitter"]
+    code = derive_ekf(spec)
+    ops: Dict[str, Dict[str, int]] = {}
+    pc = OpCount()
+    ctx["predict"] = {"lines": em.lines(code.predict.stmts, pc), "uses_par": code.predict.uses_par,
+                      "uses_u": code.predict.uses_u}
+    ops["predict"] = pc.as_dict()
+    ups = []
+    for uc, sctx in zip(code.updates, ctx["sensors"]):
+        oc = OpCount()
+        body = em.lines(uc.stmts, oc)
+        wraps = em.lines([Stmt("wrap", f"xs[{i}]", sp.Symbol(f"xs[{i}]")) for i in ctx["angle_states"]], oc)
+        ops[f"update_{uc.sensor.name}"] = oc.as_dict()
+        ups.append({**sctx, "lines": body + wraps, "uses_par": uc.uses_par, "w_size": uc.w_size,
+                    "k_size": uc.k_size, "sequential": uc.sequential})
+    ctx["updates"] = ups
+    ctx["ops"] = ops
+    return _render(ctx, "ekf.c.j2")
+
+
+def generate(spec: ModelSpec, filter: str = "ekf", precision: str = "float", **options: Any) -> Generated:
+    """Generate C for ``spec``. ``filter`` is "ekf" or "ukf"; UKF options: alpha, beta, kappa."""
+    if filter == "ekf":
+        if options:
+            raise ModelError(f"options {sorted(options)} apply to the UKF only")
+        return generate_ekf(spec, precision)
+    if filter == "ukf":
+        from .emit_ukf import generate_ukf
+
+        return generate_ukf(spec, precision, **options)
+    raise ModelError(f"unknown filter {filter!r}; use 'ekf' or 'ukf'")
