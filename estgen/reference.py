@@ -13,15 +13,15 @@ it was: the new state is computed aside and stored only once every check has pas
 
 from __future__ import annotations
 
+import abc
 import math
 import os
-import sys
-import types
 from typing import Any, Callable, Dict, List, Mapping, Optional, Sequence, Tuple, Union
 
 import numpy as np
 import sympy as sp
 
+from .chi2 import chi2_ppf
 from .errors import ModelError
 from .model import Model, ModelSpec, as_spec, check_filter_support
 from .status import Status
@@ -61,10 +61,9 @@ def _wrap_masked(v: np.ndarray, mask: np.ndarray) -> np.ndarray:
 
 def gate_threshold(probability: float, m: int) -> float:
     """The chi-square gate: an innovation is rejected when its NIS exceeds this value
-    (the ``probability`` quantile of chi-square with ``m`` degrees of freedom)."""
-    from scipy.stats import chi2
-
-    return float(chi2.ppf(probability, m))
+    (the ``probability`` quantile of chi-square with ``m`` degrees of freedom; the same
+    routine the generator uses, so reference and C gate at the same value)."""
+    return chi2_ppf(probability, m)
 
 
 # ---------------------------------------------------------------------------------------------
@@ -235,21 +234,23 @@ def _finite(*arrays: np.ndarray) -> bool:
     return all(bool(np.all(np.isfinite(a))) for a in arrays)
 
 
-def _chol_solve(S: np.ndarray, B: np.ndarray) -> Optional[Tuple[np.ndarray, Any]]:
-    """``(S^-1 B, factor)`` by Cholesky, or None when S is not positive definite."""
-    from scipy.linalg import LinAlgError, cho_factor, cho_solve
-
+def _chol_solve(S: np.ndarray, B: np.ndarray) -> Optional[np.ndarray]:
+    """``S^-1 B`` through the lower Cholesky factor S = L L', or None when S is not positive
+    definite."""
     try:
-        fac = cho_factor(S, lower=True, check_finite=False)
-    except LinAlgError:
+        L = np.linalg.cholesky(S)
+    except np.linalg.LinAlgError:
         return None
-    # LAPACK accepts a zero pivot on some inputs; a singular S is not positive definite either
-    if not np.all(np.diag(fac[0]) > 0.0):
+    if not np.all(np.diag(L) > 0.0):
         return None
-    return cho_solve(fac, B, check_finite=False), fac
+    return np.linalg.solve(L.T, np.linalg.solve(L, B))
 
 
-class _ReferenceBase:
+#: what an update's innovation step hands on: y, S, C = cov(x, z), and P' as a function of (K, S)
+_Innovation = Tuple[np.ndarray, np.ndarray, np.ndarray, Callable[[np.ndarray, np.ndarray], np.ndarray]]
+
+
+class _ReferenceBase(abc.ABC):
     """What the EKF and UKF share: state, parameters, argument checks and gating."""
 
     filter: str = ""
@@ -354,16 +355,37 @@ class _ReferenceBase:
             return int(Status.BAD_INPUT), zv
         return None, zv
 
+    def update(self, sensor: str, z: Sequence[float]) -> int:
+        """Measurement update with sensor ``sensor``. Returns a :class:`Status` code; unknown
+        sensors raise KeyError and a z of the wrong length ValueError."""
+        bad, zv = self._check_update(sensor, z)
+        if bad is not None:
+            return bad
+        with np.errstate(all="ignore"):
+            terms = self._innovation(sensor, zv)
+            if isinstance(terms, int):
+                return terms
+            y, S, C, covariance = terms
+            bad, K = self._finish_update(sensor, y, S, C)
+            if bad is not None:
+                return bad
+            xn = self._x + K @ y
+            Pn = covariance(K, S)
+        return self._commit(xn, Pn)
+
+    @abc.abstractmethod
+    def _innovation(self, sensor: str, z: np.ndarray) -> Union[int, _Innovation]:
+        """(y, S, C = cov(x, z), covariance(K, S) -> P') or a refusal code."""
+
     def _finish_update(self, sensor: str, y: np.ndarray, S: np.ndarray, C: np.ndarray
                        ) -> Tuple[Optional[int], Optional[np.ndarray]]:
         """Shared tail of an update: K = C S^-1, NIS and the gate. Returns (refusal, K)."""
         if not _finite(S, C, y):
             return int(Status.NON_FINITE), None
         S = 0.5 * (S + S.T)
-        solved = _chol_solve(S, np.column_stack([y, C.T]))
-        if solved is None:
+        sol = _chol_solve(S, np.column_stack([y, C.T]))
+        if sol is None:
             return int(Status.NOT_POSITIVE_DEFINITE), None
-        sol = solved[0]
         nis = float(y @ sol[:, 0])
         if not math.isfinite(nis):
             return int(Status.NON_FINITE), None
@@ -405,29 +427,23 @@ class ReferenceEKF(_ReferenceBase):
             Pn = F @ self._P @ F.T + Q
         return self._commit(xn, Pn)
 
-    def update(self, sensor: str, z: Sequence[float]) -> int:
-        """Measurement update with Joseph-form covariance. Returns a :class:`Status` code."""
-        bad, zv = self._check_update(sensor, z)
-        if bad is not None:
-            return bad
+    def _innovation(self, sensor: str, z: np.ndarray) -> Union[int, _Innovation]:
+        """Linearize h at x; the covariance update is the Joseph form."""
         p = self._p()
         x, P = self._x, self._P
-        with np.errstate(all="ignore"):
-            hx = self._fn.h(sensor, x, p)
-            H = self._fn.H(sensor, x, p)
-            R = self._fn.R(sensor, p)
-            if not _finite(hx, H, R):
-                return int(Status.NON_FINITE)
-            y = _wrap_masked(zv - hx, self._sensor_angles[sensor])
-            PHt = P @ H.T
-            S = H @ PHt + R
-            bad, K = self._finish_update(sensor, y, S, PHt)
-            if bad is not None:
-                return bad
+        hx = self._fn.h(sensor, x, p)
+        H = self._fn.H(sensor, x, p)
+        R = self._fn.R(sensor, p)
+        if not _finite(hx, H, R):
+            return int(Status.NON_FINITE)
+        y = _wrap_masked(z - hx, self._sensor_angles[sensor])
+        PHt = P @ H.T
+
+        def joseph(K: np.ndarray, S: np.ndarray) -> np.ndarray:
             A = np.eye(self.n) - K @ H
-            Pn = A @ P @ A.T + K @ R @ K.T  # Joseph form: stays PSD under rounding
-            xn = x + K @ y
-        return self._commit(xn, Pn)
+            return A @ P @ A.T + K @ R @ K.T  # stays PSD under rounding, unlike (I - KH) P
+
+        return y, H @ PHt + R, PHt, joseph
 
 
 class ReferenceUKF(_ReferenceBase):
@@ -466,35 +482,25 @@ class ReferenceUKF(_ReferenceBase):
             Pn = (d.T * self._wc) @ d + Q
         return self._commit(xn, Pn)
 
-    def update(self, sensor: str, z: Sequence[float]) -> int:
-        """Fresh sigma points from (x, P) through h; K = C S^-1, P = P - K S K'."""
-        bad, zv = self._check_update(sensor, z)
-        if bad is not None:
-            return bad
+    def _innovation(self, sensor: str, z: np.ndarray) -> Union[int, _Innovation]:
+        """Fresh sigma points from (x, P) through h; the covariance update is P - K S K'."""
         p = self._p()
         x, P = self._x, self._P
         zang = self._sensor_angles[sensor]
-        with np.errstate(all="ignore"):
-            X = sigma_points(x, P, self._lam)
-            if X is None:
-                return int(Status.NOT_POSITIVE_DEFINITE)
-            Z = np.array([self._fn.h(sensor, xi, p) for xi in X])
-            R = self._fn.R(sensor, p)
-            if not _finite(Z, R):
-                return int(Status.NON_FINITE)
-            zhat = _weighted_mean(Z, self._wm, zang)
-            dZ = _deviations(Z, zhat, zang)
-            # X - x is exactly the +-L column by construction: not wrapped, even for angles
-            dX = X - x
-            S = (dZ.T * self._wc) @ dZ + R
-            C = (dX.T * self._wc) @ dZ
-            y = _wrap_masked(zv - zhat, zang)
-            bad, K = self._finish_update(sensor, y, S, C)
-            if bad is not None:
-                return bad
-            xn = x + K @ y
-            Pn = P - K @ S @ K.T
-        return self._commit(xn, Pn)
+        X = sigma_points(x, P, self._lam)
+        if X is None:
+            return int(Status.NOT_POSITIVE_DEFINITE)
+        Z = np.array([self._fn.h(sensor, xi, p) for xi in X])
+        R = self._fn.R(sensor, p)
+        if not _finite(Z, R):
+            return int(Status.NON_FINITE)
+        zhat = _weighted_mean(Z, self._wm, zang)
+        dZ = _deviations(Z, zhat, zang)
+        # X - x is exactly the +-L column by construction: not wrapped, even for angles
+        dX = X - x
+        S = (dZ.T * self._wc) @ dZ + R
+        C = (dX.T * self._wc) @ dZ
+        return _wrap_masked(z - zhat, zang), S, C, lambda K, S_: P - K @ S_ @ K.T
 
 
 def check_ukf_parameters(n: int, alpha: float, beta: float, kappa: float) -> None:
@@ -520,14 +526,3 @@ def reference(model: ModelLike, filter: str = "ekf", *, alpha: float = 1.0, beta
         return ReferenceEKF(spec, params=params)
     return ReferenceUKF(spec, alpha=alpha, beta=beta, kappa=kappa, params=params)
 
-
-class _CallableModule(types.ModuleType):
-    """Importing this submodule rebinds the package attribute ``estgen.reference`` from the
-    function to the module; making the module callable keeps ``estgen.reference(m, ...)``
-    working whichever import happened first."""
-
-    def __call__(self, model: ModelLike, filter: str = "ekf", **options: Any) -> Union[ReferenceEKF, ReferenceUKF]:
-        return reference(model, filter=filter, **options)
-
-
-sys.modules[__name__].__class__ = _CallableModule

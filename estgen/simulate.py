@@ -22,6 +22,7 @@ from typing import Any, Callable, Dict, List, Mapping, Optional, Sequence, TextI
 
 import numpy as np
 
+from .chi2 import chi2_ppf
 from .errors import ModelError
 from .model import ModelSpec, as_spec, check_filter_support
 from .reference import ReferenceEKF, ReferenceUKF, check_ukf_parameters, model_functions, wrap_angle
@@ -39,6 +40,7 @@ __all__ = [
     "add_arguments",
     "run",
     "INSIDE_REQUIRED",
+    "chi2_bounds",
 ]
 
 #: a statistic passes when it lies inside its 95% bounds at this fraction of the steps or more
@@ -281,11 +283,8 @@ def _num(v: float) -> Optional[float]:
 def chi2_bounds(runs: int, dof: int) -> Tuple[float, float]:
     """Two-sided 95% bounds of a run-averaged chi-square statistic: the sum over ``runs`` runs
     is chi-square with ``runs * dof`` degrees of freedom (Bar-Shalom et al. 2001, 5.4.2)."""
-    from scipy.stats import chi2
-
     a = (1.0 - BOUND_PROBABILITY) / 2.0
-    lo, hi = chi2.ppf([a, 1.0 - a], runs * dof) / runs
-    return float(lo), float(hi)
+    return chi2_ppf(a, runs * dof) / runs, chi2_ppf(1.0 - a, runs * dof) / runs
 
 
 @dataclass
