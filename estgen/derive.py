@@ -189,9 +189,13 @@ def derive_ekf_predict(spec: ModelSpec) -> EkfPredictCode:
     P = _sym_P(n, "P")
     A = Fm * P
     Aref = sp.zeros(n, n)
+    # A[i, k] is read by P'[i, j] = sum_k A[i, k] F[j, k] for j >= i only
+    needed = {(i, k) for i in range(n) for k in range(n) if any(Fm[j, k] != 0 for j in range(i, n))}
     for i in range(n):
         for j in range(n):
             e = A[i, j]
+            if (i, j) not in needed:
+                continue
             if _is_trivial(e):
                 Aref[i, j] = e
             else:
