@@ -17,6 +17,7 @@ from typing import Any, Callable, Dict, List, Optional, Sequence, Tuple, Union
 
 import numpy as np
 import sympy as sp
+from sympy.core.function import AppliedUndef
 
 from .errors import ModelError, Where
 
@@ -51,6 +52,17 @@ _C_MACROS = frozenset(
     int8_t int16_t int32_t int64_t uint8_t uint16_t uint32_t uint64_t intptr_t uintptr_t
     intmax_t uintmax_t""".split()
 )
+# Names the numpy reference's printer (sympy lambdify, "numpy" module) emits for functions and
+# constants: a state, input or parameter with one of these names shadows the function there
+# (a TypeError) or, for e and pi, silently replaces the constant. The C side is safe (it
+# addresses x[i], u[i], par->name) but the reference must agree with it.
+_RESERVED_MATH = frozenset(
+    """abs arccos arccosh arcsin arcsinh arctan arctan2 arctanh ceil cos cosh erf erfc exp exp2 expm1
+    factorial floor gamma hypot isinf isnan lgamma log log10 log1p log2 logaddexp logaddexp2 max min
+    sign sin sinh sqrt tan tanh e euler_gamma inf nan pi select reduce maximum minimum mod less
+    greater equal less_equal greater_equal not_equal logical_and logical_or logical_not real imag
+    angle""".split()
+)
 _IDENT = re.compile(r"^[A-Za-z][A-Za-z0-9_]*$")
 _MACRO_LIKE = re.compile(r"^(FP_|INT|UINT|PTRDIFF|SIZE|WCHAR|SIG_ATOMIC|WINT)[A-Z0-9_]*$")
 
@@ -65,6 +77,7 @@ NON_DIFFERENTIABLE: Tuple[type, ...] = (
     sp.Min,
     sp.Max,
     sp.Mod,
+    sp.frac,
 )
 
 
@@ -88,7 +101,10 @@ def _split_names(names: Union[str, Sequence[str]]) -> List[str]:
 def _split_units(units: Union[None, str, Sequence[Optional[str]]], count: int) -> List[Optional[str]]:
     if units is None:
         return [None] * count
-    items = units.split() if isinstance(units, str) else list(units)
+    try:
+        items = units.split() if isinstance(units, str) else list(units)
+    except TypeError:
+        raise ModelError(f"units must be a string or a list of strings, got {units!r}") from None
     if len(items) == 1 and count > 1:
         items = items * count
     if len(items) != count:
@@ -357,8 +373,9 @@ def load_model(path: Union[str, os.PathLike]) -> ModelSpec:
         exec(code, namespace)
     except ModelError as err:
         raise err from None
-    except Exception as err:  # the user's own code failed: show where
-        raise ModelError(f"the model file raised {type(err).__name__}: {err}", _user_frame(err, path)) from None
+    except (Exception, SystemExit) as err:  # the user's own code failed: show where
+        raise ModelError(f"the model file raised {type(err).__name__}: {_short(err)}; fix the line shown",
+                         _user_frame(err, path)) from None
     finally:
         if sys.path and sys.path[0] == model_dir:
             sys.path.pop(0)
@@ -367,9 +384,17 @@ def load_model(path: Union[str, os.PathLike]) -> ModelSpec:
         raise ModelError("no variable named 'model'; end the file with model = Model(\"name\") and its declarations",
                          Where(path))
     if not isinstance(model, Model):
-        raise ModelError(f"'model' is a {type(model).__name__}, not an estgen.Model", Where(path))
+        raise ModelError(f"'model' is a {type(model).__name__}, not an estgen.Model; "
+                         f"assign model = Model(\"name\") and declare on it", Where(path))
     model.source = path
     return validate(model)
+
+
+def _short(err: BaseException, limit: int = 160) -> str:
+    """The first line of an exception's text, cut to ``limit`` characters (messages stay short)."""
+    text = str(err).strip().splitlines()
+    line = text[0] if text else "(no message)"
+    return line if len(line) <= limit else line[: limit - 3] + "..."
 
 
 def _user_frame(err: BaseException, path: str) -> Where:
@@ -395,6 +420,13 @@ def as_spec(m: Union[ModelSpec, Model, str, os.PathLike]) -> ModelSpec:
 # Validation
 
 
+def _check_symbol_name(name: str, what: str, where: Optional[Where]) -> None:
+    """States, inputs and parameters become variables beside math calls in C and numpy."""
+    if name in _RESERVED_MATH:
+        raise ModelError(f"{what} name {name!r} is the name of a math function or constant the generated code "
+                         f"uses; rename it (e.g. {name}_)", where)
+
+
 def _check_ident(name: Any, what: str, where: Optional[Where]) -> str:
     if not isinstance(name, str) or not _IDENT.match(name):
         raise ModelError(
@@ -412,10 +444,11 @@ def _to_float(v: Any, what: str, where: Optional[Where]) -> float:
     try:
         if isinstance(v, sp.Basic):
             if v.free_symbols:
-                raise TypeError
+                names = ", ".join(sorted(str(s) for s in v.free_symbols))
+                raise ModelError(f"{what} must be a number, got {v} (uses {names}); give the value itself", where)
             val = float(v)
-        elif isinstance(v, (bool, np.bool_)):
-            raise TypeError
+        elif isinstance(v, (bool, np.bool_, str, bytes)):
+            raise TypeError  # float("1.5") would accept a string: a number is asked for
         else:
             val = float(v)
     except (TypeError, ValueError):
@@ -427,12 +460,17 @@ def _to_float(v: Any, what: str, where: Optional[Where]) -> float:
 
 def _as_column(obj: Any, what: str, where: Where) -> sp.Matrix:
     try:
-        if isinstance(obj, sp.MatrixBase):
+        if isinstance(obj, (sp.MatrixBase, np.ndarray)):
             mat = sp.Matrix(obj)
             if mat.shape[1] != 1 and mat.shape[0] == 1:
                 mat = mat.T
         elif isinstance(obj, (list, tuple)):
-            mat = sp.Matrix([sp.sympify(e) for e in obj])
+            items = [sp.sympify(e) for e in obj]
+            for e in items:
+                if isinstance(e, sp.Basic) and not isinstance(e, sp.Expr):
+                    raise ModelError(f"{what} holds {e}, a condition, not a value; "
+                                     f"use sp.Piecewise((a, cond), (b, True)) for a choice", where)
+            mat = sp.Matrix(items)
         elif isinstance(obj, sp.Basic):
             mat = sp.Matrix([obj])
         else:
@@ -466,18 +504,36 @@ def _as_square(obj: Any, size: int, what: str, where: Where) -> Tuple[sp.Matrix,
     except (TypeError, sp.SympifyError, ValueError) as err:
         raise ModelError(f"{what} must be a {size}x{size} matrix or a list of {size} variances ({err})", where) from None
     if mat.shape != (size, size):
-        raise ModelError(f"{what} must be {size}x{size}, got {mat.shape[0]}x{mat.shape[1]}", where)
+        raise ModelError(f"{what} must be {size}x{size}, got {mat.shape[0]}x{mat.shape[1]}; "
+                         f"give a {size}x{size} matrix or a list of {size} variances", where)
     return mat, as_list
 
 
-def _check_symbols(expr_mat: sp.Matrix, allowed: set, what: str, where: Where, hint: str) -> None:
+def _check_symbols(expr_mat: sp.Matrix, allowed: set, what: str, where: Where, hint: str,
+                   kinds: Optional[Dict[sp.Symbol, str]] = None) -> None:
+    """Every free symbol must be in ``allowed``; ``kinds`` names what a declared but
+    disallowed symbol is (an input in h, a state in Q), for a clearer message."""
     used = set()
     for e in expr_mat:
         if not isinstance(e, sp.Basic):
             raise ModelError(f"{what} holds {e!r}, which is not a sympy expression", where)
+        if not isinstance(e, sp.Expr):
+            raise ModelError(f"{what} holds {e}, a condition, not a value; "
+                             f"use sp.Piecewise((a, cond), (b, True)) for a choice", where)
+        undef = sorted(str(a.func) for a in e.atoms(AppliedUndef))
+        if undef:
+            raise ModelError(f"{what} calls {undef[0]}(), an undefined sympy Function; "
+                             f"write it out as an expression", where)
+        if e.has(sp.Derivative, sp.Integral):
+            raise ModelError(f"{what} holds an unevaluated Derivative or Integral; call .doit() on it", where)
         used |= e.free_symbols
     bad = sorted((s for s in used if s not in allowed), key=lambda s: str(s))
     if bad:
+        kinds = kinds or {}
+        known = [s for s in bad if s in kinds]
+        if known:
+            s0 = known[0]
+            raise ModelError(f"{what} uses {kinds[s0]} {str(s0)!r}, which it may not; {hint}", where)
         names = ", ".join(repr(str(s)) for s in bad)
         raise ModelError(f"{what} uses {names}, never declared; {hint}", where)
     for e in expr_mat:
@@ -507,7 +563,8 @@ def _check_psd(arr: np.ndarray, what: str, where: Where, strict: bool) -> None:
             f"{what} is not positive definite (smallest eigenvalue {np.min(eig):.3g}); every variance must be > 0", where
         )
     if not strict and np.min(eig) < -1e-12 * max(1.0, float(np.max(eig))):
-        raise ModelError(f"{what} is not positive semidefinite (smallest eigenvalue {np.min(eig):.3g})", where)
+        raise ModelError(f"{what} is not positive semidefinite (smallest eigenvalue {np.min(eig):.3g}); "
+                         f"variances must be >= 0 and each correlation within [-1, 1]", where)
 
 
 def _discretize(rates: sp.Matrix, xs: List[sp.Symbol], dt: sp.Symbol, method: str) -> sp.Matrix:
@@ -531,7 +588,10 @@ def _angle_mask(angles: Any, m: int, where: Where, sname: str) -> Tuple[bool, ..
         return (False,) * m
     if isinstance(angles, bool):
         return (angles,) * m
-    items = list(angles)
+    try:
+        items = list(angles)
+    except TypeError:
+        items = [angles]  # a single index, checked below
     if len(items) == m and all(isinstance(a, (bool, np.bool_)) for a in items):
         return tuple(bool(a) for a in items)
     mask = [False] * m
@@ -561,6 +621,7 @@ def validate(model: Model) -> ModelSpec:
     for kind, items in (("state", model._states), ("input", model._inputs), ("parameter", model._params)):
         for v in items:
             _check_ident(v.name, kind, v.where)
+            _check_symbol_name(v.name, kind, v.where)
             if v.name in seen:
                 other = seen[v.name][0]
                 raise ModelError(f"{kind} name {v.name!r} is already used by {other}; names must be unique", v.where)
@@ -575,6 +636,10 @@ def validate(model: Model) -> ModelSpec:
     n = len(xs)
     dt = model._dt
     subs = {p.symbol: p.default for p in params}
+    kinds: Dict[sp.Symbol, str] = {dt: "the sample time"}
+    kinds.update({s: "state" for s in xs})
+    kinds.update({s: "input" for s in us})
+    kinds.update({s: "parameter" for s in ps})
 
     # process
     if model._process is None:
@@ -602,7 +667,7 @@ def validate(model: Model) -> ModelSpec:
         raise ModelError("no process noise; add model.process_noise(Q)", mw)
     Qraw, qw = model._Q
     Q, _ = _as_square(Qraw, n, "process_noise()", qw)
-    _check_symbols(Q, set(ps) | {dt}, "process_noise()", qw, "Q may use parameters and dt only")
+    _check_symbols(Q, set(ps) | {dt}, "process_noise()", qw, "Q may use parameters and dt only", kinds)
     if Q != Q.T:
         raise ModelError("process_noise() is not symmetric; make entry (i, j) equal entry (j, i)", qw)
     sim_dt = _to_float(model._scenario_dt, "scenario dt", model._scenario_where) if model._scenario_dt is not None else None
@@ -622,9 +687,9 @@ def validate(model: Model) -> ModelSpec:
         if m == 0:
             raise ModelError(f"sensor {sd.name!r} measures nothing; give at least one expression", sd.where)
         _check_symbols(h, set(xs) | set(ps), f"sensor {sd.name!r} h", sd.where,
-                       "a measurement may use states and parameters (inputs and dt are not allowed)")
+                       "a measurement may use states and parameters only", kinds)
         R, as_list = _as_square(sd.noise, m, f"sensor {sd.name!r} noise", sd.where)
-        _check_symbols(R, set(ps), f"sensor {sd.name!r} noise", sd.where, "R may use parameters only")
+        _check_symbols(R, set(ps), f"sensor {sd.name!r} noise", sd.where, "R may use parameters only", kinds)
         if R != R.T:
             raise ModelError(f"sensor {sd.name!r} noise is not symmetric; make entry (i, j) equal entry (j, i)", sd.where)
         rnum = _numeric(R, subs, f"sensor {sd.name!r} noise", sd.where)
@@ -654,7 +719,7 @@ def validate(model: Model) -> ModelSpec:
     except TypeError:
         raise ModelError("initial() x0 must be a list of numbers, one per state", iw) from None
     if len(x0l) != n:
-        raise ModelError(f"initial() x0 has {len(x0l)} entries but the model has {n} states", iw)
+        raise ModelError(f"initial() x0 has {len(x0l)} entries but the model has {n} states; give one per state", iw)
     x0 = tuple(_to_float(v, f"initial() x0[{i}]", iw) for i, v in enumerate(x0l))
     P0m, _ = _as_square(P0raw, n, "initial() P0", iw)
     P0n = _numeric(P0m, {}, "initial() P0 (numbers only)", iw) if all(not e.free_symbols for e in P0m) else None
@@ -677,6 +742,8 @@ def validate(model: Model) -> ModelSpec:
                          model._scenario_where)
     if sim_dt is not None and sim_dt <= 0:
         raise ModelError(f"scenario dt must be > 0, got {sim_dt}", model._scenario_where)
+    if model._input_profile is not None:
+        _check_profile(model._input_profile, len(us), src, model._scenario_where)
 
     return ModelSpec(
         name=model.name,
@@ -696,6 +763,26 @@ def validate(model: Model) -> ModelSpec:
         input_profile=model._input_profile,
         where={"model": mw, "process": pw, "Q": qw, "initial": iw},
     )
+
+
+def _check_profile(profile: Callable[[float], Sequence[float]], nu: int, src: str, where: Optional[Where]) -> None:
+    """Call the input profile once at t = 0 so a broken one fails here, with its line,
+    rather than deep inside a simulation."""
+    try:
+        u0 = profile(0.0)
+    except Exception as err:
+        at = _user_frame(err, src) if src else where
+        raise ModelError(f"scenario inputs(0.0) raised {type(err).__name__}: {_short(err)}; fix the input function",
+                         at if at.line else where) from None
+    try:
+        vals = [float(v) for v in u0]
+    except (TypeError, ValueError):
+        raise ModelError(f"scenario inputs(t) must return a list of {nu} numbers, got {u0!r}", where) from None
+    if len(vals) != nu:
+        raise ModelError(f"scenario inputs(t) returns {len(vals)} values but the model has {nu} inputs; "
+                         f"return one per input", where)
+    if not all(math.isfinite(v) for v in vals):
+        raise ModelError(f"scenario inputs(0.0) returns a non-finite value {vals}; return finite inputs", where)
 
 
 def _find_nondiff(expr: sp.Basic) -> Optional[str]:

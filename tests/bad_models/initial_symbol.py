@@ -1,0 +1,10 @@
+import sympy as sp
+from estgen import Model
+
+model = Model("block")
+(temp,) = model.states("temp")
+ambient = model.param("ambient", 20.0)
+model.process([0.99 * temp])
+model.process_noise([1e-4])
+model.sensor("thermo", [temp], noise=[0.01])
+model.initial([ambient], [1.0])

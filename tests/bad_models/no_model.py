@@ -1,0 +1,6 @@
+import sympy as sp
+from estgen import Model
+
+plant = Model("block")
+(temp,) = plant.states("temp")
+plant.process([temp])
