@@ -300,6 +300,7 @@ class MonteCarloResult:
     dt: float
     states: List[str]
     units: List[Optional[str]]
+    angles: List[bool]
     nees: StatSummary
     nis: Dict[str, StatSummary]
     rmse: Dict[str, float]
@@ -502,7 +503,8 @@ def _summarize(spec: ModelSpec, filter: str, use_reference: bool, precision: str
     run0 = next((r["run0"] for r in results if "run0" in r), {})
     return MonteCarloResult(
         model=spec.name, filter=filter, implementation=impl, runs=runs, steps=steps, seed=seed, dt=dt,
-        states=[s.name for s in spec.states], units=[s.unit for s in spec.states], nees=nees, nis=nis,
+        states=[s.name for s in spec.states], units=[s.unit for s in spec.states],
+        angles=list(spec.angle_states), nees=nees, nis=nis,
         rmse=rmse, refusals=refusals, filter_params=fparams, set_params=changed, seconds=seconds, run0=run0,
     )
 
@@ -570,10 +572,15 @@ def plot_result(res: MonteCarloResult, path: str) -> None:
     t = r0["t"]
     for i, (name, unit) in enumerate(zip(res.states, res.units)):
         ax = axes[i]
-        est = r0["x"][:, i]
+        est = r0["x"][:, i].copy()
+        truth = r0["x_true"][:, i].copy()
         sig = np.sqrt(np.clip(r0["P"][:, i, i], 0.0, None))
+        if res.angles[i]:
+            # break the lines where an angle wraps instead of drawing a jump across the plot
+            est[1:][np.abs(np.diff(est)) > math.pi] = np.nan
+            truth[1:][np.abs(np.diff(truth)) > math.pi] = np.nan
         ax.fill_between(t, est - 3 * sig, est + 3 * sig, color="tab:blue", alpha=0.2, label="estimate ±3σ")
-        ax.plot(t, r0["x_true"][:, i], color="black", lw=1.0, label="truth")
+        ax.plot(t, truth, color="black", lw=1.0, label="truth")
         ax.plot(t, est, color="tab:blue", lw=1.0, label="estimate")
         ax.set_ylabel(f"{name} [{unit}]" if unit else name)
         ax.set_xlabel("time [s]")
