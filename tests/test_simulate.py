@@ -64,25 +64,18 @@ def test_nonlinear_model_with_angle_is_consistent(pendulum, kind):
     np.testing.assert_array_equal(res.nis["encoder"].steps, np.arange(1, 151))
 
 
-def test_too_small_q_is_overconfident(cart):
-    # Source: Bar-Shalom et al. 2001, 5.4.2: Q too small makes P too small, the NEES lies above
-    # the upper bound (the filter is overconfident / "optimistic").
+@pytest.mark.parametrize("scale,verdict,side", [(0.01, "overconfident", "fraction_above"),
+                                                (100.0, "too cautious", "fraction_below")])
+def test_mistuned_q_is_inconsistent(cart, scale, verdict, side):
+    # Source: Bar-Shalom et al. 2001, 5.4.2: Q too small makes P too small and the NEES lies
+    # above the upper bound (an "optimistic", overconfident filter); Q too large makes P too
+    # large and the NEES lies below the lower bound (a "pessimistic" one).
     res = monte_carlo(cart, "ekf", runs=20, steps=100, seed=0, use_reference=True, workers=1,
-                      set_params={"accel_psd": 0.2 * 0.01})
+                      set_params={"accel_psd": 0.2 * scale})
     assert not res.consistent
-    assert res.nees.verdict == "overconfident"
-    assert res.nees.fraction_above > 0.5
-    assert res.set_params == {"accel_psd": pytest.approx(0.002)}
-
-
-def test_too_large_q_is_too_cautious(cart):
-    # Source: Bar-Shalom et al. 2001, 5.4.2: Q too large makes P too large, the NEES lies below
-    # the lower bound (the filter is "pessimistic").
-    res = monte_carlo(cart, "ekf", runs=20, steps=100, seed=0, use_reference=True, workers=1,
-                      set_params={"accel_psd": 0.2 * 100})
-    assert not res.consistent
-    assert res.nees.verdict == "too cautious"
-    assert res.nees.fraction_below > 0.5
+    assert res.nees.verdict == verdict
+    assert getattr(res.nees, side) > 0.5
+    assert res.set_params == {"accel_psd": pytest.approx(0.2 * scale)}
 
 
 @pytest.mark.parametrize("runs,dof", [(1, 1), (20, 2), (50, 3), (100, 12)])
