@@ -26,7 +26,7 @@ import numpy as np
 
 from .derive import packed_index, packed_size
 from .emit import Generated, generate
-from .model import ModelSpec, as_spec
+from .model import ModelSpec, as_spec, with_gates
 
 class BuildError(RuntimeError):
     """The generated C did not compile (a defect of estgen, never of the model)."""
@@ -221,13 +221,14 @@ class CFilter:
 
 
 def build(model: Any, filter: str = "ekf", precision: str = "double", *, cflags: Optional[Sequence[str]] = None,
-          ldflags: Optional[Sequence[str]] = None, **options: Any) -> CFilter:
+          ldflags: Optional[Sequence[str]] = None, gates: Optional[Dict[str, float]] = None,
+          **options: Any) -> CFilter:
     """Generate, compile (cached) and load the C filter for ``model``.
 
     ``options`` are the UKF's alpha, beta, kappa. ``cflags``/``ldflags`` add compiler and
-    linker flags (sanitizers, say).
+    linker flags (sanitizers, say). ``gates`` sets chi-square gate probabilities per sensor.
     """
-    spec = as_spec(model)
+    spec = with_gates(as_spec(model), gates)
     gen = generate(spec, filter=filter, precision=precision, **options)
     comp = compile_generated(gen, cflags, ldflags)
     return CFilter(spec, comp, filter)

@@ -37,6 +37,22 @@ def _add_filter_args(p: argparse.ArgumentParser, precision_default: str) -> None
     p.add_argument("--alpha", type=float, default=None, help="UKF: sigma-point spread alpha (default 1)")
     p.add_argument("--beta", type=float, default=None, help="UKF: prior-distribution parameter beta (default 2)")
     p.add_argument("--kappa", type=float, default=None, help="UKF: secondary scaling kappa (default 0)")
+    p.add_argument("--gate", action="append", default=[], metavar="SENSOR=P",
+                   help="chi-square innovation gate for SENSOR with probability P, e.g. range1=0.997 (repeatable)")
+
+
+def _gates(args: argparse.Namespace) -> Dict[str, float]:
+    out: Dict[str, float] = {}
+    for item in getattr(args, "gate", None) or []:
+        name, sep, val = item.partition("=")
+        try:
+            prob = float(val)
+        except ValueError:
+            prob = float("nan")
+        if not sep or not name or not 0.0 < prob < 1.0:
+            raise ModelError(f"--gate {item!r}: write SENSOR=P with 0 < P < 1, e.g. --gate range1=0.997")
+        out[name] = prob
+    return out
 
 
 def stale_files(files: Dict[str, str], out_dir: str) -> List[str]:
@@ -71,7 +87,7 @@ def _cmd_generate(args: argparse.Namespace) -> int:
 
     spec = load_model(args.model)
     t0 = time.perf_counter()
-    gen = generate(spec, filter=args.filter, precision=args.precision, **_ukf_options(args))
+    gen = generate(spec, filter=args.filter, precision=args.precision, gates=_gates(args), **_ukf_options(args))
     elapsed = time.perf_counter() - t0
     if args.check:
         stale = stale_files(gen.files, args.out)
@@ -97,7 +113,7 @@ def _cmd_verify(args: argparse.Namespace) -> int:
     from .verify import format_result, verify
 
     res = verify(args.model, filter=args.filter, precision=args.precision, steps=args.steps, seed=args.seed,
-                 dt=args.dt, **_ukf_options(args))
+                 dt=args.dt, gates=_gates(args), **_ukf_options(args))
     print(format_result(res))
     if args.json:
         with open(args.json, "w", encoding="utf-8") as fh:

@@ -26,7 +26,7 @@ from ._version import __version__
 from .chi2 import chi2_ppf
 from .derive import Stmt, derive_ekf, packed_index, packed_size
 from .errors import ModelError
-from .model import ModelSpec, check_filter_support
+from .model import ModelSpec, check_filter_support, with_gates
 from .status import ADVICE, Status
 
 __all__ = ["CPrinter", "OpCount", "count_ops", "Generated", "generate", "template_env", "c_literal"]
@@ -353,8 +353,11 @@ def generate_ekf(spec: ModelSpec, precision: str = "float") -> Generated:
     return _render(ctx, "ekf.c.j2")
 
 
-def generate(spec: ModelSpec, filter: str = "ekf", precision: str = "float", **options: Any) -> Generated:
-    """Generate C for ``spec``. ``filter`` is "ekf" or "ukf"; UKF options: alpha, beta, kappa."""
+def generate(spec: ModelSpec, filter: str = "ekf", precision: str = "float",
+             gates: Optional[Dict[str, float]] = None, **options: Any) -> Generated:
+    """Generate C for ``spec``. ``filter`` is "ekf" or "ukf"; UKF options: alpha, beta, kappa.
+    ``gates`` sets chi-square gate probabilities per sensor, overriding the model file's."""
+    spec = with_gates(spec, gates)
     if filter == "ekf":
         if options:
             raise ModelError(f"options {sorted(options)} apply to the UKF only")

@@ -817,3 +817,20 @@ def check_filter_support(spec: ModelSpec, filt: str) -> None:
                     f"use --filter ukf for this model",
                     s.where,
                 )
+
+
+def with_gates(spec: ModelSpec, gates: Optional[Dict[str, float]]) -> ModelSpec:
+    """A copy of ``spec`` with chi-square gate probabilities set per sensor (overriding the model
+    file's), as given to the generator by ``--gate SENSOR=P``."""
+    if not gates:
+        return spec
+    import dataclasses
+
+    names = {s.name for s in spec.sensors}
+    for name, prob in gates.items():
+        if name not in names:
+            raise ModelError(f"--gate names sensor {name!r}, which the model does not have; sensors: {sorted(names)}")
+        if not (isinstance(prob, (int, float)) and 0.0 < float(prob) < 1.0):
+            raise ModelError(f"--gate {name}={prob}: the gate is a probability strictly between 0 and 1")
+    sensors = tuple(dataclasses.replace(s, gate=float(gates[s.name])) if s.name in gates else s for s in spec.sensors)
+    return dataclasses.replace(spec, sensors=sensors)

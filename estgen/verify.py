@@ -18,7 +18,7 @@ from typing import Any, Dict, List, Optional
 import numpy as np
 
 from .build import build
-from .model import ModelSpec, as_spec, check_filter_support
+from .model import ModelSpec, as_spec, check_filter_support, with_gates
 from .reference import reference
 from .simulate import make_scenario, run_filter
 
@@ -64,9 +64,10 @@ class VerifyResult:
 
 
 def verify(model: Any, filter: str = "ekf", precision: str = "double", steps: int = 200, seed: int = 0,
-           dt: Optional[float] = None, **options: Any) -> VerifyResult:
-    """Run C and reference side by side on one simulated scenario and compare every step."""
-    spec: ModelSpec = as_spec(model)
+           dt: Optional[float] = None, gates: Optional[Dict[str, float]] = None, **options: Any) -> VerifyResult:
+    """Run C and reference side by side on one simulated scenario and compare every step.
+    ``gates`` sets chi-square gate probabilities per sensor for both filters."""
+    spec: ModelSpec = with_gates(as_spec(model), gates)
     check_filter_support(spec, filter)
     scen = make_scenario(spec, steps, seed, dt=dt)
     c = build(spec, filter=filter, precision=precision, **options)
