@@ -36,6 +36,7 @@ __all__ = [
     "find_tool",
     "compile_object",
     "undefined_symbols",
+    "defined_functions",
     "forbidden_references",
     "parse_stack_usage",
     "parse_callgraph",
@@ -176,6 +177,13 @@ def undefined_symbols(obj: PathLike, target: Union[str, Target]) -> List[str]:
     return sorted({line.split()[-1] for line in out.splitlines() if line.strip()})
 
 
+def defined_functions(obj: PathLike, target: Union[str, Target]) -> List[str]:
+    """The external (public) functions ``obj`` defines (``nm -g --defined-only``, type T)."""
+    tgt = TARGETS[target] if isinstance(target, str) else target
+    out = _run([tgt.tool("nm"), "-g", "--defined-only", str(obj)]).stdout
+    return sorted(p[2] for p in (line.split() for line in out.splitlines()) if len(p) == 3 and p[1] == "T")
+
+
 def forbidden_references(undefined: Sequence[str], precision: str, target: Union[str, Target]) -> List[str]:
     """Which of ``undefined`` the generated code must not reference: heap, stdio and exit
     always; for a float build on a core without double hardware, also double helpers and
@@ -295,22 +303,35 @@ def struct_size(header: PathLike, type_name: str, target: Union[str, Target], wo
 # Generating and replaying
 
 
-def generate(model: PathLike, filter: str, precision: str, out_dir: PathLike, extra: Sequence[str] = ()) -> Tuple[Path, Path]:
-    """Run ``estgen generate`` (in-process) and return the (header, source) paths.
-    Raises RuntimeError when the generator refuses (e.g. a filter it does not support)."""
+def generate(model: PathLike, filter: str, precision: str, out_dir: PathLike, **options: Any) -> Tuple[Path, Path]:
+    """Generate the filter's C into ``out_dir`` as ``estgen generate`` does and return the
+    (header, source) paths. Raises :class:`~estgen.errors.ModelError` (or another exception)
+    when the generator refuses, e.g. for a filter it does not support."""
     from . import load_model
-    from .cli import main as cli_main
 
+    spec = load_model(model)
     out = Path(out_dir)
-    argv = ["generate", os.fspath(model), "--filter", filter, "--precision", precision, "-o", str(out), *extra]
     try:
-        code = cli_main(argv)
-    except SystemExit as err:  # argparse and some mains exit instead of returning
-        code = err.code if isinstance(err.code, int) else 2
-    if code not in (0, None):
-        raise RuntimeError(f"estgen {' '.join(argv)} exited {code}")
-    name = load_model(model).name
-    return out / f"{name}_{filter}.h", out / f"{name}_{filter}.c"
+        from .cli import main as cli_main
+    except ImportError:
+        cli_main = None
+    if cli_main is not None:
+        argv = ["generate", os.fspath(model), "--filter", filter, "--precision", precision, "-o", str(out)]
+        for key, val in options.items():
+            argv += [f"--{key}", repr(float(val))]
+        try:
+            code = cli_main(argv)
+        except SystemExit as err:  # argparse exits instead of returning
+            code = err.code if isinstance(err.code, int) else 2
+        if code not in (0, None):
+            raise RuntimeError(f"estgen {' '.join(argv)} exited {code}")
+    else:  # the command line is not there yet: the same generator, called directly
+        from .emit import generate as emit_generate
+
+        out.mkdir(parents=True, exist_ok=True)
+        for fname, text in emit_generate(spec, filter, precision, **options).files.items():
+            (out / fname).write_text(text)
+    return out / f"{spec.name}_{filter}.h", out / f"{spec.name}_{filter}.c"
 
 
 def _c_literal(v: float, precision: str) -> str:
@@ -418,22 +439,22 @@ def _make(args: Sequence[str], timeout: float = 300) -> None:
     _run(["make", "--no-print-directory", "-C", str(FIRMWARE_DIR), *args], timeout=timeout)
 
 
-def build_firmware(gen_dir: PathLike, prefix: str, filter: str, build_dir: PathLike) -> Path:
+def build_firmware(gen_dir: PathLike, prefix: str, filter: str, build_dir: PathLike, extra_cflags: str = "") -> Path:
     """Build the bare-metal replay (generated_examples/firmware_qemu) for one generated
     filter in ``gen_dir`` (which must hold replay_data.h too). Returns the ELF path."""
     find_tool("arm-none-eabi-gcc")
     build = Path(build_dir).resolve()
     _make([f"MODEL_PREFIX={prefix}", f"FILTER={filter}", f"GEN_DIR={Path(gen_dir).resolve()}", f"BUILD={build}",
-           f"{build}/replay.elf"])
+           f"EXTRA_CFLAGS={extra_cflags}", f"{build}/replay.elf"])
     return build / "replay.elf"
 
 
-def build_host_replay(gen_dir: PathLike, prefix: str, filter: str, build_dir: PathLike) -> Path:
+def build_host_replay(gen_dir: PathLike, prefix: str, filter: str, build_dir: PathLike, extra_cflags: str = "") -> Path:
     """The same replay built for the host (for callgrind). Returns the executable path."""
     find_tool("cc")
     build = Path(build_dir).resolve()
     _make([f"MODEL_PREFIX={prefix}", f"FILTER={filter}", f"GEN_DIR={Path(gen_dir).resolve()}", f"BUILD={build}",
-           f"{build}/replay_host"])
+           f"EXTRA_CFLAGS={extra_cflags}", f"{build}/replay_host"])
     return build / "replay_host"
 
 

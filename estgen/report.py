@@ -1,0 +1,402 @@
+"""``estgen report``: what a generated filter costs on a target.
+
+Figures, each measured, never estimated:
+
+* RAM: ``sizeof`` the filter struct on the target (all filter state lives in it), read from a
+  compiled probe object with ``nm -S``.
+* Stack: for each public function, GCC's ``-fstack-usage`` frame plus the deepest chain of
+  static helpers it calls (from ``-fcallgraph-info=su``, every callee assumed reached at the
+  deepest point: a conservative bound). Library calls (libm, libgcc) are listed, not counted;
+  on the emulated Cortex-M4 the replay also measures the real high-water mark, library calls
+  included, by painting the stack.
+* Flash: ``.text`` + ``.rodata`` of the filter's object on the target (``size -A``).
+* Operation counts of predict and of each update, from the generator (counted on the
+  expressions as printed, before the C compiler optimizes); where the generator gives none, by
+  a tokenizer over the generated C (see :func:`count_c_ops`).
+* Instructions per call of predict and of each update: on an emulated Cortex-M4F (QEMU
+  ``mps2-an386`` with ``-icount shift=0``, timed by SysTick, whose ticks-per-instruction the
+  replay calibrates with a loop of known length) and on the host (``valgrind --tool=callgrind
+  --toggle-collect``), both over the same simulated scenario.
+
+A tool that is not installed is reported as missing and its figures are left out.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import math
+import re
+import sys
+import tempfile
+from pathlib import Path
+from typing import Any, Dict, List, Optional, Sequence, Tuple
+
+from . import cross
+
+__all__ = ["add_arguments", "run", "make_report", "format_report", "count_c_ops", "c_function_bodies"]
+
+DEFAULT_STEPS = 200
+DEFAULT_SEED = 1
+
+_OP_KEYS = ("add", "mul", "div", "sqrt", "transcendental")
+
+
+def add_arguments(parser: argparse.ArgumentParser) -> None:
+    """Add ``estgen report``'s arguments to ``parser``."""
+    parser.add_argument("model", help="the model file (Python)")
+    parser.add_argument("--filter", default="ekf", choices=("ekf", "ukf"))
+    parser.add_argument("--precision", default="float", choices=("float", "double"))
+    parser.add_argument("--target", default="cortex-m4f", choices=tuple(cross.TARGETS),
+                        help="where RAM, stack and flash are measured (default cortex-m4f)")
+    parser.add_argument("--json", metavar="FILE", help="also write the figures as JSON")
+    parser.add_argument("--steps", type=int, default=DEFAULT_STEPS,
+                        help=f"scenario length for the instruction counts (default {DEFAULT_STEPS})")
+    parser.add_argument("--seed", type=int, default=DEFAULT_SEED)
+    parser.add_argument("--alpha", type=float, help="UKF: sigma-point spread")
+    parser.add_argument("--beta", type=float, help="UKF: prior-knowledge weight")
+    parser.add_argument("--kappa", type=float, help="UKF: secondary scaling")
+
+
+def run(args: argparse.Namespace) -> int:
+    """Run ``estgen report`` with parsed ``args``: 0 done, 2 bad input."""
+    from .errors import ModelError
+
+    options = {k: getattr(args, k) for k in ("alpha", "beta", "kappa") if getattr(args, k, None) is not None}
+    try:
+        rep = make_report(args.model, args.filter, args.precision, args.target, steps=args.steps,
+                          seed=args.seed, **options)
+    except ModelError as err:
+        print(f"estgen: {err}", file=sys.stderr)
+        return 2
+    print(format_report(rep))
+    if args.json:
+        Path(args.json).write_text(json.dumps(rep, indent=2, sort_keys=True) + "\n")
+    return 0
+
+
+# ---------------------------------------------------------------------------------------------
+# Operation counts from the C text (used when the generator gives none)
+
+_TOKEN = re.compile(
+    r"\s+|/\*.*?\*/|//[^\n]*|(?P<num>(\d+\.\d*|\.\d+|\d+)([eE][-+]?\d+)?[fFuUlL]*)|(?P<id>[A-Za-z_]\w*)"
+    r"|(?P<op>->|\+\+|--|[-+*/]=|&&|\|\||[<>=!]=|<<|>>|[-+*/%()\[\]{};,<>=!&|^~?:.])",
+    re.S,
+)
+_TRANSCENDENTAL = frozenset(
+    f + s for f in "sin cos tan asin acos atan atan2 sinh cosh tanh exp expm1 log log1p log10 log2 pow hypot cbrt".split()
+    for s in ("", "f")
+)
+_NOT_OPERANDS = frozenset("return case sizeof float double void const char static struct".split())
+_INT_TYPES = frozenset("int unsigned size_t long short char uint8_t uint16_t uint32_t int32_t int8_t int16_t".split())
+
+
+def _tokens(text: str) -> List[str]:
+    out = []
+    for m in _TOKEN.finditer(text):
+        if m.group("num") or m.group("id") or m.group("op"):
+            out.append(m.group(0))
+    return out
+
+
+def _matching(toks: Sequence[str], i: int, opening: str, closing: str, step: int) -> int:
+    """Index of the bracket closing the one at ``toks[i]``, walking by ``step`` (+1 or -1)."""
+    depth = 0
+    while 0 <= i < len(toks):
+        depth += (toks[i] == opening) - (toks[i] == closing)
+        if depth == 0:
+            return i
+        i += step
+    return i
+
+
+def _int_names(toks: Sequence[str]) -> set:
+    """Variables declared with an integer type in a token list (``size_t i, j = 0, k;``)."""
+    names = set()
+    for i, t in enumerate(toks):
+        if t not in _INT_TYPES:
+            continue
+        j, expect = i + 1, True
+        while j < len(toks) and toks[j] not in (";", ")", "{"):
+            if expect and re.fullmatch(r"[A-Za-z_]\w*", toks[j]) and toks[j] not in _INT_TYPES:
+                names.add(toks[j])
+                expect = False
+            elif toks[j] == ",":
+                expect = True
+            j += 1
+    return names
+
+
+def c_function_bodies(source: str) -> Dict[str, List[str]]:
+    """The token lists of the bodies of all functions defined in ``source`` (top-level
+    ``name(...) { ... }``), keyed by function name."""
+    toks = _tokens(source)
+    bodies: Dict[str, List[str]] = {}
+    i, depth = 0, 0
+    while i < len(toks):
+        t = toks[i]
+        if t == "{" and depth == 0:
+            # the function name is the identifier before the parameter list's "("
+            j = _matching(toks, i - 1, ")", "(", -1)
+            name = toks[j - 1] if j > 0 else "?"
+            k = _matching(toks, i, "{", "}", 1)
+            bodies[name] = toks[i + 1:k]
+            i = k + 1
+            continue
+        i += 1
+    return bodies
+
+
+def _is_int_literal(tok: str) -> bool:
+    return bool(re.fullmatch(r"\d+[uUlL]*", tok))
+
+
+def count_c_ops(source: str, function: str, _seen: Tuple[str, ...] = ()) -> Dict[str, int]:
+    """Floating-point operations in one generated C function, counted from the text.
+
+    Method: binary ``+ - * /`` (and their compound assignments) count as add, mul, div;
+    ``sqrt``/``sqrtf`` calls as sqrt, other <math.h> calls (including floor, ceil and fmod, as
+    library calls) as transcendental. Operations inside
+    ``[]`` subscripts, in ``for (...)`` headers, on integer literals or on variables declared
+    with an integer type are index arithmetic and not counted. A ``for`` loop of the form
+    ``for (i = A; i < B; ...)`` with literal bounds multiplies its body by ``B - A``; any other
+    loop counts its body once. Static helpers defined in the same file are counted at each call.
+    """
+    bodies = c_function_bodies(source)
+    toks = bodies[function]
+    counts = {k: 0 for k in _OP_KEYS}
+    ints = _int_names(toks)
+    mult: List[Tuple[int, int]] = []  # (brace depth at which the loop body closes, factor)
+    depth, sub, i = 0, 0, 0
+    factor = 1
+    pending: Optional[int] = None
+    while i < len(toks):
+        t = toks[i]
+        if t == "for":
+            # find the header's parentheses and try to read literal bounds
+            j = _matching(toks, i + 1, "(", ")", 1)
+            head = toks[i + 2:j]
+            trip = 1
+            m = re.fullmatch(r"(\w+) = (\d+)[uU]? ; \1 < (\d+)[uU]? ;.*", " ".join(head))
+            if m:
+                trip = max(0, int(m.group(3)) - int(m.group(2)))
+            pending = trip
+            i = j + 1
+            continue
+        if t == "{":
+            depth += 1
+            if pending is not None:
+                mult.append((depth, pending))
+                factor = math.prod(f for _, f in mult)
+                pending = None
+        elif t == "}":
+            if mult and mult[-1][0] == depth:
+                mult.pop()
+                factor = math.prod(f for _, f in mult)
+            depth -= 1
+        elif t == ";" and pending is not None and depth >= 0:
+            pending = None  # a braceless loop body: counted once (the generator always braces)
+        elif t == "[":
+            sub += 1
+        elif t == "]":
+            sub -= 1
+        elif sub == 0:
+            prev = toks[i - 1] if i > 0 else ""
+            nxt = toks[i + 1] if i + 1 < len(toks) else ""
+            # binary when the left side is an operand: a name, a number or a closing bracket;
+            # not a keyword or a type name ("const float *x" declares a pointer)
+            binary = bool(re.fullmatch(r"[\w.]+|\)|\]", prev)) and prev not in _NOT_OPERANDS \
+                and not prev.endswith("_t")
+            if t in ("+", "-", "*", "/") and binary:
+                operands = (prev, nxt)
+                if not any(_is_int_literal(o) or o in ints for o in operands):
+                    counts[{"+": "add", "-": "add", "*": "mul", "/": "div"}[t]] += factor
+            elif t in ("+=", "-=", "*=", "/="):
+                lhs = toks[i - 1]
+                if lhs not in ints and not _is_int_literal(nxt):
+                    counts[{"+=": "add", "-=": "add", "*=": "mul", "/=": "div"}[t]] += factor
+            elif nxt == "(" and t in ("sqrt", "sqrtf"):
+                counts["sqrt"] += factor
+            elif nxt == "(" and t in _TRANSCENDENTAL:
+                counts["transcendental"] += factor
+            elif nxt == "(" and t in bodies and t != function and t not in _seen:
+                for k, v in count_c_ops(source, t, _seen + (function,)).items():
+                    counts[k] += v * factor
+        i += 1
+    return counts
+
+
+# ---------------------------------------------------------------------------------------------
+# The report
+
+
+def _missing(rep: Dict[str, Any], err: cross.ToolMissing, what: str) -> None:
+    rep["missing"].setdefault(err.tool, []).append(what)
+
+
+def make_report(model: str, filter: str = "ekf", precision: str = "float", target: str = "cortex-m4f",
+                steps: int = DEFAULT_STEPS, seed: int = DEFAULT_SEED, work_dir: Optional[str] = None,
+                **options: Any) -> Dict[str, Any]:
+    """Measure one generated filter. Returns a JSON-ready dict (see the module docstring);
+    figures needing a missing tool are absent and the tool is listed under ``missing``."""
+    from . import load_model
+    from .emit import generate as emit_generate
+
+    spec = load_model(model)
+    if target not in cross.TARGETS:
+        raise ValueError(f"unknown target {target!r}; use one of {sorted(cross.TARGETS)}")
+    tmp = tempfile.TemporaryDirectory(prefix="estgen-report-") if work_dir is None else None
+    work = Path(work_dir if work_dir is not None else tmp.name)  # type: ignore[union-attr]
+    try:
+        # The generator itself (what `estgen generate` writes), so its operation counts come along.
+        gen = work / "gen"
+        gen.mkdir(parents=True, exist_ok=True)
+        generated = emit_generate(spec, filter, precision, **options)
+        for fname, content in generated.files.items():
+            (gen / fname).write_text(content)
+        prefix = f"{spec.name}_{filter}"
+        header, source = gen / f"{prefix}.h", gen / f"{prefix}.c"
+        fn_names = [f"{prefix}_predict"] + [f"{prefix}_update_{s.name}" for s in spec.sensors]
+        rep: Dict[str, Any] = {
+            "model": spec.name,
+            "filter": filter,
+            "precision": precision,
+            "target": target,
+            "struct": f"{prefix}_t",
+            "ram_bytes": None,
+            "flash": None,
+            "functions": {},
+            "instructions": {"steps": steps, "seed": seed},
+            "missing": {},
+        }
+        text = source.read_text()
+        for fn in fn_names:
+            key = fn[len(prefix) + 1:]
+            from_text = count_c_ops(text, fn)
+            ops = generated.ops.get(key)
+            how = "generator"
+            if not ops:
+                ops, how = from_text, "C tokenizer"
+            # ops_c_text: the same count taken from the printed C, as a cross-check
+            rep["functions"][fn] = {"ops": {k: int(ops.get(k, 0)) for k in _OP_KEYS}, "ops_counted_by": how,
+                                    "ops_c_text": from_text}
+        _static_figures(rep, header, source, target, work / f"obj-{target}", fn_names)
+        _instruction_figures(rep, spec, filter, precision, gen, work, steps, seed, fn_names, **options)
+        return rep
+    finally:
+        if tmp is not None:
+            tmp.cleanup()
+
+
+def _static_figures(rep: Dict[str, Any], header: Path, source: Path, target: str, obj_dir: Path,
+                    fn_names: Sequence[str]) -> None:
+    try:
+        rep["ram_bytes"] = cross.struct_size(header, rep["struct"], target, obj_dir)
+        obj = cross.compile_object(source, target, obj_dir, include_dirs=[header.parent])
+        sizes = cross.section_sizes(obj, target)
+        rep["flash"] = {"text": sizes["text"], "rodata": sizes["rodata"], "total": sizes["text"] + sizes["rodata"]}
+        su = cross.parse_stack_usage(obj.with_suffix(".su").read_text())
+        frames, edges = cross.parse_callgraph(obj.with_suffix(".ci").read_text())
+        public = cross.defined_functions(obj, target)
+        for fn in list(fn_names) + [f for f in public if f not in fn_names]:
+            worst, external = cross.worst_stack(frames, edges, fn)
+            entry = rep["functions"].setdefault(fn, {})
+            entry["stack_bytes"] = worst
+            entry["stack_static"] = su[fn].qualifiers == ("static",) if fn in su else None
+            entry["library_calls"] = external
+        rep["undefined_symbols"] = cross.undefined_symbols(obj, target)
+    except cross.ToolMissing as err:
+        _missing(rep, err, f"RAM, stack and flash on {target}")
+
+
+def _instruction_figures(rep: Dict[str, Any], spec: Any, filter: str, precision: str, gen: Path, work: Path,
+                         steps: int, seed: int, fn_names: Sequence[str], **options: Any) -> None:
+    from .simulate import make_scenario
+
+    scen = make_scenario(spec, steps, seed)
+    cross.write_replay(spec, filter, precision, scen, gen)
+    prefix = f"{spec.name}_{filter}"
+    # emulated Cortex-M4F
+    try:
+        elf = cross.build_firmware(gen, spec.name, filter, work / "qemu")
+        res = cross.run_qemu(elf, precision)
+        m4: Dict[str, Any] = {"instructions_per_tick": res.instructions_per_tick()}
+        for fn in fn_names:
+            stats = res.predict if fn.endswith("_predict") else res.updates.get(fn[len(prefix) + len("_update_"):])
+            if stats is None or stats.calls == 0:
+                continue
+            ipc = res.instructions_per_call(stats)
+            m4[fn] = {"calls": stats.calls, "instructions_per_call": None if ipc is None else round(ipc, 1),
+                      "stack_high_water": stats.stack, "refused": stats.refused}
+        rep["instructions"]["qemu-cortex-m4f"] = m4
+    except cross.ToolMissing as err:
+        _missing(rep, err, "instructions on the emulated Cortex-M4F")
+    # host, callgrind
+    try:
+        exe = cross.build_host_replay(gen, spec.name, filter, work / "host")
+        counts = cross.callgrind_instructions(exe, fn_names, work / "host")
+        host: Dict[str, Any] = {}
+        for fn, (ir, calls) in counts.items():
+            if calls:
+                host[fn] = {"calls": calls, "instructions_per_call": round(ir / calls, 1)}
+        rep["instructions"]["host-callgrind"] = host
+    except cross.ToolMissing as err:
+        _missing(rep, err, "instructions on the host")
+
+
+def _fmt(v: Any) -> str:
+    if v is None:
+        return "-"
+    if isinstance(v, float):
+        return f"{v:.0f}"
+    return str(v)
+
+
+def format_report(rep: Dict[str, Any]) -> str:
+    """A human-readable table of :func:`make_report`'s figures."""
+    lines = [
+        f"{rep['model']} {rep['filter']} ({rep['precision']}) on {rep['target']}",
+        f"  RAM (sizeof {rep['struct']}): {_fmt(rep['ram_bytes'])} bytes",
+    ]
+    fl = rep.get("flash")
+    lines.append(f"  flash (.text + .rodata): {_fmt(fl['total'])} bytes ({fl['text']} + {fl['rodata']})"
+                 if fl else "  flash: -")
+    m4 = rep["instructions"].get("qemu-cortex-m4f", {})
+    host = rep["instructions"].get("host-callgrind", {})
+    head = (f"  {'function':<36} {'stack':>6} {'add':>6} {'mul':>6} {'div':>5} {'sqrt':>5} {'trans':>5}"
+            f" {'M4F instr':>10} {'host instr':>10}")
+    lines += ["", head, "  " + "-" * (len(head) - 2)]
+    for fn, f in rep["functions"].items():
+        ops = f.get("ops", {})
+        lines.append(
+            f"  {fn:<36} {_fmt(f.get('stack_bytes')):>6} "
+            + " ".join(f"{_fmt(ops.get(k)):>{w}}" for k, w in zip(_OP_KEYS, (6, 6, 5, 5, 5)))
+            + f" {_fmt(m4.get(fn, {}).get('instructions_per_call')):>10}"
+            f" {_fmt(host.get(fn, {}).get('instructions_per_call')):>10}"
+        )
+    lines.append("")
+    lines.append("  stack: own frame + deepest static callee chain (GCC -fstack-usage, -fcallgraph-info);"
+                 " library calls not included")
+    hw = {fn: v.get("stack_high_water") for fn, v in m4.items() if isinstance(v, dict)}
+    if hw:
+        lines.append("  measured stack high-water on the emulated M4F (library calls included): "
+                     + ", ".join(f"{fn} {b}" for fn, b in hw.items()))
+    if m4:
+        lines.append(f"  M4F instructions: QEMU mps2-an386 -icount shift=0, SysTick "
+                     f"({_fmt(m4.get('instructions_per_tick'))} instructions/tick), mean over "
+                     f"{rep['instructions']['steps']} steps")
+    if host:
+        lines.append("  host instructions: valgrind --tool=callgrind --toggle-collect, mean per call")
+    for tool, what in rep["missing"].items():
+        lines.append(f"  missing: {tool} (needed for {'; '.join(what)})")
+    return "\n".join(lines)
+
+
+def _main(argv: Optional[Sequence[str]] = None) -> int:
+    parser = argparse.ArgumentParser(prog="estgen report", description=__doc__.split("\n\n")[0])
+    add_arguments(parser)
+    return run(parser.parse_args(argv))
+
+
+if __name__ == "__main__":
+    sys.exit(_main())
