@@ -258,7 +258,10 @@ class StatSummary:
             return "no data"
         if self.fraction_inside >= INSIDE_REQUIRED:
             return "consistent"
-        return "overconfident" if self.fraction_above >= self.fraction_below else "too cautious"
+        above, below = self.fraction_above, self.fraction_below
+        if above == below:  # as many steps out on each side: the mean against its expectation decides
+            above, below = self.mean, float(self.dof)
+        return "overconfident" if above > below else "too cautious"
 
     def to_dict(self) -> Dict[str, Any]:
         return {

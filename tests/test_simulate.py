@@ -210,3 +210,19 @@ def test_compiled_c_gives_the_reference_statistics(cart):
     np.testing.assert_allclose(c.nees.per_step, r.nees.per_step, rtol=1e-9)
     np.testing.assert_allclose(c.nis["laser"].per_step, r.nis["laser"].per_step, rtol=1e-9)
     assert c.rmse == pytest.approx(r.rmse, rel=1e-9)
+
+
+@pytest.mark.parametrize("tail,verdict", [([2.0, 2.0], "overconfident"), ([0.1, 0.1], "too cautious"),
+                                          ([1.0, 2.0], "consistent"), ([2.0, 0.1], "overconfident"),
+                                          ([3.0, 0.1], "overconfident"), ([2.0, 0.0], "too cautious")])
+def test_verdict_rules(tail, verdict):
+    # Source: Bar-Shalom et al. 2001, 5.4.2: above the upper bound means the filter's
+    # covariance is too small (overconfident), below the lower bound too large; 90% inside
+    # passes (common practice, INSIDE_REQUIRED). With as many steps out on each side, the mean
+    # against its expectation (the dof) decides.
+    from estgen.simulate import StatSummary
+
+    vals = np.array([1.0] * 8 + tail)
+    st = StatSummary(vals, np.arange(1, 11), dof=1, lower=0.5, upper=1.5)
+    assert st.verdict == verdict
+    assert st.fraction_inside == pytest.approx(np.mean((vals >= 0.5) & (vals <= 1.5)))
