@@ -23,7 +23,7 @@ import sympy as sp
 
 from .chi2 import chi2_ppf
 from .errors import ModelError
-from .model import Model, ModelSpec, as_spec, check_filter_support
+from .model import Model, ModelSpec, as_spec, check_filter_support, with_gates
 from .status import Status
 
 __all__ = [
@@ -516,11 +516,12 @@ def check_ukf_parameters(n: int, alpha: float, beta: float, kappa: float) -> Non
 
 
 def reference(model: ModelLike, filter: str = "ekf", *, alpha: float = 1.0, beta: float = 2.0,
-              kappa: float = 0.0, params: Optional[Mapping[str, float]] = None
-              ) -> Union[ReferenceEKF, ReferenceUKF]:
+              kappa: float = 0.0, params: Optional[Mapping[str, float]] = None,
+              gates: Optional[Dict[str, float]] = None) -> Union[ReferenceEKF, ReferenceUKF]:
     """The numpy reference filter for ``model`` (a ModelSpec, a Model or a model file path),
-    started at the model's x0 and P0. ``params`` overrides parameter defaults."""
-    spec = as_spec(model)
+    started at the model's x0 and P0. ``params`` overrides parameter defaults; ``gates`` sets
+    chi-square gate probabilities per sensor, as for :func:`estgen.build`."""
+    spec = with_gates(as_spec(model), gates)
     check_filter_support(spec, filter)
     if filter == "ekf":
         return ReferenceEKF(spec, params=params)

@@ -347,34 +347,50 @@ class MonteCarloResult:
 
 
 # The worker context: set in the parent before the pool forks, so nothing unpicklable (sympy
-# expressions, the model's input-profile lambda, a compiled cffi module) has to be sent.
+# expressions, the model's input-profile lambda, a loaded cffi module) has to be sent.
 _CTX: Dict[str, Any] = {}
 
 
-def _make_filter(ctx: Dict[str, Any]) -> Any:
+def _filter_factory(ctx: Dict[str, Any]) -> Callable[[], Any]:
+    """A function returning a fresh filter under test, its parameters as the run wants them.
+
+    For the C, the code is generated and compiled (or loaded from the build cache) once here;
+    each run then gets a new filter struct over the same loaded module, initialized by the C's
+    own init, so a run costs no regeneration.
+    """
     spec: ModelSpec = ctx["spec"]
     ukf_opts = {"alpha": ctx["alpha"], "beta": ctx["beta"], "kappa": ctx["kappa"]} if ctx["filter"] == "ukf" else {}
     if ctx["use_reference"]:
         mf = model_functions(spec)
         if ctx["filter"] == "ekf":
-            filt: Any = ReferenceEKF(spec, functions=mf)
+            def new() -> Any:
+                return ReferenceEKF(spec, functions=mf)
         else:
-            filt = ReferenceUKF(spec, functions=mf, **ukf_opts)
+            def new() -> Any:
+                return ReferenceUKF(spec, functions=mf, **ukf_opts)
     else:
-        from .build import build  # the build module caches the compiled product
+        from .build import CFilter, compile_generated
+        from .emit import generate
 
-        filt = build(spec, filter=ctx["filter"], precision=ctx["precision"], **ukf_opts)
-    for name, value in ctx["set_params"].items():
-        filt.set_param(name, value)
-    return filt
+        comp = compile_generated(generate(spec, filter=ctx["filter"], precision=ctx["precision"], **ukf_opts))
+
+        def new() -> Any:
+            return CFilter(spec, comp, ctx["filter"])
+
+    def fresh() -> Any:
+        filt = new()
+        for name, value in ctx["set_params"].items():
+            filt.set_param(name, value)
+        return filt
+
+    return fresh
 
 
 def _one_run(r: int) -> Dict[str, Any]:
     ctx = _CTX
     spec: ModelSpec = ctx["spec"]
     sc = make_scenario(spec, ctx["steps"], seed=[ctx["seed"], r], dt=ctx["dt"], every=ctx["every"])
-    filt = _make_filter(ctx)
-    out = run_filter(filt, sc)
+    out = run_filter(ctx["new_filter"](), sc)
     angles = np.array(spec.angle_states, dtype=bool)
     err = out["x"][1:] - sc.x_true[1:]
     if angles.any():
@@ -438,8 +454,10 @@ def monte_carlo(
     ctx = {"spec": spec, "filter": filter, "use_reference": bool(use_reference), "precision": precision,
            "alpha": alpha, "beta": beta, "kappa": kappa, "set_params": changed, "steps": steps,
            "seed": int(seed), "dt": dtv, "every": ev}
-    _make_filter(ctx)  # build (and cache) the C once, and fail here rather than in a worker
-    model_functions(spec)  # lambdify before forking so workers inherit it
+    # build the C (or lambdify the model) once, before forking, so workers inherit it and a
+    # problem shows here rather than in a worker
+    ctx["new_filter"] = _filter_factory(ctx)
+    model_functions(spec)  # the truth's functions
 
     nworkers = min(runs, int(workers) if workers else (os.cpu_count() or 1))
     show = sys.stderr.isatty() if progress is None else bool(progress)

@@ -322,3 +322,14 @@ def test_unscented_transform_of_wrapped_angles_uses_the_circular_mean():
     mean, cov = unscented_transform(lambda a: wrap_angle(a), np.array([mu]), np.array([[s**2]]), angles=[True])
     assert abs(wrap_angle(mean[0] - mu)) < 1e-12
     assert cov[0, 0] == pytest.approx(s**2, rel=1e-12)
+
+
+def test_gates_option_overrides_the_model(cart):
+    # Source: scipy.stats.chi2.ppf (as above); reference(..., gates=) mirrors estgen.build's
+    # option: a residual of 3 sigma passes no 0.99 gate (chi2.ppf(0.99, 1) = 6.63 < 9).
+    f = estgen.reference(cart, "ekf", gates={"laser": 0.99})
+    S = 1.0 + 0.09
+    assert scipy.stats.chi2.ppf(0.99, 1) < 9.0
+    assert f.update("laser", [3.0 * math.sqrt(S)]) == Status.GATED
+    assert f.nis == pytest.approx(9.0, rel=1e-12)
+    assert estgen.reference(cart, "ekf").update("laser", [3.0 * math.sqrt(S)]) == Status.OK
