@@ -159,15 +159,12 @@ def _parser() -> argparse.ArgumentParser:
     simulate.add_arguments(s)
     s.set_defaults(func=simulate.run)
 
-    try:
-        from . import report
-    except ImportError:  # estgen.report is being written in parallel; drop this guard once it lands
-        report = None
-    if report is not None:
-        r = sub.add_parser("report", help="RAM, stack, flash, operation and instruction counts of the generated C",
-                           description="Resource figures of the generated filter on a target.")
-        report.add_arguments(r)
-        r.set_defaults(func=report.run)
+    from . import report
+
+    r = sub.add_parser("report", help="RAM, stack, flash, operation and instruction counts of the generated C",
+                       description="Resource figures of the generated filter on a target.")
+    report.add_arguments(r)
+    r.set_defaults(func=report.run)
     return p
 
 
