@@ -328,6 +328,7 @@ def _instruction_figures(rep: Dict[str, Any], spec: Any, filter: str, precision:
             ipc = res.instructions_per_call(stats)
             m4[fn] = {"calls": stats.calls, "instructions_per_call": None if ipc is None else round(ipc, 1),
                       "stack_high_water": stats.stack, "refused": stats.refused}
+        m4["per_step"] = _per_step(m4, fn_names, steps)
         rep["instructions"]["qemu-cortex-m4f"] = m4
     except cross.ToolMissing as err:
         _missing(rep, err, "instructions on the emulated Cortex-M4F")
@@ -339,9 +340,19 @@ def _instruction_figures(rep: Dict[str, Any], spec: Any, filter: str, precision:
         for fn, (ir, calls) in counts.items():
             if calls:
                 host[fn] = {"calls": calls, "instructions_per_call": round(ir / calls, 1)}
+        host["per_step"] = _per_step(host, fn_names, steps)
         rep["instructions"]["host-callgrind"] = host
     except cross.ToolMissing as err:
         _missing(rep, err, "instructions on the host")
+
+
+def _per_step(figs: Dict[str, Any], fn_names: Sequence[str], steps: int) -> Optional[float]:
+    """Mean instructions of one scenario step: one predict and the updates that step had."""
+    if not all(fn in figs and figs[fn]["instructions_per_call"] is not None for fn in fn_names[:1]):
+        return None
+    total = sum(figs[fn]["calls"] * figs[fn]["instructions_per_call"] for fn in fn_names
+                if fn in figs and figs[fn]["instructions_per_call"] is not None)
+    return round(total / steps, 1)
 
 
 def _fmt(v: Any) -> str:
@@ -374,6 +385,8 @@ def format_report(rep: Dict[str, Any]) -> str:
             + f" {_fmt(m4.get(fn, {}).get('instructions_per_call')):>10}"
             f" {_fmt(host.get(fn, {}).get('instructions_per_call')):>10}"
         )
+    lines.append(f"  {'one step (predict + that step`s updates)':<70} {_fmt(m4.get('per_step')):>10}"
+                 f" {_fmt(host.get('per_step')):>10}")
     lines.append("")
     lines.append("  stack: own frame + deepest static callee chain (GCC -fstack-usage, -fcallgraph-info);"
                  " library calls not included")
