@@ -24,7 +24,7 @@ import numpy as np
 
 from .chi2 import chi2_ppf
 from .errors import ModelError
-from .model import ModelSpec, as_spec, check_filter_support
+from .model import ModelSpec, as_spec, check_filter_support, with_gates
 from .reference import ReferenceEKF, ReferenceUKF, check_ukf_parameters, model_functions, wrap_angle
 from .status import Status
 
@@ -311,6 +311,7 @@ class MonteCarloResult:
     filter_params: Dict[str, float]  # all the filter's parameters
     set_params: Dict[str, float]  # the ones changed from the model's defaults (the truth's)
     seconds: float
+    gates: Dict[str, float] = field(default_factory=dict)  # gate probabilities set for the filter
     #: run 0 in full for plotting: t, x_true, x, P
     run0: Dict[str, np.ndarray] = field(default_factory=dict, repr=False)
 
@@ -333,6 +334,7 @@ class MonteCarloResult:
             "dt": self.dt,
             "filter_params": dict(self.filter_params),
             "set_params": dict(self.set_params),
+            "gates": dict(self.gates),
             "nees": self.nees.to_dict(),
             "nis": {k: v.to_dict() for k, v in self.nis.items()},
             "rmse": {k: _num(v) for k, v in self.rmse.items()},
@@ -358,7 +360,7 @@ def _filter_factory(ctx: Dict[str, Any]) -> Callable[[], Any]:
     each run then gets a new filter struct over the same loaded module, initialized by the C's
     own init, so a run costs no regeneration.
     """
-    spec: ModelSpec = ctx["spec"]
+    spec: ModelSpec = with_gates(ctx["spec"], ctx["gates"])  # gates act in the filter only
     ukf_opts = {"alpha": ctx["alpha"], "beta": ctx["beta"], "kappa": ctx["kappa"]} if ctx["filter"] == "ukf" else {}
     if ctx["use_reference"]:
         mf = model_functions(spec)
@@ -427,6 +429,7 @@ def monte_carlo(
     dt: Optional[float] = None,
     workers: Optional[int] = None,
     progress: Optional[bool] = None,
+    gates: Optional[Mapping[str, float]] = None,
 ) -> MonteCarloResult:
     """Run the filter on ``runs`` independent simulations and test its consistency.
 
@@ -434,6 +437,7 @@ def monte_carlo(
     ``set_params`` changes the filter's parameters; the simulated truth keeps the defaults.
     Runs are spread over ``workers`` processes (default: all cores; 1 runs in this process).
     ``progress``: show progress on stderr (default: when stderr is a terminal).
+    ``gates`` sets the filter's chi-square gate probabilities per sensor (as ``--gate``).
     """
     started = time.perf_counter()
     spec = as_spec(spec)
@@ -451,7 +455,8 @@ def monte_carlo(
     changed = {k: v for k, v in fparams.items() if k in (set_params or {})}
     ev = _resolve_every(spec, every)
     dtv = _scenario_dt(spec, dt)
-    ctx = {"spec": spec, "filter": filter, "use_reference": bool(use_reference), "precision": precision,
+    with_gates(spec, dict(gates or {}))  # checks the names and probabilities
+    ctx = {"spec": spec, "gates": dict(gates or {}), "filter": filter, "use_reference": bool(use_reference), "precision": precision,
            "alpha": alpha, "beta": beta, "kappa": kappa, "set_params": changed, "steps": steps,
            "seed": int(seed), "dt": dtv, "every": ev}
     # build the C (or lambdify the model) once, before forking, so workers inherit it and a
@@ -480,8 +485,10 @@ def monte_carlo(
             sys.stderr.write("\n")
             sys.stderr.flush()
     done_results = [res for res in results if res is not None]
-    return _summarize(spec, filter, use_reference, precision, runs, steps, int(seed), dtv, fparams, changed,
+    out = _summarize(spec, filter, use_reference, precision, runs, steps, int(seed), dtv, fparams, changed,
                       done_results, time.perf_counter() - started)
+    out.gates = dict(ctx["gates"])
+    return out
 
 
 def _indexed_run(r: int) -> Tuple[int, Dict[str, Any]]:
@@ -554,6 +561,8 @@ def format_summary(res: MonteCarloResult) -> str:
     if res.set_params:
         lines.append("filter parameters changed (the truth keeps the defaults): "
                      + ", ".join(f"{k} = {v:g}" for k, v in res.set_params.items()))
+    if res.gates:
+        lines.append("gates set for the filter: " + ", ".join(f"{k} at {v:g}" for k, v in res.gates.items()))
     lines.append("")
     lines.append("RMSE per state")
     width = max(len(s) for s in res.states)
@@ -641,6 +650,8 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--every", action="append", default=[], metavar="SENSOR=N",
                         help="the sensor reports every N-th step (overrides the model); repeatable")
     parser.add_argument("--dt", type=float, default=None, help="simulation step in seconds")
+    parser.add_argument("--gate", action="append", default=[], metavar="SENSOR=P",
+                        help="chi-square gate probability of a sensor in the filter (overrides the model); repeatable")
     parser.add_argument("--reference", action="store_true", help="test the numpy reference instead of the C")
     parser.add_argument("--alpha", type=float, default=1.0, help="UKF sigma-point spread (default 1)")
     parser.add_argument("--beta", type=float, default=2.0, help="UKF prior-distribution term (default 2)")
@@ -684,6 +695,7 @@ def run(args: argparse.Namespace) -> int:
         every=_pairs(args.every, "--every", int),
         dt=args.dt,
         workers=args.workers,
+        gates=_pairs(args.gate, "--gate", float),
         progress=True if getattr(args, "progress", False) else (None if not args.quiet else False),
     )
     if args.json:

@@ -226,3 +226,22 @@ def test_verdict_rules(tail, verdict):
     st = StatSummary(vals, np.arange(1, 11), dof=1, lower=0.5, upper=1.5)
     assert st.verdict == verdict
     assert st.fraction_inside == pytest.approx(np.mean((vals >= 0.5) & (vals <= 1.5)))
+
+
+def test_gate_option_gates_in_the_filter_only(cart, tmp_path):
+    # Source: scipy.stats.chi2: a gate at probability p rejects a fraction 1 - p of the NIS
+    # values of a consistent filter. 5 runs x 200 steps = 1000 updates at p = 0.99: about 10
+    # gated, binomial s.d. ~ 3.1. (At small p the gate itself makes the filter inconsistent,
+    # Bar-Shalom et al. 2001, so a loose gate is the one to count.) The truth is unaffected.
+    res = monte_carlo(cart, "ekf", runs=5, steps=200, seed=0, use_reference=True, workers=1,
+                      gates={"laser": 0.99})
+    gated = res.refusals.get("GATED", 0)
+    assert 0 < gated and abs(gated - 10) < 5 * math.sqrt(1000 * 0.01 * 0.99)
+    plain = monte_carlo(cart, "ekf", runs=5, steps=200, seed=0, use_reference=True, workers=1)
+    assert "GATED" not in plain.refusals
+    assert res.gates == {"laser": 0.99} and plain.gates == {}
+    js = tmp_path / "g.json"
+    assert cli.main(["simulate", CART, "--runs", "2", "--steps", "10", "--reference", "--workers", "1",
+                     "--gate", "laser=0.9", "--json", str(js), "--quiet"]) == 0
+    assert json.loads(js.read_text())["gates"] == {"laser": 0.9}
+    assert cli.main(["simulate", CART, "--runs", "2", "--steps", "5", "--reference", "--gate", "radar=0.9"]) == 2
