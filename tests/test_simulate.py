@@ -231,8 +231,8 @@ def test_verdict_rules(tail, verdict):
 def test_gate_option_gates_in_the_filter_only(cart, tmp_path):
     # Source: scipy.stats.chi2: a gate at probability p rejects a fraction 1 - p of the NIS
     # values of a consistent filter. 5 runs x 200 steps = 1000 updates at p = 0.99: about 10
-    # gated, binomial s.d. ~ 3.1. (At small p the gate itself makes the filter inconsistent,
-    # Bar-Shalom et al. 2001, so a loose gate is the one to count.) The truth is unaffected.
+    # gated, binomial s.d. ~ 3.1. (A tight gate drops large innovations often enough to make
+    # the filter itself overconfident, common practice, so a loose gate is the one to count.)
     res = monte_carlo(cart, "ekf", runs=5, steps=200, seed=0, use_reference=True, workers=1,
                       gates={"laser": 0.99})
     gated = res.refusals.get("GATED", 0)
