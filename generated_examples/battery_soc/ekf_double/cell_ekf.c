@@ -54,7 +54,7 @@ static int cell_ekf_posdef(const double *P)
 
 void cell_ekf_init(cell_ekf_t *s)
 {
-    s->x[0] = 0.8;
+    s->x[0] = 0.6;
     s->x[1] = 0.0;
     s->x[2] = 0.0;
     s->P[0] = 0.010000000000000002;
@@ -162,10 +162,10 @@ int cell_ekf_update_voltage_nis(cell_ekf_t *s, const double *z, double *nis_out)
 
     memcpy(xs, s->x, sizeof xs);
     memcpy(Ps, s->P, sizeof Ps);
-    const double t0 = exp(-18.0*x[0]);
-    const double t1 = exp(20.0*x[0] - 20.0);
+    const double t0 = exp(-15.0*x[0]);
+    const double t1 = exp(12.0*x[0] - 12.0);
     const double hz0 = -0.4*t0 + 0.08*t1 + 0.72*x[0] - x[1] - x[2] + 3.4;
-    const double H0_0 = 7.2*t0 + 1.6*t1 + 0.72;
+    const double H0_0 = 6.0*t0 + 0.96*t1 + 0.72;
     y[0] = -hz0 + z[0];
     W[0] = H0_0*Ps[0] - Ps[1] - Ps[2];
     W[1] = H0_0*Ps[1] - Ps[3] - Ps[4];

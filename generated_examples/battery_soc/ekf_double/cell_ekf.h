@@ -52,6 +52,9 @@ extern "C" {
 #define CELL_EKF_NP 6         /* packed covariance entries */
 #define CELL_EKF_M_voltage 1  /* components of sensor voltage */
 
+/* The floating type this filter was generated for. */
+typedef double cell_ekf_real;
+
 typedef enum cell_ekf_status {
     CELL_EKF_OK = 0,
     CELL_EKF_BAD_INPUT = 1,

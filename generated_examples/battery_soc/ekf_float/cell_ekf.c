@@ -54,7 +54,7 @@ static int cell_ekf_posdef(const float *P)
 
 void cell_ekf_init(cell_ekf_t *s)
 {
-    s->x[0] = 0.8F;
+    s->x[0] = 0.6F;
     s->x[1] = 0.0F;
     s->x[2] = 0.0F;
     s->P[0] = 0.010000000000000002F;
@@ -162,10 +162,10 @@ int cell_ekf_update_voltage_nis(cell_ekf_t *s, const float *z, float *nis_out)
 
     memcpy(xs, s->x, sizeof xs);
     memcpy(Ps, s->P, sizeof Ps);
-    const float t0 = expf(-18.0F*x[0]);
-    const float t1 = expf(20.0F*x[0] - 20.0F);
+    const float t0 = expf(-15.0F*x[0]);
+    const float t1 = expf(12.0F*x[0] - 12.0F);
     const float hz0 = -0.4F*t0 + 0.08F*t1 + 0.72F*x[0] - x[1] - x[2] + 3.4F;
-    const float H0_0 = 7.2F*t0 + 1.6F*t1 + 0.72F;
+    const float H0_0 = 6.0F*t0 + 0.96F*t1 + 0.72F;
     y[0] = -hz0 + z[0];
     W[0] = H0_0*Ps[0] - Ps[1] - Ps[2];
     W[1] = H0_0*Ps[1] - Ps[3] - Ps[4];

@@ -60,6 +60,9 @@ extern "C" {
 #define ROVER_EKF_M_range_cd 2  /* components of sensor range_cd */
 #define ROVER_EKF_M_compass 1  /* components of sensor compass */
 
+/* The floating type this filter was generated for. */
+typedef double rover_ekf_real;
+
 typedef enum rover_ekf_status {
     ROVER_EKF_OK = 0,
     ROVER_EKF_BAD_INPUT = 1,

@@ -54,6 +54,9 @@ extern "C" {
 #define CART_EKF_M_encoder 1  /* components of sensor encoder */
 #define CART_EKF_M_speed 1  /* components of sensor speed */
 
+/* The floating type this filter was generated for. */
+typedef float cart_ekf_real;
+
 typedef enum cart_ekf_status {
     CART_EKF_OK = 0,
     CART_EKF_BAD_INPUT = 1,

@@ -75,6 +75,9 @@ extern "C" {
 #define NAV_EKF_M_baro 1  /* components of sensor baro */
 #define NAV_EKF_M_mag_heading 1  /* components of sensor mag_heading */
 
+/* The floating type this filter was generated for. */
+typedef double nav_ekf_real;
+
 typedef enum nav_ekf_status {
     NAV_EKF_OK = 0,
     NAV_EKF_BAD_INPUT = 1,
