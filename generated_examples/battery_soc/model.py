@@ -28,7 +28,7 @@ dt = model.dt
 # Open-circuit voltage: steep near empty, sloped plateau, rising toward full. The shape is
 # the familiar one of a graphite/NMC cell (from memory); the coefficients are invented so
 # that OCV(0) ~ 3.0 V and OCV(1) ~ 4.2 V. Smooth everywhere, so the EKF can differentiate it.
-ocv = 3.4 + 0.72 * soc - 0.4 * sp.exp(-18 * soc) + 0.08 * sp.exp(-20 * (1 - soc))
+ocv = 3.4 + 0.72 * soc - 0.4 * sp.exp(-15 * soc) + 0.08 * sp.exp(-12 * (1 - soc))
 
 decay = sp.exp(-dt / (r1 * c1))
 model.process([
@@ -43,8 +43,9 @@ model.process_noise([(2e-5) ** 2 * dt, (5e-4) ** 2 * dt, (1e-3) ** 2])
 # Terminal voltage, 12-bit-class cell monitor: ~5 mV noise (invented for the demo).
 model.sensor("voltage", [ocv - v_rc - v_ohm], noise=[0.005 ** 2], units="V")
 
-# Start unsure of the charge (1 sigma 10 %), at rest.
-model.initial([0.8, 0.0, 0.0], sp.diag(0.1 ** 2, 0.01 ** 2, 0.01 ** 2))
+# Start unsure of the charge (1 sigma 10 %), at rest, mid-charge: the knees of the curve
+# steepen fast outside [0, 1], so a start near full could draw a truth beyond it.
+model.initial([0.6, 0.0, 0.0], sp.diag(0.1 ** 2, 0.01 ** 2, 0.01 ** 2))
 
 
 def pulses(t: float) -> list:

@@ -28,14 +28,16 @@ beyond = sp.Max(err - band, 0) + sp.Min(err + band, 0)  # zero inside the dead b
 # dp relaxes toward dp_nom, so it stays well above zero (sqrt in the flow law).
 model.process([opening + dt * gain * beyond, dp + dt * (dp_nom - dp) / tau])
 
-# Q: positioner jitter and a pressure drop wandering by ~0.05 bar/sqrt(s); invented.
-model.process_noise([(0.002) ** 2 * dt, 0.05 ** 2 * dt])
+# Q: positioner jitter (0.01/sqrt(s)) and a pressure drop wandering by ~0.05 bar/sqrt(s); invented.
+model.process_noise([(0.01) ** 2 * dt, 0.05 ** 2 * dt])
 
 # Flow meter (m^3/h), 1 % of a 10 m^3/h range 1-sigma; a coarse stem potentiometer.
 model.sensor("flow", [kv * opening * sp.sqrt(dp)], noise=[0.1 ** 2], units="m^3/h")
 model.sensor("stem", [opening], noise=[0.02 ** 2], every=10, units="1")
 
-model.initial([0.3, 2.0], sp.diag(0.1 ** 2, 0.3 ** 2))
+# Start: opening known to 5 % from the last command, pressure drop to 0.05 bar (a tighter
+# prior keeps the flow update's product a * sqrt(dp) close to linear for the UKF).
+model.initial([0.3, 2.0], sp.diag(0.05 ** 2, 0.05 ** 2))
 
 
 def steps(t: float) -> list:
