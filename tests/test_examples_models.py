@@ -120,3 +120,48 @@ def test_jacobian_check_detects_a_wrong_derivative() -> None:
     J_fd = _central_diff(fun, x, [], np.array([1e-6]))
     assert abs(J_fd[0, 0] - math.cos(0.7)) < 1e-8
     assert abs(J_fd[0, 0] - math.sin(0.7)) > 1e-2
+
+
+# Steps and runs per example for the convergence check: a few hundred steps each, longer for
+# the navigation model whose satellite fixes come every 10th step.
+CONVERGENCE = {
+    "battery_soc": (400, 6),
+    "beacon_rover": (400, 6),
+    "strapdown_nav": (1000, 3),
+    "linear_cart": (400, 6),
+    "valve_actuator": (400, 6),
+}
+FILTERS = [(ex, f) for ex in EXAMPLES for f in ("ekf", "ukf") if not (f == "ekf" and ex in EKF_REFUSED)]
+
+
+@pytest.mark.parametrize("name,filt", FILTERS, ids=[f"{e}-{f}" for e, f in FILTERS])
+def test_reference_filter_converges_consistently(name: str, filt: str) -> None:
+    from estgen.reference import wrap_angle
+    from estgen.simulate import make_scenario, run_filter
+
+    spec = estgen.load_model(_path(name))
+    steps, runs = CONVERGENCE[name]
+    angles = np.array(spec.angle_states, dtype=bool)
+    outside, total, nees_tail = 0, 0, []
+    for r in range(runs):
+        sc = make_scenario(spec, steps, seed=[20261201, r])
+        out = run_filter(estgen.reference(spec, filter=filt), sc)
+        assert not out["refusals"], out["refusals"]
+        err = out["x"][1:] - sc.x_true[1:]
+        err[:, angles] = wrap_angle(err[:, angles])
+        P = out["P"][1:]
+        sig = np.sqrt(np.einsum("kii->ki", P))
+        # A consistent filter keeps each error inside 3 sigma ~99.7 % of the time (common
+        # practice; Bar-Shalom, Li, Kirubarajan, 2001, sec. 5.4); allow 2 % for the
+        # time-correlated errors of a few runs.
+        outside += int(np.sum(np.abs(err) > 3 * sig))
+        total += err.size
+        tail = slice(steps // 2, steps)
+        nees_tail.append(np.mean(np.einsum("ki,kij,kj->k", err[tail], np.linalg.inv(P[tail]), err[tail])))
+        # It learns from the sensors: some state's sigma ends well below its initial one.
+        ratio = sig[-1] / np.sqrt(np.diag(np.array(spec.P0)))
+        assert np.min(ratio) < 0.5, ratio
+    assert outside / total < 0.02, f"{outside / total:.4f} of errors beyond 3 sigma"
+    # Mean NEES is n for a consistent filter; a loose band (0.5 n, 1.6 n) for few runs.
+    mean_nees = float(np.mean(nees_tail))
+    assert 0.5 * spec.n < mean_nees < 1.6 * spec.n, mean_nees
