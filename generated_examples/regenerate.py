@@ -20,11 +20,11 @@ HERE = os.path.dirname(os.path.abspath(__file__))
 
 #: example folder -> the filters its C is committed for (both precisions each)
 EXAMPLES: Dict[str, Tuple[str, ...]] = {
-    "battery_soc": ("ekf",),
-    "beacon_rover": ("ekf",),
-    "strapdown_nav": ("ekf",),
-    "linear_cart": ("ekf",),
-    "valve_actuator": (),
+    "battery_soc": ("ekf", "ukf"),
+    "beacon_rover": ("ekf", "ukf"),
+    "strapdown_nav": ("ekf", "ukf"),
+    "linear_cart": ("ekf", "ukf"),
+    "valve_actuator": ("ukf",),  # Min/Max: the EKF refuses it
 }
 PRECISIONS = ("float", "double")
 

@@ -1,0 +1,508 @@
+"""Stage 2 for the UKF: the scaled unscented transform unrolled into straight-line statements.
+
+The algorithm is exactly the reference's (:class:`estgen.reference.ReferenceUKF`): sigma points
+``x``, ``x +- gamma L_i`` with ``L L' = P`` (lower Cholesky) and ``gamma = sqrt(n + lambda)``;
+weighted mean (circular for angles); covariance from the weighted deviations; fresh sigma points
+for every update; ``K = C S^-1``; ``P - K S K'``. What changes is only how the sums are arranged,
+so that structure the model already has costs nothing at run time:
+
+* Symmetric pairs. With ``d+`` and ``d-`` the deviations of the images of ``x + gamma L_i`` and
+  ``x - gamma L_i``, ``d+ d+' + d- d-' = 2 (s s' + t t')`` with ``s = (d+ + d-)/2`` and
+  ``t = (d+ - d-)/2``. The weights ``2 w = 1/(n + lambda)`` are folded into ``s`` and ``t``
+  (scaled by ``sqrt(2 w)``), so the covariance is ``Wc0 d0 d0' + sum_i (s_i s_i' + t_i t_i')``.
+* Linear components. A component of f (or h) that is affine in x, ``a' x + b``, maps the sigma
+  points exactly (Julier & Uhlmann, Proc. IEEE 92(3), 2004): its mean is ``a' x + b``, its ``s``
+  and ``d0`` vanish and its scaled ``t_i`` is ``a' L_i``. Between two such components the
+  covariance is ``a' P b``, read straight from P; no sigma point is evaluated for them.
+* Triangular factor. ``L_i`` is zero above row i, so the i-th sigma pair differs from x only in
+  states i..n-1; an image that does not depend on those states equals the centre's, and sympy's
+  common-subexpression elimination over all 2n+1 images shares it (and every partial result).
+
+A nonlinear component is evaluated at all 2n+1 points; an angle component takes the circular
+mean ``atan2(sum w sin, sum w cos)`` and wrapped deviations, as the reference does.
+
+The update uses the Cholesky factor ``S = Ls Ls'``: with ``B = C Ls^-T`` and ``b = Ls^-1 y``,
+``K y = B b``, ``K S K' = B B'`` and ``NIS = b' b``; one triangular solve per row of C and no
+explicit gain (for a scalar sensor, ``K = C / S`` directly).
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+from typing import Dict, List, Optional, Sequence, Set, Tuple
+
+import sympy as sp
+
+from .derive import Stmt, c_names, packed_index
+from .errors import ModelError
+from .model import ModelSpec, SensorSpec
+
+__all__ = ["UkfWeights", "ukf_weights", "UkfPredictCode", "UkfUpdateCode", "UkfCode", "derive_ukf",
+           "check_options"]
+
+
+@dataclass(frozen=True)
+class UkfWeights:
+    """Weights of the scaled unscented transform (Julier 2002; Wan & van der Merwe 2000):
+    ``lambda = alpha^2 (n + kappa) - n``, ``Wm0 = lambda / (n + lambda)``,
+    ``Wc0 = Wm0 + 1 - alpha^2 + beta``, ``Wm_i = Wc_i = 1 / (2 (n + lambda))`` for i = 1..2n."""
+
+    n: int
+    alpha: float
+    beta: float
+    kappa: float
+
+    @property
+    def lam(self) -> float:
+        return self.alpha * self.alpha * (self.n + self.kappa) - self.n
+
+    @property
+    def c(self) -> float:
+        """n + lambda, the spread factor of the sigma points' covariance."""
+        return self.n + self.lam
+
+    @property
+    def gamma(self) -> float:
+        """sqrt(n + lambda): sigma points are x +- gamma L_i."""
+        return math.sqrt(self.c)
+
+    @property
+    def w(self) -> float:
+        """The weight of each of the 2n outer points (mean and covariance alike)."""
+        return 0.5 / self.c
+
+    @property
+    def wm0(self) -> float:
+        return self.lam / self.c
+
+    @property
+    def wc0(self) -> float:
+        return self.lam / self.c + 1.0 - self.alpha * self.alpha + self.beta
+
+    def mean_weights(self) -> List[float]:
+        return [self.wm0] + [self.w] * (2 * self.n)
+
+    def cov_weights(self) -> List[float]:
+        return [self.wc0] + [self.w] * (2 * self.n)
+
+
+def check_options(n: int, options: Dict[str, object]) -> UkfWeights:
+    """Validate alpha, beta, kappa (defaults 1, 2, 0) and return the weights.
+
+    Raises :class:`ModelError` for unknown options, non-numbers, ``alpha <= 0`` and
+    ``n + lambda <= 0`` (no spread: the sigma points would coincide or be imaginary).
+    """
+    known = {"alpha": 1.0, "beta": 2.0, "kappa": 0.0}
+    unknown = sorted(set(options) - set(known))
+    if unknown:
+        raise ModelError(f"unknown UKF option(s) {unknown}; the UKF takes alpha, beta and kappa")
+    vals: Dict[str, float] = {}
+    for k, default in known.items():
+        v = options.get(k, default)
+        if v is None:
+            v = default
+        if isinstance(v, bool) or not isinstance(v, (int, float)):
+            try:
+                import numpy as np
+
+                if not isinstance(v, (np.integer, np.floating)):
+                    raise TypeError
+            except TypeError:
+                raise ModelError(f"UKF {k} must be a number, got {v!r}") from None
+        fv = float(v)  # type: ignore[arg-type]
+        if not math.isfinite(fv):
+            raise ModelError(f"UKF {k} must be a finite number, got {v!r}")
+        vals[k] = fv
+    if not vals["alpha"] > 0.0:
+        raise ModelError(f"UKF alpha must be > 0, got {vals['alpha']}; typical values are 1e-3 to 1")
+    wts = UkfWeights(n, vals["alpha"], vals["beta"], vals["kappa"])
+    if not wts.c > 0.0 or not math.isfinite(wts.w):
+        raise ModelError(f"UKF n + lambda = alpha^2 (n + kappa) must be > 0 (n = {n}, got {wts.c:g}); "
+                         f"raise kappa above {-n}")
+    return wts
+
+
+@dataclass
+class UkfPredictCode:
+    stmts: List[Stmt]
+    uses_par: bool
+    uses_u: bool
+    angle_scratch: int  # length of the ``ea`` scratch array (wrapped angle deviations)
+    sigma_locals: int  # named locals holding sigma offsets, images and deviations
+
+
+@dataclass
+class UkfUpdateCode:
+    sensor: SensorSpec
+    stmts: List[Stmt]
+    uses_par: bool
+    m: int
+    angle_scratch: int
+    sigma_locals: int
+
+
+@dataclass
+class UkfCode:
+    spec: ModelSpec
+    weights: UkfWeights
+    predict: UkfPredictCode
+    updates: List[UkfUpdateCode] = field(default_factory=list)
+
+
+def _is_trivial(e: sp.Expr) -> bool:
+    return bool(e.is_Number or e.is_Symbol or (e.is_Mul and len(e.args) == 2 and e.args[0] == -1
+                                               and e.args[1].is_Symbol))
+
+
+def _scaled(coef: float, e: sp.Expr) -> sp.Expr:
+    """``coef * e`` without sympy distributing the number over a sum (one multiply, not many)."""
+    if e == 0 or coef == 0.0:
+        return sp.S.Zero
+    if coef == 1.0:
+        return e
+    if e.is_Add:
+        return sp.Mul(sp.Float(coef), e, evaluate=False)
+    return sp.Float(coef) * e
+
+
+def _sym(name: str) -> sp.Symbol:
+    return sp.Symbol(name)
+
+
+class _Block:
+    """Statements of one function, with named temporaries and dead-code removal."""
+
+    def __init__(self) -> None:
+        self.stmts: List[Stmt] = []
+
+    def value(self, name: str, e: sp.Expr) -> sp.Expr:
+        """A const local for ``e`` unless it is a number or a symbol (then used in place)."""
+        if _is_trivial(e):
+            return e
+        self.stmts.append(Stmt("decl", name, e))
+        return _sym(name)
+
+    def add(self, kind: str, target: str, e: sp.Expr) -> None:
+        self.stmts.append(Stmt(kind, target, e))
+
+    def cse(self, items: Sequence[Tuple[str, sp.Expr]], prefix: str) -> Dict[str, sp.Expr]:
+        """Common subexpressions of all ``items`` (name, expr) shared; returns name -> what later
+        code uses (a number, a symbol, or a new const local). Equal results share one local."""
+        if not items:
+            return {}
+        repl, reduced = sp.cse([e for _, e in items], symbols=sp.numbered_symbols(prefix), order="canonical")
+        for s, e in repl:
+            self.stmts.append(Stmt("decl", str(s), e))
+        out: Dict[str, sp.Expr] = {}
+        seen: Dict[sp.Expr, sp.Expr] = {}
+        for (name, _), e in zip(items, reduced):
+            if e in seen:
+                out[name] = seen[e]
+                continue
+            v = self.value(name, e)
+            seen[e] = v
+            out[name] = v
+        return out
+
+    def pruned(self) -> List[Stmt]:
+        """Drop const locals nothing reads (the compiler would warn about them)."""
+        needed: Set[str] = set()
+        keep: List[Stmt] = []
+        for st in reversed(self.stmts):
+            if st.kind == "decl" and st.target not in needed:
+                continue
+            keep.append(st)
+            needed |= {str(s) for s in st.expr.free_symbols}
+            if st.kind in ("assign", "wrap"):
+                needed.add(st.target)  # arrays read back later by name
+        keep.reverse()
+        return keep
+
+
+def _cholesky(blk: _Block, n: int, P: str, tag: str) -> Dict[Tuple[int, int], sp.Expr]:
+    """Unrolled lower Cholesky factor of packed ``P``; each pivot is checked (finite, > 0)."""
+    L: Dict[Tuple[int, int], sp.Expr] = {}
+    for j in range(n):
+        d = _sym(f"{P}[{packed_index(j, j, n)}]") - sum((L[(j, k)] ** 2 for k in range(j)), sp.S.Zero)
+        dname = f"{tag}d{j}"
+        blk.add("decl", dname, d)
+        blk.add("check", dname, _sym(dname))
+        L[(j, j)] = blk.value(f"{tag}{j}_{j}", sp.sqrt(_sym(dname)))
+        if j + 1 < n:
+            inv = blk.value(f"{tag}i{j}", 1 / L[(j, j)])
+        for i in range(j + 1, n):
+            e = (_sym(f"{P}[{packed_index(i, j, n)}]") - sum((L[(i, k)] * L[(j, k)] for k in range(j)), sp.S.Zero))
+            L[(i, j)] = blk.value(f"{tag}{i}_{j}", e * inv)
+    return L
+
+
+@dataclass
+class _Spread:
+    """One output component's mean and scaled deviations (see the module docstring)."""
+
+    linear: bool
+    mean: sp.Expr
+    t: List[sp.Expr]
+    s: List[sp.Expr]
+    d0: sp.Expr
+
+
+def _linear_rows(funcs: sp.Matrix, xs: List[sp.Symbol], angle: Sequence[bool]) -> Dict[int, List[sp.Expr]]:
+    """Components affine in x (coefficients free of x) and not angles: index -> row of d/dx."""
+    out: Dict[int, List[sp.Expr]] = {}
+    xset = set(xs)
+    for k in range(funcs.shape[0]):
+        if angle[k]:
+            continue
+        try:
+            row = [sp.diff(funcs[k], v) for v in xs]
+        except Exception:  # a function sympy cannot differentiate is not linear for our purpose
+            continue
+        if any(isinstance(r, sp.Basic) and (r.free_symbols & xset or r.has(sp.Derivative, sp.Subs,
+                                                                             sp.DiracDelta, sp.Heaviside))
+               for r in row):
+            continue
+        out[k] = row
+    return out
+
+
+def _transform(blk: _Block, spec: ModelSpec, funcs: sp.Matrix, angle: Sequence[bool], wts: UkfWeights,
+               L: Dict[Tuple[int, int], sp.Expr], extra: Sequence[Tuple[str, sp.Expr]], tag: str
+               ) -> Tuple[List[_Spread], Dict[int, List[sp.Expr]], Dict[str, sp.Expr], int, int]:
+    """Sigma-point images of ``funcs`` (user symbols) and their spreads.
+
+    Returns the spreads, the linear rows (with C-named coefficients), the values of ``extra``
+    (named expressions in user symbols sharing the common-subexpression pass), the length of the
+    angle scratch array and the number of sigma-point locals declared.
+    """
+    n = spec.n
+    xs = spec.x_syms
+    names = c_names(spec, "x")
+    lin_user = _linear_rows(funcs, xs, angle)
+    nl = [k for k in range(funcs.shape[0]) if k not in lin_user]
+    support = sorted({xs.index(v) for k in nl for v in funcs[k].free_symbols if v in xs})
+    before = len(blk.stmts)
+    # sigma offsets gamma * L[m, i] for the states the nonlinear components read
+    off: Dict[Tuple[int, int], sp.Expr] = {}
+    for i in range(n):
+        for m in support:
+            if m >= i:
+                off[(m, i)] = L[(m, i)] if wts.gamma == 1.0 else blk.value(f"{tag}g{m}_{i}",
+                                                                           sp.Float(wts.gamma) * L[(m, i)])
+    items: List[Tuple[str, sp.Expr]] = []
+    for k in range(funcs.shape[0]):
+        items.append((f"{tag}c{k}", funcs[k].xreplace(names)))
+    for i in range(n):
+        plus = dict(names)
+        minus = dict(names)
+        for m in support:
+            if m >= i:
+                xm = _sym(f"x[{m}]")
+                plus[xs[m]] = xm + off[(m, i)]
+                minus[xs[m]] = xm - off[(m, i)]
+        for k in nl:
+            items.append((f"{tag}p{i}_{k}", funcs[k].xreplace(plus)))
+            items.append((f"{tag}m{i}_{k}", funcs[k].xreplace(minus)))
+    lin_items: List[Tuple[str, sp.Expr]] = []
+    for k, row in lin_user.items():
+        for j, a in enumerate(row):
+            if not (isinstance(a, sp.Basic) and a.is_Number):
+                lin_items.append((f"{tag}A{k}_{j}", sp.sympify(a).xreplace(names)))
+    extra_named = [(nm, e.xreplace(names)) for nm, e in extra]
+    vals = blk.cse(items + lin_items + extra_named, f"{tag}t")
+    lin: Dict[int, List[sp.Expr]] = {}
+    for k, row in lin_user.items():
+        lin[k] = [sp.sympify(a) if sp.sympify(a).is_Number else vals[f"{tag}A{k}_{j}"] for j, a in enumerate(row)]
+    g = 0.5 / wts.gamma  # sqrt(2 w) / 2
+    spreads: List[_Spread] = []
+    n_angle = 0
+    for k in range(funcs.shape[0]):
+        centre = vals[f"{tag}c{k}"]
+        if k in lin:
+            row = lin[k]
+            t = []
+            for i in range(n):
+                e = sum((row[m] * L[(m, i)] for m in range(i, n) if row[m] != 0), sp.S.Zero)
+                t.append(blk.value(f"{tag}T{i}_{k}", e))
+            spreads.append(_Spread(True, centre, t, [sp.S.Zero] * n, sp.S.Zero))
+            continue
+        yp = [vals[f"{tag}p{i}_{k}"] for i in range(n)]
+        ym = [vals[f"{tag}m{i}_{k}"] for i in range(n)]
+        if angle[k]:
+            # circular mean; the common factor w of the outer weights cancels in atan2
+            r0 = wts.wm0 / wts.w
+            ssum = _scaled(r0, sp.sin(centre)) + sum((sp.sin(yp[i]) + sp.sin(ym[i]) for i in range(n)), sp.S.Zero)
+            csum = _scaled(r0, sp.cos(centre)) + sum((sp.cos(yp[i]) + sp.cos(ym[i]) for i in range(n)), sp.S.Zero)
+            mean = blk.value(f"{tag}mu{k}", sp.atan2(ssum, csum))
+            slot = n_angle
+            blk.add("wrap", f"ea[{slot}]", centre - mean)
+            d0 = _sym(f"ea[{slot}]")
+            n_angle += 1
+            t, s = [], []
+            for i in range(n):
+                if yp[i] == ym[i]:
+                    dp = dm = _sym(f"ea[{n_angle}]")
+                    blk.add("wrap", f"ea[{n_angle}]", yp[i] - mean)
+                    n_angle += 1
+                else:
+                    blk.add("wrap", f"ea[{n_angle}]", yp[i] - mean)
+                    blk.add("wrap", f"ea[{n_angle + 1}]", ym[i] - mean)
+                    dp, dm = _sym(f"ea[{n_angle}]"), _sym(f"ea[{n_angle + 1}]")
+                    n_angle += 2
+                t.append(blk.value(f"{tag}u{i}_{k}", _scaled(g, dp - dm)))
+                s.append(blk.value(f"{tag}v{i}_{k}", _scaled(g, dp + dm)))
+            spreads.append(_Spread(False, mean, t, s, d0))
+            continue
+        pair = [blk.value(f"{tag}q{i}_{k}", yp[i] + ym[i]) for i in range(n)]
+        total = sum(pair, sp.S.Zero)
+        mean = blk.value(f"{tag}mu{k}", _scaled(wts.wm0, centre) + _scaled(wts.w, total))
+        d0 = blk.value(f"{tag}e{k}", centre - mean)
+        twice = blk.value(f"{tag}h{k}", 2.0 * g * mean)
+        t, s = [], []
+        for i in range(n):
+            t.append(blk.value(f"{tag}u{i}_{k}", _scaled(g, yp[i] - ym[i])))
+            s.append(blk.value(f"{tag}v{i}_{k}", sp.Float(g) * pair[i] - twice))
+        spreads.append(_Spread(False, mean, t, s, d0))
+    extra_vals = {nm: vals[nm] for nm, _ in extra}
+    sigma_locals = sum(1 for st in blk.stmts[before:] if st.kind == "decl")
+    return spreads, lin, extra_vals, n_angle, sigma_locals
+
+
+def _cov(a: _Spread, b: _Spread, wts: UkfWeights) -> sp.Expr:
+    e = sp.S.Zero
+    if a.d0 != 0 and b.d0 != 0 and wts.wc0 != 0.0:
+        e += sp.Float(wts.wc0) * a.d0 * b.d0
+    for i in range(len(a.t)):
+        e += a.s[i] * b.s[i] + a.t[i] * b.t[i]
+    return e
+
+
+def _used(stmts: Sequence[Stmt], prefix: str) -> bool:
+    return any(str(s).startswith(prefix) for st in stmts for s in st.expr.free_symbols)
+
+
+def _count_locals(stmts: Sequence[Stmt], tags: Sequence[str]) -> int:
+    return sum(1 for st in stmts if st.kind == "decl" and st.target.startswith(tuple(tags)))
+
+
+def derive_ukf_predict(spec: ModelSpec, wts: UkfWeights) -> UkfPredictCode:
+    """x' = weighted mean of f at the sigma points; P' = their weighted covariance + Q."""
+    n = spec.n
+    blk = _Block()
+    L = _cholesky(blk, n, "P", "L")
+    angle = spec.angle_states
+    qitems = [(f"Q{i}_{j}", spec.Q[i, j]) for i in range(n) for j in range(i, n) if not spec.Q[i, j].is_Number]
+    spreads, lin, qv, n_angle, _ = _transform(blk, spec, spec.f, angle, wts, L, qitems, "f")
+    Q = {(i, j): (spec.Q[i, j] if spec.Q[i, j].is_Number else qv[f"Q{i}_{j}"]) for i in range(n) for j in range(i, n)}
+    for k, sp_ in enumerate(spreads):
+        if angle[k]:
+            blk.add("wrap", f"xn[{k}]", sp_.mean)
+        else:
+            blk.add("assign", f"xn[{k}]", sp_.mean)
+    P = sp.Matrix(n, n, lambda i, j: _sym(f"P[{packed_index(i, j, n)}]"))
+    # A P for the linear rows, entries materialized once (read by A P A')
+    AP: Dict[Tuple[int, int], sp.Expr] = {}
+    for a, row in lin.items():
+        for m in range(n):
+            if any(lin[b][m] != 0 for b in lin if b >= a):
+                e = sum((row[j] * P[j, m] for j in range(n) if row[j] != 0), sp.S.Zero)
+                AP[(a, m)] = blk.value(f"AP{a}_{m}", e)
+    for a in range(n):
+        for b in range(a, n):
+            if a in lin and b in lin:
+                e = sum((AP[(a, m)] * lin[b][m] for m in range(n) if lin[b][m] != 0), sp.S.Zero)
+            else:
+                e = _cov(spreads[a], spreads[b], wts)
+            blk.add("assign", f"Pn[{packed_index(a, b, n)}]", e + Q[(a, b)])
+    stmts = blk.pruned()
+    return UkfPredictCode(stmts, _used(stmts, "par->"), _used(stmts, "u["), n_angle,
+                          _count_locals(stmts, ("fg", "fp", "fm", "fq", "fu", "fv", "fe", "fh", "fT", "fmu")))
+
+
+def derive_ukf_update(sensor: SensorSpec, spec: ModelSpec, wts: UkfWeights) -> UkfUpdateCode:
+    """Fresh sigma points from (x, P) through h; y = z - zhat; x += K y; P -= K S K'."""
+    n, m = spec.n, sensor.m
+    blk = _Block()
+    L = _cholesky(blk, n, "P", "L")
+    ritems = [(f"R{i}_{j}", sensor.R[i, j]) for i in range(m) for j in range(i, m) if not sensor.R[i, j].is_Number]
+    spreads, lin, rv, n_angle, _ = _transform(blk, spec, sensor.h, sensor.angles, wts, L, ritems, "h")
+    R = {(i, j): (sensor.R[i, j] if sensor.R[i, j].is_Number else rv[f"R{i}_{j}"]) for i in range(m) for j in range(i, m)}
+    for k in range(m):
+        if sensor.angles[k]:
+            blk.add("wrap", f"y[{k}]", _sym(f"z[{k}]") - spreads[k].mean)
+        else:
+            blk.add("assign", f"y[{k}]", _sym(f"z[{k}]") - spreads[k].mean)
+    y = [_sym(f"y[{k}]") for k in range(m)]
+    P = sp.Matrix(n, n, lambda i, j: _sym(f"P[{packed_index(i, j, n)}]"))
+    # cross-covariance C = cov(x, z): P H' for a linear component, sum_i L_i t_i' otherwise
+    C: Dict[Tuple[int, int], sp.Expr] = {}
+    for k in range(m):
+        for a in range(n):
+            if k in lin:
+                e = sum((P[a, j] * lin[k][j] for j in range(n) if lin[k][j] != 0), sp.S.Zero)
+            else:
+                e = sum((L[(a, i)] * spreads[k].t[i] for i in range(a + 1)), sp.S.Zero)
+            C[(a, k)] = blk.value(f"C{a}_{k}", e)
+    S: Dict[Tuple[int, int], sp.Expr] = {}
+    for k in range(m):
+        for l in range(k, m):
+            if k in lin and l in lin:
+                e = sum((lin[k][j] * C[(j, l)] for j in range(n) if lin[k][j] != 0), sp.S.Zero)
+            else:
+                e = _cov(spreads[k], spreads[l], wts)
+            S[(k, l)] = S[(l, k)] = blk.value(f"S{k}_{l}", e + R[(k, l)])
+    if m == 1:
+        # scalar innovation: K = C / S, no square root
+        blk.add("decl", "Sd0", S[(0, 0)])
+        blk.add("check", "Sd0", _sym("Sd0"))
+        iS = blk.value("iS", 1 / _sym("Sd0"))
+        blk.add("assign", "nis", y[0] * y[0] * iS)
+        K = [blk.value(f"K{a}", C[(a, 0)] * iS) for a in range(n)]
+        for a in range(n):
+            blk.add("assign", f"xs[{a}]", _sym(f"x[{a}]") + K[a] * y[0])
+        for a in range(n):
+            for b in range(a, n):
+                blk.add("assign", f"Ps[{packed_index(a, b, n)}]", P[a, b] - K[a] * C[(b, 0)])
+    else:
+        Ls: Dict[Tuple[int, int], sp.Expr] = {}
+        inv: Dict[int, sp.Expr] = {}
+        for j in range(m):
+            d = S[(j, j)] - sum((Ls[(j, k)] ** 2 for k in range(j)), sp.S.Zero)
+            blk.add("decl", f"Sd{j}", d)
+            blk.add("check", f"Sd{j}", _sym(f"Sd{j}"))
+            Ls[(j, j)] = blk.value(f"Ls{j}_{j}", sp.sqrt(_sym(f"Sd{j}")))
+            inv[j] = blk.value(f"Lsi{j}", 1 / Ls[(j, j)])
+            for i in range(j + 1, m):
+                e = S[(i, j)] - sum((Ls[(i, k)] * Ls[(j, k)] for k in range(j)), sp.S.Zero)
+                Ls[(i, j)] = blk.value(f"Ls{i}_{j}", e * inv[j])
+        bv: List[sp.Expr] = []
+        for k in range(m):
+            e = (y[k] - sum((Ls[(k, j)] * bv[j] for j in range(k)), sp.S.Zero)) * inv[k]
+            bv.append(blk.value(f"b{k}", e))
+        blk.add("assign", "nis", sum((bk * bk for bk in bv), sp.S.Zero))
+        B: Dict[Tuple[int, int], sp.Expr] = {}
+        for a in range(n):
+            for k in range(m):
+                e = (C[(a, k)] - sum((Ls[(k, j)] * B[(a, j)] for j in range(k)), sp.S.Zero)) * inv[k]
+                B[(a, k)] = blk.value(f"B{a}_{k}", e)
+        for a in range(n):
+            blk.add("assign", f"xs[{a}]", _sym(f"x[{a}]") + sum((B[(a, k)] * bv[k] for k in range(m)), sp.S.Zero))
+        for a in range(n):
+            for b in range(a, n):
+                e = P[a, b] - sum((B[(a, k)] * B[(b, k)] for k in range(m)), sp.S.Zero)
+                blk.add("assign", f"Ps[{packed_index(a, b, n)}]", e)
+    for i, st in enumerate(spec.states):
+        if st.angle:
+            blk.add("wrap", f"xs[{i}]", _sym(f"xs[{i}]"))
+    stmts = blk.pruned()
+    return UkfUpdateCode(sensor, stmts, _used(stmts, "par->"), m, n_angle,
+                         _count_locals(stmts, ("hg", "hp", "hm", "hq", "hu", "hv", "he", "hh", "hT", "hmu")))
+
+
+def derive_ukf(spec: ModelSpec, wts: UkfWeights) -> UkfCode:
+    """Everything the UKF template needs for ``spec``."""
+    code = UkfCode(spec, wts, derive_ukf_predict(spec, wts))
+    for s in spec.sensors:
+        code.updates.append(derive_ukf_update(s, spec, wts))
+    return code

@@ -1,0 +1,75 @@
+"""Stage 3 for the UKF: print the unrolled unscented transform (:mod:`estgen.derive_ukf`) into
+``templates/ukf.c.j2``. Shares the header, the cffi declarations and the public helpers with the
+EKF (:mod:`estgen.emit`), so both filters have the same interface and status codes.
+"""
+
+from __future__ import annotations
+
+from typing import Any, Dict, List
+
+from .derive_ukf import UkfWeights, check_options, derive_ukf
+from .emit import Emitter, Generated, OpCount, _common_context, _render
+from .model import ModelSpec, check_filter_support
+
+__all__ = ["generate_ukf", "ukf_weights"]
+
+
+def ukf_weights(spec: ModelSpec, **options: Any) -> UkfWeights:
+    """The validated sigma-point weights the generator uses for ``spec`` and ``options``
+    (alpha, beta, kappa; defaults 1, 2, 0). Raises ModelError for invalid options."""
+    return check_options(spec.n, dict(options))
+
+
+def _stack_bytes(stmts_decls: int, arrays: int, size_real: int) -> int:
+    return (stmts_decls + arrays) * size_real
+
+
+def generate_ukf(spec: ModelSpec, precision: str = "float", **options: Any) -> Generated:
+    """Generate the UKF's header and source for ``spec``.
+
+    ``options``: alpha (> 0), beta, kappa with alpha^2 (n + kappa) > 0. The op counts in
+    ``Generated.ops`` are of the straight-line code as printed (keys "predict", "update_<sensor>").
+    """
+    check_filter_support(spec, "ukf")
+    wts = check_options(spec.n, dict(options))
+    ctx = _common_context(spec, "ukf", precision)
+    em: Emitter = ctx["emitter"]
+    code = derive_ukf(spec, wts)
+    size_real = 4 if precision == "float" else 8
+    n, np_ = ctx["n"], ctx["np"]
+    ops: Dict[str, Dict[str, int]] = {}
+    pc = OpCount()
+    p_lines = em.lines(code.predict.stmts, pc)
+    ops["predict"] = pc.as_dict()
+    p_decls = sum(1 for st in code.predict.stmts if st.kind == "decl")
+    # named storage of predict: xn, Pn, the wrapped-angle scratch and every const local
+    p_bytes = _stack_bytes(p_decls, n + np_ + code.predict.angle_scratch, size_real)
+    ctx["predict"] = {"lines": p_lines, "uses_par": code.predict.uses_par, "uses_u": code.predict.uses_u,
+                      "ea": code.predict.angle_scratch}
+    ups: List[Dict[str, Any]] = []
+    u_bytes = 0
+    for uc, sctx in zip(code.updates, ctx["sensors"]):
+        oc = OpCount()
+        body = em.lines(uc.stmts, oc)
+        ops[f"update_{uc.sensor.name}"] = oc.as_dict()
+        decls = sum(1 for st in uc.stmts if st.kind == "decl")
+        u_bytes = max(u_bytes, _stack_bytes(decls, n + np_ + uc.m + 1 + uc.angle_scratch, size_real))
+        ups.append({**sctx, "lines": body, "uses_par": uc.uses_par, "ea": uc.angle_scratch})
+    ctx["updates"] = ups
+    ctx["ops"] = ops
+    ctx["weights"] = {"wm0": em.lit(wts.wm0), "wm": em.lit(wts.w), "wc0": em.lit(wts.wc0),
+                      "gamma": em.lit(wts.gamma), "alpha": em.lit(wts.alpha), "beta": em.lit(wts.beta),
+                      "kappa": em.lit(wts.kappa), "lam": em.lit(wts.lam)}
+    ctx["memory_note"] = [
+        f"Sigma points: 2n+1 = {2 * n + 1}, never stored as arrays. Their offsets gamma*L, their images",
+        "and deviations are const locals of predict and update (straight-line code), so they live",
+        f"on the stack of those calls: at most {p_bytes} bytes named in predict and {u_bytes} bytes in",
+        "the largest update (every local counted; the compiler keeps many in registers).",
+        f"Weights: Wm0 = {ctx['weights']['wm0']}, Wc0 = {ctx['weights']['wc0']}, "
+        f"Wm_i = Wc_i = {ctx['weights']['wm']} (i = 1..{2 * n});",
+        f"alpha = {ctx['weights']['alpha']}, beta = {ctx['weights']['beta']}, kappa = {ctx['weights']['kappa']}.",
+    ]
+    ctx["sigma_stack"] = {"predict": p_bytes, "update": u_bytes}
+    gen = _render(ctx, "ukf.c.j2")
+    gen.sigma_stack = dict(ctx["sigma_stack"])  # type: ignore[attr-defined]
+    return gen
