@@ -639,7 +639,7 @@ def plot_result(res: MonteCarloResult, path: str) -> None:
 def add_arguments(parser: argparse.ArgumentParser) -> None:
     """Add the ``simulate`` options to a (sub)parser."""
     parser.add_argument("model", metavar="MODEL", help="the model file")
-    parser.add_argument("--filter", choices=("ekf", "ukf"), default="ekf")
+    parser.add_argument("--filter", choices=("ekf", "ukf"), default="ekf", help="the filter under test (default ekf)")
     parser.add_argument("--precision", choices=("float", "double"), default="double",
                         help="precision of the compiled C under test (default double)")
     parser.add_argument("--runs", type=int, default=50, help="Monte Carlo runs (default 50)")
