@@ -267,6 +267,30 @@ def _linear_rows(funcs: sp.Matrix, xs: List[sp.Symbol], angle: Sequence[bool]) -
     return out
 
 
+def _affine(e: sp.Expr, xset: Set[sp.Symbol]) -> bool:
+    try:
+        return all(not (sp.diff(e, v).free_symbols & xset) and not sp.diff(e, v).has(sp.Heaviside, sp.DiracDelta)
+                   for v in e.free_symbols & xset)
+    except Exception:  # not differentiable by sympy: not affine for our purpose
+        return False
+
+
+def _atomize(e: sp.Expr, xs: List[sp.Symbol], xset: Set[sp.Symbol], atoms: Dict[sp.Expr, sp.Symbol],
+             tag: str) -> sp.Expr:
+    """``e`` with each maximal sum affine in two or more states replaced by a placeholder."""
+    used = e.free_symbols & xset
+    if not used or not e.args:
+        return e
+    if e.is_Add and len(used) >= 2 and _affine(e, xset):
+        if e not in atoms:
+            atoms[e] = sp.Dummy(f"{tag}atom{len(atoms)}")
+        return atoms[e]
+    try:
+        return e.func(*[_atomize(a, xs, xset, atoms, tag) for a in e.args])
+    except Exception:  # a node that cannot be rebuilt from its arguments: keep it whole
+        return e
+
+
 def _transform(blk: _Block, spec: ModelSpec, funcs: sp.Matrix, angle: Sequence[bool], wts: UkfWeights,
                L: Dict[Tuple[int, int], sp.Expr], extra: Sequence[Tuple[str, sp.Expr]], tag: str
                ) -> Tuple[List[_Spread], Dict[int, List[sp.Expr]], Dict[str, sp.Expr], int, int]:
@@ -290,20 +314,42 @@ def _transform(blk: _Block, spec: ModelSpec, funcs: sp.Matrix, angle: Sequence[b
             if m >= i:
                 off[(m, i)] = L[(m, i)] if wts.gamma == 1.0 else blk.value(f"{tag}g{m}_{i}",
                                                                            sp.Float(wts.gamma) * L[(m, i)])
+    # affine pieces of the nonlinear components move along the sigma points linearly: their
+    # value at x +- gamma L_i is a(x) +- a' (gamma L_i), a sparse dot product with a triangular
+    # column instead of a full one per point
+    xset = set(xs)
+    atoms: Dict[sp.Expr, sp.Symbol] = {}
+    shaped = {k: _atomize(funcs[k], xs, xset, atoms, tag) for k in nl}
+    centre_map = dict(names)
+    plus_atoms: List[Dict[sp.Symbol, sp.Expr]] = [dict() for _ in range(n)]
+    minus_atoms: List[Dict[sp.Symbol, sp.Expr]] = [dict() for _ in range(n)]
+    for j, (e, sym) in enumerate(atoms.items()):
+        centre_a = blk.value(f"{tag}a{j}", e.xreplace(names))
+        centre_map[sym] = centre_a
+        coef: Dict[int, sp.Expr] = {}
+        for m in sorted(xs.index(v) for v in e.free_symbols & xset):
+            cm = sp.diff(e, xs[m])
+            coef[m] = cm if cm.is_Number else blk.value(f"{tag}ac{j}_{m}", cm.xreplace(names))
+        for i in range(n):
+            dlt = blk.value(f"{tag}ad{j}_{i}", sum((coef[m] * off[(m, i)] for m in coef if m >= i), sp.S.Zero))
+            plus_atoms[i][sym] = centre_a + dlt
+            minus_atoms[i][sym] = centre_a - dlt
     items: List[Tuple[str, sp.Expr]] = []
     for k in range(funcs.shape[0]):
-        items.append((f"{tag}c{k}", funcs[k].xreplace(names)))
+        items.append((f"{tag}c{k}", shaped[k].xreplace(centre_map) if k in shaped else funcs[k].xreplace(names)))
     for i in range(n):
         plus = dict(names)
         minus = dict(names)
+        plus.update(plus_atoms[i])
+        minus.update(minus_atoms[i])
         for m in support:
             if m >= i:
                 xm = _sym(f"x[{m}]")
                 plus[xs[m]] = xm + off[(m, i)]
                 minus[xs[m]] = xm - off[(m, i)]
         for k in nl:
-            items.append((f"{tag}p{i}_{k}", funcs[k].xreplace(plus)))
-            items.append((f"{tag}m{i}_{k}", funcs[k].xreplace(minus)))
+            items.append((f"{tag}p{i}_{k}", shaped[k].xreplace(plus)))
+            items.append((f"{tag}m{i}_{k}", shaped[k].xreplace(minus)))
     lin_items: List[Tuple[str, sp.Expr]] = []
     for k, row in lin_user.items():
         for j, a in enumerate(row):
