@@ -180,6 +180,8 @@ class Model:
         """Declare states (in state-vector order). ``angle=True`` marks them as angles in
         radians: residuals and the state itself are wrapped to (-pi, pi]."""
         where = _caller_where()
+        if not isinstance(angle, (bool, np.bool_)):
+            raise ModelError(f"states(angle=...) must be True or False, got {angle!r}", where)
         names_l = _split_names(names)
         try:
             units_l = _split_units(units, len(names_l))
@@ -213,7 +215,8 @@ class Model:
         """Declare a runtime parameter with its default value."""
         where = _caller_where()
         sym = sp.Symbol(str(name))
-        self._params.append(Param(str(name), sym, default, unit, where))  # checked in validate
+        unit_s = None if unit is None else str(unit)
+        self._params.append(Param(str(name), sym, default, unit_s, where))  # checked in validate
         return sym
 
     @property
@@ -223,16 +226,22 @@ class Model:
 
     def process(self, f: Any) -> None:
         """Discrete dynamics: ``x[k+1] = f(x[k], u[k], dt)``."""
-        self._process = ("discrete", f, "", _caller_where())
+        where = _caller_where()
+        self._once(self._process, "the dynamics are", "process() or dynamics()", where)
+        self._process = ("discrete", f, "", where)
 
     def dynamics(self, rates: Any, method: str = "rk4") -> None:
         """Continuous dynamics ``dx/dt = rates(x, u)``, discretized over ``dt`` by ``method``
         ("rk4" or "euler"); the Jacobian is taken of the discretized map."""
-        self._process = ("continuous", rates, method, _caller_where())
+        where = _caller_where()
+        self._once(self._process, "the dynamics are", "process() or dynamics()", where)
+        self._process = ("continuous", rates, method, where)
 
     def process_noise(self, Q: Any) -> None:
         """Process noise covariance Q (n x n matrix, or a list for a diagonal)."""
-        self._Q = (Q, _caller_where())
+        where = _caller_where()
+        self._once(self._Q, "the process noise is", "process_noise()", where)
+        self._Q = (Q, where)
 
     def sensor(
         self,
@@ -255,13 +264,23 @@ class Model:
 
     def initial(self, x0: Any, P0: Any) -> None:
         """Initial state ``x0`` and covariance ``P0`` (matrix, or list for a diagonal)."""
-        self._initial = (x0, P0, _caller_where())
+        where = _caller_where()
+        self._once(self._initial, "the initial state is", "initial()", where)
+        self._initial = (x0, P0, where)
 
     def scenario(self, dt: float, inputs: Optional[Callable[[float], Sequence[float]]] = None) -> None:
         """Defaults for simulation: the step ``dt`` and an input profile ``inputs(t) -> u``."""
         self._scenario_dt = dt
         self._input_profile = inputs
         self._scenario_where = _caller_where()
+
+    @staticmethod
+    def _once(previous: Optional[tuple], what: str, call: str, where: Where) -> None:
+        """A second declaration would silently replace the first: refuse it."""
+        if previous is not None:
+            prev = previous[-1]
+            at = f" at line {prev.line}" if isinstance(prev, Where) and prev.line else ""
+            raise ModelError(f"{what} already declared{at}; call {call} once", where)
 
     def __repr__(self) -> str:
         return f"Model({self.name!r}, n={len(self._states)})"
@@ -465,6 +484,8 @@ def _as_column(obj: Any, what: str, where: Where) -> sp.Matrix:
             if mat.shape[1] != 1 and mat.shape[0] == 1:
                 mat = mat.T
         elif isinstance(obj, (list, tuple)):
+            if len(obj) == 0:
+                raise ModelError(f"{what} is empty; give at least one expression", where)
             items = [sp.sympify(e) for e in obj]
             for e in items:
                 if isinstance(e, sp.Basic) and not isinstance(e, sp.Expr):
@@ -722,9 +743,11 @@ def validate(model: Model) -> ModelSpec:
         raise ModelError(f"initial() x0 has {len(x0l)} entries but the model has {n} states; give one per state", iw)
     x0 = tuple(_to_float(v, f"initial() x0[{i}]", iw) for i, v in enumerate(x0l))
     P0m, _ = _as_square(P0raw, n, "initial() P0", iw)
-    P0n = _numeric(P0m, {}, "initial() P0 (numbers only)", iw) if all(not e.free_symbols for e in P0m) else None
-    if P0n is None:
+    if any(e.free_symbols for e in P0m):
         raise ModelError("initial() P0 must hold numbers, not symbols", iw)
+    if any(e.has(sp.zoo, sp.oo, -sp.oo, sp.nan) for e in P0m):
+        raise ModelError("initial() P0 holds an infinite or undefined value; give finite variances", iw)
+    P0n = _numeric(P0m, {}, "initial() P0", iw)
     _check_psd(P0n, "initial() P0", iw, strict=True)
 
     # f and h must evaluate to finite numbers at the defaults and x0 (catches 1/0 and log(0) early)

@@ -82,6 +82,11 @@ CASES: Tuple[Tuple[str, Optional[int], Tuple[str, ...], bool], ...] = (
     ("no_dynamics.py", 4, ("no dynamics", "model.process("), False),
     ("no_states.py", 4, ("declares no states", "model.states("), False),
     ("scenario_wrong_inputs.py", 11, ("returns 2 values but the model has 1 inputs", "one per input"), False),
+    ("process_twice.py", 8, ("dynamics are already declared at line 6", "once"), False),
+    ("sensor_measures_nothing.py", 8, ("sensor 'thermo' h is empty", "at least one expression"), False),
+    ("p0_not_finite.py", 9, ("P0 holds an infinite or undefined value", "finite variances"), False),
+    ("name_math_function.py", 6, ("'sqrt' is the name of a math function", "rename"), False),
+    ("x0_not_a_list.py", 9, ("x0 must be a list of numbers", "one per state"), False),
     ("scenario_raises.py", 5, ("scenario inputs(0.0) raised ZeroDivisionError", "fix the input function"), False),
 )
 
