@@ -155,7 +155,7 @@ def _parser() -> argparse.ArgumentParser:
 
     s = sub.add_parser("simulate", help="Monte Carlo consistency test (NEES, NIS) of a filter",
                        description="Monte Carlo runs of MODEL's simulated truth through the filter; prints RMSE, "
-                                   "NEES and NIS against their 95%% chi-square bounds and a verdict.")
+                                   "NEES and NIS against their 95% chi-square bounds and a verdict.")
     simulate.add_arguments(s)
     s.set_defaults(func=simulate.run)
 
