@@ -13,6 +13,7 @@ Command line (writes the scenario header the firmware replay includes)::
 from __future__ import annotations
 
 import argparse
+import hashlib
 import os
 import re
 import shutil
@@ -147,6 +148,15 @@ def _run(cmd: Sequence[str], cwd: Optional[PathLike] = None, timeout: float = 30
 # Compiling and inspecting objects
 
 
+_VERSIONS: Dict[str, str] = {}
+
+
+def _compiler_version(cc: str) -> str:
+    if cc not in _VERSIONS:
+        _VERSIONS[cc] = _run([cc, "--version"]).stdout
+    return _VERSIONS[cc]
+
+
 def compile_object(
     source: PathLike,
     target: Union[str, Target],
@@ -154,20 +164,51 @@ def compile_object(
     include_dirs: Sequence[PathLike] = (),
     extra_flags: Sequence[str] = (),
     opt: str = "-O2",
+    cache: bool = True,
 ) -> Path:
     """Compile ``source`` with the contract warnings, ``-Werror``, ``opt`` and ``-fstack-usage``
     (plus ``-fcallgraph-info=su`` for the call graph) for ``target``; returns the object path.
-    The .su and .ci files are written beside the object."""
+    The .su and .ci files are written beside the object.
+
+    With ``cache``, results are kept under ``$ESTGEN_CACHE/cross`` (or ~/.cache/estgen/cross),
+    keyed by the compiler's version, the flags and the preprocessed source: a large generated
+    filter takes tens of seconds to optimize, and the tests compile each one for three cores."""
     tgt = TARGETS[target] if isinstance(target, str) else target
     cc = find_tool(tgt.cc)
     src = Path(source)
     out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)
     obj = out / (src.stem + ".o")
-    cmd = [cc, *WARNINGS, opt, "-fstack-usage", "-fcallgraph-info=su", *tgt.flags]
-    cmd += [f"-I{d}" for d in include_dirs] + list(extra_flags) + ["-c", str(src), "-o", str(obj)]
-    _run(cmd)
+    flags = [*WARNINGS, opt, "-fstack-usage", "-fcallgraph-info=su", *tgt.flags]
+    flags += [f"-I{d}" for d in include_dirs] + list(extra_flags)
+    key = None
+    if cache:
+        pre = _run([cc, *flags, "-E", "-P", str(src)]).stdout
+        # include paths differ run to run; what they brought in is in the preprocessed text
+        kflags = [f for f in flags if not f.startswith("-I")]
+        digest = hashlib.sha256("\0".join([_compiler_version(cc), *kflags, src.name, pre]).encode())
+        key = Path(_cache_root()) / digest.hexdigest()[:32]
+        if all((key / (src.stem + ext)).is_file() for ext in (".o", ".su", ".ci")):
+            for ext in (".o", ".su", ".ci"):
+                shutil.copyfile(key / (src.stem + ext), out / (src.stem + ext))
+            return obj
+    _run([cc, *flags, "-c", str(src), "-o", str(obj)])
+    if key is not None:
+        tmp = Path(tempfile.mkdtemp(dir=key.parent))
+        for ext in (".o", ".su", ".ci"):
+            shutil.copyfile(out / (src.stem + ext), tmp / (src.stem + ext))
+        try:
+            os.replace(tmp, key)  # atomic: a concurrent run sees all three files or none
+        except OSError:
+            shutil.rmtree(tmp, ignore_errors=True)
     return obj
+
+
+def _cache_root() -> str:
+    base = os.environ.get("ESTGEN_CACHE") or os.path.join(os.path.expanduser("~"), ".cache", "estgen")
+    path = os.path.join(base, "cross")
+    os.makedirs(path, exist_ok=True)
+    return path
 
 
 def undefined_symbols(obj: PathLike, target: Union[str, Target]) -> List[str]:
@@ -439,13 +480,19 @@ def _make(args: Sequence[str], timeout: float = 300) -> None:
     _run(["make", "--no-print-directory", "-C", str(FIRMWARE_DIR), *args], timeout=timeout)
 
 
-def build_firmware(gen_dir: PathLike, prefix: str, filter: str, build_dir: PathLike, extra_cflags: str = "") -> Path:
+def build_firmware(gen_dir: PathLike, prefix: str, filter: str, build_dir: PathLike, extra_cflags: str = "",
+                   filter_obj: Optional[PathLike] = None) -> Path:
     """Build the bare-metal replay (generated_examples/firmware_qemu) for one generated
-    filter in ``gen_dir`` (which must hold replay_data.h too). Returns the ELF path."""
+    filter in ``gen_dir`` (which must hold replay_data.h too). ``filter_obj``: the filter
+    already compiled for cortex-m4f (e.g. by :func:`compile_object`), else the Makefile
+    compiles it. Returns the ELF path."""
     find_tool("arm-none-eabi-gcc")
     build = Path(build_dir).resolve()
-    _make([f"MODEL_PREFIX={prefix}", f"FILTER={filter}", f"GEN_DIR={Path(gen_dir).resolve()}", f"BUILD={build}",
-           f"EXTRA_CFLAGS={extra_cflags}", f"{build}/replay.elf"])
+    args = [f"MODEL_PREFIX={prefix}", f"FILTER={filter}", f"GEN_DIR={Path(gen_dir).resolve()}", f"BUILD={build}",
+            f"EXTRA_CFLAGS={extra_cflags}"]
+    if filter_obj is not None:
+        args.append(f"FILTER_OBJ={Path(filter_obj).resolve()}")
+    _make(args + [f"{build}/replay.elf"])
     return build / "replay.elf"
 
 

@@ -385,7 +385,7 @@ def format_report(rep: Dict[str, Any]) -> str:
             + f" {_fmt(m4.get(fn, {}).get('instructions_per_call')):>10}"
             f" {_fmt(host.get(fn, {}).get('instructions_per_call')):>10}"
         )
-    lines.append(f"  {'one step (predict + that step`s updates)':<70} {_fmt(m4.get('per_step')):>10}"
+    lines.append(f"  {'one step (predict + the updates of that step)':<70} {_fmt(m4.get('per_step')):>10}"
                  f" {_fmt(host.get('per_step')):>10}")
     lines.append("")
     lines.append("  stack: own frame + deepest static callee chain (GCC -fstack-usage, -fcallgraph-info);"

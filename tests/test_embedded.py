@@ -65,6 +65,25 @@ def generated(tmp_path_factory: pytest.TempPathFactory):
     return get
 
 
+_objects: Dict[Tuple[str, str, str, str], Path] = {}
+
+
+@pytest.fixture(scope="session")
+def compiled(generated, tmp_path_factory: pytest.TempPathFactory):
+    """Each (example, filter, precision, core) compiled once per session (and cached across
+    sessions by estgen.cross.compile_object)."""
+
+    def get(example: str, filt: str, precision: str, core: str) -> Path:
+        key = (example, filt, precision, core)
+        if key not in _objects:
+            header, source = generated(example, filt, precision)
+            out = tmp_path_factory.mktemp(f"{example}_{filt}_{precision}_{core}")
+            _objects[key] = cross.compile_object(source, core, out, include_dirs=[header.parent])
+        return _objects[key]
+
+    return get
+
+
 def _copy_generated(header: Path, tmp_path: Path) -> Path:
     """A private copy of the generated files, to add this test's replay_data.h beside."""
     gen = tmp_path / "gen"
@@ -84,11 +103,11 @@ def _params():
 
 @pytest.mark.parametrize("precision", PRECISIONS)
 @pytest.mark.parametrize("example,filt", list(_params()))
-def test_cross_compiles_clean(generated, tmp_path: Path, example: str, filt: str, precision: str) -> None:
+def test_cross_compiles_clean(generated, compiled, example: str, filt: str, precision: str) -> None:
     header, source = generated(example, filt, precision)
     for core in CORES:
         # contract section 4: the warning set with -Werror; compile_object adds -O2 -fstack-usage
-        obj = cross.compile_object(source, core, tmp_path / core, include_dirs=[header.parent])
+        obj = compiled(example, filt, precision, core)
         undef = cross.undefined_symbols(obj, core)
         bad = cross.forbidden_references(undef, precision, core)
         assert not bad, f"{core}: {source.name} references {bad}"
@@ -98,27 +117,34 @@ def test_cross_compiles_clean(generated, tmp_path: Path, example: str, filt: str
         assert su, f"{core}: no stack usage written"
         dynamic = {f: e.qualifiers for f, e in su.items() if e.qualifiers != ("static",)}
         assert not dynamic, f"{core}: non-static stack in {dynamic}"
-        # the public API of contract section 4 is there
+        # contract section 4: no global mutable state, so nothing in .data or .bss
+        sizes = cross.section_sizes(obj, core)
+        assert sizes["data"] == 0 and sizes["bss"] == 0, f"{core}: global state {sizes}"
+        # the public API of contract section 4 is there, and no call chain recurses
+        # (worst_stack raises ValueError on a cycle in GCC's call graph)
         prefix = f"{header.stem}"
         defined = cross.defined_functions(obj, core)
         for fn in (f"{prefix}_init", f"{prefix}_predict"):
             assert fn in defined, f"{core}: {fn} not defined"
+        frames, edges = cross.parse_callgraph(obj.with_suffix(".ci").read_text())
+        for fn in defined:
+            cross.worst_stack(frames, edges, fn)
 
 
 @pytest.mark.parametrize("example,filt", list(_params()))
-def test_float_build_on_m4f_has_no_double_code(generated, tmp_path: Path, example: str, filt: str) -> None:
+def test_float_build_on_m4f_has_no_double_code(compiled, example: str, filt: str) -> None:
     """Contract: a float build uses float arithmetic and f-suffixed math only. On the M4F
     (single-precision FPU) any double would show up as an __aeabi_d* helper call (Arm RTABI32,
     4.1.2) or a call of a double <math.h> function."""
-    header, source = generated(example, filt, "float")
-    obj = cross.compile_object(source, "cortex-m4f", tmp_path, include_dirs=[header.parent])
+    obj = compiled(example, filt, "float", "cortex-m4f")
     undef = cross.undefined_symbols(obj, "cortex-m4f")
     doubles = [s for s in undef if s in cross.DOUBLE_MATH or s.startswith("__aeabi_d") or s.endswith("2d")]
     assert not doubles, doubles
 
 
 @pytest.mark.parametrize("example,filt", list(_params()))
-def test_replay_on_emulated_m4f_matches_reference(generated, tmp_path: Path, example: str, filt: str) -> None:
+def test_replay_on_emulated_m4f_matches_reference(generated, compiled, tmp_path: Path, example: str,
+                                                  filt: str) -> None:
     """The float filter, bare-metal on QEMU mps2-an386, ends within 0.02 sigma of the float64
     reference (sigma from the reference's P) on the same recorded scenario."""
     header, _ = generated(example, filt, "float")
@@ -126,7 +152,8 @@ def test_replay_on_emulated_m4f_matches_reference(generated, tmp_path: Path, exa
     gen = _copy_generated(header, tmp_path)
     scen = make_scenario(spec, REPLAY_STEPS, REPLAY_SEED)
     cross.write_replay(spec, filt, "float", scen, gen)
-    elf = cross.build_firmware(gen, spec.name, filt, tmp_path / "build")
+    elf = cross.build_firmware(gen, spec.name, filt, tmp_path / "build",
+                               filter_obj=compiled(example, filt, "float", "cortex-m4f"))
     res = cross.run_qemu(elf, "float")
 
     x_ref, P_ref, statuses = cross.reference_replay(spec, filt, "float", scen)
@@ -166,3 +193,12 @@ def test_qemu_systick_counts_instructions(generated, tmp_path: Path) -> None:
     assert res.instructions_per_tick() == pytest.approx(40.0, rel=1e-3)
     # a predict of a 3-state EKF is more than a few instructions and far less than a million
     assert 20 < res.instructions_per_call(res.predict) < 1e6
+
+
+def test_replay_command(tmp_path: Path) -> None:
+    model = ROOT / "generated_examples" / "linear_cart" / "model.py"
+    assert cross._main(["replay", str(model), "--steps", "30", "-o", str(tmp_path)]) == 0
+    text = (tmp_path / "replay_data.h").read_text()
+    assert "#define REPLAY_STEPS 30u" in text and "cart_ekf_update_encoder" in text
+    # a model file that does not exist is bad input (contract section 2: exit 2)
+    assert cross._main(["replay", str(tmp_path / "nope.py"), "-o", str(tmp_path)]) == 2
