@@ -182,23 +182,18 @@ class Model:
         where = _caller_where()
         if not isinstance(angle, (bool, np.bool_)):
             raise ModelError(f"states(angle=...) must be True or False, got {angle!r}", where)
-        names_l = _split_names(names)
-        try:
-            units_l = _split_units(units, len(names_l))
-        except ModelError as err:
-            raise ModelError(err.message, where) from None
-        out = []
-        for nm, un in zip(names_l, units_l):
-            sym = sp.Symbol(nm)
-            self._states.append(Variable(nm, sym, un, bool(angle), where))
-            out.append(sym)
-        return tuple(out)
+        return self._declare(self._states, names, units, bool(angle), where)
 
     def inputs(
         self, names: Union[str, Sequence[str]], *, units: Union[None, str, Sequence[Optional[str]]] = None
     ) -> Tuple[sp.Symbol, ...]:
         """Declare the control inputs ``u`` (in vector order)."""
-        where = _caller_where()
+        return self._declare(self._inputs, names, units, False, _caller_where())
+
+    @staticmethod
+    def _declare(target: List[Variable], names: Union[str, Sequence[str]],
+                 units: Union[None, str, Sequence[Optional[str]]], angle: bool, where: Where) -> Tuple[sp.Symbol, ...]:
+        """Append variables to ``target``; one symbol per name (duplicates are caught in validate)."""
         names_l = _split_names(names)
         try:
             units_l = _split_units(units, len(names_l))
@@ -207,7 +202,7 @@ class Model:
         out = []
         for nm, un in zip(names_l, units_l):
             sym = sp.Symbol(nm)
-            self._inputs.append(Variable(nm, sym, un, False, where))
+            target.append(Variable(nm, sym, un, angle, where))
             out.append(sym)
         return tuple(out)
 
@@ -672,6 +667,7 @@ def validate(model: Model) -> ModelSpec:
         raise ModelError(f"{what}() has {fcol.shape[0]} entries but the model has {n} states; give one per state", pw)
     allowed_f = set(xs) | set(us) | set(ps) | {dt}
     _check_symbols(fcol, allowed_f, f"{what}()", pw, "declare it with model.states(), model.inputs() or model.param()")
+    _check_printable(fcol, f"{what}()", pw)
     continuous = None
     if kind == "continuous":
         if method not in ("rk4", "euler"):
@@ -689,6 +685,7 @@ def validate(model: Model) -> ModelSpec:
     Qraw, qw = model._Q
     Q, _ = _as_square(Qraw, n, "process_noise()", qw)
     _check_symbols(Q, set(ps) | {dt}, "process_noise()", qw, "Q may use parameters and dt only", kinds)
+    _check_printable(Q, "process_noise()", qw)
     if Q != Q.T:
         raise ModelError("process_noise() is not symmetric; make entry (i, j) equal entry (j, i)", qw)
     sim_dt = _to_float(model._scenario_dt, "scenario dt", model._scenario_where) if model._scenario_dt is not None else None
@@ -711,6 +708,8 @@ def validate(model: Model) -> ModelSpec:
                        "a measurement may use states and parameters only", kinds)
         R, as_list = _as_square(sd.noise, m, f"sensor {sd.name!r} noise", sd.where)
         _check_symbols(R, set(ps), f"sensor {sd.name!r} noise", sd.where, "R may use parameters only", kinds)
+        _check_printable(h, f"sensor {sd.name!r} h", sd.where)
+        _check_printable(R, f"sensor {sd.name!r} noise", sd.where)
         if R != R.T:
             raise ModelError(f"sensor {sd.name!r} noise is not symmetric; make entry (i, j) equal entry (j, i)", sd.where)
         rnum = _numeric(R, subs, f"sensor {sd.name!r} noise", sd.where)
@@ -786,6 +785,38 @@ def validate(model: Model) -> ModelSpec:
         input_profile=model._input_profile,
         where={"model": mw, "process": pw, "Q": qw, "initial": iw},
     )
+
+
+def _printable(e: sp.Basic, printer: Any) -> bool:
+    try:
+        printer.doprint(e)
+    except Exception:  # sympy raises PrintMethodNotImplementedError, ValueError, ...
+        return False
+    return True
+
+
+def _check_printable(mat: sp.Matrix, what: str, where: Optional[Where]) -> None:
+    """Every function must have a C99 <math.h> form, or generation would fail later with a
+    traceback. Names the innermost function that cannot be printed."""
+    from sympy.printing.c import C99CodePrinter
+
+    printer = C99CodePrinter()
+    for i, e in enumerate(mat):
+        for node in e.atoms(sp.Piecewise):
+            if not any(c == sp.true for _, c in node.args):
+                raise ModelError(f"{what} entry {i} has a Piecewise without a final (value, True) branch; "
+                                 f"add one so every input has a value", where)
+        if _printable(e, printer):
+            continue
+        bad = None
+        for node in sp.postorder_traversal(e):
+            if isinstance(node, sp.Function) or node.is_Function:
+                if not _printable(node, printer):
+                    bad = node
+                    break
+        name = type(bad).__name__ if bad is not None else "a construct"
+        raise ModelError(f"{what} entry {i} uses {name}, which has no C form; "
+                         f"write it with elementary functions (exp, log, sqrt, sin, atan2, ...)", where)
 
 
 def _check_profile(profile: Callable[[float], Sequence[float]], nu: int, src: str, where: Optional[Where]) -> None:
