@@ -277,18 +277,41 @@ def _affine(e: sp.Expr, xset: Set[sp.Symbol]) -> bool:
 
 def _atomize(e: sp.Expr, xs: List[sp.Symbol], xset: Set[sp.Symbol], atoms: Dict[sp.Expr, sp.Symbol],
              tag: str) -> sp.Expr:
-    """``e`` with each maximal sum affine in two or more states replaced by a placeholder."""
+    """``e`` with each maximal sum affine in two or more states, and each affine argument of
+    sin or cos, replaced by a placeholder symbol."""
     used = e.free_symbols & xset
     if not used or not e.args:
         return e
+    trig_arg = isinstance(e, (sp.sin, sp.cos)) and _affine(e.args[0], xset)
+    if trig_arg:
+        return e.func(_atom(e.args[0], atoms, tag))
     if e.is_Add and len(used) >= 2 and _affine(e, xset):
-        if e not in atoms:
-            atoms[e] = sp.Dummy(f"{tag}atom{len(atoms)}")
-        return atoms[e]
+        return _atom(e, atoms, tag)
     try:
         return e.func(*[_atomize(a, xs, xset, atoms, tag) for a in e.args])
     except Exception:  # a node that cannot be rebuilt from its arguments: keep it whole
         return e
+
+
+def _atom(e: sp.Expr, atoms: Dict[sp.Expr, sp.Symbol], tag: str) -> sp.Symbol:
+    if e not in atoms:
+        atoms[e] = sp.Symbol(f"__{tag}atom{len(atoms)}")
+    return atoms[e]
+
+
+def _trig_pairs(blk: _Block, name: str, i: int, centre: Tuple[sp.Expr, sp.Expr], dlt: sp.Expr
+                ) -> Tuple[sp.Expr, sp.Expr, sp.Expr, sp.Expr]:
+    """sin and cos of c + d and c - d from sin c, cos c, sin d, cos d (angle-sum identities):
+    two transcendental calls for the pair instead of four."""
+    sc, cc = centre
+    sd = blk.value(f"{name}sd{i}", sp.sin(dlt))
+    cd = blk.value(f"{name}cd{i}", sp.cos(dlt))
+    a = blk.value(f"{name}x{i}", sc * cd)
+    b = blk.value(f"{name}y{i}", cc * sd)
+    c = blk.value(f"{name}z{i}", cc * cd)
+    d = blk.value(f"{name}w{i}", sc * sd)
+    return (blk.value(f"{name}sp{i}", a + b), blk.value(f"{name}sm{i}", a - b),
+            blk.value(f"{name}cp{i}", c - d), blk.value(f"{name}cm{i}", c + d))
 
 
 def _transform(blk: _Block, spec: ModelSpec, funcs: sp.Matrix, angle: Sequence[bool], wts: UkfWeights,
@@ -318,14 +341,23 @@ def _transform(blk: _Block, spec: ModelSpec, funcs: sp.Matrix, angle: Sequence[b
     # value at x +- gamma L_i is a(x) +- a' (gamma L_i), a sparse dot product with a triangular
     # column instead of a full one per point
     xset = set(xs)
+    # an affine angle component: images c +- d_i, so sum sin = sin c (Wm0/w + 2 sum cos d_i)
+    lin_angle = {k for k in nl if angle[k] and funcs[k].free_symbols & xset and _affine(funcs[k], xset)}
     atoms: Dict[sp.Expr, sp.Symbol] = {}
-    shaped = {k: _atomize(funcs[k], xs, xset, atoms, tag) for k in nl}
+    shaped = {k: _atomize(funcs[k], xs, xset, atoms, tag) for k in nl if k not in lin_angle}
     centre_map = dict(names)
     plus_atoms: List[Dict[sp.Symbol, sp.Expr]] = [dict() for _ in range(n)]
     minus_atoms: List[Dict[sp.Symbol, sp.Expr]] = [dict() for _ in range(n)]
+    both = [sym for sym in atoms.values() if any(f.has(sp.sin(sym)) for f in shaped.values())
+            and any(f.has(sp.cos(sym)) for f in shaped.values())]
     for j, (e, sym) in enumerate(atoms.items()):
         centre_a = blk.value(f"{tag}a{j}", e.xreplace(names))
         centre_map[sym] = centre_a
+        trig = sym in both
+        if trig:
+            sc = blk.value(f"{tag}as{j}", sp.sin(centre_a))
+            cc = blk.value(f"{tag}ak{j}", sp.cos(centre_a))
+            centre_map[sp.sin(sym)], centre_map[sp.cos(sym)] = sc, cc
         coef: Dict[int, sp.Expr] = {}
         for m in sorted(xs.index(v) for v in e.free_symbols & xset):
             cm = sp.diff(e, xs[m])
@@ -334,6 +366,13 @@ def _transform(blk: _Block, spec: ModelSpec, funcs: sp.Matrix, angle: Sequence[b
             dlt = blk.value(f"{tag}ad{j}_{i}", sum((coef[m] * off[(m, i)] for m in coef if m >= i), sp.S.Zero))
             plus_atoms[i][sym] = centre_a + dlt
             minus_atoms[i][sym] = centre_a - dlt
+            if trig:
+                if dlt == 0:
+                    sp_, sm_, cp_, cm_ = sc, sc, cc, cc
+                else:
+                    sp_, sm_, cp_, cm_ = _trig_pairs(blk, f"{tag}r{j}_", i, (sc, cc), dlt)
+                plus_atoms[i][sp.sin(sym)], plus_atoms[i][sp.cos(sym)] = sp_, cp_
+                minus_atoms[i][sp.sin(sym)], minus_atoms[i][sp.cos(sym)] = sm_, cm_
     items: List[Tuple[str, sp.Expr]] = []
     for k in range(funcs.shape[0]):
         items.append((f"{tag}c{k}", shaped[k].xreplace(centre_map) if k in shaped else funcs[k].xreplace(names)))
@@ -348,6 +387,8 @@ def _transform(blk: _Block, spec: ModelSpec, funcs: sp.Matrix, angle: Sequence[b
                 plus[xs[m]] = xm + off[(m, i)]
                 minus[xs[m]] = xm - off[(m, i)]
         for k in nl:
+            if k in lin_angle:
+                continue
             items.append((f"{tag}p{i}_{k}", shaped[k].xreplace(plus)))
             items.append((f"{tag}m{i}_{k}", shaped[k].xreplace(minus)))
     lin_items: List[Tuple[str, sp.Expr]] = []
@@ -373,14 +414,27 @@ def _transform(blk: _Block, spec: ModelSpec, funcs: sp.Matrix, angle: Sequence[b
                 t.append(blk.value(f"{tag}T{i}_{k}", e))
             spreads.append(_Spread(True, centre, t, [sp.S.Zero] * n, sp.S.Zero))
             continue
-        yp = [vals[f"{tag}p{i}_{k}"] for i in range(n)]
-        ym = [vals[f"{tag}m{i}_{k}"] for i in range(n)]
+        r0 = wts.wm0 / wts.w
+        if k in lin_angle:
+            coef: Dict[int, sp.Expr] = {}
+            for m in sorted(xs.index(v) for v in funcs[k].free_symbols & xset):
+                cm = sp.diff(funcs[k], xs[m])
+                coef[m] = cm if cm.is_Number else blk.value(f"{tag}lc{k}_{m}", cm.xreplace(names))
+            dl = [blk.value(f"{tag}ld{i}_{k}", sum((coef[m] * off[(m, i)] for m in coef if m >= i), sp.S.Zero))
+                  for i in range(n)]
+            yp = [centre + d for d in dl]
+            ym = [centre - d for d in dl]
+            kk = blk.value(f"{tag}kk{k}", sp.Float(r0) + 2 * sum((sp.cos(d) for d in dl), sp.S.Zero))
+            mean = blk.value(f"{tag}mu{k}", sp.atan2(sp.sin(centre) * kk, sp.cos(centre) * kk))
+        else:
+            yp = [vals[f"{tag}p{i}_{k}"] for i in range(n)]
+            ym = [vals[f"{tag}m{i}_{k}"] for i in range(n)]
         if angle[k]:
-            # circular mean; the common factor w of the outer weights cancels in atan2
-            r0 = wts.wm0 / wts.w
-            ssum = _scaled(r0, sp.sin(centre)) + sum((sp.sin(yp[i]) + sp.sin(ym[i]) for i in range(n)), sp.S.Zero)
-            csum = _scaled(r0, sp.cos(centre)) + sum((sp.cos(yp[i]) + sp.cos(ym[i]) for i in range(n)), sp.S.Zero)
-            mean = blk.value(f"{tag}mu{k}", sp.atan2(ssum, csum))
+            if k not in lin_angle:
+                # circular mean; the common factor w of the outer weights cancels in atan2
+                ssum = _scaled(r0, sp.sin(centre)) + sum((sp.sin(yp[i]) + sp.sin(ym[i]) for i in range(n)), sp.S.Zero)
+                csum = _scaled(r0, sp.cos(centre)) + sum((sp.cos(yp[i]) + sp.cos(ym[i]) for i in range(n)), sp.S.Zero)
+                mean = blk.value(f"{tag}mu{k}", sp.atan2(ssum, csum))
             slot = n_angle
             blk.add("wrap", f"ea[{slot}]", centre - mean)
             d0 = _sym(f"ea[{slot}]")

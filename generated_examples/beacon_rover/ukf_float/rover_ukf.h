@@ -43,7 +43,7 @@
  * Reentrant: distinct structs may be used from distinct threads.
  * Sigma points: 2n+1 = 9, never stored as arrays. Their offsets gamma*L, their images
  * and deviations are const locals of predict and update (straight-line code), so they live
- * on the stack of those calls: at most 696 bytes named in predict and 452 bytes in
+ * on the stack of those calls: at most 972 bytes named in predict and 452 bytes in
  * the largest update (every local counted; the compiler keeps many in registers).
  * Weights: Wm0 = 0.0F, Wc0 = 2.0F, Wm_i = Wc_i = 0.125F (i = 1..8);
  * alpha = 1.0F, beta = 2.0F, kappa = 0.0F.
