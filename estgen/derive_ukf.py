@@ -18,8 +18,16 @@ so that structure the model already has costs nothing at run time:
   states i..n-1; an image that does not depend on those states equals the centre's, and sympy's
   common-subexpression elimination over all 2n+1 images shares it (and every partial result).
 
+* Affine pieces. Inside a nonlinear component, a sum affine in two or more states (and any
+  affine argument of sin or cos) has the value ``a(x) +- a' gamma L_i`` at the i-th pair: one
+  short dot product with a triangular column per pair. When both sin and cos of such an argument
+  occur, the pair's four values come from sin and cos of the centre and of the offset by the
+  angle-sum identities (two calls per pair, not four).
+
 A nonlinear component is evaluated at all 2n+1 points; an angle component takes the circular
-mean ``atan2(sum w sin, sum w cos)`` and wrapped deviations, as the reference does.
+mean ``atan2(sum w sin, sum w cos)`` and wrapped deviations, as the reference does. For an affine
+angle component with images ``c +- d_i`` those sums are ``sin c (Wm0/w + 2 sum cos d_i)`` and
+``cos c (...)``: n cosines instead of 4n + 2 calls.
 
 The update uses the Cholesky factor ``S = Ls Ls'``: with ``B = C Ls^-T`` and ``b = Ls^-1 y``,
 ``K y = B b``, ``K S K' = B B'`` and ``NIS = b' b``; one triangular solve per row of C and no

@@ -63,8 +63,9 @@ def generate_ukf(spec: ModelSpec, precision: str = "float", **options: Any) -> G
     ctx["memory_note"] = [
         f"Sigma points: 2n+1 = {2 * n + 1}, never stored as arrays. Their offsets gamma*L, their images",
         "and deviations are const locals of predict and update (straight-line code), so they live",
-        f"on the stack of those calls: at most {p_bytes} bytes named in predict and {u_bytes} bytes in",
-        "the largest update (every local counted; the compiler keeps many in registers).",
+        f"on the stack of those calls: the named locals total {p_bytes} bytes in predict and {u_bytes} bytes",
+        "in the largest update. The real frame depends on the compiler (registers hold many, spills",
+        "add some): measure it on the target, e.g. gcc -fstack-usage.",
         f"Weights: Wm0 = {ctx['weights']['wm0']}, Wc0 = {ctx['weights']['wc0']}, "
         f"Wm_i = Wc_i = {ctx['weights']['wm']} (i = 1..{2 * n});",
         f"alpha = {ctx['weights']['alpha']}, beta = {ctx['weights']['beta']}, kappa = {ctx['weights']['kappa']}.",

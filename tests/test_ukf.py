@@ -310,7 +310,7 @@ def test_ops_and_memory_accounting() -> None:
     gen = generate(spec, filter="ukf", precision="double")
     assert set(gen.ops) == {"predict"} | {f"update_{s.name}" for s in spec.sensors}
     assert all(sum(v.values()) > 0 for v in gen.ops.values())
-    m = re.search(r"at most (\d+) bytes named in predict and (\d+) bytes", gen.header)
+    m = re.search(r"named locals total (\d+) bytes in predict and (\d+) bytes", gen.header)
     assert m and int(m.group(1)) == gen.sigma_stack["predict"] and int(m.group(2)) == gen.sigma_stack["update"]
     assert f"sizeof({gen.prefix}_t) = {gen.struct_bytes} bytes" in gen.header
     # x, packed P and the parameters: the same struct as the EKF's

@@ -38,8 +38,9 @@
  * Reentrant: distinct structs may be used from distinct threads.
  * Sigma points: 2n+1 = 5, never stored as arrays. Their offsets gamma*L, their images
  * and deviations are const locals of predict and update (straight-line code), so they live
- * on the stack of those calls: at most 144 bytes named in predict and 156 bytes in
- * the largest update (every local counted; the compiler keeps many in registers).
+ * on the stack of those calls: the named locals total 144 bytes in predict and 156 bytes
+ * in the largest update. The real frame depends on the compiler (registers hold many, spills
+ * add some): measure it on the target, e.g. gcc -fstack-usage.
  * Weights: Wm0 = 0.0F, Wc0 = 2.0F, Wm_i = Wc_i = 0.25F (i = 1..4);
  * alpha = 1.0F, beta = 2.0F, kappa = 0.0F.
  */
