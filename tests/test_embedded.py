@@ -169,6 +169,25 @@ def test_replay_on_emulated_m4f_matches_reference(generated, compiled, tmp_path:
     assert sum(s.calls for s in res.updates.values()) == sum(len(m) for m in scen.measurements)
 
 
+@pytest.mark.parametrize("example,filt", list(_params()))
+def test_double_replay_on_emulated_m4f_matches_reference(generated, compiled, tmp_path: Path, example: str,
+                                                         filt: str) -> None:
+    """A double build on the M4F runs through the compiler's software double routines; it must
+    still agree with the float64 reference as the contract's verify demands of double:
+    |dx_i| <= 1e-9 max(|x_i|, sigma_i) (estgen verify's tolerance)."""
+    header, _ = generated(example, filt, "double")
+    spec = estgen.load_model(ROOT / "generated_examples" / example / "model.py")
+    gen = _copy_generated(header, tmp_path)
+    scen = make_scenario(spec, 100, REPLAY_SEED)
+    cross.write_replay(spec, filt, "double", scen, gen)
+    elf = cross.build_firmware(gen, spec.name, filt, tmp_path / "build",
+                               filter_obj=compiled(example, filt, "double", "cortex-m4f"))
+    res = cross.run_qemu(elf, "double")
+    x_ref, P_ref, _ = cross.reference_replay(spec, filt, "double", scen)
+    scale = np.maximum(np.abs(x_ref), np.sqrt(np.diag(P_ref)))
+    assert np.all(np.abs(res.x - x_ref) <= 1e-9 * scale), (res.x - x_ref) / scale
+
+
 def test_parse_replay_output() -> None:
     """The replay's records decode as main.c documents them."""
     res = cross.parse_replay_output(
