@@ -142,20 +142,24 @@ def test_float_build_on_m4f_has_no_double_code(compiled, example: str, filt: str
     assert not doubles, doubles
 
 
+def _replay(generated, compiled, tmp_path: Path, example: str, filt: str, precision: str, steps: int):
+    """Simulate a scenario, build the bare-metal replay of it and run it on QEMU."""
+    header, _ = generated(example, filt, precision)
+    spec = estgen.load_model(ROOT / "generated_examples" / example / "model.py")
+    gen = _copy_generated(header, tmp_path)
+    scen = make_scenario(spec, steps, REPLAY_SEED)
+    cross.write_replay(spec, filt, precision, scen, gen)
+    elf = cross.build_firmware(gen, spec.name, filt, tmp_path / "build",
+                               filter_obj=compiled(example, filt, precision, "cortex-m4f"))
+    return spec, scen, cross.run_qemu(elf, precision)
+
+
 @pytest.mark.parametrize("example,filt", list(_params()))
 def test_replay_on_emulated_m4f_matches_reference(generated, compiled, tmp_path: Path, example: str,
                                                   filt: str) -> None:
     """The float filter, bare-metal on QEMU mps2-an386, ends within 0.02 sigma of the float64
     reference (sigma from the reference's P) on the same recorded scenario."""
-    header, _ = generated(example, filt, "float")
-    spec = estgen.load_model(ROOT / "generated_examples" / example / "model.py")
-    gen = _copy_generated(header, tmp_path)
-    scen = make_scenario(spec, REPLAY_STEPS, REPLAY_SEED)
-    cross.write_replay(spec, filt, "float", scen, gen)
-    elf = cross.build_firmware(gen, spec.name, filt, tmp_path / "build",
-                               filter_obj=compiled(example, filt, "float", "cortex-m4f"))
-    res = cross.run_qemu(elf, "float")
-
+    spec, scen, res = _replay(generated, compiled, tmp_path, example, filt, "float", REPLAY_STEPS)
     x_ref, P_ref, statuses = cross.reference_replay(spec, filt, "float", scen)
     sigma = np.sqrt(np.diag(P_ref))
     dev = np.abs(res.x - x_ref) / sigma
@@ -175,14 +179,7 @@ def test_double_replay_on_emulated_m4f_matches_reference(generated, compiled, tm
     """A double build on the M4F runs through the compiler's software double routines; it must
     still agree with the float64 reference as the contract's verify demands of double:
     |dx_i| <= 1e-9 max(|x_i|, sigma_i) (estgen verify's tolerance)."""
-    header, _ = generated(example, filt, "double")
-    spec = estgen.load_model(ROOT / "generated_examples" / example / "model.py")
-    gen = _copy_generated(header, tmp_path)
-    scen = make_scenario(spec, 100, REPLAY_SEED)
-    cross.write_replay(spec, filt, "double", scen, gen)
-    elf = cross.build_firmware(gen, spec.name, filt, tmp_path / "build",
-                               filter_obj=compiled(example, filt, "double", "cortex-m4f"))
-    res = cross.run_qemu(elf, "double")
+    spec, scen, res = _replay(generated, compiled, tmp_path, example, filt, "double", 100)
     x_ref, P_ref, _ = cross.reference_replay(spec, filt, "double", scen)
     scale = np.maximum(np.abs(x_ref), np.sqrt(np.diag(P_ref)))
     assert np.all(np.abs(res.x - x_ref) <= 1e-9 * scale), (res.x - x_ref) / scale
