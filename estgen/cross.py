@@ -39,6 +39,7 @@ __all__ = [
     "undefined_symbols",
     "defined_functions",
     "forbidden_references",
+    "StackEntry",
     "parse_stack_usage",
     "parse_callgraph",
     "worst_stack",
@@ -52,6 +53,8 @@ __all__ = [
     "run_qemu",
     "parse_replay_output",
     "ReplayResult",
+    "CallStats",
+    "QEMU_ARGS",
     "build_host_replay",
     "callgrind_instructions",
 ]

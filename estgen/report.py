@@ -19,6 +19,13 @@ Figures, each measured, never estimated:
   --toggle-collect``), both over the same simulated scenario.
 
 A tool that is not installed is reported as missing and its figures are left out.
+
+JSON (``--json``): ``model``, ``filter``, ``precision``, ``target``, ``struct``, ``ram_bytes``,
+``flash`` {text, rodata, total}, ``functions`` {NAME: {stack_bytes, stack_static,
+library_calls, ops, ops_counted_by, ops_c_text}}, ``undefined_symbols``, ``instructions``
+{steps, seed, "qemu-cortex-m4f": {instructions_per_tick, per_step, NAME: {calls,
+instructions_per_call, stack_high_water, refused}}, "host-callgrind": {per_step, NAME: {calls,
+instructions_per_call}}}, and ``missing`` {TOOL: [figures it would have given]}.
 """
 
 from __future__ import annotations

@@ -243,3 +243,13 @@ def test_report_command_json(tmp_path: Path, capsys: pytest.CaptureFixture) -> N
     data = json.loads(out.read_text())
     assert data["target"] == "cortex-m0plus" and data["model"] == "cart"
     assert f"{data['ram_bytes']} bytes" in capsys.readouterr().out
+
+
+def test_report_bad_input_exits_2(tmp_path: Path, capsys: pytest.CaptureFixture) -> None:
+    parser = argparse.ArgumentParser()
+    report.add_arguments(parser)
+    # contract section 2: bad input exits 2 with one short message naming the file
+    valve = ROOT / "generated_examples" / "valve_actuator" / "model.py"  # Min/Max: no EKF
+    assert report.run(parser.parse_args([str(valve), "--filter", "ekf"])) == 2
+    assert "model.py" in capsys.readouterr().err
+    assert report.run(parser.parse_args([str(tmp_path / "missing.py")])) == 2
