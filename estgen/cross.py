@@ -426,6 +426,7 @@ def replay_header(spec: Any, filter: str, precision: str, scenario: Any) -> str:
         f"#define REPLAY_INIT {pre}_init",
         f"#define REPLAY_PREDICT {pre}_predict",
         f"#define REPLAY_NX {spec.n}u",
+        f"#define REPLAY_NP {spec.n * (spec.n + 1) // 2}u /* packed covariance entries */",
         f"#define REPLAY_STEPS {steps}u",
         f"#define REPLAY_NSENSORS {len(sensors)}u",
         f"#define REPLAY_NMEAS {len(meas_step)}u",
@@ -531,17 +532,32 @@ class ReplayResult:
 
     x_bits: List[str]
     precision: str
+    P_bits: List[str] = field(default_factory=list)
     calib: Optional[Tuple[int, int, int]] = None
     overhead: Optional[Tuple[int, int]] = None
     predict: Optional[CallStats] = None
     updates: Dict[str, CallStats] = field(default_factory=dict)
 
+    def _decode(self, bits: Sequence[str]) -> np.ndarray:
+        dtype = ">u4" if self.precision == "float" else ">u8"
+        raw = np.array([int(b, 16) for b in bits], dtype=np.uint64).astype(dtype)
+        return raw.view(">f4" if self.precision == "float" else ">f8").astype(float)
+
     @property
     def x(self) -> np.ndarray:
         """The final state decoded from its IEEE-754 bits."""
-        dtype = ">u4" if self.precision == "float" else ">u8"
-        raw = np.array([int(b, 16) for b in self.x_bits], dtype=np.uint64).astype(dtype)
-        return raw.view(">f4" if self.precision == "float" else ">f8").astype(float)
+        return self._decode(self.x_bits)
+
+    @property
+    def P(self) -> np.ndarray:
+        """The final covariance, unpacked from the upper triangle stored row by row."""
+        n = len(self.x_bits)
+        packed = self._decode(self.P_bits)
+        if packed.size != n * (n + 1) // 2:
+            raise RuntimeError(f"{packed.size} covariance entries for {n} states")
+        full = np.zeros((n, n))
+        full[np.triu_indices(n)] = packed  # row-major upper triangle: the generated layout
+        return full + np.triu(full, 1).T
 
     def instructions_per_tick(self) -> Optional[float]:
         """From the calibration loops: 2*iters more instructions took (t2 - t1) more ticks."""
@@ -577,6 +593,8 @@ def parse_replay_output(text: str, precision: str) -> ReplayResult:
             res.updates[p[1]] = CallStats(*(int(v) for v in p[2:]))
         elif p[0] == "x" and len(p) == 3:
             res.x_bits.append(p[2])
+        elif p[0] == "P" and len(p) == 3:
+            res.P_bits.append(p[2])
         elif p[0] == "end":
             ended = True
     if not ended or res.predict is None:

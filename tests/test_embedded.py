@@ -166,6 +166,9 @@ def test_replay_on_emulated_m4f_matches_reference(generated, compiled, tmp_path:
     assert res.x.shape == (spec.n,)
     assert np.all(np.isfinite(res.x))
     assert np.all(dev <= 0.02), f"deviation / sigma = {dev}"
+    # and the covariance: |dP_ij| <= 0.02 sigma_i sigma_j
+    dP = np.abs(res.P - P_ref) / np.outer(sigma, sigma)
+    assert np.all(dP <= 0.02), f"max covariance deviation {dP.max()}"
     # the same calls were refused (a non-zero status) on the target as by the reference
     refused = res.predict.refused + sum(s.refused for s in res.updates.values())
     assert refused == sum(1 for s in statuses if s != 0)
@@ -183,14 +186,20 @@ def test_double_replay_on_emulated_m4f_matches_reference(generated, compiled, tm
     x_ref, P_ref, _ = cross.reference_replay(spec, filt, "double", scen)
     scale = np.maximum(np.abs(x_ref), np.sqrt(np.diag(P_ref)))
     assert np.all(np.abs(res.x - x_ref) <= 1e-9 * scale), (res.x - x_ref) / scale
+    sigma = np.sqrt(np.diag(P_ref))
+    assert np.all(np.abs(res.P - P_ref) <= 1e-9 * np.outer(sigma, sigma))
 
 
 def test_parse_replay_output() -> None:
     """The replay's records decode as main.c documents them."""
     res = cross.parse_replay_output(
-        "calib 20000 1000 2000\noverhead 256 38\npredict 1 3 0 0\nx 0 3f800000\nend\n", "float")
+        "calib 20000 1000 2000\noverhead 256 38\npredict 1 3 0 0\nx 0 3f800000\nx 1 40000000\n"
+        "P 0 3f800000\nP 1 bf000000\nP 2 40400000\nend\n", "float")
     assert res.instructions_per_tick() == pytest.approx(40.0)  # 40000 instructions in 1000 ticks
     assert res.x[0] == 1.0  # IEEE-754 single 0x3f800000 is 1.0 (IEEE 754-2008, binary32)
+    assert res.x[1] == 2.0  # 0x40000000
+    # packed upper triangle row by row (the generated header's layout): P00, P01, P11
+    assert res.P.tolist() == [[1.0, -0.5], [-0.5, 3.0]]  # 0xbf000000 = -0.5, 0x40400000 = 3.0
     with pytest.raises(RuntimeError):
         cross.parse_replay_output("calib 1 2 3\n", "float")  # a run that never reached "end"
 

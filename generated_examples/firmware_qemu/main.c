@@ -23,6 +23,7 @@
  *   predict CALLS TICKS REFUSED STACK
  *   update SENSOR CALLS TICKS REFUSED STACK
  *   x I HEXBITS                       final state, IEEE-754 bits of each element
+ *   P I HEXBITS                       final covariance, packed upper triangle row by row
  *   end
  */
 #include <stdint.h>
@@ -221,6 +222,13 @@ int main(void)
         put_u32(i);
         put_sep();
         put_real_bits(flt.x[i]);
+        end_line();
+    }
+    for (i = 0; i < REPLAY_NP; ++i) {
+        put_str("P ");
+        put_u32(i);
+        put_sep();
+        put_real_bits(flt.P[i]);
         end_line();
     }
     put_str("end");
