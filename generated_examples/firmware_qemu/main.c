@@ -156,6 +156,18 @@ static void print_stats(const char *what, const char *sensor, const stats_t *s)
     end_line();
 }
 
+static void print_vector(const char *tag, const replay_real *v, uint32_t len)
+{
+    uint32_t i;
+    for (i = 0; i < len; ++i) {
+        put_str(tag);
+        put_u32(i);
+        put_sep();
+        put_real_bits(v[i]);
+        end_line();
+    }
+}
+
 #define CALIB_ITERS 20000u
 
 int main(void)
@@ -217,20 +229,8 @@ int main(void)
     for (i = 0; i < REPLAY_NSENSORS; ++i) {
         print_stats("update", replay_sensor_names[i], &update_stats[i]);
     }
-    for (i = 0; i < REPLAY_NX; ++i) {
-        put_str("x ");
-        put_u32(i);
-        put_sep();
-        put_real_bits(flt.x[i]);
-        end_line();
-    }
-    for (i = 0; i < REPLAY_NP; ++i) {
-        put_str("P ");
-        put_u32(i);
-        put_sep();
-        put_real_bits(flt.P[i]);
-        end_line();
-    }
+    print_vector("x ", flt.x, REPLAY_NX);
+    print_vector("P ", flt.P, REPLAY_NP);
     put_str("end");
     end_line();
     return 0;
