@@ -87,6 +87,8 @@ CASES: Tuple[Tuple[str, Optional[int], Tuple[str, ...], bool], ...] = (
     ("p0_not_finite.py", 9, ("P0 holds an infinite or undefined value", "finite variances"), False),
     ("name_math_function.py", 6, ("'sqrt' is the name of a math function", "rename"), False),
     ("x0_not_a_list.py", 9, ("x0 must be a list of numbers", "one per state"), False),
+    ("function_without_c_form.py", 8, ("uses besselj, which has no C form", "elementary functions"), False),
+    ("piecewise_no_default.py", 6, ("Piecewise without a final (value, True) branch", "add one"), False),
     ("scenario_raises.py", 5, ("scenario inputs(0.0) raised ZeroDivisionError", "fix the input function"), False),
 )
 
@@ -148,6 +150,8 @@ def _run_cli(*args: str) -> subprocess.CompletedProcess:
     ("undeclared_in_h.py", "ukf"),
     ("ekf_min_in_f.py", "ekf"),
     ("no_model.py", "ukf"),
+    ("function_without_c_form.py", "ukf"),
+    ("piecewise_no_default.py", "ukf"),
 ])
 def test_command_line_reports_bad_model(tmp_path, fname: str, filt: str) -> None:
     out = tmp_path / "out"
