@@ -216,9 +216,11 @@ def test_report_figures(cart_report) -> None:
     for fn in names:
         assert m4[fn]["calls"] > 0 and host[fn]["calls"] == m4[fn]["calls"]
         assert m4[fn]["instructions_per_call"] > 20 and host[fn]["instructions_per_call"] > 20
-        # Two independent stack figures: the paint probe touched no more than GCC's bound
-        # (none of these calls a library function, whose frames GCC cannot see).
-        assert fns[fn]["library_calls"] == []
+        # Two independent stack figures: the paint probe touched no more than GCC's bound.
+        # GCC cannot see library frames; the only library call allowed here is sqrtf, which
+        # on the M4F's FPU is the inline VSQRT.F32 with a call only on the errno path for a
+        # negative argument (GCC, -fmath-errno; common practice), never taken in a good run.
+        assert set(fns[fn]["library_calls"]) <= {"sqrtf"}, fns[fn]["library_calls"]
         assert 0 < m4[fn]["stack_high_water"] <= fns[fn]["stack_bytes"]
     assert rep["missing"] == {}
     assert "cart_ekf_predict" in report.format_report(rep)
