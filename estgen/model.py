@@ -50,7 +50,7 @@ _C_MACROS = frozenset(
     fpclassify isgreater isless islessequal isgreaterequal islessgreater isunordered offsetof
     errno assert math_errhandling MATH_ERRNO MATH_ERREXCEPT size_t ptrdiff_t wchar_t
     int8_t int16_t int32_t int64_t uint8_t uint16_t uint32_t uint64_t intptr_t uintptr_t
-    intmax_t uintmax_t""".split()
+    intmax_t uintmax_t linux unix i386""".split()  # the last three: predefined by gcc/clang in GNU dialects
 )
 # Names the numpy reference's printer (sympy lambdify, "numpy" module) emits for functions and
 # constants: a state, input or parameter with one of these names shadows the function there
@@ -749,23 +749,27 @@ def validate(model: Model) -> ModelSpec:
     P0n = _numeric(P0m, {}, "initial() P0", iw)
     _check_psd(P0n, "initial() P0", iw, strict=True)
 
-    # f and h must evaluate to finite numbers at the defaults and x0 (catches 1/0 and log(0) early)
-    point = {**subs, **dict(zip(xs, x0)), **{u: 0.0 for u in us}, dt: sim_dt or 0.01}
+    if model._input_profile is not None and not callable(model._input_profile):
+        raise ModelError("scenario(inputs=...) must be a function of time t returning the input vector",
+                         model._scenario_where)
+    if sim_dt is not None and sim_dt <= 0:
+        raise ModelError(f"scenario dt must be > 0, got {sim_dt}", model._scenario_where)
+    u0 = [0.0] * len(us)
+    if model._input_profile is not None:
+        u0 = _check_profile(model._input_profile, len(us), src, model._scenario_where)
+
+    # f and h must evaluate to finite numbers at the defaults and x0 (catches 1/0 and log(0)
+    # early), with the scenario's first input where there is one: zero may be outside its range.
+    input_note = "the scenario's input at t = 0" if model._input_profile is not None else "zero input"
+    point = {**subs, **dict(zip(xs, x0)), **dict(zip(us, u0)), dt: sim_dt or 0.01}
     for label, mat, w in [(what + "()", fcol, pw)] + [(f"sensor {s.name!r} h", s.h, s.where) for s in sensors]:
         try:
             val = np.array(mat.xreplace({k: sp.Float(v) for k, v in point.items()}).evalf(), dtype=complex)
         except (TypeError, ValueError):
             continue  # not numerically evaluable symbolically here; the filters check at run time
         if not np.all(np.isfinite(val)) or np.any(np.abs(val.imag) > 1e-9 * (1 + np.abs(val.real))):
-            raise ModelError(f"{label} is not finite (or not real) at x0 with default parameters and zero input", w)
-
-    if model._input_profile is not None and not callable(model._input_profile):
-        raise ModelError("scenario(inputs=...) must be a function of time t returning the input vector",
-                         model._scenario_where)
-    if sim_dt is not None and sim_dt <= 0:
-        raise ModelError(f"scenario dt must be > 0, got {sim_dt}", model._scenario_where)
-    if model._input_profile is not None:
-        _check_profile(model._input_profile, len(us), src, model._scenario_where)
+            raise ModelError(f"{label} is not finite (or not real) at x0 with default parameters and {input_note}; "
+                             f"check x0 and the expression's domain", w)
 
     return ModelSpec(
         name=model.name,
@@ -819,7 +823,8 @@ def _check_printable(mat: sp.Matrix, what: str, where: Optional[Where]) -> None:
                          f"write it with elementary functions (exp, log, sqrt, sin, atan2, ...)", where)
 
 
-def _check_profile(profile: Callable[[float], Sequence[float]], nu: int, src: str, where: Optional[Where]) -> None:
+def _check_profile(profile: Callable[[float], Sequence[float]], nu: int, src: str,
+                   where: Optional[Where]) -> List[float]:
     """Call the input profile once at t = 0 so a broken one fails here, with its line,
     rather than deep inside a simulation."""
     try:
@@ -837,6 +842,7 @@ def _check_profile(profile: Callable[[float], Sequence[float]], nu: int, src: st
                          f"return one per input", where)
     if not all(math.isfinite(v) for v in vals):
         raise ModelError(f"scenario inputs(0.0) returns a non-finite value {vals}; return finite inputs", where)
+    return vals
 
 
 def _find_nondiff(expr: sp.Basic) -> Optional[str]:

@@ -168,3 +168,29 @@ def test_valve_example_ekf_refused_on_the_command_line(tmp_path) -> None:
     res = _run_cli("generate", path, "--filter", "ekf", "-o", str(tmp_path / "out"))
     assert res.returncode == 2
     assert "Traceback" not in res.stderr and "--filter ukf" in res.stderr
+
+
+_DIVIDES_BY_INPUT = '''import sympy as sp
+from estgen import Model
+
+model = Model("mixer")
+(conc,) = model.states("conc")
+(flow,) = model.inputs("flow")
+model.process([conc + model.dt * (1.0 - conc) * 0.5 / flow])
+model.process_noise([1e-6])
+model.sensor("probe", [conc], noise=[1e-4])
+model.initial([0.2], [0.01])
+'''
+
+
+def test_domain_check_uses_the_scenario_input(tmp_path) -> None:
+    # f divides by the input: zero input is outside the model's range. Without a scenario the
+    # check at zero input refuses it; with a scenario whose flow is never zero it loads.
+    bare = tmp_path / "bare.py"
+    bare.write_text(_DIVIDES_BY_INPUT)
+    with pytest.raises(estgen.ModelError) as info:
+        estgen.load_model(str(bare))
+    assert "bare.py:7:" in str(info.value) and "zero input" in str(info.value)
+    ok = tmp_path / "with_scenario.py"
+    ok.write_text(_DIVIDES_BY_INPUT + "model.scenario(dt=1.0, inputs=lambda t: [2.0])\n")
+    assert estgen.load_model(str(ok)).nu == 1
