@@ -374,12 +374,19 @@ def load_model(path: Union[str, os.PathLike]) -> ModelSpec:
     path = os.fspath(path)
     if not os.path.isfile(path):
         raise ModelError(f"model file not found: {path}")
-    with open(path, "r", encoding="utf-8") as fh:
-        text = fh.read()
+    try:
+        with open(path, "r", encoding="utf-8") as fh:
+            text = fh.read()
+    except UnicodeDecodeError as err:
+        raise ModelError(f"the model file is not UTF-8 text (byte {err.start}); save it as UTF-8", Where(path)) from None
+    except OSError as err:
+        raise ModelError(f"cannot read the model file: {err.strerror or err}", Where(path)) from None
     try:
         code = compile(text, path, "exec")
     except SyntaxError as err:
         raise ModelError(f"syntax error: {err.msg}", Where(path, err.lineno)) from None
+    except ValueError as err:  # e.g. NUL bytes in the source
+        raise ModelError(f"the model file cannot be compiled: {_short(err)}", Where(path)) from None
     namespace: Dict[str, Any] = {"__name__": "estgen_model", "__file__": os.path.abspath(path)}
     model_dir = os.path.dirname(os.path.abspath(path))
     sys.path.insert(0, model_dir)

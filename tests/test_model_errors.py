@@ -194,3 +194,17 @@ def test_domain_check_uses_the_scenario_input(tmp_path) -> None:
     ok = tmp_path / "with_scenario.py"
     ok.write_text(_DIVIDES_BY_INPUT + "model.scenario(dt=1.0, inputs=lambda t: [2.0])\n")
     assert estgen.load_model(str(ok)).nu == 1
+
+
+def test_unreadable_model_files(tmp_path) -> None:
+    # Bytes that are not UTF-8 (Python source is UTF-8 by default: PEP 3120), and a missing file.
+    latin = tmp_path / "latin.py"
+    latin.write_bytes(b"model = 1  # caf\xe9\n")
+    with pytest.raises(estgen.ModelError) as info:
+        estgen.load_model(str(latin))
+    assert str(info.value).startswith("latin.py: error: ") and "UTF-8" in str(info.value)
+    with pytest.raises(estgen.ModelError) as info:
+        estgen.load_model(str(tmp_path / "absent.py"))
+    assert "not found" in str(info.value) and "absent.py" in str(info.value)
+    res = _run_cli("generate", str(latin), "-o", str(tmp_path / "out"))
+    assert res.returncode == 2 and "Traceback" not in res.stderr and "UTF-8" in res.stderr
