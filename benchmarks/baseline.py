@@ -178,7 +178,7 @@ def _commit(c: _Ctx, w: _W, xn: str, Pn: str) -> None:
         if st.angle:
             w(f"{xn}[{i}] = wrap_angle({xn}[{i}]);")
     w(f"for (i = 0; i < {n}; ++i) {{ for (j = i + 1; j < {n}; ++j) {{")
-    w(f"    const {c.real} a = {c.lit(0.5)} * ({Pn}[i][j] + {Pn}[j][i]); {Pn}[i][j] = a; {Pn}[j][i] = a;")
+    w(f"    const {c.real} avg = {c.lit(0.5)} * ({Pn}[i][j] + {Pn}[j][i]); {Pn}[i][j] = avg; {Pn}[j][i] = avg;")
     w("} }")
     w(f"if (!all_finite({xn}, {n}) || !all_finite(&{Pn}[0][0], {n * n})) {{ return {int(Status.NON_FINITE)}; }}")
     w(f"memcpy(s->x, {xn}, sizeof s->x);")
