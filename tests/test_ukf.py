@@ -88,6 +88,14 @@ def test_non_default_parameters_match_reference(opts: Dict[str, float]) -> None:
     assert res.ok, (opts, res.x_dev, res.P_dev, res.status_mismatch)
 
 
+@pytest.mark.parametrize("precision", ["double", "float"])
+def test_block_sensor_with_angles_and_full_R_matches_reference(precision: str) -> None:
+    # Source: the reference UKF (block update with a full R, circular means per angle component).
+    res = verify(os.path.join(HERE, "models", "ukf_rangebearing.py"), filter="ukf", precision=precision,
+                 steps=400, seed=4)
+    assert res.ok, (res.x_dev, res.P_dev, res.status_mismatch)
+
+
 def test_heading_crossing_pi_tracks_truth_and_reference() -> None:
     # Source: the reference UKF (same algorithm) for equality; for tracking, common practice:
     # a consistent filter's error stays inside 3 sigma nearly always (Bar-Shalom, Li and
