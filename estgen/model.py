@@ -52,7 +52,7 @@ _C_MACROS = frozenset(
     int8_t int16_t int32_t int64_t uint8_t uint16_t uint32_t uint64_t intptr_t uintptr_t
     intmax_t uintmax_t linux unix i386""".split()  # the last three: predefined by gcc/clang in GNU dialects
 )
-# Names the numpy reference's printer (sympy lambdify, "numpy" module) emits for functions and
+# Names sympy's lambdify printers ("numpy" and "math" modules) emit for functions and
 # constants: a state, input or parameter with one of these names shadows the function there
 # (a TypeError) or, for e and pi, silently replaces the constant. The C side is safe (it
 # addresses x[i], u[i], par->name) but the reference must agree with it.
@@ -61,7 +61,7 @@ _RESERVED_MATH = frozenset(
     factorial floor gamma hypot isinf isnan lgamma log log10 log1p log2 logaddexp logaddexp2 max min
     sign sin sinh sqrt tan tanh e euler_gamma inf nan pi select reduce maximum minimum mod less
     greater equal less_equal greater_equal not_equal logical_and logical_or logical_not real imag
-    angle""".split()
+    angle asin acos atan atan2 asinh acosh atanh fabs copysign fmod trunc""".split()  # + "math" module
 )
 _IDENT = re.compile(r"^[A-Za-z][A-Za-z0-9_]*$")
 _MACRO_LIKE = re.compile(r"^(FP_|INT|UINT|PTRDIFF|SIZE|WCHAR|SIG_ATOMIC|WINT)[A-Z0-9_]*$")
