@@ -130,13 +130,7 @@ int cell_ekf_predict(cell_ekf_t *s, const float *u, float dt)
     if (!cell_ekf_finite(xn, 3u) || !cell_ekf_finite(Pn, 6u)) {
         return CELL_EKF_NON_FINITE;
     }
-    if (!(Pn[0] > 0.0F)) {
-        return CELL_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Pn[3] > 0.0F)) {
-        return CELL_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Pn[5] > 0.0F)) {
+    if (!cell_ekf_posdef(Pn)) {  /* a Cholesky factorization: positive diagonals are not enough */
         return CELL_EKF_NOT_POSITIVE_DEFINITE;
     }
 
@@ -194,13 +188,7 @@ int cell_ekf_update_voltage_nis(cell_ekf_t *s, const float *z, float *nis_out)
     if (!cell_ekf_finite(xs, 3u) || !cell_ekf_finite(Ps, 6u)) {
         return CELL_EKF_NON_FINITE;
     }
-    if (!(Ps[0] > 0.0F)) {
-        return CELL_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[3] > 0.0F)) {
-        return CELL_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[5] > 0.0F)) {
+    if (!cell_ekf_posdef(Ps)) {  /* a Cholesky factorization: positive diagonals are not enough */
         return CELL_EKF_NOT_POSITIVE_DEFINITE;
     }
 

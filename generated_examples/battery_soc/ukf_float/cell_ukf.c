@@ -156,13 +156,7 @@ int cell_ukf_predict(cell_ukf_t *s, const float *u, float dt)
     if (!cell_ukf_finite(xn, 3u) || !cell_ukf_finite(Pn, 6u)) {
         return CELL_UKF_NON_FINITE;
     }
-    if (!(Pn[0] > 0.0F)) {
-        return CELL_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Pn[3] > 0.0F)) {
-        return CELL_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Pn[5] > 0.0F)) {
+    if (!cell_ukf_posdef(Pn)) {  /* a Cholesky factorization: positive diagonals are not enough */
         return CELL_UKF_NOT_POSITIVE_DEFINITE;
     }
 
@@ -270,13 +264,7 @@ int cell_ukf_update_voltage_nis(cell_ukf_t *s, const float *z, float *nis_out)
     if (!cell_ukf_finite(xs, 3u) || !cell_ukf_finite(Ps, 6u)) {
         return CELL_UKF_NON_FINITE;
     }
-    if (!(Ps[0] > 0.0F)) {
-        return CELL_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[3] > 0.0F)) {
-        return CELL_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[5] > 0.0F)) {
+    if (!cell_ukf_posdef(Ps)) {  /* a Cholesky factorization: positive diagonals are not enough */
         return CELL_UKF_NOT_POSITIVE_DEFINITE;
     }
 

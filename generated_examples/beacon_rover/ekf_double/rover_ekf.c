@@ -174,16 +174,7 @@ int rover_ekf_predict(rover_ekf_t *s, const double *u, double dt)
     if (!rover_ekf_finite(xn, 4u) || !rover_ekf_finite(Pn, 10u)) {
         return ROVER_EKF_NON_FINITE;
     }
-    if (!(Pn[0] > 0.0)) {
-        return ROVER_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Pn[4] > 0.0)) {
-        return ROVER_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Pn[7] > 0.0)) {
-        return ROVER_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Pn[9] > 0.0)) {
+    if (!rover_ekf_posdef(Pn)) {  /* a Cholesky factorization: positive diagonals are not enough */
         return ROVER_EKF_NOT_POSITIVE_DEFINITE;
     }
 
@@ -253,16 +244,7 @@ int rover_ekf_update_range_a_nis(rover_ekf_t *s, const double *z, double *nis_ou
     if (!rover_ekf_finite(xs, 4u) || !rover_ekf_finite(Ps, 10u)) {
         return ROVER_EKF_NON_FINITE;
     }
-    if (!(Ps[0] > 0.0)) {
-        return ROVER_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[4] > 0.0)) {
-        return ROVER_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[7] > 0.0)) {
-        return ROVER_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[9] > 0.0)) {
+    if (!rover_ekf_posdef(Ps)) {  /* a Cholesky factorization: positive diagonals are not enough */
         return ROVER_EKF_NOT_POSITIVE_DEFINITE;
     }
 
@@ -344,16 +326,7 @@ int rover_ekf_update_range_b_nis(rover_ekf_t *s, const double *z, double *nis_ou
     if (!rover_ekf_finite(xs, 4u) || !rover_ekf_finite(Ps, 10u)) {
         return ROVER_EKF_NON_FINITE;
     }
-    if (!(Ps[0] > 0.0)) {
-        return ROVER_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[4] > 0.0)) {
-        return ROVER_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[7] > 0.0)) {
-        return ROVER_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[9] > 0.0)) {
+    if (!rover_ekf_posdef(Ps)) {  /* a Cholesky factorization: positive diagonals are not enough */
         return ROVER_EKF_NOT_POSITIVE_DEFINITE;
     }
 
@@ -476,16 +449,7 @@ int rover_ekf_update_range_cd_nis(rover_ekf_t *s, const double *z, double *nis_o
     if (!rover_ekf_finite(xs, 4u) || !rover_ekf_finite(Ps, 10u)) {
         return ROVER_EKF_NON_FINITE;
     }
-    if (!(Ps[0] > 0.0)) {
-        return ROVER_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[4] > 0.0)) {
-        return ROVER_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[7] > 0.0)) {
-        return ROVER_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[9] > 0.0)) {
+    if (!rover_ekf_posdef(Ps)) {  /* a Cholesky factorization: positive diagonals are not enough */
         return ROVER_EKF_NOT_POSITIVE_DEFINITE;
     }
 
@@ -561,16 +525,7 @@ int rover_ekf_update_compass_nis(rover_ekf_t *s, const double *z, double *nis_ou
     if (!rover_ekf_finite(xs, 4u) || !rover_ekf_finite(Ps, 10u)) {
         return ROVER_EKF_NON_FINITE;
     }
-    if (!(Ps[0] > 0.0)) {
-        return ROVER_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[4] > 0.0)) {
-        return ROVER_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[7] > 0.0)) {
-        return ROVER_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[9] > 0.0)) {
+    if (!rover_ekf_posdef(Ps)) {  /* a Cholesky factorization: positive diagonals are not enough */
         return ROVER_EKF_NOT_POSITIVE_DEFINITE;
     }
 

@@ -391,16 +391,7 @@ int rover_ukf_predict(rover_ukf_t *s, const float *u, float dt)
     if (!rover_ukf_finite(xn, 4u) || !rover_ukf_finite(Pn, 10u)) {
         return ROVER_UKF_NON_FINITE;
     }
-    if (!(Pn[0] > 0.0F)) {
-        return ROVER_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Pn[4] > 0.0F)) {
-        return ROVER_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Pn[7] > 0.0F)) {
-        return ROVER_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Pn[9] > 0.0F)) {
+    if (!rover_ukf_posdef(Pn)) {  /* a Cholesky factorization: positive diagonals are not enough */
         return ROVER_UKF_NOT_POSITIVE_DEFINITE;
     }
 
@@ -512,16 +503,7 @@ int rover_ukf_update_range_a_nis(rover_ukf_t *s, const float *z, float *nis_out)
     if (!rover_ukf_finite(xs, 4u) || !rover_ukf_finite(Ps, 10u)) {
         return ROVER_UKF_NON_FINITE;
     }
-    if (!(Ps[0] > 0.0F)) {
-        return ROVER_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[4] > 0.0F)) {
-        return ROVER_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[7] > 0.0F)) {
-        return ROVER_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[9] > 0.0F)) {
+    if (!rover_ukf_posdef(Ps)) {  /* a Cholesky factorization: positive diagonals are not enough */
         return ROVER_UKF_NOT_POSITIVE_DEFINITE;
     }
 
@@ -639,16 +621,7 @@ int rover_ukf_update_range_b_nis(rover_ukf_t *s, const float *z, float *nis_out)
     if (!rover_ukf_finite(xs, 4u) || !rover_ukf_finite(Ps, 10u)) {
         return ROVER_UKF_NON_FINITE;
     }
-    if (!(Ps[0] > 0.0F)) {
-        return ROVER_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[4] > 0.0F)) {
-        return ROVER_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[7] > 0.0F)) {
-        return ROVER_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[9] > 0.0F)) {
+    if (!rover_ukf_posdef(Ps)) {  /* a Cholesky factorization: positive diagonals are not enough */
         return ROVER_UKF_NOT_POSITIVE_DEFINITE;
     }
 
@@ -813,16 +786,7 @@ int rover_ukf_update_range_cd_nis(rover_ukf_t *s, const float *z, float *nis_out
     if (!rover_ukf_finite(xs, 4u) || !rover_ukf_finite(Ps, 10u)) {
         return ROVER_UKF_NON_FINITE;
     }
-    if (!(Ps[0] > 0.0F)) {
-        return ROVER_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[4] > 0.0F)) {
-        return ROVER_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[7] > 0.0F)) {
-        return ROVER_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[9] > 0.0F)) {
+    if (!rover_ukf_posdef(Ps)) {  /* a Cholesky factorization: positive diagonals are not enough */
         return ROVER_UKF_NOT_POSITIVE_DEFINITE;
     }
 
@@ -935,16 +899,7 @@ int rover_ukf_update_compass_nis(rover_ukf_t *s, const float *z, float *nis_out)
     if (!rover_ukf_finite(xs, 4u) || !rover_ukf_finite(Ps, 10u)) {
         return ROVER_UKF_NON_FINITE;
     }
-    if (!(Ps[0] > 0.0F)) {
-        return ROVER_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[4] > 0.0F)) {
-        return ROVER_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[7] > 0.0F)) {
-        return ROVER_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[9] > 0.0F)) {
+    if (!rover_ukf_posdef(Ps)) {  /* a Cholesky factorization: positive diagonals are not enough */
         return ROVER_UKF_NOT_POSITIVE_DEFINITE;
     }
 

@@ -139,13 +139,7 @@ int cart_ekf_predict(cart_ekf_t *s, const float *u, float dt)
     if (!cart_ekf_finite(xn, 3u) || !cart_ekf_finite(Pn, 6u)) {
         return CART_EKF_NON_FINITE;
     }
-    if (!(Pn[0] > 0.0F)) {
-        return CART_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Pn[3] > 0.0F)) {
-        return CART_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Pn[5] > 0.0F)) {
+    if (!cart_ekf_posdef(Pn)) {  /* a Cholesky factorization: positive diagonals are not enough */
         return CART_EKF_NOT_POSITIVE_DEFINITE;
     }
 
@@ -199,13 +193,7 @@ int cart_ekf_update_encoder_nis(cart_ekf_t *s, const float *z, float *nis_out)
     if (!cart_ekf_finite(xs, 3u) || !cart_ekf_finite(Ps, 6u)) {
         return CART_EKF_NON_FINITE;
     }
-    if (!(Ps[0] > 0.0F)) {
-        return CART_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[3] > 0.0F)) {
-        return CART_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[5] > 0.0F)) {
+    if (!cart_ekf_posdef(Ps)) {  /* a Cholesky factorization: positive diagonals are not enough */
         return CART_EKF_NOT_POSITIVE_DEFINITE;
     }
 
@@ -271,13 +259,7 @@ int cart_ekf_update_speed_nis(cart_ekf_t *s, const float *z, float *nis_out)
     if (!cart_ekf_finite(xs, 3u) || !cart_ekf_finite(Ps, 6u)) {
         return CART_EKF_NON_FINITE;
     }
-    if (!(Ps[0] > 0.0F)) {
-        return CART_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[3] > 0.0F)) {
-        return CART_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[5] > 0.0F)) {
+    if (!cart_ekf_posdef(Ps)) {  /* a Cholesky factorization: positive diagonals are not enough */
         return CART_EKF_NOT_POSITIVE_DEFINITE;
     }
 

@@ -164,13 +164,7 @@ int cart_ukf_predict(cart_ukf_t *s, const float *u, float dt)
     if (!cart_ukf_finite(xn, 3u) || !cart_ukf_finite(Pn, 6u)) {
         return CART_UKF_NON_FINITE;
     }
-    if (!(Pn[0] > 0.0F)) {
-        return CART_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Pn[3] > 0.0F)) {
-        return CART_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Pn[5] > 0.0F)) {
+    if (!cart_ukf_posdef(Pn)) {  /* a Cholesky factorization: positive diagonals are not enough */
         return CART_UKF_NOT_POSITIVE_DEFINITE;
     }
 
@@ -237,13 +231,7 @@ int cart_ukf_update_encoder_nis(cart_ukf_t *s, const float *z, float *nis_out)
     if (!cart_ukf_finite(xs, 3u) || !cart_ukf_finite(Ps, 6u)) {
         return CART_UKF_NON_FINITE;
     }
-    if (!(Ps[0] > 0.0F)) {
-        return CART_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[3] > 0.0F)) {
-        return CART_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[5] > 0.0F)) {
+    if (!cart_ukf_posdef(Ps)) {  /* a Cholesky factorization: positive diagonals are not enough */
         return CART_UKF_NOT_POSITIVE_DEFINITE;
     }
 
@@ -316,13 +304,7 @@ int cart_ukf_update_speed_nis(cart_ukf_t *s, const float *z, float *nis_out)
     if (!cart_ukf_finite(xs, 3u) || !cart_ukf_finite(Ps, 6u)) {
         return CART_UKF_NON_FINITE;
     }
-    if (!(Ps[0] > 0.0F)) {
-        return CART_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[3] > 0.0F)) {
-        return CART_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[5] > 0.0F)) {
+    if (!cart_ukf_posdef(Ps)) {  /* a Cholesky factorization: positive diagonals are not enough */
         return CART_UKF_NOT_POSITIVE_DEFINITE;
     }
 

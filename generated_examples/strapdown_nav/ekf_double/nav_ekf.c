@@ -556,49 +556,7 @@ int nav_ekf_predict(nav_ekf_t *s, const double *u, double dt)
     if (!nav_ekf_finite(xn, 15u) || !nav_ekf_finite(Pn, 120u)) {
         return NAV_EKF_NON_FINITE;
     }
-    if (!(Pn[0] > 0.0)) {
-        return NAV_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Pn[15] > 0.0)) {
-        return NAV_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Pn[29] > 0.0)) {
-        return NAV_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Pn[42] > 0.0)) {
-        return NAV_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Pn[54] > 0.0)) {
-        return NAV_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Pn[65] > 0.0)) {
-        return NAV_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Pn[75] > 0.0)) {
-        return NAV_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Pn[84] > 0.0)) {
-        return NAV_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Pn[92] > 0.0)) {
-        return NAV_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Pn[99] > 0.0)) {
-        return NAV_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Pn[105] > 0.0)) {
-        return NAV_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Pn[110] > 0.0)) {
-        return NAV_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Pn[114] > 0.0)) {
-        return NAV_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Pn[117] > 0.0)) {
-        return NAV_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Pn[119] > 0.0)) {
+    if (!nav_ekf_posdef(Pn)) {  /* a Cholesky factorization: positive diagonals are not enough */
         return NAV_EKF_NOT_POSITIVE_DEFINITE;
     }
 
@@ -1191,49 +1149,7 @@ int nav_ekf_update_gnss_pos_nis(nav_ekf_t *s, const double *z, double *nis_out)
     if (!nav_ekf_finite(xs, 15u) || !nav_ekf_finite(Ps, 120u)) {
         return NAV_EKF_NON_FINITE;
     }
-    if (!(Ps[0] > 0.0)) {
-        return NAV_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[15] > 0.0)) {
-        return NAV_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[29] > 0.0)) {
-        return NAV_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[42] > 0.0)) {
-        return NAV_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[54] > 0.0)) {
-        return NAV_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[65] > 0.0)) {
-        return NAV_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[75] > 0.0)) {
-        return NAV_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[84] > 0.0)) {
-        return NAV_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[92] > 0.0)) {
-        return NAV_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[99] > 0.0)) {
-        return NAV_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[105] > 0.0)) {
-        return NAV_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[110] > 0.0)) {
-        return NAV_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[114] > 0.0)) {
-        return NAV_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[117] > 0.0)) {
-        return NAV_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[119] > 0.0)) {
+    if (!nav_ekf_posdef(Ps)) {  /* a Cholesky factorization: positive diagonals are not enough */
         return NAV_EKF_NOT_POSITIVE_DEFINITE;
     }
 
@@ -1838,49 +1754,7 @@ int nav_ekf_update_gnss_vel_nis(nav_ekf_t *s, const double *z, double *nis_out)
     if (!nav_ekf_finite(xs, 15u) || !nav_ekf_finite(Ps, 120u)) {
         return NAV_EKF_NON_FINITE;
     }
-    if (!(Ps[0] > 0.0)) {
-        return NAV_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[15] > 0.0)) {
-        return NAV_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[29] > 0.0)) {
-        return NAV_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[42] > 0.0)) {
-        return NAV_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[54] > 0.0)) {
-        return NAV_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[65] > 0.0)) {
-        return NAV_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[75] > 0.0)) {
-        return NAV_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[84] > 0.0)) {
-        return NAV_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[92] > 0.0)) {
-        return NAV_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[99] > 0.0)) {
-        return NAV_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[105] > 0.0)) {
-        return NAV_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[110] > 0.0)) {
-        return NAV_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[114] > 0.0)) {
-        return NAV_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[117] > 0.0)) {
-        return NAV_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[119] > 0.0)) {
+    if (!nav_ekf_posdef(Ps)) {  /* a Cholesky factorization: positive diagonals are not enough */
         return NAV_EKF_NOT_POSITIVE_DEFINITE;
     }
 
@@ -2111,49 +1985,7 @@ int nav_ekf_update_baro_nis(nav_ekf_t *s, const double *z, double *nis_out)
     if (!nav_ekf_finite(xs, 15u) || !nav_ekf_finite(Ps, 120u)) {
         return NAV_EKF_NON_FINITE;
     }
-    if (!(Ps[0] > 0.0)) {
-        return NAV_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[15] > 0.0)) {
-        return NAV_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[29] > 0.0)) {
-        return NAV_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[42] > 0.0)) {
-        return NAV_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[54] > 0.0)) {
-        return NAV_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[65] > 0.0)) {
-        return NAV_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[75] > 0.0)) {
-        return NAV_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[84] > 0.0)) {
-        return NAV_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[92] > 0.0)) {
-        return NAV_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[99] > 0.0)) {
-        return NAV_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[105] > 0.0)) {
-        return NAV_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[110] > 0.0)) {
-        return NAV_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[114] > 0.0)) {
-        return NAV_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[117] > 0.0)) {
-        return NAV_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[119] > 0.0)) {
+    if (!nav_ekf_posdef(Ps)) {  /* a Cholesky factorization: positive diagonals are not enough */
         return NAV_EKF_NOT_POSITIVE_DEFINITE;
     }
 
@@ -2385,49 +2217,7 @@ int nav_ekf_update_mag_heading_nis(nav_ekf_t *s, const double *z, double *nis_ou
     if (!nav_ekf_finite(xs, 15u) || !nav_ekf_finite(Ps, 120u)) {
         return NAV_EKF_NON_FINITE;
     }
-    if (!(Ps[0] > 0.0)) {
-        return NAV_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[15] > 0.0)) {
-        return NAV_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[29] > 0.0)) {
-        return NAV_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[42] > 0.0)) {
-        return NAV_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[54] > 0.0)) {
-        return NAV_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[65] > 0.0)) {
-        return NAV_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[75] > 0.0)) {
-        return NAV_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[84] > 0.0)) {
-        return NAV_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[92] > 0.0)) {
-        return NAV_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[99] > 0.0)) {
-        return NAV_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[105] > 0.0)) {
-        return NAV_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[110] > 0.0)) {
-        return NAV_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[114] > 0.0)) {
-        return NAV_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[117] > 0.0)) {
-        return NAV_EKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[119] > 0.0)) {
+    if (!nav_ekf_posdef(Ps)) {  /* a Cholesky factorization: positive diagonals are not enough */
         return NAV_EKF_NOT_POSITIVE_DEFINITE;
     }
 

@@ -1734,49 +1734,7 @@ int nav_ukf_predict(nav_ukf_t *s, const double *u, double dt)
     if (!nav_ukf_finite(xn, 15u) || !nav_ukf_finite(Pn, 120u)) {
         return NAV_UKF_NON_FINITE;
     }
-    if (!(Pn[0] > 0.0)) {
-        return NAV_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Pn[15] > 0.0)) {
-        return NAV_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Pn[29] > 0.0)) {
-        return NAV_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Pn[42] > 0.0)) {
-        return NAV_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Pn[54] > 0.0)) {
-        return NAV_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Pn[65] > 0.0)) {
-        return NAV_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Pn[75] > 0.0)) {
-        return NAV_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Pn[84] > 0.0)) {
-        return NAV_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Pn[92] > 0.0)) {
-        return NAV_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Pn[99] > 0.0)) {
-        return NAV_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Pn[105] > 0.0)) {
-        return NAV_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Pn[110] > 0.0)) {
-        return NAV_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Pn[114] > 0.0)) {
-        return NAV_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Pn[117] > 0.0)) {
-        return NAV_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Pn[119] > 0.0)) {
+    if (!nav_ukf_posdef(Pn)) {  /* a Cholesky factorization: positive diagonals are not enough */
         return NAV_UKF_NOT_POSITIVE_DEFINITE;
     }
 
@@ -2197,49 +2155,7 @@ int nav_ukf_update_gnss_pos_nis(nav_ukf_t *s, const double *z, double *nis_out)
     if (!nav_ukf_finite(xs, 15u) || !nav_ukf_finite(Ps, 120u)) {
         return NAV_UKF_NON_FINITE;
     }
-    if (!(Ps[0] > 0.0)) {
-        return NAV_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[15] > 0.0)) {
-        return NAV_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[29] > 0.0)) {
-        return NAV_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[42] > 0.0)) {
-        return NAV_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[54] > 0.0)) {
-        return NAV_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[65] > 0.0)) {
-        return NAV_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[75] > 0.0)) {
-        return NAV_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[84] > 0.0)) {
-        return NAV_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[92] > 0.0)) {
-        return NAV_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[99] > 0.0)) {
-        return NAV_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[105] > 0.0)) {
-        return NAV_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[110] > 0.0)) {
-        return NAV_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[114] > 0.0)) {
-        return NAV_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[117] > 0.0)) {
-        return NAV_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[119] > 0.0)) {
+    if (!nav_ukf_posdef(Ps)) {  /* a Cholesky factorization: positive diagonals are not enough */
         return NAV_UKF_NOT_POSITIVE_DEFINITE;
     }
 
@@ -2666,49 +2582,7 @@ int nav_ukf_update_gnss_vel_nis(nav_ukf_t *s, const double *z, double *nis_out)
     if (!nav_ukf_finite(xs, 15u) || !nav_ukf_finite(Ps, 120u)) {
         return NAV_UKF_NON_FINITE;
     }
-    if (!(Ps[0] > 0.0)) {
-        return NAV_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[15] > 0.0)) {
-        return NAV_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[29] > 0.0)) {
-        return NAV_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[42] > 0.0)) {
-        return NAV_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[54] > 0.0)) {
-        return NAV_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[65] > 0.0)) {
-        return NAV_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[75] > 0.0)) {
-        return NAV_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[84] > 0.0)) {
-        return NAV_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[92] > 0.0)) {
-        return NAV_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[99] > 0.0)) {
-        return NAV_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[105] > 0.0)) {
-        return NAV_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[110] > 0.0)) {
-        return NAV_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[114] > 0.0)) {
-        return NAV_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[117] > 0.0)) {
-        return NAV_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[119] > 0.0)) {
+    if (!nav_ukf_posdef(Ps)) {  /* a Cholesky factorization: positive diagonals are not enough */
         return NAV_UKF_NOT_POSITIVE_DEFINITE;
     }
 
@@ -3084,49 +2958,7 @@ int nav_ukf_update_baro_nis(nav_ukf_t *s, const double *z, double *nis_out)
     if (!nav_ukf_finite(xs, 15u) || !nav_ukf_finite(Ps, 120u)) {
         return NAV_UKF_NON_FINITE;
     }
-    if (!(Ps[0] > 0.0)) {
-        return NAV_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[15] > 0.0)) {
-        return NAV_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[29] > 0.0)) {
-        return NAV_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[42] > 0.0)) {
-        return NAV_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[54] > 0.0)) {
-        return NAV_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[65] > 0.0)) {
-        return NAV_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[75] > 0.0)) {
-        return NAV_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[84] > 0.0)) {
-        return NAV_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[92] > 0.0)) {
-        return NAV_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[99] > 0.0)) {
-        return NAV_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[105] > 0.0)) {
-        return NAV_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[110] > 0.0)) {
-        return NAV_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[114] > 0.0)) {
-        return NAV_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[117] > 0.0)) {
-        return NAV_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[119] > 0.0)) {
+    if (!nav_ukf_posdef(Ps)) {  /* a Cholesky factorization: positive diagonals are not enough */
         return NAV_UKF_NOT_POSITIVE_DEFINITE;
     }
 
@@ -3578,49 +3410,7 @@ int nav_ukf_update_mag_heading_nis(nav_ukf_t *s, const double *z, double *nis_ou
     if (!nav_ukf_finite(xs, 15u) || !nav_ukf_finite(Ps, 120u)) {
         return NAV_UKF_NON_FINITE;
     }
-    if (!(Ps[0] > 0.0)) {
-        return NAV_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[15] > 0.0)) {
-        return NAV_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[29] > 0.0)) {
-        return NAV_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[42] > 0.0)) {
-        return NAV_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[54] > 0.0)) {
-        return NAV_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[65] > 0.0)) {
-        return NAV_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[75] > 0.0)) {
-        return NAV_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[84] > 0.0)) {
-        return NAV_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[92] > 0.0)) {
-        return NAV_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[99] > 0.0)) {
-        return NAV_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[105] > 0.0)) {
-        return NAV_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[110] > 0.0)) {
-        return NAV_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[114] > 0.0)) {
-        return NAV_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[117] > 0.0)) {
-        return NAV_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[119] > 0.0)) {
+    if (!nav_ukf_posdef(Ps)) {  /* a Cholesky factorization: positive diagonals are not enough */
         return NAV_UKF_NOT_POSITIVE_DEFINITE;
     }
 

@@ -161,10 +161,7 @@ int valve_ukf_predict(valve_ukf_t *s, const double *u, double dt)
     if (!valve_ukf_finite(xn, 2u) || !valve_ukf_finite(Pn, 3u)) {
         return VALVE_UKF_NON_FINITE;
     }
-    if (!(Pn[0] > 0.0)) {
-        return VALVE_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Pn[2] > 0.0)) {
+    if (!valve_ukf_posdef(Pn)) {  /* a Cholesky factorization: positive diagonals are not enough */
         return VALVE_UKF_NOT_POSITIVE_DEFINITE;
     }
 
@@ -242,10 +239,7 @@ int valve_ukf_update_flow_nis(valve_ukf_t *s, const double *z, double *nis_out)
     if (!valve_ukf_finite(xs, 2u) || !valve_ukf_finite(Ps, 3u)) {
         return VALVE_UKF_NON_FINITE;
     }
-    if (!(Ps[0] > 0.0)) {
-        return VALVE_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[2] > 0.0)) {
+    if (!valve_ukf_posdef(Ps)) {  /* a Cholesky factorization: positive diagonals are not enough */
         return VALVE_UKF_NOT_POSITIVE_DEFINITE;
     }
 
@@ -306,10 +300,7 @@ int valve_ukf_update_stem_nis(valve_ukf_t *s, const double *z, double *nis_out)
     if (!valve_ukf_finite(xs, 2u) || !valve_ukf_finite(Ps, 3u)) {
         return VALVE_UKF_NON_FINITE;
     }
-    if (!(Ps[0] > 0.0)) {
-        return VALVE_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    if (!(Ps[2] > 0.0)) {
+    if (!valve_ukf_posdef(Ps)) {  /* a Cholesky factorization: positive diagonals are not enough */
         return VALVE_UKF_NOT_POSITIVE_DEFINITE;
     }
 
