@@ -202,7 +202,9 @@ class CFilter:
         if Pm.shape != (self.n, self.n):
             raise ValueError(f"P must be {self.n}x{self.n}")
         packed = [Pm[i, j] for i in range(self.n) for j in range(i, self.n)]
-        if not np.allclose(Pm, Pm.T, rtol=1e-9, atol=0.0):
+        # non-finite values are the C's to refuse (BAD_INPUT comes first, as in the reference)
+        finite = bool(np.all(np.isfinite(Pm))) and bool(np.all(np.isfinite(np.asarray(x, dtype=float))))
+        if finite and not np.allclose(Pm, Pm.T, rtol=1e-9, atol=0.0):
             return 3  # Status.NOT_POSITIVE_DEFINITE: a non-symmetric P is no covariance
         return int(self._set_state(self._s, self._arr(x, self.n, "x"), self._arr(packed, len(packed), "P")))
 
