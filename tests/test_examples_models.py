@@ -44,6 +44,19 @@ def test_loads_with_scenario_and_units(example: tuple) -> None:
     assert os.path.isfile(os.path.join(ROOT, name, "README.md"))
 
 
+def test_readme_names_every_state_input_sensor_and_filter(example: tuple) -> None:
+    # The README documents the model it sits beside (common practice: docs kept with the code).
+    name, spec = example
+    with open(os.path.join(ROOT, name, "README.md"), encoding="utf-8") as fh:
+        text = fh.read()
+    for item in [*spec.states, *spec.inputs, *spec.sensors]:
+        assert f"`{item.name}`" in text, f"{name}: README does not mention {item.name}"
+    assert f"`{spec.name}`" in text
+    for filt in ("ekf", "ukf"):
+        said = f"--filter {filt} --precision float" in text and f"--filter {filt} --precision double" in text
+        assert said == (not (filt == "ekf" and name in EKF_REFUSED)), (name, filt)
+
+
 def test_strapdown_is_navigation_size() -> None:
     assert estgen.load_model(_path("strapdown_nav")).n >= 15
 
