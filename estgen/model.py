@@ -801,7 +801,7 @@ def validate(model: Model) -> ModelSpec:
 def _printable(e: sp.Basic, printer: Any) -> bool:
     try:
         printer.doprint(e)
-    except Exception:  # sympy raises PrintMethodNotImplementedError, ValueError, ...
+    except Exception:  # sympy raises its own print-method error, ValueError, ...
         return False
     return True
 
