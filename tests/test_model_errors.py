@@ -36,6 +36,7 @@ CASES: Tuple[Tuple[str, Optional[int], Tuple[str, ...], bool], ...] = (
     ("undeclared_in_q.py", 7, ("process_noise() uses 'q', never declared", "parameters and dt only"), False),
     ("undeclared_in_r.py", 8, ("noise uses 'sigma', never declared", "parameters only"), False),
     ("state_in_q.py", 7, ("uses state 'temp'", "parameters and dt only"), False),
+    ("dt_in_sensor.py", 8, ("uses the sample time 'dt', which it may not", "states and parameters only"), False),
     ("input_in_h.py", 9, ("uses input 'heat'", "states and parameters only"), False),
     ("undefined_function.py", 7, ("loss()", "undefined sympy Function"), False),
     ("condition_in_h.py", 8, ("a condition, not a value", "sp.Piecewise"), False),
