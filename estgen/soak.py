@@ -1,0 +1,403 @@
+"""Soak test: run the generated C for a long simulated horizon and check its invariants every step.
+
+The truth comes from the model itself, as in :func:`estgen.simulate.make_scenario`
+(``x[k+1] = f(x[k], u[k], dt) + w``, ``z = h(x) + v``, each sensor at its own rate), but is
+produced in chunks so that 10^6 steps take seconds rather than hours: the process map is a
+scalar ``math`` lambdification (sequential by nature), the measurements are evaluated for a
+whole chunk at once with numpy, and the compiled filter is driven through cffi with pointers
+into preallocated arrays, so nothing is allocated per step.
+
+After every step the filter's state is copied out of the C struct; per chunk, numpy then checks
+that every x is finite and every P is positive definite (a batched Cholesky factorization; P is
+stored packed, so it is symmetric by construction). The normalized estimation error squared
+(NEES) is reported as well, as a consistency figure (its mean is about n for a consistent filter).
+
+``estgen soak MODEL --filter F --precision P --steps N`` runs it from the command line;
+``python -m estgen.soak`` does the same without the ``estgen`` entry point.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import math
+import sys
+import time
+from dataclasses import asdict, dataclass, field
+from typing import TYPE_CHECKING, Any, Callable, Dict, List, Optional, Sequence, Tuple
+
+import numpy as np
+import sympy as sp
+
+from .errors import ModelError
+from .model import ModelSpec, as_spec
+from .reference import wrap_angle
+from .status import Status
+
+if TYPE_CHECKING:  # only for the annotation; emit imports sympy printers at run time
+    from .emit import Generated
+
+__all__ = ["SoakResult", "soak", "packed_to_full", "batch_posdef", "add_arguments", "run", "main", "PROFILES"]
+
+#: input profiles: the model's own scenario inputs, or those inputs with their sign flipped every
+#: ``period`` seconds (keeps integrating states such as a cell's charge inside their range)
+PROFILES = ("model", "mirror")
+
+
+@dataclass
+class SoakResult:
+    """What a soak run found. ``ok`` is true when every step kept x finite and P positive
+    definite, and no call was refused except by a gate."""
+
+    model: str
+    filter: str
+    precision: str
+    steps: int
+    seed: int
+    dt: float
+    profile: str
+    n: int = 0
+    nonfinite_steps: int = 0
+    not_posdef_steps: int = 0
+    first_failure: Optional[int] = None
+    predict_status: Dict[str, int] = field(default_factory=dict)
+    update_status: Dict[str, Dict[str, int]] = field(default_factory=dict)
+    #: measurements the simulated truth made non-finite (the model left its domain); not the filter's fault
+    bad_measurements: int = 0
+    mean_nees: float = float("nan")
+    min_cholesky_pivot: float = float("inf")
+    max_abs_state: float = 0.0
+    seconds: float = 0.0
+
+    @property
+    def refusals(self) -> int:
+        """Refused calls other than GATED (a gate rejecting an outlier is the filter working)."""
+        bad = sum(v for k, v in self.predict_status.items() if k != Status.OK.name)
+        for counts in self.update_status.values():
+            bad += sum(v for k, v in counts.items() if k not in (Status.OK.name, Status.GATED.name))
+        return bad
+
+    @property
+    def ok(self) -> bool:
+        return self.nonfinite_steps == 0 and self.not_posdef_steps == 0 and self.refusals == 0
+
+    def as_dict(self) -> Dict[str, Any]:
+        d = asdict(self)
+        d["ok"] = self.ok
+        d["refusals"] = self.refusals
+        for k in ("mean_nees", "min_cholesky_pivot"):
+            if not math.isfinite(d[k]):
+                d[k] = None
+        return d
+
+
+def packed_to_full(Pp: np.ndarray, n: int) -> np.ndarray:
+    """Unpack row-major packed upper triangles, shape (..., n(n+1)/2), to full (..., n, n)."""
+    iu = np.triu_indices(n)
+    full = np.zeros(Pp.shape[:-1] + (n, n), dtype=np.float64)
+    full[..., iu[0], iu[1]] = Pp
+    full[..., iu[1], iu[0]] = Pp
+    return full
+
+
+def batch_posdef(P: np.ndarray) -> Tuple[np.ndarray, Optional[np.ndarray]]:
+    """For a stack of symmetric matrices (k, n, n): a boolean mask of the positive definite ones
+    and, when all are, their Cholesky factors (numpy's LAPACK potrf)."""
+    try:
+        return np.ones(P.shape[0], dtype=bool), np.linalg.cholesky(P)
+    except np.linalg.LinAlgError:
+        pass
+    mask = np.zeros(P.shape[0], dtype=bool)
+    for i in range(P.shape[0]):
+        try:
+            np.linalg.cholesky(P[i])
+            mask[i] = True
+        except np.linalg.LinAlgError:
+            pass
+    return mask, None
+
+
+def _noise_factor(C: np.ndarray) -> np.ndarray:
+    """A with A A' = C for symmetric PSD C; eigen-decomposition so a singular C works."""
+    w, V = np.linalg.eigh(0.5 * (C + C.T))
+    return V * np.sqrt(np.clip(w, 0.0, None))
+
+
+class _Truth:
+    """The model's truth and measurements, produced chunk by chunk from one seeded generator."""
+
+    def __init__(self, spec: ModelSpec, dt: float, seed: int, profile: str, period: float) -> None:
+        self.spec = spec
+        self.dt = dt
+        self.profile = profile
+        self.period = period
+        self.rng = np.random.default_rng(seed)
+        subs = spec.default_subs()
+        xs, us = spec.x_syms, spec.u_syms
+        f_num = [sp.sympify(e).subs(subs).subs(spec.dt, dt) for e in spec.f]
+        # scalar math: faster than numpy for one state at a time, and overflow raises instead of
+        # silently producing inf
+        self._f = sp.lambdify([*xs, *us], f_num, modules="math", cse=True)
+        self._h: Dict[str, List[Callable[..., Any]]] = {}
+        for s in spec.sensors:
+            self._h[s.name] = [sp.lambdify(xs, sp.sympify(e).subs(subs), modules="numpy") for e in s.h]
+        Qn = np.array(spec.Q.subs(subs).subs(spec.dt, dt).evalf(), dtype=float)
+        self.Aq = _noise_factor(Qn)
+        self.Ar = {s.name: _noise_factor(np.array(s.R.subs(subs).evalf(), dtype=float)) for s in spec.sensors}
+        self.angles = np.array(spec.angle_states, dtype=bool)
+        self.k = 0
+        x = np.array(spec.x0, dtype=float) + _noise_factor(np.array(spec.P0, dtype=float)) @ self.rng.standard_normal(spec.n)
+        self.x = np.where(self.angles, wrap_angle(x), x)
+
+    def inputs(self, t: float) -> List[float]:
+        spec = self.spec
+        if spec.input_profile is None:
+            return [0.0] * spec.nu
+        u = [float(v) for v in spec.input_profile(t)]
+        if len(u) != spec.nu:
+            raise ModelError(f"scenario inputs({t:g}) returned {len(u)} values; the model has {spec.nu} inputs")
+        if self.profile == "mirror" and int(t // self.period) % 2 == 1:
+            u = [-v for v in u]
+        return u
+
+    def chunk(self, count: int) -> Tuple[np.ndarray, np.ndarray, Dict[str, np.ndarray]]:
+        """(u (count, nu), x_true after each step (count, n), {sensor: z (count, m), NaN rows where
+        the sensor does not report})."""
+        spec = self.spec
+        n, nu = spec.n, spec.nu
+        U = np.empty((count, nu))
+        X = np.empty((count, n))
+        W = self.rng.standard_normal((count, n)) @ self.Aq.T
+        wrap = bool(self.angles.any())
+        x = [float(v) for v in self.x]
+        for i in range(count):
+            t = (self.k + i) * self.dt
+            u = self.inputs(t)
+            U[i] = u
+            try:
+                fx = self._f(*x, *u)
+            except (OverflowError, ValueError, ZeroDivisionError) as err:
+                raise ModelError(f"the simulated truth left the model's domain at step {self.k + i + 1} "
+                                 f"(t = {t + self.dt:g}): {err}") from None
+            xn = np.asarray(fx, dtype=float).reshape(n) + W[i]
+            if wrap:
+                xn[self.angles] = wrap_angle(xn[self.angles])
+            if not np.all(np.isfinite(xn)):
+                raise ModelError(f"the simulated truth became non-finite at step {self.k + i + 1}; "
+                                 "check the model's dynamics and the input profile")
+            X[i] = xn
+            x = xn.tolist()
+        Z: Dict[str, np.ndarray] = {}
+        steps_done = self.k + 1 + np.arange(count)
+        with np.errstate(all="ignore"):
+            for s in spec.sensors:
+                rows = [np.broadcast_to(np.asarray(fn(*X.T), dtype=float), (count,)) for fn in self._h[s.name]]
+                z = np.stack(rows, axis=1) + self.rng.standard_normal((count, s.m)) @ self.Ar[s.name].T
+                zang = np.array(s.angles, dtype=bool)
+                if zang.any():
+                    z[:, zang] = wrap_angle(z[:, zang])
+                z[steps_done % s.every != 0] = np.nan
+                Z[s.name] = z
+        self.k += count
+        self.x = X[-1].copy()
+        return U, X, Z
+
+
+def soak(model: Any, filter: str = "ekf", precision: str = "float", steps: int = 10**6, seed: int = 0,
+         dt: Optional[float] = None, chunk: int = 10000, profile: str = "model", period: float = 1000.0,
+         gates: Optional[Dict[str, float]] = None, progress: Optional[Callable[[int, int], None]] = None,
+         generated: Optional["Generated"] = None, **options: Any) -> SoakResult:
+    """Run the compiled filter ``steps`` steps on the model's simulated truth and check x finite and
+    P positive definite after every step. ``options`` are the UKF's alpha, beta, kappa;
+    ``generated`` is C already generated for this model and filter (else it is generated here)."""
+    from .build import compile_generated
+    from .emit import generate
+
+    spec = as_spec(model)
+    if steps < 1:
+        raise ModelError(f"the number of steps must be >= 1, got {steps}")
+    if profile not in PROFILES:
+        raise ModelError(f"unknown profile {profile!r}; use one of {', '.join(PROFILES)}")
+    if not (math.isfinite(period) and period > 0):
+        raise ModelError(f"the mirror period must be > 0 seconds, got {period}")
+    dtv = float(dt) if dt is not None else float(spec.scenario_dt or 0.01)
+    if not (math.isfinite(dtv) and dtv > 0):
+        raise ModelError(f"dt must be a number > 0, got {dt}")
+    if generated is not None:
+        gen = generated
+        if (gen.filter, gen.precision) != (filter, precision):
+            raise ValueError(f"generated is {gen.filter}/{gen.precision}, not {filter}/{precision}")
+    else:
+        gen = generate(spec, filter=filter, precision=precision, gates=gates, **options)
+    comp = compile_generated(gen)
+    ffi, lib = comp.ffi, comp.lib
+    real = "float" if precision == "float" else "double"
+    dtype = np.float32 if precision == "float" else np.float64
+    n, nu, npk = spec.n, spec.nu, n_packed(spec.n)
+    prefix = gen.prefix
+
+    s = ffi.new(f"{prefix}_t *")
+    getattr(lib, f"{prefix}_init")(s)
+    x_view = np.frombuffer(ffi.buffer(s.x), dtype=dtype)  # live views of the struct
+    p_view = np.frombuffer(ffi.buffer(s.P), dtype=dtype)
+    predict = getattr(lib, f"{prefix}_predict")
+    updates = [(sd.name, getattr(lib, f"{prefix}_update_{sd.name}"), sd.m) for sd in spec.sensors]
+    dt_c = float(dtype(dtv))
+
+    res = SoakResult(spec.name, filter, precision, steps, seed, dtv, profile, n)
+    pst: Dict[int, int] = {}
+    ust: Dict[str, Dict[int, int]] = {name: {} for name, _, _ in updates}
+    truth = _Truth(spec, dtv, seed, profile, period)
+    angles = truth.angles
+    nees_sum, nees_count = 0.0, 0
+    t0 = time.perf_counter()
+    done = 0
+    while done < steps:
+        count = min(chunk, steps - done)
+        U, X, Z = truth.chunk(count)
+        Uc = np.ascontiguousarray(U, dtype=dtype)
+        u_base = ffi.cast(f"{real} *", ffi.from_buffer(Uc)) if nu else ffi.NULL
+        zc = {}
+        for name, _, m in updates:
+            zarr = np.ascontiguousarray(Z[name], dtype=dtype)
+            has = ~np.isnan(Z[name]).all(axis=1)
+            bad = has & ~np.isfinite(Z[name]).all(axis=1)
+            res.bad_measurements += int(bad.sum())
+            zc[name] = (zarr, ffi.cast(f"{real} *", ffi.from_buffer(zarr)), has.tolist())
+        Xc = np.empty((count, n), dtype=dtype)
+        Pc = np.empty((count, npk), dtype=dtype)
+        for i in range(count):
+            st = predict(s, u_base + i * nu if nu else ffi.NULL, dt_c)
+            pst[st] = pst.get(st, 0) + 1
+            for name, fn, m in updates:
+                zarr, zptr, has = zc[name]
+                if has[i]:
+                    st = fn(s, zptr + i * m)
+                    cnt = ust[name]
+                    cnt[st] = cnt.get(st, 0) + 1
+            Xc[i] = x_view
+            Pc[i] = p_view
+        # the invariants, checked in float64 on exactly the values the C holds
+        x64 = Xc.astype(np.float64)
+        finite = np.isfinite(x64).all(axis=1) & np.isfinite(Pc.astype(np.float64)).all(axis=1)
+        P64 = packed_to_full(np.where(np.isfinite(Pc), Pc, 0.0).astype(np.float64), n)
+        pd_mask, L = batch_posdef(P64)
+        pd_mask &= finite
+        res.nonfinite_steps += int((~finite).sum())
+        res.not_posdef_steps += int((~pd_mask).sum())
+        fails = np.flatnonzero(~(finite & pd_mask))
+        if fails.size and res.first_failure is None:
+            res.first_failure = done + int(fails[0]) + 1
+        if L is not None and finite.all():
+            res.min_cholesky_pivot = min(res.min_cholesky_pivot, float(np.diagonal(L, axis1=1, axis2=2).min()))
+            e = x64 - X
+            if angles.any():
+                e[:, angles] = wrap_angle(e[:, angles])
+            sol = np.linalg.solve(L, e[..., None])[..., 0]
+            nees_sum += float(np.sum(sol * sol))
+            nees_count += count
+        if finite.any():
+            res.max_abs_state = max(res.max_abs_state, float(np.abs(x64[finite]).max()))
+        done += count
+        if progress is not None:
+            progress(done, steps)
+    res.seconds = time.perf_counter() - t0
+    res.mean_nees = nees_sum / nees_count if nees_count else float("nan")
+    res.predict_status = {Status(k).name if k in Status._value2member_map_ else str(k): v for k, v in sorted(pst.items())}
+    res.update_status = {name: {Status(k).name if k in Status._value2member_map_ else str(k): v
+                                for k, v in sorted(c.items())} for name, c in ust.items()}
+    return res
+
+
+def n_packed(n: int) -> int:
+    """Entries of a packed symmetric n x n matrix."""
+    return n * (n + 1) // 2
+
+
+def format_result(res: SoakResult) -> str:
+    """A short human-readable summary."""
+    lines = [
+        f"soak {res.model} {res.filter} {res.precision}: {res.steps} steps of dt {res.dt:g} s "
+        f"(profile {res.profile}, seed {res.seed}) in {res.seconds:.1f} s",
+        f"  x non-finite at {res.nonfinite_steps} steps, P not positive definite at {res.not_posdef_steps} steps"
+        + (f" (first at step {res.first_failure})" if res.first_failure is not None else ""),
+        f"  predict: {res.predict_status}",
+    ]
+    for name, counts in res.update_status.items():
+        lines.append(f"  update {name}: {counts}")
+    if res.bad_measurements:
+        lines.append(f"  {res.bad_measurements} simulated measurements were non-finite (the truth left the model's domain)")
+    lines.append(f"  mean NEES {res.mean_nees:.3g} (about n = {res.n} when consistent), smallest "
+                 f"Cholesky pivot of P {res.min_cholesky_pivot:.3g}, largest |x| {res.max_abs_state:.3g}")
+    lines.append("  OK" if res.ok else f"  FAILED ({res.refusals} refused calls)")
+    return "\n".join(lines)
+
+
+def add_arguments(parser: argparse.ArgumentParser) -> None:
+    """The ``estgen soak`` options."""
+    parser.add_argument("model", metavar="MODEL", help="the model file (Python defining `model`)")
+    parser.add_argument("--filter", choices=("ekf", "ukf"), default="ekf", help="filter (default ekf)")
+    parser.add_argument("--precision", choices=("float", "double"), default="float", help="C type (default float)")
+    parser.add_argument("--steps", type=int, default=10**6, help="simulated steps (default 1000000)")
+    parser.add_argument("--seed", type=int, default=0, help="random seed (default 0)")
+    parser.add_argument("--dt", type=float, default=None, help="step in seconds (default: the model's scenario dt)")
+    parser.add_argument("--profile", choices=PROFILES, default="model",
+                        help="inputs: the model's scenario ('model', default) or its sign flipped every --period "
+                             "seconds ('mirror', for integrating states such as a charge)")
+    parser.add_argument("--period", type=float, default=1000.0, help="mirror period in seconds (default 1000)")
+    parser.add_argument("--gate", action="append", default=[], metavar="SENSOR=P",
+                        help="chi-square gate probability for a sensor (repeatable)")
+    parser.add_argument("--json", metavar="FILE", help="also write the result as JSON")
+    parser.add_argument("-q", "--quiet", action="store_true", help="no progress on stderr")
+
+
+def _gates(items: Sequence[str]) -> Dict[str, float]:
+    out: Dict[str, float] = {}
+    for item in items:
+        name, sep, value = item.partition("=")
+        try:
+            out[name] = float(value)
+        except ValueError:
+            sep = ""
+        if not sep or not name:
+            raise ModelError(f"--gate {item!r}: write SENSOR=P, e.g. --gate range_a=0.997")
+    return out
+
+
+def run(args: argparse.Namespace) -> int:
+    """``estgen soak``: 0 all invariants held, 1 some did not."""
+    from .model import load_model
+
+    spec = load_model(args.model)
+    started = time.perf_counter()
+
+    def show(done: int, total: int) -> None:
+        if not args.quiet:
+            el = time.perf_counter() - started
+            print(f"\r  {done}/{total} steps, {el:.0f} s", end="", file=sys.stderr, flush=True)
+
+    res = soak(spec, filter=args.filter, precision=args.precision, steps=args.steps, seed=args.seed, dt=args.dt,
+               profile=args.profile, period=args.period, gates=_gates(args.gate) or None, progress=show)
+    if not args.quiet:
+        print(file=sys.stderr)
+    print(format_result(res))
+    if args.json:
+        with open(args.json, "w", encoding="utf-8") as fh:
+            json.dump(res.as_dict(), fh, indent=2)
+    return 0 if res.ok else 1
+
+
+def main(argv: Optional[Sequence[str]] = None) -> int:
+    """``python -m estgen.soak``: the soak command without the ``estgen`` entry point."""
+    p = argparse.ArgumentParser(prog="estgen soak", description=__doc__.splitlines()[0])
+    add_arguments(p)
+    args = p.parse_args(argv)
+    try:
+        return run(args)
+    except ModelError as err:
+        print(str(err), file=sys.stderr)
+        return 2
+
+
+if __name__ == "__main__":
+    sys.exit(main())
