@@ -762,8 +762,10 @@ def validate(model: Model) -> ModelSpec:
     if sim_dt is not None and sim_dt <= 0:
         raise ModelError(f"scenario dt must be > 0, got {sim_dt}", model._scenario_where)
     u0 = [0.0] * len(us)
+    profile = None
     if model._input_profile is not None:
-        u0 = _check_profile(model._input_profile, len(us), src, model._scenario_where)
+        profile = _GuardedProfile(model._input_profile, src, model._scenario_where)
+        u0 = _check_profile(profile, len(us), model._scenario_where)
 
     # f and h must evaluate to finite numbers at the defaults and x0 (catches 1/0 and log(0)
     # early), with the scenario's first input where there is one: zero may be outside its range.
@@ -793,7 +795,7 @@ def validate(model: Model) -> ModelSpec:
         x0=x0,
         P0=tuple(tuple(float(v) for v in row) for row in P0n),
         scenario_dt=sim_dt,
-        input_profile=model._input_profile,
+        input_profile=profile,
         where={"model": mw, "process": pw, "Q": qw, "initial": iw},
     )
 
@@ -830,16 +832,30 @@ def _check_printable(mat: sp.Matrix, what: str, where: Optional[Where]) -> None:
                          f"write it with elementary functions (exp, log, sqrt, sin, atan2, ...)", where)
 
 
-def _check_profile(profile: Callable[[float], Sequence[float]], nu: int, src: str,
-                   where: Optional[Where]) -> List[float]:
-    """Call the input profile once at t = 0 so a broken one fails here, with its line,
-    rather than deep inside a simulation."""
-    try:
-        u0 = profile(0.0)
-    except Exception as err:
-        at = _user_frame(err, src) if src else where
-        raise ModelError(f"scenario inputs(0.0) raised {type(err).__name__}: {_short(err)}; fix the input function",
-                         at if at.line else where) from None
+class _GuardedProfile:
+    """The model's input profile ``t -> u``; an exception raised in it (at any t, in any stage
+    that simulates) becomes a ModelError naming the model file's line, not a traceback."""
+
+    def __init__(self, fn: Callable[[float], Sequence[float]], src: str, where: Optional[Where]) -> None:
+        self.fn = fn
+        self.src = src
+        self.where = where
+
+    def __call__(self, t: float) -> Sequence[float]:
+        try:
+            return self.fn(t)
+        except ModelError:
+            raise
+        except Exception as err:
+            at = _user_frame(err, self.src) if self.src else self.where
+            raise ModelError(f"scenario inputs({t:g}) raised {type(err).__name__}: {_short(err)}; "
+                             f"fix the input function", at if at is not None and at.line else self.where) from None
+
+
+def _check_profile(profile: Callable[[float], Sequence[float]], nu: int, where: Optional[Where]) -> List[float]:
+    """Call the input profile once at t = 0 so a broken one fails here rather than deep inside
+    a simulation."""
+    u0 = profile(0.0)
     try:
         vals = [float(v) for v in u0]
     except (TypeError, ValueError):
@@ -848,7 +864,7 @@ def _check_profile(profile: Callable[[float], Sequence[float]], nu: int, src: st
         raise ModelError(f"scenario inputs(t) returns {len(vals)} values but the model has {nu} inputs; "
                          f"return one per input", where)
     if not all(math.isfinite(v) for v in vals):
-        raise ModelError(f"scenario inputs(0.0) returns a non-finite value {vals}; return finite inputs", where)
+        raise ModelError(f"scenario inputs(0) returns a non-finite value {vals}; return finite inputs", where)
     return vals
 
 

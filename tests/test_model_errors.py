@@ -90,7 +90,7 @@ CASES: Tuple[Tuple[str, Optional[int], Tuple[str, ...], bool], ...] = (
     ("x0_not_a_list.py", 9, ("x0 must be a list of numbers", "one per state"), False),
     ("function_without_c_form.py", 8, ("uses besselj, which has no C form", "elementary functions"), False),
     ("piecewise_no_default.py", 6, ("Piecewise without a final (value, True) branch", "add one"), False),
-    ("scenario_raises.py", 5, ("scenario inputs(0.0) raised ZeroDivisionError", "fix the input function"), False),
+    ("scenario_raises.py", 5, ("scenario inputs(0) raised ZeroDivisionError", "fix the input function"), False),
 )
 
 
@@ -209,3 +209,34 @@ def test_unreadable_model_files(tmp_path) -> None:
     assert "not found" in str(info.value) and "absent.py" in str(info.value)
     res = _run_cli("generate", str(latin), "-o", str(tmp_path / "out"))
     assert res.returncode == 2 and "Traceback" not in res.stderr and "UTF-8" in res.stderr
+
+
+_LATE_PROFILE = '''import sympy as sp
+from estgen import Model
+
+model = Model("blk")
+(temp,) = model.states("temp")
+(heat,) = model.inputs("heat")
+model.process([0.99 * temp + 0.001 * heat])
+model.process_noise([1e-4])
+model.sensor("thermo", [temp], noise=[0.01])
+model.initial([20.0], [1.0])
+levels = [10.0, 20.0]
+model.scenario(dt=1.0, inputs=lambda t: [levels[int(t // 5)]])
+'''
+
+
+def test_input_profile_failing_later_names_its_line(tmp_path) -> None:
+    # The profile is fine at t = 0 but runs off its table at t = 10 s: simulating must report
+    # the model file's line, not a traceback.
+    from estgen.simulate import make_scenario
+
+    path = tmp_path / "late.py"
+    path.write_text(_LATE_PROFILE)
+    spec = estgen.load_model(str(path))
+    with pytest.raises(estgen.ModelError) as info:
+        make_scenario(spec, 30, seed=1)
+    text = str(info.value)
+    assert text.startswith("late.py:12: error: scenario inputs(10) raised IndexError"), text
+    res = _run_cli("simulate", str(path), "--filter", "ekf", "--runs", "2", "--steps", "30", "--seed", "1")
+    assert res.returncode == 2 and "Traceback" not in res.stderr and "late.py:12" in res.stderr
