@@ -46,8 +46,8 @@ from .derive import Stmt, c_names, packed_index
 from .errors import ModelError
 from .model import ModelSpec, SensorSpec
 
-__all__ = ["UkfWeights", "ukf_weights", "UkfPredictCode", "UkfUpdateCode", "UkfCode", "derive_ukf",
-           "check_options"]
+__all__ = ["UkfWeights", "UkfPredictCode", "UkfUpdateCode", "UkfCode", "derive_ukf", "check_options",
+           "commit_check"]
 
 
 @dataclass(frozen=True)
@@ -290,7 +290,7 @@ def _atomize(e: sp.Expr, xs: List[sp.Symbol], xset: Set[sp.Symbol], atoms: Dict[
     used = e.free_symbols & xset
     if not used or not e.args:
         return e
-    trig_arg = isinstance(e, (sp.sin, sp.cos)) and _affine(e.args[0], xset)
+    trig_arg = isinstance(e, _PAIRED) and _affine(e.args[0], xset)
     if trig_arg:
         return e.func(_atom(e.args[0], atoms, tag))
     if e.is_Add and len(used) >= 2 and _affine(e, xset):
@@ -299,6 +299,25 @@ def _atomize(e: sp.Expr, xs: List[sp.Symbol], xset: Set[sp.Symbol], atoms: Dict[
         return e.func(*[_atomize(a, xs, xset, atoms, tag) for a in e.args])
     except Exception:  # a node that cannot be rebuilt from its arguments: keep it whole
         return e
+
+
+#: functions whose values at a sigma pair c +- d follow from their values at c and d
+_PAIRED = (sp.sin, sp.cos, sp.tanh, sp.exp)
+#: the tanh identity divides by 1 +- tanh(c) tanh(d): used while |tanh d| < this (a loss of
+#: at most one digit), else tanh is called directly
+_TANH_SAFE = 0.9
+
+
+def _tanh_pair(blk: _Block, name: str, i: int, centre: sp.Expr, tc: sp.Expr, dlt: sp.Expr
+               ) -> Tuple[sp.Expr, sp.Expr]:
+    """tanh(c + d), tanh(c - d) = (T +- t) / (1 +- T t) with T = tanh c, t = tanh d
+    (the addition theorem): one call for the pair instead of two."""
+    td = blk.value(f"{name}t{i}", sp.tanh(dlt))
+    q = blk.value(f"{name}q{i}", tc * td)
+    safe = sp.Abs(td) < _TANH_SAFE
+    plus = sp.Piecewise(((tc + td) / (1 + q), safe), (sp.tanh(centre + dlt), True))
+    minus = sp.Piecewise(((tc - td) / (1 - q), safe), (sp.tanh(centre - dlt), True))
+    return blk.value(f"{name}p{i}", plus), blk.value(f"{name}m{i}", minus)
 
 
 def _atom(e: sp.Expr, atoms: Dict[sp.Expr, sp.Symbol], tag: str) -> sp.Symbol:
@@ -366,6 +385,13 @@ def _transform(blk: _Block, spec: ModelSpec, funcs: sp.Matrix, angle: Sequence[b
             sc = blk.value(f"{tag}as{j}", sp.sin(centre_a))
             cc = blk.value(f"{tag}ak{j}", sp.cos(centre_a))
             centre_map[sp.sin(sym)], centre_map[sp.cos(sym)] = sc, cc
+        th = ex = None
+        if any(f.has(sp.tanh(sym)) for f in shaped.values()):
+            th = blk.value(f"{tag}at{j}", sp.tanh(centre_a))
+            centre_map[sp.tanh(sym)] = th
+        if any(f.has(sp.exp(sym)) for f in shaped.values()):
+            ex = blk.value(f"{tag}ae{j}", sp.exp(centre_a))
+            centre_map[sp.exp(sym)] = ex
         coef: Dict[int, sp.Expr] = {}
         for m in sorted(xs.index(v) for v in e.free_symbols & xset):
             cm = sp.diff(e, xs[m])
@@ -381,6 +407,18 @@ def _transform(blk: _Block, spec: ModelSpec, funcs: sp.Matrix, angle: Sequence[b
                     sp_, sm_, cp_, cm_ = _trig_pairs(blk, f"{tag}r{j}_", i, (sc, cc), dlt)
                 plus_atoms[i][sp.sin(sym)], plus_atoms[i][sp.cos(sym)] = sp_, cp_
                 minus_atoms[i][sp.sin(sym)], minus_atoms[i][sp.cos(sym)] = sm_, cm_
+            if th is not None:
+                tp_, tm_ = (th, th) if dlt == 0 else _tanh_pair(blk, f"{tag}n{j}_", i, centre_a, th, dlt)
+                plus_atoms[i][sp.tanh(sym)], minus_atoms[i][sp.tanh(sym)] = tp_, tm_
+            if ex is not None:
+                if dlt == 0:
+                    ep_, em_ = ex, ex
+                else:
+                    # exp(c +- d) = exp(c) exp(d)^(+-1): one call for the pair
+                    ed = blk.value(f"{tag}o{j}_{i}", sp.exp(dlt))
+                    ep_ = blk.value(f"{tag}op{j}_{i}", ex * ed)
+                    em_ = blk.value(f"{tag}om{j}_{i}", ex / ed)
+                plus_atoms[i][sp.exp(sym)], minus_atoms[i][sp.exp(sym)] = ep_, em_
     items: List[Tuple[str, sp.Expr]] = []
     for k in range(funcs.shape[0]):
         items.append((f"{tag}c{k}", shaped[k].xreplace(centre_map) if k in shaped else funcs[k].xreplace(names)))
@@ -606,6 +644,15 @@ def derive_ukf_update(sensor: SensorSpec, spec: ModelSpec, wts: UkfWeights) -> U
     stmts = blk.pruned()
     return UkfUpdateCode(sensor, stmts, _used(stmts, "par->"), m, n_angle,
                          _count_locals(stmts, ("hg", "hp", "hm", "hq", "hu", "hv", "he", "hh", "hT", "hmu")))
+
+
+def commit_check(n: int, P: str) -> List[Stmt]:
+    """Refuse to commit a covariance that is not positive definite: the pivots of its unrolled
+    Cholesky factorization (a positive diagonal is not enough). Straight-line, so it costs
+    about n^3/6 multiply-adds and no index arithmetic."""
+    blk = _Block()
+    _cholesky(blk, n, P, "Lc")
+    return blk.pruned()
 
 
 def derive_ukf(spec: ModelSpec, wts: UkfWeights) -> UkfCode:

@@ -156,10 +156,23 @@ int cell_ukf_predict(cell_ukf_t *s, const double *u, double dt)
     if (!cell_ukf_finite(xn, 3u) || !cell_ukf_finite(Pn, 6u)) {
         return CELL_UKF_NON_FINITE;
     }
-    if (!cell_ukf_posdef(Pn)) {  /* a Cholesky factorization: positive diagonals are not enough */
-        return CELL_UKF_NOT_POSITIVE_DEFINITE;
-    }
-
+    /* commit only a positive definite P: the pivots of its Cholesky factorization */
+    const double Lcd0 = Pn[0];
+    if (!isfinite(Lcd0)) { return CELL_UKF_NON_FINITE; }
+    if (!(Lcd0 > 0.0)) { return CELL_UKF_NOT_POSITIVE_DEFINITE; }
+    const double Lc0_0 = sqrt(Lcd0);
+    const double Lci0 = (1.0/Lc0_0);
+    const double Lc1_0 = Lci0*Pn[1];
+    const double Lc2_0 = Lci0*Pn[2];
+    const double Lcd1 = -(Lc1_0*Lc1_0) + Pn[3];
+    if (!isfinite(Lcd1)) { return CELL_UKF_NON_FINITE; }
+    if (!(Lcd1 > 0.0)) { return CELL_UKF_NOT_POSITIVE_DEFINITE; }
+    const double Lc1_1 = sqrt(Lcd1);
+    const double Lci1 = (1.0/Lc1_1);
+    const double Lc2_1 = Lci1*(-Lc1_0*Lc2_0 + Pn[4]);
+    const double Lcd2 = -(Lc2_0*Lc2_0) - (Lc2_1*Lc2_1) + Pn[5];
+    if (!isfinite(Lcd2)) { return CELL_UKF_NON_FINITE; }
+    if (!(Lcd2 > 0.0)) { return CELL_UKF_NOT_POSITIVE_DEFINITE; }
     memcpy(s->x, xn, sizeof xn);
     memcpy(s->P, Pn, sizeof Pn);
     return CELL_UKF_OK;
@@ -202,30 +215,36 @@ int cell_ukf_update_voltage_nis(cell_ukf_t *s, const double *z, double *nis_out)
     const double hg1_1 = 1.7320508075688772*L1_1;
     const double hg2_1 = 1.7320508075688772*L2_1;
     const double hg2_2 = 1.7320508075688772*L2_2;
-    const double ht0 = 12.0*x[0] - 12.0;
-    const double ht1 = exp(ht0);
-    const double ht2 = 15.0*x[0];
-    const double ht3 = -ht2;
-    const double ht4 = 0.4*exp(ht3);
-    const double ht5 = 0.72*x[0] - x[1] - x[2] + 3.4;
-    const double ht6 = 0.08*ht1 - ht4 + ht5;
-    const double ht7 = 15.0*hg0_0;
-    const double ht8 = 12.0*hg0_0;
-    const double ht9 = -0.72*x[0] + x[1] + x[2] - 3.4;
-    const double ht10 = -0.72*hg0_0 + hg1_0 + hg2_0;
-    const double ht11 = -0.08*ht1 + ht4 + ht9;
-    const double ht12 = hg1_1 + hg2_1;
-    const double hp0_0 = -ht10 - ht9 + 0.08*exp(ht0 + ht8) - 0.4*exp(-ht2 - ht7);
-    const double hm0_0 = ht10 + ht5 - 0.4*exp(ht3 + ht7) + 0.08*exp(-ht8 + 12.0*x[0] - 12.0);
-    const double hp1_0 = -ht11 - ht12;
-    const double hm1_0 = ht12 + ht6;
-    const double hp2_0 = -hg2_2 - ht11;
-    const double hm2_0 = hg2_2 + ht6;
+    const double ha0 = 12.0*x[0] - 12.0;
+    const double hae0 = exp(ha0);
+    const double had0_0 = 12.0*hg0_0;
+    const double ho0_0 = exp(had0_0);
+    const double hop0_0 = hae0*ho0_0;
+    const double hom0_0 = hae0/ho0_0;
+    const double ha1 = -15.0*x[0];
+    const double hae1 = exp(ha1);
+    const double had1_0 = -15.0*hg0_0;
+    const double ho1_0 = exp(had1_0);
+    const double hop1_0 = hae1*ho1_0;
+    const double hom1_0 = hae1/ho1_0;
+    const double ht0 = 0.4*hae1;
+    const double ht1 = 0.72*x[0] - x[1] - x[2] + 3.4;
+    const double ht2 = 0.08*hae0 - ht0 + ht1;
+    const double ht3 = -0.72*x[0] + x[1] + x[2] - 3.4;
+    const double ht4 = -0.72*hg0_0 + hg1_0 + hg2_0;
+    const double ht5 = -0.08*hae0 + ht0 + ht3;
+    const double ht6 = hg1_1 + hg2_1;
+    const double hp0_0 = 0.08*hop0_0 - 0.4*hop1_0 - ht3 - ht4;
+    const double hm0_0 = 0.08*hom0_0 - 0.4*hom1_0 + ht1 + ht4;
+    const double hp1_0 = -ht5 - ht6;
+    const double hm1_0 = ht2 + ht6;
+    const double hp2_0 = -hg2_2 - ht5;
+    const double hm2_0 = hg2_2 + ht2;
     const double hq0_0 = hm0_0 + hp0_0;
     const double hq1_0 = hm1_0 + hp1_0;
     const double hq2_0 = hm2_0 + hp2_0;
     const double hmu0 = 0.16666666666666666*(hq0_0 + hq1_0 + hq2_0);
-    const double he0 = -hmu0 + ht6;
+    const double he0 = -hmu0 + ht2;
     const double hh0 = 0.5773502691896258*hmu0;
     const double hu0_0 = 0.2886751345948129*(-hm0_0 + hp0_0);
     const double hv0_0 = -hh0 + 0.2886751345948129*hq0_0;
@@ -264,10 +283,23 @@ int cell_ukf_update_voltage_nis(cell_ukf_t *s, const double *z, double *nis_out)
     if (!cell_ukf_finite(xs, 3u) || !cell_ukf_finite(Ps, 6u)) {
         return CELL_UKF_NON_FINITE;
     }
-    if (!cell_ukf_posdef(Ps)) {  /* a Cholesky factorization: positive diagonals are not enough */
-        return CELL_UKF_NOT_POSITIVE_DEFINITE;
-    }
-
+    /* commit only a positive definite P: the pivots of its Cholesky factorization */
+    const double Lcd0 = Ps[0];
+    if (!isfinite(Lcd0)) { return CELL_UKF_NON_FINITE; }
+    if (!(Lcd0 > 0.0)) { return CELL_UKF_NOT_POSITIVE_DEFINITE; }
+    const double Lc0_0 = sqrt(Lcd0);
+    const double Lci0 = (1.0/Lc0_0);
+    const double Lc1_0 = Lci0*Ps[1];
+    const double Lc2_0 = Lci0*Ps[2];
+    const double Lcd1 = -(Lc1_0*Lc1_0) + Ps[3];
+    if (!isfinite(Lcd1)) { return CELL_UKF_NON_FINITE; }
+    if (!(Lcd1 > 0.0)) { return CELL_UKF_NOT_POSITIVE_DEFINITE; }
+    const double Lc1_1 = sqrt(Lcd1);
+    const double Lci1 = (1.0/Lc1_1);
+    const double Lc2_1 = Lci1*(-Lc1_0*Lc2_0 + Ps[4]);
+    const double Lcd2 = -(Lc2_0*Lc2_0) - (Lc2_1*Lc2_1) + Ps[5];
+    if (!isfinite(Lcd2)) { return CELL_UKF_NON_FINITE; }
+    if (!(Lcd2 > 0.0)) { return CELL_UKF_NOT_POSITIVE_DEFINITE; }
     memcpy(s->x, xs, sizeof xs);
     memcpy(s->P, Ps, sizeof Ps);
     return CELL_UKF_OK;

@@ -156,10 +156,23 @@ int cell_ukf_predict(cell_ukf_t *s, const float *u, float dt)
     if (!cell_ukf_finite(xn, 3u) || !cell_ukf_finite(Pn, 6u)) {
         return CELL_UKF_NON_FINITE;
     }
-    if (!cell_ukf_posdef(Pn)) {  /* a Cholesky factorization: positive diagonals are not enough */
-        return CELL_UKF_NOT_POSITIVE_DEFINITE;
-    }
-
+    /* commit only a positive definite P: the pivots of its Cholesky factorization */
+    const float Lcd0 = Pn[0];
+    if (!isfinite(Lcd0)) { return CELL_UKF_NON_FINITE; }
+    if (!(Lcd0 > 0.0F)) { return CELL_UKF_NOT_POSITIVE_DEFINITE; }
+    const float Lc0_0 = sqrtf(Lcd0);
+    const float Lci0 = (1.0F/Lc0_0);
+    const float Lc1_0 = Lci0*Pn[1];
+    const float Lc2_0 = Lci0*Pn[2];
+    const float Lcd1 = -(Lc1_0*Lc1_0) + Pn[3];
+    if (!isfinite(Lcd1)) { return CELL_UKF_NON_FINITE; }
+    if (!(Lcd1 > 0.0F)) { return CELL_UKF_NOT_POSITIVE_DEFINITE; }
+    const float Lc1_1 = sqrtf(Lcd1);
+    const float Lci1 = (1.0F/Lc1_1);
+    const float Lc2_1 = Lci1*(-Lc1_0*Lc2_0 + Pn[4]);
+    const float Lcd2 = -(Lc2_0*Lc2_0) - (Lc2_1*Lc2_1) + Pn[5];
+    if (!isfinite(Lcd2)) { return CELL_UKF_NON_FINITE; }
+    if (!(Lcd2 > 0.0F)) { return CELL_UKF_NOT_POSITIVE_DEFINITE; }
     memcpy(s->x, xn, sizeof xn);
     memcpy(s->P, Pn, sizeof Pn);
     return CELL_UKF_OK;
@@ -202,30 +215,36 @@ int cell_ukf_update_voltage_nis(cell_ukf_t *s, const float *z, float *nis_out)
     const float hg1_1 = 1.7320508075688772F*L1_1;
     const float hg2_1 = 1.7320508075688772F*L2_1;
     const float hg2_2 = 1.7320508075688772F*L2_2;
-    const float ht0 = 12.0F*x[0] - 12.0F;
-    const float ht1 = expf(ht0);
-    const float ht2 = 15.0F*x[0];
-    const float ht3 = -ht2;
-    const float ht4 = 0.4F*expf(ht3);
-    const float ht5 = 0.72F*x[0] - x[1] - x[2] + 3.4F;
-    const float ht6 = 0.08F*ht1 - ht4 + ht5;
-    const float ht7 = 15.0F*hg0_0;
-    const float ht8 = 12.0F*hg0_0;
-    const float ht9 = -0.72F*x[0] + x[1] + x[2] - 3.4F;
-    const float ht10 = -0.72F*hg0_0 + hg1_0 + hg2_0;
-    const float ht11 = -0.08F*ht1 + ht4 + ht9;
-    const float ht12 = hg1_1 + hg2_1;
-    const float hp0_0 = -ht10 - ht9 + 0.08F*expf(ht0 + ht8) - 0.4F*expf(-ht2 - ht7);
-    const float hm0_0 = ht10 + ht5 - 0.4F*expf(ht3 + ht7) + 0.08F*expf(-ht8 + 12.0F*x[0] - 12.0F);
-    const float hp1_0 = -ht11 - ht12;
-    const float hm1_0 = ht12 + ht6;
-    const float hp2_0 = -hg2_2 - ht11;
-    const float hm2_0 = hg2_2 + ht6;
+    const float ha0 = 12.0F*x[0] - 12.0F;
+    const float hae0 = expf(ha0);
+    const float had0_0 = 12.0F*hg0_0;
+    const float ho0_0 = expf(had0_0);
+    const float hop0_0 = hae0*ho0_0;
+    const float hom0_0 = hae0/ho0_0;
+    const float ha1 = -15.0F*x[0];
+    const float hae1 = expf(ha1);
+    const float had1_0 = -15.0F*hg0_0;
+    const float ho1_0 = expf(had1_0);
+    const float hop1_0 = hae1*ho1_0;
+    const float hom1_0 = hae1/ho1_0;
+    const float ht0 = 0.4F*hae1;
+    const float ht1 = 0.72F*x[0] - x[1] - x[2] + 3.4F;
+    const float ht2 = 0.08F*hae0 - ht0 + ht1;
+    const float ht3 = -0.72F*x[0] + x[1] + x[2] - 3.4F;
+    const float ht4 = -0.72F*hg0_0 + hg1_0 + hg2_0;
+    const float ht5 = -0.08F*hae0 + ht0 + ht3;
+    const float ht6 = hg1_1 + hg2_1;
+    const float hp0_0 = 0.08F*hop0_0 - 0.4F*hop1_0 - ht3 - ht4;
+    const float hm0_0 = 0.08F*hom0_0 - 0.4F*hom1_0 + ht1 + ht4;
+    const float hp1_0 = -ht5 - ht6;
+    const float hm1_0 = ht2 + ht6;
+    const float hp2_0 = -hg2_2 - ht5;
+    const float hm2_0 = hg2_2 + ht2;
     const float hq0_0 = hm0_0 + hp0_0;
     const float hq1_0 = hm1_0 + hp1_0;
     const float hq2_0 = hm2_0 + hp2_0;
     const float hmu0 = 0.16666666666666666F*(hq0_0 + hq1_0 + hq2_0);
-    const float he0 = -hmu0 + ht6;
+    const float he0 = -hmu0 + ht2;
     const float hh0 = 0.5773502691896258F*hmu0;
     const float hu0_0 = 0.2886751345948129F*(-hm0_0 + hp0_0);
     const float hv0_0 = -hh0 + 0.2886751345948129F*hq0_0;
@@ -264,10 +283,23 @@ int cell_ukf_update_voltage_nis(cell_ukf_t *s, const float *z, float *nis_out)
     if (!cell_ukf_finite(xs, 3u) || !cell_ukf_finite(Ps, 6u)) {
         return CELL_UKF_NON_FINITE;
     }
-    if (!cell_ukf_posdef(Ps)) {  /* a Cholesky factorization: positive diagonals are not enough */
-        return CELL_UKF_NOT_POSITIVE_DEFINITE;
-    }
-
+    /* commit only a positive definite P: the pivots of its Cholesky factorization */
+    const float Lcd0 = Ps[0];
+    if (!isfinite(Lcd0)) { return CELL_UKF_NON_FINITE; }
+    if (!(Lcd0 > 0.0F)) { return CELL_UKF_NOT_POSITIVE_DEFINITE; }
+    const float Lc0_0 = sqrtf(Lcd0);
+    const float Lci0 = (1.0F/Lc0_0);
+    const float Lc1_0 = Lci0*Ps[1];
+    const float Lc2_0 = Lci0*Ps[2];
+    const float Lcd1 = -(Lc1_0*Lc1_0) + Ps[3];
+    if (!isfinite(Lcd1)) { return CELL_UKF_NON_FINITE; }
+    if (!(Lcd1 > 0.0F)) { return CELL_UKF_NOT_POSITIVE_DEFINITE; }
+    const float Lc1_1 = sqrtf(Lcd1);
+    const float Lci1 = (1.0F/Lc1_1);
+    const float Lc2_1 = Lci1*(-Lc1_0*Lc2_0 + Ps[4]);
+    const float Lcd2 = -(Lc2_0*Lc2_0) - (Lc2_1*Lc2_1) + Ps[5];
+    if (!isfinite(Lcd2)) { return CELL_UKF_NON_FINITE; }
+    if (!(Lcd2 > 0.0F)) { return CELL_UKF_NOT_POSITIVE_DEFINITE; }
     memcpy(s->x, xs, sizeof xs);
     memcpy(s->P, Ps, sizeof Ps);
     return CELL_UKF_OK;

@@ -161,10 +161,16 @@ int valve_ukf_predict(valve_ukf_t *s, const float *u, float dt)
     if (!valve_ukf_finite(xn, 2u) || !valve_ukf_finite(Pn, 3u)) {
         return VALVE_UKF_NON_FINITE;
     }
-    if (!valve_ukf_posdef(Pn)) {  /* a Cholesky factorization: positive diagonals are not enough */
-        return VALVE_UKF_NOT_POSITIVE_DEFINITE;
-    }
-
+    /* commit only a positive definite P: the pivots of its Cholesky factorization */
+    const float Lcd0 = Pn[0];
+    if (!isfinite(Lcd0)) { return VALVE_UKF_NON_FINITE; }
+    if (!(Lcd0 > 0.0F)) { return VALVE_UKF_NOT_POSITIVE_DEFINITE; }
+    const float Lc0_0 = sqrtf(Lcd0);
+    const float Lci0 = (1.0F/Lc0_0);
+    const float Lc1_0 = Lci0*Pn[1];
+    const float Lcd1 = -(Lc1_0*Lc1_0) + Pn[2];
+    if (!isfinite(Lcd1)) { return VALVE_UKF_NON_FINITE; }
+    if (!(Lcd1 > 0.0F)) { return VALVE_UKF_NOT_POSITIVE_DEFINITE; }
     memcpy(s->x, xn, sizeof xn);
     memcpy(s->P, Pn, sizeof Pn);
     return VALVE_UKF_OK;
@@ -239,10 +245,16 @@ int valve_ukf_update_flow_nis(valve_ukf_t *s, const float *z, float *nis_out)
     if (!valve_ukf_finite(xs, 2u) || !valve_ukf_finite(Ps, 3u)) {
         return VALVE_UKF_NON_FINITE;
     }
-    if (!valve_ukf_posdef(Ps)) {  /* a Cholesky factorization: positive diagonals are not enough */
-        return VALVE_UKF_NOT_POSITIVE_DEFINITE;
-    }
-
+    /* commit only a positive definite P: the pivots of its Cholesky factorization */
+    const float Lcd0 = Ps[0];
+    if (!isfinite(Lcd0)) { return VALVE_UKF_NON_FINITE; }
+    if (!(Lcd0 > 0.0F)) { return VALVE_UKF_NOT_POSITIVE_DEFINITE; }
+    const float Lc0_0 = sqrtf(Lcd0);
+    const float Lci0 = (1.0F/Lc0_0);
+    const float Lc1_0 = Lci0*Ps[1];
+    const float Lcd1 = -(Lc1_0*Lc1_0) + Ps[2];
+    if (!isfinite(Lcd1)) { return VALVE_UKF_NON_FINITE; }
+    if (!(Lcd1 > 0.0F)) { return VALVE_UKF_NOT_POSITIVE_DEFINITE; }
     memcpy(s->x, xs, sizeof xs);
     memcpy(s->P, Ps, sizeof Ps);
     return VALVE_UKF_OK;
@@ -300,10 +312,16 @@ int valve_ukf_update_stem_nis(valve_ukf_t *s, const float *z, float *nis_out)
     if (!valve_ukf_finite(xs, 2u) || !valve_ukf_finite(Ps, 3u)) {
         return VALVE_UKF_NON_FINITE;
     }
-    if (!valve_ukf_posdef(Ps)) {  /* a Cholesky factorization: positive diagonals are not enough */
-        return VALVE_UKF_NOT_POSITIVE_DEFINITE;
-    }
-
+    /* commit only a positive definite P: the pivots of its Cholesky factorization */
+    const float Lcd0 = Ps[0];
+    if (!isfinite(Lcd0)) { return VALVE_UKF_NON_FINITE; }
+    if (!(Lcd0 > 0.0F)) { return VALVE_UKF_NOT_POSITIVE_DEFINITE; }
+    const float Lc0_0 = sqrtf(Lcd0);
+    const float Lci0 = (1.0F/Lc0_0);
+    const float Lc1_0 = Lci0*Ps[1];
+    const float Lcd1 = -(Lc1_0*Lc1_0) + Ps[2];
+    if (!isfinite(Lcd1)) { return VALVE_UKF_NON_FINITE; }
+    if (!(Lcd1 > 0.0F)) { return VALVE_UKF_NOT_POSITIVE_DEFINITE; }
     memcpy(s->x, xs, sizeof xs);
     memcpy(s->P, Ps, sizeof Ps);
     return VALVE_UKF_OK;
