@@ -159,6 +159,13 @@ def _parser() -> argparse.ArgumentParser:
     simulate.add_arguments(s)
     s.set_defaults(func=simulate.run)
 
+    from . import soak
+
+    k = sub.add_parser("soak", help="run the C for a long simulated horizon, checking x finite and P positive "
+                                    "definite every step", description=soak.__doc__.splitlines()[0])
+    soak.add_arguments(k)
+    k.set_defaults(func=soak.run)
+
     from . import report
 
     r = sub.add_parser("report", help="RAM, stack, flash, operation and instruction counts of the generated C",

@@ -94,7 +94,8 @@ def test_soak_truth_has_the_model_process_noise(ex):
 def test_soak_command_line(tmp_path):
     out = tmp_path / "soak.json"
     env = dict(os.environ, PYTHONPATH=REPO + os.pathsep + os.environ.get("PYTHONPATH", ""))
-    proc = subprocess.run([sys.executable, "-m", "estgen.soak", model_path("linear_cart"), "--steps", "3000", "-q",
+    # `estgen soak` (the command) and `python -m estgen.soak` (the module) are the same runner
+    proc = subprocess.run([sys.executable, "-m", "estgen", "soak", model_path("linear_cart"), "--steps", "3000", "-q",
                            "--json", str(out)], capture_output=True, text=True, env=env, timeout=300)
     assert proc.returncode == 0, proc.stderr
     data = json.loads(out.read_text())
@@ -102,3 +103,28 @@ def test_soak_command_line(tmp_path):
     bad = subprocess.run([sys.executable, "-m", "estgen.soak", model_path("linear_cart"), "--steps", "0", "-q"],
                          capture_output=True, text=True, env=env, timeout=300)
     assert bad.returncode == 2 and "Traceback" not in bad.stderr
+
+
+def test_within_rounding_on_a_matrix_lapack_refuses():
+    # A covariance the fuzzer produced (beacon_rover EKF, double, after dt = 1e30): condition
+    # number ~1e38, so LAPACK's Cholesky fails on it, yet its eigenvalues at 60 digits (mpmath,
+    # a sympy dependency) are all positive: it is positive definite, and within_rounding says so.
+    import mpmath
+
+    P = np.array([[1.99896318e+63, 4.02495720e+63, 3.92466173e+30, 6.83500548e+33],
+                  [4.02495720e+63, 8.10434162e+63, 7.90239443e+30, 1.37624369e+34],
+                  [3.92466173e+30, 7.90239443e+30, 1.00000000e+26, 1.34194990e+01],
+                  [6.83500548e+33, 1.37624369e+34, 1.34194990e+01, 2.50000000e+27]])
+    with mpmath.workdps(60):
+        exact = mpmath.eigsy(mpmath.matrix(P.tolist()))[0]
+        exact_min = float(min(exact))
+    from estgen.soak import within_rounding
+
+    assert exact_min > 0
+    mask, _ = batch_posdef(P[None])
+    assert bool(mask[0]) or within_rounding(P, "double")
+    # an indefinite matrix is never within rounding (eigenvalues 3 and -1)
+    assert not within_rounding(np.array([[1.0, 2.0], [2.0, 1.0]]), "float")
+    # a slightly indefinite one, lambda_min = -1e-9 lambda_max, only in the coarser precision
+    Q = np.diag([1.0, -1e-9])
+    assert within_rounding(Q, "float") and not within_rounding(Q, "double")
