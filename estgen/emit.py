@@ -331,6 +331,8 @@ def _render(ctx: Dict[str, Any], source_template: str) -> Generated:
 
 def generate_ekf(spec: ModelSpec, precision: str = "float") -> Generated:
     """Generate the EKF's header and source for ``spec``."""
+    from .derive_ukf import commit_check  # the unrolled pivot check both filters commit through
+
     check_filter_support(spec, "ekf")
     ctx = _common_context(spec, "ekf", precision)
     em: Emitter = ctx["emitter"]
@@ -338,15 +340,16 @@ def generate_ekf(spec: ModelSpec, precision: str = "float") -> Generated:
     ops: Dict[str, Dict[str, int]] = {}
     pc = OpCount()
     ctx["predict"] = {"lines": em.lines(code.predict.stmts, pc), "uses_par": code.predict.uses_par,
-                      "uses_u": code.predict.uses_u}
+                      "uses_u": code.predict.uses_u, "commit": em.lines(commit_check(spec.n, "Pn"), pc)}
     ops["predict"] = pc.as_dict()
     ups = []
     for uc, sctx in zip(code.updates, ctx["sensors"]):
         oc = OpCount()
         body = em.lines(uc.stmts, oc)
         wraps = em.lines([Stmt("wrap", f"xs[{i}]", sp.Symbol(f"xs[{i}]")) for i in ctx["angle_states"]], oc)
+        commit = em.lines(commit_check(spec.n, "Ps"), oc)
         ops[f"update_{uc.sensor.name}"] = oc.as_dict()
-        ups.append({**sctx, "lines": body + wraps, "uses_par": uc.uses_par, "w_size": uc.w_size,
+        ups.append({**sctx, "lines": body + wraps, "commit": commit, "uses_par": uc.uses_par, "w_size": uc.w_size,
                     "k_size": uc.k_size, "sequential": uc.sequential})
     ctx["updates"] = ups
     ctx["ops"] = ops

@@ -130,9 +130,24 @@ int cell_ekf_predict(cell_ekf_t *s, const float *u, float dt)
     if (!cell_ekf_finite(xn, 3u) || !cell_ekf_finite(Pn, 6u)) {
         return CELL_EKF_NON_FINITE;
     }
-    if (!cell_ekf_posdef(Pn)) {  /* a Cholesky factorization: positive diagonals are not enough */
-        return CELL_EKF_NOT_POSITIVE_DEFINITE;
-    }
+    /* commit only a positive definite P: the pivots of its Cholesky factorization, unrolled
+       (a positive diagonal is not enough) */
+    const float Lcd0 = Pn[0];
+    if (!isfinite(Lcd0)) { return CELL_EKF_NON_FINITE; }
+    if (!(Lcd0 > 0.0F)) { return CELL_EKF_NOT_POSITIVE_DEFINITE; }
+    const float Lc0_0 = sqrtf(Lcd0);
+    const float Lci0 = (1.0F/Lc0_0);
+    const float Lc1_0 = Lci0*Pn[1];
+    const float Lc2_0 = Lci0*Pn[2];
+    const float Lcd1 = -(Lc1_0*Lc1_0) + Pn[3];
+    if (!isfinite(Lcd1)) { return CELL_EKF_NON_FINITE; }
+    if (!(Lcd1 > 0.0F)) { return CELL_EKF_NOT_POSITIVE_DEFINITE; }
+    const float Lc1_1 = sqrtf(Lcd1);
+    const float Lci1 = (1.0F/Lc1_1);
+    const float Lc2_1 = Lci1*(-Lc1_0*Lc2_0 + Pn[4]);
+    const float Lcd2 = -(Lc2_0*Lc2_0) - (Lc2_1*Lc2_1) + Pn[5];
+    if (!isfinite(Lcd2)) { return CELL_EKF_NON_FINITE; }
+    if (!(Lcd2 > 0.0F)) { return CELL_EKF_NOT_POSITIVE_DEFINITE; }
 
     memcpy(s->x, xn, sizeof xn);
     memcpy(s->P, Pn, sizeof Pn);
@@ -188,9 +203,24 @@ int cell_ekf_update_voltage_nis(cell_ekf_t *s, const float *z, float *nis_out)
     if (!cell_ekf_finite(xs, 3u) || !cell_ekf_finite(Ps, 6u)) {
         return CELL_EKF_NON_FINITE;
     }
-    if (!cell_ekf_posdef(Ps)) {  /* a Cholesky factorization: positive diagonals are not enough */
-        return CELL_EKF_NOT_POSITIVE_DEFINITE;
-    }
+    /* commit only a positive definite P: the pivots of its Cholesky factorization, unrolled
+       (a positive diagonal is not enough) */
+    const float Lcd0 = Ps[0];
+    if (!isfinite(Lcd0)) { return CELL_EKF_NON_FINITE; }
+    if (!(Lcd0 > 0.0F)) { return CELL_EKF_NOT_POSITIVE_DEFINITE; }
+    const float Lc0_0 = sqrtf(Lcd0);
+    const float Lci0 = (1.0F/Lc0_0);
+    const float Lc1_0 = Lci0*Ps[1];
+    const float Lc2_0 = Lci0*Ps[2];
+    const float Lcd1 = -(Lc1_0*Lc1_0) + Ps[3];
+    if (!isfinite(Lcd1)) { return CELL_EKF_NON_FINITE; }
+    if (!(Lcd1 > 0.0F)) { return CELL_EKF_NOT_POSITIVE_DEFINITE; }
+    const float Lc1_1 = sqrtf(Lcd1);
+    const float Lci1 = (1.0F/Lc1_1);
+    const float Lc2_1 = Lci1*(-Lc1_0*Lc2_0 + Ps[4]);
+    const float Lcd2 = -(Lc2_0*Lc2_0) - (Lc2_1*Lc2_1) + Ps[5];
+    if (!isfinite(Lcd2)) { return CELL_EKF_NON_FINITE; }
+    if (!(Lcd2 > 0.0F)) { return CELL_EKF_NOT_POSITIVE_DEFINITE; }
 
     if (!isfinite(nis)) {
         return CELL_EKF_NON_FINITE;

@@ -174,9 +174,32 @@ int rover_ekf_predict(rover_ekf_t *s, const float *u, float dt)
     if (!rover_ekf_finite(xn, 4u) || !rover_ekf_finite(Pn, 10u)) {
         return ROVER_EKF_NON_FINITE;
     }
-    if (!rover_ekf_posdef(Pn)) {  /* a Cholesky factorization: positive diagonals are not enough */
-        return ROVER_EKF_NOT_POSITIVE_DEFINITE;
-    }
+    /* commit only a positive definite P: the pivots of its Cholesky factorization, unrolled
+       (a positive diagonal is not enough) */
+    const float Lcd0 = Pn[0];
+    if (!isfinite(Lcd0)) { return ROVER_EKF_NON_FINITE; }
+    if (!(Lcd0 > 0.0F)) { return ROVER_EKF_NOT_POSITIVE_DEFINITE; }
+    const float Lc0_0 = sqrtf(Lcd0);
+    const float Lci0 = (1.0F/Lc0_0);
+    const float Lc1_0 = Lci0*Pn[1];
+    const float Lc2_0 = Lci0*Pn[2];
+    const float Lc3_0 = Lci0*Pn[3];
+    const float Lcd1 = -(Lc1_0*Lc1_0) + Pn[4];
+    if (!isfinite(Lcd1)) { return ROVER_EKF_NON_FINITE; }
+    if (!(Lcd1 > 0.0F)) { return ROVER_EKF_NOT_POSITIVE_DEFINITE; }
+    const float Lc1_1 = sqrtf(Lcd1);
+    const float Lci1 = (1.0F/Lc1_1);
+    const float Lc2_1 = Lci1*(-Lc1_0*Lc2_0 + Pn[5]);
+    const float Lc3_1 = Lci1*(-Lc1_0*Lc3_0 + Pn[6]);
+    const float Lcd2 = -(Lc2_0*Lc2_0) - (Lc2_1*Lc2_1) + Pn[7];
+    if (!isfinite(Lcd2)) { return ROVER_EKF_NON_FINITE; }
+    if (!(Lcd2 > 0.0F)) { return ROVER_EKF_NOT_POSITIVE_DEFINITE; }
+    const float Lc2_2 = sqrtf(Lcd2);
+    const float Lci2 = (1.0F/Lc2_2);
+    const float Lc3_2 = Lci2*(-Lc2_0*Lc3_0 - Lc2_1*Lc3_1 + Pn[8]);
+    const float Lcd3 = -(Lc3_0*Lc3_0) - (Lc3_1*Lc3_1) - (Lc3_2*Lc3_2) + Pn[9];
+    if (!isfinite(Lcd3)) { return ROVER_EKF_NON_FINITE; }
+    if (!(Lcd3 > 0.0F)) { return ROVER_EKF_NOT_POSITIVE_DEFINITE; }
 
     memcpy(s->x, xn, sizeof xn);
     memcpy(s->P, Pn, sizeof Pn);
@@ -244,9 +267,32 @@ int rover_ekf_update_range_a_nis(rover_ekf_t *s, const float *z, float *nis_out)
     if (!rover_ekf_finite(xs, 4u) || !rover_ekf_finite(Ps, 10u)) {
         return ROVER_EKF_NON_FINITE;
     }
-    if (!rover_ekf_posdef(Ps)) {  /* a Cholesky factorization: positive diagonals are not enough */
-        return ROVER_EKF_NOT_POSITIVE_DEFINITE;
-    }
+    /* commit only a positive definite P: the pivots of its Cholesky factorization, unrolled
+       (a positive diagonal is not enough) */
+    const float Lcd0 = Ps[0];
+    if (!isfinite(Lcd0)) { return ROVER_EKF_NON_FINITE; }
+    if (!(Lcd0 > 0.0F)) { return ROVER_EKF_NOT_POSITIVE_DEFINITE; }
+    const float Lc0_0 = sqrtf(Lcd0);
+    const float Lci0 = (1.0F/Lc0_0);
+    const float Lc1_0 = Lci0*Ps[1];
+    const float Lc2_0 = Lci0*Ps[2];
+    const float Lc3_0 = Lci0*Ps[3];
+    const float Lcd1 = -(Lc1_0*Lc1_0) + Ps[4];
+    if (!isfinite(Lcd1)) { return ROVER_EKF_NON_FINITE; }
+    if (!(Lcd1 > 0.0F)) { return ROVER_EKF_NOT_POSITIVE_DEFINITE; }
+    const float Lc1_1 = sqrtf(Lcd1);
+    const float Lci1 = (1.0F/Lc1_1);
+    const float Lc2_1 = Lci1*(-Lc1_0*Lc2_0 + Ps[5]);
+    const float Lc3_1 = Lci1*(-Lc1_0*Lc3_0 + Ps[6]);
+    const float Lcd2 = -(Lc2_0*Lc2_0) - (Lc2_1*Lc2_1) + Ps[7];
+    if (!isfinite(Lcd2)) { return ROVER_EKF_NON_FINITE; }
+    if (!(Lcd2 > 0.0F)) { return ROVER_EKF_NOT_POSITIVE_DEFINITE; }
+    const float Lc2_2 = sqrtf(Lcd2);
+    const float Lci2 = (1.0F/Lc2_2);
+    const float Lc3_2 = Lci2*(-Lc2_0*Lc3_0 - Lc2_1*Lc3_1 + Ps[8]);
+    const float Lcd3 = -(Lc3_0*Lc3_0) - (Lc3_1*Lc3_1) - (Lc3_2*Lc3_2) + Ps[9];
+    if (!isfinite(Lcd3)) { return ROVER_EKF_NON_FINITE; }
+    if (!(Lcd3 > 0.0F)) { return ROVER_EKF_NOT_POSITIVE_DEFINITE; }
 
     if (!isfinite(nis)) {
         return ROVER_EKF_NON_FINITE;
@@ -326,9 +372,32 @@ int rover_ekf_update_range_b_nis(rover_ekf_t *s, const float *z, float *nis_out)
     if (!rover_ekf_finite(xs, 4u) || !rover_ekf_finite(Ps, 10u)) {
         return ROVER_EKF_NON_FINITE;
     }
-    if (!rover_ekf_posdef(Ps)) {  /* a Cholesky factorization: positive diagonals are not enough */
-        return ROVER_EKF_NOT_POSITIVE_DEFINITE;
-    }
+    /* commit only a positive definite P: the pivots of its Cholesky factorization, unrolled
+       (a positive diagonal is not enough) */
+    const float Lcd0 = Ps[0];
+    if (!isfinite(Lcd0)) { return ROVER_EKF_NON_FINITE; }
+    if (!(Lcd0 > 0.0F)) { return ROVER_EKF_NOT_POSITIVE_DEFINITE; }
+    const float Lc0_0 = sqrtf(Lcd0);
+    const float Lci0 = (1.0F/Lc0_0);
+    const float Lc1_0 = Lci0*Ps[1];
+    const float Lc2_0 = Lci0*Ps[2];
+    const float Lc3_0 = Lci0*Ps[3];
+    const float Lcd1 = -(Lc1_0*Lc1_0) + Ps[4];
+    if (!isfinite(Lcd1)) { return ROVER_EKF_NON_FINITE; }
+    if (!(Lcd1 > 0.0F)) { return ROVER_EKF_NOT_POSITIVE_DEFINITE; }
+    const float Lc1_1 = sqrtf(Lcd1);
+    const float Lci1 = (1.0F/Lc1_1);
+    const float Lc2_1 = Lci1*(-Lc1_0*Lc2_0 + Ps[5]);
+    const float Lc3_1 = Lci1*(-Lc1_0*Lc3_0 + Ps[6]);
+    const float Lcd2 = -(Lc2_0*Lc2_0) - (Lc2_1*Lc2_1) + Ps[7];
+    if (!isfinite(Lcd2)) { return ROVER_EKF_NON_FINITE; }
+    if (!(Lcd2 > 0.0F)) { return ROVER_EKF_NOT_POSITIVE_DEFINITE; }
+    const float Lc2_2 = sqrtf(Lcd2);
+    const float Lci2 = (1.0F/Lc2_2);
+    const float Lc3_2 = Lci2*(-Lc2_0*Lc3_0 - Lc2_1*Lc3_1 + Ps[8]);
+    const float Lcd3 = -(Lc3_0*Lc3_0) - (Lc3_1*Lc3_1) - (Lc3_2*Lc3_2) + Ps[9];
+    if (!isfinite(Lcd3)) { return ROVER_EKF_NON_FINITE; }
+    if (!(Lcd3 > 0.0F)) { return ROVER_EKF_NOT_POSITIVE_DEFINITE; }
 
     if (!isfinite(nis)) {
         return ROVER_EKF_NON_FINITE;
@@ -449,9 +518,32 @@ int rover_ekf_update_range_cd_nis(rover_ekf_t *s, const float *z, float *nis_out
     if (!rover_ekf_finite(xs, 4u) || !rover_ekf_finite(Ps, 10u)) {
         return ROVER_EKF_NON_FINITE;
     }
-    if (!rover_ekf_posdef(Ps)) {  /* a Cholesky factorization: positive diagonals are not enough */
-        return ROVER_EKF_NOT_POSITIVE_DEFINITE;
-    }
+    /* commit only a positive definite P: the pivots of its Cholesky factorization, unrolled
+       (a positive diagonal is not enough) */
+    const float Lcd0 = Ps[0];
+    if (!isfinite(Lcd0)) { return ROVER_EKF_NON_FINITE; }
+    if (!(Lcd0 > 0.0F)) { return ROVER_EKF_NOT_POSITIVE_DEFINITE; }
+    const float Lc0_0 = sqrtf(Lcd0);
+    const float Lci0 = (1.0F/Lc0_0);
+    const float Lc1_0 = Lci0*Ps[1];
+    const float Lc2_0 = Lci0*Ps[2];
+    const float Lc3_0 = Lci0*Ps[3];
+    const float Lcd1 = -(Lc1_0*Lc1_0) + Ps[4];
+    if (!isfinite(Lcd1)) { return ROVER_EKF_NON_FINITE; }
+    if (!(Lcd1 > 0.0F)) { return ROVER_EKF_NOT_POSITIVE_DEFINITE; }
+    const float Lc1_1 = sqrtf(Lcd1);
+    const float Lci1 = (1.0F/Lc1_1);
+    const float Lc2_1 = Lci1*(-Lc1_0*Lc2_0 + Ps[5]);
+    const float Lc3_1 = Lci1*(-Lc1_0*Lc3_0 + Ps[6]);
+    const float Lcd2 = -(Lc2_0*Lc2_0) - (Lc2_1*Lc2_1) + Ps[7];
+    if (!isfinite(Lcd2)) { return ROVER_EKF_NON_FINITE; }
+    if (!(Lcd2 > 0.0F)) { return ROVER_EKF_NOT_POSITIVE_DEFINITE; }
+    const float Lc2_2 = sqrtf(Lcd2);
+    const float Lci2 = (1.0F/Lc2_2);
+    const float Lc3_2 = Lci2*(-Lc2_0*Lc3_0 - Lc2_1*Lc3_1 + Ps[8]);
+    const float Lcd3 = -(Lc3_0*Lc3_0) - (Lc3_1*Lc3_1) - (Lc3_2*Lc3_2) + Ps[9];
+    if (!isfinite(Lcd3)) { return ROVER_EKF_NON_FINITE; }
+    if (!(Lcd3 > 0.0F)) { return ROVER_EKF_NOT_POSITIVE_DEFINITE; }
 
     if (!isfinite(nis)) {
         return ROVER_EKF_NON_FINITE;
@@ -525,9 +617,32 @@ int rover_ekf_update_compass_nis(rover_ekf_t *s, const float *z, float *nis_out)
     if (!rover_ekf_finite(xs, 4u) || !rover_ekf_finite(Ps, 10u)) {
         return ROVER_EKF_NON_FINITE;
     }
-    if (!rover_ekf_posdef(Ps)) {  /* a Cholesky factorization: positive diagonals are not enough */
-        return ROVER_EKF_NOT_POSITIVE_DEFINITE;
-    }
+    /* commit only a positive definite P: the pivots of its Cholesky factorization, unrolled
+       (a positive diagonal is not enough) */
+    const float Lcd0 = Ps[0];
+    if (!isfinite(Lcd0)) { return ROVER_EKF_NON_FINITE; }
+    if (!(Lcd0 > 0.0F)) { return ROVER_EKF_NOT_POSITIVE_DEFINITE; }
+    const float Lc0_0 = sqrtf(Lcd0);
+    const float Lci0 = (1.0F/Lc0_0);
+    const float Lc1_0 = Lci0*Ps[1];
+    const float Lc2_0 = Lci0*Ps[2];
+    const float Lc3_0 = Lci0*Ps[3];
+    const float Lcd1 = -(Lc1_0*Lc1_0) + Ps[4];
+    if (!isfinite(Lcd1)) { return ROVER_EKF_NON_FINITE; }
+    if (!(Lcd1 > 0.0F)) { return ROVER_EKF_NOT_POSITIVE_DEFINITE; }
+    const float Lc1_1 = sqrtf(Lcd1);
+    const float Lci1 = (1.0F/Lc1_1);
+    const float Lc2_1 = Lci1*(-Lc1_0*Lc2_0 + Ps[5]);
+    const float Lc3_1 = Lci1*(-Lc1_0*Lc3_0 + Ps[6]);
+    const float Lcd2 = -(Lc2_0*Lc2_0) - (Lc2_1*Lc2_1) + Ps[7];
+    if (!isfinite(Lcd2)) { return ROVER_EKF_NON_FINITE; }
+    if (!(Lcd2 > 0.0F)) { return ROVER_EKF_NOT_POSITIVE_DEFINITE; }
+    const float Lc2_2 = sqrtf(Lcd2);
+    const float Lci2 = (1.0F/Lc2_2);
+    const float Lc3_2 = Lci2*(-Lc2_0*Lc3_0 - Lc2_1*Lc3_1 + Ps[8]);
+    const float Lcd3 = -(Lc3_0*Lc3_0) - (Lc3_1*Lc3_1) - (Lc3_2*Lc3_2) + Ps[9];
+    if (!isfinite(Lcd3)) { return ROVER_EKF_NON_FINITE; }
+    if (!(Lcd3 > 0.0F)) { return ROVER_EKF_NOT_POSITIVE_DEFINITE; }
 
     if (!isfinite(nis)) {
         return ROVER_EKF_NON_FINITE;

@@ -139,9 +139,24 @@ int cart_ekf_predict(cart_ekf_t *s, const double *u, double dt)
     if (!cart_ekf_finite(xn, 3u) || !cart_ekf_finite(Pn, 6u)) {
         return CART_EKF_NON_FINITE;
     }
-    if (!cart_ekf_posdef(Pn)) {  /* a Cholesky factorization: positive diagonals are not enough */
-        return CART_EKF_NOT_POSITIVE_DEFINITE;
-    }
+    /* commit only a positive definite P: the pivots of its Cholesky factorization, unrolled
+       (a positive diagonal is not enough) */
+    const double Lcd0 = Pn[0];
+    if (!isfinite(Lcd0)) { return CART_EKF_NON_FINITE; }
+    if (!(Lcd0 > 0.0)) { return CART_EKF_NOT_POSITIVE_DEFINITE; }
+    const double Lc0_0 = sqrt(Lcd0);
+    const double Lci0 = (1.0/Lc0_0);
+    const double Lc1_0 = Lci0*Pn[1];
+    const double Lc2_0 = Lci0*Pn[2];
+    const double Lcd1 = -(Lc1_0*Lc1_0) + Pn[3];
+    if (!isfinite(Lcd1)) { return CART_EKF_NON_FINITE; }
+    if (!(Lcd1 > 0.0)) { return CART_EKF_NOT_POSITIVE_DEFINITE; }
+    const double Lc1_1 = sqrt(Lcd1);
+    const double Lci1 = (1.0/Lc1_1);
+    const double Lc2_1 = Lci1*(-Lc1_0*Lc2_0 + Pn[4]);
+    const double Lcd2 = -(Lc2_0*Lc2_0) - (Lc2_1*Lc2_1) + Pn[5];
+    if (!isfinite(Lcd2)) { return CART_EKF_NON_FINITE; }
+    if (!(Lcd2 > 0.0)) { return CART_EKF_NOT_POSITIVE_DEFINITE; }
 
     memcpy(s->x, xn, sizeof xn);
     memcpy(s->P, Pn, sizeof Pn);
@@ -193,9 +208,24 @@ int cart_ekf_update_encoder_nis(cart_ekf_t *s, const double *z, double *nis_out)
     if (!cart_ekf_finite(xs, 3u) || !cart_ekf_finite(Ps, 6u)) {
         return CART_EKF_NON_FINITE;
     }
-    if (!cart_ekf_posdef(Ps)) {  /* a Cholesky factorization: positive diagonals are not enough */
-        return CART_EKF_NOT_POSITIVE_DEFINITE;
-    }
+    /* commit only a positive definite P: the pivots of its Cholesky factorization, unrolled
+       (a positive diagonal is not enough) */
+    const double Lcd0 = Ps[0];
+    if (!isfinite(Lcd0)) { return CART_EKF_NON_FINITE; }
+    if (!(Lcd0 > 0.0)) { return CART_EKF_NOT_POSITIVE_DEFINITE; }
+    const double Lc0_0 = sqrt(Lcd0);
+    const double Lci0 = (1.0/Lc0_0);
+    const double Lc1_0 = Lci0*Ps[1];
+    const double Lc2_0 = Lci0*Ps[2];
+    const double Lcd1 = -(Lc1_0*Lc1_0) + Ps[3];
+    if (!isfinite(Lcd1)) { return CART_EKF_NON_FINITE; }
+    if (!(Lcd1 > 0.0)) { return CART_EKF_NOT_POSITIVE_DEFINITE; }
+    const double Lc1_1 = sqrt(Lcd1);
+    const double Lci1 = (1.0/Lc1_1);
+    const double Lc2_1 = Lci1*(-Lc1_0*Lc2_0 + Ps[4]);
+    const double Lcd2 = -(Lc2_0*Lc2_0) - (Lc2_1*Lc2_1) + Ps[5];
+    if (!isfinite(Lcd2)) { return CART_EKF_NON_FINITE; }
+    if (!(Lcd2 > 0.0)) { return CART_EKF_NOT_POSITIVE_DEFINITE; }
 
     if (!isfinite(nis)) {
         return CART_EKF_NON_FINITE;
@@ -259,9 +289,24 @@ int cart_ekf_update_speed_nis(cart_ekf_t *s, const double *z, double *nis_out)
     if (!cart_ekf_finite(xs, 3u) || !cart_ekf_finite(Ps, 6u)) {
         return CART_EKF_NON_FINITE;
     }
-    if (!cart_ekf_posdef(Ps)) {  /* a Cholesky factorization: positive diagonals are not enough */
-        return CART_EKF_NOT_POSITIVE_DEFINITE;
-    }
+    /* commit only a positive definite P: the pivots of its Cholesky factorization, unrolled
+       (a positive diagonal is not enough) */
+    const double Lcd0 = Ps[0];
+    if (!isfinite(Lcd0)) { return CART_EKF_NON_FINITE; }
+    if (!(Lcd0 > 0.0)) { return CART_EKF_NOT_POSITIVE_DEFINITE; }
+    const double Lc0_0 = sqrt(Lcd0);
+    const double Lci0 = (1.0/Lc0_0);
+    const double Lc1_0 = Lci0*Ps[1];
+    const double Lc2_0 = Lci0*Ps[2];
+    const double Lcd1 = -(Lc1_0*Lc1_0) + Ps[3];
+    if (!isfinite(Lcd1)) { return CART_EKF_NON_FINITE; }
+    if (!(Lcd1 > 0.0)) { return CART_EKF_NOT_POSITIVE_DEFINITE; }
+    const double Lc1_1 = sqrt(Lcd1);
+    const double Lci1 = (1.0/Lc1_1);
+    const double Lc2_1 = Lci1*(-Lc1_0*Lc2_0 + Ps[4]);
+    const double Lcd2 = -(Lc2_0*Lc2_0) - (Lc2_1*Lc2_1) + Ps[5];
+    if (!isfinite(Lcd2)) { return CART_EKF_NON_FINITE; }
+    if (!(Lcd2 > 0.0)) { return CART_EKF_NOT_POSITIVE_DEFINITE; }
 
     if (!isfinite(nis)) {
         return CART_EKF_NON_FINITE;
