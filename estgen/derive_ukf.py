@@ -22,7 +22,9 @@ so that structure the model already has costs nothing at run time:
   affine argument of sin or cos) has the value ``a(x) +- a' gamma L_i`` at the i-th pair: one
   short dot product with a triangular column per pair. When both sin and cos of such an argument
   occur, the pair's four values come from sin and cos of the centre and of the offset by the
-  angle-sum identities (two calls per pair, not four).
+  angle-sum identities (two calls per pair, not four); tanh and exp of such an argument come
+  from their addition theorems (one call per pair, not two; tanh falls back to direct calls
+  when the offset is large, where the identity would lose digits).
 
 A nonlinear component is evaluated at all 2n+1 points; an angle component takes the circular
 mean ``atan2(sum w sin, sum w cos)`` and wrapped deviations, as the reference does. For an affine

@@ -40,23 +40,26 @@ def generate_ukf(spec: ModelSpec, precision: str = "float", **options: Any) -> G
     ops: Dict[str, Dict[str, int]] = {}
     pc = OpCount()
     p_lines = em.lines(code.predict.stmts, pc)
-    p_commit = em.lines(commit_check(n, "Pn"), pc)
+    # the commit check is one static function, run by every call: its cost counts in each
+    cc = OpCount()
+    ctx["commit_pd"] = em.lines(commit_check(n, "P"), cc)
+    pc += cc
     ops["predict"] = pc.as_dict()
     p_decls = sum(1 for st in code.predict.stmts if st.kind == "decl")
     # named storage of predict: xn, Pn, the wrapped-angle scratch and every const local
     p_bytes = _stack_bytes(p_decls, n + np_ + code.predict.angle_scratch, size_real)
     ctx["predict"] = {"lines": p_lines, "uses_par": code.predict.uses_par, "uses_u": code.predict.uses_u,
-                      "ea": code.predict.angle_scratch, "commit": p_commit}
+                      "ea": code.predict.angle_scratch}
     ups: List[Dict[str, Any]] = []
     u_bytes = 0
     for uc, sctx in zip(code.updates, ctx["sensors"]):
         oc = OpCount()
         body = em.lines(uc.stmts, oc)
-        commit = em.lines(commit_check(n, "Ps"), oc)
+        oc += cc
         ops[f"update_{uc.sensor.name}"] = oc.as_dict()
         decls = sum(1 for st in uc.stmts if st.kind == "decl")
         u_bytes = max(u_bytes, _stack_bytes(decls, n + np_ + uc.m + 1 + uc.angle_scratch, size_real))
-        ups.append({**sctx, "lines": body, "uses_par": uc.uses_par, "ea": uc.angle_scratch, "commit": commit})
+        ups.append({**sctx, "lines": body, "uses_par": uc.uses_par, "ea": uc.angle_scratch})
     ctx["updates"] = ups
     ctx["ops"] = ops
     ctx["weights"] = {"wm0": em.lit(wts.wm0), "wm": em.lit(wts.w), "wc0": em.lit(wts.wc0),

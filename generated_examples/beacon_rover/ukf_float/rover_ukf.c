@@ -64,6 +64,38 @@ static int rover_ukf_posdef(const float *P)
     return 1;
 }
 
+/* OK when the packed covariance P is positive definite (every pivot of its Cholesky factorization
+   finite and > 0; a positive diagonal is not enough), else the refusal code. Unrolled, and one
+   copy serves every commit. */
+static int rover_ukf_commit_pd(const float *P)
+{
+    const float Lcd0 = P[0];
+    if (!isfinite(Lcd0)) { return ROVER_UKF_NON_FINITE; }
+    if (!(Lcd0 > 0.0F)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
+    const float Lc0_0 = sqrtf(Lcd0);
+    const float Lci0 = (1.0F/Lc0_0);
+    const float Lc1_0 = Lci0*P[1];
+    const float Lc2_0 = Lci0*P[2];
+    const float Lc3_0 = Lci0*P[3];
+    const float Lcd1 = -(Lc1_0*Lc1_0) + P[4];
+    if (!isfinite(Lcd1)) { return ROVER_UKF_NON_FINITE; }
+    if (!(Lcd1 > 0.0F)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
+    const float Lc1_1 = sqrtf(Lcd1);
+    const float Lci1 = (1.0F/Lc1_1);
+    const float Lc2_1 = Lci1*(-Lc1_0*Lc2_0 + P[5]);
+    const float Lc3_1 = Lci1*(-Lc1_0*Lc3_0 + P[6]);
+    const float Lcd2 = -(Lc2_0*Lc2_0) - (Lc2_1*Lc2_1) + P[7];
+    if (!isfinite(Lcd2)) { return ROVER_UKF_NON_FINITE; }
+    if (!(Lcd2 > 0.0F)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
+    const float Lc2_2 = sqrtf(Lcd2);
+    const float Lci2 = (1.0F/Lc2_2);
+    const float Lc3_2 = Lci2*(-Lc2_0*Lc3_0 - Lc2_1*Lc3_1 + P[8]);
+    const float Lcd3 = -(Lc3_0*Lc3_0) - (Lc3_1*Lc3_1) - (Lc3_2*Lc3_2) + P[9];
+    if (!isfinite(Lcd3)) { return ROVER_UKF_NON_FINITE; }
+    if (!(Lcd3 > 0.0F)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
+    return ROVER_UKF_OK;
+}
+
 void rover_ukf_init(rover_ukf_t *s)
 {
     s->x[0] = 0.0F;
@@ -391,31 +423,12 @@ int rover_ukf_predict(rover_ukf_t *s, const float *u, float dt)
     if (!rover_ukf_finite(xn, 4u) || !rover_ukf_finite(Pn, 10u)) {
         return ROVER_UKF_NON_FINITE;
     }
-    /* commit only a positive definite P: the pivots of its Cholesky factorization */
-    const float Lcd0 = Pn[0];
-    if (!isfinite(Lcd0)) { return ROVER_UKF_NON_FINITE; }
-    if (!(Lcd0 > 0.0F)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc0_0 = sqrtf(Lcd0);
-    const float Lci0 = (1.0F/Lc0_0);
-    const float Lc1_0 = Lci0*Pn[1];
-    const float Lc2_0 = Lci0*Pn[2];
-    const float Lc3_0 = Lci0*Pn[3];
-    const float Lcd1 = -(Lc1_0*Lc1_0) + Pn[4];
-    if (!isfinite(Lcd1)) { return ROVER_UKF_NON_FINITE; }
-    if (!(Lcd1 > 0.0F)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc1_1 = sqrtf(Lcd1);
-    const float Lci1 = (1.0F/Lc1_1);
-    const float Lc2_1 = Lci1*(-Lc1_0*Lc2_0 + Pn[5]);
-    const float Lc3_1 = Lci1*(-Lc1_0*Lc3_0 + Pn[6]);
-    const float Lcd2 = -(Lc2_0*Lc2_0) - (Lc2_1*Lc2_1) + Pn[7];
-    if (!isfinite(Lcd2)) { return ROVER_UKF_NON_FINITE; }
-    if (!(Lcd2 > 0.0F)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc2_2 = sqrtf(Lcd2);
-    const float Lci2 = (1.0F/Lc2_2);
-    const float Lc3_2 = Lci2*(-Lc2_0*Lc3_0 - Lc2_1*Lc3_1 + Pn[8]);
-    const float Lcd3 = -(Lc3_0*Lc3_0) - (Lc3_1*Lc3_1) - (Lc3_2*Lc3_2) + Pn[9];
-    if (!isfinite(Lcd3)) { return ROVER_UKF_NON_FINITE; }
-    if (!(Lcd3 > 0.0F)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
+    {
+        const int st = rover_ukf_commit_pd(Pn);
+        if (st != ROVER_UKF_OK) {
+            return st;
+        }
+    }
     memcpy(s->x, xn, sizeof xn);
     memcpy(s->P, Pn, sizeof Pn);
     return ROVER_UKF_OK;
@@ -524,31 +537,12 @@ int rover_ukf_update_range_a_nis(rover_ukf_t *s, const float *z, float *nis_out)
     if (!rover_ukf_finite(xs, 4u) || !rover_ukf_finite(Ps, 10u)) {
         return ROVER_UKF_NON_FINITE;
     }
-    /* commit only a positive definite P: the pivots of its Cholesky factorization */
-    const float Lcd0 = Ps[0];
-    if (!isfinite(Lcd0)) { return ROVER_UKF_NON_FINITE; }
-    if (!(Lcd0 > 0.0F)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc0_0 = sqrtf(Lcd0);
-    const float Lci0 = (1.0F/Lc0_0);
-    const float Lc1_0 = Lci0*Ps[1];
-    const float Lc2_0 = Lci0*Ps[2];
-    const float Lc3_0 = Lci0*Ps[3];
-    const float Lcd1 = -(Lc1_0*Lc1_0) + Ps[4];
-    if (!isfinite(Lcd1)) { return ROVER_UKF_NON_FINITE; }
-    if (!(Lcd1 > 0.0F)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc1_1 = sqrtf(Lcd1);
-    const float Lci1 = (1.0F/Lc1_1);
-    const float Lc2_1 = Lci1*(-Lc1_0*Lc2_0 + Ps[5]);
-    const float Lc3_1 = Lci1*(-Lc1_0*Lc3_0 + Ps[6]);
-    const float Lcd2 = -(Lc2_0*Lc2_0) - (Lc2_1*Lc2_1) + Ps[7];
-    if (!isfinite(Lcd2)) { return ROVER_UKF_NON_FINITE; }
-    if (!(Lcd2 > 0.0F)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc2_2 = sqrtf(Lcd2);
-    const float Lci2 = (1.0F/Lc2_2);
-    const float Lc3_2 = Lci2*(-Lc2_0*Lc3_0 - Lc2_1*Lc3_1 + Ps[8]);
-    const float Lcd3 = -(Lc3_0*Lc3_0) - (Lc3_1*Lc3_1) - (Lc3_2*Lc3_2) + Ps[9];
-    if (!isfinite(Lcd3)) { return ROVER_UKF_NON_FINITE; }
-    if (!(Lcd3 > 0.0F)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
+    {
+        const int st = rover_ukf_commit_pd(Ps);
+        if (st != ROVER_UKF_OK) {
+            return st;
+        }
+    }
     memcpy(s->x, xs, sizeof xs);
     memcpy(s->P, Ps, sizeof Ps);
     return ROVER_UKF_OK;
@@ -663,31 +657,12 @@ int rover_ukf_update_range_b_nis(rover_ukf_t *s, const float *z, float *nis_out)
     if (!rover_ukf_finite(xs, 4u) || !rover_ukf_finite(Ps, 10u)) {
         return ROVER_UKF_NON_FINITE;
     }
-    /* commit only a positive definite P: the pivots of its Cholesky factorization */
-    const float Lcd0 = Ps[0];
-    if (!isfinite(Lcd0)) { return ROVER_UKF_NON_FINITE; }
-    if (!(Lcd0 > 0.0F)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc0_0 = sqrtf(Lcd0);
-    const float Lci0 = (1.0F/Lc0_0);
-    const float Lc1_0 = Lci0*Ps[1];
-    const float Lc2_0 = Lci0*Ps[2];
-    const float Lc3_0 = Lci0*Ps[3];
-    const float Lcd1 = -(Lc1_0*Lc1_0) + Ps[4];
-    if (!isfinite(Lcd1)) { return ROVER_UKF_NON_FINITE; }
-    if (!(Lcd1 > 0.0F)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc1_1 = sqrtf(Lcd1);
-    const float Lci1 = (1.0F/Lc1_1);
-    const float Lc2_1 = Lci1*(-Lc1_0*Lc2_0 + Ps[5]);
-    const float Lc3_1 = Lci1*(-Lc1_0*Lc3_0 + Ps[6]);
-    const float Lcd2 = -(Lc2_0*Lc2_0) - (Lc2_1*Lc2_1) + Ps[7];
-    if (!isfinite(Lcd2)) { return ROVER_UKF_NON_FINITE; }
-    if (!(Lcd2 > 0.0F)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc2_2 = sqrtf(Lcd2);
-    const float Lci2 = (1.0F/Lc2_2);
-    const float Lc3_2 = Lci2*(-Lc2_0*Lc3_0 - Lc2_1*Lc3_1 + Ps[8]);
-    const float Lcd3 = -(Lc3_0*Lc3_0) - (Lc3_1*Lc3_1) - (Lc3_2*Lc3_2) + Ps[9];
-    if (!isfinite(Lcd3)) { return ROVER_UKF_NON_FINITE; }
-    if (!(Lcd3 > 0.0F)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
+    {
+        const int st = rover_ukf_commit_pd(Ps);
+        if (st != ROVER_UKF_OK) {
+            return st;
+        }
+    }
     memcpy(s->x, xs, sizeof xs);
     memcpy(s->P, Ps, sizeof Ps);
     return ROVER_UKF_OK;
@@ -849,31 +824,12 @@ int rover_ukf_update_range_cd_nis(rover_ukf_t *s, const float *z, float *nis_out
     if (!rover_ukf_finite(xs, 4u) || !rover_ukf_finite(Ps, 10u)) {
         return ROVER_UKF_NON_FINITE;
     }
-    /* commit only a positive definite P: the pivots of its Cholesky factorization */
-    const float Lcd0 = Ps[0];
-    if (!isfinite(Lcd0)) { return ROVER_UKF_NON_FINITE; }
-    if (!(Lcd0 > 0.0F)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc0_0 = sqrtf(Lcd0);
-    const float Lci0 = (1.0F/Lc0_0);
-    const float Lc1_0 = Lci0*Ps[1];
-    const float Lc2_0 = Lci0*Ps[2];
-    const float Lc3_0 = Lci0*Ps[3];
-    const float Lcd1 = -(Lc1_0*Lc1_0) + Ps[4];
-    if (!isfinite(Lcd1)) { return ROVER_UKF_NON_FINITE; }
-    if (!(Lcd1 > 0.0F)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc1_1 = sqrtf(Lcd1);
-    const float Lci1 = (1.0F/Lc1_1);
-    const float Lc2_1 = Lci1*(-Lc1_0*Lc2_0 + Ps[5]);
-    const float Lc3_1 = Lci1*(-Lc1_0*Lc3_0 + Ps[6]);
-    const float Lcd2 = -(Lc2_0*Lc2_0) - (Lc2_1*Lc2_1) + Ps[7];
-    if (!isfinite(Lcd2)) { return ROVER_UKF_NON_FINITE; }
-    if (!(Lcd2 > 0.0F)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc2_2 = sqrtf(Lcd2);
-    const float Lci2 = (1.0F/Lc2_2);
-    const float Lc3_2 = Lci2*(-Lc2_0*Lc3_0 - Lc2_1*Lc3_1 + Ps[8]);
-    const float Lcd3 = -(Lc3_0*Lc3_0) - (Lc3_1*Lc3_1) - (Lc3_2*Lc3_2) + Ps[9];
-    if (!isfinite(Lcd3)) { return ROVER_UKF_NON_FINITE; }
-    if (!(Lcd3 > 0.0F)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
+    {
+        const int st = rover_ukf_commit_pd(Ps);
+        if (st != ROVER_UKF_OK) {
+            return st;
+        }
+    }
     memcpy(s->x, xs, sizeof xs);
     memcpy(s->P, Ps, sizeof Ps);
     return ROVER_UKF_OK;
@@ -983,31 +939,12 @@ int rover_ukf_update_compass_nis(rover_ukf_t *s, const float *z, float *nis_out)
     if (!rover_ukf_finite(xs, 4u) || !rover_ukf_finite(Ps, 10u)) {
         return ROVER_UKF_NON_FINITE;
     }
-    /* commit only a positive definite P: the pivots of its Cholesky factorization */
-    const float Lcd0 = Ps[0];
-    if (!isfinite(Lcd0)) { return ROVER_UKF_NON_FINITE; }
-    if (!(Lcd0 > 0.0F)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc0_0 = sqrtf(Lcd0);
-    const float Lci0 = (1.0F/Lc0_0);
-    const float Lc1_0 = Lci0*Ps[1];
-    const float Lc2_0 = Lci0*Ps[2];
-    const float Lc3_0 = Lci0*Ps[3];
-    const float Lcd1 = -(Lc1_0*Lc1_0) + Ps[4];
-    if (!isfinite(Lcd1)) { return ROVER_UKF_NON_FINITE; }
-    if (!(Lcd1 > 0.0F)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc1_1 = sqrtf(Lcd1);
-    const float Lci1 = (1.0F/Lc1_1);
-    const float Lc2_1 = Lci1*(-Lc1_0*Lc2_0 + Ps[5]);
-    const float Lc3_1 = Lci1*(-Lc1_0*Lc3_0 + Ps[6]);
-    const float Lcd2 = -(Lc2_0*Lc2_0) - (Lc2_1*Lc2_1) + Ps[7];
-    if (!isfinite(Lcd2)) { return ROVER_UKF_NON_FINITE; }
-    if (!(Lcd2 > 0.0F)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc2_2 = sqrtf(Lcd2);
-    const float Lci2 = (1.0F/Lc2_2);
-    const float Lc3_2 = Lci2*(-Lc2_0*Lc3_0 - Lc2_1*Lc3_1 + Ps[8]);
-    const float Lcd3 = -(Lc3_0*Lc3_0) - (Lc3_1*Lc3_1) - (Lc3_2*Lc3_2) + Ps[9];
-    if (!isfinite(Lcd3)) { return ROVER_UKF_NON_FINITE; }
-    if (!(Lcd3 > 0.0F)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
+    {
+        const int st = rover_ukf_commit_pd(Ps);
+        if (st != ROVER_UKF_OK) {
+            return st;
+        }
+    }
     memcpy(s->x, xs, sizeof xs);
     memcpy(s->P, Ps, sizeof Ps);
     return ROVER_UKF_OK;

@@ -58,6 +58,30 @@ static int cart_ukf_posdef(const double *P)
     return 1;
 }
 
+/* OK when the packed covariance P is positive definite (every pivot of its Cholesky factorization
+   finite and > 0; a positive diagonal is not enough), else the refusal code. Unrolled, and one
+   copy serves every commit. */
+static int cart_ukf_commit_pd(const double *P)
+{
+    const double Lcd0 = P[0];
+    if (!isfinite(Lcd0)) { return CART_UKF_NON_FINITE; }
+    if (!(Lcd0 > 0.0)) { return CART_UKF_NOT_POSITIVE_DEFINITE; }
+    const double Lc0_0 = sqrt(Lcd0);
+    const double Lci0 = (1.0/Lc0_0);
+    const double Lc1_0 = Lci0*P[1];
+    const double Lc2_0 = Lci0*P[2];
+    const double Lcd1 = -(Lc1_0*Lc1_0) + P[3];
+    if (!isfinite(Lcd1)) { return CART_UKF_NON_FINITE; }
+    if (!(Lcd1 > 0.0)) { return CART_UKF_NOT_POSITIVE_DEFINITE; }
+    const double Lc1_1 = sqrt(Lcd1);
+    const double Lci1 = (1.0/Lc1_1);
+    const double Lc2_1 = Lci1*(-Lc1_0*Lc2_0 + P[4]);
+    const double Lcd2 = -(Lc2_0*Lc2_0) - (Lc2_1*Lc2_1) + P[5];
+    if (!isfinite(Lcd2)) { return CART_UKF_NON_FINITE; }
+    if (!(Lcd2 > 0.0)) { return CART_UKF_NOT_POSITIVE_DEFINITE; }
+    return CART_UKF_OK;
+}
+
 void cart_ukf_init(cart_ukf_t *s)
 {
     s->x[0] = 0.0;
@@ -164,23 +188,12 @@ int cart_ukf_predict(cart_ukf_t *s, const double *u, double dt)
     if (!cart_ukf_finite(xn, 3u) || !cart_ukf_finite(Pn, 6u)) {
         return CART_UKF_NON_FINITE;
     }
-    /* commit only a positive definite P: the pivots of its Cholesky factorization */
-    const double Lcd0 = Pn[0];
-    if (!isfinite(Lcd0)) { return CART_UKF_NON_FINITE; }
-    if (!(Lcd0 > 0.0)) { return CART_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc0_0 = sqrt(Lcd0);
-    const double Lci0 = (1.0/Lc0_0);
-    const double Lc1_0 = Lci0*Pn[1];
-    const double Lc2_0 = Lci0*Pn[2];
-    const double Lcd1 = -(Lc1_0*Lc1_0) + Pn[3];
-    if (!isfinite(Lcd1)) { return CART_UKF_NON_FINITE; }
-    if (!(Lcd1 > 0.0)) { return CART_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc1_1 = sqrt(Lcd1);
-    const double Lci1 = (1.0/Lc1_1);
-    const double Lc2_1 = Lci1*(-Lc1_0*Lc2_0 + Pn[4]);
-    const double Lcd2 = -(Lc2_0*Lc2_0) - (Lc2_1*Lc2_1) + Pn[5];
-    if (!isfinite(Lcd2)) { return CART_UKF_NON_FINITE; }
-    if (!(Lcd2 > 0.0)) { return CART_UKF_NOT_POSITIVE_DEFINITE; }
+    {
+        const int st = cart_ukf_commit_pd(Pn);
+        if (st != CART_UKF_OK) {
+            return st;
+        }
+    }
     memcpy(s->x, xn, sizeof xn);
     memcpy(s->P, Pn, sizeof Pn);
     return CART_UKF_OK;
@@ -244,23 +257,12 @@ int cart_ukf_update_encoder_nis(cart_ukf_t *s, const double *z, double *nis_out)
     if (!cart_ukf_finite(xs, 3u) || !cart_ukf_finite(Ps, 6u)) {
         return CART_UKF_NON_FINITE;
     }
-    /* commit only a positive definite P: the pivots of its Cholesky factorization */
-    const double Lcd0 = Ps[0];
-    if (!isfinite(Lcd0)) { return CART_UKF_NON_FINITE; }
-    if (!(Lcd0 > 0.0)) { return CART_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc0_0 = sqrt(Lcd0);
-    const double Lci0 = (1.0/Lc0_0);
-    const double Lc1_0 = Lci0*Ps[1];
-    const double Lc2_0 = Lci0*Ps[2];
-    const double Lcd1 = -(Lc1_0*Lc1_0) + Ps[3];
-    if (!isfinite(Lcd1)) { return CART_UKF_NON_FINITE; }
-    if (!(Lcd1 > 0.0)) { return CART_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc1_1 = sqrt(Lcd1);
-    const double Lci1 = (1.0/Lc1_1);
-    const double Lc2_1 = Lci1*(-Lc1_0*Lc2_0 + Ps[4]);
-    const double Lcd2 = -(Lc2_0*Lc2_0) - (Lc2_1*Lc2_1) + Ps[5];
-    if (!isfinite(Lcd2)) { return CART_UKF_NON_FINITE; }
-    if (!(Lcd2 > 0.0)) { return CART_UKF_NOT_POSITIVE_DEFINITE; }
+    {
+        const int st = cart_ukf_commit_pd(Ps);
+        if (st != CART_UKF_OK) {
+            return st;
+        }
+    }
     memcpy(s->x, xs, sizeof xs);
     memcpy(s->P, Ps, sizeof Ps);
     return CART_UKF_OK;
@@ -330,23 +332,12 @@ int cart_ukf_update_speed_nis(cart_ukf_t *s, const double *z, double *nis_out)
     if (!cart_ukf_finite(xs, 3u) || !cart_ukf_finite(Ps, 6u)) {
         return CART_UKF_NON_FINITE;
     }
-    /* commit only a positive definite P: the pivots of its Cholesky factorization */
-    const double Lcd0 = Ps[0];
-    if (!isfinite(Lcd0)) { return CART_UKF_NON_FINITE; }
-    if (!(Lcd0 > 0.0)) { return CART_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc0_0 = sqrt(Lcd0);
-    const double Lci0 = (1.0/Lc0_0);
-    const double Lc1_0 = Lci0*Ps[1];
-    const double Lc2_0 = Lci0*Ps[2];
-    const double Lcd1 = -(Lc1_0*Lc1_0) + Ps[3];
-    if (!isfinite(Lcd1)) { return CART_UKF_NON_FINITE; }
-    if (!(Lcd1 > 0.0)) { return CART_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc1_1 = sqrt(Lcd1);
-    const double Lci1 = (1.0/Lc1_1);
-    const double Lc2_1 = Lci1*(-Lc1_0*Lc2_0 + Ps[4]);
-    const double Lcd2 = -(Lc2_0*Lc2_0) - (Lc2_1*Lc2_1) + Ps[5];
-    if (!isfinite(Lcd2)) { return CART_UKF_NON_FINITE; }
-    if (!(Lcd2 > 0.0)) { return CART_UKF_NOT_POSITIVE_DEFINITE; }
+    {
+        const int st = cart_ukf_commit_pd(Ps);
+        if (st != CART_UKF_OK) {
+            return st;
+        }
+    }
     memcpy(s->x, xs, sizeof xs);
     memcpy(s->P, Ps, sizeof Ps);
     return CART_UKF_OK;

@@ -64,6 +64,192 @@ static int nav_ukf_posdef(const double *P)
     return 1;
 }
 
+/* OK when the packed covariance P is positive definite (every pivot of its Cholesky factorization
+   finite and > 0; a positive diagonal is not enough), else the refusal code. Unrolled, and one
+   copy serves every commit. */
+static int nav_ukf_commit_pd(const double *P)
+{
+    const double Lcd0 = P[0];
+    if (!isfinite(Lcd0)) { return NAV_UKF_NON_FINITE; }
+    if (!(Lcd0 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
+    const double Lc0_0 = sqrt(Lcd0);
+    const double Lci0 = (1.0/Lc0_0);
+    const double Lc1_0 = Lci0*P[1];
+    const double Lc2_0 = Lci0*P[2];
+    const double Lc3_0 = Lci0*P[3];
+    const double Lc4_0 = Lci0*P[4];
+    const double Lc5_0 = Lci0*P[5];
+    const double Lc6_0 = Lci0*P[6];
+    const double Lc7_0 = Lci0*P[7];
+    const double Lc8_0 = Lci0*P[8];
+    const double Lc9_0 = Lci0*P[9];
+    const double Lc10_0 = Lci0*P[10];
+    const double Lc11_0 = Lci0*P[11];
+    const double Lc12_0 = Lci0*P[12];
+    const double Lc13_0 = Lci0*P[13];
+    const double Lc14_0 = Lci0*P[14];
+    const double Lcd1 = -(Lc1_0*Lc1_0) + P[15];
+    if (!isfinite(Lcd1)) { return NAV_UKF_NON_FINITE; }
+    if (!(Lcd1 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
+    const double Lc1_1 = sqrt(Lcd1);
+    const double Lci1 = (1.0/Lc1_1);
+    const double Lc2_1 = Lci1*(-Lc1_0*Lc2_0 + P[16]);
+    const double Lc3_1 = Lci1*(-Lc1_0*Lc3_0 + P[17]);
+    const double Lc4_1 = Lci1*(-Lc1_0*Lc4_0 + P[18]);
+    const double Lc5_1 = Lci1*(-Lc1_0*Lc5_0 + P[19]);
+    const double Lc6_1 = Lci1*(-Lc1_0*Lc6_0 + P[20]);
+    const double Lc7_1 = Lci1*(-Lc1_0*Lc7_0 + P[21]);
+    const double Lc8_1 = Lci1*(-Lc1_0*Lc8_0 + P[22]);
+    const double Lc9_1 = Lci1*(-Lc1_0*Lc9_0 + P[23]);
+    const double Lc10_1 = Lci1*(-Lc10_0*Lc1_0 + P[24]);
+    const double Lc11_1 = Lci1*(-Lc11_0*Lc1_0 + P[25]);
+    const double Lc12_1 = Lci1*(-Lc12_0*Lc1_0 + P[26]);
+    const double Lc13_1 = Lci1*(-Lc13_0*Lc1_0 + P[27]);
+    const double Lc14_1 = Lci1*(-Lc14_0*Lc1_0 + P[28]);
+    const double Lcd2 = -(Lc2_0*Lc2_0) - (Lc2_1*Lc2_1) + P[29];
+    if (!isfinite(Lcd2)) { return NAV_UKF_NON_FINITE; }
+    if (!(Lcd2 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
+    const double Lc2_2 = sqrt(Lcd2);
+    const double Lci2 = (1.0/Lc2_2);
+    const double Lc3_2 = Lci2*(-Lc2_0*Lc3_0 - Lc2_1*Lc3_1 + P[30]);
+    const double Lc4_2 = Lci2*(-Lc2_0*Lc4_0 - Lc2_1*Lc4_1 + P[31]);
+    const double Lc5_2 = Lci2*(-Lc2_0*Lc5_0 - Lc2_1*Lc5_1 + P[32]);
+    const double Lc6_2 = Lci2*(-Lc2_0*Lc6_0 - Lc2_1*Lc6_1 + P[33]);
+    const double Lc7_2 = Lci2*(-Lc2_0*Lc7_0 - Lc2_1*Lc7_1 + P[34]);
+    const double Lc8_2 = Lci2*(-Lc2_0*Lc8_0 - Lc2_1*Lc8_1 + P[35]);
+    const double Lc9_2 = Lci2*(-Lc2_0*Lc9_0 - Lc2_1*Lc9_1 + P[36]);
+    const double Lc10_2 = Lci2*(-Lc10_0*Lc2_0 - Lc10_1*Lc2_1 + P[37]);
+    const double Lc11_2 = Lci2*(-Lc11_0*Lc2_0 - Lc11_1*Lc2_1 + P[38]);
+    const double Lc12_2 = Lci2*(-Lc12_0*Lc2_0 - Lc12_1*Lc2_1 + P[39]);
+    const double Lc13_2 = Lci2*(-Lc13_0*Lc2_0 - Lc13_1*Lc2_1 + P[40]);
+    const double Lc14_2 = Lci2*(-Lc14_0*Lc2_0 - Lc14_1*Lc2_1 + P[41]);
+    const double Lcd3 = -(Lc3_0*Lc3_0) - (Lc3_1*Lc3_1) - (Lc3_2*Lc3_2) + P[42];
+    if (!isfinite(Lcd3)) { return NAV_UKF_NON_FINITE; }
+    if (!(Lcd3 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
+    const double Lc3_3 = sqrt(Lcd3);
+    const double Lci3 = (1.0/Lc3_3);
+    const double Lc4_3 = Lci3*(-Lc3_0*Lc4_0 - Lc3_1*Lc4_1 - Lc3_2*Lc4_2 + P[43]);
+    const double Lc5_3 = Lci3*(-Lc3_0*Lc5_0 - Lc3_1*Lc5_1 - Lc3_2*Lc5_2 + P[44]);
+    const double Lc6_3 = Lci3*(-Lc3_0*Lc6_0 - Lc3_1*Lc6_1 - Lc3_2*Lc6_2 + P[45]);
+    const double Lc7_3 = Lci3*(-Lc3_0*Lc7_0 - Lc3_1*Lc7_1 - Lc3_2*Lc7_2 + P[46]);
+    const double Lc8_3 = Lci3*(-Lc3_0*Lc8_0 - Lc3_1*Lc8_1 - Lc3_2*Lc8_2 + P[47]);
+    const double Lc9_3 = Lci3*(-Lc3_0*Lc9_0 - Lc3_1*Lc9_1 - Lc3_2*Lc9_2 + P[48]);
+    const double Lc10_3 = Lci3*(-Lc10_0*Lc3_0 - Lc10_1*Lc3_1 - Lc10_2*Lc3_2 + P[49]);
+    const double Lc11_3 = Lci3*(-Lc11_0*Lc3_0 - Lc11_1*Lc3_1 - Lc11_2*Lc3_2 + P[50]);
+    const double Lc12_3 = Lci3*(-Lc12_0*Lc3_0 - Lc12_1*Lc3_1 - Lc12_2*Lc3_2 + P[51]);
+    const double Lc13_3 = Lci3*(-Lc13_0*Lc3_0 - Lc13_1*Lc3_1 - Lc13_2*Lc3_2 + P[52]);
+    const double Lc14_3 = Lci3*(-Lc14_0*Lc3_0 - Lc14_1*Lc3_1 - Lc14_2*Lc3_2 + P[53]);
+    const double Lcd4 = -(Lc4_0*Lc4_0) - (Lc4_1*Lc4_1) - (Lc4_2*Lc4_2) - (Lc4_3*Lc4_3) + P[54];
+    if (!isfinite(Lcd4)) { return NAV_UKF_NON_FINITE; }
+    if (!(Lcd4 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
+    const double Lc4_4 = sqrt(Lcd4);
+    const double Lci4 = (1.0/Lc4_4);
+    const double Lc5_4 = Lci4*(-Lc4_0*Lc5_0 - Lc4_1*Lc5_1 - Lc4_2*Lc5_2 - Lc4_3*Lc5_3 + P[55]);
+    const double Lc6_4 = Lci4*(-Lc4_0*Lc6_0 - Lc4_1*Lc6_1 - Lc4_2*Lc6_2 - Lc4_3*Lc6_3 + P[56]);
+    const double Lc7_4 = Lci4*(-Lc4_0*Lc7_0 - Lc4_1*Lc7_1 - Lc4_2*Lc7_2 - Lc4_3*Lc7_3 + P[57]);
+    const double Lc8_4 = Lci4*(-Lc4_0*Lc8_0 - Lc4_1*Lc8_1 - Lc4_2*Lc8_2 - Lc4_3*Lc8_3 + P[58]);
+    const double Lc9_4 = Lci4*(-Lc4_0*Lc9_0 - Lc4_1*Lc9_1 - Lc4_2*Lc9_2 - Lc4_3*Lc9_3 + P[59]);
+    const double Lc10_4 = Lci4*(-Lc10_0*Lc4_0 - Lc10_1*Lc4_1 - Lc10_2*Lc4_2 - Lc10_3*Lc4_3 + P[60]);
+    const double Lc11_4 = Lci4*(-Lc11_0*Lc4_0 - Lc11_1*Lc4_1 - Lc11_2*Lc4_2 - Lc11_3*Lc4_3 + P[61]);
+    const double Lc12_4 = Lci4*(-Lc12_0*Lc4_0 - Lc12_1*Lc4_1 - Lc12_2*Lc4_2 - Lc12_3*Lc4_3 + P[62]);
+    const double Lc13_4 = Lci4*(-Lc13_0*Lc4_0 - Lc13_1*Lc4_1 - Lc13_2*Lc4_2 - Lc13_3*Lc4_3 + P[63]);
+    const double Lc14_4 = Lci4*(-Lc14_0*Lc4_0 - Lc14_1*Lc4_1 - Lc14_2*Lc4_2 - Lc14_3*Lc4_3 + P[64]);
+    const double Lcd5 = -(Lc5_0*Lc5_0) - (Lc5_1*Lc5_1) - (Lc5_2*Lc5_2) - (Lc5_3*Lc5_3) - (Lc5_4*Lc5_4) + P[65];
+    if (!isfinite(Lcd5)) { return NAV_UKF_NON_FINITE; }
+    if (!(Lcd5 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
+    const double Lc5_5 = sqrt(Lcd5);
+    const double Lci5 = (1.0/Lc5_5);
+    const double Lc6_5 = Lci5*(-Lc5_0*Lc6_0 - Lc5_1*Lc6_1 - Lc5_2*Lc6_2 - Lc5_3*Lc6_3 - Lc5_4*Lc6_4 + P[66]);
+    const double Lc7_5 = Lci5*(-Lc5_0*Lc7_0 - Lc5_1*Lc7_1 - Lc5_2*Lc7_2 - Lc5_3*Lc7_3 - Lc5_4*Lc7_4 + P[67]);
+    const double Lc8_5 = Lci5*(-Lc5_0*Lc8_0 - Lc5_1*Lc8_1 - Lc5_2*Lc8_2 - Lc5_3*Lc8_3 - Lc5_4*Lc8_4 + P[68]);
+    const double Lc9_5 = Lci5*(-Lc5_0*Lc9_0 - Lc5_1*Lc9_1 - Lc5_2*Lc9_2 - Lc5_3*Lc9_3 - Lc5_4*Lc9_4 + P[69]);
+    const double Lc10_5 = Lci5*(-Lc10_0*Lc5_0 - Lc10_1*Lc5_1 - Lc10_2*Lc5_2 - Lc10_3*Lc5_3 - Lc10_4*Lc5_4 + P[70]);
+    const double Lc11_5 = Lci5*(-Lc11_0*Lc5_0 - Lc11_1*Lc5_1 - Lc11_2*Lc5_2 - Lc11_3*Lc5_3 - Lc11_4*Lc5_4 + P[71]);
+    const double Lc12_5 = Lci5*(-Lc12_0*Lc5_0 - Lc12_1*Lc5_1 - Lc12_2*Lc5_2 - Lc12_3*Lc5_3 - Lc12_4*Lc5_4 + P[72]);
+    const double Lc13_5 = Lci5*(-Lc13_0*Lc5_0 - Lc13_1*Lc5_1 - Lc13_2*Lc5_2 - Lc13_3*Lc5_3 - Lc13_4*Lc5_4 + P[73]);
+    const double Lc14_5 = Lci5*(-Lc14_0*Lc5_0 - Lc14_1*Lc5_1 - Lc14_2*Lc5_2 - Lc14_3*Lc5_3 - Lc14_4*Lc5_4 + P[74]);
+    const double Lcd6 = -(Lc6_0*Lc6_0) - (Lc6_1*Lc6_1) - (Lc6_2*Lc6_2) - (Lc6_3*Lc6_3) - (Lc6_4*Lc6_4) - (Lc6_5*Lc6_5) + P[75];
+    if (!isfinite(Lcd6)) { return NAV_UKF_NON_FINITE; }
+    if (!(Lcd6 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
+    const double Lc6_6 = sqrt(Lcd6);
+    const double Lci6 = (1.0/Lc6_6);
+    const double Lc7_6 = Lci6*(-Lc6_0*Lc7_0 - Lc6_1*Lc7_1 - Lc6_2*Lc7_2 - Lc6_3*Lc7_3 - Lc6_4*Lc7_4 - Lc6_5*Lc7_5 + P[76]);
+    const double Lc8_6 = Lci6*(-Lc6_0*Lc8_0 - Lc6_1*Lc8_1 - Lc6_2*Lc8_2 - Lc6_3*Lc8_3 - Lc6_4*Lc8_4 - Lc6_5*Lc8_5 + P[77]);
+    const double Lc9_6 = Lci6*(-Lc6_0*Lc9_0 - Lc6_1*Lc9_1 - Lc6_2*Lc9_2 - Lc6_3*Lc9_3 - Lc6_4*Lc9_4 - Lc6_5*Lc9_5 + P[78]);
+    const double Lc10_6 = Lci6*(-Lc10_0*Lc6_0 - Lc10_1*Lc6_1 - Lc10_2*Lc6_2 - Lc10_3*Lc6_3 - Lc10_4*Lc6_4 - Lc10_5*Lc6_5 + P[79]);
+    const double Lc11_6 = Lci6*(-Lc11_0*Lc6_0 - Lc11_1*Lc6_1 - Lc11_2*Lc6_2 - Lc11_3*Lc6_3 - Lc11_4*Lc6_4 - Lc11_5*Lc6_5 + P[80]);
+    const double Lc12_6 = Lci6*(-Lc12_0*Lc6_0 - Lc12_1*Lc6_1 - Lc12_2*Lc6_2 - Lc12_3*Lc6_3 - Lc12_4*Lc6_4 - Lc12_5*Lc6_5 + P[81]);
+    const double Lc13_6 = Lci6*(-Lc13_0*Lc6_0 - Lc13_1*Lc6_1 - Lc13_2*Lc6_2 - Lc13_3*Lc6_3 - Lc13_4*Lc6_4 - Lc13_5*Lc6_5 + P[82]);
+    const double Lc14_6 = Lci6*(-Lc14_0*Lc6_0 - Lc14_1*Lc6_1 - Lc14_2*Lc6_2 - Lc14_3*Lc6_3 - Lc14_4*Lc6_4 - Lc14_5*Lc6_5 + P[83]);
+    const double Lcd7 = -(Lc7_0*Lc7_0) - (Lc7_1*Lc7_1) - (Lc7_2*Lc7_2) - (Lc7_3*Lc7_3) - (Lc7_4*Lc7_4) - (Lc7_5*Lc7_5) - (Lc7_6*Lc7_6) + P[84];
+    if (!isfinite(Lcd7)) { return NAV_UKF_NON_FINITE; }
+    if (!(Lcd7 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
+    const double Lc7_7 = sqrt(Lcd7);
+    const double Lci7 = (1.0/Lc7_7);
+    const double Lc8_7 = Lci7*(-Lc7_0*Lc8_0 - Lc7_1*Lc8_1 - Lc7_2*Lc8_2 - Lc7_3*Lc8_3 - Lc7_4*Lc8_4 - Lc7_5*Lc8_5 - Lc7_6*Lc8_6 + P[85]);
+    const double Lc9_7 = Lci7*(-Lc7_0*Lc9_0 - Lc7_1*Lc9_1 - Lc7_2*Lc9_2 - Lc7_3*Lc9_3 - Lc7_4*Lc9_4 - Lc7_5*Lc9_5 - Lc7_6*Lc9_6 + P[86]);
+    const double Lc10_7 = Lci7*(-Lc10_0*Lc7_0 - Lc10_1*Lc7_1 - Lc10_2*Lc7_2 - Lc10_3*Lc7_3 - Lc10_4*Lc7_4 - Lc10_5*Lc7_5 - Lc10_6*Lc7_6 + P[87]);
+    const double Lc11_7 = Lci7*(-Lc11_0*Lc7_0 - Lc11_1*Lc7_1 - Lc11_2*Lc7_2 - Lc11_3*Lc7_3 - Lc11_4*Lc7_4 - Lc11_5*Lc7_5 - Lc11_6*Lc7_6 + P[88]);
+    const double Lc12_7 = Lci7*(-Lc12_0*Lc7_0 - Lc12_1*Lc7_1 - Lc12_2*Lc7_2 - Lc12_3*Lc7_3 - Lc12_4*Lc7_4 - Lc12_5*Lc7_5 - Lc12_6*Lc7_6 + P[89]);
+    const double Lc13_7 = Lci7*(-Lc13_0*Lc7_0 - Lc13_1*Lc7_1 - Lc13_2*Lc7_2 - Lc13_3*Lc7_3 - Lc13_4*Lc7_4 - Lc13_5*Lc7_5 - Lc13_6*Lc7_6 + P[90]);
+    const double Lc14_7 = Lci7*(-Lc14_0*Lc7_0 - Lc14_1*Lc7_1 - Lc14_2*Lc7_2 - Lc14_3*Lc7_3 - Lc14_4*Lc7_4 - Lc14_5*Lc7_5 - Lc14_6*Lc7_6 + P[91]);
+    const double Lcd8 = -(Lc8_0*Lc8_0) - (Lc8_1*Lc8_1) - (Lc8_2*Lc8_2) - (Lc8_3*Lc8_3) - (Lc8_4*Lc8_4) - (Lc8_5*Lc8_5) - (Lc8_6*Lc8_6) - (Lc8_7*Lc8_7) + P[92];
+    if (!isfinite(Lcd8)) { return NAV_UKF_NON_FINITE; }
+    if (!(Lcd8 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
+    const double Lc8_8 = sqrt(Lcd8);
+    const double Lci8 = (1.0/Lc8_8);
+    const double Lc9_8 = Lci8*(-Lc8_0*Lc9_0 - Lc8_1*Lc9_1 - Lc8_2*Lc9_2 - Lc8_3*Lc9_3 - Lc8_4*Lc9_4 - Lc8_5*Lc9_5 - Lc8_6*Lc9_6 - Lc8_7*Lc9_7 + P[93]);
+    const double Lc10_8 = Lci8*(-Lc10_0*Lc8_0 - Lc10_1*Lc8_1 - Lc10_2*Lc8_2 - Lc10_3*Lc8_3 - Lc10_4*Lc8_4 - Lc10_5*Lc8_5 - Lc10_6*Lc8_6 - Lc10_7*Lc8_7 + P[94]);
+    const double Lc11_8 = Lci8*(-Lc11_0*Lc8_0 - Lc11_1*Lc8_1 - Lc11_2*Lc8_2 - Lc11_3*Lc8_3 - Lc11_4*Lc8_4 - Lc11_5*Lc8_5 - Lc11_6*Lc8_6 - Lc11_7*Lc8_7 + P[95]);
+    const double Lc12_8 = Lci8*(-Lc12_0*Lc8_0 - Lc12_1*Lc8_1 - Lc12_2*Lc8_2 - Lc12_3*Lc8_3 - Lc12_4*Lc8_4 - Lc12_5*Lc8_5 - Lc12_6*Lc8_6 - Lc12_7*Lc8_7 + P[96]);
+    const double Lc13_8 = Lci8*(-Lc13_0*Lc8_0 - Lc13_1*Lc8_1 - Lc13_2*Lc8_2 - Lc13_3*Lc8_3 - Lc13_4*Lc8_4 - Lc13_5*Lc8_5 - Lc13_6*Lc8_6 - Lc13_7*Lc8_7 + P[97]);
+    const double Lc14_8 = Lci8*(-Lc14_0*Lc8_0 - Lc14_1*Lc8_1 - Lc14_2*Lc8_2 - Lc14_3*Lc8_3 - Lc14_4*Lc8_4 - Lc14_5*Lc8_5 - Lc14_6*Lc8_6 - Lc14_7*Lc8_7 + P[98]);
+    const double Lcd9 = -(Lc9_0*Lc9_0) - (Lc9_1*Lc9_1) - (Lc9_2*Lc9_2) - (Lc9_3*Lc9_3) - (Lc9_4*Lc9_4) - (Lc9_5*Lc9_5) - (Lc9_6*Lc9_6) - (Lc9_7*Lc9_7) - (Lc9_8*Lc9_8) + P[99];
+    if (!isfinite(Lcd9)) { return NAV_UKF_NON_FINITE; }
+    if (!(Lcd9 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
+    const double Lc9_9 = sqrt(Lcd9);
+    const double Lci9 = (1.0/Lc9_9);
+    const double Lc10_9 = Lci9*(-Lc10_0*Lc9_0 - Lc10_1*Lc9_1 - Lc10_2*Lc9_2 - Lc10_3*Lc9_3 - Lc10_4*Lc9_4 - Lc10_5*Lc9_5 - Lc10_6*Lc9_6 - Lc10_7*Lc9_7 - Lc10_8*Lc9_8 + P[100]);
+    const double Lc11_9 = Lci9*(-Lc11_0*Lc9_0 - Lc11_1*Lc9_1 - Lc11_2*Lc9_2 - Lc11_3*Lc9_3 - Lc11_4*Lc9_4 - Lc11_5*Lc9_5 - Lc11_6*Lc9_6 - Lc11_7*Lc9_7 - Lc11_8*Lc9_8 + P[101]);
+    const double Lc12_9 = Lci9*(-Lc12_0*Lc9_0 - Lc12_1*Lc9_1 - Lc12_2*Lc9_2 - Lc12_3*Lc9_3 - Lc12_4*Lc9_4 - Lc12_5*Lc9_5 - Lc12_6*Lc9_6 - Lc12_7*Lc9_7 - Lc12_8*Lc9_8 + P[102]);
+    const double Lc13_9 = Lci9*(-Lc13_0*Lc9_0 - Lc13_1*Lc9_1 - Lc13_2*Lc9_2 - Lc13_3*Lc9_3 - Lc13_4*Lc9_4 - Lc13_5*Lc9_5 - Lc13_6*Lc9_6 - Lc13_7*Lc9_7 - Lc13_8*Lc9_8 + P[103]);
+    const double Lc14_9 = Lci9*(-Lc14_0*Lc9_0 - Lc14_1*Lc9_1 - Lc14_2*Lc9_2 - Lc14_3*Lc9_3 - Lc14_4*Lc9_4 - Lc14_5*Lc9_5 - Lc14_6*Lc9_6 - Lc14_7*Lc9_7 - Lc14_8*Lc9_8 + P[104]);
+    const double Lcd10 = -(Lc10_0*Lc10_0) - (Lc10_1*Lc10_1) - (Lc10_2*Lc10_2) - (Lc10_3*Lc10_3) - (Lc10_4*Lc10_4) - (Lc10_5*Lc10_5) - (Lc10_6*Lc10_6) - (Lc10_7*Lc10_7) - (Lc10_8*Lc10_8) - (Lc10_9*Lc10_9) + P[105];
+    if (!isfinite(Lcd10)) { return NAV_UKF_NON_FINITE; }
+    if (!(Lcd10 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
+    const double Lc10_10 = sqrt(Lcd10);
+    const double Lci10 = (1.0/Lc10_10);
+    const double Lc11_10 = Lci10*(-Lc10_0*Lc11_0 - Lc10_1*Lc11_1 - Lc10_2*Lc11_2 - Lc10_3*Lc11_3 - Lc10_4*Lc11_4 - Lc10_5*Lc11_5 - Lc10_6*Lc11_6 - Lc10_7*Lc11_7 - Lc10_8*Lc11_8 - Lc10_9*Lc11_9 + P[106]);
+    const double Lc12_10 = Lci10*(-Lc10_0*Lc12_0 - Lc10_1*Lc12_1 - Lc10_2*Lc12_2 - Lc10_3*Lc12_3 - Lc10_4*Lc12_4 - Lc10_5*Lc12_5 - Lc10_6*Lc12_6 - Lc10_7*Lc12_7 - Lc10_8*Lc12_8 - Lc10_9*Lc12_9 + P[107]);
+    const double Lc13_10 = Lci10*(-Lc10_0*Lc13_0 - Lc10_1*Lc13_1 - Lc10_2*Lc13_2 - Lc10_3*Lc13_3 - Lc10_4*Lc13_4 - Lc10_5*Lc13_5 - Lc10_6*Lc13_6 - Lc10_7*Lc13_7 - Lc10_8*Lc13_8 - Lc10_9*Lc13_9 + P[108]);
+    const double Lc14_10 = Lci10*(-Lc10_0*Lc14_0 - Lc10_1*Lc14_1 - Lc10_2*Lc14_2 - Lc10_3*Lc14_3 - Lc10_4*Lc14_4 - Lc10_5*Lc14_5 - Lc10_6*Lc14_6 - Lc10_7*Lc14_7 - Lc10_8*Lc14_8 - Lc10_9*Lc14_9 + P[109]);
+    const double Lcd11 = -(Lc11_0*Lc11_0) - (Lc11_1*Lc11_1) - (Lc11_10*Lc11_10) - (Lc11_2*Lc11_2) - (Lc11_3*Lc11_3) - (Lc11_4*Lc11_4) - (Lc11_5*Lc11_5) - (Lc11_6*Lc11_6) - (Lc11_7*Lc11_7) - (Lc11_8*Lc11_8) - (Lc11_9*Lc11_9) + P[110];
+    if (!isfinite(Lcd11)) { return NAV_UKF_NON_FINITE; }
+    if (!(Lcd11 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
+    const double Lc11_11 = sqrt(Lcd11);
+    const double Lci11 = (1.0/Lc11_11);
+    const double Lc12_11 = Lci11*(-Lc11_0*Lc12_0 - Lc11_1*Lc12_1 - Lc11_10*Lc12_10 - Lc11_2*Lc12_2 - Lc11_3*Lc12_3 - Lc11_4*Lc12_4 - Lc11_5*Lc12_5 - Lc11_6*Lc12_6 - Lc11_7*Lc12_7 - Lc11_8*Lc12_8 - Lc11_9*Lc12_9 + P[111]);
+    const double Lc13_11 = Lci11*(-Lc11_0*Lc13_0 - Lc11_1*Lc13_1 - Lc11_10*Lc13_10 - Lc11_2*Lc13_2 - Lc11_3*Lc13_3 - Lc11_4*Lc13_4 - Lc11_5*Lc13_5 - Lc11_6*Lc13_6 - Lc11_7*Lc13_7 - Lc11_8*Lc13_8 - Lc11_9*Lc13_9 + P[112]);
+    const double Lc14_11 = Lci11*(-Lc11_0*Lc14_0 - Lc11_1*Lc14_1 - Lc11_10*Lc14_10 - Lc11_2*Lc14_2 - Lc11_3*Lc14_3 - Lc11_4*Lc14_4 - Lc11_5*Lc14_5 - Lc11_6*Lc14_6 - Lc11_7*Lc14_7 - Lc11_8*Lc14_8 - Lc11_9*Lc14_9 + P[113]);
+    const double Lcd12 = -(Lc12_0*Lc12_0) - (Lc12_1*Lc12_1) - (Lc12_10*Lc12_10) - (Lc12_11*Lc12_11) - (Lc12_2*Lc12_2) - (Lc12_3*Lc12_3) - (Lc12_4*Lc12_4) - (Lc12_5*Lc12_5) - (Lc12_6*Lc12_6) - (Lc12_7*Lc12_7) - (Lc12_8*Lc12_8) - (Lc12_9*Lc12_9) + P[114];
+    if (!isfinite(Lcd12)) { return NAV_UKF_NON_FINITE; }
+    if (!(Lcd12 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
+    const double Lc12_12 = sqrt(Lcd12);
+    const double Lci12 = (1.0/Lc12_12);
+    const double Lc13_12 = Lci12*(-Lc12_0*Lc13_0 - Lc12_1*Lc13_1 - Lc12_10*Lc13_10 - Lc12_11*Lc13_11 - Lc12_2*Lc13_2 - Lc12_3*Lc13_3 - Lc12_4*Lc13_4 - Lc12_5*Lc13_5 - Lc12_6*Lc13_6 - Lc12_7*Lc13_7 - Lc12_8*Lc13_8 - Lc12_9*Lc13_9 + P[115]);
+    const double Lc14_12 = Lci12*(-Lc12_0*Lc14_0 - Lc12_1*Lc14_1 - Lc12_10*Lc14_10 - Lc12_11*Lc14_11 - Lc12_2*Lc14_2 - Lc12_3*Lc14_3 - Lc12_4*Lc14_4 - Lc12_5*Lc14_5 - Lc12_6*Lc14_6 - Lc12_7*Lc14_7 - Lc12_8*Lc14_8 - Lc12_9*Lc14_9 + P[116]);
+    const double Lcd13 = -(Lc13_0*Lc13_0) - (Lc13_1*Lc13_1) - (Lc13_10*Lc13_10) - (Lc13_11*Lc13_11) - (Lc13_12*Lc13_12) - (Lc13_2*Lc13_2) - (Lc13_3*Lc13_3) - (Lc13_4*Lc13_4) - (Lc13_5*Lc13_5) - (Lc13_6*Lc13_6) - (Lc13_7*Lc13_7) - (Lc13_8*Lc13_8) - (Lc13_9*Lc13_9) + P[117];
+    if (!isfinite(Lcd13)) { return NAV_UKF_NON_FINITE; }
+    if (!(Lcd13 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
+    const double Lc13_13 = sqrt(Lcd13);
+    const double Lci13 = (1.0/Lc13_13);
+    const double Lc14_13 = Lci13*(-Lc13_0*Lc14_0 - Lc13_1*Lc14_1 - Lc13_10*Lc14_10 - Lc13_11*Lc14_11 - Lc13_12*Lc14_12 - Lc13_2*Lc14_2 - Lc13_3*Lc14_3 - Lc13_4*Lc14_4 - Lc13_5*Lc14_5 - Lc13_6*Lc14_6 - Lc13_7*Lc14_7 - Lc13_8*Lc14_8 - Lc13_9*Lc14_9 + P[118]);
+    const double Lcd14 = -(Lc14_0*Lc14_0) - (Lc14_1*Lc14_1) - (Lc14_10*Lc14_10) - (Lc14_11*Lc14_11) - (Lc14_12*Lc14_12) - (Lc14_13*Lc14_13) - (Lc14_2*Lc14_2) - (Lc14_3*Lc14_3) - (Lc14_4*Lc14_4) - (Lc14_5*Lc14_5) - (Lc14_6*Lc14_6) - (Lc14_7*Lc14_7) - (Lc14_8*Lc14_8) - (Lc14_9*Lc14_9) + P[119];
+    if (!isfinite(Lcd14)) { return NAV_UKF_NON_FINITE; }
+    if (!(Lcd14 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
+    return NAV_UKF_OK;
+}
+
 void nav_ukf_init(nav_ukf_t *s)
 {
     s->x[0] = 0.0;
@@ -1734,185 +1920,12 @@ int nav_ukf_predict(nav_ukf_t *s, const double *u, double dt)
     if (!nav_ukf_finite(xn, 15u) || !nav_ukf_finite(Pn, 120u)) {
         return NAV_UKF_NON_FINITE;
     }
-    /* commit only a positive definite P: the pivots of its Cholesky factorization */
-    const double Lcd0 = Pn[0];
-    if (!isfinite(Lcd0)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd0 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc0_0 = sqrt(Lcd0);
-    const double Lci0 = (1.0/Lc0_0);
-    const double Lc1_0 = Lci0*Pn[1];
-    const double Lc2_0 = Lci0*Pn[2];
-    const double Lc3_0 = Lci0*Pn[3];
-    const double Lc4_0 = Lci0*Pn[4];
-    const double Lc5_0 = Lci0*Pn[5];
-    const double Lc6_0 = Lci0*Pn[6];
-    const double Lc7_0 = Lci0*Pn[7];
-    const double Lc8_0 = Lci0*Pn[8];
-    const double Lc9_0 = Lci0*Pn[9];
-    const double Lc10_0 = Lci0*Pn[10];
-    const double Lc11_0 = Lci0*Pn[11];
-    const double Lc12_0 = Lci0*Pn[12];
-    const double Lc13_0 = Lci0*Pn[13];
-    const double Lc14_0 = Lci0*Pn[14];
-    const double Lcd1 = -(Lc1_0*Lc1_0) + Pn[15];
-    if (!isfinite(Lcd1)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd1 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc1_1 = sqrt(Lcd1);
-    const double Lci1 = (1.0/Lc1_1);
-    const double Lc2_1 = Lci1*(-Lc1_0*Lc2_0 + Pn[16]);
-    const double Lc3_1 = Lci1*(-Lc1_0*Lc3_0 + Pn[17]);
-    const double Lc4_1 = Lci1*(-Lc1_0*Lc4_0 + Pn[18]);
-    const double Lc5_1 = Lci1*(-Lc1_0*Lc5_0 + Pn[19]);
-    const double Lc6_1 = Lci1*(-Lc1_0*Lc6_0 + Pn[20]);
-    const double Lc7_1 = Lci1*(-Lc1_0*Lc7_0 + Pn[21]);
-    const double Lc8_1 = Lci1*(-Lc1_0*Lc8_0 + Pn[22]);
-    const double Lc9_1 = Lci1*(-Lc1_0*Lc9_0 + Pn[23]);
-    const double Lc10_1 = Lci1*(-Lc10_0*Lc1_0 + Pn[24]);
-    const double Lc11_1 = Lci1*(-Lc11_0*Lc1_0 + Pn[25]);
-    const double Lc12_1 = Lci1*(-Lc12_0*Lc1_0 + Pn[26]);
-    const double Lc13_1 = Lci1*(-Lc13_0*Lc1_0 + Pn[27]);
-    const double Lc14_1 = Lci1*(-Lc14_0*Lc1_0 + Pn[28]);
-    const double Lcd2 = -(Lc2_0*Lc2_0) - (Lc2_1*Lc2_1) + Pn[29];
-    if (!isfinite(Lcd2)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd2 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc2_2 = sqrt(Lcd2);
-    const double Lci2 = (1.0/Lc2_2);
-    const double Lc3_2 = Lci2*(-Lc2_0*Lc3_0 - Lc2_1*Lc3_1 + Pn[30]);
-    const double Lc4_2 = Lci2*(-Lc2_0*Lc4_0 - Lc2_1*Lc4_1 + Pn[31]);
-    const double Lc5_2 = Lci2*(-Lc2_0*Lc5_0 - Lc2_1*Lc5_1 + Pn[32]);
-    const double Lc6_2 = Lci2*(-Lc2_0*Lc6_0 - Lc2_1*Lc6_1 + Pn[33]);
-    const double Lc7_2 = Lci2*(-Lc2_0*Lc7_0 - Lc2_1*Lc7_1 + Pn[34]);
-    const double Lc8_2 = Lci2*(-Lc2_0*Lc8_0 - Lc2_1*Lc8_1 + Pn[35]);
-    const double Lc9_2 = Lci2*(-Lc2_0*Lc9_0 - Lc2_1*Lc9_1 + Pn[36]);
-    const double Lc10_2 = Lci2*(-Lc10_0*Lc2_0 - Lc10_1*Lc2_1 + Pn[37]);
-    const double Lc11_2 = Lci2*(-Lc11_0*Lc2_0 - Lc11_1*Lc2_1 + Pn[38]);
-    const double Lc12_2 = Lci2*(-Lc12_0*Lc2_0 - Lc12_1*Lc2_1 + Pn[39]);
-    const double Lc13_2 = Lci2*(-Lc13_0*Lc2_0 - Lc13_1*Lc2_1 + Pn[40]);
-    const double Lc14_2 = Lci2*(-Lc14_0*Lc2_0 - Lc14_1*Lc2_1 + Pn[41]);
-    const double Lcd3 = -(Lc3_0*Lc3_0) - (Lc3_1*Lc3_1) - (Lc3_2*Lc3_2) + Pn[42];
-    if (!isfinite(Lcd3)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd3 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc3_3 = sqrt(Lcd3);
-    const double Lci3 = (1.0/Lc3_3);
-    const double Lc4_3 = Lci3*(-Lc3_0*Lc4_0 - Lc3_1*Lc4_1 - Lc3_2*Lc4_2 + Pn[43]);
-    const double Lc5_3 = Lci3*(-Lc3_0*Lc5_0 - Lc3_1*Lc5_1 - Lc3_2*Lc5_2 + Pn[44]);
-    const double Lc6_3 = Lci3*(-Lc3_0*Lc6_0 - Lc3_1*Lc6_1 - Lc3_2*Lc6_2 + Pn[45]);
-    const double Lc7_3 = Lci3*(-Lc3_0*Lc7_0 - Lc3_1*Lc7_1 - Lc3_2*Lc7_2 + Pn[46]);
-    const double Lc8_3 = Lci3*(-Lc3_0*Lc8_0 - Lc3_1*Lc8_1 - Lc3_2*Lc8_2 + Pn[47]);
-    const double Lc9_3 = Lci3*(-Lc3_0*Lc9_0 - Lc3_1*Lc9_1 - Lc3_2*Lc9_2 + Pn[48]);
-    const double Lc10_3 = Lci3*(-Lc10_0*Lc3_0 - Lc10_1*Lc3_1 - Lc10_2*Lc3_2 + Pn[49]);
-    const double Lc11_3 = Lci3*(-Lc11_0*Lc3_0 - Lc11_1*Lc3_1 - Lc11_2*Lc3_2 + Pn[50]);
-    const double Lc12_3 = Lci3*(-Lc12_0*Lc3_0 - Lc12_1*Lc3_1 - Lc12_2*Lc3_2 + Pn[51]);
-    const double Lc13_3 = Lci3*(-Lc13_0*Lc3_0 - Lc13_1*Lc3_1 - Lc13_2*Lc3_2 + Pn[52]);
-    const double Lc14_3 = Lci3*(-Lc14_0*Lc3_0 - Lc14_1*Lc3_1 - Lc14_2*Lc3_2 + Pn[53]);
-    const double Lcd4 = -(Lc4_0*Lc4_0) - (Lc4_1*Lc4_1) - (Lc4_2*Lc4_2) - (Lc4_3*Lc4_3) + Pn[54];
-    if (!isfinite(Lcd4)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd4 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc4_4 = sqrt(Lcd4);
-    const double Lci4 = (1.0/Lc4_4);
-    const double Lc5_4 = Lci4*(-Lc4_0*Lc5_0 - Lc4_1*Lc5_1 - Lc4_2*Lc5_2 - Lc4_3*Lc5_3 + Pn[55]);
-    const double Lc6_4 = Lci4*(-Lc4_0*Lc6_0 - Lc4_1*Lc6_1 - Lc4_2*Lc6_2 - Lc4_3*Lc6_3 + Pn[56]);
-    const double Lc7_4 = Lci4*(-Lc4_0*Lc7_0 - Lc4_1*Lc7_1 - Lc4_2*Lc7_2 - Lc4_3*Lc7_3 + Pn[57]);
-    const double Lc8_4 = Lci4*(-Lc4_0*Lc8_0 - Lc4_1*Lc8_1 - Lc4_2*Lc8_2 - Lc4_3*Lc8_3 + Pn[58]);
-    const double Lc9_4 = Lci4*(-Lc4_0*Lc9_0 - Lc4_1*Lc9_1 - Lc4_2*Lc9_2 - Lc4_3*Lc9_3 + Pn[59]);
-    const double Lc10_4 = Lci4*(-Lc10_0*Lc4_0 - Lc10_1*Lc4_1 - Lc10_2*Lc4_2 - Lc10_3*Lc4_3 + Pn[60]);
-    const double Lc11_4 = Lci4*(-Lc11_0*Lc4_0 - Lc11_1*Lc4_1 - Lc11_2*Lc4_2 - Lc11_3*Lc4_3 + Pn[61]);
-    const double Lc12_4 = Lci4*(-Lc12_0*Lc4_0 - Lc12_1*Lc4_1 - Lc12_2*Lc4_2 - Lc12_3*Lc4_3 + Pn[62]);
-    const double Lc13_4 = Lci4*(-Lc13_0*Lc4_0 - Lc13_1*Lc4_1 - Lc13_2*Lc4_2 - Lc13_3*Lc4_3 + Pn[63]);
-    const double Lc14_4 = Lci4*(-Lc14_0*Lc4_0 - Lc14_1*Lc4_1 - Lc14_2*Lc4_2 - Lc14_3*Lc4_3 + Pn[64]);
-    const double Lcd5 = -(Lc5_0*Lc5_0) - (Lc5_1*Lc5_1) - (Lc5_2*Lc5_2) - (Lc5_3*Lc5_3) - (Lc5_4*Lc5_4) + Pn[65];
-    if (!isfinite(Lcd5)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd5 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc5_5 = sqrt(Lcd5);
-    const double Lci5 = (1.0/Lc5_5);
-    const double Lc6_5 = Lci5*(-Lc5_0*Lc6_0 - Lc5_1*Lc6_1 - Lc5_2*Lc6_2 - Lc5_3*Lc6_3 - Lc5_4*Lc6_4 + Pn[66]);
-    const double Lc7_5 = Lci5*(-Lc5_0*Lc7_0 - Lc5_1*Lc7_1 - Lc5_2*Lc7_2 - Lc5_3*Lc7_3 - Lc5_4*Lc7_4 + Pn[67]);
-    const double Lc8_5 = Lci5*(-Lc5_0*Lc8_0 - Lc5_1*Lc8_1 - Lc5_2*Lc8_2 - Lc5_3*Lc8_3 - Lc5_4*Lc8_4 + Pn[68]);
-    const double Lc9_5 = Lci5*(-Lc5_0*Lc9_0 - Lc5_1*Lc9_1 - Lc5_2*Lc9_2 - Lc5_3*Lc9_3 - Lc5_4*Lc9_4 + Pn[69]);
-    const double Lc10_5 = Lci5*(-Lc10_0*Lc5_0 - Lc10_1*Lc5_1 - Lc10_2*Lc5_2 - Lc10_3*Lc5_3 - Lc10_4*Lc5_4 + Pn[70]);
-    const double Lc11_5 = Lci5*(-Lc11_0*Lc5_0 - Lc11_1*Lc5_1 - Lc11_2*Lc5_2 - Lc11_3*Lc5_3 - Lc11_4*Lc5_4 + Pn[71]);
-    const double Lc12_5 = Lci5*(-Lc12_0*Lc5_0 - Lc12_1*Lc5_1 - Lc12_2*Lc5_2 - Lc12_3*Lc5_3 - Lc12_4*Lc5_4 + Pn[72]);
-    const double Lc13_5 = Lci5*(-Lc13_0*Lc5_0 - Lc13_1*Lc5_1 - Lc13_2*Lc5_2 - Lc13_3*Lc5_3 - Lc13_4*Lc5_4 + Pn[73]);
-    const double Lc14_5 = Lci5*(-Lc14_0*Lc5_0 - Lc14_1*Lc5_1 - Lc14_2*Lc5_2 - Lc14_3*Lc5_3 - Lc14_4*Lc5_4 + Pn[74]);
-    const double Lcd6 = -(Lc6_0*Lc6_0) - (Lc6_1*Lc6_1) - (Lc6_2*Lc6_2) - (Lc6_3*Lc6_3) - (Lc6_4*Lc6_4) - (Lc6_5*Lc6_5) + Pn[75];
-    if (!isfinite(Lcd6)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd6 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc6_6 = sqrt(Lcd6);
-    const double Lci6 = (1.0/Lc6_6);
-    const double Lc7_6 = Lci6*(-Lc6_0*Lc7_0 - Lc6_1*Lc7_1 - Lc6_2*Lc7_2 - Lc6_3*Lc7_3 - Lc6_4*Lc7_4 - Lc6_5*Lc7_5 + Pn[76]);
-    const double Lc8_6 = Lci6*(-Lc6_0*Lc8_0 - Lc6_1*Lc8_1 - Lc6_2*Lc8_2 - Lc6_3*Lc8_3 - Lc6_4*Lc8_4 - Lc6_5*Lc8_5 + Pn[77]);
-    const double Lc9_6 = Lci6*(-Lc6_0*Lc9_0 - Lc6_1*Lc9_1 - Lc6_2*Lc9_2 - Lc6_3*Lc9_3 - Lc6_4*Lc9_4 - Lc6_5*Lc9_5 + Pn[78]);
-    const double Lc10_6 = Lci6*(-Lc10_0*Lc6_0 - Lc10_1*Lc6_1 - Lc10_2*Lc6_2 - Lc10_3*Lc6_3 - Lc10_4*Lc6_4 - Lc10_5*Lc6_5 + Pn[79]);
-    const double Lc11_6 = Lci6*(-Lc11_0*Lc6_0 - Lc11_1*Lc6_1 - Lc11_2*Lc6_2 - Lc11_3*Lc6_3 - Lc11_4*Lc6_4 - Lc11_5*Lc6_5 + Pn[80]);
-    const double Lc12_6 = Lci6*(-Lc12_0*Lc6_0 - Lc12_1*Lc6_1 - Lc12_2*Lc6_2 - Lc12_3*Lc6_3 - Lc12_4*Lc6_4 - Lc12_5*Lc6_5 + Pn[81]);
-    const double Lc13_6 = Lci6*(-Lc13_0*Lc6_0 - Lc13_1*Lc6_1 - Lc13_2*Lc6_2 - Lc13_3*Lc6_3 - Lc13_4*Lc6_4 - Lc13_5*Lc6_5 + Pn[82]);
-    const double Lc14_6 = Lci6*(-Lc14_0*Lc6_0 - Lc14_1*Lc6_1 - Lc14_2*Lc6_2 - Lc14_3*Lc6_3 - Lc14_4*Lc6_4 - Lc14_5*Lc6_5 + Pn[83]);
-    const double Lcd7 = -(Lc7_0*Lc7_0) - (Lc7_1*Lc7_1) - (Lc7_2*Lc7_2) - (Lc7_3*Lc7_3) - (Lc7_4*Lc7_4) - (Lc7_5*Lc7_5) - (Lc7_6*Lc7_6) + Pn[84];
-    if (!isfinite(Lcd7)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd7 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc7_7 = sqrt(Lcd7);
-    const double Lci7 = (1.0/Lc7_7);
-    const double Lc8_7 = Lci7*(-Lc7_0*Lc8_0 - Lc7_1*Lc8_1 - Lc7_2*Lc8_2 - Lc7_3*Lc8_3 - Lc7_4*Lc8_4 - Lc7_5*Lc8_5 - Lc7_6*Lc8_6 + Pn[85]);
-    const double Lc9_7 = Lci7*(-Lc7_0*Lc9_0 - Lc7_1*Lc9_1 - Lc7_2*Lc9_2 - Lc7_3*Lc9_3 - Lc7_4*Lc9_4 - Lc7_5*Lc9_5 - Lc7_6*Lc9_6 + Pn[86]);
-    const double Lc10_7 = Lci7*(-Lc10_0*Lc7_0 - Lc10_1*Lc7_1 - Lc10_2*Lc7_2 - Lc10_3*Lc7_3 - Lc10_4*Lc7_4 - Lc10_5*Lc7_5 - Lc10_6*Lc7_6 + Pn[87]);
-    const double Lc11_7 = Lci7*(-Lc11_0*Lc7_0 - Lc11_1*Lc7_1 - Lc11_2*Lc7_2 - Lc11_3*Lc7_3 - Lc11_4*Lc7_4 - Lc11_5*Lc7_5 - Lc11_6*Lc7_6 + Pn[88]);
-    const double Lc12_7 = Lci7*(-Lc12_0*Lc7_0 - Lc12_1*Lc7_1 - Lc12_2*Lc7_2 - Lc12_3*Lc7_3 - Lc12_4*Lc7_4 - Lc12_5*Lc7_5 - Lc12_6*Lc7_6 + Pn[89]);
-    const double Lc13_7 = Lci7*(-Lc13_0*Lc7_0 - Lc13_1*Lc7_1 - Lc13_2*Lc7_2 - Lc13_3*Lc7_3 - Lc13_4*Lc7_4 - Lc13_5*Lc7_5 - Lc13_6*Lc7_6 + Pn[90]);
-    const double Lc14_7 = Lci7*(-Lc14_0*Lc7_0 - Lc14_1*Lc7_1 - Lc14_2*Lc7_2 - Lc14_3*Lc7_3 - Lc14_4*Lc7_4 - Lc14_5*Lc7_5 - Lc14_6*Lc7_6 + Pn[91]);
-    const double Lcd8 = -(Lc8_0*Lc8_0) - (Lc8_1*Lc8_1) - (Lc8_2*Lc8_2) - (Lc8_3*Lc8_3) - (Lc8_4*Lc8_4) - (Lc8_5*Lc8_5) - (Lc8_6*Lc8_6) - (Lc8_7*Lc8_7) + Pn[92];
-    if (!isfinite(Lcd8)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd8 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc8_8 = sqrt(Lcd8);
-    const double Lci8 = (1.0/Lc8_8);
-    const double Lc9_8 = Lci8*(-Lc8_0*Lc9_0 - Lc8_1*Lc9_1 - Lc8_2*Lc9_2 - Lc8_3*Lc9_3 - Lc8_4*Lc9_4 - Lc8_5*Lc9_5 - Lc8_6*Lc9_6 - Lc8_7*Lc9_7 + Pn[93]);
-    const double Lc10_8 = Lci8*(-Lc10_0*Lc8_0 - Lc10_1*Lc8_1 - Lc10_2*Lc8_2 - Lc10_3*Lc8_3 - Lc10_4*Lc8_4 - Lc10_5*Lc8_5 - Lc10_6*Lc8_6 - Lc10_7*Lc8_7 + Pn[94]);
-    const double Lc11_8 = Lci8*(-Lc11_0*Lc8_0 - Lc11_1*Lc8_1 - Lc11_2*Lc8_2 - Lc11_3*Lc8_3 - Lc11_4*Lc8_4 - Lc11_5*Lc8_5 - Lc11_6*Lc8_6 - Lc11_7*Lc8_7 + Pn[95]);
-    const double Lc12_8 = Lci8*(-Lc12_0*Lc8_0 - Lc12_1*Lc8_1 - Lc12_2*Lc8_2 - Lc12_3*Lc8_3 - Lc12_4*Lc8_4 - Lc12_5*Lc8_5 - Lc12_6*Lc8_6 - Lc12_7*Lc8_7 + Pn[96]);
-    const double Lc13_8 = Lci8*(-Lc13_0*Lc8_0 - Lc13_1*Lc8_1 - Lc13_2*Lc8_2 - Lc13_3*Lc8_3 - Lc13_4*Lc8_4 - Lc13_5*Lc8_5 - Lc13_6*Lc8_6 - Lc13_7*Lc8_7 + Pn[97]);
-    const double Lc14_8 = Lci8*(-Lc14_0*Lc8_0 - Lc14_1*Lc8_1 - Lc14_2*Lc8_2 - Lc14_3*Lc8_3 - Lc14_4*Lc8_4 - Lc14_5*Lc8_5 - Lc14_6*Lc8_6 - Lc14_7*Lc8_7 + Pn[98]);
-    const double Lcd9 = -(Lc9_0*Lc9_0) - (Lc9_1*Lc9_1) - (Lc9_2*Lc9_2) - (Lc9_3*Lc9_3) - (Lc9_4*Lc9_4) - (Lc9_5*Lc9_5) - (Lc9_6*Lc9_6) - (Lc9_7*Lc9_7) - (Lc9_8*Lc9_8) + Pn[99];
-    if (!isfinite(Lcd9)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd9 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc9_9 = sqrt(Lcd9);
-    const double Lci9 = (1.0/Lc9_9);
-    const double Lc10_9 = Lci9*(-Lc10_0*Lc9_0 - Lc10_1*Lc9_1 - Lc10_2*Lc9_2 - Lc10_3*Lc9_3 - Lc10_4*Lc9_4 - Lc10_5*Lc9_5 - Lc10_6*Lc9_6 - Lc10_7*Lc9_7 - Lc10_8*Lc9_8 + Pn[100]);
-    const double Lc11_9 = Lci9*(-Lc11_0*Lc9_0 - Lc11_1*Lc9_1 - Lc11_2*Lc9_2 - Lc11_3*Lc9_3 - Lc11_4*Lc9_4 - Lc11_5*Lc9_5 - Lc11_6*Lc9_6 - Lc11_7*Lc9_7 - Lc11_8*Lc9_8 + Pn[101]);
-    const double Lc12_9 = Lci9*(-Lc12_0*Lc9_0 - Lc12_1*Lc9_1 - Lc12_2*Lc9_2 - Lc12_3*Lc9_3 - Lc12_4*Lc9_4 - Lc12_5*Lc9_5 - Lc12_6*Lc9_6 - Lc12_7*Lc9_7 - Lc12_8*Lc9_8 + Pn[102]);
-    const double Lc13_9 = Lci9*(-Lc13_0*Lc9_0 - Lc13_1*Lc9_1 - Lc13_2*Lc9_2 - Lc13_3*Lc9_3 - Lc13_4*Lc9_4 - Lc13_5*Lc9_5 - Lc13_6*Lc9_6 - Lc13_7*Lc9_7 - Lc13_8*Lc9_8 + Pn[103]);
-    const double Lc14_9 = Lci9*(-Lc14_0*Lc9_0 - Lc14_1*Lc9_1 - Lc14_2*Lc9_2 - Lc14_3*Lc9_3 - Lc14_4*Lc9_4 - Lc14_5*Lc9_5 - Lc14_6*Lc9_6 - Lc14_7*Lc9_7 - Lc14_8*Lc9_8 + Pn[104]);
-    const double Lcd10 = -(Lc10_0*Lc10_0) - (Lc10_1*Lc10_1) - (Lc10_2*Lc10_2) - (Lc10_3*Lc10_3) - (Lc10_4*Lc10_4) - (Lc10_5*Lc10_5) - (Lc10_6*Lc10_6) - (Lc10_7*Lc10_7) - (Lc10_8*Lc10_8) - (Lc10_9*Lc10_9) + Pn[105];
-    if (!isfinite(Lcd10)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd10 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc10_10 = sqrt(Lcd10);
-    const double Lci10 = (1.0/Lc10_10);
-    const double Lc11_10 = Lci10*(-Lc10_0*Lc11_0 - Lc10_1*Lc11_1 - Lc10_2*Lc11_2 - Lc10_3*Lc11_3 - Lc10_4*Lc11_4 - Lc10_5*Lc11_5 - Lc10_6*Lc11_6 - Lc10_7*Lc11_7 - Lc10_8*Lc11_8 - Lc10_9*Lc11_9 + Pn[106]);
-    const double Lc12_10 = Lci10*(-Lc10_0*Lc12_0 - Lc10_1*Lc12_1 - Lc10_2*Lc12_2 - Lc10_3*Lc12_3 - Lc10_4*Lc12_4 - Lc10_5*Lc12_5 - Lc10_6*Lc12_6 - Lc10_7*Lc12_7 - Lc10_8*Lc12_8 - Lc10_9*Lc12_9 + Pn[107]);
-    const double Lc13_10 = Lci10*(-Lc10_0*Lc13_0 - Lc10_1*Lc13_1 - Lc10_2*Lc13_2 - Lc10_3*Lc13_3 - Lc10_4*Lc13_4 - Lc10_5*Lc13_5 - Lc10_6*Lc13_6 - Lc10_7*Lc13_7 - Lc10_8*Lc13_8 - Lc10_9*Lc13_9 + Pn[108]);
-    const double Lc14_10 = Lci10*(-Lc10_0*Lc14_0 - Lc10_1*Lc14_1 - Lc10_2*Lc14_2 - Lc10_3*Lc14_3 - Lc10_4*Lc14_4 - Lc10_5*Lc14_5 - Lc10_6*Lc14_6 - Lc10_7*Lc14_7 - Lc10_8*Lc14_8 - Lc10_9*Lc14_9 + Pn[109]);
-    const double Lcd11 = -(Lc11_0*Lc11_0) - (Lc11_1*Lc11_1) - (Lc11_10*Lc11_10) - (Lc11_2*Lc11_2) - (Lc11_3*Lc11_3) - (Lc11_4*Lc11_4) - (Lc11_5*Lc11_5) - (Lc11_6*Lc11_6) - (Lc11_7*Lc11_7) - (Lc11_8*Lc11_8) - (Lc11_9*Lc11_9) + Pn[110];
-    if (!isfinite(Lcd11)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd11 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc11_11 = sqrt(Lcd11);
-    const double Lci11 = (1.0/Lc11_11);
-    const double Lc12_11 = Lci11*(-Lc11_0*Lc12_0 - Lc11_1*Lc12_1 - Lc11_10*Lc12_10 - Lc11_2*Lc12_2 - Lc11_3*Lc12_3 - Lc11_4*Lc12_4 - Lc11_5*Lc12_5 - Lc11_6*Lc12_6 - Lc11_7*Lc12_7 - Lc11_8*Lc12_8 - Lc11_9*Lc12_9 + Pn[111]);
-    const double Lc13_11 = Lci11*(-Lc11_0*Lc13_0 - Lc11_1*Lc13_1 - Lc11_10*Lc13_10 - Lc11_2*Lc13_2 - Lc11_3*Lc13_3 - Lc11_4*Lc13_4 - Lc11_5*Lc13_5 - Lc11_6*Lc13_6 - Lc11_7*Lc13_7 - Lc11_8*Lc13_8 - Lc11_9*Lc13_9 + Pn[112]);
-    const double Lc14_11 = Lci11*(-Lc11_0*Lc14_0 - Lc11_1*Lc14_1 - Lc11_10*Lc14_10 - Lc11_2*Lc14_2 - Lc11_3*Lc14_3 - Lc11_4*Lc14_4 - Lc11_5*Lc14_5 - Lc11_6*Lc14_6 - Lc11_7*Lc14_7 - Lc11_8*Lc14_8 - Lc11_9*Lc14_9 + Pn[113]);
-    const double Lcd12 = -(Lc12_0*Lc12_0) - (Lc12_1*Lc12_1) - (Lc12_10*Lc12_10) - (Lc12_11*Lc12_11) - (Lc12_2*Lc12_2) - (Lc12_3*Lc12_3) - (Lc12_4*Lc12_4) - (Lc12_5*Lc12_5) - (Lc12_6*Lc12_6) - (Lc12_7*Lc12_7) - (Lc12_8*Lc12_8) - (Lc12_9*Lc12_9) + Pn[114];
-    if (!isfinite(Lcd12)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd12 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc12_12 = sqrt(Lcd12);
-    const double Lci12 = (1.0/Lc12_12);
-    const double Lc13_12 = Lci12*(-Lc12_0*Lc13_0 - Lc12_1*Lc13_1 - Lc12_10*Lc13_10 - Lc12_11*Lc13_11 - Lc12_2*Lc13_2 - Lc12_3*Lc13_3 - Lc12_4*Lc13_4 - Lc12_5*Lc13_5 - Lc12_6*Lc13_6 - Lc12_7*Lc13_7 - Lc12_8*Lc13_8 - Lc12_9*Lc13_9 + Pn[115]);
-    const double Lc14_12 = Lci12*(-Lc12_0*Lc14_0 - Lc12_1*Lc14_1 - Lc12_10*Lc14_10 - Lc12_11*Lc14_11 - Lc12_2*Lc14_2 - Lc12_3*Lc14_3 - Lc12_4*Lc14_4 - Lc12_5*Lc14_5 - Lc12_6*Lc14_6 - Lc12_7*Lc14_7 - Lc12_8*Lc14_8 - Lc12_9*Lc14_9 + Pn[116]);
-    const double Lcd13 = -(Lc13_0*Lc13_0) - (Lc13_1*Lc13_1) - (Lc13_10*Lc13_10) - (Lc13_11*Lc13_11) - (Lc13_12*Lc13_12) - (Lc13_2*Lc13_2) - (Lc13_3*Lc13_3) - (Lc13_4*Lc13_4) - (Lc13_5*Lc13_5) - (Lc13_6*Lc13_6) - (Lc13_7*Lc13_7) - (Lc13_8*Lc13_8) - (Lc13_9*Lc13_9) + Pn[117];
-    if (!isfinite(Lcd13)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd13 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc13_13 = sqrt(Lcd13);
-    const double Lci13 = (1.0/Lc13_13);
-    const double Lc14_13 = Lci13*(-Lc13_0*Lc14_0 - Lc13_1*Lc14_1 - Lc13_10*Lc14_10 - Lc13_11*Lc14_11 - Lc13_12*Lc14_12 - Lc13_2*Lc14_2 - Lc13_3*Lc14_3 - Lc13_4*Lc14_4 - Lc13_5*Lc14_5 - Lc13_6*Lc14_6 - Lc13_7*Lc14_7 - Lc13_8*Lc14_8 - Lc13_9*Lc14_9 + Pn[118]);
-    const double Lcd14 = -(Lc14_0*Lc14_0) - (Lc14_1*Lc14_1) - (Lc14_10*Lc14_10) - (Lc14_11*Lc14_11) - (Lc14_12*Lc14_12) - (Lc14_13*Lc14_13) - (Lc14_2*Lc14_2) - (Lc14_3*Lc14_3) - (Lc14_4*Lc14_4) - (Lc14_5*Lc14_5) - (Lc14_6*Lc14_6) - (Lc14_7*Lc14_7) - (Lc14_8*Lc14_8) - (Lc14_9*Lc14_9) + Pn[119];
-    if (!isfinite(Lcd14)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd14 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
+    {
+        const int st = nav_ukf_commit_pd(Pn);
+        if (st != NAV_UKF_OK) {
+            return st;
+        }
+    }
     memcpy(s->x, xn, sizeof xn);
     memcpy(s->P, Pn, sizeof Pn);
     return NAV_UKF_OK;
@@ -2330,185 +2343,12 @@ int nav_ukf_update_gnss_pos_nis(nav_ukf_t *s, const double *z, double *nis_out)
     if (!nav_ukf_finite(xs, 15u) || !nav_ukf_finite(Ps, 120u)) {
         return NAV_UKF_NON_FINITE;
     }
-    /* commit only a positive definite P: the pivots of its Cholesky factorization */
-    const double Lcd0 = Ps[0];
-    if (!isfinite(Lcd0)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd0 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc0_0 = sqrt(Lcd0);
-    const double Lci0 = (1.0/Lc0_0);
-    const double Lc1_0 = Lci0*Ps[1];
-    const double Lc2_0 = Lci0*Ps[2];
-    const double Lc3_0 = Lci0*Ps[3];
-    const double Lc4_0 = Lci0*Ps[4];
-    const double Lc5_0 = Lci0*Ps[5];
-    const double Lc6_0 = Lci0*Ps[6];
-    const double Lc7_0 = Lci0*Ps[7];
-    const double Lc8_0 = Lci0*Ps[8];
-    const double Lc9_0 = Lci0*Ps[9];
-    const double Lc10_0 = Lci0*Ps[10];
-    const double Lc11_0 = Lci0*Ps[11];
-    const double Lc12_0 = Lci0*Ps[12];
-    const double Lc13_0 = Lci0*Ps[13];
-    const double Lc14_0 = Lci0*Ps[14];
-    const double Lcd1 = -(Lc1_0*Lc1_0) + Ps[15];
-    if (!isfinite(Lcd1)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd1 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc1_1 = sqrt(Lcd1);
-    const double Lci1 = (1.0/Lc1_1);
-    const double Lc2_1 = Lci1*(-Lc1_0*Lc2_0 + Ps[16]);
-    const double Lc3_1 = Lci1*(-Lc1_0*Lc3_0 + Ps[17]);
-    const double Lc4_1 = Lci1*(-Lc1_0*Lc4_0 + Ps[18]);
-    const double Lc5_1 = Lci1*(-Lc1_0*Lc5_0 + Ps[19]);
-    const double Lc6_1 = Lci1*(-Lc1_0*Lc6_0 + Ps[20]);
-    const double Lc7_1 = Lci1*(-Lc1_0*Lc7_0 + Ps[21]);
-    const double Lc8_1 = Lci1*(-Lc1_0*Lc8_0 + Ps[22]);
-    const double Lc9_1 = Lci1*(-Lc1_0*Lc9_0 + Ps[23]);
-    const double Lc10_1 = Lci1*(-Lc10_0*Lc1_0 + Ps[24]);
-    const double Lc11_1 = Lci1*(-Lc11_0*Lc1_0 + Ps[25]);
-    const double Lc12_1 = Lci1*(-Lc12_0*Lc1_0 + Ps[26]);
-    const double Lc13_1 = Lci1*(-Lc13_0*Lc1_0 + Ps[27]);
-    const double Lc14_1 = Lci1*(-Lc14_0*Lc1_0 + Ps[28]);
-    const double Lcd2 = -(Lc2_0*Lc2_0) - (Lc2_1*Lc2_1) + Ps[29];
-    if (!isfinite(Lcd2)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd2 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc2_2 = sqrt(Lcd2);
-    const double Lci2 = (1.0/Lc2_2);
-    const double Lc3_2 = Lci2*(-Lc2_0*Lc3_0 - Lc2_1*Lc3_1 + Ps[30]);
-    const double Lc4_2 = Lci2*(-Lc2_0*Lc4_0 - Lc2_1*Lc4_1 + Ps[31]);
-    const double Lc5_2 = Lci2*(-Lc2_0*Lc5_0 - Lc2_1*Lc5_1 + Ps[32]);
-    const double Lc6_2 = Lci2*(-Lc2_0*Lc6_0 - Lc2_1*Lc6_1 + Ps[33]);
-    const double Lc7_2 = Lci2*(-Lc2_0*Lc7_0 - Lc2_1*Lc7_1 + Ps[34]);
-    const double Lc8_2 = Lci2*(-Lc2_0*Lc8_0 - Lc2_1*Lc8_1 + Ps[35]);
-    const double Lc9_2 = Lci2*(-Lc2_0*Lc9_0 - Lc2_1*Lc9_1 + Ps[36]);
-    const double Lc10_2 = Lci2*(-Lc10_0*Lc2_0 - Lc10_1*Lc2_1 + Ps[37]);
-    const double Lc11_2 = Lci2*(-Lc11_0*Lc2_0 - Lc11_1*Lc2_1 + Ps[38]);
-    const double Lc12_2 = Lci2*(-Lc12_0*Lc2_0 - Lc12_1*Lc2_1 + Ps[39]);
-    const double Lc13_2 = Lci2*(-Lc13_0*Lc2_0 - Lc13_1*Lc2_1 + Ps[40]);
-    const double Lc14_2 = Lci2*(-Lc14_0*Lc2_0 - Lc14_1*Lc2_1 + Ps[41]);
-    const double Lcd3 = -(Lc3_0*Lc3_0) - (Lc3_1*Lc3_1) - (Lc3_2*Lc3_2) + Ps[42];
-    if (!isfinite(Lcd3)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd3 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc3_3 = sqrt(Lcd3);
-    const double Lci3 = (1.0/Lc3_3);
-    const double Lc4_3 = Lci3*(-Lc3_0*Lc4_0 - Lc3_1*Lc4_1 - Lc3_2*Lc4_2 + Ps[43]);
-    const double Lc5_3 = Lci3*(-Lc3_0*Lc5_0 - Lc3_1*Lc5_1 - Lc3_2*Lc5_2 + Ps[44]);
-    const double Lc6_3 = Lci3*(-Lc3_0*Lc6_0 - Lc3_1*Lc6_1 - Lc3_2*Lc6_2 + Ps[45]);
-    const double Lc7_3 = Lci3*(-Lc3_0*Lc7_0 - Lc3_1*Lc7_1 - Lc3_2*Lc7_2 + Ps[46]);
-    const double Lc8_3 = Lci3*(-Lc3_0*Lc8_0 - Lc3_1*Lc8_1 - Lc3_2*Lc8_2 + Ps[47]);
-    const double Lc9_3 = Lci3*(-Lc3_0*Lc9_0 - Lc3_1*Lc9_1 - Lc3_2*Lc9_2 + Ps[48]);
-    const double Lc10_3 = Lci3*(-Lc10_0*Lc3_0 - Lc10_1*Lc3_1 - Lc10_2*Lc3_2 + Ps[49]);
-    const double Lc11_3 = Lci3*(-Lc11_0*Lc3_0 - Lc11_1*Lc3_1 - Lc11_2*Lc3_2 + Ps[50]);
-    const double Lc12_3 = Lci3*(-Lc12_0*Lc3_0 - Lc12_1*Lc3_1 - Lc12_2*Lc3_2 + Ps[51]);
-    const double Lc13_3 = Lci3*(-Lc13_0*Lc3_0 - Lc13_1*Lc3_1 - Lc13_2*Lc3_2 + Ps[52]);
-    const double Lc14_3 = Lci3*(-Lc14_0*Lc3_0 - Lc14_1*Lc3_1 - Lc14_2*Lc3_2 + Ps[53]);
-    const double Lcd4 = -(Lc4_0*Lc4_0) - (Lc4_1*Lc4_1) - (Lc4_2*Lc4_2) - (Lc4_3*Lc4_3) + Ps[54];
-    if (!isfinite(Lcd4)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd4 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc4_4 = sqrt(Lcd4);
-    const double Lci4 = (1.0/Lc4_4);
-    const double Lc5_4 = Lci4*(-Lc4_0*Lc5_0 - Lc4_1*Lc5_1 - Lc4_2*Lc5_2 - Lc4_3*Lc5_3 + Ps[55]);
-    const double Lc6_4 = Lci4*(-Lc4_0*Lc6_0 - Lc4_1*Lc6_1 - Lc4_2*Lc6_2 - Lc4_3*Lc6_3 + Ps[56]);
-    const double Lc7_4 = Lci4*(-Lc4_0*Lc7_0 - Lc4_1*Lc7_1 - Lc4_2*Lc7_2 - Lc4_3*Lc7_3 + Ps[57]);
-    const double Lc8_4 = Lci4*(-Lc4_0*Lc8_0 - Lc4_1*Lc8_1 - Lc4_2*Lc8_2 - Lc4_3*Lc8_3 + Ps[58]);
-    const double Lc9_4 = Lci4*(-Lc4_0*Lc9_0 - Lc4_1*Lc9_1 - Lc4_2*Lc9_2 - Lc4_3*Lc9_3 + Ps[59]);
-    const double Lc10_4 = Lci4*(-Lc10_0*Lc4_0 - Lc10_1*Lc4_1 - Lc10_2*Lc4_2 - Lc10_3*Lc4_3 + Ps[60]);
-    const double Lc11_4 = Lci4*(-Lc11_0*Lc4_0 - Lc11_1*Lc4_1 - Lc11_2*Lc4_2 - Lc11_3*Lc4_3 + Ps[61]);
-    const double Lc12_4 = Lci4*(-Lc12_0*Lc4_0 - Lc12_1*Lc4_1 - Lc12_2*Lc4_2 - Lc12_3*Lc4_3 + Ps[62]);
-    const double Lc13_4 = Lci4*(-Lc13_0*Lc4_0 - Lc13_1*Lc4_1 - Lc13_2*Lc4_2 - Lc13_3*Lc4_3 + Ps[63]);
-    const double Lc14_4 = Lci4*(-Lc14_0*Lc4_0 - Lc14_1*Lc4_1 - Lc14_2*Lc4_2 - Lc14_3*Lc4_3 + Ps[64]);
-    const double Lcd5 = -(Lc5_0*Lc5_0) - (Lc5_1*Lc5_1) - (Lc5_2*Lc5_2) - (Lc5_3*Lc5_3) - (Lc5_4*Lc5_4) + Ps[65];
-    if (!isfinite(Lcd5)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd5 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc5_5 = sqrt(Lcd5);
-    const double Lci5 = (1.0/Lc5_5);
-    const double Lc6_5 = Lci5*(-Lc5_0*Lc6_0 - Lc5_1*Lc6_1 - Lc5_2*Lc6_2 - Lc5_3*Lc6_3 - Lc5_4*Lc6_4 + Ps[66]);
-    const double Lc7_5 = Lci5*(-Lc5_0*Lc7_0 - Lc5_1*Lc7_1 - Lc5_2*Lc7_2 - Lc5_3*Lc7_3 - Lc5_4*Lc7_4 + Ps[67]);
-    const double Lc8_5 = Lci5*(-Lc5_0*Lc8_0 - Lc5_1*Lc8_1 - Lc5_2*Lc8_2 - Lc5_3*Lc8_3 - Lc5_4*Lc8_4 + Ps[68]);
-    const double Lc9_5 = Lci5*(-Lc5_0*Lc9_0 - Lc5_1*Lc9_1 - Lc5_2*Lc9_2 - Lc5_3*Lc9_3 - Lc5_4*Lc9_4 + Ps[69]);
-    const double Lc10_5 = Lci5*(-Lc10_0*Lc5_0 - Lc10_1*Lc5_1 - Lc10_2*Lc5_2 - Lc10_3*Lc5_3 - Lc10_4*Lc5_4 + Ps[70]);
-    const double Lc11_5 = Lci5*(-Lc11_0*Lc5_0 - Lc11_1*Lc5_1 - Lc11_2*Lc5_2 - Lc11_3*Lc5_3 - Lc11_4*Lc5_4 + Ps[71]);
-    const double Lc12_5 = Lci5*(-Lc12_0*Lc5_0 - Lc12_1*Lc5_1 - Lc12_2*Lc5_2 - Lc12_3*Lc5_3 - Lc12_4*Lc5_4 + Ps[72]);
-    const double Lc13_5 = Lci5*(-Lc13_0*Lc5_0 - Lc13_1*Lc5_1 - Lc13_2*Lc5_2 - Lc13_3*Lc5_3 - Lc13_4*Lc5_4 + Ps[73]);
-    const double Lc14_5 = Lci5*(-Lc14_0*Lc5_0 - Lc14_1*Lc5_1 - Lc14_2*Lc5_2 - Lc14_3*Lc5_3 - Lc14_4*Lc5_4 + Ps[74]);
-    const double Lcd6 = -(Lc6_0*Lc6_0) - (Lc6_1*Lc6_1) - (Lc6_2*Lc6_2) - (Lc6_3*Lc6_3) - (Lc6_4*Lc6_4) - (Lc6_5*Lc6_5) + Ps[75];
-    if (!isfinite(Lcd6)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd6 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc6_6 = sqrt(Lcd6);
-    const double Lci6 = (1.0/Lc6_6);
-    const double Lc7_6 = Lci6*(-Lc6_0*Lc7_0 - Lc6_1*Lc7_1 - Lc6_2*Lc7_2 - Lc6_3*Lc7_3 - Lc6_4*Lc7_4 - Lc6_5*Lc7_5 + Ps[76]);
-    const double Lc8_6 = Lci6*(-Lc6_0*Lc8_0 - Lc6_1*Lc8_1 - Lc6_2*Lc8_2 - Lc6_3*Lc8_3 - Lc6_4*Lc8_4 - Lc6_5*Lc8_5 + Ps[77]);
-    const double Lc9_6 = Lci6*(-Lc6_0*Lc9_0 - Lc6_1*Lc9_1 - Lc6_2*Lc9_2 - Lc6_3*Lc9_3 - Lc6_4*Lc9_4 - Lc6_5*Lc9_5 + Ps[78]);
-    const double Lc10_6 = Lci6*(-Lc10_0*Lc6_0 - Lc10_1*Lc6_1 - Lc10_2*Lc6_2 - Lc10_3*Lc6_3 - Lc10_4*Lc6_4 - Lc10_5*Lc6_5 + Ps[79]);
-    const double Lc11_6 = Lci6*(-Lc11_0*Lc6_0 - Lc11_1*Lc6_1 - Lc11_2*Lc6_2 - Lc11_3*Lc6_3 - Lc11_4*Lc6_4 - Lc11_5*Lc6_5 + Ps[80]);
-    const double Lc12_6 = Lci6*(-Lc12_0*Lc6_0 - Lc12_1*Lc6_1 - Lc12_2*Lc6_2 - Lc12_3*Lc6_3 - Lc12_4*Lc6_4 - Lc12_5*Lc6_5 + Ps[81]);
-    const double Lc13_6 = Lci6*(-Lc13_0*Lc6_0 - Lc13_1*Lc6_1 - Lc13_2*Lc6_2 - Lc13_3*Lc6_3 - Lc13_4*Lc6_4 - Lc13_5*Lc6_5 + Ps[82]);
-    const double Lc14_6 = Lci6*(-Lc14_0*Lc6_0 - Lc14_1*Lc6_1 - Lc14_2*Lc6_2 - Lc14_3*Lc6_3 - Lc14_4*Lc6_4 - Lc14_5*Lc6_5 + Ps[83]);
-    const double Lcd7 = -(Lc7_0*Lc7_0) - (Lc7_1*Lc7_1) - (Lc7_2*Lc7_2) - (Lc7_3*Lc7_3) - (Lc7_4*Lc7_4) - (Lc7_5*Lc7_5) - (Lc7_6*Lc7_6) + Ps[84];
-    if (!isfinite(Lcd7)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd7 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc7_7 = sqrt(Lcd7);
-    const double Lci7 = (1.0/Lc7_7);
-    const double Lc8_7 = Lci7*(-Lc7_0*Lc8_0 - Lc7_1*Lc8_1 - Lc7_2*Lc8_2 - Lc7_3*Lc8_3 - Lc7_4*Lc8_4 - Lc7_5*Lc8_5 - Lc7_6*Lc8_6 + Ps[85]);
-    const double Lc9_7 = Lci7*(-Lc7_0*Lc9_0 - Lc7_1*Lc9_1 - Lc7_2*Lc9_2 - Lc7_3*Lc9_3 - Lc7_4*Lc9_4 - Lc7_5*Lc9_5 - Lc7_6*Lc9_6 + Ps[86]);
-    const double Lc10_7 = Lci7*(-Lc10_0*Lc7_0 - Lc10_1*Lc7_1 - Lc10_2*Lc7_2 - Lc10_3*Lc7_3 - Lc10_4*Lc7_4 - Lc10_5*Lc7_5 - Lc10_6*Lc7_6 + Ps[87]);
-    const double Lc11_7 = Lci7*(-Lc11_0*Lc7_0 - Lc11_1*Lc7_1 - Lc11_2*Lc7_2 - Lc11_3*Lc7_3 - Lc11_4*Lc7_4 - Lc11_5*Lc7_5 - Lc11_6*Lc7_6 + Ps[88]);
-    const double Lc12_7 = Lci7*(-Lc12_0*Lc7_0 - Lc12_1*Lc7_1 - Lc12_2*Lc7_2 - Lc12_3*Lc7_3 - Lc12_4*Lc7_4 - Lc12_5*Lc7_5 - Lc12_6*Lc7_6 + Ps[89]);
-    const double Lc13_7 = Lci7*(-Lc13_0*Lc7_0 - Lc13_1*Lc7_1 - Lc13_2*Lc7_2 - Lc13_3*Lc7_3 - Lc13_4*Lc7_4 - Lc13_5*Lc7_5 - Lc13_6*Lc7_6 + Ps[90]);
-    const double Lc14_7 = Lci7*(-Lc14_0*Lc7_0 - Lc14_1*Lc7_1 - Lc14_2*Lc7_2 - Lc14_3*Lc7_3 - Lc14_4*Lc7_4 - Lc14_5*Lc7_5 - Lc14_6*Lc7_6 + Ps[91]);
-    const double Lcd8 = -(Lc8_0*Lc8_0) - (Lc8_1*Lc8_1) - (Lc8_2*Lc8_2) - (Lc8_3*Lc8_3) - (Lc8_4*Lc8_4) - (Lc8_5*Lc8_5) - (Lc8_6*Lc8_6) - (Lc8_7*Lc8_7) + Ps[92];
-    if (!isfinite(Lcd8)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd8 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc8_8 = sqrt(Lcd8);
-    const double Lci8 = (1.0/Lc8_8);
-    const double Lc9_8 = Lci8*(-Lc8_0*Lc9_0 - Lc8_1*Lc9_1 - Lc8_2*Lc9_2 - Lc8_3*Lc9_3 - Lc8_4*Lc9_4 - Lc8_5*Lc9_5 - Lc8_6*Lc9_6 - Lc8_7*Lc9_7 + Ps[93]);
-    const double Lc10_8 = Lci8*(-Lc10_0*Lc8_0 - Lc10_1*Lc8_1 - Lc10_2*Lc8_2 - Lc10_3*Lc8_3 - Lc10_4*Lc8_4 - Lc10_5*Lc8_5 - Lc10_6*Lc8_6 - Lc10_7*Lc8_7 + Ps[94]);
-    const double Lc11_8 = Lci8*(-Lc11_0*Lc8_0 - Lc11_1*Lc8_1 - Lc11_2*Lc8_2 - Lc11_3*Lc8_3 - Lc11_4*Lc8_4 - Lc11_5*Lc8_5 - Lc11_6*Lc8_6 - Lc11_7*Lc8_7 + Ps[95]);
-    const double Lc12_8 = Lci8*(-Lc12_0*Lc8_0 - Lc12_1*Lc8_1 - Lc12_2*Lc8_2 - Lc12_3*Lc8_3 - Lc12_4*Lc8_4 - Lc12_5*Lc8_5 - Lc12_6*Lc8_6 - Lc12_7*Lc8_7 + Ps[96]);
-    const double Lc13_8 = Lci8*(-Lc13_0*Lc8_0 - Lc13_1*Lc8_1 - Lc13_2*Lc8_2 - Lc13_3*Lc8_3 - Lc13_4*Lc8_4 - Lc13_5*Lc8_5 - Lc13_6*Lc8_6 - Lc13_7*Lc8_7 + Ps[97]);
-    const double Lc14_8 = Lci8*(-Lc14_0*Lc8_0 - Lc14_1*Lc8_1 - Lc14_2*Lc8_2 - Lc14_3*Lc8_3 - Lc14_4*Lc8_4 - Lc14_5*Lc8_5 - Lc14_6*Lc8_6 - Lc14_7*Lc8_7 + Ps[98]);
-    const double Lcd9 = -(Lc9_0*Lc9_0) - (Lc9_1*Lc9_1) - (Lc9_2*Lc9_2) - (Lc9_3*Lc9_3) - (Lc9_4*Lc9_4) - (Lc9_5*Lc9_5) - (Lc9_6*Lc9_6) - (Lc9_7*Lc9_7) - (Lc9_8*Lc9_8) + Ps[99];
-    if (!isfinite(Lcd9)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd9 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc9_9 = sqrt(Lcd9);
-    const double Lci9 = (1.0/Lc9_9);
-    const double Lc10_9 = Lci9*(-Lc10_0*Lc9_0 - Lc10_1*Lc9_1 - Lc10_2*Lc9_2 - Lc10_3*Lc9_3 - Lc10_4*Lc9_4 - Lc10_5*Lc9_5 - Lc10_6*Lc9_6 - Lc10_7*Lc9_7 - Lc10_8*Lc9_8 + Ps[100]);
-    const double Lc11_9 = Lci9*(-Lc11_0*Lc9_0 - Lc11_1*Lc9_1 - Lc11_2*Lc9_2 - Lc11_3*Lc9_3 - Lc11_4*Lc9_4 - Lc11_5*Lc9_5 - Lc11_6*Lc9_6 - Lc11_7*Lc9_7 - Lc11_8*Lc9_8 + Ps[101]);
-    const double Lc12_9 = Lci9*(-Lc12_0*Lc9_0 - Lc12_1*Lc9_1 - Lc12_2*Lc9_2 - Lc12_3*Lc9_3 - Lc12_4*Lc9_4 - Lc12_5*Lc9_5 - Lc12_6*Lc9_6 - Lc12_7*Lc9_7 - Lc12_8*Lc9_8 + Ps[102]);
-    const double Lc13_9 = Lci9*(-Lc13_0*Lc9_0 - Lc13_1*Lc9_1 - Lc13_2*Lc9_2 - Lc13_3*Lc9_3 - Lc13_4*Lc9_4 - Lc13_5*Lc9_5 - Lc13_6*Lc9_6 - Lc13_7*Lc9_7 - Lc13_8*Lc9_8 + Ps[103]);
-    const double Lc14_9 = Lci9*(-Lc14_0*Lc9_0 - Lc14_1*Lc9_1 - Lc14_2*Lc9_2 - Lc14_3*Lc9_3 - Lc14_4*Lc9_4 - Lc14_5*Lc9_5 - Lc14_6*Lc9_6 - Lc14_7*Lc9_7 - Lc14_8*Lc9_8 + Ps[104]);
-    const double Lcd10 = -(Lc10_0*Lc10_0) - (Lc10_1*Lc10_1) - (Lc10_2*Lc10_2) - (Lc10_3*Lc10_3) - (Lc10_4*Lc10_4) - (Lc10_5*Lc10_5) - (Lc10_6*Lc10_6) - (Lc10_7*Lc10_7) - (Lc10_8*Lc10_8) - (Lc10_9*Lc10_9) + Ps[105];
-    if (!isfinite(Lcd10)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd10 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc10_10 = sqrt(Lcd10);
-    const double Lci10 = (1.0/Lc10_10);
-    const double Lc11_10 = Lci10*(-Lc10_0*Lc11_0 - Lc10_1*Lc11_1 - Lc10_2*Lc11_2 - Lc10_3*Lc11_3 - Lc10_4*Lc11_4 - Lc10_5*Lc11_5 - Lc10_6*Lc11_6 - Lc10_7*Lc11_7 - Lc10_8*Lc11_8 - Lc10_9*Lc11_9 + Ps[106]);
-    const double Lc12_10 = Lci10*(-Lc10_0*Lc12_0 - Lc10_1*Lc12_1 - Lc10_2*Lc12_2 - Lc10_3*Lc12_3 - Lc10_4*Lc12_4 - Lc10_5*Lc12_5 - Lc10_6*Lc12_6 - Lc10_7*Lc12_7 - Lc10_8*Lc12_8 - Lc10_9*Lc12_9 + Ps[107]);
-    const double Lc13_10 = Lci10*(-Lc10_0*Lc13_0 - Lc10_1*Lc13_1 - Lc10_2*Lc13_2 - Lc10_3*Lc13_3 - Lc10_4*Lc13_4 - Lc10_5*Lc13_5 - Lc10_6*Lc13_6 - Lc10_7*Lc13_7 - Lc10_8*Lc13_8 - Lc10_9*Lc13_9 + Ps[108]);
-    const double Lc14_10 = Lci10*(-Lc10_0*Lc14_0 - Lc10_1*Lc14_1 - Lc10_2*Lc14_2 - Lc10_3*Lc14_3 - Lc10_4*Lc14_4 - Lc10_5*Lc14_5 - Lc10_6*Lc14_6 - Lc10_7*Lc14_7 - Lc10_8*Lc14_8 - Lc10_9*Lc14_9 + Ps[109]);
-    const double Lcd11 = -(Lc11_0*Lc11_0) - (Lc11_1*Lc11_1) - (Lc11_10*Lc11_10) - (Lc11_2*Lc11_2) - (Lc11_3*Lc11_3) - (Lc11_4*Lc11_4) - (Lc11_5*Lc11_5) - (Lc11_6*Lc11_6) - (Lc11_7*Lc11_7) - (Lc11_8*Lc11_8) - (Lc11_9*Lc11_9) + Ps[110];
-    if (!isfinite(Lcd11)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd11 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc11_11 = sqrt(Lcd11);
-    const double Lci11 = (1.0/Lc11_11);
-    const double Lc12_11 = Lci11*(-Lc11_0*Lc12_0 - Lc11_1*Lc12_1 - Lc11_10*Lc12_10 - Lc11_2*Lc12_2 - Lc11_3*Lc12_3 - Lc11_4*Lc12_4 - Lc11_5*Lc12_5 - Lc11_6*Lc12_6 - Lc11_7*Lc12_7 - Lc11_8*Lc12_8 - Lc11_9*Lc12_9 + Ps[111]);
-    const double Lc13_11 = Lci11*(-Lc11_0*Lc13_0 - Lc11_1*Lc13_1 - Lc11_10*Lc13_10 - Lc11_2*Lc13_2 - Lc11_3*Lc13_3 - Lc11_4*Lc13_4 - Lc11_5*Lc13_5 - Lc11_6*Lc13_6 - Lc11_7*Lc13_7 - Lc11_8*Lc13_8 - Lc11_9*Lc13_9 + Ps[112]);
-    const double Lc14_11 = Lci11*(-Lc11_0*Lc14_0 - Lc11_1*Lc14_1 - Lc11_10*Lc14_10 - Lc11_2*Lc14_2 - Lc11_3*Lc14_3 - Lc11_4*Lc14_4 - Lc11_5*Lc14_5 - Lc11_6*Lc14_6 - Lc11_7*Lc14_7 - Lc11_8*Lc14_8 - Lc11_9*Lc14_9 + Ps[113]);
-    const double Lcd12 = -(Lc12_0*Lc12_0) - (Lc12_1*Lc12_1) - (Lc12_10*Lc12_10) - (Lc12_11*Lc12_11) - (Lc12_2*Lc12_2) - (Lc12_3*Lc12_3) - (Lc12_4*Lc12_4) - (Lc12_5*Lc12_5) - (Lc12_6*Lc12_6) - (Lc12_7*Lc12_7) - (Lc12_8*Lc12_8) - (Lc12_9*Lc12_9) + Ps[114];
-    if (!isfinite(Lcd12)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd12 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc12_12 = sqrt(Lcd12);
-    const double Lci12 = (1.0/Lc12_12);
-    const double Lc13_12 = Lci12*(-Lc12_0*Lc13_0 - Lc12_1*Lc13_1 - Lc12_10*Lc13_10 - Lc12_11*Lc13_11 - Lc12_2*Lc13_2 - Lc12_3*Lc13_3 - Lc12_4*Lc13_4 - Lc12_5*Lc13_5 - Lc12_6*Lc13_6 - Lc12_7*Lc13_7 - Lc12_8*Lc13_8 - Lc12_9*Lc13_9 + Ps[115]);
-    const double Lc14_12 = Lci12*(-Lc12_0*Lc14_0 - Lc12_1*Lc14_1 - Lc12_10*Lc14_10 - Lc12_11*Lc14_11 - Lc12_2*Lc14_2 - Lc12_3*Lc14_3 - Lc12_4*Lc14_4 - Lc12_5*Lc14_5 - Lc12_6*Lc14_6 - Lc12_7*Lc14_7 - Lc12_8*Lc14_8 - Lc12_9*Lc14_9 + Ps[116]);
-    const double Lcd13 = -(Lc13_0*Lc13_0) - (Lc13_1*Lc13_1) - (Lc13_10*Lc13_10) - (Lc13_11*Lc13_11) - (Lc13_12*Lc13_12) - (Lc13_2*Lc13_2) - (Lc13_3*Lc13_3) - (Lc13_4*Lc13_4) - (Lc13_5*Lc13_5) - (Lc13_6*Lc13_6) - (Lc13_7*Lc13_7) - (Lc13_8*Lc13_8) - (Lc13_9*Lc13_9) + Ps[117];
-    if (!isfinite(Lcd13)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd13 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc13_13 = sqrt(Lcd13);
-    const double Lci13 = (1.0/Lc13_13);
-    const double Lc14_13 = Lci13*(-Lc13_0*Lc14_0 - Lc13_1*Lc14_1 - Lc13_10*Lc14_10 - Lc13_11*Lc14_11 - Lc13_12*Lc14_12 - Lc13_2*Lc14_2 - Lc13_3*Lc14_3 - Lc13_4*Lc14_4 - Lc13_5*Lc14_5 - Lc13_6*Lc14_6 - Lc13_7*Lc14_7 - Lc13_8*Lc14_8 - Lc13_9*Lc14_9 + Ps[118]);
-    const double Lcd14 = -(Lc14_0*Lc14_0) - (Lc14_1*Lc14_1) - (Lc14_10*Lc14_10) - (Lc14_11*Lc14_11) - (Lc14_12*Lc14_12) - (Lc14_13*Lc14_13) - (Lc14_2*Lc14_2) - (Lc14_3*Lc14_3) - (Lc14_4*Lc14_4) - (Lc14_5*Lc14_5) - (Lc14_6*Lc14_6) - (Lc14_7*Lc14_7) - (Lc14_8*Lc14_8) - (Lc14_9*Lc14_9) + Ps[119];
-    if (!isfinite(Lcd14)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd14 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
+    {
+        const int st = nav_ukf_commit_pd(Ps);
+        if (st != NAV_UKF_OK) {
+            return st;
+        }
+    }
     memcpy(s->x, xs, sizeof xs);
     memcpy(s->P, Ps, sizeof Ps);
     return NAV_UKF_OK;
@@ -2932,185 +2772,12 @@ int nav_ukf_update_gnss_vel_nis(nav_ukf_t *s, const double *z, double *nis_out)
     if (!nav_ukf_finite(xs, 15u) || !nav_ukf_finite(Ps, 120u)) {
         return NAV_UKF_NON_FINITE;
     }
-    /* commit only a positive definite P: the pivots of its Cholesky factorization */
-    const double Lcd0 = Ps[0];
-    if (!isfinite(Lcd0)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd0 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc0_0 = sqrt(Lcd0);
-    const double Lci0 = (1.0/Lc0_0);
-    const double Lc1_0 = Lci0*Ps[1];
-    const double Lc2_0 = Lci0*Ps[2];
-    const double Lc3_0 = Lci0*Ps[3];
-    const double Lc4_0 = Lci0*Ps[4];
-    const double Lc5_0 = Lci0*Ps[5];
-    const double Lc6_0 = Lci0*Ps[6];
-    const double Lc7_0 = Lci0*Ps[7];
-    const double Lc8_0 = Lci0*Ps[8];
-    const double Lc9_0 = Lci0*Ps[9];
-    const double Lc10_0 = Lci0*Ps[10];
-    const double Lc11_0 = Lci0*Ps[11];
-    const double Lc12_0 = Lci0*Ps[12];
-    const double Lc13_0 = Lci0*Ps[13];
-    const double Lc14_0 = Lci0*Ps[14];
-    const double Lcd1 = -(Lc1_0*Lc1_0) + Ps[15];
-    if (!isfinite(Lcd1)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd1 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc1_1 = sqrt(Lcd1);
-    const double Lci1 = (1.0/Lc1_1);
-    const double Lc2_1 = Lci1*(-Lc1_0*Lc2_0 + Ps[16]);
-    const double Lc3_1 = Lci1*(-Lc1_0*Lc3_0 + Ps[17]);
-    const double Lc4_1 = Lci1*(-Lc1_0*Lc4_0 + Ps[18]);
-    const double Lc5_1 = Lci1*(-Lc1_0*Lc5_0 + Ps[19]);
-    const double Lc6_1 = Lci1*(-Lc1_0*Lc6_0 + Ps[20]);
-    const double Lc7_1 = Lci1*(-Lc1_0*Lc7_0 + Ps[21]);
-    const double Lc8_1 = Lci1*(-Lc1_0*Lc8_0 + Ps[22]);
-    const double Lc9_1 = Lci1*(-Lc1_0*Lc9_0 + Ps[23]);
-    const double Lc10_1 = Lci1*(-Lc10_0*Lc1_0 + Ps[24]);
-    const double Lc11_1 = Lci1*(-Lc11_0*Lc1_0 + Ps[25]);
-    const double Lc12_1 = Lci1*(-Lc12_0*Lc1_0 + Ps[26]);
-    const double Lc13_1 = Lci1*(-Lc13_0*Lc1_0 + Ps[27]);
-    const double Lc14_1 = Lci1*(-Lc14_0*Lc1_0 + Ps[28]);
-    const double Lcd2 = -(Lc2_0*Lc2_0) - (Lc2_1*Lc2_1) + Ps[29];
-    if (!isfinite(Lcd2)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd2 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc2_2 = sqrt(Lcd2);
-    const double Lci2 = (1.0/Lc2_2);
-    const double Lc3_2 = Lci2*(-Lc2_0*Lc3_0 - Lc2_1*Lc3_1 + Ps[30]);
-    const double Lc4_2 = Lci2*(-Lc2_0*Lc4_0 - Lc2_1*Lc4_1 + Ps[31]);
-    const double Lc5_2 = Lci2*(-Lc2_0*Lc5_0 - Lc2_1*Lc5_1 + Ps[32]);
-    const double Lc6_2 = Lci2*(-Lc2_0*Lc6_0 - Lc2_1*Lc6_1 + Ps[33]);
-    const double Lc7_2 = Lci2*(-Lc2_0*Lc7_0 - Lc2_1*Lc7_1 + Ps[34]);
-    const double Lc8_2 = Lci2*(-Lc2_0*Lc8_0 - Lc2_1*Lc8_1 + Ps[35]);
-    const double Lc9_2 = Lci2*(-Lc2_0*Lc9_0 - Lc2_1*Lc9_1 + Ps[36]);
-    const double Lc10_2 = Lci2*(-Lc10_0*Lc2_0 - Lc10_1*Lc2_1 + Ps[37]);
-    const double Lc11_2 = Lci2*(-Lc11_0*Lc2_0 - Lc11_1*Lc2_1 + Ps[38]);
-    const double Lc12_2 = Lci2*(-Lc12_0*Lc2_0 - Lc12_1*Lc2_1 + Ps[39]);
-    const double Lc13_2 = Lci2*(-Lc13_0*Lc2_0 - Lc13_1*Lc2_1 + Ps[40]);
-    const double Lc14_2 = Lci2*(-Lc14_0*Lc2_0 - Lc14_1*Lc2_1 + Ps[41]);
-    const double Lcd3 = -(Lc3_0*Lc3_0) - (Lc3_1*Lc3_1) - (Lc3_2*Lc3_2) + Ps[42];
-    if (!isfinite(Lcd3)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd3 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc3_3 = sqrt(Lcd3);
-    const double Lci3 = (1.0/Lc3_3);
-    const double Lc4_3 = Lci3*(-Lc3_0*Lc4_0 - Lc3_1*Lc4_1 - Lc3_2*Lc4_2 + Ps[43]);
-    const double Lc5_3 = Lci3*(-Lc3_0*Lc5_0 - Lc3_1*Lc5_1 - Lc3_2*Lc5_2 + Ps[44]);
-    const double Lc6_3 = Lci3*(-Lc3_0*Lc6_0 - Lc3_1*Lc6_1 - Lc3_2*Lc6_2 + Ps[45]);
-    const double Lc7_3 = Lci3*(-Lc3_0*Lc7_0 - Lc3_1*Lc7_1 - Lc3_2*Lc7_2 + Ps[46]);
-    const double Lc8_3 = Lci3*(-Lc3_0*Lc8_0 - Lc3_1*Lc8_1 - Lc3_2*Lc8_2 + Ps[47]);
-    const double Lc9_3 = Lci3*(-Lc3_0*Lc9_0 - Lc3_1*Lc9_1 - Lc3_2*Lc9_2 + Ps[48]);
-    const double Lc10_3 = Lci3*(-Lc10_0*Lc3_0 - Lc10_1*Lc3_1 - Lc10_2*Lc3_2 + Ps[49]);
-    const double Lc11_3 = Lci3*(-Lc11_0*Lc3_0 - Lc11_1*Lc3_1 - Lc11_2*Lc3_2 + Ps[50]);
-    const double Lc12_3 = Lci3*(-Lc12_0*Lc3_0 - Lc12_1*Lc3_1 - Lc12_2*Lc3_2 + Ps[51]);
-    const double Lc13_3 = Lci3*(-Lc13_0*Lc3_0 - Lc13_1*Lc3_1 - Lc13_2*Lc3_2 + Ps[52]);
-    const double Lc14_3 = Lci3*(-Lc14_0*Lc3_0 - Lc14_1*Lc3_1 - Lc14_2*Lc3_2 + Ps[53]);
-    const double Lcd4 = -(Lc4_0*Lc4_0) - (Lc4_1*Lc4_1) - (Lc4_2*Lc4_2) - (Lc4_3*Lc4_3) + Ps[54];
-    if (!isfinite(Lcd4)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd4 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc4_4 = sqrt(Lcd4);
-    const double Lci4 = (1.0/Lc4_4);
-    const double Lc5_4 = Lci4*(-Lc4_0*Lc5_0 - Lc4_1*Lc5_1 - Lc4_2*Lc5_2 - Lc4_3*Lc5_3 + Ps[55]);
-    const double Lc6_4 = Lci4*(-Lc4_0*Lc6_0 - Lc4_1*Lc6_1 - Lc4_2*Lc6_2 - Lc4_3*Lc6_3 + Ps[56]);
-    const double Lc7_4 = Lci4*(-Lc4_0*Lc7_0 - Lc4_1*Lc7_1 - Lc4_2*Lc7_2 - Lc4_3*Lc7_3 + Ps[57]);
-    const double Lc8_4 = Lci4*(-Lc4_0*Lc8_0 - Lc4_1*Lc8_1 - Lc4_2*Lc8_2 - Lc4_3*Lc8_3 + Ps[58]);
-    const double Lc9_4 = Lci4*(-Lc4_0*Lc9_0 - Lc4_1*Lc9_1 - Lc4_2*Lc9_2 - Lc4_3*Lc9_3 + Ps[59]);
-    const double Lc10_4 = Lci4*(-Lc10_0*Lc4_0 - Lc10_1*Lc4_1 - Lc10_2*Lc4_2 - Lc10_3*Lc4_3 + Ps[60]);
-    const double Lc11_4 = Lci4*(-Lc11_0*Lc4_0 - Lc11_1*Lc4_1 - Lc11_2*Lc4_2 - Lc11_3*Lc4_3 + Ps[61]);
-    const double Lc12_4 = Lci4*(-Lc12_0*Lc4_0 - Lc12_1*Lc4_1 - Lc12_2*Lc4_2 - Lc12_3*Lc4_3 + Ps[62]);
-    const double Lc13_4 = Lci4*(-Lc13_0*Lc4_0 - Lc13_1*Lc4_1 - Lc13_2*Lc4_2 - Lc13_3*Lc4_3 + Ps[63]);
-    const double Lc14_4 = Lci4*(-Lc14_0*Lc4_0 - Lc14_1*Lc4_1 - Lc14_2*Lc4_2 - Lc14_3*Lc4_3 + Ps[64]);
-    const double Lcd5 = -(Lc5_0*Lc5_0) - (Lc5_1*Lc5_1) - (Lc5_2*Lc5_2) - (Lc5_3*Lc5_3) - (Lc5_4*Lc5_4) + Ps[65];
-    if (!isfinite(Lcd5)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd5 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc5_5 = sqrt(Lcd5);
-    const double Lci5 = (1.0/Lc5_5);
-    const double Lc6_5 = Lci5*(-Lc5_0*Lc6_0 - Lc5_1*Lc6_1 - Lc5_2*Lc6_2 - Lc5_3*Lc6_3 - Lc5_4*Lc6_4 + Ps[66]);
-    const double Lc7_5 = Lci5*(-Lc5_0*Lc7_0 - Lc5_1*Lc7_1 - Lc5_2*Lc7_2 - Lc5_3*Lc7_3 - Lc5_4*Lc7_4 + Ps[67]);
-    const double Lc8_5 = Lci5*(-Lc5_0*Lc8_0 - Lc5_1*Lc8_1 - Lc5_2*Lc8_2 - Lc5_3*Lc8_3 - Lc5_4*Lc8_4 + Ps[68]);
-    const double Lc9_5 = Lci5*(-Lc5_0*Lc9_0 - Lc5_1*Lc9_1 - Lc5_2*Lc9_2 - Lc5_3*Lc9_3 - Lc5_4*Lc9_4 + Ps[69]);
-    const double Lc10_5 = Lci5*(-Lc10_0*Lc5_0 - Lc10_1*Lc5_1 - Lc10_2*Lc5_2 - Lc10_3*Lc5_3 - Lc10_4*Lc5_4 + Ps[70]);
-    const double Lc11_5 = Lci5*(-Lc11_0*Lc5_0 - Lc11_1*Lc5_1 - Lc11_2*Lc5_2 - Lc11_3*Lc5_3 - Lc11_4*Lc5_4 + Ps[71]);
-    const double Lc12_5 = Lci5*(-Lc12_0*Lc5_0 - Lc12_1*Lc5_1 - Lc12_2*Lc5_2 - Lc12_3*Lc5_3 - Lc12_4*Lc5_4 + Ps[72]);
-    const double Lc13_5 = Lci5*(-Lc13_0*Lc5_0 - Lc13_1*Lc5_1 - Lc13_2*Lc5_2 - Lc13_3*Lc5_3 - Lc13_4*Lc5_4 + Ps[73]);
-    const double Lc14_5 = Lci5*(-Lc14_0*Lc5_0 - Lc14_1*Lc5_1 - Lc14_2*Lc5_2 - Lc14_3*Lc5_3 - Lc14_4*Lc5_4 + Ps[74]);
-    const double Lcd6 = -(Lc6_0*Lc6_0) - (Lc6_1*Lc6_1) - (Lc6_2*Lc6_2) - (Lc6_3*Lc6_3) - (Lc6_4*Lc6_4) - (Lc6_5*Lc6_5) + Ps[75];
-    if (!isfinite(Lcd6)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd6 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc6_6 = sqrt(Lcd6);
-    const double Lci6 = (1.0/Lc6_6);
-    const double Lc7_6 = Lci6*(-Lc6_0*Lc7_0 - Lc6_1*Lc7_1 - Lc6_2*Lc7_2 - Lc6_3*Lc7_3 - Lc6_4*Lc7_4 - Lc6_5*Lc7_5 + Ps[76]);
-    const double Lc8_6 = Lci6*(-Lc6_0*Lc8_0 - Lc6_1*Lc8_1 - Lc6_2*Lc8_2 - Lc6_3*Lc8_3 - Lc6_4*Lc8_4 - Lc6_5*Lc8_5 + Ps[77]);
-    const double Lc9_6 = Lci6*(-Lc6_0*Lc9_0 - Lc6_1*Lc9_1 - Lc6_2*Lc9_2 - Lc6_3*Lc9_3 - Lc6_4*Lc9_4 - Lc6_5*Lc9_5 + Ps[78]);
-    const double Lc10_6 = Lci6*(-Lc10_0*Lc6_0 - Lc10_1*Lc6_1 - Lc10_2*Lc6_2 - Lc10_3*Lc6_3 - Lc10_4*Lc6_4 - Lc10_5*Lc6_5 + Ps[79]);
-    const double Lc11_6 = Lci6*(-Lc11_0*Lc6_0 - Lc11_1*Lc6_1 - Lc11_2*Lc6_2 - Lc11_3*Lc6_3 - Lc11_4*Lc6_4 - Lc11_5*Lc6_5 + Ps[80]);
-    const double Lc12_6 = Lci6*(-Lc12_0*Lc6_0 - Lc12_1*Lc6_1 - Lc12_2*Lc6_2 - Lc12_3*Lc6_3 - Lc12_4*Lc6_4 - Lc12_5*Lc6_5 + Ps[81]);
-    const double Lc13_6 = Lci6*(-Lc13_0*Lc6_0 - Lc13_1*Lc6_1 - Lc13_2*Lc6_2 - Lc13_3*Lc6_3 - Lc13_4*Lc6_4 - Lc13_5*Lc6_5 + Ps[82]);
-    const double Lc14_6 = Lci6*(-Lc14_0*Lc6_0 - Lc14_1*Lc6_1 - Lc14_2*Lc6_2 - Lc14_3*Lc6_3 - Lc14_4*Lc6_4 - Lc14_5*Lc6_5 + Ps[83]);
-    const double Lcd7 = -(Lc7_0*Lc7_0) - (Lc7_1*Lc7_1) - (Lc7_2*Lc7_2) - (Lc7_3*Lc7_3) - (Lc7_4*Lc7_4) - (Lc7_5*Lc7_5) - (Lc7_6*Lc7_6) + Ps[84];
-    if (!isfinite(Lcd7)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd7 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc7_7 = sqrt(Lcd7);
-    const double Lci7 = (1.0/Lc7_7);
-    const double Lc8_7 = Lci7*(-Lc7_0*Lc8_0 - Lc7_1*Lc8_1 - Lc7_2*Lc8_2 - Lc7_3*Lc8_3 - Lc7_4*Lc8_4 - Lc7_5*Lc8_5 - Lc7_6*Lc8_6 + Ps[85]);
-    const double Lc9_7 = Lci7*(-Lc7_0*Lc9_0 - Lc7_1*Lc9_1 - Lc7_2*Lc9_2 - Lc7_3*Lc9_3 - Lc7_4*Lc9_4 - Lc7_5*Lc9_5 - Lc7_6*Lc9_6 + Ps[86]);
-    const double Lc10_7 = Lci7*(-Lc10_0*Lc7_0 - Lc10_1*Lc7_1 - Lc10_2*Lc7_2 - Lc10_3*Lc7_3 - Lc10_4*Lc7_4 - Lc10_5*Lc7_5 - Lc10_6*Lc7_6 + Ps[87]);
-    const double Lc11_7 = Lci7*(-Lc11_0*Lc7_0 - Lc11_1*Lc7_1 - Lc11_2*Lc7_2 - Lc11_3*Lc7_3 - Lc11_4*Lc7_4 - Lc11_5*Lc7_5 - Lc11_6*Lc7_6 + Ps[88]);
-    const double Lc12_7 = Lci7*(-Lc12_0*Lc7_0 - Lc12_1*Lc7_1 - Lc12_2*Lc7_2 - Lc12_3*Lc7_3 - Lc12_4*Lc7_4 - Lc12_5*Lc7_5 - Lc12_6*Lc7_6 + Ps[89]);
-    const double Lc13_7 = Lci7*(-Lc13_0*Lc7_0 - Lc13_1*Lc7_1 - Lc13_2*Lc7_2 - Lc13_3*Lc7_3 - Lc13_4*Lc7_4 - Lc13_5*Lc7_5 - Lc13_6*Lc7_6 + Ps[90]);
-    const double Lc14_7 = Lci7*(-Lc14_0*Lc7_0 - Lc14_1*Lc7_1 - Lc14_2*Lc7_2 - Lc14_3*Lc7_3 - Lc14_4*Lc7_4 - Lc14_5*Lc7_5 - Lc14_6*Lc7_6 + Ps[91]);
-    const double Lcd8 = -(Lc8_0*Lc8_0) - (Lc8_1*Lc8_1) - (Lc8_2*Lc8_2) - (Lc8_3*Lc8_3) - (Lc8_4*Lc8_4) - (Lc8_5*Lc8_5) - (Lc8_6*Lc8_6) - (Lc8_7*Lc8_7) + Ps[92];
-    if (!isfinite(Lcd8)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd8 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc8_8 = sqrt(Lcd8);
-    const double Lci8 = (1.0/Lc8_8);
-    const double Lc9_8 = Lci8*(-Lc8_0*Lc9_0 - Lc8_1*Lc9_1 - Lc8_2*Lc9_2 - Lc8_3*Lc9_3 - Lc8_4*Lc9_4 - Lc8_5*Lc9_5 - Lc8_6*Lc9_6 - Lc8_7*Lc9_7 + Ps[93]);
-    const double Lc10_8 = Lci8*(-Lc10_0*Lc8_0 - Lc10_1*Lc8_1 - Lc10_2*Lc8_2 - Lc10_3*Lc8_3 - Lc10_4*Lc8_4 - Lc10_5*Lc8_5 - Lc10_6*Lc8_6 - Lc10_7*Lc8_7 + Ps[94]);
-    const double Lc11_8 = Lci8*(-Lc11_0*Lc8_0 - Lc11_1*Lc8_1 - Lc11_2*Lc8_2 - Lc11_3*Lc8_3 - Lc11_4*Lc8_4 - Lc11_5*Lc8_5 - Lc11_6*Lc8_6 - Lc11_7*Lc8_7 + Ps[95]);
-    const double Lc12_8 = Lci8*(-Lc12_0*Lc8_0 - Lc12_1*Lc8_1 - Lc12_2*Lc8_2 - Lc12_3*Lc8_3 - Lc12_4*Lc8_4 - Lc12_5*Lc8_5 - Lc12_6*Lc8_6 - Lc12_7*Lc8_7 + Ps[96]);
-    const double Lc13_8 = Lci8*(-Lc13_0*Lc8_0 - Lc13_1*Lc8_1 - Lc13_2*Lc8_2 - Lc13_3*Lc8_3 - Lc13_4*Lc8_4 - Lc13_5*Lc8_5 - Lc13_6*Lc8_6 - Lc13_7*Lc8_7 + Ps[97]);
-    const double Lc14_8 = Lci8*(-Lc14_0*Lc8_0 - Lc14_1*Lc8_1 - Lc14_2*Lc8_2 - Lc14_3*Lc8_3 - Lc14_4*Lc8_4 - Lc14_5*Lc8_5 - Lc14_6*Lc8_6 - Lc14_7*Lc8_7 + Ps[98]);
-    const double Lcd9 = -(Lc9_0*Lc9_0) - (Lc9_1*Lc9_1) - (Lc9_2*Lc9_2) - (Lc9_3*Lc9_3) - (Lc9_4*Lc9_4) - (Lc9_5*Lc9_5) - (Lc9_6*Lc9_6) - (Lc9_7*Lc9_7) - (Lc9_8*Lc9_8) + Ps[99];
-    if (!isfinite(Lcd9)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd9 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc9_9 = sqrt(Lcd9);
-    const double Lci9 = (1.0/Lc9_9);
-    const double Lc10_9 = Lci9*(-Lc10_0*Lc9_0 - Lc10_1*Lc9_1 - Lc10_2*Lc9_2 - Lc10_3*Lc9_3 - Lc10_4*Lc9_4 - Lc10_5*Lc9_5 - Lc10_6*Lc9_6 - Lc10_7*Lc9_7 - Lc10_8*Lc9_8 + Ps[100]);
-    const double Lc11_9 = Lci9*(-Lc11_0*Lc9_0 - Lc11_1*Lc9_1 - Lc11_2*Lc9_2 - Lc11_3*Lc9_3 - Lc11_4*Lc9_4 - Lc11_5*Lc9_5 - Lc11_6*Lc9_6 - Lc11_7*Lc9_7 - Lc11_8*Lc9_8 + Ps[101]);
-    const double Lc12_9 = Lci9*(-Lc12_0*Lc9_0 - Lc12_1*Lc9_1 - Lc12_2*Lc9_2 - Lc12_3*Lc9_3 - Lc12_4*Lc9_4 - Lc12_5*Lc9_5 - Lc12_6*Lc9_6 - Lc12_7*Lc9_7 - Lc12_8*Lc9_8 + Ps[102]);
-    const double Lc13_9 = Lci9*(-Lc13_0*Lc9_0 - Lc13_1*Lc9_1 - Lc13_2*Lc9_2 - Lc13_3*Lc9_3 - Lc13_4*Lc9_4 - Lc13_5*Lc9_5 - Lc13_6*Lc9_6 - Lc13_7*Lc9_7 - Lc13_8*Lc9_8 + Ps[103]);
-    const double Lc14_9 = Lci9*(-Lc14_0*Lc9_0 - Lc14_1*Lc9_1 - Lc14_2*Lc9_2 - Lc14_3*Lc9_3 - Lc14_4*Lc9_4 - Lc14_5*Lc9_5 - Lc14_6*Lc9_6 - Lc14_7*Lc9_7 - Lc14_8*Lc9_8 + Ps[104]);
-    const double Lcd10 = -(Lc10_0*Lc10_0) - (Lc10_1*Lc10_1) - (Lc10_2*Lc10_2) - (Lc10_3*Lc10_3) - (Lc10_4*Lc10_4) - (Lc10_5*Lc10_5) - (Lc10_6*Lc10_6) - (Lc10_7*Lc10_7) - (Lc10_8*Lc10_8) - (Lc10_9*Lc10_9) + Ps[105];
-    if (!isfinite(Lcd10)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd10 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc10_10 = sqrt(Lcd10);
-    const double Lci10 = (1.0/Lc10_10);
-    const double Lc11_10 = Lci10*(-Lc10_0*Lc11_0 - Lc10_1*Lc11_1 - Lc10_2*Lc11_2 - Lc10_3*Lc11_3 - Lc10_4*Lc11_4 - Lc10_5*Lc11_5 - Lc10_6*Lc11_6 - Lc10_7*Lc11_7 - Lc10_8*Lc11_8 - Lc10_9*Lc11_9 + Ps[106]);
-    const double Lc12_10 = Lci10*(-Lc10_0*Lc12_0 - Lc10_1*Lc12_1 - Lc10_2*Lc12_2 - Lc10_3*Lc12_3 - Lc10_4*Lc12_4 - Lc10_5*Lc12_5 - Lc10_6*Lc12_6 - Lc10_7*Lc12_7 - Lc10_8*Lc12_8 - Lc10_9*Lc12_9 + Ps[107]);
-    const double Lc13_10 = Lci10*(-Lc10_0*Lc13_0 - Lc10_1*Lc13_1 - Lc10_2*Lc13_2 - Lc10_3*Lc13_3 - Lc10_4*Lc13_4 - Lc10_5*Lc13_5 - Lc10_6*Lc13_6 - Lc10_7*Lc13_7 - Lc10_8*Lc13_8 - Lc10_9*Lc13_9 + Ps[108]);
-    const double Lc14_10 = Lci10*(-Lc10_0*Lc14_0 - Lc10_1*Lc14_1 - Lc10_2*Lc14_2 - Lc10_3*Lc14_3 - Lc10_4*Lc14_4 - Lc10_5*Lc14_5 - Lc10_6*Lc14_6 - Lc10_7*Lc14_7 - Lc10_8*Lc14_8 - Lc10_9*Lc14_9 + Ps[109]);
-    const double Lcd11 = -(Lc11_0*Lc11_0) - (Lc11_1*Lc11_1) - (Lc11_10*Lc11_10) - (Lc11_2*Lc11_2) - (Lc11_3*Lc11_3) - (Lc11_4*Lc11_4) - (Lc11_5*Lc11_5) - (Lc11_6*Lc11_6) - (Lc11_7*Lc11_7) - (Lc11_8*Lc11_8) - (Lc11_9*Lc11_9) + Ps[110];
-    if (!isfinite(Lcd11)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd11 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc11_11 = sqrt(Lcd11);
-    const double Lci11 = (1.0/Lc11_11);
-    const double Lc12_11 = Lci11*(-Lc11_0*Lc12_0 - Lc11_1*Lc12_1 - Lc11_10*Lc12_10 - Lc11_2*Lc12_2 - Lc11_3*Lc12_3 - Lc11_4*Lc12_4 - Lc11_5*Lc12_5 - Lc11_6*Lc12_6 - Lc11_7*Lc12_7 - Lc11_8*Lc12_8 - Lc11_9*Lc12_9 + Ps[111]);
-    const double Lc13_11 = Lci11*(-Lc11_0*Lc13_0 - Lc11_1*Lc13_1 - Lc11_10*Lc13_10 - Lc11_2*Lc13_2 - Lc11_3*Lc13_3 - Lc11_4*Lc13_4 - Lc11_5*Lc13_5 - Lc11_6*Lc13_6 - Lc11_7*Lc13_7 - Lc11_8*Lc13_8 - Lc11_9*Lc13_9 + Ps[112]);
-    const double Lc14_11 = Lci11*(-Lc11_0*Lc14_0 - Lc11_1*Lc14_1 - Lc11_10*Lc14_10 - Lc11_2*Lc14_2 - Lc11_3*Lc14_3 - Lc11_4*Lc14_4 - Lc11_5*Lc14_5 - Lc11_6*Lc14_6 - Lc11_7*Lc14_7 - Lc11_8*Lc14_8 - Lc11_9*Lc14_9 + Ps[113]);
-    const double Lcd12 = -(Lc12_0*Lc12_0) - (Lc12_1*Lc12_1) - (Lc12_10*Lc12_10) - (Lc12_11*Lc12_11) - (Lc12_2*Lc12_2) - (Lc12_3*Lc12_3) - (Lc12_4*Lc12_4) - (Lc12_5*Lc12_5) - (Lc12_6*Lc12_6) - (Lc12_7*Lc12_7) - (Lc12_8*Lc12_8) - (Lc12_9*Lc12_9) + Ps[114];
-    if (!isfinite(Lcd12)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd12 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc12_12 = sqrt(Lcd12);
-    const double Lci12 = (1.0/Lc12_12);
-    const double Lc13_12 = Lci12*(-Lc12_0*Lc13_0 - Lc12_1*Lc13_1 - Lc12_10*Lc13_10 - Lc12_11*Lc13_11 - Lc12_2*Lc13_2 - Lc12_3*Lc13_3 - Lc12_4*Lc13_4 - Lc12_5*Lc13_5 - Lc12_6*Lc13_6 - Lc12_7*Lc13_7 - Lc12_8*Lc13_8 - Lc12_9*Lc13_9 + Ps[115]);
-    const double Lc14_12 = Lci12*(-Lc12_0*Lc14_0 - Lc12_1*Lc14_1 - Lc12_10*Lc14_10 - Lc12_11*Lc14_11 - Lc12_2*Lc14_2 - Lc12_3*Lc14_3 - Lc12_4*Lc14_4 - Lc12_5*Lc14_5 - Lc12_6*Lc14_6 - Lc12_7*Lc14_7 - Lc12_8*Lc14_8 - Lc12_9*Lc14_9 + Ps[116]);
-    const double Lcd13 = -(Lc13_0*Lc13_0) - (Lc13_1*Lc13_1) - (Lc13_10*Lc13_10) - (Lc13_11*Lc13_11) - (Lc13_12*Lc13_12) - (Lc13_2*Lc13_2) - (Lc13_3*Lc13_3) - (Lc13_4*Lc13_4) - (Lc13_5*Lc13_5) - (Lc13_6*Lc13_6) - (Lc13_7*Lc13_7) - (Lc13_8*Lc13_8) - (Lc13_9*Lc13_9) + Ps[117];
-    if (!isfinite(Lcd13)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd13 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc13_13 = sqrt(Lcd13);
-    const double Lci13 = (1.0/Lc13_13);
-    const double Lc14_13 = Lci13*(-Lc13_0*Lc14_0 - Lc13_1*Lc14_1 - Lc13_10*Lc14_10 - Lc13_11*Lc14_11 - Lc13_12*Lc14_12 - Lc13_2*Lc14_2 - Lc13_3*Lc14_3 - Lc13_4*Lc14_4 - Lc13_5*Lc14_5 - Lc13_6*Lc14_6 - Lc13_7*Lc14_7 - Lc13_8*Lc14_8 - Lc13_9*Lc14_9 + Ps[118]);
-    const double Lcd14 = -(Lc14_0*Lc14_0) - (Lc14_1*Lc14_1) - (Lc14_10*Lc14_10) - (Lc14_11*Lc14_11) - (Lc14_12*Lc14_12) - (Lc14_13*Lc14_13) - (Lc14_2*Lc14_2) - (Lc14_3*Lc14_3) - (Lc14_4*Lc14_4) - (Lc14_5*Lc14_5) - (Lc14_6*Lc14_6) - (Lc14_7*Lc14_7) - (Lc14_8*Lc14_8) - (Lc14_9*Lc14_9) + Ps[119];
-    if (!isfinite(Lcd14)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd14 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
+    {
+        const int st = nav_ukf_commit_pd(Ps);
+        if (st != NAV_UKF_OK) {
+            return st;
+        }
+    }
     memcpy(s->x, xs, sizeof xs);
     memcpy(s->P, Ps, sizeof Ps);
     return NAV_UKF_OK;
@@ -3483,185 +3150,12 @@ int nav_ukf_update_baro_nis(nav_ukf_t *s, const double *z, double *nis_out)
     if (!nav_ukf_finite(xs, 15u) || !nav_ukf_finite(Ps, 120u)) {
         return NAV_UKF_NON_FINITE;
     }
-    /* commit only a positive definite P: the pivots of its Cholesky factorization */
-    const double Lcd0 = Ps[0];
-    if (!isfinite(Lcd0)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd0 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc0_0 = sqrt(Lcd0);
-    const double Lci0 = (1.0/Lc0_0);
-    const double Lc1_0 = Lci0*Ps[1];
-    const double Lc2_0 = Lci0*Ps[2];
-    const double Lc3_0 = Lci0*Ps[3];
-    const double Lc4_0 = Lci0*Ps[4];
-    const double Lc5_0 = Lci0*Ps[5];
-    const double Lc6_0 = Lci0*Ps[6];
-    const double Lc7_0 = Lci0*Ps[7];
-    const double Lc8_0 = Lci0*Ps[8];
-    const double Lc9_0 = Lci0*Ps[9];
-    const double Lc10_0 = Lci0*Ps[10];
-    const double Lc11_0 = Lci0*Ps[11];
-    const double Lc12_0 = Lci0*Ps[12];
-    const double Lc13_0 = Lci0*Ps[13];
-    const double Lc14_0 = Lci0*Ps[14];
-    const double Lcd1 = -(Lc1_0*Lc1_0) + Ps[15];
-    if (!isfinite(Lcd1)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd1 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc1_1 = sqrt(Lcd1);
-    const double Lci1 = (1.0/Lc1_1);
-    const double Lc2_1 = Lci1*(-Lc1_0*Lc2_0 + Ps[16]);
-    const double Lc3_1 = Lci1*(-Lc1_0*Lc3_0 + Ps[17]);
-    const double Lc4_1 = Lci1*(-Lc1_0*Lc4_0 + Ps[18]);
-    const double Lc5_1 = Lci1*(-Lc1_0*Lc5_0 + Ps[19]);
-    const double Lc6_1 = Lci1*(-Lc1_0*Lc6_0 + Ps[20]);
-    const double Lc7_1 = Lci1*(-Lc1_0*Lc7_0 + Ps[21]);
-    const double Lc8_1 = Lci1*(-Lc1_0*Lc8_0 + Ps[22]);
-    const double Lc9_1 = Lci1*(-Lc1_0*Lc9_0 + Ps[23]);
-    const double Lc10_1 = Lci1*(-Lc10_0*Lc1_0 + Ps[24]);
-    const double Lc11_1 = Lci1*(-Lc11_0*Lc1_0 + Ps[25]);
-    const double Lc12_1 = Lci1*(-Lc12_0*Lc1_0 + Ps[26]);
-    const double Lc13_1 = Lci1*(-Lc13_0*Lc1_0 + Ps[27]);
-    const double Lc14_1 = Lci1*(-Lc14_0*Lc1_0 + Ps[28]);
-    const double Lcd2 = -(Lc2_0*Lc2_0) - (Lc2_1*Lc2_1) + Ps[29];
-    if (!isfinite(Lcd2)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd2 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc2_2 = sqrt(Lcd2);
-    const double Lci2 = (1.0/Lc2_2);
-    const double Lc3_2 = Lci2*(-Lc2_0*Lc3_0 - Lc2_1*Lc3_1 + Ps[30]);
-    const double Lc4_2 = Lci2*(-Lc2_0*Lc4_0 - Lc2_1*Lc4_1 + Ps[31]);
-    const double Lc5_2 = Lci2*(-Lc2_0*Lc5_0 - Lc2_1*Lc5_1 + Ps[32]);
-    const double Lc6_2 = Lci2*(-Lc2_0*Lc6_0 - Lc2_1*Lc6_1 + Ps[33]);
-    const double Lc7_2 = Lci2*(-Lc2_0*Lc7_0 - Lc2_1*Lc7_1 + Ps[34]);
-    const double Lc8_2 = Lci2*(-Lc2_0*Lc8_0 - Lc2_1*Lc8_1 + Ps[35]);
-    const double Lc9_2 = Lci2*(-Lc2_0*Lc9_0 - Lc2_1*Lc9_1 + Ps[36]);
-    const double Lc10_2 = Lci2*(-Lc10_0*Lc2_0 - Lc10_1*Lc2_1 + Ps[37]);
-    const double Lc11_2 = Lci2*(-Lc11_0*Lc2_0 - Lc11_1*Lc2_1 + Ps[38]);
-    const double Lc12_2 = Lci2*(-Lc12_0*Lc2_0 - Lc12_1*Lc2_1 + Ps[39]);
-    const double Lc13_2 = Lci2*(-Lc13_0*Lc2_0 - Lc13_1*Lc2_1 + Ps[40]);
-    const double Lc14_2 = Lci2*(-Lc14_0*Lc2_0 - Lc14_1*Lc2_1 + Ps[41]);
-    const double Lcd3 = -(Lc3_0*Lc3_0) - (Lc3_1*Lc3_1) - (Lc3_2*Lc3_2) + Ps[42];
-    if (!isfinite(Lcd3)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd3 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc3_3 = sqrt(Lcd3);
-    const double Lci3 = (1.0/Lc3_3);
-    const double Lc4_3 = Lci3*(-Lc3_0*Lc4_0 - Lc3_1*Lc4_1 - Lc3_2*Lc4_2 + Ps[43]);
-    const double Lc5_3 = Lci3*(-Lc3_0*Lc5_0 - Lc3_1*Lc5_1 - Lc3_2*Lc5_2 + Ps[44]);
-    const double Lc6_3 = Lci3*(-Lc3_0*Lc6_0 - Lc3_1*Lc6_1 - Lc3_2*Lc6_2 + Ps[45]);
-    const double Lc7_3 = Lci3*(-Lc3_0*Lc7_0 - Lc3_1*Lc7_1 - Lc3_2*Lc7_2 + Ps[46]);
-    const double Lc8_3 = Lci3*(-Lc3_0*Lc8_0 - Lc3_1*Lc8_1 - Lc3_2*Lc8_2 + Ps[47]);
-    const double Lc9_3 = Lci3*(-Lc3_0*Lc9_0 - Lc3_1*Lc9_1 - Lc3_2*Lc9_2 + Ps[48]);
-    const double Lc10_3 = Lci3*(-Lc10_0*Lc3_0 - Lc10_1*Lc3_1 - Lc10_2*Lc3_2 + Ps[49]);
-    const double Lc11_3 = Lci3*(-Lc11_0*Lc3_0 - Lc11_1*Lc3_1 - Lc11_2*Lc3_2 + Ps[50]);
-    const double Lc12_3 = Lci3*(-Lc12_0*Lc3_0 - Lc12_1*Lc3_1 - Lc12_2*Lc3_2 + Ps[51]);
-    const double Lc13_3 = Lci3*(-Lc13_0*Lc3_0 - Lc13_1*Lc3_1 - Lc13_2*Lc3_2 + Ps[52]);
-    const double Lc14_3 = Lci3*(-Lc14_0*Lc3_0 - Lc14_1*Lc3_1 - Lc14_2*Lc3_2 + Ps[53]);
-    const double Lcd4 = -(Lc4_0*Lc4_0) - (Lc4_1*Lc4_1) - (Lc4_2*Lc4_2) - (Lc4_3*Lc4_3) + Ps[54];
-    if (!isfinite(Lcd4)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd4 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc4_4 = sqrt(Lcd4);
-    const double Lci4 = (1.0/Lc4_4);
-    const double Lc5_4 = Lci4*(-Lc4_0*Lc5_0 - Lc4_1*Lc5_1 - Lc4_2*Lc5_2 - Lc4_3*Lc5_3 + Ps[55]);
-    const double Lc6_4 = Lci4*(-Lc4_0*Lc6_0 - Lc4_1*Lc6_1 - Lc4_2*Lc6_2 - Lc4_3*Lc6_3 + Ps[56]);
-    const double Lc7_4 = Lci4*(-Lc4_0*Lc7_0 - Lc4_1*Lc7_1 - Lc4_2*Lc7_2 - Lc4_3*Lc7_3 + Ps[57]);
-    const double Lc8_4 = Lci4*(-Lc4_0*Lc8_0 - Lc4_1*Lc8_1 - Lc4_2*Lc8_2 - Lc4_3*Lc8_3 + Ps[58]);
-    const double Lc9_4 = Lci4*(-Lc4_0*Lc9_0 - Lc4_1*Lc9_1 - Lc4_2*Lc9_2 - Lc4_3*Lc9_3 + Ps[59]);
-    const double Lc10_4 = Lci4*(-Lc10_0*Lc4_0 - Lc10_1*Lc4_1 - Lc10_2*Lc4_2 - Lc10_3*Lc4_3 + Ps[60]);
-    const double Lc11_4 = Lci4*(-Lc11_0*Lc4_0 - Lc11_1*Lc4_1 - Lc11_2*Lc4_2 - Lc11_3*Lc4_3 + Ps[61]);
-    const double Lc12_4 = Lci4*(-Lc12_0*Lc4_0 - Lc12_1*Lc4_1 - Lc12_2*Lc4_2 - Lc12_3*Lc4_3 + Ps[62]);
-    const double Lc13_4 = Lci4*(-Lc13_0*Lc4_0 - Lc13_1*Lc4_1 - Lc13_2*Lc4_2 - Lc13_3*Lc4_3 + Ps[63]);
-    const double Lc14_4 = Lci4*(-Lc14_0*Lc4_0 - Lc14_1*Lc4_1 - Lc14_2*Lc4_2 - Lc14_3*Lc4_3 + Ps[64]);
-    const double Lcd5 = -(Lc5_0*Lc5_0) - (Lc5_1*Lc5_1) - (Lc5_2*Lc5_2) - (Lc5_3*Lc5_3) - (Lc5_4*Lc5_4) + Ps[65];
-    if (!isfinite(Lcd5)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd5 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc5_5 = sqrt(Lcd5);
-    const double Lci5 = (1.0/Lc5_5);
-    const double Lc6_5 = Lci5*(-Lc5_0*Lc6_0 - Lc5_1*Lc6_1 - Lc5_2*Lc6_2 - Lc5_3*Lc6_3 - Lc5_4*Lc6_4 + Ps[66]);
-    const double Lc7_5 = Lci5*(-Lc5_0*Lc7_0 - Lc5_1*Lc7_1 - Lc5_2*Lc7_2 - Lc5_3*Lc7_3 - Lc5_4*Lc7_4 + Ps[67]);
-    const double Lc8_5 = Lci5*(-Lc5_0*Lc8_0 - Lc5_1*Lc8_1 - Lc5_2*Lc8_2 - Lc5_3*Lc8_3 - Lc5_4*Lc8_4 + Ps[68]);
-    const double Lc9_5 = Lci5*(-Lc5_0*Lc9_0 - Lc5_1*Lc9_1 - Lc5_2*Lc9_2 - Lc5_3*Lc9_3 - Lc5_4*Lc9_4 + Ps[69]);
-    const double Lc10_5 = Lci5*(-Lc10_0*Lc5_0 - Lc10_1*Lc5_1 - Lc10_2*Lc5_2 - Lc10_3*Lc5_3 - Lc10_4*Lc5_4 + Ps[70]);
-    const double Lc11_5 = Lci5*(-Lc11_0*Lc5_0 - Lc11_1*Lc5_1 - Lc11_2*Lc5_2 - Lc11_3*Lc5_3 - Lc11_4*Lc5_4 + Ps[71]);
-    const double Lc12_5 = Lci5*(-Lc12_0*Lc5_0 - Lc12_1*Lc5_1 - Lc12_2*Lc5_2 - Lc12_3*Lc5_3 - Lc12_4*Lc5_4 + Ps[72]);
-    const double Lc13_5 = Lci5*(-Lc13_0*Lc5_0 - Lc13_1*Lc5_1 - Lc13_2*Lc5_2 - Lc13_3*Lc5_3 - Lc13_4*Lc5_4 + Ps[73]);
-    const double Lc14_5 = Lci5*(-Lc14_0*Lc5_0 - Lc14_1*Lc5_1 - Lc14_2*Lc5_2 - Lc14_3*Lc5_3 - Lc14_4*Lc5_4 + Ps[74]);
-    const double Lcd6 = -(Lc6_0*Lc6_0) - (Lc6_1*Lc6_1) - (Lc6_2*Lc6_2) - (Lc6_3*Lc6_3) - (Lc6_4*Lc6_4) - (Lc6_5*Lc6_5) + Ps[75];
-    if (!isfinite(Lcd6)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd6 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc6_6 = sqrt(Lcd6);
-    const double Lci6 = (1.0/Lc6_6);
-    const double Lc7_6 = Lci6*(-Lc6_0*Lc7_0 - Lc6_1*Lc7_1 - Lc6_2*Lc7_2 - Lc6_3*Lc7_3 - Lc6_4*Lc7_4 - Lc6_5*Lc7_5 + Ps[76]);
-    const double Lc8_6 = Lci6*(-Lc6_0*Lc8_0 - Lc6_1*Lc8_1 - Lc6_2*Lc8_2 - Lc6_3*Lc8_3 - Lc6_4*Lc8_4 - Lc6_5*Lc8_5 + Ps[77]);
-    const double Lc9_6 = Lci6*(-Lc6_0*Lc9_0 - Lc6_1*Lc9_1 - Lc6_2*Lc9_2 - Lc6_3*Lc9_3 - Lc6_4*Lc9_4 - Lc6_5*Lc9_5 + Ps[78]);
-    const double Lc10_6 = Lci6*(-Lc10_0*Lc6_0 - Lc10_1*Lc6_1 - Lc10_2*Lc6_2 - Lc10_3*Lc6_3 - Lc10_4*Lc6_4 - Lc10_5*Lc6_5 + Ps[79]);
-    const double Lc11_6 = Lci6*(-Lc11_0*Lc6_0 - Lc11_1*Lc6_1 - Lc11_2*Lc6_2 - Lc11_3*Lc6_3 - Lc11_4*Lc6_4 - Lc11_5*Lc6_5 + Ps[80]);
-    const double Lc12_6 = Lci6*(-Lc12_0*Lc6_0 - Lc12_1*Lc6_1 - Lc12_2*Lc6_2 - Lc12_3*Lc6_3 - Lc12_4*Lc6_4 - Lc12_5*Lc6_5 + Ps[81]);
-    const double Lc13_6 = Lci6*(-Lc13_0*Lc6_0 - Lc13_1*Lc6_1 - Lc13_2*Lc6_2 - Lc13_3*Lc6_3 - Lc13_4*Lc6_4 - Lc13_5*Lc6_5 + Ps[82]);
-    const double Lc14_6 = Lci6*(-Lc14_0*Lc6_0 - Lc14_1*Lc6_1 - Lc14_2*Lc6_2 - Lc14_3*Lc6_3 - Lc14_4*Lc6_4 - Lc14_5*Lc6_5 + Ps[83]);
-    const double Lcd7 = -(Lc7_0*Lc7_0) - (Lc7_1*Lc7_1) - (Lc7_2*Lc7_2) - (Lc7_3*Lc7_3) - (Lc7_4*Lc7_4) - (Lc7_5*Lc7_5) - (Lc7_6*Lc7_6) + Ps[84];
-    if (!isfinite(Lcd7)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd7 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc7_7 = sqrt(Lcd7);
-    const double Lci7 = (1.0/Lc7_7);
-    const double Lc8_7 = Lci7*(-Lc7_0*Lc8_0 - Lc7_1*Lc8_1 - Lc7_2*Lc8_2 - Lc7_3*Lc8_3 - Lc7_4*Lc8_4 - Lc7_5*Lc8_5 - Lc7_6*Lc8_6 + Ps[85]);
-    const double Lc9_7 = Lci7*(-Lc7_0*Lc9_0 - Lc7_1*Lc9_1 - Lc7_2*Lc9_2 - Lc7_3*Lc9_3 - Lc7_4*Lc9_4 - Lc7_5*Lc9_5 - Lc7_6*Lc9_6 + Ps[86]);
-    const double Lc10_7 = Lci7*(-Lc10_0*Lc7_0 - Lc10_1*Lc7_1 - Lc10_2*Lc7_2 - Lc10_3*Lc7_3 - Lc10_4*Lc7_4 - Lc10_5*Lc7_5 - Lc10_6*Lc7_6 + Ps[87]);
-    const double Lc11_7 = Lci7*(-Lc11_0*Lc7_0 - Lc11_1*Lc7_1 - Lc11_2*Lc7_2 - Lc11_3*Lc7_3 - Lc11_4*Lc7_4 - Lc11_5*Lc7_5 - Lc11_6*Lc7_6 + Ps[88]);
-    const double Lc12_7 = Lci7*(-Lc12_0*Lc7_0 - Lc12_1*Lc7_1 - Lc12_2*Lc7_2 - Lc12_3*Lc7_3 - Lc12_4*Lc7_4 - Lc12_5*Lc7_5 - Lc12_6*Lc7_6 + Ps[89]);
-    const double Lc13_7 = Lci7*(-Lc13_0*Lc7_0 - Lc13_1*Lc7_1 - Lc13_2*Lc7_2 - Lc13_3*Lc7_3 - Lc13_4*Lc7_4 - Lc13_5*Lc7_5 - Lc13_6*Lc7_6 + Ps[90]);
-    const double Lc14_7 = Lci7*(-Lc14_0*Lc7_0 - Lc14_1*Lc7_1 - Lc14_2*Lc7_2 - Lc14_3*Lc7_3 - Lc14_4*Lc7_4 - Lc14_5*Lc7_5 - Lc14_6*Lc7_6 + Ps[91]);
-    const double Lcd8 = -(Lc8_0*Lc8_0) - (Lc8_1*Lc8_1) - (Lc8_2*Lc8_2) - (Lc8_3*Lc8_3) - (Lc8_4*Lc8_4) - (Lc8_5*Lc8_5) - (Lc8_6*Lc8_6) - (Lc8_7*Lc8_7) + Ps[92];
-    if (!isfinite(Lcd8)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd8 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc8_8 = sqrt(Lcd8);
-    const double Lci8 = (1.0/Lc8_8);
-    const double Lc9_8 = Lci8*(-Lc8_0*Lc9_0 - Lc8_1*Lc9_1 - Lc8_2*Lc9_2 - Lc8_3*Lc9_3 - Lc8_4*Lc9_4 - Lc8_5*Lc9_5 - Lc8_6*Lc9_6 - Lc8_7*Lc9_7 + Ps[93]);
-    const double Lc10_8 = Lci8*(-Lc10_0*Lc8_0 - Lc10_1*Lc8_1 - Lc10_2*Lc8_2 - Lc10_3*Lc8_3 - Lc10_4*Lc8_4 - Lc10_5*Lc8_5 - Lc10_6*Lc8_6 - Lc10_7*Lc8_7 + Ps[94]);
-    const double Lc11_8 = Lci8*(-Lc11_0*Lc8_0 - Lc11_1*Lc8_1 - Lc11_2*Lc8_2 - Lc11_3*Lc8_3 - Lc11_4*Lc8_4 - Lc11_5*Lc8_5 - Lc11_6*Lc8_6 - Lc11_7*Lc8_7 + Ps[95]);
-    const double Lc12_8 = Lci8*(-Lc12_0*Lc8_0 - Lc12_1*Lc8_1 - Lc12_2*Lc8_2 - Lc12_3*Lc8_3 - Lc12_4*Lc8_4 - Lc12_5*Lc8_5 - Lc12_6*Lc8_6 - Lc12_7*Lc8_7 + Ps[96]);
-    const double Lc13_8 = Lci8*(-Lc13_0*Lc8_0 - Lc13_1*Lc8_1 - Lc13_2*Lc8_2 - Lc13_3*Lc8_3 - Lc13_4*Lc8_4 - Lc13_5*Lc8_5 - Lc13_6*Lc8_6 - Lc13_7*Lc8_7 + Ps[97]);
-    const double Lc14_8 = Lci8*(-Lc14_0*Lc8_0 - Lc14_1*Lc8_1 - Lc14_2*Lc8_2 - Lc14_3*Lc8_3 - Lc14_4*Lc8_4 - Lc14_5*Lc8_5 - Lc14_6*Lc8_6 - Lc14_7*Lc8_7 + Ps[98]);
-    const double Lcd9 = -(Lc9_0*Lc9_0) - (Lc9_1*Lc9_1) - (Lc9_2*Lc9_2) - (Lc9_3*Lc9_3) - (Lc9_4*Lc9_4) - (Lc9_5*Lc9_5) - (Lc9_6*Lc9_6) - (Lc9_7*Lc9_7) - (Lc9_8*Lc9_8) + Ps[99];
-    if (!isfinite(Lcd9)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd9 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc9_9 = sqrt(Lcd9);
-    const double Lci9 = (1.0/Lc9_9);
-    const double Lc10_9 = Lci9*(-Lc10_0*Lc9_0 - Lc10_1*Lc9_1 - Lc10_2*Lc9_2 - Lc10_3*Lc9_3 - Lc10_4*Lc9_4 - Lc10_5*Lc9_5 - Lc10_6*Lc9_6 - Lc10_7*Lc9_7 - Lc10_8*Lc9_8 + Ps[100]);
-    const double Lc11_9 = Lci9*(-Lc11_0*Lc9_0 - Lc11_1*Lc9_1 - Lc11_2*Lc9_2 - Lc11_3*Lc9_3 - Lc11_4*Lc9_4 - Lc11_5*Lc9_5 - Lc11_6*Lc9_6 - Lc11_7*Lc9_7 - Lc11_8*Lc9_8 + Ps[101]);
-    const double Lc12_9 = Lci9*(-Lc12_0*Lc9_0 - Lc12_1*Lc9_1 - Lc12_2*Lc9_2 - Lc12_3*Lc9_3 - Lc12_4*Lc9_4 - Lc12_5*Lc9_5 - Lc12_6*Lc9_6 - Lc12_7*Lc9_7 - Lc12_8*Lc9_8 + Ps[102]);
-    const double Lc13_9 = Lci9*(-Lc13_0*Lc9_0 - Lc13_1*Lc9_1 - Lc13_2*Lc9_2 - Lc13_3*Lc9_3 - Lc13_4*Lc9_4 - Lc13_5*Lc9_5 - Lc13_6*Lc9_6 - Lc13_7*Lc9_7 - Lc13_8*Lc9_8 + Ps[103]);
-    const double Lc14_9 = Lci9*(-Lc14_0*Lc9_0 - Lc14_1*Lc9_1 - Lc14_2*Lc9_2 - Lc14_3*Lc9_3 - Lc14_4*Lc9_4 - Lc14_5*Lc9_5 - Lc14_6*Lc9_6 - Lc14_7*Lc9_7 - Lc14_8*Lc9_8 + Ps[104]);
-    const double Lcd10 = -(Lc10_0*Lc10_0) - (Lc10_1*Lc10_1) - (Lc10_2*Lc10_2) - (Lc10_3*Lc10_3) - (Lc10_4*Lc10_4) - (Lc10_5*Lc10_5) - (Lc10_6*Lc10_6) - (Lc10_7*Lc10_7) - (Lc10_8*Lc10_8) - (Lc10_9*Lc10_9) + Ps[105];
-    if (!isfinite(Lcd10)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd10 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc10_10 = sqrt(Lcd10);
-    const double Lci10 = (1.0/Lc10_10);
-    const double Lc11_10 = Lci10*(-Lc10_0*Lc11_0 - Lc10_1*Lc11_1 - Lc10_2*Lc11_2 - Lc10_3*Lc11_3 - Lc10_4*Lc11_4 - Lc10_5*Lc11_5 - Lc10_6*Lc11_6 - Lc10_7*Lc11_7 - Lc10_8*Lc11_8 - Lc10_9*Lc11_9 + Ps[106]);
-    const double Lc12_10 = Lci10*(-Lc10_0*Lc12_0 - Lc10_1*Lc12_1 - Lc10_2*Lc12_2 - Lc10_3*Lc12_3 - Lc10_4*Lc12_4 - Lc10_5*Lc12_5 - Lc10_6*Lc12_6 - Lc10_7*Lc12_7 - Lc10_8*Lc12_8 - Lc10_9*Lc12_9 + Ps[107]);
-    const double Lc13_10 = Lci10*(-Lc10_0*Lc13_0 - Lc10_1*Lc13_1 - Lc10_2*Lc13_2 - Lc10_3*Lc13_3 - Lc10_4*Lc13_4 - Lc10_5*Lc13_5 - Lc10_6*Lc13_6 - Lc10_7*Lc13_7 - Lc10_8*Lc13_8 - Lc10_9*Lc13_9 + Ps[108]);
-    const double Lc14_10 = Lci10*(-Lc10_0*Lc14_0 - Lc10_1*Lc14_1 - Lc10_2*Lc14_2 - Lc10_3*Lc14_3 - Lc10_4*Lc14_4 - Lc10_5*Lc14_5 - Lc10_6*Lc14_6 - Lc10_7*Lc14_7 - Lc10_8*Lc14_8 - Lc10_9*Lc14_9 + Ps[109]);
-    const double Lcd11 = -(Lc11_0*Lc11_0) - (Lc11_1*Lc11_1) - (Lc11_10*Lc11_10) - (Lc11_2*Lc11_2) - (Lc11_3*Lc11_3) - (Lc11_4*Lc11_4) - (Lc11_5*Lc11_5) - (Lc11_6*Lc11_6) - (Lc11_7*Lc11_7) - (Lc11_8*Lc11_8) - (Lc11_9*Lc11_9) + Ps[110];
-    if (!isfinite(Lcd11)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd11 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc11_11 = sqrt(Lcd11);
-    const double Lci11 = (1.0/Lc11_11);
-    const double Lc12_11 = Lci11*(-Lc11_0*Lc12_0 - Lc11_1*Lc12_1 - Lc11_10*Lc12_10 - Lc11_2*Lc12_2 - Lc11_3*Lc12_3 - Lc11_4*Lc12_4 - Lc11_5*Lc12_5 - Lc11_6*Lc12_6 - Lc11_7*Lc12_7 - Lc11_8*Lc12_8 - Lc11_9*Lc12_9 + Ps[111]);
-    const double Lc13_11 = Lci11*(-Lc11_0*Lc13_0 - Lc11_1*Lc13_1 - Lc11_10*Lc13_10 - Lc11_2*Lc13_2 - Lc11_3*Lc13_3 - Lc11_4*Lc13_4 - Lc11_5*Lc13_5 - Lc11_6*Lc13_6 - Lc11_7*Lc13_7 - Lc11_8*Lc13_8 - Lc11_9*Lc13_9 + Ps[112]);
-    const double Lc14_11 = Lci11*(-Lc11_0*Lc14_0 - Lc11_1*Lc14_1 - Lc11_10*Lc14_10 - Lc11_2*Lc14_2 - Lc11_3*Lc14_3 - Lc11_4*Lc14_4 - Lc11_5*Lc14_5 - Lc11_6*Lc14_6 - Lc11_7*Lc14_7 - Lc11_8*Lc14_8 - Lc11_9*Lc14_9 + Ps[113]);
-    const double Lcd12 = -(Lc12_0*Lc12_0) - (Lc12_1*Lc12_1) - (Lc12_10*Lc12_10) - (Lc12_11*Lc12_11) - (Lc12_2*Lc12_2) - (Lc12_3*Lc12_3) - (Lc12_4*Lc12_4) - (Lc12_5*Lc12_5) - (Lc12_6*Lc12_6) - (Lc12_7*Lc12_7) - (Lc12_8*Lc12_8) - (Lc12_9*Lc12_9) + Ps[114];
-    if (!isfinite(Lcd12)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd12 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc12_12 = sqrt(Lcd12);
-    const double Lci12 = (1.0/Lc12_12);
-    const double Lc13_12 = Lci12*(-Lc12_0*Lc13_0 - Lc12_1*Lc13_1 - Lc12_10*Lc13_10 - Lc12_11*Lc13_11 - Lc12_2*Lc13_2 - Lc12_3*Lc13_3 - Lc12_4*Lc13_4 - Lc12_5*Lc13_5 - Lc12_6*Lc13_6 - Lc12_7*Lc13_7 - Lc12_8*Lc13_8 - Lc12_9*Lc13_9 + Ps[115]);
-    const double Lc14_12 = Lci12*(-Lc12_0*Lc14_0 - Lc12_1*Lc14_1 - Lc12_10*Lc14_10 - Lc12_11*Lc14_11 - Lc12_2*Lc14_2 - Lc12_3*Lc14_3 - Lc12_4*Lc14_4 - Lc12_5*Lc14_5 - Lc12_6*Lc14_6 - Lc12_7*Lc14_7 - Lc12_8*Lc14_8 - Lc12_9*Lc14_9 + Ps[116]);
-    const double Lcd13 = -(Lc13_0*Lc13_0) - (Lc13_1*Lc13_1) - (Lc13_10*Lc13_10) - (Lc13_11*Lc13_11) - (Lc13_12*Lc13_12) - (Lc13_2*Lc13_2) - (Lc13_3*Lc13_3) - (Lc13_4*Lc13_4) - (Lc13_5*Lc13_5) - (Lc13_6*Lc13_6) - (Lc13_7*Lc13_7) - (Lc13_8*Lc13_8) - (Lc13_9*Lc13_9) + Ps[117];
-    if (!isfinite(Lcd13)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd13 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc13_13 = sqrt(Lcd13);
-    const double Lci13 = (1.0/Lc13_13);
-    const double Lc14_13 = Lci13*(-Lc13_0*Lc14_0 - Lc13_1*Lc14_1 - Lc13_10*Lc14_10 - Lc13_11*Lc14_11 - Lc13_12*Lc14_12 - Lc13_2*Lc14_2 - Lc13_3*Lc14_3 - Lc13_4*Lc14_4 - Lc13_5*Lc14_5 - Lc13_6*Lc14_6 - Lc13_7*Lc14_7 - Lc13_8*Lc14_8 - Lc13_9*Lc14_9 + Ps[118]);
-    const double Lcd14 = -(Lc14_0*Lc14_0) - (Lc14_1*Lc14_1) - (Lc14_10*Lc14_10) - (Lc14_11*Lc14_11) - (Lc14_12*Lc14_12) - (Lc14_13*Lc14_13) - (Lc14_2*Lc14_2) - (Lc14_3*Lc14_3) - (Lc14_4*Lc14_4) - (Lc14_5*Lc14_5) - (Lc14_6*Lc14_6) - (Lc14_7*Lc14_7) - (Lc14_8*Lc14_8) - (Lc14_9*Lc14_9) + Ps[119];
-    if (!isfinite(Lcd14)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd14 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
+    {
+        const int st = nav_ukf_commit_pd(Ps);
+        if (st != NAV_UKF_OK) {
+            return st;
+        }
+    }
     memcpy(s->x, xs, sizeof xs);
     memcpy(s->P, Ps, sizeof Ps);
     return NAV_UKF_OK;
@@ -4110,185 +3604,12 @@ int nav_ukf_update_mag_heading_nis(nav_ukf_t *s, const double *z, double *nis_ou
     if (!nav_ukf_finite(xs, 15u) || !nav_ukf_finite(Ps, 120u)) {
         return NAV_UKF_NON_FINITE;
     }
-    /* commit only a positive definite P: the pivots of its Cholesky factorization */
-    const double Lcd0 = Ps[0];
-    if (!isfinite(Lcd0)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd0 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc0_0 = sqrt(Lcd0);
-    const double Lci0 = (1.0/Lc0_0);
-    const double Lc1_0 = Lci0*Ps[1];
-    const double Lc2_0 = Lci0*Ps[2];
-    const double Lc3_0 = Lci0*Ps[3];
-    const double Lc4_0 = Lci0*Ps[4];
-    const double Lc5_0 = Lci0*Ps[5];
-    const double Lc6_0 = Lci0*Ps[6];
-    const double Lc7_0 = Lci0*Ps[7];
-    const double Lc8_0 = Lci0*Ps[8];
-    const double Lc9_0 = Lci0*Ps[9];
-    const double Lc10_0 = Lci0*Ps[10];
-    const double Lc11_0 = Lci0*Ps[11];
-    const double Lc12_0 = Lci0*Ps[12];
-    const double Lc13_0 = Lci0*Ps[13];
-    const double Lc14_0 = Lci0*Ps[14];
-    const double Lcd1 = -(Lc1_0*Lc1_0) + Ps[15];
-    if (!isfinite(Lcd1)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd1 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc1_1 = sqrt(Lcd1);
-    const double Lci1 = (1.0/Lc1_1);
-    const double Lc2_1 = Lci1*(-Lc1_0*Lc2_0 + Ps[16]);
-    const double Lc3_1 = Lci1*(-Lc1_0*Lc3_0 + Ps[17]);
-    const double Lc4_1 = Lci1*(-Lc1_0*Lc4_0 + Ps[18]);
-    const double Lc5_1 = Lci1*(-Lc1_0*Lc5_0 + Ps[19]);
-    const double Lc6_1 = Lci1*(-Lc1_0*Lc6_0 + Ps[20]);
-    const double Lc7_1 = Lci1*(-Lc1_0*Lc7_0 + Ps[21]);
-    const double Lc8_1 = Lci1*(-Lc1_0*Lc8_0 + Ps[22]);
-    const double Lc9_1 = Lci1*(-Lc1_0*Lc9_0 + Ps[23]);
-    const double Lc10_1 = Lci1*(-Lc10_0*Lc1_0 + Ps[24]);
-    const double Lc11_1 = Lci1*(-Lc11_0*Lc1_0 + Ps[25]);
-    const double Lc12_1 = Lci1*(-Lc12_0*Lc1_0 + Ps[26]);
-    const double Lc13_1 = Lci1*(-Lc13_0*Lc1_0 + Ps[27]);
-    const double Lc14_1 = Lci1*(-Lc14_0*Lc1_0 + Ps[28]);
-    const double Lcd2 = -(Lc2_0*Lc2_0) - (Lc2_1*Lc2_1) + Ps[29];
-    if (!isfinite(Lcd2)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd2 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc2_2 = sqrt(Lcd2);
-    const double Lci2 = (1.0/Lc2_2);
-    const double Lc3_2 = Lci2*(-Lc2_0*Lc3_0 - Lc2_1*Lc3_1 + Ps[30]);
-    const double Lc4_2 = Lci2*(-Lc2_0*Lc4_0 - Lc2_1*Lc4_1 + Ps[31]);
-    const double Lc5_2 = Lci2*(-Lc2_0*Lc5_0 - Lc2_1*Lc5_1 + Ps[32]);
-    const double Lc6_2 = Lci2*(-Lc2_0*Lc6_0 - Lc2_1*Lc6_1 + Ps[33]);
-    const double Lc7_2 = Lci2*(-Lc2_0*Lc7_0 - Lc2_1*Lc7_1 + Ps[34]);
-    const double Lc8_2 = Lci2*(-Lc2_0*Lc8_0 - Lc2_1*Lc8_1 + Ps[35]);
-    const double Lc9_2 = Lci2*(-Lc2_0*Lc9_0 - Lc2_1*Lc9_1 + Ps[36]);
-    const double Lc10_2 = Lci2*(-Lc10_0*Lc2_0 - Lc10_1*Lc2_1 + Ps[37]);
-    const double Lc11_2 = Lci2*(-Lc11_0*Lc2_0 - Lc11_1*Lc2_1 + Ps[38]);
-    const double Lc12_2 = Lci2*(-Lc12_0*Lc2_0 - Lc12_1*Lc2_1 + Ps[39]);
-    const double Lc13_2 = Lci2*(-Lc13_0*Lc2_0 - Lc13_1*Lc2_1 + Ps[40]);
-    const double Lc14_2 = Lci2*(-Lc14_0*Lc2_0 - Lc14_1*Lc2_1 + Ps[41]);
-    const double Lcd3 = -(Lc3_0*Lc3_0) - (Lc3_1*Lc3_1) - (Lc3_2*Lc3_2) + Ps[42];
-    if (!isfinite(Lcd3)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd3 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc3_3 = sqrt(Lcd3);
-    const double Lci3 = (1.0/Lc3_3);
-    const double Lc4_3 = Lci3*(-Lc3_0*Lc4_0 - Lc3_1*Lc4_1 - Lc3_2*Lc4_2 + Ps[43]);
-    const double Lc5_3 = Lci3*(-Lc3_0*Lc5_0 - Lc3_1*Lc5_1 - Lc3_2*Lc5_2 + Ps[44]);
-    const double Lc6_3 = Lci3*(-Lc3_0*Lc6_0 - Lc3_1*Lc6_1 - Lc3_2*Lc6_2 + Ps[45]);
-    const double Lc7_3 = Lci3*(-Lc3_0*Lc7_0 - Lc3_1*Lc7_1 - Lc3_2*Lc7_2 + Ps[46]);
-    const double Lc8_3 = Lci3*(-Lc3_0*Lc8_0 - Lc3_1*Lc8_1 - Lc3_2*Lc8_2 + Ps[47]);
-    const double Lc9_3 = Lci3*(-Lc3_0*Lc9_0 - Lc3_1*Lc9_1 - Lc3_2*Lc9_2 + Ps[48]);
-    const double Lc10_3 = Lci3*(-Lc10_0*Lc3_0 - Lc10_1*Lc3_1 - Lc10_2*Lc3_2 + Ps[49]);
-    const double Lc11_3 = Lci3*(-Lc11_0*Lc3_0 - Lc11_1*Lc3_1 - Lc11_2*Lc3_2 + Ps[50]);
-    const double Lc12_3 = Lci3*(-Lc12_0*Lc3_0 - Lc12_1*Lc3_1 - Lc12_2*Lc3_2 + Ps[51]);
-    const double Lc13_3 = Lci3*(-Lc13_0*Lc3_0 - Lc13_1*Lc3_1 - Lc13_2*Lc3_2 + Ps[52]);
-    const double Lc14_3 = Lci3*(-Lc14_0*Lc3_0 - Lc14_1*Lc3_1 - Lc14_2*Lc3_2 + Ps[53]);
-    const double Lcd4 = -(Lc4_0*Lc4_0) - (Lc4_1*Lc4_1) - (Lc4_2*Lc4_2) - (Lc4_3*Lc4_3) + Ps[54];
-    if (!isfinite(Lcd4)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd4 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc4_4 = sqrt(Lcd4);
-    const double Lci4 = (1.0/Lc4_4);
-    const double Lc5_4 = Lci4*(-Lc4_0*Lc5_0 - Lc4_1*Lc5_1 - Lc4_2*Lc5_2 - Lc4_3*Lc5_3 + Ps[55]);
-    const double Lc6_4 = Lci4*(-Lc4_0*Lc6_0 - Lc4_1*Lc6_1 - Lc4_2*Lc6_2 - Lc4_3*Lc6_3 + Ps[56]);
-    const double Lc7_4 = Lci4*(-Lc4_0*Lc7_0 - Lc4_1*Lc7_1 - Lc4_2*Lc7_2 - Lc4_3*Lc7_3 + Ps[57]);
-    const double Lc8_4 = Lci4*(-Lc4_0*Lc8_0 - Lc4_1*Lc8_1 - Lc4_2*Lc8_2 - Lc4_3*Lc8_3 + Ps[58]);
-    const double Lc9_4 = Lci4*(-Lc4_0*Lc9_0 - Lc4_1*Lc9_1 - Lc4_2*Lc9_2 - Lc4_3*Lc9_3 + Ps[59]);
-    const double Lc10_4 = Lci4*(-Lc10_0*Lc4_0 - Lc10_1*Lc4_1 - Lc10_2*Lc4_2 - Lc10_3*Lc4_3 + Ps[60]);
-    const double Lc11_4 = Lci4*(-Lc11_0*Lc4_0 - Lc11_1*Lc4_1 - Lc11_2*Lc4_2 - Lc11_3*Lc4_3 + Ps[61]);
-    const double Lc12_4 = Lci4*(-Lc12_0*Lc4_0 - Lc12_1*Lc4_1 - Lc12_2*Lc4_2 - Lc12_3*Lc4_3 + Ps[62]);
-    const double Lc13_4 = Lci4*(-Lc13_0*Lc4_0 - Lc13_1*Lc4_1 - Lc13_2*Lc4_2 - Lc13_3*Lc4_3 + Ps[63]);
-    const double Lc14_4 = Lci4*(-Lc14_0*Lc4_0 - Lc14_1*Lc4_1 - Lc14_2*Lc4_2 - Lc14_3*Lc4_3 + Ps[64]);
-    const double Lcd5 = -(Lc5_0*Lc5_0) - (Lc5_1*Lc5_1) - (Lc5_2*Lc5_2) - (Lc5_3*Lc5_3) - (Lc5_4*Lc5_4) + Ps[65];
-    if (!isfinite(Lcd5)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd5 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc5_5 = sqrt(Lcd5);
-    const double Lci5 = (1.0/Lc5_5);
-    const double Lc6_5 = Lci5*(-Lc5_0*Lc6_0 - Lc5_1*Lc6_1 - Lc5_2*Lc6_2 - Lc5_3*Lc6_3 - Lc5_4*Lc6_4 + Ps[66]);
-    const double Lc7_5 = Lci5*(-Lc5_0*Lc7_0 - Lc5_1*Lc7_1 - Lc5_2*Lc7_2 - Lc5_3*Lc7_3 - Lc5_4*Lc7_4 + Ps[67]);
-    const double Lc8_5 = Lci5*(-Lc5_0*Lc8_0 - Lc5_1*Lc8_1 - Lc5_2*Lc8_2 - Lc5_3*Lc8_3 - Lc5_4*Lc8_4 + Ps[68]);
-    const double Lc9_5 = Lci5*(-Lc5_0*Lc9_0 - Lc5_1*Lc9_1 - Lc5_2*Lc9_2 - Lc5_3*Lc9_3 - Lc5_4*Lc9_4 + Ps[69]);
-    const double Lc10_5 = Lci5*(-Lc10_0*Lc5_0 - Lc10_1*Lc5_1 - Lc10_2*Lc5_2 - Lc10_3*Lc5_3 - Lc10_4*Lc5_4 + Ps[70]);
-    const double Lc11_5 = Lci5*(-Lc11_0*Lc5_0 - Lc11_1*Lc5_1 - Lc11_2*Lc5_2 - Lc11_3*Lc5_3 - Lc11_4*Lc5_4 + Ps[71]);
-    const double Lc12_5 = Lci5*(-Lc12_0*Lc5_0 - Lc12_1*Lc5_1 - Lc12_2*Lc5_2 - Lc12_3*Lc5_3 - Lc12_4*Lc5_4 + Ps[72]);
-    const double Lc13_5 = Lci5*(-Lc13_0*Lc5_0 - Lc13_1*Lc5_1 - Lc13_2*Lc5_2 - Lc13_3*Lc5_3 - Lc13_4*Lc5_4 + Ps[73]);
-    const double Lc14_5 = Lci5*(-Lc14_0*Lc5_0 - Lc14_1*Lc5_1 - Lc14_2*Lc5_2 - Lc14_3*Lc5_3 - Lc14_4*Lc5_4 + Ps[74]);
-    const double Lcd6 = -(Lc6_0*Lc6_0) - (Lc6_1*Lc6_1) - (Lc6_2*Lc6_2) - (Lc6_3*Lc6_3) - (Lc6_4*Lc6_4) - (Lc6_5*Lc6_5) + Ps[75];
-    if (!isfinite(Lcd6)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd6 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc6_6 = sqrt(Lcd6);
-    const double Lci6 = (1.0/Lc6_6);
-    const double Lc7_6 = Lci6*(-Lc6_0*Lc7_0 - Lc6_1*Lc7_1 - Lc6_2*Lc7_2 - Lc6_3*Lc7_3 - Lc6_4*Lc7_4 - Lc6_5*Lc7_5 + Ps[76]);
-    const double Lc8_6 = Lci6*(-Lc6_0*Lc8_0 - Lc6_1*Lc8_1 - Lc6_2*Lc8_2 - Lc6_3*Lc8_3 - Lc6_4*Lc8_4 - Lc6_5*Lc8_5 + Ps[77]);
-    const double Lc9_6 = Lci6*(-Lc6_0*Lc9_0 - Lc6_1*Lc9_1 - Lc6_2*Lc9_2 - Lc6_3*Lc9_3 - Lc6_4*Lc9_4 - Lc6_5*Lc9_5 + Ps[78]);
-    const double Lc10_6 = Lci6*(-Lc10_0*Lc6_0 - Lc10_1*Lc6_1 - Lc10_2*Lc6_2 - Lc10_3*Lc6_3 - Lc10_4*Lc6_4 - Lc10_5*Lc6_5 + Ps[79]);
-    const double Lc11_6 = Lci6*(-Lc11_0*Lc6_0 - Lc11_1*Lc6_1 - Lc11_2*Lc6_2 - Lc11_3*Lc6_3 - Lc11_4*Lc6_4 - Lc11_5*Lc6_5 + Ps[80]);
-    const double Lc12_6 = Lci6*(-Lc12_0*Lc6_0 - Lc12_1*Lc6_1 - Lc12_2*Lc6_2 - Lc12_3*Lc6_3 - Lc12_4*Lc6_4 - Lc12_5*Lc6_5 + Ps[81]);
-    const double Lc13_6 = Lci6*(-Lc13_0*Lc6_0 - Lc13_1*Lc6_1 - Lc13_2*Lc6_2 - Lc13_3*Lc6_3 - Lc13_4*Lc6_4 - Lc13_5*Lc6_5 + Ps[82]);
-    const double Lc14_6 = Lci6*(-Lc14_0*Lc6_0 - Lc14_1*Lc6_1 - Lc14_2*Lc6_2 - Lc14_3*Lc6_3 - Lc14_4*Lc6_4 - Lc14_5*Lc6_5 + Ps[83]);
-    const double Lcd7 = -(Lc7_0*Lc7_0) - (Lc7_1*Lc7_1) - (Lc7_2*Lc7_2) - (Lc7_3*Lc7_3) - (Lc7_4*Lc7_4) - (Lc7_5*Lc7_5) - (Lc7_6*Lc7_6) + Ps[84];
-    if (!isfinite(Lcd7)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd7 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc7_7 = sqrt(Lcd7);
-    const double Lci7 = (1.0/Lc7_7);
-    const double Lc8_7 = Lci7*(-Lc7_0*Lc8_0 - Lc7_1*Lc8_1 - Lc7_2*Lc8_2 - Lc7_3*Lc8_3 - Lc7_4*Lc8_4 - Lc7_5*Lc8_5 - Lc7_6*Lc8_6 + Ps[85]);
-    const double Lc9_7 = Lci7*(-Lc7_0*Lc9_0 - Lc7_1*Lc9_1 - Lc7_2*Lc9_2 - Lc7_3*Lc9_3 - Lc7_4*Lc9_4 - Lc7_5*Lc9_5 - Lc7_6*Lc9_6 + Ps[86]);
-    const double Lc10_7 = Lci7*(-Lc10_0*Lc7_0 - Lc10_1*Lc7_1 - Lc10_2*Lc7_2 - Lc10_3*Lc7_3 - Lc10_4*Lc7_4 - Lc10_5*Lc7_5 - Lc10_6*Lc7_6 + Ps[87]);
-    const double Lc11_7 = Lci7*(-Lc11_0*Lc7_0 - Lc11_1*Lc7_1 - Lc11_2*Lc7_2 - Lc11_3*Lc7_3 - Lc11_4*Lc7_4 - Lc11_5*Lc7_5 - Lc11_6*Lc7_6 + Ps[88]);
-    const double Lc12_7 = Lci7*(-Lc12_0*Lc7_0 - Lc12_1*Lc7_1 - Lc12_2*Lc7_2 - Lc12_3*Lc7_3 - Lc12_4*Lc7_4 - Lc12_5*Lc7_5 - Lc12_6*Lc7_6 + Ps[89]);
-    const double Lc13_7 = Lci7*(-Lc13_0*Lc7_0 - Lc13_1*Lc7_1 - Lc13_2*Lc7_2 - Lc13_3*Lc7_3 - Lc13_4*Lc7_4 - Lc13_5*Lc7_5 - Lc13_6*Lc7_6 + Ps[90]);
-    const double Lc14_7 = Lci7*(-Lc14_0*Lc7_0 - Lc14_1*Lc7_1 - Lc14_2*Lc7_2 - Lc14_3*Lc7_3 - Lc14_4*Lc7_4 - Lc14_5*Lc7_5 - Lc14_6*Lc7_6 + Ps[91]);
-    const double Lcd8 = -(Lc8_0*Lc8_0) - (Lc8_1*Lc8_1) - (Lc8_2*Lc8_2) - (Lc8_3*Lc8_3) - (Lc8_4*Lc8_4) - (Lc8_5*Lc8_5) - (Lc8_6*Lc8_6) - (Lc8_7*Lc8_7) + Ps[92];
-    if (!isfinite(Lcd8)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd8 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc8_8 = sqrt(Lcd8);
-    const double Lci8 = (1.0/Lc8_8);
-    const double Lc9_8 = Lci8*(-Lc8_0*Lc9_0 - Lc8_1*Lc9_1 - Lc8_2*Lc9_2 - Lc8_3*Lc9_3 - Lc8_4*Lc9_4 - Lc8_5*Lc9_5 - Lc8_6*Lc9_6 - Lc8_7*Lc9_7 + Ps[93]);
-    const double Lc10_8 = Lci8*(-Lc10_0*Lc8_0 - Lc10_1*Lc8_1 - Lc10_2*Lc8_2 - Lc10_3*Lc8_3 - Lc10_4*Lc8_4 - Lc10_5*Lc8_5 - Lc10_6*Lc8_6 - Lc10_7*Lc8_7 + Ps[94]);
-    const double Lc11_8 = Lci8*(-Lc11_0*Lc8_0 - Lc11_1*Lc8_1 - Lc11_2*Lc8_2 - Lc11_3*Lc8_3 - Lc11_4*Lc8_4 - Lc11_5*Lc8_5 - Lc11_6*Lc8_6 - Lc11_7*Lc8_7 + Ps[95]);
-    const double Lc12_8 = Lci8*(-Lc12_0*Lc8_0 - Lc12_1*Lc8_1 - Lc12_2*Lc8_2 - Lc12_3*Lc8_3 - Lc12_4*Lc8_4 - Lc12_5*Lc8_5 - Lc12_6*Lc8_6 - Lc12_7*Lc8_7 + Ps[96]);
-    const double Lc13_8 = Lci8*(-Lc13_0*Lc8_0 - Lc13_1*Lc8_1 - Lc13_2*Lc8_2 - Lc13_3*Lc8_3 - Lc13_4*Lc8_4 - Lc13_5*Lc8_5 - Lc13_6*Lc8_6 - Lc13_7*Lc8_7 + Ps[97]);
-    const double Lc14_8 = Lci8*(-Lc14_0*Lc8_0 - Lc14_1*Lc8_1 - Lc14_2*Lc8_2 - Lc14_3*Lc8_3 - Lc14_4*Lc8_4 - Lc14_5*Lc8_5 - Lc14_6*Lc8_6 - Lc14_7*Lc8_7 + Ps[98]);
-    const double Lcd9 = -(Lc9_0*Lc9_0) - (Lc9_1*Lc9_1) - (Lc9_2*Lc9_2) - (Lc9_3*Lc9_3) - (Lc9_4*Lc9_4) - (Lc9_5*Lc9_5) - (Lc9_6*Lc9_6) - (Lc9_7*Lc9_7) - (Lc9_8*Lc9_8) + Ps[99];
-    if (!isfinite(Lcd9)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd9 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc9_9 = sqrt(Lcd9);
-    const double Lci9 = (1.0/Lc9_9);
-    const double Lc10_9 = Lci9*(-Lc10_0*Lc9_0 - Lc10_1*Lc9_1 - Lc10_2*Lc9_2 - Lc10_3*Lc9_3 - Lc10_4*Lc9_4 - Lc10_5*Lc9_5 - Lc10_6*Lc9_6 - Lc10_7*Lc9_7 - Lc10_8*Lc9_8 + Ps[100]);
-    const double Lc11_9 = Lci9*(-Lc11_0*Lc9_0 - Lc11_1*Lc9_1 - Lc11_2*Lc9_2 - Lc11_3*Lc9_3 - Lc11_4*Lc9_4 - Lc11_5*Lc9_5 - Lc11_6*Lc9_6 - Lc11_7*Lc9_7 - Lc11_8*Lc9_8 + Ps[101]);
-    const double Lc12_9 = Lci9*(-Lc12_0*Lc9_0 - Lc12_1*Lc9_1 - Lc12_2*Lc9_2 - Lc12_3*Lc9_3 - Lc12_4*Lc9_4 - Lc12_5*Lc9_5 - Lc12_6*Lc9_6 - Lc12_7*Lc9_7 - Lc12_8*Lc9_8 + Ps[102]);
-    const double Lc13_9 = Lci9*(-Lc13_0*Lc9_0 - Lc13_1*Lc9_1 - Lc13_2*Lc9_2 - Lc13_3*Lc9_3 - Lc13_4*Lc9_4 - Lc13_5*Lc9_5 - Lc13_6*Lc9_6 - Lc13_7*Lc9_7 - Lc13_8*Lc9_8 + Ps[103]);
-    const double Lc14_9 = Lci9*(-Lc14_0*Lc9_0 - Lc14_1*Lc9_1 - Lc14_2*Lc9_2 - Lc14_3*Lc9_3 - Lc14_4*Lc9_4 - Lc14_5*Lc9_5 - Lc14_6*Lc9_6 - Lc14_7*Lc9_7 - Lc14_8*Lc9_8 + Ps[104]);
-    const double Lcd10 = -(Lc10_0*Lc10_0) - (Lc10_1*Lc10_1) - (Lc10_2*Lc10_2) - (Lc10_3*Lc10_3) - (Lc10_4*Lc10_4) - (Lc10_5*Lc10_5) - (Lc10_6*Lc10_6) - (Lc10_7*Lc10_7) - (Lc10_8*Lc10_8) - (Lc10_9*Lc10_9) + Ps[105];
-    if (!isfinite(Lcd10)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd10 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc10_10 = sqrt(Lcd10);
-    const double Lci10 = (1.0/Lc10_10);
-    const double Lc11_10 = Lci10*(-Lc10_0*Lc11_0 - Lc10_1*Lc11_1 - Lc10_2*Lc11_2 - Lc10_3*Lc11_3 - Lc10_4*Lc11_4 - Lc10_5*Lc11_5 - Lc10_6*Lc11_6 - Lc10_7*Lc11_7 - Lc10_8*Lc11_8 - Lc10_9*Lc11_9 + Ps[106]);
-    const double Lc12_10 = Lci10*(-Lc10_0*Lc12_0 - Lc10_1*Lc12_1 - Lc10_2*Lc12_2 - Lc10_3*Lc12_3 - Lc10_4*Lc12_4 - Lc10_5*Lc12_5 - Lc10_6*Lc12_6 - Lc10_7*Lc12_7 - Lc10_8*Lc12_8 - Lc10_9*Lc12_9 + Ps[107]);
-    const double Lc13_10 = Lci10*(-Lc10_0*Lc13_0 - Lc10_1*Lc13_1 - Lc10_2*Lc13_2 - Lc10_3*Lc13_3 - Lc10_4*Lc13_4 - Lc10_5*Lc13_5 - Lc10_6*Lc13_6 - Lc10_7*Lc13_7 - Lc10_8*Lc13_8 - Lc10_9*Lc13_9 + Ps[108]);
-    const double Lc14_10 = Lci10*(-Lc10_0*Lc14_0 - Lc10_1*Lc14_1 - Lc10_2*Lc14_2 - Lc10_3*Lc14_3 - Lc10_4*Lc14_4 - Lc10_5*Lc14_5 - Lc10_6*Lc14_6 - Lc10_7*Lc14_7 - Lc10_8*Lc14_8 - Lc10_9*Lc14_9 + Ps[109]);
-    const double Lcd11 = -(Lc11_0*Lc11_0) - (Lc11_1*Lc11_1) - (Lc11_10*Lc11_10) - (Lc11_2*Lc11_2) - (Lc11_3*Lc11_3) - (Lc11_4*Lc11_4) - (Lc11_5*Lc11_5) - (Lc11_6*Lc11_6) - (Lc11_7*Lc11_7) - (Lc11_8*Lc11_8) - (Lc11_9*Lc11_9) + Ps[110];
-    if (!isfinite(Lcd11)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd11 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc11_11 = sqrt(Lcd11);
-    const double Lci11 = (1.0/Lc11_11);
-    const double Lc12_11 = Lci11*(-Lc11_0*Lc12_0 - Lc11_1*Lc12_1 - Lc11_10*Lc12_10 - Lc11_2*Lc12_2 - Lc11_3*Lc12_3 - Lc11_4*Lc12_4 - Lc11_5*Lc12_5 - Lc11_6*Lc12_6 - Lc11_7*Lc12_7 - Lc11_8*Lc12_8 - Lc11_9*Lc12_9 + Ps[111]);
-    const double Lc13_11 = Lci11*(-Lc11_0*Lc13_0 - Lc11_1*Lc13_1 - Lc11_10*Lc13_10 - Lc11_2*Lc13_2 - Lc11_3*Lc13_3 - Lc11_4*Lc13_4 - Lc11_5*Lc13_5 - Lc11_6*Lc13_6 - Lc11_7*Lc13_7 - Lc11_8*Lc13_8 - Lc11_9*Lc13_9 + Ps[112]);
-    const double Lc14_11 = Lci11*(-Lc11_0*Lc14_0 - Lc11_1*Lc14_1 - Lc11_10*Lc14_10 - Lc11_2*Lc14_2 - Lc11_3*Lc14_3 - Lc11_4*Lc14_4 - Lc11_5*Lc14_5 - Lc11_6*Lc14_6 - Lc11_7*Lc14_7 - Lc11_8*Lc14_8 - Lc11_9*Lc14_9 + Ps[113]);
-    const double Lcd12 = -(Lc12_0*Lc12_0) - (Lc12_1*Lc12_1) - (Lc12_10*Lc12_10) - (Lc12_11*Lc12_11) - (Lc12_2*Lc12_2) - (Lc12_3*Lc12_3) - (Lc12_4*Lc12_4) - (Lc12_5*Lc12_5) - (Lc12_6*Lc12_6) - (Lc12_7*Lc12_7) - (Lc12_8*Lc12_8) - (Lc12_9*Lc12_9) + Ps[114];
-    if (!isfinite(Lcd12)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd12 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc12_12 = sqrt(Lcd12);
-    const double Lci12 = (1.0/Lc12_12);
-    const double Lc13_12 = Lci12*(-Lc12_0*Lc13_0 - Lc12_1*Lc13_1 - Lc12_10*Lc13_10 - Lc12_11*Lc13_11 - Lc12_2*Lc13_2 - Lc12_3*Lc13_3 - Lc12_4*Lc13_4 - Lc12_5*Lc13_5 - Lc12_6*Lc13_6 - Lc12_7*Lc13_7 - Lc12_8*Lc13_8 - Lc12_9*Lc13_9 + Ps[115]);
-    const double Lc14_12 = Lci12*(-Lc12_0*Lc14_0 - Lc12_1*Lc14_1 - Lc12_10*Lc14_10 - Lc12_11*Lc14_11 - Lc12_2*Lc14_2 - Lc12_3*Lc14_3 - Lc12_4*Lc14_4 - Lc12_5*Lc14_5 - Lc12_6*Lc14_6 - Lc12_7*Lc14_7 - Lc12_8*Lc14_8 - Lc12_9*Lc14_9 + Ps[116]);
-    const double Lcd13 = -(Lc13_0*Lc13_0) - (Lc13_1*Lc13_1) - (Lc13_10*Lc13_10) - (Lc13_11*Lc13_11) - (Lc13_12*Lc13_12) - (Lc13_2*Lc13_2) - (Lc13_3*Lc13_3) - (Lc13_4*Lc13_4) - (Lc13_5*Lc13_5) - (Lc13_6*Lc13_6) - (Lc13_7*Lc13_7) - (Lc13_8*Lc13_8) - (Lc13_9*Lc13_9) + Ps[117];
-    if (!isfinite(Lcd13)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd13 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc13_13 = sqrt(Lcd13);
-    const double Lci13 = (1.0/Lc13_13);
-    const double Lc14_13 = Lci13*(-Lc13_0*Lc14_0 - Lc13_1*Lc14_1 - Lc13_10*Lc14_10 - Lc13_11*Lc14_11 - Lc13_12*Lc14_12 - Lc13_2*Lc14_2 - Lc13_3*Lc14_3 - Lc13_4*Lc14_4 - Lc13_5*Lc14_5 - Lc13_6*Lc14_6 - Lc13_7*Lc14_7 - Lc13_8*Lc14_8 - Lc13_9*Lc14_9 + Ps[118]);
-    const double Lcd14 = -(Lc14_0*Lc14_0) - (Lc14_1*Lc14_1) - (Lc14_10*Lc14_10) - (Lc14_11*Lc14_11) - (Lc14_12*Lc14_12) - (Lc14_13*Lc14_13) - (Lc14_2*Lc14_2) - (Lc14_3*Lc14_3) - (Lc14_4*Lc14_4) - (Lc14_5*Lc14_5) - (Lc14_6*Lc14_6) - (Lc14_7*Lc14_7) - (Lc14_8*Lc14_8) - (Lc14_9*Lc14_9) + Ps[119];
-    if (!isfinite(Lcd14)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd14 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
+    {
+        const int st = nav_ukf_commit_pd(Ps);
+        if (st != NAV_UKF_OK) {
+            return st;
+        }
+    }
     memcpy(s->x, xs, sizeof xs);
     memcpy(s->P, Ps, sizeof Ps);
     return NAV_UKF_OK;

@@ -58,6 +58,23 @@ static int valve_ukf_posdef(const float *P)
     return 1;
 }
 
+/* OK when the packed covariance P is positive definite (every pivot of its Cholesky factorization
+   finite and > 0; a positive diagonal is not enough), else the refusal code. Unrolled, and one
+   copy serves every commit. */
+static int valve_ukf_commit_pd(const float *P)
+{
+    const float Lcd0 = P[0];
+    if (!isfinite(Lcd0)) { return VALVE_UKF_NON_FINITE; }
+    if (!(Lcd0 > 0.0F)) { return VALVE_UKF_NOT_POSITIVE_DEFINITE; }
+    const float Lc0_0 = sqrtf(Lcd0);
+    const float Lci0 = (1.0F/Lc0_0);
+    const float Lc1_0 = Lci0*P[1];
+    const float Lcd1 = -(Lc1_0*Lc1_0) + P[2];
+    if (!isfinite(Lcd1)) { return VALVE_UKF_NON_FINITE; }
+    if (!(Lcd1 > 0.0F)) { return VALVE_UKF_NOT_POSITIVE_DEFINITE; }
+    return VALVE_UKF_OK;
+}
+
 void valve_ukf_init(valve_ukf_t *s)
 {
     s->x[0] = 0.3F;
@@ -161,16 +178,12 @@ int valve_ukf_predict(valve_ukf_t *s, const float *u, float dt)
     if (!valve_ukf_finite(xn, 2u) || !valve_ukf_finite(Pn, 3u)) {
         return VALVE_UKF_NON_FINITE;
     }
-    /* commit only a positive definite P: the pivots of its Cholesky factorization */
-    const float Lcd0 = Pn[0];
-    if (!isfinite(Lcd0)) { return VALVE_UKF_NON_FINITE; }
-    if (!(Lcd0 > 0.0F)) { return VALVE_UKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc0_0 = sqrtf(Lcd0);
-    const float Lci0 = (1.0F/Lc0_0);
-    const float Lc1_0 = Lci0*Pn[1];
-    const float Lcd1 = -(Lc1_0*Lc1_0) + Pn[2];
-    if (!isfinite(Lcd1)) { return VALVE_UKF_NON_FINITE; }
-    if (!(Lcd1 > 0.0F)) { return VALVE_UKF_NOT_POSITIVE_DEFINITE; }
+    {
+        const int st = valve_ukf_commit_pd(Pn);
+        if (st != VALVE_UKF_OK) {
+            return st;
+        }
+    }
     memcpy(s->x, xn, sizeof xn);
     memcpy(s->P, Pn, sizeof Pn);
     return VALVE_UKF_OK;
@@ -245,16 +258,12 @@ int valve_ukf_update_flow_nis(valve_ukf_t *s, const float *z, float *nis_out)
     if (!valve_ukf_finite(xs, 2u) || !valve_ukf_finite(Ps, 3u)) {
         return VALVE_UKF_NON_FINITE;
     }
-    /* commit only a positive definite P: the pivots of its Cholesky factorization */
-    const float Lcd0 = Ps[0];
-    if (!isfinite(Lcd0)) { return VALVE_UKF_NON_FINITE; }
-    if (!(Lcd0 > 0.0F)) { return VALVE_UKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc0_0 = sqrtf(Lcd0);
-    const float Lci0 = (1.0F/Lc0_0);
-    const float Lc1_0 = Lci0*Ps[1];
-    const float Lcd1 = -(Lc1_0*Lc1_0) + Ps[2];
-    if (!isfinite(Lcd1)) { return VALVE_UKF_NON_FINITE; }
-    if (!(Lcd1 > 0.0F)) { return VALVE_UKF_NOT_POSITIVE_DEFINITE; }
+    {
+        const int st = valve_ukf_commit_pd(Ps);
+        if (st != VALVE_UKF_OK) {
+            return st;
+        }
+    }
     memcpy(s->x, xs, sizeof xs);
     memcpy(s->P, Ps, sizeof Ps);
     return VALVE_UKF_OK;
@@ -312,16 +321,12 @@ int valve_ukf_update_stem_nis(valve_ukf_t *s, const float *z, float *nis_out)
     if (!valve_ukf_finite(xs, 2u) || !valve_ukf_finite(Ps, 3u)) {
         return VALVE_UKF_NON_FINITE;
     }
-    /* commit only a positive definite P: the pivots of its Cholesky factorization */
-    const float Lcd0 = Ps[0];
-    if (!isfinite(Lcd0)) { return VALVE_UKF_NON_FINITE; }
-    if (!(Lcd0 > 0.0F)) { return VALVE_UKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc0_0 = sqrtf(Lcd0);
-    const float Lci0 = (1.0F/Lc0_0);
-    const float Lc1_0 = Lci0*Ps[1];
-    const float Lcd1 = -(Lc1_0*Lc1_0) + Ps[2];
-    if (!isfinite(Lcd1)) { return VALVE_UKF_NON_FINITE; }
-    if (!(Lcd1 > 0.0F)) { return VALVE_UKF_NOT_POSITIVE_DEFINITE; }
+    {
+        const int st = valve_ukf_commit_pd(Ps);
+        if (st != VALVE_UKF_OK) {
+            return st;
+        }
+    }
     memcpy(s->x, xs, sizeof xs);
     memcpy(s->P, Ps, sizeof Ps);
     return VALVE_UKF_OK;
