@@ -49,7 +49,7 @@ from .errors import ModelError
 from .model import ModelSpec, SensorSpec
 
 __all__ = ["UkfWeights", "UkfPredictCode", "UkfUpdateCode", "UkfCode", "derive_ukf", "check_options",
-           "commit_check"]
+           "commit_check", "factor_function"]
 
 
 @dataclass(frozen=True)
@@ -538,7 +538,7 @@ def derive_ukf_predict(spec: ModelSpec, wts: UkfWeights) -> UkfPredictCode:
     """x' = weighted mean of f at the sigma points; P' = their weighted covariance + Q."""
     n = spec.n
     blk = _Block()
-    L = _cholesky(blk, n, "P", "L")
+    L = _factor_symbols(n)
     angle = spec.angle_states
     qitems = [(f"Q{i}_{j}", spec.Q[i, j]) for i in range(n) for j in range(i, n) if not spec.Q[i, j].is_Number]
     spreads, lin, qv, n_angle, _ = _transform(blk, spec, spec.f, angle, wts, L, qitems, "f")
@@ -572,7 +572,7 @@ def derive_ukf_update(sensor: SensorSpec, spec: ModelSpec, wts: UkfWeights) -> U
     """Fresh sigma points from (x, P) through h; y = z - zhat; x += K y; P -= K S K'."""
     n, m = spec.n, sensor.m
     blk = _Block()
-    L = _cholesky(blk, n, "P", "L")
+    L = _factor_symbols(n)
     ritems = [(f"R{i}_{j}", sensor.R[i, j]) for i in range(m) for j in range(i, m) if not sensor.R[i, j].is_Number]
     spreads, lin, rv, n_angle, _ = _transform(blk, spec, sensor.h, sensor.angles, wts, L, ritems, "h")
     R = {(i, j): (sensor.R[i, j] if sensor.R[i, j].is_Number else rv[f"R{i}_{j}"]) for i in range(m) for j in range(i, m)}
@@ -646,6 +646,22 @@ def derive_ukf_update(sensor: SensorSpec, spec: ModelSpec, wts: UkfWeights) -> U
     stmts = blk.pruned()
     return UkfUpdateCode(sensor, stmts, _used(stmts, "par->"), m, n_angle,
                          _count_locals(stmts, ("hg", "hp", "hm", "hq", "hu", "hv", "he", "hh", "hT", "hmu")))
+
+
+def _factor_symbols(n: int) -> Dict[Tuple[int, int], sp.Expr]:
+    """L[i, j] (i >= j) as the entries of the array ``Lf`` that :func:`factor_function` fills
+    (packed like P: entry (i, j) of L at the packed index of (j, i))."""
+    return {(i, j): _sym(f"Lf[{packed_index(j, i, n)}]") for i in range(n) for j in range(i + 1)}
+
+
+def factor_function(n: int) -> List[Stmt]:
+    """Body of the shared factorization ``Lf = chol(P)`` that predict and every update call
+    first: unrolled, pivots checked (one copy in the C however many sensors there are)."""
+    blk = _Block()
+    L = _cholesky(blk, n, "P", "L")
+    for (i, j), e in L.items():
+        blk.add("assign", f"Lf[{packed_index(j, i, n)}]", e)
+    return blk.pruned()
 
 
 def commit_check(n: int, P: str) -> List[Stmt]:

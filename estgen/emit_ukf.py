@@ -7,7 +7,7 @@ from __future__ import annotations
 
 from typing import Any, Dict, List
 
-from .derive_ukf import UkfWeights, check_options, commit_check, derive_ukf
+from .derive_ukf import UkfWeights, check_options, commit_check, derive_ukf, factor_function
 from .emit import Emitter, Generated, OpCount, _common_context, _render
 from .model import ModelSpec, check_filter_support
 
@@ -43,11 +43,13 @@ def generate_ukf(spec: ModelSpec, precision: str = "float", **options: Any) -> G
     # the commit check is one static function, run by every call: its cost counts in each
     cc = OpCount()
     ctx["commit_pd"] = em.lines(commit_check(n, "P"), cc)
+    # so is the factorization of P every call starts with
+    ctx["factor"] = em.lines(factor_function(n), cc)
     pc += cc
     ops["predict"] = pc.as_dict()
     p_decls = sum(1 for st in code.predict.stmts if st.kind == "decl")
     # named storage of predict: xn, Pn, the wrapped-angle scratch and every const local
-    p_bytes = _stack_bytes(p_decls, n + np_ + code.predict.angle_scratch, size_real)
+    p_bytes = _stack_bytes(p_decls, n + 2 * np_ + code.predict.angle_scratch, size_real)
     ctx["predict"] = {"lines": p_lines, "uses_par": code.predict.uses_par, "uses_u": code.predict.uses_u,
                       "ea": code.predict.angle_scratch}
     ups: List[Dict[str, Any]] = []
@@ -58,7 +60,7 @@ def generate_ukf(spec: ModelSpec, precision: str = "float", **options: Any) -> G
         oc += cc
         ops[f"update_{uc.sensor.name}"] = oc.as_dict()
         decls = sum(1 for st in uc.stmts if st.kind == "decl")
-        u_bytes = max(u_bytes, _stack_bytes(decls, n + np_ + uc.m + 1 + uc.angle_scratch, size_real))
+        u_bytes = max(u_bytes, _stack_bytes(decls, n + 2 * np_ + uc.m + 1 + uc.angle_scratch, size_real))
         ups.append({**sctx, "lines": body, "uses_par": uc.uses_par, "ea": uc.angle_scratch})
     ctx["updates"] = ups
     ctx["ops"] = ops

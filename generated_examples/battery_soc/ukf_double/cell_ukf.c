@@ -82,6 +82,37 @@ static int cell_ukf_commit_pd(const double *P)
     return CELL_UKF_OK;
 }
 
+/* Lf = the lower Cholesky factor of the packed covariance P (stored packed like P, entry (i, j)
+   of L at the packed index of (j, i)); OK, or the refusal code when P is not positive definite.
+   Unrolled; one copy serves predict and every update. */
+static int cell_ukf_factor(const double *P, double *Lf)
+{
+    const double Ld0 = P[0];
+    if (!isfinite(Ld0)) { return CELL_UKF_NON_FINITE; }
+    if (!(Ld0 > 0.0)) { return CELL_UKF_NOT_POSITIVE_DEFINITE; }
+    const double L0_0 = sqrt(Ld0);
+    const double Li0 = (1.0/L0_0);
+    const double L1_0 = Li0*P[1];
+    const double L2_0 = Li0*P[2];
+    const double Ld1 = -(L1_0*L1_0) + P[3];
+    if (!isfinite(Ld1)) { return CELL_UKF_NON_FINITE; }
+    if (!(Ld1 > 0.0)) { return CELL_UKF_NOT_POSITIVE_DEFINITE; }
+    const double L1_1 = sqrt(Ld1);
+    const double Li1 = (1.0/L1_1);
+    const double L2_1 = Li1*(-L1_0*L2_0 + P[4]);
+    const double Ld2 = -(L2_0*L2_0) - (L2_1*L2_1) + P[5];
+    if (!isfinite(Ld2)) { return CELL_UKF_NON_FINITE; }
+    if (!(Ld2 > 0.0)) { return CELL_UKF_NOT_POSITIVE_DEFINITE; }
+    const double L2_2 = sqrt(Ld2);
+    Lf[0] = L0_0;
+    Lf[1] = L1_0;
+    Lf[2] = L2_0;
+    Lf[3] = L1_1;
+    Lf[4] = L2_1;
+    Lf[5] = L2_2;
+    return CELL_UKF_OK;
+}
+
 void cell_ukf_init(cell_ukf_t *s)
 {
     s->x[0] = 0.6;
@@ -132,6 +163,7 @@ int cell_ukf_predict(cell_ukf_t *s, const double *u, double dt)
 {
     double xn[3];
     double Pn[6];
+    double Lf[6];
     const double *x = s->x;
     const double *P = s->P;
     const cell_ukf_par_t *par = &s->par;
@@ -145,22 +177,12 @@ int cell_ukf_predict(cell_ukf_t *s, const double *u, double dt)
         return CELL_UKF_BAD_DT;
     }
 
-    const double Ld0 = P[0];
-    if (!isfinite(Ld0)) { return CELL_UKF_NON_FINITE; }
-    if (!(Ld0 > 0.0)) { return CELL_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L0_0 = sqrt(Ld0);
-    const double Li0 = (1.0/L0_0);
-    const double L1_0 = Li0*P[1];
-    const double L2_0 = Li0*P[2];
-    const double Ld1 = -(L1_0*L1_0) + P[3];
-    if (!isfinite(Ld1)) { return CELL_UKF_NON_FINITE; }
-    if (!(Ld1 > 0.0)) { return CELL_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L1_1 = sqrt(Ld1);
-    const double Li1 = (1.0/L1_1);
-    const double L2_1 = Li1*(-L1_0*L2_0 + P[4]);
-    const double Ld2 = -(L2_0*L2_0) - (L2_1*L2_1) + P[5];
-    if (!isfinite(Ld2)) { return CELL_UKF_NON_FINITE; }
-    if (!(Ld2 > 0.0)) { return CELL_UKF_NOT_POSITIVE_DEFINITE; }
+    {
+        const int st = cell_ukf_factor(P, Lf);
+        if (st != CELL_UKF_OK) {
+            return st;
+        }
+    }
     const double ft0 = exp(-dt/(par->c1*par->r1));
     const double fc0 = -0.0002777777777777778*dt*u[0]/par->capacity + x[0];
     const double fc1 = ft0*x[1] + par->r1*u[0]*(1.0 - ft0);
@@ -197,6 +219,7 @@ int cell_ukf_update_voltage_nis(cell_ukf_t *s, const double *z, double *nis_out)
 {
     double xs[3];
     double Ps[6];
+    double Lf[6];
     double y[1];
     double nis;
     const double *x = s->x;
@@ -205,29 +228,18 @@ int cell_ukf_update_voltage_nis(cell_ukf_t *s, const double *z, double *nis_out)
         return CELL_UKF_BAD_INPUT;
     }
 
-    const double Ld0 = P[0];
-    if (!isfinite(Ld0)) { return CELL_UKF_NON_FINITE; }
-    if (!(Ld0 > 0.0)) { return CELL_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L0_0 = sqrt(Ld0);
-    const double Li0 = (1.0/L0_0);
-    const double L1_0 = Li0*P[1];
-    const double L2_0 = Li0*P[2];
-    const double Ld1 = -(L1_0*L1_0) + P[3];
-    if (!isfinite(Ld1)) { return CELL_UKF_NON_FINITE; }
-    if (!(Ld1 > 0.0)) { return CELL_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L1_1 = sqrt(Ld1);
-    const double Li1 = (1.0/L1_1);
-    const double L2_1 = Li1*(-L1_0*L2_0 + P[4]);
-    const double Ld2 = -(L2_0*L2_0) - (L2_1*L2_1) + P[5];
-    if (!isfinite(Ld2)) { return CELL_UKF_NON_FINITE; }
-    if (!(Ld2 > 0.0)) { return CELL_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L2_2 = sqrt(Ld2);
-    const double hg0_0 = 1.7320508075688772*L0_0;
-    const double hg1_0 = 1.7320508075688772*L1_0;
-    const double hg2_0 = 1.7320508075688772*L2_0;
-    const double hg1_1 = 1.7320508075688772*L1_1;
-    const double hg2_1 = 1.7320508075688772*L2_1;
-    const double hg2_2 = 1.7320508075688772*L2_2;
+    {
+        const int st = cell_ukf_factor(P, Lf);
+        if (st != CELL_UKF_OK) {
+            return st;
+        }
+    }
+    const double hg0_0 = 1.7320508075688772*Lf[0];
+    const double hg1_0 = 1.7320508075688772*Lf[1];
+    const double hg2_0 = 1.7320508075688772*Lf[2];
+    const double hg1_1 = 1.7320508075688772*Lf[3];
+    const double hg2_1 = 1.7320508075688772*Lf[4];
+    const double hg2_2 = 1.7320508075688772*Lf[5];
     const double ha0 = 12.0*x[0] - 12.0;
     const double hae0 = exp(ha0);
     const double had0_0 = 12.0*hg0_0;
@@ -266,9 +278,9 @@ int cell_ukf_update_voltage_nis(cell_ukf_t *s, const double *z, double *nis_out)
     const double hu2_0 = 0.2886751345948129*(-hm2_0 + hp2_0);
     const double hv2_0 = -hh0 + 0.2886751345948129*hq2_0;
     y[0] = -hmu0 + z[0];
-    const double C0_0 = L0_0*hu0_0;
-    const double C1_0 = L1_0*hu0_0 + L1_1*hu1_0;
-    const double C2_0 = L2_0*hu0_0 + L2_1*hu1_0 + L2_2*hu2_0;
+    const double C0_0 = Lf[0]*hu0_0;
+    const double C1_0 = Lf[1]*hu0_0 + Lf[3]*hu1_0;
+    const double C2_0 = Lf[2]*hu0_0 + Lf[4]*hu1_0 + Lf[5]*hu2_0;
     const double S0_0 = 2.0*(he0*he0) + (hu0_0*hu0_0) + (hu1_0*hu1_0) + (hu2_0*hu2_0) + (hv0_0*hv0_0) + (hv1_0*hv1_0) + (hv2_0*hv2_0) + 2.5e-05;
     const double Sd0 = S0_0;
     if (!isfinite(Sd0)) { return CELL_UKF_NON_FINITE; }

@@ -82,6 +82,37 @@ static int cell_ukf_commit_pd(const float *P)
     return CELL_UKF_OK;
 }
 
+/* Lf = the lower Cholesky factor of the packed covariance P (stored packed like P, entry (i, j)
+   of L at the packed index of (j, i)); OK, or the refusal code when P is not positive definite.
+   Unrolled; one copy serves predict and every update. */
+static int cell_ukf_factor(const float *P, float *Lf)
+{
+    const float Ld0 = P[0];
+    if (!isfinite(Ld0)) { return CELL_UKF_NON_FINITE; }
+    if (!(Ld0 > 0.0F)) { return CELL_UKF_NOT_POSITIVE_DEFINITE; }
+    const float L0_0 = sqrtf(Ld0);
+    const float Li0 = (1.0F/L0_0);
+    const float L1_0 = Li0*P[1];
+    const float L2_0 = Li0*P[2];
+    const float Ld1 = -(L1_0*L1_0) + P[3];
+    if (!isfinite(Ld1)) { return CELL_UKF_NON_FINITE; }
+    if (!(Ld1 > 0.0F)) { return CELL_UKF_NOT_POSITIVE_DEFINITE; }
+    const float L1_1 = sqrtf(Ld1);
+    const float Li1 = (1.0F/L1_1);
+    const float L2_1 = Li1*(-L1_0*L2_0 + P[4]);
+    const float Ld2 = -(L2_0*L2_0) - (L2_1*L2_1) + P[5];
+    if (!isfinite(Ld2)) { return CELL_UKF_NON_FINITE; }
+    if (!(Ld2 > 0.0F)) { return CELL_UKF_NOT_POSITIVE_DEFINITE; }
+    const float L2_2 = sqrtf(Ld2);
+    Lf[0] = L0_0;
+    Lf[1] = L1_0;
+    Lf[2] = L2_0;
+    Lf[3] = L1_1;
+    Lf[4] = L2_1;
+    Lf[5] = L2_2;
+    return CELL_UKF_OK;
+}
+
 void cell_ukf_init(cell_ukf_t *s)
 {
     s->x[0] = 0.6F;
@@ -132,6 +163,7 @@ int cell_ukf_predict(cell_ukf_t *s, const float *u, float dt)
 {
     float xn[3];
     float Pn[6];
+    float Lf[6];
     const float *x = s->x;
     const float *P = s->P;
     const cell_ukf_par_t *par = &s->par;
@@ -145,22 +177,12 @@ int cell_ukf_predict(cell_ukf_t *s, const float *u, float dt)
         return CELL_UKF_BAD_DT;
     }
 
-    const float Ld0 = P[0];
-    if (!isfinite(Ld0)) { return CELL_UKF_NON_FINITE; }
-    if (!(Ld0 > 0.0F)) { return CELL_UKF_NOT_POSITIVE_DEFINITE; }
-    const float L0_0 = sqrtf(Ld0);
-    const float Li0 = (1.0F/L0_0);
-    const float L1_0 = Li0*P[1];
-    const float L2_0 = Li0*P[2];
-    const float Ld1 = -(L1_0*L1_0) + P[3];
-    if (!isfinite(Ld1)) { return CELL_UKF_NON_FINITE; }
-    if (!(Ld1 > 0.0F)) { return CELL_UKF_NOT_POSITIVE_DEFINITE; }
-    const float L1_1 = sqrtf(Ld1);
-    const float Li1 = (1.0F/L1_1);
-    const float L2_1 = Li1*(-L1_0*L2_0 + P[4]);
-    const float Ld2 = -(L2_0*L2_0) - (L2_1*L2_1) + P[5];
-    if (!isfinite(Ld2)) { return CELL_UKF_NON_FINITE; }
-    if (!(Ld2 > 0.0F)) { return CELL_UKF_NOT_POSITIVE_DEFINITE; }
+    {
+        const int st = cell_ukf_factor(P, Lf);
+        if (st != CELL_UKF_OK) {
+            return st;
+        }
+    }
     const float ft0 = expf(-dt/(par->c1*par->r1));
     const float fc0 = -0.0002777777777777778F*dt*u[0]/par->capacity + x[0];
     const float fc1 = ft0*x[1] + par->r1*u[0]*(1.0F - ft0);
@@ -197,6 +219,7 @@ int cell_ukf_update_voltage_nis(cell_ukf_t *s, const float *z, float *nis_out)
 {
     float xs[3];
     float Ps[6];
+    float Lf[6];
     float y[1];
     float nis;
     const float *x = s->x;
@@ -205,29 +228,18 @@ int cell_ukf_update_voltage_nis(cell_ukf_t *s, const float *z, float *nis_out)
         return CELL_UKF_BAD_INPUT;
     }
 
-    const float Ld0 = P[0];
-    if (!isfinite(Ld0)) { return CELL_UKF_NON_FINITE; }
-    if (!(Ld0 > 0.0F)) { return CELL_UKF_NOT_POSITIVE_DEFINITE; }
-    const float L0_0 = sqrtf(Ld0);
-    const float Li0 = (1.0F/L0_0);
-    const float L1_0 = Li0*P[1];
-    const float L2_0 = Li0*P[2];
-    const float Ld1 = -(L1_0*L1_0) + P[3];
-    if (!isfinite(Ld1)) { return CELL_UKF_NON_FINITE; }
-    if (!(Ld1 > 0.0F)) { return CELL_UKF_NOT_POSITIVE_DEFINITE; }
-    const float L1_1 = sqrtf(Ld1);
-    const float Li1 = (1.0F/L1_1);
-    const float L2_1 = Li1*(-L1_0*L2_0 + P[4]);
-    const float Ld2 = -(L2_0*L2_0) - (L2_1*L2_1) + P[5];
-    if (!isfinite(Ld2)) { return CELL_UKF_NON_FINITE; }
-    if (!(Ld2 > 0.0F)) { return CELL_UKF_NOT_POSITIVE_DEFINITE; }
-    const float L2_2 = sqrtf(Ld2);
-    const float hg0_0 = 1.7320508075688772F*L0_0;
-    const float hg1_0 = 1.7320508075688772F*L1_0;
-    const float hg2_0 = 1.7320508075688772F*L2_0;
-    const float hg1_1 = 1.7320508075688772F*L1_1;
-    const float hg2_1 = 1.7320508075688772F*L2_1;
-    const float hg2_2 = 1.7320508075688772F*L2_2;
+    {
+        const int st = cell_ukf_factor(P, Lf);
+        if (st != CELL_UKF_OK) {
+            return st;
+        }
+    }
+    const float hg0_0 = 1.7320508075688772F*Lf[0];
+    const float hg1_0 = 1.7320508075688772F*Lf[1];
+    const float hg2_0 = 1.7320508075688772F*Lf[2];
+    const float hg1_1 = 1.7320508075688772F*Lf[3];
+    const float hg2_1 = 1.7320508075688772F*Lf[4];
+    const float hg2_2 = 1.7320508075688772F*Lf[5];
     const float ha0 = 12.0F*x[0] - 12.0F;
     const float hae0 = expf(ha0);
     const float had0_0 = 12.0F*hg0_0;
@@ -266,9 +278,9 @@ int cell_ukf_update_voltage_nis(cell_ukf_t *s, const float *z, float *nis_out)
     const float hu2_0 = 0.2886751345948129F*(-hm2_0 + hp2_0);
     const float hv2_0 = -hh0 + 0.2886751345948129F*hq2_0;
     y[0] = -hmu0 + z[0];
-    const float C0_0 = L0_0*hu0_0;
-    const float C1_0 = L1_0*hu0_0 + L1_1*hu1_0;
-    const float C2_0 = L2_0*hu0_0 + L2_1*hu1_0 + L2_2*hu2_0;
+    const float C0_0 = Lf[0]*hu0_0;
+    const float C1_0 = Lf[1]*hu0_0 + Lf[3]*hu1_0;
+    const float C2_0 = Lf[2]*hu0_0 + Lf[4]*hu1_0 + Lf[5]*hu2_0;
     const float S0_0 = 2.0F*(he0*he0) + (hu0_0*hu0_0) + (hu1_0*hu1_0) + (hu2_0*hu2_0) + (hv0_0*hv0_0) + (hv1_0*hv1_0) + (hv2_0*hv2_0) + 2.5e-05F;
     const float Sd0 = S0_0;
     if (!isfinite(Sd0)) { return CELL_UKF_NON_FINITE; }

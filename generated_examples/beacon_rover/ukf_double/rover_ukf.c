@@ -96,6 +96,49 @@ static int rover_ukf_commit_pd(const double *P)
     return ROVER_UKF_OK;
 }
 
+/* Lf = the lower Cholesky factor of the packed covariance P (stored packed like P, entry (i, j)
+   of L at the packed index of (j, i)); OK, or the refusal code when P is not positive definite.
+   Unrolled; one copy serves predict and every update. */
+static int rover_ukf_factor(const double *P, double *Lf)
+{
+    const double Ld0 = P[0];
+    if (!isfinite(Ld0)) { return ROVER_UKF_NON_FINITE; }
+    if (!(Ld0 > 0.0)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
+    const double L0_0 = sqrt(Ld0);
+    const double Li0 = (1.0/L0_0);
+    const double L1_0 = Li0*P[1];
+    const double L2_0 = Li0*P[2];
+    const double L3_0 = Li0*P[3];
+    const double Ld1 = -(L1_0*L1_0) + P[4];
+    if (!isfinite(Ld1)) { return ROVER_UKF_NON_FINITE; }
+    if (!(Ld1 > 0.0)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
+    const double L1_1 = sqrt(Ld1);
+    const double Li1 = (1.0/L1_1);
+    const double L2_1 = Li1*(-L1_0*L2_0 + P[5]);
+    const double L3_1 = Li1*(-L1_0*L3_0 + P[6]);
+    const double Ld2 = -(L2_0*L2_0) - (L2_1*L2_1) + P[7];
+    if (!isfinite(Ld2)) { return ROVER_UKF_NON_FINITE; }
+    if (!(Ld2 > 0.0)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
+    const double L2_2 = sqrt(Ld2);
+    const double Li2 = (1.0/L2_2);
+    const double L3_2 = Li2*(-L2_0*L3_0 - L2_1*L3_1 + P[8]);
+    const double Ld3 = -(L3_0*L3_0) - (L3_1*L3_1) - (L3_2*L3_2) + P[9];
+    if (!isfinite(Ld3)) { return ROVER_UKF_NON_FINITE; }
+    if (!(Ld3 > 0.0)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
+    const double L3_3 = sqrt(Ld3);
+    Lf[0] = L0_0;
+    Lf[1] = L1_0;
+    Lf[2] = L2_0;
+    Lf[3] = L3_0;
+    Lf[4] = L1_1;
+    Lf[5] = L2_1;
+    Lf[6] = L3_1;
+    Lf[7] = L2_2;
+    Lf[8] = L3_2;
+    Lf[9] = L3_3;
+    return ROVER_UKF_OK;
+}
+
 void rover_ukf_init(rover_ukf_t *s)
 {
     s->x[0] = 0.0;
@@ -156,6 +199,7 @@ int rover_ukf_predict(rover_ukf_t *s, const double *u, double dt)
 {
     double xn[4];
     double Pn[10];
+    double Lf[10];
     double ea[8];
     const double *x = s->x;
     const double *P = s->P;
@@ -169,41 +213,22 @@ int rover_ukf_predict(rover_ukf_t *s, const double *u, double dt)
         return ROVER_UKF_BAD_DT;
     }
 
-    const double Ld0 = P[0];
-    if (!isfinite(Ld0)) { return ROVER_UKF_NON_FINITE; }
-    if (!(Ld0 > 0.0)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L0_0 = sqrt(Ld0);
-    const double Li0 = (1.0/L0_0);
-    const double L1_0 = Li0*P[1];
-    const double L2_0 = Li0*P[2];
-    const double L3_0 = Li0*P[3];
-    const double Ld1 = -(L1_0*L1_0) + P[4];
-    if (!isfinite(Ld1)) { return ROVER_UKF_NON_FINITE; }
-    if (!(Ld1 > 0.0)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L1_1 = sqrt(Ld1);
-    const double Li1 = (1.0/L1_1);
-    const double L2_1 = Li1*(-L1_0*L2_0 + P[5]);
-    const double L3_1 = Li1*(-L1_0*L3_0 + P[6]);
-    const double Ld2 = -(L2_0*L2_0) - (L2_1*L2_1) + P[7];
-    if (!isfinite(Ld2)) { return ROVER_UKF_NON_FINITE; }
-    if (!(Ld2 > 0.0)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L2_2 = sqrt(Ld2);
-    const double Li2 = (1.0/L2_2);
-    const double L3_2 = Li2*(-L2_0*L3_0 - L2_1*L3_1 + P[8]);
-    const double Ld3 = -(L3_0*L3_0) - (L3_1*L3_1) - (L3_2*L3_2) + P[9];
-    if (!isfinite(Ld3)) { return ROVER_UKF_NON_FINITE; }
-    if (!(Ld3 > 0.0)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L3_3 = sqrt(Ld3);
-    const double fg0_0 = 2.0*L0_0;
-    const double fg1_0 = 2.0*L1_0;
-    const double fg2_0 = 2.0*L2_0;
-    const double fg3_0 = 2.0*L3_0;
-    const double fg1_1 = 2.0*L1_1;
-    const double fg2_1 = 2.0*L2_1;
-    const double fg3_1 = 2.0*L3_1;
-    const double fg2_2 = 2.0*L2_2;
-    const double fg3_2 = 2.0*L3_2;
-    const double fg3_3 = 2.0*L3_3;
+    {
+        const int st = rover_ukf_factor(P, Lf);
+        if (st != ROVER_UKF_OK) {
+            return st;
+        }
+    }
+    const double fg0_0 = 2.0*Lf[0];
+    const double fg1_0 = 2.0*Lf[1];
+    const double fg2_0 = 2.0*Lf[2];
+    const double fg3_0 = 2.0*Lf[3];
+    const double fg1_1 = 2.0*Lf[4];
+    const double fg2_1 = 2.0*Lf[5];
+    const double fg3_1 = 2.0*Lf[6];
+    const double fg2_2 = 2.0*Lf[7];
+    const double fg3_2 = 2.0*Lf[8];
+    const double fg3_3 = 2.0*Lf[9];
     const double fas0 = sin(x[2]);
     const double fak0 = cos(x[2]);
     const double fr0_sd0 = sin(fg2_0);
@@ -413,12 +438,12 @@ int rover_ukf_predict(rover_ukf_t *s, const double *u, double dt)
     Pn[0] = 2.0*(fe0*fe0) + ft36 + (fu0_0*fu0_0) + (fu1_0*fu1_0) + (fu2_0*fu2_0) + (fu3_0*fu3_0) + (fv0_0*fv0_0) + (fv1_0*fv1_0) + (fv2_0*fv2_0) + (fv3_0*fv3_0);
     Pn[1] = 2.0*fe0*fe1 + fu0_0*fu0_1 + fu1_0*fu1_1 + fu2_0*fu2_1 + fu3_0*fu3_1 + fv0_0*fv0_1 + fv1_0*fv1_1 + fv2_0*fv2_1 + fv3_0*fv3_1;
     Pn[2] = 2.0*ea[0]*fe0 + fu0_0*fu0_2 + fu1_0*fu1_2 + fu2_0*fu2_2 + fv0_0*fv0_2 + fv1_0*fv1_2 + fv2_0*fv2_2 + fv3_0*fv3_2;
-    Pn[3] = L3_0*fu0_0 + L3_1*fu1_0 + L3_2*fu2_0 + L3_3*fu3_0;
+    Pn[3] = Lf[3]*fu0_0 + Lf[6]*fu1_0 + Lf[8]*fu2_0 + Lf[9]*fu3_0;
     Pn[4] = 2.0*(fe1*fe1) + ft36 + (fu0_1*fu0_1) + (fu1_1*fu1_1) + (fu2_1*fu2_1) + (fu3_1*fu3_1) + (fv0_1*fv0_1) + (fv1_1*fv1_1) + (fv2_1*fv2_1) + (fv3_1*fv3_1);
     Pn[5] = 2.0*ea[0]*fe1 + fu0_1*fu0_2 + fu1_1*fu1_2 + fu2_1*fu2_2 + fv0_1*fv0_2 + fv1_1*fv1_2 + fv2_1*fv2_2 + fv3_1*fv3_2;
-    Pn[6] = L3_0*fu0_1 + L3_1*fu1_1 + L3_2*fu2_1 + L3_3*fu3_1;
+    Pn[6] = Lf[3]*fu0_1 + Lf[6]*fu1_1 + Lf[8]*fu2_1 + Lf[9]*fu3_1;
     Pn[7] = 2.0*(ea[0]*ea[0]) + ft36 + (fu0_2*fu0_2) + (fu1_2*fu1_2) + (fu2_2*fu2_2) + (fv0_2*fv0_2) + (fv1_2*fv1_2) + (fv2_2*fv2_2) + (fv3_2*fv3_2);
-    Pn[8] = L3_0*fu0_2 + L3_1*fu1_2 + L3_2*fu2_2;
+    Pn[8] = Lf[3]*fu0_2 + Lf[6]*fu1_2 + Lf[8]*fu2_2;
     Pn[9] = P[9] + Q3_3;
     if (!rover_ukf_finite(xn, 4u) || !rover_ukf_finite(Pn, 10u)) {
         return ROVER_UKF_NON_FINITE;
@@ -440,6 +465,7 @@ int rover_ukf_update_range_a_nis(rover_ukf_t *s, const double *z, double *nis_ou
 {
     double xs[4];
     double Ps[10];
+    double Lf[10];
     double y[1];
     double nis;
     const double *x = s->x;
@@ -449,33 +475,15 @@ int rover_ukf_update_range_a_nis(rover_ukf_t *s, const double *z, double *nis_ou
         return ROVER_UKF_BAD_INPUT;
     }
 
-    const double Ld0 = P[0];
-    if (!isfinite(Ld0)) { return ROVER_UKF_NON_FINITE; }
-    if (!(Ld0 > 0.0)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L0_0 = sqrt(Ld0);
-    const double Li0 = (1.0/L0_0);
-    const double L1_0 = Li0*P[1];
-    const double L2_0 = Li0*P[2];
-    const double L3_0 = Li0*P[3];
-    const double Ld1 = -(L1_0*L1_0) + P[4];
-    if (!isfinite(Ld1)) { return ROVER_UKF_NON_FINITE; }
-    if (!(Ld1 > 0.0)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L1_1 = sqrt(Ld1);
-    const double Li1 = (1.0/L1_1);
-    const double L2_1 = Li1*(-L1_0*L2_0 + P[5]);
-    const double L3_1 = Li1*(-L1_0*L3_0 + P[6]);
-    const double Ld2 = -(L2_0*L2_0) - (L2_1*L2_1) + P[7];
-    if (!isfinite(Ld2)) { return ROVER_UKF_NON_FINITE; }
-    if (!(Ld2 > 0.0)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L2_2 = sqrt(Ld2);
-    const double Li2 = (1.0/L2_2);
-    const double L3_2 = Li2*(-L2_0*L3_0 - L2_1*L3_1 + P[8]);
-    const double Ld3 = -(L3_0*L3_0) - (L3_1*L3_1) - (L3_2*L3_2) + P[9];
-    if (!isfinite(Ld3)) { return ROVER_UKF_NON_FINITE; }
-    if (!(Ld3 > 0.0)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
-    const double hg0_0 = 2.0*L0_0;
-    const double hg1_0 = 2.0*L1_0;
-    const double hg1_1 = 2.0*L1_1;
+    {
+        const int st = rover_ukf_factor(P, Lf);
+        if (st != ROVER_UKF_OK) {
+            return st;
+        }
+    }
+    const double hg0_0 = 2.0*Lf[0];
+    const double hg1_0 = 2.0*Lf[1];
+    const double hg1_1 = 2.0*Lf[4];
     const double ht0 = par->bax - x[0];
     const double ht1 = (ht0*ht0);
     const double ht2 = par->bay - x[1];
@@ -499,10 +507,10 @@ int rover_ukf_update_range_a_nis(rover_ukf_t *s, const double *z, double *nis_ou
     const double hv2_0 = -hh0 + 0.25*hq2_0;
     const double hv3_0 = -hh0 + 0.25*hq3_0;
     y[0] = -hmu0 + z[0];
-    const double C0_0 = L0_0*hu0_0;
-    const double C1_0 = L1_0*hu0_0 + L1_1*hu1_0;
-    const double C2_0 = L2_0*hu0_0 + L2_1*hu1_0;
-    const double C3_0 = L3_0*hu0_0 + L3_1*hu1_0;
+    const double C0_0 = Lf[0]*hu0_0;
+    const double C1_0 = Lf[1]*hu0_0 + Lf[4]*hu1_0;
+    const double C2_0 = Lf[2]*hu0_0 + Lf[5]*hu1_0;
+    const double C3_0 = Lf[3]*hu0_0 + Lf[6]*hu1_0;
     const double S0_0 = 2.0*(he0*he0) + (hu0_0*hu0_0) + (hu1_0*hu1_0) + (hv0_0*hv0_0) + (hv1_0*hv1_0) + (hv2_0*hv2_0) + (hv3_0*hv3_0) + 0.010000000000000002;
     const double Sd0 = S0_0;
     if (!isfinite(Sd0)) { return ROVER_UKF_NON_FINITE; }
@@ -560,6 +568,7 @@ int rover_ukf_update_range_b_nis(rover_ukf_t *s, const double *z, double *nis_ou
 {
     double xs[4];
     double Ps[10];
+    double Lf[10];
     double y[1];
     double nis;
     const double *x = s->x;
@@ -569,33 +578,15 @@ int rover_ukf_update_range_b_nis(rover_ukf_t *s, const double *z, double *nis_ou
         return ROVER_UKF_BAD_INPUT;
     }
 
-    const double Ld0 = P[0];
-    if (!isfinite(Ld0)) { return ROVER_UKF_NON_FINITE; }
-    if (!(Ld0 > 0.0)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L0_0 = sqrt(Ld0);
-    const double Li0 = (1.0/L0_0);
-    const double L1_0 = Li0*P[1];
-    const double L2_0 = Li0*P[2];
-    const double L3_0 = Li0*P[3];
-    const double Ld1 = -(L1_0*L1_0) + P[4];
-    if (!isfinite(Ld1)) { return ROVER_UKF_NON_FINITE; }
-    if (!(Ld1 > 0.0)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L1_1 = sqrt(Ld1);
-    const double Li1 = (1.0/L1_1);
-    const double L2_1 = Li1*(-L1_0*L2_0 + P[5]);
-    const double L3_1 = Li1*(-L1_0*L3_0 + P[6]);
-    const double Ld2 = -(L2_0*L2_0) - (L2_1*L2_1) + P[7];
-    if (!isfinite(Ld2)) { return ROVER_UKF_NON_FINITE; }
-    if (!(Ld2 > 0.0)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L2_2 = sqrt(Ld2);
-    const double Li2 = (1.0/L2_2);
-    const double L3_2 = Li2*(-L2_0*L3_0 - L2_1*L3_1 + P[8]);
-    const double Ld3 = -(L3_0*L3_0) - (L3_1*L3_1) - (L3_2*L3_2) + P[9];
-    if (!isfinite(Ld3)) { return ROVER_UKF_NON_FINITE; }
-    if (!(Ld3 > 0.0)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
-    const double hg0_0 = 2.0*L0_0;
-    const double hg1_0 = 2.0*L1_0;
-    const double hg1_1 = 2.0*L1_1;
+    {
+        const int st = rover_ukf_factor(P, Lf);
+        if (st != ROVER_UKF_OK) {
+            return st;
+        }
+    }
+    const double hg0_0 = 2.0*Lf[0];
+    const double hg1_0 = 2.0*Lf[1];
+    const double hg1_1 = 2.0*Lf[4];
     const double ht0 = par->bbx - x[0];
     const double ht1 = (ht0*ht0);
     const double ht2 = par->bby - x[1];
@@ -619,10 +610,10 @@ int rover_ukf_update_range_b_nis(rover_ukf_t *s, const double *z, double *nis_ou
     const double hv2_0 = -hh0 + 0.25*hq2_0;
     const double hv3_0 = -hh0 + 0.25*hq3_0;
     y[0] = -hmu0 + z[0];
-    const double C0_0 = L0_0*hu0_0;
-    const double C1_0 = L1_0*hu0_0 + L1_1*hu1_0;
-    const double C2_0 = L2_0*hu0_0 + L2_1*hu1_0;
-    const double C3_0 = L3_0*hu0_0 + L3_1*hu1_0;
+    const double C0_0 = Lf[0]*hu0_0;
+    const double C1_0 = Lf[1]*hu0_0 + Lf[4]*hu1_0;
+    const double C2_0 = Lf[2]*hu0_0 + Lf[5]*hu1_0;
+    const double C3_0 = Lf[3]*hu0_0 + Lf[6]*hu1_0;
     const double S0_0 = 2.0*(he0*he0) + (hu0_0*hu0_0) + (hu1_0*hu1_0) + (hv0_0*hv0_0) + (hv1_0*hv1_0) + (hv2_0*hv2_0) + (hv3_0*hv3_0) + 0.010000000000000002;
     const double Sd0 = S0_0;
     if (!isfinite(Sd0)) { return ROVER_UKF_NON_FINITE; }
@@ -680,6 +671,7 @@ int rover_ukf_update_range_cd_nis(rover_ukf_t *s, const double *z, double *nis_o
 {
     double xs[4];
     double Ps[10];
+    double Lf[10];
     double y[2];
     double nis;
     const double *x = s->x;
@@ -689,33 +681,15 @@ int rover_ukf_update_range_cd_nis(rover_ukf_t *s, const double *z, double *nis_o
         return ROVER_UKF_BAD_INPUT;
     }
 
-    const double Ld0 = P[0];
-    if (!isfinite(Ld0)) { return ROVER_UKF_NON_FINITE; }
-    if (!(Ld0 > 0.0)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L0_0 = sqrt(Ld0);
-    const double Li0 = (1.0/L0_0);
-    const double L1_0 = Li0*P[1];
-    const double L2_0 = Li0*P[2];
-    const double L3_0 = Li0*P[3];
-    const double Ld1 = -(L1_0*L1_0) + P[4];
-    if (!isfinite(Ld1)) { return ROVER_UKF_NON_FINITE; }
-    if (!(Ld1 > 0.0)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L1_1 = sqrt(Ld1);
-    const double Li1 = (1.0/L1_1);
-    const double L2_1 = Li1*(-L1_0*L2_0 + P[5]);
-    const double L3_1 = Li1*(-L1_0*L3_0 + P[6]);
-    const double Ld2 = -(L2_0*L2_0) - (L2_1*L2_1) + P[7];
-    if (!isfinite(Ld2)) { return ROVER_UKF_NON_FINITE; }
-    if (!(Ld2 > 0.0)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L2_2 = sqrt(Ld2);
-    const double Li2 = (1.0/L2_2);
-    const double L3_2 = Li2*(-L2_0*L3_0 - L2_1*L3_1 + P[8]);
-    const double Ld3 = -(L3_0*L3_0) - (L3_1*L3_1) - (L3_2*L3_2) + P[9];
-    if (!isfinite(Ld3)) { return ROVER_UKF_NON_FINITE; }
-    if (!(Ld3 > 0.0)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
-    const double hg0_0 = 2.0*L0_0;
-    const double hg1_0 = 2.0*L1_0;
-    const double hg1_1 = 2.0*L1_1;
+    {
+        const int st = rover_ukf_factor(P, Lf);
+        if (st != ROVER_UKF_OK) {
+            return st;
+        }
+    }
+    const double hg0_0 = 2.0*Lf[0];
+    const double hg1_0 = 2.0*Lf[1];
+    const double hg1_1 = 2.0*Lf[4];
     const double ht0 = -x[0];
     const double ht1 = ht0 + par->bcx;
     const double ht2 = (ht1*ht1);
@@ -767,14 +741,14 @@ int rover_ukf_update_range_cd_nis(rover_ukf_t *s, const double *z, double *nis_o
     const double hv3_1 = -hh1 + 0.25*hq3_1;
     y[0] = -hmu0 + z[0];
     y[1] = -hmu1 + z[1];
-    const double C0_0 = L0_0*hu0_0;
-    const double C1_0 = L1_0*hu0_0 + L1_1*hu1_0;
-    const double C2_0 = L2_0*hu0_0 + L2_1*hu1_0;
-    const double C3_0 = L3_0*hu0_0 + L3_1*hu1_0;
-    const double C0_1 = L0_0*hu0_1;
-    const double C1_1 = L1_0*hu0_1 + L1_1*hu1_1;
-    const double C2_1 = L2_0*hu0_1 + L2_1*hu1_1;
-    const double C3_1 = L3_0*hu0_1 + L3_1*hu1_1;
+    const double C0_0 = Lf[0]*hu0_0;
+    const double C1_0 = Lf[1]*hu0_0 + Lf[4]*hu1_0;
+    const double C2_0 = Lf[2]*hu0_0 + Lf[5]*hu1_0;
+    const double C3_0 = Lf[3]*hu0_0 + Lf[6]*hu1_0;
+    const double C0_1 = Lf[0]*hu0_1;
+    const double C1_1 = Lf[1]*hu0_1 + Lf[4]*hu1_1;
+    const double C2_1 = Lf[2]*hu0_1 + Lf[5]*hu1_1;
+    const double C3_1 = Lf[3]*hu0_1 + Lf[6]*hu1_1;
     const double S0_0 = 2.0*(he0*he0) + (hu0_0*hu0_0) + (hu1_0*hu1_0) + (hv0_0*hv0_0) + (hv1_0*hv1_0) + (hv2_0*hv2_0) + (hv3_0*hv3_0) + 0.0225;
     const double S0_1 = 2.0*he0*he1 + hu0_0*hu0_1 + hu1_0*hu1_1 + hv0_0*hv0_1 + hv1_0*hv1_1 + hv2_0*hv2_1 + hv3_0*hv3_1;
     const double S1_1 = 2.0*(he1*he1) + (hu0_1*hu0_1) + (hu1_1*hu1_1) + (hv0_1*hv0_1) + (hv1_1*hv1_1) + (hv2_1*hv2_1) + (hv3_1*hv3_1) + 0.0225;
@@ -847,6 +821,7 @@ int rover_ukf_update_compass_nis(rover_ukf_t *s, const double *z, double *nis_ou
 {
     double xs[4];
     double Ps[10];
+    double Lf[10];
     double y[1];
     double ea[8];
     double nis;
@@ -856,33 +831,15 @@ int rover_ukf_update_compass_nis(rover_ukf_t *s, const double *z, double *nis_ou
         return ROVER_UKF_BAD_INPUT;
     }
 
-    const double Ld0 = P[0];
-    if (!isfinite(Ld0)) { return ROVER_UKF_NON_FINITE; }
-    if (!(Ld0 > 0.0)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L0_0 = sqrt(Ld0);
-    const double Li0 = (1.0/L0_0);
-    const double L1_0 = Li0*P[1];
-    const double L2_0 = Li0*P[2];
-    const double L3_0 = Li0*P[3];
-    const double Ld1 = -(L1_0*L1_0) + P[4];
-    if (!isfinite(Ld1)) { return ROVER_UKF_NON_FINITE; }
-    if (!(Ld1 > 0.0)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L1_1 = sqrt(Ld1);
-    const double Li1 = (1.0/L1_1);
-    const double L2_1 = Li1*(-L1_0*L2_0 + P[5]);
-    const double L3_1 = Li1*(-L1_0*L3_0 + P[6]);
-    const double Ld2 = -(L2_0*L2_0) - (L2_1*L2_1) + P[7];
-    if (!isfinite(Ld2)) { return ROVER_UKF_NON_FINITE; }
-    if (!(Ld2 > 0.0)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L2_2 = sqrt(Ld2);
-    const double Li2 = (1.0/L2_2);
-    const double L3_2 = Li2*(-L2_0*L3_0 - L2_1*L3_1 + P[8]);
-    const double Ld3 = -(L3_0*L3_0) - (L3_1*L3_1) - (L3_2*L3_2) + P[9];
-    if (!isfinite(Ld3)) { return ROVER_UKF_NON_FINITE; }
-    if (!(Ld3 > 0.0)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
-    const double hg2_0 = 2.0*L2_0;
-    const double hg2_1 = 2.0*L2_1;
-    const double hg2_2 = 2.0*L2_2;
+    {
+        const int st = rover_ukf_factor(P, Lf);
+        if (st != ROVER_UKF_OK) {
+            return st;
+        }
+    }
+    const double hg2_0 = 2.0*Lf[2];
+    const double hg2_1 = 2.0*Lf[5];
+    const double hg2_2 = 2.0*Lf[7];
     const double hkk0 = 2.0*cos(hg2_0) + 2.0*cos(hg2_1) + 2.0*cos(hg2_2) + 2.0;
     const double hmu0 = atan2(hkk0*sin(x[2]), hkk0*cos(x[2]));
     ea[0] = rover_ukf_wrap(-hmu0 + x[2]);
@@ -901,10 +858,10 @@ int rover_ukf_update_compass_nis(rover_ukf_t *s, const double *z, double *nis_ou
     ea[7] = rover_ukf_wrap(-hmu0 + x[2]);
     const double hv3_0 = 0.5*ea[7];
     y[0] = rover_ukf_wrap(-hmu0 + z[0]);
-    const double C0_0 = L0_0*hu0_0;
-    const double C1_0 = L1_0*hu0_0 + L1_1*hu1_0;
-    const double C2_0 = L2_0*hu0_0 + L2_1*hu1_0 + L2_2*hu2_0;
-    const double C3_0 = L3_0*hu0_0 + L3_1*hu1_0 + L3_2*hu2_0;
+    const double C0_0 = Lf[0]*hu0_0;
+    const double C1_0 = Lf[1]*hu0_0 + Lf[4]*hu1_0;
+    const double C2_0 = Lf[2]*hu0_0 + Lf[5]*hu1_0 + Lf[7]*hu2_0;
+    const double C3_0 = Lf[3]*hu0_0 + Lf[6]*hu1_0 + Lf[8]*hu2_0;
     const double S0_0 = 2.0*(ea[0]*ea[0]) + (hu0_0*hu0_0) + (hu1_0*hu1_0) + (hu2_0*hu2_0) + (hv0_0*hv0_0) + (hv1_0*hv1_0) + (hv2_0*hv2_0) + (hv3_0*hv3_0) + 0.0027415567780803775;
     const double Sd0 = S0_0;
     if (!isfinite(Sd0)) { return ROVER_UKF_NON_FINITE; }

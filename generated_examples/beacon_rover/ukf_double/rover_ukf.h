@@ -43,7 +43,7 @@
  * Reentrant: distinct structs may be used from distinct threads.
  * Sigma points: 2n+1 = 9, never stored as arrays. Their offsets gamma*L, their images
  * and deviations are const locals of predict and update (straight-line code), so they live
- * on the stack of those calls: the named locals total 1944 bytes in predict and 904 bytes
+ * on the stack of those calls: the named locals total 1888 bytes in predict and 856 bytes
  * in the largest update. The real frame depends on the compiler (registers hold many, spills
  * add some): measure it on the target, e.g. gcc -fstack-usage.
  * Weights: Wm0 = 0.0, Wc0 = 2.0, Wm_i = Wc_i = 0.125 (i = 1..8);

@@ -96,6 +96,49 @@ static int rover_ukf_commit_pd(const float *P)
     return ROVER_UKF_OK;
 }
 
+/* Lf = the lower Cholesky factor of the packed covariance P (stored packed like P, entry (i, j)
+   of L at the packed index of (j, i)); OK, or the refusal code when P is not positive definite.
+   Unrolled; one copy serves predict and every update. */
+static int rover_ukf_factor(const float *P, float *Lf)
+{
+    const float Ld0 = P[0];
+    if (!isfinite(Ld0)) { return ROVER_UKF_NON_FINITE; }
+    if (!(Ld0 > 0.0F)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
+    const float L0_0 = sqrtf(Ld0);
+    const float Li0 = (1.0F/L0_0);
+    const float L1_0 = Li0*P[1];
+    const float L2_0 = Li0*P[2];
+    const float L3_0 = Li0*P[3];
+    const float Ld1 = -(L1_0*L1_0) + P[4];
+    if (!isfinite(Ld1)) { return ROVER_UKF_NON_FINITE; }
+    if (!(Ld1 > 0.0F)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
+    const float L1_1 = sqrtf(Ld1);
+    const float Li1 = (1.0F/L1_1);
+    const float L2_1 = Li1*(-L1_0*L2_0 + P[5]);
+    const float L3_1 = Li1*(-L1_0*L3_0 + P[6]);
+    const float Ld2 = -(L2_0*L2_0) - (L2_1*L2_1) + P[7];
+    if (!isfinite(Ld2)) { return ROVER_UKF_NON_FINITE; }
+    if (!(Ld2 > 0.0F)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
+    const float L2_2 = sqrtf(Ld2);
+    const float Li2 = (1.0F/L2_2);
+    const float L3_2 = Li2*(-L2_0*L3_0 - L2_1*L3_1 + P[8]);
+    const float Ld3 = -(L3_0*L3_0) - (L3_1*L3_1) - (L3_2*L3_2) + P[9];
+    if (!isfinite(Ld3)) { return ROVER_UKF_NON_FINITE; }
+    if (!(Ld3 > 0.0F)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
+    const float L3_3 = sqrtf(Ld3);
+    Lf[0] = L0_0;
+    Lf[1] = L1_0;
+    Lf[2] = L2_0;
+    Lf[3] = L3_0;
+    Lf[4] = L1_1;
+    Lf[5] = L2_1;
+    Lf[6] = L3_1;
+    Lf[7] = L2_2;
+    Lf[8] = L3_2;
+    Lf[9] = L3_3;
+    return ROVER_UKF_OK;
+}
+
 void rover_ukf_init(rover_ukf_t *s)
 {
     s->x[0] = 0.0F;
@@ -156,6 +199,7 @@ int rover_ukf_predict(rover_ukf_t *s, const float *u, float dt)
 {
     float xn[4];
     float Pn[10];
+    float Lf[10];
     float ea[8];
     const float *x = s->x;
     const float *P = s->P;
@@ -169,41 +213,22 @@ int rover_ukf_predict(rover_ukf_t *s, const float *u, float dt)
         return ROVER_UKF_BAD_DT;
     }
 
-    const float Ld0 = P[0];
-    if (!isfinite(Ld0)) { return ROVER_UKF_NON_FINITE; }
-    if (!(Ld0 > 0.0F)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
-    const float L0_0 = sqrtf(Ld0);
-    const float Li0 = (1.0F/L0_0);
-    const float L1_0 = Li0*P[1];
-    const float L2_0 = Li0*P[2];
-    const float L3_0 = Li0*P[3];
-    const float Ld1 = -(L1_0*L1_0) + P[4];
-    if (!isfinite(Ld1)) { return ROVER_UKF_NON_FINITE; }
-    if (!(Ld1 > 0.0F)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
-    const float L1_1 = sqrtf(Ld1);
-    const float Li1 = (1.0F/L1_1);
-    const float L2_1 = Li1*(-L1_0*L2_0 + P[5]);
-    const float L3_1 = Li1*(-L1_0*L3_0 + P[6]);
-    const float Ld2 = -(L2_0*L2_0) - (L2_1*L2_1) + P[7];
-    if (!isfinite(Ld2)) { return ROVER_UKF_NON_FINITE; }
-    if (!(Ld2 > 0.0F)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
-    const float L2_2 = sqrtf(Ld2);
-    const float Li2 = (1.0F/L2_2);
-    const float L3_2 = Li2*(-L2_0*L3_0 - L2_1*L3_1 + P[8]);
-    const float Ld3 = -(L3_0*L3_0) - (L3_1*L3_1) - (L3_2*L3_2) + P[9];
-    if (!isfinite(Ld3)) { return ROVER_UKF_NON_FINITE; }
-    if (!(Ld3 > 0.0F)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
-    const float L3_3 = sqrtf(Ld3);
-    const float fg0_0 = 2.0F*L0_0;
-    const float fg1_0 = 2.0F*L1_0;
-    const float fg2_0 = 2.0F*L2_0;
-    const float fg3_0 = 2.0F*L3_0;
-    const float fg1_1 = 2.0F*L1_1;
-    const float fg2_1 = 2.0F*L2_1;
-    const float fg3_1 = 2.0F*L3_1;
-    const float fg2_2 = 2.0F*L2_2;
-    const float fg3_2 = 2.0F*L3_2;
-    const float fg3_3 = 2.0F*L3_3;
+    {
+        const int st = rover_ukf_factor(P, Lf);
+        if (st != ROVER_UKF_OK) {
+            return st;
+        }
+    }
+    const float fg0_0 = 2.0F*Lf[0];
+    const float fg1_0 = 2.0F*Lf[1];
+    const float fg2_0 = 2.0F*Lf[2];
+    const float fg3_0 = 2.0F*Lf[3];
+    const float fg1_1 = 2.0F*Lf[4];
+    const float fg2_1 = 2.0F*Lf[5];
+    const float fg3_1 = 2.0F*Lf[6];
+    const float fg2_2 = 2.0F*Lf[7];
+    const float fg3_2 = 2.0F*Lf[8];
+    const float fg3_3 = 2.0F*Lf[9];
     const float fas0 = sinf(x[2]);
     const float fak0 = cosf(x[2]);
     const float fr0_sd0 = sinf(fg2_0);
@@ -413,12 +438,12 @@ int rover_ukf_predict(rover_ukf_t *s, const float *u, float dt)
     Pn[0] = 2.0F*(fe0*fe0) + ft36 + (fu0_0*fu0_0) + (fu1_0*fu1_0) + (fu2_0*fu2_0) + (fu3_0*fu3_0) + (fv0_0*fv0_0) + (fv1_0*fv1_0) + (fv2_0*fv2_0) + (fv3_0*fv3_0);
     Pn[1] = 2.0F*fe0*fe1 + fu0_0*fu0_1 + fu1_0*fu1_1 + fu2_0*fu2_1 + fu3_0*fu3_1 + fv0_0*fv0_1 + fv1_0*fv1_1 + fv2_0*fv2_1 + fv3_0*fv3_1;
     Pn[2] = 2.0F*ea[0]*fe0 + fu0_0*fu0_2 + fu1_0*fu1_2 + fu2_0*fu2_2 + fv0_0*fv0_2 + fv1_0*fv1_2 + fv2_0*fv2_2 + fv3_0*fv3_2;
-    Pn[3] = L3_0*fu0_0 + L3_1*fu1_0 + L3_2*fu2_0 + L3_3*fu3_0;
+    Pn[3] = Lf[3]*fu0_0 + Lf[6]*fu1_0 + Lf[8]*fu2_0 + Lf[9]*fu3_0;
     Pn[4] = 2.0F*(fe1*fe1) + ft36 + (fu0_1*fu0_1) + (fu1_1*fu1_1) + (fu2_1*fu2_1) + (fu3_1*fu3_1) + (fv0_1*fv0_1) + (fv1_1*fv1_1) + (fv2_1*fv2_1) + (fv3_1*fv3_1);
     Pn[5] = 2.0F*ea[0]*fe1 + fu0_1*fu0_2 + fu1_1*fu1_2 + fu2_1*fu2_2 + fv0_1*fv0_2 + fv1_1*fv1_2 + fv2_1*fv2_2 + fv3_1*fv3_2;
-    Pn[6] = L3_0*fu0_1 + L3_1*fu1_1 + L3_2*fu2_1 + L3_3*fu3_1;
+    Pn[6] = Lf[3]*fu0_1 + Lf[6]*fu1_1 + Lf[8]*fu2_1 + Lf[9]*fu3_1;
     Pn[7] = 2.0F*(ea[0]*ea[0]) + ft36 + (fu0_2*fu0_2) + (fu1_2*fu1_2) + (fu2_2*fu2_2) + (fv0_2*fv0_2) + (fv1_2*fv1_2) + (fv2_2*fv2_2) + (fv3_2*fv3_2);
-    Pn[8] = L3_0*fu0_2 + L3_1*fu1_2 + L3_2*fu2_2;
+    Pn[8] = Lf[3]*fu0_2 + Lf[6]*fu1_2 + Lf[8]*fu2_2;
     Pn[9] = P[9] + Q3_3;
     if (!rover_ukf_finite(xn, 4u) || !rover_ukf_finite(Pn, 10u)) {
         return ROVER_UKF_NON_FINITE;
@@ -440,6 +465,7 @@ int rover_ukf_update_range_a_nis(rover_ukf_t *s, const float *z, float *nis_out)
 {
     float xs[4];
     float Ps[10];
+    float Lf[10];
     float y[1];
     float nis;
     const float *x = s->x;
@@ -449,33 +475,15 @@ int rover_ukf_update_range_a_nis(rover_ukf_t *s, const float *z, float *nis_out)
         return ROVER_UKF_BAD_INPUT;
     }
 
-    const float Ld0 = P[0];
-    if (!isfinite(Ld0)) { return ROVER_UKF_NON_FINITE; }
-    if (!(Ld0 > 0.0F)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
-    const float L0_0 = sqrtf(Ld0);
-    const float Li0 = (1.0F/L0_0);
-    const float L1_0 = Li0*P[1];
-    const float L2_0 = Li0*P[2];
-    const float L3_0 = Li0*P[3];
-    const float Ld1 = -(L1_0*L1_0) + P[4];
-    if (!isfinite(Ld1)) { return ROVER_UKF_NON_FINITE; }
-    if (!(Ld1 > 0.0F)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
-    const float L1_1 = sqrtf(Ld1);
-    const float Li1 = (1.0F/L1_1);
-    const float L2_1 = Li1*(-L1_0*L2_0 + P[5]);
-    const float L3_1 = Li1*(-L1_0*L3_0 + P[6]);
-    const float Ld2 = -(L2_0*L2_0) - (L2_1*L2_1) + P[7];
-    if (!isfinite(Ld2)) { return ROVER_UKF_NON_FINITE; }
-    if (!(Ld2 > 0.0F)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
-    const float L2_2 = sqrtf(Ld2);
-    const float Li2 = (1.0F/L2_2);
-    const float L3_2 = Li2*(-L2_0*L3_0 - L2_1*L3_1 + P[8]);
-    const float Ld3 = -(L3_0*L3_0) - (L3_1*L3_1) - (L3_2*L3_2) + P[9];
-    if (!isfinite(Ld3)) { return ROVER_UKF_NON_FINITE; }
-    if (!(Ld3 > 0.0F)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
-    const float hg0_0 = 2.0F*L0_0;
-    const float hg1_0 = 2.0F*L1_0;
-    const float hg1_1 = 2.0F*L1_1;
+    {
+        const int st = rover_ukf_factor(P, Lf);
+        if (st != ROVER_UKF_OK) {
+            return st;
+        }
+    }
+    const float hg0_0 = 2.0F*Lf[0];
+    const float hg1_0 = 2.0F*Lf[1];
+    const float hg1_1 = 2.0F*Lf[4];
     const float ht0 = par->bax - x[0];
     const float ht1 = (ht0*ht0);
     const float ht2 = par->bay - x[1];
@@ -499,10 +507,10 @@ int rover_ukf_update_range_a_nis(rover_ukf_t *s, const float *z, float *nis_out)
     const float hv2_0 = -hh0 + 0.25F*hq2_0;
     const float hv3_0 = -hh0 + 0.25F*hq3_0;
     y[0] = -hmu0 + z[0];
-    const float C0_0 = L0_0*hu0_0;
-    const float C1_0 = L1_0*hu0_0 + L1_1*hu1_0;
-    const float C2_0 = L2_0*hu0_0 + L2_1*hu1_0;
-    const float C3_0 = L3_0*hu0_0 + L3_1*hu1_0;
+    const float C0_0 = Lf[0]*hu0_0;
+    const float C1_0 = Lf[1]*hu0_0 + Lf[4]*hu1_0;
+    const float C2_0 = Lf[2]*hu0_0 + Lf[5]*hu1_0;
+    const float C3_0 = Lf[3]*hu0_0 + Lf[6]*hu1_0;
     const float S0_0 = 2.0F*(he0*he0) + (hu0_0*hu0_0) + (hu1_0*hu1_0) + (hv0_0*hv0_0) + (hv1_0*hv1_0) + (hv2_0*hv2_0) + (hv3_0*hv3_0) + 0.010000000000000002F;
     const float Sd0 = S0_0;
     if (!isfinite(Sd0)) { return ROVER_UKF_NON_FINITE; }
@@ -560,6 +568,7 @@ int rover_ukf_update_range_b_nis(rover_ukf_t *s, const float *z, float *nis_out)
 {
     float xs[4];
     float Ps[10];
+    float Lf[10];
     float y[1];
     float nis;
     const float *x = s->x;
@@ -569,33 +578,15 @@ int rover_ukf_update_range_b_nis(rover_ukf_t *s, const float *z, float *nis_out)
         return ROVER_UKF_BAD_INPUT;
     }
 
-    const float Ld0 = P[0];
-    if (!isfinite(Ld0)) { return ROVER_UKF_NON_FINITE; }
-    if (!(Ld0 > 0.0F)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
-    const float L0_0 = sqrtf(Ld0);
-    const float Li0 = (1.0F/L0_0);
-    const float L1_0 = Li0*P[1];
-    const float L2_0 = Li0*P[2];
-    const float L3_0 = Li0*P[3];
-    const float Ld1 = -(L1_0*L1_0) + P[4];
-    if (!isfinite(Ld1)) { return ROVER_UKF_NON_FINITE; }
-    if (!(Ld1 > 0.0F)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
-    const float L1_1 = sqrtf(Ld1);
-    const float Li1 = (1.0F/L1_1);
-    const float L2_1 = Li1*(-L1_0*L2_0 + P[5]);
-    const float L3_1 = Li1*(-L1_0*L3_0 + P[6]);
-    const float Ld2 = -(L2_0*L2_0) - (L2_1*L2_1) + P[7];
-    if (!isfinite(Ld2)) { return ROVER_UKF_NON_FINITE; }
-    if (!(Ld2 > 0.0F)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
-    const float L2_2 = sqrtf(Ld2);
-    const float Li2 = (1.0F/L2_2);
-    const float L3_2 = Li2*(-L2_0*L3_0 - L2_1*L3_1 + P[8]);
-    const float Ld3 = -(L3_0*L3_0) - (L3_1*L3_1) - (L3_2*L3_2) + P[9];
-    if (!isfinite(Ld3)) { return ROVER_UKF_NON_FINITE; }
-    if (!(Ld3 > 0.0F)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
-    const float hg0_0 = 2.0F*L0_0;
-    const float hg1_0 = 2.0F*L1_0;
-    const float hg1_1 = 2.0F*L1_1;
+    {
+        const int st = rover_ukf_factor(P, Lf);
+        if (st != ROVER_UKF_OK) {
+            return st;
+        }
+    }
+    const float hg0_0 = 2.0F*Lf[0];
+    const float hg1_0 = 2.0F*Lf[1];
+    const float hg1_1 = 2.0F*Lf[4];
     const float ht0 = par->bbx - x[0];
     const float ht1 = (ht0*ht0);
     const float ht2 = par->bby - x[1];
@@ -619,10 +610,10 @@ int rover_ukf_update_range_b_nis(rover_ukf_t *s, const float *z, float *nis_out)
     const float hv2_0 = -hh0 + 0.25F*hq2_0;
     const float hv3_0 = -hh0 + 0.25F*hq3_0;
     y[0] = -hmu0 + z[0];
-    const float C0_0 = L0_0*hu0_0;
-    const float C1_0 = L1_0*hu0_0 + L1_1*hu1_0;
-    const float C2_0 = L2_0*hu0_0 + L2_1*hu1_0;
-    const float C3_0 = L3_0*hu0_0 + L3_1*hu1_0;
+    const float C0_0 = Lf[0]*hu0_0;
+    const float C1_0 = Lf[1]*hu0_0 + Lf[4]*hu1_0;
+    const float C2_0 = Lf[2]*hu0_0 + Lf[5]*hu1_0;
+    const float C3_0 = Lf[3]*hu0_0 + Lf[6]*hu1_0;
     const float S0_0 = 2.0F*(he0*he0) + (hu0_0*hu0_0) + (hu1_0*hu1_0) + (hv0_0*hv0_0) + (hv1_0*hv1_0) + (hv2_0*hv2_0) + (hv3_0*hv3_0) + 0.010000000000000002F;
     const float Sd0 = S0_0;
     if (!isfinite(Sd0)) { return ROVER_UKF_NON_FINITE; }
@@ -680,6 +671,7 @@ int rover_ukf_update_range_cd_nis(rover_ukf_t *s, const float *z, float *nis_out
 {
     float xs[4];
     float Ps[10];
+    float Lf[10];
     float y[2];
     float nis;
     const float *x = s->x;
@@ -689,33 +681,15 @@ int rover_ukf_update_range_cd_nis(rover_ukf_t *s, const float *z, float *nis_out
         return ROVER_UKF_BAD_INPUT;
     }
 
-    const float Ld0 = P[0];
-    if (!isfinite(Ld0)) { return ROVER_UKF_NON_FINITE; }
-    if (!(Ld0 > 0.0F)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
-    const float L0_0 = sqrtf(Ld0);
-    const float Li0 = (1.0F/L0_0);
-    const float L1_0 = Li0*P[1];
-    const float L2_0 = Li0*P[2];
-    const float L3_0 = Li0*P[3];
-    const float Ld1 = -(L1_0*L1_0) + P[4];
-    if (!isfinite(Ld1)) { return ROVER_UKF_NON_FINITE; }
-    if (!(Ld1 > 0.0F)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
-    const float L1_1 = sqrtf(Ld1);
-    const float Li1 = (1.0F/L1_1);
-    const float L2_1 = Li1*(-L1_0*L2_0 + P[5]);
-    const float L3_1 = Li1*(-L1_0*L3_0 + P[6]);
-    const float Ld2 = -(L2_0*L2_0) - (L2_1*L2_1) + P[7];
-    if (!isfinite(Ld2)) { return ROVER_UKF_NON_FINITE; }
-    if (!(Ld2 > 0.0F)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
-    const float L2_2 = sqrtf(Ld2);
-    const float Li2 = (1.0F/L2_2);
-    const float L3_2 = Li2*(-L2_0*L3_0 - L2_1*L3_1 + P[8]);
-    const float Ld3 = -(L3_0*L3_0) - (L3_1*L3_1) - (L3_2*L3_2) + P[9];
-    if (!isfinite(Ld3)) { return ROVER_UKF_NON_FINITE; }
-    if (!(Ld3 > 0.0F)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
-    const float hg0_0 = 2.0F*L0_0;
-    const float hg1_0 = 2.0F*L1_0;
-    const float hg1_1 = 2.0F*L1_1;
+    {
+        const int st = rover_ukf_factor(P, Lf);
+        if (st != ROVER_UKF_OK) {
+            return st;
+        }
+    }
+    const float hg0_0 = 2.0F*Lf[0];
+    const float hg1_0 = 2.0F*Lf[1];
+    const float hg1_1 = 2.0F*Lf[4];
     const float ht0 = -x[0];
     const float ht1 = ht0 + par->bcx;
     const float ht2 = (ht1*ht1);
@@ -767,14 +741,14 @@ int rover_ukf_update_range_cd_nis(rover_ukf_t *s, const float *z, float *nis_out
     const float hv3_1 = -hh1 + 0.25F*hq3_1;
     y[0] = -hmu0 + z[0];
     y[1] = -hmu1 + z[1];
-    const float C0_0 = L0_0*hu0_0;
-    const float C1_0 = L1_0*hu0_0 + L1_1*hu1_0;
-    const float C2_0 = L2_0*hu0_0 + L2_1*hu1_0;
-    const float C3_0 = L3_0*hu0_0 + L3_1*hu1_0;
-    const float C0_1 = L0_0*hu0_1;
-    const float C1_1 = L1_0*hu0_1 + L1_1*hu1_1;
-    const float C2_1 = L2_0*hu0_1 + L2_1*hu1_1;
-    const float C3_1 = L3_0*hu0_1 + L3_1*hu1_1;
+    const float C0_0 = Lf[0]*hu0_0;
+    const float C1_0 = Lf[1]*hu0_0 + Lf[4]*hu1_0;
+    const float C2_0 = Lf[2]*hu0_0 + Lf[5]*hu1_0;
+    const float C3_0 = Lf[3]*hu0_0 + Lf[6]*hu1_0;
+    const float C0_1 = Lf[0]*hu0_1;
+    const float C1_1 = Lf[1]*hu0_1 + Lf[4]*hu1_1;
+    const float C2_1 = Lf[2]*hu0_1 + Lf[5]*hu1_1;
+    const float C3_1 = Lf[3]*hu0_1 + Lf[6]*hu1_1;
     const float S0_0 = 2.0F*(he0*he0) + (hu0_0*hu0_0) + (hu1_0*hu1_0) + (hv0_0*hv0_0) + (hv1_0*hv1_0) + (hv2_0*hv2_0) + (hv3_0*hv3_0) + 0.0225F;
     const float S0_1 = 2.0F*he0*he1 + hu0_0*hu0_1 + hu1_0*hu1_1 + hv0_0*hv0_1 + hv1_0*hv1_1 + hv2_0*hv2_1 + hv3_0*hv3_1;
     const float S1_1 = 2.0F*(he1*he1) + (hu0_1*hu0_1) + (hu1_1*hu1_1) + (hv0_1*hv0_1) + (hv1_1*hv1_1) + (hv2_1*hv2_1) + (hv3_1*hv3_1) + 0.0225F;
@@ -847,6 +821,7 @@ int rover_ukf_update_compass_nis(rover_ukf_t *s, const float *z, float *nis_out)
 {
     float xs[4];
     float Ps[10];
+    float Lf[10];
     float y[1];
     float ea[8];
     float nis;
@@ -856,33 +831,15 @@ int rover_ukf_update_compass_nis(rover_ukf_t *s, const float *z, float *nis_out)
         return ROVER_UKF_BAD_INPUT;
     }
 
-    const float Ld0 = P[0];
-    if (!isfinite(Ld0)) { return ROVER_UKF_NON_FINITE; }
-    if (!(Ld0 > 0.0F)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
-    const float L0_0 = sqrtf(Ld0);
-    const float Li0 = (1.0F/L0_0);
-    const float L1_0 = Li0*P[1];
-    const float L2_0 = Li0*P[2];
-    const float L3_0 = Li0*P[3];
-    const float Ld1 = -(L1_0*L1_0) + P[4];
-    if (!isfinite(Ld1)) { return ROVER_UKF_NON_FINITE; }
-    if (!(Ld1 > 0.0F)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
-    const float L1_1 = sqrtf(Ld1);
-    const float Li1 = (1.0F/L1_1);
-    const float L2_1 = Li1*(-L1_0*L2_0 + P[5]);
-    const float L3_1 = Li1*(-L1_0*L3_0 + P[6]);
-    const float Ld2 = -(L2_0*L2_0) - (L2_1*L2_1) + P[7];
-    if (!isfinite(Ld2)) { return ROVER_UKF_NON_FINITE; }
-    if (!(Ld2 > 0.0F)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
-    const float L2_2 = sqrtf(Ld2);
-    const float Li2 = (1.0F/L2_2);
-    const float L3_2 = Li2*(-L2_0*L3_0 - L2_1*L3_1 + P[8]);
-    const float Ld3 = -(L3_0*L3_0) - (L3_1*L3_1) - (L3_2*L3_2) + P[9];
-    if (!isfinite(Ld3)) { return ROVER_UKF_NON_FINITE; }
-    if (!(Ld3 > 0.0F)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
-    const float hg2_0 = 2.0F*L2_0;
-    const float hg2_1 = 2.0F*L2_1;
-    const float hg2_2 = 2.0F*L2_2;
+    {
+        const int st = rover_ukf_factor(P, Lf);
+        if (st != ROVER_UKF_OK) {
+            return st;
+        }
+    }
+    const float hg2_0 = 2.0F*Lf[2];
+    const float hg2_1 = 2.0F*Lf[5];
+    const float hg2_2 = 2.0F*Lf[7];
     const float hkk0 = 2.0F*cosf(hg2_0) + 2.0F*cosf(hg2_1) + 2.0F*cosf(hg2_2) + 2.0F;
     const float hmu0 = atan2f(hkk0*sinf(x[2]), hkk0*cosf(x[2]));
     ea[0] = rover_ukf_wrap(-hmu0 + x[2]);
@@ -901,10 +858,10 @@ int rover_ukf_update_compass_nis(rover_ukf_t *s, const float *z, float *nis_out)
     ea[7] = rover_ukf_wrap(-hmu0 + x[2]);
     const float hv3_0 = 0.5F*ea[7];
     y[0] = rover_ukf_wrap(-hmu0 + z[0]);
-    const float C0_0 = L0_0*hu0_0;
-    const float C1_0 = L1_0*hu0_0 + L1_1*hu1_0;
-    const float C2_0 = L2_0*hu0_0 + L2_1*hu1_0 + L2_2*hu2_0;
-    const float C3_0 = L3_0*hu0_0 + L3_1*hu1_0 + L3_2*hu2_0;
+    const float C0_0 = Lf[0]*hu0_0;
+    const float C1_0 = Lf[1]*hu0_0 + Lf[4]*hu1_0;
+    const float C2_0 = Lf[2]*hu0_0 + Lf[5]*hu1_0 + Lf[7]*hu2_0;
+    const float C3_0 = Lf[3]*hu0_0 + Lf[6]*hu1_0 + Lf[8]*hu2_0;
     const float S0_0 = 2.0F*(ea[0]*ea[0]) + (hu0_0*hu0_0) + (hu1_0*hu1_0) + (hu2_0*hu2_0) + (hv0_0*hv0_0) + (hv1_0*hv1_0) + (hv2_0*hv2_0) + (hv3_0*hv3_0) + 0.0027415567780803775F;
     const float Sd0 = S0_0;
     if (!isfinite(Sd0)) { return ROVER_UKF_NON_FINITE; }

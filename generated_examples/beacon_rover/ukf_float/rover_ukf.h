@@ -43,7 +43,7 @@
  * Reentrant: distinct structs may be used from distinct threads.
  * Sigma points: 2n+1 = 9, never stored as arrays. Their offsets gamma*L, their images
  * and deviations are const locals of predict and update (straight-line code), so they live
- * on the stack of those calls: the named locals total 972 bytes in predict and 452 bytes
+ * on the stack of those calls: the named locals total 944 bytes in predict and 428 bytes
  * in the largest update. The real frame depends on the compiler (registers hold many, spills
  * add some): measure it on the target, e.g. gcc -fstack-usage.
  * Weights: Wm0 = 0.0F, Wc0 = 2.0F, Wm_i = Wc_i = 0.125F (i = 1..8);

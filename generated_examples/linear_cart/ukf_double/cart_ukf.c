@@ -82,6 +82,37 @@ static int cart_ukf_commit_pd(const double *P)
     return CART_UKF_OK;
 }
 
+/* Lf = the lower Cholesky factor of the packed covariance P (stored packed like P, entry (i, j)
+   of L at the packed index of (j, i)); OK, or the refusal code when P is not positive definite.
+   Unrolled; one copy serves predict and every update. */
+static int cart_ukf_factor(const double *P, double *Lf)
+{
+    const double Ld0 = P[0];
+    if (!isfinite(Ld0)) { return CART_UKF_NON_FINITE; }
+    if (!(Ld0 > 0.0)) { return CART_UKF_NOT_POSITIVE_DEFINITE; }
+    const double L0_0 = sqrt(Ld0);
+    const double Li0 = (1.0/L0_0);
+    const double L1_0 = Li0*P[1];
+    const double L2_0 = Li0*P[2];
+    const double Ld1 = -(L1_0*L1_0) + P[3];
+    if (!isfinite(Ld1)) { return CART_UKF_NON_FINITE; }
+    if (!(Ld1 > 0.0)) { return CART_UKF_NOT_POSITIVE_DEFINITE; }
+    const double L1_1 = sqrt(Ld1);
+    const double Li1 = (1.0/L1_1);
+    const double L2_1 = Li1*(-L1_0*L2_0 + P[4]);
+    const double Ld2 = -(L2_0*L2_0) - (L2_1*L2_1) + P[5];
+    if (!isfinite(Ld2)) { return CART_UKF_NON_FINITE; }
+    if (!(Ld2 > 0.0)) { return CART_UKF_NOT_POSITIVE_DEFINITE; }
+    const double L2_2 = sqrt(Ld2);
+    Lf[0] = L0_0;
+    Lf[1] = L1_0;
+    Lf[2] = L2_0;
+    Lf[3] = L1_1;
+    Lf[4] = L2_1;
+    Lf[5] = L2_2;
+    return CART_UKF_OK;
+}
+
 void cart_ukf_init(cart_ukf_t *s)
 {
     s->x[0] = 0.0;
@@ -131,6 +162,7 @@ int cart_ukf_predict(cart_ukf_t *s, const double *u, double dt)
 {
     double xn[3];
     double Pn[6];
+    double Lf[6];
     const double *x = s->x;
     const double *P = s->P;
     const cart_ukf_par_t *par = &s->par;
@@ -144,22 +176,12 @@ int cart_ukf_predict(cart_ukf_t *s, const double *u, double dt)
         return CART_UKF_BAD_DT;
     }
 
-    const double Ld0 = P[0];
-    if (!isfinite(Ld0)) { return CART_UKF_NON_FINITE; }
-    if (!(Ld0 > 0.0)) { return CART_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L0_0 = sqrt(Ld0);
-    const double Li0 = (1.0/L0_0);
-    const double L1_0 = Li0*P[1];
-    const double L2_0 = Li0*P[2];
-    const double Ld1 = -(L1_0*L1_0) + P[3];
-    if (!isfinite(Ld1)) { return CART_UKF_NON_FINITE; }
-    if (!(Ld1 > 0.0)) { return CART_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L1_1 = sqrt(Ld1);
-    const double Li1 = (1.0/L1_1);
-    const double L2_1 = Li1*(-L1_0*L2_0 + P[4]);
-    const double Ld2 = -(L2_0*L2_0) - (L2_1*L2_1) + P[5];
-    if (!isfinite(Ld2)) { return CART_UKF_NON_FINITE; }
-    if (!(Ld2 > 0.0)) { return CART_UKF_NOT_POSITIVE_DEFINITE; }
+    {
+        const int st = cart_ukf_factor(P, Lf);
+        if (st != CART_UKF_OK) {
+            return st;
+        }
+    }
     const double ft0 = u[0] + x[2];
     const double ft1 = (1.0/par->mass);
     const double ft2 = (0.5)*(dt*dt);
@@ -205,6 +227,7 @@ int cart_ukf_update_encoder_nis(cart_ukf_t *s, const double *z, double *nis_out)
 {
     double xs[3];
     double Ps[6];
+    double Lf[6];
     double y[1];
     double nis;
     const double *x = s->x;
@@ -213,22 +236,12 @@ int cart_ukf_update_encoder_nis(cart_ukf_t *s, const double *z, double *nis_out)
         return CART_UKF_BAD_INPUT;
     }
 
-    const double Ld0 = P[0];
-    if (!isfinite(Ld0)) { return CART_UKF_NON_FINITE; }
-    if (!(Ld0 > 0.0)) { return CART_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L0_0 = sqrt(Ld0);
-    const double Li0 = (1.0/L0_0);
-    const double L1_0 = Li0*P[1];
-    const double L2_0 = Li0*P[2];
-    const double Ld1 = -(L1_0*L1_0) + P[3];
-    if (!isfinite(Ld1)) { return CART_UKF_NON_FINITE; }
-    if (!(Ld1 > 0.0)) { return CART_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L1_1 = sqrt(Ld1);
-    const double Li1 = (1.0/L1_1);
-    const double L2_1 = Li1*(-L1_0*L2_0 + P[4]);
-    const double Ld2 = -(L2_0*L2_0) - (L2_1*L2_1) + P[5];
-    if (!isfinite(Ld2)) { return CART_UKF_NON_FINITE; }
-    if (!(Ld2 > 0.0)) { return CART_UKF_NOT_POSITIVE_DEFINITE; }
+    {
+        const int st = cart_ukf_factor(P, Lf);
+        if (st != CART_UKF_OK) {
+            return st;
+        }
+    }
     y[0] = -x[0] + z[0];
     const double S0_0 = P[0] + 2.5e-07;
     const double Sd0 = S0_0;
@@ -280,6 +293,7 @@ int cart_ukf_update_speed_nis(cart_ukf_t *s, const double *z, double *nis_out)
 {
     double xs[3];
     double Ps[6];
+    double Lf[6];
     double y[1];
     double nis;
     const double *x = s->x;
@@ -288,22 +302,12 @@ int cart_ukf_update_speed_nis(cart_ukf_t *s, const double *z, double *nis_out)
         return CART_UKF_BAD_INPUT;
     }
 
-    const double Ld0 = P[0];
-    if (!isfinite(Ld0)) { return CART_UKF_NON_FINITE; }
-    if (!(Ld0 > 0.0)) { return CART_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L0_0 = sqrt(Ld0);
-    const double Li0 = (1.0/L0_0);
-    const double L1_0 = Li0*P[1];
-    const double L2_0 = Li0*P[2];
-    const double Ld1 = -(L1_0*L1_0) + P[3];
-    if (!isfinite(Ld1)) { return CART_UKF_NON_FINITE; }
-    if (!(Ld1 > 0.0)) { return CART_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L1_1 = sqrt(Ld1);
-    const double Li1 = (1.0/L1_1);
-    const double L2_1 = Li1*(-L1_0*L2_0 + P[4]);
-    const double Ld2 = -(L2_0*L2_0) - (L2_1*L2_1) + P[5];
-    if (!isfinite(Ld2)) { return CART_UKF_NON_FINITE; }
-    if (!(Ld2 > 0.0)) { return CART_UKF_NOT_POSITIVE_DEFINITE; }
+    {
+        const int st = cart_ukf_factor(P, Lf);
+        if (st != CART_UKF_OK) {
+            return st;
+        }
+    }
     y[0] = -x[1] + z[0];
     const double S0_0 = P[3] + 0.0001;
     const double Sd0 = S0_0;

@@ -39,7 +39,7 @@
  * Reentrant: distinct structs may be used from distinct threads.
  * Sigma points: 2n+1 = 7, never stored as arrays. Their offsets gamma*L, their images
  * and deviations are const locals of predict and update (straight-line code), so they live
- * on the stack of those calls: the named locals total 280 bytes in predict and 216 bytes
+ * on the stack of those calls: the named locals total 248 bytes in predict and 184 bytes
  * in the largest update. The real frame depends on the compiler (registers hold many, spills
  * add some): measure it on the target, e.g. gcc -fstack-usage.
  * Weights: Wm0 = 0.0, Wc0 = 2.0, Wm_i = Wc_i = 0.16666666666666666 (i = 1..6);

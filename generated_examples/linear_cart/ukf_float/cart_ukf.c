@@ -82,6 +82,37 @@ static int cart_ukf_commit_pd(const float *P)
     return CART_UKF_OK;
 }
 
+/* Lf = the lower Cholesky factor of the packed covariance P (stored packed like P, entry (i, j)
+   of L at the packed index of (j, i)); OK, or the refusal code when P is not positive definite.
+   Unrolled; one copy serves predict and every update. */
+static int cart_ukf_factor(const float *P, float *Lf)
+{
+    const float Ld0 = P[0];
+    if (!isfinite(Ld0)) { return CART_UKF_NON_FINITE; }
+    if (!(Ld0 > 0.0F)) { return CART_UKF_NOT_POSITIVE_DEFINITE; }
+    const float L0_0 = sqrtf(Ld0);
+    const float Li0 = (1.0F/L0_0);
+    const float L1_0 = Li0*P[1];
+    const float L2_0 = Li0*P[2];
+    const float Ld1 = -(L1_0*L1_0) + P[3];
+    if (!isfinite(Ld1)) { return CART_UKF_NON_FINITE; }
+    if (!(Ld1 > 0.0F)) { return CART_UKF_NOT_POSITIVE_DEFINITE; }
+    const float L1_1 = sqrtf(Ld1);
+    const float Li1 = (1.0F/L1_1);
+    const float L2_1 = Li1*(-L1_0*L2_0 + P[4]);
+    const float Ld2 = -(L2_0*L2_0) - (L2_1*L2_1) + P[5];
+    if (!isfinite(Ld2)) { return CART_UKF_NON_FINITE; }
+    if (!(Ld2 > 0.0F)) { return CART_UKF_NOT_POSITIVE_DEFINITE; }
+    const float L2_2 = sqrtf(Ld2);
+    Lf[0] = L0_0;
+    Lf[1] = L1_0;
+    Lf[2] = L2_0;
+    Lf[3] = L1_1;
+    Lf[4] = L2_1;
+    Lf[5] = L2_2;
+    return CART_UKF_OK;
+}
+
 void cart_ukf_init(cart_ukf_t *s)
 {
     s->x[0] = 0.0F;
@@ -131,6 +162,7 @@ int cart_ukf_predict(cart_ukf_t *s, const float *u, float dt)
 {
     float xn[3];
     float Pn[6];
+    float Lf[6];
     const float *x = s->x;
     const float *P = s->P;
     const cart_ukf_par_t *par = &s->par;
@@ -144,22 +176,12 @@ int cart_ukf_predict(cart_ukf_t *s, const float *u, float dt)
         return CART_UKF_BAD_DT;
     }
 
-    const float Ld0 = P[0];
-    if (!isfinite(Ld0)) { return CART_UKF_NON_FINITE; }
-    if (!(Ld0 > 0.0F)) { return CART_UKF_NOT_POSITIVE_DEFINITE; }
-    const float L0_0 = sqrtf(Ld0);
-    const float Li0 = (1.0F/L0_0);
-    const float L1_0 = Li0*P[1];
-    const float L2_0 = Li0*P[2];
-    const float Ld1 = -(L1_0*L1_0) + P[3];
-    if (!isfinite(Ld1)) { return CART_UKF_NON_FINITE; }
-    if (!(Ld1 > 0.0F)) { return CART_UKF_NOT_POSITIVE_DEFINITE; }
-    const float L1_1 = sqrtf(Ld1);
-    const float Li1 = (1.0F/L1_1);
-    const float L2_1 = Li1*(-L1_0*L2_0 + P[4]);
-    const float Ld2 = -(L2_0*L2_0) - (L2_1*L2_1) + P[5];
-    if (!isfinite(Ld2)) { return CART_UKF_NON_FINITE; }
-    if (!(Ld2 > 0.0F)) { return CART_UKF_NOT_POSITIVE_DEFINITE; }
+    {
+        const int st = cart_ukf_factor(P, Lf);
+        if (st != CART_UKF_OK) {
+            return st;
+        }
+    }
     const float ft0 = u[0] + x[2];
     const float ft1 = (1.0F/par->mass);
     const float ft2 = (0.5F)*(dt*dt);
@@ -205,6 +227,7 @@ int cart_ukf_update_encoder_nis(cart_ukf_t *s, const float *z, float *nis_out)
 {
     float xs[3];
     float Ps[6];
+    float Lf[6];
     float y[1];
     float nis;
     const float *x = s->x;
@@ -213,22 +236,12 @@ int cart_ukf_update_encoder_nis(cart_ukf_t *s, const float *z, float *nis_out)
         return CART_UKF_BAD_INPUT;
     }
 
-    const float Ld0 = P[0];
-    if (!isfinite(Ld0)) { return CART_UKF_NON_FINITE; }
-    if (!(Ld0 > 0.0F)) { return CART_UKF_NOT_POSITIVE_DEFINITE; }
-    const float L0_0 = sqrtf(Ld0);
-    const float Li0 = (1.0F/L0_0);
-    const float L1_0 = Li0*P[1];
-    const float L2_0 = Li0*P[2];
-    const float Ld1 = -(L1_0*L1_0) + P[3];
-    if (!isfinite(Ld1)) { return CART_UKF_NON_FINITE; }
-    if (!(Ld1 > 0.0F)) { return CART_UKF_NOT_POSITIVE_DEFINITE; }
-    const float L1_1 = sqrtf(Ld1);
-    const float Li1 = (1.0F/L1_1);
-    const float L2_1 = Li1*(-L1_0*L2_0 + P[4]);
-    const float Ld2 = -(L2_0*L2_0) - (L2_1*L2_1) + P[5];
-    if (!isfinite(Ld2)) { return CART_UKF_NON_FINITE; }
-    if (!(Ld2 > 0.0F)) { return CART_UKF_NOT_POSITIVE_DEFINITE; }
+    {
+        const int st = cart_ukf_factor(P, Lf);
+        if (st != CART_UKF_OK) {
+            return st;
+        }
+    }
     y[0] = -x[0] + z[0];
     const float S0_0 = P[0] + 2.5e-07F;
     const float Sd0 = S0_0;
@@ -280,6 +293,7 @@ int cart_ukf_update_speed_nis(cart_ukf_t *s, const float *z, float *nis_out)
 {
     float xs[3];
     float Ps[6];
+    float Lf[6];
     float y[1];
     float nis;
     const float *x = s->x;
@@ -288,22 +302,12 @@ int cart_ukf_update_speed_nis(cart_ukf_t *s, const float *z, float *nis_out)
         return CART_UKF_BAD_INPUT;
     }
 
-    const float Ld0 = P[0];
-    if (!isfinite(Ld0)) { return CART_UKF_NON_FINITE; }
-    if (!(Ld0 > 0.0F)) { return CART_UKF_NOT_POSITIVE_DEFINITE; }
-    const float L0_0 = sqrtf(Ld0);
-    const float Li0 = (1.0F/L0_0);
-    const float L1_0 = Li0*P[1];
-    const float L2_0 = Li0*P[2];
-    const float Ld1 = -(L1_0*L1_0) + P[3];
-    if (!isfinite(Ld1)) { return CART_UKF_NON_FINITE; }
-    if (!(Ld1 > 0.0F)) { return CART_UKF_NOT_POSITIVE_DEFINITE; }
-    const float L1_1 = sqrtf(Ld1);
-    const float Li1 = (1.0F/L1_1);
-    const float L2_1 = Li1*(-L1_0*L2_0 + P[4]);
-    const float Ld2 = -(L2_0*L2_0) - (L2_1*L2_1) + P[5];
-    if (!isfinite(Ld2)) { return CART_UKF_NON_FINITE; }
-    if (!(Ld2 > 0.0F)) { return CART_UKF_NOT_POSITIVE_DEFINITE; }
+    {
+        const int st = cart_ukf_factor(P, Lf);
+        if (st != CART_UKF_OK) {
+            return st;
+        }
+    }
     y[0] = -x[1] + z[0];
     const float S0_0 = P[3] + 0.0001F;
     const float Sd0 = S0_0;

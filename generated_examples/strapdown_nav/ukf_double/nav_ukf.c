@@ -250,196 +250,11 @@ static int nav_ukf_commit_pd(const double *P)
     return NAV_UKF_OK;
 }
 
-void nav_ukf_init(nav_ukf_t *s)
+/* Lf = the lower Cholesky factor of the packed covariance P (stored packed like P, entry (i, j)
+   of L at the packed index of (j, i)); OK, or the refusal code when P is not positive definite.
+   Unrolled; one copy serves predict and every update. */
+static int nav_ukf_factor(const double *P, double *Lf)
 {
-    s->x[0] = 0.0;
-    s->x[1] = 0.0;
-    s->x[2] = 0.0;
-    s->x[3] = 0.0;
-    s->x[4] = 0.0;
-    s->x[5] = 0.0;
-    s->x[6] = 0.0;
-    s->x[7] = 0.0;
-    s->x[8] = 0.5;
-    s->x[9] = 0.0;
-    s->x[10] = 0.0;
-    s->x[11] = 0.0;
-    s->x[12] = 0.0;
-    s->x[13] = 0.0;
-    s->x[14] = 0.0;
-    s->P[0] = 4.0;
-    s->P[1] = 0.0;
-    s->P[2] = 0.0;
-    s->P[3] = 0.0;
-    s->P[4] = 0.0;
-    s->P[5] = 0.0;
-    s->P[6] = 0.0;
-    s->P[7] = 0.0;
-    s->P[8] = 0.0;
-    s->P[9] = 0.0;
-    s->P[10] = 0.0;
-    s->P[11] = 0.0;
-    s->P[12] = 0.0;
-    s->P[13] = 0.0;
-    s->P[14] = 0.0;
-    s->P[15] = 4.0;
-    s->P[16] = 0.0;
-    s->P[17] = 0.0;
-    s->P[18] = 0.0;
-    s->P[19] = 0.0;
-    s->P[20] = 0.0;
-    s->P[21] = 0.0;
-    s->P[22] = 0.0;
-    s->P[23] = 0.0;
-    s->P[24] = 0.0;
-    s->P[25] = 0.0;
-    s->P[26] = 0.0;
-    s->P[27] = 0.0;
-    s->P[28] = 0.0;
-    s->P[29] = 4.0;
-    s->P[30] = 0.0;
-    s->P[31] = 0.0;
-    s->P[32] = 0.0;
-    s->P[33] = 0.0;
-    s->P[34] = 0.0;
-    s->P[35] = 0.0;
-    s->P[36] = 0.0;
-    s->P[37] = 0.0;
-    s->P[38] = 0.0;
-    s->P[39] = 0.0;
-    s->P[40] = 0.0;
-    s->P[41] = 0.0;
-    s->P[42] = 0.09;
-    s->P[43] = 0.0;
-    s->P[44] = 0.0;
-    s->P[45] = 0.0;
-    s->P[46] = 0.0;
-    s->P[47] = 0.0;
-    s->P[48] = 0.0;
-    s->P[49] = 0.0;
-    s->P[50] = 0.0;
-    s->P[51] = 0.0;
-    s->P[52] = 0.0;
-    s->P[53] = 0.0;
-    s->P[54] = 0.09;
-    s->P[55] = 0.0;
-    s->P[56] = 0.0;
-    s->P[57] = 0.0;
-    s->P[58] = 0.0;
-    s->P[59] = 0.0;
-    s->P[60] = 0.0;
-    s->P[61] = 0.0;
-    s->P[62] = 0.0;
-    s->P[63] = 0.0;
-    s->P[64] = 0.0;
-    s->P[65] = 0.09;
-    s->P[66] = 0.0;
-    s->P[67] = 0.0;
-    s->P[68] = 0.0;
-    s->P[69] = 0.0;
-    s->P[70] = 0.0;
-    s->P[71] = 0.0;
-    s->P[72] = 0.0;
-    s->P[73] = 0.0;
-    s->P[74] = 0.0;
-    s->P[75] = 0.0012184696791468343;
-    s->P[76] = 0.0;
-    s->P[77] = 0.0;
-    s->P[78] = 0.0;
-    s->P[79] = 0.0;
-    s->P[80] = 0.0;
-    s->P[81] = 0.0;
-    s->P[82] = 0.0;
-    s->P[83] = 0.0;
-    s->P[84] = 0.0012184696791468343;
-    s->P[85] = 0.0;
-    s->P[86] = 0.0;
-    s->P[87] = 0.0;
-    s->P[88] = 0.0;
-    s->P[89] = 0.0;
-    s->P[90] = 0.0;
-    s->P[91] = 0.0;
-    s->P[92] = 0.007615435494667714;
-    s->P[93] = 0.0;
-    s->P[94] = 0.0;
-    s->P[95] = 0.0;
-    s->P[96] = 0.0;
-    s->P[97] = 0.0;
-    s->P[98] = 0.0;
-    s->P[99] = 1.2184696791468344e-05;
-    s->P[100] = 0.0;
-    s->P[101] = 0.0;
-    s->P[102] = 0.0;
-    s->P[103] = 0.0;
-    s->P[104] = 0.0;
-    s->P[105] = 1.2184696791468344e-05;
-    s->P[106] = 0.0;
-    s->P[107] = 0.0;
-    s->P[108] = 0.0;
-    s->P[109] = 0.0;
-    s->P[110] = 1.2184696791468344e-05;
-    s->P[111] = 0.0;
-    s->P[112] = 0.0;
-    s->P[113] = 0.0;
-    s->P[114] = 0.0025000000000000005;
-    s->P[115] = 0.0;
-    s->P[116] = 0.0;
-    s->P[117] = 0.0025000000000000005;
-    s->P[118] = 0.0;
-    s->P[119] = 0.0025000000000000005;
-    s->par.g = 9.80665;
-}
-
-int nav_ukf_set_state(nav_ukf_t *s, const double *x, const double *P)
-{
-    double xn[15];
-    if (x == NULL || P == NULL) {
-        return NAV_UKF_BAD_INPUT;
-    }
-    if (!nav_ukf_finite(x, 15u) || !nav_ukf_finite(P, 120u)) {
-        return NAV_UKF_BAD_INPUT;
-    }
-    if (!nav_ukf_posdef(P)) {
-        return NAV_UKF_NOT_POSITIVE_DEFINITE;
-    }
-    memcpy(xn, x, sizeof xn);
-    xn[6] = nav_ukf_wrap(xn[6]);
-    xn[7] = nav_ukf_wrap(xn[7]);
-    xn[8] = nav_ukf_wrap(xn[8]);
-    memcpy(s->x, xn, sizeof xn);
-    memcpy(s->P, P, sizeof s->P);
-    return NAV_UKF_OK;
-}
-
-double nav_ukf_cov(const nav_ukf_t *s, size_t i, size_t j)
-{
-    if (i >= 15u || j >= 15u) {
-        return 0.0;
-    }
-    return s->P[nav_ukf_pk(i, j)];
-}
-
-
-/* Sigma points x, x +- gamma L_i (L L' = P) through f; weighted mean and covariance + Q.
-   Computed into scratch, committed only when every check has passed. */
-int nav_ukf_predict(nav_ukf_t *s, const double *u, double dt)
-{
-    double xn[15];
-    double Pn[120];
-    double ea[84];
-    const double *x = s->x;
-    const double *P = s->P;
-    const nav_ukf_par_t *par = &s->par;
-    if (!isfinite(dt)) {
-        return NAV_UKF_BAD_INPUT;
-    }
-    if (u == NULL || !nav_ukf_finite(u, 6u)) {
-        return NAV_UKF_BAD_INPUT;
-    }
-    if (!(dt > 0.0)) {
-        return NAV_UKF_BAD_DT;
-    }
-
     const double Ld0 = P[0];
     if (!isfinite(Ld0)) { return NAV_UKF_NON_FINITE; }
     if (!(Ld0 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
@@ -619,120 +434,440 @@ int nav_ukf_predict(nav_ukf_t *s, const double *u, double dt)
     if (!isfinite(Ld14)) { return NAV_UKF_NON_FINITE; }
     if (!(Ld14 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
     const double L14_14 = sqrt(Ld14);
-    const double fg3_0 = 3.872983346207417*L3_0;
-    const double fg4_0 = 3.872983346207417*L4_0;
-    const double fg5_0 = 3.872983346207417*L5_0;
-    const double fg6_0 = 3.872983346207417*L6_0;
-    const double fg7_0 = 3.872983346207417*L7_0;
-    const double fg8_0 = 3.872983346207417*L8_0;
-    const double fg9_0 = 3.872983346207417*L9_0;
-    const double fg10_0 = 3.872983346207417*L10_0;
-    const double fg11_0 = 3.872983346207417*L11_0;
-    const double fg12_0 = 3.872983346207417*L12_0;
-    const double fg13_0 = 3.872983346207417*L13_0;
-    const double fg14_0 = 3.872983346207417*L14_0;
-    const double fg3_1 = 3.872983346207417*L3_1;
-    const double fg4_1 = 3.872983346207417*L4_1;
-    const double fg5_1 = 3.872983346207417*L5_1;
-    const double fg6_1 = 3.872983346207417*L6_1;
-    const double fg7_1 = 3.872983346207417*L7_1;
-    const double fg8_1 = 3.872983346207417*L8_1;
-    const double fg9_1 = 3.872983346207417*L9_1;
-    const double fg10_1 = 3.872983346207417*L10_1;
-    const double fg11_1 = 3.872983346207417*L11_1;
-    const double fg12_1 = 3.872983346207417*L12_1;
-    const double fg13_1 = 3.872983346207417*L13_1;
-    const double fg14_1 = 3.872983346207417*L14_1;
-    const double fg3_2 = 3.872983346207417*L3_2;
-    const double fg4_2 = 3.872983346207417*L4_2;
-    const double fg5_2 = 3.872983346207417*L5_2;
-    const double fg6_2 = 3.872983346207417*L6_2;
-    const double fg7_2 = 3.872983346207417*L7_2;
-    const double fg8_2 = 3.872983346207417*L8_2;
-    const double fg9_2 = 3.872983346207417*L9_2;
-    const double fg10_2 = 3.872983346207417*L10_2;
-    const double fg11_2 = 3.872983346207417*L11_2;
-    const double fg12_2 = 3.872983346207417*L12_2;
-    const double fg13_2 = 3.872983346207417*L13_2;
-    const double fg14_2 = 3.872983346207417*L14_2;
-    const double fg3_3 = 3.872983346207417*L3_3;
-    const double fg4_3 = 3.872983346207417*L4_3;
-    const double fg5_3 = 3.872983346207417*L5_3;
-    const double fg6_3 = 3.872983346207417*L6_3;
-    const double fg7_3 = 3.872983346207417*L7_3;
-    const double fg8_3 = 3.872983346207417*L8_3;
-    const double fg9_3 = 3.872983346207417*L9_3;
-    const double fg10_3 = 3.872983346207417*L10_3;
-    const double fg11_3 = 3.872983346207417*L11_3;
-    const double fg12_3 = 3.872983346207417*L12_3;
-    const double fg13_3 = 3.872983346207417*L13_3;
-    const double fg14_3 = 3.872983346207417*L14_3;
-    const double fg4_4 = 3.872983346207417*L4_4;
-    const double fg5_4 = 3.872983346207417*L5_4;
-    const double fg6_4 = 3.872983346207417*L6_4;
-    const double fg7_4 = 3.872983346207417*L7_4;
-    const double fg8_4 = 3.872983346207417*L8_4;
-    const double fg9_4 = 3.872983346207417*L9_4;
-    const double fg10_4 = 3.872983346207417*L10_4;
-    const double fg11_4 = 3.872983346207417*L11_4;
-    const double fg12_4 = 3.872983346207417*L12_4;
-    const double fg13_4 = 3.872983346207417*L13_4;
-    const double fg14_4 = 3.872983346207417*L14_4;
-    const double fg5_5 = 3.872983346207417*L5_5;
-    const double fg6_5 = 3.872983346207417*L6_5;
-    const double fg7_5 = 3.872983346207417*L7_5;
-    const double fg8_5 = 3.872983346207417*L8_5;
-    const double fg9_5 = 3.872983346207417*L9_5;
-    const double fg10_5 = 3.872983346207417*L10_5;
-    const double fg11_5 = 3.872983346207417*L11_5;
-    const double fg12_5 = 3.872983346207417*L12_5;
-    const double fg13_5 = 3.872983346207417*L13_5;
-    const double fg14_5 = 3.872983346207417*L14_5;
-    const double fg6_6 = 3.872983346207417*L6_6;
-    const double fg7_6 = 3.872983346207417*L7_6;
-    const double fg8_6 = 3.872983346207417*L8_6;
-    const double fg9_6 = 3.872983346207417*L9_6;
-    const double fg10_6 = 3.872983346207417*L10_6;
-    const double fg11_6 = 3.872983346207417*L11_6;
-    const double fg12_6 = 3.872983346207417*L12_6;
-    const double fg13_6 = 3.872983346207417*L13_6;
-    const double fg14_6 = 3.872983346207417*L14_6;
-    const double fg7_7 = 3.872983346207417*L7_7;
-    const double fg8_7 = 3.872983346207417*L8_7;
-    const double fg9_7 = 3.872983346207417*L9_7;
-    const double fg10_7 = 3.872983346207417*L10_7;
-    const double fg11_7 = 3.872983346207417*L11_7;
-    const double fg12_7 = 3.872983346207417*L12_7;
-    const double fg13_7 = 3.872983346207417*L13_7;
-    const double fg14_7 = 3.872983346207417*L14_7;
-    const double fg8_8 = 3.872983346207417*L8_8;
-    const double fg9_8 = 3.872983346207417*L9_8;
-    const double fg10_8 = 3.872983346207417*L10_8;
-    const double fg11_8 = 3.872983346207417*L11_8;
-    const double fg12_8 = 3.872983346207417*L12_8;
-    const double fg13_8 = 3.872983346207417*L13_8;
-    const double fg14_8 = 3.872983346207417*L14_8;
-    const double fg9_9 = 3.872983346207417*L9_9;
-    const double fg10_9 = 3.872983346207417*L10_9;
-    const double fg11_9 = 3.872983346207417*L11_9;
-    const double fg12_9 = 3.872983346207417*L12_9;
-    const double fg13_9 = 3.872983346207417*L13_9;
-    const double fg14_9 = 3.872983346207417*L14_9;
-    const double fg10_10 = 3.872983346207417*L10_10;
-    const double fg11_10 = 3.872983346207417*L11_10;
-    const double fg12_10 = 3.872983346207417*L12_10;
-    const double fg13_10 = 3.872983346207417*L13_10;
-    const double fg14_10 = 3.872983346207417*L14_10;
-    const double fg11_11 = 3.872983346207417*L11_11;
-    const double fg12_11 = 3.872983346207417*L12_11;
-    const double fg13_11 = 3.872983346207417*L13_11;
-    const double fg14_11 = 3.872983346207417*L14_11;
-    const double fg12_12 = 3.872983346207417*L12_12;
-    const double fg13_12 = 3.872983346207417*L13_12;
-    const double fg14_12 = 3.872983346207417*L14_12;
-    const double fg13_13 = 3.872983346207417*L13_13;
-    const double fg14_13 = 3.872983346207417*L14_13;
-    const double fg14_14 = 3.872983346207417*L14_14;
+    Lf[0] = L0_0;
+    Lf[1] = L1_0;
+    Lf[2] = L2_0;
+    Lf[3] = L3_0;
+    Lf[4] = L4_0;
+    Lf[5] = L5_0;
+    Lf[6] = L6_0;
+    Lf[7] = L7_0;
+    Lf[8] = L8_0;
+    Lf[9] = L9_0;
+    Lf[10] = L10_0;
+    Lf[11] = L11_0;
+    Lf[12] = L12_0;
+    Lf[13] = L13_0;
+    Lf[14] = L14_0;
+    Lf[15] = L1_1;
+    Lf[16] = L2_1;
+    Lf[17] = L3_1;
+    Lf[18] = L4_1;
+    Lf[19] = L5_1;
+    Lf[20] = L6_1;
+    Lf[21] = L7_1;
+    Lf[22] = L8_1;
+    Lf[23] = L9_1;
+    Lf[24] = L10_1;
+    Lf[25] = L11_1;
+    Lf[26] = L12_1;
+    Lf[27] = L13_1;
+    Lf[28] = L14_1;
+    Lf[29] = L2_2;
+    Lf[30] = L3_2;
+    Lf[31] = L4_2;
+    Lf[32] = L5_2;
+    Lf[33] = L6_2;
+    Lf[34] = L7_2;
+    Lf[35] = L8_2;
+    Lf[36] = L9_2;
+    Lf[37] = L10_2;
+    Lf[38] = L11_2;
+    Lf[39] = L12_2;
+    Lf[40] = L13_2;
+    Lf[41] = L14_2;
+    Lf[42] = L3_3;
+    Lf[43] = L4_3;
+    Lf[44] = L5_3;
+    Lf[45] = L6_3;
+    Lf[46] = L7_3;
+    Lf[47] = L8_3;
+    Lf[48] = L9_3;
+    Lf[49] = L10_3;
+    Lf[50] = L11_3;
+    Lf[51] = L12_3;
+    Lf[52] = L13_3;
+    Lf[53] = L14_3;
+    Lf[54] = L4_4;
+    Lf[55] = L5_4;
+    Lf[56] = L6_4;
+    Lf[57] = L7_4;
+    Lf[58] = L8_4;
+    Lf[59] = L9_4;
+    Lf[60] = L10_4;
+    Lf[61] = L11_4;
+    Lf[62] = L12_4;
+    Lf[63] = L13_4;
+    Lf[64] = L14_4;
+    Lf[65] = L5_5;
+    Lf[66] = L6_5;
+    Lf[67] = L7_5;
+    Lf[68] = L8_5;
+    Lf[69] = L9_5;
+    Lf[70] = L10_5;
+    Lf[71] = L11_5;
+    Lf[72] = L12_5;
+    Lf[73] = L13_5;
+    Lf[74] = L14_5;
+    Lf[75] = L6_6;
+    Lf[76] = L7_6;
+    Lf[77] = L8_6;
+    Lf[78] = L9_6;
+    Lf[79] = L10_6;
+    Lf[80] = L11_6;
+    Lf[81] = L12_6;
+    Lf[82] = L13_6;
+    Lf[83] = L14_6;
+    Lf[84] = L7_7;
+    Lf[85] = L8_7;
+    Lf[86] = L9_7;
+    Lf[87] = L10_7;
+    Lf[88] = L11_7;
+    Lf[89] = L12_7;
+    Lf[90] = L13_7;
+    Lf[91] = L14_7;
+    Lf[92] = L8_8;
+    Lf[93] = L9_8;
+    Lf[94] = L10_8;
+    Lf[95] = L11_8;
+    Lf[96] = L12_8;
+    Lf[97] = L13_8;
+    Lf[98] = L14_8;
+    Lf[99] = L9_9;
+    Lf[100] = L10_9;
+    Lf[101] = L11_9;
+    Lf[102] = L12_9;
+    Lf[103] = L13_9;
+    Lf[104] = L14_9;
+    Lf[105] = L10_10;
+    Lf[106] = L11_10;
+    Lf[107] = L12_10;
+    Lf[108] = L13_10;
+    Lf[109] = L14_10;
+    Lf[110] = L11_11;
+    Lf[111] = L12_11;
+    Lf[112] = L13_11;
+    Lf[113] = L14_11;
+    Lf[114] = L12_12;
+    Lf[115] = L13_12;
+    Lf[116] = L14_12;
+    Lf[117] = L13_13;
+    Lf[118] = L14_13;
+    Lf[119] = L14_14;
+    return NAV_UKF_OK;
+}
+
+void nav_ukf_init(nav_ukf_t *s)
+{
+    s->x[0] = 0.0;
+    s->x[1] = 0.0;
+    s->x[2] = 0.0;
+    s->x[3] = 0.0;
+    s->x[4] = 0.0;
+    s->x[5] = 0.0;
+    s->x[6] = 0.0;
+    s->x[7] = 0.0;
+    s->x[8] = 0.5;
+    s->x[9] = 0.0;
+    s->x[10] = 0.0;
+    s->x[11] = 0.0;
+    s->x[12] = 0.0;
+    s->x[13] = 0.0;
+    s->x[14] = 0.0;
+    s->P[0] = 4.0;
+    s->P[1] = 0.0;
+    s->P[2] = 0.0;
+    s->P[3] = 0.0;
+    s->P[4] = 0.0;
+    s->P[5] = 0.0;
+    s->P[6] = 0.0;
+    s->P[7] = 0.0;
+    s->P[8] = 0.0;
+    s->P[9] = 0.0;
+    s->P[10] = 0.0;
+    s->P[11] = 0.0;
+    s->P[12] = 0.0;
+    s->P[13] = 0.0;
+    s->P[14] = 0.0;
+    s->P[15] = 4.0;
+    s->P[16] = 0.0;
+    s->P[17] = 0.0;
+    s->P[18] = 0.0;
+    s->P[19] = 0.0;
+    s->P[20] = 0.0;
+    s->P[21] = 0.0;
+    s->P[22] = 0.0;
+    s->P[23] = 0.0;
+    s->P[24] = 0.0;
+    s->P[25] = 0.0;
+    s->P[26] = 0.0;
+    s->P[27] = 0.0;
+    s->P[28] = 0.0;
+    s->P[29] = 4.0;
+    s->P[30] = 0.0;
+    s->P[31] = 0.0;
+    s->P[32] = 0.0;
+    s->P[33] = 0.0;
+    s->P[34] = 0.0;
+    s->P[35] = 0.0;
+    s->P[36] = 0.0;
+    s->P[37] = 0.0;
+    s->P[38] = 0.0;
+    s->P[39] = 0.0;
+    s->P[40] = 0.0;
+    s->P[41] = 0.0;
+    s->P[42] = 0.09;
+    s->P[43] = 0.0;
+    s->P[44] = 0.0;
+    s->P[45] = 0.0;
+    s->P[46] = 0.0;
+    s->P[47] = 0.0;
+    s->P[48] = 0.0;
+    s->P[49] = 0.0;
+    s->P[50] = 0.0;
+    s->P[51] = 0.0;
+    s->P[52] = 0.0;
+    s->P[53] = 0.0;
+    s->P[54] = 0.09;
+    s->P[55] = 0.0;
+    s->P[56] = 0.0;
+    s->P[57] = 0.0;
+    s->P[58] = 0.0;
+    s->P[59] = 0.0;
+    s->P[60] = 0.0;
+    s->P[61] = 0.0;
+    s->P[62] = 0.0;
+    s->P[63] = 0.0;
+    s->P[64] = 0.0;
+    s->P[65] = 0.09;
+    s->P[66] = 0.0;
+    s->P[67] = 0.0;
+    s->P[68] = 0.0;
+    s->P[69] = 0.0;
+    s->P[70] = 0.0;
+    s->P[71] = 0.0;
+    s->P[72] = 0.0;
+    s->P[73] = 0.0;
+    s->P[74] = 0.0;
+    s->P[75] = 0.0012184696791468343;
+    s->P[76] = 0.0;
+    s->P[77] = 0.0;
+    s->P[78] = 0.0;
+    s->P[79] = 0.0;
+    s->P[80] = 0.0;
+    s->P[81] = 0.0;
+    s->P[82] = 0.0;
+    s->P[83] = 0.0;
+    s->P[84] = 0.0012184696791468343;
+    s->P[85] = 0.0;
+    s->P[86] = 0.0;
+    s->P[87] = 0.0;
+    s->P[88] = 0.0;
+    s->P[89] = 0.0;
+    s->P[90] = 0.0;
+    s->P[91] = 0.0;
+    s->P[92] = 0.007615435494667714;
+    s->P[93] = 0.0;
+    s->P[94] = 0.0;
+    s->P[95] = 0.0;
+    s->P[96] = 0.0;
+    s->P[97] = 0.0;
+    s->P[98] = 0.0;
+    s->P[99] = 1.2184696791468344e-05;
+    s->P[100] = 0.0;
+    s->P[101] = 0.0;
+    s->P[102] = 0.0;
+    s->P[103] = 0.0;
+    s->P[104] = 0.0;
+    s->P[105] = 1.2184696791468344e-05;
+    s->P[106] = 0.0;
+    s->P[107] = 0.0;
+    s->P[108] = 0.0;
+    s->P[109] = 0.0;
+    s->P[110] = 1.2184696791468344e-05;
+    s->P[111] = 0.0;
+    s->P[112] = 0.0;
+    s->P[113] = 0.0;
+    s->P[114] = 0.0025000000000000005;
+    s->P[115] = 0.0;
+    s->P[116] = 0.0;
+    s->P[117] = 0.0025000000000000005;
+    s->P[118] = 0.0;
+    s->P[119] = 0.0025000000000000005;
+    s->par.g = 9.80665;
+}
+
+int nav_ukf_set_state(nav_ukf_t *s, const double *x, const double *P)
+{
+    double xn[15];
+    if (x == NULL || P == NULL) {
+        return NAV_UKF_BAD_INPUT;
+    }
+    if (!nav_ukf_finite(x, 15u) || !nav_ukf_finite(P, 120u)) {
+        return NAV_UKF_BAD_INPUT;
+    }
+    if (!nav_ukf_posdef(P)) {
+        return NAV_UKF_NOT_POSITIVE_DEFINITE;
+    }
+    memcpy(xn, x, sizeof xn);
+    xn[6] = nav_ukf_wrap(xn[6]);
+    xn[7] = nav_ukf_wrap(xn[7]);
+    xn[8] = nav_ukf_wrap(xn[8]);
+    memcpy(s->x, xn, sizeof xn);
+    memcpy(s->P, P, sizeof s->P);
+    return NAV_UKF_OK;
+}
+
+double nav_ukf_cov(const nav_ukf_t *s, size_t i, size_t j)
+{
+    if (i >= 15u || j >= 15u) {
+        return 0.0;
+    }
+    return s->P[nav_ukf_pk(i, j)];
+}
+
+
+/* Sigma points x, x +- gamma L_i (L L' = P) through f; weighted mean and covariance + Q.
+   Computed into scratch, committed only when every check has passed. */
+int nav_ukf_predict(nav_ukf_t *s, const double *u, double dt)
+{
+    double xn[15];
+    double Pn[120];
+    double Lf[120];
+    double ea[84];
+    const double *x = s->x;
+    const double *P = s->P;
+    const nav_ukf_par_t *par = &s->par;
+    if (!isfinite(dt)) {
+        return NAV_UKF_BAD_INPUT;
+    }
+    if (u == NULL || !nav_ukf_finite(u, 6u)) {
+        return NAV_UKF_BAD_INPUT;
+    }
+    if (!(dt > 0.0)) {
+        return NAV_UKF_BAD_DT;
+    }
+
+    {
+        const int st = nav_ukf_factor(P, Lf);
+        if (st != NAV_UKF_OK) {
+            return st;
+        }
+    }
+    const double fg3_0 = 3.872983346207417*Lf[3];
+    const double fg4_0 = 3.872983346207417*Lf[4];
+    const double fg5_0 = 3.872983346207417*Lf[5];
+    const double fg6_0 = 3.872983346207417*Lf[6];
+    const double fg7_0 = 3.872983346207417*Lf[7];
+    const double fg8_0 = 3.872983346207417*Lf[8];
+    const double fg9_0 = 3.872983346207417*Lf[9];
+    const double fg10_0 = 3.872983346207417*Lf[10];
+    const double fg11_0 = 3.872983346207417*Lf[11];
+    const double fg12_0 = 3.872983346207417*Lf[12];
+    const double fg13_0 = 3.872983346207417*Lf[13];
+    const double fg14_0 = 3.872983346207417*Lf[14];
+    const double fg3_1 = 3.872983346207417*Lf[17];
+    const double fg4_1 = 3.872983346207417*Lf[18];
+    const double fg5_1 = 3.872983346207417*Lf[19];
+    const double fg6_1 = 3.872983346207417*Lf[20];
+    const double fg7_1 = 3.872983346207417*Lf[21];
+    const double fg8_1 = 3.872983346207417*Lf[22];
+    const double fg9_1 = 3.872983346207417*Lf[23];
+    const double fg10_1 = 3.872983346207417*Lf[24];
+    const double fg11_1 = 3.872983346207417*Lf[25];
+    const double fg12_1 = 3.872983346207417*Lf[26];
+    const double fg13_1 = 3.872983346207417*Lf[27];
+    const double fg14_1 = 3.872983346207417*Lf[28];
+    const double fg3_2 = 3.872983346207417*Lf[30];
+    const double fg4_2 = 3.872983346207417*Lf[31];
+    const double fg5_2 = 3.872983346207417*Lf[32];
+    const double fg6_2 = 3.872983346207417*Lf[33];
+    const double fg7_2 = 3.872983346207417*Lf[34];
+    const double fg8_2 = 3.872983346207417*Lf[35];
+    const double fg9_2 = 3.872983346207417*Lf[36];
+    const double fg10_2 = 3.872983346207417*Lf[37];
+    const double fg11_2 = 3.872983346207417*Lf[38];
+    const double fg12_2 = 3.872983346207417*Lf[39];
+    const double fg13_2 = 3.872983346207417*Lf[40];
+    const double fg14_2 = 3.872983346207417*Lf[41];
+    const double fg3_3 = 3.872983346207417*Lf[42];
+    const double fg4_3 = 3.872983346207417*Lf[43];
+    const double fg5_3 = 3.872983346207417*Lf[44];
+    const double fg6_3 = 3.872983346207417*Lf[45];
+    const double fg7_3 = 3.872983346207417*Lf[46];
+    const double fg8_3 = 3.872983346207417*Lf[47];
+    const double fg9_3 = 3.872983346207417*Lf[48];
+    const double fg10_3 = 3.872983346207417*Lf[49];
+    const double fg11_3 = 3.872983346207417*Lf[50];
+    const double fg12_3 = 3.872983346207417*Lf[51];
+    const double fg13_3 = 3.872983346207417*Lf[52];
+    const double fg14_3 = 3.872983346207417*Lf[53];
+    const double fg4_4 = 3.872983346207417*Lf[54];
+    const double fg5_4 = 3.872983346207417*Lf[55];
+    const double fg6_4 = 3.872983346207417*Lf[56];
+    const double fg7_4 = 3.872983346207417*Lf[57];
+    const double fg8_4 = 3.872983346207417*Lf[58];
+    const double fg9_4 = 3.872983346207417*Lf[59];
+    const double fg10_4 = 3.872983346207417*Lf[60];
+    const double fg11_4 = 3.872983346207417*Lf[61];
+    const double fg12_4 = 3.872983346207417*Lf[62];
+    const double fg13_4 = 3.872983346207417*Lf[63];
+    const double fg14_4 = 3.872983346207417*Lf[64];
+    const double fg5_5 = 3.872983346207417*Lf[65];
+    const double fg6_5 = 3.872983346207417*Lf[66];
+    const double fg7_5 = 3.872983346207417*Lf[67];
+    const double fg8_5 = 3.872983346207417*Lf[68];
+    const double fg9_5 = 3.872983346207417*Lf[69];
+    const double fg10_5 = 3.872983346207417*Lf[70];
+    const double fg11_5 = 3.872983346207417*Lf[71];
+    const double fg12_5 = 3.872983346207417*Lf[72];
+    const double fg13_5 = 3.872983346207417*Lf[73];
+    const double fg14_5 = 3.872983346207417*Lf[74];
+    const double fg6_6 = 3.872983346207417*Lf[75];
+    const double fg7_6 = 3.872983346207417*Lf[76];
+    const double fg8_6 = 3.872983346207417*Lf[77];
+    const double fg9_6 = 3.872983346207417*Lf[78];
+    const double fg10_6 = 3.872983346207417*Lf[79];
+    const double fg11_6 = 3.872983346207417*Lf[80];
+    const double fg12_6 = 3.872983346207417*Lf[81];
+    const double fg13_6 = 3.872983346207417*Lf[82];
+    const double fg14_6 = 3.872983346207417*Lf[83];
+    const double fg7_7 = 3.872983346207417*Lf[84];
+    const double fg8_7 = 3.872983346207417*Lf[85];
+    const double fg9_7 = 3.872983346207417*Lf[86];
+    const double fg10_7 = 3.872983346207417*Lf[87];
+    const double fg11_7 = 3.872983346207417*Lf[88];
+    const double fg12_7 = 3.872983346207417*Lf[89];
+    const double fg13_7 = 3.872983346207417*Lf[90];
+    const double fg14_7 = 3.872983346207417*Lf[91];
+    const double fg8_8 = 3.872983346207417*Lf[92];
+    const double fg9_8 = 3.872983346207417*Lf[93];
+    const double fg10_8 = 3.872983346207417*Lf[94];
+    const double fg11_8 = 3.872983346207417*Lf[95];
+    const double fg12_8 = 3.872983346207417*Lf[96];
+    const double fg13_8 = 3.872983346207417*Lf[97];
+    const double fg14_8 = 3.872983346207417*Lf[98];
+    const double fg9_9 = 3.872983346207417*Lf[99];
+    const double fg10_9 = 3.872983346207417*Lf[100];
+    const double fg11_9 = 3.872983346207417*Lf[101];
+    const double fg12_9 = 3.872983346207417*Lf[102];
+    const double fg13_9 = 3.872983346207417*Lf[103];
+    const double fg14_9 = 3.872983346207417*Lf[104];
+    const double fg10_10 = 3.872983346207417*Lf[105];
+    const double fg11_10 = 3.872983346207417*Lf[106];
+    const double fg12_10 = 3.872983346207417*Lf[107];
+    const double fg13_10 = 3.872983346207417*Lf[108];
+    const double fg14_10 = 3.872983346207417*Lf[109];
+    const double fg11_11 = 3.872983346207417*Lf[110];
+    const double fg12_11 = 3.872983346207417*Lf[111];
+    const double fg13_11 = 3.872983346207417*Lf[112];
+    const double fg14_11 = 3.872983346207417*Lf[113];
+    const double fg12_12 = 3.872983346207417*Lf[114];
+    const double fg13_12 = 3.872983346207417*Lf[115];
+    const double fg14_12 = 3.872983346207417*Lf[116];
+    const double fg13_13 = 3.872983346207417*Lf[117];
+    const double fg14_13 = 3.872983346207417*Lf[118];
+    const double fg14_14 = 3.872983346207417*Lf[119];
     const double fas0 = sin(x[6]);
     const double fak0 = cos(x[6]);
     const double fr0_sd0 = sin(fg6_0);
@@ -1425,21 +1560,21 @@ int nav_ukf_predict(nav_ukf_t *s, const double *u, double dt)
     const double fm14_4 = dt*(ft11*ft272 + ft14) + x[4];
     const double fp14_5 = dt*(ft15*ft271 + ft18) + x[5];
     const double fm14_5 = dt*(ft15*ft272 + ft18) + x[5];
-    const double fT0_0 = L0_0 + L3_0*dt;
-    const double fT1_0 = L3_1*dt;
-    const double fT2_0 = L3_2*dt;
-    const double fT3_0 = L3_3*dt;
-    const double fT0_1 = L1_0 + L4_0*dt;
-    const double fT1_1 = L1_1 + L4_1*dt;
-    const double fT2_1 = L4_2*dt;
-    const double fT3_1 = L4_3*dt;
-    const double fT4_1 = L4_4*dt;
-    const double fT0_2 = L2_0 + L5_0*dt;
-    const double fT1_2 = L2_1 + L5_1*dt;
-    const double fT2_2 = L2_2 + L5_2*dt;
-    const double fT3_2 = L5_3*dt;
-    const double fT4_2 = L5_4*dt;
-    const double fT5_2 = L5_5*dt;
+    const double fT0_0 = Lf[0] + Lf[3]*dt;
+    const double fT1_0 = Lf[17]*dt;
+    const double fT2_0 = Lf[30]*dt;
+    const double fT3_0 = Lf[42]*dt;
+    const double fT0_1 = Lf[1] + Lf[4]*dt;
+    const double fT1_1 = Lf[15] + Lf[18]*dt;
+    const double fT2_1 = Lf[31]*dt;
+    const double fT3_1 = Lf[43]*dt;
+    const double fT4_1 = Lf[54]*dt;
+    const double fT0_2 = Lf[2] + Lf[5]*dt;
+    const double fT1_2 = Lf[16] + Lf[19]*dt;
+    const double fT2_2 = Lf[29] + Lf[32]*dt;
+    const double fT3_2 = Lf[44]*dt;
+    const double fT4_2 = Lf[55]*dt;
+    const double fT5_2 = Lf[65]*dt;
     const double fq0_3 = fm0_3 + fp0_3;
     const double fq1_3 = fm1_3 + fp1_3;
     const double fq2_3 = fm2_3 + fp2_3;
@@ -1845,57 +1980,57 @@ int nav_ukf_predict(nav_ukf_t *s, const double *u, double dt)
     Pn[45] = 2.0*ea[0]*fe3 + fu0_3*fu0_6 + fu10_3*fu10_6 + fu11_3*fu11_6 + fu1_3*fu1_6 + fu2_3*fu2_6 + fu3_3*fu3_6 + fu4_3*fu4_6 + fu5_3*fu5_6 + fu6_3*fu6_6 + fu7_3*fu7_6 + fu8_3*fu8_6 + fu9_3*fu9_6 + fv0_3*fv0_6 + fv10_3*fv10_6 + fv11_3*fv11_6 + fv12_3*fv12_6 + fv13_3*fv13_6 + fv14_3*fv14_6 + fv1_3*fv1_6 + fv2_3*fv2_6 + fv3_3*fv3_6 + fv4_3*fv4_6 + fv5_3*fv5_6 + fv6_3*fv6_6 + fv7_3*fv7_6 + fv8_3*fv8_6 + fv9_3*fv9_6;
     Pn[46] = 2.0*ea[28]*fe3 + fu0_3*fu0_7 + fu10_3*fu10_7 + fu11_3*fu11_7 + fu1_3*fu1_7 + fu2_3*fu2_7 + fu3_3*fu3_7 + fu4_3*fu4_7 + fu5_3*fu5_7 + fu6_3*fu6_7 + fu7_3*fu7_7 + fu8_3*fu8_7 + fu9_3*fu9_7 + fv0_3*fv0_7 + fv10_3*fv10_7 + fv11_3*fv11_7 + fv12_3*fv12_7 + fv13_3*fv13_7 + fv14_3*fv14_7 + fv1_3*fv1_7 + fv2_3*fv2_7 + fv3_3*fv3_7 + fv4_3*fv4_7 + fv5_3*fv5_7 + fv6_3*fv6_7 + fv7_3*fv7_7 + fv8_3*fv8_7 + fv9_3*fv9_7;
     Pn[47] = 2.0*ea[56]*fe3 + fu0_3*fu0_8 + fu10_3*fu10_8 + fu11_3*fu11_8 + fu1_3*fu1_8 + fu2_3*fu2_8 + fu3_3*fu3_8 + fu4_3*fu4_8 + fu5_3*fu5_8 + fu6_3*fu6_8 + fu7_3*fu7_8 + fu8_3*fu8_8 + fu9_3*fu9_8 + fv0_3*fv0_8 + fv10_3*fv10_8 + fv11_3*fv11_8 + fv12_3*fv12_8 + fv13_3*fv13_8 + fv14_3*fv14_8 + fv1_3*fv1_8 + fv2_3*fv2_8 + fv3_3*fv3_8 + fv4_3*fv4_8 + fv5_3*fv5_8 + fv6_3*fv6_8 + fv7_3*fv7_8 + fv8_3*fv8_8 + fv9_3*fv9_8;
-    Pn[48] = L9_0*fu0_3 + L9_1*fu1_3 + L9_2*fu2_3 + L9_3*fu3_3 + L9_4*fu4_3 + L9_5*fu5_3 + L9_6*fu6_3 + L9_7*fu7_3 + L9_8*fu8_3 + L9_9*fu9_3;
-    Pn[49] = L10_0*fu0_3 + L10_1*fu1_3 + L10_10*fu10_3 + L10_2*fu2_3 + L10_3*fu3_3 + L10_4*fu4_3 + L10_5*fu5_3 + L10_6*fu6_3 + L10_7*fu7_3 + L10_8*fu8_3 + L10_9*fu9_3;
-    Pn[50] = L11_0*fu0_3 + L11_1*fu1_3 + L11_10*fu10_3 + L11_11*fu11_3 + L11_2*fu2_3 + L11_3*fu3_3 + L11_4*fu4_3 + L11_5*fu5_3 + L11_6*fu6_3 + L11_7*fu7_3 + L11_8*fu8_3 + L11_9*fu9_3;
-    Pn[51] = L12_0*fu0_3 + L12_1*fu1_3 + L12_10*fu10_3 + L12_11*fu11_3 + L12_12*fu12_3 + L12_2*fu2_3 + L12_3*fu3_3 + L12_4*fu4_3 + L12_5*fu5_3 + L12_6*fu6_3 + L12_7*fu7_3 + L12_8*fu8_3 + L12_9*fu9_3;
-    Pn[52] = L13_0*fu0_3 + L13_1*fu1_3 + L13_10*fu10_3 + L13_11*fu11_3 + L13_12*fu12_3 + L13_13*fu13_3 + L13_2*fu2_3 + L13_3*fu3_3 + L13_4*fu4_3 + L13_5*fu5_3 + L13_6*fu6_3 + L13_7*fu7_3 + L13_8*fu8_3 + L13_9*fu9_3;
-    Pn[53] = L14_0*fu0_3 + L14_1*fu1_3 + L14_10*fu10_3 + L14_11*fu11_3 + L14_12*fu12_3 + L14_13*fu13_3 + L14_14*fu14_3 + L14_2*fu2_3 + L14_3*fu3_3 + L14_4*fu4_3 + L14_5*fu5_3 + L14_6*fu6_3 + L14_7*fu7_3 + L14_8*fu8_3 + L14_9*fu9_3;
+    Pn[48] = Lf[23]*fu1_3 + Lf[36]*fu2_3 + Lf[48]*fu3_3 + Lf[59]*fu4_3 + Lf[69]*fu5_3 + Lf[78]*fu6_3 + Lf[86]*fu7_3 + Lf[93]*fu8_3 + Lf[99]*fu9_3 + Lf[9]*fu0_3;
+    Pn[49] = Lf[100]*fu9_3 + Lf[105]*fu10_3 + Lf[10]*fu0_3 + Lf[24]*fu1_3 + Lf[37]*fu2_3 + Lf[49]*fu3_3 + Lf[60]*fu4_3 + Lf[70]*fu5_3 + Lf[79]*fu6_3 + Lf[87]*fu7_3 + Lf[94]*fu8_3;
+    Pn[50] = Lf[101]*fu9_3 + Lf[106]*fu10_3 + Lf[110]*fu11_3 + Lf[11]*fu0_3 + Lf[25]*fu1_3 + Lf[38]*fu2_3 + Lf[50]*fu3_3 + Lf[61]*fu4_3 + Lf[71]*fu5_3 + Lf[80]*fu6_3 + Lf[88]*fu7_3 + Lf[95]*fu8_3;
+    Pn[51] = Lf[102]*fu9_3 + Lf[107]*fu10_3 + Lf[111]*fu11_3 + Lf[114]*fu12_3 + Lf[12]*fu0_3 + Lf[26]*fu1_3 + Lf[39]*fu2_3 + Lf[51]*fu3_3 + Lf[62]*fu4_3 + Lf[72]*fu5_3 + Lf[81]*fu6_3 + Lf[89]*fu7_3 + Lf[96]*fu8_3;
+    Pn[52] = Lf[103]*fu9_3 + Lf[108]*fu10_3 + Lf[112]*fu11_3 + Lf[115]*fu12_3 + Lf[117]*fu13_3 + Lf[13]*fu0_3 + Lf[27]*fu1_3 + Lf[40]*fu2_3 + Lf[52]*fu3_3 + Lf[63]*fu4_3 + Lf[73]*fu5_3 + Lf[82]*fu6_3 + Lf[90]*fu7_3 + Lf[97]*fu8_3;
+    Pn[53] = Lf[104]*fu9_3 + Lf[109]*fu10_3 + Lf[113]*fu11_3 + Lf[116]*fu12_3 + Lf[118]*fu13_3 + Lf[119]*fu14_3 + Lf[14]*fu0_3 + Lf[28]*fu1_3 + Lf[41]*fu2_3 + Lf[53]*fu3_3 + Lf[64]*fu4_3 + Lf[74]*fu5_3 + Lf[83]*fu6_3 + Lf[91]*fu7_3 + Lf[98]*fu8_3;
     Pn[54] = 2.0*(fe4*fe4) + ft274 + (fu0_4*fu0_4) + (fu10_4*fu10_4) + (fu11_4*fu11_4) + (fu12_4*fu12_4) + (fu13_4*fu13_4) + (fu14_4*fu14_4) + (fu1_4*fu1_4) + (fu2_4*fu2_4) + (fu3_4*fu3_4) + (fu4_4*fu4_4) + (fu5_4*fu5_4) + (fu6_4*fu6_4) + (fu7_4*fu7_4) + (fu8_4*fu8_4) + (fu9_4*fu9_4) + (fv0_4*fv0_4) + (fv10_4*fv10_4) + (fv11_4*fv11_4) + (fv12_4*fv12_4) + (fv13_4*fv13_4) + (fv14_4*fv14_4) + (fv1_4*fv1_4) + (fv2_4*fv2_4) + (fv3_4*fv3_4) + (fv4_4*fv4_4) + (fv5_4*fv5_4) + (fv6_4*fv6_4) + (fv7_4*fv7_4) + (fv8_4*fv8_4) + (fv9_4*fv9_4);
     Pn[55] = 2.0*fe4*fe5 + fu0_4*fu0_5 + fu10_4*fu10_5 + fu11_4*fu11_5 + fu12_4*fu12_5 + fu13_4*fu13_5 + fu14_4*fu14_5 + fu1_4*fu1_5 + fu2_4*fu2_5 + fu3_4*fu3_5 + fu4_4*fu4_5 + fu5_4*fu5_5 + fu6_4*fu6_5 + fu7_4*fu7_5 + fu8_4*fu8_5 + fu9_4*fu9_5 + fv0_4*fv0_5 + fv10_4*fv10_5 + fv11_4*fv11_5 + fv12_4*fv12_5 + fv13_4*fv13_5 + fv14_4*fv14_5 + fv1_4*fv1_5 + fv2_4*fv2_5 + fv3_4*fv3_5 + fv4_4*fv4_5 + fv5_4*fv5_5 + fv6_4*fv6_5 + fv7_4*fv7_5 + fv8_4*fv8_5 + fv9_4*fv9_5;
     Pn[56] = 2.0*ea[0]*fe4 + fu0_4*fu0_6 + fu10_4*fu10_6 + fu11_4*fu11_6 + fu1_4*fu1_6 + fu2_4*fu2_6 + fu3_4*fu3_6 + fu4_4*fu4_6 + fu5_4*fu5_6 + fu6_4*fu6_6 + fu7_4*fu7_6 + fu8_4*fu8_6 + fu9_4*fu9_6 + fv0_4*fv0_6 + fv10_4*fv10_6 + fv11_4*fv11_6 + fv12_4*fv12_6 + fv13_4*fv13_6 + fv14_4*fv14_6 + fv1_4*fv1_6 + fv2_4*fv2_6 + fv3_4*fv3_6 + fv4_4*fv4_6 + fv5_4*fv5_6 + fv6_4*fv6_6 + fv7_4*fv7_6 + fv8_4*fv8_6 + fv9_4*fv9_6;
     Pn[57] = 2.0*ea[28]*fe4 + fu0_4*fu0_7 + fu10_4*fu10_7 + fu11_4*fu11_7 + fu1_4*fu1_7 + fu2_4*fu2_7 + fu3_4*fu3_7 + fu4_4*fu4_7 + fu5_4*fu5_7 + fu6_4*fu6_7 + fu7_4*fu7_7 + fu8_4*fu8_7 + fu9_4*fu9_7 + fv0_4*fv0_7 + fv10_4*fv10_7 + fv11_4*fv11_7 + fv12_4*fv12_7 + fv13_4*fv13_7 + fv14_4*fv14_7 + fv1_4*fv1_7 + fv2_4*fv2_7 + fv3_4*fv3_7 + fv4_4*fv4_7 + fv5_4*fv5_7 + fv6_4*fv6_7 + fv7_4*fv7_7 + fv8_4*fv8_7 + fv9_4*fv9_7;
     Pn[58] = 2.0*ea[56]*fe4 + fu0_4*fu0_8 + fu10_4*fu10_8 + fu11_4*fu11_8 + fu1_4*fu1_8 + fu2_4*fu2_8 + fu3_4*fu3_8 + fu4_4*fu4_8 + fu5_4*fu5_8 + fu6_4*fu6_8 + fu7_4*fu7_8 + fu8_4*fu8_8 + fu9_4*fu9_8 + fv0_4*fv0_8 + fv10_4*fv10_8 + fv11_4*fv11_8 + fv12_4*fv12_8 + fv13_4*fv13_8 + fv14_4*fv14_8 + fv1_4*fv1_8 + fv2_4*fv2_8 + fv3_4*fv3_8 + fv4_4*fv4_8 + fv5_4*fv5_8 + fv6_4*fv6_8 + fv7_4*fv7_8 + fv8_4*fv8_8 + fv9_4*fv9_8;
-    Pn[59] = L9_0*fu0_4 + L9_1*fu1_4 + L9_2*fu2_4 + L9_3*fu3_4 + L9_4*fu4_4 + L9_5*fu5_4 + L9_6*fu6_4 + L9_7*fu7_4 + L9_8*fu8_4 + L9_9*fu9_4;
-    Pn[60] = L10_0*fu0_4 + L10_1*fu1_4 + L10_10*fu10_4 + L10_2*fu2_4 + L10_3*fu3_4 + L10_4*fu4_4 + L10_5*fu5_4 + L10_6*fu6_4 + L10_7*fu7_4 + L10_8*fu8_4 + L10_9*fu9_4;
-    Pn[61] = L11_0*fu0_4 + L11_1*fu1_4 + L11_10*fu10_4 + L11_11*fu11_4 + L11_2*fu2_4 + L11_3*fu3_4 + L11_4*fu4_4 + L11_5*fu5_4 + L11_6*fu6_4 + L11_7*fu7_4 + L11_8*fu8_4 + L11_9*fu9_4;
-    Pn[62] = L12_0*fu0_4 + L12_1*fu1_4 + L12_10*fu10_4 + L12_11*fu11_4 + L12_12*fu12_4 + L12_2*fu2_4 + L12_3*fu3_4 + L12_4*fu4_4 + L12_5*fu5_4 + L12_6*fu6_4 + L12_7*fu7_4 + L12_8*fu8_4 + L12_9*fu9_4;
-    Pn[63] = L13_0*fu0_4 + L13_1*fu1_4 + L13_10*fu10_4 + L13_11*fu11_4 + L13_12*fu12_4 + L13_13*fu13_4 + L13_2*fu2_4 + L13_3*fu3_4 + L13_4*fu4_4 + L13_5*fu5_4 + L13_6*fu6_4 + L13_7*fu7_4 + L13_8*fu8_4 + L13_9*fu9_4;
-    Pn[64] = L14_0*fu0_4 + L14_1*fu1_4 + L14_10*fu10_4 + L14_11*fu11_4 + L14_12*fu12_4 + L14_13*fu13_4 + L14_14*fu14_4 + L14_2*fu2_4 + L14_3*fu3_4 + L14_4*fu4_4 + L14_5*fu5_4 + L14_6*fu6_4 + L14_7*fu7_4 + L14_8*fu8_4 + L14_9*fu9_4;
+    Pn[59] = Lf[23]*fu1_4 + Lf[36]*fu2_4 + Lf[48]*fu3_4 + Lf[59]*fu4_4 + Lf[69]*fu5_4 + Lf[78]*fu6_4 + Lf[86]*fu7_4 + Lf[93]*fu8_4 + Lf[99]*fu9_4 + Lf[9]*fu0_4;
+    Pn[60] = Lf[100]*fu9_4 + Lf[105]*fu10_4 + Lf[10]*fu0_4 + Lf[24]*fu1_4 + Lf[37]*fu2_4 + Lf[49]*fu3_4 + Lf[60]*fu4_4 + Lf[70]*fu5_4 + Lf[79]*fu6_4 + Lf[87]*fu7_4 + Lf[94]*fu8_4;
+    Pn[61] = Lf[101]*fu9_4 + Lf[106]*fu10_4 + Lf[110]*fu11_4 + Lf[11]*fu0_4 + Lf[25]*fu1_4 + Lf[38]*fu2_4 + Lf[50]*fu3_4 + Lf[61]*fu4_4 + Lf[71]*fu5_4 + Lf[80]*fu6_4 + Lf[88]*fu7_4 + Lf[95]*fu8_4;
+    Pn[62] = Lf[102]*fu9_4 + Lf[107]*fu10_4 + Lf[111]*fu11_4 + Lf[114]*fu12_4 + Lf[12]*fu0_4 + Lf[26]*fu1_4 + Lf[39]*fu2_4 + Lf[51]*fu3_4 + Lf[62]*fu4_4 + Lf[72]*fu5_4 + Lf[81]*fu6_4 + Lf[89]*fu7_4 + Lf[96]*fu8_4;
+    Pn[63] = Lf[103]*fu9_4 + Lf[108]*fu10_4 + Lf[112]*fu11_4 + Lf[115]*fu12_4 + Lf[117]*fu13_4 + Lf[13]*fu0_4 + Lf[27]*fu1_4 + Lf[40]*fu2_4 + Lf[52]*fu3_4 + Lf[63]*fu4_4 + Lf[73]*fu5_4 + Lf[82]*fu6_4 + Lf[90]*fu7_4 + Lf[97]*fu8_4;
+    Pn[64] = Lf[104]*fu9_4 + Lf[109]*fu10_4 + Lf[113]*fu11_4 + Lf[116]*fu12_4 + Lf[118]*fu13_4 + Lf[119]*fu14_4 + Lf[14]*fu0_4 + Lf[28]*fu1_4 + Lf[41]*fu2_4 + Lf[53]*fu3_4 + Lf[64]*fu4_4 + Lf[74]*fu5_4 + Lf[83]*fu6_4 + Lf[91]*fu7_4 + Lf[98]*fu8_4;
     Pn[65] = 2.0*(fe5*fe5) + ft274 + (fu0_5*fu0_5) + (fu10_5*fu10_5) + (fu11_5*fu11_5) + (fu12_5*fu12_5) + (fu13_5*fu13_5) + (fu14_5*fu14_5) + (fu1_5*fu1_5) + (fu2_5*fu2_5) + (fu3_5*fu3_5) + (fu4_5*fu4_5) + (fu5_5*fu5_5) + (fu6_5*fu6_5) + (fu7_5*fu7_5) + (fu8_5*fu8_5) + (fu9_5*fu9_5) + (fv0_5*fv0_5) + (fv10_5*fv10_5) + (fv11_5*fv11_5) + (fv12_5*fv12_5) + (fv13_5*fv13_5) + (fv14_5*fv14_5) + (fv1_5*fv1_5) + (fv2_5*fv2_5) + (fv3_5*fv3_5) + (fv4_5*fv4_5) + (fv5_5*fv5_5) + (fv6_5*fv6_5) + (fv7_5*fv7_5) + (fv8_5*fv8_5) + (fv9_5*fv9_5);
     Pn[66] = 2.0*ea[0]*fe5 + fu0_5*fu0_6 + fu10_5*fu10_6 + fu11_5*fu11_6 + fu1_5*fu1_6 + fu2_5*fu2_6 + fu3_5*fu3_6 + fu4_5*fu4_6 + fu5_5*fu5_6 + fu6_5*fu6_6 + fu7_5*fu7_6 + fu8_5*fu8_6 + fu9_5*fu9_6 + fv0_5*fv0_6 + fv10_5*fv10_6 + fv11_5*fv11_6 + fv12_5*fv12_6 + fv13_5*fv13_6 + fv14_5*fv14_6 + fv1_5*fv1_6 + fv2_5*fv2_6 + fv3_5*fv3_6 + fv4_5*fv4_6 + fv5_5*fv5_6 + fv6_5*fv6_6 + fv7_5*fv7_6 + fv8_5*fv8_6 + fv9_5*fv9_6;
     Pn[67] = 2.0*ea[28]*fe5 + fu0_5*fu0_7 + fu10_5*fu10_7 + fu11_5*fu11_7 + fu1_5*fu1_7 + fu2_5*fu2_7 + fu3_5*fu3_7 + fu4_5*fu4_7 + fu5_5*fu5_7 + fu6_5*fu6_7 + fu7_5*fu7_7 + fu8_5*fu8_7 + fu9_5*fu9_7 + fv0_5*fv0_7 + fv10_5*fv10_7 + fv11_5*fv11_7 + fv12_5*fv12_7 + fv13_5*fv13_7 + fv14_5*fv14_7 + fv1_5*fv1_7 + fv2_5*fv2_7 + fv3_5*fv3_7 + fv4_5*fv4_7 + fv5_5*fv5_7 + fv6_5*fv6_7 + fv7_5*fv7_7 + fv8_5*fv8_7 + fv9_5*fv9_7;
     Pn[68] = 2.0*ea[56]*fe5 + fu0_5*fu0_8 + fu10_5*fu10_8 + fu11_5*fu11_8 + fu1_5*fu1_8 + fu2_5*fu2_8 + fu3_5*fu3_8 + fu4_5*fu4_8 + fu5_5*fu5_8 + fu6_5*fu6_8 + fu7_5*fu7_8 + fu8_5*fu8_8 + fu9_5*fu9_8 + fv0_5*fv0_8 + fv10_5*fv10_8 + fv11_5*fv11_8 + fv12_5*fv12_8 + fv13_5*fv13_8 + fv14_5*fv14_8 + fv1_5*fv1_8 + fv2_5*fv2_8 + fv3_5*fv3_8 + fv4_5*fv4_8 + fv5_5*fv5_8 + fv6_5*fv6_8 + fv7_5*fv7_8 + fv8_5*fv8_8 + fv9_5*fv9_8;
-    Pn[69] = L9_0*fu0_5 + L9_1*fu1_5 + L9_2*fu2_5 + L9_3*fu3_5 + L9_4*fu4_5 + L9_5*fu5_5 + L9_6*fu6_5 + L9_7*fu7_5 + L9_8*fu8_5 + L9_9*fu9_5;
-    Pn[70] = L10_0*fu0_5 + L10_1*fu1_5 + L10_10*fu10_5 + L10_2*fu2_5 + L10_3*fu3_5 + L10_4*fu4_5 + L10_5*fu5_5 + L10_6*fu6_5 + L10_7*fu7_5 + L10_8*fu8_5 + L10_9*fu9_5;
-    Pn[71] = L11_0*fu0_5 + L11_1*fu1_5 + L11_10*fu10_5 + L11_11*fu11_5 + L11_2*fu2_5 + L11_3*fu3_5 + L11_4*fu4_5 + L11_5*fu5_5 + L11_6*fu6_5 + L11_7*fu7_5 + L11_8*fu8_5 + L11_9*fu9_5;
-    Pn[72] = L12_0*fu0_5 + L12_1*fu1_5 + L12_10*fu10_5 + L12_11*fu11_5 + L12_12*fu12_5 + L12_2*fu2_5 + L12_3*fu3_5 + L12_4*fu4_5 + L12_5*fu5_5 + L12_6*fu6_5 + L12_7*fu7_5 + L12_8*fu8_5 + L12_9*fu9_5;
-    Pn[73] = L13_0*fu0_5 + L13_1*fu1_5 + L13_10*fu10_5 + L13_11*fu11_5 + L13_12*fu12_5 + L13_13*fu13_5 + L13_2*fu2_5 + L13_3*fu3_5 + L13_4*fu4_5 + L13_5*fu5_5 + L13_6*fu6_5 + L13_7*fu7_5 + L13_8*fu8_5 + L13_9*fu9_5;
-    Pn[74] = L14_0*fu0_5 + L14_1*fu1_5 + L14_10*fu10_5 + L14_11*fu11_5 + L14_12*fu12_5 + L14_13*fu13_5 + L14_14*fu14_5 + L14_2*fu2_5 + L14_3*fu3_5 + L14_4*fu4_5 + L14_5*fu5_5 + L14_6*fu6_5 + L14_7*fu7_5 + L14_8*fu8_5 + L14_9*fu9_5;
+    Pn[69] = Lf[23]*fu1_5 + Lf[36]*fu2_5 + Lf[48]*fu3_5 + Lf[59]*fu4_5 + Lf[69]*fu5_5 + Lf[78]*fu6_5 + Lf[86]*fu7_5 + Lf[93]*fu8_5 + Lf[99]*fu9_5 + Lf[9]*fu0_5;
+    Pn[70] = Lf[100]*fu9_5 + Lf[105]*fu10_5 + Lf[10]*fu0_5 + Lf[24]*fu1_5 + Lf[37]*fu2_5 + Lf[49]*fu3_5 + Lf[60]*fu4_5 + Lf[70]*fu5_5 + Lf[79]*fu6_5 + Lf[87]*fu7_5 + Lf[94]*fu8_5;
+    Pn[71] = Lf[101]*fu9_5 + Lf[106]*fu10_5 + Lf[110]*fu11_5 + Lf[11]*fu0_5 + Lf[25]*fu1_5 + Lf[38]*fu2_5 + Lf[50]*fu3_5 + Lf[61]*fu4_5 + Lf[71]*fu5_5 + Lf[80]*fu6_5 + Lf[88]*fu7_5 + Lf[95]*fu8_5;
+    Pn[72] = Lf[102]*fu9_5 + Lf[107]*fu10_5 + Lf[111]*fu11_5 + Lf[114]*fu12_5 + Lf[12]*fu0_5 + Lf[26]*fu1_5 + Lf[39]*fu2_5 + Lf[51]*fu3_5 + Lf[62]*fu4_5 + Lf[72]*fu5_5 + Lf[81]*fu6_5 + Lf[89]*fu7_5 + Lf[96]*fu8_5;
+    Pn[73] = Lf[103]*fu9_5 + Lf[108]*fu10_5 + Lf[112]*fu11_5 + Lf[115]*fu12_5 + Lf[117]*fu13_5 + Lf[13]*fu0_5 + Lf[27]*fu1_5 + Lf[40]*fu2_5 + Lf[52]*fu3_5 + Lf[63]*fu4_5 + Lf[73]*fu5_5 + Lf[82]*fu6_5 + Lf[90]*fu7_5 + Lf[97]*fu8_5;
+    Pn[74] = Lf[104]*fu9_5 + Lf[109]*fu10_5 + Lf[113]*fu11_5 + Lf[116]*fu12_5 + Lf[118]*fu13_5 + Lf[119]*fu14_5 + Lf[14]*fu0_5 + Lf[28]*fu1_5 + Lf[41]*fu2_5 + Lf[53]*fu3_5 + Lf[64]*fu4_5 + Lf[74]*fu5_5 + Lf[83]*fu6_5 + Lf[91]*fu7_5 + Lf[98]*fu8_5;
     Pn[75] = 2.0*(ea[0]*ea[0]) + ft275 + (fu0_6*fu0_6) + (fu10_6*fu10_6) + (fu11_6*fu11_6) + (fu1_6*fu1_6) + (fu2_6*fu2_6) + (fu3_6*fu3_6) + (fu4_6*fu4_6) + (fu5_6*fu5_6) + (fu6_6*fu6_6) + (fu7_6*fu7_6) + (fu8_6*fu8_6) + (fu9_6*fu9_6) + (fv0_6*fv0_6) + (fv10_6*fv10_6) + (fv11_6*fv11_6) + (fv12_6*fv12_6) + (fv13_6*fv13_6) + (fv14_6*fv14_6) + (fv1_6*fv1_6) + (fv2_6*fv2_6) + (fv3_6*fv3_6) + (fv4_6*fv4_6) + (fv5_6*fv5_6) + (fv6_6*fv6_6) + (fv7_6*fv7_6) + (fv8_6*fv8_6) + (fv9_6*fv9_6);
     Pn[76] = 2.0*ea[0]*ea[28] + fu0_6*fu0_7 + fu10_6*fu10_7 + fu11_6*fu11_7 + fu1_6*fu1_7 + fu2_6*fu2_7 + fu3_6*fu3_7 + fu4_6*fu4_7 + fu5_6*fu5_7 + fu6_6*fu6_7 + fu7_6*fu7_7 + fu8_6*fu8_7 + fu9_6*fu9_7 + fv0_6*fv0_7 + fv10_6*fv10_7 + fv11_6*fv11_7 + fv12_6*fv12_7 + fv13_6*fv13_7 + fv14_6*fv14_7 + fv1_6*fv1_7 + fv2_6*fv2_7 + fv3_6*fv3_7 + fv4_6*fv4_7 + fv5_6*fv5_7 + fv6_6*fv6_7 + fv7_6*fv7_7 + fv8_6*fv8_7 + fv9_6*fv9_7;
     Pn[77] = 2.0*ea[0]*ea[56] + fu0_6*fu0_8 + fu10_6*fu10_8 + fu11_6*fu11_8 + fu1_6*fu1_8 + fu2_6*fu2_8 + fu3_6*fu3_8 + fu4_6*fu4_8 + fu5_6*fu5_8 + fu6_6*fu6_8 + fu7_6*fu7_8 + fu8_6*fu8_8 + fu9_6*fu9_8 + fv0_6*fv0_8 + fv10_6*fv10_8 + fv11_6*fv11_8 + fv12_6*fv12_8 + fv13_6*fv13_8 + fv14_6*fv14_8 + fv1_6*fv1_8 + fv2_6*fv2_8 + fv3_6*fv3_8 + fv4_6*fv4_8 + fv5_6*fv5_8 + fv6_6*fv6_8 + fv7_6*fv7_8 + fv8_6*fv8_8 + fv9_6*fv9_8;
-    Pn[78] = L9_0*fu0_6 + L9_1*fu1_6 + L9_2*fu2_6 + L9_3*fu3_6 + L9_4*fu4_6 + L9_5*fu5_6 + L9_6*fu6_6 + L9_7*fu7_6 + L9_8*fu8_6 + L9_9*fu9_6;
-    Pn[79] = L10_0*fu0_6 + L10_1*fu1_6 + L10_10*fu10_6 + L10_2*fu2_6 + L10_3*fu3_6 + L10_4*fu4_6 + L10_5*fu5_6 + L10_6*fu6_6 + L10_7*fu7_6 + L10_8*fu8_6 + L10_9*fu9_6;
-    Pn[80] = L11_0*fu0_6 + L11_1*fu1_6 + L11_10*fu10_6 + L11_11*fu11_6 + L11_2*fu2_6 + L11_3*fu3_6 + L11_4*fu4_6 + L11_5*fu5_6 + L11_6*fu6_6 + L11_7*fu7_6 + L11_8*fu8_6 + L11_9*fu9_6;
-    Pn[81] = L12_0*fu0_6 + L12_1*fu1_6 + L12_10*fu10_6 + L12_11*fu11_6 + L12_2*fu2_6 + L12_3*fu3_6 + L12_4*fu4_6 + L12_5*fu5_6 + L12_6*fu6_6 + L12_7*fu7_6 + L12_8*fu8_6 + L12_9*fu9_6;
-    Pn[82] = L13_0*fu0_6 + L13_1*fu1_6 + L13_10*fu10_6 + L13_11*fu11_6 + L13_2*fu2_6 + L13_3*fu3_6 + L13_4*fu4_6 + L13_5*fu5_6 + L13_6*fu6_6 + L13_7*fu7_6 + L13_8*fu8_6 + L13_9*fu9_6;
-    Pn[83] = L14_0*fu0_6 + L14_1*fu1_6 + L14_10*fu10_6 + L14_11*fu11_6 + L14_2*fu2_6 + L14_3*fu3_6 + L14_4*fu4_6 + L14_5*fu5_6 + L14_6*fu6_6 + L14_7*fu7_6 + L14_8*fu8_6 + L14_9*fu9_6;
+    Pn[78] = Lf[23]*fu1_6 + Lf[36]*fu2_6 + Lf[48]*fu3_6 + Lf[59]*fu4_6 + Lf[69]*fu5_6 + Lf[78]*fu6_6 + Lf[86]*fu7_6 + Lf[93]*fu8_6 + Lf[99]*fu9_6 + Lf[9]*fu0_6;
+    Pn[79] = Lf[100]*fu9_6 + Lf[105]*fu10_6 + Lf[10]*fu0_6 + Lf[24]*fu1_6 + Lf[37]*fu2_6 + Lf[49]*fu3_6 + Lf[60]*fu4_6 + Lf[70]*fu5_6 + Lf[79]*fu6_6 + Lf[87]*fu7_6 + Lf[94]*fu8_6;
+    Pn[80] = Lf[101]*fu9_6 + Lf[106]*fu10_6 + Lf[110]*fu11_6 + Lf[11]*fu0_6 + Lf[25]*fu1_6 + Lf[38]*fu2_6 + Lf[50]*fu3_6 + Lf[61]*fu4_6 + Lf[71]*fu5_6 + Lf[80]*fu6_6 + Lf[88]*fu7_6 + Lf[95]*fu8_6;
+    Pn[81] = Lf[102]*fu9_6 + Lf[107]*fu10_6 + Lf[111]*fu11_6 + Lf[12]*fu0_6 + Lf[26]*fu1_6 + Lf[39]*fu2_6 + Lf[51]*fu3_6 + Lf[62]*fu4_6 + Lf[72]*fu5_6 + Lf[81]*fu6_6 + Lf[89]*fu7_6 + Lf[96]*fu8_6;
+    Pn[82] = Lf[103]*fu9_6 + Lf[108]*fu10_6 + Lf[112]*fu11_6 + Lf[13]*fu0_6 + Lf[27]*fu1_6 + Lf[40]*fu2_6 + Lf[52]*fu3_6 + Lf[63]*fu4_6 + Lf[73]*fu5_6 + Lf[82]*fu6_6 + Lf[90]*fu7_6 + Lf[97]*fu8_6;
+    Pn[83] = Lf[104]*fu9_6 + Lf[109]*fu10_6 + Lf[113]*fu11_6 + Lf[14]*fu0_6 + Lf[28]*fu1_6 + Lf[41]*fu2_6 + Lf[53]*fu3_6 + Lf[64]*fu4_6 + Lf[74]*fu5_6 + Lf[83]*fu6_6 + Lf[91]*fu7_6 + Lf[98]*fu8_6;
     Pn[84] = 2.0*(ea[28]*ea[28]) + ft275 + (fu0_7*fu0_7) + (fu10_7*fu10_7) + (fu11_7*fu11_7) + (fu1_7*fu1_7) + (fu2_7*fu2_7) + (fu3_7*fu3_7) + (fu4_7*fu4_7) + (fu5_7*fu5_7) + (fu6_7*fu6_7) + (fu7_7*fu7_7) + (fu8_7*fu8_7) + (fu9_7*fu9_7) + (fv0_7*fv0_7) + (fv10_7*fv10_7) + (fv11_7*fv11_7) + (fv12_7*fv12_7) + (fv13_7*fv13_7) + (fv14_7*fv14_7) + (fv1_7*fv1_7) + (fv2_7*fv2_7) + (fv3_7*fv3_7) + (fv4_7*fv4_7) + (fv5_7*fv5_7) + (fv6_7*fv6_7) + (fv7_7*fv7_7) + (fv8_7*fv8_7) + (fv9_7*fv9_7);
     Pn[85] = 2.0*ea[28]*ea[56] + fu0_7*fu0_8 + fu10_7*fu10_8 + fu11_7*fu11_8 + fu1_7*fu1_8 + fu2_7*fu2_8 + fu3_7*fu3_8 + fu4_7*fu4_8 + fu5_7*fu5_8 + fu6_7*fu6_8 + fu7_7*fu7_8 + fu8_7*fu8_8 + fu9_7*fu9_8 + fv0_7*fv0_8 + fv10_7*fv10_8 + fv11_7*fv11_8 + fv12_7*fv12_8 + fv13_7*fv13_8 + fv14_7*fv14_8 + fv1_7*fv1_8 + fv2_7*fv2_8 + fv3_7*fv3_8 + fv4_7*fv4_8 + fv5_7*fv5_8 + fv6_7*fv6_8 + fv7_7*fv7_8 + fv8_7*fv8_8 + fv9_7*fv9_8;
-    Pn[86] = L9_0*fu0_7 + L9_1*fu1_7 + L9_2*fu2_7 + L9_3*fu3_7 + L9_4*fu4_7 + L9_5*fu5_7 + L9_6*fu6_7 + L9_7*fu7_7 + L9_8*fu8_7 + L9_9*fu9_7;
-    Pn[87] = L10_0*fu0_7 + L10_1*fu1_7 + L10_10*fu10_7 + L10_2*fu2_7 + L10_3*fu3_7 + L10_4*fu4_7 + L10_5*fu5_7 + L10_6*fu6_7 + L10_7*fu7_7 + L10_8*fu8_7 + L10_9*fu9_7;
-    Pn[88] = L11_0*fu0_7 + L11_1*fu1_7 + L11_10*fu10_7 + L11_11*fu11_7 + L11_2*fu2_7 + L11_3*fu3_7 + L11_4*fu4_7 + L11_5*fu5_7 + L11_6*fu6_7 + L11_7*fu7_7 + L11_8*fu8_7 + L11_9*fu9_7;
-    Pn[89] = L12_0*fu0_7 + L12_1*fu1_7 + L12_10*fu10_7 + L12_11*fu11_7 + L12_2*fu2_7 + L12_3*fu3_7 + L12_4*fu4_7 + L12_5*fu5_7 + L12_6*fu6_7 + L12_7*fu7_7 + L12_8*fu8_7 + L12_9*fu9_7;
-    Pn[90] = L13_0*fu0_7 + L13_1*fu1_7 + L13_10*fu10_7 + L13_11*fu11_7 + L13_2*fu2_7 + L13_3*fu3_7 + L13_4*fu4_7 + L13_5*fu5_7 + L13_6*fu6_7 + L13_7*fu7_7 + L13_8*fu8_7 + L13_9*fu9_7;
-    Pn[91] = L14_0*fu0_7 + L14_1*fu1_7 + L14_10*fu10_7 + L14_11*fu11_7 + L14_2*fu2_7 + L14_3*fu3_7 + L14_4*fu4_7 + L14_5*fu5_7 + L14_6*fu6_7 + L14_7*fu7_7 + L14_8*fu8_7 + L14_9*fu9_7;
+    Pn[86] = Lf[23]*fu1_7 + Lf[36]*fu2_7 + Lf[48]*fu3_7 + Lf[59]*fu4_7 + Lf[69]*fu5_7 + Lf[78]*fu6_7 + Lf[86]*fu7_7 + Lf[93]*fu8_7 + Lf[99]*fu9_7 + Lf[9]*fu0_7;
+    Pn[87] = Lf[100]*fu9_7 + Lf[105]*fu10_7 + Lf[10]*fu0_7 + Lf[24]*fu1_7 + Lf[37]*fu2_7 + Lf[49]*fu3_7 + Lf[60]*fu4_7 + Lf[70]*fu5_7 + Lf[79]*fu6_7 + Lf[87]*fu7_7 + Lf[94]*fu8_7;
+    Pn[88] = Lf[101]*fu9_7 + Lf[106]*fu10_7 + Lf[110]*fu11_7 + Lf[11]*fu0_7 + Lf[25]*fu1_7 + Lf[38]*fu2_7 + Lf[50]*fu3_7 + Lf[61]*fu4_7 + Lf[71]*fu5_7 + Lf[80]*fu6_7 + Lf[88]*fu7_7 + Lf[95]*fu8_7;
+    Pn[89] = Lf[102]*fu9_7 + Lf[107]*fu10_7 + Lf[111]*fu11_7 + Lf[12]*fu0_7 + Lf[26]*fu1_7 + Lf[39]*fu2_7 + Lf[51]*fu3_7 + Lf[62]*fu4_7 + Lf[72]*fu5_7 + Lf[81]*fu6_7 + Lf[89]*fu7_7 + Lf[96]*fu8_7;
+    Pn[90] = Lf[103]*fu9_7 + Lf[108]*fu10_7 + Lf[112]*fu11_7 + Lf[13]*fu0_7 + Lf[27]*fu1_7 + Lf[40]*fu2_7 + Lf[52]*fu3_7 + Lf[63]*fu4_7 + Lf[73]*fu5_7 + Lf[82]*fu6_7 + Lf[90]*fu7_7 + Lf[97]*fu8_7;
+    Pn[91] = Lf[104]*fu9_7 + Lf[109]*fu10_7 + Lf[113]*fu11_7 + Lf[14]*fu0_7 + Lf[28]*fu1_7 + Lf[41]*fu2_7 + Lf[53]*fu3_7 + Lf[64]*fu4_7 + Lf[74]*fu5_7 + Lf[83]*fu6_7 + Lf[91]*fu7_7 + Lf[98]*fu8_7;
     Pn[92] = 2.0*(ea[56]*ea[56]) + ft275 + (fu0_8*fu0_8) + (fu10_8*fu10_8) + (fu11_8*fu11_8) + (fu1_8*fu1_8) + (fu2_8*fu2_8) + (fu3_8*fu3_8) + (fu4_8*fu4_8) + (fu5_8*fu5_8) + (fu6_8*fu6_8) + (fu7_8*fu7_8) + (fu8_8*fu8_8) + (fu9_8*fu9_8) + (fv0_8*fv0_8) + (fv10_8*fv10_8) + (fv11_8*fv11_8) + (fv12_8*fv12_8) + (fv13_8*fv13_8) + (fv14_8*fv14_8) + (fv1_8*fv1_8) + (fv2_8*fv2_8) + (fv3_8*fv3_8) + (fv4_8*fv4_8) + (fv5_8*fv5_8) + (fv6_8*fv6_8) + (fv7_8*fv7_8) + (fv8_8*fv8_8) + (fv9_8*fv9_8);
-    Pn[93] = L9_0*fu0_8 + L9_1*fu1_8 + L9_2*fu2_8 + L9_3*fu3_8 + L9_4*fu4_8 + L9_5*fu5_8 + L9_6*fu6_8 + L9_7*fu7_8 + L9_8*fu8_8 + L9_9*fu9_8;
-    Pn[94] = L10_0*fu0_8 + L10_1*fu1_8 + L10_10*fu10_8 + L10_2*fu2_8 + L10_3*fu3_8 + L10_4*fu4_8 + L10_5*fu5_8 + L10_6*fu6_8 + L10_7*fu7_8 + L10_8*fu8_8 + L10_9*fu9_8;
-    Pn[95] = L11_0*fu0_8 + L11_1*fu1_8 + L11_10*fu10_8 + L11_11*fu11_8 + L11_2*fu2_8 + L11_3*fu3_8 + L11_4*fu4_8 + L11_5*fu5_8 + L11_6*fu6_8 + L11_7*fu7_8 + L11_8*fu8_8 + L11_9*fu9_8;
-    Pn[96] = L12_0*fu0_8 + L12_1*fu1_8 + L12_10*fu10_8 + L12_11*fu11_8 + L12_2*fu2_8 + L12_3*fu3_8 + L12_4*fu4_8 + L12_5*fu5_8 + L12_6*fu6_8 + L12_7*fu7_8 + L12_8*fu8_8 + L12_9*fu9_8;
-    Pn[97] = L13_0*fu0_8 + L13_1*fu1_8 + L13_10*fu10_8 + L13_11*fu11_8 + L13_2*fu2_8 + L13_3*fu3_8 + L13_4*fu4_8 + L13_5*fu5_8 + L13_6*fu6_8 + L13_7*fu7_8 + L13_8*fu8_8 + L13_9*fu9_8;
-    Pn[98] = L14_0*fu0_8 + L14_1*fu1_8 + L14_10*fu10_8 + L14_11*fu11_8 + L14_2*fu2_8 + L14_3*fu3_8 + L14_4*fu4_8 + L14_5*fu5_8 + L14_6*fu6_8 + L14_7*fu7_8 + L14_8*fu8_8 + L14_9*fu9_8;
+    Pn[93] = Lf[23]*fu1_8 + Lf[36]*fu2_8 + Lf[48]*fu3_8 + Lf[59]*fu4_8 + Lf[69]*fu5_8 + Lf[78]*fu6_8 + Lf[86]*fu7_8 + Lf[93]*fu8_8 + Lf[99]*fu9_8 + Lf[9]*fu0_8;
+    Pn[94] = Lf[100]*fu9_8 + Lf[105]*fu10_8 + Lf[10]*fu0_8 + Lf[24]*fu1_8 + Lf[37]*fu2_8 + Lf[49]*fu3_8 + Lf[60]*fu4_8 + Lf[70]*fu5_8 + Lf[79]*fu6_8 + Lf[87]*fu7_8 + Lf[94]*fu8_8;
+    Pn[95] = Lf[101]*fu9_8 + Lf[106]*fu10_8 + Lf[110]*fu11_8 + Lf[11]*fu0_8 + Lf[25]*fu1_8 + Lf[38]*fu2_8 + Lf[50]*fu3_8 + Lf[61]*fu4_8 + Lf[71]*fu5_8 + Lf[80]*fu6_8 + Lf[88]*fu7_8 + Lf[95]*fu8_8;
+    Pn[96] = Lf[102]*fu9_8 + Lf[107]*fu10_8 + Lf[111]*fu11_8 + Lf[12]*fu0_8 + Lf[26]*fu1_8 + Lf[39]*fu2_8 + Lf[51]*fu3_8 + Lf[62]*fu4_8 + Lf[72]*fu5_8 + Lf[81]*fu6_8 + Lf[89]*fu7_8 + Lf[96]*fu8_8;
+    Pn[97] = Lf[103]*fu9_8 + Lf[108]*fu10_8 + Lf[112]*fu11_8 + Lf[13]*fu0_8 + Lf[27]*fu1_8 + Lf[40]*fu2_8 + Lf[52]*fu3_8 + Lf[63]*fu4_8 + Lf[73]*fu5_8 + Lf[82]*fu6_8 + Lf[90]*fu7_8 + Lf[97]*fu8_8;
+    Pn[98] = Lf[104]*fu9_8 + Lf[109]*fu10_8 + Lf[113]*fu11_8 + Lf[14]*fu0_8 + Lf[28]*fu1_8 + Lf[41]*fu2_8 + Lf[53]*fu3_8 + Lf[64]*fu4_8 + Lf[74]*fu5_8 + Lf[83]*fu6_8 + Lf[91]*fu7_8 + Lf[98]*fu8_8;
     Pn[99] = P[99] + ft276;
     Pn[100] = P[100];
     Pn[101] = P[101];
@@ -1937,6 +2072,7 @@ int nav_ukf_update_gnss_pos_nis(nav_ukf_t *s, const double *z, double *nis_out)
 {
     double xs[15];
     double Ps[120];
+    double Lf[120];
     double y[3];
     double nis;
     const double *x = s->x;
@@ -1945,184 +2081,12 @@ int nav_ukf_update_gnss_pos_nis(nav_ukf_t *s, const double *z, double *nis_out)
         return NAV_UKF_BAD_INPUT;
     }
 
-    const double Ld0 = P[0];
-    if (!isfinite(Ld0)) { return NAV_UKF_NON_FINITE; }
-    if (!(Ld0 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L0_0 = sqrt(Ld0);
-    const double Li0 = (1.0/L0_0);
-    const double L1_0 = Li0*P[1];
-    const double L2_0 = Li0*P[2];
-    const double L3_0 = Li0*P[3];
-    const double L4_0 = Li0*P[4];
-    const double L5_0 = Li0*P[5];
-    const double L6_0 = Li0*P[6];
-    const double L7_0 = Li0*P[7];
-    const double L8_0 = Li0*P[8];
-    const double L9_0 = Li0*P[9];
-    const double L10_0 = Li0*P[10];
-    const double L11_0 = Li0*P[11];
-    const double L12_0 = Li0*P[12];
-    const double L13_0 = Li0*P[13];
-    const double L14_0 = Li0*P[14];
-    const double Ld1 = -(L1_0*L1_0) + P[15];
-    if (!isfinite(Ld1)) { return NAV_UKF_NON_FINITE; }
-    if (!(Ld1 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L1_1 = sqrt(Ld1);
-    const double Li1 = (1.0/L1_1);
-    const double L2_1 = Li1*(-L1_0*L2_0 + P[16]);
-    const double L3_1 = Li1*(-L1_0*L3_0 + P[17]);
-    const double L4_1 = Li1*(-L1_0*L4_0 + P[18]);
-    const double L5_1 = Li1*(-L1_0*L5_0 + P[19]);
-    const double L6_1 = Li1*(-L1_0*L6_0 + P[20]);
-    const double L7_1 = Li1*(-L1_0*L7_0 + P[21]);
-    const double L8_1 = Li1*(-L1_0*L8_0 + P[22]);
-    const double L9_1 = Li1*(-L1_0*L9_0 + P[23]);
-    const double L10_1 = Li1*(-L10_0*L1_0 + P[24]);
-    const double L11_1 = Li1*(-L11_0*L1_0 + P[25]);
-    const double L12_1 = Li1*(-L12_0*L1_0 + P[26]);
-    const double L13_1 = Li1*(-L13_0*L1_0 + P[27]);
-    const double L14_1 = Li1*(-L14_0*L1_0 + P[28]);
-    const double Ld2 = -(L2_0*L2_0) - (L2_1*L2_1) + P[29];
-    if (!isfinite(Ld2)) { return NAV_UKF_NON_FINITE; }
-    if (!(Ld2 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L2_2 = sqrt(Ld2);
-    const double Li2 = (1.0/L2_2);
-    const double L3_2 = Li2*(-L2_0*L3_0 - L2_1*L3_1 + P[30]);
-    const double L4_2 = Li2*(-L2_0*L4_0 - L2_1*L4_1 + P[31]);
-    const double L5_2 = Li2*(-L2_0*L5_0 - L2_1*L5_1 + P[32]);
-    const double L6_2 = Li2*(-L2_0*L6_0 - L2_1*L6_1 + P[33]);
-    const double L7_2 = Li2*(-L2_0*L7_0 - L2_1*L7_1 + P[34]);
-    const double L8_2 = Li2*(-L2_0*L8_0 - L2_1*L8_1 + P[35]);
-    const double L9_2 = Li2*(-L2_0*L9_0 - L2_1*L9_1 + P[36]);
-    const double L10_2 = Li2*(-L10_0*L2_0 - L10_1*L2_1 + P[37]);
-    const double L11_2 = Li2*(-L11_0*L2_0 - L11_1*L2_1 + P[38]);
-    const double L12_2 = Li2*(-L12_0*L2_0 - L12_1*L2_1 + P[39]);
-    const double L13_2 = Li2*(-L13_0*L2_0 - L13_1*L2_1 + P[40]);
-    const double L14_2 = Li2*(-L14_0*L2_0 - L14_1*L2_1 + P[41]);
-    const double Ld3 = -(L3_0*L3_0) - (L3_1*L3_1) - (L3_2*L3_2) + P[42];
-    if (!isfinite(Ld3)) { return NAV_UKF_NON_FINITE; }
-    if (!(Ld3 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L3_3 = sqrt(Ld3);
-    const double Li3 = (1.0/L3_3);
-    const double L4_3 = Li3*(-L3_0*L4_0 - L3_1*L4_1 - L3_2*L4_2 + P[43]);
-    const double L5_3 = Li3*(-L3_0*L5_0 - L3_1*L5_1 - L3_2*L5_2 + P[44]);
-    const double L6_3 = Li3*(-L3_0*L6_0 - L3_1*L6_1 - L3_2*L6_2 + P[45]);
-    const double L7_3 = Li3*(-L3_0*L7_0 - L3_1*L7_1 - L3_2*L7_2 + P[46]);
-    const double L8_3 = Li3*(-L3_0*L8_0 - L3_1*L8_1 - L3_2*L8_2 + P[47]);
-    const double L9_3 = Li3*(-L3_0*L9_0 - L3_1*L9_1 - L3_2*L9_2 + P[48]);
-    const double L10_3 = Li3*(-L10_0*L3_0 - L10_1*L3_1 - L10_2*L3_2 + P[49]);
-    const double L11_3 = Li3*(-L11_0*L3_0 - L11_1*L3_1 - L11_2*L3_2 + P[50]);
-    const double L12_3 = Li3*(-L12_0*L3_0 - L12_1*L3_1 - L12_2*L3_2 + P[51]);
-    const double L13_3 = Li3*(-L13_0*L3_0 - L13_1*L3_1 - L13_2*L3_2 + P[52]);
-    const double L14_3 = Li3*(-L14_0*L3_0 - L14_1*L3_1 - L14_2*L3_2 + P[53]);
-    const double Ld4 = -(L4_0*L4_0) - (L4_1*L4_1) - (L4_2*L4_2) - (L4_3*L4_3) + P[54];
-    if (!isfinite(Ld4)) { return NAV_UKF_NON_FINITE; }
-    if (!(Ld4 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L4_4 = sqrt(Ld4);
-    const double Li4 = (1.0/L4_4);
-    const double L5_4 = Li4*(-L4_0*L5_0 - L4_1*L5_1 - L4_2*L5_2 - L4_3*L5_3 + P[55]);
-    const double L6_4 = Li4*(-L4_0*L6_0 - L4_1*L6_1 - L4_2*L6_2 - L4_3*L6_3 + P[56]);
-    const double L7_4 = Li4*(-L4_0*L7_0 - L4_1*L7_1 - L4_2*L7_2 - L4_3*L7_3 + P[57]);
-    const double L8_4 = Li4*(-L4_0*L8_0 - L4_1*L8_1 - L4_2*L8_2 - L4_3*L8_3 + P[58]);
-    const double L9_4 = Li4*(-L4_0*L9_0 - L4_1*L9_1 - L4_2*L9_2 - L4_3*L9_3 + P[59]);
-    const double L10_4 = Li4*(-L10_0*L4_0 - L10_1*L4_1 - L10_2*L4_2 - L10_3*L4_3 + P[60]);
-    const double L11_4 = Li4*(-L11_0*L4_0 - L11_1*L4_1 - L11_2*L4_2 - L11_3*L4_3 + P[61]);
-    const double L12_4 = Li4*(-L12_0*L4_0 - L12_1*L4_1 - L12_2*L4_2 - L12_3*L4_3 + P[62]);
-    const double L13_4 = Li4*(-L13_0*L4_0 - L13_1*L4_1 - L13_2*L4_2 - L13_3*L4_3 + P[63]);
-    const double L14_4 = Li4*(-L14_0*L4_0 - L14_1*L4_1 - L14_2*L4_2 - L14_3*L4_3 + P[64]);
-    const double Ld5 = -(L5_0*L5_0) - (L5_1*L5_1) - (L5_2*L5_2) - (L5_3*L5_3) - (L5_4*L5_4) + P[65];
-    if (!isfinite(Ld5)) { return NAV_UKF_NON_FINITE; }
-    if (!(Ld5 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L5_5 = sqrt(Ld5);
-    const double Li5 = (1.0/L5_5);
-    const double L6_5 = Li5*(-L5_0*L6_0 - L5_1*L6_1 - L5_2*L6_2 - L5_3*L6_3 - L5_4*L6_4 + P[66]);
-    const double L7_5 = Li5*(-L5_0*L7_0 - L5_1*L7_1 - L5_2*L7_2 - L5_3*L7_3 - L5_4*L7_4 + P[67]);
-    const double L8_5 = Li5*(-L5_0*L8_0 - L5_1*L8_1 - L5_2*L8_2 - L5_3*L8_3 - L5_4*L8_4 + P[68]);
-    const double L9_5 = Li5*(-L5_0*L9_0 - L5_1*L9_1 - L5_2*L9_2 - L5_3*L9_3 - L5_4*L9_4 + P[69]);
-    const double L10_5 = Li5*(-L10_0*L5_0 - L10_1*L5_1 - L10_2*L5_2 - L10_3*L5_3 - L10_4*L5_4 + P[70]);
-    const double L11_5 = Li5*(-L11_0*L5_0 - L11_1*L5_1 - L11_2*L5_2 - L11_3*L5_3 - L11_4*L5_4 + P[71]);
-    const double L12_5 = Li5*(-L12_0*L5_0 - L12_1*L5_1 - L12_2*L5_2 - L12_3*L5_3 - L12_4*L5_4 + P[72]);
-    const double L13_5 = Li5*(-L13_0*L5_0 - L13_1*L5_1 - L13_2*L5_2 - L13_3*L5_3 - L13_4*L5_4 + P[73]);
-    const double L14_5 = Li5*(-L14_0*L5_0 - L14_1*L5_1 - L14_2*L5_2 - L14_3*L5_3 - L14_4*L5_4 + P[74]);
-    const double Ld6 = -(L6_0*L6_0) - (L6_1*L6_1) - (L6_2*L6_2) - (L6_3*L6_3) - (L6_4*L6_4) - (L6_5*L6_5) + P[75];
-    if (!isfinite(Ld6)) { return NAV_UKF_NON_FINITE; }
-    if (!(Ld6 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L6_6 = sqrt(Ld6);
-    const double Li6 = (1.0/L6_6);
-    const double L7_6 = Li6*(-L6_0*L7_0 - L6_1*L7_1 - L6_2*L7_2 - L6_3*L7_3 - L6_4*L7_4 - L6_5*L7_5 + P[76]);
-    const double L8_6 = Li6*(-L6_0*L8_0 - L6_1*L8_1 - L6_2*L8_2 - L6_3*L8_3 - L6_4*L8_4 - L6_5*L8_5 + P[77]);
-    const double L9_6 = Li6*(-L6_0*L9_0 - L6_1*L9_1 - L6_2*L9_2 - L6_3*L9_3 - L6_4*L9_4 - L6_5*L9_5 + P[78]);
-    const double L10_6 = Li6*(-L10_0*L6_0 - L10_1*L6_1 - L10_2*L6_2 - L10_3*L6_3 - L10_4*L6_4 - L10_5*L6_5 + P[79]);
-    const double L11_6 = Li6*(-L11_0*L6_0 - L11_1*L6_1 - L11_2*L6_2 - L11_3*L6_3 - L11_4*L6_4 - L11_5*L6_5 + P[80]);
-    const double L12_6 = Li6*(-L12_0*L6_0 - L12_1*L6_1 - L12_2*L6_2 - L12_3*L6_3 - L12_4*L6_4 - L12_5*L6_5 + P[81]);
-    const double L13_6 = Li6*(-L13_0*L6_0 - L13_1*L6_1 - L13_2*L6_2 - L13_3*L6_3 - L13_4*L6_4 - L13_5*L6_5 + P[82]);
-    const double L14_6 = Li6*(-L14_0*L6_0 - L14_1*L6_1 - L14_2*L6_2 - L14_3*L6_3 - L14_4*L6_4 - L14_5*L6_5 + P[83]);
-    const double Ld7 = -(L7_0*L7_0) - (L7_1*L7_1) - (L7_2*L7_2) - (L7_3*L7_3) - (L7_4*L7_4) - (L7_5*L7_5) - (L7_6*L7_6) + P[84];
-    if (!isfinite(Ld7)) { return NAV_UKF_NON_FINITE; }
-    if (!(Ld7 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L7_7 = sqrt(Ld7);
-    const double Li7 = (1.0/L7_7);
-    const double L8_7 = Li7*(-L7_0*L8_0 - L7_1*L8_1 - L7_2*L8_2 - L7_3*L8_3 - L7_4*L8_4 - L7_5*L8_5 - L7_6*L8_6 + P[85]);
-    const double L9_7 = Li7*(-L7_0*L9_0 - L7_1*L9_1 - L7_2*L9_2 - L7_3*L9_3 - L7_4*L9_4 - L7_5*L9_5 - L7_6*L9_6 + P[86]);
-    const double L10_7 = Li7*(-L10_0*L7_0 - L10_1*L7_1 - L10_2*L7_2 - L10_3*L7_3 - L10_4*L7_4 - L10_5*L7_5 - L10_6*L7_6 + P[87]);
-    const double L11_7 = Li7*(-L11_0*L7_0 - L11_1*L7_1 - L11_2*L7_2 - L11_3*L7_3 - L11_4*L7_4 - L11_5*L7_5 - L11_6*L7_6 + P[88]);
-    const double L12_7 = Li7*(-L12_0*L7_0 - L12_1*L7_1 - L12_2*L7_2 - L12_3*L7_3 - L12_4*L7_4 - L12_5*L7_5 - L12_6*L7_6 + P[89]);
-    const double L13_7 = Li7*(-L13_0*L7_0 - L13_1*L7_1 - L13_2*L7_2 - L13_3*L7_3 - L13_4*L7_4 - L13_5*L7_5 - L13_6*L7_6 + P[90]);
-    const double L14_7 = Li7*(-L14_0*L7_0 - L14_1*L7_1 - L14_2*L7_2 - L14_3*L7_3 - L14_4*L7_4 - L14_5*L7_5 - L14_6*L7_6 + P[91]);
-    const double Ld8 = -(L8_0*L8_0) - (L8_1*L8_1) - (L8_2*L8_2) - (L8_3*L8_3) - (L8_4*L8_4) - (L8_5*L8_5) - (L8_6*L8_6) - (L8_7*L8_7) + P[92];
-    if (!isfinite(Ld8)) { return NAV_UKF_NON_FINITE; }
-    if (!(Ld8 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L8_8 = sqrt(Ld8);
-    const double Li8 = (1.0/L8_8);
-    const double L9_8 = Li8*(-L8_0*L9_0 - L8_1*L9_1 - L8_2*L9_2 - L8_3*L9_3 - L8_4*L9_4 - L8_5*L9_5 - L8_6*L9_6 - L8_7*L9_7 + P[93]);
-    const double L10_8 = Li8*(-L10_0*L8_0 - L10_1*L8_1 - L10_2*L8_2 - L10_3*L8_3 - L10_4*L8_4 - L10_5*L8_5 - L10_6*L8_6 - L10_7*L8_7 + P[94]);
-    const double L11_8 = Li8*(-L11_0*L8_0 - L11_1*L8_1 - L11_2*L8_2 - L11_3*L8_3 - L11_4*L8_4 - L11_5*L8_5 - L11_6*L8_6 - L11_7*L8_7 + P[95]);
-    const double L12_8 = Li8*(-L12_0*L8_0 - L12_1*L8_1 - L12_2*L8_2 - L12_3*L8_3 - L12_4*L8_4 - L12_5*L8_5 - L12_6*L8_6 - L12_7*L8_7 + P[96]);
-    const double L13_8 = Li8*(-L13_0*L8_0 - L13_1*L8_1 - L13_2*L8_2 - L13_3*L8_3 - L13_4*L8_4 - L13_5*L8_5 - L13_6*L8_6 - L13_7*L8_7 + P[97]);
-    const double L14_8 = Li8*(-L14_0*L8_0 - L14_1*L8_1 - L14_2*L8_2 - L14_3*L8_3 - L14_4*L8_4 - L14_5*L8_5 - L14_6*L8_6 - L14_7*L8_7 + P[98]);
-    const double Ld9 = -(L9_0*L9_0) - (L9_1*L9_1) - (L9_2*L9_2) - (L9_3*L9_3) - (L9_4*L9_4) - (L9_5*L9_5) - (L9_6*L9_6) - (L9_7*L9_7) - (L9_8*L9_8) + P[99];
-    if (!isfinite(Ld9)) { return NAV_UKF_NON_FINITE; }
-    if (!(Ld9 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L9_9 = sqrt(Ld9);
-    const double Li9 = (1.0/L9_9);
-    const double L10_9 = Li9*(-L10_0*L9_0 - L10_1*L9_1 - L10_2*L9_2 - L10_3*L9_3 - L10_4*L9_4 - L10_5*L9_5 - L10_6*L9_6 - L10_7*L9_7 - L10_8*L9_8 + P[100]);
-    const double L11_9 = Li9*(-L11_0*L9_0 - L11_1*L9_1 - L11_2*L9_2 - L11_3*L9_3 - L11_4*L9_4 - L11_5*L9_5 - L11_6*L9_6 - L11_7*L9_7 - L11_8*L9_8 + P[101]);
-    const double L12_9 = Li9*(-L12_0*L9_0 - L12_1*L9_1 - L12_2*L9_2 - L12_3*L9_3 - L12_4*L9_4 - L12_5*L9_5 - L12_6*L9_6 - L12_7*L9_7 - L12_8*L9_8 + P[102]);
-    const double L13_9 = Li9*(-L13_0*L9_0 - L13_1*L9_1 - L13_2*L9_2 - L13_3*L9_3 - L13_4*L9_4 - L13_5*L9_5 - L13_6*L9_6 - L13_7*L9_7 - L13_8*L9_8 + P[103]);
-    const double L14_9 = Li9*(-L14_0*L9_0 - L14_1*L9_1 - L14_2*L9_2 - L14_3*L9_3 - L14_4*L9_4 - L14_5*L9_5 - L14_6*L9_6 - L14_7*L9_7 - L14_8*L9_8 + P[104]);
-    const double Ld10 = -(L10_0*L10_0) - (L10_1*L10_1) - (L10_2*L10_2) - (L10_3*L10_3) - (L10_4*L10_4) - (L10_5*L10_5) - (L10_6*L10_6) - (L10_7*L10_7) - (L10_8*L10_8) - (L10_9*L10_9) + P[105];
-    if (!isfinite(Ld10)) { return NAV_UKF_NON_FINITE; }
-    if (!(Ld10 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L10_10 = sqrt(Ld10);
-    const double Li10 = (1.0/L10_10);
-    const double L11_10 = Li10*(-L10_0*L11_0 - L10_1*L11_1 - L10_2*L11_2 - L10_3*L11_3 - L10_4*L11_4 - L10_5*L11_5 - L10_6*L11_6 - L10_7*L11_7 - L10_8*L11_8 - L10_9*L11_9 + P[106]);
-    const double L12_10 = Li10*(-L10_0*L12_0 - L10_1*L12_1 - L10_2*L12_2 - L10_3*L12_3 - L10_4*L12_4 - L10_5*L12_5 - L10_6*L12_6 - L10_7*L12_7 - L10_8*L12_8 - L10_9*L12_9 + P[107]);
-    const double L13_10 = Li10*(-L10_0*L13_0 - L10_1*L13_1 - L10_2*L13_2 - L10_3*L13_3 - L10_4*L13_4 - L10_5*L13_5 - L10_6*L13_6 - L10_7*L13_7 - L10_8*L13_8 - L10_9*L13_9 + P[108]);
-    const double L14_10 = Li10*(-L10_0*L14_0 - L10_1*L14_1 - L10_2*L14_2 - L10_3*L14_3 - L10_4*L14_4 - L10_5*L14_5 - L10_6*L14_6 - L10_7*L14_7 - L10_8*L14_8 - L10_9*L14_9 + P[109]);
-    const double Ld11 = -(L11_0*L11_0) - (L11_1*L11_1) - (L11_10*L11_10) - (L11_2*L11_2) - (L11_3*L11_3) - (L11_4*L11_4) - (L11_5*L11_5) - (L11_6*L11_6) - (L11_7*L11_7) - (L11_8*L11_8) - (L11_9*L11_9) + P[110];
-    if (!isfinite(Ld11)) { return NAV_UKF_NON_FINITE; }
-    if (!(Ld11 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L11_11 = sqrt(Ld11);
-    const double Li11 = (1.0/L11_11);
-    const double L12_11 = Li11*(-L11_0*L12_0 - L11_1*L12_1 - L11_10*L12_10 - L11_2*L12_2 - L11_3*L12_3 - L11_4*L12_4 - L11_5*L12_5 - L11_6*L12_6 - L11_7*L12_7 - L11_8*L12_8 - L11_9*L12_9 + P[111]);
-    const double L13_11 = Li11*(-L11_0*L13_0 - L11_1*L13_1 - L11_10*L13_10 - L11_2*L13_2 - L11_3*L13_3 - L11_4*L13_4 - L11_5*L13_5 - L11_6*L13_6 - L11_7*L13_7 - L11_8*L13_8 - L11_9*L13_9 + P[112]);
-    const double L14_11 = Li11*(-L11_0*L14_0 - L11_1*L14_1 - L11_10*L14_10 - L11_2*L14_2 - L11_3*L14_3 - L11_4*L14_4 - L11_5*L14_5 - L11_6*L14_6 - L11_7*L14_7 - L11_8*L14_8 - L11_9*L14_9 + P[113]);
-    const double Ld12 = -(L12_0*L12_0) - (L12_1*L12_1) - (L12_10*L12_10) - (L12_11*L12_11) - (L12_2*L12_2) - (L12_3*L12_3) - (L12_4*L12_4) - (L12_5*L12_5) - (L12_6*L12_6) - (L12_7*L12_7) - (L12_8*L12_8) - (L12_9*L12_9) + P[114];
-    if (!isfinite(Ld12)) { return NAV_UKF_NON_FINITE; }
-    if (!(Ld12 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L12_12 = sqrt(Ld12);
-    const double Li12 = (1.0/L12_12);
-    const double L13_12 = Li12*(-L12_0*L13_0 - L12_1*L13_1 - L12_10*L13_10 - L12_11*L13_11 - L12_2*L13_2 - L12_3*L13_3 - L12_4*L13_4 - L12_5*L13_5 - L12_6*L13_6 - L12_7*L13_7 - L12_8*L13_8 - L12_9*L13_9 + P[115]);
-    const double L14_12 = Li12*(-L12_0*L14_0 - L12_1*L14_1 - L12_10*L14_10 - L12_11*L14_11 - L12_2*L14_2 - L12_3*L14_3 - L12_4*L14_4 - L12_5*L14_5 - L12_6*L14_6 - L12_7*L14_7 - L12_8*L14_8 - L12_9*L14_9 + P[116]);
-    const double Ld13 = -(L13_0*L13_0) - (L13_1*L13_1) - (L13_10*L13_10) - (L13_11*L13_11) - (L13_12*L13_12) - (L13_2*L13_2) - (L13_3*L13_3) - (L13_4*L13_4) - (L13_5*L13_5) - (L13_6*L13_6) - (L13_7*L13_7) - (L13_8*L13_8) - (L13_9*L13_9) + P[117];
-    if (!isfinite(Ld13)) { return NAV_UKF_NON_FINITE; }
-    if (!(Ld13 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L13_13 = sqrt(Ld13);
-    const double Li13 = (1.0/L13_13);
-    const double L14_13 = Li13*(-L13_0*L14_0 - L13_1*L14_1 - L13_10*L14_10 - L13_11*L14_11 - L13_12*L14_12 - L13_2*L14_2 - L13_3*L14_3 - L13_4*L14_4 - L13_5*L14_5 - L13_6*L14_6 - L13_7*L14_7 - L13_8*L14_8 - L13_9*L14_9 + P[118]);
-    const double Ld14 = -(L14_0*L14_0) - (L14_1*L14_1) - (L14_10*L14_10) - (L14_11*L14_11) - (L14_12*L14_12) - (L14_13*L14_13) - (L14_2*L14_2) - (L14_3*L14_3) - (L14_4*L14_4) - (L14_5*L14_5) - (L14_6*L14_6) - (L14_7*L14_7) - (L14_8*L14_8) - (L14_9*L14_9) + P[119];
-    if (!isfinite(Ld14)) { return NAV_UKF_NON_FINITE; }
-    if (!(Ld14 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
+    {
+        const int st = nav_ukf_factor(P, Lf);
+        if (st != NAV_UKF_OK) {
+            return st;
+        }
+    }
     y[0] = -x[0] + z[0];
     y[1] = -x[1] + z[1];
     y[2] = -x[2] + z[2];
@@ -2366,6 +2330,7 @@ int nav_ukf_update_gnss_vel_nis(nav_ukf_t *s, const double *z, double *nis_out)
 {
     double xs[15];
     double Ps[120];
+    double Lf[120];
     double y[3];
     double nis;
     const double *x = s->x;
@@ -2374,184 +2339,12 @@ int nav_ukf_update_gnss_vel_nis(nav_ukf_t *s, const double *z, double *nis_out)
         return NAV_UKF_BAD_INPUT;
     }
 
-    const double Ld0 = P[0];
-    if (!isfinite(Ld0)) { return NAV_UKF_NON_FINITE; }
-    if (!(Ld0 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L0_0 = sqrt(Ld0);
-    const double Li0 = (1.0/L0_0);
-    const double L1_0 = Li0*P[1];
-    const double L2_0 = Li0*P[2];
-    const double L3_0 = Li0*P[3];
-    const double L4_0 = Li0*P[4];
-    const double L5_0 = Li0*P[5];
-    const double L6_0 = Li0*P[6];
-    const double L7_0 = Li0*P[7];
-    const double L8_0 = Li0*P[8];
-    const double L9_0 = Li0*P[9];
-    const double L10_0 = Li0*P[10];
-    const double L11_0 = Li0*P[11];
-    const double L12_0 = Li0*P[12];
-    const double L13_0 = Li0*P[13];
-    const double L14_0 = Li0*P[14];
-    const double Ld1 = -(L1_0*L1_0) + P[15];
-    if (!isfinite(Ld1)) { return NAV_UKF_NON_FINITE; }
-    if (!(Ld1 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L1_1 = sqrt(Ld1);
-    const double Li1 = (1.0/L1_1);
-    const double L2_1 = Li1*(-L1_0*L2_0 + P[16]);
-    const double L3_1 = Li1*(-L1_0*L3_0 + P[17]);
-    const double L4_1 = Li1*(-L1_0*L4_0 + P[18]);
-    const double L5_1 = Li1*(-L1_0*L5_0 + P[19]);
-    const double L6_1 = Li1*(-L1_0*L6_0 + P[20]);
-    const double L7_1 = Li1*(-L1_0*L7_0 + P[21]);
-    const double L8_1 = Li1*(-L1_0*L8_0 + P[22]);
-    const double L9_1 = Li1*(-L1_0*L9_0 + P[23]);
-    const double L10_1 = Li1*(-L10_0*L1_0 + P[24]);
-    const double L11_1 = Li1*(-L11_0*L1_0 + P[25]);
-    const double L12_1 = Li1*(-L12_0*L1_0 + P[26]);
-    const double L13_1 = Li1*(-L13_0*L1_0 + P[27]);
-    const double L14_1 = Li1*(-L14_0*L1_0 + P[28]);
-    const double Ld2 = -(L2_0*L2_0) - (L2_1*L2_1) + P[29];
-    if (!isfinite(Ld2)) { return NAV_UKF_NON_FINITE; }
-    if (!(Ld2 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L2_2 = sqrt(Ld2);
-    const double Li2 = (1.0/L2_2);
-    const double L3_2 = Li2*(-L2_0*L3_0 - L2_1*L3_1 + P[30]);
-    const double L4_2 = Li2*(-L2_0*L4_0 - L2_1*L4_1 + P[31]);
-    const double L5_2 = Li2*(-L2_0*L5_0 - L2_1*L5_1 + P[32]);
-    const double L6_2 = Li2*(-L2_0*L6_0 - L2_1*L6_1 + P[33]);
-    const double L7_2 = Li2*(-L2_0*L7_0 - L2_1*L7_1 + P[34]);
-    const double L8_2 = Li2*(-L2_0*L8_0 - L2_1*L8_1 + P[35]);
-    const double L9_2 = Li2*(-L2_0*L9_0 - L2_1*L9_1 + P[36]);
-    const double L10_2 = Li2*(-L10_0*L2_0 - L10_1*L2_1 + P[37]);
-    const double L11_2 = Li2*(-L11_0*L2_0 - L11_1*L2_1 + P[38]);
-    const double L12_2 = Li2*(-L12_0*L2_0 - L12_1*L2_1 + P[39]);
-    const double L13_2 = Li2*(-L13_0*L2_0 - L13_1*L2_1 + P[40]);
-    const double L14_2 = Li2*(-L14_0*L2_0 - L14_1*L2_1 + P[41]);
-    const double Ld3 = -(L3_0*L3_0) - (L3_1*L3_1) - (L3_2*L3_2) + P[42];
-    if (!isfinite(Ld3)) { return NAV_UKF_NON_FINITE; }
-    if (!(Ld3 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L3_3 = sqrt(Ld3);
-    const double Li3 = (1.0/L3_3);
-    const double L4_3 = Li3*(-L3_0*L4_0 - L3_1*L4_1 - L3_2*L4_2 + P[43]);
-    const double L5_3 = Li3*(-L3_0*L5_0 - L3_1*L5_1 - L3_2*L5_2 + P[44]);
-    const double L6_3 = Li3*(-L3_0*L6_0 - L3_1*L6_1 - L3_2*L6_2 + P[45]);
-    const double L7_3 = Li3*(-L3_0*L7_0 - L3_1*L7_1 - L3_2*L7_2 + P[46]);
-    const double L8_3 = Li3*(-L3_0*L8_0 - L3_1*L8_1 - L3_2*L8_2 + P[47]);
-    const double L9_3 = Li3*(-L3_0*L9_0 - L3_1*L9_1 - L3_2*L9_2 + P[48]);
-    const double L10_3 = Li3*(-L10_0*L3_0 - L10_1*L3_1 - L10_2*L3_2 + P[49]);
-    const double L11_3 = Li3*(-L11_0*L3_0 - L11_1*L3_1 - L11_2*L3_2 + P[50]);
-    const double L12_3 = Li3*(-L12_0*L3_0 - L12_1*L3_1 - L12_2*L3_2 + P[51]);
-    const double L13_3 = Li3*(-L13_0*L3_0 - L13_1*L3_1 - L13_2*L3_2 + P[52]);
-    const double L14_3 = Li3*(-L14_0*L3_0 - L14_1*L3_1 - L14_2*L3_2 + P[53]);
-    const double Ld4 = -(L4_0*L4_0) - (L4_1*L4_1) - (L4_2*L4_2) - (L4_3*L4_3) + P[54];
-    if (!isfinite(Ld4)) { return NAV_UKF_NON_FINITE; }
-    if (!(Ld4 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L4_4 = sqrt(Ld4);
-    const double Li4 = (1.0/L4_4);
-    const double L5_4 = Li4*(-L4_0*L5_0 - L4_1*L5_1 - L4_2*L5_2 - L4_3*L5_3 + P[55]);
-    const double L6_4 = Li4*(-L4_0*L6_0 - L4_1*L6_1 - L4_2*L6_2 - L4_3*L6_3 + P[56]);
-    const double L7_4 = Li4*(-L4_0*L7_0 - L4_1*L7_1 - L4_2*L7_2 - L4_3*L7_3 + P[57]);
-    const double L8_4 = Li4*(-L4_0*L8_0 - L4_1*L8_1 - L4_2*L8_2 - L4_3*L8_3 + P[58]);
-    const double L9_4 = Li4*(-L4_0*L9_0 - L4_1*L9_1 - L4_2*L9_2 - L4_3*L9_3 + P[59]);
-    const double L10_4 = Li4*(-L10_0*L4_0 - L10_1*L4_1 - L10_2*L4_2 - L10_3*L4_3 + P[60]);
-    const double L11_4 = Li4*(-L11_0*L4_0 - L11_1*L4_1 - L11_2*L4_2 - L11_3*L4_3 + P[61]);
-    const double L12_4 = Li4*(-L12_0*L4_0 - L12_1*L4_1 - L12_2*L4_2 - L12_3*L4_3 + P[62]);
-    const double L13_4 = Li4*(-L13_0*L4_0 - L13_1*L4_1 - L13_2*L4_2 - L13_3*L4_3 + P[63]);
-    const double L14_4 = Li4*(-L14_0*L4_0 - L14_1*L4_1 - L14_2*L4_2 - L14_3*L4_3 + P[64]);
-    const double Ld5 = -(L5_0*L5_0) - (L5_1*L5_1) - (L5_2*L5_2) - (L5_3*L5_3) - (L5_4*L5_4) + P[65];
-    if (!isfinite(Ld5)) { return NAV_UKF_NON_FINITE; }
-    if (!(Ld5 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L5_5 = sqrt(Ld5);
-    const double Li5 = (1.0/L5_5);
-    const double L6_5 = Li5*(-L5_0*L6_0 - L5_1*L6_1 - L5_2*L6_2 - L5_3*L6_3 - L5_4*L6_4 + P[66]);
-    const double L7_5 = Li5*(-L5_0*L7_0 - L5_1*L7_1 - L5_2*L7_2 - L5_3*L7_3 - L5_4*L7_4 + P[67]);
-    const double L8_5 = Li5*(-L5_0*L8_0 - L5_1*L8_1 - L5_2*L8_2 - L5_3*L8_3 - L5_4*L8_4 + P[68]);
-    const double L9_5 = Li5*(-L5_0*L9_0 - L5_1*L9_1 - L5_2*L9_2 - L5_3*L9_3 - L5_4*L9_4 + P[69]);
-    const double L10_5 = Li5*(-L10_0*L5_0 - L10_1*L5_1 - L10_2*L5_2 - L10_3*L5_3 - L10_4*L5_4 + P[70]);
-    const double L11_5 = Li5*(-L11_0*L5_0 - L11_1*L5_1 - L11_2*L5_2 - L11_3*L5_3 - L11_4*L5_4 + P[71]);
-    const double L12_5 = Li5*(-L12_0*L5_0 - L12_1*L5_1 - L12_2*L5_2 - L12_3*L5_3 - L12_4*L5_4 + P[72]);
-    const double L13_5 = Li5*(-L13_0*L5_0 - L13_1*L5_1 - L13_2*L5_2 - L13_3*L5_3 - L13_4*L5_4 + P[73]);
-    const double L14_5 = Li5*(-L14_0*L5_0 - L14_1*L5_1 - L14_2*L5_2 - L14_3*L5_3 - L14_4*L5_4 + P[74]);
-    const double Ld6 = -(L6_0*L6_0) - (L6_1*L6_1) - (L6_2*L6_2) - (L6_3*L6_3) - (L6_4*L6_4) - (L6_5*L6_5) + P[75];
-    if (!isfinite(Ld6)) { return NAV_UKF_NON_FINITE; }
-    if (!(Ld6 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L6_6 = sqrt(Ld6);
-    const double Li6 = (1.0/L6_6);
-    const double L7_6 = Li6*(-L6_0*L7_0 - L6_1*L7_1 - L6_2*L7_2 - L6_3*L7_3 - L6_4*L7_4 - L6_5*L7_5 + P[76]);
-    const double L8_6 = Li6*(-L6_0*L8_0 - L6_1*L8_1 - L6_2*L8_2 - L6_3*L8_3 - L6_4*L8_4 - L6_5*L8_5 + P[77]);
-    const double L9_6 = Li6*(-L6_0*L9_0 - L6_1*L9_1 - L6_2*L9_2 - L6_3*L9_3 - L6_4*L9_4 - L6_5*L9_5 + P[78]);
-    const double L10_6 = Li6*(-L10_0*L6_0 - L10_1*L6_1 - L10_2*L6_2 - L10_3*L6_3 - L10_4*L6_4 - L10_5*L6_5 + P[79]);
-    const double L11_6 = Li6*(-L11_0*L6_0 - L11_1*L6_1 - L11_2*L6_2 - L11_3*L6_3 - L11_4*L6_4 - L11_5*L6_5 + P[80]);
-    const double L12_6 = Li6*(-L12_0*L6_0 - L12_1*L6_1 - L12_2*L6_2 - L12_3*L6_3 - L12_4*L6_4 - L12_5*L6_5 + P[81]);
-    const double L13_6 = Li6*(-L13_0*L6_0 - L13_1*L6_1 - L13_2*L6_2 - L13_3*L6_3 - L13_4*L6_4 - L13_5*L6_5 + P[82]);
-    const double L14_6 = Li6*(-L14_0*L6_0 - L14_1*L6_1 - L14_2*L6_2 - L14_3*L6_3 - L14_4*L6_4 - L14_5*L6_5 + P[83]);
-    const double Ld7 = -(L7_0*L7_0) - (L7_1*L7_1) - (L7_2*L7_2) - (L7_3*L7_3) - (L7_4*L7_4) - (L7_5*L7_5) - (L7_6*L7_6) + P[84];
-    if (!isfinite(Ld7)) { return NAV_UKF_NON_FINITE; }
-    if (!(Ld7 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L7_7 = sqrt(Ld7);
-    const double Li7 = (1.0/L7_7);
-    const double L8_7 = Li7*(-L7_0*L8_0 - L7_1*L8_1 - L7_2*L8_2 - L7_3*L8_3 - L7_4*L8_4 - L7_5*L8_5 - L7_6*L8_6 + P[85]);
-    const double L9_7 = Li7*(-L7_0*L9_0 - L7_1*L9_1 - L7_2*L9_2 - L7_3*L9_3 - L7_4*L9_4 - L7_5*L9_5 - L7_6*L9_6 + P[86]);
-    const double L10_7 = Li7*(-L10_0*L7_0 - L10_1*L7_1 - L10_2*L7_2 - L10_3*L7_3 - L10_4*L7_4 - L10_5*L7_5 - L10_6*L7_6 + P[87]);
-    const double L11_7 = Li7*(-L11_0*L7_0 - L11_1*L7_1 - L11_2*L7_2 - L11_3*L7_3 - L11_4*L7_4 - L11_5*L7_5 - L11_6*L7_6 + P[88]);
-    const double L12_7 = Li7*(-L12_0*L7_0 - L12_1*L7_1 - L12_2*L7_2 - L12_3*L7_3 - L12_4*L7_4 - L12_5*L7_5 - L12_6*L7_6 + P[89]);
-    const double L13_7 = Li7*(-L13_0*L7_0 - L13_1*L7_1 - L13_2*L7_2 - L13_3*L7_3 - L13_4*L7_4 - L13_5*L7_5 - L13_6*L7_6 + P[90]);
-    const double L14_7 = Li7*(-L14_0*L7_0 - L14_1*L7_1 - L14_2*L7_2 - L14_3*L7_3 - L14_4*L7_4 - L14_5*L7_5 - L14_6*L7_6 + P[91]);
-    const double Ld8 = -(L8_0*L8_0) - (L8_1*L8_1) - (L8_2*L8_2) - (L8_3*L8_3) - (L8_4*L8_4) - (L8_5*L8_5) - (L8_6*L8_6) - (L8_7*L8_7) + P[92];
-    if (!isfinite(Ld8)) { return NAV_UKF_NON_FINITE; }
-    if (!(Ld8 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L8_8 = sqrt(Ld8);
-    const double Li8 = (1.0/L8_8);
-    const double L9_8 = Li8*(-L8_0*L9_0 - L8_1*L9_1 - L8_2*L9_2 - L8_3*L9_3 - L8_4*L9_4 - L8_5*L9_5 - L8_6*L9_6 - L8_7*L9_7 + P[93]);
-    const double L10_8 = Li8*(-L10_0*L8_0 - L10_1*L8_1 - L10_2*L8_2 - L10_3*L8_3 - L10_4*L8_4 - L10_5*L8_5 - L10_6*L8_6 - L10_7*L8_7 + P[94]);
-    const double L11_8 = Li8*(-L11_0*L8_0 - L11_1*L8_1 - L11_2*L8_2 - L11_3*L8_3 - L11_4*L8_4 - L11_5*L8_5 - L11_6*L8_6 - L11_7*L8_7 + P[95]);
-    const double L12_8 = Li8*(-L12_0*L8_0 - L12_1*L8_1 - L12_2*L8_2 - L12_3*L8_3 - L12_4*L8_4 - L12_5*L8_5 - L12_6*L8_6 - L12_7*L8_7 + P[96]);
-    const double L13_8 = Li8*(-L13_0*L8_0 - L13_1*L8_1 - L13_2*L8_2 - L13_3*L8_3 - L13_4*L8_4 - L13_5*L8_5 - L13_6*L8_6 - L13_7*L8_7 + P[97]);
-    const double L14_8 = Li8*(-L14_0*L8_0 - L14_1*L8_1 - L14_2*L8_2 - L14_3*L8_3 - L14_4*L8_4 - L14_5*L8_5 - L14_6*L8_6 - L14_7*L8_7 + P[98]);
-    const double Ld9 = -(L9_0*L9_0) - (L9_1*L9_1) - (L9_2*L9_2) - (L9_3*L9_3) - (L9_4*L9_4) - (L9_5*L9_5) - (L9_6*L9_6) - (L9_7*L9_7) - (L9_8*L9_8) + P[99];
-    if (!isfinite(Ld9)) { return NAV_UKF_NON_FINITE; }
-    if (!(Ld9 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L9_9 = sqrt(Ld9);
-    const double Li9 = (1.0/L9_9);
-    const double L10_9 = Li9*(-L10_0*L9_0 - L10_1*L9_1 - L10_2*L9_2 - L10_3*L9_3 - L10_4*L9_4 - L10_5*L9_5 - L10_6*L9_6 - L10_7*L9_7 - L10_8*L9_8 + P[100]);
-    const double L11_9 = Li9*(-L11_0*L9_0 - L11_1*L9_1 - L11_2*L9_2 - L11_3*L9_3 - L11_4*L9_4 - L11_5*L9_5 - L11_6*L9_6 - L11_7*L9_7 - L11_8*L9_8 + P[101]);
-    const double L12_9 = Li9*(-L12_0*L9_0 - L12_1*L9_1 - L12_2*L9_2 - L12_3*L9_3 - L12_4*L9_4 - L12_5*L9_5 - L12_6*L9_6 - L12_7*L9_7 - L12_8*L9_8 + P[102]);
-    const double L13_9 = Li9*(-L13_0*L9_0 - L13_1*L9_1 - L13_2*L9_2 - L13_3*L9_3 - L13_4*L9_4 - L13_5*L9_5 - L13_6*L9_6 - L13_7*L9_7 - L13_8*L9_8 + P[103]);
-    const double L14_9 = Li9*(-L14_0*L9_0 - L14_1*L9_1 - L14_2*L9_2 - L14_3*L9_3 - L14_4*L9_4 - L14_5*L9_5 - L14_6*L9_6 - L14_7*L9_7 - L14_8*L9_8 + P[104]);
-    const double Ld10 = -(L10_0*L10_0) - (L10_1*L10_1) - (L10_2*L10_2) - (L10_3*L10_3) - (L10_4*L10_4) - (L10_5*L10_5) - (L10_6*L10_6) - (L10_7*L10_7) - (L10_8*L10_8) - (L10_9*L10_9) + P[105];
-    if (!isfinite(Ld10)) { return NAV_UKF_NON_FINITE; }
-    if (!(Ld10 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L10_10 = sqrt(Ld10);
-    const double Li10 = (1.0/L10_10);
-    const double L11_10 = Li10*(-L10_0*L11_0 - L10_1*L11_1 - L10_2*L11_2 - L10_3*L11_3 - L10_4*L11_4 - L10_5*L11_5 - L10_6*L11_6 - L10_7*L11_7 - L10_8*L11_8 - L10_9*L11_9 + P[106]);
-    const double L12_10 = Li10*(-L10_0*L12_0 - L10_1*L12_1 - L10_2*L12_2 - L10_3*L12_3 - L10_4*L12_4 - L10_5*L12_5 - L10_6*L12_6 - L10_7*L12_7 - L10_8*L12_8 - L10_9*L12_9 + P[107]);
-    const double L13_10 = Li10*(-L10_0*L13_0 - L10_1*L13_1 - L10_2*L13_2 - L10_3*L13_3 - L10_4*L13_4 - L10_5*L13_5 - L10_6*L13_6 - L10_7*L13_7 - L10_8*L13_8 - L10_9*L13_9 + P[108]);
-    const double L14_10 = Li10*(-L10_0*L14_0 - L10_1*L14_1 - L10_2*L14_2 - L10_3*L14_3 - L10_4*L14_4 - L10_5*L14_5 - L10_6*L14_6 - L10_7*L14_7 - L10_8*L14_8 - L10_9*L14_9 + P[109]);
-    const double Ld11 = -(L11_0*L11_0) - (L11_1*L11_1) - (L11_10*L11_10) - (L11_2*L11_2) - (L11_3*L11_3) - (L11_4*L11_4) - (L11_5*L11_5) - (L11_6*L11_6) - (L11_7*L11_7) - (L11_8*L11_8) - (L11_9*L11_9) + P[110];
-    if (!isfinite(Ld11)) { return NAV_UKF_NON_FINITE; }
-    if (!(Ld11 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L11_11 = sqrt(Ld11);
-    const double Li11 = (1.0/L11_11);
-    const double L12_11 = Li11*(-L11_0*L12_0 - L11_1*L12_1 - L11_10*L12_10 - L11_2*L12_2 - L11_3*L12_3 - L11_4*L12_4 - L11_5*L12_5 - L11_6*L12_6 - L11_7*L12_7 - L11_8*L12_8 - L11_9*L12_9 + P[111]);
-    const double L13_11 = Li11*(-L11_0*L13_0 - L11_1*L13_1 - L11_10*L13_10 - L11_2*L13_2 - L11_3*L13_3 - L11_4*L13_4 - L11_5*L13_5 - L11_6*L13_6 - L11_7*L13_7 - L11_8*L13_8 - L11_9*L13_9 + P[112]);
-    const double L14_11 = Li11*(-L11_0*L14_0 - L11_1*L14_1 - L11_10*L14_10 - L11_2*L14_2 - L11_3*L14_3 - L11_4*L14_4 - L11_5*L14_5 - L11_6*L14_6 - L11_7*L14_7 - L11_8*L14_8 - L11_9*L14_9 + P[113]);
-    const double Ld12 = -(L12_0*L12_0) - (L12_1*L12_1) - (L12_10*L12_10) - (L12_11*L12_11) - (L12_2*L12_2) - (L12_3*L12_3) - (L12_4*L12_4) - (L12_5*L12_5) - (L12_6*L12_6) - (L12_7*L12_7) - (L12_8*L12_8) - (L12_9*L12_9) + P[114];
-    if (!isfinite(Ld12)) { return NAV_UKF_NON_FINITE; }
-    if (!(Ld12 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L12_12 = sqrt(Ld12);
-    const double Li12 = (1.0/L12_12);
-    const double L13_12 = Li12*(-L12_0*L13_0 - L12_1*L13_1 - L12_10*L13_10 - L12_11*L13_11 - L12_2*L13_2 - L12_3*L13_3 - L12_4*L13_4 - L12_5*L13_5 - L12_6*L13_6 - L12_7*L13_7 - L12_8*L13_8 - L12_9*L13_9 + P[115]);
-    const double L14_12 = Li12*(-L12_0*L14_0 - L12_1*L14_1 - L12_10*L14_10 - L12_11*L14_11 - L12_2*L14_2 - L12_3*L14_3 - L12_4*L14_4 - L12_5*L14_5 - L12_6*L14_6 - L12_7*L14_7 - L12_8*L14_8 - L12_9*L14_9 + P[116]);
-    const double Ld13 = -(L13_0*L13_0) - (L13_1*L13_1) - (L13_10*L13_10) - (L13_11*L13_11) - (L13_12*L13_12) - (L13_2*L13_2) - (L13_3*L13_3) - (L13_4*L13_4) - (L13_5*L13_5) - (L13_6*L13_6) - (L13_7*L13_7) - (L13_8*L13_8) - (L13_9*L13_9) + P[117];
-    if (!isfinite(Ld13)) { return NAV_UKF_NON_FINITE; }
-    if (!(Ld13 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L13_13 = sqrt(Ld13);
-    const double Li13 = (1.0/L13_13);
-    const double L14_13 = Li13*(-L13_0*L14_0 - L13_1*L14_1 - L13_10*L14_10 - L13_11*L14_11 - L13_12*L14_12 - L13_2*L14_2 - L13_3*L14_3 - L13_4*L14_4 - L13_5*L14_5 - L13_6*L14_6 - L13_7*L14_7 - L13_8*L14_8 - L13_9*L14_9 + P[118]);
-    const double Ld14 = -(L14_0*L14_0) - (L14_1*L14_1) - (L14_10*L14_10) - (L14_11*L14_11) - (L14_12*L14_12) - (L14_13*L14_13) - (L14_2*L14_2) - (L14_3*L14_3) - (L14_4*L14_4) - (L14_5*L14_5) - (L14_6*L14_6) - (L14_7*L14_7) - (L14_8*L14_8) - (L14_9*L14_9) + P[119];
-    if (!isfinite(Ld14)) { return NAV_UKF_NON_FINITE; }
-    if (!(Ld14 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
+    {
+        const int st = nav_ukf_factor(P, Lf);
+        if (st != NAV_UKF_OK) {
+            return st;
+        }
+    }
     y[0] = -x[3] + z[0];
     y[1] = -x[4] + z[1];
     y[2] = -x[5] + z[2];
@@ -2795,6 +2588,7 @@ int nav_ukf_update_baro_nis(nav_ukf_t *s, const double *z, double *nis_out)
 {
     double xs[15];
     double Ps[120];
+    double Lf[120];
     double y[1];
     double nis;
     const double *x = s->x;
@@ -2803,184 +2597,12 @@ int nav_ukf_update_baro_nis(nav_ukf_t *s, const double *z, double *nis_out)
         return NAV_UKF_BAD_INPUT;
     }
 
-    const double Ld0 = P[0];
-    if (!isfinite(Ld0)) { return NAV_UKF_NON_FINITE; }
-    if (!(Ld0 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L0_0 = sqrt(Ld0);
-    const double Li0 = (1.0/L0_0);
-    const double L1_0 = Li0*P[1];
-    const double L2_0 = Li0*P[2];
-    const double L3_0 = Li0*P[3];
-    const double L4_0 = Li0*P[4];
-    const double L5_0 = Li0*P[5];
-    const double L6_0 = Li0*P[6];
-    const double L7_0 = Li0*P[7];
-    const double L8_0 = Li0*P[8];
-    const double L9_0 = Li0*P[9];
-    const double L10_0 = Li0*P[10];
-    const double L11_0 = Li0*P[11];
-    const double L12_0 = Li0*P[12];
-    const double L13_0 = Li0*P[13];
-    const double L14_0 = Li0*P[14];
-    const double Ld1 = -(L1_0*L1_0) + P[15];
-    if (!isfinite(Ld1)) { return NAV_UKF_NON_FINITE; }
-    if (!(Ld1 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L1_1 = sqrt(Ld1);
-    const double Li1 = (1.0/L1_1);
-    const double L2_1 = Li1*(-L1_0*L2_0 + P[16]);
-    const double L3_1 = Li1*(-L1_0*L3_0 + P[17]);
-    const double L4_1 = Li1*(-L1_0*L4_0 + P[18]);
-    const double L5_1 = Li1*(-L1_0*L5_0 + P[19]);
-    const double L6_1 = Li1*(-L1_0*L6_0 + P[20]);
-    const double L7_1 = Li1*(-L1_0*L7_0 + P[21]);
-    const double L8_1 = Li1*(-L1_0*L8_0 + P[22]);
-    const double L9_1 = Li1*(-L1_0*L9_0 + P[23]);
-    const double L10_1 = Li1*(-L10_0*L1_0 + P[24]);
-    const double L11_1 = Li1*(-L11_0*L1_0 + P[25]);
-    const double L12_1 = Li1*(-L12_0*L1_0 + P[26]);
-    const double L13_1 = Li1*(-L13_0*L1_0 + P[27]);
-    const double L14_1 = Li1*(-L14_0*L1_0 + P[28]);
-    const double Ld2 = -(L2_0*L2_0) - (L2_1*L2_1) + P[29];
-    if (!isfinite(Ld2)) { return NAV_UKF_NON_FINITE; }
-    if (!(Ld2 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L2_2 = sqrt(Ld2);
-    const double Li2 = (1.0/L2_2);
-    const double L3_2 = Li2*(-L2_0*L3_0 - L2_1*L3_1 + P[30]);
-    const double L4_2 = Li2*(-L2_0*L4_0 - L2_1*L4_1 + P[31]);
-    const double L5_2 = Li2*(-L2_0*L5_0 - L2_1*L5_1 + P[32]);
-    const double L6_2 = Li2*(-L2_0*L6_0 - L2_1*L6_1 + P[33]);
-    const double L7_2 = Li2*(-L2_0*L7_0 - L2_1*L7_1 + P[34]);
-    const double L8_2 = Li2*(-L2_0*L8_0 - L2_1*L8_1 + P[35]);
-    const double L9_2 = Li2*(-L2_0*L9_0 - L2_1*L9_1 + P[36]);
-    const double L10_2 = Li2*(-L10_0*L2_0 - L10_1*L2_1 + P[37]);
-    const double L11_2 = Li2*(-L11_0*L2_0 - L11_1*L2_1 + P[38]);
-    const double L12_2 = Li2*(-L12_0*L2_0 - L12_1*L2_1 + P[39]);
-    const double L13_2 = Li2*(-L13_0*L2_0 - L13_1*L2_1 + P[40]);
-    const double L14_2 = Li2*(-L14_0*L2_0 - L14_1*L2_1 + P[41]);
-    const double Ld3 = -(L3_0*L3_0) - (L3_1*L3_1) - (L3_2*L3_2) + P[42];
-    if (!isfinite(Ld3)) { return NAV_UKF_NON_FINITE; }
-    if (!(Ld3 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L3_3 = sqrt(Ld3);
-    const double Li3 = (1.0/L3_3);
-    const double L4_3 = Li3*(-L3_0*L4_0 - L3_1*L4_1 - L3_2*L4_2 + P[43]);
-    const double L5_3 = Li3*(-L3_0*L5_0 - L3_1*L5_1 - L3_2*L5_2 + P[44]);
-    const double L6_3 = Li3*(-L3_0*L6_0 - L3_1*L6_1 - L3_2*L6_2 + P[45]);
-    const double L7_3 = Li3*(-L3_0*L7_0 - L3_1*L7_1 - L3_2*L7_2 + P[46]);
-    const double L8_3 = Li3*(-L3_0*L8_0 - L3_1*L8_1 - L3_2*L8_2 + P[47]);
-    const double L9_3 = Li3*(-L3_0*L9_0 - L3_1*L9_1 - L3_2*L9_2 + P[48]);
-    const double L10_3 = Li3*(-L10_0*L3_0 - L10_1*L3_1 - L10_2*L3_2 + P[49]);
-    const double L11_3 = Li3*(-L11_0*L3_0 - L11_1*L3_1 - L11_2*L3_2 + P[50]);
-    const double L12_3 = Li3*(-L12_0*L3_0 - L12_1*L3_1 - L12_2*L3_2 + P[51]);
-    const double L13_3 = Li3*(-L13_0*L3_0 - L13_1*L3_1 - L13_2*L3_2 + P[52]);
-    const double L14_3 = Li3*(-L14_0*L3_0 - L14_1*L3_1 - L14_2*L3_2 + P[53]);
-    const double Ld4 = -(L4_0*L4_0) - (L4_1*L4_1) - (L4_2*L4_2) - (L4_3*L4_3) + P[54];
-    if (!isfinite(Ld4)) { return NAV_UKF_NON_FINITE; }
-    if (!(Ld4 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L4_4 = sqrt(Ld4);
-    const double Li4 = (1.0/L4_4);
-    const double L5_4 = Li4*(-L4_0*L5_0 - L4_1*L5_1 - L4_2*L5_2 - L4_3*L5_3 + P[55]);
-    const double L6_4 = Li4*(-L4_0*L6_0 - L4_1*L6_1 - L4_2*L6_2 - L4_3*L6_3 + P[56]);
-    const double L7_4 = Li4*(-L4_0*L7_0 - L4_1*L7_1 - L4_2*L7_2 - L4_3*L7_3 + P[57]);
-    const double L8_4 = Li4*(-L4_0*L8_0 - L4_1*L8_1 - L4_2*L8_2 - L4_3*L8_3 + P[58]);
-    const double L9_4 = Li4*(-L4_0*L9_0 - L4_1*L9_1 - L4_2*L9_2 - L4_3*L9_3 + P[59]);
-    const double L10_4 = Li4*(-L10_0*L4_0 - L10_1*L4_1 - L10_2*L4_2 - L10_3*L4_3 + P[60]);
-    const double L11_4 = Li4*(-L11_0*L4_0 - L11_1*L4_1 - L11_2*L4_2 - L11_3*L4_3 + P[61]);
-    const double L12_4 = Li4*(-L12_0*L4_0 - L12_1*L4_1 - L12_2*L4_2 - L12_3*L4_3 + P[62]);
-    const double L13_4 = Li4*(-L13_0*L4_0 - L13_1*L4_1 - L13_2*L4_2 - L13_3*L4_3 + P[63]);
-    const double L14_4 = Li4*(-L14_0*L4_0 - L14_1*L4_1 - L14_2*L4_2 - L14_3*L4_3 + P[64]);
-    const double Ld5 = -(L5_0*L5_0) - (L5_1*L5_1) - (L5_2*L5_2) - (L5_3*L5_3) - (L5_4*L5_4) + P[65];
-    if (!isfinite(Ld5)) { return NAV_UKF_NON_FINITE; }
-    if (!(Ld5 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L5_5 = sqrt(Ld5);
-    const double Li5 = (1.0/L5_5);
-    const double L6_5 = Li5*(-L5_0*L6_0 - L5_1*L6_1 - L5_2*L6_2 - L5_3*L6_3 - L5_4*L6_4 + P[66]);
-    const double L7_5 = Li5*(-L5_0*L7_0 - L5_1*L7_1 - L5_2*L7_2 - L5_3*L7_3 - L5_4*L7_4 + P[67]);
-    const double L8_5 = Li5*(-L5_0*L8_0 - L5_1*L8_1 - L5_2*L8_2 - L5_3*L8_3 - L5_4*L8_4 + P[68]);
-    const double L9_5 = Li5*(-L5_0*L9_0 - L5_1*L9_1 - L5_2*L9_2 - L5_3*L9_3 - L5_4*L9_4 + P[69]);
-    const double L10_5 = Li5*(-L10_0*L5_0 - L10_1*L5_1 - L10_2*L5_2 - L10_3*L5_3 - L10_4*L5_4 + P[70]);
-    const double L11_5 = Li5*(-L11_0*L5_0 - L11_1*L5_1 - L11_2*L5_2 - L11_3*L5_3 - L11_4*L5_4 + P[71]);
-    const double L12_5 = Li5*(-L12_0*L5_0 - L12_1*L5_1 - L12_2*L5_2 - L12_3*L5_3 - L12_4*L5_4 + P[72]);
-    const double L13_5 = Li5*(-L13_0*L5_0 - L13_1*L5_1 - L13_2*L5_2 - L13_3*L5_3 - L13_4*L5_4 + P[73]);
-    const double L14_5 = Li5*(-L14_0*L5_0 - L14_1*L5_1 - L14_2*L5_2 - L14_3*L5_3 - L14_4*L5_4 + P[74]);
-    const double Ld6 = -(L6_0*L6_0) - (L6_1*L6_1) - (L6_2*L6_2) - (L6_3*L6_3) - (L6_4*L6_4) - (L6_5*L6_5) + P[75];
-    if (!isfinite(Ld6)) { return NAV_UKF_NON_FINITE; }
-    if (!(Ld6 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L6_6 = sqrt(Ld6);
-    const double Li6 = (1.0/L6_6);
-    const double L7_6 = Li6*(-L6_0*L7_0 - L6_1*L7_1 - L6_2*L7_2 - L6_3*L7_3 - L6_4*L7_4 - L6_5*L7_5 + P[76]);
-    const double L8_6 = Li6*(-L6_0*L8_0 - L6_1*L8_1 - L6_2*L8_2 - L6_3*L8_3 - L6_4*L8_4 - L6_5*L8_5 + P[77]);
-    const double L9_6 = Li6*(-L6_0*L9_0 - L6_1*L9_1 - L6_2*L9_2 - L6_3*L9_3 - L6_4*L9_4 - L6_5*L9_5 + P[78]);
-    const double L10_6 = Li6*(-L10_0*L6_0 - L10_1*L6_1 - L10_2*L6_2 - L10_3*L6_3 - L10_4*L6_4 - L10_5*L6_5 + P[79]);
-    const double L11_6 = Li6*(-L11_0*L6_0 - L11_1*L6_1 - L11_2*L6_2 - L11_3*L6_3 - L11_4*L6_4 - L11_5*L6_5 + P[80]);
-    const double L12_6 = Li6*(-L12_0*L6_0 - L12_1*L6_1 - L12_2*L6_2 - L12_3*L6_3 - L12_4*L6_4 - L12_5*L6_5 + P[81]);
-    const double L13_6 = Li6*(-L13_0*L6_0 - L13_1*L6_1 - L13_2*L6_2 - L13_3*L6_3 - L13_4*L6_4 - L13_5*L6_5 + P[82]);
-    const double L14_6 = Li6*(-L14_0*L6_0 - L14_1*L6_1 - L14_2*L6_2 - L14_3*L6_3 - L14_4*L6_4 - L14_5*L6_5 + P[83]);
-    const double Ld7 = -(L7_0*L7_0) - (L7_1*L7_1) - (L7_2*L7_2) - (L7_3*L7_3) - (L7_4*L7_4) - (L7_5*L7_5) - (L7_6*L7_6) + P[84];
-    if (!isfinite(Ld7)) { return NAV_UKF_NON_FINITE; }
-    if (!(Ld7 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L7_7 = sqrt(Ld7);
-    const double Li7 = (1.0/L7_7);
-    const double L8_7 = Li7*(-L7_0*L8_0 - L7_1*L8_1 - L7_2*L8_2 - L7_3*L8_3 - L7_4*L8_4 - L7_5*L8_5 - L7_6*L8_6 + P[85]);
-    const double L9_7 = Li7*(-L7_0*L9_0 - L7_1*L9_1 - L7_2*L9_2 - L7_3*L9_3 - L7_4*L9_4 - L7_5*L9_5 - L7_6*L9_6 + P[86]);
-    const double L10_7 = Li7*(-L10_0*L7_0 - L10_1*L7_1 - L10_2*L7_2 - L10_3*L7_3 - L10_4*L7_4 - L10_5*L7_5 - L10_6*L7_6 + P[87]);
-    const double L11_7 = Li7*(-L11_0*L7_0 - L11_1*L7_1 - L11_2*L7_2 - L11_3*L7_3 - L11_4*L7_4 - L11_5*L7_5 - L11_6*L7_6 + P[88]);
-    const double L12_7 = Li7*(-L12_0*L7_0 - L12_1*L7_1 - L12_2*L7_2 - L12_3*L7_3 - L12_4*L7_4 - L12_5*L7_5 - L12_6*L7_6 + P[89]);
-    const double L13_7 = Li7*(-L13_0*L7_0 - L13_1*L7_1 - L13_2*L7_2 - L13_3*L7_3 - L13_4*L7_4 - L13_5*L7_5 - L13_6*L7_6 + P[90]);
-    const double L14_7 = Li7*(-L14_0*L7_0 - L14_1*L7_1 - L14_2*L7_2 - L14_3*L7_3 - L14_4*L7_4 - L14_5*L7_5 - L14_6*L7_6 + P[91]);
-    const double Ld8 = -(L8_0*L8_0) - (L8_1*L8_1) - (L8_2*L8_2) - (L8_3*L8_3) - (L8_4*L8_4) - (L8_5*L8_5) - (L8_6*L8_6) - (L8_7*L8_7) + P[92];
-    if (!isfinite(Ld8)) { return NAV_UKF_NON_FINITE; }
-    if (!(Ld8 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L8_8 = sqrt(Ld8);
-    const double Li8 = (1.0/L8_8);
-    const double L9_8 = Li8*(-L8_0*L9_0 - L8_1*L9_1 - L8_2*L9_2 - L8_3*L9_3 - L8_4*L9_4 - L8_5*L9_5 - L8_6*L9_6 - L8_7*L9_7 + P[93]);
-    const double L10_8 = Li8*(-L10_0*L8_0 - L10_1*L8_1 - L10_2*L8_2 - L10_3*L8_3 - L10_4*L8_4 - L10_5*L8_5 - L10_6*L8_6 - L10_7*L8_7 + P[94]);
-    const double L11_8 = Li8*(-L11_0*L8_0 - L11_1*L8_1 - L11_2*L8_2 - L11_3*L8_3 - L11_4*L8_4 - L11_5*L8_5 - L11_6*L8_6 - L11_7*L8_7 + P[95]);
-    const double L12_8 = Li8*(-L12_0*L8_0 - L12_1*L8_1 - L12_2*L8_2 - L12_3*L8_3 - L12_4*L8_4 - L12_5*L8_5 - L12_6*L8_6 - L12_7*L8_7 + P[96]);
-    const double L13_8 = Li8*(-L13_0*L8_0 - L13_1*L8_1 - L13_2*L8_2 - L13_3*L8_3 - L13_4*L8_4 - L13_5*L8_5 - L13_6*L8_6 - L13_7*L8_7 + P[97]);
-    const double L14_8 = Li8*(-L14_0*L8_0 - L14_1*L8_1 - L14_2*L8_2 - L14_3*L8_3 - L14_4*L8_4 - L14_5*L8_5 - L14_6*L8_6 - L14_7*L8_7 + P[98]);
-    const double Ld9 = -(L9_0*L9_0) - (L9_1*L9_1) - (L9_2*L9_2) - (L9_3*L9_3) - (L9_4*L9_4) - (L9_5*L9_5) - (L9_6*L9_6) - (L9_7*L9_7) - (L9_8*L9_8) + P[99];
-    if (!isfinite(Ld9)) { return NAV_UKF_NON_FINITE; }
-    if (!(Ld9 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L9_9 = sqrt(Ld9);
-    const double Li9 = (1.0/L9_9);
-    const double L10_9 = Li9*(-L10_0*L9_0 - L10_1*L9_1 - L10_2*L9_2 - L10_3*L9_3 - L10_4*L9_4 - L10_5*L9_5 - L10_6*L9_6 - L10_7*L9_7 - L10_8*L9_8 + P[100]);
-    const double L11_9 = Li9*(-L11_0*L9_0 - L11_1*L9_1 - L11_2*L9_2 - L11_3*L9_3 - L11_4*L9_4 - L11_5*L9_5 - L11_6*L9_6 - L11_7*L9_7 - L11_8*L9_8 + P[101]);
-    const double L12_9 = Li9*(-L12_0*L9_0 - L12_1*L9_1 - L12_2*L9_2 - L12_3*L9_3 - L12_4*L9_4 - L12_5*L9_5 - L12_6*L9_6 - L12_7*L9_7 - L12_8*L9_8 + P[102]);
-    const double L13_9 = Li9*(-L13_0*L9_0 - L13_1*L9_1 - L13_2*L9_2 - L13_3*L9_3 - L13_4*L9_4 - L13_5*L9_5 - L13_6*L9_6 - L13_7*L9_7 - L13_8*L9_8 + P[103]);
-    const double L14_9 = Li9*(-L14_0*L9_0 - L14_1*L9_1 - L14_2*L9_2 - L14_3*L9_3 - L14_4*L9_4 - L14_5*L9_5 - L14_6*L9_6 - L14_7*L9_7 - L14_8*L9_8 + P[104]);
-    const double Ld10 = -(L10_0*L10_0) - (L10_1*L10_1) - (L10_2*L10_2) - (L10_3*L10_3) - (L10_4*L10_4) - (L10_5*L10_5) - (L10_6*L10_6) - (L10_7*L10_7) - (L10_8*L10_8) - (L10_9*L10_9) + P[105];
-    if (!isfinite(Ld10)) { return NAV_UKF_NON_FINITE; }
-    if (!(Ld10 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L10_10 = sqrt(Ld10);
-    const double Li10 = (1.0/L10_10);
-    const double L11_10 = Li10*(-L10_0*L11_0 - L10_1*L11_1 - L10_2*L11_2 - L10_3*L11_3 - L10_4*L11_4 - L10_5*L11_5 - L10_6*L11_6 - L10_7*L11_7 - L10_8*L11_8 - L10_9*L11_9 + P[106]);
-    const double L12_10 = Li10*(-L10_0*L12_0 - L10_1*L12_1 - L10_2*L12_2 - L10_3*L12_3 - L10_4*L12_4 - L10_5*L12_5 - L10_6*L12_6 - L10_7*L12_7 - L10_8*L12_8 - L10_9*L12_9 + P[107]);
-    const double L13_10 = Li10*(-L10_0*L13_0 - L10_1*L13_1 - L10_2*L13_2 - L10_3*L13_3 - L10_4*L13_4 - L10_5*L13_5 - L10_6*L13_6 - L10_7*L13_7 - L10_8*L13_8 - L10_9*L13_9 + P[108]);
-    const double L14_10 = Li10*(-L10_0*L14_0 - L10_1*L14_1 - L10_2*L14_2 - L10_3*L14_3 - L10_4*L14_4 - L10_5*L14_5 - L10_6*L14_6 - L10_7*L14_7 - L10_8*L14_8 - L10_9*L14_9 + P[109]);
-    const double Ld11 = -(L11_0*L11_0) - (L11_1*L11_1) - (L11_10*L11_10) - (L11_2*L11_2) - (L11_3*L11_3) - (L11_4*L11_4) - (L11_5*L11_5) - (L11_6*L11_6) - (L11_7*L11_7) - (L11_8*L11_8) - (L11_9*L11_9) + P[110];
-    if (!isfinite(Ld11)) { return NAV_UKF_NON_FINITE; }
-    if (!(Ld11 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L11_11 = sqrt(Ld11);
-    const double Li11 = (1.0/L11_11);
-    const double L12_11 = Li11*(-L11_0*L12_0 - L11_1*L12_1 - L11_10*L12_10 - L11_2*L12_2 - L11_3*L12_3 - L11_4*L12_4 - L11_5*L12_5 - L11_6*L12_6 - L11_7*L12_7 - L11_8*L12_8 - L11_9*L12_9 + P[111]);
-    const double L13_11 = Li11*(-L11_0*L13_0 - L11_1*L13_1 - L11_10*L13_10 - L11_2*L13_2 - L11_3*L13_3 - L11_4*L13_4 - L11_5*L13_5 - L11_6*L13_6 - L11_7*L13_7 - L11_8*L13_8 - L11_9*L13_9 + P[112]);
-    const double L14_11 = Li11*(-L11_0*L14_0 - L11_1*L14_1 - L11_10*L14_10 - L11_2*L14_2 - L11_3*L14_3 - L11_4*L14_4 - L11_5*L14_5 - L11_6*L14_6 - L11_7*L14_7 - L11_8*L14_8 - L11_9*L14_9 + P[113]);
-    const double Ld12 = -(L12_0*L12_0) - (L12_1*L12_1) - (L12_10*L12_10) - (L12_11*L12_11) - (L12_2*L12_2) - (L12_3*L12_3) - (L12_4*L12_4) - (L12_5*L12_5) - (L12_6*L12_6) - (L12_7*L12_7) - (L12_8*L12_8) - (L12_9*L12_9) + P[114];
-    if (!isfinite(Ld12)) { return NAV_UKF_NON_FINITE; }
-    if (!(Ld12 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L12_12 = sqrt(Ld12);
-    const double Li12 = (1.0/L12_12);
-    const double L13_12 = Li12*(-L12_0*L13_0 - L12_1*L13_1 - L12_10*L13_10 - L12_11*L13_11 - L12_2*L13_2 - L12_3*L13_3 - L12_4*L13_4 - L12_5*L13_5 - L12_6*L13_6 - L12_7*L13_7 - L12_8*L13_8 - L12_9*L13_9 + P[115]);
-    const double L14_12 = Li12*(-L12_0*L14_0 - L12_1*L14_1 - L12_10*L14_10 - L12_11*L14_11 - L12_2*L14_2 - L12_3*L14_3 - L12_4*L14_4 - L12_5*L14_5 - L12_6*L14_6 - L12_7*L14_7 - L12_8*L14_8 - L12_9*L14_9 + P[116]);
-    const double Ld13 = -(L13_0*L13_0) - (L13_1*L13_1) - (L13_10*L13_10) - (L13_11*L13_11) - (L13_12*L13_12) - (L13_2*L13_2) - (L13_3*L13_3) - (L13_4*L13_4) - (L13_5*L13_5) - (L13_6*L13_6) - (L13_7*L13_7) - (L13_8*L13_8) - (L13_9*L13_9) + P[117];
-    if (!isfinite(Ld13)) { return NAV_UKF_NON_FINITE; }
-    if (!(Ld13 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L13_13 = sqrt(Ld13);
-    const double Li13 = (1.0/L13_13);
-    const double L14_13 = Li13*(-L13_0*L14_0 - L13_1*L14_1 - L13_10*L14_10 - L13_11*L14_11 - L13_12*L14_12 - L13_2*L14_2 - L13_3*L14_3 - L13_4*L14_4 - L13_5*L14_5 - L13_6*L14_6 - L13_7*L14_7 - L13_8*L14_8 - L13_9*L14_9 + P[118]);
-    const double Ld14 = -(L14_0*L14_0) - (L14_1*L14_1) - (L14_10*L14_10) - (L14_11*L14_11) - (L14_12*L14_12) - (L14_13*L14_13) - (L14_2*L14_2) - (L14_3*L14_3) - (L14_4*L14_4) - (L14_5*L14_5) - (L14_6*L14_6) - (L14_7*L14_7) - (L14_8*L14_8) - (L14_9*L14_9) + P[119];
-    if (!isfinite(Ld14)) { return NAV_UKF_NON_FINITE; }
-    if (!(Ld14 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
+    {
+        const int st = nav_ukf_factor(P, Lf);
+        if (st != NAV_UKF_OK) {
+            return st;
+        }
+    }
     y[0] = x[2] + z[0];
     const double S0_0 = P[29] + 0.09;
     const double Sd0 = S0_0;
@@ -3173,6 +2795,7 @@ int nav_ukf_update_mag_heading_nis(nav_ukf_t *s, const double *z, double *nis_ou
 {
     double xs[15];
     double Ps[120];
+    double Lf[120];
     double y[1];
     double ea[25];
     double nis;
@@ -3182,193 +2805,21 @@ int nav_ukf_update_mag_heading_nis(nav_ukf_t *s, const double *z, double *nis_ou
         return NAV_UKF_BAD_INPUT;
     }
 
-    const double Ld0 = P[0];
-    if (!isfinite(Ld0)) { return NAV_UKF_NON_FINITE; }
-    if (!(Ld0 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L0_0 = sqrt(Ld0);
-    const double Li0 = (1.0/L0_0);
-    const double L1_0 = Li0*P[1];
-    const double L2_0 = Li0*P[2];
-    const double L3_0 = Li0*P[3];
-    const double L4_0 = Li0*P[4];
-    const double L5_0 = Li0*P[5];
-    const double L6_0 = Li0*P[6];
-    const double L7_0 = Li0*P[7];
-    const double L8_0 = Li0*P[8];
-    const double L9_0 = Li0*P[9];
-    const double L10_0 = Li0*P[10];
-    const double L11_0 = Li0*P[11];
-    const double L12_0 = Li0*P[12];
-    const double L13_0 = Li0*P[13];
-    const double L14_0 = Li0*P[14];
-    const double Ld1 = -(L1_0*L1_0) + P[15];
-    if (!isfinite(Ld1)) { return NAV_UKF_NON_FINITE; }
-    if (!(Ld1 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L1_1 = sqrt(Ld1);
-    const double Li1 = (1.0/L1_1);
-    const double L2_1 = Li1*(-L1_0*L2_0 + P[16]);
-    const double L3_1 = Li1*(-L1_0*L3_0 + P[17]);
-    const double L4_1 = Li1*(-L1_0*L4_0 + P[18]);
-    const double L5_1 = Li1*(-L1_0*L5_0 + P[19]);
-    const double L6_1 = Li1*(-L1_0*L6_0 + P[20]);
-    const double L7_1 = Li1*(-L1_0*L7_0 + P[21]);
-    const double L8_1 = Li1*(-L1_0*L8_0 + P[22]);
-    const double L9_1 = Li1*(-L1_0*L9_0 + P[23]);
-    const double L10_1 = Li1*(-L10_0*L1_0 + P[24]);
-    const double L11_1 = Li1*(-L11_0*L1_0 + P[25]);
-    const double L12_1 = Li1*(-L12_0*L1_0 + P[26]);
-    const double L13_1 = Li1*(-L13_0*L1_0 + P[27]);
-    const double L14_1 = Li1*(-L14_0*L1_0 + P[28]);
-    const double Ld2 = -(L2_0*L2_0) - (L2_1*L2_1) + P[29];
-    if (!isfinite(Ld2)) { return NAV_UKF_NON_FINITE; }
-    if (!(Ld2 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L2_2 = sqrt(Ld2);
-    const double Li2 = (1.0/L2_2);
-    const double L3_2 = Li2*(-L2_0*L3_0 - L2_1*L3_1 + P[30]);
-    const double L4_2 = Li2*(-L2_0*L4_0 - L2_1*L4_1 + P[31]);
-    const double L5_2 = Li2*(-L2_0*L5_0 - L2_1*L5_1 + P[32]);
-    const double L6_2 = Li2*(-L2_0*L6_0 - L2_1*L6_1 + P[33]);
-    const double L7_2 = Li2*(-L2_0*L7_0 - L2_1*L7_1 + P[34]);
-    const double L8_2 = Li2*(-L2_0*L8_0 - L2_1*L8_1 + P[35]);
-    const double L9_2 = Li2*(-L2_0*L9_0 - L2_1*L9_1 + P[36]);
-    const double L10_2 = Li2*(-L10_0*L2_0 - L10_1*L2_1 + P[37]);
-    const double L11_2 = Li2*(-L11_0*L2_0 - L11_1*L2_1 + P[38]);
-    const double L12_2 = Li2*(-L12_0*L2_0 - L12_1*L2_1 + P[39]);
-    const double L13_2 = Li2*(-L13_0*L2_0 - L13_1*L2_1 + P[40]);
-    const double L14_2 = Li2*(-L14_0*L2_0 - L14_1*L2_1 + P[41]);
-    const double Ld3 = -(L3_0*L3_0) - (L3_1*L3_1) - (L3_2*L3_2) + P[42];
-    if (!isfinite(Ld3)) { return NAV_UKF_NON_FINITE; }
-    if (!(Ld3 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L3_3 = sqrt(Ld3);
-    const double Li3 = (1.0/L3_3);
-    const double L4_3 = Li3*(-L3_0*L4_0 - L3_1*L4_1 - L3_2*L4_2 + P[43]);
-    const double L5_3 = Li3*(-L3_0*L5_0 - L3_1*L5_1 - L3_2*L5_2 + P[44]);
-    const double L6_3 = Li3*(-L3_0*L6_0 - L3_1*L6_1 - L3_2*L6_2 + P[45]);
-    const double L7_3 = Li3*(-L3_0*L7_0 - L3_1*L7_1 - L3_2*L7_2 + P[46]);
-    const double L8_3 = Li3*(-L3_0*L8_0 - L3_1*L8_1 - L3_2*L8_2 + P[47]);
-    const double L9_3 = Li3*(-L3_0*L9_0 - L3_1*L9_1 - L3_2*L9_2 + P[48]);
-    const double L10_3 = Li3*(-L10_0*L3_0 - L10_1*L3_1 - L10_2*L3_2 + P[49]);
-    const double L11_3 = Li3*(-L11_0*L3_0 - L11_1*L3_1 - L11_2*L3_2 + P[50]);
-    const double L12_3 = Li3*(-L12_0*L3_0 - L12_1*L3_1 - L12_2*L3_2 + P[51]);
-    const double L13_3 = Li3*(-L13_0*L3_0 - L13_1*L3_1 - L13_2*L3_2 + P[52]);
-    const double L14_3 = Li3*(-L14_0*L3_0 - L14_1*L3_1 - L14_2*L3_2 + P[53]);
-    const double Ld4 = -(L4_0*L4_0) - (L4_1*L4_1) - (L4_2*L4_2) - (L4_3*L4_3) + P[54];
-    if (!isfinite(Ld4)) { return NAV_UKF_NON_FINITE; }
-    if (!(Ld4 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L4_4 = sqrt(Ld4);
-    const double Li4 = (1.0/L4_4);
-    const double L5_4 = Li4*(-L4_0*L5_0 - L4_1*L5_1 - L4_2*L5_2 - L4_3*L5_3 + P[55]);
-    const double L6_4 = Li4*(-L4_0*L6_0 - L4_1*L6_1 - L4_2*L6_2 - L4_3*L6_3 + P[56]);
-    const double L7_4 = Li4*(-L4_0*L7_0 - L4_1*L7_1 - L4_2*L7_2 - L4_3*L7_3 + P[57]);
-    const double L8_4 = Li4*(-L4_0*L8_0 - L4_1*L8_1 - L4_2*L8_2 - L4_3*L8_3 + P[58]);
-    const double L9_4 = Li4*(-L4_0*L9_0 - L4_1*L9_1 - L4_2*L9_2 - L4_3*L9_3 + P[59]);
-    const double L10_4 = Li4*(-L10_0*L4_0 - L10_1*L4_1 - L10_2*L4_2 - L10_3*L4_3 + P[60]);
-    const double L11_4 = Li4*(-L11_0*L4_0 - L11_1*L4_1 - L11_2*L4_2 - L11_3*L4_3 + P[61]);
-    const double L12_4 = Li4*(-L12_0*L4_0 - L12_1*L4_1 - L12_2*L4_2 - L12_3*L4_3 + P[62]);
-    const double L13_4 = Li4*(-L13_0*L4_0 - L13_1*L4_1 - L13_2*L4_2 - L13_3*L4_3 + P[63]);
-    const double L14_4 = Li4*(-L14_0*L4_0 - L14_1*L4_1 - L14_2*L4_2 - L14_3*L4_3 + P[64]);
-    const double Ld5 = -(L5_0*L5_0) - (L5_1*L5_1) - (L5_2*L5_2) - (L5_3*L5_3) - (L5_4*L5_4) + P[65];
-    if (!isfinite(Ld5)) { return NAV_UKF_NON_FINITE; }
-    if (!(Ld5 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L5_5 = sqrt(Ld5);
-    const double Li5 = (1.0/L5_5);
-    const double L6_5 = Li5*(-L5_0*L6_0 - L5_1*L6_1 - L5_2*L6_2 - L5_3*L6_3 - L5_4*L6_4 + P[66]);
-    const double L7_5 = Li5*(-L5_0*L7_0 - L5_1*L7_1 - L5_2*L7_2 - L5_3*L7_3 - L5_4*L7_4 + P[67]);
-    const double L8_5 = Li5*(-L5_0*L8_0 - L5_1*L8_1 - L5_2*L8_2 - L5_3*L8_3 - L5_4*L8_4 + P[68]);
-    const double L9_5 = Li5*(-L5_0*L9_0 - L5_1*L9_1 - L5_2*L9_2 - L5_3*L9_3 - L5_4*L9_4 + P[69]);
-    const double L10_5 = Li5*(-L10_0*L5_0 - L10_1*L5_1 - L10_2*L5_2 - L10_3*L5_3 - L10_4*L5_4 + P[70]);
-    const double L11_5 = Li5*(-L11_0*L5_0 - L11_1*L5_1 - L11_2*L5_2 - L11_3*L5_3 - L11_4*L5_4 + P[71]);
-    const double L12_5 = Li5*(-L12_0*L5_0 - L12_1*L5_1 - L12_2*L5_2 - L12_3*L5_3 - L12_4*L5_4 + P[72]);
-    const double L13_5 = Li5*(-L13_0*L5_0 - L13_1*L5_1 - L13_2*L5_2 - L13_3*L5_3 - L13_4*L5_4 + P[73]);
-    const double L14_5 = Li5*(-L14_0*L5_0 - L14_1*L5_1 - L14_2*L5_2 - L14_3*L5_3 - L14_4*L5_4 + P[74]);
-    const double Ld6 = -(L6_0*L6_0) - (L6_1*L6_1) - (L6_2*L6_2) - (L6_3*L6_3) - (L6_4*L6_4) - (L6_5*L6_5) + P[75];
-    if (!isfinite(Ld6)) { return NAV_UKF_NON_FINITE; }
-    if (!(Ld6 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L6_6 = sqrt(Ld6);
-    const double Li6 = (1.0/L6_6);
-    const double L7_6 = Li6*(-L6_0*L7_0 - L6_1*L7_1 - L6_2*L7_2 - L6_3*L7_3 - L6_4*L7_4 - L6_5*L7_5 + P[76]);
-    const double L8_6 = Li6*(-L6_0*L8_0 - L6_1*L8_1 - L6_2*L8_2 - L6_3*L8_3 - L6_4*L8_4 - L6_5*L8_5 + P[77]);
-    const double L9_6 = Li6*(-L6_0*L9_0 - L6_1*L9_1 - L6_2*L9_2 - L6_3*L9_3 - L6_4*L9_4 - L6_5*L9_5 + P[78]);
-    const double L10_6 = Li6*(-L10_0*L6_0 - L10_1*L6_1 - L10_2*L6_2 - L10_3*L6_3 - L10_4*L6_4 - L10_5*L6_5 + P[79]);
-    const double L11_6 = Li6*(-L11_0*L6_0 - L11_1*L6_1 - L11_2*L6_2 - L11_3*L6_3 - L11_4*L6_4 - L11_5*L6_5 + P[80]);
-    const double L12_6 = Li6*(-L12_0*L6_0 - L12_1*L6_1 - L12_2*L6_2 - L12_3*L6_3 - L12_4*L6_4 - L12_5*L6_5 + P[81]);
-    const double L13_6 = Li6*(-L13_0*L6_0 - L13_1*L6_1 - L13_2*L6_2 - L13_3*L6_3 - L13_4*L6_4 - L13_5*L6_5 + P[82]);
-    const double L14_6 = Li6*(-L14_0*L6_0 - L14_1*L6_1 - L14_2*L6_2 - L14_3*L6_3 - L14_4*L6_4 - L14_5*L6_5 + P[83]);
-    const double Ld7 = -(L7_0*L7_0) - (L7_1*L7_1) - (L7_2*L7_2) - (L7_3*L7_3) - (L7_4*L7_4) - (L7_5*L7_5) - (L7_6*L7_6) + P[84];
-    if (!isfinite(Ld7)) { return NAV_UKF_NON_FINITE; }
-    if (!(Ld7 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L7_7 = sqrt(Ld7);
-    const double Li7 = (1.0/L7_7);
-    const double L8_7 = Li7*(-L7_0*L8_0 - L7_1*L8_1 - L7_2*L8_2 - L7_3*L8_3 - L7_4*L8_4 - L7_5*L8_5 - L7_6*L8_6 + P[85]);
-    const double L9_7 = Li7*(-L7_0*L9_0 - L7_1*L9_1 - L7_2*L9_2 - L7_3*L9_3 - L7_4*L9_4 - L7_5*L9_5 - L7_6*L9_6 + P[86]);
-    const double L10_7 = Li7*(-L10_0*L7_0 - L10_1*L7_1 - L10_2*L7_2 - L10_3*L7_3 - L10_4*L7_4 - L10_5*L7_5 - L10_6*L7_6 + P[87]);
-    const double L11_7 = Li7*(-L11_0*L7_0 - L11_1*L7_1 - L11_2*L7_2 - L11_3*L7_3 - L11_4*L7_4 - L11_5*L7_5 - L11_6*L7_6 + P[88]);
-    const double L12_7 = Li7*(-L12_0*L7_0 - L12_1*L7_1 - L12_2*L7_2 - L12_3*L7_3 - L12_4*L7_4 - L12_5*L7_5 - L12_6*L7_6 + P[89]);
-    const double L13_7 = Li7*(-L13_0*L7_0 - L13_1*L7_1 - L13_2*L7_2 - L13_3*L7_3 - L13_4*L7_4 - L13_5*L7_5 - L13_6*L7_6 + P[90]);
-    const double L14_7 = Li7*(-L14_0*L7_0 - L14_1*L7_1 - L14_2*L7_2 - L14_3*L7_3 - L14_4*L7_4 - L14_5*L7_5 - L14_6*L7_6 + P[91]);
-    const double Ld8 = -(L8_0*L8_0) - (L8_1*L8_1) - (L8_2*L8_2) - (L8_3*L8_3) - (L8_4*L8_4) - (L8_5*L8_5) - (L8_6*L8_6) - (L8_7*L8_7) + P[92];
-    if (!isfinite(Ld8)) { return NAV_UKF_NON_FINITE; }
-    if (!(Ld8 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L8_8 = sqrt(Ld8);
-    const double Li8 = (1.0/L8_8);
-    const double L9_8 = Li8*(-L8_0*L9_0 - L8_1*L9_1 - L8_2*L9_2 - L8_3*L9_3 - L8_4*L9_4 - L8_5*L9_5 - L8_6*L9_6 - L8_7*L9_7 + P[93]);
-    const double L10_8 = Li8*(-L10_0*L8_0 - L10_1*L8_1 - L10_2*L8_2 - L10_3*L8_3 - L10_4*L8_4 - L10_5*L8_5 - L10_6*L8_6 - L10_7*L8_7 + P[94]);
-    const double L11_8 = Li8*(-L11_0*L8_0 - L11_1*L8_1 - L11_2*L8_2 - L11_3*L8_3 - L11_4*L8_4 - L11_5*L8_5 - L11_6*L8_6 - L11_7*L8_7 + P[95]);
-    const double L12_8 = Li8*(-L12_0*L8_0 - L12_1*L8_1 - L12_2*L8_2 - L12_3*L8_3 - L12_4*L8_4 - L12_5*L8_5 - L12_6*L8_6 - L12_7*L8_7 + P[96]);
-    const double L13_8 = Li8*(-L13_0*L8_0 - L13_1*L8_1 - L13_2*L8_2 - L13_3*L8_3 - L13_4*L8_4 - L13_5*L8_5 - L13_6*L8_6 - L13_7*L8_7 + P[97]);
-    const double L14_8 = Li8*(-L14_0*L8_0 - L14_1*L8_1 - L14_2*L8_2 - L14_3*L8_3 - L14_4*L8_4 - L14_5*L8_5 - L14_6*L8_6 - L14_7*L8_7 + P[98]);
-    const double Ld9 = -(L9_0*L9_0) - (L9_1*L9_1) - (L9_2*L9_2) - (L9_3*L9_3) - (L9_4*L9_4) - (L9_5*L9_5) - (L9_6*L9_6) - (L9_7*L9_7) - (L9_8*L9_8) + P[99];
-    if (!isfinite(Ld9)) { return NAV_UKF_NON_FINITE; }
-    if (!(Ld9 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L9_9 = sqrt(Ld9);
-    const double Li9 = (1.0/L9_9);
-    const double L10_9 = Li9*(-L10_0*L9_0 - L10_1*L9_1 - L10_2*L9_2 - L10_3*L9_3 - L10_4*L9_4 - L10_5*L9_5 - L10_6*L9_6 - L10_7*L9_7 - L10_8*L9_8 + P[100]);
-    const double L11_9 = Li9*(-L11_0*L9_0 - L11_1*L9_1 - L11_2*L9_2 - L11_3*L9_3 - L11_4*L9_4 - L11_5*L9_5 - L11_6*L9_6 - L11_7*L9_7 - L11_8*L9_8 + P[101]);
-    const double L12_9 = Li9*(-L12_0*L9_0 - L12_1*L9_1 - L12_2*L9_2 - L12_3*L9_3 - L12_4*L9_4 - L12_5*L9_5 - L12_6*L9_6 - L12_7*L9_7 - L12_8*L9_8 + P[102]);
-    const double L13_9 = Li9*(-L13_0*L9_0 - L13_1*L9_1 - L13_2*L9_2 - L13_3*L9_3 - L13_4*L9_4 - L13_5*L9_5 - L13_6*L9_6 - L13_7*L9_7 - L13_8*L9_8 + P[103]);
-    const double L14_9 = Li9*(-L14_0*L9_0 - L14_1*L9_1 - L14_2*L9_2 - L14_3*L9_3 - L14_4*L9_4 - L14_5*L9_5 - L14_6*L9_6 - L14_7*L9_7 - L14_8*L9_8 + P[104]);
-    const double Ld10 = -(L10_0*L10_0) - (L10_1*L10_1) - (L10_2*L10_2) - (L10_3*L10_3) - (L10_4*L10_4) - (L10_5*L10_5) - (L10_6*L10_6) - (L10_7*L10_7) - (L10_8*L10_8) - (L10_9*L10_9) + P[105];
-    if (!isfinite(Ld10)) { return NAV_UKF_NON_FINITE; }
-    if (!(Ld10 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L10_10 = sqrt(Ld10);
-    const double Li10 = (1.0/L10_10);
-    const double L11_10 = Li10*(-L10_0*L11_0 - L10_1*L11_1 - L10_2*L11_2 - L10_3*L11_3 - L10_4*L11_4 - L10_5*L11_5 - L10_6*L11_6 - L10_7*L11_7 - L10_8*L11_8 - L10_9*L11_9 + P[106]);
-    const double L12_10 = Li10*(-L10_0*L12_0 - L10_1*L12_1 - L10_2*L12_2 - L10_3*L12_3 - L10_4*L12_4 - L10_5*L12_5 - L10_6*L12_6 - L10_7*L12_7 - L10_8*L12_8 - L10_9*L12_9 + P[107]);
-    const double L13_10 = Li10*(-L10_0*L13_0 - L10_1*L13_1 - L10_2*L13_2 - L10_3*L13_3 - L10_4*L13_4 - L10_5*L13_5 - L10_6*L13_6 - L10_7*L13_7 - L10_8*L13_8 - L10_9*L13_9 + P[108]);
-    const double L14_10 = Li10*(-L10_0*L14_0 - L10_1*L14_1 - L10_2*L14_2 - L10_3*L14_3 - L10_4*L14_4 - L10_5*L14_5 - L10_6*L14_6 - L10_7*L14_7 - L10_8*L14_8 - L10_9*L14_9 + P[109]);
-    const double Ld11 = -(L11_0*L11_0) - (L11_1*L11_1) - (L11_10*L11_10) - (L11_2*L11_2) - (L11_3*L11_3) - (L11_4*L11_4) - (L11_5*L11_5) - (L11_6*L11_6) - (L11_7*L11_7) - (L11_8*L11_8) - (L11_9*L11_9) + P[110];
-    if (!isfinite(Ld11)) { return NAV_UKF_NON_FINITE; }
-    if (!(Ld11 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L11_11 = sqrt(Ld11);
-    const double Li11 = (1.0/L11_11);
-    const double L12_11 = Li11*(-L11_0*L12_0 - L11_1*L12_1 - L11_10*L12_10 - L11_2*L12_2 - L11_3*L12_3 - L11_4*L12_4 - L11_5*L12_5 - L11_6*L12_6 - L11_7*L12_7 - L11_8*L12_8 - L11_9*L12_9 + P[111]);
-    const double L13_11 = Li11*(-L11_0*L13_0 - L11_1*L13_1 - L11_10*L13_10 - L11_2*L13_2 - L11_3*L13_3 - L11_4*L13_4 - L11_5*L13_5 - L11_6*L13_6 - L11_7*L13_7 - L11_8*L13_8 - L11_9*L13_9 + P[112]);
-    const double L14_11 = Li11*(-L11_0*L14_0 - L11_1*L14_1 - L11_10*L14_10 - L11_2*L14_2 - L11_3*L14_3 - L11_4*L14_4 - L11_5*L14_5 - L11_6*L14_6 - L11_7*L14_7 - L11_8*L14_8 - L11_9*L14_9 + P[113]);
-    const double Ld12 = -(L12_0*L12_0) - (L12_1*L12_1) - (L12_10*L12_10) - (L12_11*L12_11) - (L12_2*L12_2) - (L12_3*L12_3) - (L12_4*L12_4) - (L12_5*L12_5) - (L12_6*L12_6) - (L12_7*L12_7) - (L12_8*L12_8) - (L12_9*L12_9) + P[114];
-    if (!isfinite(Ld12)) { return NAV_UKF_NON_FINITE; }
-    if (!(Ld12 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L12_12 = sqrt(Ld12);
-    const double Li12 = (1.0/L12_12);
-    const double L13_12 = Li12*(-L12_0*L13_0 - L12_1*L13_1 - L12_10*L13_10 - L12_11*L13_11 - L12_2*L13_2 - L12_3*L13_3 - L12_4*L13_4 - L12_5*L13_5 - L12_6*L13_6 - L12_7*L13_7 - L12_8*L13_8 - L12_9*L13_9 + P[115]);
-    const double L14_12 = Li12*(-L12_0*L14_0 - L12_1*L14_1 - L12_10*L14_10 - L12_11*L14_11 - L12_2*L14_2 - L12_3*L14_3 - L12_4*L14_4 - L12_5*L14_5 - L12_6*L14_6 - L12_7*L14_7 - L12_8*L14_8 - L12_9*L14_9 + P[116]);
-    const double Ld13 = -(L13_0*L13_0) - (L13_1*L13_1) - (L13_10*L13_10) - (L13_11*L13_11) - (L13_12*L13_12) - (L13_2*L13_2) - (L13_3*L13_3) - (L13_4*L13_4) - (L13_5*L13_5) - (L13_6*L13_6) - (L13_7*L13_7) - (L13_8*L13_8) - (L13_9*L13_9) + P[117];
-    if (!isfinite(Ld13)) { return NAV_UKF_NON_FINITE; }
-    if (!(Ld13 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L13_13 = sqrt(Ld13);
-    const double Li13 = (1.0/L13_13);
-    const double L14_13 = Li13*(-L13_0*L14_0 - L13_1*L14_1 - L13_10*L14_10 - L13_11*L14_11 - L13_12*L14_12 - L13_2*L14_2 - L13_3*L14_3 - L13_4*L14_4 - L13_5*L14_5 - L13_6*L14_6 - L13_7*L14_7 - L13_8*L14_8 - L13_9*L14_9 + P[118]);
-    const double Ld14 = -(L14_0*L14_0) - (L14_1*L14_1) - (L14_10*L14_10) - (L14_11*L14_11) - (L14_12*L14_12) - (L14_13*L14_13) - (L14_2*L14_2) - (L14_3*L14_3) - (L14_4*L14_4) - (L14_5*L14_5) - (L14_6*L14_6) - (L14_7*L14_7) - (L14_8*L14_8) - (L14_9*L14_9) + P[119];
-    if (!isfinite(Ld14)) { return NAV_UKF_NON_FINITE; }
-    if (!(Ld14 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double hg8_0 = 3.872983346207417*L8_0;
-    const double hg8_1 = 3.872983346207417*L8_1;
-    const double hg8_2 = 3.872983346207417*L8_2;
-    const double hg8_3 = 3.872983346207417*L8_3;
-    const double hg8_4 = 3.872983346207417*L8_4;
-    const double hg8_5 = 3.872983346207417*L8_5;
-    const double hg8_6 = 3.872983346207417*L8_6;
-    const double hg8_7 = 3.872983346207417*L8_7;
-    const double hg8_8 = 3.872983346207417*L8_8;
+    {
+        const int st = nav_ukf_factor(P, Lf);
+        if (st != NAV_UKF_OK) {
+            return st;
+        }
+    }
+    const double hg8_0 = 3.872983346207417*Lf[8];
+    const double hg8_1 = 3.872983346207417*Lf[22];
+    const double hg8_2 = 3.872983346207417*Lf[35];
+    const double hg8_3 = 3.872983346207417*Lf[47];
+    const double hg8_4 = 3.872983346207417*Lf[58];
+    const double hg8_5 = 3.872983346207417*Lf[68];
+    const double hg8_6 = 3.872983346207417*Lf[77];
+    const double hg8_7 = 3.872983346207417*Lf[85];
+    const double hg8_8 = 3.872983346207417*Lf[92];
     const double hkk0 = 2.0*cos(hg8_0) + 2.0*cos(hg8_1) + 2.0*cos(hg8_2) + 2.0*cos(hg8_3) + 2.0*cos(hg8_4) + 2.0*cos(hg8_5) + 2.0*cos(hg8_6) + 2.0*cos(hg8_7) + 2.0*cos(hg8_8) + 12.0;
     const double hmu0 = atan2(hkk0*sin(x[8]), hkk0*cos(x[8]));
     ea[0] = nav_ukf_wrap(-hmu0 + x[8]);
@@ -3421,21 +2872,21 @@ int nav_ukf_update_mag_heading_nis(nav_ukf_t *s, const double *z, double *nis_ou
     ea[24] = nav_ukf_wrap(-hmu0 + x[8]);
     const double hv14_0 = 0.2581988897471611*ea[24];
     y[0] = nav_ukf_wrap(-hmu0 + z[0]);
-    const double C0_0 = L0_0*hu0_0;
-    const double C1_0 = L1_0*hu0_0 + L1_1*hu1_0;
-    const double C2_0 = L2_0*hu0_0 + L2_1*hu1_0 + L2_2*hu2_0;
-    const double C3_0 = L3_0*hu0_0 + L3_1*hu1_0 + L3_2*hu2_0 + L3_3*hu3_0;
-    const double C4_0 = L4_0*hu0_0 + L4_1*hu1_0 + L4_2*hu2_0 + L4_3*hu3_0 + L4_4*hu4_0;
-    const double C5_0 = L5_0*hu0_0 + L5_1*hu1_0 + L5_2*hu2_0 + L5_3*hu3_0 + L5_4*hu4_0 + L5_5*hu5_0;
-    const double C6_0 = L6_0*hu0_0 + L6_1*hu1_0 + L6_2*hu2_0 + L6_3*hu3_0 + L6_4*hu4_0 + L6_5*hu5_0 + L6_6*hu6_0;
-    const double C7_0 = L7_0*hu0_0 + L7_1*hu1_0 + L7_2*hu2_0 + L7_3*hu3_0 + L7_4*hu4_0 + L7_5*hu5_0 + L7_6*hu6_0 + L7_7*hu7_0;
-    const double C8_0 = L8_0*hu0_0 + L8_1*hu1_0 + L8_2*hu2_0 + L8_3*hu3_0 + L8_4*hu4_0 + L8_5*hu5_0 + L8_6*hu6_0 + L8_7*hu7_0 + L8_8*hu8_0;
-    const double C9_0 = L9_0*hu0_0 + L9_1*hu1_0 + L9_2*hu2_0 + L9_3*hu3_0 + L9_4*hu4_0 + L9_5*hu5_0 + L9_6*hu6_0 + L9_7*hu7_0 + L9_8*hu8_0;
-    const double C10_0 = L10_0*hu0_0 + L10_1*hu1_0 + L10_2*hu2_0 + L10_3*hu3_0 + L10_4*hu4_0 + L10_5*hu5_0 + L10_6*hu6_0 + L10_7*hu7_0 + L10_8*hu8_0;
-    const double C11_0 = L11_0*hu0_0 + L11_1*hu1_0 + L11_2*hu2_0 + L11_3*hu3_0 + L11_4*hu4_0 + L11_5*hu5_0 + L11_6*hu6_0 + L11_7*hu7_0 + L11_8*hu8_0;
-    const double C12_0 = L12_0*hu0_0 + L12_1*hu1_0 + L12_2*hu2_0 + L12_3*hu3_0 + L12_4*hu4_0 + L12_5*hu5_0 + L12_6*hu6_0 + L12_7*hu7_0 + L12_8*hu8_0;
-    const double C13_0 = L13_0*hu0_0 + L13_1*hu1_0 + L13_2*hu2_0 + L13_3*hu3_0 + L13_4*hu4_0 + L13_5*hu5_0 + L13_6*hu6_0 + L13_7*hu7_0 + L13_8*hu8_0;
-    const double C14_0 = L14_0*hu0_0 + L14_1*hu1_0 + L14_2*hu2_0 + L14_3*hu3_0 + L14_4*hu4_0 + L14_5*hu5_0 + L14_6*hu6_0 + L14_7*hu7_0 + L14_8*hu8_0;
+    const double C0_0 = Lf[0]*hu0_0;
+    const double C1_0 = Lf[15]*hu1_0 + Lf[1]*hu0_0;
+    const double C2_0 = Lf[16]*hu1_0 + Lf[29]*hu2_0 + Lf[2]*hu0_0;
+    const double C3_0 = Lf[17]*hu1_0 + Lf[30]*hu2_0 + Lf[3]*hu0_0 + Lf[42]*hu3_0;
+    const double C4_0 = Lf[18]*hu1_0 + Lf[31]*hu2_0 + Lf[43]*hu3_0 + Lf[4]*hu0_0 + Lf[54]*hu4_0;
+    const double C5_0 = Lf[19]*hu1_0 + Lf[32]*hu2_0 + Lf[44]*hu3_0 + Lf[55]*hu4_0 + Lf[5]*hu0_0 + Lf[65]*hu5_0;
+    const double C6_0 = Lf[20]*hu1_0 + Lf[33]*hu2_0 + Lf[45]*hu3_0 + Lf[56]*hu4_0 + Lf[66]*hu5_0 + Lf[6]*hu0_0 + Lf[75]*hu6_0;
+    const double C7_0 = Lf[21]*hu1_0 + Lf[34]*hu2_0 + Lf[46]*hu3_0 + Lf[57]*hu4_0 + Lf[67]*hu5_0 + Lf[76]*hu6_0 + Lf[7]*hu0_0 + Lf[84]*hu7_0;
+    const double C8_0 = Lf[22]*hu1_0 + Lf[35]*hu2_0 + Lf[47]*hu3_0 + Lf[58]*hu4_0 + Lf[68]*hu5_0 + Lf[77]*hu6_0 + Lf[85]*hu7_0 + Lf[8]*hu0_0 + Lf[92]*hu8_0;
+    const double C9_0 = Lf[23]*hu1_0 + Lf[36]*hu2_0 + Lf[48]*hu3_0 + Lf[59]*hu4_0 + Lf[69]*hu5_0 + Lf[78]*hu6_0 + Lf[86]*hu7_0 + Lf[93]*hu8_0 + Lf[9]*hu0_0;
+    const double C10_0 = Lf[10]*hu0_0 + Lf[24]*hu1_0 + Lf[37]*hu2_0 + Lf[49]*hu3_0 + Lf[60]*hu4_0 + Lf[70]*hu5_0 + Lf[79]*hu6_0 + Lf[87]*hu7_0 + Lf[94]*hu8_0;
+    const double C11_0 = Lf[11]*hu0_0 + Lf[25]*hu1_0 + Lf[38]*hu2_0 + Lf[50]*hu3_0 + Lf[61]*hu4_0 + Lf[71]*hu5_0 + Lf[80]*hu6_0 + Lf[88]*hu7_0 + Lf[95]*hu8_0;
+    const double C12_0 = Lf[12]*hu0_0 + Lf[26]*hu1_0 + Lf[39]*hu2_0 + Lf[51]*hu3_0 + Lf[62]*hu4_0 + Lf[72]*hu5_0 + Lf[81]*hu6_0 + Lf[89]*hu7_0 + Lf[96]*hu8_0;
+    const double C13_0 = Lf[13]*hu0_0 + Lf[27]*hu1_0 + Lf[40]*hu2_0 + Lf[52]*hu3_0 + Lf[63]*hu4_0 + Lf[73]*hu5_0 + Lf[82]*hu6_0 + Lf[90]*hu7_0 + Lf[97]*hu8_0;
+    const double C14_0 = Lf[14]*hu0_0 + Lf[28]*hu1_0 + Lf[41]*hu2_0 + Lf[53]*hu3_0 + Lf[64]*hu4_0 + Lf[74]*hu5_0 + Lf[83]*hu6_0 + Lf[91]*hu7_0 + Lf[98]*hu8_0;
     const double S0_0 = 2.0*(ea[0]*ea[0]) + (hu0_0*hu0_0) + (hu1_0*hu1_0) + (hu2_0*hu2_0) + (hu3_0*hu3_0) + (hu4_0*hu4_0) + (hu5_0*hu5_0) + (hu6_0*hu6_0) + (hu7_0*hu7_0) + (hu8_0*hu8_0) + (hv0_0*hv0_0) + (hv10_0*hv10_0) + (hv11_0*hv11_0) + (hv12_0*hv12_0) + (hv13_0*hv13_0) + (hv14_0*hv14_0) + (hv1_0*hv1_0) + (hv2_0*hv2_0) + (hv3_0*hv3_0) + (hv4_0*hv4_0) + (hv5_0*hv5_0) + (hv6_0*hv6_0) + (hv7_0*hv7_0) + (hv8_0*hv8_0) + (hv9_0*hv9_0) + 0.0012184696791468343;
     const double Sd0 = S0_0;
     if (!isfinite(Sd0)) { return NAV_UKF_NON_FINITE; }

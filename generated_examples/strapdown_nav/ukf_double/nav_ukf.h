@@ -58,7 +58,7 @@
  * Reentrant: distinct structs may be used from distinct threads.
  * Sigma points: 2n+1 = 31, never stored as arrays. Their offsets gamma*L, their images
  * and deviations are const locals of predict and update (straight-line code), so they live
- * on the stack of those calls: the named locals total 11576 bytes in predict and 3024 bytes
+ * on the stack of those calls: the named locals total 11344 bytes in predict and 2800 bytes
  * in the largest update. The real frame depends on the compiler (registers hold many, spills
  * add some): measure it on the target, e.g. gcc -fstack-usage.
  * Weights: Wm0 = 0.0, Wc0 = 2.0, Wm_i = Wc_i = 0.03333333333333333 (i = 1..30);

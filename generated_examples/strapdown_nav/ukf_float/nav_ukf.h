@@ -58,7 +58,7 @@
  * Reentrant: distinct structs may be used from distinct threads.
  * Sigma points: 2n+1 = 31, never stored as arrays. Their offsets gamma*L, their images
  * and deviations are const locals of predict and update (straight-line code), so they live
- * on the stack of those calls: the named locals total 5788 bytes in predict and 1512 bytes
+ * on the stack of those calls: the named locals total 5672 bytes in predict and 1400 bytes
  * in the largest update. The real frame depends on the compiler (registers hold many, spills
  * add some): measure it on the target, e.g. gcc -fstack-usage.
  * Weights: Wm0 = 0.0F, Wc0 = 2.0F, Wm_i = Wc_i = 0.03333333333333333F (i = 1..30);

@@ -75,6 +75,27 @@ static int valve_ukf_commit_pd(const double *P)
     return VALVE_UKF_OK;
 }
 
+/* Lf = the lower Cholesky factor of the packed covariance P (stored packed like P, entry (i, j)
+   of L at the packed index of (j, i)); OK, or the refusal code when P is not positive definite.
+   Unrolled; one copy serves predict and every update. */
+static int valve_ukf_factor(const double *P, double *Lf)
+{
+    const double Ld0 = P[0];
+    if (!isfinite(Ld0)) { return VALVE_UKF_NON_FINITE; }
+    if (!(Ld0 > 0.0)) { return VALVE_UKF_NOT_POSITIVE_DEFINITE; }
+    const double L0_0 = sqrt(Ld0);
+    const double Li0 = (1.0/L0_0);
+    const double L1_0 = Li0*P[1];
+    const double Ld1 = -(L1_0*L1_0) + P[2];
+    if (!isfinite(Ld1)) { return VALVE_UKF_NON_FINITE; }
+    if (!(Ld1 > 0.0)) { return VALVE_UKF_NOT_POSITIVE_DEFINITE; }
+    const double L1_1 = sqrt(Ld1);
+    Lf[0] = L0_0;
+    Lf[1] = L1_0;
+    Lf[2] = L1_1;
+    return VALVE_UKF_OK;
+}
+
 void valve_ukf_init(valve_ukf_t *s)
 {
     s->x[0] = 0.3;
@@ -122,6 +143,7 @@ int valve_ukf_predict(valve_ukf_t *s, const double *u, double dt)
 {
     double xn[2];
     double Pn[3];
+    double Lf[3];
     const double *x = s->x;
     const double *P = s->P;
     const valve_ukf_par_t *par = &s->par;
@@ -135,16 +157,13 @@ int valve_ukf_predict(valve_ukf_t *s, const double *u, double dt)
         return VALVE_UKF_BAD_DT;
     }
 
-    const double Ld0 = P[0];
-    if (!isfinite(Ld0)) { return VALVE_UKF_NON_FINITE; }
-    if (!(Ld0 > 0.0)) { return VALVE_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L0_0 = sqrt(Ld0);
-    const double Li0 = (1.0/L0_0);
-    const double L1_0 = Li0*P[1];
-    const double Ld1 = -(L1_0*L1_0) + P[2];
-    if (!isfinite(Ld1)) { return VALVE_UKF_NON_FINITE; }
-    if (!(Ld1 > 0.0)) { return VALVE_UKF_NOT_POSITIVE_DEFINITE; }
-    const double fg0_0 = 1.4142135623730951*L0_0;
+    {
+        const int st = valve_ukf_factor(P, Lf);
+        if (st != VALVE_UKF_OK) {
+            return st;
+        }
+    }
+    const double fg0_0 = 1.4142135623730951*Lf[0];
     const double ft0 = fmin(1.0, fmax(0.0, u[0]));
     const double ft1 = ft0 - x[0];
     const double ft2 = ft1 + par->band;
@@ -168,7 +187,7 @@ int valve_ukf_predict(valve_ukf_t *s, const double *u, double dt)
     const double fu0_0 = 0.35355339059327373*(-fm0_0 + fp0_0);
     const double fv0_0 = -fh0 + 0.35355339059327373*fq0_0;
     const double fv1_0 = -fh0 + 0.35355339059327373*fq1_0;
-    const double fT0_1 = L1_0*fA1_1;
+    const double fT0_1 = Lf[1]*fA1_1;
     xn[0] = fmu0;
     xn[1] = fc1;
     const double AP1_1 = P[2]*fA1_1;
@@ -195,6 +214,7 @@ int valve_ukf_update_flow_nis(valve_ukf_t *s, const double *z, double *nis_out)
 {
     double xs[2];
     double Ps[3];
+    double Lf[3];
     double y[1];
     double nis;
     const double *x = s->x;
@@ -204,19 +224,15 @@ int valve_ukf_update_flow_nis(valve_ukf_t *s, const double *z, double *nis_out)
         return VALVE_UKF_BAD_INPUT;
     }
 
-    const double Ld0 = P[0];
-    if (!isfinite(Ld0)) { return VALVE_UKF_NON_FINITE; }
-    if (!(Ld0 > 0.0)) { return VALVE_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L0_0 = sqrt(Ld0);
-    const double Li0 = (1.0/L0_0);
-    const double L1_0 = Li0*P[1];
-    const double Ld1 = -(L1_0*L1_0) + P[2];
-    if (!isfinite(Ld1)) { return VALVE_UKF_NON_FINITE; }
-    if (!(Ld1 > 0.0)) { return VALVE_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L1_1 = sqrt(Ld1);
-    const double hg0_0 = 1.4142135623730951*L0_0;
-    const double hg1_0 = 1.4142135623730951*L1_0;
-    const double hg1_1 = 1.4142135623730951*L1_1;
+    {
+        const int st = valve_ukf_factor(P, Lf);
+        if (st != VALVE_UKF_OK) {
+            return st;
+        }
+    }
+    const double hg0_0 = 1.4142135623730951*Lf[0];
+    const double hg1_0 = 1.4142135623730951*Lf[1];
+    const double hg1_1 = 1.4142135623730951*Lf[2];
     const double ht0 = par->kv*x[0];
     const double ht1 = -x[1];
     const double hc0 = ht0*sqrt(x[1]);
@@ -234,8 +250,8 @@ int valve_ukf_update_flow_nis(valve_ukf_t *s, const double *z, double *nis_out)
     const double hu1_0 = 0.35355339059327373*(-hm1_0 + hp1_0);
     const double hv1_0 = -hh0 + 0.35355339059327373*hq1_0;
     y[0] = -hmu0 + z[0];
-    const double C0_0 = L0_0*hu0_0;
-    const double C1_0 = L1_0*hu0_0 + L1_1*hu1_0;
+    const double C0_0 = Lf[0]*hu0_0;
+    const double C1_0 = Lf[1]*hu0_0 + Lf[2]*hu1_0;
     const double S0_0 = 2.0*(he0*he0) + (hu0_0*hu0_0) + (hu1_0*hu1_0) + (hv0_0*hv0_0) + (hv1_0*hv1_0) + 0.010000000000000002;
     const double Sd0 = S0_0;
     if (!isfinite(Sd0)) { return VALVE_UKF_NON_FINITE; }
@@ -281,6 +297,7 @@ int valve_ukf_update_stem_nis(valve_ukf_t *s, const double *z, double *nis_out)
 {
     double xs[2];
     double Ps[3];
+    double Lf[3];
     double y[1];
     double nis;
     const double *x = s->x;
@@ -289,15 +306,12 @@ int valve_ukf_update_stem_nis(valve_ukf_t *s, const double *z, double *nis_out)
         return VALVE_UKF_BAD_INPUT;
     }
 
-    const double Ld0 = P[0];
-    if (!isfinite(Ld0)) { return VALVE_UKF_NON_FINITE; }
-    if (!(Ld0 > 0.0)) { return VALVE_UKF_NOT_POSITIVE_DEFINITE; }
-    const double L0_0 = sqrt(Ld0);
-    const double Li0 = (1.0/L0_0);
-    const double L1_0 = Li0*P[1];
-    const double Ld1 = -(L1_0*L1_0) + P[2];
-    if (!isfinite(Ld1)) { return VALVE_UKF_NON_FINITE; }
-    if (!(Ld1 > 0.0)) { return VALVE_UKF_NOT_POSITIVE_DEFINITE; }
+    {
+        const int st = valve_ukf_factor(P, Lf);
+        if (st != VALVE_UKF_OK) {
+            return st;
+        }
+    }
     y[0] = -x[0] + z[0];
     const double S0_0 = P[0] + 0.0004;
     const double Sd0 = S0_0;

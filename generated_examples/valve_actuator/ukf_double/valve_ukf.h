@@ -38,7 +38,7 @@
  * Reentrant: distinct structs may be used from distinct threads.
  * Sigma points: 2n+1 = 5, never stored as arrays. Their offsets gamma*L, their images
  * and deviations are const locals of predict and update (straight-line code), so they live
- * on the stack of those calls: the named locals total 288 bytes in predict and 312 bytes
+ * on the stack of those calls: the named locals total 272 bytes in predict and 288 bytes
  * in the largest update. The real frame depends on the compiler (registers hold many, spills
  * add some): measure it on the target, e.g. gcc -fstack-usage.
  * Weights: Wm0 = 0.0, Wc0 = 2.0, Wm_i = Wc_i = 0.25 (i = 1..4);

@@ -75,6 +75,27 @@ static int valve_ukf_commit_pd(const float *P)
     return VALVE_UKF_OK;
 }
 
+/* Lf = the lower Cholesky factor of the packed covariance P (stored packed like P, entry (i, j)
+   of L at the packed index of (j, i)); OK, or the refusal code when P is not positive definite.
+   Unrolled; one copy serves predict and every update. */
+static int valve_ukf_factor(const float *P, float *Lf)
+{
+    const float Ld0 = P[0];
+    if (!isfinite(Ld0)) { return VALVE_UKF_NON_FINITE; }
+    if (!(Ld0 > 0.0F)) { return VALVE_UKF_NOT_POSITIVE_DEFINITE; }
+    const float L0_0 = sqrtf(Ld0);
+    const float Li0 = (1.0F/L0_0);
+    const float L1_0 = Li0*P[1];
+    const float Ld1 = -(L1_0*L1_0) + P[2];
+    if (!isfinite(Ld1)) { return VALVE_UKF_NON_FINITE; }
+    if (!(Ld1 > 0.0F)) { return VALVE_UKF_NOT_POSITIVE_DEFINITE; }
+    const float L1_1 = sqrtf(Ld1);
+    Lf[0] = L0_0;
+    Lf[1] = L1_0;
+    Lf[2] = L1_1;
+    return VALVE_UKF_OK;
+}
+
 void valve_ukf_init(valve_ukf_t *s)
 {
     s->x[0] = 0.3F;
@@ -122,6 +143,7 @@ int valve_ukf_predict(valve_ukf_t *s, const float *u, float dt)
 {
     float xn[2];
     float Pn[3];
+    float Lf[3];
     const float *x = s->x;
     const float *P = s->P;
     const valve_ukf_par_t *par = &s->par;
@@ -135,16 +157,13 @@ int valve_ukf_predict(valve_ukf_t *s, const float *u, float dt)
         return VALVE_UKF_BAD_DT;
     }
 
-    const float Ld0 = P[0];
-    if (!isfinite(Ld0)) { return VALVE_UKF_NON_FINITE; }
-    if (!(Ld0 > 0.0F)) { return VALVE_UKF_NOT_POSITIVE_DEFINITE; }
-    const float L0_0 = sqrtf(Ld0);
-    const float Li0 = (1.0F/L0_0);
-    const float L1_0 = Li0*P[1];
-    const float Ld1 = -(L1_0*L1_0) + P[2];
-    if (!isfinite(Ld1)) { return VALVE_UKF_NON_FINITE; }
-    if (!(Ld1 > 0.0F)) { return VALVE_UKF_NOT_POSITIVE_DEFINITE; }
-    const float fg0_0 = 1.4142135623730951F*L0_0;
+    {
+        const int st = valve_ukf_factor(P, Lf);
+        if (st != VALVE_UKF_OK) {
+            return st;
+        }
+    }
+    const float fg0_0 = 1.4142135623730951F*Lf[0];
     const float ft0 = fminf(1.0F, fmaxf(0.0F, u[0]));
     const float ft1 = ft0 - x[0];
     const float ft2 = ft1 + par->band;
@@ -168,7 +187,7 @@ int valve_ukf_predict(valve_ukf_t *s, const float *u, float dt)
     const float fu0_0 = 0.35355339059327373F*(-fm0_0 + fp0_0);
     const float fv0_0 = -fh0 + 0.35355339059327373F*fq0_0;
     const float fv1_0 = -fh0 + 0.35355339059327373F*fq1_0;
-    const float fT0_1 = L1_0*fA1_1;
+    const float fT0_1 = Lf[1]*fA1_1;
     xn[0] = fmu0;
     xn[1] = fc1;
     const float AP1_1 = P[2]*fA1_1;
@@ -195,6 +214,7 @@ int valve_ukf_update_flow_nis(valve_ukf_t *s, const float *z, float *nis_out)
 {
     float xs[2];
     float Ps[3];
+    float Lf[3];
     float y[1];
     float nis;
     const float *x = s->x;
@@ -204,19 +224,15 @@ int valve_ukf_update_flow_nis(valve_ukf_t *s, const float *z, float *nis_out)
         return VALVE_UKF_BAD_INPUT;
     }
 
-    const float Ld0 = P[0];
-    if (!isfinite(Ld0)) { return VALVE_UKF_NON_FINITE; }
-    if (!(Ld0 > 0.0F)) { return VALVE_UKF_NOT_POSITIVE_DEFINITE; }
-    const float L0_0 = sqrtf(Ld0);
-    const float Li0 = (1.0F/L0_0);
-    const float L1_0 = Li0*P[1];
-    const float Ld1 = -(L1_0*L1_0) + P[2];
-    if (!isfinite(Ld1)) { return VALVE_UKF_NON_FINITE; }
-    if (!(Ld1 > 0.0F)) { return VALVE_UKF_NOT_POSITIVE_DEFINITE; }
-    const float L1_1 = sqrtf(Ld1);
-    const float hg0_0 = 1.4142135623730951F*L0_0;
-    const float hg1_0 = 1.4142135623730951F*L1_0;
-    const float hg1_1 = 1.4142135623730951F*L1_1;
+    {
+        const int st = valve_ukf_factor(P, Lf);
+        if (st != VALVE_UKF_OK) {
+            return st;
+        }
+    }
+    const float hg0_0 = 1.4142135623730951F*Lf[0];
+    const float hg1_0 = 1.4142135623730951F*Lf[1];
+    const float hg1_1 = 1.4142135623730951F*Lf[2];
     const float ht0 = par->kv*x[0];
     const float ht1 = -x[1];
     const float hc0 = ht0*sqrtf(x[1]);
@@ -234,8 +250,8 @@ int valve_ukf_update_flow_nis(valve_ukf_t *s, const float *z, float *nis_out)
     const float hu1_0 = 0.35355339059327373F*(-hm1_0 + hp1_0);
     const float hv1_0 = -hh0 + 0.35355339059327373F*hq1_0;
     y[0] = -hmu0 + z[0];
-    const float C0_0 = L0_0*hu0_0;
-    const float C1_0 = L1_0*hu0_0 + L1_1*hu1_0;
+    const float C0_0 = Lf[0]*hu0_0;
+    const float C1_0 = Lf[1]*hu0_0 + Lf[2]*hu1_0;
     const float S0_0 = 2.0F*(he0*he0) + (hu0_0*hu0_0) + (hu1_0*hu1_0) + (hv0_0*hv0_0) + (hv1_0*hv1_0) + 0.010000000000000002F;
     const float Sd0 = S0_0;
     if (!isfinite(Sd0)) { return VALVE_UKF_NON_FINITE; }
@@ -281,6 +297,7 @@ int valve_ukf_update_stem_nis(valve_ukf_t *s, const float *z, float *nis_out)
 {
     float xs[2];
     float Ps[3];
+    float Lf[3];
     float y[1];
     float nis;
     const float *x = s->x;
@@ -289,15 +306,12 @@ int valve_ukf_update_stem_nis(valve_ukf_t *s, const float *z, float *nis_out)
         return VALVE_UKF_BAD_INPUT;
     }
 
-    const float Ld0 = P[0];
-    if (!isfinite(Ld0)) { return VALVE_UKF_NON_FINITE; }
-    if (!(Ld0 > 0.0F)) { return VALVE_UKF_NOT_POSITIVE_DEFINITE; }
-    const float L0_0 = sqrtf(Ld0);
-    const float Li0 = (1.0F/L0_0);
-    const float L1_0 = Li0*P[1];
-    const float Ld1 = -(L1_0*L1_0) + P[2];
-    if (!isfinite(Ld1)) { return VALVE_UKF_NON_FINITE; }
-    if (!(Ld1 > 0.0F)) { return VALVE_UKF_NOT_POSITIVE_DEFINITE; }
+    {
+        const int st = valve_ukf_factor(P, Lf);
+        if (st != VALVE_UKF_OK) {
+            return st;
+        }
+    }
     y[0] = -x[0] + z[0];
     const float S0_0 = P[0] + 0.0004F;
     const float Sd0 = S0_0;
