@@ -39,6 +39,7 @@ explicit gain (for a scalar sensor, ``K = C / S`` directly).
 from __future__ import annotations
 
 import math
+import numbers
 from dataclasses import dataclass, field
 from typing import Dict, List, Optional, Sequence, Set, Tuple
 
@@ -112,20 +113,14 @@ def check_options(n: int, options: Dict[str, object]) -> UkfWeights:
         v = options.get(k, default)
         if v is None:
             v = default
-        if isinstance(v, bool) or not isinstance(v, (int, float)):
-            try:
-                import numpy as np
-
-                if not isinstance(v, (np.integer, np.floating)):
-                    raise TypeError
-            except TypeError:
-                raise ModelError(f"UKF {k} must be a number, got {v!r}") from None
-        fv = float(v)  # type: ignore[arg-type]
+        if isinstance(v, bool) or not isinstance(v, numbers.Real):  # numpy scalars register as Real
+            raise ModelError(f"UKF {k} must be a number, got {v!r}")
+        fv = float(v)
         if not math.isfinite(fv):
             raise ModelError(f"UKF {k} must be a finite number, got {v!r}")
         vals[k] = fv
     if not vals["alpha"] > 0.0:
-        raise ModelError(f"UKF alpha must be > 0, got {vals['alpha']}; typical values are 1e-3 to 1")
+        raise ModelError(f"UKF alpha must be > 0, got {vals['alpha']}; the default is 1")
     wts = UkfWeights(n, vals["alpha"], vals["beta"], vals["kappa"])
     if not wts.c > 0.0 or not math.isfinite(wts.w):
         raise ModelError(f"UKF n + lambda = alpha^2 (n + kappa) must be > 0 (n = {n}, got {wts.c:g}); "

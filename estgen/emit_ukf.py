@@ -28,7 +28,9 @@ def generate_ukf(spec: ModelSpec, precision: str = "float", **options: Any) -> G
     """Generate the UKF's header and source for ``spec``.
 
     ``options``: alpha (> 0), beta, kappa with alpha^2 (n + kappa) > 0. The op counts in
-    ``Generated.ops`` are of the straight-line code as printed (keys "predict", "update_<sensor>").
+    ``Generated.ops`` are of the straight-line code as printed (keys "predict", "update_<sensor>"),
+    the shared factorization and commit check included in each. The returned object also carries
+    ``sigma_stack`` = {"predict": bytes, "update": bytes}, the named locals the header states.
     """
     check_filter_support(spec, "ukf")
     wts = check_options(spec.n, dict(options))
