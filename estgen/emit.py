@@ -55,7 +55,9 @@ class CPrinter(C99CodePrinter):
     def __init__(self, precision: str = "double") -> None:
         self.precision = precision
         ftype = float32 if precision == "float" else float64
-        super().__init__(settings={"type_aliases": {real: ftype}})
+        # order="none": terms in sympy's own canonical argument order (deterministic, and far
+        # cheaper than sorting every sum for printing)
+        super().__init__(settings={"type_aliases": {real: ftype}, "order": "none"})
 
     def _lit(self, v: float) -> str:
         return c_literal(v, self.precision)
@@ -123,8 +125,19 @@ class OpCount:
 
 
 def count_ops(expr: sp.Expr) -> OpCount:
-    """Count operations of ``expr`` the way :class:`CPrinter` prints it."""
+    """Count operations of ``expr`` the way :class:`CPrinter` prints it: a numeric coefficient
+    is a multiplication by a literal, negative powers in a product form one division."""
     oc = OpCount()
+
+    def power(base: sp.Basic, k: sp.Rational) -> None:
+        # cost of base**k for k > 0, as printed
+        if k.is_Integer and 1 <= int(k) <= 4:
+            oc.mul += int(k) - 1
+        elif k == sp.S.Half:
+            oc.sqrt += 1
+        else:
+            oc.transcendental += 1
+        walk(base)
 
     def walk(e: sp.Basic) -> None:
         if e.is_Atom:
@@ -132,28 +145,27 @@ def count_ops(expr: sp.Expr) -> OpCount:
         if e.is_Add:
             oc.add += len(e.args) - 1
         elif e.is_Mul:
-            num, den = sp.fraction(e)
-            nf = [a for a in sp.Mul.make_args(num) if a not in (1, -1)]
-            df = [a for a in sp.Mul.make_args(den) if a != 1]
-            oc.mul += max(0, len(nf) - 1) + max(0, len(df) - 1)
-            if df:
+            num = 0
+            den = 0
+            for a in e.args:
+                if a.is_Pow and a.exp.is_Rational and a.exp.is_negative:
+                    den += 1
+                    power(a.base, -a.exp)
+                else:
+                    if a not in (sp.S.One, sp.S.NegativeOne):
+                        num += 1
+                    walk(a)
+            oc.mul += max(0, num - 1) + max(0, den - 1)
+            if den:
                 oc.div += 1
-            for a in nf + df:
-                walk(a)
             return
         elif e.is_Pow:
             b, x = e.args
-            if x.is_Integer and 1 <= abs(int(x)) <= 4:
-                oc.mul += abs(int(x)) - 1
-                if int(x) < 0:
-                    oc.div += 1
-            elif abs(x) == sp.S.Half:
-                oc.sqrt += 1
-                if x < 0:
-                    oc.div += 1
+            if x.is_Rational and x.is_negative:
+                oc.div += 1
+                power(b, -x)
             else:
-                oc.transcendental += 1
-            walk(b)
+                power(b, x)
             return
         elif isinstance(e, sp.Function):
             oc.transcendental += 1
@@ -329,25 +341,47 @@ def _render(ctx: Dict[str, Any], source_template: str) -> Generated:
                      lines, header, source)
 
 
+@lru_cache(maxsize=64)
+def pivot_check(n: int, P: str) -> Tuple[Stmt, ...]:
+    """The unrolled Cholesky pivot check every commit goes through (shared by both filters;
+    cached: it depends on the size alone)."""
+    from .derive_ukf import commit_check
+
+    return tuple(commit_check(n, P))
+
+
+_DERIVED: List[Tuple[ModelSpec, str, Any]] = []
+
+
+def _derived(spec: ModelSpec, key: str, derive: Any) -> Any:
+    """Derivation does not depend on the precision: derive once per spec and filter, print
+    twice. Keyed by identity (a spec is immutable); the last few are kept."""
+    for sp_, k, code in _DERIVED:
+        if sp_ is spec and k == key:
+            return code
+    code = derive(spec)
+    _DERIVED.append((spec, key, code))
+    del _DERIVED[:-8]
+    return code
+
+
 def generate_ekf(spec: ModelSpec, precision: str = "float") -> Generated:
     """Generate the EKF's header and source for ``spec``."""
-    from .derive_ukf import commit_check  # the unrolled pivot check both filters commit through
-
     check_filter_support(spec, "ekf")
     ctx = _common_context(spec, "ekf", precision)
     em: Emitter = ctx["emitter"]
-    code = derive_ekf(spec)
+    code = _derived(spec, "ekf", derive_ekf)
     ops: Dict[str, Dict[str, int]] = {}
     pc = OpCount()
     ctx["predict"] = {"lines": em.lines(code.predict.stmts, pc), "uses_par": code.predict.uses_par,
-                      "uses_u": code.predict.uses_u, "commit": em.lines(commit_check(spec.n, "Pn"), pc)}
+                      "uses_u": code.predict.uses_u, "commit": em.lines(pivot_check(spec.n, "Pn"), pc)}
     ops["predict"] = pc.as_dict()
     ups = []
     for uc, sctx in zip(code.updates, ctx["sensors"]):
         oc = OpCount()
         body = em.lines(uc.stmts, oc)
         wraps = em.lines([Stmt("wrap", f"xs[{i}]", sp.Symbol(f"xs[{i}]")) for i in ctx["angle_states"]], oc)
-        commit = em.lines(commit_check(spec.n, "Ps"), oc)
+        commit = em.lines(pivot_check(spec.n, "Ps"), oc)
         ops[f"update_{uc.sensor.name}"] = oc.as_dict()
         ups.append({**sctx, "lines": body + wraps, "commit": commit, "uses_par": uc.uses_par, "w_size": uc.w_size,
                     "k_size": uc.k_size, "sequential": uc.sequential})

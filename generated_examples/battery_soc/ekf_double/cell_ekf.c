@@ -115,8 +115,8 @@ int cell_ekf_predict(cell_ekf_t *s, const double *u, double dt)
     }
 
     const double t0 = exp(-dt/(par->c1*par->r1));
-    xn[0] = -0.0002777777777777778*dt*u[0]/par->capacity + x[0];
-    xn[1] = par->r1*u[0]*(1.0 - t0) + t0*x[1];
+    xn[0] = x[0] - 0.0002777777777777778*dt*u[0]/par->capacity;
+    xn[1] = t0*x[1] + par->r1*u[0]*(1.0 - t0);
     xn[2] = par->r0*u[0];
     const double Q0_0 = 4.0000000000000007e-10*dt;
     const double Q1_1 = 2.5e-07*dt;
@@ -124,7 +124,7 @@ int cell_ekf_predict(cell_ekf_t *s, const double *u, double dt)
     Pn[0] = P[0] + Q0_0;
     Pn[1] = P[1]*t0;
     Pn[2] = 0.0;
-    Pn[3] = A1_1*t0 + Q1_1;
+    Pn[3] = Q1_1 + A1_1*t0;
     Pn[4] = 0.0;
     Pn[5] = 1.0e-06;
     if (!cell_ekf_finite(xn, 3u) || !cell_ekf_finite(Pn, 6u)) {
@@ -139,13 +139,13 @@ int cell_ekf_predict(cell_ekf_t *s, const double *u, double dt)
     const double Lci0 = (1.0/Lc0_0);
     const double Lc1_0 = Lci0*Pn[1];
     const double Lc2_0 = Lci0*Pn[2];
-    const double Lcd1 = -(Lc1_0*Lc1_0) + Pn[3];
+    const double Lcd1 = Pn[3] - (Lc1_0*Lc1_0);
     if (!isfinite(Lcd1)) { return CELL_EKF_NON_FINITE; }
     if (!(Lcd1 > 0.0)) { return CELL_EKF_NOT_POSITIVE_DEFINITE; }
     const double Lc1_1 = sqrt(Lcd1);
     const double Lci1 = (1.0/Lc1_1);
-    const double Lc2_1 = Lci1*(-Lc1_0*Lc2_0 + Pn[4]);
-    const double Lcd2 = -(Lc2_0*Lc2_0) - (Lc2_1*Lc2_1) + Pn[5];
+    const double Lc2_1 = Lci1*(Pn[4] - Lc1_0*Lc2_0);
+    const double Lcd2 = Pn[5] - (Lc2_0*Lc2_0) - (Lc2_1*Lc2_1);
     if (!isfinite(Lcd2)) { return CELL_EKF_NON_FINITE; }
     if (!(Lcd2 > 0.0)) { return CELL_EKF_NOT_POSITIVE_DEFINITE; }
 
@@ -172,34 +172,34 @@ int cell_ekf_update_voltage_nis(cell_ekf_t *s, const double *z, double *nis_out)
     memcpy(xs, s->x, sizeof xs);
     memcpy(Ps, s->P, sizeof Ps);
     const double t0 = exp(-15.0*x[0]);
-    const double t1 = exp(12.0*x[0] - 12.0);
-    const double hz0 = -0.4*t0 + 0.08*t1 + 0.72*x[0] - x[1] - x[2] + 3.4;
-    const double H0_0 = 6.0*t0 + 0.96*t1 + 0.72;
-    y[0] = -hz0 + z[0];
-    W[0] = H0_0*Ps[0] - Ps[1] - Ps[2];
-    W[1] = H0_0*Ps[1] - Ps[3] - Ps[4];
-    W[2] = H0_0*Ps[2] - Ps[4] - Ps[5];
-    const double s0 = H0_0*W[0] - W[1] - W[2] + 2.5e-05;
+    const double t1 = exp(-12.0 + 12.0*x[0]);
+    const double hz0 = 3.4 - x[1] - x[2] + 0.72*x[0] + 0.08*t1 - 0.4*t0;
+    const double H0_0 = 0.72 + 6.0*t0 + 0.96*t1;
+    y[0] = z[0] - hz0;
+    W[0] = -Ps[1] - Ps[2] + H0_0*Ps[0];
+    W[1] = -Ps[3] - Ps[4] + H0_0*Ps[1];
+    W[2] = -Ps[4] - Ps[5] + H0_0*Ps[2];
+    const double s0 = 2.5e-05 - W[1] - W[2] + H0_0*W[0];
     if (!isfinite(s0)) { return CELL_EKF_NON_FINITE; }
     if (!(s0 > 0.0)) { return CELL_EKF_NOT_POSITIVE_DEFINITE; }
     const double is0 = (1.0/s0);
     const double r0 = y[0];
-    nis = is0*(r0*r0) + nis;
+    nis = nis + is0*(r0*r0);
     K[0] = W[0]*is0;
     K[1] = W[1]*is0;
     K[2] = W[2]*is0;
-    V[0] = K[0]*s0 - W[0];
-    V[1] = K[1]*s0 - W[1];
-    V[2] = K[2]*s0 - W[2];
-    xs[0] = K[0]*r0 + xs[0];
-    xs[1] = K[1]*r0 + xs[1];
-    xs[2] = K[2]*r0 + xs[2];
-    Ps[0] = K[0]*V[0] - K[0]*W[0] + Ps[0];
-    Ps[1] = K[0]*V[1] - K[1]*W[0] + Ps[1];
-    Ps[2] = K[0]*V[2] - K[2]*W[0] + Ps[2];
-    Ps[3] = K[1]*V[1] - K[1]*W[1] + Ps[3];
-    Ps[4] = K[1]*V[2] - K[2]*W[1] + Ps[4];
-    Ps[5] = K[2]*V[2] - K[2]*W[2] + Ps[5];
+    V[0] = -W[0] + K[0]*s0;
+    V[1] = -W[1] + K[1]*s0;
+    V[2] = -W[2] + K[2]*s0;
+    xs[0] = xs[0] + K[0]*r0;
+    xs[1] = xs[1] + K[1]*r0;
+    xs[2] = xs[2] + K[2]*r0;
+    Ps[0] = Ps[0] + K[0]*V[0] - K[0]*W[0];
+    Ps[1] = Ps[1] + K[0]*V[1] - K[1]*W[0];
+    Ps[2] = Ps[2] + K[0]*V[2] - K[2]*W[0];
+    Ps[3] = Ps[3] + K[1]*V[1] - K[1]*W[1];
+    Ps[4] = Ps[4] + K[1]*V[2] - K[2]*W[1];
+    Ps[5] = Ps[5] + K[2]*V[2] - K[2]*W[2];
     if (!cell_ekf_finite(xs, 3u) || !cell_ekf_finite(Ps, 6u)) {
         return CELL_EKF_NON_FINITE;
     }
@@ -212,13 +212,13 @@ int cell_ekf_update_voltage_nis(cell_ekf_t *s, const double *z, double *nis_out)
     const double Lci0 = (1.0/Lc0_0);
     const double Lc1_0 = Lci0*Ps[1];
     const double Lc2_0 = Lci0*Ps[2];
-    const double Lcd1 = -(Lc1_0*Lc1_0) + Ps[3];
+    const double Lcd1 = Ps[3] - (Lc1_0*Lc1_0);
     if (!isfinite(Lcd1)) { return CELL_EKF_NON_FINITE; }
     if (!(Lcd1 > 0.0)) { return CELL_EKF_NOT_POSITIVE_DEFINITE; }
     const double Lc1_1 = sqrt(Lcd1);
     const double Lci1 = (1.0/Lc1_1);
-    const double Lc2_1 = Lci1*(-Lc1_0*Lc2_0 + Ps[4]);
-    const double Lcd2 = -(Lc2_0*Lc2_0) - (Lc2_1*Lc2_1) + Ps[5];
+    const double Lc2_1 = Lci1*(Ps[4] - Lc1_0*Lc2_0);
+    const double Lcd2 = Ps[5] - (Lc2_0*Lc2_0) - (Lc2_1*Lc2_1);
     if (!isfinite(Lcd2)) { return CELL_EKF_NON_FINITE; }
     if (!(Lcd2 > 0.0)) { return CELL_EKF_NOT_POSITIVE_DEFINITE; }
 

@@ -115,8 +115,8 @@ int cell_ekf_predict(cell_ekf_t *s, const float *u, float dt)
     }
 
     const float t0 = expf(-dt/(par->c1*par->r1));
-    xn[0] = -0.0002777777777777778F*dt*u[0]/par->capacity + x[0];
-    xn[1] = par->r1*u[0]*(1.0F - t0) + t0*x[1];
+    xn[0] = x[0] - 0.0002777777777777778F*dt*u[0]/par->capacity;
+    xn[1] = t0*x[1] + par->r1*u[0]*(1.0F - t0);
     xn[2] = par->r0*u[0];
     const float Q0_0 = 4.0000000000000007e-10F*dt;
     const float Q1_1 = 2.5e-07F*dt;
@@ -124,7 +124,7 @@ int cell_ekf_predict(cell_ekf_t *s, const float *u, float dt)
     Pn[0] = P[0] + Q0_0;
     Pn[1] = P[1]*t0;
     Pn[2] = 0.0F;
-    Pn[3] = A1_1*t0 + Q1_1;
+    Pn[3] = Q1_1 + A1_1*t0;
     Pn[4] = 0.0F;
     Pn[5] = 1.0e-06F;
     if (!cell_ekf_finite(xn, 3u) || !cell_ekf_finite(Pn, 6u)) {
@@ -139,13 +139,13 @@ int cell_ekf_predict(cell_ekf_t *s, const float *u, float dt)
     const float Lci0 = (1.0F/Lc0_0);
     const float Lc1_0 = Lci0*Pn[1];
     const float Lc2_0 = Lci0*Pn[2];
-    const float Lcd1 = -(Lc1_0*Lc1_0) + Pn[3];
+    const float Lcd1 = Pn[3] - (Lc1_0*Lc1_0);
     if (!isfinite(Lcd1)) { return CELL_EKF_NON_FINITE; }
     if (!(Lcd1 > 0.0F)) { return CELL_EKF_NOT_POSITIVE_DEFINITE; }
     const float Lc1_1 = sqrtf(Lcd1);
     const float Lci1 = (1.0F/Lc1_1);
-    const float Lc2_1 = Lci1*(-Lc1_0*Lc2_0 + Pn[4]);
-    const float Lcd2 = -(Lc2_0*Lc2_0) - (Lc2_1*Lc2_1) + Pn[5];
+    const float Lc2_1 = Lci1*(Pn[4] - Lc1_0*Lc2_0);
+    const float Lcd2 = Pn[5] - (Lc2_0*Lc2_0) - (Lc2_1*Lc2_1);
     if (!isfinite(Lcd2)) { return CELL_EKF_NON_FINITE; }
     if (!(Lcd2 > 0.0F)) { return CELL_EKF_NOT_POSITIVE_DEFINITE; }
 
@@ -172,34 +172,34 @@ int cell_ekf_update_voltage_nis(cell_ekf_t *s, const float *z, float *nis_out)
     memcpy(xs, s->x, sizeof xs);
     memcpy(Ps, s->P, sizeof Ps);
     const float t0 = expf(-15.0F*x[0]);
-    const float t1 = expf(12.0F*x[0] - 12.0F);
-    const float hz0 = -0.4F*t0 + 0.08F*t1 + 0.72F*x[0] - x[1] - x[2] + 3.4F;
-    const float H0_0 = 6.0F*t0 + 0.96F*t1 + 0.72F;
-    y[0] = -hz0 + z[0];
-    W[0] = H0_0*Ps[0] - Ps[1] - Ps[2];
-    W[1] = H0_0*Ps[1] - Ps[3] - Ps[4];
-    W[2] = H0_0*Ps[2] - Ps[4] - Ps[5];
-    const float s0 = H0_0*W[0] - W[1] - W[2] + 2.5e-05F;
+    const float t1 = expf(-12.0F + 12.0F*x[0]);
+    const float hz0 = 3.4F - x[1] - x[2] + 0.72F*x[0] + 0.08F*t1 - 0.4F*t0;
+    const float H0_0 = 0.72F + 6.0F*t0 + 0.96F*t1;
+    y[0] = z[0] - hz0;
+    W[0] = -Ps[1] - Ps[2] + H0_0*Ps[0];
+    W[1] = -Ps[3] - Ps[4] + H0_0*Ps[1];
+    W[2] = -Ps[4] - Ps[5] + H0_0*Ps[2];
+    const float s0 = 2.5e-05F - W[1] - W[2] + H0_0*W[0];
     if (!isfinite(s0)) { return CELL_EKF_NON_FINITE; }
     if (!(s0 > 0.0F)) { return CELL_EKF_NOT_POSITIVE_DEFINITE; }
     const float is0 = (1.0F/s0);
     const float r0 = y[0];
-    nis = is0*(r0*r0) + nis;
+    nis = nis + is0*(r0*r0);
     K[0] = W[0]*is0;
     K[1] = W[1]*is0;
     K[2] = W[2]*is0;
-    V[0] = K[0]*s0 - W[0];
-    V[1] = K[1]*s0 - W[1];
-    V[2] = K[2]*s0 - W[2];
-    xs[0] = K[0]*r0 + xs[0];
-    xs[1] = K[1]*r0 + xs[1];
-    xs[2] = K[2]*r0 + xs[2];
-    Ps[0] = K[0]*V[0] - K[0]*W[0] + Ps[0];
-    Ps[1] = K[0]*V[1] - K[1]*W[0] + Ps[1];
-    Ps[2] = K[0]*V[2] - K[2]*W[0] + Ps[2];
-    Ps[3] = K[1]*V[1] - K[1]*W[1] + Ps[3];
-    Ps[4] = K[1]*V[2] - K[2]*W[1] + Ps[4];
-    Ps[5] = K[2]*V[2] - K[2]*W[2] + Ps[5];
+    V[0] = -W[0] + K[0]*s0;
+    V[1] = -W[1] + K[1]*s0;
+    V[2] = -W[2] + K[2]*s0;
+    xs[0] = xs[0] + K[0]*r0;
+    xs[1] = xs[1] + K[1]*r0;
+    xs[2] = xs[2] + K[2]*r0;
+    Ps[0] = Ps[0] + K[0]*V[0] - K[0]*W[0];
+    Ps[1] = Ps[1] + K[0]*V[1] - K[1]*W[0];
+    Ps[2] = Ps[2] + K[0]*V[2] - K[2]*W[0];
+    Ps[3] = Ps[3] + K[1]*V[1] - K[1]*W[1];
+    Ps[4] = Ps[4] + K[1]*V[2] - K[2]*W[1];
+    Ps[5] = Ps[5] + K[2]*V[2] - K[2]*W[2];
     if (!cell_ekf_finite(xs, 3u) || !cell_ekf_finite(Ps, 6u)) {
         return CELL_EKF_NON_FINITE;
     }
@@ -212,13 +212,13 @@ int cell_ekf_update_voltage_nis(cell_ekf_t *s, const float *z, float *nis_out)
     const float Lci0 = (1.0F/Lc0_0);
     const float Lc1_0 = Lci0*Ps[1];
     const float Lc2_0 = Lci0*Ps[2];
-    const float Lcd1 = -(Lc1_0*Lc1_0) + Ps[3];
+    const float Lcd1 = Ps[3] - (Lc1_0*Lc1_0);
     if (!isfinite(Lcd1)) { return CELL_EKF_NON_FINITE; }
     if (!(Lcd1 > 0.0F)) { return CELL_EKF_NOT_POSITIVE_DEFINITE; }
     const float Lc1_1 = sqrtf(Lcd1);
     const float Lci1 = (1.0F/Lc1_1);
-    const float Lc2_1 = Lci1*(-Lc1_0*Lc2_0 + Ps[4]);
-    const float Lcd2 = -(Lc2_0*Lc2_0) - (Lc2_1*Lc2_1) + Ps[5];
+    const float Lc2_1 = Lci1*(Ps[4] - Lc1_0*Lc2_0);
+    const float Lcd2 = Ps[5] - (Lc2_0*Lc2_0) - (Lc2_1*Lc2_1);
     if (!isfinite(Lcd2)) { return CELL_EKF_NON_FINITE; }
     if (!(Lcd2 > 0.0F)) { return CELL_EKF_NOT_POSITIVE_DEFINITE; }
 

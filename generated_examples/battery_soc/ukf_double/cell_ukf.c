@@ -70,13 +70,13 @@ static int cell_ukf_commit_pd(const double *P)
     const double Lci0 = (1.0/Lc0_0);
     const double Lc1_0 = Lci0*P[1];
     const double Lc2_0 = Lci0*P[2];
-    const double Lcd1 = -(Lc1_0*Lc1_0) + P[3];
+    const double Lcd1 = P[3] - (Lc1_0*Lc1_0);
     if (!isfinite(Lcd1)) { return CELL_UKF_NON_FINITE; }
     if (!(Lcd1 > 0.0)) { return CELL_UKF_NOT_POSITIVE_DEFINITE; }
     const double Lc1_1 = sqrt(Lcd1);
     const double Lci1 = (1.0/Lc1_1);
-    const double Lc2_1 = Lci1*(-Lc1_0*Lc2_0 + P[4]);
-    const double Lcd2 = -(Lc2_0*Lc2_0) - (Lc2_1*Lc2_1) + P[5];
+    const double Lc2_1 = Lci1*(P[4] - Lc1_0*Lc2_0);
+    const double Lcd2 = P[5] - (Lc2_0*Lc2_0) - (Lc2_1*Lc2_1);
     if (!isfinite(Lcd2)) { return CELL_UKF_NON_FINITE; }
     if (!(Lcd2 > 0.0)) { return CELL_UKF_NOT_POSITIVE_DEFINITE; }
     return CELL_UKF_OK;
@@ -94,13 +94,13 @@ static int cell_ukf_factor(const double *P, double *Lf)
     const double Li0 = (1.0/L0_0);
     const double L1_0 = Li0*P[1];
     const double L2_0 = Li0*P[2];
-    const double Ld1 = -(L1_0*L1_0) + P[3];
+    const double Ld1 = P[3] - (L1_0*L1_0);
     if (!isfinite(Ld1)) { return CELL_UKF_NON_FINITE; }
     if (!(Ld1 > 0.0)) { return CELL_UKF_NOT_POSITIVE_DEFINITE; }
     const double L1_1 = sqrt(Ld1);
     const double Li1 = (1.0/L1_1);
-    const double L2_1 = Li1*(-L1_0*L2_0 + P[4]);
-    const double Ld2 = -(L2_0*L2_0) - (L2_1*L2_1) + P[5];
+    const double L2_1 = Li1*(P[4] - L1_0*L2_0);
+    const double Ld2 = P[5] - (L2_0*L2_0) - (L2_1*L2_1);
     if (!isfinite(Ld2)) { return CELL_UKF_NON_FINITE; }
     if (!(Ld2 > 0.0)) { return CELL_UKF_NOT_POSITIVE_DEFINITE; }
     const double L2_2 = sqrt(Ld2);
@@ -184,7 +184,7 @@ int cell_ukf_predict(cell_ukf_t *s, const double *u, double dt)
         }
     }
     const double ft0 = exp(-dt/(par->c1*par->r1));
-    const double fc0 = -0.0002777777777777778*dt*u[0]/par->capacity + x[0];
+    const double fc0 = x[0] - 0.0002777777777777778*dt*u[0]/par->capacity;
     const double fc1 = ft0*x[1] + par->r1*u[0]*(1.0 - ft0);
     const double fc2 = par->r0*u[0];
     const double Q0_0 = 4.0000000000000007e-10*dt;
@@ -196,7 +196,7 @@ int cell_ukf_predict(cell_ukf_t *s, const double *u, double dt)
     Pn[0] = P[0] + Q0_0;
     Pn[1] = P[1]*ft0;
     Pn[2] = 0.0;
-    Pn[3] = AP1_1*ft0 + Q1_1;
+    Pn[3] = Q1_1 + AP1_1*ft0;
     Pn[4] = 0.0;
     Pn[5] = 1.0e-06;
     if (!cell_ukf_finite(xn, 3u) || !cell_ukf_finite(Pn, 6u)) {
@@ -240,7 +240,7 @@ int cell_ukf_update_voltage_nis(cell_ukf_t *s, const double *z, double *nis_out)
     const double hg1_1 = 1.7320508075688772*Lf[3];
     const double hg2_1 = 1.7320508075688772*Lf[4];
     const double hg2_2 = 1.7320508075688772*Lf[5];
-    const double ha0 = 12.0*x[0] - 12.0;
+    const double ha0 = -12.0 + 12.0*x[0];
     const double hae0 = exp(ha0);
     const double had0_0 = 12.0*hg0_0;
     const double ho0_0 = exp(had0_0);
@@ -253,14 +253,14 @@ int cell_ukf_update_voltage_nis(cell_ukf_t *s, const double *z, double *nis_out)
     const double hop1_0 = hae1*ho1_0;
     const double hom1_0 = hae1/ho1_0;
     const double ht0 = 0.4*hae1;
-    const double ht1 = 0.72*x[0] - x[1] - x[2] + 3.4;
-    const double ht2 = 0.08*hae0 - ht0 + ht1;
-    const double ht3 = -0.72*x[0] + x[1] + x[2] - 3.4;
-    const double ht4 = -0.72*hg0_0 + hg1_0 + hg2_0;
-    const double ht5 = -0.08*hae0 + ht0 + ht3;
+    const double ht1 = 3.4 - x[1] - x[2] + 0.72*x[0];
+    const double ht2 = ht1 - ht0 + 0.08*hae0;
+    const double ht3 = -3.4 + x[1] + x[2] - 0.72*x[0];
+    const double ht4 = hg1_0 + hg2_0 - 0.72*hg0_0;
+    const double ht5 = ht0 + ht3 - 0.08*hae0;
     const double ht6 = hg1_1 + hg2_1;
-    const double hp0_0 = 0.08*hop0_0 - 0.4*hop1_0 - ht3 - ht4;
-    const double hm0_0 = 0.08*hom0_0 - 0.4*hom1_0 + ht1 + ht4;
+    const double hp0_0 = -ht3 - ht4 + 0.08*hop0_0 - 0.4*hop1_0;
+    const double hm0_0 = ht1 + ht4 + 0.08*hom0_0 - 0.4*hom1_0;
     const double hp1_0 = -ht5 - ht6;
     const double hm1_0 = ht2 + ht6;
     const double hp2_0 = -hg2_2 - ht5;
@@ -269,19 +269,19 @@ int cell_ukf_update_voltage_nis(cell_ukf_t *s, const double *z, double *nis_out)
     const double hq1_0 = hm1_0 + hp1_0;
     const double hq2_0 = hm2_0 + hp2_0;
     const double hmu0 = 0.16666666666666666*(hq0_0 + hq1_0 + hq2_0);
-    const double he0 = -hmu0 + ht2;
+    const double he0 = ht2 - hmu0;
     const double hh0 = 0.5773502691896258*hmu0;
-    const double hu0_0 = 0.2886751345948129*(-hm0_0 + hp0_0);
+    const double hu0_0 = 0.2886751345948129*(hp0_0 - hm0_0);
     const double hv0_0 = -hh0 + 0.2886751345948129*hq0_0;
-    const double hu1_0 = 0.2886751345948129*(-hm1_0 + hp1_0);
+    const double hu1_0 = 0.2886751345948129*(hp1_0 - hm1_0);
     const double hv1_0 = -hh0 + 0.2886751345948129*hq1_0;
-    const double hu2_0 = 0.2886751345948129*(-hm2_0 + hp2_0);
+    const double hu2_0 = 0.2886751345948129*(hp2_0 - hm2_0);
     const double hv2_0 = -hh0 + 0.2886751345948129*hq2_0;
-    y[0] = -hmu0 + z[0];
+    y[0] = z[0] - hmu0;
     const double C0_0 = Lf[0]*hu0_0;
     const double C1_0 = Lf[1]*hu0_0 + Lf[3]*hu1_0;
     const double C2_0 = Lf[2]*hu0_0 + Lf[4]*hu1_0 + Lf[5]*hu2_0;
-    const double S0_0 = 2.0*(he0*he0) + (hu0_0*hu0_0) + (hu1_0*hu1_0) + (hu2_0*hu2_0) + (hv0_0*hv0_0) + (hv1_0*hv1_0) + (hv2_0*hv2_0) + 2.5e-05;
+    const double S0_0 = 2.5e-05 + (hu0_0*hu0_0) + (hu1_0*hu1_0) + (hu2_0*hu2_0) + (hv0_0*hv0_0) + (hv1_0*hv1_0) + (hv2_0*hv2_0) + 2.0*(he0*he0);
     const double Sd0 = S0_0;
     if (!isfinite(Sd0)) { return CELL_UKF_NON_FINITE; }
     if (!(Sd0 > 0.0)) { return CELL_UKF_NOT_POSITIVE_DEFINITE; }
@@ -290,15 +290,15 @@ int cell_ukf_update_voltage_nis(cell_ukf_t *s, const double *z, double *nis_out)
     const double K0 = C0_0*iS;
     const double K1 = C1_0*iS;
     const double K2 = C2_0*iS;
-    xs[0] = K0*y[0] + x[0];
-    xs[1] = K1*y[0] + x[1];
-    xs[2] = K2*y[0] + x[2];
-    Ps[0] = -C0_0*K0 + P[0];
-    Ps[1] = -C1_0*K0 + P[1];
-    Ps[2] = -C2_0*K0 + P[2];
-    Ps[3] = -C1_0*K1 + P[3];
-    Ps[4] = -C2_0*K1 + P[4];
-    Ps[5] = -C2_0*K2 + P[5];
+    xs[0] = x[0] + K0*y[0];
+    xs[1] = x[1] + K1*y[0];
+    xs[2] = x[2] + K2*y[0];
+    Ps[0] = P[0] - C0_0*K0;
+    Ps[1] = P[1] - C1_0*K0;
+    Ps[2] = P[2] - C2_0*K0;
+    Ps[3] = P[3] - C1_0*K1;
+    Ps[4] = P[4] - C2_0*K1;
+    Ps[5] = P[5] - C2_0*K2;
     if (!isfinite(nis)) {
         return CELL_UKF_NON_FINITE;
     }

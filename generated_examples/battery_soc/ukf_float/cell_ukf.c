@@ -70,13 +70,13 @@ static int cell_ukf_commit_pd(const float *P)
     const float Lci0 = (1.0F/Lc0_0);
     const float Lc1_0 = Lci0*P[1];
     const float Lc2_0 = Lci0*P[2];
-    const float Lcd1 = -(Lc1_0*Lc1_0) + P[3];
+    const float Lcd1 = P[3] - (Lc1_0*Lc1_0);
     if (!isfinite(Lcd1)) { return CELL_UKF_NON_FINITE; }
     if (!(Lcd1 > 0.0F)) { return CELL_UKF_NOT_POSITIVE_DEFINITE; }
     const float Lc1_1 = sqrtf(Lcd1);
     const float Lci1 = (1.0F/Lc1_1);
-    const float Lc2_1 = Lci1*(-Lc1_0*Lc2_0 + P[4]);
-    const float Lcd2 = -(Lc2_0*Lc2_0) - (Lc2_1*Lc2_1) + P[5];
+    const float Lc2_1 = Lci1*(P[4] - Lc1_0*Lc2_0);
+    const float Lcd2 = P[5] - (Lc2_0*Lc2_0) - (Lc2_1*Lc2_1);
     if (!isfinite(Lcd2)) { return CELL_UKF_NON_FINITE; }
     if (!(Lcd2 > 0.0F)) { return CELL_UKF_NOT_POSITIVE_DEFINITE; }
     return CELL_UKF_OK;
@@ -94,13 +94,13 @@ static int cell_ukf_factor(const float *P, float *Lf)
     const float Li0 = (1.0F/L0_0);
     const float L1_0 = Li0*P[1];
     const float L2_0 = Li0*P[2];
-    const float Ld1 = -(L1_0*L1_0) + P[3];
+    const float Ld1 = P[3] - (L1_0*L1_0);
     if (!isfinite(Ld1)) { return CELL_UKF_NON_FINITE; }
     if (!(Ld1 > 0.0F)) { return CELL_UKF_NOT_POSITIVE_DEFINITE; }
     const float L1_1 = sqrtf(Ld1);
     const float Li1 = (1.0F/L1_1);
-    const float L2_1 = Li1*(-L1_0*L2_0 + P[4]);
-    const float Ld2 = -(L2_0*L2_0) - (L2_1*L2_1) + P[5];
+    const float L2_1 = Li1*(P[4] - L1_0*L2_0);
+    const float Ld2 = P[5] - (L2_0*L2_0) - (L2_1*L2_1);
     if (!isfinite(Ld2)) { return CELL_UKF_NON_FINITE; }
     if (!(Ld2 > 0.0F)) { return CELL_UKF_NOT_POSITIVE_DEFINITE; }
     const float L2_2 = sqrtf(Ld2);
@@ -184,7 +184,7 @@ int cell_ukf_predict(cell_ukf_t *s, const float *u, float dt)
         }
     }
     const float ft0 = expf(-dt/(par->c1*par->r1));
-    const float fc0 = -0.0002777777777777778F*dt*u[0]/par->capacity + x[0];
+    const float fc0 = x[0] - 0.0002777777777777778F*dt*u[0]/par->capacity;
     const float fc1 = ft0*x[1] + par->r1*u[0]*(1.0F - ft0);
     const float fc2 = par->r0*u[0];
     const float Q0_0 = 4.0000000000000007e-10F*dt;
@@ -196,7 +196,7 @@ int cell_ukf_predict(cell_ukf_t *s, const float *u, float dt)
     Pn[0] = P[0] + Q0_0;
     Pn[1] = P[1]*ft0;
     Pn[2] = 0.0F;
-    Pn[3] = AP1_1*ft0 + Q1_1;
+    Pn[3] = Q1_1 + AP1_1*ft0;
     Pn[4] = 0.0F;
     Pn[5] = 1.0e-06F;
     if (!cell_ukf_finite(xn, 3u) || !cell_ukf_finite(Pn, 6u)) {
@@ -240,7 +240,7 @@ int cell_ukf_update_voltage_nis(cell_ukf_t *s, const float *z, float *nis_out)
     const float hg1_1 = 1.7320508075688772F*Lf[3];
     const float hg2_1 = 1.7320508075688772F*Lf[4];
     const float hg2_2 = 1.7320508075688772F*Lf[5];
-    const float ha0 = 12.0F*x[0] - 12.0F;
+    const float ha0 = -12.0F + 12.0F*x[0];
     const float hae0 = expf(ha0);
     const float had0_0 = 12.0F*hg0_0;
     const float ho0_0 = expf(had0_0);
@@ -253,14 +253,14 @@ int cell_ukf_update_voltage_nis(cell_ukf_t *s, const float *z, float *nis_out)
     const float hop1_0 = hae1*ho1_0;
     const float hom1_0 = hae1/ho1_0;
     const float ht0 = 0.4F*hae1;
-    const float ht1 = 0.72F*x[0] - x[1] - x[2] + 3.4F;
-    const float ht2 = 0.08F*hae0 - ht0 + ht1;
-    const float ht3 = -0.72F*x[0] + x[1] + x[2] - 3.4F;
-    const float ht4 = -0.72F*hg0_0 + hg1_0 + hg2_0;
-    const float ht5 = -0.08F*hae0 + ht0 + ht3;
+    const float ht1 = 3.4F - x[1] - x[2] + 0.72F*x[0];
+    const float ht2 = ht1 - ht0 + 0.08F*hae0;
+    const float ht3 = -3.4F + x[1] + x[2] - 0.72F*x[0];
+    const float ht4 = hg1_0 + hg2_0 - 0.72F*hg0_0;
+    const float ht5 = ht0 + ht3 - 0.08F*hae0;
     const float ht6 = hg1_1 + hg2_1;
-    const float hp0_0 = 0.08F*hop0_0 - 0.4F*hop1_0 - ht3 - ht4;
-    const float hm0_0 = 0.08F*hom0_0 - 0.4F*hom1_0 + ht1 + ht4;
+    const float hp0_0 = -ht3 - ht4 + 0.08F*hop0_0 - 0.4F*hop1_0;
+    const float hm0_0 = ht1 + ht4 + 0.08F*hom0_0 - 0.4F*hom1_0;
     const float hp1_0 = -ht5 - ht6;
     const float hm1_0 = ht2 + ht6;
     const float hp2_0 = -hg2_2 - ht5;
@@ -269,19 +269,19 @@ int cell_ukf_update_voltage_nis(cell_ukf_t *s, const float *z, float *nis_out)
     const float hq1_0 = hm1_0 + hp1_0;
     const float hq2_0 = hm2_0 + hp2_0;
     const float hmu0 = 0.16666666666666666F*(hq0_0 + hq1_0 + hq2_0);
-    const float he0 = -hmu0 + ht2;
+    const float he0 = ht2 - hmu0;
     const float hh0 = 0.5773502691896258F*hmu0;
-    const float hu0_0 = 0.2886751345948129F*(-hm0_0 + hp0_0);
+    const float hu0_0 = 0.2886751345948129F*(hp0_0 - hm0_0);
     const float hv0_0 = -hh0 + 0.2886751345948129F*hq0_0;
-    const float hu1_0 = 0.2886751345948129F*(-hm1_0 + hp1_0);
+    const float hu1_0 = 0.2886751345948129F*(hp1_0 - hm1_0);
     const float hv1_0 = -hh0 + 0.2886751345948129F*hq1_0;
-    const float hu2_0 = 0.2886751345948129F*(-hm2_0 + hp2_0);
+    const float hu2_0 = 0.2886751345948129F*(hp2_0 - hm2_0);
     const float hv2_0 = -hh0 + 0.2886751345948129F*hq2_0;
-    y[0] = -hmu0 + z[0];
+    y[0] = z[0] - hmu0;
     const float C0_0 = Lf[0]*hu0_0;
     const float C1_0 = Lf[1]*hu0_0 + Lf[3]*hu1_0;
     const float C2_0 = Lf[2]*hu0_0 + Lf[4]*hu1_0 + Lf[5]*hu2_0;
-    const float S0_0 = 2.0F*(he0*he0) + (hu0_0*hu0_0) + (hu1_0*hu1_0) + (hu2_0*hu2_0) + (hv0_0*hv0_0) + (hv1_0*hv1_0) + (hv2_0*hv2_0) + 2.5e-05F;
+    const float S0_0 = 2.5e-05F + (hu0_0*hu0_0) + (hu1_0*hu1_0) + (hu2_0*hu2_0) + (hv0_0*hv0_0) + (hv1_0*hv1_0) + (hv2_0*hv2_0) + 2.0F*(he0*he0);
     const float Sd0 = S0_0;
     if (!isfinite(Sd0)) { return CELL_UKF_NON_FINITE; }
     if (!(Sd0 > 0.0F)) { return CELL_UKF_NOT_POSITIVE_DEFINITE; }
@@ -290,15 +290,15 @@ int cell_ukf_update_voltage_nis(cell_ukf_t *s, const float *z, float *nis_out)
     const float K0 = C0_0*iS;
     const float K1 = C1_0*iS;
     const float K2 = C2_0*iS;
-    xs[0] = K0*y[0] + x[0];
-    xs[1] = K1*y[0] + x[1];
-    xs[2] = K2*y[0] + x[2];
-    Ps[0] = -C0_0*K0 + P[0];
-    Ps[1] = -C1_0*K0 + P[1];
-    Ps[2] = -C2_0*K0 + P[2];
-    Ps[3] = -C1_0*K1 + P[3];
-    Ps[4] = -C2_0*K1 + P[4];
-    Ps[5] = -C2_0*K2 + P[5];
+    xs[0] = x[0] + K0*y[0];
+    xs[1] = x[1] + K1*y[0];
+    xs[2] = x[2] + K2*y[0];
+    Ps[0] = P[0] - C0_0*K0;
+    Ps[1] = P[1] - C1_0*K0;
+    Ps[2] = P[2] - C2_0*K0;
+    Ps[3] = P[3] - C1_0*K1;
+    Ps[4] = P[4] - C2_0*K1;
+    Ps[5] = P[5] - C2_0*K2;
     if (!isfinite(nis)) {
         return CELL_UKF_NON_FINITE;
     }

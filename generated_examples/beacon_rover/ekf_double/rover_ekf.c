@@ -135,8 +135,8 @@ int rover_ekf_predict(rover_ekf_t *s, const double *u, double dt)
     const double t3 = dt*u[1];
     const double t4 = t3 + x[2];
     const double t5 = cos(t4);
-    const double t6 = (0.5)*t1 + x[3];
-    const double t7 = (0.5)*t3 + x[2];
+    const double t6 = x[3] + (0.5)*t1;
+    const double t7 = x[2] + (0.5)*t3;
     const double t8 = 4.0*cos(t7);
     const double t9 = (0.16666666666666666)*dt;
     const double t10 = t9*(t0*x[3] + t2*t5 + t6*t8);
@@ -146,25 +146,25 @@ int rover_ekf_predict(rover_ekf_t *s, const double *u, double dt)
     const double t14 = t11*x[3] + t12*t2 + t13*t6;
     const double t15 = 0.0001*dt;
     xn[0] = t10 + x[0];
-    xn[1] = t14*t9 + x[1];
+    xn[1] = x[1] + t14*t9;
     xn[2] = t4;
     xn[3] = t2;
     const double F0_2 = -t14*t9;
     const double F0_3 = t9*(t0 + t5 + t8);
     const double F1_3 = t9*(t11 + t12 + t13);
     const double Q3_3 = 0.0025000000000000005*dt;
-    const double A0_0 = F0_2*P[2] + F0_3*P[3] + P[0];
-    const double A0_1 = F0_2*P[5] + F0_3*P[6] + P[1];
-    const double A0_2 = F0_2*P[7] + F0_3*P[8] + P[2];
-    const double A0_3 = F0_2*P[8] + F0_3*P[9] + P[3];
-    const double A1_1 = F1_3*P[6] + P[4] + P[5]*t10;
-    const double A1_2 = F1_3*P[8] + P[5] + P[7]*t10;
-    const double A1_3 = F1_3*P[9] + P[6] + P[8]*t10;
-    Pn[0] = A0_0 + A0_2*F0_2 + A0_3*F0_3 + t15;
+    const double A0_0 = P[0] + F0_2*P[2] + F0_3*P[3];
+    const double A0_1 = P[1] + F0_2*P[5] + F0_3*P[6];
+    const double A0_2 = P[2] + F0_2*P[7] + F0_3*P[8];
+    const double A0_3 = P[3] + F0_2*P[8] + F0_3*P[9];
+    const double A1_1 = P[4] + F1_3*P[6] + P[5]*t10;
+    const double A1_2 = P[5] + F1_3*P[8] + P[7]*t10;
+    const double A1_3 = P[6] + F1_3*P[9] + P[8]*t10;
+    Pn[0] = A0_0 + t15 + A0_2*F0_2 + A0_3*F0_3;
     Pn[1] = A0_1 + A0_2*t10 + A0_3*F1_3;
     Pn[2] = A0_2;
     Pn[3] = A0_3;
-    Pn[4] = A1_1 + A1_2*t10 + A1_3*F1_3 + t15;
+    Pn[4] = A1_1 + t15 + A1_2*t10 + A1_3*F1_3;
     Pn[5] = A1_2;
     Pn[6] = A1_3;
     Pn[7] = P[7] + t15;
@@ -184,20 +184,20 @@ int rover_ekf_predict(rover_ekf_t *s, const double *u, double dt)
     const double Lc1_0 = Lci0*Pn[1];
     const double Lc2_0 = Lci0*Pn[2];
     const double Lc3_0 = Lci0*Pn[3];
-    const double Lcd1 = -(Lc1_0*Lc1_0) + Pn[4];
+    const double Lcd1 = Pn[4] - (Lc1_0*Lc1_0);
     if (!isfinite(Lcd1)) { return ROVER_EKF_NON_FINITE; }
     if (!(Lcd1 > 0.0)) { return ROVER_EKF_NOT_POSITIVE_DEFINITE; }
     const double Lc1_1 = sqrt(Lcd1);
     const double Lci1 = (1.0/Lc1_1);
-    const double Lc2_1 = Lci1*(-Lc1_0*Lc2_0 + Pn[5]);
-    const double Lc3_1 = Lci1*(-Lc1_0*Lc3_0 + Pn[6]);
-    const double Lcd2 = -(Lc2_0*Lc2_0) - (Lc2_1*Lc2_1) + Pn[7];
+    const double Lc2_1 = Lci1*(Pn[5] - Lc1_0*Lc2_0);
+    const double Lc3_1 = Lci1*(Pn[6] - Lc1_0*Lc3_0);
+    const double Lcd2 = Pn[7] - (Lc2_0*Lc2_0) - (Lc2_1*Lc2_1);
     if (!isfinite(Lcd2)) { return ROVER_EKF_NON_FINITE; }
     if (!(Lcd2 > 0.0)) { return ROVER_EKF_NOT_POSITIVE_DEFINITE; }
     const double Lc2_2 = sqrt(Lcd2);
     const double Lci2 = (1.0/Lc2_2);
-    const double Lc3_2 = Lci2*(-Lc2_0*Lc3_0 - Lc2_1*Lc3_1 + Pn[8]);
-    const double Lcd3 = -(Lc3_0*Lc3_0) - (Lc3_1*Lc3_1) - (Lc3_2*Lc3_2) + Pn[9];
+    const double Lc3_2 = Lci2*(Pn[8] - Lc2_0*Lc3_0 - Lc2_1*Lc3_1);
+    const double Lcd3 = Pn[9] - (Lc3_0*Lc3_0) - (Lc3_1*Lc3_1) - (Lc3_2*Lc3_2);
     if (!isfinite(Lcd3)) { return ROVER_EKF_NON_FINITE; }
     if (!(Lcd3 > 0.0)) { return ROVER_EKF_NOT_POSITIVE_DEFINITE; }
 
@@ -224,45 +224,45 @@ int rover_ekf_update_range_a_nis(rover_ekf_t *s, const double *z, double *nis_ou
 
     memcpy(xs, s->x, sizeof xs);
     memcpy(Ps, s->P, sizeof Ps);
-    const double t0 = -par->bax + x[0];
-    const double t1 = -par->bay + x[1];
+    const double t0 = x[0] - par->bax;
+    const double t1 = x[1] - par->bay;
     const double t2 = sqrt((t0*t0) + (t1*t1));
     const double t3 = (1.0/t2);
     const double H0_0 = t0*t3;
     const double H0_1 = t1*t3;
-    y[0] = -t2 + z[0];
+    y[0] = z[0] - t2;
     W[0] = H0_0*Ps[0] + H0_1*Ps[1];
     W[1] = H0_0*Ps[1] + H0_1*Ps[4];
     W[2] = H0_0*Ps[2] + H0_1*Ps[5];
     W[3] = H0_0*Ps[3] + H0_1*Ps[6];
-    const double s0 = H0_0*W[0] + H0_1*W[1] + 0.010000000000000002;
+    const double s0 = 0.010000000000000002 + H0_0*W[0] + H0_1*W[1];
     if (!isfinite(s0)) { return ROVER_EKF_NON_FINITE; }
     if (!(s0 > 0.0)) { return ROVER_EKF_NOT_POSITIVE_DEFINITE; }
     const double is0 = (1.0/s0);
     const double r0 = y[0];
-    nis = is0*(r0*r0) + nis;
+    nis = nis + is0*(r0*r0);
     K[0] = W[0]*is0;
     K[1] = W[1]*is0;
     K[2] = W[2]*is0;
     K[3] = W[3]*is0;
-    V[0] = K[0]*s0 - W[0];
-    V[1] = K[1]*s0 - W[1];
-    V[2] = K[2]*s0 - W[2];
-    V[3] = K[3]*s0 - W[3];
-    xs[0] = K[0]*r0 + xs[0];
-    xs[1] = K[1]*r0 + xs[1];
-    xs[2] = K[2]*r0 + xs[2];
-    xs[3] = K[3]*r0 + xs[3];
-    Ps[0] = K[0]*V[0] - K[0]*W[0] + Ps[0];
-    Ps[1] = K[0]*V[1] - K[1]*W[0] + Ps[1];
-    Ps[2] = K[0]*V[2] - K[2]*W[0] + Ps[2];
-    Ps[3] = K[0]*V[3] - K[3]*W[0] + Ps[3];
-    Ps[4] = K[1]*V[1] - K[1]*W[1] + Ps[4];
-    Ps[5] = K[1]*V[2] - K[2]*W[1] + Ps[5];
-    Ps[6] = K[1]*V[3] - K[3]*W[1] + Ps[6];
-    Ps[7] = K[2]*V[2] - K[2]*W[2] + Ps[7];
-    Ps[8] = K[2]*V[3] - K[3]*W[2] + Ps[8];
-    Ps[9] = K[3]*V[3] - K[3]*W[3] + Ps[9];
+    V[0] = -W[0] + K[0]*s0;
+    V[1] = -W[1] + K[1]*s0;
+    V[2] = -W[2] + K[2]*s0;
+    V[3] = -W[3] + K[3]*s0;
+    xs[0] = xs[0] + K[0]*r0;
+    xs[1] = xs[1] + K[1]*r0;
+    xs[2] = xs[2] + K[2]*r0;
+    xs[3] = xs[3] + K[3]*r0;
+    Ps[0] = Ps[0] + K[0]*V[0] - K[0]*W[0];
+    Ps[1] = Ps[1] + K[0]*V[1] - K[1]*W[0];
+    Ps[2] = Ps[2] + K[0]*V[2] - K[2]*W[0];
+    Ps[3] = Ps[3] + K[0]*V[3] - K[3]*W[0];
+    Ps[4] = Ps[4] + K[1]*V[1] - K[1]*W[1];
+    Ps[5] = Ps[5] + K[1]*V[2] - K[2]*W[1];
+    Ps[6] = Ps[6] + K[1]*V[3] - K[3]*W[1];
+    Ps[7] = Ps[7] + K[2]*V[2] - K[2]*W[2];
+    Ps[8] = Ps[8] + K[2]*V[3] - K[3]*W[2];
+    Ps[9] = Ps[9] + K[3]*V[3] - K[3]*W[3];
     xs[2] = rover_ekf_wrap(xs[2]);
     if (!rover_ekf_finite(xs, 4u) || !rover_ekf_finite(Ps, 10u)) {
         return ROVER_EKF_NON_FINITE;
@@ -277,20 +277,20 @@ int rover_ekf_update_range_a_nis(rover_ekf_t *s, const double *z, double *nis_ou
     const double Lc1_0 = Lci0*Ps[1];
     const double Lc2_0 = Lci0*Ps[2];
     const double Lc3_0 = Lci0*Ps[3];
-    const double Lcd1 = -(Lc1_0*Lc1_0) + Ps[4];
+    const double Lcd1 = Ps[4] - (Lc1_0*Lc1_0);
     if (!isfinite(Lcd1)) { return ROVER_EKF_NON_FINITE; }
     if (!(Lcd1 > 0.0)) { return ROVER_EKF_NOT_POSITIVE_DEFINITE; }
     const double Lc1_1 = sqrt(Lcd1);
     const double Lci1 = (1.0/Lc1_1);
-    const double Lc2_1 = Lci1*(-Lc1_0*Lc2_0 + Ps[5]);
-    const double Lc3_1 = Lci1*(-Lc1_0*Lc3_0 + Ps[6]);
-    const double Lcd2 = -(Lc2_0*Lc2_0) - (Lc2_1*Lc2_1) + Ps[7];
+    const double Lc2_1 = Lci1*(Ps[5] - Lc1_0*Lc2_0);
+    const double Lc3_1 = Lci1*(Ps[6] - Lc1_0*Lc3_0);
+    const double Lcd2 = Ps[7] - (Lc2_0*Lc2_0) - (Lc2_1*Lc2_1);
     if (!isfinite(Lcd2)) { return ROVER_EKF_NON_FINITE; }
     if (!(Lcd2 > 0.0)) { return ROVER_EKF_NOT_POSITIVE_DEFINITE; }
     const double Lc2_2 = sqrt(Lcd2);
     const double Lci2 = (1.0/Lc2_2);
-    const double Lc3_2 = Lci2*(-Lc2_0*Lc3_0 - Lc2_1*Lc3_1 + Ps[8]);
-    const double Lcd3 = -(Lc3_0*Lc3_0) - (Lc3_1*Lc3_1) - (Lc3_2*Lc3_2) + Ps[9];
+    const double Lc3_2 = Lci2*(Ps[8] - Lc2_0*Lc3_0 - Lc2_1*Lc3_1);
+    const double Lcd3 = Ps[9] - (Lc3_0*Lc3_0) - (Lc3_1*Lc3_1) - (Lc3_2*Lc3_2);
     if (!isfinite(Lcd3)) { return ROVER_EKF_NON_FINITE; }
     if (!(Lcd3 > 0.0)) { return ROVER_EKF_NOT_POSITIVE_DEFINITE; }
 
@@ -329,45 +329,45 @@ int rover_ekf_update_range_b_nis(rover_ekf_t *s, const double *z, double *nis_ou
 
     memcpy(xs, s->x, sizeof xs);
     memcpy(Ps, s->P, sizeof Ps);
-    const double t0 = -par->bbx + x[0];
-    const double t1 = -par->bby + x[1];
+    const double t0 = x[0] - par->bbx;
+    const double t1 = x[1] - par->bby;
     const double t2 = sqrt((t0*t0) + (t1*t1));
     const double t3 = (1.0/t2);
     const double H0_0 = t0*t3;
     const double H0_1 = t1*t3;
-    y[0] = -t2 + z[0];
+    y[0] = z[0] - t2;
     W[0] = H0_0*Ps[0] + H0_1*Ps[1];
     W[1] = H0_0*Ps[1] + H0_1*Ps[4];
     W[2] = H0_0*Ps[2] + H0_1*Ps[5];
     W[3] = H0_0*Ps[3] + H0_1*Ps[6];
-    const double s0 = H0_0*W[0] + H0_1*W[1] + 0.010000000000000002;
+    const double s0 = 0.010000000000000002 + H0_0*W[0] + H0_1*W[1];
     if (!isfinite(s0)) { return ROVER_EKF_NON_FINITE; }
     if (!(s0 > 0.0)) { return ROVER_EKF_NOT_POSITIVE_DEFINITE; }
     const double is0 = (1.0/s0);
     const double r0 = y[0];
-    nis = is0*(r0*r0) + nis;
+    nis = nis + is0*(r0*r0);
     K[0] = W[0]*is0;
     K[1] = W[1]*is0;
     K[2] = W[2]*is0;
     K[3] = W[3]*is0;
-    V[0] = K[0]*s0 - W[0];
-    V[1] = K[1]*s0 - W[1];
-    V[2] = K[2]*s0 - W[2];
-    V[3] = K[3]*s0 - W[3];
-    xs[0] = K[0]*r0 + xs[0];
-    xs[1] = K[1]*r0 + xs[1];
-    xs[2] = K[2]*r0 + xs[2];
-    xs[3] = K[3]*r0 + xs[3];
-    Ps[0] = K[0]*V[0] - K[0]*W[0] + Ps[0];
-    Ps[1] = K[0]*V[1] - K[1]*W[0] + Ps[1];
-    Ps[2] = K[0]*V[2] - K[2]*W[0] + Ps[2];
-    Ps[3] = K[0]*V[3] - K[3]*W[0] + Ps[3];
-    Ps[4] = K[1]*V[1] - K[1]*W[1] + Ps[4];
-    Ps[5] = K[1]*V[2] - K[2]*W[1] + Ps[5];
-    Ps[6] = K[1]*V[3] - K[3]*W[1] + Ps[6];
-    Ps[7] = K[2]*V[2] - K[2]*W[2] + Ps[7];
-    Ps[8] = K[2]*V[3] - K[3]*W[2] + Ps[8];
-    Ps[9] = K[3]*V[3] - K[3]*W[3] + Ps[9];
+    V[0] = -W[0] + K[0]*s0;
+    V[1] = -W[1] + K[1]*s0;
+    V[2] = -W[2] + K[2]*s0;
+    V[3] = -W[3] + K[3]*s0;
+    xs[0] = xs[0] + K[0]*r0;
+    xs[1] = xs[1] + K[1]*r0;
+    xs[2] = xs[2] + K[2]*r0;
+    xs[3] = xs[3] + K[3]*r0;
+    Ps[0] = Ps[0] + K[0]*V[0] - K[0]*W[0];
+    Ps[1] = Ps[1] + K[0]*V[1] - K[1]*W[0];
+    Ps[2] = Ps[2] + K[0]*V[2] - K[2]*W[0];
+    Ps[3] = Ps[3] + K[0]*V[3] - K[3]*W[0];
+    Ps[4] = Ps[4] + K[1]*V[1] - K[1]*W[1];
+    Ps[5] = Ps[5] + K[1]*V[2] - K[2]*W[1];
+    Ps[6] = Ps[6] + K[1]*V[3] - K[3]*W[1];
+    Ps[7] = Ps[7] + K[2]*V[2] - K[2]*W[2];
+    Ps[8] = Ps[8] + K[2]*V[3] - K[3]*W[2];
+    Ps[9] = Ps[9] + K[3]*V[3] - K[3]*W[3];
     xs[2] = rover_ekf_wrap(xs[2]);
     if (!rover_ekf_finite(xs, 4u) || !rover_ekf_finite(Ps, 10u)) {
         return ROVER_EKF_NON_FINITE;
@@ -382,20 +382,20 @@ int rover_ekf_update_range_b_nis(rover_ekf_t *s, const double *z, double *nis_ou
     const double Lc1_0 = Lci0*Ps[1];
     const double Lc2_0 = Lci0*Ps[2];
     const double Lc3_0 = Lci0*Ps[3];
-    const double Lcd1 = -(Lc1_0*Lc1_0) + Ps[4];
+    const double Lcd1 = Ps[4] - (Lc1_0*Lc1_0);
     if (!isfinite(Lcd1)) { return ROVER_EKF_NON_FINITE; }
     if (!(Lcd1 > 0.0)) { return ROVER_EKF_NOT_POSITIVE_DEFINITE; }
     const double Lc1_1 = sqrt(Lcd1);
     const double Lci1 = (1.0/Lc1_1);
-    const double Lc2_1 = Lci1*(-Lc1_0*Lc2_0 + Ps[5]);
-    const double Lc3_1 = Lci1*(-Lc1_0*Lc3_0 + Ps[6]);
-    const double Lcd2 = -(Lc2_0*Lc2_0) - (Lc2_1*Lc2_1) + Ps[7];
+    const double Lc2_1 = Lci1*(Ps[5] - Lc1_0*Lc2_0);
+    const double Lc3_1 = Lci1*(Ps[6] - Lc1_0*Lc3_0);
+    const double Lcd2 = Ps[7] - (Lc2_0*Lc2_0) - (Lc2_1*Lc2_1);
     if (!isfinite(Lcd2)) { return ROVER_EKF_NON_FINITE; }
     if (!(Lcd2 > 0.0)) { return ROVER_EKF_NOT_POSITIVE_DEFINITE; }
     const double Lc2_2 = sqrt(Lcd2);
     const double Lci2 = (1.0/Lc2_2);
-    const double Lc3_2 = Lci2*(-Lc2_0*Lc3_0 - Lc2_1*Lc3_1 + Ps[8]);
-    const double Lcd3 = -(Lc3_0*Lc3_0) - (Lc3_1*Lc3_1) - (Lc3_2*Lc3_2) + Ps[9];
+    const double Lc3_2 = Lci2*(Ps[8] - Lc2_0*Lc3_0 - Lc2_1*Lc3_1);
+    const double Lcd3 = Ps[9] - (Lc3_0*Lc3_0) - (Lc3_1*Lc3_1) - (Lc3_2*Lc3_2);
     if (!isfinite(Lcd3)) { return ROVER_EKF_NON_FINITE; }
     if (!(Lcd3 > 0.0)) { return ROVER_EKF_NOT_POSITIVE_DEFINITE; }
 
@@ -448,72 +448,72 @@ int rover_ekf_update_range_cd_nis(rover_ekf_t *s, const double *z, double *nis_o
     const double H0_1 = t3*t8;
     const double H1_0 = t5*t9;
     const double H1_1 = t6*t9;
-    y[0] = -t4 + z[0];
-    y[1] = -t7 + z[1];
+    y[0] = z[0] - t4;
+    y[1] = z[1] - t7;
     W[0] = H0_0*Ps[0] + H0_1*Ps[1];
     W[1] = H0_0*Ps[1] + H0_1*Ps[4];
     W[2] = H0_0*Ps[2] + H0_1*Ps[5];
     W[3] = H0_0*Ps[3] + H0_1*Ps[6];
-    const double s0 = H0_0*W[0] + H0_1*W[1] + 0.0225;
+    const double s0 = 0.0225 + H0_0*W[0] + H0_1*W[1];
     if (!isfinite(s0)) { return ROVER_EKF_NON_FINITE; }
     if (!(s0 > 0.0)) { return ROVER_EKF_NOT_POSITIVE_DEFINITE; }
     const double is0 = (1.0/s0);
     const double r0 = y[0];
-    nis = is0*(r0*r0) + nis;
+    nis = nis + is0*(r0*r0);
     K[0] = W[0]*is0;
     K[1] = W[1]*is0;
     K[2] = W[2]*is0;
     K[3] = W[3]*is0;
-    V[0] = K[0]*s0 - W[0];
-    V[1] = K[1]*s0 - W[1];
-    V[2] = K[2]*s0 - W[2];
-    V[3] = K[3]*s0 - W[3];
-    xs[0] = K[0]*r0 + xs[0];
-    xs[1] = K[1]*r0 + xs[1];
-    xs[2] = K[2]*r0 + xs[2];
-    xs[3] = K[3]*r0 + xs[3];
-    Ps[0] = K[0]*V[0] - K[0]*W[0] + Ps[0];
-    Ps[1] = K[0]*V[1] - K[1]*W[0] + Ps[1];
-    Ps[2] = K[0]*V[2] - K[2]*W[0] + Ps[2];
-    Ps[3] = K[0]*V[3] - K[3]*W[0] + Ps[3];
-    Ps[4] = K[1]*V[1] - K[1]*W[1] + Ps[4];
-    Ps[5] = K[1]*V[2] - K[2]*W[1] + Ps[5];
-    Ps[6] = K[1]*V[3] - K[3]*W[1] + Ps[6];
-    Ps[7] = K[2]*V[2] - K[2]*W[2] + Ps[7];
-    Ps[8] = K[2]*V[3] - K[3]*W[2] + Ps[8];
-    Ps[9] = K[3]*V[3] - K[3]*W[3] + Ps[9];
+    V[0] = -W[0] + K[0]*s0;
+    V[1] = -W[1] + K[1]*s0;
+    V[2] = -W[2] + K[2]*s0;
+    V[3] = -W[3] + K[3]*s0;
+    xs[0] = xs[0] + K[0]*r0;
+    xs[1] = xs[1] + K[1]*r0;
+    xs[2] = xs[2] + K[2]*r0;
+    xs[3] = xs[3] + K[3]*r0;
+    Ps[0] = Ps[0] + K[0]*V[0] - K[0]*W[0];
+    Ps[1] = Ps[1] + K[0]*V[1] - K[1]*W[0];
+    Ps[2] = Ps[2] + K[0]*V[2] - K[2]*W[0];
+    Ps[3] = Ps[3] + K[0]*V[3] - K[3]*W[0];
+    Ps[4] = Ps[4] + K[1]*V[1] - K[1]*W[1];
+    Ps[5] = Ps[5] + K[1]*V[2] - K[2]*W[1];
+    Ps[6] = Ps[6] + K[1]*V[3] - K[3]*W[1];
+    Ps[7] = Ps[7] + K[2]*V[2] - K[2]*W[2];
+    Ps[8] = Ps[8] + K[2]*V[3] - K[3]*W[2];
+    Ps[9] = Ps[9] + K[3]*V[3] - K[3]*W[3];
     W[0] = H1_0*Ps[0] + H1_1*Ps[1];
     W[1] = H1_0*Ps[1] + H1_1*Ps[4];
     W[2] = H1_0*Ps[2] + H1_1*Ps[5];
     W[3] = H1_0*Ps[3] + H1_1*Ps[6];
-    const double s1 = H1_0*W[0] + H1_1*W[1] + 0.0225;
+    const double s1 = 0.0225 + H1_0*W[0] + H1_1*W[1];
     if (!isfinite(s1)) { return ROVER_EKF_NON_FINITE; }
     if (!(s1 > 0.0)) { return ROVER_EKF_NOT_POSITIVE_DEFINITE; }
     const double is1 = (1.0/s1);
-    const double r1 = -H1_0*(-x[0] + xs[0]) - H1_1*(-x[1] + xs[1]) + y[1];
-    nis = is1*(r1*r1) + nis;
+    const double r1 = y[1] - H1_0*(xs[0] - x[0]) - H1_1*(xs[1] - x[1]);
+    nis = nis + is1*(r1*r1);
     K[0] = W[0]*is1;
     K[1] = W[1]*is1;
     K[2] = W[2]*is1;
     K[3] = W[3]*is1;
-    V[0] = K[0]*s1 - W[0];
-    V[1] = K[1]*s1 - W[1];
-    V[2] = K[2]*s1 - W[2];
-    V[3] = K[3]*s1 - W[3];
-    xs[0] = K[0]*r1 + xs[0];
-    xs[1] = K[1]*r1 + xs[1];
-    xs[2] = K[2]*r1 + xs[2];
-    xs[3] = K[3]*r1 + xs[3];
-    Ps[0] = K[0]*V[0] - K[0]*W[0] + Ps[0];
-    Ps[1] = K[0]*V[1] - K[1]*W[0] + Ps[1];
-    Ps[2] = K[0]*V[2] - K[2]*W[0] + Ps[2];
-    Ps[3] = K[0]*V[3] - K[3]*W[0] + Ps[3];
-    Ps[4] = K[1]*V[1] - K[1]*W[1] + Ps[4];
-    Ps[5] = K[1]*V[2] - K[2]*W[1] + Ps[5];
-    Ps[6] = K[1]*V[3] - K[3]*W[1] + Ps[6];
-    Ps[7] = K[2]*V[2] - K[2]*W[2] + Ps[7];
-    Ps[8] = K[2]*V[3] - K[3]*W[2] + Ps[8];
-    Ps[9] = K[3]*V[3] - K[3]*W[3] + Ps[9];
+    V[0] = -W[0] + K[0]*s1;
+    V[1] = -W[1] + K[1]*s1;
+    V[2] = -W[2] + K[2]*s1;
+    V[3] = -W[3] + K[3]*s1;
+    xs[0] = xs[0] + K[0]*r1;
+    xs[1] = xs[1] + K[1]*r1;
+    xs[2] = xs[2] + K[2]*r1;
+    xs[3] = xs[3] + K[3]*r1;
+    Ps[0] = Ps[0] + K[0]*V[0] - K[0]*W[0];
+    Ps[1] = Ps[1] + K[0]*V[1] - K[1]*W[0];
+    Ps[2] = Ps[2] + K[0]*V[2] - K[2]*W[0];
+    Ps[3] = Ps[3] + K[0]*V[3] - K[3]*W[0];
+    Ps[4] = Ps[4] + K[1]*V[1] - K[1]*W[1];
+    Ps[5] = Ps[5] + K[1]*V[2] - K[2]*W[1];
+    Ps[6] = Ps[6] + K[1]*V[3] - K[3]*W[1];
+    Ps[7] = Ps[7] + K[2]*V[2] - K[2]*W[2];
+    Ps[8] = Ps[8] + K[2]*V[3] - K[3]*W[2];
+    Ps[9] = Ps[9] + K[3]*V[3] - K[3]*W[3];
     xs[2] = rover_ekf_wrap(xs[2]);
     if (!rover_ekf_finite(xs, 4u) || !rover_ekf_finite(Ps, 10u)) {
         return ROVER_EKF_NON_FINITE;
@@ -528,20 +528,20 @@ int rover_ekf_update_range_cd_nis(rover_ekf_t *s, const double *z, double *nis_o
     const double Lc1_0 = Lci0*Ps[1];
     const double Lc2_0 = Lci0*Ps[2];
     const double Lc3_0 = Lci0*Ps[3];
-    const double Lcd1 = -(Lc1_0*Lc1_0) + Ps[4];
+    const double Lcd1 = Ps[4] - (Lc1_0*Lc1_0);
     if (!isfinite(Lcd1)) { return ROVER_EKF_NON_FINITE; }
     if (!(Lcd1 > 0.0)) { return ROVER_EKF_NOT_POSITIVE_DEFINITE; }
     const double Lc1_1 = sqrt(Lcd1);
     const double Lci1 = (1.0/Lc1_1);
-    const double Lc2_1 = Lci1*(-Lc1_0*Lc2_0 + Ps[5]);
-    const double Lc3_1 = Lci1*(-Lc1_0*Lc3_0 + Ps[6]);
-    const double Lcd2 = -(Lc2_0*Lc2_0) - (Lc2_1*Lc2_1) + Ps[7];
+    const double Lc2_1 = Lci1*(Ps[5] - Lc1_0*Lc2_0);
+    const double Lc3_1 = Lci1*(Ps[6] - Lc1_0*Lc3_0);
+    const double Lcd2 = Ps[7] - (Lc2_0*Lc2_0) - (Lc2_1*Lc2_1);
     if (!isfinite(Lcd2)) { return ROVER_EKF_NON_FINITE; }
     if (!(Lcd2 > 0.0)) { return ROVER_EKF_NOT_POSITIVE_DEFINITE; }
     const double Lc2_2 = sqrt(Lcd2);
     const double Lci2 = (1.0/Lc2_2);
-    const double Lc3_2 = Lci2*(-Lc2_0*Lc3_0 - Lc2_1*Lc3_1 + Ps[8]);
-    const double Lcd3 = -(Lc3_0*Lc3_0) - (Lc3_1*Lc3_1) - (Lc3_2*Lc3_2) + Ps[9];
+    const double Lc3_2 = Lci2*(Ps[8] - Lc2_0*Lc3_0 - Lc2_1*Lc3_1);
+    const double Lcd3 = Ps[9] - (Lc3_0*Lc3_0) - (Lc3_1*Lc3_1) - (Lc3_2*Lc3_2);
     if (!isfinite(Lcd3)) { return ROVER_EKF_NON_FINITE; }
     if (!(Lcd3 > 0.0)) { return ROVER_EKF_NOT_POSITIVE_DEFINITE; }
 
@@ -579,40 +579,40 @@ int rover_ekf_update_compass_nis(rover_ekf_t *s, const double *z, double *nis_ou
 
     memcpy(xs, s->x, sizeof xs);
     memcpy(Ps, s->P, sizeof Ps);
-    y[0] = -x[2] + z[0];
+    y[0] = z[0] - x[2];
     y[0] = rover_ekf_wrap(y[0]);
     W[0] = Ps[2];
     W[1] = Ps[5];
     W[2] = Ps[7];
     W[3] = Ps[8];
-    const double s0 = W[2] + 0.0027415567780803775;
+    const double s0 = 0.0027415567780803775 + W[2];
     if (!isfinite(s0)) { return ROVER_EKF_NON_FINITE; }
     if (!(s0 > 0.0)) { return ROVER_EKF_NOT_POSITIVE_DEFINITE; }
     const double is0 = (1.0/s0);
     const double r0 = y[0];
-    nis = is0*(r0*r0) + nis;
+    nis = nis + is0*(r0*r0);
     K[0] = W[0]*is0;
     K[1] = W[1]*is0;
     K[2] = W[2]*is0;
     K[3] = W[3]*is0;
-    V[0] = K[0]*s0 - W[0];
-    V[1] = K[1]*s0 - W[1];
-    V[2] = K[2]*s0 - W[2];
-    V[3] = K[3]*s0 - W[3];
-    xs[0] = K[0]*r0 + xs[0];
-    xs[1] = K[1]*r0 + xs[1];
-    xs[2] = K[2]*r0 + xs[2];
-    xs[3] = K[3]*r0 + xs[3];
-    Ps[0] = K[0]*V[0] - K[0]*W[0] + Ps[0];
-    Ps[1] = K[0]*V[1] - K[1]*W[0] + Ps[1];
-    Ps[2] = K[0]*V[2] - K[2]*W[0] + Ps[2];
-    Ps[3] = K[0]*V[3] - K[3]*W[0] + Ps[3];
-    Ps[4] = K[1]*V[1] - K[1]*W[1] + Ps[4];
-    Ps[5] = K[1]*V[2] - K[2]*W[1] + Ps[5];
-    Ps[6] = K[1]*V[3] - K[3]*W[1] + Ps[6];
-    Ps[7] = K[2]*V[2] - K[2]*W[2] + Ps[7];
-    Ps[8] = K[2]*V[3] - K[3]*W[2] + Ps[8];
-    Ps[9] = K[3]*V[3] - K[3]*W[3] + Ps[9];
+    V[0] = -W[0] + K[0]*s0;
+    V[1] = -W[1] + K[1]*s0;
+    V[2] = -W[2] + K[2]*s0;
+    V[3] = -W[3] + K[3]*s0;
+    xs[0] = xs[0] + K[0]*r0;
+    xs[1] = xs[1] + K[1]*r0;
+    xs[2] = xs[2] + K[2]*r0;
+    xs[3] = xs[3] + K[3]*r0;
+    Ps[0] = Ps[0] + K[0]*V[0] - K[0]*W[0];
+    Ps[1] = Ps[1] + K[0]*V[1] - K[1]*W[0];
+    Ps[2] = Ps[2] + K[0]*V[2] - K[2]*W[0];
+    Ps[3] = Ps[3] + K[0]*V[3] - K[3]*W[0];
+    Ps[4] = Ps[4] + K[1]*V[1] - K[1]*W[1];
+    Ps[5] = Ps[5] + K[1]*V[2] - K[2]*W[1];
+    Ps[6] = Ps[6] + K[1]*V[3] - K[3]*W[1];
+    Ps[7] = Ps[7] + K[2]*V[2] - K[2]*W[2];
+    Ps[8] = Ps[8] + K[2]*V[3] - K[3]*W[2];
+    Ps[9] = Ps[9] + K[3]*V[3] - K[3]*W[3];
     xs[2] = rover_ekf_wrap(xs[2]);
     if (!rover_ekf_finite(xs, 4u) || !rover_ekf_finite(Ps, 10u)) {
         return ROVER_EKF_NON_FINITE;
@@ -627,20 +627,20 @@ int rover_ekf_update_compass_nis(rover_ekf_t *s, const double *z, double *nis_ou
     const double Lc1_0 = Lci0*Ps[1];
     const double Lc2_0 = Lci0*Ps[2];
     const double Lc3_0 = Lci0*Ps[3];
-    const double Lcd1 = -(Lc1_0*Lc1_0) + Ps[4];
+    const double Lcd1 = Ps[4] - (Lc1_0*Lc1_0);
     if (!isfinite(Lcd1)) { return ROVER_EKF_NON_FINITE; }
     if (!(Lcd1 > 0.0)) { return ROVER_EKF_NOT_POSITIVE_DEFINITE; }
     const double Lc1_1 = sqrt(Lcd1);
     const double Lci1 = (1.0/Lc1_1);
-    const double Lc2_1 = Lci1*(-Lc1_0*Lc2_0 + Ps[5]);
-    const double Lc3_1 = Lci1*(-Lc1_0*Lc3_0 + Ps[6]);
-    const double Lcd2 = -(Lc2_0*Lc2_0) - (Lc2_1*Lc2_1) + Ps[7];
+    const double Lc2_1 = Lci1*(Ps[5] - Lc1_0*Lc2_0);
+    const double Lc3_1 = Lci1*(Ps[6] - Lc1_0*Lc3_0);
+    const double Lcd2 = Ps[7] - (Lc2_0*Lc2_0) - (Lc2_1*Lc2_1);
     if (!isfinite(Lcd2)) { return ROVER_EKF_NON_FINITE; }
     if (!(Lcd2 > 0.0)) { return ROVER_EKF_NOT_POSITIVE_DEFINITE; }
     const double Lc2_2 = sqrt(Lcd2);
     const double Lci2 = (1.0/Lc2_2);
-    const double Lc3_2 = Lci2*(-Lc2_0*Lc3_0 - Lc2_1*Lc3_1 + Ps[8]);
-    const double Lcd3 = -(Lc3_0*Lc3_0) - (Lc3_1*Lc3_1) - (Lc3_2*Lc3_2) + Ps[9];
+    const double Lc3_2 = Lci2*(Ps[8] - Lc2_0*Lc3_0 - Lc2_1*Lc3_1);
+    const double Lcd3 = Ps[9] - (Lc3_0*Lc3_0) - (Lc3_1*Lc3_1) - (Lc3_2*Lc3_2);
     if (!isfinite(Lcd3)) { return ROVER_EKF_NON_FINITE; }
     if (!(Lcd3 > 0.0)) { return ROVER_EKF_NOT_POSITIVE_DEFINITE; }
 

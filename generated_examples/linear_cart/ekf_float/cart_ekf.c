@@ -118,10 +118,10 @@ int cart_ekf_predict(cart_ekf_t *s, const float *u, float dt)
     const float t2 = (0.5F)*(dt*dt);
     const float t3 = t1*t2;
     const float t4 = dt*t1;
-    xn[0] = dt*x[1] + t0*t3 + x[0];
-    xn[1] = t0*t4 + x[1];
+    xn[0] = x[0] + dt*x[1] + t0*t3;
+    xn[1] = x[1] + t0*t4;
     xn[2] = x[2];
-    const float Q0_0 = (0.3333333333333333F)*(dt*dt*dt)*par->q_acc;
+    const float Q0_0 = (0.3333333333333333F)*par->q_acc*(dt*dt*dt);
     const float Q0_1 = par->q_acc*t2;
     const float Q1_1 = dt*par->q_acc;
     const float Q2_2 = dt*par->q_dist;
@@ -130,10 +130,10 @@ int cart_ekf_predict(cart_ekf_t *s, const float *u, float dt)
     const float A0_2 = P[2] + P[4]*dt + P[5]*t3;
     const float A1_1 = P[3] + P[4]*t4;
     const float A1_2 = P[4] + P[5]*t4;
-    Pn[0] = A0_0 + A0_1*dt + A0_2*t3 + Q0_0;
-    Pn[1] = A0_1 + A0_2*t4 + Q0_1;
+    Pn[0] = A0_0 + Q0_0 + A0_1*dt + A0_2*t3;
+    Pn[1] = A0_1 + Q0_1 + A0_2*t4;
     Pn[2] = A0_2;
-    Pn[3] = A1_1 + A1_2*t4 + Q1_1;
+    Pn[3] = A1_1 + Q1_1 + A1_2*t4;
     Pn[4] = A1_2;
     Pn[5] = P[5] + Q2_2;
     if (!cart_ekf_finite(xn, 3u) || !cart_ekf_finite(Pn, 6u)) {
@@ -148,13 +148,13 @@ int cart_ekf_predict(cart_ekf_t *s, const float *u, float dt)
     const float Lci0 = (1.0F/Lc0_0);
     const float Lc1_0 = Lci0*Pn[1];
     const float Lc2_0 = Lci0*Pn[2];
-    const float Lcd1 = -(Lc1_0*Lc1_0) + Pn[3];
+    const float Lcd1 = Pn[3] - (Lc1_0*Lc1_0);
     if (!isfinite(Lcd1)) { return CART_EKF_NON_FINITE; }
     if (!(Lcd1 > 0.0F)) { return CART_EKF_NOT_POSITIVE_DEFINITE; }
     const float Lc1_1 = sqrtf(Lcd1);
     const float Lci1 = (1.0F/Lc1_1);
-    const float Lc2_1 = Lci1*(-Lc1_0*Lc2_0 + Pn[4]);
-    const float Lcd2 = -(Lc2_0*Lc2_0) - (Lc2_1*Lc2_1) + Pn[5];
+    const float Lc2_1 = Lci1*(Pn[4] - Lc1_0*Lc2_0);
+    const float Lcd2 = Pn[5] - (Lc2_0*Lc2_0) - (Lc2_1*Lc2_1);
     if (!isfinite(Lcd2)) { return CART_EKF_NON_FINITE; }
     if (!(Lcd2 > 0.0F)) { return CART_EKF_NOT_POSITIVE_DEFINITE; }
 
@@ -180,31 +180,31 @@ int cart_ekf_update_encoder_nis(cart_ekf_t *s, const float *z, float *nis_out)
 
     memcpy(xs, s->x, sizeof xs);
     memcpy(Ps, s->P, sizeof Ps);
-    y[0] = -x[0] + z[0];
+    y[0] = z[0] - x[0];
     W[0] = Ps[0];
     W[1] = Ps[1];
     W[2] = Ps[2];
-    const float s0 = W[0] + 2.5e-07F;
+    const float s0 = 2.5e-07F + W[0];
     if (!isfinite(s0)) { return CART_EKF_NON_FINITE; }
     if (!(s0 > 0.0F)) { return CART_EKF_NOT_POSITIVE_DEFINITE; }
     const float is0 = (1.0F/s0);
     const float r0 = y[0];
-    nis = is0*(r0*r0) + nis;
+    nis = nis + is0*(r0*r0);
     K[0] = W[0]*is0;
     K[1] = W[1]*is0;
     K[2] = W[2]*is0;
-    V[0] = K[0]*s0 - W[0];
-    V[1] = K[1]*s0 - W[1];
-    V[2] = K[2]*s0 - W[2];
-    xs[0] = K[0]*r0 + xs[0];
-    xs[1] = K[1]*r0 + xs[1];
-    xs[2] = K[2]*r0 + xs[2];
-    Ps[0] = K[0]*V[0] - K[0]*W[0] + Ps[0];
-    Ps[1] = K[0]*V[1] - K[1]*W[0] + Ps[1];
-    Ps[2] = K[0]*V[2] - K[2]*W[0] + Ps[2];
-    Ps[3] = K[1]*V[1] - K[1]*W[1] + Ps[3];
-    Ps[4] = K[1]*V[2] - K[2]*W[1] + Ps[4];
-    Ps[5] = K[2]*V[2] - K[2]*W[2] + Ps[5];
+    V[0] = -W[0] + K[0]*s0;
+    V[1] = -W[1] + K[1]*s0;
+    V[2] = -W[2] + K[2]*s0;
+    xs[0] = xs[0] + K[0]*r0;
+    xs[1] = xs[1] + K[1]*r0;
+    xs[2] = xs[2] + K[2]*r0;
+    Ps[0] = Ps[0] + K[0]*V[0] - K[0]*W[0];
+    Ps[1] = Ps[1] + K[0]*V[1] - K[1]*W[0];
+    Ps[2] = Ps[2] + K[0]*V[2] - K[2]*W[0];
+    Ps[3] = Ps[3] + K[1]*V[1] - K[1]*W[1];
+    Ps[4] = Ps[4] + K[1]*V[2] - K[2]*W[1];
+    Ps[5] = Ps[5] + K[2]*V[2] - K[2]*W[2];
     if (!cart_ekf_finite(xs, 3u) || !cart_ekf_finite(Ps, 6u)) {
         return CART_EKF_NON_FINITE;
     }
@@ -217,13 +217,13 @@ int cart_ekf_update_encoder_nis(cart_ekf_t *s, const float *z, float *nis_out)
     const float Lci0 = (1.0F/Lc0_0);
     const float Lc1_0 = Lci0*Ps[1];
     const float Lc2_0 = Lci0*Ps[2];
-    const float Lcd1 = -(Lc1_0*Lc1_0) + Ps[3];
+    const float Lcd1 = Ps[3] - (Lc1_0*Lc1_0);
     if (!isfinite(Lcd1)) { return CART_EKF_NON_FINITE; }
     if (!(Lcd1 > 0.0F)) { return CART_EKF_NOT_POSITIVE_DEFINITE; }
     const float Lc1_1 = sqrtf(Lcd1);
     const float Lci1 = (1.0F/Lc1_1);
-    const float Lc2_1 = Lci1*(-Lc1_0*Lc2_0 + Ps[4]);
-    const float Lcd2 = -(Lc2_0*Lc2_0) - (Lc2_1*Lc2_1) + Ps[5];
+    const float Lc2_1 = Lci1*(Ps[4] - Lc1_0*Lc2_0);
+    const float Lcd2 = Ps[5] - (Lc2_0*Lc2_0) - (Lc2_1*Lc2_1);
     if (!isfinite(Lcd2)) { return CART_EKF_NON_FINITE; }
     if (!(Lcd2 > 0.0F)) { return CART_EKF_NOT_POSITIVE_DEFINITE; }
 
@@ -261,31 +261,31 @@ int cart_ekf_update_speed_nis(cart_ekf_t *s, const float *z, float *nis_out)
 
     memcpy(xs, s->x, sizeof xs);
     memcpy(Ps, s->P, sizeof Ps);
-    y[0] = -x[1] + z[0];
+    y[0] = z[0] - x[1];
     W[0] = Ps[1];
     W[1] = Ps[3];
     W[2] = Ps[4];
-    const float s0 = W[1] + 0.0001F;
+    const float s0 = 0.0001F + W[1];
     if (!isfinite(s0)) { return CART_EKF_NON_FINITE; }
     if (!(s0 > 0.0F)) { return CART_EKF_NOT_POSITIVE_DEFINITE; }
     const float is0 = (1.0F/s0);
     const float r0 = y[0];
-    nis = is0*(r0*r0) + nis;
+    nis = nis + is0*(r0*r0);
     K[0] = W[0]*is0;
     K[1] = W[1]*is0;
     K[2] = W[2]*is0;
-    V[0] = K[0]*s0 - W[0];
-    V[1] = K[1]*s0 - W[1];
-    V[2] = K[2]*s0 - W[2];
-    xs[0] = K[0]*r0 + xs[0];
-    xs[1] = K[1]*r0 + xs[1];
-    xs[2] = K[2]*r0 + xs[2];
-    Ps[0] = K[0]*V[0] - K[0]*W[0] + Ps[0];
-    Ps[1] = K[0]*V[1] - K[1]*W[0] + Ps[1];
-    Ps[2] = K[0]*V[2] - K[2]*W[0] + Ps[2];
-    Ps[3] = K[1]*V[1] - K[1]*W[1] + Ps[3];
-    Ps[4] = K[1]*V[2] - K[2]*W[1] + Ps[4];
-    Ps[5] = K[2]*V[2] - K[2]*W[2] + Ps[5];
+    V[0] = -W[0] + K[0]*s0;
+    V[1] = -W[1] + K[1]*s0;
+    V[2] = -W[2] + K[2]*s0;
+    xs[0] = xs[0] + K[0]*r0;
+    xs[1] = xs[1] + K[1]*r0;
+    xs[2] = xs[2] + K[2]*r0;
+    Ps[0] = Ps[0] + K[0]*V[0] - K[0]*W[0];
+    Ps[1] = Ps[1] + K[0]*V[1] - K[1]*W[0];
+    Ps[2] = Ps[2] + K[0]*V[2] - K[2]*W[0];
+    Ps[3] = Ps[3] + K[1]*V[1] - K[1]*W[1];
+    Ps[4] = Ps[4] + K[1]*V[2] - K[2]*W[1];
+    Ps[5] = Ps[5] + K[2]*V[2] - K[2]*W[2];
     if (!cart_ekf_finite(xs, 3u) || !cart_ekf_finite(Ps, 6u)) {
         return CART_EKF_NON_FINITE;
     }
@@ -298,13 +298,13 @@ int cart_ekf_update_speed_nis(cart_ekf_t *s, const float *z, float *nis_out)
     const float Lci0 = (1.0F/Lc0_0);
     const float Lc1_0 = Lci0*Ps[1];
     const float Lc2_0 = Lci0*Ps[2];
-    const float Lcd1 = -(Lc1_0*Lc1_0) + Ps[3];
+    const float Lcd1 = Ps[3] - (Lc1_0*Lc1_0);
     if (!isfinite(Lcd1)) { return CART_EKF_NON_FINITE; }
     if (!(Lcd1 > 0.0F)) { return CART_EKF_NOT_POSITIVE_DEFINITE; }
     const float Lc1_1 = sqrtf(Lcd1);
     const float Lci1 = (1.0F/Lc1_1);
-    const float Lc2_1 = Lci1*(-Lc1_0*Lc2_0 + Ps[4]);
-    const float Lcd2 = -(Lc2_0*Lc2_0) - (Lc2_1*Lc2_1) + Ps[5];
+    const float Lc2_1 = Lci1*(Ps[4] - Lc1_0*Lc2_0);
+    const float Lcd2 = Ps[5] - (Lc2_0*Lc2_0) - (Lc2_1*Lc2_1);
     if (!isfinite(Lcd2)) { return CART_EKF_NON_FINITE; }
     if (!(Lcd2 > 0.0F)) { return CART_EKF_NOT_POSITIVE_DEFINITE; }
 

@@ -70,13 +70,13 @@ static int cart_ukf_commit_pd(const double *P)
     const double Lci0 = (1.0/Lc0_0);
     const double Lc1_0 = Lci0*P[1];
     const double Lc2_0 = Lci0*P[2];
-    const double Lcd1 = -(Lc1_0*Lc1_0) + P[3];
+    const double Lcd1 = P[3] - (Lc1_0*Lc1_0);
     if (!isfinite(Lcd1)) { return CART_UKF_NON_FINITE; }
     if (!(Lcd1 > 0.0)) { return CART_UKF_NOT_POSITIVE_DEFINITE; }
     const double Lc1_1 = sqrt(Lcd1);
     const double Lci1 = (1.0/Lc1_1);
-    const double Lc2_1 = Lci1*(-Lc1_0*Lc2_0 + P[4]);
-    const double Lcd2 = -(Lc2_0*Lc2_0) - (Lc2_1*Lc2_1) + P[5];
+    const double Lc2_1 = Lci1*(P[4] - Lc1_0*Lc2_0);
+    const double Lcd2 = P[5] - (Lc2_0*Lc2_0) - (Lc2_1*Lc2_1);
     if (!isfinite(Lcd2)) { return CART_UKF_NON_FINITE; }
     if (!(Lcd2 > 0.0)) { return CART_UKF_NOT_POSITIVE_DEFINITE; }
     return CART_UKF_OK;
@@ -94,13 +94,13 @@ static int cart_ukf_factor(const double *P, double *Lf)
     const double Li0 = (1.0/L0_0);
     const double L1_0 = Li0*P[1];
     const double L2_0 = Li0*P[2];
-    const double Ld1 = -(L1_0*L1_0) + P[3];
+    const double Ld1 = P[3] - (L1_0*L1_0);
     if (!isfinite(Ld1)) { return CART_UKF_NON_FINITE; }
     if (!(Ld1 > 0.0)) { return CART_UKF_NOT_POSITIVE_DEFINITE; }
     const double L1_1 = sqrt(Ld1);
     const double Li1 = (1.0/L1_1);
-    const double L2_1 = Li1*(-L1_0*L2_0 + P[4]);
-    const double Ld2 = -(L2_0*L2_0) - (L2_1*L2_1) + P[5];
+    const double L2_1 = Li1*(P[4] - L1_0*L2_0);
+    const double Ld2 = P[5] - (L2_0*L2_0) - (L2_1*L2_1);
     if (!isfinite(Ld2)) { return CART_UKF_NON_FINITE; }
     if (!(Ld2 > 0.0)) { return CART_UKF_NOT_POSITIVE_DEFINITE; }
     const double L2_2 = sqrt(Ld2);
@@ -187,9 +187,9 @@ int cart_ukf_predict(cart_ukf_t *s, const double *u, double dt)
     const double ft2 = (0.5)*(dt*dt);
     const double ft3 = ft1*ft2;
     const double ft4 = dt*ft1;
-    const double fc0 = dt*x[1] + ft0*ft3 + x[0];
-    const double fc1 = ft0*ft4 + x[1];
-    const double Q0_0 = (0.3333333333333333)*(dt*dt*dt)*par->q_acc;
+    const double fc0 = x[0] + dt*x[1] + ft0*ft3;
+    const double fc1 = x[1] + ft0*ft4;
+    const double Q0_0 = (0.3333333333333333)*par->q_acc*(dt*dt*dt);
     const double Q0_1 = ft2*par->q_acc;
     const double Q1_1 = dt*par->q_acc;
     const double Q2_2 = dt*par->q_dist;
@@ -201,10 +201,10 @@ int cart_ukf_predict(cart_ukf_t *s, const double *u, double dt)
     const double AP0_2 = P[2] + P[4]*dt + P[5]*ft3;
     const double AP1_1 = P[3] + P[4]*ft4;
     const double AP1_2 = P[4] + P[5]*ft4;
-    Pn[0] = AP0_0 + AP0_1*dt + AP0_2*ft3 + Q0_0;
-    Pn[1] = AP0_1 + AP0_2*ft4 + Q0_1;
+    Pn[0] = AP0_0 + Q0_0 + AP0_1*dt + AP0_2*ft3;
+    Pn[1] = AP0_1 + Q0_1 + AP0_2*ft4;
     Pn[2] = AP0_2;
-    Pn[3] = AP1_1 + AP1_2*ft4 + Q1_1;
+    Pn[3] = AP1_1 + Q1_1 + AP1_2*ft4;
     Pn[4] = AP1_2;
     Pn[5] = P[5] + Q2_2;
     if (!cart_ukf_finite(xn, 3u) || !cart_ukf_finite(Pn, 6u)) {
@@ -242,8 +242,8 @@ int cart_ukf_update_encoder_nis(cart_ukf_t *s, const double *z, double *nis_out)
             return st;
         }
     }
-    y[0] = -x[0] + z[0];
-    const double S0_0 = P[0] + 2.5e-07;
+    y[0] = z[0] - x[0];
+    const double S0_0 = 2.5e-07 + P[0];
     const double Sd0 = S0_0;
     if (!isfinite(Sd0)) { return CART_UKF_NON_FINITE; }
     if (!(Sd0 > 0.0)) { return CART_UKF_NOT_POSITIVE_DEFINITE; }
@@ -252,15 +252,15 @@ int cart_ukf_update_encoder_nis(cart_ukf_t *s, const double *z, double *nis_out)
     const double K0 = P[0]*iS;
     const double K1 = P[1]*iS;
     const double K2 = P[2]*iS;
-    xs[0] = K0*y[0] + x[0];
-    xs[1] = K1*y[0] + x[1];
-    xs[2] = K2*y[0] + x[2];
-    Ps[0] = -K0*P[0] + P[0];
-    Ps[1] = -K0*P[1] + P[1];
-    Ps[2] = -K0*P[2] + P[2];
-    Ps[3] = -K1*P[1] + P[3];
-    Ps[4] = -K1*P[2] + P[4];
-    Ps[5] = -K2*P[2] + P[5];
+    xs[0] = x[0] + K0*y[0];
+    xs[1] = x[1] + K1*y[0];
+    xs[2] = x[2] + K2*y[0];
+    Ps[0] = P[0] - K0*P[0];
+    Ps[1] = P[1] - K0*P[1];
+    Ps[2] = P[2] - K0*P[2];
+    Ps[3] = P[3] - K1*P[1];
+    Ps[4] = P[4] - K1*P[2];
+    Ps[5] = P[5] - K2*P[2];
     if (!isfinite(nis)) {
         return CART_UKF_NON_FINITE;
     }
@@ -308,8 +308,8 @@ int cart_ukf_update_speed_nis(cart_ukf_t *s, const double *z, double *nis_out)
             return st;
         }
     }
-    y[0] = -x[1] + z[0];
-    const double S0_0 = P[3] + 0.0001;
+    y[0] = z[0] - x[1];
+    const double S0_0 = 0.0001 + P[3];
     const double Sd0 = S0_0;
     if (!isfinite(Sd0)) { return CART_UKF_NON_FINITE; }
     if (!(Sd0 > 0.0)) { return CART_UKF_NOT_POSITIVE_DEFINITE; }
@@ -318,15 +318,15 @@ int cart_ukf_update_speed_nis(cart_ukf_t *s, const double *z, double *nis_out)
     const double K0 = P[1]*iS;
     const double K1 = P[3]*iS;
     const double K2 = P[4]*iS;
-    xs[0] = K0*y[0] + x[0];
-    xs[1] = K1*y[0] + x[1];
-    xs[2] = K2*y[0] + x[2];
-    Ps[0] = -K0*P[1] + P[0];
-    Ps[1] = -K0*P[3] + P[1];
-    Ps[2] = -K0*P[4] + P[2];
-    Ps[3] = -K1*P[3] + P[3];
-    Ps[4] = -K1*P[4] + P[4];
-    Ps[5] = -K2*P[4] + P[5];
+    xs[0] = x[0] + K0*y[0];
+    xs[1] = x[1] + K1*y[0];
+    xs[2] = x[2] + K2*y[0];
+    Ps[0] = P[0] - K0*P[1];
+    Ps[1] = P[1] - K0*P[3];
+    Ps[2] = P[2] - K0*P[4];
+    Ps[3] = P[3] - K1*P[3];
+    Ps[4] = P[4] - K1*P[4];
+    Ps[5] = P[5] - K2*P[4];
     if (!isfinite(nis)) {
         return CART_UKF_NON_FINITE;
     }

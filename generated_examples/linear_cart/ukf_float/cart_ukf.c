@@ -70,13 +70,13 @@ static int cart_ukf_commit_pd(const float *P)
     const float Lci0 = (1.0F/Lc0_0);
     const float Lc1_0 = Lci0*P[1];
     const float Lc2_0 = Lci0*P[2];
-    const float Lcd1 = -(Lc1_0*Lc1_0) + P[3];
+    const float Lcd1 = P[3] - (Lc1_0*Lc1_0);
     if (!isfinite(Lcd1)) { return CART_UKF_NON_FINITE; }
     if (!(Lcd1 > 0.0F)) { return CART_UKF_NOT_POSITIVE_DEFINITE; }
     const float Lc1_1 = sqrtf(Lcd1);
     const float Lci1 = (1.0F/Lc1_1);
-    const float Lc2_1 = Lci1*(-Lc1_0*Lc2_0 + P[4]);
-    const float Lcd2 = -(Lc2_0*Lc2_0) - (Lc2_1*Lc2_1) + P[5];
+    const float Lc2_1 = Lci1*(P[4] - Lc1_0*Lc2_0);
+    const float Lcd2 = P[5] - (Lc2_0*Lc2_0) - (Lc2_1*Lc2_1);
     if (!isfinite(Lcd2)) { return CART_UKF_NON_FINITE; }
     if (!(Lcd2 > 0.0F)) { return CART_UKF_NOT_POSITIVE_DEFINITE; }
     return CART_UKF_OK;
@@ -94,13 +94,13 @@ static int cart_ukf_factor(const float *P, float *Lf)
     const float Li0 = (1.0F/L0_0);
     const float L1_0 = Li0*P[1];
     const float L2_0 = Li0*P[2];
-    const float Ld1 = -(L1_0*L1_0) + P[3];
+    const float Ld1 = P[3] - (L1_0*L1_0);
     if (!isfinite(Ld1)) { return CART_UKF_NON_FINITE; }
     if (!(Ld1 > 0.0F)) { return CART_UKF_NOT_POSITIVE_DEFINITE; }
     const float L1_1 = sqrtf(Ld1);
     const float Li1 = (1.0F/L1_1);
-    const float L2_1 = Li1*(-L1_0*L2_0 + P[4]);
-    const float Ld2 = -(L2_0*L2_0) - (L2_1*L2_1) + P[5];
+    const float L2_1 = Li1*(P[4] - L1_0*L2_0);
+    const float Ld2 = P[5] - (L2_0*L2_0) - (L2_1*L2_1);
     if (!isfinite(Ld2)) { return CART_UKF_NON_FINITE; }
     if (!(Ld2 > 0.0F)) { return CART_UKF_NOT_POSITIVE_DEFINITE; }
     const float L2_2 = sqrtf(Ld2);
@@ -187,9 +187,9 @@ int cart_ukf_predict(cart_ukf_t *s, const float *u, float dt)
     const float ft2 = (0.5F)*(dt*dt);
     const float ft3 = ft1*ft2;
     const float ft4 = dt*ft1;
-    const float fc0 = dt*x[1] + ft0*ft3 + x[0];
-    const float fc1 = ft0*ft4 + x[1];
-    const float Q0_0 = (0.3333333333333333F)*(dt*dt*dt)*par->q_acc;
+    const float fc0 = x[0] + dt*x[1] + ft0*ft3;
+    const float fc1 = x[1] + ft0*ft4;
+    const float Q0_0 = (0.3333333333333333F)*par->q_acc*(dt*dt*dt);
     const float Q0_1 = ft2*par->q_acc;
     const float Q1_1 = dt*par->q_acc;
     const float Q2_2 = dt*par->q_dist;
@@ -201,10 +201,10 @@ int cart_ukf_predict(cart_ukf_t *s, const float *u, float dt)
     const float AP0_2 = P[2] + P[4]*dt + P[5]*ft3;
     const float AP1_1 = P[3] + P[4]*ft4;
     const float AP1_2 = P[4] + P[5]*ft4;
-    Pn[0] = AP0_0 + AP0_1*dt + AP0_2*ft3 + Q0_0;
-    Pn[1] = AP0_1 + AP0_2*ft4 + Q0_1;
+    Pn[0] = AP0_0 + Q0_0 + AP0_1*dt + AP0_2*ft3;
+    Pn[1] = AP0_1 + Q0_1 + AP0_2*ft4;
     Pn[2] = AP0_2;
-    Pn[3] = AP1_1 + AP1_2*ft4 + Q1_1;
+    Pn[3] = AP1_1 + Q1_1 + AP1_2*ft4;
     Pn[4] = AP1_2;
     Pn[5] = P[5] + Q2_2;
     if (!cart_ukf_finite(xn, 3u) || !cart_ukf_finite(Pn, 6u)) {
@@ -242,8 +242,8 @@ int cart_ukf_update_encoder_nis(cart_ukf_t *s, const float *z, float *nis_out)
             return st;
         }
     }
-    y[0] = -x[0] + z[0];
-    const float S0_0 = P[0] + 2.5e-07F;
+    y[0] = z[0] - x[0];
+    const float S0_0 = 2.5e-07F + P[0];
     const float Sd0 = S0_0;
     if (!isfinite(Sd0)) { return CART_UKF_NON_FINITE; }
     if (!(Sd0 > 0.0F)) { return CART_UKF_NOT_POSITIVE_DEFINITE; }
@@ -252,15 +252,15 @@ int cart_ukf_update_encoder_nis(cart_ukf_t *s, const float *z, float *nis_out)
     const float K0 = P[0]*iS;
     const float K1 = P[1]*iS;
     const float K2 = P[2]*iS;
-    xs[0] = K0*y[0] + x[0];
-    xs[1] = K1*y[0] + x[1];
-    xs[2] = K2*y[0] + x[2];
-    Ps[0] = -K0*P[0] + P[0];
-    Ps[1] = -K0*P[1] + P[1];
-    Ps[2] = -K0*P[2] + P[2];
-    Ps[3] = -K1*P[1] + P[3];
-    Ps[4] = -K1*P[2] + P[4];
-    Ps[5] = -K2*P[2] + P[5];
+    xs[0] = x[0] + K0*y[0];
+    xs[1] = x[1] + K1*y[0];
+    xs[2] = x[2] + K2*y[0];
+    Ps[0] = P[0] - K0*P[0];
+    Ps[1] = P[1] - K0*P[1];
+    Ps[2] = P[2] - K0*P[2];
+    Ps[3] = P[3] - K1*P[1];
+    Ps[4] = P[4] - K1*P[2];
+    Ps[5] = P[5] - K2*P[2];
     if (!isfinite(nis)) {
         return CART_UKF_NON_FINITE;
     }
@@ -308,8 +308,8 @@ int cart_ukf_update_speed_nis(cart_ukf_t *s, const float *z, float *nis_out)
             return st;
         }
     }
-    y[0] = -x[1] + z[0];
-    const float S0_0 = P[3] + 0.0001F;
+    y[0] = z[0] - x[1];
+    const float S0_0 = 0.0001F + P[3];
     const float Sd0 = S0_0;
     if (!isfinite(Sd0)) { return CART_UKF_NON_FINITE; }
     if (!(Sd0 > 0.0F)) { return CART_UKF_NOT_POSITIVE_DEFINITE; }
@@ -318,15 +318,15 @@ int cart_ukf_update_speed_nis(cart_ukf_t *s, const float *z, float *nis_out)
     const float K0 = P[1]*iS;
     const float K1 = P[3]*iS;
     const float K2 = P[4]*iS;
-    xs[0] = K0*y[0] + x[0];
-    xs[1] = K1*y[0] + x[1];
-    xs[2] = K2*y[0] + x[2];
-    Ps[0] = -K0*P[1] + P[0];
-    Ps[1] = -K0*P[3] + P[1];
-    Ps[2] = -K0*P[4] + P[2];
-    Ps[3] = -K1*P[3] + P[3];
-    Ps[4] = -K1*P[4] + P[4];
-    Ps[5] = -K2*P[4] + P[5];
+    xs[0] = x[0] + K0*y[0];
+    xs[1] = x[1] + K1*y[0];
+    xs[2] = x[2] + K2*y[0];
+    Ps[0] = P[0] - K0*P[1];
+    Ps[1] = P[1] - K0*P[3];
+    Ps[2] = P[2] - K0*P[4];
+    Ps[3] = P[3] - K1*P[3];
+    Ps[4] = P[4] - K1*P[4];
+    Ps[5] = P[5] - K2*P[4];
     if (!isfinite(nis)) {
         return CART_UKF_NON_FINITE;
     }

@@ -69,7 +69,7 @@ static int valve_ukf_commit_pd(const double *P)
     const double Lc0_0 = sqrt(Lcd0);
     const double Lci0 = (1.0/Lc0_0);
     const double Lc1_0 = Lci0*P[1];
-    const double Lcd1 = -(Lc1_0*Lc1_0) + P[2];
+    const double Lcd1 = P[2] - (Lc1_0*Lc1_0);
     if (!isfinite(Lcd1)) { return VALVE_UKF_NON_FINITE; }
     if (!(Lcd1 > 0.0)) { return VALVE_UKF_NOT_POSITIVE_DEFINITE; }
     return VALVE_UKF_OK;
@@ -86,7 +86,7 @@ static int valve_ukf_factor(const double *P, double *Lf)
     const double L0_0 = sqrt(Ld0);
     const double Li0 = (1.0/L0_0);
     const double L1_0 = Li0*P[1];
-    const double Ld1 = -(L1_0*L1_0) + P[2];
+    const double Ld1 = P[2] - (L1_0*L1_0);
     if (!isfinite(Ld1)) { return VALVE_UKF_NON_FINITE; }
     if (!(Ld1 > 0.0)) { return VALVE_UKF_NOT_POSITIVE_DEFINITE; }
     const double L1_1 = sqrt(Ld1);
@@ -167,33 +167,33 @@ int valve_ukf_predict(valve_ukf_t *s, const double *u, double dt)
     const double ft0 = fmin(1.0, fmax(0.0, u[0]));
     const double ft1 = ft0 - x[0];
     const double ft2 = ft1 + par->band;
-    const double ft3 = -ft0 + x[0];
+    const double ft3 = x[0] - ft0;
     const double ft4 = ft3 + par->band;
     const double ft5 = dt*par->gain;
-    const double ft6 = ft5*(fmax(0.0, -ft4) + fmin(0.0, ft2)) + x[0];
+    const double ft6 = x[0] + ft5*(fmax(0.0, -ft4) + fmin(0.0, ft2));
     const double ft7 = dt/par->tau;
     const double ft8 = fg0_0 - par->band;
-    const double fc1 = ft7*(par->dp_nom - x[1]) + x[1];
-    const double fp0_0 = fg0_0 + ft5*(fmax(0.0, -fg0_0 - ft4) + fmin(0.0, -ft3 - ft8)) + x[0];
-    const double fm0_0 = -fg0_0 + ft5*(fmax(0.0, ft1 + ft8) + fmin(0.0, fg0_0 + ft2)) + x[0];
+    const double fc1 = x[1] + ft7*(par->dp_nom - x[1]);
+    const double fp0_0 = fg0_0 + x[0] + ft5*(fmax(0.0, -fg0_0 - ft4) + fmin(0.0, -ft3 - ft8));
+    const double fm0_0 = x[0] - fg0_0 + ft5*(fmax(0.0, ft1 + ft8) + fmin(0.0, fg0_0 + ft2));
     const double fA1_1 = 1.0 - ft7;
     const double Q0_0 = 0.0001*dt;
     const double Q1_1 = 0.0025000000000000005*dt;
     const double fq0_0 = fm0_0 + fp0_0;
     const double fq1_0 = 2.0*ft6;
     const double fmu0 = 0.25*(fq0_0 + fq1_0);
-    const double fe0 = -fmu0 + ft6;
+    const double fe0 = ft6 - fmu0;
     const double fh0 = 0.7071067811865475*fmu0;
-    const double fu0_0 = 0.35355339059327373*(-fm0_0 + fp0_0);
+    const double fu0_0 = 0.35355339059327373*(fp0_0 - fm0_0);
     const double fv0_0 = -fh0 + 0.35355339059327373*fq0_0;
     const double fv1_0 = -fh0 + 0.35355339059327373*fq1_0;
     const double fT0_1 = Lf[1]*fA1_1;
     xn[0] = fmu0;
     xn[1] = fc1;
     const double AP1_1 = P[2]*fA1_1;
-    Pn[0] = Q0_0 + 2.0*(fe0*fe0) + (fu0_0*fu0_0) + (fv0_0*fv0_0) + (fv1_0*fv1_0);
+    Pn[0] = Q0_0 + (fu0_0*fu0_0) + (fv0_0*fv0_0) + (fv1_0*fv1_0) + 2.0*(fe0*fe0);
     Pn[1] = fT0_1*fu0_0;
-    Pn[2] = AP1_1*fA1_1 + Q1_1;
+    Pn[2] = Q1_1 + AP1_1*fA1_1;
     if (!valve_ukf_finite(xn, 2u) || !valve_ukf_finite(Pn, 3u)) {
         return VALVE_UKF_NON_FINITE;
     }
@@ -236,8 +236,8 @@ int valve_ukf_update_flow_nis(valve_ukf_t *s, const double *z, double *nis_out)
     const double ht0 = par->kv*x[0];
     const double ht1 = -x[1];
     const double hc0 = ht0*sqrt(x[1]);
-    const double hp0_0 = par->kv*(hg0_0 + x[0])*sqrt(hg1_0 + x[1]);
-    const double hm0_0 = par->kv*(-hg0_0 + x[0])*sqrt(-hg1_0 - ht1);
+    const double hp0_0 = par->kv*sqrt(hg1_0 + x[1])*(hg0_0 + x[0]);
+    const double hm0_0 = par->kv*sqrt(-hg1_0 - ht1)*(x[0] - hg0_0);
     const double hp1_0 = ht0*sqrt(hg1_1 + x[1]);
     const double hm1_0 = ht0*sqrt(-hg1_1 - ht1);
     const double hq0_0 = hm0_0 + hp0_0;
@@ -245,14 +245,14 @@ int valve_ukf_update_flow_nis(valve_ukf_t *s, const double *z, double *nis_out)
     const double hmu0 = 0.25*(hq0_0 + hq1_0);
     const double he0 = hc0 - hmu0;
     const double hh0 = 0.7071067811865475*hmu0;
-    const double hu0_0 = 0.35355339059327373*(-hm0_0 + hp0_0);
+    const double hu0_0 = 0.35355339059327373*(hp0_0 - hm0_0);
     const double hv0_0 = -hh0 + 0.35355339059327373*hq0_0;
-    const double hu1_0 = 0.35355339059327373*(-hm1_0 + hp1_0);
+    const double hu1_0 = 0.35355339059327373*(hp1_0 - hm1_0);
     const double hv1_0 = -hh0 + 0.35355339059327373*hq1_0;
-    y[0] = -hmu0 + z[0];
+    y[0] = z[0] - hmu0;
     const double C0_0 = Lf[0]*hu0_0;
     const double C1_0 = Lf[1]*hu0_0 + Lf[2]*hu1_0;
-    const double S0_0 = 2.0*(he0*he0) + (hu0_0*hu0_0) + (hu1_0*hu1_0) + (hv0_0*hv0_0) + (hv1_0*hv1_0) + 0.010000000000000002;
+    const double S0_0 = 0.010000000000000002 + (hu0_0*hu0_0) + (hu1_0*hu1_0) + (hv0_0*hv0_0) + (hv1_0*hv1_0) + 2.0*(he0*he0);
     const double Sd0 = S0_0;
     if (!isfinite(Sd0)) { return VALVE_UKF_NON_FINITE; }
     if (!(Sd0 > 0.0)) { return VALVE_UKF_NOT_POSITIVE_DEFINITE; }
@@ -260,11 +260,11 @@ int valve_ukf_update_flow_nis(valve_ukf_t *s, const double *z, double *nis_out)
     nis = iS*(y[0]*y[0]);
     const double K0 = C0_0*iS;
     const double K1 = C1_0*iS;
-    xs[0] = K0*y[0] + x[0];
-    xs[1] = K1*y[0] + x[1];
-    Ps[0] = -C0_0*K0 + P[0];
-    Ps[1] = -C1_0*K0 + P[1];
-    Ps[2] = -C1_0*K1 + P[2];
+    xs[0] = x[0] + K0*y[0];
+    xs[1] = x[1] + K1*y[0];
+    Ps[0] = P[0] - C0_0*K0;
+    Ps[1] = P[1] - C1_0*K0;
+    Ps[2] = P[2] - C1_0*K1;
     if (!isfinite(nis)) {
         return VALVE_UKF_NON_FINITE;
     }
@@ -312,8 +312,8 @@ int valve_ukf_update_stem_nis(valve_ukf_t *s, const double *z, double *nis_out)
             return st;
         }
     }
-    y[0] = -x[0] + z[0];
-    const double S0_0 = P[0] + 0.0004;
+    y[0] = z[0] - x[0];
+    const double S0_0 = 0.0004 + P[0];
     const double Sd0 = S0_0;
     if (!isfinite(Sd0)) { return VALVE_UKF_NON_FINITE; }
     if (!(Sd0 > 0.0)) { return VALVE_UKF_NOT_POSITIVE_DEFINITE; }
@@ -321,11 +321,11 @@ int valve_ukf_update_stem_nis(valve_ukf_t *s, const double *z, double *nis_out)
     nis = iS*(y[0]*y[0]);
     const double K0 = P[0]*iS;
     const double K1 = P[1]*iS;
-    xs[0] = K0*y[0] + x[0];
-    xs[1] = K1*y[0] + x[1];
-    Ps[0] = -K0*P[0] + P[0];
-    Ps[1] = -K0*P[1] + P[1];
-    Ps[2] = -K1*P[1] + P[2];
+    xs[0] = x[0] + K0*y[0];
+    xs[1] = x[1] + K1*y[0];
+    Ps[0] = P[0] - K0*P[0];
+    Ps[1] = P[1] - K0*P[1];
+    Ps[2] = P[2] - K1*P[1];
     if (!isfinite(nis)) {
         return VALVE_UKF_NON_FINITE;
     }

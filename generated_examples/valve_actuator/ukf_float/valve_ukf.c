@@ -69,7 +69,7 @@ static int valve_ukf_commit_pd(const float *P)
     const float Lc0_0 = sqrtf(Lcd0);
     const float Lci0 = (1.0F/Lc0_0);
     const float Lc1_0 = Lci0*P[1];
-    const float Lcd1 = -(Lc1_0*Lc1_0) + P[2];
+    const float Lcd1 = P[2] - (Lc1_0*Lc1_0);
     if (!isfinite(Lcd1)) { return VALVE_UKF_NON_FINITE; }
     if (!(Lcd1 > 0.0F)) { return VALVE_UKF_NOT_POSITIVE_DEFINITE; }
     return VALVE_UKF_OK;
@@ -86,7 +86,7 @@ static int valve_ukf_factor(const float *P, float *Lf)
     const float L0_0 = sqrtf(Ld0);
     const float Li0 = (1.0F/L0_0);
     const float L1_0 = Li0*P[1];
-    const float Ld1 = -(L1_0*L1_0) + P[2];
+    const float Ld1 = P[2] - (L1_0*L1_0);
     if (!isfinite(Ld1)) { return VALVE_UKF_NON_FINITE; }
     if (!(Ld1 > 0.0F)) { return VALVE_UKF_NOT_POSITIVE_DEFINITE; }
     const float L1_1 = sqrtf(Ld1);
@@ -167,33 +167,33 @@ int valve_ukf_predict(valve_ukf_t *s, const float *u, float dt)
     const float ft0 = fminf(1.0F, fmaxf(0.0F, u[0]));
     const float ft1 = ft0 - x[0];
     const float ft2 = ft1 + par->band;
-    const float ft3 = -ft0 + x[0];
+    const float ft3 = x[0] - ft0;
     const float ft4 = ft3 + par->band;
     const float ft5 = dt*par->gain;
-    const float ft6 = ft5*(fmaxf(0.0F, -ft4) + fminf(0.0F, ft2)) + x[0];
+    const float ft6 = x[0] + ft5*(fmaxf(0.0F, -ft4) + fminf(0.0F, ft2));
     const float ft7 = dt/par->tau;
     const float ft8 = fg0_0 - par->band;
-    const float fc1 = ft7*(par->dp_nom - x[1]) + x[1];
-    const float fp0_0 = fg0_0 + ft5*(fmaxf(0.0F, -fg0_0 - ft4) + fminf(0.0F, -ft3 - ft8)) + x[0];
-    const float fm0_0 = -fg0_0 + ft5*(fmaxf(0.0F, ft1 + ft8) + fminf(0.0F, fg0_0 + ft2)) + x[0];
+    const float fc1 = x[1] + ft7*(par->dp_nom - x[1]);
+    const float fp0_0 = fg0_0 + x[0] + ft5*(fmaxf(0.0F, -fg0_0 - ft4) + fminf(0.0F, -ft3 - ft8));
+    const float fm0_0 = x[0] - fg0_0 + ft5*(fmaxf(0.0F, ft1 + ft8) + fminf(0.0F, fg0_0 + ft2));
     const float fA1_1 = 1.0F - ft7;
     const float Q0_0 = 0.0001F*dt;
     const float Q1_1 = 0.0025000000000000005F*dt;
     const float fq0_0 = fm0_0 + fp0_0;
     const float fq1_0 = 2.0F*ft6;
     const float fmu0 = 0.25F*(fq0_0 + fq1_0);
-    const float fe0 = -fmu0 + ft6;
+    const float fe0 = ft6 - fmu0;
     const float fh0 = 0.7071067811865475F*fmu0;
-    const float fu0_0 = 0.35355339059327373F*(-fm0_0 + fp0_0);
+    const float fu0_0 = 0.35355339059327373F*(fp0_0 - fm0_0);
     const float fv0_0 = -fh0 + 0.35355339059327373F*fq0_0;
     const float fv1_0 = -fh0 + 0.35355339059327373F*fq1_0;
     const float fT0_1 = Lf[1]*fA1_1;
     xn[0] = fmu0;
     xn[1] = fc1;
     const float AP1_1 = P[2]*fA1_1;
-    Pn[0] = Q0_0 + 2.0F*(fe0*fe0) + (fu0_0*fu0_0) + (fv0_0*fv0_0) + (fv1_0*fv1_0);
+    Pn[0] = Q0_0 + (fu0_0*fu0_0) + (fv0_0*fv0_0) + (fv1_0*fv1_0) + 2.0F*(fe0*fe0);
     Pn[1] = fT0_1*fu0_0;
-    Pn[2] = AP1_1*fA1_1 + Q1_1;
+    Pn[2] = Q1_1 + AP1_1*fA1_1;
     if (!valve_ukf_finite(xn, 2u) || !valve_ukf_finite(Pn, 3u)) {
         return VALVE_UKF_NON_FINITE;
     }
@@ -236,8 +236,8 @@ int valve_ukf_update_flow_nis(valve_ukf_t *s, const float *z, float *nis_out)
     const float ht0 = par->kv*x[0];
     const float ht1 = -x[1];
     const float hc0 = ht0*sqrtf(x[1]);
-    const float hp0_0 = par->kv*(hg0_0 + x[0])*sqrtf(hg1_0 + x[1]);
-    const float hm0_0 = par->kv*(-hg0_0 + x[0])*sqrtf(-hg1_0 - ht1);
+    const float hp0_0 = par->kv*sqrtf(hg1_0 + x[1])*(hg0_0 + x[0]);
+    const float hm0_0 = par->kv*sqrtf(-hg1_0 - ht1)*(x[0] - hg0_0);
     const float hp1_0 = ht0*sqrtf(hg1_1 + x[1]);
     const float hm1_0 = ht0*sqrtf(-hg1_1 - ht1);
     const float hq0_0 = hm0_0 + hp0_0;
@@ -245,14 +245,14 @@ int valve_ukf_update_flow_nis(valve_ukf_t *s, const float *z, float *nis_out)
     const float hmu0 = 0.25F*(hq0_0 + hq1_0);
     const float he0 = hc0 - hmu0;
     const float hh0 = 0.7071067811865475F*hmu0;
-    const float hu0_0 = 0.35355339059327373F*(-hm0_0 + hp0_0);
+    const float hu0_0 = 0.35355339059327373F*(hp0_0 - hm0_0);
     const float hv0_0 = -hh0 + 0.35355339059327373F*hq0_0;
-    const float hu1_0 = 0.35355339059327373F*(-hm1_0 + hp1_0);
+    const float hu1_0 = 0.35355339059327373F*(hp1_0 - hm1_0);
     const float hv1_0 = -hh0 + 0.35355339059327373F*hq1_0;
-    y[0] = -hmu0 + z[0];
+    y[0] = z[0] - hmu0;
     const float C0_0 = Lf[0]*hu0_0;
     const float C1_0 = Lf[1]*hu0_0 + Lf[2]*hu1_0;
-    const float S0_0 = 2.0F*(he0*he0) + (hu0_0*hu0_0) + (hu1_0*hu1_0) + (hv0_0*hv0_0) + (hv1_0*hv1_0) + 0.010000000000000002F;
+    const float S0_0 = 0.010000000000000002F + (hu0_0*hu0_0) + (hu1_0*hu1_0) + (hv0_0*hv0_0) + (hv1_0*hv1_0) + 2.0F*(he0*he0);
     const float Sd0 = S0_0;
     if (!isfinite(Sd0)) { return VALVE_UKF_NON_FINITE; }
     if (!(Sd0 > 0.0F)) { return VALVE_UKF_NOT_POSITIVE_DEFINITE; }
@@ -260,11 +260,11 @@ int valve_ukf_update_flow_nis(valve_ukf_t *s, const float *z, float *nis_out)
     nis = iS*(y[0]*y[0]);
     const float K0 = C0_0*iS;
     const float K1 = C1_0*iS;
-    xs[0] = K0*y[0] + x[0];
-    xs[1] = K1*y[0] + x[1];
-    Ps[0] = -C0_0*K0 + P[0];
-    Ps[1] = -C1_0*K0 + P[1];
-    Ps[2] = -C1_0*K1 + P[2];
+    xs[0] = x[0] + K0*y[0];
+    xs[1] = x[1] + K1*y[0];
+    Ps[0] = P[0] - C0_0*K0;
+    Ps[1] = P[1] - C1_0*K0;
+    Ps[2] = P[2] - C1_0*K1;
     if (!isfinite(nis)) {
         return VALVE_UKF_NON_FINITE;
     }
@@ -312,8 +312,8 @@ int valve_ukf_update_stem_nis(valve_ukf_t *s, const float *z, float *nis_out)
             return st;
         }
     }
-    y[0] = -x[0] + z[0];
-    const float S0_0 = P[0] + 0.0004F;
+    y[0] = z[0] - x[0];
+    const float S0_0 = 0.0004F + P[0];
     const float Sd0 = S0_0;
     if (!isfinite(Sd0)) { return VALVE_UKF_NON_FINITE; }
     if (!(Sd0 > 0.0F)) { return VALVE_UKF_NOT_POSITIVE_DEFINITE; }
@@ -321,11 +321,11 @@ int valve_ukf_update_stem_nis(valve_ukf_t *s, const float *z, float *nis_out)
     nis = iS*(y[0]*y[0]);
     const float K0 = P[0]*iS;
     const float K1 = P[1]*iS;
-    xs[0] = K0*y[0] + x[0];
-    xs[1] = K1*y[0] + x[1];
-    Ps[0] = -K0*P[0] + P[0];
-    Ps[1] = -K0*P[1] + P[1];
-    Ps[2] = -K1*P[1] + P[2];
+    xs[0] = x[0] + K0*y[0];
+    xs[1] = x[1] + K1*y[0];
+    Ps[0] = P[0] - K0*P[0];
+    Ps[1] = P[1] - K0*P[1];
+    Ps[2] = P[2] - K1*P[1];
     if (!isfinite(nis)) {
         return VALVE_UKF_NON_FINITE;
     }
