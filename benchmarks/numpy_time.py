@@ -24,7 +24,7 @@ import estgen  # noqa: E402
 from harness import scenario_arrays  # noqa: E402
 
 
-def ns_per_step(path: str, filt: str, rounds: int = 3, block: int = 20) -> float:
+def ns_per_step(path: str, filt: str, rounds: int = 5, block: int = 20) -> float:
     """Best ns per step over blocks of ``block`` steps (the minimum discards blocks the
     scheduler interrupted on a shared machine)."""
     spec = estgen.load_model(path)

@@ -192,6 +192,8 @@ def compare_os(row: Dict[str, Any]) -> Dict[str, Any]:
 
 def numpy_times(rows: Sequence[Dict[str, Any]]) -> Dict[str, Any]:
     env = {k: v for k, v in os.environ.items() if k not in ("OPENBLAS_CORETYPE", "OPENBLAS_L2_SIZE")}
+    # one BLAS thread, as the C runs on one core; threads spinning on a shared machine only add noise
+    env["OPENBLAS_NUM_THREADS"] = "1"
     jobs = [[r["path"], r["filter"]] for r in rows]
     env["PYTHONPATH"] = os.pathsep.join([str(ESTGEN_ROOT), str(HERE)] + ([env["PYTHONPATH"]] if env.get("PYTHONPATH") else []))
     proc = subprocess.run([sys.executable, str(HERE / "numpy_time.py")], input=json.dumps(jobs), env=env,
