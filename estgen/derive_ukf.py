@@ -197,8 +197,16 @@ class _Block:
         if not items:
             return {}
         repl, reduced = sp.cse([e for _, e in items], symbols=sp.numbered_symbols(prefix), order="canonical")
+        # a shared condition (a > 0) would become a floating local: put conditions back inline
+        inline: Dict[sp.Symbol, sp.Basic] = {}
         for s, e in repl:
+            e = e.xreplace(inline) if inline else e
+            if isinstance(e, sp.logic.boolalg.Boolean):
+                inline[s] = e
+                continue
             self.stmts.append(Stmt("decl", str(s), e))
+        if inline:
+            reduced = [e.xreplace(inline) for e in reduced]
         out: Dict[str, sp.Expr] = {}
         seen: Dict[sp.Expr, sp.Expr] = {}
         for (name, _), e in zip(items, reduced):
@@ -338,6 +346,14 @@ def _trig_pairs(blk: _Block, name: str, i: int, centre: Tuple[sp.Expr, sp.Expr],
             blk.value(f"{name}cp{i}", c - d), blk.value(f"{name}cm{i}", c + d))
 
 
+def _lower(e: sp.Expr) -> sp.Expr:
+    """Forms whose C rendering would differ from sympy's meaning: sign (an int expression in C,
+    a conversion warning in a float build) as a choice of real constants; Mod (sympy's has the
+    divisor's sign, C's fmod the dividend's) as a - b floor(a / b)."""
+    e = e.replace(sp.sign, lambda a: sp.Piecewise((sp.S.One, a > 0), (sp.S.NegativeOne, a < 0), (sp.S.Zero, True)))
+    return e.replace(sp.Mod, lambda a, b: a - b * sp.floor(a / b))
+
+
 def _transform(blk: _Block, spec: ModelSpec, funcs: sp.Matrix, angle: Sequence[bool], wts: UkfWeights,
                L: Dict[Tuple[int, int], sp.Expr], extra: Sequence[Tuple[str, sp.Expr]], tag: str
                ) -> Tuple[List[_Spread], Dict[int, List[sp.Expr]], Dict[str, sp.Expr], int, int]:
@@ -350,6 +366,7 @@ def _transform(blk: _Block, spec: ModelSpec, funcs: sp.Matrix, angle: Sequence[b
     n = spec.n
     xs = spec.x_syms
     names = c_names(spec, "x")
+    funcs = funcs.applyfunc(_lower)
     lin_user = _linear_rows(funcs, xs, angle)
     nl = [k for k in range(funcs.shape[0]) if k not in lin_user]
     support = sorted({xs.index(v) for k in nl for v in funcs[k].free_symbols if v in xs})

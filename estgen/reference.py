@@ -75,6 +75,19 @@ def _lambdify(args: Sequence[sp.Symbol], mat: sp.Matrix) -> Callable[..., Any]:
     return sp.lambdify(args, mat, modules="numpy", cse=True)
 
 
+def _jacobian_fn(args: Sequence[sp.Symbol], mat: sp.Matrix, xs: Sequence[sp.Symbol], what: str
+                 ) -> Callable[..., Any]:
+    """The Jacobian as a numpy function; for a model only the UKF can run (floor, Mod: sympy
+    leaves an unprintable Derivative) a function that refuses when called, so the UKF, which
+    never calls it, still gets the model's other functions."""
+    try:
+        return _lambdify(args, mat.jacobian(sp.Matrix(xs)))
+    except (ValueError, TypeError, NotImplementedError):
+        def refuse(*_: Any) -> Any:
+            raise ModelError(f"{what} cannot be differentiated; use the UKF for this model")
+        return refuse
+
+
 class ModelFunctions:
     """The model's f, F = df/dx, Q, and per sensor h, H = dh/dx and R as numpy functions.
 
@@ -89,14 +102,14 @@ class ModelFunctions:
         self.nu = spec.nu
         fargs = [*xs, *us, dt, *ps]
         self._f = _lambdify(fargs, spec.f)
-        self._F = _lambdify(fargs, spec.f.jacobian(sp.Matrix(xs)))
+        self._F = _jacobian_fn(fargs, spec.f, xs, "process()")
         self._Q = _lambdify([dt, *ps], spec.Q)
         self._h: Dict[str, Callable[..., Any]] = {}
         self._H: Dict[str, Callable[..., Any]] = {}
         self._R: Dict[str, Callable[..., Any]] = {}
         for s in spec.sensors:
             self._h[s.name] = _lambdify([*xs, *ps], s.h)
-            self._H[s.name] = _lambdify([*xs, *ps], s.h.jacobian(sp.Matrix(xs)))
+            self._H[s.name] = _jacobian_fn([*xs, *ps], s.h, xs, f"sensor {s.name!r}")
             self._R[s.name] = _lambdify(list(ps), s.R)
 
     def param_tuple(self, params: Mapping[str, float]) -> Tuple[float, ...]:

@@ -148,6 +148,27 @@ def test_model_the_ekf_refuses_is_a_ukf_model() -> None:
     assert verify(spec, filter="ukf", precision="double", steps=150, seed=2).ok
 
 
+@pytest.mark.parametrize("precision", ["double", "float"])
+def test_every_non_differentiable_function_compiles_clean_and_matches(precision: str, tmp_path) -> None:
+    # Source: the reference UKF for the values (sympy's meaning of sign, Mod, Heaviside...:
+    # Mod takes the divisor's sign, unlike C's fmod, ISO/IEC 9899:1999 7.12.10.1); the
+    # contract's warning set for the C (section 4). Needs gcc and clang: fails without them.
+    spec = estgen.load_model(os.path.join(HERE, "models", "ukf_nondiff.py"))
+    with pytest.raises(ModelError, match="cannot differentiate"):
+        generate(spec, filter="ekf", precision=precision)
+    gen = generate(spec, filter="ukf", precision=precision)
+    for name, text in gen.files.items():
+        (tmp_path / name).write_text(text)
+    for compiler in ("gcc", "clang"):
+        cc = shutil.which(compiler)
+        assert cc, f"{compiler} is required for this test"
+        proc = subprocess.run([cc, *STRICT_FLAGS, "-O2", "-c", str(tmp_path / f"{gen.prefix}.c"), "-o",
+                               str(tmp_path / "o.o")], capture_output=True, text=True)
+        assert proc.returncode == 0, proc.stderr
+    res = verify(spec, filter="ukf", precision=precision, steps=300, seed=12)
+    assert res.ok, (res.x_dev, res.P_dev, res.status_mismatch)
+
+
 # -- refusals leave the filter untouched ---------------------------------------------------------
 
 def _fresh(name: str, precision: str = "double"):
