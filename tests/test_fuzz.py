@@ -47,7 +47,9 @@ MAX_CALLS = 20
 #: C through the same refusals)
 FUZZ_CONFIGS = [c for c in CONFIGS if c[2] == "float" or c[0] != "strapdown_nav"]
 
-SANITIZE_CFLAGS = ["-fsanitize=address,undefined", "-fno-sanitize-recover=all", "-fno-omit-frame-pointer", "-g"]
+# -O0 (the last -O given wins over the harness's -O2): the checks are instrumented at any level,
+# and the 200 KB straight-line 15-state UKF then compiles in 2 s instead of 30 s
+SANITIZE_CFLAGS = ["-O0", "-fsanitize=address,undefined", "-fno-sanitize-recover=all", "-fno-omit-frame-pointer", "-g"]
 SANITIZE_LDFLAGS = ["-fsanitize=address,undefined"]
 #: what a sanitizer prints when it finds something (ASan "ERROR: AddressSanitizer", UBSan "runtime error:")
 SANITIZER_MARKERS = ("AddressSanitizer", "runtime error:", "LeakSanitizer", "UndefinedBehaviorSanitizer")

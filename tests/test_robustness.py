@@ -643,3 +643,19 @@ def test_verify_generate_and_build_write_only_their_cache_and_output(tmp_path):
     out = str(dirs["cwd"] / "out")
     assert new_in_cwd == {out, os.path.join(out, "cart_ekf.h"), os.path.join(out, "cart_ekf.c")}
     assert os.listdir(dirs["cache"]), "the build cache was not used, so this test proves nothing"
+
+
+def test_gate_option_on_the_command_line(tmp_path, capsys):
+    # `estgen generate --gate SENSOR=P` writes the scipy quantile into the C; a bad sensor name
+    # or probability is refused with exit status 2.
+    from estgen.cli import main
+
+    model = model_path("linear_cart")
+    assert main(["generate", model, "--gate", "encoder=0.997", "-o", str(tmp_path), "-q"]) == 0
+    src = (tmp_path / "cart_ekf.c").read_text()
+    want = float(scipy.stats.chi2.ppf(0.997, 1))  # Source: scipy.stats.chi2.ppf
+    assert _gate_literal(src, "cart_ekf_update_encoder") == pytest.approx(want, rel=1e-7)
+    assert "if (nis >" not in src.split("cart_ekf_update_speed_nis(")[1]  # only the sensor named
+    for bad in ("nosuch=0.9", "encoder=1.5", "encoder=0", "encoder"):
+        assert main(["generate", model, "--gate", bad, "-o", str(tmp_path / "bad"), "-q"]) == 2, bad
+    assert not (tmp_path / "bad").exists()
