@@ -82,7 +82,7 @@ def _jacobian_fn(args: Sequence[sp.Symbol], mat: sp.Matrix, xs: Sequence[sp.Symb
     never calls it, still gets the model's other functions."""
     try:
         return _lambdify(args, mat.jacobian(sp.Matrix(xs)))
-    except (ValueError, TypeError):
+    except (ValueError, TypeError, RuntimeError):  # sympy printers raise these for a Derivative
         def refuse(*_: Any) -> Any:
             raise ModelError(f"{what} cannot be differentiated; use the UKF for this model")
         return refuse
