@@ -7,7 +7,7 @@ from __future__ import annotations
 
 from typing import Any, Dict, List
 
-from .derive_ukf import UkfWeights, check_options, commit_check, derive_ukf, factor_function
+from .derive_ukf import UkfWeights, check_options, derive_ukf, factor_function
 from .emit import Emitter, Generated, OpCount, _common_context, _render
 from .model import ModelSpec, check_filter_support
 
@@ -44,7 +44,7 @@ def generate_ukf(spec: ModelSpec, precision: str = "float", **options: Any) -> G
     p_lines = em.lines(code.predict.stmts, pc)
     # the commit check is one static function, run by every call: its cost counts in each
     cc = OpCount()
-    ctx["commit_pd"] = em.lines(commit_check(n, "P"), cc)
+    cc += OpCount(**ctx["commit_ops"])
     # so is the factorization of P every call starts with
     ctx["factor"] = em.lines(factor_function(n), cc)
     pc += cc

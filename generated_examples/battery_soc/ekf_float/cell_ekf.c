@@ -25,31 +25,28 @@ static size_t cell_ekf_pk(size_t i, size_t j)
     return (i <= j) ? (i * 3u - (i * (i + 1u)) / 2u + j) : (j * 3u - (j * (j + 1u)) / 2u + i);
 }
 
-/* 1 when the packed symmetric matrix is positive definite (Cholesky succeeds), else 0. */
-static int cell_ekf_posdef(const float *P)
+/* OK when the packed covariance P is positive definite (every pivot of its Cholesky factorization
+   finite and > 0; a positive diagonal is not enough), else the refusal code. Unrolled; one copy
+   serves set_state and every commit. */
+static int cell_ekf_commit_pd(const float *P)
 {
-    float U[6];
-    size_t i, j, k;
-    memcpy(U, P, sizeof U);
-    for (j = 0; j < 3u; ++j) {
-        float d = U[cell_ekf_pk(j, j)];
-        for (k = 0; k < j; ++k) {
-            d -= U[cell_ekf_pk(k, j)] * U[cell_ekf_pk(k, j)];
-        }
-        if (!(d > 0.0F) || !isfinite(d)) {
-            return 0;
-        }
-        d = sqrtf(d);
-        U[cell_ekf_pk(j, j)] = d;
-        for (i = j + 1u; i < 3u; ++i) {
-            float e = U[cell_ekf_pk(j, i)];
-            for (k = 0; k < j; ++k) {
-                e -= U[cell_ekf_pk(k, j)] * U[cell_ekf_pk(k, i)];
-            }
-            U[cell_ekf_pk(j, i)] = e / d;
-        }
-    }
-    return 1;
+    const float Lcd0 = P[0];
+    if (!isfinite(Lcd0)) { return CELL_EKF_NON_FINITE; }
+    if (!(Lcd0 > 0.0F)) { return CELL_EKF_NOT_POSITIVE_DEFINITE; }
+    const float Lc0_0 = sqrtf(Lcd0);
+    const float Lci0 = (1.0F/Lc0_0);
+    const float Lc1_0 = Lci0*P[1];
+    const float Lc2_0 = Lci0*P[2];
+    const float Lcd1 = P[3] - (Lc1_0*Lc1_0);
+    if (!isfinite(Lcd1)) { return CELL_EKF_NON_FINITE; }
+    if (!(Lcd1 > 0.0F)) { return CELL_EKF_NOT_POSITIVE_DEFINITE; }
+    const float Lc1_1 = sqrtf(Lcd1);
+    const float Lci1 = (1.0F/Lc1_1);
+    const float Lc2_1 = Lci1*(P[4] - Lc1_0*Lc2_0);
+    const float Lcd2 = P[5] - (Lc2_0*Lc2_0) - (Lc2_1*Lc2_1);
+    if (!isfinite(Lcd2)) { return CELL_EKF_NON_FINITE; }
+    if (!(Lcd2 > 0.0F)) { return CELL_EKF_NOT_POSITIVE_DEFINITE; }
+    return CELL_EKF_OK;
 }
 
 void cell_ekf_init(cell_ekf_t *s)
@@ -78,7 +75,7 @@ int cell_ekf_set_state(cell_ekf_t *s, const float *x, const float *P)
     if (!cell_ekf_finite(x, 3u) || !cell_ekf_finite(P, 6u)) {
         return CELL_EKF_BAD_INPUT;
     }
-    if (!cell_ekf_posdef(P)) {
+    if (cell_ekf_commit_pd(P) != CELL_EKF_OK) {
         return CELL_EKF_NOT_POSITIVE_DEFINITE;
     }
     memcpy(xn, x, sizeof xn);
@@ -130,24 +127,12 @@ int cell_ekf_predict(cell_ekf_t *s, const float *u, float dt)
     if (!cell_ekf_finite(xn, 3u) || !cell_ekf_finite(Pn, 6u)) {
         return CELL_EKF_NON_FINITE;
     }
-    /* commit only a positive definite P: the pivots of its Cholesky factorization, unrolled
-       (a positive diagonal is not enough) */
-    const float Lcd0 = Pn[0];
-    if (!isfinite(Lcd0)) { return CELL_EKF_NON_FINITE; }
-    if (!(Lcd0 > 0.0F)) { return CELL_EKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc0_0 = sqrtf(Lcd0);
-    const float Lci0 = (1.0F/Lc0_0);
-    const float Lc1_0 = Lci0*Pn[1];
-    const float Lc2_0 = Lci0*Pn[2];
-    const float Lcd1 = Pn[3] - (Lc1_0*Lc1_0);
-    if (!isfinite(Lcd1)) { return CELL_EKF_NON_FINITE; }
-    if (!(Lcd1 > 0.0F)) { return CELL_EKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc1_1 = sqrtf(Lcd1);
-    const float Lci1 = (1.0F/Lc1_1);
-    const float Lc2_1 = Lci1*(Pn[4] - Lc1_0*Lc2_0);
-    const float Lcd2 = Pn[5] - (Lc2_0*Lc2_0) - (Lc2_1*Lc2_1);
-    if (!isfinite(Lcd2)) { return CELL_EKF_NON_FINITE; }
-    if (!(Lcd2 > 0.0F)) { return CELL_EKF_NOT_POSITIVE_DEFINITE; }
+    {
+        const int st = cell_ekf_commit_pd(Pn);  /* commit only a positive definite P */
+        if (st != CELL_EKF_OK) {
+            return st;
+        }
+    }
 
     memcpy(s->x, xn, sizeof xn);
     memcpy(s->P, Pn, sizeof Pn);
@@ -203,24 +188,12 @@ int cell_ekf_update_voltage_nis(cell_ekf_t *s, const float *z, float *nis_out)
     if (!cell_ekf_finite(xs, 3u) || !cell_ekf_finite(Ps, 6u)) {
         return CELL_EKF_NON_FINITE;
     }
-    /* commit only a positive definite P: the pivots of its Cholesky factorization, unrolled
-       (a positive diagonal is not enough) */
-    const float Lcd0 = Ps[0];
-    if (!isfinite(Lcd0)) { return CELL_EKF_NON_FINITE; }
-    if (!(Lcd0 > 0.0F)) { return CELL_EKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc0_0 = sqrtf(Lcd0);
-    const float Lci0 = (1.0F/Lc0_0);
-    const float Lc1_0 = Lci0*Ps[1];
-    const float Lc2_0 = Lci0*Ps[2];
-    const float Lcd1 = Ps[3] - (Lc1_0*Lc1_0);
-    if (!isfinite(Lcd1)) { return CELL_EKF_NON_FINITE; }
-    if (!(Lcd1 > 0.0F)) { return CELL_EKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc1_1 = sqrtf(Lcd1);
-    const float Lci1 = (1.0F/Lc1_1);
-    const float Lc2_1 = Lci1*(Ps[4] - Lc1_0*Lc2_0);
-    const float Lcd2 = Ps[5] - (Lc2_0*Lc2_0) - (Lc2_1*Lc2_1);
-    if (!isfinite(Lcd2)) { return CELL_EKF_NON_FINITE; }
-    if (!(Lcd2 > 0.0F)) { return CELL_EKF_NOT_POSITIVE_DEFINITE; }
+    {
+        const int st = cell_ekf_commit_pd(Ps);  /* commit only a positive definite P */
+        if (st != CELL_EKF_OK) {
+            return st;
+        }
+    }
 
     if (!isfinite(nis)) {
         return CELL_EKF_NON_FINITE;

@@ -31,36 +31,9 @@ static size_t cell_ukf_pk(size_t i, size_t j)
     return (i <= j) ? (i * 3u - (i * (i + 1u)) / 2u + j) : (j * 3u - (j * (j + 1u)) / 2u + i);
 }
 
-/* 1 when the packed symmetric matrix is positive definite (Cholesky succeeds), else 0. */
-static int cell_ukf_posdef(const double *P)
-{
-    double U[6];
-    size_t i, j, k;
-    memcpy(U, P, sizeof U);
-    for (j = 0; j < 3u; ++j) {
-        double d = U[cell_ukf_pk(j, j)];
-        for (k = 0; k < j; ++k) {
-            d -= U[cell_ukf_pk(k, j)] * U[cell_ukf_pk(k, j)];
-        }
-        if (!(d > 0.0) || !isfinite(d)) {
-            return 0;
-        }
-        d = sqrt(d);
-        U[cell_ukf_pk(j, j)] = d;
-        for (i = j + 1u; i < 3u; ++i) {
-            double e = U[cell_ukf_pk(j, i)];
-            for (k = 0; k < j; ++k) {
-                e -= U[cell_ukf_pk(k, j)] * U[cell_ukf_pk(k, i)];
-            }
-            U[cell_ukf_pk(j, i)] = e / d;
-        }
-    }
-    return 1;
-}
-
 /* OK when the packed covariance P is positive definite (every pivot of its Cholesky factorization
-   finite and > 0; a positive diagonal is not enough), else the refusal code. Unrolled, and one
-   copy serves every commit. */
+   finite and > 0; a positive diagonal is not enough), else the refusal code. Unrolled; one copy
+   serves set_state and every commit. */
 static int cell_ukf_commit_pd(const double *P)
 {
     const double Lcd0 = P[0];
@@ -139,7 +112,7 @@ int cell_ukf_set_state(cell_ukf_t *s, const double *x, const double *P)
     if (!cell_ukf_finite(x, 3u) || !cell_ukf_finite(P, 6u)) {
         return CELL_UKF_BAD_INPUT;
     }
-    if (!cell_ukf_posdef(P)) {
+    if (cell_ukf_commit_pd(P) != CELL_UKF_OK) {
         return CELL_UKF_NOT_POSITIVE_DEFINITE;
     }
     memcpy(xn, x, sizeof xn);

@@ -31,31 +31,36 @@ static size_t rover_ekf_pk(size_t i, size_t j)
     return (i <= j) ? (i * 4u - (i * (i + 1u)) / 2u + j) : (j * 4u - (j * (j + 1u)) / 2u + i);
 }
 
-/* 1 when the packed symmetric matrix is positive definite (Cholesky succeeds), else 0. */
-static int rover_ekf_posdef(const double *P)
+/* OK when the packed covariance P is positive definite (every pivot of its Cholesky factorization
+   finite and > 0; a positive diagonal is not enough), else the refusal code. Unrolled; one copy
+   serves set_state and every commit. */
+static int rover_ekf_commit_pd(const double *P)
 {
-    double U[10];
-    size_t i, j, k;
-    memcpy(U, P, sizeof U);
-    for (j = 0; j < 4u; ++j) {
-        double d = U[rover_ekf_pk(j, j)];
-        for (k = 0; k < j; ++k) {
-            d -= U[rover_ekf_pk(k, j)] * U[rover_ekf_pk(k, j)];
-        }
-        if (!(d > 0.0) || !isfinite(d)) {
-            return 0;
-        }
-        d = sqrt(d);
-        U[rover_ekf_pk(j, j)] = d;
-        for (i = j + 1u; i < 4u; ++i) {
-            double e = U[rover_ekf_pk(j, i)];
-            for (k = 0; k < j; ++k) {
-                e -= U[rover_ekf_pk(k, j)] * U[rover_ekf_pk(k, i)];
-            }
-            U[rover_ekf_pk(j, i)] = e / d;
-        }
-    }
-    return 1;
+    const double Lcd0 = P[0];
+    if (!isfinite(Lcd0)) { return ROVER_EKF_NON_FINITE; }
+    if (!(Lcd0 > 0.0)) { return ROVER_EKF_NOT_POSITIVE_DEFINITE; }
+    const double Lc0_0 = sqrt(Lcd0);
+    const double Lci0 = (1.0/Lc0_0);
+    const double Lc1_0 = Lci0*P[1];
+    const double Lc2_0 = Lci0*P[2];
+    const double Lc3_0 = Lci0*P[3];
+    const double Lcd1 = P[4] - (Lc1_0*Lc1_0);
+    if (!isfinite(Lcd1)) { return ROVER_EKF_NON_FINITE; }
+    if (!(Lcd1 > 0.0)) { return ROVER_EKF_NOT_POSITIVE_DEFINITE; }
+    const double Lc1_1 = sqrt(Lcd1);
+    const double Lci1 = (1.0/Lc1_1);
+    const double Lc2_1 = Lci1*(P[5] - Lc1_0*Lc2_0);
+    const double Lc3_1 = Lci1*(P[6] - Lc1_0*Lc3_0);
+    const double Lcd2 = P[7] - (Lc2_0*Lc2_0) - (Lc2_1*Lc2_1);
+    if (!isfinite(Lcd2)) { return ROVER_EKF_NON_FINITE; }
+    if (!(Lcd2 > 0.0)) { return ROVER_EKF_NOT_POSITIVE_DEFINITE; }
+    const double Lc2_2 = sqrt(Lcd2);
+    const double Lci2 = (1.0/Lc2_2);
+    const double Lc3_2 = Lci2*(P[8] - Lc2_0*Lc3_0 - Lc2_1*Lc3_1);
+    const double Lcd3 = P[9] - (Lc3_0*Lc3_0) - (Lc3_1*Lc3_1) - (Lc3_2*Lc3_2);
+    if (!isfinite(Lcd3)) { return ROVER_EKF_NON_FINITE; }
+    if (!(Lcd3 > 0.0)) { return ROVER_EKF_NOT_POSITIVE_DEFINITE; }
+    return ROVER_EKF_OK;
 }
 
 void rover_ekf_init(rover_ekf_t *s)
@@ -93,7 +98,7 @@ int rover_ekf_set_state(rover_ekf_t *s, const double *x, const double *P)
     if (!rover_ekf_finite(x, 4u) || !rover_ekf_finite(P, 10u)) {
         return ROVER_EKF_BAD_INPUT;
     }
-    if (!rover_ekf_posdef(P)) {
+    if (rover_ekf_commit_pd(P) != ROVER_EKF_OK) {
         return ROVER_EKF_NOT_POSITIVE_DEFINITE;
     }
     memcpy(xn, x, sizeof xn);
@@ -174,32 +179,12 @@ int rover_ekf_predict(rover_ekf_t *s, const double *u, double dt)
     if (!rover_ekf_finite(xn, 4u) || !rover_ekf_finite(Pn, 10u)) {
         return ROVER_EKF_NON_FINITE;
     }
-    /* commit only a positive definite P: the pivots of its Cholesky factorization, unrolled
-       (a positive diagonal is not enough) */
-    const double Lcd0 = Pn[0];
-    if (!isfinite(Lcd0)) { return ROVER_EKF_NON_FINITE; }
-    if (!(Lcd0 > 0.0)) { return ROVER_EKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc0_0 = sqrt(Lcd0);
-    const double Lci0 = (1.0/Lc0_0);
-    const double Lc1_0 = Lci0*Pn[1];
-    const double Lc2_0 = Lci0*Pn[2];
-    const double Lc3_0 = Lci0*Pn[3];
-    const double Lcd1 = Pn[4] - (Lc1_0*Lc1_0);
-    if (!isfinite(Lcd1)) { return ROVER_EKF_NON_FINITE; }
-    if (!(Lcd1 > 0.0)) { return ROVER_EKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc1_1 = sqrt(Lcd1);
-    const double Lci1 = (1.0/Lc1_1);
-    const double Lc2_1 = Lci1*(Pn[5] - Lc1_0*Lc2_0);
-    const double Lc3_1 = Lci1*(Pn[6] - Lc1_0*Lc3_0);
-    const double Lcd2 = Pn[7] - (Lc2_0*Lc2_0) - (Lc2_1*Lc2_1);
-    if (!isfinite(Lcd2)) { return ROVER_EKF_NON_FINITE; }
-    if (!(Lcd2 > 0.0)) { return ROVER_EKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc2_2 = sqrt(Lcd2);
-    const double Lci2 = (1.0/Lc2_2);
-    const double Lc3_2 = Lci2*(Pn[8] - Lc2_0*Lc3_0 - Lc2_1*Lc3_1);
-    const double Lcd3 = Pn[9] - (Lc3_0*Lc3_0) - (Lc3_1*Lc3_1) - (Lc3_2*Lc3_2);
-    if (!isfinite(Lcd3)) { return ROVER_EKF_NON_FINITE; }
-    if (!(Lcd3 > 0.0)) { return ROVER_EKF_NOT_POSITIVE_DEFINITE; }
+    {
+        const int st = rover_ekf_commit_pd(Pn);  /* commit only a positive definite P */
+        if (st != ROVER_EKF_OK) {
+            return st;
+        }
+    }
 
     memcpy(s->x, xn, sizeof xn);
     memcpy(s->P, Pn, sizeof Pn);
@@ -267,32 +252,12 @@ int rover_ekf_update_range_a_nis(rover_ekf_t *s, const double *z, double *nis_ou
     if (!rover_ekf_finite(xs, 4u) || !rover_ekf_finite(Ps, 10u)) {
         return ROVER_EKF_NON_FINITE;
     }
-    /* commit only a positive definite P: the pivots of its Cholesky factorization, unrolled
-       (a positive diagonal is not enough) */
-    const double Lcd0 = Ps[0];
-    if (!isfinite(Lcd0)) { return ROVER_EKF_NON_FINITE; }
-    if (!(Lcd0 > 0.0)) { return ROVER_EKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc0_0 = sqrt(Lcd0);
-    const double Lci0 = (1.0/Lc0_0);
-    const double Lc1_0 = Lci0*Ps[1];
-    const double Lc2_0 = Lci0*Ps[2];
-    const double Lc3_0 = Lci0*Ps[3];
-    const double Lcd1 = Ps[4] - (Lc1_0*Lc1_0);
-    if (!isfinite(Lcd1)) { return ROVER_EKF_NON_FINITE; }
-    if (!(Lcd1 > 0.0)) { return ROVER_EKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc1_1 = sqrt(Lcd1);
-    const double Lci1 = (1.0/Lc1_1);
-    const double Lc2_1 = Lci1*(Ps[5] - Lc1_0*Lc2_0);
-    const double Lc3_1 = Lci1*(Ps[6] - Lc1_0*Lc3_0);
-    const double Lcd2 = Ps[7] - (Lc2_0*Lc2_0) - (Lc2_1*Lc2_1);
-    if (!isfinite(Lcd2)) { return ROVER_EKF_NON_FINITE; }
-    if (!(Lcd2 > 0.0)) { return ROVER_EKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc2_2 = sqrt(Lcd2);
-    const double Lci2 = (1.0/Lc2_2);
-    const double Lc3_2 = Lci2*(Ps[8] - Lc2_0*Lc3_0 - Lc2_1*Lc3_1);
-    const double Lcd3 = Ps[9] - (Lc3_0*Lc3_0) - (Lc3_1*Lc3_1) - (Lc3_2*Lc3_2);
-    if (!isfinite(Lcd3)) { return ROVER_EKF_NON_FINITE; }
-    if (!(Lcd3 > 0.0)) { return ROVER_EKF_NOT_POSITIVE_DEFINITE; }
+    {
+        const int st = rover_ekf_commit_pd(Ps);  /* commit only a positive definite P */
+        if (st != ROVER_EKF_OK) {
+            return st;
+        }
+    }
 
     if (!isfinite(nis)) {
         return ROVER_EKF_NON_FINITE;
@@ -372,32 +337,12 @@ int rover_ekf_update_range_b_nis(rover_ekf_t *s, const double *z, double *nis_ou
     if (!rover_ekf_finite(xs, 4u) || !rover_ekf_finite(Ps, 10u)) {
         return ROVER_EKF_NON_FINITE;
     }
-    /* commit only a positive definite P: the pivots of its Cholesky factorization, unrolled
-       (a positive diagonal is not enough) */
-    const double Lcd0 = Ps[0];
-    if (!isfinite(Lcd0)) { return ROVER_EKF_NON_FINITE; }
-    if (!(Lcd0 > 0.0)) { return ROVER_EKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc0_0 = sqrt(Lcd0);
-    const double Lci0 = (1.0/Lc0_0);
-    const double Lc1_0 = Lci0*Ps[1];
-    const double Lc2_0 = Lci0*Ps[2];
-    const double Lc3_0 = Lci0*Ps[3];
-    const double Lcd1 = Ps[4] - (Lc1_0*Lc1_0);
-    if (!isfinite(Lcd1)) { return ROVER_EKF_NON_FINITE; }
-    if (!(Lcd1 > 0.0)) { return ROVER_EKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc1_1 = sqrt(Lcd1);
-    const double Lci1 = (1.0/Lc1_1);
-    const double Lc2_1 = Lci1*(Ps[5] - Lc1_0*Lc2_0);
-    const double Lc3_1 = Lci1*(Ps[6] - Lc1_0*Lc3_0);
-    const double Lcd2 = Ps[7] - (Lc2_0*Lc2_0) - (Lc2_1*Lc2_1);
-    if (!isfinite(Lcd2)) { return ROVER_EKF_NON_FINITE; }
-    if (!(Lcd2 > 0.0)) { return ROVER_EKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc2_2 = sqrt(Lcd2);
-    const double Lci2 = (1.0/Lc2_2);
-    const double Lc3_2 = Lci2*(Ps[8] - Lc2_0*Lc3_0 - Lc2_1*Lc3_1);
-    const double Lcd3 = Ps[9] - (Lc3_0*Lc3_0) - (Lc3_1*Lc3_1) - (Lc3_2*Lc3_2);
-    if (!isfinite(Lcd3)) { return ROVER_EKF_NON_FINITE; }
-    if (!(Lcd3 > 0.0)) { return ROVER_EKF_NOT_POSITIVE_DEFINITE; }
+    {
+        const int st = rover_ekf_commit_pd(Ps);  /* commit only a positive definite P */
+        if (st != ROVER_EKF_OK) {
+            return st;
+        }
+    }
 
     if (!isfinite(nis)) {
         return ROVER_EKF_NON_FINITE;
@@ -518,32 +463,12 @@ int rover_ekf_update_range_cd_nis(rover_ekf_t *s, const double *z, double *nis_o
     if (!rover_ekf_finite(xs, 4u) || !rover_ekf_finite(Ps, 10u)) {
         return ROVER_EKF_NON_FINITE;
     }
-    /* commit only a positive definite P: the pivots of its Cholesky factorization, unrolled
-       (a positive diagonal is not enough) */
-    const double Lcd0 = Ps[0];
-    if (!isfinite(Lcd0)) { return ROVER_EKF_NON_FINITE; }
-    if (!(Lcd0 > 0.0)) { return ROVER_EKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc0_0 = sqrt(Lcd0);
-    const double Lci0 = (1.0/Lc0_0);
-    const double Lc1_0 = Lci0*Ps[1];
-    const double Lc2_0 = Lci0*Ps[2];
-    const double Lc3_0 = Lci0*Ps[3];
-    const double Lcd1 = Ps[4] - (Lc1_0*Lc1_0);
-    if (!isfinite(Lcd1)) { return ROVER_EKF_NON_FINITE; }
-    if (!(Lcd1 > 0.0)) { return ROVER_EKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc1_1 = sqrt(Lcd1);
-    const double Lci1 = (1.0/Lc1_1);
-    const double Lc2_1 = Lci1*(Ps[5] - Lc1_0*Lc2_0);
-    const double Lc3_1 = Lci1*(Ps[6] - Lc1_0*Lc3_0);
-    const double Lcd2 = Ps[7] - (Lc2_0*Lc2_0) - (Lc2_1*Lc2_1);
-    if (!isfinite(Lcd2)) { return ROVER_EKF_NON_FINITE; }
-    if (!(Lcd2 > 0.0)) { return ROVER_EKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc2_2 = sqrt(Lcd2);
-    const double Lci2 = (1.0/Lc2_2);
-    const double Lc3_2 = Lci2*(Ps[8] - Lc2_0*Lc3_0 - Lc2_1*Lc3_1);
-    const double Lcd3 = Ps[9] - (Lc3_0*Lc3_0) - (Lc3_1*Lc3_1) - (Lc3_2*Lc3_2);
-    if (!isfinite(Lcd3)) { return ROVER_EKF_NON_FINITE; }
-    if (!(Lcd3 > 0.0)) { return ROVER_EKF_NOT_POSITIVE_DEFINITE; }
+    {
+        const int st = rover_ekf_commit_pd(Ps);  /* commit only a positive definite P */
+        if (st != ROVER_EKF_OK) {
+            return st;
+        }
+    }
 
     if (!isfinite(nis)) {
         return ROVER_EKF_NON_FINITE;
@@ -617,32 +542,12 @@ int rover_ekf_update_compass_nis(rover_ekf_t *s, const double *z, double *nis_ou
     if (!rover_ekf_finite(xs, 4u) || !rover_ekf_finite(Ps, 10u)) {
         return ROVER_EKF_NON_FINITE;
     }
-    /* commit only a positive definite P: the pivots of its Cholesky factorization, unrolled
-       (a positive diagonal is not enough) */
-    const double Lcd0 = Ps[0];
-    if (!isfinite(Lcd0)) { return ROVER_EKF_NON_FINITE; }
-    if (!(Lcd0 > 0.0)) { return ROVER_EKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc0_0 = sqrt(Lcd0);
-    const double Lci0 = (1.0/Lc0_0);
-    const double Lc1_0 = Lci0*Ps[1];
-    const double Lc2_0 = Lci0*Ps[2];
-    const double Lc3_0 = Lci0*Ps[3];
-    const double Lcd1 = Ps[4] - (Lc1_0*Lc1_0);
-    if (!isfinite(Lcd1)) { return ROVER_EKF_NON_FINITE; }
-    if (!(Lcd1 > 0.0)) { return ROVER_EKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc1_1 = sqrt(Lcd1);
-    const double Lci1 = (1.0/Lc1_1);
-    const double Lc2_1 = Lci1*(Ps[5] - Lc1_0*Lc2_0);
-    const double Lc3_1 = Lci1*(Ps[6] - Lc1_0*Lc3_0);
-    const double Lcd2 = Ps[7] - (Lc2_0*Lc2_0) - (Lc2_1*Lc2_1);
-    if (!isfinite(Lcd2)) { return ROVER_EKF_NON_FINITE; }
-    if (!(Lcd2 > 0.0)) { return ROVER_EKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc2_2 = sqrt(Lcd2);
-    const double Lci2 = (1.0/Lc2_2);
-    const double Lc3_2 = Lci2*(Ps[8] - Lc2_0*Lc3_0 - Lc2_1*Lc3_1);
-    const double Lcd3 = Ps[9] - (Lc3_0*Lc3_0) - (Lc3_1*Lc3_1) - (Lc3_2*Lc3_2);
-    if (!isfinite(Lcd3)) { return ROVER_EKF_NON_FINITE; }
-    if (!(Lcd3 > 0.0)) { return ROVER_EKF_NOT_POSITIVE_DEFINITE; }
+    {
+        const int st = rover_ekf_commit_pd(Ps);  /* commit only a positive definite P */
+        if (st != ROVER_EKF_OK) {
+            return st;
+        }
+    }
 
     if (!isfinite(nis)) {
         return ROVER_EKF_NON_FINITE;

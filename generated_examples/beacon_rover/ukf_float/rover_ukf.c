@@ -37,36 +37,9 @@ static size_t rover_ukf_pk(size_t i, size_t j)
     return (i <= j) ? (i * 4u - (i * (i + 1u)) / 2u + j) : (j * 4u - (j * (j + 1u)) / 2u + i);
 }
 
-/* 1 when the packed symmetric matrix is positive definite (Cholesky succeeds), else 0. */
-static int rover_ukf_posdef(const float *P)
-{
-    float U[10];
-    size_t i, j, k;
-    memcpy(U, P, sizeof U);
-    for (j = 0; j < 4u; ++j) {
-        float d = U[rover_ukf_pk(j, j)];
-        for (k = 0; k < j; ++k) {
-            d -= U[rover_ukf_pk(k, j)] * U[rover_ukf_pk(k, j)];
-        }
-        if (!(d > 0.0F) || !isfinite(d)) {
-            return 0;
-        }
-        d = sqrtf(d);
-        U[rover_ukf_pk(j, j)] = d;
-        for (i = j + 1u; i < 4u; ++i) {
-            float e = U[rover_ukf_pk(j, i)];
-            for (k = 0; k < j; ++k) {
-                e -= U[rover_ukf_pk(k, j)] * U[rover_ukf_pk(k, i)];
-            }
-            U[rover_ukf_pk(j, i)] = e / d;
-        }
-    }
-    return 1;
-}
-
 /* OK when the packed covariance P is positive definite (every pivot of its Cholesky factorization
-   finite and > 0; a positive diagonal is not enough), else the refusal code. Unrolled, and one
-   copy serves every commit. */
+   finite and > 0; a positive diagonal is not enough), else the refusal code. Unrolled; one copy
+   serves set_state and every commit. */
 static int rover_ukf_commit_pd(const float *P)
 {
     const float Lcd0 = P[0];
@@ -174,7 +147,7 @@ int rover_ukf_set_state(rover_ukf_t *s, const float *x, const float *P)
     if (!rover_ukf_finite(x, 4u) || !rover_ukf_finite(P, 10u)) {
         return ROVER_UKF_BAD_INPUT;
     }
-    if (!rover_ukf_posdef(P)) {
+    if (rover_ukf_commit_pd(P) != ROVER_UKF_OK) {
         return ROVER_UKF_NOT_POSITIVE_DEFINITE;
     }
     memcpy(xn, x, sizeof xn);

@@ -25,31 +25,28 @@ static size_t cart_ekf_pk(size_t i, size_t j)
     return (i <= j) ? (i * 3u - (i * (i + 1u)) / 2u + j) : (j * 3u - (j * (j + 1u)) / 2u + i);
 }
 
-/* 1 when the packed symmetric matrix is positive definite (Cholesky succeeds), else 0. */
-static int cart_ekf_posdef(const double *P)
+/* OK when the packed covariance P is positive definite (every pivot of its Cholesky factorization
+   finite and > 0; a positive diagonal is not enough), else the refusal code. Unrolled; one copy
+   serves set_state and every commit. */
+static int cart_ekf_commit_pd(const double *P)
 {
-    double U[6];
-    size_t i, j, k;
-    memcpy(U, P, sizeof U);
-    for (j = 0; j < 3u; ++j) {
-        double d = U[cart_ekf_pk(j, j)];
-        for (k = 0; k < j; ++k) {
-            d -= U[cart_ekf_pk(k, j)] * U[cart_ekf_pk(k, j)];
-        }
-        if (!(d > 0.0) || !isfinite(d)) {
-            return 0;
-        }
-        d = sqrt(d);
-        U[cart_ekf_pk(j, j)] = d;
-        for (i = j + 1u; i < 3u; ++i) {
-            double e = U[cart_ekf_pk(j, i)];
-            for (k = 0; k < j; ++k) {
-                e -= U[cart_ekf_pk(k, j)] * U[cart_ekf_pk(k, i)];
-            }
-            U[cart_ekf_pk(j, i)] = e / d;
-        }
-    }
-    return 1;
+    const double Lcd0 = P[0];
+    if (!isfinite(Lcd0)) { return CART_EKF_NON_FINITE; }
+    if (!(Lcd0 > 0.0)) { return CART_EKF_NOT_POSITIVE_DEFINITE; }
+    const double Lc0_0 = sqrt(Lcd0);
+    const double Lci0 = (1.0/Lc0_0);
+    const double Lc1_0 = Lci0*P[1];
+    const double Lc2_0 = Lci0*P[2];
+    const double Lcd1 = P[3] - (Lc1_0*Lc1_0);
+    if (!isfinite(Lcd1)) { return CART_EKF_NON_FINITE; }
+    if (!(Lcd1 > 0.0)) { return CART_EKF_NOT_POSITIVE_DEFINITE; }
+    const double Lc1_1 = sqrt(Lcd1);
+    const double Lci1 = (1.0/Lc1_1);
+    const double Lc2_1 = Lci1*(P[4] - Lc1_0*Lc2_0);
+    const double Lcd2 = P[5] - (Lc2_0*Lc2_0) - (Lc2_1*Lc2_1);
+    if (!isfinite(Lcd2)) { return CART_EKF_NON_FINITE; }
+    if (!(Lcd2 > 0.0)) { return CART_EKF_NOT_POSITIVE_DEFINITE; }
+    return CART_EKF_OK;
 }
 
 void cart_ekf_init(cart_ekf_t *s)
@@ -77,7 +74,7 @@ int cart_ekf_set_state(cart_ekf_t *s, const double *x, const double *P)
     if (!cart_ekf_finite(x, 3u) || !cart_ekf_finite(P, 6u)) {
         return CART_EKF_BAD_INPUT;
     }
-    if (!cart_ekf_posdef(P)) {
+    if (cart_ekf_commit_pd(P) != CART_EKF_OK) {
         return CART_EKF_NOT_POSITIVE_DEFINITE;
     }
     memcpy(xn, x, sizeof xn);
@@ -139,24 +136,12 @@ int cart_ekf_predict(cart_ekf_t *s, const double *u, double dt)
     if (!cart_ekf_finite(xn, 3u) || !cart_ekf_finite(Pn, 6u)) {
         return CART_EKF_NON_FINITE;
     }
-    /* commit only a positive definite P: the pivots of its Cholesky factorization, unrolled
-       (a positive diagonal is not enough) */
-    const double Lcd0 = Pn[0];
-    if (!isfinite(Lcd0)) { return CART_EKF_NON_FINITE; }
-    if (!(Lcd0 > 0.0)) { return CART_EKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc0_0 = sqrt(Lcd0);
-    const double Lci0 = (1.0/Lc0_0);
-    const double Lc1_0 = Lci0*Pn[1];
-    const double Lc2_0 = Lci0*Pn[2];
-    const double Lcd1 = Pn[3] - (Lc1_0*Lc1_0);
-    if (!isfinite(Lcd1)) { return CART_EKF_NON_FINITE; }
-    if (!(Lcd1 > 0.0)) { return CART_EKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc1_1 = sqrt(Lcd1);
-    const double Lci1 = (1.0/Lc1_1);
-    const double Lc2_1 = Lci1*(Pn[4] - Lc1_0*Lc2_0);
-    const double Lcd2 = Pn[5] - (Lc2_0*Lc2_0) - (Lc2_1*Lc2_1);
-    if (!isfinite(Lcd2)) { return CART_EKF_NON_FINITE; }
-    if (!(Lcd2 > 0.0)) { return CART_EKF_NOT_POSITIVE_DEFINITE; }
+    {
+        const int st = cart_ekf_commit_pd(Pn);  /* commit only a positive definite P */
+        if (st != CART_EKF_OK) {
+            return st;
+        }
+    }
 
     memcpy(s->x, xn, sizeof xn);
     memcpy(s->P, Pn, sizeof Pn);
@@ -208,24 +193,12 @@ int cart_ekf_update_encoder_nis(cart_ekf_t *s, const double *z, double *nis_out)
     if (!cart_ekf_finite(xs, 3u) || !cart_ekf_finite(Ps, 6u)) {
         return CART_EKF_NON_FINITE;
     }
-    /* commit only a positive definite P: the pivots of its Cholesky factorization, unrolled
-       (a positive diagonal is not enough) */
-    const double Lcd0 = Ps[0];
-    if (!isfinite(Lcd0)) { return CART_EKF_NON_FINITE; }
-    if (!(Lcd0 > 0.0)) { return CART_EKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc0_0 = sqrt(Lcd0);
-    const double Lci0 = (1.0/Lc0_0);
-    const double Lc1_0 = Lci0*Ps[1];
-    const double Lc2_0 = Lci0*Ps[2];
-    const double Lcd1 = Ps[3] - (Lc1_0*Lc1_0);
-    if (!isfinite(Lcd1)) { return CART_EKF_NON_FINITE; }
-    if (!(Lcd1 > 0.0)) { return CART_EKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc1_1 = sqrt(Lcd1);
-    const double Lci1 = (1.0/Lc1_1);
-    const double Lc2_1 = Lci1*(Ps[4] - Lc1_0*Lc2_0);
-    const double Lcd2 = Ps[5] - (Lc2_0*Lc2_0) - (Lc2_1*Lc2_1);
-    if (!isfinite(Lcd2)) { return CART_EKF_NON_FINITE; }
-    if (!(Lcd2 > 0.0)) { return CART_EKF_NOT_POSITIVE_DEFINITE; }
+    {
+        const int st = cart_ekf_commit_pd(Ps);  /* commit only a positive definite P */
+        if (st != CART_EKF_OK) {
+            return st;
+        }
+    }
 
     if (!isfinite(nis)) {
         return CART_EKF_NON_FINITE;
@@ -289,24 +262,12 @@ int cart_ekf_update_speed_nis(cart_ekf_t *s, const double *z, double *nis_out)
     if (!cart_ekf_finite(xs, 3u) || !cart_ekf_finite(Ps, 6u)) {
         return CART_EKF_NON_FINITE;
     }
-    /* commit only a positive definite P: the pivots of its Cholesky factorization, unrolled
-       (a positive diagonal is not enough) */
-    const double Lcd0 = Ps[0];
-    if (!isfinite(Lcd0)) { return CART_EKF_NON_FINITE; }
-    if (!(Lcd0 > 0.0)) { return CART_EKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc0_0 = sqrt(Lcd0);
-    const double Lci0 = (1.0/Lc0_0);
-    const double Lc1_0 = Lci0*Ps[1];
-    const double Lc2_0 = Lci0*Ps[2];
-    const double Lcd1 = Ps[3] - (Lc1_0*Lc1_0);
-    if (!isfinite(Lcd1)) { return CART_EKF_NON_FINITE; }
-    if (!(Lcd1 > 0.0)) { return CART_EKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc1_1 = sqrt(Lcd1);
-    const double Lci1 = (1.0/Lc1_1);
-    const double Lc2_1 = Lci1*(Ps[4] - Lc1_0*Lc2_0);
-    const double Lcd2 = Ps[5] - (Lc2_0*Lc2_0) - (Lc2_1*Lc2_1);
-    if (!isfinite(Lcd2)) { return CART_EKF_NON_FINITE; }
-    if (!(Lcd2 > 0.0)) { return CART_EKF_NOT_POSITIVE_DEFINITE; }
+    {
+        const int st = cart_ekf_commit_pd(Ps);  /* commit only a positive definite P */
+        if (st != CART_EKF_OK) {
+            return st;
+        }
+    }
 
     if (!isfinite(nis)) {
         return CART_EKF_NON_FINITE;

@@ -31,36 +31,9 @@ static size_t cart_ukf_pk(size_t i, size_t j)
     return (i <= j) ? (i * 3u - (i * (i + 1u)) / 2u + j) : (j * 3u - (j * (j + 1u)) / 2u + i);
 }
 
-/* 1 when the packed symmetric matrix is positive definite (Cholesky succeeds), else 0. */
-static int cart_ukf_posdef(const double *P)
-{
-    double U[6];
-    size_t i, j, k;
-    memcpy(U, P, sizeof U);
-    for (j = 0; j < 3u; ++j) {
-        double d = U[cart_ukf_pk(j, j)];
-        for (k = 0; k < j; ++k) {
-            d -= U[cart_ukf_pk(k, j)] * U[cart_ukf_pk(k, j)];
-        }
-        if (!(d > 0.0) || !isfinite(d)) {
-            return 0;
-        }
-        d = sqrt(d);
-        U[cart_ukf_pk(j, j)] = d;
-        for (i = j + 1u; i < 3u; ++i) {
-            double e = U[cart_ukf_pk(j, i)];
-            for (k = 0; k < j; ++k) {
-                e -= U[cart_ukf_pk(k, j)] * U[cart_ukf_pk(k, i)];
-            }
-            U[cart_ukf_pk(j, i)] = e / d;
-        }
-    }
-    return 1;
-}
-
 /* OK when the packed covariance P is positive definite (every pivot of its Cholesky factorization
-   finite and > 0; a positive diagonal is not enough), else the refusal code. Unrolled, and one
-   copy serves every commit. */
+   finite and > 0; a positive diagonal is not enough), else the refusal code. Unrolled; one copy
+   serves set_state and every commit. */
 static int cart_ukf_commit_pd(const double *P)
 {
     const double Lcd0 = P[0];
@@ -138,7 +111,7 @@ int cart_ukf_set_state(cart_ukf_t *s, const double *x, const double *P)
     if (!cart_ukf_finite(x, 3u) || !cart_ukf_finite(P, 6u)) {
         return CART_UKF_BAD_INPUT;
     }
-    if (!cart_ukf_posdef(P)) {
+    if (cart_ukf_commit_pd(P) != CART_UKF_OK) {
         return CART_UKF_NOT_POSITIVE_DEFINITE;
     }
     memcpy(xn, x, sizeof xn);

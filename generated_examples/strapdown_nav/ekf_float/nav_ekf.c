@@ -31,31 +31,190 @@ static size_t nav_ekf_pk(size_t i, size_t j)
     return (i <= j) ? (i * 15u - (i * (i + 1u)) / 2u + j) : (j * 15u - (j * (j + 1u)) / 2u + i);
 }
 
-/* 1 when the packed symmetric matrix is positive definite (Cholesky succeeds), else 0. */
-static int nav_ekf_posdef(const float *P)
+/* OK when the packed covariance P is positive definite (every pivot of its Cholesky factorization
+   finite and > 0; a positive diagonal is not enough), else the refusal code. Unrolled; one copy
+   serves set_state and every commit. */
+static int nav_ekf_commit_pd(const float *P)
 {
-    float U[120];
-    size_t i, j, k;
-    memcpy(U, P, sizeof U);
-    for (j = 0; j < 15u; ++j) {
-        float d = U[nav_ekf_pk(j, j)];
-        for (k = 0; k < j; ++k) {
-            d -= U[nav_ekf_pk(k, j)] * U[nav_ekf_pk(k, j)];
-        }
-        if (!(d > 0.0F) || !isfinite(d)) {
-            return 0;
-        }
-        d = sqrtf(d);
-        U[nav_ekf_pk(j, j)] = d;
-        for (i = j + 1u; i < 15u; ++i) {
-            float e = U[nav_ekf_pk(j, i)];
-            for (k = 0; k < j; ++k) {
-                e -= U[nav_ekf_pk(k, j)] * U[nav_ekf_pk(k, i)];
-            }
-            U[nav_ekf_pk(j, i)] = e / d;
-        }
-    }
-    return 1;
+    const float Lcd0 = P[0];
+    if (!isfinite(Lcd0)) { return NAV_EKF_NON_FINITE; }
+    if (!(Lcd0 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
+    const float Lc0_0 = sqrtf(Lcd0);
+    const float Lci0 = (1.0F/Lc0_0);
+    const float Lc1_0 = Lci0*P[1];
+    const float Lc2_0 = Lci0*P[2];
+    const float Lc3_0 = Lci0*P[3];
+    const float Lc4_0 = Lci0*P[4];
+    const float Lc5_0 = Lci0*P[5];
+    const float Lc6_0 = Lci0*P[6];
+    const float Lc7_0 = Lci0*P[7];
+    const float Lc8_0 = Lci0*P[8];
+    const float Lc9_0 = Lci0*P[9];
+    const float Lc10_0 = Lci0*P[10];
+    const float Lc11_0 = Lci0*P[11];
+    const float Lc12_0 = Lci0*P[12];
+    const float Lc13_0 = Lci0*P[13];
+    const float Lc14_0 = Lci0*P[14];
+    const float Lcd1 = P[15] - (Lc1_0*Lc1_0);
+    if (!isfinite(Lcd1)) { return NAV_EKF_NON_FINITE; }
+    if (!(Lcd1 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
+    const float Lc1_1 = sqrtf(Lcd1);
+    const float Lci1 = (1.0F/Lc1_1);
+    const float Lc2_1 = Lci1*(P[16] - Lc1_0*Lc2_0);
+    const float Lc3_1 = Lci1*(P[17] - Lc1_0*Lc3_0);
+    const float Lc4_1 = Lci1*(P[18] - Lc1_0*Lc4_0);
+    const float Lc5_1 = Lci1*(P[19] - Lc1_0*Lc5_0);
+    const float Lc6_1 = Lci1*(P[20] - Lc1_0*Lc6_0);
+    const float Lc7_1 = Lci1*(P[21] - Lc1_0*Lc7_0);
+    const float Lc8_1 = Lci1*(P[22] - Lc1_0*Lc8_0);
+    const float Lc9_1 = Lci1*(P[23] - Lc1_0*Lc9_0);
+    const float Lc10_1 = Lci1*(P[24] - Lc10_0*Lc1_0);
+    const float Lc11_1 = Lci1*(P[25] - Lc11_0*Lc1_0);
+    const float Lc12_1 = Lci1*(P[26] - Lc12_0*Lc1_0);
+    const float Lc13_1 = Lci1*(P[27] - Lc13_0*Lc1_0);
+    const float Lc14_1 = Lci1*(P[28] - Lc14_0*Lc1_0);
+    const float Lcd2 = P[29] - (Lc2_0*Lc2_0) - (Lc2_1*Lc2_1);
+    if (!isfinite(Lcd2)) { return NAV_EKF_NON_FINITE; }
+    if (!(Lcd2 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
+    const float Lc2_2 = sqrtf(Lcd2);
+    const float Lci2 = (1.0F/Lc2_2);
+    const float Lc3_2 = Lci2*(P[30] - Lc2_0*Lc3_0 - Lc2_1*Lc3_1);
+    const float Lc4_2 = Lci2*(P[31] - Lc2_0*Lc4_0 - Lc2_1*Lc4_1);
+    const float Lc5_2 = Lci2*(P[32] - Lc2_0*Lc5_0 - Lc2_1*Lc5_1);
+    const float Lc6_2 = Lci2*(P[33] - Lc2_0*Lc6_0 - Lc2_1*Lc6_1);
+    const float Lc7_2 = Lci2*(P[34] - Lc2_0*Lc7_0 - Lc2_1*Lc7_1);
+    const float Lc8_2 = Lci2*(P[35] - Lc2_0*Lc8_0 - Lc2_1*Lc8_1);
+    const float Lc9_2 = Lci2*(P[36] - Lc2_0*Lc9_0 - Lc2_1*Lc9_1);
+    const float Lc10_2 = Lci2*(P[37] - Lc10_0*Lc2_0 - Lc10_1*Lc2_1);
+    const float Lc11_2 = Lci2*(P[38] - Lc11_0*Lc2_0 - Lc11_1*Lc2_1);
+    const float Lc12_2 = Lci2*(P[39] - Lc12_0*Lc2_0 - Lc12_1*Lc2_1);
+    const float Lc13_2 = Lci2*(P[40] - Lc13_0*Lc2_0 - Lc13_1*Lc2_1);
+    const float Lc14_2 = Lci2*(P[41] - Lc14_0*Lc2_0 - Lc14_1*Lc2_1);
+    const float Lcd3 = P[42] - (Lc3_0*Lc3_0) - (Lc3_1*Lc3_1) - (Lc3_2*Lc3_2);
+    if (!isfinite(Lcd3)) { return NAV_EKF_NON_FINITE; }
+    if (!(Lcd3 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
+    const float Lc3_3 = sqrtf(Lcd3);
+    const float Lci3 = (1.0F/Lc3_3);
+    const float Lc4_3 = Lci3*(P[43] - Lc3_0*Lc4_0 - Lc3_1*Lc4_1 - Lc3_2*Lc4_2);
+    const float Lc5_3 = Lci3*(P[44] - Lc3_0*Lc5_0 - Lc3_1*Lc5_1 - Lc3_2*Lc5_2);
+    const float Lc6_3 = Lci3*(P[45] - Lc3_0*Lc6_0 - Lc3_1*Lc6_1 - Lc3_2*Lc6_2);
+    const float Lc7_3 = Lci3*(P[46] - Lc3_0*Lc7_0 - Lc3_1*Lc7_1 - Lc3_2*Lc7_2);
+    const float Lc8_3 = Lci3*(P[47] - Lc3_0*Lc8_0 - Lc3_1*Lc8_1 - Lc3_2*Lc8_2);
+    const float Lc9_3 = Lci3*(P[48] - Lc3_0*Lc9_0 - Lc3_1*Lc9_1 - Lc3_2*Lc9_2);
+    const float Lc10_3 = Lci3*(P[49] - Lc10_0*Lc3_0 - Lc10_1*Lc3_1 - Lc10_2*Lc3_2);
+    const float Lc11_3 = Lci3*(P[50] - Lc11_0*Lc3_0 - Lc11_1*Lc3_1 - Lc11_2*Lc3_2);
+    const float Lc12_3 = Lci3*(P[51] - Lc12_0*Lc3_0 - Lc12_1*Lc3_1 - Lc12_2*Lc3_2);
+    const float Lc13_3 = Lci3*(P[52] - Lc13_0*Lc3_0 - Lc13_1*Lc3_1 - Lc13_2*Lc3_2);
+    const float Lc14_3 = Lci3*(P[53] - Lc14_0*Lc3_0 - Lc14_1*Lc3_1 - Lc14_2*Lc3_2);
+    const float Lcd4 = P[54] - (Lc4_0*Lc4_0) - (Lc4_1*Lc4_1) - (Lc4_2*Lc4_2) - (Lc4_3*Lc4_3);
+    if (!isfinite(Lcd4)) { return NAV_EKF_NON_FINITE; }
+    if (!(Lcd4 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
+    const float Lc4_4 = sqrtf(Lcd4);
+    const float Lci4 = (1.0F/Lc4_4);
+    const float Lc5_4 = Lci4*(P[55] - Lc4_0*Lc5_0 - Lc4_1*Lc5_1 - Lc4_2*Lc5_2 - Lc4_3*Lc5_3);
+    const float Lc6_4 = Lci4*(P[56] - Lc4_0*Lc6_0 - Lc4_1*Lc6_1 - Lc4_2*Lc6_2 - Lc4_3*Lc6_3);
+    const float Lc7_4 = Lci4*(P[57] - Lc4_0*Lc7_0 - Lc4_1*Lc7_1 - Lc4_2*Lc7_2 - Lc4_3*Lc7_3);
+    const float Lc8_4 = Lci4*(P[58] - Lc4_0*Lc8_0 - Lc4_1*Lc8_1 - Lc4_2*Lc8_2 - Lc4_3*Lc8_3);
+    const float Lc9_4 = Lci4*(P[59] - Lc4_0*Lc9_0 - Lc4_1*Lc9_1 - Lc4_2*Lc9_2 - Lc4_3*Lc9_3);
+    const float Lc10_4 = Lci4*(P[60] - Lc10_0*Lc4_0 - Lc10_1*Lc4_1 - Lc10_2*Lc4_2 - Lc10_3*Lc4_3);
+    const float Lc11_4 = Lci4*(P[61] - Lc11_0*Lc4_0 - Lc11_1*Lc4_1 - Lc11_2*Lc4_2 - Lc11_3*Lc4_3);
+    const float Lc12_4 = Lci4*(P[62] - Lc12_0*Lc4_0 - Lc12_1*Lc4_1 - Lc12_2*Lc4_2 - Lc12_3*Lc4_3);
+    const float Lc13_4 = Lci4*(P[63] - Lc13_0*Lc4_0 - Lc13_1*Lc4_1 - Lc13_2*Lc4_2 - Lc13_3*Lc4_3);
+    const float Lc14_4 = Lci4*(P[64] - Lc14_0*Lc4_0 - Lc14_1*Lc4_1 - Lc14_2*Lc4_2 - Lc14_3*Lc4_3);
+    const float Lcd5 = P[65] - (Lc5_0*Lc5_0) - (Lc5_1*Lc5_1) - (Lc5_2*Lc5_2) - (Lc5_3*Lc5_3) - (Lc5_4*Lc5_4);
+    if (!isfinite(Lcd5)) { return NAV_EKF_NON_FINITE; }
+    if (!(Lcd5 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
+    const float Lc5_5 = sqrtf(Lcd5);
+    const float Lci5 = (1.0F/Lc5_5);
+    const float Lc6_5 = Lci5*(P[66] - Lc5_0*Lc6_0 - Lc5_1*Lc6_1 - Lc5_2*Lc6_2 - Lc5_3*Lc6_3 - Lc5_4*Lc6_4);
+    const float Lc7_5 = Lci5*(P[67] - Lc5_0*Lc7_0 - Lc5_1*Lc7_1 - Lc5_2*Lc7_2 - Lc5_3*Lc7_3 - Lc5_4*Lc7_4);
+    const float Lc8_5 = Lci5*(P[68] - Lc5_0*Lc8_0 - Lc5_1*Lc8_1 - Lc5_2*Lc8_2 - Lc5_3*Lc8_3 - Lc5_4*Lc8_4);
+    const float Lc9_5 = Lci5*(P[69] - Lc5_0*Lc9_0 - Lc5_1*Lc9_1 - Lc5_2*Lc9_2 - Lc5_3*Lc9_3 - Lc5_4*Lc9_4);
+    const float Lc10_5 = Lci5*(P[70] - Lc10_0*Lc5_0 - Lc10_1*Lc5_1 - Lc10_2*Lc5_2 - Lc10_3*Lc5_3 - Lc10_4*Lc5_4);
+    const float Lc11_5 = Lci5*(P[71] - Lc11_0*Lc5_0 - Lc11_1*Lc5_1 - Lc11_2*Lc5_2 - Lc11_3*Lc5_3 - Lc11_4*Lc5_4);
+    const float Lc12_5 = Lci5*(P[72] - Lc12_0*Lc5_0 - Lc12_1*Lc5_1 - Lc12_2*Lc5_2 - Lc12_3*Lc5_3 - Lc12_4*Lc5_4);
+    const float Lc13_5 = Lci5*(P[73] - Lc13_0*Lc5_0 - Lc13_1*Lc5_1 - Lc13_2*Lc5_2 - Lc13_3*Lc5_3 - Lc13_4*Lc5_4);
+    const float Lc14_5 = Lci5*(P[74] - Lc14_0*Lc5_0 - Lc14_1*Lc5_1 - Lc14_2*Lc5_2 - Lc14_3*Lc5_3 - Lc14_4*Lc5_4);
+    const float Lcd6 = P[75] - (Lc6_0*Lc6_0) - (Lc6_1*Lc6_1) - (Lc6_2*Lc6_2) - (Lc6_3*Lc6_3) - (Lc6_4*Lc6_4) - (Lc6_5*Lc6_5);
+    if (!isfinite(Lcd6)) { return NAV_EKF_NON_FINITE; }
+    if (!(Lcd6 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
+    const float Lc6_6 = sqrtf(Lcd6);
+    const float Lci6 = (1.0F/Lc6_6);
+    const float Lc7_6 = Lci6*(P[76] - Lc6_0*Lc7_0 - Lc6_1*Lc7_1 - Lc6_2*Lc7_2 - Lc6_3*Lc7_3 - Lc6_4*Lc7_4 - Lc6_5*Lc7_5);
+    const float Lc8_6 = Lci6*(P[77] - Lc6_0*Lc8_0 - Lc6_1*Lc8_1 - Lc6_2*Lc8_2 - Lc6_3*Lc8_3 - Lc6_4*Lc8_4 - Lc6_5*Lc8_5);
+    const float Lc9_6 = Lci6*(P[78] - Lc6_0*Lc9_0 - Lc6_1*Lc9_1 - Lc6_2*Lc9_2 - Lc6_3*Lc9_3 - Lc6_4*Lc9_4 - Lc6_5*Lc9_5);
+    const float Lc10_6 = Lci6*(P[79] - Lc10_0*Lc6_0 - Lc10_1*Lc6_1 - Lc10_2*Lc6_2 - Lc10_3*Lc6_3 - Lc10_4*Lc6_4 - Lc10_5*Lc6_5);
+    const float Lc11_6 = Lci6*(P[80] - Lc11_0*Lc6_0 - Lc11_1*Lc6_1 - Lc11_2*Lc6_2 - Lc11_3*Lc6_3 - Lc11_4*Lc6_4 - Lc11_5*Lc6_5);
+    const float Lc12_6 = Lci6*(P[81] - Lc12_0*Lc6_0 - Lc12_1*Lc6_1 - Lc12_2*Lc6_2 - Lc12_3*Lc6_3 - Lc12_4*Lc6_4 - Lc12_5*Lc6_5);
+    const float Lc13_6 = Lci6*(P[82] - Lc13_0*Lc6_0 - Lc13_1*Lc6_1 - Lc13_2*Lc6_2 - Lc13_3*Lc6_3 - Lc13_4*Lc6_4 - Lc13_5*Lc6_5);
+    const float Lc14_6 = Lci6*(P[83] - Lc14_0*Lc6_0 - Lc14_1*Lc6_1 - Lc14_2*Lc6_2 - Lc14_3*Lc6_3 - Lc14_4*Lc6_4 - Lc14_5*Lc6_5);
+    const float Lcd7 = P[84] - (Lc7_0*Lc7_0) - (Lc7_1*Lc7_1) - (Lc7_2*Lc7_2) - (Lc7_3*Lc7_3) - (Lc7_4*Lc7_4) - (Lc7_5*Lc7_5) - (Lc7_6*Lc7_6);
+    if (!isfinite(Lcd7)) { return NAV_EKF_NON_FINITE; }
+    if (!(Lcd7 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
+    const float Lc7_7 = sqrtf(Lcd7);
+    const float Lci7 = (1.0F/Lc7_7);
+    const float Lc8_7 = Lci7*(P[85] - Lc7_0*Lc8_0 - Lc7_1*Lc8_1 - Lc7_2*Lc8_2 - Lc7_3*Lc8_3 - Lc7_4*Lc8_4 - Lc7_5*Lc8_5 - Lc7_6*Lc8_6);
+    const float Lc9_7 = Lci7*(P[86] - Lc7_0*Lc9_0 - Lc7_1*Lc9_1 - Lc7_2*Lc9_2 - Lc7_3*Lc9_3 - Lc7_4*Lc9_4 - Lc7_5*Lc9_5 - Lc7_6*Lc9_6);
+    const float Lc10_7 = Lci7*(P[87] - Lc10_0*Lc7_0 - Lc10_1*Lc7_1 - Lc10_2*Lc7_2 - Lc10_3*Lc7_3 - Lc10_4*Lc7_4 - Lc10_5*Lc7_5 - Lc10_6*Lc7_6);
+    const float Lc11_7 = Lci7*(P[88] - Lc11_0*Lc7_0 - Lc11_1*Lc7_1 - Lc11_2*Lc7_2 - Lc11_3*Lc7_3 - Lc11_4*Lc7_4 - Lc11_5*Lc7_5 - Lc11_6*Lc7_6);
+    const float Lc12_7 = Lci7*(P[89] - Lc12_0*Lc7_0 - Lc12_1*Lc7_1 - Lc12_2*Lc7_2 - Lc12_3*Lc7_3 - Lc12_4*Lc7_4 - Lc12_5*Lc7_5 - Lc12_6*Lc7_6);
+    const float Lc13_7 = Lci7*(P[90] - Lc13_0*Lc7_0 - Lc13_1*Lc7_1 - Lc13_2*Lc7_2 - Lc13_3*Lc7_3 - Lc13_4*Lc7_4 - Lc13_5*Lc7_5 - Lc13_6*Lc7_6);
+    const float Lc14_7 = Lci7*(P[91] - Lc14_0*Lc7_0 - Lc14_1*Lc7_1 - Lc14_2*Lc7_2 - Lc14_3*Lc7_3 - Lc14_4*Lc7_4 - Lc14_5*Lc7_5 - Lc14_6*Lc7_6);
+    const float Lcd8 = P[92] - (Lc8_0*Lc8_0) - (Lc8_1*Lc8_1) - (Lc8_2*Lc8_2) - (Lc8_3*Lc8_3) - (Lc8_4*Lc8_4) - (Lc8_5*Lc8_5) - (Lc8_6*Lc8_6) - (Lc8_7*Lc8_7);
+    if (!isfinite(Lcd8)) { return NAV_EKF_NON_FINITE; }
+    if (!(Lcd8 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
+    const float Lc8_8 = sqrtf(Lcd8);
+    const float Lci8 = (1.0F/Lc8_8);
+    const float Lc9_8 = Lci8*(P[93] - Lc8_0*Lc9_0 - Lc8_1*Lc9_1 - Lc8_2*Lc9_2 - Lc8_3*Lc9_3 - Lc8_4*Lc9_4 - Lc8_5*Lc9_5 - Lc8_6*Lc9_6 - Lc8_7*Lc9_7);
+    const float Lc10_8 = Lci8*(P[94] - Lc10_0*Lc8_0 - Lc10_1*Lc8_1 - Lc10_2*Lc8_2 - Lc10_3*Lc8_3 - Lc10_4*Lc8_4 - Lc10_5*Lc8_5 - Lc10_6*Lc8_6 - Lc10_7*Lc8_7);
+    const float Lc11_8 = Lci8*(P[95] - Lc11_0*Lc8_0 - Lc11_1*Lc8_1 - Lc11_2*Lc8_2 - Lc11_3*Lc8_3 - Lc11_4*Lc8_4 - Lc11_5*Lc8_5 - Lc11_6*Lc8_6 - Lc11_7*Lc8_7);
+    const float Lc12_8 = Lci8*(P[96] - Lc12_0*Lc8_0 - Lc12_1*Lc8_1 - Lc12_2*Lc8_2 - Lc12_3*Lc8_3 - Lc12_4*Lc8_4 - Lc12_5*Lc8_5 - Lc12_6*Lc8_6 - Lc12_7*Lc8_7);
+    const float Lc13_8 = Lci8*(P[97] - Lc13_0*Lc8_0 - Lc13_1*Lc8_1 - Lc13_2*Lc8_2 - Lc13_3*Lc8_3 - Lc13_4*Lc8_4 - Lc13_5*Lc8_5 - Lc13_6*Lc8_6 - Lc13_7*Lc8_7);
+    const float Lc14_8 = Lci8*(P[98] - Lc14_0*Lc8_0 - Lc14_1*Lc8_1 - Lc14_2*Lc8_2 - Lc14_3*Lc8_3 - Lc14_4*Lc8_4 - Lc14_5*Lc8_5 - Lc14_6*Lc8_6 - Lc14_7*Lc8_7);
+    const float Lcd9 = P[99] - (Lc9_0*Lc9_0) - (Lc9_1*Lc9_1) - (Lc9_2*Lc9_2) - (Lc9_3*Lc9_3) - (Lc9_4*Lc9_4) - (Lc9_5*Lc9_5) - (Lc9_6*Lc9_6) - (Lc9_7*Lc9_7) - (Lc9_8*Lc9_8);
+    if (!isfinite(Lcd9)) { return NAV_EKF_NON_FINITE; }
+    if (!(Lcd9 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
+    const float Lc9_9 = sqrtf(Lcd9);
+    const float Lci9 = (1.0F/Lc9_9);
+    const float Lc10_9 = Lci9*(P[100] - Lc10_0*Lc9_0 - Lc10_1*Lc9_1 - Lc10_2*Lc9_2 - Lc10_3*Lc9_3 - Lc10_4*Lc9_4 - Lc10_5*Lc9_5 - Lc10_6*Lc9_6 - Lc10_7*Lc9_7 - Lc10_8*Lc9_8);
+    const float Lc11_9 = Lci9*(P[101] - Lc11_0*Lc9_0 - Lc11_1*Lc9_1 - Lc11_2*Lc9_2 - Lc11_3*Lc9_3 - Lc11_4*Lc9_4 - Lc11_5*Lc9_5 - Lc11_6*Lc9_6 - Lc11_7*Lc9_7 - Lc11_8*Lc9_8);
+    const float Lc12_9 = Lci9*(P[102] - Lc12_0*Lc9_0 - Lc12_1*Lc9_1 - Lc12_2*Lc9_2 - Lc12_3*Lc9_3 - Lc12_4*Lc9_4 - Lc12_5*Lc9_5 - Lc12_6*Lc9_6 - Lc12_7*Lc9_7 - Lc12_8*Lc9_8);
+    const float Lc13_9 = Lci9*(P[103] - Lc13_0*Lc9_0 - Lc13_1*Lc9_1 - Lc13_2*Lc9_2 - Lc13_3*Lc9_3 - Lc13_4*Lc9_4 - Lc13_5*Lc9_5 - Lc13_6*Lc9_6 - Lc13_7*Lc9_7 - Lc13_8*Lc9_8);
+    const float Lc14_9 = Lci9*(P[104] - Lc14_0*Lc9_0 - Lc14_1*Lc9_1 - Lc14_2*Lc9_2 - Lc14_3*Lc9_3 - Lc14_4*Lc9_4 - Lc14_5*Lc9_5 - Lc14_6*Lc9_6 - Lc14_7*Lc9_7 - Lc14_8*Lc9_8);
+    const float Lcd10 = P[105] - (Lc10_0*Lc10_0) - (Lc10_1*Lc10_1) - (Lc10_2*Lc10_2) - (Lc10_3*Lc10_3) - (Lc10_4*Lc10_4) - (Lc10_5*Lc10_5) - (Lc10_6*Lc10_6) - (Lc10_7*Lc10_7) - (Lc10_8*Lc10_8) - (Lc10_9*Lc10_9);
+    if (!isfinite(Lcd10)) { return NAV_EKF_NON_FINITE; }
+    if (!(Lcd10 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
+    const float Lc10_10 = sqrtf(Lcd10);
+    const float Lci10 = (1.0F/Lc10_10);
+    const float Lc11_10 = Lci10*(P[106] - Lc10_0*Lc11_0 - Lc10_1*Lc11_1 - Lc10_2*Lc11_2 - Lc10_3*Lc11_3 - Lc10_4*Lc11_4 - Lc10_5*Lc11_5 - Lc10_6*Lc11_6 - Lc10_7*Lc11_7 - Lc10_8*Lc11_8 - Lc10_9*Lc11_9);
+    const float Lc12_10 = Lci10*(P[107] - Lc10_0*Lc12_0 - Lc10_1*Lc12_1 - Lc10_2*Lc12_2 - Lc10_3*Lc12_3 - Lc10_4*Lc12_4 - Lc10_5*Lc12_5 - Lc10_6*Lc12_6 - Lc10_7*Lc12_7 - Lc10_8*Lc12_8 - Lc10_9*Lc12_9);
+    const float Lc13_10 = Lci10*(P[108] - Lc10_0*Lc13_0 - Lc10_1*Lc13_1 - Lc10_2*Lc13_2 - Lc10_3*Lc13_3 - Lc10_4*Lc13_4 - Lc10_5*Lc13_5 - Lc10_6*Lc13_6 - Lc10_7*Lc13_7 - Lc10_8*Lc13_8 - Lc10_9*Lc13_9);
+    const float Lc14_10 = Lci10*(P[109] - Lc10_0*Lc14_0 - Lc10_1*Lc14_1 - Lc10_2*Lc14_2 - Lc10_3*Lc14_3 - Lc10_4*Lc14_4 - Lc10_5*Lc14_5 - Lc10_6*Lc14_6 - Lc10_7*Lc14_7 - Lc10_8*Lc14_8 - Lc10_9*Lc14_9);
+    const float Lcd11 = P[110] - (Lc11_0*Lc11_0) - (Lc11_1*Lc11_1) - (Lc11_10*Lc11_10) - (Lc11_2*Lc11_2) - (Lc11_3*Lc11_3) - (Lc11_4*Lc11_4) - (Lc11_5*Lc11_5) - (Lc11_6*Lc11_6) - (Lc11_7*Lc11_7) - (Lc11_8*Lc11_8) - (Lc11_9*Lc11_9);
+    if (!isfinite(Lcd11)) { return NAV_EKF_NON_FINITE; }
+    if (!(Lcd11 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
+    const float Lc11_11 = sqrtf(Lcd11);
+    const float Lci11 = (1.0F/Lc11_11);
+    const float Lc12_11 = Lci11*(P[111] - Lc11_0*Lc12_0 - Lc11_1*Lc12_1 - Lc11_10*Lc12_10 - Lc11_2*Lc12_2 - Lc11_3*Lc12_3 - Lc11_4*Lc12_4 - Lc11_5*Lc12_5 - Lc11_6*Lc12_6 - Lc11_7*Lc12_7 - Lc11_8*Lc12_8 - Lc11_9*Lc12_9);
+    const float Lc13_11 = Lci11*(P[112] - Lc11_0*Lc13_0 - Lc11_1*Lc13_1 - Lc11_10*Lc13_10 - Lc11_2*Lc13_2 - Lc11_3*Lc13_3 - Lc11_4*Lc13_4 - Lc11_5*Lc13_5 - Lc11_6*Lc13_6 - Lc11_7*Lc13_7 - Lc11_8*Lc13_8 - Lc11_9*Lc13_9);
+    const float Lc14_11 = Lci11*(P[113] - Lc11_0*Lc14_0 - Lc11_1*Lc14_1 - Lc11_10*Lc14_10 - Lc11_2*Lc14_2 - Lc11_3*Lc14_3 - Lc11_4*Lc14_4 - Lc11_5*Lc14_5 - Lc11_6*Lc14_6 - Lc11_7*Lc14_7 - Lc11_8*Lc14_8 - Lc11_9*Lc14_9);
+    const float Lcd12 = P[114] - (Lc12_0*Lc12_0) - (Lc12_1*Lc12_1) - (Lc12_10*Lc12_10) - (Lc12_11*Lc12_11) - (Lc12_2*Lc12_2) - (Lc12_3*Lc12_3) - (Lc12_4*Lc12_4) - (Lc12_5*Lc12_5) - (Lc12_6*Lc12_6) - (Lc12_7*Lc12_7) - (Lc12_8*Lc12_8) - (Lc12_9*Lc12_9);
+    if (!isfinite(Lcd12)) { return NAV_EKF_NON_FINITE; }
+    if (!(Lcd12 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
+    const float Lc12_12 = sqrtf(Lcd12);
+    const float Lci12 = (1.0F/Lc12_12);
+    const float Lc13_12 = Lci12*(P[115] - Lc12_0*Lc13_0 - Lc12_1*Lc13_1 - Lc12_10*Lc13_10 - Lc12_11*Lc13_11 - Lc12_2*Lc13_2 - Lc12_3*Lc13_3 - Lc12_4*Lc13_4 - Lc12_5*Lc13_5 - Lc12_6*Lc13_6 - Lc12_7*Lc13_7 - Lc12_8*Lc13_8 - Lc12_9*Lc13_9);
+    const float Lc14_12 = Lci12*(P[116] - Lc12_0*Lc14_0 - Lc12_1*Lc14_1 - Lc12_10*Lc14_10 - Lc12_11*Lc14_11 - Lc12_2*Lc14_2 - Lc12_3*Lc14_3 - Lc12_4*Lc14_4 - Lc12_5*Lc14_5 - Lc12_6*Lc14_6 - Lc12_7*Lc14_7 - Lc12_8*Lc14_8 - Lc12_9*Lc14_9);
+    const float Lcd13 = P[117] - (Lc13_0*Lc13_0) - (Lc13_1*Lc13_1) - (Lc13_10*Lc13_10) - (Lc13_11*Lc13_11) - (Lc13_12*Lc13_12) - (Lc13_2*Lc13_2) - (Lc13_3*Lc13_3) - (Lc13_4*Lc13_4) - (Lc13_5*Lc13_5) - (Lc13_6*Lc13_6) - (Lc13_7*Lc13_7) - (Lc13_8*Lc13_8) - (Lc13_9*Lc13_9);
+    if (!isfinite(Lcd13)) { return NAV_EKF_NON_FINITE; }
+    if (!(Lcd13 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
+    const float Lc13_13 = sqrtf(Lcd13);
+    const float Lci13 = (1.0F/Lc13_13);
+    const float Lc14_13 = Lci13*(P[118] - Lc13_0*Lc14_0 - Lc13_1*Lc14_1 - Lc13_10*Lc14_10 - Lc13_11*Lc14_11 - Lc13_12*Lc14_12 - Lc13_2*Lc14_2 - Lc13_3*Lc14_3 - Lc13_4*Lc14_4 - Lc13_5*Lc14_5 - Lc13_6*Lc14_6 - Lc13_7*Lc14_7 - Lc13_8*Lc14_8 - Lc13_9*Lc14_9);
+    const float Lcd14 = P[119] - (Lc14_0*Lc14_0) - (Lc14_1*Lc14_1) - (Lc14_10*Lc14_10) - (Lc14_11*Lc14_11) - (Lc14_12*Lc14_12) - (Lc14_13*Lc14_13) - (Lc14_2*Lc14_2) - (Lc14_3*Lc14_3) - (Lc14_4*Lc14_4) - (Lc14_5*Lc14_5) - (Lc14_6*Lc14_6) - (Lc14_7*Lc14_7) - (Lc14_8*Lc14_8) - (Lc14_9*Lc14_9);
+    if (!isfinite(Lcd14)) { return NAV_EKF_NON_FINITE; }
+    if (!(Lcd14 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
+    return NAV_EKF_OK;
 }
 
 void nav_ekf_init(nav_ekf_t *s)
@@ -207,7 +366,7 @@ int nav_ekf_set_state(nav_ekf_t *s, const float *x, const float *P)
     if (!nav_ekf_finite(x, 15u) || !nav_ekf_finite(P, 120u)) {
         return NAV_EKF_BAD_INPUT;
     }
-    if (!nav_ekf_posdef(P)) {
+    if (nav_ekf_commit_pd(P) != NAV_EKF_OK) {
         return NAV_EKF_NOT_POSITIVE_DEFINITE;
     }
     memcpy(xn, x, sizeof xn);
@@ -556,186 +715,12 @@ int nav_ekf_predict(nav_ekf_t *s, const float *u, float dt)
     if (!nav_ekf_finite(xn, 15u) || !nav_ekf_finite(Pn, 120u)) {
         return NAV_EKF_NON_FINITE;
     }
-    /* commit only a positive definite P: the pivots of its Cholesky factorization, unrolled
-       (a positive diagonal is not enough) */
-    const float Lcd0 = Pn[0];
-    if (!isfinite(Lcd0)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd0 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc0_0 = sqrtf(Lcd0);
-    const float Lci0 = (1.0F/Lc0_0);
-    const float Lc1_0 = Lci0*Pn[1];
-    const float Lc2_0 = Lci0*Pn[2];
-    const float Lc3_0 = Lci0*Pn[3];
-    const float Lc4_0 = Lci0*Pn[4];
-    const float Lc5_0 = Lci0*Pn[5];
-    const float Lc6_0 = Lci0*Pn[6];
-    const float Lc7_0 = Lci0*Pn[7];
-    const float Lc8_0 = Lci0*Pn[8];
-    const float Lc9_0 = Lci0*Pn[9];
-    const float Lc10_0 = Lci0*Pn[10];
-    const float Lc11_0 = Lci0*Pn[11];
-    const float Lc12_0 = Lci0*Pn[12];
-    const float Lc13_0 = Lci0*Pn[13];
-    const float Lc14_0 = Lci0*Pn[14];
-    const float Lcd1 = Pn[15] - (Lc1_0*Lc1_0);
-    if (!isfinite(Lcd1)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd1 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc1_1 = sqrtf(Lcd1);
-    const float Lci1 = (1.0F/Lc1_1);
-    const float Lc2_1 = Lci1*(Pn[16] - Lc1_0*Lc2_0);
-    const float Lc3_1 = Lci1*(Pn[17] - Lc1_0*Lc3_0);
-    const float Lc4_1 = Lci1*(Pn[18] - Lc1_0*Lc4_0);
-    const float Lc5_1 = Lci1*(Pn[19] - Lc1_0*Lc5_0);
-    const float Lc6_1 = Lci1*(Pn[20] - Lc1_0*Lc6_0);
-    const float Lc7_1 = Lci1*(Pn[21] - Lc1_0*Lc7_0);
-    const float Lc8_1 = Lci1*(Pn[22] - Lc1_0*Lc8_0);
-    const float Lc9_1 = Lci1*(Pn[23] - Lc1_0*Lc9_0);
-    const float Lc10_1 = Lci1*(Pn[24] - Lc10_0*Lc1_0);
-    const float Lc11_1 = Lci1*(Pn[25] - Lc11_0*Lc1_0);
-    const float Lc12_1 = Lci1*(Pn[26] - Lc12_0*Lc1_0);
-    const float Lc13_1 = Lci1*(Pn[27] - Lc13_0*Lc1_0);
-    const float Lc14_1 = Lci1*(Pn[28] - Lc14_0*Lc1_0);
-    const float Lcd2 = Pn[29] - (Lc2_0*Lc2_0) - (Lc2_1*Lc2_1);
-    if (!isfinite(Lcd2)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd2 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc2_2 = sqrtf(Lcd2);
-    const float Lci2 = (1.0F/Lc2_2);
-    const float Lc3_2 = Lci2*(Pn[30] - Lc2_0*Lc3_0 - Lc2_1*Lc3_1);
-    const float Lc4_2 = Lci2*(Pn[31] - Lc2_0*Lc4_0 - Lc2_1*Lc4_1);
-    const float Lc5_2 = Lci2*(Pn[32] - Lc2_0*Lc5_0 - Lc2_1*Lc5_1);
-    const float Lc6_2 = Lci2*(Pn[33] - Lc2_0*Lc6_0 - Lc2_1*Lc6_1);
-    const float Lc7_2 = Lci2*(Pn[34] - Lc2_0*Lc7_0 - Lc2_1*Lc7_1);
-    const float Lc8_2 = Lci2*(Pn[35] - Lc2_0*Lc8_0 - Lc2_1*Lc8_1);
-    const float Lc9_2 = Lci2*(Pn[36] - Lc2_0*Lc9_0 - Lc2_1*Lc9_1);
-    const float Lc10_2 = Lci2*(Pn[37] - Lc10_0*Lc2_0 - Lc10_1*Lc2_1);
-    const float Lc11_2 = Lci2*(Pn[38] - Lc11_0*Lc2_0 - Lc11_1*Lc2_1);
-    const float Lc12_2 = Lci2*(Pn[39] - Lc12_0*Lc2_0 - Lc12_1*Lc2_1);
-    const float Lc13_2 = Lci2*(Pn[40] - Lc13_0*Lc2_0 - Lc13_1*Lc2_1);
-    const float Lc14_2 = Lci2*(Pn[41] - Lc14_0*Lc2_0 - Lc14_1*Lc2_1);
-    const float Lcd3 = Pn[42] - (Lc3_0*Lc3_0) - (Lc3_1*Lc3_1) - (Lc3_2*Lc3_2);
-    if (!isfinite(Lcd3)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd3 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc3_3 = sqrtf(Lcd3);
-    const float Lci3 = (1.0F/Lc3_3);
-    const float Lc4_3 = Lci3*(Pn[43] - Lc3_0*Lc4_0 - Lc3_1*Lc4_1 - Lc3_2*Lc4_2);
-    const float Lc5_3 = Lci3*(Pn[44] - Lc3_0*Lc5_0 - Lc3_1*Lc5_1 - Lc3_2*Lc5_2);
-    const float Lc6_3 = Lci3*(Pn[45] - Lc3_0*Lc6_0 - Lc3_1*Lc6_1 - Lc3_2*Lc6_2);
-    const float Lc7_3 = Lci3*(Pn[46] - Lc3_0*Lc7_0 - Lc3_1*Lc7_1 - Lc3_2*Lc7_2);
-    const float Lc8_3 = Lci3*(Pn[47] - Lc3_0*Lc8_0 - Lc3_1*Lc8_1 - Lc3_2*Lc8_2);
-    const float Lc9_3 = Lci3*(Pn[48] - Lc3_0*Lc9_0 - Lc3_1*Lc9_1 - Lc3_2*Lc9_2);
-    const float Lc10_3 = Lci3*(Pn[49] - Lc10_0*Lc3_0 - Lc10_1*Lc3_1 - Lc10_2*Lc3_2);
-    const float Lc11_3 = Lci3*(Pn[50] - Lc11_0*Lc3_0 - Lc11_1*Lc3_1 - Lc11_2*Lc3_2);
-    const float Lc12_3 = Lci3*(Pn[51] - Lc12_0*Lc3_0 - Lc12_1*Lc3_1 - Lc12_2*Lc3_2);
-    const float Lc13_3 = Lci3*(Pn[52] - Lc13_0*Lc3_0 - Lc13_1*Lc3_1 - Lc13_2*Lc3_2);
-    const float Lc14_3 = Lci3*(Pn[53] - Lc14_0*Lc3_0 - Lc14_1*Lc3_1 - Lc14_2*Lc3_2);
-    const float Lcd4 = Pn[54] - (Lc4_0*Lc4_0) - (Lc4_1*Lc4_1) - (Lc4_2*Lc4_2) - (Lc4_3*Lc4_3);
-    if (!isfinite(Lcd4)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd4 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc4_4 = sqrtf(Lcd4);
-    const float Lci4 = (1.0F/Lc4_4);
-    const float Lc5_4 = Lci4*(Pn[55] - Lc4_0*Lc5_0 - Lc4_1*Lc5_1 - Lc4_2*Lc5_2 - Lc4_3*Lc5_3);
-    const float Lc6_4 = Lci4*(Pn[56] - Lc4_0*Lc6_0 - Lc4_1*Lc6_1 - Lc4_2*Lc6_2 - Lc4_3*Lc6_3);
-    const float Lc7_4 = Lci4*(Pn[57] - Lc4_0*Lc7_0 - Lc4_1*Lc7_1 - Lc4_2*Lc7_2 - Lc4_3*Lc7_3);
-    const float Lc8_4 = Lci4*(Pn[58] - Lc4_0*Lc8_0 - Lc4_1*Lc8_1 - Lc4_2*Lc8_2 - Lc4_3*Lc8_3);
-    const float Lc9_4 = Lci4*(Pn[59] - Lc4_0*Lc9_0 - Lc4_1*Lc9_1 - Lc4_2*Lc9_2 - Lc4_3*Lc9_3);
-    const float Lc10_4 = Lci4*(Pn[60] - Lc10_0*Lc4_0 - Lc10_1*Lc4_1 - Lc10_2*Lc4_2 - Lc10_3*Lc4_3);
-    const float Lc11_4 = Lci4*(Pn[61] - Lc11_0*Lc4_0 - Lc11_1*Lc4_1 - Lc11_2*Lc4_2 - Lc11_3*Lc4_3);
-    const float Lc12_4 = Lci4*(Pn[62] - Lc12_0*Lc4_0 - Lc12_1*Lc4_1 - Lc12_2*Lc4_2 - Lc12_3*Lc4_3);
-    const float Lc13_4 = Lci4*(Pn[63] - Lc13_0*Lc4_0 - Lc13_1*Lc4_1 - Lc13_2*Lc4_2 - Lc13_3*Lc4_3);
-    const float Lc14_4 = Lci4*(Pn[64] - Lc14_0*Lc4_0 - Lc14_1*Lc4_1 - Lc14_2*Lc4_2 - Lc14_3*Lc4_3);
-    const float Lcd5 = Pn[65] - (Lc5_0*Lc5_0) - (Lc5_1*Lc5_1) - (Lc5_2*Lc5_2) - (Lc5_3*Lc5_3) - (Lc5_4*Lc5_4);
-    if (!isfinite(Lcd5)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd5 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc5_5 = sqrtf(Lcd5);
-    const float Lci5 = (1.0F/Lc5_5);
-    const float Lc6_5 = Lci5*(Pn[66] - Lc5_0*Lc6_0 - Lc5_1*Lc6_1 - Lc5_2*Lc6_2 - Lc5_3*Lc6_3 - Lc5_4*Lc6_4);
-    const float Lc7_5 = Lci5*(Pn[67] - Lc5_0*Lc7_0 - Lc5_1*Lc7_1 - Lc5_2*Lc7_2 - Lc5_3*Lc7_3 - Lc5_4*Lc7_4);
-    const float Lc8_5 = Lci5*(Pn[68] - Lc5_0*Lc8_0 - Lc5_1*Lc8_1 - Lc5_2*Lc8_2 - Lc5_3*Lc8_3 - Lc5_4*Lc8_4);
-    const float Lc9_5 = Lci5*(Pn[69] - Lc5_0*Lc9_0 - Lc5_1*Lc9_1 - Lc5_2*Lc9_2 - Lc5_3*Lc9_3 - Lc5_4*Lc9_4);
-    const float Lc10_5 = Lci5*(Pn[70] - Lc10_0*Lc5_0 - Lc10_1*Lc5_1 - Lc10_2*Lc5_2 - Lc10_3*Lc5_3 - Lc10_4*Lc5_4);
-    const float Lc11_5 = Lci5*(Pn[71] - Lc11_0*Lc5_0 - Lc11_1*Lc5_1 - Lc11_2*Lc5_2 - Lc11_3*Lc5_3 - Lc11_4*Lc5_4);
-    const float Lc12_5 = Lci5*(Pn[72] - Lc12_0*Lc5_0 - Lc12_1*Lc5_1 - Lc12_2*Lc5_2 - Lc12_3*Lc5_3 - Lc12_4*Lc5_4);
-    const float Lc13_5 = Lci5*(Pn[73] - Lc13_0*Lc5_0 - Lc13_1*Lc5_1 - Lc13_2*Lc5_2 - Lc13_3*Lc5_3 - Lc13_4*Lc5_4);
-    const float Lc14_5 = Lci5*(Pn[74] - Lc14_0*Lc5_0 - Lc14_1*Lc5_1 - Lc14_2*Lc5_2 - Lc14_3*Lc5_3 - Lc14_4*Lc5_4);
-    const float Lcd6 = Pn[75] - (Lc6_0*Lc6_0) - (Lc6_1*Lc6_1) - (Lc6_2*Lc6_2) - (Lc6_3*Lc6_3) - (Lc6_4*Lc6_4) - (Lc6_5*Lc6_5);
-    if (!isfinite(Lcd6)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd6 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc6_6 = sqrtf(Lcd6);
-    const float Lci6 = (1.0F/Lc6_6);
-    const float Lc7_6 = Lci6*(Pn[76] - Lc6_0*Lc7_0 - Lc6_1*Lc7_1 - Lc6_2*Lc7_2 - Lc6_3*Lc7_3 - Lc6_4*Lc7_4 - Lc6_5*Lc7_5);
-    const float Lc8_6 = Lci6*(Pn[77] - Lc6_0*Lc8_0 - Lc6_1*Lc8_1 - Lc6_2*Lc8_2 - Lc6_3*Lc8_3 - Lc6_4*Lc8_4 - Lc6_5*Lc8_5);
-    const float Lc9_6 = Lci6*(Pn[78] - Lc6_0*Lc9_0 - Lc6_1*Lc9_1 - Lc6_2*Lc9_2 - Lc6_3*Lc9_3 - Lc6_4*Lc9_4 - Lc6_5*Lc9_5);
-    const float Lc10_6 = Lci6*(Pn[79] - Lc10_0*Lc6_0 - Lc10_1*Lc6_1 - Lc10_2*Lc6_2 - Lc10_3*Lc6_3 - Lc10_4*Lc6_4 - Lc10_5*Lc6_5);
-    const float Lc11_6 = Lci6*(Pn[80] - Lc11_0*Lc6_0 - Lc11_1*Lc6_1 - Lc11_2*Lc6_2 - Lc11_3*Lc6_3 - Lc11_4*Lc6_4 - Lc11_5*Lc6_5);
-    const float Lc12_6 = Lci6*(Pn[81] - Lc12_0*Lc6_0 - Lc12_1*Lc6_1 - Lc12_2*Lc6_2 - Lc12_3*Lc6_3 - Lc12_4*Lc6_4 - Lc12_5*Lc6_5);
-    const float Lc13_6 = Lci6*(Pn[82] - Lc13_0*Lc6_0 - Lc13_1*Lc6_1 - Lc13_2*Lc6_2 - Lc13_3*Lc6_3 - Lc13_4*Lc6_4 - Lc13_5*Lc6_5);
-    const float Lc14_6 = Lci6*(Pn[83] - Lc14_0*Lc6_0 - Lc14_1*Lc6_1 - Lc14_2*Lc6_2 - Lc14_3*Lc6_3 - Lc14_4*Lc6_4 - Lc14_5*Lc6_5);
-    const float Lcd7 = Pn[84] - (Lc7_0*Lc7_0) - (Lc7_1*Lc7_1) - (Lc7_2*Lc7_2) - (Lc7_3*Lc7_3) - (Lc7_4*Lc7_4) - (Lc7_5*Lc7_5) - (Lc7_6*Lc7_6);
-    if (!isfinite(Lcd7)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd7 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc7_7 = sqrtf(Lcd7);
-    const float Lci7 = (1.0F/Lc7_7);
-    const float Lc8_7 = Lci7*(Pn[85] - Lc7_0*Lc8_0 - Lc7_1*Lc8_1 - Lc7_2*Lc8_2 - Lc7_3*Lc8_3 - Lc7_4*Lc8_4 - Lc7_5*Lc8_5 - Lc7_6*Lc8_6);
-    const float Lc9_7 = Lci7*(Pn[86] - Lc7_0*Lc9_0 - Lc7_1*Lc9_1 - Lc7_2*Lc9_2 - Lc7_3*Lc9_3 - Lc7_4*Lc9_4 - Lc7_5*Lc9_5 - Lc7_6*Lc9_6);
-    const float Lc10_7 = Lci7*(Pn[87] - Lc10_0*Lc7_0 - Lc10_1*Lc7_1 - Lc10_2*Lc7_2 - Lc10_3*Lc7_3 - Lc10_4*Lc7_4 - Lc10_5*Lc7_5 - Lc10_6*Lc7_6);
-    const float Lc11_7 = Lci7*(Pn[88] - Lc11_0*Lc7_0 - Lc11_1*Lc7_1 - Lc11_2*Lc7_2 - Lc11_3*Lc7_3 - Lc11_4*Lc7_4 - Lc11_5*Lc7_5 - Lc11_6*Lc7_6);
-    const float Lc12_7 = Lci7*(Pn[89] - Lc12_0*Lc7_0 - Lc12_1*Lc7_1 - Lc12_2*Lc7_2 - Lc12_3*Lc7_3 - Lc12_4*Lc7_4 - Lc12_5*Lc7_5 - Lc12_6*Lc7_6);
-    const float Lc13_7 = Lci7*(Pn[90] - Lc13_0*Lc7_0 - Lc13_1*Lc7_1 - Lc13_2*Lc7_2 - Lc13_3*Lc7_3 - Lc13_4*Lc7_4 - Lc13_5*Lc7_5 - Lc13_6*Lc7_6);
-    const float Lc14_7 = Lci7*(Pn[91] - Lc14_0*Lc7_0 - Lc14_1*Lc7_1 - Lc14_2*Lc7_2 - Lc14_3*Lc7_3 - Lc14_4*Lc7_4 - Lc14_5*Lc7_5 - Lc14_6*Lc7_6);
-    const float Lcd8 = Pn[92] - (Lc8_0*Lc8_0) - (Lc8_1*Lc8_1) - (Lc8_2*Lc8_2) - (Lc8_3*Lc8_3) - (Lc8_4*Lc8_4) - (Lc8_5*Lc8_5) - (Lc8_6*Lc8_6) - (Lc8_7*Lc8_7);
-    if (!isfinite(Lcd8)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd8 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc8_8 = sqrtf(Lcd8);
-    const float Lci8 = (1.0F/Lc8_8);
-    const float Lc9_8 = Lci8*(Pn[93] - Lc8_0*Lc9_0 - Lc8_1*Lc9_1 - Lc8_2*Lc9_2 - Lc8_3*Lc9_3 - Lc8_4*Lc9_4 - Lc8_5*Lc9_5 - Lc8_6*Lc9_6 - Lc8_7*Lc9_7);
-    const float Lc10_8 = Lci8*(Pn[94] - Lc10_0*Lc8_0 - Lc10_1*Lc8_1 - Lc10_2*Lc8_2 - Lc10_3*Lc8_3 - Lc10_4*Lc8_4 - Lc10_5*Lc8_5 - Lc10_6*Lc8_6 - Lc10_7*Lc8_7);
-    const float Lc11_8 = Lci8*(Pn[95] - Lc11_0*Lc8_0 - Lc11_1*Lc8_1 - Lc11_2*Lc8_2 - Lc11_3*Lc8_3 - Lc11_4*Lc8_4 - Lc11_5*Lc8_5 - Lc11_6*Lc8_6 - Lc11_7*Lc8_7);
-    const float Lc12_8 = Lci8*(Pn[96] - Lc12_0*Lc8_0 - Lc12_1*Lc8_1 - Lc12_2*Lc8_2 - Lc12_3*Lc8_3 - Lc12_4*Lc8_4 - Lc12_5*Lc8_5 - Lc12_6*Lc8_6 - Lc12_7*Lc8_7);
-    const float Lc13_8 = Lci8*(Pn[97] - Lc13_0*Lc8_0 - Lc13_1*Lc8_1 - Lc13_2*Lc8_2 - Lc13_3*Lc8_3 - Lc13_4*Lc8_4 - Lc13_5*Lc8_5 - Lc13_6*Lc8_6 - Lc13_7*Lc8_7);
-    const float Lc14_8 = Lci8*(Pn[98] - Lc14_0*Lc8_0 - Lc14_1*Lc8_1 - Lc14_2*Lc8_2 - Lc14_3*Lc8_3 - Lc14_4*Lc8_4 - Lc14_5*Lc8_5 - Lc14_6*Lc8_6 - Lc14_7*Lc8_7);
-    const float Lcd9 = Pn[99] - (Lc9_0*Lc9_0) - (Lc9_1*Lc9_1) - (Lc9_2*Lc9_2) - (Lc9_3*Lc9_3) - (Lc9_4*Lc9_4) - (Lc9_5*Lc9_5) - (Lc9_6*Lc9_6) - (Lc9_7*Lc9_7) - (Lc9_8*Lc9_8);
-    if (!isfinite(Lcd9)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd9 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc9_9 = sqrtf(Lcd9);
-    const float Lci9 = (1.0F/Lc9_9);
-    const float Lc10_9 = Lci9*(Pn[100] - Lc10_0*Lc9_0 - Lc10_1*Lc9_1 - Lc10_2*Lc9_2 - Lc10_3*Lc9_3 - Lc10_4*Lc9_4 - Lc10_5*Lc9_5 - Lc10_6*Lc9_6 - Lc10_7*Lc9_7 - Lc10_8*Lc9_8);
-    const float Lc11_9 = Lci9*(Pn[101] - Lc11_0*Lc9_0 - Lc11_1*Lc9_1 - Lc11_2*Lc9_2 - Lc11_3*Lc9_3 - Lc11_4*Lc9_4 - Lc11_5*Lc9_5 - Lc11_6*Lc9_6 - Lc11_7*Lc9_7 - Lc11_8*Lc9_8);
-    const float Lc12_9 = Lci9*(Pn[102] - Lc12_0*Lc9_0 - Lc12_1*Lc9_1 - Lc12_2*Lc9_2 - Lc12_3*Lc9_3 - Lc12_4*Lc9_4 - Lc12_5*Lc9_5 - Lc12_6*Lc9_6 - Lc12_7*Lc9_7 - Lc12_8*Lc9_8);
-    const float Lc13_9 = Lci9*(Pn[103] - Lc13_0*Lc9_0 - Lc13_1*Lc9_1 - Lc13_2*Lc9_2 - Lc13_3*Lc9_3 - Lc13_4*Lc9_4 - Lc13_5*Lc9_5 - Lc13_6*Lc9_6 - Lc13_7*Lc9_7 - Lc13_8*Lc9_8);
-    const float Lc14_9 = Lci9*(Pn[104] - Lc14_0*Lc9_0 - Lc14_1*Lc9_1 - Lc14_2*Lc9_2 - Lc14_3*Lc9_3 - Lc14_4*Lc9_4 - Lc14_5*Lc9_5 - Lc14_6*Lc9_6 - Lc14_7*Lc9_7 - Lc14_8*Lc9_8);
-    const float Lcd10 = Pn[105] - (Lc10_0*Lc10_0) - (Lc10_1*Lc10_1) - (Lc10_2*Lc10_2) - (Lc10_3*Lc10_3) - (Lc10_4*Lc10_4) - (Lc10_5*Lc10_5) - (Lc10_6*Lc10_6) - (Lc10_7*Lc10_7) - (Lc10_8*Lc10_8) - (Lc10_9*Lc10_9);
-    if (!isfinite(Lcd10)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd10 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc10_10 = sqrtf(Lcd10);
-    const float Lci10 = (1.0F/Lc10_10);
-    const float Lc11_10 = Lci10*(Pn[106] - Lc10_0*Lc11_0 - Lc10_1*Lc11_1 - Lc10_2*Lc11_2 - Lc10_3*Lc11_3 - Lc10_4*Lc11_4 - Lc10_5*Lc11_5 - Lc10_6*Lc11_6 - Lc10_7*Lc11_7 - Lc10_8*Lc11_8 - Lc10_9*Lc11_9);
-    const float Lc12_10 = Lci10*(Pn[107] - Lc10_0*Lc12_0 - Lc10_1*Lc12_1 - Lc10_2*Lc12_2 - Lc10_3*Lc12_3 - Lc10_4*Lc12_4 - Lc10_5*Lc12_5 - Lc10_6*Lc12_6 - Lc10_7*Lc12_7 - Lc10_8*Lc12_8 - Lc10_9*Lc12_9);
-    const float Lc13_10 = Lci10*(Pn[108] - Lc10_0*Lc13_0 - Lc10_1*Lc13_1 - Lc10_2*Lc13_2 - Lc10_3*Lc13_3 - Lc10_4*Lc13_4 - Lc10_5*Lc13_5 - Lc10_6*Lc13_6 - Lc10_7*Lc13_7 - Lc10_8*Lc13_8 - Lc10_9*Lc13_9);
-    const float Lc14_10 = Lci10*(Pn[109] - Lc10_0*Lc14_0 - Lc10_1*Lc14_1 - Lc10_2*Lc14_2 - Lc10_3*Lc14_3 - Lc10_4*Lc14_4 - Lc10_5*Lc14_5 - Lc10_6*Lc14_6 - Lc10_7*Lc14_7 - Lc10_8*Lc14_8 - Lc10_9*Lc14_9);
-    const float Lcd11 = Pn[110] - (Lc11_0*Lc11_0) - (Lc11_1*Lc11_1) - (Lc11_10*Lc11_10) - (Lc11_2*Lc11_2) - (Lc11_3*Lc11_3) - (Lc11_4*Lc11_4) - (Lc11_5*Lc11_5) - (Lc11_6*Lc11_6) - (Lc11_7*Lc11_7) - (Lc11_8*Lc11_8) - (Lc11_9*Lc11_9);
-    if (!isfinite(Lcd11)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd11 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc11_11 = sqrtf(Lcd11);
-    const float Lci11 = (1.0F/Lc11_11);
-    const float Lc12_11 = Lci11*(Pn[111] - Lc11_0*Lc12_0 - Lc11_1*Lc12_1 - Lc11_10*Lc12_10 - Lc11_2*Lc12_2 - Lc11_3*Lc12_3 - Lc11_4*Lc12_4 - Lc11_5*Lc12_5 - Lc11_6*Lc12_6 - Lc11_7*Lc12_7 - Lc11_8*Lc12_8 - Lc11_9*Lc12_9);
-    const float Lc13_11 = Lci11*(Pn[112] - Lc11_0*Lc13_0 - Lc11_1*Lc13_1 - Lc11_10*Lc13_10 - Lc11_2*Lc13_2 - Lc11_3*Lc13_3 - Lc11_4*Lc13_4 - Lc11_5*Lc13_5 - Lc11_6*Lc13_6 - Lc11_7*Lc13_7 - Lc11_8*Lc13_8 - Lc11_9*Lc13_9);
-    const float Lc14_11 = Lci11*(Pn[113] - Lc11_0*Lc14_0 - Lc11_1*Lc14_1 - Lc11_10*Lc14_10 - Lc11_2*Lc14_2 - Lc11_3*Lc14_3 - Lc11_4*Lc14_4 - Lc11_5*Lc14_5 - Lc11_6*Lc14_6 - Lc11_7*Lc14_7 - Lc11_8*Lc14_8 - Lc11_9*Lc14_9);
-    const float Lcd12 = Pn[114] - (Lc12_0*Lc12_0) - (Lc12_1*Lc12_1) - (Lc12_10*Lc12_10) - (Lc12_11*Lc12_11) - (Lc12_2*Lc12_2) - (Lc12_3*Lc12_3) - (Lc12_4*Lc12_4) - (Lc12_5*Lc12_5) - (Lc12_6*Lc12_6) - (Lc12_7*Lc12_7) - (Lc12_8*Lc12_8) - (Lc12_9*Lc12_9);
-    if (!isfinite(Lcd12)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd12 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc12_12 = sqrtf(Lcd12);
-    const float Lci12 = (1.0F/Lc12_12);
-    const float Lc13_12 = Lci12*(Pn[115] - Lc12_0*Lc13_0 - Lc12_1*Lc13_1 - Lc12_10*Lc13_10 - Lc12_11*Lc13_11 - Lc12_2*Lc13_2 - Lc12_3*Lc13_3 - Lc12_4*Lc13_4 - Lc12_5*Lc13_5 - Lc12_6*Lc13_6 - Lc12_7*Lc13_7 - Lc12_8*Lc13_8 - Lc12_9*Lc13_9);
-    const float Lc14_12 = Lci12*(Pn[116] - Lc12_0*Lc14_0 - Lc12_1*Lc14_1 - Lc12_10*Lc14_10 - Lc12_11*Lc14_11 - Lc12_2*Lc14_2 - Lc12_3*Lc14_3 - Lc12_4*Lc14_4 - Lc12_5*Lc14_5 - Lc12_6*Lc14_6 - Lc12_7*Lc14_7 - Lc12_8*Lc14_8 - Lc12_9*Lc14_9);
-    const float Lcd13 = Pn[117] - (Lc13_0*Lc13_0) - (Lc13_1*Lc13_1) - (Lc13_10*Lc13_10) - (Lc13_11*Lc13_11) - (Lc13_12*Lc13_12) - (Lc13_2*Lc13_2) - (Lc13_3*Lc13_3) - (Lc13_4*Lc13_4) - (Lc13_5*Lc13_5) - (Lc13_6*Lc13_6) - (Lc13_7*Lc13_7) - (Lc13_8*Lc13_8) - (Lc13_9*Lc13_9);
-    if (!isfinite(Lcd13)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd13 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc13_13 = sqrtf(Lcd13);
-    const float Lci13 = (1.0F/Lc13_13);
-    const float Lc14_13 = Lci13*(Pn[118] - Lc13_0*Lc14_0 - Lc13_1*Lc14_1 - Lc13_10*Lc14_10 - Lc13_11*Lc14_11 - Lc13_12*Lc14_12 - Lc13_2*Lc14_2 - Lc13_3*Lc14_3 - Lc13_4*Lc14_4 - Lc13_5*Lc14_5 - Lc13_6*Lc14_6 - Lc13_7*Lc14_7 - Lc13_8*Lc14_8 - Lc13_9*Lc14_9);
-    const float Lcd14 = Pn[119] - (Lc14_0*Lc14_0) - (Lc14_1*Lc14_1) - (Lc14_10*Lc14_10) - (Lc14_11*Lc14_11) - (Lc14_12*Lc14_12) - (Lc14_13*Lc14_13) - (Lc14_2*Lc14_2) - (Lc14_3*Lc14_3) - (Lc14_4*Lc14_4) - (Lc14_5*Lc14_5) - (Lc14_6*Lc14_6) - (Lc14_7*Lc14_7) - (Lc14_8*Lc14_8) - (Lc14_9*Lc14_9);
-    if (!isfinite(Lcd14)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd14 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
+    {
+        const int st = nav_ekf_commit_pd(Pn);  /* commit only a positive definite P */
+        if (st != NAV_EKF_OK) {
+            return st;
+        }
+    }
 
     memcpy(s->x, xn, sizeof xn);
     memcpy(s->P, Pn, sizeof Pn);
@@ -1326,186 +1311,12 @@ int nav_ekf_update_gnss_pos_nis(nav_ekf_t *s, const float *z, float *nis_out)
     if (!nav_ekf_finite(xs, 15u) || !nav_ekf_finite(Ps, 120u)) {
         return NAV_EKF_NON_FINITE;
     }
-    /* commit only a positive definite P: the pivots of its Cholesky factorization, unrolled
-       (a positive diagonal is not enough) */
-    const float Lcd0 = Ps[0];
-    if (!isfinite(Lcd0)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd0 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc0_0 = sqrtf(Lcd0);
-    const float Lci0 = (1.0F/Lc0_0);
-    const float Lc1_0 = Lci0*Ps[1];
-    const float Lc2_0 = Lci0*Ps[2];
-    const float Lc3_0 = Lci0*Ps[3];
-    const float Lc4_0 = Lci0*Ps[4];
-    const float Lc5_0 = Lci0*Ps[5];
-    const float Lc6_0 = Lci0*Ps[6];
-    const float Lc7_0 = Lci0*Ps[7];
-    const float Lc8_0 = Lci0*Ps[8];
-    const float Lc9_0 = Lci0*Ps[9];
-    const float Lc10_0 = Lci0*Ps[10];
-    const float Lc11_0 = Lci0*Ps[11];
-    const float Lc12_0 = Lci0*Ps[12];
-    const float Lc13_0 = Lci0*Ps[13];
-    const float Lc14_0 = Lci0*Ps[14];
-    const float Lcd1 = Ps[15] - (Lc1_0*Lc1_0);
-    if (!isfinite(Lcd1)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd1 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc1_1 = sqrtf(Lcd1);
-    const float Lci1 = (1.0F/Lc1_1);
-    const float Lc2_1 = Lci1*(Ps[16] - Lc1_0*Lc2_0);
-    const float Lc3_1 = Lci1*(Ps[17] - Lc1_0*Lc3_0);
-    const float Lc4_1 = Lci1*(Ps[18] - Lc1_0*Lc4_0);
-    const float Lc5_1 = Lci1*(Ps[19] - Lc1_0*Lc5_0);
-    const float Lc6_1 = Lci1*(Ps[20] - Lc1_0*Lc6_0);
-    const float Lc7_1 = Lci1*(Ps[21] - Lc1_0*Lc7_0);
-    const float Lc8_1 = Lci1*(Ps[22] - Lc1_0*Lc8_0);
-    const float Lc9_1 = Lci1*(Ps[23] - Lc1_0*Lc9_0);
-    const float Lc10_1 = Lci1*(Ps[24] - Lc10_0*Lc1_0);
-    const float Lc11_1 = Lci1*(Ps[25] - Lc11_0*Lc1_0);
-    const float Lc12_1 = Lci1*(Ps[26] - Lc12_0*Lc1_0);
-    const float Lc13_1 = Lci1*(Ps[27] - Lc13_0*Lc1_0);
-    const float Lc14_1 = Lci1*(Ps[28] - Lc14_0*Lc1_0);
-    const float Lcd2 = Ps[29] - (Lc2_0*Lc2_0) - (Lc2_1*Lc2_1);
-    if (!isfinite(Lcd2)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd2 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc2_2 = sqrtf(Lcd2);
-    const float Lci2 = (1.0F/Lc2_2);
-    const float Lc3_2 = Lci2*(Ps[30] - Lc2_0*Lc3_0 - Lc2_1*Lc3_1);
-    const float Lc4_2 = Lci2*(Ps[31] - Lc2_0*Lc4_0 - Lc2_1*Lc4_1);
-    const float Lc5_2 = Lci2*(Ps[32] - Lc2_0*Lc5_0 - Lc2_1*Lc5_1);
-    const float Lc6_2 = Lci2*(Ps[33] - Lc2_0*Lc6_0 - Lc2_1*Lc6_1);
-    const float Lc7_2 = Lci2*(Ps[34] - Lc2_0*Lc7_0 - Lc2_1*Lc7_1);
-    const float Lc8_2 = Lci2*(Ps[35] - Lc2_0*Lc8_0 - Lc2_1*Lc8_1);
-    const float Lc9_2 = Lci2*(Ps[36] - Lc2_0*Lc9_0 - Lc2_1*Lc9_1);
-    const float Lc10_2 = Lci2*(Ps[37] - Lc10_0*Lc2_0 - Lc10_1*Lc2_1);
-    const float Lc11_2 = Lci2*(Ps[38] - Lc11_0*Lc2_0 - Lc11_1*Lc2_1);
-    const float Lc12_2 = Lci2*(Ps[39] - Lc12_0*Lc2_0 - Lc12_1*Lc2_1);
-    const float Lc13_2 = Lci2*(Ps[40] - Lc13_0*Lc2_0 - Lc13_1*Lc2_1);
-    const float Lc14_2 = Lci2*(Ps[41] - Lc14_0*Lc2_0 - Lc14_1*Lc2_1);
-    const float Lcd3 = Ps[42] - (Lc3_0*Lc3_0) - (Lc3_1*Lc3_1) - (Lc3_2*Lc3_2);
-    if (!isfinite(Lcd3)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd3 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc3_3 = sqrtf(Lcd3);
-    const float Lci3 = (1.0F/Lc3_3);
-    const float Lc4_3 = Lci3*(Ps[43] - Lc3_0*Lc4_0 - Lc3_1*Lc4_1 - Lc3_2*Lc4_2);
-    const float Lc5_3 = Lci3*(Ps[44] - Lc3_0*Lc5_0 - Lc3_1*Lc5_1 - Lc3_2*Lc5_2);
-    const float Lc6_3 = Lci3*(Ps[45] - Lc3_0*Lc6_0 - Lc3_1*Lc6_1 - Lc3_2*Lc6_2);
-    const float Lc7_3 = Lci3*(Ps[46] - Lc3_0*Lc7_0 - Lc3_1*Lc7_1 - Lc3_2*Lc7_2);
-    const float Lc8_3 = Lci3*(Ps[47] - Lc3_0*Lc8_0 - Lc3_1*Lc8_1 - Lc3_2*Lc8_2);
-    const float Lc9_3 = Lci3*(Ps[48] - Lc3_0*Lc9_0 - Lc3_1*Lc9_1 - Lc3_2*Lc9_2);
-    const float Lc10_3 = Lci3*(Ps[49] - Lc10_0*Lc3_0 - Lc10_1*Lc3_1 - Lc10_2*Lc3_2);
-    const float Lc11_3 = Lci3*(Ps[50] - Lc11_0*Lc3_0 - Lc11_1*Lc3_1 - Lc11_2*Lc3_2);
-    const float Lc12_3 = Lci3*(Ps[51] - Lc12_0*Lc3_0 - Lc12_1*Lc3_1 - Lc12_2*Lc3_2);
-    const float Lc13_3 = Lci3*(Ps[52] - Lc13_0*Lc3_0 - Lc13_1*Lc3_1 - Lc13_2*Lc3_2);
-    const float Lc14_3 = Lci3*(Ps[53] - Lc14_0*Lc3_0 - Lc14_1*Lc3_1 - Lc14_2*Lc3_2);
-    const float Lcd4 = Ps[54] - (Lc4_0*Lc4_0) - (Lc4_1*Lc4_1) - (Lc4_2*Lc4_2) - (Lc4_3*Lc4_3);
-    if (!isfinite(Lcd4)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd4 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc4_4 = sqrtf(Lcd4);
-    const float Lci4 = (1.0F/Lc4_4);
-    const float Lc5_4 = Lci4*(Ps[55] - Lc4_0*Lc5_0 - Lc4_1*Lc5_1 - Lc4_2*Lc5_2 - Lc4_3*Lc5_3);
-    const float Lc6_4 = Lci4*(Ps[56] - Lc4_0*Lc6_0 - Lc4_1*Lc6_1 - Lc4_2*Lc6_2 - Lc4_3*Lc6_3);
-    const float Lc7_4 = Lci4*(Ps[57] - Lc4_0*Lc7_0 - Lc4_1*Lc7_1 - Lc4_2*Lc7_2 - Lc4_3*Lc7_3);
-    const float Lc8_4 = Lci4*(Ps[58] - Lc4_0*Lc8_0 - Lc4_1*Lc8_1 - Lc4_2*Lc8_2 - Lc4_3*Lc8_3);
-    const float Lc9_4 = Lci4*(Ps[59] - Lc4_0*Lc9_0 - Lc4_1*Lc9_1 - Lc4_2*Lc9_2 - Lc4_3*Lc9_3);
-    const float Lc10_4 = Lci4*(Ps[60] - Lc10_0*Lc4_0 - Lc10_1*Lc4_1 - Lc10_2*Lc4_2 - Lc10_3*Lc4_3);
-    const float Lc11_4 = Lci4*(Ps[61] - Lc11_0*Lc4_0 - Lc11_1*Lc4_1 - Lc11_2*Lc4_2 - Lc11_3*Lc4_3);
-    const float Lc12_4 = Lci4*(Ps[62] - Lc12_0*Lc4_0 - Lc12_1*Lc4_1 - Lc12_2*Lc4_2 - Lc12_3*Lc4_3);
-    const float Lc13_4 = Lci4*(Ps[63] - Lc13_0*Lc4_0 - Lc13_1*Lc4_1 - Lc13_2*Lc4_2 - Lc13_3*Lc4_3);
-    const float Lc14_4 = Lci4*(Ps[64] - Lc14_0*Lc4_0 - Lc14_1*Lc4_1 - Lc14_2*Lc4_2 - Lc14_3*Lc4_3);
-    const float Lcd5 = Ps[65] - (Lc5_0*Lc5_0) - (Lc5_1*Lc5_1) - (Lc5_2*Lc5_2) - (Lc5_3*Lc5_3) - (Lc5_4*Lc5_4);
-    if (!isfinite(Lcd5)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd5 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc5_5 = sqrtf(Lcd5);
-    const float Lci5 = (1.0F/Lc5_5);
-    const float Lc6_5 = Lci5*(Ps[66] - Lc5_0*Lc6_0 - Lc5_1*Lc6_1 - Lc5_2*Lc6_2 - Lc5_3*Lc6_3 - Lc5_4*Lc6_4);
-    const float Lc7_5 = Lci5*(Ps[67] - Lc5_0*Lc7_0 - Lc5_1*Lc7_1 - Lc5_2*Lc7_2 - Lc5_3*Lc7_3 - Lc5_4*Lc7_4);
-    const float Lc8_5 = Lci5*(Ps[68] - Lc5_0*Lc8_0 - Lc5_1*Lc8_1 - Lc5_2*Lc8_2 - Lc5_3*Lc8_3 - Lc5_4*Lc8_4);
-    const float Lc9_5 = Lci5*(Ps[69] - Lc5_0*Lc9_0 - Lc5_1*Lc9_1 - Lc5_2*Lc9_2 - Lc5_3*Lc9_3 - Lc5_4*Lc9_4);
-    const float Lc10_5 = Lci5*(Ps[70] - Lc10_0*Lc5_0 - Lc10_1*Lc5_1 - Lc10_2*Lc5_2 - Lc10_3*Lc5_3 - Lc10_4*Lc5_4);
-    const float Lc11_5 = Lci5*(Ps[71] - Lc11_0*Lc5_0 - Lc11_1*Lc5_1 - Lc11_2*Lc5_2 - Lc11_3*Lc5_3 - Lc11_4*Lc5_4);
-    const float Lc12_5 = Lci5*(Ps[72] - Lc12_0*Lc5_0 - Lc12_1*Lc5_1 - Lc12_2*Lc5_2 - Lc12_3*Lc5_3 - Lc12_4*Lc5_4);
-    const float Lc13_5 = Lci5*(Ps[73] - Lc13_0*Lc5_0 - Lc13_1*Lc5_1 - Lc13_2*Lc5_2 - Lc13_3*Lc5_3 - Lc13_4*Lc5_4);
-    const float Lc14_5 = Lci5*(Ps[74] - Lc14_0*Lc5_0 - Lc14_1*Lc5_1 - Lc14_2*Lc5_2 - Lc14_3*Lc5_3 - Lc14_4*Lc5_4);
-    const float Lcd6 = Ps[75] - (Lc6_0*Lc6_0) - (Lc6_1*Lc6_1) - (Lc6_2*Lc6_2) - (Lc6_3*Lc6_3) - (Lc6_4*Lc6_4) - (Lc6_5*Lc6_5);
-    if (!isfinite(Lcd6)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd6 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc6_6 = sqrtf(Lcd6);
-    const float Lci6 = (1.0F/Lc6_6);
-    const float Lc7_6 = Lci6*(Ps[76] - Lc6_0*Lc7_0 - Lc6_1*Lc7_1 - Lc6_2*Lc7_2 - Lc6_3*Lc7_3 - Lc6_4*Lc7_4 - Lc6_5*Lc7_5);
-    const float Lc8_6 = Lci6*(Ps[77] - Lc6_0*Lc8_0 - Lc6_1*Lc8_1 - Lc6_2*Lc8_2 - Lc6_3*Lc8_3 - Lc6_4*Lc8_4 - Lc6_5*Lc8_5);
-    const float Lc9_6 = Lci6*(Ps[78] - Lc6_0*Lc9_0 - Lc6_1*Lc9_1 - Lc6_2*Lc9_2 - Lc6_3*Lc9_3 - Lc6_4*Lc9_4 - Lc6_5*Lc9_5);
-    const float Lc10_6 = Lci6*(Ps[79] - Lc10_0*Lc6_0 - Lc10_1*Lc6_1 - Lc10_2*Lc6_2 - Lc10_3*Lc6_3 - Lc10_4*Lc6_4 - Lc10_5*Lc6_5);
-    const float Lc11_6 = Lci6*(Ps[80] - Lc11_0*Lc6_0 - Lc11_1*Lc6_1 - Lc11_2*Lc6_2 - Lc11_3*Lc6_3 - Lc11_4*Lc6_4 - Lc11_5*Lc6_5);
-    const float Lc12_6 = Lci6*(Ps[81] - Lc12_0*Lc6_0 - Lc12_1*Lc6_1 - Lc12_2*Lc6_2 - Lc12_3*Lc6_3 - Lc12_4*Lc6_4 - Lc12_5*Lc6_5);
-    const float Lc13_6 = Lci6*(Ps[82] - Lc13_0*Lc6_0 - Lc13_1*Lc6_1 - Lc13_2*Lc6_2 - Lc13_3*Lc6_3 - Lc13_4*Lc6_4 - Lc13_5*Lc6_5);
-    const float Lc14_6 = Lci6*(Ps[83] - Lc14_0*Lc6_0 - Lc14_1*Lc6_1 - Lc14_2*Lc6_2 - Lc14_3*Lc6_3 - Lc14_4*Lc6_4 - Lc14_5*Lc6_5);
-    const float Lcd7 = Ps[84] - (Lc7_0*Lc7_0) - (Lc7_1*Lc7_1) - (Lc7_2*Lc7_2) - (Lc7_3*Lc7_3) - (Lc7_4*Lc7_4) - (Lc7_5*Lc7_5) - (Lc7_6*Lc7_6);
-    if (!isfinite(Lcd7)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd7 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc7_7 = sqrtf(Lcd7);
-    const float Lci7 = (1.0F/Lc7_7);
-    const float Lc8_7 = Lci7*(Ps[85] - Lc7_0*Lc8_0 - Lc7_1*Lc8_1 - Lc7_2*Lc8_2 - Lc7_3*Lc8_3 - Lc7_4*Lc8_4 - Lc7_5*Lc8_5 - Lc7_6*Lc8_6);
-    const float Lc9_7 = Lci7*(Ps[86] - Lc7_0*Lc9_0 - Lc7_1*Lc9_1 - Lc7_2*Lc9_2 - Lc7_3*Lc9_3 - Lc7_4*Lc9_4 - Lc7_5*Lc9_5 - Lc7_6*Lc9_6);
-    const float Lc10_7 = Lci7*(Ps[87] - Lc10_0*Lc7_0 - Lc10_1*Lc7_1 - Lc10_2*Lc7_2 - Lc10_3*Lc7_3 - Lc10_4*Lc7_4 - Lc10_5*Lc7_5 - Lc10_6*Lc7_6);
-    const float Lc11_7 = Lci7*(Ps[88] - Lc11_0*Lc7_0 - Lc11_1*Lc7_1 - Lc11_2*Lc7_2 - Lc11_3*Lc7_3 - Lc11_4*Lc7_4 - Lc11_5*Lc7_5 - Lc11_6*Lc7_6);
-    const float Lc12_7 = Lci7*(Ps[89] - Lc12_0*Lc7_0 - Lc12_1*Lc7_1 - Lc12_2*Lc7_2 - Lc12_3*Lc7_3 - Lc12_4*Lc7_4 - Lc12_5*Lc7_5 - Lc12_6*Lc7_6);
-    const float Lc13_7 = Lci7*(Ps[90] - Lc13_0*Lc7_0 - Lc13_1*Lc7_1 - Lc13_2*Lc7_2 - Lc13_3*Lc7_3 - Lc13_4*Lc7_4 - Lc13_5*Lc7_5 - Lc13_6*Lc7_6);
-    const float Lc14_7 = Lci7*(Ps[91] - Lc14_0*Lc7_0 - Lc14_1*Lc7_1 - Lc14_2*Lc7_2 - Lc14_3*Lc7_3 - Lc14_4*Lc7_4 - Lc14_5*Lc7_5 - Lc14_6*Lc7_6);
-    const float Lcd8 = Ps[92] - (Lc8_0*Lc8_0) - (Lc8_1*Lc8_1) - (Lc8_2*Lc8_2) - (Lc8_3*Lc8_3) - (Lc8_4*Lc8_4) - (Lc8_5*Lc8_5) - (Lc8_6*Lc8_6) - (Lc8_7*Lc8_7);
-    if (!isfinite(Lcd8)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd8 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc8_8 = sqrtf(Lcd8);
-    const float Lci8 = (1.0F/Lc8_8);
-    const float Lc9_8 = Lci8*(Ps[93] - Lc8_0*Lc9_0 - Lc8_1*Lc9_1 - Lc8_2*Lc9_2 - Lc8_3*Lc9_3 - Lc8_4*Lc9_4 - Lc8_5*Lc9_5 - Lc8_6*Lc9_6 - Lc8_7*Lc9_7);
-    const float Lc10_8 = Lci8*(Ps[94] - Lc10_0*Lc8_0 - Lc10_1*Lc8_1 - Lc10_2*Lc8_2 - Lc10_3*Lc8_3 - Lc10_4*Lc8_4 - Lc10_5*Lc8_5 - Lc10_6*Lc8_6 - Lc10_7*Lc8_7);
-    const float Lc11_8 = Lci8*(Ps[95] - Lc11_0*Lc8_0 - Lc11_1*Lc8_1 - Lc11_2*Lc8_2 - Lc11_3*Lc8_3 - Lc11_4*Lc8_4 - Lc11_5*Lc8_5 - Lc11_6*Lc8_6 - Lc11_7*Lc8_7);
-    const float Lc12_8 = Lci8*(Ps[96] - Lc12_0*Lc8_0 - Lc12_1*Lc8_1 - Lc12_2*Lc8_2 - Lc12_3*Lc8_3 - Lc12_4*Lc8_4 - Lc12_5*Lc8_5 - Lc12_6*Lc8_6 - Lc12_7*Lc8_7);
-    const float Lc13_8 = Lci8*(Ps[97] - Lc13_0*Lc8_0 - Lc13_1*Lc8_1 - Lc13_2*Lc8_2 - Lc13_3*Lc8_3 - Lc13_4*Lc8_4 - Lc13_5*Lc8_5 - Lc13_6*Lc8_6 - Lc13_7*Lc8_7);
-    const float Lc14_8 = Lci8*(Ps[98] - Lc14_0*Lc8_0 - Lc14_1*Lc8_1 - Lc14_2*Lc8_2 - Lc14_3*Lc8_3 - Lc14_4*Lc8_4 - Lc14_5*Lc8_5 - Lc14_6*Lc8_6 - Lc14_7*Lc8_7);
-    const float Lcd9 = Ps[99] - (Lc9_0*Lc9_0) - (Lc9_1*Lc9_1) - (Lc9_2*Lc9_2) - (Lc9_3*Lc9_3) - (Lc9_4*Lc9_4) - (Lc9_5*Lc9_5) - (Lc9_6*Lc9_6) - (Lc9_7*Lc9_7) - (Lc9_8*Lc9_8);
-    if (!isfinite(Lcd9)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd9 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc9_9 = sqrtf(Lcd9);
-    const float Lci9 = (1.0F/Lc9_9);
-    const float Lc10_9 = Lci9*(Ps[100] - Lc10_0*Lc9_0 - Lc10_1*Lc9_1 - Lc10_2*Lc9_2 - Lc10_3*Lc9_3 - Lc10_4*Lc9_4 - Lc10_5*Lc9_5 - Lc10_6*Lc9_6 - Lc10_7*Lc9_7 - Lc10_8*Lc9_8);
-    const float Lc11_9 = Lci9*(Ps[101] - Lc11_0*Lc9_0 - Lc11_1*Lc9_1 - Lc11_2*Lc9_2 - Lc11_3*Lc9_3 - Lc11_4*Lc9_4 - Lc11_5*Lc9_5 - Lc11_6*Lc9_6 - Lc11_7*Lc9_7 - Lc11_8*Lc9_8);
-    const float Lc12_9 = Lci9*(Ps[102] - Lc12_0*Lc9_0 - Lc12_1*Lc9_1 - Lc12_2*Lc9_2 - Lc12_3*Lc9_3 - Lc12_4*Lc9_4 - Lc12_5*Lc9_5 - Lc12_6*Lc9_6 - Lc12_7*Lc9_7 - Lc12_8*Lc9_8);
-    const float Lc13_9 = Lci9*(Ps[103] - Lc13_0*Lc9_0 - Lc13_1*Lc9_1 - Lc13_2*Lc9_2 - Lc13_3*Lc9_3 - Lc13_4*Lc9_4 - Lc13_5*Lc9_5 - Lc13_6*Lc9_6 - Lc13_7*Lc9_7 - Lc13_8*Lc9_8);
-    const float Lc14_9 = Lci9*(Ps[104] - Lc14_0*Lc9_0 - Lc14_1*Lc9_1 - Lc14_2*Lc9_2 - Lc14_3*Lc9_3 - Lc14_4*Lc9_4 - Lc14_5*Lc9_5 - Lc14_6*Lc9_6 - Lc14_7*Lc9_7 - Lc14_8*Lc9_8);
-    const float Lcd10 = Ps[105] - (Lc10_0*Lc10_0) - (Lc10_1*Lc10_1) - (Lc10_2*Lc10_2) - (Lc10_3*Lc10_3) - (Lc10_4*Lc10_4) - (Lc10_5*Lc10_5) - (Lc10_6*Lc10_6) - (Lc10_7*Lc10_7) - (Lc10_8*Lc10_8) - (Lc10_9*Lc10_9);
-    if (!isfinite(Lcd10)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd10 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc10_10 = sqrtf(Lcd10);
-    const float Lci10 = (1.0F/Lc10_10);
-    const float Lc11_10 = Lci10*(Ps[106] - Lc10_0*Lc11_0 - Lc10_1*Lc11_1 - Lc10_2*Lc11_2 - Lc10_3*Lc11_3 - Lc10_4*Lc11_4 - Lc10_5*Lc11_5 - Lc10_6*Lc11_6 - Lc10_7*Lc11_7 - Lc10_8*Lc11_8 - Lc10_9*Lc11_9);
-    const float Lc12_10 = Lci10*(Ps[107] - Lc10_0*Lc12_0 - Lc10_1*Lc12_1 - Lc10_2*Lc12_2 - Lc10_3*Lc12_3 - Lc10_4*Lc12_4 - Lc10_5*Lc12_5 - Lc10_6*Lc12_6 - Lc10_7*Lc12_7 - Lc10_8*Lc12_8 - Lc10_9*Lc12_9);
-    const float Lc13_10 = Lci10*(Ps[108] - Lc10_0*Lc13_0 - Lc10_1*Lc13_1 - Lc10_2*Lc13_2 - Lc10_3*Lc13_3 - Lc10_4*Lc13_4 - Lc10_5*Lc13_5 - Lc10_6*Lc13_6 - Lc10_7*Lc13_7 - Lc10_8*Lc13_8 - Lc10_9*Lc13_9);
-    const float Lc14_10 = Lci10*(Ps[109] - Lc10_0*Lc14_0 - Lc10_1*Lc14_1 - Lc10_2*Lc14_2 - Lc10_3*Lc14_3 - Lc10_4*Lc14_4 - Lc10_5*Lc14_5 - Lc10_6*Lc14_6 - Lc10_7*Lc14_7 - Lc10_8*Lc14_8 - Lc10_9*Lc14_9);
-    const float Lcd11 = Ps[110] - (Lc11_0*Lc11_0) - (Lc11_1*Lc11_1) - (Lc11_10*Lc11_10) - (Lc11_2*Lc11_2) - (Lc11_3*Lc11_3) - (Lc11_4*Lc11_4) - (Lc11_5*Lc11_5) - (Lc11_6*Lc11_6) - (Lc11_7*Lc11_7) - (Lc11_8*Lc11_8) - (Lc11_9*Lc11_9);
-    if (!isfinite(Lcd11)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd11 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc11_11 = sqrtf(Lcd11);
-    const float Lci11 = (1.0F/Lc11_11);
-    const float Lc12_11 = Lci11*(Ps[111] - Lc11_0*Lc12_0 - Lc11_1*Lc12_1 - Lc11_10*Lc12_10 - Lc11_2*Lc12_2 - Lc11_3*Lc12_3 - Lc11_4*Lc12_4 - Lc11_5*Lc12_5 - Lc11_6*Lc12_6 - Lc11_7*Lc12_7 - Lc11_8*Lc12_8 - Lc11_9*Lc12_9);
-    const float Lc13_11 = Lci11*(Ps[112] - Lc11_0*Lc13_0 - Lc11_1*Lc13_1 - Lc11_10*Lc13_10 - Lc11_2*Lc13_2 - Lc11_3*Lc13_3 - Lc11_4*Lc13_4 - Lc11_5*Lc13_5 - Lc11_6*Lc13_6 - Lc11_7*Lc13_7 - Lc11_8*Lc13_8 - Lc11_9*Lc13_9);
-    const float Lc14_11 = Lci11*(Ps[113] - Lc11_0*Lc14_0 - Lc11_1*Lc14_1 - Lc11_10*Lc14_10 - Lc11_2*Lc14_2 - Lc11_3*Lc14_3 - Lc11_4*Lc14_4 - Lc11_5*Lc14_5 - Lc11_6*Lc14_6 - Lc11_7*Lc14_7 - Lc11_8*Lc14_8 - Lc11_9*Lc14_9);
-    const float Lcd12 = Ps[114] - (Lc12_0*Lc12_0) - (Lc12_1*Lc12_1) - (Lc12_10*Lc12_10) - (Lc12_11*Lc12_11) - (Lc12_2*Lc12_2) - (Lc12_3*Lc12_3) - (Lc12_4*Lc12_4) - (Lc12_5*Lc12_5) - (Lc12_6*Lc12_6) - (Lc12_7*Lc12_7) - (Lc12_8*Lc12_8) - (Lc12_9*Lc12_9);
-    if (!isfinite(Lcd12)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd12 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc12_12 = sqrtf(Lcd12);
-    const float Lci12 = (1.0F/Lc12_12);
-    const float Lc13_12 = Lci12*(Ps[115] - Lc12_0*Lc13_0 - Lc12_1*Lc13_1 - Lc12_10*Lc13_10 - Lc12_11*Lc13_11 - Lc12_2*Lc13_2 - Lc12_3*Lc13_3 - Lc12_4*Lc13_4 - Lc12_5*Lc13_5 - Lc12_6*Lc13_6 - Lc12_7*Lc13_7 - Lc12_8*Lc13_8 - Lc12_9*Lc13_9);
-    const float Lc14_12 = Lci12*(Ps[116] - Lc12_0*Lc14_0 - Lc12_1*Lc14_1 - Lc12_10*Lc14_10 - Lc12_11*Lc14_11 - Lc12_2*Lc14_2 - Lc12_3*Lc14_3 - Lc12_4*Lc14_4 - Lc12_5*Lc14_5 - Lc12_6*Lc14_6 - Lc12_7*Lc14_7 - Lc12_8*Lc14_8 - Lc12_9*Lc14_9);
-    const float Lcd13 = Ps[117] - (Lc13_0*Lc13_0) - (Lc13_1*Lc13_1) - (Lc13_10*Lc13_10) - (Lc13_11*Lc13_11) - (Lc13_12*Lc13_12) - (Lc13_2*Lc13_2) - (Lc13_3*Lc13_3) - (Lc13_4*Lc13_4) - (Lc13_5*Lc13_5) - (Lc13_6*Lc13_6) - (Lc13_7*Lc13_7) - (Lc13_8*Lc13_8) - (Lc13_9*Lc13_9);
-    if (!isfinite(Lcd13)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd13 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc13_13 = sqrtf(Lcd13);
-    const float Lci13 = (1.0F/Lc13_13);
-    const float Lc14_13 = Lci13*(Ps[118] - Lc13_0*Lc14_0 - Lc13_1*Lc14_1 - Lc13_10*Lc14_10 - Lc13_11*Lc14_11 - Lc13_12*Lc14_12 - Lc13_2*Lc14_2 - Lc13_3*Lc14_3 - Lc13_4*Lc14_4 - Lc13_5*Lc14_5 - Lc13_6*Lc14_6 - Lc13_7*Lc14_7 - Lc13_8*Lc14_8 - Lc13_9*Lc14_9);
-    const float Lcd14 = Ps[119] - (Lc14_0*Lc14_0) - (Lc14_1*Lc14_1) - (Lc14_10*Lc14_10) - (Lc14_11*Lc14_11) - (Lc14_12*Lc14_12) - (Lc14_13*Lc14_13) - (Lc14_2*Lc14_2) - (Lc14_3*Lc14_3) - (Lc14_4*Lc14_4) - (Lc14_5*Lc14_5) - (Lc14_6*Lc14_6) - (Lc14_7*Lc14_7) - (Lc14_8*Lc14_8) - (Lc14_9*Lc14_9);
-    if (!isfinite(Lcd14)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd14 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
+    {
+        const int st = nav_ekf_commit_pd(Ps);  /* commit only a positive definite P */
+        if (st != NAV_EKF_OK) {
+            return st;
+        }
+    }
 
     if (!isfinite(nis)) {
         return NAV_EKF_NON_FINITE;
@@ -2108,186 +1919,12 @@ int nav_ekf_update_gnss_vel_nis(nav_ekf_t *s, const float *z, float *nis_out)
     if (!nav_ekf_finite(xs, 15u) || !nav_ekf_finite(Ps, 120u)) {
         return NAV_EKF_NON_FINITE;
     }
-    /* commit only a positive definite P: the pivots of its Cholesky factorization, unrolled
-       (a positive diagonal is not enough) */
-    const float Lcd0 = Ps[0];
-    if (!isfinite(Lcd0)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd0 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc0_0 = sqrtf(Lcd0);
-    const float Lci0 = (1.0F/Lc0_0);
-    const float Lc1_0 = Lci0*Ps[1];
-    const float Lc2_0 = Lci0*Ps[2];
-    const float Lc3_0 = Lci0*Ps[3];
-    const float Lc4_0 = Lci0*Ps[4];
-    const float Lc5_0 = Lci0*Ps[5];
-    const float Lc6_0 = Lci0*Ps[6];
-    const float Lc7_0 = Lci0*Ps[7];
-    const float Lc8_0 = Lci0*Ps[8];
-    const float Lc9_0 = Lci0*Ps[9];
-    const float Lc10_0 = Lci0*Ps[10];
-    const float Lc11_0 = Lci0*Ps[11];
-    const float Lc12_0 = Lci0*Ps[12];
-    const float Lc13_0 = Lci0*Ps[13];
-    const float Lc14_0 = Lci0*Ps[14];
-    const float Lcd1 = Ps[15] - (Lc1_0*Lc1_0);
-    if (!isfinite(Lcd1)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd1 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc1_1 = sqrtf(Lcd1);
-    const float Lci1 = (1.0F/Lc1_1);
-    const float Lc2_1 = Lci1*(Ps[16] - Lc1_0*Lc2_0);
-    const float Lc3_1 = Lci1*(Ps[17] - Lc1_0*Lc3_0);
-    const float Lc4_1 = Lci1*(Ps[18] - Lc1_0*Lc4_0);
-    const float Lc5_1 = Lci1*(Ps[19] - Lc1_0*Lc5_0);
-    const float Lc6_1 = Lci1*(Ps[20] - Lc1_0*Lc6_0);
-    const float Lc7_1 = Lci1*(Ps[21] - Lc1_0*Lc7_0);
-    const float Lc8_1 = Lci1*(Ps[22] - Lc1_0*Lc8_0);
-    const float Lc9_1 = Lci1*(Ps[23] - Lc1_0*Lc9_0);
-    const float Lc10_1 = Lci1*(Ps[24] - Lc10_0*Lc1_0);
-    const float Lc11_1 = Lci1*(Ps[25] - Lc11_0*Lc1_0);
-    const float Lc12_1 = Lci1*(Ps[26] - Lc12_0*Lc1_0);
-    const float Lc13_1 = Lci1*(Ps[27] - Lc13_0*Lc1_0);
-    const float Lc14_1 = Lci1*(Ps[28] - Lc14_0*Lc1_0);
-    const float Lcd2 = Ps[29] - (Lc2_0*Lc2_0) - (Lc2_1*Lc2_1);
-    if (!isfinite(Lcd2)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd2 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc2_2 = sqrtf(Lcd2);
-    const float Lci2 = (1.0F/Lc2_2);
-    const float Lc3_2 = Lci2*(Ps[30] - Lc2_0*Lc3_0 - Lc2_1*Lc3_1);
-    const float Lc4_2 = Lci2*(Ps[31] - Lc2_0*Lc4_0 - Lc2_1*Lc4_1);
-    const float Lc5_2 = Lci2*(Ps[32] - Lc2_0*Lc5_0 - Lc2_1*Lc5_1);
-    const float Lc6_2 = Lci2*(Ps[33] - Lc2_0*Lc6_0 - Lc2_1*Lc6_1);
-    const float Lc7_2 = Lci2*(Ps[34] - Lc2_0*Lc7_0 - Lc2_1*Lc7_1);
-    const float Lc8_2 = Lci2*(Ps[35] - Lc2_0*Lc8_0 - Lc2_1*Lc8_1);
-    const float Lc9_2 = Lci2*(Ps[36] - Lc2_0*Lc9_0 - Lc2_1*Lc9_1);
-    const float Lc10_2 = Lci2*(Ps[37] - Lc10_0*Lc2_0 - Lc10_1*Lc2_1);
-    const float Lc11_2 = Lci2*(Ps[38] - Lc11_0*Lc2_0 - Lc11_1*Lc2_1);
-    const float Lc12_2 = Lci2*(Ps[39] - Lc12_0*Lc2_0 - Lc12_1*Lc2_1);
-    const float Lc13_2 = Lci2*(Ps[40] - Lc13_0*Lc2_0 - Lc13_1*Lc2_1);
-    const float Lc14_2 = Lci2*(Ps[41] - Lc14_0*Lc2_0 - Lc14_1*Lc2_1);
-    const float Lcd3 = Ps[42] - (Lc3_0*Lc3_0) - (Lc3_1*Lc3_1) - (Lc3_2*Lc3_2);
-    if (!isfinite(Lcd3)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd3 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc3_3 = sqrtf(Lcd3);
-    const float Lci3 = (1.0F/Lc3_3);
-    const float Lc4_3 = Lci3*(Ps[43] - Lc3_0*Lc4_0 - Lc3_1*Lc4_1 - Lc3_2*Lc4_2);
-    const float Lc5_3 = Lci3*(Ps[44] - Lc3_0*Lc5_0 - Lc3_1*Lc5_1 - Lc3_2*Lc5_2);
-    const float Lc6_3 = Lci3*(Ps[45] - Lc3_0*Lc6_0 - Lc3_1*Lc6_1 - Lc3_2*Lc6_2);
-    const float Lc7_3 = Lci3*(Ps[46] - Lc3_0*Lc7_0 - Lc3_1*Lc7_1 - Lc3_2*Lc7_2);
-    const float Lc8_3 = Lci3*(Ps[47] - Lc3_0*Lc8_0 - Lc3_1*Lc8_1 - Lc3_2*Lc8_2);
-    const float Lc9_3 = Lci3*(Ps[48] - Lc3_0*Lc9_0 - Lc3_1*Lc9_1 - Lc3_2*Lc9_2);
-    const float Lc10_3 = Lci3*(Ps[49] - Lc10_0*Lc3_0 - Lc10_1*Lc3_1 - Lc10_2*Lc3_2);
-    const float Lc11_3 = Lci3*(Ps[50] - Lc11_0*Lc3_0 - Lc11_1*Lc3_1 - Lc11_2*Lc3_2);
-    const float Lc12_3 = Lci3*(Ps[51] - Lc12_0*Lc3_0 - Lc12_1*Lc3_1 - Lc12_2*Lc3_2);
-    const float Lc13_3 = Lci3*(Ps[52] - Lc13_0*Lc3_0 - Lc13_1*Lc3_1 - Lc13_2*Lc3_2);
-    const float Lc14_3 = Lci3*(Ps[53] - Lc14_0*Lc3_0 - Lc14_1*Lc3_1 - Lc14_2*Lc3_2);
-    const float Lcd4 = Ps[54] - (Lc4_0*Lc4_0) - (Lc4_1*Lc4_1) - (Lc4_2*Lc4_2) - (Lc4_3*Lc4_3);
-    if (!isfinite(Lcd4)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd4 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc4_4 = sqrtf(Lcd4);
-    const float Lci4 = (1.0F/Lc4_4);
-    const float Lc5_4 = Lci4*(Ps[55] - Lc4_0*Lc5_0 - Lc4_1*Lc5_1 - Lc4_2*Lc5_2 - Lc4_3*Lc5_3);
-    const float Lc6_4 = Lci4*(Ps[56] - Lc4_0*Lc6_0 - Lc4_1*Lc6_1 - Lc4_2*Lc6_2 - Lc4_3*Lc6_3);
-    const float Lc7_4 = Lci4*(Ps[57] - Lc4_0*Lc7_0 - Lc4_1*Lc7_1 - Lc4_2*Lc7_2 - Lc4_3*Lc7_3);
-    const float Lc8_4 = Lci4*(Ps[58] - Lc4_0*Lc8_0 - Lc4_1*Lc8_1 - Lc4_2*Lc8_2 - Lc4_3*Lc8_3);
-    const float Lc9_4 = Lci4*(Ps[59] - Lc4_0*Lc9_0 - Lc4_1*Lc9_1 - Lc4_2*Lc9_2 - Lc4_3*Lc9_3);
-    const float Lc10_4 = Lci4*(Ps[60] - Lc10_0*Lc4_0 - Lc10_1*Lc4_1 - Lc10_2*Lc4_2 - Lc10_3*Lc4_3);
-    const float Lc11_4 = Lci4*(Ps[61] - Lc11_0*Lc4_0 - Lc11_1*Lc4_1 - Lc11_2*Lc4_2 - Lc11_3*Lc4_3);
-    const float Lc12_4 = Lci4*(Ps[62] - Lc12_0*Lc4_0 - Lc12_1*Lc4_1 - Lc12_2*Lc4_2 - Lc12_3*Lc4_3);
-    const float Lc13_4 = Lci4*(Ps[63] - Lc13_0*Lc4_0 - Lc13_1*Lc4_1 - Lc13_2*Lc4_2 - Lc13_3*Lc4_3);
-    const float Lc14_4 = Lci4*(Ps[64] - Lc14_0*Lc4_0 - Lc14_1*Lc4_1 - Lc14_2*Lc4_2 - Lc14_3*Lc4_3);
-    const float Lcd5 = Ps[65] - (Lc5_0*Lc5_0) - (Lc5_1*Lc5_1) - (Lc5_2*Lc5_2) - (Lc5_3*Lc5_3) - (Lc5_4*Lc5_4);
-    if (!isfinite(Lcd5)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd5 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc5_5 = sqrtf(Lcd5);
-    const float Lci5 = (1.0F/Lc5_5);
-    const float Lc6_5 = Lci5*(Ps[66] - Lc5_0*Lc6_0 - Lc5_1*Lc6_1 - Lc5_2*Lc6_2 - Lc5_3*Lc6_3 - Lc5_4*Lc6_4);
-    const float Lc7_5 = Lci5*(Ps[67] - Lc5_0*Lc7_0 - Lc5_1*Lc7_1 - Lc5_2*Lc7_2 - Lc5_3*Lc7_3 - Lc5_4*Lc7_4);
-    const float Lc8_5 = Lci5*(Ps[68] - Lc5_0*Lc8_0 - Lc5_1*Lc8_1 - Lc5_2*Lc8_2 - Lc5_3*Lc8_3 - Lc5_4*Lc8_4);
-    const float Lc9_5 = Lci5*(Ps[69] - Lc5_0*Lc9_0 - Lc5_1*Lc9_1 - Lc5_2*Lc9_2 - Lc5_3*Lc9_3 - Lc5_4*Lc9_4);
-    const float Lc10_5 = Lci5*(Ps[70] - Lc10_0*Lc5_0 - Lc10_1*Lc5_1 - Lc10_2*Lc5_2 - Lc10_3*Lc5_3 - Lc10_4*Lc5_4);
-    const float Lc11_5 = Lci5*(Ps[71] - Lc11_0*Lc5_0 - Lc11_1*Lc5_1 - Lc11_2*Lc5_2 - Lc11_3*Lc5_3 - Lc11_4*Lc5_4);
-    const float Lc12_5 = Lci5*(Ps[72] - Lc12_0*Lc5_0 - Lc12_1*Lc5_1 - Lc12_2*Lc5_2 - Lc12_3*Lc5_3 - Lc12_4*Lc5_4);
-    const float Lc13_5 = Lci5*(Ps[73] - Lc13_0*Lc5_0 - Lc13_1*Lc5_1 - Lc13_2*Lc5_2 - Lc13_3*Lc5_3 - Lc13_4*Lc5_4);
-    const float Lc14_5 = Lci5*(Ps[74] - Lc14_0*Lc5_0 - Lc14_1*Lc5_1 - Lc14_2*Lc5_2 - Lc14_3*Lc5_3 - Lc14_4*Lc5_4);
-    const float Lcd6 = Ps[75] - (Lc6_0*Lc6_0) - (Lc6_1*Lc6_1) - (Lc6_2*Lc6_2) - (Lc6_3*Lc6_3) - (Lc6_4*Lc6_4) - (Lc6_5*Lc6_5);
-    if (!isfinite(Lcd6)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd6 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc6_6 = sqrtf(Lcd6);
-    const float Lci6 = (1.0F/Lc6_6);
-    const float Lc7_6 = Lci6*(Ps[76] - Lc6_0*Lc7_0 - Lc6_1*Lc7_1 - Lc6_2*Lc7_2 - Lc6_3*Lc7_3 - Lc6_4*Lc7_4 - Lc6_5*Lc7_5);
-    const float Lc8_6 = Lci6*(Ps[77] - Lc6_0*Lc8_0 - Lc6_1*Lc8_1 - Lc6_2*Lc8_2 - Lc6_3*Lc8_3 - Lc6_4*Lc8_4 - Lc6_5*Lc8_5);
-    const float Lc9_6 = Lci6*(Ps[78] - Lc6_0*Lc9_0 - Lc6_1*Lc9_1 - Lc6_2*Lc9_2 - Lc6_3*Lc9_3 - Lc6_4*Lc9_4 - Lc6_5*Lc9_5);
-    const float Lc10_6 = Lci6*(Ps[79] - Lc10_0*Lc6_0 - Lc10_1*Lc6_1 - Lc10_2*Lc6_2 - Lc10_3*Lc6_3 - Lc10_4*Lc6_4 - Lc10_5*Lc6_5);
-    const float Lc11_6 = Lci6*(Ps[80] - Lc11_0*Lc6_0 - Lc11_1*Lc6_1 - Lc11_2*Lc6_2 - Lc11_3*Lc6_3 - Lc11_4*Lc6_4 - Lc11_5*Lc6_5);
-    const float Lc12_6 = Lci6*(Ps[81] - Lc12_0*Lc6_0 - Lc12_1*Lc6_1 - Lc12_2*Lc6_2 - Lc12_3*Lc6_3 - Lc12_4*Lc6_4 - Lc12_5*Lc6_5);
-    const float Lc13_6 = Lci6*(Ps[82] - Lc13_0*Lc6_0 - Lc13_1*Lc6_1 - Lc13_2*Lc6_2 - Lc13_3*Lc6_3 - Lc13_4*Lc6_4 - Lc13_5*Lc6_5);
-    const float Lc14_6 = Lci6*(Ps[83] - Lc14_0*Lc6_0 - Lc14_1*Lc6_1 - Lc14_2*Lc6_2 - Lc14_3*Lc6_3 - Lc14_4*Lc6_4 - Lc14_5*Lc6_5);
-    const float Lcd7 = Ps[84] - (Lc7_0*Lc7_0) - (Lc7_1*Lc7_1) - (Lc7_2*Lc7_2) - (Lc7_3*Lc7_3) - (Lc7_4*Lc7_4) - (Lc7_5*Lc7_5) - (Lc7_6*Lc7_6);
-    if (!isfinite(Lcd7)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd7 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc7_7 = sqrtf(Lcd7);
-    const float Lci7 = (1.0F/Lc7_7);
-    const float Lc8_7 = Lci7*(Ps[85] - Lc7_0*Lc8_0 - Lc7_1*Lc8_1 - Lc7_2*Lc8_2 - Lc7_3*Lc8_3 - Lc7_4*Lc8_4 - Lc7_5*Lc8_5 - Lc7_6*Lc8_6);
-    const float Lc9_7 = Lci7*(Ps[86] - Lc7_0*Lc9_0 - Lc7_1*Lc9_1 - Lc7_2*Lc9_2 - Lc7_3*Lc9_3 - Lc7_4*Lc9_4 - Lc7_5*Lc9_5 - Lc7_6*Lc9_6);
-    const float Lc10_7 = Lci7*(Ps[87] - Lc10_0*Lc7_0 - Lc10_1*Lc7_1 - Lc10_2*Lc7_2 - Lc10_3*Lc7_3 - Lc10_4*Lc7_4 - Lc10_5*Lc7_5 - Lc10_6*Lc7_6);
-    const float Lc11_7 = Lci7*(Ps[88] - Lc11_0*Lc7_0 - Lc11_1*Lc7_1 - Lc11_2*Lc7_2 - Lc11_3*Lc7_3 - Lc11_4*Lc7_4 - Lc11_5*Lc7_5 - Lc11_6*Lc7_6);
-    const float Lc12_7 = Lci7*(Ps[89] - Lc12_0*Lc7_0 - Lc12_1*Lc7_1 - Lc12_2*Lc7_2 - Lc12_3*Lc7_3 - Lc12_4*Lc7_4 - Lc12_5*Lc7_5 - Lc12_6*Lc7_6);
-    const float Lc13_7 = Lci7*(Ps[90] - Lc13_0*Lc7_0 - Lc13_1*Lc7_1 - Lc13_2*Lc7_2 - Lc13_3*Lc7_3 - Lc13_4*Lc7_4 - Lc13_5*Lc7_5 - Lc13_6*Lc7_6);
-    const float Lc14_7 = Lci7*(Ps[91] - Lc14_0*Lc7_0 - Lc14_1*Lc7_1 - Lc14_2*Lc7_2 - Lc14_3*Lc7_3 - Lc14_4*Lc7_4 - Lc14_5*Lc7_5 - Lc14_6*Lc7_6);
-    const float Lcd8 = Ps[92] - (Lc8_0*Lc8_0) - (Lc8_1*Lc8_1) - (Lc8_2*Lc8_2) - (Lc8_3*Lc8_3) - (Lc8_4*Lc8_4) - (Lc8_5*Lc8_5) - (Lc8_6*Lc8_6) - (Lc8_7*Lc8_7);
-    if (!isfinite(Lcd8)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd8 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc8_8 = sqrtf(Lcd8);
-    const float Lci8 = (1.0F/Lc8_8);
-    const float Lc9_8 = Lci8*(Ps[93] - Lc8_0*Lc9_0 - Lc8_1*Lc9_1 - Lc8_2*Lc9_2 - Lc8_3*Lc9_3 - Lc8_4*Lc9_4 - Lc8_5*Lc9_5 - Lc8_6*Lc9_6 - Lc8_7*Lc9_7);
-    const float Lc10_8 = Lci8*(Ps[94] - Lc10_0*Lc8_0 - Lc10_1*Lc8_1 - Lc10_2*Lc8_2 - Lc10_3*Lc8_3 - Lc10_4*Lc8_4 - Lc10_5*Lc8_5 - Lc10_6*Lc8_6 - Lc10_7*Lc8_7);
-    const float Lc11_8 = Lci8*(Ps[95] - Lc11_0*Lc8_0 - Lc11_1*Lc8_1 - Lc11_2*Lc8_2 - Lc11_3*Lc8_3 - Lc11_4*Lc8_4 - Lc11_5*Lc8_5 - Lc11_6*Lc8_6 - Lc11_7*Lc8_7);
-    const float Lc12_8 = Lci8*(Ps[96] - Lc12_0*Lc8_0 - Lc12_1*Lc8_1 - Lc12_2*Lc8_2 - Lc12_3*Lc8_3 - Lc12_4*Lc8_4 - Lc12_5*Lc8_5 - Lc12_6*Lc8_6 - Lc12_7*Lc8_7);
-    const float Lc13_8 = Lci8*(Ps[97] - Lc13_0*Lc8_0 - Lc13_1*Lc8_1 - Lc13_2*Lc8_2 - Lc13_3*Lc8_3 - Lc13_4*Lc8_4 - Lc13_5*Lc8_5 - Lc13_6*Lc8_6 - Lc13_7*Lc8_7);
-    const float Lc14_8 = Lci8*(Ps[98] - Lc14_0*Lc8_0 - Lc14_1*Lc8_1 - Lc14_2*Lc8_2 - Lc14_3*Lc8_3 - Lc14_4*Lc8_4 - Lc14_5*Lc8_5 - Lc14_6*Lc8_6 - Lc14_7*Lc8_7);
-    const float Lcd9 = Ps[99] - (Lc9_0*Lc9_0) - (Lc9_1*Lc9_1) - (Lc9_2*Lc9_2) - (Lc9_3*Lc9_3) - (Lc9_4*Lc9_4) - (Lc9_5*Lc9_5) - (Lc9_6*Lc9_6) - (Lc9_7*Lc9_7) - (Lc9_8*Lc9_8);
-    if (!isfinite(Lcd9)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd9 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc9_9 = sqrtf(Lcd9);
-    const float Lci9 = (1.0F/Lc9_9);
-    const float Lc10_9 = Lci9*(Ps[100] - Lc10_0*Lc9_0 - Lc10_1*Lc9_1 - Lc10_2*Lc9_2 - Lc10_3*Lc9_3 - Lc10_4*Lc9_4 - Lc10_5*Lc9_5 - Lc10_6*Lc9_6 - Lc10_7*Lc9_7 - Lc10_8*Lc9_8);
-    const float Lc11_9 = Lci9*(Ps[101] - Lc11_0*Lc9_0 - Lc11_1*Lc9_1 - Lc11_2*Lc9_2 - Lc11_3*Lc9_3 - Lc11_4*Lc9_4 - Lc11_5*Lc9_5 - Lc11_6*Lc9_6 - Lc11_7*Lc9_7 - Lc11_8*Lc9_8);
-    const float Lc12_9 = Lci9*(Ps[102] - Lc12_0*Lc9_0 - Lc12_1*Lc9_1 - Lc12_2*Lc9_2 - Lc12_3*Lc9_3 - Lc12_4*Lc9_4 - Lc12_5*Lc9_5 - Lc12_6*Lc9_6 - Lc12_7*Lc9_7 - Lc12_8*Lc9_8);
-    const float Lc13_9 = Lci9*(Ps[103] - Lc13_0*Lc9_0 - Lc13_1*Lc9_1 - Lc13_2*Lc9_2 - Lc13_3*Lc9_3 - Lc13_4*Lc9_4 - Lc13_5*Lc9_5 - Lc13_6*Lc9_6 - Lc13_7*Lc9_7 - Lc13_8*Lc9_8);
-    const float Lc14_9 = Lci9*(Ps[104] - Lc14_0*Lc9_0 - Lc14_1*Lc9_1 - Lc14_2*Lc9_2 - Lc14_3*Lc9_3 - Lc14_4*Lc9_4 - Lc14_5*Lc9_5 - Lc14_6*Lc9_6 - Lc14_7*Lc9_7 - Lc14_8*Lc9_8);
-    const float Lcd10 = Ps[105] - (Lc10_0*Lc10_0) - (Lc10_1*Lc10_1) - (Lc10_2*Lc10_2) - (Lc10_3*Lc10_3) - (Lc10_4*Lc10_4) - (Lc10_5*Lc10_5) - (Lc10_6*Lc10_6) - (Lc10_7*Lc10_7) - (Lc10_8*Lc10_8) - (Lc10_9*Lc10_9);
-    if (!isfinite(Lcd10)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd10 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc10_10 = sqrtf(Lcd10);
-    const float Lci10 = (1.0F/Lc10_10);
-    const float Lc11_10 = Lci10*(Ps[106] - Lc10_0*Lc11_0 - Lc10_1*Lc11_1 - Lc10_2*Lc11_2 - Lc10_3*Lc11_3 - Lc10_4*Lc11_4 - Lc10_5*Lc11_5 - Lc10_6*Lc11_6 - Lc10_7*Lc11_7 - Lc10_8*Lc11_8 - Lc10_9*Lc11_9);
-    const float Lc12_10 = Lci10*(Ps[107] - Lc10_0*Lc12_0 - Lc10_1*Lc12_1 - Lc10_2*Lc12_2 - Lc10_3*Lc12_3 - Lc10_4*Lc12_4 - Lc10_5*Lc12_5 - Lc10_6*Lc12_6 - Lc10_7*Lc12_7 - Lc10_8*Lc12_8 - Lc10_9*Lc12_9);
-    const float Lc13_10 = Lci10*(Ps[108] - Lc10_0*Lc13_0 - Lc10_1*Lc13_1 - Lc10_2*Lc13_2 - Lc10_3*Lc13_3 - Lc10_4*Lc13_4 - Lc10_5*Lc13_5 - Lc10_6*Lc13_6 - Lc10_7*Lc13_7 - Lc10_8*Lc13_8 - Lc10_9*Lc13_9);
-    const float Lc14_10 = Lci10*(Ps[109] - Lc10_0*Lc14_0 - Lc10_1*Lc14_1 - Lc10_2*Lc14_2 - Lc10_3*Lc14_3 - Lc10_4*Lc14_4 - Lc10_5*Lc14_5 - Lc10_6*Lc14_6 - Lc10_7*Lc14_7 - Lc10_8*Lc14_8 - Lc10_9*Lc14_9);
-    const float Lcd11 = Ps[110] - (Lc11_0*Lc11_0) - (Lc11_1*Lc11_1) - (Lc11_10*Lc11_10) - (Lc11_2*Lc11_2) - (Lc11_3*Lc11_3) - (Lc11_4*Lc11_4) - (Lc11_5*Lc11_5) - (Lc11_6*Lc11_6) - (Lc11_7*Lc11_7) - (Lc11_8*Lc11_8) - (Lc11_9*Lc11_9);
-    if (!isfinite(Lcd11)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd11 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc11_11 = sqrtf(Lcd11);
-    const float Lci11 = (1.0F/Lc11_11);
-    const float Lc12_11 = Lci11*(Ps[111] - Lc11_0*Lc12_0 - Lc11_1*Lc12_1 - Lc11_10*Lc12_10 - Lc11_2*Lc12_2 - Lc11_3*Lc12_3 - Lc11_4*Lc12_4 - Lc11_5*Lc12_5 - Lc11_6*Lc12_6 - Lc11_7*Lc12_7 - Lc11_8*Lc12_8 - Lc11_9*Lc12_9);
-    const float Lc13_11 = Lci11*(Ps[112] - Lc11_0*Lc13_0 - Lc11_1*Lc13_1 - Lc11_10*Lc13_10 - Lc11_2*Lc13_2 - Lc11_3*Lc13_3 - Lc11_4*Lc13_4 - Lc11_5*Lc13_5 - Lc11_6*Lc13_6 - Lc11_7*Lc13_7 - Lc11_8*Lc13_8 - Lc11_9*Lc13_9);
-    const float Lc14_11 = Lci11*(Ps[113] - Lc11_0*Lc14_0 - Lc11_1*Lc14_1 - Lc11_10*Lc14_10 - Lc11_2*Lc14_2 - Lc11_3*Lc14_3 - Lc11_4*Lc14_4 - Lc11_5*Lc14_5 - Lc11_6*Lc14_6 - Lc11_7*Lc14_7 - Lc11_8*Lc14_8 - Lc11_9*Lc14_9);
-    const float Lcd12 = Ps[114] - (Lc12_0*Lc12_0) - (Lc12_1*Lc12_1) - (Lc12_10*Lc12_10) - (Lc12_11*Lc12_11) - (Lc12_2*Lc12_2) - (Lc12_3*Lc12_3) - (Lc12_4*Lc12_4) - (Lc12_5*Lc12_5) - (Lc12_6*Lc12_6) - (Lc12_7*Lc12_7) - (Lc12_8*Lc12_8) - (Lc12_9*Lc12_9);
-    if (!isfinite(Lcd12)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd12 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc12_12 = sqrtf(Lcd12);
-    const float Lci12 = (1.0F/Lc12_12);
-    const float Lc13_12 = Lci12*(Ps[115] - Lc12_0*Lc13_0 - Lc12_1*Lc13_1 - Lc12_10*Lc13_10 - Lc12_11*Lc13_11 - Lc12_2*Lc13_2 - Lc12_3*Lc13_3 - Lc12_4*Lc13_4 - Lc12_5*Lc13_5 - Lc12_6*Lc13_6 - Lc12_7*Lc13_7 - Lc12_8*Lc13_8 - Lc12_9*Lc13_9);
-    const float Lc14_12 = Lci12*(Ps[116] - Lc12_0*Lc14_0 - Lc12_1*Lc14_1 - Lc12_10*Lc14_10 - Lc12_11*Lc14_11 - Lc12_2*Lc14_2 - Lc12_3*Lc14_3 - Lc12_4*Lc14_4 - Lc12_5*Lc14_5 - Lc12_6*Lc14_6 - Lc12_7*Lc14_7 - Lc12_8*Lc14_8 - Lc12_9*Lc14_9);
-    const float Lcd13 = Ps[117] - (Lc13_0*Lc13_0) - (Lc13_1*Lc13_1) - (Lc13_10*Lc13_10) - (Lc13_11*Lc13_11) - (Lc13_12*Lc13_12) - (Lc13_2*Lc13_2) - (Lc13_3*Lc13_3) - (Lc13_4*Lc13_4) - (Lc13_5*Lc13_5) - (Lc13_6*Lc13_6) - (Lc13_7*Lc13_7) - (Lc13_8*Lc13_8) - (Lc13_9*Lc13_9);
-    if (!isfinite(Lcd13)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd13 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc13_13 = sqrtf(Lcd13);
-    const float Lci13 = (1.0F/Lc13_13);
-    const float Lc14_13 = Lci13*(Ps[118] - Lc13_0*Lc14_0 - Lc13_1*Lc14_1 - Lc13_10*Lc14_10 - Lc13_11*Lc14_11 - Lc13_12*Lc14_12 - Lc13_2*Lc14_2 - Lc13_3*Lc14_3 - Lc13_4*Lc14_4 - Lc13_5*Lc14_5 - Lc13_6*Lc14_6 - Lc13_7*Lc14_7 - Lc13_8*Lc14_8 - Lc13_9*Lc14_9);
-    const float Lcd14 = Ps[119] - (Lc14_0*Lc14_0) - (Lc14_1*Lc14_1) - (Lc14_10*Lc14_10) - (Lc14_11*Lc14_11) - (Lc14_12*Lc14_12) - (Lc14_13*Lc14_13) - (Lc14_2*Lc14_2) - (Lc14_3*Lc14_3) - (Lc14_4*Lc14_4) - (Lc14_5*Lc14_5) - (Lc14_6*Lc14_6) - (Lc14_7*Lc14_7) - (Lc14_8*Lc14_8) - (Lc14_9*Lc14_9);
-    if (!isfinite(Lcd14)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd14 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
+    {
+        const int st = nav_ekf_commit_pd(Ps);  /* commit only a positive definite P */
+        if (st != NAV_EKF_OK) {
+            return st;
+        }
+    }
 
     if (!isfinite(nis)) {
         return NAV_EKF_NON_FINITE;
@@ -2516,186 +2153,12 @@ int nav_ekf_update_baro_nis(nav_ekf_t *s, const float *z, float *nis_out)
     if (!nav_ekf_finite(xs, 15u) || !nav_ekf_finite(Ps, 120u)) {
         return NAV_EKF_NON_FINITE;
     }
-    /* commit only a positive definite P: the pivots of its Cholesky factorization, unrolled
-       (a positive diagonal is not enough) */
-    const float Lcd0 = Ps[0];
-    if (!isfinite(Lcd0)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd0 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc0_0 = sqrtf(Lcd0);
-    const float Lci0 = (1.0F/Lc0_0);
-    const float Lc1_0 = Lci0*Ps[1];
-    const float Lc2_0 = Lci0*Ps[2];
-    const float Lc3_0 = Lci0*Ps[3];
-    const float Lc4_0 = Lci0*Ps[4];
-    const float Lc5_0 = Lci0*Ps[5];
-    const float Lc6_0 = Lci0*Ps[6];
-    const float Lc7_0 = Lci0*Ps[7];
-    const float Lc8_0 = Lci0*Ps[8];
-    const float Lc9_0 = Lci0*Ps[9];
-    const float Lc10_0 = Lci0*Ps[10];
-    const float Lc11_0 = Lci0*Ps[11];
-    const float Lc12_0 = Lci0*Ps[12];
-    const float Lc13_0 = Lci0*Ps[13];
-    const float Lc14_0 = Lci0*Ps[14];
-    const float Lcd1 = Ps[15] - (Lc1_0*Lc1_0);
-    if (!isfinite(Lcd1)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd1 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc1_1 = sqrtf(Lcd1);
-    const float Lci1 = (1.0F/Lc1_1);
-    const float Lc2_1 = Lci1*(Ps[16] - Lc1_0*Lc2_0);
-    const float Lc3_1 = Lci1*(Ps[17] - Lc1_0*Lc3_0);
-    const float Lc4_1 = Lci1*(Ps[18] - Lc1_0*Lc4_0);
-    const float Lc5_1 = Lci1*(Ps[19] - Lc1_0*Lc5_0);
-    const float Lc6_1 = Lci1*(Ps[20] - Lc1_0*Lc6_0);
-    const float Lc7_1 = Lci1*(Ps[21] - Lc1_0*Lc7_0);
-    const float Lc8_1 = Lci1*(Ps[22] - Lc1_0*Lc8_0);
-    const float Lc9_1 = Lci1*(Ps[23] - Lc1_0*Lc9_0);
-    const float Lc10_1 = Lci1*(Ps[24] - Lc10_0*Lc1_0);
-    const float Lc11_1 = Lci1*(Ps[25] - Lc11_0*Lc1_0);
-    const float Lc12_1 = Lci1*(Ps[26] - Lc12_0*Lc1_0);
-    const float Lc13_1 = Lci1*(Ps[27] - Lc13_0*Lc1_0);
-    const float Lc14_1 = Lci1*(Ps[28] - Lc14_0*Lc1_0);
-    const float Lcd2 = Ps[29] - (Lc2_0*Lc2_0) - (Lc2_1*Lc2_1);
-    if (!isfinite(Lcd2)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd2 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc2_2 = sqrtf(Lcd2);
-    const float Lci2 = (1.0F/Lc2_2);
-    const float Lc3_2 = Lci2*(Ps[30] - Lc2_0*Lc3_0 - Lc2_1*Lc3_1);
-    const float Lc4_2 = Lci2*(Ps[31] - Lc2_0*Lc4_0 - Lc2_1*Lc4_1);
-    const float Lc5_2 = Lci2*(Ps[32] - Lc2_0*Lc5_0 - Lc2_1*Lc5_1);
-    const float Lc6_2 = Lci2*(Ps[33] - Lc2_0*Lc6_0 - Lc2_1*Lc6_1);
-    const float Lc7_2 = Lci2*(Ps[34] - Lc2_0*Lc7_0 - Lc2_1*Lc7_1);
-    const float Lc8_2 = Lci2*(Ps[35] - Lc2_0*Lc8_0 - Lc2_1*Lc8_1);
-    const float Lc9_2 = Lci2*(Ps[36] - Lc2_0*Lc9_0 - Lc2_1*Lc9_1);
-    const float Lc10_2 = Lci2*(Ps[37] - Lc10_0*Lc2_0 - Lc10_1*Lc2_1);
-    const float Lc11_2 = Lci2*(Ps[38] - Lc11_0*Lc2_0 - Lc11_1*Lc2_1);
-    const float Lc12_2 = Lci2*(Ps[39] - Lc12_0*Lc2_0 - Lc12_1*Lc2_1);
-    const float Lc13_2 = Lci2*(Ps[40] - Lc13_0*Lc2_0 - Lc13_1*Lc2_1);
-    const float Lc14_2 = Lci2*(Ps[41] - Lc14_0*Lc2_0 - Lc14_1*Lc2_1);
-    const float Lcd3 = Ps[42] - (Lc3_0*Lc3_0) - (Lc3_1*Lc3_1) - (Lc3_2*Lc3_2);
-    if (!isfinite(Lcd3)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd3 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc3_3 = sqrtf(Lcd3);
-    const float Lci3 = (1.0F/Lc3_3);
-    const float Lc4_3 = Lci3*(Ps[43] - Lc3_0*Lc4_0 - Lc3_1*Lc4_1 - Lc3_2*Lc4_2);
-    const float Lc5_3 = Lci3*(Ps[44] - Lc3_0*Lc5_0 - Lc3_1*Lc5_1 - Lc3_2*Lc5_2);
-    const float Lc6_3 = Lci3*(Ps[45] - Lc3_0*Lc6_0 - Lc3_1*Lc6_1 - Lc3_2*Lc6_2);
-    const float Lc7_3 = Lci3*(Ps[46] - Lc3_0*Lc7_0 - Lc3_1*Lc7_1 - Lc3_2*Lc7_2);
-    const float Lc8_3 = Lci3*(Ps[47] - Lc3_0*Lc8_0 - Lc3_1*Lc8_1 - Lc3_2*Lc8_2);
-    const float Lc9_3 = Lci3*(Ps[48] - Lc3_0*Lc9_0 - Lc3_1*Lc9_1 - Lc3_2*Lc9_2);
-    const float Lc10_3 = Lci3*(Ps[49] - Lc10_0*Lc3_0 - Lc10_1*Lc3_1 - Lc10_2*Lc3_2);
-    const float Lc11_3 = Lci3*(Ps[50] - Lc11_0*Lc3_0 - Lc11_1*Lc3_1 - Lc11_2*Lc3_2);
-    const float Lc12_3 = Lci3*(Ps[51] - Lc12_0*Lc3_0 - Lc12_1*Lc3_1 - Lc12_2*Lc3_2);
-    const float Lc13_3 = Lci3*(Ps[52] - Lc13_0*Lc3_0 - Lc13_1*Lc3_1 - Lc13_2*Lc3_2);
-    const float Lc14_3 = Lci3*(Ps[53] - Lc14_0*Lc3_0 - Lc14_1*Lc3_1 - Lc14_2*Lc3_2);
-    const float Lcd4 = Ps[54] - (Lc4_0*Lc4_0) - (Lc4_1*Lc4_1) - (Lc4_2*Lc4_2) - (Lc4_3*Lc4_3);
-    if (!isfinite(Lcd4)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd4 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc4_4 = sqrtf(Lcd4);
-    const float Lci4 = (1.0F/Lc4_4);
-    const float Lc5_4 = Lci4*(Ps[55] - Lc4_0*Lc5_0 - Lc4_1*Lc5_1 - Lc4_2*Lc5_2 - Lc4_3*Lc5_3);
-    const float Lc6_4 = Lci4*(Ps[56] - Lc4_0*Lc6_0 - Lc4_1*Lc6_1 - Lc4_2*Lc6_2 - Lc4_3*Lc6_3);
-    const float Lc7_4 = Lci4*(Ps[57] - Lc4_0*Lc7_0 - Lc4_1*Lc7_1 - Lc4_2*Lc7_2 - Lc4_3*Lc7_3);
-    const float Lc8_4 = Lci4*(Ps[58] - Lc4_0*Lc8_0 - Lc4_1*Lc8_1 - Lc4_2*Lc8_2 - Lc4_3*Lc8_3);
-    const float Lc9_4 = Lci4*(Ps[59] - Lc4_0*Lc9_0 - Lc4_1*Lc9_1 - Lc4_2*Lc9_2 - Lc4_3*Lc9_3);
-    const float Lc10_4 = Lci4*(Ps[60] - Lc10_0*Lc4_0 - Lc10_1*Lc4_1 - Lc10_2*Lc4_2 - Lc10_3*Lc4_3);
-    const float Lc11_4 = Lci4*(Ps[61] - Lc11_0*Lc4_0 - Lc11_1*Lc4_1 - Lc11_2*Lc4_2 - Lc11_3*Lc4_3);
-    const float Lc12_4 = Lci4*(Ps[62] - Lc12_0*Lc4_0 - Lc12_1*Lc4_1 - Lc12_2*Lc4_2 - Lc12_3*Lc4_3);
-    const float Lc13_4 = Lci4*(Ps[63] - Lc13_0*Lc4_0 - Lc13_1*Lc4_1 - Lc13_2*Lc4_2 - Lc13_3*Lc4_3);
-    const float Lc14_4 = Lci4*(Ps[64] - Lc14_0*Lc4_0 - Lc14_1*Lc4_1 - Lc14_2*Lc4_2 - Lc14_3*Lc4_3);
-    const float Lcd5 = Ps[65] - (Lc5_0*Lc5_0) - (Lc5_1*Lc5_1) - (Lc5_2*Lc5_2) - (Lc5_3*Lc5_3) - (Lc5_4*Lc5_4);
-    if (!isfinite(Lcd5)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd5 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc5_5 = sqrtf(Lcd5);
-    const float Lci5 = (1.0F/Lc5_5);
-    const float Lc6_5 = Lci5*(Ps[66] - Lc5_0*Lc6_0 - Lc5_1*Lc6_1 - Lc5_2*Lc6_2 - Lc5_3*Lc6_3 - Lc5_4*Lc6_4);
-    const float Lc7_5 = Lci5*(Ps[67] - Lc5_0*Lc7_0 - Lc5_1*Lc7_1 - Lc5_2*Lc7_2 - Lc5_3*Lc7_3 - Lc5_4*Lc7_4);
-    const float Lc8_5 = Lci5*(Ps[68] - Lc5_0*Lc8_0 - Lc5_1*Lc8_1 - Lc5_2*Lc8_2 - Lc5_3*Lc8_3 - Lc5_4*Lc8_4);
-    const float Lc9_5 = Lci5*(Ps[69] - Lc5_0*Lc9_0 - Lc5_1*Lc9_1 - Lc5_2*Lc9_2 - Lc5_3*Lc9_3 - Lc5_4*Lc9_4);
-    const float Lc10_5 = Lci5*(Ps[70] - Lc10_0*Lc5_0 - Lc10_1*Lc5_1 - Lc10_2*Lc5_2 - Lc10_3*Lc5_3 - Lc10_4*Lc5_4);
-    const float Lc11_5 = Lci5*(Ps[71] - Lc11_0*Lc5_0 - Lc11_1*Lc5_1 - Lc11_2*Lc5_2 - Lc11_3*Lc5_3 - Lc11_4*Lc5_4);
-    const float Lc12_5 = Lci5*(Ps[72] - Lc12_0*Lc5_0 - Lc12_1*Lc5_1 - Lc12_2*Lc5_2 - Lc12_3*Lc5_3 - Lc12_4*Lc5_4);
-    const float Lc13_5 = Lci5*(Ps[73] - Lc13_0*Lc5_0 - Lc13_1*Lc5_1 - Lc13_2*Lc5_2 - Lc13_3*Lc5_3 - Lc13_4*Lc5_4);
-    const float Lc14_5 = Lci5*(Ps[74] - Lc14_0*Lc5_0 - Lc14_1*Lc5_1 - Lc14_2*Lc5_2 - Lc14_3*Lc5_3 - Lc14_4*Lc5_4);
-    const float Lcd6 = Ps[75] - (Lc6_0*Lc6_0) - (Lc6_1*Lc6_1) - (Lc6_2*Lc6_2) - (Lc6_3*Lc6_3) - (Lc6_4*Lc6_4) - (Lc6_5*Lc6_5);
-    if (!isfinite(Lcd6)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd6 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc6_6 = sqrtf(Lcd6);
-    const float Lci6 = (1.0F/Lc6_6);
-    const float Lc7_6 = Lci6*(Ps[76] - Lc6_0*Lc7_0 - Lc6_1*Lc7_1 - Lc6_2*Lc7_2 - Lc6_3*Lc7_3 - Lc6_4*Lc7_4 - Lc6_5*Lc7_5);
-    const float Lc8_6 = Lci6*(Ps[77] - Lc6_0*Lc8_0 - Lc6_1*Lc8_1 - Lc6_2*Lc8_2 - Lc6_3*Lc8_3 - Lc6_4*Lc8_4 - Lc6_5*Lc8_5);
-    const float Lc9_6 = Lci6*(Ps[78] - Lc6_0*Lc9_0 - Lc6_1*Lc9_1 - Lc6_2*Lc9_2 - Lc6_3*Lc9_3 - Lc6_4*Lc9_4 - Lc6_5*Lc9_5);
-    const float Lc10_6 = Lci6*(Ps[79] - Lc10_0*Lc6_0 - Lc10_1*Lc6_1 - Lc10_2*Lc6_2 - Lc10_3*Lc6_3 - Lc10_4*Lc6_4 - Lc10_5*Lc6_5);
-    const float Lc11_6 = Lci6*(Ps[80] - Lc11_0*Lc6_0 - Lc11_1*Lc6_1 - Lc11_2*Lc6_2 - Lc11_3*Lc6_3 - Lc11_4*Lc6_4 - Lc11_5*Lc6_5);
-    const float Lc12_6 = Lci6*(Ps[81] - Lc12_0*Lc6_0 - Lc12_1*Lc6_1 - Lc12_2*Lc6_2 - Lc12_3*Lc6_3 - Lc12_4*Lc6_4 - Lc12_5*Lc6_5);
-    const float Lc13_6 = Lci6*(Ps[82] - Lc13_0*Lc6_0 - Lc13_1*Lc6_1 - Lc13_2*Lc6_2 - Lc13_3*Lc6_3 - Lc13_4*Lc6_4 - Lc13_5*Lc6_5);
-    const float Lc14_6 = Lci6*(Ps[83] - Lc14_0*Lc6_0 - Lc14_1*Lc6_1 - Lc14_2*Lc6_2 - Lc14_3*Lc6_3 - Lc14_4*Lc6_4 - Lc14_5*Lc6_5);
-    const float Lcd7 = Ps[84] - (Lc7_0*Lc7_0) - (Lc7_1*Lc7_1) - (Lc7_2*Lc7_2) - (Lc7_3*Lc7_3) - (Lc7_4*Lc7_4) - (Lc7_5*Lc7_5) - (Lc7_6*Lc7_6);
-    if (!isfinite(Lcd7)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd7 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc7_7 = sqrtf(Lcd7);
-    const float Lci7 = (1.0F/Lc7_7);
-    const float Lc8_7 = Lci7*(Ps[85] - Lc7_0*Lc8_0 - Lc7_1*Lc8_1 - Lc7_2*Lc8_2 - Lc7_3*Lc8_3 - Lc7_4*Lc8_4 - Lc7_5*Lc8_5 - Lc7_6*Lc8_6);
-    const float Lc9_7 = Lci7*(Ps[86] - Lc7_0*Lc9_0 - Lc7_1*Lc9_1 - Lc7_2*Lc9_2 - Lc7_3*Lc9_3 - Lc7_4*Lc9_4 - Lc7_5*Lc9_5 - Lc7_6*Lc9_6);
-    const float Lc10_7 = Lci7*(Ps[87] - Lc10_0*Lc7_0 - Lc10_1*Lc7_1 - Lc10_2*Lc7_2 - Lc10_3*Lc7_3 - Lc10_4*Lc7_4 - Lc10_5*Lc7_5 - Lc10_6*Lc7_6);
-    const float Lc11_7 = Lci7*(Ps[88] - Lc11_0*Lc7_0 - Lc11_1*Lc7_1 - Lc11_2*Lc7_2 - Lc11_3*Lc7_3 - Lc11_4*Lc7_4 - Lc11_5*Lc7_5 - Lc11_6*Lc7_6);
-    const float Lc12_7 = Lci7*(Ps[89] - Lc12_0*Lc7_0 - Lc12_1*Lc7_1 - Lc12_2*Lc7_2 - Lc12_3*Lc7_3 - Lc12_4*Lc7_4 - Lc12_5*Lc7_5 - Lc12_6*Lc7_6);
-    const float Lc13_7 = Lci7*(Ps[90] - Lc13_0*Lc7_0 - Lc13_1*Lc7_1 - Lc13_2*Lc7_2 - Lc13_3*Lc7_3 - Lc13_4*Lc7_4 - Lc13_5*Lc7_5 - Lc13_6*Lc7_6);
-    const float Lc14_7 = Lci7*(Ps[91] - Lc14_0*Lc7_0 - Lc14_1*Lc7_1 - Lc14_2*Lc7_2 - Lc14_3*Lc7_3 - Lc14_4*Lc7_4 - Lc14_5*Lc7_5 - Lc14_6*Lc7_6);
-    const float Lcd8 = Ps[92] - (Lc8_0*Lc8_0) - (Lc8_1*Lc8_1) - (Lc8_2*Lc8_2) - (Lc8_3*Lc8_3) - (Lc8_4*Lc8_4) - (Lc8_5*Lc8_5) - (Lc8_6*Lc8_6) - (Lc8_7*Lc8_7);
-    if (!isfinite(Lcd8)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd8 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc8_8 = sqrtf(Lcd8);
-    const float Lci8 = (1.0F/Lc8_8);
-    const float Lc9_8 = Lci8*(Ps[93] - Lc8_0*Lc9_0 - Lc8_1*Lc9_1 - Lc8_2*Lc9_2 - Lc8_3*Lc9_3 - Lc8_4*Lc9_4 - Lc8_5*Lc9_5 - Lc8_6*Lc9_6 - Lc8_7*Lc9_7);
-    const float Lc10_8 = Lci8*(Ps[94] - Lc10_0*Lc8_0 - Lc10_1*Lc8_1 - Lc10_2*Lc8_2 - Lc10_3*Lc8_3 - Lc10_4*Lc8_4 - Lc10_5*Lc8_5 - Lc10_6*Lc8_6 - Lc10_7*Lc8_7);
-    const float Lc11_8 = Lci8*(Ps[95] - Lc11_0*Lc8_0 - Lc11_1*Lc8_1 - Lc11_2*Lc8_2 - Lc11_3*Lc8_3 - Lc11_4*Lc8_4 - Lc11_5*Lc8_5 - Lc11_6*Lc8_6 - Lc11_7*Lc8_7);
-    const float Lc12_8 = Lci8*(Ps[96] - Lc12_0*Lc8_0 - Lc12_1*Lc8_1 - Lc12_2*Lc8_2 - Lc12_3*Lc8_3 - Lc12_4*Lc8_4 - Lc12_5*Lc8_5 - Lc12_6*Lc8_6 - Lc12_7*Lc8_7);
-    const float Lc13_8 = Lci8*(Ps[97] - Lc13_0*Lc8_0 - Lc13_1*Lc8_1 - Lc13_2*Lc8_2 - Lc13_3*Lc8_3 - Lc13_4*Lc8_4 - Lc13_5*Lc8_5 - Lc13_6*Lc8_6 - Lc13_7*Lc8_7);
-    const float Lc14_8 = Lci8*(Ps[98] - Lc14_0*Lc8_0 - Lc14_1*Lc8_1 - Lc14_2*Lc8_2 - Lc14_3*Lc8_3 - Lc14_4*Lc8_4 - Lc14_5*Lc8_5 - Lc14_6*Lc8_6 - Lc14_7*Lc8_7);
-    const float Lcd9 = Ps[99] - (Lc9_0*Lc9_0) - (Lc9_1*Lc9_1) - (Lc9_2*Lc9_2) - (Lc9_3*Lc9_3) - (Lc9_4*Lc9_4) - (Lc9_5*Lc9_5) - (Lc9_6*Lc9_6) - (Lc9_7*Lc9_7) - (Lc9_8*Lc9_8);
-    if (!isfinite(Lcd9)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd9 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc9_9 = sqrtf(Lcd9);
-    const float Lci9 = (1.0F/Lc9_9);
-    const float Lc10_9 = Lci9*(Ps[100] - Lc10_0*Lc9_0 - Lc10_1*Lc9_1 - Lc10_2*Lc9_2 - Lc10_3*Lc9_3 - Lc10_4*Lc9_4 - Lc10_5*Lc9_5 - Lc10_6*Lc9_6 - Lc10_7*Lc9_7 - Lc10_8*Lc9_8);
-    const float Lc11_9 = Lci9*(Ps[101] - Lc11_0*Lc9_0 - Lc11_1*Lc9_1 - Lc11_2*Lc9_2 - Lc11_3*Lc9_3 - Lc11_4*Lc9_4 - Lc11_5*Lc9_5 - Lc11_6*Lc9_6 - Lc11_7*Lc9_7 - Lc11_8*Lc9_8);
-    const float Lc12_9 = Lci9*(Ps[102] - Lc12_0*Lc9_0 - Lc12_1*Lc9_1 - Lc12_2*Lc9_2 - Lc12_3*Lc9_3 - Lc12_4*Lc9_4 - Lc12_5*Lc9_5 - Lc12_6*Lc9_6 - Lc12_7*Lc9_7 - Lc12_8*Lc9_8);
-    const float Lc13_9 = Lci9*(Ps[103] - Lc13_0*Lc9_0 - Lc13_1*Lc9_1 - Lc13_2*Lc9_2 - Lc13_3*Lc9_3 - Lc13_4*Lc9_4 - Lc13_5*Lc9_5 - Lc13_6*Lc9_6 - Lc13_7*Lc9_7 - Lc13_8*Lc9_8);
-    const float Lc14_9 = Lci9*(Ps[104] - Lc14_0*Lc9_0 - Lc14_1*Lc9_1 - Lc14_2*Lc9_2 - Lc14_3*Lc9_3 - Lc14_4*Lc9_4 - Lc14_5*Lc9_5 - Lc14_6*Lc9_6 - Lc14_7*Lc9_7 - Lc14_8*Lc9_8);
-    const float Lcd10 = Ps[105] - (Lc10_0*Lc10_0) - (Lc10_1*Lc10_1) - (Lc10_2*Lc10_2) - (Lc10_3*Lc10_3) - (Lc10_4*Lc10_4) - (Lc10_5*Lc10_5) - (Lc10_6*Lc10_6) - (Lc10_7*Lc10_7) - (Lc10_8*Lc10_8) - (Lc10_9*Lc10_9);
-    if (!isfinite(Lcd10)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd10 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc10_10 = sqrtf(Lcd10);
-    const float Lci10 = (1.0F/Lc10_10);
-    const float Lc11_10 = Lci10*(Ps[106] - Lc10_0*Lc11_0 - Lc10_1*Lc11_1 - Lc10_2*Lc11_2 - Lc10_3*Lc11_3 - Lc10_4*Lc11_4 - Lc10_5*Lc11_5 - Lc10_6*Lc11_6 - Lc10_7*Lc11_7 - Lc10_8*Lc11_8 - Lc10_9*Lc11_9);
-    const float Lc12_10 = Lci10*(Ps[107] - Lc10_0*Lc12_0 - Lc10_1*Lc12_1 - Lc10_2*Lc12_2 - Lc10_3*Lc12_3 - Lc10_4*Lc12_4 - Lc10_5*Lc12_5 - Lc10_6*Lc12_6 - Lc10_7*Lc12_7 - Lc10_8*Lc12_8 - Lc10_9*Lc12_9);
-    const float Lc13_10 = Lci10*(Ps[108] - Lc10_0*Lc13_0 - Lc10_1*Lc13_1 - Lc10_2*Lc13_2 - Lc10_3*Lc13_3 - Lc10_4*Lc13_4 - Lc10_5*Lc13_5 - Lc10_6*Lc13_6 - Lc10_7*Lc13_7 - Lc10_8*Lc13_8 - Lc10_9*Lc13_9);
-    const float Lc14_10 = Lci10*(Ps[109] - Lc10_0*Lc14_0 - Lc10_1*Lc14_1 - Lc10_2*Lc14_2 - Lc10_3*Lc14_3 - Lc10_4*Lc14_4 - Lc10_5*Lc14_5 - Lc10_6*Lc14_6 - Lc10_7*Lc14_7 - Lc10_8*Lc14_8 - Lc10_9*Lc14_9);
-    const float Lcd11 = Ps[110] - (Lc11_0*Lc11_0) - (Lc11_1*Lc11_1) - (Lc11_10*Lc11_10) - (Lc11_2*Lc11_2) - (Lc11_3*Lc11_3) - (Lc11_4*Lc11_4) - (Lc11_5*Lc11_5) - (Lc11_6*Lc11_6) - (Lc11_7*Lc11_7) - (Lc11_8*Lc11_8) - (Lc11_9*Lc11_9);
-    if (!isfinite(Lcd11)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd11 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc11_11 = sqrtf(Lcd11);
-    const float Lci11 = (1.0F/Lc11_11);
-    const float Lc12_11 = Lci11*(Ps[111] - Lc11_0*Lc12_0 - Lc11_1*Lc12_1 - Lc11_10*Lc12_10 - Lc11_2*Lc12_2 - Lc11_3*Lc12_3 - Lc11_4*Lc12_4 - Lc11_5*Lc12_5 - Lc11_6*Lc12_6 - Lc11_7*Lc12_7 - Lc11_8*Lc12_8 - Lc11_9*Lc12_9);
-    const float Lc13_11 = Lci11*(Ps[112] - Lc11_0*Lc13_0 - Lc11_1*Lc13_1 - Lc11_10*Lc13_10 - Lc11_2*Lc13_2 - Lc11_3*Lc13_3 - Lc11_4*Lc13_4 - Lc11_5*Lc13_5 - Lc11_6*Lc13_6 - Lc11_7*Lc13_7 - Lc11_8*Lc13_8 - Lc11_9*Lc13_9);
-    const float Lc14_11 = Lci11*(Ps[113] - Lc11_0*Lc14_0 - Lc11_1*Lc14_1 - Lc11_10*Lc14_10 - Lc11_2*Lc14_2 - Lc11_3*Lc14_3 - Lc11_4*Lc14_4 - Lc11_5*Lc14_5 - Lc11_6*Lc14_6 - Lc11_7*Lc14_7 - Lc11_8*Lc14_8 - Lc11_9*Lc14_9);
-    const float Lcd12 = Ps[114] - (Lc12_0*Lc12_0) - (Lc12_1*Lc12_1) - (Lc12_10*Lc12_10) - (Lc12_11*Lc12_11) - (Lc12_2*Lc12_2) - (Lc12_3*Lc12_3) - (Lc12_4*Lc12_4) - (Lc12_5*Lc12_5) - (Lc12_6*Lc12_6) - (Lc12_7*Lc12_7) - (Lc12_8*Lc12_8) - (Lc12_9*Lc12_9);
-    if (!isfinite(Lcd12)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd12 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc12_12 = sqrtf(Lcd12);
-    const float Lci12 = (1.0F/Lc12_12);
-    const float Lc13_12 = Lci12*(Ps[115] - Lc12_0*Lc13_0 - Lc12_1*Lc13_1 - Lc12_10*Lc13_10 - Lc12_11*Lc13_11 - Lc12_2*Lc13_2 - Lc12_3*Lc13_3 - Lc12_4*Lc13_4 - Lc12_5*Lc13_5 - Lc12_6*Lc13_6 - Lc12_7*Lc13_7 - Lc12_8*Lc13_8 - Lc12_9*Lc13_9);
-    const float Lc14_12 = Lci12*(Ps[116] - Lc12_0*Lc14_0 - Lc12_1*Lc14_1 - Lc12_10*Lc14_10 - Lc12_11*Lc14_11 - Lc12_2*Lc14_2 - Lc12_3*Lc14_3 - Lc12_4*Lc14_4 - Lc12_5*Lc14_5 - Lc12_6*Lc14_6 - Lc12_7*Lc14_7 - Lc12_8*Lc14_8 - Lc12_9*Lc14_9);
-    const float Lcd13 = Ps[117] - (Lc13_0*Lc13_0) - (Lc13_1*Lc13_1) - (Lc13_10*Lc13_10) - (Lc13_11*Lc13_11) - (Lc13_12*Lc13_12) - (Lc13_2*Lc13_2) - (Lc13_3*Lc13_3) - (Lc13_4*Lc13_4) - (Lc13_5*Lc13_5) - (Lc13_6*Lc13_6) - (Lc13_7*Lc13_7) - (Lc13_8*Lc13_8) - (Lc13_9*Lc13_9);
-    if (!isfinite(Lcd13)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd13 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc13_13 = sqrtf(Lcd13);
-    const float Lci13 = (1.0F/Lc13_13);
-    const float Lc14_13 = Lci13*(Ps[118] - Lc13_0*Lc14_0 - Lc13_1*Lc14_1 - Lc13_10*Lc14_10 - Lc13_11*Lc14_11 - Lc13_12*Lc14_12 - Lc13_2*Lc14_2 - Lc13_3*Lc14_3 - Lc13_4*Lc14_4 - Lc13_5*Lc14_5 - Lc13_6*Lc14_6 - Lc13_7*Lc14_7 - Lc13_8*Lc14_8 - Lc13_9*Lc14_9);
-    const float Lcd14 = Ps[119] - (Lc14_0*Lc14_0) - (Lc14_1*Lc14_1) - (Lc14_10*Lc14_10) - (Lc14_11*Lc14_11) - (Lc14_12*Lc14_12) - (Lc14_13*Lc14_13) - (Lc14_2*Lc14_2) - (Lc14_3*Lc14_3) - (Lc14_4*Lc14_4) - (Lc14_5*Lc14_5) - (Lc14_6*Lc14_6) - (Lc14_7*Lc14_7) - (Lc14_8*Lc14_8) - (Lc14_9*Lc14_9);
-    if (!isfinite(Lcd14)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd14 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
+    {
+        const int st = nav_ekf_commit_pd(Ps);  /* commit only a positive definite P */
+        if (st != NAV_EKF_OK) {
+            return st;
+        }
+    }
 
     if (!isfinite(nis)) {
         return NAV_EKF_NON_FINITE;
@@ -2925,186 +2388,12 @@ int nav_ekf_update_mag_heading_nis(nav_ekf_t *s, const float *z, float *nis_out)
     if (!nav_ekf_finite(xs, 15u) || !nav_ekf_finite(Ps, 120u)) {
         return NAV_EKF_NON_FINITE;
     }
-    /* commit only a positive definite P: the pivots of its Cholesky factorization, unrolled
-       (a positive diagonal is not enough) */
-    const float Lcd0 = Ps[0];
-    if (!isfinite(Lcd0)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd0 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc0_0 = sqrtf(Lcd0);
-    const float Lci0 = (1.0F/Lc0_0);
-    const float Lc1_0 = Lci0*Ps[1];
-    const float Lc2_0 = Lci0*Ps[2];
-    const float Lc3_0 = Lci0*Ps[3];
-    const float Lc4_0 = Lci0*Ps[4];
-    const float Lc5_0 = Lci0*Ps[5];
-    const float Lc6_0 = Lci0*Ps[6];
-    const float Lc7_0 = Lci0*Ps[7];
-    const float Lc8_0 = Lci0*Ps[8];
-    const float Lc9_0 = Lci0*Ps[9];
-    const float Lc10_0 = Lci0*Ps[10];
-    const float Lc11_0 = Lci0*Ps[11];
-    const float Lc12_0 = Lci0*Ps[12];
-    const float Lc13_0 = Lci0*Ps[13];
-    const float Lc14_0 = Lci0*Ps[14];
-    const float Lcd1 = Ps[15] - (Lc1_0*Lc1_0);
-    if (!isfinite(Lcd1)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd1 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc1_1 = sqrtf(Lcd1);
-    const float Lci1 = (1.0F/Lc1_1);
-    const float Lc2_1 = Lci1*(Ps[16] - Lc1_0*Lc2_0);
-    const float Lc3_1 = Lci1*(Ps[17] - Lc1_0*Lc3_0);
-    const float Lc4_1 = Lci1*(Ps[18] - Lc1_0*Lc4_0);
-    const float Lc5_1 = Lci1*(Ps[19] - Lc1_0*Lc5_0);
-    const float Lc6_1 = Lci1*(Ps[20] - Lc1_0*Lc6_0);
-    const float Lc7_1 = Lci1*(Ps[21] - Lc1_0*Lc7_0);
-    const float Lc8_1 = Lci1*(Ps[22] - Lc1_0*Lc8_0);
-    const float Lc9_1 = Lci1*(Ps[23] - Lc1_0*Lc9_0);
-    const float Lc10_1 = Lci1*(Ps[24] - Lc10_0*Lc1_0);
-    const float Lc11_1 = Lci1*(Ps[25] - Lc11_0*Lc1_0);
-    const float Lc12_1 = Lci1*(Ps[26] - Lc12_0*Lc1_0);
-    const float Lc13_1 = Lci1*(Ps[27] - Lc13_0*Lc1_0);
-    const float Lc14_1 = Lci1*(Ps[28] - Lc14_0*Lc1_0);
-    const float Lcd2 = Ps[29] - (Lc2_0*Lc2_0) - (Lc2_1*Lc2_1);
-    if (!isfinite(Lcd2)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd2 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc2_2 = sqrtf(Lcd2);
-    const float Lci2 = (1.0F/Lc2_2);
-    const float Lc3_2 = Lci2*(Ps[30] - Lc2_0*Lc3_0 - Lc2_1*Lc3_1);
-    const float Lc4_2 = Lci2*(Ps[31] - Lc2_0*Lc4_0 - Lc2_1*Lc4_1);
-    const float Lc5_2 = Lci2*(Ps[32] - Lc2_0*Lc5_0 - Lc2_1*Lc5_1);
-    const float Lc6_2 = Lci2*(Ps[33] - Lc2_0*Lc6_0 - Lc2_1*Lc6_1);
-    const float Lc7_2 = Lci2*(Ps[34] - Lc2_0*Lc7_0 - Lc2_1*Lc7_1);
-    const float Lc8_2 = Lci2*(Ps[35] - Lc2_0*Lc8_0 - Lc2_1*Lc8_1);
-    const float Lc9_2 = Lci2*(Ps[36] - Lc2_0*Lc9_0 - Lc2_1*Lc9_1);
-    const float Lc10_2 = Lci2*(Ps[37] - Lc10_0*Lc2_0 - Lc10_1*Lc2_1);
-    const float Lc11_2 = Lci2*(Ps[38] - Lc11_0*Lc2_0 - Lc11_1*Lc2_1);
-    const float Lc12_2 = Lci2*(Ps[39] - Lc12_0*Lc2_0 - Lc12_1*Lc2_1);
-    const float Lc13_2 = Lci2*(Ps[40] - Lc13_0*Lc2_0 - Lc13_1*Lc2_1);
-    const float Lc14_2 = Lci2*(Ps[41] - Lc14_0*Lc2_0 - Lc14_1*Lc2_1);
-    const float Lcd3 = Ps[42] - (Lc3_0*Lc3_0) - (Lc3_1*Lc3_1) - (Lc3_2*Lc3_2);
-    if (!isfinite(Lcd3)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd3 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc3_3 = sqrtf(Lcd3);
-    const float Lci3 = (1.0F/Lc3_3);
-    const float Lc4_3 = Lci3*(Ps[43] - Lc3_0*Lc4_0 - Lc3_1*Lc4_1 - Lc3_2*Lc4_2);
-    const float Lc5_3 = Lci3*(Ps[44] - Lc3_0*Lc5_0 - Lc3_1*Lc5_1 - Lc3_2*Lc5_2);
-    const float Lc6_3 = Lci3*(Ps[45] - Lc3_0*Lc6_0 - Lc3_1*Lc6_1 - Lc3_2*Lc6_2);
-    const float Lc7_3 = Lci3*(Ps[46] - Lc3_0*Lc7_0 - Lc3_1*Lc7_1 - Lc3_2*Lc7_2);
-    const float Lc8_3 = Lci3*(Ps[47] - Lc3_0*Lc8_0 - Lc3_1*Lc8_1 - Lc3_2*Lc8_2);
-    const float Lc9_3 = Lci3*(Ps[48] - Lc3_0*Lc9_0 - Lc3_1*Lc9_1 - Lc3_2*Lc9_2);
-    const float Lc10_3 = Lci3*(Ps[49] - Lc10_0*Lc3_0 - Lc10_1*Lc3_1 - Lc10_2*Lc3_2);
-    const float Lc11_3 = Lci3*(Ps[50] - Lc11_0*Lc3_0 - Lc11_1*Lc3_1 - Lc11_2*Lc3_2);
-    const float Lc12_3 = Lci3*(Ps[51] - Lc12_0*Lc3_0 - Lc12_1*Lc3_1 - Lc12_2*Lc3_2);
-    const float Lc13_3 = Lci3*(Ps[52] - Lc13_0*Lc3_0 - Lc13_1*Lc3_1 - Lc13_2*Lc3_2);
-    const float Lc14_3 = Lci3*(Ps[53] - Lc14_0*Lc3_0 - Lc14_1*Lc3_1 - Lc14_2*Lc3_2);
-    const float Lcd4 = Ps[54] - (Lc4_0*Lc4_0) - (Lc4_1*Lc4_1) - (Lc4_2*Lc4_2) - (Lc4_3*Lc4_3);
-    if (!isfinite(Lcd4)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd4 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc4_4 = sqrtf(Lcd4);
-    const float Lci4 = (1.0F/Lc4_4);
-    const float Lc5_4 = Lci4*(Ps[55] - Lc4_0*Lc5_0 - Lc4_1*Lc5_1 - Lc4_2*Lc5_2 - Lc4_3*Lc5_3);
-    const float Lc6_4 = Lci4*(Ps[56] - Lc4_0*Lc6_0 - Lc4_1*Lc6_1 - Lc4_2*Lc6_2 - Lc4_3*Lc6_3);
-    const float Lc7_4 = Lci4*(Ps[57] - Lc4_0*Lc7_0 - Lc4_1*Lc7_1 - Lc4_2*Lc7_2 - Lc4_3*Lc7_3);
-    const float Lc8_4 = Lci4*(Ps[58] - Lc4_0*Lc8_0 - Lc4_1*Lc8_1 - Lc4_2*Lc8_2 - Lc4_3*Lc8_3);
-    const float Lc9_4 = Lci4*(Ps[59] - Lc4_0*Lc9_0 - Lc4_1*Lc9_1 - Lc4_2*Lc9_2 - Lc4_3*Lc9_3);
-    const float Lc10_4 = Lci4*(Ps[60] - Lc10_0*Lc4_0 - Lc10_1*Lc4_1 - Lc10_2*Lc4_2 - Lc10_3*Lc4_3);
-    const float Lc11_4 = Lci4*(Ps[61] - Lc11_0*Lc4_0 - Lc11_1*Lc4_1 - Lc11_2*Lc4_2 - Lc11_3*Lc4_3);
-    const float Lc12_4 = Lci4*(Ps[62] - Lc12_0*Lc4_0 - Lc12_1*Lc4_1 - Lc12_2*Lc4_2 - Lc12_3*Lc4_3);
-    const float Lc13_4 = Lci4*(Ps[63] - Lc13_0*Lc4_0 - Lc13_1*Lc4_1 - Lc13_2*Lc4_2 - Lc13_3*Lc4_3);
-    const float Lc14_4 = Lci4*(Ps[64] - Lc14_0*Lc4_0 - Lc14_1*Lc4_1 - Lc14_2*Lc4_2 - Lc14_3*Lc4_3);
-    const float Lcd5 = Ps[65] - (Lc5_0*Lc5_0) - (Lc5_1*Lc5_1) - (Lc5_2*Lc5_2) - (Lc5_3*Lc5_3) - (Lc5_4*Lc5_4);
-    if (!isfinite(Lcd5)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd5 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc5_5 = sqrtf(Lcd5);
-    const float Lci5 = (1.0F/Lc5_5);
-    const float Lc6_5 = Lci5*(Ps[66] - Lc5_0*Lc6_0 - Lc5_1*Lc6_1 - Lc5_2*Lc6_2 - Lc5_3*Lc6_3 - Lc5_4*Lc6_4);
-    const float Lc7_5 = Lci5*(Ps[67] - Lc5_0*Lc7_0 - Lc5_1*Lc7_1 - Lc5_2*Lc7_2 - Lc5_3*Lc7_3 - Lc5_4*Lc7_4);
-    const float Lc8_5 = Lci5*(Ps[68] - Lc5_0*Lc8_0 - Lc5_1*Lc8_1 - Lc5_2*Lc8_2 - Lc5_3*Lc8_3 - Lc5_4*Lc8_4);
-    const float Lc9_5 = Lci5*(Ps[69] - Lc5_0*Lc9_0 - Lc5_1*Lc9_1 - Lc5_2*Lc9_2 - Lc5_3*Lc9_3 - Lc5_4*Lc9_4);
-    const float Lc10_5 = Lci5*(Ps[70] - Lc10_0*Lc5_0 - Lc10_1*Lc5_1 - Lc10_2*Lc5_2 - Lc10_3*Lc5_3 - Lc10_4*Lc5_4);
-    const float Lc11_5 = Lci5*(Ps[71] - Lc11_0*Lc5_0 - Lc11_1*Lc5_1 - Lc11_2*Lc5_2 - Lc11_3*Lc5_3 - Lc11_4*Lc5_4);
-    const float Lc12_5 = Lci5*(Ps[72] - Lc12_0*Lc5_0 - Lc12_1*Lc5_1 - Lc12_2*Lc5_2 - Lc12_3*Lc5_3 - Lc12_4*Lc5_4);
-    const float Lc13_5 = Lci5*(Ps[73] - Lc13_0*Lc5_0 - Lc13_1*Lc5_1 - Lc13_2*Lc5_2 - Lc13_3*Lc5_3 - Lc13_4*Lc5_4);
-    const float Lc14_5 = Lci5*(Ps[74] - Lc14_0*Lc5_0 - Lc14_1*Lc5_1 - Lc14_2*Lc5_2 - Lc14_3*Lc5_3 - Lc14_4*Lc5_4);
-    const float Lcd6 = Ps[75] - (Lc6_0*Lc6_0) - (Lc6_1*Lc6_1) - (Lc6_2*Lc6_2) - (Lc6_3*Lc6_3) - (Lc6_4*Lc6_4) - (Lc6_5*Lc6_5);
-    if (!isfinite(Lcd6)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd6 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc6_6 = sqrtf(Lcd6);
-    const float Lci6 = (1.0F/Lc6_6);
-    const float Lc7_6 = Lci6*(Ps[76] - Lc6_0*Lc7_0 - Lc6_1*Lc7_1 - Lc6_2*Lc7_2 - Lc6_3*Lc7_3 - Lc6_4*Lc7_4 - Lc6_5*Lc7_5);
-    const float Lc8_6 = Lci6*(Ps[77] - Lc6_0*Lc8_0 - Lc6_1*Lc8_1 - Lc6_2*Lc8_2 - Lc6_3*Lc8_3 - Lc6_4*Lc8_4 - Lc6_5*Lc8_5);
-    const float Lc9_6 = Lci6*(Ps[78] - Lc6_0*Lc9_0 - Lc6_1*Lc9_1 - Lc6_2*Lc9_2 - Lc6_3*Lc9_3 - Lc6_4*Lc9_4 - Lc6_5*Lc9_5);
-    const float Lc10_6 = Lci6*(Ps[79] - Lc10_0*Lc6_0 - Lc10_1*Lc6_1 - Lc10_2*Lc6_2 - Lc10_3*Lc6_3 - Lc10_4*Lc6_4 - Lc10_5*Lc6_5);
-    const float Lc11_6 = Lci6*(Ps[80] - Lc11_0*Lc6_0 - Lc11_1*Lc6_1 - Lc11_2*Lc6_2 - Lc11_3*Lc6_3 - Lc11_4*Lc6_4 - Lc11_5*Lc6_5);
-    const float Lc12_6 = Lci6*(Ps[81] - Lc12_0*Lc6_0 - Lc12_1*Lc6_1 - Lc12_2*Lc6_2 - Lc12_3*Lc6_3 - Lc12_4*Lc6_4 - Lc12_5*Lc6_5);
-    const float Lc13_6 = Lci6*(Ps[82] - Lc13_0*Lc6_0 - Lc13_1*Lc6_1 - Lc13_2*Lc6_2 - Lc13_3*Lc6_3 - Lc13_4*Lc6_4 - Lc13_5*Lc6_5);
-    const float Lc14_6 = Lci6*(Ps[83] - Lc14_0*Lc6_0 - Lc14_1*Lc6_1 - Lc14_2*Lc6_2 - Lc14_3*Lc6_3 - Lc14_4*Lc6_4 - Lc14_5*Lc6_5);
-    const float Lcd7 = Ps[84] - (Lc7_0*Lc7_0) - (Lc7_1*Lc7_1) - (Lc7_2*Lc7_2) - (Lc7_3*Lc7_3) - (Lc7_4*Lc7_4) - (Lc7_5*Lc7_5) - (Lc7_6*Lc7_6);
-    if (!isfinite(Lcd7)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd7 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc7_7 = sqrtf(Lcd7);
-    const float Lci7 = (1.0F/Lc7_7);
-    const float Lc8_7 = Lci7*(Ps[85] - Lc7_0*Lc8_0 - Lc7_1*Lc8_1 - Lc7_2*Lc8_2 - Lc7_3*Lc8_3 - Lc7_4*Lc8_4 - Lc7_5*Lc8_5 - Lc7_6*Lc8_6);
-    const float Lc9_7 = Lci7*(Ps[86] - Lc7_0*Lc9_0 - Lc7_1*Lc9_1 - Lc7_2*Lc9_2 - Lc7_3*Lc9_3 - Lc7_4*Lc9_4 - Lc7_5*Lc9_5 - Lc7_6*Lc9_6);
-    const float Lc10_7 = Lci7*(Ps[87] - Lc10_0*Lc7_0 - Lc10_1*Lc7_1 - Lc10_2*Lc7_2 - Lc10_3*Lc7_3 - Lc10_4*Lc7_4 - Lc10_5*Lc7_5 - Lc10_6*Lc7_6);
-    const float Lc11_7 = Lci7*(Ps[88] - Lc11_0*Lc7_0 - Lc11_1*Lc7_1 - Lc11_2*Lc7_2 - Lc11_3*Lc7_3 - Lc11_4*Lc7_4 - Lc11_5*Lc7_5 - Lc11_6*Lc7_6);
-    const float Lc12_7 = Lci7*(Ps[89] - Lc12_0*Lc7_0 - Lc12_1*Lc7_1 - Lc12_2*Lc7_2 - Lc12_3*Lc7_3 - Lc12_4*Lc7_4 - Lc12_5*Lc7_5 - Lc12_6*Lc7_6);
-    const float Lc13_7 = Lci7*(Ps[90] - Lc13_0*Lc7_0 - Lc13_1*Lc7_1 - Lc13_2*Lc7_2 - Lc13_3*Lc7_3 - Lc13_4*Lc7_4 - Lc13_5*Lc7_5 - Lc13_6*Lc7_6);
-    const float Lc14_7 = Lci7*(Ps[91] - Lc14_0*Lc7_0 - Lc14_1*Lc7_1 - Lc14_2*Lc7_2 - Lc14_3*Lc7_3 - Lc14_4*Lc7_4 - Lc14_5*Lc7_5 - Lc14_6*Lc7_6);
-    const float Lcd8 = Ps[92] - (Lc8_0*Lc8_0) - (Lc8_1*Lc8_1) - (Lc8_2*Lc8_2) - (Lc8_3*Lc8_3) - (Lc8_4*Lc8_4) - (Lc8_5*Lc8_5) - (Lc8_6*Lc8_6) - (Lc8_7*Lc8_7);
-    if (!isfinite(Lcd8)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd8 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc8_8 = sqrtf(Lcd8);
-    const float Lci8 = (1.0F/Lc8_8);
-    const float Lc9_8 = Lci8*(Ps[93] - Lc8_0*Lc9_0 - Lc8_1*Lc9_1 - Lc8_2*Lc9_2 - Lc8_3*Lc9_3 - Lc8_4*Lc9_4 - Lc8_5*Lc9_5 - Lc8_6*Lc9_6 - Lc8_7*Lc9_7);
-    const float Lc10_8 = Lci8*(Ps[94] - Lc10_0*Lc8_0 - Lc10_1*Lc8_1 - Lc10_2*Lc8_2 - Lc10_3*Lc8_3 - Lc10_4*Lc8_4 - Lc10_5*Lc8_5 - Lc10_6*Lc8_6 - Lc10_7*Lc8_7);
-    const float Lc11_8 = Lci8*(Ps[95] - Lc11_0*Lc8_0 - Lc11_1*Lc8_1 - Lc11_2*Lc8_2 - Lc11_3*Lc8_3 - Lc11_4*Lc8_4 - Lc11_5*Lc8_5 - Lc11_6*Lc8_6 - Lc11_7*Lc8_7);
-    const float Lc12_8 = Lci8*(Ps[96] - Lc12_0*Lc8_0 - Lc12_1*Lc8_1 - Lc12_2*Lc8_2 - Lc12_3*Lc8_3 - Lc12_4*Lc8_4 - Lc12_5*Lc8_5 - Lc12_6*Lc8_6 - Lc12_7*Lc8_7);
-    const float Lc13_8 = Lci8*(Ps[97] - Lc13_0*Lc8_0 - Lc13_1*Lc8_1 - Lc13_2*Lc8_2 - Lc13_3*Lc8_3 - Lc13_4*Lc8_4 - Lc13_5*Lc8_5 - Lc13_6*Lc8_6 - Lc13_7*Lc8_7);
-    const float Lc14_8 = Lci8*(Ps[98] - Lc14_0*Lc8_0 - Lc14_1*Lc8_1 - Lc14_2*Lc8_2 - Lc14_3*Lc8_3 - Lc14_4*Lc8_4 - Lc14_5*Lc8_5 - Lc14_6*Lc8_6 - Lc14_7*Lc8_7);
-    const float Lcd9 = Ps[99] - (Lc9_0*Lc9_0) - (Lc9_1*Lc9_1) - (Lc9_2*Lc9_2) - (Lc9_3*Lc9_3) - (Lc9_4*Lc9_4) - (Lc9_5*Lc9_5) - (Lc9_6*Lc9_6) - (Lc9_7*Lc9_7) - (Lc9_8*Lc9_8);
-    if (!isfinite(Lcd9)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd9 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc9_9 = sqrtf(Lcd9);
-    const float Lci9 = (1.0F/Lc9_9);
-    const float Lc10_9 = Lci9*(Ps[100] - Lc10_0*Lc9_0 - Lc10_1*Lc9_1 - Lc10_2*Lc9_2 - Lc10_3*Lc9_3 - Lc10_4*Lc9_4 - Lc10_5*Lc9_5 - Lc10_6*Lc9_6 - Lc10_7*Lc9_7 - Lc10_8*Lc9_8);
-    const float Lc11_9 = Lci9*(Ps[101] - Lc11_0*Lc9_0 - Lc11_1*Lc9_1 - Lc11_2*Lc9_2 - Lc11_3*Lc9_3 - Lc11_4*Lc9_4 - Lc11_5*Lc9_5 - Lc11_6*Lc9_6 - Lc11_7*Lc9_7 - Lc11_8*Lc9_8);
-    const float Lc12_9 = Lci9*(Ps[102] - Lc12_0*Lc9_0 - Lc12_1*Lc9_1 - Lc12_2*Lc9_2 - Lc12_3*Lc9_3 - Lc12_4*Lc9_4 - Lc12_5*Lc9_5 - Lc12_6*Lc9_6 - Lc12_7*Lc9_7 - Lc12_8*Lc9_8);
-    const float Lc13_9 = Lci9*(Ps[103] - Lc13_0*Lc9_0 - Lc13_1*Lc9_1 - Lc13_2*Lc9_2 - Lc13_3*Lc9_3 - Lc13_4*Lc9_4 - Lc13_5*Lc9_5 - Lc13_6*Lc9_6 - Lc13_7*Lc9_7 - Lc13_8*Lc9_8);
-    const float Lc14_9 = Lci9*(Ps[104] - Lc14_0*Lc9_0 - Lc14_1*Lc9_1 - Lc14_2*Lc9_2 - Lc14_3*Lc9_3 - Lc14_4*Lc9_4 - Lc14_5*Lc9_5 - Lc14_6*Lc9_6 - Lc14_7*Lc9_7 - Lc14_8*Lc9_8);
-    const float Lcd10 = Ps[105] - (Lc10_0*Lc10_0) - (Lc10_1*Lc10_1) - (Lc10_2*Lc10_2) - (Lc10_3*Lc10_3) - (Lc10_4*Lc10_4) - (Lc10_5*Lc10_5) - (Lc10_6*Lc10_6) - (Lc10_7*Lc10_7) - (Lc10_8*Lc10_8) - (Lc10_9*Lc10_9);
-    if (!isfinite(Lcd10)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd10 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc10_10 = sqrtf(Lcd10);
-    const float Lci10 = (1.0F/Lc10_10);
-    const float Lc11_10 = Lci10*(Ps[106] - Lc10_0*Lc11_0 - Lc10_1*Lc11_1 - Lc10_2*Lc11_2 - Lc10_3*Lc11_3 - Lc10_4*Lc11_4 - Lc10_5*Lc11_5 - Lc10_6*Lc11_6 - Lc10_7*Lc11_7 - Lc10_8*Lc11_8 - Lc10_9*Lc11_9);
-    const float Lc12_10 = Lci10*(Ps[107] - Lc10_0*Lc12_0 - Lc10_1*Lc12_1 - Lc10_2*Lc12_2 - Lc10_3*Lc12_3 - Lc10_4*Lc12_4 - Lc10_5*Lc12_5 - Lc10_6*Lc12_6 - Lc10_7*Lc12_7 - Lc10_8*Lc12_8 - Lc10_9*Lc12_9);
-    const float Lc13_10 = Lci10*(Ps[108] - Lc10_0*Lc13_0 - Lc10_1*Lc13_1 - Lc10_2*Lc13_2 - Lc10_3*Lc13_3 - Lc10_4*Lc13_4 - Lc10_5*Lc13_5 - Lc10_6*Lc13_6 - Lc10_7*Lc13_7 - Lc10_8*Lc13_8 - Lc10_9*Lc13_9);
-    const float Lc14_10 = Lci10*(Ps[109] - Lc10_0*Lc14_0 - Lc10_1*Lc14_1 - Lc10_2*Lc14_2 - Lc10_3*Lc14_3 - Lc10_4*Lc14_4 - Lc10_5*Lc14_5 - Lc10_6*Lc14_6 - Lc10_7*Lc14_7 - Lc10_8*Lc14_8 - Lc10_9*Lc14_9);
-    const float Lcd11 = Ps[110] - (Lc11_0*Lc11_0) - (Lc11_1*Lc11_1) - (Lc11_10*Lc11_10) - (Lc11_2*Lc11_2) - (Lc11_3*Lc11_3) - (Lc11_4*Lc11_4) - (Lc11_5*Lc11_5) - (Lc11_6*Lc11_6) - (Lc11_7*Lc11_7) - (Lc11_8*Lc11_8) - (Lc11_9*Lc11_9);
-    if (!isfinite(Lcd11)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd11 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc11_11 = sqrtf(Lcd11);
-    const float Lci11 = (1.0F/Lc11_11);
-    const float Lc12_11 = Lci11*(Ps[111] - Lc11_0*Lc12_0 - Lc11_1*Lc12_1 - Lc11_10*Lc12_10 - Lc11_2*Lc12_2 - Lc11_3*Lc12_3 - Lc11_4*Lc12_4 - Lc11_5*Lc12_5 - Lc11_6*Lc12_6 - Lc11_7*Lc12_7 - Lc11_8*Lc12_8 - Lc11_9*Lc12_9);
-    const float Lc13_11 = Lci11*(Ps[112] - Lc11_0*Lc13_0 - Lc11_1*Lc13_1 - Lc11_10*Lc13_10 - Lc11_2*Lc13_2 - Lc11_3*Lc13_3 - Lc11_4*Lc13_4 - Lc11_5*Lc13_5 - Lc11_6*Lc13_6 - Lc11_7*Lc13_7 - Lc11_8*Lc13_8 - Lc11_9*Lc13_9);
-    const float Lc14_11 = Lci11*(Ps[113] - Lc11_0*Lc14_0 - Lc11_1*Lc14_1 - Lc11_10*Lc14_10 - Lc11_2*Lc14_2 - Lc11_3*Lc14_3 - Lc11_4*Lc14_4 - Lc11_5*Lc14_5 - Lc11_6*Lc14_6 - Lc11_7*Lc14_7 - Lc11_8*Lc14_8 - Lc11_9*Lc14_9);
-    const float Lcd12 = Ps[114] - (Lc12_0*Lc12_0) - (Lc12_1*Lc12_1) - (Lc12_10*Lc12_10) - (Lc12_11*Lc12_11) - (Lc12_2*Lc12_2) - (Lc12_3*Lc12_3) - (Lc12_4*Lc12_4) - (Lc12_5*Lc12_5) - (Lc12_6*Lc12_6) - (Lc12_7*Lc12_7) - (Lc12_8*Lc12_8) - (Lc12_9*Lc12_9);
-    if (!isfinite(Lcd12)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd12 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc12_12 = sqrtf(Lcd12);
-    const float Lci12 = (1.0F/Lc12_12);
-    const float Lc13_12 = Lci12*(Ps[115] - Lc12_0*Lc13_0 - Lc12_1*Lc13_1 - Lc12_10*Lc13_10 - Lc12_11*Lc13_11 - Lc12_2*Lc13_2 - Lc12_3*Lc13_3 - Lc12_4*Lc13_4 - Lc12_5*Lc13_5 - Lc12_6*Lc13_6 - Lc12_7*Lc13_7 - Lc12_8*Lc13_8 - Lc12_9*Lc13_9);
-    const float Lc14_12 = Lci12*(Ps[116] - Lc12_0*Lc14_0 - Lc12_1*Lc14_1 - Lc12_10*Lc14_10 - Lc12_11*Lc14_11 - Lc12_2*Lc14_2 - Lc12_3*Lc14_3 - Lc12_4*Lc14_4 - Lc12_5*Lc14_5 - Lc12_6*Lc14_6 - Lc12_7*Lc14_7 - Lc12_8*Lc14_8 - Lc12_9*Lc14_9);
-    const float Lcd13 = Ps[117] - (Lc13_0*Lc13_0) - (Lc13_1*Lc13_1) - (Lc13_10*Lc13_10) - (Lc13_11*Lc13_11) - (Lc13_12*Lc13_12) - (Lc13_2*Lc13_2) - (Lc13_3*Lc13_3) - (Lc13_4*Lc13_4) - (Lc13_5*Lc13_5) - (Lc13_6*Lc13_6) - (Lc13_7*Lc13_7) - (Lc13_8*Lc13_8) - (Lc13_9*Lc13_9);
-    if (!isfinite(Lcd13)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd13 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc13_13 = sqrtf(Lcd13);
-    const float Lci13 = (1.0F/Lc13_13);
-    const float Lc14_13 = Lci13*(Ps[118] - Lc13_0*Lc14_0 - Lc13_1*Lc14_1 - Lc13_10*Lc14_10 - Lc13_11*Lc14_11 - Lc13_12*Lc14_12 - Lc13_2*Lc14_2 - Lc13_3*Lc14_3 - Lc13_4*Lc14_4 - Lc13_5*Lc14_5 - Lc13_6*Lc14_6 - Lc13_7*Lc14_7 - Lc13_8*Lc14_8 - Lc13_9*Lc14_9);
-    const float Lcd14 = Ps[119] - (Lc14_0*Lc14_0) - (Lc14_1*Lc14_1) - (Lc14_10*Lc14_10) - (Lc14_11*Lc14_11) - (Lc14_12*Lc14_12) - (Lc14_13*Lc14_13) - (Lc14_2*Lc14_2) - (Lc14_3*Lc14_3) - (Lc14_4*Lc14_4) - (Lc14_5*Lc14_5) - (Lc14_6*Lc14_6) - (Lc14_7*Lc14_7) - (Lc14_8*Lc14_8) - (Lc14_9*Lc14_9);
-    if (!isfinite(Lcd14)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd14 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
+    {
+        const int st = nav_ekf_commit_pd(Ps);  /* commit only a positive definite P */
+        if (st != NAV_EKF_OK) {
+            return st;
+        }
+    }
 
     if (!isfinite(nis)) {
         return NAV_EKF_NON_FINITE;

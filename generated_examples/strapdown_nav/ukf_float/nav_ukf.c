@@ -37,36 +37,9 @@ static size_t nav_ukf_pk(size_t i, size_t j)
     return (i <= j) ? (i * 15u - (i * (i + 1u)) / 2u + j) : (j * 15u - (j * (j + 1u)) / 2u + i);
 }
 
-/* 1 when the packed symmetric matrix is positive definite (Cholesky succeeds), else 0. */
-static int nav_ukf_posdef(const float *P)
-{
-    float U[120];
-    size_t i, j, k;
-    memcpy(U, P, sizeof U);
-    for (j = 0; j < 15u; ++j) {
-        float d = U[nav_ukf_pk(j, j)];
-        for (k = 0; k < j; ++k) {
-            d -= U[nav_ukf_pk(k, j)] * U[nav_ukf_pk(k, j)];
-        }
-        if (!(d > 0.0F) || !isfinite(d)) {
-            return 0;
-        }
-        d = sqrtf(d);
-        U[nav_ukf_pk(j, j)] = d;
-        for (i = j + 1u; i < 15u; ++i) {
-            float e = U[nav_ukf_pk(j, i)];
-            for (k = 0; k < j; ++k) {
-                e -= U[nav_ukf_pk(k, j)] * U[nav_ukf_pk(k, i)];
-            }
-            U[nav_ukf_pk(j, i)] = e / d;
-        }
-    }
-    return 1;
-}
-
 /* OK when the packed covariance P is positive definite (every pivot of its Cholesky factorization
-   finite and > 0; a positive diagonal is not enough), else the refusal code. Unrolled, and one
-   copy serves every commit. */
+   finite and > 0; a positive diagonal is not enough), else the refusal code. Unrolled; one copy
+   serves set_state and every commit. */
 static int nav_ukf_commit_pd(const float *P)
 {
     const float Lcd0 = P[0];
@@ -706,7 +679,7 @@ int nav_ukf_set_state(nav_ukf_t *s, const float *x, const float *P)
     if (!nav_ukf_finite(x, 15u) || !nav_ukf_finite(P, 120u)) {
         return NAV_UKF_BAD_INPUT;
     }
-    if (!nav_ukf_posdef(P)) {
+    if (nav_ukf_commit_pd(P) != NAV_UKF_OK) {
         return NAV_UKF_NOT_POSITIVE_DEFINITE;
     }
     memcpy(xn, x, sizeof xn);
