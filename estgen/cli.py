@@ -37,6 +37,9 @@ def _add_filter_args(p: argparse.ArgumentParser, precision_default: str) -> None
     p.add_argument("--alpha", type=float, default=None, help="UKF: sigma-point spread alpha (default 1)")
     p.add_argument("--beta", type=float, default=None, help="UKF: prior-distribution parameter beta (default 2)")
     p.add_argument("--kappa", type=float, default=None, help="UKF: secondary scaling kappa (default 0)")
+    p.add_argument("--commit-check", choices=("cholesky", "diagonal"), default="cholesky",
+                   help="what a new P must pass before predict/update commit it: a Cholesky "
+                        "factorization (default) or a positive diagonal only (cheaper, less safe)")
     p.add_argument("--gate", action="append", default=[], metavar="SENSOR=P",
                    help="chi-square innovation gate for SENSOR with probability P, e.g. range1=0.997 (repeatable)")
 
@@ -87,7 +90,8 @@ def _cmd_generate(args: argparse.Namespace) -> int:
 
     spec = load_model(args.model)
     t0 = time.perf_counter()
-    gen = generate(spec, filter=args.filter, precision=args.precision, gates=_gates(args), **_ukf_options(args))
+    gen = generate(spec, filter=args.filter, precision=args.precision, gates=_gates(args),
+                   commit_check=args.commit_check, **_ukf_options(args))
     elapsed = time.perf_counter() - t0
     if args.check:
         stale = stale_files(gen.files, args.out)
@@ -113,7 +117,7 @@ def _cmd_verify(args: argparse.Namespace) -> int:
     from .verify import format_result, verify
 
     res = verify(args.model, filter=args.filter, precision=args.precision, steps=args.steps, seed=args.seed,
-                 dt=args.dt, gates=_gates(args), **_ukf_options(args))
+                 dt=args.dt, gates=_gates(args), commit_check=args.commit_check, **_ukf_options(args))
     print(format_result(res))
     if args.json:
         with open(args.json, "w", encoding="utf-8") as fh:

@@ -267,7 +267,12 @@ class Generated:
     source: str = ""
 
 
-def _common_context(spec: ModelSpec, filt: str, precision: str) -> Dict[str, Any]:
+#: what predict and update verify before they commit a new P (see the README): "cholesky" factorizes
+#: it (every pivot finite and > 0); "diagonal" checks the diagonal only (cheaper, less safe)
+COMMIT_CHECKS = ("cholesky", "diagonal")
+
+
+def _common_context(spec: ModelSpec, filt: str, precision: str, commit_check: str = "cholesky") -> Dict[str, Any]:
     if precision not in PRECISIONS:
         raise ModelError(f"unknown precision {precision!r}; use 'float' or 'double'")
     for s in spec.sensors:
@@ -297,8 +302,18 @@ def _common_context(spec: ModelSpec, filt: str, precision: str) -> Dict[str, Any
             "angles": [i for i, a in enumerate(s.angles) if a],
         })
     statuses = [{"name": st.name, "value": int(st), "advice": ADVICE[st]} for st in Status]
+    if commit_check not in COMMIT_CHECKS:
+        raise ModelError(f"unknown commit check {commit_check!r}; use one of {', '.join(COMMIT_CHECKS)}")
     commit_ops = OpCount()
-    commit_pd = em.lines(pivot_check(n, "P"), commit_ops)
+    full_ops = OpCount()
+    commit_pd = em.lines(pivot_check(n, "P"), full_ops)
+    commit_diag: List[str] = []
+    if commit_check == "diagonal":
+        diag = [Stmt("check", f"P[{packed_index(i, i, n)}]", sp.Symbol(f"P[{packed_index(i, i, n)}]"))
+                for i in range(n)]
+        commit_diag = em.lines(diag, commit_ops)
+    else:
+        commit_ops = full_ops
     return {
         "version": __version__,
         "model_file": safe_filename(spec.source),
@@ -330,6 +345,9 @@ def _common_context(spec: ModelSpec, filt: str, precision: str) -> Dict[str, Any
         "emitter": em,
         # the static commit check every call (and set_state) runs; its cost counts in each call
         "commit_pd": commit_pd,
+        "commit_diag": commit_diag,
+        "commit_check": commit_check,
+        "commit_fn": "commit_diag" if commit_check == "diagonal" else "commit_pd",
         "commit_ops": commit_ops.as_dict(),
     }
 
@@ -370,10 +388,10 @@ def _derived(spec: ModelSpec, key: str, derive: Any) -> Any:
     return code
 
 
-def generate_ekf(spec: ModelSpec, precision: str = "float") -> Generated:
+def generate_ekf(spec: ModelSpec, precision: str = "float", commit_check: str = "cholesky") -> Generated:
     """Generate the EKF's header and source for ``spec``."""
     check_filter_support(spec, "ekf")
-    ctx = _common_context(spec, "ekf", precision)
+    ctx = _common_context(spec, "ekf", precision, commit_check)
     em: Emitter = ctx["emitter"]
     code = _derived(spec, "ekf", derive_ekf)
     ops: Dict[str, Dict[str, int]] = {}
@@ -397,16 +415,17 @@ def generate_ekf(spec: ModelSpec, precision: str = "float") -> Generated:
 
 
 def generate(spec: ModelSpec, filter: str = "ekf", precision: str = "float",
-             gates: Optional[Dict[str, float]] = None, **options: Any) -> Generated:
+             gates: Optional[Dict[str, float]] = None, commit_check: str = "cholesky", **options: Any) -> Generated:
     """Generate C for ``spec``. ``filter`` is "ekf" or "ukf"; UKF options: alpha, beta, kappa.
-    ``gates`` sets chi-square gate probabilities per sensor, overriding the model file's."""
+    ``gates`` sets chi-square gate probabilities per sensor, overriding the model file's.
+    ``commit_check`` is "cholesky" (default) or "diagonal": what a new P must pass before commit."""
     spec = with_gates(spec, gates)
     if filter == "ekf":
         if options:
             raise ModelError(f"options {sorted(options)} apply to the UKF only")
-        return generate_ekf(spec, precision)
+        return generate_ekf(spec, precision, commit_check)
     if filter == "ukf":
         from .emit_ukf import generate_ukf
 
-        return generate_ukf(spec, precision, **options)
+        return generate_ukf(spec, precision, commit_check=commit_check, **options)
     raise ModelError(f"unknown filter {filter!r}; use 'ekf' or 'ukf'")

@@ -24,7 +24,8 @@ def _stack_bytes(stmts_decls: int, arrays: int, size_real: int) -> int:
     return (stmts_decls + arrays) * size_real
 
 
-def generate_ukf(spec: ModelSpec, precision: str = "float", **options: Any) -> Generated:
+def generate_ukf(spec: ModelSpec, precision: str = "float", commit_check: str = "cholesky",
+                 **options: Any) -> Generated:
     """Generate the UKF's header and source for ``spec``.
 
     ``options``: alpha (> 0), beta, kappa with alpha^2 (n + kappa) > 0. The op counts in
@@ -34,7 +35,7 @@ def generate_ukf(spec: ModelSpec, precision: str = "float", **options: Any) -> G
     """
     check_filter_support(spec, "ukf")
     wts = check_options(spec.n, dict(options))
-    ctx = _common_context(spec, "ukf", precision)
+    ctx = _common_context(spec, "ukf", precision, commit_check)
     em: Emitter = ctx["emitter"]
     code = derive_ukf(spec, wts)
     size_real = 4 if precision == "float" else 8

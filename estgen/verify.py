@@ -64,13 +64,15 @@ class VerifyResult:
 
 
 def verify(model: Any, filter: str = "ekf", precision: str = "double", steps: int = 200, seed: int = 0,
-           dt: Optional[float] = None, gates: Optional[Dict[str, float]] = None, **options: Any) -> VerifyResult:
+           dt: Optional[float] = None, gates: Optional[Dict[str, float]] = None, commit_check: str = "cholesky",
+           **options: Any) -> VerifyResult:
     """Run C and reference side by side on one simulated scenario and compare every step.
-    ``gates`` sets chi-square gate probabilities per sensor for both filters."""
+    ``gates`` sets chi-square gate probabilities per sensor for both filters; ``commit_check``
+    is the C's (see :func:`estgen.emit.generate`)."""
     spec: ModelSpec = with_gates(as_spec(model), gates)
     check_filter_support(spec, filter)
     scen = make_scenario(spec, steps, seed, dt=dt)
-    c = build(spec, filter=filter, precision=precision, **options)
+    c = build(spec, filter=filter, precision=precision, commit_check=commit_check, **options)
     r = reference(spec, filter=filter, **options)
     if precision == "float":
         # the C starts from x0 and P0 rounded to float; give the reference the same start

@@ -222,3 +222,27 @@ def test_example_main_builds_and_runs(example, filt, precision, tmp_path):
 def test_every_example_has_a_main():
     for ex in {c[0] for c in CONFIGS}:
         assert any(c[0] == ex for c in _main_configs()), ex
+
+
+@pytest.mark.parametrize("filt", ["ekf", "ukf"])
+def test_diagonal_commit_check_variant(filt, tmp_path):
+    """--commit-check diagonal: compiles clean, matches the reference, and really skips the
+    factorization (an indefinite P with a positive diagonal is committed by predict there,
+    refused by the default build) -- the trade-off the README documents."""
+    spec = estgen.load_model(example_model("linear_cart"))
+    gen = generate(spec, filter=filt, precision="float", commit_check="diagonal")
+    src = _write(gen, tmp_path)
+    proc = subprocess.run(["gcc", *STRICT_FLAGS, "-O2", "-c", src, "-o", str(tmp_path / "f.o")],
+                          capture_output=True, text=True)
+    assert proc.returncode == 0, proc.stderr
+    assert "Commit check: a new P is committed when its diagonal" in gen.header
+    res = verify(spec, filter=filt, precision="double", steps=150, seed=3, commit_check="diagonal")
+    assert res.ok, res.as_dict()
+    if filt == "ekf":
+        # |corr(pos, vel)| > 1: indefinite, yet every diagonal entry is positive
+        P_bad = np.array([[1.0, 2.0, 0.0], [2.0, 1.0, 0.0], [0.0, 0.0, 1.0]])
+        for check, expect in (("diagonal", 0), ("cholesky", int(estgen.Status.NOT_POSITIVE_DEFINITE))):
+            c = estgen.build(spec, filter="ekf", precision="double", commit_check=check)
+            packed = [P_bad[i, j] for i in range(3) for j in range(i, 3)]
+            c._ffi.memmove(c._s.P, c._ffi.new("double[]", packed), 8 * len(packed))  # bypass set_state
+            assert c.predict([0.0], 1e-6) == expect, check

@@ -128,7 +128,7 @@ int cell_ekf_predict(cell_ekf_t *s, const float *u, float dt)
         return CELL_EKF_NON_FINITE;
     }
     {
-        const int st = cell_ekf_commit_pd(Pn);  /* commit only a positive definite P */
+        const int st = cell_ekf_commit_pd(Pn);  /* the commit check on the new P */
         if (st != CELL_EKF_OK) {
             return st;
         }
@@ -189,7 +189,7 @@ int cell_ekf_update_voltage_nis(cell_ekf_t *s, const float *z, float *nis_out)
         return CELL_EKF_NON_FINITE;
     }
     {
-        const int st = cell_ekf_commit_pd(Ps);  /* commit only a positive definite P */
+        const int st = cell_ekf_commit_pd(Ps);  /* the commit check on the new P */
         if (st != CELL_EKF_OK) {
             return st;
         }

@@ -136,7 +136,6 @@ int cell_ukf_predict(cell_ukf_t *s, const double *u, double dt)
 {
     double xn[3];
     double Pn[6];
-    double Lf[6];
     const double *x = s->x;
     const double *P = s->P;
     const cell_ukf_par_t *par = &s->par;
@@ -151,6 +150,7 @@ int cell_ukf_predict(cell_ukf_t *s, const double *u, double dt)
     }
 
     {
+        double Lf[6];  /* only the check that P is positive definite: the code below is linear in x */
         const int st = cell_ukf_factor(P, Lf);
         if (st != CELL_UKF_OK) {
             return st;

@@ -33,6 +33,9 @@
  *   [0] i [A]
  * Packed covariance: entry (i, j), i <= j, is P[i*3 - i*(i-1)/2 + (j-i)].
  *
+ * Commit check: a new P is committed only when its Cholesky factorization succeeds
+ * (every pivot finite and > 0).
+ *
  * Memory: sizeof(cell_ukf_t) = 52 bytes. No heap, no global mutable state, no
  * recursion, fixed loop bounds; scratch lives on the stack of each call.
  * Reentrant: distinct structs may be used from distinct threads.

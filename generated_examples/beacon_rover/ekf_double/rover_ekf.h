@@ -38,6 +38,9 @@
  *   [1] rate [rad/s]
  * Packed covariance: entry (i, j), i <= j, is P[i*4 - i*(i-1)/2 + (j-i)].
  *
+ * Commit check: a new P is committed only when its Cholesky factorization succeeds
+ * (every pivot finite and > 0).
+ *
  * Memory: sizeof(rover_ekf_t) = 176 bytes. No heap, no global mutable state, no
  * recursion, fixed loop bounds; scratch lives on the stack of each call.
  * Reentrant: distinct structs may be used from distinct threads.

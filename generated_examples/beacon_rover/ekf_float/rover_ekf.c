@@ -180,7 +180,7 @@ int rover_ekf_predict(rover_ekf_t *s, const float *u, float dt)
         return ROVER_EKF_NON_FINITE;
     }
     {
-        const int st = rover_ekf_commit_pd(Pn);  /* commit only a positive definite P */
+        const int st = rover_ekf_commit_pd(Pn);  /* the commit check on the new P */
         if (st != ROVER_EKF_OK) {
             return st;
         }
@@ -253,7 +253,7 @@ int rover_ekf_update_range_a_nis(rover_ekf_t *s, const float *z, float *nis_out)
         return ROVER_EKF_NON_FINITE;
     }
     {
-        const int st = rover_ekf_commit_pd(Ps);  /* commit only a positive definite P */
+        const int st = rover_ekf_commit_pd(Ps);  /* the commit check on the new P */
         if (st != ROVER_EKF_OK) {
             return st;
         }
@@ -338,7 +338,7 @@ int rover_ekf_update_range_b_nis(rover_ekf_t *s, const float *z, float *nis_out)
         return ROVER_EKF_NON_FINITE;
     }
     {
-        const int st = rover_ekf_commit_pd(Ps);  /* commit only a positive definite P */
+        const int st = rover_ekf_commit_pd(Ps);  /* the commit check on the new P */
         if (st != ROVER_EKF_OK) {
             return st;
         }
@@ -464,7 +464,7 @@ int rover_ekf_update_range_cd_nis(rover_ekf_t *s, const float *z, float *nis_out
         return ROVER_EKF_NON_FINITE;
     }
     {
-        const int st = rover_ekf_commit_pd(Ps);  /* commit only a positive definite P */
+        const int st = rover_ekf_commit_pd(Ps);  /* the commit check on the new P */
         if (st != ROVER_EKF_OK) {
             return st;
         }
@@ -543,7 +543,7 @@ int rover_ekf_update_compass_nis(rover_ekf_t *s, const float *z, float *nis_out)
         return ROVER_EKF_NON_FINITE;
     }
     {
-        const int st = rover_ekf_commit_pd(Ps);  /* commit only a positive definite P */
+        const int st = rover_ekf_commit_pd(Ps);  /* the commit check on the new P */
         if (st != ROVER_EKF_OK) {
             return st;
         }

@@ -137,7 +137,7 @@ int cart_ekf_predict(cart_ekf_t *s, const float *u, float dt)
         return CART_EKF_NON_FINITE;
     }
     {
-        const int st = cart_ekf_commit_pd(Pn);  /* commit only a positive definite P */
+        const int st = cart_ekf_commit_pd(Pn);  /* the commit check on the new P */
         if (st != CART_EKF_OK) {
             return st;
         }
@@ -194,7 +194,7 @@ int cart_ekf_update_encoder_nis(cart_ekf_t *s, const float *z, float *nis_out)
         return CART_EKF_NON_FINITE;
     }
     {
-        const int st = cart_ekf_commit_pd(Ps);  /* commit only a positive definite P */
+        const int st = cart_ekf_commit_pd(Ps);  /* the commit check on the new P */
         if (st != CART_EKF_OK) {
             return st;
         }
@@ -263,7 +263,7 @@ int cart_ekf_update_speed_nis(cart_ekf_t *s, const float *z, float *nis_out)
         return CART_EKF_NON_FINITE;
     }
     {
-        const int st = cart_ekf_commit_pd(Ps);  /* commit only a positive definite P */
+        const int st = cart_ekf_commit_pd(Ps);  /* the commit check on the new P */
         if (st != CART_EKF_OK) {
             return st;
         }

@@ -34,6 +34,9 @@
  *   [0] force [N]
  * Packed covariance: entry (i, j), i <= j, is P[i*3 - i*(i-1)/2 + (j-i)].
  *
+ * Commit check: a new P is committed only when its Cholesky factorization succeeds
+ * (every pivot finite and > 0).
+ *
  * Memory: sizeof(cart_ekf_t) = 48 bytes. No heap, no global mutable state, no
  * recursion, fixed loop bounds; scratch lives on the stack of each call.
  * Reentrant: distinct structs may be used from distinct threads.

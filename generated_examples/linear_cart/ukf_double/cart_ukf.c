@@ -135,7 +135,6 @@ int cart_ukf_predict(cart_ukf_t *s, const double *u, double dt)
 {
     double xn[3];
     double Pn[6];
-    double Lf[6];
     const double *x = s->x;
     const double *P = s->P;
     const cart_ukf_par_t *par = &s->par;
@@ -150,6 +149,7 @@ int cart_ukf_predict(cart_ukf_t *s, const double *u, double dt)
     }
 
     {
+        double Lf[6];  /* only the check that P is positive definite: the code below is linear in x */
         const int st = cart_ukf_factor(P, Lf);
         if (st != CART_UKF_OK) {
             return st;
@@ -200,7 +200,6 @@ int cart_ukf_update_encoder_nis(cart_ukf_t *s, const double *z, double *nis_out)
 {
     double xs[3];
     double Ps[6];
-    double Lf[6];
     double y[1];
     double nis;
     const double *x = s->x;
@@ -210,6 +209,7 @@ int cart_ukf_update_encoder_nis(cart_ukf_t *s, const double *z, double *nis_out)
     }
 
     {
+        double Lf[6];  /* only the check that P is positive definite: the code below is linear in x */
         const int st = cart_ukf_factor(P, Lf);
         if (st != CART_UKF_OK) {
             return st;
@@ -266,7 +266,6 @@ int cart_ukf_update_speed_nis(cart_ukf_t *s, const double *z, double *nis_out)
 {
     double xs[3];
     double Ps[6];
-    double Lf[6];
     double y[1];
     double nis;
     const double *x = s->x;
@@ -276,6 +275,7 @@ int cart_ukf_update_speed_nis(cart_ukf_t *s, const double *z, double *nis_out)
     }
 
     {
+        double Lf[6];  /* only the check that P is positive definite: the code below is linear in x */
         const int st = cart_ukf_factor(P, Lf);
         if (st != CART_UKF_OK) {
             return st;

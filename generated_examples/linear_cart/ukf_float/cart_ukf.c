@@ -135,7 +135,6 @@ int cart_ukf_predict(cart_ukf_t *s, const float *u, float dt)
 {
     float xn[3];
     float Pn[6];
-    float Lf[6];
     const float *x = s->x;
     const float *P = s->P;
     const cart_ukf_par_t *par = &s->par;
@@ -150,6 +149,7 @@ int cart_ukf_predict(cart_ukf_t *s, const float *u, float dt)
     }
 
     {
+        float Lf[6];  /* only the check that P is positive definite: the code below is linear in x */
         const int st = cart_ukf_factor(P, Lf);
         if (st != CART_UKF_OK) {
             return st;
@@ -200,7 +200,6 @@ int cart_ukf_update_encoder_nis(cart_ukf_t *s, const float *z, float *nis_out)
 {
     float xs[3];
     float Ps[6];
-    float Lf[6];
     float y[1];
     float nis;
     const float *x = s->x;
@@ -210,6 +209,7 @@ int cart_ukf_update_encoder_nis(cart_ukf_t *s, const float *z, float *nis_out)
     }
 
     {
+        float Lf[6];  /* only the check that P is positive definite: the code below is linear in x */
         const int st = cart_ukf_factor(P, Lf);
         if (st != CART_UKF_OK) {
             return st;
@@ -266,7 +266,6 @@ int cart_ukf_update_speed_nis(cart_ukf_t *s, const float *z, float *nis_out)
 {
     float xs[3];
     float Ps[6];
-    float Lf[6];
     float y[1];
     float nis;
     const float *x = s->x;
@@ -276,6 +275,7 @@ int cart_ukf_update_speed_nis(cart_ukf_t *s, const float *z, float *nis_out)
     }
 
     {
+        float Lf[6];  /* only the check that P is positive definite: the code below is linear in x */
         const int st = cart_ukf_factor(P, Lf);
         if (st != CART_UKF_OK) {
             return st;

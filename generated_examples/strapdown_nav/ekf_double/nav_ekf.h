@@ -53,6 +53,9 @@
  *   [5] fz [m/s^2]
  * Packed covariance: entry (i, j), i <= j, is P[i*15 - i*(i-1)/2 + (j-i)].
  *
+ * Commit check: a new P is committed only when its Cholesky factorization succeeds
+ * (every pivot finite and > 0).
+ *
  * Memory: sizeof(nav_ekf_t) = 1088 bytes. No heap, no global mutable state, no
  * recursion, fixed loop bounds; scratch lives on the stack of each call.
  * Reentrant: distinct structs may be used from distinct threads.

@@ -716,7 +716,7 @@ int nav_ekf_predict(nav_ekf_t *s, const float *u, float dt)
         return NAV_EKF_NON_FINITE;
     }
     {
-        const int st = nav_ekf_commit_pd(Pn);  /* commit only a positive definite P */
+        const int st = nav_ekf_commit_pd(Pn);  /* the commit check on the new P */
         if (st != NAV_EKF_OK) {
             return st;
         }
@@ -1312,7 +1312,7 @@ int nav_ekf_update_gnss_pos_nis(nav_ekf_t *s, const float *z, float *nis_out)
         return NAV_EKF_NON_FINITE;
     }
     {
-        const int st = nav_ekf_commit_pd(Ps);  /* commit only a positive definite P */
+        const int st = nav_ekf_commit_pd(Ps);  /* the commit check on the new P */
         if (st != NAV_EKF_OK) {
             return st;
         }
@@ -1920,7 +1920,7 @@ int nav_ekf_update_gnss_vel_nis(nav_ekf_t *s, const float *z, float *nis_out)
         return NAV_EKF_NON_FINITE;
     }
     {
-        const int st = nav_ekf_commit_pd(Ps);  /* commit only a positive definite P */
+        const int st = nav_ekf_commit_pd(Ps);  /* the commit check on the new P */
         if (st != NAV_EKF_OK) {
             return st;
         }
@@ -2154,7 +2154,7 @@ int nav_ekf_update_baro_nis(nav_ekf_t *s, const float *z, float *nis_out)
         return NAV_EKF_NON_FINITE;
     }
     {
-        const int st = nav_ekf_commit_pd(Ps);  /* commit only a positive definite P */
+        const int st = nav_ekf_commit_pd(Ps);  /* the commit check on the new P */
         if (st != NAV_EKF_OK) {
             return st;
         }
@@ -2389,7 +2389,7 @@ int nav_ekf_update_mag_heading_nis(nav_ekf_t *s, const float *z, float *nis_out)
         return NAV_EKF_NON_FINITE;
     }
     {
-        const int st = nav_ekf_commit_pd(Ps);  /* commit only a positive definite P */
+        const int st = nav_ekf_commit_pd(Ps);  /* the commit check on the new P */
         if (st != NAV_EKF_OK) {
             return st;
         }

@@ -2045,7 +2045,6 @@ int nav_ukf_update_gnss_pos_nis(nav_ukf_t *s, const double *z, double *nis_out)
 {
     double xs[15];
     double Ps[120];
-    double Lf[120];
     double y[3];
     double nis;
     const double *x = s->x;
@@ -2055,6 +2054,7 @@ int nav_ukf_update_gnss_pos_nis(nav_ukf_t *s, const double *z, double *nis_out)
     }
 
     {
+        double Lf[120];  /* only the check that P is positive definite: the code below is linear in x */
         const int st = nav_ukf_factor(P, Lf);
         if (st != NAV_UKF_OK) {
             return st;
@@ -2303,7 +2303,6 @@ int nav_ukf_update_gnss_vel_nis(nav_ukf_t *s, const double *z, double *nis_out)
 {
     double xs[15];
     double Ps[120];
-    double Lf[120];
     double y[3];
     double nis;
     const double *x = s->x;
@@ -2313,6 +2312,7 @@ int nav_ukf_update_gnss_vel_nis(nav_ukf_t *s, const double *z, double *nis_out)
     }
 
     {
+        double Lf[120];  /* only the check that P is positive definite: the code below is linear in x */
         const int st = nav_ukf_factor(P, Lf);
         if (st != NAV_UKF_OK) {
             return st;
@@ -2561,7 +2561,6 @@ int nav_ukf_update_baro_nis(nav_ukf_t *s, const double *z, double *nis_out)
 {
     double xs[15];
     double Ps[120];
-    double Lf[120];
     double y[1];
     double nis;
     const double *x = s->x;
@@ -2571,6 +2570,7 @@ int nav_ukf_update_baro_nis(nav_ukf_t *s, const double *z, double *nis_out)
     }
 
     {
+        double Lf[120];  /* only the check that P is positive definite: the code below is linear in x */
         const int st = nav_ukf_factor(P, Lf);
         if (st != NAV_UKF_OK) {
             return st;

@@ -2045,7 +2045,6 @@ int nav_ukf_update_gnss_pos_nis(nav_ukf_t *s, const float *z, float *nis_out)
 {
     float xs[15];
     float Ps[120];
-    float Lf[120];
     float y[3];
     float nis;
     const float *x = s->x;
@@ -2055,6 +2054,7 @@ int nav_ukf_update_gnss_pos_nis(nav_ukf_t *s, const float *z, float *nis_out)
     }
 
     {
+        float Lf[120];  /* only the check that P is positive definite: the code below is linear in x */
         const int st = nav_ukf_factor(P, Lf);
         if (st != NAV_UKF_OK) {
             return st;
@@ -2303,7 +2303,6 @@ int nav_ukf_update_gnss_vel_nis(nav_ukf_t *s, const float *z, float *nis_out)
 {
     float xs[15];
     float Ps[120];
-    float Lf[120];
     float y[3];
     float nis;
     const float *x = s->x;
@@ -2313,6 +2312,7 @@ int nav_ukf_update_gnss_vel_nis(nav_ukf_t *s, const float *z, float *nis_out)
     }
 
     {
+        float Lf[120];  /* only the check that P is positive definite: the code below is linear in x */
         const int st = nav_ukf_factor(P, Lf);
         if (st != NAV_UKF_OK) {
             return st;
@@ -2561,7 +2561,6 @@ int nav_ukf_update_baro_nis(nav_ukf_t *s, const float *z, float *nis_out)
 {
     float xs[15];
     float Ps[120];
-    float Lf[120];
     float y[1];
     float nis;
     const float *x = s->x;
@@ -2571,6 +2570,7 @@ int nav_ukf_update_baro_nis(nav_ukf_t *s, const float *z, float *nis_out)
     }
 
     {
+        float Lf[120];  /* only the check that P is positive definite: the code below is linear in x */
         const int st = nav_ukf_factor(P, Lf);
         if (st != NAV_UKF_OK) {
             return st;

@@ -270,7 +270,6 @@ int valve_ukf_update_stem_nis(valve_ukf_t *s, const double *z, double *nis_out)
 {
     double xs[2];
     double Ps[3];
-    double Lf[3];
     double y[1];
     double nis;
     const double *x = s->x;
@@ -280,6 +279,7 @@ int valve_ukf_update_stem_nis(valve_ukf_t *s, const double *z, double *nis_out)
     }
 
     {
+        double Lf[3];  /* only the check that P is positive definite: the code below is linear in x */
         const int st = valve_ukf_factor(P, Lf);
         if (st != VALVE_UKF_OK) {
             return st;

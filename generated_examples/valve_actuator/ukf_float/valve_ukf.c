@@ -270,7 +270,6 @@ int valve_ukf_update_stem_nis(valve_ukf_t *s, const float *z, float *nis_out)
 {
     float xs[2];
     float Ps[3];
-    float Lf[3];
     float y[1];
     float nis;
     const float *x = s->x;
@@ -280,6 +279,7 @@ int valve_ukf_update_stem_nis(valve_ukf_t *s, const float *z, float *nis_out)
     }
 
     {
+        float Lf[3];  /* only the check that P is positive definite: the code below is linear in x */
         const int st = valve_ukf_factor(P, Lf);
         if (st != VALVE_UKF_OK) {
             return st;
