@@ -98,12 +98,16 @@ def model_list(quick: bool, work: Path) -> List[Tuple[str, str, Path]]:
     return out
 
 
+#: the generated C's commit check (--commit-check): "cholesky" is estgen's default
+COMMIT_CHECK = "cholesky"
+
+
 def timed_generate(path: Path, filt: str, precision: str) -> Tuple[Generated, float]:
     """Load the model and generate, from a cold sympy cache: what `estgen generate` costs."""
     clear_cache()
     t0 = time.perf_counter()
     spec = estgen.load_model(path)
-    gen = generate(spec, filter=filt, precision=precision)
+    gen = generate(spec, filter=filt, precision=precision, commit_check=COMMIT_CHECK)
     return gen, time.perf_counter() - t0
 
 
@@ -306,7 +310,11 @@ def main(argv: Optional[Sequence[str]] = None) -> int:
     ap.add_argument("--work", default=str(HERE / "_build"), help="build directory (default benchmarks/_build)")
     ap.add_argument("--filters", default="ekf,ukf", help="comma-separated filters (default ekf,ukf)")
     ap.add_argument("--root", default=str(ROOT), help="benchmark the estgen package found in this directory")
+    ap.add_argument("--commit-check", choices=("cholesky", "diagonal"), default="cholesky",
+                    help="the generated C's commit check (estgen generate --commit-check; default cholesky)")
     args = ap.parse_args(argv)
+    global COMMIT_CHECK
+    COMMIT_CHECK = args.commit_check
     work = Path(args.work).resolve()
     work.mkdir(parents=True, exist_ok=True)
     started = time.perf_counter()
