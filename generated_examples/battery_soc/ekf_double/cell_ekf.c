@@ -6,8 +6,6 @@
 #include <math.h>
 #include <string.h>
 
-#define CELL_EKF_PI 3.141592653589793
-#define CELL_EKF_TWO_PI 6.283185307179586
 
 static int cell_ekf_finite(const double *v, size_t len)
 {

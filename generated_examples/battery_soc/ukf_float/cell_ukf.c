@@ -6,8 +6,6 @@
 #include <math.h>
 #include <string.h>
 
-#define CELL_UKF_PI 3.141592653589793F
-#define CELL_UKF_TWO_PI 6.283185307179586F
 
 /* Scaled unscented transform, n = 3: lambda = 0.0F, gamma = sqrt(n + lambda). */
 #define CELL_UKF_WM0 0.0F

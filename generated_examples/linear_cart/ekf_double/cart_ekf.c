@@ -6,8 +6,6 @@
 #include <math.h>
 #include <string.h>
 
-#define CART_EKF_PI 3.141592653589793
-#define CART_EKF_TWO_PI 6.283185307179586
 
 static int cart_ekf_finite(const double *v, size_t len)
 {

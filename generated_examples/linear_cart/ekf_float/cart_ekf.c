@@ -6,8 +6,6 @@
 #include <math.h>
 #include <string.h>
 
-#define CART_EKF_PI 3.141592653589793F
-#define CART_EKF_TWO_PI 6.283185307179586F
 
 static int cart_ekf_finite(const float *v, size_t len)
 {

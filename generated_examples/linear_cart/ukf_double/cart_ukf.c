@@ -6,8 +6,6 @@
 #include <math.h>
 #include <string.h>
 
-#define CART_UKF_PI 3.141592653589793
-#define CART_UKF_TWO_PI 6.283185307179586
 
 /* Scaled unscented transform, n = 3: lambda = 0.0, gamma = sqrt(n + lambda). */
 #define CART_UKF_WM0 0.0
