@@ -67,7 +67,16 @@ WARNINGS: Tuple[str, ...] = (
 )
 
 #: The bare-metal replay project shipped with the package sources.
-FIRMWARE_DIR = Path(__file__).resolve().parent.parent / "generated_examples" / "firmware_qemu"
+def _firmware_dir() -> Path:
+    """The bare-metal replay project: generated_examples/firmware_qemu in a source checkout, the
+    copy shipped in the wheel (package estgen.firmware) in an installed estgen."""
+    src = Path(__file__).resolve().parent.parent / "generated_examples" / "firmware_qemu"
+    if (src / "Makefile").is_file():
+        return src
+    return Path(__file__).resolve().parent / "firmware"
+
+
+FIRMWARE_DIR = _firmware_dir()
 
 
 class ToolMissing(RuntimeError):
