@@ -12,7 +12,7 @@ import json
 import os
 import sys
 import time
-from typing import Callable, Dict, List, Optional, Sequence
+from typing import Dict, List, Optional, Sequence
 
 from ._version import __version__
 from .errors import ModelError

@@ -14,7 +14,7 @@ i <= j sits at ``i*n - i*(i-1)/2 + (j - i)``.
 from __future__ import annotations
 
 from dataclasses import dataclass, field
-from typing import Dict, Iterable, List, Optional, Sequence, Tuple
+from typing import Dict, Iterable, List, Sequence, Tuple
 
 import sympy as sp
 
@@ -22,7 +22,6 @@ from .model import ModelSpec, SensorSpec
 
 __all__ = [
     "Stmt",
-    "Names",
     "EkfPredictCode",
     "EkfUpdateCode",
     "EkfCode",
@@ -30,6 +29,7 @@ __all__ = [
     "packed_size",
     "derive_ekf",
     "model_block",
+    "angle_wraps",
     "c_names",
 ]
 
@@ -59,14 +59,6 @@ class Stmt:
     kind: str
     target: str
     expr: sp.Expr
-
-
-@dataclass(frozen=True)
-class Names:
-    """Maps the model's symbols to C-named symbols for one function."""
-
-    subs: Dict[sp.Symbol, sp.Symbol]
-    uses_par: bool = False
 
 
 def c_names(spec: ModelSpec, x_array: str = "x") -> Dict[sp.Symbol, sp.Symbol]:
@@ -149,10 +141,6 @@ class EkfCode:
     updates: List[EkfUpdateCode] = field(default_factory=list)
 
 
-def _jacobian(vec: sp.Matrix, xs: List[sp.Symbol]) -> sp.Matrix:
-    return vec.jacobian(xs)
-
-
 def derive_ekf_predict(spec: ModelSpec) -> EkfPredictCode:
     """x' = f(x, u, dt); P' = F P F' + Q with F = df/dx, in packed storage.
 
@@ -163,7 +151,7 @@ def derive_ekf_predict(spec: ModelSpec) -> EkfPredictCode:
     xs = spec.x_syms
     names = c_names(spec, "x")
     f = spec.f
-    F = _jacobian(f, xs)
+    F = f.jacobian(xs)
     outputs: List[Tuple[str, str, sp.Expr]] = []
     for i in range(n):
         outputs.append(("assign", f"xn[{i}]", f[i].xreplace(names)))
@@ -206,9 +194,7 @@ def derive_ekf_predict(spec: ModelSpec) -> EkfPredictCode:
         for j in range(i, n):
             e = sum((Aref[i, k] * Fm[j, k] for k in range(n) if Fm[j, k] != 0), sp.S.Zero) + Qm[(i, j)]
             stmts.append(Stmt("assign", f"Pn[{packed_index(i, j, n)}]", e))
-    for i, st in enumerate(spec.states):
-        if st.angle:
-            stmts.append(Stmt("wrap", f"xn[{i}]", sp.Symbol(f"xn[{i}]")))
+    stmts += angle_wraps(spec, "xn")
     uses_u = any(str(s).startswith("u[") for st in stmts for s in st.expr.free_symbols)
     return EkfPredictCode(stmts, _uses_params(stmts), uses_u)
 
@@ -217,7 +203,7 @@ def _h_block(spec: SensorSpec, mspec: ModelSpec) -> Tuple[List[Stmt], List[sp.Ex
     """h(x), H = dh/dx and R with shared subexpressions; h goes to hz[i]."""
     n, m = mspec.n, spec.m
     names = c_names(mspec, "x")
-    H = _jacobian(spec.h, mspec.x_syms)
+    H = spec.h.jacobian(mspec.x_syms)
     outputs: List[Tuple[str, str, sp.Expr]] = []
     for i in range(m):
         outputs.append(("value", f"hz{i}", spec.h[i].xreplace(names)))

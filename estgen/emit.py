@@ -24,7 +24,7 @@ from sympy.printing.c import C99CodePrinter
 
 from ._version import __version__
 from .chi2 import chi2_ppf
-from .derive import Stmt, derive_ekf, packed_index, packed_size
+from .derive import Stmt, angle_wraps, derive_ekf, packed_index, packed_size
 from .errors import ModelError
 from .model import ModelSpec, check_filter_support, with_gates
 from .status import ADVICE, Status
@@ -404,7 +404,7 @@ def generate_ekf(spec: ModelSpec, precision: str = "float", commit_check: str = 
     for uc, sctx in zip(code.updates, ctx["sensors"]):
         oc = OpCount()
         body = em.lines(uc.stmts, oc)
-        wraps = em.lines([Stmt("wrap", f"xs[{i}]", sp.Symbol(f"xs[{i}]")) for i in ctx["angle_states"]], oc)
+        wraps = em.lines(angle_wraps(spec, "xs"), oc)
         oc += OpCount(**ctx["commit_ops"])
         ops[f"update_{uc.sensor.name}"] = oc.as_dict()
         ups.append({**sctx, "lines": body + wraps, "uses_par": uc.uses_par, "w_size": uc.w_size,
