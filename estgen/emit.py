@@ -18,6 +18,7 @@ from functools import lru_cache
 from typing import Any, Dict, List, Optional, Sequence, Tuple
 
 import jinja2
+import numpy as np
 import sympy as sp
 from sympy.codegen.ast import float32, float64, real
 from sympy.printing.c import C99CodePrinter
@@ -35,25 +36,43 @@ PRECISIONS = ("float", "double")
 
 
 def c_literal(value: float, precision: str) -> str:
-    """A C floating literal that round-trips the Python float (shortest repr)."""
+    """The shortest C floating literal that round-trips in the target precision.
+
+    Double: Python's shortest repr of the float64. Float: the shortest decimal that reads back
+    as the same float32 (``4.0000000000000007e-10`` prints as ``4.0e-10F``), so a reviewer sees
+    the value the compiler stores. Positional between 1e-4 and 1e16, else scientific (Python's
+    repr rule); always with a '.' so it reads as a floating literal.
+    """
     v = float(value)
     if v != v or v in (float("inf"), float("-inf")):
         raise ValueError("non-finite literal")
+    if precision == "float":
+        if abs(v) > float(np.finfo(np.float32).max):
+            raise ValueError(f"{v!r} overflows float32")
+        f32 = np.float32(v)
+        if not np.isfinite(f32):
+            raise ValueError(f"{v!r} overflows float32")
+        mag = abs(float(f32))
+        if mag == 0.0 or 1e-4 <= mag < 1e16:
+            return np.format_float_positional(f32, unique=True, trim="0") + "F"
+        return np.format_float_scientific(f32, unique=True, trim="0") + "F"
     text = repr(v)
     if "e" not in text and "." not in text:
         text += ".0"
     if "e" in text and "." not in text.split("e")[0]:
         mant, ex = text.split("e")
         text = f"{mant}.0e{ex}"
-    return text + ("F" if precision == "float" else "")
+    return text
 
 
 class CPrinter(C99CodePrinter):
     """sympy's C99 printer, typed for float or double, with cheap integer powers and exact
     literals (no double constants in a float build, no pow() for squares)."""
 
-    def __init__(self, precision: str = "double") -> None:
+    def __init__(self, precision: str = "double", names: Optional[Dict[str, str]] = None) -> None:
         self.precision = precision
+        #: symbol name -> the C text printed for it (index names, renamed temporaries)
+        self.names: Dict[str, str] = dict(names or {})
         ftype = float32 if precision == "float" else float64
         # order="none": terms in sympy's own canonical argument order (deterministic, and far
         # cheaper than sorting every sum for printing)
@@ -61,6 +80,10 @@ class CPrinter(C99CodePrinter):
 
     def _lit(self, v: float) -> str:
         return c_literal(v, self.precision)
+
+    def _print_Symbol(self, expr: sp.Symbol) -> str:
+        name = self.names.get(expr.name)
+        return name if name is not None else super()._print_Symbol(expr)
 
     def _print_Float(self, expr: sp.Float) -> str:
         return self._lit(float(expr))
@@ -209,15 +232,44 @@ def template_env() -> jinja2.Environment:
     )
 
 
+def c_names_for(spec: ModelSpec, prefix: str) -> Dict[str, str]:
+    """How the emitted C spells the state and input elements derivation names by position, so
+    that a reviewer reads ``x[nav_ekf_ix_yaw]`` (the header's index enums) instead of ``x[8]``."""
+    out: Dict[str, str] = {}
+    for i, s in enumerate(spec.states):
+        for arr in ("x", "xn", "xs"):
+            out[f"{arr}[{i}]"] = f"{arr}[{prefix}_ix_{s.name}]"
+    for i, s in enumerate(spec.inputs):
+        out[f"u[{i}]"] = f"u[{prefix}_iu_{s.name}]"
+    return out
+
+
 class Emitter:
     """Renders statements of one filter/precision into C lines and tallies their cost."""
 
-    def __init__(self, prefix: str, precision: str) -> None:
+    def __init__(self, prefix: str, precision: str, names: Optional[Dict[str, str]] = None,
+                 reserved: Sequence[str] = ()) -> None:
         self.prefix = prefix
+        #: model names (parameters, states, inputs) a local temporary must not share, so that a
+        #: residual ``r0`` never sits beside ``par->r0``: such a temporary gets a ``_t`` suffix
+        self.reserved = frozenset(reserved)
         self.precision = precision
         self.real = "float" if precision == "float" else "double"
-        self.printer = CPrinter(precision)
+        self.printer = CPrinter(precision, names)
         self.upper = prefix.upper()
+
+    def target(self, name: str) -> str:
+        """The C spelling of a statement's target (see :func:`c_names_for`)."""
+        return self.printer.names.get(name, name)
+
+    def declare(self, name: str) -> str:
+        """The C name of a new local temporary (renamed when it shares a model name)."""
+        if name in self.reserved and name not in self.printer.names:
+            alias = name + "_t"
+            while alias in self.reserved:
+                alias += "_t"
+            self.printer.names[name] = alias
+        return self.target(name)
 
     def lit(self, v: float) -> str:
         return c_literal(v, self.precision)
@@ -231,9 +283,11 @@ class Emitter:
             if ops is not None:
                 ops += count_ops(st.expr)
             if st.kind == "decl":
-                out.append(f"const {self.real} {st.target} = {self.expr(st.expr)};")
+                out.append(f"const {self.real} {self.declare(st.target)} = {self.expr(st.expr)};")
             elif st.kind == "assign":
-                out.append(f"{st.target} = {self.expr(st.expr)};")
+                out.append(f"{self.target(st.target)} = {self.expr(st.expr)};")
+            elif st.kind == "comment":
+                out.append(f"/* {st.target} */")
             elif st.kind == "check":
                 v = self.expr(st.expr)
                 out.append(f"if (!isfinite({v})) {{ return {self.upper}_NON_FINITE; }}")
@@ -241,7 +295,7 @@ class Emitter:
                 if ops is not None:
                     ops.compare += 2
             elif st.kind == "wrap":
-                out.append(f"{st.target} = {self.prefix}_wrap({self.expr(st.expr)});")
+                out.append(f"{self.target(st.target)} = {self.prefix}_wrap({self.expr(st.expr)});")
                 if ops is not None:
                     ops.transcendental += 1
                     ops.add += 2
@@ -280,7 +334,8 @@ def _common_context(spec: ModelSpec, filt: str, precision: str, commit_check: st
             raise ModelError(f"sensor name {s.name!r} must not end in '_nis' (it would clash with a generated function)",
                              s.where)
     prefix = f"{spec.name}_{filt}"
-    em = Emitter(prefix, precision)
+    em = Emitter(prefix, precision, c_names_for(spec, prefix),
+                 [p.name for p in spec.params] + [s.name for s in spec.states] + [s.name for s in spec.inputs])
     n = spec.n
     np_ = packed_size(n)
     size_real = 4 if precision == "float" else 8

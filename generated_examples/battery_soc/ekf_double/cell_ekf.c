@@ -49,9 +49,9 @@ static int cell_ekf_commit_pd(const double *P)
 
 void cell_ekf_init(cell_ekf_t *s)
 {
-    s->x[0] = 0.6;
-    s->x[1] = 0.0;
-    s->x[2] = 0.0;
+    s->x[cell_ekf_ix_soc] = 0.6;
+    s->x[cell_ekf_ix_v_rc] = 0.0;
+    s->x[cell_ekf_ix_v_ohm] = 0.0;
     s->P[0] = 0.010000000000000002;
     s->P[1] = 0.0;
     s->P[2] = 0.0;
@@ -110,9 +110,9 @@ int cell_ekf_predict(cell_ekf_t *s, const double *u, double dt)
     }
 
     const double t0 = exp(-dt/(par->c1*par->r1));
-    xn[0] = x[0] - 0.0002777777777777778*dt*u[0]/par->capacity;
-    xn[1] = t0*x[1] + par->r1*u[0]*(1.0 - t0);
-    xn[2] = par->r0*u[0];
+    xn[cell_ekf_ix_soc] = x[cell_ekf_ix_soc] - 0.0002777777777777778*dt*u[cell_ekf_iu_i]/par->capacity;
+    xn[cell_ekf_ix_v_rc] = t0*x[cell_ekf_ix_v_rc] + par->r1*u[cell_ekf_iu_i]*(1.0 - t0);
+    xn[cell_ekf_ix_v_ohm] = par->r0*u[cell_ekf_iu_i];
     const double Q0_0 = 4.0000000000000007e-10*dt;
     const double Q1_1 = 2.5e-07*dt;
     const double A1_1 = P[3]*t0;
@@ -154,9 +154,9 @@ int cell_ekf_update_voltage_nis(cell_ekf_t *s, const double *z, double *nis_out)
 
     memcpy(xs, s->x, sizeof xs);
     memcpy(Ps, s->P, sizeof Ps);
-    const double t0 = exp(-15.0*x[0]);
-    const double t1 = exp(-12.0 + 12.0*x[0]);
-    const double hz0 = 3.4 - x[1] - x[2] + 0.72*x[0] + 0.08*t1 - 0.4*t0;
+    const double t0 = exp(-15.0*x[cell_ekf_ix_soc]);
+    const double t1 = exp(-12.0 + 12.0*x[cell_ekf_ix_soc]);
+    const double hz0 = 3.4 - x[cell_ekf_ix_v_rc] - x[cell_ekf_ix_v_ohm] + 0.72*x[cell_ekf_ix_soc] + 0.08*t1 - 0.4*t0;
     const double H0_0 = 0.72 + 6.0*t0 + 0.96*t1;
     y[0] = z[0] - hz0;
     W[0] = -Ps[1] - Ps[2] + H0_0*Ps[0];
@@ -166,17 +166,17 @@ int cell_ekf_update_voltage_nis(cell_ekf_t *s, const double *z, double *nis_out)
     if (!isfinite(s0)) { return CELL_EKF_NON_FINITE; }
     if (!(s0 > 0.0)) { return CELL_EKF_NOT_POSITIVE_DEFINITE; }
     const double is0 = (1.0/s0);
-    const double r0 = y[0];
-    nis = nis + is0*(r0*r0);
+    const double r0_t = y[0];
+    nis = nis + is0*(r0_t*r0_t);
     K[0] = W[0]*is0;
     K[1] = W[1]*is0;
     K[2] = W[2]*is0;
     V[0] = -W[0] + K[0]*s0;
     V[1] = -W[1] + K[1]*s0;
     V[2] = -W[2] + K[2]*s0;
-    xs[0] = xs[0] + K[0]*r0;
-    xs[1] = xs[1] + K[1]*r0;
-    xs[2] = xs[2] + K[2]*r0;
+    xs[cell_ekf_ix_soc] = xs[cell_ekf_ix_soc] + K[0]*r0_t;
+    xs[cell_ekf_ix_v_rc] = xs[cell_ekf_ix_v_rc] + K[1]*r0_t;
+    xs[cell_ekf_ix_v_ohm] = xs[cell_ekf_ix_v_ohm] + K[2]*r0_t;
     Ps[0] = Ps[0] + K[0]*V[0] - K[0]*W[0];
     Ps[1] = Ps[1] + K[0]*V[1] - K[1]*W[0];
     Ps[2] = Ps[2] + K[0]*V[2] - K[2]*W[0];

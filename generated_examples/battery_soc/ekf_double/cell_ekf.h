@@ -73,6 +73,10 @@ enum {
     cell_ekf_ix_v_ohm = 2  /* index of v_ohm in x */
 };
 
+enum {
+    cell_ekf_iu_i = 0  /* index of i in u */
+};
+
 /* Runtime parameters; cell_ekf_init sets the defaults shown. */
 typedef struct cell_ekf_par {
     double capacity;  /* default 2.5 [Ah] */

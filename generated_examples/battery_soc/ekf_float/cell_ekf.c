@@ -49,15 +49,15 @@ static int cell_ekf_commit_pd(const float *P)
 
 void cell_ekf_init(cell_ekf_t *s)
 {
-    s->x[0] = 0.6F;
-    s->x[1] = 0.0F;
-    s->x[2] = 0.0F;
-    s->P[0] = 0.010000000000000002F;
+    s->x[cell_ekf_ix_soc] = 0.6F;
+    s->x[cell_ekf_ix_v_rc] = 0.0F;
+    s->x[cell_ekf_ix_v_ohm] = 0.0F;
+    s->P[0] = 0.01F;
     s->P[1] = 0.0F;
     s->P[2] = 0.0F;
-    s->P[3] = 0.0001F;
+    s->P[3] = 1.0e-04F;
     s->P[4] = 0.0F;
-    s->P[5] = 0.0001F;
+    s->P[5] = 1.0e-04F;
     s->par.capacity = 2.5F;
     s->par.r0 = 0.045F;
     s->par.r1 = 0.025F;
@@ -110,10 +110,10 @@ int cell_ekf_predict(cell_ekf_t *s, const float *u, float dt)
     }
 
     const float t0 = expf(-dt/(par->c1*par->r1));
-    xn[0] = x[0] - 0.0002777777777777778F*dt*u[0]/par->capacity;
-    xn[1] = t0*x[1] + par->r1*u[0]*(1.0F - t0);
-    xn[2] = par->r0*u[0];
-    const float Q0_0 = 4.0000000000000007e-10F*dt;
+    xn[cell_ekf_ix_soc] = x[cell_ekf_ix_soc] - 0.00027777778F*dt*u[cell_ekf_iu_i]/par->capacity;
+    xn[cell_ekf_ix_v_rc] = t0*x[cell_ekf_ix_v_rc] + par->r1*u[cell_ekf_iu_i]*(1.0F - t0);
+    xn[cell_ekf_ix_v_ohm] = par->r0*u[cell_ekf_iu_i];
+    const float Q0_0 = 4.0e-10F*dt;
     const float Q1_1 = 2.5e-07F*dt;
     const float A1_1 = P[3]*t0;
     Pn[0] = P[0] + Q0_0;
@@ -154,9 +154,9 @@ int cell_ekf_update_voltage_nis(cell_ekf_t *s, const float *z, float *nis_out)
 
     memcpy(xs, s->x, sizeof xs);
     memcpy(Ps, s->P, sizeof Ps);
-    const float t0 = expf(-15.0F*x[0]);
-    const float t1 = expf(-12.0F + 12.0F*x[0]);
-    const float hz0 = 3.4F - x[1] - x[2] + 0.72F*x[0] + 0.08F*t1 - 0.4F*t0;
+    const float t0 = expf(-15.0F*x[cell_ekf_ix_soc]);
+    const float t1 = expf(-12.0F + 12.0F*x[cell_ekf_ix_soc]);
+    const float hz0 = 3.4F - x[cell_ekf_ix_v_rc] - x[cell_ekf_ix_v_ohm] + 0.72F*x[cell_ekf_ix_soc] + 0.08F*t1 - 0.4F*t0;
     const float H0_0 = 0.72F + 6.0F*t0 + 0.96F*t1;
     y[0] = z[0] - hz0;
     W[0] = -Ps[1] - Ps[2] + H0_0*Ps[0];
@@ -166,17 +166,17 @@ int cell_ekf_update_voltage_nis(cell_ekf_t *s, const float *z, float *nis_out)
     if (!isfinite(s0)) { return CELL_EKF_NON_FINITE; }
     if (!(s0 > 0.0F)) { return CELL_EKF_NOT_POSITIVE_DEFINITE; }
     const float is0 = (1.0F/s0);
-    const float r0 = y[0];
-    nis = nis + is0*(r0*r0);
+    const float r0_t = y[0];
+    nis = nis + is0*(r0_t*r0_t);
     K[0] = W[0]*is0;
     K[1] = W[1]*is0;
     K[2] = W[2]*is0;
     V[0] = -W[0] + K[0]*s0;
     V[1] = -W[1] + K[1]*s0;
     V[2] = -W[2] + K[2]*s0;
-    xs[0] = xs[0] + K[0]*r0;
-    xs[1] = xs[1] + K[1]*r0;
-    xs[2] = xs[2] + K[2]*r0;
+    xs[cell_ekf_ix_soc] = xs[cell_ekf_ix_soc] + K[0]*r0_t;
+    xs[cell_ekf_ix_v_rc] = xs[cell_ekf_ix_v_rc] + K[1]*r0_t;
+    xs[cell_ekf_ix_v_ohm] = xs[cell_ekf_ix_v_ohm] + K[2]*r0_t;
     Ps[0] = Ps[0] + K[0]*V[0] - K[0]*W[0];
     Ps[1] = Ps[1] + K[0]*V[1] - K[1]*W[0];
     Ps[2] = Ps[2] + K[0]*V[2] - K[2]*W[0];

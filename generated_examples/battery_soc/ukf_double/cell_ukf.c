@@ -86,9 +86,9 @@ static int cell_ukf_factor(const double *P, double *Lf)
 
 void cell_ukf_init(cell_ukf_t *s)
 {
-    s->x[0] = 0.6;
-    s->x[1] = 0.0;
-    s->x[2] = 0.0;
+    s->x[cell_ukf_ix_soc] = 0.6;
+    s->x[cell_ukf_ix_v_rc] = 0.0;
+    s->x[cell_ukf_ix_v_ohm] = 0.0;
     s->P[0] = 0.010000000000000002;
     s->P[1] = 0.0;
     s->P[2] = 0.0;
@@ -155,14 +155,14 @@ int cell_ukf_predict(cell_ukf_t *s, const double *u, double dt)
         }
     }
     const double ft0 = exp(-dt/(par->c1*par->r1));
-    const double fc0 = x[0] - 0.0002777777777777778*dt*u[0]/par->capacity;
-    const double fc1 = ft0*x[1] + par->r1*u[0]*(1.0 - ft0);
-    const double fc2 = par->r0*u[0];
+    const double fc0 = x[cell_ukf_ix_soc] - 0.0002777777777777778*dt*u[cell_ukf_iu_i]/par->capacity;
+    const double fc1 = ft0*x[cell_ukf_ix_v_rc] + par->r1*u[cell_ukf_iu_i]*(1.0 - ft0);
+    const double fc2 = par->r0*u[cell_ukf_iu_i];
     const double Q0_0 = 4.0000000000000007e-10*dt;
     const double Q1_1 = 2.5e-07*dt;
-    xn[0] = fc0;
-    xn[1] = fc1;
-    xn[2] = fc2;
+    xn[cell_ukf_ix_soc] = fc0;
+    xn[cell_ukf_ix_v_rc] = fc1;
+    xn[cell_ukf_ix_v_ohm] = fc2;
     const double AP1_1 = P[3]*ft0;
     Pn[0] = P[0] + Q0_0;
     Pn[1] = P[1]*ft0;
@@ -211,22 +211,22 @@ int cell_ukf_update_voltage_nis(cell_ukf_t *s, const double *z, double *nis_out)
     const double hg1_1 = 1.7320508075688772*Lf[3];
     const double hg2_1 = 1.7320508075688772*Lf[4];
     const double hg2_2 = 1.7320508075688772*Lf[5];
-    const double ha0 = -12.0 + 12.0*x[0];
+    const double ha0 = -12.0 + 12.0*x[cell_ukf_ix_soc];
     const double hae0 = exp(ha0);
     const double had0_0 = 12.0*hg0_0;
     const double ho0_0 = exp(had0_0);
     const double hop0_0 = hae0*ho0_0;
     const double hom0_0 = hae0/ho0_0;
-    const double ha1 = -15.0*x[0];
+    const double ha1 = -15.0*x[cell_ukf_ix_soc];
     const double hae1 = exp(ha1);
     const double had1_0 = -15.0*hg0_0;
     const double ho1_0 = exp(had1_0);
     const double hop1_0 = hae1*ho1_0;
     const double hom1_0 = hae1/ho1_0;
     const double ht0 = 0.4*hae1;
-    const double ht1 = 3.4 - x[1] - x[2] + 0.72*x[0];
+    const double ht1 = 3.4 - x[cell_ukf_ix_v_rc] - x[cell_ukf_ix_v_ohm] + 0.72*x[cell_ukf_ix_soc];
     const double ht2 = ht1 - ht0 + 0.08*hae0;
-    const double ht3 = -3.4 + x[1] + x[2] - 0.72*x[0];
+    const double ht3 = -3.4 + x[cell_ukf_ix_v_rc] + x[cell_ukf_ix_v_ohm] - 0.72*x[cell_ukf_ix_soc];
     const double ht4 = hg1_0 + hg2_0 - 0.72*hg0_0;
     const double ht5 = ht0 + ht3 - 0.08*hae0;
     const double ht6 = hg1_1 + hg2_1;
@@ -261,9 +261,9 @@ int cell_ukf_update_voltage_nis(cell_ukf_t *s, const double *z, double *nis_out)
     const double K0 = C0_0*iS;
     const double K1 = C1_0*iS;
     const double K2 = C2_0*iS;
-    xs[0] = x[0] + K0*y[0];
-    xs[1] = x[1] + K1*y[0];
-    xs[2] = x[2] + K2*y[0];
+    xs[cell_ukf_ix_soc] = x[cell_ukf_ix_soc] + K0*y[0];
+    xs[cell_ukf_ix_v_rc] = x[cell_ukf_ix_v_rc] + K1*y[0];
+    xs[cell_ukf_ix_v_ohm] = x[cell_ukf_ix_v_ohm] + K2*y[0];
     Ps[0] = P[0] - C0_0*K0;
     Ps[1] = P[1] - C1_0*K0;
     Ps[2] = P[2] - C2_0*K0;

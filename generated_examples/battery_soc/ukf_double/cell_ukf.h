@@ -80,6 +80,10 @@ enum {
     cell_ukf_ix_v_ohm = 2  /* index of v_ohm in x */
 };
 
+enum {
+    cell_ukf_iu_i = 0  /* index of i in u */
+};
+
 /* Runtime parameters; cell_ukf_init sets the defaults shown. */
 typedef struct cell_ukf_par {
     double capacity;  /* default 2.5 [Ah] */

@@ -10,8 +10,8 @@
 /* Scaled unscented transform, n = 3: lambda = 0.0F, gamma = sqrt(n + lambda). */
 #define CELL_UKF_WM0 0.0F
 #define CELL_UKF_WC0 2.0F
-#define CELL_UKF_WI 0.16666666666666666F
-#define CELL_UKF_GAMMA 1.7320508075688772F
+#define CELL_UKF_WI 0.16666667F
+#define CELL_UKF_GAMMA 1.7320508F
 
 static int cell_ukf_finite(const float *v, size_t len)
 {
@@ -86,15 +86,15 @@ static int cell_ukf_factor(const float *P, float *Lf)
 
 void cell_ukf_init(cell_ukf_t *s)
 {
-    s->x[0] = 0.6F;
-    s->x[1] = 0.0F;
-    s->x[2] = 0.0F;
-    s->P[0] = 0.010000000000000002F;
+    s->x[cell_ukf_ix_soc] = 0.6F;
+    s->x[cell_ukf_ix_v_rc] = 0.0F;
+    s->x[cell_ukf_ix_v_ohm] = 0.0F;
+    s->P[0] = 0.01F;
     s->P[1] = 0.0F;
     s->P[2] = 0.0F;
-    s->P[3] = 0.0001F;
+    s->P[3] = 1.0e-04F;
     s->P[4] = 0.0F;
-    s->P[5] = 0.0001F;
+    s->P[5] = 1.0e-04F;
     s->par.capacity = 2.5F;
     s->par.r0 = 0.045F;
     s->par.r1 = 0.025F;
@@ -155,14 +155,14 @@ int cell_ukf_predict(cell_ukf_t *s, const float *u, float dt)
         }
     }
     const float ft0 = expf(-dt/(par->c1*par->r1));
-    const float fc0 = x[0] - 0.0002777777777777778F*dt*u[0]/par->capacity;
-    const float fc1 = ft0*x[1] + par->r1*u[0]*(1.0F - ft0);
-    const float fc2 = par->r0*u[0];
-    const float Q0_0 = 4.0000000000000007e-10F*dt;
+    const float fc0 = x[cell_ukf_ix_soc] - 0.00027777778F*dt*u[cell_ukf_iu_i]/par->capacity;
+    const float fc1 = ft0*x[cell_ukf_ix_v_rc] + par->r1*u[cell_ukf_iu_i]*(1.0F - ft0);
+    const float fc2 = par->r0*u[cell_ukf_iu_i];
+    const float Q0_0 = 4.0e-10F*dt;
     const float Q1_1 = 2.5e-07F*dt;
-    xn[0] = fc0;
-    xn[1] = fc1;
-    xn[2] = fc2;
+    xn[cell_ukf_ix_soc] = fc0;
+    xn[cell_ukf_ix_v_rc] = fc1;
+    xn[cell_ukf_ix_v_ohm] = fc2;
     const float AP1_1 = P[3]*ft0;
     Pn[0] = P[0] + Q0_0;
     Pn[1] = P[1]*ft0;
@@ -205,28 +205,28 @@ int cell_ukf_update_voltage_nis(cell_ukf_t *s, const float *z, float *nis_out)
             return st;
         }
     }
-    const float hg0_0 = 1.7320508075688772F*Lf[0];
-    const float hg1_0 = 1.7320508075688772F*Lf[1];
-    const float hg2_0 = 1.7320508075688772F*Lf[2];
-    const float hg1_1 = 1.7320508075688772F*Lf[3];
-    const float hg2_1 = 1.7320508075688772F*Lf[4];
-    const float hg2_2 = 1.7320508075688772F*Lf[5];
-    const float ha0 = -12.0F + 12.0F*x[0];
+    const float hg0_0 = 1.7320508F*Lf[0];
+    const float hg1_0 = 1.7320508F*Lf[1];
+    const float hg2_0 = 1.7320508F*Lf[2];
+    const float hg1_1 = 1.7320508F*Lf[3];
+    const float hg2_1 = 1.7320508F*Lf[4];
+    const float hg2_2 = 1.7320508F*Lf[5];
+    const float ha0 = -12.0F + 12.0F*x[cell_ukf_ix_soc];
     const float hae0 = expf(ha0);
     const float had0_0 = 12.0F*hg0_0;
     const float ho0_0 = expf(had0_0);
     const float hop0_0 = hae0*ho0_0;
     const float hom0_0 = hae0/ho0_0;
-    const float ha1 = -15.0F*x[0];
+    const float ha1 = -15.0F*x[cell_ukf_ix_soc];
     const float hae1 = expf(ha1);
     const float had1_0 = -15.0F*hg0_0;
     const float ho1_0 = expf(had1_0);
     const float hop1_0 = hae1*ho1_0;
     const float hom1_0 = hae1/ho1_0;
     const float ht0 = 0.4F*hae1;
-    const float ht1 = 3.4F - x[1] - x[2] + 0.72F*x[0];
+    const float ht1 = 3.4F - x[cell_ukf_ix_v_rc] - x[cell_ukf_ix_v_ohm] + 0.72F*x[cell_ukf_ix_soc];
     const float ht2 = ht1 - ht0 + 0.08F*hae0;
-    const float ht3 = -3.4F + x[1] + x[2] - 0.72F*x[0];
+    const float ht3 = -3.4F + x[cell_ukf_ix_v_rc] + x[cell_ukf_ix_v_ohm] - 0.72F*x[cell_ukf_ix_soc];
     const float ht4 = hg1_0 + hg2_0 - 0.72F*hg0_0;
     const float ht5 = ht0 + ht3 - 0.08F*hae0;
     const float ht6 = hg1_1 + hg2_1;
@@ -239,15 +239,15 @@ int cell_ukf_update_voltage_nis(cell_ukf_t *s, const float *z, float *nis_out)
     const float hq0_0 = hm0_0 + hp0_0;
     const float hq1_0 = hm1_0 + hp1_0;
     const float hq2_0 = hm2_0 + hp2_0;
-    const float hmu0 = 0.16666666666666666F*(hq0_0 + hq1_0 + hq2_0);
+    const float hmu0 = 0.16666667F*(hq0_0 + hq1_0 + hq2_0);
     const float he0 = ht2 - hmu0;
-    const float hh0 = 0.5773502691896258F*hmu0;
-    const float hu0_0 = 0.2886751345948129F*(hp0_0 - hm0_0);
-    const float hv0_0 = -hh0 + 0.2886751345948129F*hq0_0;
-    const float hu1_0 = 0.2886751345948129F*(hp1_0 - hm1_0);
-    const float hv1_0 = -hh0 + 0.2886751345948129F*hq1_0;
-    const float hu2_0 = 0.2886751345948129F*(hp2_0 - hm2_0);
-    const float hv2_0 = -hh0 + 0.2886751345948129F*hq2_0;
+    const float hh0 = 0.57735026F*hmu0;
+    const float hu0_0 = 0.28867513F*(hp0_0 - hm0_0);
+    const float hv0_0 = -hh0 + 0.28867513F*hq0_0;
+    const float hu1_0 = 0.28867513F*(hp1_0 - hm1_0);
+    const float hv1_0 = -hh0 + 0.28867513F*hq1_0;
+    const float hu2_0 = 0.28867513F*(hp2_0 - hm2_0);
+    const float hv2_0 = -hh0 + 0.28867513F*hq2_0;
     y[0] = z[0] - hmu0;
     const float C0_0 = Lf[0]*hu0_0;
     const float C1_0 = Lf[1]*hu0_0 + Lf[3]*hu1_0;
@@ -261,9 +261,9 @@ int cell_ukf_update_voltage_nis(cell_ukf_t *s, const float *z, float *nis_out)
     const float K0 = C0_0*iS;
     const float K1 = C1_0*iS;
     const float K2 = C2_0*iS;
-    xs[0] = x[0] + K0*y[0];
-    xs[1] = x[1] + K1*y[0];
-    xs[2] = x[2] + K2*y[0];
+    xs[cell_ukf_ix_soc] = x[cell_ukf_ix_soc] + K0*y[0];
+    xs[cell_ukf_ix_v_rc] = x[cell_ukf_ix_v_rc] + K1*y[0];
+    xs[cell_ukf_ix_v_ohm] = x[cell_ukf_ix_v_ohm] + K2*y[0];
     Ps[0] = P[0] - C0_0*K0;
     Ps[1] = P[1] - C1_0*K0;
     Ps[2] = P[2] - C2_0*K0;

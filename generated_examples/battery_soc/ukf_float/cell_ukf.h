@@ -44,7 +44,7 @@
  * on the stack of those calls: the named locals total 88 bytes in predict and 276 bytes
  * in the largest update. The real frame depends on the compiler (registers hold many, spills
  * add some): measure it on the target, e.g. gcc -fstack-usage.
- * Weights: Wm0 = 0.0F, Wc0 = 2.0F, Wm_i = Wc_i = 0.16666666666666666F (i = 1..6);
+ * Weights: Wm0 = 0.0F, Wc0 = 2.0F, Wm_i = Wc_i = 0.16666667F (i = 1..6);
  * alpha = 1.0F, beta = 2.0F, kappa = 0.0F.
  */
 #ifndef CELL_UKF_H
@@ -78,6 +78,10 @@ enum {
     cell_ukf_ix_soc = 0,  /* index of soc in x */
     cell_ukf_ix_v_rc = 1,  /* index of v_rc in x */
     cell_ukf_ix_v_ohm = 2  /* index of v_ohm in x */
+};
+
+enum {
+    cell_ukf_iu_i = 0  /* index of i in u */
 };
 
 /* Runtime parameters; cell_ukf_init sets the defaults shown. */

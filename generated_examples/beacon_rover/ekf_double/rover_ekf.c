@@ -65,10 +65,10 @@ static int rover_ekf_commit_pd(const double *P)
 
 void rover_ekf_init(rover_ekf_t *s)
 {
-    s->x[0] = 0.0;
-    s->x[1] = 0.0;
-    s->x[2] = 0.0;
-    s->x[3] = 1.0;
+    s->x[rover_ekf_ix_px] = 0.0;
+    s->x[rover_ekf_ix_py] = 0.0;
+    s->x[rover_ekf_ix_psi] = 0.0;
+    s->x[rover_ekf_ix_v] = 1.0;
     s->P[0] = 0.25;
     s->P[1] = 0.0;
     s->P[2] = 0.0;
@@ -102,7 +102,7 @@ int rover_ekf_set_state(rover_ekf_t *s, const double *x, const double *P)
         return ROVER_EKF_NOT_POSITIVE_DEFINITE;
     }
     memcpy(xn, x, sizeof xn);
-    xn[2] = rover_ekf_wrap(xn[2]);
+    xn[rover_ekf_ix_psi] = rover_ekf_wrap(xn[rover_ekf_ix_psi]);
     memcpy(s->x, xn, sizeof xn);
     memcpy(s->P, P, sizeof s->P);
     return ROVER_EKF_OK;
@@ -134,26 +134,26 @@ int rover_ekf_predict(rover_ekf_t *s, const double *u, double dt)
         return ROVER_EKF_BAD_DT;
     }
 
-    const double t0 = cos(x[2]);
-    const double t1 = dt*u[0];
-    const double t2 = t1 + x[3];
-    const double t3 = dt*u[1];
-    const double t4 = t3 + x[2];
+    const double t0 = cos(x[rover_ekf_ix_psi]);
+    const double t1 = dt*u[rover_ekf_iu_acc];
+    const double t2 = t1 + x[rover_ekf_ix_v];
+    const double t3 = dt*u[rover_ekf_iu_rate];
+    const double t4 = t3 + x[rover_ekf_ix_psi];
     const double t5 = cos(t4);
-    const double t6 = x[3] + (0.5)*t1;
-    const double t7 = x[2] + (0.5)*t3;
+    const double t6 = x[rover_ekf_ix_v] + (0.5)*t1;
+    const double t7 = x[rover_ekf_ix_psi] + (0.5)*t3;
     const double t8 = 4.0*cos(t7);
     const double t9 = (0.16666666666666666)*dt;
-    const double t10 = t9*(t0*x[3] + t2*t5 + t6*t8);
-    const double t11 = sin(x[2]);
+    const double t10 = t9*(t0*x[rover_ekf_ix_v] + t2*t5 + t6*t8);
+    const double t11 = sin(x[rover_ekf_ix_psi]);
     const double t12 = sin(t4);
     const double t13 = 4.0*sin(t7);
-    const double t14 = t11*x[3] + t12*t2 + t13*t6;
+    const double t14 = t11*x[rover_ekf_ix_v] + t12*t2 + t13*t6;
     const double t15 = 0.0001*dt;
-    xn[0] = t10 + x[0];
-    xn[1] = x[1] + t14*t9;
-    xn[2] = t4;
-    xn[3] = t2;
+    xn[rover_ekf_ix_px] = t10 + x[rover_ekf_ix_px];
+    xn[rover_ekf_ix_py] = x[rover_ekf_ix_py] + t14*t9;
+    xn[rover_ekf_ix_psi] = t4;
+    xn[rover_ekf_ix_v] = t2;
     const double F0_2 = -t14*t9;
     const double F0_3 = t9*(t0 + t5 + t8);
     const double F1_3 = t9*(t11 + t12 + t13);
@@ -175,7 +175,7 @@ int rover_ekf_predict(rover_ekf_t *s, const double *u, double dt)
     Pn[7] = P[7] + t15;
     Pn[8] = P[8];
     Pn[9] = P[9] + Q3_3;
-    xn[2] = rover_ekf_wrap(xn[2]);
+    xn[rover_ekf_ix_psi] = rover_ekf_wrap(xn[rover_ekf_ix_psi]);
     if (!rover_ekf_finite(xn, 4u) || !rover_ekf_finite(Pn, 10u)) {
         return ROVER_EKF_NON_FINITE;
     }
@@ -209,8 +209,8 @@ int rover_ekf_update_range_a_nis(rover_ekf_t *s, const double *z, double *nis_ou
 
     memcpy(xs, s->x, sizeof xs);
     memcpy(Ps, s->P, sizeof Ps);
-    const double t0 = x[0] - par->bax;
-    const double t1 = x[1] - par->bay;
+    const double t0 = x[rover_ekf_ix_px] - par->bax;
+    const double t1 = x[rover_ekf_ix_py] - par->bay;
     const double t2 = sqrt((t0*t0) + (t1*t1));
     const double t3 = (1.0/t2);
     const double H0_0 = t0*t3;
@@ -234,10 +234,10 @@ int rover_ekf_update_range_a_nis(rover_ekf_t *s, const double *z, double *nis_ou
     V[1] = -W[1] + K[1]*s0;
     V[2] = -W[2] + K[2]*s0;
     V[3] = -W[3] + K[3]*s0;
-    xs[0] = xs[0] + K[0]*r0;
-    xs[1] = xs[1] + K[1]*r0;
-    xs[2] = xs[2] + K[2]*r0;
-    xs[3] = xs[3] + K[3]*r0;
+    xs[rover_ekf_ix_px] = xs[rover_ekf_ix_px] + K[0]*r0;
+    xs[rover_ekf_ix_py] = xs[rover_ekf_ix_py] + K[1]*r0;
+    xs[rover_ekf_ix_psi] = xs[rover_ekf_ix_psi] + K[2]*r0;
+    xs[rover_ekf_ix_v] = xs[rover_ekf_ix_v] + K[3]*r0;
     Ps[0] = Ps[0] + K[0]*V[0] - K[0]*W[0];
     Ps[1] = Ps[1] + K[0]*V[1] - K[1]*W[0];
     Ps[2] = Ps[2] + K[0]*V[2] - K[2]*W[0];
@@ -248,7 +248,7 @@ int rover_ekf_update_range_a_nis(rover_ekf_t *s, const double *z, double *nis_ou
     Ps[7] = Ps[7] + K[2]*V[2] - K[2]*W[2];
     Ps[8] = Ps[8] + K[2]*V[3] - K[3]*W[2];
     Ps[9] = Ps[9] + K[3]*V[3] - K[3]*W[3];
-    xs[2] = rover_ekf_wrap(xs[2]);
+    xs[rover_ekf_ix_psi] = rover_ekf_wrap(xs[rover_ekf_ix_psi]);
     if (!rover_ekf_finite(xs, 4u) || !rover_ekf_finite(Ps, 10u)) {
         return ROVER_EKF_NON_FINITE;
     }
@@ -294,8 +294,8 @@ int rover_ekf_update_range_b_nis(rover_ekf_t *s, const double *z, double *nis_ou
 
     memcpy(xs, s->x, sizeof xs);
     memcpy(Ps, s->P, sizeof Ps);
-    const double t0 = x[0] - par->bbx;
-    const double t1 = x[1] - par->bby;
+    const double t0 = x[rover_ekf_ix_px] - par->bbx;
+    const double t1 = x[rover_ekf_ix_py] - par->bby;
     const double t2 = sqrt((t0*t0) + (t1*t1));
     const double t3 = (1.0/t2);
     const double H0_0 = t0*t3;
@@ -319,10 +319,10 @@ int rover_ekf_update_range_b_nis(rover_ekf_t *s, const double *z, double *nis_ou
     V[1] = -W[1] + K[1]*s0;
     V[2] = -W[2] + K[2]*s0;
     V[3] = -W[3] + K[3]*s0;
-    xs[0] = xs[0] + K[0]*r0;
-    xs[1] = xs[1] + K[1]*r0;
-    xs[2] = xs[2] + K[2]*r0;
-    xs[3] = xs[3] + K[3]*r0;
+    xs[rover_ekf_ix_px] = xs[rover_ekf_ix_px] + K[0]*r0;
+    xs[rover_ekf_ix_py] = xs[rover_ekf_ix_py] + K[1]*r0;
+    xs[rover_ekf_ix_psi] = xs[rover_ekf_ix_psi] + K[2]*r0;
+    xs[rover_ekf_ix_v] = xs[rover_ekf_ix_v] + K[3]*r0;
     Ps[0] = Ps[0] + K[0]*V[0] - K[0]*W[0];
     Ps[1] = Ps[1] + K[0]*V[1] - K[1]*W[0];
     Ps[2] = Ps[2] + K[0]*V[2] - K[2]*W[0];
@@ -333,7 +333,7 @@ int rover_ekf_update_range_b_nis(rover_ekf_t *s, const double *z, double *nis_ou
     Ps[7] = Ps[7] + K[2]*V[2] - K[2]*W[2];
     Ps[8] = Ps[8] + K[2]*V[3] - K[3]*W[2];
     Ps[9] = Ps[9] + K[3]*V[3] - K[3]*W[3];
-    xs[2] = rover_ekf_wrap(xs[2]);
+    xs[rover_ekf_ix_psi] = rover_ekf_wrap(xs[rover_ekf_ix_psi]);
     if (!rover_ekf_finite(xs, 4u) || !rover_ekf_finite(Ps, 10u)) {
         return ROVER_EKF_NON_FINITE;
     }
@@ -379,9 +379,9 @@ int rover_ekf_update_range_cd_nis(rover_ekf_t *s, const double *z, double *nis_o
 
     memcpy(xs, s->x, sizeof xs);
     memcpy(Ps, s->P, sizeof Ps);
-    const double t0 = -x[0];
+    const double t0 = -x[rover_ekf_ix_px];
     const double t1 = -par->bcx - t0;
-    const double t2 = -x[1];
+    const double t2 = -x[rover_ekf_ix_py];
     const double t3 = -par->bcy - t2;
     const double t4 = sqrt((t1*t1) + (t3*t3));
     const double t5 = -par->bdx - t0;
@@ -413,10 +413,10 @@ int rover_ekf_update_range_cd_nis(rover_ekf_t *s, const double *z, double *nis_o
     V[1] = -W[1] + K[1]*s0;
     V[2] = -W[2] + K[2]*s0;
     V[3] = -W[3] + K[3]*s0;
-    xs[0] = xs[0] + K[0]*r0;
-    xs[1] = xs[1] + K[1]*r0;
-    xs[2] = xs[2] + K[2]*r0;
-    xs[3] = xs[3] + K[3]*r0;
+    xs[rover_ekf_ix_px] = xs[rover_ekf_ix_px] + K[0]*r0;
+    xs[rover_ekf_ix_py] = xs[rover_ekf_ix_py] + K[1]*r0;
+    xs[rover_ekf_ix_psi] = xs[rover_ekf_ix_psi] + K[2]*r0;
+    xs[rover_ekf_ix_v] = xs[rover_ekf_ix_v] + K[3]*r0;
     Ps[0] = Ps[0] + K[0]*V[0] - K[0]*W[0];
     Ps[1] = Ps[1] + K[0]*V[1] - K[1]*W[0];
     Ps[2] = Ps[2] + K[0]*V[2] - K[2]*W[0];
@@ -435,7 +435,7 @@ int rover_ekf_update_range_cd_nis(rover_ekf_t *s, const double *z, double *nis_o
     if (!isfinite(s1)) { return ROVER_EKF_NON_FINITE; }
     if (!(s1 > 0.0)) { return ROVER_EKF_NOT_POSITIVE_DEFINITE; }
     const double is1 = (1.0/s1);
-    const double r1 = y[1] - H1_0*(xs[0] - x[0]) - H1_1*(xs[1] - x[1]);
+    const double r1 = y[1] - H1_0*(xs[rover_ekf_ix_px] - x[rover_ekf_ix_px]) - H1_1*(xs[rover_ekf_ix_py] - x[rover_ekf_ix_py]);
     nis = nis + is1*(r1*r1);
     K[0] = W[0]*is1;
     K[1] = W[1]*is1;
@@ -445,10 +445,10 @@ int rover_ekf_update_range_cd_nis(rover_ekf_t *s, const double *z, double *nis_o
     V[1] = -W[1] + K[1]*s1;
     V[2] = -W[2] + K[2]*s1;
     V[3] = -W[3] + K[3]*s1;
-    xs[0] = xs[0] + K[0]*r1;
-    xs[1] = xs[1] + K[1]*r1;
-    xs[2] = xs[2] + K[2]*r1;
-    xs[3] = xs[3] + K[3]*r1;
+    xs[rover_ekf_ix_px] = xs[rover_ekf_ix_px] + K[0]*r1;
+    xs[rover_ekf_ix_py] = xs[rover_ekf_ix_py] + K[1]*r1;
+    xs[rover_ekf_ix_psi] = xs[rover_ekf_ix_psi] + K[2]*r1;
+    xs[rover_ekf_ix_v] = xs[rover_ekf_ix_v] + K[3]*r1;
     Ps[0] = Ps[0] + K[0]*V[0] - K[0]*W[0];
     Ps[1] = Ps[1] + K[0]*V[1] - K[1]*W[0];
     Ps[2] = Ps[2] + K[0]*V[2] - K[2]*W[0];
@@ -459,7 +459,7 @@ int rover_ekf_update_range_cd_nis(rover_ekf_t *s, const double *z, double *nis_o
     Ps[7] = Ps[7] + K[2]*V[2] - K[2]*W[2];
     Ps[8] = Ps[8] + K[2]*V[3] - K[3]*W[2];
     Ps[9] = Ps[9] + K[3]*V[3] - K[3]*W[3];
-    xs[2] = rover_ekf_wrap(xs[2]);
+    xs[rover_ekf_ix_psi] = rover_ekf_wrap(xs[rover_ekf_ix_psi]);
     if (!rover_ekf_finite(xs, 4u) || !rover_ekf_finite(Ps, 10u)) {
         return ROVER_EKF_NON_FINITE;
     }
@@ -504,7 +504,7 @@ int rover_ekf_update_compass_nis(rover_ekf_t *s, const double *z, double *nis_ou
 
     memcpy(xs, s->x, sizeof xs);
     memcpy(Ps, s->P, sizeof Ps);
-    y[0] = z[0] - x[2];
+    y[0] = z[0] - x[rover_ekf_ix_psi];
     y[0] = rover_ekf_wrap(y[0]);
     W[0] = Ps[2];
     W[1] = Ps[5];
@@ -524,10 +524,10 @@ int rover_ekf_update_compass_nis(rover_ekf_t *s, const double *z, double *nis_ou
     V[1] = -W[1] + K[1]*s0;
     V[2] = -W[2] + K[2]*s0;
     V[3] = -W[3] + K[3]*s0;
-    xs[0] = xs[0] + K[0]*r0;
-    xs[1] = xs[1] + K[1]*r0;
-    xs[2] = xs[2] + K[2]*r0;
-    xs[3] = xs[3] + K[3]*r0;
+    xs[rover_ekf_ix_px] = xs[rover_ekf_ix_px] + K[0]*r0;
+    xs[rover_ekf_ix_py] = xs[rover_ekf_ix_py] + K[1]*r0;
+    xs[rover_ekf_ix_psi] = xs[rover_ekf_ix_psi] + K[2]*r0;
+    xs[rover_ekf_ix_v] = xs[rover_ekf_ix_v] + K[3]*r0;
     Ps[0] = Ps[0] + K[0]*V[0] - K[0]*W[0];
     Ps[1] = Ps[1] + K[0]*V[1] - K[1]*W[0];
     Ps[2] = Ps[2] + K[0]*V[2] - K[2]*W[0];
@@ -538,7 +538,7 @@ int rover_ekf_update_compass_nis(rover_ekf_t *s, const double *z, double *nis_ou
     Ps[7] = Ps[7] + K[2]*V[2] - K[2]*W[2];
     Ps[8] = Ps[8] + K[2]*V[3] - K[3]*W[2];
     Ps[9] = Ps[9] + K[3]*V[3] - K[3]*W[3];
-    xs[2] = rover_ekf_wrap(xs[2]);
+    xs[rover_ekf_ix_psi] = rover_ekf_wrap(xs[rover_ekf_ix_psi]);
     if (!rover_ekf_finite(xs, 4u) || !rover_ekf_finite(Ps, 10u)) {
         return ROVER_EKF_NON_FINITE;
     }

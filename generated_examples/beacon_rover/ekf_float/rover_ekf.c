@@ -6,8 +6,8 @@
 #include <math.h>
 #include <string.h>
 
-#define ROVER_EKF_PI 3.141592653589793F
-#define ROVER_EKF_TWO_PI 6.283185307179586F
+#define ROVER_EKF_PI 3.1415927F
+#define ROVER_EKF_TWO_PI 6.2831855F
 
 /* Wrap an angle to (-pi, pi]. */
 static float rover_ekf_wrap(float a)
@@ -65,10 +65,10 @@ static int rover_ekf_commit_pd(const float *P)
 
 void rover_ekf_init(rover_ekf_t *s)
 {
-    s->x[0] = 0.0F;
-    s->x[1] = 0.0F;
-    s->x[2] = 0.0F;
-    s->x[3] = 1.0F;
+    s->x[rover_ekf_ix_px] = 0.0F;
+    s->x[rover_ekf_ix_py] = 0.0F;
+    s->x[rover_ekf_ix_psi] = 0.0F;
+    s->x[rover_ekf_ix_v] = 1.0F;
     s->P[0] = 0.25F;
     s->P[1] = 0.0F;
     s->P[2] = 0.0F;
@@ -76,9 +76,9 @@ void rover_ekf_init(rover_ekf_t *s)
     s->P[4] = 0.25F;
     s->P[5] = 0.0F;
     s->P[6] = 0.0F;
-    s->P[7] = 0.030461741978670857F;
+    s->P[7] = 0.030461742F;
     s->P[8] = 0.0F;
-    s->P[9] = 0.04000000000000001F;
+    s->P[9] = 0.04F;
     s->par.bax = -25.0F;
     s->par.bay = -20.0F;
     s->par.bbx = 25.0F;
@@ -102,7 +102,7 @@ int rover_ekf_set_state(rover_ekf_t *s, const float *x, const float *P)
         return ROVER_EKF_NOT_POSITIVE_DEFINITE;
     }
     memcpy(xn, x, sizeof xn);
-    xn[2] = rover_ekf_wrap(xn[2]);
+    xn[rover_ekf_ix_psi] = rover_ekf_wrap(xn[rover_ekf_ix_psi]);
     memcpy(s->x, xn, sizeof xn);
     memcpy(s->P, P, sizeof s->P);
     return ROVER_EKF_OK;
@@ -134,30 +134,30 @@ int rover_ekf_predict(rover_ekf_t *s, const float *u, float dt)
         return ROVER_EKF_BAD_DT;
     }
 
-    const float t0 = cosf(x[2]);
-    const float t1 = dt*u[0];
-    const float t2 = t1 + x[3];
-    const float t3 = dt*u[1];
-    const float t4 = t3 + x[2];
+    const float t0 = cosf(x[rover_ekf_ix_psi]);
+    const float t1 = dt*u[rover_ekf_iu_acc];
+    const float t2 = t1 + x[rover_ekf_ix_v];
+    const float t3 = dt*u[rover_ekf_iu_rate];
+    const float t4 = t3 + x[rover_ekf_ix_psi];
     const float t5 = cosf(t4);
-    const float t6 = x[3] + (0.5F)*t1;
-    const float t7 = x[2] + (0.5F)*t3;
+    const float t6 = x[rover_ekf_ix_v] + (0.5F)*t1;
+    const float t7 = x[rover_ekf_ix_psi] + (0.5F)*t3;
     const float t8 = 4.0F*cosf(t7);
-    const float t9 = (0.16666666666666666F)*dt;
-    const float t10 = t9*(t0*x[3] + t2*t5 + t6*t8);
-    const float t11 = sinf(x[2]);
+    const float t9 = (0.16666667F)*dt;
+    const float t10 = t9*(t0*x[rover_ekf_ix_v] + t2*t5 + t6*t8);
+    const float t11 = sinf(x[rover_ekf_ix_psi]);
     const float t12 = sinf(t4);
     const float t13 = 4.0F*sinf(t7);
-    const float t14 = t11*x[3] + t12*t2 + t13*t6;
-    const float t15 = 0.0001F*dt;
-    xn[0] = t10 + x[0];
-    xn[1] = x[1] + t14*t9;
-    xn[2] = t4;
-    xn[3] = t2;
+    const float t14 = t11*x[rover_ekf_ix_v] + t12*t2 + t13*t6;
+    const float t15 = 1.0e-04F*dt;
+    xn[rover_ekf_ix_px] = t10 + x[rover_ekf_ix_px];
+    xn[rover_ekf_ix_py] = x[rover_ekf_ix_py] + t14*t9;
+    xn[rover_ekf_ix_psi] = t4;
+    xn[rover_ekf_ix_v] = t2;
     const float F0_2 = -t14*t9;
     const float F0_3 = t9*(t0 + t5 + t8);
     const float F1_3 = t9*(t11 + t12 + t13);
-    const float Q3_3 = 0.0025000000000000005F*dt;
+    const float Q3_3 = 0.0025F*dt;
     const float A0_0 = P[0] + F0_2*P[2] + F0_3*P[3];
     const float A0_1 = P[1] + F0_2*P[5] + F0_3*P[6];
     const float A0_2 = P[2] + F0_2*P[7] + F0_3*P[8];
@@ -175,7 +175,7 @@ int rover_ekf_predict(rover_ekf_t *s, const float *u, float dt)
     Pn[7] = P[7] + t15;
     Pn[8] = P[8];
     Pn[9] = P[9] + Q3_3;
-    xn[2] = rover_ekf_wrap(xn[2]);
+    xn[rover_ekf_ix_psi] = rover_ekf_wrap(xn[rover_ekf_ix_psi]);
     if (!rover_ekf_finite(xn, 4u) || !rover_ekf_finite(Pn, 10u)) {
         return ROVER_EKF_NON_FINITE;
     }
@@ -209,8 +209,8 @@ int rover_ekf_update_range_a_nis(rover_ekf_t *s, const float *z, float *nis_out)
 
     memcpy(xs, s->x, sizeof xs);
     memcpy(Ps, s->P, sizeof Ps);
-    const float t0 = x[0] - par->bax;
-    const float t1 = x[1] - par->bay;
+    const float t0 = x[rover_ekf_ix_px] - par->bax;
+    const float t1 = x[rover_ekf_ix_py] - par->bay;
     const float t2 = sqrtf((t0*t0) + (t1*t1));
     const float t3 = (1.0F/t2);
     const float H0_0 = t0*t3;
@@ -220,7 +220,7 @@ int rover_ekf_update_range_a_nis(rover_ekf_t *s, const float *z, float *nis_out)
     W[1] = H0_0*Ps[1] + H0_1*Ps[4];
     W[2] = H0_0*Ps[2] + H0_1*Ps[5];
     W[3] = H0_0*Ps[3] + H0_1*Ps[6];
-    const float s0 = 0.010000000000000002F + H0_0*W[0] + H0_1*W[1];
+    const float s0 = 0.01F + H0_0*W[0] + H0_1*W[1];
     if (!isfinite(s0)) { return ROVER_EKF_NON_FINITE; }
     if (!(s0 > 0.0F)) { return ROVER_EKF_NOT_POSITIVE_DEFINITE; }
     const float is0 = (1.0F/s0);
@@ -234,10 +234,10 @@ int rover_ekf_update_range_a_nis(rover_ekf_t *s, const float *z, float *nis_out)
     V[1] = -W[1] + K[1]*s0;
     V[2] = -W[2] + K[2]*s0;
     V[3] = -W[3] + K[3]*s0;
-    xs[0] = xs[0] + K[0]*r0;
-    xs[1] = xs[1] + K[1]*r0;
-    xs[2] = xs[2] + K[2]*r0;
-    xs[3] = xs[3] + K[3]*r0;
+    xs[rover_ekf_ix_px] = xs[rover_ekf_ix_px] + K[0]*r0;
+    xs[rover_ekf_ix_py] = xs[rover_ekf_ix_py] + K[1]*r0;
+    xs[rover_ekf_ix_psi] = xs[rover_ekf_ix_psi] + K[2]*r0;
+    xs[rover_ekf_ix_v] = xs[rover_ekf_ix_v] + K[3]*r0;
     Ps[0] = Ps[0] + K[0]*V[0] - K[0]*W[0];
     Ps[1] = Ps[1] + K[0]*V[1] - K[1]*W[0];
     Ps[2] = Ps[2] + K[0]*V[2] - K[2]*W[0];
@@ -248,7 +248,7 @@ int rover_ekf_update_range_a_nis(rover_ekf_t *s, const float *z, float *nis_out)
     Ps[7] = Ps[7] + K[2]*V[2] - K[2]*W[2];
     Ps[8] = Ps[8] + K[2]*V[3] - K[3]*W[2];
     Ps[9] = Ps[9] + K[3]*V[3] - K[3]*W[3];
-    xs[2] = rover_ekf_wrap(xs[2]);
+    xs[rover_ekf_ix_psi] = rover_ekf_wrap(xs[rover_ekf_ix_psi]);
     if (!rover_ekf_finite(xs, 4u) || !rover_ekf_finite(Ps, 10u)) {
         return ROVER_EKF_NON_FINITE;
     }
@@ -294,8 +294,8 @@ int rover_ekf_update_range_b_nis(rover_ekf_t *s, const float *z, float *nis_out)
 
     memcpy(xs, s->x, sizeof xs);
     memcpy(Ps, s->P, sizeof Ps);
-    const float t0 = x[0] - par->bbx;
-    const float t1 = x[1] - par->bby;
+    const float t0 = x[rover_ekf_ix_px] - par->bbx;
+    const float t1 = x[rover_ekf_ix_py] - par->bby;
     const float t2 = sqrtf((t0*t0) + (t1*t1));
     const float t3 = (1.0F/t2);
     const float H0_0 = t0*t3;
@@ -305,7 +305,7 @@ int rover_ekf_update_range_b_nis(rover_ekf_t *s, const float *z, float *nis_out)
     W[1] = H0_0*Ps[1] + H0_1*Ps[4];
     W[2] = H0_0*Ps[2] + H0_1*Ps[5];
     W[3] = H0_0*Ps[3] + H0_1*Ps[6];
-    const float s0 = 0.010000000000000002F + H0_0*W[0] + H0_1*W[1];
+    const float s0 = 0.01F + H0_0*W[0] + H0_1*W[1];
     if (!isfinite(s0)) { return ROVER_EKF_NON_FINITE; }
     if (!(s0 > 0.0F)) { return ROVER_EKF_NOT_POSITIVE_DEFINITE; }
     const float is0 = (1.0F/s0);
@@ -319,10 +319,10 @@ int rover_ekf_update_range_b_nis(rover_ekf_t *s, const float *z, float *nis_out)
     V[1] = -W[1] + K[1]*s0;
     V[2] = -W[2] + K[2]*s0;
     V[3] = -W[3] + K[3]*s0;
-    xs[0] = xs[0] + K[0]*r0;
-    xs[1] = xs[1] + K[1]*r0;
-    xs[2] = xs[2] + K[2]*r0;
-    xs[3] = xs[3] + K[3]*r0;
+    xs[rover_ekf_ix_px] = xs[rover_ekf_ix_px] + K[0]*r0;
+    xs[rover_ekf_ix_py] = xs[rover_ekf_ix_py] + K[1]*r0;
+    xs[rover_ekf_ix_psi] = xs[rover_ekf_ix_psi] + K[2]*r0;
+    xs[rover_ekf_ix_v] = xs[rover_ekf_ix_v] + K[3]*r0;
     Ps[0] = Ps[0] + K[0]*V[0] - K[0]*W[0];
     Ps[1] = Ps[1] + K[0]*V[1] - K[1]*W[0];
     Ps[2] = Ps[2] + K[0]*V[2] - K[2]*W[0];
@@ -333,7 +333,7 @@ int rover_ekf_update_range_b_nis(rover_ekf_t *s, const float *z, float *nis_out)
     Ps[7] = Ps[7] + K[2]*V[2] - K[2]*W[2];
     Ps[8] = Ps[8] + K[2]*V[3] - K[3]*W[2];
     Ps[9] = Ps[9] + K[3]*V[3] - K[3]*W[3];
-    xs[2] = rover_ekf_wrap(xs[2]);
+    xs[rover_ekf_ix_psi] = rover_ekf_wrap(xs[rover_ekf_ix_psi]);
     if (!rover_ekf_finite(xs, 4u) || !rover_ekf_finite(Ps, 10u)) {
         return ROVER_EKF_NON_FINITE;
     }
@@ -379,9 +379,9 @@ int rover_ekf_update_range_cd_nis(rover_ekf_t *s, const float *z, float *nis_out
 
     memcpy(xs, s->x, sizeof xs);
     memcpy(Ps, s->P, sizeof Ps);
-    const float t0 = -x[0];
+    const float t0 = -x[rover_ekf_ix_px];
     const float t1 = -par->bcx - t0;
-    const float t2 = -x[1];
+    const float t2 = -x[rover_ekf_ix_py];
     const float t3 = -par->bcy - t2;
     const float t4 = sqrtf((t1*t1) + (t3*t3));
     const float t5 = -par->bdx - t0;
@@ -413,10 +413,10 @@ int rover_ekf_update_range_cd_nis(rover_ekf_t *s, const float *z, float *nis_out
     V[1] = -W[1] + K[1]*s0;
     V[2] = -W[2] + K[2]*s0;
     V[3] = -W[3] + K[3]*s0;
-    xs[0] = xs[0] + K[0]*r0;
-    xs[1] = xs[1] + K[1]*r0;
-    xs[2] = xs[2] + K[2]*r0;
-    xs[3] = xs[3] + K[3]*r0;
+    xs[rover_ekf_ix_px] = xs[rover_ekf_ix_px] + K[0]*r0;
+    xs[rover_ekf_ix_py] = xs[rover_ekf_ix_py] + K[1]*r0;
+    xs[rover_ekf_ix_psi] = xs[rover_ekf_ix_psi] + K[2]*r0;
+    xs[rover_ekf_ix_v] = xs[rover_ekf_ix_v] + K[3]*r0;
     Ps[0] = Ps[0] + K[0]*V[0] - K[0]*W[0];
     Ps[1] = Ps[1] + K[0]*V[1] - K[1]*W[0];
     Ps[2] = Ps[2] + K[0]*V[2] - K[2]*W[0];
@@ -435,7 +435,7 @@ int rover_ekf_update_range_cd_nis(rover_ekf_t *s, const float *z, float *nis_out
     if (!isfinite(s1)) { return ROVER_EKF_NON_FINITE; }
     if (!(s1 > 0.0F)) { return ROVER_EKF_NOT_POSITIVE_DEFINITE; }
     const float is1 = (1.0F/s1);
-    const float r1 = y[1] - H1_0*(xs[0] - x[0]) - H1_1*(xs[1] - x[1]);
+    const float r1 = y[1] - H1_0*(xs[rover_ekf_ix_px] - x[rover_ekf_ix_px]) - H1_1*(xs[rover_ekf_ix_py] - x[rover_ekf_ix_py]);
     nis = nis + is1*(r1*r1);
     K[0] = W[0]*is1;
     K[1] = W[1]*is1;
@@ -445,10 +445,10 @@ int rover_ekf_update_range_cd_nis(rover_ekf_t *s, const float *z, float *nis_out
     V[1] = -W[1] + K[1]*s1;
     V[2] = -W[2] + K[2]*s1;
     V[3] = -W[3] + K[3]*s1;
-    xs[0] = xs[0] + K[0]*r1;
-    xs[1] = xs[1] + K[1]*r1;
-    xs[2] = xs[2] + K[2]*r1;
-    xs[3] = xs[3] + K[3]*r1;
+    xs[rover_ekf_ix_px] = xs[rover_ekf_ix_px] + K[0]*r1;
+    xs[rover_ekf_ix_py] = xs[rover_ekf_ix_py] + K[1]*r1;
+    xs[rover_ekf_ix_psi] = xs[rover_ekf_ix_psi] + K[2]*r1;
+    xs[rover_ekf_ix_v] = xs[rover_ekf_ix_v] + K[3]*r1;
     Ps[0] = Ps[0] + K[0]*V[0] - K[0]*W[0];
     Ps[1] = Ps[1] + K[0]*V[1] - K[1]*W[0];
     Ps[2] = Ps[2] + K[0]*V[2] - K[2]*W[0];
@@ -459,7 +459,7 @@ int rover_ekf_update_range_cd_nis(rover_ekf_t *s, const float *z, float *nis_out
     Ps[7] = Ps[7] + K[2]*V[2] - K[2]*W[2];
     Ps[8] = Ps[8] + K[2]*V[3] - K[3]*W[2];
     Ps[9] = Ps[9] + K[3]*V[3] - K[3]*W[3];
-    xs[2] = rover_ekf_wrap(xs[2]);
+    xs[rover_ekf_ix_psi] = rover_ekf_wrap(xs[rover_ekf_ix_psi]);
     if (!rover_ekf_finite(xs, 4u) || !rover_ekf_finite(Ps, 10u)) {
         return ROVER_EKF_NON_FINITE;
     }
@@ -504,13 +504,13 @@ int rover_ekf_update_compass_nis(rover_ekf_t *s, const float *z, float *nis_out)
 
     memcpy(xs, s->x, sizeof xs);
     memcpy(Ps, s->P, sizeof Ps);
-    y[0] = z[0] - x[2];
+    y[0] = z[0] - x[rover_ekf_ix_psi];
     y[0] = rover_ekf_wrap(y[0]);
     W[0] = Ps[2];
     W[1] = Ps[5];
     W[2] = Ps[7];
     W[3] = Ps[8];
-    const float s0 = 0.0027415567780803775F + W[2];
+    const float s0 = 0.0027415568F + W[2];
     if (!isfinite(s0)) { return ROVER_EKF_NON_FINITE; }
     if (!(s0 > 0.0F)) { return ROVER_EKF_NOT_POSITIVE_DEFINITE; }
     const float is0 = (1.0F/s0);
@@ -524,10 +524,10 @@ int rover_ekf_update_compass_nis(rover_ekf_t *s, const float *z, float *nis_out)
     V[1] = -W[1] + K[1]*s0;
     V[2] = -W[2] + K[2]*s0;
     V[3] = -W[3] + K[3]*s0;
-    xs[0] = xs[0] + K[0]*r0;
-    xs[1] = xs[1] + K[1]*r0;
-    xs[2] = xs[2] + K[2]*r0;
-    xs[3] = xs[3] + K[3]*r0;
+    xs[rover_ekf_ix_px] = xs[rover_ekf_ix_px] + K[0]*r0;
+    xs[rover_ekf_ix_py] = xs[rover_ekf_ix_py] + K[1]*r0;
+    xs[rover_ekf_ix_psi] = xs[rover_ekf_ix_psi] + K[2]*r0;
+    xs[rover_ekf_ix_v] = xs[rover_ekf_ix_v] + K[3]*r0;
     Ps[0] = Ps[0] + K[0]*V[0] - K[0]*W[0];
     Ps[1] = Ps[1] + K[0]*V[1] - K[1]*W[0];
     Ps[2] = Ps[2] + K[0]*V[2] - K[2]*W[0];
@@ -538,7 +538,7 @@ int rover_ekf_update_compass_nis(rover_ekf_t *s, const float *z, float *nis_out)
     Ps[7] = Ps[7] + K[2]*V[2] - K[2]*W[2];
     Ps[8] = Ps[8] + K[2]*V[3] - K[3]*W[2];
     Ps[9] = Ps[9] + K[3]*V[3] - K[3]*W[3];
-    xs[2] = rover_ekf_wrap(xs[2]);
+    xs[rover_ekf_ix_psi] = rover_ekf_wrap(xs[rover_ekf_ix_psi]);
     if (!rover_ekf_finite(xs, 4u) || !rover_ekf_finite(Ps, 10u)) {
         return ROVER_EKF_NON_FINITE;
     }

@@ -82,6 +82,11 @@ enum {
     rover_ekf_ix_v = 3  /* index of v in x */
 };
 
+enum {
+    rover_ekf_iu_acc = 0,  /* index of acc in u */
+    rover_ekf_iu_rate = 1  /* index of rate in u */
+};
+
 /* Runtime parameters; rover_ekf_init sets the defaults shown. */
 typedef struct rover_ekf_par {
     float bax;  /* default -25.0F [m] */

@@ -89,6 +89,11 @@ enum {
     rover_ukf_ix_v = 3  /* index of v in x */
 };
 
+enum {
+    rover_ukf_iu_acc = 0,  /* index of acc in u */
+    rover_ukf_iu_rate = 1  /* index of rate in u */
+};
+
 /* Runtime parameters; rover_ukf_init sets the defaults shown. */
 typedef struct rover_ukf_par {
     double bax;  /* default -25.0 [m] */

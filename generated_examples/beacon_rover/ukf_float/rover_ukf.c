@@ -6,8 +6,8 @@
 #include <math.h>
 #include <string.h>
 
-#define ROVER_UKF_PI 3.141592653589793F
-#define ROVER_UKF_TWO_PI 6.283185307179586F
+#define ROVER_UKF_PI 3.1415927F
+#define ROVER_UKF_TWO_PI 6.2831855F
 
 /* Scaled unscented transform, n = 4: lambda = 0.0F, gamma = sqrt(n + lambda). */
 #define ROVER_UKF_WM0 0.0F
@@ -114,10 +114,10 @@ static int rover_ukf_factor(const float *P, float *Lf)
 
 void rover_ukf_init(rover_ukf_t *s)
 {
-    s->x[0] = 0.0F;
-    s->x[1] = 0.0F;
-    s->x[2] = 0.0F;
-    s->x[3] = 1.0F;
+    s->x[rover_ukf_ix_px] = 0.0F;
+    s->x[rover_ukf_ix_py] = 0.0F;
+    s->x[rover_ukf_ix_psi] = 0.0F;
+    s->x[rover_ukf_ix_v] = 1.0F;
     s->P[0] = 0.25F;
     s->P[1] = 0.0F;
     s->P[2] = 0.0F;
@@ -125,9 +125,9 @@ void rover_ukf_init(rover_ukf_t *s)
     s->P[4] = 0.25F;
     s->P[5] = 0.0F;
     s->P[6] = 0.0F;
-    s->P[7] = 0.030461741978670857F;
+    s->P[7] = 0.030461742F;
     s->P[8] = 0.0F;
-    s->P[9] = 0.04000000000000001F;
+    s->P[9] = 0.04F;
     s->par.bax = -25.0F;
     s->par.bay = -20.0F;
     s->par.bbx = 25.0F;
@@ -151,7 +151,7 @@ int rover_ukf_set_state(rover_ukf_t *s, const float *x, const float *P)
         return ROVER_UKF_NOT_POSITIVE_DEFINITE;
     }
     memcpy(xn, x, sizeof xn);
-    xn[2] = rover_ukf_wrap(xn[2]);
+    xn[rover_ukf_ix_psi] = rover_ukf_wrap(xn[rover_ukf_ix_psi]);
     memcpy(s->x, xn, sizeof xn);
     memcpy(s->P, P, sizeof s->P);
     return ROVER_UKF_OK;
@@ -202,8 +202,8 @@ int rover_ukf_predict(rover_ukf_t *s, const float *u, float dt)
     const float fg2_2 = 2.0F*Lf[7];
     const float fg3_2 = 2.0F*Lf[8];
     const float fg3_3 = 2.0F*Lf[9];
-    const float fas0 = sinf(x[2]);
-    const float fak0 = cosf(x[2]);
+    const float fas0 = sinf(x[rover_ukf_ix_psi]);
+    const float fak0 = cosf(x[rover_ukf_ix_psi]);
     const float fr0_sd0 = sinf(fg2_0);
     const float fr0_cd0 = cosf(fg2_0);
     const float fr0_x0 = fas0*fr0_cd0;
@@ -234,7 +234,7 @@ int rover_ukf_predict(rover_ukf_t *s, const float *u, float dt)
     const float fr0_sm2 = fr0_x2 - fr0_y2;
     const float fr0_cp2 = fr0_z2 - fr0_w2;
     const float fr0_cm2 = fr0_w2 + fr0_z2;
-    const float fa1 = x[2] + dt*u[1];
+    const float fa1 = x[rover_ukf_ix_psi] + dt*u[rover_ukf_iu_rate];
     const float fas1 = sinf(fa1);
     const float fak1 = cosf(fa1);
     const float fr1_sd0 = sinf(fg2_0);
@@ -267,7 +267,7 @@ int rover_ukf_predict(rover_ukf_t *s, const float *u, float dt)
     const float fr1_sm2 = fr1_x2 - fr1_y2;
     const float fr1_cp2 = fr1_z2 - fr1_w2;
     const float fr1_cm2 = fr1_w2 + fr1_z2;
-    const float fa2 = x[2] + (0.5F)*dt*u[1];
+    const float fa2 = x[rover_ukf_ix_psi] + (0.5F)*dt*u[rover_ukf_iu_rate];
     const float fas2 = sinf(fa2);
     const float fak2 = cosf(fa2);
     const float fr2_sd0 = sinf(fg2_0);
@@ -300,34 +300,34 @@ int rover_ukf_predict(rover_ukf_t *s, const float *u, float dt)
     const float fr2_sm2 = fr2_x2 - fr2_y2;
     const float fr2_cp2 = fr2_z2 - fr2_w2;
     const float fr2_cm2 = fr2_w2 + fr2_z2;
-    const float ft0 = dt*u[0];
-    const float ft1 = ft0 + x[3];
-    const float ft2 = x[3] + (0.5F)*ft0;
+    const float ft0 = dt*u[rover_ukf_iu_acc];
+    const float ft1 = ft0 + x[rover_ukf_ix_v];
+    const float ft2 = x[rover_ukf_ix_v] + (0.5F)*ft0;
     const float ft3 = 4.0F*ft2;
-    const float ft4 = (0.16666666666666666F)*dt;
-    const float ft5 = fg3_0 + x[3];
+    const float ft4 = (0.16666667F)*dt;
+    const float ft5 = fg3_0 + x[rover_ukf_ix_v];
     const float ft6 = fg3_0 + ft1;
     const float ft7 = 4.0F*fg3_0 + 4.0F*ft2;
-    const float ft8 = -x[3];
+    const float ft8 = -x[rover_ukf_ix_v];
     const float ft9 = -fg3_0 - ft8;
     const float ft10 = -fg3_0;
     const float ft11 = ft1 + ft10;
     const float ft12 = 4.0F*ft10 + 4.0F*ft2;
-    const float ft13 = fg3_1 + x[3];
+    const float ft13 = fg3_1 + x[rover_ukf_ix_v];
     const float ft14 = fg3_1 + ft1;
     const float ft15 = 4.0F*fg3_1 + 4.0F*ft2;
     const float ft16 = -fg3_1 - ft8;
     const float ft17 = -fg3_1;
     const float ft18 = ft1 + ft17;
     const float ft19 = 4.0F*ft17 + 4.0F*ft2;
-    const float ft20 = fg3_2 + x[3];
+    const float ft20 = fg3_2 + x[rover_ukf_ix_v];
     const float ft21 = fg3_2 + ft1;
     const float ft22 = 4.0F*fg3_2 + 4.0F*ft2;
     const float ft23 = -fg3_2 - ft8;
     const float ft24 = -fg3_2;
     const float ft25 = ft1 + ft24;
     const float ft26 = 4.0F*ft2 + 4.0F*ft24;
-    const float ft27 = fg3_3 + x[3];
+    const float ft27 = fg3_3 + x[rover_ukf_ix_v];
     const float ft28 = fg3_3 + ft1;
     const float ft29 = fg3_3 + ft2;
     const float ft30 = 4.0F*fak2;
@@ -336,27 +336,27 @@ int rover_ukf_predict(rover_ukf_t *s, const float *u, float dt)
     const float ft33 = ft1 + ft32;
     const float ft34 = ft2 + ft32;
     const float ft35 = 4.0F*fas2;
-    const float ft36 = 0.0001F*dt;
-    const float fc0 = x[0] + ft4*(fak0*x[3] + fak1*ft1 + fak2*ft3);
-    const float fc1 = x[1] + ft4*(fas0*x[3] + fas1*ft1 + fas2*ft3);
-    const float fc2 = x[2] + dt*u[1];
-    const float fp0_0 = fg0_0 + x[0] + ft4*(fr0_cp0*ft5 + fr1_cp0*ft6 + fr2_cp0*ft7);
-    const float fm0_0 = x[0] - fg0_0 + ft4*(fr0_cm0*ft9 + fr1_cm0*ft11 + fr2_cm0*ft12);
-    const float fp0_1 = fg1_0 + x[1] + ft4*(fr0_sp0*ft5 + fr1_sp0*ft6 + fr2_sp0*ft7);
-    const float fm0_1 = x[1] - fg1_0 + ft4*(fr0_sm0*ft9 + fr1_sm0*ft11 + fr2_sm0*ft12);
-    const float fp1_0 = x[0] + ft4*(fr0_cp1*ft13 + fr1_cp1*ft14 + fr2_cp1*ft15);
-    const float fm1_0 = x[0] + ft4*(fr0_cm1*ft16 + fr1_cm1*ft18 + fr2_cm1*ft19);
-    const float fp1_1 = fg1_1 + x[1] + ft4*(fr0_sp1*ft13 + fr1_sp1*ft14 + fr2_sp1*ft15);
-    const float fm1_1 = x[1] - fg1_1 + ft4*(fr0_sm1*ft16 + fr1_sm1*ft18 + fr2_sm1*ft19);
-    const float fp2_0 = x[0] + ft4*(fr0_cp2*ft20 + fr1_cp2*ft21 + fr2_cp2*ft22);
-    const float fm2_0 = x[0] + ft4*(fr0_cm2*ft23 + fr1_cm2*ft25 + fr2_cm2*ft26);
-    const float fp2_1 = x[1] + ft4*(fr0_sp2*ft20 + fr1_sp2*ft21 + fr2_sp2*ft22);
-    const float fm2_1 = x[1] + ft4*(fr0_sm2*ft23 + fr1_sm2*ft25 + fr2_sm2*ft26);
-    const float fp3_0 = x[0] + ft4*(fak0*ft27 + fak1*ft28 + ft29*ft30);
-    const float fm3_0 = x[0] + ft4*(fak0*ft31 + fak1*ft33 + ft30*ft34);
-    const float fp3_1 = x[1] + ft4*(fas0*ft27 + fas1*ft28 + ft29*ft35);
-    const float fm3_1 = x[1] + ft4*(fas0*ft31 + fas1*ft33 + ft34*ft35);
-    const float Q3_3 = 0.0025000000000000005F*dt;
+    const float ft36 = 1.0e-04F*dt;
+    const float fc0 = x[rover_ukf_ix_px] + ft4*(fak0*x[rover_ukf_ix_v] + fak1*ft1 + fak2*ft3);
+    const float fc1 = x[rover_ukf_ix_py] + ft4*(fas0*x[rover_ukf_ix_v] + fas1*ft1 + fas2*ft3);
+    const float fc2 = x[rover_ukf_ix_psi] + dt*u[rover_ukf_iu_rate];
+    const float fp0_0 = fg0_0 + x[rover_ukf_ix_px] + ft4*(fr0_cp0*ft5 + fr1_cp0*ft6 + fr2_cp0*ft7);
+    const float fm0_0 = x[rover_ukf_ix_px] - fg0_0 + ft4*(fr0_cm0*ft9 + fr1_cm0*ft11 + fr2_cm0*ft12);
+    const float fp0_1 = fg1_0 + x[rover_ukf_ix_py] + ft4*(fr0_sp0*ft5 + fr1_sp0*ft6 + fr2_sp0*ft7);
+    const float fm0_1 = x[rover_ukf_ix_py] - fg1_0 + ft4*(fr0_sm0*ft9 + fr1_sm0*ft11 + fr2_sm0*ft12);
+    const float fp1_0 = x[rover_ukf_ix_px] + ft4*(fr0_cp1*ft13 + fr1_cp1*ft14 + fr2_cp1*ft15);
+    const float fm1_0 = x[rover_ukf_ix_px] + ft4*(fr0_cm1*ft16 + fr1_cm1*ft18 + fr2_cm1*ft19);
+    const float fp1_1 = fg1_1 + x[rover_ukf_ix_py] + ft4*(fr0_sp1*ft13 + fr1_sp1*ft14 + fr2_sp1*ft15);
+    const float fm1_1 = x[rover_ukf_ix_py] - fg1_1 + ft4*(fr0_sm1*ft16 + fr1_sm1*ft18 + fr2_sm1*ft19);
+    const float fp2_0 = x[rover_ukf_ix_px] + ft4*(fr0_cp2*ft20 + fr1_cp2*ft21 + fr2_cp2*ft22);
+    const float fm2_0 = x[rover_ukf_ix_px] + ft4*(fr0_cm2*ft23 + fr1_cm2*ft25 + fr2_cm2*ft26);
+    const float fp2_1 = x[rover_ukf_ix_py] + ft4*(fr0_sp2*ft20 + fr1_sp2*ft21 + fr2_sp2*ft22);
+    const float fm2_1 = x[rover_ukf_ix_py] + ft4*(fr0_sm2*ft23 + fr1_sm2*ft25 + fr2_sm2*ft26);
+    const float fp3_0 = x[rover_ukf_ix_px] + ft4*(fak0*ft27 + fak1*ft28 + ft29*ft30);
+    const float fm3_0 = x[rover_ukf_ix_px] + ft4*(fak0*ft31 + fak1*ft33 + ft30*ft34);
+    const float fp3_1 = x[rover_ukf_ix_py] + ft4*(fas0*ft27 + fas1*ft28 + ft29*ft35);
+    const float fm3_1 = x[rover_ukf_ix_py] + ft4*(fas0*ft31 + fas1*ft33 + ft34*ft35);
+    const float Q3_3 = 0.0025F*dt;
     const float fq0_0 = fm0_0 + fp0_0;
     const float fq1_0 = fm1_0 + fp1_0;
     const float fq2_0 = fm2_0 + fp2_0;
@@ -404,10 +404,10 @@ int rover_ukf_predict(rover_ukf_t *s, const float *u, float dt)
     const float fv2_2 = 0.25F*(ea[5] + ea[6]);
     ea[7] = rover_ukf_wrap(fc2 - fmu2);
     const float fv3_2 = 0.5F*ea[7];
-    xn[0] = fmu0;
-    xn[1] = fmu1;
-    xn[2] = rover_ukf_wrap(fmu2);
-    xn[3] = ft1;
+    xn[rover_ukf_ix_px] = fmu0;
+    xn[rover_ukf_ix_py] = fmu1;
+    xn[rover_ukf_ix_psi] = rover_ukf_wrap(fmu2);
+    xn[rover_ukf_ix_v] = ft1;
     Pn[0] = ft36 + (fu0_0*fu0_0) + (fu1_0*fu1_0) + (fu2_0*fu2_0) + (fu3_0*fu3_0) + (fv0_0*fv0_0) + (fv1_0*fv1_0) + (fv2_0*fv2_0) + (fv3_0*fv3_0) + 2.0F*(fe0*fe0);
     Pn[1] = fu0_0*fu0_1 + fu1_0*fu1_1 + fu2_0*fu2_1 + fu3_0*fu3_1 + fv0_0*fv0_1 + fv1_0*fv1_1 + fv2_0*fv2_1 + fv3_0*fv3_1 + 2.0F*fe0*fe1;
     Pn[2] = fu0_0*fu0_2 + fu1_0*fu1_2 + fu2_0*fu2_2 + fv0_0*fv0_2 + fv1_0*fv1_2 + fv2_0*fv2_2 + fv3_0*fv3_2 + 2.0F*ea[0]*fe0;
@@ -457,12 +457,12 @@ int rover_ukf_update_range_a_nis(rover_ukf_t *s, const float *z, float *nis_out)
     const float hg0_0 = 2.0F*Lf[0];
     const float hg1_0 = 2.0F*Lf[1];
     const float hg1_1 = 2.0F*Lf[4];
-    const float ht0 = par->bax - x[0];
+    const float ht0 = par->bax - x[rover_ukf_ix_px];
     const float ht1 = (ht0*ht0);
-    const float ht2 = par->bay - x[1];
+    const float ht2 = par->bay - x[rover_ukf_ix_py];
     const float ht3 = sqrtf(ht1 + (ht2*ht2));
-    const float ht4 = x[1] - par->bay;
-    const float hp0_0 = sqrtf(((hg1_0 + ht4)*(hg1_0 + ht4)) + ((hg0_0 + x[0] - par->bax)*(hg0_0 + x[0] - par->bax)));
+    const float ht4 = x[rover_ukf_ix_py] - par->bay;
+    const float hp0_0 = sqrtf(((hg1_0 + ht4)*(hg1_0 + ht4)) + ((hg0_0 + x[rover_ukf_ix_px] - par->bax)*(hg0_0 + x[rover_ukf_ix_px] - par->bax)));
     const float hm0_0 = sqrtf(((-hg0_0 - ht0)*(-hg0_0 - ht0)) + ((-hg1_0 - ht2)*(-hg1_0 - ht2)));
     const float hp1_0 = sqrtf(ht1 + ((hg1_1 + ht4)*(hg1_1 + ht4)));
     const float hm1_0 = sqrtf(ht1 + ((-hg1_1 - ht2)*(-hg1_1 - ht2)));
@@ -484,7 +484,7 @@ int rover_ukf_update_range_a_nis(rover_ukf_t *s, const float *z, float *nis_out)
     const float C1_0 = Lf[1]*hu0_0 + Lf[4]*hu1_0;
     const float C2_0 = Lf[2]*hu0_0 + Lf[5]*hu1_0;
     const float C3_0 = Lf[3]*hu0_0 + Lf[6]*hu1_0;
-    const float S0_0 = 0.010000000000000002F + (hu0_0*hu0_0) + (hu1_0*hu1_0) + (hv0_0*hv0_0) + (hv1_0*hv1_0) + (hv2_0*hv2_0) + (hv3_0*hv3_0) + 2.0F*(he0*he0);
+    const float S0_0 = 0.01F + (hu0_0*hu0_0) + (hu1_0*hu1_0) + (hv0_0*hv0_0) + (hv1_0*hv1_0) + (hv2_0*hv2_0) + (hv3_0*hv3_0) + 2.0F*(he0*he0);
     const float Sd0 = S0_0;
     if (!isfinite(Sd0)) { return ROVER_UKF_NON_FINITE; }
     if (!(Sd0 > 0.0F)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
@@ -494,10 +494,10 @@ int rover_ukf_update_range_a_nis(rover_ukf_t *s, const float *z, float *nis_out)
     const float K1 = C1_0*iS;
     const float K2 = C2_0*iS;
     const float K3 = C3_0*iS;
-    xs[0] = x[0] + K0*y[0];
-    xs[1] = x[1] + K1*y[0];
-    xs[2] = x[2] + K2*y[0];
-    xs[3] = x[3] + K3*y[0];
+    xs[rover_ukf_ix_px] = x[rover_ukf_ix_px] + K0*y[0];
+    xs[rover_ukf_ix_py] = x[rover_ukf_ix_py] + K1*y[0];
+    xs[rover_ukf_ix_psi] = x[rover_ukf_ix_psi] + K2*y[0];
+    xs[rover_ukf_ix_v] = x[rover_ukf_ix_v] + K3*y[0];
     Ps[0] = P[0] - C0_0*K0;
     Ps[1] = P[1] - C1_0*K0;
     Ps[2] = P[2] - C2_0*K0;
@@ -508,7 +508,7 @@ int rover_ukf_update_range_a_nis(rover_ukf_t *s, const float *z, float *nis_out)
     Ps[7] = P[7] - C2_0*K2;
     Ps[8] = P[8] - C3_0*K2;
     Ps[9] = P[9] - C3_0*K3;
-    xs[2] = rover_ukf_wrap(xs[2]);
+    xs[rover_ukf_ix_psi] = rover_ukf_wrap(xs[rover_ukf_ix_psi]);
     if (!isfinite(nis)) {
         return ROVER_UKF_NON_FINITE;
     }
@@ -560,12 +560,12 @@ int rover_ukf_update_range_b_nis(rover_ukf_t *s, const float *z, float *nis_out)
     const float hg0_0 = 2.0F*Lf[0];
     const float hg1_0 = 2.0F*Lf[1];
     const float hg1_1 = 2.0F*Lf[4];
-    const float ht0 = par->bbx - x[0];
+    const float ht0 = par->bbx - x[rover_ukf_ix_px];
     const float ht1 = (ht0*ht0);
-    const float ht2 = par->bby - x[1];
+    const float ht2 = par->bby - x[rover_ukf_ix_py];
     const float ht3 = sqrtf(ht1 + (ht2*ht2));
-    const float ht4 = x[1] - par->bby;
-    const float hp0_0 = sqrtf(((hg1_0 + ht4)*(hg1_0 + ht4)) + ((hg0_0 + x[0] - par->bbx)*(hg0_0 + x[0] - par->bbx)));
+    const float ht4 = x[rover_ukf_ix_py] - par->bby;
+    const float hp0_0 = sqrtf(((hg1_0 + ht4)*(hg1_0 + ht4)) + ((hg0_0 + x[rover_ukf_ix_px] - par->bbx)*(hg0_0 + x[rover_ukf_ix_px] - par->bbx)));
     const float hm0_0 = sqrtf(((-hg0_0 - ht0)*(-hg0_0 - ht0)) + ((-hg1_0 - ht2)*(-hg1_0 - ht2)));
     const float hp1_0 = sqrtf(ht1 + ((hg1_1 + ht4)*(hg1_1 + ht4)));
     const float hm1_0 = sqrtf(ht1 + ((-hg1_1 - ht2)*(-hg1_1 - ht2)));
@@ -587,7 +587,7 @@ int rover_ukf_update_range_b_nis(rover_ukf_t *s, const float *z, float *nis_out)
     const float C1_0 = Lf[1]*hu0_0 + Lf[4]*hu1_0;
     const float C2_0 = Lf[2]*hu0_0 + Lf[5]*hu1_0;
     const float C3_0 = Lf[3]*hu0_0 + Lf[6]*hu1_0;
-    const float S0_0 = 0.010000000000000002F + (hu0_0*hu0_0) + (hu1_0*hu1_0) + (hv0_0*hv0_0) + (hv1_0*hv1_0) + (hv2_0*hv2_0) + (hv3_0*hv3_0) + 2.0F*(he0*he0);
+    const float S0_0 = 0.01F + (hu0_0*hu0_0) + (hu1_0*hu1_0) + (hv0_0*hv0_0) + (hv1_0*hv1_0) + (hv2_0*hv2_0) + (hv3_0*hv3_0) + 2.0F*(he0*he0);
     const float Sd0 = S0_0;
     if (!isfinite(Sd0)) { return ROVER_UKF_NON_FINITE; }
     if (!(Sd0 > 0.0F)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
@@ -597,10 +597,10 @@ int rover_ukf_update_range_b_nis(rover_ukf_t *s, const float *z, float *nis_out)
     const float K1 = C1_0*iS;
     const float K2 = C2_0*iS;
     const float K3 = C3_0*iS;
-    xs[0] = x[0] + K0*y[0];
-    xs[1] = x[1] + K1*y[0];
-    xs[2] = x[2] + K2*y[0];
-    xs[3] = x[3] + K3*y[0];
+    xs[rover_ukf_ix_px] = x[rover_ukf_ix_px] + K0*y[0];
+    xs[rover_ukf_ix_py] = x[rover_ukf_ix_py] + K1*y[0];
+    xs[rover_ukf_ix_psi] = x[rover_ukf_ix_psi] + K2*y[0];
+    xs[rover_ukf_ix_v] = x[rover_ukf_ix_v] + K3*y[0];
     Ps[0] = P[0] - C0_0*K0;
     Ps[1] = P[1] - C1_0*K0;
     Ps[2] = P[2] - C2_0*K0;
@@ -611,7 +611,7 @@ int rover_ukf_update_range_b_nis(rover_ukf_t *s, const float *z, float *nis_out)
     Ps[7] = P[7] - C2_0*K2;
     Ps[8] = P[8] - C3_0*K2;
     Ps[9] = P[9] - C3_0*K3;
-    xs[2] = rover_ukf_wrap(xs[2]);
+    xs[rover_ukf_ix_psi] = rover_ukf_wrap(xs[rover_ukf_ix_psi]);
     if (!isfinite(nis)) {
         return ROVER_UKF_NON_FINITE;
     }
@@ -663,21 +663,21 @@ int rover_ukf_update_range_cd_nis(rover_ukf_t *s, const float *z, float *nis_out
     const float hg0_0 = 2.0F*Lf[0];
     const float hg1_0 = 2.0F*Lf[1];
     const float hg1_1 = 2.0F*Lf[4];
-    const float ht0 = -x[0];
+    const float ht0 = -x[rover_ukf_ix_px];
     const float ht1 = ht0 + par->bcx;
     const float ht2 = (ht1*ht1);
-    const float ht3 = -x[1];
+    const float ht3 = -x[rover_ukf_ix_py];
     const float ht4 = ht3 + par->bcy;
     const float ht5 = sqrtf(ht2 + (ht4*ht4));
     const float ht6 = ht0 + par->bdx;
     const float ht7 = (ht6*ht6);
     const float ht8 = ht3 + par->bdy;
     const float ht9 = sqrtf(ht7 + (ht8*ht8));
-    const float ht10 = hg0_0 + x[0];
+    const float ht10 = hg0_0 + x[rover_ukf_ix_px];
     const float ht11 = -par->bcy;
-    const float ht12 = hg1_0 + x[1];
+    const float ht12 = hg1_0 + x[rover_ukf_ix_py];
     const float ht13 = -par->bdy;
-    const float ht14 = hg1_1 + x[1];
+    const float ht14 = hg1_1 + x[rover_ukf_ix_py];
     const float hp0_0 = sqrtf(((ht10 - par->bcx)*(ht10 - par->bcx)) + ((ht11 + ht12)*(ht11 + ht12)));
     const float hm0_0 = sqrtf(((-hg0_0 - ht1)*(-hg0_0 - ht1)) + ((-hg1_0 - ht4)*(-hg1_0 - ht4)));
     const float hp0_1 = sqrtf(((ht10 - par->bdx)*(ht10 - par->bdx)) + ((ht12 + ht13)*(ht12 + ht13)));
@@ -747,10 +747,10 @@ int rover_ukf_update_range_cd_nis(rover_ukf_t *s, const float *z, float *nis_out
     const float B2_1 = Lsi1*(C2_1 - B2_0*Ls1_0);
     const float B3_0 = C3_0*Lsi0;
     const float B3_1 = Lsi1*(C3_1 - B3_0*Ls1_0);
-    xs[0] = x[0] + B0_0*b0 + B0_1*b1;
-    xs[1] = x[1] + B1_0*b0 + B1_1*b1;
-    xs[2] = x[2] + B2_0*b0 + B2_1*b1;
-    xs[3] = x[3] + B3_0*b0 + B3_1*b1;
+    xs[rover_ukf_ix_px] = x[rover_ukf_ix_px] + B0_0*b0 + B0_1*b1;
+    xs[rover_ukf_ix_py] = x[rover_ukf_ix_py] + B1_0*b0 + B1_1*b1;
+    xs[rover_ukf_ix_psi] = x[rover_ukf_ix_psi] + B2_0*b0 + B2_1*b1;
+    xs[rover_ukf_ix_v] = x[rover_ukf_ix_v] + B3_0*b0 + B3_1*b1;
     Ps[0] = P[0] - (B0_0*B0_0) - (B0_1*B0_1);
     Ps[1] = P[1] - B0_0*B1_0 - B0_1*B1_1;
     Ps[2] = P[2] - B0_0*B2_0 - B0_1*B2_1;
@@ -761,7 +761,7 @@ int rover_ukf_update_range_cd_nis(rover_ukf_t *s, const float *z, float *nis_out
     Ps[7] = P[7] - (B2_0*B2_0) - (B2_1*B2_1);
     Ps[8] = P[8] - B2_0*B3_0 - B2_1*B3_1;
     Ps[9] = P[9] - (B3_0*B3_0) - (B3_1*B3_1);
-    xs[2] = rover_ukf_wrap(xs[2]);
+    xs[rover_ukf_ix_psi] = rover_ukf_wrap(xs[rover_ukf_ix_psi]);
     if (!isfinite(nis)) {
         return ROVER_UKF_NON_FINITE;
     }
@@ -814,28 +814,28 @@ int rover_ukf_update_compass_nis(rover_ukf_t *s, const float *z, float *nis_out)
     const float hg2_1 = 2.0F*Lf[5];
     const float hg2_2 = 2.0F*Lf[7];
     const float hkk0 = 2.0F + 2.0F*cosf(hg2_0) + 2.0F*cosf(hg2_1) + 2.0F*cosf(hg2_2);
-    const float hmu0 = atan2f(hkk0*sinf(x[2]), hkk0*cosf(x[2]));
-    ea[0] = rover_ukf_wrap(x[2] - hmu0);
-    ea[1] = rover_ukf_wrap(hg2_0 + x[2] - hmu0);
-    ea[2] = rover_ukf_wrap(x[2] - hg2_0 - hmu0);
+    const float hmu0 = atan2f(hkk0*sinf(x[rover_ukf_ix_psi]), hkk0*cosf(x[rover_ukf_ix_psi]));
+    ea[0] = rover_ukf_wrap(x[rover_ukf_ix_psi] - hmu0);
+    ea[1] = rover_ukf_wrap(hg2_0 + x[rover_ukf_ix_psi] - hmu0);
+    ea[2] = rover_ukf_wrap(x[rover_ukf_ix_psi] - hg2_0 - hmu0);
     const float hu0_0 = 0.25F*(ea[1] - ea[2]);
     const float hv0_0 = 0.25F*(ea[1] + ea[2]);
-    ea[3] = rover_ukf_wrap(hg2_1 + x[2] - hmu0);
-    ea[4] = rover_ukf_wrap(x[2] - hg2_1 - hmu0);
+    ea[3] = rover_ukf_wrap(hg2_1 + x[rover_ukf_ix_psi] - hmu0);
+    ea[4] = rover_ukf_wrap(x[rover_ukf_ix_psi] - hg2_1 - hmu0);
     const float hu1_0 = 0.25F*(ea[3] - ea[4]);
     const float hv1_0 = 0.25F*(ea[3] + ea[4]);
-    ea[5] = rover_ukf_wrap(hg2_2 + x[2] - hmu0);
-    ea[6] = rover_ukf_wrap(x[2] - hg2_2 - hmu0);
+    ea[5] = rover_ukf_wrap(hg2_2 + x[rover_ukf_ix_psi] - hmu0);
+    ea[6] = rover_ukf_wrap(x[rover_ukf_ix_psi] - hg2_2 - hmu0);
     const float hu2_0 = 0.25F*(ea[5] - ea[6]);
     const float hv2_0 = 0.25F*(ea[5] + ea[6]);
-    ea[7] = rover_ukf_wrap(x[2] - hmu0);
+    ea[7] = rover_ukf_wrap(x[rover_ukf_ix_psi] - hmu0);
     const float hv3_0 = 0.5F*ea[7];
     y[0] = rover_ukf_wrap(z[0] - hmu0);
     const float C0_0 = Lf[0]*hu0_0;
     const float C1_0 = Lf[1]*hu0_0 + Lf[4]*hu1_0;
     const float C2_0 = Lf[2]*hu0_0 + Lf[5]*hu1_0 + Lf[7]*hu2_0;
     const float C3_0 = Lf[3]*hu0_0 + Lf[6]*hu1_0 + Lf[8]*hu2_0;
-    const float S0_0 = 0.0027415567780803775F + (hu0_0*hu0_0) + (hu1_0*hu1_0) + (hu2_0*hu2_0) + (hv0_0*hv0_0) + (hv1_0*hv1_0) + (hv2_0*hv2_0) + (hv3_0*hv3_0) + 2.0F*(ea[0]*ea[0]);
+    const float S0_0 = 0.0027415568F + (hu0_0*hu0_0) + (hu1_0*hu1_0) + (hu2_0*hu2_0) + (hv0_0*hv0_0) + (hv1_0*hv1_0) + (hv2_0*hv2_0) + (hv3_0*hv3_0) + 2.0F*(ea[0]*ea[0]);
     const float Sd0 = S0_0;
     if (!isfinite(Sd0)) { return ROVER_UKF_NON_FINITE; }
     if (!(Sd0 > 0.0F)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
@@ -845,10 +845,10 @@ int rover_ukf_update_compass_nis(rover_ukf_t *s, const float *z, float *nis_out)
     const float K1 = C1_0*iS;
     const float K2 = C2_0*iS;
     const float K3 = C3_0*iS;
-    xs[0] = x[0] + K0*y[0];
-    xs[1] = x[1] + K1*y[0];
-    xs[2] = x[2] + K2*y[0];
-    xs[3] = x[3] + K3*y[0];
+    xs[rover_ukf_ix_px] = x[rover_ukf_ix_px] + K0*y[0];
+    xs[rover_ukf_ix_py] = x[rover_ukf_ix_py] + K1*y[0];
+    xs[rover_ukf_ix_psi] = x[rover_ukf_ix_psi] + K2*y[0];
+    xs[rover_ukf_ix_v] = x[rover_ukf_ix_v] + K3*y[0];
     Ps[0] = P[0] - C0_0*K0;
     Ps[1] = P[1] - C1_0*K0;
     Ps[2] = P[2] - C2_0*K0;
@@ -859,7 +859,7 @@ int rover_ukf_update_compass_nis(rover_ukf_t *s, const float *z, float *nis_out)
     Ps[7] = P[7] - C2_0*K2;
     Ps[8] = P[8] - C3_0*K2;
     Ps[9] = P[9] - C3_0*K3;
-    xs[2] = rover_ukf_wrap(xs[2]);
+    xs[rover_ukf_ix_psi] = rover_ukf_wrap(xs[rover_ukf_ix_psi]);
     if (!isfinite(nis)) {
         return ROVER_UKF_NON_FINITE;
     }

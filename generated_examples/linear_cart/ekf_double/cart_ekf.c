@@ -49,9 +49,9 @@ static int cart_ekf_commit_pd(const double *P)
 
 void cart_ekf_init(cart_ekf_t *s)
 {
-    s->x[0] = 0.0;
-    s->x[1] = 0.0;
-    s->x[2] = 0.0;
+    s->x[cart_ekf_ix_pos] = 0.0;
+    s->x[cart_ekf_ix_vel] = 0.0;
+    s->x[cart_ekf_ix_dist] = 0.0;
     s->P[0] = 0.0001;
     s->P[1] = 0.0;
     s->P[2] = 0.0;
@@ -108,14 +108,14 @@ int cart_ekf_predict(cart_ekf_t *s, const double *u, double dt)
         return CART_EKF_BAD_DT;
     }
 
-    const double t0 = u[0] + x[2];
+    const double t0 = u[cart_ekf_iu_force] + x[cart_ekf_ix_dist];
     const double t1 = (1.0/par->mass);
     const double t2 = (0.5)*(dt*dt);
     const double t3 = t1*t2;
     const double t4 = dt*t1;
-    xn[0] = x[0] + dt*x[1] + t0*t3;
-    xn[1] = x[1] + t0*t4;
-    xn[2] = x[2];
+    xn[cart_ekf_ix_pos] = x[cart_ekf_ix_pos] + dt*x[cart_ekf_ix_vel] + t0*t3;
+    xn[cart_ekf_ix_vel] = x[cart_ekf_ix_vel] + t0*t4;
+    xn[cart_ekf_ix_dist] = x[cart_ekf_ix_dist];
     const double Q0_0 = (0.3333333333333333)*par->q_acc*(dt*dt*dt);
     const double Q0_1 = par->q_acc*t2;
     const double Q1_1 = dt*par->q_acc;
@@ -163,7 +163,7 @@ int cart_ekf_update_encoder_nis(cart_ekf_t *s, const double *z, double *nis_out)
 
     memcpy(xs, s->x, sizeof xs);
     memcpy(Ps, s->P, sizeof Ps);
-    y[0] = z[0] - x[0];
+    y[0] = z[0] - x[cart_ekf_ix_pos];
     W[0] = Ps[0];
     W[1] = Ps[1];
     W[2] = Ps[2];
@@ -179,9 +179,9 @@ int cart_ekf_update_encoder_nis(cart_ekf_t *s, const double *z, double *nis_out)
     V[0] = -W[0] + K[0]*s0;
     V[1] = -W[1] + K[1]*s0;
     V[2] = -W[2] + K[2]*s0;
-    xs[0] = xs[0] + K[0]*r0;
-    xs[1] = xs[1] + K[1]*r0;
-    xs[2] = xs[2] + K[2]*r0;
+    xs[cart_ekf_ix_pos] = xs[cart_ekf_ix_pos] + K[0]*r0;
+    xs[cart_ekf_ix_vel] = xs[cart_ekf_ix_vel] + K[1]*r0;
+    xs[cart_ekf_ix_dist] = xs[cart_ekf_ix_dist] + K[2]*r0;
     Ps[0] = Ps[0] + K[0]*V[0] - K[0]*W[0];
     Ps[1] = Ps[1] + K[0]*V[1] - K[1]*W[0];
     Ps[2] = Ps[2] + K[0]*V[2] - K[2]*W[0];
@@ -232,7 +232,7 @@ int cart_ekf_update_speed_nis(cart_ekf_t *s, const double *z, double *nis_out)
 
     memcpy(xs, s->x, sizeof xs);
     memcpy(Ps, s->P, sizeof Ps);
-    y[0] = z[0] - x[1];
+    y[0] = z[0] - x[cart_ekf_ix_vel];
     W[0] = Ps[1];
     W[1] = Ps[3];
     W[2] = Ps[4];
@@ -248,9 +248,9 @@ int cart_ekf_update_speed_nis(cart_ekf_t *s, const double *z, double *nis_out)
     V[0] = -W[0] + K[0]*s0;
     V[1] = -W[1] + K[1]*s0;
     V[2] = -W[2] + K[2]*s0;
-    xs[0] = xs[0] + K[0]*r0;
-    xs[1] = xs[1] + K[1]*r0;
-    xs[2] = xs[2] + K[2]*r0;
+    xs[cart_ekf_ix_pos] = xs[cart_ekf_ix_pos] + K[0]*r0;
+    xs[cart_ekf_ix_vel] = xs[cart_ekf_ix_vel] + K[1]*r0;
+    xs[cart_ekf_ix_dist] = xs[cart_ekf_ix_dist] + K[2]*r0;
     Ps[0] = Ps[0] + K[0]*V[0] - K[0]*W[0];
     Ps[1] = Ps[1] + K[0]*V[1] - K[1]*W[0];
     Ps[2] = Ps[2] + K[0]*V[2] - K[2]*W[0];

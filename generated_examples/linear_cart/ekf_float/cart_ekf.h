@@ -75,6 +75,10 @@ enum {
     cart_ekf_ix_dist = 2  /* index of dist in x */
 };
 
+enum {
+    cart_ekf_iu_force = 0  /* index of force in u */
+};
+
 /* Runtime parameters; cart_ekf_init sets the defaults shown. */
 typedef struct cart_ekf_par {
     float mass;  /* default 12.0F [kg] */

@@ -86,9 +86,9 @@ static int cart_ukf_factor(const double *P, double *Lf)
 
 void cart_ukf_init(cart_ukf_t *s)
 {
-    s->x[0] = 0.0;
-    s->x[1] = 0.0;
-    s->x[2] = 0.0;
+    s->x[cart_ukf_ix_pos] = 0.0;
+    s->x[cart_ukf_ix_vel] = 0.0;
+    s->x[cart_ukf_ix_dist] = 0.0;
     s->P[0] = 0.0001;
     s->P[1] = 0.0;
     s->P[2] = 0.0;
@@ -153,20 +153,20 @@ int cart_ukf_predict(cart_ukf_t *s, const double *u, double dt)
             return st;
         }
     }
-    const double ft0 = u[0] + x[2];
+    const double ft0 = u[cart_ukf_iu_force] + x[cart_ukf_ix_dist];
     const double ft1 = (1.0/par->mass);
     const double ft2 = (0.5)*(dt*dt);
     const double ft3 = ft1*ft2;
     const double ft4 = dt*ft1;
-    const double fc0 = x[0] + dt*x[1] + ft0*ft3;
-    const double fc1 = x[1] + ft0*ft4;
+    const double fc0 = x[cart_ukf_ix_pos] + dt*x[cart_ukf_ix_vel] + ft0*ft3;
+    const double fc1 = x[cart_ukf_ix_vel] + ft0*ft4;
     const double Q0_0 = (0.3333333333333333)*par->q_acc*(dt*dt*dt);
     const double Q0_1 = ft2*par->q_acc;
     const double Q1_1 = dt*par->q_acc;
     const double Q2_2 = dt*par->q_dist;
-    xn[0] = fc0;
-    xn[1] = fc1;
-    xn[2] = x[2];
+    xn[cart_ukf_ix_pos] = fc0;
+    xn[cart_ukf_ix_vel] = fc1;
+    xn[cart_ukf_ix_dist] = x[cart_ukf_ix_dist];
     const double AP0_0 = P[0] + P[1]*dt + P[2]*ft3;
     const double AP0_1 = P[1] + P[3]*dt + P[4]*ft3;
     const double AP0_2 = P[2] + P[4]*dt + P[5]*ft3;
@@ -213,7 +213,7 @@ int cart_ukf_update_encoder_nis(cart_ukf_t *s, const double *z, double *nis_out)
             return st;
         }
     }
-    y[0] = z[0] - x[0];
+    y[0] = z[0] - x[cart_ukf_ix_pos];
     const double S0_0 = 2.5e-07 + P[0];
     const double Sd0 = S0_0;
     if (!isfinite(Sd0)) { return CART_UKF_NON_FINITE; }
@@ -223,9 +223,9 @@ int cart_ukf_update_encoder_nis(cart_ukf_t *s, const double *z, double *nis_out)
     const double K0 = P[0]*iS;
     const double K1 = P[1]*iS;
     const double K2 = P[2]*iS;
-    xs[0] = x[0] + K0*y[0];
-    xs[1] = x[1] + K1*y[0];
-    xs[2] = x[2] + K2*y[0];
+    xs[cart_ukf_ix_pos] = x[cart_ukf_ix_pos] + K0*y[0];
+    xs[cart_ukf_ix_vel] = x[cart_ukf_ix_vel] + K1*y[0];
+    xs[cart_ukf_ix_dist] = x[cart_ukf_ix_dist] + K2*y[0];
     Ps[0] = P[0] - K0*P[0];
     Ps[1] = P[1] - K0*P[1];
     Ps[2] = P[2] - K0*P[2];
@@ -279,7 +279,7 @@ int cart_ukf_update_speed_nis(cart_ukf_t *s, const double *z, double *nis_out)
             return st;
         }
     }
-    y[0] = z[0] - x[1];
+    y[0] = z[0] - x[cart_ukf_ix_vel];
     const double S0_0 = 0.0001 + P[3];
     const double Sd0 = S0_0;
     if (!isfinite(Sd0)) { return CART_UKF_NON_FINITE; }
@@ -289,9 +289,9 @@ int cart_ukf_update_speed_nis(cart_ukf_t *s, const double *z, double *nis_out)
     const double K0 = P[1]*iS;
     const double K1 = P[3]*iS;
     const double K2 = P[4]*iS;
-    xs[0] = x[0] + K0*y[0];
-    xs[1] = x[1] + K1*y[0];
-    xs[2] = x[2] + K2*y[0];
+    xs[cart_ukf_ix_pos] = x[cart_ukf_ix_pos] + K0*y[0];
+    xs[cart_ukf_ix_vel] = x[cart_ukf_ix_vel] + K1*y[0];
+    xs[cart_ukf_ix_dist] = x[cart_ukf_ix_dist] + K2*y[0];
     Ps[0] = P[0] - K0*P[1];
     Ps[1] = P[1] - K0*P[3];
     Ps[2] = P[2] - K0*P[4];

@@ -82,6 +82,10 @@ enum {
     cart_ukf_ix_dist = 2  /* index of dist in x */
 };
 
+enum {
+    cart_ukf_iu_force = 0  /* index of force in u */
+};
+
 /* Runtime parameters; cart_ukf_init sets the defaults shown. */
 typedef struct cart_ukf_par {
     double mass;  /* default 12.0 [kg] */

@@ -10,8 +10,8 @@
 /* Scaled unscented transform, n = 3: lambda = 0.0F, gamma = sqrt(n + lambda). */
 #define CART_UKF_WM0 0.0F
 #define CART_UKF_WC0 2.0F
-#define CART_UKF_WI 0.16666666666666666F
-#define CART_UKF_GAMMA 1.7320508075688772F
+#define CART_UKF_WI 0.16666667F
+#define CART_UKF_GAMMA 1.7320508F
 
 static int cart_ukf_finite(const float *v, size_t len)
 {
@@ -86,13 +86,13 @@ static int cart_ukf_factor(const float *P, float *Lf)
 
 void cart_ukf_init(cart_ukf_t *s)
 {
-    s->x[0] = 0.0F;
-    s->x[1] = 0.0F;
-    s->x[2] = 0.0F;
-    s->P[0] = 0.0001F;
+    s->x[cart_ukf_ix_pos] = 0.0F;
+    s->x[cart_ukf_ix_vel] = 0.0F;
+    s->x[cart_ukf_ix_dist] = 0.0F;
+    s->P[0] = 1.0e-04F;
     s->P[1] = 0.0F;
     s->P[2] = 0.0F;
-    s->P[3] = 0.0025000000000000005F;
+    s->P[3] = 0.0025F;
     s->P[4] = 0.0F;
     s->P[5] = 4.0F;
     s->par.mass = 12.0F;
@@ -153,20 +153,20 @@ int cart_ukf_predict(cart_ukf_t *s, const float *u, float dt)
             return st;
         }
     }
-    const float ft0 = u[0] + x[2];
+    const float ft0 = u[cart_ukf_iu_force] + x[cart_ukf_ix_dist];
     const float ft1 = (1.0F/par->mass);
     const float ft2 = (0.5F)*(dt*dt);
     const float ft3 = ft1*ft2;
     const float ft4 = dt*ft1;
-    const float fc0 = x[0] + dt*x[1] + ft0*ft3;
-    const float fc1 = x[1] + ft0*ft4;
-    const float Q0_0 = (0.3333333333333333F)*par->q_acc*(dt*dt*dt);
+    const float fc0 = x[cart_ukf_ix_pos] + dt*x[cart_ukf_ix_vel] + ft0*ft3;
+    const float fc1 = x[cart_ukf_ix_vel] + ft0*ft4;
+    const float Q0_0 = (0.33333334F)*par->q_acc*(dt*dt*dt);
     const float Q0_1 = ft2*par->q_acc;
     const float Q1_1 = dt*par->q_acc;
     const float Q2_2 = dt*par->q_dist;
-    xn[0] = fc0;
-    xn[1] = fc1;
-    xn[2] = x[2];
+    xn[cart_ukf_ix_pos] = fc0;
+    xn[cart_ukf_ix_vel] = fc1;
+    xn[cart_ukf_ix_dist] = x[cart_ukf_ix_dist];
     const float AP0_0 = P[0] + P[1]*dt + P[2]*ft3;
     const float AP0_1 = P[1] + P[3]*dt + P[4]*ft3;
     const float AP0_2 = P[2] + P[4]*dt + P[5]*ft3;
@@ -213,7 +213,7 @@ int cart_ukf_update_encoder_nis(cart_ukf_t *s, const float *z, float *nis_out)
             return st;
         }
     }
-    y[0] = z[0] - x[0];
+    y[0] = z[0] - x[cart_ukf_ix_pos];
     const float S0_0 = 2.5e-07F + P[0];
     const float Sd0 = S0_0;
     if (!isfinite(Sd0)) { return CART_UKF_NON_FINITE; }
@@ -223,9 +223,9 @@ int cart_ukf_update_encoder_nis(cart_ukf_t *s, const float *z, float *nis_out)
     const float K0 = P[0]*iS;
     const float K1 = P[1]*iS;
     const float K2 = P[2]*iS;
-    xs[0] = x[0] + K0*y[0];
-    xs[1] = x[1] + K1*y[0];
-    xs[2] = x[2] + K2*y[0];
+    xs[cart_ukf_ix_pos] = x[cart_ukf_ix_pos] + K0*y[0];
+    xs[cart_ukf_ix_vel] = x[cart_ukf_ix_vel] + K1*y[0];
+    xs[cart_ukf_ix_dist] = x[cart_ukf_ix_dist] + K2*y[0];
     Ps[0] = P[0] - K0*P[0];
     Ps[1] = P[1] - K0*P[1];
     Ps[2] = P[2] - K0*P[2];
@@ -279,8 +279,8 @@ int cart_ukf_update_speed_nis(cart_ukf_t *s, const float *z, float *nis_out)
             return st;
         }
     }
-    y[0] = z[0] - x[1];
-    const float S0_0 = 0.0001F + P[3];
+    y[0] = z[0] - x[cart_ukf_ix_vel];
+    const float S0_0 = 1.0e-04F + P[3];
     const float Sd0 = S0_0;
     if (!isfinite(Sd0)) { return CART_UKF_NON_FINITE; }
     if (!(Sd0 > 0.0F)) { return CART_UKF_NOT_POSITIVE_DEFINITE; }
@@ -289,9 +289,9 @@ int cart_ukf_update_speed_nis(cart_ukf_t *s, const float *z, float *nis_out)
     const float K0 = P[1]*iS;
     const float K1 = P[3]*iS;
     const float K2 = P[4]*iS;
-    xs[0] = x[0] + K0*y[0];
-    xs[1] = x[1] + K1*y[0];
-    xs[2] = x[2] + K2*y[0];
+    xs[cart_ukf_ix_pos] = x[cart_ukf_ix_pos] + K0*y[0];
+    xs[cart_ukf_ix_vel] = x[cart_ukf_ix_vel] + K1*y[0];
+    xs[cart_ukf_ix_dist] = x[cart_ukf_ix_dist] + K2*y[0];
     Ps[0] = P[0] - K0*P[1];
     Ps[1] = P[1] - K0*P[3];
     Ps[2] = P[2] - K0*P[4];

@@ -45,7 +45,7 @@
  * on the stack of those calls: the named locals total 124 bytes in predict and 92 bytes
  * in the largest update. The real frame depends on the compiler (registers hold many, spills
  * add some): measure it on the target, e.g. gcc -fstack-usage.
- * Weights: Wm0 = 0.0F, Wc0 = 2.0F, Wm_i = Wc_i = 0.16666666666666666F (i = 1..6);
+ * Weights: Wm0 = 0.0F, Wc0 = 2.0F, Wm_i = Wc_i = 0.16666667F (i = 1..6);
  * alpha = 1.0F, beta = 2.0F, kappa = 0.0F.
  */
 #ifndef CART_UKF_H
@@ -80,6 +80,10 @@ enum {
     cart_ukf_ix_pos = 0,  /* index of pos in x */
     cart_ukf_ix_vel = 1,  /* index of vel in x */
     cart_ukf_ix_dist = 2  /* index of dist in x */
+};
+
+enum {
+    cart_ukf_iu_force = 0  /* index of force in u */
 };
 
 /* Runtime parameters; cart_ukf_init sets the defaults shown. */

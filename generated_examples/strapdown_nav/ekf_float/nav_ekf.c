@@ -6,8 +6,8 @@
 #include <math.h>
 #include <string.h>
 
-#define NAV_EKF_PI 3.141592653589793F
-#define NAV_EKF_TWO_PI 6.283185307179586F
+#define NAV_EKF_PI 3.1415927F
+#define NAV_EKF_TWO_PI 6.2831855F
 
 /* Wrap an angle to (-pi, pi]. */
 static float nav_ekf_wrap(float a)
@@ -219,21 +219,21 @@ static int nav_ekf_commit_pd(const float *P)
 
 void nav_ekf_init(nav_ekf_t *s)
 {
-    s->x[0] = 0.0F;
-    s->x[1] = 0.0F;
-    s->x[2] = 0.0F;
-    s->x[3] = 0.0F;
-    s->x[4] = 0.0F;
-    s->x[5] = 0.0F;
-    s->x[6] = 0.0F;
-    s->x[7] = 0.0F;
-    s->x[8] = 0.5F;
-    s->x[9] = 0.0F;
-    s->x[10] = 0.0F;
-    s->x[11] = 0.0F;
-    s->x[12] = 0.0F;
-    s->x[13] = 0.0F;
-    s->x[14] = 0.0F;
+    s->x[nav_ekf_ix_pn] = 0.0F;
+    s->x[nav_ekf_ix_pe] = 0.0F;
+    s->x[nav_ekf_ix_pd] = 0.0F;
+    s->x[nav_ekf_ix_vn] = 0.0F;
+    s->x[nav_ekf_ix_ve] = 0.0F;
+    s->x[nav_ekf_ix_vd] = 0.0F;
+    s->x[nav_ekf_ix_roll] = 0.0F;
+    s->x[nav_ekf_ix_pitch] = 0.0F;
+    s->x[nav_ekf_ix_yaw] = 0.5F;
+    s->x[nav_ekf_ix_bgx] = 0.0F;
+    s->x[nav_ekf_ix_bgy] = 0.0F;
+    s->x[nav_ekf_ix_bgz] = 0.0F;
+    s->x[nav_ekf_ix_bax] = 0.0F;
+    s->x[nav_ekf_ix_bay] = 0.0F;
+    s->x[nav_ekf_ix_baz] = 0.0F;
     s->P[0] = 4.0F;
     s->P[1] = 0.0F;
     s->P[2] = 0.0F;
@@ -309,7 +309,7 @@ void nav_ekf_init(nav_ekf_t *s)
     s->P[72] = 0.0F;
     s->P[73] = 0.0F;
     s->P[74] = 0.0F;
-    s->P[75] = 0.0012184696791468343F;
+    s->P[75] = 0.0012184697F;
     s->P[76] = 0.0F;
     s->P[77] = 0.0F;
     s->P[78] = 0.0F;
@@ -318,7 +318,7 @@ void nav_ekf_init(nav_ekf_t *s)
     s->P[81] = 0.0F;
     s->P[82] = 0.0F;
     s->P[83] = 0.0F;
-    s->P[84] = 0.0012184696791468343F;
+    s->P[84] = 0.0012184697F;
     s->P[85] = 0.0F;
     s->P[86] = 0.0F;
     s->P[87] = 0.0F;
@@ -326,34 +326,34 @@ void nav_ekf_init(nav_ekf_t *s)
     s->P[89] = 0.0F;
     s->P[90] = 0.0F;
     s->P[91] = 0.0F;
-    s->P[92] = 0.007615435494667714F;
+    s->P[92] = 0.0076154354F;
     s->P[93] = 0.0F;
     s->P[94] = 0.0F;
     s->P[95] = 0.0F;
     s->P[96] = 0.0F;
     s->P[97] = 0.0F;
     s->P[98] = 0.0F;
-    s->P[99] = 1.2184696791468344e-05F;
+    s->P[99] = 1.2184697e-05F;
     s->P[100] = 0.0F;
     s->P[101] = 0.0F;
     s->P[102] = 0.0F;
     s->P[103] = 0.0F;
     s->P[104] = 0.0F;
-    s->P[105] = 1.2184696791468344e-05F;
+    s->P[105] = 1.2184697e-05F;
     s->P[106] = 0.0F;
     s->P[107] = 0.0F;
     s->P[108] = 0.0F;
     s->P[109] = 0.0F;
-    s->P[110] = 1.2184696791468344e-05F;
+    s->P[110] = 1.2184697e-05F;
     s->P[111] = 0.0F;
     s->P[112] = 0.0F;
     s->P[113] = 0.0F;
-    s->P[114] = 0.0025000000000000005F;
+    s->P[114] = 0.0025F;
     s->P[115] = 0.0F;
     s->P[116] = 0.0F;
-    s->P[117] = 0.0025000000000000005F;
+    s->P[117] = 0.0025F;
     s->P[118] = 0.0F;
-    s->P[119] = 0.0025000000000000005F;
+    s->P[119] = 0.0025F;
     s->par.g = 9.80665F;
 }
 
@@ -370,9 +370,9 @@ int nav_ekf_set_state(nav_ekf_t *s, const float *x, const float *P)
         return NAV_EKF_NOT_POSITIVE_DEFINITE;
     }
     memcpy(xn, x, sizeof xn);
-    xn[6] = nav_ekf_wrap(xn[6]);
-    xn[7] = nav_ekf_wrap(xn[7]);
-    xn[8] = nav_ekf_wrap(xn[8]);
+    xn[nav_ekf_ix_roll] = nav_ekf_wrap(xn[nav_ekf_ix_roll]);
+    xn[nav_ekf_ix_pitch] = nav_ekf_wrap(xn[nav_ekf_ix_pitch]);
+    xn[nav_ekf_ix_yaw] = nav_ekf_wrap(xn[nav_ekf_ix_yaw]);
     memcpy(s->x, xn, sizeof xn);
     memcpy(s->P, P, sizeof s->P);
     return NAV_EKF_OK;
@@ -405,19 +405,19 @@ int nav_ekf_predict(nav_ekf_t *s, const float *u, float dt)
         return NAV_EKF_BAD_DT;
     }
 
-    const float t0 = cosf(x[8]);
-    const float t1 = cosf(x[7]);
-    const float t2 = u[3] - x[12];
+    const float t0 = cosf(x[nav_ekf_ix_yaw]);
+    const float t1 = cosf(x[nav_ekf_ix_pitch]);
+    const float t2 = u[nav_ekf_iu_fx] - x[nav_ekf_ix_bax];
     const float t3 = t1*t2;
-    const float t4 = u[5] - x[14];
-    const float t5 = sinf(x[6]);
-    const float t6 = sinf(x[8]);
+    const float t4 = u[nav_ekf_iu_fz] - x[nav_ekf_ix_baz];
+    const float t5 = sinf(x[nav_ekf_ix_roll]);
+    const float t6 = sinf(x[nav_ekf_ix_yaw]);
     const float t7 = t5*t6;
-    const float t8 = sinf(x[7]);
-    const float t9 = cosf(x[6]);
+    const float t8 = sinf(x[nav_ekf_ix_pitch]);
+    const float t9 = cosf(x[nav_ekf_ix_roll]);
     const float t10 = t0*t9;
     const float t11 = t7 + t10*t8;
-    const float t12 = u[4] - x[13];
+    const float t12 = u[nav_ekf_iu_fy] - x[nav_ekf_ix_bay];
     const float t13 = t6*t9;
     const float t14 = t0*t5;
     const float t15 = -t13 + t14*t8;
@@ -430,8 +430,8 @@ int nav_ekf_predict(nav_ekf_t *s, const float *u, float dt)
     const float t22 = t1*t12;
     const float t23 = t1*t4;
     const float t24 = (1.0F/t1);
-    const float t25 = u[1] - x[10];
-    const float t26 = u[2] - x[11];
+    const float t25 = u[nav_ekf_iu_wy] - x[nav_ekf_ix_bgy];
+    const float t26 = u[nav_ekf_iu_wz] - x[nav_ekf_ix_bgz];
     const float t27 = t25*t5 + t26*t9;
     const float t28 = t24*t27;
     const float t29 = dt*(t25*t9 - t26*t5);
@@ -447,23 +447,23 @@ int nav_ekf_predict(nav_ekf_t *s, const float *u, float dt)
     const float t39 = 1.0e-06F*dt;
     const float t40 = 0.0004F*dt;
     const float t41 = 2.5e-05F*dt;
-    const float t42 = 1.0000000000000002e-10F*dt;
+    const float t42 = 1.0e-10F*dt;
     const float t43 = 1.0e-08F*dt;
-    xn[0] = x[0] + dt*x[3];
-    xn[1] = x[1] + dt*x[4];
-    xn[2] = x[2] + dt*x[5];
-    xn[3] = t16 + x[3];
-    xn[4] = x[4] + dt*(t17 + t12*t18 + t20*t4);
-    xn[5] = x[5] + dt*(par->g - t21 + t22*t5 + t23*t9);
-    xn[6] = x[6] + dt*(u[0] - x[9] + t28*t8);
-    xn[7] = t29 + x[7];
-    xn[8] = x[8] + dt*t28;
-    xn[9] = x[9];
-    xn[10] = x[10];
-    xn[11] = x[11];
-    xn[12] = x[12];
-    xn[13] = x[13];
-    xn[14] = x[14];
+    xn[nav_ekf_ix_pn] = x[nav_ekf_ix_pn] + dt*x[nav_ekf_ix_vn];
+    xn[nav_ekf_ix_pe] = x[nav_ekf_ix_pe] + dt*x[nav_ekf_ix_ve];
+    xn[nav_ekf_ix_pd] = x[nav_ekf_ix_pd] + dt*x[nav_ekf_ix_vd];
+    xn[nav_ekf_ix_vn] = t16 + x[nav_ekf_ix_vn];
+    xn[nav_ekf_ix_ve] = x[nav_ekf_ix_ve] + dt*(t17 + t12*t18 + t20*t4);
+    xn[nav_ekf_ix_vd] = x[nav_ekf_ix_vd] + dt*(par->g - t21 + t22*t5 + t23*t9);
+    xn[nav_ekf_ix_roll] = x[nav_ekf_ix_roll] + dt*(u[nav_ekf_iu_wx] - x[nav_ekf_ix_bgx] + t28*t8);
+    xn[nav_ekf_ix_pitch] = t29 + x[nav_ekf_ix_pitch];
+    xn[nav_ekf_ix_yaw] = x[nav_ekf_ix_yaw] + dt*t28;
+    xn[nav_ekf_ix_bgx] = x[nav_ekf_ix_bgx];
+    xn[nav_ekf_ix_bgy] = x[nav_ekf_ix_bgy];
+    xn[nav_ekf_ix_bgz] = x[nav_ekf_ix_bgz];
+    xn[nav_ekf_ix_bax] = x[nav_ekf_ix_bax];
+    xn[nav_ekf_ix_bay] = x[nav_ekf_ix_bay];
+    xn[nav_ekf_ix_baz] = x[nav_ekf_ix_baz];
     const float F3_6 = dt*(t11*t12 + t30*t4);
     const float F3_7 = dt*(t10*t23 + t14*t22 - t0*t21);
     const float F3_8 = dt*(-t17 + t12*t31 + t19*t4);
@@ -709,9 +709,9 @@ int nav_ekf_predict(nav_ekf_t *s, const float *u, float dt)
     Pn[117] = P[117] + t43;
     Pn[118] = P[118];
     Pn[119] = P[119] + t43;
-    xn[6] = nav_ekf_wrap(xn[6]);
-    xn[7] = nav_ekf_wrap(xn[7]);
-    xn[8] = nav_ekf_wrap(xn[8]);
+    xn[nav_ekf_ix_roll] = nav_ekf_wrap(xn[nav_ekf_ix_roll]);
+    xn[nav_ekf_ix_pitch] = nav_ekf_wrap(xn[nav_ekf_ix_pitch]);
+    xn[nav_ekf_ix_yaw] = nav_ekf_wrap(xn[nav_ekf_ix_yaw]);
     if (!nav_ekf_finite(xn, 15u) || !nav_ekf_finite(Pn, 120u)) {
         return NAV_EKF_NON_FINITE;
     }
@@ -744,9 +744,9 @@ int nav_ekf_update_gnss_pos_nis(nav_ekf_t *s, const float *z, float *nis_out)
 
     memcpy(xs, s->x, sizeof xs);
     memcpy(Ps, s->P, sizeof Ps);
-    y[0] = z[0] - x[0];
-    y[1] = z[1] - x[1];
-    y[2] = z[2] - x[2];
+    y[0] = z[0] - x[nav_ekf_ix_pn];
+    y[1] = z[1] - x[nav_ekf_ix_pe];
+    y[2] = z[2] - x[nav_ekf_ix_pd];
     W[0] = Ps[0];
     W[1] = Ps[1];
     W[2] = Ps[2];
@@ -798,21 +798,21 @@ int nav_ekf_update_gnss_pos_nis(nav_ekf_t *s, const float *z, float *nis_out)
     V[12] = -W[12] + K[12]*s0;
     V[13] = -W[13] + K[13]*s0;
     V[14] = -W[14] + K[14]*s0;
-    xs[0] = xs[0] + K[0]*r0;
-    xs[1] = xs[1] + K[1]*r0;
-    xs[2] = xs[2] + K[2]*r0;
-    xs[3] = xs[3] + K[3]*r0;
-    xs[4] = xs[4] + K[4]*r0;
-    xs[5] = xs[5] + K[5]*r0;
-    xs[6] = xs[6] + K[6]*r0;
-    xs[7] = xs[7] + K[7]*r0;
-    xs[8] = xs[8] + K[8]*r0;
-    xs[9] = xs[9] + K[9]*r0;
-    xs[10] = xs[10] + K[10]*r0;
-    xs[11] = xs[11] + K[11]*r0;
-    xs[12] = xs[12] + K[12]*r0;
-    xs[13] = xs[13] + K[13]*r0;
-    xs[14] = xs[14] + K[14]*r0;
+    xs[nav_ekf_ix_pn] = xs[nav_ekf_ix_pn] + K[0]*r0;
+    xs[nav_ekf_ix_pe] = xs[nav_ekf_ix_pe] + K[1]*r0;
+    xs[nav_ekf_ix_pd] = xs[nav_ekf_ix_pd] + K[2]*r0;
+    xs[nav_ekf_ix_vn] = xs[nav_ekf_ix_vn] + K[3]*r0;
+    xs[nav_ekf_ix_ve] = xs[nav_ekf_ix_ve] + K[4]*r0;
+    xs[nav_ekf_ix_vd] = xs[nav_ekf_ix_vd] + K[5]*r0;
+    xs[nav_ekf_ix_roll] = xs[nav_ekf_ix_roll] + K[6]*r0;
+    xs[nav_ekf_ix_pitch] = xs[nav_ekf_ix_pitch] + K[7]*r0;
+    xs[nav_ekf_ix_yaw] = xs[nav_ekf_ix_yaw] + K[8]*r0;
+    xs[nav_ekf_ix_bgx] = xs[nav_ekf_ix_bgx] + K[9]*r0;
+    xs[nav_ekf_ix_bgy] = xs[nav_ekf_ix_bgy] + K[10]*r0;
+    xs[nav_ekf_ix_bgz] = xs[nav_ekf_ix_bgz] + K[11]*r0;
+    xs[nav_ekf_ix_bax] = xs[nav_ekf_ix_bax] + K[12]*r0;
+    xs[nav_ekf_ix_bay] = xs[nav_ekf_ix_bay] + K[13]*r0;
+    xs[nav_ekf_ix_baz] = xs[nav_ekf_ix_baz] + K[14]*r0;
     Ps[0] = Ps[0] + K[0]*V[0] - K[0]*W[0];
     Ps[1] = Ps[1] + K[0]*V[1] - K[1]*W[0];
     Ps[2] = Ps[2] + K[0]*V[2] - K[2]*W[0];
@@ -952,7 +952,7 @@ int nav_ekf_update_gnss_pos_nis(nav_ekf_t *s, const float *z, float *nis_out)
     if (!isfinite(s1)) { return NAV_EKF_NON_FINITE; }
     if (!(s1 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
     const float is1 = (1.0F/s1);
-    const float r1 = x[1] + y[1] - xs[1];
+    const float r1 = x[nav_ekf_ix_pe] + y[1] - xs[nav_ekf_ix_pe];
     nis = nis + is1*(r1*r1);
     K[0] = W[0]*is1;
     K[1] = W[1]*is1;
@@ -984,21 +984,21 @@ int nav_ekf_update_gnss_pos_nis(nav_ekf_t *s, const float *z, float *nis_out)
     V[12] = -W[12] + K[12]*s1;
     V[13] = -W[13] + K[13]*s1;
     V[14] = -W[14] + K[14]*s1;
-    xs[0] = xs[0] + K[0]*r1;
-    xs[1] = xs[1] + K[1]*r1;
-    xs[2] = xs[2] + K[2]*r1;
-    xs[3] = xs[3] + K[3]*r1;
-    xs[4] = xs[4] + K[4]*r1;
-    xs[5] = xs[5] + K[5]*r1;
-    xs[6] = xs[6] + K[6]*r1;
-    xs[7] = xs[7] + K[7]*r1;
-    xs[8] = xs[8] + K[8]*r1;
-    xs[9] = xs[9] + K[9]*r1;
-    xs[10] = xs[10] + K[10]*r1;
-    xs[11] = xs[11] + K[11]*r1;
-    xs[12] = xs[12] + K[12]*r1;
-    xs[13] = xs[13] + K[13]*r1;
-    xs[14] = xs[14] + K[14]*r1;
+    xs[nav_ekf_ix_pn] = xs[nav_ekf_ix_pn] + K[0]*r1;
+    xs[nav_ekf_ix_pe] = xs[nav_ekf_ix_pe] + K[1]*r1;
+    xs[nav_ekf_ix_pd] = xs[nav_ekf_ix_pd] + K[2]*r1;
+    xs[nav_ekf_ix_vn] = xs[nav_ekf_ix_vn] + K[3]*r1;
+    xs[nav_ekf_ix_ve] = xs[nav_ekf_ix_ve] + K[4]*r1;
+    xs[nav_ekf_ix_vd] = xs[nav_ekf_ix_vd] + K[5]*r1;
+    xs[nav_ekf_ix_roll] = xs[nav_ekf_ix_roll] + K[6]*r1;
+    xs[nav_ekf_ix_pitch] = xs[nav_ekf_ix_pitch] + K[7]*r1;
+    xs[nav_ekf_ix_yaw] = xs[nav_ekf_ix_yaw] + K[8]*r1;
+    xs[nav_ekf_ix_bgx] = xs[nav_ekf_ix_bgx] + K[9]*r1;
+    xs[nav_ekf_ix_bgy] = xs[nav_ekf_ix_bgy] + K[10]*r1;
+    xs[nav_ekf_ix_bgz] = xs[nav_ekf_ix_bgz] + K[11]*r1;
+    xs[nav_ekf_ix_bax] = xs[nav_ekf_ix_bax] + K[12]*r1;
+    xs[nav_ekf_ix_bay] = xs[nav_ekf_ix_bay] + K[13]*r1;
+    xs[nav_ekf_ix_baz] = xs[nav_ekf_ix_baz] + K[14]*r1;
     Ps[0] = Ps[0] + K[0]*V[0] - K[0]*W[0];
     Ps[1] = Ps[1] + K[0]*V[1] - K[1]*W[0];
     Ps[2] = Ps[2] + K[0]*V[2] - K[2]*W[0];
@@ -1138,7 +1138,7 @@ int nav_ekf_update_gnss_pos_nis(nav_ekf_t *s, const float *z, float *nis_out)
     if (!isfinite(s2)) { return NAV_EKF_NON_FINITE; }
     if (!(s2 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
     const float is2 = (1.0F/s2);
-    const float r2 = x[2] + y[2] - xs[2];
+    const float r2 = x[nav_ekf_ix_pd] + y[2] - xs[nav_ekf_ix_pd];
     nis = nis + is2*(r2*r2);
     K[0] = W[0]*is2;
     K[1] = W[1]*is2;
@@ -1170,21 +1170,21 @@ int nav_ekf_update_gnss_pos_nis(nav_ekf_t *s, const float *z, float *nis_out)
     V[12] = -W[12] + K[12]*s2;
     V[13] = -W[13] + K[13]*s2;
     V[14] = -W[14] + K[14]*s2;
-    xs[0] = xs[0] + K[0]*r2;
-    xs[1] = xs[1] + K[1]*r2;
-    xs[2] = xs[2] + K[2]*r2;
-    xs[3] = xs[3] + K[3]*r2;
-    xs[4] = xs[4] + K[4]*r2;
-    xs[5] = xs[5] + K[5]*r2;
-    xs[6] = xs[6] + K[6]*r2;
-    xs[7] = xs[7] + K[7]*r2;
-    xs[8] = xs[8] + K[8]*r2;
-    xs[9] = xs[9] + K[9]*r2;
-    xs[10] = xs[10] + K[10]*r2;
-    xs[11] = xs[11] + K[11]*r2;
-    xs[12] = xs[12] + K[12]*r2;
-    xs[13] = xs[13] + K[13]*r2;
-    xs[14] = xs[14] + K[14]*r2;
+    xs[nav_ekf_ix_pn] = xs[nav_ekf_ix_pn] + K[0]*r2;
+    xs[nav_ekf_ix_pe] = xs[nav_ekf_ix_pe] + K[1]*r2;
+    xs[nav_ekf_ix_pd] = xs[nav_ekf_ix_pd] + K[2]*r2;
+    xs[nav_ekf_ix_vn] = xs[nav_ekf_ix_vn] + K[3]*r2;
+    xs[nav_ekf_ix_ve] = xs[nav_ekf_ix_ve] + K[4]*r2;
+    xs[nav_ekf_ix_vd] = xs[nav_ekf_ix_vd] + K[5]*r2;
+    xs[nav_ekf_ix_roll] = xs[nav_ekf_ix_roll] + K[6]*r2;
+    xs[nav_ekf_ix_pitch] = xs[nav_ekf_ix_pitch] + K[7]*r2;
+    xs[nav_ekf_ix_yaw] = xs[nav_ekf_ix_yaw] + K[8]*r2;
+    xs[nav_ekf_ix_bgx] = xs[nav_ekf_ix_bgx] + K[9]*r2;
+    xs[nav_ekf_ix_bgy] = xs[nav_ekf_ix_bgy] + K[10]*r2;
+    xs[nav_ekf_ix_bgz] = xs[nav_ekf_ix_bgz] + K[11]*r2;
+    xs[nav_ekf_ix_bax] = xs[nav_ekf_ix_bax] + K[12]*r2;
+    xs[nav_ekf_ix_bay] = xs[nav_ekf_ix_bay] + K[13]*r2;
+    xs[nav_ekf_ix_baz] = xs[nav_ekf_ix_baz] + K[14]*r2;
     Ps[0] = Ps[0] + K[0]*V[0] - K[0]*W[0];
     Ps[1] = Ps[1] + K[0]*V[1] - K[1]*W[0];
     Ps[2] = Ps[2] + K[0]*V[2] - K[2]*W[0];
@@ -1305,9 +1305,9 @@ int nav_ekf_update_gnss_pos_nis(nav_ekf_t *s, const float *z, float *nis_out)
     Ps[117] = Ps[117] + K[13]*V[13] - K[13]*W[13];
     Ps[118] = Ps[118] + K[13]*V[14] - K[14]*W[13];
     Ps[119] = Ps[119] + K[14]*V[14] - K[14]*W[14];
-    xs[6] = nav_ekf_wrap(xs[6]);
-    xs[7] = nav_ekf_wrap(xs[7]);
-    xs[8] = nav_ekf_wrap(xs[8]);
+    xs[nav_ekf_ix_roll] = nav_ekf_wrap(xs[nav_ekf_ix_roll]);
+    xs[nav_ekf_ix_pitch] = nav_ekf_wrap(xs[nav_ekf_ix_pitch]);
+    xs[nav_ekf_ix_yaw] = nav_ekf_wrap(xs[nav_ekf_ix_yaw]);
     if (!nav_ekf_finite(xs, 15u) || !nav_ekf_finite(Ps, 120u)) {
         return NAV_EKF_NON_FINITE;
     }
@@ -1352,9 +1352,9 @@ int nav_ekf_update_gnss_vel_nis(nav_ekf_t *s, const float *z, float *nis_out)
 
     memcpy(xs, s->x, sizeof xs);
     memcpy(Ps, s->P, sizeof Ps);
-    y[0] = z[0] - x[3];
-    y[1] = z[1] - x[4];
-    y[2] = z[2] - x[5];
+    y[0] = z[0] - x[nav_ekf_ix_vn];
+    y[1] = z[1] - x[nav_ekf_ix_ve];
+    y[2] = z[2] - x[nav_ekf_ix_vd];
     W[0] = Ps[3];
     W[1] = Ps[17];
     W[2] = Ps[30];
@@ -1370,7 +1370,7 @@ int nav_ekf_update_gnss_vel_nis(nav_ekf_t *s, const float *z, float *nis_out)
     W[12] = Ps[51];
     W[13] = Ps[52];
     W[14] = Ps[53];
-    const float s0 = 0.010000000000000002F + W[3];
+    const float s0 = 0.01F + W[3];
     if (!isfinite(s0)) { return NAV_EKF_NON_FINITE; }
     if (!(s0 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
     const float is0 = (1.0F/s0);
@@ -1406,21 +1406,21 @@ int nav_ekf_update_gnss_vel_nis(nav_ekf_t *s, const float *z, float *nis_out)
     V[12] = -W[12] + K[12]*s0;
     V[13] = -W[13] + K[13]*s0;
     V[14] = -W[14] + K[14]*s0;
-    xs[0] = xs[0] + K[0]*r0;
-    xs[1] = xs[1] + K[1]*r0;
-    xs[2] = xs[2] + K[2]*r0;
-    xs[3] = xs[3] + K[3]*r0;
-    xs[4] = xs[4] + K[4]*r0;
-    xs[5] = xs[5] + K[5]*r0;
-    xs[6] = xs[6] + K[6]*r0;
-    xs[7] = xs[7] + K[7]*r0;
-    xs[8] = xs[8] + K[8]*r0;
-    xs[9] = xs[9] + K[9]*r0;
-    xs[10] = xs[10] + K[10]*r0;
-    xs[11] = xs[11] + K[11]*r0;
-    xs[12] = xs[12] + K[12]*r0;
-    xs[13] = xs[13] + K[13]*r0;
-    xs[14] = xs[14] + K[14]*r0;
+    xs[nav_ekf_ix_pn] = xs[nav_ekf_ix_pn] + K[0]*r0;
+    xs[nav_ekf_ix_pe] = xs[nav_ekf_ix_pe] + K[1]*r0;
+    xs[nav_ekf_ix_pd] = xs[nav_ekf_ix_pd] + K[2]*r0;
+    xs[nav_ekf_ix_vn] = xs[nav_ekf_ix_vn] + K[3]*r0;
+    xs[nav_ekf_ix_ve] = xs[nav_ekf_ix_ve] + K[4]*r0;
+    xs[nav_ekf_ix_vd] = xs[nav_ekf_ix_vd] + K[5]*r0;
+    xs[nav_ekf_ix_roll] = xs[nav_ekf_ix_roll] + K[6]*r0;
+    xs[nav_ekf_ix_pitch] = xs[nav_ekf_ix_pitch] + K[7]*r0;
+    xs[nav_ekf_ix_yaw] = xs[nav_ekf_ix_yaw] + K[8]*r0;
+    xs[nav_ekf_ix_bgx] = xs[nav_ekf_ix_bgx] + K[9]*r0;
+    xs[nav_ekf_ix_bgy] = xs[nav_ekf_ix_bgy] + K[10]*r0;
+    xs[nav_ekf_ix_bgz] = xs[nav_ekf_ix_bgz] + K[11]*r0;
+    xs[nav_ekf_ix_bax] = xs[nav_ekf_ix_bax] + K[12]*r0;
+    xs[nav_ekf_ix_bay] = xs[nav_ekf_ix_bay] + K[13]*r0;
+    xs[nav_ekf_ix_baz] = xs[nav_ekf_ix_baz] + K[14]*r0;
     Ps[0] = Ps[0] + K[0]*V[0] - K[0]*W[0];
     Ps[1] = Ps[1] + K[0]*V[1] - K[1]*W[0];
     Ps[2] = Ps[2] + K[0]*V[2] - K[2]*W[0];
@@ -1556,11 +1556,11 @@ int nav_ekf_update_gnss_vel_nis(nav_ekf_t *s, const float *z, float *nis_out)
     W[12] = Ps[62];
     W[13] = Ps[63];
     W[14] = Ps[64];
-    const float s1 = 0.010000000000000002F + W[4];
+    const float s1 = 0.01F + W[4];
     if (!isfinite(s1)) { return NAV_EKF_NON_FINITE; }
     if (!(s1 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
     const float is1 = (1.0F/s1);
-    const float r1 = x[4] + y[1] - xs[4];
+    const float r1 = x[nav_ekf_ix_ve] + y[1] - xs[nav_ekf_ix_ve];
     nis = nis + is1*(r1*r1);
     K[0] = W[0]*is1;
     K[1] = W[1]*is1;
@@ -1592,21 +1592,21 @@ int nav_ekf_update_gnss_vel_nis(nav_ekf_t *s, const float *z, float *nis_out)
     V[12] = -W[12] + K[12]*s1;
     V[13] = -W[13] + K[13]*s1;
     V[14] = -W[14] + K[14]*s1;
-    xs[0] = xs[0] + K[0]*r1;
-    xs[1] = xs[1] + K[1]*r1;
-    xs[2] = xs[2] + K[2]*r1;
-    xs[3] = xs[3] + K[3]*r1;
-    xs[4] = xs[4] + K[4]*r1;
-    xs[5] = xs[5] + K[5]*r1;
-    xs[6] = xs[6] + K[6]*r1;
-    xs[7] = xs[7] + K[7]*r1;
-    xs[8] = xs[8] + K[8]*r1;
-    xs[9] = xs[9] + K[9]*r1;
-    xs[10] = xs[10] + K[10]*r1;
-    xs[11] = xs[11] + K[11]*r1;
-    xs[12] = xs[12] + K[12]*r1;
-    xs[13] = xs[13] + K[13]*r1;
-    xs[14] = xs[14] + K[14]*r1;
+    xs[nav_ekf_ix_pn] = xs[nav_ekf_ix_pn] + K[0]*r1;
+    xs[nav_ekf_ix_pe] = xs[nav_ekf_ix_pe] + K[1]*r1;
+    xs[nav_ekf_ix_pd] = xs[nav_ekf_ix_pd] + K[2]*r1;
+    xs[nav_ekf_ix_vn] = xs[nav_ekf_ix_vn] + K[3]*r1;
+    xs[nav_ekf_ix_ve] = xs[nav_ekf_ix_ve] + K[4]*r1;
+    xs[nav_ekf_ix_vd] = xs[nav_ekf_ix_vd] + K[5]*r1;
+    xs[nav_ekf_ix_roll] = xs[nav_ekf_ix_roll] + K[6]*r1;
+    xs[nav_ekf_ix_pitch] = xs[nav_ekf_ix_pitch] + K[7]*r1;
+    xs[nav_ekf_ix_yaw] = xs[nav_ekf_ix_yaw] + K[8]*r1;
+    xs[nav_ekf_ix_bgx] = xs[nav_ekf_ix_bgx] + K[9]*r1;
+    xs[nav_ekf_ix_bgy] = xs[nav_ekf_ix_bgy] + K[10]*r1;
+    xs[nav_ekf_ix_bgz] = xs[nav_ekf_ix_bgz] + K[11]*r1;
+    xs[nav_ekf_ix_bax] = xs[nav_ekf_ix_bax] + K[12]*r1;
+    xs[nav_ekf_ix_bay] = xs[nav_ekf_ix_bay] + K[13]*r1;
+    xs[nav_ekf_ix_baz] = xs[nav_ekf_ix_baz] + K[14]*r1;
     Ps[0] = Ps[0] + K[0]*V[0] - K[0]*W[0];
     Ps[1] = Ps[1] + K[0]*V[1] - K[1]*W[0];
     Ps[2] = Ps[2] + K[0]*V[2] - K[2]*W[0];
@@ -1742,11 +1742,11 @@ int nav_ekf_update_gnss_vel_nis(nav_ekf_t *s, const float *z, float *nis_out)
     W[12] = Ps[72];
     W[13] = Ps[73];
     W[14] = Ps[74];
-    const float s2 = 0.010000000000000002F + W[5];
+    const float s2 = 0.01F + W[5];
     if (!isfinite(s2)) { return NAV_EKF_NON_FINITE; }
     if (!(s2 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
     const float is2 = (1.0F/s2);
-    const float r2 = x[5] + y[2] - xs[5];
+    const float r2 = x[nav_ekf_ix_vd] + y[2] - xs[nav_ekf_ix_vd];
     nis = nis + is2*(r2*r2);
     K[0] = W[0]*is2;
     K[1] = W[1]*is2;
@@ -1778,21 +1778,21 @@ int nav_ekf_update_gnss_vel_nis(nav_ekf_t *s, const float *z, float *nis_out)
     V[12] = -W[12] + K[12]*s2;
     V[13] = -W[13] + K[13]*s2;
     V[14] = -W[14] + K[14]*s2;
-    xs[0] = xs[0] + K[0]*r2;
-    xs[1] = xs[1] + K[1]*r2;
-    xs[2] = xs[2] + K[2]*r2;
-    xs[3] = xs[3] + K[3]*r2;
-    xs[4] = xs[4] + K[4]*r2;
-    xs[5] = xs[5] + K[5]*r2;
-    xs[6] = xs[6] + K[6]*r2;
-    xs[7] = xs[7] + K[7]*r2;
-    xs[8] = xs[8] + K[8]*r2;
-    xs[9] = xs[9] + K[9]*r2;
-    xs[10] = xs[10] + K[10]*r2;
-    xs[11] = xs[11] + K[11]*r2;
-    xs[12] = xs[12] + K[12]*r2;
-    xs[13] = xs[13] + K[13]*r2;
-    xs[14] = xs[14] + K[14]*r2;
+    xs[nav_ekf_ix_pn] = xs[nav_ekf_ix_pn] + K[0]*r2;
+    xs[nav_ekf_ix_pe] = xs[nav_ekf_ix_pe] + K[1]*r2;
+    xs[nav_ekf_ix_pd] = xs[nav_ekf_ix_pd] + K[2]*r2;
+    xs[nav_ekf_ix_vn] = xs[nav_ekf_ix_vn] + K[3]*r2;
+    xs[nav_ekf_ix_ve] = xs[nav_ekf_ix_ve] + K[4]*r2;
+    xs[nav_ekf_ix_vd] = xs[nav_ekf_ix_vd] + K[5]*r2;
+    xs[nav_ekf_ix_roll] = xs[nav_ekf_ix_roll] + K[6]*r2;
+    xs[nav_ekf_ix_pitch] = xs[nav_ekf_ix_pitch] + K[7]*r2;
+    xs[nav_ekf_ix_yaw] = xs[nav_ekf_ix_yaw] + K[8]*r2;
+    xs[nav_ekf_ix_bgx] = xs[nav_ekf_ix_bgx] + K[9]*r2;
+    xs[nav_ekf_ix_bgy] = xs[nav_ekf_ix_bgy] + K[10]*r2;
+    xs[nav_ekf_ix_bgz] = xs[nav_ekf_ix_bgz] + K[11]*r2;
+    xs[nav_ekf_ix_bax] = xs[nav_ekf_ix_bax] + K[12]*r2;
+    xs[nav_ekf_ix_bay] = xs[nav_ekf_ix_bay] + K[13]*r2;
+    xs[nav_ekf_ix_baz] = xs[nav_ekf_ix_baz] + K[14]*r2;
     Ps[0] = Ps[0] + K[0]*V[0] - K[0]*W[0];
     Ps[1] = Ps[1] + K[0]*V[1] - K[1]*W[0];
     Ps[2] = Ps[2] + K[0]*V[2] - K[2]*W[0];
@@ -1913,9 +1913,9 @@ int nav_ekf_update_gnss_vel_nis(nav_ekf_t *s, const float *z, float *nis_out)
     Ps[117] = Ps[117] + K[13]*V[13] - K[13]*W[13];
     Ps[118] = Ps[118] + K[13]*V[14] - K[14]*W[13];
     Ps[119] = Ps[119] + K[14]*V[14] - K[14]*W[14];
-    xs[6] = nav_ekf_wrap(xs[6]);
-    xs[7] = nav_ekf_wrap(xs[7]);
-    xs[8] = nav_ekf_wrap(xs[8]);
+    xs[nav_ekf_ix_roll] = nav_ekf_wrap(xs[nav_ekf_ix_roll]);
+    xs[nav_ekf_ix_pitch] = nav_ekf_wrap(xs[nav_ekf_ix_pitch]);
+    xs[nav_ekf_ix_yaw] = nav_ekf_wrap(xs[nav_ekf_ix_yaw]);
     if (!nav_ekf_finite(xs, 15u) || !nav_ekf_finite(Ps, 120u)) {
         return NAV_EKF_NON_FINITE;
     }
@@ -1960,7 +1960,7 @@ int nav_ekf_update_baro_nis(nav_ekf_t *s, const float *z, float *nis_out)
 
     memcpy(xs, s->x, sizeof xs);
     memcpy(Ps, s->P, sizeof Ps);
-    y[0] = x[2] + z[0];
+    y[0] = x[nav_ekf_ix_pd] + z[0];
     W[0] = -Ps[2];
     W[1] = -Ps[16];
     W[2] = -Ps[29];
@@ -2012,21 +2012,21 @@ int nav_ekf_update_baro_nis(nav_ekf_t *s, const float *z, float *nis_out)
     V[12] = -W[12] + K[12]*s0;
     V[13] = -W[13] + K[13]*s0;
     V[14] = -W[14] + K[14]*s0;
-    xs[0] = xs[0] + K[0]*r0;
-    xs[1] = xs[1] + K[1]*r0;
-    xs[2] = xs[2] + K[2]*r0;
-    xs[3] = xs[3] + K[3]*r0;
-    xs[4] = xs[4] + K[4]*r0;
-    xs[5] = xs[5] + K[5]*r0;
-    xs[6] = xs[6] + K[6]*r0;
-    xs[7] = xs[7] + K[7]*r0;
-    xs[8] = xs[8] + K[8]*r0;
-    xs[9] = xs[9] + K[9]*r0;
-    xs[10] = xs[10] + K[10]*r0;
-    xs[11] = xs[11] + K[11]*r0;
-    xs[12] = xs[12] + K[12]*r0;
-    xs[13] = xs[13] + K[13]*r0;
-    xs[14] = xs[14] + K[14]*r0;
+    xs[nav_ekf_ix_pn] = xs[nav_ekf_ix_pn] + K[0]*r0;
+    xs[nav_ekf_ix_pe] = xs[nav_ekf_ix_pe] + K[1]*r0;
+    xs[nav_ekf_ix_pd] = xs[nav_ekf_ix_pd] + K[2]*r0;
+    xs[nav_ekf_ix_vn] = xs[nav_ekf_ix_vn] + K[3]*r0;
+    xs[nav_ekf_ix_ve] = xs[nav_ekf_ix_ve] + K[4]*r0;
+    xs[nav_ekf_ix_vd] = xs[nav_ekf_ix_vd] + K[5]*r0;
+    xs[nav_ekf_ix_roll] = xs[nav_ekf_ix_roll] + K[6]*r0;
+    xs[nav_ekf_ix_pitch] = xs[nav_ekf_ix_pitch] + K[7]*r0;
+    xs[nav_ekf_ix_yaw] = xs[nav_ekf_ix_yaw] + K[8]*r0;
+    xs[nav_ekf_ix_bgx] = xs[nav_ekf_ix_bgx] + K[9]*r0;
+    xs[nav_ekf_ix_bgy] = xs[nav_ekf_ix_bgy] + K[10]*r0;
+    xs[nav_ekf_ix_bgz] = xs[nav_ekf_ix_bgz] + K[11]*r0;
+    xs[nav_ekf_ix_bax] = xs[nav_ekf_ix_bax] + K[12]*r0;
+    xs[nav_ekf_ix_bay] = xs[nav_ekf_ix_bay] + K[13]*r0;
+    xs[nav_ekf_ix_baz] = xs[nav_ekf_ix_baz] + K[14]*r0;
     Ps[0] = Ps[0] + K[0]*V[0] - K[0]*W[0];
     Ps[1] = Ps[1] + K[0]*V[1] - K[1]*W[0];
     Ps[2] = Ps[2] + K[0]*V[2] - K[2]*W[0];
@@ -2147,9 +2147,9 @@ int nav_ekf_update_baro_nis(nav_ekf_t *s, const float *z, float *nis_out)
     Ps[117] = Ps[117] + K[13]*V[13] - K[13]*W[13];
     Ps[118] = Ps[118] + K[13]*V[14] - K[14]*W[13];
     Ps[119] = Ps[119] + K[14]*V[14] - K[14]*W[14];
-    xs[6] = nav_ekf_wrap(xs[6]);
-    xs[7] = nav_ekf_wrap(xs[7]);
-    xs[8] = nav_ekf_wrap(xs[8]);
+    xs[nav_ekf_ix_roll] = nav_ekf_wrap(xs[nav_ekf_ix_roll]);
+    xs[nav_ekf_ix_pitch] = nav_ekf_wrap(xs[nav_ekf_ix_pitch]);
+    xs[nav_ekf_ix_yaw] = nav_ekf_wrap(xs[nav_ekf_ix_yaw]);
     if (!nav_ekf_finite(xs, 15u) || !nav_ekf_finite(Ps, 120u)) {
         return NAV_EKF_NON_FINITE;
     }
@@ -2194,7 +2194,7 @@ int nav_ekf_update_mag_heading_nis(nav_ekf_t *s, const float *z, float *nis_out)
 
     memcpy(xs, s->x, sizeof xs);
     memcpy(Ps, s->P, sizeof Ps);
-    y[0] = z[0] - x[8];
+    y[0] = z[0] - x[nav_ekf_ix_yaw];
     y[0] = nav_ekf_wrap(y[0]);
     W[0] = Ps[8];
     W[1] = Ps[22];
@@ -2211,7 +2211,7 @@ int nav_ekf_update_mag_heading_nis(nav_ekf_t *s, const float *z, float *nis_out)
     W[12] = Ps[96];
     W[13] = Ps[97];
     W[14] = Ps[98];
-    const float s0 = 0.0012184696791468343F + W[8];
+    const float s0 = 0.0012184697F + W[8];
     if (!isfinite(s0)) { return NAV_EKF_NON_FINITE; }
     if (!(s0 > 0.0F)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
     const float is0 = (1.0F/s0);
@@ -2247,21 +2247,21 @@ int nav_ekf_update_mag_heading_nis(nav_ekf_t *s, const float *z, float *nis_out)
     V[12] = -W[12] + K[12]*s0;
     V[13] = -W[13] + K[13]*s0;
     V[14] = -W[14] + K[14]*s0;
-    xs[0] = xs[0] + K[0]*r0;
-    xs[1] = xs[1] + K[1]*r0;
-    xs[2] = xs[2] + K[2]*r0;
-    xs[3] = xs[3] + K[3]*r0;
-    xs[4] = xs[4] + K[4]*r0;
-    xs[5] = xs[5] + K[5]*r0;
-    xs[6] = xs[6] + K[6]*r0;
-    xs[7] = xs[7] + K[7]*r0;
-    xs[8] = xs[8] + K[8]*r0;
-    xs[9] = xs[9] + K[9]*r0;
-    xs[10] = xs[10] + K[10]*r0;
-    xs[11] = xs[11] + K[11]*r0;
-    xs[12] = xs[12] + K[12]*r0;
-    xs[13] = xs[13] + K[13]*r0;
-    xs[14] = xs[14] + K[14]*r0;
+    xs[nav_ekf_ix_pn] = xs[nav_ekf_ix_pn] + K[0]*r0;
+    xs[nav_ekf_ix_pe] = xs[nav_ekf_ix_pe] + K[1]*r0;
+    xs[nav_ekf_ix_pd] = xs[nav_ekf_ix_pd] + K[2]*r0;
+    xs[nav_ekf_ix_vn] = xs[nav_ekf_ix_vn] + K[3]*r0;
+    xs[nav_ekf_ix_ve] = xs[nav_ekf_ix_ve] + K[4]*r0;
+    xs[nav_ekf_ix_vd] = xs[nav_ekf_ix_vd] + K[5]*r0;
+    xs[nav_ekf_ix_roll] = xs[nav_ekf_ix_roll] + K[6]*r0;
+    xs[nav_ekf_ix_pitch] = xs[nav_ekf_ix_pitch] + K[7]*r0;
+    xs[nav_ekf_ix_yaw] = xs[nav_ekf_ix_yaw] + K[8]*r0;
+    xs[nav_ekf_ix_bgx] = xs[nav_ekf_ix_bgx] + K[9]*r0;
+    xs[nav_ekf_ix_bgy] = xs[nav_ekf_ix_bgy] + K[10]*r0;
+    xs[nav_ekf_ix_bgz] = xs[nav_ekf_ix_bgz] + K[11]*r0;
+    xs[nav_ekf_ix_bax] = xs[nav_ekf_ix_bax] + K[12]*r0;
+    xs[nav_ekf_ix_bay] = xs[nav_ekf_ix_bay] + K[13]*r0;
+    xs[nav_ekf_ix_baz] = xs[nav_ekf_ix_baz] + K[14]*r0;
     Ps[0] = Ps[0] + K[0]*V[0] - K[0]*W[0];
     Ps[1] = Ps[1] + K[0]*V[1] - K[1]*W[0];
     Ps[2] = Ps[2] + K[0]*V[2] - K[2]*W[0];
@@ -2382,9 +2382,9 @@ int nav_ekf_update_mag_heading_nis(nav_ekf_t *s, const float *z, float *nis_out)
     Ps[117] = Ps[117] + K[13]*V[13] - K[13]*W[13];
     Ps[118] = Ps[118] + K[13]*V[14] - K[14]*W[13];
     Ps[119] = Ps[119] + K[14]*V[14] - K[14]*W[14];
-    xs[6] = nav_ekf_wrap(xs[6]);
-    xs[7] = nav_ekf_wrap(xs[7]);
-    xs[8] = nav_ekf_wrap(xs[8]);
+    xs[nav_ekf_ix_roll] = nav_ekf_wrap(xs[nav_ekf_ix_roll]);
+    xs[nav_ekf_ix_pitch] = nav_ekf_wrap(xs[nav_ekf_ix_pitch]);
+    xs[nav_ekf_ix_yaw] = nav_ekf_wrap(xs[nav_ekf_ix_yaw]);
     if (!nav_ekf_finite(xs, 15u) || !nav_ekf_finite(Ps, 120u)) {
         return NAV_EKF_NON_FINITE;
     }

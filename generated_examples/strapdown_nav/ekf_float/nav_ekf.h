@@ -108,6 +108,15 @@ enum {
     nav_ekf_ix_baz = 14  /* index of baz in x */
 };
 
+enum {
+    nav_ekf_iu_wx = 0,  /* index of wx in u */
+    nav_ekf_iu_wy = 1,  /* index of wy in u */
+    nav_ekf_iu_wz = 2,  /* index of wz in u */
+    nav_ekf_iu_fx = 3,  /* index of fx in u */
+    nav_ekf_iu_fy = 4,  /* index of fy in u */
+    nav_ekf_iu_fz = 5  /* index of fz in u */
+};
+
 /* Runtime parameters; nav_ekf_init sets the defaults shown. */
 typedef struct nav_ekf_par {
     float g;  /* default 9.80665F [m/s^2] */

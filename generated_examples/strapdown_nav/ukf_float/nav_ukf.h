@@ -64,7 +64,7 @@
  * on the stack of those calls: the named locals total 5672 bytes in predict and 1400 bytes
  * in the largest update. The real frame depends on the compiler (registers hold many, spills
  * add some): measure it on the target, e.g. gcc -fstack-usage.
- * Weights: Wm0 = 0.0F, Wc0 = 2.0F, Wm_i = Wc_i = 0.03333333333333333F (i = 1..30);
+ * Weights: Wm0 = 0.0F, Wc0 = 2.0F, Wm_i = Wc_i = 0.033333335F (i = 1..30);
  * alpha = 1.0F, beta = 2.0F, kappa = 0.0F.
  */
 #ifndef NAV_UKF_H
@@ -113,6 +113,15 @@ enum {
     nav_ukf_ix_bax = 12,  /* index of bax in x */
     nav_ukf_ix_bay = 13,  /* index of bay in x */
     nav_ukf_ix_baz = 14  /* index of baz in x */
+};
+
+enum {
+    nav_ukf_iu_wx = 0,  /* index of wx in u */
+    nav_ukf_iu_wy = 1,  /* index of wy in u */
+    nav_ukf_iu_wz = 2,  /* index of wz in u */
+    nav_ukf_iu_fx = 3,  /* index of fx in u */
+    nav_ukf_iu_fy = 4,  /* index of fy in u */
+    nav_ukf_iu_fz = 5  /* index of fz in u */
 };
 
 /* Runtime parameters; nav_ukf_init sets the defaults shown. */

@@ -69,8 +69,8 @@ static int valve_ukf_factor(const double *P, double *Lf)
 
 void valve_ukf_init(valve_ukf_t *s)
 {
-    s->x[0] = 0.3;
-    s->x[1] = 2.0;
+    s->x[valve_ukf_ix_opening] = 0.3;
+    s->x[valve_ukf_ix_dp] = 2.0;
     s->P[0] = 0.0025000000000000005;
     s->P[1] = 0.0;
     s->P[2] = 0.0025000000000000005;
@@ -135,18 +135,18 @@ int valve_ukf_predict(valve_ukf_t *s, const double *u, double dt)
         }
     }
     const double fg0_0 = 1.4142135623730951*Lf[0];
-    const double ft0 = fmin(1.0, fmax(0.0, u[0]));
-    const double ft1 = ft0 - x[0];
+    const double ft0 = fmin(1.0, fmax(0.0, u[valve_ukf_iu_cmd]));
+    const double ft1 = ft0 - x[valve_ukf_ix_opening];
     const double ft2 = ft1 + par->band;
-    const double ft3 = x[0] - ft0;
+    const double ft3 = x[valve_ukf_ix_opening] - ft0;
     const double ft4 = ft3 + par->band;
     const double ft5 = dt*par->gain;
-    const double ft6 = x[0] + ft5*(fmax(0.0, -ft4) + fmin(0.0, ft2));
+    const double ft6 = x[valve_ukf_ix_opening] + ft5*(fmax(0.0, -ft4) + fmin(0.0, ft2));
     const double ft7 = dt/par->tau;
     const double ft8 = fg0_0 - par->band;
-    const double fc1 = x[1] + ft7*(par->dp_nom - x[1]);
-    const double fp0_0 = fg0_0 + x[0] + ft5*(fmax(0.0, -fg0_0 - ft4) + fmin(0.0, -ft3 - ft8));
-    const double fm0_0 = x[0] - fg0_0 + ft5*(fmax(0.0, ft1 + ft8) + fmin(0.0, fg0_0 + ft2));
+    const double fc1 = x[valve_ukf_ix_dp] + ft7*(par->dp_nom - x[valve_ukf_ix_dp]);
+    const double fp0_0 = fg0_0 + x[valve_ukf_ix_opening] + ft5*(fmax(0.0, -fg0_0 - ft4) + fmin(0.0, -ft3 - ft8));
+    const double fm0_0 = x[valve_ukf_ix_opening] - fg0_0 + ft5*(fmax(0.0, ft1 + ft8) + fmin(0.0, fg0_0 + ft2));
     const double fA1_1 = 1.0 - ft7;
     const double Q0_0 = 0.0001*dt;
     const double Q1_1 = 0.0025000000000000005*dt;
@@ -159,8 +159,8 @@ int valve_ukf_predict(valve_ukf_t *s, const double *u, double dt)
     const double fv0_0 = -fh0 + 0.35355339059327373*fq0_0;
     const double fv1_0 = -fh0 + 0.35355339059327373*fq1_0;
     const double fT0_1 = Lf[1]*fA1_1;
-    xn[0] = fmu0;
-    xn[1] = fc1;
+    xn[valve_ukf_ix_opening] = fmu0;
+    xn[valve_ukf_ix_dp] = fc1;
     const double AP1_1 = P[2]*fA1_1;
     Pn[0] = Q0_0 + (fu0_0*fu0_0) + (fv0_0*fv0_0) + (fv1_0*fv1_0) + 2.0*(fe0*fe0);
     Pn[1] = fT0_1*fu0_0;
@@ -204,12 +204,12 @@ int valve_ukf_update_flow_nis(valve_ukf_t *s, const double *z, double *nis_out)
     const double hg0_0 = 1.4142135623730951*Lf[0];
     const double hg1_0 = 1.4142135623730951*Lf[1];
     const double hg1_1 = 1.4142135623730951*Lf[2];
-    const double ht0 = par->kv*x[0];
-    const double ht1 = -x[1];
-    const double hc0 = ht0*sqrt(x[1]);
-    const double hp0_0 = par->kv*sqrt(hg1_0 + x[1])*(hg0_0 + x[0]);
-    const double hm0_0 = par->kv*sqrt(-hg1_0 - ht1)*(x[0] - hg0_0);
-    const double hp1_0 = ht0*sqrt(hg1_1 + x[1]);
+    const double ht0 = par->kv*x[valve_ukf_ix_opening];
+    const double ht1 = -x[valve_ukf_ix_dp];
+    const double hc0 = ht0*sqrt(x[valve_ukf_ix_dp]);
+    const double hp0_0 = par->kv*sqrt(hg1_0 + x[valve_ukf_ix_dp])*(hg0_0 + x[valve_ukf_ix_opening]);
+    const double hm0_0 = par->kv*sqrt(-hg1_0 - ht1)*(x[valve_ukf_ix_opening] - hg0_0);
+    const double hp1_0 = ht0*sqrt(hg1_1 + x[valve_ukf_ix_dp]);
     const double hm1_0 = ht0*sqrt(-hg1_1 - ht1);
     const double hq0_0 = hm0_0 + hp0_0;
     const double hq1_0 = hm1_0 + hp1_0;
@@ -231,8 +231,8 @@ int valve_ukf_update_flow_nis(valve_ukf_t *s, const double *z, double *nis_out)
     nis = iS*(y[0]*y[0]);
     const double K0 = C0_0*iS;
     const double K1 = C1_0*iS;
-    xs[0] = x[0] + K0*y[0];
-    xs[1] = x[1] + K1*y[0];
+    xs[valve_ukf_ix_opening] = x[valve_ukf_ix_opening] + K0*y[0];
+    xs[valve_ukf_ix_dp] = x[valve_ukf_ix_dp] + K1*y[0];
     Ps[0] = P[0] - C0_0*K0;
     Ps[1] = P[1] - C1_0*K0;
     Ps[2] = P[2] - C1_0*K1;
@@ -283,7 +283,7 @@ int valve_ukf_update_stem_nis(valve_ukf_t *s, const double *z, double *nis_out)
             return st;
         }
     }
-    y[0] = z[0] - x[0];
+    y[0] = z[0] - x[valve_ukf_ix_opening];
     const double S0_0 = 0.0004 + P[0];
     const double Sd0 = S0_0;
     if (!isfinite(Sd0)) { return VALVE_UKF_NON_FINITE; }
@@ -292,8 +292,8 @@ int valve_ukf_update_stem_nis(valve_ukf_t *s, const double *z, double *nis_out)
     nis = iS*(y[0]*y[0]);
     const double K0 = P[0]*iS;
     const double K1 = P[1]*iS;
-    xs[0] = x[0] + K0*y[0];
-    xs[1] = x[1] + K1*y[0];
+    xs[valve_ukf_ix_opening] = x[valve_ukf_ix_opening] + K0*y[0];
+    xs[valve_ukf_ix_dp] = x[valve_ukf_ix_dp] + K1*y[0];
     Ps[0] = P[0] - K0*P[0];
     Ps[1] = P[1] - K0*P[1];
     Ps[2] = P[2] - K1*P[1];

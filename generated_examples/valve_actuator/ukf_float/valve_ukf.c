@@ -11,7 +11,7 @@
 #define VALVE_UKF_WM0 0.0F
 #define VALVE_UKF_WC0 2.0F
 #define VALVE_UKF_WI 0.25F
-#define VALVE_UKF_GAMMA 1.4142135623730951F
+#define VALVE_UKF_GAMMA 1.4142135F
 
 static int valve_ukf_finite(const float *v, size_t len)
 {
@@ -69,11 +69,11 @@ static int valve_ukf_factor(const float *P, float *Lf)
 
 void valve_ukf_init(valve_ukf_t *s)
 {
-    s->x[0] = 0.3F;
-    s->x[1] = 2.0F;
-    s->P[0] = 0.0025000000000000005F;
+    s->x[valve_ukf_ix_opening] = 0.3F;
+    s->x[valve_ukf_ix_dp] = 2.0F;
+    s->P[0] = 0.0025F;
     s->P[1] = 0.0F;
-    s->P[2] = 0.0025000000000000005F;
+    s->P[2] = 0.0025F;
     s->par.gain = 2.0F;
     s->par.band = 0.02F;
     s->par.kv = 10.0F;
@@ -134,33 +134,33 @@ int valve_ukf_predict(valve_ukf_t *s, const float *u, float dt)
             return st;
         }
     }
-    const float fg0_0 = 1.4142135623730951F*Lf[0];
-    const float ft0 = fminf(1.0F, fmaxf(0.0F, u[0]));
-    const float ft1 = ft0 - x[0];
+    const float fg0_0 = 1.4142135F*Lf[0];
+    const float ft0 = fminf(1.0F, fmaxf(0.0F, u[valve_ukf_iu_cmd]));
+    const float ft1 = ft0 - x[valve_ukf_ix_opening];
     const float ft2 = ft1 + par->band;
-    const float ft3 = x[0] - ft0;
+    const float ft3 = x[valve_ukf_ix_opening] - ft0;
     const float ft4 = ft3 + par->band;
     const float ft5 = dt*par->gain;
-    const float ft6 = x[0] + ft5*(fmaxf(0.0F, -ft4) + fminf(0.0F, ft2));
+    const float ft6 = x[valve_ukf_ix_opening] + ft5*(fmaxf(0.0F, -ft4) + fminf(0.0F, ft2));
     const float ft7 = dt/par->tau;
     const float ft8 = fg0_0 - par->band;
-    const float fc1 = x[1] + ft7*(par->dp_nom - x[1]);
-    const float fp0_0 = fg0_0 + x[0] + ft5*(fmaxf(0.0F, -fg0_0 - ft4) + fminf(0.0F, -ft3 - ft8));
-    const float fm0_0 = x[0] - fg0_0 + ft5*(fmaxf(0.0F, ft1 + ft8) + fminf(0.0F, fg0_0 + ft2));
+    const float fc1 = x[valve_ukf_ix_dp] + ft7*(par->dp_nom - x[valve_ukf_ix_dp]);
+    const float fp0_0 = fg0_0 + x[valve_ukf_ix_opening] + ft5*(fmaxf(0.0F, -fg0_0 - ft4) + fminf(0.0F, -ft3 - ft8));
+    const float fm0_0 = x[valve_ukf_ix_opening] - fg0_0 + ft5*(fmaxf(0.0F, ft1 + ft8) + fminf(0.0F, fg0_0 + ft2));
     const float fA1_1 = 1.0F - ft7;
-    const float Q0_0 = 0.0001F*dt;
-    const float Q1_1 = 0.0025000000000000005F*dt;
+    const float Q0_0 = 1.0e-04F*dt;
+    const float Q1_1 = 0.0025F*dt;
     const float fq0_0 = fm0_0 + fp0_0;
     const float fq1_0 = 2.0F*ft6;
     const float fmu0 = 0.25F*(fq0_0 + fq1_0);
     const float fe0 = ft6 - fmu0;
-    const float fh0 = 0.7071067811865475F*fmu0;
-    const float fu0_0 = 0.35355339059327373F*(fp0_0 - fm0_0);
-    const float fv0_0 = -fh0 + 0.35355339059327373F*fq0_0;
-    const float fv1_0 = -fh0 + 0.35355339059327373F*fq1_0;
+    const float fh0 = 0.70710677F*fmu0;
+    const float fu0_0 = 0.35355338F*(fp0_0 - fm0_0);
+    const float fv0_0 = -fh0 + 0.35355338F*fq0_0;
+    const float fv1_0 = -fh0 + 0.35355338F*fq1_0;
     const float fT0_1 = Lf[1]*fA1_1;
-    xn[0] = fmu0;
-    xn[1] = fc1;
+    xn[valve_ukf_ix_opening] = fmu0;
+    xn[valve_ukf_ix_dp] = fc1;
     const float AP1_1 = P[2]*fA1_1;
     Pn[0] = Q0_0 + (fu0_0*fu0_0) + (fv0_0*fv0_0) + (fv1_0*fv1_0) + 2.0F*(fe0*fe0);
     Pn[1] = fT0_1*fu0_0;
@@ -201,29 +201,29 @@ int valve_ukf_update_flow_nis(valve_ukf_t *s, const float *z, float *nis_out)
             return st;
         }
     }
-    const float hg0_0 = 1.4142135623730951F*Lf[0];
-    const float hg1_0 = 1.4142135623730951F*Lf[1];
-    const float hg1_1 = 1.4142135623730951F*Lf[2];
-    const float ht0 = par->kv*x[0];
-    const float ht1 = -x[1];
-    const float hc0 = ht0*sqrtf(x[1]);
-    const float hp0_0 = par->kv*sqrtf(hg1_0 + x[1])*(hg0_0 + x[0]);
-    const float hm0_0 = par->kv*sqrtf(-hg1_0 - ht1)*(x[0] - hg0_0);
-    const float hp1_0 = ht0*sqrtf(hg1_1 + x[1]);
+    const float hg0_0 = 1.4142135F*Lf[0];
+    const float hg1_0 = 1.4142135F*Lf[1];
+    const float hg1_1 = 1.4142135F*Lf[2];
+    const float ht0 = par->kv*x[valve_ukf_ix_opening];
+    const float ht1 = -x[valve_ukf_ix_dp];
+    const float hc0 = ht0*sqrtf(x[valve_ukf_ix_dp]);
+    const float hp0_0 = par->kv*sqrtf(hg1_0 + x[valve_ukf_ix_dp])*(hg0_0 + x[valve_ukf_ix_opening]);
+    const float hm0_0 = par->kv*sqrtf(-hg1_0 - ht1)*(x[valve_ukf_ix_opening] - hg0_0);
+    const float hp1_0 = ht0*sqrtf(hg1_1 + x[valve_ukf_ix_dp]);
     const float hm1_0 = ht0*sqrtf(-hg1_1 - ht1);
     const float hq0_0 = hm0_0 + hp0_0;
     const float hq1_0 = hm1_0 + hp1_0;
     const float hmu0 = 0.25F*(hq0_0 + hq1_0);
     const float he0 = hc0 - hmu0;
-    const float hh0 = 0.7071067811865475F*hmu0;
-    const float hu0_0 = 0.35355339059327373F*(hp0_0 - hm0_0);
-    const float hv0_0 = -hh0 + 0.35355339059327373F*hq0_0;
-    const float hu1_0 = 0.35355339059327373F*(hp1_0 - hm1_0);
-    const float hv1_0 = -hh0 + 0.35355339059327373F*hq1_0;
+    const float hh0 = 0.70710677F*hmu0;
+    const float hu0_0 = 0.35355338F*(hp0_0 - hm0_0);
+    const float hv0_0 = -hh0 + 0.35355338F*hq0_0;
+    const float hu1_0 = 0.35355338F*(hp1_0 - hm1_0);
+    const float hv1_0 = -hh0 + 0.35355338F*hq1_0;
     y[0] = z[0] - hmu0;
     const float C0_0 = Lf[0]*hu0_0;
     const float C1_0 = Lf[1]*hu0_0 + Lf[2]*hu1_0;
-    const float S0_0 = 0.010000000000000002F + (hu0_0*hu0_0) + (hu1_0*hu1_0) + (hv0_0*hv0_0) + (hv1_0*hv1_0) + 2.0F*(he0*he0);
+    const float S0_0 = 0.01F + (hu0_0*hu0_0) + (hu1_0*hu1_0) + (hv0_0*hv0_0) + (hv1_0*hv1_0) + 2.0F*(he0*he0);
     const float Sd0 = S0_0;
     if (!isfinite(Sd0)) { return VALVE_UKF_NON_FINITE; }
     if (!(Sd0 > 0.0F)) { return VALVE_UKF_NOT_POSITIVE_DEFINITE; }
@@ -231,8 +231,8 @@ int valve_ukf_update_flow_nis(valve_ukf_t *s, const float *z, float *nis_out)
     nis = iS*(y[0]*y[0]);
     const float K0 = C0_0*iS;
     const float K1 = C1_0*iS;
-    xs[0] = x[0] + K0*y[0];
-    xs[1] = x[1] + K1*y[0];
+    xs[valve_ukf_ix_opening] = x[valve_ukf_ix_opening] + K0*y[0];
+    xs[valve_ukf_ix_dp] = x[valve_ukf_ix_dp] + K1*y[0];
     Ps[0] = P[0] - C0_0*K0;
     Ps[1] = P[1] - C1_0*K0;
     Ps[2] = P[2] - C1_0*K1;
@@ -283,7 +283,7 @@ int valve_ukf_update_stem_nis(valve_ukf_t *s, const float *z, float *nis_out)
             return st;
         }
     }
-    y[0] = z[0] - x[0];
+    y[0] = z[0] - x[valve_ukf_ix_opening];
     const float S0_0 = 0.0004F + P[0];
     const float Sd0 = S0_0;
     if (!isfinite(Sd0)) { return VALVE_UKF_NON_FINITE; }
@@ -292,8 +292,8 @@ int valve_ukf_update_stem_nis(valve_ukf_t *s, const float *z, float *nis_out)
     nis = iS*(y[0]*y[0]);
     const float K0 = P[0]*iS;
     const float K1 = P[1]*iS;
-    xs[0] = x[0] + K0*y[0];
-    xs[1] = x[1] + K1*y[0];
+    xs[valve_ukf_ix_opening] = x[valve_ukf_ix_opening] + K0*y[0];
+    xs[valve_ukf_ix_dp] = x[valve_ukf_ix_dp] + K1*y[0];
     Ps[0] = P[0] - K0*P[0];
     Ps[1] = P[1] - K0*P[1];
     Ps[2] = P[2] - K1*P[1];

@@ -80,6 +80,10 @@ enum {
     valve_ukf_ix_dp = 1  /* index of dp in x */
 };
 
+enum {
+    valve_ukf_iu_cmd = 0  /* index of cmd in u */
+};
+
 /* Runtime parameters; valve_ukf_init sets the defaults shown. */
 typedef struct valve_ukf_par {
     float gain;  /* default 2.0F [1/s] */
