@@ -15,6 +15,7 @@ from typing import Any
 from .errors import GenerationError, ModelError
 from .model import Model, ModelSpec, load_model, validate
 from .status import Status
+from . import quat
 
 # The submodules estgen.build and estgen.reference share their names with the functions below.
 # Importing them first means the function definitions that follow win the package attribute.
@@ -29,6 +30,7 @@ __all__ = [
     "ModelError",
     "GenerationError",
     "Status",
+    "quat",
     "load_model",
     "validate",
     "build",

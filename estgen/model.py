@@ -121,6 +121,7 @@ class Variable:
     unit: Optional[str] = None
     angle: bool = False
     where: Optional[Where] = None
+    attitude: Optional[str] = None  # name of the attitude (unit quaternion) this state belongs to
 
 
 @dataclass(frozen=True)
@@ -183,6 +184,23 @@ class Model:
         if not isinstance(angle, (bool, np.bool_)):
             raise ModelError(f"states(angle=...) must be True or False, got {angle!r}", where)
         return self._declare(self._states, names, units, bool(angle), where)
+
+    def attitude(self, name: str) -> Tuple[sp.Symbol, sp.Symbol, sp.Symbol, sp.Symbol]:
+        """Declare an attitude: a unit quaternion (w, x, y, z), Hamilton product, rotating body
+        vectors into the reference frame. Returns its four symbols (named ``<name>_w`` ...), which
+        take four consecutive entries of ``x``; the covariance holds three for it, the rotation
+        vector ``dtheta`` of ``q_true = q_est ⊗ quat.exp(dtheta)`` (body frame). Build its next
+        value in ``process`` with :func:`estgen.quat.mul` and :func:`estgen.quat.exp`."""
+        where = _caller_where()
+        if not isinstance(name, str) or not _IDENT.match(name):
+            raise ModelError(f"attitude name {name!r} is not a safe C identifier; use letters, digits and '_', "
+                             f"starting with a letter", where)
+        out = []
+        for part in "wxyz":
+            sym = sp.Symbol(f"{name}_{part}")
+            self._states.append(Variable(f"{name}_{part}", sym, None, False, where, attitude=name))
+            out.append(sym)
+        return (out[0], out[1], out[2], out[3])
 
     def inputs(
         self, names: Union[str, Sequence[str]], *, units: Union[None, str, Sequence[Optional[str]]] = None
@@ -327,7 +345,46 @@ class ModelSpec:
 
     @property
     def n(self) -> int:
+        """Entries of the state vector x (four per attitude)."""
         return len(self.states)
+
+    @property
+    def attitudes(self) -> Tuple[int, ...]:
+        """Index in x of the w entry of each attitude (its four entries are consecutive)."""
+        return tuple(i for i, s in enumerate(self.states) if s.attitude is not None and s.name.endswith("_w")
+                     and i + 3 < len(self.states) and self.states[i + 3].attitude == s.attitude)
+
+    @property
+    def ne(self) -> int:
+        """The error (covariance) dimension: n minus one per attitude."""
+        return self.n - len(self.attitudes)
+
+    @property
+    def error_names(self) -> Tuple[str, ...]:
+        """Names of the covariance's components: each plain state, and ``<att>_rx``, ``_ry``,
+        ``_rz`` (rad, rotation vector, body frame) for an attitude."""
+        out: List[str] = []
+        for s in self.states:
+            if s.attitude is None:
+                out.append(s.name)
+            elif not s.name.endswith("_w"):
+                out.append(f"{s.attitude}_r{s.name[-1]}")
+        return tuple(out)
+
+    def error_blocks(self) -> List[Tuple[str, int, int]]:
+        """The state description, in order: ("real", x index, error index) for a plain state and
+        ("attitude", x index of w, error index of the rotation vector's x) for an attitude."""
+        out: List[Tuple[str, int, int]] = []
+        e = 0
+        att = set(self.attitudes)
+        for i, s in enumerate(self.states):
+            if s.attitude is None:
+                out.append(("real", i, e))
+                e += 1
+            elif i in att:
+                out.append(("attitude", i, e))
+                e += 3
+        return out
 
     @property
     def nu(self) -> int:
@@ -690,7 +747,10 @@ def validate(model: Model) -> ModelSpec:
     if model._Q is None:
         raise ModelError("no process noise; add model.process_noise(Q)", mw)
     Qraw, qw = model._Q
-    Q, _ = _as_square(Qraw, n, "process_noise()", qw)
+    att_idx = [i for i, v in enumerate(model._states) if v.attitude is not None and v.name.endswith("_w")]
+    ne = n - len(att_idx)
+    edim = f" (the error dimension: {n} states minus one per attitude)" if att_idx else ""
+    Q, _ = _as_square(Qraw, ne, "process_noise()" + edim, qw)
     _check_symbols(Q, set(ps) | {dt}, "process_noise()", qw, "Q may use parameters and dt only", kinds)
     _check_printable(Q, "process_noise()", qw)
     if Q != Q.T:
@@ -748,7 +808,12 @@ def validate(model: Model) -> ModelSpec:
     if len(x0l) != n:
         raise ModelError(f"initial() x0 has {len(x0l)} entries but the model has {n} states; give one per state", iw)
     x0 = tuple(_to_float(v, f"initial() x0[{i}]", iw) for i, v in enumerate(x0l))
-    P0m, _ = _as_square(P0raw, n, "initial() P0", iw)
+    for i in att_idx:
+        norm = math.sqrt(sum(v * v for v in x0[i:i + 4]))
+        if abs(norm - 1.0) > 1e-6:
+            raise ModelError(f"initial() x0[{i}:{i + 4}] is attitude {model._states[i].attitude!r} with norm "
+                             f"{norm:.6g}; give a unit quaternion (w, x, y, z)", iw)
+    P0m, _ = _as_square(P0raw, ne, "initial() P0" + edim, iw)
     if any(e.free_symbols for e in P0m):
         raise ModelError("initial() P0 must hold numbers, not symbols", iw)
     if any(e.has(sp.zoo, sp.oo, -sp.oo, sp.nan) for e in P0m):
@@ -780,6 +845,8 @@ def validate(model: Model) -> ModelSpec:
             raise ModelError(f"{label} is not finite (or not real) at x0 with default parameters and {input_note}; "
                              f"check x0 and the expression's domain", w)
 
+    _check_attitude_process(fcol, att_idx, model._states, point, what, pw)
+
     return ModelSpec(
         name=model.name,
         source=src,
@@ -798,6 +865,24 @@ def validate(model: Model) -> ModelSpec:
         input_profile=profile,
         where={"model": mw, "process": pw, "Q": qw, "initial": iw},
     )
+
+
+def _check_attitude_process(fcol: sp.Matrix, att_idx: List[int], states: List[Variable],
+                            point: Dict[sp.Symbol, float], what: str, where: Where) -> None:
+    """The four entries of f for an attitude must form its next quaternion: a (near) unit
+    quaternion at x0. A real-valued expression there (say q_w + dt*...) is almost always a
+    model written for Euler angles; the filters would renormalize it silently."""
+    for i in att_idx:
+        try:
+            val = np.array(sp.Matrix(fcol[i:i + 4]).xreplace({k: sp.Float(v) for k, v in point.items()}).evalf(),
+                           dtype=float).ravel()
+        except (TypeError, ValueError):
+            continue
+        norm = float(np.sqrt(np.sum(val * val)))
+        if not np.isfinite(norm) or abs(norm - 1.0) > 1e-2:
+            raise ModelError(f"{what} entries {i}..{i + 3} (attitude {states[i].attitude!r}) give a quaternion of "
+                             f"norm {norm:.4g} at x0; write the next attitude as a unit quaternion, "
+                             f"e.g. quat.mul(q, quat.exp([wx * dt, wy * dt, wz * dt]))", where)
 
 
 def _printable(e: sp.Basic, printer: Any) -> bool:
@@ -875,8 +960,18 @@ def _find_nondiff(expr: sp.Basic) -> Optional[str]:
     return None
 
 
+#: Filters whose derivation handles attitude (error-state) blocks.
+ATTITUDE_FILTERS: Tuple[str, ...] = ()
+
+
 def check_filter_support(spec: ModelSpec, filt: str) -> None:
     """Refuse what a given filter cannot do (for the EKF: non-differentiable functions)."""
+    if filt == "pf" and spec.attitudes:
+        raise ModelError(f"the particle filter does not take attitude states (model {spec.name!r} declares "
+                         f"{len(spec.attitudes)}); use --filter ekf or --filter ukf", spec.states[spec.attitudes[0]].where)
+    if filt not in ATTITUDE_FILTERS and spec.attitudes:
+        raise ModelError(f"--filter {filt} does not take attitude states yet; this estgen version generates "
+                         f"attitudes for {', '.join(ATTITUDE_FILTERS) or 'no filter'}", spec.states[spec.attitudes[0]].where)
     if filt not in ("ekf", "ukf"):
         raise ModelError(f"unknown filter {filt!r}; use 'ekf' or 'ukf'")
     if filt == "ukf":

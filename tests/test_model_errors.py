@@ -91,6 +91,14 @@ CASES: Tuple[Tuple[str, Optional[int], Tuple[str, ...], bool], ...] = (
     ("function_without_c_form.py", 8, ("uses besselj, which has no C form", "elementary functions"), False),
     ("piecewise_no_default.py", 6, ("Piecewise without a final (value, True) branch", "add one"), False),
     ("scenario_raises.py", 5, ("scenario inputs(0) raised ZeroDivisionError", "fix the input function"), False),
+    ("attitude_x0_not_unit.py", 10, ("x0[0:4] is attitude 'q' with norm 1.00499", "unit quaternion"), False),
+    ("attitude_p0_wrong_dim.py", 10, ("P0 (the error dimension: 4 states minus one per attitude) must be 3x3, "
+                                      "got 4x4", "list of 3 variances"), False),
+    ("attitude_q_wrong_dim.py", 8, ("process_noise() (the error dimension", "must be 3x3, got 4x4"), False),
+    ("attitude_process_not_quaternion.py", 7, ("entries 0..3 (attitude 'q') give a quaternion of norm 3",
+                                               "quat.mul(q, quat.exp("), False),
+    ("attitude_name_bad.py", 5, ("attitude name 'body attitude' is not a safe C identifier", "letters"), False),
+    ("attitude_in_pf.py", 5, ("particle filter does not take attitude states", "--filter ekf"), "pf"),
 )
 
 
@@ -99,7 +107,7 @@ def _refusal(fname: str, ekf: bool) -> estgen.ModelError:
     with pytest.raises(estgen.ModelError) as info:
         spec = estgen.load_model(path)
         if ekf:
-            check_filter_support(spec, "ekf")
+            check_filter_support(spec, ekf if isinstance(ekf, str) else "ekf")
     return info.value
 
 
@@ -134,7 +142,7 @@ def test_bad_model_is_refused_clearly(fname: str, line: Optional[int], fragments
 def test_ekf_refusals_load_fine_for_the_ukf() -> None:
     # The EKF-only refusals are not model errors: the same files are valid for the UKF.
     for fname, _, _, ekf in CASES:
-        if ekf:
+        if ekf is True:
             check_filter_support(estgen.load_model(os.path.join(BAD, fname)), "ukf")
 
 
