@@ -146,6 +146,7 @@ class CFilter:
         self.spec = spec
         self.filter = filter
         self.n = spec.n
+        self.ne = spec.ne  # covariance dimension: n minus one per attitude
         self.precision = comp.gen.precision
         self._ffi = comp.ffi
         self._lib = comp.lib
@@ -160,7 +161,7 @@ class CFilter:
         self._set_state = getattr(self._lib, f"{self._prefix}_set_state")
         self.sensors = [s.name for s in spec.sensors]
         self.nis = float("nan")
-        self._pidx = [[packed_index(i, j, self.n) for j in range(self.n)] for i in range(self.n)]
+        self._pidx = [[packed_index(i, j, self.ne) for j in range(self.ne)] for i in range(self.ne)]
 
     def _arr(self, values: Sequence[float], length: int, what: str) -> Any:
         vals = [float(v) for v in np.asarray(values, dtype=float).ravel()]
@@ -193,15 +194,15 @@ class CFilter:
 
     @property
     def P(self) -> np.ndarray:
-        packed = [self._s.P[k] for k in range(packed_size(self.n))]
-        return np.array([[packed[self._pidx[i][j]] for j in range(self.n)] for i in range(self.n)], dtype=float)
+        packed = [self._s.P[k] for k in range(packed_size(self.ne))]
+        return np.array([[packed[self._pidx[i][j]] for j in range(self.ne)] for i in range(self.ne)], dtype=float)
 
     def set_state(self, x: Sequence[float], P: Any) -> int:
         """Replace x and P (full matrix; its upper triangle is used) after validation."""
         Pm = np.asarray(P, dtype=float)
-        if Pm.shape != (self.n, self.n):
-            raise ValueError(f"P must be {self.n}x{self.n}")
-        packed = [Pm[i, j] for i in range(self.n) for j in range(i, self.n)]
+        if Pm.shape != (self.ne, self.ne):
+            raise ValueError(f"P must be {self.ne}x{self.ne}")
+        packed = [Pm[i, j] for i in range(self.ne) for j in range(i, self.ne)]
         # non-finite values are the C's to refuse (BAD_INPUT comes first, as in the reference)
         finite = bool(np.all(np.isfinite(Pm))) and bool(np.all(np.isfinite(np.asarray(x, dtype=float))))
         if finite and not np.allclose(Pm, Pm.T, rtol=1e-9, atol=0.0):

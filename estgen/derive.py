@@ -132,6 +132,7 @@ class EkfUpdateCode:
     # sizes of scratch arrays the template declares
     w_size: int
     k_size: int
+    dx_size: int = 0  # error-state correction accumulator (models with attitudes)
 
 
 @dataclass
@@ -148,6 +149,7 @@ def derive_ekf_predict(spec: ModelSpec) -> EkfPredictCode:
     touches F's structurally non-zero entries.
     """
     n = spec.n
+    ne = spec.ne
     xs = spec.x_syms
     names = c_names(spec, "x")
     f = spec.f
@@ -164,8 +166,8 @@ def derive_ekf_predict(spec: ModelSpec) -> EkfPredictCode:
             else:
                 outputs.append(("value", f"F{i}_{j}", e.xreplace(names)))
     const_Q: Dict[Tuple[int, int], sp.Expr] = {}
-    for i in range(n):
-        for j in range(i, n):
+    for i in range(ne):
+        for j in range(i, ne):
             e = spec.Q[i, j]
             if e.is_Number:
                 const_Q[(i, j)] = e
@@ -173,7 +175,10 @@ def derive_ekf_predict(spec: ModelSpec) -> EkfPredictCode:
                 outputs.append(("value", f"Q{i}_{j}", e.xreplace(names)))
     stmts, values = model_block(outputs)
     Fm = sp.Matrix(n, n, lambda i, j: const_F.get((i, j), values.get(f"F{i}_{j}", sp.S.Zero)))
-    Qm = {(i, j): const_Q.get((i, j), values.get(f"Q{i}_{j}", sp.S.Zero)) for i in range(n) for j in range(i, n)}
+    Qm = {(i, j): const_Q.get((i, j), values.get(f"Q{i}_{j}", sp.S.Zero)) for i in range(ne) for j in range(i, ne)}
+    if spec.attitudes:
+        Fm = _error_F(spec, Fm, stmts)
+    n = ne  # the covariance algebra below is in the error dimension
     P = _sym_P(n, "P")
     A = Fm * P
     Aref = sp.zeros(n, n)
@@ -194,9 +199,72 @@ def derive_ekf_predict(spec: ModelSpec) -> EkfPredictCode:
         for j in range(i, n):
             e = sum((Aref[i, k] * Fm[j, k] for k in range(n) if Fm[j, k] != 0), sp.S.Zero) + Qm[(i, j)]
             stmts.append(Stmt("assign", f"Pn[{packed_index(i, j, n)}]", e))
+    stmts += _normalize_attitudes(spec)
     stmts += angle_wraps(spec, "xn")
     uses_u = any(str(s).startswith("u[") for st in stmts for s in st.expr.free_symbols)
     return EkfPredictCode(stmts, _uses_params(stmts), uses_u)
+
+
+def _x(arr: str, n: int) -> List[sp.Symbol]:
+    return [sp.Symbol(f"{arr}[{i}]") for i in range(n)]
+
+
+def _named(stmts: List[Stmt], name: str, e: sp.Expr) -> sp.Expr:
+    """``e`` itself when trivial, else a new const local ``name`` holding it."""
+    if _is_trivial(e):
+        return e
+    stmts.append(Stmt("decl", name, e))
+    return sp.Symbol(name)
+
+
+def _error_F(spec: ModelSpec, Fm: sp.Matrix, stmts: List[Stmt]) -> sp.Matrix:
+    """The error-state transition ``E(xn) * F * M(x)`` (see :mod:`estgen.errorstate`) from the
+    Jacobian F = df/dx already in ``Fm``; xn holds f(x) before normalization."""
+    from .errorstate import error_map, retraction_jacobian
+
+    y = list(_x("xn", spec.n))
+    half = {}
+    for xi in spec.attitudes:
+        q = y[xi:xi + 4]
+        stmts.append(Stmt("decl", f"qn2_{xi}", sum((e * e for e in q), sp.S.Zero)))
+        stmts.append(Stmt("decl", f"iqn2_{xi}", 2 / sp.Symbol(f"qn2_{xi}")))
+        # E's entries are +-2 y_c/|y|^2: scaled once here
+        y[xi:xi + 4] = [_named(stmts, f"ey{xi}_{c}", sp.Symbol(f"iqn2_{xi}") * q[c]) for c in range(4)]
+        half[xi] = sp.S.Half
+    T = Fm * retraction_jacobian(spec, _x("x", spec.n))
+    T = sp.Matrix(T.shape[0], T.shape[1], lambda i, j: _named(stmts, f"T{i}_{j}", T[i, j]))
+    Fe = error_map(spec, y, half) * T
+    return sp.Matrix(spec.ne, spec.ne, lambda i, j: _named(stmts, f"Fe{i}_{j}", Fe[i, j]))
+
+
+def _normalize_attitudes(spec: ModelSpec) -> List[Stmt]:
+    """Scale each predicted quaternion to unit norm (``qn2_<i>`` holds its squared norm)."""
+    out: List[Stmt] = []
+    for xi in spec.attitudes:
+        out.append(Stmt("decl", f"iqn_{xi}", 1 / sp.sqrt(sp.Symbol(f"qn2_{xi}"))))
+        for k in range(xi, xi + 4):
+            out.append(Stmt("assign", f"xn[{k}]", sp.Symbol(f"xn[{k}]") * sp.Symbol(f"iqn_{xi}")))
+    return out
+
+
+def _error_H(spec: ModelSpec, Hm: sp.Matrix, stmts: List[Stmt]) -> sp.Matrix:
+    """``H_err = dh/dx * M(x)`` (m x ne)."""
+    from .errorstate import retraction_jacobian
+
+    He = Hm * retraction_jacobian(spec, _x("x", spec.n))
+    return sp.Matrix(He.shape[0], spec.ne, lambda i, j: _named(stmts, f"He{i}_{j}", He[i, j]))
+
+
+def _inject(spec: ModelSpec) -> List[Stmt]:
+    """xs = x ⊞ dx: the accumulated error injected into the prior in one go (attitudes
+    right-multiplied by exp(dtheta) and renormalized). P is left as it is: the reset Jacobian
+    I - [dtheta/2 x] differs from I to first order in the correction only (Markley 2003;
+    Sola 2017, sec. 7.2), the documented first-order choice."""
+    from .errorstate import inject
+
+    newx = inject(spec, _x("x", spec.n), _x("dx", spec.ne))
+    stmts, _ = model_block([("assign", f"xs[{i}]", e) for i, e in enumerate(newx)], prefix="g")
+    return stmts
 
 
 def _h_block(spec: SensorSpec, mspec: ModelSpec) -> Tuple[List[Stmt], List[sp.Expr], sp.Matrix, Dict[Tuple[int, int], sp.Expr]]:
@@ -246,10 +314,17 @@ def derive_ekf_update(spec: SensorSpec, mspec: ModelSpec) -> EkfUpdateCode:
     """
     n, m = mspec.n, spec.m
     stmts, hv, Hm, Rm = _h_block(spec, mspec)
+    att = bool(mspec.attitudes)
+    if att:
+        # error state: the correction accumulates in dx (ne) and is injected at the end
+        Hm = _error_H(mspec, Hm, stmts)
+        n = mspec.ne
     stmts += _residuals(spec, hv)
     Ps = _sym_P(n, "Ps")
     X = [sp.Symbol(f"x[{i}]") for i in range(n)]
     XS = [sp.Symbol(f"xs[{i}]") for i in range(n)]
+    D = _x("dx", n)
+    delta = D if att else [XS[k] - X[k] for k in range(n)]
     if spec.diagonal:
         for c in range(m):
             Hrow = [Hm[c, j] for j in range(n)]
@@ -265,7 +340,7 @@ def derive_ekf_update(spec: SensorSpec, mspec: ModelSpec) -> EkfUpdateCode:
             isv = sp.Symbol(f"is{c}")
             r_expr = sp.Symbol(f"y[{c}]")
             if c > 0:
-                r_expr = r_expr - sum((Hrow[j] * (XS[j] - X[j]) for j in nz), sp.S.Zero)
+                r_expr = r_expr - sum((Hrow[j] * delta[j] for j in nz), sp.S.Zero)
             stmts.append(Stmt("decl", f"r{c}", r_expr))
             r = sp.Symbol(f"r{c}")
             stmts.append(Stmt("assign", "nis", sp.Symbol("nis") + r * r * isv))
@@ -276,11 +351,16 @@ def derive_ekf_update(spec: SensorSpec, mspec: ModelSpec) -> EkfUpdateCode:
                 stmts.append(Stmt("assign", f"V[{k}]", s * K[k] - W[k]))
             V = [sp.Symbol(f"V[{k}]") for k in range(n)]
             for k in range(n):
-                stmts.append(Stmt("assign", f"xs[{k}]", XS[k] + K[k] * r))
+                if att:
+                    stmts.append(Stmt("assign", f"dx[{k}]", K[k] * r if c == 0 else D[k] + K[k] * r))
+                else:
+                    stmts.append(Stmt("assign", f"xs[{k}]", XS[k] + K[k] * r))
             for i in range(n):
                 for j in range(i, n):
                     stmts.append(Stmt("assign", f"Ps[{packed_index(i, j, n)}]", Ps[i, j] + K[i] * V[j] - W[i] * K[j]))
-        return EkfUpdateCode(spec, True, stmts, _uses_params(stmts), m, n, n)
+        if att:
+            stmts += _inject(mspec)
+        return EkfUpdateCode(spec, True, stmts, _uses_params(stmts), m, n, n, n if att else 0)
 
     # block update with a full R
     Wm = sp.Matrix(n, m, lambda k, c: sp.Symbol(f"W[{k * m + c}]"))
@@ -334,13 +414,15 @@ def derive_ekf_update(spec: SensorSpec, mspec: ModelSpec) -> EkfUpdateCode:
             e = sum((Km[k, j] * S[(c, j)] for j in range(m)), sp.S.Zero) - Wm[k, c]
             stmts.append(Stmt("assign", f"V[{k * m + c}]", e))
     for k in range(n):
-        e = XS[k] + sum((Km[k, c] * sp.Symbol(f"y[{c}]") for c in range(m)), sp.S.Zero)
-        stmts.append(Stmt("assign", f"xs[{k}]", e))
+        e = sum((Km[k, c] * sp.Symbol(f"y[{c}]") for c in range(m)), sp.S.Zero)
+        stmts.append(Stmt("assign", f"dx[{k}]", e) if att else Stmt("assign", f"xs[{k}]", XS[k] + e))
     for i in range(n):
         for j in range(i, n):
             e = Ps[i, j] + sum((Km[i, c] * Vm[j, c] - Wm[i, c] * Km[j, c] for c in range(m)), sp.S.Zero)
             stmts.append(Stmt("assign", f"Ps[{packed_index(i, j, n)}]", e))
-    return EkfUpdateCode(spec, False, stmts, _uses_params(stmts), m, n * m, n * m)
+    if att:
+        stmts += _inject(mspec)
+    return EkfUpdateCode(spec, False, stmts, _uses_params(stmts), m, n * m, n * m, n if att else 0)
 
 
 def derive_ekf(spec: ModelSpec) -> EkfCode:

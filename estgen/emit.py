@@ -337,7 +337,8 @@ def _common_context(spec: ModelSpec, filt: str, precision: str, commit_check: st
     em = Emitter(prefix, precision, c_names_for(spec, prefix),
                  [p.name for p in spec.params] + [s.name for s in spec.states] + [s.name for s in spec.inputs])
     n = spec.n
-    np_ = packed_size(n)
+    ne = spec.ne  # the covariance's dimension: n minus one per attitude
+    np_ = packed_size(ne)
     size_real = 4 if precision == "float" else 8
     struct_bytes = (n + np_ + len(spec.params)) * size_real
     states = [
@@ -346,7 +347,7 @@ def _common_context(spec: ModelSpec, filt: str, precision: str, commit_check: st
     inputs = [{"i": i, "name": s.name, "unit": safe_comment(s.unit)} for i, s in enumerate(spec.inputs)]
     params = [{"name": p.name, "default": em.lit(p.default), "unit": safe_comment(p.unit)} for p in spec.params]
     x0 = [em.lit(v) for v in spec.x0]
-    P0 = [(packed_index(i, j, n), em.lit(spec.P0[i][j])) for i in range(n) for j in range(i, n)]
+    P0 = [(packed_index(i, j, ne), em.lit(spec.P0[i][j])) for i in range(ne) for j in range(i, ne)]
     sensors = []
     for s in spec.sensors:
         gate = None
@@ -361,11 +362,11 @@ def _common_context(spec: ModelSpec, filt: str, precision: str, commit_check: st
         raise ModelError(f"unknown commit check {commit_check!r}; use one of {', '.join(COMMIT_CHECKS)}")
     commit_ops = OpCount()
     full_ops = OpCount()
-    commit_pd = em.lines(pivot_check(n, "P"), full_ops)
+    commit_pd = em.lines(pivot_check(ne, "P"), full_ops)
     commit_diag: List[str] = []
     if commit_check == "diagonal":
-        diag = [Stmt("check", f"P[{packed_index(i, i, n)}]", sp.Symbol(f"P[{packed_index(i, i, n)}]"))
-                for i in range(n)]
+        diag = [Stmt("check", f"P[{packed_index(i, i, ne)}]", sp.Symbol(f"P[{packed_index(i, i, ne)}]"))
+                for i in range(ne)]
         commit_diag = em.lines(diag, commit_ops)
     else:
         commit_ops = full_ops
@@ -380,7 +381,10 @@ def _common_context(spec: ModelSpec, filt: str, precision: str, commit_check: st
         "real": em.real,
         "precision": precision,
         "n": n,
+        "ne": ne,
         "np": np_,
+        "attitudes": list(spec.attitudes),
+        "error_names": list(spec.error_names),
         "nu": spec.nu,
         "states": states,
         "inputs": inputs,
@@ -463,7 +467,7 @@ def generate_ekf(spec: ModelSpec, precision: str = "float", commit_check: str = 
         oc += OpCount(**ctx["commit_ops"])
         ops[f"update_{uc.sensor.name}"] = oc.as_dict()
         ups.append({**sctx, "lines": body + wraps, "uses_par": uc.uses_par, "w_size": uc.w_size,
-                    "k_size": uc.k_size, "sequential": uc.sequential})
+                    "k_size": uc.k_size, "sequential": uc.sequential, "dx_size": uc.dx_size})
     ctx["updates"] = ups
     ctx["ops"] = ops
     return _render(ctx, "ekf.c.j2")

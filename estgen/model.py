@@ -961,7 +961,7 @@ def _find_nondiff(expr: sp.Basic) -> Optional[str]:
 
 
 #: Filters whose derivation handles attitude (error-state) blocks.
-ATTITUDE_FILTERS: Tuple[str, ...] = ()
+ATTITUDE_FILTERS: Tuple[str, ...] = ("ekf",)
 
 
 def check_filter_support(spec: ModelSpec, filt: str) -> None:

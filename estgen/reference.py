@@ -111,6 +111,43 @@ class ModelFunctions:
             self._h[s.name] = _lambdify([*xs, *ps], s.h)
             self._H[s.name] = _jacobian_fn([*xs, *ps], s.h, xs, f"sensor {s.name!r}")
             self._R[s.name] = _lambdify(list(ps), s.R)
+        self.ne = spec.ne
+        if spec.attitudes:
+            from .errorstate import boxplus_symbolic, error_map, retraction_jacobian
+
+            bx, be, plus = boxplus_symbolic(spec)
+            self._plus = _lambdify([*bx, *be], sp.Matrix(plus))
+            self._M = _lambdify(bx, retraction_jacobian(spec, bx))
+            inv2 = {xi: 1 / sum((bx[k] ** 2 for k in range(xi, xi + 4)), sp.S.Zero) for xi in spec.attitudes}
+            self._E = _lambdify(bx, error_map(spec, bx, inv2))
+
+    def boxplus(self, x: np.ndarray, e: np.ndarray) -> np.ndarray:
+        """``x ⊞ e``: plain states added, attitudes right-multiplied by exp(dtheta), shape (n,)."""
+        if not self.spec.attitudes:
+            return x + e
+        return self._arr(self._plus(*x, *e), (self.n,))
+
+    def normalize(self, x: np.ndarray) -> np.ndarray:
+        """``x`` with every attitude scaled to a unit quaternion."""
+        x = np.array(x, dtype=float)
+        for i in self.spec.attitudes:
+            x[i:i + 4] /= np.linalg.norm(x[i:i + 4])
+        return x
+
+    def F_err(self, x: np.ndarray, u: np.ndarray, dt: float, p: Tuple[float, ...]) -> np.ndarray:
+        """The error-state transition ``E(f(x)) df/dx M(x)`` (ne, ne); df/dx without attitudes."""
+        F = self.F(x, u, dt, p)
+        if not self.spec.attitudes:
+            return F
+        y = self.f(x, u, dt, p)
+        return self._arr(self._E(*y), (self.ne, self.n)) @ F @ self._arr(self._M(*x), (self.n, self.ne))
+
+    def H_err(self, sensor: str, x: np.ndarray, p: Tuple[float, ...]) -> np.ndarray:
+        """``dh/dx M(x)`` (m, ne); dh/dx without attitudes."""
+        H = self.H(sensor, x, p)
+        if not self.spec.attitudes:
+            return H
+        return H @ self._arr(self._M(*x), (self.n, self.ne))
 
     def param_tuple(self, params: Mapping[str, float]) -> Tuple[float, ...]:
         """Parameter values in model order."""
@@ -129,8 +166,8 @@ class ModelFunctions:
         return self._arr(self._F(*x, *u, dt, *p), (self.n, self.n))
 
     def Q(self, dt: float, p: Tuple[float, ...]) -> np.ndarray:
-        """The process noise covariance, shape (n, n)."""
-        return self._arr(self._Q(dt, *p), (self.n, self.n))
+        """The process noise covariance, shape (ne, ne) (the error dimension)."""
+        return self._arr(self._Q(dt, *p), (self.spec.ne, self.spec.ne))
 
     def h(self, sensor: str, x: np.ndarray, p: Tuple[float, ...]) -> np.ndarray:
         """The sensor's measurement function, shape (m,)."""
@@ -276,7 +313,7 @@ class _ReferenceBase(abc.ABC):
         for name, value in (params or {}).items():
             self.set_param(name, value)
         self._angles = np.array(spec.angle_states, dtype=bool)
-        self._x = _wrap_masked(np.array(spec.x0, dtype=float), self._angles)
+        self._x = self._fn.normalize(_wrap_masked(np.array(spec.x0, dtype=float), self._angles))
         self._P = np.array(spec.P0, dtype=float)
         self._nis = math.nan
         self._gates: Dict[str, Optional[float]] = {
@@ -292,7 +329,7 @@ class _ReferenceBase(abc.ABC):
 
     @property
     def P(self) -> np.ndarray:
-        """The state covariance, a copy, shape (n, n)."""
+        """The state covariance, a copy, shape (ne, ne): n minus one per attitude."""
         return self._P.copy()
 
     @property
@@ -324,14 +361,16 @@ class _ReferenceBase(abc.ABC):
     def set_state(self, x: Sequence[float], P: Any) -> int:
         """Replace the state and covariance. Returns BAD_INPUT for non-finite values and
         NOT_POSITIVE_DEFINITE when P is not symmetric positive definite."""
-        n = self.n
+        n, ne = self.n, self.spec.ne
         xv = np.asarray(x, dtype=float).reshape(-1)
         Pm = np.asarray(P, dtype=float)
-        if xv.shape != (n,) or Pm.shape != (n, n):
-            raise ValueError(f"set_state needs x of length {n} and P of shape ({n}, {n}), "
+        if xv.shape != (n,) or Pm.shape != (ne, ne):
+            raise ValueError(f"set_state needs x of length {n} and P of shape ({ne}, {ne}), "
                              f"got {xv.shape} and {Pm.shape}")
         if not _finite(xv, Pm):
             return int(Status.BAD_INPUT)
+        if any(not np.linalg.norm(xv[i:i + 4]) > 0.0 for i in self.spec.attitudes):
+            return int(Status.BAD_INPUT)  # a zero quaternion has no direction to scale to
         scale = float(np.max(np.abs(np.diag(Pm)))) if n else 0.0
         if np.max(np.abs(Pm - Pm.T)) > 1e-9 * scale:
             return int(Status.NOT_POSITIVE_DEFINITE)
@@ -340,7 +379,7 @@ class _ReferenceBase(abc.ABC):
             np.linalg.cholesky(Ps)
         except np.linalg.LinAlgError:
             return int(Status.NOT_POSITIVE_DEFINITE)
-        self._x = _wrap_masked(xv.copy(), self._angles)
+        self._x = self._fn.normalize(_wrap_masked(xv.copy(), self._angles))
         self._P = Ps
         return int(Status.OK)
 
@@ -382,7 +421,7 @@ class _ReferenceBase(abc.ABC):
             bad, K = self._finish_update(sensor, y, S, C)
             if bad is not None:
                 return bad
-            xn = self._x + K @ y
+            xn = self._fn.boxplus(self._x, K @ y)  # the error injected (attitudes: q ⊗ exp(dtheta))
             Pn = covariance(K, S)
         return self._commit(xn, Pn)
 
@@ -409,7 +448,7 @@ class _ReferenceBase(abc.ABC):
         return None, sol[:, 1:].T
 
     def _commit(self, x: np.ndarray, P: np.ndarray) -> int:
-        x = _wrap_masked(x, self._angles)
+        x = self._fn.normalize(_wrap_masked(x, self._angles))
         P = 0.5 * (P + P.T)
         if not _finite(x, P):
             return int(Status.NON_FINITE)
@@ -433,7 +472,7 @@ class ReferenceEKF(_ReferenceBase):
         p = self._p()
         with np.errstate(all="ignore"):
             xn = self._fn.f(self._x, uv, dtf, p)
-            F = self._fn.F(self._x, uv, dtf, p)
+            F = self._fn.F_err(self._x, uv, dtf, p)
             Q = self._fn.Q(dtf, p)
             if not _finite(xn, F, Q):
                 return int(Status.NON_FINITE)
@@ -445,7 +484,7 @@ class ReferenceEKF(_ReferenceBase):
         p = self._p()
         x, P = self._x, self._P
         hx = self._fn.h(sensor, x, p)
-        H = self._fn.H(sensor, x, p)
+        H = self._fn.H_err(sensor, x, p)
         R = self._fn.R(sensor, p)
         if not _finite(hx, H, R):
             return int(Status.NON_FINITE)
@@ -453,7 +492,7 @@ class ReferenceEKF(_ReferenceBase):
         PHt = P @ H.T
 
         def joseph(K: np.ndarray, S: np.ndarray) -> np.ndarray:
-            A = np.eye(self.n) - K @ H
+            A = np.eye(P.shape[0]) - K @ H
             return A @ P @ A.T + K @ R @ K.T  # stays PSD under rounding, unlike (I - KH) P
 
         return y, H @ PHt + R, PHt, joseph
