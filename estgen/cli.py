@@ -1,4 +1,4 @@
-"""The command line: ``estgen generate | verify | simulate | report``.
+"""The command line: ``estgen generate | verify | simulate | soak | report | compare``.
 
 Exit codes: 0 success; 1 a check failed (stale files for ``generate --check``, a deviation over
 tolerance for ``verify``); 2 bad input (a model file or option the user must fix; one short
@@ -176,6 +176,14 @@ def _parser() -> argparse.ArgumentParser:
                        description="Resource figures of the generated filter on a target.")
     report.add_arguments(r)
     r.set_defaults(func=report.run)
+
+    from . import compare
+
+    c = sub.add_parser("compare", help="run several filters on the same simulated truths, weigh accuracy "
+                                       "against cost on the Cortex-M4F and recommend one",
+                       description=compare.__doc__.split("\n\n")[0])
+    compare.add_arguments(c)
+    c.set_defaults(func=compare.run)
     return p
 
 

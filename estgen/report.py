@@ -241,15 +241,18 @@ def _missing(rep: Dict[str, Any], err: cross.ToolMissing, what: str) -> None:
     rep["missing"].setdefault(err.tool, []).append(what)
 
 
-def make_report(model: str, filter: str = "ekf", precision: str = "float", target: str = "cortex-m4f",
+def make_report(model: Any, filter: str = "ekf", precision: str = "float", target: str = "cortex-m4f",
                 steps: int = DEFAULT_STEPS, seed: int = DEFAULT_SEED, work_dir: Optional[str] = None,
-                **options: Any) -> Dict[str, Any]:
-    """Measure one generated filter. Returns a JSON-ready dict (see the module docstring);
-    figures needing a missing tool are absent and the tool is listed under ``missing``."""
-    from . import load_model
+                scenario: Any = None, host: bool = True, **options: Any) -> Dict[str, Any]:
+    """Measure one generated filter of ``model`` (a model file path or a ModelSpec). Returns a
+    JSON-ready dict (see the module docstring); figures needing a missing tool are absent and the
+    tool is listed under ``missing``. ``scenario`` (a :class:`~estgen.simulate.Scenario`) replaces
+    the simulated one the instruction counts replay (``steps`` and ``seed`` are then unused);
+    ``host=False`` leaves out the host instruction count."""
     from .emit import generate as emit_generate
+    from .model import as_spec
 
-    spec = load_model(model)
+    spec = as_spec(model)
     if target not in cross.TARGETS:
         raise ValueError(f"unknown target {target!r}; use one of {sorted(cross.TARGETS)}")
     tmp = tempfile.TemporaryDirectory(prefix="estgen-report-") if work_dir is None else None
@@ -273,7 +276,8 @@ def make_report(model: str, filter: str = "ekf", precision: str = "float", targe
             "ram_bytes": None,
             "flash": None,
             "functions": {},
-            "instructions": {"steps": steps, "seed": seed},
+            "instructions": {"steps": scenario.steps if scenario is not None else steps,
+                             "seed": None if scenario is not None else seed},
             "missing": {},
         }
         text = source.read_text()
@@ -288,7 +292,7 @@ def make_report(model: str, filter: str = "ekf", precision: str = "float", targe
             rep["functions"][fn] = {"ops": {k: int(ops.get(k, 0)) for k in _OP_KEYS}, "ops_counted_by": how,
                                     "ops_c_text": from_text}
         _static_figures(rep, header, source, target, work / f"obj-{target}", fn_names)
-        _instruction_figures(rep, spec, filter, precision, gen, work, steps, seed, fn_names, **options)
+        _instruction_figures(rep, spec, filter, precision, gen, work, steps, seed, fn_names, scenario, host)
         return rep
     finally:
         if tmp is not None:
@@ -317,10 +321,12 @@ def _static_figures(rep: Dict[str, Any], header: Path, source: Path, target: str
 
 
 def _instruction_figures(rep: Dict[str, Any], spec: Any, filter: str, precision: str, gen: Path, work: Path,
-                         steps: int, seed: int, fn_names: Sequence[str], **options: Any) -> None:
+                         steps: int, seed: int, fn_names: Sequence[str], scen: Any = None, host: bool = True) -> None:
     from .simulate import make_scenario
 
-    scen = make_scenario(spec, steps, seed)
+    if scen is None:
+        scen = make_scenario(spec, steps, seed)
+    steps = scen.steps
     cross.write_replay(spec, filter, precision, scen, gen)
     prefix = f"{spec.name}_{filter}"
     # emulated Cortex-M4F
@@ -342,6 +348,8 @@ def _instruction_figures(rep: Dict[str, Any], spec: Any, filter: str, precision:
     except cross.ToolMissing as err:
         _missing(rep, err, "instructions on the emulated Cortex-M4F")
     # host, callgrind
+    if not host:
+        return
     try:
         exe = cross.build_host_replay(gen, spec.name, filter, work / "host")
         counts = cross.callgrind_instructions(exe, fn_names, work / "host")

@@ -32,6 +32,8 @@ __all__ = [
     "Scenario",
     "make_scenario",
     "run_filter",
+    "score_run",
+    "summarize_runs",
     "MonteCarloResult",
     "StatSummary",
     "monte_carlo",
@@ -390,9 +392,15 @@ def _filter_factory(ctx: Dict[str, Any]) -> Callable[[], Any]:
 
 def _one_run(r: int) -> Dict[str, Any]:
     ctx = _CTX
-    spec: ModelSpec = ctx["spec"]
-    sc = make_scenario(spec, ctx["steps"], seed=[ctx["seed"], r], dt=ctx["dt"], every=ctx["every"])
-    out = run_filter(ctx["new_filter"](), sc)
+    sc = make_scenario(ctx["spec"], ctx["steps"], seed=[ctx["seed"], r], dt=ctx["dt"], every=ctx["every"])
+    return score_run(ctx["spec"], sc, run_filter(ctx["new_filter"](), sc), keep_run=(r == 0))
+
+
+def score_run(spec: ModelSpec, sc: Scenario, out: Dict[str, Any], keep_run: bool = False) -> Dict[str, Any]:
+    """One run's statistics from :func:`run_filter`'s output on scenario ``sc``: per step the
+    NEES (nan where P is not positive definite), the squared error per state, the NIS per sensor
+    and the refusals; with ``keep_run``, also the run itself (``run0``: t, x_true, x, P) for plots.
+    The input of :func:`summarize_runs`."""
     angles = np.array(spec.angle_states, dtype=bool)
     err = out["x"][1:] - sc.x_true[1:]
     if angles.any():
@@ -407,7 +415,7 @@ def _one_run(r: int) -> Dict[str, Any]:
         except np.linalg.LinAlgError:
             pass  # a P that is not positive definite has no NEES; the step is left out
     res: Dict[str, Any] = {"nees": nees, "sq_err": err ** 2, "nis": out["nis"], "refusals": out["refusals"]}
-    if r == 0:
+    if keep_run:
         res["run0"] = {"t": np.arange(sc.steps + 1) * sc.dt, "x_true": sc.x_true, "x": out["x"], "P": out["P"]}
     return res
 
@@ -485,7 +493,7 @@ def monte_carlo(
             sys.stderr.write("\n")
             sys.stderr.flush()
     done_results = [res for res in results if res is not None]
-    out = _summarize(spec, filter, use_reference, precision, runs, steps, int(seed), dtv, fparams, changed,
+    out = summarize_runs(spec, filter, use_reference, precision, runs, steps, int(seed), dtv, fparams, changed,
                       done_results, time.perf_counter() - started)
     out.gates = dict(ctx["gates"])
     return out
@@ -504,9 +512,11 @@ def _progress(show: bool, done: int, total: int, started: float) -> None:
     sys.stderr.flush()
 
 
-def _summarize(spec: ModelSpec, filter: str, use_reference: bool, precision: str, runs: int, steps: int,
-               seed: int, dt: float, fparams: Dict[str, float], changed: Dict[str, float], results: List[Dict[str, Any]],
-               seconds: float) -> MonteCarloResult:
+def summarize_runs(spec: ModelSpec, filter: str, use_reference: bool, precision: str, runs: int, steps: int,
+                   seed: int, dt: float, fparams: Dict[str, float], changed: Dict[str, float],
+                   results: List[Dict[str, Any]], seconds: float) -> MonteCarloResult:
+    """The Monte Carlo summary of the runs :func:`score_run` scored: run-averaged NEES and NIS
+    against their bounds, RMSE per state over all runs and steps, refusals by status name."""
     step_no = np.arange(1, steps + 1)
     nees_runs = np.array([r["nees"] for r in results])
     with np.errstate(all="ignore"):
@@ -587,13 +597,7 @@ def format_summary(res: MonteCarloResult) -> str:
 def plot_result(res: MonteCarloResult, path: str) -> None:
     """Write a PNG: run 0's estimate and truth with a +-3 sigma band per state, and the NEES and
     each NIS against their bounds. Needs matplotlib (the ``plot`` extra)."""
-    try:
-        import matplotlib
-
-        matplotlib.use("Agg")
-        import matplotlib.pyplot as plt
-    except ImportError:
-        raise ModelError("--plot needs matplotlib; install it with: pip install 'estgen[plot]'") from None
+    plt = pyplot()
     r0 = res.run0
     n = len(res.states)
     nrows = n + 1 + len(res.nis)
@@ -627,9 +631,26 @@ def plot_result(res: MonteCarloResult, path: str) -> None:
         ax.set_ylabel(label)
         ax.set_xlabel("time [s]")
         ax.legend(loc="upper right", fontsize="small")
+    save_figure(fig, path)
+
+
+def pyplot() -> Any:
+    """matplotlib.pyplot on the file-only Agg backend; a clear error when matplotlib is missing."""
+    try:
+        import matplotlib
+
+        matplotlib.use("Agg")
+        import matplotlib.pyplot as plt
+    except ImportError:
+        raise ModelError("--plot needs matplotlib; install it with: pip install 'estgen[plot]'") from None
+    return plt
+
+
+def save_figure(fig: Any, path: str) -> None:
+    """Lay out, write as PNG and release a figure."""
     fig.tight_layout()
     fig.savefig(path, dpi=90)
-    plt.close(fig)
+    pyplot().close(fig)
 
 
 # ---------------------------------------------------------------------------------------------
@@ -698,12 +719,19 @@ def run(args: argparse.Namespace) -> int:
         gates=_pairs(args.gate, "--gate", float),
         progress=True if getattr(args, "progress", False) else (None if not args.quiet else False),
     )
+    write_outputs(args, res.to_json, lambda path: plot_result(res, path), lambda: format_summary(res))
+    return 0
+
+
+def write_outputs(args: argparse.Namespace, to_json: Callable[[], str], plot: Callable[[str], None],
+                  summary: Callable[[], str]) -> None:
+    """What a Monte Carlo command writes: ``--json FILE``, ``--plot FILE.png`` and, unless
+    ``--quiet``, the summary on stdout."""
     if args.json:
         with open(args.json, "w", encoding="utf-8") as fh:
-            fh.write(res.to_json() + "\n")
+            fh.write(to_json() + "\n")
     if args.plot:
-        plot_result(res, args.plot)
+        plot(args.plot)
     if not args.quiet:
         out: TextIO = sys.stdout
-        out.write(format_summary(res) + "\n")
-    return 0
+        out.write(summary() + "\n")
