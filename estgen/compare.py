@@ -506,7 +506,7 @@ def compare(
     if "ukf" in names or "ekf" in names:
         from .reference import check_ukf_parameters
 
-        check_ukf_parameters(spec.n, alpha, beta, kappa)
+        check_ukf_parameters(spec.ne, alpha, beta, kappa)
     runs, steps, seed = int(runs), int(steps), int(seed)
     if runs < 1 or steps < 1:
         raise ModelError(f"--runs and --steps must be >= 1, got {runs} and {steps}")
@@ -537,7 +537,7 @@ def compare(
                 t0 = time.perf_counter()
                 out = run_filter(factories[name](), sc)
                 res = score_run(spec, sc, out, keep_run=(r == 0))
-                res["diverged"] = _diverged(res, out, spec.n)
+                res["diverged"] = _diverged(res, out, spec.ne)  # NEES dof: the error dimension
                 per[name].append(res)
                 seconds[name] += time.perf_counter() - t0
                 if name == "ekf" and r < LINEARIZATION_RUNS:
