@@ -357,7 +357,9 @@ def _common_context(spec: ModelSpec, filt: str, precision: str, commit_check: st
             "name": s.name, "m": s.m, "gate_prob": repr(s.gate) if s.gate is not None else None, "gate": gate,
             "angles": [i for i, a in enumerate(s.angles) if a],
         })
-    statuses = [{"name": st.name, "value": int(st), "advice": ADVICE[st]} for st in Status]
+    # DEGENERATE is the particle filter's own refusal; the Kalman filters never return it
+    statuses = [{"name": st.name, "value": int(st), "advice": ADVICE[st]} for st in Status
+                if st is not Status.DEGENERATE or filt == "pf"]
     if commit_check not in COMMIT_CHECKS:
         raise ModelError(f"unknown commit check {commit_check!r}; use one of {', '.join(COMMIT_CHECKS)}")
     commit_ops = OpCount()

@@ -165,6 +165,7 @@ class Model:
         self._Q: Optional[Tuple[Any, Where]] = None
         self._sensors: List[_SensorDecl] = []
         self._initial: Optional[Tuple[Any, Any, Where]] = None
+        self._box: Optional[Tuple[Any, Any]] = None
         self._scenario_dt: Optional[float] = None
         self._input_profile: Optional[Callable[[float], Sequence[float]]] = None
         self._scenario_where: Optional[Where] = None
@@ -281,6 +282,25 @@ class Model:
         self._once(self._initial, "the initial state is", "initial()", where)
         self._initial = (x0, P0, where)
 
+    def initial_uniform(self, lower: Any, upper: Any) -> None:
+        """A uniform prior over the box ``lower <= x <= upper`` (one bound pair per state). The
+        particle filter draws its particles from the box; the EKF and UKF start from the box's
+        mean ``(lower + upper) / 2`` and covariance ``diag((upper - lower)^2 / 12)``."""
+        where = _caller_where()
+        self._once(self._initial, "the initial state is", "initial() or initial_uniform()", where)
+        lo = _float_list(lower, "initial_uniform() lower", where)
+        hi = _float_list(upper, "initial_uniform() upper", where)
+        if len(lo) != len(hi):
+            raise ModelError(f"initial_uniform() lower has {len(lo)} entries and upper {len(hi)}; give one pair per state",
+                             where)
+        for i, (a, b) in enumerate(zip(lo, hi)):
+            if not a < b:
+                raise ModelError(f"initial_uniform() needs lower < upper; entry {i} has lower {a!r}, upper {b!r}", where)
+        x0 = [0.5 * (a + b) for a, b in zip(lo, hi)]
+        var = [(b - a) * (b - a) / 12.0 for a, b in zip(lo, hi)]  # variance of a uniform on [a, b]
+        self._initial = (x0, var, where)
+        self._box = (tuple(lo), tuple(hi))
+
     def scenario(self, dt: float, inputs: Optional[Callable[[float], Sequence[float]]] = None) -> None:
         """Defaults for simulation: the step ``dt`` and an input profile ``inputs(t) -> u``."""
         self._scenario_dt = dt
@@ -342,6 +362,8 @@ class ModelSpec:
     scenario_dt: Optional[float]
     input_profile: Optional[Callable[[float], Sequence[float]]]
     where: Dict[str, Where] = field(default_factory=dict)
+    #: the uniform prior box (lower, upper) of ``initial_uniform``; None for a Gaussian prior
+    prior_box: Optional[Tuple[Tuple[float, ...], Tuple[float, ...]]] = None
 
     @property
     def n(self) -> int:
@@ -534,6 +556,15 @@ def _to_float(v: Any, what: str, where: Optional[Where]) -> float:
     if not math.isfinite(val):
         raise ModelError(f"{what} is not finite ({val}); give a finite number", where)
     return val
+
+
+def _float_list(obj: Any, what: str, where: Where) -> List[float]:
+    """A list of finite numbers (for bounds and vectors given as plain numbers)."""
+    try:
+        items = list(obj)
+    except TypeError:
+        raise ModelError(f"{what} must be a list of numbers, one per state", where) from None
+    return [_to_float(v, f"{what}[{i}]", where) for i, v in enumerate(items)]
 
 
 def _as_column(obj: Any, what: str, where: Where) -> sp.Matrix:
@@ -799,7 +830,7 @@ def validate(model: Model) -> ModelSpec:
 
     # initial
     if model._initial is None:
-        raise ModelError("no initial state; add model.initial(x0, P0)", mw)
+        raise ModelError("no initial state; add model.initial(x0, P0) or model.initial_uniform(lower, upper)", mw)
     x0raw, P0raw, iw = model._initial
     try:
         x0l = list(x0raw)
@@ -864,6 +895,7 @@ def validate(model: Model) -> ModelSpec:
         scenario_dt=sim_dt,
         input_profile=profile,
         where={"model": mw, "process": pw, "Q": qw, "initial": iw},
+        prior_box=model._box,
     )
 
 
@@ -972,9 +1004,9 @@ def check_filter_support(spec: ModelSpec, filt: str) -> None:
     if filt not in ATTITUDE_FILTERS and spec.attitudes:
         raise ModelError(f"--filter {filt} does not take attitude states yet; this estgen version generates "
                          f"attitudes for {', '.join(ATTITUDE_FILTERS) or 'no filter'}", spec.states[spec.attitudes[0]].where)
-    if filt not in ("ekf", "ukf"):
-        raise ModelError(f"unknown filter {filt!r}; use 'ekf' or 'ukf'")
-    if filt == "ukf":
+    if filt not in ("ekf", "ukf", "pf"):
+        raise ModelError(f"unknown filter {filt!r}; use 'ekf', 'ukf' or 'pf'")
+    if filt in ("ukf", "pf"):
         return
     src = spec.continuous if spec.continuous is not None else spec.f
     what = "dynamics()" if spec.continuous is not None else "process()"

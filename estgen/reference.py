@@ -569,13 +569,20 @@ def check_ukf_parameters(n: int, alpha: float, beta: float, kappa: float) -> Non
 
 def reference(model: ModelLike, filter: str = "ekf", *, alpha: float = 1.0, beta: float = 2.0,
               kappa: float = 0.0, params: Optional[Mapping[str, float]] = None,
-              gates: Optional[Dict[str, float]] = None) -> Union[ReferenceEKF, ReferenceUKF]:
+              gates: Optional[Dict[str, float]] = None, **options: Any) -> "_ReferenceBase":
     """The numpy reference filter for ``model`` (a ModelSpec, a Model or a model file path),
     started at the model's x0 and P0. ``params`` overrides parameter defaults; ``gates`` sets
-    chi-square gate probabilities per sensor, as for :func:`estgen.build`."""
+    chi-square gate probabilities per sensor, as for :func:`estgen.build`. The particle filter
+    (``filter="pf"``) takes ``particles``, ``seed``, ``resample_threshold`` and ``roughening``
+    (see :mod:`estgen.pf`)."""
     spec = with_gates(as_spec(model), gates)
     check_filter_support(spec, filter)
+    if filter == "pf":
+        from .pf import ReferencePF
+
+        return ReferencePF(spec, params=params, **options)
+    if options:
+        raise ModelError(f"options {sorted(options)} apply to the particle filter only")
     if filter == "ekf":
         return ReferenceEKF(spec, params=params)
     return ReferenceUKF(spec, alpha=alpha, beta=beta, kappa=kappa, params=params)
-

@@ -24,6 +24,8 @@ class Status(IntEnum):
     NON_FINITE = 4
     #: the innovation fell outside the sensor's chi-square gate
     GATED = 5
+    #: particle filter: no particle has a finite weight after the update (every one dropped)
+    DEGENERATE = 6
 
 
 #: what each code asks the caller to do (used in the header's usage block and the README)
@@ -34,4 +36,5 @@ ADVICE = {
     Status.NOT_POSITIVE_DEFINITE: "covariance lost positive definiteness; if it persists, reset with set_state",
     Status.NON_FINITE: "the model produced a non-finite value here; reset with set_state if it persists",
     Status.GATED: "measurement rejected as an outlier by the chi-square gate; nothing to do unless it persists",
+    Status.DEGENERATE: "no particle explains the measurement (all weights zero); reset with set_state if it persists",
 }

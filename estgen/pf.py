@@ -1,0 +1,371 @@
+"""The particle filter: its options and its numpy reference.
+
+A bootstrap (sampling importance resampling) particle filter (Gordon, Salmond & Smith, IEE
+Proc. F 140(2), 1993) carrying N particles and their log-weights:
+
+* predict moves every live particle through f and adds process noise ``Lq z`` (``Lq Lq' = Q``,
+  a Cholesky factor that tolerates a semidefinite Q: a zero pivot gives a zero column, and no
+  draw is made for it). A particle whose prediction is not finite is dropped (weight zero, state
+  kept); when no live particle is left, predict refuses (NON_FINITE) and nothing changes.
+* update adds the Gaussian log-likelihood ``-0.5 |Lr^-1 (z - h(x_i))|^2`` (``Lr Lr' = R``) to each
+  log-weight, subtracts the largest (so the best particle has weight exactly 1 and no weight set
+  underflows to all zeros, Arulampalam et al., IEEE Trans. Signal Process. 50(2), 2002), and
+  resamples when the effective sample size ``(sum w)^2 / sum w^2`` falls below ``threshold N``.
+  No finite log-weight left is the DEGENERATE refusal, and nothing changes.
+* resampling is systematic (Kitagawa, J. Comput. Graph. Stat. 5(1), 1996): one uniform U, the
+  positions ``(U + k) / N``; particle i is copied as many times as positions fall in its slice of
+  the cumulative weights, in place and in O(N): particles copied more than once fill, in
+  increasing order, the slots of particles not copied.
+* optional roughening after resampling (Gordon, Salmond & Smith 1993): each component j gets
+  ``K E_j N^(-1/n) z`` with ``E_j`` the spread (max - min) of the particles in j.
+* ``x`` and ``P`` are the weighted mean and (biased) weighted covariance of the particles
+  (circular mean and wrapped deviations for angle states), recomputed after every call.
+* ``set_state(x, P)`` draws N standard normal vectors, whitens them with their own sample mean
+  and covariance, and colours them with ``chol(P)``: the particle mean and covariance then equal
+  x and P to rounding.
+
+The NIS of an update is that of the Gaussian fitted to the predicted measurements: with the
+residuals ``r_i = z - h(x_i)`` and prior weights, ``y = mean r``, ``S = cov r + R``,
+``NIS = y' S^-1 y`` (used for the optional chi-square gate and the consistency statistics; it is
+chi-square distributed only where the posterior is close to Gaussian).
+
+The generated C does the same steps in the same order with the same random numbers
+(:mod:`estgen.rng`), so the double build agrees with this reference to rounding.
+"""
+
+from __future__ import annotations
+
+import math
+import numbers
+from dataclasses import dataclass
+from typing import Any, Callable, List, Mapping, Optional, Sequence, Tuple
+
+import numpy as np
+import sympy as sp
+
+from .errors import ModelError
+from .model import ModelSpec
+from .reference import ModelFunctions, _ReferenceBase, _finite, _wrap_masked, wrap_angle
+from .rng import Rng
+from .status import Status
+
+__all__ = ["PfOptions", "pf_options", "ReferencePF", "psd_cholesky", "systematic_counts", "fill_in_place",
+           "MAX_PARTICLES", "DEFAULT_PARTICLES", "DEFAULT_SEED"]
+
+MAX_PARTICLES = 1_000_000
+DEFAULT_PARTICLES = 500
+DEFAULT_SEED = 1
+#: a pivot of Q's Cholesky factorization down to -PSD_TOL * Q_jj is taken as zero (semidefinite Q)
+PSD_TOL = {"double": 1e-12, "float": 1e-5}
+
+
+@dataclass(frozen=True)
+class PfOptions:
+    """Compile-time choices of the particle filter."""
+
+    particles: int = DEFAULT_PARTICLES
+    #: resample when the effective sample size falls below this fraction of N
+    resample_threshold: float = 0.5
+    #: roughening constant K (0: none); Gordon, Salmond & Smith used K = 0.2
+    roughening: float = 0.0
+
+
+def pf_options(n: int, options: Mapping[str, Any]) -> PfOptions:
+    """Validate the particle filter's options (particles, resample_threshold, roughening).
+    Raises :class:`ModelError` for unknown options or values out of range."""
+    known = {"particles", "resample_threshold", "roughening"}
+    unknown = sorted(set(options) - known)
+    if unknown:
+        raise ModelError(f"unknown particle filter option(s) {unknown}; it takes particles, resample_threshold "
+                         f"and roughening")
+    N = options.get("particles", DEFAULT_PARTICLES)
+    if N is None:
+        N = DEFAULT_PARTICLES
+    if isinstance(N, bool) or not isinstance(N, numbers.Integral):
+        raise ModelError(f"particles must be a whole number, got {N!r}")
+    N = int(N)
+    if not max(2, n + 1) <= N <= MAX_PARTICLES:
+        raise ModelError(f"particles must lie in {max(2, n + 1)}..{MAX_PARTICLES} for {n} states, got {N}")
+    vals = {}
+    for k, default in (("resample_threshold", 0.5), ("roughening", 0.0)):
+        v = options.get(k, default)
+        if v is None:
+            v = default
+        if isinstance(v, bool) or not isinstance(v, numbers.Real) or not math.isfinite(float(v)):
+            raise ModelError(f"particle filter {k} must be a finite number, got {v!r}")
+        vals[k] = float(v)
+    if not 0.0 < vals["resample_threshold"] <= 1.0:
+        raise ModelError(f"resample_threshold is a fraction of N in (0, 1], got {vals['resample_threshold']}")
+    if vals["roughening"] < 0.0:
+        raise ModelError(f"roughening must be >= 0, got {vals['roughening']}")
+    return PfOptions(N, vals["resample_threshold"], vals["roughening"])
+
+
+def psd_cholesky(A: np.ndarray, tol: float = PSD_TOL["double"]) -> Optional[np.ndarray]:
+    """Lower L with L L' = A for a symmetric positive semidefinite A: a pivot in
+    [-tol A_jj, 0] gives a zero column (that direction carries no noise). None when a pivot is
+    more negative (A is not semidefinite). The same loop as the generated C."""
+    n = A.shape[0]
+    L = np.zeros((n, n))
+    for j in range(n):
+        d = A[j, j] - sum(L[j, k] * L[j, k] for k in range(j))
+        if d > 0.0:
+            ljj = math.sqrt(d)
+            L[j, j] = ljj
+            for i in range(j + 1, n):
+                L[i, j] = (A[i, j] - sum(L[i, k] * L[j, k] for k in range(j))) / ljj
+        elif d < -tol * A[j, j] or not math.isfinite(d):
+            return None
+    return L
+
+
+def systematic_counts(w: np.ndarray, U: float) -> np.ndarray:
+    """How often systematic resampling copies each particle: positions ``(U + k) / N``,
+    k = 0..N-1, against the cumulative normalized weights (sequential sums, as the C)."""
+    N = w.shape[0]
+    cum = np.cumsum(w)
+    inv = 1.0 / cum[-1]
+    c = np.cumsum(w * inv)
+    pos = (U + np.arange(N, dtype=float)) / float(N)
+    idx = np.minimum(np.searchsorted(c, pos, side="left"), N - 1)
+    return np.bincount(idx, minlength=N)
+
+
+def fill_in_place(X: np.ndarray, counts: np.ndarray) -> None:
+    """Apply resampling counts in place: every extra copy of a particle goes, in increasing
+    particle order, to the next slot whose particle was not drawn."""
+    free = np.flatnonzero(counts == 0)
+    sources = np.repeat(np.arange(counts.shape[0]), np.maximum(counts - 1, 0))
+    X[free] = X[sources]
+
+
+def _lambdify_list(args: Sequence[sp.Symbol], exprs: Sequence[sp.Expr]) -> Callable[..., List[Any]]:
+    return sp.lambdify(args, list(exprs), modules="numpy", cse=True)
+
+
+def _columns(values: Sequence[Any], count: int) -> np.ndarray:
+    """Entries of a lambdified list (arrays or scalars) as a (count, len) array."""
+    return np.column_stack([np.broadcast_to(np.asarray(v, dtype=float), (count,)) for v in values])
+
+
+class ReferencePF(_ReferenceBase):
+    """The numpy reference particle filter (double precision), step for step the generated C."""
+
+    filter = "pf"
+
+    def __init__(self, spec: ModelSpec, *, particles: int = DEFAULT_PARTICLES, resample_threshold: float = 0.5,
+                 roughening: float = 0.0, seed: int = DEFAULT_SEED, params: Optional[Mapping[str, float]] = None,
+                 functions: Optional[ModelFunctions] = None) -> None:
+        self.options = pf_options(spec.n, {"particles": particles, "resample_threshold": resample_threshold,
+                                           "roughening": roughening})
+        super().__init__(spec, params, functions)
+        n, N = spec.n, self.options.particles
+        xs, us, ps, dt = spec.x_syms, spec.u_syms, spec.p_syms, spec.dt
+        self._fv = _lambdify_list([*xs, *us, dt, *ps], list(spec.f))
+        self._hv = {s.name: _lambdify_list([*xs, *ps], list(s.h)) for s in spec.sensors}
+        self.N = N
+        self.rng = Rng(seed)
+        self._X = np.zeros((N, n))
+        self._lw = np.zeros(N)
+        self._w = np.ones(N)
+        self._draw_prior()
+        self._moments()
+
+    # -- particles ----------------------------------------------------------------------------
+    @property
+    def particles(self) -> np.ndarray:
+        """The particles, a copy, shape (N, n)."""
+        return self._X.copy()
+
+    @property
+    def log_weights(self) -> np.ndarray:
+        """The log-weights (largest 0; -inf for dropped particles), a copy."""
+        return self._lw.copy()
+
+    @property
+    def weights(self) -> np.ndarray:
+        """exp(log-weights), a copy (not normalized to sum 1: the largest is 1)."""
+        return self._w.copy()
+
+    def reseed(self, seed: int) -> None:
+        """Restart the generator from ``seed`` (particles and weights stay)."""
+        self.rng.reseed(seed)
+
+    def _draw_prior(self) -> None:
+        spec, n, N = self.spec, self.spec.n, self.N
+        if spec.prior_box is not None:
+            lo = np.array(spec.prior_box[0])
+            hi = np.array(spec.prior_box[1])
+            U = np.array([self.rng.uniform() for _ in range(N * n)]).reshape(N, n)
+            X = lo + (hi - lo) * U
+        else:
+            L0 = np.linalg.cholesky(np.array(spec.P0, dtype=float))
+            Z = self.rng.normals(N * n).reshape(N, n)
+            X = np.array(spec.x0, dtype=float) + Z @ L0.T
+        self._X = self._wrap_rows(X)
+        self._lw = np.zeros(N)
+        self._w = np.ones(N)
+
+    def _wrap_rows(self, X: np.ndarray) -> np.ndarray:
+        if self._angles.any():
+            X = X.copy()
+            X[:, self._angles] = wrap_angle(X[:, self._angles])
+        return X
+
+    def _moments(self) -> None:
+        w, X = self._w, self._X
+        live = w > 0.0
+        wl, Xl = w[live], X[live]
+        tot = np.cumsum(wl)[-1]
+        x = (wl @ Xl) / tot
+        if self._angles.any():
+            x[self._angles] = np.arctan2(wl @ np.sin(Xl[:, self._angles]), wl @ np.cos(Xl[:, self._angles]))
+        d = Xl - x
+        if self._angles.any():
+            d[:, self._angles] = wrap_angle(d[:, self._angles])
+        self._x = x
+        self._P = ((d.T * wl) @ d) / tot
+
+    # -- the filter ---------------------------------------------------------------------------
+    def predict(self, u: Sequence[float], dt: float) -> int:
+        """Move the live particles through f and add process noise (see the module text)."""
+        bad, uv, dtf = self._check_predict(u, dt)
+        if bad is not None:
+            return bad
+        p = self._p()
+        with np.errstate(all="ignore"):
+            Q = self._fn.Q(dtf, p)
+            if not _finite(Q):
+                return int(Status.NON_FINITE)
+            Lq = psd_cholesky(Q)
+            if Lq is None:
+                return int(Status.NOT_POSITIVE_DEFINITE)
+            live = np.flatnonzero(self._w > 0.0)
+            snap = self.rng.snapshot()
+            cols = np.flatnonzero(np.diag(Lq) > 0.0)  # a zero column takes no draw
+            Z = np.zeros((live.shape[0], self.n))
+            if cols.size:
+                Z[:, cols] = self.rng.normals(live.shape[0] * cols.size).reshape(live.shape[0], cols.size)
+            Xl = self._X[live]
+            Xn = _columns(self._fv(*Xl.T, *uv, dtf, *p), live.shape[0]) + Z @ Lq.T
+            Xn = self._wrap_rows(Xn)
+            ok = np.all(np.isfinite(Xn), axis=1)
+        if not ok.any():
+            self.rng.restore(snap)
+            return int(Status.NON_FINITE)
+        self._X[live[ok]] = Xn[ok]
+        dead = live[~ok]
+        if dead.size:
+            self._lw[dead] = -np.inf
+            self._w[dead] = 0.0
+            top = float(np.max(self._lw))
+            if top != 0.0:
+                self._lw = self._lw - top
+                self._w = np.exp(self._lw)
+        self._moments()
+        return int(Status.OK)
+
+    def update(self, sensor: str, z: Sequence[float]) -> int:
+        """Weight by the likelihood of z, resample when the ESS is low (see the module text)."""
+        bad, zv = self._check_update(sensor, z)
+        if bad is not None:
+            return bad
+        s = self.spec.sensor(sensor)
+        p = self._p()
+        zang = self._sensor_angles[sensor]
+        with np.errstate(all="ignore"):
+            R = self._fn.R(sensor, p)
+            if not _finite(R):
+                return int(Status.NON_FINITE)
+            try:
+                Lr = np.linalg.cholesky(R)
+            except np.linalg.LinAlgError:
+                return int(Status.NOT_POSITIVE_DEFINITE)
+            live = np.flatnonzero(self._w > 0.0)
+            Xl = self._X[live]
+            H = _columns(self._hv[sensor](*Xl.T, *p), live.shape[0])
+            r = zv - H
+            if zang.any():
+                r[:, zang] = wrap_angle(r[:, zang])
+            B = np.linalg.solve(Lr, r.T)
+            ll = -0.5 * np.sum(B * B, axis=0)
+            ok = np.isfinite(ll)
+            new = np.full(self.N, -np.inf)
+            new[live[ok]] = self._lw[live[ok]] + ll[ok]
+            # NIS of the Gaussian fitted to the residuals (prior weights)
+            wl = self._w[live[ok]]
+            rl = r[ok]
+            if wl.size:
+                tot = np.cumsum(wl)[-1]
+                y = (wl @ rl) / tot
+                S = ((rl.T * wl) @ rl) / tot - np.outer(y, y) + R
+                S = 0.5 * (S + S.T)
+                try:
+                    Ls = np.linalg.cholesky(S)
+                    b = np.linalg.solve(Ls, y)
+                    nis = float(b @ b)
+                except np.linalg.LinAlgError:
+                    nis = math.nan
+            else:
+                nis = math.nan
+        if not ok.any():
+            return int(Status.DEGENERATE)
+        if not math.isfinite(nis):
+            return int(Status.NON_FINITE)
+        self._nis = nis
+        thr = self._gates[sensor]
+        if thr is not None and nis > thr:
+            return int(Status.GATED)
+        top = float(np.max(new))
+        self._lw = new - top
+        self._w = np.exp(self._lw)
+        ws = np.cumsum(self._w)[-1]
+        w2 = np.cumsum(self._w * self._w)[-1]
+        if ws * ws < self.options.resample_threshold * self.N * w2:
+            self._resample()
+        self._moments()
+        return int(Status.OK)
+
+    def _resample(self) -> None:
+        N = self.N
+        counts = systematic_counts(self._w, self.rng.uniform())
+        fill_in_place(self._X, counts)
+        self._lw = np.zeros(N)
+        self._w = np.ones(N)
+        K = self.options.roughening
+        if K > 0.0:
+            scale = K * float(N) ** (-1.0 / self.n)
+            sig = (np.max(self._X, axis=0) - np.min(self._X, axis=0)) * scale
+            Z = self.rng.normals(N * self.n).reshape(N, self.n)
+            self._X = self._wrap_rows(self._X + Z * sig)
+
+    def _innovation(self, sensor: str, z: np.ndarray) -> Any:
+        raise TypeError("the particle filter has no Gaussian innovation step; update() weights the particles")
+
+    def set_state(self, x: Sequence[float], P: Any) -> int:
+        """Redraw the particles with mean x and covariance P exactly (to rounding), equal weights."""
+        n, N = self.n, self.N
+        bad = super().set_state(x, P)  # validates x and P, and keeps them in _x, _P
+        if bad != Status.OK:
+            return bad
+        xv = self._x
+        L = np.linalg.cholesky(self._P)
+        snap = self.rng.snapshot()
+        Z = self.rng.normals(N * n).reshape(N, n)
+        m = np.cumsum(Z, axis=0)[-1] / N
+        C = (Z.T @ Z) / N - np.outer(m, m)
+        try:
+            A = np.linalg.cholesky(C)
+        except np.linalg.LinAlgError:
+            self.rng.restore(snap)
+            return int(Status.NOT_POSITIVE_DEFINITE)
+        W = np.linalg.solve(A, (Z - m).T).T
+        self._X = self._wrap_rows(xv + W @ L.T)
+        self._lw = np.zeros(N)
+        self._w = np.ones(N)
+        self._moments()
+        return int(Status.OK)
+
+    def __repr__(self) -> str:
+        return f"ReferencePF({self.spec.name!r}, n={self.n}, particles={self.N})"
+
