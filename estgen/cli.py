@@ -10,6 +10,7 @@ from __future__ import annotations
 import argparse
 import json
 import os
+import re
 import sys
 import time
 from typing import Dict, List, Optional, Sequence
@@ -73,6 +74,34 @@ def stale_files(files: Dict[str, str], out_dir: str) -> List[str]:
     return stale
 
 
+_RECORD = re.compile(r"^ \*   (model file sha256|options): (.*)$", re.M)
+
+
+def _record(text: str) -> Dict[str, str]:
+    return {m.group(1): m.group(2).strip() for m in _RECORD.finditer(text)}
+
+
+def drift(files: Dict[str, str], out_dir: str, name: str) -> str:
+    """Why the copy of ``name`` in ``out_dir`` differs from ``files[name]``: the generate options,
+    the model file, or other content (another estgen version, or an edit), read from the records
+    in the header that goes with it."""
+    path = os.path.join(out_dir, name)
+    if not os.path.exists(path):
+        return "missing"
+    header = name[:-2] + ".h" if name.endswith(".c") else name
+    try:
+        with open(os.path.join(out_dir, header), "r", encoding="utf-8") as fh:
+            old = _record(fh.read())
+    except OSError:
+        old = {}
+    new = _record(files.get(header, ""))
+    if old.get("options") != new.get("options"):
+        return f"options differ: file made with '{old.get('options', '?')}', now '{new.get('options', '?')}'"
+    if old.get("model file sha256") != new.get("model file sha256"):
+        return "model changed (its sha256 differs from the one recorded in the header)"
+    return "content differs with the same model and options (another estgen version, or an edit)"
+
+
 def write_generated(files: Dict[str, str], out_dir: str) -> List[str]:
     """Write the generated files (only those that changed, so build systems stay quiet)."""
     os.makedirs(out_dir, exist_ok=True)
@@ -96,7 +125,7 @@ def _cmd_generate(args: argparse.Namespace) -> int:
     if args.check:
         stale = stale_files(gen.files, args.out)
         for name in stale:
-            print(os.path.join(args.out, name))
+            print(f"{os.path.join(args.out, name)}: {drift(gen.files, args.out, name)}")
         if stale:
             print(f"estgen generate --check: {len(stale)} file(s) stale; regenerate with the same options "
                   "without --check", file=sys.stderr)

@@ -13,6 +13,7 @@ i <= j sits at ``i*n - i*(i-1)/2 + (j - i)``.
 
 from __future__ import annotations
 
+import re
 from dataclasses import dataclass, field
 from typing import Dict, Iterable, List, Sequence, Tuple
 
@@ -31,6 +32,10 @@ __all__ = [
     "model_block",
     "angle_wraps",
     "c_names",
+    "with_sections",
+    "comment",
+    "EKF_PREDICT_SECTIONS",
+    "EKF_BLOCK_UPDATE_SECTIONS",
 ]
 
 
@@ -54,11 +59,83 @@ class Stmt:
       ``"assign"`` ``<target> = <expr>;``
       ``"check"``  refuse unless ``<expr>`` is finite and > 0 (a pivot or innovation variance)
       ``"wrap"``   ``<target> = wrap(<target>)`` for an angle
+      ``"comment"`` ``/* <target> */``, a section heading (see :func:`with_sections`); expr unused
     """
 
     kind: str
     target: str
     expr: sp.Expr
+
+
+def comment(text: str) -> Stmt:
+    """A section heading in the C (text from the generator only, never from a model file)."""
+    if "*/" in text or "/*" in text:
+        raise ValueError(text)
+    return Stmt("comment", text, sp.S.Zero)
+
+
+#: A section rule: a regular expression matched against "<kind> <target>" of a statement, and
+#: the heading (a string, or a function of the rule's 0-based run count) put before each run of
+#: statements it matches.
+SectionRule = Tuple[str, object]
+
+EKF_PREDICT_SECTIONS: Tuple[SectionRule, ...] = (
+    (r"^decl t\d+$", "shared subexpressions of f(x, u, dt), F = df/dx and Q"),
+    (r"^assign xn\[", "predicted state x' = f(x, u, dt)"),
+    (r"^decl F\d+_\d+$", "Jacobian F = df/dx (entries that are not constant)"),
+    (r"^decl Q\d+_\d+$", "process noise covariance Q (entries that are not constant)"),
+    (r"^decl A\d+_\d+$", "A = F P (the entries P' reads)"),
+    (r"^assign Pn\[", "covariance P' = A F' + Q, upper triangle, packed"),
+    (r"^wrap xn\[", "angle states wrapped to (-pi, pi]"),
+)
+
+#: the shared head of every EKF update: h, H, R, the innovation, the final wraps
+_EKF_UPDATE_HEAD: Tuple[SectionRule, ...] = (
+    (r"^decl t\d+$", "shared subexpressions of h(x), H = dh/dx and R"),
+    (r"^decl (hz\d+|H\d+_\d+|R\d+_\d+)$", "predicted measurement h(x), Jacobian H = dh/dx, noise R"),
+    (r"^(assign|wrap) y\[", "innovation y = z - h(x)"),
+    (r"^wrap xs\[", "angle states wrapped to (-pi, pi]"),
+)
+
+EKF_BLOCK_UPDATE_SECTIONS: Tuple[SectionRule, ...] = _EKF_UPDATE_HEAD + (
+    (r"^assign W\[", "W = P H'"),
+    (r"^decl S\d+_\d+$", "innovation covariance S = H W + R"),
+    (r"^(decl|check) (D|L|iL)\d", "Cholesky factor S = L L'"),
+    (r"^(decl a\d+_\d+|assign K\[)", "gain K = W S^-1 (forward and back substitution per row)"),
+    (r"^(decl b\d+|assign nis)$", "NIS = |L^-1 y|^2"),
+    (r"^assign V\[", "V = K S - W"),
+    (r"^assign xs\[", "updated state x + K y"),
+    (r"^assign Ps\[", "Joseph form P + K V' - W K', upper triangle, packed"),
+)
+
+
+def ekf_sequential_sections(sensor: SensorSpec) -> Tuple[SectionRule, ...]:
+    """Section rules of a sequential (diagonal R) update: one heading per scalar component."""
+    def head(k: int) -> str:
+        return (f"component z[{k}] of {sensor.name}: W = P H_{k}', s = H_{k} W + R_{k}{k}, K = W / s, "
+                f"x += K r, Joseph-form P")
+    return _EKF_UPDATE_HEAD + ((r"^assign W\[0\]$", head),)
+
+
+def with_sections(stmts: Sequence[Stmt], rules: Sequence[SectionRule]) -> List[Stmt]:
+    """``stmts`` with a :func:`comment` before each run of statements one rule matches.
+
+    A statement no rule matches continues the current section; a matching statement opens a
+    new section when the previous statement did not match the same rule."""
+    compiled = [(re.compile(rx), text) for rx, text in rules]
+    runs = [0] * len(compiled)
+    out: List[Stmt] = []
+    prev = None
+    for st in stmts:
+        key = f"{st.kind} {st.target}"
+        hit = next((i for i, (rx, _) in enumerate(compiled) if rx.search(key)), None)
+        if hit is not None and hit != prev:
+            text = compiled[hit][1]
+            out.append(comment(text(runs[hit]) if callable(text) else str(text)))
+            runs[hit] += 1
+        prev = hit
+        out.append(st)
+    return out
 
 
 def c_names(spec: ModelSpec, x_array: str = "x") -> Dict[sp.Symbol, sp.Symbol]:

@@ -660,6 +660,29 @@ def derive_ukf_update(sensor: SensorSpec, spec: ModelSpec, wts: UkfWeights) -> U
                          _count_locals(stmts, ("hg", "hp", "hm", "hq", "hu", "hv", "he", "hh", "hT", "hmu")))
 
 
+#: section headings of the UKF's predict and update (see :func:`estgen.derive.with_sections`)
+UKF_PREDICT_SECTIONS = (
+    (r"^decl fg\d", "sigma-point offsets gamma L_i (L L' = P)"),
+    (r"^decl ft\d", "shared subexpressions of f at the sigma points"),
+    (r"^(assign|wrap) xn\[", "predicted state: weighted mean of the sigma points through f"),
+    (r"^decl AP\d", "A P for the rows of f that are linear in x"),
+    (r"^assign Pn\[", "covariance P': weighted covariance of the images + Q, upper triangle, packed"),
+)
+UKF_UPDATE_SECTIONS = (
+    (r"^decl hg\d", "sigma-point offsets gamma L_i (L L' = P)"),
+    (r"^decl ht\d", "shared subexpressions of h at the sigma points"),
+    (r"^(assign|wrap) y\[", "innovation y = z - weighted mean of the sigma points through h"),
+    (r"^decl C\d", "cross covariance C = cov(x, z)"),
+    (r"^decl S\d+_\d+$", "innovation covariance S (+ R)"),
+    (r"^(decl|check) (Sd|Ls|Lsi|iS)", "factor S (pivots checked)"),
+    (r"^(decl b\d+|assign nis)$", "NIS = y' S^-1 y"),
+    (r"^decl (K|B)\d", "gain"),
+    (r"^assign xs\[", "updated state x + K y"),
+    (r"^assign Ps\[", "covariance P - K S K', upper triangle, packed"),
+    (r"^wrap xs\[", "angle states wrapped to (-pi, pi]"),
+)
+
+
 def _factor_symbols(n: int) -> Dict[Tuple[int, int], sp.Expr]:
     """L[i, j] (i >= j) as the entries of the array ``Lf`` that :func:`factor_function` fills
     (packed like P: entry (i, j) of L at the packed index of (j, i))."""

@@ -11,6 +11,7 @@ counts and struct size). Output is deterministic: same model and estgen version,
 
 from __future__ import annotations
 
+import hashlib
 import os
 import re
 from dataclasses import dataclass, field
@@ -25,10 +26,11 @@ from sympy.printing.c import C99CodePrinter
 
 from ._version import __version__
 from .chi2 import chi2_ppf
-from .derive import Stmt, angle_wraps, derive_ekf, packed_index, packed_size
+from .derive import (EKF_BLOCK_UPDATE_SECTIONS, EKF_PREDICT_SECTIONS, Stmt, angle_wraps, derive_ekf,
+                     ekf_sequential_sections, packed_index, packed_size, with_sections)
 from .errors import ModelError
 from .model import ModelSpec, check_filter_support, with_gates
-from .status import ADVICE, Status
+from .status import ADVICE, PRECEDENCE, Status
 
 __all__ = ["CPrinter", "OpCount", "count_ops", "Generated", "generate", "template_env", "c_literal"]
 
@@ -321,12 +323,57 @@ class Generated:
     source: str = ""
 
 
+def model_sha256(path: Optional[str]) -> str:
+    """SHA-256 of the model file's bytes (what ``sha256sum`` prints), or "none" without a file."""
+    if not path or not os.path.isfile(path):
+        return "none"
+    with open(path, "rb") as fh:
+        return hashlib.sha256(fh.read()).hexdigest()
+
+
+def options_line(filt: str, precision: str, commit_check: str = "cholesky",
+                 gates: Optional[Dict[str, float]] = None, **options: Any) -> str:
+    """The generate options that made a file, as command-line text in a fixed order (recorded
+    in the header; ``generate --check`` compares it to tell option drift from content drift)."""
+    parts = [f"--filter {filt}", f"--precision {precision}", f"--commit-check {commit_check}"]
+    for name, prob in sorted((gates or {}).items()):
+        parts.append(f"--gate {name}={prob!r}")
+    for key, val in sorted(options.items()):
+        if val is not None:
+            parts.append(f"--{key.replace('_', '-')} {val!r}" if isinstance(val, float) else f"--{key.replace('_', '-')} {val}")
+    return " ".join(parts)
+
+
+#: Power of Ten rule 4 (G. J. Holzmann, "The Power of Ten", IEEE Computer 39(6), 2006): no
+#: function longer than what fits on a sheet of paper, about 60 lines
+FUNCTION_LINES_LIMIT = 60
+_C_FUNCTION = re.compile(r"^(?:static )?[A-Za-z_][\w ]*?\b(\w+)\([^;]*\)\n\{\n(.*?)^\}\n", re.M | re.S)
+
+
+def long_functions(source: str, limit: int = FUNCTION_LINES_LIMIT) -> List[Tuple[str, int]]:
+    """(name, body lines) of every function in ``source`` longer than ``limit`` lines."""
+    return [(m.group(1), m.group(2).count("\n")) for m in _C_FUNCTION.finditer(source)
+            if m.group(2).count("\n") > limit]
+
+
+def _component_text(expr: sp.Expr, width: int = 60) -> str:
+    """A sensor component's model function as sympy prints it over the model's own names,
+    when it is short and cannot end a C comment."""
+    text = sp.sstr(expr)
+    if len(text) > width or "*/" in text or "/*" in text or "//" in text:
+        return "(long expression: see the model file)"
+    return text
+
+
 #: what predict and update verify before they commit a new P (see the README): "cholesky" factorizes
 #: it (every pivot finite and > 0); "diagonal" checks the diagonal only (cheaper, less safe)
 COMMIT_CHECKS = ("cholesky", "diagonal")
 
 
-def _common_context(spec: ModelSpec, filt: str, precision: str, commit_check: str = "cholesky") -> Dict[str, Any]:
+def _common_context(spec: ModelSpec, filt: str, precision: str, commit_check: str = "cholesky",
+                    command: Optional[str] = None) -> Dict[str, Any]:
+    """What every template needs. ``command`` is the options line the header records (default:
+    the filter, precision and commit check)."""
     if precision not in PRECISIONS:
         raise ModelError(f"unknown precision {precision!r}; use 'float' or 'double'")
     for s in spec.sensors:
@@ -353,9 +400,11 @@ def _common_context(spec: ModelSpec, filt: str, precision: str, commit_check: st
         gate = None
         if s.gate is not None:
             gate = em.lit(chi2_ppf(s.gate, s.m))
+        comps = [{"k": k, "text": _component_text(s.h[k]), "unit": safe_comment(s.units[k] if k < len(s.units) else None),
+                  "angle": bool(s.angles[k])} for k in range(s.m)]
         sensors.append({
             "name": s.name, "m": s.m, "gate_prob": repr(s.gate) if s.gate is not None else None, "gate": gate,
-            "angles": [i for i, a in enumerate(s.angles) if a],
+            "angles": [i for i, a in enumerate(s.angles) if a], "components": comps,
         })
     # DEGENERATE is the particle filter's own refusal; the Kalman filters never return it
     statuses = [{"name": st.name, "value": int(st), "advice": ADVICE[st]} for st in Status
@@ -375,6 +424,9 @@ def _common_context(spec: ModelSpec, filt: str, precision: str, commit_check: st
     return {
         "version": __version__,
         "model_file": safe_filename(spec.source),
+        "model_sha256": model_sha256(spec.source),
+        "command": command or options_line(filt, precision, commit_check),
+        "precedence": list(PRECEDENCE),
         "name": spec.name,
         "filt": filt,
         "FILT": filt.upper(),
@@ -415,8 +467,9 @@ def _common_context(spec: ModelSpec, filt: str, precision: str, commit_check: st
 
 def _render(ctx: Dict[str, Any], source_template: str) -> Generated:
     env = template_env()
-    header = env.get_template("filter.h.j2").render(**ctx)
     source = env.get_template(source_template).render(**ctx)
+    header = env.get_template("filter.h.j2").render(long_functions=long_functions(source),
+                                                      lines_limit=FUNCTION_LINES_LIMIT, **ctx)
     cdef = env.get_template("cdef.j2").render(**ctx)
     prefix = ctx["prefix"]
     files = {f"{prefix}.h": header, f"{prefix}.c": source}
@@ -449,26 +502,28 @@ def _derived(spec: ModelSpec, key: str, derive: Any) -> Any:
     return code
 
 
-def generate_ekf(spec: ModelSpec, precision: str = "float", commit_check: str = "cholesky") -> Generated:
-    """Generate the EKF's header and source for ``spec``."""
+def generate_ekf(spec: ModelSpec, precision: str = "float", commit_check: str = "cholesky",
+                 command: Optional[str] = None) -> Generated:
+    """Generate the EKF's header and source for ``spec`` (``command``: the options line the
+    header records)."""
     check_filter_support(spec, "ekf")
-    ctx = _common_context(spec, "ekf", precision, commit_check)
+    ctx = _common_context(spec, "ekf", precision, commit_check, command)
     em: Emitter = ctx["emitter"]
     code = _derived(spec, "ekf", derive_ekf)
     ops: Dict[str, Dict[str, int]] = {}
     pc = OpCount()
-    ctx["predict"] = {"lines": em.lines(code.predict.stmts, pc), "uses_par": code.predict.uses_par,
+    ctx["predict"] = {"lines": em.lines(with_sections(code.predict.stmts, EKF_PREDICT_SECTIONS), pc), "uses_par": code.predict.uses_par,
                       "uses_u": code.predict.uses_u}
     pc += OpCount(**ctx["commit_ops"])
     ops["predict"] = pc.as_dict()
     ups = []
     for uc, sctx in zip(code.updates, ctx["sensors"]):
         oc = OpCount()
-        body = em.lines(uc.stmts, oc)
-        wraps = em.lines(angle_wraps(spec, "xs"), oc)
+        rules = ekf_sequential_sections(uc.sensor) if uc.sequential else EKF_BLOCK_UPDATE_SECTIONS
+        body = em.lines(with_sections(uc.stmts + angle_wraps(spec, "xs"), rules), oc)
         oc += OpCount(**ctx["commit_ops"])
         ops[f"update_{uc.sensor.name}"] = oc.as_dict()
-        ups.append({**sctx, "lines": body + wraps, "uses_par": uc.uses_par, "w_size": uc.w_size,
+        ups.append({**sctx, "lines": body, "uses_par": uc.uses_par, "w_size": uc.w_size,
                     "k_size": uc.k_size, "sequential": uc.sequential, "dx_size": uc.dx_size})
     ctx["updates"] = ups
     ctx["ops"] = ops
@@ -480,13 +535,14 @@ def generate(spec: ModelSpec, filter: str = "ekf", precision: str = "float",
     """Generate C for ``spec``. ``filter`` is "ekf" or "ukf"; UKF options: alpha, beta, kappa.
     ``gates`` sets chi-square gate probabilities per sensor, overriding the model file's.
     ``commit_check`` is "cholesky" (default) or "diagonal": what a new P must pass before commit."""
+    command = options_line(filter, precision, commit_check, gates, **options)
     spec = with_gates(spec, gates)
     if filter == "ekf":
         if options:
             raise ModelError(f"options {sorted(options)} apply to the UKF only")
-        return generate_ekf(spec, precision, commit_check)
+        return generate_ekf(spec, precision, commit_check, command)
     if filter == "ukf":
         from .emit_ukf import generate_ukf
 
-        return generate_ukf(spec, precision, commit_check=commit_check, **options)
+        return generate_ukf(spec, precision, commit_check=commit_check, command=command, **options)
     raise ModelError(f"unknown filter {filter!r}; use 'ekf' or 'ukf'")

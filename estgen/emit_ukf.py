@@ -5,9 +5,10 @@ EKF (:mod:`estgen.emit`), so both filters have the same interface and status cod
 
 from __future__ import annotations
 
-from typing import Any, Dict, List
+from typing import Any, Dict, List, Optional
 
-from .derive_ukf import UkfWeights, check_options, derive_ukf, factor_function
+from .derive import with_sections
+from .derive_ukf import UKF_PREDICT_SECTIONS, UKF_UPDATE_SECTIONS, UkfWeights, check_options, derive_ukf, factor_function
 from .emit import Emitter, Generated, OpCount, _common_context, _render
 from .model import ModelSpec, check_filter_support
 
@@ -25,7 +26,7 @@ def _stack_bytes(stmts_decls: int, arrays: int, size_real: int) -> int:
 
 
 def generate_ukf(spec: ModelSpec, precision: str = "float", commit_check: str = "cholesky",
-                 **options: Any) -> Generated:
+                 command: Optional[str] = None, **options: Any) -> Generated:
     """Generate the UKF's header and source for ``spec``.
 
     ``options``: alpha (> 0), beta, kappa with alpha^2 (n + kappa) > 0. The op counts in
@@ -35,14 +36,14 @@ def generate_ukf(spec: ModelSpec, precision: str = "float", commit_check: str = 
     """
     check_filter_support(spec, "ukf")
     wts = check_options(spec.n, dict(options))
-    ctx = _common_context(spec, "ukf", precision, commit_check)
+    ctx = _common_context(spec, "ukf", precision, commit_check, command)
     em: Emitter = ctx["emitter"]
     code = derive_ukf(spec, wts)
     size_real = 4 if precision == "float" else 8
     n, np_ = ctx["n"], ctx["np"]
     ops: Dict[str, Dict[str, int]] = {}
     pc = OpCount()
-    p_lines = em.lines(code.predict.stmts, pc)
+    p_lines = em.lines(with_sections(code.predict.stmts, UKF_PREDICT_SECTIONS), pc)
     # the commit check is one static function, run by every call: its cost counts in each
     cc = OpCount()
     cc += OpCount(**ctx["commit_ops"])
@@ -59,7 +60,7 @@ def generate_ukf(spec: ModelSpec, precision: str = "float", commit_check: str = 
     u_bytes = 0
     for uc, sctx in zip(code.updates, ctx["sensors"]):
         oc = OpCount()
-        body = em.lines(uc.stmts, oc)
+        body = em.lines(with_sections(uc.stmts, UKF_UPDATE_SECTIONS), oc)
         oc += cc
         ops[f"update_{uc.sensor.name}"] = oc.as_dict()
         decls = sum(1 for st in uc.stmts if st.kind == "decl")

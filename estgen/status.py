@@ -38,3 +38,12 @@ ADVICE = {
     Status.GATED: "measurement rejected as an outlier by the chi-square gate; nothing to do unless it persists",
     Status.DEGENERATE: "no particle explains the measurement (all weights zero); reset with set_state if it persists",
 }
+
+#: Which code a call returns when several apply: the checks run in this order and the first
+#: failing one returns (stated in every generated header).
+PRECEDENCE = (
+    "When several apply, the first check in call order wins: BAD_INPUT (arguments), BAD_DT",
+    "(predict), then NON_FINITE / NOT_POSITIVE_DEFINITE in the order the computation meets them",
+    "(innovation covariance, then the new x and P), and GATED last: a gated update reports GATED",
+    "only when it would otherwise have been accepted.",
+)

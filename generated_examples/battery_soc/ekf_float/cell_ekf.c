@@ -109,13 +109,18 @@ int cell_ekf_predict(cell_ekf_t *s, const float *u, float dt)
         return CELL_EKF_BAD_DT;
     }
 
+    /* shared subexpressions of f(x, u, dt), F = df/dx and Q */
     const float t0 = expf(-dt/(par->c1*par->r1));
+    /* predicted state x' = f(x, u, dt) */
     xn[cell_ekf_ix_soc] = x[cell_ekf_ix_soc] - 0.00027777778F*dt*u[cell_ekf_iu_i]/par->capacity;
     xn[cell_ekf_ix_v_rc] = t0*x[cell_ekf_ix_v_rc] + par->r1*u[cell_ekf_iu_i]*(1.0F - t0);
     xn[cell_ekf_ix_v_ohm] = par->r0*u[cell_ekf_iu_i];
+    /* process noise covariance Q (entries that are not constant) */
     const float Q0_0 = 4.0e-10F*dt;
     const float Q1_1 = 2.5e-07F*dt;
+    /* A = F P (the entries P' reads) */
     const float A1_1 = P[3]*t0;
+    /* covariance P' = A F' + Q, upper triangle, packed */
     Pn[0] = P[0] + Q0_0;
     Pn[1] = P[1]*t0;
     Pn[2] = 0.0F;
@@ -154,11 +159,15 @@ int cell_ekf_update_voltage_nis(cell_ekf_t *s, const float *z, float *nis_out)
 
     memcpy(xs, s->x, sizeof xs);
     memcpy(Ps, s->P, sizeof Ps);
+    /* shared subexpressions of h(x), H = dh/dx and R */
     const float t0 = expf(-15.0F*x[cell_ekf_ix_soc]);
     const float t1 = expf(-12.0F + 12.0F*x[cell_ekf_ix_soc]);
+    /* predicted measurement h(x), Jacobian H = dh/dx, noise R */
     const float hz0 = 3.4F - x[cell_ekf_ix_v_rc] - x[cell_ekf_ix_v_ohm] + 0.72F*x[cell_ekf_ix_soc] + 0.08F*t1 - 0.4F*t0;
     const float H0_0 = 0.72F + 6.0F*t0 + 0.96F*t1;
+    /* innovation y = z - h(x) */
     y[0] = z[0] - hz0;
+    /* component z[0] of voltage: W = P H_0', s = H_0 W + R_00, K = W / s, x += K r, Joseph-form P */
     W[0] = -Ps[1] - Ps[2] + H0_0*Ps[0];
     W[1] = -Ps[3] - Ps[4] + H0_0*Ps[1];
     W[2] = -Ps[4] - Ps[5] + H0_0*Ps[2];

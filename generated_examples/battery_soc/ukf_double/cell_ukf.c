@@ -154,16 +154,20 @@ int cell_ukf_predict(cell_ukf_t *s, const double *u, double dt)
             return st;
         }
     }
+    /* shared subexpressions of f at the sigma points */
     const double ft0 = exp(-dt/(par->c1*par->r1));
     const double fc0 = x[cell_ukf_ix_soc] - 0.0002777777777777778*dt*u[cell_ukf_iu_i]/par->capacity;
     const double fc1 = ft0*x[cell_ukf_ix_v_rc] + par->r1*u[cell_ukf_iu_i]*(1.0 - ft0);
     const double fc2 = par->r0*u[cell_ukf_iu_i];
     const double Q0_0 = 4.0000000000000007e-10*dt;
     const double Q1_1 = 2.5e-07*dt;
+    /* predicted state: weighted mean of the sigma points through f */
     xn[cell_ukf_ix_soc] = fc0;
     xn[cell_ukf_ix_v_rc] = fc1;
     xn[cell_ukf_ix_v_ohm] = fc2;
+    /* A P for the rows of f that are linear in x */
     const double AP1_1 = P[3]*ft0;
+    /* covariance P': weighted covariance of the images + Q, upper triangle, packed */
     Pn[0] = P[0] + Q0_0;
     Pn[1] = P[1]*ft0;
     Pn[2] = 0.0;
@@ -205,6 +209,7 @@ int cell_ukf_update_voltage_nis(cell_ukf_t *s, const double *z, double *nis_out)
             return st;
         }
     }
+    /* sigma-point offsets gamma L_i (L L' = P) */
     const double hg0_0 = 1.7320508075688772*Lf[0];
     const double hg1_0 = 1.7320508075688772*Lf[1];
     const double hg2_0 = 1.7320508075688772*Lf[2];
@@ -223,6 +228,7 @@ int cell_ukf_update_voltage_nis(cell_ukf_t *s, const double *z, double *nis_out)
     const double ho1_0 = exp(had1_0);
     const double hop1_0 = hae1*ho1_0;
     const double hom1_0 = hae1/ho1_0;
+    /* shared subexpressions of h at the sigma points */
     const double ht0 = 0.4*hae1;
     const double ht1 = 3.4 - x[cell_ukf_ix_v_rc] - x[cell_ukf_ix_v_ohm] + 0.72*x[cell_ukf_ix_soc];
     const double ht2 = ht1 - ht0 + 0.08*hae0;
@@ -248,22 +254,30 @@ int cell_ukf_update_voltage_nis(cell_ukf_t *s, const double *z, double *nis_out)
     const double hv1_0 = -hh0 + 0.2886751345948129*hq1_0;
     const double hu2_0 = 0.2886751345948129*(hp2_0 - hm2_0);
     const double hv2_0 = -hh0 + 0.2886751345948129*hq2_0;
+    /* innovation y = z - weighted mean of the sigma points through h */
     y[0] = z[0] - hmu0;
+    /* cross covariance C = cov(x, z) */
     const double C0_0 = Lf[0]*hu0_0;
     const double C1_0 = Lf[1]*hu0_0 + Lf[3]*hu1_0;
     const double C2_0 = Lf[2]*hu0_0 + Lf[4]*hu1_0 + Lf[5]*hu2_0;
+    /* innovation covariance S (+ R) */
     const double S0_0 = 2.5e-05 + (hu0_0*hu0_0) + (hu1_0*hu1_0) + (hu2_0*hu2_0) + (hv0_0*hv0_0) + (hv1_0*hv1_0) + (hv2_0*hv2_0) + 2.0*(he0*he0);
+    /* factor S (pivots checked) */
     const double Sd0 = S0_0;
     if (!isfinite(Sd0)) { return CELL_UKF_NON_FINITE; }
     if (!(Sd0 > 0.0)) { return CELL_UKF_NOT_POSITIVE_DEFINITE; }
     const double iS = (1.0/Sd0);
+    /* NIS = y' S^-1 y */
     nis = iS*(y[0]*y[0]);
+    /* gain */
     const double K0 = C0_0*iS;
     const double K1 = C1_0*iS;
     const double K2 = C2_0*iS;
+    /* updated state x + K y */
     xs[cell_ukf_ix_soc] = x[cell_ukf_ix_soc] + K0*y[0];
     xs[cell_ukf_ix_v_rc] = x[cell_ukf_ix_v_rc] + K1*y[0];
     xs[cell_ukf_ix_v_ohm] = x[cell_ukf_ix_v_ohm] + K2*y[0];
+    /* covariance P - K S K', upper triangle, packed */
     Ps[0] = P[0] - C0_0*K0;
     Ps[1] = P[1] - C1_0*K0;
     Ps[2] = P[2] - C2_0*K0;

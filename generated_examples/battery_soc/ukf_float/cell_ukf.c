@@ -154,16 +154,20 @@ int cell_ukf_predict(cell_ukf_t *s, const float *u, float dt)
             return st;
         }
     }
+    /* shared subexpressions of f at the sigma points */
     const float ft0 = expf(-dt/(par->c1*par->r1));
     const float fc0 = x[cell_ukf_ix_soc] - 0.00027777778F*dt*u[cell_ukf_iu_i]/par->capacity;
     const float fc1 = ft0*x[cell_ukf_ix_v_rc] + par->r1*u[cell_ukf_iu_i]*(1.0F - ft0);
     const float fc2 = par->r0*u[cell_ukf_iu_i];
     const float Q0_0 = 4.0e-10F*dt;
     const float Q1_1 = 2.5e-07F*dt;
+    /* predicted state: weighted mean of the sigma points through f */
     xn[cell_ukf_ix_soc] = fc0;
     xn[cell_ukf_ix_v_rc] = fc1;
     xn[cell_ukf_ix_v_ohm] = fc2;
+    /* A P for the rows of f that are linear in x */
     const float AP1_1 = P[3]*ft0;
+    /* covariance P': weighted covariance of the images + Q, upper triangle, packed */
     Pn[0] = P[0] + Q0_0;
     Pn[1] = P[1]*ft0;
     Pn[2] = 0.0F;
@@ -205,6 +209,7 @@ int cell_ukf_update_voltage_nis(cell_ukf_t *s, const float *z, float *nis_out)
             return st;
         }
     }
+    /* sigma-point offsets gamma L_i (L L' = P) */
     const float hg0_0 = 1.7320508F*Lf[0];
     const float hg1_0 = 1.7320508F*Lf[1];
     const float hg2_0 = 1.7320508F*Lf[2];
@@ -223,6 +228,7 @@ int cell_ukf_update_voltage_nis(cell_ukf_t *s, const float *z, float *nis_out)
     const float ho1_0 = expf(had1_0);
     const float hop1_0 = hae1*ho1_0;
     const float hom1_0 = hae1/ho1_0;
+    /* shared subexpressions of h at the sigma points */
     const float ht0 = 0.4F*hae1;
     const float ht1 = 3.4F - x[cell_ukf_ix_v_rc] - x[cell_ukf_ix_v_ohm] + 0.72F*x[cell_ukf_ix_soc];
     const float ht2 = ht1 - ht0 + 0.08F*hae0;
@@ -248,22 +254,30 @@ int cell_ukf_update_voltage_nis(cell_ukf_t *s, const float *z, float *nis_out)
     const float hv1_0 = -hh0 + 0.28867513F*hq1_0;
     const float hu2_0 = 0.28867513F*(hp2_0 - hm2_0);
     const float hv2_0 = -hh0 + 0.28867513F*hq2_0;
+    /* innovation y = z - weighted mean of the sigma points through h */
     y[0] = z[0] - hmu0;
+    /* cross covariance C = cov(x, z) */
     const float C0_0 = Lf[0]*hu0_0;
     const float C1_0 = Lf[1]*hu0_0 + Lf[3]*hu1_0;
     const float C2_0 = Lf[2]*hu0_0 + Lf[4]*hu1_0 + Lf[5]*hu2_0;
+    /* innovation covariance S (+ R) */
     const float S0_0 = 2.5e-05F + (hu0_0*hu0_0) + (hu1_0*hu1_0) + (hu2_0*hu2_0) + (hv0_0*hv0_0) + (hv1_0*hv1_0) + (hv2_0*hv2_0) + 2.0F*(he0*he0);
+    /* factor S (pivots checked) */
     const float Sd0 = S0_0;
     if (!isfinite(Sd0)) { return CELL_UKF_NON_FINITE; }
     if (!(Sd0 > 0.0F)) { return CELL_UKF_NOT_POSITIVE_DEFINITE; }
     const float iS = (1.0F/Sd0);
+    /* NIS = y' S^-1 y */
     nis = iS*(y[0]*y[0]);
+    /* gain */
     const float K0 = C0_0*iS;
     const float K1 = C1_0*iS;
     const float K2 = C2_0*iS;
+    /* updated state x + K y */
     xs[cell_ukf_ix_soc] = x[cell_ukf_ix_soc] + K0*y[0];
     xs[cell_ukf_ix_v_rc] = x[cell_ukf_ix_v_rc] + K1*y[0];
     xs[cell_ukf_ix_v_ohm] = x[cell_ukf_ix_v_ohm] + K2*y[0];
+    /* covariance P - K S K', upper triangle, packed */
     Ps[0] = P[0] - C0_0*K0;
     Ps[1] = P[1] - C1_0*K0;
     Ps[2] = P[2] - C2_0*K0;

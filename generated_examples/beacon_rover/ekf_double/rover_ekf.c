@@ -134,6 +134,7 @@ int rover_ekf_predict(rover_ekf_t *s, const double *u, double dt)
         return ROVER_EKF_BAD_DT;
     }
 
+    /* shared subexpressions of f(x, u, dt), F = df/dx and Q */
     const double t0 = cos(x[rover_ekf_ix_psi]);
     const double t1 = dt*u[rover_ekf_iu_acc];
     const double t2 = t1 + x[rover_ekf_ix_v];
@@ -150,14 +151,18 @@ int rover_ekf_predict(rover_ekf_t *s, const double *u, double dt)
     const double t13 = 4.0*sin(t7);
     const double t14 = t11*x[rover_ekf_ix_v] + t12*t2 + t13*t6;
     const double t15 = 0.0001*dt;
+    /* predicted state x' = f(x, u, dt) */
     xn[rover_ekf_ix_px] = t10 + x[rover_ekf_ix_px];
     xn[rover_ekf_ix_py] = x[rover_ekf_ix_py] + t14*t9;
     xn[rover_ekf_ix_psi] = t4;
     xn[rover_ekf_ix_v] = t2;
+    /* Jacobian F = df/dx (entries that are not constant) */
     const double F0_2 = -t14*t9;
     const double F0_3 = t9*(t0 + t5 + t8);
     const double F1_3 = t9*(t11 + t12 + t13);
+    /* process noise covariance Q (entries that are not constant) */
     const double Q3_3 = 0.0025000000000000005*dt;
+    /* A = F P (the entries P' reads) */
     const double A0_0 = P[0] + F0_2*P[2] + F0_3*P[3];
     const double A0_1 = P[1] + F0_2*P[5] + F0_3*P[6];
     const double A0_2 = P[2] + F0_2*P[7] + F0_3*P[8];
@@ -165,6 +170,7 @@ int rover_ekf_predict(rover_ekf_t *s, const double *u, double dt)
     const double A1_1 = P[4] + F1_3*P[6] + P[5]*t10;
     const double A1_2 = P[5] + F1_3*P[8] + P[7]*t10;
     const double A1_3 = P[6] + F1_3*P[9] + P[8]*t10;
+    /* covariance P' = A F' + Q, upper triangle, packed */
     Pn[0] = A0_0 + t15 + A0_2*F0_2 + A0_3*F0_3;
     Pn[1] = A0_1 + A0_2*t10 + A0_3*F1_3;
     Pn[2] = A0_2;
@@ -175,6 +181,7 @@ int rover_ekf_predict(rover_ekf_t *s, const double *u, double dt)
     Pn[7] = P[7] + t15;
     Pn[8] = P[8];
     Pn[9] = P[9] + Q3_3;
+    /* angle states wrapped to (-pi, pi] */
     xn[rover_ekf_ix_psi] = rover_ekf_wrap(xn[rover_ekf_ix_psi]);
     if (!rover_ekf_finite(xn, 4u) || !rover_ekf_finite(Pn, 10u)) {
         return ROVER_EKF_NON_FINITE;
@@ -209,13 +216,17 @@ int rover_ekf_update_range_a_nis(rover_ekf_t *s, const double *z, double *nis_ou
 
     memcpy(xs, s->x, sizeof xs);
     memcpy(Ps, s->P, sizeof Ps);
+    /* shared subexpressions of h(x), H = dh/dx and R */
     const double t0 = x[rover_ekf_ix_px] - par->bax;
     const double t1 = x[rover_ekf_ix_py] - par->bay;
     const double t2 = sqrt((t0*t0) + (t1*t1));
     const double t3 = (1.0/t2);
+    /* predicted measurement h(x), Jacobian H = dh/dx, noise R */
     const double H0_0 = t0*t3;
     const double H0_1 = t1*t3;
+    /* innovation y = z - h(x) */
     y[0] = z[0] - t2;
+    /* component z[0] of range_a: W = P H_0', s = H_0 W + R_00, K = W / s, x += K r, Joseph-form P */
     W[0] = H0_0*Ps[0] + H0_1*Ps[1];
     W[1] = H0_0*Ps[1] + H0_1*Ps[4];
     W[2] = H0_0*Ps[2] + H0_1*Ps[5];
@@ -248,6 +259,7 @@ int rover_ekf_update_range_a_nis(rover_ekf_t *s, const double *z, double *nis_ou
     Ps[7] = Ps[7] + K[2]*V[2] - K[2]*W[2];
     Ps[8] = Ps[8] + K[2]*V[3] - K[3]*W[2];
     Ps[9] = Ps[9] + K[3]*V[3] - K[3]*W[3];
+    /* angle states wrapped to (-pi, pi] */
     xs[rover_ekf_ix_psi] = rover_ekf_wrap(xs[rover_ekf_ix_psi]);
     if (!rover_ekf_finite(xs, 4u) || !rover_ekf_finite(Ps, 10u)) {
         return ROVER_EKF_NON_FINITE;
@@ -294,13 +306,17 @@ int rover_ekf_update_range_b_nis(rover_ekf_t *s, const double *z, double *nis_ou
 
     memcpy(xs, s->x, sizeof xs);
     memcpy(Ps, s->P, sizeof Ps);
+    /* shared subexpressions of h(x), H = dh/dx and R */
     const double t0 = x[rover_ekf_ix_px] - par->bbx;
     const double t1 = x[rover_ekf_ix_py] - par->bby;
     const double t2 = sqrt((t0*t0) + (t1*t1));
     const double t3 = (1.0/t2);
+    /* predicted measurement h(x), Jacobian H = dh/dx, noise R */
     const double H0_0 = t0*t3;
     const double H0_1 = t1*t3;
+    /* innovation y = z - h(x) */
     y[0] = z[0] - t2;
+    /* component z[0] of range_b: W = P H_0', s = H_0 W + R_00, K = W / s, x += K r, Joseph-form P */
     W[0] = H0_0*Ps[0] + H0_1*Ps[1];
     W[1] = H0_0*Ps[1] + H0_1*Ps[4];
     W[2] = H0_0*Ps[2] + H0_1*Ps[5];
@@ -333,6 +349,7 @@ int rover_ekf_update_range_b_nis(rover_ekf_t *s, const double *z, double *nis_ou
     Ps[7] = Ps[7] + K[2]*V[2] - K[2]*W[2];
     Ps[8] = Ps[8] + K[2]*V[3] - K[3]*W[2];
     Ps[9] = Ps[9] + K[3]*V[3] - K[3]*W[3];
+    /* angle states wrapped to (-pi, pi] */
     xs[rover_ekf_ix_psi] = rover_ekf_wrap(xs[rover_ekf_ix_psi]);
     if (!rover_ekf_finite(xs, 4u) || !rover_ekf_finite(Ps, 10u)) {
         return ROVER_EKF_NON_FINITE;
@@ -379,6 +396,7 @@ int rover_ekf_update_range_cd_nis(rover_ekf_t *s, const double *z, double *nis_o
 
     memcpy(xs, s->x, sizeof xs);
     memcpy(Ps, s->P, sizeof Ps);
+    /* shared subexpressions of h(x), H = dh/dx and R */
     const double t0 = -x[rover_ekf_ix_px];
     const double t1 = -par->bcx - t0;
     const double t2 = -x[rover_ekf_ix_py];
@@ -389,12 +407,15 @@ int rover_ekf_update_range_cd_nis(rover_ekf_t *s, const double *z, double *nis_o
     const double t7 = sqrt((t5*t5) + (t6*t6));
     const double t8 = (1.0/t4);
     const double t9 = (1.0/t7);
+    /* predicted measurement h(x), Jacobian H = dh/dx, noise R */
     const double H0_0 = t1*t8;
     const double H0_1 = t3*t8;
     const double H1_0 = t5*t9;
     const double H1_1 = t6*t9;
+    /* innovation y = z - h(x) */
     y[0] = z[0] - t4;
     y[1] = z[1] - t7;
+    /* component z[0] of range_cd: W = P H_0', s = H_0 W + R_00, K = W / s, x += K r, Joseph-form P */
     W[0] = H0_0*Ps[0] + H0_1*Ps[1];
     W[1] = H0_0*Ps[1] + H0_1*Ps[4];
     W[2] = H0_0*Ps[2] + H0_1*Ps[5];
@@ -427,6 +448,7 @@ int rover_ekf_update_range_cd_nis(rover_ekf_t *s, const double *z, double *nis_o
     Ps[7] = Ps[7] + K[2]*V[2] - K[2]*W[2];
     Ps[8] = Ps[8] + K[2]*V[3] - K[3]*W[2];
     Ps[9] = Ps[9] + K[3]*V[3] - K[3]*W[3];
+    /* component z[1] of range_cd: W = P H_1', s = H_1 W + R_11, K = W / s, x += K r, Joseph-form P */
     W[0] = H1_0*Ps[0] + H1_1*Ps[1];
     W[1] = H1_0*Ps[1] + H1_1*Ps[4];
     W[2] = H1_0*Ps[2] + H1_1*Ps[5];
@@ -459,6 +481,7 @@ int rover_ekf_update_range_cd_nis(rover_ekf_t *s, const double *z, double *nis_o
     Ps[7] = Ps[7] + K[2]*V[2] - K[2]*W[2];
     Ps[8] = Ps[8] + K[2]*V[3] - K[3]*W[2];
     Ps[9] = Ps[9] + K[3]*V[3] - K[3]*W[3];
+    /* angle states wrapped to (-pi, pi] */
     xs[rover_ekf_ix_psi] = rover_ekf_wrap(xs[rover_ekf_ix_psi]);
     if (!rover_ekf_finite(xs, 4u) || !rover_ekf_finite(Ps, 10u)) {
         return ROVER_EKF_NON_FINITE;
@@ -504,8 +527,10 @@ int rover_ekf_update_compass_nis(rover_ekf_t *s, const double *z, double *nis_ou
 
     memcpy(xs, s->x, sizeof xs);
     memcpy(Ps, s->P, sizeof Ps);
+    /* innovation y = z - h(x) */
     y[0] = z[0] - x[rover_ekf_ix_psi];
     y[0] = rover_ekf_wrap(y[0]);
+    /* component z[0] of compass: W = P H_0', s = H_0 W + R_00, K = W / s, x += K r, Joseph-form P */
     W[0] = Ps[2];
     W[1] = Ps[5];
     W[2] = Ps[7];
@@ -538,6 +563,7 @@ int rover_ekf_update_compass_nis(rover_ekf_t *s, const double *z, double *nis_ou
     Ps[7] = Ps[7] + K[2]*V[2] - K[2]*W[2];
     Ps[8] = Ps[8] + K[2]*V[3] - K[3]*W[2];
     Ps[9] = Ps[9] + K[3]*V[3] - K[3]*W[3];
+    /* angle states wrapped to (-pi, pi] */
     xs[rover_ekf_ix_psi] = rover_ekf_wrap(xs[rover_ekf_ix_psi]);
     if (!rover_ekf_finite(xs, 4u) || !rover_ekf_finite(Ps, 10u)) {
         return ROVER_EKF_NON_FINITE;

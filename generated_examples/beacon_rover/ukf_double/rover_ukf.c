@@ -192,6 +192,7 @@ int rover_ukf_predict(rover_ukf_t *s, const double *u, double dt)
             return st;
         }
     }
+    /* sigma-point offsets gamma L_i (L L' = P) */
     const double fg0_0 = 2.0*Lf[0];
     const double fg1_0 = 2.0*Lf[1];
     const double fg2_0 = 2.0*Lf[2];
@@ -300,6 +301,7 @@ int rover_ukf_predict(rover_ukf_t *s, const double *u, double dt)
     const double fr2_sm2 = fr2_x2 - fr2_y2;
     const double fr2_cp2 = fr2_z2 - fr2_w2;
     const double fr2_cm2 = fr2_w2 + fr2_z2;
+    /* shared subexpressions of f at the sigma points */
     const double ft0 = dt*u[rover_ukf_iu_acc];
     const double ft1 = ft0 + x[rover_ukf_ix_v];
     const double ft2 = x[rover_ukf_ix_v] + (0.5)*ft0;
@@ -404,10 +406,12 @@ int rover_ukf_predict(rover_ukf_t *s, const double *u, double dt)
     const double fv2_2 = 0.25*(ea[5] + ea[6]);
     ea[7] = rover_ukf_wrap(fc2 - fmu2);
     const double fv3_2 = 0.5*ea[7];
+    /* predicted state: weighted mean of the sigma points through f */
     xn[rover_ukf_ix_px] = fmu0;
     xn[rover_ukf_ix_py] = fmu1;
     xn[rover_ukf_ix_psi] = rover_ukf_wrap(fmu2);
     xn[rover_ukf_ix_v] = ft1;
+    /* covariance P': weighted covariance of the images + Q, upper triangle, packed */
     Pn[0] = ft36 + (fu0_0*fu0_0) + (fu1_0*fu1_0) + (fu2_0*fu2_0) + (fu3_0*fu3_0) + (fv0_0*fv0_0) + (fv1_0*fv1_0) + (fv2_0*fv2_0) + (fv3_0*fv3_0) + 2.0*(fe0*fe0);
     Pn[1] = fu0_0*fu0_1 + fu1_0*fu1_1 + fu2_0*fu2_1 + fu3_0*fu3_1 + fv0_0*fv0_1 + fv1_0*fv1_1 + fv2_0*fv2_1 + fv3_0*fv3_1 + 2.0*fe0*fe1;
     Pn[2] = fu0_0*fu0_2 + fu1_0*fu1_2 + fu2_0*fu2_2 + fv0_0*fv0_2 + fv1_0*fv1_2 + fv2_0*fv2_2 + fv3_0*fv3_2 + 2.0*ea[0]*fe0;
@@ -454,9 +458,11 @@ int rover_ukf_update_range_a_nis(rover_ukf_t *s, const double *z, double *nis_ou
             return st;
         }
     }
+    /* sigma-point offsets gamma L_i (L L' = P) */
     const double hg0_0 = 2.0*Lf[0];
     const double hg1_0 = 2.0*Lf[1];
     const double hg1_1 = 2.0*Lf[4];
+    /* shared subexpressions of h at the sigma points */
     const double ht0 = par->bax - x[rover_ukf_ix_px];
     const double ht1 = (ht0*ht0);
     const double ht2 = par->bay - x[rover_ukf_ix_py];
@@ -479,25 +485,33 @@ int rover_ukf_update_range_a_nis(rover_ukf_t *s, const double *z, double *nis_ou
     const double hv1_0 = -hh0 + 0.25*hq1_0;
     const double hv2_0 = -hh0 + 0.25*hq2_0;
     const double hv3_0 = -hh0 + 0.25*hq3_0;
+    /* innovation y = z - weighted mean of the sigma points through h */
     y[0] = z[0] - hmu0;
+    /* cross covariance C = cov(x, z) */
     const double C0_0 = Lf[0]*hu0_0;
     const double C1_0 = Lf[1]*hu0_0 + Lf[4]*hu1_0;
     const double C2_0 = Lf[2]*hu0_0 + Lf[5]*hu1_0;
     const double C3_0 = Lf[3]*hu0_0 + Lf[6]*hu1_0;
+    /* innovation covariance S (+ R) */
     const double S0_0 = 0.010000000000000002 + (hu0_0*hu0_0) + (hu1_0*hu1_0) + (hv0_0*hv0_0) + (hv1_0*hv1_0) + (hv2_0*hv2_0) + (hv3_0*hv3_0) + 2.0*(he0*he0);
+    /* factor S (pivots checked) */
     const double Sd0 = S0_0;
     if (!isfinite(Sd0)) { return ROVER_UKF_NON_FINITE; }
     if (!(Sd0 > 0.0)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
     const double iS = (1.0/Sd0);
+    /* NIS = y' S^-1 y */
     nis = iS*(y[0]*y[0]);
+    /* gain */
     const double K0 = C0_0*iS;
     const double K1 = C1_0*iS;
     const double K2 = C2_0*iS;
     const double K3 = C3_0*iS;
+    /* updated state x + K y */
     xs[rover_ukf_ix_px] = x[rover_ukf_ix_px] + K0*y[0];
     xs[rover_ukf_ix_py] = x[rover_ukf_ix_py] + K1*y[0];
     xs[rover_ukf_ix_psi] = x[rover_ukf_ix_psi] + K2*y[0];
     xs[rover_ukf_ix_v] = x[rover_ukf_ix_v] + K3*y[0];
+    /* covariance P - K S K', upper triangle, packed */
     Ps[0] = P[0] - C0_0*K0;
     Ps[1] = P[1] - C1_0*K0;
     Ps[2] = P[2] - C2_0*K0;
@@ -508,6 +522,7 @@ int rover_ukf_update_range_a_nis(rover_ukf_t *s, const double *z, double *nis_ou
     Ps[7] = P[7] - C2_0*K2;
     Ps[8] = P[8] - C3_0*K2;
     Ps[9] = P[9] - C3_0*K3;
+    /* angle states wrapped to (-pi, pi] */
     xs[rover_ukf_ix_psi] = rover_ukf_wrap(xs[rover_ukf_ix_psi]);
     if (!isfinite(nis)) {
         return ROVER_UKF_NON_FINITE;
@@ -557,9 +572,11 @@ int rover_ukf_update_range_b_nis(rover_ukf_t *s, const double *z, double *nis_ou
             return st;
         }
     }
+    /* sigma-point offsets gamma L_i (L L' = P) */
     const double hg0_0 = 2.0*Lf[0];
     const double hg1_0 = 2.0*Lf[1];
     const double hg1_1 = 2.0*Lf[4];
+    /* shared subexpressions of h at the sigma points */
     const double ht0 = par->bbx - x[rover_ukf_ix_px];
     const double ht1 = (ht0*ht0);
     const double ht2 = par->bby - x[rover_ukf_ix_py];
@@ -582,25 +599,33 @@ int rover_ukf_update_range_b_nis(rover_ukf_t *s, const double *z, double *nis_ou
     const double hv1_0 = -hh0 + 0.25*hq1_0;
     const double hv2_0 = -hh0 + 0.25*hq2_0;
     const double hv3_0 = -hh0 + 0.25*hq3_0;
+    /* innovation y = z - weighted mean of the sigma points through h */
     y[0] = z[0] - hmu0;
+    /* cross covariance C = cov(x, z) */
     const double C0_0 = Lf[0]*hu0_0;
     const double C1_0 = Lf[1]*hu0_0 + Lf[4]*hu1_0;
     const double C2_0 = Lf[2]*hu0_0 + Lf[5]*hu1_0;
     const double C3_0 = Lf[3]*hu0_0 + Lf[6]*hu1_0;
+    /* innovation covariance S (+ R) */
     const double S0_0 = 0.010000000000000002 + (hu0_0*hu0_0) + (hu1_0*hu1_0) + (hv0_0*hv0_0) + (hv1_0*hv1_0) + (hv2_0*hv2_0) + (hv3_0*hv3_0) + 2.0*(he0*he0);
+    /* factor S (pivots checked) */
     const double Sd0 = S0_0;
     if (!isfinite(Sd0)) { return ROVER_UKF_NON_FINITE; }
     if (!(Sd0 > 0.0)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
     const double iS = (1.0/Sd0);
+    /* NIS = y' S^-1 y */
     nis = iS*(y[0]*y[0]);
+    /* gain */
     const double K0 = C0_0*iS;
     const double K1 = C1_0*iS;
     const double K2 = C2_0*iS;
     const double K3 = C3_0*iS;
+    /* updated state x + K y */
     xs[rover_ukf_ix_px] = x[rover_ukf_ix_px] + K0*y[0];
     xs[rover_ukf_ix_py] = x[rover_ukf_ix_py] + K1*y[0];
     xs[rover_ukf_ix_psi] = x[rover_ukf_ix_psi] + K2*y[0];
     xs[rover_ukf_ix_v] = x[rover_ukf_ix_v] + K3*y[0];
+    /* covariance P - K S K', upper triangle, packed */
     Ps[0] = P[0] - C0_0*K0;
     Ps[1] = P[1] - C1_0*K0;
     Ps[2] = P[2] - C2_0*K0;
@@ -611,6 +636,7 @@ int rover_ukf_update_range_b_nis(rover_ukf_t *s, const double *z, double *nis_ou
     Ps[7] = P[7] - C2_0*K2;
     Ps[8] = P[8] - C3_0*K2;
     Ps[9] = P[9] - C3_0*K3;
+    /* angle states wrapped to (-pi, pi] */
     xs[rover_ukf_ix_psi] = rover_ukf_wrap(xs[rover_ukf_ix_psi]);
     if (!isfinite(nis)) {
         return ROVER_UKF_NON_FINITE;
@@ -660,9 +686,11 @@ int rover_ukf_update_range_cd_nis(rover_ukf_t *s, const double *z, double *nis_o
             return st;
         }
     }
+    /* sigma-point offsets gamma L_i (L L' = P) */
     const double hg0_0 = 2.0*Lf[0];
     const double hg1_0 = 2.0*Lf[1];
     const double hg1_1 = 2.0*Lf[4];
+    /* shared subexpressions of h at the sigma points */
     const double ht0 = -x[rover_ukf_ix_px];
     const double ht1 = ht0 + par->bcx;
     const double ht2 = (ht1*ht1);
@@ -712,8 +740,10 @@ int rover_ukf_update_range_cd_nis(rover_ukf_t *s, const double *z, double *nis_o
     const double hv1_1 = -hh1 + 0.25*hq1_1;
     const double hv2_1 = -hh1 + 0.25*hq2_1;
     const double hv3_1 = -hh1 + 0.25*hq3_1;
+    /* innovation y = z - weighted mean of the sigma points through h */
     y[0] = z[0] - hmu0;
     y[1] = z[1] - hmu1;
+    /* cross covariance C = cov(x, z) */
     const double C0_0 = Lf[0]*hu0_0;
     const double C1_0 = Lf[1]*hu0_0 + Lf[4]*hu1_0;
     const double C2_0 = Lf[2]*hu0_0 + Lf[5]*hu1_0;
@@ -722,9 +752,11 @@ int rover_ukf_update_range_cd_nis(rover_ukf_t *s, const double *z, double *nis_o
     const double C1_1 = Lf[1]*hu0_1 + Lf[4]*hu1_1;
     const double C2_1 = Lf[2]*hu0_1 + Lf[5]*hu1_1;
     const double C3_1 = Lf[3]*hu0_1 + Lf[6]*hu1_1;
+    /* innovation covariance S (+ R) */
     const double S0_0 = 0.0225 + (hu0_0*hu0_0) + (hu1_0*hu1_0) + (hv0_0*hv0_0) + (hv1_0*hv1_0) + (hv2_0*hv2_0) + (hv3_0*hv3_0) + 2.0*(he0*he0);
     const double S0_1 = hu0_0*hu0_1 + hu1_0*hu1_1 + hv0_0*hv0_1 + hv1_0*hv1_1 + hv2_0*hv2_1 + hv3_0*hv3_1 + 2.0*he0*he1;
     const double S1_1 = 0.0225 + (hu0_1*hu0_1) + (hu1_1*hu1_1) + (hv0_1*hv0_1) + (hv1_1*hv1_1) + (hv2_1*hv2_1) + (hv3_1*hv3_1) + 2.0*(he1*he1);
+    /* factor S (pivots checked) */
     const double Sd0 = S0_0;
     if (!isfinite(Sd0)) { return ROVER_UKF_NON_FINITE; }
     if (!(Sd0 > 0.0)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
@@ -736,9 +768,11 @@ int rover_ukf_update_range_cd_nis(rover_ukf_t *s, const double *z, double *nis_o
     if (!(Sd1 > 0.0)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
     const double Ls1_1 = sqrt(Sd1);
     const double Lsi1 = (1.0/Ls1_1);
+    /* NIS = y' S^-1 y */
     const double b0 = Lsi0*y[0];
     const double b1 = Lsi1*(y[1] - Ls1_0*b0);
     nis = (b0*b0) + (b1*b1);
+    /* gain */
     const double B0_0 = C0_0*Lsi0;
     const double B0_1 = Lsi1*(C0_1 - B0_0*Ls1_0);
     const double B1_0 = C1_0*Lsi0;
@@ -747,10 +781,12 @@ int rover_ukf_update_range_cd_nis(rover_ukf_t *s, const double *z, double *nis_o
     const double B2_1 = Lsi1*(C2_1 - B2_0*Ls1_0);
     const double B3_0 = C3_0*Lsi0;
     const double B3_1 = Lsi1*(C3_1 - B3_0*Ls1_0);
+    /* updated state x + K y */
     xs[rover_ukf_ix_px] = x[rover_ukf_ix_px] + B0_0*b0 + B0_1*b1;
     xs[rover_ukf_ix_py] = x[rover_ukf_ix_py] + B1_0*b0 + B1_1*b1;
     xs[rover_ukf_ix_psi] = x[rover_ukf_ix_psi] + B2_0*b0 + B2_1*b1;
     xs[rover_ukf_ix_v] = x[rover_ukf_ix_v] + B3_0*b0 + B3_1*b1;
+    /* covariance P - K S K', upper triangle, packed */
     Ps[0] = P[0] - (B0_0*B0_0) - (B0_1*B0_1);
     Ps[1] = P[1] - B0_0*B1_0 - B0_1*B1_1;
     Ps[2] = P[2] - B0_0*B2_0 - B0_1*B2_1;
@@ -761,6 +797,7 @@ int rover_ukf_update_range_cd_nis(rover_ukf_t *s, const double *z, double *nis_o
     Ps[7] = P[7] - (B2_0*B2_0) - (B2_1*B2_1);
     Ps[8] = P[8] - B2_0*B3_0 - B2_1*B3_1;
     Ps[9] = P[9] - (B3_0*B3_0) - (B3_1*B3_1);
+    /* angle states wrapped to (-pi, pi] */
     xs[rover_ukf_ix_psi] = rover_ukf_wrap(xs[rover_ukf_ix_psi]);
     if (!isfinite(nis)) {
         return ROVER_UKF_NON_FINITE;
@@ -810,6 +847,7 @@ int rover_ukf_update_compass_nis(rover_ukf_t *s, const double *z, double *nis_ou
             return st;
         }
     }
+    /* sigma-point offsets gamma L_i (L L' = P) */
     const double hg2_0 = 2.0*Lf[2];
     const double hg2_1 = 2.0*Lf[5];
     const double hg2_2 = 2.0*Lf[7];
@@ -830,25 +868,33 @@ int rover_ukf_update_compass_nis(rover_ukf_t *s, const double *z, double *nis_ou
     const double hv2_0 = 0.25*(ea[5] + ea[6]);
     ea[7] = rover_ukf_wrap(x[rover_ukf_ix_psi] - hmu0);
     const double hv3_0 = 0.5*ea[7];
+    /* innovation y = z - weighted mean of the sigma points through h */
     y[0] = rover_ukf_wrap(z[0] - hmu0);
+    /* cross covariance C = cov(x, z) */
     const double C0_0 = Lf[0]*hu0_0;
     const double C1_0 = Lf[1]*hu0_0 + Lf[4]*hu1_0;
     const double C2_0 = Lf[2]*hu0_0 + Lf[5]*hu1_0 + Lf[7]*hu2_0;
     const double C3_0 = Lf[3]*hu0_0 + Lf[6]*hu1_0 + Lf[8]*hu2_0;
+    /* innovation covariance S (+ R) */
     const double S0_0 = 0.0027415567780803775 + (hu0_0*hu0_0) + (hu1_0*hu1_0) + (hu2_0*hu2_0) + (hv0_0*hv0_0) + (hv1_0*hv1_0) + (hv2_0*hv2_0) + (hv3_0*hv3_0) + 2.0*(ea[0]*ea[0]);
+    /* factor S (pivots checked) */
     const double Sd0 = S0_0;
     if (!isfinite(Sd0)) { return ROVER_UKF_NON_FINITE; }
     if (!(Sd0 > 0.0)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
     const double iS = (1.0/Sd0);
+    /* NIS = y' S^-1 y */
     nis = iS*(y[0]*y[0]);
+    /* gain */
     const double K0 = C0_0*iS;
     const double K1 = C1_0*iS;
     const double K2 = C2_0*iS;
     const double K3 = C3_0*iS;
+    /* updated state x + K y */
     xs[rover_ukf_ix_px] = x[rover_ukf_ix_px] + K0*y[0];
     xs[rover_ukf_ix_py] = x[rover_ukf_ix_py] + K1*y[0];
     xs[rover_ukf_ix_psi] = x[rover_ukf_ix_psi] + K2*y[0];
     xs[rover_ukf_ix_v] = x[rover_ukf_ix_v] + K3*y[0];
+    /* covariance P - K S K', upper triangle, packed */
     Ps[0] = P[0] - C0_0*K0;
     Ps[1] = P[1] - C1_0*K0;
     Ps[2] = P[2] - C2_0*K0;
@@ -859,6 +905,7 @@ int rover_ukf_update_compass_nis(rover_ukf_t *s, const double *z, double *nis_ou
     Ps[7] = P[7] - C2_0*K2;
     Ps[8] = P[8] - C3_0*K2;
     Ps[9] = P[9] - C3_0*K3;
+    /* angle states wrapped to (-pi, pi] */
     xs[rover_ukf_ix_psi] = rover_ukf_wrap(xs[rover_ukf_ix_psi]);
     if (!isfinite(nis)) {
         return ROVER_UKF_NON_FINITE;

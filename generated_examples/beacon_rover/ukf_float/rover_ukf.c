@@ -192,6 +192,7 @@ int rover_ukf_predict(rover_ukf_t *s, const float *u, float dt)
             return st;
         }
     }
+    /* sigma-point offsets gamma L_i (L L' = P) */
     const float fg0_0 = 2.0F*Lf[0];
     const float fg1_0 = 2.0F*Lf[1];
     const float fg2_0 = 2.0F*Lf[2];
@@ -300,6 +301,7 @@ int rover_ukf_predict(rover_ukf_t *s, const float *u, float dt)
     const float fr2_sm2 = fr2_x2 - fr2_y2;
     const float fr2_cp2 = fr2_z2 - fr2_w2;
     const float fr2_cm2 = fr2_w2 + fr2_z2;
+    /* shared subexpressions of f at the sigma points */
     const float ft0 = dt*u[rover_ukf_iu_acc];
     const float ft1 = ft0 + x[rover_ukf_ix_v];
     const float ft2 = x[rover_ukf_ix_v] + (0.5F)*ft0;
@@ -404,10 +406,12 @@ int rover_ukf_predict(rover_ukf_t *s, const float *u, float dt)
     const float fv2_2 = 0.25F*(ea[5] + ea[6]);
     ea[7] = rover_ukf_wrap(fc2 - fmu2);
     const float fv3_2 = 0.5F*ea[7];
+    /* predicted state: weighted mean of the sigma points through f */
     xn[rover_ukf_ix_px] = fmu0;
     xn[rover_ukf_ix_py] = fmu1;
     xn[rover_ukf_ix_psi] = rover_ukf_wrap(fmu2);
     xn[rover_ukf_ix_v] = ft1;
+    /* covariance P': weighted covariance of the images + Q, upper triangle, packed */
     Pn[0] = ft36 + (fu0_0*fu0_0) + (fu1_0*fu1_0) + (fu2_0*fu2_0) + (fu3_0*fu3_0) + (fv0_0*fv0_0) + (fv1_0*fv1_0) + (fv2_0*fv2_0) + (fv3_0*fv3_0) + 2.0F*(fe0*fe0);
     Pn[1] = fu0_0*fu0_1 + fu1_0*fu1_1 + fu2_0*fu2_1 + fu3_0*fu3_1 + fv0_0*fv0_1 + fv1_0*fv1_1 + fv2_0*fv2_1 + fv3_0*fv3_1 + 2.0F*fe0*fe1;
     Pn[2] = fu0_0*fu0_2 + fu1_0*fu1_2 + fu2_0*fu2_2 + fv0_0*fv0_2 + fv1_0*fv1_2 + fv2_0*fv2_2 + fv3_0*fv3_2 + 2.0F*ea[0]*fe0;
@@ -454,9 +458,11 @@ int rover_ukf_update_range_a_nis(rover_ukf_t *s, const float *z, float *nis_out)
             return st;
         }
     }
+    /* sigma-point offsets gamma L_i (L L' = P) */
     const float hg0_0 = 2.0F*Lf[0];
     const float hg1_0 = 2.0F*Lf[1];
     const float hg1_1 = 2.0F*Lf[4];
+    /* shared subexpressions of h at the sigma points */
     const float ht0 = par->bax - x[rover_ukf_ix_px];
     const float ht1 = (ht0*ht0);
     const float ht2 = par->bay - x[rover_ukf_ix_py];
@@ -479,25 +485,33 @@ int rover_ukf_update_range_a_nis(rover_ukf_t *s, const float *z, float *nis_out)
     const float hv1_0 = -hh0 + 0.25F*hq1_0;
     const float hv2_0 = -hh0 + 0.25F*hq2_0;
     const float hv3_0 = -hh0 + 0.25F*hq3_0;
+    /* innovation y = z - weighted mean of the sigma points through h */
     y[0] = z[0] - hmu0;
+    /* cross covariance C = cov(x, z) */
     const float C0_0 = Lf[0]*hu0_0;
     const float C1_0 = Lf[1]*hu0_0 + Lf[4]*hu1_0;
     const float C2_0 = Lf[2]*hu0_0 + Lf[5]*hu1_0;
     const float C3_0 = Lf[3]*hu0_0 + Lf[6]*hu1_0;
+    /* innovation covariance S (+ R) */
     const float S0_0 = 0.01F + (hu0_0*hu0_0) + (hu1_0*hu1_0) + (hv0_0*hv0_0) + (hv1_0*hv1_0) + (hv2_0*hv2_0) + (hv3_0*hv3_0) + 2.0F*(he0*he0);
+    /* factor S (pivots checked) */
     const float Sd0 = S0_0;
     if (!isfinite(Sd0)) { return ROVER_UKF_NON_FINITE; }
     if (!(Sd0 > 0.0F)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
     const float iS = (1.0F/Sd0);
+    /* NIS = y' S^-1 y */
     nis = iS*(y[0]*y[0]);
+    /* gain */
     const float K0 = C0_0*iS;
     const float K1 = C1_0*iS;
     const float K2 = C2_0*iS;
     const float K3 = C3_0*iS;
+    /* updated state x + K y */
     xs[rover_ukf_ix_px] = x[rover_ukf_ix_px] + K0*y[0];
     xs[rover_ukf_ix_py] = x[rover_ukf_ix_py] + K1*y[0];
     xs[rover_ukf_ix_psi] = x[rover_ukf_ix_psi] + K2*y[0];
     xs[rover_ukf_ix_v] = x[rover_ukf_ix_v] + K3*y[0];
+    /* covariance P - K S K', upper triangle, packed */
     Ps[0] = P[0] - C0_0*K0;
     Ps[1] = P[1] - C1_0*K0;
     Ps[2] = P[2] - C2_0*K0;
@@ -508,6 +522,7 @@ int rover_ukf_update_range_a_nis(rover_ukf_t *s, const float *z, float *nis_out)
     Ps[7] = P[7] - C2_0*K2;
     Ps[8] = P[8] - C3_0*K2;
     Ps[9] = P[9] - C3_0*K3;
+    /* angle states wrapped to (-pi, pi] */
     xs[rover_ukf_ix_psi] = rover_ukf_wrap(xs[rover_ukf_ix_psi]);
     if (!isfinite(nis)) {
         return ROVER_UKF_NON_FINITE;
@@ -557,9 +572,11 @@ int rover_ukf_update_range_b_nis(rover_ukf_t *s, const float *z, float *nis_out)
             return st;
         }
     }
+    /* sigma-point offsets gamma L_i (L L' = P) */
     const float hg0_0 = 2.0F*Lf[0];
     const float hg1_0 = 2.0F*Lf[1];
     const float hg1_1 = 2.0F*Lf[4];
+    /* shared subexpressions of h at the sigma points */
     const float ht0 = par->bbx - x[rover_ukf_ix_px];
     const float ht1 = (ht0*ht0);
     const float ht2 = par->bby - x[rover_ukf_ix_py];
@@ -582,25 +599,33 @@ int rover_ukf_update_range_b_nis(rover_ukf_t *s, const float *z, float *nis_out)
     const float hv1_0 = -hh0 + 0.25F*hq1_0;
     const float hv2_0 = -hh0 + 0.25F*hq2_0;
     const float hv3_0 = -hh0 + 0.25F*hq3_0;
+    /* innovation y = z - weighted mean of the sigma points through h */
     y[0] = z[0] - hmu0;
+    /* cross covariance C = cov(x, z) */
     const float C0_0 = Lf[0]*hu0_0;
     const float C1_0 = Lf[1]*hu0_0 + Lf[4]*hu1_0;
     const float C2_0 = Lf[2]*hu0_0 + Lf[5]*hu1_0;
     const float C3_0 = Lf[3]*hu0_0 + Lf[6]*hu1_0;
+    /* innovation covariance S (+ R) */
     const float S0_0 = 0.01F + (hu0_0*hu0_0) + (hu1_0*hu1_0) + (hv0_0*hv0_0) + (hv1_0*hv1_0) + (hv2_0*hv2_0) + (hv3_0*hv3_0) + 2.0F*(he0*he0);
+    /* factor S (pivots checked) */
     const float Sd0 = S0_0;
     if (!isfinite(Sd0)) { return ROVER_UKF_NON_FINITE; }
     if (!(Sd0 > 0.0F)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
     const float iS = (1.0F/Sd0);
+    /* NIS = y' S^-1 y */
     nis = iS*(y[0]*y[0]);
+    /* gain */
     const float K0 = C0_0*iS;
     const float K1 = C1_0*iS;
     const float K2 = C2_0*iS;
     const float K3 = C3_0*iS;
+    /* updated state x + K y */
     xs[rover_ukf_ix_px] = x[rover_ukf_ix_px] + K0*y[0];
     xs[rover_ukf_ix_py] = x[rover_ukf_ix_py] + K1*y[0];
     xs[rover_ukf_ix_psi] = x[rover_ukf_ix_psi] + K2*y[0];
     xs[rover_ukf_ix_v] = x[rover_ukf_ix_v] + K3*y[0];
+    /* covariance P - K S K', upper triangle, packed */
     Ps[0] = P[0] - C0_0*K0;
     Ps[1] = P[1] - C1_0*K0;
     Ps[2] = P[2] - C2_0*K0;
@@ -611,6 +636,7 @@ int rover_ukf_update_range_b_nis(rover_ukf_t *s, const float *z, float *nis_out)
     Ps[7] = P[7] - C2_0*K2;
     Ps[8] = P[8] - C3_0*K2;
     Ps[9] = P[9] - C3_0*K3;
+    /* angle states wrapped to (-pi, pi] */
     xs[rover_ukf_ix_psi] = rover_ukf_wrap(xs[rover_ukf_ix_psi]);
     if (!isfinite(nis)) {
         return ROVER_UKF_NON_FINITE;
@@ -660,9 +686,11 @@ int rover_ukf_update_range_cd_nis(rover_ukf_t *s, const float *z, float *nis_out
             return st;
         }
     }
+    /* sigma-point offsets gamma L_i (L L' = P) */
     const float hg0_0 = 2.0F*Lf[0];
     const float hg1_0 = 2.0F*Lf[1];
     const float hg1_1 = 2.0F*Lf[4];
+    /* shared subexpressions of h at the sigma points */
     const float ht0 = -x[rover_ukf_ix_px];
     const float ht1 = ht0 + par->bcx;
     const float ht2 = (ht1*ht1);
@@ -712,8 +740,10 @@ int rover_ukf_update_range_cd_nis(rover_ukf_t *s, const float *z, float *nis_out
     const float hv1_1 = -hh1 + 0.25F*hq1_1;
     const float hv2_1 = -hh1 + 0.25F*hq2_1;
     const float hv3_1 = -hh1 + 0.25F*hq3_1;
+    /* innovation y = z - weighted mean of the sigma points through h */
     y[0] = z[0] - hmu0;
     y[1] = z[1] - hmu1;
+    /* cross covariance C = cov(x, z) */
     const float C0_0 = Lf[0]*hu0_0;
     const float C1_0 = Lf[1]*hu0_0 + Lf[4]*hu1_0;
     const float C2_0 = Lf[2]*hu0_0 + Lf[5]*hu1_0;
@@ -722,9 +752,11 @@ int rover_ukf_update_range_cd_nis(rover_ukf_t *s, const float *z, float *nis_out
     const float C1_1 = Lf[1]*hu0_1 + Lf[4]*hu1_1;
     const float C2_1 = Lf[2]*hu0_1 + Lf[5]*hu1_1;
     const float C3_1 = Lf[3]*hu0_1 + Lf[6]*hu1_1;
+    /* innovation covariance S (+ R) */
     const float S0_0 = 0.0225F + (hu0_0*hu0_0) + (hu1_0*hu1_0) + (hv0_0*hv0_0) + (hv1_0*hv1_0) + (hv2_0*hv2_0) + (hv3_0*hv3_0) + 2.0F*(he0*he0);
     const float S0_1 = hu0_0*hu0_1 + hu1_0*hu1_1 + hv0_0*hv0_1 + hv1_0*hv1_1 + hv2_0*hv2_1 + hv3_0*hv3_1 + 2.0F*he0*he1;
     const float S1_1 = 0.0225F + (hu0_1*hu0_1) + (hu1_1*hu1_1) + (hv0_1*hv0_1) + (hv1_1*hv1_1) + (hv2_1*hv2_1) + (hv3_1*hv3_1) + 2.0F*(he1*he1);
+    /* factor S (pivots checked) */
     const float Sd0 = S0_0;
     if (!isfinite(Sd0)) { return ROVER_UKF_NON_FINITE; }
     if (!(Sd0 > 0.0F)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
@@ -736,9 +768,11 @@ int rover_ukf_update_range_cd_nis(rover_ukf_t *s, const float *z, float *nis_out
     if (!(Sd1 > 0.0F)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
     const float Ls1_1 = sqrtf(Sd1);
     const float Lsi1 = (1.0F/Ls1_1);
+    /* NIS = y' S^-1 y */
     const float b0 = Lsi0*y[0];
     const float b1 = Lsi1*(y[1] - Ls1_0*b0);
     nis = (b0*b0) + (b1*b1);
+    /* gain */
     const float B0_0 = C0_0*Lsi0;
     const float B0_1 = Lsi1*(C0_1 - B0_0*Ls1_0);
     const float B1_0 = C1_0*Lsi0;
@@ -747,10 +781,12 @@ int rover_ukf_update_range_cd_nis(rover_ukf_t *s, const float *z, float *nis_out
     const float B2_1 = Lsi1*(C2_1 - B2_0*Ls1_0);
     const float B3_0 = C3_0*Lsi0;
     const float B3_1 = Lsi1*(C3_1 - B3_0*Ls1_0);
+    /* updated state x + K y */
     xs[rover_ukf_ix_px] = x[rover_ukf_ix_px] + B0_0*b0 + B0_1*b1;
     xs[rover_ukf_ix_py] = x[rover_ukf_ix_py] + B1_0*b0 + B1_1*b1;
     xs[rover_ukf_ix_psi] = x[rover_ukf_ix_psi] + B2_0*b0 + B2_1*b1;
     xs[rover_ukf_ix_v] = x[rover_ukf_ix_v] + B3_0*b0 + B3_1*b1;
+    /* covariance P - K S K', upper triangle, packed */
     Ps[0] = P[0] - (B0_0*B0_0) - (B0_1*B0_1);
     Ps[1] = P[1] - B0_0*B1_0 - B0_1*B1_1;
     Ps[2] = P[2] - B0_0*B2_0 - B0_1*B2_1;
@@ -761,6 +797,7 @@ int rover_ukf_update_range_cd_nis(rover_ukf_t *s, const float *z, float *nis_out
     Ps[7] = P[7] - (B2_0*B2_0) - (B2_1*B2_1);
     Ps[8] = P[8] - B2_0*B3_0 - B2_1*B3_1;
     Ps[9] = P[9] - (B3_0*B3_0) - (B3_1*B3_1);
+    /* angle states wrapped to (-pi, pi] */
     xs[rover_ukf_ix_psi] = rover_ukf_wrap(xs[rover_ukf_ix_psi]);
     if (!isfinite(nis)) {
         return ROVER_UKF_NON_FINITE;
@@ -810,6 +847,7 @@ int rover_ukf_update_compass_nis(rover_ukf_t *s, const float *z, float *nis_out)
             return st;
         }
     }
+    /* sigma-point offsets gamma L_i (L L' = P) */
     const float hg2_0 = 2.0F*Lf[2];
     const float hg2_1 = 2.0F*Lf[5];
     const float hg2_2 = 2.0F*Lf[7];
@@ -830,25 +868,33 @@ int rover_ukf_update_compass_nis(rover_ukf_t *s, const float *z, float *nis_out)
     const float hv2_0 = 0.25F*(ea[5] + ea[6]);
     ea[7] = rover_ukf_wrap(x[rover_ukf_ix_psi] - hmu0);
     const float hv3_0 = 0.5F*ea[7];
+    /* innovation y = z - weighted mean of the sigma points through h */
     y[0] = rover_ukf_wrap(z[0] - hmu0);
+    /* cross covariance C = cov(x, z) */
     const float C0_0 = Lf[0]*hu0_0;
     const float C1_0 = Lf[1]*hu0_0 + Lf[4]*hu1_0;
     const float C2_0 = Lf[2]*hu0_0 + Lf[5]*hu1_0 + Lf[7]*hu2_0;
     const float C3_0 = Lf[3]*hu0_0 + Lf[6]*hu1_0 + Lf[8]*hu2_0;
+    /* innovation covariance S (+ R) */
     const float S0_0 = 0.0027415568F + (hu0_0*hu0_0) + (hu1_0*hu1_0) + (hu2_0*hu2_0) + (hv0_0*hv0_0) + (hv1_0*hv1_0) + (hv2_0*hv2_0) + (hv3_0*hv3_0) + 2.0F*(ea[0]*ea[0]);
+    /* factor S (pivots checked) */
     const float Sd0 = S0_0;
     if (!isfinite(Sd0)) { return ROVER_UKF_NON_FINITE; }
     if (!(Sd0 > 0.0F)) { return ROVER_UKF_NOT_POSITIVE_DEFINITE; }
     const float iS = (1.0F/Sd0);
+    /* NIS = y' S^-1 y */
     nis = iS*(y[0]*y[0]);
+    /* gain */
     const float K0 = C0_0*iS;
     const float K1 = C1_0*iS;
     const float K2 = C2_0*iS;
     const float K3 = C3_0*iS;
+    /* updated state x + K y */
     xs[rover_ukf_ix_px] = x[rover_ukf_ix_px] + K0*y[0];
     xs[rover_ukf_ix_py] = x[rover_ukf_ix_py] + K1*y[0];
     xs[rover_ukf_ix_psi] = x[rover_ukf_ix_psi] + K2*y[0];
     xs[rover_ukf_ix_v] = x[rover_ukf_ix_v] + K3*y[0];
+    /* covariance P - K S K', upper triangle, packed */
     Ps[0] = P[0] - C0_0*K0;
     Ps[1] = P[1] - C1_0*K0;
     Ps[2] = P[2] - C2_0*K0;
@@ -859,6 +905,7 @@ int rover_ukf_update_compass_nis(rover_ukf_t *s, const float *z, float *nis_out)
     Ps[7] = P[7] - C2_0*K2;
     Ps[8] = P[8] - C3_0*K2;
     Ps[9] = P[9] - C3_0*K3;
+    /* angle states wrapped to (-pi, pi] */
     xs[rover_ukf_ix_psi] = rover_ukf_wrap(xs[rover_ukf_ix_psi]);
     if (!isfinite(nis)) {
         return ROVER_UKF_NON_FINITE;

@@ -108,23 +108,28 @@ int cart_ekf_predict(cart_ekf_t *s, const float *u, float dt)
         return CART_EKF_BAD_DT;
     }
 
+    /* shared subexpressions of f(x, u, dt), F = df/dx and Q */
     const float t0 = u[cart_ekf_iu_force] + x[cart_ekf_ix_dist];
     const float t1 = (1.0F/par->mass);
     const float t2 = (0.5F)*(dt*dt);
     const float t3 = t1*t2;
     const float t4 = dt*t1;
+    /* predicted state x' = f(x, u, dt) */
     xn[cart_ekf_ix_pos] = x[cart_ekf_ix_pos] + dt*x[cart_ekf_ix_vel] + t0*t3;
     xn[cart_ekf_ix_vel] = x[cart_ekf_ix_vel] + t0*t4;
     xn[cart_ekf_ix_dist] = x[cart_ekf_ix_dist];
+    /* process noise covariance Q (entries that are not constant) */
     const float Q0_0 = (0.33333334F)*par->q_acc*(dt*dt*dt);
     const float Q0_1 = par->q_acc*t2;
     const float Q1_1 = dt*par->q_acc;
     const float Q2_2 = dt*par->q_dist;
+    /* A = F P (the entries P' reads) */
     const float A0_0 = P[0] + P[1]*dt + P[2]*t3;
     const float A0_1 = P[1] + P[3]*dt + P[4]*t3;
     const float A0_2 = P[2] + P[4]*dt + P[5]*t3;
     const float A1_1 = P[3] + P[4]*t4;
     const float A1_2 = P[4] + P[5]*t4;
+    /* covariance P' = A F' + Q, upper triangle, packed */
     Pn[0] = A0_0 + Q0_0 + A0_1*dt + A0_2*t3;
     Pn[1] = A0_1 + Q0_1 + A0_2*t4;
     Pn[2] = A0_2;
@@ -163,7 +168,9 @@ int cart_ekf_update_encoder_nis(cart_ekf_t *s, const float *z, float *nis_out)
 
     memcpy(xs, s->x, sizeof xs);
     memcpy(Ps, s->P, sizeof Ps);
+    /* innovation y = z - h(x) */
     y[0] = z[0] - x[cart_ekf_ix_pos];
+    /* component z[0] of encoder: W = P H_0', s = H_0 W + R_00, K = W / s, x += K r, Joseph-form P */
     W[0] = Ps[0];
     W[1] = Ps[1];
     W[2] = Ps[2];
@@ -232,7 +239,9 @@ int cart_ekf_update_speed_nis(cart_ekf_t *s, const float *z, float *nis_out)
 
     memcpy(xs, s->x, sizeof xs);
     memcpy(Ps, s->P, sizeof Ps);
+    /* innovation y = z - h(x) */
     y[0] = z[0] - x[cart_ekf_ix_vel];
+    /* component z[0] of speed: W = P H_0', s = H_0 W + R_00, K = W / s, x += K r, Joseph-form P */
     W[0] = Ps[1];
     W[1] = Ps[3];
     W[2] = Ps[4];

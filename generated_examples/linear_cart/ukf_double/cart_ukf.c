@@ -153,6 +153,7 @@ int cart_ukf_predict(cart_ukf_t *s, const double *u, double dt)
             return st;
         }
     }
+    /* shared subexpressions of f at the sigma points */
     const double ft0 = u[cart_ukf_iu_force] + x[cart_ukf_ix_dist];
     const double ft1 = (1.0/par->mass);
     const double ft2 = (0.5)*(dt*dt);
@@ -164,14 +165,17 @@ int cart_ukf_predict(cart_ukf_t *s, const double *u, double dt)
     const double Q0_1 = ft2*par->q_acc;
     const double Q1_1 = dt*par->q_acc;
     const double Q2_2 = dt*par->q_dist;
+    /* predicted state: weighted mean of the sigma points through f */
     xn[cart_ukf_ix_pos] = fc0;
     xn[cart_ukf_ix_vel] = fc1;
     xn[cart_ukf_ix_dist] = x[cart_ukf_ix_dist];
+    /* A P for the rows of f that are linear in x */
     const double AP0_0 = P[0] + P[1]*dt + P[2]*ft3;
     const double AP0_1 = P[1] + P[3]*dt + P[4]*ft3;
     const double AP0_2 = P[2] + P[4]*dt + P[5]*ft3;
     const double AP1_1 = P[3] + P[4]*ft4;
     const double AP1_2 = P[4] + P[5]*ft4;
+    /* covariance P': weighted covariance of the images + Q, upper triangle, packed */
     Pn[0] = AP0_0 + Q0_0 + AP0_1*dt + AP0_2*ft3;
     Pn[1] = AP0_1 + Q0_1 + AP0_2*ft4;
     Pn[2] = AP0_2;
@@ -213,19 +217,26 @@ int cart_ukf_update_encoder_nis(cart_ukf_t *s, const double *z, double *nis_out)
             return st;
         }
     }
+    /* innovation y = z - weighted mean of the sigma points through h */
     y[0] = z[0] - x[cart_ukf_ix_pos];
+    /* innovation covariance S (+ R) */
     const double S0_0 = 2.5e-07 + P[0];
+    /* factor S (pivots checked) */
     const double Sd0 = S0_0;
     if (!isfinite(Sd0)) { return CART_UKF_NON_FINITE; }
     if (!(Sd0 > 0.0)) { return CART_UKF_NOT_POSITIVE_DEFINITE; }
     const double iS = (1.0/Sd0);
+    /* NIS = y' S^-1 y */
     nis = iS*(y[0]*y[0]);
+    /* gain */
     const double K0 = P[0]*iS;
     const double K1 = P[1]*iS;
     const double K2 = P[2]*iS;
+    /* updated state x + K y */
     xs[cart_ukf_ix_pos] = x[cart_ukf_ix_pos] + K0*y[0];
     xs[cart_ukf_ix_vel] = x[cart_ukf_ix_vel] + K1*y[0];
     xs[cart_ukf_ix_dist] = x[cart_ukf_ix_dist] + K2*y[0];
+    /* covariance P - K S K', upper triangle, packed */
     Ps[0] = P[0] - K0*P[0];
     Ps[1] = P[1] - K0*P[1];
     Ps[2] = P[2] - K0*P[2];
@@ -279,19 +290,26 @@ int cart_ukf_update_speed_nis(cart_ukf_t *s, const double *z, double *nis_out)
             return st;
         }
     }
+    /* innovation y = z - weighted mean of the sigma points through h */
     y[0] = z[0] - x[cart_ukf_ix_vel];
+    /* innovation covariance S (+ R) */
     const double S0_0 = 0.0001 + P[3];
+    /* factor S (pivots checked) */
     const double Sd0 = S0_0;
     if (!isfinite(Sd0)) { return CART_UKF_NON_FINITE; }
     if (!(Sd0 > 0.0)) { return CART_UKF_NOT_POSITIVE_DEFINITE; }
     const double iS = (1.0/Sd0);
+    /* NIS = y' S^-1 y */
     nis = iS*(y[0]*y[0]);
+    /* gain */
     const double K0 = P[1]*iS;
     const double K1 = P[3]*iS;
     const double K2 = P[4]*iS;
+    /* updated state x + K y */
     xs[cart_ukf_ix_pos] = x[cart_ukf_ix_pos] + K0*y[0];
     xs[cart_ukf_ix_vel] = x[cart_ukf_ix_vel] + K1*y[0];
     xs[cart_ukf_ix_dist] = x[cart_ukf_ix_dist] + K2*y[0];
+    /* covariance P - K S K', upper triangle, packed */
     Ps[0] = P[0] - K0*P[1];
     Ps[1] = P[1] - K0*P[3];
     Ps[2] = P[2] - K0*P[4];

@@ -405,6 +405,7 @@ int nav_ekf_predict(nav_ekf_t *s, const float *u, float dt)
         return NAV_EKF_BAD_DT;
     }
 
+    /* shared subexpressions of f(x, u, dt), F = df/dx and Q */
     const float t0 = cosf(x[nav_ekf_ix_yaw]);
     const float t1 = cosf(x[nav_ekf_ix_pitch]);
     const float t2 = u[nav_ekf_iu_fx] - x[nav_ekf_ix_bax];
@@ -449,6 +450,7 @@ int nav_ekf_predict(nav_ekf_t *s, const float *u, float dt)
     const float t41 = 2.5e-05F*dt;
     const float t42 = 1.0e-10F*dt;
     const float t43 = 1.0e-08F*dt;
+    /* predicted state x' = f(x, u, dt) */
     xn[nav_ekf_ix_pn] = x[nav_ekf_ix_pn] + dt*x[nav_ekf_ix_vn];
     xn[nav_ekf_ix_pe] = x[nav_ekf_ix_pe] + dt*x[nav_ekf_ix_ve];
     xn[nav_ekf_ix_pd] = x[nav_ekf_ix_pd] + dt*x[nav_ekf_ix_vd];
@@ -464,6 +466,7 @@ int nav_ekf_predict(nav_ekf_t *s, const float *u, float dt)
     xn[nav_ekf_ix_bax] = x[nav_ekf_ix_bax];
     xn[nav_ekf_ix_bay] = x[nav_ekf_ix_bay];
     xn[nav_ekf_ix_baz] = x[nav_ekf_ix_baz];
+    /* Jacobian F = df/dx (entries that are not constant) */
     const float F3_6 = dt*(t11*t12 + t30*t4);
     const float F3_7 = dt*(t10*t23 + t14*t22 - t0*t21);
     const float F3_8 = dt*(-t17 + t12*t31 + t19*t4);
@@ -487,6 +490,7 @@ int nav_ekf_predict(nav_ekf_t *s, const float *u, float dt)
     const float F8_7 = t33*t37;
     const float F8_10 = -t24*t34;
     const float F8_11 = -t24*t35;
+    /* A = F P (the entries P' reads) */
     const float A0_0 = P[0] + P[3]*dt;
     const float A0_1 = P[1] + P[17]*dt;
     const float A0_2 = P[2] + P[30]*dt;
@@ -589,6 +593,7 @@ int nav_ekf_predict(nav_ekf_t *s, const float *u, float dt)
     const float A8_12 = P[96] + F8_10*P[107] + F8_11*P[111] + F8_7*P[89] + P[81]*t36;
     const float A8_13 = P[97] + F8_10*P[108] + F8_11*P[112] + F8_7*P[90] + P[82]*t36;
     const float A8_14 = P[98] + F8_10*P[109] + F8_11*P[113] + F8_7*P[91] + P[83]*t36;
+    /* covariance P' = A F' + Q, upper triangle, packed */
     Pn[0] = A0_0 + t39 + A0_3*dt;
     Pn[1] = A0_1 + A0_4*dt;
     Pn[2] = A0_2 + A0_5*dt;
@@ -709,6 +714,7 @@ int nav_ekf_predict(nav_ekf_t *s, const float *u, float dt)
     Pn[117] = P[117] + t43;
     Pn[118] = P[118];
     Pn[119] = P[119] + t43;
+    /* angle states wrapped to (-pi, pi] */
     xn[nav_ekf_ix_roll] = nav_ekf_wrap(xn[nav_ekf_ix_roll]);
     xn[nav_ekf_ix_pitch] = nav_ekf_wrap(xn[nav_ekf_ix_pitch]);
     xn[nav_ekf_ix_yaw] = nav_ekf_wrap(xn[nav_ekf_ix_yaw]);
@@ -744,9 +750,11 @@ int nav_ekf_update_gnss_pos_nis(nav_ekf_t *s, const float *z, float *nis_out)
 
     memcpy(xs, s->x, sizeof xs);
     memcpy(Ps, s->P, sizeof Ps);
+    /* innovation y = z - h(x) */
     y[0] = z[0] - x[nav_ekf_ix_pn];
     y[1] = z[1] - x[nav_ekf_ix_pe];
     y[2] = z[2] - x[nav_ekf_ix_pd];
+    /* component z[0] of gnss_pos: W = P H_0', s = H_0 W + R_00, K = W / s, x += K r, Joseph-form P */
     W[0] = Ps[0];
     W[1] = Ps[1];
     W[2] = Ps[2];
@@ -933,6 +941,7 @@ int nav_ekf_update_gnss_pos_nis(nav_ekf_t *s, const float *z, float *nis_out)
     Ps[117] = Ps[117] + K[13]*V[13] - K[13]*W[13];
     Ps[118] = Ps[118] + K[13]*V[14] - K[14]*W[13];
     Ps[119] = Ps[119] + K[14]*V[14] - K[14]*W[14];
+    /* component z[1] of gnss_pos: W = P H_1', s = H_1 W + R_11, K = W / s, x += K r, Joseph-form P */
     W[0] = Ps[1];
     W[1] = Ps[15];
     W[2] = Ps[16];
@@ -1119,6 +1128,7 @@ int nav_ekf_update_gnss_pos_nis(nav_ekf_t *s, const float *z, float *nis_out)
     Ps[117] = Ps[117] + K[13]*V[13] - K[13]*W[13];
     Ps[118] = Ps[118] + K[13]*V[14] - K[14]*W[13];
     Ps[119] = Ps[119] + K[14]*V[14] - K[14]*W[14];
+    /* component z[2] of gnss_pos: W = P H_2', s = H_2 W + R_22, K = W / s, x += K r, Joseph-form P */
     W[0] = Ps[2];
     W[1] = Ps[16];
     W[2] = Ps[29];
@@ -1305,6 +1315,7 @@ int nav_ekf_update_gnss_pos_nis(nav_ekf_t *s, const float *z, float *nis_out)
     Ps[117] = Ps[117] + K[13]*V[13] - K[13]*W[13];
     Ps[118] = Ps[118] + K[13]*V[14] - K[14]*W[13];
     Ps[119] = Ps[119] + K[14]*V[14] - K[14]*W[14];
+    /* angle states wrapped to (-pi, pi] */
     xs[nav_ekf_ix_roll] = nav_ekf_wrap(xs[nav_ekf_ix_roll]);
     xs[nav_ekf_ix_pitch] = nav_ekf_wrap(xs[nav_ekf_ix_pitch]);
     xs[nav_ekf_ix_yaw] = nav_ekf_wrap(xs[nav_ekf_ix_yaw]);
@@ -1352,9 +1363,11 @@ int nav_ekf_update_gnss_vel_nis(nav_ekf_t *s, const float *z, float *nis_out)
 
     memcpy(xs, s->x, sizeof xs);
     memcpy(Ps, s->P, sizeof Ps);
+    /* innovation y = z - h(x) */
     y[0] = z[0] - x[nav_ekf_ix_vn];
     y[1] = z[1] - x[nav_ekf_ix_ve];
     y[2] = z[2] - x[nav_ekf_ix_vd];
+    /* component z[0] of gnss_vel: W = P H_0', s = H_0 W + R_00, K = W / s, x += K r, Joseph-form P */
     W[0] = Ps[3];
     W[1] = Ps[17];
     W[2] = Ps[30];
@@ -1541,6 +1554,7 @@ int nav_ekf_update_gnss_vel_nis(nav_ekf_t *s, const float *z, float *nis_out)
     Ps[117] = Ps[117] + K[13]*V[13] - K[13]*W[13];
     Ps[118] = Ps[118] + K[13]*V[14] - K[14]*W[13];
     Ps[119] = Ps[119] + K[14]*V[14] - K[14]*W[14];
+    /* component z[1] of gnss_vel: W = P H_1', s = H_1 W + R_11, K = W / s, x += K r, Joseph-form P */
     W[0] = Ps[4];
     W[1] = Ps[18];
     W[2] = Ps[31];
@@ -1727,6 +1741,7 @@ int nav_ekf_update_gnss_vel_nis(nav_ekf_t *s, const float *z, float *nis_out)
     Ps[117] = Ps[117] + K[13]*V[13] - K[13]*W[13];
     Ps[118] = Ps[118] + K[13]*V[14] - K[14]*W[13];
     Ps[119] = Ps[119] + K[14]*V[14] - K[14]*W[14];
+    /* component z[2] of gnss_vel: W = P H_2', s = H_2 W + R_22, K = W / s, x += K r, Joseph-form P */
     W[0] = Ps[5];
     W[1] = Ps[19];
     W[2] = Ps[32];
@@ -1913,6 +1928,7 @@ int nav_ekf_update_gnss_vel_nis(nav_ekf_t *s, const float *z, float *nis_out)
     Ps[117] = Ps[117] + K[13]*V[13] - K[13]*W[13];
     Ps[118] = Ps[118] + K[13]*V[14] - K[14]*W[13];
     Ps[119] = Ps[119] + K[14]*V[14] - K[14]*W[14];
+    /* angle states wrapped to (-pi, pi] */
     xs[nav_ekf_ix_roll] = nav_ekf_wrap(xs[nav_ekf_ix_roll]);
     xs[nav_ekf_ix_pitch] = nav_ekf_wrap(xs[nav_ekf_ix_pitch]);
     xs[nav_ekf_ix_yaw] = nav_ekf_wrap(xs[nav_ekf_ix_yaw]);
@@ -1960,7 +1976,9 @@ int nav_ekf_update_baro_nis(nav_ekf_t *s, const float *z, float *nis_out)
 
     memcpy(xs, s->x, sizeof xs);
     memcpy(Ps, s->P, sizeof Ps);
+    /* innovation y = z - h(x) */
     y[0] = x[nav_ekf_ix_pd] + z[0];
+    /* component z[0] of baro: W = P H_0', s = H_0 W + R_00, K = W / s, x += K r, Joseph-form P */
     W[0] = -Ps[2];
     W[1] = -Ps[16];
     W[2] = -Ps[29];
@@ -2147,6 +2165,7 @@ int nav_ekf_update_baro_nis(nav_ekf_t *s, const float *z, float *nis_out)
     Ps[117] = Ps[117] + K[13]*V[13] - K[13]*W[13];
     Ps[118] = Ps[118] + K[13]*V[14] - K[14]*W[13];
     Ps[119] = Ps[119] + K[14]*V[14] - K[14]*W[14];
+    /* angle states wrapped to (-pi, pi] */
     xs[nav_ekf_ix_roll] = nav_ekf_wrap(xs[nav_ekf_ix_roll]);
     xs[nav_ekf_ix_pitch] = nav_ekf_wrap(xs[nav_ekf_ix_pitch]);
     xs[nav_ekf_ix_yaw] = nav_ekf_wrap(xs[nav_ekf_ix_yaw]);
@@ -2194,8 +2213,10 @@ int nav_ekf_update_mag_heading_nis(nav_ekf_t *s, const float *z, float *nis_out)
 
     memcpy(xs, s->x, sizeof xs);
     memcpy(Ps, s->P, sizeof Ps);
+    /* innovation y = z - h(x) */
     y[0] = z[0] - x[nav_ekf_ix_yaw];
     y[0] = nav_ekf_wrap(y[0]);
+    /* component z[0] of mag_heading: W = P H_0', s = H_0 W + R_00, K = W / s, x += K r, Joseph-form P */
     W[0] = Ps[8];
     W[1] = Ps[22];
     W[2] = Ps[35];
@@ -2382,6 +2403,7 @@ int nav_ekf_update_mag_heading_nis(nav_ekf_t *s, const float *z, float *nis_out)
     Ps[117] = Ps[117] + K[13]*V[13] - K[13]*W[13];
     Ps[118] = Ps[118] + K[13]*V[14] - K[14]*W[13];
     Ps[119] = Ps[119] + K[14]*V[14] - K[14]*W[14];
+    /* angle states wrapped to (-pi, pi] */
     xs[nav_ekf_ix_roll] = nav_ekf_wrap(xs[nav_ekf_ix_roll]);
     xs[nav_ekf_ix_pitch] = nav_ekf_wrap(xs[nav_ekf_ix_pitch]);
     xs[nav_ekf_ix_yaw] = nav_ekf_wrap(xs[nav_ekf_ix_yaw]);

@@ -727,6 +727,7 @@ int nav_ukf_predict(nav_ukf_t *s, const double *u, double dt)
             return st;
         }
     }
+    /* sigma-point offsets gamma L_i (L L' = P) */
     const double fg3_0 = 3.872983346207417*Lf[3];
     const double fg4_0 = 3.872983346207417*Lf[4];
     const double fg5_0 = 3.872983346207417*Lf[5];
@@ -1087,6 +1088,7 @@ int nav_ukf_predict(nav_ukf_t *s, const double *u, double dt)
     const double fr2_sm7 = fr2_x7 - fr2_y7;
     const double fr2_cp7 = fr2_z7 - fr2_w7;
     const double fr2_cm7 = fr2_w7 + fr2_z7;
+    /* shared subexpressions of f at the sigma points */
     const double ft0 = u[nav_ukf_iu_fz] - x[nav_ukf_ix_baz];
     const double ft1 = fas0*fas1;
     const double ft2 = fak0*fak1;
@@ -1860,6 +1862,7 @@ int nav_ukf_predict(nav_ukf_t *s, const double *u, double dt)
     const double fv13_8 = 0.2581988897471611*ea[82];
     ea[83] = nav_ukf_wrap(ft28 - fmu8);
     const double fv14_8 = 0.2581988897471611*ea[83];
+    /* predicted state: weighted mean of the sigma points through f */
     xn[nav_ukf_ix_pn] = fc0;
     xn[nav_ukf_ix_pe] = fc1;
     xn[nav_ukf_ix_pd] = fc2;
@@ -1875,6 +1878,7 @@ int nav_ukf_predict(nav_ukf_t *s, const double *u, double dt)
     xn[nav_ukf_ix_bax] = x[nav_ukf_ix_bax];
     xn[nav_ukf_ix_bay] = x[nav_ukf_ix_bay];
     xn[nav_ukf_ix_baz] = x[nav_ukf_ix_baz];
+    /* A P for the rows of f that are linear in x */
     const double AP0_0 = P[0] + P[3]*dt;
     const double AP0_1 = P[1] + P[17]*dt;
     const double AP0_2 = P[2] + P[30]*dt;
@@ -1905,6 +1909,7 @@ int nav_ukf_predict(nav_ukf_t *s, const double *u, double dt)
     const double AP2_12 = P[39] + P[72]*dt;
     const double AP2_13 = P[40] + P[73]*dt;
     const double AP2_14 = P[41] + P[74]*dt;
+    /* covariance P': weighted covariance of the images + Q, upper triangle, packed */
     Pn[0] = AP0_0 + ft273 + AP0_3*dt;
     Pn[1] = AP0_1 + AP0_4*dt;
     Pn[2] = AP0_2 + AP0_5*dt;
@@ -2060,12 +2065,15 @@ int nav_ukf_update_gnss_pos_nis(nav_ukf_t *s, const double *z, double *nis_out)
             return st;
         }
     }
+    /* innovation y = z - weighted mean of the sigma points through h */
     y[0] = z[0] - x[nav_ukf_ix_pn];
     y[1] = z[1] - x[nav_ukf_ix_pe];
     y[2] = z[2] - x[nav_ukf_ix_pd];
+    /* innovation covariance S (+ R) */
     const double S0_0 = 2.25 + P[0];
     const double S1_1 = 2.25 + P[15];
     const double S2_2 = 9.0 + P[29];
+    /* factor S (pivots checked) */
     const double Sd0 = S0_0;
     if (!isfinite(Sd0)) { return NAV_UKF_NON_FINITE; }
     if (!(Sd0 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
@@ -2084,10 +2092,12 @@ int nav_ukf_update_gnss_pos_nis(nav_ukf_t *s, const double *z, double *nis_out)
     if (!(Sd2 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
     const double Ls2_2 = sqrt(Sd2);
     const double Lsi2 = (1.0/Ls2_2);
+    /* NIS = y' S^-1 y */
     const double b0 = Lsi0*y[0];
     const double b1 = Lsi1*(y[1] - Ls1_0*b0);
     const double b2 = Lsi2*(y[2] - Ls2_0*b0 - Ls2_1*b1);
     nis = (b0*b0) + (b1*b1) + (b2*b2);
+    /* gain */
     const double B0_0 = Lsi0*P[0];
     const double B0_1 = Lsi1*(P[1] - B0_0*Ls1_0);
     const double B0_2 = Lsi2*(P[2] - B0_0*Ls2_0 - B0_1*Ls2_1);
@@ -2133,6 +2143,7 @@ int nav_ukf_update_gnss_pos_nis(nav_ukf_t *s, const double *z, double *nis_out)
     const double B14_0 = Lsi0*P[14];
     const double B14_1 = Lsi1*(P[28] - B14_0*Ls1_0);
     const double B14_2 = Lsi2*(P[41] - B14_0*Ls2_0 - B14_1*Ls2_1);
+    /* updated state x + K y */
     xs[nav_ukf_ix_pn] = x[nav_ukf_ix_pn] + B0_0*b0 + B0_1*b1 + B0_2*b2;
     xs[nav_ukf_ix_pe] = x[nav_ukf_ix_pe] + B1_0*b0 + B1_1*b1 + B1_2*b2;
     xs[nav_ukf_ix_pd] = x[nav_ukf_ix_pd] + B2_0*b0 + B2_1*b1 + B2_2*b2;
@@ -2148,6 +2159,7 @@ int nav_ukf_update_gnss_pos_nis(nav_ukf_t *s, const double *z, double *nis_out)
     xs[nav_ukf_ix_bax] = x[nav_ukf_ix_bax] + B12_0*b0 + B12_1*b1 + B12_2*b2;
     xs[nav_ukf_ix_bay] = x[nav_ukf_ix_bay] + B13_0*b0 + B13_1*b1 + B13_2*b2;
     xs[nav_ukf_ix_baz] = x[nav_ukf_ix_baz] + B14_0*b0 + B14_1*b1 + B14_2*b2;
+    /* covariance P - K S K', upper triangle, packed */
     Ps[0] = P[0] - (B0_0*B0_0) - (B0_1*B0_1) - (B0_2*B0_2);
     Ps[1] = P[1] - B0_0*B1_0 - B0_1*B1_1 - B0_2*B1_2;
     Ps[2] = P[2] - B0_0*B2_0 - B0_1*B2_1 - B0_2*B2_2;
@@ -2268,6 +2280,7 @@ int nav_ukf_update_gnss_pos_nis(nav_ukf_t *s, const double *z, double *nis_out)
     Ps[117] = P[117] - (B13_0*B13_0) - (B13_1*B13_1) - (B13_2*B13_2);
     Ps[118] = P[118] - B13_0*B14_0 - B13_1*B14_1 - B13_2*B14_2;
     Ps[119] = P[119] - (B14_0*B14_0) - (B14_1*B14_1) - (B14_2*B14_2);
+    /* angle states wrapped to (-pi, pi] */
     xs[nav_ukf_ix_roll] = nav_ukf_wrap(xs[nav_ukf_ix_roll]);
     xs[nav_ukf_ix_pitch] = nav_ukf_wrap(xs[nav_ukf_ix_pitch]);
     xs[nav_ukf_ix_yaw] = nav_ukf_wrap(xs[nav_ukf_ix_yaw]);
@@ -2318,12 +2331,15 @@ int nav_ukf_update_gnss_vel_nis(nav_ukf_t *s, const double *z, double *nis_out)
             return st;
         }
     }
+    /* innovation y = z - weighted mean of the sigma points through h */
     y[0] = z[0] - x[nav_ukf_ix_vn];
     y[1] = z[1] - x[nav_ukf_ix_ve];
     y[2] = z[2] - x[nav_ukf_ix_vd];
+    /* innovation covariance S (+ R) */
     const double S0_0 = 0.010000000000000002 + P[42];
     const double S1_1 = 0.010000000000000002 + P[54];
     const double S2_2 = 0.010000000000000002 + P[65];
+    /* factor S (pivots checked) */
     const double Sd0 = S0_0;
     if (!isfinite(Sd0)) { return NAV_UKF_NON_FINITE; }
     if (!(Sd0 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
@@ -2342,10 +2358,12 @@ int nav_ukf_update_gnss_vel_nis(nav_ukf_t *s, const double *z, double *nis_out)
     if (!(Sd2 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
     const double Ls2_2 = sqrt(Sd2);
     const double Lsi2 = (1.0/Ls2_2);
+    /* NIS = y' S^-1 y */
     const double b0 = Lsi0*y[0];
     const double b1 = Lsi1*(y[1] - Ls1_0*b0);
     const double b2 = Lsi2*(y[2] - Ls2_0*b0 - Ls2_1*b1);
     nis = (b0*b0) + (b1*b1) + (b2*b2);
+    /* gain */
     const double B0_0 = Lsi0*P[3];
     const double B0_1 = Lsi1*(P[4] - B0_0*Ls1_0);
     const double B0_2 = Lsi2*(P[5] - B0_0*Ls2_0 - B0_1*Ls2_1);
@@ -2391,6 +2409,7 @@ int nav_ukf_update_gnss_vel_nis(nav_ukf_t *s, const double *z, double *nis_out)
     const double B14_0 = Lsi0*P[53];
     const double B14_1 = Lsi1*(P[64] - B14_0*Ls1_0);
     const double B14_2 = Lsi2*(P[74] - B14_0*Ls2_0 - B14_1*Ls2_1);
+    /* updated state x + K y */
     xs[nav_ukf_ix_pn] = x[nav_ukf_ix_pn] + B0_0*b0 + B0_1*b1 + B0_2*b2;
     xs[nav_ukf_ix_pe] = x[nav_ukf_ix_pe] + B1_0*b0 + B1_1*b1 + B1_2*b2;
     xs[nav_ukf_ix_pd] = x[nav_ukf_ix_pd] + B2_0*b0 + B2_1*b1 + B2_2*b2;
@@ -2406,6 +2425,7 @@ int nav_ukf_update_gnss_vel_nis(nav_ukf_t *s, const double *z, double *nis_out)
     xs[nav_ukf_ix_bax] = x[nav_ukf_ix_bax] + B12_0*b0 + B12_1*b1 + B12_2*b2;
     xs[nav_ukf_ix_bay] = x[nav_ukf_ix_bay] + B13_0*b0 + B13_1*b1 + B13_2*b2;
     xs[nav_ukf_ix_baz] = x[nav_ukf_ix_baz] + B14_0*b0 + B14_1*b1 + B14_2*b2;
+    /* covariance P - K S K', upper triangle, packed */
     Ps[0] = P[0] - (B0_0*B0_0) - (B0_1*B0_1) - (B0_2*B0_2);
     Ps[1] = P[1] - B0_0*B1_0 - B0_1*B1_1 - B0_2*B1_2;
     Ps[2] = P[2] - B0_0*B2_0 - B0_1*B2_1 - B0_2*B2_2;
@@ -2526,6 +2546,7 @@ int nav_ukf_update_gnss_vel_nis(nav_ukf_t *s, const double *z, double *nis_out)
     Ps[117] = P[117] - (B13_0*B13_0) - (B13_1*B13_1) - (B13_2*B13_2);
     Ps[118] = P[118] - B13_0*B14_0 - B13_1*B14_1 - B13_2*B14_2;
     Ps[119] = P[119] - (B14_0*B14_0) - (B14_1*B14_1) - (B14_2*B14_2);
+    /* angle states wrapped to (-pi, pi] */
     xs[nav_ukf_ix_roll] = nav_ukf_wrap(xs[nav_ukf_ix_roll]);
     xs[nav_ukf_ix_pitch] = nav_ukf_wrap(xs[nav_ukf_ix_pitch]);
     xs[nav_ukf_ix_yaw] = nav_ukf_wrap(xs[nav_ukf_ix_yaw]);
@@ -2576,13 +2597,18 @@ int nav_ukf_update_baro_nis(nav_ukf_t *s, const double *z, double *nis_out)
             return st;
         }
     }
+    /* innovation y = z - weighted mean of the sigma points through h */
     y[0] = x[nav_ukf_ix_pd] + z[0];
+    /* innovation covariance S (+ R) */
     const double S0_0 = 0.09 + P[29];
+    /* factor S (pivots checked) */
     const double Sd0 = S0_0;
     if (!isfinite(Sd0)) { return NAV_UKF_NON_FINITE; }
     if (!(Sd0 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
     const double iS = (1.0/Sd0);
+    /* NIS = y' S^-1 y */
     nis = iS*(y[0]*y[0]);
+    /* gain */
     const double K0 = -P[2]*iS;
     const double K1 = -P[16]*iS;
     const double K2 = -P[29]*iS;
@@ -2598,6 +2624,7 @@ int nav_ukf_update_baro_nis(nav_ukf_t *s, const double *z, double *nis_out)
     const double K12 = -P[39]*iS;
     const double K13 = -P[40]*iS;
     const double K14 = -P[41]*iS;
+    /* updated state x + K y */
     xs[nav_ukf_ix_pn] = x[nav_ukf_ix_pn] + K0*y[0];
     xs[nav_ukf_ix_pe] = x[nav_ukf_ix_pe] + K1*y[0];
     xs[nav_ukf_ix_pd] = x[nav_ukf_ix_pd] + K2*y[0];
@@ -2613,6 +2640,7 @@ int nav_ukf_update_baro_nis(nav_ukf_t *s, const double *z, double *nis_out)
     xs[nav_ukf_ix_bax] = x[nav_ukf_ix_bax] + K12*y[0];
     xs[nav_ukf_ix_bay] = x[nav_ukf_ix_bay] + K13*y[0];
     xs[nav_ukf_ix_baz] = x[nav_ukf_ix_baz] + K14*y[0];
+    /* covariance P - K S K', upper triangle, packed */
     Ps[0] = P[0] + K0*P[2];
     Ps[1] = P[1] + K0*P[16];
     Ps[2] = P[2] + K0*P[29];
@@ -2733,6 +2761,7 @@ int nav_ukf_update_baro_nis(nav_ukf_t *s, const double *z, double *nis_out)
     Ps[117] = P[117] + K13*P[40];
     Ps[118] = P[118] + K13*P[41];
     Ps[119] = P[119] + K14*P[41];
+    /* angle states wrapped to (-pi, pi] */
     xs[nav_ukf_ix_roll] = nav_ukf_wrap(xs[nav_ukf_ix_roll]);
     xs[nav_ukf_ix_pitch] = nav_ukf_wrap(xs[nav_ukf_ix_pitch]);
     xs[nav_ukf_ix_yaw] = nav_ukf_wrap(xs[nav_ukf_ix_yaw]);
@@ -2784,6 +2813,7 @@ int nav_ukf_update_mag_heading_nis(nav_ukf_t *s, const double *z, double *nis_ou
             return st;
         }
     }
+    /* sigma-point offsets gamma L_i (L L' = P) */
     const double hg8_0 = 3.872983346207417*Lf[8];
     const double hg8_1 = 3.872983346207417*Lf[22];
     const double hg8_2 = 3.872983346207417*Lf[35];
@@ -2844,7 +2874,9 @@ int nav_ukf_update_mag_heading_nis(nav_ukf_t *s, const double *z, double *nis_ou
     const double hv13_0 = 0.2581988897471611*ea[23];
     ea[24] = nav_ukf_wrap(x[nav_ukf_ix_yaw] - hmu0);
     const double hv14_0 = 0.2581988897471611*ea[24];
+    /* innovation y = z - weighted mean of the sigma points through h */
     y[0] = nav_ukf_wrap(z[0] - hmu0);
+    /* cross covariance C = cov(x, z) */
     const double C0_0 = Lf[0]*hu0_0;
     const double C1_0 = Lf[15]*hu1_0 + Lf[1]*hu0_0;
     const double C2_0 = Lf[16]*hu1_0 + Lf[29]*hu2_0 + Lf[2]*hu0_0;
@@ -2860,12 +2892,16 @@ int nav_ukf_update_mag_heading_nis(nav_ukf_t *s, const double *z, double *nis_ou
     const double C12_0 = Lf[12]*hu0_0 + Lf[26]*hu1_0 + Lf[39]*hu2_0 + Lf[51]*hu3_0 + Lf[62]*hu4_0 + Lf[72]*hu5_0 + Lf[81]*hu6_0 + Lf[89]*hu7_0 + Lf[96]*hu8_0;
     const double C13_0 = Lf[13]*hu0_0 + Lf[27]*hu1_0 + Lf[40]*hu2_0 + Lf[52]*hu3_0 + Lf[63]*hu4_0 + Lf[73]*hu5_0 + Lf[82]*hu6_0 + Lf[90]*hu7_0 + Lf[97]*hu8_0;
     const double C14_0 = Lf[14]*hu0_0 + Lf[28]*hu1_0 + Lf[41]*hu2_0 + Lf[53]*hu3_0 + Lf[64]*hu4_0 + Lf[74]*hu5_0 + Lf[83]*hu6_0 + Lf[91]*hu7_0 + Lf[98]*hu8_0;
+    /* innovation covariance S (+ R) */
     const double S0_0 = 0.0012184696791468343 + (hu0_0*hu0_0) + (hu1_0*hu1_0) + (hu2_0*hu2_0) + (hu3_0*hu3_0) + (hu4_0*hu4_0) + (hu5_0*hu5_0) + (hu6_0*hu6_0) + (hu7_0*hu7_0) + (hu8_0*hu8_0) + (hv0_0*hv0_0) + (hv10_0*hv10_0) + (hv11_0*hv11_0) + (hv12_0*hv12_0) + (hv13_0*hv13_0) + (hv14_0*hv14_0) + (hv1_0*hv1_0) + (hv2_0*hv2_0) + (hv3_0*hv3_0) + (hv4_0*hv4_0) + (hv5_0*hv5_0) + (hv6_0*hv6_0) + (hv7_0*hv7_0) + (hv8_0*hv8_0) + (hv9_0*hv9_0) + 2.0*(ea[0]*ea[0]);
+    /* factor S (pivots checked) */
     const double Sd0 = S0_0;
     if (!isfinite(Sd0)) { return NAV_UKF_NON_FINITE; }
     if (!(Sd0 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
     const double iS = (1.0/Sd0);
+    /* NIS = y' S^-1 y */
     nis = iS*(y[0]*y[0]);
+    /* gain */
     const double K0 = C0_0*iS;
     const double K1 = C1_0*iS;
     const double K2 = C2_0*iS;
@@ -2881,6 +2917,7 @@ int nav_ukf_update_mag_heading_nis(nav_ukf_t *s, const double *z, double *nis_ou
     const double K12 = C12_0*iS;
     const double K13 = C13_0*iS;
     const double K14 = C14_0*iS;
+    /* updated state x + K y */
     xs[nav_ukf_ix_pn] = x[nav_ukf_ix_pn] + K0*y[0];
     xs[nav_ukf_ix_pe] = x[nav_ukf_ix_pe] + K1*y[0];
     xs[nav_ukf_ix_pd] = x[nav_ukf_ix_pd] + K2*y[0];
@@ -2896,6 +2933,7 @@ int nav_ukf_update_mag_heading_nis(nav_ukf_t *s, const double *z, double *nis_ou
     xs[nav_ukf_ix_bax] = x[nav_ukf_ix_bax] + K12*y[0];
     xs[nav_ukf_ix_bay] = x[nav_ukf_ix_bay] + K13*y[0];
     xs[nav_ukf_ix_baz] = x[nav_ukf_ix_baz] + K14*y[0];
+    /* covariance P - K S K', upper triangle, packed */
     Ps[0] = P[0] - C0_0*K0;
     Ps[1] = P[1] - C1_0*K0;
     Ps[2] = P[2] - C2_0*K0;
@@ -3016,6 +3054,7 @@ int nav_ukf_update_mag_heading_nis(nav_ukf_t *s, const double *z, double *nis_ou
     Ps[117] = P[117] - C13_0*K13;
     Ps[118] = P[118] - C14_0*K13;
     Ps[119] = P[119] - C14_0*K14;
+    /* angle states wrapped to (-pi, pi] */
     xs[nav_ukf_ix_roll] = nav_ukf_wrap(xs[nav_ukf_ix_roll]);
     xs[nav_ukf_ix_pitch] = nav_ukf_wrap(xs[nav_ukf_ix_pitch]);
     xs[nav_ukf_ix_yaw] = nav_ukf_wrap(xs[nav_ukf_ix_yaw]);

@@ -134,7 +134,9 @@ int valve_ukf_predict(valve_ukf_t *s, const double *u, double dt)
             return st;
         }
     }
+    /* sigma-point offsets gamma L_i (L L' = P) */
     const double fg0_0 = 1.4142135623730951*Lf[0];
+    /* shared subexpressions of f at the sigma points */
     const double ft0 = fmin(1.0, fmax(0.0, u[valve_ukf_iu_cmd]));
     const double ft1 = ft0 - x[valve_ukf_ix_opening];
     const double ft2 = ft1 + par->band;
@@ -159,9 +161,12 @@ int valve_ukf_predict(valve_ukf_t *s, const double *u, double dt)
     const double fv0_0 = -fh0 + 0.35355339059327373*fq0_0;
     const double fv1_0 = -fh0 + 0.35355339059327373*fq1_0;
     const double fT0_1 = Lf[1]*fA1_1;
+    /* predicted state: weighted mean of the sigma points through f */
     xn[valve_ukf_ix_opening] = fmu0;
     xn[valve_ukf_ix_dp] = fc1;
+    /* A P for the rows of f that are linear in x */
     const double AP1_1 = P[2]*fA1_1;
+    /* covariance P': weighted covariance of the images + Q, upper triangle, packed */
     Pn[0] = Q0_0 + (fu0_0*fu0_0) + (fv0_0*fv0_0) + (fv1_0*fv1_0) + 2.0*(fe0*fe0);
     Pn[1] = fT0_1*fu0_0;
     Pn[2] = Q1_1 + AP1_1*fA1_1;
@@ -201,9 +206,11 @@ int valve_ukf_update_flow_nis(valve_ukf_t *s, const double *z, double *nis_out)
             return st;
         }
     }
+    /* sigma-point offsets gamma L_i (L L' = P) */
     const double hg0_0 = 1.4142135623730951*Lf[0];
     const double hg1_0 = 1.4142135623730951*Lf[1];
     const double hg1_1 = 1.4142135623730951*Lf[2];
+    /* shared subexpressions of h at the sigma points */
     const double ht0 = par->kv*x[valve_ukf_ix_opening];
     const double ht1 = -x[valve_ukf_ix_dp];
     const double hc0 = ht0*sqrt(x[valve_ukf_ix_dp]);
@@ -220,19 +227,27 @@ int valve_ukf_update_flow_nis(valve_ukf_t *s, const double *z, double *nis_out)
     const double hv0_0 = -hh0 + 0.35355339059327373*hq0_0;
     const double hu1_0 = 0.35355339059327373*(hp1_0 - hm1_0);
     const double hv1_0 = -hh0 + 0.35355339059327373*hq1_0;
+    /* innovation y = z - weighted mean of the sigma points through h */
     y[0] = z[0] - hmu0;
+    /* cross covariance C = cov(x, z) */
     const double C0_0 = Lf[0]*hu0_0;
     const double C1_0 = Lf[1]*hu0_0 + Lf[2]*hu1_0;
+    /* innovation covariance S (+ R) */
     const double S0_0 = 0.010000000000000002 + (hu0_0*hu0_0) + (hu1_0*hu1_0) + (hv0_0*hv0_0) + (hv1_0*hv1_0) + 2.0*(he0*he0);
+    /* factor S (pivots checked) */
     const double Sd0 = S0_0;
     if (!isfinite(Sd0)) { return VALVE_UKF_NON_FINITE; }
     if (!(Sd0 > 0.0)) { return VALVE_UKF_NOT_POSITIVE_DEFINITE; }
     const double iS = (1.0/Sd0);
+    /* NIS = y' S^-1 y */
     nis = iS*(y[0]*y[0]);
+    /* gain */
     const double K0 = C0_0*iS;
     const double K1 = C1_0*iS;
+    /* updated state x + K y */
     xs[valve_ukf_ix_opening] = x[valve_ukf_ix_opening] + K0*y[0];
     xs[valve_ukf_ix_dp] = x[valve_ukf_ix_dp] + K1*y[0];
+    /* covariance P - K S K', upper triangle, packed */
     Ps[0] = P[0] - C0_0*K0;
     Ps[1] = P[1] - C1_0*K0;
     Ps[2] = P[2] - C1_0*K1;
@@ -283,17 +298,24 @@ int valve_ukf_update_stem_nis(valve_ukf_t *s, const double *z, double *nis_out)
             return st;
         }
     }
+    /* innovation y = z - weighted mean of the sigma points through h */
     y[0] = z[0] - x[valve_ukf_ix_opening];
+    /* innovation covariance S (+ R) */
     const double S0_0 = 0.0004 + P[0];
+    /* factor S (pivots checked) */
     const double Sd0 = S0_0;
     if (!isfinite(Sd0)) { return VALVE_UKF_NON_FINITE; }
     if (!(Sd0 > 0.0)) { return VALVE_UKF_NOT_POSITIVE_DEFINITE; }
     const double iS = (1.0/Sd0);
+    /* NIS = y' S^-1 y */
     nis = iS*(y[0]*y[0]);
+    /* gain */
     const double K0 = P[0]*iS;
     const double K1 = P[1]*iS;
+    /* updated state x + K y */
     xs[valve_ukf_ix_opening] = x[valve_ukf_ix_opening] + K0*y[0];
     xs[valve_ukf_ix_dp] = x[valve_ukf_ix_dp] + K1*y[0];
+    /* covariance P - K S K', upper triangle, packed */
     Ps[0] = P[0] - K0*P[0];
     Ps[1] = P[1] - K0*P[1];
     Ps[2] = P[2] - K1*P[1];
