@@ -41,7 +41,7 @@ from __future__ import annotations
 import math
 import numbers
 from dataclasses import dataclass, field
-from typing import Dict, List, Sequence, Set, Tuple
+from typing import Callable, Dict, List, Sequence, Set, Tuple
 
 import sympy as sp
 
@@ -580,6 +580,50 @@ def derive_ukf_predict(spec: ModelSpec, wts: UkfWeights) -> UkfPredictCode:
                           _count_locals(stmts, ("fg", "fp", "fm", "fq", "fu", "fv", "fe", "fh", "fT", "fmu")))
 
 
+def _gain_and_commit(blk: _Block, n: int, m: int, P: sp.Matrix, C: Dict[Tuple[int, int], sp.Expr],
+                     S: Dict[Tuple[int, int], sp.Expr], y: List[sp.Symbol], assign_x: Callable[[List[sp.Expr]], object]) -> None:
+    """The update's tail from C = cov(x, z) (n x m) and S: NIS, the correction K y (handed to
+    ``assign_x``, which writes xs) and Ps = P - K S K' (see the module text)."""
+    if m == 1:
+        # scalar innovation: K = C / S, no square root
+        blk.add("decl", "Sd0", S[(0, 0)])
+        blk.add("check", "Sd0", _sym("Sd0"))
+        iS = blk.value("iS", 1 / _sym("Sd0"))
+        blk.add("assign", "nis", y[0] * y[0] * iS)
+        K = [blk.value(f"K{a}", C[(a, 0)] * iS) for a in range(n)]
+        assign_x([K[a] * y[0] for a in range(n)])
+        for a in range(n):
+            for b in range(a, n):
+                blk.add("assign", f"Ps[{packed_index(a, b, n)}]", P[a, b] - K[a] * C[(b, 0)])
+    else:
+        Ls: Dict[Tuple[int, int], sp.Expr] = {}
+        inv: Dict[int, sp.Expr] = {}
+        for j in range(m):
+            d = S[(j, j)] - sum((Ls[(j, k)] ** 2 for k in range(j)), sp.S.Zero)
+            blk.add("decl", f"Sd{j}", d)
+            blk.add("check", f"Sd{j}", _sym(f"Sd{j}"))
+            Ls[(j, j)] = blk.value(f"Ls{j}_{j}", sp.sqrt(_sym(f"Sd{j}")))
+            inv[j] = blk.value(f"Lsi{j}", 1 / Ls[(j, j)])
+            for i in range(j + 1, m):
+                e = S[(i, j)] - sum((Ls[(i, k)] * Ls[(j, k)] for k in range(j)), sp.S.Zero)
+                Ls[(i, j)] = blk.value(f"Ls{i}_{j}", e * inv[j])
+        bv: List[sp.Expr] = []
+        for k in range(m):
+            e = (y[k] - sum((Ls[(k, j)] * bv[j] for j in range(k)), sp.S.Zero)) * inv[k]
+            bv.append(blk.value(f"b{k}", e))
+        blk.add("assign", "nis", sum((bk * bk for bk in bv), sp.S.Zero))
+        B: Dict[Tuple[int, int], sp.Expr] = {}
+        for a in range(n):
+            for k in range(m):
+                e = (C[(a, k)] - sum((Ls[(k, j)] * B[(a, j)] for j in range(k)), sp.S.Zero)) * inv[k]
+                B[(a, k)] = blk.value(f"B{a}_{k}", e)
+        assign_x([sum((B[(a, k)] * bv[k] for k in range(m)), sp.S.Zero) for a in range(n)])
+        for a in range(n):
+            for b in range(a, n):
+                e = P[a, b] - sum((B[(a, k)] * B[(b, k)] for k in range(m)), sp.S.Zero)
+                blk.add("assign", f"Ps[{packed_index(a, b, n)}]", e)
+
+
 def derive_ukf_update(sensor: SensorSpec, spec: ModelSpec, wts: UkfWeights) -> UkfUpdateCode:
     """Fresh sigma points from (x, P) through h; y = z - zhat; x += K y; P -= K S K'."""
     n, m = spec.n, sensor.m
@@ -612,46 +656,8 @@ def derive_ukf_update(sensor: SensorSpec, spec: ModelSpec, wts: UkfWeights) -> U
             else:
                 e = _cov(spreads[k], spreads[l], wts)
             S[(k, l)] = S[(l, k)] = blk.value(f"S{k}_{l}", e + R[(k, l)])
-    if m == 1:
-        # scalar innovation: K = C / S, no square root
-        blk.add("decl", "Sd0", S[(0, 0)])
-        blk.add("check", "Sd0", _sym("Sd0"))
-        iS = blk.value("iS", 1 / _sym("Sd0"))
-        blk.add("assign", "nis", y[0] * y[0] * iS)
-        K = [blk.value(f"K{a}", C[(a, 0)] * iS) for a in range(n)]
-        for a in range(n):
-            blk.add("assign", f"xs[{a}]", _sym(f"x[{a}]") + K[a] * y[0])
-        for a in range(n):
-            for b in range(a, n):
-                blk.add("assign", f"Ps[{packed_index(a, b, n)}]", P[a, b] - K[a] * C[(b, 0)])
-    else:
-        Ls: Dict[Tuple[int, int], sp.Expr] = {}
-        inv: Dict[int, sp.Expr] = {}
-        for j in range(m):
-            d = S[(j, j)] - sum((Ls[(j, k)] ** 2 for k in range(j)), sp.S.Zero)
-            blk.add("decl", f"Sd{j}", d)
-            blk.add("check", f"Sd{j}", _sym(f"Sd{j}"))
-            Ls[(j, j)] = blk.value(f"Ls{j}_{j}", sp.sqrt(_sym(f"Sd{j}")))
-            inv[j] = blk.value(f"Lsi{j}", 1 / Ls[(j, j)])
-            for i in range(j + 1, m):
-                e = S[(i, j)] - sum((Ls[(i, k)] * Ls[(j, k)] for k in range(j)), sp.S.Zero)
-                Ls[(i, j)] = blk.value(f"Ls{i}_{j}", e * inv[j])
-        bv: List[sp.Expr] = []
-        for k in range(m):
-            e = (y[k] - sum((Ls[(k, j)] * bv[j] for j in range(k)), sp.S.Zero)) * inv[k]
-            bv.append(blk.value(f"b{k}", e))
-        blk.add("assign", "nis", sum((bk * bk for bk in bv), sp.S.Zero))
-        B: Dict[Tuple[int, int], sp.Expr] = {}
-        for a in range(n):
-            for k in range(m):
-                e = (C[(a, k)] - sum((Ls[(k, j)] * B[(a, j)] for j in range(k)), sp.S.Zero)) * inv[k]
-                B[(a, k)] = blk.value(f"B{a}_{k}", e)
-        for a in range(n):
-            blk.add("assign", f"xs[{a}]", _sym(f"x[{a}]") + sum((B[(a, k)] * bv[k] for k in range(m)), sp.S.Zero))
-        for a in range(n):
-            for b in range(a, n):
-                e = P[a, b] - sum((B[(a, k)] * B[(b, k)] for k in range(m)), sp.S.Zero)
-                blk.add("assign", f"Ps[{packed_index(a, b, n)}]", e)
+    _gain_and_commit(blk, n, m, P, C, S, y, lambda corr: [blk.add("assign", f"xs[{a}]", _sym(f"x[{a}]") + corr[a])
+                                                     for a in range(n)])
     for i, st in enumerate(spec.states):
         if st.angle:
             blk.add("wrap", f"xs[{i}]", _sym(f"xs[{i}]"))
@@ -709,7 +715,14 @@ def commit_check(n: int, P: str) -> List[Stmt]:
 
 
 def derive_ukf(spec: ModelSpec, wts: UkfWeights) -> UkfCode:
-    """Everything the UKF template needs for ``spec``."""
+    """Everything the UKF template needs for ``spec`` (models with attitudes: the error-space
+    transform of :mod:`estgen.derive_ukf_att`)."""
+    if spec.attitudes:
+        from .derive_ukf_att import derive_ukf_attitude_predict, derive_ukf_attitude_update
+
+        code = UkfCode(spec, wts, derive_ukf_attitude_predict(spec, wts))
+        code.updates = [derive_ukf_attitude_update(s, spec, wts) for s in spec.sensors]
+        return code
     code = UkfCode(spec, wts, derive_ukf_predict(spec, wts))
     for s in spec.sensors:
         code.updates.append(derive_ukf_update(s, spec, wts))

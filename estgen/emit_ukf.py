@@ -18,7 +18,7 @@ __all__ = ["generate_ukf", "ukf_weights"]
 def ukf_weights(spec: ModelSpec, **options: Any) -> UkfWeights:
     """The validated sigma-point weights the generator uses for ``spec`` and ``options``
     (alpha, beta, kappa; defaults 1, 2, 0). Raises ModelError for invalid options."""
-    return check_options(spec.n, dict(options))
+    return check_options(spec.ne, dict(options))
 
 
 def _stack_bytes(stmts_decls: int, arrays: int, size_real: int) -> int:
@@ -35,12 +35,13 @@ def generate_ukf(spec: ModelSpec, precision: str = "float", commit_check: str = 
     ``sigma_stack`` = {"predict": bytes, "update": bytes}, the named locals the header states.
     """
     check_filter_support(spec, "ukf")
-    wts = check_options(spec.n, dict(options))
+    wts = check_options(spec.ne, dict(options))
     ctx = _common_context(spec, "ukf", precision, commit_check, command)
     em: Emitter = ctx["emitter"]
     code = derive_ukf(spec, wts)
     size_real = 4 if precision == "float" else 8
     n, np_ = ctx["n"], ctx["np"]
+    ne = ctx["ne"]  # sigma points live in the error space (ne = n without attitudes)
     ops: Dict[str, Dict[str, int]] = {}
     pc = OpCount()
     p_lines = em.lines(with_sections(code.predict.stmts, UKF_PREDICT_SECTIONS), pc)
@@ -48,7 +49,7 @@ def generate_ukf(spec: ModelSpec, precision: str = "float", commit_check: str = 
     cc = OpCount()
     cc += OpCount(**ctx["commit_ops"])
     # so is the factorization of P every call starts with
-    ctx["factor"] = em.lines(factor_function(n), cc)
+    ctx["factor"] = em.lines(factor_function(ne), cc)
     pc += cc
     ops["predict"] = pc.as_dict()
     p_decls = sum(1 for st in code.predict.stmts if st.kind == "decl")
@@ -72,13 +73,13 @@ def generate_ukf(spec: ModelSpec, precision: str = "float", commit_check: str = 
                       "gamma": em.lit(wts.gamma), "alpha": em.lit(wts.alpha), "beta": em.lit(wts.beta),
                       "kappa": em.lit(wts.kappa), "lam": em.lit(wts.lam)}
     ctx["memory_note"] = [
-        f"Sigma points: 2n+1 = {2 * n + 1}, never stored as arrays. Their offsets gamma*L, their images",
+        f"Sigma points: 2n+1 = {2 * ne + 1}, never stored as arrays. Their offsets gamma*L, their images",
         "and deviations are const locals of predict and update (straight-line code), so they live",
         f"on the stack of those calls: the named locals total {p_bytes} bytes in predict and {u_bytes} bytes",
         "in the largest update. The real frame depends on the compiler (registers hold many, spills",
         "add some): measure it on the target, e.g. gcc -fstack-usage.",
         f"Weights: Wm0 = {ctx['weights']['wm0']}, Wc0 = {ctx['weights']['wc0']}, "
-        f"Wm_i = Wc_i = {ctx['weights']['wm']} (i = 1..{2 * n});",
+        f"Wm_i = Wc_i = {ctx['weights']['wm']} (i = 1..{2 * ne});",
         f"alpha = {ctx['weights']['alpha']}, beta = {ctx['weights']['beta']}, kappa = {ctx['weights']['kappa']}.",
     ]
     ctx["sigma_stack"] = {"predict": p_bytes, "update": u_bytes}

@@ -993,7 +993,7 @@ def _find_nondiff(expr: sp.Basic) -> Optional[str]:
 
 
 #: Filters whose derivation handles attitude (error-state) blocks.
-ATTITUDE_FILTERS: Tuple[str, ...] = ("ekf",)
+ATTITUDE_FILTERS: Tuple[str, ...] = ("ekf", "ukf")
 
 
 def check_filter_support(spec: ModelSpec, filt: str) -> None:

@@ -120,6 +120,25 @@ class ModelFunctions:
             self._M = _lambdify(bx, retraction_jacobian(spec, bx))
             inv2 = {xi: 1 / sum((bx[k] ** 2 for k in range(xi, xi + 4)), sp.S.Zero) for xi in spec.attitudes}
             self._E = _lambdify(bx, error_map(spec, bx, inv2))
+            from . import quat
+
+            ref = list(sp.symbols(f"br0:{spec.n}"))
+            minus: List[sp.Expr] = []
+            for kind, xi, _ in spec.error_blocks():
+                if kind == "real":
+                    minus.append(bx[xi] - ref[xi])
+                else:
+                    minus.extend(quat.log(quat.mul(quat.conj(ref[xi:xi + 4]), bx[xi:xi + 4])))
+            self._minus = _lambdify([*bx, *ref], sp.Matrix(minus))
+            self._err_angles = np.array([kind == "real" and spec.states[xi].angle
+                                         for kind, xi, _ in spec.error_blocks()], dtype=bool)
+
+    def boxminus(self, y: np.ndarray, ref: np.ndarray) -> np.ndarray:
+        """``y ⊟ ref``, shape (ne,): the error e with ``y = ref ⊞ e`` (attitudes:
+        quat.log(conj(ref_q) ⊗ y_q), the shorter way round; angles wrapped)."""
+        if not self.spec.attitudes:
+            return _wrap_masked(y - ref, np.array(self.spec.angle_states, dtype=bool))
+        return _wrap_masked(self._arr(self._minus(*y, *ref), (self.ne,)), self._err_angles)
 
     def boxplus(self, x: np.ndarray, e: np.ndarray) -> np.ndarray:
         """``x ⊞ e``: plain states added, attitudes right-multiplied by exp(dtheta), shape (n,)."""
@@ -505,10 +524,10 @@ class ReferenceUKF(_ReferenceBase):
 
     def __init__(self, spec: ModelSpec, *, alpha: float = 1.0, beta: float = 2.0, kappa: float = 0.0,
                  params: Optional[Mapping[str, float]] = None, functions: Optional[ModelFunctions] = None) -> None:
-        check_ukf_parameters(spec.n, alpha, beta, kappa)
+        check_ukf_parameters(spec.ne, alpha, beta, kappa)
         super().__init__(spec, params, functions)
         self.alpha, self.beta, self.kappa = float(alpha), float(beta), float(kappa)
-        self._lam, self._wm, self._wc = sigma_weights(spec.n, self.alpha, self.beta, self.kappa)
+        self._lam, self._wm, self._wc = sigma_weights(spec.ne, self.alpha, self.beta, self.kappa)
 
     @property
     def weights(self) -> Tuple[np.ndarray, np.ndarray]:
@@ -521,6 +540,8 @@ class ReferenceUKF(_ReferenceBase):
         if bad is not None:
             return bad
         p = self._p()
+        if self.spec.attitudes:
+            return self._predict_error_space(uv, dtf, p)
         with np.errstate(all="ignore"):
             X = sigma_points(self._x, self._P, self._lam)
             if X is None:
@@ -534,11 +555,46 @@ class ReferenceUKF(_ReferenceBase):
             Pn = (d.T * self._wc) @ d + Q
         return self._commit(xn, Pn)
 
+    def _predict_error_space(self, uv: np.ndarray, dtf: float, p: Tuple[float, ...]) -> int:
+        """Attitudes: sigma points x ⊞ e_i, errors of the images about the central one,
+        Y_0 ⊞ (their weighted mean), covariance of the errors about that mean (the algorithm of
+        :mod:`estgen.derive_ukf_att`)."""
+        with np.errstate(all="ignore"):
+            E = sigma_points(np.zeros(self.spec.ne), self._P, self._lam)
+            if E is None:
+                return int(Status.NOT_POSITIVE_DEFINITE)
+            Y = np.array([self._fn.f(self._fn.boxplus(self._x, e), uv, dtf, p) for e in E])
+            Q = self._fn.Q(dtf, p)
+            if not _finite(Y, Q):
+                return int(Status.NON_FINITE)
+            d = np.array([self._fn.boxminus(y, Y[0]) for y in Y])
+            dbar = self._wm @ d
+            dev = d - dbar
+            xn = self._fn.boxplus(Y[0], dbar)
+            Pn = (dev.T * self._wc) @ dev + Q
+        return self._commit(xn, Pn)
+
     def _innovation(self, sensor: str, z: np.ndarray) -> Union[int, _Innovation]:
         """Fresh sigma points from (x, P) through h; the covariance update is P - K S K'."""
         p = self._p()
         x, P = self._x, self._P
         zang = self._sensor_angles[sensor]
+        if self.spec.attitudes:
+            E = sigma_points(np.zeros(self.spec.ne), P, self._lam)
+            if E is None:
+                return int(Status.NOT_POSITIVE_DEFINITE)
+            Z = np.array([self._fn.h(sensor, self._fn.boxplus(x, e), p) for e in E])
+            R = self._fn.R(sensor, p)
+            if not _finite(Z, R):
+                return int(Status.NON_FINITE)
+            dZ = Z - Z[0]  # about the central image, as the C does
+            if zang.any():
+                dZ[:, zang] = wrap_angle(dZ[:, zang])
+            off = self._wm @ dZ
+            dev = dZ - off
+            S = (dev.T * self._wc) @ dev + R
+            C = (E.T * self._wc) @ dev
+            return _wrap_masked(z - (Z[0] + off), zang), S, C, lambda K, S_: P - K @ S_ @ K.T
         X = sigma_points(x, P, self._lam)
         if X is None:
             return int(Status.NOT_POSITIVE_DEFINITE)

@@ -143,10 +143,11 @@ def test_c_update_injects_the_error_like_scipy(gyro) -> None:
     assert abs(np.linalg.norm(c.x[:4]) - 1.0) < 1e-15 * 4
 
 
+@pytest.mark.parametrize("filt", ["ekf", "ukf"])
 @pytest.mark.parametrize("precision,tol", [("double", 1e-9), ("float", 2e-3)])
-def test_c_ekf_matches_reference_with_attitude(gyro, precision: str, tol: float) -> None:
-    c = estgen.build(gyro, filter="ekf", precision=precision)
-    r = estgen.reference(gyro, filter="ekf")
+def test_c_matches_reference_with_attitude(gyro, filt: str, precision: str, tol: float) -> None:
+    c = estgen.build(gyro, filter=filt, precision=precision)
+    r = estgen.reference(gyro, filter=filt)
     for k in range(300):
         u = [1.5 * math.sin(0.02 * k), 2.0, -1.0 + 0.5 * math.cos(0.01 * k)]
         assert c.predict(u, 0.01) == r.predict(u, 0.01) == 0
@@ -163,10 +164,36 @@ def test_c_ekf_matches_reference_with_attitude(gyro, precision: str, tol: float)
         assert abs(np.linalg.norm(c.x[:4]) - 1.0) < (1e-15 if precision == "double" else 1e-6) * 4
 
 
-def test_set_state_scales_the_quaternion_and_refuses_zero(gyro) -> None:
-    for f in (estgen.build(gyro, filter="ekf", precision="double"), estgen.reference(gyro, filter="ekf")):
+@pytest.mark.parametrize("filt", ["ekf", "ukf"])
+def test_set_state_scales_the_quaternion_and_refuses_zero(gyro, filt: str) -> None:
+    for f in (estgen.build(gyro, filter=filt, precision="double"), estgen.reference(gyro, filter=filt)):
         x = np.array([2.0, 0.0, 0.0, 0.0, 0.0, 0.0, 0.0])
         assert f.set_state(x, np.eye(6) * 0.01) == 0
         np.testing.assert_allclose(f.x[:4], [1, 0, 0, 0])
         x[0] = 0.0
         assert f.set_state(x, np.eye(6) * 0.01) == int(estgen.Status.BAD_INPUT)
+
+
+@pytest.mark.parametrize("kappa", [0.0, 1.0])
+def test_ukf_predict_of_a_pure_rotation_is_exact(gyro, kappa: float) -> None:
+    """With the bias known, q ⊗ exp(e) ⊗ exp(w dt) = (q ⊗ exp(w dt)) ⊗ exp(R(w dt)^T e) exactly, so
+    the error-space transform must give the mean q ⊗ exp(w dt) (scipy composition) and
+    P' = R^T P R + Q for any spread (Sola 2017, eq. 274; here without linearization)."""
+    fn = model_functions(gyro)
+    p = fn.param_tuple(gyro.param_defaults())
+    c = estgen.build(gyro, filter="ukf", precision="double", kappa=kappa)
+    r = estgen.reference(gyro, filter="ukf", kappa=kappa)
+    x = _random_state(gyro)
+    A = RNG.normal(size=(3, 3))
+    P = np.zeros((6, 6))
+    P[:3, :3] = A @ A.T * 0.02  # large spread: sigma points up to about a radian out
+    P[3:, 3:] = np.eye(3) * 1e-30
+    u = np.array([2.0, -1.0, 0.5])
+    dt = 0.1
+    Rm = Rotation.from_rotvec((u - x[4:7]) * dt).as_matrix()
+    for f in (c, r):
+        assert f.set_state(x, P) == 0
+        assert f.predict(u, dt) == 0
+        want_q = _quat(_rot(x[:4]) * Rotation.from_rotvec((u - x[4:7]) * dt))
+        assert min(np.abs(f.x[:4] - want_q).max(), np.abs(f.x[:4] + want_q).max()) < 1e-12
+        np.testing.assert_allclose(f.P[:3, :3], Rm.T @ P[:3, :3] @ Rm + fn.Q(dt, p)[:3, :3], atol=1e-12)
