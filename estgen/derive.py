@@ -84,8 +84,10 @@ EKF_PREDICT_SECTIONS: Tuple[SectionRule, ...] = (
     (r"^assign xn\[", "predicted state x' = f(x, u, dt)"),
     (r"^decl F\d+_\d+$", "Jacobian F = df/dx (entries that are not constant)"),
     (r"^decl Q\d+_\d+$", "process noise covariance Q (entries that are not constant)"),
+    (r"^decl (G|W)\d+_\d+$", "noise symbols: G = df/dw at w = 0 and their covariance Qw (entries not constant)"),
     (r"^decl A\d+_\d+$", "A = F P (the entries P' reads)"),
-    (r"^assign Pn\[", "covariance P' = A F' + Q, upper triangle, packed"),
+    (r"^decl B\d+_\d+$", "B = G Qw (the entries P' reads)"),
+    (r"^assign Pn\[", "covariance P' = A F' (+ B G') + Q, upper triangle, packed"),
     (r"^wrap xn\[", "angle states wrapped to (-pi, pi]"),
 )
 
@@ -93,6 +95,7 @@ EKF_PREDICT_SECTIONS: Tuple[SectionRule, ...] = (
 _EKF_UPDATE_HEAD: Tuple[SectionRule, ...] = (
     (r"^decl t\d+$", "shared subexpressions of h(x), H = dh/dx and R"),
     (r"^decl (hz\d+|H\d+_\d+|R\d+_\d+)$", "predicted measurement h(x), Jacobian H = dh/dx, noise R"),
+    (r"^decl (M|V)\d+_\d+$", "noise symbols: M = dh/dv at v = 0 and their covariance Rv; R_eff = M Rv M' + R"),
     (r"^(assign|wrap) y\[", "innovation y = z - h(x)"),
     (r"^wrap xs\[", "angle states wrapped to (-pi, pi]"),
 )
@@ -220,17 +223,22 @@ class EkfCode:
 
 
 def derive_ekf_predict(spec: ModelSpec) -> EkfPredictCode:
-    """x' = f(x, u, dt); P' = F P F' + Q with F = df/dx, in packed storage.
+    """x' = f(x, u, 0, dt); P' = F P F' + G Qw G' + Q with F = df/dx and G = df/dw at w = 0
+    (the noise symbols of the process), in packed storage.
 
-    The product is formed as A = F P, then the upper triangle of A F' + Q, so each product only
-    touches F's structurally non-zero entries.
+    The product is formed as A = F P, then the upper triangle of A F' + B G' + Q with B = G Qw,
+    so each product only touches the structurally non-zero entries of F and G; f, F, G, Q and
+    Qw share one common-subexpression pass.
     """
     n = spec.n
     ne = spec.ne
     xs = spec.x_syms
+    ws = spec.w_syms
+    nw = len(ws)
     names = c_names(spec, "x")
-    f = spec.f
+    f = spec.f0
     F = f.jacobian(xs)
+    G = spec.f.jacobian(ws).xreplace({w: sp.S.Zero for w in ws}) if ws else sp.zeros(n, 0)
     outputs: List[Tuple[str, str, sp.Expr]] = []
     for i in range(n):
         outputs.append(("assign", f"xn[{i}]", f[i].xreplace(names)))
@@ -250,12 +258,30 @@ def derive_ekf_predict(spec: ModelSpec) -> EkfPredictCode:
                 const_Q[(i, j)] = e
             else:
                 outputs.append(("value", f"Q{i}_{j}", e.xreplace(names)))
+    Gm = _named_entries(outputs, G.xreplace(names), "G")
+    Qwm = _named_entries(outputs, spec.Qw.xreplace(names), "W")
     stmts, values = model_block(outputs)
     Fm = sp.Matrix(n, n, lambda i, j: const_F.get((i, j), values.get(f"F{i}_{j}", sp.S.Zero)))
     Qm = {(i, j): const_Q.get((i, j), values.get(f"Q{i}_{j}", sp.S.Zero)) for i in range(ne) for j in range(i, ne)}
+    vsym = {sp.Symbol(k): v for k, v in values.items()}
+    Gm, Qwm = Gm.xreplace(vsym), Qwm.xreplace(vsym)
     if spec.attitudes:
-        Fm = _error_F(spec, Fm, stmts)
+        Fm, Em = _error_F(spec, Fm, stmts)
+        Ge = Em * Gm  # the noise's error-state Jacobian E(xn) df/dw
+        Gm = sp.Matrix(ne, nw, lambda i, k: _named(stmts, f"Ge{i}_{k}", Ge[i, k]))
     n = ne  # the covariance algebra below is in the error dimension
+    # B = G Qw, the entries B[i, k] that some G[j, k], j >= i, reads
+    Bref = sp.zeros(n, nw)
+    for i in range(n):
+        for k in range(nw):
+            if not any(Gm[j, k] != 0 for j in range(i, n)):
+                continue
+            e = sum((Gm[i, l] * Qwm[l, k] for l in range(nw) if Gm[i, l] != 0 and Qwm[l, k] != 0), sp.S.Zero)
+            if _is_trivial(e):
+                Bref[i, k] = e
+            else:
+                stmts.append(Stmt("decl", f"B{i}_{k}", e))
+                Bref[i, k] = sp.Symbol(f"B{i}_{k}")
     P = _sym_P(n, "P")
     A = Fm * P
     Aref = sp.zeros(n, n)
@@ -275,6 +301,7 @@ def derive_ekf_predict(spec: ModelSpec) -> EkfPredictCode:
     for i in range(n):
         for j in range(i, n):
             e = sum((Aref[i, k] * Fm[j, k] for k in range(n) if Fm[j, k] != 0), sp.S.Zero) + Qm[(i, j)]
+            e += sum((Bref[i, k] * Gm[j, k] for k in range(nw) if Gm[j, k] != 0), sp.S.Zero)
             stmts.append(Stmt("assign", f"Pn[{packed_index(i, j, n)}]", e))
     stmts += _normalize_attitudes(spec)
     stmts += angle_wraps(spec, "xn")
@@ -294,9 +321,9 @@ def _named(stmts: List[Stmt], name: str, e: sp.Expr) -> sp.Expr:
     return sp.Symbol(name)
 
 
-def _error_F(spec: ModelSpec, Fm: sp.Matrix, stmts: List[Stmt]) -> sp.Matrix:
+def _error_F(spec: ModelSpec, Fm: sp.Matrix, stmts: List[Stmt]) -> Tuple[sp.Matrix, sp.Matrix]:
     """The error-state transition ``E(xn) * F * M(x)`` (see :mod:`estgen.errorstate`) from the
-    Jacobian F = df/dx already in ``Fm``; xn holds f(x) before normalization."""
+    Jacobian F = df/dx already in ``Fm``, and E(xn); xn holds f(x) before normalization."""
     from .errorstate import error_map, retraction_jacobian
 
     y = list(_x("xn", spec.n))
@@ -310,8 +337,9 @@ def _error_F(spec: ModelSpec, Fm: sp.Matrix, stmts: List[Stmt]) -> sp.Matrix:
         half[xi] = sp.S.Half
     T = Fm * retraction_jacobian(spec, _x("x", spec.n))
     T = sp.Matrix(T.shape[0], T.shape[1], lambda i, j: _named(stmts, f"T{i}_{j}", T[i, j]))
-    Fe = error_map(spec, y, half) * T
-    return sp.Matrix(spec.ne, spec.ne, lambda i, j: _named(stmts, f"Fe{i}_{j}", Fe[i, j]))
+    Em = error_map(spec, y, half)
+    Fe = Em * T
+    return sp.Matrix(spec.ne, spec.ne, lambda i, j: _named(stmts, f"Fe{i}_{j}", Fe[i, j])), Em
 
 
 def _normalize_attitudes(spec: ModelSpec) -> List[Stmt]:
@@ -344,14 +372,32 @@ def _inject(spec: ModelSpec) -> List[Stmt]:
     return stmts
 
 
+def _named_entries(outputs: List[Tuple[str, str, sp.Expr]], mat: sp.Matrix, tag: str) -> sp.Matrix:
+    """``mat`` with each non-numeric entry replaced by a placeholder named ``<tag>i_j`` that is
+    appended to ``outputs`` as a value; ``xreplace`` the result with model_block's values."""
+    out = sp.zeros(*mat.shape)
+    for i in range(mat.shape[0]):
+        for j in range(mat.shape[1]):
+            e = mat[i, j]
+            if e.is_Number:
+                out[i, j] = e
+            else:
+                outputs.append(("value", f"{tag}{i}_{j}", e))
+                out[i, j] = sp.Symbol(f"{tag}{i}_{j}")
+    return out
+
+
 def _h_block(spec: SensorSpec, mspec: ModelSpec) -> Tuple[List[Stmt], List[sp.Expr], sp.Matrix, Dict[Tuple[int, int], sp.Expr]]:
-    """h(x), H = dh/dx and R with shared subexpressions; h goes to hz[i]."""
+    """h(x, 0), H = dh/dx and R_eff = M Rv M' + R (M = dh/dv at v = 0) with shared
+    subexpressions; h goes to hz[i]."""
     n, m = mspec.n, spec.m
     names = c_names(mspec, "x")
-    H = spec.h.jacobian(mspec.x_syms)
+    h0 = spec.h0
+    H = h0.jacobian(mspec.x_syms)
+    vs = list(spec.v)
     outputs: List[Tuple[str, str, sp.Expr]] = []
     for i in range(m):
-        outputs.append(("value", f"hz{i}", spec.h[i].xreplace(names)))
+        outputs.append(("value", f"hz{i}", h0[i].xreplace(names)))
     for i in range(m):
         for j in range(n):
             if not H[i, j].is_Number:
@@ -360,10 +406,20 @@ def _h_block(spec: SensorSpec, mspec: ModelSpec) -> Tuple[List[Stmt], List[sp.Ex
         for j in range(i, m):
             if not spec.R[i, j].is_Number:
                 outputs.append(("value", f"R{i}_{j}", spec.R[i, j].xreplace(names)))
+    M = spec.h.jacobian(vs).xreplace({v: sp.S.Zero for v in vs}) if vs else sp.zeros(m, 0)
+    Mm = _named_entries(outputs, M.xreplace(names), "M")
+    Rvm = _named_entries(outputs, spec.Rv.xreplace(names), "V")
     stmts, values = model_block(outputs)
+    vsym = {sp.Symbol(k): v for k, v in values.items()}
+    Mm, Rvm = Mm.xreplace(vsym), Rvm.xreplace(vsym)
     hv = [values.get(f"hz{i}", sp.S.Zero) for i in range(m)]
     Hm = sp.Matrix(m, n, lambda i, j: H[i, j] if H[i, j].is_Number else values[f"H{i}_{j}"])
     Rm = {(i, j): (spec.R[i, j] if spec.R[i, j].is_Number else values[f"R{i}_{j}"]) for i in range(m) for j in range(i, m)}
+    nv = len(vs)
+    for i in range(m):
+        for j in range(i, m):
+            Rm[(i, j)] += sum((Mm[i, a] * Rvm[a, b] * Mm[j, b] for a in range(nv) for b in range(nv)
+                               if Mm[i, a] != 0 and Rvm[a, b] != 0 and Mm[j, b] != 0), sp.S.Zero)
     return stmts, hv, Hm, Rm
 
 

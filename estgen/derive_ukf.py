@@ -47,7 +47,7 @@ import sympy as sp
 
 from .derive import Stmt, c_names, packed_index
 from .errors import ModelError
-from .model import ModelSpec, SensorSpec
+from .model import ModelSpec, SensorSpec, noise_factor
 
 __all__ = ["UkfWeights", "UkfPredictCode", "UkfUpdateCode", "UkfCode", "derive_ukf", "check_options",
            "commit_check", "factor_function"]
@@ -355,17 +355,21 @@ def _lower(e: sp.Expr) -> sp.Expr:
 
 
 def _transform(blk: _Block, spec: ModelSpec, funcs: sp.Matrix, angle: Sequence[bool], wts: UkfWeights,
-               L: Dict[Tuple[int, int], sp.Expr], extra: Sequence[Tuple[str, sp.Expr]], tag: str
+               L: Dict[Tuple[int, int], sp.Expr], extra: Sequence[Tuple[str, sp.Expr]], tag: str,
+               noise: Sequence[sp.Symbol] = ()
                ) -> Tuple[List[_Spread], Dict[int, List[sp.Expr]], Dict[str, sp.Expr], int, int]:
     """Sigma-point images of ``funcs`` (user symbols) and their spreads.
 
-    Returns the spreads, the linear rows (with C-named coefficients), the values of ``extra``
-    (named expressions in user symbols sharing the common-subexpression pass), the length of the
-    angle scratch array and the number of sigma-point locals declared.
+    With ``noise`` symbols the transform is of the augmented vector ``[x; noise]`` (centre
+    ``[x; 0]``; ``L`` and ``wts`` are then those of the augmented dimension).
+
+    Returns the spreads, the linear rows (with C-named coefficients, over the augmented vector),
+    the values of ``extra`` (named expressions in user symbols sharing the common-subexpression
+    pass), the length of the angle scratch array and the number of sigma-point locals declared.
     """
-    n = spec.n
-    xs = spec.x_syms
-    names = c_names(spec, "x")
+    xs = spec.x_syms + list(noise)
+    n = len(xs)
+    names: Dict[sp.Symbol, sp.Expr] = {**c_names(spec, "x"), **{v: sp.S.Zero for v in noise}}
     funcs = funcs.applyfunc(_lower)
     lin_user = _linear_rows(funcs, xs, angle)
     nl = [k for k in range(funcs.shape[0]) if k not in lin_user]
@@ -443,7 +447,7 @@ def _transform(blk: _Block, spec: ModelSpec, funcs: sp.Matrix, angle: Sequence[b
         minus.update(minus_atoms[i])
         for m in support:
             if m >= i:
-                xm = _sym(f"x[{m}]")
+                xm = names[xs[m]]
                 plus[xs[m]] = xm + off[(m, i)]
                 minus[xs[m]] = xm - off[(m, i)]
         for k in nl:
@@ -550,28 +554,28 @@ def derive_ukf_predict(spec: ModelSpec, wts: UkfWeights) -> UkfPredictCode:
     """x' = weighted mean of f at the sigma points; P' = their weighted covariance + Q."""
     n = spec.n
     blk = _Block()
-    L = _factor_symbols(n)
+    L, wts, Paug = _augmented(blk, spec, spec.w_syms, spec.Qw, wts, "f")
     angle = spec.angle_states
     qitems = [(f"Q{i}_{j}", spec.Q[i, j]) for i in range(n) for j in range(i, n) if not spec.Q[i, j].is_Number]
-    spreads, lin, qv, n_angle, _ = _transform(blk, spec, spec.f, angle, wts, L, qitems, "f")
+    spreads, lin, qv, n_angle, _ = _transform(blk, spec, spec.f, angle, wts, L, qitems, "f", spec.w_syms)
+    na = wts.n
     Q = {(i, j): (spec.Q[i, j] if spec.Q[i, j].is_Number else qv[f"Q{i}_{j}"]) for i in range(n) for j in range(i, n)}
     for k, sp_ in enumerate(spreads):
         if angle[k]:
             blk.add("wrap", f"xn[{k}]", sp_.mean)
         else:
             blk.add("assign", f"xn[{k}]", sp_.mean)
-    P = sp.Matrix(n, n, lambda i, j: _sym(f"P[{packed_index(i, j, n)}]"))
-    # A P for the linear rows, entries materialized once (read by A P A')
+    # A P for the linear rows (P of the augmented vector), entries materialized once (read by A P A')
     AP: Dict[Tuple[int, int], sp.Expr] = {}
     for a, row in lin.items():
-        for m in range(n):
+        for m in range(na):
             if any(lin[b][m] != 0 for b in lin if b >= a):
-                e = sum((row[j] * P[j, m] for j in range(n) if row[j] != 0), sp.S.Zero)
+                e = sum((row[j] * Paug(j, m) for j in range(na) if row[j] != 0), sp.S.Zero)
                 AP[(a, m)] = blk.value(f"AP{a}_{m}", e)
     for a in range(n):
         for b in range(a, n):
             if a in lin and b in lin:
-                e = sum((AP[(a, m)] * lin[b][m] for m in range(n) if lin[b][m] != 0), sp.S.Zero)
+                e = sum((AP[(a, m)] * lin[b][m] for m in range(na) if lin[b][m] != 0), sp.S.Zero)
             else:
                 e = _cov(spreads[a], spreads[b], wts)
             blk.add("assign", f"Pn[{packed_index(a, b, n)}]", e + Q[(a, b)])
@@ -628,9 +632,10 @@ def derive_ukf_update(sensor: SensorSpec, spec: ModelSpec, wts: UkfWeights) -> U
     """Fresh sigma points from (x, P) through h; y = z - zhat; x += K y; P -= K S K'."""
     n, m = spec.n, sensor.m
     blk = _Block()
-    L = _factor_symbols(n)
+    L, wts, Paug = _augmented(blk, spec, list(sensor.v), sensor.Rv, wts, "h")
     ritems = [(f"R{i}_{j}", sensor.R[i, j]) for i in range(m) for j in range(i, m) if not sensor.R[i, j].is_Number]
-    spreads, lin, rv, n_angle, _ = _transform(blk, spec, sensor.h, sensor.angles, wts, L, ritems, "h")
+    spreads, lin, rv, n_angle, _ = _transform(blk, spec, sensor.h, sensor.angles, wts, L, ritems, "h", sensor.v)
+    na = wts.n
     R = {(i, j): (sensor.R[i, j] if sensor.R[i, j].is_Number else rv[f"R{i}_{j}"]) for i in range(m) for j in range(i, m)}
     for k in range(m):
         if sensor.angles[k]:
@@ -653,6 +658,9 @@ def derive_ukf_update(sensor: SensorSpec, spec: ModelSpec, wts: UkfWeights) -> U
         for l in range(k, m):
             if k in lin and l in lin:
                 e = sum((lin[k][j] * C[(j, l)] for j in range(n) if lin[k][j] != 0), sp.S.Zero)
+                # the noise block of the augmented covariance
+                e += sum((lin[k][j] * Paug(j, q) * lin[l][q] for j in range(n, na) for q in range(n, na)
+                          if lin[k][j] != 0 and lin[l][q] != 0), sp.S.Zero)
             else:
                 e = _cov(spreads[k], spreads[l], wts)
             S[(k, l)] = S[(l, k)] = blk.value(f"S{k}_{l}", e + R[(k, l)])
@@ -668,6 +676,7 @@ def derive_ukf_update(sensor: SensorSpec, spec: ModelSpec, wts: UkfWeights) -> U
 
 #: section headings of the UKF's predict and update (see :func:`estgen.derive.with_sections`)
 UKF_PREDICT_SECTIONS = (
+    (r"^decl fn[fc]\d", "noise symbols: factor A (A A' = Qw) for the augmented sigma points [x; w]"),
     (r"^decl fg\d", "sigma-point offsets gamma L_i (L L' = P)"),
     (r"^decl ft\d", "shared subexpressions of f at the sigma points"),
     (r"^(assign|wrap) xn\[", "predicted state: weighted mean of the sigma points through f"),
@@ -675,6 +684,7 @@ UKF_PREDICT_SECTIONS = (
     (r"^assign Pn\[", "covariance P': weighted covariance of the images + Q, upper triangle, packed"),
 )
 UKF_UPDATE_SECTIONS = (
+    (r"^decl hn[fc]\d", "noise symbols: factor A (A A' = Rv) for the augmented sigma points [x; v]"),
     (r"^decl hg\d", "sigma-point offsets gamma L_i (L L' = P)"),
     (r"^decl ht\d", "shared subexpressions of h at the sigma points"),
     (r"^(assign|wrap) y\[", "innovation y = z - weighted mean of the sigma points through h"),
@@ -687,6 +697,37 @@ UKF_UPDATE_SECTIONS = (
     (r"^assign Ps\[", "covariance P - K S K', upper triangle, packed"),
     (r"^wrap xs\[", "angle states wrapped to (-pi, pi]"),
 )
+
+
+def _augmented(blk: _Block, spec: ModelSpec, noise: Sequence[sp.Symbol], cov: sp.Matrix, wts: UkfWeights, tag: str
+               ) -> Tuple[Dict[Tuple[int, int], sp.Expr], UkfWeights, Callable[[int, int], sp.Expr]]:
+    """The factor, weights and covariance of the vector the transform spreads: ``x`` alone, or
+    ``[x; noise]`` with covariance blockdiag(P, cov), whose lower factor is blockdiag(Lf, A)
+    with A the noise factor (:func:`estgen.model.noise_factor`: square roots of a diagonal cov,
+    constants when the cov is), and whose weights are those of dimension n + nw."""
+    n, k = spec.n, len(noise)
+    L = _factor_symbols(n)
+    names = c_names(spec, "x")
+    A = noise_factor(cov)
+    for i in range(k):
+        for j in range(i + 1):
+            L[(n + i, n + j)] = blk.value(f"{tag}nf{i}_{j}", A[i, j].xreplace(names))
+        for j in range(n):
+            L[(n + i, j)] = sp.S.Zero
+    aug = UkfWeights(n + k, wts.alpha, wts.beta, wts.kappa) if k else wts
+    cvals: Dict[Tuple[int, int], sp.Expr] = {}
+
+    def entry(i: int, j: int) -> sp.Expr:
+        if i < n and j < n:
+            return _sym(f"P[{packed_index(i, j, n)}]")
+        if i < n or j < n:
+            return sp.S.Zero
+        a, b = sorted((i - n, j - n))
+        if (a, b) not in cvals:
+            cvals[(a, b)] = blk.value(f"{tag}nc{a}_{b}", cov[a, b].xreplace(names))
+        return cvals[(a, b)]
+
+    return L, aug, entry
 
 
 def _factor_symbols(n: int) -> Dict[Tuple[int, int], sp.Expr]:

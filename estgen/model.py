@@ -25,6 +25,8 @@ __all__ = [
     "Model",
     "ModelSpec",
     "SensorSpec",
+    "NoiseSymbol",
+    "noise_factor",
     "Variable",
     "Param",
     "load_model",
@@ -136,6 +138,15 @@ class Param:
 
 
 @dataclass
+class _NoiseDecl:
+    names: List[str]
+    symbols: List[sp.Symbol]
+    cov: Any
+    where: Where
+    inputs: Optional[List[sp.Symbol]] = None  # measured inputs the symbols belong to
+
+
+@dataclass
 class _SensorDecl:
     name: str
     h: Any
@@ -150,8 +161,9 @@ class _SensorDecl:
 class Model:
     """A nonlinear state-space model, declared step by step in a model file.
 
-    Noise is additive: ``x[k+1] = f(x[k], u[k], dt) + w``, ``w ~ N(0, Q)`` and, for each sensor,
-    ``z = h(x) + v``, ``v ~ N(0, R)``.
+    Noise is additive, ``x[k+1] = f(x[k], u[k], dt) + w``, ``w ~ N(0, Q)`` and, for each sensor,
+    ``z = h(x) + v``, ``v ~ N(0, R)``, and may also enter through noise symbols declared with
+    :meth:`noise` (or :meth:`inputs` with ``noise=``) and written into f or one sensor's h.
     """
 
     def __init__(self, name: str) -> None:
@@ -164,6 +176,7 @@ class Model:
         self._process: Optional[Tuple[str, Any, str, Where]] = None
         self._Q: Optional[Tuple[Any, Where]] = None
         self._sensors: List[_SensorDecl] = []
+        self._noise: List[_NoiseDecl] = []
         self._initial: Optional[Tuple[Any, Any, Where]] = None
         self._box: Optional[Tuple[Any, Any]] = None
         self._scenario_dt: Optional[float] = None
@@ -204,10 +217,33 @@ class Model:
         return (out[0], out[1], out[2], out[3])
 
     def inputs(
-        self, names: Union[str, Sequence[str]], *, units: Union[None, str, Sequence[Optional[str]]] = None
+        self, names: Union[str, Sequence[str]], *, units: Union[None, str, Sequence[Optional[str]]] = None,
+        noise: Any = None,
     ) -> Tuple[sp.Symbol, ...]:
-        """Declare the control inputs ``u`` (in vector order)."""
-        return self._declare(self._inputs, names, units, False, _caller_where())
+        """Declare the inputs ``u`` (in vector order).
+
+        ``noise`` (a list of variances, or a covariance matrix; may use parameters and dt) marks
+        them as measured with zero-mean Gaussian error: the value passed to ``predict`` is
+        ``u_meas = u_true + w``. Write the process with the returned symbols as the true input;
+        estgen substitutes ``u_true = u_meas - w`` with one noise symbol ``<name>_noise`` per
+        input, so the noise enters through the dynamics as any noise symbol does.
+        """
+        where = _caller_where()
+        syms = self._declare(self._inputs, names, units, False, where)
+        if noise is not None:
+            nnames = [f"{s}_noise" for s in syms]
+            self._noise.append(_NoiseDecl(nnames, [sp.Symbol(nm) for nm in nnames], noise, where, list(syms)))
+        return syms
+
+    def noise(self, names: Union[str, Sequence[str]], cov: Any) -> Tuple[sp.Symbol, ...]:
+        """Declare zero-mean Gaussian noise symbols with covariance ``cov`` (a list of variances
+        or a matrix; may use parameters and dt). Each symbol must appear in the process or in
+        exactly one sensor's h; symbols of different calls are independent."""
+        where = _caller_where()
+        nnames = _split_names(names)
+        syms = [sp.Symbol(nm) for nm in nnames]
+        self._noise.append(_NoiseDecl(nnames, syms, cov, where))
+        return tuple(syms)
 
     @staticmethod
     def _declare(target: List[Variable], names: Union[str, Sequence[str]],
@@ -261,14 +297,15 @@ class Model:
         self,
         name: str,
         h: Any,
-        noise: Any,
+        noise: Any = None,
         *,
         every: int = 1,
         angles: Any = None,
         gate: Optional[float] = None,
         units: Union[None, str, Sequence[Optional[str]]] = None,
     ) -> None:
-        """A sensor ``z = h(x) + v``. ``noise`` is a list (diagonal R) or a full matrix.
+        """A sensor ``z = h(x) + v``. ``noise`` is a list (diagonal R) or a full matrix; it may be
+        left out when noise symbols in ``h`` reach every component.
 
         ``every``: in simulations the sensor reports every ``every``-th step.
         ``angles``: indices (or a list of booleans) of components that are angles.
@@ -336,10 +373,33 @@ class SensorSpec:
     gate: Optional[float]
     units: Tuple[Optional[str], ...]
     where: Where
+    v: Tuple[sp.Symbol, ...] = ()  # noise symbols in h, in declaration order
+    Rv: sp.Matrix = field(default_factory=lambda: sp.zeros(0, 0))  # their covariance (nv, nv)
 
     @property
     def m(self) -> int:
         return int(self.h.shape[0])
+
+    @property
+    def nv(self) -> int:
+        return len(self.v)
+
+    @property
+    def h0(self) -> sp.Matrix:
+        """h with every noise symbol at zero: the predicted measurement."""
+        return self.h.xreplace({s: sp.S.Zero for s in self.v}) if self.v else self.h
+
+
+@dataclass(frozen=True)
+class NoiseSymbol:
+    """One declared noise symbol: where it enters (``"process"`` or a sensor's name) and, for
+    the noise of a measured input, that input's name (then ``u_true = u_meas - symbol``)."""
+
+    name: str
+    symbol: sp.Symbol
+    enters: str
+    input: Optional[str]
+    where: Optional[Where]
 
 
 @dataclass(frozen=True)
@@ -364,6 +424,8 @@ class ModelSpec:
     where: Dict[str, Where] = field(default_factory=dict)
     #: the uniform prior box (lower, upper) of ``initial_uniform``; None for a Gaussian prior
     prior_box: Optional[Tuple[Tuple[float, ...], Tuple[float, ...]]] = None
+    noise: Tuple[NoiseSymbol, ...] = ()  # every noise symbol, in declaration order
+    Qw: sp.Matrix = field(default_factory=lambda: sp.zeros(0, 0))  # covariance of w_syms (nw, nw)
 
     @property
     def n(self) -> int:
@@ -407,6 +469,21 @@ class ModelSpec:
                 out.append(("attitude", i, e))
                 e += 3
         return out
+
+    @property
+    def w_syms(self) -> List[sp.Symbol]:
+        """The noise symbols in f (x[k+1] = f(x, u, w, dt)), in declaration order."""
+        return [v.symbol for v in self.noise if v.enters == "process"]
+
+    @property
+    def nw(self) -> int:
+        return len(self.w_syms)
+
+    @property
+    def f0(self) -> sp.Matrix:
+        """f with every noise symbol at zero: the predicted mean's map."""
+        w = self.w_syms
+        return self.f.xreplace({s: sp.S.Zero for s in w}) if w else self.f
 
     @property
     def nu(self) -> int:
@@ -713,6 +790,111 @@ def _angle_mask(angles: Any, m: int, where: Where, sname: str) -> Tuple[bool, ..
     return tuple(mask)
 
 
+def noise_factor(cov: sp.Matrix) -> sp.Matrix:
+    """A lower-triangular ``A`` with ``A A' = cov``, symbolically: the square roots of a diagonal
+    covariance (zero variances allowed), else the Cholesky factor (validation has made a
+    correlated covariance definite). The UKF's sigma points of noise symbols use it, in the C
+    and in the reference alike."""
+    k = cov.shape[0]
+    if all(cov[i, j] == 0 for i in range(k) for j in range(k) if i != j):
+        return sp.diag(*[sp.sqrt(cov[i, i]) for i in range(k)]) if k else sp.zeros(0, 0)
+    return cov.cholesky(hermitian=False)
+
+
+def _correlated(a: set, b: set, order: Sequence[sp.Symbol], cov: sp.Matrix) -> bool:
+    """Some noise symbol reaching one component is correlated with one reaching the other."""
+    idx = {s: i for i, s in enumerate(order)}
+    return any(cov[idx[p], idx[q]] != 0 for p in a for q in b)
+
+
+class _NoiseTable:
+    """The declared noise symbols during validation: their covariances, the measured-input
+    substitution and the one place each enters."""
+
+    def __init__(self, model: Model, seen: Dict[str, Tuple[str, Optional[Where]]], kinds: Dict[sp.Symbol, str],
+                 allowed: set, point: Dict[sp.Symbol, float]) -> None:
+        self.decls = model._noise
+        self.symbols: List[sp.Symbol] = []
+        self._group: Dict[sp.Symbol, Tuple[int, int]] = {}
+        self._covs: List[sp.Matrix] = []
+        self._place: Dict[sp.Symbol, Tuple[str, str]] = {}
+        for g, nd in enumerate(self.decls):
+            made = f" (made for the measured input {str(nd.inputs[0])!r})" if nd.inputs else ""
+            if not nd.names:
+                raise ModelError("noise() declares no names; give at least one, e.g. model.noise(\"wa\", cov=[...])",
+                                 nd.where)
+            for i, (nm, sym) in enumerate(zip(nd.names, nd.symbols)):
+                _check_ident(nm, "noise symbol", nd.where)
+                _check_symbol_name(nm, "noise symbol", nd.where)
+                if nm in seen:
+                    raise ModelError(f"noise symbol name {nm!r}{made} is already used by {seen[nm][0]}; "
+                                     f"names must be unique", nd.where)
+                seen[nm] = ("a noise symbol", nd.where)
+                kinds[sym] = "noise symbol"
+                self.symbols.append(sym)
+                self._group[sym] = (g, i)
+        for nd in self.decls:
+            k = len(nd.symbols)
+            what = "inputs() noise" if nd.inputs else f"noise({' '.join(nd.names)!r}) cov"
+            C, _ = _as_square(nd.cov, k, what, nd.where)
+            _check_symbols(C, allowed, what, nd.where, "a noise covariance may use parameters and dt only", kinds)
+            _check_printable(C, what, nd.where)
+            if C != C.T:
+                raise ModelError(f"{what} is not symmetric; make entry (i, j) equal entry (j, i)", nd.where)
+            diag = all(C[i, j] == 0 for i in range(k) for j in range(k) if i != j)
+            # a correlated covariance is factored by Cholesky in the UKF: it must be definite
+            _check_psd(_numeric(C, point, what, nd.where), what, nd.where, strict=not diag)
+            self._covs.append(C)
+
+    def measured_inputs(self, f: sp.Matrix, what: str) -> sp.Matrix:
+        """``f`` with each measured input u replaced by ``u - w`` (u_true = u_meas - w)."""
+        used = set().union(*[e.free_symbols for e in f]) if f.shape[0] else set()
+        sub: Dict[sp.Symbol, sp.Expr] = {}
+        for nd in self.decls:
+            for u, w in zip(nd.inputs or [], nd.symbols):
+                if u not in used:
+                    raise ModelError(f"measured input {str(u)!r} is not used in {what}, so its noise enters nowhere; "
+                                     f"use the input or drop noise=", nd.where)
+                sub[u] = u - w
+        return f.xreplace(sub) if sub else f
+
+    def enter(self, place: str, what: str, mat: sp.Matrix, where: Where) -> List[sp.Symbol]:
+        """Record that the noise symbols in ``mat`` enter ``place``; returns them in declaration order."""
+        used = set().union(*[e.free_symbols for e in mat])
+        out = [s for s in self.symbols if s in used]
+        for s in out:
+            if s in self._place:
+                raise ModelError(f"noise symbol {str(s)!r} enters both {self._place[s][1]} and {what}; a noise symbol "
+                                 f"may enter one place only: declare one per place", where)
+            self._place[s] = (place, what)
+        return out
+
+    def cov(self, syms: Sequence[sp.Symbol]) -> sp.Matrix:
+        """The covariance of ``syms`` (zero between symbols of different declarations)."""
+        def entry(a: sp.Symbol, b: sp.Symbol) -> sp.Expr:
+            (ga, ia), (gb, ib) = self._group[a], self._group[b]
+            return self._covs[ga][ia, ib] if ga == gb else sp.S.Zero
+        return sp.Matrix(len(syms), len(syms), lambda i, j: entry(syms[i], syms[j]))
+
+    def finish(self) -> Tuple[NoiseSymbol, ...]:
+        """Every symbol used once, no correlation between places; the spec's records."""
+        out: List[NoiseSymbol] = []
+        for g, nd in enumerate(self.decls):
+            for i, (nm, sym) in enumerate(zip(nd.names, nd.symbols)):
+                if sym not in self._place:
+                    raise ModelError(f"noise symbol {nm!r} is used nowhere; write it into process() or one sensor's h, "
+                                     f"or remove it", nd.where)
+                for j in range(i):
+                    a, b = self._place[nd.symbols[j]], self._place[sym]
+                    if a[0] != b[0] and self._covs[g][i, j] != 0:
+                        raise ModelError(f"noise symbols {nd.names[j]!r} and {nm!r} are correlated but enter different "
+                                         f"places ({a[1]}, {b[1]}); make them independent or use them in one place",
+                                         nd.where)
+                inp = str(nd.inputs[i]) if nd.inputs else None
+                out.append(NoiseSymbol(nm, sym, self._place[sym][0], inp, nd.where))
+        return tuple(out)
+
+
 def validate(model: Model) -> ModelSpec:
     """Check a :class:`Model` and return the plain :class:`ModelSpec`.
 
@@ -751,17 +933,21 @@ def validate(model: Model) -> ModelSpec:
     kinds.update({s: "state" for s in xs})
     kinds.update({s: "input" for s in us})
     kinds.update({s: "parameter" for s in ps})
+    sim_dt = _to_float(model._scenario_dt, "scenario dt", model._scenario_where) if model._scenario_dt is not None else None
+    noise = _NoiseTable(model, seen, kinds, set(ps) | {dt}, {**subs, dt: sim_dt or 0.01})
+    nset = set(noise.symbols)
 
     # process
     if model._process is None:
         raise ModelError("no dynamics; add model.process([...]) (discrete) or model.dynamics([...]) (continuous)", mw)
     kind, fexpr, method, pw = model._process
     what = "process" if kind == "discrete" else "dynamics"
-    fcol = _as_column(fexpr, f"{what}()", pw)
+    fcol = noise.measured_inputs(_as_column(fexpr, f"{what}()", pw), f"{what}()")
     if fcol.shape[0] != n:
         raise ModelError(f"{what}() has {fcol.shape[0]} entries but the model has {n} states; give one per state", pw)
-    allowed_f = set(xs) | set(us) | set(ps) | {dt}
-    _check_symbols(fcol, allowed_f, f"{what}()", pw, "declare it with model.states(), model.inputs() or model.param()")
+    allowed_f = set(xs) | set(us) | set(ps) | {dt} | nset
+    _check_symbols(fcol, allowed_f, f"{what}()", pw, "declare it with model.states(), model.inputs() or model.param()",
+                   kinds)
     _check_printable(fcol, f"{what}()", pw)
     continuous = None
     if kind == "continuous":
@@ -773,22 +959,26 @@ def validate(model: Model) -> ModelSpec:
         fcol = _discretize(fcol, xs, dt, method)
     else:
         method = "discrete"
+    w_syms = noise.enter("process", f"{what}()", fcol, pw)
 
     # Q
     if model._Q is None:
-        raise ModelError("no process noise; add model.process_noise(Q)", mw)
-    Qraw, qw = model._Q
+        if not w_syms:
+            raise ModelError("no process noise; add model.process_noise(Q) or noise symbols in process()", mw)
     att_idx = [i for i, v in enumerate(model._states) if v.attitude is not None and v.name.endswith("_w")]
     ne = n - len(att_idx)
-    edim = f" (the error dimension: {n} states minus one per attitude)" if att_idx else ""
-    Q, _ = _as_square(Qraw, ne, "process_noise()" + edim, qw)
-    _check_symbols(Q, set(ps) | {dt}, "process_noise()", qw, "Q may use parameters and dt only", kinds)
-    _check_printable(Q, "process_noise()", qw)
-    if Q != Q.T:
-        raise ModelError("process_noise() is not symmetric; make entry (i, j) equal entry (j, i)", qw)
-    sim_dt = _to_float(model._scenario_dt, "scenario dt", model._scenario_where) if model._scenario_dt is not None else None
-    qnum = _numeric(Q, {**subs, dt: sim_dt or 0.01}, "process_noise()", qw)
-    _check_psd(qnum, "process_noise() Q", qw, strict=False)
+    if model._Q is None:
+        Q, qw = sp.zeros(ne, ne), mw
+    else:
+        Qraw, qw = model._Q
+        edim = f" (the error dimension: {n} states minus one per attitude)" if att_idx else ""
+        Q, _ = _as_square(Qraw, ne, "process_noise()" + edim, qw)
+        _check_symbols(Q, set(ps) | {dt}, "process_noise()", qw, "Q may use parameters and dt only", kinds)
+        _check_printable(Q, "process_noise()", qw)
+        if Q != Q.T:
+            raise ModelError("process_noise() is not symmetric; make entry (i, j) equal entry (j, i)", qw)
+        qnum = _numeric(Q, {**subs, dt: sim_dt or 0.01}, "process_noise()", qw)
+        _check_psd(qnum, "process_noise() Q", qw, strict=False)
 
     # sensors
     if not model._sensors:
@@ -802,17 +992,31 @@ def validate(model: Model) -> ModelSpec:
         m = h.shape[0]
         if m == 0:
             raise ModelError(f"sensor {sd.name!r} measures nothing; give at least one expression", sd.where)
-        _check_symbols(h, set(xs) | set(ps), f"sensor {sd.name!r} h", sd.where,
-                       "a measurement may use states and parameters only", kinds)
-        R, as_list = _as_square(sd.noise, m, f"sensor {sd.name!r} noise", sd.where)
+        _check_symbols(h, set(xs) | set(ps) | nset, f"sensor {sd.name!r} h", sd.where,
+                       "a measurement may use states and parameters only, plus noise symbols", kinds)
+        v_syms = noise.enter(sd.name, f"sensor {sd.name!r} h", h, sd.where)
+        if sd.noise is None:
+            if not v_syms:
+                raise ModelError(f"sensor {sd.name!r} has no noise; give noise=[...] or write a noise symbol "
+                                 f"(model.noise) into its h", sd.where)
+            R = sp.zeros(m, m)
+        else:
+            R, _ = _as_square(sd.noise, m, f"sensor {sd.name!r} noise", sd.where)
         _check_symbols(R, set(ps), f"sensor {sd.name!r} noise", sd.where, "R may use parameters only", kinds)
         _check_printable(h, f"sensor {sd.name!r} h", sd.where)
         _check_printable(R, f"sensor {sd.name!r} noise", sd.where)
         if R != R.T:
             raise ModelError(f"sensor {sd.name!r} noise is not symmetric; make entry (i, j) equal entry (j, i)", sd.where)
         rnum = _numeric(R, subs, f"sensor {sd.name!r} noise", sd.where)
-        _check_psd(rnum, f"sensor {sd.name!r} noise R", sd.where, strict=True)
-        diagonal = all(R[i, j] == 0 for i in range(m) for j in range(m) if i != j)
+        _check_psd(rnum, f"sensor {sd.name!r} noise R", sd.where, strict=not v_syms)
+        Rv = noise.cov(v_syms)
+        reach = [h[i].free_symbols & set(v_syms) for i in range(m)]
+        for i in range(m):
+            if not reach[i] and rnum[i, i] <= 0.0:
+                raise ModelError(f"sensor {sd.name!r} component {i} has no noise: no noise symbol reaches it and "
+                                 f"its noise= variance is 0; give it a variance or a noise symbol", sd.where)
+        diagonal = all(R[i, j] == 0 and not _correlated(reach[i], reach[j], v_syms, Rv)
+                       for i in range(m) for j in range(m) if i != j)
         every = sd.every
         if isinstance(every, bool) or not isinstance(every, (int, np.integer)) or every < 1:
             raise ModelError(f"sensor {sd.name!r}: every must be a whole number >= 1, got {every!r}", sd.where)
@@ -826,7 +1030,8 @@ def validate(model: Model) -> ModelSpec:
         except ModelError as err:
             raise ModelError(f"sensor {sd.name!r}: {err.message}", sd.where) from None
         sensors.append(SensorSpec(sd.name, h, R, diagonal, int(every), _angle_mask(sd.angles, m, sd.where, sd.name),
-                                  gate, units, sd.where))
+                                  gate, units, sd.where, tuple(v_syms), Rv))
+    noise_specs = noise.finish()
 
     # initial
     if model._initial is None:
@@ -866,7 +1071,7 @@ def validate(model: Model) -> ModelSpec:
     # f and h must evaluate to finite numbers at the defaults and x0 (catches 1/0 and log(0)
     # early), with the scenario's first input where there is one: zero may be outside its range.
     input_note = "the scenario's input at t = 0" if model._input_profile is not None else "zero input"
-    point = {**subs, **dict(zip(xs, x0)), **dict(zip(us, u0)), dt: sim_dt or 0.01}
+    point = {**subs, **dict(zip(xs, x0)), **dict(zip(us, u0)), dt: sim_dt or 0.01, **{v: 0.0 for v in nset}}
     for label, mat, w in [(what + "()", fcol, pw)] + [(f"sensor {s.name!r} h", s.h, s.where) for s in sensors]:
         try:
             val = np.array(mat.xreplace({k: sp.Float(v) for k, v in point.items()}).evalf(), dtype=complex)
@@ -896,6 +1101,8 @@ def validate(model: Model) -> ModelSpec:
         input_profile=profile,
         where={"model": mw, "process": pw, "Q": qw, "initial": iw},
         prior_box=model._box,
+        noise=noise_specs,
+        Qw=noise.cov(w_syms),
     )
 
 
@@ -1006,6 +1213,9 @@ def check_filter_support(spec: ModelSpec, filt: str) -> None:
                          f"attitudes for {', '.join(ATTITUDE_FILTERS) or 'no filter'}", spec.states[spec.attitudes[0]].where)
     if filt not in ("ekf", "ukf", "pf"):
         raise ModelError(f"unknown filter {filt!r}; use 'ekf', 'ukf' or 'pf'")
+    if filt == "ukf" and spec.attitudes and spec.noise:
+        raise ModelError(f"the UKF does not yet combine attitude states with noise symbols (model {spec.name!r}); "
+                         f"use --filter ekf, or additive noise (process_noise, noise=)", spec.noise[0].where)
     if filt in ("ukf", "pf"):
         return
     src = spec.continuous if spec.continuous is not None else spec.f

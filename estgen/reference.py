@@ -23,7 +23,7 @@ import sympy as sp
 
 from .chi2 import chi2_ppf
 from .errors import ModelError
-from .model import Model, ModelSpec, as_spec, check_filter_support, with_gates
+from .model import Model, ModelSpec, as_spec, check_filter_support, noise_factor, with_gates
 from .status import Status
 
 __all__ = [
@@ -89,7 +89,9 @@ def _jacobian_fn(args: Sequence[sp.Symbol], mat: sp.Matrix, xs: Sequence[sp.Symb
 
 
 class ModelFunctions:
-    """The model's f, F = df/dx, Q, and per sensor h, H = dh/dx and R as numpy functions.
+    """The model's f, F = df/dx, Q, and per sensor h, H = dh/dx and R as numpy functions; with
+    noise symbols also L = df/dw, Qw and its factor, and per sensor M = dh/dv, Rv and its
+    factor. Jacobians are taken at w = 0 (v = 0); f and h take the noise values (default 0).
 
     Parameters are an explicit argument (a tuple in ``spec.params`` order), so the truth of a
     simulation and a filter under test can share these functions yet use different parameters.
@@ -98,19 +100,33 @@ class ModelFunctions:
     def __init__(self, spec: ModelSpec) -> None:
         self.spec = spec
         xs, us, ps, dt = spec.x_syms, spec.u_syms, spec.p_syms, spec.dt
+        ws = spec.w_syms
         self.n = spec.n
         self.nu = spec.nu
+        self.nw = len(ws)
         fargs = [*xs, *us, dt, *ps]
-        self._f = _lambdify(fargs, spec.f)
-        self._F = _jacobian_fn(fargs, spec.f, xs, "process()")
+        self._f = _lambdify(fargs + ws, spec.f)
+        self._F = _jacobian_fn(fargs, spec.f0, xs, "process()")
         self._Q = _lambdify([dt, *ps], spec.Q)
+        zero_w = {w: 0 for w in ws}
+        self._L = _lambdify(fargs, spec.f.jacobian(ws).xreplace(zero_w)) if ws else None
+        self._Qw = _lambdify([dt, *ps], spec.Qw)
+        self._Aw = _lambdify([dt, *ps], noise_factor(spec.Qw))
         self._h: Dict[str, Callable[..., Any]] = {}
         self._H: Dict[str, Callable[..., Any]] = {}
         self._R: Dict[str, Callable[..., Any]] = {}
+        self._Mv: Dict[str, Callable[..., Any]] = {}
+        self._Rv: Dict[str, Callable[..., Any]] = {}
+        self._Av: Dict[str, Callable[..., Any]] = {}
         for s in spec.sensors:
-            self._h[s.name] = _lambdify([*xs, *ps], s.h)
-            self._H[s.name] = _jacobian_fn([*xs, *ps], s.h, xs, f"sensor {s.name!r}")
+            vs = list(s.v)
+            self._h[s.name] = _lambdify([*xs, *ps, *vs], s.h)
+            self._H[s.name] = _jacobian_fn([*xs, *ps], s.h0, xs, f"sensor {s.name!r}")
             self._R[s.name] = _lambdify(list(ps), s.R)
+            if vs:
+                self._Mv[s.name] = _lambdify([*xs, *ps], s.h.jacobian(vs).xreplace({v: 0 for v in vs}))
+                self._Rv[s.name] = _lambdify(list(ps), s.Rv)
+                self._Av[s.name] = _lambdify(list(ps), noise_factor(s.Rv))
         self.ne = spec.ne
         if spec.attitudes:
             from .errorstate import boxplus_symbolic, error_map, retraction_jacobian
@@ -168,6 +184,14 @@ class ModelFunctions:
             return H
         return H @ self._arr(self._M(*x), (self.n, self.ne))
 
+    def L_err(self, x: np.ndarray, u: np.ndarray, dt: float, p: Tuple[float, ...]) -> np.ndarray:
+        """``E(f(x)) df/dw`` (ne, nw) at w = 0; df/dw without attitudes."""
+        L = self.L(x, u, dt, p)
+        if not self.spec.attitudes:
+            return L
+        y = self.f(x, u, dt, p)
+        return self._arr(self._E(*y), (self.ne, self.n)) @ L
+
     def param_tuple(self, params: Mapping[str, float]) -> Tuple[float, ...]:
         """Parameter values in model order."""
         return tuple(float(params[p.name]) for p in self.spec.params)
@@ -176,32 +200,67 @@ class ModelFunctions:
     def _arr(value: Any, shape: Tuple[int, ...]) -> np.ndarray:
         return np.array(value, dtype=float).reshape(shape)
 
-    def f(self, x: np.ndarray, u: np.ndarray, dt: float, p: Tuple[float, ...]) -> np.ndarray:
-        """The discrete map x[k+1] = f(x, u, dt), shape (n,)."""
-        return self._arr(self._f(*x, *u, dt, *p), (self.n,))
+    def f(self, x: np.ndarray, u: np.ndarray, dt: float, p: Tuple[float, ...],
+          w: Optional[np.ndarray] = None) -> np.ndarray:
+        """The discrete map x[k+1] = f(x, u, w, dt), shape (n,); ``w`` (the noise symbols of
+        the process, length nw) defaults to zero."""
+        wv = np.zeros(self.nw) if w is None else w
+        return self._arr(self._f(*x, *u, dt, *p, *wv), (self.n,))
 
     def F(self, x: np.ndarray, u: np.ndarray, dt: float, p: Tuple[float, ...]) -> np.ndarray:
-        """The Jacobian df/dx, shape (n, n)."""
+        """The Jacobian df/dx at w = 0, shape (n, n)."""
         return self._arr(self._F(*x, *u, dt, *p), (self.n, self.n))
 
+    def L(self, x: np.ndarray, u: np.ndarray, dt: float, p: Tuple[float, ...]) -> np.ndarray:
+        """The Jacobian df/dw at w = 0, shape (n, nw)."""
+        if self._L is None:
+            return np.zeros((self.n, 0))
+        return self._arr(self._L(*x, *u, dt, *p), (self.n, self.nw))
+
     def Q(self, dt: float, p: Tuple[float, ...]) -> np.ndarray:
-        """The process noise covariance, shape (ne, ne) (the error dimension)."""
+        """The additive process noise covariance, shape (ne, ne) (the error dimension)."""
         return self._arr(self._Q(dt, *p), (self.spec.ne, self.spec.ne))
 
-    def h(self, sensor: str, x: np.ndarray, p: Tuple[float, ...]) -> np.ndarray:
-        """The sensor's measurement function, shape (m,)."""
-        m = self.spec.sensor(sensor).m
-        return self._arr(self._h[sensor](*x, *p), (m,))
+    def Qw(self, dt: float, p: Tuple[float, ...]) -> np.ndarray:
+        """The covariance of the process noise symbols, shape (nw, nw)."""
+        return self._arr(self._Qw(dt, *p), (self.nw, self.nw))
+
+    def Aw(self, dt: float, p: Tuple[float, ...]) -> np.ndarray:
+        """The factor of Qw the UKF spreads its sigma points with (:func:`estgen.model.noise_factor`)."""
+        return self._arr(self._Aw(dt, *p), (self.nw, self.nw))
+
+    def h(self, sensor: str, x: np.ndarray, p: Tuple[float, ...], v: Optional[np.ndarray] = None) -> np.ndarray:
+        """The sensor's measurement function h(x, v), shape (m,); ``v`` defaults to zero."""
+        s = self.spec.sensor(sensor)
+        vv = np.zeros(s.nv) if v is None else v
+        return self._arr(self._h[sensor](*x, *p, *vv), (s.m,))
 
     def H(self, sensor: str, x: np.ndarray, p: Tuple[float, ...]) -> np.ndarray:
-        """The sensor's Jacobian dh/dx, shape (m, n)."""
+        """The sensor's Jacobian dh/dx at v = 0, shape (m, n)."""
         m = self.spec.sensor(sensor).m
         return self._arr(self._H[sensor](*x, *p), (m, self.n))
 
+    def M(self, sensor: str, x: np.ndarray, p: Tuple[float, ...]) -> np.ndarray:
+        """The sensor's Jacobian dh/dv at v = 0, shape (m, nv)."""
+        s = self.spec.sensor(sensor)
+        if not s.nv:
+            return np.zeros((s.m, 0))
+        return self._arr(self._Mv[sensor](*x, *p), (s.m, s.nv))
+
     def R(self, sensor: str, p: Tuple[float, ...]) -> np.ndarray:
-        """The sensor's noise covariance, shape (m, m)."""
+        """The sensor's additive noise covariance, shape (m, m)."""
         m = self.spec.sensor(sensor).m
         return self._arr(self._R[sensor](*p), (m, m))
+
+    def Rv(self, sensor: str, p: Tuple[float, ...]) -> np.ndarray:
+        """The covariance of the sensor's noise symbols, shape (nv, nv)."""
+        nv = self.spec.sensor(sensor).nv
+        return self._arr(self._Rv[sensor](*p), (nv, nv)) if nv else np.zeros((0, 0))
+
+    def Av(self, sensor: str, p: Tuple[float, ...]) -> np.ndarray:
+        """The factor of Rv the UKF spreads its sigma points with."""
+        nv = self.spec.sensor(sensor).nv
+        return self._arr(self._Av[sensor](*p), (nv, nv)) if nv else np.zeros((0, 0))
 
 
 _FUNCTIONS_CACHE: Dict[int, Tuple[ModelSpec, ModelFunctions]] = {}
@@ -484,7 +543,7 @@ class ReferenceEKF(_ReferenceBase):
     filter = "ekf"
 
     def predict(self, u: Sequence[float], dt: float) -> int:
-        """x = f(x, u, dt); P = F P F' + Q(dt). Returns a :class:`Status` code."""
+        """x = f(x, u, 0, dt); P = F P F' + L Qw L' + Q(dt). Returns a :class:`Status` code."""
         bad, uv, dtf = self._check_predict(u, dt)
         if bad is not None:
             return bad
@@ -493,18 +552,21 @@ class ReferenceEKF(_ReferenceBase):
             xn = self._fn.f(self._x, uv, dtf, p)
             F = self._fn.F_err(self._x, uv, dtf, p)
             Q = self._fn.Q(dtf, p)
-            if not _finite(xn, F, Q):
+            L = self._fn.L_err(self._x, uv, dtf, p)
+            Qw = self._fn.Qw(dtf, p)
+            if not _finite(xn, F, Q, L, Qw):
                 return int(Status.NON_FINITE)
-            Pn = F @ self._P @ F.T + Q
+            Pn = F @ self._P @ F.T + L @ Qw @ L.T + Q
         return self._commit(xn, Pn)
 
     def _innovation(self, sensor: str, z: np.ndarray) -> Union[int, _Innovation]:
-        """Linearize h at x; the covariance update is the Joseph form."""
+        """Linearize h at x and v = 0, R_eff = M Rv M' + R; the covariance update is the Joseph form."""
         p = self._p()
         x, P = self._x, self._P
         hx = self._fn.h(sensor, x, p)
         H = self._fn.H_err(sensor, x, p)
-        R = self._fn.R(sensor, p)
+        M = self._fn.M(sensor, x, p)
+        R = self._fn.R(sensor, p) + M @ self._fn.Rv(sensor, p) @ M.T
         if not _finite(hx, H, R):
             return int(Status.NON_FINITE)
         y = _wrap_masked(z - hx, self._sensor_angles[sensor])
@@ -518,7 +580,10 @@ class ReferenceEKF(_ReferenceBase):
 
 
 class ReferenceUKF(_ReferenceBase):
-    """Unscented Kalman filter with the scaled unscented transform (additive noise)."""
+    """Unscented Kalman filter with the scaled unscented transform. With noise symbols the
+    sigma points are those of the augmented vector ``[x; w]`` (predict) or ``[x; v]`` (an update
+    of a sensor with noise symbols), with the weights of that dimension; additive Q and R are
+    added to the transformed covariance."""
 
     filter = "ukf"
 
@@ -534,8 +599,31 @@ class ReferenceUKF(_ReferenceBase):
         """The mean and covariance weights (Wm, Wc), each of length 2n+1."""
         return self._wm.copy(), self._wc.copy()
 
+    def _points(self, Anoise: np.ndarray) -> Union[int, Tuple[np.ndarray, np.ndarray, np.ndarray]]:
+        """Sigma points of ``[x; noise]`` (rows) with covariance blockdiag(P, A A') and their
+        weights; without noise symbols those of x. A refusal code when P is not positive
+        definite or the noise factor is not finite."""
+        k = Anoise.shape[0]
+        if not k:
+            X = sigma_points(self._x, self._P, self._lam)
+            return int(Status.NOT_POSITIVE_DEFINITE) if X is None else (X, self._wm, self._wc)
+        n = self.n
+        lam, wm, wc = sigma_weights(n + k, self.alpha, self.beta, self.kappa)
+        try:
+            Lp = np.linalg.cholesky(self._P)
+        except np.linalg.LinAlgError:
+            return int(Status.NOT_POSITIVE_DEFINITE)
+        if not _finite(Anoise):
+            return int(Status.NON_FINITE)
+        Laug = np.zeros((n + k, n + k))
+        Laug[:n, :n], Laug[n:, n:] = Lp, Anoise
+        Laug *= math.sqrt(n + k + lam)
+        centre = np.concatenate([self._x, np.zeros(k)])
+        return np.vstack([centre, centre + Laug.T, centre - Laug.T]), wm, wc
+
     def predict(self, u: Sequence[float], dt: float) -> int:
-        """Propagate the sigma points through f; Q is added to their covariance."""
+        """Propagate the sigma points (of ``[x; w]`` with noise symbols) through f; Q is added
+        to their covariance."""
         bad, uv, dtf = self._check_predict(u, dt)
         if bad is not None:
             return bad
@@ -543,16 +631,18 @@ class ReferenceUKF(_ReferenceBase):
         if self.spec.attitudes:
             return self._predict_error_space(uv, dtf, p)
         with np.errstate(all="ignore"):
-            X = sigma_points(self._x, self._P, self._lam)
-            if X is None:
-                return int(Status.NOT_POSITIVE_DEFINITE)
-            Y = np.array([self._fn.f(xi, uv, dtf, p) for xi in X])
+            pts = self._points(self._fn.Aw(dtf, p))
+            if isinstance(pts, int):
+                return pts
+            X, wm, wc = pts
+            n = self.n
+            Y = np.array([self._fn.f(xi[:n], uv, dtf, p, xi[n:]) for xi in X])
             Q = self._fn.Q(dtf, p)
             if not _finite(Y, Q):
                 return int(Status.NON_FINITE)
-            xn = _weighted_mean(Y, self._wm, self._angles)
+            xn = _weighted_mean(Y, wm, self._angles)
             d = _deviations(Y, xn, self._angles)
-            Pn = (d.T * self._wc) @ d + Q
+            Pn = (d.T * wc) @ d + Q
         return self._commit(xn, Pn)
 
     def _predict_error_space(self, uv: np.ndarray, dtf: float, p: Tuple[float, ...]) -> int:
@@ -578,6 +668,7 @@ class ReferenceUKF(_ReferenceBase):
         """Fresh sigma points from (x, P) through h; the covariance update is P - K S K'."""
         p = self._p()
         x, P = self._x, self._P
+        n = self.n
         zang = self._sensor_angles[sensor]
         if self.spec.attitudes:
             E = sigma_points(np.zeros(self.spec.ne), P, self._lam)
@@ -595,19 +686,20 @@ class ReferenceUKF(_ReferenceBase):
             S = (dev.T * self._wc) @ dev + R
             C = (E.T * self._wc) @ dev
             return _wrap_masked(z - (Z[0] + off), zang), S, C, lambda K, S_: P - K @ S_ @ K.T
-        X = sigma_points(x, P, self._lam)
-        if X is None:
-            return int(Status.NOT_POSITIVE_DEFINITE)
-        Z = np.array([self._fn.h(sensor, xi, p) for xi in X])
+        pts = self._points(self._fn.Av(sensor, p))
+        if isinstance(pts, int):
+            return pts
+        X, wm, wc = pts
+        Z = np.array([self._fn.h(sensor, xi[:n], p, xi[n:]) for xi in X])
         R = self._fn.R(sensor, p)
         if not _finite(Z, R):
             return int(Status.NON_FINITE)
-        zhat = _weighted_mean(Z, self._wm, zang)
+        zhat = _weighted_mean(Z, wm, zang)
         dZ = _deviations(Z, zhat, zang)
         # X - x is exactly the +-L column by construction: not wrapped, even for angles
-        dX = X - x
-        S = (dZ.T * self._wc) @ dZ + R
-        C = (dX.T * self._wc) @ dZ
+        dX = X[:, :n] - x
+        S = (dZ.T * wc) @ dZ + R
+        C = (dX.T * wc) @ dZ
         return _wrap_masked(z - zhat, zang), S, C, lambda K, S_: P - K @ S_ @ K.T
 
 

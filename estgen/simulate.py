@@ -123,9 +123,10 @@ def make_scenario(
 ) -> Scenario:
     """Simulate ``steps`` steps of the model's truth and its sensors.
 
-    ``x_true[0] ~ N(x0, P0)``; ``x_true[k+1] = f(x_true[k], u_k, dt) + w``, ``w ~ N(0, Q(dt))``;
-    sensor s reports after step k when ``(k + 1) % every_s == 0`` with ``z = h(x_true[k+1]) + v``,
-    ``v ~ N(0, R)``. ``u_k`` is the model's input profile at ``t_k = k dt`` (zeros without one).
+    ``x_true[0] ~ N(x0, P0)``; ``x_true[k+1] = f(x_true[k], u_k, w_k, dt) + q``, ``q ~ N(0, Q(dt))``,
+    ``w_k ~ N(0, Qw(dt))`` (the noise symbols of the process); sensor s reports after step k when
+    ``(k + 1) % every_s == 0`` with ``z = h(x_true[k+1], v) + r``, ``r ~ N(0, R)``, ``v ~ N(0, Rv)``.
+    For a measured input, ``u_k`` is the measured value: the truth moves with ``u_k - w_k``. ``u_k`` is the model's input profile at ``t_k = k dt`` (zeros without one).
     ``params`` overrides the truth's parameters (the default is the model's defaults).
     """
     spec = as_spec(spec)
@@ -155,13 +156,18 @@ def make_scenario(
 
     Aq = _noise_factor(mf.Q(dtv, p))
     Ar = {s.name: _noise_factor(mf.R(s.name, p)) for s in spec.sensors}
+    Aw = _noise_factor(mf.Qw(dtv, p))
+    Av = {s.name: _noise_factor(mf.Rv(s.name, p)) for s in spec.sensors}
     x = np.array(spec.x0) + _noise_factor(np.array(spec.P0)) @ rng.standard_normal(n)
     x_true = np.empty((steps + 1, n))
     x_true[0] = np.where(angles, wrap_angle(x), x)
     meas: List[List[Tuple[str, np.ndarray]]] = []
     with np.errstate(all="ignore"):
         for k in range(steps):
-            x = mf.f(x_true[k], u[k], dtv, p) + Aq @ rng.standard_normal(n)
+            q = Aq @ rng.standard_normal(n)
+            # noise symbols are drawn only when the model has them: additive models keep their streams
+            w = Aw @ rng.standard_normal(spec.nw) if spec.nw else None
+            x = mf.f(x_true[k], u[k], dtv, p, w) + q
             if angles.any():
                 x[angles] = wrap_angle(x[angles])
             if not np.all(np.isfinite(x)):
@@ -171,7 +177,9 @@ def make_scenario(
             row: List[Tuple[str, np.ndarray]] = []
             for s in spec.sensors:
                 if (k + 1) % ev[s.name] == 0:
-                    z = mf.h(s.name, x, p) + Ar[s.name] @ rng.standard_normal(s.m)
+                    r = Ar[s.name] @ rng.standard_normal(s.m)
+                    v = Av[s.name] @ rng.standard_normal(s.nv) if s.nv else None
+                    z = mf.h(s.name, x, p, v) + r
                     zang = np.array(s.angles, dtype=bool)
                     if zang.any():
                         z[zang] = wrap_angle(z[zang])

@@ -155,13 +155,18 @@ class _Truth:
         f_num = [sp.sympify(e).subs(subs).subs(spec.dt, dt) for e in spec.f]
         # scalar math: faster than numpy for one state at a time, and overflow raises instead of
         # silently producing inf
-        self._f = sp.lambdify([*xs, *us], f_num, modules="math", cse=True)
+        ws = spec.w_syms
+        self._f = sp.lambdify([*xs, *us, *ws], f_num, modules="math", cse=True)
         self._h: Dict[str, List[Callable[..., Any]]] = {}
         for s in spec.sensors:
-            self._h[s.name] = [sp.lambdify(xs, sp.sympify(e).subs(subs), modules="numpy") for e in s.h]
+            self._h[s.name] = [sp.lambdify([*xs, *s.v], sp.sympify(e).subs(subs), modules="numpy") for e in s.h]
         Qn = np.array(spec.Q.subs(subs).subs(spec.dt, dt).evalf(), dtype=float)
         self.Aq = _noise_factor(Qn)
         self.Ar = {s.name: _noise_factor(np.array(s.R.subs(subs).evalf(), dtype=float)) for s in spec.sensors}
+        # noise symbols: drawn and passed through f and h (only when the model has them)
+        self.Aw = _noise_factor(np.array(spec.Qw.subs(subs).subs(spec.dt, dt).evalf(), dtype=float).reshape(len(ws), len(ws)))
+        self.Av = {s.name: _noise_factor(np.array(s.Rv.subs(subs).evalf(), dtype=float).reshape(s.nv, s.nv))
+                   for s in spec.sensors}
         self.angles = np.array(spec.angle_states, dtype=bool)
         self.k = 0
         x = np.array(spec.x0, dtype=float) + _noise_factor(np.array(spec.P0, dtype=float)) @ self.rng.standard_normal(spec.n)
@@ -186,6 +191,8 @@ class _Truth:
         U = np.empty((count, nu))
         X = np.empty((count, n))
         W = self.rng.standard_normal((count, n)) @ self.Aq.T
+        nw = spec.nw
+        Wn = self.rng.standard_normal((count, nw)) @ self.Aw.T if nw else np.zeros((count, 0))
         wrap = bool(self.angles.any())
         x = [float(v) for v in self.x]
         for i in range(count):
@@ -193,7 +200,7 @@ class _Truth:
             u = self.inputs(t)
             U[i] = u
             try:
-                fx = self._f(*x, *u)
+                fx = self._f(*x, *u, *Wn[i])
             except (OverflowError, ValueError, ZeroDivisionError) as err:
                 raise ModelError(f"the simulated truth left the model's domain at step {self.k + i + 1} "
                                  f"(t = {t + self.dt:g}): {err}") from None
@@ -209,8 +216,10 @@ class _Truth:
         steps_done = self.k + 1 + np.arange(count)
         with np.errstate(all="ignore"):
             for s in spec.sensors:
-                rows = [np.broadcast_to(np.asarray(fn(*X.T), dtype=float), (count,)) for fn in self._h[s.name]]
-                z = np.stack(rows, axis=1) + self.rng.standard_normal((count, s.m)) @ self.Ar[s.name].T
+                r = self.rng.standard_normal((count, s.m)) @ self.Ar[s.name].T
+                V = self.rng.standard_normal((count, s.nv)) @ self.Av[s.name].T if s.nv else np.zeros((count, 0))
+                rows = [np.broadcast_to(np.asarray(fn(*X.T, *V.T), dtype=float), (count,)) for fn in self._h[s.name]]
+                z = np.stack(rows, axis=1) + r
                 zang = np.array(s.angles, dtype=bool)
                 if zang.any():
                     z[:, zang] = wrap_angle(z[:, zang])
