@@ -967,11 +967,11 @@ def validate(model: Model) -> ModelSpec:
             raise ModelError("no process noise; add model.process_noise(Q) or noise symbols in process()", mw)
     att_idx = [i for i, v in enumerate(model._states) if v.attitude is not None and v.name.endswith("_w")]
     ne = n - len(att_idx)
+    edim = f" (the error dimension: {n} states minus one per attitude)" if att_idx else ""
     if model._Q is None:
         Q, qw = sp.zeros(ne, ne), mw
     else:
         Qraw, qw = model._Q
-        edim = f" (the error dimension: {n} states minus one per attitude)" if att_idx else ""
         Q, _ = _as_square(Qraw, ne, "process_noise()" + edim, qw)
         _check_symbols(Q, set(ps) | {dt}, "process_noise()", qw, "Q may use parameters and dt only", kinds)
         _check_printable(Q, "process_noise()", qw)
