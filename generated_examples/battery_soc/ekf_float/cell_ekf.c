@@ -120,7 +120,7 @@ int cell_ekf_predict(cell_ekf_t *s, const float *u, float dt)
     const float Q1_1 = 2.5e-07F*dt;
     /* A = F P (the entries P' reads) */
     const float A1_1 = P[3]*t0;
-    /* covariance P' = A F' + Q, upper triangle, packed */
+    /* covariance P' = A F' (+ B G') + Q, upper triangle, packed */
     Pn[0] = P[0] + Q0_0;
     Pn[1] = P[1]*t0;
     Pn[2] = 0.0F;

@@ -170,7 +170,7 @@ int rover_ekf_predict(rover_ekf_t *s, const double *u, double dt)
     const double A1_1 = P[4] + F1_3*P[6] + P[5]*t10;
     const double A1_2 = P[5] + F1_3*P[8] + P[7]*t10;
     const double A1_3 = P[6] + F1_3*P[9] + P[8]*t10;
-    /* covariance P' = A F' + Q, upper triangle, packed */
+    /* covariance P' = A F' (+ B G') + Q, upper triangle, packed */
     Pn[0] = A0_0 + t15 + A0_2*F0_2 + A0_3*F0_3;
     Pn[1] = A0_1 + A0_2*t10 + A0_3*F1_3;
     Pn[2] = A0_2;

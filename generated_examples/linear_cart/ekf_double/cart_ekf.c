@@ -129,7 +129,7 @@ int cart_ekf_predict(cart_ekf_t *s, const double *u, double dt)
     const double A0_2 = P[2] + P[4]*dt + P[5]*t3;
     const double A1_1 = P[3] + P[4]*t4;
     const double A1_2 = P[4] + P[5]*t4;
-    /* covariance P' = A F' + Q, upper triangle, packed */
+    /* covariance P' = A F' (+ B G') + Q, upper triangle, packed */
     Pn[0] = A0_0 + Q0_0 + A0_1*dt + A0_2*t3;
     Pn[1] = A0_1 + Q0_1 + A0_2*t4;
     Pn[2] = A0_2;

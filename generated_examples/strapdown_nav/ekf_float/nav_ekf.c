@@ -593,7 +593,7 @@ int nav_ekf_predict(nav_ekf_t *s, const float *u, float dt)
     const float A8_12 = P[96] + F8_10*P[107] + F8_11*P[111] + F8_7*P[89] + P[81]*t36;
     const float A8_13 = P[97] + F8_10*P[108] + F8_11*P[112] + F8_7*P[90] + P[82]*t36;
     const float A8_14 = P[98] + F8_10*P[109] + F8_11*P[113] + F8_7*P[91] + P[83]*t36;
-    /* covariance P' = A F' + Q, upper triangle, packed */
+    /* covariance P' = A F' (+ B G') + Q, upper triangle, packed */
     Pn[0] = A0_0 + t39 + A0_3*dt;
     Pn[1] = A0_1 + A0_4*dt;
     Pn[2] = A0_2 + A0_5*dt;
