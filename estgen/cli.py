@@ -13,7 +13,7 @@ import os
 import re
 import sys
 import time
-from typing import Dict, List, Optional, Sequence
+from typing import Any, Dict, List, Optional, Sequence
 
 from ._version import __version__
 from .errors import ModelError
@@ -118,6 +118,12 @@ def _cmd_generate(args: argparse.Namespace) -> int:
     from .model import load_model
 
     spec = load_model(args.model)
+    if args.outputs:
+        from .emit import output_names
+
+        for name in output_names(spec, args.filter):
+            print(os.path.join(args.out, name))
+        return 0
     t0 = time.perf_counter()
     gen = generate(spec, filter=args.filter, precision=args.precision, gates=_gates(args),
                    commit_check=args.commit_check, **_ukf_options(args))
@@ -132,6 +138,12 @@ def _cmd_generate(args: argparse.Namespace) -> int:
             return 1
         return 0
     write_generated(gen.files, args.out)
+    if args.depfile:
+        from .buildtools import touch, write_depfile
+
+        outs = [os.path.join(args.out, name) for name in sorted(gen.files)]
+        touch(outs)  # newer than every input, changed or not (see estgen.buildtools)
+        write_depfile(args.depfile, outs, [spec.source, *spec.local_imports])
     if not args.quiet:
         for name in sorted(gen.files):
             print(os.path.join(args.out, name))
@@ -154,6 +166,19 @@ def _cmd_verify(args: argparse.Namespace) -> int:
     return 0 if res.ok else 1
 
 
+class _PrintAndExit(argparse.Action):
+    """A top-level option that prints one line and exits 0 (like --version)."""
+
+    def __init__(self, option_strings: Sequence[str], dest: str, text: Any = None, **kw: Any) -> None:
+        super().__init__(option_strings, dest, nargs=0, default=argparse.SUPPRESS, **kw)
+        self.text = text
+
+    def __call__(self, parser: argparse.ArgumentParser, namespace: argparse.Namespace, values: Any,
+                 option_string: Optional[str] = None) -> None:
+        print(self.text())
+        parser.exit(0)
+
+
 def _parser() -> argparse.ArgumentParser:
     p = argparse.ArgumentParser(
         prog="estgen",
@@ -162,6 +187,8 @@ def _parser() -> argparse.ArgumentParser:
         epilog="Exit codes: 0 ok; 1 check failed (stale files, deviation over tolerance); 2 bad input.",
     )
     p.add_argument("--version", action="version", version=f"estgen {__version__}")
+    p.add_argument("--cmake-dir", action=_PrintAndExit, text=lambda: __import__("estgen.buildtools").buildtools.cmake_dir(),
+                   help="print the folder holding estgen-config.cmake (cmake -Destgen_DIR=\"$(estgen --cmake-dir)\") and exit")
     sub = p.add_subparsers(dest="command", metavar="COMMAND")
 
     g = sub.add_parser("generate", help="write the C header and source for a model",
@@ -171,6 +198,12 @@ def _parser() -> argparse.ArgumentParser:
     g.add_argument("-o", "--out", required=True, metavar="DIR", help="output folder")
     g.add_argument("--check", action="store_true", help="write nothing; exit 1 and list stale files")
     g.add_argument("-q", "--quiet", action="store_true", help="print nothing on success")
+    g.add_argument("--depfile", metavar="FILE",
+                   help="also write FILE, the outputs' dependencies (the model and the local Python files it "
+                        "imports) in the Make rule format compilers write with -MD; outputs are then always "
+                        "rewritten or touched, so Make and Ninja see them newer than their inputs")
+    g.add_argument("--outputs", action="store_true",
+                   help="print the paths generate would write, one a line, and exit (loads the model only)")
     g.set_defaults(func=_cmd_generate)
 
     v = sub.add_parser("verify", help="run the generated C and the reference on the same data and compare",

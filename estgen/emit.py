@@ -530,6 +530,13 @@ def generate_ekf(spec: ModelSpec, precision: str = "float", commit_check: str = 
     return _render(ctx, "ekf.c.j2")
 
 
+def output_names(spec: ModelSpec, filter: str) -> List[str]:
+    """The files :func:`generate` writes for ``spec`` and ``filter``, known without generating
+    (``generate --outputs``; the CMake package declares them at configure time)."""
+    prefix = f"{spec.name}_{filter}"
+    return [f"{prefix}.c", f"{prefix}.h"]
+
+
 def generate(spec: ModelSpec, filter: str = "ekf", precision: str = "float",
              gates: Optional[Dict[str, float]] = None, commit_check: str = "cholesky", **options: Any) -> Generated:
     """Generate C for ``spec``. ``filter`` is "ekf" or "ukf"; UKF options: alpha, beta, kappa.

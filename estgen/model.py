@@ -7,13 +7,14 @@ returns a :class:`ModelSpec`, the plain dataclass every later stage works from.
 
 from __future__ import annotations
 
+import dataclasses
 import math
 import os
 import re
 import sys
 import traceback
 from dataclasses import dataclass, field
-from typing import Any, Callable, Dict, List, Optional, Sequence, Tuple, Union
+from typing import Any, Callable, Dict, Iterable, List, Optional, Sequence, Tuple, Union
 
 import numpy as np
 import sympy as sp
@@ -426,6 +427,9 @@ class ModelSpec:
     prior_box: Optional[Tuple[Tuple[float, ...], Tuple[float, ...]]] = None
     noise: Tuple[NoiseSymbol, ...] = ()  # every noise symbol, in declaration order
     Qw: sp.Matrix = field(default_factory=lambda: sp.zeros(0, 0))  # covariance of w_syms (nw, nw)
+    #: absolute paths of the user's own Python files the model file imported (not the standard
+    #: library, not installed packages, not estgen): what a build must watch besides the model
+    local_imports: Tuple[str, ...] = ()
 
     @property
     def n(self) -> int:
@@ -546,6 +550,7 @@ def load_model(path: Union[str, os.PathLike]) -> ModelSpec:
     namespace: Dict[str, Any] = {"__name__": "estgen_model", "__file__": os.path.abspath(path)}
     model_dir = os.path.dirname(os.path.abspath(path))
     sys.path.insert(0, model_dir)
+    before = set(sys.modules)
     try:
         exec(code, namespace)
     except ModelError as err:
@@ -564,7 +569,44 @@ def load_model(path: Union[str, os.PathLike]) -> ModelSpec:
         raise ModelError(f"'model' is a {type(model).__name__}, not an estgen.Model; "
                          f"assign model = Model(\"name\") and declare on it", Where(path))
     model.source = path
-    return validate(model)
+    spec = validate(model)
+    local = _local_files(sys.modules[name] for name in set(sys.modules) - before)
+    return dataclasses.replace(spec, local_imports=local) if local else spec
+
+
+def _installed_roots() -> Tuple[str, ...]:
+    """Folders whose Python files are not the user's: the standard library, site-packages
+    (system, virtual environment, user) and estgen itself."""
+    import site
+    import sysconfig
+
+    roots = {_PKG_DIR}
+    for key in ("stdlib", "platstdlib", "purelib", "platlib"):
+        p = sysconfig.get_paths().get(key)
+        if p:
+            roots.add(p)
+    try:
+        roots.update(site.getsitepackages())
+    except AttributeError:  # some virtualenv layouts
+        pass
+    user = getattr(site, "getusersitepackages", lambda: None)()
+    if user:
+        roots.add(user)
+    return tuple(os.path.realpath(r) + os.sep for r in roots)
+
+
+def _local_files(modules: Iterable[Any]) -> Tuple[str, ...]:
+    """Files of the ``modules`` that are the user's own code (see :func:`_installed_roots`)."""
+    roots = _installed_roots()
+    out = set()
+    for mod in modules:
+        f = getattr(mod, "__file__", None)
+        if not f or not os.path.isfile(f):
+            continue
+        real = os.path.realpath(f)
+        if not real.startswith(roots):
+            out.add(os.path.abspath(f))
+    return tuple(sorted(out))
 
 
 def _short(err: BaseException, limit: int = 160) -> str:
@@ -1244,8 +1286,6 @@ def with_gates(spec: ModelSpec, gates: Optional[Dict[str, float]]) -> ModelSpec:
     file's), as given to the generator by ``--gate SENSOR=P``."""
     if not gates:
         return spec
-    import dataclasses
-
     names = {s.name for s in spec.sensors}
     for name, prob in gates.items():
         if name not in names:

@@ -1,0 +1,11 @@
+# Version check for find_package(estgen <version>): read from the package's _version.py.
+file(STRINGS "${CMAKE_CURRENT_LIST_DIR}/../_version.py" _estgen_v REGEX "^__version__ *= *\"[^\"]+\"")
+string(REGEX REPLACE "^__version__ *= *\"([^\"]+)\".*" "\\1" PACKAGE_VERSION "${_estgen_v}")
+if(PACKAGE_FIND_VERSION AND PACKAGE_VERSION VERSION_LESS PACKAGE_FIND_VERSION)
+  set(PACKAGE_VERSION_COMPATIBLE FALSE)
+else()
+  set(PACKAGE_VERSION_COMPATIBLE TRUE)
+  if(PACKAGE_FIND_VERSION AND PACKAGE_VERSION VERSION_EQUAL PACKAGE_FIND_VERSION)
+    set(PACKAGE_VERSION_EXACT TRUE)
+  endif()
+endif()
