@@ -158,16 +158,19 @@ def make_scenario(
     Ar = {s.name: _noise_factor(mf.R(s.name, p)) for s in spec.sensors}
     Aw = _noise_factor(mf.Qw(dtv, p))
     Av = {s.name: _noise_factor(mf.Rv(s.name, p)) for s in spec.sensors}
-    x = np.array(spec.x0) + _noise_factor(np.array(spec.P0)) @ rng.standard_normal(n)
+    # additive noise lives in the error space (ne; = n without attitudes): x ⊞ q applies an
+    # attitude's part through quat.exp, q ⊗ exp(q_att)
+    ne = spec.ne
+    x = mf.boxplus(np.array(spec.x0, dtype=float), _noise_factor(np.array(spec.P0)) @ rng.standard_normal(ne))
     x_true = np.empty((steps + 1, n))
     x_true[0] = np.where(angles, wrap_angle(x), x)
     meas: List[List[Tuple[str, np.ndarray]]] = []
     with np.errstate(all="ignore"):
         for k in range(steps):
-            q = Aq @ rng.standard_normal(n)
+            q = Aq @ rng.standard_normal(ne)
             # noise symbols are drawn only when the model has them: additive models keep their streams
             w = Aw @ rng.standard_normal(spec.nw) if spec.nw else None
-            x = mf.f(x_true[k], u[k], dtv, p, w) + q
+            x = mf.boxplus(mf.f(x_true[k], u[k], dtv, p, w), q)
             if angles.any():
                 x[angles] = wrap_angle(x[angles])
             if not np.all(np.isfinite(x)):
@@ -197,8 +200,9 @@ def run_filter(filt: Any, scenario: Scenario) -> Dict[str, Any]:
     """
     steps = scenario.steps
     n = int(filt.n)
+    ne = int(filt.P.shape[0])  # n minus one per attitude
     xs = np.empty((steps + 1, n))
-    Ps = np.empty((steps + 1, n, n))
+    Ps = np.empty((steps + 1, ne, ne))
     xs[0], Ps[0] = filt.x, filt.P
     pst = np.zeros(steps, dtype=int)
     ust = {s: np.full(steps, -1, dtype=int) for s in filt.sensors}
@@ -410,8 +414,13 @@ def score_run(spec: ModelSpec, sc: Scenario, out: Dict[str, Any], keep_run: bool
     and the refusals; with ``keep_run``, also the run itself (``run0``: t, x_true, x, P) for plots.
     The input of :func:`summarize_runs`."""
     angles = np.array(spec.angle_states, dtype=bool)
-    err = out["x"][1:] - sc.x_true[1:]
-    if angles.any():
+    if spec.attitudes:
+        # the error e with x_true = x_est ⊞ e (attitudes: body-frame rotation vector)
+        mf = model_functions(spec)
+        err = np.array([mf.boxminus(xt, xe) for xt, xe in zip(sc.x_true[1:], out["x"][1:])])
+    else:
+        err = out["x"][1:] - sc.x_true[1:]
+    if angles.any() and not spec.attitudes:
         err[:, angles] = wrap_angle(err[:, angles])
     nees = np.full(sc.steps, np.nan)
     for k in range(sc.steps):
@@ -424,8 +433,21 @@ def score_run(spec: ModelSpec, sc: Scenario, out: Dict[str, Any], keep_run: bool
             pass  # a P that is not positive definite has no NEES; the step is left out
     res: Dict[str, Any] = {"nees": nees, "sq_err": err ** 2, "nis": out["nis"], "refusals": out["refusals"]}
     if keep_run:
-        res["run0"] = {"t": np.arange(sc.steps + 1) * sc.dt, "x_true": sc.x_true, "x": out["x"], "P": out["P"]}
+        res["run0"] = {"t": np.arange(sc.steps + 1) * sc.dt, "x_true": _error_view(spec, sc.x_true),
+                       "x": _error_view(spec, out["x"]), "P": out["P"]}
     return res
+
+
+def _error_view(spec: ModelSpec, X: np.ndarray) -> np.ndarray:
+    """States as plotted and tabulated: one column per covariance component (an attitude as its
+    rotation vector from the identity, rad; the rest as they are)."""
+    if not spec.attitudes:
+        return X
+    mf = model_functions(spec)
+    origin = np.zeros(spec.n)
+    for i in spec.attitudes:
+        origin[i] = 1.0
+    return np.array([mf.boxminus(x, origin) for x in X])
 
 
 def monte_carlo(
@@ -459,7 +481,7 @@ def monte_carlo(
     spec = as_spec(spec)
     check_filter_support(spec, filter)
     if filter == "ukf":
-        check_ukf_parameters(spec.n, alpha, beta, kappa)
+        check_ukf_parameters(spec.ne, alpha, beta, kappa)
     if precision not in ("float", "double"):
         raise ModelError(f"unknown precision {precision!r}; use 'float' or 'double'")
     runs, steps = int(runs), int(steps)
@@ -530,8 +552,8 @@ def summarize_runs(spec: ModelSpec, filter: str, use_reference: bool, precision:
     with np.errstate(all="ignore"):
         # a step where some run has no NEES (refused P) is averaged over the runs that have one
         nees_mean = _nanmean_rows(nees_runs)
-    lo, hi = chi2_bounds(runs, spec.n)
-    nees = StatSummary(nees_mean, step_no, spec.n, lo, hi)
+    lo, hi = chi2_bounds(runs, spec.ne)  # NEES has the error dimension (n minus one per attitude)
+    nees = StatSummary(nees_mean, step_no, spec.ne, lo, hi)
     nis: Dict[str, StatSummary] = {}
     for s in spec.sensors:
         vals = np.array([r["nis"][s.name] for r in results])
@@ -539,7 +561,8 @@ def summarize_runs(spec: ModelSpec, filter: str, use_reference: bool, precision:
         lo, hi = chi2_bounds(runs, s.m)
         nis[s.name] = StatSummary(_nanmean_rows(vals[:, reported]), step_no[reported], s.m, lo, hi)
     sq = np.array([r["sq_err"] for r in results])  # (runs, steps, n)
-    rmse = {st.name: float(np.sqrt(np.mean(sq[:, :, i]))) for i, st in enumerate(spec.states)}
+    names, units, angles = _error_columns(spec)
+    rmse = {nm: float(np.sqrt(np.mean(sq[:, :, i]))) for i, nm in enumerate(names)}
     refusals: Dict[str, int] = {}
     for r in results:
         for code, count in r["refusals"].items():
@@ -549,10 +572,22 @@ def summarize_runs(spec: ModelSpec, filter: str, use_reference: bool, precision:
     run0 = next((r["run0"] for r in results if "run0" in r), {})
     return MonteCarloResult(
         model=spec.name, filter=filter, implementation=impl, runs=runs, steps=steps, seed=seed, dt=dt,
-        states=[s.name for s in spec.states], units=[s.unit for s in spec.states],
-        angles=list(spec.angle_states), nees=nees, nis=nis,
+        states=names, units=units, angles=angles, nees=nees, nis=nis,
         rmse=rmse, refusals=refusals, filter_params=fparams, set_params=changed, seconds=seconds, run0=run0,
     )
+
+
+def _error_columns(spec: ModelSpec) -> Tuple[List[str], List[Optional[str]], List[bool]]:
+    """Names, units and angle flags of the covariance's components (see :func:`_error_view`)."""
+    if not spec.attitudes:
+        return [s.name for s in spec.states], [s.unit for s in spec.states], list(spec.angle_states)
+    units: List[Optional[str]] = []
+    angles: List[bool] = []
+    for kind, xi, _ in spec.error_blocks():
+        st = spec.states[xi]
+        units += [st.unit] if kind == "real" else ["rad"] * 3
+        angles += [st.angle] if kind == "real" else [False] * 3
+    return list(spec.error_names), units, angles
 
 
 def _nanmean_rows(vals: np.ndarray) -> np.ndarray:

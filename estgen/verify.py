@@ -63,6 +63,20 @@ class VerifyResult:
         }
 
 
+def _state_sigma(spec: ModelSpec, sig: np.ndarray) -> np.ndarray:
+    """Standard deviations per entry of x from those of the covariance (k, ne): an attitude's
+    four entries move by about half its rotation error, so they get half the rms of its three."""
+    if not spec.attitudes:
+        return sig
+    out = np.empty((sig.shape[0], spec.n))
+    for kind, xi, ei in spec.error_blocks():
+        if kind == "real":
+            out[:, xi] = sig[:, ei]
+        else:
+            out[:, xi:xi + 4] = 0.5 * np.sqrt(np.mean(sig[:, ei:ei + 3] ** 2, axis=1))[:, None]
+    return out
+
+
 def verify(model: Any, filter: str = "ekf", precision: str = "double", steps: int = 200, seed: int = 0,
            dt: Optional[float] = None, gates: Optional[Dict[str, float]] = None, commit_check: str = "cholesky",
            **options: Any) -> VerifyResult:
@@ -84,10 +98,11 @@ def verify(model: Any, filter: str = "ekf", precision: str = "double", steps: in
     xr, xc = rr["x"], rc["x"]
     Pr, Pc = rr["P"], rc["P"]
     sig = np.sqrt(np.maximum(np.einsum("kii->ki", Pr), 0.0))
+    xsig = _state_sigma(spec, sig)
     if precision == "double":
-        xscale = np.maximum(np.abs(xr), sig)
+        xscale = np.maximum(np.abs(xr), xsig)
     else:
-        xscale = sig
+        xscale = xsig
     with np.errstate(divide="ignore", invalid="ignore"):
         dx = np.abs(xc - xr)
         ndx = np.where(xscale > 0, dx / xscale, np.where(dx > 0, np.inf, 0.0))

@@ -15,5 +15,6 @@ model.process([*qn, bx, by, bz])
 model.process_noise(sp.diag(*([1e-4 * dt] * 3 + [1e-8 * dt] * 3)))
 model.sensor("acc", quat.rotate(quat.conj(q), [0, 0, -9.81]), noise=[0.05] * 3)   # quat.rotate(q, v) = q v q*
 model.sensor("mag", quat.rotate(quat.conj(q), [0.4, 0.0, 0.3]), noise=[0.01] * 3, every=5)
-model.initial([1.0, 0.0, 0.0, 0.0, 0.0, 0.0, 0.0], sp.diag(0.1, 0.1, 0.1, 1e-4, 1e-4, 1e-4))
-model.scenario(dt=0.01, inputs=lambda t: [1.5 * math.sin(0.7 * t), 2.0, -1.0 + 0.5 * math.cos(0.3 * t)])
+model.initial([1.0, 0.0, 0.0, 0.0, 0.0, 0.0, 0.0], sp.diag(0.01, 0.01, 0.01, 1e-4, 1e-4, 1e-4))
+model.scenario(dt=0.01, inputs=lambda t: [1.0 + 2.5 * math.sin(0.37 * t), 0.5 + 3.0 * math.cos(0.61 * t),
+                                          1.5 * math.sin(0.23 * t)])  # tumbles through every attitude in 20 s
