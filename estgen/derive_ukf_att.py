@@ -136,7 +136,7 @@ def derive_ukf_attitude_predict(spec: ModelSpec, wts: UkfWeights) -> UkfPredictC
     blk = _Block()
     offs = _offsets(blk, ne, wts, "f")
     qitems = [(f"Q{i}_{j}", spec.Q[i, j]) for i in range(ne) for j in range(i, ne) if not spec.Q[i, j].is_Number]
-    imgs, qv = _images(blk, spec, spec.f, offs, qitems, "f")
+    imgs, qv = _images(blk, spec, spec.f0, offs, qitems, "f")
     wrap = _Wraps(blk)
     d = _state_errors(blk, spec, imgs, wrap, "f")
     dbar, dev = _mean_and_spread(blk, d, wts, "f")
@@ -164,7 +164,7 @@ def derive_ukf_attitude_update(sensor: SensorSpec, spec: ModelSpec, wts: UkfWeig
     blk = _Block()
     offs = _offsets(blk, ne, wts, "h")
     ritems = [(f"R{i}_{j}", sensor.R[i, j]) for i in range(m) for j in range(i, m) if not sensor.R[i, j].is_Number]
-    imgs, rv = _images(blk, spec, sensor.h, offs, ritems, "h")
+    imgs, rv = _images(blk, spec, sensor.h0, offs, ritems, "h")
     wrap = _Wraps(blk)
     d: List[List[sp.Expr]] = [[sp.S.Zero] * m]
     for i in range(1, len(imgs)):
