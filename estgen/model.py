@@ -233,7 +233,7 @@ class Model:
         syms = self._declare(self._inputs, names, units, False, where)
         if noise is not None:
             nnames = [f"{s}_noise" for s in syms]
-            self._noise.append(_NoiseDecl(nnames, [sp.Symbol(nm) for nm in nnames], noise, where, list(syms)))
+            self._noise.append(_NoiseDecl(nnames, [sp.Symbol(nm, real=True) for nm in nnames], noise, where, list(syms)))
         return syms
 
     def noise(self, names: Union[str, Sequence[str]], cov: Any) -> Tuple[sp.Symbol, ...]:
@@ -242,7 +242,7 @@ class Model:
         exactly one sensor's h; symbols of different calls are independent."""
         where = _caller_where()
         nnames = _split_names(names)
-        syms = [sp.Symbol(nm) for nm in nnames]
+        syms = [sp.Symbol(nm, real=True) for nm in nnames]  # real: distinct from a state of the same name
         self._noise.append(_NoiseDecl(nnames, syms, cov, where))
         return tuple(syms)
 
@@ -853,28 +853,33 @@ class _NoiseTable:
     """The declared noise symbols during validation: their covariances, the measured-input
     substitution and the one place each enters."""
 
-    def __init__(self, model: Model, seen: Dict[str, Tuple[str, Optional[Where]]], kinds: Dict[sp.Symbol, str],
-                 allowed: set, point: Dict[sp.Symbol, float]) -> None:
+    def __init__(self, model: Model, kinds: Dict[sp.Symbol, str], allowed: set, point: Dict[sp.Symbol, float]
+                 ) -> None:
         self.decls = model._noise
         self.symbols: List[sp.Symbol] = []
         self._group: Dict[sp.Symbol, Tuple[int, int]] = {}
         self._covs: List[sp.Matrix] = []
         self._place: Dict[sp.Symbol, Tuple[str, str]] = {}
+        # The user's noise symbols are real-valued Symbols, distinct from a state or parameter
+        # of the same name (the contract's example has a state v and a noise symbol v); the spec
+        # carries them renamed to "_<name>", which no declared name can be.
+        self._internal: Dict[sp.Symbol, sp.Symbol] = {}
+        names: Dict[str, Where] = {}
         for g, nd in enumerate(self.decls):
-            made = f" (made for the measured input {str(nd.inputs[0])!r})" if nd.inputs else ""
             if not nd.names:
                 raise ModelError("noise() declares no names; give at least one, e.g. model.noise(\"wa\", cov=[...])",
                                  nd.where)
             for i, (nm, sym) in enumerate(zip(nd.names, nd.symbols)):
                 _check_ident(nm, "noise symbol", nd.where)
-                _check_symbol_name(nm, "noise symbol", nd.where)
-                if nm in seen:
-                    raise ModelError(f"noise symbol name {nm!r}{made} is already used by {seen[nm][0]}; "
-                                     f"names must be unique", nd.where)
-                seen[nm] = ("a noise symbol", nd.where)
-                kinds[sym] = "noise symbol"
-                self.symbols.append(sym)
-                self._group[sym] = (g, i)
+                if nm in names:
+                    raise ModelError(f"noise symbol {nm!r} is already declared at line {names[nm].line}; "
+                                     f"noise symbol names must be unique", nd.where)
+                names[nm] = nd.where
+                internal = sp.Symbol("_" + nm)
+                self._internal[sym] = internal
+                kinds[sym] = kinds[internal] = "noise symbol"
+                self.symbols.append(internal)
+                self._group[internal] = (g, i)
         for nd in self.decls:
             k = len(nd.symbols)
             what = "inputs() noise" if nd.inputs else f"noise({' '.join(nd.names)!r}) cov"
@@ -897,8 +902,12 @@ class _NoiseTable:
                 if u not in used:
                     raise ModelError(f"measured input {str(u)!r} is not used in {what}, so its noise enters nowhere; "
                                      f"use the input or drop noise=", nd.where)
-                sub[u] = u - w
-        return f.xreplace(sub) if sub else f
+                sub[u] = u - self._internal[w]
+        return self.rename(f.xreplace(sub) if sub else f)
+
+    def rename(self, mat: sp.Matrix) -> sp.Matrix:
+        """``mat`` with the user's noise symbols replaced by the spec's."""
+        return mat.xreplace(self._internal) if self._internal else mat
 
     def enter(self, place: str, what: str, mat: sp.Matrix, where: Where) -> List[sp.Symbol]:
         """Record that the noise symbols in ``mat`` enter ``place``; returns them in declaration order."""
@@ -922,12 +931,13 @@ class _NoiseTable:
         """Every symbol used once, no correlation between places; the spec's records."""
         out: List[NoiseSymbol] = []
         for g, nd in enumerate(self.decls):
-            for i, (nm, sym) in enumerate(zip(nd.names, nd.symbols)):
+            for i, (nm, usym) in enumerate(zip(nd.names, nd.symbols)):
+                sym = self._internal[usym]
                 if sym not in self._place:
                     raise ModelError(f"noise symbol {nm!r} is used nowhere; write it into process() or one sensor's h, "
                                      f"or remove it", nd.where)
                 for j in range(i):
-                    a, b = self._place[nd.symbols[j]], self._place[sym]
+                    a, b = self._place[self._internal[nd.symbols[j]]], self._place[sym]
                     if a[0] != b[0] and self._covs[g][i, j] != 0:
                         raise ModelError(f"noise symbols {nd.names[j]!r} and {nm!r} are correlated but enter different "
                                          f"places ({a[1]}, {b[1]}); make them independent or use them in one place",
@@ -976,7 +986,7 @@ def validate(model: Model) -> ModelSpec:
     kinds.update({s: "input" for s in us})
     kinds.update({s: "parameter" for s in ps})
     sim_dt = _to_float(model._scenario_dt, "scenario dt", model._scenario_where) if model._scenario_dt is not None else None
-    noise = _NoiseTable(model, seen, kinds, set(ps) | {dt}, {**subs, dt: sim_dt or 0.01})
+    noise = _NoiseTable(model, kinds, set(ps) | {dt}, {**subs, dt: sim_dt or 0.01})
     nset = set(noise.symbols)
 
     # process
@@ -1030,7 +1040,7 @@ def validate(model: Model) -> ModelSpec:
         _check_ident(sd.name, "sensor", sd.where)
         if any(s.name == sd.name for s in sensors):
             raise ModelError(f"sensor {sd.name!r} is declared twice; sensor names must be unique", sd.where)
-        h = _as_column(sd.h, f"sensor {sd.name!r} h", sd.where)
+        h = noise.rename(_as_column(sd.h, f"sensor {sd.name!r} h", sd.where))
         m = h.shape[0]
         if m == 0:
             raise ModelError(f"sensor {sd.name!r} measures nothing; give at least one expression", sd.where)
