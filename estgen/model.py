@@ -915,7 +915,7 @@ class _NoiseTable:
         out = [s for s in self.symbols if s in used]
         for s in out:
             if s in self._place:
-                raise ModelError(f"noise symbol {str(s)!r} enters both {self._place[s][1]} and {what}; a noise symbol "
+                raise ModelError(f"noise symbol {str(s)[1:]!r} enters both {self._place[s][1]} and {what}; a noise symbol "
                                  f"may enter one place only: declare one per place", where)
             self._place[s] = (place, what)
         return out

@@ -99,6 +99,27 @@ CASES: Tuple[Tuple[str, Optional[int], Tuple[str, ...], bool], ...] = (
                                                "quat.mul(q, quat.exp("), False),
     ("attitude_name_bad.py", 5, ("attitude name 'body attitude' is not a safe C identifier", "letters"), False),
     ("attitude_in_pf.py", 5, ("particle filter does not take attitude states", "--filter ekf"), "pf"),
+    # noise symbols (contract section 5): one place each, a covariance of the right size that is
+    # positive semidefinite, never inside Q or R, and every sensor component reached by some noise
+    ("noise_used_twice.py", 9, ("noise symbol 'wt' enters both process() and sensor 'probe' h",
+                                "one place only"), False),
+    ("noise_in_two_sensors.py", 10, ("noise symbol 'vb' enters both sensor 'probe' h and sensor 'second' h",
+                                     "declare one per place"), False),
+    ("noise_unused.py", 6, ("noise symbol 'wl' is used nowhere", "or remove it"), False),
+    ("noise_cov_wrong_size.py", 6, ("cov must be 2x2, got 3x3", "list of 2 variances"), False),
+    ("noise_cov_not_psd.py", 6, ("cov is not positive definite", "smallest eigenvalue"), False),
+    ("noise_cov_uses_state.py", 6, ("cov uses state 'temp'", "parameters and dt only"), False),
+    ("noise_in_q.py", 8, ("process_noise() uses noise symbol 'wt'", "parameters and dt only"), False),
+    ("noise_in_r.py", 9, ("sensor 'probe' noise uses noise symbol 'vb'", "parameters only"), False),
+    ("noise_sensor_none.py", 8, ("sensor 'probe' has no noise", "noise=[...] or write a noise symbol"), False),
+    ("noise_component_uncovered.py", 9, ("sensor 'pair' component 1 has no noise", "give it a variance"), False),
+    ("noise_correlated_across.py", 6, ("'wt' and 'vb' are correlated but enter different places",
+                                       "make them independent"), False),
+    ("noise_measured_input_unused.py", 6, ("measured input 'fan' is not used in process()", "drop noise="), False),
+    ("noise_declared_twice.py", 7, ("noise symbol 'wt' is already declared at line 6", "must be unique"), False),
+    ("noise_no_process_noise.py", 4, ("no process noise", "noise symbols in process()"), False),
+    ("noise_ukf_attitude.py", 6, ("UKF does not yet combine attitude states with noise symbols", "--filter ekf"),
+     "ukf"),
 )
 
 

@@ -1,0 +1,10 @@
+import sympy as sp
+from estgen import Model
+
+model = Model("block")
+temp, lag = model.states("temp lag")
+wt, vb = model.noise("wt vb", cov=sp.Matrix([[1e-4, 1e-5], [1e-5, 1e-2]]))
+model.process([temp + 0.01 * lag + wt, 0.9 * lag])
+model.process_noise([0.0, 1e-4])
+model.sensor("probe", [temp + vb])
+model.initial([20.0, 0.0], [1.0, 1.0])
