@@ -4,7 +4,7 @@ The public interface::
 
     import estgen
     m = estgen.load_model("model.py")                 # validated ModelSpec
-    c = estgen.build(m, filter="ekf", precision="double")   # the generated C through cffi
+    c = estgen.build(m, filter="ekf")                 # the generated C (float) through cffi
     r = estgen.reference(m, filter="ekf")               # the numpy reference filter
 """
 
@@ -39,7 +39,7 @@ __all__ = [
 ]
 
 
-def build(model: Any, filter: str = "ekf", precision: str = "double", **options: Any) -> Any:
+def build(model: Any, filter: str = "ekf", precision: str = "float", **options: Any) -> Any:
     """Generate C for ``model``, compile it through cffi and return a filter object with the
     reference's interface (predict, update, x, P, set_state). See :mod:`estgen.build`."""
     return _build_module.build(model, filter=filter, precision=precision, **options)

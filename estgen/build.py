@@ -223,7 +223,7 @@ class CFilter:
         return bytes(self._ffi.buffer(self._s))
 
 
-def build(model: Any, filter: str = "ekf", precision: str = "double", *, cflags: Optional[Sequence[str]] = None,
+def build(model: Any, filter: str = "ekf", precision: str = "float", *, cflags: Optional[Sequence[str]] = None,
           ldflags: Optional[Sequence[str]] = None, gates: Optional[Dict[str, float]] = None,
           **options: Any) -> CFilter:
     """Generate, compile (cached) and load the C filter for ``model``.

@@ -157,9 +157,13 @@ def _cmd_generate(args: argparse.Namespace) -> int:
 def _cmd_verify(args: argparse.Namespace) -> int:
     from .verify import format_result, verify
 
+    from .progress import wanted
+
     res = verify(args.model, filter=args.filter, precision=args.precision, steps=args.steps, seed=args.seed,
-                 dt=args.dt, gates=_gates(args), commit_check=args.commit_check, **_ukf_options(args))
-    print(format_result(res))
+                 dt=args.dt, gates=_gates(args), commit_check=args.commit_check,
+                 progress=wanted(args.quiet, args.progress), **_ukf_options(args))
+    text = format_result(res)
+    print(text.splitlines()[-1].strip() if args.quiet else text)
     if args.json:
         with open(args.json, "w", encoding="utf-8") as fh:
             json.dump(res.as_dict(), fh, indent=2)
@@ -177,6 +181,19 @@ class _PrintAndExit(argparse.Action):
                  option_string: Optional[str] = None) -> None:
         print(self.text())
         parser.exit(0)
+
+
+def _cmd_replay(args: argparse.Namespace) -> int:
+    from .cross import write_replay
+    from .model import load_model
+    from .simulate import make_scenario
+
+    spec = load_model(args.model)
+    scen = make_scenario(spec, args.steps, args.seed)
+    path = write_replay(spec, args.filter, args.precision, scen, args.out)
+    if not args.quiet:
+        print(path)
+    return 0
 
 
 def _parser() -> argparse.ArgumentParser:
@@ -210,11 +227,13 @@ def _parser() -> argparse.ArgumentParser:
                        description="Simulate truth and measurements from MODEL, run the compiled C and the numpy "
                                    "reference on them, print the largest deviations of x and P. Tolerance: "
                                    "double relative 1e-9; float 0.01 sigma. Exit 0 equal, 1 not, 2 bad input.")
-    _add_filter_args(v, "double")
+    _add_filter_args(v, "float")
     v.add_argument("--steps", type=int, default=200, help="simulated steps (default 200)")
     v.add_argument("--seed", type=int, default=0, help="random seed (default 0)")
     v.add_argument("--dt", type=float, default=None, help="step in seconds (default: the model's scenario dt)")
     v.add_argument("--json", metavar="FILE", help="also write the deviations as JSON")
+    v.add_argument("-q", "--quiet", action="store_true", help="print the verdict line only, no progress")
+    v.add_argument("--progress", action="store_true", help="show progress even when stderr is not a terminal")
     v.set_defaults(func=_cmd_verify)
 
     from . import simulate
@@ -231,6 +250,19 @@ def _parser() -> argparse.ArgumentParser:
                                     "definite every step", description=soak.__doc__.splitlines()[0])
     soak.add_arguments(k)
     k.set_defaults(func=soak.run)
+
+    rp = sub.add_parser("replay", help="write replay_data.h, a simulated scenario for the bare-metal replay project",
+                        description="Simulate a scenario from MODEL and write DIR/replay_data.h, which the replay "
+                                    "project (generated_examples/firmware_qemu, shipped as estgen.firmware) builds "
+                                    "with the generated filter.")
+    rp.add_argument("model", metavar="MODEL", help="the model file (Python defining `model`)")
+    rp.add_argument("--filter", choices=("ekf", "ukf"), default="ekf", help="filter (default ekf)")
+    rp.add_argument("--precision", choices=("float", "double"), default="float", help="C type (default float)")
+    rp.add_argument("--steps", type=int, default=200, help="simulated steps (default 200)")
+    rp.add_argument("--seed", type=int, default=0, help="random seed (default 0)")
+    rp.add_argument("-o", "--out", required=True, metavar="DIR", help="folder for replay_data.h")
+    rp.add_argument("-q", "--quiet", action="store_true", help="print nothing on success")
+    rp.set_defaults(func=_cmd_replay)
 
     from . import report
 

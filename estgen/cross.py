@@ -7,18 +7,16 @@ installed: callers report the tool as missing, never a guessed figure.
 
 Command line (writes the scenario header the firmware replay includes)::
 
-    python -m estgen.cross replay MODEL --filter ekf --precision float -o DIR [--steps N] [--seed S]
+    estgen replay MODEL --filter ekf --precision float -o DIR [--steps N] [--seed S]
 """
 
 from __future__ import annotations
 
-import argparse
 import hashlib
 import os
 import re
 import shutil
 import subprocess
-import sys
 import tempfile
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -665,37 +663,3 @@ def _callgrind_calls(text: str, function: str) -> int:
             total += int(line[6:].split()[0])
             target = False
     return total
-
-
-# ---------------------------------------------------------------------------------------------
-# Command line
-
-
-def _main(argv: Optional[Sequence[str]] = None) -> int:
-    parser = argparse.ArgumentParser(prog="python -m estgen.cross", description=__doc__.split("\n\n")[0])
-    sub = parser.add_subparsers(dest="cmd", required=True)
-    rp = sub.add_parser("replay", help="write replay_data.h (a simulated scenario) for the firmware replay")
-    rp.add_argument("model")
-    rp.add_argument("--filter", default="ekf", choices=("ekf", "ukf"))
-    rp.add_argument("--precision", default="float", choices=("float", "double"))
-    rp.add_argument("--steps", type=int, default=200)
-    rp.add_argument("--seed", type=int, default=1)
-    rp.add_argument("-o", "--output", required=True, help="directory for replay_data.h")
-    args = parser.parse_args(argv)
-
-    from . import load_model
-    from .errors import ModelError
-    from .simulate import make_scenario
-
-    try:
-        spec = load_model(args.model)
-    except ModelError as err:
-        print(f"estgen: {err}", file=sys.stderr)
-        return 2
-    scen = make_scenario(spec, args.steps, args.seed)
-    print(write_replay(spec, args.filter, args.precision, scen, args.output))
-    return 0
-
-
-if __name__ == "__main__":
-    sys.exit(_main())

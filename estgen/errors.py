@@ -7,7 +7,6 @@ prints ``str(err)`` (one to a few lines, no traceback) and exits with status 2.
 from __future__ import annotations
 
 import linecache
-import os
 from dataclasses import dataclass
 from typing import Optional
 
@@ -20,7 +19,8 @@ class Where:
     line: Optional[int] = None
 
     def __str__(self) -> str:
-        name = os.path.basename(self.file) if self.file else "<model>"
+        # the path as the user gave it, so editors and CI problem matchers can open it
+        name = self.file or "<model>"
         return f"{name}:{self.line}" if self.line else name
 
 

@@ -533,7 +533,7 @@ def load_model(path: Union[str, os.PathLike]) -> ModelSpec:
     """
     path = os.fspath(path)
     if not os.path.isfile(path):
-        raise ModelError(f"model file not found: {path}")
+        raise ModelError("model file not found", Where(path))
     try:
         with open(path, "r", encoding="utf-8") as fh:
             text = fh.read()

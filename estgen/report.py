@@ -40,11 +40,12 @@ from pathlib import Path
 from typing import Any, Dict, List, Optional, Sequence, Tuple
 
 from . import cross
+from .progress import Progress, wanted
 
 __all__ = ["add_arguments", "run", "make_report", "format_report", "count_c_ops", "c_function_bodies"]
 
 DEFAULT_STEPS = 200
-DEFAULT_SEED = 1
+DEFAULT_SEED = 0
 
 _OP_KEYS = ("add", "mul", "div", "sqrt", "transcendental")
 
@@ -63,6 +64,8 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--alpha", type=float, help="UKF: sigma-point spread")
     parser.add_argument("--beta", type=float, help="UKF: prior-knowledge weight")
     parser.add_argument("--kappa", type=float, help="UKF: secondary scaling")
+    parser.add_argument("-q", "--quiet", action="store_true", help="no progress on stderr")
+    parser.add_argument("--progress", action="store_true", help="show progress even when stderr is not a terminal")
 
 
 def run(args: argparse.Namespace) -> int:
@@ -72,7 +75,7 @@ def run(args: argparse.Namespace) -> int:
     options = {k: getattr(args, k) for k in ("alpha", "beta", "kappa") if getattr(args, k, None) is not None}
     try:
         rep = make_report(args.model, args.filter, args.precision, args.target, steps=args.steps,
-                          seed=args.seed, **options)
+                          seed=args.seed, progress=wanted(args.quiet, args.progress), **options)
     except ModelError as err:
         print(f"estgen: {err}", file=sys.stderr)
         return 2
@@ -243,12 +246,12 @@ def _missing(rep: Dict[str, Any], err: cross.ToolMissing, what: str) -> None:
 
 def make_report(model: Any, filter: str = "ekf", precision: str = "float", target: str = "cortex-m4f",
                 steps: int = DEFAULT_STEPS, seed: int = DEFAULT_SEED, work_dir: Optional[str] = None,
-                scenario: Any = None, host: bool = True, **options: Any) -> Dict[str, Any]:
+                scenario: Any = None, host: bool = True, progress: bool = False, **options: Any) -> Dict[str, Any]:
     """Measure one generated filter of ``model`` (a model file path or a ModelSpec). Returns a
     JSON-ready dict (see the module docstring); figures needing a missing tool are absent and the
     tool is listed under ``missing``. ``scenario`` (a :class:`~estgen.simulate.Scenario`) replaces
     the simulated one the instruction counts replay (``steps`` and ``seed`` are then unused);
-    ``host=False`` leaves out the host instruction count."""
+    ``host=False`` leaves out the host instruction count; ``progress``: a progress line on stderr."""
     from .emit import generate as emit_generate
     from .model import as_spec
 
@@ -257,7 +260,9 @@ def make_report(model: Any, filter: str = "ekf", precision: str = "float", targe
         raise ValueError(f"unknown target {target!r}; use one of {sorted(cross.TARGETS)}")
     tmp = tempfile.TemporaryDirectory(prefix="estgen-report-") if work_dir is None else None
     work = Path(work_dir if work_dir is not None else tmp.name)  # type: ignore[union-attr]
+    bar = Progress("report", 3, progress)
     try:
+        bar.step("generating the C")
         # The generator itself (what `estgen generate` writes), so its operation counts come along.
         gen = work / "gen"
         gen.mkdir(parents=True, exist_ok=True)
@@ -291,10 +296,13 @@ def make_report(model: Any, filter: str = "ekf", precision: str = "float", targe
             # ops_c_text: the same count taken from the printed C, as a cross-check
             rep["functions"][fn] = {"ops": {k: int(ops.get(k, 0)) for k in _OP_KEYS}, "ops_counted_by": how,
                                     "ops_c_text": from_text}
+        bar.step(f"compiling for {target}: RAM, stack, flash")
         _static_figures(rep, header, source, target, work / f"obj-{target}", fn_names)
+        bar.step("counting instructions (QEMU" + (", valgrind)" if host else ")"))
         _instruction_figures(rep, spec, filter, precision, gen, work, steps, seed, fn_names, scenario, host)
         return rep
     finally:
+        bar.__exit__()
         if tmp is not None:
             tmp.cleanup()
 

@@ -459,7 +459,7 @@ def monte_carlo(
     *,
     use_reference: bool = False,
     set_params: Optional[Mapping[str, float]] = None,
-    precision: str = "double",
+    precision: str = "float",
     alpha: float = 1.0,
     beta: float = 2.0,
     kappa: float = 0.0,
@@ -704,8 +704,8 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     """Add the ``simulate`` options to a (sub)parser."""
     parser.add_argument("model", metavar="MODEL", help="the model file")
     parser.add_argument("--filter", choices=("ekf", "ukf"), default="ekf", help="the filter under test (default ekf)")
-    parser.add_argument("--precision", choices=("float", "double"), default="double",
-                        help="precision of the compiled C under test (default double)")
+    parser.add_argument("--precision", choices=("float", "double"), default="float",
+                        help="precision of the compiled C under test (default float, the build generate ships)")
     parser.add_argument("--runs", type=int, default=50, help="Monte Carlo runs (default 50)")
     parser.add_argument("--steps", type=int, default=200, help="steps per run (default 200)")
     parser.add_argument("--seed", type=int, default=0, help="random seed (default 0)")
@@ -723,7 +723,7 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--workers", type=int, default=None, help="processes (default: all cores)")
     parser.add_argument("--json", metavar="FILE", default=None, help="write the results as JSON")
     parser.add_argument("--plot", metavar="FILE.png", default=None, help="write a plot (needs matplotlib)")
-    parser.add_argument("--quiet", action="store_true", help="print nothing but errors")
+    parser.add_argument("-q", "--quiet", action="store_true", help="print nothing but errors")
     parser.add_argument("--progress", action="store_true", help="show progress even when stderr is not a terminal")
 
 

@@ -19,6 +19,7 @@ import numpy as np
 
 from .build import build
 from .model import ModelSpec, as_spec, check_filter_support, with_gates
+from .progress import Progress
 from .reference import reference
 from .simulate import make_scenario, run_filter
 
@@ -77,22 +78,27 @@ def _state_sigma(spec: ModelSpec, sig: np.ndarray) -> np.ndarray:
     return out
 
 
-def verify(model: Any, filter: str = "ekf", precision: str = "double", steps: int = 200, seed: int = 0,
+def verify(model: Any, filter: str = "ekf", precision: str = "float", steps: int = 200, seed: int = 0,
            dt: Optional[float] = None, gates: Optional[Dict[str, float]] = None, commit_check: str = "cholesky",
-           **options: Any) -> VerifyResult:
+           progress: bool = False, **options: Any) -> VerifyResult:
     """Run C and reference side by side on one simulated scenario and compare every step.
     ``gates`` sets chi-square gate probabilities per sensor for both filters; ``commit_check``
-    is the C's (see :func:`estgen.emit.generate`)."""
+    is the C's (see :func:`estgen.emit.generate`). ``progress``: a progress line on stderr."""
     spec: ModelSpec = with_gates(as_spec(model), gates)
     check_filter_support(spec, filter)
-    scen = make_scenario(spec, steps, seed, dt=dt)
-    c = build(spec, filter=filter, precision=precision, commit_check=commit_check, **options)
-    r = reference(spec, filter=filter, **options)
-    if precision == "float":
-        # the C starts from x0 and P0 rounded to float; give the reference the same start
-        r.set_state(c.x, c.P)
-    rc = run_filter(c, scen)
-    rr = run_filter(r, scen)
+    with Progress("verify", 4, progress) as bar:
+        bar.step("simulating the scenario")
+        scen = make_scenario(spec, steps, seed, dt=dt)
+        bar.step("generating and compiling the C")
+        c = build(spec, filter=filter, precision=precision, commit_check=commit_check, **options)
+        r = reference(spec, filter=filter, **options)
+        if precision == "float":
+            # the C starts from x0 and P0 rounded to float; give the reference the same start
+            r.set_state(c.x, c.P)
+        bar.step("running the C")
+        rc = run_filter(c, scen)
+        bar.step("running the reference")
+        rr = run_filter(r, scen)
     tol_x, tol_P = TOLERANCE[precision]
     n = spec.n
     xr, xc = rr["x"], rc["x"]

@@ -146,10 +146,11 @@ def test_bad_model_is_refused_clearly(fname: str, line: Optional[int], fragments
     lines = text.splitlines()
     assert 1 <= len(lines) <= 4, text
     head = lines[0]
+    given = os.path.join(BAD, fname)  # messages start with the path as the caller gave it
     if line is None:
-        assert head.startswith(f"{fname}: error: "), text
+        assert head.startswith(f"{given}: error: "), text
     else:
-        assert head.startswith(f"{fname}:{line}: error: "), text
+        assert head.startswith(f"{given}:{line}: error: "), text
         assert err.where is not None and err.where.line == line
         # The offending source line is quoted under the message.
         with open(os.path.join(BAD, fname), encoding="utf-8") as fh:
@@ -232,7 +233,7 @@ def test_unreadable_model_files(tmp_path) -> None:
     latin.write_bytes(b"model = 1  # caf\xe9\n")
     with pytest.raises(estgen.ModelError) as info:
         estgen.load_model(str(latin))
-    assert str(info.value).startswith("latin.py: error: ") and "UTF-8" in str(info.value)
+    assert str(info.value).startswith(f"{latin}: error: ") and "UTF-8" in str(info.value)
     with pytest.raises(estgen.ModelError) as info:
         estgen.load_model(str(tmp_path / "absent.py"))
     assert "not found" in str(info.value) and "absent.py" in str(info.value)
@@ -266,6 +267,6 @@ def test_input_profile_failing_later_names_its_line(tmp_path) -> None:
     with pytest.raises(estgen.ModelError) as info:
         make_scenario(spec, 30, seed=1)
     text = str(info.value)
-    assert text.startswith("late.py:12: error: scenario inputs(10) raised IndexError"), text
+    assert text.startswith(f"{path}:12: error: scenario inputs(10) raised IndexError"), text
     res = _run_cli("simulate", str(path), "--filter", "ekf", "--runs", "2", "--steps", "30", "--seed", "1")
     assert res.returncode == 2 and "Traceback" not in res.stderr and "late.py:12" in res.stderr

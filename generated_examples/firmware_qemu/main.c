@@ -12,7 +12,7 @@
  *     if (tank_ekf_update_level2(&flt, z) != 0) { ... }      // refused: flt is unchanged
  *     use(flt.x[0]);                           // the estimate, in the model's state order
  *
- * replay_data.h is written by `python -m estgen.cross replay`: it includes the generated
+ * replay_data.h is written by `estgen replay`: it includes the generated
  * header and names the filter's type and functions (REPLAY_INIT, REPLAY_PREDICT and the table
  * replay_update[] of one update function per sensor) together with the recorded inputs,
  * time steps and measurements.
