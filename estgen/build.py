@@ -15,6 +15,7 @@ import contextlib
 import hashlib
 import importlib.util
 import os
+import shlex
 import shutil
 import subprocess
 import sys
@@ -26,6 +27,7 @@ import numpy as np
 
 from .derive import packed_index, packed_size
 from .emit import Generated, generate
+from .errors import ToolMissing
 from .model import ModelSpec, as_spec, with_gates
 
 class BuildError(RuntimeError):
@@ -67,6 +69,16 @@ def _module_hash(gen: Generated, cflags: Sequence[str], ldflags: Sequence[str]) 
 _LOADED: Dict[str, _Compiled] = {}
 
 
+def _require_compiler(cc: str) -> None:
+    """:class:`ToolMissing` unless ``cc`` and the compiler cffi links with are installed."""
+    import sysconfig
+
+    for tool in (cc, sysconfig.get_config_var("CC") or "cc"):
+        exe = shlex.split(tool)[0] if tool.strip() else "cc"
+        if shutil.which(exe) is None:
+            raise ToolMissing(exe)
+
+
 def compile_generated(gen: Generated, cflags: Optional[Sequence[str]] = None,
                       ldflags: Optional[Sequence[str]] = None) -> _Compiled:
     """Compile generated C into a cffi extension module (cached) and load it."""
@@ -97,6 +109,7 @@ def compile_generated(gen: Generated, cflags: Optional[Sequence[str]] = None,
             c_path = os.path.join(work, f"{gen.prefix}.c")
             obj = os.path.join(work, f"{gen.prefix}.o")
             cc = os.environ.get("CC", "cc")
+            _require_compiler(cc)
             proc = subprocess.run([cc, *cflags, "-fPIC", "-c", c_path, "-o", obj], capture_output=True, text=True)
             if proc.returncode != 0:
                 raise BuildError(f"compiling {gen.prefix}.c failed:\n{proc.stderr.strip()}")

@@ -16,7 +16,7 @@ import time
 from typing import Any, Dict, List, Optional, Sequence
 
 from ._version import __version__
-from .errors import ModelError
+from .errors import ModelError, ToolMissing
 
 __all__ = ["main", "write_generated", "stale_files"]
 
@@ -292,6 +292,9 @@ def main(argv: Optional[Sequence[str]] = None) -> int:
         return int(args.func(args))
     except ModelError as err:
         print(str(err), file=sys.stderr)
+        return 2
+    except ToolMissing as err:
+        print(f"estgen {args.command}: {err}", file=sys.stderr)
         return 2
     except KeyboardInterrupt:
         return 130

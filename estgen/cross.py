@@ -24,6 +24,8 @@ from typing import Any, Dict, List, Mapping, Optional, Sequence, Tuple, Union
 
 import numpy as np
 
+from .errors import ToolMissing
+
 __all__ = [
     "ToolMissing",
     "Target",
@@ -75,14 +77,6 @@ def _firmware_dir() -> Path:
 
 
 FIRMWARE_DIR = _firmware_dir()
-
-
-class ToolMissing(RuntimeError):
-    """An outside tool (compiler, emulator, valgrind) is not installed."""
-
-    def __init__(self, tool: str) -> None:
-        super().__init__(f"{tool} is not installed (not found on PATH)")
-        self.tool = tool
 
 
 @dataclass(frozen=True)

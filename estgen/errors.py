@@ -48,3 +48,29 @@ class ModelError(Exception):
 
 class GenerationError(Exception):
     """The generator cannot produce code for an otherwise valid model (a size limit, say)."""
+
+
+#: The Debian/Ubuntu package that provides each outside tool estgen runs.
+DEBIAN_PACKAGES = {
+    "cc": "gcc", "gcc": "gcc", "g++": "g++", "clang": "clang", "clang++": "clang",
+    "arm-none-eabi-gcc": "gcc-arm-none-eabi", "arm-none-eabi-size": "binutils-arm-none-eabi",
+    "arm-none-eabi-nm": "binutils-arm-none-eabi", "arm-none-eabi-objdump": "binutils-arm-none-eabi",
+    "arm-none-eabi-readelf": "binutils-arm-none-eabi", "qemu-system-arm": "qemu-system-arm",
+    "valgrind": "valgrind", "callgrind_annotate": "valgrind", "cppcheck": "cppcheck",
+    "cmake": "cmake", "ninja": "ninja-build", "make": "make",
+}
+
+
+class ToolMissing(RuntimeError):
+    """An outside tool (C compiler, cross toolchain, emulator, valgrind) is not installed. The
+    command line prints the one-line message, which names the package to install, and exits 2."""
+
+    def __init__(self, tool: str) -> None:
+        self.tool = tool
+        base = tool.rsplit("/", 1)[-1]
+        self.package = DEBIAN_PACKAGES.get(base) or ("gcc" if base.endswith("gcc") else base)
+        super().__init__(f"{tool} is not installed (not found on PATH); install it, e.g. on Debian or "
+                         f"Ubuntu: sudo apt-get install {self.package}")
+
+    def __reduce__(self) -> tuple:  # pickled across worker processes by its tool alone
+        return (ToolMissing, (self.tool,))

@@ -70,7 +70,7 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
 
 def run(args: argparse.Namespace) -> int:
     """Run ``estgen report`` with parsed ``args``: 0 done, 2 bad input."""
-    from .errors import ModelError
+    from .errors import ModelError, ToolMissing
 
     options = {k: getattr(args, k) for k in ("alpha", "beta", "kappa") if getattr(args, k, None) is not None}
     try:
@@ -78,6 +78,11 @@ def run(args: argparse.Namespace) -> int:
                           seed=args.seed, progress=wanted(args.quiet, args.progress), **options)
     except ModelError as err:
         print(f"estgen: {err}", file=sys.stderr)
+        return 2
+    if rep["missing"]:
+        # a report without its figures is no report: name what to install and stop (exit 2)
+        for tool, what in rep["missing"].items():
+            print(f"estgen report: {ToolMissing(tool)} (needed for {'; '.join(what)})", file=sys.stderr)
         return 2
     print(format_report(rep))
     if args.json:
