@@ -155,7 +155,7 @@ class CFilter:
     converted to the C's precision on the way in, as firmware would hand them over.
     """
 
-    def __init__(self, spec: ModelSpec, comp: _Compiled, filter: str) -> None:
+    def __init__(self, spec: ModelSpec, comp: _Compiled, filter: str, seed: Optional[int] = None) -> None:
         self.spec = spec
         self.filter = filter
         self.n = spec.n
@@ -167,7 +167,10 @@ class CFilter:
         self._real = "float" if self.precision == "float" else "double"
         self._s = self._ffi.new(f"{self._prefix}_t *")
         self._nis_out = self._ffi.new(f"{self._real} *")
-        getattr(self._lib, f"{self._prefix}_init")(self._s)
+        if filter == "pf" and seed is not None:  # the particle filter's generator seed
+            getattr(self._lib, f"{self._prefix}_init_seed")(self._s, int(seed) & 0xFFFFFFFF)
+        else:
+            getattr(self._lib, f"{self._prefix}_init")(self._s)
         self._predict = getattr(self._lib, f"{self._prefix}_predict")
         self._updates = {s.name: (getattr(self._lib, f"{self._prefix}_update_{s.name}_nis"), s.m)
                          for s in spec.sensors}
@@ -241,10 +244,13 @@ def build(model: Any, filter: str = "ekf", precision: str = "float", *, cflags: 
           **options: Any) -> CFilter:
     """Generate, compile (cached) and load the C filter for ``model``.
 
-    ``options`` are the UKF's alpha, beta, kappa. ``cflags``/``ldflags`` add compiler and
+    ``options`` are the UKF's alpha, beta, kappa, or the particle filter's particles,
+    resample_threshold, roughening and seed (the generator seed init_seed starts from; the
+    reference with the same seed draws the same numbers). ``cflags``/``ldflags`` add compiler and
     linker flags (sanitizers, say). ``gates`` sets chi-square gate probabilities per sensor.
     """
     spec = with_gates(as_spec(model), gates)
+    seed = options.pop("seed", None) if filter == "pf" else None
     gen = generate(spec, filter=filter, precision=precision, **options)
     comp = compile_generated(gen, cflags, ldflags)
-    return CFilter(spec, comp, filter)
+    return CFilter(spec, comp, filter, seed=seed)

@@ -552,4 +552,8 @@ def generate(spec: ModelSpec, filter: str = "ekf", precision: str = "float",
         from .emit_ukf import generate_ukf
 
         return generate_ukf(spec, precision, commit_check=commit_check, command=command, **options)
-    raise ModelError(f"unknown filter {filter!r}; use 'ekf' or 'ukf'")
+    if filter == "pf":
+        from .emit_pf import generate_pf
+
+        return generate_pf(spec, precision, commit_check=commit_check, command=command, **options)
+    raise ModelError(f"unknown filter {filter!r}; use 'ekf', 'ukf' or 'pf'")
