@@ -21,23 +21,36 @@ from .errors import ModelError, ToolMissing
 __all__ = ["main", "write_generated", "stale_files"]
 
 
+_FILTER_OPTIONS = {"ukf": ("alpha", "beta", "kappa"), "pf": ("particles", "resample_threshold", "roughening")}
+
+
 def _ukf_options(args: argparse.Namespace) -> Dict[str, float]:
-    if getattr(args, "filter", "ekf") != "ukf":
-        for opt in ("alpha", "beta", "kappa"):
+    """The options of the chosen filter kind (the UKF's alpha/beta/kappa, the particle
+    filter's particles/resample_threshold/roughening); another kind's option is an error."""
+    filt = getattr(args, "filter", "ekf")
+    for kind, opts in _FILTER_OPTIONS.items():
+        if kind == filt:
+            continue
+        for opt in opts:
             if getattr(args, opt, None) is not None:
-                raise ModelError(f"--{opt} applies to --filter ukf only")
-        return {}
-    return {k: getattr(args, k) for k in ("alpha", "beta", "kappa") if getattr(args, k, None) is not None}
+                raise ModelError(f"--{opt.replace('_', '-')} applies to --filter {kind} only")
+    return {k: getattr(args, k) for k in _FILTER_OPTIONS.get(filt, ()) if getattr(args, k, None) is not None}
 
 
 def _add_filter_args(p: argparse.ArgumentParser, precision_default: str) -> None:
     p.add_argument("model", metavar="MODEL", help="the model file (Python defining `model`)")
-    p.add_argument("--filter", choices=("ekf", "ukf"), default="ekf", help="filter to generate (default ekf)")
+    p.add_argument("--filter", choices=("ekf", "ukf", "pf"), default="ekf",
+                   help="filter to generate: extended or unscented Kalman filter, or particle filter (default ekf)")
     p.add_argument("--precision", choices=("float", "double"), default=precision_default,
                    help=f"C floating type (default {precision_default})")
     p.add_argument("--alpha", type=float, default=None, help="UKF: sigma-point spread alpha (default 1)")
     p.add_argument("--beta", type=float, default=None, help="UKF: prior-distribution parameter beta (default 2)")
     p.add_argument("--kappa", type=float, default=None, help="UKF: secondary scaling kappa (default 0)")
+    p.add_argument("--particles", type=int, default=None, metavar="N", help="PF: number of particles (default 500)")
+    p.add_argument("--resample-threshold", type=float, default=None, metavar="F",
+                   help="PF: resample when the effective sample size falls below F N (default 0.5)")
+    p.add_argument("--roughening", type=float, default=None, metavar="K",
+                   help="PF: roughening constant K after resampling (default 0: none)")
     p.add_argument("--commit-check", choices=("cholesky", "diagonal"), default="cholesky",
                    help="what a new P must pass before predict/update commit it: a Cholesky "
                         "factorization (default) or a positive diagonal only (cheaper, less safe)")

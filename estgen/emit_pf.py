@@ -33,7 +33,8 @@ def _model_functions(spec: ModelSpec, em: Emitter, ops: Dict[str, OpCount]) -> D
     """The straight-line bodies of f (into xn), Q (packed, into Q) and per sensor h (into hz) and
     R (packed, into R), with the op count of one evaluation of each."""
     names = c_names(spec, "x")
-    n = spec.n
+    names.update({w: sp.Symbol(f"w[{k}]") for k, w in enumerate(spec.w_syms)})
+    n, nw = spec.n, spec.nw
 
     def block(outputs: List[Any], key: str) -> Dict[str, Any]:
         stmts, _ = model_block(outputs)
@@ -43,18 +44,29 @@ def _model_functions(spec: ModelSpec, em: Emitter, ops: Dict[str, OpCount]) -> D
         used = {str(s) for st in stmts for s in st.expr.free_symbols}
         return {"lines": lines, "uses_par": any(u.startswith("par->") for u in used),
                 "uses_u": any(u.startswith("u[") for u in used), "uses_dt": "dt" in used,
-                "uses_x": any(u.startswith("x[") for u in used)}
+                "uses_x": any(u.startswith("x[") for u in used), "uses_w": any(u.startswith("w[") for u in used)}
 
     out: Dict[str, Any] = {}
     out["f"] = block([("assign", f"xn[{i}]", spec.f[i].xreplace(names)) for i in range(n)], "f")
     out["q"] = block([("assign", f"Q[{packed_index(i, j, n)}]", spec.Q[i, j].xreplace(names))
                       for i in range(n) for j in range(i, n)], "q")
+    out["qw"] = block([("assign", f"Qw[{packed_index(i, j, nw)}]", spec.Qw[i, j].xreplace(names))
+                       for i in range(nw) for j in range(i, nw)], "qw")
     hs = []
     for s in spec.sensors:
-        h = block([("assign", f"hz[{c}]", s.h[c].xreplace(names)) for c in range(s.m)], f"h_{s.name}")
+        outs = [("assign", f"hz[{c}]", s.h0[c].xreplace(names)) for c in range(s.m)]
+        rv = None
+        if s.v:
+            # M = dh/dv at v = 0, row-major m x nv: the linearized likelihood's R_eff = M Rv M' + R
+            M = s.h.jacobian(list(s.v)).xreplace({v: 0 for v in s.v})
+            outs += [("assign", f"Mv[{c * s.nv + k}]", M[c, k].xreplace(names)) for c in range(s.m)
+                     for k in range(s.nv)]
+            rv = block([("assign", f"Rv[{packed_index(a, b, s.nv)}]", s.Rv[a, b].xreplace(names))
+                        for a in range(s.nv) for b in range(a, s.nv)], f"rv_{s.name}")
+        h = block(outs, f"h_{s.name}")
         r = block([("assign", f"R[{packed_index(a, b, s.m)}]", s.R[a, b].xreplace(names))
                    for a in range(s.m) for b in range(a, s.m)], f"r_{s.name}")
-        hs.append({"h": h, "r": r})
+        hs.append({"h": h, "r": r, "rv": rv, "nv": s.nv, "nvp": packed_size(s.nv)})
     out["sensors"] = hs
     return out
 
@@ -98,6 +110,9 @@ def generate_pf(spec: ModelSpec, precision: str = "float", commit_check: str = "
         sctx["angle_mask"] = list(s.angles)
     ctx["f"] = fns["f"]
     ctx["q"] = fns["q"]
+    ctx["qw"] = fns["qw"]
+    ctx["nw"] = spec.nw
+    ctx["nwp"] = packed_size(spec.nw)
     ctx["particles"] = N
     ctx["default_seed"] = DEFAULT_SEED
     ctx["prior"] = _prior(spec, em)

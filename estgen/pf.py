@@ -24,8 +24,18 @@ Proc. F 140(2), 1993) carrying N particles and their log-weights:
   and covariance, and colours them with ``chol(P)``: the particle mean and covariance then equal
   x and P to rounding.
 
+Noise symbols (``model.noise``): predict draws the process symbols ``w = Aw z`` (``Aw Aw' = Qw``,
+semidefinite as above) for every particle and evaluates ``f(x, u, w, dt)``, then adds the
+additive ``Lq z``; per particle the draws are w's first, then Q's. A sensor with noise symbols
+v is weighted by the Gaussian likelihood linearized in v at the particle, ``z ~ N(h(x, 0),
+R_eff)`` with ``R_eff = M Rv M' + R`` and ``M = dh/dv`` at ``(x_i, v = 0)``: exact where h is
+affine in v (e.g. a scale error ``h (1 + v)``), and the per-particle normalization
+``-log det Lr`` is kept because R_eff then differs between particles. A particle whose R_eff is
+not positive definite gets weight zero.
+
 The NIS of an update is that of the Gaussian fitted to the predicted measurements: with the
-residuals ``r_i = z - h(x_i)`` and prior weights, ``y = mean r``, ``S = cov r + R``,
+residuals ``r_i = z - h(x_i)`` and prior weights, ``y = mean r``, ``S = cov r + R`` (the
+weighted mean of R_eff for a sensor with noise symbols),
 ``NIS = y' S^-1 y`` (used for the optional chi-square gate and the consistency statistics; it is
 chi-square distributed only where the posterior is close to Gaussian).
 
@@ -139,6 +149,16 @@ def fill_in_place(X: np.ndarray, counts: np.ndarray) -> None:
     X[free] = X[sources]
 
 
+def _loglik(Re: np.ndarray, r: np.ndarray) -> float:
+    """``-|Lr^-1 r|^2 / 2 - log det Lr`` (Lr Lr' = Re), or -inf when Re is not positive definite."""
+    try:
+        Lr = np.linalg.cholesky(Re)
+    except np.linalg.LinAlgError:
+        return -math.inf
+    b = np.linalg.solve(Lr, r)
+    return float(-0.5 * (b @ b) - np.sum(np.log(np.diag(Lr))))
+
+
 def _lambdify_list(args: Sequence[sp.Symbol], exprs: Sequence[sp.Expr]) -> Callable[..., List[Any]]:
     return sp.lambdify(args, list(exprs), modules="numpy", cse=True)
 
@@ -161,8 +181,10 @@ class ReferencePF(_ReferenceBase):
         super().__init__(spec, params, functions)
         n, N = spec.n, self.options.particles
         xs, us, ps, dt = spec.x_syms, spec.u_syms, spec.p_syms, spec.dt
-        self._fv = _lambdify_list([*xs, *us, dt, *ps], list(spec.f))
-        self._hv = {s.name: _lambdify_list([*xs, *ps], list(s.h)) for s in spec.sensors}
+        self._fv = _lambdify_list([*xs, *us, dt, *ps, *spec.w_syms], list(spec.f))
+        self._hv = {s.name: _lambdify_list([*xs, *ps], list(s.h0)) for s in spec.sensors}
+        self._mv = {s.name: _lambdify_list([*xs, *ps], list(s.h.jacobian(list(s.v)).xreplace({v: 0 for v in s.v})))
+                    for s in spec.sensors if s.v}
         self.N = N
         self.rng = Rng(seed)
         self._X = np.zeros((N, n))
@@ -235,19 +257,26 @@ class ReferencePF(_ReferenceBase):
         p = self._p()
         with np.errstate(all="ignore"):
             Q = self._fn.Q(dtf, p)
-            if not _finite(Q):
+            Qw = self._fn.Qw(dtf, p)
+            if not _finite(Q, Qw):
                 return int(Status.NON_FINITE)
             Lq = psd_cholesky(Q)
-            if Lq is None:
+            Aw = psd_cholesky(Qw)
+            if Lq is None or Aw is None:
                 return int(Status.NOT_POSITIVE_DEFINITE)
             live = np.flatnonzero(self._w > 0.0)
+            L = live.shape[0]
             snap = self.rng.snapshot()
-            cols = np.flatnonzero(np.diag(Lq) > 0.0)  # a zero column takes no draw
-            Z = np.zeros((live.shape[0], self.n))
-            if cols.size:
-                Z[:, cols] = self.rng.normals(live.shape[0] * cols.size).reshape(live.shape[0], cols.size)
+            cw = np.flatnonzero(np.diag(Aw) > 0.0)  # a zero column takes no draw
+            cq = np.flatnonzero(np.diag(Lq) > 0.0)
+            D = self.rng.normals(L * (cw.size + cq.size)).reshape(L, cw.size + cq.size)
+            Zw = np.zeros((L, self.spec.nw))
+            Zw[:, cw] = D[:, :cw.size]
+            Zq = np.zeros((L, self.n))
+            Zq[:, cq] = D[:, cw.size:]
+            W = Zw @ Aw.T
             Xl = self._X[live]
-            Xn = _columns(self._fv(*Xl.T, *uv, dtf, *p), live.shape[0]) + Z @ Lq.T
+            Xn = _columns(self._fv(*Xl.T, *uv, dtf, *p, *W.T), L) + Zq @ Lq.T
             Xn = self._wrap_rows(Xn)
             ok = np.all(np.isfinite(Xn), axis=1)
         if not ok.any():
@@ -275,20 +304,28 @@ class ReferencePF(_ReferenceBase):
         zang = self._sensor_angles[sensor]
         with np.errstate(all="ignore"):
             R = self._fn.R(sensor, p)
-            if not _finite(R):
+            Rv = self._fn.Rv(sensor, p)
+            if not _finite(R, Rv):
                 return int(Status.NON_FINITE)
-            try:
-                Lr = np.linalg.cholesky(R)
-            except np.linalg.LinAlgError:
-                return int(Status.NOT_POSITIVE_DEFINITE)
+            if not s.nv:
+                try:
+                    Lr = np.linalg.cholesky(R)
+                except np.linalg.LinAlgError:
+                    return int(Status.NOT_POSITIVE_DEFINITE)
             live = np.flatnonzero(self._w > 0.0)
             Xl = self._X[live]
             H = _columns(self._hv[sensor](*Xl.T, *p), live.shape[0])
             r = zv - H
             if zang.any():
                 r[:, zang] = wrap_angle(r[:, zang])
-            B = np.linalg.solve(Lr, r.T)
-            ll = -0.5 * np.sum(B * B, axis=0)
+            if s.nv:
+                M = _columns(self._mv[sensor](*Xl.T, *p), live.shape[0]).reshape(-1, s.m, s.nv)
+                Reff = R + np.einsum("kav,vw,kbw->kab", M, Rv, M)
+                ll = np.array([_loglik(Re, ri) for Re, ri in zip(Reff, r)])
+            else:
+                Reff = np.broadcast_to(R, (live.shape[0], s.m, s.m))
+                B = np.linalg.solve(Lr, r.T)
+                ll = -0.5 * np.sum(B * B, axis=0)
             ok = np.isfinite(ll)
             new = np.full(self.N, -np.inf)
             new[live[ok]] = self._lw[live[ok]] + ll[ok]
@@ -298,7 +335,8 @@ class ReferencePF(_ReferenceBase):
             if wl.size:
                 tot = np.cumsum(wl)[-1]
                 y = (wl @ rl) / tot
-                S = ((rl.T * wl) @ rl) / tot - np.outer(y, y) + R
+                Rm = np.einsum("k,kab->ab", wl, Reff[ok]) / tot if s.nv else R  # the weighted mean of R_eff
+                S = ((rl.T * wl) @ rl) / tot - np.outer(y, y) + Rm
                 S = 0.5 * (S + S.T)
                 try:
                     Ls = np.linalg.cholesky(S)

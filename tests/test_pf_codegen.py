@@ -169,3 +169,44 @@ def test_roughening_in_c_matches_reference():
     opts = {"particles": 120, "roughening": 0.2, "resample_threshold": 0.9}
     res = verify(example_model("valve_actuator"), "pf", "double", steps=40, seed=5, **opts)
     assert res.ok, res.as_dict()
+
+
+def _noise_model():
+    # contract section 5's forms: noise symbols in the process and in a sensor (scale error);
+    # invented numbers
+    m = Model("noisy")
+    px, py, v = m.states("px py v")
+    (a_meas,) = m.inputs("a_meas")
+    dt = m.dt
+    (wa,) = m.noise("wa", cov=[0.05 ** 2])
+    (sv,) = m.noise("sv", cov=[0.02 ** 2])
+    m.process([px + dt * v, py + dt * 0.3, v + dt * (a_meas - wa)])
+    m.process_noise(sp.diag(1e-4, 1e-4, 0) * dt)
+    m.sensor("range", [sp.sqrt(px ** 2 + py ** 2) * (1 + sv)], noise=[0.01 ** 2])
+    m.sensor("side", [py], noise=[0.05 ** 2])
+    m.initial([3.0, 1.0, 0.5], sp.diag(0.2, 0.2, 0.05))
+    m.scenario(dt=0.1, inputs=lambda t: [0.2])
+    return validate(m)
+
+
+@pytest.mark.parametrize("precision", ["double", "float"])
+def test_noise_symbols(precision):
+    # predict samples w, the scale-error sensor is weighted with R_eff = M Rv M' + R per particle
+    res = verify(_noise_model(), "pf", precision, steps=60, seed=3, particles=150)
+    assert res.ok, res.as_dict()
+
+
+def test_noise_symbol_likelihood_is_exact_for_a_scale_error():
+    # z = d (1 + v) + e with v ~ N(0, sv^2), e ~ N(0, r): given d, z is Gaussian with variance
+    # d^2 sv^2 + r, so the weight ratio of two particles equals the ratio of scipy's normal pdfs
+    import scipy.stats
+    from estgen.pf import ReferencePF
+
+    spec = _noise_model()
+    pf = ReferencePF(spec, particles=4, seed=1, resample_threshold=1e-9)
+    X = np.array([[4.9, 0.0, 0.0], [5.2, 0.0, 0.0], [4.0, 3.0, 0.0], [3.0, 4.1, 0.0]])
+    pf._X = X.copy()
+    assert pf.update("range", [5.05]) == Status.OK
+    d = np.hypot(X[:, 0], X[:, 1])
+    lp = scipy.stats.norm.logpdf(5.05, loc=d, scale=np.sqrt(d ** 2 * 0.02 ** 2 + 0.01 ** 2))
+    assert np.allclose(pf.log_weights, lp - lp.max(), rtol=1e-10, atol=1e-10)
