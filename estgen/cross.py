@@ -363,7 +363,8 @@ def generate(model: PathLike, filter: str, precision: str, out_dir: PathLike, **
     if cli_main is not None:
         argv = ["generate", os.fspath(model), "--filter", filter, "--precision", precision, "-o", str(out)]
         for key, val in options.items():
-            argv += [f"--{key}", repr(float(val))]
+            text = str(val) if isinstance(val, int) and not isinstance(val, bool) else repr(float(val))
+            argv += [f"--{key.replace('_', '-')}", text]
         try:
             code = cli_main(argv)
         except SystemExit as err:  # argparse exits instead of returning

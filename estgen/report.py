@@ -53,7 +53,9 @@ _OP_KEYS = ("add", "mul", "div", "sqrt", "transcendental")
 def add_arguments(parser: argparse.ArgumentParser) -> None:
     """Add ``estgen report``'s arguments to ``parser``."""
     parser.add_argument("model", help="the model file (Python)")
-    parser.add_argument("--filter", default="ekf", choices=("ekf", "ukf"))
+    parser.add_argument("--filter", default="ekf", choices=("ekf", "ukf", "pf"))
+    parser.add_argument("--particles", type=int, default=None, metavar="N",
+                        help="PF: number of particles (default 500); RAM grows with N")
     parser.add_argument("--precision", default="float", choices=("float", "double"))
     parser.add_argument("--target", default="cortex-m4f", choices=tuple(cross.TARGETS),
                         help="where RAM, stack and flash are measured (default cortex-m4f)")
@@ -72,7 +74,7 @@ def run(args: argparse.Namespace) -> int:
     """Run ``estgen report`` with parsed ``args``: 0 done, 2 bad input."""
     from .errors import ModelError, ToolMissing
 
-    options = {k: getattr(args, k) for k in ("alpha", "beta", "kappa") if getattr(args, k, None) is not None}
+    options = {k: getattr(args, k) for k in ("alpha", "beta", "kappa", "particles") if getattr(args, k, None) is not None}
     try:
         rep = make_report(args.model, args.filter, args.precision, args.target, steps=args.steps,
                           seed=args.seed, progress=wanted(args.quiet, args.progress), **options)
@@ -280,6 +282,7 @@ def make_report(model: Any, filter: str = "ekf", precision: str = "float", targe
         rep: Dict[str, Any] = {
             "model": spec.name,
             "filter": filter,
+            "particles": getattr(generated, "particles", None),
             "precision": precision,
             "target": target,
             "struct": f"{prefix}_t",
@@ -397,7 +400,8 @@ def format_report(rep: Dict[str, Any]) -> str:
     """A human-readable table of :func:`make_report`'s figures."""
     lines = [
         f"{rep['model']} {rep['filter']} ({rep['precision']}) on {rep['target']}",
-        f"  RAM (sizeof {rep['struct']}): {_fmt(rep['ram_bytes'])} bytes",
+        f"  RAM (sizeof {rep['struct']}): {_fmt(rep['ram_bytes'])} bytes"
+        + (f" ({rep['particles']} particles: grows linearly with N)" if rep.get("particles") else ""),
     ]
     fl = rep.get("flash")
     lines.append(f"  flash (.text + .rodata): {_fmt(fl['total'])} bytes ({fl['text']} + {fl['rodata']})"

@@ -376,9 +376,16 @@ def _filter_factory(ctx: Dict[str, Any]) -> Callable[[], Any]:
     """
     spec: ModelSpec = with_gates(ctx["spec"], ctx["gates"])  # gates act in the filter only
     ukf_opts = {"alpha": ctx["alpha"], "beta": ctx["beta"], "kappa": ctx["kappa"]} if ctx["filter"] == "ukf" else {}
+    if ctx["filter"] == "pf":
+        ukf_opts = dict(ctx["options"])
     if ctx["use_reference"]:
         mf = model_functions(spec)
-        if ctx["filter"] == "ekf":
+        if ctx["filter"] == "pf":
+            from .pf import ReferencePF
+
+            def new() -> Any:
+                return ReferencePF(spec, functions=mf, seed=_pf_seed(ctx), **ukf_opts)
+        elif ctx["filter"] == "ekf":
             def new() -> Any:
                 return ReferenceEKF(spec, functions=mf)
         else:
@@ -391,7 +398,7 @@ def _filter_factory(ctx: Dict[str, Any]) -> Callable[[], Any]:
         comp = compile_generated(generate(spec, filter=ctx["filter"], precision=ctx["precision"], **ukf_opts))
 
         def new() -> Any:
-            return CFilter(spec, comp, ctx["filter"])
+            return CFilter(spec, comp, ctx["filter"], seed=_pf_seed(ctx) if ctx["filter"] == "pf" else None)
 
     def fresh() -> Any:
         filt = new()
@@ -402,8 +409,14 @@ def _filter_factory(ctx: Dict[str, Any]) -> Callable[[], Any]:
     return fresh
 
 
+def _pf_seed(ctx: Dict[str, Any]) -> int:
+    """The particle filter's generator seed for the current run: its own for every run."""
+    return (int(ctx["seed"]) * 1000003 + int(ctx.get("run", 0)) * 7919 + 1) & 0xFFFFFFFF
+
+
 def _one_run(r: int) -> Dict[str, Any]:
     ctx = _CTX
+    ctx["run"] = r
     sc = make_scenario(ctx["spec"], ctx["steps"], seed=[ctx["seed"], r], dt=ctx["dt"], every=ctx["every"])
     return score_run(ctx["spec"], sc, run_filter(ctx["new_filter"](), sc), keep_run=(r == 0))
 
@@ -468,6 +481,7 @@ def monte_carlo(
     workers: Optional[int] = None,
     progress: Optional[bool] = None,
     gates: Optional[Mapping[str, float]] = None,
+    options: Optional[Mapping[str, Any]] = None,
 ) -> MonteCarloResult:
     """Run the filter on ``runs`` independent simulations and test its consistency.
 
@@ -476,6 +490,8 @@ def monte_carlo(
     Runs are spread over ``workers`` processes (default: all cores; 1 runs in this process).
     ``progress``: show progress on stderr (default: when stderr is a terminal).
     ``gates`` sets the filter's chi-square gate probabilities per sensor (as ``--gate``).
+    ``options``: the particle filter's particles, resample_threshold and roughening (each run's
+    generator gets its own seed, derived from ``seed`` and the run number).
     """
     started = time.perf_counter()
     spec = as_spec(spec)
@@ -496,7 +512,11 @@ def monte_carlo(
     with_gates(spec, dict(gates or {}))  # checks the names and probabilities
     ctx = {"spec": spec, "gates": dict(gates or {}), "filter": filter, "use_reference": bool(use_reference), "precision": precision,
            "alpha": alpha, "beta": beta, "kappa": kappa, "set_params": changed, "steps": steps,
-           "seed": int(seed), "dt": dtv, "every": ev}
+           "seed": int(seed), "dt": dtv, "every": ev, "options": dict(options or {})}
+    if filter == "pf":
+        from .pf import pf_options
+
+        pf_options(spec.n, ctx["options"])  # checked here, before any run
     # build the C (or lambdify the model) once, before forking, so workers inherit it and a
     # problem shows here rather than in a worker
     ctx["new_filter"] = _filter_factory(ctx)
@@ -703,7 +723,12 @@ def save_figure(fig: Any, path: str) -> None:
 def add_arguments(parser: argparse.ArgumentParser) -> None:
     """Add the ``simulate`` options to a (sub)parser."""
     parser.add_argument("model", metavar="MODEL", help="the model file")
-    parser.add_argument("--filter", choices=("ekf", "ukf"), default="ekf", help="the filter under test (default ekf)")
+    parser.add_argument("--filter", choices=("ekf", "ukf", "pf"), default="ekf", help="the filter under test (default ekf)")
+    parser.add_argument("--particles", type=int, default=None, metavar="N", help="PF: number of particles (default 500)")
+    parser.add_argument("--resample-threshold", type=float, default=None, metavar="F",
+                        help="PF: resample when the effective sample size falls below F N (default 0.5)")
+    parser.add_argument("--roughening", type=float, default=None, metavar="K",
+                        help="PF: roughening constant K after resampling (default 0)")
     parser.add_argument("--precision", choices=("float", "double"), default="float",
                         help="precision of the compiled C under test (default float, the build generate ships)")
     parser.add_argument("--runs", type=int, default=50, help="Monte Carlo runs (default 50)")
@@ -740,6 +765,15 @@ def _pairs(items: Sequence[str], option: str, convert: Callable[[str], Any]) -> 
     return out
 
 
+def _pf_args(args: argparse.Namespace) -> Dict[str, Any]:
+    """The particle filter's options from the command line (an error with another filter)."""
+    given = {k: getattr(args, k, None) for k in ("particles", "resample_threshold", "roughening")}
+    given = {k: v for k, v in given.items() if v is not None}
+    if given and args.filter != "pf":
+        raise ModelError(f"--{sorted(given)[0].replace('_', '-')} applies to --filter pf only")
+    return given
+
+
 def run(args: argparse.Namespace) -> int:
     """Run ``estgen simulate`` with parsed ``args``; returns 0 once it ran (consistent or not).
     Bad input raises :class:`ModelError` for the CLI to print (exit 2)."""
@@ -761,6 +795,7 @@ def run(args: argparse.Namespace) -> int:
         workers=args.workers,
         gates=_pairs(args.gate, "--gate", float),
         progress=True if getattr(args, "progress", False) else (None if not args.quiet else False),
+        options=_pf_args(args),
     )
     write_outputs(args, res.to_json, lambda path: plot_result(res, path), lambda: format_summary(res))
     return 0

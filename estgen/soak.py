@@ -264,7 +264,10 @@ def soak(model: Any, filter: str = "ekf", precision: str = "float", steps: int =
     prefix = gen.prefix
 
     s = ffi.new(f"{prefix}_t *")
-    getattr(lib, f"{prefix}_init")(s)
+    if filter == "pf":  # the particle filter's generator starts from the soak's seed
+        getattr(lib, f"{prefix}_init_seed")(s, int(seed) & 0xFFFFFFFF)
+    else:
+        getattr(lib, f"{prefix}_init")(s)
     x_view = np.frombuffer(ffi.buffer(s.x), dtype=dtype)  # live views of the struct
     p_view = np.frombuffer(ffi.buffer(s.P), dtype=dtype)
     predict = getattr(lib, f"{prefix}_predict")
@@ -379,7 +382,8 @@ def format_result(res: SoakResult) -> str:
 def add_arguments(parser: argparse.ArgumentParser) -> None:
     """The ``estgen soak`` options."""
     parser.add_argument("model", metavar="MODEL", help="the model file (Python defining `model`)")
-    parser.add_argument("--filter", choices=("ekf", "ukf"), default="ekf", help="filter (default ekf)")
+    parser.add_argument("--filter", choices=("ekf", "ukf", "pf"), default="ekf", help="filter (default ekf)")
+    parser.add_argument("--particles", type=int, default=None, metavar="N", help="PF: number of particles (default 500)")
     parser.add_argument("--precision", choices=("float", "double"), default="float", help="C type (default float)")
     parser.add_argument("--steps", type=int, default=10**6, help="simulated steps (default 1000000)")
     parser.add_argument("--seed", type=int, default=0, help="random seed (default 0)")
@@ -420,7 +424,8 @@ def run(args: argparse.Namespace) -> int:
             print(f"\r  {done}/{total} steps, {el:.0f} s", end="", file=sys.stderr, flush=True)
 
     res = soak(spec, filter=args.filter, precision=args.precision, steps=args.steps, seed=args.seed, dt=args.dt,
-               profile=args.profile, period=args.period, gates=_gates(args.gate) or None, progress=show)
+               profile=args.profile, period=args.period, gates=_gates(args.gate) or None, progress=show,
+               **({"particles": args.particles} if args.particles is not None else {}))
     if not args.quiet:
         print(file=sys.stderr)
     print(format_result(res))
