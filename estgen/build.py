@@ -21,7 +21,7 @@ import subprocess
 import sys
 import tempfile
 from dataclasses import dataclass
-from typing import Any, Dict, List, Optional, Sequence
+from typing import Any, Dict, List, Optional, Sequence, Tuple
 
 import numpy as np
 
@@ -34,7 +34,7 @@ class BuildError(RuntimeError):
     """The generated C did not compile (a defect of estgen, never of the model)."""
 
 
-__all__ = ["BuildError", "build", "compile_generated", "CFilter", "cache_dir", "STRICT_FLAGS"]
+__all__ = ["BuildError", "build", "compile_generated", "compiler_used", "CFilter", "cache_dir", "STRICT_FLAGS"]
 
 #: the warning set of the contract; every generated file must compile clean under it
 STRICT_FLAGS: List[str] = [
@@ -67,6 +67,18 @@ def _module_hash(gen: Generated, cflags: Sequence[str], ldflags: Sequence[str]) 
 
 
 _LOADED: Dict[str, _Compiled] = {}
+
+
+def compiler_used(cflags: Optional[Sequence[str]] = None) -> Tuple[str, List[str]]:
+    """The C compiler :func:`build` runs (its ``--version`` first line) and its flags."""
+    cc = os.environ.get("CC", "cc")
+    _require_compiler(cc)
+    try:
+        out = subprocess.run([*shlex.split(cc), "--version"], capture_output=True, text=True).stdout
+        version = out.splitlines()[0].strip() if out.strip() else cc
+    except OSError:
+        version = cc
+    return version, list(STRICT_FLAGS) + ["-O2"] + list(cflags or [])
 
 
 def _require_compiler(cc: str) -> None:

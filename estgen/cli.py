@@ -241,7 +241,9 @@ def _parser() -> argparse.ArgumentParser:
                                    "reference on them, print the largest deviations of x and P. Tolerance: "
                                    "double relative 1e-9; float 0.01 sigma. Exit 0 equal, 1 not, 2 bad input.")
     _add_filter_args(v, "float")
-    v.add_argument("--steps", type=int, default=200, help="simulated steps (default 200)")
+    v.add_argument("--steps", type=int, default=None,
+                   help="simulated steps (default: from the model: every sensor 50 updates, three of the "
+                        "slowest time constants, at least 200, at most 5000)")
     v.add_argument("--seed", type=int, default=0, help="random seed (default 0)")
     v.add_argument("--dt", type=float, default=None, help="step in seconds (default: the model's scenario dt)")
     v.add_argument("--json", metavar="FILE", help="also write the deviations as JSON")

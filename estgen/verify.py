@@ -30,15 +30,17 @@ part (they are then two realizations).
 from __future__ import annotations
 
 from dataclasses import dataclass, field
-from typing import Any, Dict, List, Optional
+from typing import Any, Dict, List, Optional, Tuple
 
 import numpy as np
 
-from .build import build
+from .build import build, compiler_used
 from .model import ModelSpec, as_spec, check_filter_support, with_gates
 from .progress import Progress
-from .reference import reference
+from .reference import model_functions, reference
 from .simulate import make_scenario, run_filter
+from .simulate import _scenario_dt as scenario_dt
+from .status import Status
 
 __all__ = ["VerifyResult", "verify", "TOLERANCE", "format_result"]
 
@@ -67,6 +69,10 @@ class VerifyResult:
     state_names: List[str] = field(default_factory=list)
     tol_x: float = 0.0
     tol_P: float = 0.0
+    #: what the run covered: why this length, calls and statuses per sensor, wraps, gates, notes
+    coverage: Dict[str, Any] = field(default_factory=dict)
+    compiler: str = ""
+    cflags: List[str] = field(default_factory=list)
 
     @property
     def ok(self) -> bool:
@@ -81,7 +87,133 @@ class VerifyResult:
                   for n, a, d, s in zip(self.state_names, self.x_abs, self.x_dev, self.x_step)},
             "P": {"max_normalized": self.P_dev, "step": self.P_step},
             "status_mismatch": self.status_mismatch,
+            "coverage": self.coverage, "compiler": self.compiler, "cflags": self.cflags,
         }
+
+
+#: verify's default length: at least MIN_STEPS, every sensor UPDATES_PER_SENSOR times, three of the
+#: model's slowest time constants (or two of its slowest oscillation periods), at most MAX_STEPS
+MIN_STEPS, MAX_STEPS, UPDATES_PER_SENSOR = 200, 5000, 50
+PF_MAX_STEPS = 400
+
+
+def model_time_scale(spec: ModelSpec, dt: float) -> Optional[float]:
+    """The slowest time scale of the dynamics at x0 with the scenario's first input, in seconds:
+    3 x the slowest time constant of a decaying mode or 2 x the slowest oscillation period, from
+    the eigenvalues mu of F = df/dx (central differences; a discrete mode mu has the rate
+    ln|mu| / dt and the angular frequency arg(mu) / dt). None when every mode is neutral."""
+    mf = model_functions(spec)
+    p = mf.param_tuple(spec.param_defaults())
+    x0 = np.array(spec.x0, dtype=float)
+    u0 = np.zeros(spec.nu)
+    if spec.input_profile is not None:
+        u0 = np.asarray(spec.input_profile(0.0), dtype=float).reshape(-1)
+    F = np.empty((spec.n, spec.n))
+    with np.errstate(all="ignore"):
+        for j in range(spec.n):
+            h = 1e-6 * max(1.0, abs(x0[j]))
+            e = np.zeros(spec.n)
+            e[j] = h
+            F[:, j] = (mf.f(x0 + e, u0, dt, p) - mf.f(x0 - e, u0, dt, p)) / (2 * h)
+        if not np.all(np.isfinite(F)):
+            return None
+        mu = np.linalg.eigvals(F)
+    scales = []
+    for m in mu:
+        mag = abs(m)
+        if mag == 0.0:
+            continue
+        rate = -np.log(mag) / dt
+        if rate > 1e-9 / dt:  # decaying: three time constants
+            scales.append(3.0 / rate)
+        omega = abs(np.angle(m)) / dt
+        if omega > 1e-9 / dt:  # oscillating: two periods
+            scales.append(2.0 * 2.0 * np.pi / omega)
+    return max(scales) if scales else None
+
+
+def default_steps(spec: ModelSpec, dt: float) -> Tuple[int, str]:
+    """verify's scenario length for ``spec`` and why (see :data:`MIN_STEPS`)."""
+    every = max((s.every for s in spec.sensors), default=1)
+    reasons = [(MIN_STEPS, f"the minimum {MIN_STEPS}")]
+    if spec.sensors:
+        slow = max(spec.sensors, key=lambda s: s.every)
+        reasons.append((UPDATES_PER_SENSOR * every, f"{UPDATES_PER_SENSOR} updates of {slow.name} (every {every} steps)"))
+    scale = model_time_scale(spec, dt)
+    if scale is not None:
+        reasons.append((int(np.ceil(scale / dt)), f"the dynamics' slowest time scale {scale:.3g} s"))
+    steps, why = max(reasons, key=lambda r: r[0])
+    if steps > MAX_STEPS:
+        return MAX_STEPS, f"{why} capped at {MAX_STEPS} steps"
+    return steps, why
+
+
+def _inject_outliers(spec: ModelSpec, scen: Any) -> Dict[str, List[int]]:
+    """Exercise every chi-square gate: two reports of each gated sensor (at a third and two thirds
+    of its reports) get an outlier of 1000 standard deviations of R on component 0. Both filters
+    see the same data, so the gate path is compared like any other. Returns the steps per sensor."""
+    mf = model_functions(spec)
+    p = mf.param_tuple(spec.param_defaults())
+    done: Dict[str, List[int]] = {}
+    for s in spec.sensors:
+        if s.gate is None:
+            continue
+        ks = [k for k, row in enumerate(scen.measurements) if any(name == s.name for name, _ in row)]
+        if len(ks) < 3:
+            continue
+        sigma = float(np.sqrt(max(mf.R(s.name, p)[0, 0], 0.0)))
+        picked = [ks[len(ks) // 3], ks[2 * len(ks) // 3]]
+        for k in picked:
+            row = scen.measurements[k]
+            for i, (name, z) in enumerate(row):
+                if name == s.name:
+                    z = np.array(z, dtype=float)
+                    z[0] += 1000.0 * max(sigma, 1e-6 * max(1.0, abs(z[0])))
+                    if s.angles[0]:
+                        z[0] = float(np.arctan2(np.sin(z[0]), np.cos(z[0])))
+                    row[i] = (name, z)
+        done[s.name] = picked
+    return done
+
+
+def _status_counts(st: np.ndarray) -> Dict[str, int]:
+    out: Dict[str, int] = {}
+    for v in st[st >= 0]:
+        name = Status(int(v)).name
+        out[name] = out.get(name, 0) + 1
+    return out
+
+
+def _coverage(spec: ModelSpec, scen: Any, rc: Dict[str, Any], rr: Dict[str, Any], why: str,
+              outliers: Dict[str, List[int]]) -> Dict[str, Any]:
+    """What the run exercised, for the report and the notes on what it did not."""
+    calls = int(rc["predict_status"].size)
+    agree = int(np.sum(rc["predict_status"] == rr["predict_status"]))
+    sensors: Dict[str, Any] = {}
+    notes: List[str] = []
+    for s in spec.sensors:
+        a, b = rc["update_status"][s.name], rr["update_status"][s.name]
+        reported = int(np.sum(a >= 0))
+        calls += reported
+        agree += int(np.sum((a == b) & (a >= 0)))
+        sensors[s.name] = {"updates": reported, "c": _status_counts(a), "reference": _status_counts(b)}
+        if reported < UPDATES_PER_SENSOR:
+            notes.append(f"sensor {s.name} updated only {reported} times (raise --steps)")
+        if s.gate is not None:
+            gated = sensors[s.name]["c"].get("GATED", 0)
+            sensors[s.name]["outliers_injected"] = len(outliers.get(s.name, []))
+            if not gated:
+                notes.append(f"the gate of {s.name} never rejected a measurement: its path was not exercised")
+    wraps: Dict[str, int] = {}
+    for i, st in enumerate(spec.states):
+        if st.angle:
+            jumps = np.abs(np.diff(scen.x_true[:, i]))
+            wraps[st.name] = int(np.sum(jumps > np.pi))
+            if not wraps[st.name]:
+                notes.append(f"angle {st.name} never crossed +-pi in this scenario: the wrap was not exercised")
+    return {"length": why, "dt": scen.dt, "calls": calls, "statuses_agree": agree, "sensors": sensors,
+            "predict": {"c": _status_counts(rc["predict_status"]), "reference": _status_counts(rr["predict_status"])},
+            "wraps": wraps, "notes": notes}
 
 
 def _state_sigma(spec: ModelSpec, sig: np.ndarray) -> np.ndarray:
@@ -98,20 +230,29 @@ def _state_sigma(spec: ModelSpec, sig: np.ndarray) -> np.ndarray:
     return out
 
 
-def verify(model: Any, filter: str = "ekf", precision: str = "float", steps: int = 200, seed: int = 0,
+def verify(model: Any, filter: str = "ekf", precision: str = "float", steps: Optional[int] = None, seed: int = 0,
            dt: Optional[float] = None, gates: Optional[Dict[str, float]] = None, commit_check: str = "cholesky",
            progress: bool = False, **options: Any) -> VerifyResult:
     """Run C and reference side by side on one simulated scenario and compare every step.
     ``gates`` sets chi-square gate probabilities per sensor for both filters; ``commit_check``
-    is the C's (see :func:`estgen.emit.generate`). ``progress``: a progress line on stderr."""
+    is the C's (see :func:`estgen.emit.generate`). ``progress``: a progress line on stderr.
+    ``steps`` defaults to :func:`default_steps`; every chi-square gate gets two outliers."""
     spec: ModelSpec = with_gates(as_spec(model), gates)
     check_filter_support(spec, filter)
     pf = filter == "pf"
     if pf:
         options.setdefault("seed", seed)
+    dtv = scenario_dt(spec, dt)
+    if steps is None:
+        steps, why = default_steps(spec, dtv)
+        if pf and steps > PF_MAX_STEPS:  # the numpy particle filter is slow: bound its run time
+            steps, why = PF_MAX_STEPS, f"{why}, capped at {PF_MAX_STEPS} steps for the particle filter"
+    else:
+        why = "--steps"
     with Progress("verify", 4, progress) as bar:
-        bar.step("simulating the scenario")
-        scen = make_scenario(spec, steps, seed, dt=dt)
+        bar.step(f"simulating {steps} steps")
+        scen = make_scenario(spec, steps, seed, dt=dtv)
+        outliers = _inject_outliers(spec, scen)
         bar.step("generating and compiling the C")
         c = build(spec, filter=filter, precision=precision, commit_check=commit_check, **options)
         r = reference(spec, filter=filter, **options)
@@ -122,6 +263,7 @@ def verify(model: Any, filter: str = "ekf", precision: str = "float", steps: int
         rc = run_filter(c, scen)
         bar.step("running the reference")
         rr = run_filter(r, scen)
+    cc_version, cc_flags = compiler_used()
     tol_x, tol_P = TOLERANCE[precision]
     n = spec.n
     xr, xc = rr["x"], rc["x"]
@@ -168,6 +310,7 @@ def verify(model: Any, filter: str = "ekf", precision: str = "float", steps: int
         x_step=[int(np.argmax(ndx[:, i])) for i in range(n)],
         P_dev=float(np.max(ndP)), P_step=kP, status_mismatch=mism,
         state_names=[s.name for s in spec.states], tol_x=tol_x, tol_P=tol_P,
+        coverage=_coverage(spec, scen, rc, rr, why, outliers), compiler=cc_version, cflags=cc_flags,
     )
 
 
@@ -197,16 +340,26 @@ def _pf_float_ratios(spec: ModelSpec, options: Dict[str, Any], scen: Any, rr: Di
     return np.broadcast_to(rx, rr["x"].shape), np.broadcast_to(rP, rr["P"].shape), parted
 
 
+def _counts(c: Dict[str, int]) -> str:
+    return ", ".join(f"{k} {v}" for k, v in sorted(c.items(), key=lambda kv: Status[kv[0]].value)) or "-"
+
+
 def format_result(res: VerifyResult) -> str:
-    """The table `estgen verify` prints."""
+    """The table `estgen verify` prints: the deviations, then what the run covered."""
     unit = "max(|x|, sigma)" if res.precision == "double" else "sigma"
     if res.filter == "pf" and res.precision == "float":
         unit = "other seeds' RMS"  # a statistical bound: see the module text
+    cov = res.coverage
     lines = [
         f"estgen verify: {res.model} {res.filter.upper()} ({res.precision}) against the numpy reference, "
-        f"{res.steps} steps, seed {res.seed}",
-        f"  {'state':<16} {'max |dx|':>12} {'/ ' + unit:>18} {'tolerance':>10} {'step':>6}",
+        f"seed {res.seed}",
     ]
+    if cov:
+        lines.append(f"  scenario: {res.steps} steps of {cov['dt']:g} s ({res.steps * cov['dt']:g} s); "
+                     f"length from {cov['length']}")
+    if res.compiler:
+        lines.append(f"  C compiled by {res.compiler}: {' '.join(res.cflags)}")
+    lines += ["", f"  {'state':<16} {'max |dx|':>12} {'/ ' + unit:>18} {'tolerance':>10} {'step':>6}"]
     for name, a, d, k in zip(res.state_names, res.x_abs, res.x_dev, res.x_step):
         flag = "" if d <= res.tol_x else "  FAIL"
         lines.append(f"  {name:<16} {a:12.3e} {d:18.3e} {res.tol_x:10.2g} {k:6d}{flag}")
@@ -214,6 +367,18 @@ def format_result(res: VerifyResult) -> str:
     what = "(RMS |dP_ij| over the other seeds')" if unit.startswith("other") else "(|dP_ij| / sigma_i sigma_j)"
     lines.append(f"  {'P (all entries)':<16} {'':>12} {res.P_dev:18.3e} {res.tol_P:10.2g} {res.P_step:6d}{flag}"
                  f"   {what}")
+    if cov:
+        lines += ["", f"  {'call':<16} {'calls':>7}  statuses of the C (the reference's are compared one by one)"]
+        pred = cov["predict"]["c"]
+        lines.append(f"  {'predict':<16} {res.steps:7d}  {_counts(pred)}")
+        for name, sc in cov["sensors"].items():
+            extra = f"; {sc['outliers_injected']} outliers injected" if "outliers_injected" in sc else ""
+            lines.append(f"  {'update ' + name:<16} {sc['updates']:7d}  {_counts(sc['c'])}{extra}")
+        lines.append(f"  status codes agree on {cov['statuses_agree']} of {cov['calls']} calls")
+        for name, k in cov["wraps"].items():
+            lines.append(f"  angle {name}: the truth crossed +-pi {k} times")
+        for note in cov["notes"]:
+            lines.append(f"  note: {note}")
     for m in res.status_mismatch:
         lines.append(f"  status differs: {m}  FAIL")
     lines.append("  result: " + ("PASS, the C matches the reference" if res.ok else "FAIL"))
