@@ -709,9 +709,13 @@ def _augmented(blk: _Block, spec: ModelSpec, noise: Sequence[sp.Symbol], cov: sp
     L = _factor_symbols(n)
     names = c_names(spec, "x")
     A = noise_factor(cov)
+    same: Dict[sp.Expr, sp.Expr] = {}  # equal variances (three axes of one sensor): one square root
     for i in range(k):
         for j in range(i + 1):
-            L[(n + i, n + j)] = blk.value(f"{tag}nf{i}_{j}", A[i, j].xreplace(names))
+            e = A[i, j].xreplace(names)
+            if e not in same:
+                same[e] = blk.value(f"{tag}nf{i}_{j}", e)
+            L[(n + i, n + j)] = same[e]
         for j in range(n):
             L[(n + i, j)] = sp.S.Zero
     aug = UkfWeights(n + k, wts.alpha, wts.beta, wts.kappa) if k else wts

@@ -21,6 +21,19 @@ def ukf_weights(spec: ModelSpec, **options: Any) -> UkfWeights:
     return check_options(spec.ne, dict(options))
 
 
+def _augmented_note(spec: ModelSpec, wts: UkfWeights, em: Emitter) -> List[str]:
+    """Header lines for the calls whose sigma points are those of an augmented vector."""
+    out: List[str] = []
+    calls = [("predict", "[x; w]", [v.name for v in spec.noise if v.enters == "process"])]
+    calls += [(f"update_{s.name}", "[x; v]", [v.name for v in spec.noise if v.enters == s.name]) for s in spec.sensors]
+    for call, vec, names in calls:
+        if names:
+            aug = UkfWeights(wts.n + len(names), wts.alpha, wts.beta, wts.kappa)
+            out.append(f"{call}: sigma points of {vec} with the noise symbols {' '.join(names)}: 2N+1 = "
+                       f"{2 * aug.n + 1}, Wm0 = {em.lit(aug.wm0)}, Wc0 = {em.lit(aug.wc0)}, Wm_i = {em.lit(aug.w)}.")
+    return out
+
+
 def _stack_bytes(stmts_decls: int, arrays: int, size_real: int) -> int:
     return (stmts_decls + arrays) * size_real
 
@@ -81,7 +94,7 @@ def generate_ukf(spec: ModelSpec, precision: str = "float", commit_check: str = 
         f"Weights: Wm0 = {ctx['weights']['wm0']}, Wc0 = {ctx['weights']['wc0']}, "
         f"Wm_i = Wc_i = {ctx['weights']['wm']} (i = 1..{2 * ne});",
         f"alpha = {ctx['weights']['alpha']}, beta = {ctx['weights']['beta']}, kappa = {ctx['weights']['kappa']}.",
-    ]
+    ] + _augmented_note(spec, wts, em)
     ctx["sigma_stack"] = {"predict": p_bytes, "update": u_bytes}
     gen = _render(ctx, "ukf.c.j2")
     gen.sigma_stack = dict(ctx["sigma_stack"])  # type: ignore[attr-defined]

@@ -75,14 +75,14 @@ def test_filter_support(example: tuple) -> None:
 
 
 def _funcs(spec: ModelSpec):
-    """Numeric f(x, u) and h_s(x) at the parameter defaults and the scenario dt, with their
+    """Numeric f(x, u) and h_s(x) (noise symbols at zero) at the parameter defaults and the scenario dt, with their
     sympy Jacobians, all through lambdify."""
     subs = {**spec.default_subs(), spec.dt: spec.scenario_dt}
     xs, us = spec.x_syms, spec.u_syms
-    f = spec.f.xreplace({k: sp.Float(v) for k, v in subs.items()})
+    f = spec.f0.xreplace({k: sp.Float(v) for k, v in subs.items()})
     out = [("f", sp.lambdify([xs, us], f, "numpy"), sp.lambdify([xs, us], f.jacobian(xs), "numpy"))]
     for s in spec.sensors:
-        h = s.h.xreplace({k: sp.Float(v) for k, v in subs.items()})
+        h = s.h0.xreplace({k: sp.Float(v) for k, v in subs.items()})
         out.append((s.name, sp.lambdify([xs, us], h, "numpy"), sp.lambdify([xs, us], h.jacobian(xs), "numpy")))
     return out
 

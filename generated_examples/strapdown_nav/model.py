@@ -22,12 +22,16 @@ vn, ve, vd = model.states("vn ve vd", units="m/s")
 roll, pitch, yaw = model.states("roll pitch yaw", angle=True, units="rad")
 bgx, bgy, bgz = model.states("bgx bgy bgz", units="rad/s")       # gyro biases
 bax, bay, baz = model.states("bax bay baz", units="m/s^2")       # accelerometer biases
-wx, wy, wz = model.inputs("wx wy wz", units="rad/s")             # body rates, gyro
-fx, fy, fz = model.inputs("fx fy fz", units="m/s^2")             # specific force, accel
+# The IMU's white noise enters where it physically does, through the measured inputs
+# (u_true = u_meas - noise); per-sample variances from an invented consumer-grade MEMS IMU:
+# angle random walk 0.005 rad/sqrt(s) and velocity random walk 0.02 m/s/sqrt(s), so a rate held
+# over one step dt has variance ARW^2 / dt (VRW^2 / dt for the specific force).
+dt = model.dt
+wx, wy, wz = model.inputs("wx wy wz", units="rad/s", noise=[0.005 ** 2 / dt] * 3)   # body rates, gyro
+fx, fy, fz = model.inputs("fx fy fz", units="m/s^2", noise=[0.02 ** 2 / dt] * 3)    # specific force, accel
 
 # Standard gravity 9.80665 m/s^2 (from memory); a runtime parameter for local values.
 g = model.param("g", 9.80665, unit="m/s^2")
-dt = model.dt
 
 cr, sr = sp.cos(roll), sp.sin(roll)
 cp, spp = sp.cos(pitch), sp.sin(pitch)
@@ -56,12 +60,11 @@ model.process(
     + [bgx, bgy, bgz, bax, bay, baz]
 )
 
-# Q from an invented consumer-grade MEMS IMU: velocity random walk 0.02 m/s/sqrt(s), angle
-# random walk 0.005 rad/sqrt(s), bias random walks 1e-5 rad/s/sqrt(s) and 1e-4 m/s^2/sqrt(s);
-# a small position term covers the Euler step.
-model.process_noise(
-    [1e-6 * dt] * 3 + [0.02 ** 2 * dt] * 3 + [0.005 ** 2 * dt] * 3 + [1e-5 ** 2 * dt] * 3 + [1e-4 ** 2 * dt] * 3
-)
+# Additive Q keeps what the inputs do not carry: the bias random walks 1e-5 rad/s/sqrt(s) and
+# 1e-4 m/s^2/sqrt(s), and a small position term covering the Euler step. The velocity and
+# attitude terms come from the IMU noise above, rotated into NED and through the Euler-angle
+# kinematics by the filter itself.
+model.process_noise([1e-6 * dt] * 3 + [0.0] * 6 + [1e-5 ** 2 * dt] * 3 + [1e-4 ** 2 * dt] * 3)
 
 # Satellite fixes at 10 Hz for a 100 Hz IMU (every 10 steps): 1.5 m horizontal, 3 m vertical
 # position and 0.1 m/s velocity, 1-sigma (invented, typical of a small receiver from memory).
