@@ -692,7 +692,7 @@ def _recommend(outcomes: Dict[str, FilterOutcome], margin: float, budget: Budget
                     "this is the most accurate consistent one")
         else:
             head = (f"{pick.name.upper()}: no filter{that_fits} is consistent; this is the most accurate, "
-                    "use it with care")
+                    f"use it with care ({_inconsistency(pick, lin) or _trouble(pick)})")
     pc = pick.cost or {}
     head += (f" ({pc.get('instructions_per_step')} instructions per step, {pc.get('flash_bytes')} B flash, "
              f"RAM {pc.get('ram_bytes')} B + stack {pc.get('stack_bytes')} B)")
@@ -771,7 +771,7 @@ def format_comparison(c: Comparison) -> str:
     if c.linearization is not None:
         lz = c.linearization
         lines.append("")
-        over = (f"above {lz.limit:g} at {100 * lz.fraction_over:.0f}% of the steps, first at step {lz.first_over}"
+        over = (f"above {lz.limit:g} at {100 * lz.fraction_over:.1f}% of the steps, first at step {lz.first_over}"
                 if lz.first_over is not None else f"never above {lz.limit:g}")
         lines.append(f"linearization check (EKF against the unscented transform, Förstner-Moonen distance of the "
                      f"covariances, {lz.runs} runs): worst {_fmt(lz.worst, '.3g')} at step {lz.worst_step}; {over}")
