@@ -35,7 +35,6 @@ import dataclasses
 import hashlib
 import json
 import math
-import sys
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -47,6 +46,7 @@ from ._version import __version__
 from .chi2 import chi2_ppf
 from .errors import ModelError
 from .model import ModelSpec, as_spec, check_filter_support
+from .progress import Progress, wanted
 from .simulate import (INSIDE_REQUIRED, MonteCarloResult, Scenario, StatSummary, make_scenario, pyplot, run_filter,
                        save_figure, score_run, summarize_runs, write_outputs)
 
@@ -518,7 +518,7 @@ def compare(
         raise ModelError(f"--margin must be a number >= 0, got {margin}")
     budget = budget or Budget()
     truth = _truth_spec(spec, truth_initial)
-    show = sys.stderr.isatty() if progress is None else bool(progress)
+    show = wanted(force=True) if progress else (progress is None and wanted())
 
     options = {name: _filter_options(name, alpha, beta, kappa) for name in names}
     factories = {name: _factory(spec, name, precision, use_reference, options[name]) for name in names}
@@ -528,8 +528,9 @@ def compare(
     lin_pred: List[np.ndarray] = []
     lin_step: List[np.ndarray] = []
     scenario0: Optional[Scenario] = None
-    try:
+    with Progress("compare", runs + len(names), show) as prog:
         for r in range(runs):
+            prog.step(f"run {r + 1} of {runs}")
             sc = make_scenario(truth, steps, seed=[seed, r], dt=dt)
             if r == 0:
                 scenario0 = sc
@@ -541,19 +542,14 @@ def compare(
                 per[name].append(res)
                 seconds[name] += time.perf_counter() - t0
                 if name == "ekf" and r < LINEARIZATION_RUNS:
-                    p, s = _linearization_run(spec, sc, out, ukf_opts)
-                    lin_pred.append(p)
-                    lin_step.append(s)
-            _say(show, f"\rcompare: run {r + 1}/{runs}, {time.perf_counter() - started:.1f} s ")
-        _say(show, "\n")
+                    lp, ls = _linearization_run(spec, sc, out, ukf_opts)
+                    lin_pred.append(lp)
+                    lin_step.append(ls)
         assert scenario0 is not None
         costs: Dict[str, Dict[str, int]] = {}
         for name in names:
-            _say(show, f"compare: cost of the {name.upper()} on the emulated Cortex-M4F\n")
+            prog.step(f"cost of the {name.upper()} on the emulated Cortex-M4F")
             costs[name] = measure_cost(spec, name, _head(scenario0, cost_steps), **options[name])
-    finally:
-        if show:
-            sys.stderr.flush()
 
     impl = "reference" if use_reference else f"c-{precision}"
     outcomes: Dict[str, FilterOutcome] = {}
@@ -585,12 +581,6 @@ def _nanmean(a: np.ndarray) -> np.ndarray:
     out = np.full(a.shape[1:], np.nan)
     np.divide(np.nansum(a, axis=0), cnt, out=out, where=cnt > 0)
     return out
-
-
-def _say(show: bool, text: str) -> None:
-    if show:
-        sys.stderr.write(text)
-        sys.stderr.flush()
 
 
 def _factory(spec: ModelSpec, name: str, precision: str, use_reference: bool, options: Dict[str, Any]
