@@ -81,6 +81,8 @@ REFUSAL_STREAK = 10
 COST_STEPS = 100
 #: runs the linearization check follows (each costs a reference EKF and UKF step per step)
 LINEARIZATION_RUNS = 10
+#: every filter kind compare knows, cheapest kind first
+FILTER_KINDS = ("ekf", "ukf", "pf")
 #: the target whose float build the cost figures describe (contract: ``report --target cortex-m4f``)
 COST_TARGET = "cortex-m4f"
 
@@ -88,7 +90,7 @@ COST_TARGET = "cortex-m4f"
 def available_filters(spec: ModelSpec) -> List[str]:
     """Every filter kind whose support check accepts ``spec``, cheapest kind first."""
     out = []
-    for name in ("ekf", "ukf"):
+    for name in FILTER_KINDS:
         try:
             check_filter_support(spec, name)
         except ModelError:
@@ -97,8 +99,18 @@ def available_filters(spec: ModelSpec) -> List[str]:
     return out
 
 
-def _filter_options(name: str, alpha: float, beta: float, kappa: float) -> Dict[str, Any]:
-    return {"alpha": alpha, "beta": beta, "kappa": kappa} if name == "ukf" else {}
+def _filter_options(name: str, alpha: float, beta: float, kappa: float, particles: Optional[int]) -> Dict[str, Any]:
+    if name == "ukf":
+        return {"alpha": alpha, "beta": beta, "kappa": kappa}
+    if name == "pf" and particles is not None:
+        return {"particles": particles}
+    return {}
+
+
+def _run_seed(seed: int, run: int) -> int:
+    """The particle filter's generator seed for one run: its own stream per run, fixed by
+    the comparison's seed (32 bits, as the generated C's init_seed takes it)."""
+    return int(np.random.SeedSequence([seed, run, 0x9F]).generate_state(1)[0])
 
 
 # ---------------------------------------------------------------------------------------------
@@ -478,6 +490,7 @@ def compare(
     alpha: float = 1.0,
     beta: float = 2.0,
     kappa: float = 0.0,
+    particles: Optional[int] = None,
     margin: float = DEFAULT_MARGIN,
     budget: Optional[Budget] = None,
     truth_initial: Optional[Tuple[Sequence[float], Any]] = None,
@@ -520,7 +533,9 @@ def compare(
     truth = _truth_spec(spec, truth_initial)
     show = wanted(force=True) if progress else (progress is None and wanted())
 
-    options = {name: _filter_options(name, alpha, beta, kappa) for name in names}
+    if particles is not None and "pf" not in names:
+        raise ModelError("--particles applies when the particle filter takes part (--filters ...,pf)")
+    options = {name: _filter_options(name, alpha, beta, kappa, particles) for name in names}
     factories = {name: _factory(spec, name, precision, use_reference, options[name]) for name in names}
     ukf_opts = {"alpha": alpha, "beta": beta, "kappa": kappa}
     per: Dict[str, List[Dict[str, Any]]] = {name: [] for name in names}
@@ -536,7 +551,7 @@ def compare(
                 scenario0 = sc
             for name in names:
                 t0 = time.perf_counter()
-                out = run_filter(factories[name](), sc)
+                out = run_filter(factories[name](_run_seed(seed, r)), sc)
                 res = score_run(spec, sc, out, keep_run=(r == 0))
                 res["diverged"] = _diverged(res, out, spec.ne)  # NEES dof: the error dimension
                 per[name].append(res)
@@ -584,19 +599,22 @@ def _nanmean(a: np.ndarray) -> np.ndarray:
 
 
 def _factory(spec: ModelSpec, name: str, precision: str, use_reference: bool, options: Dict[str, Any]
-             ) -> Callable[[], Any]:
-    """A function returning a fresh filter at the model's initial state; the C is generated and
-    compiled (or loaded from the build cache) once."""
+             ) -> Callable[[int], Any]:
+    """A function of a run's seed returning a fresh filter at the model's initial state (the
+    seed starts the particle filter's generator; the other kinds draw nothing). The C is
+    generated and compiled (or loaded from the build cache) once."""
     if use_reference:
         from .reference import model_functions, reference
 
         model_functions(spec)  # lambdified once, shared by every fresh reference
-        return lambda: reference(spec, filter=name, **options)
+        if name == "pf":
+            return lambda seed: reference(spec, filter=name, seed=seed, **options)
+        return lambda seed: reference(spec, filter=name, **options)
     from .build import CFilter, compile_generated
     from .emit import generate
 
     comp = compile_generated(generate(spec, filter=name, precision=precision, **options))
-    return lambda: CFilter(spec, comp, name)
+    return lambda seed: CFilter(spec, comp, name, seed=seed if name == "pf" else None)
 
 
 # ---------------------------------------------------------------------------------------------
@@ -857,6 +875,8 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--alpha", type=float, default=1.0, help="UKF sigma-point spread (default 1)")
     parser.add_argument("--beta", type=float, default=2.0, help="UKF prior-distribution term (default 2)")
     parser.add_argument("--kappa", type=float, default=0.0, help="UKF secondary scaling (default 0)")
+    parser.add_argument("--particles", type=int, default=None,
+                        help="particle filter: number of particles (default: the PF's default)")
     parser.add_argument("--dt", type=float, default=None, help="simulation step in seconds")
     parser.add_argument("--margin", type=float, default=DEFAULT_MARGIN,
                         help=f"RMSE within this fraction of the best counts as as accurate (default {DEFAULT_MARGIN:g})")
@@ -907,6 +927,7 @@ def run(args: argparse.Namespace) -> int:
         raise ModelError("--filters: name at least one filter, e.g. --filters ekf,ukf")
     res = compare(args.model, filters, args.runs, args.steps, args.seed, precision=args.precision,
                   use_reference=args.reference, alpha=args.alpha, beta=args.beta, kappa=args.kappa,
+                  particles=args.particles,
                   margin=args.margin, budget=budget_from_args(args), dt=args.dt,
                   progress=True if args.progress else (False if args.quiet else None))
     write_outputs(args, res.to_json, lambda path: plot_comparison(res, path), lambda: format_comparison(res))
