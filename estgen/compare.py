@@ -751,7 +751,7 @@ def format_comparison(c: Comparison) -> str:
     for s, unit in zip(c.states, c.units):
         row = f"  {s:<{sw}}" + " " * max(0, 12 - sw) + "".join(f"{_fmt(c.filters[n].stats.rmse[s]):>{w}}" for n in names)
         lines.append(row + (f"  {unit}" if unit else ""))
-    lines.append(f"  {'worst / best':<{max(sw, 12)}}" + "".join(f"{_fmt(c.filters[n].accuracy_ratio, '.3f'):>{w}}"
+    lines.append(f"  {'worst / best':<{max(sw, 12)}}" + "".join(f"{_fmt(c.filters[n].accuracy_ratio, '.4g'):>{w}}"
                                                            for n in names))
     lines.append("")
     lines.append(f"  {'filter':<6} {'NEES mean':>10} {'95% bounds':>20} {'inside':>7} {'verdict':>14} "
@@ -760,7 +760,7 @@ def format_comparison(c: Comparison) -> str:
         o = c.filters[n]
         ne = o.stats.nees
         nis = min((s.fraction_inside for s in o.stats.nis.values() if math.isfinite(s.fraction_inside)), default=math.nan)
-        lines.append(f"  {n.upper():<6} {_fmt(ne.mean, '10.3f')} {'[' + _fmt(ne.lower, '.3f') + ', ' + _fmt(ne.upper, '.3f') + ']':>20} "
+        lines.append(f"  {n.upper():<6} {_fmt(ne.mean, '10.4g')} {'[' + _fmt(ne.lower, '.3f') + ', ' + _fmt(ne.upper, '.3f') + ']':>20} "
                      f"{_fmt(100 * ne.fraction_inside, '6.1f')}% {('consistent' if o.consistent else ne.verdict if ne.verdict != 'consistent' else 'NIS out'):>14} "
                      f"{_fmt(100 * nis, '10.1f')}% {o.diverged_runs:>4}/{o.stats.runs:<4} {sum(o.stats.refusals.values()):>8}")
     lines.append(f"  (consistent: NEES and every NIS inside their bounds at {100 * INSIDE_REQUIRED:.0f}% of the "
@@ -817,7 +817,7 @@ def plot_comparison(c: Comparison, path: str) -> None:
     ax.set_xlabel("instructions per step, float build on the Cortex-M4F")
     ax.set_ylabel("worst RMSE / best")
     ax.set_title(f"{c.model}: accuracy against cost; recommended {c.recommended.upper()}")
-    ax.legend(loc="upper right", fontsize="small")
+    ax.legend(loc="best", fontsize="small")
     t = np.arange(1, c.steps + 1) * c.dt
     for i, (s, unit) in enumerate(zip(c.states, c.units)):
         ax = axes[1 + i]
