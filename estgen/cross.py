@@ -161,6 +161,16 @@ def _compiler_version(cc: str) -> str:
     return _VERSIONS[cc]
 
 
+def toolchain(target: Union[str, Target], opt: str = "-O2") -> Dict[str, Any]:
+    """The compiler :func:`compile_object` runs for ``target`` (its ``--version`` first line)
+    and the flags it passes: what a report's figures were measured with."""
+    tgt = TARGETS[target] if isinstance(target, str) else target
+    cc = find_tool(tgt.cc)
+    first = _compiler_version(cc).splitlines()
+    return {"compiler": tgt.cc, "version": first[0].strip() if first else tgt.cc,
+            "flags": [*WARNINGS, opt, "-fstack-usage", "-fcallgraph-info=su", *tgt.flags]}
+
+
 def compile_object(
     source: PathLike,
     target: Union[str, Target],
@@ -526,6 +536,7 @@ class CallStats:
     ticks: int
     refused: int
     stack: int  # deepest stack byte touched, from the paint probe (0 when not probed)
+    max_ticks: int = 0  # the slowest single call (0 from a replay that does not record it)
 
 
 @dataclass
@@ -576,6 +587,14 @@ class ReplayResult:
         bracket = self.overhead[1] / self.overhead[0]
         return ipt * (stats.ticks / stats.calls - bracket)
 
+    def worst_instructions_per_call(self, stats: CallStats) -> Optional[float]:
+        """Instructions of the slowest single call, less the timing bracket's cost (resolution:
+        one SysTick, instructions_per_tick instructions)."""
+        ipt = self.instructions_per_tick()
+        if ipt is None or stats.calls == 0 or self.overhead is None or not stats.max_ticks:
+            return None
+        return ipt * (stats.max_ticks - self.overhead[1] / self.overhead[0])
+
 
 def parse_replay_output(text: str, precision: str) -> ReplayResult:
     """Parse main.c's output records (see the comment at the top of main.c)."""
@@ -589,9 +608,9 @@ def parse_replay_output(text: str, precision: str) -> ReplayResult:
             res.calib = (int(p[1]), int(p[2]), int(p[3]))
         elif p[0] == "overhead" and len(p) == 3:
             res.overhead = (int(p[1]), int(p[2]))
-        elif p[0] == "predict" and len(p) == 5:
+        elif p[0] == "predict" and len(p) in (5, 6):
             res.predict = CallStats(*(int(v) for v in p[1:]))
-        elif p[0] == "update" and len(p) == 6:
+        elif p[0] == "update" and len(p) in (6, 7):
             res.updates[p[1]] = CallStats(*(int(v) for v in p[2:]))
         elif p[0] == "x" and len(p) == 3:
             res.x_bits.append(p[2])

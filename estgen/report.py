@@ -46,6 +46,9 @@ __all__ = ["add_arguments", "run", "make_report", "format_report", "count_c_ops"
 
 DEFAULT_STEPS = 200
 DEFAULT_SEED = 0
+#: the clock the report converts instructions to microseconds at, unless --clock-mhz says
+#: otherwise: a common Cortex-M4F part's maximum (e.g. STM32F407 at 168 MHz)
+DEFAULT_CLOCK_MHZ = 168.0
 
 _OP_KEYS = ("add", "mul", "div", "sqrt", "transcendental")
 
@@ -66,6 +69,8 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--alpha", type=float, help="UKF: sigma-point spread")
     parser.add_argument("--beta", type=float, help="UKF: prior-knowledge weight")
     parser.add_argument("--kappa", type=float, help="UKF: secondary scaling")
+    parser.add_argument("--clock-mhz", type=float, default=DEFAULT_CLOCK_MHZ,
+                        help=f"core clock for the microsecond columns (default {DEFAULT_CLOCK_MHZ:g} MHz)")
     parser.add_argument("-q", "--quiet", action="store_true", help="no progress on stderr")
     parser.add_argument("--progress", action="store_true", help="show progress even when stderr is not a terminal")
 
@@ -86,7 +91,10 @@ def run(args: argparse.Namespace) -> int:
         for tool, what in rep["missing"].items():
             print(f"estgen report: {ToolMissing(tool)} (needed for {'; '.join(what)})", file=sys.stderr)
         return 2
-    print(format_report(rep))
+    if not args.clock_mhz > 0:
+        print("estgen report: --clock-mhz must be > 0", file=sys.stderr)
+        return 2
+    print(format_report(rep, clock_mhz=args.clock_mhz))
     if args.json:
         Path(args.json).write_text(json.dumps(rep, indent=2, sort_keys=True) + "\n")
     return 0
@@ -318,6 +326,7 @@ def make_report(model: Any, filter: str = "ekf", precision: str = "float", targe
 def _static_figures(rep: Dict[str, Any], header: Path, source: Path, target: str, obj_dir: Path,
                     fn_names: Sequence[str]) -> None:
     try:
+        rep["toolchain"] = cross.toolchain(target)
         rep["ram_bytes"] = cross.struct_size(header, rep["struct"], target, obj_dir)
         obj = cross.compile_object(source, target, obj_dir, include_dirs=[header.parent])
         sizes = cross.section_sizes(obj, target)
@@ -357,7 +366,9 @@ def _instruction_figures(rep: Dict[str, Any], spec: Any, filter: str, precision:
             if stats is None or stats.calls == 0:
                 continue
             ipc = res.instructions_per_call(stats)
+            worst = res.worst_instructions_per_call(stats)
             m4[fn] = {"calls": stats.calls, "instructions_per_call": None if ipc is None else round(ipc, 1),
+                      "worst_instructions_per_call": None if worst is None else round(worst, 1),
                       "stack_high_water": stats.stack, "refused": stats.refused}
         m4["per_step"] = _per_step(m4, fn_names, steps)
         rep["instructions"]["qemu-cortex-m4f"] = m4
@@ -374,6 +385,8 @@ def _instruction_figures(rep: Dict[str, Any], spec: Any, filter: str, precision:
             if calls:
                 host[fn] = {"calls": calls, "instructions_per_call": round(ir / calls, 1)}
         host["per_step"] = _per_step(host, fn_names, steps)
+        host["toolchain"] = {"compiler": "cc", "version": cross._compiler_version(cross.find_tool("cc")).splitlines()[0],
+                             "flags": [*cross.WARNINGS, "-O2", "-g"]}
         rep["instructions"]["host-callgrind"] = host
     except cross.ToolMissing as err:
         _missing(rep, err, "instructions on the host")
@@ -396,44 +409,72 @@ def _fmt(v: Any) -> str:
     return str(v)
 
 
-def format_report(rep: Dict[str, Any]) -> str:
-    """A human-readable table of :func:`make_report`'s figures."""
-    lines = [
-        f"{rep['model']} {rep['filter']} ({rep['precision']}) on {rep['target']}",
-        f"  RAM (sizeof {rep['struct']}): {_fmt(rep['ram_bytes'])} bytes"
-        + (f" ({rep['particles']} particles: grows linearly with N)" if rep.get("particles") else ""),
-    ]
+def _us(instr: Any, clock_mhz: float) -> str:
+    return "-" if instr is None else f"{instr / clock_mhz:.2f}"
+
+
+def format_report(rep: Dict[str, Any], clock_mhz: float = DEFAULT_CLOCK_MHZ) -> str:
+    """The report :func:`make_report`'s figures make: the target first (toolchain, RAM, flash,
+    per-call stack, instructions mean and worst, microseconds at ``clock_mhz``), then the
+    operations the generator counted, then the host, then what every column means."""
+    tc = rep.get("toolchain") or {}
+    lines = [f"{rep['model']} {rep['filter']} ({rep['precision']}) on {rep['target']}"]
+    if tc:
+        lines += [f"  compiler: {tc['version']}", f"  flags:    {' '.join(tc['flags'])}"]
+    lines.append(f"  RAM (sizeof {rep['struct']}): {_fmt(rep['ram_bytes'])} bytes"
+                 + (f" ({rep['particles']} particles: grows linearly with N)" if rep.get("particles") else ""))
     fl = rep.get("flash")
     lines.append(f"  flash (.text + .rodata): {_fmt(fl['total'])} bytes ({fl['text']} + {fl['rodata']})"
                  if fl else "  flash: -")
     m4 = rep["instructions"].get("qemu-cortex-m4f", {})
     host = rep["instructions"].get("host-callgrind", {})
-    head = (f"  {'function':<36} {'stack':>6} {'add':>6} {'mul':>6} {'div':>5} {'sqrt':>5} {'trans':>5}"
-            f" {'M4F instr':>10} {'host instr':>10}")
-    lines += ["", head, "  " + "-" * (len(head) - 2)]
-    for fn, f in rep["functions"].items():
-        ops = f.get("ops", {})
-        lines.append(
-            f"  {fn:<36} {_fmt(f.get('stack_bytes')):>6} "
-            + " ".join(f"{_fmt(ops.get(k)):>{w}}" for k, w in zip(_OP_KEYS, (6, 6, 5, 5, 5)))
-            + f" {_fmt(m4.get(fn, {}).get('instructions_per_call')):>10}"
-            f" {_fmt(host.get(fn, {}).get('instructions_per_call')):>10}"
-        )
-    lines.append(f"  {'one step (predict + the updates of that step)':<70} {_fmt(m4.get('per_step')):>10}"
-                 f" {_fmt(host.get('per_step')):>10}")
-    lines.append("")
-    lines.append("  stack: own frame + deepest static callee chain (GCC -fstack-usage, -fcallgraph-info);"
-                 " library calls not included")
-    hw = {fn: v.get("stack_high_water") for fn, v in m4.items() if isinstance(v, dict)}
-    if hw:
-        lines.append("  measured stack high-water on the emulated M4F (library calls included): "
-                     + ", ".join(f"{fn} {b}" for fn, b in hw.items()))
-    if m4:
-        lines.append(f"  M4F instructions: QEMU mps2-an386 -icount shift=0, SysTick "
-                     f"({_fmt(m4.get('instructions_per_tick'))} instructions/tick), mean over "
-                     f"{rep['instructions']['steps']} steps")
+    fns = list(rep["functions"])
+    main_fns = [fn for fn in fns if fn in m4] or fns
+
+    lines += ["", f"  Target: Cortex-M4F, emulated (QEMU mps2-an386), {rep['instructions']['steps']} steps; "
+                  f"microseconds at {clock_mhz:g} MHz"]
+    head = (f"  {'function':<36} {'stack':>6} {'hw':>6} {'instr':>8} {'worst':>8} {'us':>8} {'us worst':>8}")
+    lines += [head, "  " + "-" * (len(head) - 2)]
+    for fn in fns:
+        f = rep["functions"][fn]
+        t = m4.get(fn, {})
+        mean, worst = t.get("instructions_per_call"), t.get("worst_instructions_per_call")
+        lines.append(f"  {fn:<36} {_fmt(f.get('stack_bytes')):>6} {_fmt(t.get('stack_high_water')):>6} "
+                     f"{_fmt(mean):>8} {_fmt(worst):>8} {_us(mean, clock_mhz):>8} {_us(worst, clock_mhz):>8}")
+    lines.append(f"  {'one step (predict + the updates of that step)':<50} {_fmt(m4.get('per_step')):>8}"
+                 f" {'':>8} {_us(m4.get('per_step'), clock_mhz):>8}")
+
+    lines += ["", "  Operations in the generated C (counted on the printed expressions, before the compiler optimizes)",
+              f"  {'function':<36} {'add':>6} {'mul':>6} {'div':>5} {'sqrt':>5} {'trans':>5}"]
+    for fn in main_fns:
+        ops = rep["functions"][fn].get("ops")
+        if ops:
+            lines.append(f"  {fn:<36} " + " ".join(f"{_fmt(ops.get(k)):>{w}}" for k, w in zip(_OP_KEYS, (6, 6, 5, 5, 5))))
+
     if host:
-        lines.append("  host instructions: valgrind --tool=callgrind --toggle-collect, mean per call")
+        htc = host.get("toolchain", {})
+        lines += ["", f"  Host (this machine, valgrind --tool=callgrind): {htc.get('version', 'cc')}",
+                  f"  flags: {' '.join(htc.get('flags', []))}",
+                  f"  {'function':<36} {'instr':>8}"]
+        for fn in main_fns:
+            lines.append(f"  {fn:<36} {_fmt(host.get(fn, {}).get('instructions_per_call')):>8}")
+        lines.append(f"  {'one step':<36} {_fmt(host.get('per_step')):>8}")
+
+    lines += [
+        "",
+        "  Columns:",
+        "    stack     bytes: the function's frame + its deepest chain of static callees (GCC -fstack-usage,",
+        "              -fcallgraph-info); library calls not included",
+        "    hw        bytes: stack high-water measured on the emulated M4F by painting (library calls included)",
+        "    instr     instructions per call, mean over the scenario (SysTick ticks x calibrated instructions",
+        f"              per tick, {_fmt(m4.get('instructions_per_tick'))}; the timing bracket subtracted)",
+        "    worst     instructions of the slowest single call (resolution: one tick)",
+        f"    us        instructions / clock at {clock_mhz:g} MHz, counting one instruction per cycle: a lower bound,",
+        "              since FPU divides and square roots take 14 cycles and flash wait states add more;",
+        "              measure on the part for a budget (--clock-mhz sets the clock)",
+        "    add mul div sqrt   floating-point operations in the code as generated",
+        "    trans     calls of transcendental functions (sin, cos, tan, exp, log, atan2, pow, tanh, ...)",
+    ]
     for tool, what in rep["missing"].items():
         lines.append(f"  missing: {tool} (needed for {'; '.join(what)})")
     return "\n".join(lines)

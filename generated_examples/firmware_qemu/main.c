@@ -20,8 +20,8 @@
  * Output, one "key values" record a line, read by estgen.cross.parse_replay_output:
  *   calib ITERS TICKS_N TICKS_2N      busy loop of 2*ITERS and 4*ITERS instructions
  *   overhead CALLS TICKS              empty timing brackets
- *   predict CALLS TICKS REFUSED STACK
- *   update SENSOR CALLS TICKS REFUSED STACK
+ *   predict CALLS TICKS REFUSED STACK MAXTICKS   (MAXTICKS: the slowest single call)
+ *   update SENSOR CALLS TICKS REFUSED STACK MAXTICKS
  *   x I HEXBITS                       final state, IEEE-754 bits of each element
  *   P I HEXBITS                       final covariance, packed upper triangle row by row
  *   end
@@ -124,7 +124,7 @@ static uint32_t stack_used(uintptr_t top)
 }
 
 typedef struct {
-    uint32_t calls, ticks, refused, stack;
+    uint32_t calls, ticks, refused, stack, max_ticks;
 } stats_t;
 
 static stats_t predict_stats;
@@ -132,8 +132,10 @@ static stats_t update_stats[REPLAY_NSENSORS];
 
 static void record(stats_t *s, uint32_t t0, uint32_t t1, int status, uint32_t stack)
 {
+    const uint32_t dt = (t1 - t0) & 0x00FFFFFFu;
     s->calls += 1u;
-    s->ticks += (t1 - t0) & 0x00FFFFFFu;
+    s->ticks += dt;
+    s->max_ticks = dt > s->max_ticks ? dt : s->max_ticks;
     s->refused += (status != 0) ? 1u : 0u;
     s->stack = stack > s->stack ? stack : s->stack;
 }
@@ -153,6 +155,8 @@ static void print_stats(const char *what, const char *sensor, const stats_t *s)
     put_u32(s->refused);
     put_sep();
     put_u32(s->stack);
+    put_sep();
+    put_u32(s->max_ticks);
     end_line();
 }
 
