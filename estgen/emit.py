@@ -29,7 +29,7 @@ from .chi2 import chi2_ppf
 from .derive import (EKF_BLOCK_UPDATE_SECTIONS, EKF_PREDICT_SECTIONS, Stmt, angle_wraps, derive_ekf,
                      ekf_sequential_sections, packed_index, packed_size, with_sections)
 from .errors import ModelError
-from .model import ModelSpec, check_filter_support, with_gates
+from .model import ModelSpec, check_filter_support, unit_problem, with_gates
 from .status import ADVICE, PRECEDENCE, Status
 
 __all__ = ["CPrinter", "OpCount", "count_ops", "Generated", "generate", "template_env", "c_literal"]
@@ -201,12 +201,10 @@ def count_ops(expr: sp.Expr) -> OpCount:
     return oc
 
 
-_SAFE_UNIT = re.compile(r"^[A-Za-z0-9 ^._%()/*+-]{1,24}$")
-
-
 def safe_comment(text: Optional[str]) -> Optional[str]:
-    """Text a doc comment may carry: a short unit string that cannot open or close a comment."""
-    if text is None or not _SAFE_UNIT.match(text) or "*/" in text or "/*" in text or "//" in text:
+    """A unit a doc comment may carry as given (the model refuses any other: see
+    :func:`estgen.model.unit_problem`); None stays None."""
+    if text is None or unit_problem(text):
         return None
     return text
 

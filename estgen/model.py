@@ -101,18 +101,52 @@ def _split_names(names: Union[str, Sequence[str]]) -> List[str]:
     return [str(n) for n in names]
 
 
-def _split_units(units: Union[None, str, Sequence[Optional[str]]], count: int) -> List[Optional[str]]:
+#: What a unit string may hold: it is printed as given into comments of the generated header,
+#: so it must not be able to end or open a comment, and it must stay short.
+UNIT_PATTERN = re.compile(r"^[A-Za-z0-9^._%()/*+-]{1,24}$")
+
+
+def unit_problem(unit: str) -> Optional[str]:
+    """Why ``unit`` cannot be printed as given in the C (None when it can)."""
+    if not UNIT_PATTERN.match(unit):
+        bad = sorted({c for c in unit if not re.match(r"[A-Za-z0-9^._%()/*+-]", c)})
+        if len(unit) > 24:
+            return "longer than 24 characters"
+        if not unit:
+            return "empty"
+        return f"holds {', '.join(repr(c) for c in bad)}; use ASCII letters, digits and ^ . _ % ( ) / * + - (e.g. 'um' for micrometres, 'deg' for degrees, 'N*m' for newton metres)"
+    if "*/" in unit or "/*" in unit or "//" in unit:
+        return "would open or close a C comment"
+    return None
+
+
+def _split_units(units: Union[None, str, Sequence[Optional[str]]], names: Sequence[str]) -> List[Optional[str]]:
+    """One unit per name: a string of units separated by spaces, or a list (None for no unit).
+    A single unit is not copied to several names: names declared together may differ in kind."""
+    count = len(names)
     if units is None:
         return [None] * count
     try:
         items = units.split() if isinstance(units, str) else list(units)
     except TypeError:
         raise ModelError(f"units must be a string or a list of strings, got {units!r}") from None
-    if len(items) == 1 and count > 1:
-        items = items * count
     if len(items) != count:
-        raise ModelError(f"{len(items)} units given for {count} names; give one unit per name")
-    return [None if u is None else str(u) for u in items]
+        example = " ".join(str(items[0]) if items else "m" for _ in names)
+        hint = (f"; a single unit is not copied to every name (they may differ in kind): write units=\"{example}\""
+                if len(items) == 1 else "")
+        raise ModelError(f"{len(items)} unit{'s' if len(items) != 1 else ''} given for {count} names "
+                         f"({' '.join(names)}); give one unit per name{hint}")
+    out: List[Optional[str]] = []
+    for u in items:
+        if u is None:
+            out.append(None)
+            continue
+        text = str(u)
+        why = unit_problem(text)
+        if why:
+            raise ModelError(f"unit {text!r} cannot be printed in the generated C: it {why}")
+        out.append(text)
+    return out
 
 
 @dataclass(frozen=True)
@@ -252,7 +286,7 @@ class Model:
         """Append variables to ``target``; one symbol per name (duplicates are caught in validate)."""
         names_l = _split_names(names)
         try:
-            units_l = _split_units(units, len(names_l))
+            units_l = _split_units(units, names_l)
         except ModelError as err:
             raise ModelError(err.message, where) from None
         out = []
@@ -262,11 +296,18 @@ class Model:
             out.append(sym)
         return tuple(out)
 
-    def param(self, name: str, default: Any, unit: Optional[str] = None) -> sp.Symbol:
-        """Declare a runtime parameter with its default value."""
+    def param(self, name: str, default: Any, unit: Optional[str] = None, *, units: Optional[str] = None) -> sp.Symbol:
+        """Declare a runtime parameter with its default value and, optionally, its unit
+        (``unit=`` or ``units=``, as states and inputs spell it)."""
         where = _caller_where()
         sym = sp.Symbol(str(name))
+        if unit is not None and units is not None and str(unit) != str(units):
+            raise ModelError(f"parameter {name!r}: unit={unit!r} and units={units!r} disagree; give one", where)
+        unit = unit if unit is not None else units
         unit_s = None if unit is None else str(unit)
+        if unit_s is not None and unit_problem(unit_s):
+            raise ModelError(f"parameter {name!r}: unit {unit_s!r} cannot be printed in the generated C: "
+                             f"it {unit_problem(unit_s)}", where)
         self._params.append(Param(str(name), sym, default, unit_s, where))  # checked in validate
         return sym
 
@@ -1078,7 +1119,7 @@ def validate(model: Model) -> ModelSpec:
             if not 0.0 < gate < 1.0:
                 raise ModelError(f"sensor {sd.name!r}: gate is a probability strictly between 0 and 1, got {gate}", sd.where)
         try:
-            units = tuple(_split_units(sd.units, m))
+            units = tuple(_split_units(sd.units, [f"z[{k}]" for k in range(m)]))
         except ModelError as err:
             raise ModelError(f"sensor {sd.name!r}: {err.message}", sd.where) from None
         sensors.append(SensorSpec(sd.name, h, R, diagonal, int(every), _angle_mask(sd.angles, m, sd.where, sd.name),

@@ -44,7 +44,7 @@ def rng(k: str) -> sp.Expr:
 model.sensor("range_a", [rng("a")], noise=[0.1 ** 2], every=1, units="m")
 model.sensor("range_b", [rng("b")], noise=[0.1 ** 2], every=2, units="m")
 # Beacons c and d answer together in one frame, less often.
-model.sensor("range_cd", [rng("c"), rng("d")], noise=[0.15 ** 2, 0.15 ** 2], every=5, units="m")
+model.sensor("range_cd", [rng("c"), rng("d")], noise=[0.15 ** 2, 0.15 ** 2], every=5, units="m m")
 # Compass: ~3 degrees 1-sigma indoors (invented); heading residuals are wrapped.
 model.sensor("compass", [psi], noise=[math.radians(3.0) ** 2], every=10, angles=[0], units="rad")
 

@@ -17,18 +17,18 @@ import sympy as sp
 from estgen import Model
 
 model = Model("nav")
-pn, pe, pd = model.states("pn pe pd", units="m")
-vn, ve, vd = model.states("vn ve vd", units="m/s")
-roll, pitch, yaw = model.states("roll pitch yaw", angle=True, units="rad")
-bgx, bgy, bgz = model.states("bgx bgy bgz", units="rad/s")       # gyro biases
-bax, bay, baz = model.states("bax bay baz", units="m/s^2")       # accelerometer biases
+pn, pe, pd = model.states("pn pe pd", units="m m m")
+vn, ve, vd = model.states("vn ve vd", units="m/s m/s m/s")
+roll, pitch, yaw = model.states("roll pitch yaw", angle=True, units="rad rad rad")
+bgx, bgy, bgz = model.states("bgx bgy bgz", units="rad/s rad/s rad/s")       # gyro biases
+bax, bay, baz = model.states("bax bay baz", units="m/s^2 m/s^2 m/s^2")       # accelerometer biases
 # The IMU's white noise enters where it physically does, through the measured inputs
 # (u_true = u_meas - noise); per-sample variances from an invented consumer-grade MEMS IMU:
 # angle random walk 0.005 rad/sqrt(s) and velocity random walk 0.02 m/s/sqrt(s), so a rate held
 # over one step dt has variance ARW^2 / dt (VRW^2 / dt for the specific force).
 dt = model.dt
-wx, wy, wz = model.inputs("wx wy wz", units="rad/s", noise=[0.005 ** 2 / dt] * 3)   # body rates, gyro
-fx, fy, fz = model.inputs("fx fy fz", units="m/s^2", noise=[0.02 ** 2 / dt] * 3)    # specific force, accel
+wx, wy, wz = model.inputs("wx wy wz", units="rad/s rad/s rad/s", noise=[0.005 ** 2 / dt] * 3)   # body rates, gyro
+fx, fy, fz = model.inputs("fx fy fz", units="m/s^2 m/s^2 m/s^2", noise=[0.02 ** 2 / dt] * 3)    # specific force, accel
 
 # Standard gravity 9.80665 m/s^2 (from memory); a runtime parameter for local values.
 g = model.param("g", 9.80665, unit="m/s^2")
@@ -68,8 +68,8 @@ model.process_noise([1e-6 * dt] * 3 + [0.0] * 6 + [1e-5 ** 2 * dt] * 3 + [1e-4 *
 
 # Satellite fixes at 10 Hz for a 100 Hz IMU (every 10 steps): 1.5 m horizontal, 3 m vertical
 # position and 0.1 m/s velocity, 1-sigma (invented, typical of a small receiver from memory).
-model.sensor("gnss_pos", [pn, pe, pd], noise=[1.5 ** 2, 1.5 ** 2, 3.0 ** 2], every=10, units="m")
-model.sensor("gnss_vel", [vn, ve, vd], noise=[0.1 ** 2] * 3, every=10, units="m/s")
+model.sensor("gnss_pos", [pn, pe, pd], noise=[1.5 ** 2, 1.5 ** 2, 3.0 ** 2], every=10, units="m m m")
+model.sensor("gnss_vel", [vn, ve, vd], noise=[0.1 ** 2] * 3, every=10, units="m/s m/s m/s")
 # Barometric altitude (up = -down), 0.3 m 1-sigma at 25 Hz (invented).
 model.sensor("baro", [-pd], noise=[0.3 ** 2], every=4, units="m")
 # Magnetometer heading, 2 degrees 1-sigma at 20 Hz (invented); the residual is an angle.

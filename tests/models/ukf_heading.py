@@ -7,7 +7,7 @@ import sympy as sp
 from estgen import Model
 
 model = Model("ukfboat")
-px, py = model.states("px py", units="m")
+px, py = model.states("px py", units="m m")
 (hdg,) = model.states("hdg", angle=True, units="rad")
 (spd,) = model.states("spd", units="m/s")
 (turn,) = model.inputs("turn", units="rad/s")
@@ -20,6 +20,6 @@ model.process_noise(sp.diag(0.02, 0.02, 1e-4, 1e-3) * dt)
 model.sensor("bearing", [sp.atan2(by - py, bx - px)], noise=[0.02 ** 2], angles=[0], every=2, units="rad",
              gate=0.9999)
 model.sensor("compass", [hdg], noise=[0.05 ** 2], angles=[0], every=3, units="rad")
-model.sensor("fix", [px, py], noise=[1.0, 1.0], every=7, units="m")
+model.sensor("fix", [px, py], noise=[1.0, 1.0], every=7, units="m m")
 model.initial([0.0, 0.0, 3.0, 2.0], sp.diag(1.0, 1.0, 0.05, 0.05))
 model.scenario(dt=0.1, inputs=lambda t: [0.9])

@@ -8,7 +8,7 @@ import sympy as sp
 from estgen import Model
 
 model = Model("ukfrb")
-px, py = model.states("px py", units="m")
+px, py = model.states("px py", units="m m")
 (hdg,) = model.states("hdg", angle=True, units="rad")
 (turn,) = model.inputs("turn", units="rad/s")
 speed = model.param("speed", 2.0, unit="m/s")
