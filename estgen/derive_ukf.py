@@ -41,7 +41,7 @@ from __future__ import annotations
 import math
 import numbers
 from dataclasses import dataclass, field
-from typing import Callable, Dict, List, Sequence, Set, Tuple
+from typing import Callable, Dict, List, Optional, Sequence, Set, Tuple
 
 import sympy as sp
 
@@ -699,13 +699,15 @@ UKF_UPDATE_SECTIONS = (
 )
 
 
-def _augmented(blk: _Block, spec: ModelSpec, noise: Sequence[sp.Symbol], cov: sp.Matrix, wts: UkfWeights, tag: str
+def _augmented(blk: _Block, spec: ModelSpec, noise: Sequence[sp.Symbol], cov: sp.Matrix, wts: UkfWeights, tag: str,
+               n: Optional[int] = None
                ) -> Tuple[Dict[Tuple[int, int], sp.Expr], UkfWeights, Callable[[int, int], sp.Expr]]:
     """The factor, weights and covariance of the vector the transform spreads: ``x`` alone, or
     ``[x; noise]`` with covariance blockdiag(P, cov), whose lower factor is blockdiag(Lf, A)
     with A the noise factor (:func:`estgen.model.noise_factor`: square roots of a diagonal cov,
-    constants when the cov is), and whose weights are those of dimension n + nw."""
-    n, k = spec.n, len(noise)
+    constants when the cov is), and whose weights are those of dimension n + nw. ``n``: the
+    covariance dimension (default the state count; the error dimension for attitudes)."""
+    n, k = (spec.n if n is None else n), len(noise)
     L = _factor_symbols(n)
     names = c_names(spec, "x")
     A = noise_factor(cov)

@@ -29,7 +29,7 @@ import sympy as sp
 
 from . import quat
 from .derive import Stmt, c_names, packed_index
-from .derive_ukf import (UkfPredictCode, UkfUpdateCode, UkfWeights, _Block, _count_locals, _factor_symbols,
+from .derive_ukf import (UkfPredictCode, UkfUpdateCode, UkfWeights, _augmented, _Block, _count_locals,
                          _gain_and_commit, _used)
 from .errorstate import inject, normalize
 from .model import ModelSpec, SensorSpec
@@ -41,16 +41,22 @@ def _sym(name: str) -> sp.Symbol:
     return sp.Symbol(name)
 
 
-def _offsets(blk: _Block, ne: int, wts: UkfWeights, tag: str) -> List[List[sp.Expr]]:
-    """The 2 ne + 1 sigma offsets e_i in the error space (e_0 = 0, then +col j, -col j)."""
-    L = _factor_symbols(ne)
+def _offsets(blk: _Block, spec: ModelSpec, noise: Sequence[sp.Symbol], cov: sp.Matrix, wts: UkfWeights, tag: str
+             ) -> Tuple[List[List[sp.Expr]], UkfWeights]:
+    """The 2 N + 1 sigma offsets e_i of the error space, augmented by the noise symbols
+    (``N = ne + len(noise)``, covariance blockdiag(P, cov), factor blockdiag(L, A) with
+    :func:`estgen.derive_ukf._augmented`): e_0 = 0, then +col j, -col j; and the weights of N."""
+    ne = spec.ne
+    L, wts, _ = _augmented(blk, spec, noise, cov, wts, tag, ne)
+    N = wts.n
     cols = []
-    for j in range(ne):
-        col = [sp.S.Zero] * ne
-        for r in range(j, ne):
-            col[r] = L[(r, j)] if wts.gamma == 1.0 else blk.value(f"{tag}g{r}_{j}", sp.Float(wts.gamma) * L[(r, j)])
+    for j in range(N):
+        col = [sp.S.Zero] * N
+        for r in range(j, N):
+            if L[(r, j)] != 0:
+                col[r] = L[(r, j)] if wts.gamma == 1.0 else blk.value(f"{tag}g{r}_{j}", sp.Float(wts.gamma) * L[(r, j)])
         cols.append(col)
-    return [[sp.S.Zero] * ne] + cols + [[-c for c in col] for col in cols]
+    return [[sp.S.Zero] * N] + cols + [[-c for c in col] for col in cols], wts
 
 
 def _sigma_state(spec: ModelSpec, x: Sequence[sp.Expr], e: Sequence[sp.Expr]) -> List[sp.Expr]:
@@ -65,15 +71,19 @@ def _sigma_state(spec: ModelSpec, x: Sequence[sp.Expr], e: Sequence[sp.Expr]) ->
 
 
 def _images(blk: _Block, spec: ModelSpec, funcs: sp.Matrix, offsets: List[List[sp.Expr]],
-            extra: Sequence[Tuple[str, sp.Expr]], tag: str) -> Tuple[List[List[sp.Expr]], Dict[str, sp.Expr]]:
-    """funcs at every sigma point (common subexpressions shared over all of them)."""
+            extra: Sequence[Tuple[str, sp.Expr]], tag: str, noise: Sequence[sp.Symbol] = ()
+            ) -> Tuple[List[List[sp.Expr]], Dict[str, sp.Expr]]:
+    """funcs at every sigma point (common subexpressions shared over all of them); the noise
+    symbols take the offsets' entries after the ne error components."""
     names = c_names(spec, "x")
     x = [names[s] for s in spec.x_syms]
+    ne = spec.ne
     items: List[Tuple[str, sp.Expr]] = []
     for i, e in enumerate(offsets):
-        chi = _sigma_state(spec, x, e)
+        chi = _sigma_state(spec, x, e[:ne])
         sub = dict(names)
         sub.update({s: chi[k] for k, s in enumerate(spec.x_syms)})
+        sub.update({w: e[ne + j] for j, w in enumerate(noise)})
         for k in range(funcs.shape[0]):
             items.append((f"{tag}y{i}_{k}", funcs[k].xreplace(sub)))
     vals = blk.cse(items + [(nm, e.xreplace(names)) for nm, e in extra], f"{tag}t")
@@ -134,9 +144,9 @@ def derive_ukf_attitude_predict(spec: ModelSpec, wts: UkfWeights) -> UkfPredictC
     """xn = Y_0 ⊞ dbar; Pn = sum Wc (d_i - dbar)(d_i - dbar)' + Q (see the module text)."""
     ne = spec.ne
     blk = _Block()
-    offs = _offsets(blk, ne, wts, "f")
+    offs, wts = _offsets(blk, spec, spec.w_syms, spec.Qw, wts, "f")
     qitems = [(f"Q{i}_{j}", spec.Q[i, j]) for i in range(ne) for j in range(i, ne) if not spec.Q[i, j].is_Number]
-    imgs, qv = _images(blk, spec, spec.f0, offs, qitems, "f")
+    imgs, qv = _images(blk, spec, spec.f, offs, qitems, "f", spec.w_syms)
     wrap = _Wraps(blk)
     d = _state_errors(blk, spec, imgs, wrap, "f")
     dbar, dev = _mean_and_spread(blk, d, wts, "f")
@@ -162,9 +172,10 @@ def derive_ukf_attitude_update(sensor: SensorSpec, spec: ModelSpec, wts: UkfWeig
     """Fresh sigma points x ⊞ e_i through h; C = sum Wc e_i (z_i - zbar)'; x ⊞ K y."""
     ne, m = spec.ne, sensor.m
     blk = _Block()
-    offs = _offsets(blk, ne, wts, "h")
+    offs, wts = _offsets(blk, spec, sensor.v, sensor.Rv, wts, "h")
+    N = wts.n
     ritems = [(f"R{i}_{j}", sensor.R[i, j]) for i in range(m) for j in range(i, m) if not sensor.R[i, j].is_Number]
-    imgs, rv = _images(blk, spec, sensor.h0, offs, ritems, "h")
+    imgs, rv = _images(blk, spec, sensor.h, offs, ritems, "h", sensor.v)
     wrap = _Wraps(blk)
     d: List[List[sp.Expr]] = [[sp.S.Zero] * m]
     for i in range(1, len(imgs)):
@@ -177,11 +188,11 @@ def derive_ukf_attitude_update(sensor: SensorSpec, spec: ModelSpec, wts: UkfWeig
     y = [_sym(f"y[{k}]") for k in range(m)]
     P = sp.Matrix(ne, ne, lambda i, j: _sym(f"P[{packed_index(i, j, ne)}]"))
     R = {(i, j): (sensor.R[i, j] if sensor.R[i, j].is_Number else rv[f"R{i}_{j}"]) for i in range(m) for j in range(i, m)}
-    # C = sum_i Wc_i e_i dev_i' with e_0 = 0 and e_{j+ne} = -e_j
+    # C = sum_i Wc_i e_i dev_i' with e_0 = 0 and e_{j+N} = -e_j (the state part of e only)
     C: Dict[Tuple[int, int], sp.Expr] = {}
     for a in range(ne):
         for k in range(m):
-            e = sum((offs[1 + j][a] * (dev[1 + j][k] - dev[1 + ne + j][k]) for j in range(ne) if offs[1 + j][a] != 0),
+            e = sum((offs[1 + j][a] * (dev[1 + j][k] - dev[1 + N + j][k]) for j in range(N) if offs[1 + j][a] != 0),
                     sp.S.Zero)
             C[(a, k)] = blk.value(f"C{a}_{k}", sp.Float(wts.w) * e)
     S: Dict[Tuple[int, int], sp.Expr] = {}

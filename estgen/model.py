@@ -1306,9 +1306,6 @@ def check_filter_support(spec: ModelSpec, filt: str) -> None:
                          f"attitudes for {', '.join(ATTITUDE_FILTERS) or 'no filter'}", spec.states[spec.attitudes[0]].where)
     if filt not in ("ekf", "ukf", "pf"):
         raise ModelError(f"unknown filter {filt!r}; use 'ekf', 'ukf' or 'pf'")
-    if filt == "ukf" and spec.attitudes and spec.noise:
-        raise ModelError(f"the UKF does not yet combine attitude states with noise symbols (model {spec.name!r}); "
-                         f"use --filter ekf, or additive noise (process_noise, noise=)", spec.noise[0].where)
     if filt in ("ukf", "pf"):
         return
     src = spec.continuous if spec.continuous is not None else spec.f

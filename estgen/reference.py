@@ -599,15 +599,18 @@ class ReferenceUKF(_ReferenceBase):
         """The mean and covariance weights (Wm, Wc), each of length 2n+1."""
         return self._wm.copy(), self._wc.copy()
 
-    def _points(self, Anoise: np.ndarray) -> Union[int, Tuple[np.ndarray, np.ndarray, np.ndarray]]:
-        """Sigma points of ``[x; noise]`` (rows) with covariance blockdiag(P, A A') and their
-        weights; without noise symbols those of x. A refusal code when P is not positive
-        definite or the noise factor is not finite."""
+    def _points(self, Anoise: np.ndarray, mean: Optional[np.ndarray] = None
+                ) -> Union[int, Tuple[np.ndarray, np.ndarray, np.ndarray]]:
+        """Sigma points of ``[mean; noise]`` (rows; ``mean`` defaults to x, the error-space
+        zero for attitudes) with covariance blockdiag(P, A A') and their weights; without noise
+        symbols those of ``mean``. A refusal code when P is not positive definite or the noise
+        factor is not finite."""
+        centre0 = self._x if mean is None else mean
         k = Anoise.shape[0]
         if not k:
-            X = sigma_points(self._x, self._P, self._lam)
+            X = sigma_points(centre0, self._P, self._lam)
             return int(Status.NOT_POSITIVE_DEFINITE) if X is None else (X, self._wm, self._wc)
-        n = self.n
+        n = centre0.shape[0]
         lam, wm, wc = sigma_weights(n + k, self.alpha, self.beta, self.kappa)
         try:
             Lp = np.linalg.cholesky(self._P)
@@ -618,7 +621,7 @@ class ReferenceUKF(_ReferenceBase):
         Laug = np.zeros((n + k, n + k))
         Laug[:n, :n], Laug[n:, n:] = Lp, Anoise
         Laug *= math.sqrt(n + k + lam)
-        centre = np.concatenate([self._x, np.zeros(k)])
+        centre = np.concatenate([centre0, np.zeros(k)])
         return np.vstack([centre, centre + Laug.T, centre - Laug.T]), wm, wc
 
     def predict(self, u: Sequence[float], dt: float) -> int:
@@ -649,19 +652,21 @@ class ReferenceUKF(_ReferenceBase):
         """Attitudes: sigma points x ⊞ e_i, errors of the images about the central one,
         Y_0 ⊞ (their weighted mean), covariance of the errors about that mean (the algorithm of
         :mod:`estgen.derive_ukf_att`)."""
+        ne = self.spec.ne
         with np.errstate(all="ignore"):
-            E = sigma_points(np.zeros(self.spec.ne), self._P, self._lam)
-            if E is None:
-                return int(Status.NOT_POSITIVE_DEFINITE)
-            Y = np.array([self._fn.f(self._fn.boxplus(self._x, e), uv, dtf, p) for e in E])
+            pts = self._points(self._fn.Aw(dtf, p), np.zeros(ne))
+            if isinstance(pts, int):
+                return pts
+            E, wm, wc = pts
+            Y = np.array([self._fn.f(self._fn.boxplus(self._x, e[:ne]), uv, dtf, p, e[ne:]) for e in E])
             Q = self._fn.Q(dtf, p)
             if not _finite(Y, Q):
                 return int(Status.NON_FINITE)
             d = np.array([self._fn.boxminus(y, Y[0]) for y in Y])
-            dbar = self._wm @ d
+            dbar = wm @ d
             dev = d - dbar
             xn = self._fn.boxplus(Y[0], dbar)
-            Pn = (dev.T * self._wc) @ dev + Q
+            Pn = (dev.T * wc) @ dev + Q
         return self._commit(xn, Pn)
 
     def _innovation(self, sensor: str, z: np.ndarray) -> Union[int, _Innovation]:
@@ -671,20 +676,22 @@ class ReferenceUKF(_ReferenceBase):
         n = self.n
         zang = self._sensor_angles[sensor]
         if self.spec.attitudes:
-            E = sigma_points(np.zeros(self.spec.ne), P, self._lam)
-            if E is None:
-                return int(Status.NOT_POSITIVE_DEFINITE)
-            Z = np.array([self._fn.h(sensor, self._fn.boxplus(x, e), p) for e in E])
+            ne = self.spec.ne
+            pts = self._points(self._fn.Av(sensor, p), np.zeros(ne))
+            if isinstance(pts, int):
+                return pts
+            E, wm, wc = pts
+            Z = np.array([self._fn.h(sensor, self._fn.boxplus(x, e[:ne]), p, e[ne:]) for e in E])
             R = self._fn.R(sensor, p)
             if not _finite(Z, R):
                 return int(Status.NON_FINITE)
             dZ = Z - Z[0]  # about the central image, as the C does
             if zang.any():
                 dZ[:, zang] = wrap_angle(dZ[:, zang])
-            off = self._wm @ dZ
+            off = wm @ dZ
             dev = dZ - off
-            S = (dev.T * self._wc) @ dev + R
-            C = (E.T * self._wc) @ dev
+            S = (dev.T * wc) @ dev + R
+            C = (E[:, :ne].T * wc) @ dev
             return _wrap_masked(z - (Z[0] + off), zang), S, C, lambda K, S_: P - K @ S_ @ K.T
         pts = self._points(self._fn.Av(sensor, p))
         if isinstance(pts, int):

@@ -118,8 +118,6 @@ CASES: Tuple[Tuple[str, Optional[int], Tuple[str, ...], bool], ...] = (
     ("noise_measured_input_unused.py", 6, ("measured input 'fan' is not used in process()", "drop noise="), False),
     ("noise_declared_twice.py", 7, ("noise symbol 'wt' is already declared at line 6", "must be unique"), False),
     ("noise_no_process_noise.py", 4, ("no process noise", "noise symbols in process()"), False),
-    ("noise_ukf_attitude.py", 6, ("UKF does not yet combine attitude states with noise symbols", "--filter ekf"),
-     "ukf"),
 )
 
 
