@@ -41,8 +41,10 @@ import sympy as sp
 
 from estgen.derive import c_names
 from estgen.emit import CPrinter, c_literal
-from estgen.model import ModelSpec, SensorSpec, as_spec, check_filter_support
-from estgen.reference import check_ukf_parameters, sigma_weights
+from estgen.filters import check_filter_support
+from estgen.model import ModelSpec, SensorSpec, as_spec
+from estgen.derive_ukf import UkfWeights
+from estgen.reference import sigma_weights
 from estgen.status import Status
 
 __all__ = ["BaselineSource", "render_baseline", "build_baseline", "BaselineFilter", "baseline_prefix"]
@@ -292,7 +294,7 @@ def _ekf_source(c: _Ctx) -> str:
 
 def _ukf_source(c: _Ctx, alpha: float, beta: float, kappa: float) -> str:
     spec, r, n, p, fs = c.spec, c.real, c.n, c.p, c.fs
-    check_ukf_parameters(n, alpha, beta, kappa)
+    UkfWeights(n, alpha, beta, kappa)  # validates the parameters
     lam, wm, wc = sigma_weights(n, alpha, beta, kappa)
     npts = 2 * n + 1
     names = c_names(spec, "x")

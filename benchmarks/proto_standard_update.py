@@ -23,7 +23,7 @@ sys.path.insert(0, str(HERE))
 import estgen  # noqa: E402
 from estgen import cross  # noqa: E402
 from estgen.derive import packed_index  # noqa: E402
-from estgen.emit import generate  # noqa: E402
+from estgen.filters import generate  # noqa: E402
 
 import harness  # noqa: E402
 from baseline import render_baseline  # noqa: E402

@@ -54,9 +54,11 @@ from sympy.core.cache import clear_cache  # noqa: E402
 
 import estgen  # noqa: E402
 from estgen.derive import packed_size  # noqa: E402
-from estgen.emit import Generated, generate  # noqa: E402
+from estgen.emit import Generated  # noqa: E402
+from estgen.filters import generate  # noqa: E402
 from estgen.errors import ModelError  # noqa: E402
-from estgen.model import ModelSpec, check_filter_support  # noqa: E402
+from estgen.filters import check_filter_support  # noqa: E402
+from estgen.model import ModelSpec  # noqa: E402
 
 import harness  # noqa: E402
 from baseline import render_baseline  # noqa: E402

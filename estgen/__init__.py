@@ -12,7 +12,7 @@ from __future__ import annotations
 
 from typing import Any
 
-from .errors import GenerationError, ModelError
+from .errors import BuildError, ModelError, ToolMissing, UsageError
 from .model import Model, ModelSpec, load_model, validate
 from .status import Status
 from . import quat
@@ -20,7 +20,8 @@ from . import quat
 # The submodules estgen.build and estgen.reference share their names with the functions below.
 # Importing them first means the function definitions that follow win the package attribute.
 from . import build as _build_module  # noqa: E402
-from . import reference as _reference_module  # noqa: E402
+from . import filters as _filters  # noqa: E402
+from . import reference as _reference_module  # noqa: E402,F401  (imported for the note above)
 
 from ._version import __version__  # noqa: E402
 
@@ -28,7 +29,9 @@ __all__ = [
     "Model",
     "ModelSpec",
     "ModelError",
-    "GenerationError",
+    "UsageError",
+    "ToolMissing",
+    "BuildError",
     "Status",
     "quat",
     "load_model",
@@ -46,5 +49,5 @@ def build(model: Any, filter: str = "ekf", precision: str = "float", **options: 
 
 
 def reference(model: Any, filter: str = "ekf", **options: Any) -> Any:
-    """The plain numpy reference filter for ``model``. See :mod:`estgen.reference`."""
-    return _reference_module.reference(model, filter=filter, **options)
+    """The plain numpy reference filter for ``model``. See :func:`estgen.filters.reference`."""
+    return _filters.reference(model, filter=filter, **options)

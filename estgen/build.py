@@ -26,15 +26,12 @@ from typing import Any, Dict, List, Optional, Sequence, Tuple
 import numpy as np
 
 from .derive import packed_index, packed_size
-from .emit import Generated, generate
-from .errors import ToolMissing
-from .model import ModelSpec, as_spec, with_gates
+from .emit import Generated
+from .errors import BuildError, ToolMissing
+from .filters import FilterSetup
+from .model import ModelSpec
 
-class BuildError(RuntimeError):
-    """The generated C did not compile (a defect of estgen, never of the model)."""
-
-
-__all__ = ["BuildError", "build", "compile_generated", "compiler_used", "CFilter", "cache_dir", "STRICT_FLAGS"]
+__all__ = ["build", "compile_generated", "compiler_used", "CFilter", "cache_dir", "STRICT_FLAGS"]
 
 #: the warning set of the contract; every generated file must compile clean under it
 STRICT_FLAGS: List[str] = [
@@ -253,16 +250,15 @@ class CFilter:
 
 def build(model: Any, filter: str = "ekf", precision: str = "float", *, cflags: Optional[Sequence[str]] = None,
           ldflags: Optional[Sequence[str]] = None, gates: Optional[Dict[str, float]] = None,
-          **options: Any) -> CFilter:
+          commit_check: str = "cholesky", **options: Any) -> CFilter:
     """Generate, compile (cached) and load the C filter for ``model``.
 
-    ``options`` are the UKF's alpha, beta, kappa, or the particle filter's particles,
-    resample_threshold, roughening and seed (the generator seed init_seed starts from; the
-    reference with the same seed draws the same numbers). ``cflags``/``ldflags`` add compiler and
-    linker flags (sanitizers, say). ``gates`` sets chi-square gate probabilities per sensor.
+    ``gates``, ``commit_check`` and ``options`` (the kind's own: the UKF's alpha, beta, kappa;
+    the particle filter's particles, resample_threshold, roughening and seed, the generator seed
+    init_seed starts from) are those of :func:`estgen.filters.generate`. ``cflags``/``ldflags``
+    add compiler and linker flags (sanitizers, say).
     """
-    spec = with_gates(as_spec(model), gates)
-    seed = options.pop("seed", None) if filter == "pf" else None
-    gen = generate(spec, filter=filter, precision=precision, **options)
-    comp = compile_generated(gen, cflags, ldflags)
-    return CFilter(spec, comp, filter, seed=seed)
+    setup = FilterSetup.of(filter, precision, gates, commit_check, **options)
+    spec = setup.spec(model)
+    comp = compile_generated(setup.generate(spec), cflags, ldflags)
+    return CFilter(spec, comp, filter, **setup.options.runtime())

@@ -15,76 +15,14 @@ import sys
 import time
 from typing import Any, Dict, List, Optional, Sequence
 
+from . import filters
 from ._version import __version__
 from .errors import ModelError, ToolMissing
+from .filters import FilterSetup
+from .filters.base import PRECISIONS
+from .outputs import stale_files, write_generated
 
-__all__ = ["main", "write_generated", "stale_files"]
-
-
-_FILTER_OPTIONS = {"ukf": ("alpha", "beta", "kappa"), "pf": ("particles", "resample_threshold", "roughening")}
-
-
-def _ukf_options(args: argparse.Namespace) -> Dict[str, float]:
-    """The options of the chosen filter kind (the UKF's alpha/beta/kappa, the particle
-    filter's particles/resample_threshold/roughening); another kind's option is an error."""
-    filt = getattr(args, "filter", "ekf")
-    for kind, opts in _FILTER_OPTIONS.items():
-        if kind == filt:
-            continue
-        for opt in opts:
-            if getattr(args, opt, None) is not None:
-                raise ModelError(f"--{opt.replace('_', '-')} applies to --filter {kind} only")
-    return {k: getattr(args, k) for k in _FILTER_OPTIONS.get(filt, ()) if getattr(args, k, None) is not None}
-
-
-def _add_filter_args(p: argparse.ArgumentParser, precision_default: str) -> None:
-    p.add_argument("model", metavar="MODEL", help="the model file (Python defining `model`)")
-    p.add_argument("--filter", choices=("ekf", "ukf", "pf"), default="ekf",
-                   help="filter to generate: extended or unscented Kalman filter, or particle filter (default ekf)")
-    p.add_argument("--precision", choices=("float", "double"), default=precision_default,
-                   help=f"C floating type (default {precision_default})")
-    p.add_argument("--alpha", type=float, default=None, help="UKF: sigma-point spread alpha (default 1)")
-    p.add_argument("--beta", type=float, default=None, help="UKF: prior-distribution parameter beta (default 2)")
-    p.add_argument("--kappa", type=float, default=None, help="UKF: secondary scaling kappa (default 0)")
-    p.add_argument("--particles", type=int, default=None, metavar="N", help="PF: number of particles (default 500)")
-    p.add_argument("--resample-threshold", type=float, default=None, metavar="F",
-                   help="PF: resample when the effective sample size falls below F N (default 0.5)")
-    p.add_argument("--roughening", type=float, default=None, metavar="K",
-                   help="PF: roughening constant K after resampling (default 0: none)")
-    p.add_argument("--commit-check", choices=("cholesky", "diagonal"), default="cholesky",
-                   help="what a new P must pass before predict/update commit it: a Cholesky "
-                        "factorization (default) or a positive diagonal only (cheaper, less safe)")
-    p.add_argument("--gate", action="append", default=[], metavar="SENSOR=P",
-                   help="chi-square innovation gate for SENSOR with probability P, e.g. range1=0.997 (repeatable)")
-
-
-def _gates(args: argparse.Namespace) -> Dict[str, float]:
-    out: Dict[str, float] = {}
-    for item in getattr(args, "gate", None) or []:
-        name, sep, val = item.partition("=")
-        try:
-            prob = float(val)
-        except ValueError:
-            prob = float("nan")
-        if not sep or not name or not 0.0 < prob < 1.0:
-            raise ModelError(f"--gate {item!r}: write SENSOR=P with 0 < P < 1, e.g. --gate range1=0.997")
-        out[name] = prob
-    return out
-
-
-def stale_files(files: Dict[str, str], out_dir: str) -> List[str]:
-    """Names in ``files`` whose copy in ``out_dir`` is missing or differs."""
-    stale = []
-    for name, text in sorted(files.items()):
-        path = os.path.join(out_dir, name)
-        try:
-            with open(path, "r", encoding="utf-8", newline="") as fh:
-                if fh.read() == text:
-                    continue
-        except OSError:
-            pass
-        stale.append(name)
-    return stale
+__all__ = ["main"]
 
 
 _RECORD = re.compile(r"^ \*   (model file sha256|options): (.*)$", re.M)
@@ -115,21 +53,10 @@ def drift(files: Dict[str, str], out_dir: str, name: str) -> str:
     return "content differs with the same model and options (another estgen version, or an edit)"
 
 
-def write_generated(files: Dict[str, str], out_dir: str) -> List[str]:
-    """Write the generated files (only those that changed, so build systems stay quiet)."""
-    os.makedirs(out_dir, exist_ok=True)
-    written = []
-    for name in stale_files(files, out_dir):
-        with open(os.path.join(out_dir, name), "w", encoding="utf-8", newline="") as fh:
-            fh.write(files[name])
-        written.append(name)
-    return written
-
-
 def _cmd_generate(args: argparse.Namespace) -> int:
-    from .emit import generate
     from .model import load_model
 
+    setup = FilterSetup.from_args(args)
     spec = load_model(args.model)
     if args.outputs:
         from .emit import output_names
@@ -138,8 +65,7 @@ def _cmd_generate(args: argparse.Namespace) -> int:
             print(os.path.join(args.out, name))
         return 0
     t0 = time.perf_counter()
-    gen = generate(spec, filter=args.filter, precision=args.precision, gates=_gates(args),
-                   commit_check=args.commit_check, **_ukf_options(args))
+    gen = setup.generate(spec)
     elapsed = time.perf_counter() - t0
     if args.check:
         stale = stale_files(gen.files, args.out)
@@ -172,9 +98,8 @@ def _cmd_verify(args: argparse.Namespace) -> int:
 
     from .progress import wanted
 
-    res = verify(args.model, filter=args.filter, precision=args.precision, steps=args.steps, seed=args.seed,
-                 dt=args.dt, gates=_gates(args), commit_check=args.commit_check,
-                 progress=wanted(args.quiet, args.progress), **_ukf_options(args))
+    res = verify(args.model, steps=args.steps, seed=args.seed, dt=args.dt, progress=wanted(args.quiet, args.progress),
+                 **FilterSetup.from_args(args).kwargs())
     text = format_result(res)
     print(text.splitlines()[-1].strip() if args.quiet else text)
     if args.json:
@@ -224,7 +149,8 @@ def _parser() -> argparse.ArgumentParser:
     g = sub.add_parser("generate", help="write the C header and source for a model",
                        description="Write DIR/<name>_<filter>.h and .c for MODEL. With --check, write nothing "
                                    "and list the files in DIR that differ (exit 1 when any does).")
-    _add_filter_args(g, "float")
+    g.add_argument("model", metavar="MODEL", help="the model file (Python defining `model`)")
+    filters.add_arguments(g, "float")
     g.add_argument("-o", "--out", required=True, metavar="DIR", help="output folder")
     g.add_argument("--check", action="store_true", help="write nothing; exit 1 and list stale files")
     g.add_argument("-q", "--quiet", action="store_true", help="print nothing on success")
@@ -240,7 +166,8 @@ def _parser() -> argparse.ArgumentParser:
                        description="Simulate truth and measurements from MODEL, run the compiled C and the numpy "
                                    "reference on them, print the largest deviations of x and P. Tolerance: "
                                    "double relative 1e-9; float 0.01 sigma. Exit 0 equal, 1 not, 2 bad input.")
-    _add_filter_args(v, "float")
+    v.add_argument("model", metavar="MODEL", help="the model file (Python defining `model`)")
+    filters.add_arguments(v, "float")
     v.add_argument("--steps", type=int, default=None,
                    help="simulated steps (default: from the model: every sensor 50 updates, three of the "
                         "slowest time constants, at least 200, at most 5000)")
@@ -271,8 +198,8 @@ def _parser() -> argparse.ArgumentParser:
                                     "project (generated_examples/firmware_qemu, shipped as estgen.firmware) builds "
                                     "with the generated filter.")
     rp.add_argument("model", metavar="MODEL", help="the model file (Python defining `model`)")
-    rp.add_argument("--filter", choices=("ekf", "ukf"), default="ekf", help="filter (default ekf)")
-    rp.add_argument("--precision", choices=("float", "double"), default="float", help="C type (default float)")
+    rp.add_argument("--filter", choices=filters.names(), default="ekf", help="filter kind (default ekf)")
+    rp.add_argument("--precision", choices=PRECISIONS, default="float", help="C type (default float)")
     rp.add_argument("--steps", type=int, default=200, help="simulated steps (default 200)")
     rp.add_argument("--seed", type=int, default=0, help="random seed (default 0)")
     rp.add_argument("-o", "--out", required=True, metavar="DIR", help="folder for replay_data.h")
@@ -305,7 +232,7 @@ def main(argv: Optional[Sequence[str]] = None) -> int:
         return 2
     try:
         return int(args.func(args))
-    except ModelError as err:
+    except (ModelError, ToolMissing) as err:
         print(str(err), file=sys.stderr)
         return 2
     except ToolMissing as err:

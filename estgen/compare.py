@@ -45,7 +45,10 @@ import numpy as np
 from ._version import __version__
 from .chi2 import chi2_ppf
 from .errors import ModelError
-from .model import ModelSpec, as_spec, check_filter_support
+from .filters import check_filter_support
+from .filters import get as filter_kind
+from .filters import names as filter_names
+from .model import ModelSpec, as_spec
 from .progress import Progress, wanted
 from .simulate import (INSIDE_REQUIRED, MonteCarloResult, Scenario, StatSummary, make_scenario, pyplot, run_filter,
                        save_figure, score_run, summarize_runs, write_outputs)
@@ -81,8 +84,6 @@ REFUSAL_STREAK = 10
 COST_STEPS = 100
 #: runs the linearization check follows (each costs a reference EKF and UKF step per step)
 LINEARIZATION_RUNS = 10
-#: every filter kind compare knows, cheapest kind first
-FILTER_KINDS = ("ekf", "ukf", "pf")
 #: the target whose float build the cost figures describe (contract: ``report --target cortex-m4f``)
 COST_TARGET = "cortex-m4f"
 
@@ -90,7 +91,7 @@ COST_TARGET = "cortex-m4f"
 def available_filters(spec: ModelSpec) -> List[str]:
     """Every filter kind whose support check accepts ``spec``, cheapest kind first."""
     out = []
-    for name in FILTER_KINDS:
+    for name in filter_names():
         try:
             check_filter_support(spec, name)
         except ModelError:
@@ -441,7 +442,7 @@ def measure_cost(spec: ModelSpec, name: str, sc: Scenario, **options: Any) -> Di
     """The float build's cost on the Cortex-M4F, as ``estgen report --target cortex-m4f``
     measures it, replaying ``sc``. Cached by the generated C and the replayed data."""
     from .build import cache_dir
-    from .emit import generate
+    from .filters import generate
     from .report import make_report
 
     gen = generate(spec, filter=name, precision="float", **options)
@@ -517,9 +518,7 @@ def compare(
     for name in names:
         check_filter_support(spec, name)
     if "ukf" in names or "ekf" in names:
-        from .reference import check_ukf_parameters
-
-        check_ukf_parameters(spec.ne, alpha, beta, kappa)
+        filter_kind("ukf").options(alpha=alpha, beta=beta, kappa=kappa).check(spec)
     runs, steps, seed = int(runs), int(steps), int(seed)
     if runs < 1 or steps < 1:
         raise ModelError(f"--runs and --steps must be >= 1, got {runs} and {steps}")
@@ -604,14 +603,15 @@ def _factory(spec: ModelSpec, name: str, precision: str, use_reference: bool, op
     seed starts the particle filter's generator; the other kinds draw nothing). The C is
     generated and compiled (or loaded from the build cache) once."""
     if use_reference:
-        from .reference import model_functions, reference
+        from .filters import reference
+        from .reference import model_functions
 
         model_functions(spec)  # lambdified once, shared by every fresh reference
         if name == "pf":
             return lambda seed: reference(spec, filter=name, seed=seed, **options)
         return lambda seed: reference(spec, filter=name, **options)
     from .build import CFilter, compile_generated
-    from .emit import generate
+    from .filters import generate
 
     comp = compile_generated(generate(spec, filter=name, precision=precision, **options))
     return lambda seed: CFilter(spec, comp, name, seed=seed if name == "pf" else None)

@@ -360,33 +360,16 @@ def struct_size(header: PathLike, type_name: str, target: Union[str, Target], wo
 
 def generate(model: PathLike, filter: str, precision: str, out_dir: PathLike, **options: Any) -> Tuple[Path, Path]:
     """Generate the filter's C into ``out_dir`` as ``estgen generate`` does and return the
-    (header, source) paths. Raises :class:`~estgen.errors.ModelError` (or another exception)
-    when the generator refuses, e.g. for a filter it does not support."""
-    from . import load_model
+    (header, source) paths. ``options`` are those of :func:`estgen.filters.generate`. Raises
+    :class:`~estgen.errors.ModelError` when the generator refuses, e.g. for a filter it does not
+    support."""
+    from .filters import generate as generate_filter
+    from .model import load_model
+    from .outputs import write_generated
 
     spec = load_model(model)
+    write_generated(generate_filter(spec, filter, precision, **options).files, os.fspath(out_dir))
     out = Path(out_dir)
-    try:
-        from .cli import main as cli_main
-    except ImportError:
-        cli_main = None
-    if cli_main is not None:
-        argv = ["generate", os.fspath(model), "--filter", filter, "--precision", precision, "-o", str(out)]
-        for key, val in options.items():
-            text = str(val) if isinstance(val, int) and not isinstance(val, bool) else repr(float(val))
-            argv += [f"--{key.replace('_', '-')}", text]
-        try:
-            code = cli_main(argv)
-        except SystemExit as err:  # argparse exits instead of returning
-            code = err.code if isinstance(err.code, int) else 2
-        if code not in (0, None):
-            raise RuntimeError(f"estgen {' '.join(argv)} exited {code}")
-    else:  # the command line is not there yet: the same generator, called directly
-        from .emit import generate as emit_generate
-
-        out.mkdir(parents=True, exist_ok=True)
-        for fname, text in emit_generate(spec, filter, precision, **options).files.items():
-            (out / fname).write_text(text)
     return out / f"{spec.name}_{filter}.h", out / f"{spec.name}_{filter}.c"
 
 
@@ -477,7 +460,7 @@ def reference_replay(spec: Any, filter: str, precision: str, scenario: Any,
     """Run the float64 reference filter over the same inputs, in the same order as main.c
     (predict, then that step's measurements as recorded), on the values as quantized into
     the C header. Returns (x, P, statuses)."""
-    from .reference import reference
+    from .filters import reference
 
     ref = reference(spec, filter=filter, **options)
     steps = len(scenario.t)

@@ -46,10 +46,10 @@ from typing import Callable, Dict, List, Optional, Sequence, Set, Tuple
 import sympy as sp
 
 from .derive import Stmt, c_names, packed_index
-from .errors import ModelError
+from .errors import UsageError
 from .model import ModelSpec, SensorSpec, noise_factor
 
-__all__ = ["UkfWeights", "UkfPredictCode", "UkfUpdateCode", "UkfCode", "derive_ukf", "check_options",
+__all__ = ["UkfWeights", "UkfPredictCode", "UkfUpdateCode", "UkfCode", "derive_ukf", "check_values",
            "commit_check", "factor_function"]
 
 
@@ -63,6 +63,14 @@ class UkfWeights:
     alpha: float
     beta: float
     kappa: float
+
+    def __post_init__(self) -> None:
+        """Every check of the parameters: numbers, alpha > 0 and ``n + lambda > 0`` (else the
+        sigma points would coincide or be imaginary)."""
+        check_values(self.alpha, self.beta, self.kappa)
+        if not self.c > 0.0 or not math.isfinite(self.w):
+            raise UsageError(f"UKF n + lambda = alpha^2 (n + kappa) must be > 0 (n = {self.n}, got {self.c:g}); "
+                             f"raise kappa above {-self.n}")
 
     @property
     def lam(self) -> float:
@@ -98,34 +106,15 @@ class UkfWeights:
         return [self.wc0] + [self.w] * (2 * self.n)
 
 
-def check_options(n: int, options: Dict[str, object]) -> UkfWeights:
-    """Validate alpha, beta, kappa (defaults 1, 2, 0) and return the weights.
-
-    Raises :class:`ModelError` for unknown options, non-numbers, ``alpha <= 0`` and
-    ``n + lambda <= 0`` (no spread: the sigma points would coincide or be imaginary).
-    """
-    known = {"alpha": 1.0, "beta": 2.0, "kappa": 0.0}
-    unknown = sorted(set(options) - set(known))
-    if unknown:
-        raise ModelError(f"unknown UKF option(s) {unknown}; the UKF takes alpha, beta and kappa")
-    vals: Dict[str, float] = {}
-    for k, default in known.items():
-        v = options.get(k, default)
-        if v is None:
-            v = default
+def check_values(alpha: object, beta: object, kappa: object) -> None:
+    """Refuse sigma-point parameters that are not finite numbers, and ``alpha <= 0``."""
+    for k, v in (("alpha", alpha), ("beta", beta), ("kappa", kappa)):
         if isinstance(v, bool) or not isinstance(v, numbers.Real):  # numpy scalars register as Real
-            raise ModelError(f"UKF {k} must be a number, got {v!r}")
-        fv = float(v)
-        if not math.isfinite(fv):
-            raise ModelError(f"UKF {k} must be a finite number, got {v!r}")
-        vals[k] = fv
-    if not vals["alpha"] > 0.0:
-        raise ModelError(f"UKF alpha must be > 0, got {vals['alpha']}; the default is 1")
-    wts = UkfWeights(n, vals["alpha"], vals["beta"], vals["kappa"])
-    if not wts.c > 0.0 or not math.isfinite(wts.w):
-        raise ModelError(f"UKF n + lambda = alpha^2 (n + kappa) must be > 0 (n = {n}, got {wts.c:g}); "
-                         f"raise kappa above {-n}")
-    return wts
+            raise UsageError(f"UKF {k} must be a number, got {v!r}")
+        if not math.isfinite(float(v)):
+            raise UsageError(f"UKF {k} must be a finite number, got {v!r}")
+    if not float(alpha) > 0.0:  # type: ignore[arg-type]
+        raise UsageError(f"UKF alpha must be > 0, got {alpha}; the default is 1")
 
 
 @dataclass

@@ -16,7 +16,7 @@ import os
 import re
 from dataclasses import dataclass, field
 from functools import lru_cache
-from typing import Any, Dict, List, Optional, Sequence, Tuple
+from typing import TYPE_CHECKING, Any, Dict, List, Optional, Sequence, Tuple
 
 import jinja2
 import numpy as np
@@ -29,12 +29,13 @@ from .chi2 import chi2_ppf
 from .derive import (EKF_BLOCK_UPDATE_SECTIONS, EKF_PREDICT_SECTIONS, Stmt, angle_wraps, derive_ekf,
                      ekf_sequential_sections, packed_index, packed_size, with_sections)
 from .errors import ModelError
-from .model import ModelSpec, check_filter_support, unit_problem, with_gates
+from .model import ModelSpec, unit_problem
 from .status import ADVICE, PRECEDENCE, Status
 
-__all__ = ["CPrinter", "OpCount", "count_ops", "Generated", "generate", "template_env", "c_literal"]
+if TYPE_CHECKING:  # annotation only: the filter kinds import this module, never the reverse
+    from .filters import FilterSetup
 
-PRECISIONS = ("float", "double")
+__all__ = ["CPrinter", "OpCount", "count_ops", "Generated", "generate_ekf", "template_env", "c_literal"]
 
 
 def c_literal(value: float, precision: str) -> str:
@@ -363,17 +364,10 @@ def _component_text(expr: sp.Expr, width: int = 60) -> str:
     return text
 
 
-#: what predict and update verify before they commit a new P (see the README): "cholesky" factorizes
-#: it (every pivot finite and > 0); "diagonal" checks the diagonal only (cheaper, less safe)
-COMMIT_CHECKS = ("cholesky", "diagonal")
-
-
-def _common_context(spec: ModelSpec, filt: str, precision: str, commit_check: str = "cholesky",
-                    command: Optional[str] = None) -> Dict[str, Any]:
-    """What every template needs. ``command`` is the options line the header records (default:
-    the filter, precision and commit check)."""
-    if precision not in PRECISIONS:
-        raise ModelError(f"unknown precision {precision!r}; use 'float' or 'double'")
+def _common_context(spec: ModelSpec, setup: "FilterSetup") -> Dict[str, Any]:
+    """What every filter's templates share. The options in ``setup`` are validated already."""
+    filt, precision, commit_check = setup.name, setup.precision, setup.common.commit_check
+    command = options_line(filt, precision, commit_check, setup.common.gate_map, **setup.options.changed())
     for s in spec.sensors:
         if s.name.endswith("_nis"):
             raise ModelError(f"sensor name {s.name!r} must not end in '_nis' (it would clash with a generated function)",
@@ -407,8 +401,6 @@ def _common_context(spec: ModelSpec, filt: str, precision: str, commit_check: st
     # DEGENERATE is the particle filter's own refusal; the Kalman filters never return it
     statuses = [{"name": st.name, "value": int(st), "advice": ADVICE[st]} for st in Status
                 if st is not Status.DEGENERATE or filt == "pf"]
-    if commit_check not in COMMIT_CHECKS:
-        raise ModelError(f"unknown commit check {commit_check!r}; use one of {', '.join(COMMIT_CHECKS)}")
     commit_ops = OpCount()
     full_ops = OpCount()
     commit_pd = em.lines(pivot_check(ne, "P"), full_ops)
@@ -423,10 +415,12 @@ def _common_context(spec: ModelSpec, filt: str, precision: str, commit_check: st
         "version": __version__,
         "model_file": safe_filename(spec.source),
         "model_sha256": model_sha256(spec.source),
-        "command": command or options_line(filt, precision, commit_check),
+        "command": command,
         "precedence": list(PRECEDENCE),
         "name": spec.name,
         "filt": filt,
+        "title": setup.kind.title,
+        "template": setup.kind.template,
         "FILT": filt.upper(),
         "prefix": prefix,
         "PREFIX": prefix.upper(),
@@ -463,9 +457,9 @@ def _common_context(spec: ModelSpec, filt: str, precision: str, commit_check: st
     }
 
 
-def _render(ctx: Dict[str, Any], source_template: str) -> Generated:
+def _render(ctx: Dict[str, Any]) -> Generated:
     env = template_env()
-    source = env.get_template(source_template).render(**ctx)
+    source = env.get_template(ctx["template"]).render(**ctx)
     header = env.get_template("filter.h.j2").render(long_functions=long_functions(source),
                                                       lines_limit=FUNCTION_LINES_LIMIT, **ctx)
     cdef = env.get_template("cdef.j2").render(**ctx)
@@ -485,29 +479,12 @@ def pivot_check(n: int, P: str) -> Tuple[Stmt, ...]:
     return tuple(commit_check(n, P))
 
 
-_DERIVED: List[Tuple[ModelSpec, str, Any]] = []
-
-
-def _derived(spec: ModelSpec, key: str, derive: Any) -> Any:
-    """Derivation does not depend on the precision: derive once per spec and filter, print
-    twice. Keyed by identity (a spec is immutable); the last few are kept."""
-    for sp_, k, code in _DERIVED:
-        if sp_ is spec and k == key:
-            return code
-    code = derive(spec)
-    _DERIVED.append((spec, key, code))
-    del _DERIVED[:-8]
-    return code
-
-
-def generate_ekf(spec: ModelSpec, precision: str = "float", commit_check: str = "cholesky",
-                 command: Optional[str] = None) -> Generated:
-    """Generate the EKF's header and source for ``spec`` (``command``: the options line the
-    header records)."""
-    check_filter_support(spec, "ekf")
-    ctx = _common_context(spec, "ekf", precision, commit_check, command)
+def generate_ekf(spec: ModelSpec, setup: "FilterSetup") -> Generated:
+    """Generate the EKF's header and source for ``spec`` (gates set, support checked)."""
+    ctx = _common_context(spec, setup)
     em: Emitter = ctx["emitter"]
-    code = _derived(spec, "ekf", derive_ekf)
+    # the derivation does not depend on the precision: derive once per spec, print twice
+    code = spec.derived("derive_ekf", lambda: derive_ekf(spec))
     ops: Dict[str, Dict[str, int]] = {}
     pc = OpCount()
     ctx["predict"] = {"lines": em.lines(with_sections(code.predict.stmts, EKF_PREDICT_SECTIONS), pc), "uses_par": code.predict.uses_par,
@@ -525,7 +502,7 @@ def generate_ekf(spec: ModelSpec, precision: str = "float", commit_check: str = 
                     "k_size": uc.k_size, "sequential": uc.sequential, "dx_size": uc.dx_size})
     ctx["updates"] = ups
     ctx["ops"] = ops
-    return _render(ctx, "ekf.c.j2")
+    return _render(ctx)
 
 
 def output_names(spec: ModelSpec, filter: str) -> List[str]:
@@ -533,25 +510,3 @@ def output_names(spec: ModelSpec, filter: str) -> List[str]:
     (``generate --outputs``; the CMake package declares them at configure time)."""
     prefix = f"{spec.name}_{filter}"
     return [f"{prefix}.c", f"{prefix}.h"]
-
-
-def generate(spec: ModelSpec, filter: str = "ekf", precision: str = "float",
-             gates: Optional[Dict[str, float]] = None, commit_check: str = "cholesky", **options: Any) -> Generated:
-    """Generate C for ``spec``. ``filter`` is "ekf" or "ukf"; UKF options: alpha, beta, kappa.
-    ``gates`` sets chi-square gate probabilities per sensor, overriding the model file's.
-    ``commit_check`` is "cholesky" (default) or "diagonal": what a new P must pass before commit."""
-    command = options_line(filter, precision, commit_check, gates, **options)
-    spec = with_gates(spec, gates)
-    if filter == "ekf":
-        if options:
-            raise ModelError(f"options {sorted(options)} apply to the UKF only")
-        return generate_ekf(spec, precision, commit_check, command)
-    if filter == "ukf":
-        from .emit_ukf import generate_ukf
-
-        return generate_ukf(spec, precision, commit_check=commit_check, command=command, **options)
-    if filter == "pf":
-        from .emit_pf import generate_pf
-
-        return generate_pf(spec, precision, commit_check=commit_check, command=command, **options)
-    raise ModelError(f"unknown filter {filter!r}; use 'ekf', 'ukf' or 'pf'")

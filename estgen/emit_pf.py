@@ -7,15 +7,18 @@ ones, with the particle arrays and the generator state added to the struct.
 
 from __future__ import annotations
 
-from typing import Any, Dict, List, Optional
+from typing import TYPE_CHECKING, Any, Dict, List, Optional
 
 import numpy as np
 import sympy as sp
 
 from .derive import Stmt, c_names, model_block, packed_index, packed_size
 from .emit import Emitter, Generated, OpCount, _common_context, _render
-from .model import ModelSpec, check_filter_support
-from .pf import DEFAULT_SEED, PSD_TOL, PfOptions, pf_options
+from .model import ModelSpec
+from .pf import DEFAULT_SEED, PSD_TOL, PfOptions
+
+if TYPE_CHECKING:
+    from .filters import FilterSetup
 
 __all__ = ["generate_pf", "pf_struct_bytes"]
 
@@ -89,18 +92,15 @@ def _prior(spec: ModelSpec, em: Emitter) -> Dict[str, Any]:
     return {"box": False, "rows": rows}
 
 
-def generate_pf(spec: ModelSpec, precision: str = "float", commit_check: str = "cholesky",
-                command: Optional[str] = None, **options: Any) -> Generated:
-    """Generate the particle filter's header and source for ``spec``.
-
-    ``options``: particles (N), resample_threshold, roughening (see :func:`estgen.pf.pf_options`).
+def generate_pf(spec: ModelSpec, setup: "FilterSetup", opts: PfOptions) -> Generated:
+    """Generate the particle filter's header and source for ``spec`` with the validated
+    ``opts``: particles (N), resample_threshold, roughening (see :func:`estgen.pf.pf_options`).
     ``Generated.ops`` holds the op counts of one evaluation of each model function (keys "f",
     "q", "h_<sensor>", "r_<sensor>"): the per-particle part of a step's cost.
     """
-    check_filter_support(spec, "pf")
-    opts: PfOptions = pf_options(spec.n, options)
-    ctx = _common_context(spec, "pf", precision, commit_check, command)
+    ctx = _common_context(spec, setup)
     em: Emitter = ctx["emitter"]
+    precision = setup.precision
     N, n = opts.particles, spec.n
     ops: Dict[str, OpCount] = {}
     fns = _model_functions(spec, em, ops)
@@ -139,7 +139,7 @@ def generate_pf(spec: ModelSpec, precision: str = "float", commit_check: str = "
         f"{ctx['prefix']}_reseed(s, seed) restarts the generator, e.g. from a hardware entropy source.",
     ]
     ctx["ops"] = {k: v.as_dict() for k, v in ops.items()}
-    gen = _render(ctx, "pf.c.j2")
+    gen = _render(ctx)
     gen.particles = N  # type: ignore[attr-defined]
     return gen
 

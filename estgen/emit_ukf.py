@@ -5,20 +5,17 @@ EKF (:mod:`estgen.emit`), so both filters have the same interface and status cod
 
 from __future__ import annotations
 
-from typing import Any, Dict, List, Optional
+from typing import TYPE_CHECKING, Any, Dict, List
 
 from .derive import with_sections
-from .derive_ukf import UKF_PREDICT_SECTIONS, UKF_UPDATE_SECTIONS, UkfWeights, check_options, derive_ukf, factor_function
+from .derive_ukf import UKF_PREDICT_SECTIONS, UKF_UPDATE_SECTIONS, UkfWeights, derive_ukf, factor_function
 from .emit import Emitter, Generated, OpCount, _common_context, _render
-from .model import ModelSpec, check_filter_support
+from .model import ModelSpec
 
-__all__ = ["generate_ukf", "ukf_weights"]
+if TYPE_CHECKING:
+    from .filters import FilterSetup
 
-
-def ukf_weights(spec: ModelSpec, **options: Any) -> UkfWeights:
-    """The validated sigma-point weights the generator uses for ``spec`` and ``options``
-    (alpha, beta, kappa; defaults 1, 2, 0). Raises ModelError for invalid options."""
-    return check_options(spec.ne, dict(options))
+__all__ = ["generate_ukf"]
 
 
 def _augmented_note(spec: ModelSpec, wts: UkfWeights, em: Emitter) -> List[str]:
@@ -38,19 +35,17 @@ def _stack_bytes(stmts_decls: int, arrays: int, size_real: int) -> int:
     return (stmts_decls + arrays) * size_real
 
 
-def generate_ukf(spec: ModelSpec, precision: str = "float", commit_check: str = "cholesky",
-                 command: Optional[str] = None, **options: Any) -> Generated:
-    """Generate the UKF's header and source for ``spec``.
+def generate_ukf(spec: ModelSpec, setup: "FilterSetup", wts: UkfWeights) -> Generated:
+    """Generate the UKF's header and source for ``spec`` with the validated weights ``wts``.
 
-    ``options``: alpha (> 0), beta, kappa with alpha^2 (n + kappa) > 0. The op counts in
+    The op counts in
     ``Generated.ops`` are of the straight-line code as printed (keys "predict", "update_<sensor>"),
     the shared factorization and commit check included in each. The returned object also carries
     ``sigma_stack`` = {"predict": bytes, "update": bytes}, the named locals the header states.
     """
-    check_filter_support(spec, "ukf")
-    wts = check_options(spec.ne, dict(options))
-    ctx = _common_context(spec, "ukf", precision, commit_check, command)
+    ctx = _common_context(spec, setup)
     em: Emitter = ctx["emitter"]
+    precision = setup.precision
     code = derive_ukf(spec, wts)
     size_real = 4 if precision == "float" else 8
     n, np_ = ctx["n"], ctx["np"]
@@ -96,6 +91,6 @@ def generate_ukf(spec: ModelSpec, precision: str = "float", commit_check: str = 
         f"alpha = {ctx['weights']['alpha']}, beta = {ctx['weights']['beta']}, kappa = {ctx['weights']['kappa']}.",
     ] + _augmented_note(spec, wts, em)
     ctx["sigma_stack"] = {"predict": p_bytes, "update": u_bytes}
-    gen = _render(ctx, "ukf.c.j2")
+    gen = _render(ctx)
     gen.sigma_stack = dict(ctx["sigma_stack"])  # type: ignore[attr-defined]
     return gen

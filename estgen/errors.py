@@ -1,7 +1,13 @@
-"""Errors that carry a file name, a line and the offending source line.
+"""The errors estgen raises, one class per cause.
 
-Every problem a user can fix in a model file is raised as :class:`ModelError`. The command line
-prints ``str(err)`` (one to a few lines, no traceback) and exits with status 2.
+* :class:`ModelError`: a model file is wrong (file, line and source line attached).
+* :class:`UsageError`: an option or argument is wrong (a ModelError too: both are bad input the
+  user fixes, and the command line treats them alike).
+* :class:`ToolMissing`: an outside tool (compiler, emulator, valgrind) is not installed.
+* :class:`BuildError`: the generated C did not compile (a defect of estgen, never of the model).
+
+The command line prints ``str(err)`` of the first three (one to a few lines, no traceback) and
+exits with status 2.
 """
 
 from __future__ import annotations
@@ -46,8 +52,8 @@ class ModelError(Exception):
         return head
 
 
-class GenerationError(Exception):
-    """The generator cannot produce code for an otherwise valid model (a size limit, say)."""
+class UsageError(ModelError):
+    """An option or argument is wrong (unknown filter, bad gate, bad UKF parameter, ...)."""
 
 
 #: The Debian/Ubuntu package that provides each outside tool estgen runs.
@@ -74,3 +80,7 @@ class ToolMissing(RuntimeError):
 
     def __reduce__(self) -> tuple:  # pickled across worker processes by its tool alone
         return (ToolMissing, (self.tool,))
+
+
+class BuildError(RuntimeError):
+    """The generated C did not compile (a defect of estgen, never of the model)."""

@@ -33,7 +33,7 @@ __all__ = [
     "load_model",
     "validate",
     "as_spec",
-    "check_filter_support",
+    "check_differentiable",
     "NON_DIFFERENTIABLE",
 ]
 
@@ -471,6 +471,9 @@ class ModelSpec:
     #: absolute paths of the user's own Python files the model file imported (not the standard
     #: library, not installed packages, not estgen): what a build must watch besides the model
     local_imports: Tuple[str, ...] = ()
+    #: products computed once per spec (derivations, lambdified functions); see :meth:`derived`.
+    #: Not copied by dataclasses.replace (init=False), so a changed copy derives afresh.
+    memo: Dict[str, Any] = field(default_factory=dict, init=False, compare=False, repr=False)
 
     @property
     def n(self) -> int:
@@ -561,6 +564,12 @@ class ModelSpec:
 
     def default_subs(self) -> Dict[sp.Symbol, float]:
         return {p.symbol: p.default for p in self.params}
+
+    def derived(self, key: str, make: Callable[[], Any]) -> Any:
+        """``make()``, computed once per spec and kept with it (a spec is immutable)."""
+        if key not in self.memo:
+            self.memo[key] = make()
+        return self.memo[key]
 
 
 # ---------------------------------------------------------------------------------------------
@@ -1292,22 +1301,9 @@ def _find_nondiff(expr: sp.Basic) -> Optional[str]:
     return None
 
 
-#: Filters whose derivation handles attitude (error-state) blocks.
-ATTITUDE_FILTERS: Tuple[str, ...] = ("ekf", "ukf")
-
-
-def check_filter_support(spec: ModelSpec, filt: str) -> None:
-    """Refuse what a given filter cannot do (for the EKF: non-differentiable functions)."""
-    if filt == "pf" and spec.attitudes:
-        raise ModelError(f"the particle filter does not take attitude states (model {spec.name!r} declares "
-                         f"{len(spec.attitudes)}); use --filter ekf or --filter ukf", spec.states[spec.attitudes[0]].where)
-    if filt not in ATTITUDE_FILTERS and spec.attitudes:
-        raise ModelError(f"--filter {filt} does not take attitude states yet; this estgen version generates "
-                         f"attitudes for {', '.join(ATTITUDE_FILTERS) or 'no filter'}", spec.states[spec.attitudes[0]].where)
-    if filt not in ("ekf", "ukf", "pf"):
-        raise ModelError(f"unknown filter {filt!r}; use 'ekf', 'ukf' or 'pf'")
-    if filt in ("ukf", "pf"):
-        return
+def check_differentiable(spec: ModelSpec) -> None:
+    """Refuse a model whose process or sensor functions are not differentiable (Min, Max,
+    Abs, ...), as a filter that linearizes them (the EKF) must."""
     src = spec.continuous if spec.continuous is not None else spec.f
     what = "dynamics()" if spec.continuous is not None else "process()"
     for i, e in enumerate(src):

@@ -15,19 +15,18 @@ from __future__ import annotations
 
 import abc
 import math
-import os
 from typing import Any, Callable, Dict, List, Mapping, Optional, Sequence, Tuple, Union
 
 import numpy as np
 import sympy as sp
 
 from .chi2 import chi2_ppf
+from .derive_ukf import UkfWeights
 from .errors import ModelError
-from .model import Model, ModelSpec, as_spec, check_filter_support, noise_factor, with_gates
+from .model import ModelSpec, noise_factor
 from .status import Status
 
 __all__ = [
-    "reference",
     "ReferenceEKF",
     "ReferenceUKF",
     "ModelFunctions",
@@ -37,11 +36,9 @@ __all__ = [
     "sigma_points",
     "unscented_transform",
     "gate_threshold",
-    "check_ukf_parameters",
 ]
 
 TWO_PI = 2.0 * math.pi
-ModelLike = Union[ModelSpec, Model, str, "os.PathLike[str]"]
 
 
 def wrap_angle(a: Any) -> Any:
@@ -263,20 +260,10 @@ class ModelFunctions:
         return self._arr(self._Av[sensor](*p), (nv, nv)) if nv else np.zeros((0, 0))
 
 
-_FUNCTIONS_CACHE: Dict[int, Tuple[ModelSpec, ModelFunctions]] = {}
-
-
 def model_functions(spec: ModelSpec) -> ModelFunctions:
     """:class:`ModelFunctions` for ``spec``, lambdified once per spec object (Monte Carlo
     builds one filter per run; lambdifying each time would dominate the run time)."""
-    hit = _FUNCTIONS_CACHE.get(id(spec))
-    if hit is not None and hit[0] is spec:
-        return hit[1]
-    mf = ModelFunctions(spec)
-    if len(_FUNCTIONS_CACHE) > 16:
-        _FUNCTIONS_CACHE.clear()
-    _FUNCTIONS_CACHE[id(spec)] = (spec, mf)
-    return mf
+    return spec.derived("model_functions", lambda: ModelFunctions(spec))
 
 
 # ---------------------------------------------------------------------------------------------
@@ -589,7 +576,7 @@ class ReferenceUKF(_ReferenceBase):
 
     def __init__(self, spec: ModelSpec, *, alpha: float = 1.0, beta: float = 2.0, kappa: float = 0.0,
                  params: Optional[Mapping[str, float]] = None, functions: Optional[ModelFunctions] = None) -> None:
-        check_ukf_parameters(spec.ne, alpha, beta, kappa)
+        UkfWeights(spec.ne, alpha, beta, kappa)  # validates the parameters (UsageError)
         super().__init__(spec, params, functions)
         self.alpha, self.beta, self.kappa = float(alpha), float(beta), float(kappa)
         self._lam, self._wm, self._wc = sigma_weights(spec.ne, self.alpha, self.beta, self.kappa)
@@ -708,36 +695,3 @@ class ReferenceUKF(_ReferenceBase):
         S = (dZ.T * wc) @ dZ + R
         C = (dX.T * wc) @ dZ
         return _wrap_masked(z - zhat, zang), S, C, lambda K, S_: P - K @ S_ @ K.T
-
-
-def check_ukf_parameters(n: int, alpha: float, beta: float, kappa: float) -> None:
-    """Refuse sigma-point parameters that give no usable spread (ModelError: exit 2 on the CLI)."""
-    vals = {"alpha": alpha, "beta": beta, "kappa": kappa}
-    for k, v in vals.items():
-        if not isinstance(v, (int, float, np.floating, np.integer)) or isinstance(v, bool) or not math.isfinite(v):
-            raise ModelError(f"UKF {k} must be a finite number, got {v!r}")
-    if alpha <= 0:
-        raise ModelError(f"UKF alpha must be > 0, got {alpha}")
-    if alpha * alpha * (n + kappa) <= 0:
-        raise ModelError(f"UKF alpha^2 (n + kappa) must be > 0 (n = {n}); raise kappa above {-n}")
-
-
-def reference(model: ModelLike, filter: str = "ekf", *, alpha: float = 1.0, beta: float = 2.0,
-              kappa: float = 0.0, params: Optional[Mapping[str, float]] = None,
-              gates: Optional[Dict[str, float]] = None, **options: Any) -> "_ReferenceBase":
-    """The numpy reference filter for ``model`` (a ModelSpec, a Model or a model file path),
-    started at the model's x0 and P0. ``params`` overrides parameter defaults; ``gates`` sets
-    chi-square gate probabilities per sensor, as for :func:`estgen.build`. The particle filter
-    (``filter="pf"``) takes ``particles``, ``seed``, ``resample_threshold`` and ``roughening``
-    (see :mod:`estgen.pf`)."""
-    spec = with_gates(as_spec(model), gates)
-    check_filter_support(spec, filter)
-    if filter == "pf":
-        from .pf import ReferencePF
-
-        return ReferencePF(spec, params=params, **options)
-    if options:
-        raise ModelError(f"options {sorted(options)} apply to the particle filter only")
-    if filter == "ekf":
-        return ReferenceEKF(spec, params=params)
-    return ReferenceUKF(spec, alpha=alpha, beta=beta, kappa=kappa, params=params)

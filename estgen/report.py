@@ -39,7 +39,8 @@ import tempfile
 from pathlib import Path
 from typing import Any, Dict, List, Optional, Sequence, Tuple
 
-from . import cross
+from . import cross, filters
+from .filters import FilterSetup
 from .progress import Progress, wanted
 
 __all__ = ["add_arguments", "run", "make_report", "format_report", "count_c_ops", "c_function_bodies"]
@@ -56,19 +57,13 @@ _OP_KEYS = ("add", "mul", "div", "sqrt", "transcendental")
 def add_arguments(parser: argparse.ArgumentParser) -> None:
     """Add ``estgen report``'s arguments to ``parser``."""
     parser.add_argument("model", help="the model file (Python)")
-    parser.add_argument("--filter", default="ekf", choices=("ekf", "ukf", "pf"))
-    parser.add_argument("--particles", type=int, default=None, metavar="N",
-                        help="PF: number of particles (default 500); RAM grows with N")
-    parser.add_argument("--precision", default="float", choices=("float", "double"))
+    filters.add_arguments(parser, "float")
     parser.add_argument("--target", default="cortex-m4f", choices=tuple(cross.TARGETS),
                         help="where RAM, stack and flash are measured (default cortex-m4f)")
     parser.add_argument("--json", metavar="FILE", help="also write the figures as JSON")
     parser.add_argument("--steps", type=int, default=DEFAULT_STEPS,
                         help=f"scenario length for the instruction counts (default {DEFAULT_STEPS})")
     parser.add_argument("--seed", type=int, default=DEFAULT_SEED)
-    parser.add_argument("--alpha", type=float, help="UKF: sigma-point spread")
-    parser.add_argument("--beta", type=float, help="UKF: prior-knowledge weight")
-    parser.add_argument("--kappa", type=float, help="UKF: secondary scaling")
     parser.add_argument("--clock-mhz", type=float, default=DEFAULT_CLOCK_MHZ,
                         help=f"core clock for the microsecond columns (default {DEFAULT_CLOCK_MHZ:g} MHz)")
     parser.add_argument("-q", "--quiet", action="store_true", help="no progress on stderr")
@@ -79,10 +74,9 @@ def run(args: argparse.Namespace) -> int:
     """Run ``estgen report`` with parsed ``args``: 0 done, 2 bad input."""
     from .errors import ModelError, ToolMissing
 
-    options = {k: getattr(args, k) for k in ("alpha", "beta", "kappa", "particles") if getattr(args, k, None) is not None}
     try:
-        rep = make_report(args.model, args.filter, args.precision, args.target, steps=args.steps,
-                          seed=args.seed, progress=wanted(args.quiet, args.progress), **options)
+        rep = make_report(args.model, target=args.target, steps=args.steps, seed=args.seed,
+                          progress=wanted(args.quiet, args.progress), **FilterSetup.from_args(args).kwargs())
     except ModelError as err:
         print(f"estgen: {err}", file=sys.stderr)
         return 2
@@ -261,13 +255,15 @@ def _missing(rep: Dict[str, Any], err: cross.ToolMissing, what: str) -> None:
 
 def make_report(model: Any, filter: str = "ekf", precision: str = "float", target: str = "cortex-m4f",
                 steps: int = DEFAULT_STEPS, seed: int = DEFAULT_SEED, work_dir: Optional[str] = None,
-                scenario: Any = None, host: bool = True, progress: bool = False, **options: Any) -> Dict[str, Any]:
+                scenario: Any = None, host: bool = True, progress: bool = False,
+                gates: Optional[Dict[str, float]] = None, commit_check: str = "cholesky",
+                **options: Any) -> Dict[str, Any]:
     """Measure one generated filter of ``model`` (a model file path or a ModelSpec). Returns a
     JSON-ready dict (see the module docstring); figures needing a missing tool are absent and the
     tool is listed under ``missing``. ``scenario`` (a :class:`~estgen.simulate.Scenario`) replaces
     the simulated one the instruction counts replay (``steps`` and ``seed`` are then unused);
-    ``host=False`` leaves out the host instruction count; ``progress``: a progress line on stderr."""
-    from .emit import generate as emit_generate
+    ``host=False`` leaves out the host instruction count; ``progress``: a progress line on stderr.
+    ``gates``, ``commit_check`` and ``options`` are those of :func:`estgen.filters.generate`."""
     from .model import as_spec
 
     spec = as_spec(model)
@@ -281,7 +277,7 @@ def make_report(model: Any, filter: str = "ekf", precision: str = "float", targe
         # The generator itself (what `estgen generate` writes), so its operation counts come along.
         gen = work / "gen"
         gen.mkdir(parents=True, exist_ok=True)
-        generated = emit_generate(spec, filter, precision, **options)
+        generated = FilterSetup.of(filter, precision, gates, commit_check, **options).generate(spec)
         for fname, content in generated.files.items():
             (gen / fname).write_text(content)
         prefix = f"{spec.name}_{filter}"

@@ -11,6 +11,7 @@ inside their two-sided 95% chi-square bounds.
 from __future__ import annotations
 
 import argparse
+import dataclasses
 import json
 import math
 import multiprocessing
@@ -23,9 +24,11 @@ from typing import Any, Callable, Dict, List, Mapping, Optional, Sequence, TextI
 import numpy as np
 
 from .chi2 import chi2_ppf
-from .errors import ModelError
-from .model import ModelSpec, as_spec, check_filter_support, with_gates
-from .reference import ReferenceEKF, ReferenceUKF, check_ukf_parameters, model_functions, wrap_angle
+from . import filters
+from .errors import ModelError, UsageError
+from .filters import FilterSetup
+from .model import ModelSpec, as_spec
+from .reference import model_functions, wrap_angle
 from .status import Status
 
 __all__ = [
@@ -374,31 +377,27 @@ def _filter_factory(ctx: Dict[str, Any]) -> Callable[[], Any]:
     each run then gets a new filter struct over the same loaded module, initialized by the C's
     own init, so a run costs no regeneration.
     """
-    spec: ModelSpec = with_gates(ctx["spec"], ctx["gates"])  # gates act in the filter only
-    ukf_opts = {"alpha": ctx["alpha"], "beta": ctx["beta"], "kappa": ctx["kappa"]} if ctx["filter"] == "ukf" else {}
-    if ctx["filter"] == "pf":
-        ukf_opts = dict(ctx["options"])
+    setup: FilterSetup = ctx["setup"]
+    spec = setup.spec(ctx["spec"])  # gates act in the filter only
+
+    def run_options() -> Any:
+        """The kind's options for this run: a run-time seed (the particle filter's) is the run's own."""
+        if "seed" in setup.options.runtime():
+            return dataclasses.replace(setup.options, seed=_pf_seed(ctx))
+        return setup.options
+
     if ctx["use_reference"]:
         mf = model_functions(spec)
-        if ctx["filter"] == "pf":
-            from .pf import ReferencePF
-
-            def new() -> Any:
-                return ReferencePF(spec, functions=mf, seed=_pf_seed(ctx), **ukf_opts)
-        elif ctx["filter"] == "ekf":
-            def new() -> Any:
-                return ReferenceEKF(spec, functions=mf)
-        else:
-            def new() -> Any:
-                return ReferenceUKF(spec, functions=mf, **ukf_opts)
-    else:
-        from .build import CFilter, compile_generated
-        from .emit import generate
-
-        comp = compile_generated(generate(spec, filter=ctx["filter"], precision=ctx["precision"], **ukf_opts))
 
         def new() -> Any:
-            return CFilter(spec, comp, ctx["filter"], seed=_pf_seed(ctx) if ctx["filter"] == "pf" else None)
+            return setup.kind.reference(spec, run_options(), functions=mf)
+    else:
+        from .build import CFilter, compile_generated
+
+        comp = compile_generated(setup.generate(spec))
+
+        def new() -> Any:
+            return CFilter(spec, comp, setup.name, **run_options().runtime())
 
     def fresh() -> Any:
         filt = new()
@@ -473,15 +472,14 @@ def monte_carlo(
     use_reference: bool = False,
     set_params: Optional[Mapping[str, float]] = None,
     precision: str = "float",
-    alpha: float = 1.0,
-    beta: float = 2.0,
-    kappa: float = 0.0,
     every: Optional[Mapping[str, int]] = None,
     dt: Optional[float] = None,
     workers: Optional[int] = None,
     progress: Optional[bool] = None,
     gates: Optional[Mapping[str, float]] = None,
+    commit_check: str = "cholesky",
     options: Optional[Mapping[str, Any]] = None,
+    **kind_options: Any,
 ) -> MonteCarloResult:
     """Run the filter on ``runs`` independent simulations and test its consistency.
 
@@ -489,34 +487,26 @@ def monte_carlo(
     ``set_params`` changes the filter's parameters; the simulated truth keeps the defaults.
     Runs are spread over ``workers`` processes (default: all cores; 1 runs in this process).
     ``progress``: show progress on stderr (default: when stderr is a terminal).
-    ``gates`` sets the filter's chi-square gate probabilities per sensor (as ``--gate``).
-    ``options``: the particle filter's particles, resample_threshold and roughening (each run's
-    generator gets its own seed, derived from ``seed`` and the run number).
+    ``gates``, ``commit_check`` and the kind's own options (``options`` and ``kind_options``
+    together: the UKF's alpha, beta, kappa; the particle filter's particles, resample_threshold
+    and roughening) are those of :func:`estgen.filters.generate`. A particle filter's generator
+    gets its own seed in every run, derived from ``seed`` and the run number.
     """
     started = time.perf_counter()
     spec = as_spec(spec)
-    check_filter_support(spec, filter)
-    if filter == "ukf":
-        check_ukf_parameters(spec.ne, alpha, beta, kappa)
-    if precision not in ("float", "double"):
-        raise ModelError(f"unknown precision {precision!r}; use 'float' or 'double'")
+    setup = FilterSetup.of(filter, precision, gates, commit_check, **{**(options or {}), **kind_options})
+    setup.spec(spec)  # checks support, gate names and options before anything runs
     runs, steps = int(runs), int(steps)
     if runs < 1 or steps < 1:
-        raise ModelError(f"--runs and --steps must be >= 1, got {runs} and {steps}")
+        raise UsageError(f"--runs and --steps must be >= 1, got {runs} and {steps}")
     if int(seed) < 0:
-        raise ModelError(f"--seed must be >= 0, got {seed}")
+        raise UsageError(f"--seed must be >= 0, got {seed}")
     fparams = _resolve_params(spec, set_params, "--set")
     changed = {k: v for k, v in fparams.items() if k in (set_params or {})}
     ev = _resolve_every(spec, every)
     dtv = _scenario_dt(spec, dt)
-    with_gates(spec, dict(gates or {}))  # checks the names and probabilities
-    ctx = {"spec": spec, "gates": dict(gates or {}), "filter": filter, "use_reference": bool(use_reference), "precision": precision,
-           "alpha": alpha, "beta": beta, "kappa": kappa, "set_params": changed, "steps": steps,
-           "seed": int(seed), "dt": dtv, "every": ev, "options": dict(options or {})}
-    if filter == "pf":
-        from .pf import pf_options
-
-        pf_options(spec.n, ctx["options"])  # checked here, before any run
+    ctx = {"spec": spec, "setup": setup, "use_reference": bool(use_reference),
+           "set_params": changed, "steps": steps, "seed": int(seed), "dt": dtv, "every": ev}
     # build the C (or lambdify the model) once, before forking, so workers inherit it and a
     # problem shows here rather than in a worker
     ctx["new_filter"] = _filter_factory(ctx)
@@ -545,7 +535,7 @@ def monte_carlo(
     done_results = [res for res in results if res is not None]
     out = summarize_runs(spec, filter, use_reference, precision, runs, steps, int(seed), dtv, fparams, changed,
                       done_results, time.perf_counter() - started)
-    out.gates = dict(ctx["gates"])
+    out.gates = setup.common.gate_map
     return out
 
 
@@ -723,14 +713,7 @@ def save_figure(fig: Any, path: str) -> None:
 def add_arguments(parser: argparse.ArgumentParser) -> None:
     """Add the ``simulate`` options to a (sub)parser."""
     parser.add_argument("model", metavar="MODEL", help="the model file")
-    parser.add_argument("--filter", choices=("ekf", "ukf", "pf"), default="ekf", help="the filter under test (default ekf)")
-    parser.add_argument("--particles", type=int, default=None, metavar="N", help="PF: number of particles (default 500)")
-    parser.add_argument("--resample-threshold", type=float, default=None, metavar="F",
-                        help="PF: resample when the effective sample size falls below F N (default 0.5)")
-    parser.add_argument("--roughening", type=float, default=None, metavar="K",
-                        help="PF: roughening constant K after resampling (default 0)")
-    parser.add_argument("--precision", choices=("float", "double"), default="float",
-                        help="precision of the compiled C under test (default float, the build generate ships)")
+    filters.add_arguments(parser, "float")
     parser.add_argument("--runs", type=int, default=50, help="Monte Carlo runs (default 50)")
     parser.add_argument("--steps", type=int, default=200, help="steps per run (default 200)")
     parser.add_argument("--seed", type=int, default=0, help="random seed (default 0)")
@@ -739,12 +722,7 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--every", action="append", default=[], metavar="SENSOR=N",
                         help="the sensor reports every N-th step (overrides the model); repeatable")
     parser.add_argument("--dt", type=float, default=None, help="simulation step in seconds")
-    parser.add_argument("--gate", action="append", default=[], metavar="SENSOR=P",
-                        help="chi-square gate probability of a sensor in the filter (overrides the model); repeatable")
     parser.add_argument("--reference", action="store_true", help="test the numpy reference instead of the C")
-    parser.add_argument("--alpha", type=float, default=1.0, help="UKF sigma-point spread (default 1)")
-    parser.add_argument("--beta", type=float, default=2.0, help="UKF prior-distribution term (default 2)")
-    parser.add_argument("--kappa", type=float, default=0.0, help="UKF secondary scaling (default 0)")
     parser.add_argument("--workers", type=int, default=None, help="processes (default: all cores)")
     parser.add_argument("--json", metavar="FILE", default=None, help="write the results as JSON")
     parser.add_argument("--plot", metavar="FILE.png", default=None, help="write a plot (needs matplotlib)")
@@ -765,37 +743,22 @@ def _pairs(items: Sequence[str], option: str, convert: Callable[[str], Any]) -> 
     return out
 
 
-def _pf_args(args: argparse.Namespace) -> Dict[str, Any]:
-    """The particle filter's options from the command line (an error with another filter)."""
-    given = {k: getattr(args, k, None) for k in ("particles", "resample_threshold", "roughening")}
-    given = {k: v for k, v in given.items() if v is not None}
-    if given and args.filter != "pf":
-        raise ModelError(f"--{sorted(given)[0].replace('_', '-')} applies to --filter pf only")
-    return given
-
-
 def run(args: argparse.Namespace) -> int:
     """Run ``estgen simulate`` with parsed ``args``; returns 0 once it ran (consistent or not).
     Bad input raises :class:`ModelError` for the CLI to print (exit 2)."""
     spec = as_spec(args.model)
     res = monte_carlo(
         spec,
-        filter=args.filter,
         runs=args.runs,
         steps=args.steps,
         seed=args.seed,
         use_reference=args.reference,
         set_params=_pairs(args.set, "--set", float),
-        precision=args.precision,
-        alpha=args.alpha,
-        beta=args.beta,
-        kappa=args.kappa,
         every=_pairs(args.every, "--every", int),
         dt=args.dt,
         workers=args.workers,
-        gates=_pairs(args.gate, "--gate", float),
         progress=True if getattr(args, "progress", False) else (None if not args.quiet else False),
-        options=_pf_args(args),
+        **FilterSetup.from_args(args).kwargs(),
     )
     write_outputs(args, res.to_json, lambda path: plot_result(res, path), lambda: format_summary(res))
     return 0

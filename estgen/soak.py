@@ -29,7 +29,9 @@ from typing import TYPE_CHECKING, Any, Callable, Dict, List, Optional, Sequence,
 import numpy as np
 import sympy as sp
 
+from . import filters
 from .errors import ModelError
+from .filters import FilterSetup
 from .model import ModelSpec, as_spec
 from .reference import wrap_angle
 from .status import Status
@@ -233,12 +235,12 @@ class _Truth:
 def soak(model: Any, filter: str = "ekf", precision: str = "float", steps: int = 10**6, seed: int = 0,
          dt: Optional[float] = None, chunk: int = 10000, profile: str = "model", period: float = 1000.0,
          gates: Optional[Dict[str, float]] = None, progress: Optional[Callable[[int, int], None]] = None,
-         generated: Optional["Generated"] = None, **options: Any) -> SoakResult:
+         generated: Optional["Generated"] = None, commit_check: str = "cholesky", **options: Any) -> SoakResult:
     """Run the compiled filter ``steps`` steps on the model's simulated truth and check x finite and
-    P positive definite after every step. ``options`` are the UKF's alpha, beta, kappa;
+    P positive definite after every step. ``gates``, ``commit_check`` and ``options`` (the kind's
+    own, e.g. the UKF's alpha, beta, kappa) are those of :func:`estgen.filters.generate`;
     ``generated`` is C already generated for this model and filter (else it is generated here)."""
     from .build import compile_generated
-    from .emit import generate
 
     spec = as_spec(model)
     if steps < 1:
@@ -255,7 +257,7 @@ def soak(model: Any, filter: str = "ekf", precision: str = "float", steps: int =
         if (gen.filter, gen.precision) != (filter, precision):
             raise ValueError(f"generated is {gen.filter}/{gen.precision}, not {filter}/{precision}")
     else:
-        gen = generate(spec, filter=filter, precision=precision, gates=gates, **options)
+        gen = FilterSetup.of(filter, precision, gates, commit_check, **options).generate(spec)
     comp = compile_generated(gen)
     ffi, lib = comp.ffi, comp.lib
     real = "float" if precision == "float" else "double"
@@ -382,9 +384,7 @@ def format_result(res: SoakResult) -> str:
 def add_arguments(parser: argparse.ArgumentParser) -> None:
     """The ``estgen soak`` options."""
     parser.add_argument("model", metavar="MODEL", help="the model file (Python defining `model`)")
-    parser.add_argument("--filter", choices=("ekf", "ukf", "pf"), default="ekf", help="filter (default ekf)")
-    parser.add_argument("--particles", type=int, default=None, metavar="N", help="PF: number of particles (default 500)")
-    parser.add_argument("--precision", choices=("float", "double"), default="float", help="C type (default float)")
+    filters.add_arguments(parser, "float")
     parser.add_argument("--steps", type=int, default=10**6, help="simulated steps (default 1000000)")
     parser.add_argument("--seed", type=int, default=0, help="random seed (default 0)")
     parser.add_argument("--dt", type=float, default=None, help="step in seconds (default: the model's scenario dt)")
@@ -392,23 +392,8 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="inputs: the model's scenario ('model', default) or its sign flipped every --period "
                              "seconds ('mirror', for integrating states such as a charge)")
     parser.add_argument("--period", type=float, default=1000.0, help="mirror period in seconds (default 1000)")
-    parser.add_argument("--gate", action="append", default=[], metavar="SENSOR=P",
-                        help="chi-square gate probability for a sensor (repeatable)")
     parser.add_argument("--json", metavar="FILE", help="also write the result as JSON")
     parser.add_argument("-q", "--quiet", action="store_true", help="no progress on stderr")
-
-
-def _gates(items: Sequence[str]) -> Dict[str, float]:
-    out: Dict[str, float] = {}
-    for item in items:
-        name, sep, value = item.partition("=")
-        try:
-            out[name] = float(value)
-        except ValueError:
-            sep = ""
-        if not sep or not name:
-            raise ModelError(f"--gate {item!r}: write SENSOR=P, e.g. --gate range_a=0.997")
-    return out
 
 
 def run(args: argparse.Namespace) -> int:
@@ -423,9 +408,8 @@ def run(args: argparse.Namespace) -> int:
             el = time.perf_counter() - started
             print(f"\r  {done}/{total} steps, {el:.0f} s", end="", file=sys.stderr, flush=True)
 
-    res = soak(spec, filter=args.filter, precision=args.precision, steps=args.steps, seed=args.seed, dt=args.dt,
-               profile=args.profile, period=args.period, gates=_gates(args.gate) or None, progress=show,
-               **({"particles": args.particles} if args.particles is not None else {}))
+    res = soak(spec, steps=args.steps, seed=args.seed, dt=args.dt, profile=args.profile, period=args.period,
+               progress=show, **FilterSetup.from_args(args).kwargs())
     if not args.quiet:
         print(file=sys.stderr)
     print(format_result(res))

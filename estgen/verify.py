@@ -35,9 +35,10 @@ from typing import Any, Dict, List, Optional, Tuple
 import numpy as np
 
 from .build import build, compiler_used
-from .model import ModelSpec, as_spec, check_filter_support, with_gates
+from .filters import FilterSetup, reference
+from .model import ModelSpec, as_spec
 from .progress import Progress
-from .reference import model_functions, reference
+from .reference import model_functions
 from .simulate import make_scenario, run_filter
 from .simulate import _scenario_dt as scenario_dt
 from .status import Status
@@ -235,13 +236,14 @@ def verify(model: Any, filter: str = "ekf", precision: str = "float", steps: Opt
            progress: bool = False, **options: Any) -> VerifyResult:
     """Run C and reference side by side on one simulated scenario and compare every step.
     ``gates`` sets chi-square gate probabilities per sensor for both filters; ``commit_check``
-    is the C's (see :func:`estgen.emit.generate`). ``progress``: a progress line on stderr.
+    is the C's; ``options`` are the kind's own (see :func:`estgen.filters.generate`; a particle
+    filter's seed defaults to ``seed``). ``progress``: a progress line on stderr.
     ``steps`` defaults to :func:`default_steps`; every chi-square gate gets two outliers."""
-    spec: ModelSpec = with_gates(as_spec(model), gates)
-    check_filter_support(spec, filter)
-    pf = filter == "pf"
-    if pf:
-        options.setdefault("seed", seed)
+    setup = FilterSetup.of(filter, precision, gates, commit_check, **options)
+    if "seed" in setup.options.runtime() and "seed" not in options:
+        setup = FilterSetup.of(filter, precision, gates, commit_check, seed=seed, **options)
+    spec: ModelSpec = setup.spec(as_spec(model))
+    pf = not setup.kind.gaussian  # a particle cloud: see the module text
     dtv = scenario_dt(spec, dt)
     if steps is None:
         steps, why = default_steps(spec, dtv)
@@ -254,8 +256,8 @@ def verify(model: Any, filter: str = "ekf", precision: str = "float", steps: Opt
         scen = make_scenario(spec, steps, seed, dt=dtv)
         outliers = _inject_outliers(spec, scen)
         bar.step("generating and compiling the C")
-        c = build(spec, filter=filter, precision=precision, commit_check=commit_check, **options)
-        r = reference(spec, filter=filter, **options)
+        c = build(spec, **setup.kwargs())
+        r = setup.reference(spec)
         if precision == "float" and not pf:
             # the C starts from x0 and P0 rounded to float; give the reference the same start
             r.set_state(c.x, c.P)
@@ -286,7 +288,7 @@ def verify(model: Any, filter: str = "ekf", precision: str = "float", steps: Opt
     ndP = np.nan_to_num(ndP, nan=np.inf)
     if pf and precision == "float":  # against the spread of other seeds (see the module text)
         tol_x = tol_P = PF_FLOAT_FACTOR
-        ndx, ndP, parted = _pf_float_ratios(spec, options, scen, rr, rc)
+        ndx, ndP, parted = _pf_float_ratios(spec, setup.options.as_dict(), scen, rr, rc)
         rc = dict(rc, predict_status=rc["predict_status"][:parted],
                   update_status={k: v[:parted] for k, v in rc["update_status"].items()})
         rr = dict(rr, predict_status=rr["predict_status"][:parted],

@@ -42,13 +42,16 @@ def configurations() -> List[Tuple[str, str, str, str]]:
 
 def main(argv: List[str] | None = None) -> int:
     sys.path.insert(0, os.path.dirname(HERE))
-    from estgen.cli import stale_files, write_generated
-    from estgen.emit import generate
+    from estgen.filters import generate, names
     from estgen.model import load_model
+    from estgen.outputs import stale_files, write_generated
 
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--check", action="store_true", help="write nothing; exit 1 listing stale files")
     args = ap.parse_args(argv)
+    unknown = sorted({f for filters in EXAMPLES.values() for f in filters} - set(names()))
+    if unknown:
+        ap.error(f"EXAMPLES names unknown filter kinds {unknown}; the registry has {list(names())}")
     stale: List[str] = []
     specs = {}
     for ex, model, filt, prec, out in configurations():

@@ -16,7 +16,7 @@ import scipy.linalg
 
 import estgen
 from estgen.build import STRICT_FLAGS
-from estgen.emit import generate
+from estgen.filters import generate
 from estgen.verify import verify
 
 from conftest import ROOT, example_filters, example_model, require_tool
@@ -91,7 +91,7 @@ def test_header_usage_block_and_no_timestamp():
 
 
 def _gen_in_subprocess(seed: str) -> str:
-    code = ("import estgen, hashlib, sys; from estgen.emit import generate\n"
+    code = ("import estgen, hashlib, sys; from estgen.filters import generate\n"
             "out = []\n"
             "for ex in ['battery_soc', 'strapdown_nav', 'beacon_rover']:\n"
             "    s = estgen.load_model(f'generated_examples/{ex}/model.py')\n"

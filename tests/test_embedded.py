@@ -19,7 +19,7 @@ import pytest
 import estgen
 from estgen import cross
 from estgen.errors import ModelError
-from estgen.model import check_filter_support
+from estgen.filters import check_filter_support
 from estgen.simulate import make_scenario
 
 ROOT = Path(__file__).resolve().parent.parent

@@ -12,7 +12,8 @@ import pytest
 import sympy as sp
 
 import estgen
-from estgen.model import ModelSpec, check_filter_support
+from estgen.filters import check_filter_support
+from estgen.model import ModelSpec
 
 ROOT = os.path.join(os.path.dirname(os.path.abspath(__file__)), os.pardir, "generated_examples")
 EXAMPLES = ["battery_soc", "beacon_rover", "strapdown_nav", "linear_cart", "valve_actuator"]

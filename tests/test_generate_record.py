@@ -10,7 +10,7 @@ import subprocess
 import sys
 
 import estgen
-from estgen.emit import generate
+from estgen.filters import generate
 
 from conftest import ROOT, example_model
 

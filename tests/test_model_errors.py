@@ -17,7 +17,7 @@ from typing import Optional, Tuple
 import pytest
 
 import estgen
-from estgen.model import check_filter_support
+from estgen.filters import check_filter_support
 
 HERE = os.path.dirname(os.path.abspath(__file__))
 BAD = os.path.join(HERE, "bad_models")

@@ -13,7 +13,7 @@ import sympy as sp
 import estgen
 from estgen import Model, Status, validate
 from estgen.build import STRICT_FLAGS
-from estgen.emit import generate
+from estgen.filters import generate
 from estgen.simulate import make_scenario, run_filter
 from estgen.verify import PF_FLOAT_FACTOR, _pf_float_ratios, verify
 

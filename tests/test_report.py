@@ -14,7 +14,7 @@ import pytest
 import estgen
 from estgen import cross, report
 from estgen.build import compile_generated
-from estgen.emit import generate as emit_generate
+from estgen.filters import generate as emit_generate
 
 ROOT = Path(__file__).resolve().parent.parent
 CART = ROOT / "generated_examples" / "linear_cart" / "model.py"

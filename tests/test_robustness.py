@@ -28,9 +28,10 @@ import scipy.stats
 import estgen
 from estgen.build import CFilter, compile_generated
 from estgen.chi2 import chi2_ppf
-from estgen.emit import Generated, generate, safe_comment, safe_filename
+from estgen.emit import Generated, safe_comment, safe_filename
+from estgen.filters import check_filter_support, generate
 from estgen.errors import ModelError
-from estgen.model import ModelSpec, check_filter_support
+from estgen.model import ModelSpec
 from estgen.reference import model_functions
 from estgen.simulate import make_scenario
 from estgen.soak import within_rounding

@@ -17,7 +17,7 @@ import pytest
 import estgen
 from estgen.build import STRICT_FLAGS, build
 from estgen.cli import main as cli_main
-from estgen.emit import generate
+from estgen.filters import generate
 from estgen.errors import ModelError
 from estgen.simulate import make_scenario, run_filter
 from estgen.status import Status

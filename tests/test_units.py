@@ -8,7 +8,7 @@ import textwrap
 import pytest
 
 import estgen
-from estgen.emit import generate
+from estgen.filters import generate
 
 HEAD = """
     import sympy as sp

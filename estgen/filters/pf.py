@@ -1,0 +1,68 @@
+"""The particle filter as a filter kind: printing in :func:`estgen.emit_pf.generate_pf`,
+template ``templates/pf.c.j2``, reference :class:`estgen.pf.ReferencePF`; its options are
+validated by :func:`estgen.pf.pf_options`."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import TYPE_CHECKING, Any, Mapping, Optional, cast
+
+from ..emit import Generated
+from ..emit_pf import generate_pf
+from ..model import ModelSpec
+from ..pf import DEFAULT_PARTICLES, DEFAULT_SEED, PfOptions, ReferencePF, pf_options
+from ..reference import ModelFunctions
+from .base import FilterKind, FilterOptions, Flag
+
+if TYPE_CHECKING:
+    from . import FilterSetup
+
+__all__ = ["PF", "PfKindOptions"]
+
+
+@dataclass(frozen=True)
+class PfKindOptions(FilterOptions):
+    """Particle count, resampling threshold (a fraction of N for the effective sample size),
+    roughening constant, and the random generator's seed."""
+
+    particles: int = DEFAULT_PARTICLES
+    resample_threshold: float = 0.5
+    roughening: float = 0.0
+    #: run time, not generated: the seed the C's init_seed and the reference start from
+    seed: int = field(default=DEFAULT_SEED, metadata={"runtime": True})
+
+    FLAGS = (
+        Flag("particles", int, f"PF: number of particles (default {DEFAULT_PARTICLES})", "N"),
+        Flag("resample_threshold", float, "PF: resample when the effective sample size falls below this "
+                                          "fraction of N (default 0.5)"),
+        Flag("roughening", float, "PF: roughening constant K, 0 for none (default 0)"),
+    )
+
+    def validated(self, spec: ModelSpec) -> PfOptions:
+        """The compile-time options, checked against the model (particles > n, ...)."""
+        return pf_options(spec.n, {"particles": self.particles, "resample_threshold": self.resample_threshold,
+                                   "roughening": self.roughening})
+
+    def check(self, spec: ModelSpec) -> None:
+        self.validated(spec)
+
+
+class PF(FilterKind):
+    name = "pf"
+    title = "particle filter"
+    template = "pf.c.j2"
+    Options = PfKindOptions
+    gaussian = False
+
+    def check_support(self, spec: ModelSpec) -> None:
+        """The particle filter evaluates f and h without derivatives: every model without
+        attitude states is supported."""
+
+    def generate(self, spec: ModelSpec, setup: "FilterSetup") -> Generated:
+        return generate_pf(spec, setup, cast(PfKindOptions, setup.options).validated(spec))
+
+    def reference(self, spec: ModelSpec, options: FilterOptions, params: Optional[Mapping[str, float]] = None,
+                  functions: Optional[ModelFunctions] = None) -> Any:
+        o = cast(PfKindOptions, options)
+        return ReferencePF(spec, particles=o.particles, resample_threshold=o.resample_threshold,
+                           roughening=o.roughening, seed=o.seed, params=params, functions=functions)
