@@ -240,10 +240,13 @@ class StatSummary:
     dof: int  # degrees of freedom of one run's value (n for NEES, m for NIS)
     lower: float
     upper: float
+    #: steps 1..burn_in are the start-up transient: plotted, not judged (see :func:`settling_steps`)
+    burn_in: int = 0
 
     @property
     def valid(self) -> np.ndarray:
-        return np.isfinite(self.per_step)
+        """The steps the verdict judges: a value exists and the step is past the burn-in."""
+        return np.isfinite(self.per_step) & (self.steps > self.burn_in)
 
     @property
     def mean(self) -> float:
@@ -290,6 +293,7 @@ class StatSummary:
             "fraction_below": _num(self.fraction_below),
             "verdict": self.verdict,
             "dof": self.dof,
+            "judged_steps": int(np.sum(self.valid)),
             "steps": [int(s) for s in self.steps],
             "per_step": [_num(v) for v in self.per_step],
         }
@@ -331,6 +335,8 @@ class MonteCarloResult:
     gates: Dict[str, float] = field(default_factory=dict)  # gate probabilities set for the filter
     #: run 0 in full for plotting: t, x_true, x, P
     run0: Dict[str, np.ndarray] = field(default_factory=dict, repr=False)
+    burn_in: int = 0  # steps left out of the verdict
+    burn_in_reason: str = ""
 
     @property
     def consistent(self) -> bool:
@@ -356,6 +362,8 @@ class MonteCarloResult:
             "nis": {k: v.to_dict() for k, v in self.nis.items()},
             "rmse": {k: _num(v) for k, v in self.rmse.items()},
             "refusals": dict(self.refusals),
+            "burn_in_steps": self.burn_in,
+            "burn_in_reason": self.burn_in_reason,
             "consistent": bool(self.consistent),
             "seconds": self.seconds,
         }
@@ -479,6 +487,7 @@ def monte_carlo(
     gates: Optional[Mapping[str, float]] = None,
     commit_check: str = "cholesky",
     options: Optional[Mapping[str, Any]] = None,
+    burn_in: Optional[int] = None,
     **kind_options: Any,
 ) -> MonteCarloResult:
     """Run the filter on ``runs`` independent simulations and test its consistency.
@@ -491,6 +500,7 @@ def monte_carlo(
     together: the UKF's alpha, beta, kappa; the particle filter's particles, resample_threshold
     and roughening) are those of :func:`estgen.filters.generate`. A particle filter's generator
     gets its own seed in every run, derived from ``seed`` and the run number.
+    ``burn_in``: steps left out of the verdict (default: :func:`settling_steps` of run 0).
     """
     started = time.perf_counter()
     spec = as_spec(spec)
@@ -501,6 +511,8 @@ def monte_carlo(
         raise UsageError(f"--runs and --steps must be >= 1, got {runs} and {steps}")
     if int(seed) < 0:
         raise UsageError(f"--seed must be >= 0, got {seed}")
+    if burn_in is not None and not 0 <= int(burn_in) < steps:
+        raise UsageError(f"--burn-in must be between 0 and the steps - 1 ({steps - 1}), got {burn_in}")
     fparams = _resolve_params(spec, set_params, "--set")
     changed = {k: v for k, v in fparams.items() if k in (set_params or {})}
     ev = _resolve_every(spec, every)
@@ -534,9 +546,39 @@ def monte_carlo(
             sys.stderr.flush()
     done_results = [res for res in results if res is not None]
     out = summarize_runs(spec, filter, use_reference, precision, runs, steps, int(seed), dtv, fparams, changed,
-                      done_results, time.perf_counter() - started)
+                      done_results, time.perf_counter() - started, burn_in)
     out.gates = setup.common.gate_map
     return out
+
+
+#: the automatic burn-in: covariance within this factor of its settled level, at most this
+#: fraction of the steps
+SETTLE_FACTOR, SETTLE_MAX_FRACTION = 2.0, 0.2
+
+
+def settling_steps(P: np.ndarray) -> int:
+    """The start-up transient of a run, in steps, from the filter's own covariance ``P``
+    (steps + 1, ne, ne): the first step at which every standard deviation is within a factor
+    SETTLE_FACTOR of its settled level (its median over the second half of the run), at most
+    SETTLE_MAX_FRACTION of the steps.
+
+    Why this default: early on the filter still carries P0, and an EKF linearized far from the
+    truth is expected to be off its bounds; the verdict is about the filter once that is
+    over. The transient is read from P alone, a property of the filter (P0, Q, R, sensor
+    rates), never from the NEES or NIS being judged, so it cannot hide a bad statistic."""
+    steps = P.shape[0] - 1
+    if steps < 4:
+        return 0
+    sig = np.sqrt(np.clip(np.einsum("kii->ki", P[1:]), 0.0, None))
+    settled = np.median(sig[steps // 2:], axis=0)
+    use = settled > 0
+    if not use.any():
+        return 0
+    with np.errstate(divide="ignore", invalid="ignore"):
+        ratio = np.abs(np.log(sig[:, use] / settled[use]))
+    ok = np.all(ratio <= np.log(SETTLE_FACTOR), axis=1)
+    first = int(np.argmax(ok)) if ok.any() else steps
+    return min(first, int(SETTLE_MAX_FRACTION * steps))
 
 
 def _indexed_run(r: int) -> Tuple[int, Dict[str, Any]]:
@@ -554,22 +596,31 @@ def _progress(show: bool, done: int, total: int, started: float) -> None:
 
 def summarize_runs(spec: ModelSpec, filter: str, use_reference: bool, precision: str, runs: int, steps: int,
                    seed: int, dt: float, fparams: Dict[str, float], changed: Dict[str, float],
-                   results: List[Dict[str, Any]], seconds: float) -> MonteCarloResult:
+                   results: List[Dict[str, Any]], seconds: float, burn_in: Optional[int] = None) -> MonteCarloResult:
     """The Monte Carlo summary of the runs :func:`score_run` scored: run-averaged NEES and NIS
-    against their bounds, RMSE per state over all runs and steps, refusals by status name."""
+    against their bounds (judged after ``burn_in`` steps; default :func:`settling_steps` of
+    run 0), RMSE per state over all runs and steps, refusals by status name."""
     step_no = np.arange(1, steps + 1)
+    run0 = next((r["run0"] for r in results if "run0" in r), {})
+    if burn_in is None:
+        burn_in = settling_steps(run0["P"]) if "P" in run0 else 0
+        why = (f"the covariance of run 0 settled (within a factor {SETTLE_FACTOR:g} of its level over the "
+               f"second half) after {burn_in} steps (at most {100 * SETTLE_MAX_FRACTION:.0f}% of the run)")
+    else:
+        why = "--burn-in"
+    burn_in = int(burn_in)
     nees_runs = np.array([r["nees"] for r in results])
     with np.errstate(all="ignore"):
         # a step where some run has no NEES (refused P) is averaged over the runs that have one
         nees_mean = _nanmean_rows(nees_runs)
     lo, hi = chi2_bounds(runs, spec.ne)  # NEES has the error dimension (n minus one per attitude)
-    nees = StatSummary(nees_mean, step_no, spec.ne, lo, hi)
+    nees = StatSummary(nees_mean, step_no, spec.ne, lo, hi, burn_in)
     nis: Dict[str, StatSummary] = {}
     for s in spec.sensors:
         vals = np.array([r["nis"][s.name] for r in results])
         reported = np.any(np.isfinite(vals), axis=0)
         lo, hi = chi2_bounds(runs, s.m)
-        nis[s.name] = StatSummary(_nanmean_rows(vals[:, reported]), step_no[reported], s.m, lo, hi)
+        nis[s.name] = StatSummary(_nanmean_rows(vals[:, reported]), step_no[reported], s.m, lo, hi, burn_in)
     sq = np.array([r["sq_err"] for r in results])  # (runs, steps, n)
     names, units, angles = _error_columns(spec)
     rmse = {nm: float(np.sqrt(np.mean(sq[:, :, i]))) for i, nm in enumerate(names)}
@@ -579,11 +630,11 @@ def summarize_runs(spec: ModelSpec, filter: str, use_reference: bool, precision:
             key = Status(code).name
             refusals[key] = refusals.get(key, 0) + count
     impl = "reference" if use_reference else f"c-{precision}"
-    run0 = next((r["run0"] for r in results if "run0" in r), {})
     return MonteCarloResult(
         model=spec.name, filter=filter, implementation=impl, runs=runs, steps=steps, seed=seed, dt=dt,
         states=names, units=units, angles=angles, nees=nees, nis=nis,
         rmse=rmse, refusals=refusals, filter_params=fparams, set_params=changed, seconds=seconds, run0=run0,
+        burn_in=burn_in, burn_in_reason=why,
     )
 
 
@@ -632,13 +683,20 @@ def format_summary(res: MonteCarloResult) -> str:
     for name, unit in zip(res.states, res.units):
         lines.append(f"  {name:<{width}}  {res.rmse[name]:.4g}" + (f" {unit}" if unit else ""))
     lines.append("")
-    lines.append("run-averaged statistic      mean      95% bounds            inside  verdict")
+    judged = res.steps - res.burn_in
+    lines.append(f"judged from step {res.burn_in + 1} on ({judged} steps): burn-in of {res.burn_in} steps, "
+                 + ("set by --burn-in" if res.burn_in_reason == "--burn-in" else res.burn_in_reason
+                    + "; --burn-in N to choose, 0 to judge every step"))
+    lines.append("run-averaged statistic      mean      95% bounds          inside   above   below  verdict")
     rows = [("NEES", res.nees)] + [(f"NIS {k}", v) for k, v in res.nis.items()]
     for label, st in rows:
         lines.append(f"  {label:<24} {st.mean:8.3f}  [{st.lower:7.3f}, {st.upper:7.3f}]  "
-                     f"{100 * st.fraction_inside:5.1f}%  {st.verdict}")
+                     f"{100 * st.fraction_inside:5.1f}%  {100 * st.fraction_above:5.1f}%  "
+                     f"{100 * st.fraction_below:5.1f}%  {st.verdict}")
     lines.append(f"  (dof: NEES {res.nees.dof}" + "".join(f", {k} {v.dof}" for k, v in res.nis.items())
-                 + f"; a statistic passes when inside at {100 * INSIDE_REQUIRED:.0f}% of steps or more)")
+                 + f"; a statistic passes when inside at {100 * INSIDE_REQUIRED:.0f}% of the judged steps or more;"
+                 " above the upper bound: the filter's covariance is too small (overconfident), below the lower:"
+                 " too large)")
     if res.refusals:
         lines.append("")
         lines.append("refused calls: " + ", ".join(f"{k} x{v}" for k, v in sorted(res.refusals.items())))
@@ -648,42 +706,55 @@ def format_summary(res: MonteCarloResult) -> str:
 
 
 def plot_result(res: MonteCarloResult, path: str) -> None:
-    """Write a PNG: run 0's estimate and truth with a +-3 sigma band per state, and the NEES and
-    each NIS against their bounds. Needs matplotlib (the ``plot`` extra)."""
+    """Write a PNG: per state, run 0's estimation error with its +-3 sigma envelope (the filter's
+    own claim: the error should stay inside about 99.7% of the time); then the run-averaged NEES
+    and each NIS on a log scale against their 95% bounds, the burn-in shaded. Needs matplotlib
+    (the ``plot`` extra)."""
     plt = pyplot()
+    from matplotlib import ticker
+
     r0 = res.run0
     n = len(res.states)
-    nrows = n + 1 + len(res.nis)
-    fig, axes = plt.subplots(nrows, 1, figsize=(9, 2.2 * nrows), squeeze=False)
+    stats = [("NEES", res.nees)] + [(f"NIS {k}", v) for k, v in res.nis.items()]
+    nrows = n + len(stats)
+    fig, axes = plt.subplots(nrows, 1, figsize=(9, 2.1 * nrows), squeeze=False)
     axes = axes[:, 0]
     t = r0["t"]
+    t_burn = res.burn_in * res.dt
     for i, (name, unit) in enumerate(zip(res.states, res.units)):
         ax = axes[i]
-        est = r0["x"][:, i].copy()
-        truth = r0["x_true"][:, i].copy()
-        sig = np.sqrt(np.clip(r0["P"][:, i, i], 0.0, None))
+        err = r0["x"][:, i] - r0["x_true"][:, i]
         if res.angles[i]:
-            # break the lines where an angle wraps instead of drawing a jump across the plot
-            est[1:][np.abs(np.diff(est)) > math.pi] = np.nan
-            truth[1:][np.abs(np.diff(truth)) > math.pi] = np.nan
-        ax.fill_between(t, est - 3 * sig, est + 3 * sig, color="tab:blue", alpha=0.2, label="estimate ±3σ")
-        ax.plot(t, truth, color="black", lw=1.0, label="truth")
-        ax.plot(t, est, color="tab:blue", lw=1.0, label="estimate")
+            err = wrap_angle(err)
+        sig3 = 3.0 * np.sqrt(np.clip(r0["P"][:, i, i], 0.0, None))
+        ax.fill_between(t, -sig3, sig3, color="tab:blue", alpha=0.2, label="±3σ (the filter's P)")
+        ax.plot(t, err, color="black", lw=0.8, label="error: estimate - truth")
+        ax.axhline(0.0, color="grey", lw=0.5)
+        outside = float(np.mean(np.abs(err) > sig3)) if err.size else 0.0
         ax.set_ylabel(f"{name} [{unit}]" if unit else name)
-        ax.set_xlabel("time [s]")
+        ax.set_title(f"{name}: error of run 0, outside ±3σ at {100 * outside:.1f}% of steps", fontsize="small")
         if i == 0:
-            ax.set_title(f"{res.model} {res.filter.upper()}: run 0 estimate and truth")
             ax.legend(loc="upper right", fontsize="small")
-    stats = [("NEES", res.nees)] + [(f"NIS {k}", v) for k, v in res.nis.items()]
     for ax, (label, st) in zip(axes[n:], stats):
         ts = st.steps * res.dt
-        ax.plot(ts, st.per_step, lw=1.0, color="tab:green", label=f"run-averaged {label}")
+        vals = np.where(st.per_step > 0, st.per_step, np.nan)  # a log axis: zero has no place
+        ax.plot(ts, vals, lw=0.9, color="tab:green", label=f"run-averaged {label}")
         ax.axhline(st.lower, color="tab:red", ls="--", lw=0.8, label="95% bounds")
         ax.axhline(st.upper, color="tab:red", ls="--", lw=0.8)
-        ax.set_title(f"{label} over {res.runs} runs: {100 * st.fraction_inside:.0f}% inside, {st.verdict}")
-        ax.set_ylabel(label)
-        ax.set_xlabel("time [s]")
-        ax.legend(loc="upper right", fontsize="small")
+        ax.axhline(st.dof, color="grey", ls=":", lw=0.8, label=f"expected ({st.dof})")
+        if t_burn > 0:
+            ax.axvspan(0.0, t_burn, color="grey", alpha=0.15, label="burn-in (not judged)")
+        ax.set_yscale("log")
+        ax.yaxis.set_major_formatter(ticker.FormatStrFormatter("%g"))
+        ax.yaxis.set_minor_formatter(ticker.NullFormatter())
+        ax.set_title(f"{label} over {res.runs} runs: {100 * st.fraction_inside:.0f}% inside, "
+                     f"{100 * st.fraction_above:.0f}% above, {100 * st.fraction_below:.0f}% below: {st.verdict}",
+                     fontsize="small")
+        ax.set_ylabel(f"{label} (log)")
+        ax.legend(loc="upper right", fontsize="x-small")
+    axes[-1].set_xlabel("time [s]")
+    axes[0].set_title(f"{res.model} {res.filter.upper()} ({res.implementation}). " + axes[0].get_title(),
+                      fontsize="small")
     save_figure(fig, path)
 
 
@@ -717,6 +788,9 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--runs", type=int, default=50, help="Monte Carlo runs (default 50)")
     parser.add_argument("--steps", type=int, default=200, help="steps per run (default 200)")
     parser.add_argument("--seed", type=int, default=0, help="random seed (default 0)")
+    parser.add_argument("--burn-in", type=int, default=None, metavar="N",
+                        help="leave steps 1..N out of the verdict (default: the start-up transient, the steps "
+                             "the filter's covariance takes to settle within a factor 2, at most 20%% of the run)")
     parser.add_argument("--set", action="append", default=[], metavar="NAME=VALUE",
                         help="change a parameter of the filter (the truth keeps the default); repeatable")
     parser.add_argument("--every", action="append", default=[], metavar="SENSOR=N",
@@ -759,6 +833,7 @@ def run(args: argparse.Namespace) -> int:
         workers=args.workers,
         progress=True if getattr(args, "progress", False) else (None if not args.quiet else False),
         **FilterSetup.from_args(args).kwargs(),
+        burn_in=args.burn_in,
     )
     write_outputs(args, res.to_json, lambda path: plot_result(res, path), lambda: format_summary(res))
     return 0

@@ -357,27 +357,39 @@ def n_packed(n: int) -> int:
 
 
 def format_result(res: SoakResult) -> str:
-    """A short human-readable summary."""
+    """The soak summary: the run, a table of calls by status, the invariants, the verdict."""
     lines = [
         f"soak {res.model} {res.filter} {res.precision}: {res.steps} steps of dt {res.dt:g} s "
         f"(profile {res.profile}, seed {res.seed}) in {res.seconds:.1f} s",
-        f"  x non-finite at {res.nonfinite_steps} steps, P not positive definite at {res.not_posdef_steps} steps"
+        "",
+    ]
+    codes = [st.name for st in Status if st != Status.OK]
+    seen = [c for c in codes if res.predict_status.get(c) or any(u.get(c) for u in res.update_status.values())]
+    head = f"  {'call':<24} {'calls':>10} {'OK':>10}" + "".join(f" {c:>12}" for c in seen)
+    lines += [head, "  " + "-" * (len(head) - 2)]
+    rows = [("predict", res.predict_status)] + [(f"update {k}", v) for k, v in res.update_status.items()]
+    for label, counts in rows:
+        total = sum(counts.values())
+        lines.append(f"  {label:<24} {total:>10} {counts.get('OK', 0):>10}"
+                     + "".join(f" {counts.get(c, 0):>12}" for c in seen))
+    lines += [
+        "",
+        f"  {'x non-finite at':<40} {res.nonfinite_steps} steps",
+        f"  {'P not positive definite at':<40} {res.not_posdef_steps} steps"
         + (f" (first at step {res.first_failure})" if res.first_failure is not None else "")
         + (f"; {res.borderline_steps} more within rounding" if res.borderline_steps else ""),
-        f"  predict: {res.predict_status}",
+        f"  {'smallest Cholesky pivot of P':<40} {res.min_cholesky_pivot:.3g}",
+        f"  {'largest |x|':<40} {res.max_abs_state:.3g}",
+        f"  {'mean NEES':<40} {res.mean_nees:.3g} (about {res.n} when consistent)",
     ]
-    for name, counts in res.update_status.items():
-        lines.append(f"  update {name}: {counts}")
-    if res.bad_measurements:
-        lines.append(f"  {res.bad_measurements} simulated measurements were non-finite (the truth left the model's domain)")
-    lines.append(f"  mean NEES {res.mean_nees:.3g} (about n = {res.n} when consistent), smallest "
-                 f"Cholesky pivot of P {res.min_cholesky_pivot:.3g}, largest |x| {res.max_abs_state:.3g}")
     if len(res.chunk_nees) > 1:
         first, last = res.chunk_nees[0], res.chunk_nees[-1]
-        lines.append(f"  mean NEES of the first chunk {first if first is None else f'{first:.3g}'}, of the last "
-                     f"{last if last is None else f'{last:.3g}'}; largest |x| in the last chunk "
-                     f"{res.chunk_max_abs_state[-1] if res.chunk_max_abs_state else float('nan'):.3g}")
-    lines.append("  OK" if res.ok else f"  FAILED ({res.refusals} refused calls)")
+        fmt = (lambda v: "-" if v is None else f"{v:.3g}")  # noqa: E731
+        lines.append(f"  {'mean NEES, first / last chunk':<40} {fmt(first)} / {fmt(last)}")
+    if res.bad_measurements:
+        lines.append(f"  {res.bad_measurements} simulated measurements were non-finite (the truth left the model's domain)")
+    lines += ["", "  result: " + ("OK: x finite and P positive definite at every step" if res.ok
+                                  else f"FAILED ({res.refusals} refused calls)")]
     return "\n".join(lines)
 
 
