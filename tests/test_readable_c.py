@@ -13,7 +13,8 @@ import numpy as np
 import pytest
 
 import estgen
-from estgen.emit import c_literal, generate
+from estgen.emit import c_literal
+from estgen.filters import generate
 
 from conftest import example_filters, example_model
 
