@@ -70,7 +70,7 @@ def test_packed_layout_and_batch_cholesky():
 
 @pytest.mark.parametrize("ex", ["beacon_rover", "strapdown_nav"])
 def test_soak_truth_has_the_model_process_noise(ex):
-    # x[k+1] - f(x[k], u[k]) over a chunk: zero mean and sample covariance Q(dt) (numpy.cov),
+    # x[k+1] - f(x[k], u[k], 0) over a chunk: zero mean and sample covariance Q(dt) (numpy.cov),
     # with f from the reference's model functions, not the soak's own lambdification.
     spec = spec_of(ex)
     dt = float(spec.scenario_dt)
@@ -85,6 +85,12 @@ def test_soak_truth_has_the_model_process_noise(ex):
     if ang.any():
         resid[:, ang] = wrap_angle(resid[:, ang])
     Q = mf.Q(dt, p)
+    if spec.nw:
+        # noise symbols (strapdown_nav's IMU noise through the inputs) add L Qw L' along the
+        # path, L = df/dw: exact here, where f is linear in w (covariance of a linear map)
+        Qw = mf.Qw(dt, p)
+        Ls = [mf.L(prev[k], U[k], dt, p) for k in range(len(X))]
+        Q = Q + np.mean([L @ Qw @ L.T for L in Ls], axis=0)
     sd = np.sqrt(np.diag(Q))
     # 6000 samples: the sample variance is within ~4.5 % (1 sigma ~ sqrt(2/6000)) of the truth
     assert np.allclose(np.diag(np.cov(resid.T)) / np.diag(Q), 1.0, atol=0.08)
