@@ -179,3 +179,34 @@ def test_cli_bad_input_exits_2(argv, capsys) -> None:
     assert main(["compare", CART, "--steps", "5", "--runs", "2", *argv]) == 2
     err = capsys.readouterr().err
     assert err and "Traceback" not in err
+
+
+def test_divergence_definition() -> None:
+    # docs/compare.md: diverged = non-finite or indefinite P at the end, or the run's own NEES
+    # above the 99.9% chi-square quantile (scipy) at every step of the last 10%, or 10 refusals
+    # in a row.
+    from scipy.stats import chi2
+
+    from estgen.compare import _diverged
+
+    n, steps = 2, 50
+    far = chi2.ppf(0.999, n)
+
+    def case(nees_tail: float, refusals: int = 0, P_end: float = 1.0) -> bool:
+        nees = np.full(steps, 2.0)
+        nees[-5:] = nees_tail
+        pst = np.zeros(steps, dtype=int)
+        pst[10:10 + refusals] = 4
+        P = np.tile(np.eye(n), (steps + 1, 1, 1))
+        P[-1] *= P_end
+        out = {"x": np.zeros((steps + 1, n)), "P": P, "predict_status": pst,
+               "update_status": {"s": np.full(steps, -1, dtype=int)}}
+        return _diverged({"nees": nees}, out, n)
+
+    assert not case(far * 0.99)
+    assert case(far * 1.01)
+    assert not case(far * 1.01 - 2 * far)  # below: fine
+    assert not case(2.0, refusals=9)
+    assert case(2.0, refusals=10)
+    assert case(2.0, P_end=-1.0)
+    assert case(2.0, P_end=math.nan)
