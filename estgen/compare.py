@@ -583,9 +583,10 @@ def compare(
             lin = Linearization(predict=_nanmean(np.array(lin_pred)), step=_nanmean(np.array(lin_step)),
                                 runs=len(lin_pred))
     recommended, reason = _recommend(outcomes, margin, budget, lin)
+    first = outcomes[names[0]].stats  # the error components: an attitude counts three
     return Comparison(model=spec.name, runs=runs, steps=steps, seed=seed, dt=scenario0.dt, implementation=impl,
-                      margin=margin, budget=budget, states=[s.name for s in spec.states],
-                      units=[s.unit for s in spec.states], filters=outcomes, recommended=recommended,
+                      margin=margin, budget=budget, states=list(first.states),
+                      units=list(first.units), filters=outcomes, recommended=recommended,
                       reason=reason, linearization=lin, seconds=time.perf_counter() - started)
 
 
@@ -688,18 +689,23 @@ def _recommend(outcomes: Dict[str, FilterOutcome], margin: float, budget: Budget
         if not budget.empty:
             head += " and fits the budget"
     else:
-        # nothing meets every condition: the most accurate of those that fit (consistent first)
+        # nothing meets every condition. Of those that fit, the best-behaved group (consistent
+        # first, then without diverged runs); in it the cheapest within the margin, else the
+        # most accurate.
         pool = fits or ordered
-        pick = min(pool, key=lambda o: (not o.consistent, o.diverged_runs, o.accuracy_ratio, _cost_order(o)))
+        rank = min((not o.consistent, o.diverged_runs > 0) for o in pool)
+        group = [o for o in pool if (not o.consistent, o.diverged_runs > 0) == rank]  # still cost-ordered
+        within = [o for o in group if o.accuracy_ratio <= 1.0 + margin]
+        pick = within[0] if within else min(group, key=lambda o: (o.accuracy_ratio, _cost_order(o)))
+        which = f"the cheapest {limit}" if within else "the most accurate"
         that_fits = "" if budget.empty else " that fits the budget"
         if not fits:
-            head = (f"{pick.name.upper()}: no filter fits the budget; this is the most accurate, "
-                    "for a part with more room")
+            head = f"{pick.name.upper()}: no filter fits the budget; this is {which}, for a part with more room"
         elif pick.consistent:
             head = (f"{pick.name.upper()}: no filter{that_fits} is consistent, never diverged and {limit}; "
-                    "this is the most accurate consistent one")
+                    f"this is {which} of the consistent ones")
         else:
-            head = (f"{pick.name.upper()}: no filter{that_fits} is consistent; this is the most accurate, "
+            head = (f"{pick.name.upper()}: no filter{that_fits} is consistent; this is {which}, "
                     f"use it with care ({_inconsistency(pick, lin) or _trouble(pick)})")
     pc = pick.cost or {}
     head += (f" ({pc.get('instructions_per_step')} instructions per step, {pc.get('flash_bytes')} B flash, "
