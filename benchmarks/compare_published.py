@@ -30,7 +30,7 @@ def main() -> int:
     ap.add_argument("--runs", type=int, default=20)
     ap.add_argument("--particles", type=int, default=None, help="particle count when the PF takes part")
     args = ap.parse_args()
-    opts = {"particles": args.particles} if args.particles else {}
+    opts = {"options": {"pf": {"particles": args.particles}}} if args.particles else {}
     cases = [
         ("falling body (Athans et al. 1968)", os.path.join(ROOT, "tests", "models", "falling_body.py"), 600, 1,
          {"truth_initial": ([3e5, 2e4, 1e-3], [0.0, 0.0, 0.0])}),

@@ -44,8 +44,8 @@ import numpy as np
 
 from ._version import __version__
 from .chi2 import chi2_ppf
-from .errors import ModelError
-from .filters import check_filter_support
+from .errors import ModelError, UsageError
+from .filters import KINDS, FilterSetup, check_filter_support
 from .filters import get as filter_kind
 from .filters import names as filter_names
 from .model import ModelSpec, as_spec
@@ -100,12 +100,12 @@ def available_filters(spec: ModelSpec) -> List[str]:
     return out
 
 
-def _filter_options(name: str, alpha: float, beta: float, kappa: float, particles: Optional[int]) -> Dict[str, Any]:
-    if name == "ukf":
-        return {"alpha": alpha, "beta": beta, "kappa": kappa}
-    if name == "pf" and particles is not None:
-        return {"particles": particles}
-    return {}
+def _with_run_seed(setup: FilterSetup, seed: int) -> FilterSetup:
+    """``setup`` with its run-time generator seed (a kind that draws random numbers, such as the
+    particle filter, declares one) set to ``seed``; unchanged for a kind without one."""
+    if "seed" not in setup.options.runtime():
+        return setup
+    return dataclasses.replace(setup, options=dataclasses.replace(setup.options, seed=seed))
 
 
 def _run_seed(seed: int, run: int) -> int:
@@ -375,14 +375,15 @@ def _out_from(st: StatSummary) -> Optional[int]:
     return int(st.steps[hit[0]]) if hit.size else None
 
 
-def _linearization_run(spec: ModelSpec, sc: Scenario, out: Dict[str, Any], ukf_opts: Dict[str, float]
+def _linearization_run(spec: ModelSpec, sc: Scenario, out: Dict[str, Any], unscented: FilterSetup
                        ) -> Tuple[np.ndarray, np.ndarray]:
     """Per step of one run: the covariance distance of the EKF's and the unscented step from
     the EKF's estimate, after predict and after the step's updates."""
-    from .reference import ReferenceEKF, ReferenceUKF, model_functions
+    from .reference import model_functions
 
     mf = model_functions(spec)
-    ekf, ukf = ReferenceEKF(spec, functions=mf), ReferenceUKF(spec, functions=mf, **ukf_opts)
+    ekf = FilterSetup.of("ekf", "double").reference(spec, functions=mf)
+    ukf = unscented.reference(spec, functions=mf)
     pred = np.full(sc.steps, np.nan)
     step = np.full(sc.steps, np.nan)
     with np.errstate(all="ignore"):
@@ -488,10 +489,7 @@ def compare(
     *,
     precision: str = "float",
     use_reference: bool = False,
-    alpha: float = 1.0,
-    beta: float = 2.0,
-    kappa: float = 0.0,
-    particles: Optional[int] = None,
+    options: Optional[Mapping[str, Mapping[str, Any]]] = None,
     margin: float = DEFAULT_MARGIN,
     budget: Optional[Budget] = None,
     truth_initial: Optional[Tuple[Sequence[float], Any]] = None,
@@ -503,7 +501,9 @@ def compare(
     truths of ``steps`` steps, measure their cost and recommend one (see the module docstring).
 
     The filters under test are the compiled C in ``precision`` (default float, the build that
-    ships) or, with ``use_reference``, the numpy references. ``truth_initial`` = (x0, P0) draws
+    ships) or, with ``use_reference``, the numpy references. ``options`` gives a kind its own
+    options, e.g. ``{"ukf": {"alpha": 0.5}, "pf": {"particles": 300}}`` (the registry's names;
+    the linearization check uses the UKF's). ``truth_initial`` = (x0, P0) draws
     the truth's initial state from N(x0, P0) instead of the filters' initial estimate and
     covariance (as in published set-ups where the estimate starts off the truth).
     ``progress``: report on stderr (default: when stderr is a terminal).
@@ -515,10 +515,19 @@ def compare(
         raise ModelError(f"no filter kind accepts model {spec.name!r}")
     if len(set(names)) != len(names):
         raise ModelError(f"--filters names a filter twice: {','.join(names)}")
-    for name in names:
-        check_filter_support(spec, name)
-    if "ukf" in names or "ekf" in names:
-        filter_kind("ukf").options(alpha=alpha, beta=beta, kappa=kappa).check(spec)
+    options = dict(options or {})
+    for name in options:
+        filter_kind(name)  # an unknown name is a UsageError
+        if name not in names:
+            raise UsageError(f"options given for the {name.upper()}, which is not compared here "
+                             f"(filters: {','.join(names)})")
+    # each kind checks the model and its options; the cost is always that of the float build
+    setups = {name: FilterSetup.of(name, precision, **options.get(name, {})) for name in names}
+    for setup in setups.values():
+        setup.spec(spec)
+    unscented = FilterSetup.of("ukf", "double", **options.get("ukf", {}))
+    if "ekf" in names:
+        unscented.spec(spec)
     runs, steps, seed = int(runs), int(steps), int(seed)
     if runs < 1 or steps < 1:
         raise ModelError(f"--runs and --steps must be >= 1, got {runs} and {steps}")
@@ -532,11 +541,7 @@ def compare(
     truth = _truth_spec(spec, truth_initial)
     show = wanted(force=True) if progress else (progress is None and wanted())
 
-    if particles is not None and "pf" not in names:
-        raise ModelError("--particles applies when the particle filter takes part (--filters ...,pf)")
-    options = {name: _filter_options(name, alpha, beta, kappa, particles) for name in names}
-    factories = {name: _factory(spec, name, precision, use_reference, options[name]) for name in names}
-    ukf_opts = {"alpha": alpha, "beta": beta, "kappa": kappa}
+    factories = {name: _factory(spec, setup, use_reference) for name, setup in setups.items()}
     per: Dict[str, List[Dict[str, Any]]] = {name: [] for name in names}
     seconds = {name: 0.0 for name in names}
     lin_pred: List[np.ndarray] = []
@@ -556,14 +561,14 @@ def compare(
                 per[name].append(res)
                 seconds[name] += time.perf_counter() - t0
                 if name == "ekf" and r < LINEARIZATION_RUNS:
-                    lp, ls = _linearization_run(spec, sc, out, ukf_opts)
+                    lp, ls = _linearization_run(spec, sc, out, unscented)
                     lin_pred.append(lp)
                     lin_step.append(ls)
         assert scenario0 is not None
         costs: Dict[str, Dict[str, int]] = {}
         for name in names:
             prog.step(f"cost of the {name.upper()} on the emulated Cortex-M4F")
-            costs[name] = measure_cost(spec, name, _head(scenario0, cost_steps), **options[name])
+            costs[name] = measure_cost(spec, name, _head(scenario0, cost_steps), **options.get(name, {}))
 
     impl = "reference" if use_reference else f"c-{precision}"
     outcomes: Dict[str, FilterOutcome] = {}
@@ -574,7 +579,7 @@ def compare(
         with np.errstate(all="ignore"):
             eot = np.sqrt(np.mean(sq, axis=0))
         outcomes[name] = FilterOutcome(
-            name=name, options=options[name], stats=st,
+            name=name, options=setups[name].options.as_dict(), stats=st,
             diverged_runs=sum(1 for r in per[name] if r["diverged"]), error_over_time=eot,
             nees_out_from=_out_from(st.nees), cost=costs[name], budget_misses=budget.misses(costs[name]))
     lin = None
@@ -598,24 +603,19 @@ def _nanmean(a: np.ndarray) -> np.ndarray:
     return out
 
 
-def _factory(spec: ModelSpec, name: str, precision: str, use_reference: bool, options: Dict[str, Any]
-             ) -> Callable[[int], Any]:
+def _factory(spec: ModelSpec, setup: FilterSetup, use_reference: bool) -> Callable[[int], Any]:
     """A function of a run's seed returning a fresh filter at the model's initial state (the
-    seed starts the particle filter's generator; the other kinds draw nothing). The C is
-    generated and compiled (or loaded from the build cache) once."""
+    seed starts the generator of a kind that draws random numbers). The C is generated and
+    compiled (or loaded from the build cache) once."""
     if use_reference:
-        from .filters import reference
         from .reference import model_functions
 
-        model_functions(spec)  # lambdified once, shared by every fresh reference
-        if name == "pf":
-            return lambda seed: reference(spec, filter=name, seed=seed, **options)
-        return lambda seed: reference(spec, filter=name, **options)
+        mf = model_functions(spec)  # lambdified once, shared by every fresh reference
+        return lambda seed: _with_run_seed(setup, seed).reference(spec, functions=mf)
     from .build import CFilter, compile_generated
-    from .filters import generate
 
-    comp = compile_generated(generate(spec, filter=name, precision=precision, **options))
-    return lambda seed: CFilter(spec, comp, name, seed=seed if name == "pf" else None)
+    comp = compile_generated(setup.generate(spec))
+    return lambda seed: CFilter(spec, comp, setup.name, **_with_run_seed(setup, seed).options.runtime())
 
 
 # ---------------------------------------------------------------------------------------------
@@ -878,11 +878,10 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="precision of the compiled C under test (default float, the build that ships); "
                              "the cost is always that of the float build")
     parser.add_argument("--reference", action="store_true", help="run the numpy references instead of the C")
-    parser.add_argument("--alpha", type=float, default=1.0, help="UKF sigma-point spread (default 1)")
-    parser.add_argument("--beta", type=float, default=2.0, help="UKF prior-distribution term (default 2)")
-    parser.add_argument("--kappa", type=float, default=0.0, help="UKF secondary scaling (default 0)")
-    parser.add_argument("--particles", type=int, default=None,
-                        help="particle filter: number of particles (default: the PF's default)")
+    for kind in KINDS.values():  # every kind's own options, declared once in the registry
+        for flag in kind.Options.FLAGS:
+            parser.add_argument(flag.option, dest=flag.field, type=flag.type, default=None, metavar=flag.metavar,
+                                help=flag.help)
     parser.add_argument("--dt", type=float, default=None, help="simulation step in seconds")
     parser.add_argument("--margin", type=float, default=DEFAULT_MARGIN,
                         help=f"RMSE within this fraction of the best counts as as accurate (default {DEFAULT_MARGIN:g})")
@@ -925,6 +924,18 @@ def budget_from_args(args: argparse.Namespace) -> Budget:
     return Budget(**limits)
 
 
+def options_from_args(args: argparse.Namespace) -> Dict[str, Dict[str, Any]]:
+    """Each kind's own options from its flags (a flag of a kind that is not compared is refused
+    by :func:`compare`)."""
+    out: Dict[str, Dict[str, Any]] = {}
+    for kind in KINDS.values():
+        for flag in kind.Options.FLAGS:
+            value = getattr(args, flag.field, None)
+            if value is not None:
+                out.setdefault(kind.name, {})[flag.field] = value
+    return out
+
+
 def run(args: argparse.Namespace) -> int:
     """Run ``estgen compare`` with parsed ``args``: 0 once it ran; bad input raises
     :class:`ModelError` for the CLI to print (exit 2)."""
@@ -932,8 +943,7 @@ def run(args: argparse.Namespace) -> int:
     if args.filters is not None and not filters:
         raise ModelError("--filters: name at least one filter, e.g. --filters ekf,ukf")
     res = compare(args.model, filters, args.runs, args.steps, args.seed, precision=args.precision,
-                  use_reference=args.reference, alpha=args.alpha, beta=args.beta, kappa=args.kappa,
-                  particles=args.particles,
+                  use_reference=args.reference, options=options_from_args(args),
                   margin=args.margin, budget=budget_from_args(args), dt=args.dt,
                   progress=True if args.progress else (False if args.quiet else None))
     write_outputs(args, res.to_json, lambda path: plot_comparison(res, path), lambda: format_comparison(res))

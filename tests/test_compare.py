@@ -69,7 +69,7 @@ def test_linear_gaussian_model_ekf_and_ukf_tie_and_the_cheapest_wins() -> None:
     # transform is exact, so both compute the same estimate (Julier & Uhlmann, Proc. IEEE 92(3),
     # 2004, section IV: the UT is exact for linear maps; common practice). The tie must show
     # in the RMSE, the linearization check must read zero, and the cheaper filter must be picked.
-    c = compare(CART, runs=10, steps=100, seed=2, particles=300, progress=False)
+    c = compare(CART, runs=10, steps=100, seed=2, options={"pf": {"particles": 300}}, progress=False)
     assert set(c.filters) == {"ekf", "ukf", "pf"}  # every kind that accepts the model joins
     ekf, ukf = c.filters["ekf"], c.filters["ukf"]
     for state in c.states:
@@ -114,7 +114,7 @@ def test_growth_model_particle_filter_beats_the_ekf() -> None:
     # filter's error is far below the EKF's, whose Gaussian linearization cannot follow the
     # bimodal posterior that z = x^2/20 leaves (their figures; also Arulampalam et al. 2002,
     # example 4.1). "Clearly": half the EKF's RMSE or less.
-    c = compare(GROWTH, ["ekf", "pf"], runs=20, steps=50, seed=1, particles=500, progress=False)
+    c = compare(GROWTH, ["ekf", "pf"], runs=20, steps=50, seed=1, options={"pf": {"particles": 500}}, progress=False)
     assert c.filters["pf"].stats.rmse["x"] < 0.5 * c.filters["ekf"].stats.rmse["x"]
     assert not c.filters["ekf"].consistent
     assert c.filters["pf"].cost["instructions_per_step"] > 100 * c.filters["ekf"].cost["instructions_per_step"]
@@ -174,6 +174,8 @@ def test_cli_contract_section_7(tmp_path, capsys) -> None:
     ["--clock-mhz", "80"],
     ["--budget-cycles", "100", "--clock-mhz", "80", "--rate-hz", "100"],
     ["--margin", "-1"],
+    ["--filters", "ekf,ukf", "--particles", "100"],
+    ["--alpha", "0"],
 ])
 def test_cli_bad_input_exits_2(argv, capsys) -> None:
     assert main(["compare", CART, "--steps", "5", "--runs", "2", *argv]) == 2
