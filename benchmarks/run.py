@@ -100,8 +100,8 @@ def model_list(quick: bool, work: Path) -> List[Tuple[str, str, Path]]:
     return out
 
 
-#: the generated C's commit check (--commit-check): "cholesky" is estgen's default
-COMMIT_CHECK = "cholesky"
+#: the generated C's commit check (--commit-check): "subtractive" is estgen's default
+COMMIT_CHECK = "subtractive"
 
 
 def timed_generate(path: Path, filt: str, precision: str) -> Tuple[Generated, float]:
@@ -312,8 +312,8 @@ def main(argv: Optional[Sequence[str]] = None) -> int:
     ap.add_argument("--work", default=str(HERE / "_build"), help="build directory (default benchmarks/_build)")
     ap.add_argument("--filters", default="ekf,ukf", help="comma-separated filters (default ekf,ukf)")
     ap.add_argument("--root", default=str(ROOT), help="benchmark the estgen package found in this directory")
-    ap.add_argument("--commit-check", choices=("cholesky", "diagonal"), default="cholesky",
-                    help="the generated C's commit check (estgen generate --commit-check; default cholesky)")
+    ap.add_argument("--commit-check", choices=("subtractive", "cholesky", "diagonal"), default="subtractive",
+                    help="the generated C's commit check (estgen generate --commit-check; default subtractive)")
     args = ap.parse_args(argv)
     global COMMIT_CHECK
     COMMIT_CHECK = args.commit_check

@@ -250,7 +250,7 @@ class CFilter:
 
 def build(model: Any, filter: str = "ekf", precision: str = "float", *, cflags: Optional[Sequence[str]] = None,
           ldflags: Optional[Sequence[str]] = None, gates: Optional[Dict[str, float]] = None,
-          commit_check: str = "cholesky", **options: Any) -> CFilter:
+          commit_check: str = "subtractive", **options: Any) -> CFilter:
     """Generate, compile (cached) and load the C filter for ``model``.
 
     ``gates``, ``commit_check`` and ``options`` (the kind's own: the UKF's alpha, beta, kappa;

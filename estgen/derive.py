@@ -15,7 +15,7 @@ from __future__ import annotations
 
 import re
 from dataclasses import dataclass, field
-from typing import Dict, Iterable, List, Sequence, Tuple
+from typing import Dict, Iterable, List, Optional, Sequence, Tuple
 
 import sympy as sp
 
@@ -200,6 +200,77 @@ class EkfPredictCode:
     stmts: List[Stmt]
     uses_par: bool
     uses_u: bool
+    #: the rounding certificate (see :func:`predict_certificate`): pairs (lhs, rhs) that must all
+    #: hold as lhs <= rhs for the new P to be committed without a factorization; None: always factorize
+    cert: Optional[List[Tuple[sp.Expr, sp.Expr]]] = None
+
+
+#: how much cancellation the predict certificate tolerates: row i of F may make sum_k |F_ik| sqrt(P_kk)
+#: at most sqrt(CERT_KAPPA) times sqrt(P'_ii); then the rounding error of P' is at most
+#: gamma_k * CERT_KAPPA * trace(P') in the 2-norm (see predict_certificate)
+CERT_KAPPA = 4
+
+
+def predict_certificate(Fm: sp.Matrix, Qm: Dict[Tuple[int, int], sp.Expr], n: int,
+                        Gm: Optional[sp.Matrix] = None, Qwm: Optional[sp.Matrix] = None
+                        ) -> Optional[List[Tuple[sp.Expr, sp.Expr]]]:
+    """Conditions under which the computed P' = fl(F P F' + Q) may be committed unfactorized.
+
+    Exactly, F P F' + Q is positive semidefinite when P is and Q is: the predict does not
+    subtract. Computed, each entry carries an error of at most gamma_k (|F| |P| |F|')_ij
+    (Higham, Accuracy and Stability of Numerical Algorithms, 2nd ed., 2002, sec. 3.5; k the
+    number of terms of the longest entry), and with |P_kl| <= sqrt(P_kk P_ll) (P positive
+    semidefinite) that is at most gamma_k g_i g_j, g_i = sum_k |F_ik| sqrt(P_kk). By Cauchy-Schwarz
+    g_i^2 <= r_i a_i with r_i = sum_k |F_ik| and a_i = sum_k |F_ik| P_kk (no square roots). When
+    r_i a_i <= CERT_KAPPA P'_ii for every i, the error matrix E has |E_ij| <= gamma_k CERT_KAPPA
+    sqrt(P'_ii P'_jj), so ||E||_2 <= gamma_k CERT_KAPPA trace(P') <= gamma_k CERT_KAPPA n
+    lambda_max(P'): the new P is positive definite up to a rounding of the same order as the
+    backward error of a Cholesky factorization in the same precision (Higham, theorem 10.5),
+    which is all a factorization could certify. The certificate fails only where F cancels
+    (|F| |P| |F|' much larger than F P F'); the commit then factorizes.
+
+    Q must be positive semidefinite for the exact argument: a constant Q is checked here (else
+    None: always factorize), a diagonal Q of expressions adds the conditions 0 <= Q_ii, and an
+    off-diagonal Q entry that is an expression makes it None. Process noise symbols (the term
+    G Qw G') are the same argument for the stacked [F G] and diag(P, Qw): their columns join
+    each row's sums, and Qw obeys the rules of Q.
+    """
+    import numpy as np
+
+    nw = 0 if Gm is None else Gm.shape[1]
+    if nw:
+        assert Qwm is not None
+        Qw = {(i, j): Qwm[i, j] for i in range(nw) for j in range(i, nw)}
+        if any(not e.is_Number for (i, j), e in Qw.items() if i != j and e != 0):
+            return None
+    else:
+        Qw = {}
+
+    if any(not e.is_Number for (i, j), e in Qm.items() if i != j and e != 0):
+        return None
+    for mat, dim in ((Qm, n), (Qw, nw)):
+        if dim and all(e.is_Number for e in mat.values()):
+            Qn = np.zeros((dim, dim))
+            for (i, j), e in mat.items():
+                Qn[i, j] = Qn[j, i] = float(e)
+            if float(np.linalg.eigvalsh(Qn)[0]) < 0.0:
+                return None
+    cert: List[Tuple[sp.Expr, sp.Expr]] = []
+    for q in [Qm[(i, i)] for i in range(n)] + [Qw[(l, l)] for l in range(nw)]:
+        if not q.is_Number and (sp.S.Zero, q) not in cert:
+            cert.append((sp.S.Zero, q))
+    # dt > 0 is checked before any of this runs: |dt| = dt
+    dt_pos = {sp.Symbol("dt"): sp.Symbol("dt", positive=True)}
+    for i in range(n):
+        row = [(sp.Symbol(f"P[{packed_index(k, k, n)}]"), Fm[i, k].xreplace(dt_pos)) for k in range(n) if Fm[i, k] != 0]
+        row += [(Qw[(l, l)], Gm[i, l].xreplace(dt_pos)) for l in range(nw) if Gm is not None and Gm[i, l] != 0]
+        if len(row) <= 1:
+            # g_i^2 = F_ik^2 P_kk <= P'_ii already (the rest is >= 0): nothing can cancel
+            continue
+        r = sum((sp.Abs(e) for _, e in row), sp.S.Zero)
+        a = sum((sp.Abs(e) * var for var, e in row), sp.S.Zero)
+        cert.append((r * a, CERT_KAPPA * sp.Symbol(f"Pn[{packed_index(i, i, n)}]")))
+    return cert
 
 
 @dataclass
@@ -209,10 +280,11 @@ class EkfUpdateCode:
     stmts: List[Stmt]
     uses_par: bool
     m: int
-    # sizes of scratch arrays the template declares
+    # sizes of scratch arrays the template declares (v_size 0: no V)
     w_size: int
     k_size: int
     dx_size: int = 0  # error-state correction accumulator (models with attitudes)
+    v_size: int = 0  # the Joseph form's V (block update only)
 
 
 @dataclass
@@ -303,10 +375,11 @@ def derive_ekf_predict(spec: ModelSpec) -> EkfPredictCode:
             e = sum((Aref[i, k] * Fm[j, k] for k in range(n) if Fm[j, k] != 0), sp.S.Zero) + Qm[(i, j)]
             e += sum((Bref[i, k] * Gm[j, k] for k in range(nw) if Gm[j, k] != 0), sp.S.Zero)
             stmts.append(Stmt("assign", f"Pn[{packed_index(i, j, n)}]", e))
+    cert = predict_certificate(Fm, Qm, n, Gm, Qwm)
     stmts += _normalize_attitudes(spec)
     stmts += angle_wraps(spec, "xn")
     uses_u = any(str(s).startswith("u[") for st in stmts for s in st.expr.free_symbols)
-    return EkfPredictCode(stmts, _uses_params(stmts), uses_u)
+    return EkfPredictCode(stmts, _uses_params(stmts), uses_u, cert)
 
 
 def _x(arr: str, n: int) -> List[sp.Symbol]:
@@ -441,9 +514,12 @@ def derive_ekf_update(spec: SensorSpec, mspec: ModelSpec) -> EkfUpdateCode:
     r_i = y_i - H_i (xs - x), because h and H stay linearized at the prior. A full R uses the
     block form with an unrolled Cholesky factorization of S.
 
-    Either way P is updated in the Joseph form, written for packed storage as
-    P + K V' - W K' with W = P H', V = K S - W, which equals (I-KH) P (I-KH)' + K R K' for any
-    gain K, so rounding in K does not cost symmetry or definiteness.
+    A scalar component updates P in the standard form P - K W' (W = P h, K = W / s), one product
+    per packed entry. The Joseph form's advantage, first-order insensitivity to an error in K,
+    buys nothing here beyond a rounding-level term: K is W / s to one rounding, and packed storage
+    keeps P exactly symmetric. The block update, whose K comes from triangular solves, keeps the
+    Joseph form, written for packed storage as P + K V' - W K' with W = P H', V = K S - W (equal
+    to (I-KH) P (I-KH)' + K R K' for any gain K). After either, the commit factorizes the new P.
     """
     n, m = mspec.n, spec.m
     stmts, hv, Hm, Rm = _h_block(spec, mspec)
@@ -481,19 +557,17 @@ def derive_ekf_update(spec: SensorSpec, mspec: ModelSpec) -> EkfUpdateCode:
                 stmts.append(Stmt("assign", f"K[{k}]", W[k] * isv))
             K = [sp.Symbol(f"K[{k}]") for k in range(n)]
             for k in range(n):
-                stmts.append(Stmt("assign", f"V[{k}]", s * K[k] - W[k]))
-            V = [sp.Symbol(f"V[{k}]") for k in range(n)]
-            for k in range(n):
                 if att:
                     stmts.append(Stmt("assign", f"dx[{k}]", K[k] * r if c == 0 else D[k] + K[k] * r))
                 else:
                     stmts.append(Stmt("assign", f"xs[{k}]", XS[k] + K[k] * r))
+            # standard form P - K W' (one product per packed entry): see the docstring
             for i in range(n):
                 for j in range(i, n):
-                    stmts.append(Stmt("assign", f"Ps[{packed_index(i, j, n)}]", Ps[i, j] + K[i] * V[j] - W[i] * K[j]))
+                    stmts.append(Stmt("assign", f"Ps[{packed_index(i, j, n)}]", Ps[i, j] - K[i] * W[j]))
         if att:
             stmts += _inject(mspec)
-        return EkfUpdateCode(spec, True, stmts, _uses_params(stmts), m, n, n, n if att else 0)
+        return EkfUpdateCode(spec, True, stmts, _uses_params(stmts), m, n, n, n if att else 0, v_size=0)
 
     # block update with a full R
     Wm = sp.Matrix(n, m, lambda k, c: sp.Symbol(f"W[{k * m + c}]"))
@@ -555,7 +629,7 @@ def derive_ekf_update(spec: SensorSpec, mspec: ModelSpec) -> EkfUpdateCode:
             stmts.append(Stmt("assign", f"Ps[{packed_index(i, j, n)}]", e))
     if att:
         stmts += _inject(mspec)
-    return EkfUpdateCode(spec, False, stmts, _uses_params(stmts), m, n * m, n * m, n if att else 0)
+    return EkfUpdateCode(spec, False, stmts, _uses_params(stmts), m, n * m, n * m, n if att else 0, v_size=n * m)
 
 
 def derive_ekf(spec: ModelSpec) -> EkfCode:

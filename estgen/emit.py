@@ -26,7 +26,7 @@ from sympy.printing.c import C99CodePrinter
 
 from ._version import __version__
 from .chi2 import chi2_ppf
-from .derive import (EKF_BLOCK_UPDATE_SECTIONS, EKF_PREDICT_SECTIONS, Stmt, angle_wraps, derive_ekf,
+from .derive import (CERT_KAPPA, EKF_BLOCK_UPDATE_SECTIONS, EKF_PREDICT_SECTIONS, Stmt, angle_wraps, derive_ekf,
                      ekf_sequential_sections, packed_index, packed_size, with_sections)
 from .errors import ModelError
 from .model import ModelSpec, unit_problem
@@ -330,7 +330,7 @@ def model_sha256(path: Optional[str]) -> str:
         return hashlib.sha256(fh.read()).hexdigest()
 
 
-def options_line(filt: str, precision: str, commit_check: str = "cholesky",
+def options_line(filt: str, precision: str, commit_check: str = "subtractive",
                  gates: Optional[Dict[str, float]] = None, **options: Any) -> str:
     """The generate options that made a file, as command-line text in a fixed order (recorded
     in the header; ``generate --check`` compares it to tell option drift from content drift)."""
@@ -367,7 +367,9 @@ def _component_text(expr: sp.Expr, width: int = 60) -> str:
 def _common_context(spec: ModelSpec, setup: "FilterSetup") -> Dict[str, Any]:
     """What every filter's templates share. The options in ``setup`` are validated already."""
     filt, precision, commit_check = setup.name, setup.precision, setup.common.commit_check
-    command = options_line(filt, precision, commit_check, setup.common.gate_map, **setup.options.changed())
+    optimize = setup.common.optimize
+    command = options_line(filt, precision, commit_check, setup.common.gate_map,
+                           **{"optimize": optimize, **setup.options.changed()})
     for s in spec.sensors:
         if s.name.endswith("_nis"):
             raise ModelError(f"sensor name {s.name!r} must not end in '_nis' (it would clash with a generated function)",
@@ -401,16 +403,25 @@ def _common_context(spec: ModelSpec, setup: "FilterSetup") -> Dict[str, Any]:
     # DEGENERATE is the particle filter's own refusal; the Kalman filters never return it
     statuses = [{"name": st.name, "value": int(st), "advice": ADVICE[st]} for st in Status
                 if st is not Status.DEGENERATE or filt == "pf"]
-    commit_ops = OpCount()
     full_ops = OpCount()
+    diag_ops = OpCount()
     commit_pd = em.lines(pivot_check(ne, "P"), full_ops)
-    commit_diag: List[str] = []
-    if commit_check == "diagonal":
-        diag = [Stmt("check", f"P[{packed_index(i, i, ne)}]", sp.Symbol(f"P[{packed_index(i, i, ne)}]"))
-                for i in range(ne)]
-        commit_diag = em.lines(diag, commit_ops)
-    else:
-        commit_ops = full_ops
+    # a diagonal entry in (0, max/16): finite and positive, and small enough that the predict
+    # certificate's bound |P'_ij| <= CERT_KAPPA sqrt(P'_ii P'_jj) (1 + rounding) keeps every entry finite
+    big = em.lit(float(np.finfo(np.float32 if precision == "float" else np.float64).max) / 16.0)
+    commit_diag = []
+    for i in range(ne):
+        k = packed_index(i, i, ne)
+        commit_diag.append(f"if (!(P[{k}] < {big})) {{ return {em.upper}_NON_FINITE; }}")
+        commit_diag.append(f"if (!(P[{k}] > {em.lit(0.0)})) {{ return {em.upper}_NOT_POSITIVE_DEFINITE; }}")
+    diag_ops.compare += 2 * ne
+    # which static check each kind of call runs before it commits (the filter's emitter may
+    # change "predict" when its predict subtracts)
+    # (generate_ekf turns the predict's into "certified" when it has a rounding certificate)
+    subtracting = {"cholesky": "commit_pd", "diagonal": "commit_diag", "subtractive": "commit_pd"}[commit_check]
+    adding = "commit_diag" if commit_check == "diagonal" else "commit_pd"
+    commit_fns = {"predict": adding, "update": subtracting}
+    commit_ops = {"commit_pd": full_ops.as_dict(), "commit_diag": diag_ops.as_dict()}
     return {
         "version": __version__,
         "model_file": safe_filename(spec.source),
@@ -452,8 +463,10 @@ def _common_context(spec: ModelSpec, setup: "FilterSetup") -> Dict[str, Any]:
         "commit_pd": commit_pd,
         "commit_diag": commit_diag,
         "commit_check": commit_check,
-        "commit_fn": "commit_diag" if commit_check == "diagonal" else "commit_pd",
-        "commit_ops": commit_ops.as_dict(),
+        "optimize": optimize,
+        "cert_kappa": CERT_KAPPA,
+        "commit_fns": commit_fns,
+        "commit_ops": commit_ops,
     }
 
 
@@ -488,18 +501,34 @@ def generate_ekf(spec: ModelSpec, setup: "FilterSetup") -> Generated:
     ops: Dict[str, Dict[str, int]] = {}
     pc = OpCount()
     ctx["predict"] = {"lines": em.lines(with_sections(code.predict.stmts, EKF_PREDICT_SECTIONS), pc), "uses_par": code.predict.uses_par,
-                      "uses_u": code.predict.uses_u}
-    pc += OpCount(**ctx["commit_ops"])
+                      "uses_u": code.predict.uses_u, "cert": []}
+    if setup.common.commit_check == "subtractive":
+        # the predict's rounding certificate (derive.predict_certificate), else a factorization
+        if code.predict.cert is None:
+            ctx["commit_fns"]["predict"] = "commit_pd"
+        else:
+            ctx["commit_fns"]["predict"] = "certified"
+            cert_ops = OpCount()
+            ctx["predict"]["cert"] = [f"({em.expr(lhs)} <= {em.expr(rhs)})" for lhs, rhs in code.predict.cert]
+            for lhs, rhs in code.predict.cert:
+                cert_ops += count_ops(lhs)
+                cert_ops += count_ops(rhs)
+                cert_ops.compare += 1
+            pc += cert_ops
+            ctx["predict"]["uses_par"] = ctx["predict"]["uses_par"] or any(
+                str(sym).startswith("par->") for pair in code.predict.cert for e in pair for sym in e.free_symbols)
+    pc += OpCount(**ctx["commit_ops"]["commit_diag" if ctx["commit_fns"]["predict"] == "certified"
+                                      else ctx["commit_fns"]["predict"]])
     ops["predict"] = pc.as_dict()
     ups = []
     for uc, sctx in zip(code.updates, ctx["sensors"]):
         oc = OpCount()
         rules = ekf_sequential_sections(uc.sensor) if uc.sequential else EKF_BLOCK_UPDATE_SECTIONS
         body = em.lines(with_sections(uc.stmts + angle_wraps(spec, "xs"), rules), oc)
-        oc += OpCount(**ctx["commit_ops"])
+        oc += OpCount(**ctx["commit_ops"][ctx["commit_fns"]["update"]])
         ops[f"update_{uc.sensor.name}"] = oc.as_dict()
         ups.append({**sctx, "lines": body, "uses_par": uc.uses_par, "w_size": uc.w_size,
-                    "k_size": uc.k_size, "sequential": uc.sequential, "dx_size": uc.dx_size})
+                    "k_size": uc.k_size, "v_size": uc.v_size, "sequential": uc.sequential, "dx_size": uc.dx_size})
     ctx["updates"] = ups
     ctx["ops"] = ops
     return _render(ctx)

@@ -53,12 +53,12 @@ def generate_ukf(spec: ModelSpec, setup: "FilterSetup", wts: UkfWeights) -> Gene
     ops: Dict[str, Dict[str, int]] = {}
     pc = OpCount()
     p_lines = em.lines(with_sections(code.predict.stmts, UKF_PREDICT_SECTIONS), pc)
-    # the commit check is one static function, run by every call: its cost counts in each
-    cc = OpCount()
-    cc += OpCount(**ctx["commit_ops"])
-    # so is the factorization of P every call starts with
-    ctx["factor"] = em.lines(factor_function(ne), cc)
-    pc += cc
+    # the factorization of P every call starts with, and the commit check, are static functions
+    # run by every call: their cost counts in each
+    fc = OpCount()
+    ctx["factor"] = em.lines(factor_function(ne), fc)
+    pc += fc
+    pc += OpCount(**ctx["commit_ops"][ctx["commit_fns"]["predict"]])
     ops["predict"] = pc.as_dict()
     p_decls = sum(1 for st in code.predict.stmts if st.kind == "decl")
     # named storage of predict: xn, Pn, the wrapped-angle scratch and every const local
@@ -70,7 +70,8 @@ def generate_ukf(spec: ModelSpec, setup: "FilterSetup", wts: UkfWeights) -> Gene
     for uc, sctx in zip(code.updates, ctx["sensors"]):
         oc = OpCount()
         body = em.lines(with_sections(uc.stmts, UKF_UPDATE_SECTIONS), oc)
-        oc += cc
+        oc += fc
+        oc += OpCount(**ctx["commit_ops"][ctx["commit_fns"]["update"]])
         ops[f"update_{uc.sensor.name}"] = oc.as_dict()
         decls = sum(1 for st in uc.stmts if st.kind == "decl")
         u_bytes = max(u_bytes, _stack_bytes(decls, n + 2 * np_ + uc.m + 1 + uc.angle_scratch, size_real))

@@ -256,7 +256,7 @@ def _missing(rep: Dict[str, Any], err: cross.ToolMissing, what: str) -> None:
 def make_report(model: Any, filter: str = "ekf", precision: str = "float", target: str = "cortex-m4f",
                 steps: int = DEFAULT_STEPS, seed: int = DEFAULT_SEED, work_dir: Optional[str] = None,
                 scenario: Any = None, host: bool = True, progress: bool = False,
-                gates: Optional[Dict[str, float]] = None, commit_check: str = "cholesky",
+                gates: Optional[Dict[str, float]] = None, commit_check: str = "subtractive",
                 **options: Any) -> Dict[str, Any]:
     """Measure one generated filter of ``model`` (a model file path or a ModelSpec). Returns a
     JSON-ready dict (see the module docstring); figures needing a missing tool are absent and the

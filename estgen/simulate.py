@@ -485,7 +485,7 @@ def monte_carlo(
     workers: Optional[int] = None,
     progress: Optional[bool] = None,
     gates: Optional[Mapping[str, float]] = None,
-    commit_check: str = "cholesky",
+    commit_check: str = "subtractive",
     options: Optional[Mapping[str, Any]] = None,
     burn_in: Optional[int] = None,
     **kind_options: Any,

@@ -235,7 +235,7 @@ class _Truth:
 def soak(model: Any, filter: str = "ekf", precision: str = "float", steps: int = 10**6, seed: int = 0,
          dt: Optional[float] = None, chunk: int = 10000, profile: str = "model", period: float = 1000.0,
          gates: Optional[Dict[str, float]] = None, progress: Optional[Callable[[int, int], None]] = None,
-         generated: Optional["Generated"] = None, commit_check: str = "cholesky", **options: Any) -> SoakResult:
+         generated: Optional["Generated"] = None, commit_check: str = "subtractive", **options: Any) -> SoakResult:
     """Run the compiled filter ``steps`` steps on the model's simulated truth and check x finite and
     P positive definite after every step. ``gates``, ``commit_check`` and ``options`` (the kind's
     own, e.g. the UKF's alpha, beta, kappa) are those of :func:`estgen.filters.generate`;

@@ -232,7 +232,7 @@ def _state_sigma(spec: ModelSpec, sig: np.ndarray) -> np.ndarray:
 
 
 def verify(model: Any, filter: str = "ekf", precision: str = "float", steps: Optional[int] = None, seed: int = 0,
-           dt: Optional[float] = None, gates: Optional[Dict[str, float]] = None, commit_check: str = "cholesky",
+           dt: Optional[float] = None, gates: Optional[Dict[str, float]] = None, commit_check: str = "subtractive",
            progress: bool = False, **options: Any) -> VerifyResult:
     """Run C and reference side by side on one simulated scenario and compare every step.
     ``gates`` sets chi-square gate probabilities per sensor for both filters; ``commit_check``

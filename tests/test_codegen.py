@@ -242,8 +242,48 @@ def test_diagonal_commit_check_variant(filt, tmp_path):
     if filt == "ekf":
         # |corr(pos, vel)| > 1: indefinite, yet every diagonal entry is positive
         P_bad = np.array([[1.0, 2.0, 0.0], [2.0, 1.0, 0.0], [0.0, 0.0, 1.0]])
-        for check, expect in (("diagonal", 0), ("cholesky", int(estgen.Status.NOT_POSITIVE_DEFINITE))):
+        NOT_PD = int(estgen.Status.NOT_POSITIVE_DEFINITE)
+        # "diagonal" commits it; "cholesky" and "subtractive" refuse (linear_cart's Q has
+        # off-diagonal expressions: no rounding certificate, so its predict factorizes)
+        for check, expect_predict, expect_update in (("diagonal", 0, None), ("cholesky", NOT_PD, NOT_PD),
+                                                     ("subtractive", NOT_PD, NOT_PD)):
             c = estgen.build(spec, filter="ekf", precision="double", commit_check=check)
             packed = [P_bad[i, j] for i in range(3) for j in range(i, 3)]
             c._ffi.memmove(c._s.P, c._ffi.new("double[]", packed), 8 * len(packed))  # bypass set_state
-            assert c.predict([0.0], 1e-6) == expect, check
+            assert c.predict([0.0], 1e-6) == expect_predict, check
+            if expect_update is not None:
+                assert c.update(spec.sensors[0].name, [0.0] * spec.sensors[0].m) == expect_update, check
+        # the default factorizes in every update; its predict factorizes only without a certificate
+        src_default = generate(spec, filter="ekf", precision="float").source
+        assert src_default.count("_commit_pd(Ps)") == len(spec.sensors)
+        assert "_commit_pd(Pn)" in src_default and "certified" not in src_default
+
+
+def test_predict_certificate_detects_cancellation():
+    # Source: the arithmetic of derive.predict_certificate (Cauchy-Schwarz bound on
+    # sum_k |F_ik| sqrt(P_kk), Higham 2002 sec. 3.5); F = [[1, 1], [0, 1]] is the constant-velocity
+    # transition with dt = 1 (common practice).
+    import sympy as sp
+
+    from estgen.derive import packed_index, predict_certificate
+
+    F = sp.Matrix([[1, 1], [0, 1]])
+    Q = {(0, 0): sp.S.Zero, (0, 1): sp.S.Zero, (1, 1): sp.S.Zero}
+    cert = predict_certificate(F, Q, 2)
+    assert cert is not None and len(cert) == 1  # row 1 has one entry: nothing to cancel
+
+    def holds(P: np.ndarray) -> bool:
+        Pn = F_num @ P @ F_num.T
+        subs = {sp.Symbol(f"P[{packed_index(i, j, 2)}]"): P[i, j] for i in range(2) for j in range(i, 2)}
+        subs.update({sp.Symbol(f"Pn[{packed_index(i, j, 2)}]"): Pn[i, j] for i in range(2) for j in range(i, 2)})
+        return all(bool(lhs.xreplace(subs) <= rhs.xreplace(subs)) for lhs, rhs in cert)
+
+    F_num = np.array([[1.0, 1.0], [0.0, 1.0]])
+    assert holds(np.eye(2))  # P'_00 = 2, bound (1 + 1)(1 + 1) = 4 <= 8
+    # position and velocity almost exactly anti-correlated: P'_00 = 0.002, the row cancels
+    assert not holds(np.array([[1.0, -0.999], [-0.999, 1.0]]))
+    # a Q of expressions off the diagonal cannot be checked cheaply: always factorize
+    q = sp.Symbol("par->q")
+    assert predict_certificate(F, {(0, 0): q, (0, 1): q / 2, (1, 1): q}, 2) is None
+    # an indefinite constant Q neither
+    assert predict_certificate(F, {(0, 0): sp.Integer(1), (0, 1): sp.Integer(2), (1, 1): sp.Integer(1)}, 2) is None

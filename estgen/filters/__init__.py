@@ -16,7 +16,7 @@ from ..emit import Generated
 from ..errors import ModelError, UsageError
 from ..model import ModelSpec, as_spec, with_gates
 from ..reference import ModelFunctions
-from .base import CommonOptions, FilterKind, FilterOptions
+from .base import COMMIT_CHECKS, DEFAULT_COMMIT_CHECK, DEFAULT_OPTIMIZE, OPTIMIZE, CommonOptions, FilterKind, FilterOptions
 from .ekf import EKF
 from .pf import PF
 from .ukf import UKF
@@ -63,10 +63,11 @@ class FilterSetup:
 
     @classmethod
     def of(cls, filter: str = "ekf", precision: str = "float", gates: Optional[Mapping[str, float]] = None,
-           commit_check: str = "cholesky", **options: Any) -> "FilterSetup":
+           commit_check: str = DEFAULT_COMMIT_CHECK, optimize: str = DEFAULT_OPTIMIZE,
+           **options: Any) -> "FilterSetup":
         """From keyword values as the Python API takes them (None means "the default")."""
         kind = get(filter)
-        common = CommonOptions(precision, commit_check, tuple((gates or {}).items()))
+        common = CommonOptions(precision, commit_check, tuple((gates or {}).items()), optimize)
         return cls(kind, common, kind.options(**options))
 
     @classmethod
@@ -113,16 +114,17 @@ class FilterSetup:
         """The keyword form (``filter=``, ``precision=``, ``gates=``, ``commit_check=`` and the
         kind's options) that the Python API functions take."""
         return {"filter": self.kind.name, "precision": self.common.precision, "gates": self.common.gate_map,
-                "commit_check": self.common.commit_check, **self.options.as_dict()}
+                "commit_check": self.common.commit_check, "optimize": self.common.optimize, **self.options.as_dict()}
 
 
 def generate(spec: Any, filter: str = "ekf", precision: str = "float", gates: Optional[Mapping[str, float]] = None,
-             commit_check: str = "cholesky", **options: Any) -> Generated:
+             commit_check: str = DEFAULT_COMMIT_CHECK, optimize: str = DEFAULT_OPTIMIZE, **options: Any) -> Generated:
     """Generate C for ``spec``: ``filter`` names a kind of :data:`KINDS`, ``options`` are that
     kind's (the UKF's alpha, beta, kappa). ``gates`` sets chi-square gate probabilities per
-    sensor, overriding the model file's; ``commit_check`` is "cholesky" (default) or
-    "diagonal": what a new P must pass before commit."""
-    return FilterSetup.of(filter, precision, gates, commit_check, **options).generate(spec)
+    sensor, overriding the model file's; ``commit_check`` is one of :data:`COMMIT_CHECKS`
+    (default "subtractive"): what a new P must pass before commit; ``optimize`` is "speed"
+    (default) or "size" (contract section 9)."""
+    return FilterSetup.of(filter, precision, gates, commit_check, optimize, **options).generate(spec)
 
 
 def reference(model: Any, filter: str = "ekf", *, params: Optional[Mapping[str, float]] = None,

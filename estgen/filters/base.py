@@ -25,13 +25,23 @@ if TYPE_CHECKING:  # annotations only: the kinds import the emitters, not this m
     from ..model import ModelSpec
     from ..reference import ModelFunctions
 
-__all__ = ["Flag", "FilterOptions", "FilterKind", "CommonOptions", "PRECISIONS", "COMMIT_CHECKS"]
+__all__ = ["Flag", "FilterOptions", "FilterKind", "CommonOptions", "PRECISIONS", "COMMIT_CHECKS", "DEFAULT_COMMIT_CHECK",
+           "OPTIMIZE", "DEFAULT_OPTIMIZE"]
 
 #: the C floating types a filter is generated for
 PRECISIONS: Tuple[str, ...] = ("float", "double")
-#: what predict and update verify before they commit a new P (see the README): "cholesky" factorizes
-#: it (every pivot finite and > 0); "diagonal" checks the diagonal only (cheaper, less safe)
-COMMIT_CHECKS: Tuple[str, ...] = ("cholesky", "diagonal")
+#: what predict and update verify before they commit a new P (README, "Commit check";
+#: docs/performance.md, "The commit rule"): "subtractive" (default) factorizes it after every call
+#: that subtracts from it (every update, the UKF's predict) and after an EKF predict only when its
+#: rounding certificate fails (derive.predict_certificate); "cholesky" factorizes after every
+#: call; "diagonal" never (cheaper, less safe)
+COMMIT_CHECKS: Tuple[str, ...] = ("subtractive", "cholesky", "diagonal")
+DEFAULT_COMMIT_CHECK = "subtractive"
+#: the code form (contract section 9, docs/performance.md "Speed and size"): "speed" keeps
+#: straight-line code where it pays, "size" uses the compact forms (loops over constant tables,
+#: shared static functions) wherever they exist
+OPTIMIZE: Tuple[str, ...] = ("speed", "size")
+DEFAULT_OPTIMIZE = "speed"
 
 
 @dataclass(frozen=True)
@@ -122,14 +132,17 @@ class CommonOptions:
     committed, and chi-square gate probabilities per sensor (overriding the model file's)."""
 
     precision: str = "float"
-    commit_check: str = "cholesky"
+    commit_check: str = DEFAULT_COMMIT_CHECK
     gates: Tuple[Tuple[str, float], ...] = ()
+    optimize: str = DEFAULT_OPTIMIZE
 
     def __post_init__(self) -> None:
         if self.precision not in PRECISIONS:
             raise UsageError(f"unknown precision {self.precision!r}; use 'float' or 'double'")
         if self.commit_check not in COMMIT_CHECKS:
             raise UsageError(f"unknown commit check {self.commit_check!r}; use one of {', '.join(COMMIT_CHECKS)}")
+        if self.optimize not in OPTIMIZE:
+            raise UsageError(f"unknown --optimize {self.optimize!r}; use one of {', '.join(OPTIMIZE)}")
 
     @property
     def gate_map(self) -> Dict[str, float]:
@@ -139,9 +152,15 @@ class CommonOptions:
     def add_arguments(parser: argparse.ArgumentParser, precision_default: str) -> None:
         parser.add_argument("--precision", choices=PRECISIONS, default=precision_default,
                             help=f"C floating type (default {precision_default})")
-        parser.add_argument("--commit-check", choices=COMMIT_CHECKS, default="cholesky",
-                            help="what a new P must pass before predict/update commit it: a Cholesky "
-                                 "factorization (default) or a positive diagonal only (cheaper, less safe)")
+        parser.add_argument("--commit-check", choices=COMMIT_CHECKS, default=DEFAULT_COMMIT_CHECK,
+                            help="what a new P must pass before a call commits it: a Cholesky factorization "
+                                 "after every update, and after an EKF predict unless its rounding certificate "
+                                 "holds (subtractive, default); after every call (cholesky); or a positive "
+                                 "diagonal only (diagonal: cheaper, less safe)")
+        parser.add_argument("--optimize", choices=OPTIMIZE, default=DEFAULT_OPTIMIZE,
+                            help="trade instructions for flash like -O2/-Os: speed keeps straight-line code where "
+                                 "it pays (default), size uses loops over constant tables and shared functions "
+                                 "wherever they exist")
         parser.add_argument("--gate", action="append", default=[], metavar="SENSOR=P",
                             help="chi-square innovation gate for SENSOR with probability P, e.g. range1=0.997 "
                                  "(repeatable; overrides the model file)")
@@ -158,4 +177,4 @@ class CommonOptions:
             if not sep or not name or not 0.0 < prob < 1.0:
                 raise UsageError(f"--gate {item!r}: write SENSOR=P with 0 < P < 1, e.g. --gate range1=0.997")
             gates.append((name, prob))
-        return cls(args.precision, args.commit_check, tuple(gates))
+        return cls(args.precision, args.commit_check, tuple(gates), getattr(args, "optimize", DEFAULT_OPTIMIZE))

@@ -25,7 +25,7 @@ static size_t cell_ekf_pk(size_t i, size_t j)
 
 /* OK when the packed covariance P is positive definite (every pivot of its Cholesky factorization
    finite and > 0; a positive diagonal is not enough), else the refusal code. Unrolled; one copy
-   serves set_state and every commit. */
+   serves set_state and every commit that factorizes. A non-finite entry always reaches a pivot. */
 static int cell_ekf_commit_pd(const double *P)
 {
     const double Lcd0 = P[0];
@@ -44,6 +44,19 @@ static int cell_ekf_commit_pd(const double *P)
     const double Lcd2 = P[5] - (Lc2_0*Lc2_0) - (Lc2_1*Lc2_1);
     if (!isfinite(Lcd2)) { return CELL_EKF_NON_FINITE; }
     if (!(Lcd2 > 0.0)) { return CELL_EKF_NOT_POSITIVE_DEFINITE; }
+    return CELL_EKF_OK;
+}
+
+/* OK when every diagonal entry of P is > 0 and below a sixteenth of the largest double.
+   Used by predict when its rounding certificate holds; see the header. */
+static int cell_ekf_commit_diag(const double *P)
+{
+    if (!(P[0] < 1.1235582092889473e+307)) { return CELL_EKF_NON_FINITE; }
+    if (!(P[0] > 0.0)) { return CELL_EKF_NOT_POSITIVE_DEFINITE; }
+    if (!(P[3] < 1.1235582092889473e+307)) { return CELL_EKF_NON_FINITE; }
+    if (!(P[3] > 0.0)) { return CELL_EKF_NOT_POSITIVE_DEFINITE; }
+    if (!(P[5] < 1.1235582092889473e+307)) { return CELL_EKF_NON_FINITE; }
+    if (!(P[5] > 0.0)) { return CELL_EKF_NOT_POSITIVE_DEFINITE; }
     return CELL_EKF_OK;
 }
 
@@ -127,11 +140,16 @@ int cell_ekf_predict(cell_ekf_t *s, const double *u, double dt)
     Pn[3] = Q1_1 + A1_1*t0;
     Pn[4] = 0.0;
     Pn[5] = 1.0e-06;
-    if (!cell_ekf_finite(xn, 3u) || !cell_ekf_finite(Pn, 6u)) {
+    if (!cell_ekf_finite(xn, 3u)) {
         return CELL_EKF_NON_FINITE;
     }
     {
-        const int st = cell_ekf_commit_pd(Pn);  /* the commit check on the new P */
+        /* rounding certificate: no row of F cancels (sum|F_ik| * sum|F_ik| P_kk <= 4 P'_ii), so
+           the new P is positive definite up to rounding, and finite when its diagonal is; else it
+           is factorized (see the header) */
+        const int certified = (0.0 <= Q0_0) &
+            (0.0 <= Q1_1);
+        const int st = certified ? cell_ekf_commit_diag(Pn) : cell_ekf_commit_pd(Pn);
         if (st != CELL_EKF_OK) {
             return st;
         }
@@ -142,7 +160,7 @@ int cell_ekf_predict(cell_ekf_t *s, const double *u, double dt)
     return CELL_EKF_OK;
 }
 
-/* Sensor voltage (1 component): sequential scalar updates (diagonal R), Joseph form. */
+/* Sensor voltage (1 component): sequential scalar updates (diagonal R), standard form P - K W'. */
 int cell_ekf_update_voltage_nis(cell_ekf_t *s, const double *z, double *nis_out)
 {
     double xs[3];
@@ -150,7 +168,6 @@ int cell_ekf_update_voltage_nis(cell_ekf_t *s, const double *z, double *nis_out)
     double y[1];
     double W[3];
     double K[3];
-    double V[3];
     double nis = 0.0;
     const double *x = s->x;
     if (z == NULL || !cell_ekf_finite(z, 1u)) {
@@ -180,19 +197,16 @@ int cell_ekf_update_voltage_nis(cell_ekf_t *s, const double *z, double *nis_out)
     K[0] = W[0]*is0;
     K[1] = W[1]*is0;
     K[2] = W[2]*is0;
-    V[0] = -W[0] + K[0]*s0;
-    V[1] = -W[1] + K[1]*s0;
-    V[2] = -W[2] + K[2]*s0;
     xs[cell_ekf_ix_soc] = xs[cell_ekf_ix_soc] + K[0]*r0_t;
     xs[cell_ekf_ix_v_rc] = xs[cell_ekf_ix_v_rc] + K[1]*r0_t;
     xs[cell_ekf_ix_v_ohm] = xs[cell_ekf_ix_v_ohm] + K[2]*r0_t;
-    Ps[0] = Ps[0] + K[0]*V[0] - K[0]*W[0];
-    Ps[1] = Ps[1] + K[0]*V[1] - K[1]*W[0];
-    Ps[2] = Ps[2] + K[0]*V[2] - K[2]*W[0];
-    Ps[3] = Ps[3] + K[1]*V[1] - K[1]*W[1];
-    Ps[4] = Ps[4] + K[1]*V[2] - K[2]*W[1];
-    Ps[5] = Ps[5] + K[2]*V[2] - K[2]*W[2];
-    if (!cell_ekf_finite(xs, 3u) || !cell_ekf_finite(Ps, 6u)) {
+    Ps[0] = Ps[0] - K[0]*W[0];
+    Ps[1] = Ps[1] - K[0]*W[1];
+    Ps[2] = Ps[2] - K[0]*W[2];
+    Ps[3] = Ps[3] - K[1]*W[1];
+    Ps[4] = Ps[4] - K[1]*W[2];
+    Ps[5] = Ps[5] - K[2]*W[2];
+    if (!cell_ekf_finite(xs, 3u)) {
         return CELL_EKF_NON_FINITE;
     }
     {

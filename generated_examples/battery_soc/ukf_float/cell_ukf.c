@@ -31,7 +31,7 @@ static size_t cell_ukf_pk(size_t i, size_t j)
 
 /* OK when the packed covariance P is positive definite (every pivot of its Cholesky factorization
    finite and > 0; a positive diagonal is not enough), else the refusal code. Unrolled; one copy
-   serves set_state and every commit. */
+   serves set_state and every commit that factorizes. A non-finite entry always reaches a pivot. */
 static int cell_ukf_commit_pd(const float *P)
 {
     const float Lcd0 = P[0];
@@ -174,15 +174,16 @@ int cell_ukf_predict(cell_ukf_t *s, const float *u, float dt)
     Pn[3] = Q1_1 + AP1_1*ft0;
     Pn[4] = 0.0F;
     Pn[5] = 1.0e-06F;
-    if (!cell_ukf_finite(xn, 3u) || !cell_ukf_finite(Pn, 6u)) {
+    if (!cell_ukf_finite(xn, 3u)) {
         return CELL_UKF_NON_FINITE;
     }
     {
-        const int st = cell_ukf_commit_pd(Pn);
+        const int st = cell_ukf_commit_pd(Pn);  /* the commit check on the new P */
         if (st != CELL_UKF_OK) {
             return st;
         }
     }
+
     memcpy(s->x, xn, sizeof xn);
     memcpy(s->P, Pn, sizeof Pn);
     return CELL_UKF_OK;
@@ -290,15 +291,16 @@ int cell_ukf_update_voltage_nis(cell_ukf_t *s, const float *z, float *nis_out)
     if (nis_out != NULL) {
         *nis_out = nis;
     }
-    if (!cell_ukf_finite(xs, 3u) || !cell_ukf_finite(Ps, 6u)) {
+    if (!cell_ukf_finite(xs, 3u)) {
         return CELL_UKF_NON_FINITE;
     }
     {
-        const int st = cell_ukf_commit_pd(Ps);
+        const int st = cell_ukf_commit_pd(Ps);  /* the commit check on the new P */
         if (st != CELL_UKF_OK) {
             return st;
         }
     }
+
     memcpy(s->x, xs, sizeof xs);
     memcpy(s->P, Ps, sizeof Ps);
     return CELL_UKF_OK;

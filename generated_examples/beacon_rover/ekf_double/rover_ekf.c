@@ -33,7 +33,7 @@ static size_t rover_ekf_pk(size_t i, size_t j)
 
 /* OK when the packed covariance P is positive definite (every pivot of its Cholesky factorization
    finite and > 0; a positive diagonal is not enough), else the refusal code. Unrolled; one copy
-   serves set_state and every commit. */
+   serves set_state and every commit that factorizes. A non-finite entry always reaches a pivot. */
 static int rover_ekf_commit_pd(const double *P)
 {
     const double Lcd0 = P[0];
@@ -60,6 +60,21 @@ static int rover_ekf_commit_pd(const double *P)
     const double Lcd3 = P[9] - (Lc3_0*Lc3_0) - (Lc3_1*Lc3_1) - (Lc3_2*Lc3_2);
     if (!isfinite(Lcd3)) { return ROVER_EKF_NON_FINITE; }
     if (!(Lcd3 > 0.0)) { return ROVER_EKF_NOT_POSITIVE_DEFINITE; }
+    return ROVER_EKF_OK;
+}
+
+/* OK when every diagonal entry of P is > 0 and below a sixteenth of the largest double.
+   Used by predict when its rounding certificate holds; see the header. */
+static int rover_ekf_commit_diag(const double *P)
+{
+    if (!(P[0] < 1.1235582092889473e+307)) { return ROVER_EKF_NON_FINITE; }
+    if (!(P[0] > 0.0)) { return ROVER_EKF_NOT_POSITIVE_DEFINITE; }
+    if (!(P[4] < 1.1235582092889473e+307)) { return ROVER_EKF_NON_FINITE; }
+    if (!(P[4] > 0.0)) { return ROVER_EKF_NOT_POSITIVE_DEFINITE; }
+    if (!(P[7] < 1.1235582092889473e+307)) { return ROVER_EKF_NON_FINITE; }
+    if (!(P[7] > 0.0)) { return ROVER_EKF_NOT_POSITIVE_DEFINITE; }
+    if (!(P[9] < 1.1235582092889473e+307)) { return ROVER_EKF_NON_FINITE; }
+    if (!(P[9] > 0.0)) { return ROVER_EKF_NOT_POSITIVE_DEFINITE; }
     return ROVER_EKF_OK;
 }
 
@@ -183,11 +198,18 @@ int rover_ekf_predict(rover_ekf_t *s, const double *u, double dt)
     Pn[9] = P[9] + Q3_3;
     /* angle states wrapped to (-pi, pi] */
     xn[rover_ekf_ix_psi] = rover_ekf_wrap(xn[rover_ekf_ix_psi]);
-    if (!rover_ekf_finite(xn, 4u) || !rover_ekf_finite(Pn, 10u)) {
+    if (!rover_ekf_finite(xn, 4u)) {
         return ROVER_EKF_NON_FINITE;
     }
     {
-        const int st = rover_ekf_commit_pd(Pn);  /* the commit check on the new P */
+        /* rounding certificate: no row of F cancels (sum|F_ik| * sum|F_ik| P_kk <= 4 P'_ii), so
+           the new P is positive definite up to rounding, and finite when its diagonal is; else it
+           is factorized (see the header) */
+        const int certified = (0.0 <= t15) &
+            (0.0 <= Q3_3) &
+            ((1.0 + fabs(F0_2) + fabs(F0_3))*(P[0] + P[7]*fabs(F0_2) + P[9]*fabs(F0_3)) <= 4.0*Pn[0]) &
+            ((1.0 + fabs(F1_3) + fabs(t10))*(P[4] + P[7]*fabs(t10) + P[9]*fabs(F1_3)) <= 4.0*Pn[4]);
+        const int st = certified ? rover_ekf_commit_diag(Pn) : rover_ekf_commit_pd(Pn);
         if (st != ROVER_EKF_OK) {
             return st;
         }
@@ -198,7 +220,7 @@ int rover_ekf_predict(rover_ekf_t *s, const double *u, double dt)
     return ROVER_EKF_OK;
 }
 
-/* Sensor range_a (1 component): sequential scalar updates (diagonal R), Joseph form. */
+/* Sensor range_a (1 component): sequential scalar updates (diagonal R), standard form P - K W'. */
 int rover_ekf_update_range_a_nis(rover_ekf_t *s, const double *z, double *nis_out)
 {
     double xs[4];
@@ -206,7 +228,6 @@ int rover_ekf_update_range_a_nis(rover_ekf_t *s, const double *z, double *nis_ou
     double y[1];
     double W[4];
     double K[4];
-    double V[4];
     double nis = 0.0;
     const double *x = s->x;
     const rover_ekf_par_t *par = &s->par;
@@ -241,27 +262,23 @@ int rover_ekf_update_range_a_nis(rover_ekf_t *s, const double *z, double *nis_ou
     K[1] = W[1]*is0;
     K[2] = W[2]*is0;
     K[3] = W[3]*is0;
-    V[0] = -W[0] + K[0]*s0;
-    V[1] = -W[1] + K[1]*s0;
-    V[2] = -W[2] + K[2]*s0;
-    V[3] = -W[3] + K[3]*s0;
     xs[rover_ekf_ix_px] = xs[rover_ekf_ix_px] + K[0]*r0;
     xs[rover_ekf_ix_py] = xs[rover_ekf_ix_py] + K[1]*r0;
     xs[rover_ekf_ix_psi] = xs[rover_ekf_ix_psi] + K[2]*r0;
     xs[rover_ekf_ix_v] = xs[rover_ekf_ix_v] + K[3]*r0;
-    Ps[0] = Ps[0] + K[0]*V[0] - K[0]*W[0];
-    Ps[1] = Ps[1] + K[0]*V[1] - K[1]*W[0];
-    Ps[2] = Ps[2] + K[0]*V[2] - K[2]*W[0];
-    Ps[3] = Ps[3] + K[0]*V[3] - K[3]*W[0];
-    Ps[4] = Ps[4] + K[1]*V[1] - K[1]*W[1];
-    Ps[5] = Ps[5] + K[1]*V[2] - K[2]*W[1];
-    Ps[6] = Ps[6] + K[1]*V[3] - K[3]*W[1];
-    Ps[7] = Ps[7] + K[2]*V[2] - K[2]*W[2];
-    Ps[8] = Ps[8] + K[2]*V[3] - K[3]*W[2];
-    Ps[9] = Ps[9] + K[3]*V[3] - K[3]*W[3];
+    Ps[0] = Ps[0] - K[0]*W[0];
+    Ps[1] = Ps[1] - K[0]*W[1];
+    Ps[2] = Ps[2] - K[0]*W[2];
+    Ps[3] = Ps[3] - K[0]*W[3];
+    Ps[4] = Ps[4] - K[1]*W[1];
+    Ps[5] = Ps[5] - K[1]*W[2];
+    Ps[6] = Ps[6] - K[1]*W[3];
+    Ps[7] = Ps[7] - K[2]*W[2];
+    Ps[8] = Ps[8] - K[2]*W[3];
+    Ps[9] = Ps[9] - K[3]*W[3];
     /* angle states wrapped to (-pi, pi] */
     xs[rover_ekf_ix_psi] = rover_ekf_wrap(xs[rover_ekf_ix_psi]);
-    if (!rover_ekf_finite(xs, 4u) || !rover_ekf_finite(Ps, 10u)) {
+    if (!rover_ekf_finite(xs, 4u)) {
         return ROVER_EKF_NON_FINITE;
     }
     {
@@ -288,7 +305,7 @@ int rover_ekf_update_range_a(rover_ekf_t *s, const double *z)
 }
 
 
-/* Sensor range_b (1 component): sequential scalar updates (diagonal R), Joseph form. */
+/* Sensor range_b (1 component): sequential scalar updates (diagonal R), standard form P - K W'. */
 int rover_ekf_update_range_b_nis(rover_ekf_t *s, const double *z, double *nis_out)
 {
     double xs[4];
@@ -296,7 +313,6 @@ int rover_ekf_update_range_b_nis(rover_ekf_t *s, const double *z, double *nis_ou
     double y[1];
     double W[4];
     double K[4];
-    double V[4];
     double nis = 0.0;
     const double *x = s->x;
     const rover_ekf_par_t *par = &s->par;
@@ -331,27 +347,23 @@ int rover_ekf_update_range_b_nis(rover_ekf_t *s, const double *z, double *nis_ou
     K[1] = W[1]*is0;
     K[2] = W[2]*is0;
     K[3] = W[3]*is0;
-    V[0] = -W[0] + K[0]*s0;
-    V[1] = -W[1] + K[1]*s0;
-    V[2] = -W[2] + K[2]*s0;
-    V[3] = -W[3] + K[3]*s0;
     xs[rover_ekf_ix_px] = xs[rover_ekf_ix_px] + K[0]*r0;
     xs[rover_ekf_ix_py] = xs[rover_ekf_ix_py] + K[1]*r0;
     xs[rover_ekf_ix_psi] = xs[rover_ekf_ix_psi] + K[2]*r0;
     xs[rover_ekf_ix_v] = xs[rover_ekf_ix_v] + K[3]*r0;
-    Ps[0] = Ps[0] + K[0]*V[0] - K[0]*W[0];
-    Ps[1] = Ps[1] + K[0]*V[1] - K[1]*W[0];
-    Ps[2] = Ps[2] + K[0]*V[2] - K[2]*W[0];
-    Ps[3] = Ps[3] + K[0]*V[3] - K[3]*W[0];
-    Ps[4] = Ps[4] + K[1]*V[1] - K[1]*W[1];
-    Ps[5] = Ps[5] + K[1]*V[2] - K[2]*W[1];
-    Ps[6] = Ps[6] + K[1]*V[3] - K[3]*W[1];
-    Ps[7] = Ps[7] + K[2]*V[2] - K[2]*W[2];
-    Ps[8] = Ps[8] + K[2]*V[3] - K[3]*W[2];
-    Ps[9] = Ps[9] + K[3]*V[3] - K[3]*W[3];
+    Ps[0] = Ps[0] - K[0]*W[0];
+    Ps[1] = Ps[1] - K[0]*W[1];
+    Ps[2] = Ps[2] - K[0]*W[2];
+    Ps[3] = Ps[3] - K[0]*W[3];
+    Ps[4] = Ps[4] - K[1]*W[1];
+    Ps[5] = Ps[5] - K[1]*W[2];
+    Ps[6] = Ps[6] - K[1]*W[3];
+    Ps[7] = Ps[7] - K[2]*W[2];
+    Ps[8] = Ps[8] - K[2]*W[3];
+    Ps[9] = Ps[9] - K[3]*W[3];
     /* angle states wrapped to (-pi, pi] */
     xs[rover_ekf_ix_psi] = rover_ekf_wrap(xs[rover_ekf_ix_psi]);
-    if (!rover_ekf_finite(xs, 4u) || !rover_ekf_finite(Ps, 10u)) {
+    if (!rover_ekf_finite(xs, 4u)) {
         return ROVER_EKF_NON_FINITE;
     }
     {
@@ -378,7 +390,7 @@ int rover_ekf_update_range_b(rover_ekf_t *s, const double *z)
 }
 
 
-/* Sensor range_cd (2 components): sequential scalar updates (diagonal R), Joseph form. */
+/* Sensor range_cd (2 components): sequential scalar updates (diagonal R), standard form P - K W'. */
 int rover_ekf_update_range_cd_nis(rover_ekf_t *s, const double *z, double *nis_out)
 {
     double xs[4];
@@ -386,7 +398,6 @@ int rover_ekf_update_range_cd_nis(rover_ekf_t *s, const double *z, double *nis_o
     double y[2];
     double W[4];
     double K[4];
-    double V[4];
     double nis = 0.0;
     const double *x = s->x;
     const rover_ekf_par_t *par = &s->par;
@@ -430,24 +441,20 @@ int rover_ekf_update_range_cd_nis(rover_ekf_t *s, const double *z, double *nis_o
     K[1] = W[1]*is0;
     K[2] = W[2]*is0;
     K[3] = W[3]*is0;
-    V[0] = -W[0] + K[0]*s0;
-    V[1] = -W[1] + K[1]*s0;
-    V[2] = -W[2] + K[2]*s0;
-    V[3] = -W[3] + K[3]*s0;
     xs[rover_ekf_ix_px] = xs[rover_ekf_ix_px] + K[0]*r0;
     xs[rover_ekf_ix_py] = xs[rover_ekf_ix_py] + K[1]*r0;
     xs[rover_ekf_ix_psi] = xs[rover_ekf_ix_psi] + K[2]*r0;
     xs[rover_ekf_ix_v] = xs[rover_ekf_ix_v] + K[3]*r0;
-    Ps[0] = Ps[0] + K[0]*V[0] - K[0]*W[0];
-    Ps[1] = Ps[1] + K[0]*V[1] - K[1]*W[0];
-    Ps[2] = Ps[2] + K[0]*V[2] - K[2]*W[0];
-    Ps[3] = Ps[3] + K[0]*V[3] - K[3]*W[0];
-    Ps[4] = Ps[4] + K[1]*V[1] - K[1]*W[1];
-    Ps[5] = Ps[5] + K[1]*V[2] - K[2]*W[1];
-    Ps[6] = Ps[6] + K[1]*V[3] - K[3]*W[1];
-    Ps[7] = Ps[7] + K[2]*V[2] - K[2]*W[2];
-    Ps[8] = Ps[8] + K[2]*V[3] - K[3]*W[2];
-    Ps[9] = Ps[9] + K[3]*V[3] - K[3]*W[3];
+    Ps[0] = Ps[0] - K[0]*W[0];
+    Ps[1] = Ps[1] - K[0]*W[1];
+    Ps[2] = Ps[2] - K[0]*W[2];
+    Ps[3] = Ps[3] - K[0]*W[3];
+    Ps[4] = Ps[4] - K[1]*W[1];
+    Ps[5] = Ps[5] - K[1]*W[2];
+    Ps[6] = Ps[6] - K[1]*W[3];
+    Ps[7] = Ps[7] - K[2]*W[2];
+    Ps[8] = Ps[8] - K[2]*W[3];
+    Ps[9] = Ps[9] - K[3]*W[3];
     /* component z[1] of range_cd: W = P H_1', s = H_1 W + R_11, K = W / s, x += K r, Joseph-form P */
     W[0] = H1_0*Ps[0] + H1_1*Ps[1];
     W[1] = H1_0*Ps[1] + H1_1*Ps[4];
@@ -463,27 +470,23 @@ int rover_ekf_update_range_cd_nis(rover_ekf_t *s, const double *z, double *nis_o
     K[1] = W[1]*is1;
     K[2] = W[2]*is1;
     K[3] = W[3]*is1;
-    V[0] = -W[0] + K[0]*s1;
-    V[1] = -W[1] + K[1]*s1;
-    V[2] = -W[2] + K[2]*s1;
-    V[3] = -W[3] + K[3]*s1;
     xs[rover_ekf_ix_px] = xs[rover_ekf_ix_px] + K[0]*r1;
     xs[rover_ekf_ix_py] = xs[rover_ekf_ix_py] + K[1]*r1;
     xs[rover_ekf_ix_psi] = xs[rover_ekf_ix_psi] + K[2]*r1;
     xs[rover_ekf_ix_v] = xs[rover_ekf_ix_v] + K[3]*r1;
-    Ps[0] = Ps[0] + K[0]*V[0] - K[0]*W[0];
-    Ps[1] = Ps[1] + K[0]*V[1] - K[1]*W[0];
-    Ps[2] = Ps[2] + K[0]*V[2] - K[2]*W[0];
-    Ps[3] = Ps[3] + K[0]*V[3] - K[3]*W[0];
-    Ps[4] = Ps[4] + K[1]*V[1] - K[1]*W[1];
-    Ps[5] = Ps[5] + K[1]*V[2] - K[2]*W[1];
-    Ps[6] = Ps[6] + K[1]*V[3] - K[3]*W[1];
-    Ps[7] = Ps[7] + K[2]*V[2] - K[2]*W[2];
-    Ps[8] = Ps[8] + K[2]*V[3] - K[3]*W[2];
-    Ps[9] = Ps[9] + K[3]*V[3] - K[3]*W[3];
+    Ps[0] = Ps[0] - K[0]*W[0];
+    Ps[1] = Ps[1] - K[0]*W[1];
+    Ps[2] = Ps[2] - K[0]*W[2];
+    Ps[3] = Ps[3] - K[0]*W[3];
+    Ps[4] = Ps[4] - K[1]*W[1];
+    Ps[5] = Ps[5] - K[1]*W[2];
+    Ps[6] = Ps[6] - K[1]*W[3];
+    Ps[7] = Ps[7] - K[2]*W[2];
+    Ps[8] = Ps[8] - K[2]*W[3];
+    Ps[9] = Ps[9] - K[3]*W[3];
     /* angle states wrapped to (-pi, pi] */
     xs[rover_ekf_ix_psi] = rover_ekf_wrap(xs[rover_ekf_ix_psi]);
-    if (!rover_ekf_finite(xs, 4u) || !rover_ekf_finite(Ps, 10u)) {
+    if (!rover_ekf_finite(xs, 4u)) {
         return ROVER_EKF_NON_FINITE;
     }
     {
@@ -510,7 +513,7 @@ int rover_ekf_update_range_cd(rover_ekf_t *s, const double *z)
 }
 
 
-/* Sensor compass (1 component): sequential scalar updates (diagonal R), Joseph form. */
+/* Sensor compass (1 component): sequential scalar updates (diagonal R), standard form P - K W'. */
 int rover_ekf_update_compass_nis(rover_ekf_t *s, const double *z, double *nis_out)
 {
     double xs[4];
@@ -518,7 +521,6 @@ int rover_ekf_update_compass_nis(rover_ekf_t *s, const double *z, double *nis_ou
     double y[1];
     double W[4];
     double K[4];
-    double V[4];
     double nis = 0.0;
     const double *x = s->x;
     if (z == NULL || !rover_ekf_finite(z, 1u)) {
@@ -545,27 +547,23 @@ int rover_ekf_update_compass_nis(rover_ekf_t *s, const double *z, double *nis_ou
     K[1] = W[1]*is0;
     K[2] = W[2]*is0;
     K[3] = W[3]*is0;
-    V[0] = -W[0] + K[0]*s0;
-    V[1] = -W[1] + K[1]*s0;
-    V[2] = -W[2] + K[2]*s0;
-    V[3] = -W[3] + K[3]*s0;
     xs[rover_ekf_ix_px] = xs[rover_ekf_ix_px] + K[0]*r0;
     xs[rover_ekf_ix_py] = xs[rover_ekf_ix_py] + K[1]*r0;
     xs[rover_ekf_ix_psi] = xs[rover_ekf_ix_psi] + K[2]*r0;
     xs[rover_ekf_ix_v] = xs[rover_ekf_ix_v] + K[3]*r0;
-    Ps[0] = Ps[0] + K[0]*V[0] - K[0]*W[0];
-    Ps[1] = Ps[1] + K[0]*V[1] - K[1]*W[0];
-    Ps[2] = Ps[2] + K[0]*V[2] - K[2]*W[0];
-    Ps[3] = Ps[3] + K[0]*V[3] - K[3]*W[0];
-    Ps[4] = Ps[4] + K[1]*V[1] - K[1]*W[1];
-    Ps[5] = Ps[5] + K[1]*V[2] - K[2]*W[1];
-    Ps[6] = Ps[6] + K[1]*V[3] - K[3]*W[1];
-    Ps[7] = Ps[7] + K[2]*V[2] - K[2]*W[2];
-    Ps[8] = Ps[8] + K[2]*V[3] - K[3]*W[2];
-    Ps[9] = Ps[9] + K[3]*V[3] - K[3]*W[3];
+    Ps[0] = Ps[0] - K[0]*W[0];
+    Ps[1] = Ps[1] - K[0]*W[1];
+    Ps[2] = Ps[2] - K[0]*W[2];
+    Ps[3] = Ps[3] - K[0]*W[3];
+    Ps[4] = Ps[4] - K[1]*W[1];
+    Ps[5] = Ps[5] - K[1]*W[2];
+    Ps[6] = Ps[6] - K[1]*W[3];
+    Ps[7] = Ps[7] - K[2]*W[2];
+    Ps[8] = Ps[8] - K[2]*W[3];
+    Ps[9] = Ps[9] - K[3]*W[3];
     /* angle states wrapped to (-pi, pi] */
     xs[rover_ekf_ix_psi] = rover_ekf_wrap(xs[rover_ekf_ix_psi]);
-    if (!rover_ekf_finite(xs, 4u) || !rover_ekf_finite(Ps, 10u)) {
+    if (!rover_ekf_finite(xs, 4u)) {
         return ROVER_EKF_NON_FINITE;
     }
     {

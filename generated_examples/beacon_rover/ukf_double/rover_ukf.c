@@ -39,7 +39,7 @@ static size_t rover_ukf_pk(size_t i, size_t j)
 
 /* OK when the packed covariance P is positive definite (every pivot of its Cholesky factorization
    finite and > 0; a positive diagonal is not enough), else the refusal code. Unrolled; one copy
-   serves set_state and every commit. */
+   serves set_state and every commit that factorizes. A non-finite entry always reaches a pivot. */
 static int rover_ukf_commit_pd(const double *P)
 {
     const double Lcd0 = P[0];
@@ -422,15 +422,16 @@ int rover_ukf_predict(rover_ukf_t *s, const double *u, double dt)
     Pn[7] = ft36 + (fu0_2*fu0_2) + (fu1_2*fu1_2) + (fu2_2*fu2_2) + (fv0_2*fv0_2) + (fv1_2*fv1_2) + (fv2_2*fv2_2) + (fv3_2*fv3_2) + 2.0*(ea[0]*ea[0]);
     Pn[8] = Lf[3]*fu0_2 + Lf[6]*fu1_2 + Lf[8]*fu2_2;
     Pn[9] = P[9] + Q3_3;
-    if (!rover_ukf_finite(xn, 4u) || !rover_ukf_finite(Pn, 10u)) {
+    if (!rover_ukf_finite(xn, 4u)) {
         return ROVER_UKF_NON_FINITE;
     }
     {
-        const int st = rover_ukf_commit_pd(Pn);
+        const int st = rover_ukf_commit_pd(Pn);  /* the commit check on the new P */
         if (st != ROVER_UKF_OK) {
             return st;
         }
     }
+
     memcpy(s->x, xn, sizeof xn);
     memcpy(s->P, Pn, sizeof Pn);
     return ROVER_UKF_OK;
@@ -530,15 +531,16 @@ int rover_ukf_update_range_a_nis(rover_ukf_t *s, const double *z, double *nis_ou
     if (nis_out != NULL) {
         *nis_out = nis;
     }
-    if (!rover_ukf_finite(xs, 4u) || !rover_ukf_finite(Ps, 10u)) {
+    if (!rover_ukf_finite(xs, 4u)) {
         return ROVER_UKF_NON_FINITE;
     }
     {
-        const int st = rover_ukf_commit_pd(Ps);
+        const int st = rover_ukf_commit_pd(Ps);  /* the commit check on the new P */
         if (st != ROVER_UKF_OK) {
             return st;
         }
     }
+
     memcpy(s->x, xs, sizeof xs);
     memcpy(s->P, Ps, sizeof Ps);
     return ROVER_UKF_OK;
@@ -644,15 +646,16 @@ int rover_ukf_update_range_b_nis(rover_ukf_t *s, const double *z, double *nis_ou
     if (nis_out != NULL) {
         *nis_out = nis;
     }
-    if (!rover_ukf_finite(xs, 4u) || !rover_ukf_finite(Ps, 10u)) {
+    if (!rover_ukf_finite(xs, 4u)) {
         return ROVER_UKF_NON_FINITE;
     }
     {
-        const int st = rover_ukf_commit_pd(Ps);
+        const int st = rover_ukf_commit_pd(Ps);  /* the commit check on the new P */
         if (st != ROVER_UKF_OK) {
             return st;
         }
     }
+
     memcpy(s->x, xs, sizeof xs);
     memcpy(s->P, Ps, sizeof Ps);
     return ROVER_UKF_OK;
@@ -805,15 +808,16 @@ int rover_ukf_update_range_cd_nis(rover_ukf_t *s, const double *z, double *nis_o
     if (nis_out != NULL) {
         *nis_out = nis;
     }
-    if (!rover_ukf_finite(xs, 4u) || !rover_ukf_finite(Ps, 10u)) {
+    if (!rover_ukf_finite(xs, 4u)) {
         return ROVER_UKF_NON_FINITE;
     }
     {
-        const int st = rover_ukf_commit_pd(Ps);
+        const int st = rover_ukf_commit_pd(Ps);  /* the commit check on the new P */
         if (st != ROVER_UKF_OK) {
             return st;
         }
     }
+
     memcpy(s->x, xs, sizeof xs);
     memcpy(s->P, Ps, sizeof Ps);
     return ROVER_UKF_OK;
@@ -913,15 +917,16 @@ int rover_ukf_update_compass_nis(rover_ukf_t *s, const double *z, double *nis_ou
     if (nis_out != NULL) {
         *nis_out = nis;
     }
-    if (!rover_ukf_finite(xs, 4u) || !rover_ukf_finite(Ps, 10u)) {
+    if (!rover_ukf_finite(xs, 4u)) {
         return ROVER_UKF_NON_FINITE;
     }
     {
-        const int st = rover_ukf_commit_pd(Ps);
+        const int st = rover_ukf_commit_pd(Ps);  /* the commit check on the new P */
         if (st != ROVER_UKF_OK) {
             return st;
         }
     }
+
     memcpy(s->x, xs, sizeof xs);
     memcpy(s->P, Ps, sizeof Ps);
     return ROVER_UKF_OK;

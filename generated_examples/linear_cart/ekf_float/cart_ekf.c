@@ -25,7 +25,7 @@ static size_t cart_ekf_pk(size_t i, size_t j)
 
 /* OK when the packed covariance P is positive definite (every pivot of its Cholesky factorization
    finite and > 0; a positive diagonal is not enough), else the refusal code. Unrolled; one copy
-   serves set_state and every commit. */
+   serves set_state and every commit that factorizes. A non-finite entry always reaches a pivot. */
 static int cart_ekf_commit_pd(const float *P)
 {
     const float Lcd0 = P[0];
@@ -136,7 +136,7 @@ int cart_ekf_predict(cart_ekf_t *s, const float *u, float dt)
     Pn[3] = A1_1 + Q1_1 + A1_2*t4;
     Pn[4] = A1_2;
     Pn[5] = P[5] + Q2_2;
-    if (!cart_ekf_finite(xn, 3u) || !cart_ekf_finite(Pn, 6u)) {
+    if (!cart_ekf_finite(xn, 3u)) {
         return CART_EKF_NON_FINITE;
     }
     {
@@ -151,7 +151,7 @@ int cart_ekf_predict(cart_ekf_t *s, const float *u, float dt)
     return CART_EKF_OK;
 }
 
-/* Sensor encoder (1 component): sequential scalar updates (diagonal R), Joseph form. */
+/* Sensor encoder (1 component): sequential scalar updates (diagonal R), standard form P - K W'. */
 int cart_ekf_update_encoder_nis(cart_ekf_t *s, const float *z, float *nis_out)
 {
     float xs[3];
@@ -159,7 +159,6 @@ int cart_ekf_update_encoder_nis(cart_ekf_t *s, const float *z, float *nis_out)
     float y[1];
     float W[3];
     float K[3];
-    float V[3];
     float nis = 0.0F;
     const float *x = s->x;
     if (z == NULL || !cart_ekf_finite(z, 1u)) {
@@ -183,19 +182,16 @@ int cart_ekf_update_encoder_nis(cart_ekf_t *s, const float *z, float *nis_out)
     K[0] = W[0]*is0;
     K[1] = W[1]*is0;
     K[2] = W[2]*is0;
-    V[0] = -W[0] + K[0]*s0;
-    V[1] = -W[1] + K[1]*s0;
-    V[2] = -W[2] + K[2]*s0;
     xs[cart_ekf_ix_pos] = xs[cart_ekf_ix_pos] + K[0]*r0;
     xs[cart_ekf_ix_vel] = xs[cart_ekf_ix_vel] + K[1]*r0;
     xs[cart_ekf_ix_dist] = xs[cart_ekf_ix_dist] + K[2]*r0;
-    Ps[0] = Ps[0] + K[0]*V[0] - K[0]*W[0];
-    Ps[1] = Ps[1] + K[0]*V[1] - K[1]*W[0];
-    Ps[2] = Ps[2] + K[0]*V[2] - K[2]*W[0];
-    Ps[3] = Ps[3] + K[1]*V[1] - K[1]*W[1];
-    Ps[4] = Ps[4] + K[1]*V[2] - K[2]*W[1];
-    Ps[5] = Ps[5] + K[2]*V[2] - K[2]*W[2];
-    if (!cart_ekf_finite(xs, 3u) || !cart_ekf_finite(Ps, 6u)) {
+    Ps[0] = Ps[0] - K[0]*W[0];
+    Ps[1] = Ps[1] - K[0]*W[1];
+    Ps[2] = Ps[2] - K[0]*W[2];
+    Ps[3] = Ps[3] - K[1]*W[1];
+    Ps[4] = Ps[4] - K[1]*W[2];
+    Ps[5] = Ps[5] - K[2]*W[2];
+    if (!cart_ekf_finite(xs, 3u)) {
         return CART_EKF_NON_FINITE;
     }
     {
@@ -222,7 +218,7 @@ int cart_ekf_update_encoder(cart_ekf_t *s, const float *z)
 }
 
 
-/* Sensor speed (1 component): sequential scalar updates (diagonal R), Joseph form. */
+/* Sensor speed (1 component): sequential scalar updates (diagonal R), standard form P - K W'. */
 int cart_ekf_update_speed_nis(cart_ekf_t *s, const float *z, float *nis_out)
 {
     float xs[3];
@@ -230,7 +226,6 @@ int cart_ekf_update_speed_nis(cart_ekf_t *s, const float *z, float *nis_out)
     float y[1];
     float W[3];
     float K[3];
-    float V[3];
     float nis = 0.0F;
     const float *x = s->x;
     if (z == NULL || !cart_ekf_finite(z, 1u)) {
@@ -254,19 +249,16 @@ int cart_ekf_update_speed_nis(cart_ekf_t *s, const float *z, float *nis_out)
     K[0] = W[0]*is0;
     K[1] = W[1]*is0;
     K[2] = W[2]*is0;
-    V[0] = -W[0] + K[0]*s0;
-    V[1] = -W[1] + K[1]*s0;
-    V[2] = -W[2] + K[2]*s0;
     xs[cart_ekf_ix_pos] = xs[cart_ekf_ix_pos] + K[0]*r0;
     xs[cart_ekf_ix_vel] = xs[cart_ekf_ix_vel] + K[1]*r0;
     xs[cart_ekf_ix_dist] = xs[cart_ekf_ix_dist] + K[2]*r0;
-    Ps[0] = Ps[0] + K[0]*V[0] - K[0]*W[0];
-    Ps[1] = Ps[1] + K[0]*V[1] - K[1]*W[0];
-    Ps[2] = Ps[2] + K[0]*V[2] - K[2]*W[0];
-    Ps[3] = Ps[3] + K[1]*V[1] - K[1]*W[1];
-    Ps[4] = Ps[4] + K[1]*V[2] - K[2]*W[1];
-    Ps[5] = Ps[5] + K[2]*V[2] - K[2]*W[2];
-    if (!cart_ekf_finite(xs, 3u) || !cart_ekf_finite(Ps, 6u)) {
+    Ps[0] = Ps[0] - K[0]*W[0];
+    Ps[1] = Ps[1] - K[0]*W[1];
+    Ps[2] = Ps[2] - K[0]*W[2];
+    Ps[3] = Ps[3] - K[1]*W[1];
+    Ps[4] = Ps[4] - K[1]*W[2];
+    Ps[5] = Ps[5] - K[2]*W[2];
+    if (!cart_ekf_finite(xs, 3u)) {
         return CART_EKF_NON_FINITE;
     }
     {

@@ -31,7 +31,7 @@ static size_t cart_ukf_pk(size_t i, size_t j)
 
 /* OK when the packed covariance P is positive definite (every pivot of its Cholesky factorization
    finite and > 0; a positive diagonal is not enough), else the refusal code. Unrolled; one copy
-   serves set_state and every commit. */
+   serves set_state and every commit that factorizes. A non-finite entry always reaches a pivot. */
 static int cart_ukf_commit_pd(const double *P)
 {
     const double Lcd0 = P[0];
@@ -182,15 +182,16 @@ int cart_ukf_predict(cart_ukf_t *s, const double *u, double dt)
     Pn[3] = AP1_1 + Q1_1 + AP1_2*ft4;
     Pn[4] = AP1_2;
     Pn[5] = P[5] + Q2_2;
-    if (!cart_ukf_finite(xn, 3u) || !cart_ukf_finite(Pn, 6u)) {
+    if (!cart_ukf_finite(xn, 3u)) {
         return CART_UKF_NON_FINITE;
     }
     {
-        const int st = cart_ukf_commit_pd(Pn);
+        const int st = cart_ukf_commit_pd(Pn);  /* the commit check on the new P */
         if (st != CART_UKF_OK) {
             return st;
         }
     }
+
     memcpy(s->x, xn, sizeof xn);
     memcpy(s->P, Pn, sizeof Pn);
     return CART_UKF_OK;
@@ -249,15 +250,16 @@ int cart_ukf_update_encoder_nis(cart_ukf_t *s, const double *z, double *nis_out)
     if (nis_out != NULL) {
         *nis_out = nis;
     }
-    if (!cart_ukf_finite(xs, 3u) || !cart_ukf_finite(Ps, 6u)) {
+    if (!cart_ukf_finite(xs, 3u)) {
         return CART_UKF_NON_FINITE;
     }
     {
-        const int st = cart_ukf_commit_pd(Ps);
+        const int st = cart_ukf_commit_pd(Ps);  /* the commit check on the new P */
         if (st != CART_UKF_OK) {
             return st;
         }
     }
+
     memcpy(s->x, xs, sizeof xs);
     memcpy(s->P, Ps, sizeof Ps);
     return CART_UKF_OK;
@@ -322,15 +324,16 @@ int cart_ukf_update_speed_nis(cart_ukf_t *s, const double *z, double *nis_out)
     if (nis_out != NULL) {
         *nis_out = nis;
     }
-    if (!cart_ukf_finite(xs, 3u) || !cart_ukf_finite(Ps, 6u)) {
+    if (!cart_ukf_finite(xs, 3u)) {
         return CART_UKF_NON_FINITE;
     }
     {
-        const int st = cart_ukf_commit_pd(Ps);
+        const int st = cart_ukf_commit_pd(Ps);  /* the commit check on the new P */
         if (st != CART_UKF_OK) {
             return st;
         }
     }
+
     memcpy(s->x, xs, sizeof xs);
     memcpy(s->P, Ps, sizeof Ps);
     return CART_UKF_OK;

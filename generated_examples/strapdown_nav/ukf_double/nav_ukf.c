@@ -39,7 +39,7 @@ static size_t nav_ukf_pk(size_t i, size_t j)
 
 /* OK when the packed covariance P is positive definite (every pivot of its Cholesky factorization
    finite and > 0; a positive diagonal is not enough), else the refusal code. Unrolled; one copy
-   serves set_state and every commit. */
+   serves set_state and every commit that factorizes. A non-finite entry always reaches a pivot. */
 static int nav_ukf_commit_pd(const double *P)
 {
     const double Lcd0 = P[0];
@@ -2189,15 +2189,16 @@ int nav_ukf_predict(nav_ukf_t *s, const double *u, double dt)
     Pn[117] = P[117] + ft298;
     Pn[118] = P[118];
     Pn[119] = P[119] + ft298;
-    if (!nav_ukf_finite(xn, 15u) || !nav_ukf_finite(Pn, 120u)) {
+    if (!nav_ukf_finite(xn, 15u)) {
         return NAV_UKF_NON_FINITE;
     }
     {
-        const int st = nav_ukf_commit_pd(Pn);
+        const int st = nav_ukf_commit_pd(Pn);  /* the commit check on the new P */
         if (st != NAV_UKF_OK) {
             return st;
         }
     }
+
     memcpy(s->x, xn, sizeof xn);
     memcpy(s->P, Pn, sizeof Pn);
     return NAV_UKF_OK;
@@ -2449,15 +2450,16 @@ int nav_ukf_update_gnss_pos_nis(nav_ukf_t *s, const double *z, double *nis_out)
     if (nis_out != NULL) {
         *nis_out = nis;
     }
-    if (!nav_ukf_finite(xs, 15u) || !nav_ukf_finite(Ps, 120u)) {
+    if (!nav_ukf_finite(xs, 15u)) {
         return NAV_UKF_NON_FINITE;
     }
     {
-        const int st = nav_ukf_commit_pd(Ps);
+        const int st = nav_ukf_commit_pd(Ps);  /* the commit check on the new P */
         if (st != NAV_UKF_OK) {
             return st;
         }
     }
+
     memcpy(s->x, xs, sizeof xs);
     memcpy(s->P, Ps, sizeof Ps);
     return NAV_UKF_OK;
@@ -2715,15 +2717,16 @@ int nav_ukf_update_gnss_vel_nis(nav_ukf_t *s, const double *z, double *nis_out)
     if (nis_out != NULL) {
         *nis_out = nis;
     }
-    if (!nav_ukf_finite(xs, 15u) || !nav_ukf_finite(Ps, 120u)) {
+    if (!nav_ukf_finite(xs, 15u)) {
         return NAV_UKF_NON_FINITE;
     }
     {
-        const int st = nav_ukf_commit_pd(Ps);
+        const int st = nav_ukf_commit_pd(Ps);  /* the commit check on the new P */
         if (st != NAV_UKF_OK) {
             return st;
         }
     }
+
     memcpy(s->x, xs, sizeof xs);
     memcpy(s->P, Ps, sizeof Ps);
     return NAV_UKF_OK;
@@ -2930,15 +2933,16 @@ int nav_ukf_update_baro_nis(nav_ukf_t *s, const double *z, double *nis_out)
     if (nis_out != NULL) {
         *nis_out = nis;
     }
-    if (!nav_ukf_finite(xs, 15u) || !nav_ukf_finite(Ps, 120u)) {
+    if (!nav_ukf_finite(xs, 15u)) {
         return NAV_UKF_NON_FINITE;
     }
     {
-        const int st = nav_ukf_commit_pd(Ps);
+        const int st = nav_ukf_commit_pd(Ps);  /* the commit check on the new P */
         if (st != NAV_UKF_OK) {
             return st;
         }
     }
+
     memcpy(s->x, xs, sizeof xs);
     memcpy(s->P, Ps, sizeof Ps);
     return NAV_UKF_OK;
@@ -3223,15 +3227,16 @@ int nav_ukf_update_mag_heading_nis(nav_ukf_t *s, const double *z, double *nis_ou
     if (nis_out != NULL) {
         *nis_out = nis;
     }
-    if (!nav_ukf_finite(xs, 15u) || !nav_ukf_finite(Ps, 120u)) {
+    if (!nav_ukf_finite(xs, 15u)) {
         return NAV_UKF_NON_FINITE;
     }
     {
-        const int st = nav_ukf_commit_pd(Ps);
+        const int st = nav_ukf_commit_pd(Ps);  /* the commit check on the new P */
         if (st != NAV_UKF_OK) {
             return st;
         }
     }
+
     memcpy(s->x, xs, sizeof xs);
     memcpy(s->P, Ps, sizeof Ps);
     return NAV_UKF_OK;

@@ -31,7 +31,7 @@ static size_t valve_ukf_pk(size_t i, size_t j)
 
 /* OK when the packed covariance P is positive definite (every pivot of its Cholesky factorization
    finite and > 0; a positive diagonal is not enough), else the refusal code. Unrolled; one copy
-   serves set_state and every commit. */
+   serves set_state and every commit that factorizes. A non-finite entry always reaches a pivot. */
 static int valve_ukf_commit_pd(const float *P)
 {
     const float Lcd0 = P[0];
@@ -170,15 +170,16 @@ int valve_ukf_predict(valve_ukf_t *s, const float *u, float dt)
     Pn[0] = Q0_0 + (fu0_0*fu0_0) + (fv0_0*fv0_0) + (fv1_0*fv1_0) + 2.0F*(fe0*fe0);
     Pn[1] = fT0_1*fu0_0;
     Pn[2] = Q1_1 + AP1_1*fA1_1;
-    if (!valve_ukf_finite(xn, 2u) || !valve_ukf_finite(Pn, 3u)) {
+    if (!valve_ukf_finite(xn, 2u)) {
         return VALVE_UKF_NON_FINITE;
     }
     {
-        const int st = valve_ukf_commit_pd(Pn);
+        const int st = valve_ukf_commit_pd(Pn);  /* the commit check on the new P */
         if (st != VALVE_UKF_OK) {
             return st;
         }
     }
+
     memcpy(s->x, xn, sizeof xn);
     memcpy(s->P, Pn, sizeof Pn);
     return VALVE_UKF_OK;
@@ -257,15 +258,16 @@ int valve_ukf_update_flow_nis(valve_ukf_t *s, const float *z, float *nis_out)
     if (nis_out != NULL) {
         *nis_out = nis;
     }
-    if (!valve_ukf_finite(xs, 2u) || !valve_ukf_finite(Ps, 3u)) {
+    if (!valve_ukf_finite(xs, 2u)) {
         return VALVE_UKF_NON_FINITE;
     }
     {
-        const int st = valve_ukf_commit_pd(Ps);
+        const int st = valve_ukf_commit_pd(Ps);  /* the commit check on the new P */
         if (st != VALVE_UKF_OK) {
             return st;
         }
     }
+
     memcpy(s->x, xs, sizeof xs);
     memcpy(s->P, Ps, sizeof Ps);
     return VALVE_UKF_OK;
@@ -325,15 +327,16 @@ int valve_ukf_update_stem_nis(valve_ukf_t *s, const float *z, float *nis_out)
     if (nis_out != NULL) {
         *nis_out = nis;
     }
-    if (!valve_ukf_finite(xs, 2u) || !valve_ukf_finite(Ps, 3u)) {
+    if (!valve_ukf_finite(xs, 2u)) {
         return VALVE_UKF_NON_FINITE;
     }
     {
-        const int st = valve_ukf_commit_pd(Ps);
+        const int st = valve_ukf_commit_pd(Ps);  /* the commit check on the new P */
         if (st != VALVE_UKF_OK) {
             return st;
         }
     }
+
     memcpy(s->x, xs, sizeof xs);
     memcpy(s->P, Ps, sizeof Ps);
     return VALVE_UKF_OK;
