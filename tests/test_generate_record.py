@@ -27,7 +27,7 @@ def test_header_records_hash_and_options():
     head = gen.header
     digest = hashlib.sha256(open(path, "rb").read()).hexdigest()
     assert f"model file sha256: {digest}" in head
-    assert "options: --filter ukf --precision float --commit-check cholesky --gate compass=0.99 --alpha 0.5" in head
+    assert "options: --filter ukf --precision float --commit-check subtractive --gate compass=0.99 --alpha 0.5 --optimize speed" in head
     # sensor components with their units; the status precedence; the long-function deviation
     assert re.search(r"z\[0\] = sqrt\(.*\) \[m\]", head)
     assert "z[0] = psi [rad] (angle, innovation wrapped)" in head
