@@ -5,10 +5,11 @@ The model functions and their Jacobians are written out (printed from sympy, eve
 and H assigned, zeros included, common subexpressions shared as a careful engineer would), and
 all covariance algebra is plain triple loops over full n x n arrays:
 
-* EKF predict: ``P = F P F' + Q``.
-* EKF update: ``S = H P H' + R``, Cholesky ``S = L L'``, ``K = P H' S^-1`` by two triangular
+* EKF predict: ``P = F P F' + Q`` (``+ G Qw G'`` with noise symbols, G = df/dw at w = 0).
+* EKF update: ``S = H P H' + R`` (R plus ``M Rv M'`` with noise symbols), Cholesky ``S = L L'``, ``K = P H' S^-1`` by two triangular
   solves, Joseph form ``P = (I - K H) P (I - K H)' + K R K'``.
-* UKF: full Cholesky of ``(n + lambda) P``, 2n+1 sigma points through f (or h), weighted means
+* UKF: full Cholesky of ``(n + lambda) P`` (of the augmented ``blockdiag(P, Qw)`` with noise
+  symbols, n their total), 2n+1 sigma points through f (or h), weighted means
   (circular for angles), dense outer-product sums, ``K = C S^-1``, ``P = P - K S K'``.
 
 After either step P is symmetrized and angles are wrapped, as the numpy reference does
@@ -238,41 +239,60 @@ def _ekf_source(c: _Ctx) -> str:
     names = c_names(spec, "x")
     w = _W()
     _preamble(c, w)
-    F = spec.f.jacobian(spec.x_syms)
+    F = spec.f0.jacobian(spec.x_syms)
+    ws = spec.w_syms
+    nw = len(ws)
+    G = spec.f.jacobian(ws).xreplace({v: 0 for v in ws}) if ws else sp.zeros(n, 0)
     w(f"int {p}_predict({p}_t *s, const {r} *u, {r} dt)")
     w.open("")
     w(f"{r} xn[{n}], F[{n}][{n}], Q[{n}][{n}], FP[{n}][{n}], Pn[{n}][{n}];")
+    if nw:
+        w(f"{r} G[{n}][{nw}], Qw[{nw}][{nw}], GQ[{n}][{nw}];")
     w(f"const {r} *x = s->x;")
     w(f"const {p}_par_t *par = &s->par;")
     w("int i, j, k;")
     w("(void)u; (void)par;")
     w(f"if (!isfinite(dt) || !(dt > {c.lit(0.0)})) {{ return {int(Status.BAD_DT)}; }}")
-    outs: List[Tuple[str, sp.Expr]] = [(f"xn[{i}]", spec.f[i]) for i in range(n)]
+    outs: List[Tuple[str, sp.Expr]] = [(f"xn[{i}]", spec.f0[i]) for i in range(n)]
     outs += [(f"F[{i}][{j}]", F[i, j]) for i in range(n) for j in range(n)]
     outs += [(f"Q[{i}][{j}]", spec.Q[i, j]) for i in range(n) for j in range(n)]
+    outs += [(f"G[{i}][{j}]", G[i, j]) for i in range(n) for j in range(nw)]
+    outs += [(f"Qw[{i}][{j}]", spec.Qw[i, j]) for i in range(nw) for j in range(nw)]
     c.block(w, outs, names)
     _product(c, w, "FP[i][j]", n, n, c.lit(0.0), [(n, "F[i][k] * s->P[k][j]")])
-    _product(c, w, "Pn[i][j]", n, n, "Q[i][j]", [(n, "FP[i][k] * F[j][k]")])
+    if nw:
+        _product(c, w, "GQ[i][j]", n, nw, c.lit(0.0), [(nw, "G[i][k] * Qw[k][j]")])
+        _product(c, w, "Pn[i][j]", n, n, "Q[i][j]", [(n, "FP[i][k] * F[j][k]"), (nw, "GQ[i][k] * G[j][k]")])
+    else:
+        _product(c, w, "Pn[i][j]", n, n, "Q[i][j]", [(n, "FP[i][k] * F[j][k]")])
     _commit(c, w, "xn", "Pn")
     w.close()
     for s in spec.sensors:
-        m = s.m
-        H = s.h.jacobian(spec.x_syms)
+        m, nv = s.m, s.nv
+        H = s.h0.jacobian(spec.x_syms)
+        M = s.h.jacobian(list(s.v)).xreplace({v: 0 for v in s.v}) if nv else sp.zeros(m, 0)
         w()
         w(f"int {p}_update_{s.name}({p}_t *s, const {r} *z)")
         w.open("")
         w(f"{r} hz[{m}], H[{m}][{n}], R[{m}][{m}], y[{m}], PHt[{n}][{m}], S[{m}][{m}], L[{m}][{m}];")
         w(f"{r} K[{n}][{m}], KR[{n}][{m}], a[{m}], b[{m}], IKH[{n}][{n}], T[{n}][{n}], xn[{n}], Pn[{n}][{n}];")
         w(f"{r} nis;")
+        if nv:
+            w(f"{r} M[{m}][{nv}], Rv[{nv}][{nv}], MR[{m}][{nv}], R0[{m}][{m}];")
         w(f"const {r} *x = s->x;")
         w(f"const {p}_par_t *par = &s->par;")
         w("int i, j, k;")
         w("(void)par;")
         w(f"if (!all_finite(z, {m})) {{ return {int(Status.BAD_INPUT)}; }}")
-        outs = [(f"hz[{i}]", s.h[i]) for i in range(m)]
+        outs = [(f"hz[{i}]", s.h0[i]) for i in range(m)]
         outs += [(f"H[{i}][{j}]", H[i, j]) for i in range(m) for j in range(n)]
-        outs += [(f"R[{i}][{j}]", s.R[i, j]) for i in range(m) for j in range(m)]
+        outs += [(f"{'R0' if nv else 'R'}[{i}][{j}]", s.R[i, j]) for i in range(m) for j in range(m)]
+        outs += [(f"M[{i}][{j}]", M[i, j]) for i in range(m) for j in range(nv)]
+        outs += [(f"Rv[{i}][{j}]", s.Rv[i, j]) for i in range(nv) for j in range(nv)]
         c.block(w, outs, names)
+        if nv:  # R_eff = M Rv M' + R
+            _product(c, w, "MR[i][j]", m, nv, c.lit(0.0), [(nv, "M[i][k] * Rv[k][j]")])
+            _product(c, w, "R[i][j]", m, m, "R0[i][j]", [(nv, "MR[i][k] * M[j][k]")])
         for i in range(m):
             if s.angles[i]:
                 w(f"y[{i}] = wrap_angle(z[{i}] - hz[{i}]);")
@@ -295,83 +315,99 @@ def _ekf_source(c: _Ctx) -> str:
 def _ukf_source(c: _Ctx, alpha: float, beta: float, kappa: float) -> str:
     spec, r, n, p, fs = c.spec, c.real, c.n, c.p, c.fs
     UkfWeights(n, alpha, beta, kappa)  # validates the parameters
-    lam, wm, wc = sigma_weights(n, alpha, beta, kappa)
-    npts = 2 * n + 1
     names = c_names(spec, "x")
     w = _W()
     _preamble(c, w)
-    w(f"static const {r} WM[{npts}] = {{" + ", ".join(c.lit(v) for v in wm) + "};")
-    w(f"static const {r} WC[{npts}] = {{" + ", ".join(c.lit(v) for v in wc) + "};")
+    # one weight table per augmented dimension (n, n + nw, n + nv): noise symbols are read from
+    # the sigma point's entries after the states
+    dims = sorted({n + spec.nw} | {n + s.nv for s in spec.sensors} | {n})
+    for dim in dims:
+        _, wm, wc = sigma_weights(dim, alpha, beta, kappa)
+        w(f"static const {r} WM{dim}[{2 * dim + 1}] = {{" + ", ".join(c.lit(v) for v in wm) + "};")
+        w(f"static const {r} WC{dim}[{2 * dim + 1}] = {{" + ", ".join(c.lit(v) for v in wc) + "};")
     w()
+    fnames = {**names, **{v: sp.Symbol(f"x[{n + j}]") for j, v in enumerate(spec.w_syms)}}
     w(f"static void model_f(const {r} *x, const {r} *u, {r} dt, const {p}_par_t *par, {r} *out)")
     w.open("")
     w("(void)u; (void)dt; (void)par;")
-    c.block(w, [(f"out[{i}]", spec.f[i]) for i in range(n)], names)
+    c.block(w, [(f"out[{i}]", spec.f[i]) for i in range(n)], fnames)
     w.close()
     for s in spec.sensors:
         w()
         w(f"static void model_h_{s.name}(const {r} *x, const {p}_par_t *par, {r} *out)")
         w.open("")
         w("(void)x; (void)par;")
-        c.block(w, [(f"out[{i}]", s.h[i]) for i in range(s.m)], names)
+        hnames = {**names, **{v: sp.Symbol(f"x[{n + j}]") for j, v in enumerate(s.v)}}
+        c.block(w, [(f"out[{i}]", s.h[i]) for i in range(s.m)], hnames)
         w.close()
     w()
 
-    def sigma(P: str) -> None:
-        _chol(c, w, P, "L", n, scale=c.lit(n + lam))
-        w(f"for (j = 0; j < {n}; ++j) {{ X[0][j] = s->x[j]; }}")
-        w(f"for (i = 0; i < {n}; ++i) {{ for (j = 0; j < {n}; ++j) {{")
-        w(f"    X[1 + i][j] = s->x[j] + L[j][i];")
-        w(f"    X[1 + {n} + i][j] = s->x[j] - L[j][i];")
+    def sigma(dim: int, cov: sp.Matrix) -> None:
+        """X: the sigma points of [x; noise] with covariance blockdiag(P, cov)."""
+        lam = sigma_weights(dim, alpha, beta, kappa)[0]
+        k = dim - n
+        w(f"memset(Pa, 0, sizeof Pa);")
+        w(f"for (i = 0; i < {n}; ++i) {{ for (j = 0; j < {n}; ++j) {{ Pa[i][j] = s->P[i][j]; }} }}")
+        if k:
+            c.block(w, [(f"Pa[{n + i}][{n + j}]", cov[i, j]) for i in range(k) for j in range(k)], names, prefix="q")
+        _chol(c, w, "Pa", "L", dim, scale=c.lit(dim + lam))
+        w(f"for (j = 0; j < {dim}; ++j) {{ X[0][j] = j < {n} ? s->x[j] : {c.lit(0.0)}; }}")
+        w(f"for (i = 0; i < {dim}; ++i) {{ for (j = 0; j < {dim}; ++j) {{")
+        w(f"    X[1 + i][j] = X[0][j] + L[j][i];")
+        w(f"    X[1 + {dim} + i][j] = X[0][j] - L[j][i];")
         w("} }")
 
-    def mean(Y: str, out: str, dim: int, angles: Sequence[bool]) -> None:
-        w(f"for (j = 0; j < {dim}; ++j) {{ {r} acc = {c.lit(0.0)}; for (k = 0; k < {npts}; ++k) {{ acc += WM[k] * {Y}[k][j]; }} {out}[j] = acc; }}")
+    def mean(Y: str, out: str, dim: int, angles: Sequence[bool], npts: int, WM: str) -> None:
+        w(f"for (j = 0; j < {dim}; ++j) {{ {r} acc = {c.lit(0.0)}; for (k = 0; k < {npts}; ++k) {{ acc += {WM}[k] * {Y}[k][j]; }} {out}[j] = acc; }}")
         for j, ang in enumerate(angles):
             if ang:
                 w(f"{{ {r} sn = {c.lit(0.0)}, cs = {c.lit(0.0)};")
-                w(f"  for (k = 0; k < {npts}; ++k) {{ sn += WM[k] * sin{fs}({Y}[k][{j}]); cs += WM[k] * cos{fs}({Y}[k][{j}]); }}")
+                w(f"  for (k = 0; k < {npts}; ++k) {{ sn += {WM}[k] * sin{fs}({Y}[k][{j}]); cs += {WM}[k] * cos{fs}({Y}[k][{j}]); }}")
                 w(f"  {out}[{j}] = atan2{fs}(sn, cs); }}")
 
-    def deviations(Y: str, mu: str, D: str, dim: int, angles: Sequence[bool]) -> None:
+    def deviations(Y: str, mu: str, D: str, dim: int, angles: Sequence[bool], npts: int) -> None:
         w(f"for (k = 0; k < {npts}; ++k) {{ for (j = 0; j < {dim}; ++j) {{ {D}[k][j] = {Y}[k][j] - {mu}[j]; }} }}")
         for j, ang in enumerate(angles):
             if ang:
                 w(f"for (k = 0; k < {npts}; ++k) {{ {D}[k][{j}] = wrap_angle({D}[k][{j}]); }}")
 
+    na = n + spec.nw
+    npts = 2 * na + 1
     w(f"int {p}_predict({p}_t *s, const {r} *u, {r} dt)")
     w.open("")
-    w(f"{r} L[{n}][{n}], X[{npts}][{n}], Y[{npts}][{n}], D[{npts}][{n}], Q[{n}][{n}], xn[{n}], Pn[{n}][{n}];")
+    w(f"{r} Pa[{na}][{na}], L[{na}][{na}], X[{npts}][{na}], Y[{npts}][{n}], D[{npts}][{n}], Q[{n}][{n}], xn[{n}], Pn[{n}][{n}];")
     w(f"const {p}_par_t *par = &s->par;")
     w("int i, j, k;")
     w("(void)par;")
     w(f"if (!isfinite(dt) || !(dt > {c.lit(0.0)})) {{ return {int(Status.BAD_DT)}; }}")
-    sigma("s->P")
+    sigma(na, spec.Qw)
     w(f"for (k = 0; k < {npts}; ++k) {{ model_f(X[k], u, dt, par, Y[k]); }}")
     c.block(w, [(f"Q[{i}][{j}]", spec.Q[i, j]) for i in range(n) for j in range(n)], names)
-    mean("Y", "xn", n, spec.angle_states)
-    deviations("Y", "xn", "D", n, spec.angle_states)
-    _product(c, w, "Pn[i][j]", n, n, "Q[i][j]", [(npts, "WC[k] * D[k][i] * D[k][j]")])
+    mean("Y", "xn", n, spec.angle_states, npts, f"WM{na}")
+    deviations("Y", "xn", "D", n, spec.angle_states, npts)
+    _product(c, w, "Pn[i][j]", n, n, "Q[i][j]", [(npts, f"WC{na}[k] * D[k][i] * D[k][j]")])
     _commit(c, w, "xn", "Pn")
     w.close()
     for s in spec.sensors:
         m = s.m
+        na = n + s.nv
+        npts = 2 * na + 1
         w()
         w(f"int {p}_update_{s.name}({p}_t *s, const {r} *z)")
         w.open("")
-        w(f"{r} L[{n}][{n}], X[{npts}][{n}], Z[{npts}][{m}], DZ[{npts}][{m}], zh[{m}], R[{m}][{m}], S[{m}][{m}];")
+        w(f"{r} Pa[{na}][{na}], L[{na}][{na}], X[{npts}][{na}], Z[{npts}][{m}], DZ[{npts}][{m}], zh[{m}], R[{m}][{m}], S[{m}][{m}];")
         w(f"{r} LS[{m}][{m}], C[{n}][{m}], K[{n}][{m}], KS[{n}][{m}], y[{m}], a[{m}], b[{m}], xn[{n}], Pn[{n}][{n}], nis;")
         w(f"const {p}_par_t *par = &s->par;")
         w("int i, j, k;")
         w("(void)par;")
         w(f"if (!all_finite(z, {m})) {{ return {int(Status.BAD_INPUT)}; }}")
-        sigma("s->P")
+        sigma(na, s.Rv)
         w(f"for (k = 0; k < {npts}; ++k) {{ model_h_{s.name}(X[k], par, Z[k]); }}")
         c.block(w, [(f"R[{i}][{j}]", s.R[i, j]) for i in range(m) for j in range(m)], names)
-        mean("Z", "zh", m, s.angles)
-        deviations("Z", "zh", "DZ", m, s.angles)
-        _product(c, w, "S[i][j]", m, m, "R[i][j]", [(npts, "WC[k] * DZ[k][i] * DZ[k][j]")])
-        _product(c, w, "C[i][j]", n, m, c.lit(0.0), [(npts, "WC[k] * (X[k][i] - s->x[i]) * DZ[k][j]")])
+        mean("Z", "zh", m, s.angles, npts, f"WM{na}")
+        deviations("Z", "zh", "DZ", m, s.angles, npts)
+        _product(c, w, "S[i][j]", m, m, "R[i][j]", [(npts, f"WC{na}[k] * DZ[k][i] * DZ[k][j]")])
+        _product(c, w, "C[i][j]", n, m, c.lit(0.0), [(npts, f"WC{na}[k] * (X[k][i] - s->x[i]) * DZ[k][j]")])
         for i in range(m):
             if s.angles[i]:
                 w(f"y[{i}] = wrap_angle(z[{i}] - zh[{i}]);")
