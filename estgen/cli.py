@@ -235,9 +235,6 @@ def main(argv: Optional[Sequence[str]] = None) -> int:
     except (ModelError, ToolMissing) as err:
         print(str(err), file=sys.stderr)
         return 2
-    except ToolMissing as err:
-        print(f"estgen {args.command}: {err}", file=sys.stderr)
-        return 2
     except KeyboardInterrupt:
         return 130
 

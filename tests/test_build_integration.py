@@ -152,7 +152,6 @@ def test_cmake_host_project_with_two_filters(project):
         add_executable(app main.c)
         estgen_add_filter(app MODEL tank.py FILTER ekf PRECISION double)
         estgen_add_filter(app MODEL tank.py FILTER ukf OPTIONS --alpha 0.5 --commit-check diagonal)
-        target_link_libraries(app PRIVATE m)
     """))
     build = project / "build"
     _configure(project, build, "Ninja")

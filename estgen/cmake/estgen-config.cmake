@@ -6,8 +6,8 @@
 #                     [PRECISION float|double] [OPTIONS <more estgen generate arguments>...])
 #
 # estgen_add_filter generates the filter in the build tree at build time
-# (${CMAKE_CURRENT_BINARY_DIR}/estgen/<target>_<filter>/), adds its .c to <target> and that
-# folder to <target>'s include path. The generate step depends on the model file and, through
+# (${CMAKE_CURRENT_BINARY_DIR}/estgen/<target>_<filter>/), adds its .c to <target>, that
+# folder to <target>'s include path and the math library (m) to its link. The generate step depends on the model file and, through
 # the dependency file `estgen generate --depfile` writes, on every local Python file the model
 # imports: it reruns when one of them changes and never otherwise. PRECISION defaults to float,
 # the build `estgen generate` ships. Configuring runs the estgen command once per filter to learn
@@ -86,6 +86,12 @@ function(estgen_add_filter target)
     VERBATIM)
   target_sources(${target} PRIVATE ${_outputs})
   target_include_directories(${target} PUBLIC "${_out}")
+  # the generated C calls <math.h> (sqrtf, ...): link the math library where it is separate.
+  # set_property, not target_link_libraries: it leaves the caller free to use either signature.
+  if(NOT MSVC)
+    set_property(TARGET ${target} APPEND PROPERTY LINK_LIBRARIES m)
+    set_property(TARGET ${target} APPEND PROPERTY INTERFACE_LINK_LIBRARIES m)
+  endif()
 endfunction()
 
 set(estgen_FOUND TRUE)
