@@ -31,6 +31,7 @@ from typing import List, Tuple
 import pytest
 
 from conftest import EXAMPLES_DIR, ROOT, require_tool
+from test_build_integration import MODEL as TANK_MODEL
 
 RUN_LANGS = {"sh", "python", "c", "cmake", "make", "ninja"}
 NOT_RUN = {"text"}
@@ -45,20 +46,7 @@ FIXTURES = {
     "cell.py": os.path.join(EXAMPLES_DIR, "battery_soc", "model.py"),
     "valve.py": os.path.join(EXAMPLES_DIR, "valve_actuator", "model.py"),
 }
-TANK = textwrap.dedent("""\
-    import sympy as sp
-    from estgen import Model
-    from tank_consts import AREA
-
-    model = Model("tank")
-    (h,) = model.states("h", units="m")
-    (q,) = model.inputs("q", units="m^3/s")
-    dt = model.dt
-    model.process([h + dt * q / AREA])
-    model.process_noise(sp.Matrix([[1e-6]]) * dt)
-    model.sensor("level", [h], noise=[1e-4], units="m")
-    model.initial([0.5], sp.Matrix([[0.01]]))
-""")
+TANK = TANK_MODEL  # the tank of docs/build.md, as tests/test_build_integration.py builds it
 #: the contract's section 1 model, under the name its C examples use
 TANKLINE = textwrap.dedent("""\
     import sympy as sp
