@@ -218,3 +218,19 @@ def test_cmake_firmware_example(tmp_path, generator):
     assert res["refused"] == 0
     assert abs(res["tload"] - 2000) <= max(3 * res["tload_sigma"], 0) and abs(res["tload"] - 2000) < 400
     assert abs(res["omega"] - res["omega_true"]) < 0.01 * abs(res["omega_true"])
+
+
+def test_the_wheel_ships_every_package_and_the_cmake_files():
+    """A plain `pip install .` (the Quick start) installs what pyproject lists: every folder of
+    estgen/ with an __init__.py must be listed, and the CMake package is package data
+    (setuptools documentation: explicit `packages` are not searched)."""
+    import tomllib
+
+    with open(os.path.join(ROOT, "pyproject.toml"), "rb") as fh:
+        conf = tomllib.load(fh)["tool"]["setuptools"]
+    listed = set(conf["packages"])
+    top = os.path.join(ROOT, "estgen")
+    rels = [os.path.relpath(d, top) for d, _, files in os.walk(top) if "__init__.py" in files]
+    on_disk = {"estgen" if r == "." else "estgen." + r.replace(os.sep, ".") for r in rels}
+    assert on_disk <= listed, on_disk - listed
+    assert "cmake/*.cmake" in conf["package-data"]["estgen"]
