@@ -16,7 +16,9 @@ and the filter does not know it); or it refused 10 or more calls in a row.
 
 The recommendation is the cheapest filter (instructions per step, then flash) that is
 consistent, has no diverged run, fits the budget, and whose RMSE is within ``margin`` (relative)
-of the best filter's in every state. Every other filter gets a sentence saying why it lost.
+of the best filter's in every state. A filter that misses the 90% consistency rule narrowly
+(every statistic inside at 80% of the steps or more) still qualifies, with the miss stated: with
+few runs the fraction inside is noisy. Every other filter gets a sentence saying why it lost.
 
 The linearization check measures, at every step, how far the EKF's linearized covariance is
 from the unscented transform's on the same prior: both are started from the EKF's estimate
@@ -44,7 +46,7 @@ import numpy as np
 
 from ._version import __version__
 from .chi2 import chi2_ppf
-from .errors import ModelError, UsageError
+from .errors import ModelError
 from .filters import KINDS, FilterSetup, check_filter_support
 from .filters import get as filter_kind
 from .filters import names as filter_names
@@ -71,6 +73,9 @@ __all__ = [
 
 #: RMSE within this fraction of the best filter's, state by state, counts as "as accurate"
 DEFAULT_MARGIN = 0.10
+#: a filter inside its bounds at this fraction of the steps (every statistic) still qualifies for
+#: the recommendation, with its miss stated (our own choice; the verdict itself keeps 90%)
+NEARLY_INSIDE = 0.80
 #: a Förstner-Moonen distance above this (our own choice: about 22% along some direction)
 #: flags the EKF's linearization as breaking down at that step
 LINEARIZATION_LIMIT = 0.2
@@ -517,10 +522,9 @@ def compare(
         raise ModelError(f"--filters names a filter twice: {','.join(names)}")
     options = dict(options or {})
     for name in options:
-        filter_kind(name)  # an unknown name is a UsageError
-        if name not in names:
-            raise UsageError(f"options given for the {name.upper()}, which is not compared here "
-                             f"(filters: {','.join(names)})")
+        # an unknown kind is a UsageError; a known one that is not compared here (left out by
+        # --filters, or refused by the model) simply does not use its options
+        filter_kind(name).options(**options[name])
     # each kind checks the model and its options; the cost is always that of the float build
     setups = {name: FilterSetup.of(name, precision, **options.get(name, {})) for name in names}
     for setup in setups.values():
@@ -675,19 +679,33 @@ def _trouble(o: FilterOutcome) -> str:
     return "; ".join(parts)
 
 
+def _nearly_consistent(o: FilterOutcome) -> bool:
+    """Consistent, or every statistic inside its bounds at NEARLY_INSIDE of its steps or more.
+    With few runs the fraction inside is noisy, and filters that compute the same estimate (an
+    EKF and a UKF on a linear model) fail or pass together: a narrow miss must not hand the
+    pick to a filter that costs a hundred times more and passed by chance."""
+    if o.consistent:
+        return True
+    stats = [o.stats.nees] + list(o.stats.nis.values())
+    return all(s.verdict == "no data" or s.fraction_inside >= NEARLY_INSIDE for s in stats)
+
+
 def _recommend(outcomes: Dict[str, FilterOutcome], margin: float, budget: Budget,
                lin: Optional[Linearization]) -> Tuple[str, str]:
     """Pick the filter and write every filter's reason; returns (name, overall reason)."""
     _accuracy(outcomes)
     ordered = sorted(outcomes.values(), key=_cost_order)
     fits = [o for o in ordered if not o.budget_misses]
-    good = [o for o in fits if o.consistent and not o.diverged_runs and o.accuracy_ratio <= 1.0 + margin]
+    good = [o for o in fits if _nearly_consistent(o) and not o.diverged_runs and o.accuracy_ratio <= 1.0 + margin]
     limit = f"within {100 * margin:.0f}% of the best RMSE in every state"
     if good:
         pick = good[0]
         head = f"{pick.name.upper()}: the cheapest filter that is consistent, never diverged, {limit}"
         if not budget.empty:
             head += " and fits the budget"
+        if not pick.consistent:
+            head += (f" (it misses the {100 * INSIDE_REQUIRED:.0f}% rule narrowly, which few runs do by chance: "
+                     f"{_inconsistency(pick, lin)})")
     else:
         # nothing meets every condition. Of those that fit, the best-behaved group (consistent
         # first, then without diverged runs); in it the cheapest within the margin, else the
@@ -925,8 +943,7 @@ def budget_from_args(args: argparse.Namespace) -> Budget:
 
 
 def options_from_args(args: argparse.Namespace) -> Dict[str, Dict[str, Any]]:
-    """Each kind's own options from its flags (a flag of a kind that is not compared is refused
-    by :func:`compare`)."""
+    """Each kind's own options from its flags (those of a kind that is not compared go unused)."""
     out: Dict[str, Dict[str, Any]] = {}
     for kind in KINDS.values():
         for flag in kind.Options.FLAGS:
