@@ -53,7 +53,7 @@ from .filters import names as filter_names
 from .model import ModelSpec, as_spec
 from .progress import Progress, wanted
 from .simulate import (INSIDE_REQUIRED, MonteCarloResult, Scenario, StatSummary, make_scenario, pyplot, run_filter,
-                       save_figure, score_run, summarize_runs, write_outputs)
+                       save_figure, score_run, settling_steps, summarize_runs, write_outputs)
 
 __all__ = [
     "Budget",
@@ -294,6 +294,7 @@ class Comparison:
     reason: str
     linearization: Optional[Linearization]
     seconds: float
+    burn_in: int = 0
 
     def to_dict(self) -> Dict[str, Any]:
         """The JSON document (contract section 7 plus per-step detail)."""
@@ -306,6 +307,7 @@ class Comparison:
             "implementation": self.implementation,
             "cost_target": COST_TARGET,
             "margin": self.margin,
+            "burn_in_steps": self.burn_in,
             "budget": self.budget.to_dict(),
             "filters": {k: v.to_dict() for k, v in self.filters.items()},
             "recommended": self.recommended,
@@ -500,6 +502,7 @@ def compare(
     truth_initial: Optional[Tuple[Sequence[float], Any]] = None,
     dt: Optional[float] = None,
     cost_steps: int = COST_STEPS,
+    burn_in: Optional[int] = None,
     progress: Optional[bool] = None,
 ) -> Comparison:
     """Run ``filters`` (default: every filter the model allows) on the same ``runs`` simulated
@@ -511,6 +514,9 @@ def compare(
     the linearization check uses the UKF's). ``truth_initial`` = (x0, P0) draws
     the truth's initial state from N(x0, P0) instead of the filters' initial estimate and
     covariance (as in published set-ups where the estimate starts off the truth).
+    ``burn_in``: steps 1..burn_in are left out of the consistency verdicts, as in ``estgen
+    simulate`` (default: the longest start-up transient, :func:`~estgen.simulate.settling_steps`,
+    of any compared filter's run 0, so every filter is judged over the same steps).
     ``progress``: report on stderr (default: when stderr is a terminal).
     """
     started = time.perf_counter()
@@ -537,6 +543,8 @@ def compare(
         raise ModelError(f"--runs and --steps must be >= 1, got {runs} and {steps}")
     if seed < 0:
         raise ModelError(f"--seed must be >= 0, got {seed}")
+    if burn_in is not None and not 0 <= int(burn_in) < steps:
+        raise ModelError(f"--burn-in must be between 0 and the steps - 1 ({steps - 1}), got {burn_in}")
     if precision not in ("float", "double"):
         raise ModelError(f"unknown precision {precision!r}; use 'float' or 'double'")
     if not (margin >= 0 and math.isfinite(margin)):
@@ -575,10 +583,13 @@ def compare(
             costs[name] = measure_cost(spec, name, _head(scenario0, cost_steps), **options.get(name, {}))
 
     impl = "reference" if use_reference else f"c-{precision}"
+    if burn_in is None:
+        # one judged window for all: the longest start-up transient of any filter's run 0
+        burn_in = max(settling_steps(per[name][0]["run0"]["P"]) for name in names)
     outcomes: Dict[str, FilterOutcome] = {}
     for name in names:
         st = summarize_runs(spec, name, use_reference, precision, runs, steps, seed, scenario0.dt,
-                            spec.param_defaults(), {}, per[name], seconds[name])
+                            spec.param_defaults(), {}, per[name], seconds[name], burn_in)
         sq = np.array([r["sq_err"] for r in per[name]])  # (runs, steps, n)
         with np.errstate(all="ignore"):
             eot = np.sqrt(np.mean(sq, axis=0))
@@ -596,7 +607,8 @@ def compare(
     return Comparison(model=spec.name, runs=runs, steps=steps, seed=seed, dt=scenario0.dt, implementation=impl,
                       margin=margin, budget=budget, states=list(first.states),
                       units=list(first.units), filters=outcomes, recommended=recommended,
-                      reason=reason, linearization=lin, seconds=time.perf_counter() - started)
+                      reason=reason, linearization=lin, seconds=time.perf_counter() - started,
+                      burn_in=int(burn_in))
 
 
 def _nanmean(a: np.ndarray) -> np.ndarray:
@@ -788,7 +800,7 @@ def format_comparison(c: Comparison) -> str:
                      f"{_fmt(100 * ne.fraction_inside, '6.1f')}% {('consistent' if o.consistent else ne.verdict if ne.verdict != 'consistent' else 'NIS out'):>14} "
                      f"{_fmt(100 * nis, '10.1f')}% {o.diverged_runs:>4}/{o.stats.runs:<4} {sum(o.stats.refusals.values()):>8}")
     lines.append(f"  (consistent: NEES and every NIS inside their bounds at {100 * INSIDE_REQUIRED:.0f}% of the "
-                 "steps or more; NIS inside: the worst sensor)")
+                 f"steps after the first {c.burn_in} (start-up) or more; NIS inside: the worst sensor)")
     lines.append("")
     lines.append(f"cost of the float build on the Cortex-M4F (QEMU, {COST_STEPS} replayed steps)")
     lines.append(f"  {'filter':<6} {'instr/step':>11} {'flash B':>9} {'RAM B':>7} {'stack B':>8}  budget")
@@ -892,6 +904,9 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--runs", type=int, default=20, help="Monte Carlo runs (default 20)")
     parser.add_argument("--steps", type=int, default=200, help="steps per run (default 200)")
     parser.add_argument("--seed", type=int, default=0, help="random seed (default 0)")
+    parser.add_argument("--burn-in", type=int, default=None, metavar="N",
+                        help="leave steps 1..N out of the consistency verdicts (default: the longest start-up "
+                             "transient of the compared filters, at most 20%% of the run)")
     parser.add_argument("--precision", choices=("float", "double"), default="float",
                         help="precision of the compiled C under test (default float, the build that ships); "
                              "the cost is always that of the float build")
@@ -961,7 +976,7 @@ def run(args: argparse.Namespace) -> int:
         raise ModelError("--filters: name at least one filter, e.g. --filters ekf,ukf")
     res = compare(args.model, filters, args.runs, args.steps, args.seed, precision=args.precision,
                   use_reference=args.reference, options=options_from_args(args),
-                  margin=args.margin, budget=budget_from_args(args), dt=args.dt,
+                  margin=args.margin, budget=budget_from_args(args), dt=args.dt, burn_in=args.burn_in,
                   progress=True if args.progress else (False if args.quiet else None))
     write_outputs(args, res.to_json, lambda path: plot_comparison(res, path), lambda: format_comparison(res))
     return 0
