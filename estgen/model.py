@@ -970,6 +970,10 @@ class _NoiseTable:
             self._place[s] = (place, what)
         return out
 
+    def where(self, sym: sp.Symbol) -> Where:
+        """The declaration of the spec's noise symbol ``sym``."""
+        return self.decls[self._group[sym][0]].where
+
     def cov(self, syms: Sequence[sp.Symbol]) -> sp.Matrix:
         """The covariance of ``syms`` (zero between symbols of different declarations)."""
         def entry(a: sp.Symbol, b: sp.Symbol) -> sp.Expr:
@@ -1112,6 +1116,9 @@ def validate(model: Model) -> ModelSpec:
         rnum = _numeric(R, subs, f"sensor {sd.name!r} noise", sd.where)
         _check_psd(rnum, f"sensor {sd.name!r} noise R", sd.where, strict=not v_syms)
         Rv = noise.cov(v_syms)
+        if dt in Rv.free_symbols:
+            raise ModelError(f"the noise symbols of sensor {sd.name!r} have a covariance that uses dt, which an update "
+                             f"does not have; give them a covariance of parameters and numbers", noise.where(v_syms[0]))
         reach = [h[i].free_symbols & set(v_syms) for i in range(m)]
         for i in range(m):
             if not reach[i] and rnum[i, i] <= 0.0:

@@ -118,6 +118,7 @@ CASES: Tuple[Tuple[str, Optional[int], Tuple[str, ...], bool], ...] = (
     ("noise_measured_input_unused.py", 6, ("measured input 'fan' is not used in process()", "drop noise="), False),
     ("noise_declared_twice.py", 7, ("noise symbol 'wt' is already declared at line 6", "must be unique"), False),
     ("noise_no_process_noise.py", 4, ("no process noise", "noise symbols in process()"), False),
+    ("noise_sensor_cov_dt.py", 8, ("sensor 'probe' have a covariance that uses dt", "parameters and numbers"), False),
 )
 
 
