@@ -116,6 +116,13 @@ def _scenario_dt(spec: ModelSpec, dt: Optional[float]) -> float:
     return value
 
 
+def initial_from_box(spec: ModelSpec, rng: np.random.Generator) -> np.ndarray:
+    """A true initial state drawn uniformly from the box of ``model.initial_uniform``."""
+    assert spec.prior_box is not None
+    lo, hi = (np.array(b, dtype=float) for b in spec.prior_box)
+    return lo + (hi - lo) * rng.random(spec.n)
+
+
 def make_scenario(
     spec: Any,
     steps: int,
@@ -126,7 +133,7 @@ def make_scenario(
 ) -> Scenario:
     """Simulate ``steps`` steps of the model's truth and its sensors.
 
-    ``x_true[0] ~ N(x0, P0)``; ``x_true[k+1] = f(x_true[k], u_k, w_k, dt) + q``, ``q ~ N(0, Q(dt))``,
+    ``x_true[0] ~ N(x0, P0)`` (uniform over the box of ``initial_uniform``); ``x_true[k+1] = f(x_true[k], u_k, w_k, dt) + q``, ``q ~ N(0, Q(dt))``,
     ``w_k ~ N(0, Qw(dt))`` (the noise symbols of the process); sensor s reports after step k when
     ``(k + 1) % every_s == 0`` with ``z = h(x_true[k+1], v) + r``, ``r ~ N(0, R)``, ``v ~ N(0, Rv)``.
     For a measured input, ``u_k`` is the measured value: the truth moves with ``u_k - w_k``. ``u_k`` is the model's input profile at ``t_k = k dt`` (zeros without one).
@@ -164,7 +171,10 @@ def make_scenario(
     # additive noise lives in the error space (ne; = n without attitudes): x ⊞ q applies an
     # attitude's part through quat.exp, q ⊗ exp(q_att)
     ne = spec.ne
-    x = mf.boxplus(np.array(spec.x0, dtype=float), _noise_factor(np.array(spec.P0)) @ rng.standard_normal(ne))
+    if spec.prior_box is not None:  # initial_uniform: the truth starts anywhere in the box
+        x = initial_from_box(spec, rng)
+    else:
+        x = mf.boxplus(np.array(spec.x0, dtype=float), _noise_factor(np.array(spec.P0)) @ rng.standard_normal(ne))
     x_true = np.empty((steps + 1, n))
     x_true[0] = np.where(angles, wrap_angle(x), x)
     meas: List[List[Tuple[str, np.ndarray]]] = []

@@ -171,7 +171,12 @@ class _Truth:
                    for s in spec.sensors}
         self.angles = np.array(spec.angle_states, dtype=bool)
         self.k = 0
-        x = np.array(spec.x0, dtype=float) + _noise_factor(np.array(spec.P0, dtype=float)) @ self.rng.standard_normal(spec.n)
+        if spec.prior_box is not None:
+            from .simulate import initial_from_box
+
+            x = initial_from_box(spec, self.rng)
+        else:
+            x = np.array(spec.x0, dtype=float) + _noise_factor(np.array(spec.P0, dtype=float)) @ self.rng.standard_normal(spec.n)
         self.x = np.where(self.angles, wrap_angle(x), x)
 
     def inputs(self, t: float) -> List[float]:

@@ -413,13 +413,20 @@ def test_gate_rejects_outliers_and_passes_normal_measurements(config):
             # an innovation with NIS = scale * threshold exactly: z = h(x) + L v, v'v = NIS
             z = hx + L @ (direction * math.sqrt(scale * thr))
             before = c.raw_state()
+            x_before, P_before = c.x, c.P
             st = checked(c, lambda: c.update(s.name, z))
             assert st == expected, (s.name, scale, Status(st).name)
             assert c.nis == pytest.approx(scale * thr, rel=0.05), (s.name, scale)
             if expected == GATED:
                 assert c.raw_state() == before
-            else:
-                assert c.raw_state() != before
+            elif c.raw_state() == before:
+                # accepted without a change: only where the correction is below the C's rounding
+                # (pier_tag's beacon is flat far from the pier line: its Jacobian is ~1e-7 there)
+                r = estgen.reference(spec, filt)
+                r.set_state(x_before, P_before)
+                r.update(s.name, z)
+                ulp = np.spacing(np.abs(x_before).astype(np.float32 if prec == "float" else np.float64))
+                assert np.all(np.abs(r.x - x_before) < ulp), (s.name, r.x - x_before)
             hx, L = _innovation_factor(c, spec, s.name, filt)
 
 
