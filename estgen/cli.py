@@ -99,7 +99,7 @@ def _cmd_verify(args: argparse.Namespace) -> int:
     from .progress import wanted
 
     res = verify(args.model, steps=args.steps, seed=args.seed, dt=args.dt, progress=wanted(args.quiet, args.progress),
-                 **FilterSetup.from_args(args).kwargs())
+                 **FilterSetup.from_args(args).kwargs(runtime=False))
     text = format_result(res)
     print(text.splitlines()[-1].strip() if args.quiet else text)
     if args.json:

@@ -76,7 +76,7 @@ def run(args: argparse.Namespace) -> int:
 
     try:
         rep = make_report(args.model, target=args.target, steps=args.steps, seed=args.seed,
-                          progress=wanted(args.quiet, args.progress), **FilterSetup.from_args(args).kwargs())
+                          progress=wanted(args.quiet, args.progress), **FilterSetup.from_args(args).kwargs(runtime=False))
     except ModelError as err:
         print(f"estgen: {err}", file=sys.stderr)
         return 2

@@ -842,7 +842,7 @@ def run(args: argparse.Namespace) -> int:
         dt=args.dt,
         workers=args.workers,
         progress=True if getattr(args, "progress", False) else (None if not args.quiet else False),
-        **FilterSetup.from_args(args).kwargs(),
+        **FilterSetup.from_args(args).kwargs(runtime=False),
         burn_in=args.burn_in,
     )
     write_outputs(args, res.to_json, lambda path: plot_result(res, path), lambda: format_summary(res))

@@ -426,7 +426,7 @@ def run(args: argparse.Namespace) -> int:
             print(f"\r  {done}/{total} steps, {el:.0f} s", end="", file=sys.stderr, flush=True)
 
     res = soak(spec, steps=args.steps, seed=args.seed, dt=args.dt, profile=args.profile, period=args.period,
-               progress=show, **FilterSetup.from_args(args).kwargs())
+               progress=show, **FilterSetup.from_args(args).kwargs(runtime=False))
     if not args.quiet:
         print(file=sys.stderr)
     print(format_result(res))

@@ -110,11 +110,16 @@ class FilterSetup:
         """The numpy reference filter for ``model``."""
         return self.kind.reference(self.spec(model), self.options, params=params, functions=functions)
 
-    def kwargs(self) -> Dict[str, Any]:
+    def kwargs(self, runtime: bool = True) -> Dict[str, Any]:
         """The keyword form (``filter=``, ``precision=``, ``gates=``, ``commit_check=`` and the
-        kind's options) that the Python API functions take."""
+        kind's options) that the Python API functions take. ``runtime=False`` leaves out the
+        run-time fields (the particle filter's seed): the commands pass their own ``--seed``,
+        which then seeds the filter's generator too."""
+        opts = self.options.as_dict()
+        if not runtime:
+            opts = {k: v for k, v in opts.items() if k not in self.options.runtime()}
         return {"filter": self.kind.name, "precision": self.common.precision, "gates": self.common.gate_map,
-                "commit_check": self.common.commit_check, "optimize": self.common.optimize, **self.options.as_dict()}
+                "commit_check": self.common.commit_check, "optimize": self.common.optimize, **opts}
 
 
 def generate(spec: Any, filter: str = "ekf", precision: str = "float", gates: Optional[Mapping[str, float]] = None,

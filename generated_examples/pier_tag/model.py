@@ -31,7 +31,7 @@ model.process_noise(q_acc * sp.Matrix([
 
 # the pier anchors at (-15, 0) and (15, 0)
 model.sensor("pier", [sp.sqrt((px + 15) ** 2 + py ** 2), sp.sqrt((px - 15) ** 2 + py ** 2)],
-             noise=[0.5 ** 2, 0.5 ** 2], units="m")
+             noise=[0.5 ** 2, 0.5 ** 2], units="m m")
 # the signal strength of a beacon at the basin end, normalized: the pier's steel piles shadow it,
 # so it reads about +1 on the basin side (py > 0), -1 on the far side, with a smooth step of a few
 # metres across the pier line

@@ -25,7 +25,7 @@ static size_t pier_tag_ekf_pk(size_t i, size_t j)
 
 /* OK when the packed covariance P is positive definite (every pivot of its Cholesky factorization
    finite and > 0; a positive diagonal is not enough), else the refusal code. Unrolled; one copy
-   serves set_state and every commit. */
+   serves set_state and every commit that factorizes. A non-finite entry always reaches a pivot. */
 static int pier_tag_ekf_commit_pd(const double *P)
 {
     const double Lcd0 = P[0];
@@ -145,7 +145,7 @@ int pier_tag_ekf_predict(pier_tag_ekf_t *s, const double *u, double dt)
     Pn[7] = P[7] + t2;
     Pn[8] = P[8];
     Pn[9] = P[9] + t2;
-    if (!pier_tag_ekf_finite(xn, 4u) || !pier_tag_ekf_finite(Pn, 10u)) {
+    if (!pier_tag_ekf_finite(xn, 4u)) {
         return PIER_TAG_EKF_NON_FINITE;
     }
     {
@@ -160,7 +160,7 @@ int pier_tag_ekf_predict(pier_tag_ekf_t *s, const double *u, double dt)
     return PIER_TAG_EKF_OK;
 }
 
-/* Sensor pier (2 components): sequential scalar updates (diagonal R), Joseph form. */
+/* Sensor pier (2 components): sequential scalar updates (diagonal R), standard form P - K W'. */
 int pier_tag_ekf_update_pier_nis(pier_tag_ekf_t *s, const double *z, double *nis_out)
 {
     double xs[4];
@@ -168,7 +168,6 @@ int pier_tag_ekf_update_pier_nis(pier_tag_ekf_t *s, const double *z, double *nis
     double y[2];
     double W[4];
     double K[4];
-    double V[4];
     double nis = 0.0;
     const double *x = s->x;
     if (z == NULL || !pier_tag_ekf_finite(z, 2u)) {
@@ -208,24 +207,20 @@ int pier_tag_ekf_update_pier_nis(pier_tag_ekf_t *s, const double *z, double *nis
     K[1] = W[1]*is0;
     K[2] = W[2]*is0;
     K[3] = W[3]*is0;
-    V[0] = -W[0] + K[0]*s0;
-    V[1] = -W[1] + K[1]*s0;
-    V[2] = -W[2] + K[2]*s0;
-    V[3] = -W[3] + K[3]*s0;
     xs[pier_tag_ekf_ix_px] = xs[pier_tag_ekf_ix_px] + K[0]*r0;
     xs[pier_tag_ekf_ix_py] = xs[pier_tag_ekf_ix_py] + K[1]*r0;
     xs[pier_tag_ekf_ix_vx] = xs[pier_tag_ekf_ix_vx] + K[2]*r0;
     xs[pier_tag_ekf_ix_vy] = xs[pier_tag_ekf_ix_vy] + K[3]*r0;
-    Ps[0] = Ps[0] + K[0]*V[0] - K[0]*W[0];
-    Ps[1] = Ps[1] + K[0]*V[1] - K[1]*W[0];
-    Ps[2] = Ps[2] + K[0]*V[2] - K[2]*W[0];
-    Ps[3] = Ps[3] + K[0]*V[3] - K[3]*W[0];
-    Ps[4] = Ps[4] + K[1]*V[1] - K[1]*W[1];
-    Ps[5] = Ps[5] + K[1]*V[2] - K[2]*W[1];
-    Ps[6] = Ps[6] + K[1]*V[3] - K[3]*W[1];
-    Ps[7] = Ps[7] + K[2]*V[2] - K[2]*W[2];
-    Ps[8] = Ps[8] + K[2]*V[3] - K[3]*W[2];
-    Ps[9] = Ps[9] + K[3]*V[3] - K[3]*W[3];
+    Ps[0] = Ps[0] - K[0]*W[0];
+    Ps[1] = Ps[1] - K[0]*W[1];
+    Ps[2] = Ps[2] - K[0]*W[2];
+    Ps[3] = Ps[3] - K[0]*W[3];
+    Ps[4] = Ps[4] - K[1]*W[1];
+    Ps[5] = Ps[5] - K[1]*W[2];
+    Ps[6] = Ps[6] - K[1]*W[3];
+    Ps[7] = Ps[7] - K[2]*W[2];
+    Ps[8] = Ps[8] - K[2]*W[3];
+    Ps[9] = Ps[9] - K[3]*W[3];
     /* component z[1] of pier: W = P H_1', s = H_1 W + R_11, K = W / s, x += K r, Joseph-form P */
     W[0] = H1_0*Ps[0] + H1_1*Ps[1];
     W[1] = H1_0*Ps[1] + H1_1*Ps[4];
@@ -241,25 +236,21 @@ int pier_tag_ekf_update_pier_nis(pier_tag_ekf_t *s, const double *z, double *nis
     K[1] = W[1]*is1;
     K[2] = W[2]*is1;
     K[3] = W[3]*is1;
-    V[0] = -W[0] + K[0]*s1;
-    V[1] = -W[1] + K[1]*s1;
-    V[2] = -W[2] + K[2]*s1;
-    V[3] = -W[3] + K[3]*s1;
     xs[pier_tag_ekf_ix_px] = xs[pier_tag_ekf_ix_px] + K[0]*r1;
     xs[pier_tag_ekf_ix_py] = xs[pier_tag_ekf_ix_py] + K[1]*r1;
     xs[pier_tag_ekf_ix_vx] = xs[pier_tag_ekf_ix_vx] + K[2]*r1;
     xs[pier_tag_ekf_ix_vy] = xs[pier_tag_ekf_ix_vy] + K[3]*r1;
-    Ps[0] = Ps[0] + K[0]*V[0] - K[0]*W[0];
-    Ps[1] = Ps[1] + K[0]*V[1] - K[1]*W[0];
-    Ps[2] = Ps[2] + K[0]*V[2] - K[2]*W[0];
-    Ps[3] = Ps[3] + K[0]*V[3] - K[3]*W[0];
-    Ps[4] = Ps[4] + K[1]*V[1] - K[1]*W[1];
-    Ps[5] = Ps[5] + K[1]*V[2] - K[2]*W[1];
-    Ps[6] = Ps[6] + K[1]*V[3] - K[3]*W[1];
-    Ps[7] = Ps[7] + K[2]*V[2] - K[2]*W[2];
-    Ps[8] = Ps[8] + K[2]*V[3] - K[3]*W[2];
-    Ps[9] = Ps[9] + K[3]*V[3] - K[3]*W[3];
-    if (!pier_tag_ekf_finite(xs, 4u) || !pier_tag_ekf_finite(Ps, 10u)) {
+    Ps[0] = Ps[0] - K[0]*W[0];
+    Ps[1] = Ps[1] - K[0]*W[1];
+    Ps[2] = Ps[2] - K[0]*W[2];
+    Ps[3] = Ps[3] - K[0]*W[3];
+    Ps[4] = Ps[4] - K[1]*W[1];
+    Ps[5] = Ps[5] - K[1]*W[2];
+    Ps[6] = Ps[6] - K[1]*W[3];
+    Ps[7] = Ps[7] - K[2]*W[2];
+    Ps[8] = Ps[8] - K[2]*W[3];
+    Ps[9] = Ps[9] - K[3]*W[3];
+    if (!pier_tag_ekf_finite(xs, 4u)) {
         return PIER_TAG_EKF_NON_FINITE;
     }
     {
@@ -286,7 +277,7 @@ int pier_tag_ekf_update_pier(pier_tag_ekf_t *s, const double *z)
 }
 
 
-/* Sensor shadow (1 component): sequential scalar updates (diagonal R), Joseph form. */
+/* Sensor shadow (1 component): sequential scalar updates (diagonal R), standard form P - K W'. */
 int pier_tag_ekf_update_shadow_nis(pier_tag_ekf_t *s, const double *z, double *nis_out)
 {
     double xs[4];
@@ -294,7 +285,6 @@ int pier_tag_ekf_update_shadow_nis(pier_tag_ekf_t *s, const double *z, double *n
     double y[1];
     double W[4];
     double K[4];
-    double V[4];
     double nis = 0.0;
     const double *x = s->x;
     if (z == NULL || !pier_tag_ekf_finite(z, 1u)) {
@@ -324,25 +314,21 @@ int pier_tag_ekf_update_shadow_nis(pier_tag_ekf_t *s, const double *z, double *n
     K[1] = W[1]*is0;
     K[2] = W[2]*is0;
     K[3] = W[3]*is0;
-    V[0] = -W[0] + K[0]*s0;
-    V[1] = -W[1] + K[1]*s0;
-    V[2] = -W[2] + K[2]*s0;
-    V[3] = -W[3] + K[3]*s0;
     xs[pier_tag_ekf_ix_px] = xs[pier_tag_ekf_ix_px] + K[0]*r0;
     xs[pier_tag_ekf_ix_py] = xs[pier_tag_ekf_ix_py] + K[1]*r0;
     xs[pier_tag_ekf_ix_vx] = xs[pier_tag_ekf_ix_vx] + K[2]*r0;
     xs[pier_tag_ekf_ix_vy] = xs[pier_tag_ekf_ix_vy] + K[3]*r0;
-    Ps[0] = Ps[0] + K[0]*V[0] - K[0]*W[0];
-    Ps[1] = Ps[1] + K[0]*V[1] - K[1]*W[0];
-    Ps[2] = Ps[2] + K[0]*V[2] - K[2]*W[0];
-    Ps[3] = Ps[3] + K[0]*V[3] - K[3]*W[0];
-    Ps[4] = Ps[4] + K[1]*V[1] - K[1]*W[1];
-    Ps[5] = Ps[5] + K[1]*V[2] - K[2]*W[1];
-    Ps[6] = Ps[6] + K[1]*V[3] - K[3]*W[1];
-    Ps[7] = Ps[7] + K[2]*V[2] - K[2]*W[2];
-    Ps[8] = Ps[8] + K[2]*V[3] - K[3]*W[2];
-    Ps[9] = Ps[9] + K[3]*V[3] - K[3]*W[3];
-    if (!pier_tag_ekf_finite(xs, 4u) || !pier_tag_ekf_finite(Ps, 10u)) {
+    Ps[0] = Ps[0] - K[0]*W[0];
+    Ps[1] = Ps[1] - K[0]*W[1];
+    Ps[2] = Ps[2] - K[0]*W[2];
+    Ps[3] = Ps[3] - K[0]*W[3];
+    Ps[4] = Ps[4] - K[1]*W[1];
+    Ps[5] = Ps[5] - K[1]*W[2];
+    Ps[6] = Ps[6] - K[1]*W[3];
+    Ps[7] = Ps[7] - K[2]*W[2];
+    Ps[8] = Ps[8] - K[2]*W[3];
+    Ps[9] = Ps[9] - K[3]*W[3];
+    if (!pier_tag_ekf_finite(xs, 4u)) {
         return PIER_TAG_EKF_NON_FINITE;
     }
     {

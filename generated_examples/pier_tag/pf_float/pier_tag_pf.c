@@ -33,7 +33,7 @@ static size_t pier_tag_pf_pk(size_t i, size_t j)
 
 /* OK when the packed covariance P is positive definite (every pivot of its Cholesky factorization
    finite and > 0; a positive diagonal is not enough), else the refusal code. Unrolled; one copy
-   serves set_state and every commit. */
+   serves set_state and every commit that factorizes. A non-finite entry always reaches a pivot. */
 static int pier_tag_pf_commit_pd(const float *P)
 {
     const float Lcd0 = P[0];

@@ -31,7 +31,7 @@ static size_t pier_tag_ukf_pk(size_t i, size_t j)
 
 /* OK when the packed covariance P is positive definite (every pivot of its Cholesky factorization
    finite and > 0; a positive diagonal is not enough), else the refusal code. Unrolled; one copy
-   serves set_state and every commit. */
+   serves set_state and every commit that factorizes. A non-finite entry always reaches a pivot. */
 static int pier_tag_ukf_commit_pd(const double *P)
 {
     const double Lcd0 = P[0];
@@ -204,15 +204,16 @@ int pier_tag_ukf_predict(pier_tag_ukf_t *s, const double *u, double dt)
     Pn[7] = P[7] + ft2;
     Pn[8] = P[8];
     Pn[9] = P[9] + ft2;
-    if (!pier_tag_ukf_finite(xn, 4u) || !pier_tag_ukf_finite(Pn, 10u)) {
+    if (!pier_tag_ukf_finite(xn, 4u)) {
         return PIER_TAG_UKF_NON_FINITE;
     }
     {
-        const int st = pier_tag_ukf_commit_pd(Pn);
+        const int st = pier_tag_ukf_commit_pd(Pn);  /* the commit check on the new P */
         if (st != PIER_TAG_UKF_OK) {
             return st;
         }
     }
+
     memcpy(s->x, xn, sizeof xn);
     memcpy(s->P, Pn, sizeof Pn);
     return PIER_TAG_UKF_OK;
@@ -353,15 +354,16 @@ int pier_tag_ukf_update_pier_nis(pier_tag_ukf_t *s, const double *z, double *nis
     if (nis_out != NULL) {
         *nis_out = nis;
     }
-    if (!pier_tag_ukf_finite(xs, 4u) || !pier_tag_ukf_finite(Ps, 10u)) {
+    if (!pier_tag_ukf_finite(xs, 4u)) {
         return PIER_TAG_UKF_NON_FINITE;
     }
     {
-        const int st = pier_tag_ukf_commit_pd(Ps);
+        const int st = pier_tag_ukf_commit_pd(Ps);  /* the commit check on the new P */
         if (st != PIER_TAG_UKF_OK) {
             return st;
         }
     }
+
     memcpy(s->x, xs, sizeof xs);
     memcpy(s->P, Ps, sizeof Ps);
     return PIER_TAG_UKF_OK;
@@ -482,15 +484,16 @@ int pier_tag_ukf_update_shadow_nis(pier_tag_ukf_t *s, const double *z, double *n
     if (nis_out != NULL) {
         *nis_out = nis;
     }
-    if (!pier_tag_ukf_finite(xs, 4u) || !pier_tag_ukf_finite(Ps, 10u)) {
+    if (!pier_tag_ukf_finite(xs, 4u)) {
         return PIER_TAG_UKF_NON_FINITE;
     }
     {
-        const int st = pier_tag_ukf_commit_pd(Ps);
+        const int st = pier_tag_ukf_commit_pd(Ps);  /* the commit check on the new P */
         if (st != PIER_TAG_UKF_OK) {
             return st;
         }
     }
+
     memcpy(s->x, xs, sizeof xs);
     memcpy(s->P, Ps, sizeof Ps);
     return PIER_TAG_UKF_OK;
