@@ -104,6 +104,10 @@ def _sandbox(tmp: Path) -> Path:
         dst.parent.mkdir(parents=True, exist_ok=True)
         shutil.copy(src, dst)
     shutil.copy(os.path.join(EXAMPLES_DIR, "cmake_firmware", "motor_constants.py"), tmp)
+    # the repository's examples and CI script, read-only, as a fresh clone has them
+    os.symlink(EXAMPLES_DIR, tmp / "generated_examples")
+    (tmp / ".ci").mkdir()
+    shutil.copy(os.path.join(ROOT, ".ci", "run"), tmp / ".ci" / "run")
     (tmp / "tank.py").write_text(TANK)
     (tmp / "tank_consts.py").write_text("AREA = 0.25\n")
     (tmp / "tankline.py").write_text(TANKLINE)
@@ -121,9 +125,20 @@ PROGRAM = {"gcc": "gcc", "gcc-arm-none-eabi": "arm-none-eabi-gcc", "qemu-system-
            "libnewlib-arm-none-eabi": None, "binutils-arm-none-eabi": "arm-none-eabi-nm"}
 
 
+#: shortened runs: the same commands with fewer Monte Carlo runs and steps (the pages show the
+#: full-length ones; here they only have to run)
+SHORTER = [(re.compile(r"--runs \d+"), "--runs 4"), (re.compile(r"--steps \d{4,}"), "--steps 300")]
+
+
 def _shell(code: str) -> str:
     out = []
     for line in code.splitlines():
+        for rx, repl in SHORTER:
+            line = rx.sub(repl, line)
+        if line.strip() == "python -m pytest -q":
+            # the suite itself (this test is part of it): check that CI runs this very command
+            out.append("grep -q -- '-m pytest -q' .ci/run")
+            continue
         m = _INSTALL.match(line.split("#", 1)[0].rstrip())
         if m:
             progs = [PROGRAM.get(p, p) for p in m.group("pkgs").split() if not p.startswith("-")]
@@ -150,8 +165,12 @@ def _c(code: str, folder: Path, where: str) -> None:
     path = folder / "snippet.c"
     path.write_text(src)
     objs = [str(folder / "cgen" / f"{p}_{f}.c") for p, f in inc]
+    # a program is compiled and linked; functions without a main only compiled
+    link = ["-o", str(folder / "snippet")] if re.search(r"\bint main\(", src) else ["-c", "-o", str(folder / "snippet.o")]
+    if "-c" in link:
+        objs = []
     proc = subprocess.run([cc, *STRICT, "-Wno-unused-variable", "-Wno-unused-but-set-variable", "-I", str(folder / "cgen"),
-                           str(path), *objs, "-lm", "-o", str(folder / "snippet")], capture_output=True, text=True)
+                           str(path), *objs, "-lm", *link], capture_output=True, text=True)
     assert proc.returncode == 0, f"{where}: the C snippet does not compile:\n{src}\n{proc.stderr}"
 
 
