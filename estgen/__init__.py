@@ -6,6 +6,7 @@ The public interface::
     m = estgen.load_model("model.py")                 # validated ModelSpec
     c = estgen.build(m, filter="ekf")                 # the generated C (float) through cffi
     r = estgen.reference(m, filter="ekf")               # the numpy reference filter
+    g = estgen.generate(m, filter="ekf")                # the C text: g.files {name: text}
 """
 
 from __future__ import annotations
@@ -38,6 +39,7 @@ __all__ = [
     "validate",
     "build",
     "reference",
+    "generate",
     "__version__",
 ]
 
@@ -51,3 +53,11 @@ def build(model: Any, filter: str = "ekf", precision: str = "float", **options: 
 def reference(model: Any, filter: str = "ekf", **options: Any) -> Any:
     """The plain numpy reference filter for ``model``. See :func:`estgen.filters.reference`."""
     return _filters.reference(model, filter=filter, **options)
+
+
+def generate(model: Any, filter: str = "ekf", precision: str = "float", **options: Any) -> Any:
+    """The generated C for ``model`` (what ``estgen generate`` writes), without writing it: a
+    :class:`~estgen.emit.Generated` whose ``files`` maps each file name to its text. Options as
+    for the command (``gates``, ``commit_check``, the kind's own). See
+    :func:`estgen.filters.generate`."""
+    return _filters.generate(model, filter=filter, precision=precision, **options)
