@@ -37,6 +37,8 @@ import dataclasses
 import hashlib
 import json
 import math
+import multiprocessing
+import os
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -503,6 +505,7 @@ def compare(
     dt: Optional[float] = None,
     cost_steps: int = COST_STEPS,
     burn_in: Optional[int] = None,
+    workers: Optional[int] = None,
     progress: Optional[bool] = None,
 ) -> Comparison:
     """Run ``filters`` (default: every filter the model allows) on the same ``runs`` simulated
@@ -517,6 +520,7 @@ def compare(
     ``burn_in``: steps 1..burn_in are left out of the consistency verdicts, as in ``estgen
     simulate`` (default: the longest start-up transient, :func:`~estgen.simulate.settling_steps`,
     of any compared filter's run 0, so every filter is judged over the same steps).
+    Runs are spread over ``workers`` processes (default: all cores; 1 runs in this process).
     ``progress``: report on stderr (default: when stderr is a terminal).
     """
     started = time.perf_counter()
@@ -558,25 +562,35 @@ def compare(
     seconds = {name: 0.0 for name in names}
     lin_pred: List[np.ndarray] = []
     lin_step: List[np.ndarray] = []
-    scenario0: Optional[Scenario] = None
+    results: List[Optional[Dict[str, Any]]] = [None] * runs
+    _CTX.clear()
+    _CTX.update(spec=spec, truth=truth, steps=steps, seed=seed, dt=dt, names=names, factories=factories,
+                unscented=unscented)
+    nworkers = min(runs, int(workers) if workers else (os.cpu_count() or 1))
     with Progress("compare", runs + len(names), show) as prog:
-        for r in range(runs):
-            prog.step(f"run {r + 1} of {runs}")
-            sc = make_scenario(truth, steps, seed=[seed, r], dt=dt)
-            if r == 0:
-                scenario0 = sc
+        try:
+            if nworkers <= 1 or "fork" not in multiprocessing.get_all_start_methods():
+                for r in range(runs):
+                    prog.step(f"run {r + 1} of {runs}")
+                    results[r] = _one_run(r)[1]
+            else:
+                # forked workers inherit the compiled filters; each run is independent, so the
+                # result does not depend on the number of workers
+                with multiprocessing.get_context("fork").Pool(nworkers) as pool:
+                    for done, (r, res) in enumerate(pool.imap_unordered(_one_run, range(runs)), start=1):
+                        prog.step(f"{done} of {runs} runs")
+                        results[r] = res
+        finally:
+            _CTX.clear()
+        for res in results:
+            assert res is not None
             for name in names:
-                t0 = time.perf_counter()
-                out = run_filter(factories[name](_run_seed(seed, r)), sc)
-                res = score_run(spec, sc, out, keep_run=(r == 0))
-                res["diverged"] = _diverged(res, out, spec.ne)  # NEES dof: the error dimension
-                per[name].append(res)
-                seconds[name] += time.perf_counter() - t0
-                if name == "ekf" and r < LINEARIZATION_RUNS:
-                    lp, ls = _linearization_run(spec, sc, out, unscented)
-                    lin_pred.append(lp)
-                    lin_step.append(ls)
-        assert scenario0 is not None
+                per[name].append(res["filters"][name])
+                seconds[name] += res["seconds"][name]
+            if res["lin"] is not None:
+                lin_pred.append(res["lin"][0])
+                lin_step.append(res["lin"][1])
+        scenario0 = make_scenario(truth, steps, seed=[seed, 0], dt=dt)  # run 0's again, for the replay
         costs: Dict[str, Dict[str, int]] = {}
         for name in names:
             prog.step(f"cost of the {name.upper()} on the emulated Cortex-M4F")
@@ -609,6 +623,29 @@ def compare(
                       units=list(first.units), filters=outcomes, recommended=recommended,
                       reason=reason, linearization=lin, seconds=time.perf_counter() - started,
                       burn_in=int(burn_in))
+
+
+# The context of the runs: set before the pool forks, so nothing unpicklable (compiled filters,
+# sympy expressions, the model's input profile) has to be sent to a worker.
+_CTX: Dict[str, Any] = {}
+
+
+def _one_run(r: int) -> Tuple[int, Dict[str, Any]]:
+    """Run ``r``: one scenario, every filter through it, and the linearization check."""
+    ctx = _CTX
+    spec: ModelSpec = ctx["spec"]
+    sc = make_scenario(ctx["truth"], ctx["steps"], seed=[ctx["seed"], r], dt=ctx["dt"])
+    done: Dict[str, Any] = {"filters": {}, "seconds": {}, "lin": None}
+    for name in ctx["names"]:
+        t0 = time.perf_counter()
+        out = run_filter(ctx["factories"][name](_run_seed(ctx["seed"], r)), sc)
+        res = score_run(spec, sc, out, keep_run=(r == 0))
+        res["diverged"] = _diverged(res, out, spec.ne)  # NEES dof: the error dimension
+        done["filters"][name] = res
+        done["seconds"][name] = time.perf_counter() - t0
+        if name == "ekf" and r < LINEARIZATION_RUNS:
+            done["lin"] = _linearization_run(spec, sc, out, ctx["unscented"])
+    return r, done
 
 
 def _nanmean(a: np.ndarray) -> np.ndarray:
@@ -926,6 +963,7 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="cycles per instruction assumed against the cycle budget (default 1, the M4's best case)")
     parser.add_argument("--flash-kb", type=float, default=None, help="flash the filter may take, KiB")
     parser.add_argument("--ram-kb", type=float, default=None, help="RAM the filter may take (struct + stack), KiB")
+    parser.add_argument("--workers", type=int, default=None, help="processes for the runs (default: all cores)")
     parser.add_argument("--json", metavar="FILE", default=None, help="write the comparison as JSON")
     parser.add_argument("--plot", metavar="FILE.png", default=None, help="write a plot (needs matplotlib)")
     parser.add_argument("-q", "--quiet", action="store_true", help="print nothing but errors")
@@ -977,6 +1015,7 @@ def run(args: argparse.Namespace) -> int:
     res = compare(args.model, filters, args.runs, args.steps, args.seed, precision=args.precision,
                   use_reference=args.reference, options=options_from_args(args),
                   margin=args.margin, budget=budget_from_args(args), dt=args.dt, burn_in=args.burn_in,
+                  workers=args.workers,
                   progress=True if args.progress else (False if args.quiet else None))
     write_outputs(args, res.to_json, lambda path: plot_comparison(res, path), lambda: format_comparison(res))
     return 0

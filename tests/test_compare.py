@@ -62,6 +62,14 @@ def test_filters_see_the_same_truths_as_simulate() -> None:
         assert got.rmse == alone.rmse
         np.testing.assert_array_equal(got.nees.per_step, alone.nees.per_step)
         np.testing.assert_array_equal(got.run0["x_true"], alone.run0["x_true"])
+    # runs spread over processes give the same figures as one process (common practice: each
+    # run draws from its own seed)
+    two = compare(spec, ["ekf", "ukf"], runs=4, steps=40, seed=5, workers=2, progress=False)
+    one = compare(spec, ["ekf", "ukf"], runs=4, steps=40, seed=5, workers=1, progress=False)
+    for name in ("ekf", "ukf"):
+        assert two.filters[name].stats.rmse == one.filters[name].stats.rmse
+        np.testing.assert_array_equal(two.filters[name].error_over_time, one.filters[name].error_over_time)
+    np.testing.assert_array_equal(two.linearization.step, one.linearization.step)
 
 
 def test_linear_gaussian_model_ekf_and_ukf_tie_and_the_cheapest_wins() -> None:
