@@ -26,8 +26,10 @@ def row(example: str, filt: str) -> str:
     model = os.path.join(ROOT, "generated_examples", example, "model.py")
     with tempfile.TemporaryDirectory() as tmp:
         out = os.path.join(tmp, "r.json")
+        extra = [a for k, v in regenerate.OPTIONS.get((example, filt), {}).items()
+                 for a in (f"--{k.replace('_', '-')}", str(v))]  # the committed configuration's options
         subprocess.run([sys.executable, "-m", "estgen", "report", model, "--filter", filt, "--precision", "float",
-                        "--target", "cortex-m4f", "--json", out], check=True, capture_output=True, cwd=ROOT)
+                        "--target", "cortex-m4f", "--json", out, *extra], check=True, capture_output=True, cwd=ROOT)
         d = json.load(open(out))
     pub = [f for f in d["functions"] if f.endswith("_predict") or ("_update_" in f and not f.endswith("_nis"))]
     qemu = d["instructions"].get("qemu-cortex-m4f", {})
