@@ -27,6 +27,9 @@ STEPS = 20000
 #: open-circuit-voltage curve's domain; the mirrored profile charges and discharges in turn
 PROFILE = {"battery_soc": "mirror"}
 FLOAT_CONFIGS = [c for c in CONFIGS if c[2] == "float"]
+#: examples whose Kalman filters are inconsistent on purpose: pier_tag's mirror ambiguity puts the
+#: EKF and UKF on the wrong side in some runs (its README; the particle filter's example)
+INCONSISTENT_BY_DESIGN = {"pier_tag"}
 FLOAT_IDS = ["-".join(c) for c in FLOAT_CONFIGS]
 
 
@@ -44,7 +47,8 @@ def test_short_soak_keeps_x_finite_and_p_positive_definite(config):
         assert sum(res.update_status[s.name].values()) == STEPS // s.every
     # consistency, loosely (a factor of two either way of n over the run; common practice for a
     # smoke test, the Monte Carlo test in estgen simulate is the real one)
-    assert 0.5 * spec.n < res.mean_nees < 2.0 * spec.n, res.mean_nees
+    if ex not in INCONSISTENT_BY_DESIGN:
+        assert 0.5 * spec.n < res.mean_nees < 2.0 * spec.n, res.mean_nees
 
 
 def test_soak_reports_a_truth_that_leaves_the_model_domain():
