@@ -80,3 +80,31 @@ def test_float_replay_on_m4f_is_a_realization_of_the_reference(rover, tmp_path: 
     assert np.all(np.isfinite(res.x))
     assert np.all(dev <= 1.5 * spread), (dev, spread)
     assert res.predict.calls == 60
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("precision", ["float", "double"])
+def test_sanitized_host_replay(tmp_path: Path, precision: str) -> None:
+    # the particle loops, the in-place resampling and roughening under AddressSanitizer and
+    # UndefinedBehaviorSanitizer (GCC manual, -fsanitize=address,undefined): a replay that
+    # resamples at almost every update (threshold 0.99) and roughens, with an angle state
+    import subprocess
+
+    spec = estgen.load_model(example_model("beacon_rover"))
+    gen = tmp_path / "gen"
+    cross.generate(example_model("beacon_rover"), "pf", precision, gen, particles=40, resample_threshold=0.99,
+                   roughening=0.2)
+    scen = make_scenario(spec, 80, SEED)
+    cross.write_replay(spec, "pf", precision, scen, gen)
+    exe = cross.build_host_replay(gen, spec.name, "pf", tmp_path / "build",
+                                  extra_cflags="-fsanitize=address,undefined -fno-sanitize-recover=all "
+                                               "-fno-omit-frame-pointer")
+    proc = subprocess.run([str(exe)], capture_output=True, text=True, timeout=120)
+    assert proc.returncode == 0, proc.stderr
+    assert "runtime error" not in proc.stderr and "AddressSanitizer" not in proc.stderr, proc.stderr
+    res = cross.parse_replay_output(proc.stdout, precision)
+    assert np.all(np.isfinite(res.x))
+    if precision == "double":  # the host's libm: the same numbers as the reference
+        x_ref, _, _ = cross.reference_replay(spec, "pf", "double", scen, particles=40, resample_threshold=0.99,
+                                             roughening=0.2)
+        assert np.allclose(res.x, x_ref, rtol=1e-9, atol=1e-9)
