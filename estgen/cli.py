@@ -86,9 +86,14 @@ def _cmd_generate(args: argparse.Namespace) -> int:
     if not args.quiet:
         for name in sorted(gen.files):
             print(os.path.join(args.out, name))
-        ops = gen.ops.get("predict", {})
-        print(f"{gen.prefix}: {gen.lines_of_c} lines of C, struct {gen.struct_bytes} bytes, "
-              f"predict {ops.get('add', 0)} add {ops.get('mul', 0)} mul {ops.get('div', 0)} div, "
+        if "predict" in gen.ops:
+            ops = gen.ops["predict"]
+            cost = f"predict {ops.get('add', 0)} add {ops.get('mul', 0)} mul {ops.get('div', 0)} div"
+        else:  # the particle filter: its cost is per particle (f once per particle and predict)
+            ops = gen.ops.get("f", {})
+            cost = (f"{getattr(gen, 'particles', '?')} particles, f {ops.get('add', 0)} add {ops.get('mul', 0)} mul "
+                    f"{ops.get('div', 0)} div per particle")
+        print(f"{gen.prefix}: {gen.lines_of_c} lines of C, struct {gen.struct_bytes} bytes, {cost}, "
               f"generated in {elapsed:.2f} s", file=sys.stderr)
     return 0
 
