@@ -92,9 +92,11 @@ class VerifyResult:
         }
 
 
-#: verify's default length: at least MIN_STEPS, every sensor UPDATES_PER_SENSOR times, three of the
-#: model's slowest time constants (or two of its slowest oscillation periods), at most MAX_STEPS
-MIN_STEPS, MAX_STEPS, UPDATES_PER_SENSOR = 200, 5000, 50
+#: verify's default length: at least MIN_STEPS; every sensor UPDATES_PER_SENSOR times (at most
+#: MAX_STEPS); three of the model's slowest time constants or two of its slowest oscillation
+#: periods, at most TIME_SCALE_MAX_STEPS (a float filter drifts from the double reference over a
+#: long horizon on ill-conditioned models, e.g. a falling body, so the time rule stays short).
+MIN_STEPS, MAX_STEPS, UPDATES_PER_SENSOR, TIME_SCALE_MAX_STEPS = 200, 5000, 50, 500
 PF_MAX_STEPS = 400
 
 
@@ -108,14 +110,22 @@ def model_time_scale(spec: ModelSpec, dt: float) -> Optional[float]:
     x0 = np.array(spec.x0, dtype=float)
     u0 = np.zeros(spec.nu)
     if spec.input_profile is not None:
-        u0 = np.asarray(spec.input_profile(0.0), dtype=float).reshape(-1)
+        try:
+            u0 = np.asarray(spec.input_profile(0.0), dtype=float).reshape(-1)
+        except Exception:  # the scenario reports the profile's own error, with its line
+            return None
+        if u0.shape != (spec.nu,):
+            return None
     F = np.empty((spec.n, spec.n))
     with np.errstate(all="ignore"):
-        for j in range(spec.n):
-            h = 1e-6 * max(1.0, abs(x0[j]))
-            e = np.zeros(spec.n)
-            e[j] = h
-            F[:, j] = (mf.f(x0 + e, u0, dt, p) - mf.f(x0 - e, u0, dt, p)) / (2 * h)
+        try:
+            for j in range(spec.n):
+                h = 1e-6 * max(1.0, abs(x0[j]))
+                e = np.zeros(spec.n)
+                e[j] = h
+                F[:, j] = (mf.f(x0 + e, u0, dt, p) - mf.f(x0 - e, u0, dt, p)) / (2 * h)
+        except (ArithmeticError, ValueError, TypeError):  # f undefined near x0: no time scale
+            return None
         if not np.all(np.isfinite(F)):
             return None
         mu = np.linalg.eigvals(F)
@@ -139,14 +149,19 @@ def default_steps(spec: ModelSpec, dt: float) -> Tuple[int, str]:
     reasons = [(MIN_STEPS, f"the minimum {MIN_STEPS}")]
     if spec.sensors:
         slow = max(spec.sensors, key=lambda s: s.every)
-        reasons.append((UPDATES_PER_SENSOR * every, f"{UPDATES_PER_SENSOR} updates of {slow.name} (every {every} steps)"))
+        want = UPDATES_PER_SENSOR * every
+        why = f"{UPDATES_PER_SENSOR} updates of {slow.name} (every {every} steps)"
+        if want > MAX_STEPS:
+            want, why = MAX_STEPS, f"{why}, capped at {MAX_STEPS} steps"
+        reasons.append((want, why))
     scale = model_time_scale(spec, dt)
     if scale is not None:
-        reasons.append((int(np.ceil(scale / dt)), f"the dynamics' slowest time scale {scale:.3g} s"))
-    steps, why = max(reasons, key=lambda r: r[0])
-    if steps > MAX_STEPS:
-        return MAX_STEPS, f"{why} capped at {MAX_STEPS} steps"
-    return steps, why
+        want = int(np.ceil(scale / dt))
+        why = f"the dynamics' slowest time scale {scale:.3g} s"
+        if want > TIME_SCALE_MAX_STEPS:
+            want, why = TIME_SCALE_MAX_STEPS, f"{why}, capped at {TIME_SCALE_MAX_STEPS} steps"
+        reasons.append((want, why))
+    return max(reasons, key=lambda r: r[0])
 
 
 def _inject_outliers(spec: ModelSpec, scen: Any) -> Dict[str, List[int]]:

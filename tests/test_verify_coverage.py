@@ -9,7 +9,7 @@ import textwrap
 import pytest
 
 import estgen
-from estgen.verify import MAX_STEPS, default_steps, format_result, model_time_scale, verify
+from estgen.verify import MAX_STEPS, TIME_SCALE_MAX_STEPS, default_steps, format_result, model_time_scale, verify
 
 from conftest import example_model
 
@@ -51,9 +51,9 @@ SPIN = """
 def test_length_follows_the_slowest_time_constant(tmp_path):
     """A first-order lag with time constant tau = 5 s (x' = -x / tau, Euler: mu = 1 - dt/tau)
     settles in about three time constants (common practice: 95 % after 3 tau)."""
-    spec = _model(tmp_path, LAG)
+    spec = _model(tmp_path, LAG.replace("5.0", "1.0"))
     scale = model_time_scale(spec, 0.01)
-    assert scale == pytest.approx(3 * 5.0, rel=0.01)
+    assert scale == pytest.approx(3 * 1.0, rel=0.01)
     steps, why = default_steps(spec, 0.01)
     assert steps == math.ceil(scale / 0.01) and "time scale" in why
 
@@ -62,8 +62,10 @@ def test_length_covers_the_slowest_sensor_and_is_capped(tmp_path):
     spec = _model(tmp_path, LAG.replace("5.0", "0.01").replace("every=4", "every=40"))
     steps, why = default_steps(spec, 0.01)
     assert steps == 50 * 40 and "50 updates of s" in why
+    spec = _model(tmp_path, LAG.replace("every=4", "every=400"), "rare.py")
+    assert default_steps(spec, 0.01) == (MAX_STEPS, "50 updates of s (every 400 steps), capped at 5000 steps")
     spec = _model(tmp_path, LAG.replace("5.0", "500.0"), "slow.py")
-    assert default_steps(spec, 0.01)[0] == MAX_STEPS
+    assert default_steps(spec, 0.01)[0] == TIME_SCALE_MAX_STEPS
 
 
 def test_oscillation_period_counts(tmp_path):

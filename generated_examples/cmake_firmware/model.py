@@ -22,5 +22,5 @@ model.process_noise(sp.diag(1e-8, 4.0, 1e-6) * dt)
 # encoder quantization: uniform over one count, variance q^2 / 12
 count = 2 * math.pi / ENCODER_COUNTS
 model.sensor("encoder", [theta], noise=[count**2 / 12], angles=[0], units="rad")
-model.initial([0.0, 0.0, 0.0], sp.diag(0.1, 1.0, 1e-4))
+model.initial([0.0, 0.0, 0.0], sp.diag(1e-4, 1.0, 1e-4))  # the angle is known to a few counts at start
 model.scenario(dt=1e-3, inputs=lambda t: [0.2 + 0.1 * math.sin(2 * math.pi * 5 * t)])
