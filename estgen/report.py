@@ -474,13 +474,3 @@ def format_report(rep: Dict[str, Any], clock_mhz: float = DEFAULT_CLOCK_MHZ) -> 
     for tool, what in rep["missing"].items():
         lines.append(f"  missing: {tool} (needed for {'; '.join(what)})")
     return "\n".join(lines)
-
-
-def _main(argv: Optional[Sequence[str]] = None) -> int:
-    parser = argparse.ArgumentParser(prog="estgen report", description=__doc__.split("\n\n")[0])
-    add_arguments(parser)
-    return run(parser.parse_args(argv))
-
-
-if __name__ == "__main__":
-    sys.exit(_main())

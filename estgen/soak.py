@@ -12,8 +12,7 @@ that every x is finite and every P is positive definite (a batched Cholesky fact
 stored packed, so it is symmetric by construction). The normalized estimation error squared
 (NEES) is reported as well, as a consistency figure (its mean is about n for a consistent filter).
 
-``estgen soak MODEL --filter F --precision P --steps N`` runs it from the command line;
-``python -m estgen.soak`` does the same without the ``estgen`` entry point.
+``estgen soak MODEL --filter F --precision P --steps N`` runs it from the command line.
 """
 
 from __future__ import annotations
@@ -24,7 +23,7 @@ import math
 import sys
 import time
 from dataclasses import asdict, dataclass, field
-from typing import TYPE_CHECKING, Any, Callable, Dict, List, Optional, Sequence, Tuple
+from typing import TYPE_CHECKING, Any, Callable, Dict, List, Optional, Tuple
 
 import numpy as np
 import sympy as sp
@@ -39,7 +38,7 @@ from .status import Status
 if TYPE_CHECKING:  # only for the annotation; emit imports sympy printers at run time
     from .emit import Generated
 
-__all__ = ["SoakResult", "soak", "packed_to_full", "batch_posdef", "within_rounding", "add_arguments", "run", "main", "PROFILES"]
+__all__ = ["SoakResult", "soak", "packed_to_full", "batch_posdef", "within_rounding", "add_arguments", "run", "PROFILES"]
 
 #: input profiles: the model's own scenario inputs, or those inputs with their sign flipped every
 #: ``period`` seconds (keeps integrating states such as a cell's charge inside their range)
@@ -434,19 +433,3 @@ def run(args: argparse.Namespace) -> int:
         with open(args.json, "w", encoding="utf-8") as fh:
             json.dump(res.as_dict(), fh, indent=2)
     return 0 if res.ok else 1
-
-
-def main(argv: Optional[Sequence[str]] = None) -> int:
-    """``python -m estgen.soak``: the soak command without the ``estgen`` entry point."""
-    p = argparse.ArgumentParser(prog="estgen soak", description=__doc__.splitlines()[0])
-    add_arguments(p)
-    args = p.parse_args(argv)
-    try:
-        return run(args)
-    except ModelError as err:
-        print(str(err), file=sys.stderr)
-        return 2
-
-
-if __name__ == "__main__":
-    sys.exit(main())
