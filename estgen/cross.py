@@ -13,6 +13,7 @@ Command line (writes the scenario header the firmware replay includes)::
 from __future__ import annotations
 
 import hashlib
+import math
 import os
 import re
 import shutil
@@ -421,7 +422,7 @@ def replay_header(spec: Any, filter: str, precision: str, scenario: Any) -> str:
         f"#define REPLAY_INIT {pre}_init",
         f"#define REPLAY_PREDICT {pre}_predict",
         f"#define REPLAY_NX {spec.n}u",
-        f"#define REPLAY_NP {spec.n * (spec.n + 1) // 2}u /* packed covariance entries */",
+        f"#define REPLAY_NP {spec.ne * (spec.ne + 1) // 2}u /* packed covariance entries (error dimension) */",
         f"#define REPLAY_STEPS {steps}u",
         f"#define REPLAY_NSENSORS {len(sensors)}u",
         f"#define REPLAY_NMEAS {len(meas_step)}u",
@@ -547,10 +548,11 @@ class ReplayResult:
     @property
     def P(self) -> np.ndarray:
         """The final covariance, unpacked from the upper triangle stored row by row."""
-        n = len(self.x_bits)
         packed = self._decode(self.P_bits)
+        # P has the error dimension (n minus one per attitude): read it off the packed length
+        n = int(round((math.sqrt(8 * packed.size + 1) - 1) / 2))
         if packed.size != n * (n + 1) // 2:
-            raise RuntimeError(f"{packed.size} covariance entries for {n} states")
+            raise RuntimeError(f"{packed.size} covariance entries is no packed symmetric matrix")
         full = np.zeros((n, n))
         full[np.triu_indices(n)] = packed  # row-major upper triangle: the generated layout
         return full + np.triu(full, 1).T

@@ -143,6 +143,7 @@ class ModelFunctions:
                 else:
                     minus.extend(quat.log(quat.mul(quat.conj(ref[xi:xi + 4]), bx[xi:xi + 4])))
             self._minus = _lambdify([*bx, *ref], sp.Matrix(minus))
+            self._minus_list = _lambdify([*bx, *ref], minus)  # entries one by one (arrays in, arrays out)
             self._err_angles = np.array([kind == "real" and spec.states[xi].angle
                                          for kind, xi, _ in spec.error_blocks()], dtype=bool)
 
@@ -158,6 +159,16 @@ class ModelFunctions:
         if not self.spec.attitudes:
             return x + e
         return self._arr(self._plus(*x, *e), (self.n,))
+
+    def boxminus_rows(self, Y: np.ndarray, R: np.ndarray) -> np.ndarray:
+        """:meth:`boxminus` row by row, vectorized: (k, n) and (k, n) -> (k, ne)."""
+        if not self.spec.attitudes:
+            return _wrap_masked((Y - R).T, np.array(self.spec.angle_states, dtype=bool)).T
+        cols = self._minus_list(*Y.T, *R.T)
+        out = np.stack([np.broadcast_to(np.asarray(c, dtype=float), (Y.shape[0],)) for c in cols], axis=1)
+        if self._err_angles.any():
+            out[:, self._err_angles] = wrap_angle(out[:, self._err_angles])
+        return out
 
     def normalize(self, x: np.ndarray) -> np.ndarray:
         """``x`` with every attitude scaled to a unit quaternion."""
@@ -434,8 +445,8 @@ class _ReferenceBase(abc.ABC):
                              f"got {xv.shape} and {Pm.shape}")
         if not _finite(xv, Pm):
             return int(Status.BAD_INPUT)
-        if any(not np.linalg.norm(xv[i:i + 4]) > 0.0 for i in self.spec.attitudes):
-            return int(Status.BAD_INPUT)  # a zero quaternion has no direction to scale to
+        if any(not 0.0 < np.linalg.norm(xv[i:i + 4]) < math.inf for i in self.spec.attitudes):
+            return int(Status.BAD_INPUT)  # a zero quaternion has no direction to scale to (nor an overflowing one)
         scale = float(np.max(np.abs(np.diag(Pm)))) if n else 0.0
         if np.max(np.abs(Pm - Pm.T)) > 1e-9 * scale:
             return int(Status.NOT_POSITIVE_DEFINITE)

@@ -32,7 +32,7 @@ from . import filters
 from .errors import ModelError
 from .filters import FilterSetup
 from .model import ModelSpec, as_spec
-from .reference import wrap_angle
+from .reference import model_functions, wrap_angle
 from .status import Status
 
 if TYPE_CHECKING:  # only for the annotation; emit imports sympy printers at run time
@@ -75,6 +75,8 @@ class SoakResult:
     #: per chunk of steps: the mean NEES and the largest |x| (where the run went wrong, and how far the truth went)
     chunk_nees: List[Optional[float]] = field(default_factory=list)
     chunk_max_abs_state: List[float] = field(default_factory=list)
+    #: largest | |q| - 1 | of any attitude quaternion the C held after a step
+    max_attitude_norm_error: float = 0.0
 
     @property
     def refusals(self) -> int:
@@ -170,12 +172,16 @@ class _Truth:
                    for s in spec.sensors}
         self.angles = np.array(spec.angle_states, dtype=bool)
         self.k = 0
+        self._fn = model_functions(spec) if spec.attitudes else None
         if spec.prior_box is not None:
             from .simulate import initial_from_box
 
             x = initial_from_box(spec, self.rng)
         else:
-            x = np.array(spec.x0, dtype=float) + _noise_factor(np.array(spec.P0, dtype=float)) @ self.rng.standard_normal(spec.n)
+            # additive noise in the error space (ne), applied through quat.exp for an attitude
+            e0 = _noise_factor(np.array(spec.P0, dtype=float)) @ self.rng.standard_normal(spec.ne)
+            x = np.array(spec.x0, dtype=float)
+            x = self._fn.boxplus(x, e0) if self._fn is not None else x + e0
         self.x = np.where(self.angles, wrap_angle(x), x)
 
     def inputs(self, t: float) -> List[float]:
@@ -196,7 +202,7 @@ class _Truth:
         n, nu = spec.n, spec.nu
         U = np.empty((count, nu))
         X = np.empty((count, n))
-        W = self.rng.standard_normal((count, n)) @ self.Aq.T
+        W = self.rng.standard_normal((count, spec.ne)) @ self.Aq.T
         nw = spec.nw
         Wn = self.rng.standard_normal((count, nw)) @ self.Aw.T if nw else np.zeros((count, 0))
         wrap = bool(self.angles.any())
@@ -210,7 +216,8 @@ class _Truth:
             except (OverflowError, ValueError, ZeroDivisionError) as err:
                 raise ModelError(f"the simulated truth left the model's domain at step {self.k + i + 1} "
                                  f"(t = {t + self.dt:g}): {err}") from None
-            xn = np.asarray(fx, dtype=float).reshape(n) + W[i]
+            xn = np.asarray(fx, dtype=float).reshape(n)
+            xn = self._fn.boxplus(xn, W[i]) if self._fn is not None else xn + W[i]
             if wrap:
                 xn[self.angles] = wrap_angle(xn[self.angles])
             if not np.all(np.isfinite(xn)):
@@ -266,7 +273,8 @@ def soak(model: Any, filter: str = "ekf", precision: str = "float", steps: int =
     ffi, lib = comp.ffi, comp.lib
     real = "float" if precision == "float" else "double"
     dtype = np.float32 if precision == "float" else np.float64
-    n, nu, npk = spec.n, spec.nu, n_packed(spec.n)
+    n, nu, ne = spec.n, spec.nu, spec.ne
+    npk = n_packed(ne)
     prefix = gen.prefix
 
     s = ffi.new(f"{prefix}_t *")
@@ -280,7 +288,7 @@ def soak(model: Any, filter: str = "ekf", precision: str = "float", steps: int =
     updates = [(sd.name, getattr(lib, f"{prefix}_update_{sd.name}"), sd.m) for sd in spec.sensors]
     dt_c = float(dtype(dtv))
 
-    res = SoakResult(spec.name, filter, precision, steps, seed, dtv, profile, n)
+    res = SoakResult(spec.name, filter, precision, steps, seed, dtv, profile, ne)
     pst: Dict[int, int] = {}
     ust: Dict[str, Dict[int, int]] = {name: {} for name, _, _ in updates}
     truth = _Truth(spec, dtv, seed, profile, period)
@@ -316,7 +324,11 @@ def soak(model: Any, filter: str = "ekf", precision: str = "float", steps: int =
         # the invariants, checked in float64 on exactly the values the C holds
         x64 = Xc.astype(np.float64)
         finite = np.isfinite(x64).all(axis=1) & np.isfinite(Pc.astype(np.float64)).all(axis=1)
-        P64 = packed_to_full(np.where(np.isfinite(Pc), Pc, 0.0).astype(np.float64), n)
+        P64 = packed_to_full(np.where(np.isfinite(Pc), Pc, 0.0).astype(np.float64), ne)
+        for a in spec.attitudes:  # |q| as the C holds it (float64 arithmetic on its values)
+            if finite.any():
+                dev = np.abs(np.linalg.norm(x64[finite, a:a + 4], axis=1) - 1.0)
+                res.max_attitude_norm_error = max(res.max_attitude_norm_error, float(dev.max()))
         pd_mask, L = batch_posdef(P64)
         for i in np.flatnonzero(~pd_mask & finite):
             if within_rounding(P64[i], precision):
@@ -330,8 +342,8 @@ def soak(model: Any, filter: str = "ekf", precision: str = "float", steps: int =
             res.first_failure = done + int(fails[0]) + 1
         if L is not None and finite.all():
             res.min_cholesky_pivot = min(res.min_cholesky_pivot, float(np.diagonal(L, axis1=1, axis2=2).min()))
-            e = x64 - X
-            if angles.any():
+            e = truth._fn.boxminus_rows(X, x64) if spec.attitudes else x64 - X
+            if angles.any() and not spec.attitudes:
                 e[:, angles] = wrap_angle(e[:, angles])
             sol = np.linalg.solve(L, e[..., None])[..., 0]
             chunk_sum = float(np.sum(sol * sol))
@@ -386,6 +398,8 @@ def format_result(res: SoakResult) -> str:
         f"  {'largest |x|':<40} {res.max_abs_state:.3g}",
         f"  {'mean NEES':<40} {res.mean_nees:.3g} (about {res.n} when consistent)",
     ]
+    if res.max_attitude_norm_error > 0.0:
+        lines.append(f"  {'largest | |q| - 1 | of an attitude':<40} {res.max_attitude_norm_error:.3g}")
     if len(res.chunk_nees) > 1:
         first, last = res.chunk_nees[0], res.chunk_nees[-1]
         fmt = (lambda v: "-" if v is None else f"{v:.3g}")  # noqa: E731

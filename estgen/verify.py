@@ -232,7 +232,7 @@ def _coverage(spec: ModelSpec, scen: Any, rc: Dict[str, Any], rr: Dict[str, Any]
             "wraps": wraps, "notes": notes}
 
 
-def _state_sigma(spec: ModelSpec, sig: np.ndarray) -> np.ndarray:
+def state_sigma(spec: ModelSpec, sig: np.ndarray) -> np.ndarray:
     """Standard deviations per entry of x from those of the covariance (k, ne): an attitude's
     four entries move by about half its rotation error, so they get half the rms of its three."""
     if not spec.attitudes:
@@ -288,7 +288,7 @@ def verify(model: Any, filter: str = "ekf", precision: str = "float", steps: Opt
     sig = np.sqrt(np.maximum(np.einsum("kii->ki", Pr), 0.0))
     if pf:
         sig = np.maximum(sig, 1e-6 * np.maximum(np.abs(xr), 1.0))
-    xsig = _state_sigma(spec, sig)
+    xsig = state_sigma(spec, sig)
     if precision == "double":
         xscale = np.maximum(np.abs(xr), xsig)
     else:

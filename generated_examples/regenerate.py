@@ -25,6 +25,7 @@ EXAMPLES: Dict[str, Tuple[str, ...]] = {
     "battery_soc": ("ekf", "ukf"),
     "beacon_rover": ("ekf", "ukf"),
     "strapdown_nav": ("ekf", "ukf"),
+    "quat_nav": ("ekf", "ukf"),
     "linear_cart": ("ekf", "ukf"),
     "valve_actuator": ("ukf",),  # Min/Max: the EKF refuses it
     "pier_tag": ("ekf", "ukf", "pf"),  # a mirror ambiguity: the particle filter's example

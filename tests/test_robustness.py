@@ -235,7 +235,7 @@ def test_overflowing_measurements_and_steps_are_refused_or_stay_finite(config):
 def test_set_state_validates_and_recovers(config):
     ex, filt, prec = config
     spec = spec_of(ex)
-    n = spec.n
+    n = spec.ne  # P's dimension (n minus one per attitude)
     c = fresh(ex, filt, prec)
     initial = c.raw_state()
     warm_up(c, spec)
@@ -245,7 +245,7 @@ def test_set_state_validates_and_recovers(config):
     for bad in NON_FINITE_VALUES:
         for i in {0, n - 1}:
             x = x_ok.copy()
-            x[i] = bad
+            x[min(i, spec.n - 1)] = bad
             cases.append((BAD_INPUT, x, P_ok))
             P = P_ok.copy()
             P[i, i] = bad
@@ -289,8 +289,7 @@ def test_set_state_recovers_a_filter_pushed_out_of_its_domain(config):
     spec = spec_of(ex)
     c = fresh(ex, filt, prec)
     big = math.sqrt(real_max(prec))  # its square overflows
-    n = spec.n
-    st = checked(c, lambda: c.set_state(np.full(n, big), np.eye(n) * big))
+    st = checked(c, lambda: c.set_state(np.full(spec.n, big), np.eye(spec.ne) * big))
     refused = 0
     sc = make_scenario(spec, 10, 4)
     for k in range(10):
@@ -390,7 +389,7 @@ def _innovation_factor(c: Any, spec: ModelSpec, sensor: str, filt: str) -> Tuple
         y, S = r._innovation(sensor, z0)[:2]  # (y, S, C, covariance update)
         hx = z0 - y
     else:
-        H = mf.H(sensor, x, p)
+        H = mf.H_err(sensor, x, p)  # dh/dx, times M(x) for attitudes (the error-state Jacobian)
         S = H @ P @ H.T + mf.R(sensor, p)
         hx = mf.h(sensor, x, p)
     return hx, np.linalg.cholesky(S)
