@@ -31,7 +31,7 @@ static size_t qnav_ukf_pk(size_t i, size_t j)
 
 /* OK when the packed covariance P is positive definite (every pivot of its Cholesky factorization
    finite and > 0; a positive diagonal is not enough), else the refusal code. Unrolled; one copy
-   serves set_state and every commit. */
+   serves set_state and every commit that factorizes. A non-finite entry always reaches a pivot. */
 static int qnav_ukf_commit_pd(const float *P)
 {
     const float Lcd0 = P[0];
@@ -2915,15 +2915,16 @@ int qnav_ukf_predict(qnav_ukf_t *s, const float *u, float dt)
     Pn[117] = ft863 + 2.0666666F*(fmu13*fmu13) + 0.033333335F*(fD10_13*fD10_13) + 0.033333335F*(fD11_13*fD11_13) + 0.033333335F*(fD12_13*fD12_13) + 0.033333335F*(fD13_13*fD13_13) + 0.033333335F*(fD14_13*fD14_13) + 0.033333335F*(fD16_13*fD16_13) + 0.033333335F*(fD17_13*fD17_13) + 0.033333335F*(fD18_13*fD18_13) + 0.033333335F*(fD19_13*fD19_13) + 0.033333335F*(fD1_13*fD1_13) + 0.033333335F*(fD20_13*fD20_13) + 0.033333335F*(fD21_13*fD21_13) + 0.033333335F*(fD22_13*fD22_13) + 0.033333335F*(fD23_13*fD23_13) + 0.033333335F*(fD24_13*fD24_13) + 0.033333335F*(fD25_13*fD25_13) + 0.033333335F*(fD26_13*fD26_13) + 0.033333335F*(fD27_13*fD27_13) + 0.033333335F*(fD28_13*fD28_13) + 0.033333335F*(fD29_13*fD29_13) + 0.033333335F*(fD2_13*fD2_13) + 0.033333335F*(fD3_13*fD3_13) + 0.033333335F*(fD4_13*fD4_13) + 0.033333335F*(fD5_13*fD5_13) + 0.033333335F*(fD6_13*fD6_13) + 0.033333335F*(fD7_13*fD7_13) + 0.033333335F*(fD8_13*fD8_13) + 0.033333335F*(fD9_13*fD9_13);
     Pn[118] = 2.0F*fmu13*fmu14 + 0.033333335F*fD10_13*fD10_14 + 0.033333335F*fD11_13*fD11_14 + 0.033333335F*fD12_13*fD12_14 + 0.033333335F*fD13_13*fD13_14 + 0.033333335F*fD14_13*fD14_14 + 0.033333335F*fD16_13*fD16_14 + 0.033333335F*fD17_13*fD17_14 + 0.033333335F*fD18_13*fD18_14 + 0.033333335F*fD19_13*fD19_14 + 0.033333335F*fD1_13*fD1_14 + 0.033333335F*fD20_13*fD20_14 + 0.033333335F*fD21_13*fD21_14 + 0.033333335F*fD22_13*fD22_14 + 0.033333335F*fD23_13*fD23_14 + 0.033333335F*fD24_13*fD24_14 + 0.033333335F*fD25_13*fD25_14 + 0.033333335F*fD26_13*fD26_14 + 0.033333335F*fD27_13*fD27_14 + 0.033333335F*fD28_13*fD28_14 + 0.033333335F*fD29_13*fD29_14 + 0.033333335F*fD2_13*fD2_14 + 0.033333335F*fD3_13*fD3_14 + 0.033333335F*fD4_13*fD4_14 + 0.033333335F*fD5_13*fD5_14 + 0.033333335F*fD6_13*fD6_14 + 0.033333335F*fD7_13*fD7_14 + 0.033333335F*fD8_13*fD8_14 + 0.033333335F*fD9_13*fD9_14 - 0.033333335F*fD15_14*fmu13 - 0.033333335F*fD30_14*fmu13;
     Pn[119] = ft863 + 2.0F*(fmu14*fmu14) + 0.033333335F*(fD10_14*fD10_14) + 0.033333335F*(fD11_14*fD11_14) + 0.033333335F*(fD12_14*fD12_14) + 0.033333335F*(fD13_14*fD13_14) + 0.033333335F*(fD14_14*fD14_14) + 0.033333335F*(fD15_14*fD15_14) + 0.033333335F*(fD16_14*fD16_14) + 0.033333335F*(fD17_14*fD17_14) + 0.033333335F*(fD18_14*fD18_14) + 0.033333335F*(fD19_14*fD19_14) + 0.033333335F*(fD1_14*fD1_14) + 0.033333335F*(fD20_14*fD20_14) + 0.033333335F*(fD21_14*fD21_14) + 0.033333335F*(fD22_14*fD22_14) + 0.033333335F*(fD23_14*fD23_14) + 0.033333335F*(fD24_14*fD24_14) + 0.033333335F*(fD25_14*fD25_14) + 0.033333335F*(fD26_14*fD26_14) + 0.033333335F*(fD27_14*fD27_14) + 0.033333335F*(fD28_14*fD28_14) + 0.033333335F*(fD29_14*fD29_14) + 0.033333335F*(fD2_14*fD2_14) + 0.033333335F*(fD30_14*fD30_14) + 0.033333335F*(fD3_14*fD3_14) + 0.033333335F*(fD4_14*fD4_14) + 0.033333335F*(fD5_14*fD5_14) + 0.033333335F*(fD6_14*fD6_14) + 0.033333335F*(fD7_14*fD7_14) + 0.033333335F*(fD8_14*fD8_14) + 0.033333335F*(fD9_14*fD9_14);
-    if (!qnav_ukf_finite(xn, 16u) || !qnav_ukf_finite(Pn, 120u)) {
+    if (!qnav_ukf_finite(xn, 16u)) {
         return QNAV_UKF_NON_FINITE;
     }
     {
-        const int st = qnav_ukf_commit_pd(Pn);
+        const int st = qnav_ukf_commit_pd(Pn);  /* the commit check on the new P */
         if (st != QNAV_UKF_OK) {
             return st;
         }
     }
+
     memcpy(s->x, xn, sizeof xn);
     memcpy(s->P, Pn, sizeof Pn);
     return QNAV_UKF_OK;
@@ -3350,15 +3351,16 @@ int qnav_ukf_update_gnss_pos_nis(qnav_ukf_t *s, const float *z, float *nis_out)
     if (nis_out != NULL) {
         *nis_out = nis;
     }
-    if (!qnav_ukf_finite(xs, 16u) || !qnav_ukf_finite(Ps, 120u)) {
+    if (!qnav_ukf_finite(xs, 16u)) {
         return QNAV_UKF_NON_FINITE;
     }
     {
-        const int st = qnav_ukf_commit_pd(Ps);
+        const int st = qnav_ukf_commit_pd(Ps);  /* the commit check on the new P */
         if (st != QNAV_UKF_OK) {
             return st;
         }
     }
+
     memcpy(s->x, xs, sizeof xs);
     memcpy(s->P, Ps, sizeof Ps);
     return QNAV_UKF_OK;
@@ -3879,15 +3881,16 @@ int qnav_ukf_update_gnss_vel_nis(qnav_ukf_t *s, const float *z, float *nis_out)
     if (nis_out != NULL) {
         *nis_out = nis;
     }
-    if (!qnav_ukf_finite(xs, 16u) || !qnav_ukf_finite(Ps, 120u)) {
+    if (!qnav_ukf_finite(xs, 16u)) {
         return QNAV_UKF_NON_FINITE;
     }
     {
-        const int st = qnav_ukf_commit_pd(Ps);
+        const int st = qnav_ukf_commit_pd(Ps);  /* the commit check on the new P */
         if (st != QNAV_UKF_OK) {
             return st;
         }
     }
+
     memcpy(s->x, xs, sizeof xs);
     memcpy(s->P, Ps, sizeof Ps);
     return QNAV_UKF_OK;
@@ -4215,15 +4218,16 @@ int qnav_ukf_update_baro_nis(qnav_ukf_t *s, const float *z, float *nis_out)
     if (nis_out != NULL) {
         *nis_out = nis;
     }
-    if (!qnav_ukf_finite(xs, 16u) || !qnav_ukf_finite(Ps, 120u)) {
+    if (!qnav_ukf_finite(xs, 16u)) {
         return QNAV_UKF_NON_FINITE;
     }
     {
-        const int st = qnav_ukf_commit_pd(Ps);
+        const int st = qnav_ukf_commit_pd(Ps);  /* the commit check on the new P */
         if (st != QNAV_UKF_OK) {
             return st;
         }
     }
+
     memcpy(s->x, xs, sizeof xs);
     memcpy(s->P, Ps, sizeof Ps);
     return QNAV_UKF_OK;
@@ -5187,15 +5191,16 @@ int qnav_ukf_update_mag_nis(qnav_ukf_t *s, const float *z, float *nis_out)
     if (nis_out != NULL) {
         *nis_out = nis;
     }
-    if (!qnav_ukf_finite(xs, 16u) || !qnav_ukf_finite(Ps, 120u)) {
+    if (!qnav_ukf_finite(xs, 16u)) {
         return QNAV_UKF_NON_FINITE;
     }
     {
-        const int st = qnav_ukf_commit_pd(Ps);
+        const int st = qnav_ukf_commit_pd(Ps);  /* the commit check on the new P */
         if (st != QNAV_UKF_OK) {
             return st;
         }
     }
+
     memcpy(s->x, xs, sizeof xs);
     memcpy(s->P, Ps, sizeof Ps);
     return QNAV_UKF_OK;
