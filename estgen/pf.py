@@ -19,7 +19,9 @@ Proc. F 140(2), 1993) carrying N particles and their log-weights:
 * optional roughening after resampling (Gordon, Salmond & Smith 1993): each component j gets
   ``K E_j N^(-1/n) z`` with ``E_j`` the spread (max - min) of the particles in j.
 * ``x`` and ``P`` are the weighted mean and (biased) weighted covariance of the particles
-  (circular mean and wrapped deviations for angle states), recomputed after every call.
+  (circular mean and wrapped deviations for angle states), recomputed after every call. The
+  mean is accumulated as deviations from the first live particle, so that a float cloud far
+  from the origin loses no digits and a cloud of identical particles has P exactly 0.
 * ``set_state(x, P)`` draws N standard normal vectors, whitens them with their own sample mean
   and covariance, and colours them with ``chol(P)``: the particle mean and covariance then equal
   x and P to rounding.
@@ -239,7 +241,10 @@ class ReferencePF(_ReferenceBase):
         live = w > 0.0
         wl, Xl = w[live], X[live]
         tot = np.cumsum(wl)[-1]
-        x = (wl @ Xl) / tot
+        # the mean as the first live particle plus the weighted mean deviation from it: no
+        # cancellation for a cloud far from the origin, and exactly that particle (P exactly 0)
+        # when every particle is a copy of it
+        x = Xl[0] + (wl @ (Xl - Xl[0])) / tot
         if self._angles.any():
             x[self._angles] = np.arctan2(wl @ np.sin(Xl[:, self._angles]), wl @ np.cos(Xl[:, self._angles]))
         d = Xl - x
@@ -334,9 +339,11 @@ class ReferencePF(_ReferenceBase):
             rl = r[ok]
             if wl.size:
                 tot = np.cumsum(wl)[-1]
-                y = (wl @ rl) / tot
+                r0 = rl[0]  # residuals about the first one: no cancellation when z is far off
+                dy = (wl @ (rl - r0)) / tot
+                y = r0 + dy
                 Rm = np.einsum("k,kab->ab", wl, Reff[ok]) / tot if s.nv else R  # the weighted mean of R_eff
-                S = ((rl.T * wl) @ rl) / tot - np.outer(y, y) + Rm
+                S = (((rl - r0).T * wl) @ (rl - r0)) / tot - np.outer(dy, dy) + Rm
                 S = 0.5 * (S + S.T)
                 try:
                     Ls = np.linalg.cholesky(S)

@@ -226,3 +226,38 @@ def test_simulate_and_soak_take_the_particle_filter():
     res = soak(spec, "pf", "float", steps=3000, seed=2, particles=100)
     assert res.nonfinite_steps == 0
     assert sum(res.predict_status.values()) == 3000
+
+
+def test_float_moments_of_a_cloud_far_from_the_origin():
+    # 1000 float particles near 1e5 with a spread of 0.1: a plain sum of w x loses about
+    # sqrt(N) eps |x| (common practice: summation error); the C sums deviations from a particle
+    m = Model("far")
+    (x,) = m.states("x")
+    m.process([x])
+    m.process_noise([1e-4])
+    m.sensor("p", [x], noise=[0.01])
+    m.initial([1.0e5], [[0.01]])
+    spec = validate(m)
+    c = estgen.build(spec, filter="pf", precision="float", particles=1000, seed=1)
+    r = estgen.reference(spec, filter="pf", particles=1000, seed=1)
+    sd = np.sqrt(r.P[0, 0])
+    assert abs(c.x[0] - r.x[0]) < 0.01 * sd
+    assert c.P[0, 0] == pytest.approx(r.P[0, 0], rel=0.01)
+
+
+def test_a_cloud_of_copies_has_zero_covariance_in_both():
+    # after resampling onto one particle the covariance is exactly 0 in the C and the reference
+    # (no rounding noise that a relative comparison would magnify)
+    m = Model("copies")
+    (x,) = m.states("x")
+    m.process([x])
+    m.process_noise([0.0])
+    m.sensor("p", [x], noise=[1e-8])
+    m.initial([0.0], [[1.0]])
+    spec = validate(m)
+    c = estgen.build(spec, filter="pf", precision="double", particles=50, seed=2)
+    r = estgen.reference(spec, filter="pf", particles=50, seed=2)
+    for f in (c, r):
+        assert f.update("p", [0.3]) == Status.OK
+    assert c.P[0, 0] == r.P[0, 0] == 0.0
+    assert c.x[0] == r.x[0]

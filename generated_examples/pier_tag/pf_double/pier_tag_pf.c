@@ -250,6 +250,7 @@ static void pier_tag_pf_moments(pier_tag_pf_t *s)
 {
     double tot = 0.0;
     double m[4];
+    double ref[4];
     double acc[10];
     size_t i, j, k;
     for (j = 0u; j < 4u; ++j) {
@@ -258,6 +259,14 @@ static void pier_tag_pf_moments(pier_tag_pf_t *s)
     for (k = 0u; k < 10u; ++k) {
         acc[k] = 0.0;
     }
+    /* the mean as deviations from the first live particle: no cancellation far from the
+       origin, and a cloud of copies of one particle has P exactly 0 */
+    for (i = 0u; i < 1000u; ++i) {
+        if (s->w[i] > 0.0) {
+            break;
+        }
+    }
+    memcpy(ref, s->part[i < 1000u ? i : 0u], sizeof ref);
     for (i = 0u; i < 1000u; ++i) {
         const double wi = s->w[i];
         if (!(wi > 0.0)) {
@@ -265,11 +274,11 @@ static void pier_tag_pf_moments(pier_tag_pf_t *s)
         }
         tot += wi;
         for (j = 0u; j < 4u; ++j) {
-            m[j] += wi * s->part[i][j];
+            m[j] += wi * (s->part[i][j] - ref[j]);
         }
     }
     for (j = 0u; j < 4u; ++j) {
-        s->x[j] = m[j] / tot;
+        s->x[j] = ref[j] + m[j] / tot;
     }
     for (i = 0u; i < 1000u; ++i) {
         double d[4];
@@ -568,6 +577,7 @@ int pier_tag_pf_update_pier_nis(pier_tag_pf_t *s, const double *z, double *nis_o
     double Lr[4];
     double sr[2];
     double srr[3];
+    double r0[2];  /* the first residual: the others are accumulated about it */
     double top = -HUGE_VAL;
     double tot = 0.0;
     double wsum = 0.0;
@@ -587,6 +597,7 @@ int pier_tag_pf_update_pier_nis(pier_tag_pf_t *s, const double *z, double *nis_o
     }
     for (k = 0u; k < 2u; ++k) {
         sr[k] = 0.0;
+        r0[k] = 0.0;
     }
     for (k = 0u; k < 3u; ++k) {
         srr[k] = 0.0;
@@ -614,7 +625,13 @@ int pier_tag_pf_update_pier_nis(pier_tag_pf_t *s, const double *z, double *nis_o
         top = (s->w[i] > top) ? s->w[i] : top;
         ++ok;
         if (want) {
+            if (ok == 1u) {
+                memcpy(r0, r, sizeof r0);
+            }
             tot += wi;
+            for (a = 0u; a < 2u; ++a) {
+                r[a] -= r0[a];
+            }
             k = 0u;
             for (a = 0u; a < 2u; ++a) {
                 sr[a] += wi * r[a];
@@ -646,6 +663,9 @@ int pier_tag_pf_update_pier_nis(pier_tag_pf_t *s, const double *z, double *nis_o
         if (pier_tag_pf_chol(srr, 2u, -1.0, Ls) != PIER_TAG_PF_OK) {
             pier_tag_pf_restore_w(s);
             return PIER_TAG_PF_NON_FINITE;
+        }
+        for (a = 0u; a < 2u; ++a) {
+            sr[a] += r0[a];  /* y = r0 + the mean deviation */
         }
         nis = pier_tag_pf_solve(Ls, 2u, sr, bs);
         if (!isfinite(nis)) {
@@ -685,6 +705,7 @@ int pier_tag_pf_update_shadow_nis(pier_tag_pf_t *s, const double *z, double *nis
     double Lr[1];
     double sr[1];
     double srr[1];
+    double r0[1];  /* the first residual: the others are accumulated about it */
     double top = -HUGE_VAL;
     double tot = 0.0;
     double wsum = 0.0;
@@ -704,6 +725,7 @@ int pier_tag_pf_update_shadow_nis(pier_tag_pf_t *s, const double *z, double *nis
     }
     for (k = 0u; k < 1u; ++k) {
         sr[k] = 0.0;
+        r0[k] = 0.0;
     }
     for (k = 0u; k < 1u; ++k) {
         srr[k] = 0.0;
@@ -731,7 +753,13 @@ int pier_tag_pf_update_shadow_nis(pier_tag_pf_t *s, const double *z, double *nis
         top = (s->w[i] > top) ? s->w[i] : top;
         ++ok;
         if (want) {
+            if (ok == 1u) {
+                memcpy(r0, r, sizeof r0);
+            }
             tot += wi;
+            for (a = 0u; a < 1u; ++a) {
+                r[a] -= r0[a];
+            }
             k = 0u;
             for (a = 0u; a < 1u; ++a) {
                 sr[a] += wi * r[a];
@@ -763,6 +791,9 @@ int pier_tag_pf_update_shadow_nis(pier_tag_pf_t *s, const double *z, double *nis
         if (pier_tag_pf_chol(srr, 1u, -1.0, Ls) != PIER_TAG_PF_OK) {
             pier_tag_pf_restore_w(s);
             return PIER_TAG_PF_NON_FINITE;
+        }
+        for (a = 0u; a < 1u; ++a) {
+            sr[a] += r0[a];  /* y = r0 + the mean deviation */
         }
         nis = pier_tag_pf_solve(Ls, 1u, sr, bs);
         if (!isfinite(nis)) {

@@ -250,6 +250,7 @@ static void pier_tag_pf_moments(pier_tag_pf_t *s)
 {
     float tot = 0.0F;
     float m[4];
+    float ref[4];
     float acc[10];
     size_t i, j, k;
     for (j = 0u; j < 4u; ++j) {
@@ -258,6 +259,14 @@ static void pier_tag_pf_moments(pier_tag_pf_t *s)
     for (k = 0u; k < 10u; ++k) {
         acc[k] = 0.0F;
     }
+    /* the mean as deviations from the first live particle: no cancellation far from the
+       origin, and a cloud of copies of one particle has P exactly 0 */
+    for (i = 0u; i < 1000u; ++i) {
+        if (s->w[i] > 0.0F) {
+            break;
+        }
+    }
+    memcpy(ref, s->part[i < 1000u ? i : 0u], sizeof ref);
     for (i = 0u; i < 1000u; ++i) {
         const float wi = s->w[i];
         if (!(wi > 0.0F)) {
@@ -265,11 +274,11 @@ static void pier_tag_pf_moments(pier_tag_pf_t *s)
         }
         tot += wi;
         for (j = 0u; j < 4u; ++j) {
-            m[j] += wi * s->part[i][j];
+            m[j] += wi * (s->part[i][j] - ref[j]);
         }
     }
     for (j = 0u; j < 4u; ++j) {
-        s->x[j] = m[j] / tot;
+        s->x[j] = ref[j] + m[j] / tot;
     }
     for (i = 0u; i < 1000u; ++i) {
         float d[4];
@@ -568,6 +577,7 @@ int pier_tag_pf_update_pier_nis(pier_tag_pf_t *s, const float *z, float *nis_out
     float Lr[4];
     float sr[2];
     float srr[3];
+    float r0[2];  /* the first residual: the others are accumulated about it */
     float top = -HUGE_VALF;
     float tot = 0.0F;
     float wsum = 0.0F;
@@ -587,6 +597,7 @@ int pier_tag_pf_update_pier_nis(pier_tag_pf_t *s, const float *z, float *nis_out
     }
     for (k = 0u; k < 2u; ++k) {
         sr[k] = 0.0F;
+        r0[k] = 0.0F;
     }
     for (k = 0u; k < 3u; ++k) {
         srr[k] = 0.0F;
@@ -614,7 +625,13 @@ int pier_tag_pf_update_pier_nis(pier_tag_pf_t *s, const float *z, float *nis_out
         top = (s->w[i] > top) ? s->w[i] : top;
         ++ok;
         if (want) {
+            if (ok == 1u) {
+                memcpy(r0, r, sizeof r0);
+            }
             tot += wi;
+            for (a = 0u; a < 2u; ++a) {
+                r[a] -= r0[a];
+            }
             k = 0u;
             for (a = 0u; a < 2u; ++a) {
                 sr[a] += wi * r[a];
@@ -646,6 +663,9 @@ int pier_tag_pf_update_pier_nis(pier_tag_pf_t *s, const float *z, float *nis_out
         if (pier_tag_pf_chol(srr, 2u, -1.0F, Ls) != PIER_TAG_PF_OK) {
             pier_tag_pf_restore_w(s);
             return PIER_TAG_PF_NON_FINITE;
+        }
+        for (a = 0u; a < 2u; ++a) {
+            sr[a] += r0[a];  /* y = r0 + the mean deviation */
         }
         nis = pier_tag_pf_solve(Ls, 2u, sr, bs);
         if (!isfinite(nis)) {
@@ -685,6 +705,7 @@ int pier_tag_pf_update_shadow_nis(pier_tag_pf_t *s, const float *z, float *nis_o
     float Lr[1];
     float sr[1];
     float srr[1];
+    float r0[1];  /* the first residual: the others are accumulated about it */
     float top = -HUGE_VALF;
     float tot = 0.0F;
     float wsum = 0.0F;
@@ -704,6 +725,7 @@ int pier_tag_pf_update_shadow_nis(pier_tag_pf_t *s, const float *z, float *nis_o
     }
     for (k = 0u; k < 1u; ++k) {
         sr[k] = 0.0F;
+        r0[k] = 0.0F;
     }
     for (k = 0u; k < 1u; ++k) {
         srr[k] = 0.0F;
@@ -731,7 +753,13 @@ int pier_tag_pf_update_shadow_nis(pier_tag_pf_t *s, const float *z, float *nis_o
         top = (s->w[i] > top) ? s->w[i] : top;
         ++ok;
         if (want) {
+            if (ok == 1u) {
+                memcpy(r0, r, sizeof r0);
+            }
             tot += wi;
+            for (a = 0u; a < 1u; ++a) {
+                r[a] -= r0[a];
+            }
             k = 0u;
             for (a = 0u; a < 1u; ++a) {
                 sr[a] += wi * r[a];
@@ -763,6 +791,9 @@ int pier_tag_pf_update_shadow_nis(pier_tag_pf_t *s, const float *z, float *nis_o
         if (pier_tag_pf_chol(srr, 1u, -1.0F, Ls) != PIER_TAG_PF_OK) {
             pier_tag_pf_restore_w(s);
             return PIER_TAG_PF_NON_FINITE;
+        }
+        for (a = 0u; a < 1u; ++a) {
+            sr[a] += r0[a];  /* y = r0 + the mean deviation */
         }
         nis = pier_tag_pf_solve(Ls, 1u, sr, bs);
         if (!isfinite(nis)) {

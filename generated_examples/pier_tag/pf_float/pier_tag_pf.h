@@ -59,8 +59,8 @@
  * besides the early refusals), each block headed by a section comment:
  *   pier_tag_pf_set_state: 76 lines
  *   pier_tag_pf_predict: 71 lines
- *   pier_tag_pf_update_pier_nis: 103 lines
- *   pier_tag_pf_update_shadow_nis: 103 lines
+ *   pier_tag_pf_update_pier_nis: 114 lines
+ *   pier_tag_pf_update_shadow_nis: 114 lines
  * Particles: N = 1000, stored in the struct (1000 x 4 states, 1000 log-weights, 1000 weights):
  * 24000 of its 24072 bytes. Resampling when ESS < 0.5 N (systematic, in place);
  * roughening K = 0.2.
