@@ -784,6 +784,8 @@ def _recommend(outcomes: Dict[str, FilterOutcome], margin: float, budget: Budget
             continue
         if o.budget_misses:
             why = "does not fit: " + "; ".join(o.budget_misses)
+            if _nearly_consistent(o) and not o.diverged_runs and o.accuracy_ratio <= 1.0 + margin:
+                why += f" (it is consistent and {limit}: a larger part or a lower rate would take it)"
         elif not o.consistent:
             why = _inconsistency(o, lin)
         elif o.diverged_runs:
