@@ -75,7 +75,7 @@ def test_filters_see_the_same_truths_as_simulate() -> None:
 def test_linear_gaussian_model_ekf_and_ukf_tie_and_the_cheapest_wins() -> None:
     # On a linear model with Gaussian noise the EKF is the Kalman filter and the unscented
     # transform is exact, so both compute the same estimate (Julier & Uhlmann, Proc. IEEE 92(3),
-    # 2004, section IV: the UT is exact for linear maps; common practice). The tie must show
+    # 2004: the UT is exact for linear maps; common practice). The tie must show
     # in the RMSE, the linearization check must read zero, and the cheaper filter must be picked.
     c = compare(CART, runs=10, steps=100, seed=2, options={"pf": {"particles": 300}}, progress=False)
     assert set(c.filters) == {"ekf", "ukf", "pf"}  # every kind that accepts the model joins
@@ -117,7 +117,7 @@ def test_falling_body_ukf_estimates_the_ballistic_coefficient_better() -> None:
 
 
 def test_growth_model_particle_filter_beats_the_ekf() -> None:
-    # Gordon, Salmond & Smith, IEE Proc. F 140(2), 1993, section 4: on the univariate
+    # Gordon, Salmond & Smith, IEE Proc. F 140(2), 1993 (section from memory: 4): on the univariate
     # nonstationary growth model (set-up in tests/models/growth.py) the bootstrap particle
     # filter's error is far below the EKF's, whose Gaussian linearization cannot follow the
     # bimodal posterior that z = x^2/20 leaves (their figures; also Arulampalam et al. 2002,
