@@ -25,10 +25,10 @@ from typing import Any, Dict, List, Optional, Sequence, Tuple
 
 import numpy as np
 
-from .derive import packed_index, packed_size
 from .emit import Generated
 from .errors import BuildError, ToolMissing
 from .filters import FilterSetup
+from .layout import pack_upper
 from .model import ModelSpec
 
 __all__ = ["build", "compile_generated", "compiler_used", "CFilter", "cache_dir", "STRICT_FLAGS"]
@@ -160,8 +160,9 @@ def compile_generated(gen: Generated, cflags: Optional[Sequence[str]] = None,
 class CFilter:
     """The generated C filter, driven from Python with the reference's interface.
 
-    ``x`` and ``P`` are float64 copies (P unpacked to a full symmetric matrix); arguments are
-    converted to the C's precision on the way in, as firmware would hand them over.
+    ``x`` and ``P`` are float64 copies (P unpacked to a full symmetric matrix), read through the
+    generated struct's layout (:class:`~estgen.layout.StructLayout`); arguments are converted to
+    the C's precision on the way in, as firmware would hand them over.
     """
 
     def __init__(self, spec: ModelSpec, comp: _Compiled, filter: str, seed: Optional[int] = None) -> None:
@@ -170,6 +171,7 @@ class CFilter:
         self.n = spec.n
         self.ne = spec.ne  # covariance dimension: n minus one per attitude
         self.precision = comp.gen.precision
+        self._layout = comp.gen.layout
         self._ffi = comp.ffi
         self._lib = comp.lib
         self._prefix = comp.gen.prefix
@@ -186,7 +188,6 @@ class CFilter:
         self._set_state = getattr(self._lib, f"{self._prefix}_set_state")
         self.sensors = [s.name for s in spec.sensors]
         self.nis = float("nan")
-        self._pidx = [[packed_index(i, j, self.ne) for j in range(self.ne)] for i in range(self.ne)]
 
     def _arr(self, values: Sequence[float], length: int, what: str) -> Any:
         vals = [float(v) for v in np.asarray(values, dtype=float).ravel()]
@@ -215,19 +216,18 @@ class CFilter:
 
     @property
     def x(self) -> np.ndarray:
-        return np.array([self._s.x[i] for i in range(self.n)], dtype=float)
+        return self._layout.state(self._ffi, self._s)
 
     @property
     def P(self) -> np.ndarray:
-        packed = [self._s.P[k] for k in range(packed_size(self.ne))]
-        return np.array([[packed[self._pidx[i][j]] for j in range(self.ne)] for i in range(self.ne)], dtype=float)
+        return self._layout.covariance(self._ffi, self._s)
 
     def set_state(self, x: Sequence[float], P: Any) -> int:
         """Replace x and P (full matrix; its upper triangle is used) after validation."""
         Pm = np.asarray(P, dtype=float)
         if Pm.shape != (self.ne, self.ne):
             raise ValueError(f"P must be {self.ne}x{self.ne}")
-        packed = [Pm[i, j] for i in range(self.ne) for j in range(i, self.ne)]
+        packed = pack_upper(Pm)
         # non-finite values are the C's to refuse (BAD_INPUT comes first, as in the reference)
         finite = bool(np.all(np.isfinite(Pm))) and bool(np.all(np.isfinite(np.asarray(x, dtype=float))))
         if finite and not np.allclose(Pm, Pm.T, rtol=1e-9, atol=0.0):
@@ -236,7 +236,7 @@ class CFilter:
 
     @property
     def params(self) -> Dict[str, float]:
-        return {p.name: float(getattr(self._s.par, p.name)) for p in self.spec.params}
+        return self._layout.params_of(self._s)
 
     def set_param(self, name: str, value: float) -> None:
         if name not in {p.name for p in self.spec.params}:

@@ -26,6 +26,7 @@ from typing import Any, Dict, List, Mapping, Optional, Sequence, Tuple, Union
 import numpy as np
 
 from .errors import ToolMissing
+from .layout import packed_size, unpack
 
 __all__ = [
     "ToolMissing",
@@ -422,7 +423,7 @@ def replay_header(spec: Any, filter: str, precision: str, scenario: Any) -> str:
         f"#define REPLAY_INIT {pre}_init",
         f"#define REPLAY_PREDICT {pre}_predict",
         f"#define REPLAY_NX {spec.n}u",
-        f"#define REPLAY_NP {spec.ne * (spec.ne + 1) // 2}u /* packed covariance entries (error dimension) */",
+        f"#define REPLAY_NP {packed_size(spec.ne)}u /* packed covariance entries (error dimension) */",
         f"#define REPLAY_STEPS {steps}u",
         f"#define REPLAY_NSENSORS {len(sensors)}u",
         f"#define REPLAY_NMEAS {len(meas_step)}u",
@@ -547,15 +548,13 @@ class ReplayResult:
 
     @property
     def P(self) -> np.ndarray:
-        """The final covariance, unpacked from the upper triangle stored row by row."""
+        """The final covariance, unpacked from the upper triangle stored row by row (its
+        dimension is the error dimension: n minus one per attitude)."""
         packed = self._decode(self.P_bits)
-        # P has the error dimension (n minus one per attitude): read it off the packed length
-        n = int(round((math.sqrt(8 * packed.size + 1) - 1) / 2))
-        if packed.size != n * (n + 1) // 2:
-            raise RuntimeError(f"{packed.size} covariance entries is no packed symmetric matrix")
-        full = np.zeros((n, n))
-        full[np.triu_indices(n)] = packed  # row-major upper triangle: the generated layout
-        return full + np.triu(full, 1).T
+        ne = int(round((math.sqrt(8 * packed.size + 1) - 1) / 2))
+        if packed_size(ne) != packed.size:
+            raise RuntimeError(f"{packed.size} covariance entries are no packed symmetric matrix")
+        return unpack(packed, ne)
 
     def instructions_per_tick(self) -> Optional[float]:
         """From the calibration loops: 2*iters more instructions took (t2 - t1) more ticks."""

@@ -19,6 +19,7 @@ from typing import Dict, Iterable, List, Optional, Sequence, Tuple
 
 import sympy as sp
 
+from .layout import packed_index, packed_size
 from .model import ModelSpec, SensorSpec
 
 __all__ = [
@@ -37,17 +38,6 @@ __all__ = [
     "EKF_PREDICT_SECTIONS",
     "EKF_BLOCK_UPDATE_SECTIONS",
 ]
-
-
-def packed_index(i: int, j: int, n: int) -> int:
-    """Index of entry (i, j) of a symmetric n x n matrix in packed upper-triangular storage."""
-    if i > j:
-        i, j = j, i
-    return i * n - i * (i - 1) // 2 + (j - i)
-
-
-def packed_size(n: int) -> int:
-    return n * (n + 1) // 2
 
 
 @dataclass(frozen=True)

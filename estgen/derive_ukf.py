@@ -751,14 +751,8 @@ def commit_check(n: int, P: str) -> List[Stmt]:
 
 
 def derive_ukf(spec: ModelSpec, wts: UkfWeights) -> UkfCode:
-    """Everything the UKF template needs for ``spec`` (models with attitudes: the error-space
-    transform of :mod:`estgen.derive_ukf_att`)."""
-    if spec.attitudes:
-        from .derive_ukf_att import derive_ukf_attitude_predict, derive_ukf_attitude_update
-
-        code = UkfCode(spec, wts, derive_ukf_attitude_predict(spec, wts))
-        code.updates = [derive_ukf_attitude_update(s, spec, wts) for s in spec.sensors]
-        return code
+    """Everything the UKF template needs for ``spec`` (models without attitudes; with them,
+    :func:`estgen.derive_ukf_att.derive_ukf_attitude`)."""
     code = UkfCode(spec, wts, derive_ukf_predict(spec, wts))
     for s in spec.sensors:
         code.updates.append(derive_ukf_update(s, spec, wts))

@@ -29,12 +29,12 @@ import sympy as sp
 
 from . import quat
 from .derive import Stmt, c_names, packed_index
-from .derive_ukf import (UkfPredictCode, UkfUpdateCode, UkfWeights, _augmented, _Block, _count_locals,
+from .derive_ukf import (UkfCode, UkfPredictCode, UkfUpdateCode, UkfWeights, _augmented, _Block, _count_locals,
                          _gain_and_commit, _used)
 from .errorstate import inject, normalize
 from .model import ModelSpec, SensorSpec
 
-__all__ = ["derive_ukf_attitude_predict", "derive_ukf_attitude_update"]
+__all__ = ["derive_ukf_attitude", "derive_ukf_attitude_predict", "derive_ukf_attitude_update"]
 
 
 def _sym(name: str) -> sp.Symbol:
@@ -212,3 +212,10 @@ def derive_ukf_attitude_update(sensor: SensorSpec, spec: ModelSpec, wts: UkfWeig
     stmts = blk.pruned()
     return UkfUpdateCode(sensor, stmts, _used(stmts, "par->"), m, wrap.count,
                          _count_locals(stmts, ("hg", "hy", "hd", "hD", "hmu")))
+
+
+def derive_ukf_attitude(spec: ModelSpec, wts: UkfWeights) -> UkfCode:
+    """Everything the UKF template needs for a model with attitude states: the error-space transform."""
+    code = UkfCode(spec, wts, derive_ukf_attitude_predict(spec, wts))
+    code.updates = [derive_ukf_attitude_update(s, spec, wts) for s in spec.sensors]
+    return code

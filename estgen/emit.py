@@ -29,6 +29,7 @@ from .chi2 import chi2_ppf
 from .derive import (CERT_KAPPA, EKF_BLOCK_UPDATE_SECTIONS, EKF_PREDICT_SECTIONS, Stmt, angle_wraps, derive_ekf,
                      ekf_sequential_sections, packed_index, packed_size, with_sections)
 from .errors import ModelError
+from .layout import Field, StructLayout
 from .model import ModelSpec, unit_problem
 from .status import ADVICE, PRECEDENCE, Status
 
@@ -314,12 +315,17 @@ class Generated:
     prefix: str
     filter: str
     precision: str
-    struct_bytes: int
+    layout: StructLayout  # the filter struct: header, cdef and the harness read it
     ops: Dict[str, Dict[str, int]] = field(default_factory=dict)
     cdef: str = ""
     lines_of_c: int = 0
     header: str = ""
     source: str = ""
+
+    @property
+    def struct_bytes(self) -> int:
+        """sizeof the filter struct (all filter state)."""
+        return self.layout.size_bytes(self.precision)
 
 
 def model_sha256(path: Optional[str]) -> str:
@@ -380,13 +386,17 @@ def _common_context(spec: ModelSpec, setup: "FilterSetup") -> Dict[str, Any]:
     n = spec.n
     ne = spec.ne  # the covariance's dimension: n minus one per attitude
     np_ = packed_size(ne)
-    size_real = 4 if precision == "float" else 8
-    struct_bytes = (n + np_ + len(spec.params)) * size_real
+    params = [{"name": p.name, "default": em.lit(p.default), "unit": safe_comment(p.unit)} for p in spec.params]
+    layout = StructLayout.kalman(
+        prefix, em.real, n, ne,
+        [Field(p["name"], "real", (), f"default {p['default']}" + (f" [{p['unit']}]" if p["unit"] else ""))
+         for p in params],
+        setup.kind.extra_fields(spec, setup))
+    struct_bytes = layout.size_bytes(precision)
     states = [
         {"i": i, "name": s.name, "unit": safe_comment(s.unit), "angle": s.angle} for i, s in enumerate(spec.states)
     ]
     inputs = [{"i": i, "name": s.name, "unit": safe_comment(s.unit)} for i, s in enumerate(spec.inputs)]
-    params = [{"name": p.name, "default": em.lit(p.default), "unit": safe_comment(p.unit)} for p in spec.params]
     x0 = [em.lit(v) for v in spec.x0]
     P0 = [(packed_index(i, j, ne), em.lit(spec.P0[i][j])) for i in range(ne) for j in range(i, ne)]
     sensors = []
@@ -451,6 +461,7 @@ def _common_context(spec: ModelSpec, setup: "FilterSetup") -> Dict[str, Any]:
         "sensors": sensors,
         "statuses": statuses,
         "struct_bytes": struct_bytes,
+        "layout": layout,
         "zero": em.lit(0.0),
         "one": em.lit(1.0),
         "pi": em.lit(3.141592653589793),
@@ -479,7 +490,7 @@ def _render(ctx: Dict[str, Any]) -> Generated:
     prefix = ctx["prefix"]
     files = {f"{prefix}.h": header, f"{prefix}.c": source}
     lines = header.count("\n") + source.count("\n")
-    return Generated(files, prefix, ctx["filt"], ctx["precision"], ctx["struct_bytes"], ctx.get("ops", {}), cdef,
+    return Generated(files, prefix, ctx["filt"], ctx["precision"], ctx["layout"], ctx.get("ops", {}), cdef,
                      lines, header, source)
 
 

@@ -20,16 +20,7 @@ from .pf import DEFAULT_SEED, PSD_TOL, PfOptions
 if TYPE_CHECKING:
     from .filters import FilterSetup
 
-__all__ = ["generate_pf", "pf_struct_bytes"]
-
-
-def pf_struct_bytes(spec: ModelSpec, precision: str, particles: int) -> int:
-    """sizeof the particle filter's struct: x, packed P, parameters, N x n particles, N
-    log-weights, N weights (reals), two 32-bit generator words and the kept normal (a real).
-    The fields are ordered so that no padding is needed."""
-    size_real = 4 if precision == "float" else 8
-    reals = spec.n + packed_size(spec.n) + len(spec.params) + particles * (spec.n + 2) + 1
-    return reals * size_real + 8
+__all__ = ["generate_pf"]
 
 
 def _model_functions(spec: ModelSpec, em: Emitter, ops: Dict[str, OpCount]) -> Dict[str, Any]:
@@ -128,7 +119,6 @@ def generate_pf(spec: ModelSpec, setup: "FilterSetup", opts: PfOptions) -> Gener
     ctx["half"] = em.lit(0.5)
     ctx["minus_two"] = em.lit(-2.0)
     ctx["huge"] = "HUGE_VALF" if precision == "float" else "HUGE_VAL"
-    ctx["struct_bytes"] = pf_struct_bytes(spec, precision, N)
     size_real = 4 if precision == "float" else 8
     ctx["memory_note"] = [
         f"Particles: N = {N}, stored in the struct ({N} x {n} states, {N} log-weights, {N} weights):",

@@ -9,6 +9,7 @@ from typing import TYPE_CHECKING, Any, Dict, List
 
 from .derive import with_sections
 from .derive_ukf import UKF_PREDICT_SECTIONS, UKF_UPDATE_SECTIONS, UkfWeights, derive_ukf, factor_function
+from .derive_ukf_att import derive_ukf_attitude
 from .emit import Emitter, Generated, OpCount, _common_context, _render
 from .model import ModelSpec
 
@@ -46,7 +47,7 @@ def generate_ukf(spec: ModelSpec, setup: "FilterSetup", wts: UkfWeights) -> Gene
     ctx = _common_context(spec, setup)
     em: Emitter = ctx["emitter"]
     precision = setup.precision
-    code = derive_ukf(spec, wts)
+    code = derive_ukf_attitude(spec, wts) if spec.attitudes else derive_ukf(spec, wts)
     size_real = 4 if precision == "float" else 8
     n, np_ = ctx["n"], ctx["np"]
     ne = ctx["ne"]  # sigma points live in the error space (ne = n without attitudes)

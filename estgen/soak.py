@@ -31,6 +31,7 @@ import sympy as sp
 from . import filters
 from .errors import ModelError
 from .filters import FilterSetup
+from .layout import unpack
 from .model import ModelSpec, as_spec
 from .reference import model_functions, wrap_angle
 from .status import Status
@@ -38,7 +39,7 @@ from .status import Status
 if TYPE_CHECKING:  # only for the annotation; emit imports sympy printers at run time
     from .emit import Generated
 
-__all__ = ["SoakResult", "soak", "packed_to_full", "batch_posdef", "within_rounding", "add_arguments", "run", "PROFILES"]
+__all__ = ["SoakResult", "soak", "batch_posdef", "within_rounding", "add_arguments", "run", "PROFILES"]
 
 #: input profiles: the model's own scenario inputs, or those inputs with their sign flipped every
 #: ``period`` seconds (keeps integrating states such as a cell's charge inside their range)
@@ -98,15 +99,6 @@ class SoakResult:
             if not math.isfinite(d[k]):
                 d[k] = None
         return d
-
-
-def packed_to_full(Pp: np.ndarray, n: int) -> np.ndarray:
-    """Unpack row-major packed upper triangles, shape (..., n(n+1)/2), to full (..., n, n)."""
-    iu = np.triu_indices(n)
-    full = np.zeros(Pp.shape[:-1] + (n, n), dtype=np.float64)
-    full[..., iu[0], iu[1]] = Pp
-    full[..., iu[1], iu[0]] = Pp
-    return full
 
 
 def batch_posdef(P: np.ndarray) -> Tuple[np.ndarray, Optional[np.ndarray]]:
@@ -273,8 +265,9 @@ def soak(model: Any, filter: str = "ekf", precision: str = "float", steps: int =
     ffi, lib = comp.ffi, comp.lib
     real = "float" if precision == "float" else "double"
     dtype = np.float32 if precision == "float" else np.float64
-    n, nu, ne = spec.n, spec.nu, spec.ne
-    npk = n_packed(ne)
+    layout = gen.layout
+    n, nu, ne = spec.n, spec.nu, layout.ne
+    npk = layout.field("P").count
     prefix = gen.prefix
 
     s = ffi.new(f"{prefix}_t *")
@@ -282,8 +275,8 @@ def soak(model: Any, filter: str = "ekf", precision: str = "float", steps: int =
         getattr(lib, f"{prefix}_init_seed")(s, int(seed) & 0xFFFFFFFF)
     else:
         getattr(lib, f"{prefix}_init")(s)
-    x_view = np.frombuffer(ffi.buffer(s.x), dtype=dtype)  # live views of the struct
-    p_view = np.frombuffer(ffi.buffer(s.P), dtype=dtype)
+    x_view = layout.view(ffi, s, "x")  # live views of the struct
+    p_view = layout.view(ffi, s, "P")
     predict = getattr(lib, f"{prefix}_predict")
     updates = [(sd.name, getattr(lib, f"{prefix}_update_{sd.name}"), sd.m) for sd in spec.sensors]
     dt_c = float(dtype(dtv))
@@ -324,7 +317,7 @@ def soak(model: Any, filter: str = "ekf", precision: str = "float", steps: int =
         # the invariants, checked in float64 on exactly the values the C holds
         x64 = Xc.astype(np.float64)
         finite = np.isfinite(x64).all(axis=1) & np.isfinite(Pc.astype(np.float64)).all(axis=1)
-        P64 = packed_to_full(np.where(np.isfinite(Pc), Pc, 0.0).astype(np.float64), ne)
+        P64 = unpack(np.where(np.isfinite(Pc), Pc, 0.0), ne)
         for a in spec.attitudes:  # |q| as the C holds it (float64 arithmetic on its values)
             if finite.any():
                 dev = np.abs(np.linalg.norm(x64[finite, a:a + 4], axis=1) - 1.0)
@@ -365,11 +358,6 @@ def soak(model: Any, filter: str = "ekf", precision: str = "float", steps: int =
     res.update_status = {name: {Status(k).name if k in Status._value2member_map_ else str(k): v
                                 for k, v in sorted(c.items())} for name, c in ust.items()}
     return res
-
-
-def n_packed(n: int) -> int:
-    """Entries of a packed symmetric n x n matrix."""
-    return n * (n + 1) // 2
 
 
 def format_result(res: SoakResult) -> str:

@@ -19,7 +19,8 @@ import numpy as np
 import pytest
 
 from estgen.reference import model_functions, wrap_angle
-from estgen.soak import _Truth, batch_posdef, packed_to_full, soak
+from estgen.layout import unpack
+from estgen.soak import _Truth, batch_posdef, soak
 from test_robustness import CONFIGS, REPO, generated, model_path, spec_of
 
 STEPS = 20000
@@ -62,7 +63,7 @@ def test_soak_reports_a_truth_that_leaves_the_model_domain():
 
 def test_packed_layout_and_batch_cholesky():
     # the header's packed layout: row-major upper triangle
-    full = packed_to_full(np.arange(6.0)[None, :], 3)[0]
+    full = unpack(np.arange(6.0)[None, :], 3)[0]
     assert np.array_equal(full, np.array([[0.0, 1.0, 2.0], [1.0, 3.0, 4.0], [2.0, 4.0, 5.0]]))
     good = np.array([[2.0, 1.0], [1.0, 2.0]])
     bad = np.array([[1.0, 2.0], [2.0, 1.0]])  # eigenvalues 3 and -1

@@ -15,9 +15,10 @@ import abc
 import argparse
 import dataclasses
 from dataclasses import dataclass
-from typing import TYPE_CHECKING, Any, Callable, ClassVar, Dict, Mapping, Optional, Tuple, Type
+from typing import TYPE_CHECKING, Any, Callable, ClassVar, Dict, Mapping, Optional, Sequence, Tuple, Type
 
 from ..errors import UsageError
+from ..layout import Field
 
 if TYPE_CHECKING:  # annotations only: the kinds import the emitters, not this module
     from ..emit import Generated
@@ -110,6 +111,10 @@ class FilterKind(abc.ABC):
             takes = ", ".join(sorted(known)) if known else "none"
             raise UsageError(f"unknown {self.name.upper()} option(s) {unknown}; the {self.name.upper()} takes {takes}")
         return self.Options(**{k: v for k, v in values.items() if v is not None})
+
+    def extra_fields(self, spec: "ModelSpec", setup: "FilterSetup") -> Sequence[Field]:
+        """Struct members after x, P and the parameters (:class:`~estgen.layout.StructLayout`)."""
+        return ()
 
     @abc.abstractmethod
     def check_support(self, spec: "ModelSpec") -> None:

@@ -5,10 +5,11 @@ validated by :func:`estgen.pf.pf_options`."""
 from __future__ import annotations
 
 from dataclasses import dataclass, field
-from typing import TYPE_CHECKING, Any, Mapping, Optional, cast
+from typing import TYPE_CHECKING, Any, Mapping, Optional, Sequence, cast
 
 from ..emit import Generated
 from ..emit_pf import generate_pf
+from ..layout import Field
 from ..model import ModelSpec
 from ..pf import DEFAULT_PARTICLES, DEFAULT_SEED, PfOptions, ReferencePF, pf_options
 from ..reference import ModelFunctions
@@ -53,6 +54,16 @@ class PF(FilterKind):
     template = "pf.c.j2"
     Options = PfKindOptions
     gaussian = False
+
+    def extra_fields(self, spec: ModelSpec, setup: "FilterSetup") -> Sequence[Field]:
+        N, n = cast(PfKindOptions, setup.options).particles, spec.n
+        return (Field("part", "real", (N, n), "the particles"),
+                Field("lw", "real", (N,), "log-weights: the largest is 0, a dropped particle's -inf"),
+                Field("w", "real", (N,), "exp(lw): the weights, largest 1 (work storage inside calls)", gap=3),
+                Field("rng", "uint32_t", (), "generator state, 1 .. 2^31-2", gap=18),
+                Field("rng_has_spare", "uint32_t", (), "1 when rng_spare holds the second normal of a polar pair",
+                      gap=8),
+                Field("rng_spare", "real"))
 
     def check_support(self, spec: ModelSpec) -> None:
         """The particle filter evaluates f and h without derivatives: every model without
