@@ -587,6 +587,13 @@ def derive_ekf_update(spec: SensorSpec, mspec: ModelSpec) -> EkfUpdateCode:
             e = (S[(i, j)] - sum((L[(i, k)] * L[(j, k)] for k in range(j)), sp.S.Zero)) * iL[j]
             stmts.append(Stmt("decl", f"L{i}_{j}", e))
             L[(i, j)] = sp.Symbol(f"L{i}_{j}")
+    # nis = |L^-1 y|^2 first: the gate is evaluated before the gain and the posterior
+    b: List[sp.Symbol] = []
+    for i in range(m):
+        e = (sp.Symbol(f"y[{i}]") - sum((L[(i, j)] * b[j] for j in range(i)), sp.S.Zero)) * iL[i]
+        stmts.append(Stmt("decl", f"b{i}", e))
+        b.append(sp.Symbol(f"b{i}"))
+    stmts.append(Stmt("assign", "nis", sum((bi * bi for bi in b), sp.S.Zero)))
     # K = W S^-1: for each row k solve L a = W_k, then L' K_k = a
     Km = sp.Matrix(n, m, lambda k, c: sp.Symbol(f"K[{k * m + c}]"))
     for k in range(n):
@@ -598,13 +605,6 @@ def derive_ekf_update(spec: SensorSpec, mspec: ModelSpec) -> EkfUpdateCode:
         for i in reversed(range(m)):
             e = (a[i] - sum((L[(j, i)] * Km[k, j] for j in range(i + 1, m)), sp.S.Zero)) * iL[i]
             stmts.append(Stmt("assign", f"K[{k * m + i}]", e))
-    # nis = |L^-1 y|^2
-    b: List[sp.Symbol] = []
-    for i in range(m):
-        e = (sp.Symbol(f"y[{i}]") - sum((L[(i, j)] * b[j] for j in range(i)), sp.S.Zero)) * iL[i]
-        stmts.append(Stmt("decl", f"b{i}", e))
-        b.append(sp.Symbol(f"b{i}"))
-    stmts.append(Stmt("assign", "nis", sum((bi * bi for bi in b), sp.S.Zero)))
     Vm = sp.Matrix(n, m, lambda k, c: sp.Symbol(f"V[{k * m + c}]"))
     for k in range(n):
         for c in range(m):

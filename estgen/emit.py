@@ -494,6 +494,15 @@ def _render(ctx: Dict[str, Any]) -> Generated:
                      lines, header, source)
 
 
+def gate_split(stmts: Sequence[Stmt]) -> Tuple[List[Stmt], List[Stmt]]:
+    """An update's statements up to the one completing the NIS, and the rest: the template
+    reports the NIS and evaluates the gate between the two, before the posterior is formed."""
+    k = max((i for i, st in enumerate(stmts) if st.kind == "assign" and st.target == "nis"), default=-1) + 1
+    if k == 0:
+        raise ValueError("an update without a NIS")
+    return list(stmts[:k]), list(stmts[k:])
+
+
 @lru_cache(maxsize=64)
 def pivot_check(n: int, P: str) -> Tuple[Stmt, ...]:
     """The unrolled Cholesky pivot check every commit goes through (shared by both filters;
@@ -535,10 +544,11 @@ def generate_ekf(spec: ModelSpec, setup: "FilterSetup") -> Generated:
     for uc, sctx in zip(code.updates, ctx["sensors"]):
         oc = OpCount()
         rules = ekf_sequential_sections(uc.sensor) if uc.sequential else EKF_BLOCK_UPDATE_SECTIONS
-        body = em.lines(with_sections(uc.stmts + angle_wraps(spec, "xs"), rules), oc)
+        head, rest = gate_split(with_sections(uc.stmts + angle_wraps(spec, "xs"), rules))
+        body, after = em.lines(head, oc), em.lines(rest, oc)
         oc += OpCount(**ctx["commit_ops"][ctx["commit_fns"]["update"]])
         ops[f"update_{uc.sensor.name}"] = oc.as_dict()
-        ups.append({**sctx, "lines": body, "uses_par": uc.uses_par, "w_size": uc.w_size,
+        ups.append({**sctx, "lines": body, "rest": after, "uses_par": uc.uses_par, "w_size": uc.w_size,
                     "k_size": uc.k_size, "v_size": uc.v_size, "sequential": uc.sequential, "dx_size": uc.dx_size})
     ctx["updates"] = ups
     ctx["ops"] = ops

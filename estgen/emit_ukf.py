@@ -10,7 +10,7 @@ from typing import TYPE_CHECKING, Any, Dict, List
 from .derive import with_sections
 from .derive_ukf import UKF_PREDICT_SECTIONS, UKF_UPDATE_SECTIONS, UkfWeights, derive_ukf, factor_function
 from .derive_ukf_att import derive_ukf_attitude
-from .emit import Emitter, Generated, OpCount, _common_context, _render
+from .emit import Emitter, Generated, OpCount, _common_context, _render, gate_split
 from .model import ModelSpec
 
 if TYPE_CHECKING:
@@ -70,13 +70,14 @@ def generate_ukf(spec: ModelSpec, setup: "FilterSetup", wts: UkfWeights) -> Gene
     u_bytes = 0
     for uc, sctx in zip(code.updates, ctx["sensors"]):
         oc = OpCount()
-        body = em.lines(with_sections(uc.stmts, UKF_UPDATE_SECTIONS), oc)
+        head, rest = gate_split(with_sections(uc.stmts, UKF_UPDATE_SECTIONS))
+        body, after = em.lines(head, oc), em.lines(rest, oc)
         oc += fc
         oc += OpCount(**ctx["commit_ops"][ctx["commit_fns"]["update"]])
         ops[f"update_{uc.sensor.name}"] = oc.as_dict()
         decls = sum(1 for st in uc.stmts if st.kind == "decl")
         u_bytes = max(u_bytes, _stack_bytes(decls, n + 2 * np_ + uc.m + 1 + uc.angle_scratch, size_real))
-        ups.append({**sctx, "lines": body, "uses_par": uc.uses_par, "ea": uc.angle_scratch})
+        ups.append({**sctx, "lines": body, "rest": after, "uses_par": uc.uses_par, "ea": uc.angle_scratch})
     ctx["updates"] = ups
     ctx["ops"] = ops
     ctx["weights"] = {"wm0": em.lit(wts.wm0), "wm": em.lit(wts.w), "wc0": em.lit(wts.wc0),

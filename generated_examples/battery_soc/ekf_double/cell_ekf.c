@@ -194,6 +194,14 @@ int cell_ekf_update_voltage_nis(cell_ekf_t *s, const double *z, double *nis_out)
     const double is0 = (1.0/s0);
     const double r0_t = y[0];
     nis = nis + is0*(r0_t*r0_t);
+    /* the NIS is complete: report it, and gate before the posterior is formed */
+    if (!isfinite(nis)) {
+        return CELL_EKF_NON_FINITE;
+    }
+    if (nis_out != NULL) {
+        *nis_out = nis;
+    }
+
     K[0] = W[0]*is0;
     K[1] = W[1]*is0;
     K[2] = W[2]*is0;
@@ -216,12 +224,6 @@ int cell_ekf_update_voltage_nis(cell_ekf_t *s, const double *z, double *nis_out)
         }
     }
 
-    if (!isfinite(nis)) {
-        return CELL_EKF_NON_FINITE;
-    }
-    if (nis_out != NULL) {
-        *nis_out = nis;
-    }
     memcpy(s->x, xs, sizeof xs);
     memcpy(s->P, Ps, sizeof Ps);
     return CELL_EKF_OK;

@@ -270,6 +270,14 @@ int cell_ukf_update_voltage_nis(cell_ukf_t *s, const double *z, double *nis_out)
     const double iS = (1.0/Sd0);
     /* NIS = y' S^-1 y */
     nis = iS*(y[0]*y[0]);
+    /* the NIS is complete: report it, and gate before the posterior is formed */
+    if (!isfinite(nis)) {
+        return CELL_UKF_NON_FINITE;
+    }
+    if (nis_out != NULL) {
+        *nis_out = nis;
+    }
+
     /* gain */
     const double K0 = C0_0*iS;
     const double K1 = C1_0*iS;
@@ -285,12 +293,6 @@ int cell_ukf_update_voltage_nis(cell_ukf_t *s, const double *z, double *nis_out)
     Ps[3] = P[3] - C1_0*K1;
     Ps[4] = P[4] - C2_0*K1;
     Ps[5] = P[5] - C2_0*K2;
-    if (!isfinite(nis)) {
-        return CELL_UKF_NON_FINITE;
-    }
-    if (nis_out != NULL) {
-        *nis_out = nis;
-    }
     if (!cell_ukf_finite(xs, 3u)) {
         return CELL_UKF_NON_FINITE;
     }

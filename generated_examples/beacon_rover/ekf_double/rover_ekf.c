@@ -258,6 +258,14 @@ int rover_ekf_update_range_a_nis(rover_ekf_t *s, const double *z, double *nis_ou
     const double is0 = (1.0/s0);
     const double r0 = y[0];
     nis = nis + is0*(r0*r0);
+    /* the NIS is complete: report it, and gate before the posterior is formed */
+    if (!isfinite(nis)) {
+        return ROVER_EKF_NON_FINITE;
+    }
+    if (nis_out != NULL) {
+        *nis_out = nis;
+    }
+
     K[0] = W[0]*is0;
     K[1] = W[1]*is0;
     K[2] = W[2]*is0;
@@ -288,12 +296,6 @@ int rover_ekf_update_range_a_nis(rover_ekf_t *s, const double *z, double *nis_ou
         }
     }
 
-    if (!isfinite(nis)) {
-        return ROVER_EKF_NON_FINITE;
-    }
-    if (nis_out != NULL) {
-        *nis_out = nis;
-    }
     memcpy(s->x, xs, sizeof xs);
     memcpy(s->P, Ps, sizeof Ps);
     return ROVER_EKF_OK;
@@ -343,6 +345,14 @@ int rover_ekf_update_range_b_nis(rover_ekf_t *s, const double *z, double *nis_ou
     const double is0 = (1.0/s0);
     const double r0 = y[0];
     nis = nis + is0*(r0*r0);
+    /* the NIS is complete: report it, and gate before the posterior is formed */
+    if (!isfinite(nis)) {
+        return ROVER_EKF_NON_FINITE;
+    }
+    if (nis_out != NULL) {
+        *nis_out = nis;
+    }
+
     K[0] = W[0]*is0;
     K[1] = W[1]*is0;
     K[2] = W[2]*is0;
@@ -373,12 +383,6 @@ int rover_ekf_update_range_b_nis(rover_ekf_t *s, const double *z, double *nis_ou
         }
     }
 
-    if (!isfinite(nis)) {
-        return ROVER_EKF_NON_FINITE;
-    }
-    if (nis_out != NULL) {
-        *nis_out = nis;
-    }
     memcpy(s->x, xs, sizeof xs);
     memcpy(s->P, Ps, sizeof Ps);
     return ROVER_EKF_OK;
@@ -466,6 +470,14 @@ int rover_ekf_update_range_cd_nis(rover_ekf_t *s, const double *z, double *nis_o
     const double is1 = (1.0/s1);
     const double r1 = y[1] - H1_0*(xs[rover_ekf_ix_px] - x[rover_ekf_ix_px]) - H1_1*(xs[rover_ekf_ix_py] - x[rover_ekf_ix_py]);
     nis = nis + is1*(r1*r1);
+    /* the NIS is complete: report it, and gate before the posterior is formed */
+    if (!isfinite(nis)) {
+        return ROVER_EKF_NON_FINITE;
+    }
+    if (nis_out != NULL) {
+        *nis_out = nis;
+    }
+
     K[0] = W[0]*is1;
     K[1] = W[1]*is1;
     K[2] = W[2]*is1;
@@ -496,12 +508,6 @@ int rover_ekf_update_range_cd_nis(rover_ekf_t *s, const double *z, double *nis_o
         }
     }
 
-    if (!isfinite(nis)) {
-        return ROVER_EKF_NON_FINITE;
-    }
-    if (nis_out != NULL) {
-        *nis_out = nis;
-    }
     memcpy(s->x, xs, sizeof xs);
     memcpy(s->P, Ps, sizeof Ps);
     return ROVER_EKF_OK;
@@ -543,6 +549,14 @@ int rover_ekf_update_compass_nis(rover_ekf_t *s, const double *z, double *nis_ou
     const double is0 = (1.0/s0);
     const double r0 = y[0];
     nis = nis + is0*(r0*r0);
+    /* the NIS is complete: report it, and gate before the posterior is formed */
+    if (!isfinite(nis)) {
+        return ROVER_EKF_NON_FINITE;
+    }
+    if (nis_out != NULL) {
+        *nis_out = nis;
+    }
+
     K[0] = W[0]*is0;
     K[1] = W[1]*is0;
     K[2] = W[2]*is0;
@@ -573,12 +587,6 @@ int rover_ekf_update_compass_nis(rover_ekf_t *s, const double *z, double *nis_ou
         }
     }
 
-    if (!isfinite(nis)) {
-        return ROVER_EKF_NON_FINITE;
-    }
-    if (nis_out != NULL) {
-        *nis_out = nis;
-    }
     memcpy(s->x, xs, sizeof xs);
     memcpy(s->P, Ps, sizeof Ps);
     return ROVER_EKF_OK;

@@ -30,9 +30,9 @@
  *   ROVER_EKF_NON_FINITE                 4  the model produced a non-finite value here; reset with set_state if it persists
  *   ROVER_EKF_GATED                      5  measurement rejected as an outlier by the chi-square gate; nothing to do unless it persists
  * When several apply, the first check in call order wins: BAD_INPUT (arguments), BAD_DT
- * (predict), then NON_FINITE / NOT_POSITIVE_DEFINITE in the order the computation meets them
- * (innovation covariance, then the new x and P), and GATED last: a gated update reports GATED
- * only when it would otherwise have been accepted.
+ * (predict), then NON_FINITE / NOT_POSITIVE_DEFINITE of the innovation covariance, then GATED
+ * (the gate is evaluated as soon as the NIS is formed, before the new x and P), then
+ * NON_FINITE / NOT_POSITIVE_DEFINITE of the new x and P.
  *
  * State vector (flt.x):
  *   [0] px [m]
@@ -67,10 +67,10 @@
  * functions are longer because the algebra is unrolled straight-line code (no loops, one exit path
  * besides the early refusals), each block headed by a section comment:
  *   rover_ekf_predict: 83 lines
- *   rover_ekf_update_range_a_nis: 74 lines
- *   rover_ekf_update_range_b_nis: 74 lines
- *   rover_ekf_update_range_cd_nis: 112 lines
- *   rover_ekf_update_compass_nis: 66 lines
+ *   rover_ekf_update_range_a_nis: 76 lines
+ *   rover_ekf_update_range_b_nis: 76 lines
+ *   rover_ekf_update_range_cd_nis: 114 lines
+ *   rover_ekf_update_compass_nis: 68 lines
  */
 #ifndef ROVER_EKF_H
 #define ROVER_EKF_H

@@ -502,6 +502,14 @@ int rover_ukf_update_range_a_nis(rover_ukf_t *s, const float *z, float *nis_out)
     const float iS = (1.0F/Sd0);
     /* NIS = y' S^-1 y */
     nis = iS*(y[0]*y[0]);
+    /* the NIS is complete: report it, and gate before the posterior is formed */
+    if (!isfinite(nis)) {
+        return ROVER_UKF_NON_FINITE;
+    }
+    if (nis_out != NULL) {
+        *nis_out = nis;
+    }
+
     /* gain */
     const float K0 = C0_0*iS;
     const float K1 = C1_0*iS;
@@ -525,12 +533,6 @@ int rover_ukf_update_range_a_nis(rover_ukf_t *s, const float *z, float *nis_out)
     Ps[9] = P[9] - C3_0*K3;
     /* angle states wrapped to (-pi, pi] */
     xs[rover_ukf_ix_psi] = rover_ukf_wrap(xs[rover_ukf_ix_psi]);
-    if (!isfinite(nis)) {
-        return ROVER_UKF_NON_FINITE;
-    }
-    if (nis_out != NULL) {
-        *nis_out = nis;
-    }
     if (!rover_ukf_finite(xs, 4u)) {
         return ROVER_UKF_NON_FINITE;
     }
@@ -617,6 +619,14 @@ int rover_ukf_update_range_b_nis(rover_ukf_t *s, const float *z, float *nis_out)
     const float iS = (1.0F/Sd0);
     /* NIS = y' S^-1 y */
     nis = iS*(y[0]*y[0]);
+    /* the NIS is complete: report it, and gate before the posterior is formed */
+    if (!isfinite(nis)) {
+        return ROVER_UKF_NON_FINITE;
+    }
+    if (nis_out != NULL) {
+        *nis_out = nis;
+    }
+
     /* gain */
     const float K0 = C0_0*iS;
     const float K1 = C1_0*iS;
@@ -640,12 +650,6 @@ int rover_ukf_update_range_b_nis(rover_ukf_t *s, const float *z, float *nis_out)
     Ps[9] = P[9] - C3_0*K3;
     /* angle states wrapped to (-pi, pi] */
     xs[rover_ukf_ix_psi] = rover_ukf_wrap(xs[rover_ukf_ix_psi]);
-    if (!isfinite(nis)) {
-        return ROVER_UKF_NON_FINITE;
-    }
-    if (nis_out != NULL) {
-        *nis_out = nis;
-    }
     if (!rover_ukf_finite(xs, 4u)) {
         return ROVER_UKF_NON_FINITE;
     }
@@ -775,6 +779,14 @@ int rover_ukf_update_range_cd_nis(rover_ukf_t *s, const float *z, float *nis_out
     const float b0 = Lsi0*y[0];
     const float b1 = Lsi1*(y[1] - Ls1_0*b0);
     nis = (b0*b0) + (b1*b1);
+    /* the NIS is complete: report it, and gate before the posterior is formed */
+    if (!isfinite(nis)) {
+        return ROVER_UKF_NON_FINITE;
+    }
+    if (nis_out != NULL) {
+        *nis_out = nis;
+    }
+
     /* gain */
     const float B0_0 = C0_0*Lsi0;
     const float B0_1 = Lsi1*(C0_1 - B0_0*Ls1_0);
@@ -802,12 +814,6 @@ int rover_ukf_update_range_cd_nis(rover_ukf_t *s, const float *z, float *nis_out
     Ps[9] = P[9] - (B3_0*B3_0) - (B3_1*B3_1);
     /* angle states wrapped to (-pi, pi] */
     xs[rover_ukf_ix_psi] = rover_ukf_wrap(xs[rover_ukf_ix_psi]);
-    if (!isfinite(nis)) {
-        return ROVER_UKF_NON_FINITE;
-    }
-    if (nis_out != NULL) {
-        *nis_out = nis;
-    }
     if (!rover_ukf_finite(xs, 4u)) {
         return ROVER_UKF_NON_FINITE;
     }
@@ -888,6 +894,14 @@ int rover_ukf_update_compass_nis(rover_ukf_t *s, const float *z, float *nis_out)
     const float iS = (1.0F/Sd0);
     /* NIS = y' S^-1 y */
     nis = iS*(y[0]*y[0]);
+    /* the NIS is complete: report it, and gate before the posterior is formed */
+    if (!isfinite(nis)) {
+        return ROVER_UKF_NON_FINITE;
+    }
+    if (nis_out != NULL) {
+        *nis_out = nis;
+    }
+
     /* gain */
     const float K0 = C0_0*iS;
     const float K1 = C1_0*iS;
@@ -911,12 +925,6 @@ int rover_ukf_update_compass_nis(rover_ukf_t *s, const float *z, float *nis_out)
     Ps[9] = P[9] - C3_0*K3;
     /* angle states wrapped to (-pi, pi] */
     xs[rover_ukf_ix_psi] = rover_ukf_wrap(xs[rover_ukf_ix_psi]);
-    if (!isfinite(nis)) {
-        return ROVER_UKF_NON_FINITE;
-    }
-    if (nis_out != NULL) {
-        *nis_out = nis;
-    }
     if (!rover_ukf_finite(xs, 4u)) {
         return ROVER_UKF_NON_FINITE;
     }

@@ -179,6 +179,14 @@ int cart_ekf_update_encoder_nis(cart_ekf_t *s, const double *z, double *nis_out)
     const double is0 = (1.0/s0);
     const double r0 = y[0];
     nis = nis + is0*(r0*r0);
+    /* the NIS is complete: report it, and gate before the posterior is formed */
+    if (!isfinite(nis)) {
+        return CART_EKF_NON_FINITE;
+    }
+    if (nis_out != NULL) {
+        *nis_out = nis;
+    }
+
     K[0] = W[0]*is0;
     K[1] = W[1]*is0;
     K[2] = W[2]*is0;
@@ -201,12 +209,6 @@ int cart_ekf_update_encoder_nis(cart_ekf_t *s, const double *z, double *nis_out)
         }
     }
 
-    if (!isfinite(nis)) {
-        return CART_EKF_NON_FINITE;
-    }
-    if (nis_out != NULL) {
-        *nis_out = nis;
-    }
     memcpy(s->x, xs, sizeof xs);
     memcpy(s->P, Ps, sizeof Ps);
     return CART_EKF_OK;
@@ -246,6 +248,14 @@ int cart_ekf_update_speed_nis(cart_ekf_t *s, const double *z, double *nis_out)
     const double is0 = (1.0/s0);
     const double r0 = y[0];
     nis = nis + is0*(r0*r0);
+    /* the NIS is complete: report it, and gate before the posterior is formed */
+    if (!isfinite(nis)) {
+        return CART_EKF_NON_FINITE;
+    }
+    if (nis_out != NULL) {
+        *nis_out = nis;
+    }
+
     K[0] = W[0]*is0;
     K[1] = W[1]*is0;
     K[2] = W[2]*is0;
@@ -268,12 +278,6 @@ int cart_ekf_update_speed_nis(cart_ekf_t *s, const double *z, double *nis_out)
         }
     }
 
-    if (!isfinite(nis)) {
-        return CART_EKF_NON_FINITE;
-    }
-    if (nis_out != NULL) {
-        *nis_out = nis;
-    }
     memcpy(s->x, xs, sizeof xs);
     memcpy(s->P, Ps, sizeof Ps);
     return CART_EKF_OK;

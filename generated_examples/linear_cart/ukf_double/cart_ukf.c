@@ -229,6 +229,14 @@ int cart_ukf_update_encoder_nis(cart_ukf_t *s, const double *z, double *nis_out)
     const double iS = (1.0/Sd0);
     /* NIS = y' S^-1 y */
     nis = iS*(y[0]*y[0]);
+    /* the NIS is complete: report it, and gate before the posterior is formed */
+    if (!isfinite(nis)) {
+        return CART_UKF_NON_FINITE;
+    }
+    if (nis_out != NULL) {
+        *nis_out = nis;
+    }
+
     /* gain */
     const double K0 = P[0]*iS;
     const double K1 = P[1]*iS;
@@ -244,12 +252,6 @@ int cart_ukf_update_encoder_nis(cart_ukf_t *s, const double *z, double *nis_out)
     Ps[3] = P[3] - K1*P[1];
     Ps[4] = P[4] - K1*P[2];
     Ps[5] = P[5] - K2*P[2];
-    if (!isfinite(nis)) {
-        return CART_UKF_NON_FINITE;
-    }
-    if (nis_out != NULL) {
-        *nis_out = nis;
-    }
     if (!cart_ukf_finite(xs, 3u)) {
         return CART_UKF_NON_FINITE;
     }
@@ -303,6 +305,14 @@ int cart_ukf_update_speed_nis(cart_ukf_t *s, const double *z, double *nis_out)
     const double iS = (1.0/Sd0);
     /* NIS = y' S^-1 y */
     nis = iS*(y[0]*y[0]);
+    /* the NIS is complete: report it, and gate before the posterior is formed */
+    if (!isfinite(nis)) {
+        return CART_UKF_NON_FINITE;
+    }
+    if (nis_out != NULL) {
+        *nis_out = nis;
+    }
+
     /* gain */
     const double K0 = P[1]*iS;
     const double K1 = P[3]*iS;
@@ -318,12 +328,6 @@ int cart_ukf_update_speed_nis(cart_ukf_t *s, const double *z, double *nis_out)
     Ps[3] = P[3] - K1*P[3];
     Ps[4] = P[4] - K1*P[4];
     Ps[5] = P[5] - K2*P[4];
-    if (!isfinite(nis)) {
-        return CART_UKF_NON_FINITE;
-    }
-    if (nis_out != NULL) {
-        *nis_out = nis;
-    }
     if (!cart_ukf_finite(xs, 3u)) {
         return CART_UKF_NON_FINITE;
     }

@@ -28,9 +28,9 @@
  *   CART_UKF_NON_FINITE                  4  the model produced a non-finite value here; reset with set_state if it persists
  *   CART_UKF_GATED                       5  measurement rejected as an outlier by the chi-square gate; nothing to do unless it persists
  * When several apply, the first check in call order wins: BAD_INPUT (arguments), BAD_DT
- * (predict), then NON_FINITE / NOT_POSITIVE_DEFINITE in the order the computation meets them
- * (innovation covariance, then the new x and P), and GATED last: a gated update reports GATED
- * only when it would otherwise have been accepted.
+ * (predict), then NON_FINITE / NOT_POSITIVE_DEFINITE of the innovation covariance, then GATED
+ * (the gate is evaluated as soon as the NIS is formed, before the new x and P), then
+ * NON_FINITE / NOT_POSITIVE_DEFINITE of the new x and P.
  *
  * State vector (flt.x):
  *   [0] pos [m]
@@ -55,8 +55,8 @@
  * functions are longer because the algebra is unrolled straight-line code (no loops, one exit path
  * besides the early refusals), each block headed by a section comment:
  *   cart_ukf_predict: 64 lines
- *   cart_ukf_update_encoder_nis: 62 lines
- *   cart_ukf_update_speed_nis: 62 lines
+ *   cart_ukf_update_encoder_nis: 64 lines
+ *   cart_ukf_update_speed_nis: 64 lines
  * Sigma points: 2n+1 = 7, never stored as arrays. Their offsets gamma*L, their images
  * and deviations are const locals of predict and update (straight-line code), so they live
  * on the stack of those calls: the named locals total 124 bytes in predict and 92 bytes

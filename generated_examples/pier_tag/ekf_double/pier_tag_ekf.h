@@ -28,9 +28,9 @@
  *   PIER_TAG_EKF_NON_FINITE              4  the model produced a non-finite value here; reset with set_state if it persists
  *   PIER_TAG_EKF_GATED                   5  measurement rejected as an outlier by the chi-square gate; nothing to do unless it persists
  * When several apply, the first check in call order wins: BAD_INPUT (arguments), BAD_DT
- * (predict), then NON_FINITE / NOT_POSITIVE_DEFINITE in the order the computation meets them
- * (innovation covariance, then the new x and P), and GATED last: a gated update reports GATED
- * only when it would otherwise have been accepted.
+ * (predict), then NON_FINITE / NOT_POSITIVE_DEFINITE of the innovation covariance, then GATED
+ * (the gate is evaluated as soon as the NIS is formed, before the new x and P), then
+ * NON_FINITE / NOT_POSITIVE_DEFINITE of the new x and P.
  *
  * State vector (flt.x):
  *   [0] px [m]
@@ -54,8 +54,8 @@
  * Deviation from Power of Ten rule 4 (functions of at most 60 lines): these generated
  * functions are longer because the algebra is unrolled straight-line code (no loops, one exit path
  * besides the early refusals), each block headed by a section comment:
- *   pier_tag_ekf_update_pier_nis: 106 lines
- *   pier_tag_ekf_update_shadow_nis: 67 lines
+ *   pier_tag_ekf_update_pier_nis: 108 lines
+ *   pier_tag_ekf_update_shadow_nis: 69 lines
  */
 #ifndef PIER_TAG_EKF_H
 #define PIER_TAG_EKF_H

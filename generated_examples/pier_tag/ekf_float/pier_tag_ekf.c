@@ -232,6 +232,14 @@ int pier_tag_ekf_update_pier_nis(pier_tag_ekf_t *s, const float *z, float *nis_o
     const float is1 = (1.0F/s1);
     const float r1 = y[1] - H1_0*(xs[pier_tag_ekf_ix_px] - x[pier_tag_ekf_ix_px]) - H1_1*(xs[pier_tag_ekf_ix_py] - x[pier_tag_ekf_ix_py]);
     nis = nis + is1*(r1*r1);
+    /* the NIS is complete: report it, and gate before the posterior is formed */
+    if (!isfinite(nis)) {
+        return PIER_TAG_EKF_NON_FINITE;
+    }
+    if (nis_out != NULL) {
+        *nis_out = nis;
+    }
+
     K[0] = W[0]*is1;
     K[1] = W[1]*is1;
     K[2] = W[2]*is1;
@@ -260,12 +268,6 @@ int pier_tag_ekf_update_pier_nis(pier_tag_ekf_t *s, const float *z, float *nis_o
         }
     }
 
-    if (!isfinite(nis)) {
-        return PIER_TAG_EKF_NON_FINITE;
-    }
-    if (nis_out != NULL) {
-        *nis_out = nis;
-    }
     memcpy(s->x, xs, sizeof xs);
     memcpy(s->P, Ps, sizeof Ps);
     return PIER_TAG_EKF_OK;
@@ -310,6 +312,14 @@ int pier_tag_ekf_update_shadow_nis(pier_tag_ekf_t *s, const float *z, float *nis
     const float is0 = (1.0F/s0);
     const float r0 = y[0];
     nis = nis + is0*(r0*r0);
+    /* the NIS is complete: report it, and gate before the posterior is formed */
+    if (!isfinite(nis)) {
+        return PIER_TAG_EKF_NON_FINITE;
+    }
+    if (nis_out != NULL) {
+        *nis_out = nis;
+    }
+
     K[0] = W[0]*is0;
     K[1] = W[1]*is0;
     K[2] = W[2]*is0;
@@ -338,12 +348,6 @@ int pier_tag_ekf_update_shadow_nis(pier_tag_ekf_t *s, const float *z, float *nis
         }
     }
 
-    if (!isfinite(nis)) {
-        return PIER_TAG_EKF_NON_FINITE;
-    }
-    if (nis_out != NULL) {
-        *nis_out = nis;
-    }
     memcpy(s->x, xs, sizeof xs);
     memcpy(s->P, Ps, sizeof Ps);
     return PIER_TAG_EKF_OK;

@@ -31,9 +31,9 @@
  *   PIER_TAG_PF_GATED                    5  measurement rejected as an outlier by the chi-square gate; nothing to do unless it persists
  *   PIER_TAG_PF_DEGENERATE               6  no particle explains the measurement (all weights zero); reset with set_state if it persists
  * When several apply, the first check in call order wins: BAD_INPUT (arguments), BAD_DT
- * (predict), then NON_FINITE / NOT_POSITIVE_DEFINITE in the order the computation meets them
- * (innovation covariance, then the new x and P), and GATED last: a gated update reports GATED
- * only when it would otherwise have been accepted.
+ * (predict), then NON_FINITE / NOT_POSITIVE_DEFINITE of the innovation covariance, then GATED
+ * (the gate is evaluated as soon as the NIS is formed, before the new x and P), then
+ * NON_FINITE / NOT_POSITIVE_DEFINITE of the new x and P.
  *
  * State vector (flt.x):
  *   [0] px [m]

@@ -323,6 +323,14 @@ int pier_tag_ukf_update_pier_nis(pier_tag_ukf_t *s, const double *z, double *nis
     const double b0 = Lsi0*y[0];
     const double b1 = Lsi1*(y[1] - Ls1_0*b0);
     nis = (b0*b0) + (b1*b1);
+    /* the NIS is complete: report it, and gate before the posterior is formed */
+    if (!isfinite(nis)) {
+        return PIER_TAG_UKF_NON_FINITE;
+    }
+    if (nis_out != NULL) {
+        *nis_out = nis;
+    }
+
     /* gain */
     const double B0_0 = C0_0*Lsi0;
     const double B0_1 = Lsi1*(C0_1 - B0_0*Ls1_0);
@@ -348,12 +356,6 @@ int pier_tag_ukf_update_pier_nis(pier_tag_ukf_t *s, const double *z, double *nis
     Ps[7] = P[7] - (B2_0*B2_0) - (B2_1*B2_1);
     Ps[8] = P[8] - B2_0*B3_0 - B2_1*B3_1;
     Ps[9] = P[9] - (B3_0*B3_0) - (B3_1*B3_1);
-    if (!isfinite(nis)) {
-        return PIER_TAG_UKF_NON_FINITE;
-    }
-    if (nis_out != NULL) {
-        *nis_out = nis;
-    }
     if (!pier_tag_ukf_finite(xs, 4u)) {
         return PIER_TAG_UKF_NON_FINITE;
     }
@@ -457,6 +459,14 @@ int pier_tag_ukf_update_shadow_nis(pier_tag_ukf_t *s, const double *z, double *n
     const double iS = (1.0/Sd0);
     /* NIS = y' S^-1 y */
     nis = iS*(y[0]*y[0]);
+    /* the NIS is complete: report it, and gate before the posterior is formed */
+    if (!isfinite(nis)) {
+        return PIER_TAG_UKF_NON_FINITE;
+    }
+    if (nis_out != NULL) {
+        *nis_out = nis;
+    }
+
     /* gain */
     const double K0 = C0_0*iS;
     const double K1 = C1_0*iS;
@@ -478,12 +488,6 @@ int pier_tag_ukf_update_shadow_nis(pier_tag_ukf_t *s, const double *z, double *n
     Ps[7] = P[7] - C2_0*K2;
     Ps[8] = P[8] - C3_0*K2;
     Ps[9] = P[9] - C3_0*K3;
-    if (!isfinite(nis)) {
-        return PIER_TAG_UKF_NON_FINITE;
-    }
-    if (nis_out != NULL) {
-        *nis_out = nis;
-    }
     if (!pier_tag_ukf_finite(xs, 4u)) {
         return PIER_TAG_UKF_NON_FINITE;
     }

@@ -1267,6 +1267,14 @@ int qnav_ekf_update_gnss_pos_nis(qnav_ekf_t *s, const double *z, double *nis_out
     const double is2 = (1.0/s2);
     const double r2 = y[2] - dx[2];
     nis = nis + is2*(r2*r2);
+    /* the NIS is complete: report it, and gate before the posterior is formed */
+    if (!isfinite(nis)) {
+        return QNAV_EKF_NON_FINITE;
+    }
+    if (nis_out != NULL) {
+        *nis_out = nis;
+    }
+
     K[0] = W[0]*is2;
     K[1] = W[1]*is2;
     K[2] = W[2]*is2;
@@ -1456,12 +1464,6 @@ int qnav_ekf_update_gnss_pos_nis(qnav_ekf_t *s, const double *z, double *nis_out
         }
     }
 
-    if (!isfinite(nis)) {
-        return QNAV_EKF_NON_FINITE;
-    }
-    if (nis_out != NULL) {
-        *nis_out = nis;
-    }
     memcpy(s->x, xs, sizeof xs);
     memcpy(s->P, Ps, sizeof Ps);
     return QNAV_EKF_OK;
@@ -1860,6 +1862,14 @@ int qnav_ekf_update_gnss_vel_nis(qnav_ekf_t *s, const double *z, double *nis_out
     const double is2 = (1.0/s2);
     const double r2 = y[2] - dx[5];
     nis = nis + is2*(r2*r2);
+    /* the NIS is complete: report it, and gate before the posterior is formed */
+    if (!isfinite(nis)) {
+        return QNAV_EKF_NON_FINITE;
+    }
+    if (nis_out != NULL) {
+        *nis_out = nis;
+    }
+
     K[0] = W[0]*is2;
     K[1] = W[1]*is2;
     K[2] = W[2]*is2;
@@ -2049,12 +2059,6 @@ int qnav_ekf_update_gnss_vel_nis(qnav_ekf_t *s, const double *z, double *nis_out
         }
     }
 
-    if (!isfinite(nis)) {
-        return QNAV_EKF_NON_FINITE;
-    }
-    if (nis_out != NULL) {
-        *nis_out = nis;
-    }
     memcpy(s->x, xs, sizeof xs);
     memcpy(s->P, Ps, sizeof Ps);
     return QNAV_EKF_OK;
@@ -2107,6 +2111,14 @@ int qnav_ekf_update_baro_nis(qnav_ekf_t *s, const double *z, double *nis_out)
     const double is0 = (1.0/s0);
     const double r0 = y[0];
     nis = nis + is0*(r0*r0);
+    /* the NIS is complete: report it, and gate before the posterior is formed */
+    if (!isfinite(nis)) {
+        return QNAV_EKF_NON_FINITE;
+    }
+    if (nis_out != NULL) {
+        *nis_out = nis;
+    }
+
     K[0] = W[0]*is0;
     K[1] = W[1]*is0;
     K[2] = W[2]*is0;
@@ -2296,12 +2308,6 @@ int qnav_ekf_update_baro_nis(qnav_ekf_t *s, const double *z, double *nis_out)
         }
     }
 
-    if (!isfinite(nis)) {
-        return QNAV_EKF_NON_FINITE;
-    }
-    if (nis_out != NULL) {
-        *nis_out = nis;
-    }
     memcpy(s->x, xs, sizeof xs);
     memcpy(s->P, Ps, sizeof Ps);
     return QNAV_EKF_OK;
@@ -2727,6 +2733,14 @@ int qnav_ekf_update_mag_nis(qnav_ekf_t *s, const double *z, double *nis_out)
     const double is2 = (1.0/s2);
     const double r2 = y[2] - He2_6*dx[6] - He2_7*dx[7] - He2_8*dx[8];
     nis = nis + is2*(r2*r2);
+    /* the NIS is complete: report it, and gate before the posterior is formed */
+    if (!isfinite(nis)) {
+        return QNAV_EKF_NON_FINITE;
+    }
+    if (nis_out != NULL) {
+        *nis_out = nis;
+    }
+
     K[0] = W[0]*is2;
     K[1] = W[1]*is2;
     K[2] = W[2]*is2;
@@ -2916,12 +2930,6 @@ int qnav_ekf_update_mag_nis(qnav_ekf_t *s, const double *z, double *nis_out)
         }
     }
 
-    if (!isfinite(nis)) {
-        return QNAV_EKF_NON_FINITE;
-    }
-    if (nis_out != NULL) {
-        *nis_out = nis;
-    }
     memcpy(s->x, xs, sizeof xs);
     memcpy(s->P, Ps, sizeof Ps);
     return QNAV_EKF_OK;

@@ -30,9 +30,9 @@
  *   QNAV_EKF_NON_FINITE                  4  the model produced a non-finite value here; reset with set_state if it persists
  *   QNAV_EKF_GATED                       5  measurement rejected as an outlier by the chi-square gate; nothing to do unless it persists
  * When several apply, the first check in call order wins: BAD_INPUT (arguments), BAD_DT
- * (predict), then NON_FINITE / NOT_POSITIVE_DEFINITE in the order the computation meets them
- * (innovation covariance, then the new x and P), and GATED last: a gated update reports GATED
- * only when it would otherwise have been accepted.
+ * (predict), then NON_FINITE / NOT_POSITIVE_DEFINITE of the innovation covariance, then GATED
+ * (the gate is evaluated as soon as the NIS is formed, before the new x and P), then
+ * NON_FINITE / NOT_POSITIVE_DEFINITE of the new x and P.
  *
  * State vector (flt.x):
  *   [0] pn [m]
@@ -93,10 +93,10 @@
  *   qnav_ekf_commit_pd: 179 lines
  *   qnav_ekf_init: 137 lines
  *   qnav_ekf_predict: 451 lines
- *   qnav_ekf_update_gnss_pos_nis: 582 lines
- *   qnav_ekf_update_gnss_vel_nis: 582 lines
- *   qnav_ekf_update_baro_nis: 236 lines
- *   qnav_ekf_update_mag_nis: 609 lines
+ *   qnav_ekf_update_gnss_pos_nis: 584 lines
+ *   qnav_ekf_update_gnss_vel_nis: 584 lines
+ *   qnav_ekf_update_baro_nis: 238 lines
+ *   qnav_ekf_update_mag_nis: 611 lines
  */
 #ifndef QNAV_EKF_H
 #define QNAV_EKF_H

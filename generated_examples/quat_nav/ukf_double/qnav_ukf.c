@@ -3117,6 +3117,14 @@ int qnav_ukf_update_gnss_pos_nis(qnav_ukf_t *s, const double *z, double *nis_out
     const double b1 = Lsi1*(y[1] - Ls1_0*b0);
     const double b2 = Lsi2*(y[2] - Ls2_0*b0 - Ls2_1*b1);
     nis = (b0*b0) + (b1*b1) + (b2*b2);
+    /* the NIS is complete: report it, and gate before the posterior is formed */
+    if (!isfinite(nis)) {
+        return QNAV_UKF_NON_FINITE;
+    }
+    if (nis_out != NULL) {
+        *nis_out = nis;
+    }
+
     /* gain */
     const double B0_0 = C0_0*Lsi0;
     const double B0_1 = Lsi1*(C0_1 - B0_0*Ls1_0);
@@ -3345,12 +3353,6 @@ int qnav_ukf_update_gnss_pos_nis(qnav_ukf_t *s, const double *z, double *nis_out
     Ps[117] = P[117] - (B13_0*B13_0) - (B13_1*B13_1) - (B13_2*B13_2);
     Ps[118] = P[118] - B13_0*B14_0 - B13_1*B14_1 - B13_2*B14_2;
     Ps[119] = P[119] - (B14_0*B14_0) - (B14_1*B14_1) - (B14_2*B14_2);
-    if (!isfinite(nis)) {
-        return QNAV_UKF_NON_FINITE;
-    }
-    if (nis_out != NULL) {
-        *nis_out = nis;
-    }
     if (!qnav_ukf_finite(xs, 16u)) {
         return QNAV_UKF_NON_FINITE;
     }
@@ -3647,6 +3649,14 @@ int qnav_ukf_update_gnss_vel_nis(qnav_ukf_t *s, const double *z, double *nis_out
     const double b1 = Lsi1*(y[1] - Ls1_0*b0);
     const double b2 = Lsi2*(y[2] - Ls2_0*b0 - Ls2_1*b1);
     nis = (b0*b0) + (b1*b1) + (b2*b2);
+    /* the NIS is complete: report it, and gate before the posterior is formed */
+    if (!isfinite(nis)) {
+        return QNAV_UKF_NON_FINITE;
+    }
+    if (nis_out != NULL) {
+        *nis_out = nis;
+    }
+
     /* gain */
     const double B0_0 = C0_0*Lsi0;
     const double B0_1 = Lsi1*(C0_1 - B0_0*Ls1_0);
@@ -3875,12 +3885,6 @@ int qnav_ukf_update_gnss_vel_nis(qnav_ukf_t *s, const double *z, double *nis_out
     Ps[117] = P[117] - (B13_0*B13_0) - (B13_1*B13_1) - (B13_2*B13_2);
     Ps[118] = P[118] - B13_0*B14_0 - B13_1*B14_1 - B13_2*B14_2;
     Ps[119] = P[119] - (B14_0*B14_0) - (B14_1*B14_1) - (B14_2*B14_2);
-    if (!isfinite(nis)) {
-        return QNAV_UKF_NON_FINITE;
-    }
-    if (nis_out != NULL) {
-        *nis_out = nis;
-    }
     if (!qnav_ukf_finite(xs, 16u)) {
         return QNAV_UKF_NON_FINITE;
     }
@@ -4014,6 +4018,14 @@ int qnav_ukf_update_baro_nis(qnav_ukf_t *s, const double *z, double *nis_out)
     const double iS = (1.0/Sd0);
     /* NIS = y' S^-1 y */
     nis = iS*(y[0]*y[0]);
+    /* the NIS is complete: report it, and gate before the posterior is formed */
+    if (!isfinite(nis)) {
+        return QNAV_UKF_NON_FINITE;
+    }
+    if (nis_out != NULL) {
+        *nis_out = nis;
+    }
+
     /* gain */
     const double K0 = C0_0*iS;
     const double K1 = C1_0*iS;
@@ -4212,12 +4224,6 @@ int qnav_ukf_update_baro_nis(qnav_ukf_t *s, const double *z, double *nis_out)
     Ps[117] = P[117] - C13_0*K13;
     Ps[118] = P[118] - C14_0*K13;
     Ps[119] = P[119] - C14_0*K14;
-    if (!isfinite(nis)) {
-        return QNAV_UKF_NON_FINITE;
-    }
-    if (nis_out != NULL) {
-        *nis_out = nis;
-    }
     if (!qnav_ukf_finite(xs, 16u)) {
         return QNAV_UKF_NON_FINITE;
     }
@@ -4957,6 +4963,14 @@ int qnav_ukf_update_mag_nis(qnav_ukf_t *s, const double *z, double *nis_out)
     const double b1 = Lsi1*(y[1] - Ls1_0*b0);
     const double b2 = Lsi2*(y[2] - Ls2_0*b0 - Ls2_1*b1);
     nis = (b0*b0) + (b1*b1) + (b2*b2);
+    /* the NIS is complete: report it, and gate before the posterior is formed */
+    if (!isfinite(nis)) {
+        return QNAV_UKF_NON_FINITE;
+    }
+    if (nis_out != NULL) {
+        *nis_out = nis;
+    }
+
     /* gain */
     const double B0_0 = C0_0*Lsi0;
     const double B0_1 = Lsi1*(C0_1 - B0_0*Ls1_0);
@@ -5185,12 +5199,6 @@ int qnav_ukf_update_mag_nis(qnav_ukf_t *s, const double *z, double *nis_out)
     Ps[117] = P[117] - (B13_0*B13_0) - (B13_1*B13_1) - (B13_2*B13_2);
     Ps[118] = P[118] - B13_0*B14_0 - B13_1*B14_1 - B13_2*B14_2;
     Ps[119] = P[119] - (B14_0*B14_0) - (B14_1*B14_1) - (B14_2*B14_2);
-    if (!isfinite(nis)) {
-        return QNAV_UKF_NON_FINITE;
-    }
-    if (nis_out != NULL) {
-        *nis_out = nis;
-    }
     if (!qnav_ukf_finite(xs, 16u)) {
         return QNAV_UKF_NON_FINITE;
     }

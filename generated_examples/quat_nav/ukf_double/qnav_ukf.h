@@ -30,9 +30,9 @@
  *   QNAV_UKF_NON_FINITE                  4  the model produced a non-finite value here; reset with set_state if it persists
  *   QNAV_UKF_GATED                       5  measurement rejected as an outlier by the chi-square gate; nothing to do unless it persists
  * When several apply, the first check in call order wins: BAD_INPUT (arguments), BAD_DT
- * (predict), then NON_FINITE / NOT_POSITIVE_DEFINITE in the order the computation meets them
- * (innovation covariance, then the new x and P), and GATED last: a gated update reports GATED
- * only when it would otherwise have been accepted.
+ * (predict), then NON_FINITE / NOT_POSITIVE_DEFINITE of the innovation covariance, then GATED
+ * (the gate is evaluated as soon as the NIS is formed, before the new x and P), then
+ * NON_FINITE / NOT_POSITIVE_DEFINITE of the new x and P.
  *
  * State vector (flt.x):
  *   [0] pn [m]
@@ -91,10 +91,10 @@
  *   qnav_ukf_factor: 300 lines
  *   qnav_ukf_init: 137 lines
  *   qnav_ukf_predict: 2224 lines
- *   qnav_ukf_update_gnss_pos_nis: 430 lines
- *   qnav_ukf_update_gnss_vel_nis: 518 lines
- *   qnav_ukf_update_baro_nis: 325 lines
- *   qnav_ukf_update_mag_nis: 961 lines
+ *   qnav_ukf_update_gnss_pos_nis: 432 lines
+ *   qnav_ukf_update_gnss_vel_nis: 520 lines
+ *   qnav_ukf_update_baro_nis: 327 lines
+ *   qnav_ukf_update_mag_nis: 963 lines
  * Sigma points: 2n+1 = 31, never stored as arrays. Their offsets gamma*L, their images
  * and deviations are const locals of predict and update (straight-line code), so they live
  * on the stack of those calls: the named locals total 18432 bytes in predict and 8232 bytes

@@ -1193,6 +1193,14 @@ int nav_ekf_update_gnss_pos_nis(nav_ekf_t *s, const double *z, double *nis_out)
     const double is2 = (1.0/s2);
     const double r2 = x[nav_ekf_ix_pd] + y[2] - xs[nav_ekf_ix_pd];
     nis = nis + is2*(r2*r2);
+    /* the NIS is complete: report it, and gate before the posterior is formed */
+    if (!isfinite(nis)) {
+        return NAV_EKF_NON_FINITE;
+    }
+    if (nis_out != NULL) {
+        *nis_out = nis;
+    }
+
     K[0] = W[0]*is2;
     K[1] = W[1]*is2;
     K[2] = W[2]*is2;
@@ -1357,12 +1365,6 @@ int nav_ekf_update_gnss_pos_nis(nav_ekf_t *s, const double *z, double *nis_out)
         }
     }
 
-    if (!isfinite(nis)) {
-        return NAV_EKF_NON_FINITE;
-    }
-    if (nis_out != NULL) {
-        *nis_out = nis;
-    }
     memcpy(s->x, xs, sizeof xs);
     memcpy(s->P, Ps, sizeof Ps);
     return NAV_EKF_OK;
@@ -1760,6 +1762,14 @@ int nav_ekf_update_gnss_vel_nis(nav_ekf_t *s, const double *z, double *nis_out)
     const double is2 = (1.0/s2);
     const double r2 = x[nav_ekf_ix_vd] + y[2] - xs[nav_ekf_ix_vd];
     nis = nis + is2*(r2*r2);
+    /* the NIS is complete: report it, and gate before the posterior is formed */
+    if (!isfinite(nis)) {
+        return NAV_EKF_NON_FINITE;
+    }
+    if (nis_out != NULL) {
+        *nis_out = nis;
+    }
+
     K[0] = W[0]*is2;
     K[1] = W[1]*is2;
     K[2] = W[2]*is2;
@@ -1924,12 +1934,6 @@ int nav_ekf_update_gnss_vel_nis(nav_ekf_t *s, const double *z, double *nis_out)
         }
     }
 
-    if (!isfinite(nis)) {
-        return NAV_EKF_NON_FINITE;
-    }
-    if (nis_out != NULL) {
-        *nis_out = nis;
-    }
     memcpy(s->x, xs, sizeof xs);
     memcpy(s->P, Ps, sizeof Ps);
     return NAV_EKF_OK;
@@ -1981,6 +1985,14 @@ int nav_ekf_update_baro_nis(nav_ekf_t *s, const double *z, double *nis_out)
     const double is0 = (1.0/s0);
     const double r0 = y[0];
     nis = nis + is0*(r0*r0);
+    /* the NIS is complete: report it, and gate before the posterior is formed */
+    if (!isfinite(nis)) {
+        return NAV_EKF_NON_FINITE;
+    }
+    if (nis_out != NULL) {
+        *nis_out = nis;
+    }
+
     K[0] = W[0]*is0;
     K[1] = W[1]*is0;
     K[2] = W[2]*is0;
@@ -2145,12 +2157,6 @@ int nav_ekf_update_baro_nis(nav_ekf_t *s, const double *z, double *nis_out)
         }
     }
 
-    if (!isfinite(nis)) {
-        return NAV_EKF_NON_FINITE;
-    }
-    if (nis_out != NULL) {
-        *nis_out = nis;
-    }
     memcpy(s->x, xs, sizeof xs);
     memcpy(s->P, Ps, sizeof Ps);
     return NAV_EKF_OK;
@@ -2203,6 +2209,14 @@ int nav_ekf_update_mag_heading_nis(nav_ekf_t *s, const double *z, double *nis_ou
     const double is0 = (1.0/s0);
     const double r0 = y[0];
     nis = nis + is0*(r0*r0);
+    /* the NIS is complete: report it, and gate before the posterior is formed */
+    if (!isfinite(nis)) {
+        return NAV_EKF_NON_FINITE;
+    }
+    if (nis_out != NULL) {
+        *nis_out = nis;
+    }
+
     K[0] = W[0]*is0;
     K[1] = W[1]*is0;
     K[2] = W[2]*is0;
@@ -2367,12 +2381,6 @@ int nav_ekf_update_mag_heading_nis(nav_ekf_t *s, const double *z, double *nis_ou
         }
     }
 
-    if (!isfinite(nis)) {
-        return NAV_EKF_NON_FINITE;
-    }
-    if (nis_out != NULL) {
-        *nis_out = nis;
-    }
     memcpy(s->x, xs, sizeof xs);
     memcpy(s->P, Ps, sizeof Ps);
     return NAV_EKF_OK;

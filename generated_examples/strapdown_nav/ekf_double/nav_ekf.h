@@ -30,9 +30,9 @@
  *   NAV_EKF_NON_FINITE                   4  the model produced a non-finite value here; reset with set_state if it persists
  *   NAV_EKF_GATED                        5  measurement rejected as an outlier by the chi-square gate; nothing to do unless it persists
  * When several apply, the first check in call order wins: BAD_INPUT (arguments), BAD_DT
- * (predict), then NON_FINITE / NOT_POSITIVE_DEFINITE in the order the computation meets them
- * (innovation covariance, then the new x and P), and GATED last: a gated update reports GATED
- * only when it would otherwise have been accepted.
+ * (predict), then NON_FINITE / NOT_POSITIVE_DEFINITE of the innovation covariance, then GATED
+ * (the gate is evaluated as soon as the NIS is formed, before the new x and P), then
+ * NON_FINITE / NOT_POSITIVE_DEFINITE of the new x and P.
  *
  * State vector (flt.x):
  *   [0] pn [m]
@@ -87,10 +87,10 @@
  *   nav_ekf_commit_pd: 179 lines
  *   nav_ekf_init: 136 lines
  *   nav_ekf_predict: 378 lines
- *   nav_ekf_update_gnss_pos_nis: 556 lines
- *   nav_ekf_update_gnss_vel_nis: 556 lines
- *   nav_ekf_update_baro_nis: 210 lines
- *   nav_ekf_update_mag_heading_nis: 211 lines
+ *   nav_ekf_update_gnss_pos_nis: 558 lines
+ *   nav_ekf_update_gnss_vel_nis: 558 lines
+ *   nav_ekf_update_baro_nis: 212 lines
+ *   nav_ekf_update_mag_heading_nis: 213 lines
  */
 #ifndef NAV_EKF_H
 #define NAV_EKF_H

@@ -2257,6 +2257,14 @@ int nav_ukf_update_gnss_pos_nis(nav_ukf_t *s, const float *z, float *nis_out)
     const float b1 = Lsi1*(y[1] - Ls1_0*b0);
     const float b2 = Lsi2*(y[2] - Ls2_0*b0 - Ls2_1*b1);
     nis = (b0*b0) + (b1*b1) + (b2*b2);
+    /* the NIS is complete: report it, and gate before the posterior is formed */
+    if (!isfinite(nis)) {
+        return NAV_UKF_NON_FINITE;
+    }
+    if (nis_out != NULL) {
+        *nis_out = nis;
+    }
+
     /* gain */
     const float B0_0 = Lsi0*P[0];
     const float B0_1 = Lsi1*(P[1] - B0_0*Ls1_0);
@@ -2444,12 +2452,6 @@ int nav_ukf_update_gnss_pos_nis(nav_ukf_t *s, const float *z, float *nis_out)
     xs[nav_ukf_ix_roll] = nav_ukf_wrap(xs[nav_ukf_ix_roll]);
     xs[nav_ukf_ix_pitch] = nav_ukf_wrap(xs[nav_ukf_ix_pitch]);
     xs[nav_ukf_ix_yaw] = nav_ukf_wrap(xs[nav_ukf_ix_yaw]);
-    if (!isfinite(nis)) {
-        return NAV_UKF_NON_FINITE;
-    }
-    if (nis_out != NULL) {
-        *nis_out = nis;
-    }
     if (!nav_ukf_finite(xs, 15u)) {
         return NAV_UKF_NON_FINITE;
     }
@@ -2524,6 +2526,14 @@ int nav_ukf_update_gnss_vel_nis(nav_ukf_t *s, const float *z, float *nis_out)
     const float b1 = Lsi1*(y[1] - Ls1_0*b0);
     const float b2 = Lsi2*(y[2] - Ls2_0*b0 - Ls2_1*b1);
     nis = (b0*b0) + (b1*b1) + (b2*b2);
+    /* the NIS is complete: report it, and gate before the posterior is formed */
+    if (!isfinite(nis)) {
+        return NAV_UKF_NON_FINITE;
+    }
+    if (nis_out != NULL) {
+        *nis_out = nis;
+    }
+
     /* gain */
     const float B0_0 = Lsi0*P[3];
     const float B0_1 = Lsi1*(P[4] - B0_0*Ls1_0);
@@ -2711,12 +2721,6 @@ int nav_ukf_update_gnss_vel_nis(nav_ukf_t *s, const float *z, float *nis_out)
     xs[nav_ukf_ix_roll] = nav_ukf_wrap(xs[nav_ukf_ix_roll]);
     xs[nav_ukf_ix_pitch] = nav_ukf_wrap(xs[nav_ukf_ix_pitch]);
     xs[nav_ukf_ix_yaw] = nav_ukf_wrap(xs[nav_ukf_ix_yaw]);
-    if (!isfinite(nis)) {
-        return NAV_UKF_NON_FINITE;
-    }
-    if (nis_out != NULL) {
-        *nis_out = nis;
-    }
     if (!nav_ukf_finite(xs, 15u)) {
         return NAV_UKF_NON_FINITE;
     }
@@ -2770,6 +2774,14 @@ int nav_ukf_update_baro_nis(nav_ukf_t *s, const float *z, float *nis_out)
     const float iS = (1.0F/Sd0);
     /* NIS = y' S^-1 y */
     nis = iS*(y[0]*y[0]);
+    /* the NIS is complete: report it, and gate before the posterior is formed */
+    if (!isfinite(nis)) {
+        return NAV_UKF_NON_FINITE;
+    }
+    if (nis_out != NULL) {
+        *nis_out = nis;
+    }
+
     /* gain */
     const float K0 = -P[2]*iS;
     const float K1 = -P[16]*iS;
@@ -2927,12 +2939,6 @@ int nav_ukf_update_baro_nis(nav_ukf_t *s, const float *z, float *nis_out)
     xs[nav_ukf_ix_roll] = nav_ukf_wrap(xs[nav_ukf_ix_roll]);
     xs[nav_ukf_ix_pitch] = nav_ukf_wrap(xs[nav_ukf_ix_pitch]);
     xs[nav_ukf_ix_yaw] = nav_ukf_wrap(xs[nav_ukf_ix_yaw]);
-    if (!isfinite(nis)) {
-        return NAV_UKF_NON_FINITE;
-    }
-    if (nis_out != NULL) {
-        *nis_out = nis;
-    }
     if (!nav_ukf_finite(xs, 15u)) {
         return NAV_UKF_NON_FINITE;
     }
@@ -3064,6 +3070,14 @@ int nav_ukf_update_mag_heading_nis(nav_ukf_t *s, const float *z, float *nis_out)
     const float iS = (1.0F/Sd0);
     /* NIS = y' S^-1 y */
     nis = iS*(y[0]*y[0]);
+    /* the NIS is complete: report it, and gate before the posterior is formed */
+    if (!isfinite(nis)) {
+        return NAV_UKF_NON_FINITE;
+    }
+    if (nis_out != NULL) {
+        *nis_out = nis;
+    }
+
     /* gain */
     const float K0 = C0_0*iS;
     const float K1 = C1_0*iS;
@@ -3221,12 +3235,6 @@ int nav_ukf_update_mag_heading_nis(nav_ukf_t *s, const float *z, float *nis_out)
     xs[nav_ukf_ix_roll] = nav_ukf_wrap(xs[nav_ukf_ix_roll]);
     xs[nav_ukf_ix_pitch] = nav_ukf_wrap(xs[nav_ukf_ix_pitch]);
     xs[nav_ukf_ix_yaw] = nav_ukf_wrap(xs[nav_ukf_ix_yaw]);
-    if (!isfinite(nis)) {
-        return NAV_UKF_NON_FINITE;
-    }
-    if (nis_out != NULL) {
-        *nis_out = nis;
-    }
     if (!nav_ukf_finite(xs, 15u)) {
         return NAV_UKF_NON_FINITE;
     }

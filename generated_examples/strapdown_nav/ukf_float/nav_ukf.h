@@ -30,9 +30,9 @@
  *   NAV_UKF_NON_FINITE                   4  the model produced a non-finite value here; reset with set_state if it persists
  *   NAV_UKF_GATED                        5  measurement rejected as an outlier by the chi-square gate; nothing to do unless it persists
  * When several apply, the first check in call order wins: BAD_INPUT (arguments), BAD_DT
- * (predict), then NON_FINITE / NOT_POSITIVE_DEFINITE in the order the computation meets them
- * (innovation covariance, then the new x and P), and GATED last: a gated update reports GATED
- * only when it would otherwise have been accepted.
+ * (predict), then NON_FINITE / NOT_POSITIVE_DEFINITE of the innovation covariance, then GATED
+ * (the gate is evaluated as soon as the NIS is formed, before the new x and P), then
+ * NON_FINITE / NOT_POSITIVE_DEFINITE of the new x and P.
  *
  * State vector (flt.x):
  *   [0] pn [m]
@@ -85,10 +85,10 @@
  *   nav_ukf_factor: 300 lines
  *   nav_ukf_init: 136 lines
  *   nav_ukf_predict: 1498 lines
- *   nav_ukf_update_gnss_pos_nis: 255 lines
- *   nav_ukf_update_gnss_vel_nis: 255 lines
- *   nav_ukf_update_baro_nis: 204 lines
- *   nav_ukf_update_mag_heading_nis: 282 lines
+ *   nav_ukf_update_gnss_pos_nis: 257 lines
+ *   nav_ukf_update_gnss_vel_nis: 257 lines
+ *   nav_ukf_update_baro_nis: 206 lines
+ *   nav_ukf_update_mag_heading_nis: 284 lines
  * Sigma points: 2n+1 = 31, never stored as arrays. Their offsets gamma*L, their images
  * and deviations are const locals of predict and update (straight-line code), so they live
  * on the stack of those calls: the named locals total 6304 bytes in predict and 1400 bytes

@@ -242,6 +242,14 @@ int valve_ukf_update_flow_nis(valve_ukf_t *s, const double *z, double *nis_out)
     const double iS = (1.0/Sd0);
     /* NIS = y' S^-1 y */
     nis = iS*(y[0]*y[0]);
+    /* the NIS is complete: report it, and gate before the posterior is formed */
+    if (!isfinite(nis)) {
+        return VALVE_UKF_NON_FINITE;
+    }
+    if (nis_out != NULL) {
+        *nis_out = nis;
+    }
+
     /* gain */
     const double K0 = C0_0*iS;
     const double K1 = C1_0*iS;
@@ -252,12 +260,6 @@ int valve_ukf_update_flow_nis(valve_ukf_t *s, const double *z, double *nis_out)
     Ps[0] = P[0] - C0_0*K0;
     Ps[1] = P[1] - C1_0*K0;
     Ps[2] = P[2] - C1_0*K1;
-    if (!isfinite(nis)) {
-        return VALVE_UKF_NON_FINITE;
-    }
-    if (nis_out != NULL) {
-        *nis_out = nis;
-    }
     if (!valve_ukf_finite(xs, 2u)) {
         return VALVE_UKF_NON_FINITE;
     }
@@ -311,6 +313,14 @@ int valve_ukf_update_stem_nis(valve_ukf_t *s, const double *z, double *nis_out)
     const double iS = (1.0/Sd0);
     /* NIS = y' S^-1 y */
     nis = iS*(y[0]*y[0]);
+    /* the NIS is complete: report it, and gate before the posterior is formed */
+    if (!isfinite(nis)) {
+        return VALVE_UKF_NON_FINITE;
+    }
+    if (nis_out != NULL) {
+        *nis_out = nis;
+    }
+
     /* gain */
     const double K0 = P[0]*iS;
     const double K1 = P[1]*iS;
@@ -321,12 +331,6 @@ int valve_ukf_update_stem_nis(valve_ukf_t *s, const double *z, double *nis_out)
     Ps[0] = P[0] - K0*P[0];
     Ps[1] = P[1] - K0*P[1];
     Ps[2] = P[2] - K1*P[1];
-    if (!isfinite(nis)) {
-        return VALVE_UKF_NON_FINITE;
-    }
-    if (nis_out != NULL) {
-        *nis_out = nis;
-    }
     if (!valve_ukf_finite(xs, 2u)) {
         return VALVE_UKF_NON_FINITE;
     }
