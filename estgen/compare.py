@@ -55,7 +55,7 @@ from .filters import names as filter_names
 from .model import ModelSpec, as_spec
 from .progress import Progress, wanted
 from .simulate import (INSIDE_REQUIRED, MonteCarloResult, Scenario, StatSummary, make_scenario, pyplot, run_filter,
-                       save_figure, score_run, settling_steps, summarize_runs, write_outputs)
+                       run_seed, save_figure, score_run, settling_steps, summarize_runs, write_outputs)
 
 __all__ = [
     "Budget",
@@ -113,12 +113,6 @@ def _with_run_seed(setup: FilterSetup, seed: int) -> FilterSetup:
     if "seed" not in setup.options.runtime():
         return setup
     return dataclasses.replace(setup, options=dataclasses.replace(setup.options, seed=seed))
-
-
-def _run_seed(seed: int, run: int) -> int:
-    """The particle filter's generator seed for one run: its own stream per run, fixed by
-    the comparison's seed (32 bits, as the generated C's init_seed takes it)."""
-    return int(np.random.SeedSequence([seed, run, 0x9F]).generate_state(1)[0])
 
 
 # ---------------------------------------------------------------------------------------------
@@ -638,7 +632,7 @@ def _one_run(r: int) -> Tuple[int, Dict[str, Any]]:
     done: Dict[str, Any] = {"filters": {}, "seconds": {}, "lin": None}
     for name in ctx["names"]:
         t0 = time.perf_counter()
-        out = run_filter(ctx["factories"][name](_run_seed(ctx["seed"], r)), sc)
+        out = run_filter(ctx["factories"][name](run_seed(ctx["seed"], r)), sc)
         res = score_run(spec, sc, out, keep_run=(r == 0))
         res["diverged"] = _diverged(res, out, spec.ne)  # NEES dof: the error dimension
         done["filters"][name] = res

@@ -36,6 +36,7 @@ __all__ = [
     "make_scenario",
     "run_filter",
     "score_run",
+    "run_seed",
     "summarize_runs",
     "MonteCarloResult",
     "StatSummary",
@@ -427,8 +428,17 @@ def _filter_factory(ctx: Dict[str, Any]) -> Callable[[], Any]:
 
 
 def _pf_seed(ctx: Dict[str, Any]) -> int:
-    """The particle filter's generator seed for the current run: its own for every run."""
-    return (int(ctx["seed"]) * 1000003 + int(ctx.get("run", 0)) * 7919 + 1) & 0xFFFFFFFF
+    """The particle filter's generator seed for the current run: its own for every run. The
+    run number lives in the module context _CTX, which _one_run sets in whichever process runs
+    it (``ctx`` here is the dict the factory was built from, which never sees it)."""
+    return run_seed(int(ctx["seed"]), int(_CTX.get("run", 0)))
+
+
+def run_seed(seed: int, run: int) -> int:
+    """The run-time generator seed (the particle filter's) of run ``run`` of a Monte Carlo test
+    seeded with ``seed``: its own for every run, 32 bits as the C's init_seed takes it. Shared
+    by ``simulate`` and ``compare``, so both run a filter on the same draws."""
+    return (int(seed) * 1000003 + int(run) * 7919 + 1) & 0xFFFFFFFF
 
 
 def _one_run(r: int) -> Dict[str, Any]:

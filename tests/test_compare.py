@@ -55,9 +55,11 @@ def test_filters_see_the_same_truths_as_simulate() -> None:
     # The same seeds give the same draws: each filter's figures are exactly what
     # `estgen simulate` reports for it alone (same scenario per run, same noise).
     spec = load_model(CART)
-    c = compare(spec, ["ekf", "ukf"], runs=4, steps=40, seed=5, progress=False)
-    for name in ("ekf", "ukf"):
-        alone = monte_carlo(spec, name, runs=4, steps=40, seed=5, precision="float", workers=1, progress=False)
+    opts = {"pf": {"particles": 200}}
+    c = compare(spec, ["ekf", "ukf", "pf"], runs=4, steps=40, seed=5, options=opts, progress=False)
+    for name in ("ekf", "ukf", "pf"):
+        alone = monte_carlo(spec, name, runs=4, steps=40, seed=5, precision="float", workers=1, progress=False,
+                            options=opts.get(name))
         got = c.filters[name].stats
         assert got.rmse == alone.rmse
         np.testing.assert_array_equal(got.nees.per_step, alone.nees.per_step)
