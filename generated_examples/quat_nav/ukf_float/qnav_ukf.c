@@ -677,14 +677,14 @@ int qnav_ukf_set_state(qnav_ukf_t *s, const float *x, const float *P)
     }
     memcpy(xn, x, sizeof xn);
     {   /* attitude: scaled to a unit quaternion */
-        const float nq = sqrtf(xn[6] * xn[6] + xn[7] * xn[7] + xn[8] * xn[8] + xn[9] * xn[9]);
+        const float nq = sqrtf(xn[qnav_ukf_ix_q_w] * xn[qnav_ukf_ix_q_w] + xn[qnav_ukf_ix_q_x] * xn[qnav_ukf_ix_q_x] + xn[qnav_ukf_ix_q_y] * xn[qnav_ukf_ix_q_y] + xn[qnav_ukf_ix_q_z] * xn[qnav_ukf_ix_q_z]);
         if (!(nq > 0.0F) || !isfinite(nq)) {  /* zero, or too large to scale in this precision */
             return QNAV_UKF_BAD_INPUT;
         }
-        xn[6] /= nq;
-        xn[7] /= nq;
-        xn[8] /= nq;
-        xn[9] /= nq;
+        xn[qnav_ukf_ix_q_w] /= nq;
+        xn[qnav_ukf_ix_q_x] /= nq;
+        xn[qnav_ukf_ix_q_y] /= nq;
+        xn[qnav_ukf_ix_q_z] /= nq;
     }
     memcpy(s->x, xn, sizeof xn);
     memcpy(s->P, P, sizeof s->P);
