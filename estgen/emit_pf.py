@@ -105,6 +105,13 @@ def generate_pf(spec: ModelSpec, setup: "FilterSetup", opts: PfOptions) -> Gener
     ctx["nw"] = spec.nw
     ctx["nwp"] = packed_size(spec.nw)
     ctx["particles"] = N
+    ctx["precedence"] = [
+        "When several apply, the first check in call order wins: BAD_INPUT (arguments), BAD_DT",
+        "(predict), then NON_FINITE / NOT_POSITIVE_DEFINITE of Q, Qw or R; predict then refuses with",
+        "NON_FINITE when no live particle has a finite prediction; update with DEGENERATE when no",
+        "particle has a finite weight, then NON_FINITE of the NIS and GATED (both only where the NIS",
+        "is formed: the _nis variants and gated sensors).",
+    ]
     ctx["default_seed"] = DEFAULT_SEED
     ctx["prior"] = _prior(spec, em)
     ctx["updates"] = ctx["sensors"]

@@ -31,9 +31,10 @@
  *   PIER_TAG_PF_GATED                    5  measurement rejected as an outlier by the chi-square gate; nothing to do unless it persists
  *   PIER_TAG_PF_DEGENERATE               6  no particle explains the measurement (all weights zero); reset with set_state if it persists
  * When several apply, the first check in call order wins: BAD_INPUT (arguments), BAD_DT
- * (predict), then NON_FINITE / NOT_POSITIVE_DEFINITE of the innovation covariance, then GATED
- * (the gate is evaluated as soon as the NIS is formed, before the new x and P), then
- * NON_FINITE / NOT_POSITIVE_DEFINITE of the new x and P.
+ * (predict), then NON_FINITE / NOT_POSITIVE_DEFINITE of Q, Qw or R; predict then refuses with
+ * NON_FINITE when no live particle has a finite prediction; update with DEGENERATE when no
+ * particle has a finite weight, then NON_FINITE of the NIS and GATED (both only where the NIS
+ * is formed: the _nis variants and gated sensors).
  *
  * State vector (flt.x):
  *   [0] px [m]
@@ -48,15 +49,15 @@
  *     z[0] = tanh(py)
  * Packed covariance: entry (i, j), i <= j, is P[i*4 - i*(i-1)/2 + (j-i)].
  *
- * Commit check: a new P is committed only when its Cholesky factorization succeeds
- * (every pivot finite and > 0), after every call.
+ * Commit check: none on P: x and P are the weighted mean and covariance of the
+ * particles, recomputed by every call that changes them.
  *
  * Memory: sizeof(pier_tag_pf_t) = 48136 bytes. No heap, no global mutable state, no
- * recursion, fixed loop bounds; scratch lives on the stack of each call.
+ * recursion, fixed loop bounds; scratch lives on the stack of each call, and the weights w
+ * double as a call's work storage (recomputed from lw when the call is refused).
  * Reentrant: distinct structs may be used from distinct threads.
  * Deviation from Power of Ten rule 4 (functions of at most 60 lines): these generated
- * functions are longer because the algebra is unrolled straight-line code (no loops, one exit path
- * besides the early refusals), each block headed by a section comment:
+ * functions are longer: each is one call's passes over the particles, with its refusal paths:
  *   pier_tag_pf_set_state: 76 lines
  *   pier_tag_pf_predict: 71 lines
  *   pier_tag_pf_update_pier_nis: 114 lines
