@@ -30,6 +30,7 @@ from .filters import FilterSetup
 from .model import ModelSpec, as_spec
 from .reference import model_functions, wrap_angle
 from .status import Status
+from .truth import Truth
 
 __all__ = [
     "Scenario",
@@ -79,12 +80,6 @@ class Scenario:
         return int(self.t.shape[0])
 
 
-def _noise_factor(C: np.ndarray) -> np.ndarray:
-    """A with A A' = C for a symmetric PSD C (eigen-decomposition: works when C is singular)."""
-    w, V = np.linalg.eigh(0.5 * (C + C.T))
-    return V * np.sqrt(np.clip(w, 0.0, None))
-
-
 def _resolve_every(spec: ModelSpec, every: Optional[Mapping[str, int]]) -> Dict[str, int]:
     out = {s.name: s.every for s in spec.sensors}
     for name, k in (every or {}).items():
@@ -117,13 +112,6 @@ def _scenario_dt(spec: ModelSpec, dt: Optional[float]) -> float:
     return value
 
 
-def initial_from_box(spec: ModelSpec, rng: np.random.Generator) -> np.ndarray:
-    """A true initial state drawn uniformly from the box of ``model.initial_uniform``."""
-    assert spec.prior_box is not None
-    lo, hi = (np.array(b, dtype=float) for b in spec.prior_box)
-    return lo + (hi - lo) * rng.random(spec.n)
-
-
 def make_scenario(
     spec: Any,
     steps: int,
@@ -147,11 +135,9 @@ def make_scenario(
     dtv = _scenario_dt(spec, dt)
     ev = _resolve_every(spec, every)
     pvals = _resolve_params(spec, params, "the truth's parameters")
-    mf = model_functions(spec)
-    p = mf.param_tuple(pvals)
+    truth = Truth(spec, dtv, pvals)
     rng = np.random.default_rng(seed)
     n, nu = spec.n, spec.nu
-    angles = np.array(spec.angle_states, dtype=bool)
 
     t = np.arange(steps) * dtv
     u = np.zeros((steps, nu))
@@ -165,42 +151,18 @@ def make_scenario(
     if not np.all(np.isfinite(u)):
         raise ModelError("the scenario's input profile returned a non-finite value", spec.where.get("model"))
 
-    Aq = _noise_factor(mf.Q(dtv, p))
-    Ar = {s.name: _noise_factor(mf.R(s.name, p)) for s in spec.sensors}
-    Aw = _noise_factor(mf.Qw(dtv, p))
-    Av = {s.name: _noise_factor(mf.Rv(s.name, p)) for s in spec.sensors}
-    # additive noise lives in the error space (ne; = n without attitudes): x ⊞ q applies an
-    # attitude's part through quat.exp, q ⊗ exp(q_att)
-    ne = spec.ne
-    if spec.prior_box is not None:  # initial_uniform: the truth starts anywhere in the box
-        x = initial_from_box(spec, rng)
-    else:
-        x = mf.boxplus(np.array(spec.x0, dtype=float), _noise_factor(np.array(spec.P0)) @ rng.standard_normal(ne))
     x_true = np.empty((steps + 1, n))
-    x_true[0] = np.where(angles, wrap_angle(x), x)
+    x_true[0] = truth.initial(rng)
     meas: List[List[Tuple[str, np.ndarray]]] = []
     with np.errstate(all="ignore"):
         for k in range(steps):
-            q = Aq @ rng.standard_normal(ne)
-            # noise symbols are drawn only when the model has them: additive models keep their streams
-            w = Aw @ rng.standard_normal(spec.nw) if spec.nw else None
-            x = mf.boxplus(mf.f(x_true[k], u[k], dtv, p, w), q)
-            if angles.any():
-                x[angles] = wrap_angle(x[angles])
-            if not np.all(np.isfinite(x)):
-                raise ModelError(f"the simulated truth became non-finite at step {k + 1} (t = {t[k] + dtv:g}); "
-                                 "check the model's dynamics and the input profile")
-            x_true[k + 1] = x
+            q, w = truth.draw_process(rng)
+            x = x_true[k + 1] = truth.step(x_true[k], u[k], q, w, k + 1)
             row: List[Tuple[str, np.ndarray]] = []
             for s in spec.sensors:
                 if (k + 1) % ev[s.name] == 0:
-                    r = Ar[s.name] @ rng.standard_normal(s.m)
-                    v = Av[s.name] @ rng.standard_normal(s.nv) if s.nv else None
-                    z = mf.h(s.name, x, p, v) + r
-                    zang = np.array(s.angles, dtype=bool)
-                    if zang.any():
-                        z[zang] = wrap_angle(z[zang])
-                    row.append((s.name, z))
+                    r, v = truth.draw_sensor(rng, s.name)
+                    row.append((s.name, truth.measure(s.name, x, r, v)))
             meas.append(row)
     return Scenario(dt=dtv, t=t, u=u, x_true=x_true, measurements=meas)
 

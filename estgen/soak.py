@@ -26,15 +26,15 @@ from dataclasses import asdict, dataclass, field
 from typing import TYPE_CHECKING, Any, Callable, Dict, List, Optional, Tuple
 
 import numpy as np
-import sympy as sp
 
 from . import filters
 from .errors import ModelError
 from .filters import FilterSetup
 from .layout import unpack
 from .model import ModelSpec, as_spec
-from .reference import model_functions, wrap_angle
+from .reference import wrap_angle
 from .status import Status
+from .truth import Truth
 
 if TYPE_CHECKING:  # only for the annotation; emit imports sympy printers at run time
     from .emit import Generated
@@ -130,14 +130,10 @@ def within_rounding(P: np.ndarray, precision: str) -> bool:
     return bool(w[-1] > 0 and w[0] >= -2.0 * (n + 1) ** 2 * u * w[-1])
 
 
-def _noise_factor(C: np.ndarray) -> np.ndarray:
-    """A with A A' = C for symmetric PSD C; eigen-decomposition so a singular C works."""
-    w, V = np.linalg.eigh(0.5 * (C + C.T))
-    return V * np.sqrt(np.clip(w, 0.0, None))
-
-
 class _Truth:
-    """The model's truth and measurements, produced chunk by chunk from one seeded generator."""
+    """The model's truth and measurements (:class:`estgen.truth.Truth`), produced chunk by chunk
+    from one seeded generator: f in Python's math module (sequential by nature), h for a whole
+    chunk at once with numpy."""
 
     def __init__(self, spec: ModelSpec, dt: float, seed: int, profile: str, period: float) -> None:
         self.spec = spec
@@ -145,36 +141,10 @@ class _Truth:
         self.profile = profile
         self.period = period
         self.rng = np.random.default_rng(seed)
-        subs = spec.default_subs()
-        xs, us = spec.x_syms, spec.u_syms
-        f_num = [sp.sympify(e).subs(subs).subs(spec.dt, dt) for e in spec.f]
-        # scalar math: faster than numpy for one state at a time, and overflow raises instead of
-        # silently producing inf
-        ws = spec.w_syms
-        self._f = sp.lambdify([*xs, *us, *ws], f_num, modules="math", cse=True)
-        self._h: Dict[str, List[Callable[..., Any]]] = {}
-        for s in spec.sensors:
-            self._h[s.name] = [sp.lambdify([*xs, *s.v], sp.sympify(e).subs(subs), modules="numpy") for e in s.h]
-        Qn = np.array(spec.Q.subs(subs).subs(spec.dt, dt).evalf(), dtype=float)
-        self.Aq = _noise_factor(Qn)
-        self.Ar = {s.name: _noise_factor(np.array(s.R.subs(subs).evalf(), dtype=float)) for s in spec.sensors}
-        # noise symbols: drawn and passed through f and h (only when the model has them)
-        self.Aw = _noise_factor(np.array(spec.Qw.subs(subs).subs(spec.dt, dt).evalf(), dtype=float).reshape(len(ws), len(ws)))
-        self.Av = {s.name: _noise_factor(np.array(s.Rv.subs(subs).evalf(), dtype=float).reshape(s.nv, s.nv))
-                   for s in spec.sensors}
-        self.angles = np.array(spec.angle_states, dtype=bool)
+        self.truth = Truth(spec, dt)
+        self.angles = self.truth.angles
         self.k = 0
-        self._fn = model_functions(spec) if spec.attitudes else None
-        if spec.prior_box is not None:
-            from .simulate import initial_from_box
-
-            x = initial_from_box(spec, self.rng)
-        else:
-            # additive noise in the error space (ne), applied through quat.exp for an attitude
-            e0 = _noise_factor(np.array(spec.P0, dtype=float)) @ self.rng.standard_normal(spec.ne)
-            x = np.array(spec.x0, dtype=float)
-            x = self._fn.boxplus(x, e0) if self._fn is not None else x + e0
-        self.x = np.where(self.angles, wrap_angle(x), x)
+        self.x = self.truth.initial(self.rng)
 
     def inputs(self, t: float) -> List[float]:
         spec = self.spec
@@ -191,43 +161,20 @@ class _Truth:
         """(u (count, nu), x_true after each step (count, n), {sensor: z (count, m), NaN rows where
         the sensor does not report})."""
         spec = self.spec
-        n, nu = spec.n, spec.nu
-        U = np.empty((count, nu))
-        X = np.empty((count, n))
-        W = self.rng.standard_normal((count, spec.ne)) @ self.Aq.T
-        nw = spec.nw
-        Wn = self.rng.standard_normal((count, nw)) @ self.Aw.T if nw else np.zeros((count, 0))
-        wrap = bool(self.angles.any())
+        U = np.empty((count, spec.nu))
+        X = np.empty((count, spec.n))
+        Q, W = self.truth.draw_process(self.rng, count)
         x = [float(v) for v in self.x]
         for i in range(count):
-            t = (self.k + i) * self.dt
-            u = self.inputs(t)
-            U[i] = u
-            try:
-                fx = self._f(*x, *u, *Wn[i])
-            except (OverflowError, ValueError, ZeroDivisionError) as err:
-                raise ModelError(f"the simulated truth left the model's domain at step {self.k + i + 1} "
-                                 f"(t = {t + self.dt:g}): {err}") from None
-            xn = np.asarray(fx, dtype=float).reshape(n)
-            xn = self._fn.boxplus(xn, W[i]) if self._fn is not None else xn + W[i]
-            if wrap:
-                xn[self.angles] = wrap_angle(xn[self.angles])
-            if not np.all(np.isfinite(xn)):
-                raise ModelError(f"the simulated truth became non-finite at step {self.k + i + 1}; "
-                                 "check the model's dynamics and the input profile")
-            X[i] = xn
-            x = xn.tolist()
+            U[i] = u = self.inputs((self.k + i) * self.dt)
+            X[i] = self.truth.step(x, u, Q[i], None if W is None else W[i], self.k + i + 1, scalar=True)
+            x = X[i].tolist()
         Z: Dict[str, np.ndarray] = {}
         steps_done = self.k + 1 + np.arange(count)
         with np.errstate(all="ignore"):
             for s in spec.sensors:
-                r = self.rng.standard_normal((count, s.m)) @ self.Ar[s.name].T
-                V = self.rng.standard_normal((count, s.nv)) @ self.Av[s.name].T if s.nv else np.zeros((count, 0))
-                rows = [np.broadcast_to(np.asarray(fn(*X.T, *V.T), dtype=float), (count,)) for fn in self._h[s.name]]
-                z = np.stack(rows, axis=1) + r
-                zang = np.array(s.angles, dtype=bool)
-                if zang.any():
-                    z[:, zang] = wrap_angle(z[:, zang])
+                r, v = self.truth.draw_sensor(self.rng, s.name, count)
+                z = self.truth.measure(s.name, X, r, v)
                 z[steps_done % s.every != 0] = np.nan
                 Z[s.name] = z
         self.k += count
@@ -335,7 +282,7 @@ def soak(model: Any, filter: str = "ekf", precision: str = "float", steps: int =
             res.first_failure = done + int(fails[0]) + 1
         if L is not None and finite.all():
             res.min_cholesky_pivot = min(res.min_cholesky_pivot, float(np.diagonal(L, axis1=1, axis2=2).min()))
-            e = truth._fn.boxminus_rows(X, x64) if spec.attitudes else x64 - X
+            e = truth.truth.fn.boxminus_rows(X, x64) if spec.attitudes else x64 - X
             if angles.any() and not spec.attitudes:
                 e[:, angles] = wrap_angle(e[:, angles])
             sol = np.linalg.solve(L, e[..., None])[..., 0]
