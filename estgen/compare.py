@@ -1,8 +1,9 @@
 """``estgen compare``: which filter to ship, weighed on the user's own model.
 
 Every filter the model allows (or the ones named) runs on the same simulated truths: one
-scenario per run, drawn once from the shared truth simulator (:func:`estgen.simulate.make_scenario`)
-and handed to every filter, so all see the same seeds and the same noise draws. Per filter:
+scenario per run, drawn once from the shared truth simulator (:mod:`estgen.truth`, through
+:func:`estgen.simulate.make_scenario`) and handed to every filter, so all see the same seeds and
+the same noise draws. Per filter:
 RMSE per state, run-averaged NEES and NIS against their two-sided 95% chi-square bounds and the
 consistency verdict (the statistics of ``estgen simulate``), the runs that diverged, the refused
 calls, and the cost of its float build on the Cortex-M4F as ``estgen report --target cortex-m4f``
@@ -421,7 +422,9 @@ def _truth_spec(spec: ModelSpec, truth_initial: Optional[Tuple[Sequence[float], 
         raise ModelError("the truth's initial state and covariance must be finite")
     if np.linalg.eigvalsh(0.5 * (P0a + P0a.T)).min() < -1e-12 * max(1.0, float(np.abs(P0a).max())):
         raise ModelError("the truth's initial covariance must be positive semidefinite")
-    return dataclasses.replace(spec, x0=tuple(float(v) for v in x0a), P0=tuple(tuple(float(v) for v in r) for r in P0a))
+    # a Gaussian start replaces a uniform prior box, if the model has one
+    return dataclasses.replace(spec, x0=tuple(float(v) for v in x0a), P0=tuple(tuple(float(v) for v in r) for r in P0a),
+                               prior_box=None)
 
 
 def _head(sc: Scenario, steps: int) -> Scenario:
