@@ -42,6 +42,7 @@ import sympy as sp
 
 from estgen.derive import c_names
 from estgen.emit import CPrinter, c_literal
+from estgen.errors import ModelError
 from estgen.filters import check_filter_support
 from estgen.model import ModelSpec, SensorSpec, as_spec
 from estgen.derive_ukf import UkfWeights
@@ -428,6 +429,9 @@ def render_baseline(model: Any, filter: str = "ekf", precision: str = "double", 
     """The dense baseline C for ``model`` (a ModelSpec or model file path)."""
     spec = as_spec(model)
     check_filter_support(spec, filter)
+    if spec.attitudes:
+        raise ModelError(f"the dense baseline filters plain states only; model {spec.name!r} has attitude "
+                         f"(quaternion) states, which need the error-state filter estgen generates")
     c = _Ctx(spec, filter, precision)
     header, cdef = _header(c)
     if filter == "ekf":

@@ -37,6 +37,8 @@ if REPO not in sys.path:  # when run as the child process's script
 
 from test_robustness import CONFIGS, EXAMPLES, checked, filters_for, spec_of  # noqa: E402
 
+from estgen.verify import state_sigma  # noqa: E402
+
 #: hypothesis examples per (example, filter, precision), so 50 to 100 per example; each is a
 #: sequence of up to MAX_CALLS calls
 MAX_EXAMPLES = 25
@@ -81,11 +83,12 @@ def _strategies(spec: Any, precision: str) -> Any:
                                st.lists(st.one_of(st.floats(-50.0, 50.0), anyfloat), min_size=8, max_size=8)))
     # set_state: x arbitrary or near x0; P = D C D from standard deviations and a correlation
     # factor, or a raw random symmetric matrix (mostly indefinite)
+    ne = spec.ne  # P's dimension (n minus one per attitude)
     calls.append(st.tuples(st.just("set_state"), st.lists(st.one_of(st.floats(-3.0, 3.0), anyfloat), min_size=n,
                                                           max_size=n),
                            st.sampled_from(["scaled", "raw", "initial"]),
-                           st.lists(st.one_of(st.floats(1e-6, 1e3), anyfloat), min_size=n, max_size=n),
-                           st.lists(st.floats(-1.0, 1.0), min_size=n * n, max_size=n * n)))
+                           st.lists(st.one_of(st.floats(1e-6, 1e3), anyfloat), min_size=ne, max_size=ne),
+                           st.lists(st.floats(-1.0, 1.0), min_size=ne * ne, max_size=ne * ne)))
     return st.lists(st.one_of(*calls), min_size=1, max_size=MAX_CALLS)
 
 
@@ -106,13 +109,13 @@ def _execute(c: Any, spec: Any, mf: Any, p: Tuple[float, ...], call: Tuple[Any, 
             z = vals
         return checked(c, lambda: c.update(s.name, z))
     _, x, how, sd, corr = call
-    n = spec.n
+    n = spec.ne  # P's dimension
     x0 = np.array(spec.x0)
     xv = np.array(x, dtype=float)
     with np.errstate(all="ignore"):
         if how == "initial":
             P = np.array(spec.P0)
-            xv = x0 + np.nan_to_num(xv, nan=0.0, posinf=0.0, neginf=0.0) * np.sqrt(np.diag(P))
+            xv = x0 + np.nan_to_num(xv, nan=0.0, posinf=0.0, neginf=0.0) * state_sigma(spec, np.sqrt(np.diag(P))[None])[0]
         elif how == "scaled":
             A = np.array(corr).reshape(n, n) + 2.0 * np.eye(n)
             C = A @ A.T
