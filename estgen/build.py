@@ -26,6 +26,7 @@ from typing import Any, Dict, List, Optional, Sequence, Tuple
 import numpy as np
 
 from .emit import Generated
+from .cross import WARNINGS
 from .errors import BuildError, ToolMissing
 from .filters import FilterSetup
 from .layout import pack_upper
@@ -34,9 +35,7 @@ from .model import ModelSpec
 __all__ = ["build", "compile_generated", "compiler_used", "CFilter", "cache_dir", "STRICT_FLAGS"]
 
 #: the warning set of the contract; every generated file must compile clean under it
-STRICT_FLAGS: List[str] = [
-    "-std=c99", "-Wall", "-Wextra", "-Wpedantic", "-Wconversion", "-Wdouble-promotion", "-Wshadow", "-Werror",
-]
+STRICT_FLAGS: List[str] = list(WARNINGS)
 
 
 def cache_dir() -> str:

@@ -376,13 +376,13 @@ def generate(model: PathLike, filter: str, precision: str, out_dir: PathLike, **
 
 
 def _c_literal(v: float, precision: str) -> str:
-    if not np.isfinite(v):
-        raise ValueError(f"non-finite value {v} in the scenario")
-    if precision == "float":
-        s = repr(float(np.float32(v)))
-        return s + ("f" if ("e" in s or "." in s) else ".0f")
-    s = repr(float(v))
-    return s if ("e" in s or "." in s) else s + ".0"
+    """A scenario value as a C literal of the filter's precision (the generator's printer)."""
+    from .emit import c_literal
+
+    try:
+        return c_literal(v, precision)
+    except ValueError as err:
+        raise ValueError(f"scenario value {v!r}: {err}") from None
 
 
 def _rows(values: Sequence[str], per_line: int = 6) -> str:

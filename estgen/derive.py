@@ -19,6 +19,8 @@ from typing import Dict, Iterable, List, Optional, Sequence, Tuple
 
 import sympy as sp
 
+from .ir import Stmt, comment
+from .ir import is_trivial as _is_trivial
 from .layout import packed_index, packed_size
 from .model import ModelSpec, SensorSpec
 
@@ -38,30 +40,6 @@ __all__ = [
     "EKF_PREDICT_SECTIONS",
     "EKF_BLOCK_UPDATE_SECTIONS",
 ]
-
-
-@dataclass(frozen=True)
-class Stmt:
-    """One line of straight-line C.
-
-    kind:
-      ``"decl"``   ``const real <target> = <expr>;``
-      ``"assign"`` ``<target> = <expr>;``
-      ``"check"``  refuse unless ``<expr>`` is finite and > 0 (a pivot or innovation variance)
-      ``"wrap"``   ``<target> = wrap(<target>)`` for an angle
-      ``"comment"`` ``/* <target> */``, a section heading (see :func:`with_sections`); expr unused
-    """
-
-    kind: str
-    target: str
-    expr: sp.Expr
-
-
-def comment(text: str) -> Stmt:
-    """A section heading in the C (text from the generator only, never from a model file)."""
-    if "*/" in text or "/*" in text:
-        raise ValueError(text)
-    return Stmt("comment", text, sp.S.Zero)
 
 
 #: A section rule: a regular expression matched against "<kind> <target>" of a statement, and
@@ -142,11 +120,6 @@ def c_names(spec: ModelSpec, x_array: str = "x") -> Dict[sp.Symbol, sp.Symbol]:
         m[p.symbol] = sp.Symbol(f"par->{p.name}")
     m[spec.dt] = sp.Symbol("dt")
     return m
-
-
-def _is_trivial(e: sp.Expr) -> bool:
-    """A number or a lone symbol: used in place, no temporary needed."""
-    return e.is_Number or e.is_Symbol or (e.is_Mul and len(e.args) == 2 and e.args[0] == -1 and e.args[1].is_Symbol)
 
 
 def model_block(

@@ -47,10 +47,12 @@ import sympy as sp
 
 from .derive import Stmt, c_names, packed_index
 from .errors import UsageError
+from .ir import is_trivial as _is_trivial
 from .model import ModelSpec, SensorSpec, noise_factor
+from .unrolled import Block as _Block
+from .unrolled import cholesky as _cholesky
 
-__all__ = ["UkfWeights", "UkfPredictCode", "UkfUpdateCode", "UkfCode", "derive_ukf", "check_values",
-           "commit_check", "factor_function"]
+__all__ = ["UkfWeights", "UkfPredictCode", "UkfUpdateCode", "UkfCode", "derive_ukf", "check_values"]
 
 
 @dataclass(frozen=True)
@@ -144,11 +146,6 @@ class UkfCode:
     updates: List[UkfUpdateCode] = field(default_factory=list)
 
 
-def _is_trivial(e: sp.Expr) -> bool:
-    return bool(e.is_Number or e.is_Symbol or (e.is_Mul and len(e.args) == 2 and e.args[0] == -1
-                                               and e.args[1].is_Symbol))
-
-
 def _scaled(coef: float, e: sp.Expr) -> sp.Expr:
     """``coef * e`` without sympy distributing the number over a sum (one multiply, not many)."""
     if e == 0 or coef == 0.0:
@@ -162,81 +159,6 @@ def _scaled(coef: float, e: sp.Expr) -> sp.Expr:
 
 def _sym(name: str) -> sp.Symbol:
     return sp.Symbol(name)
-
-
-class _Block:
-    """Statements of one function, with named temporaries and dead-code removal."""
-
-    def __init__(self) -> None:
-        self.stmts: List[Stmt] = []
-
-    def value(self, name: str, e: sp.Expr) -> sp.Expr:
-        """A const local for ``e`` unless it is a number or a symbol (then used in place)."""
-        if _is_trivial(e):
-            return e
-        self.stmts.append(Stmt("decl", name, e))
-        return _sym(name)
-
-    def add(self, kind: str, target: str, e: sp.Expr) -> None:
-        self.stmts.append(Stmt(kind, target, e))
-
-    def cse(self, items: Sequence[Tuple[str, sp.Expr]], prefix: str) -> Dict[str, sp.Expr]:
-        """Common subexpressions of all ``items`` (name, expr) shared; returns name -> what later
-        code uses (a number, a symbol, or a new const local). Equal results share one local."""
-        if not items:
-            return {}
-        repl, reduced = sp.cse([e for _, e in items], symbols=sp.numbered_symbols(prefix), order="canonical")
-        # a shared condition (a > 0) would become a floating local: put conditions back inline
-        inline: Dict[sp.Symbol, sp.Basic] = {}
-        for s, e in repl:
-            e = e.xreplace(inline) if inline else e
-            if isinstance(e, sp.logic.boolalg.Boolean):
-                inline[s] = e
-                continue
-            self.stmts.append(Stmt("decl", str(s), e))
-        if inline:
-            reduced = [e.xreplace(inline) for e in reduced]
-        out: Dict[str, sp.Expr] = {}
-        seen: Dict[sp.Expr, sp.Expr] = {}
-        for (name, _), e in zip(items, reduced):
-            if e in seen:
-                out[name] = seen[e]
-                continue
-            v = self.value(name, e)
-            seen[e] = v
-            out[name] = v
-        return out
-
-    def pruned(self) -> List[Stmt]:
-        """Drop const locals nothing reads (the compiler would warn about them)."""
-        needed: Set[str] = set()
-        keep: List[Stmt] = []
-        for st in reversed(self.stmts):
-            if st.kind == "decl" and st.target not in needed:
-                continue
-            keep.append(st)
-            needed |= {str(s) for s in st.expr.free_symbols}
-            if st.kind in ("assign", "wrap"):
-                needed.add(st.target)  # arrays read back later by name
-        keep.reverse()
-        return keep
-
-
-def _cholesky(blk: _Block, n: int, P: str, tag: str) -> Dict[Tuple[int, int], sp.Expr]:
-    """Unrolled lower Cholesky factor of packed ``P``; each pivot is checked (finite, > 0)."""
-    L: Dict[Tuple[int, int], sp.Expr] = {}
-    for j in range(n):
-        d = _sym(f"{P}[{packed_index(j, j, n)}]") - sum((L[(j, k)] ** 2 for k in range(j)), sp.S.Zero)
-        dname = f"{tag}d{j}"
-        blk.add("decl", dname, d)
-        blk.add("check", dname, _sym(dname))
-        L[(j, j)] = blk.value(f"{tag}{j}_{j}", sp.sqrt(_sym(dname)))
-        if j + 1 < n:
-            inv = blk.value(f"{tag}i{j}", 1 / L[(j, j)])
-        for i in range(j + 1, n):
-            e = (_sym(f"{P}[{packed_index(i, j, n)}]") - sum((L[(i, k)] * L[(j, k)] for k in range(j)), sp.S.Zero))
-            L[(i, j)] = blk.value(f"{tag}{i}_{j}", e * inv)
-    return L
 
 
 @dataclass
@@ -729,25 +651,6 @@ def _factor_symbols(n: int) -> Dict[Tuple[int, int], sp.Expr]:
     """L[i, j] (i >= j) as the entries of the array ``Lf`` that :func:`factor_function` fills
     (packed like P: entry (i, j) of L at the packed index of (j, i))."""
     return {(i, j): _sym(f"Lf[{packed_index(j, i, n)}]") for i in range(n) for j in range(i + 1)}
-
-
-def factor_function(n: int) -> List[Stmt]:
-    """Body of the shared factorization ``Lf = chol(P)`` that predict and every update call
-    first: unrolled, pivots checked (one copy in the C however many sensors there are)."""
-    blk = _Block()
-    L = _cholesky(blk, n, "P", "L")
-    for (i, j), e in L.items():
-        blk.add("assign", f"Lf[{packed_index(j, i, n)}]", e)
-    return blk.pruned()
-
-
-def commit_check(n: int, P: str) -> List[Stmt]:
-    """Refuse to commit a covariance that is not positive definite: the pivots of its unrolled
-    Cholesky factorization (a positive diagonal is not enough). Straight-line, so it costs
-    about n^3/6 multiply-adds and no index arithmetic."""
-    blk = _Block()
-    _cholesky(blk, n, P, "Lc")
-    return blk.pruned()
 
 
 def derive_ukf(spec: ModelSpec, wts: UkfWeights) -> UkfCode:

@@ -29,10 +29,11 @@ import sympy as sp
 
 from . import quat
 from .derive import Stmt, c_names, packed_index
-from .derive_ukf import (UkfCode, UkfPredictCode, UkfUpdateCode, UkfWeights, _augmented, _Block, _count_locals,
+from .derive_ukf import (UkfCode, UkfPredictCode, UkfUpdateCode, UkfWeights, _augmented, _count_locals,
                          _gain_and_commit, _used)
 from .errorstate import inject, normalize
 from .model import ModelSpec, SensorSpec
+from .unrolled import Block as _Block
 
 __all__ = ["derive_ukf_attitude", "derive_ukf_attitude_predict", "derive_ukf_attitude_update"]
 

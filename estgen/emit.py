@@ -29,6 +29,8 @@ from .chi2 import chi2_ppf
 from .derive import (CERT_KAPPA, EKF_BLOCK_UPDATE_SECTIONS, EKF_PREDICT_SECTIONS, Stmt, angle_wraps, derive_ekf,
                      ekf_sequential_sections, packed_index, packed_size, with_sections)
 from .errors import ModelError
+from .ir import Loop, Node
+from .unrolled import commit_check
 from .layout import Field, StructLayout
 from .model import ModelSpec, unit_problem
 from .status import ADVICE, PRECEDENCE, Status
@@ -145,6 +147,10 @@ class OpCount:
 
     def as_dict(self) -> Dict[str, int]:
         return {k: getattr(self, k) for k in self.__dataclass_fields__}
+
+    def scaled(self, times: int) -> "OpCount":
+        """These counts ``times`` over (a loop body's)."""
+        return OpCount(**{k: v * times for k, v in self.as_dict().items()})
 
     @property
     def total(self) -> int:
@@ -279,9 +285,17 @@ class Emitter:
     def expr(self, e: sp.Expr) -> str:
         return self.printer.doprint(e)
 
-    def lines(self, stmts: Sequence[Stmt], ops: Optional[OpCount] = None) -> List[str]:
+    def lines(self, stmts: Sequence[Node], ops: Optional[OpCount] = None) -> List[str]:
         out: List[str] = []
         for st in stmts:
+            if isinstance(st, Loop):
+                body_ops = OpCount()
+                out.append(f"for (size_t {st.var} = {st.start}u; {st.var} < {st.stop}u; ++{st.var}) {{")
+                out += ["    " + line for line in self.lines(st.body, body_ops)]
+                out.append("}")
+                if ops is not None:
+                    ops += body_ops.scaled(st.stop - st.start)
+                continue
             if ops is not None:
                 ops += count_ops(st.expr)
             if st.kind == "decl":
@@ -507,8 +521,6 @@ def gate_split(stmts: Sequence[Stmt]) -> Tuple[List[Stmt], List[Stmt]]:
 def pivot_check(n: int, P: str) -> Tuple[Stmt, ...]:
     """The unrolled Cholesky pivot check every commit goes through (shared by both filters;
     cached: it depends on the size alone)."""
-    from .derive_ukf import commit_check
-
     return tuple(commit_check(n, P))
 
 

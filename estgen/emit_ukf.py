@@ -8,10 +8,11 @@ from __future__ import annotations
 from typing import TYPE_CHECKING, Any, Dict, List
 
 from .derive import with_sections
-from .derive_ukf import UKF_PREDICT_SECTIONS, UKF_UPDATE_SECTIONS, UkfWeights, derive_ukf, factor_function
+from .derive_ukf import UKF_PREDICT_SECTIONS, UKF_UPDATE_SECTIONS, UkfWeights, derive_ukf
 from .derive_ukf_att import derive_ukf_attitude
 from .emit import Emitter, Generated, OpCount, _common_context, _render, gate_split
 from .model import ModelSpec
+from .unrolled import factor_function
 
 if TYPE_CHECKING:
     from .filters import FilterSetup

@@ -178,7 +178,7 @@ def count_c_ops(source: str, function: str, _seen: Tuple[str, ...] = ()) -> Dict
     library calls) as transcendental. Operations inside
     ``[]`` subscripts, in ``for (...)`` headers, on integer literals or on variables declared
     with an integer type are index arithmetic and not counted. A ``for`` loop of the form
-    ``for (i = A; i < B; ...)`` with literal bounds multiplies its body by ``B - A``; any other
+    ``for ([size_t] i = A; i < B; ...)`` with literal bounds multiplies its body by ``B - A``; any other
     loop counts its body once. Static helpers defined in the same file are counted at each call.
     """
     bodies = c_function_bodies(source)
@@ -196,7 +196,8 @@ def count_c_ops(source: str, function: str, _seen: Tuple[str, ...] = ()) -> Dict
             j = _matching(toks, i + 1, "(", ")", 1)
             head = toks[i + 2:j]
             trip = 1
-            m = re.fullmatch(r"(\w+) = (\d+)[uU]? ; \1 < (\d+)[uU]? ;.*", " ".join(head))
+            # C99: the header may declare its counter (for (size_t i = 0u; ...))
+            m = re.fullmatch(r"(?:\w+ )?(\w+) = (\d+)[uU]? ; \1 < (\d+)[uU]? ;.*", " ".join(head))
             if m:
                 trip = max(0, int(m.group(3)) - int(m.group(2)))
             pending = trip

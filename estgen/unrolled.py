@@ -1,0 +1,108 @@
+"""Unrolled straight-line building blocks shared by the filters: a statement block with common
+subexpressions and dead-code removal, and the one unrolled Cholesky factorization (with its
+pivot checks) behind the UKF's factor function and every filter's commit check."""
+
+from __future__ import annotations
+
+from typing import Dict, List, Sequence, Set, Tuple
+
+import sympy as sp
+
+from .ir import Stmt, is_trivial
+from .layout import packed_index
+
+__all__ = ["Block", "cholesky", "factor_function", "commit_check"]
+
+
+class Block:
+    """Statements of one function, with named temporaries and dead-code removal."""
+
+    def __init__(self) -> None:
+        self.stmts: List[Stmt] = []
+
+    def value(self, name: str, e: sp.Expr) -> sp.Expr:
+        """A const local for ``e`` unless it is a number or a symbol (then used in place)."""
+        if is_trivial(e):
+            return e
+        self.stmts.append(Stmt("decl", name, e))
+        return sp.Symbol(name)
+
+    def add(self, kind: str, target: str, e: sp.Expr) -> None:
+        self.stmts.append(Stmt(kind, target, e))
+
+    def cse(self, items: Sequence[Tuple[str, sp.Expr]], prefix: str) -> Dict[str, sp.Expr]:
+        """Common subexpressions of all ``items`` (name, expr) shared; returns name -> what later
+        code uses (a number, a symbol, or a new const local). Equal results share one local."""
+        if not items:
+            return {}
+        repl, reduced = sp.cse([e for _, e in items], symbols=sp.numbered_symbols(prefix), order="canonical")
+        # a shared condition (a > 0) would become a floating local: put conditions back inline
+        inline: Dict[sp.Symbol, sp.Basic] = {}
+        for s, e in repl:
+            e = e.xreplace(inline) if inline else e
+            if isinstance(e, sp.logic.boolalg.Boolean):
+                inline[s] = e
+                continue
+            self.stmts.append(Stmt("decl", str(s), e))
+        if inline:
+            reduced = [e.xreplace(inline) for e in reduced]
+        out: Dict[str, sp.Expr] = {}
+        seen: Dict[sp.Expr, sp.Expr] = {}
+        for (name, _), e in zip(items, reduced):
+            if e in seen:
+                out[name] = seen[e]
+                continue
+            v = self.value(name, e)
+            seen[e] = v
+            out[name] = v
+        return out
+
+    def pruned(self) -> List[Stmt]:
+        """Drop const locals nothing reads (the compiler would warn about them)."""
+        needed: Set[str] = set()
+        keep: List[Stmt] = []
+        for st in reversed(self.stmts):
+            if st.kind == "decl" and st.target not in needed:
+                continue
+            keep.append(st)
+            needed |= {str(s) for s in st.expr.free_symbols}
+            if st.kind in ("assign", "wrap"):
+                needed.add(st.target)  # arrays read back later by name
+        keep.reverse()
+        return keep
+
+
+def cholesky(blk: Block, n: int, P: str, tag: str) -> Dict[Tuple[int, int], sp.Expr]:
+    """Unrolled lower Cholesky factor of packed ``P``; each pivot is checked (finite, > 0)."""
+    L: Dict[Tuple[int, int], sp.Expr] = {}
+    for j in range(n):
+        d = sp.Symbol(f"{P}[{packed_index(j, j, n)}]") - sum((L[(j, k)] ** 2 for k in range(j)), sp.S.Zero)
+        dname = f"{tag}d{j}"
+        blk.add("decl", dname, d)
+        blk.add("check", dname, sp.Symbol(dname))
+        L[(j, j)] = blk.value(f"{tag}{j}_{j}", sp.sqrt(sp.Symbol(dname)))
+        if j + 1 < n:
+            inv = blk.value(f"{tag}i{j}", 1 / L[(j, j)])
+        for i in range(j + 1, n):
+            e = (sp.Symbol(f"{P}[{packed_index(i, j, n)}]") - sum((L[(i, k)] * L[(j, k)] for k in range(j)), sp.S.Zero))
+            L[(i, j)] = blk.value(f"{tag}{i}_{j}", e * inv)
+    return L
+
+
+def factor_function(n: int) -> List[Stmt]:
+    """Body of the shared factorization ``Lf = chol(P)`` that predict and every update call
+    first: unrolled, pivots checked (one copy in the C however many sensors there are)."""
+    blk = Block()
+    L = cholesky(blk, n, "P", "L")
+    for (i, j), e in L.items():
+        blk.add("assign", f"Lf[{packed_index(j, i, n)}]", e)
+    return blk.pruned()
+
+
+def commit_check(n: int, P: str) -> List[Stmt]:
+    """Refuse to commit a covariance that is not positive definite: the pivots of its unrolled
+    Cholesky factorization (a positive diagonal is not enough). Straight-line, so it costs
+    about n^3/6 multiply-adds and no index arithmetic."""
+    blk = Block()
+    cholesky(blk, n, P, "Lc")
+    return blk.pruned()
