@@ -177,7 +177,7 @@ class CFilter:
         self._real = "float" if self.precision == "float" else "double"
         self._s = self._ffi.new(f"{self._prefix}_t *")
         self._nis_out = self._ffi.new(f"{self._real} *")
-        if filter == "pf" and seed is not None:  # the particle filter's generator seed
+        if seed is not None:  # a kind's run-time generator seed (the particle filter's)
             getattr(self._lib, f"{self._prefix}_init_seed")(self._s, int(seed) & 0xFFFFFFFF)
         else:
             getattr(self._lib, f"{self._prefix}_init")(self._s)

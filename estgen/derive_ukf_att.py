@@ -35,7 +35,7 @@ from .errorstate import inject, normalize
 from .model import ModelSpec, SensorSpec
 from .unrolled import Block as _Block
 
-__all__ = ["derive_ukf_attitude", "derive_ukf_attitude_predict", "derive_ukf_attitude_update"]
+__all__ = ["derive_ukf_attitude"]
 
 
 def _sym(name: str) -> sp.Symbol:

@@ -33,12 +33,12 @@ from .ir import Loop, Node
 from .unrolled import commit_check
 from .layout import Field, StructLayout
 from .model import ModelSpec, unit_problem
-from .status import ADVICE, PRECEDENCE, Status
+from .status import ADVICE, KIND_STATUSES, PRECEDENCE, Status
 
 if TYPE_CHECKING:  # annotation only: the filter kinds import this module, never the reverse
     from .filters import FilterSetup
 
-__all__ = ["CPrinter", "OpCount", "count_ops", "Generated", "generate_ekf", "template_env", "c_literal"]
+__all__ = ["CPrinter", "OpCount", "Emitter", "Generated", "generate_ekf", "gate_split", "c_literal"]
 
 
 def c_literal(value: float, precision: str) -> str:
@@ -424,9 +424,9 @@ def _common_context(spec: ModelSpec, setup: "FilterSetup") -> Dict[str, Any]:
             "name": s.name, "m": s.m, "gate_prob": repr(s.gate) if s.gate is not None else None, "gate": gate,
             "angles": [i for i, a in enumerate(s.angles) if a], "components": comps,
         })
-    # DEGENERATE is the particle filter's own refusal; the Kalman filters never return it
+    # a kind's own refusals (the particle filter's DEGENERATE) are listed only in its header
     statuses = [{"name": st.name, "value": int(st), "advice": ADVICE[st]} for st in Status
-                if st is not Status.DEGENERATE or filt == "pf"]
+                if st not in KIND_STATUSES or st in setup.kind.statuses]
     full_ops = OpCount()
     diag_ops = OpCount()
     commit_pd = em.lines(pivot_check(ne, "P"), full_ops)

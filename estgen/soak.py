@@ -30,6 +30,7 @@ import numpy as np
 from . import filters
 from .errors import ModelError
 from .filters import FilterSetup
+from .filters import get as get_kind
 from .layout import unpack
 from .model import ModelSpec, as_spec
 from .reference import wrap_angle
@@ -218,7 +219,7 @@ def soak(model: Any, filter: str = "ekf", precision: str = "float", steps: int =
     prefix = gen.prefix
 
     s = ffi.new(f"{prefix}_t *")
-    if filter == "pf":  # the particle filter's generator starts from the soak's seed
+    if "seed" in get_kind(filter).Options().runtime():  # a kind's generator starts from the soak's seed
         getattr(lib, f"{prefix}_init_seed")(s, int(seed) & 0xFFFFFFFF)
     else:
         getattr(lib, f"{prefix}_init")(s)

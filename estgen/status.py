@@ -28,6 +28,10 @@ class Status(IntEnum):
     DEGENERATE = 6
 
 
+#: codes only some filter kinds return (a kind lists its own in FilterKind.statuses); every
+#: other code is in every header
+KIND_STATUSES = frozenset({Status.DEGENERATE})
+
 #: what each code asks the caller to do (used in the header's usage block and the README)
 ADVICE = {
     Status.OK: "accepted",

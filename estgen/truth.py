@@ -23,7 +23,7 @@ from .errors import ModelError
 from .model import ModelSpec
 from .reference import model_functions, wrap_angle
 
-__all__ = ["Truth", "psd_factor"]
+__all__ = ["Truth"]
 
 
 def psd_factor(C: np.ndarray) -> np.ndarray:

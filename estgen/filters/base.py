@@ -15,10 +15,11 @@ import abc
 import argparse
 import dataclasses
 from dataclasses import dataclass
-from typing import TYPE_CHECKING, Any, Callable, ClassVar, Dict, Mapping, Optional, Sequence, Tuple, Type
+from typing import TYPE_CHECKING, Any, Callable, ClassVar, Dict, FrozenSet, Mapping, Optional, Sequence, Tuple, Type
 
 from ..errors import UsageError
 from ..layout import Field
+from ..status import Status
 
 if TYPE_CHECKING:  # annotations only: the kinds import the emitters, not this module
     from ..emit import Generated
@@ -101,6 +102,8 @@ class FilterKind(abc.ABC):
     Options: ClassVar[Type[FilterOptions]]
     attitudes: ClassVar[bool] = False
     gaussian: ClassVar[bool] = True
+    #: the kind's own refusal codes (of status.KIND_STATUSES) its header lists
+    statuses: ClassVar[FrozenSet[Status]] = frozenset()
 
     def options(self, **values: Any) -> FilterOptions:
         """This kind's options from keyword values (None means "the default"); unknown names

@@ -13,6 +13,7 @@ from ..layout import Field
 from ..model import ModelSpec
 from ..pf import DEFAULT_PARTICLES, DEFAULT_SEED, PfOptions, ReferencePF, pf_options
 from ..reference import ModelFunctions
+from ..status import Status
 from .base import FilterKind, FilterOptions, Flag
 
 if TYPE_CHECKING:
@@ -54,6 +55,7 @@ class PF(FilterKind):
     template = "pf.c.j2"
     Options = PfKindOptions
     gaussian = False
+    statuses = frozenset({Status.DEGENERATE})
 
     def extra_fields(self, spec: ModelSpec, setup: "FilterSetup") -> Sequence[Field]:
         N, n = cast(PfKindOptions, setup.options).particles, spec.n
