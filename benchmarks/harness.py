@@ -286,9 +286,10 @@ def _stack(obj: Path, functions: Sequence[str]) -> int:
 
 def m4f_figures(source: Path, header: Path, prefix: str, functions: Sequence[str], out_dir: Path,
                 opt: str = "-O2") -> Dict[str, int]:
-    """``.text`` bytes, ``sizeof`` of the filter struct and the worst stack of ``functions`` on
+    """``.text``, ``.rodata`` and ``.data`` bytes, ``sizeof`` of the filter struct and the worst stack of ``functions`` on
     the Cortex-M4F (arm-none-eabi-gcc with the M4F's hard-float flags)."""
     obj = cross.compile_object(source, "cortex-m4f", out_dir, include_dirs=[header.parent], opt=opt)
-    text = cross.section_sizes(obj, "cortex-m4f")["text"]
+    sizes = cross.section_sizes(obj, "cortex-m4f")
     struct = cross.struct_size(header, f"{prefix}_t", "cortex-m4f", out_dir)
-    return {"text": text, "struct": struct, "stack": _stack(obj, functions)}
+    return {"text": sizes["text"], "rodata": sizes["rodata"], "data": sizes["data"], "struct": struct,
+            "stack": _stack(obj, functions)}

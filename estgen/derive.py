@@ -166,6 +166,10 @@ class EkfPredictCode:
     #: the rounding certificate (see :func:`predict_certificate`): pairs (lhs, rhs) that must all
     #: hold as lhs <= rhs for the new P to be committed without a factorization; None: always factorize
     cert: Optional[List[Tuple[sp.Expr, sp.Expr]]] = None
+    #: the compact form: statements up to F, G, Q (and B = G Qw), the non-zeros (i, k, F_ik) of F
+    #: row by row, the non-zero entries of G Qw G' + Q as assignments to Pn, and the closing
+    #: statements (attitude normalization, angle wraps)
+    compact: Optional[Tuple[List[Stmt], List[Tuple[int, int, sp.Expr]], List[Stmt], List[Stmt]]] = None
 
 
 #: how much cancellation the predict certificate tolerates: row i of F may make sum_k |F_ik| sqrt(P_kk)
@@ -237,6 +241,16 @@ def predict_certificate(Fm: sp.Matrix, Qm: Dict[Tuple[int, int], sp.Expr], n: in
 
 
 @dataclass
+class ScalarComponent:
+    """One scalar component of a sequential update in its compact form: the non-zeros of its row
+    of H as (column, value), its residual (corrected for the earlier components) and its R."""
+
+    h: List[Tuple[int, sp.Expr]]
+    r: sp.Expr
+    R: sp.Expr
+
+
+@dataclass
 class EkfUpdateCode:
     sensor: SensorSpec
     sequential: bool
@@ -247,6 +261,9 @@ class EkfUpdateCode:
     w_size: int
     k_size: int
     dx_size: int = 0  # error-state correction accumulator (models with attitudes)
+    #: the compact form of a sequential update: the statements before the components (h, H, y),
+    #: each component's row of H, residual and variance, and the statements after them
+    compact: Optional[Tuple[List[Stmt], List["ScalarComponent"], List[Stmt]]] = None
     v_size: int = 0  # the Joseph form's V (block update only)
 
 
@@ -317,6 +334,7 @@ def derive_ekf_predict(spec: ModelSpec) -> EkfPredictCode:
             else:
                 stmts.append(Stmt("decl", f"B{i}_{k}", e))
                 Bref[i, k] = sp.Symbol(f"B{i}_{k}")
+    pre = list(stmts)  # the compact form starts from here (see EkfPredictCode.compact)
     P = _sym_P(n, "P")
     A = Fm * P
     Aref = sp.zeros(n, n)
@@ -339,10 +357,17 @@ def derive_ekf_predict(spec: ModelSpec) -> EkfPredictCode:
             e += sum((Bref[i, k] * Gm[j, k] for k in range(nw) if Gm[j, k] != 0), sp.S.Zero)
             stmts.append(Stmt("assign", f"Pn[{packed_index(i, j, n)}]", e))
     cert = predict_certificate(Fm, Qm, n, Gm, Qwm)
-    stmts += _normalize_attitudes(spec)
-    stmts += angle_wraps(spec, "xn")
+    tail = _normalize_attitudes(spec) + angle_wraps(spec, "xn")
+    stmts += tail
     uses_u = any(str(s).startswith("u[") for st in stmts for s in st.expr.free_symbols)
-    return EkfPredictCode(stmts, _uses_params(stmts), uses_u, cert)
+    noise = []
+    for i in range(n):
+        for j in range(i, n):
+            e = Qm[(i, j)] + sum((Bref[i, k] * Gm[j, k] for k in range(nw) if Gm[j, k] != 0), sp.S.Zero)
+            if e != 0:
+                noise.append(Stmt("assign", f"Pn[{packed_index(i, j, n)}]", e))
+    fnz = [(i, k, Fm[i, k]) for i in range(n) for k in range(n) if Fm[i, k] != 0]
+    return EkfPredictCode(stmts, _uses_params(stmts), uses_u, cert, compact=(pre, fnz, noise, tail))
 
 
 def _x(arr: str, n: int) -> List[sp.Symbol]:
@@ -498,6 +523,16 @@ def derive_ekf_update(spec: SensorSpec, mspec: ModelSpec) -> EkfUpdateCode:
     D = _x("dx", n)
     delta = D if att else [XS[k] - X[k] for k in range(n)]
     if spec.diagonal:
+        # the compact form (one shared static function per filter; see EkfUpdateCode.compact)
+        compact: List[ScalarComponent] = []
+        for c in range(m):
+            Hrow = [Hm[c, j] for j in range(n)]
+            nz = [j for j in range(n) if Hrow[j] != 0]
+            r_expr = sp.Symbol(f"y[{c}]")
+            if c > 0:
+                r_expr = r_expr - sum((Hrow[j] * delta[j] for j in nz), sp.S.Zero)
+            compact.append(ScalarComponent([(j, Hrow[j]) for j in nz], r_expr, Rm[(c, c)]))
+        pre = list(stmts)
         for c in range(m):
             Hrow = [Hm[c, j] for j in range(n)]
             nz = [j for j in range(n) if Hrow[j] != 0]
@@ -528,9 +563,10 @@ def derive_ekf_update(spec: SensorSpec, mspec: ModelSpec) -> EkfUpdateCode:
             for i in range(n):
                 for j in range(i, n):
                     stmts.append(Stmt("assign", f"Ps[{packed_index(i, j, n)}]", Ps[i, j] - K[i] * W[j]))
-        if att:
-            stmts += _inject(mspec)
-        return EkfUpdateCode(spec, True, stmts, _uses_params(stmts), m, n, n, n if att else 0, v_size=0)
+        tail = _inject(mspec) if att else []
+        stmts += tail
+        return EkfUpdateCode(spec, True, stmts, _uses_params(stmts), m, n, n, n if att else 0, v_size=0,
+                             compact=(pre, compact, tail))
 
     # block update with a full R
     Wm = sp.Matrix(n, m, lambda k, c: sp.Symbol(f"W[{k * m + c}]"))

@@ -384,6 +384,37 @@ def _component_text(expr: sp.Expr, width: int = 60) -> str:
     return text
 
 
+#: --optimize speed: the largest state (error) dimension whose Cholesky factorization stays
+#: unrolled; above it the n^3/6 straight-line multiply-adds outgrow an instruction cache
+UNROLL_CHOLESKY_MAX = 12
+#: --optimize speed: the largest dimension whose scalar update P -= K W' stays unrolled
+UNROLL_SCALAR_UPDATE_MAX = 12
+#: --optimize speed: F denser than this (non-zeros / n^2), with at least DENSE_F_MIN_N states, gets
+#: the loop form of F P F' (straight-line code then saves nothing on structure and grows as n^3)
+DENSE_F_FILL = 0.5
+DENSE_F_MIN_N = 8
+
+
+#: --optimize size: below this dimension the straight-line forms are already the smaller ones
+#: (measured on the M4F: a 3-state loop factorization and scalar update take more flash)
+COMPACT_MIN_N = 6
+
+
+def size_forms(optimize: str, ne: int) -> bool:
+    """True when --optimize size takes the compact forms for a filter of (error) dimension ``ne``."""
+    return optimize == "size" and ne >= COMPACT_MIN_N
+
+
+def compact_forms(optimize: str, ne: int) -> Dict[str, bool]:
+    """Which blocks take their compact (loop) form (docs/performance.md, "Speed and size"):
+    under "size" every block that has one, from COMPACT_MIN_N states; under "speed" the
+    factorization above UNROLL_CHOLESKY_MAX states (the filter kinds add their own blocks)."""
+    size = size_forms(optimize, ne)
+    forms = {"chol": size or ne > UNROLL_CHOLESKY_MAX, "scalar_update": False, "predict": False}
+    forms["pku"] = forms["chol"]
+    return forms
+
+
 def _common_context(spec: ModelSpec, setup: "FilterSetup") -> Dict[str, Any]:
     """What every filter's templates share. The options in ``setup`` are validated already."""
     filt, precision, commit_check = setup.name, setup.precision, setup.common.commit_check
@@ -489,6 +520,7 @@ def _common_context(spec: ModelSpec, setup: "FilterSetup") -> Dict[str, Any]:
         "commit_diag": commit_diag,
         "commit_check": commit_check,
         "optimize": optimize,
+        "compact": compact_forms(optimize, ne),
         "cert_kappa": CERT_KAPPA,
         "commit_fns": commit_fns,
         "commit_ops": commit_ops,
@@ -524,6 +556,88 @@ def pivot_check(n: int, P: str) -> Tuple[Stmt, ...]:
     return tuple(commit_check(n, P))
 
 
+def _compact_predict(em: Emitter, ctx: Dict[str, Any], compact: Any) -> List[str]:
+    """The predict's lines in the compact form: f, F, G, Q as before, then P' = F P F' + G Qw G' + Q
+    as loops over F's non-zeros (static const row starts and columns, a local value array)."""
+    pre, fnz, noise, tail = compact
+    ne, prefix = ctx["ne"], ctx["prefix"]
+    starts = [0] * (ne + 1)
+    for i, _, _ in fnz:
+        starts[i + 1] += 1
+    for i in range(ne):
+        starts[i + 1] += starts[i]
+    nnz = len(fnz)
+    real, zero = em.real, em.lit(0.0)
+    pku = f"{prefix}_pku"
+    out = em.lines(with_sections(pre, EKF_PREDICT_SECTIONS))
+    out += [
+        "/* P' = F P F' + G Qw G' + Q: the noise terms straight-line, then loops over F's non-zeros",
+        "   (row starts Fr, columns Fc, values Fv); --optimize compact form, see the header */",
+        "{",
+        f"    static const uint16_t Fr[{ne + 1}] = {{{', '.join(f'{v}u' for v in starts)}}};",
+        f"    static const uint16_t Fc[{nnz}] = {{{', '.join(f'{k}u' for _, k, _ in fnz)}}};",
+        f"    const {real} Fv[{nnz}] = {{{', '.join(em.expr(e) for _, _, e in fnz)}}};",
+        f"    {real} arow[{ne}];",
+        "    size_t ci;",
+        "    size_t cj;",
+        "    size_t ck;",
+        "    size_t cp;",
+        "    memset(Pn, 0, sizeof Pn);",
+    ]
+    out += ["    " + line for line in em.lines(noise)]
+    out += [
+        f"    for (ci = 0u; ci < {ne}u; ++ci) {{",
+        f"        for (ck = 0u; ck < {ne}u; ++ck) {{",
+        f"            {real} acc = {zero};",
+        f"            for (cp = Fr[ci]; cp < Fr[ci + 1u] && cp < {nnz}u; ++cp) {{",
+        "                const size_t col = Fc[cp];",
+        f"                acc += Fv[cp] * P[(col <= ck) ? {pku}(col, ck) : {pku}(ck, col)];",
+        "            }",
+        "            arow[ck] = acc;",
+        "        }",
+        f"        for (cj = ci; cj < {ne}u; ++cj) {{",
+        f"            const size_t q = {pku}(ci, cj);",
+        f"            {real} acc = Pn[q];",
+        f"            for (cp = Fr[cj]; cp < Fr[cj + 1u] && cp < {nnz}u; ++cp) {{",
+        "                acc += arow[Fc[cp]] * Fv[cp];",
+        "            }",
+        "            Pn[q] = acc;",
+        "        }",
+        "    }",
+        "}",
+    ]
+    return out + em.lines(tail)
+
+
+def _compact_sequential(em: Emitter, prefix: str, uc: Any, rules: Any) -> Tuple[List[str], List[str]]:
+    """A sequential update's lines in the compact form: h, H and y as before, then one call of
+    the shared static scalar-update function per component (its row of H in a static const
+    column table and a local value array); and the lines after the NIS is complete (the gate goes
+    between)."""
+    pre, comps, tail = uc.compact
+    target = "dx" if uc.dx_size else "xs"
+    out = em.lines(with_sections(pre, rules))
+    if uc.dx_size:
+        out.append("memset(dx, 0, sizeof dx);")
+    for c, comp in enumerate(comps):
+        nh = len(comp.h)
+        cols = ", ".join(f"{j}u" for j, _ in comp.h)
+        vals = ", ".join(em.expr(e) for _, e in comp.h)
+        out += [
+            f"/* component z[{c}]: the shared scalar update */",
+            "{",
+            f"    static const uint16_t hc[{nh}] = {{{cols}}};",
+            f"    const {em.real} hv[{nh}] = {{{vals}}};",
+            f"    const {em.real} rc = {em.expr(comp.r)};",
+            f"    const int st = {prefix}_scalar_update({target}, Ps, hv, hc, {nh}u, rc, {em.expr(comp.R)}, &nis);",
+            f"    if (st != {em.upper}_OK) {{",
+            "        return st;",
+            "    }",
+            "}",
+        ]
+    return out, em.lines(tail)
+
+
 def generate_ekf(spec: ModelSpec, setup: "FilterSetup") -> Generated:
     """Generate the EKF's header and source for ``spec`` (gates set, support checked)."""
     ctx = _common_context(spec, setup)
@@ -532,7 +646,15 @@ def generate_ekf(spec: ModelSpec, setup: "FilterSetup") -> Generated:
     code = spec.derived("derive_ekf", lambda: derive_ekf(spec))
     ops: Dict[str, Dict[str, int]] = {}
     pc = OpCount()
-    ctx["predict"] = {"lines": em.lines(with_sections(code.predict.stmts, EKF_PREDICT_SECTIONS), pc), "uses_par": code.predict.uses_par,
+    p_lines = em.lines(with_sections(code.predict.stmts, EKF_PREDICT_SECTIONS), pc)
+    forms = ctx["compact"]
+    if code.predict.compact is not None and code.predict.compact[1]:
+        fill = len(code.predict.compact[1]) / float(spec.ne * spec.ne)
+        forms["predict"] = size_forms(setup.common.optimize, spec.ne) or (fill > DENSE_F_FILL and spec.ne >= DENSE_F_MIN_N)
+    if forms["predict"]:
+        p_lines = _compact_predict(em, ctx, code.predict.compact)
+        forms["pku"] = True
+    ctx["predict"] = {"lines": p_lines, "uses_par": code.predict.uses_par,
                       "uses_u": code.predict.uses_u, "cert": []}
     if setup.common.commit_check == "subtractive":
         # the predict's rounding certificate (derive.predict_certificate), else a factorization
@@ -553,15 +675,24 @@ def generate_ekf(spec: ModelSpec, setup: "FilterSetup") -> Generated:
                                       else ctx["commit_fns"]["predict"]])
     ops["predict"] = pc.as_dict()
     ups = []
+    forms["scalar_update"] = size_forms(setup.common.optimize, spec.ne) or spec.ne > UNROLL_SCALAR_UPDATE_MAX
+    forms["scalar_update_used"] = False
     for uc, sctx in zip(code.updates, ctx["sensors"]):
         oc = OpCount()
         rules = ekf_sequential_sections(uc.sensor) if uc.sequential else EKF_BLOCK_UPDATE_SECTIONS
         head, rest = gate_split(with_sections(uc.stmts + angle_wraps(spec, "xs"), rules))
         body, after = em.lines(head, oc), em.lines(rest, oc)
+        w_size, k_size = uc.w_size, uc.k_size
+        if forms["scalar_update"] and uc.compact is not None and all(comp.h for comp in uc.compact[1]):
+            # every component through the shared function: the NIS is complete after the last
+            body, after = _compact_sequential(em, ctx["prefix"], uc, rules)
+            after += em.lines(angle_wraps(spec, "xs"))
+            w_size = k_size = 0
+            forms["scalar_update_used"] = forms["pku"] = True
         oc += OpCount(**ctx["commit_ops"][ctx["commit_fns"]["update"]])
         ops[f"update_{uc.sensor.name}"] = oc.as_dict()
-        ups.append({**sctx, "lines": body, "rest": after, "uses_par": uc.uses_par, "w_size": uc.w_size,
-                    "k_size": uc.k_size, "v_size": uc.v_size, "sequential": uc.sequential, "dx_size": uc.dx_size})
+        ups.append({**sctx, "lines": body, "rest": after, "uses_par": uc.uses_par, "w_size": w_size,
+                    "k_size": k_size, "v_size": uc.v_size, "sequential": uc.sequential, "dx_size": uc.dx_size})
     ctx["updates"] = ups
     ctx["ops"] = ops
     return _render(ctx)

@@ -287,3 +287,35 @@ def test_predict_certificate_detects_cancellation():
     assert predict_certificate(F, {(0, 0): q, (0, 1): q / 2, (1, 1): q}, 2) is None
     # an indefinite constant Q neither
     assert predict_certificate(F, {(0, 0): sp.Integer(1), (0, 1): sp.Integer(2), (1, 1): sp.Integer(1)}, 2) is None
+
+
+# --optimize size (contract section 9): the compact forms must compute what the reference
+# computes, compile under the contract's warning set and stay deterministic, like the default.
+SIZE_CONFIGS = [c for c in CONFIGS if c[1] in ("ekf", "ukf")]
+
+
+@pytest.mark.parametrize("example,filt,precision", SIZE_CONFIGS)
+def test_optimize_size_matches_reference_and_compiles_clean(example, filt, precision, tmp_path):
+    """The same C-against-reference check as test_c_matches_reference (numpy reference, issue 2
+    tolerances), on the --optimize size build, plus the strict compile and byte-determinism."""
+    require_tool("gcc")
+    spec = estgen.load_model(example_model(example))
+    gen = generate(spec, filter=filt, precision=precision, optimize="size")
+    assert gen.files == generate(spec, filter=filt, precision=precision, optimize="size").files
+    assert "--optimize size" in gen.header
+    src = _write(gen, tmp_path)
+    proc = subprocess.run(["gcc", *STRICT_FLAGS, "-Wvla", "-O2", "-c", src, "-o", str(tmp_path / "f.o")],
+                          capture_output=True, text=True)
+    assert proc.returncode == 0, proc.stderr
+    res = verify(spec, filter=filt, precision=precision, steps=300, seed=7, optimize="size")
+    assert res.ok, res.as_dict()
+
+
+def test_optimize_size_uses_the_compact_forms():
+    # the 15-state example: loops over F's non-zeros, one shared scalar update, a loop factorization
+    spec = estgen.load_model(example_model("strapdown_nav"))
+    size = generate(spec, filter="ekf", precision="float", optimize="size").source
+    speed = generate(spec, filter="ekf", precision="float").source
+    assert "static const uint16_t Fr[" in size and "_scalar_update(" in size and "_cholesky(" in size
+    assert "static const uint16_t Fr[" not in speed  # F is sparse: straight-line under speed
+    assert len(size) < len(speed)

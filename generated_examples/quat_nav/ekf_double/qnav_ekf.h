@@ -90,13 +90,12 @@
  * Deviation from Power of Ten rule 4 (functions of at most 60 lines): these generated
  * functions are longer because the algebra is unrolled straight-line code (no loops, one exit path
  * besides the early refusals), each block headed by a section comment:
- *   qnav_ekf_commit_pd: 179 lines
  *   qnav_ekf_init: 137 lines
  *   qnav_ekf_predict: 451 lines
- *   qnav_ekf_update_gnss_pos_nis: 584 lines
- *   qnav_ekf_update_gnss_vel_nis: 584 lines
- *   qnav_ekf_update_baro_nis: 238 lines
- *   qnav_ekf_update_mag_nis: 611 lines
+ *   qnav_ekf_update_gnss_pos_nis: 97 lines
+ *   qnav_ekf_update_gnss_vel_nis: 97 lines
+ *   qnav_ekf_update_baro_nis: 75 lines
+ *   qnav_ekf_update_mag_nis: 124 lines
  */
 #ifndef QNAV_EKF_H
 #define QNAV_EKF_H

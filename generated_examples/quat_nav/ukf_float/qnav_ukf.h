@@ -87,8 +87,6 @@
  * Deviation from Power of Ten rule 4 (functions of at most 60 lines): these generated
  * functions are longer because the algebra is unrolled straight-line code (no loops, one exit path
  * besides the early refusals), each block headed by a section comment:
- *   qnav_ukf_commit_pd: 179 lines
- *   qnav_ukf_factor: 300 lines
  *   qnav_ukf_init: 137 lines
  *   qnav_ukf_predict: 2224 lines
  *   qnav_ukf_update_gnss_pos_nis: 432 lines

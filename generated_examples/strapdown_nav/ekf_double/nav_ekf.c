@@ -31,190 +31,54 @@ static size_t nav_ekf_pk(size_t i, size_t j)
     return (i <= j) ? (i * 15u - (i * (i + 1u)) / 2u + j) : (j * 15u - (j * (j + 1u)) / 2u + i);
 }
 
+/* Packed index of entry (r, c), r <= c. */
+static size_t nav_ekf_pku(size_t r, size_t c)
+{
+    return (r * (29u - r)) / 2u + c;
+}
+
+/* L = the lower Cholesky factor of the packed P (L_ij, i >= j, at the packed index of (j, i)); OK,
+   or the refusal code at the first pivot that is not finite and > 0. Loops with constant bounds
+   (--optimize speed: see the header). A non-finite entry of P always reaches a pivot. */
+static int nav_ekf_cholesky(const double *P, double *L)
+{
+    size_t i;
+    size_t j;
+    size_t k;
+    for (j = 0u; j < 15u; ++j) {
+        const size_t jj = nav_ekf_pku(j, j);
+        double d = P[jj];
+        double inv;
+        for (k = 0u; k < j; ++k) {
+            const double l = L[nav_ekf_pku(k, j)];
+            d -= l * l;
+        }
+        if (!isfinite(d)) {
+            return NAV_EKF_NON_FINITE;
+        }
+        if (!(d > 0.0)) {
+            return NAV_EKF_NOT_POSITIVE_DEFINITE;
+        }
+        L[jj] = sqrt(d);
+        inv = 1.0 / L[jj];
+        for (i = j + 1u; i < 15u; ++i) {
+            double e = P[nav_ekf_pku(j, i)];
+            for (k = 0u; k < j; ++k) {
+                e -= L[nav_ekf_pku(k, i)] * L[nav_ekf_pku(k, j)];
+            }
+            L[nav_ekf_pku(j, i)] = e * inv;
+        }
+    }
+    return NAV_EKF_OK;
+}
+
 /* OK when the packed covariance P is positive definite (every pivot of its Cholesky factorization
-   finite and > 0; a positive diagonal is not enough), else the refusal code. Unrolled; one copy
-   serves set_state and every commit that factorizes. A non-finite entry always reaches a pivot. */
+   finite and > 0; a positive diagonal is not enough), else the refusal code. One copy serves
+   set_state and every commit that factorizes. */
 static int nav_ekf_commit_pd(const double *P)
 {
-    const double Lcd0 = P[0];
-    if (!isfinite(Lcd0)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd0 > 0.0)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc0_0 = sqrt(Lcd0);
-    const double Lci0 = (1.0/Lc0_0);
-    const double Lc1_0 = Lci0*P[1];
-    const double Lc2_0 = Lci0*P[2];
-    const double Lc3_0 = Lci0*P[3];
-    const double Lc4_0 = Lci0*P[4];
-    const double Lc5_0 = Lci0*P[5];
-    const double Lc6_0 = Lci0*P[6];
-    const double Lc7_0 = Lci0*P[7];
-    const double Lc8_0 = Lci0*P[8];
-    const double Lc9_0 = Lci0*P[9];
-    const double Lc10_0 = Lci0*P[10];
-    const double Lc11_0 = Lci0*P[11];
-    const double Lc12_0 = Lci0*P[12];
-    const double Lc13_0 = Lci0*P[13];
-    const double Lc14_0 = Lci0*P[14];
-    const double Lcd1 = P[15] - (Lc1_0*Lc1_0);
-    if (!isfinite(Lcd1)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd1 > 0.0)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc1_1 = sqrt(Lcd1);
-    const double Lci1 = (1.0/Lc1_1);
-    const double Lc2_1 = Lci1*(P[16] - Lc1_0*Lc2_0);
-    const double Lc3_1 = Lci1*(P[17] - Lc1_0*Lc3_0);
-    const double Lc4_1 = Lci1*(P[18] - Lc1_0*Lc4_0);
-    const double Lc5_1 = Lci1*(P[19] - Lc1_0*Lc5_0);
-    const double Lc6_1 = Lci1*(P[20] - Lc1_0*Lc6_0);
-    const double Lc7_1 = Lci1*(P[21] - Lc1_0*Lc7_0);
-    const double Lc8_1 = Lci1*(P[22] - Lc1_0*Lc8_0);
-    const double Lc9_1 = Lci1*(P[23] - Lc1_0*Lc9_0);
-    const double Lc10_1 = Lci1*(P[24] - Lc10_0*Lc1_0);
-    const double Lc11_1 = Lci1*(P[25] - Lc11_0*Lc1_0);
-    const double Lc12_1 = Lci1*(P[26] - Lc12_0*Lc1_0);
-    const double Lc13_1 = Lci1*(P[27] - Lc13_0*Lc1_0);
-    const double Lc14_1 = Lci1*(P[28] - Lc14_0*Lc1_0);
-    const double Lcd2 = P[29] - (Lc2_0*Lc2_0) - (Lc2_1*Lc2_1);
-    if (!isfinite(Lcd2)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd2 > 0.0)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc2_2 = sqrt(Lcd2);
-    const double Lci2 = (1.0/Lc2_2);
-    const double Lc3_2 = Lci2*(P[30] - Lc2_0*Lc3_0 - Lc2_1*Lc3_1);
-    const double Lc4_2 = Lci2*(P[31] - Lc2_0*Lc4_0 - Lc2_1*Lc4_1);
-    const double Lc5_2 = Lci2*(P[32] - Lc2_0*Lc5_0 - Lc2_1*Lc5_1);
-    const double Lc6_2 = Lci2*(P[33] - Lc2_0*Lc6_0 - Lc2_1*Lc6_1);
-    const double Lc7_2 = Lci2*(P[34] - Lc2_0*Lc7_0 - Lc2_1*Lc7_1);
-    const double Lc8_2 = Lci2*(P[35] - Lc2_0*Lc8_0 - Lc2_1*Lc8_1);
-    const double Lc9_2 = Lci2*(P[36] - Lc2_0*Lc9_0 - Lc2_1*Lc9_1);
-    const double Lc10_2 = Lci2*(P[37] - Lc10_0*Lc2_0 - Lc10_1*Lc2_1);
-    const double Lc11_2 = Lci2*(P[38] - Lc11_0*Lc2_0 - Lc11_1*Lc2_1);
-    const double Lc12_2 = Lci2*(P[39] - Lc12_0*Lc2_0 - Lc12_1*Lc2_1);
-    const double Lc13_2 = Lci2*(P[40] - Lc13_0*Lc2_0 - Lc13_1*Lc2_1);
-    const double Lc14_2 = Lci2*(P[41] - Lc14_0*Lc2_0 - Lc14_1*Lc2_1);
-    const double Lcd3 = P[42] - (Lc3_0*Lc3_0) - (Lc3_1*Lc3_1) - (Lc3_2*Lc3_2);
-    if (!isfinite(Lcd3)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd3 > 0.0)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc3_3 = sqrt(Lcd3);
-    const double Lci3 = (1.0/Lc3_3);
-    const double Lc4_3 = Lci3*(P[43] - Lc3_0*Lc4_0 - Lc3_1*Lc4_1 - Lc3_2*Lc4_2);
-    const double Lc5_3 = Lci3*(P[44] - Lc3_0*Lc5_0 - Lc3_1*Lc5_1 - Lc3_2*Lc5_2);
-    const double Lc6_3 = Lci3*(P[45] - Lc3_0*Lc6_0 - Lc3_1*Lc6_1 - Lc3_2*Lc6_2);
-    const double Lc7_3 = Lci3*(P[46] - Lc3_0*Lc7_0 - Lc3_1*Lc7_1 - Lc3_2*Lc7_2);
-    const double Lc8_3 = Lci3*(P[47] - Lc3_0*Lc8_0 - Lc3_1*Lc8_1 - Lc3_2*Lc8_2);
-    const double Lc9_3 = Lci3*(P[48] - Lc3_0*Lc9_0 - Lc3_1*Lc9_1 - Lc3_2*Lc9_2);
-    const double Lc10_3 = Lci3*(P[49] - Lc10_0*Lc3_0 - Lc10_1*Lc3_1 - Lc10_2*Lc3_2);
-    const double Lc11_3 = Lci3*(P[50] - Lc11_0*Lc3_0 - Lc11_1*Lc3_1 - Lc11_2*Lc3_2);
-    const double Lc12_3 = Lci3*(P[51] - Lc12_0*Lc3_0 - Lc12_1*Lc3_1 - Lc12_2*Lc3_2);
-    const double Lc13_3 = Lci3*(P[52] - Lc13_0*Lc3_0 - Lc13_1*Lc3_1 - Lc13_2*Lc3_2);
-    const double Lc14_3 = Lci3*(P[53] - Lc14_0*Lc3_0 - Lc14_1*Lc3_1 - Lc14_2*Lc3_2);
-    const double Lcd4 = P[54] - (Lc4_0*Lc4_0) - (Lc4_1*Lc4_1) - (Lc4_2*Lc4_2) - (Lc4_3*Lc4_3);
-    if (!isfinite(Lcd4)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd4 > 0.0)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc4_4 = sqrt(Lcd4);
-    const double Lci4 = (1.0/Lc4_4);
-    const double Lc5_4 = Lci4*(P[55] - Lc4_0*Lc5_0 - Lc4_1*Lc5_1 - Lc4_2*Lc5_2 - Lc4_3*Lc5_3);
-    const double Lc6_4 = Lci4*(P[56] - Lc4_0*Lc6_0 - Lc4_1*Lc6_1 - Lc4_2*Lc6_2 - Lc4_3*Lc6_3);
-    const double Lc7_4 = Lci4*(P[57] - Lc4_0*Lc7_0 - Lc4_1*Lc7_1 - Lc4_2*Lc7_2 - Lc4_3*Lc7_3);
-    const double Lc8_4 = Lci4*(P[58] - Lc4_0*Lc8_0 - Lc4_1*Lc8_1 - Lc4_2*Lc8_2 - Lc4_3*Lc8_3);
-    const double Lc9_4 = Lci4*(P[59] - Lc4_0*Lc9_0 - Lc4_1*Lc9_1 - Lc4_2*Lc9_2 - Lc4_3*Lc9_3);
-    const double Lc10_4 = Lci4*(P[60] - Lc10_0*Lc4_0 - Lc10_1*Lc4_1 - Lc10_2*Lc4_2 - Lc10_3*Lc4_3);
-    const double Lc11_4 = Lci4*(P[61] - Lc11_0*Lc4_0 - Lc11_1*Lc4_1 - Lc11_2*Lc4_2 - Lc11_3*Lc4_3);
-    const double Lc12_4 = Lci4*(P[62] - Lc12_0*Lc4_0 - Lc12_1*Lc4_1 - Lc12_2*Lc4_2 - Lc12_3*Lc4_3);
-    const double Lc13_4 = Lci4*(P[63] - Lc13_0*Lc4_0 - Lc13_1*Lc4_1 - Lc13_2*Lc4_2 - Lc13_3*Lc4_3);
-    const double Lc14_4 = Lci4*(P[64] - Lc14_0*Lc4_0 - Lc14_1*Lc4_1 - Lc14_2*Lc4_2 - Lc14_3*Lc4_3);
-    const double Lcd5 = P[65] - (Lc5_0*Lc5_0) - (Lc5_1*Lc5_1) - (Lc5_2*Lc5_2) - (Lc5_3*Lc5_3) - (Lc5_4*Lc5_4);
-    if (!isfinite(Lcd5)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd5 > 0.0)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc5_5 = sqrt(Lcd5);
-    const double Lci5 = (1.0/Lc5_5);
-    const double Lc6_5 = Lci5*(P[66] - Lc5_0*Lc6_0 - Lc5_1*Lc6_1 - Lc5_2*Lc6_2 - Lc5_3*Lc6_3 - Lc5_4*Lc6_4);
-    const double Lc7_5 = Lci5*(P[67] - Lc5_0*Lc7_0 - Lc5_1*Lc7_1 - Lc5_2*Lc7_2 - Lc5_3*Lc7_3 - Lc5_4*Lc7_4);
-    const double Lc8_5 = Lci5*(P[68] - Lc5_0*Lc8_0 - Lc5_1*Lc8_1 - Lc5_2*Lc8_2 - Lc5_3*Lc8_3 - Lc5_4*Lc8_4);
-    const double Lc9_5 = Lci5*(P[69] - Lc5_0*Lc9_0 - Lc5_1*Lc9_1 - Lc5_2*Lc9_2 - Lc5_3*Lc9_3 - Lc5_4*Lc9_4);
-    const double Lc10_5 = Lci5*(P[70] - Lc10_0*Lc5_0 - Lc10_1*Lc5_1 - Lc10_2*Lc5_2 - Lc10_3*Lc5_3 - Lc10_4*Lc5_4);
-    const double Lc11_5 = Lci5*(P[71] - Lc11_0*Lc5_0 - Lc11_1*Lc5_1 - Lc11_2*Lc5_2 - Lc11_3*Lc5_3 - Lc11_4*Lc5_4);
-    const double Lc12_5 = Lci5*(P[72] - Lc12_0*Lc5_0 - Lc12_1*Lc5_1 - Lc12_2*Lc5_2 - Lc12_3*Lc5_3 - Lc12_4*Lc5_4);
-    const double Lc13_5 = Lci5*(P[73] - Lc13_0*Lc5_0 - Lc13_1*Lc5_1 - Lc13_2*Lc5_2 - Lc13_3*Lc5_3 - Lc13_4*Lc5_4);
-    const double Lc14_5 = Lci5*(P[74] - Lc14_0*Lc5_0 - Lc14_1*Lc5_1 - Lc14_2*Lc5_2 - Lc14_3*Lc5_3 - Lc14_4*Lc5_4);
-    const double Lcd6 = P[75] - (Lc6_0*Lc6_0) - (Lc6_1*Lc6_1) - (Lc6_2*Lc6_2) - (Lc6_3*Lc6_3) - (Lc6_4*Lc6_4) - (Lc6_5*Lc6_5);
-    if (!isfinite(Lcd6)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd6 > 0.0)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc6_6 = sqrt(Lcd6);
-    const double Lci6 = (1.0/Lc6_6);
-    const double Lc7_6 = Lci6*(P[76] - Lc6_0*Lc7_0 - Lc6_1*Lc7_1 - Lc6_2*Lc7_2 - Lc6_3*Lc7_3 - Lc6_4*Lc7_4 - Lc6_5*Lc7_5);
-    const double Lc8_6 = Lci6*(P[77] - Lc6_0*Lc8_0 - Lc6_1*Lc8_1 - Lc6_2*Lc8_2 - Lc6_3*Lc8_3 - Lc6_4*Lc8_4 - Lc6_5*Lc8_5);
-    const double Lc9_6 = Lci6*(P[78] - Lc6_0*Lc9_0 - Lc6_1*Lc9_1 - Lc6_2*Lc9_2 - Lc6_3*Lc9_3 - Lc6_4*Lc9_4 - Lc6_5*Lc9_5);
-    const double Lc10_6 = Lci6*(P[79] - Lc10_0*Lc6_0 - Lc10_1*Lc6_1 - Lc10_2*Lc6_2 - Lc10_3*Lc6_3 - Lc10_4*Lc6_4 - Lc10_5*Lc6_5);
-    const double Lc11_6 = Lci6*(P[80] - Lc11_0*Lc6_0 - Lc11_1*Lc6_1 - Lc11_2*Lc6_2 - Lc11_3*Lc6_3 - Lc11_4*Lc6_4 - Lc11_5*Lc6_5);
-    const double Lc12_6 = Lci6*(P[81] - Lc12_0*Lc6_0 - Lc12_1*Lc6_1 - Lc12_2*Lc6_2 - Lc12_3*Lc6_3 - Lc12_4*Lc6_4 - Lc12_5*Lc6_5);
-    const double Lc13_6 = Lci6*(P[82] - Lc13_0*Lc6_0 - Lc13_1*Lc6_1 - Lc13_2*Lc6_2 - Lc13_3*Lc6_3 - Lc13_4*Lc6_4 - Lc13_5*Lc6_5);
-    const double Lc14_6 = Lci6*(P[83] - Lc14_0*Lc6_0 - Lc14_1*Lc6_1 - Lc14_2*Lc6_2 - Lc14_3*Lc6_3 - Lc14_4*Lc6_4 - Lc14_5*Lc6_5);
-    const double Lcd7 = P[84] - (Lc7_0*Lc7_0) - (Lc7_1*Lc7_1) - (Lc7_2*Lc7_2) - (Lc7_3*Lc7_3) - (Lc7_4*Lc7_4) - (Lc7_5*Lc7_5) - (Lc7_6*Lc7_6);
-    if (!isfinite(Lcd7)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd7 > 0.0)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc7_7 = sqrt(Lcd7);
-    const double Lci7 = (1.0/Lc7_7);
-    const double Lc8_7 = Lci7*(P[85] - Lc7_0*Lc8_0 - Lc7_1*Lc8_1 - Lc7_2*Lc8_2 - Lc7_3*Lc8_3 - Lc7_4*Lc8_4 - Lc7_5*Lc8_5 - Lc7_6*Lc8_6);
-    const double Lc9_7 = Lci7*(P[86] - Lc7_0*Lc9_0 - Lc7_1*Lc9_1 - Lc7_2*Lc9_2 - Lc7_3*Lc9_3 - Lc7_4*Lc9_4 - Lc7_5*Lc9_5 - Lc7_6*Lc9_6);
-    const double Lc10_7 = Lci7*(P[87] - Lc10_0*Lc7_0 - Lc10_1*Lc7_1 - Lc10_2*Lc7_2 - Lc10_3*Lc7_3 - Lc10_4*Lc7_4 - Lc10_5*Lc7_5 - Lc10_6*Lc7_6);
-    const double Lc11_7 = Lci7*(P[88] - Lc11_0*Lc7_0 - Lc11_1*Lc7_1 - Lc11_2*Lc7_2 - Lc11_3*Lc7_3 - Lc11_4*Lc7_4 - Lc11_5*Lc7_5 - Lc11_6*Lc7_6);
-    const double Lc12_7 = Lci7*(P[89] - Lc12_0*Lc7_0 - Lc12_1*Lc7_1 - Lc12_2*Lc7_2 - Lc12_3*Lc7_3 - Lc12_4*Lc7_4 - Lc12_5*Lc7_5 - Lc12_6*Lc7_6);
-    const double Lc13_7 = Lci7*(P[90] - Lc13_0*Lc7_0 - Lc13_1*Lc7_1 - Lc13_2*Lc7_2 - Lc13_3*Lc7_3 - Lc13_4*Lc7_4 - Lc13_5*Lc7_5 - Lc13_6*Lc7_6);
-    const double Lc14_7 = Lci7*(P[91] - Lc14_0*Lc7_0 - Lc14_1*Lc7_1 - Lc14_2*Lc7_2 - Lc14_3*Lc7_3 - Lc14_4*Lc7_4 - Lc14_5*Lc7_5 - Lc14_6*Lc7_6);
-    const double Lcd8 = P[92] - (Lc8_0*Lc8_0) - (Lc8_1*Lc8_1) - (Lc8_2*Lc8_2) - (Lc8_3*Lc8_3) - (Lc8_4*Lc8_4) - (Lc8_5*Lc8_5) - (Lc8_6*Lc8_6) - (Lc8_7*Lc8_7);
-    if (!isfinite(Lcd8)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd8 > 0.0)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc8_8 = sqrt(Lcd8);
-    const double Lci8 = (1.0/Lc8_8);
-    const double Lc9_8 = Lci8*(P[93] - Lc8_0*Lc9_0 - Lc8_1*Lc9_1 - Lc8_2*Lc9_2 - Lc8_3*Lc9_3 - Lc8_4*Lc9_4 - Lc8_5*Lc9_5 - Lc8_6*Lc9_6 - Lc8_7*Lc9_7);
-    const double Lc10_8 = Lci8*(P[94] - Lc10_0*Lc8_0 - Lc10_1*Lc8_1 - Lc10_2*Lc8_2 - Lc10_3*Lc8_3 - Lc10_4*Lc8_4 - Lc10_5*Lc8_5 - Lc10_6*Lc8_6 - Lc10_7*Lc8_7);
-    const double Lc11_8 = Lci8*(P[95] - Lc11_0*Lc8_0 - Lc11_1*Lc8_1 - Lc11_2*Lc8_2 - Lc11_3*Lc8_3 - Lc11_4*Lc8_4 - Lc11_5*Lc8_5 - Lc11_6*Lc8_6 - Lc11_7*Lc8_7);
-    const double Lc12_8 = Lci8*(P[96] - Lc12_0*Lc8_0 - Lc12_1*Lc8_1 - Lc12_2*Lc8_2 - Lc12_3*Lc8_3 - Lc12_4*Lc8_4 - Lc12_5*Lc8_5 - Lc12_6*Lc8_6 - Lc12_7*Lc8_7);
-    const double Lc13_8 = Lci8*(P[97] - Lc13_0*Lc8_0 - Lc13_1*Lc8_1 - Lc13_2*Lc8_2 - Lc13_3*Lc8_3 - Lc13_4*Lc8_4 - Lc13_5*Lc8_5 - Lc13_6*Lc8_6 - Lc13_7*Lc8_7);
-    const double Lc14_8 = Lci8*(P[98] - Lc14_0*Lc8_0 - Lc14_1*Lc8_1 - Lc14_2*Lc8_2 - Lc14_3*Lc8_3 - Lc14_4*Lc8_4 - Lc14_5*Lc8_5 - Lc14_6*Lc8_6 - Lc14_7*Lc8_7);
-    const double Lcd9 = P[99] - (Lc9_0*Lc9_0) - (Lc9_1*Lc9_1) - (Lc9_2*Lc9_2) - (Lc9_3*Lc9_3) - (Lc9_4*Lc9_4) - (Lc9_5*Lc9_5) - (Lc9_6*Lc9_6) - (Lc9_7*Lc9_7) - (Lc9_8*Lc9_8);
-    if (!isfinite(Lcd9)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd9 > 0.0)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc9_9 = sqrt(Lcd9);
-    const double Lci9 = (1.0/Lc9_9);
-    const double Lc10_9 = Lci9*(P[100] - Lc10_0*Lc9_0 - Lc10_1*Lc9_1 - Lc10_2*Lc9_2 - Lc10_3*Lc9_3 - Lc10_4*Lc9_4 - Lc10_5*Lc9_5 - Lc10_6*Lc9_6 - Lc10_7*Lc9_7 - Lc10_8*Lc9_8);
-    const double Lc11_9 = Lci9*(P[101] - Lc11_0*Lc9_0 - Lc11_1*Lc9_1 - Lc11_2*Lc9_2 - Lc11_3*Lc9_3 - Lc11_4*Lc9_4 - Lc11_5*Lc9_5 - Lc11_6*Lc9_6 - Lc11_7*Lc9_7 - Lc11_8*Lc9_8);
-    const double Lc12_9 = Lci9*(P[102] - Lc12_0*Lc9_0 - Lc12_1*Lc9_1 - Lc12_2*Lc9_2 - Lc12_3*Lc9_3 - Lc12_4*Lc9_4 - Lc12_5*Lc9_5 - Lc12_6*Lc9_6 - Lc12_7*Lc9_7 - Lc12_8*Lc9_8);
-    const double Lc13_9 = Lci9*(P[103] - Lc13_0*Lc9_0 - Lc13_1*Lc9_1 - Lc13_2*Lc9_2 - Lc13_3*Lc9_3 - Lc13_4*Lc9_4 - Lc13_5*Lc9_5 - Lc13_6*Lc9_6 - Lc13_7*Lc9_7 - Lc13_8*Lc9_8);
-    const double Lc14_9 = Lci9*(P[104] - Lc14_0*Lc9_0 - Lc14_1*Lc9_1 - Lc14_2*Lc9_2 - Lc14_3*Lc9_3 - Lc14_4*Lc9_4 - Lc14_5*Lc9_5 - Lc14_6*Lc9_6 - Lc14_7*Lc9_7 - Lc14_8*Lc9_8);
-    const double Lcd10 = P[105] - (Lc10_0*Lc10_0) - (Lc10_1*Lc10_1) - (Lc10_2*Lc10_2) - (Lc10_3*Lc10_3) - (Lc10_4*Lc10_4) - (Lc10_5*Lc10_5) - (Lc10_6*Lc10_6) - (Lc10_7*Lc10_7) - (Lc10_8*Lc10_8) - (Lc10_9*Lc10_9);
-    if (!isfinite(Lcd10)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd10 > 0.0)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc10_10 = sqrt(Lcd10);
-    const double Lci10 = (1.0/Lc10_10);
-    const double Lc11_10 = Lci10*(P[106] - Lc10_0*Lc11_0 - Lc10_1*Lc11_1 - Lc10_2*Lc11_2 - Lc10_3*Lc11_3 - Lc10_4*Lc11_4 - Lc10_5*Lc11_5 - Lc10_6*Lc11_6 - Lc10_7*Lc11_7 - Lc10_8*Lc11_8 - Lc10_9*Lc11_9);
-    const double Lc12_10 = Lci10*(P[107] - Lc10_0*Lc12_0 - Lc10_1*Lc12_1 - Lc10_2*Lc12_2 - Lc10_3*Lc12_3 - Lc10_4*Lc12_4 - Lc10_5*Lc12_5 - Lc10_6*Lc12_6 - Lc10_7*Lc12_7 - Lc10_8*Lc12_8 - Lc10_9*Lc12_9);
-    const double Lc13_10 = Lci10*(P[108] - Lc10_0*Lc13_0 - Lc10_1*Lc13_1 - Lc10_2*Lc13_2 - Lc10_3*Lc13_3 - Lc10_4*Lc13_4 - Lc10_5*Lc13_5 - Lc10_6*Lc13_6 - Lc10_7*Lc13_7 - Lc10_8*Lc13_8 - Lc10_9*Lc13_9);
-    const double Lc14_10 = Lci10*(P[109] - Lc10_0*Lc14_0 - Lc10_1*Lc14_1 - Lc10_2*Lc14_2 - Lc10_3*Lc14_3 - Lc10_4*Lc14_4 - Lc10_5*Lc14_5 - Lc10_6*Lc14_6 - Lc10_7*Lc14_7 - Lc10_8*Lc14_8 - Lc10_9*Lc14_9);
-    const double Lcd11 = P[110] - (Lc11_0*Lc11_0) - (Lc11_1*Lc11_1) - (Lc11_10*Lc11_10) - (Lc11_2*Lc11_2) - (Lc11_3*Lc11_3) - (Lc11_4*Lc11_4) - (Lc11_5*Lc11_5) - (Lc11_6*Lc11_6) - (Lc11_7*Lc11_7) - (Lc11_8*Lc11_8) - (Lc11_9*Lc11_9);
-    if (!isfinite(Lcd11)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd11 > 0.0)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc11_11 = sqrt(Lcd11);
-    const double Lci11 = (1.0/Lc11_11);
-    const double Lc12_11 = Lci11*(P[111] - Lc11_0*Lc12_0 - Lc11_1*Lc12_1 - Lc11_10*Lc12_10 - Lc11_2*Lc12_2 - Lc11_3*Lc12_3 - Lc11_4*Lc12_4 - Lc11_5*Lc12_5 - Lc11_6*Lc12_6 - Lc11_7*Lc12_7 - Lc11_8*Lc12_8 - Lc11_9*Lc12_9);
-    const double Lc13_11 = Lci11*(P[112] - Lc11_0*Lc13_0 - Lc11_1*Lc13_1 - Lc11_10*Lc13_10 - Lc11_2*Lc13_2 - Lc11_3*Lc13_3 - Lc11_4*Lc13_4 - Lc11_5*Lc13_5 - Lc11_6*Lc13_6 - Lc11_7*Lc13_7 - Lc11_8*Lc13_8 - Lc11_9*Lc13_9);
-    const double Lc14_11 = Lci11*(P[113] - Lc11_0*Lc14_0 - Lc11_1*Lc14_1 - Lc11_10*Lc14_10 - Lc11_2*Lc14_2 - Lc11_3*Lc14_3 - Lc11_4*Lc14_4 - Lc11_5*Lc14_5 - Lc11_6*Lc14_6 - Lc11_7*Lc14_7 - Lc11_8*Lc14_8 - Lc11_9*Lc14_9);
-    const double Lcd12 = P[114] - (Lc12_0*Lc12_0) - (Lc12_1*Lc12_1) - (Lc12_10*Lc12_10) - (Lc12_11*Lc12_11) - (Lc12_2*Lc12_2) - (Lc12_3*Lc12_3) - (Lc12_4*Lc12_4) - (Lc12_5*Lc12_5) - (Lc12_6*Lc12_6) - (Lc12_7*Lc12_7) - (Lc12_8*Lc12_8) - (Lc12_9*Lc12_9);
-    if (!isfinite(Lcd12)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd12 > 0.0)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc12_12 = sqrt(Lcd12);
-    const double Lci12 = (1.0/Lc12_12);
-    const double Lc13_12 = Lci12*(P[115] - Lc12_0*Lc13_0 - Lc12_1*Lc13_1 - Lc12_10*Lc13_10 - Lc12_11*Lc13_11 - Lc12_2*Lc13_2 - Lc12_3*Lc13_3 - Lc12_4*Lc13_4 - Lc12_5*Lc13_5 - Lc12_6*Lc13_6 - Lc12_7*Lc13_7 - Lc12_8*Lc13_8 - Lc12_9*Lc13_9);
-    const double Lc14_12 = Lci12*(P[116] - Lc12_0*Lc14_0 - Lc12_1*Lc14_1 - Lc12_10*Lc14_10 - Lc12_11*Lc14_11 - Lc12_2*Lc14_2 - Lc12_3*Lc14_3 - Lc12_4*Lc14_4 - Lc12_5*Lc14_5 - Lc12_6*Lc14_6 - Lc12_7*Lc14_7 - Lc12_8*Lc14_8 - Lc12_9*Lc14_9);
-    const double Lcd13 = P[117] - (Lc13_0*Lc13_0) - (Lc13_1*Lc13_1) - (Lc13_10*Lc13_10) - (Lc13_11*Lc13_11) - (Lc13_12*Lc13_12) - (Lc13_2*Lc13_2) - (Lc13_3*Lc13_3) - (Lc13_4*Lc13_4) - (Lc13_5*Lc13_5) - (Lc13_6*Lc13_6) - (Lc13_7*Lc13_7) - (Lc13_8*Lc13_8) - (Lc13_9*Lc13_9);
-    if (!isfinite(Lcd13)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd13 > 0.0)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const double Lc13_13 = sqrt(Lcd13);
-    const double Lci13 = (1.0/Lc13_13);
-    const double Lc14_13 = Lci13*(P[118] - Lc13_0*Lc14_0 - Lc13_1*Lc14_1 - Lc13_10*Lc14_10 - Lc13_11*Lc14_11 - Lc13_12*Lc14_12 - Lc13_2*Lc14_2 - Lc13_3*Lc14_3 - Lc13_4*Lc14_4 - Lc13_5*Lc14_5 - Lc13_6*Lc14_6 - Lc13_7*Lc14_7 - Lc13_8*Lc14_8 - Lc13_9*Lc14_9);
-    const double Lcd14 = P[119] - (Lc14_0*Lc14_0) - (Lc14_1*Lc14_1) - (Lc14_10*Lc14_10) - (Lc14_11*Lc14_11) - (Lc14_12*Lc14_12) - (Lc14_13*Lc14_13) - (Lc14_2*Lc14_2) - (Lc14_3*Lc14_3) - (Lc14_4*Lc14_4) - (Lc14_5*Lc14_5) - (Lc14_6*Lc14_6) - (Lc14_7*Lc14_7) - (Lc14_8*Lc14_8) - (Lc14_9*Lc14_9);
-    if (!isfinite(Lcd14)) { return NAV_EKF_NON_FINITE; }
-    if (!(Lcd14 > 0.0)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    return NAV_EKF_OK;
+    double L[120] = {0.0};  /* written column by column before it is read */
+    return nav_ekf_cholesky(P, L);
 }
 
 /* OK when every diagonal entry of P is > 0 and below a sixteenth of the largest double.
@@ -423,6 +287,52 @@ double nav_ekf_cov(const nav_ekf_t *s, size_t i, size_t j)
     return s->P[nav_ekf_pk(i, j)];
 }
 
+
+/* One scalar measurement component (a diagonal R) whose row h of H has the non-zeros hv at the
+   columns hc: W = P h, s = h' W + R, K = W / s, xt += K r, P -= K W' (standard form), nis += r^2 / s.
+   One copy serves every component of every sensor (--optimize speed: see the header). */
+static int nav_ekf_scalar_update(double *xt, double *Ps, const double *hv, const uint16_t *hc, size_t nh,
+                                double r, double R, double *nis)
+{
+    double W[15];
+    double K[15];
+    double sv = R;
+    double is;
+    size_t i;
+    size_t j;
+    size_t p;
+    for (i = 0u; i < 15u; ++i) {
+        double w = 0.0;
+        for (p = 0u; p < nh && p < 15u; ++p) {
+            const size_t col = hc[p];
+            w += Ps[(i <= col) ? nav_ekf_pku(i, col) : nav_ekf_pku(col, i)] * hv[p];
+        }
+        W[i] = w;
+    }
+    for (p = 0u; p < nh && p < 15u; ++p) {
+        sv += hv[p] * W[hc[p]];
+    }
+    if (!isfinite(sv)) {
+        return NAV_EKF_NON_FINITE;
+    }
+    if (!(sv > 0.0)) {
+        return NAV_EKF_NOT_POSITIVE_DEFINITE;
+    }
+    is = 1.0 / sv;
+    *nis += is * (r * r);
+    for (i = 0u; i < 15u; ++i) {
+        K[i] = W[i] * is;
+        xt[i] += K[i] * r;
+    }
+    for (i = 0u; i < 15u; ++i) {
+        size_t q = nav_ekf_pku(i, i);
+        for (j = i; j < 15u; ++j) {
+            Ps[q] -= K[i] * W[j];
+            ++q;
+        }
+    }
+    return NAV_EKF_OK;
+}
 
 /* x' = f(x, u, dt), P' = F P F' + Q with F = df/dx: computed into scratch, committed at the end. */
 int nav_ekf_predict(nav_ekf_t *s, const double *u, double dt)
@@ -813,8 +723,6 @@ int nav_ekf_update_gnss_pos_nis(nav_ekf_t *s, const double *z, double *nis_out)
     double xs[15];
     double Ps[120];
     double y[3];
-    double W[15];
-    double K[15];
     double nis = 0.0;
     const double *x = s->x;
     if (z == NULL || !nav_ekf_finite(z, 3u)) {
@@ -827,372 +735,36 @@ int nav_ekf_update_gnss_pos_nis(nav_ekf_t *s, const double *z, double *nis_out)
     y[0] = z[0] - x[nav_ekf_ix_pn];
     y[1] = z[1] - x[nav_ekf_ix_pe];
     y[2] = z[2] - x[nav_ekf_ix_pd];
-    /* component z[0] of gnss_pos: W = P H_0', s = H_0 W + R_00, K = W / s, x += K r, Joseph-form P */
-    W[0] = Ps[0];
-    W[1] = Ps[1];
-    W[2] = Ps[2];
-    W[3] = Ps[3];
-    W[4] = Ps[4];
-    W[5] = Ps[5];
-    W[6] = Ps[6];
-    W[7] = Ps[7];
-    W[8] = Ps[8];
-    W[9] = Ps[9];
-    W[10] = Ps[10];
-    W[11] = Ps[11];
-    W[12] = Ps[12];
-    W[13] = Ps[13];
-    W[14] = Ps[14];
-    const double s0 = 2.25 + W[0];
-    if (!isfinite(s0)) { return NAV_EKF_NON_FINITE; }
-    if (!(s0 > 0.0)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const double is0 = (1.0/s0);
-    const double r0 = y[0];
-    nis = nis + is0*(r0*r0);
-    K[0] = W[0]*is0;
-    K[1] = W[1]*is0;
-    K[2] = W[2]*is0;
-    K[3] = W[3]*is0;
-    K[4] = W[4]*is0;
-    K[5] = W[5]*is0;
-    K[6] = W[6]*is0;
-    K[7] = W[7]*is0;
-    K[8] = W[8]*is0;
-    K[9] = W[9]*is0;
-    K[10] = W[10]*is0;
-    K[11] = W[11]*is0;
-    K[12] = W[12]*is0;
-    K[13] = W[13]*is0;
-    K[14] = W[14]*is0;
-    xs[nav_ekf_ix_pn] = xs[nav_ekf_ix_pn] + K[0]*r0;
-    xs[nav_ekf_ix_pe] = xs[nav_ekf_ix_pe] + K[1]*r0;
-    xs[nav_ekf_ix_pd] = xs[nav_ekf_ix_pd] + K[2]*r0;
-    xs[nav_ekf_ix_vn] = xs[nav_ekf_ix_vn] + K[3]*r0;
-    xs[nav_ekf_ix_ve] = xs[nav_ekf_ix_ve] + K[4]*r0;
-    xs[nav_ekf_ix_vd] = xs[nav_ekf_ix_vd] + K[5]*r0;
-    xs[nav_ekf_ix_roll] = xs[nav_ekf_ix_roll] + K[6]*r0;
-    xs[nav_ekf_ix_pitch] = xs[nav_ekf_ix_pitch] + K[7]*r0;
-    xs[nav_ekf_ix_yaw] = xs[nav_ekf_ix_yaw] + K[8]*r0;
-    xs[nav_ekf_ix_bgx] = xs[nav_ekf_ix_bgx] + K[9]*r0;
-    xs[nav_ekf_ix_bgy] = xs[nav_ekf_ix_bgy] + K[10]*r0;
-    xs[nav_ekf_ix_bgz] = xs[nav_ekf_ix_bgz] + K[11]*r0;
-    xs[nav_ekf_ix_bax] = xs[nav_ekf_ix_bax] + K[12]*r0;
-    xs[nav_ekf_ix_bay] = xs[nav_ekf_ix_bay] + K[13]*r0;
-    xs[nav_ekf_ix_baz] = xs[nav_ekf_ix_baz] + K[14]*r0;
-    Ps[0] = Ps[0] - K[0]*W[0];
-    Ps[1] = Ps[1] - K[0]*W[1];
-    Ps[2] = Ps[2] - K[0]*W[2];
-    Ps[3] = Ps[3] - K[0]*W[3];
-    Ps[4] = Ps[4] - K[0]*W[4];
-    Ps[5] = Ps[5] - K[0]*W[5];
-    Ps[6] = Ps[6] - K[0]*W[6];
-    Ps[7] = Ps[7] - K[0]*W[7];
-    Ps[8] = Ps[8] - K[0]*W[8];
-    Ps[9] = Ps[9] - K[0]*W[9];
-    Ps[10] = Ps[10] - K[0]*W[10];
-    Ps[11] = Ps[11] - K[0]*W[11];
-    Ps[12] = Ps[12] - K[0]*W[12];
-    Ps[13] = Ps[13] - K[0]*W[13];
-    Ps[14] = Ps[14] - K[0]*W[14];
-    Ps[15] = Ps[15] - K[1]*W[1];
-    Ps[16] = Ps[16] - K[1]*W[2];
-    Ps[17] = Ps[17] - K[1]*W[3];
-    Ps[18] = Ps[18] - K[1]*W[4];
-    Ps[19] = Ps[19] - K[1]*W[5];
-    Ps[20] = Ps[20] - K[1]*W[6];
-    Ps[21] = Ps[21] - K[1]*W[7];
-    Ps[22] = Ps[22] - K[1]*W[8];
-    Ps[23] = Ps[23] - K[1]*W[9];
-    Ps[24] = Ps[24] - K[1]*W[10];
-    Ps[25] = Ps[25] - K[1]*W[11];
-    Ps[26] = Ps[26] - K[1]*W[12];
-    Ps[27] = Ps[27] - K[1]*W[13];
-    Ps[28] = Ps[28] - K[1]*W[14];
-    Ps[29] = Ps[29] - K[2]*W[2];
-    Ps[30] = Ps[30] - K[2]*W[3];
-    Ps[31] = Ps[31] - K[2]*W[4];
-    Ps[32] = Ps[32] - K[2]*W[5];
-    Ps[33] = Ps[33] - K[2]*W[6];
-    Ps[34] = Ps[34] - K[2]*W[7];
-    Ps[35] = Ps[35] - K[2]*W[8];
-    Ps[36] = Ps[36] - K[2]*W[9];
-    Ps[37] = Ps[37] - K[2]*W[10];
-    Ps[38] = Ps[38] - K[2]*W[11];
-    Ps[39] = Ps[39] - K[2]*W[12];
-    Ps[40] = Ps[40] - K[2]*W[13];
-    Ps[41] = Ps[41] - K[2]*W[14];
-    Ps[42] = Ps[42] - K[3]*W[3];
-    Ps[43] = Ps[43] - K[3]*W[4];
-    Ps[44] = Ps[44] - K[3]*W[5];
-    Ps[45] = Ps[45] - K[3]*W[6];
-    Ps[46] = Ps[46] - K[3]*W[7];
-    Ps[47] = Ps[47] - K[3]*W[8];
-    Ps[48] = Ps[48] - K[3]*W[9];
-    Ps[49] = Ps[49] - K[3]*W[10];
-    Ps[50] = Ps[50] - K[3]*W[11];
-    Ps[51] = Ps[51] - K[3]*W[12];
-    Ps[52] = Ps[52] - K[3]*W[13];
-    Ps[53] = Ps[53] - K[3]*W[14];
-    Ps[54] = Ps[54] - K[4]*W[4];
-    Ps[55] = Ps[55] - K[4]*W[5];
-    Ps[56] = Ps[56] - K[4]*W[6];
-    Ps[57] = Ps[57] - K[4]*W[7];
-    Ps[58] = Ps[58] - K[4]*W[8];
-    Ps[59] = Ps[59] - K[4]*W[9];
-    Ps[60] = Ps[60] - K[4]*W[10];
-    Ps[61] = Ps[61] - K[4]*W[11];
-    Ps[62] = Ps[62] - K[4]*W[12];
-    Ps[63] = Ps[63] - K[4]*W[13];
-    Ps[64] = Ps[64] - K[4]*W[14];
-    Ps[65] = Ps[65] - K[5]*W[5];
-    Ps[66] = Ps[66] - K[5]*W[6];
-    Ps[67] = Ps[67] - K[5]*W[7];
-    Ps[68] = Ps[68] - K[5]*W[8];
-    Ps[69] = Ps[69] - K[5]*W[9];
-    Ps[70] = Ps[70] - K[5]*W[10];
-    Ps[71] = Ps[71] - K[5]*W[11];
-    Ps[72] = Ps[72] - K[5]*W[12];
-    Ps[73] = Ps[73] - K[5]*W[13];
-    Ps[74] = Ps[74] - K[5]*W[14];
-    Ps[75] = Ps[75] - K[6]*W[6];
-    Ps[76] = Ps[76] - K[6]*W[7];
-    Ps[77] = Ps[77] - K[6]*W[8];
-    Ps[78] = Ps[78] - K[6]*W[9];
-    Ps[79] = Ps[79] - K[6]*W[10];
-    Ps[80] = Ps[80] - K[6]*W[11];
-    Ps[81] = Ps[81] - K[6]*W[12];
-    Ps[82] = Ps[82] - K[6]*W[13];
-    Ps[83] = Ps[83] - K[6]*W[14];
-    Ps[84] = Ps[84] - K[7]*W[7];
-    Ps[85] = Ps[85] - K[7]*W[8];
-    Ps[86] = Ps[86] - K[7]*W[9];
-    Ps[87] = Ps[87] - K[7]*W[10];
-    Ps[88] = Ps[88] - K[7]*W[11];
-    Ps[89] = Ps[89] - K[7]*W[12];
-    Ps[90] = Ps[90] - K[7]*W[13];
-    Ps[91] = Ps[91] - K[7]*W[14];
-    Ps[92] = Ps[92] - K[8]*W[8];
-    Ps[93] = Ps[93] - K[8]*W[9];
-    Ps[94] = Ps[94] - K[8]*W[10];
-    Ps[95] = Ps[95] - K[8]*W[11];
-    Ps[96] = Ps[96] - K[8]*W[12];
-    Ps[97] = Ps[97] - K[8]*W[13];
-    Ps[98] = Ps[98] - K[8]*W[14];
-    Ps[99] = Ps[99] - K[9]*W[9];
-    Ps[100] = Ps[100] - K[9]*W[10];
-    Ps[101] = Ps[101] - K[9]*W[11];
-    Ps[102] = Ps[102] - K[9]*W[12];
-    Ps[103] = Ps[103] - K[9]*W[13];
-    Ps[104] = Ps[104] - K[9]*W[14];
-    Ps[105] = Ps[105] - K[10]*W[10];
-    Ps[106] = Ps[106] - K[10]*W[11];
-    Ps[107] = Ps[107] - K[10]*W[12];
-    Ps[108] = Ps[108] - K[10]*W[13];
-    Ps[109] = Ps[109] - K[10]*W[14];
-    Ps[110] = Ps[110] - K[11]*W[11];
-    Ps[111] = Ps[111] - K[11]*W[12];
-    Ps[112] = Ps[112] - K[11]*W[13];
-    Ps[113] = Ps[113] - K[11]*W[14];
-    Ps[114] = Ps[114] - K[12]*W[12];
-    Ps[115] = Ps[115] - K[12]*W[13];
-    Ps[116] = Ps[116] - K[12]*W[14];
-    Ps[117] = Ps[117] - K[13]*W[13];
-    Ps[118] = Ps[118] - K[13]*W[14];
-    Ps[119] = Ps[119] - K[14]*W[14];
-    /* component z[1] of gnss_pos: W = P H_1', s = H_1 W + R_11, K = W / s, x += K r, Joseph-form P */
-    W[0] = Ps[1];
-    W[1] = Ps[15];
-    W[2] = Ps[16];
-    W[3] = Ps[17];
-    W[4] = Ps[18];
-    W[5] = Ps[19];
-    W[6] = Ps[20];
-    W[7] = Ps[21];
-    W[8] = Ps[22];
-    W[9] = Ps[23];
-    W[10] = Ps[24];
-    W[11] = Ps[25];
-    W[12] = Ps[26];
-    W[13] = Ps[27];
-    W[14] = Ps[28];
-    const double s1 = 2.25 + W[1];
-    if (!isfinite(s1)) { return NAV_EKF_NON_FINITE; }
-    if (!(s1 > 0.0)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const double is1 = (1.0/s1);
-    const double r1 = x[nav_ekf_ix_pe] + y[1] - xs[nav_ekf_ix_pe];
-    nis = nis + is1*(r1*r1);
-    K[0] = W[0]*is1;
-    K[1] = W[1]*is1;
-    K[2] = W[2]*is1;
-    K[3] = W[3]*is1;
-    K[4] = W[4]*is1;
-    K[5] = W[5]*is1;
-    K[6] = W[6]*is1;
-    K[7] = W[7]*is1;
-    K[8] = W[8]*is1;
-    K[9] = W[9]*is1;
-    K[10] = W[10]*is1;
-    K[11] = W[11]*is1;
-    K[12] = W[12]*is1;
-    K[13] = W[13]*is1;
-    K[14] = W[14]*is1;
-    xs[nav_ekf_ix_pn] = xs[nav_ekf_ix_pn] + K[0]*r1;
-    xs[nav_ekf_ix_pe] = xs[nav_ekf_ix_pe] + K[1]*r1;
-    xs[nav_ekf_ix_pd] = xs[nav_ekf_ix_pd] + K[2]*r1;
-    xs[nav_ekf_ix_vn] = xs[nav_ekf_ix_vn] + K[3]*r1;
-    xs[nav_ekf_ix_ve] = xs[nav_ekf_ix_ve] + K[4]*r1;
-    xs[nav_ekf_ix_vd] = xs[nav_ekf_ix_vd] + K[5]*r1;
-    xs[nav_ekf_ix_roll] = xs[nav_ekf_ix_roll] + K[6]*r1;
-    xs[nav_ekf_ix_pitch] = xs[nav_ekf_ix_pitch] + K[7]*r1;
-    xs[nav_ekf_ix_yaw] = xs[nav_ekf_ix_yaw] + K[8]*r1;
-    xs[nav_ekf_ix_bgx] = xs[nav_ekf_ix_bgx] + K[9]*r1;
-    xs[nav_ekf_ix_bgy] = xs[nav_ekf_ix_bgy] + K[10]*r1;
-    xs[nav_ekf_ix_bgz] = xs[nav_ekf_ix_bgz] + K[11]*r1;
-    xs[nav_ekf_ix_bax] = xs[nav_ekf_ix_bax] + K[12]*r1;
-    xs[nav_ekf_ix_bay] = xs[nav_ekf_ix_bay] + K[13]*r1;
-    xs[nav_ekf_ix_baz] = xs[nav_ekf_ix_baz] + K[14]*r1;
-    Ps[0] = Ps[0] - K[0]*W[0];
-    Ps[1] = Ps[1] - K[0]*W[1];
-    Ps[2] = Ps[2] - K[0]*W[2];
-    Ps[3] = Ps[3] - K[0]*W[3];
-    Ps[4] = Ps[4] - K[0]*W[4];
-    Ps[5] = Ps[5] - K[0]*W[5];
-    Ps[6] = Ps[6] - K[0]*W[6];
-    Ps[7] = Ps[7] - K[0]*W[7];
-    Ps[8] = Ps[8] - K[0]*W[8];
-    Ps[9] = Ps[9] - K[0]*W[9];
-    Ps[10] = Ps[10] - K[0]*W[10];
-    Ps[11] = Ps[11] - K[0]*W[11];
-    Ps[12] = Ps[12] - K[0]*W[12];
-    Ps[13] = Ps[13] - K[0]*W[13];
-    Ps[14] = Ps[14] - K[0]*W[14];
-    Ps[15] = Ps[15] - K[1]*W[1];
-    Ps[16] = Ps[16] - K[1]*W[2];
-    Ps[17] = Ps[17] - K[1]*W[3];
-    Ps[18] = Ps[18] - K[1]*W[4];
-    Ps[19] = Ps[19] - K[1]*W[5];
-    Ps[20] = Ps[20] - K[1]*W[6];
-    Ps[21] = Ps[21] - K[1]*W[7];
-    Ps[22] = Ps[22] - K[1]*W[8];
-    Ps[23] = Ps[23] - K[1]*W[9];
-    Ps[24] = Ps[24] - K[1]*W[10];
-    Ps[25] = Ps[25] - K[1]*W[11];
-    Ps[26] = Ps[26] - K[1]*W[12];
-    Ps[27] = Ps[27] - K[1]*W[13];
-    Ps[28] = Ps[28] - K[1]*W[14];
-    Ps[29] = Ps[29] - K[2]*W[2];
-    Ps[30] = Ps[30] - K[2]*W[3];
-    Ps[31] = Ps[31] - K[2]*W[4];
-    Ps[32] = Ps[32] - K[2]*W[5];
-    Ps[33] = Ps[33] - K[2]*W[6];
-    Ps[34] = Ps[34] - K[2]*W[7];
-    Ps[35] = Ps[35] - K[2]*W[8];
-    Ps[36] = Ps[36] - K[2]*W[9];
-    Ps[37] = Ps[37] - K[2]*W[10];
-    Ps[38] = Ps[38] - K[2]*W[11];
-    Ps[39] = Ps[39] - K[2]*W[12];
-    Ps[40] = Ps[40] - K[2]*W[13];
-    Ps[41] = Ps[41] - K[2]*W[14];
-    Ps[42] = Ps[42] - K[3]*W[3];
-    Ps[43] = Ps[43] - K[3]*W[4];
-    Ps[44] = Ps[44] - K[3]*W[5];
-    Ps[45] = Ps[45] - K[3]*W[6];
-    Ps[46] = Ps[46] - K[3]*W[7];
-    Ps[47] = Ps[47] - K[3]*W[8];
-    Ps[48] = Ps[48] - K[3]*W[9];
-    Ps[49] = Ps[49] - K[3]*W[10];
-    Ps[50] = Ps[50] - K[3]*W[11];
-    Ps[51] = Ps[51] - K[3]*W[12];
-    Ps[52] = Ps[52] - K[3]*W[13];
-    Ps[53] = Ps[53] - K[3]*W[14];
-    Ps[54] = Ps[54] - K[4]*W[4];
-    Ps[55] = Ps[55] - K[4]*W[5];
-    Ps[56] = Ps[56] - K[4]*W[6];
-    Ps[57] = Ps[57] - K[4]*W[7];
-    Ps[58] = Ps[58] - K[4]*W[8];
-    Ps[59] = Ps[59] - K[4]*W[9];
-    Ps[60] = Ps[60] - K[4]*W[10];
-    Ps[61] = Ps[61] - K[4]*W[11];
-    Ps[62] = Ps[62] - K[4]*W[12];
-    Ps[63] = Ps[63] - K[4]*W[13];
-    Ps[64] = Ps[64] - K[4]*W[14];
-    Ps[65] = Ps[65] - K[5]*W[5];
-    Ps[66] = Ps[66] - K[5]*W[6];
-    Ps[67] = Ps[67] - K[5]*W[7];
-    Ps[68] = Ps[68] - K[5]*W[8];
-    Ps[69] = Ps[69] - K[5]*W[9];
-    Ps[70] = Ps[70] - K[5]*W[10];
-    Ps[71] = Ps[71] - K[5]*W[11];
-    Ps[72] = Ps[72] - K[5]*W[12];
-    Ps[73] = Ps[73] - K[5]*W[13];
-    Ps[74] = Ps[74] - K[5]*W[14];
-    Ps[75] = Ps[75] - K[6]*W[6];
-    Ps[76] = Ps[76] - K[6]*W[7];
-    Ps[77] = Ps[77] - K[6]*W[8];
-    Ps[78] = Ps[78] - K[6]*W[9];
-    Ps[79] = Ps[79] - K[6]*W[10];
-    Ps[80] = Ps[80] - K[6]*W[11];
-    Ps[81] = Ps[81] - K[6]*W[12];
-    Ps[82] = Ps[82] - K[6]*W[13];
-    Ps[83] = Ps[83] - K[6]*W[14];
-    Ps[84] = Ps[84] - K[7]*W[7];
-    Ps[85] = Ps[85] - K[7]*W[8];
-    Ps[86] = Ps[86] - K[7]*W[9];
-    Ps[87] = Ps[87] - K[7]*W[10];
-    Ps[88] = Ps[88] - K[7]*W[11];
-    Ps[89] = Ps[89] - K[7]*W[12];
-    Ps[90] = Ps[90] - K[7]*W[13];
-    Ps[91] = Ps[91] - K[7]*W[14];
-    Ps[92] = Ps[92] - K[8]*W[8];
-    Ps[93] = Ps[93] - K[8]*W[9];
-    Ps[94] = Ps[94] - K[8]*W[10];
-    Ps[95] = Ps[95] - K[8]*W[11];
-    Ps[96] = Ps[96] - K[8]*W[12];
-    Ps[97] = Ps[97] - K[8]*W[13];
-    Ps[98] = Ps[98] - K[8]*W[14];
-    Ps[99] = Ps[99] - K[9]*W[9];
-    Ps[100] = Ps[100] - K[9]*W[10];
-    Ps[101] = Ps[101] - K[9]*W[11];
-    Ps[102] = Ps[102] - K[9]*W[12];
-    Ps[103] = Ps[103] - K[9]*W[13];
-    Ps[104] = Ps[104] - K[9]*W[14];
-    Ps[105] = Ps[105] - K[10]*W[10];
-    Ps[106] = Ps[106] - K[10]*W[11];
-    Ps[107] = Ps[107] - K[10]*W[12];
-    Ps[108] = Ps[108] - K[10]*W[13];
-    Ps[109] = Ps[109] - K[10]*W[14];
-    Ps[110] = Ps[110] - K[11]*W[11];
-    Ps[111] = Ps[111] - K[11]*W[12];
-    Ps[112] = Ps[112] - K[11]*W[13];
-    Ps[113] = Ps[113] - K[11]*W[14];
-    Ps[114] = Ps[114] - K[12]*W[12];
-    Ps[115] = Ps[115] - K[12]*W[13];
-    Ps[116] = Ps[116] - K[12]*W[14];
-    Ps[117] = Ps[117] - K[13]*W[13];
-    Ps[118] = Ps[118] - K[13]*W[14];
-    Ps[119] = Ps[119] - K[14]*W[14];
-    /* component z[2] of gnss_pos: W = P H_2', s = H_2 W + R_22, K = W / s, x += K r, Joseph-form P */
-    W[0] = Ps[2];
-    W[1] = Ps[16];
-    W[2] = Ps[29];
-    W[3] = Ps[30];
-    W[4] = Ps[31];
-    W[5] = Ps[32];
-    W[6] = Ps[33];
-    W[7] = Ps[34];
-    W[8] = Ps[35];
-    W[9] = Ps[36];
-    W[10] = Ps[37];
-    W[11] = Ps[38];
-    W[12] = Ps[39];
-    W[13] = Ps[40];
-    W[14] = Ps[41];
-    const double s2 = 9.0 + W[2];
-    if (!isfinite(s2)) { return NAV_EKF_NON_FINITE; }
-    if (!(s2 > 0.0)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const double is2 = (1.0/s2);
-    const double r2 = x[nav_ekf_ix_pd] + y[2] - xs[nav_ekf_ix_pd];
-    nis = nis + is2*(r2*r2);
+    /* component z[0]: the shared scalar update */
+    {
+        static const uint16_t hc[1] = {0u};
+        const double hv[1] = {1.0};
+        const double rc = y[0];
+        const int st = nav_ekf_scalar_update(xs, Ps, hv, hc, 1u, rc, 2.25, &nis);
+        if (st != NAV_EKF_OK) {
+            return st;
+        }
+    }
+    /* component z[1]: the shared scalar update */
+    {
+        static const uint16_t hc[1] = {1u};
+        const double hv[1] = {1.0};
+        const double rc = x[nav_ekf_ix_pe] + y[1] - xs[nav_ekf_ix_pe];
+        const int st = nav_ekf_scalar_update(xs, Ps, hv, hc, 1u, rc, 2.25, &nis);
+        if (st != NAV_EKF_OK) {
+            return st;
+        }
+    }
+    /* component z[2]: the shared scalar update */
+    {
+        static const uint16_t hc[1] = {2u};
+        const double hv[1] = {1.0};
+        const double rc = x[nav_ekf_ix_pd] + y[2] - xs[nav_ekf_ix_pd];
+        const int st = nav_ekf_scalar_update(xs, Ps, hv, hc, 1u, rc, 9.0, &nis);
+        if (st != NAV_EKF_OK) {
+            return st;
+        }
+    }
     /* the NIS is complete: report it, and gate before the posterior is formed */
     if (!isfinite(nis)) {
         return NAV_EKF_NON_FINITE;
@@ -1201,157 +773,6 @@ int nav_ekf_update_gnss_pos_nis(nav_ekf_t *s, const double *z, double *nis_out)
         *nis_out = nis;
     }
 
-    K[0] = W[0]*is2;
-    K[1] = W[1]*is2;
-    K[2] = W[2]*is2;
-    K[3] = W[3]*is2;
-    K[4] = W[4]*is2;
-    K[5] = W[5]*is2;
-    K[6] = W[6]*is2;
-    K[7] = W[7]*is2;
-    K[8] = W[8]*is2;
-    K[9] = W[9]*is2;
-    K[10] = W[10]*is2;
-    K[11] = W[11]*is2;
-    K[12] = W[12]*is2;
-    K[13] = W[13]*is2;
-    K[14] = W[14]*is2;
-    xs[nav_ekf_ix_pn] = xs[nav_ekf_ix_pn] + K[0]*r2;
-    xs[nav_ekf_ix_pe] = xs[nav_ekf_ix_pe] + K[1]*r2;
-    xs[nav_ekf_ix_pd] = xs[nav_ekf_ix_pd] + K[2]*r2;
-    xs[nav_ekf_ix_vn] = xs[nav_ekf_ix_vn] + K[3]*r2;
-    xs[nav_ekf_ix_ve] = xs[nav_ekf_ix_ve] + K[4]*r2;
-    xs[nav_ekf_ix_vd] = xs[nav_ekf_ix_vd] + K[5]*r2;
-    xs[nav_ekf_ix_roll] = xs[nav_ekf_ix_roll] + K[6]*r2;
-    xs[nav_ekf_ix_pitch] = xs[nav_ekf_ix_pitch] + K[7]*r2;
-    xs[nav_ekf_ix_yaw] = xs[nav_ekf_ix_yaw] + K[8]*r2;
-    xs[nav_ekf_ix_bgx] = xs[nav_ekf_ix_bgx] + K[9]*r2;
-    xs[nav_ekf_ix_bgy] = xs[nav_ekf_ix_bgy] + K[10]*r2;
-    xs[nav_ekf_ix_bgz] = xs[nav_ekf_ix_bgz] + K[11]*r2;
-    xs[nav_ekf_ix_bax] = xs[nav_ekf_ix_bax] + K[12]*r2;
-    xs[nav_ekf_ix_bay] = xs[nav_ekf_ix_bay] + K[13]*r2;
-    xs[nav_ekf_ix_baz] = xs[nav_ekf_ix_baz] + K[14]*r2;
-    Ps[0] = Ps[0] - K[0]*W[0];
-    Ps[1] = Ps[1] - K[0]*W[1];
-    Ps[2] = Ps[2] - K[0]*W[2];
-    Ps[3] = Ps[3] - K[0]*W[3];
-    Ps[4] = Ps[4] - K[0]*W[4];
-    Ps[5] = Ps[5] - K[0]*W[5];
-    Ps[6] = Ps[6] - K[0]*W[6];
-    Ps[7] = Ps[7] - K[0]*W[7];
-    Ps[8] = Ps[8] - K[0]*W[8];
-    Ps[9] = Ps[9] - K[0]*W[9];
-    Ps[10] = Ps[10] - K[0]*W[10];
-    Ps[11] = Ps[11] - K[0]*W[11];
-    Ps[12] = Ps[12] - K[0]*W[12];
-    Ps[13] = Ps[13] - K[0]*W[13];
-    Ps[14] = Ps[14] - K[0]*W[14];
-    Ps[15] = Ps[15] - K[1]*W[1];
-    Ps[16] = Ps[16] - K[1]*W[2];
-    Ps[17] = Ps[17] - K[1]*W[3];
-    Ps[18] = Ps[18] - K[1]*W[4];
-    Ps[19] = Ps[19] - K[1]*W[5];
-    Ps[20] = Ps[20] - K[1]*W[6];
-    Ps[21] = Ps[21] - K[1]*W[7];
-    Ps[22] = Ps[22] - K[1]*W[8];
-    Ps[23] = Ps[23] - K[1]*W[9];
-    Ps[24] = Ps[24] - K[1]*W[10];
-    Ps[25] = Ps[25] - K[1]*W[11];
-    Ps[26] = Ps[26] - K[1]*W[12];
-    Ps[27] = Ps[27] - K[1]*W[13];
-    Ps[28] = Ps[28] - K[1]*W[14];
-    Ps[29] = Ps[29] - K[2]*W[2];
-    Ps[30] = Ps[30] - K[2]*W[3];
-    Ps[31] = Ps[31] - K[2]*W[4];
-    Ps[32] = Ps[32] - K[2]*W[5];
-    Ps[33] = Ps[33] - K[2]*W[6];
-    Ps[34] = Ps[34] - K[2]*W[7];
-    Ps[35] = Ps[35] - K[2]*W[8];
-    Ps[36] = Ps[36] - K[2]*W[9];
-    Ps[37] = Ps[37] - K[2]*W[10];
-    Ps[38] = Ps[38] - K[2]*W[11];
-    Ps[39] = Ps[39] - K[2]*W[12];
-    Ps[40] = Ps[40] - K[2]*W[13];
-    Ps[41] = Ps[41] - K[2]*W[14];
-    Ps[42] = Ps[42] - K[3]*W[3];
-    Ps[43] = Ps[43] - K[3]*W[4];
-    Ps[44] = Ps[44] - K[3]*W[5];
-    Ps[45] = Ps[45] - K[3]*W[6];
-    Ps[46] = Ps[46] - K[3]*W[7];
-    Ps[47] = Ps[47] - K[3]*W[8];
-    Ps[48] = Ps[48] - K[3]*W[9];
-    Ps[49] = Ps[49] - K[3]*W[10];
-    Ps[50] = Ps[50] - K[3]*W[11];
-    Ps[51] = Ps[51] - K[3]*W[12];
-    Ps[52] = Ps[52] - K[3]*W[13];
-    Ps[53] = Ps[53] - K[3]*W[14];
-    Ps[54] = Ps[54] - K[4]*W[4];
-    Ps[55] = Ps[55] - K[4]*W[5];
-    Ps[56] = Ps[56] - K[4]*W[6];
-    Ps[57] = Ps[57] - K[4]*W[7];
-    Ps[58] = Ps[58] - K[4]*W[8];
-    Ps[59] = Ps[59] - K[4]*W[9];
-    Ps[60] = Ps[60] - K[4]*W[10];
-    Ps[61] = Ps[61] - K[4]*W[11];
-    Ps[62] = Ps[62] - K[4]*W[12];
-    Ps[63] = Ps[63] - K[4]*W[13];
-    Ps[64] = Ps[64] - K[4]*W[14];
-    Ps[65] = Ps[65] - K[5]*W[5];
-    Ps[66] = Ps[66] - K[5]*W[6];
-    Ps[67] = Ps[67] - K[5]*W[7];
-    Ps[68] = Ps[68] - K[5]*W[8];
-    Ps[69] = Ps[69] - K[5]*W[9];
-    Ps[70] = Ps[70] - K[5]*W[10];
-    Ps[71] = Ps[71] - K[5]*W[11];
-    Ps[72] = Ps[72] - K[5]*W[12];
-    Ps[73] = Ps[73] - K[5]*W[13];
-    Ps[74] = Ps[74] - K[5]*W[14];
-    Ps[75] = Ps[75] - K[6]*W[6];
-    Ps[76] = Ps[76] - K[6]*W[7];
-    Ps[77] = Ps[77] - K[6]*W[8];
-    Ps[78] = Ps[78] - K[6]*W[9];
-    Ps[79] = Ps[79] - K[6]*W[10];
-    Ps[80] = Ps[80] - K[6]*W[11];
-    Ps[81] = Ps[81] - K[6]*W[12];
-    Ps[82] = Ps[82] - K[6]*W[13];
-    Ps[83] = Ps[83] - K[6]*W[14];
-    Ps[84] = Ps[84] - K[7]*W[7];
-    Ps[85] = Ps[85] - K[7]*W[8];
-    Ps[86] = Ps[86] - K[7]*W[9];
-    Ps[87] = Ps[87] - K[7]*W[10];
-    Ps[88] = Ps[88] - K[7]*W[11];
-    Ps[89] = Ps[89] - K[7]*W[12];
-    Ps[90] = Ps[90] - K[7]*W[13];
-    Ps[91] = Ps[91] - K[7]*W[14];
-    Ps[92] = Ps[92] - K[8]*W[8];
-    Ps[93] = Ps[93] - K[8]*W[9];
-    Ps[94] = Ps[94] - K[8]*W[10];
-    Ps[95] = Ps[95] - K[8]*W[11];
-    Ps[96] = Ps[96] - K[8]*W[12];
-    Ps[97] = Ps[97] - K[8]*W[13];
-    Ps[98] = Ps[98] - K[8]*W[14];
-    Ps[99] = Ps[99] - K[9]*W[9];
-    Ps[100] = Ps[100] - K[9]*W[10];
-    Ps[101] = Ps[101] - K[9]*W[11];
-    Ps[102] = Ps[102] - K[9]*W[12];
-    Ps[103] = Ps[103] - K[9]*W[13];
-    Ps[104] = Ps[104] - K[9]*W[14];
-    Ps[105] = Ps[105] - K[10]*W[10];
-    Ps[106] = Ps[106] - K[10]*W[11];
-    Ps[107] = Ps[107] - K[10]*W[12];
-    Ps[108] = Ps[108] - K[10]*W[13];
-    Ps[109] = Ps[109] - K[10]*W[14];
-    Ps[110] = Ps[110] - K[11]*W[11];
-    Ps[111] = Ps[111] - K[11]*W[12];
-    Ps[112] = Ps[112] - K[11]*W[13];
-    Ps[113] = Ps[113] - K[11]*W[14];
-    Ps[114] = Ps[114] - K[12]*W[12];
-    Ps[115] = Ps[115] - K[12]*W[13];
-    Ps[116] = Ps[116] - K[12]*W[14];
-    Ps[117] = Ps[117] - K[13]*W[13];
-    Ps[118] = Ps[118] - K[13]*W[14];
-    Ps[119] = Ps[119] - K[14]*W[14];
-    /* angle states wrapped to (-pi, pi] */
     xs[nav_ekf_ix_roll] = nav_ekf_wrap(xs[nav_ekf_ix_roll]);
     xs[nav_ekf_ix_pitch] = nav_ekf_wrap(xs[nav_ekf_ix_pitch]);
     xs[nav_ekf_ix_yaw] = nav_ekf_wrap(xs[nav_ekf_ix_yaw]);
@@ -1382,8 +803,6 @@ int nav_ekf_update_gnss_vel_nis(nav_ekf_t *s, const double *z, double *nis_out)
     double xs[15];
     double Ps[120];
     double y[3];
-    double W[15];
-    double K[15];
     double nis = 0.0;
     const double *x = s->x;
     if (z == NULL || !nav_ekf_finite(z, 3u)) {
@@ -1396,372 +815,36 @@ int nav_ekf_update_gnss_vel_nis(nav_ekf_t *s, const double *z, double *nis_out)
     y[0] = z[0] - x[nav_ekf_ix_vn];
     y[1] = z[1] - x[nav_ekf_ix_ve];
     y[2] = z[2] - x[nav_ekf_ix_vd];
-    /* component z[0] of gnss_vel: W = P H_0', s = H_0 W + R_00, K = W / s, x += K r, Joseph-form P */
-    W[0] = Ps[3];
-    W[1] = Ps[17];
-    W[2] = Ps[30];
-    W[3] = Ps[42];
-    W[4] = Ps[43];
-    W[5] = Ps[44];
-    W[6] = Ps[45];
-    W[7] = Ps[46];
-    W[8] = Ps[47];
-    W[9] = Ps[48];
-    W[10] = Ps[49];
-    W[11] = Ps[50];
-    W[12] = Ps[51];
-    W[13] = Ps[52];
-    W[14] = Ps[53];
-    const double s0 = 0.010000000000000002 + W[3];
-    if (!isfinite(s0)) { return NAV_EKF_NON_FINITE; }
-    if (!(s0 > 0.0)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const double is0 = (1.0/s0);
-    const double r0 = y[0];
-    nis = nis + is0*(r0*r0);
-    K[0] = W[0]*is0;
-    K[1] = W[1]*is0;
-    K[2] = W[2]*is0;
-    K[3] = W[3]*is0;
-    K[4] = W[4]*is0;
-    K[5] = W[5]*is0;
-    K[6] = W[6]*is0;
-    K[7] = W[7]*is0;
-    K[8] = W[8]*is0;
-    K[9] = W[9]*is0;
-    K[10] = W[10]*is0;
-    K[11] = W[11]*is0;
-    K[12] = W[12]*is0;
-    K[13] = W[13]*is0;
-    K[14] = W[14]*is0;
-    xs[nav_ekf_ix_pn] = xs[nav_ekf_ix_pn] + K[0]*r0;
-    xs[nav_ekf_ix_pe] = xs[nav_ekf_ix_pe] + K[1]*r0;
-    xs[nav_ekf_ix_pd] = xs[nav_ekf_ix_pd] + K[2]*r0;
-    xs[nav_ekf_ix_vn] = xs[nav_ekf_ix_vn] + K[3]*r0;
-    xs[nav_ekf_ix_ve] = xs[nav_ekf_ix_ve] + K[4]*r0;
-    xs[nav_ekf_ix_vd] = xs[nav_ekf_ix_vd] + K[5]*r0;
-    xs[nav_ekf_ix_roll] = xs[nav_ekf_ix_roll] + K[6]*r0;
-    xs[nav_ekf_ix_pitch] = xs[nav_ekf_ix_pitch] + K[7]*r0;
-    xs[nav_ekf_ix_yaw] = xs[nav_ekf_ix_yaw] + K[8]*r0;
-    xs[nav_ekf_ix_bgx] = xs[nav_ekf_ix_bgx] + K[9]*r0;
-    xs[nav_ekf_ix_bgy] = xs[nav_ekf_ix_bgy] + K[10]*r0;
-    xs[nav_ekf_ix_bgz] = xs[nav_ekf_ix_bgz] + K[11]*r0;
-    xs[nav_ekf_ix_bax] = xs[nav_ekf_ix_bax] + K[12]*r0;
-    xs[nav_ekf_ix_bay] = xs[nav_ekf_ix_bay] + K[13]*r0;
-    xs[nav_ekf_ix_baz] = xs[nav_ekf_ix_baz] + K[14]*r0;
-    Ps[0] = Ps[0] - K[0]*W[0];
-    Ps[1] = Ps[1] - K[0]*W[1];
-    Ps[2] = Ps[2] - K[0]*W[2];
-    Ps[3] = Ps[3] - K[0]*W[3];
-    Ps[4] = Ps[4] - K[0]*W[4];
-    Ps[5] = Ps[5] - K[0]*W[5];
-    Ps[6] = Ps[6] - K[0]*W[6];
-    Ps[7] = Ps[7] - K[0]*W[7];
-    Ps[8] = Ps[8] - K[0]*W[8];
-    Ps[9] = Ps[9] - K[0]*W[9];
-    Ps[10] = Ps[10] - K[0]*W[10];
-    Ps[11] = Ps[11] - K[0]*W[11];
-    Ps[12] = Ps[12] - K[0]*W[12];
-    Ps[13] = Ps[13] - K[0]*W[13];
-    Ps[14] = Ps[14] - K[0]*W[14];
-    Ps[15] = Ps[15] - K[1]*W[1];
-    Ps[16] = Ps[16] - K[1]*W[2];
-    Ps[17] = Ps[17] - K[1]*W[3];
-    Ps[18] = Ps[18] - K[1]*W[4];
-    Ps[19] = Ps[19] - K[1]*W[5];
-    Ps[20] = Ps[20] - K[1]*W[6];
-    Ps[21] = Ps[21] - K[1]*W[7];
-    Ps[22] = Ps[22] - K[1]*W[8];
-    Ps[23] = Ps[23] - K[1]*W[9];
-    Ps[24] = Ps[24] - K[1]*W[10];
-    Ps[25] = Ps[25] - K[1]*W[11];
-    Ps[26] = Ps[26] - K[1]*W[12];
-    Ps[27] = Ps[27] - K[1]*W[13];
-    Ps[28] = Ps[28] - K[1]*W[14];
-    Ps[29] = Ps[29] - K[2]*W[2];
-    Ps[30] = Ps[30] - K[2]*W[3];
-    Ps[31] = Ps[31] - K[2]*W[4];
-    Ps[32] = Ps[32] - K[2]*W[5];
-    Ps[33] = Ps[33] - K[2]*W[6];
-    Ps[34] = Ps[34] - K[2]*W[7];
-    Ps[35] = Ps[35] - K[2]*W[8];
-    Ps[36] = Ps[36] - K[2]*W[9];
-    Ps[37] = Ps[37] - K[2]*W[10];
-    Ps[38] = Ps[38] - K[2]*W[11];
-    Ps[39] = Ps[39] - K[2]*W[12];
-    Ps[40] = Ps[40] - K[2]*W[13];
-    Ps[41] = Ps[41] - K[2]*W[14];
-    Ps[42] = Ps[42] - K[3]*W[3];
-    Ps[43] = Ps[43] - K[3]*W[4];
-    Ps[44] = Ps[44] - K[3]*W[5];
-    Ps[45] = Ps[45] - K[3]*W[6];
-    Ps[46] = Ps[46] - K[3]*W[7];
-    Ps[47] = Ps[47] - K[3]*W[8];
-    Ps[48] = Ps[48] - K[3]*W[9];
-    Ps[49] = Ps[49] - K[3]*W[10];
-    Ps[50] = Ps[50] - K[3]*W[11];
-    Ps[51] = Ps[51] - K[3]*W[12];
-    Ps[52] = Ps[52] - K[3]*W[13];
-    Ps[53] = Ps[53] - K[3]*W[14];
-    Ps[54] = Ps[54] - K[4]*W[4];
-    Ps[55] = Ps[55] - K[4]*W[5];
-    Ps[56] = Ps[56] - K[4]*W[6];
-    Ps[57] = Ps[57] - K[4]*W[7];
-    Ps[58] = Ps[58] - K[4]*W[8];
-    Ps[59] = Ps[59] - K[4]*W[9];
-    Ps[60] = Ps[60] - K[4]*W[10];
-    Ps[61] = Ps[61] - K[4]*W[11];
-    Ps[62] = Ps[62] - K[4]*W[12];
-    Ps[63] = Ps[63] - K[4]*W[13];
-    Ps[64] = Ps[64] - K[4]*W[14];
-    Ps[65] = Ps[65] - K[5]*W[5];
-    Ps[66] = Ps[66] - K[5]*W[6];
-    Ps[67] = Ps[67] - K[5]*W[7];
-    Ps[68] = Ps[68] - K[5]*W[8];
-    Ps[69] = Ps[69] - K[5]*W[9];
-    Ps[70] = Ps[70] - K[5]*W[10];
-    Ps[71] = Ps[71] - K[5]*W[11];
-    Ps[72] = Ps[72] - K[5]*W[12];
-    Ps[73] = Ps[73] - K[5]*W[13];
-    Ps[74] = Ps[74] - K[5]*W[14];
-    Ps[75] = Ps[75] - K[6]*W[6];
-    Ps[76] = Ps[76] - K[6]*W[7];
-    Ps[77] = Ps[77] - K[6]*W[8];
-    Ps[78] = Ps[78] - K[6]*W[9];
-    Ps[79] = Ps[79] - K[6]*W[10];
-    Ps[80] = Ps[80] - K[6]*W[11];
-    Ps[81] = Ps[81] - K[6]*W[12];
-    Ps[82] = Ps[82] - K[6]*W[13];
-    Ps[83] = Ps[83] - K[6]*W[14];
-    Ps[84] = Ps[84] - K[7]*W[7];
-    Ps[85] = Ps[85] - K[7]*W[8];
-    Ps[86] = Ps[86] - K[7]*W[9];
-    Ps[87] = Ps[87] - K[7]*W[10];
-    Ps[88] = Ps[88] - K[7]*W[11];
-    Ps[89] = Ps[89] - K[7]*W[12];
-    Ps[90] = Ps[90] - K[7]*W[13];
-    Ps[91] = Ps[91] - K[7]*W[14];
-    Ps[92] = Ps[92] - K[8]*W[8];
-    Ps[93] = Ps[93] - K[8]*W[9];
-    Ps[94] = Ps[94] - K[8]*W[10];
-    Ps[95] = Ps[95] - K[8]*W[11];
-    Ps[96] = Ps[96] - K[8]*W[12];
-    Ps[97] = Ps[97] - K[8]*W[13];
-    Ps[98] = Ps[98] - K[8]*W[14];
-    Ps[99] = Ps[99] - K[9]*W[9];
-    Ps[100] = Ps[100] - K[9]*W[10];
-    Ps[101] = Ps[101] - K[9]*W[11];
-    Ps[102] = Ps[102] - K[9]*W[12];
-    Ps[103] = Ps[103] - K[9]*W[13];
-    Ps[104] = Ps[104] - K[9]*W[14];
-    Ps[105] = Ps[105] - K[10]*W[10];
-    Ps[106] = Ps[106] - K[10]*W[11];
-    Ps[107] = Ps[107] - K[10]*W[12];
-    Ps[108] = Ps[108] - K[10]*W[13];
-    Ps[109] = Ps[109] - K[10]*W[14];
-    Ps[110] = Ps[110] - K[11]*W[11];
-    Ps[111] = Ps[111] - K[11]*W[12];
-    Ps[112] = Ps[112] - K[11]*W[13];
-    Ps[113] = Ps[113] - K[11]*W[14];
-    Ps[114] = Ps[114] - K[12]*W[12];
-    Ps[115] = Ps[115] - K[12]*W[13];
-    Ps[116] = Ps[116] - K[12]*W[14];
-    Ps[117] = Ps[117] - K[13]*W[13];
-    Ps[118] = Ps[118] - K[13]*W[14];
-    Ps[119] = Ps[119] - K[14]*W[14];
-    /* component z[1] of gnss_vel: W = P H_1', s = H_1 W + R_11, K = W / s, x += K r, Joseph-form P */
-    W[0] = Ps[4];
-    W[1] = Ps[18];
-    W[2] = Ps[31];
-    W[3] = Ps[43];
-    W[4] = Ps[54];
-    W[5] = Ps[55];
-    W[6] = Ps[56];
-    W[7] = Ps[57];
-    W[8] = Ps[58];
-    W[9] = Ps[59];
-    W[10] = Ps[60];
-    W[11] = Ps[61];
-    W[12] = Ps[62];
-    W[13] = Ps[63];
-    W[14] = Ps[64];
-    const double s1 = 0.010000000000000002 + W[4];
-    if (!isfinite(s1)) { return NAV_EKF_NON_FINITE; }
-    if (!(s1 > 0.0)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const double is1 = (1.0/s1);
-    const double r1 = x[nav_ekf_ix_ve] + y[1] - xs[nav_ekf_ix_ve];
-    nis = nis + is1*(r1*r1);
-    K[0] = W[0]*is1;
-    K[1] = W[1]*is1;
-    K[2] = W[2]*is1;
-    K[3] = W[3]*is1;
-    K[4] = W[4]*is1;
-    K[5] = W[5]*is1;
-    K[6] = W[6]*is1;
-    K[7] = W[7]*is1;
-    K[8] = W[8]*is1;
-    K[9] = W[9]*is1;
-    K[10] = W[10]*is1;
-    K[11] = W[11]*is1;
-    K[12] = W[12]*is1;
-    K[13] = W[13]*is1;
-    K[14] = W[14]*is1;
-    xs[nav_ekf_ix_pn] = xs[nav_ekf_ix_pn] + K[0]*r1;
-    xs[nav_ekf_ix_pe] = xs[nav_ekf_ix_pe] + K[1]*r1;
-    xs[nav_ekf_ix_pd] = xs[nav_ekf_ix_pd] + K[2]*r1;
-    xs[nav_ekf_ix_vn] = xs[nav_ekf_ix_vn] + K[3]*r1;
-    xs[nav_ekf_ix_ve] = xs[nav_ekf_ix_ve] + K[4]*r1;
-    xs[nav_ekf_ix_vd] = xs[nav_ekf_ix_vd] + K[5]*r1;
-    xs[nav_ekf_ix_roll] = xs[nav_ekf_ix_roll] + K[6]*r1;
-    xs[nav_ekf_ix_pitch] = xs[nav_ekf_ix_pitch] + K[7]*r1;
-    xs[nav_ekf_ix_yaw] = xs[nav_ekf_ix_yaw] + K[8]*r1;
-    xs[nav_ekf_ix_bgx] = xs[nav_ekf_ix_bgx] + K[9]*r1;
-    xs[nav_ekf_ix_bgy] = xs[nav_ekf_ix_bgy] + K[10]*r1;
-    xs[nav_ekf_ix_bgz] = xs[nav_ekf_ix_bgz] + K[11]*r1;
-    xs[nav_ekf_ix_bax] = xs[nav_ekf_ix_bax] + K[12]*r1;
-    xs[nav_ekf_ix_bay] = xs[nav_ekf_ix_bay] + K[13]*r1;
-    xs[nav_ekf_ix_baz] = xs[nav_ekf_ix_baz] + K[14]*r1;
-    Ps[0] = Ps[0] - K[0]*W[0];
-    Ps[1] = Ps[1] - K[0]*W[1];
-    Ps[2] = Ps[2] - K[0]*W[2];
-    Ps[3] = Ps[3] - K[0]*W[3];
-    Ps[4] = Ps[4] - K[0]*W[4];
-    Ps[5] = Ps[5] - K[0]*W[5];
-    Ps[6] = Ps[6] - K[0]*W[6];
-    Ps[7] = Ps[7] - K[0]*W[7];
-    Ps[8] = Ps[8] - K[0]*W[8];
-    Ps[9] = Ps[9] - K[0]*W[9];
-    Ps[10] = Ps[10] - K[0]*W[10];
-    Ps[11] = Ps[11] - K[0]*W[11];
-    Ps[12] = Ps[12] - K[0]*W[12];
-    Ps[13] = Ps[13] - K[0]*W[13];
-    Ps[14] = Ps[14] - K[0]*W[14];
-    Ps[15] = Ps[15] - K[1]*W[1];
-    Ps[16] = Ps[16] - K[1]*W[2];
-    Ps[17] = Ps[17] - K[1]*W[3];
-    Ps[18] = Ps[18] - K[1]*W[4];
-    Ps[19] = Ps[19] - K[1]*W[5];
-    Ps[20] = Ps[20] - K[1]*W[6];
-    Ps[21] = Ps[21] - K[1]*W[7];
-    Ps[22] = Ps[22] - K[1]*W[8];
-    Ps[23] = Ps[23] - K[1]*W[9];
-    Ps[24] = Ps[24] - K[1]*W[10];
-    Ps[25] = Ps[25] - K[1]*W[11];
-    Ps[26] = Ps[26] - K[1]*W[12];
-    Ps[27] = Ps[27] - K[1]*W[13];
-    Ps[28] = Ps[28] - K[1]*W[14];
-    Ps[29] = Ps[29] - K[2]*W[2];
-    Ps[30] = Ps[30] - K[2]*W[3];
-    Ps[31] = Ps[31] - K[2]*W[4];
-    Ps[32] = Ps[32] - K[2]*W[5];
-    Ps[33] = Ps[33] - K[2]*W[6];
-    Ps[34] = Ps[34] - K[2]*W[7];
-    Ps[35] = Ps[35] - K[2]*W[8];
-    Ps[36] = Ps[36] - K[2]*W[9];
-    Ps[37] = Ps[37] - K[2]*W[10];
-    Ps[38] = Ps[38] - K[2]*W[11];
-    Ps[39] = Ps[39] - K[2]*W[12];
-    Ps[40] = Ps[40] - K[2]*W[13];
-    Ps[41] = Ps[41] - K[2]*W[14];
-    Ps[42] = Ps[42] - K[3]*W[3];
-    Ps[43] = Ps[43] - K[3]*W[4];
-    Ps[44] = Ps[44] - K[3]*W[5];
-    Ps[45] = Ps[45] - K[3]*W[6];
-    Ps[46] = Ps[46] - K[3]*W[7];
-    Ps[47] = Ps[47] - K[3]*W[8];
-    Ps[48] = Ps[48] - K[3]*W[9];
-    Ps[49] = Ps[49] - K[3]*W[10];
-    Ps[50] = Ps[50] - K[3]*W[11];
-    Ps[51] = Ps[51] - K[3]*W[12];
-    Ps[52] = Ps[52] - K[3]*W[13];
-    Ps[53] = Ps[53] - K[3]*W[14];
-    Ps[54] = Ps[54] - K[4]*W[4];
-    Ps[55] = Ps[55] - K[4]*W[5];
-    Ps[56] = Ps[56] - K[4]*W[6];
-    Ps[57] = Ps[57] - K[4]*W[7];
-    Ps[58] = Ps[58] - K[4]*W[8];
-    Ps[59] = Ps[59] - K[4]*W[9];
-    Ps[60] = Ps[60] - K[4]*W[10];
-    Ps[61] = Ps[61] - K[4]*W[11];
-    Ps[62] = Ps[62] - K[4]*W[12];
-    Ps[63] = Ps[63] - K[4]*W[13];
-    Ps[64] = Ps[64] - K[4]*W[14];
-    Ps[65] = Ps[65] - K[5]*W[5];
-    Ps[66] = Ps[66] - K[5]*W[6];
-    Ps[67] = Ps[67] - K[5]*W[7];
-    Ps[68] = Ps[68] - K[5]*W[8];
-    Ps[69] = Ps[69] - K[5]*W[9];
-    Ps[70] = Ps[70] - K[5]*W[10];
-    Ps[71] = Ps[71] - K[5]*W[11];
-    Ps[72] = Ps[72] - K[5]*W[12];
-    Ps[73] = Ps[73] - K[5]*W[13];
-    Ps[74] = Ps[74] - K[5]*W[14];
-    Ps[75] = Ps[75] - K[6]*W[6];
-    Ps[76] = Ps[76] - K[6]*W[7];
-    Ps[77] = Ps[77] - K[6]*W[8];
-    Ps[78] = Ps[78] - K[6]*W[9];
-    Ps[79] = Ps[79] - K[6]*W[10];
-    Ps[80] = Ps[80] - K[6]*W[11];
-    Ps[81] = Ps[81] - K[6]*W[12];
-    Ps[82] = Ps[82] - K[6]*W[13];
-    Ps[83] = Ps[83] - K[6]*W[14];
-    Ps[84] = Ps[84] - K[7]*W[7];
-    Ps[85] = Ps[85] - K[7]*W[8];
-    Ps[86] = Ps[86] - K[7]*W[9];
-    Ps[87] = Ps[87] - K[7]*W[10];
-    Ps[88] = Ps[88] - K[7]*W[11];
-    Ps[89] = Ps[89] - K[7]*W[12];
-    Ps[90] = Ps[90] - K[7]*W[13];
-    Ps[91] = Ps[91] - K[7]*W[14];
-    Ps[92] = Ps[92] - K[8]*W[8];
-    Ps[93] = Ps[93] - K[8]*W[9];
-    Ps[94] = Ps[94] - K[8]*W[10];
-    Ps[95] = Ps[95] - K[8]*W[11];
-    Ps[96] = Ps[96] - K[8]*W[12];
-    Ps[97] = Ps[97] - K[8]*W[13];
-    Ps[98] = Ps[98] - K[8]*W[14];
-    Ps[99] = Ps[99] - K[9]*W[9];
-    Ps[100] = Ps[100] - K[9]*W[10];
-    Ps[101] = Ps[101] - K[9]*W[11];
-    Ps[102] = Ps[102] - K[9]*W[12];
-    Ps[103] = Ps[103] - K[9]*W[13];
-    Ps[104] = Ps[104] - K[9]*W[14];
-    Ps[105] = Ps[105] - K[10]*W[10];
-    Ps[106] = Ps[106] - K[10]*W[11];
-    Ps[107] = Ps[107] - K[10]*W[12];
-    Ps[108] = Ps[108] - K[10]*W[13];
-    Ps[109] = Ps[109] - K[10]*W[14];
-    Ps[110] = Ps[110] - K[11]*W[11];
-    Ps[111] = Ps[111] - K[11]*W[12];
-    Ps[112] = Ps[112] - K[11]*W[13];
-    Ps[113] = Ps[113] - K[11]*W[14];
-    Ps[114] = Ps[114] - K[12]*W[12];
-    Ps[115] = Ps[115] - K[12]*W[13];
-    Ps[116] = Ps[116] - K[12]*W[14];
-    Ps[117] = Ps[117] - K[13]*W[13];
-    Ps[118] = Ps[118] - K[13]*W[14];
-    Ps[119] = Ps[119] - K[14]*W[14];
-    /* component z[2] of gnss_vel: W = P H_2', s = H_2 W + R_22, K = W / s, x += K r, Joseph-form P */
-    W[0] = Ps[5];
-    W[1] = Ps[19];
-    W[2] = Ps[32];
-    W[3] = Ps[44];
-    W[4] = Ps[55];
-    W[5] = Ps[65];
-    W[6] = Ps[66];
-    W[7] = Ps[67];
-    W[8] = Ps[68];
-    W[9] = Ps[69];
-    W[10] = Ps[70];
-    W[11] = Ps[71];
-    W[12] = Ps[72];
-    W[13] = Ps[73];
-    W[14] = Ps[74];
-    const double s2 = 0.010000000000000002 + W[5];
-    if (!isfinite(s2)) { return NAV_EKF_NON_FINITE; }
-    if (!(s2 > 0.0)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const double is2 = (1.0/s2);
-    const double r2 = x[nav_ekf_ix_vd] + y[2] - xs[nav_ekf_ix_vd];
-    nis = nis + is2*(r2*r2);
+    /* component z[0]: the shared scalar update */
+    {
+        static const uint16_t hc[1] = {3u};
+        const double hv[1] = {1.0};
+        const double rc = y[0];
+        const int st = nav_ekf_scalar_update(xs, Ps, hv, hc, 1u, rc, 0.010000000000000002, &nis);
+        if (st != NAV_EKF_OK) {
+            return st;
+        }
+    }
+    /* component z[1]: the shared scalar update */
+    {
+        static const uint16_t hc[1] = {4u};
+        const double hv[1] = {1.0};
+        const double rc = x[nav_ekf_ix_ve] + y[1] - xs[nav_ekf_ix_ve];
+        const int st = nav_ekf_scalar_update(xs, Ps, hv, hc, 1u, rc, 0.010000000000000002, &nis);
+        if (st != NAV_EKF_OK) {
+            return st;
+        }
+    }
+    /* component z[2]: the shared scalar update */
+    {
+        static const uint16_t hc[1] = {5u};
+        const double hv[1] = {1.0};
+        const double rc = x[nav_ekf_ix_vd] + y[2] - xs[nav_ekf_ix_vd];
+        const int st = nav_ekf_scalar_update(xs, Ps, hv, hc, 1u, rc, 0.010000000000000002, &nis);
+        if (st != NAV_EKF_OK) {
+            return st;
+        }
+    }
     /* the NIS is complete: report it, and gate before the posterior is formed */
     if (!isfinite(nis)) {
         return NAV_EKF_NON_FINITE;
@@ -1770,157 +853,6 @@ int nav_ekf_update_gnss_vel_nis(nav_ekf_t *s, const double *z, double *nis_out)
         *nis_out = nis;
     }
 
-    K[0] = W[0]*is2;
-    K[1] = W[1]*is2;
-    K[2] = W[2]*is2;
-    K[3] = W[3]*is2;
-    K[4] = W[4]*is2;
-    K[5] = W[5]*is2;
-    K[6] = W[6]*is2;
-    K[7] = W[7]*is2;
-    K[8] = W[8]*is2;
-    K[9] = W[9]*is2;
-    K[10] = W[10]*is2;
-    K[11] = W[11]*is2;
-    K[12] = W[12]*is2;
-    K[13] = W[13]*is2;
-    K[14] = W[14]*is2;
-    xs[nav_ekf_ix_pn] = xs[nav_ekf_ix_pn] + K[0]*r2;
-    xs[nav_ekf_ix_pe] = xs[nav_ekf_ix_pe] + K[1]*r2;
-    xs[nav_ekf_ix_pd] = xs[nav_ekf_ix_pd] + K[2]*r2;
-    xs[nav_ekf_ix_vn] = xs[nav_ekf_ix_vn] + K[3]*r2;
-    xs[nav_ekf_ix_ve] = xs[nav_ekf_ix_ve] + K[4]*r2;
-    xs[nav_ekf_ix_vd] = xs[nav_ekf_ix_vd] + K[5]*r2;
-    xs[nav_ekf_ix_roll] = xs[nav_ekf_ix_roll] + K[6]*r2;
-    xs[nav_ekf_ix_pitch] = xs[nav_ekf_ix_pitch] + K[7]*r2;
-    xs[nav_ekf_ix_yaw] = xs[nav_ekf_ix_yaw] + K[8]*r2;
-    xs[nav_ekf_ix_bgx] = xs[nav_ekf_ix_bgx] + K[9]*r2;
-    xs[nav_ekf_ix_bgy] = xs[nav_ekf_ix_bgy] + K[10]*r2;
-    xs[nav_ekf_ix_bgz] = xs[nav_ekf_ix_bgz] + K[11]*r2;
-    xs[nav_ekf_ix_bax] = xs[nav_ekf_ix_bax] + K[12]*r2;
-    xs[nav_ekf_ix_bay] = xs[nav_ekf_ix_bay] + K[13]*r2;
-    xs[nav_ekf_ix_baz] = xs[nav_ekf_ix_baz] + K[14]*r2;
-    Ps[0] = Ps[0] - K[0]*W[0];
-    Ps[1] = Ps[1] - K[0]*W[1];
-    Ps[2] = Ps[2] - K[0]*W[2];
-    Ps[3] = Ps[3] - K[0]*W[3];
-    Ps[4] = Ps[4] - K[0]*W[4];
-    Ps[5] = Ps[5] - K[0]*W[5];
-    Ps[6] = Ps[6] - K[0]*W[6];
-    Ps[7] = Ps[7] - K[0]*W[7];
-    Ps[8] = Ps[8] - K[0]*W[8];
-    Ps[9] = Ps[9] - K[0]*W[9];
-    Ps[10] = Ps[10] - K[0]*W[10];
-    Ps[11] = Ps[11] - K[0]*W[11];
-    Ps[12] = Ps[12] - K[0]*W[12];
-    Ps[13] = Ps[13] - K[0]*W[13];
-    Ps[14] = Ps[14] - K[0]*W[14];
-    Ps[15] = Ps[15] - K[1]*W[1];
-    Ps[16] = Ps[16] - K[1]*W[2];
-    Ps[17] = Ps[17] - K[1]*W[3];
-    Ps[18] = Ps[18] - K[1]*W[4];
-    Ps[19] = Ps[19] - K[1]*W[5];
-    Ps[20] = Ps[20] - K[1]*W[6];
-    Ps[21] = Ps[21] - K[1]*W[7];
-    Ps[22] = Ps[22] - K[1]*W[8];
-    Ps[23] = Ps[23] - K[1]*W[9];
-    Ps[24] = Ps[24] - K[1]*W[10];
-    Ps[25] = Ps[25] - K[1]*W[11];
-    Ps[26] = Ps[26] - K[1]*W[12];
-    Ps[27] = Ps[27] - K[1]*W[13];
-    Ps[28] = Ps[28] - K[1]*W[14];
-    Ps[29] = Ps[29] - K[2]*W[2];
-    Ps[30] = Ps[30] - K[2]*W[3];
-    Ps[31] = Ps[31] - K[2]*W[4];
-    Ps[32] = Ps[32] - K[2]*W[5];
-    Ps[33] = Ps[33] - K[2]*W[6];
-    Ps[34] = Ps[34] - K[2]*W[7];
-    Ps[35] = Ps[35] - K[2]*W[8];
-    Ps[36] = Ps[36] - K[2]*W[9];
-    Ps[37] = Ps[37] - K[2]*W[10];
-    Ps[38] = Ps[38] - K[2]*W[11];
-    Ps[39] = Ps[39] - K[2]*W[12];
-    Ps[40] = Ps[40] - K[2]*W[13];
-    Ps[41] = Ps[41] - K[2]*W[14];
-    Ps[42] = Ps[42] - K[3]*W[3];
-    Ps[43] = Ps[43] - K[3]*W[4];
-    Ps[44] = Ps[44] - K[3]*W[5];
-    Ps[45] = Ps[45] - K[3]*W[6];
-    Ps[46] = Ps[46] - K[3]*W[7];
-    Ps[47] = Ps[47] - K[3]*W[8];
-    Ps[48] = Ps[48] - K[3]*W[9];
-    Ps[49] = Ps[49] - K[3]*W[10];
-    Ps[50] = Ps[50] - K[3]*W[11];
-    Ps[51] = Ps[51] - K[3]*W[12];
-    Ps[52] = Ps[52] - K[3]*W[13];
-    Ps[53] = Ps[53] - K[3]*W[14];
-    Ps[54] = Ps[54] - K[4]*W[4];
-    Ps[55] = Ps[55] - K[4]*W[5];
-    Ps[56] = Ps[56] - K[4]*W[6];
-    Ps[57] = Ps[57] - K[4]*W[7];
-    Ps[58] = Ps[58] - K[4]*W[8];
-    Ps[59] = Ps[59] - K[4]*W[9];
-    Ps[60] = Ps[60] - K[4]*W[10];
-    Ps[61] = Ps[61] - K[4]*W[11];
-    Ps[62] = Ps[62] - K[4]*W[12];
-    Ps[63] = Ps[63] - K[4]*W[13];
-    Ps[64] = Ps[64] - K[4]*W[14];
-    Ps[65] = Ps[65] - K[5]*W[5];
-    Ps[66] = Ps[66] - K[5]*W[6];
-    Ps[67] = Ps[67] - K[5]*W[7];
-    Ps[68] = Ps[68] - K[5]*W[8];
-    Ps[69] = Ps[69] - K[5]*W[9];
-    Ps[70] = Ps[70] - K[5]*W[10];
-    Ps[71] = Ps[71] - K[5]*W[11];
-    Ps[72] = Ps[72] - K[5]*W[12];
-    Ps[73] = Ps[73] - K[5]*W[13];
-    Ps[74] = Ps[74] - K[5]*W[14];
-    Ps[75] = Ps[75] - K[6]*W[6];
-    Ps[76] = Ps[76] - K[6]*W[7];
-    Ps[77] = Ps[77] - K[6]*W[8];
-    Ps[78] = Ps[78] - K[6]*W[9];
-    Ps[79] = Ps[79] - K[6]*W[10];
-    Ps[80] = Ps[80] - K[6]*W[11];
-    Ps[81] = Ps[81] - K[6]*W[12];
-    Ps[82] = Ps[82] - K[6]*W[13];
-    Ps[83] = Ps[83] - K[6]*W[14];
-    Ps[84] = Ps[84] - K[7]*W[7];
-    Ps[85] = Ps[85] - K[7]*W[8];
-    Ps[86] = Ps[86] - K[7]*W[9];
-    Ps[87] = Ps[87] - K[7]*W[10];
-    Ps[88] = Ps[88] - K[7]*W[11];
-    Ps[89] = Ps[89] - K[7]*W[12];
-    Ps[90] = Ps[90] - K[7]*W[13];
-    Ps[91] = Ps[91] - K[7]*W[14];
-    Ps[92] = Ps[92] - K[8]*W[8];
-    Ps[93] = Ps[93] - K[8]*W[9];
-    Ps[94] = Ps[94] - K[8]*W[10];
-    Ps[95] = Ps[95] - K[8]*W[11];
-    Ps[96] = Ps[96] - K[8]*W[12];
-    Ps[97] = Ps[97] - K[8]*W[13];
-    Ps[98] = Ps[98] - K[8]*W[14];
-    Ps[99] = Ps[99] - K[9]*W[9];
-    Ps[100] = Ps[100] - K[9]*W[10];
-    Ps[101] = Ps[101] - K[9]*W[11];
-    Ps[102] = Ps[102] - K[9]*W[12];
-    Ps[103] = Ps[103] - K[9]*W[13];
-    Ps[104] = Ps[104] - K[9]*W[14];
-    Ps[105] = Ps[105] - K[10]*W[10];
-    Ps[106] = Ps[106] - K[10]*W[11];
-    Ps[107] = Ps[107] - K[10]*W[12];
-    Ps[108] = Ps[108] - K[10]*W[13];
-    Ps[109] = Ps[109] - K[10]*W[14];
-    Ps[110] = Ps[110] - K[11]*W[11];
-    Ps[111] = Ps[111] - K[11]*W[12];
-    Ps[112] = Ps[112] - K[11]*W[13];
-    Ps[113] = Ps[113] - K[11]*W[14];
-    Ps[114] = Ps[114] - K[12]*W[12];
-    Ps[115] = Ps[115] - K[12]*W[13];
-    Ps[116] = Ps[116] - K[12]*W[14];
-    Ps[117] = Ps[117] - K[13]*W[13];
-    Ps[118] = Ps[118] - K[13]*W[14];
-    Ps[119] = Ps[119] - K[14]*W[14];
-    /* angle states wrapped to (-pi, pi] */
     xs[nav_ekf_ix_roll] = nav_ekf_wrap(xs[nav_ekf_ix_roll]);
     xs[nav_ekf_ix_pitch] = nav_ekf_wrap(xs[nav_ekf_ix_pitch]);
     xs[nav_ekf_ix_yaw] = nav_ekf_wrap(xs[nav_ekf_ix_yaw]);
@@ -1951,8 +883,6 @@ int nav_ekf_update_baro_nis(nav_ekf_t *s, const double *z, double *nis_out)
     double xs[15];
     double Ps[120];
     double y[1];
-    double W[15];
-    double K[15];
     double nis = 0.0;
     const double *x = s->x;
     if (z == NULL || !nav_ekf_finite(z, 1u)) {
@@ -1963,28 +893,16 @@ int nav_ekf_update_baro_nis(nav_ekf_t *s, const double *z, double *nis_out)
     memcpy(Ps, s->P, sizeof Ps);
     /* innovation y = z - h(x) */
     y[0] = x[nav_ekf_ix_pd] + z[0];
-    /* component z[0] of baro: W = P H_0', s = H_0 W + R_00, K = W / s, x += K r, Joseph-form P */
-    W[0] = -Ps[2];
-    W[1] = -Ps[16];
-    W[2] = -Ps[29];
-    W[3] = -Ps[30];
-    W[4] = -Ps[31];
-    W[5] = -Ps[32];
-    W[6] = -Ps[33];
-    W[7] = -Ps[34];
-    W[8] = -Ps[35];
-    W[9] = -Ps[36];
-    W[10] = -Ps[37];
-    W[11] = -Ps[38];
-    W[12] = -Ps[39];
-    W[13] = -Ps[40];
-    W[14] = -Ps[41];
-    const double s0 = 0.09 - W[2];
-    if (!isfinite(s0)) { return NAV_EKF_NON_FINITE; }
-    if (!(s0 > 0.0)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const double is0 = (1.0/s0);
-    const double r0 = y[0];
-    nis = nis + is0*(r0*r0);
+    /* component z[0]: the shared scalar update */
+    {
+        static const uint16_t hc[1] = {2u};
+        const double hv[1] = {-1.0};
+        const double rc = y[0];
+        const int st = nav_ekf_scalar_update(xs, Ps, hv, hc, 1u, rc, 0.09, &nis);
+        if (st != NAV_EKF_OK) {
+            return st;
+        }
+    }
     /* the NIS is complete: report it, and gate before the posterior is formed */
     if (!isfinite(nis)) {
         return NAV_EKF_NON_FINITE;
@@ -1993,157 +911,6 @@ int nav_ekf_update_baro_nis(nav_ekf_t *s, const double *z, double *nis_out)
         *nis_out = nis;
     }
 
-    K[0] = W[0]*is0;
-    K[1] = W[1]*is0;
-    K[2] = W[2]*is0;
-    K[3] = W[3]*is0;
-    K[4] = W[4]*is0;
-    K[5] = W[5]*is0;
-    K[6] = W[6]*is0;
-    K[7] = W[7]*is0;
-    K[8] = W[8]*is0;
-    K[9] = W[9]*is0;
-    K[10] = W[10]*is0;
-    K[11] = W[11]*is0;
-    K[12] = W[12]*is0;
-    K[13] = W[13]*is0;
-    K[14] = W[14]*is0;
-    xs[nav_ekf_ix_pn] = xs[nav_ekf_ix_pn] + K[0]*r0;
-    xs[nav_ekf_ix_pe] = xs[nav_ekf_ix_pe] + K[1]*r0;
-    xs[nav_ekf_ix_pd] = xs[nav_ekf_ix_pd] + K[2]*r0;
-    xs[nav_ekf_ix_vn] = xs[nav_ekf_ix_vn] + K[3]*r0;
-    xs[nav_ekf_ix_ve] = xs[nav_ekf_ix_ve] + K[4]*r0;
-    xs[nav_ekf_ix_vd] = xs[nav_ekf_ix_vd] + K[5]*r0;
-    xs[nav_ekf_ix_roll] = xs[nav_ekf_ix_roll] + K[6]*r0;
-    xs[nav_ekf_ix_pitch] = xs[nav_ekf_ix_pitch] + K[7]*r0;
-    xs[nav_ekf_ix_yaw] = xs[nav_ekf_ix_yaw] + K[8]*r0;
-    xs[nav_ekf_ix_bgx] = xs[nav_ekf_ix_bgx] + K[9]*r0;
-    xs[nav_ekf_ix_bgy] = xs[nav_ekf_ix_bgy] + K[10]*r0;
-    xs[nav_ekf_ix_bgz] = xs[nav_ekf_ix_bgz] + K[11]*r0;
-    xs[nav_ekf_ix_bax] = xs[nav_ekf_ix_bax] + K[12]*r0;
-    xs[nav_ekf_ix_bay] = xs[nav_ekf_ix_bay] + K[13]*r0;
-    xs[nav_ekf_ix_baz] = xs[nav_ekf_ix_baz] + K[14]*r0;
-    Ps[0] = Ps[0] - K[0]*W[0];
-    Ps[1] = Ps[1] - K[0]*W[1];
-    Ps[2] = Ps[2] - K[0]*W[2];
-    Ps[3] = Ps[3] - K[0]*W[3];
-    Ps[4] = Ps[4] - K[0]*W[4];
-    Ps[5] = Ps[5] - K[0]*W[5];
-    Ps[6] = Ps[6] - K[0]*W[6];
-    Ps[7] = Ps[7] - K[0]*W[7];
-    Ps[8] = Ps[8] - K[0]*W[8];
-    Ps[9] = Ps[9] - K[0]*W[9];
-    Ps[10] = Ps[10] - K[0]*W[10];
-    Ps[11] = Ps[11] - K[0]*W[11];
-    Ps[12] = Ps[12] - K[0]*W[12];
-    Ps[13] = Ps[13] - K[0]*W[13];
-    Ps[14] = Ps[14] - K[0]*W[14];
-    Ps[15] = Ps[15] - K[1]*W[1];
-    Ps[16] = Ps[16] - K[1]*W[2];
-    Ps[17] = Ps[17] - K[1]*W[3];
-    Ps[18] = Ps[18] - K[1]*W[4];
-    Ps[19] = Ps[19] - K[1]*W[5];
-    Ps[20] = Ps[20] - K[1]*W[6];
-    Ps[21] = Ps[21] - K[1]*W[7];
-    Ps[22] = Ps[22] - K[1]*W[8];
-    Ps[23] = Ps[23] - K[1]*W[9];
-    Ps[24] = Ps[24] - K[1]*W[10];
-    Ps[25] = Ps[25] - K[1]*W[11];
-    Ps[26] = Ps[26] - K[1]*W[12];
-    Ps[27] = Ps[27] - K[1]*W[13];
-    Ps[28] = Ps[28] - K[1]*W[14];
-    Ps[29] = Ps[29] - K[2]*W[2];
-    Ps[30] = Ps[30] - K[2]*W[3];
-    Ps[31] = Ps[31] - K[2]*W[4];
-    Ps[32] = Ps[32] - K[2]*W[5];
-    Ps[33] = Ps[33] - K[2]*W[6];
-    Ps[34] = Ps[34] - K[2]*W[7];
-    Ps[35] = Ps[35] - K[2]*W[8];
-    Ps[36] = Ps[36] - K[2]*W[9];
-    Ps[37] = Ps[37] - K[2]*W[10];
-    Ps[38] = Ps[38] - K[2]*W[11];
-    Ps[39] = Ps[39] - K[2]*W[12];
-    Ps[40] = Ps[40] - K[2]*W[13];
-    Ps[41] = Ps[41] - K[2]*W[14];
-    Ps[42] = Ps[42] - K[3]*W[3];
-    Ps[43] = Ps[43] - K[3]*W[4];
-    Ps[44] = Ps[44] - K[3]*W[5];
-    Ps[45] = Ps[45] - K[3]*W[6];
-    Ps[46] = Ps[46] - K[3]*W[7];
-    Ps[47] = Ps[47] - K[3]*W[8];
-    Ps[48] = Ps[48] - K[3]*W[9];
-    Ps[49] = Ps[49] - K[3]*W[10];
-    Ps[50] = Ps[50] - K[3]*W[11];
-    Ps[51] = Ps[51] - K[3]*W[12];
-    Ps[52] = Ps[52] - K[3]*W[13];
-    Ps[53] = Ps[53] - K[3]*W[14];
-    Ps[54] = Ps[54] - K[4]*W[4];
-    Ps[55] = Ps[55] - K[4]*W[5];
-    Ps[56] = Ps[56] - K[4]*W[6];
-    Ps[57] = Ps[57] - K[4]*W[7];
-    Ps[58] = Ps[58] - K[4]*W[8];
-    Ps[59] = Ps[59] - K[4]*W[9];
-    Ps[60] = Ps[60] - K[4]*W[10];
-    Ps[61] = Ps[61] - K[4]*W[11];
-    Ps[62] = Ps[62] - K[4]*W[12];
-    Ps[63] = Ps[63] - K[4]*W[13];
-    Ps[64] = Ps[64] - K[4]*W[14];
-    Ps[65] = Ps[65] - K[5]*W[5];
-    Ps[66] = Ps[66] - K[5]*W[6];
-    Ps[67] = Ps[67] - K[5]*W[7];
-    Ps[68] = Ps[68] - K[5]*W[8];
-    Ps[69] = Ps[69] - K[5]*W[9];
-    Ps[70] = Ps[70] - K[5]*W[10];
-    Ps[71] = Ps[71] - K[5]*W[11];
-    Ps[72] = Ps[72] - K[5]*W[12];
-    Ps[73] = Ps[73] - K[5]*W[13];
-    Ps[74] = Ps[74] - K[5]*W[14];
-    Ps[75] = Ps[75] - K[6]*W[6];
-    Ps[76] = Ps[76] - K[6]*W[7];
-    Ps[77] = Ps[77] - K[6]*W[8];
-    Ps[78] = Ps[78] - K[6]*W[9];
-    Ps[79] = Ps[79] - K[6]*W[10];
-    Ps[80] = Ps[80] - K[6]*W[11];
-    Ps[81] = Ps[81] - K[6]*W[12];
-    Ps[82] = Ps[82] - K[6]*W[13];
-    Ps[83] = Ps[83] - K[6]*W[14];
-    Ps[84] = Ps[84] - K[7]*W[7];
-    Ps[85] = Ps[85] - K[7]*W[8];
-    Ps[86] = Ps[86] - K[7]*W[9];
-    Ps[87] = Ps[87] - K[7]*W[10];
-    Ps[88] = Ps[88] - K[7]*W[11];
-    Ps[89] = Ps[89] - K[7]*W[12];
-    Ps[90] = Ps[90] - K[7]*W[13];
-    Ps[91] = Ps[91] - K[7]*W[14];
-    Ps[92] = Ps[92] - K[8]*W[8];
-    Ps[93] = Ps[93] - K[8]*W[9];
-    Ps[94] = Ps[94] - K[8]*W[10];
-    Ps[95] = Ps[95] - K[8]*W[11];
-    Ps[96] = Ps[96] - K[8]*W[12];
-    Ps[97] = Ps[97] - K[8]*W[13];
-    Ps[98] = Ps[98] - K[8]*W[14];
-    Ps[99] = Ps[99] - K[9]*W[9];
-    Ps[100] = Ps[100] - K[9]*W[10];
-    Ps[101] = Ps[101] - K[9]*W[11];
-    Ps[102] = Ps[102] - K[9]*W[12];
-    Ps[103] = Ps[103] - K[9]*W[13];
-    Ps[104] = Ps[104] - K[9]*W[14];
-    Ps[105] = Ps[105] - K[10]*W[10];
-    Ps[106] = Ps[106] - K[10]*W[11];
-    Ps[107] = Ps[107] - K[10]*W[12];
-    Ps[108] = Ps[108] - K[10]*W[13];
-    Ps[109] = Ps[109] - K[10]*W[14];
-    Ps[110] = Ps[110] - K[11]*W[11];
-    Ps[111] = Ps[111] - K[11]*W[12];
-    Ps[112] = Ps[112] - K[11]*W[13];
-    Ps[113] = Ps[113] - K[11]*W[14];
-    Ps[114] = Ps[114] - K[12]*W[12];
-    Ps[115] = Ps[115] - K[12]*W[13];
-    Ps[116] = Ps[116] - K[12]*W[14];
-    Ps[117] = Ps[117] - K[13]*W[13];
-    Ps[118] = Ps[118] - K[13]*W[14];
-    Ps[119] = Ps[119] - K[14]*W[14];
-    /* angle states wrapped to (-pi, pi] */
     xs[nav_ekf_ix_roll] = nav_ekf_wrap(xs[nav_ekf_ix_roll]);
     xs[nav_ekf_ix_pitch] = nav_ekf_wrap(xs[nav_ekf_ix_pitch]);
     xs[nav_ekf_ix_yaw] = nav_ekf_wrap(xs[nav_ekf_ix_yaw]);
@@ -2174,8 +941,6 @@ int nav_ekf_update_mag_heading_nis(nav_ekf_t *s, const double *z, double *nis_ou
     double xs[15];
     double Ps[120];
     double y[1];
-    double W[15];
-    double K[15];
     double nis = 0.0;
     const double *x = s->x;
     if (z == NULL || !nav_ekf_finite(z, 1u)) {
@@ -2187,28 +952,16 @@ int nav_ekf_update_mag_heading_nis(nav_ekf_t *s, const double *z, double *nis_ou
     /* innovation y = z - h(x) */
     y[0] = z[0] - x[nav_ekf_ix_yaw];
     y[0] = nav_ekf_wrap(y[0]);
-    /* component z[0] of mag_heading: W = P H_0', s = H_0 W + R_00, K = W / s, x += K r, Joseph-form P */
-    W[0] = Ps[8];
-    W[1] = Ps[22];
-    W[2] = Ps[35];
-    W[3] = Ps[47];
-    W[4] = Ps[58];
-    W[5] = Ps[68];
-    W[6] = Ps[77];
-    W[7] = Ps[85];
-    W[8] = Ps[92];
-    W[9] = Ps[93];
-    W[10] = Ps[94];
-    W[11] = Ps[95];
-    W[12] = Ps[96];
-    W[13] = Ps[97];
-    W[14] = Ps[98];
-    const double s0 = 0.0012184696791468343 + W[8];
-    if (!isfinite(s0)) { return NAV_EKF_NON_FINITE; }
-    if (!(s0 > 0.0)) { return NAV_EKF_NOT_POSITIVE_DEFINITE; }
-    const double is0 = (1.0/s0);
-    const double r0 = y[0];
-    nis = nis + is0*(r0*r0);
+    /* component z[0]: the shared scalar update */
+    {
+        static const uint16_t hc[1] = {8u};
+        const double hv[1] = {1.0};
+        const double rc = y[0];
+        const int st = nav_ekf_scalar_update(xs, Ps, hv, hc, 1u, rc, 0.0012184696791468343, &nis);
+        if (st != NAV_EKF_OK) {
+            return st;
+        }
+    }
     /* the NIS is complete: report it, and gate before the posterior is formed */
     if (!isfinite(nis)) {
         return NAV_EKF_NON_FINITE;
@@ -2217,157 +970,6 @@ int nav_ekf_update_mag_heading_nis(nav_ekf_t *s, const double *z, double *nis_ou
         *nis_out = nis;
     }
 
-    K[0] = W[0]*is0;
-    K[1] = W[1]*is0;
-    K[2] = W[2]*is0;
-    K[3] = W[3]*is0;
-    K[4] = W[4]*is0;
-    K[5] = W[5]*is0;
-    K[6] = W[6]*is0;
-    K[7] = W[7]*is0;
-    K[8] = W[8]*is0;
-    K[9] = W[9]*is0;
-    K[10] = W[10]*is0;
-    K[11] = W[11]*is0;
-    K[12] = W[12]*is0;
-    K[13] = W[13]*is0;
-    K[14] = W[14]*is0;
-    xs[nav_ekf_ix_pn] = xs[nav_ekf_ix_pn] + K[0]*r0;
-    xs[nav_ekf_ix_pe] = xs[nav_ekf_ix_pe] + K[1]*r0;
-    xs[nav_ekf_ix_pd] = xs[nav_ekf_ix_pd] + K[2]*r0;
-    xs[nav_ekf_ix_vn] = xs[nav_ekf_ix_vn] + K[3]*r0;
-    xs[nav_ekf_ix_ve] = xs[nav_ekf_ix_ve] + K[4]*r0;
-    xs[nav_ekf_ix_vd] = xs[nav_ekf_ix_vd] + K[5]*r0;
-    xs[nav_ekf_ix_roll] = xs[nav_ekf_ix_roll] + K[6]*r0;
-    xs[nav_ekf_ix_pitch] = xs[nav_ekf_ix_pitch] + K[7]*r0;
-    xs[nav_ekf_ix_yaw] = xs[nav_ekf_ix_yaw] + K[8]*r0;
-    xs[nav_ekf_ix_bgx] = xs[nav_ekf_ix_bgx] + K[9]*r0;
-    xs[nav_ekf_ix_bgy] = xs[nav_ekf_ix_bgy] + K[10]*r0;
-    xs[nav_ekf_ix_bgz] = xs[nav_ekf_ix_bgz] + K[11]*r0;
-    xs[nav_ekf_ix_bax] = xs[nav_ekf_ix_bax] + K[12]*r0;
-    xs[nav_ekf_ix_bay] = xs[nav_ekf_ix_bay] + K[13]*r0;
-    xs[nav_ekf_ix_baz] = xs[nav_ekf_ix_baz] + K[14]*r0;
-    Ps[0] = Ps[0] - K[0]*W[0];
-    Ps[1] = Ps[1] - K[0]*W[1];
-    Ps[2] = Ps[2] - K[0]*W[2];
-    Ps[3] = Ps[3] - K[0]*W[3];
-    Ps[4] = Ps[4] - K[0]*W[4];
-    Ps[5] = Ps[5] - K[0]*W[5];
-    Ps[6] = Ps[6] - K[0]*W[6];
-    Ps[7] = Ps[7] - K[0]*W[7];
-    Ps[8] = Ps[8] - K[0]*W[8];
-    Ps[9] = Ps[9] - K[0]*W[9];
-    Ps[10] = Ps[10] - K[0]*W[10];
-    Ps[11] = Ps[11] - K[0]*W[11];
-    Ps[12] = Ps[12] - K[0]*W[12];
-    Ps[13] = Ps[13] - K[0]*W[13];
-    Ps[14] = Ps[14] - K[0]*W[14];
-    Ps[15] = Ps[15] - K[1]*W[1];
-    Ps[16] = Ps[16] - K[1]*W[2];
-    Ps[17] = Ps[17] - K[1]*W[3];
-    Ps[18] = Ps[18] - K[1]*W[4];
-    Ps[19] = Ps[19] - K[1]*W[5];
-    Ps[20] = Ps[20] - K[1]*W[6];
-    Ps[21] = Ps[21] - K[1]*W[7];
-    Ps[22] = Ps[22] - K[1]*W[8];
-    Ps[23] = Ps[23] - K[1]*W[9];
-    Ps[24] = Ps[24] - K[1]*W[10];
-    Ps[25] = Ps[25] - K[1]*W[11];
-    Ps[26] = Ps[26] - K[1]*W[12];
-    Ps[27] = Ps[27] - K[1]*W[13];
-    Ps[28] = Ps[28] - K[1]*W[14];
-    Ps[29] = Ps[29] - K[2]*W[2];
-    Ps[30] = Ps[30] - K[2]*W[3];
-    Ps[31] = Ps[31] - K[2]*W[4];
-    Ps[32] = Ps[32] - K[2]*W[5];
-    Ps[33] = Ps[33] - K[2]*W[6];
-    Ps[34] = Ps[34] - K[2]*W[7];
-    Ps[35] = Ps[35] - K[2]*W[8];
-    Ps[36] = Ps[36] - K[2]*W[9];
-    Ps[37] = Ps[37] - K[2]*W[10];
-    Ps[38] = Ps[38] - K[2]*W[11];
-    Ps[39] = Ps[39] - K[2]*W[12];
-    Ps[40] = Ps[40] - K[2]*W[13];
-    Ps[41] = Ps[41] - K[2]*W[14];
-    Ps[42] = Ps[42] - K[3]*W[3];
-    Ps[43] = Ps[43] - K[3]*W[4];
-    Ps[44] = Ps[44] - K[3]*W[5];
-    Ps[45] = Ps[45] - K[3]*W[6];
-    Ps[46] = Ps[46] - K[3]*W[7];
-    Ps[47] = Ps[47] - K[3]*W[8];
-    Ps[48] = Ps[48] - K[3]*W[9];
-    Ps[49] = Ps[49] - K[3]*W[10];
-    Ps[50] = Ps[50] - K[3]*W[11];
-    Ps[51] = Ps[51] - K[3]*W[12];
-    Ps[52] = Ps[52] - K[3]*W[13];
-    Ps[53] = Ps[53] - K[3]*W[14];
-    Ps[54] = Ps[54] - K[4]*W[4];
-    Ps[55] = Ps[55] - K[4]*W[5];
-    Ps[56] = Ps[56] - K[4]*W[6];
-    Ps[57] = Ps[57] - K[4]*W[7];
-    Ps[58] = Ps[58] - K[4]*W[8];
-    Ps[59] = Ps[59] - K[4]*W[9];
-    Ps[60] = Ps[60] - K[4]*W[10];
-    Ps[61] = Ps[61] - K[4]*W[11];
-    Ps[62] = Ps[62] - K[4]*W[12];
-    Ps[63] = Ps[63] - K[4]*W[13];
-    Ps[64] = Ps[64] - K[4]*W[14];
-    Ps[65] = Ps[65] - K[5]*W[5];
-    Ps[66] = Ps[66] - K[5]*W[6];
-    Ps[67] = Ps[67] - K[5]*W[7];
-    Ps[68] = Ps[68] - K[5]*W[8];
-    Ps[69] = Ps[69] - K[5]*W[9];
-    Ps[70] = Ps[70] - K[5]*W[10];
-    Ps[71] = Ps[71] - K[5]*W[11];
-    Ps[72] = Ps[72] - K[5]*W[12];
-    Ps[73] = Ps[73] - K[5]*W[13];
-    Ps[74] = Ps[74] - K[5]*W[14];
-    Ps[75] = Ps[75] - K[6]*W[6];
-    Ps[76] = Ps[76] - K[6]*W[7];
-    Ps[77] = Ps[77] - K[6]*W[8];
-    Ps[78] = Ps[78] - K[6]*W[9];
-    Ps[79] = Ps[79] - K[6]*W[10];
-    Ps[80] = Ps[80] - K[6]*W[11];
-    Ps[81] = Ps[81] - K[6]*W[12];
-    Ps[82] = Ps[82] - K[6]*W[13];
-    Ps[83] = Ps[83] - K[6]*W[14];
-    Ps[84] = Ps[84] - K[7]*W[7];
-    Ps[85] = Ps[85] - K[7]*W[8];
-    Ps[86] = Ps[86] - K[7]*W[9];
-    Ps[87] = Ps[87] - K[7]*W[10];
-    Ps[88] = Ps[88] - K[7]*W[11];
-    Ps[89] = Ps[89] - K[7]*W[12];
-    Ps[90] = Ps[90] - K[7]*W[13];
-    Ps[91] = Ps[91] - K[7]*W[14];
-    Ps[92] = Ps[92] - K[8]*W[8];
-    Ps[93] = Ps[93] - K[8]*W[9];
-    Ps[94] = Ps[94] - K[8]*W[10];
-    Ps[95] = Ps[95] - K[8]*W[11];
-    Ps[96] = Ps[96] - K[8]*W[12];
-    Ps[97] = Ps[97] - K[8]*W[13];
-    Ps[98] = Ps[98] - K[8]*W[14];
-    Ps[99] = Ps[99] - K[9]*W[9];
-    Ps[100] = Ps[100] - K[9]*W[10];
-    Ps[101] = Ps[101] - K[9]*W[11];
-    Ps[102] = Ps[102] - K[9]*W[12];
-    Ps[103] = Ps[103] - K[9]*W[13];
-    Ps[104] = Ps[104] - K[9]*W[14];
-    Ps[105] = Ps[105] - K[10]*W[10];
-    Ps[106] = Ps[106] - K[10]*W[11];
-    Ps[107] = Ps[107] - K[10]*W[12];
-    Ps[108] = Ps[108] - K[10]*W[13];
-    Ps[109] = Ps[109] - K[10]*W[14];
-    Ps[110] = Ps[110] - K[11]*W[11];
-    Ps[111] = Ps[111] - K[11]*W[12];
-    Ps[112] = Ps[112] - K[11]*W[13];
-    Ps[113] = Ps[113] - K[11]*W[14];
-    Ps[114] = Ps[114] - K[12]*W[12];
-    Ps[115] = Ps[115] - K[12]*W[13];
-    Ps[116] = Ps[116] - K[12]*W[14];
-    Ps[117] = Ps[117] - K[13]*W[13];
-    Ps[118] = Ps[118] - K[13]*W[14];
-    Ps[119] = Ps[119] - K[14]*W[14];
-    /* angle states wrapped to (-pi, pi] */
     xs[nav_ekf_ix_roll] = nav_ekf_wrap(xs[nav_ekf_ix_roll]);
     xs[nav_ekf_ix_pitch] = nav_ekf_wrap(xs[nav_ekf_ix_pitch]);
     xs[nav_ekf_ix_yaw] = nav_ekf_wrap(xs[nav_ekf_ix_yaw]);

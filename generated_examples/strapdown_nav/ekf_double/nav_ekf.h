@@ -84,13 +84,10 @@
  * Deviation from Power of Ten rule 4 (functions of at most 60 lines): these generated
  * functions are longer because the algebra is unrolled straight-line code (no loops, one exit path
  * besides the early refusals), each block headed by a section comment:
- *   nav_ekf_commit_pd: 179 lines
  *   nav_ekf_init: 136 lines
  *   nav_ekf_predict: 378 lines
- *   nav_ekf_update_gnss_pos_nis: 558 lines
- *   nav_ekf_update_gnss_vel_nis: 558 lines
- *   nav_ekf_update_baro_nis: 212 lines
- *   nav_ekf_update_mag_heading_nis: 213 lines
+ *   nav_ekf_update_gnss_pos_nis: 69 lines
+ *   nav_ekf_update_gnss_vel_nis: 69 lines
  */
 #ifndef NAV_EKF_H
 #define NAV_EKF_H

@@ -81,8 +81,6 @@
  * Deviation from Power of Ten rule 4 (functions of at most 60 lines): these generated
  * functions are longer because the algebra is unrolled straight-line code (no loops, one exit path
  * besides the early refusals), each block headed by a section comment:
- *   nav_ukf_commit_pd: 179 lines
- *   nav_ukf_factor: 300 lines
  *   nav_ukf_init: 136 lines
  *   nav_ukf_predict: 1498 lines
  *   nav_ukf_update_gnss_pos_nis: 257 lines

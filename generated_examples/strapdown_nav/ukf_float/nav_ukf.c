@@ -37,497 +37,62 @@ static size_t nav_ukf_pk(size_t i, size_t j)
     return (i <= j) ? (i * 15u - (i * (i + 1u)) / 2u + j) : (j * 15u - (j * (j + 1u)) / 2u + i);
 }
 
+/* Packed index of entry (r, c), r <= c. */
+static size_t nav_ukf_pku(size_t r, size_t c)
+{
+    return (r * (29u - r)) / 2u + c;
+}
+
+/* L = the lower Cholesky factor of the packed P (L_ij, i >= j, at the packed index of (j, i)); OK,
+   or the refusal code at the first pivot that is not finite and > 0. Loops with constant bounds
+   (--optimize speed: see the header). A non-finite entry of P always reaches a pivot. */
+static int nav_ukf_cholesky(const float *P, float *L)
+{
+    size_t i;
+    size_t j;
+    size_t k;
+    for (j = 0u; j < 15u; ++j) {
+        const size_t jj = nav_ukf_pku(j, j);
+        float d = P[jj];
+        float inv;
+        for (k = 0u; k < j; ++k) {
+            const float l = L[nav_ukf_pku(k, j)];
+            d -= l * l;
+        }
+        if (!isfinite(d)) {
+            return NAV_UKF_NON_FINITE;
+        }
+        if (!(d > 0.0F)) {
+            return NAV_UKF_NOT_POSITIVE_DEFINITE;
+        }
+        L[jj] = sqrtf(d);
+        inv = 1.0F / L[jj];
+        for (i = j + 1u; i < 15u; ++i) {
+            float e = P[nav_ukf_pku(j, i)];
+            for (k = 0u; k < j; ++k) {
+                e -= L[nav_ukf_pku(k, i)] * L[nav_ukf_pku(k, j)];
+            }
+            L[nav_ukf_pku(j, i)] = e * inv;
+        }
+    }
+    return NAV_UKF_OK;
+}
+
 /* OK when the packed covariance P is positive definite (every pivot of its Cholesky factorization
-   finite and > 0; a positive diagonal is not enough), else the refusal code. Unrolled; one copy
-   serves set_state and every commit that factorizes. A non-finite entry always reaches a pivot. */
+   finite and > 0; a positive diagonal is not enough), else the refusal code. One copy serves
+   set_state and every commit that factorizes. */
 static int nav_ukf_commit_pd(const float *P)
 {
-    const float Lcd0 = P[0];
-    if (!isfinite(Lcd0)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd0 > 0.0F)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc0_0 = sqrtf(Lcd0);
-    const float Lci0 = (1.0F/Lc0_0);
-    const float Lc1_0 = Lci0*P[1];
-    const float Lc2_0 = Lci0*P[2];
-    const float Lc3_0 = Lci0*P[3];
-    const float Lc4_0 = Lci0*P[4];
-    const float Lc5_0 = Lci0*P[5];
-    const float Lc6_0 = Lci0*P[6];
-    const float Lc7_0 = Lci0*P[7];
-    const float Lc8_0 = Lci0*P[8];
-    const float Lc9_0 = Lci0*P[9];
-    const float Lc10_0 = Lci0*P[10];
-    const float Lc11_0 = Lci0*P[11];
-    const float Lc12_0 = Lci0*P[12];
-    const float Lc13_0 = Lci0*P[13];
-    const float Lc14_0 = Lci0*P[14];
-    const float Lcd1 = P[15] - (Lc1_0*Lc1_0);
-    if (!isfinite(Lcd1)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd1 > 0.0F)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc1_1 = sqrtf(Lcd1);
-    const float Lci1 = (1.0F/Lc1_1);
-    const float Lc2_1 = Lci1*(P[16] - Lc1_0*Lc2_0);
-    const float Lc3_1 = Lci1*(P[17] - Lc1_0*Lc3_0);
-    const float Lc4_1 = Lci1*(P[18] - Lc1_0*Lc4_0);
-    const float Lc5_1 = Lci1*(P[19] - Lc1_0*Lc5_0);
-    const float Lc6_1 = Lci1*(P[20] - Lc1_0*Lc6_0);
-    const float Lc7_1 = Lci1*(P[21] - Lc1_0*Lc7_0);
-    const float Lc8_1 = Lci1*(P[22] - Lc1_0*Lc8_0);
-    const float Lc9_1 = Lci1*(P[23] - Lc1_0*Lc9_0);
-    const float Lc10_1 = Lci1*(P[24] - Lc10_0*Lc1_0);
-    const float Lc11_1 = Lci1*(P[25] - Lc11_0*Lc1_0);
-    const float Lc12_1 = Lci1*(P[26] - Lc12_0*Lc1_0);
-    const float Lc13_1 = Lci1*(P[27] - Lc13_0*Lc1_0);
-    const float Lc14_1 = Lci1*(P[28] - Lc14_0*Lc1_0);
-    const float Lcd2 = P[29] - (Lc2_0*Lc2_0) - (Lc2_1*Lc2_1);
-    if (!isfinite(Lcd2)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd2 > 0.0F)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc2_2 = sqrtf(Lcd2);
-    const float Lci2 = (1.0F/Lc2_2);
-    const float Lc3_2 = Lci2*(P[30] - Lc2_0*Lc3_0 - Lc2_1*Lc3_1);
-    const float Lc4_2 = Lci2*(P[31] - Lc2_0*Lc4_0 - Lc2_1*Lc4_1);
-    const float Lc5_2 = Lci2*(P[32] - Lc2_0*Lc5_0 - Lc2_1*Lc5_1);
-    const float Lc6_2 = Lci2*(P[33] - Lc2_0*Lc6_0 - Lc2_1*Lc6_1);
-    const float Lc7_2 = Lci2*(P[34] - Lc2_0*Lc7_0 - Lc2_1*Lc7_1);
-    const float Lc8_2 = Lci2*(P[35] - Lc2_0*Lc8_0 - Lc2_1*Lc8_1);
-    const float Lc9_2 = Lci2*(P[36] - Lc2_0*Lc9_0 - Lc2_1*Lc9_1);
-    const float Lc10_2 = Lci2*(P[37] - Lc10_0*Lc2_0 - Lc10_1*Lc2_1);
-    const float Lc11_2 = Lci2*(P[38] - Lc11_0*Lc2_0 - Lc11_1*Lc2_1);
-    const float Lc12_2 = Lci2*(P[39] - Lc12_0*Lc2_0 - Lc12_1*Lc2_1);
-    const float Lc13_2 = Lci2*(P[40] - Lc13_0*Lc2_0 - Lc13_1*Lc2_1);
-    const float Lc14_2 = Lci2*(P[41] - Lc14_0*Lc2_0 - Lc14_1*Lc2_1);
-    const float Lcd3 = P[42] - (Lc3_0*Lc3_0) - (Lc3_1*Lc3_1) - (Lc3_2*Lc3_2);
-    if (!isfinite(Lcd3)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd3 > 0.0F)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc3_3 = sqrtf(Lcd3);
-    const float Lci3 = (1.0F/Lc3_3);
-    const float Lc4_3 = Lci3*(P[43] - Lc3_0*Lc4_0 - Lc3_1*Lc4_1 - Lc3_2*Lc4_2);
-    const float Lc5_3 = Lci3*(P[44] - Lc3_0*Lc5_0 - Lc3_1*Lc5_1 - Lc3_2*Lc5_2);
-    const float Lc6_3 = Lci3*(P[45] - Lc3_0*Lc6_0 - Lc3_1*Lc6_1 - Lc3_2*Lc6_2);
-    const float Lc7_3 = Lci3*(P[46] - Lc3_0*Lc7_0 - Lc3_1*Lc7_1 - Lc3_2*Lc7_2);
-    const float Lc8_3 = Lci3*(P[47] - Lc3_0*Lc8_0 - Lc3_1*Lc8_1 - Lc3_2*Lc8_2);
-    const float Lc9_3 = Lci3*(P[48] - Lc3_0*Lc9_0 - Lc3_1*Lc9_1 - Lc3_2*Lc9_2);
-    const float Lc10_3 = Lci3*(P[49] - Lc10_0*Lc3_0 - Lc10_1*Lc3_1 - Lc10_2*Lc3_2);
-    const float Lc11_3 = Lci3*(P[50] - Lc11_0*Lc3_0 - Lc11_1*Lc3_1 - Lc11_2*Lc3_2);
-    const float Lc12_3 = Lci3*(P[51] - Lc12_0*Lc3_0 - Lc12_1*Lc3_1 - Lc12_2*Lc3_2);
-    const float Lc13_3 = Lci3*(P[52] - Lc13_0*Lc3_0 - Lc13_1*Lc3_1 - Lc13_2*Lc3_2);
-    const float Lc14_3 = Lci3*(P[53] - Lc14_0*Lc3_0 - Lc14_1*Lc3_1 - Lc14_2*Lc3_2);
-    const float Lcd4 = P[54] - (Lc4_0*Lc4_0) - (Lc4_1*Lc4_1) - (Lc4_2*Lc4_2) - (Lc4_3*Lc4_3);
-    if (!isfinite(Lcd4)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd4 > 0.0F)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc4_4 = sqrtf(Lcd4);
-    const float Lci4 = (1.0F/Lc4_4);
-    const float Lc5_4 = Lci4*(P[55] - Lc4_0*Lc5_0 - Lc4_1*Lc5_1 - Lc4_2*Lc5_2 - Lc4_3*Lc5_3);
-    const float Lc6_4 = Lci4*(P[56] - Lc4_0*Lc6_0 - Lc4_1*Lc6_1 - Lc4_2*Lc6_2 - Lc4_3*Lc6_3);
-    const float Lc7_4 = Lci4*(P[57] - Lc4_0*Lc7_0 - Lc4_1*Lc7_1 - Lc4_2*Lc7_2 - Lc4_3*Lc7_3);
-    const float Lc8_4 = Lci4*(P[58] - Lc4_0*Lc8_0 - Lc4_1*Lc8_1 - Lc4_2*Lc8_2 - Lc4_3*Lc8_3);
-    const float Lc9_4 = Lci4*(P[59] - Lc4_0*Lc9_0 - Lc4_1*Lc9_1 - Lc4_2*Lc9_2 - Lc4_3*Lc9_3);
-    const float Lc10_4 = Lci4*(P[60] - Lc10_0*Lc4_0 - Lc10_1*Lc4_1 - Lc10_2*Lc4_2 - Lc10_3*Lc4_3);
-    const float Lc11_4 = Lci4*(P[61] - Lc11_0*Lc4_0 - Lc11_1*Lc4_1 - Lc11_2*Lc4_2 - Lc11_3*Lc4_3);
-    const float Lc12_4 = Lci4*(P[62] - Lc12_0*Lc4_0 - Lc12_1*Lc4_1 - Lc12_2*Lc4_2 - Lc12_3*Lc4_3);
-    const float Lc13_4 = Lci4*(P[63] - Lc13_0*Lc4_0 - Lc13_1*Lc4_1 - Lc13_2*Lc4_2 - Lc13_3*Lc4_3);
-    const float Lc14_4 = Lci4*(P[64] - Lc14_0*Lc4_0 - Lc14_1*Lc4_1 - Lc14_2*Lc4_2 - Lc14_3*Lc4_3);
-    const float Lcd5 = P[65] - (Lc5_0*Lc5_0) - (Lc5_1*Lc5_1) - (Lc5_2*Lc5_2) - (Lc5_3*Lc5_3) - (Lc5_4*Lc5_4);
-    if (!isfinite(Lcd5)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd5 > 0.0F)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc5_5 = sqrtf(Lcd5);
-    const float Lci5 = (1.0F/Lc5_5);
-    const float Lc6_5 = Lci5*(P[66] - Lc5_0*Lc6_0 - Lc5_1*Lc6_1 - Lc5_2*Lc6_2 - Lc5_3*Lc6_3 - Lc5_4*Lc6_4);
-    const float Lc7_5 = Lci5*(P[67] - Lc5_0*Lc7_0 - Lc5_1*Lc7_1 - Lc5_2*Lc7_2 - Lc5_3*Lc7_3 - Lc5_4*Lc7_4);
-    const float Lc8_5 = Lci5*(P[68] - Lc5_0*Lc8_0 - Lc5_1*Lc8_1 - Lc5_2*Lc8_2 - Lc5_3*Lc8_3 - Lc5_4*Lc8_4);
-    const float Lc9_5 = Lci5*(P[69] - Lc5_0*Lc9_0 - Lc5_1*Lc9_1 - Lc5_2*Lc9_2 - Lc5_3*Lc9_3 - Lc5_4*Lc9_4);
-    const float Lc10_5 = Lci5*(P[70] - Lc10_0*Lc5_0 - Lc10_1*Lc5_1 - Lc10_2*Lc5_2 - Lc10_3*Lc5_3 - Lc10_4*Lc5_4);
-    const float Lc11_5 = Lci5*(P[71] - Lc11_0*Lc5_0 - Lc11_1*Lc5_1 - Lc11_2*Lc5_2 - Lc11_3*Lc5_3 - Lc11_4*Lc5_4);
-    const float Lc12_5 = Lci5*(P[72] - Lc12_0*Lc5_0 - Lc12_1*Lc5_1 - Lc12_2*Lc5_2 - Lc12_3*Lc5_3 - Lc12_4*Lc5_4);
-    const float Lc13_5 = Lci5*(P[73] - Lc13_0*Lc5_0 - Lc13_1*Lc5_1 - Lc13_2*Lc5_2 - Lc13_3*Lc5_3 - Lc13_4*Lc5_4);
-    const float Lc14_5 = Lci5*(P[74] - Lc14_0*Lc5_0 - Lc14_1*Lc5_1 - Lc14_2*Lc5_2 - Lc14_3*Lc5_3 - Lc14_4*Lc5_4);
-    const float Lcd6 = P[75] - (Lc6_0*Lc6_0) - (Lc6_1*Lc6_1) - (Lc6_2*Lc6_2) - (Lc6_3*Lc6_3) - (Lc6_4*Lc6_4) - (Lc6_5*Lc6_5);
-    if (!isfinite(Lcd6)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd6 > 0.0F)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc6_6 = sqrtf(Lcd6);
-    const float Lci6 = (1.0F/Lc6_6);
-    const float Lc7_6 = Lci6*(P[76] - Lc6_0*Lc7_0 - Lc6_1*Lc7_1 - Lc6_2*Lc7_2 - Lc6_3*Lc7_3 - Lc6_4*Lc7_4 - Lc6_5*Lc7_5);
-    const float Lc8_6 = Lci6*(P[77] - Lc6_0*Lc8_0 - Lc6_1*Lc8_1 - Lc6_2*Lc8_2 - Lc6_3*Lc8_3 - Lc6_4*Lc8_4 - Lc6_5*Lc8_5);
-    const float Lc9_6 = Lci6*(P[78] - Lc6_0*Lc9_0 - Lc6_1*Lc9_1 - Lc6_2*Lc9_2 - Lc6_3*Lc9_3 - Lc6_4*Lc9_4 - Lc6_5*Lc9_5);
-    const float Lc10_6 = Lci6*(P[79] - Lc10_0*Lc6_0 - Lc10_1*Lc6_1 - Lc10_2*Lc6_2 - Lc10_3*Lc6_3 - Lc10_4*Lc6_4 - Lc10_5*Lc6_5);
-    const float Lc11_6 = Lci6*(P[80] - Lc11_0*Lc6_0 - Lc11_1*Lc6_1 - Lc11_2*Lc6_2 - Lc11_3*Lc6_3 - Lc11_4*Lc6_4 - Lc11_5*Lc6_5);
-    const float Lc12_6 = Lci6*(P[81] - Lc12_0*Lc6_0 - Lc12_1*Lc6_1 - Lc12_2*Lc6_2 - Lc12_3*Lc6_3 - Lc12_4*Lc6_4 - Lc12_5*Lc6_5);
-    const float Lc13_6 = Lci6*(P[82] - Lc13_0*Lc6_0 - Lc13_1*Lc6_1 - Lc13_2*Lc6_2 - Lc13_3*Lc6_3 - Lc13_4*Lc6_4 - Lc13_5*Lc6_5);
-    const float Lc14_6 = Lci6*(P[83] - Lc14_0*Lc6_0 - Lc14_1*Lc6_1 - Lc14_2*Lc6_2 - Lc14_3*Lc6_3 - Lc14_4*Lc6_4 - Lc14_5*Lc6_5);
-    const float Lcd7 = P[84] - (Lc7_0*Lc7_0) - (Lc7_1*Lc7_1) - (Lc7_2*Lc7_2) - (Lc7_3*Lc7_3) - (Lc7_4*Lc7_4) - (Lc7_5*Lc7_5) - (Lc7_6*Lc7_6);
-    if (!isfinite(Lcd7)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd7 > 0.0F)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc7_7 = sqrtf(Lcd7);
-    const float Lci7 = (1.0F/Lc7_7);
-    const float Lc8_7 = Lci7*(P[85] - Lc7_0*Lc8_0 - Lc7_1*Lc8_1 - Lc7_2*Lc8_2 - Lc7_3*Lc8_3 - Lc7_4*Lc8_4 - Lc7_5*Lc8_5 - Lc7_6*Lc8_6);
-    const float Lc9_7 = Lci7*(P[86] - Lc7_0*Lc9_0 - Lc7_1*Lc9_1 - Lc7_2*Lc9_2 - Lc7_3*Lc9_3 - Lc7_4*Lc9_4 - Lc7_5*Lc9_5 - Lc7_6*Lc9_6);
-    const float Lc10_7 = Lci7*(P[87] - Lc10_0*Lc7_0 - Lc10_1*Lc7_1 - Lc10_2*Lc7_2 - Lc10_3*Lc7_3 - Lc10_4*Lc7_4 - Lc10_5*Lc7_5 - Lc10_6*Lc7_6);
-    const float Lc11_7 = Lci7*(P[88] - Lc11_0*Lc7_0 - Lc11_1*Lc7_1 - Lc11_2*Lc7_2 - Lc11_3*Lc7_3 - Lc11_4*Lc7_4 - Lc11_5*Lc7_5 - Lc11_6*Lc7_6);
-    const float Lc12_7 = Lci7*(P[89] - Lc12_0*Lc7_0 - Lc12_1*Lc7_1 - Lc12_2*Lc7_2 - Lc12_3*Lc7_3 - Lc12_4*Lc7_4 - Lc12_5*Lc7_5 - Lc12_6*Lc7_6);
-    const float Lc13_7 = Lci7*(P[90] - Lc13_0*Lc7_0 - Lc13_1*Lc7_1 - Lc13_2*Lc7_2 - Lc13_3*Lc7_3 - Lc13_4*Lc7_4 - Lc13_5*Lc7_5 - Lc13_6*Lc7_6);
-    const float Lc14_7 = Lci7*(P[91] - Lc14_0*Lc7_0 - Lc14_1*Lc7_1 - Lc14_2*Lc7_2 - Lc14_3*Lc7_3 - Lc14_4*Lc7_4 - Lc14_5*Lc7_5 - Lc14_6*Lc7_6);
-    const float Lcd8 = P[92] - (Lc8_0*Lc8_0) - (Lc8_1*Lc8_1) - (Lc8_2*Lc8_2) - (Lc8_3*Lc8_3) - (Lc8_4*Lc8_4) - (Lc8_5*Lc8_5) - (Lc8_6*Lc8_6) - (Lc8_7*Lc8_7);
-    if (!isfinite(Lcd8)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd8 > 0.0F)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc8_8 = sqrtf(Lcd8);
-    const float Lci8 = (1.0F/Lc8_8);
-    const float Lc9_8 = Lci8*(P[93] - Lc8_0*Lc9_0 - Lc8_1*Lc9_1 - Lc8_2*Lc9_2 - Lc8_3*Lc9_3 - Lc8_4*Lc9_4 - Lc8_5*Lc9_5 - Lc8_6*Lc9_6 - Lc8_7*Lc9_7);
-    const float Lc10_8 = Lci8*(P[94] - Lc10_0*Lc8_0 - Lc10_1*Lc8_1 - Lc10_2*Lc8_2 - Lc10_3*Lc8_3 - Lc10_4*Lc8_4 - Lc10_5*Lc8_5 - Lc10_6*Lc8_6 - Lc10_7*Lc8_7);
-    const float Lc11_8 = Lci8*(P[95] - Lc11_0*Lc8_0 - Lc11_1*Lc8_1 - Lc11_2*Lc8_2 - Lc11_3*Lc8_3 - Lc11_4*Lc8_4 - Lc11_5*Lc8_5 - Lc11_6*Lc8_6 - Lc11_7*Lc8_7);
-    const float Lc12_8 = Lci8*(P[96] - Lc12_0*Lc8_0 - Lc12_1*Lc8_1 - Lc12_2*Lc8_2 - Lc12_3*Lc8_3 - Lc12_4*Lc8_4 - Lc12_5*Lc8_5 - Lc12_6*Lc8_6 - Lc12_7*Lc8_7);
-    const float Lc13_8 = Lci8*(P[97] - Lc13_0*Lc8_0 - Lc13_1*Lc8_1 - Lc13_2*Lc8_2 - Lc13_3*Lc8_3 - Lc13_4*Lc8_4 - Lc13_5*Lc8_5 - Lc13_6*Lc8_6 - Lc13_7*Lc8_7);
-    const float Lc14_8 = Lci8*(P[98] - Lc14_0*Lc8_0 - Lc14_1*Lc8_1 - Lc14_2*Lc8_2 - Lc14_3*Lc8_3 - Lc14_4*Lc8_4 - Lc14_5*Lc8_5 - Lc14_6*Lc8_6 - Lc14_7*Lc8_7);
-    const float Lcd9 = P[99] - (Lc9_0*Lc9_0) - (Lc9_1*Lc9_1) - (Lc9_2*Lc9_2) - (Lc9_3*Lc9_3) - (Lc9_4*Lc9_4) - (Lc9_5*Lc9_5) - (Lc9_6*Lc9_6) - (Lc9_7*Lc9_7) - (Lc9_8*Lc9_8);
-    if (!isfinite(Lcd9)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd9 > 0.0F)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc9_9 = sqrtf(Lcd9);
-    const float Lci9 = (1.0F/Lc9_9);
-    const float Lc10_9 = Lci9*(P[100] - Lc10_0*Lc9_0 - Lc10_1*Lc9_1 - Lc10_2*Lc9_2 - Lc10_3*Lc9_3 - Lc10_4*Lc9_4 - Lc10_5*Lc9_5 - Lc10_6*Lc9_6 - Lc10_7*Lc9_7 - Lc10_8*Lc9_8);
-    const float Lc11_9 = Lci9*(P[101] - Lc11_0*Lc9_0 - Lc11_1*Lc9_1 - Lc11_2*Lc9_2 - Lc11_3*Lc9_3 - Lc11_4*Lc9_4 - Lc11_5*Lc9_5 - Lc11_6*Lc9_6 - Lc11_7*Lc9_7 - Lc11_8*Lc9_8);
-    const float Lc12_9 = Lci9*(P[102] - Lc12_0*Lc9_0 - Lc12_1*Lc9_1 - Lc12_2*Lc9_2 - Lc12_3*Lc9_3 - Lc12_4*Lc9_4 - Lc12_5*Lc9_5 - Lc12_6*Lc9_6 - Lc12_7*Lc9_7 - Lc12_8*Lc9_8);
-    const float Lc13_9 = Lci9*(P[103] - Lc13_0*Lc9_0 - Lc13_1*Lc9_1 - Lc13_2*Lc9_2 - Lc13_3*Lc9_3 - Lc13_4*Lc9_4 - Lc13_5*Lc9_5 - Lc13_6*Lc9_6 - Lc13_7*Lc9_7 - Lc13_8*Lc9_8);
-    const float Lc14_9 = Lci9*(P[104] - Lc14_0*Lc9_0 - Lc14_1*Lc9_1 - Lc14_2*Lc9_2 - Lc14_3*Lc9_3 - Lc14_4*Lc9_4 - Lc14_5*Lc9_5 - Lc14_6*Lc9_6 - Lc14_7*Lc9_7 - Lc14_8*Lc9_8);
-    const float Lcd10 = P[105] - (Lc10_0*Lc10_0) - (Lc10_1*Lc10_1) - (Lc10_2*Lc10_2) - (Lc10_3*Lc10_3) - (Lc10_4*Lc10_4) - (Lc10_5*Lc10_5) - (Lc10_6*Lc10_6) - (Lc10_7*Lc10_7) - (Lc10_8*Lc10_8) - (Lc10_9*Lc10_9);
-    if (!isfinite(Lcd10)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd10 > 0.0F)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc10_10 = sqrtf(Lcd10);
-    const float Lci10 = (1.0F/Lc10_10);
-    const float Lc11_10 = Lci10*(P[106] - Lc10_0*Lc11_0 - Lc10_1*Lc11_1 - Lc10_2*Lc11_2 - Lc10_3*Lc11_3 - Lc10_4*Lc11_4 - Lc10_5*Lc11_5 - Lc10_6*Lc11_6 - Lc10_7*Lc11_7 - Lc10_8*Lc11_8 - Lc10_9*Lc11_9);
-    const float Lc12_10 = Lci10*(P[107] - Lc10_0*Lc12_0 - Lc10_1*Lc12_1 - Lc10_2*Lc12_2 - Lc10_3*Lc12_3 - Lc10_4*Lc12_4 - Lc10_5*Lc12_5 - Lc10_6*Lc12_6 - Lc10_7*Lc12_7 - Lc10_8*Lc12_8 - Lc10_9*Lc12_9);
-    const float Lc13_10 = Lci10*(P[108] - Lc10_0*Lc13_0 - Lc10_1*Lc13_1 - Lc10_2*Lc13_2 - Lc10_3*Lc13_3 - Lc10_4*Lc13_4 - Lc10_5*Lc13_5 - Lc10_6*Lc13_6 - Lc10_7*Lc13_7 - Lc10_8*Lc13_8 - Lc10_9*Lc13_9);
-    const float Lc14_10 = Lci10*(P[109] - Lc10_0*Lc14_0 - Lc10_1*Lc14_1 - Lc10_2*Lc14_2 - Lc10_3*Lc14_3 - Lc10_4*Lc14_4 - Lc10_5*Lc14_5 - Lc10_6*Lc14_6 - Lc10_7*Lc14_7 - Lc10_8*Lc14_8 - Lc10_9*Lc14_9);
-    const float Lcd11 = P[110] - (Lc11_0*Lc11_0) - (Lc11_1*Lc11_1) - (Lc11_10*Lc11_10) - (Lc11_2*Lc11_2) - (Lc11_3*Lc11_3) - (Lc11_4*Lc11_4) - (Lc11_5*Lc11_5) - (Lc11_6*Lc11_6) - (Lc11_7*Lc11_7) - (Lc11_8*Lc11_8) - (Lc11_9*Lc11_9);
-    if (!isfinite(Lcd11)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd11 > 0.0F)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc11_11 = sqrtf(Lcd11);
-    const float Lci11 = (1.0F/Lc11_11);
-    const float Lc12_11 = Lci11*(P[111] - Lc11_0*Lc12_0 - Lc11_1*Lc12_1 - Lc11_10*Lc12_10 - Lc11_2*Lc12_2 - Lc11_3*Lc12_3 - Lc11_4*Lc12_4 - Lc11_5*Lc12_5 - Lc11_6*Lc12_6 - Lc11_7*Lc12_7 - Lc11_8*Lc12_8 - Lc11_9*Lc12_9);
-    const float Lc13_11 = Lci11*(P[112] - Lc11_0*Lc13_0 - Lc11_1*Lc13_1 - Lc11_10*Lc13_10 - Lc11_2*Lc13_2 - Lc11_3*Lc13_3 - Lc11_4*Lc13_4 - Lc11_5*Lc13_5 - Lc11_6*Lc13_6 - Lc11_7*Lc13_7 - Lc11_8*Lc13_8 - Lc11_9*Lc13_9);
-    const float Lc14_11 = Lci11*(P[113] - Lc11_0*Lc14_0 - Lc11_1*Lc14_1 - Lc11_10*Lc14_10 - Lc11_2*Lc14_2 - Lc11_3*Lc14_3 - Lc11_4*Lc14_4 - Lc11_5*Lc14_5 - Lc11_6*Lc14_6 - Lc11_7*Lc14_7 - Lc11_8*Lc14_8 - Lc11_9*Lc14_9);
-    const float Lcd12 = P[114] - (Lc12_0*Lc12_0) - (Lc12_1*Lc12_1) - (Lc12_10*Lc12_10) - (Lc12_11*Lc12_11) - (Lc12_2*Lc12_2) - (Lc12_3*Lc12_3) - (Lc12_4*Lc12_4) - (Lc12_5*Lc12_5) - (Lc12_6*Lc12_6) - (Lc12_7*Lc12_7) - (Lc12_8*Lc12_8) - (Lc12_9*Lc12_9);
-    if (!isfinite(Lcd12)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd12 > 0.0F)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc12_12 = sqrtf(Lcd12);
-    const float Lci12 = (1.0F/Lc12_12);
-    const float Lc13_12 = Lci12*(P[115] - Lc12_0*Lc13_0 - Lc12_1*Lc13_1 - Lc12_10*Lc13_10 - Lc12_11*Lc13_11 - Lc12_2*Lc13_2 - Lc12_3*Lc13_3 - Lc12_4*Lc13_4 - Lc12_5*Lc13_5 - Lc12_6*Lc13_6 - Lc12_7*Lc13_7 - Lc12_8*Lc13_8 - Lc12_9*Lc13_9);
-    const float Lc14_12 = Lci12*(P[116] - Lc12_0*Lc14_0 - Lc12_1*Lc14_1 - Lc12_10*Lc14_10 - Lc12_11*Lc14_11 - Lc12_2*Lc14_2 - Lc12_3*Lc14_3 - Lc12_4*Lc14_4 - Lc12_5*Lc14_5 - Lc12_6*Lc14_6 - Lc12_7*Lc14_7 - Lc12_8*Lc14_8 - Lc12_9*Lc14_9);
-    const float Lcd13 = P[117] - (Lc13_0*Lc13_0) - (Lc13_1*Lc13_1) - (Lc13_10*Lc13_10) - (Lc13_11*Lc13_11) - (Lc13_12*Lc13_12) - (Lc13_2*Lc13_2) - (Lc13_3*Lc13_3) - (Lc13_4*Lc13_4) - (Lc13_5*Lc13_5) - (Lc13_6*Lc13_6) - (Lc13_7*Lc13_7) - (Lc13_8*Lc13_8) - (Lc13_9*Lc13_9);
-    if (!isfinite(Lcd13)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd13 > 0.0F)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const float Lc13_13 = sqrtf(Lcd13);
-    const float Lci13 = (1.0F/Lc13_13);
-    const float Lc14_13 = Lci13*(P[118] - Lc13_0*Lc14_0 - Lc13_1*Lc14_1 - Lc13_10*Lc14_10 - Lc13_11*Lc14_11 - Lc13_12*Lc14_12 - Lc13_2*Lc14_2 - Lc13_3*Lc14_3 - Lc13_4*Lc14_4 - Lc13_5*Lc14_5 - Lc13_6*Lc14_6 - Lc13_7*Lc14_7 - Lc13_8*Lc14_8 - Lc13_9*Lc14_9);
-    const float Lcd14 = P[119] - (Lc14_0*Lc14_0) - (Lc14_1*Lc14_1) - (Lc14_10*Lc14_10) - (Lc14_11*Lc14_11) - (Lc14_12*Lc14_12) - (Lc14_13*Lc14_13) - (Lc14_2*Lc14_2) - (Lc14_3*Lc14_3) - (Lc14_4*Lc14_4) - (Lc14_5*Lc14_5) - (Lc14_6*Lc14_6) - (Lc14_7*Lc14_7) - (Lc14_8*Lc14_8) - (Lc14_9*Lc14_9);
-    if (!isfinite(Lcd14)) { return NAV_UKF_NON_FINITE; }
-    if (!(Lcd14 > 0.0F)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    return NAV_UKF_OK;
+    float L[120] = {0.0F};  /* written column by column before it is read */
+    return nav_ukf_cholesky(P, L);
 }
 
 /* Lf = the lower Cholesky factor of the packed covariance P (stored packed like P, entry (i, j)
    of L at the packed index of (j, i)); OK, or the refusal code when P is not positive definite.
-   Unrolled; one copy serves predict and every update. */
+   Loops; one copy serves predict and every update. */
 static int nav_ukf_factor(const float *P, float *Lf)
 {
-    const float Ld0 = P[0];
-    if (!isfinite(Ld0)) { return NAV_UKF_NON_FINITE; }
-    if (!(Ld0 > 0.0F)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const float L0_0 = sqrtf(Ld0);
-    const float Li0 = (1.0F/L0_0);
-    const float L1_0 = Li0*P[1];
-    const float L2_0 = Li0*P[2];
-    const float L3_0 = Li0*P[3];
-    const float L4_0 = Li0*P[4];
-    const float L5_0 = Li0*P[5];
-    const float L6_0 = Li0*P[6];
-    const float L7_0 = Li0*P[7];
-    const float L8_0 = Li0*P[8];
-    const float L9_0 = Li0*P[9];
-    const float L10_0 = Li0*P[10];
-    const float L11_0 = Li0*P[11];
-    const float L12_0 = Li0*P[12];
-    const float L13_0 = Li0*P[13];
-    const float L14_0 = Li0*P[14];
-    const float Ld1 = P[15] - (L1_0*L1_0);
-    if (!isfinite(Ld1)) { return NAV_UKF_NON_FINITE; }
-    if (!(Ld1 > 0.0F)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const float L1_1 = sqrtf(Ld1);
-    const float Li1 = (1.0F/L1_1);
-    const float L2_1 = Li1*(P[16] - L1_0*L2_0);
-    const float L3_1 = Li1*(P[17] - L1_0*L3_0);
-    const float L4_1 = Li1*(P[18] - L1_0*L4_0);
-    const float L5_1 = Li1*(P[19] - L1_0*L5_0);
-    const float L6_1 = Li1*(P[20] - L1_0*L6_0);
-    const float L7_1 = Li1*(P[21] - L1_0*L7_0);
-    const float L8_1 = Li1*(P[22] - L1_0*L8_0);
-    const float L9_1 = Li1*(P[23] - L1_0*L9_0);
-    const float L10_1 = Li1*(P[24] - L10_0*L1_0);
-    const float L11_1 = Li1*(P[25] - L11_0*L1_0);
-    const float L12_1 = Li1*(P[26] - L12_0*L1_0);
-    const float L13_1 = Li1*(P[27] - L13_0*L1_0);
-    const float L14_1 = Li1*(P[28] - L14_0*L1_0);
-    const float Ld2 = P[29] - (L2_0*L2_0) - (L2_1*L2_1);
-    if (!isfinite(Ld2)) { return NAV_UKF_NON_FINITE; }
-    if (!(Ld2 > 0.0F)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const float L2_2 = sqrtf(Ld2);
-    const float Li2 = (1.0F/L2_2);
-    const float L3_2 = Li2*(P[30] - L2_0*L3_0 - L2_1*L3_1);
-    const float L4_2 = Li2*(P[31] - L2_0*L4_0 - L2_1*L4_1);
-    const float L5_2 = Li2*(P[32] - L2_0*L5_0 - L2_1*L5_1);
-    const float L6_2 = Li2*(P[33] - L2_0*L6_0 - L2_1*L6_1);
-    const float L7_2 = Li2*(P[34] - L2_0*L7_0 - L2_1*L7_1);
-    const float L8_2 = Li2*(P[35] - L2_0*L8_0 - L2_1*L8_1);
-    const float L9_2 = Li2*(P[36] - L2_0*L9_0 - L2_1*L9_1);
-    const float L10_2 = Li2*(P[37] - L10_0*L2_0 - L10_1*L2_1);
-    const float L11_2 = Li2*(P[38] - L11_0*L2_0 - L11_1*L2_1);
-    const float L12_2 = Li2*(P[39] - L12_0*L2_0 - L12_1*L2_1);
-    const float L13_2 = Li2*(P[40] - L13_0*L2_0 - L13_1*L2_1);
-    const float L14_2 = Li2*(P[41] - L14_0*L2_0 - L14_1*L2_1);
-    const float Ld3 = P[42] - (L3_0*L3_0) - (L3_1*L3_1) - (L3_2*L3_2);
-    if (!isfinite(Ld3)) { return NAV_UKF_NON_FINITE; }
-    if (!(Ld3 > 0.0F)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const float L3_3 = sqrtf(Ld3);
-    const float Li3 = (1.0F/L3_3);
-    const float L4_3 = Li3*(P[43] - L3_0*L4_0 - L3_1*L4_1 - L3_2*L4_2);
-    const float L5_3 = Li3*(P[44] - L3_0*L5_0 - L3_1*L5_1 - L3_2*L5_2);
-    const float L6_3 = Li3*(P[45] - L3_0*L6_0 - L3_1*L6_1 - L3_2*L6_2);
-    const float L7_3 = Li3*(P[46] - L3_0*L7_0 - L3_1*L7_1 - L3_2*L7_2);
-    const float L8_3 = Li3*(P[47] - L3_0*L8_0 - L3_1*L8_1 - L3_2*L8_2);
-    const float L9_3 = Li3*(P[48] - L3_0*L9_0 - L3_1*L9_1 - L3_2*L9_2);
-    const float L10_3 = Li3*(P[49] - L10_0*L3_0 - L10_1*L3_1 - L10_2*L3_2);
-    const float L11_3 = Li3*(P[50] - L11_0*L3_0 - L11_1*L3_1 - L11_2*L3_2);
-    const float L12_3 = Li3*(P[51] - L12_0*L3_0 - L12_1*L3_1 - L12_2*L3_2);
-    const float L13_3 = Li3*(P[52] - L13_0*L3_0 - L13_1*L3_1 - L13_2*L3_2);
-    const float L14_3 = Li3*(P[53] - L14_0*L3_0 - L14_1*L3_1 - L14_2*L3_2);
-    const float Ld4 = P[54] - (L4_0*L4_0) - (L4_1*L4_1) - (L4_2*L4_2) - (L4_3*L4_3);
-    if (!isfinite(Ld4)) { return NAV_UKF_NON_FINITE; }
-    if (!(Ld4 > 0.0F)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const float L4_4 = sqrtf(Ld4);
-    const float Li4 = (1.0F/L4_4);
-    const float L5_4 = Li4*(P[55] - L4_0*L5_0 - L4_1*L5_1 - L4_2*L5_2 - L4_3*L5_3);
-    const float L6_4 = Li4*(P[56] - L4_0*L6_0 - L4_1*L6_1 - L4_2*L6_2 - L4_3*L6_3);
-    const float L7_4 = Li4*(P[57] - L4_0*L7_0 - L4_1*L7_1 - L4_2*L7_2 - L4_3*L7_3);
-    const float L8_4 = Li4*(P[58] - L4_0*L8_0 - L4_1*L8_1 - L4_2*L8_2 - L4_3*L8_3);
-    const float L9_4 = Li4*(P[59] - L4_0*L9_0 - L4_1*L9_1 - L4_2*L9_2 - L4_3*L9_3);
-    const float L10_4 = Li4*(P[60] - L10_0*L4_0 - L10_1*L4_1 - L10_2*L4_2 - L10_3*L4_3);
-    const float L11_4 = Li4*(P[61] - L11_0*L4_0 - L11_1*L4_1 - L11_2*L4_2 - L11_3*L4_3);
-    const float L12_4 = Li4*(P[62] - L12_0*L4_0 - L12_1*L4_1 - L12_2*L4_2 - L12_3*L4_3);
-    const float L13_4 = Li4*(P[63] - L13_0*L4_0 - L13_1*L4_1 - L13_2*L4_2 - L13_3*L4_3);
-    const float L14_4 = Li4*(P[64] - L14_0*L4_0 - L14_1*L4_1 - L14_2*L4_2 - L14_3*L4_3);
-    const float Ld5 = P[65] - (L5_0*L5_0) - (L5_1*L5_1) - (L5_2*L5_2) - (L5_3*L5_3) - (L5_4*L5_4);
-    if (!isfinite(Ld5)) { return NAV_UKF_NON_FINITE; }
-    if (!(Ld5 > 0.0F)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const float L5_5 = sqrtf(Ld5);
-    const float Li5 = (1.0F/L5_5);
-    const float L6_5 = Li5*(P[66] - L5_0*L6_0 - L5_1*L6_1 - L5_2*L6_2 - L5_3*L6_3 - L5_4*L6_4);
-    const float L7_5 = Li5*(P[67] - L5_0*L7_0 - L5_1*L7_1 - L5_2*L7_2 - L5_3*L7_3 - L5_4*L7_4);
-    const float L8_5 = Li5*(P[68] - L5_0*L8_0 - L5_1*L8_1 - L5_2*L8_2 - L5_3*L8_3 - L5_4*L8_4);
-    const float L9_5 = Li5*(P[69] - L5_0*L9_0 - L5_1*L9_1 - L5_2*L9_2 - L5_3*L9_3 - L5_4*L9_4);
-    const float L10_5 = Li5*(P[70] - L10_0*L5_0 - L10_1*L5_1 - L10_2*L5_2 - L10_3*L5_3 - L10_4*L5_4);
-    const float L11_5 = Li5*(P[71] - L11_0*L5_0 - L11_1*L5_1 - L11_2*L5_2 - L11_3*L5_3 - L11_4*L5_4);
-    const float L12_5 = Li5*(P[72] - L12_0*L5_0 - L12_1*L5_1 - L12_2*L5_2 - L12_3*L5_3 - L12_4*L5_4);
-    const float L13_5 = Li5*(P[73] - L13_0*L5_0 - L13_1*L5_1 - L13_2*L5_2 - L13_3*L5_3 - L13_4*L5_4);
-    const float L14_5 = Li5*(P[74] - L14_0*L5_0 - L14_1*L5_1 - L14_2*L5_2 - L14_3*L5_3 - L14_4*L5_4);
-    const float Ld6 = P[75] - (L6_0*L6_0) - (L6_1*L6_1) - (L6_2*L6_2) - (L6_3*L6_3) - (L6_4*L6_4) - (L6_5*L6_5);
-    if (!isfinite(Ld6)) { return NAV_UKF_NON_FINITE; }
-    if (!(Ld6 > 0.0F)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const float L6_6 = sqrtf(Ld6);
-    const float Li6 = (1.0F/L6_6);
-    const float L7_6 = Li6*(P[76] - L6_0*L7_0 - L6_1*L7_1 - L6_2*L7_2 - L6_3*L7_3 - L6_4*L7_4 - L6_5*L7_5);
-    const float L8_6 = Li6*(P[77] - L6_0*L8_0 - L6_1*L8_1 - L6_2*L8_2 - L6_3*L8_3 - L6_4*L8_4 - L6_5*L8_5);
-    const float L9_6 = Li6*(P[78] - L6_0*L9_0 - L6_1*L9_1 - L6_2*L9_2 - L6_3*L9_3 - L6_4*L9_4 - L6_5*L9_5);
-    const float L10_6 = Li6*(P[79] - L10_0*L6_0 - L10_1*L6_1 - L10_2*L6_2 - L10_3*L6_3 - L10_4*L6_4 - L10_5*L6_5);
-    const float L11_6 = Li6*(P[80] - L11_0*L6_0 - L11_1*L6_1 - L11_2*L6_2 - L11_3*L6_3 - L11_4*L6_4 - L11_5*L6_5);
-    const float L12_6 = Li6*(P[81] - L12_0*L6_0 - L12_1*L6_1 - L12_2*L6_2 - L12_3*L6_3 - L12_4*L6_4 - L12_5*L6_5);
-    const float L13_6 = Li6*(P[82] - L13_0*L6_0 - L13_1*L6_1 - L13_2*L6_2 - L13_3*L6_3 - L13_4*L6_4 - L13_5*L6_5);
-    const float L14_6 = Li6*(P[83] - L14_0*L6_0 - L14_1*L6_1 - L14_2*L6_2 - L14_3*L6_3 - L14_4*L6_4 - L14_5*L6_5);
-    const float Ld7 = P[84] - (L7_0*L7_0) - (L7_1*L7_1) - (L7_2*L7_2) - (L7_3*L7_3) - (L7_4*L7_4) - (L7_5*L7_5) - (L7_6*L7_6);
-    if (!isfinite(Ld7)) { return NAV_UKF_NON_FINITE; }
-    if (!(Ld7 > 0.0F)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const float L7_7 = sqrtf(Ld7);
-    const float Li7 = (1.0F/L7_7);
-    const float L8_7 = Li7*(P[85] - L7_0*L8_0 - L7_1*L8_1 - L7_2*L8_2 - L7_3*L8_3 - L7_4*L8_4 - L7_5*L8_5 - L7_6*L8_6);
-    const float L9_7 = Li7*(P[86] - L7_0*L9_0 - L7_1*L9_1 - L7_2*L9_2 - L7_3*L9_3 - L7_4*L9_4 - L7_5*L9_5 - L7_6*L9_6);
-    const float L10_7 = Li7*(P[87] - L10_0*L7_0 - L10_1*L7_1 - L10_2*L7_2 - L10_3*L7_3 - L10_4*L7_4 - L10_5*L7_5 - L10_6*L7_6);
-    const float L11_7 = Li7*(P[88] - L11_0*L7_0 - L11_1*L7_1 - L11_2*L7_2 - L11_3*L7_3 - L11_4*L7_4 - L11_5*L7_5 - L11_6*L7_6);
-    const float L12_7 = Li7*(P[89] - L12_0*L7_0 - L12_1*L7_1 - L12_2*L7_2 - L12_3*L7_3 - L12_4*L7_4 - L12_5*L7_5 - L12_6*L7_6);
-    const float L13_7 = Li7*(P[90] - L13_0*L7_0 - L13_1*L7_1 - L13_2*L7_2 - L13_3*L7_3 - L13_4*L7_4 - L13_5*L7_5 - L13_6*L7_6);
-    const float L14_7 = Li7*(P[91] - L14_0*L7_0 - L14_1*L7_1 - L14_2*L7_2 - L14_3*L7_3 - L14_4*L7_4 - L14_5*L7_5 - L14_6*L7_6);
-    const float Ld8 = P[92] - (L8_0*L8_0) - (L8_1*L8_1) - (L8_2*L8_2) - (L8_3*L8_3) - (L8_4*L8_4) - (L8_5*L8_5) - (L8_6*L8_6) - (L8_7*L8_7);
-    if (!isfinite(Ld8)) { return NAV_UKF_NON_FINITE; }
-    if (!(Ld8 > 0.0F)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const float L8_8 = sqrtf(Ld8);
-    const float Li8 = (1.0F/L8_8);
-    const float L9_8 = Li8*(P[93] - L8_0*L9_0 - L8_1*L9_1 - L8_2*L9_2 - L8_3*L9_3 - L8_4*L9_4 - L8_5*L9_5 - L8_6*L9_6 - L8_7*L9_7);
-    const float L10_8 = Li8*(P[94] - L10_0*L8_0 - L10_1*L8_1 - L10_2*L8_2 - L10_3*L8_3 - L10_4*L8_4 - L10_5*L8_5 - L10_6*L8_6 - L10_7*L8_7);
-    const float L11_8 = Li8*(P[95] - L11_0*L8_0 - L11_1*L8_1 - L11_2*L8_2 - L11_3*L8_3 - L11_4*L8_4 - L11_5*L8_5 - L11_6*L8_6 - L11_7*L8_7);
-    const float L12_8 = Li8*(P[96] - L12_0*L8_0 - L12_1*L8_1 - L12_2*L8_2 - L12_3*L8_3 - L12_4*L8_4 - L12_5*L8_5 - L12_6*L8_6 - L12_7*L8_7);
-    const float L13_8 = Li8*(P[97] - L13_0*L8_0 - L13_1*L8_1 - L13_2*L8_2 - L13_3*L8_3 - L13_4*L8_4 - L13_5*L8_5 - L13_6*L8_6 - L13_7*L8_7);
-    const float L14_8 = Li8*(P[98] - L14_0*L8_0 - L14_1*L8_1 - L14_2*L8_2 - L14_3*L8_3 - L14_4*L8_4 - L14_5*L8_5 - L14_6*L8_6 - L14_7*L8_7);
-    const float Ld9 = P[99] - (L9_0*L9_0) - (L9_1*L9_1) - (L9_2*L9_2) - (L9_3*L9_3) - (L9_4*L9_4) - (L9_5*L9_5) - (L9_6*L9_6) - (L9_7*L9_7) - (L9_8*L9_8);
-    if (!isfinite(Ld9)) { return NAV_UKF_NON_FINITE; }
-    if (!(Ld9 > 0.0F)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const float L9_9 = sqrtf(Ld9);
-    const float Li9 = (1.0F/L9_9);
-    const float L10_9 = Li9*(P[100] - L10_0*L9_0 - L10_1*L9_1 - L10_2*L9_2 - L10_3*L9_3 - L10_4*L9_4 - L10_5*L9_5 - L10_6*L9_6 - L10_7*L9_7 - L10_8*L9_8);
-    const float L11_9 = Li9*(P[101] - L11_0*L9_0 - L11_1*L9_1 - L11_2*L9_2 - L11_3*L9_3 - L11_4*L9_4 - L11_5*L9_5 - L11_6*L9_6 - L11_7*L9_7 - L11_8*L9_8);
-    const float L12_9 = Li9*(P[102] - L12_0*L9_0 - L12_1*L9_1 - L12_2*L9_2 - L12_3*L9_3 - L12_4*L9_4 - L12_5*L9_5 - L12_6*L9_6 - L12_7*L9_7 - L12_8*L9_8);
-    const float L13_9 = Li9*(P[103] - L13_0*L9_0 - L13_1*L9_1 - L13_2*L9_2 - L13_3*L9_3 - L13_4*L9_4 - L13_5*L9_5 - L13_6*L9_6 - L13_7*L9_7 - L13_8*L9_8);
-    const float L14_9 = Li9*(P[104] - L14_0*L9_0 - L14_1*L9_1 - L14_2*L9_2 - L14_3*L9_3 - L14_4*L9_4 - L14_5*L9_5 - L14_6*L9_6 - L14_7*L9_7 - L14_8*L9_8);
-    const float Ld10 = P[105] - (L10_0*L10_0) - (L10_1*L10_1) - (L10_2*L10_2) - (L10_3*L10_3) - (L10_4*L10_4) - (L10_5*L10_5) - (L10_6*L10_6) - (L10_7*L10_7) - (L10_8*L10_8) - (L10_9*L10_9);
-    if (!isfinite(Ld10)) { return NAV_UKF_NON_FINITE; }
-    if (!(Ld10 > 0.0F)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const float L10_10 = sqrtf(Ld10);
-    const float Li10 = (1.0F/L10_10);
-    const float L11_10 = Li10*(P[106] - L10_0*L11_0 - L10_1*L11_1 - L10_2*L11_2 - L10_3*L11_3 - L10_4*L11_4 - L10_5*L11_5 - L10_6*L11_6 - L10_7*L11_7 - L10_8*L11_8 - L10_9*L11_9);
-    const float L12_10 = Li10*(P[107] - L10_0*L12_0 - L10_1*L12_1 - L10_2*L12_2 - L10_3*L12_3 - L10_4*L12_4 - L10_5*L12_5 - L10_6*L12_6 - L10_7*L12_7 - L10_8*L12_8 - L10_9*L12_9);
-    const float L13_10 = Li10*(P[108] - L10_0*L13_0 - L10_1*L13_1 - L10_2*L13_2 - L10_3*L13_3 - L10_4*L13_4 - L10_5*L13_5 - L10_6*L13_6 - L10_7*L13_7 - L10_8*L13_8 - L10_9*L13_9);
-    const float L14_10 = Li10*(P[109] - L10_0*L14_0 - L10_1*L14_1 - L10_2*L14_2 - L10_3*L14_3 - L10_4*L14_4 - L10_5*L14_5 - L10_6*L14_6 - L10_7*L14_7 - L10_8*L14_8 - L10_9*L14_9);
-    const float Ld11 = P[110] - (L11_0*L11_0) - (L11_1*L11_1) - (L11_10*L11_10) - (L11_2*L11_2) - (L11_3*L11_3) - (L11_4*L11_4) - (L11_5*L11_5) - (L11_6*L11_6) - (L11_7*L11_7) - (L11_8*L11_8) - (L11_9*L11_9);
-    if (!isfinite(Ld11)) { return NAV_UKF_NON_FINITE; }
-    if (!(Ld11 > 0.0F)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const float L11_11 = sqrtf(Ld11);
-    const float Li11 = (1.0F/L11_11);
-    const float L12_11 = Li11*(P[111] - L11_0*L12_0 - L11_1*L12_1 - L11_10*L12_10 - L11_2*L12_2 - L11_3*L12_3 - L11_4*L12_4 - L11_5*L12_5 - L11_6*L12_6 - L11_7*L12_7 - L11_8*L12_8 - L11_9*L12_9);
-    const float L13_11 = Li11*(P[112] - L11_0*L13_0 - L11_1*L13_1 - L11_10*L13_10 - L11_2*L13_2 - L11_3*L13_3 - L11_4*L13_4 - L11_5*L13_5 - L11_6*L13_6 - L11_7*L13_7 - L11_8*L13_8 - L11_9*L13_9);
-    const float L14_11 = Li11*(P[113] - L11_0*L14_0 - L11_1*L14_1 - L11_10*L14_10 - L11_2*L14_2 - L11_3*L14_3 - L11_4*L14_4 - L11_5*L14_5 - L11_6*L14_6 - L11_7*L14_7 - L11_8*L14_8 - L11_9*L14_9);
-    const float Ld12 = P[114] - (L12_0*L12_0) - (L12_1*L12_1) - (L12_10*L12_10) - (L12_11*L12_11) - (L12_2*L12_2) - (L12_3*L12_3) - (L12_4*L12_4) - (L12_5*L12_5) - (L12_6*L12_6) - (L12_7*L12_7) - (L12_8*L12_8) - (L12_9*L12_9);
-    if (!isfinite(Ld12)) { return NAV_UKF_NON_FINITE; }
-    if (!(Ld12 > 0.0F)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const float L12_12 = sqrtf(Ld12);
-    const float Li12 = (1.0F/L12_12);
-    const float L13_12 = Li12*(P[115] - L12_0*L13_0 - L12_1*L13_1 - L12_10*L13_10 - L12_11*L13_11 - L12_2*L13_2 - L12_3*L13_3 - L12_4*L13_4 - L12_5*L13_5 - L12_6*L13_6 - L12_7*L13_7 - L12_8*L13_8 - L12_9*L13_9);
-    const float L14_12 = Li12*(P[116] - L12_0*L14_0 - L12_1*L14_1 - L12_10*L14_10 - L12_11*L14_11 - L12_2*L14_2 - L12_3*L14_3 - L12_4*L14_4 - L12_5*L14_5 - L12_6*L14_6 - L12_7*L14_7 - L12_8*L14_8 - L12_9*L14_9);
-    const float Ld13 = P[117] - (L13_0*L13_0) - (L13_1*L13_1) - (L13_10*L13_10) - (L13_11*L13_11) - (L13_12*L13_12) - (L13_2*L13_2) - (L13_3*L13_3) - (L13_4*L13_4) - (L13_5*L13_5) - (L13_6*L13_6) - (L13_7*L13_7) - (L13_8*L13_8) - (L13_9*L13_9);
-    if (!isfinite(Ld13)) { return NAV_UKF_NON_FINITE; }
-    if (!(Ld13 > 0.0F)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const float L13_13 = sqrtf(Ld13);
-    const float Li13 = (1.0F/L13_13);
-    const float L14_13 = Li13*(P[118] - L13_0*L14_0 - L13_1*L14_1 - L13_10*L14_10 - L13_11*L14_11 - L13_12*L14_12 - L13_2*L14_2 - L13_3*L14_3 - L13_4*L14_4 - L13_5*L14_5 - L13_6*L14_6 - L13_7*L14_7 - L13_8*L14_8 - L13_9*L14_9);
-    const float Ld14 = P[119] - (L14_0*L14_0) - (L14_1*L14_1) - (L14_10*L14_10) - (L14_11*L14_11) - (L14_12*L14_12) - (L14_13*L14_13) - (L14_2*L14_2) - (L14_3*L14_3) - (L14_4*L14_4) - (L14_5*L14_5) - (L14_6*L14_6) - (L14_7*L14_7) - (L14_8*L14_8) - (L14_9*L14_9);
-    if (!isfinite(Ld14)) { return NAV_UKF_NON_FINITE; }
-    if (!(Ld14 > 0.0F)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const float L14_14 = sqrtf(Ld14);
-    Lf[0] = L0_0;
-    Lf[1] = L1_0;
-    Lf[2] = L2_0;
-    Lf[3] = L3_0;
-    Lf[4] = L4_0;
-    Lf[5] = L5_0;
-    Lf[6] = L6_0;
-    Lf[7] = L7_0;
-    Lf[8] = L8_0;
-    Lf[9] = L9_0;
-    Lf[10] = L10_0;
-    Lf[11] = L11_0;
-    Lf[12] = L12_0;
-    Lf[13] = L13_0;
-    Lf[14] = L14_0;
-    Lf[15] = L1_1;
-    Lf[16] = L2_1;
-    Lf[17] = L3_1;
-    Lf[18] = L4_1;
-    Lf[19] = L5_1;
-    Lf[20] = L6_1;
-    Lf[21] = L7_1;
-    Lf[22] = L8_1;
-    Lf[23] = L9_1;
-    Lf[24] = L10_1;
-    Lf[25] = L11_1;
-    Lf[26] = L12_1;
-    Lf[27] = L13_1;
-    Lf[28] = L14_1;
-    Lf[29] = L2_2;
-    Lf[30] = L3_2;
-    Lf[31] = L4_2;
-    Lf[32] = L5_2;
-    Lf[33] = L6_2;
-    Lf[34] = L7_2;
-    Lf[35] = L8_2;
-    Lf[36] = L9_2;
-    Lf[37] = L10_2;
-    Lf[38] = L11_2;
-    Lf[39] = L12_2;
-    Lf[40] = L13_2;
-    Lf[41] = L14_2;
-    Lf[42] = L3_3;
-    Lf[43] = L4_3;
-    Lf[44] = L5_3;
-    Lf[45] = L6_3;
-    Lf[46] = L7_3;
-    Lf[47] = L8_3;
-    Lf[48] = L9_3;
-    Lf[49] = L10_3;
-    Lf[50] = L11_3;
-    Lf[51] = L12_3;
-    Lf[52] = L13_3;
-    Lf[53] = L14_3;
-    Lf[54] = L4_4;
-    Lf[55] = L5_4;
-    Lf[56] = L6_4;
-    Lf[57] = L7_4;
-    Lf[58] = L8_4;
-    Lf[59] = L9_4;
-    Lf[60] = L10_4;
-    Lf[61] = L11_4;
-    Lf[62] = L12_4;
-    Lf[63] = L13_4;
-    Lf[64] = L14_4;
-    Lf[65] = L5_5;
-    Lf[66] = L6_5;
-    Lf[67] = L7_5;
-    Lf[68] = L8_5;
-    Lf[69] = L9_5;
-    Lf[70] = L10_5;
-    Lf[71] = L11_5;
-    Lf[72] = L12_5;
-    Lf[73] = L13_5;
-    Lf[74] = L14_5;
-    Lf[75] = L6_6;
-    Lf[76] = L7_6;
-    Lf[77] = L8_6;
-    Lf[78] = L9_6;
-    Lf[79] = L10_6;
-    Lf[80] = L11_6;
-    Lf[81] = L12_6;
-    Lf[82] = L13_6;
-    Lf[83] = L14_6;
-    Lf[84] = L7_7;
-    Lf[85] = L8_7;
-    Lf[86] = L9_7;
-    Lf[87] = L10_7;
-    Lf[88] = L11_7;
-    Lf[89] = L12_7;
-    Lf[90] = L13_7;
-    Lf[91] = L14_7;
-    Lf[92] = L8_8;
-    Lf[93] = L9_8;
-    Lf[94] = L10_8;
-    Lf[95] = L11_8;
-    Lf[96] = L12_8;
-    Lf[97] = L13_8;
-    Lf[98] = L14_8;
-    Lf[99] = L9_9;
-    Lf[100] = L10_9;
-    Lf[101] = L11_9;
-    Lf[102] = L12_9;
-    Lf[103] = L13_9;
-    Lf[104] = L14_9;
-    Lf[105] = L10_10;
-    Lf[106] = L11_10;
-    Lf[107] = L12_10;
-    Lf[108] = L13_10;
-    Lf[109] = L14_10;
-    Lf[110] = L11_11;
-    Lf[111] = L12_11;
-    Lf[112] = L13_11;
-    Lf[113] = L14_11;
-    Lf[114] = L12_12;
-    Lf[115] = L13_12;
-    Lf[116] = L14_12;
-    Lf[117] = L13_13;
-    Lf[118] = L14_13;
-    Lf[119] = L14_14;
-    return NAV_UKF_OK;
+    return nav_ukf_cholesky(P, Lf);
 }
 
 void nav_ukf_init(nav_ukf_t *s)
