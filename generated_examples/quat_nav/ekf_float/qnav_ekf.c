@@ -34,16 +34,16 @@ static size_t qnav_ekf_pku(size_t r, size_t c)
    (--optimize speed: see the header). A non-finite entry of P always reaches a pivot. */
 static int qnav_ekf_cholesky(const float *P, float *L)
 {
+    float A[15][15];  /* the factor, row by row: the inner products run along rows */
     size_t i;
     size_t j;
     size_t k;
     for (j = 0u; j < 15u; ++j) {
-        const size_t jj = qnav_ekf_pku(j, j);
-        float d = P[jj];
+        const size_t q = qnav_ekf_pku(j, j);  /* P(j, i) = P[q + i - j] for i >= j */
+        float d = P[q];
         float inv;
         for (k = 0u; k < j; ++k) {
-            const float l = L[qnav_ekf_pku(k, j)];
-            d -= l * l;
+            d -= A[j][k] * A[j][k];
         }
         if (!isfinite(d)) {
             return QNAV_EKF_NON_FINITE;
@@ -51,14 +51,20 @@ static int qnav_ekf_cholesky(const float *P, float *L)
         if (!(d > 0.0F)) {
             return QNAV_EKF_NOT_POSITIVE_DEFINITE;
         }
-        L[jj] = sqrtf(d);
-        inv = 1.0F / L[jj];
+        A[j][j] = sqrtf(d);
+        inv = 1.0F / A[j][j];
         for (i = j + 1u; i < 15u; ++i) {
-            float e = P[qnav_ekf_pku(j, i)];
+            float e = P[q + (i - j)];
             for (k = 0u; k < j; ++k) {
-                e -= L[qnav_ekf_pku(k, i)] * L[qnav_ekf_pku(k, j)];
+                e -= A[i][k] * A[j][k];
             }
-            L[qnav_ekf_pku(j, i)] = e * inv;
+            A[i][j] = e * inv;
+        }
+    }
+    for (j = 0u; j < 15u; ++j) {
+        const size_t q = qnav_ekf_pku(j, j);
+        for (i = j; i < 15u; ++i) {
+            L[q + (i - j)] = A[i][j];
         }
     }
     return QNAV_EKF_OK;
@@ -69,7 +75,7 @@ static int qnav_ekf_cholesky(const float *P, float *L)
    set_state and every commit that factorizes. */
 static int qnav_ekf_commit_pd(const float *P)
 {
-    float L[120] = {0.0F};  /* written column by column before it is read */
+    float L[120];
     return qnav_ekf_cholesky(P, L);
 }
 
