@@ -101,9 +101,10 @@ def _split_names(names: Union[str, Sequence[str]]) -> List[str]:
     return [str(n) for n in names]
 
 
-#: What a unit string may hold: it is printed as given into comments of the generated header,
+#: What a unit string may hold: it is printed as given into comments of the generated header
+#: (inner spaces allowed, as in "kg m^2", when units are given as a list),
 #: so it must not be able to end or open a comment, and it must stay short.
-UNIT_PATTERN = re.compile(r"^[A-Za-z0-9^._%()/*+-]{1,24}$")
+UNIT_PATTERN = re.compile(r"^[A-Za-z0-9^._%()/*+-](?:[A-Za-z0-9 ^._%()/*+-]{0,22}[A-Za-z0-9^._%()/*+-])?$")
 
 
 def unit_problem(unit: str) -> Optional[str]:
