@@ -3,9 +3,10 @@
 Each page gets a fresh folder holding the files its snippets name (the example models under the
 names the pages use). Then, block by block:
 
-* ``sh``: run by bash with ``set -e`` (so every command must succeed). Installation lines are
-  the only lines changed: ``apt-get install X`` becomes a check that X's program is installed,
-  and ``pip install estgen`` is left out (the tests run the checkout: .ci/run installs it).
+* ``sh``: run by bash with ``set -e`` (so every command must succeed). Lines changed:
+  ``apt-get install X`` becomes a check that X's program is installed; ``pip install`` is left
+  out (the tests run the checkout: .ci/run installs it); ``python -m pytest -q`` (this suite)
+  becomes a check that .ci/run runs it; Monte Carlo runs are shortened (``--runs 4``).
 * ``python``: the page's Python blocks run in order in one interpreter (later blocks use what
   earlier ones defined).
 * ``c``: compiled with the contract's strict flags against the generated header it includes
@@ -73,7 +74,7 @@ STRICT = ["-std=c99", "-Wall", "-Wextra", "-Wpedantic", "-Wconversion", "-Wdoubl
 
 def pages() -> List[Path]:
     root = Path(ROOT)
-    return [root / "docs" / "ci.md", root / "docs" / "build.md"]
+    return [root / "README.md"] + sorted((root / "docs").glob("*.md"))
 
 
 def blocks(page: Path) -> List[Tuple[str, str, int]]:
@@ -222,3 +223,31 @@ def test_the_harness_sees_the_blocks():
     assert _shell("sudo apt-get install -y gcc cmake\npython3 -m pip install estgen\nestgen --version\n") == (
         "command -v gcc >/dev/null\ncommand -v cmake >/dev/null\n"
         ": estgen is installed from the checkout  # python3 -m pip install estgen\nestgen --version\n")
+
+
+def _slug(heading: str) -> str:
+    """GitHub's anchor for a heading: lower case, punctuation dropped, spaces to hyphens."""
+    text = re.sub(r"[^\w\- ]", "", heading.strip().lower())
+    return text.replace(" ", "-")
+
+
+def test_links_between_pages_resolve():
+    """Every relative link of README.md and docs/*.md names a file that exists and, with a
+    #fragment, a heading of that file (the pages were split; a stale anchor is easy to leave)."""
+    bad = []
+    for page in pages():
+        text = page.read_text(encoding="utf-8")
+        text = re.sub(r"```.*?```", "", text, flags=re.S)  # not inside code blocks
+        for target in re.findall(r"\]\(([^)\s]+)\)", text):
+            if re.match(r"^[a-z]+:", target):
+                continue
+            path, _, frag = target.partition("#")
+            dest = (page.parent / path).resolve() if path else page
+            if not dest.exists():
+                bad.append(f"{page.name}: {target} (no such file)")
+                continue
+            if frag and dest.suffix == ".md":
+                heads = [_slug(h) for h in re.findall(r"^#+ (.*)$", dest.read_text(encoding="utf-8"), re.M)]
+                if frag not in heads:
+                    bad.append(f"{page.name}: {target} (no such heading)")
+    assert not bad, "\n".join(bad)
