@@ -560,7 +560,7 @@ def _compact_predict(em: Emitter, ctx: Dict[str, Any], compact: Any) -> List[str
     """The predict's lines in the compact form: f, F, G, Q as before, then P' = F P F' + G Qw G' + Q
     as loops over F's non-zeros (static const row starts and columns, a local value array)."""
     pre, fnz, noise, tail = compact
-    ne, prefix = ctx["ne"], ctx["prefix"]
+    ne = ctx["ne"]
     starts = [0] * (ne + 1)
     for i, _, _ in fnz:
         starts[i + 1] += 1
@@ -568,7 +568,6 @@ def _compact_predict(em: Emitter, ctx: Dict[str, Any], compact: Any) -> List[str
         starts[i + 1] += starts[i]
     nnz = len(fnz)
     real, zero = em.real, em.lit(0.0)
-    pku = f"{prefix}_pku"
     out = em.lines(with_sections(pre, EKF_PREDICT_SECTIONS))
     out += [
         "/* P' = F P F' + G Qw G' + Q: the noise terms straight-line, then loops over F's non-zeros",
@@ -578,30 +577,39 @@ def _compact_predict(em: Emitter, ctx: Dict[str, Any], compact: Any) -> List[str
         f"    static const uint16_t Fc[{nnz}] = {{{', '.join(f'{k}u' for _, k, _ in fnz)}}};",
         f"    const {real} Fv[{nnz}] = {{{', '.join(em.expr(e) for _, _, e in fnz)}}};",
         f"    {real} arow[{ne}];",
+        f"    {real} Pf[{ne}][{ne}];  /* P unpacked: the products run along its rows */",
         "    size_t ci;",
         "    size_t cj;",
         "    size_t ck;",
         "    size_t cp;",
+        "    size_t q = 0u;",
+        f"    for (ci = 0u; ci < {ne}u; ++ci) {{",
+        f"        for (cj = ci; cj < {ne}u; ++cj) {{",
+        "            Pf[ci][cj] = P[q];",
+        "            Pf[cj][ci] = P[q];",
+        "            ++q;",
+        "        }",
+        "    }",
         "    memset(Pn, 0, sizeof Pn);",
     ]
     out += ["    " + line for line in em.lines(noise)]
     out += [
+        "    q = 0u;",
         f"    for (ci = 0u; ci < {ne}u; ++ci) {{",
         f"        for (ck = 0u; ck < {ne}u; ++ck) {{",
         f"            {real} acc = {zero};",
         f"            for (cp = Fr[ci]; cp < Fr[ci + 1u] && cp < {nnz}u; ++cp) {{",
-        "                const size_t col = Fc[cp];",
-        f"                acc += Fv[cp] * P[(col <= ck) ? {pku}(col, ck) : {pku}(ck, col)];",
+        "                acc += Fv[cp] * Pf[Fc[cp]][ck];",
         "            }",
         "            arow[ck] = acc;",
         "        }",
         f"        for (cj = ci; cj < {ne}u; ++cj) {{",
-        f"            const size_t q = {pku}(ci, cj);",
         f"            {real} acc = Pn[q];",
         f"            for (cp = Fr[cj]; cp < Fr[cj + 1u] && cp < {nnz}u; ++cp) {{",
         "                acc += arow[Fc[cp]] * Fv[cp];",
         "            }",
         "            Pn[q] = acc;",
+        "            ++q;",
         "        }",
         "    }",
         "}",
@@ -653,7 +661,6 @@ def generate_ekf(spec: ModelSpec, setup: "FilterSetup") -> Generated:
         forms["predict"] = size_forms(setup.common.optimize, spec.ne) or (fill > DENSE_F_FILL and spec.ne >= DENSE_F_MIN_N)
     if forms["predict"]:
         p_lines = _compact_predict(em, ctx, code.predict.compact)
-        forms["pku"] = True
     ctx["predict"] = {"lines": p_lines, "uses_par": code.predict.uses_par,
                       "uses_u": code.predict.uses_u, "cert": []}
     if setup.common.commit_check == "subtractive":
