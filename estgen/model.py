@@ -583,21 +583,25 @@ def load_model(path: Union[str, os.PathLike]) -> ModelSpec:
     Raises :class:`ModelError` (file, line, what to fix) for any problem in the file.
     """
     path = os.fspath(path)
+    # Every message names a line (contract: the path as given, then ':LINE:'); a problem with
+    # the file as a whole is reported at its first line.
     if not os.path.isfile(path):
-        raise ModelError("model file not found", Where(path))
+        raise ModelError("model file not found", Where(path, 1))
     try:
-        with open(path, "r", encoding="utf-8") as fh:
-            text = fh.read()
+        with open(path, "rb") as fb:
+            raw = fb.read()
+        text = raw.decode("utf-8")
     except UnicodeDecodeError as err:
-        raise ModelError(f"the model file is not UTF-8 text (byte {err.start}); save it as UTF-8", Where(path)) from None
+        raise ModelError(f"the model file is not UTF-8 text (byte {err.start}); save it as UTF-8",
+                         Where(path, raw.count(b"\n", 0, err.start) + 1)) from None
     except OSError as err:
-        raise ModelError(f"cannot read the model file: {err.strerror or err}", Where(path)) from None
+        raise ModelError(f"cannot read the model file: {err.strerror or err}", Where(path, 1)) from None
     try:
         code = compile(text, path, "exec")
     except SyntaxError as err:
-        raise ModelError(f"syntax error: {err.msg}", Where(path, err.lineno)) from None
+        raise ModelError(f"syntax error: {err.msg}", Where(path, err.lineno or 1)) from None
     except ValueError as err:  # e.g. NUL bytes in the source
-        raise ModelError(f"the model file cannot be compiled: {_short(err)}", Where(path)) from None
+        raise ModelError(f"the model file cannot be compiled: {_short(err)}", Where(path, 1)) from None
     namespace: Dict[str, Any] = {"__name__": "estgen_model", "__file__": os.path.abspath(path)}
     model_dir = os.path.dirname(os.path.abspath(path))
     sys.path.insert(0, model_dir)
@@ -613,12 +617,13 @@ def load_model(path: Union[str, os.PathLike]) -> ModelSpec:
         if sys.path and sys.path[0] == model_dir:
             sys.path.pop(0)
     model = namespace.get("model")
-    if model is None:
+    if model is None:  # reported at the file's last line, where the declaration belongs
         raise ModelError("no variable named 'model'; end the file with model = Model(\"name\") and its declarations",
-                         Where(path))
+                         Where(path, max(1, len(text.rstrip().splitlines()))))
     if not isinstance(model, Model):
-        raise ModelError(f"'model' is a {type(model).__name__}, not an estgen.Model; "
-                         f"assign model = Model(\"name\") and declare on it", Where(path))
+        kind = type(model).__name__
+        raise ModelError(f"'model' is {'an' if kind[0] in 'aeiou' else 'a'} {kind}, not an estgen.Model; "
+                         f"assign model = Model(\"name\") and declare on it", Where(path, _assigned_line(text, "model")))
     model.source = path
     spec = validate(model)
     local = _local_files(sys.modules[name] for name in set(sys.modules) - before)
@@ -667,9 +672,19 @@ def _short(err: BaseException, limit: int = 160) -> str:
     return line if len(line) <= limit else line[: limit - 3] + "..."
 
 
+def _assigned_line(text: str, name: str) -> int:
+    """The last line of a module's source that assigns ``name`` (1 when none is found)."""
+    import ast
+
+    lines = [node.lineno for node in ast.walk(ast.parse(text))
+             if isinstance(node, ast.Name) and node.id == name and isinstance(node.ctx, ast.Store)]
+    return max(lines, default=1)
+
+
 def _user_frame(err: BaseException, path: str) -> Where:
-    """The deepest traceback entry in the model file itself."""
-    best = Where(path)
+    """The deepest traceback entry in the model file itself (its first line when the error
+    came from outside it, e.g. an import of a missing module's dependency)."""
+    best = Where(path, 1)
     ap = os.path.abspath(path)
     for fs in traceback.extract_tb(err.__traceback__):
         if os.path.abspath(fs.filename) == ap:

@@ -98,7 +98,7 @@ class Truth:
                 fx = self._scalar_f()(*x, *u, *(w if w is not None else ()))
             except (OverflowError, ValueError, ZeroDivisionError) as err:
                 raise ModelError(f"the simulated truth left the model's domain at step {step} "
-                                 f"(t = {step * self.dt:g}): {err}") from None
+                                 f"(t = {step * self.dt:g}): {err}", self.spec.where.get("process")) from None
             xn = np.asarray(fx, dtype=float).reshape(self.spec.n)
         else:
             xn = self.fn.f(np.asarray(x, dtype=float), np.asarray(u, dtype=float), self.dt, self.p, w)
@@ -107,7 +107,7 @@ class Truth:
             xn[self.angles] = wrap_angle(xn[self.angles])
         if not np.all(np.isfinite(xn)):
             raise ModelError(f"the simulated truth became non-finite at step {step} (t = {step * self.dt:g}); "
-                             "check the model's dynamics and the input profile")
+                             "check the model's dynamics and the input profile", self.spec.where.get("process"))
         return xn
 
     def measure(self, sensor: str, X: np.ndarray, r: np.ndarray, v: Optional[np.ndarray]) -> np.ndarray:

@@ -23,12 +23,13 @@ HERE = os.path.dirname(os.path.abspath(__file__))
 BAD = os.path.join(HERE, "bad_models")
 REPO = os.path.dirname(HERE)
 
-# file, expected line (None: the problem has no single line), fragments (what is wrong, what
+# file, expected line (contract section 9: every message about a model file starts with the
+# path as given, then ':LINE:'; a file without `model` is reported at its last line), fragments (what is wrong, what
 # to do), and whether the refusal comes from check_filter_support(spec, "ekf") after loading.
 CASES: Tuple[Tuple[str, Optional[int], Tuple[str, ...], bool], ...] = (
     ("syntax_error.py", 6, ("syntax error", "does not match"), False),
-    ("no_model.py", None, ("no variable named 'model'", "model = Model("), False),
-    ("model_not_model.py", None, ("is a dict, not an estgen.Model", "assign model = Model("), False),
+    ("no_model.py", 6, ("no variable named 'model'", "model = Model("), False),
+    ("model_not_model.py", 4, ("is a dict, not an estgen.Model", "assign model = Model("), False),
     ("user_exception.py", 6, ("raised ZeroDivisionError", "fix the line"), False),
     ("sys_exit.py", 7, ("raised SystemExit", "fix the line"), False),
     ("undeclared_in_f.py", 7, ("process() uses 'ambient', never declared", "model.param()"), False),
@@ -146,15 +147,12 @@ def test_bad_model_is_refused_clearly(fname: str, line: Optional[int], fragments
     assert 1 <= len(lines) <= 4, text
     head = lines[0]
     given = os.path.join(BAD, fname)  # messages start with the path as the caller gave it
-    if line is None:
-        assert head.startswith(f"{given}: error: "), text
-    else:
-        assert head.startswith(f"{given}:{line}: error: "), text
-        assert err.where is not None and err.where.line == line
-        # The offending source line is quoted under the message.
-        with open(os.path.join(BAD, fname), encoding="utf-8") as fh:
-            src = fh.read().splitlines()[line - 1].strip()
-        assert lines[1].strip() == src, text
+    assert head.startswith(f"{given}:{line}: error: "), text
+    assert err.where is not None and err.where.line == line
+    # The offending source line is quoted under the message.
+    with open(os.path.join(BAD, fname), encoding="utf-8") as fh:
+        src = fh.read().splitlines()[line - 1].strip()
+    assert lines[1].strip() == src, text
     for frag in fragments:
         assert frag in text, f"{frag!r} not in {text!r}"
     assert "Traceback" not in text
@@ -232,10 +230,16 @@ def test_unreadable_model_files(tmp_path) -> None:
     latin.write_bytes(b"model = 1  # caf\xe9\n")
     with pytest.raises(estgen.ModelError) as info:
         estgen.load_model(str(latin))
-    assert str(info.value).startswith(f"{latin}: error: ") and "UTF-8" in str(info.value)
+    # the line of the first byte that is not UTF-8 (the file's first line, ending at byte 17)
+    assert str(info.value).startswith(f"{latin}:1: error: ") and "UTF-8" in str(info.value)
+    second = tmp_path / "second.py"
+    second.write_bytes(b"import sympy\nmodel = 1  # caf\xe9\n")
+    with pytest.raises(estgen.ModelError) as info:
+        estgen.load_model(str(second))
+    assert str(info.value).startswith(f"{second}:2: error: "), str(info.value)
     with pytest.raises(estgen.ModelError) as info:
         estgen.load_model(str(tmp_path / "absent.py"))
-    assert "not found" in str(info.value) and "absent.py" in str(info.value)
+    assert str(info.value).startswith(f"{tmp_path / 'absent.py'}:1: error: model file not found"), str(info.value)
     res = _run_cli("generate", str(latin), "-o", str(tmp_path / "out"))
     assert res.returncode == 2 and "Traceback" not in res.stderr and "UTF-8" in res.stderr
 
@@ -269,3 +273,49 @@ def test_input_profile_failing_later_names_its_line(tmp_path) -> None:
     assert text.startswith(f"{path}:12: error: scenario inputs(10) raised IndexError"), text
     res = _run_cli("simulate", str(path), "--filter", "ekf", "--runs", "2", "--steps", "30", "--seed", "1")
     assert res.returncode == 2 and "Traceback" not in res.stderr and "late.py:12" in res.stderr
+
+
+_SQRT_DRAIN = '''import sympy as sp
+from estgen import Model
+
+model = Model("drain")
+(lvl,) = model.states("lvl")
+model.process([lvl - model.dt * 5.0 * sp.sqrt(lvl)])
+model.process_noise([1e-4])
+model.sensor("gauge", [lvl], noise=[1.0])
+model.initial([1.0], [[0.5]])
+model.scenario(dt=0.5)
+'''
+
+
+@pytest.mark.parametrize("text,line,fragment", [
+    ("", 1, "no variable named 'model'"),
+    ("import sympy\n\nx = 1\n", 3, "no variable named 'model'"),
+    ("model = 3\n", 1, "'model' is an int"),
+])
+def test_file_level_problems_name_a_line(tmp_path, text: str, line: int, fragment: str) -> None:
+    # Contract section 9: a message about a model file begins with the path as the user gave it
+    # (here relative to the working directory), then ':LINE:'.
+    (tmp_path / "sub").mkdir()
+    (tmp_path / "sub" / "m.py").write_text(text)
+    env = dict(os.environ, PYTHONPATH=REPO + os.pathsep + os.environ.get("PYTHONPATH", ""))
+    res = subprocess.run([sys.executable, "-m", "estgen", "generate", os.path.join("sub", "m.py"), "-o", "out"],
+                         capture_output=True, text=True, env=env, cwd=tmp_path, timeout=120)
+    assert res.returncode == 2, res.stderr
+    assert res.stderr.startswith(f"{os.path.join('sub', 'm.py')}:{line}: error: "), res.stderr
+    assert fragment in res.stderr and "Traceback" not in res.stderr
+
+
+def test_truth_leaving_the_domain_names_the_process_line(tmp_path) -> None:
+    # x - 5 dt sqrt(x) from x = 1 with dt = 0.5 goes negative at the first step and sqrt of a
+    # negative number is not real (common practice): the simulated truth stops, and the message
+    # points at process() in the model file rather than at no line at all.
+    path = tmp_path / "drain.py"
+    path.write_text(_SQRT_DRAIN)
+    env = dict(os.environ, PYTHONPATH=REPO + os.pathsep + os.environ.get("PYTHONPATH", ""))
+    for cmd in (["verify", "drain.py"], ["simulate", "drain.py", "--runs", "2", "--steps", "10"]):
+        res = subprocess.run([sys.executable, "-m", "estgen", *cmd], capture_output=True, text=True, env=env,
+                             cwd=tmp_path, timeout=300)
+        assert res.returncode == 2, res.stderr
+        assert res.stderr.startswith("drain.py:6: error: the simulated truth"), res.stderr
+        assert "Traceback" not in res.stderr
