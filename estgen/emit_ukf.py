@@ -5,19 +5,34 @@ EKF (:mod:`estgen.emit`), so both filters have the same interface and status cod
 
 from __future__ import annotations
 
-from typing import TYPE_CHECKING, Any, Dict, List
+from typing import TYPE_CHECKING, Any, Dict, List, Tuple
 
 from .derive import with_sections
 from .derive_ukf import UKF_PREDICT_SECTIONS, UKF_UPDATE_SECTIONS, UkfWeights, derive_ukf
 from .derive_ukf_att import derive_ukf_attitude
-from .emit import Emitter, Generated, OpCount, _common_context, _render, gate_split
+from .emit import COMPACT_MIN_N, Emitter, Generated, OpCount, _common_context, _render, gate_split
+from .emit_ukf_loop import loop_functions, loop_predict, loop_update
 from .model import ModelSpec
 from .unrolled import factor_function
 
 if TYPE_CHECKING:
     from .filters import FilterSetup
 
-__all__ = ["generate_ukf"]
+__all__ = ["generate_ukf", "uses_loop_form"]
+
+#: --optimize size: the UKF's loop form from this many states (the straight-line transform is the
+#: smaller one below it, as for the other compact forms)
+UKF_LOOP_SIZE_MIN_N = COMPACT_MIN_N
+#: --optimize speed: the loop form from this many states (measured: docs/performance.md)
+UKF_LOOP_SPEED_MIN_N = 16
+
+
+def uses_loop_form(spec: ModelSpec, optimize: str) -> bool:
+    """True when the UKF of ``spec`` is generated in the loop form (:mod:`estgen.emit_ukf_loop`)
+    under ``--optimize optimize``. Models with attitudes keep the straight-line transform."""
+    if spec.attitudes:
+        return False
+    return spec.n >= (UKF_LOOP_SIZE_MIN_N if optimize == "size" else UKF_LOOP_SPEED_MIN_N)
 
 
 def _augmented_note(spec: ModelSpec, wts: UkfWeights, em: Emitter) -> List[str]:
@@ -46,6 +61,8 @@ def generate_ukf(spec: ModelSpec, setup: "FilterSetup", wts: UkfWeights) -> Gene
     ``sigma_stack`` = {"predict": bytes, "update": bytes}, the named locals the header states.
     """
     ctx = _common_context(spec, setup)
+    if uses_loop_form(spec, setup.common.optimize):
+        return _generate_loop(spec, setup, wts, ctx)
     em: Emitter = ctx["emitter"]
     precision = setup.precision
     code = derive_ukf_attitude(spec, wts) if spec.attitudes else derive_ukf(spec, wts)
@@ -79,22 +96,76 @@ def generate_ukf(spec: ModelSpec, setup: "FilterSetup", wts: UkfWeights) -> Gene
         decls = sum(1 for st in uc.stmts if st.kind == "decl")
         u_bytes = max(u_bytes, _stack_bytes(decls, n + 2 * np_ + uc.m + 1 + uc.angle_scratch, size_real))
         ups.append({**sctx, "lines": body, "rest": after, "uses_par": uc.uses_par, "ea": uc.angle_scratch})
-    ctx["updates"] = ups
-    ctx["ops"] = ops
-    ctx["weights"] = {"wm0": em.lit(wts.wm0), "wm": em.lit(wts.w), "wc0": em.lit(wts.wc0),
-                      "gamma": em.lit(wts.gamma), "alpha": em.lit(wts.alpha), "beta": em.lit(wts.beta),
-                      "kappa": em.lit(wts.kappa), "lam": em.lit(wts.lam)}
-    ctx["memory_note"] = [
+    where = [
         f"Sigma points: 2n+1 = {2 * ne + 1}, never stored as arrays. Their offsets gamma*L, their images",
         "and deviations are const locals of predict and update (straight-line code), so they live",
         f"on the stack of those calls: the named locals total {p_bytes} bytes in predict and {u_bytes} bytes",
         "in the largest update. The real frame depends on the compiler (registers hold many, spills",
         "add some): measure it on the target, e.g. gcc -fstack-usage.",
-        f"Weights: Wm0 = {ctx['weights']['wm0']}, Wc0 = {ctx['weights']['wc0']}, "
-        f"Wm_i = Wc_i = {ctx['weights']['wm']} (i = 1..{2 * ne});",
-        f"alpha = {ctx['weights']['alpha']}, beta = {ctx['weights']['beta']}, kappa = {ctx['weights']['kappa']}.",
+    ]
+    return _finish(ctx, spec, wts, ups, ops, where, (p_bytes, u_bytes), [])
+
+
+def _weights_context(em: Emitter, wts: UkfWeights) -> Dict[str, str]:
+    return {"wm0": em.lit(wts.wm0), "wm": em.lit(wts.w), "wc0": em.lit(wts.wc0), "gamma": em.lit(wts.gamma),
+            "alpha": em.lit(wts.alpha), "beta": em.lit(wts.beta), "kappa": em.lit(wts.kappa), "lam": em.lit(wts.lam)}
+
+
+def _generate_loop(spec: ModelSpec, setup: "FilterSetup", wts: UkfWeights, ctx: Dict[str, Any]) -> Generated:
+    """The loop form (:mod:`estgen.emit_ukf_loop`): static f and h, loops over the sigma points."""
+    em: Emitter = ctx["emitter"]
+    size_real = 4 if setup.precision == "float" else 8
+    n, np_ = ctx["n"], ctx["np"]
+    ctx["compact"]["chol"] = ctx["compact"]["pku"] = True
+    fns = loop_functions(spec, em)
+    fc = OpCount()
+    em.lines(factor_function(n), fc)  # the loop factorization does the same arithmetic
+    ctx["factor"] = []
+    ops: Dict[str, Dict[str, int]] = {}
+    lp = loop_predict(spec, em, ctx, wts, fns)
+    pc = OpCount()
+    pc += lp.ops
+    pc += fc
+    pc += OpCount(**ctx["commit_ops"][ctx["commit_fns"]["predict"]])
+    ops["predict"] = pc.as_dict()
+    p_bytes = _stack_bytes(0, n + 2 * np_, size_real) + lp.stack_bytes
+    ctx["predict"] = {"lines": lp.lines, "uses_par": lp.uses_par, "uses_u": spec.nu > 0, "ea": 0}
+    ups: List[Dict[str, Any]] = []
+    u_bytes = 0
+    for s, sctx in zip(spec.sensors, ctx["sensors"]):
+        lu = loop_update(spec, s, em, ctx, wts, fns)
+        oc = OpCount()
+        oc += lu.ops
+        oc += fc
+        oc += OpCount(**ctx["commit_ops"][ctx["commit_fns"]["update"]])
+        ops[f"update_{s.name}"] = oc.as_dict()
+        u_bytes = max(u_bytes, _stack_bytes(0, n + 2 * np_ + s.m + 1, size_real) + lu.stack_bytes)
+        ups.append({**sctx, "lines": lu.lines, "rest": lu.rest, "uses_par": lu.uses_par, "ea": 0})
+    where = [
+        f"Sigma points: 2n+1 = {2 * n + 1} (loop form, --optimize {setup.common.optimize}): built one at a time",
+        "from x and a column of the Cholesky factor, passed through the static model function, and",
+        "their images kept in a local array (n or m rows of 2N+1) with the factor and the sums: the",
+        f"named locals total {p_bytes} bytes in predict and {u_bytes} bytes in the largest update. The real",
+        "frame depends on the compiler: measure it on the target, e.g. gcc -fstack-usage.",
+    ]
+    return _finish(ctx, spec, wts, ups, ops, where, (p_bytes, u_bytes), [fns["f"]] + [fns[s.name] for s in spec.sensors])
+
+
+def _finish(ctx: Dict[str, Any], spec: ModelSpec, wts: UkfWeights, ups: List[Dict[str, Any]],
+            ops: Dict[str, Dict[str, int]], where: List[str], stack: Tuple[int, int],
+            loop_fns: List[Dict[str, Any]]) -> Generated:
+    """Render either form: ``where`` says where the sigma points live, ``stack`` the named bytes
+    of predict and of the largest update, ``loop_fns`` the loop form's static model functions."""
+    em: Emitter = ctx["emitter"]
+    ctx["updates"] = ups
+    ctx["ops"] = ops
+    ctx["loop_fns"] = loop_fns
+    w = ctx["weights"] = _weights_context(em, wts)
+    ctx["memory_note"] = where + [
+        f"Weights: Wm0 = {w['wm0']}, Wc0 = {w['wc0']}, Wm_i = Wc_i = {w['wm']} (i = 1..{2 * ctx['ne']});",
+        f"alpha = {w['alpha']}, beta = {w['beta']}, kappa = {w['kappa']}.",
     ] + _augmented_note(spec, wts, em)
-    ctx["sigma_stack"] = {"predict": p_bytes, "update": u_bytes}
+    ctx["sigma_stack"] = {"predict": stack[0], "update": stack[1]}
     gen = _render(ctx)
     gen.sigma_stack = dict(ctx["sigma_stack"])  # type: ignore[attr-defined]
     return gen

@@ -1,0 +1,402 @@
+"""The UKF's loop form (``--optimize``; see docs/performance.md, "Speed and size").
+
+The straight-line form (:mod:`estgen.derive_ukf`) writes the unscented transform out for every
+sigma point, which makes its flash grow as about n^3. Here the same algorithm, exactly the
+reference's (:class:`estgen.reference.ReferenceUKF`), runs as loops with constant bounds:
+
+* the model's f (and each sensor's h) is one static function, one sigma point in, one image
+  out, its subexpressions shared by ``sympy.cse``; with noise symbols it takes the augmented
+  point [x; w] (or [x; v]);
+* one loop over the 2N+1 sigma points ``x``, ``x +- gamma L_i`` builds each point from a column
+  of the Cholesky factor (the loop factorization ``<prefix>_cholesky``) or of the noise factor A
+  and keeps its image in a local array, one row per component;
+* the weighted mean (circular for angles), the deviations about it (wrapped for angles), the
+  packed covariance, the cross covariance ``C = sum_i Wc_i dX_i dZ_i'`` (``dX_i`` is the scaled
+  column itself, so only the state columns enter) and the update tail (factor of S, NIS, gain,
+  ``P - K S K'`` as ``P - B B'`` with ``B = C Ls^-T``) are loops.
+
+Q, R and the noise factor are printed once per call, at the mean (as in the straight-line form).
+Models with attitudes keep the straight-line error-space transform.
+"""
+
+from __future__ import annotations
+
+from typing import Any, Dict, List, Sequence, Tuple
+
+import sympy as sp
+
+from .derive import angle_wraps, c_names, model_block, packed_index, packed_size
+from .derive_ukf import UkfWeights
+from .emit import Emitter, OpCount
+from .model import ModelSpec, SensorSpec, noise_factor
+
+__all__ = ["loop_functions", "loop_predict", "loop_update", "LoopCode"]
+
+
+class LoopCode:
+    """Lines of one call in the loop form, with its estimated operation count and the bytes of
+    its named local arrays (the header states them)."""
+
+    def __init__(self, lines: List[str], rest: List[str], ops: OpCount, stack_bytes: int, uses_par: bool) -> None:
+        self.lines = lines
+        self.rest = rest
+        self.ops = ops
+        self.stack_bytes = stack_bytes
+        self.uses_par = uses_par
+
+
+def _uses(stmts: Sequence[Any], prefix: str) -> bool:
+    return any(str(s).startswith(prefix) for st in stmts for s in st.expr.free_symbols)
+
+
+def _model_function(em: Emitter, name: str, outputs: List[Tuple[str, str, sp.Expr]], out: str,
+                    with_u: bool) -> Dict[str, Any]:
+    """One static model function: its parameter list, body lines and the ops of one call."""
+    stmts, _ = model_block(outputs)
+    oc = OpCount()
+    lines = em.lines(stmts, oc)
+    real = em.real
+    params = [f"const {real} *x"]
+    args = ["xa"]
+    if with_u and _uses(stmts, "u["):
+        params.append(f"const {real} *u")
+        args.append("u")
+    if with_u and _uses(stmts, "dt"):
+        params.append(f"{real} dt")
+        args.append("dt")
+    par = _uses(stmts, "par->")
+    if par:
+        params.append(f"const {em.prefix}_par_t *par")
+        args.append("par")
+    params.append(f"{real} *{out}")
+    if not _uses(stmts, "x["):
+        lines.insert(0, "(void)x;")
+    return {"name": name, "params": ", ".join(params), "args": ", ".join(args), "lines": lines,
+            "ops": oc, "uses_par": par}
+
+
+def loop_functions(spec: ModelSpec, em: Emitter) -> Dict[str, Dict[str, Any]]:
+    """The static f (key "f") and h of every sensor (key = sensor name), over the augmented point."""
+    n = spec.n
+    names = c_names(spec, "x")
+    fnames = dict(names)
+    fnames.update({w: sp.Symbol(f"x[{n + k}]") for k, w in enumerate(spec.w_syms)})
+    out = {"f": _model_function(em, "f", [("assign", f"xn[{i}]", spec.f[i].xreplace(fnames)) for i in range(n)],
+                                "xn", True)}
+    out["f"]["doc"] = ("f at one sigma point: x = [x; w] (" + str(n + spec.nw) + " reals), xn = its image")
+    for s in spec.sensors:
+        hnames = dict(names)
+        hnames.update({v: sp.Symbol(f"x[{n + k}]") for k, v in enumerate(s.v)})
+        fn = _model_function(em, f"h_{s.name}", [("assign", f"zh[{k}]", s.h[k].xreplace(hnames))
+                                                 for k in range(s.m)], "zh", False)
+        fn["doc"] = f"h of sensor {s.name} at one sigma point: x = [x; v] ({n + s.nv} reals), zh = its image"
+        out[s.name] = fn
+    return out
+
+
+def _noise_block(em: Emitter, spec: ModelSpec, cov: sp.Matrix, tag: str) -> Tuple[List[str], OpCount, bool]:
+    """An[r][k] = the noise factor A (A A' = cov, lower), evaluated at the mean."""
+    names = c_names(spec, "x")
+    A = noise_factor(cov)
+    k = cov.shape[0]
+    outs = [("assign", f"An[{r}][{c}]", A[r, c].xreplace(names)) for r in range(k) for c in range(r + 1)]
+    stmts, _ = model_block(outs, tag)
+    oc = OpCount()
+    return em.lines(stmts, oc), oc, _uses(stmts, "par->")
+
+
+def _add_block(em: Emitter, spec: ModelSpec, entries: List[Tuple[str, sp.Expr]], tag: str
+               ) -> Tuple[List[str], OpCount, bool]:
+    """target = target + expr for every non-zero expr (Q or R added to a sum)."""
+    names = c_names(spec, "x")
+    outs = [("assign", t, sp.Symbol(t) + e.xreplace(names)) for t, e in entries if e != 0]
+    stmts, _ = model_block(outs, tag)
+    oc = OpCount()
+    return em.lines(stmts, oc), oc, _uses(stmts, "par->")
+
+
+def _indent(lines: List[str], depth: int = 1) -> List[str]:
+    return ["    " * depth + line for line in lines]
+
+
+def _sigma_loop(em: Emitter, ctx: Dict[str, Any], n: int, nw: int, wts: UkfWeights, fn: Dict[str, Any],
+                img: str, out: str, m: int) -> List[str]:
+    """The loop over the 2N+1 sigma points of [x; noise]: point i in xa, its image through ``fn``
+    in ``out``, copied into column i of ``img`` (m rows)."""
+    prefix, real = ctx["prefix"], em.real
+    na = n + nw
+    ns = 2 * na + 1
+    g = em.lit(wts.gamma)
+    lines = [
+        f"for (i = 0u; i < {ns}u; ++i) {{",
+        f"    memcpy(xa, x, {n}u * sizeof xa[0]);",
+    ]
+    if nw:
+        lines += [f"    for (r = {n}u; r < {na}u; ++r) {{", f"        xa[r] = {em.lit(0.0)};", "    }"]
+    col = [
+        f"const {real} *lc = &Lf[{prefix}_pku(c, c)];  /* column c of L, rows c..{n - 1} */",
+        f"for (r = c; r < {n}u; ++r) {{",
+        "    xa[r] += g * lc[r - c];",
+        "}",
+    ]
+    lines += [
+        "    if (i > 0u) {",
+        f"        const size_t c = (i - 1u) % {na}u;",
+        f"        const {real} g = (i <= {na}u) ? {g} : -{g};",
+    ]
+    if nw:
+        lines += [f"        if (c < {n}u) {{"] + _indent(col, 3) + ["        } else {",
+                  f"            for (r = c; r < {na}u; ++r) {{  /* column c - {n} of A */",
+                  f"                xa[r] += g * An[r - {n}u][c - {n}u];",
+                  "            }", "        }"]
+    else:
+        lines += _indent(col, 2)
+    lines += [
+        "    }",
+        f"    {prefix}_{fn['name']}({fn['args']}, {out});",
+        f"    for (a = 0u; a < {m}u; ++a) {{",
+        f"        {img}[a][i] = {out}[a];",
+        "    }",
+        "}",
+    ]
+    return lines
+
+
+def _mean_and_deviations(em: Emitter, ctx: Dict[str, Any], img: str, mean: str, m: int, ns: int,
+                         wts: UkfWeights, angles: Sequence[bool]) -> List[str]:
+    """mean = Wm0 Y0 + Wi sum Yi (circular for angles), then Y -= mean in place (wrapped)."""
+    prefix, real, fs = ctx["prefix"], em.real, ctx["fsuf"]
+    zero = em.lit(0.0)
+    wm0, wi = em.lit(wts.wm0), em.lit(wts.w)
+    lines = [
+        f"for (a = 0u; a < {m}u; ++a) {{",
+        f"    {real} acc = {zero};",
+        f"    for (i = 1u; i < {ns}u; ++i) {{",
+        f"        acc += {img}[a][i];",
+        "    }",
+        f"    {mean}[a] = {wm0} * {img}[a][0] + {wi} * acc;",
+        "}",
+    ]
+    for k, ang in enumerate(angles):
+        if not ang:
+            continue
+        lines += [
+            f"{{   /* component {k} is an angle: circular mean */",
+            f"    {real} ss = {zero};",
+            f"    {real} cs = {zero};",
+            f"    for (i = 1u; i < {ns}u; ++i) {{",
+            f"        ss += sin{fs}({img}[{k}u][i]);",
+            f"        cs += cos{fs}({img}[{k}u][i]);",
+            "    }",
+            f"    {mean}[{k}] = {prefix}_wrap(atan2{fs}({wm0} * sin{fs}({img}[{k}u][0]) + {wi} * ss, "
+            f"{wm0} * cos{fs}({img}[{k}u][0]) + {wi} * cs));",
+            "}",
+        ]
+    lines += [
+        f"for (a = 0u; a < {m}u; ++a) {{",
+        f"    for (i = 0u; i < {ns}u; ++i) {{",
+        f"        {img}[a][i] -= {mean}[a];",
+        "    }",
+        "}",
+    ]
+    for k, ang in enumerate(angles):
+        if ang:
+            lines += [f"for (i = 0u; i < {ns}u; ++i) {{", f"    {img}[{k}u][i] = {prefix}_wrap({img}[{k}u][i]);", "}"]
+    return lines
+
+
+def _sum_ops(m: int, ns: int, n_angles: int, mp: int) -> OpCount:
+    """Operations of the mean, deviation and covariance loops (m components, ns sigma points)."""
+    return OpCount(add=m * ns + m * ns + mp * ns + n_angles * (2 * ns + 2), mul=2 * m + mp * (ns + 2) + 4 * n_angles,
+                   transcendental=n_angles * (2 * ns + 2 + ns))
+
+
+def loop_predict(spec: ModelSpec, em: Emitter, ctx: Dict[str, Any], wts: UkfWeights,
+                 fns: Dict[str, Dict[str, Any]]) -> LoopCode:
+    """The predict's lines in the loop form (placed after the factorization of P into Lf)."""
+    n, nw = spec.n, spec.nw
+    na = n + nw
+    aug = UkfWeights(na, wts.alpha, wts.beta, wts.kappa)
+    ns = 2 * na + 1
+    real = em.real
+    f = fns["f"]
+    lines = [
+        "/* loop form: the 2N+1 sigma points through the static f, one at a time; their images in Yt */",
+        "{",
+        f"    {real} Yt[{n}][{ns}];  /* image of sigma point i, component a, at Yt[a][i] */",
+        f"    {real} xa[{na}];  /* the sigma point [x; w] */" if nw else f"    {real} xa[{na}];  /* the sigma point */",
+        f"    {real} yv[{n}];",
+    ]
+    ops = OpCount()
+    uses_par = f["uses_par"]
+    if nw:
+        lines.append(f"    {real} An[{nw}][{nw}];  /* noise factor: A A' = Qw */")
+    lines += ["    size_t i;", "    size_t a;", "    size_t b;", "    size_t r;", "    size_t q = 0u;"]
+    if nw:
+        nl, oc, par = _noise_block(em, spec, spec.Qw, "qa")
+        lines += _indent(nl)
+        ops += oc
+        uses_par = uses_par or par
+    lines += _indent(_sigma_loop(em, ctx, n, nw, aug, f, "Yt", "yv", n))
+    ops += f["ops"].scaled(ns)
+    ops += OpCount(add=ns * n // 2 + ns * n, mul=ns * n // 2)
+    lines.append("    /* weighted mean (circular for angle states), deviations about it (wrapped) */")
+    lines += _indent(_mean_and_deviations(em, ctx, "Yt", "xn", n, ns, aug, spec.angle_states))
+    np_ = packed_size(n)
+    ops += _sum_ops(n, ns, sum(spec.angle_states), np_)
+    lines += [
+        "    /* P' = Wc0 d0 d0' + Wi sum_i di di' + Q, packed upper triangle */",
+        f"    for (a = 0u; a < {n}u; ++a) {{",
+        f"        for (b = a; b < {n}u; ++b) {{",
+        f"            {real} acc = {em.lit(0.0)};",
+        f"            for (i = 1u; i < {ns}u; ++i) {{",
+        "                acc += Yt[a][i] * Yt[b][i];",
+        "            }",
+        f"            Pn[q] = {em.lit(aug.wc0)} * Yt[a][0] * Yt[b][0] + {em.lit(aug.w)} * acc;",
+        "            ++q;",
+        "        }",
+        "    }",
+    ]
+    ql, oc, par = _add_block(em, spec, [(f"Pn[{packed_index(i, j, n)}]", spec.Q[i, j]) for i in range(n)
+                                        for j in range(i, n)], "qq")
+    lines += _indent(ql) + ["}"]
+    ops += oc
+    uses_par = uses_par or par
+    stack = (n * ns + na + n + nw * nw) * (4 if real == "float" else 8)
+    return LoopCode(lines, [], ops, stack, uses_par)
+
+
+def loop_update(spec: ModelSpec, sensor: SensorSpec, em: Emitter, ctx: Dict[str, Any], wts: UkfWeights,
+                fns: Dict[str, Dict[str, Any]]) -> LoopCode:
+    """An update's lines in the loop form: through the NIS (``lines``) and after the gate (``rest``)."""
+    n, nv, m = spec.n, sensor.nv, sensor.m
+    na = n + nv
+    aug = UkfWeights(na, wts.alpha, wts.beta, wts.kappa)
+    ns = 2 * na + 1
+    real, zero, one = em.real, em.lit(0.0), em.lit(1.0)
+    prefix, upper, fs = ctx["prefix"], em.upper, ctx["fsuf"]
+    h = fns[sensor.name]
+    uses_par = h["uses_par"]
+    ops = OpCount()
+    lines = [
+        "/* loop form: the 2N+1 sigma points through the static h, one at a time; their images in Zt */",
+        f"{real} Zt[{m}][{ns}];  /* image of sigma point i, component a, at Zt[a][i] */",
+        f"{real} xa[{na}];  /* the sigma point [x; v] */" if nv else f"{real} xa[{na}];  /* the sigma point */",
+        f"{real} zv[{m}];",
+        f"{real} zm[{m}];  /* predicted measurement */",
+        f"{real} Sv[{m}][{m}];  /* innovation covariance S (lower triangle) */",
+        f"{real} Ls[{m}][{m}];  /* its Cholesky factor */",
+        f"{real} Lsi[{m}];  /* 1 / Ls[k][k] */",
+        f"{real} bv[{m}];  /* Ls^-1 y */",
+        f"{real} Cx[{n}][{m}];  /* cross covariance C = cov(x, z), then B = C Ls^-T in place */",
+    ]
+    if nv:
+        lines.append(f"{real} An[{nv}][{nv}];  /* noise factor: A A' = Rv */")
+    lines += ["size_t i;", "size_t a;", "size_t b;", "size_t r;", "size_t k;", "size_t q;"]
+    if nv:
+        nl, oc, par = _noise_block(em, spec, sensor.Rv, "ra")
+        lines += nl
+        ops += oc
+        uses_par = uses_par or par
+    lines += _sigma_loop(em, ctx, n, nv, aug, h, "Zt", "zv", m)
+    ops += h["ops"].scaled(ns)
+    lines.append("/* weighted mean (circular for angle components), deviations about it (wrapped) */")
+    lines += _mean_and_deviations(em, ctx, "Zt", "zm", m, ns, aug, sensor.angles)
+    mp = packed_size(m)
+    ops += _sum_ops(m, ns, sum(sensor.angles), mp)
+    for k in range(m):
+        if sensor.angles[k]:
+            lines.append(f"y[{k}] = {prefix}_wrap(z[{k}] - zm[{k}]);")
+        else:
+            lines.append(f"y[{k}] = z[{k}] - zm[{k}];")
+    lines += [
+        "/* S = Wc0 d0 d0' + Wi sum_i di di' + R */",
+        f"for (a = 0u; a < {m}u; ++a) {{",
+        "    for (b = 0u; b <= a; ++b) {",
+        f"        {real} acc = {zero};",
+        f"        for (i = 1u; i < {ns}u; ++i) {{",
+        "            acc += Zt[a][i] * Zt[b][i];",
+        "        }",
+        f"        Sv[a][b] = {em.lit(aug.wc0)} * Zt[a][0] * Zt[b][0] + {em.lit(aug.w)} * acc;",
+        "    }",
+        "}",
+    ]
+    rl, oc, par = _add_block(em, spec, [(f"Sv[{j}][{i}]", sensor.R[i, j]) for i in range(m) for j in range(i, m)],
+                             "rr")
+    lines += rl
+    ops += oc
+    uses_par = uses_par or par
+    lines += [
+        "/* C = sum_i Wc_i dX_i dZ_i': dX of the pair i is +-gamma column i of L (zero for noise columns) */",
+        f"for (a = 0u; a < {n}u; ++a) {{",
+        f"    for (k = 0u; k < {m}u; ++k) {{",
+        f"        {real} acc = {zero};",
+        "        for (i = 0u; i <= a; ++i) {",
+        f"            acc += Lf[{prefix}_pku(i, a)] * (Zt[k][i + 1u] - Zt[k][i + {na + 1}u]);",
+        "        }",
+        f"        Cx[a][k] = {em.lit(aug.w * aug.gamma)} * acc;",
+        "    }",
+        "}",
+        "/* factor S = Ls Ls' (pivots checked) */",
+        f"for (b = 0u; b < {m}u; ++b) {{",
+        f"    {real} d = Sv[b][b];",
+        "    for (k = 0u; k < b; ++k) {",
+        "        d -= Ls[b][k] * Ls[b][k];",
+        "    }",
+        "    if (!isfinite(d)) {",
+        f"        return {upper}_NON_FINITE;",
+        "    }",
+        f"    if (!(d > {zero})) {{",
+        f"        return {upper}_NOT_POSITIVE_DEFINITE;",
+        "    }",
+        f"    Ls[b][b] = sqrt{fs}(d);",
+        f"    Lsi[b] = {one} / Ls[b][b];",
+        f"    for (a = b + 1u; a < {m}u; ++a) {{",
+        f"        {real} e = Sv[a][b];",
+        "        for (k = 0u; k < b; ++k) {",
+        "            e -= Ls[a][k] * Ls[b][k];",
+        "        }",
+        "        Ls[a][b] = e * Lsi[b];",
+        "    }",
+        "}",
+        "/* NIS = y' S^-1 y = b' b with b = Ls^-1 y */",
+        f"nis = {zero};",
+        f"for (a = 0u; a < {m}u; ++a) {{",
+        f"    {real} e = y[a];",
+        "    for (k = 0u; k < a; ++k) {",
+        "        e -= Ls[a][k] * bv[k];",
+        "    }",
+        "    bv[a] = e * Lsi[a];",
+        "    nis += bv[a] * bv[a];",
+        "}",
+    ]
+    rest = [
+        "/* B = C Ls^-T (in place), x + B b, P - B B' (= P - K S K') */",
+        f"for (a = 0u; a < {n}u; ++a) {{",
+        f"    {real} e = {zero};",
+        f"    for (k = 0u; k < {m}u; ++k) {{",
+        "        for (b = 0u; b < k; ++b) {",
+        "            Cx[a][k] -= Ls[k][b] * Cx[a][b];",
+        "        }",
+        "        Cx[a][k] *= Lsi[k];",
+        "        e += Cx[a][k] * bv[k];",
+        "    }",
+        "    xs[a] = x[a] + e;",
+        "}",
+        "q = 0u;",
+        f"for (a = 0u; a < {n}u; ++a) {{",
+        f"    for (b = a; b < {n}u; ++b) {{",
+        f"        {real} e = P[q];",
+        f"        for (k = 0u; k < {m}u; ++k) {{",
+        "            e -= Cx[a][k] * Cx[b][k];",
+        "        }",
+        "        Ps[q] = e;",
+        "        ++q;",
+        "    }",
+        "}",
+    ]
+    rest += em.lines(angle_wraps(spec, "xs"))
+    ops += OpCount(add=n * (n + 1) // 2 * (2 * m + 1) + n * (n + 1) // 2 * m, mul=n * (n + 1) // 2 * (m + 1) + 2 * n * m,
+                   sqrt=m, div=m, compare=2 * m)
+    size = (m * ns + na + 3 * m + 2 * m * m + m + n * m + nv * nv) * (4 if real == "float" else 8)
+    return LoopCode(lines, rest, ops, size, uses_par)
