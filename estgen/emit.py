@@ -23,6 +23,7 @@ import numpy as np
 import sympy as sp
 from sympy.codegen.ast import float32, float64, real
 from sympy.printing.c import C99CodePrinter
+from sympy.printing.str import StrPrinter
 
 from ._version import __version__
 from .chi2 import chi2_ppf
@@ -375,10 +376,23 @@ def long_functions(source: str, limit: int = FUNCTION_LINES_LIMIT) -> List[Tuple
             if m.group(2).count("\n") > limit]
 
 
-def _component_text(expr: sp.Expr, width: int = 60) -> str:
-    """A sensor component's model function as sympy prints it over the model's own names,
-    when it is short and cannot end a C comment."""
-    text = sp.sstr(expr)
+class _ModelNamePrinter(StrPrinter):
+    """sympy's text printer with noise symbols under the names the model file gave them (the
+    spec carries them renamed, so that a noise symbol may share a state's name; renaming at
+    print time keeps two such symbols apart instead of merging them)."""
+
+    def __init__(self, names: Dict[sp.Symbol, str]) -> None:
+        super().__init__()
+        self._model_names = names
+
+    def _print_Symbol(self, expr: sp.Symbol) -> str:
+        return self._model_names.get(expr) or super()._print_Symbol(expr)
+
+
+def _component_text(expr: sp.Expr, names: Dict[sp.Symbol, str], width: int = 60) -> str:
+    """A sensor component's model function as sympy prints it over the model's own names
+    (``names``: the noise symbols'), when it is short and cannot end a C comment."""
+    text = _ModelNamePrinter(names).doprint(expr)
     if len(text) > width or "*/" in text or "/*" in text or "//" in text:
         return "(long expression: see the model file)"
     return text
@@ -445,15 +459,17 @@ def _common_context(spec: ModelSpec, setup: "FilterSetup") -> Dict[str, Any]:
     x0 = [em.lit(v) for v in spec.x0]
     P0 = [(packed_index(i, j, ne), em.lit(spec.P0[i][j])) for i in range(ne) for j in range(i, ne)]
     sensors = []
+    noise_names = {ns.symbol: ns.name for ns in spec.noise}
     for s in spec.sensors:
         gate = None
         if s.gate is not None:
             gate = em.lit(chi2_ppf(s.gate, s.m))
-        comps = [{"k": k, "text": _component_text(s.h[k]), "unit": safe_comment(s.units[k] if k < len(s.units) else None),
+        comps = [{"k": k, "text": _component_text(s.h[k], noise_names), "unit": safe_comment(s.units[k] if k < len(s.units) else None),
                   "angle": bool(s.angles[k])} for k in range(s.m)]
         sensors.append({
             "name": s.name, "m": s.m, "gate_prob": repr(s.gate) if s.gate is not None else None, "gate": gate,
             "angles": [i for i, a in enumerate(s.angles) if a], "components": comps,
+            "noise_names": [noise_names[v] for v in s.v],
         })
     # a kind's own refusals (the particle filter's DEGENERATE) are listed only in its header
     statuses = [{"name": st.name, "value": int(st), "advice": ADVICE[st]} for st in Status

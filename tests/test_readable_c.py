@@ -10,6 +10,7 @@ import re
 import textwrap
 
 import numpy as np
+import sympy as sp
 import pytest
 
 import estgen
@@ -96,3 +97,39 @@ def test_temporaries_never_share_a_parameter_name(tmp_path):
         assert f.update("pos", [0.25]) == 0
     np.testing.assert_allclose(c.x, r.x, rtol=1e-9, atol=1e-12)
     np.testing.assert_allclose(c.P, r.P, rtol=1e-9, atol=1e-12)
+
+
+MODEL_NOISE_NAMES = textwrap.dedent("""
+    import sympy as sp
+    from estgen import Model
+    model = Model("nnames")
+    p, v = model.states("p v")
+    dt = model.dt
+    model.process([p + dt * v, v])
+    model.process_noise([1e-4, 1e-4])
+    (ep,) = model.noise("ep", cov=[0.25])
+    (vn,) = model.noise("v", cov=[0.04])  # the same name as the state v (contract, section 5)
+    model.sensor("gps", [p + ep, v + vn, p * (1 + vn / 10)])
+    model.initial([0.0, 1.0], sp.diag(1.0, 1.0))
+""")
+
+
+@pytest.mark.parametrize("filt", ["ekf", "ukf", "pf"])
+def test_sensor_text_prints_noise_symbols_under_their_model_names(tmp_path, filt):
+    """The header's sensor text is the model function as sympy's own printer writes it over the
+    model file's names (sympy.sstr of the same expression over plain symbols is the reference);
+    a noise symbol named like a state stays a separate term ("v + v", not "2*v"), and the heading
+    lists the sensor's noise symbols."""
+    path = tmp_path / "nnames.py"
+    path.write_text(MODEL_NOISE_NAMES)
+    gen = generate(estgen.load_model(str(path)), filter=filt, precision="double")
+    p, v, ep, vn = sp.symbols("p v ep _v")
+    merged = sp.sstr(v + sp.Symbol("v"))  # what a careless rename would print
+    assert merged == "2*v"
+    assert " *   gps (noise symbols: ep, v):\n" in gen.header
+    assert f" *     z[0] = {sp.sstr(ep + p)}\n" in gen.header
+    assert " *     z[1] = v + v\n" in gen.header
+    third = sp.sstr(p * (1 + vn / 10)).replace("_v", "v")
+    assert f" *     z[2] = {third}\n" in gen.header
+    block = gen.header.split(" * Measurements")[1].split(" * Packed covariance")[0]
+    assert "_ep" not in block and "_v" not in block, block
