@@ -271,6 +271,7 @@ def soak(model: Any, filter: str = "ekf", precision: str = "float", steps: int =
                 dev = np.abs(np.linalg.norm(x64[finite, a:a + 4], axis=1) - 1.0)
                 res.max_attitude_norm_error = max(res.max_attitude_norm_error, float(dev.max()))
         pd_mask, L = batch_posdef(P64)
+        factored = pd_mask & finite  # the rows numpy's Cholesky accepted: pivots and NEES come from these
         for i in np.flatnonzero(~pd_mask & finite):
             if within_rounding(P64[i], precision):
                 pd_mask[i] = True
@@ -281,16 +282,20 @@ def soak(model: Any, filter: str = "ekf", precision: str = "float", steps: int =
         fails = np.flatnonzero(~(finite & pd_mask))
         if fails.size and res.first_failure is None:
             res.first_failure = done + int(fails[0]) + 1
-        if L is not None and finite.all():
+        if factored.any():
+            # a chunk with some failing steps still reports the pivots and NEES of the others
+            # (a particle filter whose particles collapsed has a singular P at those steps only)
+            if L is None or not factored.all():
+                L = np.linalg.cholesky(P64[factored])
             res.min_cholesky_pivot = min(res.min_cholesky_pivot, float(np.diagonal(L, axis1=1, axis2=2).min()))
             e = truth.truth.fn.boxminus_rows(X, x64) if spec.attitudes else x64 - X
             if angles.any() and not spec.attitudes:
                 e[:, angles] = wrap_angle(e[:, angles])
-            sol = np.linalg.solve(L, e[..., None])[..., 0]
+            sol = np.linalg.solve(L, e[factored][..., None])[..., 0]
             chunk_sum = float(np.sum(sol * sol))
             nees_sum += chunk_sum
-            nees_count += count
-            res.chunk_nees.append(chunk_sum / count)
+            nees_count += int(factored.sum())
+            res.chunk_nees.append(chunk_sum / int(factored.sum()))
         else:
             res.chunk_nees.append(None)
         if finite.any():
@@ -359,26 +364,30 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                              "seconds ('mirror', for integrating states such as a charge)")
     parser.add_argument("--period", type=float, default=1000.0, help="mirror period in seconds (default 1000)")
     parser.add_argument("--json", metavar="FILE", help="also write the result as JSON")
-    parser.add_argument("-q", "--quiet", action="store_true", help="no progress on stderr")
+    parser.add_argument("-q", "--quiet", action="store_true", help="print the verdict line only, no progress")
+    parser.add_argument("--progress", action="store_true", help="show progress even when stderr is not a terminal")
 
 
 def run(args: argparse.Namespace) -> int:
     """``estgen soak``: 0 all invariants held, 1 some did not."""
     from .model import load_model
+    from .progress import wanted
 
     spec = load_model(args.model)
     started = time.perf_counter()
+    shown = wanted(args.quiet, args.progress)  # a CI log gets no progress lines (docs/commands.md)
 
     def show(done: int, total: int) -> None:
-        if not args.quiet:
+        if shown:
             el = time.perf_counter() - started
             print(f"\r  {done}/{total} steps, {el:.0f} s", end="", file=sys.stderr, flush=True)
 
     res = soak(spec, steps=args.steps, seed=args.seed, dt=args.dt, profile=args.profile, period=args.period,
                progress=show, **FilterSetup.from_args(args).kwargs(runtime=False))
-    if not args.quiet:
+    if shown:
         print(file=sys.stderr)
-    print(format_result(res))
+    text = format_result(res)
+    print(text.splitlines()[-1].strip() if args.quiet else text)
     if args.json:
         with open(args.json, "w", encoding="utf-8") as fh:
             json.dump(res.as_dict(), fh, indent=2)

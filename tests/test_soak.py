@@ -109,6 +109,9 @@ def test_soak_command_line(tmp_path):
     proc = subprocess.run([sys.executable, "-m", "estgen", "soak", model_path("linear_cart"), "--steps", "3000", "-q",
                            "--json", str(out)], capture_output=True, text=True, env=env, timeout=300)
     assert proc.returncode == 0, proc.stderr
+    # -q: the verdict line only, as verify -q; no progress lines in a log (stderr is not a terminal)
+    assert proc.stdout.strip().splitlines() == ["result: OK: x finite and P positive definite at every step"], proc.stdout
+    assert proc.stderr == "", proc.stderr
     data = json.loads(out.read_text())
     assert data["ok"] is True and data["steps"] == 3000 and data["predict_status"] == {"OK": 3000}
     bad = subprocess.run([sys.executable, "-m", "estgen", "soak", model_path("linear_cart"), "--steps", "0", "-q"],
@@ -139,3 +142,31 @@ def test_within_rounding_on_a_matrix_lapack_refuses():
     # a slightly indefinite one, lambda_min = -1e-9 lambda_max, only in the coarser precision
     Q = np.diag([1.0, -1e-9])
     assert within_rounding(Q, "float") and not within_rounding(Q, "double")
+
+
+_COLLAPSING_PF = """import sympy as sp
+from estgen import Model
+
+model = Model("dropper")
+(pos,) = model.states("pos")
+model.process([pos])
+model.process_noise([1e-6 * model.dt])
+model.sensor("gauge", [pos], noise=[1e-6])
+model.initial_uniform([-1.0], [1.0])
+model.scenario(dt=1.0)
+"""
+
+
+def test_soak_reports_pivot_and_nees_of_the_steps_that_factor(tmp_path):
+    # Eight particles spread over [-1, 1] and a gauge a thousand times sharper: after an update
+    # resampling copies one particle into every slot, so P is exactly 0 at some steps (the
+    # collapse of a particle filter without roughening, Gordon, Salmond & Smith 1993). Those steps
+    # fail the invariant; the others still give a smallest pivot and a NEES, the numbers numpy's
+    # Cholesky gives for them, rather than inf and nan.
+    path = tmp_path / "dropper.py"
+    path.write_text(_COLLAPSING_PF)
+    res = soak(str(path), "pf", "double", steps=400, seed=2, particles=8)
+    assert not res.ok and res.not_posdef_steps > 0
+    assert res.not_posdef_steps + res.borderline_steps < 400
+    assert np.isfinite(res.min_cholesky_pivot) and res.min_cholesky_pivot > 0.0
+    assert np.isfinite(res.mean_nees) and res.mean_nees > 0.0
