@@ -265,6 +265,9 @@ class EkfUpdateCode:
     #: each component's row of H, residual and variance, and the statements after them
     compact: Optional[Tuple[List[Stmt], List["ScalarComponent"], List[Stmt]]] = None
     v_size: int = 0  # the Joseph form's V (block update only)
+    #: a full constant R = L L' whitened for the compact form: y = L^-1 y in place, run after
+    #: ``compact``'s statements (its components then carry the rows of L^-1 H and unit variances)
+    whiten: List[Stmt] = field(default_factory=list)
 
 
 @dataclass
@@ -493,6 +496,44 @@ def _residuals(spec: SensorSpec, hv: List[sp.Expr]) -> List[Stmt]:
     return out
 
 
+#: the largest condition number of a constant full R that is whitened (see whitening_factor):
+#: the whitened residual then loses at most about sqrt(WHITEN_MAX_COND) roundings of accuracy,
+#: what the block update's solve with S = H P H' + R loses on such an R as well
+WHITEN_MAX_COND = 1e8
+
+
+def whitening_factor(Rm: Dict[Tuple[int, int], sp.Expr], m: int) -> Optional[List[List[float]]]:
+    """L^-1 for a constant positive definite R = L L' (L lower triangular), or None when R has an
+    expression, is not positive definite or is worse conditioned than WHITEN_MAX_COND.
+
+    With z_w = L^-1 z, h_w = L^-1 h the measurement noise is white with unit variances
+    (E[L^-1 v v' L^-T] = I), so the components can be processed one at a time: the same posterior
+    and the same NIS y' S^-1 y as the block update in exact arithmetic (Bierman, Factorization
+    Methods for Discrete Sequential Estimation, 1977, ch. II: decorrelating a correlated
+    measurement by the Cholesky factor of its covariance). Computed in plain Python floats (IEEE
+    double, correctly rounded square roots) so the printed factor is byte-identical on every
+    machine, whatever linear-algebra library numpy uses."""
+    if m < 2 or not all(Rm[(i, j)].is_Number for i in range(m) for j in range(i, m)):
+        return None
+    R = [[float(Rm[(min(i, j), max(i, j))]) for j in range(m)] for i in range(m)]
+    L = [[0.0] * m for _ in range(m)]
+    for j in range(m):
+        d = R[j][j] - sum(L[j][k] * L[j][k] for k in range(j))
+        if not d > 0.0:
+            return None
+        L[j][j] = d ** 0.5
+        for i in range(j + 1, m):
+            L[i][j] = (R[i][j] - sum(L[i][k] * L[j][k] for k in range(j))) / L[j][j]
+    iL = [[0.0] * m for _ in range(m)]
+    for j in range(m):  # column j of L^-1 by forward substitution of L x = e_j
+        iL[j][j] = 1.0 / L[j][j]
+        for i in range(j + 1, m):
+            iL[i][j] = -sum(L[i][k] * iL[k][j] for k in range(j, i)) / L[i][i]
+    # cond_2(R) = cond_2(L)^2 <= (|L|_F |L^-1|_F)^2, an upper bound
+    fro = sum(v * v for row in L for v in row) * sum(v * v for row in iL for v in row)
+    return iL if fro <= WHITEN_MAX_COND else None
+
+
 def derive_ekf_update(spec: SensorSpec, mspec: ModelSpec) -> EkfUpdateCode:
     """Measurement update in scratch copies xs, Ps of x and P (committed by the template).
 
@@ -522,6 +563,22 @@ def derive_ekf_update(spec: SensorSpec, mspec: ModelSpec) -> EkfUpdateCode:
     XS = [sp.Symbol(f"xs[{i}]") for i in range(n)]
     D = _x("dx", n)
     delta = D if att else [XS[k] - X[k] for k in range(n)]
+    iL = None if spec.diagonal else whitening_factor(Rm, m)
+    whiten: List[Stmt] = []
+    wcomps: List[ScalarComponent] = []
+    if iL is not None:
+        # the compact form of a full constant R: whitened, then the scalar components (R_w = I)
+        for i in reversed(range(m)):  # in place: y_i reads y_k, k <= i, not yet overwritten
+            e = sum((sp.Float(iL[i][k]) * sp.Symbol(f"y[{k}]") for k in range(i + 1) if iL[i][k] != 0.0), sp.S.Zero)
+            whiten.append(Stmt("assign", f"y[{i}]", e))
+        Hw = sp.Matrix(m, n, lambda i, j: sum((sp.Float(iL[i][k]) * Hm[k, j] for k in range(i + 1)
+                                               if iL[i][k] != 0.0 and Hm[k, j] != 0), sp.S.Zero))
+        for c in range(m):
+            nz = [j for j in range(n) if Hw[c, j] != 0]
+            r_expr = sp.Symbol(f"y[{c}]")
+            if c > 0:
+                r_expr = r_expr - sum((Hw[c, j] * delta[j] for j in nz), sp.S.Zero)
+            wcomps.append(ScalarComponent([(j, Hw[c, j]) for j in nz], r_expr, sp.S.One))
     if spec.diagonal:
         # the compact form (one shared static function per filter; see EkfUpdateCode.compact)
         compact: List[ScalarComponent] = []
@@ -569,6 +626,7 @@ def derive_ekf_update(spec: SensorSpec, mspec: ModelSpec) -> EkfUpdateCode:
                              compact=(pre, compact, tail))
 
     # block update with a full R
+    wpre = list(stmts)
     Wm = sp.Matrix(n, m, lambda k, c: sp.Symbol(f"W[{k * m + c}]"))
     for k in range(n):
         for c in range(m):
@@ -626,9 +684,10 @@ def derive_ekf_update(spec: SensorSpec, mspec: ModelSpec) -> EkfUpdateCode:
         for j in range(i, n):
             e = Ps[i, j] + sum((Km[i, c] * Vm[j, c] - Wm[i, c] * Km[j, c] for c in range(m)), sp.S.Zero)
             stmts.append(Stmt("assign", f"Ps[{packed_index(i, j, n)}]", e))
-    if att:
-        stmts += _inject(mspec)
-    return EkfUpdateCode(spec, False, stmts, _uses_params(stmts), m, n * m, n * m, n if att else 0, v_size=n * m)
+    tail = _inject(mspec) if att else []
+    stmts += tail
+    return EkfUpdateCode(spec, False, stmts, _uses_params(stmts), m, n * m, n * m, n if att else 0, v_size=n * m,
+                         compact=(wpre, wcomps, tail) if iL is not None else None, whiten=whiten)
 
 
 def derive_ekf(spec: ModelSpec) -> EkfCode:

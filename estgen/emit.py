@@ -572,32 +572,48 @@ def pivot_check(n: int, P: str) -> Tuple[Stmt, ...]:
     return tuple(commit_check(n, P))
 
 
-def _compact_predict(em: Emitter, ctx: Dict[str, Any], compact: Any) -> List[str]:
+def _compact_predict(em: Emitter, ctx: Dict[str, Any], compact: Any, dense: bool) -> List[str]:
     """The predict's lines in the compact form: f, F, G, Q as before, then P' = F P F' + G Qw G' + Q
-    as loops over F's non-zeros (static const row starts and columns, a local value array)."""
+    as loops. ``dense`` (F more than DENSE_F_FILL full): plain constant-bound loops over a full
+    local F, zeros included; else loops over F's non-zeros (static const row starts and columns, a
+    local value array)."""
     pre, fnz, noise, tail = compact
     ne = ctx["ne"]
-    starts = [0] * (ne + 1)
-    for i, _, _ in fnz:
-        starts[i + 1] += 1
-    for i in range(ne):
-        starts[i + 1] += starts[i]
-    nnz = len(fnz)
     real, zero = em.real, em.lit(0.0)
     out = em.lines(with_sections(pre, EKF_PREDICT_SECTIONS))
+    if dense:
+        vals = {(i, k): e for i, k, e in fnz}
+        rows = ["{" + ", ".join(em.expr(vals.get((i, k), sp.S.Zero)) for k in range(ne)) + "}" for i in range(ne)]
+        out += [
+            "/* P' = F P F' + G Qw G' + Q: the noise terms straight-line, then F P F' as plain loops over",
+            "   a full local F (more than half of it is non-zero); --optimize compact form, see the header */",
+            "{",
+            f"    const {real} Fd[{ne}][{ne}] = {{",
+        ]
+        out += [f"        {r}{',' if i + 1 < ne else ''}" for i, r in enumerate(rows)]
+        out += ["    };"]
+    else:
+        starts = [0] * (ne + 1)
+        for i, _, _ in fnz:
+            starts[i + 1] += 1
+        for i in range(ne):
+            starts[i + 1] += starts[i]
+        nnz = len(fnz)
+        out += [
+            "/* P' = F P F' + G Qw G' + Q: the noise terms straight-line, then loops over F's non-zeros",
+            "   (row starts Fr, columns Fc, values Fv); --optimize compact form, see the header */",
+            "{",
+            f"    static const uint16_t Fr[{ne + 1}] = {{{', '.join(f'{v}u' for v in starts)}}};",
+            f"    static const uint16_t Fc[{nnz}] = {{{', '.join(f'{k}u' for _, k, _ in fnz)}}};",
+            f"    const {real} Fv[{nnz}] = {{{', '.join(em.expr(e) for _, _, e in fnz)}}};",
+            "    size_t cp;",
+        ]
     out += [
-        "/* P' = F P F' + G Qw G' + Q: the noise terms straight-line, then loops over F's non-zeros",
-        "   (row starts Fr, columns Fc, values Fv); --optimize compact form, see the header */",
-        "{",
-        f"    static const uint16_t Fr[{ne + 1}] = {{{', '.join(f'{v}u' for v in starts)}}};",
-        f"    static const uint16_t Fc[{nnz}] = {{{', '.join(f'{k}u' for _, k, _ in fnz)}}};",
-        f"    const {real} Fv[{nnz}] = {{{', '.join(em.expr(e) for _, _, e in fnz)}}};",
         f"    {real} arow[{ne}];",
         f"    {real} Pf[{ne}][{ne}];  /* P unpacked: the products run along its rows */",
         "    size_t ci;",
         "    size_t cj;",
         "    size_t ck;",
-        "    size_t cp;",
         "    size_t q = 0u;",
         f"    for (ci = 0u; ci < {ne}u; ++ci) {{",
         f"        for (cj = ci; cj < {ne}u; ++cj) {{",
@@ -609,6 +625,24 @@ def _compact_predict(em: Emitter, ctx: Dict[str, Any], compact: Any) -> List[str
         "    memset(Pn, 0, sizeof Pn);",
     ]
     out += ["    " + line for line in em.lines(noise)]
+    if dense:
+        # row i of A = F P as a sum of rows of P (independent iterations: compilers vectorize it),
+        # then P'_ij = A_i . F_j for j >= i (the upper triangle only)
+        out += [
+            "    q = 0u;",
+            f"    for (ci = 0u; ci < {ne}u; ++ci) {{",
+            f"        for (cj = 0u; cj < {ne}u; ++cj) {{",
+            f"            arow[cj] = {zero};",
+            "        }",
+            f"        for (ck = 0u; ck < {ne}u; ++ck) {{",
+            f"            const {real} fik = Fd[ci][ck];",
+            f"            for (cj = 0u; cj < {ne}u; ++cj) {{",
+            "                arow[cj] += fik * Pf[ck][cj];",
+            "            }",
+            "        }",
+        ]
+        out += _upper_triangle_products(ne, real, f"ck = 0u; ck < {ne}u; ++ck", "arow[ck] * Fd[cj][ck]")
+        return out + em.lines(tail)
     out += [
         "    q = 0u;",
         f"    for (ci = 0u; ci < {ne}u; ++ci) {{",
@@ -619,10 +653,20 @@ def _compact_predict(em: Emitter, ctx: Dict[str, Any], compact: Any) -> List[str
         "            }",
         "            arow[ck] = acc;",
         "        }",
+    ]
+    out += _upper_triangle_products(ne, real, f"cp = Fr[cj]; cp < Fr[cj + 1u] && cp < {nnz}u; ++cp",
+                                    "arow[Fc[cp]] * Fv[cp]")
+    return out + em.lines(tail)
+
+
+def _upper_triangle_products(ne: int, real: str, loop: str, term: str) -> List[str]:
+    """The close of both F P F' loop forms: P'_ij += the sum over ``loop`` of ``term`` (row i of
+    A = F P times row j of F) for j >= i, in packed order; closes the row loop and the block."""
+    return [
         f"        for (cj = ci; cj < {ne}u; ++cj) {{",
         f"            {real} acc = Pn[q];",
-        f"            for (cp = Fr[cj]; cp < Fr[cj + 1u] && cp < {nnz}u; ++cp) {{",
-        "                acc += arow[Fc[cp]] * Fv[cp];",
+        f"            for ({loop}) {{",
+        f"                acc += {term};",
         "            }",
         "            Pn[q] = acc;",
         "            ++q;",
@@ -630,7 +674,6 @@ def _compact_predict(em: Emitter, ctx: Dict[str, Any], compact: Any) -> List[str
         "    }",
         "}",
     ]
-    return out + em.lines(tail)
 
 
 def _compact_sequential(em: Emitter, prefix: str, uc: Any, rules: Any) -> Tuple[List[str], List[str]]:
@@ -641,6 +684,10 @@ def _compact_sequential(em: Emitter, prefix: str, uc: Any, rules: Any) -> Tuple[
     pre, comps, tail = uc.compact
     target = "dx" if uc.dx_size else "xs"
     out = em.lines(with_sections(pre, rules))
+    if uc.whiten:
+        out.append("/* whitened: y = L^-1 y with the constant R = L L', so that the components are independent")
+        out.append("   with unit variance; H's rows below are those of L^-1 H */")
+        out += em.lines(uc.whiten)
     if uc.dx_size:
         out.append("memset(dx, 0, sizeof dx);")
     for c, comp in enumerate(comps):
@@ -672,11 +719,13 @@ def generate_ekf(spec: ModelSpec, setup: "FilterSetup") -> Generated:
     pc = OpCount()
     p_lines = em.lines(with_sections(code.predict.stmts, EKF_PREDICT_SECTIONS), pc)
     forms = ctx["compact"]
+    dense_f = False
     if code.predict.compact is not None and code.predict.compact[1]:
         fill = len(code.predict.compact[1]) / float(spec.ne * spec.ne)
-        forms["predict"] = size_forms(setup.common.optimize, spec.ne) or (fill > DENSE_F_FILL and spec.ne >= DENSE_F_MIN_N)
+        dense_f = fill > DENSE_F_FILL
+        forms["predict"] = size_forms(setup.common.optimize, spec.ne) or (dense_f and spec.ne >= DENSE_F_MIN_N)
     if forms["predict"]:
-        p_lines = _compact_predict(em, ctx, code.predict.compact)
+        p_lines = _compact_predict(em, ctx, code.predict.compact, dense_f)
     ctx["predict"] = {"lines": p_lines, "uses_par": code.predict.uses_par,
                       "uses_u": code.predict.uses_u, "cert": []}
     if setup.common.commit_check == "subtractive":
@@ -705,17 +754,21 @@ def generate_ekf(spec: ModelSpec, setup: "FilterSetup") -> Generated:
         rules = ekf_sequential_sections(uc.sensor) if uc.sequential else EKF_BLOCK_UPDATE_SECTIONS
         head, rest = gate_split(with_sections(uc.stmts + angle_wraps(spec, "xs"), rules))
         body, after = em.lines(head, oc), em.lines(rest, oc)
-        w_size, k_size = uc.w_size, uc.k_size
+        w_size, k_size, v_size = uc.w_size, uc.k_size, uc.v_size
+        form = ("sequential scalar updates (diagonal R), standard form P - K W'" if uc.sequential
+                else "block update, Cholesky solve of S, Joseph form")
         if forms["scalar_update"] and uc.compact is not None and all(comp.h for comp in uc.compact[1]):
             # every component through the shared function: the NIS is complete after the last
             body, after = _compact_sequential(em, ctx["prefix"], uc, rules)
             after += em.lines(angle_wraps(spec, "xs"))
-            w_size = k_size = 0
+            w_size = k_size = v_size = 0
             forms["scalar_update_used"] = forms["pku"] = True
+            if uc.whiten:
+                form = "constant full R = L L' whitened by L^-1, then sequential scalar updates, standard form P - K W'"
         oc += OpCount(**ctx["commit_ops"][ctx["commit_fns"]["update"]])
         ops[f"update_{uc.sensor.name}"] = oc.as_dict()
         ups.append({**sctx, "lines": body, "rest": after, "uses_par": uc.uses_par, "w_size": w_size,
-                    "k_size": k_size, "v_size": uc.v_size, "sequential": uc.sequential, "dx_size": uc.dx_size})
+                    "k_size": k_size, "v_size": v_size, "form": form, "dx_size": uc.dx_size})
     ctx["updates"] = ups
     ctx["ops"] = ops
     return _render(ctx)

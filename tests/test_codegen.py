@@ -319,3 +319,85 @@ def test_optimize_size_uses_the_compact_forms():
     assert "static const uint16_t Fr[" in size and "_scalar_update(" in size and "_cholesky(" in size
     assert "static const uint16_t Fr[" not in speed  # F is sparse: straight-line under speed
     assert len(size) < len(speed)
+
+
+# The compact forms on models the examples do not cover: the benchmark's synthetic models
+# (benchmarks/synthetic.py: a fully coupled F and H, and a sparse chain above 12 states, each with
+# a correlated two-component sensor, i.e. a constant full R) and an attitude model whose
+# magnetometer has a full R. Under both --optimize forms, in both precisions, the C must compute
+# what the numpy reference computes (estgen.reference: the textbook EKF, Simon, Optimal State
+# Estimation, 2006, ch. 13, with the block update for a full R), to the same tolerances as
+# test_c_matches_reference, compile clean and stay deterministic.
+sys.path.insert(0, os.path.join(ROOT, "benchmarks"))
+from synthetic import write_model  # noqa: E402
+
+COMPACT_MODELS = [("dense", 8), ("dense", 6), ("sparse", 13), ("attitude_corr_mag", 0)]
+
+
+def _compact_model(kind: str, n: int, tmp_path) -> str:
+    if n == 0:
+        return os.path.join(ROOT, "tests", "models", f"{kind}.py")
+    return write_model(kind, n, str(tmp_path))
+
+
+@pytest.mark.parametrize("optimize", ["speed", "size"])
+@pytest.mark.parametrize("precision", ["float", "double"])
+@pytest.mark.parametrize("kind,n", COMPACT_MODELS, ids=[f"{k}{n or ''}" for k, n in COMPACT_MODELS])
+def test_compact_forms_match_reference_on_more_models(kind, n, precision, optimize, tmp_path):
+    require_tool("gcc")
+    spec = estgen.load_model(_compact_model(kind, n, tmp_path))
+    gen = generate(spec, filter="ekf", precision=precision, optimize=optimize)
+    assert gen.files == generate(spec, filter="ekf", precision=precision, optimize=optimize).files
+    src = _write(gen, tmp_path)
+    proc = subprocess.run(["gcc", *STRICT_FLAGS, "-Wvla", "-O2", "-c", src, "-o", str(tmp_path / "f.o")],
+                          capture_output=True, text=True)
+    assert proc.returncode == 0, proc.stderr
+    res = verify(spec, filter="ekf", precision=precision, steps=300, seed=7, optimize=optimize)
+    assert res.ok, res.as_dict()
+    # every sensor, the correlated one included, was exercised and accepted
+    for name, cov in res.coverage["sensors"].items():
+        assert cov["c"].get("OK", 0) >= 50, (name, cov)
+
+
+def test_compact_forms_are_chosen_by_the_documented_rule(tmp_path):
+    # docs/performance.md, "The rule speed follows": a dense F gets the plain loops over a full
+    # local F from DENSE_F_MIN_N states under speed (from COMPACT_MIN_N under size); a sparse F its
+    # table of non-zeros under size only; a constant full R is whitened where the scalar update is
+    # the shared function (above UNROLL_SCALAR_UPDATE_MAX states under speed, from COMPACT_MIN_N
+    # under size)
+    def src(kind: str, n: int, optimize: str) -> str:
+        spec = estgen.load_model(write_model(kind, n, str(tmp_path)))
+        return generate(spec, filter="ekf", precision="float", optimize=optimize).source
+
+    d8, d6, d6s = src("dense", 8, "speed"), src("dense", 6, "speed"), src("dense", 6, "size")
+    assert "const float Fd[8][8] = {" in d8 and "Fr[" not in d8 and "whitened" not in d8
+    assert "Fd[" not in d6 and "_scalar_update(" not in d6  # straight-line below 8 states
+    assert "const float Fd[6][6] = {" in d6s and "whitened" in d6s
+    s13, s13s = src("sparse", 13, "speed"), src("sparse", 13, "size")
+    assert "Fd[" not in s13 and "Fr[" not in s13 and "whitened" in s13
+    assert "static const uint16_t Fr[" in s13s and "Fd[" not in s13s and "whitened" in s13s
+    assert "whitened" not in src("sparse", 12, "speed")  # the block update stays unrolled at 12
+
+
+def test_whitening_factor_against_scipy():
+    # Source: the Cholesky factorization R = L L' (scipy.linalg.cholesky); whitening by L^-1 makes
+    # the noise covariance the identity, L^-1 R L^-T = I (Bierman 1977, ch. II)
+    import sympy as sp
+
+    from estgen.derive import whitening_factor
+
+    R = np.array([[0.02, 0.005, 0.001], [0.005, 0.03, -0.004], [0.001, -0.004, 0.011]])
+    Rm = {(i, j): sp.Float(R[i, j]) for i in range(3) for j in range(i, 3)}
+    iL = np.array(whitening_factor(Rm, 3))
+    assert np.all(np.triu(iL, 1) == 0.0)
+    np.testing.assert_allclose(iL @ R @ iL.T, np.eye(3), atol=1e-14)
+    np.testing.assert_allclose(iL, np.linalg.inv(scipy.linalg.cholesky(R, lower=True)), rtol=1e-13)
+    # refused: an expression (a parameter), an indefinite R, an ill-conditioned R, a scalar
+    Rp = dict(Rm)
+    Rp[(0, 0)] = sp.Symbol("par->r")
+    assert whitening_factor(Rp, 3) is None
+    bad = {(0, 0): sp.Float(1.0), (0, 1): sp.Float(2.0), (1, 1): sp.Float(1.0)}
+    assert whitening_factor(bad, 2) is None
+    ill = {(0, 0): sp.Float(1.0), (0, 1): sp.Float(0.0), (1, 1): sp.Float(1e-9)}
+    assert whitening_factor(ill, 2) is None
+    assert whitening_factor({(0, 0): sp.Float(0.5)}, 1) is None
