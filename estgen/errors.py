@@ -64,6 +64,8 @@ DEBIAN_PACKAGES = {
     "arm-none-eabi-readelf": "binutils-arm-none-eabi", "qemu-system-arm": "qemu-system-arm",
     "valgrind": "valgrind", "callgrind_annotate": "valgrind", "cppcheck": "cppcheck",
     "cmake": "cmake", "ninja": "ninja-build", "make": "make",
+    # the host target's object tools (report --target host): GNU binutils
+    "nm": "binutils", "size": "binutils", "objdump": "binutils", "readelf": "binutils",
 }
 
 

@@ -74,7 +74,15 @@ def test_no_cross_toolchain_or_emulator(tmp_path):
 def test_tool_missing_names_the_package():
     assert ToolMissing("arm-none-eabi-gcc").package == "gcc-arm-none-eabi"
     assert ToolMissing("ninja").package == "ninja-build"
+    # nm and size come in Debian's binutils package (packages.debian.org), not in one of their name
+    assert ToolMissing("nm").package == "binutils" and ToolMissing("size").package == "binutils"
     import pickle
 
     err = pickle.loads(pickle.dumps(ToolMissing("valgrind")))
     assert err.tool == "valgrind" and "apt-get install valgrind" in str(err)
+
+
+def test_no_binutils_for_the_host_target(tmp_path):
+    proc = _run(tmp_path, {"nm", "size"}, "report", CART, "--target", "host", "--steps", "20")
+    assert proc.returncode == 2 and "Traceback" not in proc.stderr, proc.stderr
+    assert "apt-get install binutils" in proc.stderr and "apt-get install nm" not in proc.stderr
