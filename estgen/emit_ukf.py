@@ -11,7 +11,7 @@ from .derive import with_sections
 from .derive_ukf import UKF_PREDICT_SECTIONS, UKF_UPDATE_SECTIONS, UkfWeights, derive_ukf
 from .derive_ukf_att import derive_ukf_attitude
 from .emit import COMPACT_MIN_N, Emitter, Generated, OpCount, _common_context, _render, gate_split
-from .emit_ukf_loop import loop_functions, loop_predict, loop_update
+from .emit_ukf_loop import loop_certificate, loop_functions, loop_predict, loop_update
 from .model import ModelSpec
 from .unrolled import factor_function
 
@@ -83,7 +83,7 @@ def generate_ukf(spec: ModelSpec, setup: "FilterSetup", wts: UkfWeights) -> Gene
     # named storage of predict: xn, Pn, the wrapped-angle scratch and every const local
     p_bytes = _stack_bytes(p_decls, n + 2 * np_ + code.predict.angle_scratch, size_real)
     ctx["predict"] = {"lines": p_lines, "uses_par": code.predict.uses_par, "uses_u": code.predict.uses_u,
-                      "ea": code.predict.angle_scratch}
+                      "ea": code.predict.angle_scratch, "cert": []}
     ups: List[Dict[str, Any]] = []
     u_bytes = 0
     for uc, sctx in zip(code.updates, ctx["sensors"]):
@@ -126,10 +126,18 @@ def _generate_loop(spec: ModelSpec, setup: "FilterSetup", wts: UkfWeights, ctx: 
     pc = OpCount()
     pc += lp.ops
     pc += fc
-    pc += OpCount(**ctx["commit_ops"][ctx["commit_fns"]["predict"]])
+    cert = loop_certificate(spec, wts, em) if setup.common.commit_check == "subtractive" else None
+    if cert is not None:
+        # the sum of non-negatively weighted outer products needs no factorization (see loop_certificate)
+        ctx["commit_fns"]["predict"] = "certified"
+        pc += OpCount(compare=len(cert))
+        pc += OpCount(**ctx["commit_ops"]["commit_diag"])
+    else:
+        pc += OpCount(**ctx["commit_ops"][ctx["commit_fns"]["predict"]])
     ops["predict"] = pc.as_dict()
     p_bytes = _stack_bytes(0, n + 2 * np_, size_real) + lp.stack_bytes
-    ctx["predict"] = {"lines": lp.lines, "uses_par": lp.uses_par, "uses_u": spec.nu > 0, "ea": 0}
+    ctx["predict"] = {"lines": lp.lines, "uses_par": lp.uses_par or any("par->" in c for c in cert or []),
+                      "uses_u": spec.nu > 0, "ea": 0, "cert": cert or []}
     ups: List[Dict[str, Any]] = []
     u_bytes = 0
     for s, sctx in zip(spec.sensors, ctx["sensors"]):

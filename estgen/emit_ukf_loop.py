@@ -21,7 +21,9 @@ Models with attitudes keep the straight-line error-space transform.
 
 from __future__ import annotations
 
-from typing import Any, Dict, List, Sequence, Tuple
+from typing import Any, Dict, List, Optional, Sequence, Tuple
+
+import numpy as np
 
 import sympy as sp
 
@@ -30,7 +32,7 @@ from .derive_ukf import UkfWeights
 from .emit import Emitter, OpCount
 from .model import ModelSpec, SensorSpec, noise_factor
 
-__all__ = ["loop_functions", "loop_predict", "loop_update", "LoopCode"]
+__all__ = ["loop_functions", "loop_predict", "loop_update", "loop_certificate", "LoopCode"]
 
 
 class LoopCode:
@@ -115,6 +117,12 @@ def _add_block(em: Emitter, spec: ModelSpec, entries: List[Tuple[str, sp.Expr]],
     return em.lines(stmts, oc), oc, _uses(stmts, "par->")
 
 
+def _sum_loop(acc: str, term: str, var: str, start: int, stop: int) -> List[str]:
+    """``acc += term`` for ``var`` in [start, stop), in order (``term`` formats ``{i}``). Not
+    unrolled: measured, unrolling by 4 left the host instruction count unchanged and grew flash."""
+    return [f"for ({var} = {start}u; {var} < {stop}u; ++{var}) {{", f"    {acc} += {term.format(i=var)};", "}"]
+
+
 def _indent(lines: List[str], depth: int = 1) -> List[str]:
     return ["    " * depth + line for line in lines]
 
@@ -171,9 +179,7 @@ def _mean_and_deviations(em: Emitter, ctx: Dict[str, Any], img: str, mean: str, 
     lines = [
         f"for (a = 0u; a < {m}u; ++a) {{",
         f"    {real} acc = {zero};",
-        f"    for (i = 1u; i < {ns}u; ++i) {{",
-        f"        acc += {img}[a][i];",
-        "    }",
+    ] + _indent(_sum_loop("acc", img + "[a][{i}]", "i", 1, ns)) + [
         f"    {mean}[a] = {wm0} * {img}[a][0] + {wi} * acc;",
         "}",
     ]
@@ -249,9 +255,7 @@ def loop_predict(spec: ModelSpec, em: Emitter, ctx: Dict[str, Any], wts: UkfWeig
         f"    for (a = 0u; a < {n}u; ++a) {{",
         f"        for (b = a; b < {n}u; ++b) {{",
         f"            {real} acc = {em.lit(0.0)};",
-        f"            for (i = 1u; i < {ns}u; ++i) {{",
-        "                acc += Yt[a][i] * Yt[b][i];",
-        "            }",
+    ] + _indent(_sum_loop("acc", "Yt[a][{i}] * Yt[b][{i}]", "i", 1, ns), 3) + [
         f"            Pn[q] = {em.lit(aug.wc0)} * Yt[a][0] * Yt[b][0] + {em.lit(aug.w)} * acc;",
         "            ++q;",
         "        }",
@@ -314,9 +318,7 @@ def loop_update(spec: ModelSpec, sensor: SensorSpec, em: Emitter, ctx: Dict[str,
         f"for (a = 0u; a < {m}u; ++a) {{",
         "    for (b = 0u; b <= a; ++b) {",
         f"        {real} acc = {zero};",
-        f"        for (i = 1u; i < {ns}u; ++i) {{",
-        "            acc += Zt[a][i] * Zt[b][i];",
-        "        }",
+    ] + _indent(_sum_loop("acc", "Zt[a][{i}] * Zt[b][{i}]", "i", 1, ns), 2) + [
         f"        Sv[a][b] = {em.lit(aug.wc0)} * Zt[a][0] * Zt[b][0] + {em.lit(aug.w)} * acc;",
         "    }",
         "}",
@@ -328,13 +330,14 @@ def loop_update(spec: ModelSpec, sensor: SensorSpec, em: Emitter, ctx: Dict[str,
     uses_par = uses_par or par
     lines += [
         "/* C = sum_i Wc_i dX_i dZ_i': dX of the pair i is +-gamma column i of L (zero for noise columns) */",
-        f"for (a = 0u; a < {n}u; ++a) {{",
+        "memset(Cx, 0, sizeof Cx);",
+        f"for (i = 0u; i < {n}u; ++i) {{",
+        f"    const {real} *lc = &Lf[{prefix}_pku(i, i)];  /* column i of L, rows i..{n - 1} */",
         f"    for (k = 0u; k < {m}u; ++k) {{",
-        f"        {real} acc = {zero};",
-        "        for (i = 0u; i <= a; ++i) {",
-        f"            acc += Lf[{prefix}_pku(i, a)] * (Zt[k][i + 1u] - Zt[k][i + {na + 1}u]);",
+        f"        const {real} dz = {em.lit(aug.w * aug.gamma)} * (Zt[k][i + 1u] - Zt[k][i + {na + 1}u]);",
+        f"        for (a = i; a < {n}u; ++a) {{",
+        "            Cx[a][k] += lc[a - i] * dz;",
         "        }",
-        f"        Cx[a][k] = {em.lit(aug.w * aug.gamma)} * acc;",
         "    }",
         "}",
         "/* factor S = Ls Ls' (pivots checked) */",
@@ -400,3 +403,30 @@ def loop_update(spec: ModelSpec, sensor: SensorSpec, em: Emitter, ctx: Dict[str,
                    sqrt=m, div=m, compare=2 * m)
     size = (m * ns + na + 3 * m + 2 * m * m + m + n * m + nv * nv) * (4 if real == "float" else 8)
     return LoopCode(lines, rest, ops, size, uses_par)
+
+
+def loop_certificate(spec: ModelSpec, wts: UkfWeights, em: Emitter) -> Optional[List[str]]:
+    """The conditions (C text, over the predict's locals) under which the loop form's predict may
+    commit P' unfactorized, or None when it must factorize.
+
+    P' = Wc0 d0 d0' + Wi sum_i di di' + Q. With Wc0 >= 0 and Wi > 0 the sum is positive
+    semidefinite for whatever deviations d were computed (the same rounded d enter every entry),
+    and by Cauchy-Schwarz each entry's accumulated rounding error is at most
+    gamma_k (Wc0 |d0a d0b| + Wi sum |dia dib|) <= gamma_k sqrt(S_aa S_bb) (Higham 2002, sec. 3.5):
+    the bound docs/performance.md derives for the EKF's certified predict, with factor 1. Q must
+    be positive semidefinite: a constant Q is checked here, a diagonal Q of expressions gives the
+    conditions 0 <= Q_ii, an off-diagonal expression gives None. Qw needs no condition: it enters
+    through its factor, as sigma points."""
+    aug = UkfWeights(spec.n + spec.nw, wts.alpha, wts.beta, wts.kappa)
+    if not (aug.wc0 >= 0.0 and aug.w > 0.0):
+        return None
+    n = spec.n
+    Q = spec.Q
+    if any(not Q[i, j].is_Number for i in range(n) for j in range(n) if i != j and Q[i, j] != 0):
+        return None
+    const = np.array([[float(Q[i, j]) if Q[i, j].is_Number else 0.0 for j in range(n)] for i in range(n)])
+    if n and float(np.linalg.eigvalsh(const)[0]) < 0.0:
+        return None
+    names = c_names(spec, "x")
+    conds = [f"({em.lit(0.0)} <= {em.expr(Q[i, i].xreplace(names))})" for i in range(n) if not Q[i, i].is_Number]
+    return list(dict.fromkeys(conds))  # equal variances (three axes) checked once

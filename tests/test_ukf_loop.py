@@ -22,6 +22,7 @@ import estgen.emit_ukf as emit_ukf
 from estgen.build import STRICT_FLAGS, build
 from estgen.filters import generate
 from estgen.simulate import make_scenario, run_filter
+from estgen.status import Status
 from estgen.verify import verify
 
 HERE = os.path.dirname(os.path.abspath(__file__))
@@ -168,3 +169,49 @@ def test_which_form_each_option_takes() -> None:
     assert not _is_loop(generate(small, filter="ukf", precision="float", optimize="size").source, "rover_ukf")
     quat = estgen.load_model(os.path.join(EX, "quat_nav", "model.py"))
     assert quat.attitudes and not emit_ukf.uses_loop_form(quat, "size")
+
+
+_PENDULUM = '''
+import sympy as sp
+from estgen import Model
+model = Model("pend")
+th, om = model.states("th om")
+q = model.param("q", 0.01)
+dt = model.dt
+model.process([th + dt * om, om - dt * 9.81 * sp.sin(th)])
+model.process_noise(sp.diag(q, q) * dt)
+model.sensor("angle", [th], noise=[0.01])
+model.initial([0.3, 0.0], sp.diag(0.1, 0.1))
+'''
+
+
+def test_loop_predict_commits_under_its_certificate_only(tmp_path, loop_form: Dict[str, str]) -> None:
+    # Source: the argument of estgen.emit_ukf_loop.loop_certificate (a non-negatively weighted
+    # sum of outer products is positive semidefinite; Cauchy-Schwarz bounds its rounding, Higham,
+    # Accuracy and Stability of Numerical Algorithms, 2nd ed., 2002, sec. 3.5); numpy's Cholesky
+    # (LAPACK potrf) judges every committed P, and the reference UKF the refusals.
+    path = tmp_path / "pend.py"
+    path.write_text(_PENDULUM)
+    spec = estgen.load_model(str(path))
+    src = generate(spec, filter="ukf", precision="double", **loop_form).source
+    predict = src[src.index("int pend_ukf_predict("):src.index("int pend_ukf_update_angle_nis(")]
+    assert "pend_ukf_commit_diag(Pn)" in predict and "(0.0 <= " in predict  # certified, Q_ii >= 0 checked
+    c = build(spec, filter="ukf", precision="double", **loop_form)
+    r = estgen.reference(spec, filter="ukf")
+    sc = make_scenario(spec, 200, seed=4)
+    rc, rr = run_filter(c, sc), run_filter(r, sc)
+    assert np.array_equal(rc["predict_status"], rr["predict_status"]) and not rc["predict_status"].any()
+    for P in rc["P"]:
+        np.linalg.cholesky(P)  # raises when a committed P is not positive definite
+    # a negative process-noise variance: the certificate fails and the factorization refuses the
+    # P' that numpy finds indefinite (the reference commits it: it checks finiteness only); the
+    # struct is unchanged
+    for f in (c, r):
+        f.set_param("q", -50.0)
+    before = c.raw_state()
+    assert r.predict([], 0.1) == 0 and float(np.linalg.eigvalsh(r.P)[0]) < 0.0
+    assert c.predict([], 0.1) == Status.NOT_POSITIVE_DEFINITE
+    assert c.raw_state() == before
+    # without the certificate's premise (alpha = 1e-2: Wc0 < 0) the predict always factorizes
+    small = generate(spec, filter="ukf", precision="double", alpha=1e-2, **loop_form).source
+    assert "_commit_diag(" not in small
