@@ -253,8 +253,8 @@ def build(model: Any, filter: str = "ekf", precision: str = "float", *, cflags: 
     """Generate, compile (cached) and load the C filter for ``model``.
 
     ``gates``, ``commit_check`` and ``options`` (the kind's own: the UKF's alpha, beta, kappa;
-    the particle filter's particles, resample_threshold, roughening and seed, the generator seed
-    init_seed starts from) are those of :func:`estgen.filters.generate`. ``cflags``/``ldflags``
+    the particle filter's particles, resample_threshold, roughening, regularization and seed,
+    the generator seed init_seed starts from) are those of :func:`estgen.filters.generate`. ``cflags``/``ldflags``
     add compiler and linker flags (sanitizers, say).
     """
     setup = FilterSetup.of(filter, precision, gates, commit_check, **options)

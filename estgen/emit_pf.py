@@ -15,7 +15,7 @@ import sympy as sp
 from .derive import Stmt, c_names, model_block, packed_index, packed_size
 from .emit import Emitter, Generated, OpCount, _common_context, _render
 from .model import ModelSpec
-from .pf import DEFAULT_SEED, PSD_TOL, PfOptions
+from .pf import DEFAULT_SEED, KERNEL_BITS, KERNEL_TOL, PSD_TOL, PfOptions
 
 if TYPE_CHECKING:
     from .filters import FilterSetup
@@ -85,7 +85,8 @@ def _prior(spec: ModelSpec, em: Emitter) -> Dict[str, Any]:
 
 def generate_pf(spec: ModelSpec, setup: "FilterSetup", opts: PfOptions) -> Generated:
     """Generate the particle filter's header and source for ``spec`` with the validated
-    ``opts``: particles (N), resample_threshold, roughening (see :func:`estgen.pf.pf_options`).
+    ``opts``: particles (N), resample_threshold, roughening, regularization (see
+    :func:`estgen.pf.pf_options`).
     ``Generated.ops`` holds the op counts of one evaluation of each model function (keys "f",
     "q", "h_<sensor>", "r_<sensor>"): the per-particle part of a step's cost.
     """
@@ -119,8 +120,12 @@ def generate_pf(spec: ModelSpec, setup: "FilterSetup", opts: PfOptions) -> Gener
     ctx["thr_n"] = em.lit(opts.resample_threshold * N)
     ctx["roughening"] = opts.roughening
     ctx["rough_scale"] = em.lit(opts.roughening * float(N) ** (-1.0 / n)) if opts.roughening > 0.0 else None
+    bw = opts.bandwidth(n)
+    ctx["bandwidth"] = em.lit(bw) if bw > 0.0 else None
     ctx["resample_threshold"] = repr(opts.resample_threshold)
     ctx["psd_tol"] = em.lit(PSD_TOL[precision])
+    ctx["kernel_tol"] = em.lit(KERNEL_TOL[precision])
+    ctx["kernel_bits"] = KERNEL_BITS
     ctx["u_scale"] = em.lit(2.0 ** -31 if precision == "double" else 2.0 ** -24)
     ctx["two"] = em.lit(2.0)
     ctx["half"] = em.lit(0.5)
@@ -131,7 +136,9 @@ def generate_pf(spec: ModelSpec, setup: "FilterSetup", opts: PfOptions) -> Gener
         f"Particles: N = {N}, stored in the struct ({N} x {n} states, {N} log-weights, {N} weights):",
         f"{N * (n + 2) * size_real} of its {ctx['struct_bytes']} bytes. Resampling when ESS < "
         f"{opts.resample_threshold:g} N (systematic, in place);",
-        ("roughening K = %g." % opts.roughening) if opts.roughening > 0.0 else "no roughening.",
+        ("roughening K = %g." % opts.roughening) if opts.roughening > 0.0 else
+        (f"regularized: a Gaussian kernel of bandwidth h = {bw:.4g} ({opts.regularization:g} times the optimal) "
+         "jitters the resampled particles." if bw > 0.0 else "no jitter after resampling."),
         "Random numbers: Lehmer 48271 mod 2^31-1 (Park-Miller-Stockmeyer) and Marsaglia's polar method;",
         f"{ctx['prefix']}_reseed(s, seed) restarts the generator, e.g. from a hardware entropy source.",
     ]

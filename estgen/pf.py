@@ -16,8 +16,21 @@ Proc. F 140(2), 1993) carrying N particles and their log-weights:
   positions ``(U + k) / N``; particle i is copied as many times as positions fall in its slice of
   the cumulative weights, in place and in O(N): particles copied more than once fill, in
   increasing order, the slots of particles not copied.
-* optional roughening after resampling (Gordon, Salmond & Smith 1993): each component j gets
-  ``K E_j N^(-1/n) z`` with ``E_j`` the spread (max - min) of the particles in j.
+* regularization at resampling (the regularized particle filter of Musso, Oudjane & Le Gland,
+  in Doucet, de Freitas & Gordon (eds.), Sequential Monte Carlo Methods in Practice, 2001; the
+  algorithm as in Arulampalam et al. 2002, sec. V-C): the weighted covariance S of the particles
+  before resampling, ``D D' = S``, and after resampling every particle moves by ``h D z``, z
+  standard normal, h the bandwidth of the Gaussian kernel that is optimal for a Gaussian density
+  (``h_opt = (4 / (N (n + 2)))^(1 / (n + 4))``, Silverman, Density Estimation, 1986) times
+  ``regularization`` (default 1). The resampled cloud is then a draw from a kernel density
+  estimate of the posterior instead of copies of a few particles, so a cloud does not collapse
+  where the process noise cannot spread it again (a parameter estimated as a constant state, a
+  precise sensor against a wide prior). It widens the posterior by the factor ``1 + h^2`` at each
+  resampling, the price of not collapsing.
+* instead of the kernel, optional roughening after resampling (Gordon, Salmond & Smith 1993):
+  each component j gets ``K E_j N^(-1/n) z`` with ``E_j`` the spread (max - min) of the
+  particles in j. Giving ``roughening`` turns the kernel off unless ``regularization`` is given
+  too, which is refused: one jitter or the other.
 * ``x`` and ``P`` are the weighted mean and (biased) weighted covariance of the particles
   (circular mean and wrapped deviations for angle states), recomputed after every call. The
   mean is accumulated as deviations from the first live particle, so that a float cloud far
@@ -62,13 +75,19 @@ from .rng import Rng
 from .status import Status
 
 __all__ = ["PfOptions", "pf_options", "ReferencePF", "psd_cholesky", "systematic_counts", "fill_in_place",
-           "MAX_PARTICLES", "DEFAULT_PARTICLES", "DEFAULT_SEED"]
+           "kernel_bandwidth", "kernel_covariance", "lower_times", "MAX_PARTICLES", "DEFAULT_PARTICLES", "DEFAULT_SEED", "DEFAULT_REGULARIZATION"]
 
 MAX_PARTICLES = 1_000_000
 DEFAULT_PARTICLES = 500
 DEFAULT_SEED = 1
-#: a pivot of Q's Cholesky factorization down to -PSD_TOL * Q_jj is taken as zero (semidefinite Q)
+#: the kernel bandwidth at resampling as a multiple of the optimal one (0: no kernel)
+DEFAULT_REGULARIZATION = 1.0
+#: a pivot of Q's Cholesky factorization within +-PSD_TOL * Q_jj is taken as zero (semidefinite Q)
 PSD_TOL = {"double": 1e-12, "float": 1e-5}
+#: the same for the regularization kernel's factor of the particles' covariance, which is
+#: singular after a resampling that left fewer distinct particles than states: a direction with
+#: less than this fraction of a state's variance gets no jitter
+KERNEL_TOL = {"double": 1e-9, "float": 1e-4}
 
 
 @dataclass(frozen=True)
@@ -80,16 +99,32 @@ class PfOptions:
     resample_threshold: float = 0.5
     #: roughening constant K (0: none); Gordon, Salmond & Smith used K = 0.2
     roughening: float = 0.0
+    #: the regularization kernel's bandwidth as a multiple of the optimal one (0: none)
+    regularization: float = DEFAULT_REGULARIZATION
+
+    def bandwidth(self, n: int) -> float:
+        """h of the kernel at resampling for n states, 0 without one (see :func:`kernel_bandwidth`)."""
+        return self.regularization * kernel_bandwidth(self.particles, n) if self.regularization > 0.0 else 0.0
+
+
+def kernel_bandwidth(N: int, n: int) -> float:
+    """The bandwidth of the Gaussian kernel that minimizes the mean integrated square error
+    of the kernel density estimate of a Gaussian density from N samples in n dimensions:
+    ``(4 / (N (n + 2)))^(1 / (n + 4))`` (Silverman, Density Estimation for Statistics and
+    Data Analysis, 1986, eq. 4.14; the h_opt of Musso, Oudjane & Le Gland 2001)."""
+    return (4.0 / (N * (n + 2.0))) ** (1.0 / (n + 4.0))
 
 
 def pf_options(n: int, options: Mapping[str, Any]) -> PfOptions:
-    """Validate the particle filter's options (particles, resample_threshold, roughening).
-    Raises :class:`ModelError` for unknown options or values out of range."""
-    known = {"particles", "resample_threshold", "roughening"}
+    """Validate the particle filter's options (particles, resample_threshold, roughening,
+    regularization). ``regularization`` None (the default) is 1 without roughening and 0 with
+    it; both above 0 are refused. Raises :class:`ModelError` for unknown options or values out
+    of range."""
+    known = {"particles", "resample_threshold", "roughening", "regularization"}
     unknown = sorted(set(options) - known)
     if unknown:
-        raise ModelError(f"unknown particle filter option(s) {unknown}; it takes particles, resample_threshold "
-                         f"and roughening")
+        raise ModelError(f"unknown particle filter option(s) {unknown}; it takes particles, resample_threshold, "
+                         f"roughening and regularization")
     N = options.get("particles", DEFAULT_PARTICLES)
     if N is None:
         N = DEFAULT_PARTICLES
@@ -99,7 +134,9 @@ def pf_options(n: int, options: Mapping[str, Any]) -> PfOptions:
     if not max(2, n + 1) <= N <= MAX_PARTICLES:
         raise ModelError(f"particles must lie in {max(2, n + 1)}..{MAX_PARTICLES} for {n} states, got {N}")
     vals = {}
-    for k, default in (("resample_threshold", 0.5), ("roughening", 0.0)):
+    rough_given = options.get("roughening") not in (None, 0, 0.0)
+    reg_default = 0.0 if rough_given else DEFAULT_REGULARIZATION
+    for k, default in (("resample_threshold", 0.5), ("roughening", 0.0), ("regularization", reg_default)):
         v = options.get(k, default)
         if v is None:
             v = default
@@ -110,25 +147,64 @@ def pf_options(n: int, options: Mapping[str, Any]) -> PfOptions:
         raise ModelError(f"resample_threshold is a fraction of N in (0, 1], got {vals['resample_threshold']}")
     if vals["roughening"] < 0.0:
         raise ModelError(f"roughening must be >= 0, got {vals['roughening']}")
-    return PfOptions(N, vals["resample_threshold"], vals["roughening"])
+    if not 0.0 <= vals["regularization"] <= 10.0:
+        raise ModelError(f"regularization is the kernel bandwidth as a multiple of the optimal one, in [0, 10], "
+                         f"got {vals['regularization']}")
+    if vals["roughening"] > 0.0 and vals["regularization"] > 0.0:
+        raise ModelError("roughening and regularization are two ways of jittering the resampled particles: "
+                         "give one (regularization 0 to use roughening)")
+    return PfOptions(N, vals["resample_threshold"], vals["roughening"], vals["regularization"])
 
 
 def psd_cholesky(A: np.ndarray, tol: float = PSD_TOL["double"]) -> Optional[np.ndarray]:
     """Lower L with L L' = A for a symmetric positive semidefinite A: a pivot in
-    [-tol A_jj, 0] gives a zero column (that direction carries no noise). None when a pivot is
-    more negative (A is not semidefinite). The same loop as the generated C."""
+    [-tol A_jj, tol A_jj] gives a zero column (that direction carries no noise; a pivot that
+    small is rounding, whose square root would be noise of order sqrt(tol)). None when a pivot
+    is more negative (A is not semidefinite). The same loop as the generated C."""
     n = A.shape[0]
     L = np.zeros((n, n))
     for j in range(n):
-        d = A[j, j] - sum(L[j, k] * L[j, k] for k in range(j))
-        if d > 0.0:
+        d = float(A[j, j])
+        for k in range(j):  # subtracted one by one, as the C does: the same rounding
+            d -= L[j, k] * L[j, k]
+        if d > tol * A[j, j]:
             ljj = math.sqrt(d)
             L[j, j] = ljj
             for i in range(j + 1, n):
-                L[i, j] = (A[i, j] - sum(L[i, k] * L[j, k] for k in range(j))) / ljj
+                e = float(A[i, j])
+                for k in range(j):
+                    e -= L[i, k] * L[j, k]
+                L[i, j] = e / ljj
         elif d < -tol * A[j, j] or not math.isfinite(d):
             return None
     return L
+
+
+#: significant bits kept of the covariance that shapes the regularization kernel
+KERNEL_BITS = 16
+
+
+def kernel_covariance(P: np.ndarray) -> np.ndarray:
+    """P rounded to :data:`KERNEL_BITS` significant bits (as the C: frexp, rint, ldexp). The
+    kernel's factor feeds the particles' covariance back into the particles, where a difference
+    in the last bits (the C against this reference, float against double) would grow by about
+    1 + h cond(P) at every resampling; rounded, both sides jitter with the same factor unless an
+    entry lies within rounding of a 2^-16 step, and the kernel's shape needs no more digits."""
+    m, e = np.frexp(P)
+    return np.ldexp(np.rint(np.ldexp(m, KERNEL_BITS)), e - KERNEL_BITS)
+
+
+def lower_times(Z: np.ndarray, L: np.ndarray, start: Optional[np.ndarray] = None) -> np.ndarray:
+    """Rows of ``start + Z @ L.T`` for a lower-triangular L, each sum taken in the C's order
+    (``e = start_j; e += L[j][k] z[k]`` for k = 0..j), so that the reference rounds as the C
+    does (start: zeros when None)."""
+    out = np.zeros(Z.shape[:-1] + (L.shape[0],))
+    for j in range(L.shape[0]):
+        e = np.zeros(Z.shape[:-1]) if start is None else start[..., j]
+        for k in range(j + 1):
+            e = e + L[j, k] * Z[..., k]
+        out[..., j] = e
+    return out
 
 
 def systematic_counts(w: np.ndarray, U: float) -> np.ndarray:
@@ -176,10 +252,10 @@ class ReferencePF(_ReferenceBase):
     filter = "pf"
 
     def __init__(self, spec: ModelSpec, *, particles: int = DEFAULT_PARTICLES, resample_threshold: float = 0.5,
-                 roughening: float = 0.0, seed: int = DEFAULT_SEED, params: Optional[Mapping[str, float]] = None,
-                 functions: Optional[ModelFunctions] = None) -> None:
+                 roughening: float = 0.0, regularization: Optional[float] = None, seed: int = DEFAULT_SEED,
+                 params: Optional[Mapping[str, float]] = None, functions: Optional[ModelFunctions] = None) -> None:
         self.options = pf_options(spec.n, {"particles": particles, "resample_threshold": resample_threshold,
-                                           "roughening": roughening})
+                                           "roughening": roughening, "regularization": regularization})
         super().__init__(spec, params, functions)
         n, N = spec.n, self.options.particles
         xs, us, ps, dt = spec.x_syms, spec.u_syms, spec.p_syms, spec.dt
@@ -240,18 +316,23 @@ class ReferencePF(_ReferenceBase):
         w, X = self._w, self._X
         live = w > 0.0
         wl, Xl = w[live], X[live]
+        # every sum runs in particle order (cumsum), as the C's loops: the regularization kernel
+        # feeds P back into the particles, so a different summation order would grow into a
+        # deviation of the C from this reference
         tot = np.cumsum(wl)[-1]
         # the mean as the first live particle plus the weighted mean deviation from it: no
         # cancellation for a cloud far from the origin, and exactly that particle (P exactly 0)
         # when every particle is a copy of it
-        x = Xl[0] + (wl @ (Xl - Xl[0])) / tot
+        x = Xl[0] + np.cumsum(wl[:, None] * (Xl - Xl[0]), axis=0)[-1] / tot
         if self._angles.any():
-            x[self._angles] = np.arctan2(wl @ np.sin(Xl[:, self._angles]), wl @ np.cos(Xl[:, self._angles]))
+            xa = Xl[:, self._angles]
+            x[self._angles] = np.arctan2(np.cumsum(wl[:, None] * np.sin(xa), axis=0)[-1],
+                                         np.cumsum(wl[:, None] * np.cos(xa), axis=0)[-1])
         d = Xl - x
         if self._angles.any():
             d[:, self._angles] = wrap_angle(d[:, self._angles])
         self._x = x
-        self._P = ((d.T * wl) @ d) / tot
+        self._P = np.cumsum((wl[:, None] * d)[:, :, None] * d[:, None, :], axis=0)[-1] / tot
 
     # -- the filter ---------------------------------------------------------------------------
     def predict(self, u: Sequence[float], dt: float) -> int:
@@ -279,9 +360,9 @@ class ReferencePF(_ReferenceBase):
             Zw[:, cw] = D[:, :cw.size]
             Zq = np.zeros((L, self.n))
             Zq[:, cq] = D[:, cw.size:]
-            W = Zw @ Aw.T
+            W = lower_times(Zw, Aw)
             Xl = self._X[live]
-            Xn = _columns(self._fv(*Xl.T, *uv, dtf, *p, *W.T), L) + Zq @ Lq.T
+            Xn = lower_times(Zq, Lq, _columns(self._fv(*Xl.T, *uv, dtf, *p, *W.T), L))
             Xn = self._wrap_rows(Xn)
             ok = np.all(np.isfinite(Xn), axis=1)
         if not ok.any():
@@ -377,6 +458,15 @@ class ReferencePF(_ReferenceBase):
         fill_in_place(self._X, counts)
         self._lw = np.zeros(N)
         self._w = np.ones(N)
+        h = self.options.bandwidth(self.n)
+        if h > 0.0:
+            # the kernel's shape: the covariance of the resampled cloud (the moments code, as the
+            # C); a factorization that fails (rounding) leaves the particles unjittered
+            self._moments()
+            D = psd_cholesky(kernel_covariance(self._P), KERNEL_TOL["double"])
+            if D is not None:
+                Z = self.rng.normals(N * self.n).reshape(N, self.n)
+                self._X = self._wrap_rows(self._X + h * lower_times(Z, D))
         K = self.options.roughening
         if K > 0.0:
             scale = K * float(N) ** (-1.0 / self.n)

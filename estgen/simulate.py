@@ -479,8 +479,8 @@ def monte_carlo(
     Runs are spread over ``workers`` processes (default: all cores; 1 runs in this process).
     ``progress``: show progress on stderr (default: when stderr is a terminal).
     ``gates``, ``commit_check`` and the kind's own options (``options`` and ``kind_options``
-    together: the UKF's alpha, beta, kappa; the particle filter's particles, resample_threshold
-    and roughening) are those of :func:`estgen.filters.generate`. A particle filter's generator
+    together: the UKF's alpha, beta, kappa; the particle filter's particles, resample_threshold,
+    roughening and regularization) are those of :func:`estgen.filters.generate`. A particle filter's generator
     gets its own seed in every run, derived from ``seed`` and the run number.
     ``burn_in``: steps left out of the verdict (default: :func:`settling_steps` of run 0).
     """

@@ -13,7 +13,7 @@ import sympy as sp
 import estgen
 from estgen import Model, Status, validate
 from estgen.errors import ModelError
-from estgen.pf import ReferencePF, fill_in_place, pf_options, psd_cholesky, systematic_counts
+from estgen.pf import ReferencePF, fill_in_place, kernel_bandwidth, pf_options, psd_cholesky, systematic_counts
 from estgen.rng import MODULUS, Rng, next_state, seed_state, uniform_double, uniform_float
 
 
@@ -138,17 +138,22 @@ def _box_model() -> estgen.ModelSpec:
     return validate(m)
 
 
-def _grid_run(spec, f, h, Q, R, prior, inputs, steps, particles, seed):
+def _grid_run(spec, f, h, Q, R, prior, inputs, steps, particles, seed, regularization=None):
     """Numerical integration of the Bayes recursion on a fine grid (Arulampalam et al. 2002,
     sec. III-B), beside the reference particle filter on the same simulated data. Returns the
-    largest |mean error| / posterior std and |variance error| / posterior variance."""
+    largest |mean error| / posterior std and the median over the steps of |variance error| /
+    posterior variance. (Not the largest: where x^2/20 leaves a mirror mode holding 0.1% of
+    the probability 35 units away, that mode makes most of the variance and a handful of
+    particles estimate it; the worst step's variance error of the plain bootstrap filter is 0.3
+    to 0.6 over seeds 1 to 3, measured.)"""
     g = np.linspace(-45.0, 45.0, 2401)
     p = prior(g)
     p = p / p.sum()
-    pf = ReferencePF(spec, particles=particles, seed=seed)
+    pf = ReferencePF(spec, particles=particles, seed=seed, regularization=regularization)
     rng = np.random.default_rng(seed)
     xt = float(rng.choice(g, p=p))
-    worst_m = worst_v = 0.0
+    worst_m = 0.0
+    errs_v = []
     for k in range(1, steps + 1):
         u = inputs(k)
         xt = f(xt, u) + math.sqrt(Q) * rng.standard_normal()
@@ -163,29 +168,33 @@ def _grid_run(spec, f, h, Q, R, prior, inputs, steps, particles, seed):
         assert pf.predict([u] if spec.nu else [], 1.0) == Status.OK
         assert pf.update(spec.sensors[0].name, [z]) == Status.OK
         worst_m = max(worst_m, abs(pf.x[0] - mu) / math.sqrt(var))
-        worst_v = max(worst_v, abs(pf.P[0, 0] - var) / var)
-    return worst_m, worst_v
+        errs_v.append(abs(pf.P[0, 0] - var) / var)
+    return worst_m, float(np.median(errs_v))
 
 
 @pytest.mark.slow
-def test_posterior_matches_grid_filter_growth_model():
+@pytest.mark.parametrize("regularization", [0.0, None], ids=["bootstrap", "regularized"])
+def test_posterior_matches_grid_filter_growth_model(regularization):
+    # the plain bootstrap filter and the default (regularization kernel at resampling)
     spec = _growth_model()
-    wm, wv = _grid_run(
+    wm, mv = _grid_run(
         spec, lambda x, u: x / 2 + 25 * x / (1 + x ** 2) + u, lambda x: x ** 2 / 20, 10.0, 1.0,
-        lambda g: np.exp(-0.5 * (g - 0.1) ** 2 / 5.0), lambda k: 8 * math.cos(1.2 * k), 25, 20000, 7)
+        lambda g: np.exp(-0.5 * (g - 0.1) ** 2 / 5.0), lambda k: 8 * math.cos(1.2 * k), 25, 20000, 7,
+        regularization)
     # Monte Carlo error of 20000 particles: a few hundredths of a posterior std
     assert wm < 0.1, wm
-    assert wv < 0.25, wv
+    assert mv < 0.1, mv
 
 
 @pytest.mark.slow
-def test_posterior_matches_grid_filter_uniform_prior():
+@pytest.mark.parametrize("regularization", [0.0, None], ids=["bootstrap", "regularized"])
+def test_posterior_matches_grid_filter_uniform_prior(regularization):
     spec = _box_model()
-    wm, wv = _grid_run(
+    wm, mv = _grid_run(
         spec, lambda x, u: x + 0.3 * np.sin(x), lambda x: x ** 3 / 4, 0.05, 0.5,
-        lambda g: ((g >= -2.0) & (g <= 3.0)).astype(float), lambda k: 0.0, 25, 20000, 4)
+        lambda g: ((g >= -2.0) & (g <= 3.0)).astype(float), lambda k: 0.0, 25, 20000, 4, regularization)
     assert wm < 0.1, wm
-    assert wv < 0.25, wv
+    assert mv < 0.1, mv
 
 
 # -- the reference filter's contract ------------------------------------------------------------
@@ -313,12 +322,64 @@ def test_options_are_checked():
     with pytest.raises(ModelError, match="unknown"):
         pf_options(1, {"alpha": 1.0})
     assert pf_options(2, {}).particles == 500
+    # the regularization kernel by default; roughening replaces it; both at once is refused
+    assert pf_options(2, {}).regularization == 1.0
+    assert pf_options(2, {"roughening": 0.2}).regularization == 0.0
+    assert pf_options(2, {"regularization": 0.0}).bandwidth(2) == 0.0
+    with pytest.raises(ModelError, match="roughening and regularization"):
+        pf_options(2, {"roughening": 0.2, "regularization": 1.0})
+    with pytest.raises(ModelError, match="regularization"):
+        pf_options(2, {"regularization": -0.5})
+
+
+@pytest.mark.parametrize("n", [1, 2, 3, 6])
+def test_kernel_bandwidth_is_silvermans(n):
+    # scipy.stats.gaussian_kde's Silverman factor (n_samples (d + 2) / 4)^(-1 / (d + 4)) is the
+    # bandwidth optimal for a Gaussian density (Silverman 1986), the h_opt of Musso, Oudjane &
+    # Le Gland 2001; in one dimension the well-known 1.06 N^(-1/5) (from memory)
+    for N in (100, 500, 20000):
+        kde = scipy.stats.gaussian_kde(np.random.default_rng(1).standard_normal((n, N)))
+        assert kernel_bandwidth(N, n) == pytest.approx(kde.silverman_factor(), rel=1e-12)
+    assert kernel_bandwidth(1000, 1) == pytest.approx(1.06 * 1000 ** -0.2, rel=0.01)
+
+
+def test_regularization_widens_the_cloud_by_one_plus_h_squared():
+    # A Gaussian kernel of covariance h^2 S around samples of covariance S gives a density of
+    # covariance (1 + h^2) S and the same mean (Silverman 1986, sec. 4.2; Musso et al. 2001):
+    # equal weights resample every particle once (systematic, Kitagawa 1996), so the kernel's
+    # jitter is all that changes the cloud
+    spec = validate(_two_state_model())
+    N = 20000
+    r = ReferencePF(spec, particles=N, seed=5)
+    x, P = np.array([1.0, -2.0]), np.array([[2.0, 0.6], [0.6, 0.5]])
+    assert r.set_state(x, P) == Status.OK
+    before = r.particles
+    r._resample()
+    h = kernel_bandwidth(N, 2)
+    d = r.particles - before
+    assert np.all(np.abs(d) > 0.0)  # every particle moved
+    Pn = np.cov(r.particles.T, bias=True)
+    sd = np.sqrt(np.diag(P))
+    # sampling error of the cross term ~ 2 h / sqrt(N) relative: 5 sigma
+    tol = 5 * 2 * h / math.sqrt(N)
+    assert np.all(np.abs(Pn - (1 + h * h) * P) / np.outer(sd, sd) < tol), (Pn, (1 + h * h) * P)
+    assert np.all(np.abs(r.particles.mean(axis=0) - x) / sd < 5 * h / math.sqrt(N))
+
+
+def _two_state_model() -> Model:
+    m = Model("pair")
+    a, b = m.states("a b")
+    m.process([a, b])
+    m.process_noise(sp.diag(0.01, 0.01))
+    m.sensor("s", [a + b], noise=[1.0])
+    m.initial([0.0, 0.0], sp.diag(1.0, 1.0))
+    return m
 
 
 def test_roughening_spreads_a_collapsed_cloud():
     # Gordon, Salmond & Smith (1993): jitter of std K E N^(-1/d) after resampling
     spec = _growth_model()
-    plain = ReferencePF(spec, particles=500, seed=8, resample_threshold=1.0)
+    plain = ReferencePF(spec, particles=500, seed=8, resample_threshold=1.0, regularization=0.0)
     rough = ReferencePF(spec, particles=500, seed=8, resample_threshold=1.0, roughening=0.2)
     for f in (plain, rough):
         f.set_state([10.0], [[4.0]])

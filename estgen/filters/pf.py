@@ -25,11 +25,14 @@ __all__ = ["PF", "PfKindOptions"]
 @dataclass(frozen=True)
 class PfKindOptions(FilterOptions):
     """Particle count, resampling threshold (a fraction of N for the effective sample size),
-    roughening constant, and the random generator's seed."""
+    the jitter after resampling (regularization kernel or roughening), and the random
+    generator's seed."""
 
     particles: int = DEFAULT_PARTICLES
     resample_threshold: float = 0.5
     roughening: float = 0.0
+    #: None: the kernel at its optimal bandwidth (1) unless roughening is given (then 0)
+    regularization: Optional[float] = None
     #: run time, not generated: the seed the C's init_seed and the reference start from
     seed: int = field(default=DEFAULT_SEED, metadata={"runtime": True})
 
@@ -37,13 +40,17 @@ class PfKindOptions(FilterOptions):
         Flag("particles", int, f"PF: number of particles (default {DEFAULT_PARTICLES})", "N"),
         Flag("resample_threshold", float, "PF: resample when the effective sample size falls below this "
                                           "fraction of N (default 0.5)"),
-        Flag("roughening", float, "PF: roughening constant K, 0 for none (default 0)"),
+        Flag("roughening", float, "PF: roughening constant K after resampling instead of the regularization "
+                                  "kernel, 0 for none (default 0)"),
+        Flag("regularization", float, "PF: bandwidth of the Gaussian kernel that jitters the particles at "
+                                      "resampling, as a multiple of the optimal one; 0 turns it off (default 1, "
+                                      "0 when --roughening is given)"),
     )
 
     def validated(self, spec: ModelSpec) -> PfOptions:
         """The compile-time options, checked against the model (particles > n, ...)."""
         return pf_options(spec.n, {"particles": self.particles, "resample_threshold": self.resample_threshold,
-                                   "roughening": self.roughening})
+                                   "roughening": self.roughening, "regularization": self.regularization})
 
     def check(self, spec: ModelSpec) -> None:
         self.validated(spec)
@@ -78,4 +85,5 @@ class PF(FilterKind):
                   functions: Optional[ModelFunctions] = None) -> Any:
         o = cast(PfKindOptions, options)
         return ReferencePF(spec, particles=o.particles, resample_threshold=o.resample_threshold,
-                           roughening=o.roughening, seed=o.seed, params=params, functions=functions)
+                           roughening=o.roughening, regularization=o.regularization, seed=o.seed, params=params,
+                           functions=functions)

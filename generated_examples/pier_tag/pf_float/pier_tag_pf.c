@@ -197,7 +197,8 @@ static void pier_tag_pf_r_shadow(const pier_tag_pf_t *s, float *R)
 
 /* L (dense, row-major dim x dim, zero above the diagonal) with L L' = A, A packed symmetric.
    tol < 0: A must be positive definite (every pivot finite and > 0). tol >= 0: A may be
-   semidefinite; a pivot in [-tol A_jj, 0] gives a zero column. OK or NOT_POSITIVE_DEFINITE. */
+   semidefinite; a pivot in [-tol A_jj, tol A_jj] gives a zero column (a pivot that small is
+   rounding). OK or NOT_POSITIVE_DEFINITE. */
 static int pier_tag_pf_chol(const float *A, size_t dim, float tol, float *L)
 {
     size_t i, j, k;
@@ -210,7 +211,7 @@ static int pier_tag_pf_chol(const float *A, size_t dim, float tol, float *L)
         for (k = 0u; k < j; ++k) {
             d -= L[j * dim + k] * L[j * dim + k];
         }
-        if (d > 0.0F) {
+        if (d > ((tol > 0.0F) ? tol * ajj : 0.0F)) {
             const float ljj = sqrtf(d);
             L[j * dim + j] = ljj;
             for (i = j + 1u; i < dim; ++i) {
