@@ -64,8 +64,13 @@ def _cmd_generate(args: argparse.Namespace) -> int:
         for name in output_names(spec, args.filter):
             print(os.path.join(args.out, name))
         return 0
+    from .progress import Progress, reporting, wanted
+
     t0 = time.perf_counter()
-    gen = setup.generate(spec)
+    # the stages on stderr (a terminal, or --progress); the summary line below ends it
+    with Progress(f"generate {spec.name}_{args.filter}", None, wanted(args.quiet, args.progress), clear=True) as bar, \
+            reporting(bar):
+        gen = setup.generate(spec)
     elapsed = time.perf_counter() - t0
     if args.check:
         stale = stale_files(gen.files, args.out)
@@ -158,7 +163,9 @@ def _parser() -> argparse.ArgumentParser:
     filters.add_arguments(g, "float")
     g.add_argument("-o", "--out", required=True, metavar="DIR", help="output folder")
     g.add_argument("--check", action="store_true", help="write nothing; exit 1 and list stale files")
-    g.add_argument("-q", "--quiet", action="store_true", help="print nothing on success")
+    g.add_argument("-q", "--quiet", action="store_true", help="print nothing on success, no progress")
+    g.add_argument("--progress", action="store_true",
+                   help="show the stages (derivation, printing) even when stderr is not a terminal: one line each")
     g.add_argument("--depfile", metavar="FILE",
                    help="also write FILE, the outputs' dependencies (the model and the local Python files it "
                         "imports) in the Make rule format compilers write with -MD; outputs are then always "

@@ -23,6 +23,7 @@ from .ir import Stmt, comment
 from .ir import is_trivial as _is_trivial
 from .layout import packed_index, packed_size
 from .model import ModelSpec, SensorSpec
+from .progress import detail, stage
 
 __all__ = [
     "Stmt",
@@ -134,6 +135,7 @@ def model_block(
     """
     exprs = [e for _, _, e in outputs]
     if exprs:
+        detail("common subexpressions")
         repl, reduced = sp.cse(exprs, symbols=sp.numbered_symbols(prefix), order="canonical")
     else:
         repl, reduced = [], []
@@ -692,8 +694,10 @@ def derive_ekf_update(spec: SensorSpec, mspec: ModelSpec) -> EkfUpdateCode:
 
 def derive_ekf(spec: ModelSpec) -> EkfCode:
     """Everything the EKF templates need for ``spec``."""
+    stage("derive predict: f, F = df/dx, Q")
     code = EkfCode(spec, derive_ekf_predict(spec))
     for s in spec.sensors:
+        stage(f"derive update {s.name}: h, H = dh/dx, R")
         code.updates.append(derive_ekf_update(s, spec))
     return code
 

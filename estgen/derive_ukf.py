@@ -49,6 +49,7 @@ from .derive import Stmt, c_names, packed_index
 from .errors import UsageError
 from .ir import is_trivial as _is_trivial
 from .model import ModelSpec, SensorSpec, noise_factor
+from .progress import stage
 from .unrolled import Block as _Block
 from .unrolled import cholesky as _cholesky
 
@@ -656,7 +657,9 @@ def _factor_symbols(n: int) -> Dict[Tuple[int, int], sp.Expr]:
 def derive_ukf(spec: ModelSpec, wts: UkfWeights) -> UkfCode:
     """Everything the UKF template needs for ``spec`` (models without attitudes; with them,
     :func:`estgen.derive_ukf_att.derive_ukf_attitude`)."""
+    stage("derive predict: f at the sigma points, mean, covariance")
     code = UkfCode(spec, wts, derive_ukf_predict(spec, wts))
     for s in spec.sensors:
+        stage(f"derive update {s.name}: h at the sigma points, gain, covariance")
         code.updates.append(derive_ukf_update(s, spec, wts))
     return code

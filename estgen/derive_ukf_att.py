@@ -33,6 +33,7 @@ from .derive_ukf import (UkfCode, UkfPredictCode, UkfUpdateCode, UkfWeights, _au
                          _gain_and_commit, _used)
 from .errorstate import inject, normalize
 from .model import ModelSpec, SensorSpec
+from .progress import stage
 from .unrolled import Block as _Block
 
 __all__ = ["derive_ukf_attitude"]
@@ -217,6 +218,9 @@ def derive_ukf_attitude_update(sensor: SensorSpec, spec: ModelSpec, wts: UkfWeig
 
 def derive_ukf_attitude(spec: ModelSpec, wts: UkfWeights) -> UkfCode:
     """Everything the UKF template needs for a model with attitude states: the error-space transform."""
+    stage("derive predict: f at the sigma points, mean, covariance")
     code = UkfCode(spec, wts, derive_ukf_attitude_predict(spec, wts))
-    code.updates = [derive_ukf_attitude_update(s, spec, wts) for s in spec.sensors]
+    for s in spec.sensors:
+        stage(f"derive update {s.name}: h at the sigma points, gain, covariance")
+        code.updates.append(derive_ukf_attitude_update(s, spec, wts))
     return code

@@ -34,6 +34,7 @@ from .ir import Loop, Node
 from .unrolled import commit_check
 from .layout import Field, StructLayout
 from .model import ModelSpec, unit_problem
+from .progress import detail, stage
 from .status import ADVICE, KIND_STATUSES, PRECEDENCE, Status
 
 if TYPE_CHECKING:  # annotation only: the filter kinds import this module, never the reverse
@@ -544,6 +545,7 @@ def _common_context(spec: ModelSpec, setup: "FilterSetup") -> Dict[str, Any]:
 
 
 def _render(ctx: Dict[str, Any]) -> Generated:
+    detail("templates")
     env = template_env()
     source = env.get_template(ctx["template"]).render(**ctx)
     header = env.get_template("filter.h.j2").render(long_functions=long_functions(source),
@@ -715,6 +717,7 @@ def generate_ekf(spec: ModelSpec, setup: "FilterSetup") -> Generated:
     em: Emitter = ctx["emitter"]
     # the derivation does not depend on the precision: derive once per spec, print twice
     code = spec.derived("derive_ekf", lambda: derive_ekf(spec))
+    stage(f"print C ({setup.precision})")
     ops: Dict[str, Dict[str, int]] = {}
     pc = OpCount()
     p_lines = em.lines(with_sections(code.predict.stmts, EKF_PREDICT_SECTIONS), pc)

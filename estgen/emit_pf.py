@@ -15,6 +15,7 @@ import sympy as sp
 from .derive import Stmt, c_names, model_block, packed_index, packed_size
 from .emit import Emitter, Generated, OpCount, _common_context, _render
 from .model import ModelSpec
+from .progress import stage
 from .pf import DEFAULT_SEED, KERNEL_BITS, KERNEL_TOL, PSD_TOL, PfOptions
 
 if TYPE_CHECKING:
@@ -94,6 +95,7 @@ def generate_pf(spec: ModelSpec, setup: "FilterSetup", opts: PfOptions) -> Gener
     em: Emitter = ctx["emitter"]
     precision = setup.precision
     N, n = opts.particles, spec.n
+    stage(f"derive and print the model functions ({precision})")
     ops: Dict[str, OpCount] = {}
     fns = _model_functions(spec, em, ops)
     for sctx, sf, s in zip(ctx["sensors"], fns["sensors"], spec.sensors):

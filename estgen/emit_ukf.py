@@ -13,6 +13,7 @@ from .derive_ukf_att import derive_ukf_attitude
 from .emit import COMPACT_MIN_N, Emitter, Generated, OpCount, _common_context, _render, gate_split
 from .emit_ukf_loop import loop_certificate, loop_functions, loop_predict, loop_update
 from .model import ModelSpec
+from .progress import stage
 from .unrolled import factor_function
 
 if TYPE_CHECKING:
@@ -66,6 +67,7 @@ def generate_ukf(spec: ModelSpec, setup: "FilterSetup", wts: UkfWeights) -> Gene
     em: Emitter = ctx["emitter"]
     precision = setup.precision
     code = derive_ukf_attitude(spec, wts) if spec.attitudes else derive_ukf(spec, wts)
+    stage(f"print C ({precision})")
     size_real = 4 if precision == "float" else 8
     n, np_ = ctx["n"], ctx["np"]
     ne = ctx["ne"]  # sigma points live in the error space (ne = n without attitudes)

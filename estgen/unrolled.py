@@ -10,6 +10,7 @@ import sympy as sp
 
 from .ir import Stmt, is_trivial
 from .layout import packed_index
+from .progress import detail
 
 __all__ = ["Block", "cholesky", "factor_function", "commit_check"]
 
@@ -35,6 +36,7 @@ class Block:
         code uses (a number, a symbol, or a new const local). Equal results share one local."""
         if not items:
             return {}
+        detail("common subexpressions")
         repl, reduced = sp.cse([e for _, e in items], symbols=sp.numbered_symbols(prefix), order="canonical")
         # a shared condition (a > 0) would become a floating local: put conditions back inline
         inline: Dict[sp.Symbol, sp.Basic] = {}

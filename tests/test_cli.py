@@ -66,3 +66,66 @@ def test_bad_input_exit_2_without_traceback(tmp_path):
     # a bad option value is bad input too
     proc = run("generate", example_model("linear_cart"), "--gate", "encoder=2", "-o", str(tmp_path / "o"))
     assert proc.returncode == 2 and "Traceback" not in proc.stderr
+
+
+def _files(out) -> dict:
+    return {name: (out / name).read_bytes() for name in sorted(os.listdir(out))}
+
+
+def test_generate_progress_goes_to_stderr_and_changes_nothing_else(tmp_path):
+    """Common practice (as for verify and simulate): progress on stderr, results on stdout. A log
+    (stderr not a terminal) gets nothing unless --progress asks, then one plain line per stage
+    (no carriage returns or escape sequences); -q silences everything; stdout and the files are
+    the same bytes whatever is shown."""
+    model = example_model("beacon_rover")
+    out = tmp_path / "c"
+    args = ("generate", model, "--filter", "ekf", "--precision", "double", "-o", str(out))
+    plain = run(*args)
+    assert plain.returncode == 0, plain.stderr
+    files = _files(out)
+    assert plain.stderr.count("\n") == 1 and "generated in" in plain.stderr  # the summary line only
+    shown = run(*args, "--progress")
+    assert shown.returncode == 0, shown.stderr
+    assert shown.stdout == plain.stdout and _files(out) == files
+    lines = shown.stderr.splitlines()
+    stages = ["derive predict", "derive update range_a", "derive update range_b", "derive update range_cd",
+              "derive update compass", "print C (double)"]
+    assert len(lines) == len(stages) + 1 and "generated in" in lines[-1]
+    for line, name in zip(lines, stages):
+        assert line.startswith("generate rover_ekf: " + name), lines
+    assert "\r" not in shown.stderr and "\x1b" not in shown.stderr
+    quiet = run(*args, "--progress", "-q")
+    assert quiet.returncode == 0 and quiet.stdout == "" and quiet.stderr == ""
+    assert _files(out) == files
+
+
+def test_generate_progress_on_a_terminal_rewrites_one_line(tmp_path):
+    """On a terminal the stages (the attitude UKF's here) and what each is doing rewrite one line
+    (carriage return, erase to the end of line: ECMA-48 EL), which is erased before the summary
+    line (common practice for progress displays)."""
+    import pty
+
+    master, slave = pty.openpty()
+    model = os.path.join(ROOT, "tests", "models", "attitude_gyro.py")
+    proc = subprocess.Popen([sys.executable, "-m", "estgen", "generate", model, "--filter", "ukf", "-o",
+                             str(tmp_path / "c")], cwd=ROOT, stdout=subprocess.PIPE, stderr=slave)
+    os.close(slave)
+    chunks = []
+    while True:
+        try:
+            data = os.read(master, 65536)
+        except OSError:  # EIO: the child closed the terminal
+            break
+        if not data:
+            break
+        chunks.append(data)
+    os.close(master)
+    stdout = proc.stdout.read().decode()
+    assert proc.wait() == 0
+    err = b"".join(chunks).decode()
+    assert "attgyro_ukf.c" in stdout and "derive" not in stdout
+    for text in ("derive predict: f at the sigma points", "derive update acc", "derive update mag",
+                 "common subexpressions", "print C (float)"):
+        assert "\rgenerate attgyro_ukf: " in err and text in err, err
+    progress, summary = err.rsplit("\r\x1b[K", 1)
+    assert "\n" not in progress.strip("\r\n") and summary.startswith("attgyro_ukf: ") and "generated in" in summary
