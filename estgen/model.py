@@ -84,6 +84,15 @@ NON_DIFFERENTIABLE: Tuple[type, ...] = (
 )
 
 
+def wrap_angle(a: Any) -> Any:
+    """Wrap angles (radians, scalar or array) to (-pi, pi]."""
+    two_pi = 2.0 * math.pi
+    w = math.pi - np.mod(math.pi - np.asarray(a, dtype=float), two_pi)
+    # mod(tiny negative, 2 pi) rounds to 2 pi, giving -pi: move it to the closed end
+    w = np.where(w <= -math.pi, w + two_pi, w)
+    return float(w) if np.ndim(w) == 0 else w
+
+
 def _caller_where() -> Where:
     """The first stack frame outside the estgen package: the line of the model file."""
     frame = sys._getframe(1)
@@ -1174,6 +1183,13 @@ def validate(model: Model) -> ModelSpec:
         if abs(norm - 1.0) > 1e-6:
             raise ModelError(f"initial() x0[{i}:{i + 4}] is attitude {model._states[i].attitude!r} with norm "
                              f"{norm:.6g}; give a unit quaternion (w, x, y, z)", iw)
+    # x0 as every filter starts from it: the C's init prints these numbers and the references
+    # read them, so both begin at a unit quaternion and at angles in (-pi, pi]
+    x0l = [wrap_angle(v) if st.angle else v for v, st in zip(x0, model._states)]
+    for i in att_idx:
+        norm = math.sqrt(sum(v * v for v in x0l[i:i + 4]))
+        x0l[i:i + 4] = [v / norm for v in x0l[i:i + 4]]
+    x0 = tuple(x0l)
     P0m, _ = _as_square(P0raw, ne, "initial() P0" + edim, iw)
     if any(e.free_symbols for e in P0m):
         raise ModelError("initial() P0 must hold numbers, not symbols", iw)

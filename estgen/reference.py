@@ -23,7 +23,7 @@ import sympy as sp
 from .chi2 import chi2_ppf
 from .derive_ukf import UkfWeights
 from .errors import ModelError
-from .model import ModelSpec, noise_factor
+from .model import ModelSpec, noise_factor, wrap_angle
 from .status import Status
 
 __all__ = [
@@ -38,15 +38,6 @@ __all__ = [
     "gate_threshold",
 ]
 
-TWO_PI = 2.0 * math.pi
-
-
-def wrap_angle(a: Any) -> Any:
-    """Wrap angles (radians, scalar or array) to (-pi, pi]."""
-    w = math.pi - np.mod(math.pi - np.asarray(a, dtype=float), TWO_PI)
-    # mod(tiny negative, 2 pi) rounds to 2 pi, giving -pi: move it to the closed end
-    w = np.where(w <= -math.pi, w + TWO_PI, w)
-    return float(w) if np.ndim(w) == 0 else w
 
 
 def _wrap_masked(v: np.ndarray, mask: np.ndarray) -> np.ndarray:
