@@ -46,13 +46,17 @@ model.scenario(dt=0.05)
 """
 
 
+def _pair(tmp_path, text: str, filt: str):
+    """The double C and the reference of the model file ``text``."""
+    path = tmp_path / "model.py"
+    path.write_text(text)
+    spec = estgen.load_model(str(path))
+    return estgen.build(spec, filter=filt, precision="double"), estgen.reference(spec, filter=filt)
+
+
 @pytest.mark.parametrize("filt", ["ekf", "ukf"])
 def test_angle_outside_the_range_starts_wrapped_in_c_and_reference(tmp_path, filt: str) -> None:
-    path = tmp_path / "swing.py"
-    path.write_text(_SWING)
-    spec = estgen.load_model(str(path))
-    c = estgen.build(spec, filter=filt, precision="double")
-    r = estgen.reference(spec, filter=filt)
+    c, r = _pair(tmp_path, _SWING, filt)
     # 4 rad is 4 - 2 pi in (-pi, pi]; numpy's angle of e^{4i} is the outside value (common practice)
     expected = float(np.angle(np.exp(4.0j)))
     assert c.x[0] == pytest.approx(expected, abs=1e-15) and r.x[0] == pytest.approx(expected, abs=1e-15)
@@ -63,11 +67,7 @@ def test_angle_outside_the_range_starts_wrapped_in_c_and_reference(tmp_path, fil
 
 @pytest.mark.parametrize("filt", ["ekf", "ukf"])
 def test_nearly_unit_quaternion_starts_normalized_in_c_and_reference(tmp_path, filt: str) -> None:
-    path = tmp_path / "tumble.py"
-    path.write_text(_TUMBLE)
-    spec = estgen.load_model(str(path))
-    c = estgen.build(spec, filter=filt, precision="double")
-    r = estgen.reference(spec, filter=filt)
+    c, r = _pair(tmp_path, _TUMBLE, filt)
     raw = np.array([0.9238795, 0, 0.3826834, 0])
     assert abs(np.linalg.norm(raw) - 1.0) > 1e-8  # the file's quaternion is not unit in double
     for f in (c, r):
