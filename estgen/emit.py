@@ -504,6 +504,7 @@ def _common_context(spec: ModelSpec, setup: "FilterSetup") -> Dict[str, Any]:
         "filt": filt,
         "title": setup.kind.title,
         "template": setup.kind.template,
+        "kind_partial": setup.kind.header_partial,
         "FILT": filt.upper(),
         "prefix": prefix,
         "PREFIX": prefix.upper(),

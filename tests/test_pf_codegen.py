@@ -165,6 +165,23 @@ def test_generation_is_deterministic_and_struct_size_is_exact():
     assert c._ffi.sizeof(c._s[0]) == a.struct_bytes
 
 
+def test_header_additions_come_from_the_kind():
+    # the particle filter's own functions and prose reach its header and cffi declarations
+    # through its header_partial (pf_header.j2); the Kalman filters' headers carry none of it
+    # (common practice: a declaration the header lacks is an implicit-declaration error in C99)
+    spec = estgen.load_model(example_model("battery_soc"))
+    pf, ekf = generate(spec, "pf", "float", particles=100), generate(spec, "ekf", "float")
+    for text in (pf.header, pf.cdef):
+        assert "cell_pf_init_seed(cell_pf_t *s, uint32_t seed);" in text
+        assert "cell_pf_reseed(cell_pf_t *s, uint32_t seed);" in text
+    assert "#define CELL_PF_PARTICLES 100" in pf.header and "(weighted mean of the particles)" in pf.header
+    assert "none on P: x and P are the weighted mean" in pf.header
+    for text in (ekf.header, ekf.cdef):
+        assert "seed" not in text and "particle" not in text
+    with open(os.path.join(os.path.dirname(__file__), os.pardir, "templates", "filter.h.j2")) as fh:
+        assert 'filt == "pf"' not in fh.read()
+
+
 def test_roughening_in_c_matches_reference():
     opts = {"particles": 120, "roughening": 0.2, "resample_threshold": 0.9}
     res = verify(example_model("valve_actuator"), "pf", "double", steps=40, seed=5, **opts)

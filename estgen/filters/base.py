@@ -91,7 +91,9 @@ class FilterKind(abc.ABC):
 
     Subclasses set ``name`` (the ``--filter`` value and the C prefix suffix), ``title`` (the
     header's first line says "<title> for the model ..."), ``template`` (the source template),
-    ``Options`` (a :class:`FilterOptions` dataclass), ``attitudes`` (whether it filters
+    ``Options`` (a :class:`FilterOptions` dataclass), ``header_partial`` (the template whose
+    macros add the kind's own prose and functions to the shared header and cffi declarations;
+    ``templates/kind_header.j2`` lists them, empty), ``attitudes`` (whether it filters
     models with attitude states) and ``gaussian`` (its state is a mean and covariance, so
     ``set_state`` reproduces another instance exactly; false for a particle cloud).
     """
@@ -100,6 +102,7 @@ class FilterKind(abc.ABC):
     title: ClassVar[str]
     template: ClassVar[str]
     Options: ClassVar[Type[FilterOptions]]
+    header_partial: ClassVar[str] = "kind_header.j2"
     attitudes: ClassVar[bool] = False
     gaussian: ClassVar[bool] = True
     #: the kind's own refusal codes (of status.KIND_STATUSES) its header lists

@@ -60,6 +60,7 @@ class PF(FilterKind):
     name = "pf"
     title = "particle filter"
     template = "pf.c.j2"
+    header_partial = "pf_header.j2"
     Options = PfKindOptions
     gaussian = False
     statuses = frozenset({Status.DEGENERATE})
