@@ -183,7 +183,7 @@ def _parser() -> argparse.ArgumentParser:
     v.add_argument("--steps", type=int, default=None,
                    help="simulated steps (default: from the model: every sensor 50 updates, three of the "
                         "slowest time constants, at least 200, at most 5000)")
-    v.add_argument("--seed", type=int, default=0, help="random seed (default 0)")
+    v.add_argument("--seed", type=filters.seed_value, default=0, help="random seed (default 0)")
     v.add_argument("--dt", type=float, default=None, help="step in seconds (default: the model's scenario dt)")
     v.add_argument("--json", metavar="FILE", help="also write the deviations as JSON")
     v.add_argument("-q", "--quiet", action="store_true", help="print the verdict line only, no progress")
@@ -213,7 +213,7 @@ def _parser() -> argparse.ArgumentParser:
     rp.add_argument("--filter", choices=filters.names(), default="ekf", help="filter kind (default ekf)")
     rp.add_argument("--precision", choices=PRECISIONS, default="float", help="C type (default float)")
     rp.add_argument("--steps", type=int, default=200, help="simulated steps (default 200)")
-    rp.add_argument("--seed", type=int, default=0, help="random seed (default 0)")
+    rp.add_argument("--seed", type=filters.seed_value, default=0, help="random seed (default 0)")
     rp.add_argument("-o", "--out", required=True, metavar="DIR", help="folder for replay_data.h")
     rp.add_argument("-q", "--quiet", action="store_true", help="print nothing on success")
     rp.set_defaults(func=_cmd_replay)

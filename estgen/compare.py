@@ -50,7 +50,7 @@ import numpy as np
 from ._version import __version__
 from .chi2 import chi2_ppf
 from .errors import ModelError
-from .filters import KINDS, FilterSetup, check_filter_support
+from .filters import KINDS, FilterSetup, check_filter_support, seed_value
 from .filters import get as filter_kind
 from .filters import names as filter_names
 from .model import ModelSpec, as_spec
@@ -939,7 +939,7 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="the filters to compare, comma-separated (default: every filter the model allows)")
     parser.add_argument("--runs", type=int, default=20, help="Monte Carlo runs (default 20)")
     parser.add_argument("--steps", type=int, default=200, help="steps per run (default 200)")
-    parser.add_argument("--seed", type=int, default=0, help="random seed (default 0)")
+    parser.add_argument("--seed", type=seed_value, default=0, help="random seed (default 0)")
     parser.add_argument("--burn-in", type=int, default=None, metavar="N",
                         help="leave steps 1..N out of the consistency verdicts (default: the longest start-up "
                              "transient of the compared filters, at most 20%% of the run)")

@@ -63,7 +63,7 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--json", metavar="FILE", help="also write the figures as JSON")
     parser.add_argument("--steps", type=int, default=DEFAULT_STEPS,
                         help=f"scenario length for the instruction counts (default {DEFAULT_STEPS})")
-    parser.add_argument("--seed", type=int, default=DEFAULT_SEED)
+    parser.add_argument("--seed", type=filters.seed_value, default=DEFAULT_SEED)
     parser.add_argument("--clock-mhz", type=float, default=DEFAULT_CLOCK_MHZ,
                         help=f"core clock for the microsecond columns (default {DEFAULT_CLOCK_MHZ:g} MHz)")
     parser.add_argument("-q", "--quiet", action="store_true", help="no progress on stderr")

@@ -769,7 +769,7 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     filters.add_arguments(parser, "float")
     parser.add_argument("--runs", type=int, default=50, help="Monte Carlo runs (default 50)")
     parser.add_argument("--steps", type=int, default=200, help="steps per run (default 200)")
-    parser.add_argument("--seed", type=int, default=0, help="random seed (default 0)")
+    parser.add_argument("--seed", type=filters.seed_value, default=0, help="random seed (default 0)")
     parser.add_argument("--burn-in", type=int, default=None, metavar="N",
                         help="leave steps 1..N out of the verdict (default: the start-up transient, the steps "
                              "the filter's covariance takes to settle within a factor 2, at most 20%% of the run)")

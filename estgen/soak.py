@@ -357,7 +357,7 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("model", metavar="MODEL", help="the model file (Python defining `model`)")
     filters.add_arguments(parser, "float")
     parser.add_argument("--steps", type=int, default=10**6, help="simulated steps (default 1000000)")
-    parser.add_argument("--seed", type=int, default=0, help="random seed (default 0)")
+    parser.add_argument("--seed", type=filters.seed_value, default=0, help="random seed (default 0)")
     parser.add_argument("--dt", type=float, default=None, help="step in seconds (default: the model's scenario dt)")
     parser.add_argument("--profile", choices=PROFILES, default="model",
                         help="inputs: the model's scenario ('model', default) or its sign flipped every --period "

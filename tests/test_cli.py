@@ -129,3 +129,16 @@ def test_generate_progress_on_a_terminal_rewrites_one_line(tmp_path):
         assert "\rgenerate attgyro_ukf: " in err and text in err, err
     progress, summary = err.rsplit("\r\x1b[K", 1)
     assert "\n" not in progress.strip("\r\n") and summary.startswith("attgyro_ukf: ") and "generated in" in summary
+
+
+@pytest.mark.parametrize("cmd", [["verify"], ["simulate", "--runs", "2", "--steps", "5"], ["soak", "--steps", "5"],
+                                 ["report"], ["compare", "--runs", "2", "--steps", "5"], ["replay", "-o", "out"]],
+                         ids=lambda c: c[0])
+def test_negative_seed_is_bad_input(tmp_path, cmd):
+    # contract section 2: bad input is exit 2 with one message, no traceback (numpy's generators
+    # take no negative seed: numpy.random.SeedSequence raises ValueError, from its documentation)
+    env = dict(os.environ, PYTHONPATH=ROOT + os.pathsep + os.environ.get("PYTHONPATH", ""))
+    proc = subprocess.run([sys.executable, "-m", "estgen", cmd[0], example_model("linear_cart"), *cmd[1:], "--seed", "-1"],
+                          cwd=str(tmp_path), capture_output=True, text=True, env=env)
+    assert proc.returncode == 2, proc.stderr
+    assert "Traceback" not in proc.stderr and "--seed" in proc.stderr

@@ -16,13 +16,14 @@ from ..emit import Generated
 from ..errors import ModelError, UsageError
 from ..model import ModelSpec, as_spec, with_gates
 from ..reference import ModelFunctions
-from .base import COMMIT_CHECKS, DEFAULT_COMMIT_CHECK, DEFAULT_OPTIMIZE, OPTIMIZE, CommonOptions, FilterKind, FilterOptions
+from .base import (COMMIT_CHECKS, DEFAULT_COMMIT_CHECK, DEFAULT_OPTIMIZE, OPTIMIZE, CommonOptions, FilterKind,
+                   FilterOptions, seed_value)
 from .ekf import EKF
 from .pf import PF
 from .ukf import UKF
 
 __all__ = ["KINDS", "get", "names", "check_filter_support", "generate", "reference", "add_arguments",
-           "FilterSetup"]
+           "FilterSetup", "seed_value"]
 
 #: every filter kind, by its ``--filter`` name (the order is the order of the help text)
 KINDS: Dict[str, FilterKind] = {k.name: k for k in (EKF(), UKF(), PF())}

@@ -28,7 +28,19 @@ if TYPE_CHECKING:  # annotations only: the kinds import the emitters, not this m
     from ..reference import ModelFunctions
 
 __all__ = ["Flag", "FilterOptions", "FilterKind", "CommonOptions", "PRECISIONS", "COMMIT_CHECKS", "DEFAULT_COMMIT_CHECK",
-           "OPTIMIZE", "DEFAULT_OPTIMIZE"]
+           "OPTIMIZE", "DEFAULT_OPTIMIZE", "seed_value"]
+
+def seed_value(text: str) -> int:
+    """The ``--seed`` of every command that simulates: a whole number >= 0 (numpy's generators
+    take no negative seed), refused by argparse with exit 2 otherwise."""
+    try:
+        seed = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"must be a whole number >= 0, got {text!r}") from None
+    if seed < 0:
+        raise argparse.ArgumentTypeError(f"must be a whole number >= 0, got {seed}")
+    return seed
+
 
 #: the C floating types a filter is generated for
 PRECISIONS: Tuple[str, ...] = ("float", "double")
