@@ -55,8 +55,8 @@ from .filters import get as filter_kind
 from .filters import names as filter_names
 from .model import ModelSpec, as_spec
 from .progress import Progress, wanted
-from .simulate import (INSIDE_REQUIRED, MonteCarloResult, Scenario, StatSummary, make_scenario, pyplot, run_filter,
-                       run_seed, save_figure, score_run, settling_steps, summarize_runs, write_outputs)
+from .simulate import (INSIDE_REQUIRED, MonteCarloResult, Scenario, StatSummary, check_outputs, make_scenario, pyplot,
+                       run_filter, run_seed, save_figure, score_run, settling_steps, summarize_runs, write_outputs)
 
 __all__ = [
     "Budget",
@@ -1011,6 +1011,7 @@ def run(args: argparse.Namespace) -> int:
     filters = [f.strip().lower() for f in args.filters.split(",") if f.strip()] if args.filters else None
     if args.filters is not None and not filters:
         raise ModelError("--filters: name at least one filter, e.g. --filters ekf,ukf")
+    check_outputs(args)
     res = compare(args.model, filters, args.runs, args.steps, args.seed, precision=args.precision,
                   use_reference=args.reference, options=options_from_args(args),
                   margin=args.margin, budget=budget_from_args(args), dt=args.dt, burn_in=args.burn_in,

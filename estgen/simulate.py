@@ -802,6 +802,7 @@ def _pairs(items: Sequence[str], option: str, convert: Callable[[str], Any]) -> 
 def run(args: argparse.Namespace) -> int:
     """Run ``estgen simulate`` with parsed ``args``; returns 0 once it ran (consistent or not).
     Bad input raises :class:`ModelError` for the CLI to print (exit 2)."""
+    check_outputs(args)
     spec = as_spec(args.model)
     res = monte_carlo(
         spec,
@@ -819,6 +820,12 @@ def run(args: argparse.Namespace) -> int:
     )
     write_outputs(args, res.to_json, lambda path: plot_result(res, path), lambda: format_summary(res))
     return 0
+
+
+def check_outputs(args: argparse.Namespace) -> None:
+    """Refuse ``--plot`` without matplotlib before the runs, not after them."""
+    if args.plot:
+        pyplot()
 
 
 def write_outputs(args: argparse.Namespace, to_json: Callable[[], str], plot: Callable[[str], None],

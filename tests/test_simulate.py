@@ -8,6 +8,8 @@ from __future__ import annotations
 import json
 import math
 import os
+import subprocess
+import sys
 
 import numpy as np
 import pytest
@@ -259,3 +261,23 @@ def test_gate_option_gates_in_the_filter_only(cart, tmp_path):
                      "--gate", "laser=0.9", "--json", str(js), "--quiet"]) == 0
     assert json.loads(js.read_text())["gates"] == {"laser": 0.9}
     assert cli.main(["simulate", CART, "--runs", "2", "--steps", "5", "--reference", "--gate", "radar=0.9"]) == 2
+
+
+@pytest.mark.parametrize("cmd", [["simulate", "--filter", "ekf"], ["compare", "--filters", "ekf"]], ids=lambda c: c[0])
+def test_plot_without_matplotlib_is_refused_before_the_runs(tmp_path, cmd):
+    # A fresh `pip install .` has no matplotlib (it is the plot extra). --plot must be refused
+    # at once (exit 2, the install hint), not after the Monte Carlo runs have been paid for:
+    # no --json file is written. matplotlib is hidden by a package of its name that fails to
+    # import (Python's import system finds the first one on sys.path: common practice).
+    fake = tmp_path / "hide" / "matplotlib"
+    fake.mkdir(parents=True)
+    (fake / "__init__.py").write_text("raise ImportError('hidden for the test')\n")
+    repo = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
+    env = dict(os.environ, PYTHONPATH=os.pathsep.join([str(tmp_path / "hide"), repo, os.environ.get("PYTHONPATH", "")]))
+    js = tmp_path / "out.json"
+    proc = subprocess.run([sys.executable, "-m", "estgen", cmd[0], os.path.join(repo, "generated_examples", "linear_cart",
+                           "model.py"), *cmd[1:], "--runs", "2", "--steps", "5", "--json", str(js),
+                           "--plot", str(tmp_path / "p.png")], capture_output=True, text=True, env=env, timeout=300)
+    assert proc.returncode == 2, proc.stderr
+    assert "pip install 'estgen[plot]'" in proc.stderr and "Traceback" not in proc.stderr
+    assert not js.exists()
