@@ -766,7 +766,7 @@ def generate_ekf(spec: ModelSpec, setup: "FilterSetup") -> Generated:
             body, after = _compact_sequential(em, ctx["prefix"], uc, rules)
             after += em.lines(angle_wraps(spec, "xs"))
             w_size = k_size = v_size = 0
-            forms["scalar_update_used"] = forms["pku"] = True
+            forms["scalar_update_used"] = True
             if uc.whiten:
                 form = "constant full R = L L' whitened by L^-1, then sequential scalar updates, standard form P - K W'"
         oc += OpCount(**ctx["commit_ops"][ctx["commit_fns"]["update"]])

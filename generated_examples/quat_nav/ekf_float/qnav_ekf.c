@@ -307,13 +307,24 @@ static int qnav_ekf_scalar_update(float *xt, float *Ps, const float *hv, const u
     size_t i;
     size_t j;
     size_t p;
+    size_t q;
     for (i = 0u; i < 15u; ++i) {
-        float w = 0.0F;
-        for (p = 0u; p < nh && p < 15u; ++p) {
-            const size_t col = hc[p];
-            w += Ps[(i <= col) ? qnav_ekf_pku(i, col) : qnav_ekf_pku(col, i)] * hv[p];
+        W[i] = 0.0F;
+    }
+    /* W += P(:, c) h_c along column c of the packed P: down to the diagonal the packed index of
+       (i, c) grows by ne - 1 - i per row, then row c runs contiguously */
+    for (p = 0u; p < nh && p < 15u; ++p) {
+        const size_t col = hc[p];
+        const float h = hv[p];
+        q = col;
+        for (i = 0u; i < col && i < 15u; ++i) {
+            W[i] += Ps[q] * h;
+            q += 14u - i;
         }
-        W[i] = w;
+        for (i = col; i < 15u; ++i) {
+            W[i] += Ps[q] * h;
+            ++q;
+        }
     }
     for (p = 0u; p < nh && p < 15u; ++p) {
         sv += hv[p] * W[hc[p]];
@@ -330,10 +341,11 @@ static int qnav_ekf_scalar_update(float *xt, float *Ps, const float *hv, const u
         K[i] = W[i] * is;
         xt[i] += K[i] * r;
     }
+    q = 0u;  /* the packed rows follow each other */
     for (i = 0u; i < 15u; ++i) {
-        size_t q = qnav_ekf_pku(i, i);
+        const float ki = K[i];
         for (j = i; j < 15u; ++j) {
-            Ps[q] -= K[i] * W[j];
+            Ps[q] -= ki * W[j];
             ++q;
         }
     }
