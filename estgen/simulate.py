@@ -748,7 +748,7 @@ def pyplot() -> Any:
         matplotlib.use("Agg")
         import matplotlib.pyplot as plt
     except ImportError:
-        raise ModelError("--plot needs matplotlib; install it with: pip install 'estgen[plot]'") from None
+        raise ModelError("--plot needs matplotlib; install it with: pip install matplotlib (estgen's plot extra)") from None
     return plt
 
 
