@@ -24,6 +24,7 @@ from .ir import is_trivial as _is_trivial
 from .layout import packed_index, packed_size
 from .model import ModelSpec, SensorSpec
 from .progress import detail, stage
+from .unrolled import Block, cholesky
 
 __all__ = [
     "Stmt",
@@ -72,7 +73,7 @@ _EKF_UPDATE_HEAD: Tuple[SectionRule, ...] = (
 EKF_BLOCK_UPDATE_SECTIONS: Tuple[SectionRule, ...] = _EKF_UPDATE_HEAD + (
     (r"^assign W\[", "W = P H'"),
     (r"^decl S\d+_\d+$", "innovation covariance S = H W + R"),
-    (r"^(decl|check) (D|L|iL)\d", "Cholesky factor S = L L'"),
+    (r"^(decl|check) L[di]?\d", "Cholesky factor S = L L'"),
     (r"^(decl a\d+_\d+|assign K\[)", "gain K = W S^-1 (forward and back substitution per row)"),
     (r"^(decl b\d+|assign nis)$", "NIS = |L^-1 y|^2"),
     (r"^assign V\[", "V = K S - W"),
@@ -641,25 +642,15 @@ def derive_ekf_update(spec: SensorSpec, mspec: ModelSpec) -> EkfUpdateCode:
             e = sum((Hm[a, j] * Wm[j, b] for j in nz), sp.S.Zero) + Rm[(a, b)]
             stmts.append(Stmt("decl", f"S{a}_{b}", e))
             S[(a, b)] = S[(b, a)] = sp.Symbol(f"S{a}_{b}")
-    # Cholesky S = L L' (lower), unrolled
-    L: Dict[Tuple[int, int], sp.Expr] = {}
-    iL: Dict[int, sp.Symbol] = {}
-    for j in range(m):
-        d = S[(j, j)] - sum((L[(j, k)] ** 2 for k in range(j)), sp.S.Zero)
-        stmts.append(Stmt("decl", f"D{j}", d))
-        stmts.append(Stmt("check", f"D{j}", sp.Symbol(f"D{j}")))
-        stmts.append(Stmt("decl", f"L{j}_{j}", sp.sqrt(sp.Symbol(f"D{j}"))))
-        L[(j, j)] = sp.Symbol(f"L{j}_{j}")
-        stmts.append(Stmt("decl", f"iL{j}", 1 / L[(j, j)]))
-        iL[j] = sp.Symbol(f"iL{j}")
-        for i in range(j + 1, m):
-            e = (S[(i, j)] - sum((L[(i, k)] * L[(j, k)] for k in range(j)), sp.S.Zero)) * iL[j]
-            stmts.append(Stmt("decl", f"L{i}_{j}", e))
-            L[(i, j)] = sp.Symbol(f"L{i}_{j}")
+    # Cholesky S = L L' (lower), unrolled by the shared builder; the solves use every 1 / L_jj (piv)
+    chol = Block()
+    piv: Dict[int, sp.Expr] = {}
+    L = cholesky(chol, m, S, "L", inverses=piv)
+    stmts += chol.stmts
     # nis = |L^-1 y|^2 first: the gate is evaluated before the gain and the posterior
     b: List[sp.Symbol] = []
     for i in range(m):
-        e = (sp.Symbol(f"y[{i}]") - sum((L[(i, j)] * b[j] for j in range(i)), sp.S.Zero)) * iL[i]
+        e = (sp.Symbol(f"y[{i}]") - sum((L[(i, j)] * b[j] for j in range(i)), sp.S.Zero)) * piv[i]
         stmts.append(Stmt("decl", f"b{i}", e))
         b.append(sp.Symbol(f"b{i}"))
     stmts.append(Stmt("assign", "nis", sum((bi * bi for bi in b), sp.S.Zero)))
@@ -668,11 +659,11 @@ def derive_ekf_update(spec: SensorSpec, mspec: ModelSpec) -> EkfUpdateCode:
     for k in range(n):
         a: List[sp.Symbol] = []
         for i in range(m):
-            e = (Wm[k, i] - sum((L[(i, j)] * a[j] for j in range(i)), sp.S.Zero)) * iL[i]
+            e = (Wm[k, i] - sum((L[(i, j)] * a[j] for j in range(i)), sp.S.Zero)) * piv[i]
             stmts.append(Stmt("decl", f"a{k}_{i}", e))
             a.append(sp.Symbol(f"a{k}_{i}"))
         for i in reversed(range(m)):
-            e = (a[i] - sum((L[(j, i)] * Km[k, j] for j in range(i + 1, m)), sp.S.Zero)) * iL[i]
+            e = (a[i] - sum((L[(j, i)] * Km[k, j] for j in range(i + 1, m)), sp.S.Zero)) * piv[i]
             stmts.append(Stmt("assign", f"K[{k * m + i}]", e))
     Vm = sp.Matrix(n, m, lambda k, c: sp.Symbol(f"V[{k * m + c}]"))
     for k in range(n):

@@ -4,7 +4,7 @@ pivot checks) behind the UKF's factor function and every filter's commit check."
 
 from __future__ import annotations
 
-from typing import Dict, List, Sequence, Set, Tuple
+from typing import Dict, List, Mapping, Optional, Sequence, Set, Tuple, Union
 
 import sympy as sp
 
@@ -74,19 +74,30 @@ class Block:
         return keep
 
 
-def cholesky(blk: Block, n: int, P: str, tag: str) -> Dict[Tuple[int, int], sp.Expr]:
-    """Unrolled lower Cholesky factor of packed ``P``; each pivot is checked (finite, > 0)."""
+def cholesky(blk: Block, n: int, P: Union[str, Mapping[Tuple[int, int], sp.Expr]], tag: str,
+             inverses: Optional[Dict[int, sp.Expr]] = None) -> Dict[Tuple[int, int], sp.Expr]:
+    """Unrolled lower Cholesky factor of ``P``; each pivot is checked (finite, > 0).
+
+    ``P`` is the name of a packed array or a mapping (i, j) -> entry for i >= j (an innovation
+    covariance held in locals). Locals are named ``<tag>d<j>`` (pivots), ``<tag><i>_<j>`` (L)
+    and ``<tag>i<j>`` (reciprocals of the diagonal). Given ``inverses``, the reciprocal of every
+    diagonal entry is a local and stored there (triangular solves need the last one too)."""
+    def entry(i: int, j: int) -> sp.Expr:
+        return sp.Symbol(f"{P}[{packed_index(i, j, n)}]") if isinstance(P, str) else P[(i, j)]
+
     L: Dict[Tuple[int, int], sp.Expr] = {}
     for j in range(n):
-        d = sp.Symbol(f"{P}[{packed_index(j, j, n)}]") - sum((L[(j, k)] ** 2 for k in range(j)), sp.S.Zero)
+        d = entry(j, j) - sum((L[(j, k)] ** 2 for k in range(j)), sp.S.Zero)
         dname = f"{tag}d{j}"
         blk.add("decl", dname, d)
         blk.add("check", dname, sp.Symbol(dname))
         L[(j, j)] = blk.value(f"{tag}{j}_{j}", sp.sqrt(sp.Symbol(dname)))
-        if j + 1 < n:
+        if j + 1 < n or inverses is not None:
             inv = blk.value(f"{tag}i{j}", 1 / L[(j, j)])
+            if inverses is not None:
+                inverses[j] = inv
         for i in range(j + 1, n):
-            e = (sp.Symbol(f"{P}[{packed_index(i, j, n)}]") - sum((L[(i, k)] * L[(j, k)] for k in range(j)), sp.S.Zero))
+            e = entry(i, j) - sum((L[(i, k)] * L[(j, k)] for k in range(j)), sp.S.Zero)
             L[(i, j)] = blk.value(f"{tag}{i}_{j}", e * inv)
     return L
 

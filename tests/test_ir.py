@@ -45,6 +45,41 @@ def test_unrolled_cholesky_matches_numpy(n: int) -> None:
     np.testing.assert_allclose(L, np.linalg.cholesky(P), rtol=1e-12, atol=1e-12)
 
 
+def test_the_ekf_block_update_factorizes_s_with_the_shared_builder() -> None:
+    # Source: numpy.linalg.cholesky (LAPACK potrf): the full-R update's factor of S = H P H' + R
+    # and the reciprocals of its diagonal, taken from the update's own statements, which come from
+    # unrolled.cholesky (the one Cholesky derivation): its locals and nothing else
+    import os
+
+    from estgen.derive import derive_ekf_update
+    from estgen.model import load_model
+
+    spec = load_model(os.path.join(os.path.dirname(os.path.abspath(__file__)), "models", "noise_cart_additive.py"))
+    sensor = next(s for s in spec.sensors if not s.diagonal)
+    code = derive_ekf_update(sensor, spec)
+    m = sensor.m
+    assert not code.sequential
+    names = {st.target for st in code.stmts}
+    assert {f"Ld{j}" for j in range(m)} <= names and {f"Li{j}" for j in range(m)} <= names
+    assert not {f"D{j}" for j in range(m)} & names and not {f"iL{j}" for j in range(m)} & names
+    rng = np.random.default_rng(3)
+    A = rng.standard_normal((m, m))
+    S = A @ A.T + np.eye(m)
+    env = {sp.Symbol(f"S{a}_{b}"): S[a, b] for a in range(m) for b in range(a, m)}
+    for st in code.stmts:
+        if st.target.startswith("L"):
+            value = float(st.expr.xreplace(env))
+            if st.kind is Kind.CHECK:
+                assert value > 0.0
+            else:
+                env[sp.Symbol(st.target)] = value
+    L = np.linalg.cholesky(S)
+    for i in range(m):
+        assert env[sp.Symbol(f"Li{i}")] == pytest.approx(1.0 / L[i, i], rel=1e-14)
+        for j in range(i + 1):
+            assert env[sp.Symbol(f"L{i}_{j}")] == pytest.approx(L[i, j], rel=1e-14)
+
+
 def test_loop_node_prints_a_counted_loop() -> None:
     em = Emitter("demo_ekf", "float", {}, [])
     i = "i"
