@@ -107,6 +107,17 @@ class CPrinter(C99CodePrinter):
     _print_Zero = _print_Integer
     _print_NegativeOne = _print_Integer
 
+    def _print_sign(self, expr: Any) -> str:
+        # sympy's C printer gives ((a > 0) - (a < 0)), an int: a -Wconversion error in a float
+        # build. A choice of real constants instead (the UKF's derivation lowers it the same way).
+        (a,) = expr.args
+        return self._print(sp.Piecewise((sp.S.One, a > 0), (sp.S.NegativeOne, a < 0), (sp.S.Zero, True)))
+
+    def _print_Mod(self, expr: Any) -> str:
+        # sympy's Mod takes the divisor's sign (Python's %); C's fmod the dividend's: a - b floor(a / b)
+        a, b = expr.args
+        return self._print(a - b * sp.floor(a / b))
+
     def _print_Pi(self, expr: Any) -> str:
         return self._lit(3.141592653589793)
 

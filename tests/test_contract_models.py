@@ -87,3 +87,61 @@ def test_verify_passes_in_double_on_a_nearly_unit_quaternion(tmp_path) -> None:
     res = verify(str(path), filter="ekf", precision="double", steps=50, seed=1)
     assert res.ok, res
     assert math.isclose(float(np.linalg.norm(estgen.load_model(str(path)).x0[:4])), 1.0, abs_tol=1e-15)
+
+
+_SAW = """import sympy as sp
+from estgen import Model
+
+model = Model("saw")
+x, v = model.states("x v")
+dt = model.dt
+model.process([x + dt * v, v])
+model.process_noise([1e-4, 1e-6])
+model.sensor("phase", [sp.Mod(x, 3)], noise=[0.01])
+model.initial([-1.0, -0.5], sp.diag(0.01, 0.001))
+model.scenario(dt=0.1)
+"""
+
+_DEADBAND = """import sympy as sp
+from estgen import Model
+
+model = Model("deadband")
+x, v = model.states("x v")
+(u,) = model.inputs("u")
+dt = model.dt
+model.process([x + dt * v, v + dt * (sp.Max(0, sp.Abs(u) - 0.2) * sp.sign(u) - 0.3 * v)])
+model.process_noise([1e-5, 1e-3])
+model.sensor("pos", [x], noise=[0.01])
+model.initial([0.0, 0.0], sp.diag(0.1, 0.1))
+model.scenario(dt=0.1, inputs=lambda t: [1.0 if (t % 10) < 5 else -1.0])
+"""
+
+
+def test_particle_filter_mod_takes_the_divisors_sign(tmp_path) -> None:
+    # sympy's Mod, like Python's %, has the sign of the divisor (Python language reference,
+    # "Binary arithmetic operations"): Mod(-1, 3) = 2, where C's fmod(-1, 3) = -1. The particle
+    # filter's C prints its model functions itself; on a state that stays negative it must
+    # weigh particles with h = x % 3 as the reference does.
+    from estgen.verify import verify
+
+    assert -1.0 % 3 == 2.0
+    path = tmp_path / "saw.py"
+    path.write_text(_SAW)
+    res = verify(str(path), filter="pf", precision="double", steps=60, seed=1, particles=50)
+    assert res.ok, res
+
+
+@pytest.mark.parametrize("precision", ["float", "double"])
+def test_particle_filter_sign_compiles_in_float(tmp_path, precision: str) -> None:
+    # sign(u) printed as sympy's ((u > 0) - (u < 0)) is an int, a -Wconversion error in a float
+    # build under the strict flags (contract section 4); the C must build and match the reference.
+    path = tmp_path / "deadband.py"
+    path.write_text(_DEADBAND)
+    spec = estgen.load_model(str(path))
+    c = estgen.build(spec, filter="pf", precision=precision, particles=40, seed=2)
+    r = estgen.reference(spec, filter="pf", particles=40, seed=2)
+    for u in ([1.0], [-1.0], [0.0]):
+        assert c.predict(u, 0.1) == r.predict(u, 0.1) == 0
+        assert c.update("pos", [0.01]) == r.update("pos", [0.01]) == 0
+    tol = 1e-9 if precision == "double" else 1e-3
+    assert np.allclose(c.x, r.x, rtol=tol, atol=tol)
