@@ -16,7 +16,7 @@ from .derive import Stmt, c_names, model_block, packed_index, packed_size
 from .emit import Emitter, Generated, OpCount, _common_context, _render
 from .model import ModelSpec
 from .progress import stage
-from .pf import DEFAULT_SEED, KERNEL_BITS, KERNEL_TOL, PSD_TOL, PfOptions
+from .pf import DEFAULT_SEED, KERNEL_BITS, KERNEL_TOL, PSD_TOL, PfOptions, particle_reach
 
 if TYPE_CHECKING:
     from .filters import FilterSetup
@@ -111,9 +111,10 @@ def generate_pf(spec: ModelSpec, setup: "FilterSetup", opts: PfOptions) -> Gener
     ctx["precedence"] = [
         "When several apply, the first check in call order wins: BAD_INPUT (arguments), BAD_DT",
         "(predict), then NON_FINITE / NOT_POSITIVE_DEFINITE of Q, Qw or R; predict then refuses with",
-        "NON_FINITE when no live particle has a finite prediction; update with DEGENERATE when no",
-        "particle has a finite weight, then NON_FINITE of the NIS and GATED (both only where the NIS",
-        "is formed: the _nis variants and gated sensors).",
+        "NON_FINITE when no live particle has a finite prediction within REACH of the estimate;",
+        "update with DEGENERATE when no particle has a finite weight, then NON_FINITE of the NIS and",
+        "GATED (both only where the NIS is formed: the _nis variants and gated sensors); set_state",
+        "with NON_FINITE when P could draw particles beyond REACH (P_jj n N > REACH^2).",
     ]
     ctx["default_seed"] = DEFAULT_SEED
     ctx["prior"] = _prior(spec, em)
@@ -128,6 +129,8 @@ def generate_pf(spec: ModelSpec, setup: "FilterSetup", opts: PfOptions) -> Gener
     ctx["psd_tol"] = em.lit(PSD_TOL[precision])
     ctx["kernel_tol"] = em.lit(KERNEL_TOL[precision])
     ctx["kernel_bits"] = KERNEL_BITS
+    ctx["reach"] = em.lit(particle_reach(precision, N))
+    ctx["nN"] = em.lit(float(n * N))
     ctx["u_scale"] = em.lit(2.0 ** -31 if precision == "double" else 2.0 ** -24)
     ctx["two"] = em.lit(2.0)
     ctx["half"] = em.lit(0.5)

@@ -75,7 +75,7 @@ from .rng import Rng
 from .status import Status
 
 __all__ = ["PfOptions", "pf_options", "ReferencePF", "psd_cholesky", "systematic_counts", "fill_in_place",
-           "kernel_bandwidth", "kernel_covariance", "lower_times", "MAX_PARTICLES", "DEFAULT_PARTICLES", "DEFAULT_SEED", "DEFAULT_REGULARIZATION"]
+           "kernel_bandwidth", "kernel_covariance", "particle_reach", "lower_times", "MAX_PARTICLES", "DEFAULT_PARTICLES", "DEFAULT_SEED", "DEFAULT_REGULARIZATION"]
 
 MAX_PARTICLES = 1_000_000
 DEFAULT_PARTICLES = 500
@@ -180,6 +180,17 @@ def psd_cholesky(A: np.ndarray, tol: float = PSD_TOL["double"]) -> Optional[np.n
     return L
 
 
+def particle_reach(precision: str, particles: int) -> float:
+    """How far a particle may lie from the estimate: ``sqrt(REAL_MAX / N) / 16`` (REAL_MAX from
+    numpy.finfo). predict drops a particle that moves further than this from the present mean,
+    the jitter after resampling keeps a particle's copy where it would land further than twice
+    this, and set_state refuses a P whose particles could land further. Then every two live
+    particles lie within 4 reaches of each other, and the weighted covariance of N of them
+    cannot overflow: sum w d^2 <= N (4 reach)^2 = REAL_MAX / 16."""
+    big = float(np.finfo(np.float32 if precision == "float" else np.float64).max)
+    return math.sqrt(big / particles) / 16.0
+
+
 #: significant bits kept of the covariance that shapes the regularization kernel
 KERNEL_BITS = 16
 
@@ -264,6 +275,7 @@ class ReferencePF(_ReferenceBase):
         self._mv = {s.name: _lambdify_list([*xs, *ps], list(s.h.jacobian(list(s.v)).xreplace({v: 0 for v in s.v})))
                     for s in spec.sensors if s.v}
         self.N = N
+        self._reach = particle_reach("double", N)
         self.rng = Rng(seed)
         self._X = np.zeros((N, n))
         self._lw = np.zeros(N)
@@ -364,7 +376,7 @@ class ReferencePF(_ReferenceBase):
             Xl = self._X[live]
             Xn = lower_times(Zq, Lq, _columns(self._fv(*Xl.T, *uv, dtf, *p, *W.T), L))
             Xn = self._wrap_rows(Xn)
-            ok = np.all(np.isfinite(Xn), axis=1)
+            ok = np.all(np.isfinite(Xn), axis=1) & np.all(np.abs(Xn - self._x) <= self._reach, axis=1)
         if not ok.any():
             self.rng.restore(snap)
             return int(Status.NON_FINITE)
@@ -466,13 +478,19 @@ class ReferencePF(_ReferenceBase):
             D = psd_cholesky(kernel_covariance(self._P), KERNEL_TOL["double"])
             if D is not None:
                 Z = self.rng.normals(N * self.n).reshape(N, self.n)
-                self._X = self._wrap_rows(self._X + h * lower_times(Z, D))
+                self._jitter(self._wrap_rows(self._X + h * lower_times(Z, D)))
         K = self.options.roughening
         if K > 0.0:
             scale = K * float(N) ** (-1.0 / self.n)
             sig = (np.max(self._X, axis=0) - np.min(self._X, axis=0)) * scale
             Z = self.rng.normals(N * self.n).reshape(N, self.n)
-            self._X = self._wrap_rows(self._X + Z * sig)
+            self._jitter(self._wrap_rows(self._X + Z * sig))
+
+    def _jitter(self, Y: np.ndarray) -> None:
+        """Take the jittered particles Y, except where one lands further than two reaches from
+        the estimate (:func:`particle_reach`): that particle keeps its copy."""
+        ok = np.all(np.abs(Y - self._x) <= 2.0 * self._reach, axis=1)
+        self._X[ok] = Y[ok]
 
     def _innovation(self, sensor: str, z: np.ndarray) -> Any:
         raise TypeError("the particle filter has no Gaussian innovation step; update() weights the particles")
@@ -480,9 +498,15 @@ class ReferencePF(_ReferenceBase):
     def set_state(self, x: Sequence[float], P: Any) -> int:
         """Redraw the particles with mean x and covariance P exactly (to rounding), equal weights."""
         n, N = self.n, self.N
+        old = (self._x, self._P)
         bad = super().set_state(x, P)  # validates x and P, and keeps them in _x, _P
         if bad != Status.OK:
             return bad
+        # |(L v)_j| <= sqrt(P_jj n N) for the whitened draws v (sum of v_k^2 over the N draws
+        # is N per component): a P that could put a particle beyond the reach is refused
+        if np.any(np.diag(self._P) * (n * N) > self._reach * self._reach):
+            self._x, self._P = old
+            return int(Status.NON_FINITE)
         xv = self._x
         L = np.linalg.cholesky(self._P)
         snap = self.rng.snapshot()

@@ -182,6 +182,34 @@ def test_header_additions_come_from_the_kind():
         assert 'filt == "pf"' not in fh.read()
 
 
+@pytest.mark.parametrize("precision", ["float", "double"])
+def test_the_clouds_covariance_cannot_overflow(precision):
+    # P is a sum of N weighted squares of deviations: a cloud spread over more than
+    # sqrt(REAL_MAX / N) overflows it (REAL_MAX from numpy.finfo). set_state refuses a P that
+    # could draw particles that far (NON_FINITE, struct unchanged; the reference the same), and
+    # predict drops particles that move that far, so an accepted call leaves P finite
+    from estgen.pf import particle_reach
+
+    spec = estgen.load_model(example_model("linear_cart"))
+    N = 64
+    c = estgen.build(spec, filter="pf", precision=precision, particles=N)
+    r = estgen.reference(spec, filter="pf", particles=N)
+    reach = particle_reach(precision, N)
+    big = np.diag([1.0, 1.0, 1.01 * reach ** 2 / (spec.n * N)])
+    ok = np.diag([1.0, 1.0, 0.99 * reach ** 2 / (spec.n * N)])
+    before = c.raw_state()
+    assert c.set_state(np.zeros(3), big) == Status.NON_FINITE and c.raw_state() == before
+    if precision == "double":
+        assert r.set_state(np.zeros(3), big) == Status.NON_FINITE
+    assert c.set_state(np.zeros(3), ok) == Status.OK
+    assert np.all(np.isfinite(c.P))
+    real_max = float(np.finfo(np.float32 if precision == "float" else np.float64).max)
+    for dt in (1e3, 1e9, 1e15):
+        st = c.predict([0.0], dt)
+        assert st in (Status.OK, Status.NON_FINITE, Status.NOT_POSITIVE_DEFINITE)
+        assert np.all(np.isfinite(c.P)) and np.max(np.abs(c.P)) < real_max
+
+
 def test_roughening_in_c_matches_reference():
     opts = {"particles": 120, "roughening": 0.2, "resample_threshold": 0.9}
     res = verify(example_model("valve_actuator"), "pf", "double", steps=40, seed=5, **opts)

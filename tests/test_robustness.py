@@ -1,6 +1,8 @@
 """Robustness of the generated C: refused calls are transactional, gates reject outliers at the
 chi-square quantile, set_state validates and recovers, and nothing from a model file reaches the
-C except validated identifiers and numeric literals.
+C except validated identifiers and numeric literals. The transactional tests cover the particle
+filter too, held to what it promises (finite x, a positive semidefinite P, normalized weights,
+DEGENERATE among its refusals).
 
 Sources: the status codes and their meaning are estgen's own contract (estgen/status.py,
 /work/shared/contract.md section 3: "a non-zero status means refused: the filter is then exactly
@@ -29,7 +31,7 @@ import estgen
 from estgen.build import CFilter, compile_generated
 from estgen.chi2 import chi2_ppf
 from estgen.emit import Generated, safe_comment, safe_filename
-from estgen.filters import check_filter_support, generate
+from estgen.filters import check_filter_support, generate, get
 from estgen.errors import ModelError
 from estgen.model import ModelSpec
 from estgen.reference import model_functions
@@ -45,6 +47,9 @@ PRECISIONS = ("float", "double")
 OK, BAD_INPUT, BAD_DT, NOT_PD, NON_FINITE, GATED = (int(s) for s in (Status.OK, Status.BAD_INPUT, Status.BAD_DT,
                                                                   Status.NOT_POSITIVE_DEFINITE, Status.NON_FINITE,
                                                                   Status.GATED))
+DEGENERATE = int(Status.DEGENERATE)
+#: options of the kinds whose defaults would make these tests slow (a particle filter of 64)
+KIND_OPTIONS: Dict[str, Dict[str, Any]] = {"pf": {"particles": 64}}
 
 
 # ---------------------------------------------------------------------------------------------
@@ -88,6 +93,25 @@ CONFIGS = configurations()
 CONFIG_IDS = ["-".join(c) for c in CONFIGS]
 
 
+def pf_configurations() -> List[Tuple[str, str, str]]:
+    """(example, "pf", precision) for every example the particle filter takes (no attitudes)."""
+    out = []
+    for ex in EXAMPLES:
+        try:
+            check_filter_support(spec_of(ex), "pf")
+        except ModelError:
+            continue
+        out += [(ex, "pf", p) for p in PRECISIONS]
+    return out
+
+
+#: the transactional and fuzz tests hold the particle filter to what it promises too (not the
+#: gate, soak and static-analysis sets, which read CONFIGS: its gate and long runs are tested in
+#: test_pf_codegen.py)
+ALL_CONFIGS = CONFIGS + pf_configurations()
+ALL_IDS = ["-".join(c) for c in ALL_CONFIGS]
+
+
 def generated(example: str, filt: str, precision: str, gates: Optional[Dict[str, float]] = None) -> Generated:
     """The generated C (cached: generating the 15-state UKF takes seconds)."""
     return _generated(example, filt, precision, tuple(sorted(gates.items())) if gates else None)
@@ -96,7 +120,7 @@ def generated(example: str, filt: str, precision: str, gates: Optional[Dict[str,
 @functools.lru_cache(maxsize=None)
 def _generated(example: str, filt: str, precision: str, gates: Optional[Tuple[Tuple[str, float], ...]]) -> Generated:
     kw: Dict[str, Any] = {"gates": dict(gates)} if gates else {}
-    return generate(spec_of(example), filter=filt, precision=precision, **kw)
+    return generate(spec_of(example), filter=filt, precision=precision, **kw, **KIND_OPTIONS.get(filt, {}))
 
 
 def fresh(example: str, filt: str, precision: str, *, gates: Optional[Dict[str, float]] = None,
@@ -137,17 +161,41 @@ def is_posdef(P: np.ndarray, precision: Optional[str] = None) -> bool:
 
 
 def checked(c: Any, call: Callable[[], int]) -> int:
-    """Run one call and check the contract's invariants: status in 0..5; refused => the struct
-    is bit-for-bit unchanged; accepted => x finite and P symmetric positive definite."""
+    """Run one call and check the contract's invariants: status one of the kind's documented
+    codes (0..5, and 6 DEGENERATE for the particle filter); refused => the struct is bit-for-bit
+    unchanged; accepted => x finite and, for a Kalman filter, P symmetric positive definite; for
+    the particle filter (whose P is the cloud's covariance: a cloud of copies has P = 0) P finite,
+    symmetric and positive semidefinite, and the weights normalized as documented: finite, in
+    [0, 1], the largest exactly 1, and exp of the log-weights."""
+    kind = get(c.filter)
+    codes = {0, 1, 2, 3, 4, 5} | {int(s) for s in kind.statuses}
     before = c.raw_state()
     st = int(call())
-    assert st in tuple(int(s) for s in Status), f"status {st} is not a documented code"
+    assert st in codes, f"status {st} is not a documented code of the {c.filter}"
     if st != OK:
         assert c.raw_state() == before, f"refused call (status {Status(st).name}) changed the struct"
     else:
         assert np.all(np.isfinite(c.x)), f"accepted call left a non-finite x: {c.x}"
-        assert is_posdef(c.P, c.precision), f"accepted call left P not positive definite:\n{c.P}"
+        if kind.gaussian:
+            assert is_posdef(c.P, c.precision), f"accepted call left P not positive definite:\n{c.P}"
+        else:
+            _check_cloud(c)
     return st
+
+
+def _check_cloud(c: Any) -> None:
+    P = c.P
+    assert np.all(np.isfinite(P)) and np.array_equal(P, P.T), f"accepted call left P non-finite or asymmetric:\n{P}"
+    # positive semidefinite up to the rounding of a sum of N weighted outer products (numpy's
+    # eigvalsh, LAPACK syevd; eps from numpy.finfo)
+    eps = float(np.finfo(np.float32 if c.precision == "float" else np.float64).eps)
+    lam = np.linalg.eigvalsh(P)
+    assert lam.min() >= -64 * eps * max(float(np.max(np.abs(P))), 1e-300) * P.shape[0], lam
+    w = np.array(list(c._s.w), dtype=float)
+    lw = np.array(list(c._s.lw), dtype=float)
+    assert np.all(np.isfinite(w)) and np.all((w >= 0.0) & (w <= 1.0)) and w.max() == 1.0, w
+    assert lw.max() == 0.0 and np.all(lw[w > 0.0] > -np.inf), lw
+
 
 
 def real_max(precision: str) -> float:
@@ -161,12 +209,12 @@ def real_max(precision: str) -> float:
 NON_FINITE_VALUES = (float("nan"), float("inf"), float("-inf"))
 
 
-@pytest.mark.parametrize("config", CONFIGS, ids=CONFIG_IDS)
+@pytest.mark.parametrize("config", ALL_CONFIGS, ids=ALL_IDS)
 def test_bad_inputs_are_refused_and_change_nothing(config):
     ex, filt, prec = config
     spec = spec_of(ex)
     c = fresh(ex, filt, prec)
-    r = estgen.reference(spec, filt)
+    r = estgen.reference(spec, filt, **KIND_OPTIONS.get(filt, {}))
     warm_up(c, spec)
     warm_up(r, spec)
     sc = make_scenario(spec, 1, 11)
@@ -210,7 +258,7 @@ def test_bad_inputs_are_refused_and_change_nothing(config):
     assert tried >= 10
 
 
-@pytest.mark.parametrize("config", CONFIGS, ids=CONFIG_IDS)
+@pytest.mark.parametrize("config", ALL_CONFIGS, ids=ALL_IDS)
 def test_overflowing_measurements_and_steps_are_refused_or_stay_finite(config):
     # z near the largest finite value makes the innovation (and its square in the NIS) overflow;
     # a huge dt makes F P F' overflow. Either the call is refused (NON_FINITE or another code)
@@ -227,11 +275,12 @@ def test_overflowing_measurements_and_steps_are_refused_or_stay_finite(config):
     u0 = make_scenario(spec, 1, 5).u[0]
     for dt in (big, big / 1e6, 1e20 if prec == "float" else 1e200):
         codes.append(checked(c, lambda: c.predict(u0, dt)))
-    # an innovation of ~1e38 squared cannot give a finite NIS in either precision
-    assert any(code == NON_FINITE for code in codes), codes
+    # an innovation of ~1e38 squared cannot give a finite NIS in either precision (the particle
+    # filter: nor a finite weight for any particle, DEGENERATE, where it forms no NIS)
+    assert any(code in (NON_FINITE, DEGENERATE) for code in codes), codes
 
 
-@pytest.mark.parametrize("config", CONFIGS, ids=CONFIG_IDS)
+@pytest.mark.parametrize("config", ALL_CONFIGS, ids=ALL_IDS)
 def test_set_state_validates_and_recovers(config):
     ex, filt, prec = config
     spec = spec_of(ex)
@@ -274,14 +323,23 @@ def test_set_state_validates_and_recovers(config):
     for expected, x, P in cases:
         assert checked(c, lambda: c.set_state(x, P)) == expected, (x, P)
     # recovery: the model's x0 and P0 give back exactly the struct init wrote (the parameters
-    # were never touched), and the filter runs normally from there
+    # were never touched), and the filter runs normally from there; the particle filter redraws
+    # its particles, whose mean and covariance are then x0 and P0 (to rounding)
     assert checked(c, lambda: c.set_state(x_ok, P_ok)) == OK
-    assert c.raw_state() == initial
+    if get(filt).gaussian:
+        assert c.raw_state() == initial
+    else:
+        # (an angle state's mean is circular, atan2 of the weighted sines and cosines, while
+        # set_state matches the linear sample mean: they differ at third order in the spread)
+        rel = np.where(np.array(spec.angle_states, dtype=bool), 1e-2, 1e-4 if prec == "float" else 1e-10)
+        sd = np.sqrt(np.diag(P_ok))
+        assert np.all(np.abs(c.x - x_ok) <= rel * np.maximum(np.abs(x_ok), sd)), c.x - x_ok
+        assert np.all(np.abs(c.P - P_ok) <= np.maximum.outer(rel, rel) * np.outer(sd, sd)), c.P - P_ok
     warm_up(c, spec, steps=15, seed=8)
     assert len(cases) >= 10
 
 
-@pytest.mark.parametrize("config", CONFIGS, ids=CONFIG_IDS)
+@pytest.mark.parametrize("config", ALL_CONFIGS, ids=ALL_IDS)
 def test_set_state_recovers_a_filter_pushed_out_of_its_domain(config):
     # Drive the state far outside where the model was meant to be used until calls are refused,
     # then reset: afterwards the filter must accept a normal run again.
@@ -318,18 +376,20 @@ def test_status_codes_are_equal_across_filters_and_precisions():
     assert expected == {"OK": 0, "BAD_INPUT": 1, "BAD_DT": 2, "NOT_POSITIVE_DEFINITE": 3, "NON_FINITE": 4, "GATED": 5}
     assert int(Status.DEGENERATE) == 6
     seen_filters = set()
-    for ex, filt, prec in CONFIGS:
-        assert _status_enum(generated(ex, filt, prec).header) == expected, (ex, filt, prec)
+    for ex, filt, prec in ALL_CONFIGS:
+        want = {**expected, **{s.name: int(s) for s in get(filt).statuses}}
+        assert _status_enum(generated(ex, filt, prec).header) == want, (ex, filt, prec)
         seen_filters.add(filt)
-    assert "ekf" in seen_filters
+    assert "ekf" in seen_filters and "pf" in seen_filters
     if ukf_available():
         assert "ukf" in seen_filters
     # the committed headers too
     for root, _, files in os.walk(EXAMPLES_DIR):
         for fn in files:
-            if fn.endswith(("_ekf.h", "_ukf.h")):
+            if fn.endswith(("_ekf.h", "_ukf.h", "_pf.h")):
                 with open(os.path.join(root, fn), encoding="utf-8") as fh:
-                    assert _status_enum(fh.read()) == expected, fn
+                    want = {**expected, "DEGENERATE": 6} if fn.endswith("_pf.h") else expected
+                    assert _status_enum(fh.read()) == want, fn
 
 
 # ---------------------------------------------------------------------------------------------

@@ -14,6 +14,10 @@
  * the particles. Step for step the reference in estgen.pf, with the same random numbers. */
 #define PIER_TAG_PF_SEED 1u
 #define PIER_TAG_PF_POLAR_TRIES 32u
+/* How far a particle may lie from the estimate, sqrt(REAL_MAX / N) / 16: predict drops a particle
+   that moves further from the mean, a jitter landing further than twice this keeps the copy,
+   set_state refuses a P that could draw further; so the covariance of the cloud cannot overflow. */
+#define PIER_TAG_PF_REACH 2.6499507180428697e+151
 
 static int pier_tag_pf_finite(const double *v, size_t len)
 {
@@ -246,6 +250,18 @@ static double pier_tag_pf_solve(const double *L, size_t dim, const double *r, do
 
 /* -- particles -------------------------------------------------------------------------------- */
 
+/* 1 when every component of a lies within reach of b (and is finite); see REACH below. */
+static int pier_tag_pf_within(const double *a, const double *b, double reach)
+{
+    size_t j;
+    for (j = 0u; j < 4u; ++j) {
+        if (!(fabs(a[j] - b[j]) <= reach)) {
+            return 0;
+        }
+    }
+    return 1;
+}
+
 /* x and P: the weighted mean (circular for angles) and weighted covariance of the live particles. */
 static void pier_tag_pf_moments(pier_tag_pf_t *s)
 {
@@ -370,8 +386,12 @@ static void pier_tag_pf_resample(pier_tag_pf_t *s, double wsum)
             sig[j] = (sig[j] - lo[j]) * 0.03556558820077846;
         }
         for (i = 0u; i < 1000u; ++i) {
+            double y[4];
             for (j = 0u; j < 4u; ++j) {
-                s->part[i][j] += pier_tag_pf_normal(s) * sig[j];
+                y[j] = s->part[i][j] + pier_tag_pf_normal(s) * sig[j];
+            }
+            if (pier_tag_pf_within(y, s->x, 2.0 * PIER_TAG_PF_REACH)) {
+                memcpy(s->part[i], y, sizeof y);
             }
         }
     }
@@ -421,6 +441,13 @@ int pier_tag_pf_set_state(pier_tag_pf_t *s, const double *x, const double *P)
     }
     if (pier_tag_pf_commit_pd(P) != PIER_TAG_PF_OK || pier_tag_pf_chol(P, 4u, -1.0, L) != PIER_TAG_PF_OK) {
         return PIER_TAG_PF_NOT_POSITIVE_DEFINITE;
+    }
+    /* |(L v)_j| <= sqrt(P_jj n N) for the whitened draws v: a P that could draw a particle
+       beyond the reach is refused */
+    for (j = 0u; j < 4u; ++j) {
+        if (P[pier_tag_pf_pk(j, j)] * 4000.0 > PIER_TAG_PF_REACH * PIER_TAG_PF_REACH) {
+            return PIER_TAG_PF_NON_FINITE;
+        }
     }
     /* pass 1: the sample mean and covariance of N x n normals */
     for (j = 0u; j < 4u; ++j) {
@@ -531,7 +558,7 @@ int pier_tag_pf_predict(pier_tag_pf_t *s, const double *u, double dt)
                 xn[j] += Lq[j * 4u + k] * z[k];
             }
         }
-        if (pier_tag_pf_finite(xn, 4u)) {
+        if (pier_tag_pf_finite(xn, 4u) && pier_tag_pf_within(xn, s->x, PIER_TAG_PF_REACH)) {
             memcpy(s->part[i], xn, sizeof xn);
             ++kept;
         } else {

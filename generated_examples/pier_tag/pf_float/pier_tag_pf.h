@@ -32,9 +32,10 @@
  *   PIER_TAG_PF_DEGENERATE               6  no particle explains the measurement (all weights zero); reset with set_state if it persists
  * When several apply, the first check in call order wins: BAD_INPUT (arguments), BAD_DT
  * (predict), then NON_FINITE / NOT_POSITIVE_DEFINITE of Q, Qw or R; predict then refuses with
- * NON_FINITE when no live particle has a finite prediction; update with DEGENERATE when no
- * particle has a finite weight, then NON_FINITE of the NIS and GATED (both only where the NIS
- * is formed: the _nis variants and gated sensors).
+ * NON_FINITE when no live particle has a finite prediction within REACH of the estimate;
+ * update with DEGENERATE when no particle has a finite weight, then NON_FINITE of the NIS and
+ * GATED (both only where the NIS is formed: the _nis variants and gated sensors); set_state
+ * with NON_FINITE when P could draw particles beyond REACH (P_jj n N > REACH^2).
  *
  * State vector (flt.x):
  *   [0] px [m]
@@ -58,7 +59,7 @@
  * Reentrant: distinct structs may be used from distinct threads.
  * Deviation from Power of Ten rule 4 (functions of at most 60 lines): these generated
  * functions are longer: each is one call's passes over the particles, with its refusal paths:
- *   pier_tag_pf_set_state: 76 lines
+ *   pier_tag_pf_set_state: 83 lines
  *   pier_tag_pf_predict: 71 lines
  *   pier_tag_pf_update_pier_nis: 114 lines
  *   pier_tag_pf_update_shadow_nis: 114 lines
