@@ -1171,6 +1171,10 @@ def validate(model: Model) -> ModelSpec:
     if model._initial is None:
         raise ModelError("no initial state; add model.initial(x0, P0) or model.initial_uniform(lower, upper)", mw)
     x0raw, P0raw, iw = model._initial
+    if model._box is not None and att_idx:
+        raise ModelError(f"initial_uniform() cannot describe attitude {model._states[att_idx[0]].attitude!r} (a box of "
+                         f"quaternions is not a distribution of rotations); use model.initial(x0, P0) with P0 of "
+                         f"the error dimension", iw)
     try:
         x0l = list(x0raw)
     except TypeError:

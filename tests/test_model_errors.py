@@ -95,6 +95,9 @@ CASES: Tuple[Tuple[str, Optional[int], Tuple[str, ...], bool], ...] = (
     ("attitude_x0_not_unit.py", 10, ("x0[0:4] is attitude 'q' with norm 1.00499", "unit quaternion"), False),
     ("attitude_p0_wrong_dim.py", 10, ("P0 (the error dimension: 4 states minus one per attitude) must be 3x3, "
                                       "got 4x4", "list of 3 variances"), False),
+    # a box prior is a box over the four quaternion entries: not a distribution of rotations
+    ("attitude_uniform_prior.py", 10, ("initial_uniform() cannot describe attitude 'att'", "use model.initial(x0, P0)"),
+     False),
     ("attitude_q_wrong_dim.py", 8, ("process_noise() (the error dimension", "must be 3x3, got 4x4"), False),
     ("attitude_process_not_quaternion.py", 7, ("entries 0..3 (attitude 'q') give a quaternion of norm 3",
                                                "quat.mul(q, quat.exp("), False),
