@@ -247,6 +247,11 @@ def main(argv: Optional[Sequence[str]] = None) -> int:
     except (ModelError, ToolMissing) as err:
         print(str(err), file=sys.stderr)
         return 2
+    except OSError as err:  # an output path that cannot be written (-o, --json, --depfile, ...)
+        if err.filename is None:
+            raise
+        print(f"error: {err.filename}: {err.strerror or err}", file=sys.stderr)
+        return 2
     except KeyboardInterrupt:
         return 130
 

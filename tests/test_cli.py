@@ -142,3 +142,17 @@ def test_negative_seed_is_bad_input(tmp_path, cmd):
                           cwd=str(tmp_path), capture_output=True, text=True, env=env)
     assert proc.returncode == 2, proc.stderr
     assert "Traceback" not in proc.stderr and "--seed" in proc.stderr
+
+
+def test_unwritable_output_is_bad_input(tmp_path):
+    # contract section 2: generate exits 2 on bad input with one short message naming the file
+    # (a folder that cannot be made because a file holds its name: POSIX mkdir's EEXIST)
+    blocker = tmp_path / "gen"
+    blocker.write_text("not a folder")
+    proc = run("generate", example_model("linear_cart"), "-o", str(blocker))
+    assert proc.returncode == 2, proc.stderr
+    assert "Traceback" not in proc.stderr and str(blocker) in proc.stderr
+    assert len(proc.stderr.strip().splitlines()) == 1
+    proc = run("generate", example_model("linear_cart"), "-o", str(tmp_path / "ok"), "--depfile",
+               str(blocker / "x.d"))
+    assert proc.returncode == 2 and "Traceback" not in proc.stderr and str(blocker) in proc.stderr, proc.stderr
