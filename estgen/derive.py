@@ -173,6 +173,9 @@ class EkfPredictCode:
     #: row by row, the non-zero entries of G Qw G' + Q as assignments to Pn, and the closing
     #: statements (attitude normalization, angle wraps)
     compact: Optional[Tuple[List[Stmt], List[Tuple[int, int, sp.Expr]], List[Stmt], List[Stmt]]] = None
+    #: ``cert`` for the compact form: F's part of the row sums read from cr[i], ca[i] (see
+    #: predict_certificate's loop_sums)
+    cert_loop: Optional[List[Tuple[sp.Expr, sp.Expr]]] = None
 
 
 #: how much cancellation the predict certificate tolerates: row i of F may make sum_k |F_ik| sqrt(P_kk)
@@ -182,8 +185,8 @@ CERT_KAPPA = 4
 
 
 def predict_certificate(Fm: sp.Matrix, Qm: Dict[Tuple[int, int], sp.Expr], n: int,
-                        Gm: Optional[sp.Matrix] = None, Qwm: Optional[sp.Matrix] = None
-                        ) -> Optional[List[Tuple[sp.Expr, sp.Expr]]]:
+                        Gm: Optional[sp.Matrix] = None, Qwm: Optional[sp.Matrix] = None,
+                        loop_sums: bool = False) -> Optional[List[Tuple[sp.Expr, sp.Expr]]]:
     """Conditions under which the computed P' = fl(F P F' + Q) may be committed unfactorized.
 
     Exactly, F P F' + Q is positive semidefinite when P is and Q is: the predict does not
@@ -204,6 +207,10 @@ def predict_certificate(Fm: sp.Matrix, Qm: Dict[Tuple[int, int], sp.Expr], n: in
     off-diagonal Q entry that is an expression makes it None. Process noise symbols (the term
     G Qw G') are the same argument for the stacked [F G] and diag(P, Qw): their columns join
     each row's sums, and Qw obeys the rules of Q.
+
+    ``loop_sums``: the same conditions on the same rows, with F's part of row i's sums written as
+    the symbols ``cr[i]`` (sum_k |F_ik|) and ``ca[i]`` (sum_k |F_ik| P_kk), which the compact
+    predict computes in loops over its F arrays; the noise symbols' terms stay explicit.
     """
     import numpy as np
 
@@ -236,6 +243,12 @@ def predict_certificate(Fm: sp.Matrix, Qm: Dict[Tuple[int, int], sp.Expr], n: in
         row += [(Qw[(l, l)], Gm[i, l].xreplace(dt_pos)) for l in range(nw) if Gm is not None and Gm[i, l] != 0]
         if len(row) <= 1:
             # g_i^2 = F_ik^2 P_kk <= P'_ii already (the rest is >= 0): nothing can cancel
+            continue
+        if loop_sums:
+            nf = sum(1 for k in range(n) if Fm[i, k] != 0)  # the F terms come first in row
+            r = sp.Symbol(f"cr[{i}]") + sum((sp.Abs(e) for _, e in row[nf:]), sp.S.Zero)
+            a = sp.Symbol(f"ca[{i}]") + sum((sp.Abs(e) * var for var, e in row[nf:]), sp.S.Zero)
+            cert.append((r * a, CERT_KAPPA * sp.Symbol(f"Pn[{packed_index(i, i, n)}]")))
             continue
         r = sum((sp.Abs(e) for _, e in row), sp.S.Zero)
         a = sum((sp.Abs(e) * var for var, e in row), sp.S.Zero)
@@ -363,6 +376,7 @@ def derive_ekf_predict(spec: ModelSpec) -> EkfPredictCode:
             e += sum((Bref[i, k] * Gm[j, k] for k in range(nw) if Gm[j, k] != 0), sp.S.Zero)
             stmts.append(Stmt("assign", f"Pn[{packed_index(i, j, n)}]", e))
     cert = predict_certificate(Fm, Qm, n, Gm, Qwm)
+    cert_loop = predict_certificate(Fm, Qm, n, Gm, Qwm, loop_sums=True)
     tail = _normalize_attitudes(spec) + angle_wraps(spec, "xn")
     stmts += tail
     uses_u = any(str(s).startswith("u[") for st in stmts for s in st.expr.free_symbols)
@@ -373,7 +387,8 @@ def derive_ekf_predict(spec: ModelSpec) -> EkfPredictCode:
             if e != 0:
                 noise.append(Stmt("assign", f"Pn[{packed_index(i, j, n)}]", e))
     fnz = [(i, k, Fm[i, k]) for i in range(n) for k in range(n) if Fm[i, k] != 0]
-    return EkfPredictCode(stmts, _uses_params(stmts), uses_u, cert, compact=(pre, fnz, noise, tail))
+    return EkfPredictCode(stmts, _uses_params(stmts), uses_u, cert, compact=(pre, fnz, noise, tail),
+                          cert_loop=cert_loop)
 
 
 def _x(arr: str, n: int) -> List[sp.Symbol]:

@@ -586,15 +586,20 @@ def pivot_check(n: int, P: str) -> Tuple[Stmt, ...]:
     return tuple(commit_check(n, P))
 
 
-def _compact_predict(em: Emitter, ctx: Dict[str, Any], compact: Any, dense: bool) -> List[str]:
+def _compact_predict(em: Emitter, ctx: Dict[str, Any], compact: Any, dense: bool, cert_sums: bool) -> List[str]:
     """The predict's lines in the compact form: f, F, G, Q as before, then P' = F P F' + G Qw G' + Q
     as loops. ``dense`` (F more than DENSE_F_FILL full): plain constant-bound loops over a full
     local F, zeros included; else loops over F's non-zeros (static const row starts and columns, a
-    local value array)."""
+    local value array). ``cert_sums``: also F's part of the rounding certificate's row sums,
+    cr[i] = sum_k |F_ik| and ca[i] = sum_k |F_ik| P_kk, in a loop over the same F (see
+    derive.predict_certificate's loop_sums)."""
     pre, fnz, noise, tail = compact
     ne = ctx["ne"]
     real, zero = em.real, em.lit(0.0)
     out = em.lines(with_sections(pre, EKF_PREDICT_SECTIONS))
+    if cert_sums:
+        out += [f"{real} cr[{ne}];  /* the rounding certificate's row sums over F (see the commit check) */",
+                f"{real} ca[{ne}];"]
     if dense:
         vals = {(i, k): e for i, k, e in fnz}
         rows = ["{" + ", ".join(em.expr(vals.get((i, k), sp.S.Zero)) for k in range(ne)) + "}" for i in range(ne)]
@@ -656,7 +661,9 @@ def _compact_predict(em: Emitter, ctx: Dict[str, Any], compact: Any, dense: bool
             "        }",
         ]
         out += _upper_triangle_products(ne, real, f"ck = 0u; ck < {ne}u; ++ck", "arow[ck] * Fd[cj][ck]")
-        return out + em.lines(tail)
+        if cert_sums:
+            out += _certificate_sums(ne, real, zero, ctx["fsuf"], f"ck = 0u; ck < {ne}u; ++ck", "Fd[ci][ck]", "ck")
+        return out + ["}"] + em.lines(tail)
     out += [
         "    q = 0u;",
         f"    for (ci = 0u; ci < {ne}u; ++ci) {{",
@@ -670,12 +677,33 @@ def _compact_predict(em: Emitter, ctx: Dict[str, Any], compact: Any, dense: bool
     ]
     out += _upper_triangle_products(ne, real, f"cp = Fr[cj]; cp < Fr[cj + 1u] && cp < {nnz}u; ++cp",
                                     "arow[Fc[cp]] * Fv[cp]")
-    return out + em.lines(tail)
+    if cert_sums:
+        out += _certificate_sums(ne, real, zero, ctx["fsuf"], f"cp = Fr[ci]; cp < Fr[ci + 1u] && cp < {nnz}u; ++cp",
+                                 "Fv[cp]", "Fc[cp]")
+    return out + ["}"] + em.lines(tail)
+
+
+def _certificate_sums(ne: int, real: str, zero: str, fsuf: str, loop: str, value: str, col: str) -> List[str]:
+    """cr[i] = sum_k |F_ik|, ca[i] = sum_k |F_ik| P_kk over the entries ``loop`` visits (F_ik is
+    ``value``, k is ``col``): the F part of derive.predict_certificate's row sums."""
+    return [
+        f"    for (ci = 0u; ci < {ne}u; ++ci) {{",
+        f"        {real} rs = {zero};",
+        f"        {real} as = {zero};",
+        f"        for ({loop}) {{",
+        f"            const {real} fa = fabs{fsuf}({value});",
+        "            rs += fa;",
+        f"            as += fa * Pf[{col}][{col}];",
+        "        }",
+        "        cr[ci] = rs;",
+        "        ca[ci] = as;",
+        "    }",
+    ]
 
 
 def _upper_triangle_products(ne: int, real: str, loop: str, term: str) -> List[str]:
     """The close of both F P F' loop forms: P'_ij += the sum over ``loop`` of ``term`` (row i of
-    A = F P times row j of F) for j >= i, in packed order; closes the row loop and the block."""
+    A = F P times row j of F) for j >= i, in packed order; closes the row loop (not the block)."""
     return [
         f"        for (cj = ci; cj < {ne}u; ++cj) {{",
         f"            {real} acc = Pn[q];",
@@ -686,7 +714,6 @@ def _upper_triangle_products(ne: int, real: str, loop: str, term: str) -> List[s
         "            ++q;",
         "        }",
         "    }",
-        "}",
     ]
 
 
@@ -739,25 +766,30 @@ def generate_ekf(spec: ModelSpec, setup: "FilterSetup") -> Generated:
         fill = len(code.predict.compact[1]) / float(spec.ne * spec.ne)
         dense_f = fill > DENSE_F_FILL
         forms["predict"] = size_forms(setup.common.optimize, spec.ne) or (dense_f and spec.ne >= DENSE_F_MIN_N)
+    cert = code.predict.cert
     if forms["predict"]:
-        p_lines = _compact_predict(em, ctx, code.predict.compact, dense_f)
+        # the compact form sums the certificate's rows over F in a loop (same conditions, same rows)
+        cert_sums = (setup.common.commit_check == "subtractive" and code.predict.cert_loop is not None
+                     and any(sym.name.startswith("cr[") for lhs, _ in code.predict.cert_loop for sym in lhs.free_symbols))
+        cert = code.predict.cert_loop if cert_sums else cert
+        p_lines = _compact_predict(em, ctx, code.predict.compact, dense_f, cert_sums)
     ctx["predict"] = {"lines": p_lines, "uses_par": code.predict.uses_par,
                       "uses_u": code.predict.uses_u, "cert": []}
     if setup.common.commit_check == "subtractive":
         # the predict's rounding certificate (derive.predict_certificate), else a factorization
-        if code.predict.cert is None:
+        if cert is None:
             ctx["commit_fns"]["predict"] = "commit_pd"
         else:
             ctx["commit_fns"]["predict"] = "certified"
             cert_ops = OpCount()
-            ctx["predict"]["cert"] = [f"({em.expr(lhs)} <= {em.expr(rhs)})" for lhs, rhs in code.predict.cert]
-            for lhs, rhs in code.predict.cert:
+            ctx["predict"]["cert"] = [f"({em.expr(lhs)} <= {em.expr(rhs)})" for lhs, rhs in cert]
+            for lhs, rhs in cert:
                 cert_ops += count_ops(lhs)
                 cert_ops += count_ops(rhs)
                 cert_ops.compare += 1
             pc += cert_ops
             ctx["predict"]["uses_par"] = ctx["predict"]["uses_par"] or any(
-                str(sym).startswith("par->") for pair in code.predict.cert for e in pair for sym in e.free_symbols)
+                str(sym).startswith("par->") for pair in cert for e in pair for sym in e.free_symbols)
     pc += OpCount(**ctx["commit_ops"]["commit_diag" if ctx["commit_fns"]["predict"] == "certified"
                                       else ctx["commit_fns"]["predict"]])
     ops["predict"] = pc.as_dict()

@@ -289,6 +289,41 @@ def test_predict_certificate_detects_cancellation():
     assert predict_certificate(F, {(0, 0): sp.Integer(1), (0, 1): sp.Integer(2), (1, 1): sp.Integer(1)}, 2) is None
 
 
+def test_predict_certificate_loop_sums_are_the_same_conditions():
+    # The compact predict sums F's part of each row in a loop (cr[i] = sum_k |F_ik|,
+    # ca[i] = sum_k |F_ik| P_kk): with those sums substituted, its conditions must be the plain
+    # certificate's, row for row, including the rows it skips and a noise-symbol column (the
+    # arithmetic of derive.predict_certificate; Higham 2002 sec. 3.5).
+    import sympy as sp
+
+    from estgen.derive import packed_index, predict_certificate
+
+    rng = np.random.default_rng(3)
+    n, nw = 4, 1
+    F = sp.Matrix(n, n, lambda i, k: 0 if (i, k) in ((1, 0), (1, 2), (1, 3), (3, 0)) else sp.Symbol(f"F{i}_{k}"))
+    G = sp.Matrix([[0], [sp.Symbol("G1_0")], [sp.Symbol("G2_0")], [0]])
+    Qw = sp.Matrix([[sp.Symbol("W0_0")]])
+    Q = {(i, j): (sp.Symbol(f"Q{i}") if i == j else sp.S.Zero) for i in range(n) for j in range(i, n)}
+    plain = predict_certificate(F, Q, n, G, Qw)
+    looped = predict_certificate(F, Q, n, G, Qw, loop_sums=True)
+    assert plain is not None and looped is not None and len(plain) == len(looped)
+    for _ in range(20):
+        vals = {sym: float(rng.normal()) for sym in F.free_symbols | G.free_symbols}
+        vals[sp.Symbol("W0_0")] = float(rng.uniform(0.1, 2.0))
+        vals.update({sp.Symbol(f"Q{i}"): float(rng.uniform(-0.1, 1.0)) for i in range(n)})
+        vals.update({sp.Symbol(f"P[{packed_index(k, k, n)}]"): float(rng.uniform(0.1, 2.0)) for k in range(n)})
+        vals.update({sp.Symbol(f"Pn[{packed_index(i, i, n)}]"): float(rng.uniform(0.0, 3.0)) for i in range(n)})
+        Fn = np.array(F.xreplace(vals), dtype=float)
+        for i in range(n):
+            vals[sp.Symbol(f"cr[{i}]")] = float(np.sum(np.abs(Fn[i])))
+            vals[sp.Symbol(f"ca[{i}]")] = float(sum(abs(Fn[i, k]) * vals[sp.Symbol(f"P[{packed_index(k, k, n)}]")]
+                                                    for k in range(n)))
+        for (l1, r1), (l2, r2) in zip(plain, looped):
+            a = float(l1.xreplace(vals)) <= float(r1.xreplace(vals))
+            b = float(l2.xreplace(vals)) <= float(r2.xreplace(vals))
+            assert a == b or abs(float(l1.xreplace(vals)) - float(r1.xreplace(vals))) < 1e-12
+
+
 # --optimize size (contract section 9): the compact forms must compute what the reference
 # computes, compile under the contract's warning set and stay deterministic, like the default.
 SIZE_CONFIGS = [c for c in CONFIGS if c[1] in ("ekf", "ukf")]
