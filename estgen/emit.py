@@ -804,7 +804,7 @@ def generate_ekf(spec: ModelSpec, setup: "FilterSetup") -> Generated:
         w_size, k_size, v_size = uc.w_size, uc.k_size, uc.v_size
         form = ("sequential scalar updates (diagonal R), standard form P - K W'" if uc.sequential
                 else "block update, Cholesky solve of S, Joseph form")
-        if forms["scalar_update"] and uc.compact is not None and all(comp.h for comp in uc.compact[1]):
+        if forms["scalar_update"] and uc.compact is not None and uc.compact[1] and all(comp.h for comp in uc.compact[1]):
             # every component through the shared function: the NIS is complete after the last
             body, after = _compact_sequential(em, ctx["prefix"], uc, rules)
             after += em.lines(angle_wraps(spec, "xs"))
