@@ -18,15 +18,18 @@ Proc. F 140(2), 1993) carrying N particles and their log-weights:
   increasing order, the slots of particles not copied.
 * regularization at resampling (the regularized particle filter of Musso, Oudjane & Le Gland,
   in Doucet, de Freitas & Gordon (eds.), Sequential Monte Carlo Methods in Practice, 2001; the
-  algorithm as in Arulampalam et al. 2002, sec. V-C): the weighted covariance S of the particles
-  before resampling, ``D D' = S``, and after resampling every particle moves by ``h D z``, z
-  standard normal, h the bandwidth of the Gaussian kernel that is optimal for a Gaussian density
+  algorithm as in Arulampalam et al. 2002, sec. V-C): after resampling every particle moves by
+  ``h D z``, z standard normal, ``D D' = S`` the covariance of the resampled cloud rounded to
+  :data:`KERNEL_BITS` bits (:func:`kernel_covariance`; Musso et al. and Arulampalam et al. take
+  the weighted covariance before resampling, of which this is a sample, less sensitive to the
+  last bits of the weights), h the bandwidth of the Gaussian kernel that is optimal for a Gaussian density
   (``h_opt = (4 / (N (n + 2)))^(1 / (n + 4))``, Silverman, Density Estimation, 1986) times
   ``regularization`` (default 1). The resampled cloud is then a draw from a kernel density
   estimate of the posterior instead of copies of a few particles, so a cloud does not collapse
   where the process noise cannot spread it again (a parameter estimated as a constant state, a
   precise sensor against a wide prior). It widens the posterior by the factor ``1 + h^2`` at each
-  resampling, the price of not collapsing.
+  resampling, the price of not collapsing. A jittered particle that would land further than
+  twice :func:`particle_reach` from the estimate keeps its copy.
 * instead of the kernel, optional roughening after resampling (Gordon, Salmond & Smith 1993):
   each component j gets ``K E_j N^(-1/n) z`` with ``E_j`` the spread (max - min) of the
   particles in j. Giving ``roughening`` turns the kernel off unless ``regularization`` is given
