@@ -251,8 +251,17 @@ def _loglik(Re: np.ndarray, r: np.ndarray) -> float:
     return float(-0.5 * (b @ b) - np.sum(np.log(np.diag(Lr))))
 
 
+#: sympy's "numpy" printer maps these to Python's scalar-only ``math`` functions; the particle
+#: filter evaluates every particle at once, so they are vectorized (still libm's values, as the
+#: scalar references and the C get)
+_VECTORIZED_MATH = {"erf": np.vectorize(math.erf, otypes=[float]),
+                    "erfc": np.vectorize(math.erfc, otypes=[float]),
+                    "gamma": np.vectorize(math.gamma, otypes=[float]),
+                    "lgamma": np.vectorize(math.lgamma, otypes=[float])}
+
+
 def _lambdify_list(args: Sequence[sp.Symbol], exprs: Sequence[sp.Expr]) -> Callable[..., List[Any]]:
-    return sp.lambdify(args, list(exprs), modules="numpy", cse=True)
+    return sp.lambdify(args, list(exprs), modules=[_VECTORIZED_MATH, "numpy"], cse=True)
 
 
 def _columns(values: Sequence[Any], count: int) -> np.ndarray:

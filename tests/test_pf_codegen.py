@@ -347,3 +347,26 @@ def test_random_calls_with_bad_values(example):
         else:
             scale = np.maximum(np.abs(r.x), np.sqrt(np.maximum(np.diag(r.P), 0.0))) + 1e-300
             assert np.all(np.abs(c.x - r.x) <= 1e-9 * scale), (kind, args)
+
+
+def _special_function_model():
+    # a saturating sensor through erf and a gain through the gamma function (invented numbers):
+    # sympy's numpy printer maps both to Python's scalar math functions, which the particle
+    # filter's vectorized reference must still evaluate per particle
+    m = Model("special")
+    x, v = m.states("x v")
+    m.process([x + m.dt * v, v * (1 - 0.1 * m.dt)])
+    m.process_noise(sp.diag(1e-4, 1e-3) * m.dt)
+    m.sensor("sat", [2 * sp.erf(x / 3) + sp.erfc(v) / 4], noise=[0.02 ** 2])
+    m.sensor("gain", [sp.gamma(1.5 + x ** 2 / 10) + sp.loggamma(2 + v ** 2)], noise=[0.05 ** 2])
+    m.initial([0.5, 0.2], sp.diag(0.1, 0.05))
+    m.scenario(dt=0.1)
+    return validate(m)
+
+
+def test_special_functions_in_the_reference():
+    # erf, erfc, gamma and loggamma evaluated for all particles at once equal libm's values one
+    # by one (Python's math module, common practice as the scalar reference), and the C follows
+    res = verify(_special_function_model(), "pf", "double", steps=40, seed=1, particles=80)
+    assert res.ok, res.as_dict()
+    assert max(res.x_dev) < 1e-9 and res.P_dev < 1e-9
