@@ -41,6 +41,7 @@ __all__ = [
     "comment",
     "EKF_PREDICT_SECTIONS",
     "EKF_BLOCK_UPDATE_SECTIONS",
+    "reset_covariance",
 ]
 
 
@@ -444,14 +445,42 @@ def _error_H(spec: ModelSpec, Hm: sp.Matrix, stmts: List[Stmt]) -> sp.Matrix:
 
 def _inject(spec: ModelSpec) -> List[Stmt]:
     """xs = x ⊞ dx: the accumulated error injected into the prior in one go (attitudes
-    right-multiplied by exp(dtheta) and renormalized). P is left as it is: the reset Jacobian
-    I - [dtheta/2 x] differs from I to first order in the correction only (Markley 2003;
-    Sola 2017, sec. 7.2), the documented first-order choice."""
+    right-multiplied by exp(dtheta) and renormalized). The covariance reset that goes with it is
+    one shared function (:func:`reset_covariance`) each update calls after this."""
     from .errorstate import inject
 
     newx = inject(spec, _x("x", spec.n), _x("dx", spec.ne))
     stmts, _ = model_block([("assign", f"xs[{i}]", e) for i, e in enumerate(newx)], prefix="g")
     return stmts
+
+
+def reset_covariance(spec: ModelSpec) -> List[Stmt]:
+    """The body of the EKF's shared reset function: Ps <- G Ps G' with the reset Jacobian G = blockdiag(I - [dtheta/2 x], I) of the injected
+    correction dx (Markley 2003; Sola 2017, sec. 7.2; :func:`estgen.errorstate.reset_jacobian`):
+    the error is re-referenced to the new estimate. Only the attitude rows of G differ from I,
+    so T = G Ps is formed on those rows and the packed entries that touch them are rewritten."""
+    from .errorstate import reset_jacobian
+
+    ne = spec.ne
+    rows = [ei + r for kind, _, ei in spec.error_blocks() if kind == "attitude" for r in range(3)]
+    blk = Block()
+    half = [blk.value(f"rh{k}", sp.Symbol(f"dx[{k}]") / 2) if k in rows else sp.S.Zero for k in range(ne)]
+    G = reset_jacobian(spec, [2 * h for h in half])
+    P = _sym_P(ne, "Ps")
+    T: Dict[Tuple[int, int], sp.Expr] = {}
+    for i in rows:
+        for j in range(ne):
+            T[(i, j)] = blk.value(f"rT{i}_{j}", sum((G[i, k] * P[k, j] for k in range(ne) if G[i, k] != 0), sp.S.Zero))
+    for i in range(ne):
+        for j in range(i, ne):
+            if i in rows and j in rows:
+                e = sum((T[(i, l)] * G[j, l] for l in range(ne) if G[j, l] != 0), sp.S.Zero)
+            elif i in rows or j in rows:
+                e = T[(i, j)] if i in rows else T[(j, i)]
+            else:
+                continue
+            blk.add("assign", f"Ps[{packed_index(i, j, ne)}]", e)
+    return blk.stmts
 
 
 def _named_entries(outputs: List[Tuple[str, str, sp.Expr]], mat: sp.Matrix, tag: str) -> sp.Matrix:

@@ -28,7 +28,7 @@ from sympy.printing.str import StrPrinter
 from ._version import __version__
 from .chi2 import chi2_ppf
 from .derive import (CERT_KAPPA, EKF_BLOCK_UPDATE_SECTIONS, EKF_PREDICT_SECTIONS, Stmt, angle_wraps, derive_ekf,
-                     ekf_sequential_sections, packed_index, packed_size, with_sections)
+                     ekf_sequential_sections, packed_index, packed_size, reset_covariance, with_sections)
 from .errors import ModelError
 from .ir import Loop, Node
 from .unrolled import commit_check
@@ -550,6 +550,7 @@ def _common_context(spec: ModelSpec, setup: "FilterSetup") -> Dict[str, Any]:
         "commit_check": commit_check,
         "optimize": optimize,
         "compact": compact_forms(optimize, ne),
+        "reset": [],  # the EKF's attitude covariance reset (generate_ekf fills it)
         "cert_kappa": CERT_KAPPA,
         "commit_fns": commit_fns,
         "commit_ops": commit_ops,
@@ -796,6 +797,9 @@ def generate_ekf(spec: ModelSpec, setup: "FilterSetup") -> Generated:
     ups = []
     forms["scalar_update"] = size_forms(setup.common.optimize, spec.ne) or spec.ne > UNROLL_SCALAR_UPDATE_MAX
     forms["scalar_update_used"] = False
+    # attitudes: the covariance reset after the injection, one static function every update calls
+    reset_ops = OpCount()
+    ctx["reset"] = em.lines(reset_covariance(spec), reset_ops) if spec.attitudes and code.updates else []
     for uc, sctx in zip(code.updates, ctx["sensors"]):
         oc = OpCount()
         rules = ekf_sequential_sections(uc.sensor) if uc.sequential else EKF_BLOCK_UPDATE_SECTIONS
@@ -812,6 +816,9 @@ def generate_ekf(spec: ModelSpec, setup: "FilterSetup") -> Generated:
             forms["scalar_update_used"] = True
             if uc.whiten:
                 form = "constant full R = L L' whitened by L^-1, then sequential scalar updates, standard form P - K W'"
+        if ctx["reset"]:
+            after.append(f"{ctx['prefix']}_reset(Ps, dx);  /* P re-referenced to the corrected attitude */")
+            oc += reset_ops
         oc += OpCount(**ctx["commit_ops"][ctx["commit_fns"]["update"]])
         ops[f"update_{uc.sensor.name}"] = oc.as_dict()
         ups.append({**sctx, "lines": body, "rest": after, "uses_par": uc.uses_par, "w_size": w_size,

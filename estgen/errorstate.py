@@ -16,6 +16,11 @@ the chain rule is ``E(f(x)) * df/dx * M(x)``:
   of ``2 L(conj(y)) / |y|^2``. The part of dy along y (a change of norm) drops out, as it must.
 
 ``H_err = dh/dx * M(x)`` for a sensor.
+
+After an update injects a correction ``mu`` (``x+ = x ⊞ mu``), the error is re-referenced to
+the new estimate: ``e' = (x ⊞ e) ⊟ (x ⊞ mu)``, for an attitude ``log(exp(-mu) ⊗ exp(dtheta))``.
+Its Jacobian at ``e = mu`` is, to first order in ``mu``, the reset Jacobian
+``G = blockdiag(I - [mu/2 ×], I)`` (Markley 2003; Sola 2017, sec. 7.2), and ``P <- G P G'``.
 """
 
 from __future__ import annotations
@@ -27,7 +32,8 @@ import sympy as sp
 from . import quat
 from .model import ModelSpec
 
-__all__ = ["left_matrix", "retraction_jacobian", "error_map", "inject", "normalize", "boxplus_symbolic"]
+__all__ = ["left_matrix", "retraction_jacobian", "error_map", "reset_jacobian", "inject", "normalize",
+           "boxplus_symbolic"]
 
 
 def left_matrix(q: Sequence[sp.Expr]) -> sp.Matrix:
@@ -63,6 +69,18 @@ def error_map(spec: ModelSpec, y: Sequence[sp.Expr], inv_norm2: Dict[int, sp.Exp
                 for c in range(4):
                     E[ei + r, xi + c] = 2 * L[r + 1, c] * inv_norm2[xi]
     return E
+
+
+def reset_jacobian(spec: ModelSpec, mu: Sequence[sp.Expr]) -> sp.Matrix:
+    """``G``, ne x ne: identity except ``I - [mu_q/2 ×]`` on each attitude's block, where ``mu``
+    is the injected correction (``[a ×] b = a × b``; see the module text)."""
+    G = sp.eye(spec.ne)
+    for kind, _, ei in spec.error_blocks():
+        if kind == "attitude":
+            a = [m / 2 for m in mu[ei:ei + 3]]
+            skew = sp.Matrix([[0, -a[2], a[1]], [a[2], 0, -a[0]], [-a[1], a[0], 0]])
+            G[ei:ei + 3, ei:ei + 3] = sp.eye(3) - skew
+    return G
 
 
 def normalize(q: Sequence[sp.Expr]) -> List[sp.Expr]:

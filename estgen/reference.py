@@ -117,13 +117,14 @@ class ModelFunctions:
                 self._Av[s.name] = _lambdify(list(ps), noise_factor(s.Rv))
         self.ne = spec.ne
         if spec.attitudes:
-            from .errorstate import boxplus_symbolic, error_map, retraction_jacobian
+            from .errorstate import boxplus_symbolic, error_map, reset_jacobian, retraction_jacobian
 
             bx, be, plus = boxplus_symbolic(spec)
             self._plus = _lambdify([*bx, *be], sp.Matrix(plus))
             self._M = _lambdify(bx, retraction_jacobian(spec, bx))
             inv2 = {xi: 1 / sum((bx[k] ** 2 for k in range(xi, xi + 4)), sp.S.Zero) for xi in spec.attitudes}
             self._E = _lambdify(bx, error_map(spec, bx, inv2))
+            self._G = _lambdify(be, reset_jacobian(spec, be))
             from . import quat
 
             ref = list(sp.symbols(f"br0:{spec.n}"))
@@ -167,6 +168,14 @@ class ModelFunctions:
         for i in self.spec.attitudes:
             x[i:i + 4] /= np.linalg.norm(x[i:i + 4])
         return x
+
+    def reset_jacobian(self, dx: np.ndarray) -> np.ndarray:
+        """``G`` (ne, ne) of an injected correction ``dx``: I - [dtheta/2 x] on each attitude's
+        block, identity elsewhere (:func:`estgen.errorstate.reset_jacobian`); identity without
+        attitudes."""
+        if not self.spec.attitudes:
+            return np.eye(self.ne)
+        return self._arr(self._G(*dx), (self.ne, self.ne))
 
     def F_err(self, x: np.ndarray, u: np.ndarray, dt: float, p: Tuple[float, ...]) -> np.ndarray:
         """The error-state transition ``E(f(x)) df/dx M(x)`` (ne, ne); df/dx without attitudes."""
@@ -549,7 +558,8 @@ class ReferenceEKF(_ReferenceBase):
         return self._commit(xn, Pn)
 
     def _innovation(self, sensor: str, z: np.ndarray) -> Union[int, _Innovation]:
-        """Linearize h at x and v = 0, R_eff = M Rv M' + R; the covariance update is the Joseph form."""
+        """Linearize h at x and v = 0, R_eff = M Rv M' + R; the covariance update is the Joseph form
+        (attitudes: then the reset P <- G P G', see :meth:`ModelFunctions.reset_jacobian`)."""
         p = self._p()
         x, P = self._x, self._P
         hx = self._fn.h(sensor, x, p)
@@ -563,7 +573,11 @@ class ReferenceEKF(_ReferenceBase):
 
         def joseph(K: np.ndarray, S: np.ndarray) -> np.ndarray:
             A = np.eye(P.shape[0]) - K @ H
-            return A @ P @ A.T + K @ R @ K.T  # stays PSD under rounding, unlike (I - KH) P
+            Pj = A @ P @ A.T + K @ R @ K.T  # stays PSD under rounding, unlike (I - KH) P
+            if not self.spec.attitudes:
+                return Pj
+            G = self._fn.reset_jacobian(K @ y)  # the error re-referenced to x ⊞ K y
+            return G @ Pj @ G.T
 
         return y, H @ PHt + R, PHt, joseph
 

@@ -121,16 +121,56 @@ def test_c_predict_covariance_matches_finite_difference_propagation(gyro) -> Non
         np.testing.assert_allclose(c.x, fn.normalize(fn.f(x, u, 0.05, p)), atol=1e-14)
 
 
+def _fd_reset(spec, x: np.ndarray, mu: np.ndarray, step: float = 1e-6) -> np.ndarray:
+    """Central differences of the error redefinition e -> (x ⊞ e) ⊟ (x ⊞ mu) at e = mu, with
+    scipy's rotations: the exact Jacobian of the reset (Sola 2017, sec. 7.2; common practice:
+    central differences)."""
+    ref = _plus(spec, x, mu)
+    J = np.zeros((spec.ne, spec.ne))
+    for j in range(spec.ne):
+        h = np.zeros(spec.ne)
+        h[j] = step
+        J[:, j] = (_minus(spec, _plus(spec, x, mu + h), ref) - _minus(spec, _plus(spec, x, mu - h), ref)) / (2 * step)
+    return J
+
+
+def _skew(a: np.ndarray) -> np.ndarray:
+    return np.array([[0.0, -a[2], a[1]], [a[2], 0.0, -a[0]], [-a[1], a[0], 0.0]])
+
+
+def test_reset_jacobian_matches_manifold_central_differences(gyro) -> None:
+    """G = blockdiag(I - [mu/2 x], I) is the first-order reset Jacobian (Sola 2017, sec. 7.2;
+    Markley 2003): against the exact Jacobian from scipy central differences it must be right to
+    second order in the correction mu (the next term of the exact one, the right Jacobian of SO(3),
+    is ((|mu| - sin|mu|)/|mu|^3) [mu x]^2, at most |mu|^2/6 per entry: Sola 2017, eq. 143; from
+    memory), while keeping P unchanged (G = I) is wrong to first order."""
+    fn = model_functions(gyro)
+    for size in (1e-3, 1e-2, 0.1, 0.4):
+        for _ in range(3):
+            x = _random_state(gyro)
+            mu = RNG.normal(size=gyro.ne)
+            mu[:3] *= size / np.linalg.norm(mu[:3])
+            exact = _fd_reset(gyro, x, mu)
+            G = fn.reset_jacobian(mu)
+            assert np.max(np.abs(G - exact)) <= size**2 / 6 * 1.01 + 1e-8  # 1%: the next order, size^2/32 relative
+            # no reset is first-order wrong: the largest entry of [mu/2 x] is at least |mu|/(2 sqrt 3)
+            assert np.max(np.abs(np.eye(gyro.ne) - exact)) >= 0.28 * size
+            np.testing.assert_array_equal(G[3:, :], np.eye(gyro.ne)[3:, :])  # plain states are not re-referenced
+
+
 def test_c_update_injects_the_error_like_scipy(gyro) -> None:
-    """After one update, q_post = q_prior ⊗ exp(K y) (scipy composition), |q| = 1, and the
-    Joseph-form P (Bar-Shalom, Li & Kirubarajan 2001, eq. 5.2.3-18) with the manifold Jacobian."""
+    """After one update, q_post = q_prior ⊗ exp(K y) (scipy composition), |q| = 1, and P is the
+    Joseph form (Bar-Shalom, Li & Kirubarajan 2001, eq. 5.2.3-18) with the manifold Jacobian,
+    re-referenced to the new estimate: G P G' with G = I - [dtheta/2 x] (Sola 2017, sec. 7.2), and
+    within second order of the reset taken from scipy central differences."""
     c = estgen.build(gyro, filter="ekf", precision="double")
     fn = model_functions(gyro)
     p = fn.param_tuple(gyro.param_defaults())
     x = _random_state(gyro)
     P = np.diag([0.05, 0.05, 0.05, 1e-4, 1e-4, 1e-4])
     assert c.set_state(x, P) == 0
-    z = np.array([0.3, -0.5, -9.7])
+    truth = _plus(gyro, x, np.array([0.08, -0.05, 0.06, 0.0, 0.0, 0.0]))
+    z = fn.h("acc", truth, p) + np.array([0.02, -0.03, 0.01])
     assert c.update("acc", z) == 0
     H = _fd_H(gyro, fn, "acc", x, p)
     R = np.diag([0.05] * 3)
@@ -139,7 +179,19 @@ def test_c_update_injects_the_error_like_scipy(gyro) -> None:
     dx = K @ (z - fn.h("acc", x, p))
     np.testing.assert_allclose(c.x, _plus(gyro, x, dx), atol=1e-8)
     A = np.eye(6) - K @ H
-    np.testing.assert_allclose(c.P, A @ P @ A.T + K @ R @ K.T, atol=1e-9)
+    Pj = A @ P @ A.T + K @ R @ K.T
+    G = np.eye(6)
+    G[:3, :3] -= _skew(dx[:3] / 2)
+    np.testing.assert_allclose(c.P, G @ Pj @ G.T, atol=1e-9)
+    mu = np.linalg.norm(dx[:3])
+    Gx = _fd_reset(gyro, x, dx)
+    # |G - Gx|_2 <= (|mu| - sin|mu|)/|mu| <= mu^2/6 (the test above), so in the 2-norm
+    # |G Pj G' - Gx Pj Gx'| <= mu^2/6 |Pj| (|G| + |Gx|); 1% for the next order (mu^2/32 relative)
+    # and the differences' rounding
+    norm = lambda a: np.linalg.norm(a, 2)  # noqa: E731
+    bound = mu**2 / 6 * 1.01 * norm(Pj) * (norm(G) + norm(Gx))
+    assert norm(c.P - Gx @ Pj @ Gx.T) <= bound
+    assert norm(c.P - Pj) > 10 * bound  # the reset is resolved by this check
     assert abs(np.linalg.norm(c.x[:4]) - 1.0) < 1e-15 * 4
 
 

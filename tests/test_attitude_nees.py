@@ -19,7 +19,10 @@ from estgen.simulate import make_scenario, monte_carlo
 
 GYRO = os.path.join(os.path.dirname(os.path.abspath(__file__)), "models", "attitude_gyro.py")
 STEPS = 2000
-RUNS = 30
+# 60 runs: the gyro-bias errors wander slowly, so the fraction of steps inside the bounds is a
+# noisy statistic over few runs (30 runs of seeds 5, 6, 7 gave 90.5, 98.9 and 99.4 % for the same
+# EKF; docs/attitude.md); twice the runs halve the variance of the run-averaged NEES
+RUNS = 60
 
 
 @pytest.mark.parametrize("run", [0, 1, 2])

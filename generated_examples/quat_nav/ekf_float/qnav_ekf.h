@@ -77,6 +77,9 @@
  * Attitudes (unit quaternions w, x, y, z; Hamilton product; body -> reference) take four entries
  * of x and three of P: the error dtheta in q_true = q (x) exp(dtheta), body frame, rad. P is
  * 15 x 15 over: pn, pe, pd, vn, ve, vd, q_rx, q_ry, q_rz, bgx, bgy, bgz, bax, bay, baz.
+ * An update injects its correction dx into x (q = q (x) exp(dtheta), renormalized) and then
+ * re-references the error to the new estimate: P = G P G', G = I - [dtheta/2 x] on each attitude
+ * block (the standard first-order error-state reset), before the commit check.
  *
  * Commit check: every update commits a new P only when its Cholesky factorization
  * succeeds (every pivot finite and > 0): an update subtracts from P. Predict only adds
@@ -91,11 +94,12 @@
  * functions are longer because the algebra is unrolled straight-line code (no loops, one exit path
  * besides the early refusals), each block headed by a section comment:
  *   qnav_ekf_init: 137 lines
+ *   qnav_ekf_reset: 90 lines
  *   qnav_ekf_predict: 451 lines
- *   qnav_ekf_update_gnss_pos_nis: 97 lines
- *   qnav_ekf_update_gnss_vel_nis: 97 lines
- *   qnav_ekf_update_baro_nis: 75 lines
- *   qnav_ekf_update_mag_nis: 124 lines
+ *   qnav_ekf_update_gnss_pos_nis: 98 lines
+ *   qnav_ekf_update_gnss_vel_nis: 98 lines
+ *   qnav_ekf_update_baro_nis: 76 lines
+ *   qnav_ekf_update_mag_nis: 125 lines
  */
 #ifndef QNAV_EKF_H
 #define QNAV_EKF_H
