@@ -322,3 +322,16 @@ def test_truth_leaving_the_domain_names_the_process_line(tmp_path) -> None:
         assert res.returncode == 2, res.stderr
         assert res.stderr.startswith("drain.py:6: error: the simulated truth"), res.stderr
         assert "Traceback" not in res.stderr
+
+
+@pytest.mark.parametrize("cmd", [["generate", "-o", "out"], ["verify"], ["simulate", "--runs", "2", "--steps", "3"],
+                                 ["soak", "--steps", "3"], ["report"], ["compare", "--runs", "2", "--steps", "3"],
+                                 ["replay", "-o", "out"]], ids=lambda c: c[0])
+def test_every_command_starts_a_model_message_with_its_path(tmp_path, cmd) -> None:
+    # Contract section 9, on every command (report used to prefix 'estgen: ').
+    (tmp_path / "m.py").write_text(_SQRT_DRAIN.replace("process_noise([1e-4])", "process_noise([-1e-4])"))
+    env = dict(os.environ, PYTHONPATH=REPO + os.pathsep + os.environ.get("PYTHONPATH", ""))
+    res = subprocess.run([sys.executable, "-m", "estgen", cmd[0], "m.py", *cmd[1:]], capture_output=True, text=True,
+                         env=env, cwd=tmp_path, timeout=300)
+    assert res.returncode == 2, res.stderr
+    assert res.stderr.startswith("m.py:7: error: process_noise()"), res.stderr
