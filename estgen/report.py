@@ -74,6 +74,9 @@ def run(args: argparse.Namespace) -> int:
     """Run ``estgen report`` with parsed ``args``: 0 done, 2 bad input."""
     from .errors import ToolMissing
 
+    if not args.clock_mhz > 0:
+        print("estgen report: --clock-mhz must be > 0", file=sys.stderr)
+        return 2
     # a ModelError goes to the command line's handler: the message starts with the model's path
     rep = make_report(args.model, target=args.target, steps=args.steps, seed=args.seed,
                       progress=wanted(args.quiet, args.progress), **FilterSetup.from_args(args).kwargs(runtime=False))
@@ -81,9 +84,6 @@ def run(args: argparse.Namespace) -> int:
         # a report without its figures is no report: name what to install and stop (exit 2)
         for tool, what in rep["missing"].items():
             print(f"estgen report: {ToolMissing(tool)} (needed for {'; '.join(what)})", file=sys.stderr)
-        return 2
-    if not args.clock_mhz > 0:
-        print("estgen report: --clock-mhz must be > 0", file=sys.stderr)
         return 2
     print(format_report(rep, clock_mhz=args.clock_mhz))
     if args.json:

@@ -86,3 +86,11 @@ def test_no_binutils_for_the_host_target(tmp_path):
     proc = _run(tmp_path, {"nm", "size"}, "report", CART, "--target", "host", "--steps", "20")
     assert proc.returncode == 2 and "Traceback" not in proc.stderr, proc.stderr
     assert "apt-get install binutils" in proc.stderr and "apt-get install nm" not in proc.stderr
+
+
+def test_bad_clock_is_refused_before_any_tool_runs(tmp_path):
+    # --clock-mhz 0 is bad input whatever is installed: refused first (exit 2), not after a
+    # measurement that here could not even start (no cross toolchain)
+    proc = _run(tmp_path, {"arm-none-eabi-"}, "report", CART, "--clock-mhz", "0")
+    assert proc.returncode == 2 and "Traceback" not in proc.stderr, proc.stderr
+    assert "--clock-mhz must be > 0" in proc.stderr and "arm-none-eabi" not in proc.stderr
