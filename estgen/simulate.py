@@ -773,9 +773,10 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--burn-in", type=int, default=None, metavar="N",
                         help="leave steps 1..N out of the verdict (default: the start-up transient, the steps "
                              "the filter's covariance takes to settle within a factor 2, at most 20%% of the run)")
-    parser.add_argument("--set", action="append", default=[], metavar="NAME=VALUE",
-                        help="change a parameter of the filter (the truth keeps the default); repeatable")
-    parser.add_argument("--every", action="append", default=[], metavar="SENSOR=N",
+    # "--set a=1 b=2" and "--set a=1 --set b=2" both work (the contract writes [--set NAME=VALUE ...])
+    parser.add_argument("--set", action="extend", nargs="+", default=[], metavar="NAME=VALUE",
+                        help="change parameters of the filter (the truth keeps the defaults); repeatable")
+    parser.add_argument("--every", action="extend", nargs="+", default=[], metavar="SENSOR=N",
                         help="the sensor reports every N-th step (overrides the model); repeatable")
     parser.add_argument("--dt", type=float, default=None, help="simulation step in seconds")
     parser.add_argument("--reference", action="store_true", help="test the numpy reference instead of the C")

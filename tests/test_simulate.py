@@ -281,3 +281,14 @@ def test_plot_without_matplotlib_is_refused_before_the_runs(tmp_path, cmd):
     assert proc.returncode == 2, proc.stderr
     assert "pip install matplotlib" in proc.stderr and "Traceback" not in proc.stderr
     assert not js.exists()
+
+
+def test_set_takes_several_pairs_after_one_flag(tmp_path):
+    # The contract writes `[--set NAME=VALUE ...]`: one --set with several pairs and repeated
+    # --set flags set the same parameters (argparse's nargs="+" notation, Python docs)
+    for i, extra in enumerate((["--set", "accel_psd=0.3", "pos_var=0.1"],
+                               ["--set", "accel_psd=0.3", "--set", "pos_var=0.1"])):
+        js = tmp_path / f"s{i}.json"
+        assert cli.main(["simulate", CART, "--runs", "2", "--steps", "5", "--reference", "-q", *extra,
+                         "--json", str(js)]) == 0
+        assert json.loads(js.read_text())["set_params"] == {"accel_psd": 0.3, "pos_var": 0.1}
