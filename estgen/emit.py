@@ -413,10 +413,13 @@ def _component_text(expr: sp.Expr, names: Dict[sp.Symbol, str], width: int = 60)
 #: --optimize speed: the largest state (error) dimension whose Cholesky factorization stays
 #: unrolled; above it the n^3/6 straight-line multiply-adds outgrow an instruction cache
 UNROLL_CHOLESKY_MAX = 12
-#: --optimize speed: the largest dimension whose scalar update P -= K W' stays unrolled
+#: --optimize speed: the largest dimension whose scalar update P -= K W' stays unrolled (above it,
+#: the shared function; a sensor with a constant full R is then whitened into it too)
 UNROLL_SCALAR_UPDATE_MAX = 12
 #: --optimize speed: F denser than this (non-zeros / n^2), with at least DENSE_F_MIN_N states, gets
-#: the loop form of F P F' (straight-line code then saves nothing on structure and grows as n^3)
+#: the loop form of F P F' (straight-line code then saves nothing on structure and grows as n^3);
+#: a compact F P F' of such an F (either form) loops over a full local F, zeros included, not over
+#: a table of its non-zeros (an indirection per multiply-add that buys nothing when most are non-zero)
 DENSE_F_FILL = 0.5
 DENSE_F_MIN_N = 8
 
