@@ -30,10 +30,8 @@ UKF_LOOP_SPEED_MIN_N = 16
 
 def uses_loop_form(spec: ModelSpec, optimize: str) -> bool:
     """True when the UKF of ``spec`` is generated in the loop form (:mod:`estgen.emit_ukf_loop`)
-    under ``--optimize optimize``. Models with attitudes keep the straight-line transform."""
-    if spec.attitudes:
-        return False
-    return spec.n >= (UKF_LOOP_SIZE_MIN_N if optimize == "size" else UKF_LOOP_SPEED_MIN_N)
+    under ``--optimize optimize`` (by the covariance's dimension: n minus one per attitude)."""
+    return spec.ne >= (UKF_LOOP_SIZE_MIN_N if optimize == "size" else UKF_LOOP_SPEED_MIN_N)
 
 
 def _augmented_note(spec: ModelSpec, wts: UkfWeights, em: Emitter) -> List[str]:
@@ -121,7 +119,7 @@ def _generate_loop(spec: ModelSpec, setup: "FilterSetup", wts: UkfWeights, ctx: 
     ctx["compact"]["chol"] = ctx["compact"]["pku"] = True
     fns = loop_functions(spec, em)
     fc = OpCount()
-    em.lines(factor_function(n), fc)  # the loop factorization does the same arithmetic
+    em.lines(factor_function(ctx["ne"]), fc)  # the loop factorization does the same arithmetic
     ctx["factor"] = []
     ops: Dict[str, Dict[str, int]] = {}
     lp = loop_predict(spec, em, ctx, wts, fns)
@@ -152,13 +150,14 @@ def _generate_loop(spec: ModelSpec, setup: "FilterSetup", wts: UkfWeights, ctx: 
         u_bytes = max(u_bytes, _stack_bytes(0, n + 2 * np_ + s.m + 1, size_real) + lu.stack_bytes)
         ups.append({**sctx, "lines": lu.lines, "rest": lu.rest, "uses_par": lu.uses_par, "ea": 0})
     where = [
-        f"Sigma points: 2n+1 = {2 * n + 1} (loop form, --optimize {setup.common.optimize}): built one at a time",
+        f"Sigma points: 2n+1 = {2 * ctx['ne'] + 1} (loop form, --optimize {setup.common.optimize}): built one at a time",
         "from x and a column of the Cholesky factor, passed through the static model function, and",
         "their images kept in a local array (n or m rows of 2N+1) with the factor and the sums: the",
         f"named locals total {p_bytes} bytes in predict and {u_bytes} bytes in the largest update. The real",
         "frame depends on the compiler: measure it on the target, e.g. gcc -fstack-usage.",
     ]
-    return _finish(ctx, spec, wts, ups, ops, where, (p_bytes, u_bytes), [fns["f"]] + [fns[s.name] for s in spec.sensors])
+    return _finish(ctx, spec, wts, ups, ops, where, (p_bytes, u_bytes), [fns["f"]] + [fns[s.name] for s in spec.sensors]
+                   + [fns[k] for k in ("inject", "boxminus") if k in fns])
 
 
 def _finish(ctx: Dict[str, Any], spec: ModelSpec, wts: UkfWeights, ups: List[Dict[str, Any]],

@@ -27,7 +27,9 @@ import numpy as np
 
 import sympy as sp
 
-from .derive import angle_wraps, c_names, model_block, packed_index, packed_size
+from . import quat
+from .derive import Stmt, angle_wraps, c_names, model_block, packed_index, packed_size
+from .errorstate import inject
 from .derive_ukf import UkfWeights
 from .emit import Emitter, OpCount
 from .model import ModelSpec, SensorSpec, noise_factor
@@ -52,13 +54,15 @@ def _uses(stmts: Sequence[Any], prefix: str) -> bool:
 
 
 def _model_function(em: Emitter, name: str, outputs: List[Tuple[str, str, sp.Expr]], out: str,
-                    with_u: bool) -> Dict[str, Any]:
-    """One static model function: its parameter list, body lines and the ops of one call."""
+                    with_u: bool, inputs: Sequence[str] = (), wraps: Sequence[str] = ()) -> Dict[str, Any]:
+    """One static model function: its parameter list, body lines and the ops of one call.
+    ``inputs``: further array parameters after x; ``wraps``: targets wrapped to (-pi, pi]."""
     stmts, _ = model_block(outputs)
+    stmts = [Stmt("wrap", st.target, st.expr) if st.kind == "assign" and st.target in wraps else st for st in stmts]
     oc = OpCount()
     lines = em.lines(stmts, oc)
     real = em.real
-    params = [f"const {real} *x"]
+    params = [f"const {real} *x"] + [f"const {real} *{a}" for a in inputs]
     args = ["xa"]
     if with_u and _uses(stmts, "u["):
         params.append(f"const {real} *u")
@@ -93,6 +97,27 @@ def loop_functions(spec: ModelSpec, em: Emitter) -> Dict[str, Dict[str, Any]]:
                                                  for k in range(s.m)], "zh", False)
         fn["doc"] = f"h of sensor {s.name} at one sigma point: x = [x; v] ({n + s.nv} reals), zh = its image"
         out[s.name] = fn
+    if spec.attitudes:
+        xs = [sp.Symbol(f"x[{i}]") for i in range(n)]
+        es = [sp.Symbol(f"e[{k}]") for k in range(spec.ne)]
+        rs = [sp.Symbol(f"r[{i}]") for i in range(n)]
+        fn = _model_function(em, "inject", [("assign", f"xo[{i}]", v) for i, v in enumerate(inject(spec, xs, es))],
+                             "xo", False, ("e",))
+        fn["doc"] = "x [+] e: plain states added, each attitude right-multiplied by exp(e) and renormalized"
+        out["inject"] = fn
+        minus: List[Tuple[str, str, sp.Expr]] = []
+        wraps = []
+        for kind, xi, ei in spec.error_blocks():
+            if kind == "real":
+                minus.append(("assign", f"d[{ei}]", xs[xi] - rs[xi]))
+                if spec.states[xi].angle:
+                    wraps.append(f"d[{ei}]")
+            else:
+                rel = quat.log(quat.mul(quat.conj(rs[xi:xi + 4]), xs[xi:xi + 4]))
+                minus += [("assign", f"d[{ei + c}]", v) for c, v in enumerate(rel)]
+        fn = _model_function(em, "boxminus", minus, "d", False, ("r",), wraps)
+        fn["doc"] = "x [-] r: the error d with x = r [+] d (attitudes: log(conj(q_r) q_x); angles wrapped)"
+        out["boxminus"] = fn
     return out
 
 
@@ -127,24 +152,25 @@ def _indent(lines: List[str], depth: int = 1) -> List[str]:
     return ["    " * depth + line for line in lines]
 
 
-def _sigma_loop(em: Emitter, ctx: Dict[str, Any], n: int, nw: int, wts: UkfWeights, fn: Dict[str, Any],
-                img: str, out: str, m: int) -> List[str]:
-    """The loop over the 2N+1 sigma points of [x; noise]: point i in xa, its image through ``fn``
-    in ``out``, copied into column i of ``img`` (m rows)."""
+def _sigma_loop(em: Emitter, ctx: Dict[str, Any], spec: ModelSpec, nw: int, wts: UkfWeights, fn: Dict[str, Any],
+                out: str, store: List[str]) -> List[str]:
+    """The loop over the 2N+1 sigma points of [x; noise] (N = ne + nw): point i in xa (with
+    attitudes x [+] e, the error-space offset e in ev), its image through ``fn`` in ``out``, then
+    the ``store`` lines (which keep it in column i of the image array)."""
     prefix, real = ctx["prefix"], em.real
-    na = n + nw
-    ns = 2 * na + 1
+    n, ne = spec.n, spec.ne
+    att = bool(spec.attitudes)
+    na = ne + nw
     g = em.lit(wts.gamma)
-    lines = [
-        f"for (i = 0u; i < {ns}u; ++i) {{",
-        f"    memcpy(xa, x, {n}u * sizeof xa[0]);",
-    ]
+    tgt = "ev" if att else "xa"
+    lines = [f"for (i = 0u; i < {2 * na + 1}u; ++i) {{"]
+    lines.append("    memset(ev, 0, sizeof ev);" if att else f"    memcpy(xa, x, {n}u * sizeof xa[0]);")
     if nw:
-        lines += [f"    for (r = {n}u; r < {na}u; ++r) {{", f"        xa[r] = {em.lit(0.0)};", "    }"]
+        lines += [f"    for (r = {n}u; r < {n + nw}u; ++r) {{", f"        xa[r] = {em.lit(0.0)};", "    }"]
     col = [
-        f"const {real} *lc = &Lf[{prefix}_pku(c, c)];  /* column c of L, rows c..{n - 1} */",
-        f"for (r = c; r < {n}u; ++r) {{",
-        "    xa[r] += g * lc[r - c];",
+        f"const {real} *lc = &Lf[{prefix}_pku(c, c)];  /* column c of L, rows c..{ne - 1} */",
+        f"for (r = c; r < {ne}u; ++r) {{",
+        f"    {tgt}[r] += g * lc[r - c];",
         "}",
     ]
     lines += [
@@ -153,62 +179,87 @@ def _sigma_loop(em: Emitter, ctx: Dict[str, Any], n: int, nw: int, wts: UkfWeigh
         f"        const {real} g = (i <= {na}u) ? {g} : -{g};",
     ]
     if nw:
-        lines += [f"        if (c < {n}u) {{"] + _indent(col, 3) + ["        } else {",
-                  f"            for (r = c; r < {na}u; ++r) {{  /* column c - {n} of A */",
-                  f"                xa[r] += g * An[r - {n}u][c - {n}u];",
+        slot = "xa[r]" if n == ne else f"xa[r + {n - ne}u]"
+        lines += [f"        if (c < {ne}u) {{"] + _indent(col, 3) + ["        } else {",
+                  f"            for (r = c; r < {na}u; ++r) {{  /* column c - {ne} of A */",
+                  f"                {slot} += g * An[r - {ne}u][c - {ne}u];",
                   "            }", "        }"]
     else:
         lines += _indent(col, 2)
-    lines += [
-        "    }",
-        f"    {prefix}_{fn['name']}({fn['args']}, {out});",
-        f"    for (a = 0u; a < {m}u; ++a) {{",
-        f"        {img}[a][i] = {out}[a];",
-        "    }",
-        "}",
-    ]
-    return lines
+    lines.append("    }")
+    if att:
+        lines.append(f"    {prefix}_inject(x, ev, xa);")
+    lines.append(f"    {prefix}_{fn['name']}({fn['args']}, {out});")
+    return lines + _indent(store) + ["}"]
 
 
-def _mean_and_deviations(em: Emitter, ctx: Dict[str, Any], img: str, mean: str, m: int, ns: int,
-                         wts: UkfWeights, angles: Sequence[bool]) -> List[str]:
-    """mean = Wm0 Y0 + Wi sum Yi (circular for angles), then Y -= mean in place (wrapped)."""
-    prefix, real, fs = ctx["prefix"], em.real, ctx["fsuf"]
-    zero = em.lit(0.0)
-    wm0, wi = em.lit(wts.wm0), em.lit(wts.w)
-    lines = [
+def _copy_column(img: str, src: str, m: int, minus: str = "") -> List[str]:
+    """img[a][i] = src[a] (- minus[a]) for a < m."""
+    tail = f" - {minus}[a]" if minus else ""
+    return [f"for (a = 0u; a < {m}u; ++a) {{", f"    {img}[a][i] = {src}[a]{tail};", "}"]
+
+
+def _linear_mean(em: Emitter, img: str, mean: str, m: int, ns: int, wts: UkfWeights) -> List[str]:
+    """mean[a] = Wm0 img[a][0] + Wi sum_i img[a][i]."""
+    return [
         f"for (a = 0u; a < {m}u; ++a) {{",
-        f"    {real} acc = {zero};",
+        f"    {em.real} acc = {em.lit(0.0)};",
     ] + _indent(_sum_loop("acc", img + "[a][{i}]", "i", 1, ns)) + [
-        f"    {mean}[a] = {wm0} * {img}[a][0] + {wi} * acc;",
+        f"    {mean}[a] = {em.lit(wts.wm0)} * {img}[a][0] + {em.lit(wts.w)} * acc;",
         "}",
     ]
-    for k, ang in enumerate(angles):
-        if not ang:
-            continue
-        lines += [
-            f"{{   /* component {k} is an angle: circular mean */",
-            f"    {real} ss = {zero};",
-            f"    {real} cs = {zero};",
-            f"    for (i = 1u; i < {ns}u; ++i) {{",
-            f"        ss += sin{fs}({img}[{k}u][i]);",
-            f"        cs += cos{fs}({img}[{k}u][i]);",
-            "    }",
-            f"    {mean}[{k}] = {prefix}_wrap(atan2{fs}({wm0} * sin{fs}({img}[{k}u][0]) + {wi} * ss, "
-            f"{wm0} * cos{fs}({img}[{k}u][0]) + {wi} * cs));",
-            "}",
-        ]
-    lines += [
+
+
+def _subtract(img: str, mean: str, m: int, ns: int) -> List[str]:
+    return [
         f"for (a = 0u; a < {m}u; ++a) {{",
         f"    for (i = 0u; i < {ns}u; ++i) {{",
         f"        {img}[a][i] -= {mean}[a];",
         "    }",
         "}",
     ]
+
+
+def _covariance(em: Emitter, img: str, dest: str, m: int, ns: int, wts: UkfWeights, packed: bool) -> List[str]:
+    """dest = Wc0 d0 d0' + Wi sum_i di di' (packed upper triangle, or the lower triangle of a square)."""
+    lines = [f"for (a = 0u; a < {m}u; ++a) {{",
+             f"    for (b = a; b < {m}u; ++b) {{" if packed else "    for (b = 0u; b <= a; ++b) {",
+             f"        {em.real} acc = {em.lit(0.0)};"]
+    lines += _indent(_sum_loop("acc", img + "[a][{i}] * " + img + "[b][{i}]", "i", 1, ns), 2)
+    value = f"{em.lit(wts.wc0)} * {img}[a][0] * {img}[b][0] + {em.lit(wts.w)} * acc"
+    lines += [f"        {dest}[q] = {value};", "        ++q;"] if packed else [f"        {dest}[a][b] = {value};"]
+    return lines + ["    }", "}"]
+
+
+def _circular_means(em: Emitter, ctx: Dict[str, Any], img: str, mean: str, ns: int, wts: UkfWeights,
+                    angles: Sequence[bool]) -> List[str]:
+    """mean[k] = atan2(sum Wm sin, sum Wm cos) for every angle component k."""
+    prefix, real, fs = ctx["prefix"], em.real, ctx["fsuf"]
+    zero, wm0, wi = em.lit(0.0), em.lit(wts.wm0), em.lit(wts.w)
+    lines: List[str] = []
     for k, ang in enumerate(angles):
         if ang:
-            lines += [f"for (i = 0u; i < {ns}u; ++i) {{", f"    {img}[{k}u][i] = {prefix}_wrap({img}[{k}u][i]);", "}"]
+            lines += [
+                f"{{   /* component {k} is an angle: circular mean */",
+                f"    {real} ss = {zero};",
+                f"    {real} cs = {zero};",
+                f"    for (i = 1u; i < {ns}u; ++i) {{",
+                f"        ss += sin{fs}({img}[{k}u][i]);",
+                f"        cs += cos{fs}({img}[{k}u][i]);",
+                "    }",
+                f"    {mean}[{k}] = {prefix}_wrap(atan2{fs}({wm0} * sin{fs}({img}[{k}u][0]) + {wi} * ss, "
+                f"{wm0} * cos{fs}({img}[{k}u][0]) + {wi} * cs));",
+                "}",
+            ]
     return lines
+
+
+def _wrap_rows(ctx: Dict[str, Any], img: str, ns: int, angles: Sequence[bool]) -> List[str]:
+    out: List[str] = []
+    for k, ang in enumerate(angles):
+        if ang:
+            out += [f"for (i = 0u; i < {ns}u; ++i) {{", f"    {img}[{k}u][i] = {ctx['prefix']}_wrap({img}[{k}u][i]);", "}"]
+    return out
 
 
 def _sum_ops(m: int, ns: int, n_angles: int, mp: int) -> OpCount:
@@ -217,64 +268,94 @@ def _sum_ops(m: int, ns: int, n_angles: int, mp: int) -> OpCount:
                    transcendental=n_angles * (2 * ns + 2 + ns))
 
 
+def _sigma_decls(real: str, spec: ModelSpec, nw: int, what: str, cov: str) -> List[str]:
+    """The sigma point's arrays: xa (and, with attitudes, the error-space offset ev), and the
+    factor of the noise covariance ``cov`` of the noise vector ``what``."""
+    lines = [f"{real} xa[{spec.n + nw}];  /* the sigma point{' [x; ' + what + ']' if nw else ''} */"]
+    if spec.attitudes:
+        lines.append(f"{real} ev[{spec.ne}];  /* its error-space offset e: xa = x [+] e */")
+    if nw:
+        lines.append(f"{real} An[{nw}][{nw}];  /* noise factor: A A' = {cov} */")
+    return lines
+
+
 def loop_predict(spec: ModelSpec, em: Emitter, ctx: Dict[str, Any], wts: UkfWeights,
                  fns: Dict[str, Dict[str, Any]]) -> LoopCode:
-    """The predict's lines in the loop form (placed after the factorization of P into Lf)."""
-    n, nw = spec.n, spec.nw
-    na = n + nw
+    """The predict's lines in the loop form (placed after the factorization of P into Lf).
+
+    Without attitudes: the images Y_i, their weighted mean (circular for angle states) and the
+    deviations about it. With attitudes (the algorithm of :mod:`estgen.derive_ukf_att`): the
+    errors d_i = Y_i [-] Y_0 about the central image, dbar = sum Wm_i d_i, xn = Y_0 [+] dbar."""
+    n, ne, nw = spec.n, spec.ne, spec.nw
+    att = bool(spec.attitudes)
+    na = ne + nw
     aug = UkfWeights(na, wts.alpha, wts.beta, wts.kappa)
     ns = 2 * na + 1
     real = em.real
+    prefix = ctx["prefix"]
     f = fns["f"]
     lines = [
-        "/* loop form: the 2N+1 sigma points through the static f, one at a time; their images in Yt */",
+        "/* loop form: the 2N+1 sigma points through the static f, one at a time; "
+        + ("their errors about the central image in Dt */" if att else "their images in Yt */"),
         "{",
-        f"    {real} Yt[{n}][{ns}];  /* image of sigma point i, component a, at Yt[a][i] */",
-        f"    {real} xa[{na}];  /* the sigma point [x; w] */" if nw else f"    {real} xa[{na}];  /* the sigma point */",
+        f"    {real} Yt[{ne}][{ns}];  /* " + ("error d_i = Y_i [-] Y_0" if att else "image") + " of sigma point i, component a, at Yt[a][i] */",
         f"    {real} yv[{n}];",
     ]
+    lines += _indent(_sigma_decls(real, spec, nw, "w", "Qw"))
+    if att:
+        lines += [f"    {real} Y0[{n}];  /* image of the central point */", f"    {real} dv[{ne}];"]
     ops = OpCount()
     uses_par = f["uses_par"]
-    if nw:
-        lines.append(f"    {real} An[{nw}][{nw}];  /* noise factor: A A' = Qw */")
     lines += ["    size_t i;", "    size_t a;", "    size_t b;", "    size_t r;", "    size_t q = 0u;"]
+    if att:
+        lines.append("    memset(Y0, 0, sizeof Y0);  /* set by the first sigma point; cleared for the compiler's flow analysis */")
     if nw:
         nl, oc, par = _noise_block(em, spec, spec.Qw, "qa")
         lines += _indent(nl)
         ops += oc
         uses_par = uses_par or par
-    lines += _indent(_sigma_loop(em, ctx, n, nw, aug, f, "Yt", "yv", n))
+    if att:
+        store = ["if (i == 0u) {", "    memcpy(Y0, yv, sizeof Y0);", "}", f"{prefix}_boxminus(yv, Y0, dv);"]
+        store += _copy_column("Yt", "dv", ne)
+        ops += (fns["inject"]["ops"]).scaled(ns)
+        ops += (fns["boxminus"]["ops"]).scaled(ns)
+    else:
+        store = _copy_column("Yt", "yv", n)
+    lines += _indent(_sigma_loop(em, ctx, spec, nw, aug, f, "yv", store))
     ops += f["ops"].scaled(ns)
-    ops += OpCount(add=ns * n // 2 + ns * n, mul=ns * n // 2)
-    lines.append("    /* weighted mean (circular for angle states), deviations about it (wrapped) */")
-    lines += _indent(_mean_and_deviations(em, ctx, "Yt", "xn", n, ns, aug, spec.angle_states))
-    np_ = packed_size(n)
-    ops += _sum_ops(n, ns, sum(spec.angle_states), np_)
-    lines += [
-        "    /* P' = Wc0 d0 d0' + Wi sum_i di di' + Q, packed upper triangle */",
-        f"    for (a = 0u; a < {n}u; ++a) {{",
-        f"        for (b = a; b < {n}u; ++b) {{",
-        f"            {real} acc = {em.lit(0.0)};",
-    ] + _indent(_sum_loop("acc", "Yt[a][{i}] * Yt[b][{i}]", "i", 1, ns), 3) + [
-        f"            Pn[q] = {em.lit(aug.wc0)} * Yt[a][0] * Yt[b][0] + {em.lit(aug.w)} * acc;",
-        "            ++q;",
-        "        }",
-        "    }",
-    ]
-    ql, oc, par = _add_block(em, spec, [(f"Pn[{packed_index(i, j, n)}]", spec.Q[i, j]) for i in range(n)
-                                        for j in range(i, n)], "qq")
-    lines += _indent(ql) + ["}"]
+    ops += OpCount(add=ns * ne // 2 + ns * ne, mul=ns * ne // 2)
+    if att:
+        lines.append("    /* dbar = sum Wm_i d_i, deviations d_i - dbar */")
+        lines += _indent(_linear_mean(em, "Yt", "dv", ne, ns, aug) + _subtract("Yt", "dv", ne, ns))
+    else:
+        lines.append("    /* weighted mean (circular for angle states), deviations about it (wrapped) */")
+        lines += _indent(_linear_mean(em, "Yt", "xn", n, ns, aug)
+                         + _circular_means(em, ctx, "Yt", "xn", ns, aug, spec.angle_states)
+                         + _subtract("Yt", "xn", n, ns) + _wrap_rows(ctx, "Yt", ns, spec.angle_states))
+    ops += _sum_ops(ne, ns, 0 if att else sum(spec.angle_states), packed_size(ne))
+    lines.append("    /* P' = Wc0 d0 d0' + Wi sum_i di di' + Q, packed upper triangle */")
+    lines += _indent(_covariance(em, "Yt", "Pn", ne, ns, aug, True))
+    ql, oc, par = _add_block(em, spec, [(f"Pn[{packed_index(i, j, ne)}]", spec.Q[i, j]) for i in range(ne)
+                                        for j in range(i, ne)], "qq")
+    lines += _indent(ql)
+    if att:
+        lines.append(f"    {prefix}_inject(Y0, dv, xn);  /* xn = Y_0 [+] dbar */")
+        lines += _indent(em.lines(angle_wraps(spec, "xn")))
+    lines.append("}")
     ops += oc
     uses_par = uses_par or par
-    stack = (n * ns + na + n + nw * nw) * (4 if real == "float" else 8)
+    stack = (ne * ns + n + nw + n + nw * nw + (n + 2 * ne if att else 0)) * (4 if real == "float" else 8)
     return LoopCode(lines, [], ops, stack, uses_par)
 
 
 def loop_update(spec: ModelSpec, sensor: SensorSpec, em: Emitter, ctx: Dict[str, Any], wts: UkfWeights,
                 fns: Dict[str, Dict[str, Any]]) -> LoopCode:
-    """An update's lines in the loop form: through the NIS (``lines``) and after the gate (``rest``)."""
-    n, nv, m = spec.n, sensor.nv, sensor.m
-    na = n + nv
+    """An update's lines in the loop form: through the NIS (``lines``) and after the gate (``rest``).
+    With attitudes the images are taken about the central one (``Z_0``), the correction injected
+    (``x [+] K y``), as in :mod:`estgen.derive_ukf_att`."""
+    n, ne, nv, m = spec.n, spec.ne, sensor.nv, sensor.m
+    att = bool(spec.attitudes)
+    na = ne + nv
     aug = UkfWeights(na, wts.alpha, wts.beta, wts.kappa)
     ns = 2 * na + 1
     real, zero, one = em.real, em.lit(0.0), em.lit(1.0)
@@ -284,45 +365,47 @@ def loop_update(spec: ModelSpec, sensor: SensorSpec, em: Emitter, ctx: Dict[str,
     ops = OpCount()
     lines = [
         "/* loop form: the 2N+1 sigma points through the static h, one at a time; their images in Zt */",
-        f"{real} Zt[{m}][{ns}];  /* image of sigma point i, component a, at Zt[a][i] */",
-        f"{real} xa[{na}];  /* the sigma point [x; v] */" if nv else f"{real} xa[{na}];  /* the sigma point */",
+        f"{real} Zt[{m}][{ns}];  /* image of sigma point i, component a, at Zt[a][i]"
+        + (" (less the central one's) */" if att else " */"),
         f"{real} zv[{m}];",
-        f"{real} zm[{m}];  /* predicted measurement */",
+        f"{real} zm[{m}];  /* " + ("mean offset from the central image */" if att else "predicted measurement */"),
         f"{real} Sv[{m}][{m}];  /* innovation covariance S (lower triangle) */",
         f"{real} Ls[{m}][{m}];  /* its Cholesky factor */",
         f"{real} Lsi[{m}];  /* 1 / Ls[k][k] */",
         f"{real} bv[{m}];  /* Ls^-1 y */",
-        f"{real} Cx[{n}][{m}];  /* cross covariance C = cov(x, z), then B = C Ls^-T in place */",
-    ]
-    if nv:
-        lines.append(f"{real} An[{nv}][{nv}];  /* noise factor: A A' = Rv */")
+        f"{real} Cx[{ne}][{m}];  /* cross covariance C = cov(x, z), then B = C Ls^-T in place */",
+    ] + _sigma_decls(real, spec, nv, "v", "Rv")
+    if att:
+        lines += [f"{real} Z0[{m}];  /* image of the central point */", f"{real} dx[{ne}];  /* the correction K y */"]
     lines += ["size_t i;", "size_t a;", "size_t b;", "size_t r;", "size_t k;", "size_t q;"]
+    if att:
+        lines.append("memset(Z0, 0, sizeof Z0);  /* set by the first sigma point; cleared for the compiler's flow analysis */")
     if nv:
         nl, oc, par = _noise_block(em, spec, sensor.Rv, "ra")
         lines += nl
         ops += oc
         uses_par = uses_par or par
-    lines += _sigma_loop(em, ctx, n, nv, aug, h, "Zt", "zv", m)
+    if att:
+        store = ["if (i == 0u) {", "    memcpy(Z0, zv, sizeof Z0);", "}"] + _copy_column("Zt", "zv", m, "Z0")
+        store += [f"Zt[{k}u][i] = {prefix}_wrap(Zt[{k}u][i]);" for k in range(m) if sensor.angles[k]]
+        ops += fns["inject"]["ops"].scaled(ns)
+    else:
+        store = _copy_column("Zt", "zv", m)
+    lines += _sigma_loop(em, ctx, spec, nv, aug, h, "zv", store)
     ops += h["ops"].scaled(ns)
-    lines.append("/* weighted mean (circular for angle components), deviations about it (wrapped) */")
-    lines += _mean_and_deviations(em, ctx, "Zt", "zm", m, ns, aug, sensor.angles)
-    mp = packed_size(m)
-    ops += _sum_ops(m, ns, sum(sensor.angles), mp)
+    if att:
+        lines.append("/* mean offset from the central image, deviations about it */")
+        lines += _linear_mean(em, "Zt", "zm", m, ns, aug) + _subtract("Zt", "zm", m, ns)
+    else:
+        lines.append("/* weighted mean (circular for angle components), deviations about it (wrapped) */")
+        lines += (_linear_mean(em, "Zt", "zm", m, ns, aug) + _circular_means(em, ctx, "Zt", "zm", ns, aug, sensor.angles)
+                  + _subtract("Zt", "zm", m, ns) + _wrap_rows(ctx, "Zt", ns, sensor.angles))
+    ops += _sum_ops(m, ns, 0 if att else sum(sensor.angles), packed_size(m))
     for k in range(m):
-        if sensor.angles[k]:
-            lines.append(f"y[{k}] = {prefix}_wrap(z[{k}] - zm[{k}]);")
-        else:
-            lines.append(f"y[{k}] = z[{k}] - zm[{k}];")
-    lines += [
-        "/* S = Wc0 d0 d0' + Wi sum_i di di' + R */",
-        f"for (a = 0u; a < {m}u; ++a) {{",
-        "    for (b = 0u; b <= a; ++b) {",
-        f"        {real} acc = {zero};",
-    ] + _indent(_sum_loop("acc", "Zt[a][{i}] * Zt[b][{i}]", "i", 1, ns), 2) + [
-        f"        Sv[a][b] = {em.lit(aug.wc0)} * Zt[a][0] * Zt[b][0] + {em.lit(aug.w)} * acc;",
-        "    }",
-        "}",
-    ]
+        zhat = f"(Z0[{k}] + zm[{k}])" if att else f"zm[{k}]"
+        lines.append(f"y[{k}] = {prefix}_wrap(z[{k}] - {zhat});" if sensor.angles[k] else f"y[{k}] = z[{k}] - {zhat};")
+    lines.append("/* S = Wc0 d0 d0' + Wi sum_i di di' + R */")
+    lines += _covariance(em, "Zt", "Sv", m, ns, aug, False)
     rl, oc, par = _add_block(em, spec, [(f"Sv[{j}][{i}]", sensor.R[i, j]) for i in range(m) for j in range(i, m)],
                              "rr")
     lines += rl
@@ -331,11 +414,11 @@ def loop_update(spec: ModelSpec, sensor: SensorSpec, em: Emitter, ctx: Dict[str,
     lines += [
         "/* C = sum_i Wc_i dX_i dZ_i': dX of the pair i is +-gamma column i of L (zero for noise columns) */",
         "memset(Cx, 0, sizeof Cx);",
-        f"for (i = 0u; i < {n}u; ++i) {{",
-        f"    const {real} *lc = &Lf[{prefix}_pku(i, i)];  /* column i of L, rows i..{n - 1} */",
+        f"for (i = 0u; i < {ne}u; ++i) {{",
+        f"    const {real} *lc = &Lf[{prefix}_pku(i, i)];  /* column i of L, rows i..{ne - 1} */",
         f"    for (k = 0u; k < {m}u; ++k) {{",
         f"        const {real} dz = {em.lit(aug.w * aug.gamma)} * (Zt[k][i + 1u] - Zt[k][i + {na + 1}u]);",
-        f"        for (a = i; a < {n}u; ++a) {{",
+        f"        for (a = i; a < {ne}u; ++a) {{",
         "            Cx[a][k] += lc[a - i] * dz;",
         "        }",
         "    }",
@@ -374,8 +457,8 @@ def loop_update(spec: ModelSpec, sensor: SensorSpec, em: Emitter, ctx: Dict[str,
         "}",
     ]
     rest = [
-        "/* B = C Ls^-T (in place), x + B b, P - B B' (= P - K S K') */",
-        f"for (a = 0u; a < {n}u; ++a) {{",
+        "/* B = C Ls^-T (in place), " + ("x [+] B b" if att else "x + B b") + ", P - B B' (= P - K S K') */",
+        f"for (a = 0u; a < {ne}u; ++a) {{",
         f"    {real} e = {zero};",
         f"    for (k = 0u; k < {m}u; ++k) {{",
         "        for (b = 0u; b < k; ++b) {",
@@ -384,11 +467,15 @@ def loop_update(spec: ModelSpec, sensor: SensorSpec, em: Emitter, ctx: Dict[str,
         "        Cx[a][k] *= Lsi[k];",
         "        e += Cx[a][k] * bv[k];",
         "    }",
-        "    xs[a] = x[a] + e;",
+        ("    dx[a] = e;" if att else "    xs[a] = x[a] + e;"),
         "}",
+    ]
+    if att:
+        rest.append(f"{prefix}_inject(x, dx, xs);")
+    rest += [
         "q = 0u;",
-        f"for (a = 0u; a < {n}u; ++a) {{",
-        f"    for (b = a; b < {n}u; ++b) {{",
+        f"for (a = 0u; a < {ne}u; ++a) {{",
+        f"    for (b = a; b < {ne}u; ++b) {{",
         f"        {real} e = P[q];",
         f"        for (k = 0u; k < {m}u; ++k) {{",
         "            e -= Cx[a][k] * Cx[b][k];",
@@ -399,9 +486,10 @@ def loop_update(spec: ModelSpec, sensor: SensorSpec, em: Emitter, ctx: Dict[str,
         "}",
     ]
     rest += em.lines(angle_wraps(spec, "xs"))
-    ops += OpCount(add=n * (n + 1) // 2 * (2 * m + 1) + n * (n + 1) // 2 * m, mul=n * (n + 1) // 2 * (m + 1) + 2 * n * m,
-                   sqrt=m, div=m, compare=2 * m)
-    size = (m * ns + na + 3 * m + 2 * m * m + m + n * m + nv * nv) * (4 if real == "float" else 8)
+    ops += OpCount(add=ne * (ne + 1) // 2 * (2 * m + 1) + ne * (ne + 1) // 2 * m,
+                   mul=ne * (ne + 1) // 2 * (m + 1) + 2 * ne * m, sqrt=m, div=m, compare=2 * m)
+    size = (m * ns + n + nv + 3 * m + 2 * m * m + m + ne * m + nv * nv + (m + 2 * ne if att else 0)) * \
+        (4 if real == "float" else 8)
     return LoopCode(lines, rest, ops, size, uses_par)
 
 
@@ -417,10 +505,10 @@ def loop_certificate(spec: ModelSpec, wts: UkfWeights, em: Emitter) -> Optional[
     be positive semidefinite: a constant Q is checked here, a diagonal Q of expressions gives the
     conditions 0 <= Q_ii, an off-diagonal expression gives None. Qw needs no condition: it enters
     through its factor, as sigma points."""
-    aug = UkfWeights(spec.n + spec.nw, wts.alpha, wts.beta, wts.kappa)
+    aug = UkfWeights(spec.ne + spec.nw, wts.alpha, wts.beta, wts.kappa)
     if not (aug.wc0 >= 0.0 and aug.w > 0.0):
         return None
-    n = spec.n
+    n = spec.ne
     Q = spec.Q
     if any(not Q[i, j].is_Number for i in range(n) for j in range(n) if i != j and Q[i, j] != 0):
         return None

@@ -28,8 +28,9 @@ from estgen.verify import verify
 HERE = os.path.dirname(os.path.abspath(__file__))
 ROOT = os.path.dirname(HERE)
 EX = os.path.join(ROOT, "generated_examples")
-EXAMPLES = ["linear_cart", "battery_soc", "beacon_rover", "valve_actuator", "strapdown_nav"]
-MODELS = ["ukf_heading.py", "ukf_rangebearing.py", "noise_range.py", "noise_cart.py", "ukf_saturation.py"]
+EXAMPLES = ["linear_cart", "battery_soc", "beacon_rover", "valve_actuator", "strapdown_nav", "pier_tag", "quat_nav"]
+MODELS = ["ukf_heading.py", "ukf_rangebearing.py", "noise_range.py", "noise_cart.py", "ukf_saturation.py",
+          "attitude_gyro.py"]
 sys.path.insert(0, os.path.join(ROOT, "benchmarks"))
 
 from synthetic import write_model  # noqa: E402
@@ -89,11 +90,12 @@ def test_loop_form_equals_kalman_filter_on_linear_cart(loop_form: Dict[str, str]
 @pytest.mark.parametrize("name", EXAMPLES + MODELS)
 def test_loop_form_matches_reference(name: str, precision: str, loop_form: Dict[str, str]) -> None:
     # Source: the numpy reference UKF (estgen.reference.ReferenceUKF, dense textbook form, Wan &
-    # van der Merwe 2000); verify's tolerances: 1e-9 relative in double, 0.01 sigma in float.
+    # van der Merwe 2000; attitudes: error-space sigma points about the central image, Crassidis &
+    # Markley 2003); verify's tolerances: 1e-9 relative in double, 0.01 sigma in float.
     spec = estgen.load_model(_path(name))
     gen = generate(spec, filter="ukf", precision=precision, **loop_form)
     assert _is_loop(gen.source, gen.prefix)
-    steps = 120 if name == "strapdown_nav" else 200
+    steps = 120 if name in ("strapdown_nav", "quat_nav") else 200
     res = verify(spec, filter="ukf", precision=precision, steps=steps, seed=3, **loop_form)
     assert res.ok, (res.x_dev, res.P_dev, res.status_mismatch)
     assert max(res.x_dev) > 0.0 or precision == "double"  # float rounding must show: it ran
@@ -131,7 +133,7 @@ def test_loop_form_strict_compile_float_hygiene_determinism(compiler: str, tmp_p
     # A missing compiler fails the test.
     cc = shutil.which(compiler)
     assert cc, f"{compiler} is required for this test"
-    for name in ("strapdown_nav", "ukf_rangebearing.py", "noise_range.py"):
+    for name in ("strapdown_nav", "quat_nav", "ukf_rangebearing.py", "noise_range.py"):
         spec = estgen.load_model(_path(name))
         for prec in ("float", "double"):
             gen = generate(spec, filter="ukf", precision=prec, **loop_form)
@@ -167,8 +169,11 @@ def test_which_form_each_option_takes() -> None:
     assert _is_loop(speed.source, speed.prefix) == (nav.n >= emit_ukf.UKF_LOOP_SPEED_MIN_N)
     assert len(size.source) < len(speed.source) or _is_loop(speed.source, speed.prefix)
     assert not _is_loop(generate(small, filter="ukf", precision="float", optimize="size").source, "rover_ukf")
+    # attitudes: the rule reads the covariance's dimension (three per quaternion)
     quat = estgen.load_model(os.path.join(EX, "quat_nav", "model.py"))
-    assert quat.attitudes and not emit_ukf.uses_loop_form(quat, "size")
+    assert quat.attitudes and emit_ukf.uses_loop_form(quat, "size") == (quat.ne >= emit_ukf.UKF_LOOP_SIZE_MIN_N)
+    src = generate(quat, filter="ukf", precision="float", optimize="size").source
+    assert "static void qnav_ukf_inject(" in src and "static void qnav_ukf_boxminus(" in src
 
 
 _PENDULUM = '''
