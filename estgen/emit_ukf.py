@@ -24,14 +24,28 @@ __all__ = ["generate_ukf", "uses_loop_form"]
 #: --optimize size: the UKF's loop form from this many states (the straight-line transform is the
 #: smaller one below it, as for the other compact forms)
 UKF_LOOP_SIZE_MIN_N = COMPACT_MIN_N
-#: --optimize speed: the loop form from this many states (measured: docs/performance.md)
-UKF_LOOP_SPEED_MIN_N = 16
+#: --optimize speed: the loop form from this many states without deriving the straight-line
+#: transform (measured: 117 KB of M4F flash at 24 states, far over UKF_STRAIGHT_FLASH_MAX)
+UKF_LOOP_SPEED_MIN_N = 20
+#: --optimize speed: below UKF_LOOP_SPEED_MIN_N the straight-line transform (fewer instructions at
+#: every measured size) is kept while its estimated M4F flash stays within this many bytes
+UKF_STRAIGHT_FLASH_MAX = 64 * 1024
+#: M4F flash (-O2, float) per byte of the straight-line source: 0.41 to 0.60 over seven models
+#: of 8 to 24 states (docs/performance.md), so the estimate is good to about 25 %
+UKF_FLASH_PER_SOURCE_BYTE = 0.5
 
 
 def uses_loop_form(spec: ModelSpec, optimize: str) -> bool:
     """True when the UKF of ``spec`` is generated in the loop form (:mod:`estgen.emit_ukf_loop`)
-    under ``--optimize optimize`` (by the covariance's dimension: n minus one per attitude)."""
+    under ``--optimize optimize`` whatever the straight-line form's size (by the covariance's
+    dimension: n minus one per attitude). Under "speed" a smaller model also takes the loop form
+    when :func:`straight_flash_estimate` of its straight-line form exceeds UKF_STRAIGHT_FLASH_MAX."""
     return spec.ne >= (UKF_LOOP_SIZE_MIN_N if optimize == "size" else UKF_LOOP_SPEED_MIN_N)
+
+
+def straight_flash_estimate(source: str) -> float:
+    """Estimated M4F flash in bytes of a straight-line UKF source (UKF_FLASH_PER_SOURCE_BYTE)."""
+    return UKF_FLASH_PER_SOURCE_BYTE * len(source)
 
 
 def _augmented_note(spec: ModelSpec, wts: UkfWeights, em: Emitter) -> List[str]:
@@ -54,14 +68,21 @@ def _stack_bytes(stmts_decls: int, arrays: int, size_real: int) -> int:
 def generate_ukf(spec: ModelSpec, setup: "FilterSetup", wts: UkfWeights) -> Generated:
     """Generate the UKF's header and source for ``spec`` with the validated weights ``wts``.
 
-    The op counts in
-    ``Generated.ops`` are of the straight-line code as printed (keys "predict", "update_<sensor>"),
-    the shared factorization and commit check included in each. The returned object also carries
+    The form follows ``--optimize`` (:func:`uses_loop_form`). The op counts in ``Generated.ops``
+    are of the code as printed (keys "predict", "update_<sensor>"; loop bodies times their
+    counts), the shared factorization and commit check included in each. The returned object also carries
     ``sigma_stack`` = {"predict": bytes, "update": bytes}, the named locals the header states.
     """
-    ctx = _common_context(spec, setup)
     if uses_loop_form(spec, setup.common.optimize):
-        return _generate_loop(spec, setup, wts, ctx)
+        return _generate_loop(spec, setup, wts, _common_context(spec, setup))
+    gen = _generate_straight(spec, setup, wts, _common_context(spec, setup))
+    if setup.common.optimize == "speed" and straight_flash_estimate(gen.source) > UKF_STRAIGHT_FLASH_MAX:
+        return _generate_loop(spec, setup, wts, _common_context(spec, setup))
+    return gen
+
+
+def _generate_straight(spec: ModelSpec, setup: "FilterSetup", wts: UkfWeights, ctx: Dict[str, Any]) -> Generated:
+    """The straight-line form (:mod:`estgen.derive_ukf`, :mod:`estgen.derive_ukf_att`)."""
     em: Emitter = ctx["emitter"]
     precision = setup.precision
     code = derive_ukf_attitude(spec, wts) if spec.attitudes else derive_ukf(spec, wts)

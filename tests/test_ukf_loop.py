@@ -157,17 +157,23 @@ def test_loop_form_strict_compile_float_hygiene_determinism(compiler: str, tmp_p
             assert m and int(m.group(1)) == gen.sigma_stack["predict"] > 0
 
 
-def test_which_form_each_option_takes() -> None:
+def test_which_form_each_option_takes(monkeypatch: pytest.MonkeyPatch) -> None:
     # Source: the rule documented in docs/performance.md ("Speed and size"): size from
-    # UKF_LOOP_SIZE_MIN_N states, speed from UKF_LOOP_SPEED_MIN_N; attitudes stay straight-line.
+    # UKF_LOOP_SIZE_MIN_N states; speed from UKF_LOOP_SPEED_MIN_N, and below it when the
+    # straight-line form's estimated flash exceeds UKF_STRAIGHT_FLASH_MAX.
     nav = estgen.load_model(_path("strapdown_nav"))
     small = estgen.load_model(_path("beacon_rover"))
-    assert emit_ukf.UKF_LOOP_SIZE_MIN_N <= nav.n
+    assert emit_ukf.UKF_LOOP_SIZE_MIN_N <= nav.ne < emit_ukf.UKF_LOOP_SPEED_MIN_N
     size = generate(nav, filter="ukf", precision="float", optimize="size")
     speed = generate(nav, filter="ukf", precision="float", optimize="speed")
-    assert _is_loop(size.source, size.prefix)
-    assert _is_loop(speed.source, speed.prefix) == (nav.n >= emit_ukf.UKF_LOOP_SPEED_MIN_N)
-    assert len(size.source) < len(speed.source) or _is_loop(speed.source, speed.prefix)
+    assert _is_loop(size.source, size.prefix) and _is_loop(speed.source, speed.prefix)
+    monkeypatch.setattr(emit_ukf, "UKF_STRAIGHT_FLASH_MAX", float("inf"))
+    straight = generate(nav, filter="ukf", precision="float", optimize="speed")
+    assert not _is_loop(straight.source, straight.prefix)
+    assert emit_ukf.straight_flash_estimate(straight.source) > 64 * 1024  # why speed took the loops
+    assert len(size.source) < len(straight.source)
+    small_speed = generate(small, filter="ukf", precision="float", optimize="speed").source
+    assert emit_ukf.straight_flash_estimate(small_speed) <= 64 * 1024 and not _is_loop(small_speed, "rover_ukf")
     assert not _is_loop(generate(small, filter="ukf", precision="float", optimize="size").source, "rover_ukf")
     # attitudes: the rule reads the covariance's dimension (three per quaternion)
     quat = estgen.load_model(os.path.join(EX, "quat_nav", "model.py"))
@@ -220,3 +226,17 @@ def test_loop_predict_commits_under_its_certificate_only(tmp_path, loop_form: Di
     # without the certificate's premise (alpha = 1e-2: Wc0 < 0) the predict always factorizes
     small = generate(spec, filter="ukf", precision="double", alpha=1e-2, **loop_form).source
     assert "_commit_diag(" not in small
+
+
+@pytest.mark.parametrize("precision", ["double", "float"])
+@pytest.mark.parametrize("name", ["strapdown_nav", "quat_nav"])
+def test_straight_line_form_still_matches_reference(name: str, precision: str, monkeypatch: pytest.MonkeyPatch) -> None:
+    # Source: the numpy reference UKF, as above. The default takes the loop form for these two
+    # (their straight-line flash is over budget); the straight-line form stays selectable
+    # through the thresholds and must stay right.
+    monkeypatch.setattr(emit_ukf, "UKF_STRAIGHT_FLASH_MAX", float("inf"))
+    spec = estgen.load_model(_path(name))
+    gen = generate(spec, filter="ukf", precision=precision)
+    assert not _is_loop(gen.source, gen.prefix)
+    res = verify(spec, filter="ukf", precision=precision, steps=120, seed=3)
+    assert res.ok, (res.x_dev, res.P_dev, res.status_mismatch)

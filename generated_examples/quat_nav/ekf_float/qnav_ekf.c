@@ -52,18 +52,21 @@ static int qnav_ekf_cholesky(const float *P, float *L)
             return QNAV_EKF_NOT_POSITIVE_DEFINITE;
         }
         A[j][j] = sqrtf(d);
+        L[q] = A[j][j];
         inv = 1.0F / A[j][j];
         for (i = j + 1u; i < 15u; ++i) {
+            /* e = P(i, j) - sum_k A[i][k] A[j][k], k = 0..j-1 in order, two terms per pass */
             float e = P[q + (i - j)];
-            for (k = 0u; k < j; ++k) {
+            k = 0u;
+            if ((j & 1u) != 0u) {
+                e -= A[i][0] * A[j][0];
+                k = 1u;
+            }
+            for (; k < j; k += 2u) {
                 e -= A[i][k] * A[j][k];
+                e -= A[i][k + 1u] * A[j][k + 1u];
             }
             A[i][j] = e * inv;
-        }
-    }
-    for (j = 0u; j < 15u; ++j) {
-        const size_t q = qnav_ekf_pku(j, j);
-        for (i = j; i < 15u; ++i) {
             L[q + (i - j)] = A[i][j];
         }
     }

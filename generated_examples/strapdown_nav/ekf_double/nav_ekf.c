@@ -60,18 +60,21 @@ static int nav_ekf_cholesky(const double *P, double *L)
             return NAV_EKF_NOT_POSITIVE_DEFINITE;
         }
         A[j][j] = sqrt(d);
+        L[q] = A[j][j];
         inv = 1.0 / A[j][j];
         for (i = j + 1u; i < 15u; ++i) {
+            /* e = P(i, j) - sum_k A[i][k] A[j][k], k = 0..j-1 in order, two terms per pass */
             double e = P[q + (i - j)];
-            for (k = 0u; k < j; ++k) {
+            k = 0u;
+            if ((j & 1u) != 0u) {
+                e -= A[i][0] * A[j][0];
+                k = 1u;
+            }
+            for (; k < j; k += 2u) {
                 e -= A[i][k] * A[j][k];
+                e -= A[i][k + 1u] * A[j][k + 1u];
             }
             A[i][j] = e * inv;
-        }
-    }
-    for (j = 0u; j < 15u; ++j) {
-        const size_t q = nav_ekf_pku(j, j);
-        for (i = j; i < 15u; ++i) {
             L[q + (i - j)] = A[i][j];
         }
     }

@@ -66,18 +66,21 @@ static int nav_ukf_cholesky(const double *P, double *L)
             return NAV_UKF_NOT_POSITIVE_DEFINITE;
         }
         A[j][j] = sqrt(d);
+        L[q] = A[j][j];
         inv = 1.0 / A[j][j];
         for (i = j + 1u; i < 15u; ++i) {
+            /* e = P(i, j) - sum_k A[i][k] A[j][k], k = 0..j-1 in order, two terms per pass */
             double e = P[q + (i - j)];
-            for (k = 0u; k < j; ++k) {
+            k = 0u;
+            if ((j & 1u) != 0u) {
+                e -= A[i][0] * A[j][0];
+                k = 1u;
+            }
+            for (; k < j; k += 2u) {
                 e -= A[i][k] * A[j][k];
+                e -= A[i][k + 1u] * A[j][k + 1u];
             }
             A[i][j] = e * inv;
-        }
-    }
-    for (j = 0u; j < 15u; ++j) {
-        const size_t q = nav_ukf_pku(j, j);
-        for (i = j; i < 15u; ++i) {
             L[q + (i - j)] = A[i][j];
         }
     }
@@ -93,12 +96,113 @@ static int nav_ukf_commit_pd(const double *P)
     return nav_ukf_cholesky(P, L);
 }
 
+/* OK when every diagonal entry of P is > 0 and below a sixteenth of the largest double.
+   Used by predict when its rounding certificate holds; see the header. */
+static int nav_ukf_commit_diag(const double *P)
+{
+    if (!(P[0] < 1.1235582092889473e+307)) { return NAV_UKF_NON_FINITE; }
+    if (!(P[0] > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
+    if (!(P[15] < 1.1235582092889473e+307)) { return NAV_UKF_NON_FINITE; }
+    if (!(P[15] > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
+    if (!(P[29] < 1.1235582092889473e+307)) { return NAV_UKF_NON_FINITE; }
+    if (!(P[29] > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
+    if (!(P[42] < 1.1235582092889473e+307)) { return NAV_UKF_NON_FINITE; }
+    if (!(P[42] > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
+    if (!(P[54] < 1.1235582092889473e+307)) { return NAV_UKF_NON_FINITE; }
+    if (!(P[54] > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
+    if (!(P[65] < 1.1235582092889473e+307)) { return NAV_UKF_NON_FINITE; }
+    if (!(P[65] > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
+    if (!(P[75] < 1.1235582092889473e+307)) { return NAV_UKF_NON_FINITE; }
+    if (!(P[75] > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
+    if (!(P[84] < 1.1235582092889473e+307)) { return NAV_UKF_NON_FINITE; }
+    if (!(P[84] > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
+    if (!(P[92] < 1.1235582092889473e+307)) { return NAV_UKF_NON_FINITE; }
+    if (!(P[92] > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
+    if (!(P[99] < 1.1235582092889473e+307)) { return NAV_UKF_NON_FINITE; }
+    if (!(P[99] > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
+    if (!(P[105] < 1.1235582092889473e+307)) { return NAV_UKF_NON_FINITE; }
+    if (!(P[105] > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
+    if (!(P[110] < 1.1235582092889473e+307)) { return NAV_UKF_NON_FINITE; }
+    if (!(P[110] > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
+    if (!(P[114] < 1.1235582092889473e+307)) { return NAV_UKF_NON_FINITE; }
+    if (!(P[114] > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
+    if (!(P[117] < 1.1235582092889473e+307)) { return NAV_UKF_NON_FINITE; }
+    if (!(P[117] > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
+    if (!(P[119] < 1.1235582092889473e+307)) { return NAV_UKF_NON_FINITE; }
+    if (!(P[119] > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
+    return NAV_UKF_OK;
+}
+
 /* Lf = the lower Cholesky factor of the packed covariance P (stored packed like P, entry (i, j)
    of L at the packed index of (j, i)); OK, or the refusal code when P is not positive definite.
    Loops; one copy serves predict and every update. */
 static int nav_ukf_factor(const double *P, double *Lf)
 {
     return nav_ukf_cholesky(P, Lf);
+}
+
+/* f at one sigma point: x = [x; w] (21 reals), xn = its image (loop form: called once per sigma point). */
+static void nav_ukf_f(const double *x, const double *u, double dt, const nav_ukf_par_t *par, double *xn)
+{
+    const double t0 = cos(x[nav_ukf_ix_yaw]);
+    const double t1 = u[nav_ukf_iu_fx] - x[nav_ukf_ix_bax] - x[18];
+    const double t2 = cos(x[nav_ukf_ix_pitch]);
+    const double t3 = t1*t2;
+    const double t4 = u[nav_ukf_iu_fz] - x[nav_ukf_ix_baz] - x[20];
+    const double t5 = sin(x[nav_ukf_ix_roll]);
+    const double t6 = sin(x[nav_ukf_ix_yaw]);
+    const double t7 = t5*t6;
+    const double t8 = sin(x[nav_ukf_ix_pitch]);
+    const double t9 = cos(x[nav_ukf_ix_roll]);
+    const double t10 = t0*t9;
+    const double t11 = u[nav_ukf_iu_fy] - x[nav_ukf_ix_bay] - x[19];
+    const double t12 = t0*t5;
+    const double t13 = u[nav_ukf_iu_wy] - x[nav_ukf_ix_bgy] - x[16];
+    const double t14 = u[nav_ukf_iu_wz] - x[nav_ukf_ix_bgz] - x[17];
+    const double t15 = (t13*t5 + t14*t9)/t2;
+    xn[nav_ukf_ix_pn] = x[nav_ukf_ix_pn] + dt*x[nav_ukf_ix_vn];
+    xn[nav_ukf_ix_pe] = x[nav_ukf_ix_pe] + dt*x[nav_ukf_ix_ve];
+    xn[nav_ukf_ix_pd] = x[nav_ukf_ix_pd] + dt*x[nav_ukf_ix_vd];
+    xn[nav_ukf_ix_vn] = x[nav_ukf_ix_vn] + dt*(t0*t3 + t11*(t12*t8 - t6*t9) + t4*(t7 + t10*t8));
+    xn[nav_ukf_ix_ve] = x[nav_ukf_ix_ve] + dt*(t11*(t10 + t7*t8) + t3*t6 + t4*(-t12 + t6*t8*t9));
+    xn[nav_ukf_ix_vd] = x[nav_ukf_ix_vd] + dt*(par->g - t1*t8 + t11*t2*t5 + t2*t4*t9);
+    xn[nav_ukf_ix_roll] = x[nav_ukf_ix_roll] + dt*(u[nav_ukf_iu_wx] - x[15] - x[nav_ukf_ix_bgx] + t15*t8);
+    xn[nav_ukf_ix_pitch] = x[nav_ukf_ix_pitch] + dt*(t13*t9 - t14*t5);
+    xn[nav_ukf_ix_yaw] = x[nav_ukf_ix_yaw] + dt*t15;
+    xn[nav_ukf_ix_bgx] = x[nav_ukf_ix_bgx];
+    xn[nav_ukf_ix_bgy] = x[nav_ukf_ix_bgy];
+    xn[nav_ukf_ix_bgz] = x[nav_ukf_ix_bgz];
+    xn[nav_ukf_ix_bax] = x[nav_ukf_ix_bax];
+    xn[nav_ukf_ix_bay] = x[nav_ukf_ix_bay];
+    xn[nav_ukf_ix_baz] = x[nav_ukf_ix_baz];
+}
+
+/* h of sensor gnss_pos at one sigma point: x = [x; v] (15 reals), zh = its image (loop form: called once per sigma point). */
+static void nav_ukf_h_gnss_pos(const double *x, double *zh)
+{
+    zh[0] = x[nav_ukf_ix_pn];
+    zh[1] = x[nav_ukf_ix_pe];
+    zh[2] = x[nav_ukf_ix_pd];
+}
+
+/* h of sensor gnss_vel at one sigma point: x = [x; v] (15 reals), zh = its image (loop form: called once per sigma point). */
+static void nav_ukf_h_gnss_vel(const double *x, double *zh)
+{
+    zh[0] = x[nav_ukf_ix_vn];
+    zh[1] = x[nav_ukf_ix_ve];
+    zh[2] = x[nav_ukf_ix_vd];
+}
+
+/* h of sensor baro at one sigma point: x = [x; v] (15 reals), zh = its image (loop form: called once per sigma point). */
+static void nav_ukf_h_baro(const double *x, double *zh)
+{
+    zh[0] = -x[nav_ukf_ix_pd];
+}
+
+/* h of sensor mag_heading at one sigma point: x = [x; v] (15 reals), zh = its image (loop form: called once per sigma point). */
+static void nav_ukf_h_mag_heading(const double *x, double *zh)
+{
+    zh[0] = x[nav_ukf_ix_yaw];
 }
 
 void nav_ukf_init(nav_ukf_t *s)
@@ -278,7 +382,6 @@ int nav_ukf_predict(nav_ukf_t *s, const double *u, double dt)
     double xn[15];
     double Pn[120];
     double Lf[120];
-    double ea[109];
     const double *x = s->x;
     const double *P = s->P;
     const nav_ukf_par_t *par = &s->par;
@@ -298,1473 +401,155 @@ int nav_ukf_predict(nav_ukf_t *s, const double *u, double dt)
             return st;
         }
     }
-    /* noise symbols: factor A (A A' = Qw) for the augmented sigma points [x; w] */
-    const double fnf0_0 = 0.005*sqrt((1.0/dt));
-    const double fnf3_3 = 0.02*sqrt((1.0/dt));
-    /* sigma-point offsets gamma L_i (L L' = P) */
-    const double fg3_0 = 4.58257569495584*Lf[3];
-    const double fg4_0 = 4.58257569495584*Lf[4];
-    const double fg5_0 = 4.58257569495584*Lf[5];
-    const double fg6_0 = 4.58257569495584*Lf[6];
-    const double fg7_0 = 4.58257569495584*Lf[7];
-    const double fg8_0 = 4.58257569495584*Lf[8];
-    const double fg9_0 = 4.58257569495584*Lf[9];
-    const double fg10_0 = 4.58257569495584*Lf[10];
-    const double fg11_0 = 4.58257569495584*Lf[11];
-    const double fg12_0 = 4.58257569495584*Lf[12];
-    const double fg13_0 = 4.58257569495584*Lf[13];
-    const double fg14_0 = 4.58257569495584*Lf[14];
-    const double fg3_1 = 4.58257569495584*Lf[17];
-    const double fg4_1 = 4.58257569495584*Lf[18];
-    const double fg5_1 = 4.58257569495584*Lf[19];
-    const double fg6_1 = 4.58257569495584*Lf[20];
-    const double fg7_1 = 4.58257569495584*Lf[21];
-    const double fg8_1 = 4.58257569495584*Lf[22];
-    const double fg9_1 = 4.58257569495584*Lf[23];
-    const double fg10_1 = 4.58257569495584*Lf[24];
-    const double fg11_1 = 4.58257569495584*Lf[25];
-    const double fg12_1 = 4.58257569495584*Lf[26];
-    const double fg13_1 = 4.58257569495584*Lf[27];
-    const double fg14_1 = 4.58257569495584*Lf[28];
-    const double fg3_2 = 4.58257569495584*Lf[30];
-    const double fg4_2 = 4.58257569495584*Lf[31];
-    const double fg5_2 = 4.58257569495584*Lf[32];
-    const double fg6_2 = 4.58257569495584*Lf[33];
-    const double fg7_2 = 4.58257569495584*Lf[34];
-    const double fg8_2 = 4.58257569495584*Lf[35];
-    const double fg9_2 = 4.58257569495584*Lf[36];
-    const double fg10_2 = 4.58257569495584*Lf[37];
-    const double fg11_2 = 4.58257569495584*Lf[38];
-    const double fg12_2 = 4.58257569495584*Lf[39];
-    const double fg13_2 = 4.58257569495584*Lf[40];
-    const double fg14_2 = 4.58257569495584*Lf[41];
-    const double fg3_3 = 4.58257569495584*Lf[42];
-    const double fg4_3 = 4.58257569495584*Lf[43];
-    const double fg5_3 = 4.58257569495584*Lf[44];
-    const double fg6_3 = 4.58257569495584*Lf[45];
-    const double fg7_3 = 4.58257569495584*Lf[46];
-    const double fg8_3 = 4.58257569495584*Lf[47];
-    const double fg9_3 = 4.58257569495584*Lf[48];
-    const double fg10_3 = 4.58257569495584*Lf[49];
-    const double fg11_3 = 4.58257569495584*Lf[50];
-    const double fg12_3 = 4.58257569495584*Lf[51];
-    const double fg13_3 = 4.58257569495584*Lf[52];
-    const double fg14_3 = 4.58257569495584*Lf[53];
-    const double fg4_4 = 4.58257569495584*Lf[54];
-    const double fg5_4 = 4.58257569495584*Lf[55];
-    const double fg6_4 = 4.58257569495584*Lf[56];
-    const double fg7_4 = 4.58257569495584*Lf[57];
-    const double fg8_4 = 4.58257569495584*Lf[58];
-    const double fg9_4 = 4.58257569495584*Lf[59];
-    const double fg10_4 = 4.58257569495584*Lf[60];
-    const double fg11_4 = 4.58257569495584*Lf[61];
-    const double fg12_4 = 4.58257569495584*Lf[62];
-    const double fg13_4 = 4.58257569495584*Lf[63];
-    const double fg14_4 = 4.58257569495584*Lf[64];
-    const double fg5_5 = 4.58257569495584*Lf[65];
-    const double fg6_5 = 4.58257569495584*Lf[66];
-    const double fg7_5 = 4.58257569495584*Lf[67];
-    const double fg8_5 = 4.58257569495584*Lf[68];
-    const double fg9_5 = 4.58257569495584*Lf[69];
-    const double fg10_5 = 4.58257569495584*Lf[70];
-    const double fg11_5 = 4.58257569495584*Lf[71];
-    const double fg12_5 = 4.58257569495584*Lf[72];
-    const double fg13_5 = 4.58257569495584*Lf[73];
-    const double fg14_5 = 4.58257569495584*Lf[74];
-    const double fg6_6 = 4.58257569495584*Lf[75];
-    const double fg7_6 = 4.58257569495584*Lf[76];
-    const double fg8_6 = 4.58257569495584*Lf[77];
-    const double fg9_6 = 4.58257569495584*Lf[78];
-    const double fg10_6 = 4.58257569495584*Lf[79];
-    const double fg11_6 = 4.58257569495584*Lf[80];
-    const double fg12_6 = 4.58257569495584*Lf[81];
-    const double fg13_6 = 4.58257569495584*Lf[82];
-    const double fg14_6 = 4.58257569495584*Lf[83];
-    const double fg7_7 = 4.58257569495584*Lf[84];
-    const double fg8_7 = 4.58257569495584*Lf[85];
-    const double fg9_7 = 4.58257569495584*Lf[86];
-    const double fg10_7 = 4.58257569495584*Lf[87];
-    const double fg11_7 = 4.58257569495584*Lf[88];
-    const double fg12_7 = 4.58257569495584*Lf[89];
-    const double fg13_7 = 4.58257569495584*Lf[90];
-    const double fg14_7 = 4.58257569495584*Lf[91];
-    const double fg8_8 = 4.58257569495584*Lf[92];
-    const double fg9_8 = 4.58257569495584*Lf[93];
-    const double fg10_8 = 4.58257569495584*Lf[94];
-    const double fg11_8 = 4.58257569495584*Lf[95];
-    const double fg12_8 = 4.58257569495584*Lf[96];
-    const double fg13_8 = 4.58257569495584*Lf[97];
-    const double fg14_8 = 4.58257569495584*Lf[98];
-    const double fg9_9 = 4.58257569495584*Lf[99];
-    const double fg10_9 = 4.58257569495584*Lf[100];
-    const double fg11_9 = 4.58257569495584*Lf[101];
-    const double fg12_9 = 4.58257569495584*Lf[102];
-    const double fg13_9 = 4.58257569495584*Lf[103];
-    const double fg14_9 = 4.58257569495584*Lf[104];
-    const double fg10_10 = 4.58257569495584*Lf[105];
-    const double fg11_10 = 4.58257569495584*Lf[106];
-    const double fg12_10 = 4.58257569495584*Lf[107];
-    const double fg13_10 = 4.58257569495584*Lf[108];
-    const double fg14_10 = 4.58257569495584*Lf[109];
-    const double fg11_11 = 4.58257569495584*Lf[110];
-    const double fg12_11 = 4.58257569495584*Lf[111];
-    const double fg13_11 = 4.58257569495584*Lf[112];
-    const double fg14_11 = 4.58257569495584*Lf[113];
-    const double fg12_12 = 4.58257569495584*Lf[114];
-    const double fg13_12 = 4.58257569495584*Lf[115];
-    const double fg14_12 = 4.58257569495584*Lf[116];
-    const double fg13_13 = 4.58257569495584*Lf[117];
-    const double fg14_13 = 4.58257569495584*Lf[118];
-    const double fg14_14 = 4.58257569495584*Lf[119];
-    const double fg15_15 = 4.58257569495584*fnf0_0;
-    const double fg16_16 = 4.58257569495584*fnf0_0;
-    const double fg17_17 = 4.58257569495584*fnf0_0;
-    const double fg18_18 = 4.58257569495584*fnf3_3;
-    const double fg19_19 = 4.58257569495584*fnf3_3;
-    const double fg20_20 = 4.58257569495584*fnf3_3;
-    const double fas0 = sin(x[nav_ukf_ix_roll]);
-    const double fak0 = cos(x[nav_ukf_ix_roll]);
-    const double fr0_sd0 = sin(fg6_0);
-    const double fr0_cd0 = cos(fg6_0);
-    const double fr0_x0 = fas0*fr0_cd0;
-    const double fr0_y0 = fak0*fr0_sd0;
-    const double fr0_z0 = fak0*fr0_cd0;
-    const double fr0_w0 = fas0*fr0_sd0;
-    const double fr0_sp0 = fr0_x0 + fr0_y0;
-    const double fr0_sm0 = fr0_x0 - fr0_y0;
-    const double fr0_cp0 = fr0_z0 - fr0_w0;
-    const double fr0_cm0 = fr0_w0 + fr0_z0;
-    const double fr0_sd1 = sin(fg6_1);
-    const double fr0_cd1 = cos(fg6_1);
-    const double fr0_x1 = fas0*fr0_cd1;
-    const double fr0_y1 = fak0*fr0_sd1;
-    const double fr0_z1 = fak0*fr0_cd1;
-    const double fr0_w1 = fas0*fr0_sd1;
-    const double fr0_sp1 = fr0_x1 + fr0_y1;
-    const double fr0_sm1 = fr0_x1 - fr0_y1;
-    const double fr0_cp1 = fr0_z1 - fr0_w1;
-    const double fr0_cm1 = fr0_w1 + fr0_z1;
-    const double fr0_sd2 = sin(fg6_2);
-    const double fr0_cd2 = cos(fg6_2);
-    const double fr0_x2 = fas0*fr0_cd2;
-    const double fr0_y2 = fak0*fr0_sd2;
-    const double fr0_z2 = fak0*fr0_cd2;
-    const double fr0_w2 = fas0*fr0_sd2;
-    const double fr0_sp2 = fr0_x2 + fr0_y2;
-    const double fr0_sm2 = fr0_x2 - fr0_y2;
-    const double fr0_cp2 = fr0_z2 - fr0_w2;
-    const double fr0_cm2 = fr0_w2 + fr0_z2;
-    const double fr0_sd3 = sin(fg6_3);
-    const double fr0_cd3 = cos(fg6_3);
-    const double fr0_x3 = fas0*fr0_cd3;
-    const double fr0_y3 = fak0*fr0_sd3;
-    const double fr0_z3 = fak0*fr0_cd3;
-    const double fr0_w3 = fas0*fr0_sd3;
-    const double fr0_sp3 = fr0_x3 + fr0_y3;
-    const double fr0_sm3 = fr0_x3 - fr0_y3;
-    const double fr0_cp3 = fr0_z3 - fr0_w3;
-    const double fr0_cm3 = fr0_w3 + fr0_z3;
-    const double fr0_sd4 = sin(fg6_4);
-    const double fr0_cd4 = cos(fg6_4);
-    const double fr0_x4 = fas0*fr0_cd4;
-    const double fr0_y4 = fak0*fr0_sd4;
-    const double fr0_z4 = fak0*fr0_cd4;
-    const double fr0_w4 = fas0*fr0_sd4;
-    const double fr0_sp4 = fr0_x4 + fr0_y4;
-    const double fr0_sm4 = fr0_x4 - fr0_y4;
-    const double fr0_cp4 = fr0_z4 - fr0_w4;
-    const double fr0_cm4 = fr0_w4 + fr0_z4;
-    const double fr0_sd5 = sin(fg6_5);
-    const double fr0_cd5 = cos(fg6_5);
-    const double fr0_x5 = fas0*fr0_cd5;
-    const double fr0_y5 = fak0*fr0_sd5;
-    const double fr0_z5 = fak0*fr0_cd5;
-    const double fr0_w5 = fas0*fr0_sd5;
-    const double fr0_sp5 = fr0_x5 + fr0_y5;
-    const double fr0_sm5 = fr0_x5 - fr0_y5;
-    const double fr0_cp5 = fr0_z5 - fr0_w5;
-    const double fr0_cm5 = fr0_w5 + fr0_z5;
-    const double fr0_sd6 = sin(fg6_6);
-    const double fr0_cd6 = cos(fg6_6);
-    const double fr0_x6 = fas0*fr0_cd6;
-    const double fr0_y6 = fak0*fr0_sd6;
-    const double fr0_z6 = fak0*fr0_cd6;
-    const double fr0_w6 = fas0*fr0_sd6;
-    const double fr0_sp6 = fr0_x6 + fr0_y6;
-    const double fr0_sm6 = fr0_x6 - fr0_y6;
-    const double fr0_cp6 = fr0_z6 - fr0_w6;
-    const double fr0_cm6 = fr0_w6 + fr0_z6;
-    const double fas1 = sin(x[nav_ukf_ix_yaw]);
-    const double fak1 = cos(x[nav_ukf_ix_yaw]);
-    const double fr1_sd0 = sin(fg8_0);
-    const double fr1_cd0 = cos(fg8_0);
-    const double fr1_x0 = fas1*fr1_cd0;
-    const double fr1_y0 = fak1*fr1_sd0;
-    const double fr1_z0 = fak1*fr1_cd0;
-    const double fr1_w0 = fas1*fr1_sd0;
-    const double fr1_sp0 = fr1_x0 + fr1_y0;
-    const double fr1_sm0 = fr1_x0 - fr1_y0;
-    const double fr1_cp0 = fr1_z0 - fr1_w0;
-    const double fr1_cm0 = fr1_w0 + fr1_z0;
-    const double fr1_sd1 = sin(fg8_1);
-    const double fr1_cd1 = cos(fg8_1);
-    const double fr1_x1 = fas1*fr1_cd1;
-    const double fr1_y1 = fak1*fr1_sd1;
-    const double fr1_z1 = fak1*fr1_cd1;
-    const double fr1_w1 = fas1*fr1_sd1;
-    const double fr1_sp1 = fr1_x1 + fr1_y1;
-    const double fr1_sm1 = fr1_x1 - fr1_y1;
-    const double fr1_cp1 = fr1_z1 - fr1_w1;
-    const double fr1_cm1 = fr1_w1 + fr1_z1;
-    const double fr1_sd2 = sin(fg8_2);
-    const double fr1_cd2 = cos(fg8_2);
-    const double fr1_x2 = fas1*fr1_cd2;
-    const double fr1_y2 = fak1*fr1_sd2;
-    const double fr1_z2 = fak1*fr1_cd2;
-    const double fr1_w2 = fas1*fr1_sd2;
-    const double fr1_sp2 = fr1_x2 + fr1_y2;
-    const double fr1_sm2 = fr1_x2 - fr1_y2;
-    const double fr1_cp2 = fr1_z2 - fr1_w2;
-    const double fr1_cm2 = fr1_w2 + fr1_z2;
-    const double fr1_sd3 = sin(fg8_3);
-    const double fr1_cd3 = cos(fg8_3);
-    const double fr1_x3 = fas1*fr1_cd3;
-    const double fr1_y3 = fak1*fr1_sd3;
-    const double fr1_z3 = fak1*fr1_cd3;
-    const double fr1_w3 = fas1*fr1_sd3;
-    const double fr1_sp3 = fr1_x3 + fr1_y3;
-    const double fr1_sm3 = fr1_x3 - fr1_y3;
-    const double fr1_cp3 = fr1_z3 - fr1_w3;
-    const double fr1_cm3 = fr1_w3 + fr1_z3;
-    const double fr1_sd4 = sin(fg8_4);
-    const double fr1_cd4 = cos(fg8_4);
-    const double fr1_x4 = fas1*fr1_cd4;
-    const double fr1_y4 = fak1*fr1_sd4;
-    const double fr1_z4 = fak1*fr1_cd4;
-    const double fr1_w4 = fas1*fr1_sd4;
-    const double fr1_sp4 = fr1_x4 + fr1_y4;
-    const double fr1_sm4 = fr1_x4 - fr1_y4;
-    const double fr1_cp4 = fr1_z4 - fr1_w4;
-    const double fr1_cm4 = fr1_w4 + fr1_z4;
-    const double fr1_sd5 = sin(fg8_5);
-    const double fr1_cd5 = cos(fg8_5);
-    const double fr1_x5 = fas1*fr1_cd5;
-    const double fr1_y5 = fak1*fr1_sd5;
-    const double fr1_z5 = fak1*fr1_cd5;
-    const double fr1_w5 = fas1*fr1_sd5;
-    const double fr1_sp5 = fr1_x5 + fr1_y5;
-    const double fr1_sm5 = fr1_x5 - fr1_y5;
-    const double fr1_cp5 = fr1_z5 - fr1_w5;
-    const double fr1_cm5 = fr1_w5 + fr1_z5;
-    const double fr1_sd6 = sin(fg8_6);
-    const double fr1_cd6 = cos(fg8_6);
-    const double fr1_x6 = fas1*fr1_cd6;
-    const double fr1_y6 = fak1*fr1_sd6;
-    const double fr1_z6 = fak1*fr1_cd6;
-    const double fr1_w6 = fas1*fr1_sd6;
-    const double fr1_sp6 = fr1_x6 + fr1_y6;
-    const double fr1_sm6 = fr1_x6 - fr1_y6;
-    const double fr1_cp6 = fr1_z6 - fr1_w6;
-    const double fr1_cm6 = fr1_w6 + fr1_z6;
-    const double fr1_sd7 = sin(fg8_7);
-    const double fr1_cd7 = cos(fg8_7);
-    const double fr1_x7 = fas1*fr1_cd7;
-    const double fr1_y7 = fak1*fr1_sd7;
-    const double fr1_z7 = fak1*fr1_cd7;
-    const double fr1_w7 = fas1*fr1_sd7;
-    const double fr1_sp7 = fr1_x7 + fr1_y7;
-    const double fr1_sm7 = fr1_x7 - fr1_y7;
-    const double fr1_cp7 = fr1_z7 - fr1_w7;
-    const double fr1_cm7 = fr1_w7 + fr1_z7;
-    const double fr1_sd8 = sin(fg8_8);
-    const double fr1_cd8 = cos(fg8_8);
-    const double fr1_x8 = fas1*fr1_cd8;
-    const double fr1_y8 = fak1*fr1_sd8;
-    const double fr1_z8 = fak1*fr1_cd8;
-    const double fr1_w8 = fas1*fr1_sd8;
-    const double fr1_sp8 = fr1_x8 + fr1_y8;
-    const double fr1_sm8 = fr1_x8 - fr1_y8;
-    const double fr1_cp8 = fr1_z8 - fr1_w8;
-    const double fr1_cm8 = fr1_w8 + fr1_z8;
-    const double fas2 = sin(x[nav_ukf_ix_pitch]);
-    const double fak2 = cos(x[nav_ukf_ix_pitch]);
-    const double fr2_sd0 = sin(fg7_0);
-    const double fr2_cd0 = cos(fg7_0);
-    const double fr2_x0 = fas2*fr2_cd0;
-    const double fr2_y0 = fak2*fr2_sd0;
-    const double fr2_z0 = fak2*fr2_cd0;
-    const double fr2_w0 = fas2*fr2_sd0;
-    const double fr2_sp0 = fr2_x0 + fr2_y0;
-    const double fr2_sm0 = fr2_x0 - fr2_y0;
-    const double fr2_cp0 = fr2_z0 - fr2_w0;
-    const double fr2_cm0 = fr2_w0 + fr2_z0;
-    const double fr2_sd1 = sin(fg7_1);
-    const double fr2_cd1 = cos(fg7_1);
-    const double fr2_x1 = fas2*fr2_cd1;
-    const double fr2_y1 = fak2*fr2_sd1;
-    const double fr2_z1 = fak2*fr2_cd1;
-    const double fr2_w1 = fas2*fr2_sd1;
-    const double fr2_sp1 = fr2_x1 + fr2_y1;
-    const double fr2_sm1 = fr2_x1 - fr2_y1;
-    const double fr2_cp1 = fr2_z1 - fr2_w1;
-    const double fr2_cm1 = fr2_w1 + fr2_z1;
-    const double fr2_sd2 = sin(fg7_2);
-    const double fr2_cd2 = cos(fg7_2);
-    const double fr2_x2 = fas2*fr2_cd2;
-    const double fr2_y2 = fak2*fr2_sd2;
-    const double fr2_z2 = fak2*fr2_cd2;
-    const double fr2_w2 = fas2*fr2_sd2;
-    const double fr2_sp2 = fr2_x2 + fr2_y2;
-    const double fr2_sm2 = fr2_x2 - fr2_y2;
-    const double fr2_cp2 = fr2_z2 - fr2_w2;
-    const double fr2_cm2 = fr2_w2 + fr2_z2;
-    const double fr2_sd3 = sin(fg7_3);
-    const double fr2_cd3 = cos(fg7_3);
-    const double fr2_x3 = fas2*fr2_cd3;
-    const double fr2_y3 = fak2*fr2_sd3;
-    const double fr2_z3 = fak2*fr2_cd3;
-    const double fr2_w3 = fas2*fr2_sd3;
-    const double fr2_sp3 = fr2_x3 + fr2_y3;
-    const double fr2_sm3 = fr2_x3 - fr2_y3;
-    const double fr2_cp3 = fr2_z3 - fr2_w3;
-    const double fr2_cm3 = fr2_w3 + fr2_z3;
-    const double fr2_sd4 = sin(fg7_4);
-    const double fr2_cd4 = cos(fg7_4);
-    const double fr2_x4 = fas2*fr2_cd4;
-    const double fr2_y4 = fak2*fr2_sd4;
-    const double fr2_z4 = fak2*fr2_cd4;
-    const double fr2_w4 = fas2*fr2_sd4;
-    const double fr2_sp4 = fr2_x4 + fr2_y4;
-    const double fr2_sm4 = fr2_x4 - fr2_y4;
-    const double fr2_cp4 = fr2_z4 - fr2_w4;
-    const double fr2_cm4 = fr2_w4 + fr2_z4;
-    const double fr2_sd5 = sin(fg7_5);
-    const double fr2_cd5 = cos(fg7_5);
-    const double fr2_x5 = fas2*fr2_cd5;
-    const double fr2_y5 = fak2*fr2_sd5;
-    const double fr2_z5 = fak2*fr2_cd5;
-    const double fr2_w5 = fas2*fr2_sd5;
-    const double fr2_sp5 = fr2_x5 + fr2_y5;
-    const double fr2_sm5 = fr2_x5 - fr2_y5;
-    const double fr2_cp5 = fr2_z5 - fr2_w5;
-    const double fr2_cm5 = fr2_w5 + fr2_z5;
-    const double fr2_sd6 = sin(fg7_6);
-    const double fr2_cd6 = cos(fg7_6);
-    const double fr2_x6 = fas2*fr2_cd6;
-    const double fr2_y6 = fak2*fr2_sd6;
-    const double fr2_z6 = fak2*fr2_cd6;
-    const double fr2_w6 = fas2*fr2_sd6;
-    const double fr2_sp6 = fr2_x6 + fr2_y6;
-    const double fr2_sm6 = fr2_x6 - fr2_y6;
-    const double fr2_cp6 = fr2_z6 - fr2_w6;
-    const double fr2_cm6 = fr2_w6 + fr2_z6;
-    const double fr2_sd7 = sin(fg7_7);
-    const double fr2_cd7 = cos(fg7_7);
-    const double fr2_x7 = fas2*fr2_cd7;
-    const double fr2_y7 = fak2*fr2_sd7;
-    const double fr2_z7 = fak2*fr2_cd7;
-    const double fr2_w7 = fas2*fr2_sd7;
-    const double fr2_sp7 = fr2_x7 + fr2_y7;
-    const double fr2_sm7 = fr2_x7 - fr2_y7;
-    const double fr2_cp7 = fr2_z7 - fr2_w7;
-    const double fr2_cm7 = fr2_w7 + fr2_z7;
-    const double fa3 = u[nav_ukf_iu_fz] - x[nav_ukf_ix_baz];
-    const double fa4 = u[nav_ukf_iu_fy] - x[nav_ukf_ix_bay];
-    const double fa5 = u[nav_ukf_iu_fx] - x[nav_ukf_ix_bax];
-    const double fa6 = u[nav_ukf_iu_wy] - x[nav_ukf_ix_bgy];
-    const double fa7 = u[nav_ukf_iu_wz] - x[nav_ukf_ix_bgz];
-    /* shared subexpressions of f at the sigma points */
-    const double ft0 = fas0*fas1;
-    const double ft1 = fak0*fak1;
-    const double ft2 = ft0 + fas2*ft1;
-    const double ft3 = fa3*ft2;
-    const double ft4 = fak0*fas1;
-    const double ft5 = -ft4 + fak1*fas0*fas2;
-    const double ft6 = fa4*ft5;
-    const double ft7 = fa5*fak2;
-    const double ft8 = fak1*ft7;
-    const double ft9 = ft6 + ft8;
-    const double ft10 = x[nav_ukf_ix_vn] + dt*(ft3 + ft9);
-    const double ft11 = fas2*ft4 - fak1*fas0;
-    const double ft12 = fa3*ft11;
-    const double ft13 = ft1 + fas2*ft0;
-    const double ft14 = fa4*ft13;
-    const double ft15 = fas1*ft7;
-    const double ft16 = ft14 + ft15;
-    const double ft17 = x[nav_ukf_ix_ve] + dt*(ft12 + ft16);
-    const double ft18 = fak0*fak2;
-    const double ft19 = fa3*ft18;
-    const double ft20 = fak2*fas0;
-    const double ft21 = fa4*ft20;
-    const double ft22 = par->g - fa5*fas2;
-    const double ft23 = ft21 + ft22;
-    const double ft24 = x[nav_ukf_ix_vd] + dt*(ft19 + ft23);
-    const double ft25 = (1.0/fak2);
-    const double ft26 = fa6*fas0;
-    const double ft27 = fa7*fak0;
-    const double ft28 = ft26 + ft27;
-    const double ft29 = ft25*ft28;
-    const double ft30 = u[nav_ukf_iu_wx] - x[nav_ukf_ix_bgx];
-    const double ft31 = ft30 + fas2*ft29;
-    const double ft32 = x[nav_ukf_ix_roll] + dt*ft31;
-    const double ft33 = fa6*fak0;
-    const double ft34 = fa7*fas0;
-    const double ft35 = x[nav_ukf_ix_pitch] + dt*(ft33 - ft34);
-    const double ft36 = x[nav_ukf_ix_yaw] + dt*ft29;
-    const double ft37 = fa5 - fg12_0;
-    const double ft38 = fr2_cp0*ft37;
-    const double ft39 = fa3 - fg14_0;
-    const double ft40 = fr0_sp0*fr1_sp0;
-    const double ft41 = fr0_cp0*fr1_cp0;
-    const double ft42 = fa4 - fg13_0;
-    const double ft43 = fr0_cp0*fr1_sp0;
-    const double ft44 = fa5 + fg12_0;
-    const double ft45 = fr2_cm0*ft44;
-    const double ft46 = fa3 + fg14_0;
-    const double ft47 = fr0_sm0*fr1_sm0;
-    const double ft48 = fr0_cm0*fr1_cm0;
-    const double ft49 = fa4 + fg13_0;
-    const double ft50 = fr0_cm0*fr1_sm0;
-    const double ft51 = (1.0/fr2_cp0);
-    const double ft52 = fa7 - fg11_0;
-    const double ft53 = fa6 - fg10_0;
-    const double ft54 = fr0_cp0*ft52 + fr0_sp0*ft53;
-    const double ft55 = x[nav_ukf_ix_bgx] - u[nav_ukf_iu_wx];
-    const double ft56 = fa7 + fg11_0;
-    const double ft57 = fa6 + fg10_0;
-    const double ft58 = (fr0_cm0*ft56 + fr0_sm0*ft57)/fr2_cm0;
-    const double ft59 = fa5 - fg12_1;
-    const double ft60 = fr2_cp1*ft59;
-    const double ft61 = fa3 - fg14_1;
-    const double ft62 = fr0_sp1*fr1_sp1;
-    const double ft63 = fr0_cp1*fr1_cp1;
-    const double ft64 = fa4 - fg13_1;
-    const double ft65 = fr0_cp1*fr1_sp1;
-    const double ft66 = fa5 + fg12_1;
-    const double ft67 = fr2_cm1*ft66;
-    const double ft68 = fa3 + fg14_1;
-    const double ft69 = fr0_sm1*fr1_sm1;
-    const double ft70 = fr0_cm1*fr1_cm1;
-    const double ft71 = fa4 + fg13_1;
-    const double ft72 = fr0_cm1*fr1_sm1;
-    const double ft73 = (1.0/fr2_cp1);
-    const double ft74 = fa7 - fg11_1;
-    const double ft75 = fa6 - fg10_1;
-    const double ft76 = fr0_cp1*ft74 + fr0_sp1*ft75;
-    const double ft77 = fa7 + fg11_1;
-    const double ft78 = fa6 + fg10_1;
-    const double ft79 = (fr0_cm1*ft77 + fr0_sm1*ft78)/fr2_cm1;
-    const double ft80 = fa5 - fg12_2;
-    const double ft81 = fr2_cp2*ft80;
-    const double ft82 = fa3 - fg14_2;
-    const double ft83 = fr0_sp2*fr1_sp2;
-    const double ft84 = fr0_cp2*fr1_cp2;
-    const double ft85 = fa4 - fg13_2;
-    const double ft86 = fr0_cp2*fr1_sp2;
-    const double ft87 = fa5 + fg12_2;
-    const double ft88 = fr2_cm2*ft87;
-    const double ft89 = fa3 + fg14_2;
-    const double ft90 = fr0_sm2*fr1_sm2;
-    const double ft91 = fr0_cm2*fr1_cm2;
-    const double ft92 = fa4 + fg13_2;
-    const double ft93 = fr0_cm2*fr1_sm2;
-    const double ft94 = (1.0/fr2_cp2);
-    const double ft95 = fa7 - fg11_2;
-    const double ft96 = fa6 - fg10_2;
-    const double ft97 = fr0_cp2*ft95 + fr0_sp2*ft96;
-    const double ft98 = fa7 + fg11_2;
-    const double ft99 = fa6 + fg10_2;
-    const double ft100 = (fr0_cm2*ft98 + fr0_sm2*ft99)/fr2_cm2;
-    const double ft101 = fa5 - fg12_3;
-    const double ft102 = fr2_cp3*ft101;
-    const double ft103 = fa3 - fg14_3;
-    const double ft104 = fr0_sp3*fr1_sp3;
-    const double ft105 = fr0_cp3*fr1_cp3;
-    const double ft106 = fa4 - fg13_3;
-    const double ft107 = fr0_cp3*fr1_sp3;
-    const double ft108 = fa5 + fg12_3;
-    const double ft109 = fr2_cm3*ft108;
-    const double ft110 = fa3 + fg14_3;
-    const double ft111 = fr0_sm3*fr1_sm3;
-    const double ft112 = fr0_cm3*fr1_cm3;
-    const double ft113 = fa4 + fg13_3;
-    const double ft114 = fr0_cm3*fr1_sm3;
-    const double ft115 = (1.0/fr2_cp3);
-    const double ft116 = fa7 - fg11_3;
-    const double ft117 = fa6 - fg10_3;
-    const double ft118 = fr0_cp3*ft116 + fr0_sp3*ft117;
-    const double ft119 = fa7 + fg11_3;
-    const double ft120 = fa6 + fg10_3;
-    const double ft121 = (fr0_cm3*ft119 + fr0_sm3*ft120)/fr2_cm3;
-    const double ft122 = fa5 - fg12_4;
-    const double ft123 = fr2_cp4*ft122;
-    const double ft124 = fa3 - fg14_4;
-    const double ft125 = fr0_sp4*fr1_sp4;
-    const double ft126 = fr0_cp4*fr1_cp4;
-    const double ft127 = fa4 - fg13_4;
-    const double ft128 = fr0_cp4*fr1_sp4;
-    const double ft129 = fa5 + fg12_4;
-    const double ft130 = fr2_cm4*ft129;
-    const double ft131 = fa3 + fg14_4;
-    const double ft132 = fr0_sm4*fr1_sm4;
-    const double ft133 = fr0_cm4*fr1_cm4;
-    const double ft134 = fa4 + fg13_4;
-    const double ft135 = fr0_cm4*fr1_sm4;
-    const double ft136 = (1.0/fr2_cp4);
-    const double ft137 = fa7 - fg11_4;
-    const double ft138 = fa6 - fg10_4;
-    const double ft139 = fr0_cp4*ft137 + fr0_sp4*ft138;
-    const double ft140 = fa7 + fg11_4;
-    const double ft141 = fa6 + fg10_4;
-    const double ft142 = (fr0_cm4*ft140 + fr0_sm4*ft141)/fr2_cm4;
-    const double ft143 = fa5 - fg12_5;
-    const double ft144 = fr2_cp5*ft143;
-    const double ft145 = fa3 - fg14_5;
-    const double ft146 = fr0_sp5*fr1_sp5;
-    const double ft147 = fr0_cp5*fr1_cp5;
-    const double ft148 = fa4 - fg13_5;
-    const double ft149 = fr0_cp5*fr1_sp5;
-    const double ft150 = fa5 + fg12_5;
-    const double ft151 = fr2_cm5*ft150;
-    const double ft152 = fa3 + fg14_5;
-    const double ft153 = fr0_sm5*fr1_sm5;
-    const double ft154 = fr0_cm5*fr1_cm5;
-    const double ft155 = fa4 + fg13_5;
-    const double ft156 = fr0_cm5*fr1_sm5;
-    const double ft157 = (1.0/fr2_cp5);
-    const double ft158 = fa7 - fg11_5;
-    const double ft159 = fa6 - fg10_5;
-    const double ft160 = fr0_cp5*ft158 + fr0_sp5*ft159;
-    const double ft161 = fa7 + fg11_5;
-    const double ft162 = fa6 + fg10_5;
-    const double ft163 = (fr0_cm5*ft161 + fr0_sm5*ft162)/fr2_cm5;
-    const double ft164 = fa5 - fg12_6;
-    const double ft165 = fr2_cp6*ft164;
-    const double ft166 = fa3 - fg14_6;
-    const double ft167 = fr0_sp6*fr1_sp6;
-    const double ft168 = fr0_cp6*fr1_cp6;
-    const double ft169 = fa4 - fg13_6;
-    const double ft170 = fr0_cp6*fr1_sp6;
-    const double ft171 = fa5 + fg12_6;
-    const double ft172 = fr2_cm6*ft171;
-    const double ft173 = fa3 + fg14_6;
-    const double ft174 = fr0_sm6*fr1_sm6;
-    const double ft175 = fr0_cm6*fr1_cm6;
-    const double ft176 = fa4 + fg13_6;
-    const double ft177 = fr0_cm6*fr1_sm6;
-    const double ft178 = (1.0/fr2_cp6);
-    const double ft179 = fa7 - fg11_6;
-    const double ft180 = fa6 - fg10_6;
-    const double ft181 = fr0_cp6*ft179 + fr0_sp6*ft180;
-    const double ft182 = fa7 + fg11_6;
-    const double ft183 = fa6 + fg10_6;
-    const double ft184 = (fr0_cm6*ft182 + fr0_sm6*ft183)/fr2_cm6;
-    const double ft185 = fa5 - fg12_7;
-    const double ft186 = fr2_cp7*ft185;
-    const double ft187 = fa3 - fg14_7;
-    const double ft188 = fas0*fr1_sp7;
-    const double ft189 = fak0*fr1_cp7;
-    const double ft190 = fa4 - fg13_7;
-    const double ft191 = fak0*fr1_sp7;
-    const double ft192 = fa5 + fg12_7;
-    const double ft193 = fr2_cm7*ft192;
-    const double ft194 = fa3 + fg14_7;
-    const double ft195 = fas0*fr1_sm7;
-    const double ft196 = fak0*fr1_cm7;
-    const double ft197 = fa4 + fg13_7;
-    const double ft198 = fak0*fr1_sm7;
-    const double ft199 = (1.0/fr2_cp7);
-    const double ft200 = fa7 - fg11_7;
-    const double ft201 = fa6 - fg10_7;
-    const double ft202 = fak0*ft200 + fas0*ft201;
-    const double ft203 = fa7 + fg11_7;
-    const double ft204 = fa6 + fg10_7;
-    const double ft205 = (fak0*ft203 + fas0*ft204)/fr2_cm7;
-    const double ft206 = fa5 - fg12_8;
-    const double ft207 = fak2*ft206;
-    const double ft208 = fa3 - fg14_8;
-    const double ft209 = fas0*fr1_sp8;
-    const double ft210 = fak0*fr1_cp8;
-    const double ft211 = fa4 - fg13_8;
-    const double ft212 = fak0*fr1_sp8;
-    const double ft213 = fa5 + fg12_8;
-    const double ft214 = fak2*ft213;
-    const double ft215 = fa3 + fg14_8;
-    const double ft216 = fas0*fr1_sm8;
-    const double ft217 = fak0*fr1_cm8;
-    const double ft218 = fa4 + fg13_8;
-    const double ft219 = fak0*fr1_sm8;
-    const double ft220 = fa7 - fg11_8;
-    const double ft221 = fa6 - fg10_8;
-    const double ft222 = fak0*ft220 + fas0*ft221;
-    const double ft223 = fa7 + fg11_8;
-    const double ft224 = fa6 + fg10_8;
-    const double ft225 = fak0*ft223 + fas0*ft224;
-    const double ft226 = fas2*ft25;
-    const double ft227 = dt*ft25;
-    const double ft228 = fa5 - fg12_9;
-    const double ft229 = fak1*fak2;
-    const double ft230 = fa3 - fg14_9;
-    const double ft231 = fa4 - fg13_9;
-    const double ft232 = fa5 + fg12_9;
-    const double ft233 = fa3 + fg14_9;
-    const double ft234 = fa4 + fg13_9;
-    const double ft235 = fak2*fas1;
-    const double ft236 = fa7 - fg11_9;
-    const double ft237 = fa6 - fg10_9;
-    const double ft238 = fak0*ft236 + fas0*ft237;
-    const double ft239 = fa7 + fg11_9;
-    const double ft240 = fa6 + fg10_9;
-    const double ft241 = fak0*ft239 + fas0*ft240;
-    const double ft242 = fa5 - fg12_10;
-    const double ft243 = fa3 - fg14_10;
-    const double ft244 = fa4 - fg13_10;
-    const double ft245 = fa5 + fg12_10;
-    const double ft246 = fa3 + fg14_10;
-    const double ft247 = fa4 + fg13_10;
-    const double ft248 = fa7 - fg11_10;
-    const double ft249 = fa6 - fg10_10;
-    const double ft250 = fak0*ft248 + fas0*ft249;
-    const double ft251 = fa7 + fg11_10;
-    const double ft252 = fa6 + fg10_10;
-    const double ft253 = fak0*ft251 + fas0*ft252;
-    const double ft254 = fa5 - fg12_11;
-    const double ft255 = fa3 - fg14_11;
-    const double ft256 = fa4 - fg13_11;
-    const double ft257 = fa5 + fg12_11;
-    const double ft258 = fa3 + fg14_11;
-    const double ft259 = fa4 + fg13_11;
-    const double ft260 = fa7 - fg11_11;
-    const double ft261 = ft26 + fak0*ft260;
-    const double ft262 = fa7 + fg11_11;
-    const double ft263 = ft26 + fak0*ft262;
-    const double ft264 = fa5 - fg12_12;
-    const double ft265 = fa3 - fg14_12;
-    const double ft266 = fa4 - fg13_12;
-    const double ft267 = fa5 + fg12_12;
-    const double ft268 = fa3 + fg14_12;
-    const double ft269 = fa4 + fg13_12;
-    const double ft270 = fa3 - fg14_13;
-    const double ft271 = fa4 - fg13_13;
-    const double ft272 = fa3 + fg14_13;
-    const double ft273 = fa4 + fg13_13;
-    const double ft274 = fa3 - fg14_14;
-    const double ft275 = fa3 + fg14_14;
-    const double ft276 = fa6 - fg16_16;
-    const double ft277 = ft27 + fas0*ft276;
-    const double ft278 = fa6 + fg16_16;
-    const double ft279 = ft27 + fas0*ft278;
-    const double ft280 = fa7 - fg17_17;
-    const double ft281 = ft26 + fak0*ft280;
-    const double ft282 = fa7 + fg17_17;
-    const double ft283 = ft26 + fak0*ft282;
-    const double ft284 = fa5 - fg18_18;
-    const double ft285 = ft3 + ft6;
-    const double ft286 = fa5 + fg18_18;
-    const double ft287 = ft12 + ft14;
-    const double ft288 = ft19 + ft21 + par->g;
-    const double ft289 = fa4 - fg19_19;
-    const double ft290 = ft3 + ft8;
-    const double ft291 = fa4 + fg19_19;
-    const double ft292 = ft12 + ft15;
-    const double ft293 = ft19 + ft22;
-    const double ft294 = fa3 - fg20_20;
-    const double ft295 = fa3 + fg20_20;
-    const double ft296 = 1.0e-06*dt;
-    const double ft297 = 1.0000000000000002e-10*dt;
-    const double ft298 = 1.0e-08*dt;
-    const double fc0 = x[nav_ukf_ix_pn] + dt*x[nav_ukf_ix_vn];
-    const double fc1 = x[nav_ukf_ix_pe] + dt*x[nav_ukf_ix_ve];
-    const double fc2 = x[nav_ukf_ix_pd] + dt*x[nav_ukf_ix_vd];
-    const double fp0_3 = fg3_0 + x[nav_ukf_ix_vn] + dt*(fr1_cp0*ft38 + ft39*(ft40 + fr2_sp0*ft41) + ft42*(-ft43 + fr0_sp0*fr1_cp0*fr2_sp0));
-    const double fm0_3 = x[nav_ukf_ix_vn] - fg3_0 + dt*(fr1_cm0*ft45 + ft46*(ft47 + fr2_sm0*ft48) + ft49*(-ft50 + fr0_sm0*fr1_cm0*fr2_sm0));
-    const double fp0_4 = fg4_0 + x[nav_ukf_ix_ve] + dt*(fr1_sp0*ft38 + ft39*(fr2_sp0*ft43 - fr0_sp0*fr1_cp0) + ft42*(ft41 + fr2_sp0*ft40));
-    const double fm0_4 = x[nav_ukf_ix_ve] - fg4_0 + dt*(fr1_sm0*ft45 + ft46*(fr2_sm0*ft50 - fr0_sm0*fr1_cm0) + ft49*(ft48 + fr2_sm0*ft47));
-    const double fp0_5 = fg5_0 + x[nav_ukf_ix_vd] + dt*(par->g - fr2_sp0*ft37 + fr0_cp0*fr2_cp0*ft39 + fr0_sp0*fr2_cp0*ft42);
-    const double fm0_5 = x[nav_ukf_ix_vd] - fg5_0 + dt*(par->g - fr2_sm0*ft44 + fr0_cm0*fr2_cm0*ft46 + fr0_sm0*fr2_cm0*ft49);
-    const double fp0_6 = fg6_0 + x[nav_ukf_ix_roll] + dt*(-fg9_0 - ft55 + fr2_sp0*ft51*ft54);
-    const double fm0_6 = x[nav_ukf_ix_roll] - fg6_0 + dt*(fg9_0 + ft30 + fr2_sm0*ft58);
-    const double fp0_7 = fg7_0 + x[nav_ukf_ix_pitch] + dt*(fr0_cp0*ft53 - fr0_sp0*ft52);
-    const double fm0_7 = x[nav_ukf_ix_pitch] - fg7_0 + dt*(fr0_cm0*ft57 - fr0_sm0*ft56);
-    const double fp0_8 = fg8_0 + x[nav_ukf_ix_yaw] + dt*ft51*ft54;
-    const double fm0_8 = x[nav_ukf_ix_yaw] - fg8_0 + dt*ft58;
-    const double fp1_3 = fg3_1 + x[nav_ukf_ix_vn] + dt*(fr1_cp1*ft60 + ft61*(ft62 + fr2_sp1*ft63) + ft64*(-ft65 + fr0_sp1*fr1_cp1*fr2_sp1));
-    const double fm1_3 = x[nav_ukf_ix_vn] - fg3_1 + dt*(fr1_cm1*ft67 + ft68*(ft69 + fr2_sm1*ft70) + ft71*(-ft72 + fr0_sm1*fr1_cm1*fr2_sm1));
-    const double fp1_4 = fg4_1 + x[nav_ukf_ix_ve] + dt*(fr1_sp1*ft60 + ft61*(fr2_sp1*ft65 - fr0_sp1*fr1_cp1) + ft64*(ft63 + fr2_sp1*ft62));
-    const double fm1_4 = x[nav_ukf_ix_ve] - fg4_1 + dt*(fr1_sm1*ft67 + ft68*(fr2_sm1*ft72 - fr0_sm1*fr1_cm1) + ft71*(ft70 + fr2_sm1*ft69));
-    const double fp1_5 = fg5_1 + x[nav_ukf_ix_vd] + dt*(par->g - fr2_sp1*ft59 + fr0_cp1*fr2_cp1*ft61 + fr0_sp1*fr2_cp1*ft64);
-    const double fm1_5 = x[nav_ukf_ix_vd] - fg5_1 + dt*(par->g - fr2_sm1*ft66 + fr0_cm1*fr2_cm1*ft68 + fr0_sm1*fr2_cm1*ft71);
-    const double fp1_6 = fg6_1 + x[nav_ukf_ix_roll] + dt*(-fg9_1 - ft55 + fr2_sp1*ft73*ft76);
-    const double fm1_6 = x[nav_ukf_ix_roll] - fg6_1 + dt*(fg9_1 + ft30 + fr2_sm1*ft79);
-    const double fp1_7 = fg7_1 + x[nav_ukf_ix_pitch] + dt*(fr0_cp1*ft75 - fr0_sp1*ft74);
-    const double fm1_7 = x[nav_ukf_ix_pitch] - fg7_1 + dt*(fr0_cm1*ft78 - fr0_sm1*ft77);
-    const double fp1_8 = fg8_1 + x[nav_ukf_ix_yaw] + dt*ft73*ft76;
-    const double fm1_8 = x[nav_ukf_ix_yaw] - fg8_1 + dt*ft79;
-    const double fp2_3 = fg3_2 + x[nav_ukf_ix_vn] + dt*(fr1_cp2*ft81 + ft82*(ft83 + fr2_sp2*ft84) + ft85*(-ft86 + fr0_sp2*fr1_cp2*fr2_sp2));
-    const double fm2_3 = x[nav_ukf_ix_vn] - fg3_2 + dt*(fr1_cm2*ft88 + ft89*(ft90 + fr2_sm2*ft91) + ft92*(-ft93 + fr0_sm2*fr1_cm2*fr2_sm2));
-    const double fp2_4 = fg4_2 + x[nav_ukf_ix_ve] + dt*(fr1_sp2*ft81 + ft82*(fr2_sp2*ft86 - fr0_sp2*fr1_cp2) + ft85*(ft84 + fr2_sp2*ft83));
-    const double fm2_4 = x[nav_ukf_ix_ve] - fg4_2 + dt*(fr1_sm2*ft88 + ft89*(fr2_sm2*ft93 - fr0_sm2*fr1_cm2) + ft92*(ft91 + fr2_sm2*ft90));
-    const double fp2_5 = fg5_2 + x[nav_ukf_ix_vd] + dt*(par->g - fr2_sp2*ft80 + fr0_cp2*fr2_cp2*ft82 + fr0_sp2*fr2_cp2*ft85);
-    const double fm2_5 = x[nav_ukf_ix_vd] - fg5_2 + dt*(par->g - fr2_sm2*ft87 + fr0_cm2*fr2_cm2*ft89 + fr0_sm2*fr2_cm2*ft92);
-    const double fp2_6 = fg6_2 + x[nav_ukf_ix_roll] + dt*(-fg9_2 - ft55 + fr2_sp2*ft94*ft97);
-    const double fm2_6 = x[nav_ukf_ix_roll] - fg6_2 + dt*(fg9_2 + ft30 + fr2_sm2*ft100);
-    const double fp2_7 = fg7_2 + x[nav_ukf_ix_pitch] + dt*(fr0_cp2*ft96 - fr0_sp2*ft95);
-    const double fm2_7 = x[nav_ukf_ix_pitch] - fg7_2 + dt*(fr0_cm2*ft99 - fr0_sm2*ft98);
-    const double fp2_8 = fg8_2 + x[nav_ukf_ix_yaw] + dt*ft94*ft97;
-    const double fm2_8 = x[nav_ukf_ix_yaw] - fg8_2 + dt*ft100;
-    const double fp3_3 = fg3_3 + x[nav_ukf_ix_vn] + dt*(fr1_cp3*ft102 + ft103*(ft104 + fr2_sp3*ft105) + ft106*(-ft107 + fr0_sp3*fr1_cp3*fr2_sp3));
-    const double fm3_3 = x[nav_ukf_ix_vn] - fg3_3 + dt*(fr1_cm3*ft109 + ft110*(ft111 + fr2_sm3*ft112) + ft113*(-ft114 + fr0_sm3*fr1_cm3*fr2_sm3));
-    const double fp3_4 = fg4_3 + x[nav_ukf_ix_ve] + dt*(fr1_sp3*ft102 + ft103*(fr2_sp3*ft107 - fr0_sp3*fr1_cp3) + ft106*(ft105 + fr2_sp3*ft104));
-    const double fm3_4 = x[nav_ukf_ix_ve] - fg4_3 + dt*(fr1_sm3*ft109 + ft110*(fr2_sm3*ft114 - fr0_sm3*fr1_cm3) + ft113*(ft112 + fr2_sm3*ft111));
-    const double fp3_5 = fg5_3 + x[nav_ukf_ix_vd] + dt*(par->g - fr2_sp3*ft101 + fr0_cp3*fr2_cp3*ft103 + fr0_sp3*fr2_cp3*ft106);
-    const double fm3_5 = x[nav_ukf_ix_vd] - fg5_3 + dt*(par->g - fr2_sm3*ft108 + fr0_cm3*fr2_cm3*ft110 + fr0_sm3*fr2_cm3*ft113);
-    const double fp3_6 = fg6_3 + x[nav_ukf_ix_roll] + dt*(-fg9_3 - ft55 + fr2_sp3*ft115*ft118);
-    const double fm3_6 = x[nav_ukf_ix_roll] - fg6_3 + dt*(fg9_3 + ft30 + fr2_sm3*ft121);
-    const double fp3_7 = fg7_3 + x[nav_ukf_ix_pitch] + dt*(fr0_cp3*ft117 - fr0_sp3*ft116);
-    const double fm3_7 = x[nav_ukf_ix_pitch] - fg7_3 + dt*(fr0_cm3*ft120 - fr0_sm3*ft119);
-    const double fp3_8 = fg8_3 + x[nav_ukf_ix_yaw] + dt*ft115*ft118;
-    const double fm3_8 = x[nav_ukf_ix_yaw] - fg8_3 + dt*ft121;
-    const double fp4_3 = x[nav_ukf_ix_vn] + dt*(fr1_cp4*ft123 + ft124*(ft125 + fr2_sp4*ft126) + ft127*(-ft128 + fr0_sp4*fr1_cp4*fr2_sp4));
-    const double fm4_3 = x[nav_ukf_ix_vn] + dt*(fr1_cm4*ft130 + ft131*(ft132 + fr2_sm4*ft133) + ft134*(-ft135 + fr0_sm4*fr1_cm4*fr2_sm4));
-    const double fp4_4 = fg4_4 + x[nav_ukf_ix_ve] + dt*(fr1_sp4*ft123 + ft124*(fr2_sp4*ft128 - fr0_sp4*fr1_cp4) + ft127*(ft126 + fr2_sp4*ft125));
-    const double fm4_4 = x[nav_ukf_ix_ve] - fg4_4 + dt*(fr1_sm4*ft130 + ft131*(fr2_sm4*ft135 - fr0_sm4*fr1_cm4) + ft134*(ft133 + fr2_sm4*ft132));
-    const double fp4_5 = fg5_4 + x[nav_ukf_ix_vd] + dt*(par->g - fr2_sp4*ft122 + fr0_cp4*fr2_cp4*ft124 + fr0_sp4*fr2_cp4*ft127);
-    const double fm4_5 = x[nav_ukf_ix_vd] - fg5_4 + dt*(par->g - fr2_sm4*ft129 + fr0_cm4*fr2_cm4*ft131 + fr0_sm4*fr2_cm4*ft134);
-    const double fp4_6 = fg6_4 + x[nav_ukf_ix_roll] + dt*(-fg9_4 - ft55 + fr2_sp4*ft136*ft139);
-    const double fm4_6 = x[nav_ukf_ix_roll] - fg6_4 + dt*(fg9_4 + ft30 + fr2_sm4*ft142);
-    const double fp4_7 = fg7_4 + x[nav_ukf_ix_pitch] + dt*(fr0_cp4*ft138 - fr0_sp4*ft137);
-    const double fm4_7 = x[nav_ukf_ix_pitch] - fg7_4 + dt*(fr0_cm4*ft141 - fr0_sm4*ft140);
-    const double fp4_8 = fg8_4 + x[nav_ukf_ix_yaw] + dt*ft136*ft139;
-    const double fm4_8 = x[nav_ukf_ix_yaw] - fg8_4 + dt*ft142;
-    const double fp5_3 = x[nav_ukf_ix_vn] + dt*(fr1_cp5*ft144 + ft145*(ft146 + fr2_sp5*ft147) + ft148*(-ft149 + fr0_sp5*fr1_cp5*fr2_sp5));
-    const double fm5_3 = x[nav_ukf_ix_vn] + dt*(fr1_cm5*ft151 + ft152*(ft153 + fr2_sm5*ft154) + ft155*(-ft156 + fr0_sm5*fr1_cm5*fr2_sm5));
-    const double fp5_4 = x[nav_ukf_ix_ve] + dt*(fr1_sp5*ft144 + ft145*(fr2_sp5*ft149 - fr0_sp5*fr1_cp5) + ft148*(ft147 + fr2_sp5*ft146));
-    const double fm5_4 = x[nav_ukf_ix_ve] + dt*(fr1_sm5*ft151 + ft152*(fr2_sm5*ft156 - fr0_sm5*fr1_cm5) + ft155*(ft154 + fr2_sm5*ft153));
-    const double fp5_5 = fg5_5 + x[nav_ukf_ix_vd] + dt*(par->g - fr2_sp5*ft143 + fr0_cp5*fr2_cp5*ft145 + fr0_sp5*fr2_cp5*ft148);
-    const double fm5_5 = x[nav_ukf_ix_vd] - fg5_5 + dt*(par->g - fr2_sm5*ft150 + fr0_cm5*fr2_cm5*ft152 + fr0_sm5*fr2_cm5*ft155);
-    const double fp5_6 = fg6_5 + x[nav_ukf_ix_roll] + dt*(-fg9_5 - ft55 + fr2_sp5*ft157*ft160);
-    const double fm5_6 = x[nav_ukf_ix_roll] - fg6_5 + dt*(fg9_5 + ft30 + fr2_sm5*ft163);
-    const double fp5_7 = fg7_5 + x[nav_ukf_ix_pitch] + dt*(fr0_cp5*ft159 - fr0_sp5*ft158);
-    const double fm5_7 = x[nav_ukf_ix_pitch] - fg7_5 + dt*(fr0_cm5*ft162 - fr0_sm5*ft161);
-    const double fp5_8 = fg8_5 + x[nav_ukf_ix_yaw] + dt*ft157*ft160;
-    const double fm5_8 = x[nav_ukf_ix_yaw] - fg8_5 + dt*ft163;
-    const double fp6_3 = x[nav_ukf_ix_vn] + dt*(fr1_cp6*ft165 + ft166*(ft167 + fr2_sp6*ft168) + ft169*(-ft170 + fr0_sp6*fr1_cp6*fr2_sp6));
-    const double fm6_3 = x[nav_ukf_ix_vn] + dt*(fr1_cm6*ft172 + ft173*(ft174 + fr2_sm6*ft175) + ft176*(-ft177 + fr0_sm6*fr1_cm6*fr2_sm6));
-    const double fp6_4 = x[nav_ukf_ix_ve] + dt*(fr1_sp6*ft165 + ft166*(fr2_sp6*ft170 - fr0_sp6*fr1_cp6) + ft169*(ft168 + fr2_sp6*ft167));
-    const double fm6_4 = x[nav_ukf_ix_ve] + dt*(fr1_sm6*ft172 + ft173*(fr2_sm6*ft177 - fr0_sm6*fr1_cm6) + ft176*(ft175 + fr2_sm6*ft174));
-    const double fp6_5 = x[nav_ukf_ix_vd] + dt*(par->g - fr2_sp6*ft164 + fr0_cp6*fr2_cp6*ft166 + fr0_sp6*fr2_cp6*ft169);
-    const double fm6_5 = x[nav_ukf_ix_vd] + dt*(par->g - fr2_sm6*ft171 + fr0_cm6*fr2_cm6*ft173 + fr0_sm6*fr2_cm6*ft176);
-    const double fp6_6 = fg6_6 + x[nav_ukf_ix_roll] + dt*(-fg9_6 - ft55 + fr2_sp6*ft178*ft181);
-    const double fm6_6 = x[nav_ukf_ix_roll] - fg6_6 + dt*(fg9_6 + ft30 + fr2_sm6*ft184);
-    const double fp6_7 = fg7_6 + x[nav_ukf_ix_pitch] + dt*(fr0_cp6*ft180 - fr0_sp6*ft179);
-    const double fm6_7 = x[nav_ukf_ix_pitch] - fg7_6 + dt*(fr0_cm6*ft183 - fr0_sm6*ft182);
-    const double fp6_8 = fg8_6 + x[nav_ukf_ix_yaw] + dt*ft178*ft181;
-    const double fm6_8 = x[nav_ukf_ix_yaw] - fg8_6 + dt*ft184;
-    const double fp7_3 = x[nav_ukf_ix_vn] + dt*(fr1_cp7*ft186 + ft187*(ft188 + fr2_sp7*ft189) + ft190*(-ft191 + fas0*fr1_cp7*fr2_sp7));
-    const double fm7_3 = x[nav_ukf_ix_vn] + dt*(fr1_cm7*ft193 + ft194*(ft195 + fr2_sm7*ft196) + ft197*(-ft198 + fas0*fr1_cm7*fr2_sm7));
-    const double fp7_4 = x[nav_ukf_ix_ve] + dt*(fr1_sp7*ft186 + ft187*(fr2_sp7*ft191 - fas0*fr1_cp7) + ft190*(ft189 + fr2_sp7*ft188));
-    const double fm7_4 = x[nav_ukf_ix_ve] + dt*(fr1_sm7*ft193 + ft194*(fr2_sm7*ft198 - fas0*fr1_cm7) + ft197*(ft196 + fr2_sm7*ft195));
-    const double fp7_5 = x[nav_ukf_ix_vd] + dt*(par->g - fr2_sp7*ft185 + fak0*fr2_cp7*ft187 + fas0*fr2_cp7*ft190);
-    const double fm7_5 = x[nav_ukf_ix_vd] + dt*(par->g - fr2_sm7*ft192 + fak0*fr2_cm7*ft194 + fas0*fr2_cm7*ft197);
-    const double fp7_6 = x[nav_ukf_ix_roll] + dt*(-fg9_7 - ft55 + fr2_sp7*ft199*ft202);
-    const double fm7_6 = x[nav_ukf_ix_roll] + dt*(fg9_7 + ft30 + fr2_sm7*ft205);
-    const double fp7_7 = fg7_7 + x[nav_ukf_ix_pitch] + dt*(fak0*ft201 - fas0*ft200);
-    const double fm7_7 = x[nav_ukf_ix_pitch] - fg7_7 + dt*(fak0*ft204 - fas0*ft203);
-    const double fp7_8 = fg8_7 + x[nav_ukf_ix_yaw] + dt*ft199*ft202;
-    const double fm7_8 = x[nav_ukf_ix_yaw] - fg8_7 + dt*ft205;
-    const double fp8_3 = x[nav_ukf_ix_vn] + dt*(fr1_cp8*ft207 + ft208*(ft209 + fas2*ft210) + ft211*(-ft212 + fas0*fas2*fr1_cp8));
-    const double fm8_3 = x[nav_ukf_ix_vn] + dt*(fr1_cm8*ft214 + ft215*(ft216 + fas2*ft217) + ft218*(-ft219 + fas0*fas2*fr1_cm8));
-    const double fp8_4 = x[nav_ukf_ix_ve] + dt*(fr1_sp8*ft207 + ft208*(fas2*ft212 - fas0*fr1_cp8) + ft211*(ft210 + fas2*ft209));
-    const double fm8_4 = x[nav_ukf_ix_ve] + dt*(fr1_sm8*ft214 + ft215*(fas2*ft219 - fas0*fr1_cm8) + ft218*(ft217 + fas2*ft216));
-    const double fp8_5 = x[nav_ukf_ix_vd] + dt*(par->g + ft18*ft208 + ft20*ft211 - fas2*ft206);
-    const double fm8_5 = x[nav_ukf_ix_vd] + dt*(par->g + ft18*ft215 + ft20*ft218 - fas2*ft213);
-    const double fp8_6 = x[nav_ukf_ix_roll] + dt*(-fg9_8 - ft55 + fas2*ft222*ft25);
-    const double fm8_6 = x[nav_ukf_ix_roll] + dt*(fg9_8 + ft30 + ft225*ft226);
-    const double fp8_7 = x[nav_ukf_ix_pitch] + dt*(fak0*ft221 - fas0*ft220);
-    const double fm8_7 = x[nav_ukf_ix_pitch] + dt*(fak0*ft224 - fas0*ft223);
-    const double fp8_8 = fg8_8 + x[nav_ukf_ix_yaw] + ft222*ft227;
-    const double fm8_8 = x[nav_ukf_ix_yaw] - fg8_8 + ft225*ft227;
-    const double fp9_3 = x[nav_ukf_ix_vn] + dt*(ft2*ft230 + ft228*ft229 + ft231*ft5);
-    const double fm9_3 = x[nav_ukf_ix_vn] + dt*(ft2*ft233 + ft229*ft232 + ft234*ft5);
-    const double fp9_4 = x[nav_ukf_ix_ve] + dt*(ft11*ft230 + ft13*ft231 + ft228*ft235);
-    const double fm9_4 = x[nav_ukf_ix_ve] + dt*(ft11*ft233 + ft13*ft234 + ft232*ft235);
-    const double fp9_5 = x[nav_ukf_ix_vd] + dt*(par->g + ft18*ft230 + ft20*ft231 - fas2*ft228);
-    const double fm9_5 = x[nav_ukf_ix_vd] + dt*(par->g + ft18*ft233 + ft20*ft234 - fas2*ft232);
-    const double fp9_6 = x[nav_ukf_ix_roll] + dt*(-fg9_9 - ft55 + fas2*ft238*ft25);
-    const double fm9_6 = x[nav_ukf_ix_roll] + dt*(fg9_9 + ft30 + ft226*ft241);
-    const double fp9_7 = x[nav_ukf_ix_pitch] + dt*(fak0*ft237 - fas0*ft236);
-    const double fm9_7 = x[nav_ukf_ix_pitch] + dt*(fak0*ft240 - fas0*ft239);
-    const double fp9_8 = x[nav_ukf_ix_yaw] + ft227*ft238;
-    const double fm9_8 = x[nav_ukf_ix_yaw] + ft227*ft241;
-    const double fp10_3 = x[nav_ukf_ix_vn] + dt*(ft2*ft243 + ft229*ft242 + ft244*ft5);
-    const double fm10_3 = x[nav_ukf_ix_vn] + dt*(ft2*ft246 + ft229*ft245 + ft247*ft5);
-    const double fp10_4 = x[nav_ukf_ix_ve] + dt*(ft11*ft243 + ft13*ft244 + ft235*ft242);
-    const double fm10_4 = x[nav_ukf_ix_ve] + dt*(ft11*ft246 + ft13*ft247 + ft235*ft245);
-    const double fp10_5 = x[nav_ukf_ix_vd] + dt*(par->g + ft18*ft243 + ft20*ft244 - fas2*ft242);
-    const double fm10_5 = x[nav_ukf_ix_vd] + dt*(par->g + ft18*ft246 + ft20*ft247 - fas2*ft245);
-    const double fp10_6 = x[nav_ukf_ix_roll] + dt*(ft30 + ft226*ft250);
-    const double fm10_6 = x[nav_ukf_ix_roll] + dt*(ft30 + ft226*ft253);
-    const double fp10_7 = x[nav_ukf_ix_pitch] + dt*(fak0*ft249 - fas0*ft248);
-    const double fm10_7 = x[nav_ukf_ix_pitch] + dt*(fak0*ft252 - fas0*ft251);
-    const double fp10_8 = x[nav_ukf_ix_yaw] + ft227*ft250;
-    const double fm10_8 = x[nav_ukf_ix_yaw] + ft227*ft253;
-    const double fp11_3 = x[nav_ukf_ix_vn] + dt*(ft2*ft255 + ft229*ft254 + ft256*ft5);
-    const double fm11_3 = x[nav_ukf_ix_vn] + dt*(ft2*ft258 + ft229*ft257 + ft259*ft5);
-    const double fp11_4 = x[nav_ukf_ix_ve] + dt*(ft11*ft255 + ft13*ft256 + ft235*ft254);
-    const double fm11_4 = x[nav_ukf_ix_ve] + dt*(ft11*ft258 + ft13*ft259 + ft235*ft257);
-    const double fp11_5 = x[nav_ukf_ix_vd] + dt*(par->g + ft18*ft255 + ft20*ft256 - fas2*ft254);
-    const double fm11_5 = x[nav_ukf_ix_vd] + dt*(par->g + ft18*ft258 + ft20*ft259 - fas2*ft257);
-    const double fp11_6 = x[nav_ukf_ix_roll] + dt*(ft30 + ft226*ft261);
-    const double fm11_6 = x[nav_ukf_ix_roll] + dt*(ft30 + ft226*ft263);
-    const double fp11_7 = x[nav_ukf_ix_pitch] + dt*(ft33 - fas0*ft260);
-    const double fm11_7 = x[nav_ukf_ix_pitch] + dt*(ft33 - fas0*ft262);
-    const double fp11_8 = x[nav_ukf_ix_yaw] + ft227*ft261;
-    const double fm11_8 = x[nav_ukf_ix_yaw] + ft227*ft263;
-    const double fp12_3 = x[nav_ukf_ix_vn] + dt*(ft2*ft265 + ft229*ft264 + ft266*ft5);
-    const double fm12_3 = x[nav_ukf_ix_vn] + dt*(ft2*ft268 + ft229*ft267 + ft269*ft5);
-    const double fp12_4 = x[nav_ukf_ix_ve] + dt*(ft11*ft265 + ft13*ft266 + ft235*ft264);
-    const double fm12_4 = x[nav_ukf_ix_ve] + dt*(ft11*ft268 + ft13*ft269 + ft235*ft267);
-    const double fp12_5 = x[nav_ukf_ix_vd] + dt*(par->g + ft18*ft265 + ft20*ft266 - fas2*ft264);
-    const double fm12_5 = x[nav_ukf_ix_vd] + dt*(par->g + ft18*ft268 + ft20*ft269 - fas2*ft267);
-    const double fp13_3 = x[nav_ukf_ix_vn] + dt*(ft8 + ft2*ft270 + ft271*ft5);
-    const double fm13_3 = x[nav_ukf_ix_vn] + dt*(ft8 + ft2*ft272 + ft273*ft5);
-    const double fp13_4 = x[nav_ukf_ix_ve] + dt*(ft15 + ft11*ft270 + ft13*ft271);
-    const double fm13_4 = x[nav_ukf_ix_ve] + dt*(ft15 + ft11*ft272 + ft13*ft273);
-    const double fp13_5 = x[nav_ukf_ix_vd] + dt*(ft22 + ft18*ft270 + ft20*ft271);
-    const double fm13_5 = x[nav_ukf_ix_vd] + dt*(ft22 + ft18*ft272 + ft20*ft273);
-    const double fp14_3 = x[nav_ukf_ix_vn] + dt*(ft9 + ft2*ft274);
-    const double fm14_3 = x[nav_ukf_ix_vn] + dt*(ft9 + ft2*ft275);
-    const double fp14_4 = x[nav_ukf_ix_ve] + dt*(ft16 + ft11*ft274);
-    const double fm14_4 = x[nav_ukf_ix_ve] + dt*(ft16 + ft11*ft275);
-    const double fp14_5 = x[nav_ukf_ix_vd] + dt*(ft23 + ft18*ft274);
-    const double fm14_5 = x[nav_ukf_ix_vd] + dt*(ft23 + ft18*ft275);
-    const double fp15_6 = x[nav_ukf_ix_roll] + dt*(-fg15_15 - ft55 + fas2*ft25*ft28);
-    const double fm15_6 = x[nav_ukf_ix_roll] + dt*(fg15_15 + ft31);
-    const double fp16_6 = x[nav_ukf_ix_roll] + dt*(ft30 + ft226*ft277);
-    const double fm16_6 = x[nav_ukf_ix_roll] + dt*(ft30 + ft226*ft279);
-    const double fp16_7 = x[nav_ukf_ix_pitch] + dt*(-ft34 + fak0*ft276);
-    const double fm16_7 = x[nav_ukf_ix_pitch] + dt*(-ft34 + fak0*ft278);
-    const double fp16_8 = x[nav_ukf_ix_yaw] + ft227*ft277;
-    const double fm16_8 = x[nav_ukf_ix_yaw] + ft227*ft279;
-    const double fp17_6 = x[nav_ukf_ix_roll] + dt*(ft30 + ft226*ft281);
-    const double fm17_6 = x[nav_ukf_ix_roll] + dt*(ft30 + ft226*ft283);
-    const double fp17_7 = x[nav_ukf_ix_pitch] + dt*(ft33 - fas0*ft280);
-    const double fm17_7 = x[nav_ukf_ix_pitch] + dt*(ft33 - fas0*ft282);
-    const double fp17_8 = x[nav_ukf_ix_yaw] + ft227*ft281;
-    const double fm17_8 = x[nav_ukf_ix_yaw] + ft227*ft283;
-    const double fp18_3 = x[nav_ukf_ix_vn] + dt*(ft285 + ft229*ft284);
-    const double fm18_3 = x[nav_ukf_ix_vn] + dt*(ft285 + ft229*ft286);
-    const double fp18_4 = x[nav_ukf_ix_ve] + dt*(ft287 + ft235*ft284);
-    const double fm18_4 = x[nav_ukf_ix_ve] + dt*(ft287 + ft235*ft286);
-    const double fp18_5 = x[nav_ukf_ix_vd] + dt*(ft288 - fas2*ft284);
-    const double fm18_5 = x[nav_ukf_ix_vd] + dt*(ft288 - fas2*ft286);
-    const double fp19_3 = x[nav_ukf_ix_vn] + dt*(ft290 + ft289*ft5);
-    const double fm19_3 = x[nav_ukf_ix_vn] + dt*(ft290 + ft291*ft5);
-    const double fp19_4 = x[nav_ukf_ix_ve] + dt*(ft292 + ft13*ft289);
-    const double fm19_4 = x[nav_ukf_ix_ve] + dt*(ft292 + ft13*ft291);
-    const double fp19_5 = x[nav_ukf_ix_vd] + dt*(ft293 + ft20*ft289);
-    const double fm19_5 = x[nav_ukf_ix_vd] + dt*(ft293 + ft20*ft291);
-    const double fp20_3 = x[nav_ukf_ix_vn] + dt*(ft9 + ft2*ft294);
-    const double fm20_3 = x[nav_ukf_ix_vn] + dt*(ft9 + ft2*ft295);
-    const double fp20_4 = x[nav_ukf_ix_ve] + dt*(ft16 + ft11*ft294);
-    const double fm20_4 = x[nav_ukf_ix_ve] + dt*(ft16 + ft11*ft295);
-    const double fp20_5 = x[nav_ukf_ix_vd] + dt*(ft23 + ft18*ft294);
-    const double fm20_5 = x[nav_ukf_ix_vd] + dt*(ft23 + ft18*ft295);
-    const double fT0_0 = Lf[0] + Lf[3]*dt;
-    const double fT1_0 = Lf[17]*dt;
-    const double fT2_0 = Lf[30]*dt;
-    const double fT3_0 = Lf[42]*dt;
-    const double fT0_1 = Lf[1] + Lf[4]*dt;
-    const double fT1_1 = Lf[15] + Lf[18]*dt;
-    const double fT2_1 = Lf[31]*dt;
-    const double fT3_1 = Lf[43]*dt;
-    const double fT4_1 = Lf[54]*dt;
-    const double fT0_2 = Lf[2] + Lf[5]*dt;
-    const double fT1_2 = Lf[16] + Lf[19]*dt;
-    const double fT2_2 = Lf[29] + Lf[32]*dt;
-    const double fT3_2 = Lf[44]*dt;
-    const double fT4_2 = Lf[55]*dt;
-    const double fT5_2 = Lf[65]*dt;
-    const double fq0_3 = fm0_3 + fp0_3;
-    const double fq1_3 = fm1_3 + fp1_3;
-    const double fq2_3 = fm2_3 + fp2_3;
-    const double fq3_3 = fm3_3 + fp3_3;
-    const double fq4_3 = fm4_3 + fp4_3;
-    const double fq5_3 = fm5_3 + fp5_3;
-    const double fq6_3 = fm6_3 + fp6_3;
-    const double fq7_3 = fm7_3 + fp7_3;
-    const double fq8_3 = fm8_3 + fp8_3;
-    const double fq9_3 = fm9_3 + fp9_3;
-    const double fq10_3 = fm10_3 + fp10_3;
-    const double fq11_3 = fm11_3 + fp11_3;
-    const double fq12_3 = fm12_3 + fp12_3;
-    const double fq13_3 = fm13_3 + fp13_3;
-    const double fq14_3 = fm14_3 + fp14_3;
-    const double fq15_3 = 2.0*ft10;
-    const double fq16_3 = 2.0*ft10;
-    const double fq17_3 = 2.0*ft10;
-    const double fq18_3 = fm18_3 + fp18_3;
-    const double fq19_3 = fm19_3 + fp19_3;
-    const double fq20_3 = fm20_3 + fp20_3;
-    const double fmu3 = 0.023809523809523808*(fq0_3 + fq10_3 + fq11_3 + fq12_3 + fq13_3 + fq14_3 + fq15_3 + fq16_3 + fq17_3 + fq18_3 + fq19_3 + fq1_3 + fq20_3 + fq2_3 + fq3_3 + fq4_3 + fq5_3 + fq6_3 + fq7_3 + fq8_3 + fq9_3);
-    const double fe3 = ft10 - fmu3;
-    const double fh3 = 0.2182178902359924*fmu3;
-    const double fu0_3 = 0.1091089451179962*(fp0_3 - fm0_3);
-    const double fv0_3 = -fh3 + 0.1091089451179962*fq0_3;
-    const double fu1_3 = 0.1091089451179962*(fp1_3 - fm1_3);
-    const double fv1_3 = -fh3 + 0.1091089451179962*fq1_3;
-    const double fu2_3 = 0.1091089451179962*(fp2_3 - fm2_3);
-    const double fv2_3 = -fh3 + 0.1091089451179962*fq2_3;
-    const double fu3_3 = 0.1091089451179962*(fp3_3 - fm3_3);
-    const double fv3_3 = -fh3 + 0.1091089451179962*fq3_3;
-    const double fu4_3 = 0.1091089451179962*(fp4_3 - fm4_3);
-    const double fv4_3 = -fh3 + 0.1091089451179962*fq4_3;
-    const double fu5_3 = 0.1091089451179962*(fp5_3 - fm5_3);
-    const double fv5_3 = -fh3 + 0.1091089451179962*fq5_3;
-    const double fu6_3 = 0.1091089451179962*(fp6_3 - fm6_3);
-    const double fv6_3 = -fh3 + 0.1091089451179962*fq6_3;
-    const double fu7_3 = 0.1091089451179962*(fp7_3 - fm7_3);
-    const double fv7_3 = -fh3 + 0.1091089451179962*fq7_3;
-    const double fu8_3 = 0.1091089451179962*(fp8_3 - fm8_3);
-    const double fv8_3 = -fh3 + 0.1091089451179962*fq8_3;
-    const double fu9_3 = 0.1091089451179962*(fp9_3 - fm9_3);
-    const double fv9_3 = -fh3 + 0.1091089451179962*fq9_3;
-    const double fu10_3 = 0.1091089451179962*(fp10_3 - fm10_3);
-    const double fv10_3 = -fh3 + 0.1091089451179962*fq10_3;
-    const double fu11_3 = 0.1091089451179962*(fp11_3 - fm11_3);
-    const double fv11_3 = -fh3 + 0.1091089451179962*fq11_3;
-    const double fu12_3 = 0.1091089451179962*(fp12_3 - fm12_3);
-    const double fv12_3 = -fh3 + 0.1091089451179962*fq12_3;
-    const double fu13_3 = 0.1091089451179962*(fp13_3 - fm13_3);
-    const double fv13_3 = -fh3 + 0.1091089451179962*fq13_3;
-    const double fu14_3 = 0.1091089451179962*(fp14_3 - fm14_3);
-    const double fv14_3 = -fh3 + 0.1091089451179962*fq14_3;
-    const double fv15_3 = -fh3 + 0.1091089451179962*fq15_3;
-    const double fv16_3 = -fh3 + 0.1091089451179962*fq16_3;
-    const double fv17_3 = -fh3 + 0.1091089451179962*fq17_3;
-    const double fu18_3 = 0.1091089451179962*(fp18_3 - fm18_3);
-    const double fv18_3 = -fh3 + 0.1091089451179962*fq18_3;
-    const double fu19_3 = 0.1091089451179962*(fp19_3 - fm19_3);
-    const double fv19_3 = -fh3 + 0.1091089451179962*fq19_3;
-    const double fu20_3 = 0.1091089451179962*(fp20_3 - fm20_3);
-    const double fv20_3 = -fh3 + 0.1091089451179962*fq20_3;
-    const double fq0_4 = fm0_4 + fp0_4;
-    const double fq1_4 = fm1_4 + fp1_4;
-    const double fq2_4 = fm2_4 + fp2_4;
-    const double fq3_4 = fm3_4 + fp3_4;
-    const double fq4_4 = fm4_4 + fp4_4;
-    const double fq5_4 = fm5_4 + fp5_4;
-    const double fq6_4 = fm6_4 + fp6_4;
-    const double fq7_4 = fm7_4 + fp7_4;
-    const double fq8_4 = fm8_4 + fp8_4;
-    const double fq9_4 = fm9_4 + fp9_4;
-    const double fq10_4 = fm10_4 + fp10_4;
-    const double fq11_4 = fm11_4 + fp11_4;
-    const double fq12_4 = fm12_4 + fp12_4;
-    const double fq13_4 = fm13_4 + fp13_4;
-    const double fq14_4 = fm14_4 + fp14_4;
-    const double fq15_4 = 2.0*ft17;
-    const double fq16_4 = 2.0*ft17;
-    const double fq17_4 = 2.0*ft17;
-    const double fq18_4 = fm18_4 + fp18_4;
-    const double fq19_4 = fm19_4 + fp19_4;
-    const double fq20_4 = fm20_4 + fp20_4;
-    const double fmu4 = 0.023809523809523808*(fq0_4 + fq10_4 + fq11_4 + fq12_4 + fq13_4 + fq14_4 + fq15_4 + fq16_4 + fq17_4 + fq18_4 + fq19_4 + fq1_4 + fq20_4 + fq2_4 + fq3_4 + fq4_4 + fq5_4 + fq6_4 + fq7_4 + fq8_4 + fq9_4);
-    const double fe4 = ft17 - fmu4;
-    const double fh4 = 0.2182178902359924*fmu4;
-    const double fu0_4 = 0.1091089451179962*(fp0_4 - fm0_4);
-    const double fv0_4 = -fh4 + 0.1091089451179962*fq0_4;
-    const double fu1_4 = 0.1091089451179962*(fp1_4 - fm1_4);
-    const double fv1_4 = -fh4 + 0.1091089451179962*fq1_4;
-    const double fu2_4 = 0.1091089451179962*(fp2_4 - fm2_4);
-    const double fv2_4 = -fh4 + 0.1091089451179962*fq2_4;
-    const double fu3_4 = 0.1091089451179962*(fp3_4 - fm3_4);
-    const double fv3_4 = -fh4 + 0.1091089451179962*fq3_4;
-    const double fu4_4 = 0.1091089451179962*(fp4_4 - fm4_4);
-    const double fv4_4 = -fh4 + 0.1091089451179962*fq4_4;
-    const double fu5_4 = 0.1091089451179962*(fp5_4 - fm5_4);
-    const double fv5_4 = -fh4 + 0.1091089451179962*fq5_4;
-    const double fu6_4 = 0.1091089451179962*(fp6_4 - fm6_4);
-    const double fv6_4 = -fh4 + 0.1091089451179962*fq6_4;
-    const double fu7_4 = 0.1091089451179962*(fp7_4 - fm7_4);
-    const double fv7_4 = -fh4 + 0.1091089451179962*fq7_4;
-    const double fu8_4 = 0.1091089451179962*(fp8_4 - fm8_4);
-    const double fv8_4 = -fh4 + 0.1091089451179962*fq8_4;
-    const double fu9_4 = 0.1091089451179962*(fp9_4 - fm9_4);
-    const double fv9_4 = -fh4 + 0.1091089451179962*fq9_4;
-    const double fu10_4 = 0.1091089451179962*(fp10_4 - fm10_4);
-    const double fv10_4 = -fh4 + 0.1091089451179962*fq10_4;
-    const double fu11_4 = 0.1091089451179962*(fp11_4 - fm11_4);
-    const double fv11_4 = -fh4 + 0.1091089451179962*fq11_4;
-    const double fu12_4 = 0.1091089451179962*(fp12_4 - fm12_4);
-    const double fv12_4 = -fh4 + 0.1091089451179962*fq12_4;
-    const double fu13_4 = 0.1091089451179962*(fp13_4 - fm13_4);
-    const double fv13_4 = -fh4 + 0.1091089451179962*fq13_4;
-    const double fu14_4 = 0.1091089451179962*(fp14_4 - fm14_4);
-    const double fv14_4 = -fh4 + 0.1091089451179962*fq14_4;
-    const double fv15_4 = -fh4 + 0.1091089451179962*fq15_4;
-    const double fv16_4 = -fh4 + 0.1091089451179962*fq16_4;
-    const double fv17_4 = -fh4 + 0.1091089451179962*fq17_4;
-    const double fu18_4 = 0.1091089451179962*(fp18_4 - fm18_4);
-    const double fv18_4 = -fh4 + 0.1091089451179962*fq18_4;
-    const double fu19_4 = 0.1091089451179962*(fp19_4 - fm19_4);
-    const double fv19_4 = -fh4 + 0.1091089451179962*fq19_4;
-    const double fu20_4 = 0.1091089451179962*(fp20_4 - fm20_4);
-    const double fv20_4 = -fh4 + 0.1091089451179962*fq20_4;
-    const double fq0_5 = fm0_5 + fp0_5;
-    const double fq1_5 = fm1_5 + fp1_5;
-    const double fq2_5 = fm2_5 + fp2_5;
-    const double fq3_5 = fm3_5 + fp3_5;
-    const double fq4_5 = fm4_5 + fp4_5;
-    const double fq5_5 = fm5_5 + fp5_5;
-    const double fq6_5 = fm6_5 + fp6_5;
-    const double fq7_5 = fm7_5 + fp7_5;
-    const double fq8_5 = fm8_5 + fp8_5;
-    const double fq9_5 = fm9_5 + fp9_5;
-    const double fq10_5 = fm10_5 + fp10_5;
-    const double fq11_5 = fm11_5 + fp11_5;
-    const double fq12_5 = fm12_5 + fp12_5;
-    const double fq13_5 = fm13_5 + fp13_5;
-    const double fq14_5 = fm14_5 + fp14_5;
-    const double fq15_5 = 2.0*ft24;
-    const double fq16_5 = 2.0*ft24;
-    const double fq17_5 = 2.0*ft24;
-    const double fq18_5 = fm18_5 + fp18_5;
-    const double fq19_5 = fm19_5 + fp19_5;
-    const double fq20_5 = fm20_5 + fp20_5;
-    const double fmu5 = 0.023809523809523808*(fq0_5 + fq10_5 + fq11_5 + fq12_5 + fq13_5 + fq14_5 + fq15_5 + fq16_5 + fq17_5 + fq18_5 + fq19_5 + fq1_5 + fq20_5 + fq2_5 + fq3_5 + fq4_5 + fq5_5 + fq6_5 + fq7_5 + fq8_5 + fq9_5);
-    const double fe5 = ft24 - fmu5;
-    const double fh5 = 0.2182178902359924*fmu5;
-    const double fu0_5 = 0.1091089451179962*(fp0_5 - fm0_5);
-    const double fv0_5 = -fh5 + 0.1091089451179962*fq0_5;
-    const double fu1_5 = 0.1091089451179962*(fp1_5 - fm1_5);
-    const double fv1_5 = -fh5 + 0.1091089451179962*fq1_5;
-    const double fu2_5 = 0.1091089451179962*(fp2_5 - fm2_5);
-    const double fv2_5 = -fh5 + 0.1091089451179962*fq2_5;
-    const double fu3_5 = 0.1091089451179962*(fp3_5 - fm3_5);
-    const double fv3_5 = -fh5 + 0.1091089451179962*fq3_5;
-    const double fu4_5 = 0.1091089451179962*(fp4_5 - fm4_5);
-    const double fv4_5 = -fh5 + 0.1091089451179962*fq4_5;
-    const double fu5_5 = 0.1091089451179962*(fp5_5 - fm5_5);
-    const double fv5_5 = -fh5 + 0.1091089451179962*fq5_5;
-    const double fu6_5 = 0.1091089451179962*(fp6_5 - fm6_5);
-    const double fv6_5 = -fh5 + 0.1091089451179962*fq6_5;
-    const double fu7_5 = 0.1091089451179962*(fp7_5 - fm7_5);
-    const double fv7_5 = -fh5 + 0.1091089451179962*fq7_5;
-    const double fu8_5 = 0.1091089451179962*(fp8_5 - fm8_5);
-    const double fv8_5 = -fh5 + 0.1091089451179962*fq8_5;
-    const double fu9_5 = 0.1091089451179962*(fp9_5 - fm9_5);
-    const double fv9_5 = -fh5 + 0.1091089451179962*fq9_5;
-    const double fu10_5 = 0.1091089451179962*(fp10_5 - fm10_5);
-    const double fv10_5 = -fh5 + 0.1091089451179962*fq10_5;
-    const double fu11_5 = 0.1091089451179962*(fp11_5 - fm11_5);
-    const double fv11_5 = -fh5 + 0.1091089451179962*fq11_5;
-    const double fu12_5 = 0.1091089451179962*(fp12_5 - fm12_5);
-    const double fv12_5 = -fh5 + 0.1091089451179962*fq12_5;
-    const double fu13_5 = 0.1091089451179962*(fp13_5 - fm13_5);
-    const double fv13_5 = -fh5 + 0.1091089451179962*fq13_5;
-    const double fu14_5 = 0.1091089451179962*(fp14_5 - fm14_5);
-    const double fv14_5 = -fh5 + 0.1091089451179962*fq14_5;
-    const double fv15_5 = -fh5 + 0.1091089451179962*fq15_5;
-    const double fv16_5 = -fh5 + 0.1091089451179962*fq16_5;
-    const double fv17_5 = -fh5 + 0.1091089451179962*fq17_5;
-    const double fu18_5 = 0.1091089451179962*(fp18_5 - fm18_5);
-    const double fv18_5 = -fh5 + 0.1091089451179962*fq18_5;
-    const double fu19_5 = 0.1091089451179962*(fp19_5 - fm19_5);
-    const double fv19_5 = -fh5 + 0.1091089451179962*fq19_5;
-    const double fu20_5 = 0.1091089451179962*(fp20_5 - fm20_5);
-    const double fv20_5 = -fh5 + 0.1091089451179962*fq20_5;
-    const double fmu6 = atan2(12.0*sin(ft32) + sin(fm0_6) + sin(fm10_6) + sin(fm11_6) + sin(fm15_6) + sin(fm16_6) + sin(fm17_6) + sin(fm1_6) + sin(fm2_6) + sin(fm3_6) + sin(fm4_6) + sin(fm5_6) + sin(fm6_6) + sin(fm7_6) + sin(fm8_6) + sin(fm9_6) + sin(fp0_6) + sin(fp10_6) + sin(fp11_6) + sin(fp15_6) + sin(fp16_6) + sin(fp17_6) + sin(fp1_6) + sin(fp2_6) + sin(fp3_6) + sin(fp4_6) + sin(fp5_6) + sin(fp6_6) + sin(fp7_6) + sin(fp8_6) + sin(fp9_6), 12.0*cos(ft32) + cos(fm0_6) + cos(fm10_6) + cos(fm11_6) + cos(fm15_6) + cos(fm16_6) + cos(fm17_6) + cos(fm1_6) + cos(fm2_6) + cos(fm3_6) + cos(fm4_6) + cos(fm5_6) + cos(fm6_6) + cos(fm7_6) + cos(fm8_6) + cos(fm9_6) + cos(fp0_6) + cos(fp10_6) + cos(fp11_6) + cos(fp15_6) + cos(fp16_6) + cos(fp17_6) + cos(fp1_6) + cos(fp2_6) + cos(fp3_6) + cos(fp4_6) + cos(fp5_6) + cos(fp6_6) + cos(fp7_6) + cos(fp8_6) + cos(fp9_6));
-    ea[0] = nav_ukf_wrap(ft32 - fmu6);
-    ea[1] = nav_ukf_wrap(fp0_6 - fmu6);
-    ea[2] = nav_ukf_wrap(fm0_6 - fmu6);
-    const double fu0_6 = 0.1091089451179962*(ea[1] - ea[2]);
-    const double fv0_6 = 0.1091089451179962*(ea[1] + ea[2]);
-    ea[3] = nav_ukf_wrap(fp1_6 - fmu6);
-    ea[4] = nav_ukf_wrap(fm1_6 - fmu6);
-    const double fu1_6 = 0.1091089451179962*(ea[3] - ea[4]);
-    const double fv1_6 = 0.1091089451179962*(ea[3] + ea[4]);
-    ea[5] = nav_ukf_wrap(fp2_6 - fmu6);
-    ea[6] = nav_ukf_wrap(fm2_6 - fmu6);
-    const double fu2_6 = 0.1091089451179962*(ea[5] - ea[6]);
-    const double fv2_6 = 0.1091089451179962*(ea[5] + ea[6]);
-    ea[7] = nav_ukf_wrap(fp3_6 - fmu6);
-    ea[8] = nav_ukf_wrap(fm3_6 - fmu6);
-    const double fu3_6 = 0.1091089451179962*(ea[7] - ea[8]);
-    const double fv3_6 = 0.1091089451179962*(ea[7] + ea[8]);
-    ea[9] = nav_ukf_wrap(fp4_6 - fmu6);
-    ea[10] = nav_ukf_wrap(fm4_6 - fmu6);
-    const double fu4_6 = 0.1091089451179962*(ea[9] - ea[10]);
-    const double fv4_6 = 0.1091089451179962*(ea[10] + ea[9]);
-    ea[11] = nav_ukf_wrap(fp5_6 - fmu6);
-    ea[12] = nav_ukf_wrap(fm5_6 - fmu6);
-    const double fu5_6 = 0.1091089451179962*(ea[11] - ea[12]);
-    const double fv5_6 = 0.1091089451179962*(ea[11] + ea[12]);
-    ea[13] = nav_ukf_wrap(fp6_6 - fmu6);
-    ea[14] = nav_ukf_wrap(fm6_6 - fmu6);
-    const double fu6_6 = 0.1091089451179962*(ea[13] - ea[14]);
-    const double fv6_6 = 0.1091089451179962*(ea[13] + ea[14]);
-    ea[15] = nav_ukf_wrap(fp7_6 - fmu6);
-    ea[16] = nav_ukf_wrap(fm7_6 - fmu6);
-    const double fu7_6 = 0.1091089451179962*(ea[15] - ea[16]);
-    const double fv7_6 = 0.1091089451179962*(ea[15] + ea[16]);
-    ea[17] = nav_ukf_wrap(fp8_6 - fmu6);
-    ea[18] = nav_ukf_wrap(fm8_6 - fmu6);
-    const double fu8_6 = 0.1091089451179962*(ea[17] - ea[18]);
-    const double fv8_6 = 0.1091089451179962*(ea[17] + ea[18]);
-    ea[19] = nav_ukf_wrap(fp9_6 - fmu6);
-    ea[20] = nav_ukf_wrap(fm9_6 - fmu6);
-    const double fu9_6 = 0.1091089451179962*(ea[19] - ea[20]);
-    const double fv9_6 = 0.1091089451179962*(ea[19] + ea[20]);
-    ea[21] = nav_ukf_wrap(fp10_6 - fmu6);
-    ea[22] = nav_ukf_wrap(fm10_6 - fmu6);
-    const double fu10_6 = 0.1091089451179962*(ea[21] - ea[22]);
-    const double fv10_6 = 0.1091089451179962*(ea[21] + ea[22]);
-    ea[23] = nav_ukf_wrap(fp11_6 - fmu6);
-    ea[24] = nav_ukf_wrap(fm11_6 - fmu6);
-    const double fu11_6 = 0.1091089451179962*(ea[23] - ea[24]);
-    const double fv11_6 = 0.1091089451179962*(ea[23] + ea[24]);
-    ea[25] = nav_ukf_wrap(ft32 - fmu6);
-    const double fv12_6 = 0.2182178902359924*ea[25];
-    ea[26] = nav_ukf_wrap(ft32 - fmu6);
-    const double fv13_6 = 0.2182178902359924*ea[26];
-    ea[27] = nav_ukf_wrap(ft32 - fmu6);
-    const double fv14_6 = 0.2182178902359924*ea[27];
-    ea[28] = nav_ukf_wrap(fp15_6 - fmu6);
-    ea[29] = nav_ukf_wrap(fm15_6 - fmu6);
-    const double fu15_6 = 0.1091089451179962*(ea[28] - ea[29]);
-    const double fv15_6 = 0.1091089451179962*(ea[28] + ea[29]);
-    ea[30] = nav_ukf_wrap(fp16_6 - fmu6);
-    ea[31] = nav_ukf_wrap(fm16_6 - fmu6);
-    const double fu16_6 = 0.1091089451179962*(ea[30] - ea[31]);
-    const double fv16_6 = 0.1091089451179962*(ea[30] + ea[31]);
-    ea[32] = nav_ukf_wrap(fp17_6 - fmu6);
-    ea[33] = nav_ukf_wrap(fm17_6 - fmu6);
-    const double fu17_6 = 0.1091089451179962*(ea[32] - ea[33]);
-    const double fv17_6 = 0.1091089451179962*(ea[32] + ea[33]);
-    ea[34] = nav_ukf_wrap(ft32 - fmu6);
-    const double fv18_6 = 0.2182178902359924*ea[34];
-    ea[35] = nav_ukf_wrap(ft32 - fmu6);
-    const double fv19_6 = 0.2182178902359924*ea[35];
-    ea[36] = nav_ukf_wrap(ft32 - fmu6);
-    const double fv20_6 = 0.2182178902359924*ea[36];
-    const double fmu7 = atan2(14.0*sin(ft35) + sin(fm0_7) + sin(fm10_7) + sin(fm11_7) + sin(fm16_7) + sin(fm17_7) + sin(fm1_7) + sin(fm2_7) + sin(fm3_7) + sin(fm4_7) + sin(fm5_7) + sin(fm6_7) + sin(fm7_7) + sin(fm8_7) + sin(fm9_7) + sin(fp0_7) + sin(fp10_7) + sin(fp11_7) + sin(fp16_7) + sin(fp17_7) + sin(fp1_7) + sin(fp2_7) + sin(fp3_7) + sin(fp4_7) + sin(fp5_7) + sin(fp6_7) + sin(fp7_7) + sin(fp8_7) + sin(fp9_7), 14.0*cos(ft35) + cos(fm0_7) + cos(fm10_7) + cos(fm11_7) + cos(fm16_7) + cos(fm17_7) + cos(fm1_7) + cos(fm2_7) + cos(fm3_7) + cos(fm4_7) + cos(fm5_7) + cos(fm6_7) + cos(fm7_7) + cos(fm8_7) + cos(fm9_7) + cos(fp0_7) + cos(fp10_7) + cos(fp11_7) + cos(fp16_7) + cos(fp17_7) + cos(fp1_7) + cos(fp2_7) + cos(fp3_7) + cos(fp4_7) + cos(fp5_7) + cos(fp6_7) + cos(fp7_7) + cos(fp8_7) + cos(fp9_7));
-    ea[37] = nav_ukf_wrap(ft35 - fmu7);
-    ea[38] = nav_ukf_wrap(fp0_7 - fmu7);
-    ea[39] = nav_ukf_wrap(fm0_7 - fmu7);
-    const double fu0_7 = 0.1091089451179962*(ea[38] - ea[39]);
-    const double fv0_7 = 0.1091089451179962*(ea[38] + ea[39]);
-    ea[40] = nav_ukf_wrap(fp1_7 - fmu7);
-    ea[41] = nav_ukf_wrap(fm1_7 - fmu7);
-    const double fu1_7 = 0.1091089451179962*(ea[40] - ea[41]);
-    const double fv1_7 = 0.1091089451179962*(ea[40] + ea[41]);
-    ea[42] = nav_ukf_wrap(fp2_7 - fmu7);
-    ea[43] = nav_ukf_wrap(fm2_7 - fmu7);
-    const double fu2_7 = 0.1091089451179962*(ea[42] - ea[43]);
-    const double fv2_7 = 0.1091089451179962*(ea[42] + ea[43]);
-    ea[44] = nav_ukf_wrap(fp3_7 - fmu7);
-    ea[45] = nav_ukf_wrap(fm3_7 - fmu7);
-    const double fu3_7 = 0.1091089451179962*(ea[44] - ea[45]);
-    const double fv3_7 = 0.1091089451179962*(ea[44] + ea[45]);
-    ea[46] = nav_ukf_wrap(fp4_7 - fmu7);
-    ea[47] = nav_ukf_wrap(fm4_7 - fmu7);
-    const double fu4_7 = 0.1091089451179962*(ea[46] - ea[47]);
-    const double fv4_7 = 0.1091089451179962*(ea[46] + ea[47]);
-    ea[48] = nav_ukf_wrap(fp5_7 - fmu7);
-    ea[49] = nav_ukf_wrap(fm5_7 - fmu7);
-    const double fu5_7 = 0.1091089451179962*(ea[48] - ea[49]);
-    const double fv5_7 = 0.1091089451179962*(ea[48] + ea[49]);
-    ea[50] = nav_ukf_wrap(fp6_7 - fmu7);
-    ea[51] = nav_ukf_wrap(fm6_7 - fmu7);
-    const double fu6_7 = 0.1091089451179962*(ea[50] - ea[51]);
-    const double fv6_7 = 0.1091089451179962*(ea[50] + ea[51]);
-    ea[52] = nav_ukf_wrap(fp7_7 - fmu7);
-    ea[53] = nav_ukf_wrap(fm7_7 - fmu7);
-    const double fu7_7 = 0.1091089451179962*(ea[52] - ea[53]);
-    const double fv7_7 = 0.1091089451179962*(ea[52] + ea[53]);
-    ea[54] = nav_ukf_wrap(fp8_7 - fmu7);
-    ea[55] = nav_ukf_wrap(fm8_7 - fmu7);
-    const double fu8_7 = 0.1091089451179962*(ea[54] - ea[55]);
-    const double fv8_7 = 0.1091089451179962*(ea[54] + ea[55]);
-    ea[56] = nav_ukf_wrap(fp9_7 - fmu7);
-    ea[57] = nav_ukf_wrap(fm9_7 - fmu7);
-    const double fu9_7 = 0.1091089451179962*(ea[56] - ea[57]);
-    const double fv9_7 = 0.1091089451179962*(ea[56] + ea[57]);
-    ea[58] = nav_ukf_wrap(fp10_7 - fmu7);
-    ea[59] = nav_ukf_wrap(fm10_7 - fmu7);
-    const double fu10_7 = 0.1091089451179962*(ea[58] - ea[59]);
-    const double fv10_7 = 0.1091089451179962*(ea[58] + ea[59]);
-    ea[60] = nav_ukf_wrap(fp11_7 - fmu7);
-    ea[61] = nav_ukf_wrap(fm11_7 - fmu7);
-    const double fu11_7 = 0.1091089451179962*(ea[60] - ea[61]);
-    const double fv11_7 = 0.1091089451179962*(ea[60] + ea[61]);
-    ea[62] = nav_ukf_wrap(ft35 - fmu7);
-    const double fv12_7 = 0.2182178902359924*ea[62];
-    ea[63] = nav_ukf_wrap(ft35 - fmu7);
-    const double fv13_7 = 0.2182178902359924*ea[63];
-    ea[64] = nav_ukf_wrap(ft35 - fmu7);
-    const double fv14_7 = 0.2182178902359924*ea[64];
-    ea[65] = nav_ukf_wrap(ft35 - fmu7);
-    const double fv15_7 = 0.2182178902359924*ea[65];
-    ea[66] = nav_ukf_wrap(fp16_7 - fmu7);
-    ea[67] = nav_ukf_wrap(fm16_7 - fmu7);
-    const double fu16_7 = 0.1091089451179962*(ea[66] - ea[67]);
-    const double fv16_7 = 0.1091089451179962*(ea[66] + ea[67]);
-    ea[68] = nav_ukf_wrap(fp17_7 - fmu7);
-    ea[69] = nav_ukf_wrap(fm17_7 - fmu7);
-    const double fu17_7 = 0.1091089451179962*(ea[68] - ea[69]);
-    const double fv17_7 = 0.1091089451179962*(ea[68] + ea[69]);
-    ea[70] = nav_ukf_wrap(ft35 - fmu7);
-    const double fv18_7 = 0.2182178902359924*ea[70];
-    ea[71] = nav_ukf_wrap(ft35 - fmu7);
-    const double fv19_7 = 0.2182178902359924*ea[71];
-    ea[72] = nav_ukf_wrap(ft35 - fmu7);
-    const double fv20_7 = 0.2182178902359924*ea[72];
-    const double fmu8 = atan2(14.0*sin(ft36) + sin(fm0_8) + sin(fm10_8) + sin(fm11_8) + sin(fm16_8) + sin(fm17_8) + sin(fm1_8) + sin(fm2_8) + sin(fm3_8) + sin(fm4_8) + sin(fm5_8) + sin(fm6_8) + sin(fm7_8) + sin(fm8_8) + sin(fm9_8) + sin(fp0_8) + sin(fp10_8) + sin(fp11_8) + sin(fp16_8) + sin(fp17_8) + sin(fp1_8) + sin(fp2_8) + sin(fp3_8) + sin(fp4_8) + sin(fp5_8) + sin(fp6_8) + sin(fp7_8) + sin(fp8_8) + sin(fp9_8), 14.0*cos(ft36) + cos(fm0_8) + cos(fm10_8) + cos(fm11_8) + cos(fm16_8) + cos(fm17_8) + cos(fm1_8) + cos(fm2_8) + cos(fm3_8) + cos(fm4_8) + cos(fm5_8) + cos(fm6_8) + cos(fm7_8) + cos(fm8_8) + cos(fm9_8) + cos(fp0_8) + cos(fp10_8) + cos(fp11_8) + cos(fp16_8) + cos(fp17_8) + cos(fp1_8) + cos(fp2_8) + cos(fp3_8) + cos(fp4_8) + cos(fp5_8) + cos(fp6_8) + cos(fp7_8) + cos(fp8_8) + cos(fp9_8));
-    ea[73] = nav_ukf_wrap(ft36 - fmu8);
-    ea[74] = nav_ukf_wrap(fp0_8 - fmu8);
-    ea[75] = nav_ukf_wrap(fm0_8 - fmu8);
-    const double fu0_8 = 0.1091089451179962*(ea[74] - ea[75]);
-    const double fv0_8 = 0.1091089451179962*(ea[74] + ea[75]);
-    ea[76] = nav_ukf_wrap(fp1_8 - fmu8);
-    ea[77] = nav_ukf_wrap(fm1_8 - fmu8);
-    const double fu1_8 = 0.1091089451179962*(ea[76] - ea[77]);
-    const double fv1_8 = 0.1091089451179962*(ea[76] + ea[77]);
-    ea[78] = nav_ukf_wrap(fp2_8 - fmu8);
-    ea[79] = nav_ukf_wrap(fm2_8 - fmu8);
-    const double fu2_8 = 0.1091089451179962*(ea[78] - ea[79]);
-    const double fv2_8 = 0.1091089451179962*(ea[78] + ea[79]);
-    ea[80] = nav_ukf_wrap(fp3_8 - fmu8);
-    ea[81] = nav_ukf_wrap(fm3_8 - fmu8);
-    const double fu3_8 = 0.1091089451179962*(ea[80] - ea[81]);
-    const double fv3_8 = 0.1091089451179962*(ea[80] + ea[81]);
-    ea[82] = nav_ukf_wrap(fp4_8 - fmu8);
-    ea[83] = nav_ukf_wrap(fm4_8 - fmu8);
-    const double fu4_8 = 0.1091089451179962*(ea[82] - ea[83]);
-    const double fv4_8 = 0.1091089451179962*(ea[82] + ea[83]);
-    ea[84] = nav_ukf_wrap(fp5_8 - fmu8);
-    ea[85] = nav_ukf_wrap(fm5_8 - fmu8);
-    const double fu5_8 = 0.1091089451179962*(ea[84] - ea[85]);
-    const double fv5_8 = 0.1091089451179962*(ea[84] + ea[85]);
-    ea[86] = nav_ukf_wrap(fp6_8 - fmu8);
-    ea[87] = nav_ukf_wrap(fm6_8 - fmu8);
-    const double fu6_8 = 0.1091089451179962*(ea[86] - ea[87]);
-    const double fv6_8 = 0.1091089451179962*(ea[86] + ea[87]);
-    ea[88] = nav_ukf_wrap(fp7_8 - fmu8);
-    ea[89] = nav_ukf_wrap(fm7_8 - fmu8);
-    const double fu7_8 = 0.1091089451179962*(ea[88] - ea[89]);
-    const double fv7_8 = 0.1091089451179962*(ea[88] + ea[89]);
-    ea[90] = nav_ukf_wrap(fp8_8 - fmu8);
-    ea[91] = nav_ukf_wrap(fm8_8 - fmu8);
-    const double fu8_8 = 0.1091089451179962*(ea[90] - ea[91]);
-    const double fv8_8 = 0.1091089451179962*(ea[90] + ea[91]);
-    ea[92] = nav_ukf_wrap(fp9_8 - fmu8);
-    ea[93] = nav_ukf_wrap(fm9_8 - fmu8);
-    const double fu9_8 = 0.1091089451179962*(ea[92] - ea[93]);
-    const double fv9_8 = 0.1091089451179962*(ea[92] + ea[93]);
-    ea[94] = nav_ukf_wrap(fp10_8 - fmu8);
-    ea[95] = nav_ukf_wrap(fm10_8 - fmu8);
-    const double fu10_8 = 0.1091089451179962*(ea[94] - ea[95]);
-    const double fv10_8 = 0.1091089451179962*(ea[94] + ea[95]);
-    ea[96] = nav_ukf_wrap(fp11_8 - fmu8);
-    ea[97] = nav_ukf_wrap(fm11_8 - fmu8);
-    const double fu11_8 = 0.1091089451179962*(ea[96] - ea[97]);
-    const double fv11_8 = 0.1091089451179962*(ea[96] + ea[97]);
-    ea[98] = nav_ukf_wrap(ft36 - fmu8);
-    const double fv12_8 = 0.2182178902359924*ea[98];
-    ea[99] = nav_ukf_wrap(ft36 - fmu8);
-    const double fv13_8 = 0.2182178902359924*ea[99];
-    ea[100] = nav_ukf_wrap(ft36 - fmu8);
-    const double fv14_8 = 0.2182178902359924*ea[100];
-    ea[101] = nav_ukf_wrap(ft36 - fmu8);
-    const double fv15_8 = 0.2182178902359924*ea[101];
-    ea[102] = nav_ukf_wrap(fp16_8 - fmu8);
-    ea[103] = nav_ukf_wrap(fm16_8 - fmu8);
-    const double fu16_8 = 0.1091089451179962*(ea[102] - ea[103]);
-    const double fv16_8 = 0.1091089451179962*(ea[102] + ea[103]);
-    ea[104] = nav_ukf_wrap(fp17_8 - fmu8);
-    ea[105] = nav_ukf_wrap(fm17_8 - fmu8);
-    const double fu17_8 = 0.1091089451179962*(ea[104] - ea[105]);
-    const double fv17_8 = 0.1091089451179962*(ea[104] + ea[105]);
-    ea[106] = nav_ukf_wrap(ft36 - fmu8);
-    const double fv18_8 = 0.2182178902359924*ea[106];
-    ea[107] = nav_ukf_wrap(ft36 - fmu8);
-    const double fv19_8 = 0.2182178902359924*ea[107];
-    ea[108] = nav_ukf_wrap(ft36 - fmu8);
-    const double fv20_8 = 0.2182178902359924*ea[108];
-    /* predicted state: weighted mean of the sigma points through f */
-    xn[nav_ukf_ix_pn] = fc0;
-    xn[nav_ukf_ix_pe] = fc1;
-    xn[nav_ukf_ix_pd] = fc2;
-    xn[nav_ukf_ix_vn] = fmu3;
-    xn[nav_ukf_ix_ve] = fmu4;
-    xn[nav_ukf_ix_vd] = fmu5;
-    xn[nav_ukf_ix_roll] = nav_ukf_wrap(fmu6);
-    xn[nav_ukf_ix_pitch] = nav_ukf_wrap(fmu7);
-    xn[nav_ukf_ix_yaw] = nav_ukf_wrap(fmu8);
-    xn[nav_ukf_ix_bgx] = x[nav_ukf_ix_bgx];
-    xn[nav_ukf_ix_bgy] = x[nav_ukf_ix_bgy];
-    xn[nav_ukf_ix_bgz] = x[nav_ukf_ix_bgz];
-    xn[nav_ukf_ix_bax] = x[nav_ukf_ix_bax];
-    xn[nav_ukf_ix_bay] = x[nav_ukf_ix_bay];
-    xn[nav_ukf_ix_baz] = x[nav_ukf_ix_baz];
-    /* A P for the rows of f that are linear in x */
-    const double AP0_0 = P[0] + P[3]*dt;
-    const double AP0_1 = P[1] + P[17]*dt;
-    const double AP0_2 = P[2] + P[30]*dt;
-    const double AP0_3 = P[3] + P[42]*dt;
-    const double AP0_4 = P[4] + P[43]*dt;
-    const double AP0_5 = P[5] + P[44]*dt;
-    const double AP0_9 = P[9] + P[48]*dt;
-    const double AP0_10 = P[10] + P[49]*dt;
-    const double AP0_11 = P[11] + P[50]*dt;
-    const double AP0_12 = P[12] + P[51]*dt;
-    const double AP0_13 = P[13] + P[52]*dt;
-    const double AP0_14 = P[14] + P[53]*dt;
-    const double AP1_1 = P[15] + P[18]*dt;
-    const double AP1_2 = P[16] + P[31]*dt;
-    const double AP1_4 = P[18] + P[54]*dt;
-    const double AP1_5 = P[19] + P[55]*dt;
-    const double AP1_9 = P[23] + P[59]*dt;
-    const double AP1_10 = P[24] + P[60]*dt;
-    const double AP1_11 = P[25] + P[61]*dt;
-    const double AP1_12 = P[26] + P[62]*dt;
-    const double AP1_13 = P[27] + P[63]*dt;
-    const double AP1_14 = P[28] + P[64]*dt;
-    const double AP2_2 = P[29] + P[32]*dt;
-    const double AP2_5 = P[32] + P[65]*dt;
-    const double AP2_9 = P[36] + P[69]*dt;
-    const double AP2_10 = P[37] + P[70]*dt;
-    const double AP2_11 = P[38] + P[71]*dt;
-    const double AP2_12 = P[39] + P[72]*dt;
-    const double AP2_13 = P[40] + P[73]*dt;
-    const double AP2_14 = P[41] + P[74]*dt;
-    /* covariance P': weighted covariance of the images + Q, upper triangle, packed */
-    Pn[0] = AP0_0 + ft296 + AP0_3*dt;
-    Pn[1] = AP0_1 + AP0_4*dt;
-    Pn[2] = AP0_2 + AP0_5*dt;
-    Pn[3] = fT0_0*fu0_3 + fT1_0*fu1_3 + fT2_0*fu2_3 + fT3_0*fu3_3;
-    Pn[4] = fT0_0*fu0_4 + fT1_0*fu1_4 + fT2_0*fu2_4 + fT3_0*fu3_4;
-    Pn[5] = fT0_0*fu0_5 + fT1_0*fu1_5 + fT2_0*fu2_5 + fT3_0*fu3_5;
-    Pn[6] = fT0_0*fu0_6 + fT1_0*fu1_6 + fT2_0*fu2_6 + fT3_0*fu3_6;
-    Pn[7] = fT0_0*fu0_7 + fT1_0*fu1_7 + fT2_0*fu2_7 + fT3_0*fu3_7;
-    Pn[8] = fT0_0*fu0_8 + fT1_0*fu1_8 + fT2_0*fu2_8 + fT3_0*fu3_8;
-    Pn[9] = AP0_9;
-    Pn[10] = AP0_10;
-    Pn[11] = AP0_11;
-    Pn[12] = AP0_12;
-    Pn[13] = AP0_13;
-    Pn[14] = AP0_14;
-    Pn[15] = AP1_1 + ft296 + AP1_4*dt;
-    Pn[16] = AP1_2 + AP1_5*dt;
-    Pn[17] = fT0_1*fu0_3 + fT1_1*fu1_3 + fT2_1*fu2_3 + fT3_1*fu3_3 + fT4_1*fu4_3;
-    Pn[18] = fT0_1*fu0_4 + fT1_1*fu1_4 + fT2_1*fu2_4 + fT3_1*fu3_4 + fT4_1*fu4_4;
-    Pn[19] = fT0_1*fu0_5 + fT1_1*fu1_5 + fT2_1*fu2_5 + fT3_1*fu3_5 + fT4_1*fu4_5;
-    Pn[20] = fT0_1*fu0_6 + fT1_1*fu1_6 + fT2_1*fu2_6 + fT3_1*fu3_6 + fT4_1*fu4_6;
-    Pn[21] = fT0_1*fu0_7 + fT1_1*fu1_7 + fT2_1*fu2_7 + fT3_1*fu3_7 + fT4_1*fu4_7;
-    Pn[22] = fT0_1*fu0_8 + fT1_1*fu1_8 + fT2_1*fu2_8 + fT3_1*fu3_8 + fT4_1*fu4_8;
-    Pn[23] = AP1_9;
-    Pn[24] = AP1_10;
-    Pn[25] = AP1_11;
-    Pn[26] = AP1_12;
-    Pn[27] = AP1_13;
-    Pn[28] = AP1_14;
-    Pn[29] = AP2_2 + ft296 + AP2_5*dt;
-    Pn[30] = fT0_2*fu0_3 + fT1_2*fu1_3 + fT2_2*fu2_3 + fT3_2*fu3_3 + fT4_2*fu4_3 + fT5_2*fu5_3;
-    Pn[31] = fT0_2*fu0_4 + fT1_2*fu1_4 + fT2_2*fu2_4 + fT3_2*fu3_4 + fT4_2*fu4_4 + fT5_2*fu5_4;
-    Pn[32] = fT0_2*fu0_5 + fT1_2*fu1_5 + fT2_2*fu2_5 + fT3_2*fu3_5 + fT4_2*fu4_5 + fT5_2*fu5_5;
-    Pn[33] = fT0_2*fu0_6 + fT1_2*fu1_6 + fT2_2*fu2_6 + fT3_2*fu3_6 + fT4_2*fu4_6 + fT5_2*fu5_6;
-    Pn[34] = fT0_2*fu0_7 + fT1_2*fu1_7 + fT2_2*fu2_7 + fT3_2*fu3_7 + fT4_2*fu4_7 + fT5_2*fu5_7;
-    Pn[35] = fT0_2*fu0_8 + fT1_2*fu1_8 + fT2_2*fu2_8 + fT3_2*fu3_8 + fT4_2*fu4_8 + fT5_2*fu5_8;
-    Pn[36] = AP2_9;
-    Pn[37] = AP2_10;
-    Pn[38] = AP2_11;
-    Pn[39] = AP2_12;
-    Pn[40] = AP2_13;
-    Pn[41] = AP2_14;
-    Pn[42] = (fu0_3*fu0_3) + (fu10_3*fu10_3) + (fu11_3*fu11_3) + (fu12_3*fu12_3) + (fu13_3*fu13_3) + (fu14_3*fu14_3) + (fu18_3*fu18_3) + (fu19_3*fu19_3) + (fu1_3*fu1_3) + (fu20_3*fu20_3) + (fu2_3*fu2_3) + (fu3_3*fu3_3) + (fu4_3*fu4_3) + (fu5_3*fu5_3) + (fu6_3*fu6_3) + (fu7_3*fu7_3) + (fu8_3*fu8_3) + (fu9_3*fu9_3) + (fv0_3*fv0_3) + (fv10_3*fv10_3) + (fv11_3*fv11_3) + (fv12_3*fv12_3) + (fv13_3*fv13_3) + (fv14_3*fv14_3) + (fv15_3*fv15_3) + (fv16_3*fv16_3) + (fv17_3*fv17_3) + (fv18_3*fv18_3) + (fv19_3*fv19_3) + (fv1_3*fv1_3) + (fv20_3*fv20_3) + (fv2_3*fv2_3) + (fv3_3*fv3_3) + (fv4_3*fv4_3) + (fv5_3*fv5_3) + (fv6_3*fv6_3) + (fv7_3*fv7_3) + (fv8_3*fv8_3) + (fv9_3*fv9_3) + 2.0*(fe3*fe3);
-    Pn[43] = fu0_3*fu0_4 + fu10_3*fu10_4 + fu11_3*fu11_4 + fu12_3*fu12_4 + fu13_3*fu13_4 + fu14_3*fu14_4 + fu18_3*fu18_4 + fu19_3*fu19_4 + fu1_3*fu1_4 + fu20_3*fu20_4 + fu2_3*fu2_4 + fu3_3*fu3_4 + fu4_3*fu4_4 + fu5_3*fu5_4 + fu6_3*fu6_4 + fu7_3*fu7_4 + fu8_3*fu8_4 + fu9_3*fu9_4 + fv0_3*fv0_4 + fv10_3*fv10_4 + fv11_3*fv11_4 + fv12_3*fv12_4 + fv13_3*fv13_4 + fv14_3*fv14_4 + fv15_3*fv15_4 + fv16_3*fv16_4 + fv17_3*fv17_4 + fv18_3*fv18_4 + fv19_3*fv19_4 + fv1_3*fv1_4 + fv20_3*fv20_4 + fv2_3*fv2_4 + fv3_3*fv3_4 + fv4_3*fv4_4 + fv5_3*fv5_4 + fv6_3*fv6_4 + fv7_3*fv7_4 + fv8_3*fv8_4 + fv9_3*fv9_4 + 2.0*fe3*fe4;
-    Pn[44] = fu0_3*fu0_5 + fu10_3*fu10_5 + fu11_3*fu11_5 + fu12_3*fu12_5 + fu13_3*fu13_5 + fu14_3*fu14_5 + fu18_3*fu18_5 + fu19_3*fu19_5 + fu1_3*fu1_5 + fu20_3*fu20_5 + fu2_3*fu2_5 + fu3_3*fu3_5 + fu4_3*fu4_5 + fu5_3*fu5_5 + fu6_3*fu6_5 + fu7_3*fu7_5 + fu8_3*fu8_5 + fu9_3*fu9_5 + fv0_3*fv0_5 + fv10_3*fv10_5 + fv11_3*fv11_5 + fv12_3*fv12_5 + fv13_3*fv13_5 + fv14_3*fv14_5 + fv15_3*fv15_5 + fv16_3*fv16_5 + fv17_3*fv17_5 + fv18_3*fv18_5 + fv19_3*fv19_5 + fv1_3*fv1_5 + fv20_3*fv20_5 + fv2_3*fv2_5 + fv3_3*fv3_5 + fv4_3*fv4_5 + fv5_3*fv5_5 + fv6_3*fv6_5 + fv7_3*fv7_5 + fv8_3*fv8_5 + fv9_3*fv9_5 + 2.0*fe3*fe5;
-    Pn[45] = fu0_3*fu0_6 + fu10_3*fu10_6 + fu11_3*fu11_6 + fu1_3*fu1_6 + fu2_3*fu2_6 + fu3_3*fu3_6 + fu4_3*fu4_6 + fu5_3*fu5_6 + fu6_3*fu6_6 + fu7_3*fu7_6 + fu8_3*fu8_6 + fu9_3*fu9_6 + fv0_3*fv0_6 + fv10_3*fv10_6 + fv11_3*fv11_6 + fv12_3*fv12_6 + fv13_3*fv13_6 + fv14_3*fv14_6 + fv15_3*fv15_6 + fv16_3*fv16_6 + fv17_3*fv17_6 + fv18_3*fv18_6 + fv19_3*fv19_6 + fv1_3*fv1_6 + fv20_3*fv20_6 + fv2_3*fv2_6 + fv3_3*fv3_6 + fv4_3*fv4_6 + fv5_3*fv5_6 + fv6_3*fv6_6 + fv7_3*fv7_6 + fv8_3*fv8_6 + fv9_3*fv9_6 + 2.0*ea[0]*fe3;
-    Pn[46] = fu0_3*fu0_7 + fu10_3*fu10_7 + fu11_3*fu11_7 + fu1_3*fu1_7 + fu2_3*fu2_7 + fu3_3*fu3_7 + fu4_3*fu4_7 + fu5_3*fu5_7 + fu6_3*fu6_7 + fu7_3*fu7_7 + fu8_3*fu8_7 + fu9_3*fu9_7 + fv0_3*fv0_7 + fv10_3*fv10_7 + fv11_3*fv11_7 + fv12_3*fv12_7 + fv13_3*fv13_7 + fv14_3*fv14_7 + fv15_3*fv15_7 + fv16_3*fv16_7 + fv17_3*fv17_7 + fv18_3*fv18_7 + fv19_3*fv19_7 + fv1_3*fv1_7 + fv20_3*fv20_7 + fv2_3*fv2_7 + fv3_3*fv3_7 + fv4_3*fv4_7 + fv5_3*fv5_7 + fv6_3*fv6_7 + fv7_3*fv7_7 + fv8_3*fv8_7 + fv9_3*fv9_7 + 2.0*ea[37]*fe3;
-    Pn[47] = fu0_3*fu0_8 + fu10_3*fu10_8 + fu11_3*fu11_8 + fu1_3*fu1_8 + fu2_3*fu2_8 + fu3_3*fu3_8 + fu4_3*fu4_8 + fu5_3*fu5_8 + fu6_3*fu6_8 + fu7_3*fu7_8 + fu8_3*fu8_8 + fu9_3*fu9_8 + fv0_3*fv0_8 + fv10_3*fv10_8 + fv11_3*fv11_8 + fv12_3*fv12_8 + fv13_3*fv13_8 + fv14_3*fv14_8 + fv15_3*fv15_8 + fv16_3*fv16_8 + fv17_3*fv17_8 + fv18_3*fv18_8 + fv19_3*fv19_8 + fv1_3*fv1_8 + fv20_3*fv20_8 + fv2_3*fv2_8 + fv3_3*fv3_8 + fv4_3*fv4_8 + fv5_3*fv5_8 + fv6_3*fv6_8 + fv7_3*fv7_8 + fv8_3*fv8_8 + fv9_3*fv9_8 + 2.0*ea[73]*fe3;
-    Pn[48] = Lf[23]*fu1_3 + Lf[36]*fu2_3 + Lf[48]*fu3_3 + Lf[59]*fu4_3 + Lf[69]*fu5_3 + Lf[78]*fu6_3 + Lf[86]*fu7_3 + Lf[93]*fu8_3 + Lf[99]*fu9_3 + Lf[9]*fu0_3;
-    Pn[49] = Lf[100]*fu9_3 + Lf[105]*fu10_3 + Lf[10]*fu0_3 + Lf[24]*fu1_3 + Lf[37]*fu2_3 + Lf[49]*fu3_3 + Lf[60]*fu4_3 + Lf[70]*fu5_3 + Lf[79]*fu6_3 + Lf[87]*fu7_3 + Lf[94]*fu8_3;
-    Pn[50] = Lf[101]*fu9_3 + Lf[106]*fu10_3 + Lf[110]*fu11_3 + Lf[11]*fu0_3 + Lf[25]*fu1_3 + Lf[38]*fu2_3 + Lf[50]*fu3_3 + Lf[61]*fu4_3 + Lf[71]*fu5_3 + Lf[80]*fu6_3 + Lf[88]*fu7_3 + Lf[95]*fu8_3;
-    Pn[51] = Lf[102]*fu9_3 + Lf[107]*fu10_3 + Lf[111]*fu11_3 + Lf[114]*fu12_3 + Lf[12]*fu0_3 + Lf[26]*fu1_3 + Lf[39]*fu2_3 + Lf[51]*fu3_3 + Lf[62]*fu4_3 + Lf[72]*fu5_3 + Lf[81]*fu6_3 + Lf[89]*fu7_3 + Lf[96]*fu8_3;
-    Pn[52] = Lf[103]*fu9_3 + Lf[108]*fu10_3 + Lf[112]*fu11_3 + Lf[115]*fu12_3 + Lf[117]*fu13_3 + Lf[13]*fu0_3 + Lf[27]*fu1_3 + Lf[40]*fu2_3 + Lf[52]*fu3_3 + Lf[63]*fu4_3 + Lf[73]*fu5_3 + Lf[82]*fu6_3 + Lf[90]*fu7_3 + Lf[97]*fu8_3;
-    Pn[53] = Lf[104]*fu9_3 + Lf[109]*fu10_3 + Lf[113]*fu11_3 + Lf[116]*fu12_3 + Lf[118]*fu13_3 + Lf[119]*fu14_3 + Lf[14]*fu0_3 + Lf[28]*fu1_3 + Lf[41]*fu2_3 + Lf[53]*fu3_3 + Lf[64]*fu4_3 + Lf[74]*fu5_3 + Lf[83]*fu6_3 + Lf[91]*fu7_3 + Lf[98]*fu8_3;
-    Pn[54] = (fu0_4*fu0_4) + (fu10_4*fu10_4) + (fu11_4*fu11_4) + (fu12_4*fu12_4) + (fu13_4*fu13_4) + (fu14_4*fu14_4) + (fu18_4*fu18_4) + (fu19_4*fu19_4) + (fu1_4*fu1_4) + (fu20_4*fu20_4) + (fu2_4*fu2_4) + (fu3_4*fu3_4) + (fu4_4*fu4_4) + (fu5_4*fu5_4) + (fu6_4*fu6_4) + (fu7_4*fu7_4) + (fu8_4*fu8_4) + (fu9_4*fu9_4) + (fv0_4*fv0_4) + (fv10_4*fv10_4) + (fv11_4*fv11_4) + (fv12_4*fv12_4) + (fv13_4*fv13_4) + (fv14_4*fv14_4) + (fv15_4*fv15_4) + (fv16_4*fv16_4) + (fv17_4*fv17_4) + (fv18_4*fv18_4) + (fv19_4*fv19_4) + (fv1_4*fv1_4) + (fv20_4*fv20_4) + (fv2_4*fv2_4) + (fv3_4*fv3_4) + (fv4_4*fv4_4) + (fv5_4*fv5_4) + (fv6_4*fv6_4) + (fv7_4*fv7_4) + (fv8_4*fv8_4) + (fv9_4*fv9_4) + 2.0*(fe4*fe4);
-    Pn[55] = fu0_4*fu0_5 + fu10_4*fu10_5 + fu11_4*fu11_5 + fu12_4*fu12_5 + fu13_4*fu13_5 + fu14_4*fu14_5 + fu18_4*fu18_5 + fu19_4*fu19_5 + fu1_4*fu1_5 + fu20_4*fu20_5 + fu2_4*fu2_5 + fu3_4*fu3_5 + fu4_4*fu4_5 + fu5_4*fu5_5 + fu6_4*fu6_5 + fu7_4*fu7_5 + fu8_4*fu8_5 + fu9_4*fu9_5 + fv0_4*fv0_5 + fv10_4*fv10_5 + fv11_4*fv11_5 + fv12_4*fv12_5 + fv13_4*fv13_5 + fv14_4*fv14_5 + fv15_4*fv15_5 + fv16_4*fv16_5 + fv17_4*fv17_5 + fv18_4*fv18_5 + fv19_4*fv19_5 + fv1_4*fv1_5 + fv20_4*fv20_5 + fv2_4*fv2_5 + fv3_4*fv3_5 + fv4_4*fv4_5 + fv5_4*fv5_5 + fv6_4*fv6_5 + fv7_4*fv7_5 + fv8_4*fv8_5 + fv9_4*fv9_5 + 2.0*fe4*fe5;
-    Pn[56] = fu0_4*fu0_6 + fu10_4*fu10_6 + fu11_4*fu11_6 + fu1_4*fu1_6 + fu2_4*fu2_6 + fu3_4*fu3_6 + fu4_4*fu4_6 + fu5_4*fu5_6 + fu6_4*fu6_6 + fu7_4*fu7_6 + fu8_4*fu8_6 + fu9_4*fu9_6 + fv0_4*fv0_6 + fv10_4*fv10_6 + fv11_4*fv11_6 + fv12_4*fv12_6 + fv13_4*fv13_6 + fv14_4*fv14_6 + fv15_4*fv15_6 + fv16_4*fv16_6 + fv17_4*fv17_6 + fv18_4*fv18_6 + fv19_4*fv19_6 + fv1_4*fv1_6 + fv20_4*fv20_6 + fv2_4*fv2_6 + fv3_4*fv3_6 + fv4_4*fv4_6 + fv5_4*fv5_6 + fv6_4*fv6_6 + fv7_4*fv7_6 + fv8_4*fv8_6 + fv9_4*fv9_6 + 2.0*ea[0]*fe4;
-    Pn[57] = fu0_4*fu0_7 + fu10_4*fu10_7 + fu11_4*fu11_7 + fu1_4*fu1_7 + fu2_4*fu2_7 + fu3_4*fu3_7 + fu4_4*fu4_7 + fu5_4*fu5_7 + fu6_4*fu6_7 + fu7_4*fu7_7 + fu8_4*fu8_7 + fu9_4*fu9_7 + fv0_4*fv0_7 + fv10_4*fv10_7 + fv11_4*fv11_7 + fv12_4*fv12_7 + fv13_4*fv13_7 + fv14_4*fv14_7 + fv15_4*fv15_7 + fv16_4*fv16_7 + fv17_4*fv17_7 + fv18_4*fv18_7 + fv19_4*fv19_7 + fv1_4*fv1_7 + fv20_4*fv20_7 + fv2_4*fv2_7 + fv3_4*fv3_7 + fv4_4*fv4_7 + fv5_4*fv5_7 + fv6_4*fv6_7 + fv7_4*fv7_7 + fv8_4*fv8_7 + fv9_4*fv9_7 + 2.0*ea[37]*fe4;
-    Pn[58] = fu0_4*fu0_8 + fu10_4*fu10_8 + fu11_4*fu11_8 + fu1_4*fu1_8 + fu2_4*fu2_8 + fu3_4*fu3_8 + fu4_4*fu4_8 + fu5_4*fu5_8 + fu6_4*fu6_8 + fu7_4*fu7_8 + fu8_4*fu8_8 + fu9_4*fu9_8 + fv0_4*fv0_8 + fv10_4*fv10_8 + fv11_4*fv11_8 + fv12_4*fv12_8 + fv13_4*fv13_8 + fv14_4*fv14_8 + fv15_4*fv15_8 + fv16_4*fv16_8 + fv17_4*fv17_8 + fv18_4*fv18_8 + fv19_4*fv19_8 + fv1_4*fv1_8 + fv20_4*fv20_8 + fv2_4*fv2_8 + fv3_4*fv3_8 + fv4_4*fv4_8 + fv5_4*fv5_8 + fv6_4*fv6_8 + fv7_4*fv7_8 + fv8_4*fv8_8 + fv9_4*fv9_8 + 2.0*ea[73]*fe4;
-    Pn[59] = Lf[23]*fu1_4 + Lf[36]*fu2_4 + Lf[48]*fu3_4 + Lf[59]*fu4_4 + Lf[69]*fu5_4 + Lf[78]*fu6_4 + Lf[86]*fu7_4 + Lf[93]*fu8_4 + Lf[99]*fu9_4 + Lf[9]*fu0_4;
-    Pn[60] = Lf[100]*fu9_4 + Lf[105]*fu10_4 + Lf[10]*fu0_4 + Lf[24]*fu1_4 + Lf[37]*fu2_4 + Lf[49]*fu3_4 + Lf[60]*fu4_4 + Lf[70]*fu5_4 + Lf[79]*fu6_4 + Lf[87]*fu7_4 + Lf[94]*fu8_4;
-    Pn[61] = Lf[101]*fu9_4 + Lf[106]*fu10_4 + Lf[110]*fu11_4 + Lf[11]*fu0_4 + Lf[25]*fu1_4 + Lf[38]*fu2_4 + Lf[50]*fu3_4 + Lf[61]*fu4_4 + Lf[71]*fu5_4 + Lf[80]*fu6_4 + Lf[88]*fu7_4 + Lf[95]*fu8_4;
-    Pn[62] = Lf[102]*fu9_4 + Lf[107]*fu10_4 + Lf[111]*fu11_4 + Lf[114]*fu12_4 + Lf[12]*fu0_4 + Lf[26]*fu1_4 + Lf[39]*fu2_4 + Lf[51]*fu3_4 + Lf[62]*fu4_4 + Lf[72]*fu5_4 + Lf[81]*fu6_4 + Lf[89]*fu7_4 + Lf[96]*fu8_4;
-    Pn[63] = Lf[103]*fu9_4 + Lf[108]*fu10_4 + Lf[112]*fu11_4 + Lf[115]*fu12_4 + Lf[117]*fu13_4 + Lf[13]*fu0_4 + Lf[27]*fu1_4 + Lf[40]*fu2_4 + Lf[52]*fu3_4 + Lf[63]*fu4_4 + Lf[73]*fu5_4 + Lf[82]*fu6_4 + Lf[90]*fu7_4 + Lf[97]*fu8_4;
-    Pn[64] = Lf[104]*fu9_4 + Lf[109]*fu10_4 + Lf[113]*fu11_4 + Lf[116]*fu12_4 + Lf[118]*fu13_4 + Lf[119]*fu14_4 + Lf[14]*fu0_4 + Lf[28]*fu1_4 + Lf[41]*fu2_4 + Lf[53]*fu3_4 + Lf[64]*fu4_4 + Lf[74]*fu5_4 + Lf[83]*fu6_4 + Lf[91]*fu7_4 + Lf[98]*fu8_4;
-    Pn[65] = (fu0_5*fu0_5) + (fu10_5*fu10_5) + (fu11_5*fu11_5) + (fu12_5*fu12_5) + (fu13_5*fu13_5) + (fu14_5*fu14_5) + (fu18_5*fu18_5) + (fu19_5*fu19_5) + (fu1_5*fu1_5) + (fu20_5*fu20_5) + (fu2_5*fu2_5) + (fu3_5*fu3_5) + (fu4_5*fu4_5) + (fu5_5*fu5_5) + (fu6_5*fu6_5) + (fu7_5*fu7_5) + (fu8_5*fu8_5) + (fu9_5*fu9_5) + (fv0_5*fv0_5) + (fv10_5*fv10_5) + (fv11_5*fv11_5) + (fv12_5*fv12_5) + (fv13_5*fv13_5) + (fv14_5*fv14_5) + (fv15_5*fv15_5) + (fv16_5*fv16_5) + (fv17_5*fv17_5) + (fv18_5*fv18_5) + (fv19_5*fv19_5) + (fv1_5*fv1_5) + (fv20_5*fv20_5) + (fv2_5*fv2_5) + (fv3_5*fv3_5) + (fv4_5*fv4_5) + (fv5_5*fv5_5) + (fv6_5*fv6_5) + (fv7_5*fv7_5) + (fv8_5*fv8_5) + (fv9_5*fv9_5) + 2.0*(fe5*fe5);
-    Pn[66] = fu0_5*fu0_6 + fu10_5*fu10_6 + fu11_5*fu11_6 + fu1_5*fu1_6 + fu2_5*fu2_6 + fu3_5*fu3_6 + fu4_5*fu4_6 + fu5_5*fu5_6 + fu6_5*fu6_6 + fu7_5*fu7_6 + fu8_5*fu8_6 + fu9_5*fu9_6 + fv0_5*fv0_6 + fv10_5*fv10_6 + fv11_5*fv11_6 + fv12_5*fv12_6 + fv13_5*fv13_6 + fv14_5*fv14_6 + fv15_5*fv15_6 + fv16_5*fv16_6 + fv17_5*fv17_6 + fv18_5*fv18_6 + fv19_5*fv19_6 + fv1_5*fv1_6 + fv20_5*fv20_6 + fv2_5*fv2_6 + fv3_5*fv3_6 + fv4_5*fv4_6 + fv5_5*fv5_6 + fv6_5*fv6_6 + fv7_5*fv7_6 + fv8_5*fv8_6 + fv9_5*fv9_6 + 2.0*ea[0]*fe5;
-    Pn[67] = fu0_5*fu0_7 + fu10_5*fu10_7 + fu11_5*fu11_7 + fu1_5*fu1_7 + fu2_5*fu2_7 + fu3_5*fu3_7 + fu4_5*fu4_7 + fu5_5*fu5_7 + fu6_5*fu6_7 + fu7_5*fu7_7 + fu8_5*fu8_7 + fu9_5*fu9_7 + fv0_5*fv0_7 + fv10_5*fv10_7 + fv11_5*fv11_7 + fv12_5*fv12_7 + fv13_5*fv13_7 + fv14_5*fv14_7 + fv15_5*fv15_7 + fv16_5*fv16_7 + fv17_5*fv17_7 + fv18_5*fv18_7 + fv19_5*fv19_7 + fv1_5*fv1_7 + fv20_5*fv20_7 + fv2_5*fv2_7 + fv3_5*fv3_7 + fv4_5*fv4_7 + fv5_5*fv5_7 + fv6_5*fv6_7 + fv7_5*fv7_7 + fv8_5*fv8_7 + fv9_5*fv9_7 + 2.0*ea[37]*fe5;
-    Pn[68] = fu0_5*fu0_8 + fu10_5*fu10_8 + fu11_5*fu11_8 + fu1_5*fu1_8 + fu2_5*fu2_8 + fu3_5*fu3_8 + fu4_5*fu4_8 + fu5_5*fu5_8 + fu6_5*fu6_8 + fu7_5*fu7_8 + fu8_5*fu8_8 + fu9_5*fu9_8 + fv0_5*fv0_8 + fv10_5*fv10_8 + fv11_5*fv11_8 + fv12_5*fv12_8 + fv13_5*fv13_8 + fv14_5*fv14_8 + fv15_5*fv15_8 + fv16_5*fv16_8 + fv17_5*fv17_8 + fv18_5*fv18_8 + fv19_5*fv19_8 + fv1_5*fv1_8 + fv20_5*fv20_8 + fv2_5*fv2_8 + fv3_5*fv3_8 + fv4_5*fv4_8 + fv5_5*fv5_8 + fv6_5*fv6_8 + fv7_5*fv7_8 + fv8_5*fv8_8 + fv9_5*fv9_8 + 2.0*ea[73]*fe5;
-    Pn[69] = Lf[23]*fu1_5 + Lf[36]*fu2_5 + Lf[48]*fu3_5 + Lf[59]*fu4_5 + Lf[69]*fu5_5 + Lf[78]*fu6_5 + Lf[86]*fu7_5 + Lf[93]*fu8_5 + Lf[99]*fu9_5 + Lf[9]*fu0_5;
-    Pn[70] = Lf[100]*fu9_5 + Lf[105]*fu10_5 + Lf[10]*fu0_5 + Lf[24]*fu1_5 + Lf[37]*fu2_5 + Lf[49]*fu3_5 + Lf[60]*fu4_5 + Lf[70]*fu5_5 + Lf[79]*fu6_5 + Lf[87]*fu7_5 + Lf[94]*fu8_5;
-    Pn[71] = Lf[101]*fu9_5 + Lf[106]*fu10_5 + Lf[110]*fu11_5 + Lf[11]*fu0_5 + Lf[25]*fu1_5 + Lf[38]*fu2_5 + Lf[50]*fu3_5 + Lf[61]*fu4_5 + Lf[71]*fu5_5 + Lf[80]*fu6_5 + Lf[88]*fu7_5 + Lf[95]*fu8_5;
-    Pn[72] = Lf[102]*fu9_5 + Lf[107]*fu10_5 + Lf[111]*fu11_5 + Lf[114]*fu12_5 + Lf[12]*fu0_5 + Lf[26]*fu1_5 + Lf[39]*fu2_5 + Lf[51]*fu3_5 + Lf[62]*fu4_5 + Lf[72]*fu5_5 + Lf[81]*fu6_5 + Lf[89]*fu7_5 + Lf[96]*fu8_5;
-    Pn[73] = Lf[103]*fu9_5 + Lf[108]*fu10_5 + Lf[112]*fu11_5 + Lf[115]*fu12_5 + Lf[117]*fu13_5 + Lf[13]*fu0_5 + Lf[27]*fu1_5 + Lf[40]*fu2_5 + Lf[52]*fu3_5 + Lf[63]*fu4_5 + Lf[73]*fu5_5 + Lf[82]*fu6_5 + Lf[90]*fu7_5 + Lf[97]*fu8_5;
-    Pn[74] = Lf[104]*fu9_5 + Lf[109]*fu10_5 + Lf[113]*fu11_5 + Lf[116]*fu12_5 + Lf[118]*fu13_5 + Lf[119]*fu14_5 + Lf[14]*fu0_5 + Lf[28]*fu1_5 + Lf[41]*fu2_5 + Lf[53]*fu3_5 + Lf[64]*fu4_5 + Lf[74]*fu5_5 + Lf[83]*fu6_5 + Lf[91]*fu7_5 + Lf[98]*fu8_5;
-    Pn[75] = (fu0_6*fu0_6) + (fu10_6*fu10_6) + (fu11_6*fu11_6) + (fu15_6*fu15_6) + (fu16_6*fu16_6) + (fu17_6*fu17_6) + (fu1_6*fu1_6) + (fu2_6*fu2_6) + (fu3_6*fu3_6) + (fu4_6*fu4_6) + (fu5_6*fu5_6) + (fu6_6*fu6_6) + (fu7_6*fu7_6) + (fu8_6*fu8_6) + (fu9_6*fu9_6) + (fv0_6*fv0_6) + (fv10_6*fv10_6) + (fv11_6*fv11_6) + (fv12_6*fv12_6) + (fv13_6*fv13_6) + (fv14_6*fv14_6) + (fv15_6*fv15_6) + (fv16_6*fv16_6) + (fv17_6*fv17_6) + (fv18_6*fv18_6) + (fv19_6*fv19_6) + (fv1_6*fv1_6) + (fv20_6*fv20_6) + (fv2_6*fv2_6) + (fv3_6*fv3_6) + (fv4_6*fv4_6) + (fv5_6*fv5_6) + (fv6_6*fv6_6) + (fv7_6*fv7_6) + (fv8_6*fv8_6) + (fv9_6*fv9_6) + 2.0*(ea[0]*ea[0]);
-    Pn[76] = fu0_6*fu0_7 + fu10_6*fu10_7 + fu11_6*fu11_7 + fu16_6*fu16_7 + fu17_6*fu17_7 + fu1_6*fu1_7 + fu2_6*fu2_7 + fu3_6*fu3_7 + fu4_6*fu4_7 + fu5_6*fu5_7 + fu6_6*fu6_7 + fu7_6*fu7_7 + fu8_6*fu8_7 + fu9_6*fu9_7 + fv0_6*fv0_7 + fv10_6*fv10_7 + fv11_6*fv11_7 + fv12_6*fv12_7 + fv13_6*fv13_7 + fv14_6*fv14_7 + fv15_6*fv15_7 + fv16_6*fv16_7 + fv17_6*fv17_7 + fv18_6*fv18_7 + fv19_6*fv19_7 + fv1_6*fv1_7 + fv20_6*fv20_7 + fv2_6*fv2_7 + fv3_6*fv3_7 + fv4_6*fv4_7 + fv5_6*fv5_7 + fv6_6*fv6_7 + fv7_6*fv7_7 + fv8_6*fv8_7 + fv9_6*fv9_7 + 2.0*ea[0]*ea[37];
-    Pn[77] = fu0_6*fu0_8 + fu10_6*fu10_8 + fu11_6*fu11_8 + fu16_6*fu16_8 + fu17_6*fu17_8 + fu1_6*fu1_8 + fu2_6*fu2_8 + fu3_6*fu3_8 + fu4_6*fu4_8 + fu5_6*fu5_8 + fu6_6*fu6_8 + fu7_6*fu7_8 + fu8_6*fu8_8 + fu9_6*fu9_8 + fv0_6*fv0_8 + fv10_6*fv10_8 + fv11_6*fv11_8 + fv12_6*fv12_8 + fv13_6*fv13_8 + fv14_6*fv14_8 + fv15_6*fv15_8 + fv16_6*fv16_8 + fv17_6*fv17_8 + fv18_6*fv18_8 + fv19_6*fv19_8 + fv1_6*fv1_8 + fv20_6*fv20_8 + fv2_6*fv2_8 + fv3_6*fv3_8 + fv4_6*fv4_8 + fv5_6*fv5_8 + fv6_6*fv6_8 + fv7_6*fv7_8 + fv8_6*fv8_8 + fv9_6*fv9_8 + 2.0*ea[0]*ea[73];
-    Pn[78] = Lf[23]*fu1_6 + Lf[36]*fu2_6 + Lf[48]*fu3_6 + Lf[59]*fu4_6 + Lf[69]*fu5_6 + Lf[78]*fu6_6 + Lf[86]*fu7_6 + Lf[93]*fu8_6 + Lf[99]*fu9_6 + Lf[9]*fu0_6;
-    Pn[79] = Lf[100]*fu9_6 + Lf[105]*fu10_6 + Lf[10]*fu0_6 + Lf[24]*fu1_6 + Lf[37]*fu2_6 + Lf[49]*fu3_6 + Lf[60]*fu4_6 + Lf[70]*fu5_6 + Lf[79]*fu6_6 + Lf[87]*fu7_6 + Lf[94]*fu8_6;
-    Pn[80] = Lf[101]*fu9_6 + Lf[106]*fu10_6 + Lf[110]*fu11_6 + Lf[11]*fu0_6 + Lf[25]*fu1_6 + Lf[38]*fu2_6 + Lf[50]*fu3_6 + Lf[61]*fu4_6 + Lf[71]*fu5_6 + Lf[80]*fu6_6 + Lf[88]*fu7_6 + Lf[95]*fu8_6;
-    Pn[81] = Lf[102]*fu9_6 + Lf[107]*fu10_6 + Lf[111]*fu11_6 + Lf[12]*fu0_6 + Lf[26]*fu1_6 + Lf[39]*fu2_6 + Lf[51]*fu3_6 + Lf[62]*fu4_6 + Lf[72]*fu5_6 + Lf[81]*fu6_6 + Lf[89]*fu7_6 + Lf[96]*fu8_6;
-    Pn[82] = Lf[103]*fu9_6 + Lf[108]*fu10_6 + Lf[112]*fu11_6 + Lf[13]*fu0_6 + Lf[27]*fu1_6 + Lf[40]*fu2_6 + Lf[52]*fu3_6 + Lf[63]*fu4_6 + Lf[73]*fu5_6 + Lf[82]*fu6_6 + Lf[90]*fu7_6 + Lf[97]*fu8_6;
-    Pn[83] = Lf[104]*fu9_6 + Lf[109]*fu10_6 + Lf[113]*fu11_6 + Lf[14]*fu0_6 + Lf[28]*fu1_6 + Lf[41]*fu2_6 + Lf[53]*fu3_6 + Lf[64]*fu4_6 + Lf[74]*fu5_6 + Lf[83]*fu6_6 + Lf[91]*fu7_6 + Lf[98]*fu8_6;
-    Pn[84] = (fu0_7*fu0_7) + (fu10_7*fu10_7) + (fu11_7*fu11_7) + (fu16_7*fu16_7) + (fu17_7*fu17_7) + (fu1_7*fu1_7) + (fu2_7*fu2_7) + (fu3_7*fu3_7) + (fu4_7*fu4_7) + (fu5_7*fu5_7) + (fu6_7*fu6_7) + (fu7_7*fu7_7) + (fu8_7*fu8_7) + (fu9_7*fu9_7) + (fv0_7*fv0_7) + (fv10_7*fv10_7) + (fv11_7*fv11_7) + (fv12_7*fv12_7) + (fv13_7*fv13_7) + (fv14_7*fv14_7) + (fv15_7*fv15_7) + (fv16_7*fv16_7) + (fv17_7*fv17_7) + (fv18_7*fv18_7) + (fv19_7*fv19_7) + (fv1_7*fv1_7) + (fv20_7*fv20_7) + (fv2_7*fv2_7) + (fv3_7*fv3_7) + (fv4_7*fv4_7) + (fv5_7*fv5_7) + (fv6_7*fv6_7) + (fv7_7*fv7_7) + (fv8_7*fv8_7) + (fv9_7*fv9_7) + 2.0*(ea[37]*ea[37]);
-    Pn[85] = fu0_7*fu0_8 + fu10_7*fu10_8 + fu11_7*fu11_8 + fu16_7*fu16_8 + fu17_7*fu17_8 + fu1_7*fu1_8 + fu2_7*fu2_8 + fu3_7*fu3_8 + fu4_7*fu4_8 + fu5_7*fu5_8 + fu6_7*fu6_8 + fu7_7*fu7_8 + fu8_7*fu8_8 + fu9_7*fu9_8 + fv0_7*fv0_8 + fv10_7*fv10_8 + fv11_7*fv11_8 + fv12_7*fv12_8 + fv13_7*fv13_8 + fv14_7*fv14_8 + fv15_7*fv15_8 + fv16_7*fv16_8 + fv17_7*fv17_8 + fv18_7*fv18_8 + fv19_7*fv19_8 + fv1_7*fv1_8 + fv20_7*fv20_8 + fv2_7*fv2_8 + fv3_7*fv3_8 + fv4_7*fv4_8 + fv5_7*fv5_8 + fv6_7*fv6_8 + fv7_7*fv7_8 + fv8_7*fv8_8 + fv9_7*fv9_8 + 2.0*ea[37]*ea[73];
-    Pn[86] = Lf[23]*fu1_7 + Lf[36]*fu2_7 + Lf[48]*fu3_7 + Lf[59]*fu4_7 + Lf[69]*fu5_7 + Lf[78]*fu6_7 + Lf[86]*fu7_7 + Lf[93]*fu8_7 + Lf[99]*fu9_7 + Lf[9]*fu0_7;
-    Pn[87] = Lf[100]*fu9_7 + Lf[105]*fu10_7 + Lf[10]*fu0_7 + Lf[24]*fu1_7 + Lf[37]*fu2_7 + Lf[49]*fu3_7 + Lf[60]*fu4_7 + Lf[70]*fu5_7 + Lf[79]*fu6_7 + Lf[87]*fu7_7 + Lf[94]*fu8_7;
-    Pn[88] = Lf[101]*fu9_7 + Lf[106]*fu10_7 + Lf[110]*fu11_7 + Lf[11]*fu0_7 + Lf[25]*fu1_7 + Lf[38]*fu2_7 + Lf[50]*fu3_7 + Lf[61]*fu4_7 + Lf[71]*fu5_7 + Lf[80]*fu6_7 + Lf[88]*fu7_7 + Lf[95]*fu8_7;
-    Pn[89] = Lf[102]*fu9_7 + Lf[107]*fu10_7 + Lf[111]*fu11_7 + Lf[12]*fu0_7 + Lf[26]*fu1_7 + Lf[39]*fu2_7 + Lf[51]*fu3_7 + Lf[62]*fu4_7 + Lf[72]*fu5_7 + Lf[81]*fu6_7 + Lf[89]*fu7_7 + Lf[96]*fu8_7;
-    Pn[90] = Lf[103]*fu9_7 + Lf[108]*fu10_7 + Lf[112]*fu11_7 + Lf[13]*fu0_7 + Lf[27]*fu1_7 + Lf[40]*fu2_7 + Lf[52]*fu3_7 + Lf[63]*fu4_7 + Lf[73]*fu5_7 + Lf[82]*fu6_7 + Lf[90]*fu7_7 + Lf[97]*fu8_7;
-    Pn[91] = Lf[104]*fu9_7 + Lf[109]*fu10_7 + Lf[113]*fu11_7 + Lf[14]*fu0_7 + Lf[28]*fu1_7 + Lf[41]*fu2_7 + Lf[53]*fu3_7 + Lf[64]*fu4_7 + Lf[74]*fu5_7 + Lf[83]*fu6_7 + Lf[91]*fu7_7 + Lf[98]*fu8_7;
-    Pn[92] = (fu0_8*fu0_8) + (fu10_8*fu10_8) + (fu11_8*fu11_8) + (fu16_8*fu16_8) + (fu17_8*fu17_8) + (fu1_8*fu1_8) + (fu2_8*fu2_8) + (fu3_8*fu3_8) + (fu4_8*fu4_8) + (fu5_8*fu5_8) + (fu6_8*fu6_8) + (fu7_8*fu7_8) + (fu8_8*fu8_8) + (fu9_8*fu9_8) + (fv0_8*fv0_8) + (fv10_8*fv10_8) + (fv11_8*fv11_8) + (fv12_8*fv12_8) + (fv13_8*fv13_8) + (fv14_8*fv14_8) + (fv15_8*fv15_8) + (fv16_8*fv16_8) + (fv17_8*fv17_8) + (fv18_8*fv18_8) + (fv19_8*fv19_8) + (fv1_8*fv1_8) + (fv20_8*fv20_8) + (fv2_8*fv2_8) + (fv3_8*fv3_8) + (fv4_8*fv4_8) + (fv5_8*fv5_8) + (fv6_8*fv6_8) + (fv7_8*fv7_8) + (fv8_8*fv8_8) + (fv9_8*fv9_8) + 2.0*(ea[73]*ea[73]);
-    Pn[93] = Lf[23]*fu1_8 + Lf[36]*fu2_8 + Lf[48]*fu3_8 + Lf[59]*fu4_8 + Lf[69]*fu5_8 + Lf[78]*fu6_8 + Lf[86]*fu7_8 + Lf[93]*fu8_8 + Lf[99]*fu9_8 + Lf[9]*fu0_8;
-    Pn[94] = Lf[100]*fu9_8 + Lf[105]*fu10_8 + Lf[10]*fu0_8 + Lf[24]*fu1_8 + Lf[37]*fu2_8 + Lf[49]*fu3_8 + Lf[60]*fu4_8 + Lf[70]*fu5_8 + Lf[79]*fu6_8 + Lf[87]*fu7_8 + Lf[94]*fu8_8;
-    Pn[95] = Lf[101]*fu9_8 + Lf[106]*fu10_8 + Lf[110]*fu11_8 + Lf[11]*fu0_8 + Lf[25]*fu1_8 + Lf[38]*fu2_8 + Lf[50]*fu3_8 + Lf[61]*fu4_8 + Lf[71]*fu5_8 + Lf[80]*fu6_8 + Lf[88]*fu7_8 + Lf[95]*fu8_8;
-    Pn[96] = Lf[102]*fu9_8 + Lf[107]*fu10_8 + Lf[111]*fu11_8 + Lf[12]*fu0_8 + Lf[26]*fu1_8 + Lf[39]*fu2_8 + Lf[51]*fu3_8 + Lf[62]*fu4_8 + Lf[72]*fu5_8 + Lf[81]*fu6_8 + Lf[89]*fu7_8 + Lf[96]*fu8_8;
-    Pn[97] = Lf[103]*fu9_8 + Lf[108]*fu10_8 + Lf[112]*fu11_8 + Lf[13]*fu0_8 + Lf[27]*fu1_8 + Lf[40]*fu2_8 + Lf[52]*fu3_8 + Lf[63]*fu4_8 + Lf[73]*fu5_8 + Lf[82]*fu6_8 + Lf[90]*fu7_8 + Lf[97]*fu8_8;
-    Pn[98] = Lf[104]*fu9_8 + Lf[109]*fu10_8 + Lf[113]*fu11_8 + Lf[14]*fu0_8 + Lf[28]*fu1_8 + Lf[41]*fu2_8 + Lf[53]*fu3_8 + Lf[64]*fu4_8 + Lf[74]*fu5_8 + Lf[83]*fu6_8 + Lf[91]*fu7_8 + Lf[98]*fu8_8;
-    Pn[99] = P[99] + ft297;
-    Pn[100] = P[100];
-    Pn[101] = P[101];
-    Pn[102] = P[102];
-    Pn[103] = P[103];
-    Pn[104] = P[104];
-    Pn[105] = P[105] + ft297;
-    Pn[106] = P[106];
-    Pn[107] = P[107];
-    Pn[108] = P[108];
-    Pn[109] = P[109];
-    Pn[110] = P[110] + ft297;
-    Pn[111] = P[111];
-    Pn[112] = P[112];
-    Pn[113] = P[113];
-    Pn[114] = P[114] + ft298;
-    Pn[115] = P[115];
-    Pn[116] = P[116];
-    Pn[117] = P[117] + ft298;
-    Pn[118] = P[118];
-    Pn[119] = P[119] + ft298;
+    /* loop form: the 2N+1 sigma points through the static f, one at a time; their images in Yt */
+    {
+        double Yt[15][43];  /* image of sigma point i, component a, at Yt[a][i] */
+        double yv[15];
+        double xa[21];  /* the sigma point [x; w] */
+        double An[6][6];  /* noise factor: A A' = Qw */
+        size_t i;
+        size_t a;
+        size_t b;
+        size_t r;
+        size_t q = 0u;
+        const double qa0 = sqrt((1.0/dt));
+        const double qa1 = 0.005*qa0;
+        const double qa2 = 0.02*qa0;
+        An[0][0] = qa1;
+        An[1][0] = 0.0;
+        An[1][1] = qa1;
+        An[2][0] = 0.0;
+        An[2][1] = 0.0;
+        An[2][2] = qa1;
+        An[3][0] = 0.0;
+        An[3][1] = 0.0;
+        An[3][2] = 0.0;
+        An[3][3] = qa2;
+        An[4][0] = 0.0;
+        An[4][1] = 0.0;
+        An[4][2] = 0.0;
+        An[4][3] = 0.0;
+        An[4][4] = qa2;
+        An[5][0] = 0.0;
+        An[5][1] = 0.0;
+        An[5][2] = 0.0;
+        An[5][3] = 0.0;
+        An[5][4] = 0.0;
+        An[5][5] = qa2;
+        for (i = 0u; i < 43u; ++i) {
+            memcpy(xa, x, 15u * sizeof xa[0]);
+            for (r = 15u; r < 21u; ++r) {
+                xa[r] = 0.0;
+            }
+            if (i > 0u) {
+                const size_t c = (i - 1u) % 21u;
+                const double g = (i <= 21u) ? 4.58257569495584 : -4.58257569495584;
+                if (c < 15u) {
+                    const double *lc = &Lf[nav_ukf_pku(c, c)];  /* column c of L, rows c..14 */
+                    for (r = c; r < 15u; ++r) {
+                        xa[r] += g * lc[r - c];
+                    }
+                } else {
+                    for (r = c; r < 21u; ++r) {  /* column c - 15 of A */
+                        xa[r] += g * An[r - 15u][c - 15u];
+                    }
+                }
+            }
+            nav_ukf_f(xa, u, dt, par, yv);
+            for (a = 0u; a < 15u; ++a) {
+                Yt[a][i] = yv[a];
+            }
+        }
+        /* weighted mean (circular for angle states), deviations about it (wrapped) */
+        for (a = 0u; a < 15u; ++a) {
+            double acc = 0.0;
+            for (i = 1u; i < 43u; ++i) {
+                acc += Yt[a][i];
+            }
+            xn[a] = 0.0 * Yt[a][0] + 0.023809523809523808 * acc;
+        }
+        {   /* component 6 is an angle: circular mean */
+            double ss = 0.0;
+            double cs = 0.0;
+            for (i = 1u; i < 43u; ++i) {
+                ss += sin(Yt[6u][i]);
+                cs += cos(Yt[6u][i]);
+            }
+            xn[6] = nav_ukf_wrap(atan2(0.0 * sin(Yt[6u][0]) + 0.023809523809523808 * ss, 0.0 * cos(Yt[6u][0]) + 0.023809523809523808 * cs));
+        }
+        {   /* component 7 is an angle: circular mean */
+            double ss = 0.0;
+            double cs = 0.0;
+            for (i = 1u; i < 43u; ++i) {
+                ss += sin(Yt[7u][i]);
+                cs += cos(Yt[7u][i]);
+            }
+            xn[7] = nav_ukf_wrap(atan2(0.0 * sin(Yt[7u][0]) + 0.023809523809523808 * ss, 0.0 * cos(Yt[7u][0]) + 0.023809523809523808 * cs));
+        }
+        {   /* component 8 is an angle: circular mean */
+            double ss = 0.0;
+            double cs = 0.0;
+            for (i = 1u; i < 43u; ++i) {
+                ss += sin(Yt[8u][i]);
+                cs += cos(Yt[8u][i]);
+            }
+            xn[8] = nav_ukf_wrap(atan2(0.0 * sin(Yt[8u][0]) + 0.023809523809523808 * ss, 0.0 * cos(Yt[8u][0]) + 0.023809523809523808 * cs));
+        }
+        for (a = 0u; a < 15u; ++a) {
+            for (i = 0u; i < 43u; ++i) {
+                Yt[a][i] -= xn[a];
+            }
+        }
+        for (i = 0u; i < 43u; ++i) {
+            Yt[6u][i] = nav_ukf_wrap(Yt[6u][i]);
+        }
+        for (i = 0u; i < 43u; ++i) {
+            Yt[7u][i] = nav_ukf_wrap(Yt[7u][i]);
+        }
+        for (i = 0u; i < 43u; ++i) {
+            Yt[8u][i] = nav_ukf_wrap(Yt[8u][i]);
+        }
+        /* P' = Wc0 d0 d0' + Wi sum_i di di' + Q, packed upper triangle */
+        for (a = 0u; a < 15u; ++a) {
+            for (b = a; b < 15u; ++b) {
+                double acc = 0.0;
+                for (i = 1u; i < 43u; ++i) {
+                    acc += Yt[a][i] * Yt[b][i];
+                }
+                Pn[q] = 2.0 * Yt[a][0] * Yt[b][0] + 0.023809523809523808 * acc;
+                ++q;
+            }
+        }
+        const double qq0 = 1.0e-06*dt;
+        const double qq1 = 1.0000000000000002e-10*dt;
+        const double qq2 = 1.0e-08*dt;
+        Pn[0] = Pn[0] + qq0;
+        Pn[15] = Pn[15] + qq0;
+        Pn[29] = Pn[29] + qq0;
+        Pn[42] = Pn[42];
+        Pn[54] = Pn[54];
+        Pn[65] = Pn[65];
+        Pn[75] = Pn[75];
+        Pn[84] = Pn[84];
+        Pn[92] = Pn[92];
+        Pn[99] = Pn[99] + qq1;
+        Pn[105] = Pn[105] + qq1;
+        Pn[110] = Pn[110] + qq1;
+        Pn[114] = Pn[114] + qq2;
+        Pn[117] = Pn[117] + qq2;
+        Pn[119] = Pn[119] + qq2;
+    }
     if (!nav_ukf_finite(xn, 15u)) {
         return NAV_UKF_NON_FINITE;
     }
     {
-        const int st = nav_ukf_commit_pd(Pn);  /* the commit check on the new P */
+        /* rounding certificate: P' is a non-negatively weighted sum of outer products plus a Q
+           with a diagonal >= 0, so it is positive definite up to rounding, and finite when its
+           diagonal is; else it is factorized (see the header) */
+        const int certified = (0.0 <= 1.0e-06*dt) &
+            (0.0 <= 1.0000000000000002e-10*dt) &
+            (0.0 <= 1.0e-08*dt);
+        const int st = certified ? nav_ukf_commit_diag(Pn) : nav_ukf_commit_pd(Pn);
         if (st != NAV_UKF_OK) {
             return st;
         }
@@ -1781,6 +566,7 @@ int nav_ukf_update_gnss_pos_nis(nav_ukf_t *s, const double *z, double *nis_out)
 {
     double xs[15];
     double Ps[120];
+    double Lf[120];
     double y[3];
     double nis;
     const double *x = s->x;
@@ -1790,44 +576,114 @@ int nav_ukf_update_gnss_pos_nis(nav_ukf_t *s, const double *z, double *nis_out)
     }
 
     {
-        double Lf[120];  /* only the check that P is positive definite: the code below is linear in x */
         const int st = nav_ukf_factor(P, Lf);
         if (st != NAV_UKF_OK) {
             return st;
         }
     }
-    /* innovation y = z - weighted mean of the sigma points through h */
-    y[0] = z[0] - x[nav_ukf_ix_pn];
-    y[1] = z[1] - x[nav_ukf_ix_pe];
-    y[2] = z[2] - x[nav_ukf_ix_pd];
-    /* innovation covariance S (+ R) */
-    const double S0_0 = 2.25 + P[0];
-    const double S1_1 = 2.25 + P[15];
-    const double S2_2 = 9.0 + P[29];
-    /* factor S (pivots checked) */
-    const double Sd0 = S0_0;
-    if (!isfinite(Sd0)) { return NAV_UKF_NON_FINITE; }
-    if (!(Sd0 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Ls0_0 = sqrt(Sd0);
-    const double Lsi0 = (1.0/Ls0_0);
-    const double Ls1_0 = Lsi0*P[1];
-    const double Ls2_0 = Lsi0*P[2];
-    const double Sd1 = S1_1 - (Ls1_0*Ls1_0);
-    if (!isfinite(Sd1)) { return NAV_UKF_NON_FINITE; }
-    if (!(Sd1 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Ls1_1 = sqrt(Sd1);
-    const double Lsi1 = (1.0/Ls1_1);
-    const double Ls2_1 = Lsi1*(P[16] - Ls1_0*Ls2_0);
-    const double Sd2 = S2_2 - (Ls2_0*Ls2_0) - (Ls2_1*Ls2_1);
-    if (!isfinite(Sd2)) { return NAV_UKF_NON_FINITE; }
-    if (!(Sd2 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Ls2_2 = sqrt(Sd2);
-    const double Lsi2 = (1.0/Ls2_2);
-    /* NIS = y' S^-1 y */
-    const double b0 = Lsi0*y[0];
-    const double b1 = Lsi1*(y[1] - Ls1_0*b0);
-    const double b2 = Lsi2*(y[2] - Ls2_0*b0 - Ls2_1*b1);
-    nis = (b0*b0) + (b1*b1) + (b2*b2);
+    /* loop form: the 2N+1 sigma points through the static h, one at a time; their images in Zt */
+    double Zt[3][31];  /* image of sigma point i, component a, at Zt[a][i] */
+    double zv[3];
+    double zm[3];  /* predicted measurement */
+    double Sv[3][3];  /* innovation covariance S (lower triangle) */
+    double Ls[3][3];  /* its Cholesky factor */
+    double Lsi[3];  /* 1 / Ls[k][k] */
+    double bv[3];  /* Ls^-1 y */
+    double Cx[15][3];  /* cross covariance C = cov(x, z), then B = C Ls^-T in place */
+    double xa[15];  /* the sigma point */
+    size_t i;
+    size_t a;
+    size_t b;
+    size_t r;
+    size_t k;
+    size_t q;
+    for (i = 0u; i < 31u; ++i) {
+        memcpy(xa, x, 15u * sizeof xa[0]);
+        if (i > 0u) {
+            const size_t c = (i - 1u) % 15u;
+            const double g = (i <= 15u) ? 3.872983346207417 : -3.872983346207417;
+            const double *lc = &Lf[nav_ukf_pku(c, c)];  /* column c of L, rows c..14 */
+            for (r = c; r < 15u; ++r) {
+                xa[r] += g * lc[r - c];
+            }
+        }
+        nav_ukf_h_gnss_pos(xa, zv);
+        for (a = 0u; a < 3u; ++a) {
+            Zt[a][i] = zv[a];
+        }
+    }
+    /* weighted mean (circular for angle components), deviations about it (wrapped) */
+    for (a = 0u; a < 3u; ++a) {
+        double acc = 0.0;
+        for (i = 1u; i < 31u; ++i) {
+            acc += Zt[a][i];
+        }
+        zm[a] = 0.0 * Zt[a][0] + 0.03333333333333333 * acc;
+    }
+    for (a = 0u; a < 3u; ++a) {
+        for (i = 0u; i < 31u; ++i) {
+            Zt[a][i] -= zm[a];
+        }
+    }
+    y[0] = z[0] - zm[0];
+    y[1] = z[1] - zm[1];
+    y[2] = z[2] - zm[2];
+    /* S = Wc0 d0 d0' + Wi sum_i di di' + R */
+    for (a = 0u; a < 3u; ++a) {
+        for (b = 0u; b <= a; ++b) {
+            double acc = 0.0;
+            for (i = 1u; i < 31u; ++i) {
+                acc += Zt[a][i] * Zt[b][i];
+            }
+            Sv[a][b] = 2.0 * Zt[a][0] * Zt[b][0] + 0.03333333333333333 * acc;
+        }
+    }
+    Sv[0][0] = 2.25 + Sv[0][0];
+    Sv[1][1] = 2.25 + Sv[1][1];
+    Sv[2][2] = 9.0 + Sv[2][2];
+    /* C = sum_i Wc_i dX_i dZ_i': dX of the pair i is +-gamma column i of L (zero for noise columns) */
+    memset(Cx, 0, sizeof Cx);
+    for (i = 0u; i < 15u; ++i) {
+        const double *lc = &Lf[nav_ukf_pku(i, i)];  /* column i of L, rows i..14 */
+        for (k = 0u; k < 3u; ++k) {
+            const double dz = 0.12909944487358058 * (Zt[k][i + 1u] - Zt[k][i + 16u]);
+            for (a = i; a < 15u; ++a) {
+                Cx[a][k] += lc[a - i] * dz;
+            }
+        }
+    }
+    /* factor S = Ls Ls' (pivots checked) */
+    for (b = 0u; b < 3u; ++b) {
+        double d = Sv[b][b];
+        for (k = 0u; k < b; ++k) {
+            d -= Ls[b][k] * Ls[b][k];
+        }
+        if (!isfinite(d)) {
+            return NAV_UKF_NON_FINITE;
+        }
+        if (!(d > 0.0)) {
+            return NAV_UKF_NOT_POSITIVE_DEFINITE;
+        }
+        Ls[b][b] = sqrt(d);
+        Lsi[b] = 1.0 / Ls[b][b];
+        for (a = b + 1u; a < 3u; ++a) {
+            double e = Sv[a][b];
+            for (k = 0u; k < b; ++k) {
+                e -= Ls[a][k] * Ls[b][k];
+            }
+            Ls[a][b] = e * Lsi[b];
+        }
+    }
+    /* NIS = y' S^-1 y = b' b with b = Ls^-1 y */
+    nis = 0.0;
+    for (a = 0u; a < 3u; ++a) {
+        double e = y[a];
+        for (k = 0u; k < a; ++k) {
+            e -= Ls[a][k] * bv[k];
+        }
+        bv[a] = e * Lsi[a];
+        nis += bv[a] * bv[a];
+    }
     /* the NIS is complete: report it, and gate before the posterior is formed */
     if (!isfinite(nis)) {
         return NAV_UKF_NON_FINITE;
@@ -1836,190 +692,29 @@ int nav_ukf_update_gnss_pos_nis(nav_ukf_t *s, const double *z, double *nis_out)
         *nis_out = nis;
     }
 
-    /* gain */
-    const double B0_0 = Lsi0*P[0];
-    const double B0_1 = Lsi1*(P[1] - B0_0*Ls1_0);
-    const double B0_2 = Lsi2*(P[2] - B0_0*Ls2_0 - B0_1*Ls2_1);
-    const double B1_0 = Lsi0*P[1];
-    const double B1_1 = Lsi1*(P[15] - B1_0*Ls1_0);
-    const double B1_2 = Lsi2*(P[16] - B1_0*Ls2_0 - B1_1*Ls2_1);
-    const double B2_0 = Lsi0*P[2];
-    const double B2_1 = Lsi1*(P[16] - B2_0*Ls1_0);
-    const double B2_2 = Lsi2*(P[29] - B2_0*Ls2_0 - B2_1*Ls2_1);
-    const double B3_0 = Lsi0*P[3];
-    const double B3_1 = Lsi1*(P[17] - B3_0*Ls1_0);
-    const double B3_2 = Lsi2*(P[30] - B3_0*Ls2_0 - B3_1*Ls2_1);
-    const double B4_0 = Lsi0*P[4];
-    const double B4_1 = Lsi1*(P[18] - B4_0*Ls1_0);
-    const double B4_2 = Lsi2*(P[31] - B4_0*Ls2_0 - B4_1*Ls2_1);
-    const double B5_0 = Lsi0*P[5];
-    const double B5_1 = Lsi1*(P[19] - B5_0*Ls1_0);
-    const double B5_2 = Lsi2*(P[32] - B5_0*Ls2_0 - B5_1*Ls2_1);
-    const double B6_0 = Lsi0*P[6];
-    const double B6_1 = Lsi1*(P[20] - B6_0*Ls1_0);
-    const double B6_2 = Lsi2*(P[33] - B6_0*Ls2_0 - B6_1*Ls2_1);
-    const double B7_0 = Lsi0*P[7];
-    const double B7_1 = Lsi1*(P[21] - B7_0*Ls1_0);
-    const double B7_2 = Lsi2*(P[34] - B7_0*Ls2_0 - B7_1*Ls2_1);
-    const double B8_0 = Lsi0*P[8];
-    const double B8_1 = Lsi1*(P[22] - B8_0*Ls1_0);
-    const double B8_2 = Lsi2*(P[35] - B8_0*Ls2_0 - B8_1*Ls2_1);
-    const double B9_0 = Lsi0*P[9];
-    const double B9_1 = Lsi1*(P[23] - B9_0*Ls1_0);
-    const double B9_2 = Lsi2*(P[36] - B9_0*Ls2_0 - B9_1*Ls2_1);
-    const double B10_0 = Lsi0*P[10];
-    const double B10_1 = Lsi1*(P[24] - B10_0*Ls1_0);
-    const double B10_2 = Lsi2*(P[37] - B10_0*Ls2_0 - B10_1*Ls2_1);
-    const double B11_0 = Lsi0*P[11];
-    const double B11_1 = Lsi1*(P[25] - B11_0*Ls1_0);
-    const double B11_2 = Lsi2*(P[38] - B11_0*Ls2_0 - B11_1*Ls2_1);
-    const double B12_0 = Lsi0*P[12];
-    const double B12_1 = Lsi1*(P[26] - B12_0*Ls1_0);
-    const double B12_2 = Lsi2*(P[39] - B12_0*Ls2_0 - B12_1*Ls2_1);
-    const double B13_0 = Lsi0*P[13];
-    const double B13_1 = Lsi1*(P[27] - B13_0*Ls1_0);
-    const double B13_2 = Lsi2*(P[40] - B13_0*Ls2_0 - B13_1*Ls2_1);
-    const double B14_0 = Lsi0*P[14];
-    const double B14_1 = Lsi1*(P[28] - B14_0*Ls1_0);
-    const double B14_2 = Lsi2*(P[41] - B14_0*Ls2_0 - B14_1*Ls2_1);
-    /* updated state x + K y */
-    xs[nav_ukf_ix_pn] = x[nav_ukf_ix_pn] + B0_0*b0 + B0_1*b1 + B0_2*b2;
-    xs[nav_ukf_ix_pe] = x[nav_ukf_ix_pe] + B1_0*b0 + B1_1*b1 + B1_2*b2;
-    xs[nav_ukf_ix_pd] = x[nav_ukf_ix_pd] + B2_0*b0 + B2_1*b1 + B2_2*b2;
-    xs[nav_ukf_ix_vn] = x[nav_ukf_ix_vn] + B3_0*b0 + B3_1*b1 + B3_2*b2;
-    xs[nav_ukf_ix_ve] = x[nav_ukf_ix_ve] + B4_0*b0 + B4_1*b1 + B4_2*b2;
-    xs[nav_ukf_ix_vd] = x[nav_ukf_ix_vd] + B5_0*b0 + B5_1*b1 + B5_2*b2;
-    xs[nav_ukf_ix_roll] = x[nav_ukf_ix_roll] + B6_0*b0 + B6_1*b1 + B6_2*b2;
-    xs[nav_ukf_ix_pitch] = x[nav_ukf_ix_pitch] + B7_0*b0 + B7_1*b1 + B7_2*b2;
-    xs[nav_ukf_ix_yaw] = x[nav_ukf_ix_yaw] + B8_0*b0 + B8_1*b1 + B8_2*b2;
-    xs[nav_ukf_ix_bgx] = x[nav_ukf_ix_bgx] + B9_0*b0 + B9_1*b1 + B9_2*b2;
-    xs[nav_ukf_ix_bgy] = x[nav_ukf_ix_bgy] + B10_0*b0 + B10_1*b1 + B10_2*b2;
-    xs[nav_ukf_ix_bgz] = x[nav_ukf_ix_bgz] + B11_0*b0 + B11_1*b1 + B11_2*b2;
-    xs[nav_ukf_ix_bax] = x[nav_ukf_ix_bax] + B12_0*b0 + B12_1*b1 + B12_2*b2;
-    xs[nav_ukf_ix_bay] = x[nav_ukf_ix_bay] + B13_0*b0 + B13_1*b1 + B13_2*b2;
-    xs[nav_ukf_ix_baz] = x[nav_ukf_ix_baz] + B14_0*b0 + B14_1*b1 + B14_2*b2;
-    /* covariance P - K S K', upper triangle, packed */
-    Ps[0] = P[0] - (B0_0*B0_0) - (B0_1*B0_1) - (B0_2*B0_2);
-    Ps[1] = P[1] - B0_0*B1_0 - B0_1*B1_1 - B0_2*B1_2;
-    Ps[2] = P[2] - B0_0*B2_0 - B0_1*B2_1 - B0_2*B2_2;
-    Ps[3] = P[3] - B0_0*B3_0 - B0_1*B3_1 - B0_2*B3_2;
-    Ps[4] = P[4] - B0_0*B4_0 - B0_1*B4_1 - B0_2*B4_2;
-    Ps[5] = P[5] - B0_0*B5_0 - B0_1*B5_1 - B0_2*B5_2;
-    Ps[6] = P[6] - B0_0*B6_0 - B0_1*B6_1 - B0_2*B6_2;
-    Ps[7] = P[7] - B0_0*B7_0 - B0_1*B7_1 - B0_2*B7_2;
-    Ps[8] = P[8] - B0_0*B8_0 - B0_1*B8_1 - B0_2*B8_2;
-    Ps[9] = P[9] - B0_0*B9_0 - B0_1*B9_1 - B0_2*B9_2;
-    Ps[10] = P[10] - B0_0*B10_0 - B0_1*B10_1 - B0_2*B10_2;
-    Ps[11] = P[11] - B0_0*B11_0 - B0_1*B11_1 - B0_2*B11_2;
-    Ps[12] = P[12] - B0_0*B12_0 - B0_1*B12_1 - B0_2*B12_2;
-    Ps[13] = P[13] - B0_0*B13_0 - B0_1*B13_1 - B0_2*B13_2;
-    Ps[14] = P[14] - B0_0*B14_0 - B0_1*B14_1 - B0_2*B14_2;
-    Ps[15] = P[15] - (B1_0*B1_0) - (B1_1*B1_1) - (B1_2*B1_2);
-    Ps[16] = P[16] - B1_0*B2_0 - B1_1*B2_1 - B1_2*B2_2;
-    Ps[17] = P[17] - B1_0*B3_0 - B1_1*B3_1 - B1_2*B3_2;
-    Ps[18] = P[18] - B1_0*B4_0 - B1_1*B4_1 - B1_2*B4_2;
-    Ps[19] = P[19] - B1_0*B5_0 - B1_1*B5_1 - B1_2*B5_2;
-    Ps[20] = P[20] - B1_0*B6_0 - B1_1*B6_1 - B1_2*B6_2;
-    Ps[21] = P[21] - B1_0*B7_0 - B1_1*B7_1 - B1_2*B7_2;
-    Ps[22] = P[22] - B1_0*B8_0 - B1_1*B8_1 - B1_2*B8_2;
-    Ps[23] = P[23] - B1_0*B9_0 - B1_1*B9_1 - B1_2*B9_2;
-    Ps[24] = P[24] - B10_0*B1_0 - B10_1*B1_1 - B10_2*B1_2;
-    Ps[25] = P[25] - B11_0*B1_0 - B11_1*B1_1 - B11_2*B1_2;
-    Ps[26] = P[26] - B12_0*B1_0 - B12_1*B1_1 - B12_2*B1_2;
-    Ps[27] = P[27] - B13_0*B1_0 - B13_1*B1_1 - B13_2*B1_2;
-    Ps[28] = P[28] - B14_0*B1_0 - B14_1*B1_1 - B14_2*B1_2;
-    Ps[29] = P[29] - (B2_0*B2_0) - (B2_1*B2_1) - (B2_2*B2_2);
-    Ps[30] = P[30] - B2_0*B3_0 - B2_1*B3_1 - B2_2*B3_2;
-    Ps[31] = P[31] - B2_0*B4_0 - B2_1*B4_1 - B2_2*B4_2;
-    Ps[32] = P[32] - B2_0*B5_0 - B2_1*B5_1 - B2_2*B5_2;
-    Ps[33] = P[33] - B2_0*B6_0 - B2_1*B6_1 - B2_2*B6_2;
-    Ps[34] = P[34] - B2_0*B7_0 - B2_1*B7_1 - B2_2*B7_2;
-    Ps[35] = P[35] - B2_0*B8_0 - B2_1*B8_1 - B2_2*B8_2;
-    Ps[36] = P[36] - B2_0*B9_0 - B2_1*B9_1 - B2_2*B9_2;
-    Ps[37] = P[37] - B10_0*B2_0 - B10_1*B2_1 - B10_2*B2_2;
-    Ps[38] = P[38] - B11_0*B2_0 - B11_1*B2_1 - B11_2*B2_2;
-    Ps[39] = P[39] - B12_0*B2_0 - B12_1*B2_1 - B12_2*B2_2;
-    Ps[40] = P[40] - B13_0*B2_0 - B13_1*B2_1 - B13_2*B2_2;
-    Ps[41] = P[41] - B14_0*B2_0 - B14_1*B2_1 - B14_2*B2_2;
-    Ps[42] = P[42] - (B3_0*B3_0) - (B3_1*B3_1) - (B3_2*B3_2);
-    Ps[43] = P[43] - B3_0*B4_0 - B3_1*B4_1 - B3_2*B4_2;
-    Ps[44] = P[44] - B3_0*B5_0 - B3_1*B5_1 - B3_2*B5_2;
-    Ps[45] = P[45] - B3_0*B6_0 - B3_1*B6_1 - B3_2*B6_2;
-    Ps[46] = P[46] - B3_0*B7_0 - B3_1*B7_1 - B3_2*B7_2;
-    Ps[47] = P[47] - B3_0*B8_0 - B3_1*B8_1 - B3_2*B8_2;
-    Ps[48] = P[48] - B3_0*B9_0 - B3_1*B9_1 - B3_2*B9_2;
-    Ps[49] = P[49] - B10_0*B3_0 - B10_1*B3_1 - B10_2*B3_2;
-    Ps[50] = P[50] - B11_0*B3_0 - B11_1*B3_1 - B11_2*B3_2;
-    Ps[51] = P[51] - B12_0*B3_0 - B12_1*B3_1 - B12_2*B3_2;
-    Ps[52] = P[52] - B13_0*B3_0 - B13_1*B3_1 - B13_2*B3_2;
-    Ps[53] = P[53] - B14_0*B3_0 - B14_1*B3_1 - B14_2*B3_2;
-    Ps[54] = P[54] - (B4_0*B4_0) - (B4_1*B4_1) - (B4_2*B4_2);
-    Ps[55] = P[55] - B4_0*B5_0 - B4_1*B5_1 - B4_2*B5_2;
-    Ps[56] = P[56] - B4_0*B6_0 - B4_1*B6_1 - B4_2*B6_2;
-    Ps[57] = P[57] - B4_0*B7_0 - B4_1*B7_1 - B4_2*B7_2;
-    Ps[58] = P[58] - B4_0*B8_0 - B4_1*B8_1 - B4_2*B8_2;
-    Ps[59] = P[59] - B4_0*B9_0 - B4_1*B9_1 - B4_2*B9_2;
-    Ps[60] = P[60] - B10_0*B4_0 - B10_1*B4_1 - B10_2*B4_2;
-    Ps[61] = P[61] - B11_0*B4_0 - B11_1*B4_1 - B11_2*B4_2;
-    Ps[62] = P[62] - B12_0*B4_0 - B12_1*B4_1 - B12_2*B4_2;
-    Ps[63] = P[63] - B13_0*B4_0 - B13_1*B4_1 - B13_2*B4_2;
-    Ps[64] = P[64] - B14_0*B4_0 - B14_1*B4_1 - B14_2*B4_2;
-    Ps[65] = P[65] - (B5_0*B5_0) - (B5_1*B5_1) - (B5_2*B5_2);
-    Ps[66] = P[66] - B5_0*B6_0 - B5_1*B6_1 - B5_2*B6_2;
-    Ps[67] = P[67] - B5_0*B7_0 - B5_1*B7_1 - B5_2*B7_2;
-    Ps[68] = P[68] - B5_0*B8_0 - B5_1*B8_1 - B5_2*B8_2;
-    Ps[69] = P[69] - B5_0*B9_0 - B5_1*B9_1 - B5_2*B9_2;
-    Ps[70] = P[70] - B10_0*B5_0 - B10_1*B5_1 - B10_2*B5_2;
-    Ps[71] = P[71] - B11_0*B5_0 - B11_1*B5_1 - B11_2*B5_2;
-    Ps[72] = P[72] - B12_0*B5_0 - B12_1*B5_1 - B12_2*B5_2;
-    Ps[73] = P[73] - B13_0*B5_0 - B13_1*B5_1 - B13_2*B5_2;
-    Ps[74] = P[74] - B14_0*B5_0 - B14_1*B5_1 - B14_2*B5_2;
-    Ps[75] = P[75] - (B6_0*B6_0) - (B6_1*B6_1) - (B6_2*B6_2);
-    Ps[76] = P[76] - B6_0*B7_0 - B6_1*B7_1 - B6_2*B7_2;
-    Ps[77] = P[77] - B6_0*B8_0 - B6_1*B8_1 - B6_2*B8_2;
-    Ps[78] = P[78] - B6_0*B9_0 - B6_1*B9_1 - B6_2*B9_2;
-    Ps[79] = P[79] - B10_0*B6_0 - B10_1*B6_1 - B10_2*B6_2;
-    Ps[80] = P[80] - B11_0*B6_0 - B11_1*B6_1 - B11_2*B6_2;
-    Ps[81] = P[81] - B12_0*B6_0 - B12_1*B6_1 - B12_2*B6_2;
-    Ps[82] = P[82] - B13_0*B6_0 - B13_1*B6_1 - B13_2*B6_2;
-    Ps[83] = P[83] - B14_0*B6_0 - B14_1*B6_1 - B14_2*B6_2;
-    Ps[84] = P[84] - (B7_0*B7_0) - (B7_1*B7_1) - (B7_2*B7_2);
-    Ps[85] = P[85] - B7_0*B8_0 - B7_1*B8_1 - B7_2*B8_2;
-    Ps[86] = P[86] - B7_0*B9_0 - B7_1*B9_1 - B7_2*B9_2;
-    Ps[87] = P[87] - B10_0*B7_0 - B10_1*B7_1 - B10_2*B7_2;
-    Ps[88] = P[88] - B11_0*B7_0 - B11_1*B7_1 - B11_2*B7_2;
-    Ps[89] = P[89] - B12_0*B7_0 - B12_1*B7_1 - B12_2*B7_2;
-    Ps[90] = P[90] - B13_0*B7_0 - B13_1*B7_1 - B13_2*B7_2;
-    Ps[91] = P[91] - B14_0*B7_0 - B14_1*B7_1 - B14_2*B7_2;
-    Ps[92] = P[92] - (B8_0*B8_0) - (B8_1*B8_1) - (B8_2*B8_2);
-    Ps[93] = P[93] - B8_0*B9_0 - B8_1*B9_1 - B8_2*B9_2;
-    Ps[94] = P[94] - B10_0*B8_0 - B10_1*B8_1 - B10_2*B8_2;
-    Ps[95] = P[95] - B11_0*B8_0 - B11_1*B8_1 - B11_2*B8_2;
-    Ps[96] = P[96] - B12_0*B8_0 - B12_1*B8_1 - B12_2*B8_2;
-    Ps[97] = P[97] - B13_0*B8_0 - B13_1*B8_1 - B13_2*B8_2;
-    Ps[98] = P[98] - B14_0*B8_0 - B14_1*B8_1 - B14_2*B8_2;
-    Ps[99] = P[99] - (B9_0*B9_0) - (B9_1*B9_1) - (B9_2*B9_2);
-    Ps[100] = P[100] - B10_0*B9_0 - B10_1*B9_1 - B10_2*B9_2;
-    Ps[101] = P[101] - B11_0*B9_0 - B11_1*B9_1 - B11_2*B9_2;
-    Ps[102] = P[102] - B12_0*B9_0 - B12_1*B9_1 - B12_2*B9_2;
-    Ps[103] = P[103] - B13_0*B9_0 - B13_1*B9_1 - B13_2*B9_2;
-    Ps[104] = P[104] - B14_0*B9_0 - B14_1*B9_1 - B14_2*B9_2;
-    Ps[105] = P[105] - (B10_0*B10_0) - (B10_1*B10_1) - (B10_2*B10_2);
-    Ps[106] = P[106] - B10_0*B11_0 - B10_1*B11_1 - B10_2*B11_2;
-    Ps[107] = P[107] - B10_0*B12_0 - B10_1*B12_1 - B10_2*B12_2;
-    Ps[108] = P[108] - B10_0*B13_0 - B10_1*B13_1 - B10_2*B13_2;
-    Ps[109] = P[109] - B10_0*B14_0 - B10_1*B14_1 - B10_2*B14_2;
-    Ps[110] = P[110] - (B11_0*B11_0) - (B11_1*B11_1) - (B11_2*B11_2);
-    Ps[111] = P[111] - B11_0*B12_0 - B11_1*B12_1 - B11_2*B12_2;
-    Ps[112] = P[112] - B11_0*B13_0 - B11_1*B13_1 - B11_2*B13_2;
-    Ps[113] = P[113] - B11_0*B14_0 - B11_1*B14_1 - B11_2*B14_2;
-    Ps[114] = P[114] - (B12_0*B12_0) - (B12_1*B12_1) - (B12_2*B12_2);
-    Ps[115] = P[115] - B12_0*B13_0 - B12_1*B13_1 - B12_2*B13_2;
-    Ps[116] = P[116] - B12_0*B14_0 - B12_1*B14_1 - B12_2*B14_2;
-    Ps[117] = P[117] - (B13_0*B13_0) - (B13_1*B13_1) - (B13_2*B13_2);
-    Ps[118] = P[118] - B13_0*B14_0 - B13_1*B14_1 - B13_2*B14_2;
-    Ps[119] = P[119] - (B14_0*B14_0) - (B14_1*B14_1) - (B14_2*B14_2);
-    /* angle states wrapped to (-pi, pi] */
+    /* B = C Ls^-T (in place), x + B b, P - B B' (= P - K S K') */
+    for (a = 0u; a < 15u; ++a) {
+        double e = 0.0;
+        for (k = 0u; k < 3u; ++k) {
+            for (b = 0u; b < k; ++b) {
+                Cx[a][k] -= Ls[k][b] * Cx[a][b];
+            }
+            Cx[a][k] *= Lsi[k];
+            e += Cx[a][k] * bv[k];
+        }
+        xs[a] = x[a] + e;
+    }
+    q = 0u;
+    for (a = 0u; a < 15u; ++a) {
+        for (b = a; b < 15u; ++b) {
+            double e = P[q];
+            for (k = 0u; k < 3u; ++k) {
+                e -= Cx[a][k] * Cx[b][k];
+            }
+            Ps[q] = e;
+            ++q;
+        }
+    }
     xs[nav_ukf_ix_roll] = nav_ukf_wrap(xs[nav_ukf_ix_roll]);
     xs[nav_ukf_ix_pitch] = nav_ukf_wrap(xs[nav_ukf_ix_pitch]);
     xs[nav_ukf_ix_yaw] = nav_ukf_wrap(xs[nav_ukf_ix_yaw]);
@@ -2050,6 +745,7 @@ int nav_ukf_update_gnss_vel_nis(nav_ukf_t *s, const double *z, double *nis_out)
 {
     double xs[15];
     double Ps[120];
+    double Lf[120];
     double y[3];
     double nis;
     const double *x = s->x;
@@ -2059,44 +755,114 @@ int nav_ukf_update_gnss_vel_nis(nav_ukf_t *s, const double *z, double *nis_out)
     }
 
     {
-        double Lf[120];  /* only the check that P is positive definite: the code below is linear in x */
         const int st = nav_ukf_factor(P, Lf);
         if (st != NAV_UKF_OK) {
             return st;
         }
     }
-    /* innovation y = z - weighted mean of the sigma points through h */
-    y[0] = z[0] - x[nav_ukf_ix_vn];
-    y[1] = z[1] - x[nav_ukf_ix_ve];
-    y[2] = z[2] - x[nav_ukf_ix_vd];
-    /* innovation covariance S (+ R) */
-    const double S0_0 = 0.010000000000000002 + P[42];
-    const double S1_1 = 0.010000000000000002 + P[54];
-    const double S2_2 = 0.010000000000000002 + P[65];
-    /* factor S (pivots checked) */
-    const double Sd0 = S0_0;
-    if (!isfinite(Sd0)) { return NAV_UKF_NON_FINITE; }
-    if (!(Sd0 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Ls0_0 = sqrt(Sd0);
-    const double Lsi0 = (1.0/Ls0_0);
-    const double Ls1_0 = Lsi0*P[43];
-    const double Ls2_0 = Lsi0*P[44];
-    const double Sd1 = S1_1 - (Ls1_0*Ls1_0);
-    if (!isfinite(Sd1)) { return NAV_UKF_NON_FINITE; }
-    if (!(Sd1 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Ls1_1 = sqrt(Sd1);
-    const double Lsi1 = (1.0/Ls1_1);
-    const double Ls2_1 = Lsi1*(P[55] - Ls1_0*Ls2_0);
-    const double Sd2 = S2_2 - (Ls2_0*Ls2_0) - (Ls2_1*Ls2_1);
-    if (!isfinite(Sd2)) { return NAV_UKF_NON_FINITE; }
-    if (!(Sd2 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double Ls2_2 = sqrt(Sd2);
-    const double Lsi2 = (1.0/Ls2_2);
-    /* NIS = y' S^-1 y */
-    const double b0 = Lsi0*y[0];
-    const double b1 = Lsi1*(y[1] - Ls1_0*b0);
-    const double b2 = Lsi2*(y[2] - Ls2_0*b0 - Ls2_1*b1);
-    nis = (b0*b0) + (b1*b1) + (b2*b2);
+    /* loop form: the 2N+1 sigma points through the static h, one at a time; their images in Zt */
+    double Zt[3][31];  /* image of sigma point i, component a, at Zt[a][i] */
+    double zv[3];
+    double zm[3];  /* predicted measurement */
+    double Sv[3][3];  /* innovation covariance S (lower triangle) */
+    double Ls[3][3];  /* its Cholesky factor */
+    double Lsi[3];  /* 1 / Ls[k][k] */
+    double bv[3];  /* Ls^-1 y */
+    double Cx[15][3];  /* cross covariance C = cov(x, z), then B = C Ls^-T in place */
+    double xa[15];  /* the sigma point */
+    size_t i;
+    size_t a;
+    size_t b;
+    size_t r;
+    size_t k;
+    size_t q;
+    for (i = 0u; i < 31u; ++i) {
+        memcpy(xa, x, 15u * sizeof xa[0]);
+        if (i > 0u) {
+            const size_t c = (i - 1u) % 15u;
+            const double g = (i <= 15u) ? 3.872983346207417 : -3.872983346207417;
+            const double *lc = &Lf[nav_ukf_pku(c, c)];  /* column c of L, rows c..14 */
+            for (r = c; r < 15u; ++r) {
+                xa[r] += g * lc[r - c];
+            }
+        }
+        nav_ukf_h_gnss_vel(xa, zv);
+        for (a = 0u; a < 3u; ++a) {
+            Zt[a][i] = zv[a];
+        }
+    }
+    /* weighted mean (circular for angle components), deviations about it (wrapped) */
+    for (a = 0u; a < 3u; ++a) {
+        double acc = 0.0;
+        for (i = 1u; i < 31u; ++i) {
+            acc += Zt[a][i];
+        }
+        zm[a] = 0.0 * Zt[a][0] + 0.03333333333333333 * acc;
+    }
+    for (a = 0u; a < 3u; ++a) {
+        for (i = 0u; i < 31u; ++i) {
+            Zt[a][i] -= zm[a];
+        }
+    }
+    y[0] = z[0] - zm[0];
+    y[1] = z[1] - zm[1];
+    y[2] = z[2] - zm[2];
+    /* S = Wc0 d0 d0' + Wi sum_i di di' + R */
+    for (a = 0u; a < 3u; ++a) {
+        for (b = 0u; b <= a; ++b) {
+            double acc = 0.0;
+            for (i = 1u; i < 31u; ++i) {
+                acc += Zt[a][i] * Zt[b][i];
+            }
+            Sv[a][b] = 2.0 * Zt[a][0] * Zt[b][0] + 0.03333333333333333 * acc;
+        }
+    }
+    Sv[0][0] = 0.010000000000000002 + Sv[0][0];
+    Sv[1][1] = 0.010000000000000002 + Sv[1][1];
+    Sv[2][2] = 0.010000000000000002 + Sv[2][2];
+    /* C = sum_i Wc_i dX_i dZ_i': dX of the pair i is +-gamma column i of L (zero for noise columns) */
+    memset(Cx, 0, sizeof Cx);
+    for (i = 0u; i < 15u; ++i) {
+        const double *lc = &Lf[nav_ukf_pku(i, i)];  /* column i of L, rows i..14 */
+        for (k = 0u; k < 3u; ++k) {
+            const double dz = 0.12909944487358058 * (Zt[k][i + 1u] - Zt[k][i + 16u]);
+            for (a = i; a < 15u; ++a) {
+                Cx[a][k] += lc[a - i] * dz;
+            }
+        }
+    }
+    /* factor S = Ls Ls' (pivots checked) */
+    for (b = 0u; b < 3u; ++b) {
+        double d = Sv[b][b];
+        for (k = 0u; k < b; ++k) {
+            d -= Ls[b][k] * Ls[b][k];
+        }
+        if (!isfinite(d)) {
+            return NAV_UKF_NON_FINITE;
+        }
+        if (!(d > 0.0)) {
+            return NAV_UKF_NOT_POSITIVE_DEFINITE;
+        }
+        Ls[b][b] = sqrt(d);
+        Lsi[b] = 1.0 / Ls[b][b];
+        for (a = b + 1u; a < 3u; ++a) {
+            double e = Sv[a][b];
+            for (k = 0u; k < b; ++k) {
+                e -= Ls[a][k] * Ls[b][k];
+            }
+            Ls[a][b] = e * Lsi[b];
+        }
+    }
+    /* NIS = y' S^-1 y = b' b with b = Ls^-1 y */
+    nis = 0.0;
+    for (a = 0u; a < 3u; ++a) {
+        double e = y[a];
+        for (k = 0u; k < a; ++k) {
+            e -= Ls[a][k] * bv[k];
+        }
+        bv[a] = e * Lsi[a];
+        nis += bv[a] * bv[a];
+    }
     /* the NIS is complete: report it, and gate before the posterior is formed */
     if (!isfinite(nis)) {
         return NAV_UKF_NON_FINITE;
@@ -2105,190 +871,29 @@ int nav_ukf_update_gnss_vel_nis(nav_ukf_t *s, const double *z, double *nis_out)
         *nis_out = nis;
     }
 
-    /* gain */
-    const double B0_0 = Lsi0*P[3];
-    const double B0_1 = Lsi1*(P[4] - B0_0*Ls1_0);
-    const double B0_2 = Lsi2*(P[5] - B0_0*Ls2_0 - B0_1*Ls2_1);
-    const double B1_0 = Lsi0*P[17];
-    const double B1_1 = Lsi1*(P[18] - B1_0*Ls1_0);
-    const double B1_2 = Lsi2*(P[19] - B1_0*Ls2_0 - B1_1*Ls2_1);
-    const double B2_0 = Lsi0*P[30];
-    const double B2_1 = Lsi1*(P[31] - B2_0*Ls1_0);
-    const double B2_2 = Lsi2*(P[32] - B2_0*Ls2_0 - B2_1*Ls2_1);
-    const double B3_0 = Lsi0*P[42];
-    const double B3_1 = Lsi1*(P[43] - B3_0*Ls1_0);
-    const double B3_2 = Lsi2*(P[44] - B3_0*Ls2_0 - B3_1*Ls2_1);
-    const double B4_0 = Lsi0*P[43];
-    const double B4_1 = Lsi1*(P[54] - B4_0*Ls1_0);
-    const double B4_2 = Lsi2*(P[55] - B4_0*Ls2_0 - B4_1*Ls2_1);
-    const double B5_0 = Lsi0*P[44];
-    const double B5_1 = Lsi1*(P[55] - B5_0*Ls1_0);
-    const double B5_2 = Lsi2*(P[65] - B5_0*Ls2_0 - B5_1*Ls2_1);
-    const double B6_0 = Lsi0*P[45];
-    const double B6_1 = Lsi1*(P[56] - B6_0*Ls1_0);
-    const double B6_2 = Lsi2*(P[66] - B6_0*Ls2_0 - B6_1*Ls2_1);
-    const double B7_0 = Lsi0*P[46];
-    const double B7_1 = Lsi1*(P[57] - B7_0*Ls1_0);
-    const double B7_2 = Lsi2*(P[67] - B7_0*Ls2_0 - B7_1*Ls2_1);
-    const double B8_0 = Lsi0*P[47];
-    const double B8_1 = Lsi1*(P[58] - B8_0*Ls1_0);
-    const double B8_2 = Lsi2*(P[68] - B8_0*Ls2_0 - B8_1*Ls2_1);
-    const double B9_0 = Lsi0*P[48];
-    const double B9_1 = Lsi1*(P[59] - B9_0*Ls1_0);
-    const double B9_2 = Lsi2*(P[69] - B9_0*Ls2_0 - B9_1*Ls2_1);
-    const double B10_0 = Lsi0*P[49];
-    const double B10_1 = Lsi1*(P[60] - B10_0*Ls1_0);
-    const double B10_2 = Lsi2*(P[70] - B10_0*Ls2_0 - B10_1*Ls2_1);
-    const double B11_0 = Lsi0*P[50];
-    const double B11_1 = Lsi1*(P[61] - B11_0*Ls1_0);
-    const double B11_2 = Lsi2*(P[71] - B11_0*Ls2_0 - B11_1*Ls2_1);
-    const double B12_0 = Lsi0*P[51];
-    const double B12_1 = Lsi1*(P[62] - B12_0*Ls1_0);
-    const double B12_2 = Lsi2*(P[72] - B12_0*Ls2_0 - B12_1*Ls2_1);
-    const double B13_0 = Lsi0*P[52];
-    const double B13_1 = Lsi1*(P[63] - B13_0*Ls1_0);
-    const double B13_2 = Lsi2*(P[73] - B13_0*Ls2_0 - B13_1*Ls2_1);
-    const double B14_0 = Lsi0*P[53];
-    const double B14_1 = Lsi1*(P[64] - B14_0*Ls1_0);
-    const double B14_2 = Lsi2*(P[74] - B14_0*Ls2_0 - B14_1*Ls2_1);
-    /* updated state x + K y */
-    xs[nav_ukf_ix_pn] = x[nav_ukf_ix_pn] + B0_0*b0 + B0_1*b1 + B0_2*b2;
-    xs[nav_ukf_ix_pe] = x[nav_ukf_ix_pe] + B1_0*b0 + B1_1*b1 + B1_2*b2;
-    xs[nav_ukf_ix_pd] = x[nav_ukf_ix_pd] + B2_0*b0 + B2_1*b1 + B2_2*b2;
-    xs[nav_ukf_ix_vn] = x[nav_ukf_ix_vn] + B3_0*b0 + B3_1*b1 + B3_2*b2;
-    xs[nav_ukf_ix_ve] = x[nav_ukf_ix_ve] + B4_0*b0 + B4_1*b1 + B4_2*b2;
-    xs[nav_ukf_ix_vd] = x[nav_ukf_ix_vd] + B5_0*b0 + B5_1*b1 + B5_2*b2;
-    xs[nav_ukf_ix_roll] = x[nav_ukf_ix_roll] + B6_0*b0 + B6_1*b1 + B6_2*b2;
-    xs[nav_ukf_ix_pitch] = x[nav_ukf_ix_pitch] + B7_0*b0 + B7_1*b1 + B7_2*b2;
-    xs[nav_ukf_ix_yaw] = x[nav_ukf_ix_yaw] + B8_0*b0 + B8_1*b1 + B8_2*b2;
-    xs[nav_ukf_ix_bgx] = x[nav_ukf_ix_bgx] + B9_0*b0 + B9_1*b1 + B9_2*b2;
-    xs[nav_ukf_ix_bgy] = x[nav_ukf_ix_bgy] + B10_0*b0 + B10_1*b1 + B10_2*b2;
-    xs[nav_ukf_ix_bgz] = x[nav_ukf_ix_bgz] + B11_0*b0 + B11_1*b1 + B11_2*b2;
-    xs[nav_ukf_ix_bax] = x[nav_ukf_ix_bax] + B12_0*b0 + B12_1*b1 + B12_2*b2;
-    xs[nav_ukf_ix_bay] = x[nav_ukf_ix_bay] + B13_0*b0 + B13_1*b1 + B13_2*b2;
-    xs[nav_ukf_ix_baz] = x[nav_ukf_ix_baz] + B14_0*b0 + B14_1*b1 + B14_2*b2;
-    /* covariance P - K S K', upper triangle, packed */
-    Ps[0] = P[0] - (B0_0*B0_0) - (B0_1*B0_1) - (B0_2*B0_2);
-    Ps[1] = P[1] - B0_0*B1_0 - B0_1*B1_1 - B0_2*B1_2;
-    Ps[2] = P[2] - B0_0*B2_0 - B0_1*B2_1 - B0_2*B2_2;
-    Ps[3] = P[3] - B0_0*B3_0 - B0_1*B3_1 - B0_2*B3_2;
-    Ps[4] = P[4] - B0_0*B4_0 - B0_1*B4_1 - B0_2*B4_2;
-    Ps[5] = P[5] - B0_0*B5_0 - B0_1*B5_1 - B0_2*B5_2;
-    Ps[6] = P[6] - B0_0*B6_0 - B0_1*B6_1 - B0_2*B6_2;
-    Ps[7] = P[7] - B0_0*B7_0 - B0_1*B7_1 - B0_2*B7_2;
-    Ps[8] = P[8] - B0_0*B8_0 - B0_1*B8_1 - B0_2*B8_2;
-    Ps[9] = P[9] - B0_0*B9_0 - B0_1*B9_1 - B0_2*B9_2;
-    Ps[10] = P[10] - B0_0*B10_0 - B0_1*B10_1 - B0_2*B10_2;
-    Ps[11] = P[11] - B0_0*B11_0 - B0_1*B11_1 - B0_2*B11_2;
-    Ps[12] = P[12] - B0_0*B12_0 - B0_1*B12_1 - B0_2*B12_2;
-    Ps[13] = P[13] - B0_0*B13_0 - B0_1*B13_1 - B0_2*B13_2;
-    Ps[14] = P[14] - B0_0*B14_0 - B0_1*B14_1 - B0_2*B14_2;
-    Ps[15] = P[15] - (B1_0*B1_0) - (B1_1*B1_1) - (B1_2*B1_2);
-    Ps[16] = P[16] - B1_0*B2_0 - B1_1*B2_1 - B1_2*B2_2;
-    Ps[17] = P[17] - B1_0*B3_0 - B1_1*B3_1 - B1_2*B3_2;
-    Ps[18] = P[18] - B1_0*B4_0 - B1_1*B4_1 - B1_2*B4_2;
-    Ps[19] = P[19] - B1_0*B5_0 - B1_1*B5_1 - B1_2*B5_2;
-    Ps[20] = P[20] - B1_0*B6_0 - B1_1*B6_1 - B1_2*B6_2;
-    Ps[21] = P[21] - B1_0*B7_0 - B1_1*B7_1 - B1_2*B7_2;
-    Ps[22] = P[22] - B1_0*B8_0 - B1_1*B8_1 - B1_2*B8_2;
-    Ps[23] = P[23] - B1_0*B9_0 - B1_1*B9_1 - B1_2*B9_2;
-    Ps[24] = P[24] - B10_0*B1_0 - B10_1*B1_1 - B10_2*B1_2;
-    Ps[25] = P[25] - B11_0*B1_0 - B11_1*B1_1 - B11_2*B1_2;
-    Ps[26] = P[26] - B12_0*B1_0 - B12_1*B1_1 - B12_2*B1_2;
-    Ps[27] = P[27] - B13_0*B1_0 - B13_1*B1_1 - B13_2*B1_2;
-    Ps[28] = P[28] - B14_0*B1_0 - B14_1*B1_1 - B14_2*B1_2;
-    Ps[29] = P[29] - (B2_0*B2_0) - (B2_1*B2_1) - (B2_2*B2_2);
-    Ps[30] = P[30] - B2_0*B3_0 - B2_1*B3_1 - B2_2*B3_2;
-    Ps[31] = P[31] - B2_0*B4_0 - B2_1*B4_1 - B2_2*B4_2;
-    Ps[32] = P[32] - B2_0*B5_0 - B2_1*B5_1 - B2_2*B5_2;
-    Ps[33] = P[33] - B2_0*B6_0 - B2_1*B6_1 - B2_2*B6_2;
-    Ps[34] = P[34] - B2_0*B7_0 - B2_1*B7_1 - B2_2*B7_2;
-    Ps[35] = P[35] - B2_0*B8_0 - B2_1*B8_1 - B2_2*B8_2;
-    Ps[36] = P[36] - B2_0*B9_0 - B2_1*B9_1 - B2_2*B9_2;
-    Ps[37] = P[37] - B10_0*B2_0 - B10_1*B2_1 - B10_2*B2_2;
-    Ps[38] = P[38] - B11_0*B2_0 - B11_1*B2_1 - B11_2*B2_2;
-    Ps[39] = P[39] - B12_0*B2_0 - B12_1*B2_1 - B12_2*B2_2;
-    Ps[40] = P[40] - B13_0*B2_0 - B13_1*B2_1 - B13_2*B2_2;
-    Ps[41] = P[41] - B14_0*B2_0 - B14_1*B2_1 - B14_2*B2_2;
-    Ps[42] = P[42] - (B3_0*B3_0) - (B3_1*B3_1) - (B3_2*B3_2);
-    Ps[43] = P[43] - B3_0*B4_0 - B3_1*B4_1 - B3_2*B4_2;
-    Ps[44] = P[44] - B3_0*B5_0 - B3_1*B5_1 - B3_2*B5_2;
-    Ps[45] = P[45] - B3_0*B6_0 - B3_1*B6_1 - B3_2*B6_2;
-    Ps[46] = P[46] - B3_0*B7_0 - B3_1*B7_1 - B3_2*B7_2;
-    Ps[47] = P[47] - B3_0*B8_0 - B3_1*B8_1 - B3_2*B8_2;
-    Ps[48] = P[48] - B3_0*B9_0 - B3_1*B9_1 - B3_2*B9_2;
-    Ps[49] = P[49] - B10_0*B3_0 - B10_1*B3_1 - B10_2*B3_2;
-    Ps[50] = P[50] - B11_0*B3_0 - B11_1*B3_1 - B11_2*B3_2;
-    Ps[51] = P[51] - B12_0*B3_0 - B12_1*B3_1 - B12_2*B3_2;
-    Ps[52] = P[52] - B13_0*B3_0 - B13_1*B3_1 - B13_2*B3_2;
-    Ps[53] = P[53] - B14_0*B3_0 - B14_1*B3_1 - B14_2*B3_2;
-    Ps[54] = P[54] - (B4_0*B4_0) - (B4_1*B4_1) - (B4_2*B4_2);
-    Ps[55] = P[55] - B4_0*B5_0 - B4_1*B5_1 - B4_2*B5_2;
-    Ps[56] = P[56] - B4_0*B6_0 - B4_1*B6_1 - B4_2*B6_2;
-    Ps[57] = P[57] - B4_0*B7_0 - B4_1*B7_1 - B4_2*B7_2;
-    Ps[58] = P[58] - B4_0*B8_0 - B4_1*B8_1 - B4_2*B8_2;
-    Ps[59] = P[59] - B4_0*B9_0 - B4_1*B9_1 - B4_2*B9_2;
-    Ps[60] = P[60] - B10_0*B4_0 - B10_1*B4_1 - B10_2*B4_2;
-    Ps[61] = P[61] - B11_0*B4_0 - B11_1*B4_1 - B11_2*B4_2;
-    Ps[62] = P[62] - B12_0*B4_0 - B12_1*B4_1 - B12_2*B4_2;
-    Ps[63] = P[63] - B13_0*B4_0 - B13_1*B4_1 - B13_2*B4_2;
-    Ps[64] = P[64] - B14_0*B4_0 - B14_1*B4_1 - B14_2*B4_2;
-    Ps[65] = P[65] - (B5_0*B5_0) - (B5_1*B5_1) - (B5_2*B5_2);
-    Ps[66] = P[66] - B5_0*B6_0 - B5_1*B6_1 - B5_2*B6_2;
-    Ps[67] = P[67] - B5_0*B7_0 - B5_1*B7_1 - B5_2*B7_2;
-    Ps[68] = P[68] - B5_0*B8_0 - B5_1*B8_1 - B5_2*B8_2;
-    Ps[69] = P[69] - B5_0*B9_0 - B5_1*B9_1 - B5_2*B9_2;
-    Ps[70] = P[70] - B10_0*B5_0 - B10_1*B5_1 - B10_2*B5_2;
-    Ps[71] = P[71] - B11_0*B5_0 - B11_1*B5_1 - B11_2*B5_2;
-    Ps[72] = P[72] - B12_0*B5_0 - B12_1*B5_1 - B12_2*B5_2;
-    Ps[73] = P[73] - B13_0*B5_0 - B13_1*B5_1 - B13_2*B5_2;
-    Ps[74] = P[74] - B14_0*B5_0 - B14_1*B5_1 - B14_2*B5_2;
-    Ps[75] = P[75] - (B6_0*B6_0) - (B6_1*B6_1) - (B6_2*B6_2);
-    Ps[76] = P[76] - B6_0*B7_0 - B6_1*B7_1 - B6_2*B7_2;
-    Ps[77] = P[77] - B6_0*B8_0 - B6_1*B8_1 - B6_2*B8_2;
-    Ps[78] = P[78] - B6_0*B9_0 - B6_1*B9_1 - B6_2*B9_2;
-    Ps[79] = P[79] - B10_0*B6_0 - B10_1*B6_1 - B10_2*B6_2;
-    Ps[80] = P[80] - B11_0*B6_0 - B11_1*B6_1 - B11_2*B6_2;
-    Ps[81] = P[81] - B12_0*B6_0 - B12_1*B6_1 - B12_2*B6_2;
-    Ps[82] = P[82] - B13_0*B6_0 - B13_1*B6_1 - B13_2*B6_2;
-    Ps[83] = P[83] - B14_0*B6_0 - B14_1*B6_1 - B14_2*B6_2;
-    Ps[84] = P[84] - (B7_0*B7_0) - (B7_1*B7_1) - (B7_2*B7_2);
-    Ps[85] = P[85] - B7_0*B8_0 - B7_1*B8_1 - B7_2*B8_2;
-    Ps[86] = P[86] - B7_0*B9_0 - B7_1*B9_1 - B7_2*B9_2;
-    Ps[87] = P[87] - B10_0*B7_0 - B10_1*B7_1 - B10_2*B7_2;
-    Ps[88] = P[88] - B11_0*B7_0 - B11_1*B7_1 - B11_2*B7_2;
-    Ps[89] = P[89] - B12_0*B7_0 - B12_1*B7_1 - B12_2*B7_2;
-    Ps[90] = P[90] - B13_0*B7_0 - B13_1*B7_1 - B13_2*B7_2;
-    Ps[91] = P[91] - B14_0*B7_0 - B14_1*B7_1 - B14_2*B7_2;
-    Ps[92] = P[92] - (B8_0*B8_0) - (B8_1*B8_1) - (B8_2*B8_2);
-    Ps[93] = P[93] - B8_0*B9_0 - B8_1*B9_1 - B8_2*B9_2;
-    Ps[94] = P[94] - B10_0*B8_0 - B10_1*B8_1 - B10_2*B8_2;
-    Ps[95] = P[95] - B11_0*B8_0 - B11_1*B8_1 - B11_2*B8_2;
-    Ps[96] = P[96] - B12_0*B8_0 - B12_1*B8_1 - B12_2*B8_2;
-    Ps[97] = P[97] - B13_0*B8_0 - B13_1*B8_1 - B13_2*B8_2;
-    Ps[98] = P[98] - B14_0*B8_0 - B14_1*B8_1 - B14_2*B8_2;
-    Ps[99] = P[99] - (B9_0*B9_0) - (B9_1*B9_1) - (B9_2*B9_2);
-    Ps[100] = P[100] - B10_0*B9_0 - B10_1*B9_1 - B10_2*B9_2;
-    Ps[101] = P[101] - B11_0*B9_0 - B11_1*B9_1 - B11_2*B9_2;
-    Ps[102] = P[102] - B12_0*B9_0 - B12_1*B9_1 - B12_2*B9_2;
-    Ps[103] = P[103] - B13_0*B9_0 - B13_1*B9_1 - B13_2*B9_2;
-    Ps[104] = P[104] - B14_0*B9_0 - B14_1*B9_1 - B14_2*B9_2;
-    Ps[105] = P[105] - (B10_0*B10_0) - (B10_1*B10_1) - (B10_2*B10_2);
-    Ps[106] = P[106] - B10_0*B11_0 - B10_1*B11_1 - B10_2*B11_2;
-    Ps[107] = P[107] - B10_0*B12_0 - B10_1*B12_1 - B10_2*B12_2;
-    Ps[108] = P[108] - B10_0*B13_0 - B10_1*B13_1 - B10_2*B13_2;
-    Ps[109] = P[109] - B10_0*B14_0 - B10_1*B14_1 - B10_2*B14_2;
-    Ps[110] = P[110] - (B11_0*B11_0) - (B11_1*B11_1) - (B11_2*B11_2);
-    Ps[111] = P[111] - B11_0*B12_0 - B11_1*B12_1 - B11_2*B12_2;
-    Ps[112] = P[112] - B11_0*B13_0 - B11_1*B13_1 - B11_2*B13_2;
-    Ps[113] = P[113] - B11_0*B14_0 - B11_1*B14_1 - B11_2*B14_2;
-    Ps[114] = P[114] - (B12_0*B12_0) - (B12_1*B12_1) - (B12_2*B12_2);
-    Ps[115] = P[115] - B12_0*B13_0 - B12_1*B13_1 - B12_2*B13_2;
-    Ps[116] = P[116] - B12_0*B14_0 - B12_1*B14_1 - B12_2*B14_2;
-    Ps[117] = P[117] - (B13_0*B13_0) - (B13_1*B13_1) - (B13_2*B13_2);
-    Ps[118] = P[118] - B13_0*B14_0 - B13_1*B14_1 - B13_2*B14_2;
-    Ps[119] = P[119] - (B14_0*B14_0) - (B14_1*B14_1) - (B14_2*B14_2);
-    /* angle states wrapped to (-pi, pi] */
+    /* B = C Ls^-T (in place), x + B b, P - B B' (= P - K S K') */
+    for (a = 0u; a < 15u; ++a) {
+        double e = 0.0;
+        for (k = 0u; k < 3u; ++k) {
+            for (b = 0u; b < k; ++b) {
+                Cx[a][k] -= Ls[k][b] * Cx[a][b];
+            }
+            Cx[a][k] *= Lsi[k];
+            e += Cx[a][k] * bv[k];
+        }
+        xs[a] = x[a] + e;
+    }
+    q = 0u;
+    for (a = 0u; a < 15u; ++a) {
+        for (b = a; b < 15u; ++b) {
+            double e = P[q];
+            for (k = 0u; k < 3u; ++k) {
+                e -= Cx[a][k] * Cx[b][k];
+            }
+            Ps[q] = e;
+            ++q;
+        }
+    }
     xs[nav_ukf_ix_roll] = nav_ukf_wrap(xs[nav_ukf_ix_roll]);
     xs[nav_ukf_ix_pitch] = nav_ukf_wrap(xs[nav_ukf_ix_pitch]);
     xs[nav_ukf_ix_yaw] = nav_ukf_wrap(xs[nav_ukf_ix_yaw]);
@@ -2319,6 +924,7 @@ int nav_ukf_update_baro_nis(nav_ukf_t *s, const double *z, double *nis_out)
 {
     double xs[15];
     double Ps[120];
+    double Lf[120];
     double y[1];
     double nis;
     const double *x = s->x;
@@ -2328,23 +934,110 @@ int nav_ukf_update_baro_nis(nav_ukf_t *s, const double *z, double *nis_out)
     }
 
     {
-        double Lf[120];  /* only the check that P is positive definite: the code below is linear in x */
         const int st = nav_ukf_factor(P, Lf);
         if (st != NAV_UKF_OK) {
             return st;
         }
     }
-    /* innovation y = z - weighted mean of the sigma points through h */
-    y[0] = x[nav_ukf_ix_pd] + z[0];
-    /* innovation covariance S (+ R) */
-    const double S0_0 = 0.09 + P[29];
-    /* factor S (pivots checked) */
-    const double Sd0 = S0_0;
-    if (!isfinite(Sd0)) { return NAV_UKF_NON_FINITE; }
-    if (!(Sd0 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double iS = (1.0/Sd0);
-    /* NIS = y' S^-1 y */
-    nis = iS*(y[0]*y[0]);
+    /* loop form: the 2N+1 sigma points through the static h, one at a time; their images in Zt */
+    double Zt[1][31];  /* image of sigma point i, component a, at Zt[a][i] */
+    double zv[1];
+    double zm[1];  /* predicted measurement */
+    double Sv[1][1];  /* innovation covariance S (lower triangle) */
+    double Ls[1][1];  /* its Cholesky factor */
+    double Lsi[1];  /* 1 / Ls[k][k] */
+    double bv[1];  /* Ls^-1 y */
+    double Cx[15][1];  /* cross covariance C = cov(x, z), then B = C Ls^-T in place */
+    double xa[15];  /* the sigma point */
+    size_t i;
+    size_t a;
+    size_t b;
+    size_t r;
+    size_t k;
+    size_t q;
+    for (i = 0u; i < 31u; ++i) {
+        memcpy(xa, x, 15u * sizeof xa[0]);
+        if (i > 0u) {
+            const size_t c = (i - 1u) % 15u;
+            const double g = (i <= 15u) ? 3.872983346207417 : -3.872983346207417;
+            const double *lc = &Lf[nav_ukf_pku(c, c)];  /* column c of L, rows c..14 */
+            for (r = c; r < 15u; ++r) {
+                xa[r] += g * lc[r - c];
+            }
+        }
+        nav_ukf_h_baro(xa, zv);
+        for (a = 0u; a < 1u; ++a) {
+            Zt[a][i] = zv[a];
+        }
+    }
+    /* weighted mean (circular for angle components), deviations about it (wrapped) */
+    for (a = 0u; a < 1u; ++a) {
+        double acc = 0.0;
+        for (i = 1u; i < 31u; ++i) {
+            acc += Zt[a][i];
+        }
+        zm[a] = 0.0 * Zt[a][0] + 0.03333333333333333 * acc;
+    }
+    for (a = 0u; a < 1u; ++a) {
+        for (i = 0u; i < 31u; ++i) {
+            Zt[a][i] -= zm[a];
+        }
+    }
+    y[0] = z[0] - zm[0];
+    /* S = Wc0 d0 d0' + Wi sum_i di di' + R */
+    for (a = 0u; a < 1u; ++a) {
+        for (b = 0u; b <= a; ++b) {
+            double acc = 0.0;
+            for (i = 1u; i < 31u; ++i) {
+                acc += Zt[a][i] * Zt[b][i];
+            }
+            Sv[a][b] = 2.0 * Zt[a][0] * Zt[b][0] + 0.03333333333333333 * acc;
+        }
+    }
+    Sv[0][0] = 0.09 + Sv[0][0];
+    /* C = sum_i Wc_i dX_i dZ_i': dX of the pair i is +-gamma column i of L (zero for noise columns) */
+    memset(Cx, 0, sizeof Cx);
+    for (i = 0u; i < 15u; ++i) {
+        const double *lc = &Lf[nav_ukf_pku(i, i)];  /* column i of L, rows i..14 */
+        for (k = 0u; k < 1u; ++k) {
+            const double dz = 0.12909944487358058 * (Zt[k][i + 1u] - Zt[k][i + 16u]);
+            for (a = i; a < 15u; ++a) {
+                Cx[a][k] += lc[a - i] * dz;
+            }
+        }
+    }
+    /* factor S = Ls Ls' (pivots checked) */
+    for (b = 0u; b < 1u; ++b) {
+        double d = Sv[b][b];
+        for (k = 0u; k < b; ++k) {
+            d -= Ls[b][k] * Ls[b][k];
+        }
+        if (!isfinite(d)) {
+            return NAV_UKF_NON_FINITE;
+        }
+        if (!(d > 0.0)) {
+            return NAV_UKF_NOT_POSITIVE_DEFINITE;
+        }
+        Ls[b][b] = sqrt(d);
+        Lsi[b] = 1.0 / Ls[b][b];
+        for (a = b + 1u; a < 1u; ++a) {
+            double e = Sv[a][b];
+            for (k = 0u; k < b; ++k) {
+                e -= Ls[a][k] * Ls[b][k];
+            }
+            Ls[a][b] = e * Lsi[b];
+        }
+    }
+    /* NIS = y' S^-1 y = b' b with b = Ls^-1 y */
+    nis = 0.0;
+    for (a = 0u; a < 1u; ++a) {
+        double e = y[a];
+        for (k = 0u; k < a; ++k) {
+            e -= Ls[a][k] * bv[k];
+        }
+        bv[a] = e * Lsi[a];
+        nis += bv[a] * bv[a];
+    }
     /* the NIS is complete: report it, and gate before the posterior is formed */
     if (!isfinite(nis)) {
         return NAV_UKF_NON_FINITE;
@@ -2353,160 +1046,29 @@ int nav_ukf_update_baro_nis(nav_ukf_t *s, const double *z, double *nis_out)
         *nis_out = nis;
     }
 
-    /* gain */
-    const double K0 = -P[2]*iS;
-    const double K1 = -P[16]*iS;
-    const double K2 = -P[29]*iS;
-    const double K3 = -P[30]*iS;
-    const double K4 = -P[31]*iS;
-    const double K5 = -P[32]*iS;
-    const double K6 = -P[33]*iS;
-    const double K7 = -P[34]*iS;
-    const double K8 = -P[35]*iS;
-    const double K9 = -P[36]*iS;
-    const double K10 = -P[37]*iS;
-    const double K11 = -P[38]*iS;
-    const double K12 = -P[39]*iS;
-    const double K13 = -P[40]*iS;
-    const double K14 = -P[41]*iS;
-    /* updated state x + K y */
-    xs[nav_ukf_ix_pn] = x[nav_ukf_ix_pn] + K0*y[0];
-    xs[nav_ukf_ix_pe] = x[nav_ukf_ix_pe] + K1*y[0];
-    xs[nav_ukf_ix_pd] = x[nav_ukf_ix_pd] + K2*y[0];
-    xs[nav_ukf_ix_vn] = x[nav_ukf_ix_vn] + K3*y[0];
-    xs[nav_ukf_ix_ve] = x[nav_ukf_ix_ve] + K4*y[0];
-    xs[nav_ukf_ix_vd] = x[nav_ukf_ix_vd] + K5*y[0];
-    xs[nav_ukf_ix_roll] = x[nav_ukf_ix_roll] + K6*y[0];
-    xs[nav_ukf_ix_pitch] = x[nav_ukf_ix_pitch] + K7*y[0];
-    xs[nav_ukf_ix_yaw] = x[nav_ukf_ix_yaw] + K8*y[0];
-    xs[nav_ukf_ix_bgx] = x[nav_ukf_ix_bgx] + K9*y[0];
-    xs[nav_ukf_ix_bgy] = x[nav_ukf_ix_bgy] + K10*y[0];
-    xs[nav_ukf_ix_bgz] = x[nav_ukf_ix_bgz] + K11*y[0];
-    xs[nav_ukf_ix_bax] = x[nav_ukf_ix_bax] + K12*y[0];
-    xs[nav_ukf_ix_bay] = x[nav_ukf_ix_bay] + K13*y[0];
-    xs[nav_ukf_ix_baz] = x[nav_ukf_ix_baz] + K14*y[0];
-    /* covariance P - K S K', upper triangle, packed */
-    Ps[0] = P[0] + K0*P[2];
-    Ps[1] = P[1] + K0*P[16];
-    Ps[2] = P[2] + K0*P[29];
-    Ps[3] = P[3] + K0*P[30];
-    Ps[4] = P[4] + K0*P[31];
-    Ps[5] = P[5] + K0*P[32];
-    Ps[6] = P[6] + K0*P[33];
-    Ps[7] = P[7] + K0*P[34];
-    Ps[8] = P[8] + K0*P[35];
-    Ps[9] = P[9] + K0*P[36];
-    Ps[10] = P[10] + K0*P[37];
-    Ps[11] = P[11] + K0*P[38];
-    Ps[12] = P[12] + K0*P[39];
-    Ps[13] = P[13] + K0*P[40];
-    Ps[14] = P[14] + K0*P[41];
-    Ps[15] = P[15] + K1*P[16];
-    Ps[16] = P[16] + K1*P[29];
-    Ps[17] = P[17] + K1*P[30];
-    Ps[18] = P[18] + K1*P[31];
-    Ps[19] = P[19] + K1*P[32];
-    Ps[20] = P[20] + K1*P[33];
-    Ps[21] = P[21] + K1*P[34];
-    Ps[22] = P[22] + K1*P[35];
-    Ps[23] = P[23] + K1*P[36];
-    Ps[24] = P[24] + K1*P[37];
-    Ps[25] = P[25] + K1*P[38];
-    Ps[26] = P[26] + K1*P[39];
-    Ps[27] = P[27] + K1*P[40];
-    Ps[28] = P[28] + K1*P[41];
-    Ps[29] = P[29] + K2*P[29];
-    Ps[30] = P[30] + K2*P[30];
-    Ps[31] = P[31] + K2*P[31];
-    Ps[32] = P[32] + K2*P[32];
-    Ps[33] = P[33] + K2*P[33];
-    Ps[34] = P[34] + K2*P[34];
-    Ps[35] = P[35] + K2*P[35];
-    Ps[36] = P[36] + K2*P[36];
-    Ps[37] = P[37] + K2*P[37];
-    Ps[38] = P[38] + K2*P[38];
-    Ps[39] = P[39] + K2*P[39];
-    Ps[40] = P[40] + K2*P[40];
-    Ps[41] = P[41] + K2*P[41];
-    Ps[42] = P[42] + K3*P[30];
-    Ps[43] = P[43] + K3*P[31];
-    Ps[44] = P[44] + K3*P[32];
-    Ps[45] = P[45] + K3*P[33];
-    Ps[46] = P[46] + K3*P[34];
-    Ps[47] = P[47] + K3*P[35];
-    Ps[48] = P[48] + K3*P[36];
-    Ps[49] = P[49] + K3*P[37];
-    Ps[50] = P[50] + K3*P[38];
-    Ps[51] = P[51] + K3*P[39];
-    Ps[52] = P[52] + K3*P[40];
-    Ps[53] = P[53] + K3*P[41];
-    Ps[54] = P[54] + K4*P[31];
-    Ps[55] = P[55] + K4*P[32];
-    Ps[56] = P[56] + K4*P[33];
-    Ps[57] = P[57] + K4*P[34];
-    Ps[58] = P[58] + K4*P[35];
-    Ps[59] = P[59] + K4*P[36];
-    Ps[60] = P[60] + K4*P[37];
-    Ps[61] = P[61] + K4*P[38];
-    Ps[62] = P[62] + K4*P[39];
-    Ps[63] = P[63] + K4*P[40];
-    Ps[64] = P[64] + K4*P[41];
-    Ps[65] = P[65] + K5*P[32];
-    Ps[66] = P[66] + K5*P[33];
-    Ps[67] = P[67] + K5*P[34];
-    Ps[68] = P[68] + K5*P[35];
-    Ps[69] = P[69] + K5*P[36];
-    Ps[70] = P[70] + K5*P[37];
-    Ps[71] = P[71] + K5*P[38];
-    Ps[72] = P[72] + K5*P[39];
-    Ps[73] = P[73] + K5*P[40];
-    Ps[74] = P[74] + K5*P[41];
-    Ps[75] = P[75] + K6*P[33];
-    Ps[76] = P[76] + K6*P[34];
-    Ps[77] = P[77] + K6*P[35];
-    Ps[78] = P[78] + K6*P[36];
-    Ps[79] = P[79] + K6*P[37];
-    Ps[80] = P[80] + K6*P[38];
-    Ps[81] = P[81] + K6*P[39];
-    Ps[82] = P[82] + K6*P[40];
-    Ps[83] = P[83] + K6*P[41];
-    Ps[84] = P[84] + K7*P[34];
-    Ps[85] = P[85] + K7*P[35];
-    Ps[86] = P[86] + K7*P[36];
-    Ps[87] = P[87] + K7*P[37];
-    Ps[88] = P[88] + K7*P[38];
-    Ps[89] = P[89] + K7*P[39];
-    Ps[90] = P[90] + K7*P[40];
-    Ps[91] = P[91] + K7*P[41];
-    Ps[92] = P[92] + K8*P[35];
-    Ps[93] = P[93] + K8*P[36];
-    Ps[94] = P[94] + K8*P[37];
-    Ps[95] = P[95] + K8*P[38];
-    Ps[96] = P[96] + K8*P[39];
-    Ps[97] = P[97] + K8*P[40];
-    Ps[98] = P[98] + K8*P[41];
-    Ps[99] = P[99] + K9*P[36];
-    Ps[100] = P[100] + K9*P[37];
-    Ps[101] = P[101] + K9*P[38];
-    Ps[102] = P[102] + K9*P[39];
-    Ps[103] = P[103] + K9*P[40];
-    Ps[104] = P[104] + K9*P[41];
-    Ps[105] = P[105] + K10*P[37];
-    Ps[106] = P[106] + K10*P[38];
-    Ps[107] = P[107] + K10*P[39];
-    Ps[108] = P[108] + K10*P[40];
-    Ps[109] = P[109] + K10*P[41];
-    Ps[110] = P[110] + K11*P[38];
-    Ps[111] = P[111] + K11*P[39];
-    Ps[112] = P[112] + K11*P[40];
-    Ps[113] = P[113] + K11*P[41];
-    Ps[114] = P[114] + K12*P[39];
-    Ps[115] = P[115] + K12*P[40];
-    Ps[116] = P[116] + K12*P[41];
-    Ps[117] = P[117] + K13*P[40];
-    Ps[118] = P[118] + K13*P[41];
-    Ps[119] = P[119] + K14*P[41];
-    /* angle states wrapped to (-pi, pi] */
+    /* B = C Ls^-T (in place), x + B b, P - B B' (= P - K S K') */
+    for (a = 0u; a < 15u; ++a) {
+        double e = 0.0;
+        for (k = 0u; k < 1u; ++k) {
+            for (b = 0u; b < k; ++b) {
+                Cx[a][k] -= Ls[k][b] * Cx[a][b];
+            }
+            Cx[a][k] *= Lsi[k];
+            e += Cx[a][k] * bv[k];
+        }
+        xs[a] = x[a] + e;
+    }
+    q = 0u;
+    for (a = 0u; a < 15u; ++a) {
+        for (b = a; b < 15u; ++b) {
+            double e = P[q];
+            for (k = 0u; k < 1u; ++k) {
+                e -= Cx[a][k] * Cx[b][k];
+            }
+            Ps[q] = e;
+            ++q;
+        }
+    }
     xs[nav_ukf_ix_roll] = nav_ukf_wrap(xs[nav_ukf_ix_roll]);
     xs[nav_ukf_ix_pitch] = nav_ukf_wrap(xs[nav_ukf_ix_pitch]);
     xs[nav_ukf_ix_yaw] = nav_ukf_wrap(xs[nav_ukf_ix_yaw]);
@@ -2539,7 +1101,6 @@ int nav_ukf_update_mag_heading_nis(nav_ukf_t *s, const double *z, double *nis_ou
     double Ps[120];
     double Lf[120];
     double y[1];
-    double ea[25];
     double nis;
     const double *x = s->x;
     const double *P = s->P;
@@ -2553,94 +1114,117 @@ int nav_ukf_update_mag_heading_nis(nav_ukf_t *s, const double *z, double *nis_ou
             return st;
         }
     }
-    /* sigma-point offsets gamma L_i (L L' = P) */
-    const double hg8_0 = 3.872983346207417*Lf[8];
-    const double hg8_1 = 3.872983346207417*Lf[22];
-    const double hg8_2 = 3.872983346207417*Lf[35];
-    const double hg8_3 = 3.872983346207417*Lf[47];
-    const double hg8_4 = 3.872983346207417*Lf[58];
-    const double hg8_5 = 3.872983346207417*Lf[68];
-    const double hg8_6 = 3.872983346207417*Lf[77];
-    const double hg8_7 = 3.872983346207417*Lf[85];
-    const double hg8_8 = 3.872983346207417*Lf[92];
-    const double hkk0 = 12.0 + 2.0*cos(hg8_0) + 2.0*cos(hg8_1) + 2.0*cos(hg8_2) + 2.0*cos(hg8_3) + 2.0*cos(hg8_4) + 2.0*cos(hg8_5) + 2.0*cos(hg8_6) + 2.0*cos(hg8_7) + 2.0*cos(hg8_8);
-    const double hmu0 = atan2(hkk0*sin(x[nav_ukf_ix_yaw]), hkk0*cos(x[nav_ukf_ix_yaw]));
-    ea[0] = nav_ukf_wrap(x[nav_ukf_ix_yaw] - hmu0);
-    ea[1] = nav_ukf_wrap(hg8_0 + x[nav_ukf_ix_yaw] - hmu0);
-    ea[2] = nav_ukf_wrap(x[nav_ukf_ix_yaw] - hg8_0 - hmu0);
-    const double hu0_0 = 0.12909944487358055*(ea[1] - ea[2]);
-    const double hv0_0 = 0.12909944487358055*(ea[1] + ea[2]);
-    ea[3] = nav_ukf_wrap(hg8_1 + x[nav_ukf_ix_yaw] - hmu0);
-    ea[4] = nav_ukf_wrap(x[nav_ukf_ix_yaw] - hg8_1 - hmu0);
-    const double hu1_0 = 0.12909944487358055*(ea[3] - ea[4]);
-    const double hv1_0 = 0.12909944487358055*(ea[3] + ea[4]);
-    ea[5] = nav_ukf_wrap(hg8_2 + x[nav_ukf_ix_yaw] - hmu0);
-    ea[6] = nav_ukf_wrap(x[nav_ukf_ix_yaw] - hg8_2 - hmu0);
-    const double hu2_0 = 0.12909944487358055*(ea[5] - ea[6]);
-    const double hv2_0 = 0.12909944487358055*(ea[5] + ea[6]);
-    ea[7] = nav_ukf_wrap(hg8_3 + x[nav_ukf_ix_yaw] - hmu0);
-    ea[8] = nav_ukf_wrap(x[nav_ukf_ix_yaw] - hg8_3 - hmu0);
-    const double hu3_0 = 0.12909944487358055*(ea[7] - ea[8]);
-    const double hv3_0 = 0.12909944487358055*(ea[7] + ea[8]);
-    ea[9] = nav_ukf_wrap(hg8_4 + x[nav_ukf_ix_yaw] - hmu0);
-    ea[10] = nav_ukf_wrap(x[nav_ukf_ix_yaw] - hg8_4 - hmu0);
-    const double hu4_0 = 0.12909944487358055*(ea[9] - ea[10]);
-    const double hv4_0 = 0.12909944487358055*(ea[10] + ea[9]);
-    ea[11] = nav_ukf_wrap(hg8_5 + x[nav_ukf_ix_yaw] - hmu0);
-    ea[12] = nav_ukf_wrap(x[nav_ukf_ix_yaw] - hg8_5 - hmu0);
-    const double hu5_0 = 0.12909944487358055*(ea[11] - ea[12]);
-    const double hv5_0 = 0.12909944487358055*(ea[11] + ea[12]);
-    ea[13] = nav_ukf_wrap(hg8_6 + x[nav_ukf_ix_yaw] - hmu0);
-    ea[14] = nav_ukf_wrap(x[nav_ukf_ix_yaw] - hg8_6 - hmu0);
-    const double hu6_0 = 0.12909944487358055*(ea[13] - ea[14]);
-    const double hv6_0 = 0.12909944487358055*(ea[13] + ea[14]);
-    ea[15] = nav_ukf_wrap(hg8_7 + x[nav_ukf_ix_yaw] - hmu0);
-    ea[16] = nav_ukf_wrap(x[nav_ukf_ix_yaw] - hg8_7 - hmu0);
-    const double hu7_0 = 0.12909944487358055*(ea[15] - ea[16]);
-    const double hv7_0 = 0.12909944487358055*(ea[15] + ea[16]);
-    ea[17] = nav_ukf_wrap(hg8_8 + x[nav_ukf_ix_yaw] - hmu0);
-    ea[18] = nav_ukf_wrap(x[nav_ukf_ix_yaw] - hg8_8 - hmu0);
-    const double hu8_0 = 0.12909944487358055*(ea[17] - ea[18]);
-    const double hv8_0 = 0.12909944487358055*(ea[17] + ea[18]);
-    ea[19] = nav_ukf_wrap(x[nav_ukf_ix_yaw] - hmu0);
-    const double hv9_0 = 0.2581988897471611*ea[19];
-    ea[20] = nav_ukf_wrap(x[nav_ukf_ix_yaw] - hmu0);
-    const double hv10_0 = 0.2581988897471611*ea[20];
-    ea[21] = nav_ukf_wrap(x[nav_ukf_ix_yaw] - hmu0);
-    const double hv11_0 = 0.2581988897471611*ea[21];
-    ea[22] = nav_ukf_wrap(x[nav_ukf_ix_yaw] - hmu0);
-    const double hv12_0 = 0.2581988897471611*ea[22];
-    ea[23] = nav_ukf_wrap(x[nav_ukf_ix_yaw] - hmu0);
-    const double hv13_0 = 0.2581988897471611*ea[23];
-    ea[24] = nav_ukf_wrap(x[nav_ukf_ix_yaw] - hmu0);
-    const double hv14_0 = 0.2581988897471611*ea[24];
-    /* innovation y = z - weighted mean of the sigma points through h */
-    y[0] = nav_ukf_wrap(z[0] - hmu0);
-    /* cross covariance C = cov(x, z) */
-    const double C0_0 = Lf[0]*hu0_0;
-    const double C1_0 = Lf[15]*hu1_0 + Lf[1]*hu0_0;
-    const double C2_0 = Lf[16]*hu1_0 + Lf[29]*hu2_0 + Lf[2]*hu0_0;
-    const double C3_0 = Lf[17]*hu1_0 + Lf[30]*hu2_0 + Lf[3]*hu0_0 + Lf[42]*hu3_0;
-    const double C4_0 = Lf[18]*hu1_0 + Lf[31]*hu2_0 + Lf[43]*hu3_0 + Lf[4]*hu0_0 + Lf[54]*hu4_0;
-    const double C5_0 = Lf[19]*hu1_0 + Lf[32]*hu2_0 + Lf[44]*hu3_0 + Lf[55]*hu4_0 + Lf[5]*hu0_0 + Lf[65]*hu5_0;
-    const double C6_0 = Lf[20]*hu1_0 + Lf[33]*hu2_0 + Lf[45]*hu3_0 + Lf[56]*hu4_0 + Lf[66]*hu5_0 + Lf[6]*hu0_0 + Lf[75]*hu6_0;
-    const double C7_0 = Lf[21]*hu1_0 + Lf[34]*hu2_0 + Lf[46]*hu3_0 + Lf[57]*hu4_0 + Lf[67]*hu5_0 + Lf[76]*hu6_0 + Lf[7]*hu0_0 + Lf[84]*hu7_0;
-    const double C8_0 = Lf[22]*hu1_0 + Lf[35]*hu2_0 + Lf[47]*hu3_0 + Lf[58]*hu4_0 + Lf[68]*hu5_0 + Lf[77]*hu6_0 + Lf[85]*hu7_0 + Lf[8]*hu0_0 + Lf[92]*hu8_0;
-    const double C9_0 = Lf[23]*hu1_0 + Lf[36]*hu2_0 + Lf[48]*hu3_0 + Lf[59]*hu4_0 + Lf[69]*hu5_0 + Lf[78]*hu6_0 + Lf[86]*hu7_0 + Lf[93]*hu8_0 + Lf[9]*hu0_0;
-    const double C10_0 = Lf[10]*hu0_0 + Lf[24]*hu1_0 + Lf[37]*hu2_0 + Lf[49]*hu3_0 + Lf[60]*hu4_0 + Lf[70]*hu5_0 + Lf[79]*hu6_0 + Lf[87]*hu7_0 + Lf[94]*hu8_0;
-    const double C11_0 = Lf[11]*hu0_0 + Lf[25]*hu1_0 + Lf[38]*hu2_0 + Lf[50]*hu3_0 + Lf[61]*hu4_0 + Lf[71]*hu5_0 + Lf[80]*hu6_0 + Lf[88]*hu7_0 + Lf[95]*hu8_0;
-    const double C12_0 = Lf[12]*hu0_0 + Lf[26]*hu1_0 + Lf[39]*hu2_0 + Lf[51]*hu3_0 + Lf[62]*hu4_0 + Lf[72]*hu5_0 + Lf[81]*hu6_0 + Lf[89]*hu7_0 + Lf[96]*hu8_0;
-    const double C13_0 = Lf[13]*hu0_0 + Lf[27]*hu1_0 + Lf[40]*hu2_0 + Lf[52]*hu3_0 + Lf[63]*hu4_0 + Lf[73]*hu5_0 + Lf[82]*hu6_0 + Lf[90]*hu7_0 + Lf[97]*hu8_0;
-    const double C14_0 = Lf[14]*hu0_0 + Lf[28]*hu1_0 + Lf[41]*hu2_0 + Lf[53]*hu3_0 + Lf[64]*hu4_0 + Lf[74]*hu5_0 + Lf[83]*hu6_0 + Lf[91]*hu7_0 + Lf[98]*hu8_0;
-    /* innovation covariance S (+ R) */
-    const double S0_0 = 0.0012184696791468343 + (hu0_0*hu0_0) + (hu1_0*hu1_0) + (hu2_0*hu2_0) + (hu3_0*hu3_0) + (hu4_0*hu4_0) + (hu5_0*hu5_0) + (hu6_0*hu6_0) + (hu7_0*hu7_0) + (hu8_0*hu8_0) + (hv0_0*hv0_0) + (hv10_0*hv10_0) + (hv11_0*hv11_0) + (hv12_0*hv12_0) + (hv13_0*hv13_0) + (hv14_0*hv14_0) + (hv1_0*hv1_0) + (hv2_0*hv2_0) + (hv3_0*hv3_0) + (hv4_0*hv4_0) + (hv5_0*hv5_0) + (hv6_0*hv6_0) + (hv7_0*hv7_0) + (hv8_0*hv8_0) + (hv9_0*hv9_0) + 2.0*(ea[0]*ea[0]);
-    /* factor S (pivots checked) */
-    const double Sd0 = S0_0;
-    if (!isfinite(Sd0)) { return NAV_UKF_NON_FINITE; }
-    if (!(Sd0 > 0.0)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const double iS = (1.0/Sd0);
-    /* NIS = y' S^-1 y */
-    nis = iS*(y[0]*y[0]);
+    /* loop form: the 2N+1 sigma points through the static h, one at a time; their images in Zt */
+    double Zt[1][31];  /* image of sigma point i, component a, at Zt[a][i] */
+    double zv[1];
+    double zm[1];  /* predicted measurement */
+    double Sv[1][1];  /* innovation covariance S (lower triangle) */
+    double Ls[1][1];  /* its Cholesky factor */
+    double Lsi[1];  /* 1 / Ls[k][k] */
+    double bv[1];  /* Ls^-1 y */
+    double Cx[15][1];  /* cross covariance C = cov(x, z), then B = C Ls^-T in place */
+    double xa[15];  /* the sigma point */
+    size_t i;
+    size_t a;
+    size_t b;
+    size_t r;
+    size_t k;
+    size_t q;
+    for (i = 0u; i < 31u; ++i) {
+        memcpy(xa, x, 15u * sizeof xa[0]);
+        if (i > 0u) {
+            const size_t c = (i - 1u) % 15u;
+            const double g = (i <= 15u) ? 3.872983346207417 : -3.872983346207417;
+            const double *lc = &Lf[nav_ukf_pku(c, c)];  /* column c of L, rows c..14 */
+            for (r = c; r < 15u; ++r) {
+                xa[r] += g * lc[r - c];
+            }
+        }
+        nav_ukf_h_mag_heading(xa, zv);
+        for (a = 0u; a < 1u; ++a) {
+            Zt[a][i] = zv[a];
+        }
+    }
+    /* weighted mean (circular for angle components), deviations about it (wrapped) */
+    for (a = 0u; a < 1u; ++a) {
+        double acc = 0.0;
+        for (i = 1u; i < 31u; ++i) {
+            acc += Zt[a][i];
+        }
+        zm[a] = 0.0 * Zt[a][0] + 0.03333333333333333 * acc;
+    }
+    {   /* component 0 is an angle: circular mean */
+        double ss = 0.0;
+        double cs = 0.0;
+        for (i = 1u; i < 31u; ++i) {
+            ss += sin(Zt[0u][i]);
+            cs += cos(Zt[0u][i]);
+        }
+        zm[0] = nav_ukf_wrap(atan2(0.0 * sin(Zt[0u][0]) + 0.03333333333333333 * ss, 0.0 * cos(Zt[0u][0]) + 0.03333333333333333 * cs));
+    }
+    for (a = 0u; a < 1u; ++a) {
+        for (i = 0u; i < 31u; ++i) {
+            Zt[a][i] -= zm[a];
+        }
+    }
+    for (i = 0u; i < 31u; ++i) {
+        Zt[0u][i] = nav_ukf_wrap(Zt[0u][i]);
+    }
+    y[0] = nav_ukf_wrap(z[0] - zm[0]);
+    /* S = Wc0 d0 d0' + Wi sum_i di di' + R */
+    for (a = 0u; a < 1u; ++a) {
+        for (b = 0u; b <= a; ++b) {
+            double acc = 0.0;
+            for (i = 1u; i < 31u; ++i) {
+                acc += Zt[a][i] * Zt[b][i];
+            }
+            Sv[a][b] = 2.0 * Zt[a][0] * Zt[b][0] + 0.03333333333333333 * acc;
+        }
+    }
+    Sv[0][0] = 0.0012184696791468343 + Sv[0][0];
+    /* C = sum_i Wc_i dX_i dZ_i': dX of the pair i is +-gamma column i of L (zero for noise columns) */
+    memset(Cx, 0, sizeof Cx);
+    for (i = 0u; i < 15u; ++i) {
+        const double *lc = &Lf[nav_ukf_pku(i, i)];  /* column i of L, rows i..14 */
+        for (k = 0u; k < 1u; ++k) {
+            const double dz = 0.12909944487358058 * (Zt[k][i + 1u] - Zt[k][i + 16u]);
+            for (a = i; a < 15u; ++a) {
+                Cx[a][k] += lc[a - i] * dz;
+            }
+        }
+    }
+    /* factor S = Ls Ls' (pivots checked) */
+    for (b = 0u; b < 1u; ++b) {
+        double d = Sv[b][b];
+        for (k = 0u; k < b; ++k) {
+            d -= Ls[b][k] * Ls[b][k];
+        }
+        if (!isfinite(d)) {
+            return NAV_UKF_NON_FINITE;
+        }
+        if (!(d > 0.0)) {
+            return NAV_UKF_NOT_POSITIVE_DEFINITE;
+        }
+        Ls[b][b] = sqrt(d);
+        Lsi[b] = 1.0 / Ls[b][b];
+        for (a = b + 1u; a < 1u; ++a) {
+            double e = Sv[a][b];
+            for (k = 0u; k < b; ++k) {
+                e -= Ls[a][k] * Ls[b][k];
+            }
+            Ls[a][b] = e * Lsi[b];
+        }
+    }
+    /* NIS = y' S^-1 y = b' b with b = Ls^-1 y */
+    nis = 0.0;
+    for (a = 0u; a < 1u; ++a) {
+        double e = y[a];
+        for (k = 0u; k < a; ++k) {
+            e -= Ls[a][k] * bv[k];
+        }
+        bv[a] = e * Lsi[a];
+        nis += bv[a] * bv[a];
+    }
     /* the NIS is complete: report it, and gate before the posterior is formed */
     if (!isfinite(nis)) {
         return NAV_UKF_NON_FINITE;
@@ -2649,160 +1233,29 @@ int nav_ukf_update_mag_heading_nis(nav_ukf_t *s, const double *z, double *nis_ou
         *nis_out = nis;
     }
 
-    /* gain */
-    const double K0 = C0_0*iS;
-    const double K1 = C1_0*iS;
-    const double K2 = C2_0*iS;
-    const double K3 = C3_0*iS;
-    const double K4 = C4_0*iS;
-    const double K5 = C5_0*iS;
-    const double K6 = C6_0*iS;
-    const double K7 = C7_0*iS;
-    const double K8 = C8_0*iS;
-    const double K9 = C9_0*iS;
-    const double K10 = C10_0*iS;
-    const double K11 = C11_0*iS;
-    const double K12 = C12_0*iS;
-    const double K13 = C13_0*iS;
-    const double K14 = C14_0*iS;
-    /* updated state x + K y */
-    xs[nav_ukf_ix_pn] = x[nav_ukf_ix_pn] + K0*y[0];
-    xs[nav_ukf_ix_pe] = x[nav_ukf_ix_pe] + K1*y[0];
-    xs[nav_ukf_ix_pd] = x[nav_ukf_ix_pd] + K2*y[0];
-    xs[nav_ukf_ix_vn] = x[nav_ukf_ix_vn] + K3*y[0];
-    xs[nav_ukf_ix_ve] = x[nav_ukf_ix_ve] + K4*y[0];
-    xs[nav_ukf_ix_vd] = x[nav_ukf_ix_vd] + K5*y[0];
-    xs[nav_ukf_ix_roll] = x[nav_ukf_ix_roll] + K6*y[0];
-    xs[nav_ukf_ix_pitch] = x[nav_ukf_ix_pitch] + K7*y[0];
-    xs[nav_ukf_ix_yaw] = x[nav_ukf_ix_yaw] + K8*y[0];
-    xs[nav_ukf_ix_bgx] = x[nav_ukf_ix_bgx] + K9*y[0];
-    xs[nav_ukf_ix_bgy] = x[nav_ukf_ix_bgy] + K10*y[0];
-    xs[nav_ukf_ix_bgz] = x[nav_ukf_ix_bgz] + K11*y[0];
-    xs[nav_ukf_ix_bax] = x[nav_ukf_ix_bax] + K12*y[0];
-    xs[nav_ukf_ix_bay] = x[nav_ukf_ix_bay] + K13*y[0];
-    xs[nav_ukf_ix_baz] = x[nav_ukf_ix_baz] + K14*y[0];
-    /* covariance P - K S K', upper triangle, packed */
-    Ps[0] = P[0] - C0_0*K0;
-    Ps[1] = P[1] - C1_0*K0;
-    Ps[2] = P[2] - C2_0*K0;
-    Ps[3] = P[3] - C3_0*K0;
-    Ps[4] = P[4] - C4_0*K0;
-    Ps[5] = P[5] - C5_0*K0;
-    Ps[6] = P[6] - C6_0*K0;
-    Ps[7] = P[7] - C7_0*K0;
-    Ps[8] = P[8] - C8_0*K0;
-    Ps[9] = P[9] - C9_0*K0;
-    Ps[10] = P[10] - C10_0*K0;
-    Ps[11] = P[11] - C11_0*K0;
-    Ps[12] = P[12] - C12_0*K0;
-    Ps[13] = P[13] - C13_0*K0;
-    Ps[14] = P[14] - C14_0*K0;
-    Ps[15] = P[15] - C1_0*K1;
-    Ps[16] = P[16] - C2_0*K1;
-    Ps[17] = P[17] - C3_0*K1;
-    Ps[18] = P[18] - C4_0*K1;
-    Ps[19] = P[19] - C5_0*K1;
-    Ps[20] = P[20] - C6_0*K1;
-    Ps[21] = P[21] - C7_0*K1;
-    Ps[22] = P[22] - C8_0*K1;
-    Ps[23] = P[23] - C9_0*K1;
-    Ps[24] = P[24] - C10_0*K1;
-    Ps[25] = P[25] - C11_0*K1;
-    Ps[26] = P[26] - C12_0*K1;
-    Ps[27] = P[27] - C13_0*K1;
-    Ps[28] = P[28] - C14_0*K1;
-    Ps[29] = P[29] - C2_0*K2;
-    Ps[30] = P[30] - C3_0*K2;
-    Ps[31] = P[31] - C4_0*K2;
-    Ps[32] = P[32] - C5_0*K2;
-    Ps[33] = P[33] - C6_0*K2;
-    Ps[34] = P[34] - C7_0*K2;
-    Ps[35] = P[35] - C8_0*K2;
-    Ps[36] = P[36] - C9_0*K2;
-    Ps[37] = P[37] - C10_0*K2;
-    Ps[38] = P[38] - C11_0*K2;
-    Ps[39] = P[39] - C12_0*K2;
-    Ps[40] = P[40] - C13_0*K2;
-    Ps[41] = P[41] - C14_0*K2;
-    Ps[42] = P[42] - C3_0*K3;
-    Ps[43] = P[43] - C4_0*K3;
-    Ps[44] = P[44] - C5_0*K3;
-    Ps[45] = P[45] - C6_0*K3;
-    Ps[46] = P[46] - C7_0*K3;
-    Ps[47] = P[47] - C8_0*K3;
-    Ps[48] = P[48] - C9_0*K3;
-    Ps[49] = P[49] - C10_0*K3;
-    Ps[50] = P[50] - C11_0*K3;
-    Ps[51] = P[51] - C12_0*K3;
-    Ps[52] = P[52] - C13_0*K3;
-    Ps[53] = P[53] - C14_0*K3;
-    Ps[54] = P[54] - C4_0*K4;
-    Ps[55] = P[55] - C5_0*K4;
-    Ps[56] = P[56] - C6_0*K4;
-    Ps[57] = P[57] - C7_0*K4;
-    Ps[58] = P[58] - C8_0*K4;
-    Ps[59] = P[59] - C9_0*K4;
-    Ps[60] = P[60] - C10_0*K4;
-    Ps[61] = P[61] - C11_0*K4;
-    Ps[62] = P[62] - C12_0*K4;
-    Ps[63] = P[63] - C13_0*K4;
-    Ps[64] = P[64] - C14_0*K4;
-    Ps[65] = P[65] - C5_0*K5;
-    Ps[66] = P[66] - C6_0*K5;
-    Ps[67] = P[67] - C7_0*K5;
-    Ps[68] = P[68] - C8_0*K5;
-    Ps[69] = P[69] - C9_0*K5;
-    Ps[70] = P[70] - C10_0*K5;
-    Ps[71] = P[71] - C11_0*K5;
-    Ps[72] = P[72] - C12_0*K5;
-    Ps[73] = P[73] - C13_0*K5;
-    Ps[74] = P[74] - C14_0*K5;
-    Ps[75] = P[75] - C6_0*K6;
-    Ps[76] = P[76] - C7_0*K6;
-    Ps[77] = P[77] - C8_0*K6;
-    Ps[78] = P[78] - C9_0*K6;
-    Ps[79] = P[79] - C10_0*K6;
-    Ps[80] = P[80] - C11_0*K6;
-    Ps[81] = P[81] - C12_0*K6;
-    Ps[82] = P[82] - C13_0*K6;
-    Ps[83] = P[83] - C14_0*K6;
-    Ps[84] = P[84] - C7_0*K7;
-    Ps[85] = P[85] - C8_0*K7;
-    Ps[86] = P[86] - C9_0*K7;
-    Ps[87] = P[87] - C10_0*K7;
-    Ps[88] = P[88] - C11_0*K7;
-    Ps[89] = P[89] - C12_0*K7;
-    Ps[90] = P[90] - C13_0*K7;
-    Ps[91] = P[91] - C14_0*K7;
-    Ps[92] = P[92] - C8_0*K8;
-    Ps[93] = P[93] - C9_0*K8;
-    Ps[94] = P[94] - C10_0*K8;
-    Ps[95] = P[95] - C11_0*K8;
-    Ps[96] = P[96] - C12_0*K8;
-    Ps[97] = P[97] - C13_0*K8;
-    Ps[98] = P[98] - C14_0*K8;
-    Ps[99] = P[99] - C9_0*K9;
-    Ps[100] = P[100] - C10_0*K9;
-    Ps[101] = P[101] - C11_0*K9;
-    Ps[102] = P[102] - C12_0*K9;
-    Ps[103] = P[103] - C13_0*K9;
-    Ps[104] = P[104] - C14_0*K9;
-    Ps[105] = P[105] - C10_0*K10;
-    Ps[106] = P[106] - C11_0*K10;
-    Ps[107] = P[107] - C12_0*K10;
-    Ps[108] = P[108] - C13_0*K10;
-    Ps[109] = P[109] - C14_0*K10;
-    Ps[110] = P[110] - C11_0*K11;
-    Ps[111] = P[111] - C12_0*K11;
-    Ps[112] = P[112] - C13_0*K11;
-    Ps[113] = P[113] - C14_0*K11;
-    Ps[114] = P[114] - C12_0*K12;
-    Ps[115] = P[115] - C13_0*K12;
-    Ps[116] = P[116] - C14_0*K12;
-    Ps[117] = P[117] - C13_0*K13;
-    Ps[118] = P[118] - C14_0*K13;
-    Ps[119] = P[119] - C14_0*K14;
-    /* angle states wrapped to (-pi, pi] */
+    /* B = C Ls^-T (in place), x + B b, P - B B' (= P - K S K') */
+    for (a = 0u; a < 15u; ++a) {
+        double e = 0.0;
+        for (k = 0u; k < 1u; ++k) {
+            for (b = 0u; b < k; ++b) {
+                Cx[a][k] -= Ls[k][b] * Cx[a][b];
+            }
+            Cx[a][k] *= Lsi[k];
+            e += Cx[a][k] * bv[k];
+        }
+        xs[a] = x[a] + e;
+    }
+    q = 0u;
+    for (a = 0u; a < 15u; ++a) {
+        for (b = a; b < 15u; ++b) {
+            double e = P[q];
+            for (k = 0u; k < 1u; ++k) {
+                e -= Cx[a][k] * Cx[b][k];
+            }
+            Ps[q] = e;
+            ++q;
+        }
+    }
     xs[nav_ukf_ix_roll] = nav_ukf_wrap(xs[nav_ukf_ix_roll]);
     xs[nav_ukf_ix_pitch] = nav_ukf_wrap(xs[nav_ukf_ix_pitch]);
     xs[nav_ukf_ix_yaw] = nav_ukf_wrap(xs[nav_ukf_ix_yaw]);

@@ -66,18 +66,21 @@ static int nav_ukf_cholesky(const float *P, float *L)
             return NAV_UKF_NOT_POSITIVE_DEFINITE;
         }
         A[j][j] = sqrtf(d);
+        L[q] = A[j][j];
         inv = 1.0F / A[j][j];
         for (i = j + 1u; i < 15u; ++i) {
+            /* e = P(i, j) - sum_k A[i][k] A[j][k], k = 0..j-1 in order, two terms per pass */
             float e = P[q + (i - j)];
-            for (k = 0u; k < j; ++k) {
+            k = 0u;
+            if ((j & 1u) != 0u) {
+                e -= A[i][0] * A[j][0];
+                k = 1u;
+            }
+            for (; k < j; k += 2u) {
                 e -= A[i][k] * A[j][k];
+                e -= A[i][k + 1u] * A[j][k + 1u];
             }
             A[i][j] = e * inv;
-        }
-    }
-    for (j = 0u; j < 15u; ++j) {
-        const size_t q = nav_ukf_pku(j, j);
-        for (i = j; i < 15u; ++i) {
             L[q + (i - j)] = A[i][j];
         }
     }
@@ -93,12 +96,113 @@ static int nav_ukf_commit_pd(const float *P)
     return nav_ukf_cholesky(P, L);
 }
 
+/* OK when every diagonal entry of P is > 0 and below a sixteenth of the largest float.
+   Used by predict when its rounding certificate holds; see the header. */
+static int nav_ukf_commit_diag(const float *P)
+{
+    if (!(P[0] < 2.1267647e+37F)) { return NAV_UKF_NON_FINITE; }
+    if (!(P[0] > 0.0F)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
+    if (!(P[15] < 2.1267647e+37F)) { return NAV_UKF_NON_FINITE; }
+    if (!(P[15] > 0.0F)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
+    if (!(P[29] < 2.1267647e+37F)) { return NAV_UKF_NON_FINITE; }
+    if (!(P[29] > 0.0F)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
+    if (!(P[42] < 2.1267647e+37F)) { return NAV_UKF_NON_FINITE; }
+    if (!(P[42] > 0.0F)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
+    if (!(P[54] < 2.1267647e+37F)) { return NAV_UKF_NON_FINITE; }
+    if (!(P[54] > 0.0F)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
+    if (!(P[65] < 2.1267647e+37F)) { return NAV_UKF_NON_FINITE; }
+    if (!(P[65] > 0.0F)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
+    if (!(P[75] < 2.1267647e+37F)) { return NAV_UKF_NON_FINITE; }
+    if (!(P[75] > 0.0F)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
+    if (!(P[84] < 2.1267647e+37F)) { return NAV_UKF_NON_FINITE; }
+    if (!(P[84] > 0.0F)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
+    if (!(P[92] < 2.1267647e+37F)) { return NAV_UKF_NON_FINITE; }
+    if (!(P[92] > 0.0F)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
+    if (!(P[99] < 2.1267647e+37F)) { return NAV_UKF_NON_FINITE; }
+    if (!(P[99] > 0.0F)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
+    if (!(P[105] < 2.1267647e+37F)) { return NAV_UKF_NON_FINITE; }
+    if (!(P[105] > 0.0F)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
+    if (!(P[110] < 2.1267647e+37F)) { return NAV_UKF_NON_FINITE; }
+    if (!(P[110] > 0.0F)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
+    if (!(P[114] < 2.1267647e+37F)) { return NAV_UKF_NON_FINITE; }
+    if (!(P[114] > 0.0F)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
+    if (!(P[117] < 2.1267647e+37F)) { return NAV_UKF_NON_FINITE; }
+    if (!(P[117] > 0.0F)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
+    if (!(P[119] < 2.1267647e+37F)) { return NAV_UKF_NON_FINITE; }
+    if (!(P[119] > 0.0F)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
+    return NAV_UKF_OK;
+}
+
 /* Lf = the lower Cholesky factor of the packed covariance P (stored packed like P, entry (i, j)
    of L at the packed index of (j, i)); OK, or the refusal code when P is not positive definite.
    Loops; one copy serves predict and every update. */
 static int nav_ukf_factor(const float *P, float *Lf)
 {
     return nav_ukf_cholesky(P, Lf);
+}
+
+/* f at one sigma point: x = [x; w] (21 reals), xn = its image (loop form: called once per sigma point). */
+static void nav_ukf_f(const float *x, const float *u, float dt, const nav_ukf_par_t *par, float *xn)
+{
+    const float t0 = cosf(x[nav_ukf_ix_yaw]);
+    const float t1 = u[nav_ukf_iu_fx] - x[nav_ukf_ix_bax] - x[18];
+    const float t2 = cosf(x[nav_ukf_ix_pitch]);
+    const float t3 = t1*t2;
+    const float t4 = u[nav_ukf_iu_fz] - x[nav_ukf_ix_baz] - x[20];
+    const float t5 = sinf(x[nav_ukf_ix_roll]);
+    const float t6 = sinf(x[nav_ukf_ix_yaw]);
+    const float t7 = t5*t6;
+    const float t8 = sinf(x[nav_ukf_ix_pitch]);
+    const float t9 = cosf(x[nav_ukf_ix_roll]);
+    const float t10 = t0*t9;
+    const float t11 = u[nav_ukf_iu_fy] - x[nav_ukf_ix_bay] - x[19];
+    const float t12 = t0*t5;
+    const float t13 = u[nav_ukf_iu_wy] - x[nav_ukf_ix_bgy] - x[16];
+    const float t14 = u[nav_ukf_iu_wz] - x[nav_ukf_ix_bgz] - x[17];
+    const float t15 = (t13*t5 + t14*t9)/t2;
+    xn[nav_ukf_ix_pn] = x[nav_ukf_ix_pn] + dt*x[nav_ukf_ix_vn];
+    xn[nav_ukf_ix_pe] = x[nav_ukf_ix_pe] + dt*x[nav_ukf_ix_ve];
+    xn[nav_ukf_ix_pd] = x[nav_ukf_ix_pd] + dt*x[nav_ukf_ix_vd];
+    xn[nav_ukf_ix_vn] = x[nav_ukf_ix_vn] + dt*(t0*t3 + t11*(t12*t8 - t6*t9) + t4*(t7 + t10*t8));
+    xn[nav_ukf_ix_ve] = x[nav_ukf_ix_ve] + dt*(t11*(t10 + t7*t8) + t3*t6 + t4*(-t12 + t6*t8*t9));
+    xn[nav_ukf_ix_vd] = x[nav_ukf_ix_vd] + dt*(par->g - t1*t8 + t11*t2*t5 + t2*t4*t9);
+    xn[nav_ukf_ix_roll] = x[nav_ukf_ix_roll] + dt*(u[nav_ukf_iu_wx] - x[15] - x[nav_ukf_ix_bgx] + t15*t8);
+    xn[nav_ukf_ix_pitch] = x[nav_ukf_ix_pitch] + dt*(t13*t9 - t14*t5);
+    xn[nav_ukf_ix_yaw] = x[nav_ukf_ix_yaw] + dt*t15;
+    xn[nav_ukf_ix_bgx] = x[nav_ukf_ix_bgx];
+    xn[nav_ukf_ix_bgy] = x[nav_ukf_ix_bgy];
+    xn[nav_ukf_ix_bgz] = x[nav_ukf_ix_bgz];
+    xn[nav_ukf_ix_bax] = x[nav_ukf_ix_bax];
+    xn[nav_ukf_ix_bay] = x[nav_ukf_ix_bay];
+    xn[nav_ukf_ix_baz] = x[nav_ukf_ix_baz];
+}
+
+/* h of sensor gnss_pos at one sigma point: x = [x; v] (15 reals), zh = its image (loop form: called once per sigma point). */
+static void nav_ukf_h_gnss_pos(const float *x, float *zh)
+{
+    zh[0] = x[nav_ukf_ix_pn];
+    zh[1] = x[nav_ukf_ix_pe];
+    zh[2] = x[nav_ukf_ix_pd];
+}
+
+/* h of sensor gnss_vel at one sigma point: x = [x; v] (15 reals), zh = its image (loop form: called once per sigma point). */
+static void nav_ukf_h_gnss_vel(const float *x, float *zh)
+{
+    zh[0] = x[nav_ukf_ix_vn];
+    zh[1] = x[nav_ukf_ix_ve];
+    zh[2] = x[nav_ukf_ix_vd];
+}
+
+/* h of sensor baro at one sigma point: x = [x; v] (15 reals), zh = its image (loop form: called once per sigma point). */
+static void nav_ukf_h_baro(const float *x, float *zh)
+{
+    zh[0] = -x[nav_ukf_ix_pd];
+}
+
+/* h of sensor mag_heading at one sigma point: x = [x; v] (15 reals), zh = its image (loop form: called once per sigma point). */
+static void nav_ukf_h_mag_heading(const float *x, float *zh)
+{
+    zh[0] = x[nav_ukf_ix_yaw];
 }
 
 void nav_ukf_init(nav_ukf_t *s)
@@ -278,7 +382,6 @@ int nav_ukf_predict(nav_ukf_t *s, const float *u, float dt)
     float xn[15];
     float Pn[120];
     float Lf[120];
-    float ea[109];
     const float *x = s->x;
     const float *P = s->P;
     const nav_ukf_par_t *par = &s->par;
@@ -298,1473 +401,155 @@ int nav_ukf_predict(nav_ukf_t *s, const float *u, float dt)
             return st;
         }
     }
-    /* noise symbols: factor A (A A' = Qw) for the augmented sigma points [x; w] */
-    const float fnf0_0 = 0.005F*sqrtf((1.0F/dt));
-    const float fnf3_3 = 0.02F*sqrtf((1.0F/dt));
-    /* sigma-point offsets gamma L_i (L L' = P) */
-    const float fg3_0 = 4.582576F*Lf[3];
-    const float fg4_0 = 4.582576F*Lf[4];
-    const float fg5_0 = 4.582576F*Lf[5];
-    const float fg6_0 = 4.582576F*Lf[6];
-    const float fg7_0 = 4.582576F*Lf[7];
-    const float fg8_0 = 4.582576F*Lf[8];
-    const float fg9_0 = 4.582576F*Lf[9];
-    const float fg10_0 = 4.582576F*Lf[10];
-    const float fg11_0 = 4.582576F*Lf[11];
-    const float fg12_0 = 4.582576F*Lf[12];
-    const float fg13_0 = 4.582576F*Lf[13];
-    const float fg14_0 = 4.582576F*Lf[14];
-    const float fg3_1 = 4.582576F*Lf[17];
-    const float fg4_1 = 4.582576F*Lf[18];
-    const float fg5_1 = 4.582576F*Lf[19];
-    const float fg6_1 = 4.582576F*Lf[20];
-    const float fg7_1 = 4.582576F*Lf[21];
-    const float fg8_1 = 4.582576F*Lf[22];
-    const float fg9_1 = 4.582576F*Lf[23];
-    const float fg10_1 = 4.582576F*Lf[24];
-    const float fg11_1 = 4.582576F*Lf[25];
-    const float fg12_1 = 4.582576F*Lf[26];
-    const float fg13_1 = 4.582576F*Lf[27];
-    const float fg14_1 = 4.582576F*Lf[28];
-    const float fg3_2 = 4.582576F*Lf[30];
-    const float fg4_2 = 4.582576F*Lf[31];
-    const float fg5_2 = 4.582576F*Lf[32];
-    const float fg6_2 = 4.582576F*Lf[33];
-    const float fg7_2 = 4.582576F*Lf[34];
-    const float fg8_2 = 4.582576F*Lf[35];
-    const float fg9_2 = 4.582576F*Lf[36];
-    const float fg10_2 = 4.582576F*Lf[37];
-    const float fg11_2 = 4.582576F*Lf[38];
-    const float fg12_2 = 4.582576F*Lf[39];
-    const float fg13_2 = 4.582576F*Lf[40];
-    const float fg14_2 = 4.582576F*Lf[41];
-    const float fg3_3 = 4.582576F*Lf[42];
-    const float fg4_3 = 4.582576F*Lf[43];
-    const float fg5_3 = 4.582576F*Lf[44];
-    const float fg6_3 = 4.582576F*Lf[45];
-    const float fg7_3 = 4.582576F*Lf[46];
-    const float fg8_3 = 4.582576F*Lf[47];
-    const float fg9_3 = 4.582576F*Lf[48];
-    const float fg10_3 = 4.582576F*Lf[49];
-    const float fg11_3 = 4.582576F*Lf[50];
-    const float fg12_3 = 4.582576F*Lf[51];
-    const float fg13_3 = 4.582576F*Lf[52];
-    const float fg14_3 = 4.582576F*Lf[53];
-    const float fg4_4 = 4.582576F*Lf[54];
-    const float fg5_4 = 4.582576F*Lf[55];
-    const float fg6_4 = 4.582576F*Lf[56];
-    const float fg7_4 = 4.582576F*Lf[57];
-    const float fg8_4 = 4.582576F*Lf[58];
-    const float fg9_4 = 4.582576F*Lf[59];
-    const float fg10_4 = 4.582576F*Lf[60];
-    const float fg11_4 = 4.582576F*Lf[61];
-    const float fg12_4 = 4.582576F*Lf[62];
-    const float fg13_4 = 4.582576F*Lf[63];
-    const float fg14_4 = 4.582576F*Lf[64];
-    const float fg5_5 = 4.582576F*Lf[65];
-    const float fg6_5 = 4.582576F*Lf[66];
-    const float fg7_5 = 4.582576F*Lf[67];
-    const float fg8_5 = 4.582576F*Lf[68];
-    const float fg9_5 = 4.582576F*Lf[69];
-    const float fg10_5 = 4.582576F*Lf[70];
-    const float fg11_5 = 4.582576F*Lf[71];
-    const float fg12_5 = 4.582576F*Lf[72];
-    const float fg13_5 = 4.582576F*Lf[73];
-    const float fg14_5 = 4.582576F*Lf[74];
-    const float fg6_6 = 4.582576F*Lf[75];
-    const float fg7_6 = 4.582576F*Lf[76];
-    const float fg8_6 = 4.582576F*Lf[77];
-    const float fg9_6 = 4.582576F*Lf[78];
-    const float fg10_6 = 4.582576F*Lf[79];
-    const float fg11_6 = 4.582576F*Lf[80];
-    const float fg12_6 = 4.582576F*Lf[81];
-    const float fg13_6 = 4.582576F*Lf[82];
-    const float fg14_6 = 4.582576F*Lf[83];
-    const float fg7_7 = 4.582576F*Lf[84];
-    const float fg8_7 = 4.582576F*Lf[85];
-    const float fg9_7 = 4.582576F*Lf[86];
-    const float fg10_7 = 4.582576F*Lf[87];
-    const float fg11_7 = 4.582576F*Lf[88];
-    const float fg12_7 = 4.582576F*Lf[89];
-    const float fg13_7 = 4.582576F*Lf[90];
-    const float fg14_7 = 4.582576F*Lf[91];
-    const float fg8_8 = 4.582576F*Lf[92];
-    const float fg9_8 = 4.582576F*Lf[93];
-    const float fg10_8 = 4.582576F*Lf[94];
-    const float fg11_8 = 4.582576F*Lf[95];
-    const float fg12_8 = 4.582576F*Lf[96];
-    const float fg13_8 = 4.582576F*Lf[97];
-    const float fg14_8 = 4.582576F*Lf[98];
-    const float fg9_9 = 4.582576F*Lf[99];
-    const float fg10_9 = 4.582576F*Lf[100];
-    const float fg11_9 = 4.582576F*Lf[101];
-    const float fg12_9 = 4.582576F*Lf[102];
-    const float fg13_9 = 4.582576F*Lf[103];
-    const float fg14_9 = 4.582576F*Lf[104];
-    const float fg10_10 = 4.582576F*Lf[105];
-    const float fg11_10 = 4.582576F*Lf[106];
-    const float fg12_10 = 4.582576F*Lf[107];
-    const float fg13_10 = 4.582576F*Lf[108];
-    const float fg14_10 = 4.582576F*Lf[109];
-    const float fg11_11 = 4.582576F*Lf[110];
-    const float fg12_11 = 4.582576F*Lf[111];
-    const float fg13_11 = 4.582576F*Lf[112];
-    const float fg14_11 = 4.582576F*Lf[113];
-    const float fg12_12 = 4.582576F*Lf[114];
-    const float fg13_12 = 4.582576F*Lf[115];
-    const float fg14_12 = 4.582576F*Lf[116];
-    const float fg13_13 = 4.582576F*Lf[117];
-    const float fg14_13 = 4.582576F*Lf[118];
-    const float fg14_14 = 4.582576F*Lf[119];
-    const float fg15_15 = 4.582576F*fnf0_0;
-    const float fg16_16 = 4.582576F*fnf0_0;
-    const float fg17_17 = 4.582576F*fnf0_0;
-    const float fg18_18 = 4.582576F*fnf3_3;
-    const float fg19_19 = 4.582576F*fnf3_3;
-    const float fg20_20 = 4.582576F*fnf3_3;
-    const float fas0 = sinf(x[nav_ukf_ix_roll]);
-    const float fak0 = cosf(x[nav_ukf_ix_roll]);
-    const float fr0_sd0 = sinf(fg6_0);
-    const float fr0_cd0 = cosf(fg6_0);
-    const float fr0_x0 = fas0*fr0_cd0;
-    const float fr0_y0 = fak0*fr0_sd0;
-    const float fr0_z0 = fak0*fr0_cd0;
-    const float fr0_w0 = fas0*fr0_sd0;
-    const float fr0_sp0 = fr0_x0 + fr0_y0;
-    const float fr0_sm0 = fr0_x0 - fr0_y0;
-    const float fr0_cp0 = fr0_z0 - fr0_w0;
-    const float fr0_cm0 = fr0_w0 + fr0_z0;
-    const float fr0_sd1 = sinf(fg6_1);
-    const float fr0_cd1 = cosf(fg6_1);
-    const float fr0_x1 = fas0*fr0_cd1;
-    const float fr0_y1 = fak0*fr0_sd1;
-    const float fr0_z1 = fak0*fr0_cd1;
-    const float fr0_w1 = fas0*fr0_sd1;
-    const float fr0_sp1 = fr0_x1 + fr0_y1;
-    const float fr0_sm1 = fr0_x1 - fr0_y1;
-    const float fr0_cp1 = fr0_z1 - fr0_w1;
-    const float fr0_cm1 = fr0_w1 + fr0_z1;
-    const float fr0_sd2 = sinf(fg6_2);
-    const float fr0_cd2 = cosf(fg6_2);
-    const float fr0_x2 = fas0*fr0_cd2;
-    const float fr0_y2 = fak0*fr0_sd2;
-    const float fr0_z2 = fak0*fr0_cd2;
-    const float fr0_w2 = fas0*fr0_sd2;
-    const float fr0_sp2 = fr0_x2 + fr0_y2;
-    const float fr0_sm2 = fr0_x2 - fr0_y2;
-    const float fr0_cp2 = fr0_z2 - fr0_w2;
-    const float fr0_cm2 = fr0_w2 + fr0_z2;
-    const float fr0_sd3 = sinf(fg6_3);
-    const float fr0_cd3 = cosf(fg6_3);
-    const float fr0_x3 = fas0*fr0_cd3;
-    const float fr0_y3 = fak0*fr0_sd3;
-    const float fr0_z3 = fak0*fr0_cd3;
-    const float fr0_w3 = fas0*fr0_sd3;
-    const float fr0_sp3 = fr0_x3 + fr0_y3;
-    const float fr0_sm3 = fr0_x3 - fr0_y3;
-    const float fr0_cp3 = fr0_z3 - fr0_w3;
-    const float fr0_cm3 = fr0_w3 + fr0_z3;
-    const float fr0_sd4 = sinf(fg6_4);
-    const float fr0_cd4 = cosf(fg6_4);
-    const float fr0_x4 = fas0*fr0_cd4;
-    const float fr0_y4 = fak0*fr0_sd4;
-    const float fr0_z4 = fak0*fr0_cd4;
-    const float fr0_w4 = fas0*fr0_sd4;
-    const float fr0_sp4 = fr0_x4 + fr0_y4;
-    const float fr0_sm4 = fr0_x4 - fr0_y4;
-    const float fr0_cp4 = fr0_z4 - fr0_w4;
-    const float fr0_cm4 = fr0_w4 + fr0_z4;
-    const float fr0_sd5 = sinf(fg6_5);
-    const float fr0_cd5 = cosf(fg6_5);
-    const float fr0_x5 = fas0*fr0_cd5;
-    const float fr0_y5 = fak0*fr0_sd5;
-    const float fr0_z5 = fak0*fr0_cd5;
-    const float fr0_w5 = fas0*fr0_sd5;
-    const float fr0_sp5 = fr0_x5 + fr0_y5;
-    const float fr0_sm5 = fr0_x5 - fr0_y5;
-    const float fr0_cp5 = fr0_z5 - fr0_w5;
-    const float fr0_cm5 = fr0_w5 + fr0_z5;
-    const float fr0_sd6 = sinf(fg6_6);
-    const float fr0_cd6 = cosf(fg6_6);
-    const float fr0_x6 = fas0*fr0_cd6;
-    const float fr0_y6 = fak0*fr0_sd6;
-    const float fr0_z6 = fak0*fr0_cd6;
-    const float fr0_w6 = fas0*fr0_sd6;
-    const float fr0_sp6 = fr0_x6 + fr0_y6;
-    const float fr0_sm6 = fr0_x6 - fr0_y6;
-    const float fr0_cp6 = fr0_z6 - fr0_w6;
-    const float fr0_cm6 = fr0_w6 + fr0_z6;
-    const float fas1 = sinf(x[nav_ukf_ix_yaw]);
-    const float fak1 = cosf(x[nav_ukf_ix_yaw]);
-    const float fr1_sd0 = sinf(fg8_0);
-    const float fr1_cd0 = cosf(fg8_0);
-    const float fr1_x0 = fas1*fr1_cd0;
-    const float fr1_y0 = fak1*fr1_sd0;
-    const float fr1_z0 = fak1*fr1_cd0;
-    const float fr1_w0 = fas1*fr1_sd0;
-    const float fr1_sp0 = fr1_x0 + fr1_y0;
-    const float fr1_sm0 = fr1_x0 - fr1_y0;
-    const float fr1_cp0 = fr1_z0 - fr1_w0;
-    const float fr1_cm0 = fr1_w0 + fr1_z0;
-    const float fr1_sd1 = sinf(fg8_1);
-    const float fr1_cd1 = cosf(fg8_1);
-    const float fr1_x1 = fas1*fr1_cd1;
-    const float fr1_y1 = fak1*fr1_sd1;
-    const float fr1_z1 = fak1*fr1_cd1;
-    const float fr1_w1 = fas1*fr1_sd1;
-    const float fr1_sp1 = fr1_x1 + fr1_y1;
-    const float fr1_sm1 = fr1_x1 - fr1_y1;
-    const float fr1_cp1 = fr1_z1 - fr1_w1;
-    const float fr1_cm1 = fr1_w1 + fr1_z1;
-    const float fr1_sd2 = sinf(fg8_2);
-    const float fr1_cd2 = cosf(fg8_2);
-    const float fr1_x2 = fas1*fr1_cd2;
-    const float fr1_y2 = fak1*fr1_sd2;
-    const float fr1_z2 = fak1*fr1_cd2;
-    const float fr1_w2 = fas1*fr1_sd2;
-    const float fr1_sp2 = fr1_x2 + fr1_y2;
-    const float fr1_sm2 = fr1_x2 - fr1_y2;
-    const float fr1_cp2 = fr1_z2 - fr1_w2;
-    const float fr1_cm2 = fr1_w2 + fr1_z2;
-    const float fr1_sd3 = sinf(fg8_3);
-    const float fr1_cd3 = cosf(fg8_3);
-    const float fr1_x3 = fas1*fr1_cd3;
-    const float fr1_y3 = fak1*fr1_sd3;
-    const float fr1_z3 = fak1*fr1_cd3;
-    const float fr1_w3 = fas1*fr1_sd3;
-    const float fr1_sp3 = fr1_x3 + fr1_y3;
-    const float fr1_sm3 = fr1_x3 - fr1_y3;
-    const float fr1_cp3 = fr1_z3 - fr1_w3;
-    const float fr1_cm3 = fr1_w3 + fr1_z3;
-    const float fr1_sd4 = sinf(fg8_4);
-    const float fr1_cd4 = cosf(fg8_4);
-    const float fr1_x4 = fas1*fr1_cd4;
-    const float fr1_y4 = fak1*fr1_sd4;
-    const float fr1_z4 = fak1*fr1_cd4;
-    const float fr1_w4 = fas1*fr1_sd4;
-    const float fr1_sp4 = fr1_x4 + fr1_y4;
-    const float fr1_sm4 = fr1_x4 - fr1_y4;
-    const float fr1_cp4 = fr1_z4 - fr1_w4;
-    const float fr1_cm4 = fr1_w4 + fr1_z4;
-    const float fr1_sd5 = sinf(fg8_5);
-    const float fr1_cd5 = cosf(fg8_5);
-    const float fr1_x5 = fas1*fr1_cd5;
-    const float fr1_y5 = fak1*fr1_sd5;
-    const float fr1_z5 = fak1*fr1_cd5;
-    const float fr1_w5 = fas1*fr1_sd5;
-    const float fr1_sp5 = fr1_x5 + fr1_y5;
-    const float fr1_sm5 = fr1_x5 - fr1_y5;
-    const float fr1_cp5 = fr1_z5 - fr1_w5;
-    const float fr1_cm5 = fr1_w5 + fr1_z5;
-    const float fr1_sd6 = sinf(fg8_6);
-    const float fr1_cd6 = cosf(fg8_6);
-    const float fr1_x6 = fas1*fr1_cd6;
-    const float fr1_y6 = fak1*fr1_sd6;
-    const float fr1_z6 = fak1*fr1_cd6;
-    const float fr1_w6 = fas1*fr1_sd6;
-    const float fr1_sp6 = fr1_x6 + fr1_y6;
-    const float fr1_sm6 = fr1_x6 - fr1_y6;
-    const float fr1_cp6 = fr1_z6 - fr1_w6;
-    const float fr1_cm6 = fr1_w6 + fr1_z6;
-    const float fr1_sd7 = sinf(fg8_7);
-    const float fr1_cd7 = cosf(fg8_7);
-    const float fr1_x7 = fas1*fr1_cd7;
-    const float fr1_y7 = fak1*fr1_sd7;
-    const float fr1_z7 = fak1*fr1_cd7;
-    const float fr1_w7 = fas1*fr1_sd7;
-    const float fr1_sp7 = fr1_x7 + fr1_y7;
-    const float fr1_sm7 = fr1_x7 - fr1_y7;
-    const float fr1_cp7 = fr1_z7 - fr1_w7;
-    const float fr1_cm7 = fr1_w7 + fr1_z7;
-    const float fr1_sd8 = sinf(fg8_8);
-    const float fr1_cd8 = cosf(fg8_8);
-    const float fr1_x8 = fas1*fr1_cd8;
-    const float fr1_y8 = fak1*fr1_sd8;
-    const float fr1_z8 = fak1*fr1_cd8;
-    const float fr1_w8 = fas1*fr1_sd8;
-    const float fr1_sp8 = fr1_x8 + fr1_y8;
-    const float fr1_sm8 = fr1_x8 - fr1_y8;
-    const float fr1_cp8 = fr1_z8 - fr1_w8;
-    const float fr1_cm8 = fr1_w8 + fr1_z8;
-    const float fas2 = sinf(x[nav_ukf_ix_pitch]);
-    const float fak2 = cosf(x[nav_ukf_ix_pitch]);
-    const float fr2_sd0 = sinf(fg7_0);
-    const float fr2_cd0 = cosf(fg7_0);
-    const float fr2_x0 = fas2*fr2_cd0;
-    const float fr2_y0 = fak2*fr2_sd0;
-    const float fr2_z0 = fak2*fr2_cd0;
-    const float fr2_w0 = fas2*fr2_sd0;
-    const float fr2_sp0 = fr2_x0 + fr2_y0;
-    const float fr2_sm0 = fr2_x0 - fr2_y0;
-    const float fr2_cp0 = fr2_z0 - fr2_w0;
-    const float fr2_cm0 = fr2_w0 + fr2_z0;
-    const float fr2_sd1 = sinf(fg7_1);
-    const float fr2_cd1 = cosf(fg7_1);
-    const float fr2_x1 = fas2*fr2_cd1;
-    const float fr2_y1 = fak2*fr2_sd1;
-    const float fr2_z1 = fak2*fr2_cd1;
-    const float fr2_w1 = fas2*fr2_sd1;
-    const float fr2_sp1 = fr2_x1 + fr2_y1;
-    const float fr2_sm1 = fr2_x1 - fr2_y1;
-    const float fr2_cp1 = fr2_z1 - fr2_w1;
-    const float fr2_cm1 = fr2_w1 + fr2_z1;
-    const float fr2_sd2 = sinf(fg7_2);
-    const float fr2_cd2 = cosf(fg7_2);
-    const float fr2_x2 = fas2*fr2_cd2;
-    const float fr2_y2 = fak2*fr2_sd2;
-    const float fr2_z2 = fak2*fr2_cd2;
-    const float fr2_w2 = fas2*fr2_sd2;
-    const float fr2_sp2 = fr2_x2 + fr2_y2;
-    const float fr2_sm2 = fr2_x2 - fr2_y2;
-    const float fr2_cp2 = fr2_z2 - fr2_w2;
-    const float fr2_cm2 = fr2_w2 + fr2_z2;
-    const float fr2_sd3 = sinf(fg7_3);
-    const float fr2_cd3 = cosf(fg7_3);
-    const float fr2_x3 = fas2*fr2_cd3;
-    const float fr2_y3 = fak2*fr2_sd3;
-    const float fr2_z3 = fak2*fr2_cd3;
-    const float fr2_w3 = fas2*fr2_sd3;
-    const float fr2_sp3 = fr2_x3 + fr2_y3;
-    const float fr2_sm3 = fr2_x3 - fr2_y3;
-    const float fr2_cp3 = fr2_z3 - fr2_w3;
-    const float fr2_cm3 = fr2_w3 + fr2_z3;
-    const float fr2_sd4 = sinf(fg7_4);
-    const float fr2_cd4 = cosf(fg7_4);
-    const float fr2_x4 = fas2*fr2_cd4;
-    const float fr2_y4 = fak2*fr2_sd4;
-    const float fr2_z4 = fak2*fr2_cd4;
-    const float fr2_w4 = fas2*fr2_sd4;
-    const float fr2_sp4 = fr2_x4 + fr2_y4;
-    const float fr2_sm4 = fr2_x4 - fr2_y4;
-    const float fr2_cp4 = fr2_z4 - fr2_w4;
-    const float fr2_cm4 = fr2_w4 + fr2_z4;
-    const float fr2_sd5 = sinf(fg7_5);
-    const float fr2_cd5 = cosf(fg7_5);
-    const float fr2_x5 = fas2*fr2_cd5;
-    const float fr2_y5 = fak2*fr2_sd5;
-    const float fr2_z5 = fak2*fr2_cd5;
-    const float fr2_w5 = fas2*fr2_sd5;
-    const float fr2_sp5 = fr2_x5 + fr2_y5;
-    const float fr2_sm5 = fr2_x5 - fr2_y5;
-    const float fr2_cp5 = fr2_z5 - fr2_w5;
-    const float fr2_cm5 = fr2_w5 + fr2_z5;
-    const float fr2_sd6 = sinf(fg7_6);
-    const float fr2_cd6 = cosf(fg7_6);
-    const float fr2_x6 = fas2*fr2_cd6;
-    const float fr2_y6 = fak2*fr2_sd6;
-    const float fr2_z6 = fak2*fr2_cd6;
-    const float fr2_w6 = fas2*fr2_sd6;
-    const float fr2_sp6 = fr2_x6 + fr2_y6;
-    const float fr2_sm6 = fr2_x6 - fr2_y6;
-    const float fr2_cp6 = fr2_z6 - fr2_w6;
-    const float fr2_cm6 = fr2_w6 + fr2_z6;
-    const float fr2_sd7 = sinf(fg7_7);
-    const float fr2_cd7 = cosf(fg7_7);
-    const float fr2_x7 = fas2*fr2_cd7;
-    const float fr2_y7 = fak2*fr2_sd7;
-    const float fr2_z7 = fak2*fr2_cd7;
-    const float fr2_w7 = fas2*fr2_sd7;
-    const float fr2_sp7 = fr2_x7 + fr2_y7;
-    const float fr2_sm7 = fr2_x7 - fr2_y7;
-    const float fr2_cp7 = fr2_z7 - fr2_w7;
-    const float fr2_cm7 = fr2_w7 + fr2_z7;
-    const float fa3 = u[nav_ukf_iu_fz] - x[nav_ukf_ix_baz];
-    const float fa4 = u[nav_ukf_iu_fy] - x[nav_ukf_ix_bay];
-    const float fa5 = u[nav_ukf_iu_fx] - x[nav_ukf_ix_bax];
-    const float fa6 = u[nav_ukf_iu_wy] - x[nav_ukf_ix_bgy];
-    const float fa7 = u[nav_ukf_iu_wz] - x[nav_ukf_ix_bgz];
-    /* shared subexpressions of f at the sigma points */
-    const float ft0 = fas0*fas1;
-    const float ft1 = fak0*fak1;
-    const float ft2 = ft0 + fas2*ft1;
-    const float ft3 = fa3*ft2;
-    const float ft4 = fak0*fas1;
-    const float ft5 = -ft4 + fak1*fas0*fas2;
-    const float ft6 = fa4*ft5;
-    const float ft7 = fa5*fak2;
-    const float ft8 = fak1*ft7;
-    const float ft9 = ft6 + ft8;
-    const float ft10 = x[nav_ukf_ix_vn] + dt*(ft3 + ft9);
-    const float ft11 = fas2*ft4 - fak1*fas0;
-    const float ft12 = fa3*ft11;
-    const float ft13 = ft1 + fas2*ft0;
-    const float ft14 = fa4*ft13;
-    const float ft15 = fas1*ft7;
-    const float ft16 = ft14 + ft15;
-    const float ft17 = x[nav_ukf_ix_ve] + dt*(ft12 + ft16);
-    const float ft18 = fak0*fak2;
-    const float ft19 = fa3*ft18;
-    const float ft20 = fak2*fas0;
-    const float ft21 = fa4*ft20;
-    const float ft22 = par->g - fa5*fas2;
-    const float ft23 = ft21 + ft22;
-    const float ft24 = x[nav_ukf_ix_vd] + dt*(ft19 + ft23);
-    const float ft25 = (1.0F/fak2);
-    const float ft26 = fa6*fas0;
-    const float ft27 = fa7*fak0;
-    const float ft28 = ft26 + ft27;
-    const float ft29 = ft25*ft28;
-    const float ft30 = u[nav_ukf_iu_wx] - x[nav_ukf_ix_bgx];
-    const float ft31 = ft30 + fas2*ft29;
-    const float ft32 = x[nav_ukf_ix_roll] + dt*ft31;
-    const float ft33 = fa6*fak0;
-    const float ft34 = fa7*fas0;
-    const float ft35 = x[nav_ukf_ix_pitch] + dt*(ft33 - ft34);
-    const float ft36 = x[nav_ukf_ix_yaw] + dt*ft29;
-    const float ft37 = fa5 - fg12_0;
-    const float ft38 = fr2_cp0*ft37;
-    const float ft39 = fa3 - fg14_0;
-    const float ft40 = fr0_sp0*fr1_sp0;
-    const float ft41 = fr0_cp0*fr1_cp0;
-    const float ft42 = fa4 - fg13_0;
-    const float ft43 = fr0_cp0*fr1_sp0;
-    const float ft44 = fa5 + fg12_0;
-    const float ft45 = fr2_cm0*ft44;
-    const float ft46 = fa3 + fg14_0;
-    const float ft47 = fr0_sm0*fr1_sm0;
-    const float ft48 = fr0_cm0*fr1_cm0;
-    const float ft49 = fa4 + fg13_0;
-    const float ft50 = fr0_cm0*fr1_sm0;
-    const float ft51 = (1.0F/fr2_cp0);
-    const float ft52 = fa7 - fg11_0;
-    const float ft53 = fa6 - fg10_0;
-    const float ft54 = fr0_cp0*ft52 + fr0_sp0*ft53;
-    const float ft55 = x[nav_ukf_ix_bgx] - u[nav_ukf_iu_wx];
-    const float ft56 = fa7 + fg11_0;
-    const float ft57 = fa6 + fg10_0;
-    const float ft58 = (fr0_cm0*ft56 + fr0_sm0*ft57)/fr2_cm0;
-    const float ft59 = fa5 - fg12_1;
-    const float ft60 = fr2_cp1*ft59;
-    const float ft61 = fa3 - fg14_1;
-    const float ft62 = fr0_sp1*fr1_sp1;
-    const float ft63 = fr0_cp1*fr1_cp1;
-    const float ft64 = fa4 - fg13_1;
-    const float ft65 = fr0_cp1*fr1_sp1;
-    const float ft66 = fa5 + fg12_1;
-    const float ft67 = fr2_cm1*ft66;
-    const float ft68 = fa3 + fg14_1;
-    const float ft69 = fr0_sm1*fr1_sm1;
-    const float ft70 = fr0_cm1*fr1_cm1;
-    const float ft71 = fa4 + fg13_1;
-    const float ft72 = fr0_cm1*fr1_sm1;
-    const float ft73 = (1.0F/fr2_cp1);
-    const float ft74 = fa7 - fg11_1;
-    const float ft75 = fa6 - fg10_1;
-    const float ft76 = fr0_cp1*ft74 + fr0_sp1*ft75;
-    const float ft77 = fa7 + fg11_1;
-    const float ft78 = fa6 + fg10_1;
-    const float ft79 = (fr0_cm1*ft77 + fr0_sm1*ft78)/fr2_cm1;
-    const float ft80 = fa5 - fg12_2;
-    const float ft81 = fr2_cp2*ft80;
-    const float ft82 = fa3 - fg14_2;
-    const float ft83 = fr0_sp2*fr1_sp2;
-    const float ft84 = fr0_cp2*fr1_cp2;
-    const float ft85 = fa4 - fg13_2;
-    const float ft86 = fr0_cp2*fr1_sp2;
-    const float ft87 = fa5 + fg12_2;
-    const float ft88 = fr2_cm2*ft87;
-    const float ft89 = fa3 + fg14_2;
-    const float ft90 = fr0_sm2*fr1_sm2;
-    const float ft91 = fr0_cm2*fr1_cm2;
-    const float ft92 = fa4 + fg13_2;
-    const float ft93 = fr0_cm2*fr1_sm2;
-    const float ft94 = (1.0F/fr2_cp2);
-    const float ft95 = fa7 - fg11_2;
-    const float ft96 = fa6 - fg10_2;
-    const float ft97 = fr0_cp2*ft95 + fr0_sp2*ft96;
-    const float ft98 = fa7 + fg11_2;
-    const float ft99 = fa6 + fg10_2;
-    const float ft100 = (fr0_cm2*ft98 + fr0_sm2*ft99)/fr2_cm2;
-    const float ft101 = fa5 - fg12_3;
-    const float ft102 = fr2_cp3*ft101;
-    const float ft103 = fa3 - fg14_3;
-    const float ft104 = fr0_sp3*fr1_sp3;
-    const float ft105 = fr0_cp3*fr1_cp3;
-    const float ft106 = fa4 - fg13_3;
-    const float ft107 = fr0_cp3*fr1_sp3;
-    const float ft108 = fa5 + fg12_3;
-    const float ft109 = fr2_cm3*ft108;
-    const float ft110 = fa3 + fg14_3;
-    const float ft111 = fr0_sm3*fr1_sm3;
-    const float ft112 = fr0_cm3*fr1_cm3;
-    const float ft113 = fa4 + fg13_3;
-    const float ft114 = fr0_cm3*fr1_sm3;
-    const float ft115 = (1.0F/fr2_cp3);
-    const float ft116 = fa7 - fg11_3;
-    const float ft117 = fa6 - fg10_3;
-    const float ft118 = fr0_cp3*ft116 + fr0_sp3*ft117;
-    const float ft119 = fa7 + fg11_3;
-    const float ft120 = fa6 + fg10_3;
-    const float ft121 = (fr0_cm3*ft119 + fr0_sm3*ft120)/fr2_cm3;
-    const float ft122 = fa5 - fg12_4;
-    const float ft123 = fr2_cp4*ft122;
-    const float ft124 = fa3 - fg14_4;
-    const float ft125 = fr0_sp4*fr1_sp4;
-    const float ft126 = fr0_cp4*fr1_cp4;
-    const float ft127 = fa4 - fg13_4;
-    const float ft128 = fr0_cp4*fr1_sp4;
-    const float ft129 = fa5 + fg12_4;
-    const float ft130 = fr2_cm4*ft129;
-    const float ft131 = fa3 + fg14_4;
-    const float ft132 = fr0_sm4*fr1_sm4;
-    const float ft133 = fr0_cm4*fr1_cm4;
-    const float ft134 = fa4 + fg13_4;
-    const float ft135 = fr0_cm4*fr1_sm4;
-    const float ft136 = (1.0F/fr2_cp4);
-    const float ft137 = fa7 - fg11_4;
-    const float ft138 = fa6 - fg10_4;
-    const float ft139 = fr0_cp4*ft137 + fr0_sp4*ft138;
-    const float ft140 = fa7 + fg11_4;
-    const float ft141 = fa6 + fg10_4;
-    const float ft142 = (fr0_cm4*ft140 + fr0_sm4*ft141)/fr2_cm4;
-    const float ft143 = fa5 - fg12_5;
-    const float ft144 = fr2_cp5*ft143;
-    const float ft145 = fa3 - fg14_5;
-    const float ft146 = fr0_sp5*fr1_sp5;
-    const float ft147 = fr0_cp5*fr1_cp5;
-    const float ft148 = fa4 - fg13_5;
-    const float ft149 = fr0_cp5*fr1_sp5;
-    const float ft150 = fa5 + fg12_5;
-    const float ft151 = fr2_cm5*ft150;
-    const float ft152 = fa3 + fg14_5;
-    const float ft153 = fr0_sm5*fr1_sm5;
-    const float ft154 = fr0_cm5*fr1_cm5;
-    const float ft155 = fa4 + fg13_5;
-    const float ft156 = fr0_cm5*fr1_sm5;
-    const float ft157 = (1.0F/fr2_cp5);
-    const float ft158 = fa7 - fg11_5;
-    const float ft159 = fa6 - fg10_5;
-    const float ft160 = fr0_cp5*ft158 + fr0_sp5*ft159;
-    const float ft161 = fa7 + fg11_5;
-    const float ft162 = fa6 + fg10_5;
-    const float ft163 = (fr0_cm5*ft161 + fr0_sm5*ft162)/fr2_cm5;
-    const float ft164 = fa5 - fg12_6;
-    const float ft165 = fr2_cp6*ft164;
-    const float ft166 = fa3 - fg14_6;
-    const float ft167 = fr0_sp6*fr1_sp6;
-    const float ft168 = fr0_cp6*fr1_cp6;
-    const float ft169 = fa4 - fg13_6;
-    const float ft170 = fr0_cp6*fr1_sp6;
-    const float ft171 = fa5 + fg12_6;
-    const float ft172 = fr2_cm6*ft171;
-    const float ft173 = fa3 + fg14_6;
-    const float ft174 = fr0_sm6*fr1_sm6;
-    const float ft175 = fr0_cm6*fr1_cm6;
-    const float ft176 = fa4 + fg13_6;
-    const float ft177 = fr0_cm6*fr1_sm6;
-    const float ft178 = (1.0F/fr2_cp6);
-    const float ft179 = fa7 - fg11_6;
-    const float ft180 = fa6 - fg10_6;
-    const float ft181 = fr0_cp6*ft179 + fr0_sp6*ft180;
-    const float ft182 = fa7 + fg11_6;
-    const float ft183 = fa6 + fg10_6;
-    const float ft184 = (fr0_cm6*ft182 + fr0_sm6*ft183)/fr2_cm6;
-    const float ft185 = fa5 - fg12_7;
-    const float ft186 = fr2_cp7*ft185;
-    const float ft187 = fa3 - fg14_7;
-    const float ft188 = fas0*fr1_sp7;
-    const float ft189 = fak0*fr1_cp7;
-    const float ft190 = fa4 - fg13_7;
-    const float ft191 = fak0*fr1_sp7;
-    const float ft192 = fa5 + fg12_7;
-    const float ft193 = fr2_cm7*ft192;
-    const float ft194 = fa3 + fg14_7;
-    const float ft195 = fas0*fr1_sm7;
-    const float ft196 = fak0*fr1_cm7;
-    const float ft197 = fa4 + fg13_7;
-    const float ft198 = fak0*fr1_sm7;
-    const float ft199 = (1.0F/fr2_cp7);
-    const float ft200 = fa7 - fg11_7;
-    const float ft201 = fa6 - fg10_7;
-    const float ft202 = fak0*ft200 + fas0*ft201;
-    const float ft203 = fa7 + fg11_7;
-    const float ft204 = fa6 + fg10_7;
-    const float ft205 = (fak0*ft203 + fas0*ft204)/fr2_cm7;
-    const float ft206 = fa5 - fg12_8;
-    const float ft207 = fak2*ft206;
-    const float ft208 = fa3 - fg14_8;
-    const float ft209 = fas0*fr1_sp8;
-    const float ft210 = fak0*fr1_cp8;
-    const float ft211 = fa4 - fg13_8;
-    const float ft212 = fak0*fr1_sp8;
-    const float ft213 = fa5 + fg12_8;
-    const float ft214 = fak2*ft213;
-    const float ft215 = fa3 + fg14_8;
-    const float ft216 = fas0*fr1_sm8;
-    const float ft217 = fak0*fr1_cm8;
-    const float ft218 = fa4 + fg13_8;
-    const float ft219 = fak0*fr1_sm8;
-    const float ft220 = fa7 - fg11_8;
-    const float ft221 = fa6 - fg10_8;
-    const float ft222 = fak0*ft220 + fas0*ft221;
-    const float ft223 = fa7 + fg11_8;
-    const float ft224 = fa6 + fg10_8;
-    const float ft225 = fak0*ft223 + fas0*ft224;
-    const float ft226 = fas2*ft25;
-    const float ft227 = dt*ft25;
-    const float ft228 = fa5 - fg12_9;
-    const float ft229 = fak1*fak2;
-    const float ft230 = fa3 - fg14_9;
-    const float ft231 = fa4 - fg13_9;
-    const float ft232 = fa5 + fg12_9;
-    const float ft233 = fa3 + fg14_9;
-    const float ft234 = fa4 + fg13_9;
-    const float ft235 = fak2*fas1;
-    const float ft236 = fa7 - fg11_9;
-    const float ft237 = fa6 - fg10_9;
-    const float ft238 = fak0*ft236 + fas0*ft237;
-    const float ft239 = fa7 + fg11_9;
-    const float ft240 = fa6 + fg10_9;
-    const float ft241 = fak0*ft239 + fas0*ft240;
-    const float ft242 = fa5 - fg12_10;
-    const float ft243 = fa3 - fg14_10;
-    const float ft244 = fa4 - fg13_10;
-    const float ft245 = fa5 + fg12_10;
-    const float ft246 = fa3 + fg14_10;
-    const float ft247 = fa4 + fg13_10;
-    const float ft248 = fa7 - fg11_10;
-    const float ft249 = fa6 - fg10_10;
-    const float ft250 = fak0*ft248 + fas0*ft249;
-    const float ft251 = fa7 + fg11_10;
-    const float ft252 = fa6 + fg10_10;
-    const float ft253 = fak0*ft251 + fas0*ft252;
-    const float ft254 = fa5 - fg12_11;
-    const float ft255 = fa3 - fg14_11;
-    const float ft256 = fa4 - fg13_11;
-    const float ft257 = fa5 + fg12_11;
-    const float ft258 = fa3 + fg14_11;
-    const float ft259 = fa4 + fg13_11;
-    const float ft260 = fa7 - fg11_11;
-    const float ft261 = ft26 + fak0*ft260;
-    const float ft262 = fa7 + fg11_11;
-    const float ft263 = ft26 + fak0*ft262;
-    const float ft264 = fa5 - fg12_12;
-    const float ft265 = fa3 - fg14_12;
-    const float ft266 = fa4 - fg13_12;
-    const float ft267 = fa5 + fg12_12;
-    const float ft268 = fa3 + fg14_12;
-    const float ft269 = fa4 + fg13_12;
-    const float ft270 = fa3 - fg14_13;
-    const float ft271 = fa4 - fg13_13;
-    const float ft272 = fa3 + fg14_13;
-    const float ft273 = fa4 + fg13_13;
-    const float ft274 = fa3 - fg14_14;
-    const float ft275 = fa3 + fg14_14;
-    const float ft276 = fa6 - fg16_16;
-    const float ft277 = ft27 + fas0*ft276;
-    const float ft278 = fa6 + fg16_16;
-    const float ft279 = ft27 + fas0*ft278;
-    const float ft280 = fa7 - fg17_17;
-    const float ft281 = ft26 + fak0*ft280;
-    const float ft282 = fa7 + fg17_17;
-    const float ft283 = ft26 + fak0*ft282;
-    const float ft284 = fa5 - fg18_18;
-    const float ft285 = ft3 + ft6;
-    const float ft286 = fa5 + fg18_18;
-    const float ft287 = ft12 + ft14;
-    const float ft288 = ft19 + ft21 + par->g;
-    const float ft289 = fa4 - fg19_19;
-    const float ft290 = ft3 + ft8;
-    const float ft291 = fa4 + fg19_19;
-    const float ft292 = ft12 + ft15;
-    const float ft293 = ft19 + ft22;
-    const float ft294 = fa3 - fg20_20;
-    const float ft295 = fa3 + fg20_20;
-    const float ft296 = 1.0e-06F*dt;
-    const float ft297 = 1.0e-10F*dt;
-    const float ft298 = 1.0e-08F*dt;
-    const float fc0 = x[nav_ukf_ix_pn] + dt*x[nav_ukf_ix_vn];
-    const float fc1 = x[nav_ukf_ix_pe] + dt*x[nav_ukf_ix_ve];
-    const float fc2 = x[nav_ukf_ix_pd] + dt*x[nav_ukf_ix_vd];
-    const float fp0_3 = fg3_0 + x[nav_ukf_ix_vn] + dt*(fr1_cp0*ft38 + ft39*(ft40 + fr2_sp0*ft41) + ft42*(-ft43 + fr0_sp0*fr1_cp0*fr2_sp0));
-    const float fm0_3 = x[nav_ukf_ix_vn] - fg3_0 + dt*(fr1_cm0*ft45 + ft46*(ft47 + fr2_sm0*ft48) + ft49*(-ft50 + fr0_sm0*fr1_cm0*fr2_sm0));
-    const float fp0_4 = fg4_0 + x[nav_ukf_ix_ve] + dt*(fr1_sp0*ft38 + ft39*(fr2_sp0*ft43 - fr0_sp0*fr1_cp0) + ft42*(ft41 + fr2_sp0*ft40));
-    const float fm0_4 = x[nav_ukf_ix_ve] - fg4_0 + dt*(fr1_sm0*ft45 + ft46*(fr2_sm0*ft50 - fr0_sm0*fr1_cm0) + ft49*(ft48 + fr2_sm0*ft47));
-    const float fp0_5 = fg5_0 + x[nav_ukf_ix_vd] + dt*(par->g - fr2_sp0*ft37 + fr0_cp0*fr2_cp0*ft39 + fr0_sp0*fr2_cp0*ft42);
-    const float fm0_5 = x[nav_ukf_ix_vd] - fg5_0 + dt*(par->g - fr2_sm0*ft44 + fr0_cm0*fr2_cm0*ft46 + fr0_sm0*fr2_cm0*ft49);
-    const float fp0_6 = fg6_0 + x[nav_ukf_ix_roll] + dt*(-fg9_0 - ft55 + fr2_sp0*ft51*ft54);
-    const float fm0_6 = x[nav_ukf_ix_roll] - fg6_0 + dt*(fg9_0 + ft30 + fr2_sm0*ft58);
-    const float fp0_7 = fg7_0 + x[nav_ukf_ix_pitch] + dt*(fr0_cp0*ft53 - fr0_sp0*ft52);
-    const float fm0_7 = x[nav_ukf_ix_pitch] - fg7_0 + dt*(fr0_cm0*ft57 - fr0_sm0*ft56);
-    const float fp0_8 = fg8_0 + x[nav_ukf_ix_yaw] + dt*ft51*ft54;
-    const float fm0_8 = x[nav_ukf_ix_yaw] - fg8_0 + dt*ft58;
-    const float fp1_3 = fg3_1 + x[nav_ukf_ix_vn] + dt*(fr1_cp1*ft60 + ft61*(ft62 + fr2_sp1*ft63) + ft64*(-ft65 + fr0_sp1*fr1_cp1*fr2_sp1));
-    const float fm1_3 = x[nav_ukf_ix_vn] - fg3_1 + dt*(fr1_cm1*ft67 + ft68*(ft69 + fr2_sm1*ft70) + ft71*(-ft72 + fr0_sm1*fr1_cm1*fr2_sm1));
-    const float fp1_4 = fg4_1 + x[nav_ukf_ix_ve] + dt*(fr1_sp1*ft60 + ft61*(fr2_sp1*ft65 - fr0_sp1*fr1_cp1) + ft64*(ft63 + fr2_sp1*ft62));
-    const float fm1_4 = x[nav_ukf_ix_ve] - fg4_1 + dt*(fr1_sm1*ft67 + ft68*(fr2_sm1*ft72 - fr0_sm1*fr1_cm1) + ft71*(ft70 + fr2_sm1*ft69));
-    const float fp1_5 = fg5_1 + x[nav_ukf_ix_vd] + dt*(par->g - fr2_sp1*ft59 + fr0_cp1*fr2_cp1*ft61 + fr0_sp1*fr2_cp1*ft64);
-    const float fm1_5 = x[nav_ukf_ix_vd] - fg5_1 + dt*(par->g - fr2_sm1*ft66 + fr0_cm1*fr2_cm1*ft68 + fr0_sm1*fr2_cm1*ft71);
-    const float fp1_6 = fg6_1 + x[nav_ukf_ix_roll] + dt*(-fg9_1 - ft55 + fr2_sp1*ft73*ft76);
-    const float fm1_6 = x[nav_ukf_ix_roll] - fg6_1 + dt*(fg9_1 + ft30 + fr2_sm1*ft79);
-    const float fp1_7 = fg7_1 + x[nav_ukf_ix_pitch] + dt*(fr0_cp1*ft75 - fr0_sp1*ft74);
-    const float fm1_7 = x[nav_ukf_ix_pitch] - fg7_1 + dt*(fr0_cm1*ft78 - fr0_sm1*ft77);
-    const float fp1_8 = fg8_1 + x[nav_ukf_ix_yaw] + dt*ft73*ft76;
-    const float fm1_8 = x[nav_ukf_ix_yaw] - fg8_1 + dt*ft79;
-    const float fp2_3 = fg3_2 + x[nav_ukf_ix_vn] + dt*(fr1_cp2*ft81 + ft82*(ft83 + fr2_sp2*ft84) + ft85*(-ft86 + fr0_sp2*fr1_cp2*fr2_sp2));
-    const float fm2_3 = x[nav_ukf_ix_vn] - fg3_2 + dt*(fr1_cm2*ft88 + ft89*(ft90 + fr2_sm2*ft91) + ft92*(-ft93 + fr0_sm2*fr1_cm2*fr2_sm2));
-    const float fp2_4 = fg4_2 + x[nav_ukf_ix_ve] + dt*(fr1_sp2*ft81 + ft82*(fr2_sp2*ft86 - fr0_sp2*fr1_cp2) + ft85*(ft84 + fr2_sp2*ft83));
-    const float fm2_4 = x[nav_ukf_ix_ve] - fg4_2 + dt*(fr1_sm2*ft88 + ft89*(fr2_sm2*ft93 - fr0_sm2*fr1_cm2) + ft92*(ft91 + fr2_sm2*ft90));
-    const float fp2_5 = fg5_2 + x[nav_ukf_ix_vd] + dt*(par->g - fr2_sp2*ft80 + fr0_cp2*fr2_cp2*ft82 + fr0_sp2*fr2_cp2*ft85);
-    const float fm2_5 = x[nav_ukf_ix_vd] - fg5_2 + dt*(par->g - fr2_sm2*ft87 + fr0_cm2*fr2_cm2*ft89 + fr0_sm2*fr2_cm2*ft92);
-    const float fp2_6 = fg6_2 + x[nav_ukf_ix_roll] + dt*(-fg9_2 - ft55 + fr2_sp2*ft94*ft97);
-    const float fm2_6 = x[nav_ukf_ix_roll] - fg6_2 + dt*(fg9_2 + ft30 + fr2_sm2*ft100);
-    const float fp2_7 = fg7_2 + x[nav_ukf_ix_pitch] + dt*(fr0_cp2*ft96 - fr0_sp2*ft95);
-    const float fm2_7 = x[nav_ukf_ix_pitch] - fg7_2 + dt*(fr0_cm2*ft99 - fr0_sm2*ft98);
-    const float fp2_8 = fg8_2 + x[nav_ukf_ix_yaw] + dt*ft94*ft97;
-    const float fm2_8 = x[nav_ukf_ix_yaw] - fg8_2 + dt*ft100;
-    const float fp3_3 = fg3_3 + x[nav_ukf_ix_vn] + dt*(fr1_cp3*ft102 + ft103*(ft104 + fr2_sp3*ft105) + ft106*(-ft107 + fr0_sp3*fr1_cp3*fr2_sp3));
-    const float fm3_3 = x[nav_ukf_ix_vn] - fg3_3 + dt*(fr1_cm3*ft109 + ft110*(ft111 + fr2_sm3*ft112) + ft113*(-ft114 + fr0_sm3*fr1_cm3*fr2_sm3));
-    const float fp3_4 = fg4_3 + x[nav_ukf_ix_ve] + dt*(fr1_sp3*ft102 + ft103*(fr2_sp3*ft107 - fr0_sp3*fr1_cp3) + ft106*(ft105 + fr2_sp3*ft104));
-    const float fm3_4 = x[nav_ukf_ix_ve] - fg4_3 + dt*(fr1_sm3*ft109 + ft110*(fr2_sm3*ft114 - fr0_sm3*fr1_cm3) + ft113*(ft112 + fr2_sm3*ft111));
-    const float fp3_5 = fg5_3 + x[nav_ukf_ix_vd] + dt*(par->g - fr2_sp3*ft101 + fr0_cp3*fr2_cp3*ft103 + fr0_sp3*fr2_cp3*ft106);
-    const float fm3_5 = x[nav_ukf_ix_vd] - fg5_3 + dt*(par->g - fr2_sm3*ft108 + fr0_cm3*fr2_cm3*ft110 + fr0_sm3*fr2_cm3*ft113);
-    const float fp3_6 = fg6_3 + x[nav_ukf_ix_roll] + dt*(-fg9_3 - ft55 + fr2_sp3*ft115*ft118);
-    const float fm3_6 = x[nav_ukf_ix_roll] - fg6_3 + dt*(fg9_3 + ft30 + fr2_sm3*ft121);
-    const float fp3_7 = fg7_3 + x[nav_ukf_ix_pitch] + dt*(fr0_cp3*ft117 - fr0_sp3*ft116);
-    const float fm3_7 = x[nav_ukf_ix_pitch] - fg7_3 + dt*(fr0_cm3*ft120 - fr0_sm3*ft119);
-    const float fp3_8 = fg8_3 + x[nav_ukf_ix_yaw] + dt*ft115*ft118;
-    const float fm3_8 = x[nav_ukf_ix_yaw] - fg8_3 + dt*ft121;
-    const float fp4_3 = x[nav_ukf_ix_vn] + dt*(fr1_cp4*ft123 + ft124*(ft125 + fr2_sp4*ft126) + ft127*(-ft128 + fr0_sp4*fr1_cp4*fr2_sp4));
-    const float fm4_3 = x[nav_ukf_ix_vn] + dt*(fr1_cm4*ft130 + ft131*(ft132 + fr2_sm4*ft133) + ft134*(-ft135 + fr0_sm4*fr1_cm4*fr2_sm4));
-    const float fp4_4 = fg4_4 + x[nav_ukf_ix_ve] + dt*(fr1_sp4*ft123 + ft124*(fr2_sp4*ft128 - fr0_sp4*fr1_cp4) + ft127*(ft126 + fr2_sp4*ft125));
-    const float fm4_4 = x[nav_ukf_ix_ve] - fg4_4 + dt*(fr1_sm4*ft130 + ft131*(fr2_sm4*ft135 - fr0_sm4*fr1_cm4) + ft134*(ft133 + fr2_sm4*ft132));
-    const float fp4_5 = fg5_4 + x[nav_ukf_ix_vd] + dt*(par->g - fr2_sp4*ft122 + fr0_cp4*fr2_cp4*ft124 + fr0_sp4*fr2_cp4*ft127);
-    const float fm4_5 = x[nav_ukf_ix_vd] - fg5_4 + dt*(par->g - fr2_sm4*ft129 + fr0_cm4*fr2_cm4*ft131 + fr0_sm4*fr2_cm4*ft134);
-    const float fp4_6 = fg6_4 + x[nav_ukf_ix_roll] + dt*(-fg9_4 - ft55 + fr2_sp4*ft136*ft139);
-    const float fm4_6 = x[nav_ukf_ix_roll] - fg6_4 + dt*(fg9_4 + ft30 + fr2_sm4*ft142);
-    const float fp4_7 = fg7_4 + x[nav_ukf_ix_pitch] + dt*(fr0_cp4*ft138 - fr0_sp4*ft137);
-    const float fm4_7 = x[nav_ukf_ix_pitch] - fg7_4 + dt*(fr0_cm4*ft141 - fr0_sm4*ft140);
-    const float fp4_8 = fg8_4 + x[nav_ukf_ix_yaw] + dt*ft136*ft139;
-    const float fm4_8 = x[nav_ukf_ix_yaw] - fg8_4 + dt*ft142;
-    const float fp5_3 = x[nav_ukf_ix_vn] + dt*(fr1_cp5*ft144 + ft145*(ft146 + fr2_sp5*ft147) + ft148*(-ft149 + fr0_sp5*fr1_cp5*fr2_sp5));
-    const float fm5_3 = x[nav_ukf_ix_vn] + dt*(fr1_cm5*ft151 + ft152*(ft153 + fr2_sm5*ft154) + ft155*(-ft156 + fr0_sm5*fr1_cm5*fr2_sm5));
-    const float fp5_4 = x[nav_ukf_ix_ve] + dt*(fr1_sp5*ft144 + ft145*(fr2_sp5*ft149 - fr0_sp5*fr1_cp5) + ft148*(ft147 + fr2_sp5*ft146));
-    const float fm5_4 = x[nav_ukf_ix_ve] + dt*(fr1_sm5*ft151 + ft152*(fr2_sm5*ft156 - fr0_sm5*fr1_cm5) + ft155*(ft154 + fr2_sm5*ft153));
-    const float fp5_5 = fg5_5 + x[nav_ukf_ix_vd] + dt*(par->g - fr2_sp5*ft143 + fr0_cp5*fr2_cp5*ft145 + fr0_sp5*fr2_cp5*ft148);
-    const float fm5_5 = x[nav_ukf_ix_vd] - fg5_5 + dt*(par->g - fr2_sm5*ft150 + fr0_cm5*fr2_cm5*ft152 + fr0_sm5*fr2_cm5*ft155);
-    const float fp5_6 = fg6_5 + x[nav_ukf_ix_roll] + dt*(-fg9_5 - ft55 + fr2_sp5*ft157*ft160);
-    const float fm5_6 = x[nav_ukf_ix_roll] - fg6_5 + dt*(fg9_5 + ft30 + fr2_sm5*ft163);
-    const float fp5_7 = fg7_5 + x[nav_ukf_ix_pitch] + dt*(fr0_cp5*ft159 - fr0_sp5*ft158);
-    const float fm5_7 = x[nav_ukf_ix_pitch] - fg7_5 + dt*(fr0_cm5*ft162 - fr0_sm5*ft161);
-    const float fp5_8 = fg8_5 + x[nav_ukf_ix_yaw] + dt*ft157*ft160;
-    const float fm5_8 = x[nav_ukf_ix_yaw] - fg8_5 + dt*ft163;
-    const float fp6_3 = x[nav_ukf_ix_vn] + dt*(fr1_cp6*ft165 + ft166*(ft167 + fr2_sp6*ft168) + ft169*(-ft170 + fr0_sp6*fr1_cp6*fr2_sp6));
-    const float fm6_3 = x[nav_ukf_ix_vn] + dt*(fr1_cm6*ft172 + ft173*(ft174 + fr2_sm6*ft175) + ft176*(-ft177 + fr0_sm6*fr1_cm6*fr2_sm6));
-    const float fp6_4 = x[nav_ukf_ix_ve] + dt*(fr1_sp6*ft165 + ft166*(fr2_sp6*ft170 - fr0_sp6*fr1_cp6) + ft169*(ft168 + fr2_sp6*ft167));
-    const float fm6_4 = x[nav_ukf_ix_ve] + dt*(fr1_sm6*ft172 + ft173*(fr2_sm6*ft177 - fr0_sm6*fr1_cm6) + ft176*(ft175 + fr2_sm6*ft174));
-    const float fp6_5 = x[nav_ukf_ix_vd] + dt*(par->g - fr2_sp6*ft164 + fr0_cp6*fr2_cp6*ft166 + fr0_sp6*fr2_cp6*ft169);
-    const float fm6_5 = x[nav_ukf_ix_vd] + dt*(par->g - fr2_sm6*ft171 + fr0_cm6*fr2_cm6*ft173 + fr0_sm6*fr2_cm6*ft176);
-    const float fp6_6 = fg6_6 + x[nav_ukf_ix_roll] + dt*(-fg9_6 - ft55 + fr2_sp6*ft178*ft181);
-    const float fm6_6 = x[nav_ukf_ix_roll] - fg6_6 + dt*(fg9_6 + ft30 + fr2_sm6*ft184);
-    const float fp6_7 = fg7_6 + x[nav_ukf_ix_pitch] + dt*(fr0_cp6*ft180 - fr0_sp6*ft179);
-    const float fm6_7 = x[nav_ukf_ix_pitch] - fg7_6 + dt*(fr0_cm6*ft183 - fr0_sm6*ft182);
-    const float fp6_8 = fg8_6 + x[nav_ukf_ix_yaw] + dt*ft178*ft181;
-    const float fm6_8 = x[nav_ukf_ix_yaw] - fg8_6 + dt*ft184;
-    const float fp7_3 = x[nav_ukf_ix_vn] + dt*(fr1_cp7*ft186 + ft187*(ft188 + fr2_sp7*ft189) + ft190*(-ft191 + fas0*fr1_cp7*fr2_sp7));
-    const float fm7_3 = x[nav_ukf_ix_vn] + dt*(fr1_cm7*ft193 + ft194*(ft195 + fr2_sm7*ft196) + ft197*(-ft198 + fas0*fr1_cm7*fr2_sm7));
-    const float fp7_4 = x[nav_ukf_ix_ve] + dt*(fr1_sp7*ft186 + ft187*(fr2_sp7*ft191 - fas0*fr1_cp7) + ft190*(ft189 + fr2_sp7*ft188));
-    const float fm7_4 = x[nav_ukf_ix_ve] + dt*(fr1_sm7*ft193 + ft194*(fr2_sm7*ft198 - fas0*fr1_cm7) + ft197*(ft196 + fr2_sm7*ft195));
-    const float fp7_5 = x[nav_ukf_ix_vd] + dt*(par->g - fr2_sp7*ft185 + fak0*fr2_cp7*ft187 + fas0*fr2_cp7*ft190);
-    const float fm7_5 = x[nav_ukf_ix_vd] + dt*(par->g - fr2_sm7*ft192 + fak0*fr2_cm7*ft194 + fas0*fr2_cm7*ft197);
-    const float fp7_6 = x[nav_ukf_ix_roll] + dt*(-fg9_7 - ft55 + fr2_sp7*ft199*ft202);
-    const float fm7_6 = x[nav_ukf_ix_roll] + dt*(fg9_7 + ft30 + fr2_sm7*ft205);
-    const float fp7_7 = fg7_7 + x[nav_ukf_ix_pitch] + dt*(fak0*ft201 - fas0*ft200);
-    const float fm7_7 = x[nav_ukf_ix_pitch] - fg7_7 + dt*(fak0*ft204 - fas0*ft203);
-    const float fp7_8 = fg8_7 + x[nav_ukf_ix_yaw] + dt*ft199*ft202;
-    const float fm7_8 = x[nav_ukf_ix_yaw] - fg8_7 + dt*ft205;
-    const float fp8_3 = x[nav_ukf_ix_vn] + dt*(fr1_cp8*ft207 + ft208*(ft209 + fas2*ft210) + ft211*(-ft212 + fas0*fas2*fr1_cp8));
-    const float fm8_3 = x[nav_ukf_ix_vn] + dt*(fr1_cm8*ft214 + ft215*(ft216 + fas2*ft217) + ft218*(-ft219 + fas0*fas2*fr1_cm8));
-    const float fp8_4 = x[nav_ukf_ix_ve] + dt*(fr1_sp8*ft207 + ft208*(fas2*ft212 - fas0*fr1_cp8) + ft211*(ft210 + fas2*ft209));
-    const float fm8_4 = x[nav_ukf_ix_ve] + dt*(fr1_sm8*ft214 + ft215*(fas2*ft219 - fas0*fr1_cm8) + ft218*(ft217 + fas2*ft216));
-    const float fp8_5 = x[nav_ukf_ix_vd] + dt*(par->g + ft18*ft208 + ft20*ft211 - fas2*ft206);
-    const float fm8_5 = x[nav_ukf_ix_vd] + dt*(par->g + ft18*ft215 + ft20*ft218 - fas2*ft213);
-    const float fp8_6 = x[nav_ukf_ix_roll] + dt*(-fg9_8 - ft55 + fas2*ft222*ft25);
-    const float fm8_6 = x[nav_ukf_ix_roll] + dt*(fg9_8 + ft30 + ft225*ft226);
-    const float fp8_7 = x[nav_ukf_ix_pitch] + dt*(fak0*ft221 - fas0*ft220);
-    const float fm8_7 = x[nav_ukf_ix_pitch] + dt*(fak0*ft224 - fas0*ft223);
-    const float fp8_8 = fg8_8 + x[nav_ukf_ix_yaw] + ft222*ft227;
-    const float fm8_8 = x[nav_ukf_ix_yaw] - fg8_8 + ft225*ft227;
-    const float fp9_3 = x[nav_ukf_ix_vn] + dt*(ft2*ft230 + ft228*ft229 + ft231*ft5);
-    const float fm9_3 = x[nav_ukf_ix_vn] + dt*(ft2*ft233 + ft229*ft232 + ft234*ft5);
-    const float fp9_4 = x[nav_ukf_ix_ve] + dt*(ft11*ft230 + ft13*ft231 + ft228*ft235);
-    const float fm9_4 = x[nav_ukf_ix_ve] + dt*(ft11*ft233 + ft13*ft234 + ft232*ft235);
-    const float fp9_5 = x[nav_ukf_ix_vd] + dt*(par->g + ft18*ft230 + ft20*ft231 - fas2*ft228);
-    const float fm9_5 = x[nav_ukf_ix_vd] + dt*(par->g + ft18*ft233 + ft20*ft234 - fas2*ft232);
-    const float fp9_6 = x[nav_ukf_ix_roll] + dt*(-fg9_9 - ft55 + fas2*ft238*ft25);
-    const float fm9_6 = x[nav_ukf_ix_roll] + dt*(fg9_9 + ft30 + ft226*ft241);
-    const float fp9_7 = x[nav_ukf_ix_pitch] + dt*(fak0*ft237 - fas0*ft236);
-    const float fm9_7 = x[nav_ukf_ix_pitch] + dt*(fak0*ft240 - fas0*ft239);
-    const float fp9_8 = x[nav_ukf_ix_yaw] + ft227*ft238;
-    const float fm9_8 = x[nav_ukf_ix_yaw] + ft227*ft241;
-    const float fp10_3 = x[nav_ukf_ix_vn] + dt*(ft2*ft243 + ft229*ft242 + ft244*ft5);
-    const float fm10_3 = x[nav_ukf_ix_vn] + dt*(ft2*ft246 + ft229*ft245 + ft247*ft5);
-    const float fp10_4 = x[nav_ukf_ix_ve] + dt*(ft11*ft243 + ft13*ft244 + ft235*ft242);
-    const float fm10_4 = x[nav_ukf_ix_ve] + dt*(ft11*ft246 + ft13*ft247 + ft235*ft245);
-    const float fp10_5 = x[nav_ukf_ix_vd] + dt*(par->g + ft18*ft243 + ft20*ft244 - fas2*ft242);
-    const float fm10_5 = x[nav_ukf_ix_vd] + dt*(par->g + ft18*ft246 + ft20*ft247 - fas2*ft245);
-    const float fp10_6 = x[nav_ukf_ix_roll] + dt*(ft30 + ft226*ft250);
-    const float fm10_6 = x[nav_ukf_ix_roll] + dt*(ft30 + ft226*ft253);
-    const float fp10_7 = x[nav_ukf_ix_pitch] + dt*(fak0*ft249 - fas0*ft248);
-    const float fm10_7 = x[nav_ukf_ix_pitch] + dt*(fak0*ft252 - fas0*ft251);
-    const float fp10_8 = x[nav_ukf_ix_yaw] + ft227*ft250;
-    const float fm10_8 = x[nav_ukf_ix_yaw] + ft227*ft253;
-    const float fp11_3 = x[nav_ukf_ix_vn] + dt*(ft2*ft255 + ft229*ft254 + ft256*ft5);
-    const float fm11_3 = x[nav_ukf_ix_vn] + dt*(ft2*ft258 + ft229*ft257 + ft259*ft5);
-    const float fp11_4 = x[nav_ukf_ix_ve] + dt*(ft11*ft255 + ft13*ft256 + ft235*ft254);
-    const float fm11_4 = x[nav_ukf_ix_ve] + dt*(ft11*ft258 + ft13*ft259 + ft235*ft257);
-    const float fp11_5 = x[nav_ukf_ix_vd] + dt*(par->g + ft18*ft255 + ft20*ft256 - fas2*ft254);
-    const float fm11_5 = x[nav_ukf_ix_vd] + dt*(par->g + ft18*ft258 + ft20*ft259 - fas2*ft257);
-    const float fp11_6 = x[nav_ukf_ix_roll] + dt*(ft30 + ft226*ft261);
-    const float fm11_6 = x[nav_ukf_ix_roll] + dt*(ft30 + ft226*ft263);
-    const float fp11_7 = x[nav_ukf_ix_pitch] + dt*(ft33 - fas0*ft260);
-    const float fm11_7 = x[nav_ukf_ix_pitch] + dt*(ft33 - fas0*ft262);
-    const float fp11_8 = x[nav_ukf_ix_yaw] + ft227*ft261;
-    const float fm11_8 = x[nav_ukf_ix_yaw] + ft227*ft263;
-    const float fp12_3 = x[nav_ukf_ix_vn] + dt*(ft2*ft265 + ft229*ft264 + ft266*ft5);
-    const float fm12_3 = x[nav_ukf_ix_vn] + dt*(ft2*ft268 + ft229*ft267 + ft269*ft5);
-    const float fp12_4 = x[nav_ukf_ix_ve] + dt*(ft11*ft265 + ft13*ft266 + ft235*ft264);
-    const float fm12_4 = x[nav_ukf_ix_ve] + dt*(ft11*ft268 + ft13*ft269 + ft235*ft267);
-    const float fp12_5 = x[nav_ukf_ix_vd] + dt*(par->g + ft18*ft265 + ft20*ft266 - fas2*ft264);
-    const float fm12_5 = x[nav_ukf_ix_vd] + dt*(par->g + ft18*ft268 + ft20*ft269 - fas2*ft267);
-    const float fp13_3 = x[nav_ukf_ix_vn] + dt*(ft8 + ft2*ft270 + ft271*ft5);
-    const float fm13_3 = x[nav_ukf_ix_vn] + dt*(ft8 + ft2*ft272 + ft273*ft5);
-    const float fp13_4 = x[nav_ukf_ix_ve] + dt*(ft15 + ft11*ft270 + ft13*ft271);
-    const float fm13_4 = x[nav_ukf_ix_ve] + dt*(ft15 + ft11*ft272 + ft13*ft273);
-    const float fp13_5 = x[nav_ukf_ix_vd] + dt*(ft22 + ft18*ft270 + ft20*ft271);
-    const float fm13_5 = x[nav_ukf_ix_vd] + dt*(ft22 + ft18*ft272 + ft20*ft273);
-    const float fp14_3 = x[nav_ukf_ix_vn] + dt*(ft9 + ft2*ft274);
-    const float fm14_3 = x[nav_ukf_ix_vn] + dt*(ft9 + ft2*ft275);
-    const float fp14_4 = x[nav_ukf_ix_ve] + dt*(ft16 + ft11*ft274);
-    const float fm14_4 = x[nav_ukf_ix_ve] + dt*(ft16 + ft11*ft275);
-    const float fp14_5 = x[nav_ukf_ix_vd] + dt*(ft23 + ft18*ft274);
-    const float fm14_5 = x[nav_ukf_ix_vd] + dt*(ft23 + ft18*ft275);
-    const float fp15_6 = x[nav_ukf_ix_roll] + dt*(-fg15_15 - ft55 + fas2*ft25*ft28);
-    const float fm15_6 = x[nav_ukf_ix_roll] + dt*(fg15_15 + ft31);
-    const float fp16_6 = x[nav_ukf_ix_roll] + dt*(ft30 + ft226*ft277);
-    const float fm16_6 = x[nav_ukf_ix_roll] + dt*(ft30 + ft226*ft279);
-    const float fp16_7 = x[nav_ukf_ix_pitch] + dt*(-ft34 + fak0*ft276);
-    const float fm16_7 = x[nav_ukf_ix_pitch] + dt*(-ft34 + fak0*ft278);
-    const float fp16_8 = x[nav_ukf_ix_yaw] + ft227*ft277;
-    const float fm16_8 = x[nav_ukf_ix_yaw] + ft227*ft279;
-    const float fp17_6 = x[nav_ukf_ix_roll] + dt*(ft30 + ft226*ft281);
-    const float fm17_6 = x[nav_ukf_ix_roll] + dt*(ft30 + ft226*ft283);
-    const float fp17_7 = x[nav_ukf_ix_pitch] + dt*(ft33 - fas0*ft280);
-    const float fm17_7 = x[nav_ukf_ix_pitch] + dt*(ft33 - fas0*ft282);
-    const float fp17_8 = x[nav_ukf_ix_yaw] + ft227*ft281;
-    const float fm17_8 = x[nav_ukf_ix_yaw] + ft227*ft283;
-    const float fp18_3 = x[nav_ukf_ix_vn] + dt*(ft285 + ft229*ft284);
-    const float fm18_3 = x[nav_ukf_ix_vn] + dt*(ft285 + ft229*ft286);
-    const float fp18_4 = x[nav_ukf_ix_ve] + dt*(ft287 + ft235*ft284);
-    const float fm18_4 = x[nav_ukf_ix_ve] + dt*(ft287 + ft235*ft286);
-    const float fp18_5 = x[nav_ukf_ix_vd] + dt*(ft288 - fas2*ft284);
-    const float fm18_5 = x[nav_ukf_ix_vd] + dt*(ft288 - fas2*ft286);
-    const float fp19_3 = x[nav_ukf_ix_vn] + dt*(ft290 + ft289*ft5);
-    const float fm19_3 = x[nav_ukf_ix_vn] + dt*(ft290 + ft291*ft5);
-    const float fp19_4 = x[nav_ukf_ix_ve] + dt*(ft292 + ft13*ft289);
-    const float fm19_4 = x[nav_ukf_ix_ve] + dt*(ft292 + ft13*ft291);
-    const float fp19_5 = x[nav_ukf_ix_vd] + dt*(ft293 + ft20*ft289);
-    const float fm19_5 = x[nav_ukf_ix_vd] + dt*(ft293 + ft20*ft291);
-    const float fp20_3 = x[nav_ukf_ix_vn] + dt*(ft9 + ft2*ft294);
-    const float fm20_3 = x[nav_ukf_ix_vn] + dt*(ft9 + ft2*ft295);
-    const float fp20_4 = x[nav_ukf_ix_ve] + dt*(ft16 + ft11*ft294);
-    const float fm20_4 = x[nav_ukf_ix_ve] + dt*(ft16 + ft11*ft295);
-    const float fp20_5 = x[nav_ukf_ix_vd] + dt*(ft23 + ft18*ft294);
-    const float fm20_5 = x[nav_ukf_ix_vd] + dt*(ft23 + ft18*ft295);
-    const float fT0_0 = Lf[0] + Lf[3]*dt;
-    const float fT1_0 = Lf[17]*dt;
-    const float fT2_0 = Lf[30]*dt;
-    const float fT3_0 = Lf[42]*dt;
-    const float fT0_1 = Lf[1] + Lf[4]*dt;
-    const float fT1_1 = Lf[15] + Lf[18]*dt;
-    const float fT2_1 = Lf[31]*dt;
-    const float fT3_1 = Lf[43]*dt;
-    const float fT4_1 = Lf[54]*dt;
-    const float fT0_2 = Lf[2] + Lf[5]*dt;
-    const float fT1_2 = Lf[16] + Lf[19]*dt;
-    const float fT2_2 = Lf[29] + Lf[32]*dt;
-    const float fT3_2 = Lf[44]*dt;
-    const float fT4_2 = Lf[55]*dt;
-    const float fT5_2 = Lf[65]*dt;
-    const float fq0_3 = fm0_3 + fp0_3;
-    const float fq1_3 = fm1_3 + fp1_3;
-    const float fq2_3 = fm2_3 + fp2_3;
-    const float fq3_3 = fm3_3 + fp3_3;
-    const float fq4_3 = fm4_3 + fp4_3;
-    const float fq5_3 = fm5_3 + fp5_3;
-    const float fq6_3 = fm6_3 + fp6_3;
-    const float fq7_3 = fm7_3 + fp7_3;
-    const float fq8_3 = fm8_3 + fp8_3;
-    const float fq9_3 = fm9_3 + fp9_3;
-    const float fq10_3 = fm10_3 + fp10_3;
-    const float fq11_3 = fm11_3 + fp11_3;
-    const float fq12_3 = fm12_3 + fp12_3;
-    const float fq13_3 = fm13_3 + fp13_3;
-    const float fq14_3 = fm14_3 + fp14_3;
-    const float fq15_3 = 2.0F*ft10;
-    const float fq16_3 = 2.0F*ft10;
-    const float fq17_3 = 2.0F*ft10;
-    const float fq18_3 = fm18_3 + fp18_3;
-    const float fq19_3 = fm19_3 + fp19_3;
-    const float fq20_3 = fm20_3 + fp20_3;
-    const float fmu3 = 0.023809524F*(fq0_3 + fq10_3 + fq11_3 + fq12_3 + fq13_3 + fq14_3 + fq15_3 + fq16_3 + fq17_3 + fq18_3 + fq19_3 + fq1_3 + fq20_3 + fq2_3 + fq3_3 + fq4_3 + fq5_3 + fq6_3 + fq7_3 + fq8_3 + fq9_3);
-    const float fe3 = ft10 - fmu3;
-    const float fh3 = 0.2182179F*fmu3;
-    const float fu0_3 = 0.10910895F*(fp0_3 - fm0_3);
-    const float fv0_3 = -fh3 + 0.10910895F*fq0_3;
-    const float fu1_3 = 0.10910895F*(fp1_3 - fm1_3);
-    const float fv1_3 = -fh3 + 0.10910895F*fq1_3;
-    const float fu2_3 = 0.10910895F*(fp2_3 - fm2_3);
-    const float fv2_3 = -fh3 + 0.10910895F*fq2_3;
-    const float fu3_3 = 0.10910895F*(fp3_3 - fm3_3);
-    const float fv3_3 = -fh3 + 0.10910895F*fq3_3;
-    const float fu4_3 = 0.10910895F*(fp4_3 - fm4_3);
-    const float fv4_3 = -fh3 + 0.10910895F*fq4_3;
-    const float fu5_3 = 0.10910895F*(fp5_3 - fm5_3);
-    const float fv5_3 = -fh3 + 0.10910895F*fq5_3;
-    const float fu6_3 = 0.10910895F*(fp6_3 - fm6_3);
-    const float fv6_3 = -fh3 + 0.10910895F*fq6_3;
-    const float fu7_3 = 0.10910895F*(fp7_3 - fm7_3);
-    const float fv7_3 = -fh3 + 0.10910895F*fq7_3;
-    const float fu8_3 = 0.10910895F*(fp8_3 - fm8_3);
-    const float fv8_3 = -fh3 + 0.10910895F*fq8_3;
-    const float fu9_3 = 0.10910895F*(fp9_3 - fm9_3);
-    const float fv9_3 = -fh3 + 0.10910895F*fq9_3;
-    const float fu10_3 = 0.10910895F*(fp10_3 - fm10_3);
-    const float fv10_3 = -fh3 + 0.10910895F*fq10_3;
-    const float fu11_3 = 0.10910895F*(fp11_3 - fm11_3);
-    const float fv11_3 = -fh3 + 0.10910895F*fq11_3;
-    const float fu12_3 = 0.10910895F*(fp12_3 - fm12_3);
-    const float fv12_3 = -fh3 + 0.10910895F*fq12_3;
-    const float fu13_3 = 0.10910895F*(fp13_3 - fm13_3);
-    const float fv13_3 = -fh3 + 0.10910895F*fq13_3;
-    const float fu14_3 = 0.10910895F*(fp14_3 - fm14_3);
-    const float fv14_3 = -fh3 + 0.10910895F*fq14_3;
-    const float fv15_3 = -fh3 + 0.10910895F*fq15_3;
-    const float fv16_3 = -fh3 + 0.10910895F*fq16_3;
-    const float fv17_3 = -fh3 + 0.10910895F*fq17_3;
-    const float fu18_3 = 0.10910895F*(fp18_3 - fm18_3);
-    const float fv18_3 = -fh3 + 0.10910895F*fq18_3;
-    const float fu19_3 = 0.10910895F*(fp19_3 - fm19_3);
-    const float fv19_3 = -fh3 + 0.10910895F*fq19_3;
-    const float fu20_3 = 0.10910895F*(fp20_3 - fm20_3);
-    const float fv20_3 = -fh3 + 0.10910895F*fq20_3;
-    const float fq0_4 = fm0_4 + fp0_4;
-    const float fq1_4 = fm1_4 + fp1_4;
-    const float fq2_4 = fm2_4 + fp2_4;
-    const float fq3_4 = fm3_4 + fp3_4;
-    const float fq4_4 = fm4_4 + fp4_4;
-    const float fq5_4 = fm5_4 + fp5_4;
-    const float fq6_4 = fm6_4 + fp6_4;
-    const float fq7_4 = fm7_4 + fp7_4;
-    const float fq8_4 = fm8_4 + fp8_4;
-    const float fq9_4 = fm9_4 + fp9_4;
-    const float fq10_4 = fm10_4 + fp10_4;
-    const float fq11_4 = fm11_4 + fp11_4;
-    const float fq12_4 = fm12_4 + fp12_4;
-    const float fq13_4 = fm13_4 + fp13_4;
-    const float fq14_4 = fm14_4 + fp14_4;
-    const float fq15_4 = 2.0F*ft17;
-    const float fq16_4 = 2.0F*ft17;
-    const float fq17_4 = 2.0F*ft17;
-    const float fq18_4 = fm18_4 + fp18_4;
-    const float fq19_4 = fm19_4 + fp19_4;
-    const float fq20_4 = fm20_4 + fp20_4;
-    const float fmu4 = 0.023809524F*(fq0_4 + fq10_4 + fq11_4 + fq12_4 + fq13_4 + fq14_4 + fq15_4 + fq16_4 + fq17_4 + fq18_4 + fq19_4 + fq1_4 + fq20_4 + fq2_4 + fq3_4 + fq4_4 + fq5_4 + fq6_4 + fq7_4 + fq8_4 + fq9_4);
-    const float fe4 = ft17 - fmu4;
-    const float fh4 = 0.2182179F*fmu4;
-    const float fu0_4 = 0.10910895F*(fp0_4 - fm0_4);
-    const float fv0_4 = -fh4 + 0.10910895F*fq0_4;
-    const float fu1_4 = 0.10910895F*(fp1_4 - fm1_4);
-    const float fv1_4 = -fh4 + 0.10910895F*fq1_4;
-    const float fu2_4 = 0.10910895F*(fp2_4 - fm2_4);
-    const float fv2_4 = -fh4 + 0.10910895F*fq2_4;
-    const float fu3_4 = 0.10910895F*(fp3_4 - fm3_4);
-    const float fv3_4 = -fh4 + 0.10910895F*fq3_4;
-    const float fu4_4 = 0.10910895F*(fp4_4 - fm4_4);
-    const float fv4_4 = -fh4 + 0.10910895F*fq4_4;
-    const float fu5_4 = 0.10910895F*(fp5_4 - fm5_4);
-    const float fv5_4 = -fh4 + 0.10910895F*fq5_4;
-    const float fu6_4 = 0.10910895F*(fp6_4 - fm6_4);
-    const float fv6_4 = -fh4 + 0.10910895F*fq6_4;
-    const float fu7_4 = 0.10910895F*(fp7_4 - fm7_4);
-    const float fv7_4 = -fh4 + 0.10910895F*fq7_4;
-    const float fu8_4 = 0.10910895F*(fp8_4 - fm8_4);
-    const float fv8_4 = -fh4 + 0.10910895F*fq8_4;
-    const float fu9_4 = 0.10910895F*(fp9_4 - fm9_4);
-    const float fv9_4 = -fh4 + 0.10910895F*fq9_4;
-    const float fu10_4 = 0.10910895F*(fp10_4 - fm10_4);
-    const float fv10_4 = -fh4 + 0.10910895F*fq10_4;
-    const float fu11_4 = 0.10910895F*(fp11_4 - fm11_4);
-    const float fv11_4 = -fh4 + 0.10910895F*fq11_4;
-    const float fu12_4 = 0.10910895F*(fp12_4 - fm12_4);
-    const float fv12_4 = -fh4 + 0.10910895F*fq12_4;
-    const float fu13_4 = 0.10910895F*(fp13_4 - fm13_4);
-    const float fv13_4 = -fh4 + 0.10910895F*fq13_4;
-    const float fu14_4 = 0.10910895F*(fp14_4 - fm14_4);
-    const float fv14_4 = -fh4 + 0.10910895F*fq14_4;
-    const float fv15_4 = -fh4 + 0.10910895F*fq15_4;
-    const float fv16_4 = -fh4 + 0.10910895F*fq16_4;
-    const float fv17_4 = -fh4 + 0.10910895F*fq17_4;
-    const float fu18_4 = 0.10910895F*(fp18_4 - fm18_4);
-    const float fv18_4 = -fh4 + 0.10910895F*fq18_4;
-    const float fu19_4 = 0.10910895F*(fp19_4 - fm19_4);
-    const float fv19_4 = -fh4 + 0.10910895F*fq19_4;
-    const float fu20_4 = 0.10910895F*(fp20_4 - fm20_4);
-    const float fv20_4 = -fh4 + 0.10910895F*fq20_4;
-    const float fq0_5 = fm0_5 + fp0_5;
-    const float fq1_5 = fm1_5 + fp1_5;
-    const float fq2_5 = fm2_5 + fp2_5;
-    const float fq3_5 = fm3_5 + fp3_5;
-    const float fq4_5 = fm4_5 + fp4_5;
-    const float fq5_5 = fm5_5 + fp5_5;
-    const float fq6_5 = fm6_5 + fp6_5;
-    const float fq7_5 = fm7_5 + fp7_5;
-    const float fq8_5 = fm8_5 + fp8_5;
-    const float fq9_5 = fm9_5 + fp9_5;
-    const float fq10_5 = fm10_5 + fp10_5;
-    const float fq11_5 = fm11_5 + fp11_5;
-    const float fq12_5 = fm12_5 + fp12_5;
-    const float fq13_5 = fm13_5 + fp13_5;
-    const float fq14_5 = fm14_5 + fp14_5;
-    const float fq15_5 = 2.0F*ft24;
-    const float fq16_5 = 2.0F*ft24;
-    const float fq17_5 = 2.0F*ft24;
-    const float fq18_5 = fm18_5 + fp18_5;
-    const float fq19_5 = fm19_5 + fp19_5;
-    const float fq20_5 = fm20_5 + fp20_5;
-    const float fmu5 = 0.023809524F*(fq0_5 + fq10_5 + fq11_5 + fq12_5 + fq13_5 + fq14_5 + fq15_5 + fq16_5 + fq17_5 + fq18_5 + fq19_5 + fq1_5 + fq20_5 + fq2_5 + fq3_5 + fq4_5 + fq5_5 + fq6_5 + fq7_5 + fq8_5 + fq9_5);
-    const float fe5 = ft24 - fmu5;
-    const float fh5 = 0.2182179F*fmu5;
-    const float fu0_5 = 0.10910895F*(fp0_5 - fm0_5);
-    const float fv0_5 = -fh5 + 0.10910895F*fq0_5;
-    const float fu1_5 = 0.10910895F*(fp1_5 - fm1_5);
-    const float fv1_5 = -fh5 + 0.10910895F*fq1_5;
-    const float fu2_5 = 0.10910895F*(fp2_5 - fm2_5);
-    const float fv2_5 = -fh5 + 0.10910895F*fq2_5;
-    const float fu3_5 = 0.10910895F*(fp3_5 - fm3_5);
-    const float fv3_5 = -fh5 + 0.10910895F*fq3_5;
-    const float fu4_5 = 0.10910895F*(fp4_5 - fm4_5);
-    const float fv4_5 = -fh5 + 0.10910895F*fq4_5;
-    const float fu5_5 = 0.10910895F*(fp5_5 - fm5_5);
-    const float fv5_5 = -fh5 + 0.10910895F*fq5_5;
-    const float fu6_5 = 0.10910895F*(fp6_5 - fm6_5);
-    const float fv6_5 = -fh5 + 0.10910895F*fq6_5;
-    const float fu7_5 = 0.10910895F*(fp7_5 - fm7_5);
-    const float fv7_5 = -fh5 + 0.10910895F*fq7_5;
-    const float fu8_5 = 0.10910895F*(fp8_5 - fm8_5);
-    const float fv8_5 = -fh5 + 0.10910895F*fq8_5;
-    const float fu9_5 = 0.10910895F*(fp9_5 - fm9_5);
-    const float fv9_5 = -fh5 + 0.10910895F*fq9_5;
-    const float fu10_5 = 0.10910895F*(fp10_5 - fm10_5);
-    const float fv10_5 = -fh5 + 0.10910895F*fq10_5;
-    const float fu11_5 = 0.10910895F*(fp11_5 - fm11_5);
-    const float fv11_5 = -fh5 + 0.10910895F*fq11_5;
-    const float fu12_5 = 0.10910895F*(fp12_5 - fm12_5);
-    const float fv12_5 = -fh5 + 0.10910895F*fq12_5;
-    const float fu13_5 = 0.10910895F*(fp13_5 - fm13_5);
-    const float fv13_5 = -fh5 + 0.10910895F*fq13_5;
-    const float fu14_5 = 0.10910895F*(fp14_5 - fm14_5);
-    const float fv14_5 = -fh5 + 0.10910895F*fq14_5;
-    const float fv15_5 = -fh5 + 0.10910895F*fq15_5;
-    const float fv16_5 = -fh5 + 0.10910895F*fq16_5;
-    const float fv17_5 = -fh5 + 0.10910895F*fq17_5;
-    const float fu18_5 = 0.10910895F*(fp18_5 - fm18_5);
-    const float fv18_5 = -fh5 + 0.10910895F*fq18_5;
-    const float fu19_5 = 0.10910895F*(fp19_5 - fm19_5);
-    const float fv19_5 = -fh5 + 0.10910895F*fq19_5;
-    const float fu20_5 = 0.10910895F*(fp20_5 - fm20_5);
-    const float fv20_5 = -fh5 + 0.10910895F*fq20_5;
-    const float fmu6 = atan2f(12.0F*sinf(ft32) + sinf(fm0_6) + sinf(fm10_6) + sinf(fm11_6) + sinf(fm15_6) + sinf(fm16_6) + sinf(fm17_6) + sinf(fm1_6) + sinf(fm2_6) + sinf(fm3_6) + sinf(fm4_6) + sinf(fm5_6) + sinf(fm6_6) + sinf(fm7_6) + sinf(fm8_6) + sinf(fm9_6) + sinf(fp0_6) + sinf(fp10_6) + sinf(fp11_6) + sinf(fp15_6) + sinf(fp16_6) + sinf(fp17_6) + sinf(fp1_6) + sinf(fp2_6) + sinf(fp3_6) + sinf(fp4_6) + sinf(fp5_6) + sinf(fp6_6) + sinf(fp7_6) + sinf(fp8_6) + sinf(fp9_6), 12.0F*cosf(ft32) + cosf(fm0_6) + cosf(fm10_6) + cosf(fm11_6) + cosf(fm15_6) + cosf(fm16_6) + cosf(fm17_6) + cosf(fm1_6) + cosf(fm2_6) + cosf(fm3_6) + cosf(fm4_6) + cosf(fm5_6) + cosf(fm6_6) + cosf(fm7_6) + cosf(fm8_6) + cosf(fm9_6) + cosf(fp0_6) + cosf(fp10_6) + cosf(fp11_6) + cosf(fp15_6) + cosf(fp16_6) + cosf(fp17_6) + cosf(fp1_6) + cosf(fp2_6) + cosf(fp3_6) + cosf(fp4_6) + cosf(fp5_6) + cosf(fp6_6) + cosf(fp7_6) + cosf(fp8_6) + cosf(fp9_6));
-    ea[0] = nav_ukf_wrap(ft32 - fmu6);
-    ea[1] = nav_ukf_wrap(fp0_6 - fmu6);
-    ea[2] = nav_ukf_wrap(fm0_6 - fmu6);
-    const float fu0_6 = 0.10910895F*(ea[1] - ea[2]);
-    const float fv0_6 = 0.10910895F*(ea[1] + ea[2]);
-    ea[3] = nav_ukf_wrap(fp1_6 - fmu6);
-    ea[4] = nav_ukf_wrap(fm1_6 - fmu6);
-    const float fu1_6 = 0.10910895F*(ea[3] - ea[4]);
-    const float fv1_6 = 0.10910895F*(ea[3] + ea[4]);
-    ea[5] = nav_ukf_wrap(fp2_6 - fmu6);
-    ea[6] = nav_ukf_wrap(fm2_6 - fmu6);
-    const float fu2_6 = 0.10910895F*(ea[5] - ea[6]);
-    const float fv2_6 = 0.10910895F*(ea[5] + ea[6]);
-    ea[7] = nav_ukf_wrap(fp3_6 - fmu6);
-    ea[8] = nav_ukf_wrap(fm3_6 - fmu6);
-    const float fu3_6 = 0.10910895F*(ea[7] - ea[8]);
-    const float fv3_6 = 0.10910895F*(ea[7] + ea[8]);
-    ea[9] = nav_ukf_wrap(fp4_6 - fmu6);
-    ea[10] = nav_ukf_wrap(fm4_6 - fmu6);
-    const float fu4_6 = 0.10910895F*(ea[9] - ea[10]);
-    const float fv4_6 = 0.10910895F*(ea[10] + ea[9]);
-    ea[11] = nav_ukf_wrap(fp5_6 - fmu6);
-    ea[12] = nav_ukf_wrap(fm5_6 - fmu6);
-    const float fu5_6 = 0.10910895F*(ea[11] - ea[12]);
-    const float fv5_6 = 0.10910895F*(ea[11] + ea[12]);
-    ea[13] = nav_ukf_wrap(fp6_6 - fmu6);
-    ea[14] = nav_ukf_wrap(fm6_6 - fmu6);
-    const float fu6_6 = 0.10910895F*(ea[13] - ea[14]);
-    const float fv6_6 = 0.10910895F*(ea[13] + ea[14]);
-    ea[15] = nav_ukf_wrap(fp7_6 - fmu6);
-    ea[16] = nav_ukf_wrap(fm7_6 - fmu6);
-    const float fu7_6 = 0.10910895F*(ea[15] - ea[16]);
-    const float fv7_6 = 0.10910895F*(ea[15] + ea[16]);
-    ea[17] = nav_ukf_wrap(fp8_6 - fmu6);
-    ea[18] = nav_ukf_wrap(fm8_6 - fmu6);
-    const float fu8_6 = 0.10910895F*(ea[17] - ea[18]);
-    const float fv8_6 = 0.10910895F*(ea[17] + ea[18]);
-    ea[19] = nav_ukf_wrap(fp9_6 - fmu6);
-    ea[20] = nav_ukf_wrap(fm9_6 - fmu6);
-    const float fu9_6 = 0.10910895F*(ea[19] - ea[20]);
-    const float fv9_6 = 0.10910895F*(ea[19] + ea[20]);
-    ea[21] = nav_ukf_wrap(fp10_6 - fmu6);
-    ea[22] = nav_ukf_wrap(fm10_6 - fmu6);
-    const float fu10_6 = 0.10910895F*(ea[21] - ea[22]);
-    const float fv10_6 = 0.10910895F*(ea[21] + ea[22]);
-    ea[23] = nav_ukf_wrap(fp11_6 - fmu6);
-    ea[24] = nav_ukf_wrap(fm11_6 - fmu6);
-    const float fu11_6 = 0.10910895F*(ea[23] - ea[24]);
-    const float fv11_6 = 0.10910895F*(ea[23] + ea[24]);
-    ea[25] = nav_ukf_wrap(ft32 - fmu6);
-    const float fv12_6 = 0.2182179F*ea[25];
-    ea[26] = nav_ukf_wrap(ft32 - fmu6);
-    const float fv13_6 = 0.2182179F*ea[26];
-    ea[27] = nav_ukf_wrap(ft32 - fmu6);
-    const float fv14_6 = 0.2182179F*ea[27];
-    ea[28] = nav_ukf_wrap(fp15_6 - fmu6);
-    ea[29] = nav_ukf_wrap(fm15_6 - fmu6);
-    const float fu15_6 = 0.10910895F*(ea[28] - ea[29]);
-    const float fv15_6 = 0.10910895F*(ea[28] + ea[29]);
-    ea[30] = nav_ukf_wrap(fp16_6 - fmu6);
-    ea[31] = nav_ukf_wrap(fm16_6 - fmu6);
-    const float fu16_6 = 0.10910895F*(ea[30] - ea[31]);
-    const float fv16_6 = 0.10910895F*(ea[30] + ea[31]);
-    ea[32] = nav_ukf_wrap(fp17_6 - fmu6);
-    ea[33] = nav_ukf_wrap(fm17_6 - fmu6);
-    const float fu17_6 = 0.10910895F*(ea[32] - ea[33]);
-    const float fv17_6 = 0.10910895F*(ea[32] + ea[33]);
-    ea[34] = nav_ukf_wrap(ft32 - fmu6);
-    const float fv18_6 = 0.2182179F*ea[34];
-    ea[35] = nav_ukf_wrap(ft32 - fmu6);
-    const float fv19_6 = 0.2182179F*ea[35];
-    ea[36] = nav_ukf_wrap(ft32 - fmu6);
-    const float fv20_6 = 0.2182179F*ea[36];
-    const float fmu7 = atan2f(14.0F*sinf(ft35) + sinf(fm0_7) + sinf(fm10_7) + sinf(fm11_7) + sinf(fm16_7) + sinf(fm17_7) + sinf(fm1_7) + sinf(fm2_7) + sinf(fm3_7) + sinf(fm4_7) + sinf(fm5_7) + sinf(fm6_7) + sinf(fm7_7) + sinf(fm8_7) + sinf(fm9_7) + sinf(fp0_7) + sinf(fp10_7) + sinf(fp11_7) + sinf(fp16_7) + sinf(fp17_7) + sinf(fp1_7) + sinf(fp2_7) + sinf(fp3_7) + sinf(fp4_7) + sinf(fp5_7) + sinf(fp6_7) + sinf(fp7_7) + sinf(fp8_7) + sinf(fp9_7), 14.0F*cosf(ft35) + cosf(fm0_7) + cosf(fm10_7) + cosf(fm11_7) + cosf(fm16_7) + cosf(fm17_7) + cosf(fm1_7) + cosf(fm2_7) + cosf(fm3_7) + cosf(fm4_7) + cosf(fm5_7) + cosf(fm6_7) + cosf(fm7_7) + cosf(fm8_7) + cosf(fm9_7) + cosf(fp0_7) + cosf(fp10_7) + cosf(fp11_7) + cosf(fp16_7) + cosf(fp17_7) + cosf(fp1_7) + cosf(fp2_7) + cosf(fp3_7) + cosf(fp4_7) + cosf(fp5_7) + cosf(fp6_7) + cosf(fp7_7) + cosf(fp8_7) + cosf(fp9_7));
-    ea[37] = nav_ukf_wrap(ft35 - fmu7);
-    ea[38] = nav_ukf_wrap(fp0_7 - fmu7);
-    ea[39] = nav_ukf_wrap(fm0_7 - fmu7);
-    const float fu0_7 = 0.10910895F*(ea[38] - ea[39]);
-    const float fv0_7 = 0.10910895F*(ea[38] + ea[39]);
-    ea[40] = nav_ukf_wrap(fp1_7 - fmu7);
-    ea[41] = nav_ukf_wrap(fm1_7 - fmu7);
-    const float fu1_7 = 0.10910895F*(ea[40] - ea[41]);
-    const float fv1_7 = 0.10910895F*(ea[40] + ea[41]);
-    ea[42] = nav_ukf_wrap(fp2_7 - fmu7);
-    ea[43] = nav_ukf_wrap(fm2_7 - fmu7);
-    const float fu2_7 = 0.10910895F*(ea[42] - ea[43]);
-    const float fv2_7 = 0.10910895F*(ea[42] + ea[43]);
-    ea[44] = nav_ukf_wrap(fp3_7 - fmu7);
-    ea[45] = nav_ukf_wrap(fm3_7 - fmu7);
-    const float fu3_7 = 0.10910895F*(ea[44] - ea[45]);
-    const float fv3_7 = 0.10910895F*(ea[44] + ea[45]);
-    ea[46] = nav_ukf_wrap(fp4_7 - fmu7);
-    ea[47] = nav_ukf_wrap(fm4_7 - fmu7);
-    const float fu4_7 = 0.10910895F*(ea[46] - ea[47]);
-    const float fv4_7 = 0.10910895F*(ea[46] + ea[47]);
-    ea[48] = nav_ukf_wrap(fp5_7 - fmu7);
-    ea[49] = nav_ukf_wrap(fm5_7 - fmu7);
-    const float fu5_7 = 0.10910895F*(ea[48] - ea[49]);
-    const float fv5_7 = 0.10910895F*(ea[48] + ea[49]);
-    ea[50] = nav_ukf_wrap(fp6_7 - fmu7);
-    ea[51] = nav_ukf_wrap(fm6_7 - fmu7);
-    const float fu6_7 = 0.10910895F*(ea[50] - ea[51]);
-    const float fv6_7 = 0.10910895F*(ea[50] + ea[51]);
-    ea[52] = nav_ukf_wrap(fp7_7 - fmu7);
-    ea[53] = nav_ukf_wrap(fm7_7 - fmu7);
-    const float fu7_7 = 0.10910895F*(ea[52] - ea[53]);
-    const float fv7_7 = 0.10910895F*(ea[52] + ea[53]);
-    ea[54] = nav_ukf_wrap(fp8_7 - fmu7);
-    ea[55] = nav_ukf_wrap(fm8_7 - fmu7);
-    const float fu8_7 = 0.10910895F*(ea[54] - ea[55]);
-    const float fv8_7 = 0.10910895F*(ea[54] + ea[55]);
-    ea[56] = nav_ukf_wrap(fp9_7 - fmu7);
-    ea[57] = nav_ukf_wrap(fm9_7 - fmu7);
-    const float fu9_7 = 0.10910895F*(ea[56] - ea[57]);
-    const float fv9_7 = 0.10910895F*(ea[56] + ea[57]);
-    ea[58] = nav_ukf_wrap(fp10_7 - fmu7);
-    ea[59] = nav_ukf_wrap(fm10_7 - fmu7);
-    const float fu10_7 = 0.10910895F*(ea[58] - ea[59]);
-    const float fv10_7 = 0.10910895F*(ea[58] + ea[59]);
-    ea[60] = nav_ukf_wrap(fp11_7 - fmu7);
-    ea[61] = nav_ukf_wrap(fm11_7 - fmu7);
-    const float fu11_7 = 0.10910895F*(ea[60] - ea[61]);
-    const float fv11_7 = 0.10910895F*(ea[60] + ea[61]);
-    ea[62] = nav_ukf_wrap(ft35 - fmu7);
-    const float fv12_7 = 0.2182179F*ea[62];
-    ea[63] = nav_ukf_wrap(ft35 - fmu7);
-    const float fv13_7 = 0.2182179F*ea[63];
-    ea[64] = nav_ukf_wrap(ft35 - fmu7);
-    const float fv14_7 = 0.2182179F*ea[64];
-    ea[65] = nav_ukf_wrap(ft35 - fmu7);
-    const float fv15_7 = 0.2182179F*ea[65];
-    ea[66] = nav_ukf_wrap(fp16_7 - fmu7);
-    ea[67] = nav_ukf_wrap(fm16_7 - fmu7);
-    const float fu16_7 = 0.10910895F*(ea[66] - ea[67]);
-    const float fv16_7 = 0.10910895F*(ea[66] + ea[67]);
-    ea[68] = nav_ukf_wrap(fp17_7 - fmu7);
-    ea[69] = nav_ukf_wrap(fm17_7 - fmu7);
-    const float fu17_7 = 0.10910895F*(ea[68] - ea[69]);
-    const float fv17_7 = 0.10910895F*(ea[68] + ea[69]);
-    ea[70] = nav_ukf_wrap(ft35 - fmu7);
-    const float fv18_7 = 0.2182179F*ea[70];
-    ea[71] = nav_ukf_wrap(ft35 - fmu7);
-    const float fv19_7 = 0.2182179F*ea[71];
-    ea[72] = nav_ukf_wrap(ft35 - fmu7);
-    const float fv20_7 = 0.2182179F*ea[72];
-    const float fmu8 = atan2f(14.0F*sinf(ft36) + sinf(fm0_8) + sinf(fm10_8) + sinf(fm11_8) + sinf(fm16_8) + sinf(fm17_8) + sinf(fm1_8) + sinf(fm2_8) + sinf(fm3_8) + sinf(fm4_8) + sinf(fm5_8) + sinf(fm6_8) + sinf(fm7_8) + sinf(fm8_8) + sinf(fm9_8) + sinf(fp0_8) + sinf(fp10_8) + sinf(fp11_8) + sinf(fp16_8) + sinf(fp17_8) + sinf(fp1_8) + sinf(fp2_8) + sinf(fp3_8) + sinf(fp4_8) + sinf(fp5_8) + sinf(fp6_8) + sinf(fp7_8) + sinf(fp8_8) + sinf(fp9_8), 14.0F*cosf(ft36) + cosf(fm0_8) + cosf(fm10_8) + cosf(fm11_8) + cosf(fm16_8) + cosf(fm17_8) + cosf(fm1_8) + cosf(fm2_8) + cosf(fm3_8) + cosf(fm4_8) + cosf(fm5_8) + cosf(fm6_8) + cosf(fm7_8) + cosf(fm8_8) + cosf(fm9_8) + cosf(fp0_8) + cosf(fp10_8) + cosf(fp11_8) + cosf(fp16_8) + cosf(fp17_8) + cosf(fp1_8) + cosf(fp2_8) + cosf(fp3_8) + cosf(fp4_8) + cosf(fp5_8) + cosf(fp6_8) + cosf(fp7_8) + cosf(fp8_8) + cosf(fp9_8));
-    ea[73] = nav_ukf_wrap(ft36 - fmu8);
-    ea[74] = nav_ukf_wrap(fp0_8 - fmu8);
-    ea[75] = nav_ukf_wrap(fm0_8 - fmu8);
-    const float fu0_8 = 0.10910895F*(ea[74] - ea[75]);
-    const float fv0_8 = 0.10910895F*(ea[74] + ea[75]);
-    ea[76] = nav_ukf_wrap(fp1_8 - fmu8);
-    ea[77] = nav_ukf_wrap(fm1_8 - fmu8);
-    const float fu1_8 = 0.10910895F*(ea[76] - ea[77]);
-    const float fv1_8 = 0.10910895F*(ea[76] + ea[77]);
-    ea[78] = nav_ukf_wrap(fp2_8 - fmu8);
-    ea[79] = nav_ukf_wrap(fm2_8 - fmu8);
-    const float fu2_8 = 0.10910895F*(ea[78] - ea[79]);
-    const float fv2_8 = 0.10910895F*(ea[78] + ea[79]);
-    ea[80] = nav_ukf_wrap(fp3_8 - fmu8);
-    ea[81] = nav_ukf_wrap(fm3_8 - fmu8);
-    const float fu3_8 = 0.10910895F*(ea[80] - ea[81]);
-    const float fv3_8 = 0.10910895F*(ea[80] + ea[81]);
-    ea[82] = nav_ukf_wrap(fp4_8 - fmu8);
-    ea[83] = nav_ukf_wrap(fm4_8 - fmu8);
-    const float fu4_8 = 0.10910895F*(ea[82] - ea[83]);
-    const float fv4_8 = 0.10910895F*(ea[82] + ea[83]);
-    ea[84] = nav_ukf_wrap(fp5_8 - fmu8);
-    ea[85] = nav_ukf_wrap(fm5_8 - fmu8);
-    const float fu5_8 = 0.10910895F*(ea[84] - ea[85]);
-    const float fv5_8 = 0.10910895F*(ea[84] + ea[85]);
-    ea[86] = nav_ukf_wrap(fp6_8 - fmu8);
-    ea[87] = nav_ukf_wrap(fm6_8 - fmu8);
-    const float fu6_8 = 0.10910895F*(ea[86] - ea[87]);
-    const float fv6_8 = 0.10910895F*(ea[86] + ea[87]);
-    ea[88] = nav_ukf_wrap(fp7_8 - fmu8);
-    ea[89] = nav_ukf_wrap(fm7_8 - fmu8);
-    const float fu7_8 = 0.10910895F*(ea[88] - ea[89]);
-    const float fv7_8 = 0.10910895F*(ea[88] + ea[89]);
-    ea[90] = nav_ukf_wrap(fp8_8 - fmu8);
-    ea[91] = nav_ukf_wrap(fm8_8 - fmu8);
-    const float fu8_8 = 0.10910895F*(ea[90] - ea[91]);
-    const float fv8_8 = 0.10910895F*(ea[90] + ea[91]);
-    ea[92] = nav_ukf_wrap(fp9_8 - fmu8);
-    ea[93] = nav_ukf_wrap(fm9_8 - fmu8);
-    const float fu9_8 = 0.10910895F*(ea[92] - ea[93]);
-    const float fv9_8 = 0.10910895F*(ea[92] + ea[93]);
-    ea[94] = nav_ukf_wrap(fp10_8 - fmu8);
-    ea[95] = nav_ukf_wrap(fm10_8 - fmu8);
-    const float fu10_8 = 0.10910895F*(ea[94] - ea[95]);
-    const float fv10_8 = 0.10910895F*(ea[94] + ea[95]);
-    ea[96] = nav_ukf_wrap(fp11_8 - fmu8);
-    ea[97] = nav_ukf_wrap(fm11_8 - fmu8);
-    const float fu11_8 = 0.10910895F*(ea[96] - ea[97]);
-    const float fv11_8 = 0.10910895F*(ea[96] + ea[97]);
-    ea[98] = nav_ukf_wrap(ft36 - fmu8);
-    const float fv12_8 = 0.2182179F*ea[98];
-    ea[99] = nav_ukf_wrap(ft36 - fmu8);
-    const float fv13_8 = 0.2182179F*ea[99];
-    ea[100] = nav_ukf_wrap(ft36 - fmu8);
-    const float fv14_8 = 0.2182179F*ea[100];
-    ea[101] = nav_ukf_wrap(ft36 - fmu8);
-    const float fv15_8 = 0.2182179F*ea[101];
-    ea[102] = nav_ukf_wrap(fp16_8 - fmu8);
-    ea[103] = nav_ukf_wrap(fm16_8 - fmu8);
-    const float fu16_8 = 0.10910895F*(ea[102] - ea[103]);
-    const float fv16_8 = 0.10910895F*(ea[102] + ea[103]);
-    ea[104] = nav_ukf_wrap(fp17_8 - fmu8);
-    ea[105] = nav_ukf_wrap(fm17_8 - fmu8);
-    const float fu17_8 = 0.10910895F*(ea[104] - ea[105]);
-    const float fv17_8 = 0.10910895F*(ea[104] + ea[105]);
-    ea[106] = nav_ukf_wrap(ft36 - fmu8);
-    const float fv18_8 = 0.2182179F*ea[106];
-    ea[107] = nav_ukf_wrap(ft36 - fmu8);
-    const float fv19_8 = 0.2182179F*ea[107];
-    ea[108] = nav_ukf_wrap(ft36 - fmu8);
-    const float fv20_8 = 0.2182179F*ea[108];
-    /* predicted state: weighted mean of the sigma points through f */
-    xn[nav_ukf_ix_pn] = fc0;
-    xn[nav_ukf_ix_pe] = fc1;
-    xn[nav_ukf_ix_pd] = fc2;
-    xn[nav_ukf_ix_vn] = fmu3;
-    xn[nav_ukf_ix_ve] = fmu4;
-    xn[nav_ukf_ix_vd] = fmu5;
-    xn[nav_ukf_ix_roll] = nav_ukf_wrap(fmu6);
-    xn[nav_ukf_ix_pitch] = nav_ukf_wrap(fmu7);
-    xn[nav_ukf_ix_yaw] = nav_ukf_wrap(fmu8);
-    xn[nav_ukf_ix_bgx] = x[nav_ukf_ix_bgx];
-    xn[nav_ukf_ix_bgy] = x[nav_ukf_ix_bgy];
-    xn[nav_ukf_ix_bgz] = x[nav_ukf_ix_bgz];
-    xn[nav_ukf_ix_bax] = x[nav_ukf_ix_bax];
-    xn[nav_ukf_ix_bay] = x[nav_ukf_ix_bay];
-    xn[nav_ukf_ix_baz] = x[nav_ukf_ix_baz];
-    /* A P for the rows of f that are linear in x */
-    const float AP0_0 = P[0] + P[3]*dt;
-    const float AP0_1 = P[1] + P[17]*dt;
-    const float AP0_2 = P[2] + P[30]*dt;
-    const float AP0_3 = P[3] + P[42]*dt;
-    const float AP0_4 = P[4] + P[43]*dt;
-    const float AP0_5 = P[5] + P[44]*dt;
-    const float AP0_9 = P[9] + P[48]*dt;
-    const float AP0_10 = P[10] + P[49]*dt;
-    const float AP0_11 = P[11] + P[50]*dt;
-    const float AP0_12 = P[12] + P[51]*dt;
-    const float AP0_13 = P[13] + P[52]*dt;
-    const float AP0_14 = P[14] + P[53]*dt;
-    const float AP1_1 = P[15] + P[18]*dt;
-    const float AP1_2 = P[16] + P[31]*dt;
-    const float AP1_4 = P[18] + P[54]*dt;
-    const float AP1_5 = P[19] + P[55]*dt;
-    const float AP1_9 = P[23] + P[59]*dt;
-    const float AP1_10 = P[24] + P[60]*dt;
-    const float AP1_11 = P[25] + P[61]*dt;
-    const float AP1_12 = P[26] + P[62]*dt;
-    const float AP1_13 = P[27] + P[63]*dt;
-    const float AP1_14 = P[28] + P[64]*dt;
-    const float AP2_2 = P[29] + P[32]*dt;
-    const float AP2_5 = P[32] + P[65]*dt;
-    const float AP2_9 = P[36] + P[69]*dt;
-    const float AP2_10 = P[37] + P[70]*dt;
-    const float AP2_11 = P[38] + P[71]*dt;
-    const float AP2_12 = P[39] + P[72]*dt;
-    const float AP2_13 = P[40] + P[73]*dt;
-    const float AP2_14 = P[41] + P[74]*dt;
-    /* covariance P': weighted covariance of the images + Q, upper triangle, packed */
-    Pn[0] = AP0_0 + ft296 + AP0_3*dt;
-    Pn[1] = AP0_1 + AP0_4*dt;
-    Pn[2] = AP0_2 + AP0_5*dt;
-    Pn[3] = fT0_0*fu0_3 + fT1_0*fu1_3 + fT2_0*fu2_3 + fT3_0*fu3_3;
-    Pn[4] = fT0_0*fu0_4 + fT1_0*fu1_4 + fT2_0*fu2_4 + fT3_0*fu3_4;
-    Pn[5] = fT0_0*fu0_5 + fT1_0*fu1_5 + fT2_0*fu2_5 + fT3_0*fu3_5;
-    Pn[6] = fT0_0*fu0_6 + fT1_0*fu1_6 + fT2_0*fu2_6 + fT3_0*fu3_6;
-    Pn[7] = fT0_0*fu0_7 + fT1_0*fu1_7 + fT2_0*fu2_7 + fT3_0*fu3_7;
-    Pn[8] = fT0_0*fu0_8 + fT1_0*fu1_8 + fT2_0*fu2_8 + fT3_0*fu3_8;
-    Pn[9] = AP0_9;
-    Pn[10] = AP0_10;
-    Pn[11] = AP0_11;
-    Pn[12] = AP0_12;
-    Pn[13] = AP0_13;
-    Pn[14] = AP0_14;
-    Pn[15] = AP1_1 + ft296 + AP1_4*dt;
-    Pn[16] = AP1_2 + AP1_5*dt;
-    Pn[17] = fT0_1*fu0_3 + fT1_1*fu1_3 + fT2_1*fu2_3 + fT3_1*fu3_3 + fT4_1*fu4_3;
-    Pn[18] = fT0_1*fu0_4 + fT1_1*fu1_4 + fT2_1*fu2_4 + fT3_1*fu3_4 + fT4_1*fu4_4;
-    Pn[19] = fT0_1*fu0_5 + fT1_1*fu1_5 + fT2_1*fu2_5 + fT3_1*fu3_5 + fT4_1*fu4_5;
-    Pn[20] = fT0_1*fu0_6 + fT1_1*fu1_6 + fT2_1*fu2_6 + fT3_1*fu3_6 + fT4_1*fu4_6;
-    Pn[21] = fT0_1*fu0_7 + fT1_1*fu1_7 + fT2_1*fu2_7 + fT3_1*fu3_7 + fT4_1*fu4_7;
-    Pn[22] = fT0_1*fu0_8 + fT1_1*fu1_8 + fT2_1*fu2_8 + fT3_1*fu3_8 + fT4_1*fu4_8;
-    Pn[23] = AP1_9;
-    Pn[24] = AP1_10;
-    Pn[25] = AP1_11;
-    Pn[26] = AP1_12;
-    Pn[27] = AP1_13;
-    Pn[28] = AP1_14;
-    Pn[29] = AP2_2 + ft296 + AP2_5*dt;
-    Pn[30] = fT0_2*fu0_3 + fT1_2*fu1_3 + fT2_2*fu2_3 + fT3_2*fu3_3 + fT4_2*fu4_3 + fT5_2*fu5_3;
-    Pn[31] = fT0_2*fu0_4 + fT1_2*fu1_4 + fT2_2*fu2_4 + fT3_2*fu3_4 + fT4_2*fu4_4 + fT5_2*fu5_4;
-    Pn[32] = fT0_2*fu0_5 + fT1_2*fu1_5 + fT2_2*fu2_5 + fT3_2*fu3_5 + fT4_2*fu4_5 + fT5_2*fu5_5;
-    Pn[33] = fT0_2*fu0_6 + fT1_2*fu1_6 + fT2_2*fu2_6 + fT3_2*fu3_6 + fT4_2*fu4_6 + fT5_2*fu5_6;
-    Pn[34] = fT0_2*fu0_7 + fT1_2*fu1_7 + fT2_2*fu2_7 + fT3_2*fu3_7 + fT4_2*fu4_7 + fT5_2*fu5_7;
-    Pn[35] = fT0_2*fu0_8 + fT1_2*fu1_8 + fT2_2*fu2_8 + fT3_2*fu3_8 + fT4_2*fu4_8 + fT5_2*fu5_8;
-    Pn[36] = AP2_9;
-    Pn[37] = AP2_10;
-    Pn[38] = AP2_11;
-    Pn[39] = AP2_12;
-    Pn[40] = AP2_13;
-    Pn[41] = AP2_14;
-    Pn[42] = (fu0_3*fu0_3) + (fu10_3*fu10_3) + (fu11_3*fu11_3) + (fu12_3*fu12_3) + (fu13_3*fu13_3) + (fu14_3*fu14_3) + (fu18_3*fu18_3) + (fu19_3*fu19_3) + (fu1_3*fu1_3) + (fu20_3*fu20_3) + (fu2_3*fu2_3) + (fu3_3*fu3_3) + (fu4_3*fu4_3) + (fu5_3*fu5_3) + (fu6_3*fu6_3) + (fu7_3*fu7_3) + (fu8_3*fu8_3) + (fu9_3*fu9_3) + (fv0_3*fv0_3) + (fv10_3*fv10_3) + (fv11_3*fv11_3) + (fv12_3*fv12_3) + (fv13_3*fv13_3) + (fv14_3*fv14_3) + (fv15_3*fv15_3) + (fv16_3*fv16_3) + (fv17_3*fv17_3) + (fv18_3*fv18_3) + (fv19_3*fv19_3) + (fv1_3*fv1_3) + (fv20_3*fv20_3) + (fv2_3*fv2_3) + (fv3_3*fv3_3) + (fv4_3*fv4_3) + (fv5_3*fv5_3) + (fv6_3*fv6_3) + (fv7_3*fv7_3) + (fv8_3*fv8_3) + (fv9_3*fv9_3) + 2.0F*(fe3*fe3);
-    Pn[43] = fu0_3*fu0_4 + fu10_3*fu10_4 + fu11_3*fu11_4 + fu12_3*fu12_4 + fu13_3*fu13_4 + fu14_3*fu14_4 + fu18_3*fu18_4 + fu19_3*fu19_4 + fu1_3*fu1_4 + fu20_3*fu20_4 + fu2_3*fu2_4 + fu3_3*fu3_4 + fu4_3*fu4_4 + fu5_3*fu5_4 + fu6_3*fu6_4 + fu7_3*fu7_4 + fu8_3*fu8_4 + fu9_3*fu9_4 + fv0_3*fv0_4 + fv10_3*fv10_4 + fv11_3*fv11_4 + fv12_3*fv12_4 + fv13_3*fv13_4 + fv14_3*fv14_4 + fv15_3*fv15_4 + fv16_3*fv16_4 + fv17_3*fv17_4 + fv18_3*fv18_4 + fv19_3*fv19_4 + fv1_3*fv1_4 + fv20_3*fv20_4 + fv2_3*fv2_4 + fv3_3*fv3_4 + fv4_3*fv4_4 + fv5_3*fv5_4 + fv6_3*fv6_4 + fv7_3*fv7_4 + fv8_3*fv8_4 + fv9_3*fv9_4 + 2.0F*fe3*fe4;
-    Pn[44] = fu0_3*fu0_5 + fu10_3*fu10_5 + fu11_3*fu11_5 + fu12_3*fu12_5 + fu13_3*fu13_5 + fu14_3*fu14_5 + fu18_3*fu18_5 + fu19_3*fu19_5 + fu1_3*fu1_5 + fu20_3*fu20_5 + fu2_3*fu2_5 + fu3_3*fu3_5 + fu4_3*fu4_5 + fu5_3*fu5_5 + fu6_3*fu6_5 + fu7_3*fu7_5 + fu8_3*fu8_5 + fu9_3*fu9_5 + fv0_3*fv0_5 + fv10_3*fv10_5 + fv11_3*fv11_5 + fv12_3*fv12_5 + fv13_3*fv13_5 + fv14_3*fv14_5 + fv15_3*fv15_5 + fv16_3*fv16_5 + fv17_3*fv17_5 + fv18_3*fv18_5 + fv19_3*fv19_5 + fv1_3*fv1_5 + fv20_3*fv20_5 + fv2_3*fv2_5 + fv3_3*fv3_5 + fv4_3*fv4_5 + fv5_3*fv5_5 + fv6_3*fv6_5 + fv7_3*fv7_5 + fv8_3*fv8_5 + fv9_3*fv9_5 + 2.0F*fe3*fe5;
-    Pn[45] = fu0_3*fu0_6 + fu10_3*fu10_6 + fu11_3*fu11_6 + fu1_3*fu1_6 + fu2_3*fu2_6 + fu3_3*fu3_6 + fu4_3*fu4_6 + fu5_3*fu5_6 + fu6_3*fu6_6 + fu7_3*fu7_6 + fu8_3*fu8_6 + fu9_3*fu9_6 + fv0_3*fv0_6 + fv10_3*fv10_6 + fv11_3*fv11_6 + fv12_3*fv12_6 + fv13_3*fv13_6 + fv14_3*fv14_6 + fv15_3*fv15_6 + fv16_3*fv16_6 + fv17_3*fv17_6 + fv18_3*fv18_6 + fv19_3*fv19_6 + fv1_3*fv1_6 + fv20_3*fv20_6 + fv2_3*fv2_6 + fv3_3*fv3_6 + fv4_3*fv4_6 + fv5_3*fv5_6 + fv6_3*fv6_6 + fv7_3*fv7_6 + fv8_3*fv8_6 + fv9_3*fv9_6 + 2.0F*ea[0]*fe3;
-    Pn[46] = fu0_3*fu0_7 + fu10_3*fu10_7 + fu11_3*fu11_7 + fu1_3*fu1_7 + fu2_3*fu2_7 + fu3_3*fu3_7 + fu4_3*fu4_7 + fu5_3*fu5_7 + fu6_3*fu6_7 + fu7_3*fu7_7 + fu8_3*fu8_7 + fu9_3*fu9_7 + fv0_3*fv0_7 + fv10_3*fv10_7 + fv11_3*fv11_7 + fv12_3*fv12_7 + fv13_3*fv13_7 + fv14_3*fv14_7 + fv15_3*fv15_7 + fv16_3*fv16_7 + fv17_3*fv17_7 + fv18_3*fv18_7 + fv19_3*fv19_7 + fv1_3*fv1_7 + fv20_3*fv20_7 + fv2_3*fv2_7 + fv3_3*fv3_7 + fv4_3*fv4_7 + fv5_3*fv5_7 + fv6_3*fv6_7 + fv7_3*fv7_7 + fv8_3*fv8_7 + fv9_3*fv9_7 + 2.0F*ea[37]*fe3;
-    Pn[47] = fu0_3*fu0_8 + fu10_3*fu10_8 + fu11_3*fu11_8 + fu1_3*fu1_8 + fu2_3*fu2_8 + fu3_3*fu3_8 + fu4_3*fu4_8 + fu5_3*fu5_8 + fu6_3*fu6_8 + fu7_3*fu7_8 + fu8_3*fu8_8 + fu9_3*fu9_8 + fv0_3*fv0_8 + fv10_3*fv10_8 + fv11_3*fv11_8 + fv12_3*fv12_8 + fv13_3*fv13_8 + fv14_3*fv14_8 + fv15_3*fv15_8 + fv16_3*fv16_8 + fv17_3*fv17_8 + fv18_3*fv18_8 + fv19_3*fv19_8 + fv1_3*fv1_8 + fv20_3*fv20_8 + fv2_3*fv2_8 + fv3_3*fv3_8 + fv4_3*fv4_8 + fv5_3*fv5_8 + fv6_3*fv6_8 + fv7_3*fv7_8 + fv8_3*fv8_8 + fv9_3*fv9_8 + 2.0F*ea[73]*fe3;
-    Pn[48] = Lf[23]*fu1_3 + Lf[36]*fu2_3 + Lf[48]*fu3_3 + Lf[59]*fu4_3 + Lf[69]*fu5_3 + Lf[78]*fu6_3 + Lf[86]*fu7_3 + Lf[93]*fu8_3 + Lf[99]*fu9_3 + Lf[9]*fu0_3;
-    Pn[49] = Lf[100]*fu9_3 + Lf[105]*fu10_3 + Lf[10]*fu0_3 + Lf[24]*fu1_3 + Lf[37]*fu2_3 + Lf[49]*fu3_3 + Lf[60]*fu4_3 + Lf[70]*fu5_3 + Lf[79]*fu6_3 + Lf[87]*fu7_3 + Lf[94]*fu8_3;
-    Pn[50] = Lf[101]*fu9_3 + Lf[106]*fu10_3 + Lf[110]*fu11_3 + Lf[11]*fu0_3 + Lf[25]*fu1_3 + Lf[38]*fu2_3 + Lf[50]*fu3_3 + Lf[61]*fu4_3 + Lf[71]*fu5_3 + Lf[80]*fu6_3 + Lf[88]*fu7_3 + Lf[95]*fu8_3;
-    Pn[51] = Lf[102]*fu9_3 + Lf[107]*fu10_3 + Lf[111]*fu11_3 + Lf[114]*fu12_3 + Lf[12]*fu0_3 + Lf[26]*fu1_3 + Lf[39]*fu2_3 + Lf[51]*fu3_3 + Lf[62]*fu4_3 + Lf[72]*fu5_3 + Lf[81]*fu6_3 + Lf[89]*fu7_3 + Lf[96]*fu8_3;
-    Pn[52] = Lf[103]*fu9_3 + Lf[108]*fu10_3 + Lf[112]*fu11_3 + Lf[115]*fu12_3 + Lf[117]*fu13_3 + Lf[13]*fu0_3 + Lf[27]*fu1_3 + Lf[40]*fu2_3 + Lf[52]*fu3_3 + Lf[63]*fu4_3 + Lf[73]*fu5_3 + Lf[82]*fu6_3 + Lf[90]*fu7_3 + Lf[97]*fu8_3;
-    Pn[53] = Lf[104]*fu9_3 + Lf[109]*fu10_3 + Lf[113]*fu11_3 + Lf[116]*fu12_3 + Lf[118]*fu13_3 + Lf[119]*fu14_3 + Lf[14]*fu0_3 + Lf[28]*fu1_3 + Lf[41]*fu2_3 + Lf[53]*fu3_3 + Lf[64]*fu4_3 + Lf[74]*fu5_3 + Lf[83]*fu6_3 + Lf[91]*fu7_3 + Lf[98]*fu8_3;
-    Pn[54] = (fu0_4*fu0_4) + (fu10_4*fu10_4) + (fu11_4*fu11_4) + (fu12_4*fu12_4) + (fu13_4*fu13_4) + (fu14_4*fu14_4) + (fu18_4*fu18_4) + (fu19_4*fu19_4) + (fu1_4*fu1_4) + (fu20_4*fu20_4) + (fu2_4*fu2_4) + (fu3_4*fu3_4) + (fu4_4*fu4_4) + (fu5_4*fu5_4) + (fu6_4*fu6_4) + (fu7_4*fu7_4) + (fu8_4*fu8_4) + (fu9_4*fu9_4) + (fv0_4*fv0_4) + (fv10_4*fv10_4) + (fv11_4*fv11_4) + (fv12_4*fv12_4) + (fv13_4*fv13_4) + (fv14_4*fv14_4) + (fv15_4*fv15_4) + (fv16_4*fv16_4) + (fv17_4*fv17_4) + (fv18_4*fv18_4) + (fv19_4*fv19_4) + (fv1_4*fv1_4) + (fv20_4*fv20_4) + (fv2_4*fv2_4) + (fv3_4*fv3_4) + (fv4_4*fv4_4) + (fv5_4*fv5_4) + (fv6_4*fv6_4) + (fv7_4*fv7_4) + (fv8_4*fv8_4) + (fv9_4*fv9_4) + 2.0F*(fe4*fe4);
-    Pn[55] = fu0_4*fu0_5 + fu10_4*fu10_5 + fu11_4*fu11_5 + fu12_4*fu12_5 + fu13_4*fu13_5 + fu14_4*fu14_5 + fu18_4*fu18_5 + fu19_4*fu19_5 + fu1_4*fu1_5 + fu20_4*fu20_5 + fu2_4*fu2_5 + fu3_4*fu3_5 + fu4_4*fu4_5 + fu5_4*fu5_5 + fu6_4*fu6_5 + fu7_4*fu7_5 + fu8_4*fu8_5 + fu9_4*fu9_5 + fv0_4*fv0_5 + fv10_4*fv10_5 + fv11_4*fv11_5 + fv12_4*fv12_5 + fv13_4*fv13_5 + fv14_4*fv14_5 + fv15_4*fv15_5 + fv16_4*fv16_5 + fv17_4*fv17_5 + fv18_4*fv18_5 + fv19_4*fv19_5 + fv1_4*fv1_5 + fv20_4*fv20_5 + fv2_4*fv2_5 + fv3_4*fv3_5 + fv4_4*fv4_5 + fv5_4*fv5_5 + fv6_4*fv6_5 + fv7_4*fv7_5 + fv8_4*fv8_5 + fv9_4*fv9_5 + 2.0F*fe4*fe5;
-    Pn[56] = fu0_4*fu0_6 + fu10_4*fu10_6 + fu11_4*fu11_6 + fu1_4*fu1_6 + fu2_4*fu2_6 + fu3_4*fu3_6 + fu4_4*fu4_6 + fu5_4*fu5_6 + fu6_4*fu6_6 + fu7_4*fu7_6 + fu8_4*fu8_6 + fu9_4*fu9_6 + fv0_4*fv0_6 + fv10_4*fv10_6 + fv11_4*fv11_6 + fv12_4*fv12_6 + fv13_4*fv13_6 + fv14_4*fv14_6 + fv15_4*fv15_6 + fv16_4*fv16_6 + fv17_4*fv17_6 + fv18_4*fv18_6 + fv19_4*fv19_6 + fv1_4*fv1_6 + fv20_4*fv20_6 + fv2_4*fv2_6 + fv3_4*fv3_6 + fv4_4*fv4_6 + fv5_4*fv5_6 + fv6_4*fv6_6 + fv7_4*fv7_6 + fv8_4*fv8_6 + fv9_4*fv9_6 + 2.0F*ea[0]*fe4;
-    Pn[57] = fu0_4*fu0_7 + fu10_4*fu10_7 + fu11_4*fu11_7 + fu1_4*fu1_7 + fu2_4*fu2_7 + fu3_4*fu3_7 + fu4_4*fu4_7 + fu5_4*fu5_7 + fu6_4*fu6_7 + fu7_4*fu7_7 + fu8_4*fu8_7 + fu9_4*fu9_7 + fv0_4*fv0_7 + fv10_4*fv10_7 + fv11_4*fv11_7 + fv12_4*fv12_7 + fv13_4*fv13_7 + fv14_4*fv14_7 + fv15_4*fv15_7 + fv16_4*fv16_7 + fv17_4*fv17_7 + fv18_4*fv18_7 + fv19_4*fv19_7 + fv1_4*fv1_7 + fv20_4*fv20_7 + fv2_4*fv2_7 + fv3_4*fv3_7 + fv4_4*fv4_7 + fv5_4*fv5_7 + fv6_4*fv6_7 + fv7_4*fv7_7 + fv8_4*fv8_7 + fv9_4*fv9_7 + 2.0F*ea[37]*fe4;
-    Pn[58] = fu0_4*fu0_8 + fu10_4*fu10_8 + fu11_4*fu11_8 + fu1_4*fu1_8 + fu2_4*fu2_8 + fu3_4*fu3_8 + fu4_4*fu4_8 + fu5_4*fu5_8 + fu6_4*fu6_8 + fu7_4*fu7_8 + fu8_4*fu8_8 + fu9_4*fu9_8 + fv0_4*fv0_8 + fv10_4*fv10_8 + fv11_4*fv11_8 + fv12_4*fv12_8 + fv13_4*fv13_8 + fv14_4*fv14_8 + fv15_4*fv15_8 + fv16_4*fv16_8 + fv17_4*fv17_8 + fv18_4*fv18_8 + fv19_4*fv19_8 + fv1_4*fv1_8 + fv20_4*fv20_8 + fv2_4*fv2_8 + fv3_4*fv3_8 + fv4_4*fv4_8 + fv5_4*fv5_8 + fv6_4*fv6_8 + fv7_4*fv7_8 + fv8_4*fv8_8 + fv9_4*fv9_8 + 2.0F*ea[73]*fe4;
-    Pn[59] = Lf[23]*fu1_4 + Lf[36]*fu2_4 + Lf[48]*fu3_4 + Lf[59]*fu4_4 + Lf[69]*fu5_4 + Lf[78]*fu6_4 + Lf[86]*fu7_4 + Lf[93]*fu8_4 + Lf[99]*fu9_4 + Lf[9]*fu0_4;
-    Pn[60] = Lf[100]*fu9_4 + Lf[105]*fu10_4 + Lf[10]*fu0_4 + Lf[24]*fu1_4 + Lf[37]*fu2_4 + Lf[49]*fu3_4 + Lf[60]*fu4_4 + Lf[70]*fu5_4 + Lf[79]*fu6_4 + Lf[87]*fu7_4 + Lf[94]*fu8_4;
-    Pn[61] = Lf[101]*fu9_4 + Lf[106]*fu10_4 + Lf[110]*fu11_4 + Lf[11]*fu0_4 + Lf[25]*fu1_4 + Lf[38]*fu2_4 + Lf[50]*fu3_4 + Lf[61]*fu4_4 + Lf[71]*fu5_4 + Lf[80]*fu6_4 + Lf[88]*fu7_4 + Lf[95]*fu8_4;
-    Pn[62] = Lf[102]*fu9_4 + Lf[107]*fu10_4 + Lf[111]*fu11_4 + Lf[114]*fu12_4 + Lf[12]*fu0_4 + Lf[26]*fu1_4 + Lf[39]*fu2_4 + Lf[51]*fu3_4 + Lf[62]*fu4_4 + Lf[72]*fu5_4 + Lf[81]*fu6_4 + Lf[89]*fu7_4 + Lf[96]*fu8_4;
-    Pn[63] = Lf[103]*fu9_4 + Lf[108]*fu10_4 + Lf[112]*fu11_4 + Lf[115]*fu12_4 + Lf[117]*fu13_4 + Lf[13]*fu0_4 + Lf[27]*fu1_4 + Lf[40]*fu2_4 + Lf[52]*fu3_4 + Lf[63]*fu4_4 + Lf[73]*fu5_4 + Lf[82]*fu6_4 + Lf[90]*fu7_4 + Lf[97]*fu8_4;
-    Pn[64] = Lf[104]*fu9_4 + Lf[109]*fu10_4 + Lf[113]*fu11_4 + Lf[116]*fu12_4 + Lf[118]*fu13_4 + Lf[119]*fu14_4 + Lf[14]*fu0_4 + Lf[28]*fu1_4 + Lf[41]*fu2_4 + Lf[53]*fu3_4 + Lf[64]*fu4_4 + Lf[74]*fu5_4 + Lf[83]*fu6_4 + Lf[91]*fu7_4 + Lf[98]*fu8_4;
-    Pn[65] = (fu0_5*fu0_5) + (fu10_5*fu10_5) + (fu11_5*fu11_5) + (fu12_5*fu12_5) + (fu13_5*fu13_5) + (fu14_5*fu14_5) + (fu18_5*fu18_5) + (fu19_5*fu19_5) + (fu1_5*fu1_5) + (fu20_5*fu20_5) + (fu2_5*fu2_5) + (fu3_5*fu3_5) + (fu4_5*fu4_5) + (fu5_5*fu5_5) + (fu6_5*fu6_5) + (fu7_5*fu7_5) + (fu8_5*fu8_5) + (fu9_5*fu9_5) + (fv0_5*fv0_5) + (fv10_5*fv10_5) + (fv11_5*fv11_5) + (fv12_5*fv12_5) + (fv13_5*fv13_5) + (fv14_5*fv14_5) + (fv15_5*fv15_5) + (fv16_5*fv16_5) + (fv17_5*fv17_5) + (fv18_5*fv18_5) + (fv19_5*fv19_5) + (fv1_5*fv1_5) + (fv20_5*fv20_5) + (fv2_5*fv2_5) + (fv3_5*fv3_5) + (fv4_5*fv4_5) + (fv5_5*fv5_5) + (fv6_5*fv6_5) + (fv7_5*fv7_5) + (fv8_5*fv8_5) + (fv9_5*fv9_5) + 2.0F*(fe5*fe5);
-    Pn[66] = fu0_5*fu0_6 + fu10_5*fu10_6 + fu11_5*fu11_6 + fu1_5*fu1_6 + fu2_5*fu2_6 + fu3_5*fu3_6 + fu4_5*fu4_6 + fu5_5*fu5_6 + fu6_5*fu6_6 + fu7_5*fu7_6 + fu8_5*fu8_6 + fu9_5*fu9_6 + fv0_5*fv0_6 + fv10_5*fv10_6 + fv11_5*fv11_6 + fv12_5*fv12_6 + fv13_5*fv13_6 + fv14_5*fv14_6 + fv15_5*fv15_6 + fv16_5*fv16_6 + fv17_5*fv17_6 + fv18_5*fv18_6 + fv19_5*fv19_6 + fv1_5*fv1_6 + fv20_5*fv20_6 + fv2_5*fv2_6 + fv3_5*fv3_6 + fv4_5*fv4_6 + fv5_5*fv5_6 + fv6_5*fv6_6 + fv7_5*fv7_6 + fv8_5*fv8_6 + fv9_5*fv9_6 + 2.0F*ea[0]*fe5;
-    Pn[67] = fu0_5*fu0_7 + fu10_5*fu10_7 + fu11_5*fu11_7 + fu1_5*fu1_7 + fu2_5*fu2_7 + fu3_5*fu3_7 + fu4_5*fu4_7 + fu5_5*fu5_7 + fu6_5*fu6_7 + fu7_5*fu7_7 + fu8_5*fu8_7 + fu9_5*fu9_7 + fv0_5*fv0_7 + fv10_5*fv10_7 + fv11_5*fv11_7 + fv12_5*fv12_7 + fv13_5*fv13_7 + fv14_5*fv14_7 + fv15_5*fv15_7 + fv16_5*fv16_7 + fv17_5*fv17_7 + fv18_5*fv18_7 + fv19_5*fv19_7 + fv1_5*fv1_7 + fv20_5*fv20_7 + fv2_5*fv2_7 + fv3_5*fv3_7 + fv4_5*fv4_7 + fv5_5*fv5_7 + fv6_5*fv6_7 + fv7_5*fv7_7 + fv8_5*fv8_7 + fv9_5*fv9_7 + 2.0F*ea[37]*fe5;
-    Pn[68] = fu0_5*fu0_8 + fu10_5*fu10_8 + fu11_5*fu11_8 + fu1_5*fu1_8 + fu2_5*fu2_8 + fu3_5*fu3_8 + fu4_5*fu4_8 + fu5_5*fu5_8 + fu6_5*fu6_8 + fu7_5*fu7_8 + fu8_5*fu8_8 + fu9_5*fu9_8 + fv0_5*fv0_8 + fv10_5*fv10_8 + fv11_5*fv11_8 + fv12_5*fv12_8 + fv13_5*fv13_8 + fv14_5*fv14_8 + fv15_5*fv15_8 + fv16_5*fv16_8 + fv17_5*fv17_8 + fv18_5*fv18_8 + fv19_5*fv19_8 + fv1_5*fv1_8 + fv20_5*fv20_8 + fv2_5*fv2_8 + fv3_5*fv3_8 + fv4_5*fv4_8 + fv5_5*fv5_8 + fv6_5*fv6_8 + fv7_5*fv7_8 + fv8_5*fv8_8 + fv9_5*fv9_8 + 2.0F*ea[73]*fe5;
-    Pn[69] = Lf[23]*fu1_5 + Lf[36]*fu2_5 + Lf[48]*fu3_5 + Lf[59]*fu4_5 + Lf[69]*fu5_5 + Lf[78]*fu6_5 + Lf[86]*fu7_5 + Lf[93]*fu8_5 + Lf[99]*fu9_5 + Lf[9]*fu0_5;
-    Pn[70] = Lf[100]*fu9_5 + Lf[105]*fu10_5 + Lf[10]*fu0_5 + Lf[24]*fu1_5 + Lf[37]*fu2_5 + Lf[49]*fu3_5 + Lf[60]*fu4_5 + Lf[70]*fu5_5 + Lf[79]*fu6_5 + Lf[87]*fu7_5 + Lf[94]*fu8_5;
-    Pn[71] = Lf[101]*fu9_5 + Lf[106]*fu10_5 + Lf[110]*fu11_5 + Lf[11]*fu0_5 + Lf[25]*fu1_5 + Lf[38]*fu2_5 + Lf[50]*fu3_5 + Lf[61]*fu4_5 + Lf[71]*fu5_5 + Lf[80]*fu6_5 + Lf[88]*fu7_5 + Lf[95]*fu8_5;
-    Pn[72] = Lf[102]*fu9_5 + Lf[107]*fu10_5 + Lf[111]*fu11_5 + Lf[114]*fu12_5 + Lf[12]*fu0_5 + Lf[26]*fu1_5 + Lf[39]*fu2_5 + Lf[51]*fu3_5 + Lf[62]*fu4_5 + Lf[72]*fu5_5 + Lf[81]*fu6_5 + Lf[89]*fu7_5 + Lf[96]*fu8_5;
-    Pn[73] = Lf[103]*fu9_5 + Lf[108]*fu10_5 + Lf[112]*fu11_5 + Lf[115]*fu12_5 + Lf[117]*fu13_5 + Lf[13]*fu0_5 + Lf[27]*fu1_5 + Lf[40]*fu2_5 + Lf[52]*fu3_5 + Lf[63]*fu4_5 + Lf[73]*fu5_5 + Lf[82]*fu6_5 + Lf[90]*fu7_5 + Lf[97]*fu8_5;
-    Pn[74] = Lf[104]*fu9_5 + Lf[109]*fu10_5 + Lf[113]*fu11_5 + Lf[116]*fu12_5 + Lf[118]*fu13_5 + Lf[119]*fu14_5 + Lf[14]*fu0_5 + Lf[28]*fu1_5 + Lf[41]*fu2_5 + Lf[53]*fu3_5 + Lf[64]*fu4_5 + Lf[74]*fu5_5 + Lf[83]*fu6_5 + Lf[91]*fu7_5 + Lf[98]*fu8_5;
-    Pn[75] = (fu0_6*fu0_6) + (fu10_6*fu10_6) + (fu11_6*fu11_6) + (fu15_6*fu15_6) + (fu16_6*fu16_6) + (fu17_6*fu17_6) + (fu1_6*fu1_6) + (fu2_6*fu2_6) + (fu3_6*fu3_6) + (fu4_6*fu4_6) + (fu5_6*fu5_6) + (fu6_6*fu6_6) + (fu7_6*fu7_6) + (fu8_6*fu8_6) + (fu9_6*fu9_6) + (fv0_6*fv0_6) + (fv10_6*fv10_6) + (fv11_6*fv11_6) + (fv12_6*fv12_6) + (fv13_6*fv13_6) + (fv14_6*fv14_6) + (fv15_6*fv15_6) + (fv16_6*fv16_6) + (fv17_6*fv17_6) + (fv18_6*fv18_6) + (fv19_6*fv19_6) + (fv1_6*fv1_6) + (fv20_6*fv20_6) + (fv2_6*fv2_6) + (fv3_6*fv3_6) + (fv4_6*fv4_6) + (fv5_6*fv5_6) + (fv6_6*fv6_6) + (fv7_6*fv7_6) + (fv8_6*fv8_6) + (fv9_6*fv9_6) + 2.0F*(ea[0]*ea[0]);
-    Pn[76] = fu0_6*fu0_7 + fu10_6*fu10_7 + fu11_6*fu11_7 + fu16_6*fu16_7 + fu17_6*fu17_7 + fu1_6*fu1_7 + fu2_6*fu2_7 + fu3_6*fu3_7 + fu4_6*fu4_7 + fu5_6*fu5_7 + fu6_6*fu6_7 + fu7_6*fu7_7 + fu8_6*fu8_7 + fu9_6*fu9_7 + fv0_6*fv0_7 + fv10_6*fv10_7 + fv11_6*fv11_7 + fv12_6*fv12_7 + fv13_6*fv13_7 + fv14_6*fv14_7 + fv15_6*fv15_7 + fv16_6*fv16_7 + fv17_6*fv17_7 + fv18_6*fv18_7 + fv19_6*fv19_7 + fv1_6*fv1_7 + fv20_6*fv20_7 + fv2_6*fv2_7 + fv3_6*fv3_7 + fv4_6*fv4_7 + fv5_6*fv5_7 + fv6_6*fv6_7 + fv7_6*fv7_7 + fv8_6*fv8_7 + fv9_6*fv9_7 + 2.0F*ea[0]*ea[37];
-    Pn[77] = fu0_6*fu0_8 + fu10_6*fu10_8 + fu11_6*fu11_8 + fu16_6*fu16_8 + fu17_6*fu17_8 + fu1_6*fu1_8 + fu2_6*fu2_8 + fu3_6*fu3_8 + fu4_6*fu4_8 + fu5_6*fu5_8 + fu6_6*fu6_8 + fu7_6*fu7_8 + fu8_6*fu8_8 + fu9_6*fu9_8 + fv0_6*fv0_8 + fv10_6*fv10_8 + fv11_6*fv11_8 + fv12_6*fv12_8 + fv13_6*fv13_8 + fv14_6*fv14_8 + fv15_6*fv15_8 + fv16_6*fv16_8 + fv17_6*fv17_8 + fv18_6*fv18_8 + fv19_6*fv19_8 + fv1_6*fv1_8 + fv20_6*fv20_8 + fv2_6*fv2_8 + fv3_6*fv3_8 + fv4_6*fv4_8 + fv5_6*fv5_8 + fv6_6*fv6_8 + fv7_6*fv7_8 + fv8_6*fv8_8 + fv9_6*fv9_8 + 2.0F*ea[0]*ea[73];
-    Pn[78] = Lf[23]*fu1_6 + Lf[36]*fu2_6 + Lf[48]*fu3_6 + Lf[59]*fu4_6 + Lf[69]*fu5_6 + Lf[78]*fu6_6 + Lf[86]*fu7_6 + Lf[93]*fu8_6 + Lf[99]*fu9_6 + Lf[9]*fu0_6;
-    Pn[79] = Lf[100]*fu9_6 + Lf[105]*fu10_6 + Lf[10]*fu0_6 + Lf[24]*fu1_6 + Lf[37]*fu2_6 + Lf[49]*fu3_6 + Lf[60]*fu4_6 + Lf[70]*fu5_6 + Lf[79]*fu6_6 + Lf[87]*fu7_6 + Lf[94]*fu8_6;
-    Pn[80] = Lf[101]*fu9_6 + Lf[106]*fu10_6 + Lf[110]*fu11_6 + Lf[11]*fu0_6 + Lf[25]*fu1_6 + Lf[38]*fu2_6 + Lf[50]*fu3_6 + Lf[61]*fu4_6 + Lf[71]*fu5_6 + Lf[80]*fu6_6 + Lf[88]*fu7_6 + Lf[95]*fu8_6;
-    Pn[81] = Lf[102]*fu9_6 + Lf[107]*fu10_6 + Lf[111]*fu11_6 + Lf[12]*fu0_6 + Lf[26]*fu1_6 + Lf[39]*fu2_6 + Lf[51]*fu3_6 + Lf[62]*fu4_6 + Lf[72]*fu5_6 + Lf[81]*fu6_6 + Lf[89]*fu7_6 + Lf[96]*fu8_6;
-    Pn[82] = Lf[103]*fu9_6 + Lf[108]*fu10_6 + Lf[112]*fu11_6 + Lf[13]*fu0_6 + Lf[27]*fu1_6 + Lf[40]*fu2_6 + Lf[52]*fu3_6 + Lf[63]*fu4_6 + Lf[73]*fu5_6 + Lf[82]*fu6_6 + Lf[90]*fu7_6 + Lf[97]*fu8_6;
-    Pn[83] = Lf[104]*fu9_6 + Lf[109]*fu10_6 + Lf[113]*fu11_6 + Lf[14]*fu0_6 + Lf[28]*fu1_6 + Lf[41]*fu2_6 + Lf[53]*fu3_6 + Lf[64]*fu4_6 + Lf[74]*fu5_6 + Lf[83]*fu6_6 + Lf[91]*fu7_6 + Lf[98]*fu8_6;
-    Pn[84] = (fu0_7*fu0_7) + (fu10_7*fu10_7) + (fu11_7*fu11_7) + (fu16_7*fu16_7) + (fu17_7*fu17_7) + (fu1_7*fu1_7) + (fu2_7*fu2_7) + (fu3_7*fu3_7) + (fu4_7*fu4_7) + (fu5_7*fu5_7) + (fu6_7*fu6_7) + (fu7_7*fu7_7) + (fu8_7*fu8_7) + (fu9_7*fu9_7) + (fv0_7*fv0_7) + (fv10_7*fv10_7) + (fv11_7*fv11_7) + (fv12_7*fv12_7) + (fv13_7*fv13_7) + (fv14_7*fv14_7) + (fv15_7*fv15_7) + (fv16_7*fv16_7) + (fv17_7*fv17_7) + (fv18_7*fv18_7) + (fv19_7*fv19_7) + (fv1_7*fv1_7) + (fv20_7*fv20_7) + (fv2_7*fv2_7) + (fv3_7*fv3_7) + (fv4_7*fv4_7) + (fv5_7*fv5_7) + (fv6_7*fv6_7) + (fv7_7*fv7_7) + (fv8_7*fv8_7) + (fv9_7*fv9_7) + 2.0F*(ea[37]*ea[37]);
-    Pn[85] = fu0_7*fu0_8 + fu10_7*fu10_8 + fu11_7*fu11_8 + fu16_7*fu16_8 + fu17_7*fu17_8 + fu1_7*fu1_8 + fu2_7*fu2_8 + fu3_7*fu3_8 + fu4_7*fu4_8 + fu5_7*fu5_8 + fu6_7*fu6_8 + fu7_7*fu7_8 + fu8_7*fu8_8 + fu9_7*fu9_8 + fv0_7*fv0_8 + fv10_7*fv10_8 + fv11_7*fv11_8 + fv12_7*fv12_8 + fv13_7*fv13_8 + fv14_7*fv14_8 + fv15_7*fv15_8 + fv16_7*fv16_8 + fv17_7*fv17_8 + fv18_7*fv18_8 + fv19_7*fv19_8 + fv1_7*fv1_8 + fv20_7*fv20_8 + fv2_7*fv2_8 + fv3_7*fv3_8 + fv4_7*fv4_8 + fv5_7*fv5_8 + fv6_7*fv6_8 + fv7_7*fv7_8 + fv8_7*fv8_8 + fv9_7*fv9_8 + 2.0F*ea[37]*ea[73];
-    Pn[86] = Lf[23]*fu1_7 + Lf[36]*fu2_7 + Lf[48]*fu3_7 + Lf[59]*fu4_7 + Lf[69]*fu5_7 + Lf[78]*fu6_7 + Lf[86]*fu7_7 + Lf[93]*fu8_7 + Lf[99]*fu9_7 + Lf[9]*fu0_7;
-    Pn[87] = Lf[100]*fu9_7 + Lf[105]*fu10_7 + Lf[10]*fu0_7 + Lf[24]*fu1_7 + Lf[37]*fu2_7 + Lf[49]*fu3_7 + Lf[60]*fu4_7 + Lf[70]*fu5_7 + Lf[79]*fu6_7 + Lf[87]*fu7_7 + Lf[94]*fu8_7;
-    Pn[88] = Lf[101]*fu9_7 + Lf[106]*fu10_7 + Lf[110]*fu11_7 + Lf[11]*fu0_7 + Lf[25]*fu1_7 + Lf[38]*fu2_7 + Lf[50]*fu3_7 + Lf[61]*fu4_7 + Lf[71]*fu5_7 + Lf[80]*fu6_7 + Lf[88]*fu7_7 + Lf[95]*fu8_7;
-    Pn[89] = Lf[102]*fu9_7 + Lf[107]*fu10_7 + Lf[111]*fu11_7 + Lf[12]*fu0_7 + Lf[26]*fu1_7 + Lf[39]*fu2_7 + Lf[51]*fu3_7 + Lf[62]*fu4_7 + Lf[72]*fu5_7 + Lf[81]*fu6_7 + Lf[89]*fu7_7 + Lf[96]*fu8_7;
-    Pn[90] = Lf[103]*fu9_7 + Lf[108]*fu10_7 + Lf[112]*fu11_7 + Lf[13]*fu0_7 + Lf[27]*fu1_7 + Lf[40]*fu2_7 + Lf[52]*fu3_7 + Lf[63]*fu4_7 + Lf[73]*fu5_7 + Lf[82]*fu6_7 + Lf[90]*fu7_7 + Lf[97]*fu8_7;
-    Pn[91] = Lf[104]*fu9_7 + Lf[109]*fu10_7 + Lf[113]*fu11_7 + Lf[14]*fu0_7 + Lf[28]*fu1_7 + Lf[41]*fu2_7 + Lf[53]*fu3_7 + Lf[64]*fu4_7 + Lf[74]*fu5_7 + Lf[83]*fu6_7 + Lf[91]*fu7_7 + Lf[98]*fu8_7;
-    Pn[92] = (fu0_8*fu0_8) + (fu10_8*fu10_8) + (fu11_8*fu11_8) + (fu16_8*fu16_8) + (fu17_8*fu17_8) + (fu1_8*fu1_8) + (fu2_8*fu2_8) + (fu3_8*fu3_8) + (fu4_8*fu4_8) + (fu5_8*fu5_8) + (fu6_8*fu6_8) + (fu7_8*fu7_8) + (fu8_8*fu8_8) + (fu9_8*fu9_8) + (fv0_8*fv0_8) + (fv10_8*fv10_8) + (fv11_8*fv11_8) + (fv12_8*fv12_8) + (fv13_8*fv13_8) + (fv14_8*fv14_8) + (fv15_8*fv15_8) + (fv16_8*fv16_8) + (fv17_8*fv17_8) + (fv18_8*fv18_8) + (fv19_8*fv19_8) + (fv1_8*fv1_8) + (fv20_8*fv20_8) + (fv2_8*fv2_8) + (fv3_8*fv3_8) + (fv4_8*fv4_8) + (fv5_8*fv5_8) + (fv6_8*fv6_8) + (fv7_8*fv7_8) + (fv8_8*fv8_8) + (fv9_8*fv9_8) + 2.0F*(ea[73]*ea[73]);
-    Pn[93] = Lf[23]*fu1_8 + Lf[36]*fu2_8 + Lf[48]*fu3_8 + Lf[59]*fu4_8 + Lf[69]*fu5_8 + Lf[78]*fu6_8 + Lf[86]*fu7_8 + Lf[93]*fu8_8 + Lf[99]*fu9_8 + Lf[9]*fu0_8;
-    Pn[94] = Lf[100]*fu9_8 + Lf[105]*fu10_8 + Lf[10]*fu0_8 + Lf[24]*fu1_8 + Lf[37]*fu2_8 + Lf[49]*fu3_8 + Lf[60]*fu4_8 + Lf[70]*fu5_8 + Lf[79]*fu6_8 + Lf[87]*fu7_8 + Lf[94]*fu8_8;
-    Pn[95] = Lf[101]*fu9_8 + Lf[106]*fu10_8 + Lf[110]*fu11_8 + Lf[11]*fu0_8 + Lf[25]*fu1_8 + Lf[38]*fu2_8 + Lf[50]*fu3_8 + Lf[61]*fu4_8 + Lf[71]*fu5_8 + Lf[80]*fu6_8 + Lf[88]*fu7_8 + Lf[95]*fu8_8;
-    Pn[96] = Lf[102]*fu9_8 + Lf[107]*fu10_8 + Lf[111]*fu11_8 + Lf[12]*fu0_8 + Lf[26]*fu1_8 + Lf[39]*fu2_8 + Lf[51]*fu3_8 + Lf[62]*fu4_8 + Lf[72]*fu5_8 + Lf[81]*fu6_8 + Lf[89]*fu7_8 + Lf[96]*fu8_8;
-    Pn[97] = Lf[103]*fu9_8 + Lf[108]*fu10_8 + Lf[112]*fu11_8 + Lf[13]*fu0_8 + Lf[27]*fu1_8 + Lf[40]*fu2_8 + Lf[52]*fu3_8 + Lf[63]*fu4_8 + Lf[73]*fu5_8 + Lf[82]*fu6_8 + Lf[90]*fu7_8 + Lf[97]*fu8_8;
-    Pn[98] = Lf[104]*fu9_8 + Lf[109]*fu10_8 + Lf[113]*fu11_8 + Lf[14]*fu0_8 + Lf[28]*fu1_8 + Lf[41]*fu2_8 + Lf[53]*fu3_8 + Lf[64]*fu4_8 + Lf[74]*fu5_8 + Lf[83]*fu6_8 + Lf[91]*fu7_8 + Lf[98]*fu8_8;
-    Pn[99] = P[99] + ft297;
-    Pn[100] = P[100];
-    Pn[101] = P[101];
-    Pn[102] = P[102];
-    Pn[103] = P[103];
-    Pn[104] = P[104];
-    Pn[105] = P[105] + ft297;
-    Pn[106] = P[106];
-    Pn[107] = P[107];
-    Pn[108] = P[108];
-    Pn[109] = P[109];
-    Pn[110] = P[110] + ft297;
-    Pn[111] = P[111];
-    Pn[112] = P[112];
-    Pn[113] = P[113];
-    Pn[114] = P[114] + ft298;
-    Pn[115] = P[115];
-    Pn[116] = P[116];
-    Pn[117] = P[117] + ft298;
-    Pn[118] = P[118];
-    Pn[119] = P[119] + ft298;
+    /* loop form: the 2N+1 sigma points through the static f, one at a time; their images in Yt */
+    {
+        float Yt[15][43];  /* image of sigma point i, component a, at Yt[a][i] */
+        float yv[15];
+        float xa[21];  /* the sigma point [x; w] */
+        float An[6][6];  /* noise factor: A A' = Qw */
+        size_t i;
+        size_t a;
+        size_t b;
+        size_t r;
+        size_t q = 0u;
+        const float qa0 = sqrtf((1.0F/dt));
+        const float qa1 = 0.005F*qa0;
+        const float qa2 = 0.02F*qa0;
+        An[0][0] = qa1;
+        An[1][0] = 0.0F;
+        An[1][1] = qa1;
+        An[2][0] = 0.0F;
+        An[2][1] = 0.0F;
+        An[2][2] = qa1;
+        An[3][0] = 0.0F;
+        An[3][1] = 0.0F;
+        An[3][2] = 0.0F;
+        An[3][3] = qa2;
+        An[4][0] = 0.0F;
+        An[4][1] = 0.0F;
+        An[4][2] = 0.0F;
+        An[4][3] = 0.0F;
+        An[4][4] = qa2;
+        An[5][0] = 0.0F;
+        An[5][1] = 0.0F;
+        An[5][2] = 0.0F;
+        An[5][3] = 0.0F;
+        An[5][4] = 0.0F;
+        An[5][5] = qa2;
+        for (i = 0u; i < 43u; ++i) {
+            memcpy(xa, x, 15u * sizeof xa[0]);
+            for (r = 15u; r < 21u; ++r) {
+                xa[r] = 0.0F;
+            }
+            if (i > 0u) {
+                const size_t c = (i - 1u) % 21u;
+                const float g = (i <= 21u) ? 4.582576F : -4.582576F;
+                if (c < 15u) {
+                    const float *lc = &Lf[nav_ukf_pku(c, c)];  /* column c of L, rows c..14 */
+                    for (r = c; r < 15u; ++r) {
+                        xa[r] += g * lc[r - c];
+                    }
+                } else {
+                    for (r = c; r < 21u; ++r) {  /* column c - 15 of A */
+                        xa[r] += g * An[r - 15u][c - 15u];
+                    }
+                }
+            }
+            nav_ukf_f(xa, u, dt, par, yv);
+            for (a = 0u; a < 15u; ++a) {
+                Yt[a][i] = yv[a];
+            }
+        }
+        /* weighted mean (circular for angle states), deviations about it (wrapped) */
+        for (a = 0u; a < 15u; ++a) {
+            float acc = 0.0F;
+            for (i = 1u; i < 43u; ++i) {
+                acc += Yt[a][i];
+            }
+            xn[a] = 0.0F * Yt[a][0] + 0.023809524F * acc;
+        }
+        {   /* component 6 is an angle: circular mean */
+            float ss = 0.0F;
+            float cs = 0.0F;
+            for (i = 1u; i < 43u; ++i) {
+                ss += sinf(Yt[6u][i]);
+                cs += cosf(Yt[6u][i]);
+            }
+            xn[6] = nav_ukf_wrap(atan2f(0.0F * sinf(Yt[6u][0]) + 0.023809524F * ss, 0.0F * cosf(Yt[6u][0]) + 0.023809524F * cs));
+        }
+        {   /* component 7 is an angle: circular mean */
+            float ss = 0.0F;
+            float cs = 0.0F;
+            for (i = 1u; i < 43u; ++i) {
+                ss += sinf(Yt[7u][i]);
+                cs += cosf(Yt[7u][i]);
+            }
+            xn[7] = nav_ukf_wrap(atan2f(0.0F * sinf(Yt[7u][0]) + 0.023809524F * ss, 0.0F * cosf(Yt[7u][0]) + 0.023809524F * cs));
+        }
+        {   /* component 8 is an angle: circular mean */
+            float ss = 0.0F;
+            float cs = 0.0F;
+            for (i = 1u; i < 43u; ++i) {
+                ss += sinf(Yt[8u][i]);
+                cs += cosf(Yt[8u][i]);
+            }
+            xn[8] = nav_ukf_wrap(atan2f(0.0F * sinf(Yt[8u][0]) + 0.023809524F * ss, 0.0F * cosf(Yt[8u][0]) + 0.023809524F * cs));
+        }
+        for (a = 0u; a < 15u; ++a) {
+            for (i = 0u; i < 43u; ++i) {
+                Yt[a][i] -= xn[a];
+            }
+        }
+        for (i = 0u; i < 43u; ++i) {
+            Yt[6u][i] = nav_ukf_wrap(Yt[6u][i]);
+        }
+        for (i = 0u; i < 43u; ++i) {
+            Yt[7u][i] = nav_ukf_wrap(Yt[7u][i]);
+        }
+        for (i = 0u; i < 43u; ++i) {
+            Yt[8u][i] = nav_ukf_wrap(Yt[8u][i]);
+        }
+        /* P' = Wc0 d0 d0' + Wi sum_i di di' + Q, packed upper triangle */
+        for (a = 0u; a < 15u; ++a) {
+            for (b = a; b < 15u; ++b) {
+                float acc = 0.0F;
+                for (i = 1u; i < 43u; ++i) {
+                    acc += Yt[a][i] * Yt[b][i];
+                }
+                Pn[q] = 2.0F * Yt[a][0] * Yt[b][0] + 0.023809524F * acc;
+                ++q;
+            }
+        }
+        const float qq0 = 1.0e-06F*dt;
+        const float qq1 = 1.0e-10F*dt;
+        const float qq2 = 1.0e-08F*dt;
+        Pn[0] = Pn[0] + qq0;
+        Pn[15] = Pn[15] + qq0;
+        Pn[29] = Pn[29] + qq0;
+        Pn[42] = Pn[42];
+        Pn[54] = Pn[54];
+        Pn[65] = Pn[65];
+        Pn[75] = Pn[75];
+        Pn[84] = Pn[84];
+        Pn[92] = Pn[92];
+        Pn[99] = Pn[99] + qq1;
+        Pn[105] = Pn[105] + qq1;
+        Pn[110] = Pn[110] + qq1;
+        Pn[114] = Pn[114] + qq2;
+        Pn[117] = Pn[117] + qq2;
+        Pn[119] = Pn[119] + qq2;
+    }
     if (!nav_ukf_finite(xn, 15u)) {
         return NAV_UKF_NON_FINITE;
     }
     {
-        const int st = nav_ukf_commit_pd(Pn);  /* the commit check on the new P */
+        /* rounding certificate: P' is a non-negatively weighted sum of outer products plus a Q
+           with a diagonal >= 0, so it is positive definite up to rounding, and finite when its
+           diagonal is; else it is factorized (see the header) */
+        const int certified = (0.0F <= 1.0e-06F*dt) &
+            (0.0F <= 1.0e-10F*dt) &
+            (0.0F <= 1.0e-08F*dt);
+        const int st = certified ? nav_ukf_commit_diag(Pn) : nav_ukf_commit_pd(Pn);
         if (st != NAV_UKF_OK) {
             return st;
         }
@@ -1781,6 +566,7 @@ int nav_ukf_update_gnss_pos_nis(nav_ukf_t *s, const float *z, float *nis_out)
 {
     float xs[15];
     float Ps[120];
+    float Lf[120];
     float y[3];
     float nis;
     const float *x = s->x;
@@ -1790,44 +576,114 @@ int nav_ukf_update_gnss_pos_nis(nav_ukf_t *s, const float *z, float *nis_out)
     }
 
     {
-        float Lf[120];  /* only the check that P is positive definite: the code below is linear in x */
         const int st = nav_ukf_factor(P, Lf);
         if (st != NAV_UKF_OK) {
             return st;
         }
     }
-    /* innovation y = z - weighted mean of the sigma points through h */
-    y[0] = z[0] - x[nav_ukf_ix_pn];
-    y[1] = z[1] - x[nav_ukf_ix_pe];
-    y[2] = z[2] - x[nav_ukf_ix_pd];
-    /* innovation covariance S (+ R) */
-    const float S0_0 = 2.25F + P[0];
-    const float S1_1 = 2.25F + P[15];
-    const float S2_2 = 9.0F + P[29];
-    /* factor S (pivots checked) */
-    const float Sd0 = S0_0;
-    if (!isfinite(Sd0)) { return NAV_UKF_NON_FINITE; }
-    if (!(Sd0 > 0.0F)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const float Ls0_0 = sqrtf(Sd0);
-    const float Lsi0 = (1.0F/Ls0_0);
-    const float Ls1_0 = Lsi0*P[1];
-    const float Ls2_0 = Lsi0*P[2];
-    const float Sd1 = S1_1 - (Ls1_0*Ls1_0);
-    if (!isfinite(Sd1)) { return NAV_UKF_NON_FINITE; }
-    if (!(Sd1 > 0.0F)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const float Ls1_1 = sqrtf(Sd1);
-    const float Lsi1 = (1.0F/Ls1_1);
-    const float Ls2_1 = Lsi1*(P[16] - Ls1_0*Ls2_0);
-    const float Sd2 = S2_2 - (Ls2_0*Ls2_0) - (Ls2_1*Ls2_1);
-    if (!isfinite(Sd2)) { return NAV_UKF_NON_FINITE; }
-    if (!(Sd2 > 0.0F)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const float Ls2_2 = sqrtf(Sd2);
-    const float Lsi2 = (1.0F/Ls2_2);
-    /* NIS = y' S^-1 y */
-    const float b0 = Lsi0*y[0];
-    const float b1 = Lsi1*(y[1] - Ls1_0*b0);
-    const float b2 = Lsi2*(y[2] - Ls2_0*b0 - Ls2_1*b1);
-    nis = (b0*b0) + (b1*b1) + (b2*b2);
+    /* loop form: the 2N+1 sigma points through the static h, one at a time; their images in Zt */
+    float Zt[3][31];  /* image of sigma point i, component a, at Zt[a][i] */
+    float zv[3];
+    float zm[3];  /* predicted measurement */
+    float Sv[3][3];  /* innovation covariance S (lower triangle) */
+    float Ls[3][3];  /* its Cholesky factor */
+    float Lsi[3];  /* 1 / Ls[k][k] */
+    float bv[3];  /* Ls^-1 y */
+    float Cx[15][3];  /* cross covariance C = cov(x, z), then B = C Ls^-T in place */
+    float xa[15];  /* the sigma point */
+    size_t i;
+    size_t a;
+    size_t b;
+    size_t r;
+    size_t k;
+    size_t q;
+    for (i = 0u; i < 31u; ++i) {
+        memcpy(xa, x, 15u * sizeof xa[0]);
+        if (i > 0u) {
+            const size_t c = (i - 1u) % 15u;
+            const float g = (i <= 15u) ? 3.8729835F : -3.8729835F;
+            const float *lc = &Lf[nav_ukf_pku(c, c)];  /* column c of L, rows c..14 */
+            for (r = c; r < 15u; ++r) {
+                xa[r] += g * lc[r - c];
+            }
+        }
+        nav_ukf_h_gnss_pos(xa, zv);
+        for (a = 0u; a < 3u; ++a) {
+            Zt[a][i] = zv[a];
+        }
+    }
+    /* weighted mean (circular for angle components), deviations about it (wrapped) */
+    for (a = 0u; a < 3u; ++a) {
+        float acc = 0.0F;
+        for (i = 1u; i < 31u; ++i) {
+            acc += Zt[a][i];
+        }
+        zm[a] = 0.0F * Zt[a][0] + 0.033333335F * acc;
+    }
+    for (a = 0u; a < 3u; ++a) {
+        for (i = 0u; i < 31u; ++i) {
+            Zt[a][i] -= zm[a];
+        }
+    }
+    y[0] = z[0] - zm[0];
+    y[1] = z[1] - zm[1];
+    y[2] = z[2] - zm[2];
+    /* S = Wc0 d0 d0' + Wi sum_i di di' + R */
+    for (a = 0u; a < 3u; ++a) {
+        for (b = 0u; b <= a; ++b) {
+            float acc = 0.0F;
+            for (i = 1u; i < 31u; ++i) {
+                acc += Zt[a][i] * Zt[b][i];
+            }
+            Sv[a][b] = 2.0F * Zt[a][0] * Zt[b][0] + 0.033333335F * acc;
+        }
+    }
+    Sv[0][0] = 2.25F + Sv[0][0];
+    Sv[1][1] = 2.25F + Sv[1][1];
+    Sv[2][2] = 9.0F + Sv[2][2];
+    /* C = sum_i Wc_i dX_i dZ_i': dX of the pair i is +-gamma column i of L (zero for noise columns) */
+    memset(Cx, 0, sizeof Cx);
+    for (i = 0u; i < 15u; ++i) {
+        const float *lc = &Lf[nav_ukf_pku(i, i)];  /* column i of L, rows i..14 */
+        for (k = 0u; k < 3u; ++k) {
+            const float dz = 0.12909944F * (Zt[k][i + 1u] - Zt[k][i + 16u]);
+            for (a = i; a < 15u; ++a) {
+                Cx[a][k] += lc[a - i] * dz;
+            }
+        }
+    }
+    /* factor S = Ls Ls' (pivots checked) */
+    for (b = 0u; b < 3u; ++b) {
+        float d = Sv[b][b];
+        for (k = 0u; k < b; ++k) {
+            d -= Ls[b][k] * Ls[b][k];
+        }
+        if (!isfinite(d)) {
+            return NAV_UKF_NON_FINITE;
+        }
+        if (!(d > 0.0F)) {
+            return NAV_UKF_NOT_POSITIVE_DEFINITE;
+        }
+        Ls[b][b] = sqrtf(d);
+        Lsi[b] = 1.0F / Ls[b][b];
+        for (a = b + 1u; a < 3u; ++a) {
+            float e = Sv[a][b];
+            for (k = 0u; k < b; ++k) {
+                e -= Ls[a][k] * Ls[b][k];
+            }
+            Ls[a][b] = e * Lsi[b];
+        }
+    }
+    /* NIS = y' S^-1 y = b' b with b = Ls^-1 y */
+    nis = 0.0F;
+    for (a = 0u; a < 3u; ++a) {
+        float e = y[a];
+        for (k = 0u; k < a; ++k) {
+            e -= Ls[a][k] * bv[k];
+        }
+        bv[a] = e * Lsi[a];
+        nis += bv[a] * bv[a];
+    }
     /* the NIS is complete: report it, and gate before the posterior is formed */
     if (!isfinite(nis)) {
         return NAV_UKF_NON_FINITE;
@@ -1836,190 +692,29 @@ int nav_ukf_update_gnss_pos_nis(nav_ukf_t *s, const float *z, float *nis_out)
         *nis_out = nis;
     }
 
-    /* gain */
-    const float B0_0 = Lsi0*P[0];
-    const float B0_1 = Lsi1*(P[1] - B0_0*Ls1_0);
-    const float B0_2 = Lsi2*(P[2] - B0_0*Ls2_0 - B0_1*Ls2_1);
-    const float B1_0 = Lsi0*P[1];
-    const float B1_1 = Lsi1*(P[15] - B1_0*Ls1_0);
-    const float B1_2 = Lsi2*(P[16] - B1_0*Ls2_0 - B1_1*Ls2_1);
-    const float B2_0 = Lsi0*P[2];
-    const float B2_1 = Lsi1*(P[16] - B2_0*Ls1_0);
-    const float B2_2 = Lsi2*(P[29] - B2_0*Ls2_0 - B2_1*Ls2_1);
-    const float B3_0 = Lsi0*P[3];
-    const float B3_1 = Lsi1*(P[17] - B3_0*Ls1_0);
-    const float B3_2 = Lsi2*(P[30] - B3_0*Ls2_0 - B3_1*Ls2_1);
-    const float B4_0 = Lsi0*P[4];
-    const float B4_1 = Lsi1*(P[18] - B4_0*Ls1_0);
-    const float B4_2 = Lsi2*(P[31] - B4_0*Ls2_0 - B4_1*Ls2_1);
-    const float B5_0 = Lsi0*P[5];
-    const float B5_1 = Lsi1*(P[19] - B5_0*Ls1_0);
-    const float B5_2 = Lsi2*(P[32] - B5_0*Ls2_0 - B5_1*Ls2_1);
-    const float B6_0 = Lsi0*P[6];
-    const float B6_1 = Lsi1*(P[20] - B6_0*Ls1_0);
-    const float B6_2 = Lsi2*(P[33] - B6_0*Ls2_0 - B6_1*Ls2_1);
-    const float B7_0 = Lsi0*P[7];
-    const float B7_1 = Lsi1*(P[21] - B7_0*Ls1_0);
-    const float B7_2 = Lsi2*(P[34] - B7_0*Ls2_0 - B7_1*Ls2_1);
-    const float B8_0 = Lsi0*P[8];
-    const float B8_1 = Lsi1*(P[22] - B8_0*Ls1_0);
-    const float B8_2 = Lsi2*(P[35] - B8_0*Ls2_0 - B8_1*Ls2_1);
-    const float B9_0 = Lsi0*P[9];
-    const float B9_1 = Lsi1*(P[23] - B9_0*Ls1_0);
-    const float B9_2 = Lsi2*(P[36] - B9_0*Ls2_0 - B9_1*Ls2_1);
-    const float B10_0 = Lsi0*P[10];
-    const float B10_1 = Lsi1*(P[24] - B10_0*Ls1_0);
-    const float B10_2 = Lsi2*(P[37] - B10_0*Ls2_0 - B10_1*Ls2_1);
-    const float B11_0 = Lsi0*P[11];
-    const float B11_1 = Lsi1*(P[25] - B11_0*Ls1_0);
-    const float B11_2 = Lsi2*(P[38] - B11_0*Ls2_0 - B11_1*Ls2_1);
-    const float B12_0 = Lsi0*P[12];
-    const float B12_1 = Lsi1*(P[26] - B12_0*Ls1_0);
-    const float B12_2 = Lsi2*(P[39] - B12_0*Ls2_0 - B12_1*Ls2_1);
-    const float B13_0 = Lsi0*P[13];
-    const float B13_1 = Lsi1*(P[27] - B13_0*Ls1_0);
-    const float B13_2 = Lsi2*(P[40] - B13_0*Ls2_0 - B13_1*Ls2_1);
-    const float B14_0 = Lsi0*P[14];
-    const float B14_1 = Lsi1*(P[28] - B14_0*Ls1_0);
-    const float B14_2 = Lsi2*(P[41] - B14_0*Ls2_0 - B14_1*Ls2_1);
-    /* updated state x + K y */
-    xs[nav_ukf_ix_pn] = x[nav_ukf_ix_pn] + B0_0*b0 + B0_1*b1 + B0_2*b2;
-    xs[nav_ukf_ix_pe] = x[nav_ukf_ix_pe] + B1_0*b0 + B1_1*b1 + B1_2*b2;
-    xs[nav_ukf_ix_pd] = x[nav_ukf_ix_pd] + B2_0*b0 + B2_1*b1 + B2_2*b2;
-    xs[nav_ukf_ix_vn] = x[nav_ukf_ix_vn] + B3_0*b0 + B3_1*b1 + B3_2*b2;
-    xs[nav_ukf_ix_ve] = x[nav_ukf_ix_ve] + B4_0*b0 + B4_1*b1 + B4_2*b2;
-    xs[nav_ukf_ix_vd] = x[nav_ukf_ix_vd] + B5_0*b0 + B5_1*b1 + B5_2*b2;
-    xs[nav_ukf_ix_roll] = x[nav_ukf_ix_roll] + B6_0*b0 + B6_1*b1 + B6_2*b2;
-    xs[nav_ukf_ix_pitch] = x[nav_ukf_ix_pitch] + B7_0*b0 + B7_1*b1 + B7_2*b2;
-    xs[nav_ukf_ix_yaw] = x[nav_ukf_ix_yaw] + B8_0*b0 + B8_1*b1 + B8_2*b2;
-    xs[nav_ukf_ix_bgx] = x[nav_ukf_ix_bgx] + B9_0*b0 + B9_1*b1 + B9_2*b2;
-    xs[nav_ukf_ix_bgy] = x[nav_ukf_ix_bgy] + B10_0*b0 + B10_1*b1 + B10_2*b2;
-    xs[nav_ukf_ix_bgz] = x[nav_ukf_ix_bgz] + B11_0*b0 + B11_1*b1 + B11_2*b2;
-    xs[nav_ukf_ix_bax] = x[nav_ukf_ix_bax] + B12_0*b0 + B12_1*b1 + B12_2*b2;
-    xs[nav_ukf_ix_bay] = x[nav_ukf_ix_bay] + B13_0*b0 + B13_1*b1 + B13_2*b2;
-    xs[nav_ukf_ix_baz] = x[nav_ukf_ix_baz] + B14_0*b0 + B14_1*b1 + B14_2*b2;
-    /* covariance P - K S K', upper triangle, packed */
-    Ps[0] = P[0] - (B0_0*B0_0) - (B0_1*B0_1) - (B0_2*B0_2);
-    Ps[1] = P[1] - B0_0*B1_0 - B0_1*B1_1 - B0_2*B1_2;
-    Ps[2] = P[2] - B0_0*B2_0 - B0_1*B2_1 - B0_2*B2_2;
-    Ps[3] = P[3] - B0_0*B3_0 - B0_1*B3_1 - B0_2*B3_2;
-    Ps[4] = P[4] - B0_0*B4_0 - B0_1*B4_1 - B0_2*B4_2;
-    Ps[5] = P[5] - B0_0*B5_0 - B0_1*B5_1 - B0_2*B5_2;
-    Ps[6] = P[6] - B0_0*B6_0 - B0_1*B6_1 - B0_2*B6_2;
-    Ps[7] = P[7] - B0_0*B7_0 - B0_1*B7_1 - B0_2*B7_2;
-    Ps[8] = P[8] - B0_0*B8_0 - B0_1*B8_1 - B0_2*B8_2;
-    Ps[9] = P[9] - B0_0*B9_0 - B0_1*B9_1 - B0_2*B9_2;
-    Ps[10] = P[10] - B0_0*B10_0 - B0_1*B10_1 - B0_2*B10_2;
-    Ps[11] = P[11] - B0_0*B11_0 - B0_1*B11_1 - B0_2*B11_2;
-    Ps[12] = P[12] - B0_0*B12_0 - B0_1*B12_1 - B0_2*B12_2;
-    Ps[13] = P[13] - B0_0*B13_0 - B0_1*B13_1 - B0_2*B13_2;
-    Ps[14] = P[14] - B0_0*B14_0 - B0_1*B14_1 - B0_2*B14_2;
-    Ps[15] = P[15] - (B1_0*B1_0) - (B1_1*B1_1) - (B1_2*B1_2);
-    Ps[16] = P[16] - B1_0*B2_0 - B1_1*B2_1 - B1_2*B2_2;
-    Ps[17] = P[17] - B1_0*B3_0 - B1_1*B3_1 - B1_2*B3_2;
-    Ps[18] = P[18] - B1_0*B4_0 - B1_1*B4_1 - B1_2*B4_2;
-    Ps[19] = P[19] - B1_0*B5_0 - B1_1*B5_1 - B1_2*B5_2;
-    Ps[20] = P[20] - B1_0*B6_0 - B1_1*B6_1 - B1_2*B6_2;
-    Ps[21] = P[21] - B1_0*B7_0 - B1_1*B7_1 - B1_2*B7_2;
-    Ps[22] = P[22] - B1_0*B8_0 - B1_1*B8_1 - B1_2*B8_2;
-    Ps[23] = P[23] - B1_0*B9_0 - B1_1*B9_1 - B1_2*B9_2;
-    Ps[24] = P[24] - B10_0*B1_0 - B10_1*B1_1 - B10_2*B1_2;
-    Ps[25] = P[25] - B11_0*B1_0 - B11_1*B1_1 - B11_2*B1_2;
-    Ps[26] = P[26] - B12_0*B1_0 - B12_1*B1_1 - B12_2*B1_2;
-    Ps[27] = P[27] - B13_0*B1_0 - B13_1*B1_1 - B13_2*B1_2;
-    Ps[28] = P[28] - B14_0*B1_0 - B14_1*B1_1 - B14_2*B1_2;
-    Ps[29] = P[29] - (B2_0*B2_0) - (B2_1*B2_1) - (B2_2*B2_2);
-    Ps[30] = P[30] - B2_0*B3_0 - B2_1*B3_1 - B2_2*B3_2;
-    Ps[31] = P[31] - B2_0*B4_0 - B2_1*B4_1 - B2_2*B4_2;
-    Ps[32] = P[32] - B2_0*B5_0 - B2_1*B5_1 - B2_2*B5_2;
-    Ps[33] = P[33] - B2_0*B6_0 - B2_1*B6_1 - B2_2*B6_2;
-    Ps[34] = P[34] - B2_0*B7_0 - B2_1*B7_1 - B2_2*B7_2;
-    Ps[35] = P[35] - B2_0*B8_0 - B2_1*B8_1 - B2_2*B8_2;
-    Ps[36] = P[36] - B2_0*B9_0 - B2_1*B9_1 - B2_2*B9_2;
-    Ps[37] = P[37] - B10_0*B2_0 - B10_1*B2_1 - B10_2*B2_2;
-    Ps[38] = P[38] - B11_0*B2_0 - B11_1*B2_1 - B11_2*B2_2;
-    Ps[39] = P[39] - B12_0*B2_0 - B12_1*B2_1 - B12_2*B2_2;
-    Ps[40] = P[40] - B13_0*B2_0 - B13_1*B2_1 - B13_2*B2_2;
-    Ps[41] = P[41] - B14_0*B2_0 - B14_1*B2_1 - B14_2*B2_2;
-    Ps[42] = P[42] - (B3_0*B3_0) - (B3_1*B3_1) - (B3_2*B3_2);
-    Ps[43] = P[43] - B3_0*B4_0 - B3_1*B4_1 - B3_2*B4_2;
-    Ps[44] = P[44] - B3_0*B5_0 - B3_1*B5_1 - B3_2*B5_2;
-    Ps[45] = P[45] - B3_0*B6_0 - B3_1*B6_1 - B3_2*B6_2;
-    Ps[46] = P[46] - B3_0*B7_0 - B3_1*B7_1 - B3_2*B7_2;
-    Ps[47] = P[47] - B3_0*B8_0 - B3_1*B8_1 - B3_2*B8_2;
-    Ps[48] = P[48] - B3_0*B9_0 - B3_1*B9_1 - B3_2*B9_2;
-    Ps[49] = P[49] - B10_0*B3_0 - B10_1*B3_1 - B10_2*B3_2;
-    Ps[50] = P[50] - B11_0*B3_0 - B11_1*B3_1 - B11_2*B3_2;
-    Ps[51] = P[51] - B12_0*B3_0 - B12_1*B3_1 - B12_2*B3_2;
-    Ps[52] = P[52] - B13_0*B3_0 - B13_1*B3_1 - B13_2*B3_2;
-    Ps[53] = P[53] - B14_0*B3_0 - B14_1*B3_1 - B14_2*B3_2;
-    Ps[54] = P[54] - (B4_0*B4_0) - (B4_1*B4_1) - (B4_2*B4_2);
-    Ps[55] = P[55] - B4_0*B5_0 - B4_1*B5_1 - B4_2*B5_2;
-    Ps[56] = P[56] - B4_0*B6_0 - B4_1*B6_1 - B4_2*B6_2;
-    Ps[57] = P[57] - B4_0*B7_0 - B4_1*B7_1 - B4_2*B7_2;
-    Ps[58] = P[58] - B4_0*B8_0 - B4_1*B8_1 - B4_2*B8_2;
-    Ps[59] = P[59] - B4_0*B9_0 - B4_1*B9_1 - B4_2*B9_2;
-    Ps[60] = P[60] - B10_0*B4_0 - B10_1*B4_1 - B10_2*B4_2;
-    Ps[61] = P[61] - B11_0*B4_0 - B11_1*B4_1 - B11_2*B4_2;
-    Ps[62] = P[62] - B12_0*B4_0 - B12_1*B4_1 - B12_2*B4_2;
-    Ps[63] = P[63] - B13_0*B4_0 - B13_1*B4_1 - B13_2*B4_2;
-    Ps[64] = P[64] - B14_0*B4_0 - B14_1*B4_1 - B14_2*B4_2;
-    Ps[65] = P[65] - (B5_0*B5_0) - (B5_1*B5_1) - (B5_2*B5_2);
-    Ps[66] = P[66] - B5_0*B6_0 - B5_1*B6_1 - B5_2*B6_2;
-    Ps[67] = P[67] - B5_0*B7_0 - B5_1*B7_1 - B5_2*B7_2;
-    Ps[68] = P[68] - B5_0*B8_0 - B5_1*B8_1 - B5_2*B8_2;
-    Ps[69] = P[69] - B5_0*B9_0 - B5_1*B9_1 - B5_2*B9_2;
-    Ps[70] = P[70] - B10_0*B5_0 - B10_1*B5_1 - B10_2*B5_2;
-    Ps[71] = P[71] - B11_0*B5_0 - B11_1*B5_1 - B11_2*B5_2;
-    Ps[72] = P[72] - B12_0*B5_0 - B12_1*B5_1 - B12_2*B5_2;
-    Ps[73] = P[73] - B13_0*B5_0 - B13_1*B5_1 - B13_2*B5_2;
-    Ps[74] = P[74] - B14_0*B5_0 - B14_1*B5_1 - B14_2*B5_2;
-    Ps[75] = P[75] - (B6_0*B6_0) - (B6_1*B6_1) - (B6_2*B6_2);
-    Ps[76] = P[76] - B6_0*B7_0 - B6_1*B7_1 - B6_2*B7_2;
-    Ps[77] = P[77] - B6_0*B8_0 - B6_1*B8_1 - B6_2*B8_2;
-    Ps[78] = P[78] - B6_0*B9_0 - B6_1*B9_1 - B6_2*B9_2;
-    Ps[79] = P[79] - B10_0*B6_0 - B10_1*B6_1 - B10_2*B6_2;
-    Ps[80] = P[80] - B11_0*B6_0 - B11_1*B6_1 - B11_2*B6_2;
-    Ps[81] = P[81] - B12_0*B6_0 - B12_1*B6_1 - B12_2*B6_2;
-    Ps[82] = P[82] - B13_0*B6_0 - B13_1*B6_1 - B13_2*B6_2;
-    Ps[83] = P[83] - B14_0*B6_0 - B14_1*B6_1 - B14_2*B6_2;
-    Ps[84] = P[84] - (B7_0*B7_0) - (B7_1*B7_1) - (B7_2*B7_2);
-    Ps[85] = P[85] - B7_0*B8_0 - B7_1*B8_1 - B7_2*B8_2;
-    Ps[86] = P[86] - B7_0*B9_0 - B7_1*B9_1 - B7_2*B9_2;
-    Ps[87] = P[87] - B10_0*B7_0 - B10_1*B7_1 - B10_2*B7_2;
-    Ps[88] = P[88] - B11_0*B7_0 - B11_1*B7_1 - B11_2*B7_2;
-    Ps[89] = P[89] - B12_0*B7_0 - B12_1*B7_1 - B12_2*B7_2;
-    Ps[90] = P[90] - B13_0*B7_0 - B13_1*B7_1 - B13_2*B7_2;
-    Ps[91] = P[91] - B14_0*B7_0 - B14_1*B7_1 - B14_2*B7_2;
-    Ps[92] = P[92] - (B8_0*B8_0) - (B8_1*B8_1) - (B8_2*B8_2);
-    Ps[93] = P[93] - B8_0*B9_0 - B8_1*B9_1 - B8_2*B9_2;
-    Ps[94] = P[94] - B10_0*B8_0 - B10_1*B8_1 - B10_2*B8_2;
-    Ps[95] = P[95] - B11_0*B8_0 - B11_1*B8_1 - B11_2*B8_2;
-    Ps[96] = P[96] - B12_0*B8_0 - B12_1*B8_1 - B12_2*B8_2;
-    Ps[97] = P[97] - B13_0*B8_0 - B13_1*B8_1 - B13_2*B8_2;
-    Ps[98] = P[98] - B14_0*B8_0 - B14_1*B8_1 - B14_2*B8_2;
-    Ps[99] = P[99] - (B9_0*B9_0) - (B9_1*B9_1) - (B9_2*B9_2);
-    Ps[100] = P[100] - B10_0*B9_0 - B10_1*B9_1 - B10_2*B9_2;
-    Ps[101] = P[101] - B11_0*B9_0 - B11_1*B9_1 - B11_2*B9_2;
-    Ps[102] = P[102] - B12_0*B9_0 - B12_1*B9_1 - B12_2*B9_2;
-    Ps[103] = P[103] - B13_0*B9_0 - B13_1*B9_1 - B13_2*B9_2;
-    Ps[104] = P[104] - B14_0*B9_0 - B14_1*B9_1 - B14_2*B9_2;
-    Ps[105] = P[105] - (B10_0*B10_0) - (B10_1*B10_1) - (B10_2*B10_2);
-    Ps[106] = P[106] - B10_0*B11_0 - B10_1*B11_1 - B10_2*B11_2;
-    Ps[107] = P[107] - B10_0*B12_0 - B10_1*B12_1 - B10_2*B12_2;
-    Ps[108] = P[108] - B10_0*B13_0 - B10_1*B13_1 - B10_2*B13_2;
-    Ps[109] = P[109] - B10_0*B14_0 - B10_1*B14_1 - B10_2*B14_2;
-    Ps[110] = P[110] - (B11_0*B11_0) - (B11_1*B11_1) - (B11_2*B11_2);
-    Ps[111] = P[111] - B11_0*B12_0 - B11_1*B12_1 - B11_2*B12_2;
-    Ps[112] = P[112] - B11_0*B13_0 - B11_1*B13_1 - B11_2*B13_2;
-    Ps[113] = P[113] - B11_0*B14_0 - B11_1*B14_1 - B11_2*B14_2;
-    Ps[114] = P[114] - (B12_0*B12_0) - (B12_1*B12_1) - (B12_2*B12_2);
-    Ps[115] = P[115] - B12_0*B13_0 - B12_1*B13_1 - B12_2*B13_2;
-    Ps[116] = P[116] - B12_0*B14_0 - B12_1*B14_1 - B12_2*B14_2;
-    Ps[117] = P[117] - (B13_0*B13_0) - (B13_1*B13_1) - (B13_2*B13_2);
-    Ps[118] = P[118] - B13_0*B14_0 - B13_1*B14_1 - B13_2*B14_2;
-    Ps[119] = P[119] - (B14_0*B14_0) - (B14_1*B14_1) - (B14_2*B14_2);
-    /* angle states wrapped to (-pi, pi] */
+    /* B = C Ls^-T (in place), x + B b, P - B B' (= P - K S K') */
+    for (a = 0u; a < 15u; ++a) {
+        float e = 0.0F;
+        for (k = 0u; k < 3u; ++k) {
+            for (b = 0u; b < k; ++b) {
+                Cx[a][k] -= Ls[k][b] * Cx[a][b];
+            }
+            Cx[a][k] *= Lsi[k];
+            e += Cx[a][k] * bv[k];
+        }
+        xs[a] = x[a] + e;
+    }
+    q = 0u;
+    for (a = 0u; a < 15u; ++a) {
+        for (b = a; b < 15u; ++b) {
+            float e = P[q];
+            for (k = 0u; k < 3u; ++k) {
+                e -= Cx[a][k] * Cx[b][k];
+            }
+            Ps[q] = e;
+            ++q;
+        }
+    }
     xs[nav_ukf_ix_roll] = nav_ukf_wrap(xs[nav_ukf_ix_roll]);
     xs[nav_ukf_ix_pitch] = nav_ukf_wrap(xs[nav_ukf_ix_pitch]);
     xs[nav_ukf_ix_yaw] = nav_ukf_wrap(xs[nav_ukf_ix_yaw]);
@@ -2050,6 +745,7 @@ int nav_ukf_update_gnss_vel_nis(nav_ukf_t *s, const float *z, float *nis_out)
 {
     float xs[15];
     float Ps[120];
+    float Lf[120];
     float y[3];
     float nis;
     const float *x = s->x;
@@ -2059,44 +755,114 @@ int nav_ukf_update_gnss_vel_nis(nav_ukf_t *s, const float *z, float *nis_out)
     }
 
     {
-        float Lf[120];  /* only the check that P is positive definite: the code below is linear in x */
         const int st = nav_ukf_factor(P, Lf);
         if (st != NAV_UKF_OK) {
             return st;
         }
     }
-    /* innovation y = z - weighted mean of the sigma points through h */
-    y[0] = z[0] - x[nav_ukf_ix_vn];
-    y[1] = z[1] - x[nav_ukf_ix_ve];
-    y[2] = z[2] - x[nav_ukf_ix_vd];
-    /* innovation covariance S (+ R) */
-    const float S0_0 = 0.01F + P[42];
-    const float S1_1 = 0.01F + P[54];
-    const float S2_2 = 0.01F + P[65];
-    /* factor S (pivots checked) */
-    const float Sd0 = S0_0;
-    if (!isfinite(Sd0)) { return NAV_UKF_NON_FINITE; }
-    if (!(Sd0 > 0.0F)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const float Ls0_0 = sqrtf(Sd0);
-    const float Lsi0 = (1.0F/Ls0_0);
-    const float Ls1_0 = Lsi0*P[43];
-    const float Ls2_0 = Lsi0*P[44];
-    const float Sd1 = S1_1 - (Ls1_0*Ls1_0);
-    if (!isfinite(Sd1)) { return NAV_UKF_NON_FINITE; }
-    if (!(Sd1 > 0.0F)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const float Ls1_1 = sqrtf(Sd1);
-    const float Lsi1 = (1.0F/Ls1_1);
-    const float Ls2_1 = Lsi1*(P[55] - Ls1_0*Ls2_0);
-    const float Sd2 = S2_2 - (Ls2_0*Ls2_0) - (Ls2_1*Ls2_1);
-    if (!isfinite(Sd2)) { return NAV_UKF_NON_FINITE; }
-    if (!(Sd2 > 0.0F)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const float Ls2_2 = sqrtf(Sd2);
-    const float Lsi2 = (1.0F/Ls2_2);
-    /* NIS = y' S^-1 y */
-    const float b0 = Lsi0*y[0];
-    const float b1 = Lsi1*(y[1] - Ls1_0*b0);
-    const float b2 = Lsi2*(y[2] - Ls2_0*b0 - Ls2_1*b1);
-    nis = (b0*b0) + (b1*b1) + (b2*b2);
+    /* loop form: the 2N+1 sigma points through the static h, one at a time; their images in Zt */
+    float Zt[3][31];  /* image of sigma point i, component a, at Zt[a][i] */
+    float zv[3];
+    float zm[3];  /* predicted measurement */
+    float Sv[3][3];  /* innovation covariance S (lower triangle) */
+    float Ls[3][3];  /* its Cholesky factor */
+    float Lsi[3];  /* 1 / Ls[k][k] */
+    float bv[3];  /* Ls^-1 y */
+    float Cx[15][3];  /* cross covariance C = cov(x, z), then B = C Ls^-T in place */
+    float xa[15];  /* the sigma point */
+    size_t i;
+    size_t a;
+    size_t b;
+    size_t r;
+    size_t k;
+    size_t q;
+    for (i = 0u; i < 31u; ++i) {
+        memcpy(xa, x, 15u * sizeof xa[0]);
+        if (i > 0u) {
+            const size_t c = (i - 1u) % 15u;
+            const float g = (i <= 15u) ? 3.8729835F : -3.8729835F;
+            const float *lc = &Lf[nav_ukf_pku(c, c)];  /* column c of L, rows c..14 */
+            for (r = c; r < 15u; ++r) {
+                xa[r] += g * lc[r - c];
+            }
+        }
+        nav_ukf_h_gnss_vel(xa, zv);
+        for (a = 0u; a < 3u; ++a) {
+            Zt[a][i] = zv[a];
+        }
+    }
+    /* weighted mean (circular for angle components), deviations about it (wrapped) */
+    for (a = 0u; a < 3u; ++a) {
+        float acc = 0.0F;
+        for (i = 1u; i < 31u; ++i) {
+            acc += Zt[a][i];
+        }
+        zm[a] = 0.0F * Zt[a][0] + 0.033333335F * acc;
+    }
+    for (a = 0u; a < 3u; ++a) {
+        for (i = 0u; i < 31u; ++i) {
+            Zt[a][i] -= zm[a];
+        }
+    }
+    y[0] = z[0] - zm[0];
+    y[1] = z[1] - zm[1];
+    y[2] = z[2] - zm[2];
+    /* S = Wc0 d0 d0' + Wi sum_i di di' + R */
+    for (a = 0u; a < 3u; ++a) {
+        for (b = 0u; b <= a; ++b) {
+            float acc = 0.0F;
+            for (i = 1u; i < 31u; ++i) {
+                acc += Zt[a][i] * Zt[b][i];
+            }
+            Sv[a][b] = 2.0F * Zt[a][0] * Zt[b][0] + 0.033333335F * acc;
+        }
+    }
+    Sv[0][0] = 0.01F + Sv[0][0];
+    Sv[1][1] = 0.01F + Sv[1][1];
+    Sv[2][2] = 0.01F + Sv[2][2];
+    /* C = sum_i Wc_i dX_i dZ_i': dX of the pair i is +-gamma column i of L (zero for noise columns) */
+    memset(Cx, 0, sizeof Cx);
+    for (i = 0u; i < 15u; ++i) {
+        const float *lc = &Lf[nav_ukf_pku(i, i)];  /* column i of L, rows i..14 */
+        for (k = 0u; k < 3u; ++k) {
+            const float dz = 0.12909944F * (Zt[k][i + 1u] - Zt[k][i + 16u]);
+            for (a = i; a < 15u; ++a) {
+                Cx[a][k] += lc[a - i] * dz;
+            }
+        }
+    }
+    /* factor S = Ls Ls' (pivots checked) */
+    for (b = 0u; b < 3u; ++b) {
+        float d = Sv[b][b];
+        for (k = 0u; k < b; ++k) {
+            d -= Ls[b][k] * Ls[b][k];
+        }
+        if (!isfinite(d)) {
+            return NAV_UKF_NON_FINITE;
+        }
+        if (!(d > 0.0F)) {
+            return NAV_UKF_NOT_POSITIVE_DEFINITE;
+        }
+        Ls[b][b] = sqrtf(d);
+        Lsi[b] = 1.0F / Ls[b][b];
+        for (a = b + 1u; a < 3u; ++a) {
+            float e = Sv[a][b];
+            for (k = 0u; k < b; ++k) {
+                e -= Ls[a][k] * Ls[b][k];
+            }
+            Ls[a][b] = e * Lsi[b];
+        }
+    }
+    /* NIS = y' S^-1 y = b' b with b = Ls^-1 y */
+    nis = 0.0F;
+    for (a = 0u; a < 3u; ++a) {
+        float e = y[a];
+        for (k = 0u; k < a; ++k) {
+            e -= Ls[a][k] * bv[k];
+        }
+        bv[a] = e * Lsi[a];
+        nis += bv[a] * bv[a];
+    }
     /* the NIS is complete: report it, and gate before the posterior is formed */
     if (!isfinite(nis)) {
         return NAV_UKF_NON_FINITE;
@@ -2105,190 +871,29 @@ int nav_ukf_update_gnss_vel_nis(nav_ukf_t *s, const float *z, float *nis_out)
         *nis_out = nis;
     }
 
-    /* gain */
-    const float B0_0 = Lsi0*P[3];
-    const float B0_1 = Lsi1*(P[4] - B0_0*Ls1_0);
-    const float B0_2 = Lsi2*(P[5] - B0_0*Ls2_0 - B0_1*Ls2_1);
-    const float B1_0 = Lsi0*P[17];
-    const float B1_1 = Lsi1*(P[18] - B1_0*Ls1_0);
-    const float B1_2 = Lsi2*(P[19] - B1_0*Ls2_0 - B1_1*Ls2_1);
-    const float B2_0 = Lsi0*P[30];
-    const float B2_1 = Lsi1*(P[31] - B2_0*Ls1_0);
-    const float B2_2 = Lsi2*(P[32] - B2_0*Ls2_0 - B2_1*Ls2_1);
-    const float B3_0 = Lsi0*P[42];
-    const float B3_1 = Lsi1*(P[43] - B3_0*Ls1_0);
-    const float B3_2 = Lsi2*(P[44] - B3_0*Ls2_0 - B3_1*Ls2_1);
-    const float B4_0 = Lsi0*P[43];
-    const float B4_1 = Lsi1*(P[54] - B4_0*Ls1_0);
-    const float B4_2 = Lsi2*(P[55] - B4_0*Ls2_0 - B4_1*Ls2_1);
-    const float B5_0 = Lsi0*P[44];
-    const float B5_1 = Lsi1*(P[55] - B5_0*Ls1_0);
-    const float B5_2 = Lsi2*(P[65] - B5_0*Ls2_0 - B5_1*Ls2_1);
-    const float B6_0 = Lsi0*P[45];
-    const float B6_1 = Lsi1*(P[56] - B6_0*Ls1_0);
-    const float B6_2 = Lsi2*(P[66] - B6_0*Ls2_0 - B6_1*Ls2_1);
-    const float B7_0 = Lsi0*P[46];
-    const float B7_1 = Lsi1*(P[57] - B7_0*Ls1_0);
-    const float B7_2 = Lsi2*(P[67] - B7_0*Ls2_0 - B7_1*Ls2_1);
-    const float B8_0 = Lsi0*P[47];
-    const float B8_1 = Lsi1*(P[58] - B8_0*Ls1_0);
-    const float B8_2 = Lsi2*(P[68] - B8_0*Ls2_0 - B8_1*Ls2_1);
-    const float B9_0 = Lsi0*P[48];
-    const float B9_1 = Lsi1*(P[59] - B9_0*Ls1_0);
-    const float B9_2 = Lsi2*(P[69] - B9_0*Ls2_0 - B9_1*Ls2_1);
-    const float B10_0 = Lsi0*P[49];
-    const float B10_1 = Lsi1*(P[60] - B10_0*Ls1_0);
-    const float B10_2 = Lsi2*(P[70] - B10_0*Ls2_0 - B10_1*Ls2_1);
-    const float B11_0 = Lsi0*P[50];
-    const float B11_1 = Lsi1*(P[61] - B11_0*Ls1_0);
-    const float B11_2 = Lsi2*(P[71] - B11_0*Ls2_0 - B11_1*Ls2_1);
-    const float B12_0 = Lsi0*P[51];
-    const float B12_1 = Lsi1*(P[62] - B12_0*Ls1_0);
-    const float B12_2 = Lsi2*(P[72] - B12_0*Ls2_0 - B12_1*Ls2_1);
-    const float B13_0 = Lsi0*P[52];
-    const float B13_1 = Lsi1*(P[63] - B13_0*Ls1_0);
-    const float B13_2 = Lsi2*(P[73] - B13_0*Ls2_0 - B13_1*Ls2_1);
-    const float B14_0 = Lsi0*P[53];
-    const float B14_1 = Lsi1*(P[64] - B14_0*Ls1_0);
-    const float B14_2 = Lsi2*(P[74] - B14_0*Ls2_0 - B14_1*Ls2_1);
-    /* updated state x + K y */
-    xs[nav_ukf_ix_pn] = x[nav_ukf_ix_pn] + B0_0*b0 + B0_1*b1 + B0_2*b2;
-    xs[nav_ukf_ix_pe] = x[nav_ukf_ix_pe] + B1_0*b0 + B1_1*b1 + B1_2*b2;
-    xs[nav_ukf_ix_pd] = x[nav_ukf_ix_pd] + B2_0*b0 + B2_1*b1 + B2_2*b2;
-    xs[nav_ukf_ix_vn] = x[nav_ukf_ix_vn] + B3_0*b0 + B3_1*b1 + B3_2*b2;
-    xs[nav_ukf_ix_ve] = x[nav_ukf_ix_ve] + B4_0*b0 + B4_1*b1 + B4_2*b2;
-    xs[nav_ukf_ix_vd] = x[nav_ukf_ix_vd] + B5_0*b0 + B5_1*b1 + B5_2*b2;
-    xs[nav_ukf_ix_roll] = x[nav_ukf_ix_roll] + B6_0*b0 + B6_1*b1 + B6_2*b2;
-    xs[nav_ukf_ix_pitch] = x[nav_ukf_ix_pitch] + B7_0*b0 + B7_1*b1 + B7_2*b2;
-    xs[nav_ukf_ix_yaw] = x[nav_ukf_ix_yaw] + B8_0*b0 + B8_1*b1 + B8_2*b2;
-    xs[nav_ukf_ix_bgx] = x[nav_ukf_ix_bgx] + B9_0*b0 + B9_1*b1 + B9_2*b2;
-    xs[nav_ukf_ix_bgy] = x[nav_ukf_ix_bgy] + B10_0*b0 + B10_1*b1 + B10_2*b2;
-    xs[nav_ukf_ix_bgz] = x[nav_ukf_ix_bgz] + B11_0*b0 + B11_1*b1 + B11_2*b2;
-    xs[nav_ukf_ix_bax] = x[nav_ukf_ix_bax] + B12_0*b0 + B12_1*b1 + B12_2*b2;
-    xs[nav_ukf_ix_bay] = x[nav_ukf_ix_bay] + B13_0*b0 + B13_1*b1 + B13_2*b2;
-    xs[nav_ukf_ix_baz] = x[nav_ukf_ix_baz] + B14_0*b0 + B14_1*b1 + B14_2*b2;
-    /* covariance P - K S K', upper triangle, packed */
-    Ps[0] = P[0] - (B0_0*B0_0) - (B0_1*B0_1) - (B0_2*B0_2);
-    Ps[1] = P[1] - B0_0*B1_0 - B0_1*B1_1 - B0_2*B1_2;
-    Ps[2] = P[2] - B0_0*B2_0 - B0_1*B2_1 - B0_2*B2_2;
-    Ps[3] = P[3] - B0_0*B3_0 - B0_1*B3_1 - B0_2*B3_2;
-    Ps[4] = P[4] - B0_0*B4_0 - B0_1*B4_1 - B0_2*B4_2;
-    Ps[5] = P[5] - B0_0*B5_0 - B0_1*B5_1 - B0_2*B5_2;
-    Ps[6] = P[6] - B0_0*B6_0 - B0_1*B6_1 - B0_2*B6_2;
-    Ps[7] = P[7] - B0_0*B7_0 - B0_1*B7_1 - B0_2*B7_2;
-    Ps[8] = P[8] - B0_0*B8_0 - B0_1*B8_1 - B0_2*B8_2;
-    Ps[9] = P[9] - B0_0*B9_0 - B0_1*B9_1 - B0_2*B9_2;
-    Ps[10] = P[10] - B0_0*B10_0 - B0_1*B10_1 - B0_2*B10_2;
-    Ps[11] = P[11] - B0_0*B11_0 - B0_1*B11_1 - B0_2*B11_2;
-    Ps[12] = P[12] - B0_0*B12_0 - B0_1*B12_1 - B0_2*B12_2;
-    Ps[13] = P[13] - B0_0*B13_0 - B0_1*B13_1 - B0_2*B13_2;
-    Ps[14] = P[14] - B0_0*B14_0 - B0_1*B14_1 - B0_2*B14_2;
-    Ps[15] = P[15] - (B1_0*B1_0) - (B1_1*B1_1) - (B1_2*B1_2);
-    Ps[16] = P[16] - B1_0*B2_0 - B1_1*B2_1 - B1_2*B2_2;
-    Ps[17] = P[17] - B1_0*B3_0 - B1_1*B3_1 - B1_2*B3_2;
-    Ps[18] = P[18] - B1_0*B4_0 - B1_1*B4_1 - B1_2*B4_2;
-    Ps[19] = P[19] - B1_0*B5_0 - B1_1*B5_1 - B1_2*B5_2;
-    Ps[20] = P[20] - B1_0*B6_0 - B1_1*B6_1 - B1_2*B6_2;
-    Ps[21] = P[21] - B1_0*B7_0 - B1_1*B7_1 - B1_2*B7_2;
-    Ps[22] = P[22] - B1_0*B8_0 - B1_1*B8_1 - B1_2*B8_2;
-    Ps[23] = P[23] - B1_0*B9_0 - B1_1*B9_1 - B1_2*B9_2;
-    Ps[24] = P[24] - B10_0*B1_0 - B10_1*B1_1 - B10_2*B1_2;
-    Ps[25] = P[25] - B11_0*B1_0 - B11_1*B1_1 - B11_2*B1_2;
-    Ps[26] = P[26] - B12_0*B1_0 - B12_1*B1_1 - B12_2*B1_2;
-    Ps[27] = P[27] - B13_0*B1_0 - B13_1*B1_1 - B13_2*B1_2;
-    Ps[28] = P[28] - B14_0*B1_0 - B14_1*B1_1 - B14_2*B1_2;
-    Ps[29] = P[29] - (B2_0*B2_0) - (B2_1*B2_1) - (B2_2*B2_2);
-    Ps[30] = P[30] - B2_0*B3_0 - B2_1*B3_1 - B2_2*B3_2;
-    Ps[31] = P[31] - B2_0*B4_0 - B2_1*B4_1 - B2_2*B4_2;
-    Ps[32] = P[32] - B2_0*B5_0 - B2_1*B5_1 - B2_2*B5_2;
-    Ps[33] = P[33] - B2_0*B6_0 - B2_1*B6_1 - B2_2*B6_2;
-    Ps[34] = P[34] - B2_0*B7_0 - B2_1*B7_1 - B2_2*B7_2;
-    Ps[35] = P[35] - B2_0*B8_0 - B2_1*B8_1 - B2_2*B8_2;
-    Ps[36] = P[36] - B2_0*B9_0 - B2_1*B9_1 - B2_2*B9_2;
-    Ps[37] = P[37] - B10_0*B2_0 - B10_1*B2_1 - B10_2*B2_2;
-    Ps[38] = P[38] - B11_0*B2_0 - B11_1*B2_1 - B11_2*B2_2;
-    Ps[39] = P[39] - B12_0*B2_0 - B12_1*B2_1 - B12_2*B2_2;
-    Ps[40] = P[40] - B13_0*B2_0 - B13_1*B2_1 - B13_2*B2_2;
-    Ps[41] = P[41] - B14_0*B2_0 - B14_1*B2_1 - B14_2*B2_2;
-    Ps[42] = P[42] - (B3_0*B3_0) - (B3_1*B3_1) - (B3_2*B3_2);
-    Ps[43] = P[43] - B3_0*B4_0 - B3_1*B4_1 - B3_2*B4_2;
-    Ps[44] = P[44] - B3_0*B5_0 - B3_1*B5_1 - B3_2*B5_2;
-    Ps[45] = P[45] - B3_0*B6_0 - B3_1*B6_1 - B3_2*B6_2;
-    Ps[46] = P[46] - B3_0*B7_0 - B3_1*B7_1 - B3_2*B7_2;
-    Ps[47] = P[47] - B3_0*B8_0 - B3_1*B8_1 - B3_2*B8_2;
-    Ps[48] = P[48] - B3_0*B9_0 - B3_1*B9_1 - B3_2*B9_2;
-    Ps[49] = P[49] - B10_0*B3_0 - B10_1*B3_1 - B10_2*B3_2;
-    Ps[50] = P[50] - B11_0*B3_0 - B11_1*B3_1 - B11_2*B3_2;
-    Ps[51] = P[51] - B12_0*B3_0 - B12_1*B3_1 - B12_2*B3_2;
-    Ps[52] = P[52] - B13_0*B3_0 - B13_1*B3_1 - B13_2*B3_2;
-    Ps[53] = P[53] - B14_0*B3_0 - B14_1*B3_1 - B14_2*B3_2;
-    Ps[54] = P[54] - (B4_0*B4_0) - (B4_1*B4_1) - (B4_2*B4_2);
-    Ps[55] = P[55] - B4_0*B5_0 - B4_1*B5_1 - B4_2*B5_2;
-    Ps[56] = P[56] - B4_0*B6_0 - B4_1*B6_1 - B4_2*B6_2;
-    Ps[57] = P[57] - B4_0*B7_0 - B4_1*B7_1 - B4_2*B7_2;
-    Ps[58] = P[58] - B4_0*B8_0 - B4_1*B8_1 - B4_2*B8_2;
-    Ps[59] = P[59] - B4_0*B9_0 - B4_1*B9_1 - B4_2*B9_2;
-    Ps[60] = P[60] - B10_0*B4_0 - B10_1*B4_1 - B10_2*B4_2;
-    Ps[61] = P[61] - B11_0*B4_0 - B11_1*B4_1 - B11_2*B4_2;
-    Ps[62] = P[62] - B12_0*B4_0 - B12_1*B4_1 - B12_2*B4_2;
-    Ps[63] = P[63] - B13_0*B4_0 - B13_1*B4_1 - B13_2*B4_2;
-    Ps[64] = P[64] - B14_0*B4_0 - B14_1*B4_1 - B14_2*B4_2;
-    Ps[65] = P[65] - (B5_0*B5_0) - (B5_1*B5_1) - (B5_2*B5_2);
-    Ps[66] = P[66] - B5_0*B6_0 - B5_1*B6_1 - B5_2*B6_2;
-    Ps[67] = P[67] - B5_0*B7_0 - B5_1*B7_1 - B5_2*B7_2;
-    Ps[68] = P[68] - B5_0*B8_0 - B5_1*B8_1 - B5_2*B8_2;
-    Ps[69] = P[69] - B5_0*B9_0 - B5_1*B9_1 - B5_2*B9_2;
-    Ps[70] = P[70] - B10_0*B5_0 - B10_1*B5_1 - B10_2*B5_2;
-    Ps[71] = P[71] - B11_0*B5_0 - B11_1*B5_1 - B11_2*B5_2;
-    Ps[72] = P[72] - B12_0*B5_0 - B12_1*B5_1 - B12_2*B5_2;
-    Ps[73] = P[73] - B13_0*B5_0 - B13_1*B5_1 - B13_2*B5_2;
-    Ps[74] = P[74] - B14_0*B5_0 - B14_1*B5_1 - B14_2*B5_2;
-    Ps[75] = P[75] - (B6_0*B6_0) - (B6_1*B6_1) - (B6_2*B6_2);
-    Ps[76] = P[76] - B6_0*B7_0 - B6_1*B7_1 - B6_2*B7_2;
-    Ps[77] = P[77] - B6_0*B8_0 - B6_1*B8_1 - B6_2*B8_2;
-    Ps[78] = P[78] - B6_0*B9_0 - B6_1*B9_1 - B6_2*B9_2;
-    Ps[79] = P[79] - B10_0*B6_0 - B10_1*B6_1 - B10_2*B6_2;
-    Ps[80] = P[80] - B11_0*B6_0 - B11_1*B6_1 - B11_2*B6_2;
-    Ps[81] = P[81] - B12_0*B6_0 - B12_1*B6_1 - B12_2*B6_2;
-    Ps[82] = P[82] - B13_0*B6_0 - B13_1*B6_1 - B13_2*B6_2;
-    Ps[83] = P[83] - B14_0*B6_0 - B14_1*B6_1 - B14_2*B6_2;
-    Ps[84] = P[84] - (B7_0*B7_0) - (B7_1*B7_1) - (B7_2*B7_2);
-    Ps[85] = P[85] - B7_0*B8_0 - B7_1*B8_1 - B7_2*B8_2;
-    Ps[86] = P[86] - B7_0*B9_0 - B7_1*B9_1 - B7_2*B9_2;
-    Ps[87] = P[87] - B10_0*B7_0 - B10_1*B7_1 - B10_2*B7_2;
-    Ps[88] = P[88] - B11_0*B7_0 - B11_1*B7_1 - B11_2*B7_2;
-    Ps[89] = P[89] - B12_0*B7_0 - B12_1*B7_1 - B12_2*B7_2;
-    Ps[90] = P[90] - B13_0*B7_0 - B13_1*B7_1 - B13_2*B7_2;
-    Ps[91] = P[91] - B14_0*B7_0 - B14_1*B7_1 - B14_2*B7_2;
-    Ps[92] = P[92] - (B8_0*B8_0) - (B8_1*B8_1) - (B8_2*B8_2);
-    Ps[93] = P[93] - B8_0*B9_0 - B8_1*B9_1 - B8_2*B9_2;
-    Ps[94] = P[94] - B10_0*B8_0 - B10_1*B8_1 - B10_2*B8_2;
-    Ps[95] = P[95] - B11_0*B8_0 - B11_1*B8_1 - B11_2*B8_2;
-    Ps[96] = P[96] - B12_0*B8_0 - B12_1*B8_1 - B12_2*B8_2;
-    Ps[97] = P[97] - B13_0*B8_0 - B13_1*B8_1 - B13_2*B8_2;
-    Ps[98] = P[98] - B14_0*B8_0 - B14_1*B8_1 - B14_2*B8_2;
-    Ps[99] = P[99] - (B9_0*B9_0) - (B9_1*B9_1) - (B9_2*B9_2);
-    Ps[100] = P[100] - B10_0*B9_0 - B10_1*B9_1 - B10_2*B9_2;
-    Ps[101] = P[101] - B11_0*B9_0 - B11_1*B9_1 - B11_2*B9_2;
-    Ps[102] = P[102] - B12_0*B9_0 - B12_1*B9_1 - B12_2*B9_2;
-    Ps[103] = P[103] - B13_0*B9_0 - B13_1*B9_1 - B13_2*B9_2;
-    Ps[104] = P[104] - B14_0*B9_0 - B14_1*B9_1 - B14_2*B9_2;
-    Ps[105] = P[105] - (B10_0*B10_0) - (B10_1*B10_1) - (B10_2*B10_2);
-    Ps[106] = P[106] - B10_0*B11_0 - B10_1*B11_1 - B10_2*B11_2;
-    Ps[107] = P[107] - B10_0*B12_0 - B10_1*B12_1 - B10_2*B12_2;
-    Ps[108] = P[108] - B10_0*B13_0 - B10_1*B13_1 - B10_2*B13_2;
-    Ps[109] = P[109] - B10_0*B14_0 - B10_1*B14_1 - B10_2*B14_2;
-    Ps[110] = P[110] - (B11_0*B11_0) - (B11_1*B11_1) - (B11_2*B11_2);
-    Ps[111] = P[111] - B11_0*B12_0 - B11_1*B12_1 - B11_2*B12_2;
-    Ps[112] = P[112] - B11_0*B13_0 - B11_1*B13_1 - B11_2*B13_2;
-    Ps[113] = P[113] - B11_0*B14_0 - B11_1*B14_1 - B11_2*B14_2;
-    Ps[114] = P[114] - (B12_0*B12_0) - (B12_1*B12_1) - (B12_2*B12_2);
-    Ps[115] = P[115] - B12_0*B13_0 - B12_1*B13_1 - B12_2*B13_2;
-    Ps[116] = P[116] - B12_0*B14_0 - B12_1*B14_1 - B12_2*B14_2;
-    Ps[117] = P[117] - (B13_0*B13_0) - (B13_1*B13_1) - (B13_2*B13_2);
-    Ps[118] = P[118] - B13_0*B14_0 - B13_1*B14_1 - B13_2*B14_2;
-    Ps[119] = P[119] - (B14_0*B14_0) - (B14_1*B14_1) - (B14_2*B14_2);
-    /* angle states wrapped to (-pi, pi] */
+    /* B = C Ls^-T (in place), x + B b, P - B B' (= P - K S K') */
+    for (a = 0u; a < 15u; ++a) {
+        float e = 0.0F;
+        for (k = 0u; k < 3u; ++k) {
+            for (b = 0u; b < k; ++b) {
+                Cx[a][k] -= Ls[k][b] * Cx[a][b];
+            }
+            Cx[a][k] *= Lsi[k];
+            e += Cx[a][k] * bv[k];
+        }
+        xs[a] = x[a] + e;
+    }
+    q = 0u;
+    for (a = 0u; a < 15u; ++a) {
+        for (b = a; b < 15u; ++b) {
+            float e = P[q];
+            for (k = 0u; k < 3u; ++k) {
+                e -= Cx[a][k] * Cx[b][k];
+            }
+            Ps[q] = e;
+            ++q;
+        }
+    }
     xs[nav_ukf_ix_roll] = nav_ukf_wrap(xs[nav_ukf_ix_roll]);
     xs[nav_ukf_ix_pitch] = nav_ukf_wrap(xs[nav_ukf_ix_pitch]);
     xs[nav_ukf_ix_yaw] = nav_ukf_wrap(xs[nav_ukf_ix_yaw]);
@@ -2319,6 +924,7 @@ int nav_ukf_update_baro_nis(nav_ukf_t *s, const float *z, float *nis_out)
 {
     float xs[15];
     float Ps[120];
+    float Lf[120];
     float y[1];
     float nis;
     const float *x = s->x;
@@ -2328,23 +934,110 @@ int nav_ukf_update_baro_nis(nav_ukf_t *s, const float *z, float *nis_out)
     }
 
     {
-        float Lf[120];  /* only the check that P is positive definite: the code below is linear in x */
         const int st = nav_ukf_factor(P, Lf);
         if (st != NAV_UKF_OK) {
             return st;
         }
     }
-    /* innovation y = z - weighted mean of the sigma points through h */
-    y[0] = x[nav_ukf_ix_pd] + z[0];
-    /* innovation covariance S (+ R) */
-    const float S0_0 = 0.09F + P[29];
-    /* factor S (pivots checked) */
-    const float Sd0 = S0_0;
-    if (!isfinite(Sd0)) { return NAV_UKF_NON_FINITE; }
-    if (!(Sd0 > 0.0F)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const float iS = (1.0F/Sd0);
-    /* NIS = y' S^-1 y */
-    nis = iS*(y[0]*y[0]);
+    /* loop form: the 2N+1 sigma points through the static h, one at a time; their images in Zt */
+    float Zt[1][31];  /* image of sigma point i, component a, at Zt[a][i] */
+    float zv[1];
+    float zm[1];  /* predicted measurement */
+    float Sv[1][1];  /* innovation covariance S (lower triangle) */
+    float Ls[1][1];  /* its Cholesky factor */
+    float Lsi[1];  /* 1 / Ls[k][k] */
+    float bv[1];  /* Ls^-1 y */
+    float Cx[15][1];  /* cross covariance C = cov(x, z), then B = C Ls^-T in place */
+    float xa[15];  /* the sigma point */
+    size_t i;
+    size_t a;
+    size_t b;
+    size_t r;
+    size_t k;
+    size_t q;
+    for (i = 0u; i < 31u; ++i) {
+        memcpy(xa, x, 15u * sizeof xa[0]);
+        if (i > 0u) {
+            const size_t c = (i - 1u) % 15u;
+            const float g = (i <= 15u) ? 3.8729835F : -3.8729835F;
+            const float *lc = &Lf[nav_ukf_pku(c, c)];  /* column c of L, rows c..14 */
+            for (r = c; r < 15u; ++r) {
+                xa[r] += g * lc[r - c];
+            }
+        }
+        nav_ukf_h_baro(xa, zv);
+        for (a = 0u; a < 1u; ++a) {
+            Zt[a][i] = zv[a];
+        }
+    }
+    /* weighted mean (circular for angle components), deviations about it (wrapped) */
+    for (a = 0u; a < 1u; ++a) {
+        float acc = 0.0F;
+        for (i = 1u; i < 31u; ++i) {
+            acc += Zt[a][i];
+        }
+        zm[a] = 0.0F * Zt[a][0] + 0.033333335F * acc;
+    }
+    for (a = 0u; a < 1u; ++a) {
+        for (i = 0u; i < 31u; ++i) {
+            Zt[a][i] -= zm[a];
+        }
+    }
+    y[0] = z[0] - zm[0];
+    /* S = Wc0 d0 d0' + Wi sum_i di di' + R */
+    for (a = 0u; a < 1u; ++a) {
+        for (b = 0u; b <= a; ++b) {
+            float acc = 0.0F;
+            for (i = 1u; i < 31u; ++i) {
+                acc += Zt[a][i] * Zt[b][i];
+            }
+            Sv[a][b] = 2.0F * Zt[a][0] * Zt[b][0] + 0.033333335F * acc;
+        }
+    }
+    Sv[0][0] = 0.09F + Sv[0][0];
+    /* C = sum_i Wc_i dX_i dZ_i': dX of the pair i is +-gamma column i of L (zero for noise columns) */
+    memset(Cx, 0, sizeof Cx);
+    for (i = 0u; i < 15u; ++i) {
+        const float *lc = &Lf[nav_ukf_pku(i, i)];  /* column i of L, rows i..14 */
+        for (k = 0u; k < 1u; ++k) {
+            const float dz = 0.12909944F * (Zt[k][i + 1u] - Zt[k][i + 16u]);
+            for (a = i; a < 15u; ++a) {
+                Cx[a][k] += lc[a - i] * dz;
+            }
+        }
+    }
+    /* factor S = Ls Ls' (pivots checked) */
+    for (b = 0u; b < 1u; ++b) {
+        float d = Sv[b][b];
+        for (k = 0u; k < b; ++k) {
+            d -= Ls[b][k] * Ls[b][k];
+        }
+        if (!isfinite(d)) {
+            return NAV_UKF_NON_FINITE;
+        }
+        if (!(d > 0.0F)) {
+            return NAV_UKF_NOT_POSITIVE_DEFINITE;
+        }
+        Ls[b][b] = sqrtf(d);
+        Lsi[b] = 1.0F / Ls[b][b];
+        for (a = b + 1u; a < 1u; ++a) {
+            float e = Sv[a][b];
+            for (k = 0u; k < b; ++k) {
+                e -= Ls[a][k] * Ls[b][k];
+            }
+            Ls[a][b] = e * Lsi[b];
+        }
+    }
+    /* NIS = y' S^-1 y = b' b with b = Ls^-1 y */
+    nis = 0.0F;
+    for (a = 0u; a < 1u; ++a) {
+        float e = y[a];
+        for (k = 0u; k < a; ++k) {
+            e -= Ls[a][k] * bv[k];
+        }
+        bv[a] = e * Lsi[a];
+        nis += bv[a] * bv[a];
+    }
     /* the NIS is complete: report it, and gate before the posterior is formed */
     if (!isfinite(nis)) {
         return NAV_UKF_NON_FINITE;
@@ -2353,160 +1046,29 @@ int nav_ukf_update_baro_nis(nav_ukf_t *s, const float *z, float *nis_out)
         *nis_out = nis;
     }
 
-    /* gain */
-    const float K0 = -P[2]*iS;
-    const float K1 = -P[16]*iS;
-    const float K2 = -P[29]*iS;
-    const float K3 = -P[30]*iS;
-    const float K4 = -P[31]*iS;
-    const float K5 = -P[32]*iS;
-    const float K6 = -P[33]*iS;
-    const float K7 = -P[34]*iS;
-    const float K8 = -P[35]*iS;
-    const float K9 = -P[36]*iS;
-    const float K10 = -P[37]*iS;
-    const float K11 = -P[38]*iS;
-    const float K12 = -P[39]*iS;
-    const float K13 = -P[40]*iS;
-    const float K14 = -P[41]*iS;
-    /* updated state x + K y */
-    xs[nav_ukf_ix_pn] = x[nav_ukf_ix_pn] + K0*y[0];
-    xs[nav_ukf_ix_pe] = x[nav_ukf_ix_pe] + K1*y[0];
-    xs[nav_ukf_ix_pd] = x[nav_ukf_ix_pd] + K2*y[0];
-    xs[nav_ukf_ix_vn] = x[nav_ukf_ix_vn] + K3*y[0];
-    xs[nav_ukf_ix_ve] = x[nav_ukf_ix_ve] + K4*y[0];
-    xs[nav_ukf_ix_vd] = x[nav_ukf_ix_vd] + K5*y[0];
-    xs[nav_ukf_ix_roll] = x[nav_ukf_ix_roll] + K6*y[0];
-    xs[nav_ukf_ix_pitch] = x[nav_ukf_ix_pitch] + K7*y[0];
-    xs[nav_ukf_ix_yaw] = x[nav_ukf_ix_yaw] + K8*y[0];
-    xs[nav_ukf_ix_bgx] = x[nav_ukf_ix_bgx] + K9*y[0];
-    xs[nav_ukf_ix_bgy] = x[nav_ukf_ix_bgy] + K10*y[0];
-    xs[nav_ukf_ix_bgz] = x[nav_ukf_ix_bgz] + K11*y[0];
-    xs[nav_ukf_ix_bax] = x[nav_ukf_ix_bax] + K12*y[0];
-    xs[nav_ukf_ix_bay] = x[nav_ukf_ix_bay] + K13*y[0];
-    xs[nav_ukf_ix_baz] = x[nav_ukf_ix_baz] + K14*y[0];
-    /* covariance P - K S K', upper triangle, packed */
-    Ps[0] = P[0] + K0*P[2];
-    Ps[1] = P[1] + K0*P[16];
-    Ps[2] = P[2] + K0*P[29];
-    Ps[3] = P[3] + K0*P[30];
-    Ps[4] = P[4] + K0*P[31];
-    Ps[5] = P[5] + K0*P[32];
-    Ps[6] = P[6] + K0*P[33];
-    Ps[7] = P[7] + K0*P[34];
-    Ps[8] = P[8] + K0*P[35];
-    Ps[9] = P[9] + K0*P[36];
-    Ps[10] = P[10] + K0*P[37];
-    Ps[11] = P[11] + K0*P[38];
-    Ps[12] = P[12] + K0*P[39];
-    Ps[13] = P[13] + K0*P[40];
-    Ps[14] = P[14] + K0*P[41];
-    Ps[15] = P[15] + K1*P[16];
-    Ps[16] = P[16] + K1*P[29];
-    Ps[17] = P[17] + K1*P[30];
-    Ps[18] = P[18] + K1*P[31];
-    Ps[19] = P[19] + K1*P[32];
-    Ps[20] = P[20] + K1*P[33];
-    Ps[21] = P[21] + K1*P[34];
-    Ps[22] = P[22] + K1*P[35];
-    Ps[23] = P[23] + K1*P[36];
-    Ps[24] = P[24] + K1*P[37];
-    Ps[25] = P[25] + K1*P[38];
-    Ps[26] = P[26] + K1*P[39];
-    Ps[27] = P[27] + K1*P[40];
-    Ps[28] = P[28] + K1*P[41];
-    Ps[29] = P[29] + K2*P[29];
-    Ps[30] = P[30] + K2*P[30];
-    Ps[31] = P[31] + K2*P[31];
-    Ps[32] = P[32] + K2*P[32];
-    Ps[33] = P[33] + K2*P[33];
-    Ps[34] = P[34] + K2*P[34];
-    Ps[35] = P[35] + K2*P[35];
-    Ps[36] = P[36] + K2*P[36];
-    Ps[37] = P[37] + K2*P[37];
-    Ps[38] = P[38] + K2*P[38];
-    Ps[39] = P[39] + K2*P[39];
-    Ps[40] = P[40] + K2*P[40];
-    Ps[41] = P[41] + K2*P[41];
-    Ps[42] = P[42] + K3*P[30];
-    Ps[43] = P[43] + K3*P[31];
-    Ps[44] = P[44] + K3*P[32];
-    Ps[45] = P[45] + K3*P[33];
-    Ps[46] = P[46] + K3*P[34];
-    Ps[47] = P[47] + K3*P[35];
-    Ps[48] = P[48] + K3*P[36];
-    Ps[49] = P[49] + K3*P[37];
-    Ps[50] = P[50] + K3*P[38];
-    Ps[51] = P[51] + K3*P[39];
-    Ps[52] = P[52] + K3*P[40];
-    Ps[53] = P[53] + K3*P[41];
-    Ps[54] = P[54] + K4*P[31];
-    Ps[55] = P[55] + K4*P[32];
-    Ps[56] = P[56] + K4*P[33];
-    Ps[57] = P[57] + K4*P[34];
-    Ps[58] = P[58] + K4*P[35];
-    Ps[59] = P[59] + K4*P[36];
-    Ps[60] = P[60] + K4*P[37];
-    Ps[61] = P[61] + K4*P[38];
-    Ps[62] = P[62] + K4*P[39];
-    Ps[63] = P[63] + K4*P[40];
-    Ps[64] = P[64] + K4*P[41];
-    Ps[65] = P[65] + K5*P[32];
-    Ps[66] = P[66] + K5*P[33];
-    Ps[67] = P[67] + K5*P[34];
-    Ps[68] = P[68] + K5*P[35];
-    Ps[69] = P[69] + K5*P[36];
-    Ps[70] = P[70] + K5*P[37];
-    Ps[71] = P[71] + K5*P[38];
-    Ps[72] = P[72] + K5*P[39];
-    Ps[73] = P[73] + K5*P[40];
-    Ps[74] = P[74] + K5*P[41];
-    Ps[75] = P[75] + K6*P[33];
-    Ps[76] = P[76] + K6*P[34];
-    Ps[77] = P[77] + K6*P[35];
-    Ps[78] = P[78] + K6*P[36];
-    Ps[79] = P[79] + K6*P[37];
-    Ps[80] = P[80] + K6*P[38];
-    Ps[81] = P[81] + K6*P[39];
-    Ps[82] = P[82] + K6*P[40];
-    Ps[83] = P[83] + K6*P[41];
-    Ps[84] = P[84] + K7*P[34];
-    Ps[85] = P[85] + K7*P[35];
-    Ps[86] = P[86] + K7*P[36];
-    Ps[87] = P[87] + K7*P[37];
-    Ps[88] = P[88] + K7*P[38];
-    Ps[89] = P[89] + K7*P[39];
-    Ps[90] = P[90] + K7*P[40];
-    Ps[91] = P[91] + K7*P[41];
-    Ps[92] = P[92] + K8*P[35];
-    Ps[93] = P[93] + K8*P[36];
-    Ps[94] = P[94] + K8*P[37];
-    Ps[95] = P[95] + K8*P[38];
-    Ps[96] = P[96] + K8*P[39];
-    Ps[97] = P[97] + K8*P[40];
-    Ps[98] = P[98] + K8*P[41];
-    Ps[99] = P[99] + K9*P[36];
-    Ps[100] = P[100] + K9*P[37];
-    Ps[101] = P[101] + K9*P[38];
-    Ps[102] = P[102] + K9*P[39];
-    Ps[103] = P[103] + K9*P[40];
-    Ps[104] = P[104] + K9*P[41];
-    Ps[105] = P[105] + K10*P[37];
-    Ps[106] = P[106] + K10*P[38];
-    Ps[107] = P[107] + K10*P[39];
-    Ps[108] = P[108] + K10*P[40];
-    Ps[109] = P[109] + K10*P[41];
-    Ps[110] = P[110] + K11*P[38];
-    Ps[111] = P[111] + K11*P[39];
-    Ps[112] = P[112] + K11*P[40];
-    Ps[113] = P[113] + K11*P[41];
-    Ps[114] = P[114] + K12*P[39];
-    Ps[115] = P[115] + K12*P[40];
-    Ps[116] = P[116] + K12*P[41];
-    Ps[117] = P[117] + K13*P[40];
-    Ps[118] = P[118] + K13*P[41];
-    Ps[119] = P[119] + K14*P[41];
-    /* angle states wrapped to (-pi, pi] */
+    /* B = C Ls^-T (in place), x + B b, P - B B' (= P - K S K') */
+    for (a = 0u; a < 15u; ++a) {
+        float e = 0.0F;
+        for (k = 0u; k < 1u; ++k) {
+            for (b = 0u; b < k; ++b) {
+                Cx[a][k] -= Ls[k][b] * Cx[a][b];
+            }
+            Cx[a][k] *= Lsi[k];
+            e += Cx[a][k] * bv[k];
+        }
+        xs[a] = x[a] + e;
+    }
+    q = 0u;
+    for (a = 0u; a < 15u; ++a) {
+        for (b = a; b < 15u; ++b) {
+            float e = P[q];
+            for (k = 0u; k < 1u; ++k) {
+                e -= Cx[a][k] * Cx[b][k];
+            }
+            Ps[q] = e;
+            ++q;
+        }
+    }
     xs[nav_ukf_ix_roll] = nav_ukf_wrap(xs[nav_ukf_ix_roll]);
     xs[nav_ukf_ix_pitch] = nav_ukf_wrap(xs[nav_ukf_ix_pitch]);
     xs[nav_ukf_ix_yaw] = nav_ukf_wrap(xs[nav_ukf_ix_yaw]);
@@ -2539,7 +1101,6 @@ int nav_ukf_update_mag_heading_nis(nav_ukf_t *s, const float *z, float *nis_out)
     float Ps[120];
     float Lf[120];
     float y[1];
-    float ea[25];
     float nis;
     const float *x = s->x;
     const float *P = s->P;
@@ -2553,94 +1114,117 @@ int nav_ukf_update_mag_heading_nis(nav_ukf_t *s, const float *z, float *nis_out)
             return st;
         }
     }
-    /* sigma-point offsets gamma L_i (L L' = P) */
-    const float hg8_0 = 3.8729835F*Lf[8];
-    const float hg8_1 = 3.8729835F*Lf[22];
-    const float hg8_2 = 3.8729835F*Lf[35];
-    const float hg8_3 = 3.8729835F*Lf[47];
-    const float hg8_4 = 3.8729835F*Lf[58];
-    const float hg8_5 = 3.8729835F*Lf[68];
-    const float hg8_6 = 3.8729835F*Lf[77];
-    const float hg8_7 = 3.8729835F*Lf[85];
-    const float hg8_8 = 3.8729835F*Lf[92];
-    const float hkk0 = 12.0F + 2.0F*cosf(hg8_0) + 2.0F*cosf(hg8_1) + 2.0F*cosf(hg8_2) + 2.0F*cosf(hg8_3) + 2.0F*cosf(hg8_4) + 2.0F*cosf(hg8_5) + 2.0F*cosf(hg8_6) + 2.0F*cosf(hg8_7) + 2.0F*cosf(hg8_8);
-    const float hmu0 = atan2f(hkk0*sinf(x[nav_ukf_ix_yaw]), hkk0*cosf(x[nav_ukf_ix_yaw]));
-    ea[0] = nav_ukf_wrap(x[nav_ukf_ix_yaw] - hmu0);
-    ea[1] = nav_ukf_wrap(hg8_0 + x[nav_ukf_ix_yaw] - hmu0);
-    ea[2] = nav_ukf_wrap(x[nav_ukf_ix_yaw] - hg8_0 - hmu0);
-    const float hu0_0 = 0.12909944F*(ea[1] - ea[2]);
-    const float hv0_0 = 0.12909944F*(ea[1] + ea[2]);
-    ea[3] = nav_ukf_wrap(hg8_1 + x[nav_ukf_ix_yaw] - hmu0);
-    ea[4] = nav_ukf_wrap(x[nav_ukf_ix_yaw] - hg8_1 - hmu0);
-    const float hu1_0 = 0.12909944F*(ea[3] - ea[4]);
-    const float hv1_0 = 0.12909944F*(ea[3] + ea[4]);
-    ea[5] = nav_ukf_wrap(hg8_2 + x[nav_ukf_ix_yaw] - hmu0);
-    ea[6] = nav_ukf_wrap(x[nav_ukf_ix_yaw] - hg8_2 - hmu0);
-    const float hu2_0 = 0.12909944F*(ea[5] - ea[6]);
-    const float hv2_0 = 0.12909944F*(ea[5] + ea[6]);
-    ea[7] = nav_ukf_wrap(hg8_3 + x[nav_ukf_ix_yaw] - hmu0);
-    ea[8] = nav_ukf_wrap(x[nav_ukf_ix_yaw] - hg8_3 - hmu0);
-    const float hu3_0 = 0.12909944F*(ea[7] - ea[8]);
-    const float hv3_0 = 0.12909944F*(ea[7] + ea[8]);
-    ea[9] = nav_ukf_wrap(hg8_4 + x[nav_ukf_ix_yaw] - hmu0);
-    ea[10] = nav_ukf_wrap(x[nav_ukf_ix_yaw] - hg8_4 - hmu0);
-    const float hu4_0 = 0.12909944F*(ea[9] - ea[10]);
-    const float hv4_0 = 0.12909944F*(ea[10] + ea[9]);
-    ea[11] = nav_ukf_wrap(hg8_5 + x[nav_ukf_ix_yaw] - hmu0);
-    ea[12] = nav_ukf_wrap(x[nav_ukf_ix_yaw] - hg8_5 - hmu0);
-    const float hu5_0 = 0.12909944F*(ea[11] - ea[12]);
-    const float hv5_0 = 0.12909944F*(ea[11] + ea[12]);
-    ea[13] = nav_ukf_wrap(hg8_6 + x[nav_ukf_ix_yaw] - hmu0);
-    ea[14] = nav_ukf_wrap(x[nav_ukf_ix_yaw] - hg8_6 - hmu0);
-    const float hu6_0 = 0.12909944F*(ea[13] - ea[14]);
-    const float hv6_0 = 0.12909944F*(ea[13] + ea[14]);
-    ea[15] = nav_ukf_wrap(hg8_7 + x[nav_ukf_ix_yaw] - hmu0);
-    ea[16] = nav_ukf_wrap(x[nav_ukf_ix_yaw] - hg8_7 - hmu0);
-    const float hu7_0 = 0.12909944F*(ea[15] - ea[16]);
-    const float hv7_0 = 0.12909944F*(ea[15] + ea[16]);
-    ea[17] = nav_ukf_wrap(hg8_8 + x[nav_ukf_ix_yaw] - hmu0);
-    ea[18] = nav_ukf_wrap(x[nav_ukf_ix_yaw] - hg8_8 - hmu0);
-    const float hu8_0 = 0.12909944F*(ea[17] - ea[18]);
-    const float hv8_0 = 0.12909944F*(ea[17] + ea[18]);
-    ea[19] = nav_ukf_wrap(x[nav_ukf_ix_yaw] - hmu0);
-    const float hv9_0 = 0.2581989F*ea[19];
-    ea[20] = nav_ukf_wrap(x[nav_ukf_ix_yaw] - hmu0);
-    const float hv10_0 = 0.2581989F*ea[20];
-    ea[21] = nav_ukf_wrap(x[nav_ukf_ix_yaw] - hmu0);
-    const float hv11_0 = 0.2581989F*ea[21];
-    ea[22] = nav_ukf_wrap(x[nav_ukf_ix_yaw] - hmu0);
-    const float hv12_0 = 0.2581989F*ea[22];
-    ea[23] = nav_ukf_wrap(x[nav_ukf_ix_yaw] - hmu0);
-    const float hv13_0 = 0.2581989F*ea[23];
-    ea[24] = nav_ukf_wrap(x[nav_ukf_ix_yaw] - hmu0);
-    const float hv14_0 = 0.2581989F*ea[24];
-    /* innovation y = z - weighted mean of the sigma points through h */
-    y[0] = nav_ukf_wrap(z[0] - hmu0);
-    /* cross covariance C = cov(x, z) */
-    const float C0_0 = Lf[0]*hu0_0;
-    const float C1_0 = Lf[15]*hu1_0 + Lf[1]*hu0_0;
-    const float C2_0 = Lf[16]*hu1_0 + Lf[29]*hu2_0 + Lf[2]*hu0_0;
-    const float C3_0 = Lf[17]*hu1_0 + Lf[30]*hu2_0 + Lf[3]*hu0_0 + Lf[42]*hu3_0;
-    const float C4_0 = Lf[18]*hu1_0 + Lf[31]*hu2_0 + Lf[43]*hu3_0 + Lf[4]*hu0_0 + Lf[54]*hu4_0;
-    const float C5_0 = Lf[19]*hu1_0 + Lf[32]*hu2_0 + Lf[44]*hu3_0 + Lf[55]*hu4_0 + Lf[5]*hu0_0 + Lf[65]*hu5_0;
-    const float C6_0 = Lf[20]*hu1_0 + Lf[33]*hu2_0 + Lf[45]*hu3_0 + Lf[56]*hu4_0 + Lf[66]*hu5_0 + Lf[6]*hu0_0 + Lf[75]*hu6_0;
-    const float C7_0 = Lf[21]*hu1_0 + Lf[34]*hu2_0 + Lf[46]*hu3_0 + Lf[57]*hu4_0 + Lf[67]*hu5_0 + Lf[76]*hu6_0 + Lf[7]*hu0_0 + Lf[84]*hu7_0;
-    const float C8_0 = Lf[22]*hu1_0 + Lf[35]*hu2_0 + Lf[47]*hu3_0 + Lf[58]*hu4_0 + Lf[68]*hu5_0 + Lf[77]*hu6_0 + Lf[85]*hu7_0 + Lf[8]*hu0_0 + Lf[92]*hu8_0;
-    const float C9_0 = Lf[23]*hu1_0 + Lf[36]*hu2_0 + Lf[48]*hu3_0 + Lf[59]*hu4_0 + Lf[69]*hu5_0 + Lf[78]*hu6_0 + Lf[86]*hu7_0 + Lf[93]*hu8_0 + Lf[9]*hu0_0;
-    const float C10_0 = Lf[10]*hu0_0 + Lf[24]*hu1_0 + Lf[37]*hu2_0 + Lf[49]*hu3_0 + Lf[60]*hu4_0 + Lf[70]*hu5_0 + Lf[79]*hu6_0 + Lf[87]*hu7_0 + Lf[94]*hu8_0;
-    const float C11_0 = Lf[11]*hu0_0 + Lf[25]*hu1_0 + Lf[38]*hu2_0 + Lf[50]*hu3_0 + Lf[61]*hu4_0 + Lf[71]*hu5_0 + Lf[80]*hu6_0 + Lf[88]*hu7_0 + Lf[95]*hu8_0;
-    const float C12_0 = Lf[12]*hu0_0 + Lf[26]*hu1_0 + Lf[39]*hu2_0 + Lf[51]*hu3_0 + Lf[62]*hu4_0 + Lf[72]*hu5_0 + Lf[81]*hu6_0 + Lf[89]*hu7_0 + Lf[96]*hu8_0;
-    const float C13_0 = Lf[13]*hu0_0 + Lf[27]*hu1_0 + Lf[40]*hu2_0 + Lf[52]*hu3_0 + Lf[63]*hu4_0 + Lf[73]*hu5_0 + Lf[82]*hu6_0 + Lf[90]*hu7_0 + Lf[97]*hu8_0;
-    const float C14_0 = Lf[14]*hu0_0 + Lf[28]*hu1_0 + Lf[41]*hu2_0 + Lf[53]*hu3_0 + Lf[64]*hu4_0 + Lf[74]*hu5_0 + Lf[83]*hu6_0 + Lf[91]*hu7_0 + Lf[98]*hu8_0;
-    /* innovation covariance S (+ R) */
-    const float S0_0 = 0.0012184697F + (hu0_0*hu0_0) + (hu1_0*hu1_0) + (hu2_0*hu2_0) + (hu3_0*hu3_0) + (hu4_0*hu4_0) + (hu5_0*hu5_0) + (hu6_0*hu6_0) + (hu7_0*hu7_0) + (hu8_0*hu8_0) + (hv0_0*hv0_0) + (hv10_0*hv10_0) + (hv11_0*hv11_0) + (hv12_0*hv12_0) + (hv13_0*hv13_0) + (hv14_0*hv14_0) + (hv1_0*hv1_0) + (hv2_0*hv2_0) + (hv3_0*hv3_0) + (hv4_0*hv4_0) + (hv5_0*hv5_0) + (hv6_0*hv6_0) + (hv7_0*hv7_0) + (hv8_0*hv8_0) + (hv9_0*hv9_0) + 2.0F*(ea[0]*ea[0]);
-    /* factor S (pivots checked) */
-    const float Sd0 = S0_0;
-    if (!isfinite(Sd0)) { return NAV_UKF_NON_FINITE; }
-    if (!(Sd0 > 0.0F)) { return NAV_UKF_NOT_POSITIVE_DEFINITE; }
-    const float iS = (1.0F/Sd0);
-    /* NIS = y' S^-1 y */
-    nis = iS*(y[0]*y[0]);
+    /* loop form: the 2N+1 sigma points through the static h, one at a time; their images in Zt */
+    float Zt[1][31];  /* image of sigma point i, component a, at Zt[a][i] */
+    float zv[1];
+    float zm[1];  /* predicted measurement */
+    float Sv[1][1];  /* innovation covariance S (lower triangle) */
+    float Ls[1][1];  /* its Cholesky factor */
+    float Lsi[1];  /* 1 / Ls[k][k] */
+    float bv[1];  /* Ls^-1 y */
+    float Cx[15][1];  /* cross covariance C = cov(x, z), then B = C Ls^-T in place */
+    float xa[15];  /* the sigma point */
+    size_t i;
+    size_t a;
+    size_t b;
+    size_t r;
+    size_t k;
+    size_t q;
+    for (i = 0u; i < 31u; ++i) {
+        memcpy(xa, x, 15u * sizeof xa[0]);
+        if (i > 0u) {
+            const size_t c = (i - 1u) % 15u;
+            const float g = (i <= 15u) ? 3.8729835F : -3.8729835F;
+            const float *lc = &Lf[nav_ukf_pku(c, c)];  /* column c of L, rows c..14 */
+            for (r = c; r < 15u; ++r) {
+                xa[r] += g * lc[r - c];
+            }
+        }
+        nav_ukf_h_mag_heading(xa, zv);
+        for (a = 0u; a < 1u; ++a) {
+            Zt[a][i] = zv[a];
+        }
+    }
+    /* weighted mean (circular for angle components), deviations about it (wrapped) */
+    for (a = 0u; a < 1u; ++a) {
+        float acc = 0.0F;
+        for (i = 1u; i < 31u; ++i) {
+            acc += Zt[a][i];
+        }
+        zm[a] = 0.0F * Zt[a][0] + 0.033333335F * acc;
+    }
+    {   /* component 0 is an angle: circular mean */
+        float ss = 0.0F;
+        float cs = 0.0F;
+        for (i = 1u; i < 31u; ++i) {
+            ss += sinf(Zt[0u][i]);
+            cs += cosf(Zt[0u][i]);
+        }
+        zm[0] = nav_ukf_wrap(atan2f(0.0F * sinf(Zt[0u][0]) + 0.033333335F * ss, 0.0F * cosf(Zt[0u][0]) + 0.033333335F * cs));
+    }
+    for (a = 0u; a < 1u; ++a) {
+        for (i = 0u; i < 31u; ++i) {
+            Zt[a][i] -= zm[a];
+        }
+    }
+    for (i = 0u; i < 31u; ++i) {
+        Zt[0u][i] = nav_ukf_wrap(Zt[0u][i]);
+    }
+    y[0] = nav_ukf_wrap(z[0] - zm[0]);
+    /* S = Wc0 d0 d0' + Wi sum_i di di' + R */
+    for (a = 0u; a < 1u; ++a) {
+        for (b = 0u; b <= a; ++b) {
+            float acc = 0.0F;
+            for (i = 1u; i < 31u; ++i) {
+                acc += Zt[a][i] * Zt[b][i];
+            }
+            Sv[a][b] = 2.0F * Zt[a][0] * Zt[b][0] + 0.033333335F * acc;
+        }
+    }
+    Sv[0][0] = 0.0012184697F + Sv[0][0];
+    /* C = sum_i Wc_i dX_i dZ_i': dX of the pair i is +-gamma column i of L (zero for noise columns) */
+    memset(Cx, 0, sizeof Cx);
+    for (i = 0u; i < 15u; ++i) {
+        const float *lc = &Lf[nav_ukf_pku(i, i)];  /* column i of L, rows i..14 */
+        for (k = 0u; k < 1u; ++k) {
+            const float dz = 0.12909944F * (Zt[k][i + 1u] - Zt[k][i + 16u]);
+            for (a = i; a < 15u; ++a) {
+                Cx[a][k] += lc[a - i] * dz;
+            }
+        }
+    }
+    /* factor S = Ls Ls' (pivots checked) */
+    for (b = 0u; b < 1u; ++b) {
+        float d = Sv[b][b];
+        for (k = 0u; k < b; ++k) {
+            d -= Ls[b][k] * Ls[b][k];
+        }
+        if (!isfinite(d)) {
+            return NAV_UKF_NON_FINITE;
+        }
+        if (!(d > 0.0F)) {
+            return NAV_UKF_NOT_POSITIVE_DEFINITE;
+        }
+        Ls[b][b] = sqrtf(d);
+        Lsi[b] = 1.0F / Ls[b][b];
+        for (a = b + 1u; a < 1u; ++a) {
+            float e = Sv[a][b];
+            for (k = 0u; k < b; ++k) {
+                e -= Ls[a][k] * Ls[b][k];
+            }
+            Ls[a][b] = e * Lsi[b];
+        }
+    }
+    /* NIS = y' S^-1 y = b' b with b = Ls^-1 y */
+    nis = 0.0F;
+    for (a = 0u; a < 1u; ++a) {
+        float e = y[a];
+        for (k = 0u; k < a; ++k) {
+            e -= Ls[a][k] * bv[k];
+        }
+        bv[a] = e * Lsi[a];
+        nis += bv[a] * bv[a];
+    }
     /* the NIS is complete: report it, and gate before the posterior is formed */
     if (!isfinite(nis)) {
         return NAV_UKF_NON_FINITE;
@@ -2649,160 +1233,29 @@ int nav_ukf_update_mag_heading_nis(nav_ukf_t *s, const float *z, float *nis_out)
         *nis_out = nis;
     }
 
-    /* gain */
-    const float K0 = C0_0*iS;
-    const float K1 = C1_0*iS;
-    const float K2 = C2_0*iS;
-    const float K3 = C3_0*iS;
-    const float K4 = C4_0*iS;
-    const float K5 = C5_0*iS;
-    const float K6 = C6_0*iS;
-    const float K7 = C7_0*iS;
-    const float K8 = C8_0*iS;
-    const float K9 = C9_0*iS;
-    const float K10 = C10_0*iS;
-    const float K11 = C11_0*iS;
-    const float K12 = C12_0*iS;
-    const float K13 = C13_0*iS;
-    const float K14 = C14_0*iS;
-    /* updated state x + K y */
-    xs[nav_ukf_ix_pn] = x[nav_ukf_ix_pn] + K0*y[0];
-    xs[nav_ukf_ix_pe] = x[nav_ukf_ix_pe] + K1*y[0];
-    xs[nav_ukf_ix_pd] = x[nav_ukf_ix_pd] + K2*y[0];
-    xs[nav_ukf_ix_vn] = x[nav_ukf_ix_vn] + K3*y[0];
-    xs[nav_ukf_ix_ve] = x[nav_ukf_ix_ve] + K4*y[0];
-    xs[nav_ukf_ix_vd] = x[nav_ukf_ix_vd] + K5*y[0];
-    xs[nav_ukf_ix_roll] = x[nav_ukf_ix_roll] + K6*y[0];
-    xs[nav_ukf_ix_pitch] = x[nav_ukf_ix_pitch] + K7*y[0];
-    xs[nav_ukf_ix_yaw] = x[nav_ukf_ix_yaw] + K8*y[0];
-    xs[nav_ukf_ix_bgx] = x[nav_ukf_ix_bgx] + K9*y[0];
-    xs[nav_ukf_ix_bgy] = x[nav_ukf_ix_bgy] + K10*y[0];
-    xs[nav_ukf_ix_bgz] = x[nav_ukf_ix_bgz] + K11*y[0];
-    xs[nav_ukf_ix_bax] = x[nav_ukf_ix_bax] + K12*y[0];
-    xs[nav_ukf_ix_bay] = x[nav_ukf_ix_bay] + K13*y[0];
-    xs[nav_ukf_ix_baz] = x[nav_ukf_ix_baz] + K14*y[0];
-    /* covariance P - K S K', upper triangle, packed */
-    Ps[0] = P[0] - C0_0*K0;
-    Ps[1] = P[1] - C1_0*K0;
-    Ps[2] = P[2] - C2_0*K0;
-    Ps[3] = P[3] - C3_0*K0;
-    Ps[4] = P[4] - C4_0*K0;
-    Ps[5] = P[5] - C5_0*K0;
-    Ps[6] = P[6] - C6_0*K0;
-    Ps[7] = P[7] - C7_0*K0;
-    Ps[8] = P[8] - C8_0*K0;
-    Ps[9] = P[9] - C9_0*K0;
-    Ps[10] = P[10] - C10_0*K0;
-    Ps[11] = P[11] - C11_0*K0;
-    Ps[12] = P[12] - C12_0*K0;
-    Ps[13] = P[13] - C13_0*K0;
-    Ps[14] = P[14] - C14_0*K0;
-    Ps[15] = P[15] - C1_0*K1;
-    Ps[16] = P[16] - C2_0*K1;
-    Ps[17] = P[17] - C3_0*K1;
-    Ps[18] = P[18] - C4_0*K1;
-    Ps[19] = P[19] - C5_0*K1;
-    Ps[20] = P[20] - C6_0*K1;
-    Ps[21] = P[21] - C7_0*K1;
-    Ps[22] = P[22] - C8_0*K1;
-    Ps[23] = P[23] - C9_0*K1;
-    Ps[24] = P[24] - C10_0*K1;
-    Ps[25] = P[25] - C11_0*K1;
-    Ps[26] = P[26] - C12_0*K1;
-    Ps[27] = P[27] - C13_0*K1;
-    Ps[28] = P[28] - C14_0*K1;
-    Ps[29] = P[29] - C2_0*K2;
-    Ps[30] = P[30] - C3_0*K2;
-    Ps[31] = P[31] - C4_0*K2;
-    Ps[32] = P[32] - C5_0*K2;
-    Ps[33] = P[33] - C6_0*K2;
-    Ps[34] = P[34] - C7_0*K2;
-    Ps[35] = P[35] - C8_0*K2;
-    Ps[36] = P[36] - C9_0*K2;
-    Ps[37] = P[37] - C10_0*K2;
-    Ps[38] = P[38] - C11_0*K2;
-    Ps[39] = P[39] - C12_0*K2;
-    Ps[40] = P[40] - C13_0*K2;
-    Ps[41] = P[41] - C14_0*K2;
-    Ps[42] = P[42] - C3_0*K3;
-    Ps[43] = P[43] - C4_0*K3;
-    Ps[44] = P[44] - C5_0*K3;
-    Ps[45] = P[45] - C6_0*K3;
-    Ps[46] = P[46] - C7_0*K3;
-    Ps[47] = P[47] - C8_0*K3;
-    Ps[48] = P[48] - C9_0*K3;
-    Ps[49] = P[49] - C10_0*K3;
-    Ps[50] = P[50] - C11_0*K3;
-    Ps[51] = P[51] - C12_0*K3;
-    Ps[52] = P[52] - C13_0*K3;
-    Ps[53] = P[53] - C14_0*K3;
-    Ps[54] = P[54] - C4_0*K4;
-    Ps[55] = P[55] - C5_0*K4;
-    Ps[56] = P[56] - C6_0*K4;
-    Ps[57] = P[57] - C7_0*K4;
-    Ps[58] = P[58] - C8_0*K4;
-    Ps[59] = P[59] - C9_0*K4;
-    Ps[60] = P[60] - C10_0*K4;
-    Ps[61] = P[61] - C11_0*K4;
-    Ps[62] = P[62] - C12_0*K4;
-    Ps[63] = P[63] - C13_0*K4;
-    Ps[64] = P[64] - C14_0*K4;
-    Ps[65] = P[65] - C5_0*K5;
-    Ps[66] = P[66] - C6_0*K5;
-    Ps[67] = P[67] - C7_0*K5;
-    Ps[68] = P[68] - C8_0*K5;
-    Ps[69] = P[69] - C9_0*K5;
-    Ps[70] = P[70] - C10_0*K5;
-    Ps[71] = P[71] - C11_0*K5;
-    Ps[72] = P[72] - C12_0*K5;
-    Ps[73] = P[73] - C13_0*K5;
-    Ps[74] = P[74] - C14_0*K5;
-    Ps[75] = P[75] - C6_0*K6;
-    Ps[76] = P[76] - C7_0*K6;
-    Ps[77] = P[77] - C8_0*K6;
-    Ps[78] = P[78] - C9_0*K6;
-    Ps[79] = P[79] - C10_0*K6;
-    Ps[80] = P[80] - C11_0*K6;
-    Ps[81] = P[81] - C12_0*K6;
-    Ps[82] = P[82] - C13_0*K6;
-    Ps[83] = P[83] - C14_0*K6;
-    Ps[84] = P[84] - C7_0*K7;
-    Ps[85] = P[85] - C8_0*K7;
-    Ps[86] = P[86] - C9_0*K7;
-    Ps[87] = P[87] - C10_0*K7;
-    Ps[88] = P[88] - C11_0*K7;
-    Ps[89] = P[89] - C12_0*K7;
-    Ps[90] = P[90] - C13_0*K7;
-    Ps[91] = P[91] - C14_0*K7;
-    Ps[92] = P[92] - C8_0*K8;
-    Ps[93] = P[93] - C9_0*K8;
-    Ps[94] = P[94] - C10_0*K8;
-    Ps[95] = P[95] - C11_0*K8;
-    Ps[96] = P[96] - C12_0*K8;
-    Ps[97] = P[97] - C13_0*K8;
-    Ps[98] = P[98] - C14_0*K8;
-    Ps[99] = P[99] - C9_0*K9;
-    Ps[100] = P[100] - C10_0*K9;
-    Ps[101] = P[101] - C11_0*K9;
-    Ps[102] = P[102] - C12_0*K9;
-    Ps[103] = P[103] - C13_0*K9;
-    Ps[104] = P[104] - C14_0*K9;
-    Ps[105] = P[105] - C10_0*K10;
-    Ps[106] = P[106] - C11_0*K10;
-    Ps[107] = P[107] - C12_0*K10;
-    Ps[108] = P[108] - C13_0*K10;
-    Ps[109] = P[109] - C14_0*K10;
-    Ps[110] = P[110] - C11_0*K11;
-    Ps[111] = P[111] - C12_0*K11;
-    Ps[112] = P[112] - C13_0*K11;
-    Ps[113] = P[113] - C14_0*K11;
-    Ps[114] = P[114] - C12_0*K12;
-    Ps[115] = P[115] - C13_0*K12;
-    Ps[116] = P[116] - C14_0*K12;
-    Ps[117] = P[117] - C13_0*K13;
-    Ps[118] = P[118] - C14_0*K13;
-    Ps[119] = P[119] - C14_0*K14;
-    /* angle states wrapped to (-pi, pi] */
+    /* B = C Ls^-T (in place), x + B b, P - B B' (= P - K S K') */
+    for (a = 0u; a < 15u; ++a) {
+        float e = 0.0F;
+        for (k = 0u; k < 1u; ++k) {
+            for (b = 0u; b < k; ++b) {
+                Cx[a][k] -= Ls[k][b] * Cx[a][b];
+            }
+            Cx[a][k] *= Lsi[k];
+            e += Cx[a][k] * bv[k];
+        }
+        xs[a] = x[a] + e;
+    }
+    q = 0u;
+    for (a = 0u; a < 15u; ++a) {
+        for (b = a; b < 15u; ++b) {
+            float e = P[q];
+            for (k = 0u; k < 1u; ++k) {
+                e -= Cx[a][k] * Cx[b][k];
+            }
+            Ps[q] = e;
+            ++q;
+        }
+    }
     xs[nav_ukf_ix_roll] = nav_ukf_wrap(xs[nav_ukf_ix_roll]);
     xs[nav_ukf_ix_pitch] = nav_ukf_wrap(xs[nav_ukf_ix_pitch]);
     xs[nav_ukf_ix_yaw] = nav_ukf_wrap(xs[nav_ukf_ix_yaw]);

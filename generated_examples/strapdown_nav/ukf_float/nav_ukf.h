@@ -72,26 +72,30 @@
  *     z[0] = yaw [rad] (angle, innovation wrapped)
  * Packed covariance: entry (i, j), i <= j, is P[i*15 - i*(i-1)/2 + (j-i)].
  *
- * Commit check: a new P is committed only when its Cholesky factorization succeeds
- * (every pivot finite and > 0), after every call.
+ * Commit check: every update commits a new P only when its Cholesky factorization
+ * succeeds (every pivot finite and > 0): an update subtracts from P. Predict (loop form) only adds:
+ * P' = Wc0 d0 d0' + Wi sum_i di di' + Q with Wc0 >= 0, Wi > 0 and Q's diagonal >= 0 (checked), positive
+ * semidefinite for any images; it commits a finite P' whose diagonal lies in (0, max/16) unfactorized:
+ * by Cauchy-Schwarz every entry's rounding error is at most gamma_k sqrt(P'_ii P'_jj), so P' is
+ * positive definite up to a rounding error of the order of a factorization's own.
  *
  * Memory: sizeof(nav_ukf_t) = 544 bytes. No heap, no global mutable state, no
  * recursion, fixed loop bounds; scratch lives on the stack of each call.
  * Reentrant: distinct structs may be used from distinct threads.
  * Deviation from Power of Ten rule 4 (functions of at most 60 lines): these generated
- * functions are longer because the algebra is unrolled straight-line code (no loops, one exit path
- * besides the early refusals), each block headed by a section comment:
+ * functions are longer: each holds one call's loops (sigma points, weighted sums, the factor of S,
+ * the gain and the new P) in sequence, with its refusal paths:
  *   nav_ukf_init: 136 lines
- *   nav_ukf_predict: 1498 lines
- *   nav_ukf_update_gnss_pos_nis: 257 lines
- *   nav_ukf_update_gnss_vel_nis: 257 lines
- *   nav_ukf_update_baro_nis: 206 lines
- *   nav_ukf_update_mag_heading_nis: 284 lines
- * Sigma points: 2n+1 = 31, never stored as arrays. Their offsets gamma*L, their images
- * and deviations are const locals of predict and update (straight-line code), so they live
- * on the stack of those calls: the named locals total 6304 bytes in predict and 1400 bytes
- * in the largest update. The real frame depends on the compiler (registers hold many, spills
- * add some): measure it on the target, e.g. gcc -fstack-usage.
+ *   nav_ukf_predict: 179 lines
+ *   nav_ukf_update_gnss_pos_nis: 167 lines
+ *   nav_ukf_update_gnss_vel_nis: 167 lines
+ *   nav_ukf_update_baro_nis: 163 lines
+ *   nav_ukf_update_mag_heading_nis: 175 lines
+ * Sigma points: 2n+1 = 31 (loop form, --optimize speed): built one at a time
+ * from x and a column of the Cholesky factor, passed through the static model function, and
+ * their images kept in a local array (n or m rows of 2N+1) with the factor and the sums: the
+ * named locals total 3888 bytes in predict and 1768 bytes in the largest update. The real
+ * frame depends on the compiler: measure it on the target, e.g. gcc -fstack-usage.
  * Weights: Wm0 = 0.0F, Wc0 = 2.0F, Wm_i = Wc_i = 0.033333335F (i = 1..30);
  * alpha = 1.0F, beta = 2.0F, kappa = 0.0F.
  * predict: sigma points of [x; w] with the noise symbols wx_noise wy_noise wz_noise fx_noise fy_noise fz_noise: 2N+1 = 43, Wm0 = 0.0F, Wc0 = 2.0F, Wm_i = 0.023809524F.
