@@ -10,7 +10,7 @@ from typing import TYPE_CHECKING, Any, Dict, List, Tuple
 from .derive import with_sections
 from .derive_ukf import UKF_PREDICT_SECTIONS, UKF_UPDATE_SECTIONS, UkfWeights, derive_ukf
 from .derive_ukf_att import derive_ukf_attitude
-from .emit import COMPACT_MIN_N, Emitter, Generated, OpCount, _common_context, _render, gate_split
+from .emit import COMPACT_MIN_N, DENSE_F_FILL, Emitter, Generated, OpCount, _common_context, _render, gate_split
 from .emit_ukf_loop import loop_certificate, loop_functions, loop_predict, loop_update
 from .model import ModelSpec
 from .progress import stage
@@ -27,6 +27,9 @@ UKF_LOOP_SIZE_MIN_N = COMPACT_MIN_N
 #: --optimize speed: the loop form from this many states without deriving the straight-line
 #: transform (measured: 117 KB of M4F flash at 24 states, far over UKF_STRAIGHT_FLASH_MAX)
 UKF_LOOP_SPEED_MIN_N = 20
+#: --optimize speed: a model this large whose f couples most states (coupling > DENSE_F_FILL)
+#: takes the loop form without deriving the straight-line one (dense16: 230 KB, tens of seconds)
+UKF_DENSE_LOOP_MIN_N = 16
 #: --optimize speed: below UKF_LOOP_SPEED_MIN_N the straight-line transform (fewer instructions at
 #: every measured size) is kept while its estimated M4F flash stays within this many bytes
 UKF_STRAIGHT_FLASH_MAX = 64 * 1024
@@ -35,12 +38,24 @@ UKF_STRAIGHT_FLASH_MAX = 64 * 1024
 UKF_FLASH_PER_SOURCE_BYTE = 0.5
 
 
+def coupling(spec: ModelSpec) -> float:
+    """The fraction of (component of f, state) pairs where the component depends on the state."""
+    xset = set(spec.x_syms)
+    return sum(len(spec.f[i].free_symbols & xset) for i in range(spec.n)) / float(spec.n * spec.n)
+
+
 def uses_loop_form(spec: ModelSpec, optimize: str) -> bool:
     """True when the UKF of ``spec`` is generated in the loop form (:mod:`estgen.emit_ukf_loop`)
     under ``--optimize optimize`` whatever the straight-line form's size (by the covariance's
-    dimension: n minus one per attitude). Under "speed" a smaller model also takes the loop form
-    when :func:`straight_flash_estimate` of its straight-line form exceeds UKF_STRAIGHT_FLASH_MAX."""
-    return spec.ne >= (UKF_LOOP_SIZE_MIN_N if optimize == "size" else UKF_LOOP_SPEED_MIN_N)
+    dimension: n minus one per attitude): under "size" from UKF_LOOP_SIZE_MIN_N, under "speed"
+    from UKF_LOOP_SPEED_MIN_N, or from UKF_DENSE_LOOP_MIN_N when f couples more than DENSE_F_FILL
+    of its (component, state) pairs (the straight-line form then grows as n^3 and takes long to
+    derive: 230 KB and tens of seconds at 16 states). Under "speed" a smaller model also takes the
+    loop form when :func:`straight_flash_estimate` of its straight-line form exceeds
+    UKF_STRAIGHT_FLASH_MAX."""
+    if optimize == "size":
+        return spec.ne >= UKF_LOOP_SIZE_MIN_N
+    return spec.ne >= UKF_LOOP_SPEED_MIN_N or (spec.ne >= UKF_DENSE_LOOP_MIN_N and coupling(spec) > DENSE_F_FILL)
 
 
 def straight_flash_estimate(source: str) -> float:

@@ -54,16 +54,17 @@ def _uses(stmts: Sequence[Any], prefix: str) -> bool:
 
 
 def _model_function(em: Emitter, name: str, outputs: List[Tuple[str, str, sp.Expr]], out: str,
-                    with_u: bool, inputs: Sequence[str] = (), wraps: Sequence[str] = ()) -> Dict[str, Any]:
+                    with_u: bool, inputs: Sequence[Tuple[str, str]] = (), wraps: Sequence[str] = ()) -> Dict[str, Any]:
     """One static model function: its parameter list, body lines and the ops of one call.
-    ``inputs``: further array parameters after x; ``wraps``: targets wrapped to (-pi, pi]."""
+    ``inputs``: further array parameters after x, (name, the argument a sigma-point call passes);
+    ``wraps``: targets wrapped to (-pi, pi]."""
     stmts, _ = model_block(outputs)
     stmts = [Stmt("wrap", st.target, st.expr) if st.kind == "assign" and st.target in wraps else st for st in stmts]
     oc = OpCount()
     lines = em.lines(stmts, oc)
     real = em.real
-    params = [f"const {real} *x"] + [f"const {real} *{a}" for a in inputs]
-    args = ["xa"]
+    params = [f"const {real} *x"] + [f"const {real} *{a}" for a, _ in inputs]
+    args = ["xa"] + [arg for _, arg in inputs]
     if with_u and _uses(stmts, "u["):
         params.append(f"const {real} *u")
         args.append("u")
@@ -86,23 +87,24 @@ def loop_functions(spec: ModelSpec, em: Emitter) -> Dict[str, Dict[str, Any]]:
     n = spec.n
     names = c_names(spec, "x")
     fnames = dict(names)
-    fnames.update({w: sp.Symbol(f"x[{n + k}]") for k, w in enumerate(spec.w_syms)})
+    fnames.update({w: sp.Symbol(f"w[{k}]") for k, w in enumerate(spec.w_syms)})
+    noise = [("w", f"&xa[{n}]")] if spec.nw else []
     out = {"f": _model_function(em, "f", [("assign", f"xn[{i}]", spec.f[i].xreplace(fnames)) for i in range(n)],
-                                "xn", True)}
-    out["f"]["doc"] = ("f at one sigma point: x = [x; w] (" + str(n + spec.nw) + " reals), xn = its image")
+                                "xn", True, noise)}
+    out["f"]["doc"] = "f at one sigma point [x; w]: xn = its image" if spec.nw else "f at one sigma point: xn = its image"
     for s in spec.sensors:
         hnames = dict(names)
-        hnames.update({v: sp.Symbol(f"x[{n + k}]") for k, v in enumerate(s.v)})
+        hnames.update({v: sp.Symbol(f"v[{k}]") for k, v in enumerate(s.v)})
         fn = _model_function(em, f"h_{s.name}", [("assign", f"zh[{k}]", s.h[k].xreplace(hnames))
-                                                 for k in range(s.m)], "zh", False)
-        fn["doc"] = f"h of sensor {s.name} at one sigma point: x = [x; v] ({n + s.nv} reals), zh = its image"
+                                                 for k in range(s.m)], "zh", False, [("v", f"&xa[{n}]")] if s.v else [])
+        fn["doc"] = (f"h of sensor {s.name} at one sigma point" + (" [x; v]" if s.v else "") + ": zh = its image")
         out[s.name] = fn
     if spec.attitudes:
         xs = [sp.Symbol(f"x[{i}]") for i in range(n)]
         es = [sp.Symbol(f"e[{k}]") for k in range(spec.ne)]
         rs = [sp.Symbol(f"r[{i}]") for i in range(n)]
         fn = _model_function(em, "inject", [("assign", f"xo[{i}]", v) for i, v in enumerate(inject(spec, xs, es))],
-                             "xo", False, ("e",))
+                             "xo", False, [("e", "ev")])
         fn["doc"] = "x [+] e: plain states added, each attitude right-multiplied by exp(e) and renormalized"
         out["inject"] = fn
         minus: List[Tuple[str, str, sp.Expr]] = []
@@ -115,7 +117,7 @@ def loop_functions(spec: ModelSpec, em: Emitter) -> Dict[str, Dict[str, Any]]:
             else:
                 rel = quat.log(quat.mul(quat.conj(rs[xi:xi + 4]), xs[xi:xi + 4]))
                 minus += [("assign", f"d[{ei + c}]", v) for c, v in enumerate(rel)]
-        fn = _model_function(em, "boxminus", minus, "d", False, ("r",), wraps)
+        fn = _model_function(em, "boxminus", minus, "d", False, [("r", "r")], wraps)
         fn["doc"] = "x [-] r: the error d with x = r [+] d (attitudes: log(conj(q_r) q_x); angles wrapped)"
         out["boxminus"] = fn
     return out
@@ -136,7 +138,9 @@ def _add_block(em: Emitter, spec: ModelSpec, entries: List[Tuple[str, sp.Expr]],
                ) -> Tuple[List[str], OpCount, bool]:
     """target = target + expr for every non-zero expr (Q or R added to a sum)."""
     names = c_names(spec, "x")
-    outs = [("assign", t, sp.Symbol(t) + e.xreplace(names)) for t, e in entries if e != 0]
+    # a zero that only shows after the substitution (0.0 * dt) is dropped too
+    outs = [("assign", t, sp.Symbol(t) + e.xreplace(names)) for t, e in entries
+            if e != 0 and sp.Symbol(t) + e.xreplace(names) != sp.Symbol(t)]
     stmts, _ = model_block(outs, tag)
     oc = OpCount()
     return em.lines(stmts, oc), oc, _uses(stmts, "par->")
@@ -247,7 +251,7 @@ def _circular_means(em: Emitter, ctx: Dict[str, Any], img: str, mean: str, ns: i
                 f"        ss += sin{fs}({img}[{k}u][i]);",
                 f"        cs += cos{fs}({img}[{k}u][i]);",
                 "    }",
-                f"    {mean}[{k}] = {prefix}_wrap(atan2{fs}({wm0} * sin{fs}({img}[{k}u][0]) + {wi} * ss, "
+                f"    {em.target(f'{mean}[{k}]')} = {prefix}_wrap(atan2{fs}({wm0} * sin{fs}({img}[{k}u][0]) + {wi} * ss, "
                 f"{wm0} * cos{fs}({img}[{k}u][0]) + {wi} * cs));",
                 "}",
             ]
@@ -370,8 +374,8 @@ def loop_update(spec: ModelSpec, sensor: SensorSpec, em: Emitter, ctx: Dict[str,
         f"{real} zv[{m}];",
         f"{real} zm[{m}];  /* " + ("mean offset from the central image */" if att else "predicted measurement */"),
         f"{real} Sv[{m}][{m}];  /* innovation covariance S (lower triangle) */",
-        f"{real} Ls[{m}][{m}];  /* its Cholesky factor */",
         f"{real} Lsi[{m}];  /* 1 / Ls[k][k] */",
+    ] + ([f"{real} Ls[{m}][{m}];  /* its Cholesky factor */"] if m > 1 else []) + [
         f"{real} bv[{m}];  /* Ls^-1 y */",
         f"{real} Cx[{ne}][{m}];  /* cross covariance C = cov(x, z), then B = C Ls^-T in place */",
     ] + _sigma_decls(real, spec, nv, "v", "Rv")
@@ -423,51 +427,26 @@ def loop_update(spec: ModelSpec, sensor: SensorSpec, em: Emitter, ctx: Dict[str,
         "        }",
         "    }",
         "}",
-        "/* factor S = Ls Ls' (pivots checked) */",
-        f"for (b = 0u; b < {m}u; ++b) {{",
-        f"    {real} d = Sv[b][b];",
-        "    for (k = 0u; k < b; ++k) {",
-        "        d -= Ls[b][k] * Ls[b][k];",
-        "    }",
-        "    if (!isfinite(d)) {",
-        f"        return {upper}_NON_FINITE;",
-        "    }",
-        f"    if (!(d > {zero})) {{",
-        f"        return {upper}_NOT_POSITIVE_DEFINITE;",
-        "    }",
-        f"    Ls[b][b] = sqrt{fs}(d);",
-        f"    Lsi[b] = {one} / Ls[b][b];",
-        f"    for (a = b + 1u; a < {m}u; ++a) {{",
-        f"        {real} e = Sv[a][b];",
-        "        for (k = 0u; k < b; ++k) {",
-        "            e -= Ls[a][k] * Ls[b][k];",
-        "        }",
-        "        Ls[a][b] = e * Lsi[b];",
-        "    }",
-        "}",
-        "/* NIS = y' S^-1 y = b' b with b = Ls^-1 y */",
-        f"nis = {zero};",
-        f"for (a = 0u; a < {m}u; ++a) {{",
-        f"    {real} e = y[a];",
-        "    for (k = 0u; k < a; ++k) {",
-        "        e -= Ls[a][k] * bv[k];",
-        "    }",
-        "    bv[a] = e * Lsi[a];",
-        "    nis += bv[a] * bv[a];",
-        "}",
-    ]
+    ] + _factor_and_nis(em, ctx, m)
     rest = [
         "/* B = C Ls^-T (in place), " + ("x [+] B b" if att else "x + B b") + ", P - B B' (= P - K S K') */",
         f"for (a = 0u; a < {ne}u; ++a) {{",
-        f"    {real} e = {zero};",
-        f"    for (k = 0u; k < {m}u; ++k) {{",
-        "        for (b = 0u; b < k; ++b) {",
-        "            Cx[a][k] -= Ls[k][b] * Cx[a][b];",
-        "        }",
-        "        Cx[a][k] *= Lsi[k];",
-        "        e += Cx[a][k] * bv[k];",
-        "    }",
-        ("    dx[a] = e;" if att else "    xs[a] = x[a] + e;"),
+    ]
+    if m == 1:
+        rest += ["    Cx[a][0] *= Lsi[0];", "    dx[a] = Cx[a][0] * bv[0];" if att else "    xs[a] = x[a] + Cx[a][0] * bv[0];"]
+    else:
+        rest += [
+            f"    {real} e = {zero};",
+            f"    for (k = 0u; k < {m}u; ++k) {{",
+            "        for (b = 0u; b < k; ++b) {",
+            "            Cx[a][k] -= Ls[k][b] * Cx[a][b];",
+            "        }",
+            "        Cx[a][k] *= Lsi[k];",
+            "        e += Cx[a][k] * bv[k];",
+            "    }",
+            ("    dx[a] = e;" if att else "    xs[a] = x[a] + e;"),
+        ]
+    rest += [
         "}",
     ]
     if att:
@@ -491,6 +470,47 @@ def loop_update(spec: ModelSpec, sensor: SensorSpec, em: Emitter, ctx: Dict[str,
     size = (m * ns + n + nv + 3 * m + 2 * m * m + m + ne * m + nv * nv + (m + 2 * ne if att else 0)) * \
         (4 if real == "float" else 8)
     return LoopCode(lines, rest, ops, size, uses_par)
+
+
+def _factor_and_nis(em: Emitter, ctx: Dict[str, Any], m: int) -> List[str]:
+    """Factor S = Ls Ls' (pivots checked: NON_FINITE, NOT_POSITIVE_DEFINITE), b = Ls^-1 y and the
+    NIS b' b; a scalar sensor without the loops (they would run zero times)."""
+    real, zero, one, fs, upper = em.real, em.lit(0.0), em.lit(1.0), ctx["fsuf"], em.upper
+    checks = ["if (!isfinite(d)) {", f"    return {upper}_NON_FINITE;", "}",
+              f"if (!(d > {zero})) {{", f"    return {upper}_NOT_POSITIVE_DEFINITE;", "}"]
+    if m == 1:
+        return ["/* S is a scalar: its square root and the NIS */", "{", f"    const {real} d = Sv[0][0];"] + \
+            _indent(checks) + [f"    Lsi[0] = {one} / sqrt{fs}(d);", "}",
+                              "bv[0] = y[0] * Lsi[0];", "nis = bv[0] * bv[0];"]
+    return [
+        "/* factor S = Ls Ls' (pivots checked) */",
+        f"for (b = 0u; b < {m}u; ++b) {{",
+        f"    {real} d = Sv[b][b];",
+        "    for (k = 0u; k < b; ++k) {",
+        "        d -= Ls[b][k] * Ls[b][k];",
+        "    }",
+    ] + _indent(checks) + [
+        f"    Ls[b][b] = sqrt{fs}(d);",
+        f"    Lsi[b] = {one} / Ls[b][b];",
+        f"    for (a = b + 1u; a < {m}u; ++a) {{",
+        f"        {real} e = Sv[a][b];",
+        "        for (k = 0u; k < b; ++k) {",
+        "            e -= Ls[a][k] * Ls[b][k];",
+        "        }",
+        "        Ls[a][b] = e * Lsi[b];",
+        "    }",
+        "}",
+        "/* NIS = y' S^-1 y = b' b with b = Ls^-1 y */",
+        f"nis = {zero};",
+        f"for (a = 0u; a < {m}u; ++a) {{",
+        f"    {real} e = y[a];",
+        "    for (k = 0u; k < a; ++k) {",
+        "        e -= Ls[a][k] * bv[k];",
+        "    }",
+        "    bv[a] = e * Lsi[a];",
+        "    nis += bv[a] * bv[a];",
+        "}",
+    ]
 
 
 def loop_certificate(spec: ModelSpec, wts: UkfWeights, em: Emitter) -> Optional[List[str]]:

@@ -157,6 +157,17 @@ def test_loop_form_strict_compile_float_hygiene_determinism(compiler: str, tmp_p
             assert m and int(m.group(1)) == gen.sigma_stack["predict"] > 0
 
 
+def test_speed_takes_the_loops_at_once_for_large_or_coupled_models(tmp_path) -> None:
+    # Source: the rule in docs/performance.md: from UKF_LOOP_SPEED_MIN_N error states, and from
+    # UKF_DENSE_LOOP_MIN_N when f couples most (component, state) pairs (the benchmark's models).
+    dense = estgen.load_model(write_model("dense", 16, str(tmp_path)))
+    sparse = estgen.load_model(write_model("sparse", 18, str(tmp_path)))
+    big = estgen.load_model(write_model("sparse", 24, str(tmp_path)))
+    assert emit_ukf.coupling(dense) == 1.0 and emit_ukf.coupling(sparse) < 0.25
+    assert emit_ukf.uses_loop_form(dense, "speed") and emit_ukf.uses_loop_form(big, "speed")
+    assert not emit_ukf.uses_loop_form(sparse, "speed")  # left to the flash estimate
+
+
 def test_which_form_each_option_takes(monkeypatch: pytest.MonkeyPatch) -> None:
     # Source: the rule documented in docs/performance.md ("Speed and size"): size from
     # UKF_LOOP_SIZE_MIN_N states; speed from UKF_LOOP_SPEED_MIN_N, and below it when the

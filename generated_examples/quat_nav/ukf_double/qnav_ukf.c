@@ -133,7 +133,7 @@ static int qnav_ukf_factor(const double *P, double *Lf)
     return qnav_ukf_cholesky(P, Lf);
 }
 
-/* f at one sigma point: x = [x; w] (16 reals), xn = its image (loop form: called once per sigma point). */
+/* f at one sigma point: xn = its image (loop form: called once per sigma point). */
 static void qnav_ukf_f(const double *x, const double *u, double dt, const qnav_ukf_par_t *par, double *xn)
 {
     const double t0 = (x[qnav_ukf_ix_q_w]*x[qnav_ukf_ix_q_w]);
@@ -178,7 +178,7 @@ static void qnav_ukf_f(const double *x, const double *u, double dt, const qnav_u
     xn[qnav_ukf_ix_baz] = x[qnav_ukf_ix_baz];
 }
 
-/* h of sensor gnss_pos at one sigma point: x = [x; v] (16 reals), zh = its image (loop form: called once per sigma point). */
+/* h of sensor gnss_pos at one sigma point: zh = its image (loop form: called once per sigma point). */
 static void qnav_ukf_h_gnss_pos(const double *x, double *zh)
 {
     zh[0] = x[qnav_ukf_ix_pn];
@@ -186,7 +186,7 @@ static void qnav_ukf_h_gnss_pos(const double *x, double *zh)
     zh[2] = x[qnav_ukf_ix_pd];
 }
 
-/* h of sensor gnss_vel at one sigma point: x = [x; v] (16 reals), zh = its image (loop form: called once per sigma point). */
+/* h of sensor gnss_vel at one sigma point: zh = its image (loop form: called once per sigma point). */
 static void qnav_ukf_h_gnss_vel(const double *x, double *zh)
 {
     zh[0] = x[qnav_ukf_ix_vn];
@@ -194,13 +194,13 @@ static void qnav_ukf_h_gnss_vel(const double *x, double *zh)
     zh[2] = x[qnav_ukf_ix_vd];
 }
 
-/* h of sensor baro at one sigma point: x = [x; v] (16 reals), zh = its image (loop form: called once per sigma point). */
+/* h of sensor baro at one sigma point: zh = its image (loop form: called once per sigma point). */
 static void qnav_ukf_h_baro(const double *x, double *zh)
 {
     zh[0] = -x[qnav_ukf_ix_pd];
 }
 
-/* h of sensor mag at one sigma point: x = [x; v] (16 reals), zh = its image (loop form: called once per sigma point). */
+/* h of sensor mag at one sigma point: zh = its image (loop form: called once per sigma point). */
 static void qnav_ukf_h_mag(const double *x, double *zh)
 {
     const double t0 = 0.9*x[qnav_ukf_ix_q_y];
@@ -607,8 +607,8 @@ int qnav_ukf_update_gnss_pos_nis(qnav_ukf_t *s, const double *z, double *nis_out
     double zv[3];
     double zm[3];  /* mean offset from the central image */
     double Sv[3][3];  /* innovation covariance S (lower triangle) */
-    double Ls[3][3];  /* its Cholesky factor */
     double Lsi[3];  /* 1 / Ls[k][k] */
+    double Ls[3][3];  /* its Cholesky factor */
     double bv[3];  /* Ls^-1 y */
     double Cx[15][3];  /* cross covariance C = cov(x, z), then B = C Ls^-T in place */
     double xa[16];  /* the sigma point */
@@ -792,8 +792,8 @@ int qnav_ukf_update_gnss_vel_nis(qnav_ukf_t *s, const double *z, double *nis_out
     double zv[3];
     double zm[3];  /* mean offset from the central image */
     double Sv[3][3];  /* innovation covariance S (lower triangle) */
-    double Ls[3][3];  /* its Cholesky factor */
     double Lsi[3];  /* 1 / Ls[k][k] */
+    double Ls[3][3];  /* its Cholesky factor */
     double bv[3];  /* Ls^-1 y */
     double Cx[15][3];  /* cross covariance C = cov(x, z), then B = C Ls^-T in place */
     double xa[16];  /* the sigma point */
@@ -977,7 +977,6 @@ int qnav_ukf_update_baro_nis(qnav_ukf_t *s, const double *z, double *nis_out)
     double zv[1];
     double zm[1];  /* mean offset from the central image */
     double Sv[1][1];  /* innovation covariance S (lower triangle) */
-    double Ls[1][1];  /* its Cholesky factor */
     double Lsi[1];  /* 1 / Ls[k][k] */
     double bv[1];  /* Ls^-1 y */
     double Cx[15][1];  /* cross covariance C = cov(x, z), then B = C Ls^-T in place */
@@ -1047,38 +1046,19 @@ int qnav_ukf_update_baro_nis(qnav_ukf_t *s, const double *z, double *nis_out)
             }
         }
     }
-    /* factor S = Ls Ls' (pivots checked) */
-    for (b = 0u; b < 1u; ++b) {
-        double d = Sv[b][b];
-        for (k = 0u; k < b; ++k) {
-            d -= Ls[b][k] * Ls[b][k];
-        }
+    /* S is a scalar: its square root and the NIS */
+    {
+        const double d = Sv[0][0];
         if (!isfinite(d)) {
             return QNAV_UKF_NON_FINITE;
         }
         if (!(d > 0.0)) {
             return QNAV_UKF_NOT_POSITIVE_DEFINITE;
         }
-        Ls[b][b] = sqrt(d);
-        Lsi[b] = 1.0 / Ls[b][b];
-        for (a = b + 1u; a < 1u; ++a) {
-            double e = Sv[a][b];
-            for (k = 0u; k < b; ++k) {
-                e -= Ls[a][k] * Ls[b][k];
-            }
-            Ls[a][b] = e * Lsi[b];
-        }
+        Lsi[0] = 1.0 / sqrt(d);
     }
-    /* NIS = y' S^-1 y = b' b with b = Ls^-1 y */
-    nis = 0.0;
-    for (a = 0u; a < 1u; ++a) {
-        double e = y[a];
-        for (k = 0u; k < a; ++k) {
-            e -= Ls[a][k] * bv[k];
-        }
-        bv[a] = e * Lsi[a];
-        nis += bv[a] * bv[a];
-    }
+    bv[0] = y[0] * Lsi[0];
+    nis = bv[0] * bv[0];
     /* the NIS is complete: report it, and gate before the posterior is formed */
     if (!isfinite(nis)) {
         return QNAV_UKF_NON_FINITE;
@@ -1089,15 +1069,8 @@ int qnav_ukf_update_baro_nis(qnav_ukf_t *s, const double *z, double *nis_out)
 
     /* B = C Ls^-T (in place), x [+] B b, P - B B' (= P - K S K') */
     for (a = 0u; a < 15u; ++a) {
-        double e = 0.0;
-        for (k = 0u; k < 1u; ++k) {
-            for (b = 0u; b < k; ++b) {
-                Cx[a][k] -= Ls[k][b] * Cx[a][b];
-            }
-            Cx[a][k] *= Lsi[k];
-            e += Cx[a][k] * bv[k];
-        }
-        dx[a] = e;
+        Cx[a][0] *= Lsi[0];
+        dx[a] = Cx[a][0] * bv[0];
     }
     qnav_ukf_inject(x, dx, xs);
     q = 0u;
@@ -1158,8 +1131,8 @@ int qnav_ukf_update_mag_nis(qnav_ukf_t *s, const double *z, double *nis_out)
     double zv[3];
     double zm[3];  /* mean offset from the central image */
     double Sv[3][3];  /* innovation covariance S (lower triangle) */
-    double Ls[3][3];  /* its Cholesky factor */
     double Lsi[3];  /* 1 / Ls[k][k] */
+    double Ls[3][3];  /* its Cholesky factor */
     double bv[3];  /* Ls^-1 y */
     double Cx[15][3];  /* cross covariance C = cov(x, z), then B = C Ls^-T in place */
     double xa[16];  /* the sigma point */

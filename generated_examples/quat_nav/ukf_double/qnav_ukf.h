@@ -95,7 +95,7 @@
  *   qnav_ukf_predict: 123 lines
  *   qnav_ukf_update_gnss_pos_nis: 173 lines
  *   qnav_ukf_update_gnss_vel_nis: 173 lines
- *   qnav_ukf_update_baro_nis: 169 lines
+ *   qnav_ukf_update_baro_nis: 142 lines
  *   qnav_ukf_update_mag_nis: 173 lines
  * Sigma points: 2n+1 = 31 (loop form, --optimize speed): built one at a time
  * from x and a column of the Cholesky factor, passed through the static model function, and

@@ -141,24 +141,24 @@ static int nav_ukf_factor(const double *P, double *Lf)
     return nav_ukf_cholesky(P, Lf);
 }
 
-/* f at one sigma point: x = [x; w] (21 reals), xn = its image (loop form: called once per sigma point). */
-static void nav_ukf_f(const double *x, const double *u, double dt, const nav_ukf_par_t *par, double *xn)
+/* f at one sigma point [x; w]: xn = its image (loop form: called once per sigma point). */
+static void nav_ukf_f(const double *x, const double *w, const double *u, double dt, const nav_ukf_par_t *par, double *xn)
 {
     const double t0 = cos(x[nav_ukf_ix_yaw]);
-    const double t1 = u[nav_ukf_iu_fx] - x[nav_ukf_ix_bax] - x[18];
+    const double t1 = u[nav_ukf_iu_fx] - w[3] - x[nav_ukf_ix_bax];
     const double t2 = cos(x[nav_ukf_ix_pitch]);
     const double t3 = t1*t2;
-    const double t4 = u[nav_ukf_iu_fz] - x[nav_ukf_ix_baz] - x[20];
+    const double t4 = u[nav_ukf_iu_fz] - w[5] - x[nav_ukf_ix_baz];
     const double t5 = sin(x[nav_ukf_ix_roll]);
     const double t6 = sin(x[nav_ukf_ix_yaw]);
     const double t7 = t5*t6;
     const double t8 = sin(x[nav_ukf_ix_pitch]);
     const double t9 = cos(x[nav_ukf_ix_roll]);
     const double t10 = t0*t9;
-    const double t11 = u[nav_ukf_iu_fy] - x[nav_ukf_ix_bay] - x[19];
+    const double t11 = u[nav_ukf_iu_fy] - w[4] - x[nav_ukf_ix_bay];
     const double t12 = t0*t5;
-    const double t13 = u[nav_ukf_iu_wy] - x[nav_ukf_ix_bgy] - x[16];
-    const double t14 = u[nav_ukf_iu_wz] - x[nav_ukf_ix_bgz] - x[17];
+    const double t13 = u[nav_ukf_iu_wy] - w[1] - x[nav_ukf_ix_bgy];
+    const double t14 = u[nav_ukf_iu_wz] - w[2] - x[nav_ukf_ix_bgz];
     const double t15 = (t13*t5 + t14*t9)/t2;
     xn[nav_ukf_ix_pn] = x[nav_ukf_ix_pn] + dt*x[nav_ukf_ix_vn];
     xn[nav_ukf_ix_pe] = x[nav_ukf_ix_pe] + dt*x[nav_ukf_ix_ve];
@@ -166,7 +166,7 @@ static void nav_ukf_f(const double *x, const double *u, double dt, const nav_ukf
     xn[nav_ukf_ix_vn] = x[nav_ukf_ix_vn] + dt*(t0*t3 + t11*(t12*t8 - t6*t9) + t4*(t7 + t10*t8));
     xn[nav_ukf_ix_ve] = x[nav_ukf_ix_ve] + dt*(t11*(t10 + t7*t8) + t3*t6 + t4*(-t12 + t6*t8*t9));
     xn[nav_ukf_ix_vd] = x[nav_ukf_ix_vd] + dt*(par->g - t1*t8 + t11*t2*t5 + t2*t4*t9);
-    xn[nav_ukf_ix_roll] = x[nav_ukf_ix_roll] + dt*(u[nav_ukf_iu_wx] - x[15] - x[nav_ukf_ix_bgx] + t15*t8);
+    xn[nav_ukf_ix_roll] = x[nav_ukf_ix_roll] + dt*(u[nav_ukf_iu_wx] - w[0] - x[nav_ukf_ix_bgx] + t15*t8);
     xn[nav_ukf_ix_pitch] = x[nav_ukf_ix_pitch] + dt*(t13*t9 - t14*t5);
     xn[nav_ukf_ix_yaw] = x[nav_ukf_ix_yaw] + dt*t15;
     xn[nav_ukf_ix_bgx] = x[nav_ukf_ix_bgx];
@@ -177,7 +177,7 @@ static void nav_ukf_f(const double *x, const double *u, double dt, const nav_ukf
     xn[nav_ukf_ix_baz] = x[nav_ukf_ix_baz];
 }
 
-/* h of sensor gnss_pos at one sigma point: x = [x; v] (15 reals), zh = its image (loop form: called once per sigma point). */
+/* h of sensor gnss_pos at one sigma point: zh = its image (loop form: called once per sigma point). */
 static void nav_ukf_h_gnss_pos(const double *x, double *zh)
 {
     zh[0] = x[nav_ukf_ix_pn];
@@ -185,7 +185,7 @@ static void nav_ukf_h_gnss_pos(const double *x, double *zh)
     zh[2] = x[nav_ukf_ix_pd];
 }
 
-/* h of sensor gnss_vel at one sigma point: x = [x; v] (15 reals), zh = its image (loop form: called once per sigma point). */
+/* h of sensor gnss_vel at one sigma point: zh = its image (loop form: called once per sigma point). */
 static void nav_ukf_h_gnss_vel(const double *x, double *zh)
 {
     zh[0] = x[nav_ukf_ix_vn];
@@ -193,13 +193,13 @@ static void nav_ukf_h_gnss_vel(const double *x, double *zh)
     zh[2] = x[nav_ukf_ix_vd];
 }
 
-/* h of sensor baro at one sigma point: x = [x; v] (15 reals), zh = its image (loop form: called once per sigma point). */
+/* h of sensor baro at one sigma point: zh = its image (loop form: called once per sigma point). */
 static void nav_ukf_h_baro(const double *x, double *zh)
 {
     zh[0] = -x[nav_ukf_ix_pd];
 }
 
-/* h of sensor mag_heading at one sigma point: x = [x; v] (15 reals), zh = its image (loop form: called once per sigma point). */
+/* h of sensor mag_heading at one sigma point: zh = its image (loop form: called once per sigma point). */
 static void nav_ukf_h_mag_heading(const double *x, double *zh)
 {
     zh[0] = x[nav_ukf_ix_yaw];
@@ -455,7 +455,7 @@ int nav_ukf_predict(nav_ukf_t *s, const double *u, double dt)
                     }
                 }
             }
-            nav_ukf_f(xa, u, dt, par, yv);
+            nav_ukf_f(xa, &xa[15], u, dt, par, yv);
             for (a = 0u; a < 15u; ++a) {
                 Yt[a][i] = yv[a];
             }
@@ -475,7 +475,7 @@ int nav_ukf_predict(nav_ukf_t *s, const double *u, double dt)
                 ss += sin(Yt[6u][i]);
                 cs += cos(Yt[6u][i]);
             }
-            xn[6] = nav_ukf_wrap(atan2(0.0 * sin(Yt[6u][0]) + 0.023809523809523808 * ss, 0.0 * cos(Yt[6u][0]) + 0.023809523809523808 * cs));
+            xn[nav_ukf_ix_roll] = nav_ukf_wrap(atan2(0.0 * sin(Yt[6u][0]) + 0.023809523809523808 * ss, 0.0 * cos(Yt[6u][0]) + 0.023809523809523808 * cs));
         }
         {   /* component 7 is an angle: circular mean */
             double ss = 0.0;
@@ -484,7 +484,7 @@ int nav_ukf_predict(nav_ukf_t *s, const double *u, double dt)
                 ss += sin(Yt[7u][i]);
                 cs += cos(Yt[7u][i]);
             }
-            xn[7] = nav_ukf_wrap(atan2(0.0 * sin(Yt[7u][0]) + 0.023809523809523808 * ss, 0.0 * cos(Yt[7u][0]) + 0.023809523809523808 * cs));
+            xn[nav_ukf_ix_pitch] = nav_ukf_wrap(atan2(0.0 * sin(Yt[7u][0]) + 0.023809523809523808 * ss, 0.0 * cos(Yt[7u][0]) + 0.023809523809523808 * cs));
         }
         {   /* component 8 is an angle: circular mean */
             double ss = 0.0;
@@ -493,7 +493,7 @@ int nav_ukf_predict(nav_ukf_t *s, const double *u, double dt)
                 ss += sin(Yt[8u][i]);
                 cs += cos(Yt[8u][i]);
             }
-            xn[8] = nav_ukf_wrap(atan2(0.0 * sin(Yt[8u][0]) + 0.023809523809523808 * ss, 0.0 * cos(Yt[8u][0]) + 0.023809523809523808 * cs));
+            xn[nav_ukf_ix_yaw] = nav_ukf_wrap(atan2(0.0 * sin(Yt[8u][0]) + 0.023809523809523808 * ss, 0.0 * cos(Yt[8u][0]) + 0.023809523809523808 * cs));
         }
         for (a = 0u; a < 15u; ++a) {
             for (i = 0u; i < 43u; ++i) {
@@ -526,12 +526,6 @@ int nav_ukf_predict(nav_ukf_t *s, const double *u, double dt)
         Pn[0] = Pn[0] + qq0;
         Pn[15] = Pn[15] + qq0;
         Pn[29] = Pn[29] + qq0;
-        Pn[42] = Pn[42];
-        Pn[54] = Pn[54];
-        Pn[65] = Pn[65];
-        Pn[75] = Pn[75];
-        Pn[84] = Pn[84];
-        Pn[92] = Pn[92];
         Pn[99] = Pn[99] + qq1;
         Pn[105] = Pn[105] + qq1;
         Pn[110] = Pn[110] + qq1;
@@ -586,8 +580,8 @@ int nav_ukf_update_gnss_pos_nis(nav_ukf_t *s, const double *z, double *nis_out)
     double zv[3];
     double zm[3];  /* predicted measurement */
     double Sv[3][3];  /* innovation covariance S (lower triangle) */
-    double Ls[3][3];  /* its Cholesky factor */
     double Lsi[3];  /* 1 / Ls[k][k] */
+    double Ls[3][3];  /* its Cholesky factor */
     double bv[3];  /* Ls^-1 y */
     double Cx[15][3];  /* cross covariance C = cov(x, z), then B = C Ls^-T in place */
     double xa[15];  /* the sigma point */
@@ -765,8 +759,8 @@ int nav_ukf_update_gnss_vel_nis(nav_ukf_t *s, const double *z, double *nis_out)
     double zv[3];
     double zm[3];  /* predicted measurement */
     double Sv[3][3];  /* innovation covariance S (lower triangle) */
-    double Ls[3][3];  /* its Cholesky factor */
     double Lsi[3];  /* 1 / Ls[k][k] */
+    double Ls[3][3];  /* its Cholesky factor */
     double bv[3];  /* Ls^-1 y */
     double Cx[15][3];  /* cross covariance C = cov(x, z), then B = C Ls^-T in place */
     double xa[15];  /* the sigma point */
@@ -944,7 +938,6 @@ int nav_ukf_update_baro_nis(nav_ukf_t *s, const double *z, double *nis_out)
     double zv[1];
     double zm[1];  /* predicted measurement */
     double Sv[1][1];  /* innovation covariance S (lower triangle) */
-    double Ls[1][1];  /* its Cholesky factor */
     double Lsi[1];  /* 1 / Ls[k][k] */
     double bv[1];  /* Ls^-1 y */
     double Cx[15][1];  /* cross covariance C = cov(x, z), then B = C Ls^-T in place */
@@ -1006,38 +999,19 @@ int nav_ukf_update_baro_nis(nav_ukf_t *s, const double *z, double *nis_out)
             }
         }
     }
-    /* factor S = Ls Ls' (pivots checked) */
-    for (b = 0u; b < 1u; ++b) {
-        double d = Sv[b][b];
-        for (k = 0u; k < b; ++k) {
-            d -= Ls[b][k] * Ls[b][k];
-        }
+    /* S is a scalar: its square root and the NIS */
+    {
+        const double d = Sv[0][0];
         if (!isfinite(d)) {
             return NAV_UKF_NON_FINITE;
         }
         if (!(d > 0.0)) {
             return NAV_UKF_NOT_POSITIVE_DEFINITE;
         }
-        Ls[b][b] = sqrt(d);
-        Lsi[b] = 1.0 / Ls[b][b];
-        for (a = b + 1u; a < 1u; ++a) {
-            double e = Sv[a][b];
-            for (k = 0u; k < b; ++k) {
-                e -= Ls[a][k] * Ls[b][k];
-            }
-            Ls[a][b] = e * Lsi[b];
-        }
+        Lsi[0] = 1.0 / sqrt(d);
     }
-    /* NIS = y' S^-1 y = b' b with b = Ls^-1 y */
-    nis = 0.0;
-    for (a = 0u; a < 1u; ++a) {
-        double e = y[a];
-        for (k = 0u; k < a; ++k) {
-            e -= Ls[a][k] * bv[k];
-        }
-        bv[a] = e * Lsi[a];
-        nis += bv[a] * bv[a];
-    }
+    bv[0] = y[0] * Lsi[0];
+    nis = bv[0] * bv[0];
     /* the NIS is complete: report it, and gate before the posterior is formed */
     if (!isfinite(nis)) {
         return NAV_UKF_NON_FINITE;
@@ -1048,15 +1022,8 @@ int nav_ukf_update_baro_nis(nav_ukf_t *s, const double *z, double *nis_out)
 
     /* B = C Ls^-T (in place), x + B b, P - B B' (= P - K S K') */
     for (a = 0u; a < 15u; ++a) {
-        double e = 0.0;
-        for (k = 0u; k < 1u; ++k) {
-            for (b = 0u; b < k; ++b) {
-                Cx[a][k] -= Ls[k][b] * Cx[a][b];
-            }
-            Cx[a][k] *= Lsi[k];
-            e += Cx[a][k] * bv[k];
-        }
-        xs[a] = x[a] + e;
+        Cx[a][0] *= Lsi[0];
+        xs[a] = x[a] + Cx[a][0] * bv[0];
     }
     q = 0u;
     for (a = 0u; a < 15u; ++a) {
@@ -1119,7 +1086,6 @@ int nav_ukf_update_mag_heading_nis(nav_ukf_t *s, const double *z, double *nis_ou
     double zv[1];
     double zm[1];  /* predicted measurement */
     double Sv[1][1];  /* innovation covariance S (lower triangle) */
-    double Ls[1][1];  /* its Cholesky factor */
     double Lsi[1];  /* 1 / Ls[k][k] */
     double bv[1];  /* Ls^-1 y */
     double Cx[15][1];  /* cross covariance C = cov(x, z), then B = C Ls^-T in place */
@@ -1193,38 +1159,19 @@ int nav_ukf_update_mag_heading_nis(nav_ukf_t *s, const double *z, double *nis_ou
             }
         }
     }
-    /* factor S = Ls Ls' (pivots checked) */
-    for (b = 0u; b < 1u; ++b) {
-        double d = Sv[b][b];
-        for (k = 0u; k < b; ++k) {
-            d -= Ls[b][k] * Ls[b][k];
-        }
+    /* S is a scalar: its square root and the NIS */
+    {
+        const double d = Sv[0][0];
         if (!isfinite(d)) {
             return NAV_UKF_NON_FINITE;
         }
         if (!(d > 0.0)) {
             return NAV_UKF_NOT_POSITIVE_DEFINITE;
         }
-        Ls[b][b] = sqrt(d);
-        Lsi[b] = 1.0 / Ls[b][b];
-        for (a = b + 1u; a < 1u; ++a) {
-            double e = Sv[a][b];
-            for (k = 0u; k < b; ++k) {
-                e -= Ls[a][k] * Ls[b][k];
-            }
-            Ls[a][b] = e * Lsi[b];
-        }
+        Lsi[0] = 1.0 / sqrt(d);
     }
-    /* NIS = y' S^-1 y = b' b with b = Ls^-1 y */
-    nis = 0.0;
-    for (a = 0u; a < 1u; ++a) {
-        double e = y[a];
-        for (k = 0u; k < a; ++k) {
-            e -= Ls[a][k] * bv[k];
-        }
-        bv[a] = e * Lsi[a];
-        nis += bv[a] * bv[a];
-    }
+    bv[0] = y[0] * Lsi[0];
+    nis = bv[0] * bv[0];
     /* the NIS is complete: report it, and gate before the posterior is formed */
     if (!isfinite(nis)) {
         return NAV_UKF_NON_FINITE;
@@ -1235,15 +1182,8 @@ int nav_ukf_update_mag_heading_nis(nav_ukf_t *s, const double *z, double *nis_ou
 
     /* B = C Ls^-T (in place), x + B b, P - B B' (= P - K S K') */
     for (a = 0u; a < 15u; ++a) {
-        double e = 0.0;
-        for (k = 0u; k < 1u; ++k) {
-            for (b = 0u; b < k; ++b) {
-                Cx[a][k] -= Ls[k][b] * Cx[a][b];
-            }
-            Cx[a][k] *= Lsi[k];
-            e += Cx[a][k] * bv[k];
-        }
-        xs[a] = x[a] + e;
+        Cx[a][0] *= Lsi[0];
+        xs[a] = x[a] + Cx[a][0] * bv[0];
     }
     q = 0u;
     for (a = 0u; a < 15u; ++a) {

@@ -86,11 +86,11 @@
  * functions are longer: each holds one call's loops (sigma points, weighted sums, the factor of S,
  * the gain and the new P) in sequence, with its refusal paths:
  *   nav_ukf_init: 136 lines
- *   nav_ukf_predict: 179 lines
+ *   nav_ukf_predict: 173 lines
  *   nav_ukf_update_gnss_pos_nis: 167 lines
  *   nav_ukf_update_gnss_vel_nis: 167 lines
- *   nav_ukf_update_baro_nis: 163 lines
- *   nav_ukf_update_mag_heading_nis: 175 lines
+ *   nav_ukf_update_baro_nis: 136 lines
+ *   nav_ukf_update_mag_heading_nis: 148 lines
  * Sigma points: 2n+1 = 31 (loop form, --optimize speed): built one at a time
  * from x and a column of the Cholesky factor, passed through the static model function, and
  * their images kept in a local array (n or m rows of 2N+1) with the factor and the sums: the
