@@ -72,14 +72,17 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
 
 def run(args: argparse.Namespace) -> int:
     """Run ``estgen report`` with parsed ``args``: 0 done, 2 bad input."""
-    from .errors import ToolMissing
+    from .errors import ModelError, ToolMissing
 
     if not args.clock_mhz > 0:
         print("estgen report: --clock-mhz must be > 0", file=sys.stderr)
         return 2
-    # a ModelError goes to the command line's handler: the message starts with the model's path
-    rep = make_report(args.model, target=args.target, steps=args.steps, seed=args.seed,
-                      progress=wanted(args.quiet, args.progress), **FilterSetup.from_args(args).kwargs(runtime=False))
+    try:
+        rep = make_report(args.model, target=args.target, steps=args.steps, seed=args.seed,
+                          progress=wanted(args.quiet, args.progress), **FilterSetup.from_args(args).kwargs(runtime=False))
+    except ModelError as err:  # as the command line prints it: the message starts with the model's path
+        print(str(err), file=sys.stderr)
+        return 2
     if rep["missing"]:
         # a report without its figures is no report: name what to install and stop (exit 2)
         for tool, what in rep["missing"].items():
