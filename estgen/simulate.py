@@ -765,7 +765,8 @@ def save_figure(fig: Any, path: str) -> None:
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
     """Add the ``simulate`` options to a (sub)parser."""
-    parser.add_argument("model", metavar="MODEL", help="the model file")
+    # optional for argparse only: "--set k=1 MODEL" puts the model among the pairs (see _model_among_pairs)
+    parser.add_argument("model", metavar="MODEL", nargs="?", help="the model file")
     filters.add_arguments(parser, "float")
     parser.add_argument("--runs", type=int, default=50, help="Monte Carlo runs (default 50)")
     parser.add_argument("--steps", type=int, default=200, help="steps per run (default 200)")
@@ -800,9 +801,23 @@ def _pairs(items: Sequence[str], option: str, convert: Callable[[str], Any]) -> 
     return out
 
 
+def _model_among_pairs(args: argparse.Namespace) -> None:
+    """``--set``/``--every`` take several pairs, so in ``simulate --set k=1 MODEL`` they swallow
+    the model: take it back (the one item without '=' after the last pair)."""
+    if args.model is not None:
+        return
+    for option in ("set", "every"):
+        items: List[str] = getattr(args, option)
+        if items and "=" not in items[-1]:
+            args.model = items.pop()
+            return
+    raise UsageError("the following arguments are required: MODEL")
+
+
 def run(args: argparse.Namespace) -> int:
     """Run ``estgen simulate`` with parsed ``args``; returns 0 once it ran (consistent or not).
     Bad input raises :class:`ModelError` for the CLI to print (exit 2)."""
+    _model_among_pairs(args)
     check_outputs(args)
     spec = as_spec(args.model)
     res = monte_carlo(

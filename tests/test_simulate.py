@@ -292,3 +292,13 @@ def test_set_takes_several_pairs_after_one_flag(tmp_path):
         assert cli.main(["simulate", CART, "--runs", "2", "--steps", "5", "--reference", "-q", *extra,
                          "--json", str(js)]) == 0
         assert json.loads(js.read_text())["set_params"] == {"accel_psd": 0.3, "pos_var": 0.1}
+    # the pairs written before the model (common practice on command lines) still find the model
+    js = tmp_path / "before.json"
+    assert cli.main(["simulate", "--set", "accel_psd=0.3", "pos_var=0.1", CART, "--runs", "2", "--steps", "5",
+                     "--reference", "-q", "--json", str(js)]) == 0
+    assert json.loads(js.read_text())["set_params"] == {"accel_psd": 0.3, "pos_var": 0.1}
+
+
+def test_simulate_without_a_model_is_bad_input(capsys):
+    assert cli.main(["simulate", "--set", "accel_psd=0.3", "--runs", "2"]) == 2
+    assert "MODEL" in capsys.readouterr().err
