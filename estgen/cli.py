@@ -19,7 +19,6 @@ from . import filters
 from ._version import __version__
 from .errors import ModelError, ToolMissing
 from .filters import FilterSetup
-from .filters.base import PRECISIONS
 from .outputs import stale_files, write_generated
 
 __all__ = ["main"]
@@ -136,9 +135,10 @@ def _cmd_replay(args: argparse.Namespace) -> int:
     from .model import load_model
     from .simulate import make_scenario
 
+    setup = filters.FilterSetup.from_args(args)  # validates the options as the other commands do
     spec = load_model(args.model)
     scen = make_scenario(spec, args.steps, args.seed)
-    path = write_replay(spec, args.filter, args.precision, scen, args.out)
+    path = write_replay(spec, setup.name, setup.precision, scen, args.out)
     if not args.quiet:
         print(path)
     return 0
@@ -210,8 +210,8 @@ def _parser() -> argparse.ArgumentParser:
                                     "project (generated_examples/firmware_qemu, shipped as estgen.firmware) builds "
                                     "with the generated filter.")
     rp.add_argument("model", metavar="MODEL", help="the model file (Python defining `model`)")
-    rp.add_argument("--filter", choices=filters.names(), default="ekf", help="filter kind (default ekf)")
-    rp.add_argument("--precision", choices=PRECISIONS, default="float", help="C type (default float)")
+    # the same filter options as every command (the replay data depends on the kind and precision)
+    filters.add_arguments(rp, "float")
     rp.add_argument("--steps", type=int, default=200, help="simulated steps (default 200)")
     rp.add_argument("--seed", type=filters.seed_value, default=0, help="random seed (default 0)")
     rp.add_argument("-o", "--out", required=True, metavar="DIR", help="folder for replay_data.h")

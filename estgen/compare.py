@@ -51,6 +51,7 @@ from ._version import __version__
 from .chi2 import chi2_ppf
 from .errors import ModelError
 from .filters import KINDS, FilterSetup, check_filter_support, seed_value
+from .filters.base import DEFAULT_COMMIT_CHECK, DEFAULT_OPTIMIZE, CommonOptions
 from .filters import get as filter_kind
 from .filters import names as filter_names
 from .model import ModelSpec, as_spec
@@ -496,6 +497,9 @@ def compare(
     precision: str = "float",
     use_reference: bool = False,
     options: Optional[Mapping[str, Mapping[str, Any]]] = None,
+    gates: Optional[Mapping[str, float]] = None,
+    commit_check: str = DEFAULT_COMMIT_CHECK,
+    optimize: str = DEFAULT_OPTIMIZE,
     margin: float = DEFAULT_MARGIN,
     budget: Optional[Budget] = None,
     truth_initial: Optional[Tuple[Sequence[float], Any]] = None,
@@ -511,7 +515,9 @@ def compare(
     The filters under test are the compiled C in ``precision`` (default float, the build that
     ships) or, with ``use_reference``, the numpy references. ``options`` gives a kind its own
     options, e.g. ``{"ukf": {"alpha": 0.5}, "pf": {"particles": 300}}`` (the registry's names;
-    the linearization check uses the UKF's). ``truth_initial`` = (x0, P0) draws
+    the linearization check uses the UKF's). ``gates``, ``commit_check`` and ``optimize`` are
+    those of :func:`estgen.filters.generate`, for every compared filter: the C that runs and whose
+    cost is measured is the C ``generate`` ships with them. ``truth_initial`` = (x0, P0) draws
     the truth's initial state from N(x0, P0) instead of the filters' initial estimate and
     covariance (as in published set-ups where the estimate starts off the truth).
     ``burn_in``: steps 1..burn_in are left out of the consistency verdicts, as in ``estgen
@@ -533,7 +539,8 @@ def compare(
         # --filters, or refused by the model) simply does not use its options
         filter_kind(name).options(**options[name])
     # each kind checks the model and its options; the cost is always that of the float build
-    setups = {name: FilterSetup.of(name, precision, **options.get(name, {})) for name in names}
+    common = {"gates": dict(gates or {}), "commit_check": commit_check, "optimize": optimize}
+    setups = {name: FilterSetup.of(name, precision, **common, **options.get(name, {})) for name in names}
     for setup in setups.values():
         setup.spec(spec)
     unscented = FilterSetup.of("ukf", "double", **options.get("ukf", {}))
@@ -591,7 +598,7 @@ def compare(
         costs: Dict[str, Dict[str, int]] = {}
         for name in names:
             prog.step(f"cost of the {name.upper()} on the emulated Cortex-M4F")
-            costs[name] = measure_cost(spec, name, _head(scenario0, cost_steps), **options.get(name, {}))
+            costs[name] = measure_cost(spec, name, _head(scenario0, cost_steps), **common, **options.get(name, {}))
 
     impl = "reference" if use_reference else f"c-{precision}"
     if burn_in is None:
@@ -943,9 +950,9 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--burn-in", type=int, default=None, metavar="N",
                         help="leave steps 1..N out of the consistency verdicts (default: the longest start-up "
                              "transient of the compared filters, at most 20%% of the run)")
-    parser.add_argument("--precision", choices=("float", "double"), default="float",
-                        help="precision of the compiled C under test (default float, the build that ships); "
-                             "the cost is always that of the float build")
+    # --precision (of the C under test; the cost is always that of the float build), --commit-check,
+    # --optimize and --gate: declared once for every command
+    CommonOptions.add_arguments(parser, "float")
     parser.add_argument("--reference", action="store_true", help="run the numpy references instead of the C")
     for kind in KINDS.values():  # every kind's own options, declared once in the registry
         for flag in kind.Options.FLAGS:
@@ -1012,8 +1019,10 @@ def run(args: argparse.Namespace) -> int:
     if args.filters is not None and not filters:
         raise ModelError("--filters: name at least one filter, e.g. --filters ekf,ukf")
     check_outputs(args)
-    res = compare(args.model, filters, args.runs, args.steps, args.seed, precision=args.precision,
-                  use_reference=args.reference, options=options_from_args(args),
+    common = CommonOptions.from_args(args)
+    res = compare(args.model, filters, args.runs, args.steps, args.seed, precision=common.precision,
+                  use_reference=args.reference, options=options_from_args(args), gates=common.gate_map,
+                  commit_check=common.commit_check, optimize=common.optimize,
                   margin=args.margin, budget=budget_from_args(args), dt=args.dt, burn_in=args.burn_in,
                   workers=args.workers,
                   progress=True if args.progress else (False if args.quiet else None))

@@ -240,3 +240,18 @@ def test_divergence_definition() -> None:
     assert case(2.0, refusals=10)
     assert case(2.0, P_end=-1.0)
     assert case(2.0, P_end=math.nan)
+
+
+def test_cost_is_that_of_the_code_form_that_ships() -> None:
+    # compare takes --optimize like every command, so the filter it measures is the one generate
+    # ships: the size form of the 15-state example is smaller in flash and runs more instructions
+    # (docs/performance.md; the same trade as a C compiler's -Os against -O2, common practice)
+    from conftest import example_model
+
+    cost = {}
+    for form in ("speed", "size"):
+        res = compare(example_model("strapdown_nav"), ["ekf"], runs=1, steps=10, use_reference=True,
+                      optimize=form, workers=1)
+        cost[form] = json.loads(res.to_json())["filters"]["ekf"]["cost"]
+    assert cost["size"]["flash_bytes"] < cost["speed"]["flash_bytes"]
+    assert cost["size"]["instructions_per_step"] > cost["speed"]["instructions_per_step"]

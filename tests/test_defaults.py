@@ -39,6 +39,19 @@ def test_float_seed_zero_and_quiet_everywhere(cmd):
     assert _args(cmd, "--quiet").quiet is True
 
 
+@pytest.mark.parametrize("cmd", LONG_COMMANDS)
+def test_every_command_takes_the_filter_options(cmd):
+    # the filter options are declared once (estgen.filters.add_arguments) and every command
+    # accepts them, so the C a command checks is the C generate ships (compare takes --filters)
+    kind = ["--filters", "ekf,pf"] if cmd == "compare" else ["--filter", "pf"]
+    args = _args(cmd, *kind, "--particles", "64", "--optimize", "size", "--commit-check", "cholesky",
+                 "--gate", "s=0.99", "--precision", "double")
+    common = estgen.filters.CommonOptions.from_args(args)
+    assert (common.optimize, common.commit_check, common.gate_map, common.precision) == \
+        ("size", "cholesky", {"s": 0.99}, "double"), cmd
+    assert args.particles == 64, cmd
+
+
 def test_python_api_defaults_to_float():
     for fn in (estgen.build, __import__("estgen.build", fromlist=["build"]).build,
                __import__("estgen.verify", fromlist=["verify"]).verify,
