@@ -18,7 +18,9 @@ construction with other attitude parameters). Angle components of a sensor are a
 way about the central image.
 
 The update draws fresh sigma points, ``C = sum Wc_i e_i (z_i - zbar)'``, and the correction
-``K y`` is injected into x (``x ⊞ K y``) in the same commit as ``P - K S K'``.
+``K y`` is injected into x (``x ⊞ K y``) in the same commit as ``P - K S K'``, which the
+shared covariance reset (:func:`estgen.derive.reset_covariance`, called by the emitter after these
+statements) then re-references to the corrected attitude.
 """
 
 from __future__ import annotations
@@ -203,7 +205,10 @@ def derive_ukf_attitude_update(sensor: SensorSpec, spec: ModelSpec, wts: UkfWeig
             S[(k, l)] = S[(l, k)] = blk.value(f"S{k}_{l}", _cov(dev, dev, k, l, wts) + R[(k, l)])
 
     def assign_x(corr: List[sp.Expr]) -> None:
-        dx = [blk.value(f"dx{a}", corr[a]) for a in range(ne)]
+        # an array: the shared covariance reset reads it after Ps is written (emit.set_reset)
+        for a in range(ne):
+            blk.add("assign", f"dx[{a}]", corr[a])
+        dx = [_sym(f"dx[{a}]") for a in range(ne)]
         names = c_names(spec, "x")
         newx = inject(spec, [names[s] for s in spec.x_syms], dx)
         vals = blk.cse([(f"xs{i}", e) for i, e in enumerate(newx)], "g")

@@ -553,7 +553,7 @@ def _common_context(spec: ModelSpec, setup: "FilterSetup") -> Dict[str, Any]:
         "commit_check": commit_check,
         "optimize": optimize,
         "compact": compact_forms(optimize, ne),
-        "reset": [],  # the EKF's attitude covariance reset (generate_ekf fills it)
+        "reset": [],  # the attitude covariance reset of the EKF and UKF (set_reset fills it)
         "cert_kappa": CERT_KAPPA,
         "commit_fns": commit_fns,
         "commit_ops": commit_ops,
@@ -754,6 +754,21 @@ def _compact_sequential(em: Emitter, prefix: str, uc: Any, rules: Any) -> Tuple[
     return out, em.lines(tail)
 
 
+def set_reset(spec: ModelSpec, ctx: Dict[str, Any]) -> OpCount:
+    """Attitude models with sensors: print the covariance reset (:func:`estgen.derive.reset_covariance`)
+    into ``ctx["reset"]``, the body of the one static ``<prefix>_reset(Ps, dx)`` that every EKF and
+    UKF update calls after injecting its correction (common_c.j2 ``reset_function``). Returns the
+    cost of one call (zero when there is no reset)."""
+    ops = OpCount()
+    ctx["reset"] = ctx["emitter"].lines(reset_covariance(spec), ops) if spec.attitudes and spec.sensors else []
+    return ops
+
+
+def reset_call(prefix: str) -> str:
+    """The C statement that applies the reset to the scratch ``Ps`` with the injected ``dx``."""
+    return f"{prefix}_reset(Ps, dx);  /* P re-referenced to the corrected attitude */"
+
+
 def generate_ekf(spec: ModelSpec, setup: "FilterSetup") -> Generated:
     """Generate the EKF's header and source for ``spec`` (gates set, support checked)."""
     ctx = _common_context(spec, setup)
@@ -800,9 +815,7 @@ def generate_ekf(spec: ModelSpec, setup: "FilterSetup") -> Generated:
     ups = []
     forms["scalar_update"] = size_forms(setup.common.optimize, spec.ne) or spec.ne > UNROLL_SCALAR_UPDATE_MAX
     forms["scalar_update_used"] = False
-    # attitudes: the covariance reset after the injection, one static function every update calls
-    reset_ops = OpCount()
-    ctx["reset"] = em.lines(reset_covariance(spec), reset_ops) if spec.attitudes and code.updates else []
+    reset_ops = set_reset(spec, ctx)
     for uc, sctx in zip(code.updates, ctx["sensors"]):
         oc = OpCount()
         rules = ekf_sequential_sections(uc.sensor) if uc.sequential else EKF_BLOCK_UPDATE_SECTIONS
@@ -820,7 +833,7 @@ def generate_ekf(spec: ModelSpec, setup: "FilterSetup") -> Generated:
             if uc.whiten:
                 form = "constant full R = L L' whitened by L^-1, then sequential scalar updates, standard form P - K W'"
         if ctx["reset"]:
-            after.append(f"{ctx['prefix']}_reset(Ps, dx);  /* P re-referenced to the corrected attitude */")
+            after.append(reset_call(ctx["prefix"]))
             oc += reset_ops
         oc += OpCount(**ctx["commit_ops"][ctx["commit_fns"]["update"]])
         ops[f"update_{uc.sensor.name}"] = oc.as_dict()

@@ -10,7 +10,8 @@ from typing import TYPE_CHECKING, Any, Dict, List, Tuple
 from .derive import with_sections
 from .derive_ukf import UKF_PREDICT_SECTIONS, UKF_UPDATE_SECTIONS, UkfWeights, derive_ukf
 from .derive_ukf_att import derive_ukf_attitude
-from .emit import COMPACT_MIN_N, DENSE_F_FILL, Emitter, Generated, OpCount, _common_context, _render, gate_split
+from .emit import (COMPACT_MIN_N, DENSE_F_FILL, Emitter, Generated, OpCount, _common_context, _render, gate_split,
+                   reset_call, set_reset)
 from .emit_ukf_loop import loop_certificate, loop_functions, loop_predict, loop_update
 from .model import ModelSpec
 from .progress import stage
@@ -122,16 +123,21 @@ def _generate_straight(spec: ModelSpec, setup: "FilterSetup", wts: UkfWeights, c
                       "ea": code.predict.angle_scratch, "cert": []}
     ups: List[Dict[str, Any]] = []
     u_bytes = 0
+    reset_ops = set_reset(spec, ctx)  # attitudes: P re-referenced after the injection (shared with the EKF)
     for uc, sctx in zip(code.updates, ctx["sensors"]):
         oc = OpCount()
         head, rest = gate_split(with_sections(uc.stmts, UKF_UPDATE_SECTIONS))
         body, after = em.lines(head, oc), em.lines(rest, oc)
         oc += fc
+        if ctx["reset"]:
+            after.append(reset_call(ctx["prefix"]))
+            oc += reset_ops
         oc += OpCount(**ctx["commit_ops"][ctx["commit_fns"]["update"]])
         ops[f"update_{uc.sensor.name}"] = oc.as_dict()
         decls = sum(1 for st in uc.stmts if st.kind == "decl")
-        u_bytes = max(u_bytes, _stack_bytes(decls, n + 2 * np_ + uc.m + 1 + uc.angle_scratch, size_real))
-        ups.append({**sctx, "lines": body, "rest": after, "uses_par": uc.uses_par, "ea": uc.angle_scratch})
+        u_bytes = max(u_bytes, _stack_bytes(decls, n + 2 * np_ + uc.m + 1 + uc.angle_scratch + (ne if spec.attitudes else 0), size_real))
+        ups.append({**sctx, "lines": body, "rest": after, "uses_par": uc.uses_par, "ea": uc.angle_scratch,
+                    "dx_size": ne if spec.attitudes else 0})
     where = [
         f"Sigma points: 2n+1 = {2 * ne + 1}, never stored as arrays. Their offsets gamma*L, their images",
         "and deviations are const locals of predict and update (straight-line code), so they live",
@@ -176,15 +182,19 @@ def _generate_loop(spec: ModelSpec, setup: "FilterSetup", wts: UkfWeights, ctx: 
                       "uses_u": spec.nu > 0, "ea": 0, "cert": cert or []}
     ups: List[Dict[str, Any]] = []
     u_bytes = 0
+    reset_ops = set_reset(spec, ctx)
     for s, sctx in zip(spec.sensors, ctx["sensors"]):
         lu = loop_update(spec, s, em, ctx, wts, fns)
         oc = OpCount()
         oc += lu.ops
         oc += fc
+        if ctx["reset"]:
+            lu.rest.append(reset_call(ctx["prefix"]))  # dx is the loop update's correction array
+            oc += reset_ops
         oc += OpCount(**ctx["commit_ops"][ctx["commit_fns"]["update"]])
         ops[f"update_{s.name}"] = oc.as_dict()
         u_bytes = max(u_bytes, _stack_bytes(0, n + 2 * np_ + s.m + 1, size_real) + lu.stack_bytes)
-        ups.append({**sctx, "lines": lu.lines, "rest": lu.rest, "uses_par": lu.uses_par, "ea": 0})
+        ups.append({**sctx, "lines": lu.lines, "rest": lu.rest, "uses_par": lu.uses_par, "ea": 0, "dx_size": 0})
     where = [
         f"Sigma points: 2n+1 = {2 * ctx['ne'] + 1} (loop form, --optimize {setup.common.optimize}): built one at a time",
         "from x and a column of the Cholesky factor, passed through the static model function, and",

@@ -356,7 +356,8 @@ def loop_update(spec: ModelSpec, sensor: SensorSpec, em: Emitter, ctx: Dict[str,
                 fns: Dict[str, Dict[str, Any]]) -> LoopCode:
     """An update's lines in the loop form: through the NIS (``lines``) and after the gate (``rest``).
     With attitudes the images are taken about the central one (``Z_0``), the correction injected
-    (``x [+] K y``), as in :mod:`estgen.derive_ukf_att`."""
+    (``x [+] K y``), as in :mod:`estgen.derive_ukf_att`; ``dx`` holds the correction for the
+    covariance reset the emitter appends (:func:`estgen.emit.set_reset`)."""
     n, ne, nv, m = spec.n, spec.ne, sensor.nv, sensor.m
     att = bool(spec.attitudes)
     na = ne + nv

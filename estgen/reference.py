@@ -673,7 +673,8 @@ class ReferenceUKF(_ReferenceBase):
         return self._commit(xn, Pn)
 
     def _innovation(self, sensor: str, z: np.ndarray) -> Union[int, _Innovation]:
-        """Fresh sigma points from (x, P) through h; the covariance update is P - K S K'."""
+        """Fresh sigma points from (x, P) through h; the covariance update is P - K S K' (attitudes:
+        then the reset P <- G P G', see :meth:`ModelFunctions.reset_jacobian`)."""
         p = self._p()
         x, P = self._x, self._P
         n = self.n
@@ -695,7 +696,13 @@ class ReferenceUKF(_ReferenceBase):
             dev = dZ - off
             S = (dev.T * wc) @ dev + R
             C = (E[:, :ne].T * wc) @ dev
-            return _wrap_masked(z - (Z[0] + off), zang), S, C, lambda K, S_: P - K @ S_ @ K.T
+            y = _wrap_masked(z - (Z[0] + off), zang)
+
+            def reset(K: np.ndarray, S_: np.ndarray) -> np.ndarray:
+                G = self._fn.reset_jacobian(K @ y)  # the error re-referenced to x ⊞ K y, as the EKF
+                return G @ (P - K @ S_ @ K.T) @ G.T
+
+            return y, S, C, reset
         pts = self._points(self._fn.Av(sensor, p))
         if isinstance(pts, int):
             return pts

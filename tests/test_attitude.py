@@ -13,6 +13,8 @@ import pytest
 from scipy.spatial.transform import Rotation
 
 import estgen
+from estgen import emit_ukf
+from estgen.filters import generate
 from estgen.reference import model_functions
 
 HERE = os.path.dirname(os.path.abspath(__file__))
@@ -193,6 +195,60 @@ def test_c_update_injects_the_error_like_scipy(gyro) -> None:
     assert norm(c.P - Gx @ Pj @ Gx.T) <= bound
     assert norm(c.P - Pj) > 10 * bound  # the reset is resolved by this check
     assert abs(np.linalg.norm(c.x[:4]) - 1.0) < 1e-15 * 4
+
+
+@pytest.mark.parametrize("form", ["straight", "loop"])
+def test_ukf_update_injects_and_resets_like_the_published_equations(gyro, form: str,
+                                                                     monkeypatch: pytest.MonkeyPatch) -> None:
+    """One UKF update, written out here from the scaled unscented transform (Wan & van der Merwe
+    2000, eqs. 15 and 17-18; Julier 2002 for the weights) with error-space sigma points x ⊞ (+-gamma
+    L_i) composed by scipy (Crassidis & Markley 2003, USQUE), then the error-state reset
+    P <- G (P - K S K') G' with G = I - [dtheta/2 x] (Sola 2017, sec. 7.2; Markley 2003; G is
+    checked against scipy central differences above): the C of both forms must give it."""
+    if form == "loop":
+        monkeypatch.setattr(emit_ukf, "UKF_LOOP_SIZE_MIN_N", 0)
+        opts = {"optimize": "size"}
+    else:
+        monkeypatch.setattr(emit_ukf, "UKF_STRAIGHT_FLASH_MAX", float("inf"))
+        opts = {"optimize": "speed"}
+    alpha, beta, kappa = 0.8, 2.0, 1.0
+    gen = generate(gyro, filter="ukf", precision="double", alpha=alpha, beta=beta, kappa=kappa, **opts)
+    assert (f"static void {gen.prefix}_f(" in gen.source) == (form == "loop")
+    assert f"{gen.prefix}_reset(Ps, dx);" in gen.source
+    c = estgen.build(gyro, filter="ukf", precision="double", alpha=alpha, beta=beta, kappa=kappa, **opts)
+    fn = model_functions(gyro)
+    p = fn.param_tuple(gyro.param_defaults())
+    x = _random_state(gyro)
+    P = np.diag([0.05, 0.04, 0.06, 1e-4, 1e-4, 1e-4])
+    P[0, 1] = P[1, 0] = 0.01
+    assert c.set_state(x, P) == 0
+    truth = _plus(gyro, x, np.array([0.08, -0.05, 0.06, 0.0, 0.0, 0.0]))
+    z = fn.h("acc", truth, p) + np.array([0.02, -0.03, 0.01])
+    assert c.update("acc", z) == 0
+    n = gyro.ne
+    lam = alpha**2 * (n + kappa) - n
+    wm = np.full(2 * n + 1, 0.5 / (n + lam))
+    wm[0] = lam / (n + lam)
+    wc = wm.copy()
+    wc[0] += 1.0 - alpha**2 + beta
+    gL = math.sqrt(n + lam) * np.linalg.cholesky(P)
+    E = np.vstack([np.zeros(n), gL.T, -gL.T])
+    Z = np.array([fn.h("acc", _plus(gyro, x, e), p) for e in E])
+    zhat = wm @ Z
+    dZ = Z - zhat
+    S = (dZ.T * wc) @ dZ + np.diag([0.05] * 3)
+    K = ((E.T * wc) @ dZ) @ np.linalg.inv(S)
+    dx = K @ (z - zhat)
+    np.testing.assert_allclose(c.x, _plus(gyro, x, dx), atol=1e-10)
+    Pm = P - K @ S @ K.T
+    G = np.eye(n)
+    G[:3, :3] -= _skew(dx[:3] / 2)
+    np.testing.assert_allclose(fn.reset_jacobian(dx), G, atol=1e-15)
+    np.testing.assert_allclose(c.P, G @ Pm @ G.T, atol=1e-10)
+    assert np.max(np.abs(c.P - Pm)) > 1e-5  # the reset is resolved by this check (1e5 x the tolerance)
+    r = estgen.reference(gyro, filter="ukf", alpha=alpha, beta=beta, kappa=kappa)
+    assert r.set_state(x, P) == 0 and r.update("acc", z) == 0
+    np.testing.assert_allclose(r.P, c.P, atol=1e-12)
 
 
 @pytest.mark.parametrize("filt", ["ekf", "ukf"])

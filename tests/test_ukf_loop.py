@@ -30,7 +30,7 @@ ROOT = os.path.dirname(HERE)
 EX = os.path.join(ROOT, "generated_examples")
 EXAMPLES = ["linear_cart", "battery_soc", "beacon_rover", "valve_actuator", "strapdown_nav", "pier_tag", "quat_nav"]
 MODELS = ["ukf_heading.py", "ukf_rangebearing.py", "noise_range.py", "noise_cart.py", "ukf_saturation.py",
-          "attitude_gyro.py"]
+          "attitude_gyro.py", "attitude_corr_mag.py"]
 sys.path.insert(0, os.path.join(ROOT, "benchmarks"))
 
 from synthetic import write_model  # noqa: E402
@@ -240,7 +240,7 @@ def test_loop_predict_commits_under_its_certificate_only(tmp_path, loop_form: Di
 
 
 @pytest.mark.parametrize("precision", ["double", "float"])
-@pytest.mark.parametrize("name", ["strapdown_nav", "quat_nav"])
+@pytest.mark.parametrize("name", ["strapdown_nav", "quat_nav", "attitude_gyro.py", "attitude_corr_mag.py"])
 def test_straight_line_form_still_matches_reference(name: str, precision: str, monkeypatch: pytest.MonkeyPatch) -> None:
     # Source: the numpy reference UKF, as above. The default takes the loop form for these two
     # (their straight-line flash is over budget); the straight-line form stays selectable

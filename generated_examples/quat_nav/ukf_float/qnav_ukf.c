@@ -452,6 +452,103 @@ float qnav_ukf_cov(const qnav_ukf_t *s, size_t i, size_t j)
 }
 
 
+/* The error-state reset, run by every update after it injects the correction dx: the error is
+   re-referenced to the corrected attitude, P = G P G' with G = I - [dtheta/2 x] on each attitude
+   block and I elsewhere (see the header). One copy serves every update. */
+static void qnav_ukf_reset(float *Ps, const float *dx)
+{
+    const float rh6 = (0.5F)*dx[6];
+    const float rh7 = (0.5F)*dx[7];
+    const float rh8 = (0.5F)*dx[8];
+    const float rT6_0 = Ps[6] + Ps[7]*rh8 - Ps[8]*rh7;
+    const float rT6_1 = Ps[20] + Ps[21]*rh8 - Ps[22]*rh7;
+    const float rT6_2 = Ps[33] + Ps[34]*rh8 - Ps[35]*rh7;
+    const float rT6_3 = Ps[45] + Ps[46]*rh8 - Ps[47]*rh7;
+    const float rT6_4 = Ps[56] + Ps[57]*rh8 - Ps[58]*rh7;
+    const float rT6_5 = Ps[66] + Ps[67]*rh8 - Ps[68]*rh7;
+    const float rT6_6 = Ps[75] + Ps[76]*rh8 - Ps[77]*rh7;
+    const float rT6_7 = Ps[76] + Ps[84]*rh8 - Ps[85]*rh7;
+    const float rT6_8 = Ps[77] + Ps[85]*rh8 - Ps[92]*rh7;
+    const float rT6_9 = Ps[78] + Ps[86]*rh8 - Ps[93]*rh7;
+    const float rT6_10 = Ps[79] + Ps[87]*rh8 - Ps[94]*rh7;
+    const float rT6_11 = Ps[80] + Ps[88]*rh8 - Ps[95]*rh7;
+    const float rT6_12 = Ps[81] + Ps[89]*rh8 - Ps[96]*rh7;
+    const float rT6_13 = Ps[82] + Ps[90]*rh8 - Ps[97]*rh7;
+    const float rT6_14 = Ps[83] + Ps[91]*rh8 - Ps[98]*rh7;
+    const float rT7_0 = Ps[7] + Ps[8]*rh6 - Ps[6]*rh8;
+    const float rT7_1 = Ps[21] + Ps[22]*rh6 - Ps[20]*rh8;
+    const float rT7_2 = Ps[34] + Ps[35]*rh6 - Ps[33]*rh8;
+    const float rT7_3 = Ps[46] + Ps[47]*rh6 - Ps[45]*rh8;
+    const float rT7_4 = Ps[57] + Ps[58]*rh6 - Ps[56]*rh8;
+    const float rT7_5 = Ps[67] + Ps[68]*rh6 - Ps[66]*rh8;
+    const float rT7_6 = Ps[76] + Ps[77]*rh6 - Ps[75]*rh8;
+    const float rT7_7 = Ps[84] + Ps[85]*rh6 - Ps[76]*rh8;
+    const float rT7_8 = Ps[85] + Ps[92]*rh6 - Ps[77]*rh8;
+    const float rT7_9 = Ps[86] + Ps[93]*rh6 - Ps[78]*rh8;
+    const float rT7_10 = Ps[87] + Ps[94]*rh6 - Ps[79]*rh8;
+    const float rT7_11 = Ps[88] + Ps[95]*rh6 - Ps[80]*rh8;
+    const float rT7_12 = Ps[89] + Ps[96]*rh6 - Ps[81]*rh8;
+    const float rT7_13 = Ps[90] + Ps[97]*rh6 - Ps[82]*rh8;
+    const float rT7_14 = Ps[91] + Ps[98]*rh6 - Ps[83]*rh8;
+    const float rT8_0 = Ps[8] + Ps[6]*rh7 - Ps[7]*rh6;
+    const float rT8_1 = Ps[22] + Ps[20]*rh7 - Ps[21]*rh6;
+    const float rT8_2 = Ps[35] + Ps[33]*rh7 - Ps[34]*rh6;
+    const float rT8_3 = Ps[47] + Ps[45]*rh7 - Ps[46]*rh6;
+    const float rT8_4 = Ps[58] + Ps[56]*rh7 - Ps[57]*rh6;
+    const float rT8_5 = Ps[68] + Ps[66]*rh7 - Ps[67]*rh6;
+    const float rT8_6 = Ps[77] + Ps[75]*rh7 - Ps[76]*rh6;
+    const float rT8_7 = Ps[85] + Ps[76]*rh7 - Ps[84]*rh6;
+    const float rT8_8 = Ps[92] + Ps[77]*rh7 - Ps[85]*rh6;
+    const float rT8_9 = Ps[93] + Ps[78]*rh7 - Ps[86]*rh6;
+    const float rT8_10 = Ps[94] + Ps[79]*rh7 - Ps[87]*rh6;
+    const float rT8_11 = Ps[95] + Ps[80]*rh7 - Ps[88]*rh6;
+    const float rT8_12 = Ps[96] + Ps[81]*rh7 - Ps[89]*rh6;
+    const float rT8_13 = Ps[97] + Ps[82]*rh7 - Ps[90]*rh6;
+    const float rT8_14 = Ps[98] + Ps[83]*rh7 - Ps[91]*rh6;
+    Ps[6] = rT6_0;
+    Ps[7] = rT7_0;
+    Ps[8] = rT8_0;
+    Ps[20] = rT6_1;
+    Ps[21] = rT7_1;
+    Ps[22] = rT8_1;
+    Ps[33] = rT6_2;
+    Ps[34] = rT7_2;
+    Ps[35] = rT8_2;
+    Ps[45] = rT6_3;
+    Ps[46] = rT7_3;
+    Ps[47] = rT8_3;
+    Ps[56] = rT6_4;
+    Ps[57] = rT7_4;
+    Ps[58] = rT8_4;
+    Ps[66] = rT6_5;
+    Ps[67] = rT7_5;
+    Ps[68] = rT8_5;
+    Ps[75] = rT6_6 + rT6_7*rh8 - rT6_8*rh7;
+    Ps[76] = rT6_7 + rT6_8*rh6 - rT6_6*rh8;
+    Ps[77] = rT6_8 + rT6_6*rh7 - rT6_7*rh6;
+    Ps[78] = rT6_9;
+    Ps[79] = rT6_10;
+    Ps[80] = rT6_11;
+    Ps[81] = rT6_12;
+    Ps[82] = rT6_13;
+    Ps[83] = rT6_14;
+    Ps[84] = rT7_7 + rT7_8*rh6 - rT7_6*rh8;
+    Ps[85] = rT7_8 + rT7_6*rh7 - rT7_7*rh6;
+    Ps[86] = rT7_9;
+    Ps[87] = rT7_10;
+    Ps[88] = rT7_11;
+    Ps[89] = rT7_12;
+    Ps[90] = rT7_13;
+    Ps[91] = rT7_14;
+    Ps[92] = rT8_8 + rT8_6*rh7 - rT8_7*rh6;
+    Ps[93] = rT8_9;
+    Ps[94] = rT8_10;
+    Ps[95] = rT8_11;
+    Ps[96] = rT8_12;
+    Ps[97] = rT8_13;
+    Ps[98] = rT8_14;
+}
+
 /* Sigma points x, x +- gamma L_i (L L' = P) through f; weighted mean and covariance + Q.
    Computed into scratch, committed only when every check has passed. */
 int qnav_ukf_predict(qnav_ukf_t *s, const float *u, float dt)
@@ -582,7 +679,7 @@ int qnav_ukf_predict(qnav_ukf_t *s, const float *u, float dt)
 }
 
 /* Sensor gnss_pos (3 components): fresh sigma points from (x, P) through h,
-   y = z - zhat, K = C S^-1, x += K y, P -= K S K'. */
+   y = z - zhat, K = C S^-1, x += K y, P -= K S K' (attitudes: x [+] K y, then P = G P G'). */
 int qnav_ukf_update_gnss_pos_nis(qnav_ukf_t *s, const float *z, float *nis_out)
 {
     float xs[16];
@@ -745,6 +842,7 @@ int qnav_ukf_update_gnss_pos_nis(qnav_ukf_t *s, const float *z, float *nis_out)
             ++q;
         }
     }
+    qnav_ukf_reset(Ps, dx);  /* P re-referenced to the corrected attitude */
     if (!qnav_ukf_finite(xs, 16u)) {
         return QNAV_UKF_NON_FINITE;
     }
@@ -767,7 +865,7 @@ int qnav_ukf_update_gnss_pos(qnav_ukf_t *s, const float *z)
 
 
 /* Sensor gnss_vel (3 components): fresh sigma points from (x, P) through h,
-   y = z - zhat, K = C S^-1, x += K y, P -= K S K'. */
+   y = z - zhat, K = C S^-1, x += K y, P -= K S K' (attitudes: x [+] K y, then P = G P G'). */
 int qnav_ukf_update_gnss_vel_nis(qnav_ukf_t *s, const float *z, float *nis_out)
 {
     float xs[16];
@@ -930,6 +1028,7 @@ int qnav_ukf_update_gnss_vel_nis(qnav_ukf_t *s, const float *z, float *nis_out)
             ++q;
         }
     }
+    qnav_ukf_reset(Ps, dx);  /* P re-referenced to the corrected attitude */
     if (!qnav_ukf_finite(xs, 16u)) {
         return QNAV_UKF_NON_FINITE;
     }
@@ -952,7 +1051,7 @@ int qnav_ukf_update_gnss_vel(qnav_ukf_t *s, const float *z)
 
 
 /* Sensor baro (1 component): fresh sigma points from (x, P) through h,
-   y = z - zhat, K = C S^-1, x += K y, P -= K S K'. */
+   y = z - zhat, K = C S^-1, x += K y, P -= K S K' (attitudes: x [+] K y, then P = G P G'). */
 int qnav_ukf_update_baro_nis(qnav_ukf_t *s, const float *z, float *nis_out)
 {
     float xs[16];
@@ -1084,6 +1183,7 @@ int qnav_ukf_update_baro_nis(qnav_ukf_t *s, const float *z, float *nis_out)
             ++q;
         }
     }
+    qnav_ukf_reset(Ps, dx);  /* P re-referenced to the corrected attitude */
     if (!qnav_ukf_finite(xs, 16u)) {
         return QNAV_UKF_NON_FINITE;
     }
@@ -1106,7 +1206,7 @@ int qnav_ukf_update_baro(qnav_ukf_t *s, const float *z)
 
 
 /* Sensor mag (3 components): fresh sigma points from (x, P) through h,
-   y = z - zhat, K = C S^-1, x += K y, P -= K S K'. */
+   y = z - zhat, K = C S^-1, x += K y, P -= K S K' (attitudes: x [+] K y, then P = G P G'). */
 int qnav_ukf_update_mag_nis(qnav_ukf_t *s, const float *z, float *nis_out)
 {
     float xs[16];
@@ -1269,6 +1369,7 @@ int qnav_ukf_update_mag_nis(qnav_ukf_t *s, const float *z, float *nis_out)
             ++q;
         }
     }
+    qnav_ukf_reset(Ps, dx);  /* P re-referenced to the corrected attitude */
     if (!qnav_ukf_finite(xs, 16u)) {
         return QNAV_UKF_NON_FINITE;
     }

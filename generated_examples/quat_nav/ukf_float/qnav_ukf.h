@@ -77,6 +77,9 @@
  * Attitudes (unit quaternions w, x, y, z; Hamilton product; body -> reference) take four entries
  * of x and three of P: the error dtheta in q_true = q (x) exp(dtheta), body frame, rad. P is
  * 15 x 15 over: pn, pe, pd, vn, ve, vd, q_rx, q_ry, q_rz, bgx, bgy, bgz, bax, bay, baz.
+ * An update injects its correction dx into x (q = q (x) exp(dtheta), renormalized) and then
+ * re-references the error to the new estimate: P = G P G', G = I - [dtheta/2 x] on each attitude
+ * block (the standard first-order error-state reset), before the commit check.
  *
  * Commit check: every update commits a new P only when its Cholesky factorization
  * succeeds (every pivot finite and > 0): an update subtracts from P. Predict (loop form) only adds:
@@ -92,11 +95,12 @@
  * functions are longer: each holds one call's loops (sigma points, weighted sums, the factor of S,
  * the gain and the new P) in sequence, with its refusal paths:
  *   qnav_ukf_init: 137 lines
+ *   qnav_ukf_reset: 90 lines
  *   qnav_ukf_predict: 123 lines
- *   qnav_ukf_update_gnss_pos_nis: 173 lines
- *   qnav_ukf_update_gnss_vel_nis: 173 lines
- *   qnav_ukf_update_baro_nis: 142 lines
- *   qnav_ukf_update_mag_nis: 173 lines
+ *   qnav_ukf_update_gnss_pos_nis: 174 lines
+ *   qnav_ukf_update_gnss_vel_nis: 174 lines
+ *   qnav_ukf_update_baro_nis: 143 lines
+ *   qnav_ukf_update_mag_nis: 174 lines
  * Sigma points: 2n+1 = 31 (loop form, --optimize speed): built one at a time
  * from x and a column of the Cholesky factor, passed through the static model function, and
  * their images kept in a local array (n or m rows of 2N+1) with the factor and the sums: the
