@@ -528,6 +528,7 @@ def _common_context(spec: ModelSpec, setup: "FilterSetup") -> Dict[str, Any]:
         "ne": ne,
         "np": np_,
         "attitudes": list(spec.attitudes),
+        "augmented": bool(spec.noise),  # noise symbols: the UKF draws augmented sigma points
         "error_names": list(spec.error_names),
         "nu": spec.nu,
         "states": states,

@@ -133,3 +133,17 @@ def test_sensor_text_prints_noise_symbols_under_their_model_names(tmp_path, filt
     assert f" *     z[2] = {third}\n" in gen.header
     block = gen.header.split(" * Measurements")[1].split(" * Packed covariance")[0]
     assert "_ep" not in block and "_v" not in block, block
+
+
+def test_ukf_comment_states_the_sigma_point_dimension():
+    # the scaled unscented transform's n is the dimension the sigma points span (Julier 2002):
+    # the error dimension for an attitude model, and the augmented vector's for noise symbols
+    from estgen import load_model
+    import os
+
+    att = load_model(os.path.join(os.path.dirname(__file__), "models", "attitude_gyro.py"))
+    src = generate(att, filter="ukf").source
+    assert f"n = {att.ne} (the error dimension: {att.n} stored states" in src
+    nav = example_model("strapdown_nav")
+    assert "use an augmented vector's sigma points" in generate(nav, filter="ukf").source
+    assert "augmented vector" not in generate(example_model("linear_cart"), filter="ukf").source

@@ -7,7 +7,8 @@
 #include <string.h>
 
 
-/* Scaled unscented transform, n = 16: lambda = 0.0F, gamma = sqrt(n + lambda). */
+/* Scaled unscented transform, n = 15 (the error dimension: 16 stored states, each unit
+   quaternion's error a 3-vector): lambda = 0.0F, gamma = sqrt(n + lambda). */
 #define QNAV_UKF_WM0 0.0F
 #define QNAV_UKF_WC0 2.0F
 #define QNAV_UKF_WI 0.033333335F

@@ -9,7 +9,8 @@
 #define NAV_UKF_PI 3.141592653589793
 #define NAV_UKF_TWO_PI 6.283185307179586
 
-/* Scaled unscented transform, n = 15: lambda = 0.0, gamma = sqrt(n + lambda). */
+/* Scaled unscented transform, n = 15: lambda = 0.0, gamma = sqrt(n + lambda).
+   Calls with noise symbols use an augmented vector's sigma points and weights (see the header). */
 #define NAV_UKF_WM0 0.0
 #define NAV_UKF_WC0 2.0
 #define NAV_UKF_WI 0.03333333333333333

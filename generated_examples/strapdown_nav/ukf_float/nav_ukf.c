@@ -9,7 +9,8 @@
 #define NAV_UKF_PI 3.1415927F
 #define NAV_UKF_TWO_PI 6.2831855F
 
-/* Scaled unscented transform, n = 15: lambda = 0.0F, gamma = sqrt(n + lambda). */
+/* Scaled unscented transform, n = 15: lambda = 0.0F, gamma = sqrt(n + lambda).
+   Calls with noise symbols use an augmented vector's sigma points and weights (see the header). */
 #define NAV_UKF_WM0 0.0F
 #define NAV_UKF_WC0 2.0F
 #define NAV_UKF_WI 0.033333335F
